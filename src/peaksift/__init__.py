@@ -1,0 +1,79 @@
+"""peaksift: invariant-mass resonance searches from columnar events to a meeting report.
+
+Where to start
+--------------
+* ``read_events`` / ``iter_events`` / ``describe``  -- read Parquet events (awkward + vector).
+* ``pair``                                          -- build di-object candidates under cuts.
+* ``MassHistogram``                                 -- weighted mass spectrum.
+* ``fit``                                           -- extended signal-plus-background fit.
+* ``scan``                                          -- local significance vs mass hypothesis.
+* ``run_search``                                    -- the whole search from a TOML config.
+
+Public names are imported lazily so ``import peaksift`` and the command line stay quick.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+from .errors import (
+    ConfigError,
+    CutError,
+    ExecutionError,
+    FitError,
+    InputError,
+    PeaksiftError,
+)
+
+__version__ = "0.1.0"
+
+# public name -> module that defines it
+_EXPORTS: dict[str, str] = {
+    "read_events": "peaksift.events",
+    "iter_events": "peaksift.events",
+    "describe": "peaksift.events",
+    "pair": "peaksift.pairing",
+    "Candidates": "peaksift.pairing",
+    "MassHistogram": "peaksift.histogram",
+    "fit": "peaksift.fitting",
+    "FitResult": "peaksift.fitting",
+    "scan": "peaksift.stats.scan",
+    "ScanResult": "peaksift.stats.scan",
+    "LimitResult": "peaksift.stats.limits",
+    "upper_limits": "peaksift.stats.limits",
+    "run_search": "peaksift.search",
+    "SearchResult": "peaksift.search",
+    "load_config": "peaksift.config",
+}
+
+_SUBMODULES = {
+    "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing",
+    "histogram", "fitting", "config", "execution", "search", "plotting", "report",
+    "resonances", "errors",
+}
+
+__all__ = [
+    "__version__",
+    "PeaksiftError",
+    "InputError",
+    "ConfigError",
+    "CutError",
+    "FitError",
+    "ExecutionError",
+    *_EXPORTS,
+]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _EXPORTS:
+        value = getattr(importlib.import_module(_EXPORTS[name]), name)
+        globals()[name] = value
+        return value
+    if name in _SUBMODULES:
+        return importlib.import_module(f"peaksift.{name}")
+    raise AttributeError(f"module 'peaksift' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(__all__) | _SUBMODULES)

@@ -1,0 +1,466 @@
+"""Weighted invariant-mass histograms.
+
+:class:`MassHistogram` is the one spectrum object peaksift passes between layers:
+bin edges, the sum of weights and the sum of squared weights per bin, plus under-
+and overflow.  Use it when
+
+* you fill a spectrum from candidates (``h.fill(cands.mass, cands.weight)``);
+* you merge partial spectra from chunks or workers (``h1 + h2``; for unweighted data
+  the merged counts equal one pass exactly, for weighted data to rounding);
+* you hand a spectrum to :func:`peaksift.fit` or :func:`peaksift.scan`;
+* you keep a spectrum on disk (``save``/``load``; ``.npz`` or ``.json``, both exact).
+
+Bins are half-open, ``[edge[i], edge[i+1])``: a value equal to the last edge goes to
+the overflow (``numpy.histogram`` instead closes its last bin; that is the only
+difference).  NaN values are not filled; they are counted in ``n_nan``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["MassHistogram"]
+
+_FORMAT = "peaksift-mass-histogram"
+_FORMAT_VERSION = 1
+
+
+def _check_edges(edges: Any) -> np.ndarray:
+    e = np.asarray(edges, dtype=float)
+    if e.ndim != 1 or e.size < 2:
+        raise InputError(
+            f"histogram edges must be a 1-d sequence of at least 2 numbers, got shape {e.shape}; "
+            "pass e.g. edges=np.linspace(60, 120, 121) or bins=120, range=(60, 120)"
+        )
+    if not np.all(np.isfinite(e)):
+        bad = int(np.flatnonzero(~np.isfinite(e))[0])
+        raise InputError(
+            f"histogram edge {bad} is {e[bad]!r}; all edges must be finite numbers"
+        )
+    d = np.diff(e)
+    if np.any(d <= 0):
+        bad = int(np.flatnonzero(d <= 0)[0])
+        raise InputError(
+            f"histogram edges must increase strictly, but edge {bad + 1} ({e[bad + 1]!r}) "
+            f"is not above edge {bad} ({e[bad]!r}); sort the edges and remove duplicates"
+        )
+    e.setflags(write=False)
+    return e
+
+
+class MassHistogram:
+    """A weighted one-dimensional histogram of invariant masses.
+
+    Parameters
+    ----------
+    edges : array_like, optional
+        Bin edges, strictly increasing (variable binning allowed).
+    bins, range : int and (float, float), optional
+        Regular binning: ``bins`` equal bins on ``range``; used when ``edges`` is None.
+    unit : str
+        Unit of the mass axis, for labels (default ``"GeV"``).
+    label : str
+        Axis label of the mass (default ``"m"``).
+
+    Attributes
+    ----------
+    edges : ndarray
+        Read-only bin edges (``nbins + 1``).
+    sumw, sumw2 : ndarray
+        Sum of weights and of squared weights per bin.
+    underflow, overflow : float
+        Sum of weights below the first / at or above the last edge
+        (``underflow_sumw2`` and ``overflow_sumw2`` likewise).
+    n_nan : int
+        Number of NaN values offered to :meth:`fill` and not filled.
+    """
+
+    __slots__ = (
+        "edges", "sumw", "sumw2", "underflow", "overflow",
+        "underflow_sumw2", "overflow_sumw2", "n_nan", "unit", "label", "_regular",
+    )
+
+    def __init__(
+        self,
+        edges: Any = None,
+        *,
+        bins: int | None = None,
+        range: tuple[float, float] | None = None,  # noqa: A002 - mirrors numpy
+        unit: str = "GeV",
+        label: str = "m",
+    ) -> None:
+        if edges is None:
+            if bins is None or range is None:
+                raise InputError(
+                    "MassHistogram needs either edges=... or both bins=... and range=(lo, hi)"
+                )
+            if int(bins) != bins or bins < 1:
+                raise InputError(f"bins must be a positive integer, got {bins!r}")
+            lo, hi = float(range[0]), float(range[1])
+            if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
+                raise InputError(f"range must be finite with hi > lo, got {range!r}")
+            edges = np.linspace(lo, hi, int(bins) + 1)
+        elif bins is not None or range is not None:
+            raise InputError("give either edges=... or bins=/range=, not both")
+        self.edges = _check_edges(edges)
+        n = self.edges.size - 1
+        self.sumw = np.zeros(n)
+        self.sumw2 = np.zeros(n)
+        self.underflow = 0.0
+        self.overflow = 0.0
+        self.underflow_sumw2 = 0.0
+        self.overflow_sumw2 = 0.0
+        self.n_nan = 0
+        self.unit = str(unit)
+        self.label = str(label)
+        w = np.diff(self.edges)
+        self._regular = bool(np.allclose(w, w[0], rtol=1e-12, atol=0.0))
+
+    # ------------------------------------------------------------------ basics
+    @property
+    def nbins(self) -> int:
+        return self.edges.size - 1
+
+    @property
+    def centers(self) -> np.ndarray:
+        return 0.5 * (self.edges[1:] + self.edges[:-1])
+
+    @property
+    def widths(self) -> np.ndarray:
+        return np.diff(self.edges)
+
+    @property
+    def lo(self) -> float:
+        return float(self.edges[0])
+
+    @property
+    def hi(self) -> float:
+        return float(self.edges[-1])
+
+    @property
+    def is_regular(self) -> bool:
+        return self._regular
+
+    @property
+    def errors(self) -> np.ndarray:
+        """Per-bin uncertainty ``sqrt(sumw2)``."""
+        return np.sqrt(self.sumw2)
+
+    @property
+    def is_weighted(self) -> bool:
+        """True when any bin's sum of squared weights differs from its sum of weights."""
+        return not (
+            np.array_equal(self.sumw, self.sumw2)
+            and self.underflow == self.underflow_sumw2
+            and self.overflow == self.overflow_sumw2
+        )
+
+    def total(self, *, flow: bool = False) -> float:
+        """Sum of weights in the bins (and under/overflow when ``flow``)."""
+        s = float(self.sumw.sum())
+        return s + self.underflow + self.overflow if flow else s
+
+    def copy(self) -> MassHistogram:
+        h = MassHistogram(self.edges, unit=self.unit, label=self.label)
+        h.sumw = self.sumw.copy()
+        h.sumw2 = self.sumw2.copy()
+        h.underflow, h.overflow = self.underflow, self.overflow
+        h.underflow_sumw2, h.overflow_sumw2 = self.underflow_sumw2, self.overflow_sumw2
+        h.n_nan = self.n_nan
+        return h
+
+    def empty_like(self) -> MassHistogram:
+        return MassHistogram(self.edges, unit=self.unit, label=self.label)
+
+    # -------------------------------------------------------------------- fill
+    def fill(self, mass: Any, weight: Any = None) -> MassHistogram:
+        """Add values (with optional per-value weights); returns ``self``.
+
+        Raises
+        ------
+        InputError
+            When ``weight`` does not match ``mass`` in length or holds non-finite values.
+        """
+        m = np.asarray(mass, dtype=float).ravel()
+        if weight is None:
+            w = None
+        else:
+            w = np.asarray(weight, dtype=float)
+            if w.ndim == 0:
+                w = np.full(m.shape, float(w))
+            w = w.ravel()
+            if w.shape != m.shape:
+                raise InputError(
+                    f"fill: {m.size} masses but {w.size} weights; give one weight per mass"
+                )
+            if not np.all(np.isfinite(w)):
+                raise InputError("fill: weights must be finite; found NaN or infinite weights")
+        nan = np.isnan(m)
+        if nan.any():
+            self.n_nan += int(nan.sum())
+            keep = ~nan
+            m = m[keep]
+            if w is not None:
+                w = w[keep]
+        if m.size == 0:
+            return self
+        n = self.nbins
+        # index 0 = underflow, 1..n = bins, n+1 = overflow; bins are [e_i, e_{i+1})
+        idx = np.searchsorted(self.edges, m, side="right")
+        if w is None:
+            counts = np.bincount(idx, minlength=n + 2).astype(float)
+            self.sumw += counts[1 : n + 1]
+            self.sumw2 += counts[1 : n + 1]
+            self.underflow += counts[0]
+            self.overflow += counts[n + 1]
+            self.underflow_sumw2 += counts[0]
+            self.overflow_sumw2 += counts[n + 1]
+        else:
+            s1 = np.bincount(idx, weights=w, minlength=n + 2)
+            s2 = np.bincount(idx, weights=w * w, minlength=n + 2)
+            self.sumw += s1[1 : n + 1]
+            self.sumw2 += s2[1 : n + 1]
+            self.underflow += s1[0]
+            self.overflow += s1[n + 1]
+            self.underflow_sumw2 += s2[0]
+            self.overflow_sumw2 += s2[n + 1]
+        return self
+
+    # ------------------------------------------------------------------- merge
+    def _check_compatible(self, other: Any) -> None:
+        if not isinstance(other, MassHistogram):
+            raise InputError(f"can only add a MassHistogram to a MassHistogram, not {type(other).__name__}")
+        if other.edges.shape != self.edges.shape or not np.array_equal(other.edges, self.edges):
+            raise InputError(
+                f"cannot add histograms with different binning ({self.nbins} bins on "
+                f"[{self.lo:g}, {self.hi:g}] vs {other.nbins} bins on [{other.lo:g}, {other.hi:g}]); "
+                "fill both with the same edges, or rebin one to the other's edges first"
+            )
+
+    def __add__(self, other: MassHistogram) -> MassHistogram:
+        if isinstance(other, int) and other == 0:  # lets sum([...]) work
+            return self.copy()
+        h = self.copy()
+        h += other
+        return h
+
+    __radd__ = __add__
+
+    def __iadd__(self, other: MassHistogram) -> MassHistogram:
+        self._check_compatible(other)
+        self.sumw += other.sumw
+        self.sumw2 += other.sumw2
+        self.underflow += other.underflow
+        self.overflow += other.overflow
+        self.underflow_sumw2 += other.underflow_sumw2
+        self.overflow_sumw2 += other.overflow_sumw2
+        self.n_nan += other.n_nan
+        return self
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, MassHistogram):
+            return NotImplemented
+        return (
+            np.array_equal(self.edges, other.edges)
+            and np.array_equal(self.sumw, other.sumw)
+            and np.array_equal(self.sumw2, other.sumw2)
+            and (self.underflow, self.overflow, self.underflow_sumw2, self.overflow_sumw2, self.n_nan)
+            == (other.underflow, other.overflow, other.underflow_sumw2, other.overflow_sumw2, other.n_nan)
+        )
+
+    __hash__ = None  # type: ignore[assignment]
+
+    # ------------------------------------------------------------------- rebin
+    def rebin(self, factor: int | None = None, *, edges: Any = None) -> MassHistogram:
+        """Merge bins: by an integer ``factor`` or onto ``edges`` chosen among the current ones.
+
+        Contents outside new ``edges`` (when they do not span the old range) move to the
+        under/overflow, so no weight is lost.
+        """
+        if (factor is None) == (edges is None):
+            raise InputError("rebin needs exactly one of factor=N or edges=[...]")
+        if factor is not None:
+            if int(factor) != factor or factor < 1:
+                raise InputError(f"rebin factor must be a positive integer, got {factor!r}")
+            factor = int(factor)
+            if self.nbins % factor:
+                raise InputError(
+                    f"rebin factor {factor} does not divide the {self.nbins} bins; "
+                    "choose a divisor or pass edges=[...]"
+                )
+            keep = np.arange(0, self.nbins + 1, factor)
+        else:
+            new = _check_edges(edges)
+            keep = np.searchsorted(self.edges, new)
+            ok = (keep < self.edges.size) & np.isclose(
+                self.edges[np.minimum(keep, self.edges.size - 1)], new, rtol=1e-12, atol=1e-12
+            )
+            if not ok.all():
+                bad = new[~ok][0]
+                raise InputError(
+                    f"rebin edge {bad!r} is not one of the current edges; new edges must be a "
+                    "subset of the old ones"
+                )
+        h = MassHistogram(self.edges[keep], unit=self.unit, label=self.label)
+        # exact per-group sums; reduceat's last group runs to the array end, so redo it
+        starts = keep[:-1]
+        h.sumw = np.add.reduceat(self.sumw, starts)
+        h.sumw2 = np.add.reduceat(self.sumw2, starts)
+        h.sumw[-1] = self.sumw[keep[-2] : keep[-1]].sum()
+        h.sumw2[-1] = self.sumw2[keep[-2] : keep[-1]].sum()
+        h.underflow = self.underflow + float(self.sumw[: keep[0]].sum())
+        h.underflow_sumw2 = self.underflow_sumw2 + float(self.sumw2[: keep[0]].sum())
+        h.overflow = self.overflow + float(self.sumw[keep[-1] :].sum())
+        h.overflow_sumw2 = self.overflow_sumw2 + float(self.sumw2[keep[-1] :].sum())
+        h.n_nan = self.n_nan
+        return h
+
+    # -------------------------------------------------------------- save/load
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "format": _FORMAT,
+            "version": _FORMAT_VERSION,
+            "unit": self.unit,
+            "label": self.label,
+            "edges": self.edges.tolist(),
+            "sumw": self.sumw.tolist(),
+            "sumw2": self.sumw2.tolist(),
+            "underflow": self.underflow,
+            "overflow": self.overflow,
+            "underflow_sumw2": self.underflow_sumw2,
+            "overflow_sumw2": self.overflow_sumw2,
+            "n_nan": self.n_nan,
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any], *, where: str = "histogram") -> MassHistogram:
+        if d.get("format") != _FORMAT:
+            raise InputError(f"{where}: not a peaksift mass histogram (format key is {d.get('format')!r})")
+        try:
+            h = cls(np.asarray(d["edges"], dtype=float), unit=str(d.get("unit", "GeV")),
+                    label=str(d.get("label", "m")))
+            sumw = np.asarray(d["sumw"], dtype=float)
+            sumw2 = np.asarray(d["sumw2"], dtype=float)
+        except KeyError as exc:
+            raise InputError(f"{where}: missing key {exc.args[0]!r}") from None
+        if sumw.shape != (h.nbins,) or sumw2.shape != (h.nbins,):
+            raise InputError(
+                f"{where}: {h.nbins} bins but sumw has {sumw.size} and sumw2 {sumw2.size} entries"
+            )
+        h.sumw, h.sumw2 = sumw, sumw2
+        h.underflow = float(d.get("underflow", 0.0))
+        h.overflow = float(d.get("overflow", 0.0))
+        h.underflow_sumw2 = float(d.get("underflow_sumw2", 0.0))
+        h.overflow_sumw2 = float(d.get("overflow_sumw2", 0.0))
+        h.n_nan = int(d.get("n_nan", 0))
+        return h
+
+    def save(self, path: str | os.PathLike[str]) -> Path:
+        """Write to ``path``: JSON when it ends in ``.json``, otherwise NumPy ``.npz``.
+
+        Both round-trip exactly.  The file is written under a temporary name and renamed,
+        so a failure never leaves a half-written histogram.
+        """
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+        try:
+            with os.fdopen(fd, "wb") as f:
+                if path.suffix.lower() == ".json":
+                    f.write(json.dumps(self.to_dict(), indent=1).encode())
+                else:
+                    np.savez(
+                        f,
+                        format=np.array(_FORMAT),
+                        version=np.array(_FORMAT_VERSION),
+                        unit=np.array(self.unit),
+                        label=np.array(self.label),
+                        edges=np.asarray(self.edges),
+                        sumw=self.sumw,
+                        sumw2=self.sumw2,
+                        flow=np.array([self.underflow, self.overflow,
+                                       self.underflow_sumw2, self.overflow_sumw2]),
+                        n_nan=np.array(self.n_nan),
+                    )
+            os.replace(tmp, path)
+        except BaseException:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+            raise
+        return path
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> MassHistogram:
+        """Read a histogram written by :meth:`save`."""
+        path = Path(path)
+        if not path.exists():
+            raise InputError(f"histogram file {str(path)!r} does not exist")
+        try:
+            if path.suffix.lower() == ".json":
+                return cls.from_dict(json.loads(path.read_text()), where=str(path))
+            with np.load(path, allow_pickle=False) as z:
+                flow = z["flow"]
+                d = {
+                    "format": str(z["format"]),
+                    "unit": str(z["unit"]),
+                    "label": str(z["label"]),
+                    "edges": z["edges"],
+                    "sumw": z["sumw"],
+                    "sumw2": z["sumw2"],
+                    "underflow": flow[0],
+                    "overflow": flow[1],
+                    "underflow_sumw2": flow[2],
+                    "overflow_sumw2": flow[3],
+                    "n_nan": int(z["n_nan"]),
+                }
+        except InputError:
+            raise
+        except Exception as exc:  # corrupt file, wrong archive
+            raise InputError(f"cannot read histogram file {str(path)!r}: {exc}") from None
+        return cls.from_dict(d, where=str(path))
+
+    # -------------------------------------------------------------------- plot
+    def plot(self, ax: Any = None, *, density: bool = False, **kwargs: Any) -> Any:
+        """Draw the spectrum as points with ``sqrt(sumw2)`` error bars; returns the Axes.
+
+        With ``density=True`` the contents are divided by the bin width (events per GeV).
+        """
+        import matplotlib.pyplot as plt
+
+        if ax is None:
+            _, ax = plt.subplots(figsize=(7, 4.5))
+        scale = 1.0 / self.widths if (density or not self._regular) else 1.0
+        y = self.sumw * scale
+        yerr = self.errors * scale
+        kwargs.setdefault("fmt", "o")
+        kwargs.setdefault("ms", 3)
+        kwargs.setdefault("color", "#1d1d1d")
+        kwargs.setdefault("elinewidth", 0.9)
+        kwargs.setdefault("label", "data")
+        ax.errorbar(self.centers, y, yerr=yerr, xerr=0.5 * self.widths if self.nbins < 80 else None,
+                    **kwargs)
+        ax.set_xlabel(f"${self.label}$ [{self.unit}]" if self.label.isalpha() else
+                      f"{self.label} [{self.unit}]")
+        if density or not self._regular:
+            ax.set_ylabel(f"candidates / {self.unit}")
+        else:
+            ax.set_ylabel(f"candidates / {self.widths[0]:.3g} {self.unit}")
+        ax.set_xlim(self.lo, self.hi)
+        return ax
+
+    # ------------------------------------------------------------------- repr
+    def __repr__(self) -> str:
+        kind = "regular" if self._regular else "variable"
+        return (
+            f"MassHistogram({self.nbins} {kind} bins on [{self.lo:g}, {self.hi:g}] {self.unit}, "
+            f"sum of weights {self.total():.6g}, underflow {self.underflow:.6g}, "
+            f"overflow {self.overflow:.6g})"
+        )
