@@ -1,0 +1,152 @@
+"""Checks of peaksift.kinematics against outside references (named beside each check)."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+import vector
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from particle import Particle
+from scipy.constants import physical_constants
+
+from peaksift import kinematics as kin
+from peaksift.errors import DataWarning
+
+
+def _sum(a, b):
+    return tuple(x + y for x, y in zip(a, b))
+
+
+def test_back_to_back_massless_gives_twice_the_energy():
+    # Two massless objects of energy E each, back to back: m = 2E (common practice).
+    e = np.array([1.0, 45.6, 1000.0, 6500.0])
+    for eta in (0.0, 1.3, -2.4):
+        a = kin.to_cartesian(e / np.cosh(eta), eta, 0.3, 0.0)
+        b = kin.to_cartesian(e / np.cosh(eta), -eta, 0.3 + np.pi, 0.0)
+        px, py, pz, en = _sum(a, b)
+        np.testing.assert_allclose(kin.invariant_mass(en, px, py, pz), 2 * e, rtol=1e-12)
+        np.testing.assert_allclose(
+            kin.pair_mass(e / np.cosh(eta), eta, 0.3, 0, e / np.cosh(eta), -eta, 0.3 + np.pi, 0),
+            2 * e, rtol=1e-12)
+
+
+def test_collinear_light_pair_keeps_precision():
+    # Two collinear massless objects have m = 0 exactly and a pair at small opening angle
+    # theta has m^2 = 2 E1 E2 (1 - cos theta) (common practice); the factored pair formula
+    # must reproduce it where E^2 - p^2 would lose all digits.
+    pt, dphi = 1000.0, 1e-7
+    m = kin.pair_mass(pt, 0.0, 0.0, 0.0, pt, 0.0, dphi, 0.0)
+    np.testing.assert_allclose(m, np.sqrt(2 * pt * pt * (2 * np.sin(dphi / 2) ** 2)), rtol=1e-9)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    pt1=st.floats(1.0, 500.0), eta1=st.floats(-3, 3), phi1=st.floats(-3.1, 3.1),
+    m1=st.floats(0.0, 100.0), pt2=st.floats(1.0, 500.0), eta2=st.floats(-3, 3),
+    phi2=st.floats(-3.1, 3.1), m2=st.floats(0.0, 100.0),
+    beta=st.tuples(st.floats(-0.6, 0.6), st.floats(-0.6, 0.6), st.floats(-0.6, 0.6)),
+)
+def test_mass_is_invariant_under_boosts(pt1, eta1, phi1, m1, pt2, eta2, phi2, m2, beta):
+    # Invariant mass is Lorentz invariant (a property of special relativity, no number
+    # needed); the boost itself is done by the `vector` package, outside this project.
+    a = vector.obj(pt=pt1, eta=eta1, phi=phi1, mass=m1)
+    b = vector.obj(pt=pt2, eta=eta2, phi=phi2, mass=m2)
+    pa = kin.to_cartesian(pt1, eta1, phi1, m1)
+    pb = kin.to_cartesian(pt2, eta2, phi2, m2)
+    px, py, pz, e = _sum(pa, pb)
+    m_rest = kin.invariant_mass(e, px, py, pz)
+    boost = vector.obj(x=beta[0], y=beta[1], z=beta[2])
+    ab, bb = a.boost_beta3(boost), b.boost_beta3(boost)
+    s = ab + bb
+    m_boosted = kin.invariant_mass(s.E, s.px, s.py, s.pz)
+    scale = e + abs(m_rest)
+    assert abs(m_boosted - m_rest) <= 1e-9 * scale
+    pm = kin.pair_mass(ab.pt, ab.eta, ab.phi, ab.mass, bb.pt, bb.eta, bb.phi, bb.mass)
+    assert abs(pm - m_rest) <= 1e-9 * scale
+
+
+def test_antiproton_threshold_is_six_proton_masses():
+    # p + p -> p + p + p + pbar on a fixed target needs beam kinetic energy 6 m_p ~ 5.63 GeV
+    # (textbook worked example: Griffiths, Introduction to Elementary Particles, 2nd ed., 2008).
+    # Proton mass from scipy.constants (CODATA).
+    mp = physical_constants["proton mass energy equivalent in MeV"][0] / 1000.0
+    t = kin.threshold_beam_energy(4 * mp, mp, mp, kinetic=True)
+    np.testing.assert_allclose(t, 6 * mp, rtol=1e-12)
+    assert 5.62 < float(t) < 5.64  # "~5.63 GeV", from memory
+    e_tot = kin.threshold_beam_energy(4 * mp, mp, mp)
+    np.testing.assert_allclose(e_tot, 7 * mp, rtol=1e-12)
+    # and that beam indeed reaches sqrt(s) = 4 m_p
+    np.testing.assert_allclose(kin.sqrt_s_fixed_target(t, mp, mp, kinetic=True), 4 * mp, rtol=1e-12)
+    np.testing.assert_allclose(kin.sqrt_s_fixed_target(e_tot, mp, mp), 4 * mp, rtol=1e-12)
+
+
+def test_collider_sqrt_s():
+    # Symmetric head-on massless beams: sqrt(s) = 2E; asymmetric: 2 sqrt(E1 E2) (common practice).
+    np.testing.assert_allclose(kin.sqrt_s_collider(6500.0, 6500.0), 13000.0, rtol=1e-14)
+    np.testing.assert_allclose(kin.sqrt_s_collider(27.5, 920.0), 2 * np.sqrt(27.5 * 920.0))
+    # massive beams at rest give s = (m1 + m2)^2 (PDG Review, "Kinematics")
+    np.testing.assert_allclose(kin.sqrt_s_collider(1.0, 2.0, 1.0, 2.0), 3.0)
+
+
+def test_lepton_masses_match_codata():
+    # Lepton masses of the particle package (PDG tables) against scipy.constants (CODATA);
+    # the two compilations agree to far better than 1e-6 relative.
+    for pdgid, key in [(11, "electron mass energy equivalent in MeV"),
+                       (13, "muon mass energy equivalent in MeV"),
+                       (15, "tau mass energy equivalent in MeV")]:
+        codata = physical_constants[key][0]
+        pdg = Particle.from_pdgid(pdgid).mass
+        tol = 1e-4 if pdgid == 15 else 1e-6
+        assert abs(pdg - codata) / codata < tol, (pdgid, pdg, codata)
+
+
+def test_two_body_momentum():
+    # Z -> mu mu: p* = (M/2) sqrt(1 - 4 m^2/M^2) (PDG Review, "Kinematics", two-body decays);
+    # masses from the particle package.
+    mz = Particle.from_pdgid(23).mass / 1000
+    mmu = Particle.from_pdgid(13).mass / 1000
+    np.testing.assert_allclose(kin.two_body_momentum(mz, mmu, mmu),
+                               mz / 2 * np.sqrt(1 - 4 * mmu**2 / mz**2), rtol=1e-13)
+    # pi+ -> mu+ nu: p* = (m_pi^2 - m_mu^2) / (2 m_pi) ~ 29.79 MeV (from memory)
+    mpi = Particle.from_pdgid(211).mass
+    p = kin.two_body_momentum(mpi, Particle.from_pdgid(13).mass, 0.0)
+    np.testing.assert_allclose(p, (mpi**2 - 105.6583755**2) / (2 * mpi), rtol=1e-6)
+    assert 29.7 < float(p) < 29.9
+    assert np.isnan(kin.two_body_momentum(1.0, 0.6, 0.6))
+
+
+def test_rapidity_pseudorapidity_angles():
+    # For massless objects y = eta (PDG Review, "Kinematics").
+    px, py, pz, e = kin.to_cartesian([10.0, 20.0], [0.5, -2.0], [0.1, 3.0], [0.0, 0.0])
+    np.testing.assert_allclose(kin.rapidity(e, pz), [0.5, -2.0], rtol=1e-12)
+    np.testing.assert_allclose(kin.pseudorapidity(px, py, pz), [0.5, -2.0], rtol=1e-12)
+    # Delta phi wraps into [-pi, pi) (common practice)
+    np.testing.assert_allclose(kin.delta_phi(3.0, -3.0), 6.0 - 2 * np.pi)
+    np.testing.assert_allclose(kin.delta_phi(-3.0, 3.0), 2 * np.pi - 6.0)
+    np.testing.assert_allclose(kin.delta_r(0.0, 3.0, 0.3, -3.0), np.hypot(0.3, 2 * np.pi - 6.0))
+    # Transverse mass of back-to-back pT = 40 GeV objects: 2 pT = 80 (common practice: Jacobian
+    # edge at the parent mass).
+    np.testing.assert_allclose(kin.transverse_mass(40.0, 0.0, 40.0, np.pi), 80.0)
+
+
+def test_negative_mass_squared_policy():
+    # Rounding-level negative m^2 -> 0; genuinely negative -> NaN with one DataWarning.
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert kin.invariant_mass(100.0, 0.0, 0.0, 100.0 * (1 + 1e-15)) == 0.0
+    with pytest.warns(DataWarning, match="2 of 3 four-vectors"):
+        m = kin.invariant_mass([10.0, 10.0, 10.0], [0.0, 0.0, 0.0], [0.0, 0.0, 0.0],
+                               [11.0, 12.0, 6.0])
+    assert np.isnan(m[0]) and np.isnan(m[1]) and m[2] == pytest.approx(8.0)
+
+
+def test_cartesian_round_trip():
+    rng = np.random.default_rng(1)
+    pt, eta, phi, m = rng.uniform(1, 100, 50), rng.uniform(-3, 3, 50), rng.uniform(-3, 3, 50), \
+        rng.uniform(0, 10, 50)
+    back = kin.from_cartesian(*kin.to_cartesian(pt, eta, phi, m)[:3], kin.to_cartesian(pt, eta, phi, m)[3])
+    for a, b in zip(back, (pt, eta, phi, m)):
+        np.testing.assert_allclose(a, b, rtol=1e-8, atol=1e-7)
