@@ -1,0 +1,196 @@
+"""Matching a fitted peak to known particles (PDG tables via the ``particle`` package).
+
+Use :func:`match_known` when you have a peak mass (and its uncertainty) and want to know
+which known states could sit there.  It returns :class:`KnownMatch` records, nearest first;
+an empty list means "no known particle matches".
+
+What counts as a match
+----------------------
+A known particle of mass :math:`M \\pm \\delta M` and natural width :math:`\\Gamma` matches a
+peak at :math:`m` with fit error :math:`\\sigma_{fit}` and detector resolution
+:math:`\\sigma_{res}` when
+
+.. math::
+
+    d = \\frac{|m - M|}{\\sqrt{\\sigma_{fit}^2 + \\sigma_{res}^2 + (\\Gamma/2)^2 + \\delta M^2}}
+    \\le n_\\sigma \\quad (\\text{default } 3),
+
+and its electric charge fits the pair: a neutral state for an opposite-charge pair, charge
+:math:`\\pm 2` for a same-sign pair, any charge when the pair charge is not known.  The natural
+width enters as the half width at half maximum, :math:`\\Gamma/2`, the Breit-Wigner's
+counterpart of a standard deviation (the Breit-Wigner has no finite variance; common practice).
+
+Entries the tables list but which are not observable resonances are skipped: nuclei, quarks and
+diquarks, generator-specific and technicolour codes, states without a measured mass, and
+states the tables mark as "further states" or not in the particle data tables.  A particle and
+its antiparticle appear once (the particle, positive PDG id).
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import asdict, dataclass
+from typing import Any
+
+__all__ = ["KnownMatch", "lookup", "match_known", "pair_charge"]
+
+
+@dataclass(frozen=True)
+class KnownMatch:
+    """One known particle near a peak.
+
+    Attributes
+    ----------
+    name : str
+        Name in the particle-data tables (e.g. ``"Z0"``).
+    pdgid : int
+        Particle-data-group Monte Carlo code.
+    mass, mass_error : float
+        Tabulated mass and its (symmetrised) uncertainty, GeV.
+    width : float
+        Tabulated natural width, GeV (0 when the tables give none).
+    charge : float
+        Electric charge in units of the elementary charge.
+    distance_sigma : float
+        :math:`|m - M|` in units of the combined standard deviation (see module guide).
+    """
+
+    name: str
+    pdgid: int
+    mass: float
+    mass_error: float
+    width: float
+    charge: float
+    distance_sigma: float
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass(frozen=True)
+class _Entry:
+    name: str
+    pdgid: int
+    mass: float
+    mass_error: float
+    width: float
+    charge: float
+
+
+def _keep(p: Any) -> bool:
+    from particle.particle.enums import Status
+
+    pid = p.pdgid
+    if p.mass is None or not pid.is_valid:
+        return False
+    if pid.is_nucleus or pid.is_quark or pid.is_diquark:
+        return False
+    if pid.is_generator_specific or pid.is_technicolor:
+        return False
+    return p.status not in (Status.Further, Status.NotInPDT)
+
+
+@functools.lru_cache(maxsize=1)
+def _table() -> tuple[_Entry, ...]:
+    from particle import Particle
+
+    seen: set[int] = set()
+    out: list[_Entry] = []
+    for p in sorted(Particle.all(), key=lambda q: (abs(int(q.pdgid)), -int(q.pdgid))):
+        if not _keep(p):
+            continue
+        key = abs(int(p.pdgid))
+        if key in seen:  # the antiparticle of one already listed
+            continue
+        seen.add(key)
+        up = p.mass_upper if p.mass_upper is not None else 0.0
+        lo = p.mass_lower if p.mass_lower is not None else up
+        out.append(
+            _Entry(
+                name=str(p.name),
+                pdgid=int(p.pdgid),
+                mass=float(p.mass) / 1000.0,  # the tables use MeV
+                mass_error=0.5 * (float(up) + float(lo)) / 1000.0,
+                width=(float(p.width) / 1000.0) if p.width is not None else 0.0,
+                charge=float(p.charge) if p.charge is not None else 0.0,
+            )
+        )
+    return tuple(out)
+
+
+def lookup(name: str) -> KnownMatch:
+    """Return the table entry of a particle by its table name (e.g. ``"Z0"``), distance 0.
+
+    Raises
+    ------
+    peaksift.errors.ConfigError
+        When no particle of that name exists; the message suggests the closest name.
+    """
+    from .errors import ConfigError, closest
+
+    for e in _table():
+        if e.name == name:
+            return KnownMatch(e.name, e.pdgid, e.mass, e.mass_error, e.width, e.charge, 0.0)
+    names = [e.name for e in _table()]
+    hint = closest(name, names)
+    raise ConfigError(
+        f"no known particle named {name!r} in the particle-data tables"
+        + (f"; did you mean {hint!r}?" if hint else "; use the tables' name, e.g. 'Z0' or 'J/psi(1S)'")
+    )
+
+
+def pair_charge(charge_rule: str | None) -> int | None:
+    """Charge of a pair from the pairing rule: ``"opposite"`` -> 0, ``"same"`` -> 2, else None."""
+    if charge_rule == "opposite":
+        return 0
+    if charge_rule == "same":
+        return 2
+    return None
+
+
+def match_known(
+    mass: float,
+    *,
+    error: float = 0.0,
+    resolution: float = 0.0,
+    charge: int | None = 0,
+    n_sigma: float = 3.0,
+) -> list[KnownMatch]:
+    """Known particles compatible with a peak at ``mass`` GeV, nearest first.
+
+    Parameters
+    ----------
+    mass : float
+        Peak mass in GeV.
+    error : float
+        Fit uncertainty of the peak mass, GeV.
+    resolution : float
+        Detector mass resolution at the peak (Gaussian sigma), GeV.
+    charge : int or None
+        Total charge of the pair: 0 for opposite-charge pairs, 2 (matched as ``|q| = 2``) for
+        same-sign pairs, None for any charge.
+    n_sigma : float
+        Matching distance in combined standard deviations (module guide).
+
+    Returns
+    -------
+    list of KnownMatch
+        Sorted by ``distance_sigma``; empty when nothing matches.
+    """
+    m = float(mass)
+    if not math.isfinite(m) or m <= 0:
+        return []
+    out: list[KnownMatch] = []
+    base = float(error) ** 2 + float(resolution) ** 2
+    for e in _table():
+        if charge is not None and abs(abs(e.charge) - abs(charge)) > 1e-9:
+            continue
+        s2 = base + (0.5 * e.width) ** 2 + e.mass_error**2
+        if s2 <= 0:
+            continue
+        d = abs(m - e.mass) / math.sqrt(s2)
+        if d <= n_sigma:
+            out.append(KnownMatch(e.name, e.pdgid, e.mass, e.mass_error, e.width, e.charge, d))
+    out.sort(key=lambda k: (k.distance_sigma, k.pdgid))
+    return out

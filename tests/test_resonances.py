@@ -1,0 +1,99 @@
+"""Known-particle matching against the particle-data tables (source: the `particle` package)."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+
+from peaksift.errors import ConfigError
+from peaksift.resonances import lookup, match_known, pair_charge
+
+particle = pytest.importorskip("particle")
+Particle = particle.Particle
+
+
+def _z():
+    return Particle.from_pdgid(23)  # particle package: Z0
+
+
+def test_z_found_near_its_table_mass():
+    z = _z()
+    m_z = z.mass / 1000.0  # particle package, MeV -> GeV
+    matches = match_known(91.19, error=0.05, resolution=2.0, charge=0)
+    assert matches, "the Z must match a peak at 91.19 GeV"
+    assert matches[0].name == z.name == "Z0"
+    assert matches[0].mass == pytest.approx(m_z, rel=1e-12)
+    assert matches[0].width == pytest.approx(z.width / 1000.0, rel=1e-12)
+
+
+def test_distance_combines_errors_in_quadrature():
+    z = _z()
+    m_z, gamma = z.mass / 1000.0, z.width / 1000.0
+    dm = 0.5 * (z.mass_upper + z.mass_lower) / 1000.0
+    err, res = 0.4, 1.8
+    sigma = math.sqrt(err**2 + res**2 + (gamma / 2) ** 2 + dm**2)  # module guide formula
+    peak = m_z + 2.5 * sigma
+    (first, *_) = match_known(peak, error=err, resolution=res, charge=0)
+    assert first.name == "Z0"
+    assert first.distance_sigma == pytest.approx(2.5, rel=1e-9)
+    # just beyond 3 combined sigma the Z no longer matches
+    far = match_known(m_z + 3.01 * sigma, error=err, resolution=res, charge=0)
+    assert "Z0" not in [k.name for k in far]
+
+
+def test_nothing_where_no_neutral_state_exists():
+    # Independent look at the tables: no neutral, non-nucleus, non-quark entry lies in 150-170 GeV
+    # (particle package; the Higgs is at 125 GeV, the top quark is a quark).
+    near = [
+        p for p in Particle.all()
+        if p.mass is not None and 150_000 < p.mass < 170_000 and p.charge == 0
+        and not p.pdgid.is_nucleus and not p.pdgid.is_quark
+    ]
+    assert near == []
+    assert match_known(160.0, error=0.3, resolution=1.6, charge=0) == []
+
+
+def test_charge_must_fit_the_pair():
+    # Delta(1232)++ (particle package, PDG id 2224) is doubly charged: a same-sign pair can be
+    # one, an opposite-charge pair cannot.
+    delta = Particle.from_pdgid(2224)
+    m = delta.mass / 1000.0
+    same = [k.name for k in match_known(m, error=0.001, resolution=0.001, charge=pair_charge("same"))]
+    opp = [k.name for k in match_known(m, error=0.001, resolution=0.001, charge=0)]
+    assert delta.name in same
+    assert delta.name not in opp
+    assert all(abs(k.charge) == 2 for k in match_known(m, error=0.001, charge=2))
+    assert all(k.charge == 0 for k in match_known(m, error=0.001, charge=0))
+
+
+def test_sorted_nearest_first_without_antiparticle_duplicates():
+    b0 = Particle.from_pdgid(511)  # particle package: B0, its antiparticle is -511
+    out = match_known(b0.mass / 1000.0, error=0.02, resolution=0.05, charge=0)
+    d = [k.distance_sigma for k in out]
+    assert d == sorted(d)
+    ids = [abs(k.pdgid) for k in out]
+    assert len(ids) == len(set(ids))
+    assert 511 in [k.pdgid for k in out]
+    assert -511 not in [k.pdgid for k in out]
+
+
+def test_table_oddities_skipped():
+    # a huge error sweeps a wide range: still no nuclei, quarks or mass-less entries
+    out = match_known(91.19, error=10.0, resolution=0.0, charge=None)
+    assert out and all(k.mass > 0 for k in out)
+    for k in out:
+        pid = particle.PDGID(k.pdgid)
+        assert not pid.is_nucleus and not pid.is_quark and not pid.is_diquark
+
+
+def test_pair_charge_rules():
+    assert pair_charge("opposite") == 0
+    assert pair_charge("same") == 2
+    assert pair_charge("any") is None
+
+
+def test_lookup_by_name_and_suggestion():
+    assert lookup("Z0").pdgid == 23
+    with pytest.raises(ConfigError, match="did you mean 'Z0'"):
+        lookup("Z")
