@@ -1,0 +1,306 @@
+"""The common vocabulary of every shape: :class:`Parameter` and :class:`Shape`.
+
+A shape is a density in the invariant mass ``x`` normalised on a fit window
+``(lo, hi)``.  Every shape answers the same questions, the way every
+``scipy.stats`` distribution answers ``pdf``/``cdf``:
+
+* ``name`` (short lowercase registry name), ``kind`` (``"signal"`` / ``"background"``);
+* ``parameters``: a tuple of :class:`Parameter` (name, start, lower, upper, unit);
+  ``parameters_for(window)`` gives the same with window-dependent starts/bounds filled in;
+* ``pdf(x, params, window)``, ``cdf(x, params, window)``, ``bin_fractions(edges, params, window)``;
+* ``grad_pdf`` and ``grad_bin_fractions``: derivatives with respect to each parameter
+  (analytic where the shape provides them, central finite differences otherwise).
+
+``params`` is a sequence of values in ``parameters`` order.  Each value may be a
+numpy array that broadcasts against ``x``: e.g. parameters of shape ``(ntoys, 1)``
+against ``edges`` of shape ``(nedges,)`` give ``bin_fractions`` of shape
+``(ntoys, nbins)`` (bins always run along the last axis).
+
+Writing a shape: subclass :class:`Shape`, declare ``name``, ``kind``, ``parameters``,
+implement ``_density(x, p, window)`` (unnormalised, vectorised) and, if there is one,
+``_primitive(x, p, window)`` (any antiderivative of ``_density``).  Without a
+primitive the base class integrates numerically: Gauss-Legendre with 10 nodes on
+panels chosen by ``_panels`` (uniform by default, denser at a peak for signals),
+cached per parameter set and window; accurate to better than 1e-10 relative for
+the shapes shipped here (checked against ``scipy.integrate.quad`` in the tests).
+"""
+
+from __future__ import annotations
+
+import math
+from collections import OrderedDict
+from collections.abc import Sequence
+from dataclasses import dataclass, replace
+from typing import Any
+
+import numpy as np
+
+from ..errors import FitError
+
+__all__ = ["Parameter", "Shape"]
+
+_GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(10)
+_CACHE_SIZE = 256
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """One shape parameter.
+
+    Attributes
+    ----------
+    name : str
+        Name used in fit results, ``start=``/``fixed=``/``constraints=`` dictionaries.
+    start : float
+        Default starting value (NaN when it depends on the window; see
+        :meth:`Shape.parameters_for`).
+    lower, upper : float
+        Bounds (``-inf``/``inf`` for none).
+    unit : str
+        Unit of the value (``"GeV"``, ``"1/GeV"``, ``""``).
+    """
+
+    name: str
+    start: float
+    lower: float = -math.inf
+    upper: float = math.inf
+    unit: str = ""
+
+
+def _as_window(window: Any) -> tuple[float, float]:
+    try:
+        lo, hi = (float(window[0]), float(window[1]))
+    except (TypeError, IndexError, ValueError):
+        raise FitError(f"window must be a pair (lo, hi) of numbers, got {window!r}") from None
+    if not (math.isfinite(lo) and math.isfinite(hi) and hi > lo):
+        raise FitError(f"window must be finite with hi > lo, got ({lo!r}, {hi!r}); "
+                       "pass e.g. window=(70, 110)")
+    return lo, hi
+
+
+class Shape:
+    """Base class of all shapes (see the module guide).
+
+    Parameters
+    ----------
+    **options
+        Parameter names set default starting values (``mass=91.0``); other options are
+        shape-specific (``order=``, ``degree=``, ``sqrt_s=``, ``npar=``).
+    """
+
+    name: str = ""
+    kind: str = ""
+    parameters: tuple[Parameter, ...] = ()
+
+    def __init__(self, **options: Any) -> None:
+        self._cache: OrderedDict[tuple, tuple[np.ndarray, np.ndarray]] = OrderedDict()
+        names = [p.name for p in self.parameters]
+        pars = list(self.parameters)
+        for key, value in options.items():
+            if key not in names:
+                raise FitError(
+                    f"shape {self.name!r} has no parameter or option {key!r}; "
+                    f"parameters are {', '.join(names)}"
+                )
+            i = names.index(key)
+            pars[i] = replace(pars[i], start=float(value))
+        self.parameters = tuple(pars)
+
+    # ------------------------------------------------------------ description
+    @property
+    def parameter_names(self) -> tuple[str, ...]:
+        return tuple(p.name for p in self.parameters)
+
+    def parameters_for(self, window: tuple[float, float]) -> tuple[Parameter, ...]:
+        """Parameters with starts and bounds made concrete for ``window``."""
+        return self.parameters
+
+    def __repr__(self) -> str:
+        pars = ", ".join(p.name for p in self.parameters)
+        return f"<{self.kind} shape {self.name!r} ({pars})>"
+
+    # --------------------------------------------------------------- to write
+    def _density(self, x: np.ndarray, p: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
+        raise NotImplementedError
+
+    def _primitive(self, x: np.ndarray, p: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
+        """Antiderivative of ``_density``; shapes without one leave this out."""
+        raise NotImplementedError
+
+    _has_primitive = True  # set False in shapes that integrate numerically
+
+    def _panels(self, p: Sequence[float], window: tuple[float, float]) -> np.ndarray:
+        """Panel edges for numerical integration (uniform; signals refine at the peak)."""
+        lo, hi = window
+        return np.linspace(lo, hi, 129)
+
+    # analytic derivatives (optional): lists with one array per parameter
+    _density_grad = None
+    _primitive_grad = None
+
+    # ------------------------------------------------------------- numerics
+    def _table(self, p: tuple[float, ...], window: tuple[float, float]):
+        key = (p, window)
+        hit = self._cache.get(key)
+        if hit is not None:
+            self._cache.move_to_end(key)
+            return hit
+        e = self._panels(p, window)
+        a, b = e[:-1], e[1:]
+        half = 0.5 * (b - a)
+        nodes = (0.5 * (a + b))[:, None] + half[:, None] * _GL_NODES[None, :]
+        f = self._density(nodes, p, window)
+        panel = half * (f @ _GL_WEIGHTS)
+        cum = np.concatenate([[0.0], np.cumsum(panel)])
+        self._cache[key] = (e, cum)
+        if len(self._cache) > _CACHE_SIZE:
+            self._cache.popitem(last=False)
+        return e, cum
+
+    def _numeric_primitive_scalar(self, x: np.ndarray, p: tuple[float, ...],
+                                  window: tuple[float, float]) -> np.ndarray:
+        e, cum = self._table(p, window)
+        x = np.clip(x, e[0], e[-1])
+        k = np.clip(np.searchsorted(e, x, side="right") - 1, 0, e.size - 2)
+        a = e[k]
+        half = 0.5 * (x - a)
+        nodes = (0.5 * (x + a))[..., None] + half[..., None] * _GL_NODES
+        f = self._density(nodes, p, window)
+        return cum[k] + half * (f @ _GL_WEIGHTS)
+
+    def _prim(self, x: np.ndarray, p: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
+        if self._has_primitive:
+            return self._primitive(x, p, window)
+        return _by_parameter_set(self._numeric_primitive_scalar, x, p, window)
+
+    @staticmethod
+    def _params(params: Sequence[Any], n: int, name: str) -> list[Any]:
+        if len(params) != n:
+            raise FitError(f"shape {name!r} takes {n} parameters, got {len(params)}")
+        return [v if np.ndim(v) else float(v) for v in params]
+
+    # ------------------------------------------------------------- interface
+    def pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
+        """Density normalised on ``window`` (zero outside it)."""
+        lo, hi = _as_window(window)
+        p = self._params(params, len(self.parameters), self.name)
+        x = np.asarray(x, dtype=float)
+        edges = np.array([lo, hi])
+        z = self._norm(edges, p, (lo, hi))
+        inside = (x >= lo) & (x <= hi)
+        return np.where(inside, self._density(x, p, (lo, hi)) / z, 0.0)
+
+    def _norm(self, edges: np.ndarray, p: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
+        """Integral of ``_density`` over the window (broadcasts over parameter arrays)."""
+        return self._prim(np.array(window[1]), p, window) - self._prim(np.array(window[0]), p, window)
+
+    def cdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
+        """Cumulative distribution on ``window``: 0 at ``lo``, 1 at ``hi``."""
+        lo, hi = _as_window(window)
+        p = self._params(params, len(self.parameters), self.name)
+        x = np.clip(np.asarray(x, dtype=float), lo, hi)
+        plo = self._prim(np.array(lo), p, (lo, hi))
+        phi = self._prim(np.array(hi), p, (lo, hi))
+        return (self._prim(x, p, (lo, hi)) - plo) / (phi - plo)
+
+    def bin_fractions(self, edges: Any, params: Sequence[Any],
+                      window: tuple[float, float]) -> np.ndarray:
+        """Fraction of the shape in each bin ``[edges[i], edges[i+1]]`` (last axis)."""
+        return np.diff(self.cdf(edges, params, window), axis=-1)
+
+    def grad_pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
+        """Derivatives of :meth:`pdf` with respect to each parameter, stacked on axis 0."""
+        lo, hi = _as_window(window)
+        p = self._params(params, len(self.parameters), self.name)
+        x = np.asarray(x, dtype=float)
+        if self._density_grad is not None and self._primitive_grad is not None:
+            w = (lo, hi)
+            e = np.array([lo, hi])
+            pr = self._prim(e, p, w) if all(np.ndim(v) == 0 for v in p) else None
+            if pr is not None:
+                z = pr[1] - pr[0]
+                gz = [g[1] - g[0] for g in self._primitive_grad(e, p, w)]
+                d = self._density(x, p, w)
+                gd = self._density_grad(x, p, w)
+                inside = (x >= lo) & (x <= hi)
+                out = [np.where(inside, gdi / z - d * gzi / z**2, 0.0) for gdi, gzi in zip(gd, gz)]
+                return np.array(out)
+        return _finite_difference(lambda q: self.pdf(x, q, window), p, self.parameters)
+
+    def grad_bin_fractions(self, edges: Any, params: Sequence[Any],
+                           window: tuple[float, float]) -> np.ndarray:
+        """Derivatives of :meth:`bin_fractions` w.r.t. each parameter, stacked on axis 0.
+
+        Analytic for shapes with an analytic primitive gradient (gaussian, exponential of
+        order 1, bernstein, powerlaw); central finite differences otherwise.
+        """
+        lo, hi = _as_window(window)
+        p = self._params(params, len(self.parameters), self.name)
+        edges = np.asarray(edges, dtype=float)
+        if self._primitive_grad is not None:
+            w = (lo, hi)
+            x = np.clip(edges, lo, hi)
+            plo, phi = self._prim(np.array(lo), p, w), self._prim(np.array(hi), p, w)
+            px = self._prim(x, p, w)
+            glo = self._primitive_grad(np.array(lo), p, w)
+            ghi = self._primitive_grad(np.array(hi), p, w)
+            gx = self._primitive_grad(x, p, w)
+            z = phi - plo
+            out = []
+            for a, b, c in zip(glo, ghi, gx):
+                gc = (c - a) / z - (px - plo) * (b - a) / z**2
+                out.append(np.diff(gc, axis=-1))
+            return np.array(np.broadcast_arrays(*out))
+        return _finite_difference(lambda q: self.bin_fractions(edges, q, window), p,
+                                  self.parameters)
+
+    # ----------------------------------------------------- peak description
+    def location(self, params: Sequence[Any]) -> float:
+        """Peak location (signal shapes: the ``mass`` parameter)."""
+        names = self.parameter_names
+        if "mass" in names:
+            return float(params[names.index("mass")])
+        raise FitError(f"shape {self.name!r} has no location")
+
+    def fwhm(self, params: Sequence[Any]) -> float:
+        """Full width at half maximum (signal shapes)."""
+        raise FitError(f"shape {self.name!r} does not define a FWHM")
+
+    def width_parameters(self) -> tuple[str, ...]:
+        """Names of the width-like parameters (``sigma``, ``width``) this shape has."""
+        return tuple(n for n in ("width", "sigma") if n in self.parameter_names)
+
+
+def _finite_difference(func, p: Sequence[Any], pars: Sequence[Parameter]) -> np.ndarray:
+    out = []
+    for i, par in enumerate(pars):
+        v = np.asarray(p[i], dtype=float)
+        h = 1e-5 * np.maximum(np.abs(v), 1e-2)
+        up = v + h
+        dn = v - h
+        # stay inside the bounds: one-sided difference at a bound
+        up = np.where(up > par.upper, v, up)
+        dn = np.where(dn < par.lower, v, dn)
+        q1 = list(p)
+        q2 = list(p)
+        q1[i] = up if np.ndim(up) else float(up)
+        q2[i] = dn if np.ndim(dn) else float(dn)
+        out.append((func(q1) - func(q2)) / (up - dn))
+    return np.array(np.broadcast_arrays(*out))
+
+
+def _by_parameter_set(func, x: np.ndarray, p: Sequence[Any], window: tuple[float, float]):
+    """Evaluate ``func(x, scalar_params, window)`` for broadcast parameter arrays."""
+    if all(np.ndim(v) == 0 for v in p):
+        return func(np.asarray(x, dtype=float), tuple(float(v) for v in p), window)
+    arrays = np.broadcast_arrays(np.asarray(x, dtype=float), *[np.asarray(v, float) for v in p])
+    xb = arrays[0]
+    stack = np.stack([a.ravel() for a in arrays[1:]], axis=1)
+    uniq, inverse = np.unique(stack, axis=0, return_inverse=True)
+    inverse = inverse.ravel()
+    out = np.empty(xb.size)
+    xr = xb.ravel()
+    for j, row in enumerate(uniq):
+        sel = inverse == j
+        out[sel] = func(xr[sel], tuple(float(v) for v in row), window)
+    return out.reshape(xb.shape)

@@ -1,0 +1,302 @@
+"""Background shapes: smooth, falling (or turning-on) densities on the fit window.
+
+Which to use
+------------
+* ``exppoly`` (``order=1..3``; ``exponential`` is order 1) -- exp(b1 t + b2 t^2 + b3 t^3)
+  with t in [-1, 1] across the window: the first choice for a falling spectrum.
+* ``bernstein`` (``degree=n``) -- non-negative polynomial of any shape on the window.
+* ``powerlaw``  -- x^-power: steeply falling spectra over a wide range.
+* ``dijet``     -- p0 (1-x)^p1 / x^(p2 + p3 ln x), x = m / sqrt_s (``npar=2..4``):
+  the smoothly falling family of published dijet resonance searches
+  (e.g. Phys. Rev. D 79 (2009) 112002).
+* ``turnon``    -- a Gaussian-CDF trigger turn-on times an exponential fall.
+
+Background parameter names never collide with signal names: ``b1..b3`` (exppoly),
+``c1..cn`` (bernstein), ``power``, ``p1..p3`` (dijet), ``threshold``/``resolution``/``slope``
+(turnon).  The overall normalisation (p0 and friends) is the fit's ``background_yield``.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+from scipy import special
+
+from ..errors import FitError
+from ._base import Parameter, Shape
+
+__all__ = ["Bernstein", "Dijet", "ExpPoly", "Exponential", "PowerLaw", "TurnOn"]
+
+
+def _t(x, window):
+    lo, hi = window
+    return (x - 0.5 * (lo + hi)) / (0.5 * (hi - lo))
+
+
+class _Background(Shape):
+    kind = "background"
+
+
+class ExpPoly(_Background):
+    r"""Exponential of a polynomial on the window-scaled variable
+    :math:`t = (x - c)/h \in [-1, 1]` (c, h: window centre and half-width):
+
+    .. math:: f(x) \propto \exp\left(\sum_{j=1}^{k} b_j t^j\right)
+
+    ``order`` k = 1, 2 or 3; parameters ``b1..bk`` (dimensionless, because t is; for
+    order 1 the slope in 1/GeV is b1/h).  Order 1 has an analytic CDF and analytic
+    derivatives; orders 2-3 integrate numerically.
+    """
+
+    name = "exppoly"
+
+    def __init__(self, order: int = 1, **options: Any) -> None:
+        if order not in (1, 2, 3):
+            raise FitError(f"exppoly order must be 1, 2 or 3, got {order!r}")
+        self.order = int(order)
+        self.parameters = tuple(
+            Parameter(f"b{j}", -1.0 if j == 1 else 0.0, -60.0, 60.0) for j in range(1, order + 1)
+        )
+        self._has_primitive = self.order == 1
+        if self.order != 1:
+            self._primitive_grad = None
+            self._density_grad = None
+        super().__init__(**options)
+
+    def _density(self, x, p, window):
+        t = _t(x, window)
+        e = p[0] * t
+        if self.order >= 2:
+            e = e + p[1] * t * t
+        if self.order >= 3:
+            e = e + p[2] * t * t * t
+        return np.exp(e)
+
+    # order 1 only
+    def _primitive(self, x, p, window):
+        h = 0.5 * (window[1] - window[0])
+        t = _t(x, window) + 1.0  # antiderivative shifted to vanish at the window start
+        b = p[0]
+        return h * np.exp(-b) * t * special.exprel(b * t)
+
+    def _density_grad(self, x, p, window):
+        if self.order != 1:
+            raise NotImplementedError
+        t = _t(x, window)
+        return [t * np.exp(p[0] * t)]
+
+    def _primitive_grad(self, x, p, window):
+        # d/db of h * int_{-1}^{t} exp(b u) du = h * int_{-1}^{t} u exp(b u) du
+        h = 0.5 * (window[1] - window[0])
+        t = _t(x, window)
+        b = np.asarray(p[0], dtype=float)
+        small = np.abs(b) < 1e-3
+        bs = np.where(small, 1.0, b)
+        exact = ((t / bs - 1.0 / bs**2) * np.exp(bs * t)
+                 - (-1.0 / bs - 1.0 / bs**2) * np.exp(-bs))
+        series = 0.5 * (t * t - 1.0) + b * (t**3 + 1.0) / 3.0 + b * b * (t**4 - 1.0) / 8.0
+        return [h * np.where(small, series, exact)]
+
+    def __repr__(self) -> str:
+        return f"<background shape 'exppoly' order={self.order}>"
+
+
+class Exponential(ExpPoly):
+    """``exppoly`` of order 1: exp(b1 t), analytic CDF and derivatives."""
+
+    name = "exponential"
+
+    def __init__(self, **options: Any) -> None:
+        super().__init__(order=1, **options)
+
+
+class Bernstein(_Background):
+    r"""Bernstein polynomial of degree n on the window, non-negative by construction:
+
+    .. math:: f(x) \propto \sum_{i=0}^{n} \beta_i \binom{n}{i} u^i (1-u)^{n-i},
+              \quad u = \frac{x-lo}{hi-lo},\quad \beta_0 = 1,\ \beta_i = c_i^2
+
+    Parameters ``c1..cn`` (unbounded; their squares are the coefficients, so the
+    density can never go negative and no bound is ever hit).  Analytic CDF via
+    :math:`\int_0^u b_{i,n} = I_u(i+1, n-i+1)/(n+1)` (regularised incomplete beta,
+    ``scipy.special.betainc``) and analytic derivatives.
+    """
+
+    name = "bernstein"
+
+    def __init__(self, degree: int = 3, **options: Any) -> None:
+        if int(degree) != degree or not 1 <= degree <= 12:
+            raise FitError(f"bernstein degree must be an integer 1..12, got {degree!r}")
+        self.degree = int(degree)
+        self.parameters = tuple(Parameter(f"c{i}", 1.0) for i in range(1, self.degree + 1))
+        super().__init__(**options)
+
+    def _basis(self, x, window):
+        lo, hi = window
+        u = np.clip((x - lo) / (hi - lo), 0.0, 1.0)
+        n = self.degree
+        return [special.comb(n, i) * u**i * (1.0 - u) ** (n - i) for i in range(n + 1)]
+
+    def _ibasis(self, x, window):
+        lo, hi = window
+        u = np.clip((x - lo) / (hi - lo), 0.0, 1.0)
+        n = self.degree
+        return [(hi - lo) * special.betainc(i + 1, n - i + 1, u) / (n + 1) for i in range(n + 1)]
+
+    def _density(self, x, p, window):
+        b = self._basis(x, window)
+        out = b[0]
+        for i in range(1, self.degree + 1):
+            out = out + p[i - 1] ** 2 * b[i]
+        return out
+
+    def _primitive(self, x, p, window):
+        b = self._ibasis(x, window)
+        out = b[0]
+        for i in range(1, self.degree + 1):
+            out = out + p[i - 1] ** 2 * b[i]
+        return out
+
+    def _density_grad(self, x, p, window):
+        b = self._basis(x, window)
+        return [2.0 * p[i - 1] * b[i] for i in range(1, self.degree + 1)]
+
+    def _primitive_grad(self, x, p, window):
+        b = self._ibasis(x, window)
+        return [2.0 * p[i - 1] * b[i] for i in range(1, self.degree + 1)]
+
+    def __repr__(self) -> str:
+        return f"<background shape 'bernstein' degree={self.degree}>"
+
+
+class PowerLaw(_Background):
+    r"""Power law :math:`f(x) \propto x^{-k}` (parameter ``power`` = k, for x > 0).
+
+    Analytic CDF: :math:`\int (x/c)^{-k} dx = c\,\ln(x/c)\,\mathrm{exprel}((1-k)\ln(x/c))`
+    (c = window centre; ``scipy.special.exprel`` keeps k = 1 exact) and analytic
+    derivatives.
+    """
+
+    name = "powerlaw"
+    parameters = (Parameter("power", 3.0, -20.0, 60.0),)
+
+    def _density(self, x, p, window):
+        c = 0.5 * (window[0] + window[1])
+        return np.exp(-p[0] * np.log(np.maximum(x, 1e-300) / c))
+
+    def _primitive(self, x, p, window):
+        c = 0.5 * (window[0] + window[1])
+        lx = np.log(np.maximum(x, 1e-300) / c)
+        return c * lx * special.exprel((1.0 - p[0]) * lx)
+
+    def _density_grad(self, x, p, window):
+        c = 0.5 * (window[0] + window[1])
+        lx = np.log(np.maximum(x, 1e-300) / c)
+        return [-lx * np.exp(-p[0] * lx)]
+
+    def _primitive_grad(self, x, p, window):
+        # d/dk int_c^x (u/c)^-k du = -c int_0^{lx} v e^{(1-k) v} dv
+        c = 0.5 * (window[0] + window[1])
+        lx = np.log(np.maximum(x, 1e-300) / c)
+        a = 1.0 - np.asarray(p[0], dtype=float)
+        small = np.abs(a * lx) < 1e-3
+        asafe = np.where(np.abs(a) < 1e-12, 1e-12, a)
+        exact = (lx / asafe - 1.0 / asafe**2) * np.exp(asafe * lx) + 1.0 / asafe**2
+        series = 0.5 * lx * lx + a * lx**3 / 3.0 + a * a * lx**4 / 8.0
+        return [-c * np.where(small, series, exact)]
+
+
+
+class Dijet(_Background):
+    r"""The smoothly falling family of dijet searches (e.g. Phys. Rev. D 79 (2009) 112002):
+
+    .. math:: f(x) = p_0 \frac{(1-x)^{p_1}}{x^{p_2 + p_3 \ln x}}, \qquad x = m/\sqrt{s}
+
+    ``npar`` counts p0 as in the literature: 2 -> (p1), 3 -> (p1, p2), 4 -> (p1, p2, p3)
+    free shape parameters; p0 is the fit's ``background_yield``.  ``sqrt_s`` (GeV) must
+    exceed the window; by default it is twice the window's upper edge.  Numerical CDF.
+    """
+
+    name = "dijet"
+
+    def __init__(self, npar: int = 4, sqrt_s: float | None = None, **options: Any) -> None:
+        if npar not in (2, 3, 4):
+            raise FitError(f"dijet npar must be 2, 3 or 4 (p0 included), got {npar!r}")
+        self.npar = int(npar)
+        self.sqrt_s = None if sqrt_s is None else float(sqrt_s)
+        starts = {"p1": 5.0, "p2": 4.0, "p3": 0.0}
+        names = ["p1", "p2", "p3"][: self.npar - 1]
+        self.parameters = tuple(Parameter(n, starts[n], -50.0, 200.0 if n == "p1" else 50.0)
+                                for n in names)
+        super().__init__(**options)
+
+    _has_primitive = False
+
+    def _roots(self, window):
+        rs = self.sqrt_s if self.sqrt_s is not None else 2.0 * window[1]
+        if rs <= window[1]:
+            raise FitError(f"dijet sqrt_s={rs} must exceed the window's upper edge {window[1]}")
+        return rs
+
+    def _density(self, x, p, window):
+        rs = self._roots(window)
+        xc = 0.5 * (window[0] + window[1]) / rs
+        x = np.clip(x / rs, 1e-12, 1.0 - 1e-12)
+        lx, lxc = np.log(x), math.log(xc)
+        p1 = p[0]
+        p2 = p[1] if self.npar >= 3 else 0.0
+        p3 = p[2] if self.npar >= 4 else 0.0
+        e = (p1 * (np.log1p(-x) - math.log1p(-xc)) - p2 * (lx - lxc) - p3 * (lx * lx - lxc * lxc))
+        return np.exp(e)
+
+    def __repr__(self) -> str:
+        return f"<background shape 'dijet' npar={self.npar} sqrt_s={self.sqrt_s}>"
+
+
+class TurnOn(_Background):
+    r"""Trigger turn-on times an exponential fall:
+
+    .. math:: f(x) \propto \Phi\left(\frac{x - x_0}{r}\right) e^{-k (x - c)}
+
+    parameters ``threshold`` (x0, GeV), ``resolution`` (r, GeV) and ``slope`` (k, 1/GeV;
+    c = window centre).  Analytic CDF by parts, with
+    :math:`\int \phi((x-x_0)/r)\, e^{-kx} dx/r = e^{-k x_0 + k^2 r^2/2}\,\Phi((x-x_0)/r + k r)`:
+
+    .. math:: F(x) = \frac{1}{k}\left[e^{-k(x_0 - c) + k^2r^2/2}\,\Phi(u + kr)
+              - e^{-k(x-c)}\Phi(u)\right], \quad u = (x-x_0)/r
+    """
+
+    name = "turnon"
+    parameters = (
+        Parameter("threshold", math.nan, unit="GeV"),
+        Parameter("resolution", math.nan, unit="GeV"),
+        Parameter("slope", math.nan, 1e-6, math.inf, unit="1/GeV"),
+    )
+
+    def parameters_for(self, window):
+        """Threshold in the window (start at 15 %), resolution in [1e-3, 1] x window width
+        (start 5 %), slope in [1e-6, 100/width] (start 3/width)."""
+        lo, hi = window
+        w = hi - lo
+        d = {"threshold": (lo + 0.15 * w, lo - 0.5 * w, hi),
+             "resolution": (0.05 * w, 1e-3 * w, w),
+             "slope": (3.0 / w, 1e-6 / w, 100.0 / w)}
+        out = []
+        for p in self.parameters:
+            s, a, b = d[p.name]
+            out.append(Parameter(p.name, p.start if math.isfinite(p.start) else s, a, b, p.unit))
+        return tuple(out)
+
+    def _density(self, x, p, window):
+        t, r, k = p
+        c = 0.5 * (window[0] + window[1])
+        return special.ndtr((x - t) / r) * np.exp(-k * (x - c))
+
+    def _primitive(self, x, p, window):
+        t, r, k = p
+        c = 0.5 * (window[0] + window[1])
+        u = (x - t) / r
+        return (np.exp(-k * (t - c) + 0.5 * (k * r) ** 2) * special.ndtr(u + k * r)
+                - np.exp(-k * (x - c)) * special.ndtr(u)) / k
