@@ -655,19 +655,32 @@ def _section(name: str, raw: Any, where: str) -> dict[str, Any]:
     return out
 
 
-def _check_shape(path: str, name: str, where: str) -> None:
+def _check_shape(path: str, name: str, where: str, kind: str,
+                 options: Mapping[str, Any] | None = None) -> None:
+    """The shape must exist, be of the right kind, and accept its options."""
     try:
         from . import shapes
-        names = list(shapes.available())
+        table = shapes.available()
     except (ImportError, AttributeError):  # models layer absent: the fit itself reports it
         return
-    if names and name not in names:
+    names = [n for n, info in table.items() if info.get("kind") == kind]
+    if name not in names:
         hint = closest(name, names)
+        other = table.get(name, {}).get("kind")
+        what = f"is a {other} shape, not a {kind} shape" if other else f"is not a {kind} shape"
         raise ConfigError(
-            f"{where}: {path} = {name!r} is not a known shape"
+            f"{where}: {path} = {name!r} {what}"
             + (f"; did you mean {hint!r}?" if hint else "")
-            + f" (available: {', '.join(sorted(names))})"
+            + f" (available: {', '.join(names)})"
         )
+    if options:
+        from .errors import FitError
+
+        try:
+            shapes.get(name, **dict(options))
+        except (FitError, TypeError, ValueError) as exc:
+            raise ConfigError(f"{where}: {path}_options {dict(options)!r} not accepted by "
+                              f"{name!r}: {' '.join(str(exc).split())}") from None
 
 
 def _check_cut(path: str, text: str, where: str) -> None:
@@ -678,7 +691,7 @@ def _check_cut(path: str, text: str, where: str) -> None:
         from . import cuts
     except ImportError:  # pragma: no cover - candidates layer missing
         return
-    checker = getattr(cuts, "parse", None) or getattr(cuts, "compile_cut", None)
+    checker = getattr(cuts, "compile_cut", None)
     if checker is None:
         return
     try:
@@ -766,10 +779,11 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         raise ConfigError(f"{where}: scan.stop ({s1:g}) must be above scan.start ({s0:g})")
 
     md = vals["model"]
-    _check_shape("model.signal", md["signal"], where)
-    _check_shape("model.background", md["background"], where)
+    _check_shape("model.signal", md["signal"], where, "signal", md["signal_options"])
+    _check_shape("model.background", md["background"], where, "background",
+                 md["background_options"])
     if sc["signal"]:
-        _check_shape("scan.signal", sc["signal"], where)
+        _check_shape("scan.signal", sc["signal"], where, "signal")
 
     bl = vals["blinding"]
     if bl["enabled"]:
@@ -792,8 +806,10 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         if cal["window"] is None:
             raise ConfigError(f"{where}: calibration.window is required when "
                               "calibration.particle is set, e.g. window = [70.0, 110.0]")
-        _check_shape("calibration.signal", cal["signal"], where)
-        _check_shape("calibration.background", cal["background"], where)
+        _check_shape("calibration.signal", cal["signal"], where, "signal",
+                     cal["signal_options"])
+        _check_shape("calibration.background", cal["background"], where, "background",
+                     cal["background_options"])
 
     ex = vals["execution"]
     if ex["address"] and ex["engine"] != "dask":

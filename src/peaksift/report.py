@@ -1,0 +1,502 @@
+"""The search's written outputs: results.json, report.md and a self-contained report.html.
+
+Everything here works from the plain results dictionary (the content of ``results.json``,
+:meth:`peaksift.search.SearchResult.to_dict`) and a mapping of figure names to PNG files, so a
+report can be rebuilt from a results file without rerunning the search.
+
+* :func:`write_results_json` -- ``results.json``, written atomically (temporary name, rename).
+* :func:`render_markdown` / :func:`render_html` -- the meeting report as text; the HTML embeds
+  every figure as a base64 ``data:`` URI and needs no other file.
+* :func:`write_report` -- both reports into a directory, atomically.
+
+The report always carries the caution that a local significance is not a discovery, says how
+the look-elsewhere effect was treated, and defers to the analysis group's statistical
+procedures and review.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import os
+import tempfile
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+__all__ = [
+    "CAUTION",
+    "atomic_write",
+    "format_pm",
+    "render_html",
+    "render_markdown",
+    "write_report",
+    "write_results_json",
+]
+
+CAUTION = (
+    "A local significance is not a discovery. The numbers here come from one dataset and the "
+    "choices in its configuration; the analysis group's own statistical procedures and review "
+    "decide what, if anything, is claimed."
+)
+
+# figure name -> caption, in report order
+_CAPTIONS = {
+    "spectrum": "Selected mass spectrum with the signal-plus-background fit at the best mass "
+                "hypothesis, its signal component, and the pulls (data - fit) / error per bin.",
+    "spectrum_log": "The same spectrum on a logarithmic scale.",
+    "pvalue_scan": "Local p-value of the background-only hypothesis at each mass hypothesis, "
+                   "with the 1 to 5 sigma levels; the global significance of the largest "
+                   "excess is noted.",
+    "limits": "Upper limits at each mass hypothesis: observed, and the expected median with its "
+              "68% and 95% bands under the background-only hypothesis.",
+    "candidates": "Transverse momentum and rapidity of the candidates in the spectrum.",
+    "calibration": "Calibration fit of the standard-candle peak in its own window.",
+}
+
+
+# ------------------------------------------------------------------------------- writing
+def atomic_write(path: str | os.PathLike[str], data: bytes | str) -> Path:
+    """Write ``data`` to ``path`` through a temporary file in the same directory and rename.
+
+    A failure (or an interrupt) leaves either the old file or none, never half a file.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    raw = data.encode("utf-8") if isinstance(data, str) else data
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(raw)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+def _json_default(o: Any) -> Any:
+    try:
+        import numpy as np
+
+        if isinstance(o, np.integer):
+            return int(o)
+        if isinstance(o, np.floating):
+            return float(o)
+        if isinstance(o, np.bool_):
+            return bool(o)
+        if isinstance(o, np.ndarray):
+            return o.tolist()
+    except ImportError:  # pragma: no cover
+        pass
+    if isinstance(o, (Path, os.PathLike)):
+        return str(o)
+    if isinstance(o, (set, frozenset, tuple)):
+        return list(o)
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def _finite(o: Any) -> Any:
+    """Replace NaN and infinities by None (JSON has no such numbers)."""
+    if isinstance(o, float):
+        return o if math.isfinite(o) else None
+    if isinstance(o, Mapping):
+        return {k: _finite(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_finite(v) for v in o]
+    return o
+
+
+def write_results_json(results: Mapping[str, Any], path: str | os.PathLike[str]) -> Path:
+    """Write the results dictionary as indented JSON, atomically; NaN/inf become ``null``."""
+    plain = json.loads(json.dumps(results, default=_json_default))
+    text = json.dumps(_finite(plain), indent=2, allow_nan=False)
+    return atomic_write(path, text + "\n")
+
+
+# ---------------------------------------------------------------------------- formatting
+def _num(x: Any, digits: int = 4) -> str:
+    if x is None:
+        return "n/a"
+    if isinstance(x, bool):
+        return "yes" if x else "no"
+    if isinstance(x, int):
+        return f"{x:,}".replace(",", "\u2009")
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return str(x)
+    if not math.isfinite(v):
+        return "n/a"
+    if v != 0 and (abs(v) < 1e-3 or abs(v) >= 1e6):
+        return f"{v:.{max(digits - 1, 1)}e}"
+    return f"{v:.{digits}g}"
+
+
+def format_pm(value: Any, error: Any, unit: str = "") -> str:
+    """``value ± error`` with the error rounded to two significant digits (common practice)."""
+    u = f" {unit}" if unit else ""
+    if value is None:
+        return "n/a"
+    v = float(value)
+    if error is None or not math.isfinite(float(error)) or float(error) <= 0:
+        return f"{_num(v)}{u}"
+    e = float(error)
+    dec = max(0, 1 - math.floor(math.log10(e)))
+    return f"{v:.{dec}f} \u00b1 {e:.{dec}f}{u}"
+
+
+def _ve(d: Any) -> tuple[Any, Any]:
+    if isinstance(d, Mapping):
+        return d.get("value"), d.get("error")
+    return d, None
+
+
+def _p(p: Any) -> str:
+    if p is None:
+        return "n/a"
+    v = float(p)
+    return f"{v:.2e}" if v < 1e-3 else f"{v:.4f}"
+
+
+# ------------------------------------------------------------------------------ sections
+def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
+    best = r.get("best") or {}
+    fit = r.get("fit") or {}
+    rows = [
+        ("Best mass hypothesis", f"{_num(best.get('mass'), 5)} GeV"),
+        ("Local significance", (f"{_num(best.get('z_local'), 3)} \u03c3 "
+                               f"(p = {_p(best.get('p_local'))})")),
+        ("Global significance", (f"{_num(best.get('z_global'), 3)} \u03c3 "
+                                f"(p = {_p(best.get('p_global'))}, "
+                                f"{best.get('global_method', 'n/a')})")),
+        ("Fitted peak mass", format_pm(*_ve(fit.get("peak_mass")), "GeV")),
+        ("Fitted width", format_pm(*_ve(fit.get("width")), "GeV")),
+        ("Signal yield", format_pm(*_ve(fit.get("signal_yield")))),
+        ("Background yield (window)", format_pm(*_ve(fit.get("background_yield")))),
+    ]
+    gof = fit.get("gof") or {}
+    if gof:
+        rows.append(("Goodness of fit", (f"\u03c7\u00b2 = {_num(gof.get('chi2'))} for "
+                                        f"{gof.get('ndf', 'n/a')} degrees of freedom "
+                                        f"(p = {_p(gof.get('p_value'))})")))
+    rows.append(("Fit valid", "yes" if fit.get("valid") else "NO (see the fit section)"))
+    return rows
+
+
+def _lee_sentence(r: Mapping[str, Any]) -> str:
+    best = r.get("best") or {}
+    scan = r.get("scan") or {}
+    masses = scan.get("mass") or []
+    method = best.get("global_method") or "n/a"
+    rng = (f" over the scanned range {_num(min(masses), 5)}-{_num(max(masses), 5)} GeV "
+           f"({len(masses)} hypotheses)") if masses else ""
+    toys = best.get("toys")
+    how = {
+        "upcrossings": "from upcrossings of the q0 scan (Gross and Vitells 2010)",
+        "toys": "from background-only toys of the whole scan",
+    }
+    desc = next((v for k, v in how.items() if str(method).startswith(k)), f"by '{method}'")
+    toy_txt = f", {toys} toys" if toys else ""
+    return (f"The look-elsewhere effect is included in the global significance, estimated "
+            f"{desc}{rng}{toy_txt}. The local significance does not include it.")
+
+
+def _cutflow_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
+    cf = (r.get("input") or {}).get("cutflow") or {}
+    return [(str(k).replace("_", " "), _num(v)) for k, v in cf.items()]
+
+
+def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
+    c = r.get("calibration")
+    if not c:
+        return None
+    fm, fe = _ve(c.get("fitted_mass"))
+    rows = [
+        ("Particle (tables)", (f"{c.get('particle')} : {_num(c.get('table_mass'), 6)} GeV, "
+                              f"width {_num(c.get('table_width'), 4)} GeV")),
+        ("Fitted mass", format_pm(fm, fe, "GeV")),
+        ("Fitted resolution", format_pm(*_ve(c.get("fitted_resolution")), "GeV")),
+        ("Shift (fit - tables)", (f"{_num(c.get('shift'), 3)} GeV = "
+                                 f"{_num(c.get('shift_relative_permille'), 3)} \u2030, "
+                                 f"{_num(c.get('shift_sigma'), 3)} \u03c3")),
+        ("Fit valid", "yes" if c.get("valid") else "NO"),
+    ]
+    return rows
+
+
+def _limit_rows(r: Mapping[str, Any], max_rows: int = 12) -> tuple[list[str], list[list[str]]]:
+    lim = r.get("limits") or {}
+    m = lim.get("mass") or []
+    if not m:
+        return [], []
+    idx = list(range(len(m)))
+    if len(idx) > max_rows:
+        step = (len(idx) - 1) / (max_rows - 1)
+        idx = sorted({round(i * step) for i in range(max_rows)})
+    unit = lim.get("unit", "events")
+    head = ["mass [GeV]", f"observed [{unit}]", f"expected [{unit}]", "expected -1\u03c3",
+            "expected +1\u03c3"]
+    rows = []
+    for i in idx:
+        def g(k: str, i: int = i) -> str:
+            v = lim.get(k) or []
+            return _num(v[i], 3) if i < len(v) else "n/a"
+        rows.append([_num(m[i], 5), g("observed"), g("expected"), g("expected_minus1"),
+                     g("expected_plus1")])
+    return head, rows
+
+
+def _provenance_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
+    pv = r.get("provenance") or {}
+    rows = [
+        ("peaksift", str(r.get("peaksift_version", "n/a"))),
+        ("Started (UTC)", str(pv.get("started", "n/a"))),
+        ("Finished (UTC)", str(pv.get("finished", "n/a"))),
+        ("Config", f"{pv.get('config_path', 'n/a')} (sha256 {pv.get('config_sha256', 'n/a')})"),
+        ("Random seed", str(pv.get("seed", "n/a"))),
+    ]
+    eng = pv.get("execution") or {}
+    if eng:
+        rows.append(("Execution", ", ".join(f"{k} {v}" for k, v in eng.items()
+                                            if v not in (None, ""))))
+    for k, v in (pv.get("versions") or {}).items():
+        rows.append((k, str(v)))
+    return rows
+
+
+# ------------------------------------------------------------------------------ markdown
+def _md_table(head: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
+    def esc(s: str) -> str:
+        return str(s).replace("|", "\\|")
+    out = ["| " + " | ".join(esc(h) for h in head) + " |",
+           "|" + "|".join("---" for _ in head) + "|"]
+    out += ["| " + " | ".join(esc(c) for c in row) + " |" for row in rows]
+    return "\n".join(out)
+
+
+def _title(r: Mapping[str, Any]) -> str:
+    cfg = r.get("config") or {}
+    t = (cfg.get("output") or {}).get("title")
+    if t:
+        return str(t)
+    ob = cfg.get("objects") or {}
+    a = ob.get("collection", "object")
+    b = ob.get("second_collection") or a
+    ch = (cfg.get("pairing") or {}).get("charge", "")
+    chs = {"opposite": "opposite-charge ", "same": "same-charge "}.get(ch, "")
+    return f"Resonance search in {chs}{a}-{b} pairs"
+
+
+def _selection_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
+    cfg = r.get("config") or {}
+    ob = cfg.get("objects") or {}
+    pr = cfg.get("pairing") or {}
+    sp = cfg.get("spectrum") or {}
+    md = cfg.get("model") or {}
+    res = md.get("resolution") or {}
+    rows = [("Objects", f"{ob.get('collection')}"
+                        + (f" + {ob['second_collection']}" if ob.get("second_collection") else "")),
+            ("Object cut", ob.get("cut") or "none")]
+    if ob.get("second_cut"):
+        rows.append(("Second-object cut", ob["second_cut"]))
+    rows.append(("Event cut", ob.get("event_cut") or "none"))
+    rows.append(("Pairing", f"charge {pr.get('charge')}, choose {pr.get('choose')}"))
+    w = sp.get("window") or [None, None]
+    rows.append(("Fit window", f"{_num(w[0])}-{_num(w[1])} GeV in {sp.get('bins')} bins"))
+    rows.append(("Model", f"signal {md.get('signal')}, background {md.get('background')}"
+                 + (f" {md.get('background_options')}" if md.get("background_options") else "")))
+    kind = next((k for k in ("relative", "absolute", "table") if res.get(k) is not None), None)
+    if kind:
+        val = res[kind]
+        txt = {"relative": f"\u03c3/m = {val}", "absolute": f"\u03c3 = {val} GeV",
+               "table": f"table {val}"}[kind]
+        rows.append(("Resolution model", txt + (f", natural width {res.get('natural_width')} GeV"
+                                                if res.get("natural_width") else "")))
+    bl = r.get("blinding") or {}
+    if bl.get("enabled"):
+        bw = bl.get("window") or [None, None]
+        rows.append(("Blinding", f"{_num(bw[0])}-{_num(bw[1])} GeV "
+                     + ("UNBLINDED for this run" if bl.get("unblinded") else "hidden")))
+    return rows
+
+
+def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | None = None) -> str:
+    """The meeting report as Markdown; ``figures`` maps figure names to relative PNG paths."""
+    r = results
+    fig = dict(figures or {})
+    out = [f"# {_title(r)}", "", f"> **Caution.** {CAUTION}", "", "## Result", ""]
+    out.append(_md_table(["quantity", "value"], _summary_rows(r)))
+    out += ["", _lee_sentence(r), ""]
+    km = r.get("known_matches")
+    out.append("### Known particles near the best peak")
+    out.append("")
+    if km:
+        out.append(_md_table(["particle", "mass [GeV]", "width [GeV]", "distance [\u03c3]"],
+                             [[k["name"], _num(k["mass"], 6), _num(k["width"], 4),
+                               _num(k["distance_sigma"], 3)] for k in km]))
+    else:
+        out.append("No known particle matches (particle-data tables, within 3 combined "
+                   "standard deviations, charge compatible with the pair).")
+    out.append("")
+    for name in ("spectrum", "spectrum_log", "pvalue_scan"):
+        if name in fig:
+            out += [f"![{name}]({fig[name]})", "", f"*{_CAPTIONS[name]}*", ""]
+    cal = _calibration_rows(r)
+    if cal:
+        out += ["## Calibration peak", "", _md_table(["quantity", "value"], cal), ""]
+        if "calibration" in fig:
+            out += [f"![calibration]({fig['calibration']})", "", f"*{_CAPTIONS['calibration']}*",
+                    ""]
+    head, rows = _limit_rows(r)
+    if rows:
+        lim = r.get("limits") or {}
+        out += ["## Upper limits", "",
+                (f"{_num(100 * float(lim.get('cl', 0.95)), 3)}% CL CLs upper limits "
+                f"({lim.get('method', 'asymptotic')}), unit: {lim.get('unit', 'events')}."), "",
+                _md_table(head, rows), ""]
+        if "limits" in fig:
+            out += [f"![limits]({fig['limits']})", "", f"*{_CAPTIONS['limits']}*", ""]
+    inp = r.get("input") or {}
+    out += ["## Selection and cut flow", "", _md_table(["setting", "value"], _selection_rows(r)),
+            "", _md_table(["step", "count"], _cutflow_rows(r)) if _cutflow_rows(r) else "", ""]
+    out.append(f"Events read: {_num(inp.get('events_read'))}; events with a candidate: "
+               f"{_num(inp.get('events_selected'))}; candidates in the fit window: "
+               f"{_num(inp.get('candidates'))}.")
+    out.append("")
+    if "candidates" in fig:
+        out += [f"![candidates]({fig['candidates']})", "", f"*{_CAPTIONS['candidates']}*", ""]
+    out += ["## Provenance", "", _md_table(["item", "value"], _provenance_rows(r)), ""]
+    files = (r.get("provenance") or {}).get("inputs") or []
+    if files:
+        out += [_md_table(["input file", "sha256"], [[f["path"], f["sha256"]] for f in files]), ""]
+    skipped = inp.get("files_skipped") or []
+    if skipped:
+        out += ["Files skipped (unreadable):", ""]
+        out += [f"- {s.get('path', s)}: {s.get('reason', '')}" if isinstance(s, Mapping)
+                else f"- {s}" for s in skipped]
+        out.append("")
+    out += ["## Caution", "", CAUTION + " " + _lee_sentence(r), ""]
+    return "\n".join(out)
+
+
+# ---------------------------------------------------------------------------------- html
+_CSS = """
+body{font-family:system-ui,-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;max-width:60rem;
+margin:2rem auto;padding:0 1rem;color:#1b1b1f;line-height:1.45}
+h1{font-size:1.6rem;margin-bottom:.3rem}h2{font-size:1.25rem;margin-top:2rem;
+border-bottom:1px solid #d6d8dc}h3{font-size:1.05rem}
+table{border-collapse:collapse;margin:.6rem 0 1rem;font-size:.93rem}
+th,td{border:1px solid #d6d8dc;padding:.25rem .6rem;text-align:left;vertical-align:top}
+th{background:#f2f4f6}td.num{text-align:right;font-variant-numeric:tabular-nums}
+.caution{background:#fff6e5;border-left:4px solid #e0a458;padding:.6rem .9rem;margin:1rem 0}
+figure{margin:1rem 0}figure img{max-width:100%;height:auto;border:1px solid #eceef1}
+figcaption{font-size:.9rem;color:#4a4d55}code{font-size:.9em}
+.hash{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.8rem;word-break:break-all}
+"""
+
+
+def _h(s: Any) -> str:
+    return html.escape(str(s), quote=True)
+
+
+def _html_table(head: Sequence[str], rows: Sequence[Sequence[str]], *,
+                mono_last: bool = False) -> str:
+    out = ["<table>", "<tr>" + "".join(f"<th>{_h(x)}</th>" for x in head) + "</tr>"]
+    for row in rows:
+        cells = []
+        for j, c in enumerate(row):
+            cls = ' class="hash"' if (mono_last and j == len(row) - 1) else ""
+            cells.append(f"<td{cls}>{_h(c)}</td>")
+        out.append("<tr>" + "".join(cells) + "</tr>")
+    out.append("</table>")
+    return "\n".join(out)
+
+
+def _img(path: str | os.PathLike[str], name: str) -> str:
+    data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
+    cap = _CAPTIONS.get(name, name)
+    return (f'<figure id="fig-{_h(name)}"><img alt="{_h(name)}" '
+            f'src="data:image/png;base64,{data}"><figcaption>{_h(cap)}</figcaption></figure>')
+
+
+def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathLike[str]]
+                | None = None) -> str:
+    """The meeting report as one self-contained HTML page (figures embedded as base64 PNG)."""
+    r = results
+    fig = dict(figures or {})
+    title = _title(r)
+    b: list[str] = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+                    f"<title>{_h(title)}</title>", f"<style>{_CSS}</style></head><body>",
+                    f"<h1>{_h(title)}</h1>",
+                    f'<div class="caution"><strong>Caution.</strong> {_h(CAUTION)}</div>',
+                    "<h2>Result</h2>", _html_table(["quantity", "value"], _summary_rows(r)),
+                    f"<p>{_h(_lee_sentence(r))}</p>",
+                    "<h3>Known particles near the best peak</h3>"]
+    km = r.get("known_matches")
+    if km:
+        b.append(_html_table(["particle", "mass [GeV]", "width [GeV]", "distance [\u03c3]"],
+                             [[k["name"], _num(k["mass"], 6), _num(k["width"], 4),
+                               _num(k["distance_sigma"], 3)] for k in km]))
+    else:
+        b.append("<p>No known particle matches (particle-data tables, within 3 combined "
+                 "standard deviations, charge compatible with the pair).</p>")
+    for name in ("spectrum", "spectrum_log", "pvalue_scan"):
+        if name in fig:
+            b.append(_img(fig[name], name))
+    cal = _calibration_rows(r)
+    if cal:
+        b += ["<h2>Calibration peak</h2>", _html_table(["quantity", "value"], cal)]
+        if "calibration" in fig:
+            b.append(_img(fig["calibration"], "calibration"))
+    head, rows = _limit_rows(r)
+    if rows:
+        lim = r.get("limits") or {}
+        b += ["<h2>Upper limits</h2>",
+              (f"<p>{_h(_num(100 * float(lim.get('cl', 0.95)), 3))}% CL CLs upper limits "
+              f"({_h(lim.get('method', 'asymptotic'))}), unit: {_h(lim.get('unit', 'events'))}."
+              "</p>"), _html_table(head, rows)]
+        if "limits" in fig:
+            b.append(_img(fig["limits"], "limits"))
+    inp = r.get("input") or {}
+    b += ["<h2>Selection and cut flow</h2>", _html_table(["setting", "value"], _selection_rows(r))]
+    if _cutflow_rows(r):
+        b.append(_html_table(["step", "count"], _cutflow_rows(r)))
+    b.append(f"<p>Events read: {_h(_num(inp.get('events_read')))}; events with a candidate: "
+             f"{_h(_num(inp.get('events_selected')))}; candidates in the fit window: "
+             f"{_h(_num(inp.get('candidates')))}.</p>")
+    if "candidates" in fig:
+        b.append(_img(fig["candidates"], "candidates"))
+    for name, path in fig.items():
+        if name not in _CAPTIONS:
+            b.append(_img(path, name))
+    b += ["<h2>Provenance</h2>", _html_table(["item", "value"], _provenance_rows(r))]
+    files = (r.get("provenance") or {}).get("inputs") or []
+    if files:
+        b.append(_html_table(["input file", "sha256"], [[f["path"], f["sha256"]] for f in files],
+                             mono_last=True))
+    skipped = inp.get("files_skipped") or []
+    if skipped:
+        b.append("<p>Files skipped (unreadable):</p><ul>" + "".join(
+            f"<li>{_h(s.get('path', s) if isinstance(s, Mapping) else s)}: "
+            f"{_h(s.get('reason', '') if isinstance(s, Mapping) else '')}</li>" for s in skipped)
+            + "</ul>")
+    b += ["<h2>Caution</h2>", f"<p>{_h(CAUTION)} {_h(_lee_sentence(r))}</p>", "</body></html>"]
+    return "\n".join(b) + "\n"
+
+
+def write_report(results: Mapping[str, Any], outdir: str | os.PathLike[str],
+                 figures: Mapping[str, str | os.PathLike[str]]) -> dict[str, Path]:
+    """Write ``report.md`` (figures by relative path) and ``report.html`` (figures embedded).
+
+    ``figures`` maps figure names (``spectrum``, ``pvalue_scan``, ...) to PNG files inside
+    ``outdir``.
+    """
+    outdir = Path(outdir)
+    rel = {k: Path(os.path.relpath(Path(v), outdir)).as_posix() for k, v in figures.items()}
+    md = atomic_write(outdir / "report.md", render_markdown(results, rel))
+    ht = atomic_write(outdir / "report.html", render_html(results, figures))
+    return {"markdown": md, "html": ht}

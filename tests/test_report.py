@@ -1,0 +1,151 @@
+"""report.md / report.html / results.json writing, from a plain results dictionary.
+
+The end-to-end content (numbers from a real search on the demo data) is checked in
+test_search.py; here the rendering itself: tables, embedded figures, caution, atomic writes.
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+from html.parser import HTMLParser
+
+import numpy as np
+import pytest
+
+from peaksift.report import (
+    CAUTION,
+    atomic_write,
+    format_pm,
+    render_html,
+    render_markdown,
+    write_report,
+    write_results_json,
+)
+
+
+def _results() -> dict:
+    return {
+        "peaksift_version": "0.1.0",
+        "config": {"objects": {"collection": "muon", "cut": "pt > 20"},
+                   "pairing": {"charge": "opposite", "choose": "all"},
+                   "spectrum": {"window": [110.0, 200.0], "bins": 90},
+                   "model": {"signal": "gaussian", "background": "bernstein",
+                             "resolution": {"relative": 0.01}},
+                   "output": {"title": ""}},
+        "input": {"files": ["a.parquet"], "events_read": 1000, "events_selected": 400,
+                  "candidates": 380, "cutflow": {"events": 1000, "candidates": 380}},
+        "fit": {"valid": True, "peak_mass": {"value": 155.2, "error": 0.31},
+                "width": {"value": 1.6, "error": 0.2},
+                "signal_yield": {"value": 120.0, "error": 30.0},
+                "background_yield": {"value": 3000.0, "error": 60.0},
+                "gof": {"chi2": 80.1, "ndf": 84, "p_value": 0.6}},
+        "scan": {"mass": [120.0, 150.0, 180.0], "z_local": [0.1, 3.9, 0.3],
+                 "p_local": [0.46, 4.8e-5, 0.38], "signal_yield": [3.0, 118.0, 8.0]},
+        "best": {"mass": 150.0, "z_local": 3.9, "p_local": 4.8e-5, "z_global": 2.9,
+                 "p_global": 0.0019, "global_method": "upcrossings"},
+        "limits": {"mass": [120.0, 150.0], "observed": [30.0, 210.0], "expected": [28.0, 40.0],
+                   "expected_minus2": [15.0, 21.0], "expected_minus1": [20.0, 29.0],
+                   "expected_plus1": [39.0, 56.0], "expected_plus2": [52.0, 75.0],
+                   "unit": "events", "cl": 0.95},
+        "known_matches": [],
+        "provenance": {"inputs": [{"path": "a.parquet", "sha256": "ab" * 32}],
+                       "config_sha256": "cd" * 32, "seed": 7,
+                       "versions": {"python": "3.11", "numpy": np.__version__},
+                       "started": "2026-01-01T00:00:00Z", "finished": "2026-01-01T00:01:00Z"},
+    }
+
+
+class _Collect(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.imgs: list[str] = []
+        self.tables = 0
+        self.stack: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "img":
+            self.imgs.append(dict(attrs)["src"])
+        elif tag == "table":
+            self.tables += 1
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def _png(tmp_path, name):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(2, 2))
+    ax.plot([0, 1], [0, 1])
+    p = tmp_path / f"{name}.png"
+    fig.savefig(p)
+    plt.close(fig)
+    return p
+
+
+def test_html_is_self_contained_and_parses(tmp_path):
+    figs = {n: _png(tmp_path, n) for n in ("spectrum", "pvalue_scan", "limits", "candidates")}
+    page = render_html(_results(), figs)
+    parser = _Collect()
+    parser.feed(page)
+    parser.close()
+    assert len(parser.imgs) == 4
+    for src, path in zip(parser.imgs, figs.values()):
+        assert src.startswith("data:image/png;base64,")
+        assert base64.b64decode(src.split(",", 1)[1]) == path.read_bytes()
+    assert parser.tables >= 4
+    text = " ".join(parser.text)
+    assert "A local significance is not a discovery" in text
+    assert "look-elsewhere effect is included" in text
+    assert "No known particle matches" in text
+    assert "155.20 ± 0.31 GeV" in text
+
+
+def test_markdown_has_tables_caution_and_figure_links(tmp_path):
+    md = render_markdown(_results(), {"spectrum": "figures/spectrum.png"})
+    assert md.count(CAUTION) >= 2
+    assert "![spectrum](figures/spectrum.png)" in md
+    assert "| Local significance | 3.9 σ (p = 4.80e-05) |" in md
+    assert "upcrossings" in md
+    assert "| events | 1 000 |".replace(" 000", "\u2009000") in md
+
+
+def test_format_pm_rounds_error_to_two_digits():
+    # two significant digits on the error, value to the same decimal (common practice)
+    assert format_pm(155.234, 0.3149, "GeV") == "155.23 ± 0.31 GeV"
+    assert format_pm(1234.5, 56.0) == "1234 ± 56"
+    assert format_pm(1.0, None) == "1"
+
+
+def test_results_json_atomic_and_nan_free(tmp_path):
+    r = _results()
+    r["fit"]["gof"]["p_value"] = float("nan")
+    r["scan"]["z_local"] = np.array([0.1, np.inf, 0.2])
+    p = write_results_json(r, tmp_path / "results.json")
+    d = json.loads(p.read_text())
+    assert d["fit"]["gof"]["p_value"] is None
+    assert d["scan"]["z_local"] == [0.1, None, 0.2]
+    assert [x.name for x in tmp_path.iterdir()] == ["results.json"]
+
+
+def test_atomic_write_leaves_old_file_on_failure(tmp_path):
+    target = tmp_path / "x.txt"
+    atomic_write(target, "old")
+
+    with pytest.raises(TypeError):
+        atomic_write(target, object())  # type: ignore[arg-type]
+    assert target.read_text() == "old"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["x.txt"]
+
+
+def test_write_report_relative_links(tmp_path):
+    (tmp_path / "figures").mkdir()
+    fig = _png(tmp_path / "figures", "spectrum")
+    out = write_report(_results(), tmp_path, {"spectrum": fig})
+    assert "](figures/spectrum.png)" in out["markdown"].read_text()
+    assert "data:image/png;base64," in out["html"].read_text()
