@@ -22,8 +22,12 @@ distributed = pytest.importorskip("distributed")
 @pytest.fixture(scope="module")
 def dask_address():
     """A two-worker LocalCluster started by the engine's own helper, closed at module end."""
-    logging.getLogger("distributed").setLevel(logging.ERROR)
-    cluster = execution._start_local_cluster(2)
+    logging.getLogger("distributed").setLevel(logging.CRITICAL)
+    import dask
+
+    # no retries, so a task that kills its worker fails at once (default: 3 more tries)
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0}):
+        cluster = execution._start_local_cluster(2)
     try:
         yield cluster.scheduler_address
     finally:
@@ -140,3 +144,15 @@ def test_unknown_engine_suggests_closest():
 def test_bad_scheduler_address_is_reported():
     with pytest.raises(ExecutionError, match="cannot connect to the Dask scheduler"):
         execution._connect("tcp://127.0.0.1:1", 1, timeout="1s")
+
+
+def test_local_cluster_started_and_closed_when_no_address():
+    got = execution.map_tasks(seeded_draw, SPECS[:3], engine="dask", workers=1)
+    for a, b in zip(got, _reference()[:3]):
+        np.testing.assert_array_equal(a, b)
+
+
+def test_dead_dask_worker_is_reported_with_the_task(dask_address):
+    # Runs last: the nanny restarts the dead worker, so later tests would wait for it.
+    with pytest.raises(ExecutionError, match=r"Dask worker died while running task 2 \(2\)"):
+        execution.map_tasks(die_on_two, range(5), engine="dask", address=dask_address)

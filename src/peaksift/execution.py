@@ -602,8 +602,10 @@ def _start_local_cluster(workers: int) -> Any:
 
     from distributed import LocalCluster
 
+    # dashboard off; the scheduler's small HTTP endpoint takes a free port, not 8787
     return LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                        dashboard_address=None, silence_logs=logging.ERROR)
+                        dashboard_address=None, silence_logs=logging.ERROR,
+                        scheduler_kwargs={"dashboard": False, "dashboard_address": ":0"})
 
 
 def _connect(address: str | None, workers: int, timeout: str = "30s") -> tuple[Any, Any]:
@@ -668,8 +670,8 @@ def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
             except KilledWorker as exc:
                 raise _dead_worker_error(
                     "Dask worker", i, n, describe, [i, *pending], f"KilledWorker: {exc}",
-                    "the task killed its worker repeatedly (out of memory?): lower "
-                    "chunk_events, or run engine='serial' to see the underlying error",
+                    "the worker process running it was killed or crashed (out of memory?): "
+                    "lower chunk_events, or run engine='serial' to see the underlying error",
                 ) from None
             except ModuleNotFoundError as exc:
                 if "peaksift" in str(exc):
