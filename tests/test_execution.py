@@ -5,16 +5,21 @@ One small LocalCluster (two single-threaded workers, no dashboard) serves the wh
 
 from __future__ import annotations
 
+import json
 import logging
 import os
+import pickle
 import signal
 import time
+from pathlib import Path
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 
-from peaksift import execution
-from peaksift.errors import ConfigError, ExecutionError, PeaksiftError
+from peaksift import execution, pair, read_events
+from peaksift.errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 
 distributed = pytest.importorskip("distributed")
 
@@ -33,6 +38,72 @@ def dask_address():
     finally:
         cluster.close()
     assert cluster.status.name == "closed"
+
+
+# ------------------------------------------------------------------- test data
+EDGES = np.linspace(0.0, 200.0, 101)
+WINDOW = (20.0, 120.0)
+SEL = execution.Selection(first="muon", edges=EDGES, window=WINDOW, charge="opposite",
+                          cut="pt > 8 and abs(eta) < 2.4")
+
+
+def _write_events(path, n_events, seed, *, weighted=False, row_group=1000, nan_pt=0):
+    """Random muon events (list-of-struct layout) in row groups of ``row_group`` events."""
+    rng = np.random.default_rng(seed)
+    n_obj = np.minimum(rng.poisson(2.2, n_events), 6)
+    tot = int(n_obj.sum())
+    pt = 5.0 + rng.exponential(20.0, tot)
+    if nan_pt:
+        pt[rng.choice(tot, nan_pt, replace=False)] = np.nan
+    flat = pa.StructArray.from_arrays(
+        [pa.array(pt), pa.array(rng.uniform(-2.6, 2.6, tot)),
+         pa.array(rng.uniform(-np.pi, np.pi, tot)), pa.array(np.full(tot, 0.1057)),
+         pa.array(rng.choice([-1, 1], tot).astype(np.int8))],
+        names=["pt", "eta", "phi", "mass", "charge"])
+    offsets = pa.array(np.concatenate([[0], np.cumsum(n_obj)]).astype(np.int32))
+    cols = {"muon": pa.ListArray.from_arrays(offsets, flat)}
+    if weighted:
+        cols["weight"] = pa.array(rng.uniform(0.5, 1.5, n_events))
+    pq.write_table(pa.table(cols), path, row_group_size=row_group)
+    return path
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory):
+    d = tmp_path_factory.mktemp("events")
+    files = [_write_events(d / f"run_{k}.parquet", 3000, seed=100 + k) for k in range(3)]
+    return [str(f) for f in files]
+
+
+@pytest.fixture(scope="module")
+def weighted_dataset(tmp_path_factory):
+    d = tmp_path_factory.mktemp("weighted")
+    files = [_write_events(d / f"sim_{k}.parquet", 2500, seed=200 + k, weighted=True)
+             for k in range(2)]
+    return [str(f) for f in files]
+
+
+def _one_pass(files, sel=SEL):
+    """Reference outside the execution layer: read everything at once, pair once and
+    histogram with numpy.histogram (common practice)."""
+    ev = read_events(files, list(sel.collections))
+    c = pair(ev, sel.first, cut=sel.cut, charge=sel.charge)
+    counts, _ = np.histogram(c.mass, bins=np.asarray(sel.edges), weights=c.weight)
+    lo, hi = sel.window
+    inwin = (c.mass >= lo) & (c.mass < hi)
+    return c, counts, c.mass[inwin], c.weight[inwin]
+
+
+def _assert_same(a, b):
+    """Bit-for-bit equality of two Collected results."""
+    assert a.histogram == b.histogram
+    np.testing.assert_array_equal(a.window_mass, b.window_mass)
+    np.testing.assert_array_equal(a.window_weight, b.window_weight)
+    assert a.pt_histogram == b.pt_histogram
+    assert a.rapidity_histogram == b.rapidity_histogram
+    assert a.cutflow == b.cutflow
+    assert (a.events_read, a.candidates, a.files_read) == (b.events_read, b.candidates,
+                                                           b.files_read)
 
 
 # ----------------------------------------------------------------- stand-in tasks
@@ -144,6 +215,121 @@ def test_unknown_engine_suggests_closest():
 def test_bad_scheduler_address_is_reported():
     with pytest.raises(ExecutionError, match="cannot connect to the Dask scheduler"):
         execution._connect("tcp://127.0.0.1:1", 1, timeout="1s")
+
+
+# ------------------------------------------------------------------------ collect
+def test_serial_collect_equals_one_pass_reference(dataset):
+    got = execution.collect(dataset, SEL, chunk_events=700)
+    c, counts, wm, _ = _one_pass(dataset)
+    assert got.engine_info["chunks"] == 9  # 3 files x 3 row groups, each above 700 events
+    np.testing.assert_array_equal(got.histogram.sumw, counts)  # exact for unweighted data
+    np.testing.assert_array_equal(got.histogram.sumw2, counts)
+    assert not got.histogram.is_weighted
+    np.testing.assert_array_equal(got.window_mass, wm)
+    assert got.events_read == 9000 == got.cutflow["events_in"]
+    assert got.cutflow == c.cutflow
+    assert got.candidates == len(c)
+    assert got.files_read == tuple(dataset) and got.files_skipped == ()
+    # the pT / rapidity summaries hold the candidates inside the histogram range
+    inrange = (c.mass >= EDGES[0]) & (c.mass < EDGES[-1])
+    assert got.pt_histogram.total(flow=True) == inrange.sum()
+    ref_y, _ = np.histogram(c.rapidity[inrange], bins=np.asarray(SEL.rapidity_edges))
+    np.testing.assert_array_equal(got.rapidity_histogram.sumw, ref_y)
+
+
+def test_chunked_equals_one_pass_for_any_chunk_size(dataset):
+    whole = execution.collect(dataset, SEL, chunk_events=10**9)
+    assert whole.engine_info["chunks"] == 3  # chunks never span files
+    for chunk_events in (1, 1000, 2500):
+        _assert_same(execution.collect(dataset, SEL, chunk_events=chunk_events), whole)
+
+
+def test_engines_agree_exactly(dataset, weighted_dataset, dask_address):
+    for files in (dataset, weighted_dataset):
+        ref = execution.collect(files, SEL, chunk_events=1000)
+        procs = execution.collect(files, SEL, engine="processes", workers=2, chunk_events=1000)
+        dask = execution.collect(files, SEL, engine="dask", address=dask_address,
+                                 chunk_events=1000)
+        _assert_same(procs, ref)
+        _assert_same(dask, ref)
+        assert procs.engine_info["engine"] == "processes" and procs.engine_info["workers"] == 2
+        assert dask.engine_info["address"] == dask_address
+    assert ref.histogram.is_weighted  # the second data set carries weights
+    _, counts, _, ww = _one_pass(weighted_dataset)
+    np.testing.assert_allclose(ref.histogram.sumw, counts, rtol=1e-12)
+    np.testing.assert_allclose(ref.window_weight, ww, rtol=0)
+
+
+def _garbage(path):
+    path.write_bytes(b"PAR1" + bytes(range(256)) * 8)  # not Parquet: no valid footer
+    return str(path)
+
+
+def test_corrupt_file_is_named_or_skipped(dataset, tmp_path):
+    bad = _garbage(tmp_path / "run_1b.parquet")
+    files = [dataset[0], bad, dataset[1]]
+    with pytest.raises(InputError, match="run_1b.parquet"):
+        execution.collect(files, SEL)
+    got = execution.collect(files, SEL, skip_bad_files=True, chunk_events=1000)
+    assert [s.path for s in got.files_skipped] == [bad]
+    assert "run_1b.parquet" in got.files_skipped[0].reason
+    assert got.files_read == (dataset[0], dataset[1])
+    _assert_same(got, execution.collect([dataset[0], dataset[1]], SEL, chunk_events=1000))
+
+
+def _corrupt_last_row_group(src, dst):
+    """Copy of ``src`` whose footer is intact but whose last row group's pages are noise,
+    so the file plans fine and fails only when that chunk is read."""
+    data = bytearray(Path(src).read_bytes())
+    meta = pq.ParquetFile(src).metadata
+    rg = meta.row_group(meta.num_row_groups - 1)
+    for j in range(rg.num_columns):
+        col = rg.column(j)
+        start = col.data_page_offset
+        data[start:start + col.total_compressed_size] = b"\xff" * col.total_compressed_size
+    Path(dst).write_bytes(bytes(data))
+    return str(dst)
+
+
+@pytest.mark.parametrize("engine", ["serial", "processes"])
+def test_file_failing_mid_run_is_named_or_skipped_whole(dataset, tmp_path, engine):
+    bad = _corrupt_last_row_group(dataset[2], tmp_path / "run_2b.parquet")
+    files = [dataset[0], bad, dataset[1]]
+    with pytest.raises(InputError, match=r"run_2b\.parquet"):
+        execution.collect(files, SEL, engine=engine, workers=2, chunk_events=1000)
+    got = execution.collect(files, SEL, engine=engine, workers=2, chunk_events=1000,
+                            skip_bad_files=True)
+    assert [s.path for s in got.files_skipped] == [bad]
+    # its first two (readable) chunks were discarded too: the file counts not at all
+    _assert_same(got, execution.collect([dataset[0], dataset[1]], SEL, chunk_events=1000))
+
+
+def test_every_file_bad_is_an_error(tmp_path):
+    bad = _garbage(tmp_path / "only.parquet")
+    with pytest.raises(ExecutionError, match="every input file was skipped.*only.parquet"):
+        execution.collect([bad], SEL, skip_bad_files=True)
+
+
+def test_bad_values_reported_once_with_counts(tmp_path):
+    f = _write_events(tmp_path / "nan.parquet", 2000, seed=5, nan_pt=7)
+    with pytest.warns(DataWarning, match="2 of 2 chunks had input repaired") as rec:
+        got = execution.collect([str(f)], SEL, chunk_events=1000)
+    assert len([w for w in rec if issubclass(w.category, DataWarning)]) == 1
+    # 7 NaN values were written by construction
+    assert got.dropped_objects == {"muon": {"NaN or infinite kinematics": 7}}
+    json.dumps(got.to_dict())
+
+
+def test_selection_is_validated_and_checked_for_pickling(dataset):
+    with pytest.raises(ConfigError, match="Selection.edges must be"):
+        execution.Selection(first="muon", edges=[0, 10, 5])
+    with pytest.raises(ConfigError, match="Selection.window must be two numbers"):
+        execution.Selection(first="muon", edges=EDGES, window=(1, 2, 3))
+    sel = execution.Selection(first="muon", edges=EDGES, cut=lambda mu: mu.pt > 8)
+    with pytest.raises(ExecutionError, match="selection cannot be sent to worker processes"):
+        execution.collect(dataset, sel, engine="processes", workers=2)
+    assert pickle.loads(pickle.dumps(SEL)) == SEL
+    assert SEL.collections == ("muon",) and SEL.window == WINDOW
 
 
 def test_local_cluster_started_and_closed_when_no_address():

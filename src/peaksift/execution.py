@@ -55,11 +55,12 @@ import math
 import multiprocessing
 import os
 import pickle
+import re
 import signal
 import time
 import uuid
 import warnings
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -130,8 +131,11 @@ class Selection:
     collections : sequence of str, optional
         Collections to read; default ``first`` and ``second``.  Add any collection an
         event cut counts.
-    fields : optional
-        Passed to :func:`peaksift.events.read_chunk` (restricts the fields read).
+    fields : iterable of str, optional
+        Restrict the extra object fields and event columns read (see
+        :func:`peaksift.read_events`); kinematics and ``weight`` are always read.
+    masses : mapping of str to float, optional
+        Mass in GeV for collections stored without a mass field (default massless).
     strict : bool
         Raise on NaN, infinite or negative kinematics instead of dropping those objects.
     pt_edges, rapidity_edges : sequence of float, optional
@@ -154,7 +158,8 @@ class Selection:
     target_mass: float | None = None
     min_delta_r: float | None = None
     collections: tuple[str, ...] | None = None
-    fields: Any = None
+    fields: tuple[str, ...] | None = None
+    masses: tuple[tuple[str, float], ...] | None = None
     strict: bool = False
     pt_edges: tuple[float, ...] | None = None
     rapidity_edges: tuple[float, ...] | None = None
@@ -196,6 +201,18 @@ class Selection:
         rap = np.linspace(-3.0, 3.0, 61) if self.rapidity_edges is None else self.rapidity_edges
         set_(self, "rapidity_edges", _float_tuple(rap, "rapidity_edges"))
         set_(self, "strict", bool(self.strict))
+        if self.fields is not None:
+            set_(self, "fields", (self.fields,) if isinstance(self.fields, str)
+                 else tuple(str(f) for f in self.fields))
+        if self.masses is not None:
+            items = self.masses.items() if isinstance(self.masses, Mapping) else self.masses
+            try:
+                set_(self, "masses", tuple((str(k), float(v)) for k, v in items))
+            except (TypeError, ValueError):
+                raise ConfigError(
+                    f"Selection.masses must map collection names to masses in GeV, got "
+                    f"{self.masses!r}"
+                ) from None
 
 
 # ------------------------------------------------------------------------ chunk output
@@ -285,6 +302,9 @@ class Collected:
         Distinct data-repair messages from reading (at most 20; see ``n_data_warnings``).
     n_data_warnings : int
         How many chunks reported repaired input.
+    dropped_objects : dict[str, dict[str, int]]
+        Objects dropped while reading for bad values, per collection and problem
+        (``{"muon": {"NaN or infinite kinematics": 3}}``), summed over the files read.
     engine_info : dict
         ``engine``, ``workers``, ``address``, ``chunks``, ``chunk_events``, ``seconds``,
         ``events_per_second``.
@@ -303,6 +323,7 @@ class Collected:
     candidates: int
     data_warnings: tuple[str, ...] = ()
     n_data_warnings: int = 0
+    dropped_objects: dict[str, dict[str, int]] = field(default_factory=dict)
     engine_info: dict[str, Any] = field(default_factory=dict)
 
     @property
@@ -321,32 +342,26 @@ class Collected:
             "window_candidates": self.window_candidates,
             "cutflow": {k: int(v) for k, v in self.cutflow.items()},
             "data_warnings": list(self.data_warnings),
+            "dropped_objects": {c: dict(v) for c, v in self.dropped_objects.items()},
             "engine": dict(self.engine_info),
         }
 
 
 # ------------------------------------------------------------------------ the map step
 def _spec_file(spec: Any) -> str:
-    return str(getattr(spec, "file", getattr(spec, "path", spec)))
+    return str(spec.path)
 
 
 def _describe_spec(spec: Any) -> str:
     """One-line description of a chunk for error messages."""
     parts = [f"file {_spec_file(spec)!r}"]
-    groups = getattr(spec, "row_groups", None)
-    if groups is not None:
-        groups = list(groups)
-        if groups:
-            text = (f"{groups[0]}" if len(groups) == 1 else
-                    f"{groups[0]}-{groups[-1]}" if groups == list(range(groups[0], groups[-1] + 1))
-                    else ",".join(map(str, groups)))
-            parts.append(f"row groups {text}")
-    first = getattr(spec, "first_event", None)
-    n = getattr(spec, "n_events", None)
-    if first is not None and n is not None:
-        parts.append(f"events {first}-{first + n - 1}")
-    elif first is not None:
-        parts.append(f"events from {first}")
+    groups = list(spec.row_groups)
+    if len(groups) == 1:
+        parts.append(f"row group {groups[0]}")
+    elif groups:
+        parts.append(f"row groups {groups[0]}-{groups[-1]}")
+    first, n = int(spec.first_event), int(spec.n_events)
+    parts.append(f"events {first}-{first + n - 1}")
     return ", ".join(parts)
 
 
@@ -383,22 +398,15 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
     messages: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        try:
-            events = read_chunk(spec, list(selection.collections), fields=selection.fields,
-                                strict=selection.strict)
-        except PeaksiftError:
-            raise
-        except (OSError, ValueError, RuntimeError) as exc:  # pyarrow errors derive from these
-            raise InputError(
-                f"cannot read {_describe_spec(spec)}: {type(exc).__name__}: {exc}; the file may "
-                "be truncated or corrupt - regenerate or remove it, or set skip_bad_files"
-            ) from None
+        events = read_chunk(spec, list(selection.collections), fields=selection.fields,
+                            strict=selection.strict,
+                            masses=dict(selection.masses) if selection.masses else None)
         cands = pair(
             events, selection.first, selection.second,
             cut=selection.cut, second_cut=selection.second_cut, event_cut=selection.event_cut,
             charge=selection.charge, choose=selection.choose,
             target_mass=selection.target_mass, min_delta_r=selection.min_delta_r,
-            event_offset=int(getattr(spec, "first_event", 0)),
+            event_offset=int(spec.first_event),
         )
     for w in caught:
         if issubclass(w.category, DataWarning):
@@ -421,7 +429,7 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
     return ChunkOutput(
         index=-1,
         file=_spec_file(spec),
-        first_event=int(getattr(spec, "first_event", 0)),
+        first_event=int(spec.first_event),
         events=len(events),
         candidates=int(mass.size),
         histogram=hist,
@@ -774,6 +782,21 @@ def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str =
 
 
 # -------------------------------------------------------------------------------- collect
+_DROPPED_COLL = re.compile(r"'([^']+)': ((?:\d+ with [^,;(]+?)(?:, \d+ with [^,;(]+?)*) \(of \d+\)")
+_DROPPED_ITEM = re.compile(r"(\d+) with ([^,;(]+?)(?=, \d+ with |$)")
+
+
+def _parse_dropped(message: str) -> dict[str, dict[str, int]]:
+    """Counts from the reader's DataWarning text:
+    ``'muon': 3 with NaN or infinite kinematics, 1 with negative pt (of 900)``."""
+    out: dict[str, dict[str, int]] = {}
+    for coll, items in _DROPPED_COLL.findall(message):
+        for n, problem in _DROPPED_ITEM.findall(items):
+            d = out.setdefault(coll, {})
+            d[problem.strip()] = d.get(problem.strip(), 0) + int(n)
+    return out
+
+
 class _Reducer:
     """Adds chunk outputs in chunk order; a file counts only when all its chunks are in."""
 
@@ -790,6 +813,7 @@ class _Reducer:
         self.files: list[str] = []
         self.warn: dict[str, None] = {}
         self.n_warn = 0
+        self.dropped: dict[str, dict[str, int]] = {}
         self._file: list[ChunkOutput] = []
 
     def add(self, out: ChunkOutput, last_of_file: bool) -> None:
@@ -817,6 +841,10 @@ class _Reducer:
                 for m in out.data_warnings:
                     if len(self.warn) < 20:
                         self.warn[m] = None
+                    for coll, problems in _parse_dropped(m).items():
+                        tot = self.dropped.setdefault(coll, {})
+                        for k, v in problems.items():
+                            tot[k] = tot.get(k, 0) + v
         if self._file:
             self.files.append(self._file[0].file)
         self._file = []
@@ -960,6 +988,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         candidates=reducer.candidates,
         data_warnings=tuple(reducer.warn),
         n_data_warnings=reducer.n_warn,
+        dropped_objects=reducer.dropped,
         engine_info=info,
     )
 
