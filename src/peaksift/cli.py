@@ -38,6 +38,92 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return 0
 
 
+def _progress_wanted(args: argparse.Namespace) -> bool:
+    return not getattr(args, "quiet", False) and sys.stderr.isatty()
+
+
+def _row(label: str, value: str) -> str:
+    return f"  {label:<26} {value}"
+
+
+def _summary(result: object) -> str:
+    """The short table printed at the end of ``peaksift search``."""
+    from .report import format_pm
+
+    d = result.to_dict()  # type: ignore[attr-defined]
+    best, fit, inp = d["best"], d["fit"], d["input"]
+    pm, w, sy = fit["peak_mass"], fit["width"], fit["signal_yield"]
+    lines = ["peaksift search: summary",
+             _row("events read", f"{inp['events_read']:,}"),
+             _row("candidates in window", f"{inp['candidates']:,}"),
+             _row("best mass hypothesis", f"{best['mass']:.2f} GeV"),
+             _row("fitted mass", format_pm(pm["value"], pm["error"], "GeV")),
+             _row(f"fitted width ({fit.get('width_parameter', 'width')})",
+                  format_pm(w["value"], w["error"], "GeV")),
+             _row("signal yield", format_pm(sy["value"], sy["error"])),
+             _row("local significance", f"{best['z_local']:.2f} sigma "
+                                        f"(p = {best['p_local']:.2e})"),
+             _row("global significance", f"{best['z_global']:.2f} sigma "
+                                         f"(p = {best['p_global']:.2e}, "
+                                         f"{best['global_method']})")]
+    if not fit["valid"]:
+        lines.append(_row("fit status", "INVALID: " + "; ".join(fit.get("problems", []))))
+    km = d.get("known_matches") or []
+    lines.append(_row("known particles", ", ".join(
+        f"{k['name']} ({k['distance_sigma']:.1f} sigma)" for k in km) or "none match"))
+    cal = d.get("calibration")
+    if cal:
+        fm = cal["fitted_mass"]
+        lines.append(_row(f"calibration {cal['particle']}",
+                          f"{format_pm(fm['value'], fm['error'], 'GeV')} vs tables "
+                          f"{cal['table_mass']:.4f} GeV"))
+    if d.get("blinding", {}).get("active"):
+        lines.append(_row("blinding", "ACTIVE (data in the blinded window hidden)"))
+    if "outputs" in d:
+        lines.append(_row("outputs", d["outputs"]["dir"]))
+    lines.append("  (a local significance is not a discovery; see the report's caution)")
+    return "\n".join(lines)
+
+
+def _cmd_search(args: argparse.Namespace) -> int:
+    from .search import run_search
+
+    res = run_search(args.config, out=args.out, unblind=args.unblind, toys=args.toys,
+                     seed=args.seed, engine=args.engine, progress=_progress_wanted(args))
+    print(_summary(res))
+    return 0
+
+
+def _cmd_spectrum(args: argparse.Namespace) -> int:
+    from .search import run_spectrum
+
+    res = run_spectrum(args.config, out=args.out, engine=args.engine,
+                       progress=_progress_wanted(args))
+    h = res.histogram
+    print(f"peaksift spectrum: {h.total():,.6g} candidates in {h.nbins} bins on "
+          f"[{h.lo:g}, {h.hi:g}] GeV from {res.collected.events_read:,} events")
+    for name, path in res.files.items():
+        print(f"  {name:<14} {path}")
+    return 0
+
+
+def _cmd_fit(args: argparse.Namespace) -> int:
+    from .search import run_fit
+
+    fr = run_fit(args.config, args.mass, engine=args.engine, progress=_progress_wanted(args))
+    print(repr(fr))
+    return 0
+
+
+def _demo_config_hook(args: argparse.Namespace) -> None:
+    """After ``peaksift demo OUTDIR``: write OUTDIR/search.toml pointing at the new files."""
+    from .search import write_demo_config
+
+    path = write_demo_config(args.outdir)
+    if path is not None:
+        print(f"config for the search: {path}  (run: peaksift search {path})")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="peaksift",
@@ -59,6 +145,33 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--seed", type=int, default=None, help="random seed (default: the demo's own)")
     d.add_argument("--weighted", action="store_true", help="simulated-sample variant with weights")
     d.set_defaults(handler=_cmd_demo)
+
+    def engine_opt(q: argparse.ArgumentParser) -> None:
+        q.add_argument("--engine", choices=("serial", "processes", "dask"), default=None,
+                       help="where the per-chunk work runs (overrides execution.engine)")
+        q.add_argument("--quiet", action="store_true", help="no progress bars")
+
+    s = sub.add_parser("search", help="the whole search: spectrum, fits, scan, significance, "
+                       "limits, figures, results.json and the report")
+    s.add_argument("config", help="the search's TOML configuration (see docs/config.md)")
+    s.add_argument("--out", default=None, help="output directory (default: output.dir)")
+    s.add_argument("--unblind", action="store_true", help="lift the configured blinding")
+    s.add_argument("--toys", type=int, default=None, help="override significance.toys")
+    s.add_argument("--seed", type=int, default=None, help="override significance.seed")
+    engine_opt(s)
+    s.set_defaults(handler=_cmd_search)
+
+    sp = sub.add_parser("spectrum", help="only the selected spectrum: histogram file and figure")
+    sp.add_argument("config")
+    sp.add_argument("--out", default=None, help="output directory (default: output.dir)")
+    engine_opt(sp)
+    sp.set_defaults(handler=_cmd_spectrum)
+
+    f = sub.add_parser("fit", help="one signal-plus-background fit at a chosen mass")
+    f.add_argument("config")
+    f.add_argument("--mass", type=float, required=True, help="starting peak mass in GeV")
+    engine_opt(f)
+    f.set_defaults(handler=_cmd_fit)
     return p
 
 
@@ -66,7 +179,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return int(args.handler(args) or 0)
+        rc = int(args.handler(args) or 0)
+        if args.command == "demo" and rc == 0:
+            _demo_config_hook(args)
+        return rc
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2

@@ -1,0 +1,714 @@
+"""The whole search as one call: :func:`run_search` (``peaksift search CONFIG``).
+
+Which function
+--------------
+* :func:`run_search` -- config in, everything out: read, select and pair (through
+  :func:`peaksift.execution.collect`, on the configured engine), the spectrum, the
+  background-only and signal-plus-background fits, the mass scan, the global significance,
+  the upper limits, the known-particle matching, the calibration check, figures,
+  ``results.json`` and the meeting report.  Returns a :class:`SearchResult`.
+* :func:`run_spectrum` -- only the selected spectrum: its histogram file and figure.
+* :func:`run_fit` -- one signal-plus-background fit at a chosen mass.
+
+Outputs are written into a temporary directory next to the target and renamed into place at
+the very end, so a failed or interrupted run leaves no partial outputs.  An existing target
+directory is replaced only when it holds a previous peaksift result (``results.json``).
+
+Steps and where their numbers come from
+---------------------------------------
+1. Candidates: :func:`peaksift.execution.collect` with a :class:`~peaksift.execution.Selection`
+   built from ``[objects]`` and ``[pairing]``.  The spectrum (and the calibration window, when
+   configured) are filled from the candidate masses it returns, so one pass over the data
+   serves both windows.
+2. Scan: :func:`peaksift.scan` over the ``[scan]`` grid with the signal width fixed by the
+   resolution model; q0 and Z_local = sqrt(q0) (Cowan, Cranmer, Gross, Vitells 2011).
+3. Global significance: :meth:`ScanResult.global_significance` (upcrossings, Gross and
+   Vitells 2010; or background-only toys).
+4. Free fit at the best hypothesis with ``model.signal`` (mass and width float): the ``fit``
+   section of results.json.
+5. Limits: :func:`peaksift.upper_limits` (CLs, asymptotic or toys).
+6. Known particles: :func:`peaksift.resonances.match_known` around the fitted mass.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import hashlib
+import os
+import platform
+import shutil
+import uuid
+import warnings
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .config import Config, load_config
+from .errors import ConfigError, FitError, PeaksiftError
+
+__all__ = ["SearchResult", "SpectrumResult", "run_fit", "run_search", "run_spectrum"]
+
+
+# ----------------------------------------------------------------------------- results
+@dataclass(frozen=True)
+class SpectrumResult:
+    """What :func:`run_spectrum` produced: the spectrum, the collected data and the files."""
+
+    config: Config
+    histogram: Any
+    collected: Any
+    outdir: Path | None = None
+    files: Mapping[str, Path] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class SearchResult:
+    """The outcome of :func:`run_search`.
+
+    Attributes
+    ----------
+    config : Config
+        The validated configuration (with command-line overrides applied).
+    histogram : MassHistogram
+        The spectrum in the fit window (blinded bins emptied unless unblinded).
+    collected : peaksift.execution.Collected
+        Everything the read/select/pair step returned (cut flow, files, pT and rapidity).
+    background_fit, fit : FitResult
+        Background-only fit, and the signal-plus-background fit at the best hypothesis
+        with free mass and width.
+    scan : ScanResult
+        The mass scan.
+    best : dict
+        Best hypothesis with local and global significance (the results.json ``best``).
+    limits : LimitResult or None
+        Upper limits (None when ``limits.enabled = false``).
+    known_matches : tuple of KnownMatch
+        Known particles near the fitted peak, nearest first.
+    calibration : dict or None
+        The calibration check (fitted vs tabulated mass) when configured.
+    provenance : dict
+        Inputs with sha256, config sha256, seed, versions, start and finish times.
+    outdir : Path or None
+        Where the outputs were written (None when ``out=False``).
+    figures : dict
+        Figure name -> PNG path.
+    """
+
+    config: Config
+    histogram: Any
+    collected: Any
+    background_fit: Any
+    fit: Any
+    scan: Any
+    best: Mapping[str, Any]
+    limits: Any
+    known_matches: tuple[Any, ...]
+    calibration: Mapping[str, Any] | None
+    provenance: Mapping[str, Any]
+    blinding: Mapping[str, Any]
+    outdir: Path | None = None
+    figures: Mapping[str, Path] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The content of ``results.json``."""
+        from . import __version__
+
+        col = self.collected
+        cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
+        fit = _fit_dict(self.fit) if self.fit is not None else _blinded_fit()
+        scan = _plain(self.scan.to_dict())
+        scan_extra = {"resolution_model": self.config.model.resolution.kind,
+                      "signal_shape": _scan_signal_name(self.config)}
+        out: dict[str, Any] = {
+            "peaksift_version": __version__,
+            "config": self.config.to_dict(),
+            "input": {
+                "files": list(col.files_read),
+                "files_skipped": [s.to_dict() for s in col.files_skipped],
+                "events_read": int(col.events_read),
+                "events_selected": _events_selected(cutflow),
+                "candidates": int(self.histogram.total()) if not self.histogram.is_weighted
+                else int(col.window_candidates),
+                "candidates_all_masses": int(col.candidates),
+                "sum_of_weights": float(self.histogram.total()),
+                "cutflow": cutflow,
+            },
+            "fit": fit,
+            "background_only_fit": _fit_dict(self.background_fit)
+            if self.background_fit is not None else None,
+            "scan": {**scan, **scan_extra},
+            "best": _plain(dict(self.best)),
+            "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
+            "known_matches": [k.to_dict() for k in self.known_matches],
+            "calibration": _plain(dict(self.calibration)) if self.calibration else None,
+            "blinding": dict(self.blinding),
+            "provenance": _plain(dict(self.provenance)),
+        }
+        if self.outdir is not None:
+            out["outputs"] = {"dir": str(self.outdir),
+                              "figures": {k: Path(v).name for k, v in self.figures.items()}}
+        return out
+
+
+def _plain(o: Any) -> Any:
+    if isinstance(o, Mapping):
+        return {str(k): _plain(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_plain(v) for v in o]
+    if isinstance(o, np.ndarray):
+        return _plain(o.tolist())
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, Path):
+        return str(o)
+    return o
+
+
+def _fit_dict(fr: Any) -> dict[str, Any]:
+    d = _plain(fr.to_dict())
+    keep = ("valid", "peak_mass", "width", "signal_yield", "background_yield", "gof")
+    return {**{k: d.get(k) for k in keep}, **{k: v for k, v in d.items() if k not in keep}}
+
+
+def _blinded_fit() -> dict[str, Any]:
+    """The ``fit`` section while blinded: no fit looked inside, so no numbers."""
+    none = {"value": None, "error": None}
+    return {"valid": False, "peak_mass": dict(none), "width": dict(none),
+            "signal_yield": dict(none), "background_yield": dict(none),
+            "gof": {"chi2": None, "ndf": None, "p_value": None},
+            "problems": ["blinded: no signal-plus-background fit until --unblind"]}
+
+
+def _events_selected(cutflow: Mapping[str, int]) -> int:
+    """Events with at least one candidate: the last event-level counter of the cut flow."""
+    ev = [v for k, v in cutflow.items() if "event" in k and "candidate" not in k]
+    for k, v in cutflow.items():
+        if "pair" in k and "event" in k:
+            return int(v)
+    return int(ev[-1]) if ev else 0
+
+
+# ------------------------------------------------------------------------------ helpers
+def _utc() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _sha256(path: str | Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _versions() -> dict[str, str]:
+    from importlib import metadata
+
+    out = {"python": platform.python_version()}
+    for name in ("peaksift", "numpy", "scipy", "iminuit", "awkward", "pyarrow", "vector",
+                 "matplotlib", "particle"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:  # pragma: no cover
+            out[name] = "not installed"
+    return out
+
+
+def _scan_signal_name(cfg: Config) -> str:
+    if cfg.scan.signal:
+        return cfg.scan.signal
+    return "voigt" if cfg.model.resolution.natural_width > 0 else "gaussian"
+
+
+def _scan_masses(cfg: Config) -> np.ndarray:
+    """The grid of hypotheses: ``[scan]`` keys, or half the local resolution apart."""
+    lo, hi = cfg.spectrum.window
+    res = cfg.model.resolution
+    start = cfg.scan.start if cfg.scan.start is not None else lo + 3.0 * res.sigma(lo)
+    stop = cfg.scan.stop if cfg.scan.stop is not None else hi - 3.0 * res.sigma(hi)
+    if not stop > start:
+        raise ConfigError(
+            f"config {cfg.source}: the scan range is empty (start {start:g}, stop {stop:g} GeV): "
+            "the window is narrower than six resolution widths; widen spectrum.window or set "
+            "scan.start and scan.stop"
+        )
+    if cfg.scan.points is not None:
+        return np.linspace(start, stop, cfg.scan.points)
+    if cfg.scan.step is not None:
+        n = max(2, int(np.floor((stop - start) / cfg.scan.step + 1e-9)) + 1)
+        return start + cfg.scan.step * np.arange(n)
+    grid = [start]
+    while grid[-1] < stop:
+        grid.append(grid[-1] + 0.5 * float(res.sigma(grid[-1])))
+    grid[-1] = min(grid[-1], stop)
+    if len(grid) > 1 and grid[-1] - grid[-2] < 1e-9:
+        grid.pop()
+    return np.asarray(grid)
+
+
+def _selection(cfg: Config, lo: float, hi: float, nbins: int) -> Any:
+    from .execution import Selection
+
+    ob, pr = cfg.objects, cfg.pairing
+    return Selection(
+        first=ob.collection,
+        second=ob.second_collection or None,
+        edges=tuple(np.linspace(lo, hi, nbins + 1)),
+        window=(lo, hi),
+        cut=ob.cut or None,
+        second_cut=ob.second_cut or None,
+        event_cut=ob.event_cut or None,
+        charge=None if pr.charge == "any" else pr.charge,
+        choose=pr.choose,
+        target_mass=pr.target_mass,
+        min_delta_r=pr.min_delta_r or None,
+        strict=cfg.input.strict,
+    )
+
+
+def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
+    """Run the read/select/pair map-reduce once over the union of the needed windows."""
+    from .execution import collect
+
+    lo, hi = cfg.spectrum.window
+    ulo, uhi = lo, hi
+    if cfg.calibration.enabled and cfg.calibration.window is not None:
+        ulo = min(ulo, cfg.calibration.window[0])
+        uhi = max(uhi, cfg.calibration.window[1])
+    # the map-reduce histogram only serves as a progress/overview spectrum on the union;
+    # the analysis histograms are filled from the window masses below
+    width = (hi - lo) / cfg.spectrum.bins
+    nb = max(1, min(100_000, int(np.ceil((uhi - ulo) / width))))
+    ex = cfg.execution
+    col = collect(
+        cfg.input.files, _selection(cfg, ulo, uhi, nb),
+        engine=ex.engine, workers=ex.workers, address=ex.address or None,
+        chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
+    )
+    return col, ulo, uhi
+
+
+def _fill(col: Any, cfg: Config, lo: float, hi: float, nbins: int) -> Any:
+    from .histogram import MassHistogram
+
+    m = np.asarray(col.window_mass, dtype=float)
+    w = np.asarray(col.window_weight, dtype=float) if cfg.input.weights else None
+    h = MassHistogram(bins=nbins, range=(lo, hi))
+    sel = (m >= lo) & (m < hi)
+    h.fill(m[sel], None if w is None else w[sel])
+    return h
+
+
+def _shape(name: str, options: Mapping[str, Any]) -> Any:
+    from . import shapes
+
+    return shapes.get(name, **dict(options))
+
+
+# --------------------------------------------------------------------------- outputs
+class _Staging:
+    """A temporary directory next to ``target``, renamed into place by :meth:`commit`."""
+
+    def __init__(self, target: Path) -> None:
+        self.target = target
+        if target.exists() and not target.is_dir():
+            raise ConfigError(f"output path {str(target)!r} exists and is not a directory; "
+                              "choose another --out")
+        if target.is_dir() and any(target.iterdir()) and not (target / "results.json").exists() \
+                and not (target / "spectrum.json").exists():
+            raise ConfigError(
+                f"output directory {str(target)!r} exists and does not hold a previous peaksift "
+                "result; choose an empty or new directory with --out (nothing was overwritten)"
+            )
+        self.created: list[Path] = []
+        p = target.parent
+        while not p.exists():
+            self.created.append(p)
+            p = p.parent
+        target.parent.mkdir(parents=True, exist_ok=True)
+        self.path = target.parent / f".{target.name}.partial-{uuid.uuid4().hex[:8]}"
+        self.path.mkdir()
+
+    def commit(self) -> Path:
+        old = None
+        if self.target.exists():
+            old = self.target.parent / f".{self.target.name}.old-{uuid.uuid4().hex[:8]}"
+            os.replace(self.target, old)
+        os.replace(self.path, self.target)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        return self.target
+
+    def discard(self) -> None:
+        shutil.rmtree(self.path, ignore_errors=True)
+        for p in self.created:  # parents this run made, innermost first
+            with contextlib.suppress(OSError):
+                p.rmdir()
+
+
+@contextlib.contextmanager
+def _staged(target: Path | None) -> Iterator[_Staging | None]:
+    if target is None:
+        yield None
+        return
+    st = _Staging(target)
+    try:
+        yield st
+    except BaseException:
+        st.discard()
+        raise
+    st.commit()
+
+
+def _target(cfg: Config, out: str | os.PathLike[str] | bool | None) -> Path | None:
+    if out is False:
+        return None
+    if out is None or out is True:
+        p = Path(cfg.output.dir).expanduser()
+        return (p if p.is_absolute() else cfg.base_dir / p).resolve()
+    return Path(out).expanduser().resolve()
+
+
+def _check_inputs(cfg: Config) -> None:
+    """Resolve the input files before anything is written (a missing file stops the run)."""
+    from .events import list_files
+
+    try:
+        list_files(list(cfg.input.files))
+    except PeaksiftError as exc:
+        raise type(exc)(f"config {cfg.source}: input.files: {' '.join(str(exc).split())}") from None
+
+
+def _apply_overrides(cfg: Config, *, toys: int | None, seed: int | None,
+                     engine: str | None) -> Config:
+    ov: dict[str, Any] = {}
+    if toys is not None:
+        ov["significance__toys"] = int(toys)
+    if seed is not None:
+        ov["significance__seed"] = int(seed)
+    if engine is not None:
+        ov["execution__engine"] = engine
+    return cfg.with_overrides(**ov) if ov else cfg
+
+
+# ------------------------------------------------------------------------------ search
+def run_search(
+    config: str | os.PathLike[str] | Mapping[str, Any] | Config,
+    *,
+    out: str | os.PathLike[str] | bool | None = None,
+    unblind: bool | None = None,
+    toys: int | None = None,
+    seed: int | None = None,
+    engine: str | None = None,
+    progress: bool = False,
+) -> SearchResult:
+    """Run the whole search described by a configuration.
+
+    Parameters
+    ----------
+    config : path, mapping or Config
+        The TOML file (see ``docs/config.md``), a mapping of the same layout, or a
+        :class:`~peaksift.config.Config`.
+    out : path, False or None
+        Output directory; None uses ``output.dir`` from the config (relative to the config
+        file); False writes nothing and only returns the result.
+    unblind : bool, optional
+        Lift the configured blinding for this run.
+    toys, seed, engine : optional
+        Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
+    progress : bool
+        Show progress bars (reading; toys).
+
+    Returns
+    -------
+    SearchResult
+        Its :meth:`~SearchResult.to_dict` is the content of ``results.json``.
+
+    Raises
+    ------
+    PeaksiftError
+        Any user-facing problem (configuration, input, cut, fit); nothing is written then.
+    """
+    started = _utc()
+    cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
+    _check_inputs(cfg)
+    target = _target(cfg, out)
+    with _staged(target) as stage:
+        res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
+                      stage=stage, target=target)
+    return res
+
+
+def _blinding(cfg: Config, unblind: bool) -> dict[str, Any]:
+    b = cfg.blinding
+    return {"enabled": b.enabled, "window": list(b.window) if b.window else None,
+            "unblinded": bool(b.enabled and unblind),
+            "active": bool(b.enabled and not unblind)}
+
+
+def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
+            stage: _Staging | None, target: Path | None) -> SearchResult:
+    from .fitting import fit
+    from .resonances import match_known, pair_charge
+    from .stats.scan import scan
+
+    col, _, _ = _collect(cfg, progress=progress)
+    lo, hi = cfg.spectrum.window
+    hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
+    if hist.total() <= 0:
+        raise FitError(
+            f"no candidates in the fit window [{lo:g}, {hi:g}] GeV after the selection "
+            f"({col.events_read} events read); loosen objects.cut or move spectrum.window"
+        )
+    blind = _blinding(cfg, unblind)
+    blind_window = tuple(cfg.blinding.window) if blind["active"] else None
+
+    res = cfg.model.resolution
+    sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
+    bkg = _shape(cfg.model.background, cfg.model.background_options)
+    scan_sig = _shape(_scan_signal_name(cfg), {})
+    masses = _scan_masses(cfg)
+    binned = {"auto": None, "binned": True, "unbinned": False}[cfg.model.fit]
+    data = hist if binned is not False else np.asarray(col.window_mass)[
+        (col.window_mass >= lo) & (col.window_mass < hi)]
+
+    sigma_fn = res.sigma
+    if res.natural_width > 0:
+        width = float(res.natural_width)
+    else:
+        width = None
+    seed = cfg.significance.seed
+
+    sres = scan(hist, scan_sig, bkg, masses, resolution=sigma_fn, window=(lo, hi),
+                natural_width=width, blind=blind_window, refit=False)
+    best = dict(sres.global_significance(
+        method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
+        u0=cfg.significance.reference_level, progress=progress))
+    best.setdefault("toys", cfg.significance.toys)
+
+    m_best = float(best["mass"])
+    start = {"mass": m_best}
+    pnames = [p.name for p in sig_fit.parameters]
+    if "sigma" in pnames:
+        start["sigma"] = float(sigma_fn(m_best))
+    if "width" in pnames:
+        start["width"] = max(width or 0.0, 0.1 * float(sigma_fn(m_best)))
+    if blind_window is None:
+        fres = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start)
+    else:  # while blinded no fit may look inside the blinded window
+        fres = None
+    bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
+                fixed={"signal_yield": 0.0, **start}) if blind_window is None else None
+
+    limits = None
+    import importlib.util
+    if cfg.limits.enabled and importlib.util.find_spec("peaksift.stats.limits"):  # TEMP
+        limits = _limits(cfg, hist, scan_sig, bkg, masses, sigma_fn, width, blind_window,
+                         progress)
+
+    peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
+    m_fit = peak.get("value") or m_best
+    m_err = peak.get("error") or 0.0
+    known = tuple(match_known(float(m_fit), error=float(m_err),
+                              resolution=float(sigma_fn(float(m_fit))),
+                              charge=pair_charge(cfg.pairing.charge)))
+    cal, cal_hist, cal_fit = _calibration(cfg, col)
+
+    inputs = [{"path": str(p), "sha256": _sha256(p)} for p in col.files_read]
+    prov: dict[str, Any] = {
+        "inputs": inputs,
+        "files_skipped": [s.to_dict() for s in col.files_skipped],
+        "config_path": cfg.source,
+        "config_sha256": cfg.sha256,
+        "seed": seed,
+        "versions": _versions(),
+        "execution": {k: v for k, v in dict(col.engine_info).items()
+                      if k in ("engine", "workers", "address", "chunks", "chunk_events")},
+        "started": started,
+        "finished": "",
+    }
+    result = SearchResult(
+        config=cfg, histogram=hist, collected=col, background_fit=bonly, fit=fres, scan=sres,
+        best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
+        blinding=blind, outdir=target, figures={},
+    )
+    if stage is None:
+        prov["finished"] = _utc()
+        return result
+
+    from . import plotting
+    from .report import write_report, write_results_json
+
+    figdir = stage.path / "figures"
+    figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
+                                   log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    hist.save(stage.path / "spectrum.json")
+    prov["finished"] = _utc()
+    final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
+    result = SearchResult(**{**result.__dict__, "figures": final_figs})
+    d = result.to_dict()
+    write_results_json(d, stage.path / "results.json")
+    write_report(d, stage.path, figs)
+    return result
+
+
+def _opt(**kw: Any) -> dict[str, Any]:
+    """Keyword arguments whose value is not None (optional features of the layers)."""
+    return {k: v for k, v in kw.items() if v is not None}
+
+
+def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigma_fn: Any,
+            width: float | None, blind: Any, progress: bool) -> Any:
+    from .stats.limits import upper_limits
+
+    n = min(cfg.limits.points, masses.size)
+    lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
+    L = cfg.limits
+    return upper_limits(
+        hist, sig, bkg, lm, resolution=sigma_fn, window=cfg.spectrum.window, cl=L.cl,
+        method=L.method,
+        **_opt(toys=L.toys if L.method == "toys" else None, seed=cfg.significance.seed,
+               natural_width=width, blind=blind, luminosity=L.luminosity,
+               luminosity_uncertainty=L.luminosity_uncertainty or None,
+               efficiency=L.efficiency if L.luminosity is not None else None,
+               efficiency_uncertainty=L.efficiency_uncertainty or None,
+               unit=L.cross_section_unit if L.luminosity is not None else None),
+    )
+
+
+def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any]:
+    c = cfg.calibration
+    if not c.enabled:
+        return None, None, None
+    from .fitting import fit
+    from .resonances import lookup
+
+    ref = lookup(c.particle)
+    lo, hi = c.window
+    h = _fill(col, cfg, lo, hi, c.bins)
+    sig = _shape(c.signal, c.signal_options)
+    bkg = _shape(c.background, c.background_options)
+    names = [p.name for p in sig.parameters]
+    start: dict[str, float] = {"mass": ref.mass}
+    fixed: dict[str, float] = {}
+    if "sigma" in names:
+        start["sigma"] = float(cfg.model.resolution.sigma(ref.mass))
+    if "width" in names:
+        start["width"] = ref.width
+        if c.fix_width:
+            fixed["width"] = ref.width
+    try:
+        fr = fit(h, sig, bkg, (lo, hi), start=start, fixed=fixed or None)
+    except FitError as exc:
+        raise FitError(f"calibration fit of {c.particle} in [{lo:g}, {hi:g}] GeV: {exc}") from None
+    d = fr.to_dict()
+    pm = d.get("peak_mass") or {}
+    m, e = float(pm.get("value", np.nan)), float(pm.get("error") or np.nan)
+    values = d.get("values") or {}
+    out = {
+        "particle": ref.name,
+        "pdgid": ref.pdgid,
+        "table_mass": ref.mass,
+        "table_mass_error": ref.mass_error,
+        "table_width": ref.width,
+        "window": [lo, hi],
+        "signal_shape": c.signal,
+        "background_shape": c.background,
+        "width_fixed_to_table": bool(fixed),
+        "valid": bool(d.get("valid")),
+        "fitted_mass": {"value": m, "error": e},
+        "fitted_resolution": _value_error(d, values, "sigma"),
+        "signal_yield": d.get("signal_yield"),
+        "shift": m - ref.mass,
+        "shift_relative_permille": 1000.0 * (m - ref.mass) / ref.mass,
+        "shift_sigma": (m - ref.mass) / np.hypot(e, ref.mass_error) if e > 0 else None,
+        "source": "particle package (PDG tables)",
+    }
+    return out, h, fr
+
+
+def _value_error(d: Mapping[str, Any], values: Any, name: str) -> dict[str, Any] | None:
+    if isinstance(values, Mapping) and name in values:
+        errs = d.get("errors") or {}
+        v = values[name]
+        if isinstance(v, Mapping):
+            return {"value": v.get("value"), "error": v.get("error")}
+        return {"value": v, "error": errs.get(name) if isinstance(errs, Mapping) else None}
+    return None
+
+
+# ---------------------------------------------------------------------------- spectrum
+def run_spectrum(
+    config: str | os.PathLike[str] | Mapping[str, Any] | Config,
+    *,
+    out: str | os.PathLike[str] | bool | None = None,
+    engine: str | None = None,
+    progress: bool = False,
+) -> SpectrumResult:
+    """Only the selected spectrum: ``spectrum.json`` (MassHistogram format) and its figure."""
+    cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
+    _check_inputs(cfg)
+    target = _target(cfg, out)
+    with _staged(target) as stage:
+        col, _, _ = _collect(cfg, progress=progress)
+        lo, hi = cfg.spectrum.window
+        hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
+        files: dict[str, Path] = {}
+        if stage is not None:
+            from . import plotting
+
+            hist.save(stage.path / "spectrum.json")
+            blind = cfg.blinding.window if cfg.blinding.enabled else None
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)
+                figs = plotting.spectrum_only(hist, stage.path / "figures",
+                                              formats=cfg.output.formats,
+                                              log_scale=cfg.output.log_scale, blind=blind,
+                                              title=_short_title(cfg))
+                figs.update(plotting.candidates(col, stage.path / "figures",
+                                                formats=cfg.output.formats))
+            files = {"spectrum.json": target / "spectrum.json",
+                     **{k: target / "figures" / Path(v).name for k, v in figs.items()}}
+    return SpectrumResult(config=cfg, histogram=hist, collected=col, outdir=target, files=files)
+
+
+def _short_title(cfg: Config) -> str:
+    a = cfg.objects.collection
+    b = cfg.objects.second_collection or a
+    return f"{a}-{b} pairs, charge {cfg.pairing.charge}"
+
+
+# --------------------------------------------------------------------------------- fit
+def run_fit(
+    config: str | os.PathLike[str] | Mapping[str, Any] | Config,
+    mass: float,
+    *,
+    engine: str | None = None,
+    progress: bool = False,
+) -> Any:
+    """One signal-plus-background fit with ``model.signal`` started at ``mass`` GeV.
+
+    Returns the :class:`~peaksift.fitting.FitResult`.
+    """
+    from .fitting import fit
+
+    cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
+    lo, hi = cfg.spectrum.window
+    if not (lo < float(mass) < hi):
+        raise ConfigError(f"--mass {mass:g} GeV lies outside spectrum.window [{lo:g}, {hi:g}]; "
+                          "choose a mass inside the fit window")
+    col, _, _ = _collect(cfg, progress=progress)
+    hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
+    sig = _shape(cfg.model.signal, cfg.model.signal_options)
+    bkg = _shape(cfg.model.background, cfg.model.background_options)
+    start = {"mass": float(mass)}
+    names = [p.name for p in sig.parameters]
+    if "sigma" in names:
+        start["sigma"] = float(cfg.model.resolution.sigma(float(mass)))
+    binned = {"auto": None, "binned": True, "unbinned": False}[cfg.model.fit]
+    blind = tuple(cfg.blinding.window) if cfg.blinding.enabled else None
+    return fit(hist, sig, bkg, (lo, hi), binned=binned, start=start, **_opt(blind=blind))
