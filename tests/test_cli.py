@@ -1,0 +1,154 @@
+"""The command line: user mistakes exit 2 with one line and leave no outputs behind."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from peaksift.cli import main
+
+pa = pytest.importorskip("pyarrow")
+pq = pytest.importorskip("pyarrow.parquet")
+
+
+@pytest.fixture(scope="module")
+def tiny_data(tmp_path_factory) -> Path:
+    """A small opposite-charge dimuon file: a falling continuum (two muons per event)."""
+    d = tmp_path_factory.mktemp("tiny")
+    rng = np.random.default_rng(5)
+    n = 3000
+    m = 60.0 + rng.exponential(30.0, n)
+    phi = rng.uniform(-np.pi, np.pi, n)
+    eta = rng.uniform(-1.5, 1.5, n)
+    rows = []
+    for i in range(n):
+        pt = m[i] / 2.0  # any valid kinematics will do for the error paths
+        rows.append([
+            {"pt": pt, "eta": float(eta[i]), "phi": float(phi[i]), "mass": 0.1057,
+             "charge": 1, "isolation": 0.05},
+            {"pt": pt, "eta": float(eta[i]), "phi": float(phi[i] + np.pi), "mass": 0.1057,
+             "charge": -1, "isolation": 0.05},
+        ])
+    pq.write_table(pa.table({"muon": rows}), d / "events.parquet")
+    return d
+
+
+def _config(d: Path, extra: str = "", files: str = '"events.parquet"', cut: str = "pt > 5") -> Path:
+    p = d / "c.toml"
+    p.write_text(f"""
+[input]
+files = [{files}]
+[objects]
+collection = "muon"
+cut = "{cut}"
+[spectrum]
+window = [70.0, 150.0]
+bins = 40
+[model.resolution]
+relative = 0.02
+{extra}
+""")
+    return p
+
+
+def _run(capsys, argv):
+    rc = main(argv)
+    cap = capsys.readouterr()
+    return rc, cap.out, cap.err
+
+
+def _assert_nothing_written(parent: Path, name: str) -> None:
+    assert not (parent / name).exists()
+    leftovers = [p.name for p in parent.iterdir() if p.name.startswith(f".{name}.")]
+    assert leftovers == [], f"partial outputs left behind: {leftovers}"
+
+
+def _one_line(err: str) -> str:
+    lines = [x for x in err.splitlines() if x.strip()]
+    assert len(lines) == 1, err
+    assert lines[0].startswith("peaksift: error: ")
+    return lines[0]
+
+
+def test_bad_key_suggests_and_exits_2(tiny_data, capsys, tmp_path):
+    cfg = _config(tiny_data, '[model]\nbackgroud = "bernstein"\n')
+    out = tmp_path / "out"
+    rc, _, err = _run(capsys, ["search", str(cfg), "--out", str(out)])
+    assert rc == 2
+    line = _one_line(err)
+    assert "model.backgroud" in line and "did you mean model.background?" in line
+    _assert_nothing_written(tmp_path, "out")
+
+
+def test_missing_input_file_exits_2(tiny_data, capsys, tmp_path):
+    cfg = _config(tiny_data, files='"no_such_dir/*.parquet"')
+    rc, _, err = _run(capsys, ["search", str(cfg), "--out", str(tmp_path / "out")])
+    assert rc == 2
+    line = _one_line(err)
+    assert "input.files" in line and "no_such_dir" in line
+    _assert_nothing_written(tmp_path, "out")
+
+
+def test_missing_config_exits_2(capsys, tmp_path):
+    rc, _, err = _run(capsys, ["search", str(tmp_path / "nope.toml")])
+    assert rc == 2
+    assert "does not exist" in _one_line(err)
+
+
+def test_bad_cut_syntax_exits_2(tiny_data, capsys, tmp_path):
+    cfg = _config(tiny_data, cut="pt > 5 and eta.real < 1")
+    rc, _, err = _run(capsys, ["search", str(cfg), "--out", str(tmp_path / "out")])
+    assert rc == 2
+    line = _one_line(err)
+    assert "objects.cut" in line and "character" in line
+    _assert_nothing_written(tmp_path, "out")
+
+
+def test_unknown_cut_field_found_while_reading_leaves_nothing(tiny_data, capsys, tmp_path):
+    # the field name can only be checked against the data: the run has started and staged
+    # its output directory by then, and must remove it
+    cfg = _config(tiny_data, cut="pt > 5 and isolaton < 0.1")
+    out = tmp_path / "deep" / "out"
+    rc, _, err = _run(capsys, ["spectrum", str(cfg), "--out", str(out)])
+    assert rc == 2
+    line = _one_line(err)
+    assert "isolaton" in line and "isolation" in line
+    assert not (tmp_path / "deep").exists(), "directories made by the failed run remain"
+
+
+def test_fit_mass_outside_window_exits_2(tiny_data, capsys):
+    cfg = _config(tiny_data)
+    rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", "300"])
+    assert rc == 2
+    assert "--mass 300" in _one_line(err)
+
+
+def test_spectrum_writes_histogram_and_figure(tiny_data, capsys, tmp_path):
+    from peaksift.histogram import MassHistogram
+
+    cfg = _config(tiny_data)
+    out = tmp_path / "spec"
+    rc, stdout, _ = _run(capsys, ["spectrum", str(cfg), "--out", str(out), "--quiet"])
+    assert rc == 0
+    h = MassHistogram.load(out / "spectrum.json")
+    assert h.nbins == 40 and h.lo == 70.0 and h.hi == 150.0
+    assert (out / "figures" / "spectrum.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "candidates" in stdout
+    # rerunning into a previous result replaces it; into a foreign directory refuses
+    assert main(["spectrum", str(cfg), "--out", str(out), "--quiet"]) == 0
+    foreign = tmp_path / "mine"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("keep me")
+    capsys.readouterr()
+    rc, _, err = _run(capsys, ["spectrum", str(cfg), "--out", str(foreign)])
+    assert rc == 2 and "does not hold a previous peaksift result" in _one_line(err)
+    assert (foreign / "notes.txt").read_text() == "keep me"
+
+
+def test_overrides_reach_the_config(tiny_data, capsys, tmp_path):
+    cfg = _config(tiny_data)
+    rc, _, err = _run(capsys, ["search", str(cfg), "--toys", "-5", "--out", str(tmp_path / "o")])
+    assert rc == 2 and "significance.toys" in _one_line(err)
+    _assert_nothing_written(tmp_path, "o")
