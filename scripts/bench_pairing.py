@@ -1,0 +1,187 @@
+"""Speed and memory of peaksift.pair against a hand-written baseline and a floor.
+
+On generated events (default 2M, Poisson-distributed muon multiplicity with mean 2.2):
+
+* baseline: the same selection written by hand with vector + awkward
+  (``ak.combinations``, a charge mask, ``(a + b).mass``; for "leading" an ``ak.argmax``
+  over the harder-then-softer pT key);
+* floor: converting every object to Cartesian components once
+  (flatten pt, eta, phi, mass and :func:`peaksift.kinematics.to_cartesian`);
+* peaksift: ``pair(events, "muon", charge="opposite", choose=...)``.
+
+Prints events/s, speed ratios (baseline time / peaksift time, and floor time / peaksift
+time; targets >= 2 and >= 0.6) and the peak extra resident memory of one ``pair`` call
+(measured in a forked child by polling /proc) relative to the size of the input columns
+(target <= 3).  Each timing is the best of ``--repeat`` runs.  Runs in well under 3 minutes.
+
+    python scripts/bench_pairing.py [--events 2000000] [--repeat 3]
+"""
+
+from __future__ import annotations
+
+import argparse
+import ctypes
+import os
+import threading
+import time
+
+import awkward as ak
+import numpy as np
+import vector
+
+from peaksift import kinematics
+from peaksift.pairing import pair
+
+vector.register_awkward()
+
+
+def make_events(n: int, seed: int = 7) -> ak.Array:
+    """Generated muon events: Poisson(2.2) muons with a falling pT spectrum.
+
+    One event in five holds a decay pair of an invented 60 GeV resonance (opposite charges,
+    back-to-back in its rest frame); the rest are random-charge muons.
+    """
+    try:
+        from particle import Particle
+
+        m_mu = Particle.from_pdgid(13).mass / 1000.0  # PDG tables via `particle`, GeV
+    except Exception:  # noqa: BLE001 - the benchmark does not need the exact value
+        m_mu = 0.1057
+    rng = np.random.default_rng(seed)
+    counts = rng.poisson(2.2, n).astype(np.int64)
+    total = int(counts.sum())
+    pt = 5.0 + rng.exponential(18.0, total)
+    eta = rng.uniform(-2.5, 2.5, total)
+    phi = rng.uniform(-np.pi, np.pi, total)
+    charge = rng.choice(np.array([-1, 1], dtype=np.int32), total)
+    iso = rng.exponential(0.08, total)
+    # resonance decays in 20% of events with >= 2 muons: overwrite the first two muons
+    offsets = np.concatenate([[0], np.cumsum(counts)])
+    sig = np.flatnonzero((counts >= 2) & (rng.uniform(size=n) < 0.2))
+    i0 = offsets[sig]
+    half = 30.0 * rng.uniform(0.8, 1.0, sig.size)
+    dphi = np.pi + rng.normal(0, 0.3, sig.size)
+    pt[i0], pt[i0 + 1] = half, half * rng.uniform(0.7, 1.0, sig.size)
+    phi[i0 + 1] = np.angle(np.exp(1j * (phi[i0] + dphi)))
+    charge[i0], charge[i0 + 1] = 1, -1
+    mu = ak.zip(
+        {
+            "pt": ak.unflatten(pt, counts),
+            "eta": ak.unflatten(eta, counts),
+            "phi": ak.unflatten(phi, counts),
+            "mass": ak.unflatten(np.full(total, m_mu), counts),
+            "charge": ak.unflatten(charge, counts),
+            "isolation": ak.unflatten(iso, counts),
+        },
+        with_name="Momentum4D",
+    )
+    return ak.zip({"muon": mu, "weight": np.ones(n)}, depth_limit=1)
+
+
+def baseline_all(events: ak.Array) -> np.ndarray:
+    mu = events.muon
+    p = ak.combinations(mu, 2, fields=["a", "b"])
+    p = p[p.a.charge * p.b.charge < 0]
+    return ak.to_numpy(ak.flatten((p.a + p.b).mass))
+
+
+def baseline_leading(events: ak.Array) -> np.ndarray:
+    mu = events.muon
+    p = ak.combinations(mu, 2, fields=["a", "b"])
+    p = p[p.a.charge * p.b.charge < 0]
+    hi = np.maximum(p.a.pt, p.b.pt)
+    lo = np.minimum(p.a.pt, p.b.pt)
+    best = p[ak.argmax(hi * 1e6 + lo, axis=1, keepdims=True)]
+    return ak.to_numpy(ak.flatten(ak.drop_none((best.a + best.b).mass)))
+
+
+def floor(events: ak.Array) -> tuple[np.ndarray, ...]:
+    mu = events.muon
+    cols = [ak.to_numpy(ak.flatten(mu[f], axis=1)) for f in ("pt", "eta", "phi", "mass")]
+    return kinematics.to_cartesian(*cols)
+
+
+def best_time(fn, repeat: int) -> tuple[float, object]:
+    best, out = np.inf, None
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        out = fn()
+        best = min(best, time.perf_counter() - t0)
+    return best, out
+
+
+def _rss() -> int:
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+
+
+def peak_extra_rss(fn) -> int:
+    """Peak resident memory above the starting level while ``fn`` runs, in a forked child."""
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # child
+        os.close(r)
+        try:
+            ctypes.CDLL("libc.so.6").malloc_trim(0)
+        except OSError:
+            pass
+        start = _rss()
+        peak = [start]
+        done = threading.Event()
+
+        def poll() -> None:
+            while not done.is_set():
+                peak[0] = max(peak[0], _rss())
+                time.sleep(0.0005)
+
+        t = threading.Thread(target=poll, daemon=True)
+        t.start()
+        out = fn()
+        peak[0] = max(peak[0], _rss())
+        done.set()
+        t.join()
+        del out
+        os.write(w, str(peak[0] - start).encode())
+        os._exit(0)
+    os.close(w)
+    data = os.read(r, 64)
+    os.waitpid(pid, 0)
+    os.close(r)
+    return int(data or b"0")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--events", type=int, default=2_000_000)
+    ap.add_argument("--repeat", type=int, default=3)
+    args = ap.parse_args()
+
+    t0 = time.perf_counter()
+    events = make_events(args.events)
+    n_obj = int(ak.sum(ak.num(events.muon)))
+    input_bytes = int(events.nbytes)
+    print(f"{args.events} events, {n_obj} muons ({n_obj / args.events:.2f} per event), "
+          f"input columns {input_bytes / 1e6:.0f} MB (generated in {time.perf_counter() - t0:.1f} s)")
+
+    pair(events[:1000], "muon", charge="opposite")  # compile / load the kernels outside timing
+    pair(events[:1000], "muon", charge="opposite", choose="leading")
+
+    t_floor, _ = best_time(lambda: floor(events), args.repeat)
+    print(f"floor (to Cartesian once): {t_floor:.3f} s")
+    for choose, base in (("all", baseline_all), ("leading", baseline_leading)):
+        t_base, ref = best_time(lambda b=base: b(events), max(1, args.repeat - 1))
+        t_ours, cands = best_time(
+            lambda c=choose: pair(events, "muon", charge="opposite", choose=c), args.repeat)
+        ok = np.allclose(np.sort(ref), np.sort(cands.mass), rtol=1e-9, atol=0.0)
+        extra = peak_extra_rss(lambda c=choose: pair(events, "muon", charge="opposite", choose=c))
+        print(f"choose={choose!r}: {len(cands)} candidates (masses agree with baseline: {ok})")
+        print(f"  baseline {t_base:.3f} s, peaksift {t_ours:.3f} s "
+              f"({args.events / t_ours / 1e6:.2f} M events/s)")
+        print(f"  speed vs baseline: {t_base / t_ours:.2f}x (target >= 2)")
+        print(f"  speed vs floor:    {t_floor / t_ours:.2f}  (target >= 0.6)")
+        print(f"  peak extra memory: {extra / 1e6:.0f} MB = {extra / input_bytes:.2f}x input "
+              "(target <= 3)")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,839 @@
+"""Pair building and candidate choice: from events to flat di-object candidates.
+
+Use :func:`pair` to turn events into :class:`Candidates` (flat numpy columns: mass, pT and
+rapidity of each pair, event weight, event index, the two object indices) with a cut flow.
+Use :meth:`Candidates.concatenate` to join chunks, :meth:`Candidates.in_window` to keep a
+mass window.
+
+What :func:`pair` does, in order
+--------------------------------
+1. ``event_cut`` (text over per-event scalars and ``n_<collection>`` counts, a callable or
+   a mask; see :mod:`peaksift.cuts`) selects events.
+2. ``cut`` selects objects of ``first``; ``second_cut`` selects objects of ``second``.  For
+   two different collections each cut applies to its own collection only (``second_cut=None``
+   means no requirement on the second collection's objects).
+3. Pairs are formed inside each event from the selected objects:
+
+   * one collection: every unordered pair ``i < j`` (``first_index < second_index``);
+   * two collections: every ``(i, j)`` with ``i`` in ``first`` and ``j`` in ``second``.
+
+   Within an event, pairs come in lexicographic order of ``(first_index, second_index)``;
+   events come in order.  Object indices always refer to the collection as read (before
+   any cut).
+4. Pair requirements: ``charge="opposite"`` keeps ``q_i * q_j < 0``, ``"same"`` keeps
+   ``q_i * q_j > 0`` (a neutral object, ``q = 0``, passes neither); ``min_delta_r`` keeps
+   pairs with :math:`\\Delta R \\ge` ``min_delta_r`` (overlap removal).
+5. ``choose`` decides what each event contributes among the pairs that passed:
+
+   * ``"all"``: every pair (``Candidates.multiplicity`` then gives, for each candidate, the
+     number of candidates its event contributed);
+   * ``"leading"``: the pair whose harder object has the highest pT; if equal, the pair
+     whose softer object has the higher pT;
+   * ``"max_sum_pt"``: the pair with the highest scalar sum ``pT_i + pT_j``;
+   * ``"closest"``: the pair whose mass is nearest ``target_mass`` (smallest
+     ``|m - target_mass|``).
+
+   Ties (exactly equal keys) go to the pair that comes first in the order of step 3, i.e.
+   the lowest ``first_index``, then the lowest ``second_index``.  A pair whose key is NaN
+   is never chosen.
+
+Four-vectors are added in Cartesian components (:func:`peaksift.kinematics.to_cartesian`,
+computed once per object); the pair's mass is :func:`peaksift.kinematics.invariant_mass`,
+its rapidity :func:`peaksift.kinematics.rapidity` and its pT
+:math:`\\sqrt{p_x^2 + p_y^2}` of the summed momentum (PDG Review, "Kinematics").
+
+Implementation: all work is on flat numpy columns (collection offsets + contents).  The
+pair loops run in small numba kernels (compiled once, cached on disk): numpy alone needs
+several full-size index arrays per pair (repeat/cumsum index tricks, gathers, masks) and
+could not reach the speed target set for this layer (see ``scripts/bench_pairing.py``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numba
+import numpy as np
+
+from . import kinematics
+from .cuts import CutLike, _flat_object_mask, event_mask
+from .errors import ConfigError, InputError, closest
+
+__all__ = ["CHOOSE_RULES", "Candidates", "pair"]
+
+CHOOSE_RULES = ("all", "leading", "max_sum_pt", "closest")
+_CHARGE = {None: 0, "any": 0, "opposite": -1, "same": 1}
+_CUTFLOW_KEYS = ("events_in", "events_after_event_cut", "events_with_pair", "candidates")
+_KINEMATIC_FIELDS = ("pt", "eta", "phi", "mass")
+
+
+# ------------------------------------------------------------------------ result
+@dataclass(frozen=True, eq=False)
+class Candidates:
+    """Di-object candidates as flat numpy columns (one entry per candidate).
+
+    Attributes
+    ----------
+    mass, pt, rapidity : ndarray (float64)
+        Invariant mass (GeV), transverse momentum (GeV) and rapidity of the pair.
+    weight : ndarray (float64)
+        The event's weight (1 when the events carry no ``weight`` field).
+    event_index : ndarray (int64)
+        Index of the event (plus the ``event_offset`` given to :func:`pair`, so chunks keep
+        global indices).
+    first_index, second_index : ndarray (int64)
+        Index of each object within its event's collection, as read (before cuts).
+    cutflow : dict
+        ``events_in``, ``events_after_event_cut``, ``events_with_pair`` (events with at
+        least one pair passing every requirement), ``candidates``.
+    multiplicity : ndarray (int64) or None
+        With ``choose="all"``: the number of candidates from the same event, per candidate
+        (e.g. weight by ``1 / multiplicity`` to count each event once).  None otherwise.
+    choose : str
+        The rule that produced the candidates.
+    """
+
+    mass: np.ndarray
+    pt: np.ndarray
+    rapidity: np.ndarray
+    weight: np.ndarray
+    event_index: np.ndarray
+    first_index: np.ndarray
+    second_index: np.ndarray
+    cutflow: dict[str, int] = field(default_factory=dict)
+    multiplicity: np.ndarray | None = None
+    choose: str = "all"
+
+    _COLUMNS = ("mass", "pt", "rapidity", "weight", "event_index", "first_index",
+                "second_index")
+
+    def __len__(self) -> int:
+        return int(self.mass.size)
+
+    def __repr__(self) -> str:
+        flow = ", ".join(f"{k}={v}" for k, v in self.cutflow.items())
+        return f"Candidates({len(self)} candidates, choose={self.choose!r}, {flow})"
+
+    @classmethod
+    def empty(cls, choose: str = "all") -> Candidates:
+        """No candidates, zero counters."""
+        f = np.zeros(0)
+        i = np.zeros(0, dtype=np.int64)
+        return cls(f, f.copy(), f.copy(), f.copy(), i, i.copy(), i.copy(),
+                   dict.fromkeys(_CUTFLOW_KEYS, 0),
+                   i.copy() if choose == "all" else None, choose)
+
+    @classmethod
+    def concatenate(cls, parts: Sequence[Candidates]) -> Candidates:
+        """Join candidates from several chunks: columns concatenated, counters summed.
+
+        Event indices are kept as they are (give each chunk its ``event_offset`` when
+        pairing so they are global).  All parts must come from the same ``choose`` rule.
+        """
+        parts = list(parts)
+        if not parts:
+            return cls.empty()
+        for p in parts:
+            if not isinstance(p, Candidates):
+                raise InputError(
+                    f"Candidates.concatenate takes Candidates, got {type(p).__name__}")
+        rules = {p.choose for p in parts}
+        if len(rules) > 1:
+            raise InputError(
+                f"cannot concatenate candidates made with different choose rules "
+                f"({', '.join(sorted(rules))}); pair every chunk with the same options")
+        cols = {c: np.concatenate([getattr(p, c) for p in parts]) for c in cls._COLUMNS}
+        keys: list[str] = []
+        for p in parts:
+            keys += [k for k in p.cutflow if k not in keys]
+        flow = {k: int(sum(int(p.cutflow.get(k, 0)) for p in parts)) for k in keys}
+        mult = None
+        if all(p.multiplicity is not None for p in parts):
+            mult = np.concatenate([p.multiplicity for p in parts])
+        return cls(**cols, cutflow=flow, multiplicity=mult, choose=parts[0].choose)
+
+    def select(self, mask: Any) -> Candidates:
+        """The candidates where the boolean ``mask`` (one entry per candidate) is true.
+
+        The cut flow is copied unchanged (it describes the pairing).
+        """
+        m = np.asarray(mask)
+        if m.dtype != np.bool_ or m.shape != self.mass.shape:
+            raise InputError(
+                f"select needs a boolean mask of {len(self)} entries, got {m.dtype} {m.shape}")
+        cols = {c: getattr(self, c)[m] for c in self._COLUMNS}
+        mult = None if self.multiplicity is None else self.multiplicity[m]
+        return dataclasses.replace(self, **cols, cutflow=dict(self.cutflow), multiplicity=mult)
+
+    def in_window(self, lo: float, hi: float) -> Candidates:
+        """Candidates with ``lo <= mass < hi`` (half-open, as histogram bins).
+
+        The cut flow and multiplicities are copied unchanged: they describe the pairing,
+        before the window.
+        """
+        lo, hi = float(lo), float(hi)
+        if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
+            raise InputError(f"in_window needs finite lo < hi, got ({lo!r}, {hi!r})")
+        return self.select((self.mass >= lo) & (self.mass < hi))
+
+
+# ----------------------------------------------------------------------- kernels
+@numba.njit(cache=True, nogil=True)
+def _count_pairs(sa, ea, sb, eb, same, qa, qb, mode):  # pragma: no cover - compiled
+    """Number of pairs passing the charge requirement, per event."""
+    n_ev = sa.size
+    out = np.zeros(n_ev, dtype=np.int64)
+    for ev in range(n_ev):
+        c = 0
+        for i in range(sa[ev], ea[ev]):
+            j0 = i + 1 if same else sb[ev]
+            if mode == 0:
+                c += eb[ev] - j0
+            else:
+                q = qa[i]
+                for j in range(j0, eb[ev]):
+                    p = q * qb[j]
+                    if (mode < 0 and p < 0) or (mode > 0 and p > 0):
+                        c += 1
+        out[ev] = c
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _count_mark(sa, ea, sb, eb, same, qa, qb, mode, used_a, used_b):  # pragma: no cover
+    """Like :func:`_count_pairs`, also flagging the objects that are in a passing pair."""
+    n_ev = sa.size
+    out = np.zeros(n_ev, dtype=np.int64)
+    for ev in range(n_ev):
+        c = 0
+        for i in range(sa[ev], ea[ev]):
+            j0 = i + 1 if same else sb[ev]
+            for j in range(j0, eb[ev]):
+                if mode != 0:
+                    p = qa[i] * qb[j]
+                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
+                        continue
+                used_a[i] = True
+                used_b[j] = True
+                c += 1
+        out[ev] = c
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _fill_all(sa, ea, sb, eb, same, qa, qb, mode, starts, counts, total,  # pragma: no cover
+              ra, rb, pxa, pya, pza, eea, pxb, pyb, pzb, eeb,
+              gla, glb, has_gla, has_glb, offa, offb, w, has_w):
+    """Every passing pair's summed four-vector, pT, event, object indices, multiplicity, weight.
+
+    ``ra``/``rb`` map selected objects to rows of the Cartesian columns; ``gla``/``glb`` map
+    them to flat indices of the collection as read (identity when ``has_gl*`` is false);
+    ``offa``/``offb`` are the collections' event offsets.
+    """
+    px = np.empty(total)
+    py = np.empty(total)
+    pz = np.empty(total)
+    e = np.empty(total)
+    pt = np.empty(total)
+    evo = np.empty(total, dtype=np.int64)
+    fi = np.empty(total, dtype=np.int64)
+    si = np.empty(total, dtype=np.int64)
+    mult = np.empty(total, dtype=np.int64)
+    wo = np.empty(total)
+    for ev in range(sa.size):
+        k = starts[ev]
+        nc = counts[ev]
+        if nc == 0:
+            continue
+        wev = w[ev] if has_w else 1.0
+        for i in range(sa[ev], ea[ev]):
+            j0 = i + 1 if same else sb[ev]
+            ia = ra[i]
+            fa = (gla[i] if has_gla else i) - offa[ev]
+            for j in range(j0, eb[ev]):
+                if mode != 0:
+                    p = qa[i] * qb[j]
+                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
+                        continue
+                jb = rb[j]
+                x = pxa[ia] + pxb[jb]
+                y = pya[ia] + pyb[jb]
+                px[k] = x
+                py[k] = y
+                pz[k] = pza[ia] + pzb[jb]
+                e[k] = eea[ia] + eeb[jb]
+                pt[k] = np.sqrt(x * x + y * y)
+                evo[k] = ev
+                fi[k] = fa
+                si[k] = (glb[j] if has_glb else j) - offb[ev]
+                mult[k] = nc
+                wo[k] = wev
+                k += 1
+    return px, py, pz, e, pt, evo, fi, si, mult, wo
+
+
+@numba.njit(cache=True, nogil=True)
+def _fill_pairs(sa, ea, sb, eb, same, qa, qb, mode, starts, total):  # pragma: no cover
+    """Object indices (a, b) and event index of every passing pair, in event then (i, j) order."""
+    a = np.empty(total, dtype=np.int64)
+    b = np.empty(total, dtype=np.int64)
+    pe = np.empty(total, dtype=np.int64)
+    for ev in range(sa.size):
+        k = starts[ev]
+        for i in range(sa[ev], ea[ev]):
+            j0 = i + 1 if same else sb[ev]
+            for j in range(j0, eb[ev]):
+                if mode != 0:
+                    p = qa[i] * qb[j]
+                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
+                        continue
+                a[k] = i
+                b[k] = j
+                pe[k] = ev
+                k += 1
+    return a, b, pe
+
+
+@numba.njit(cache=True, nogil=True)
+def _best_per_event(pe, k1, k2):  # pragma: no cover - compiled
+    """Index of the pair maximising (k1, k2) within each run of equal ``pe``.
+
+    Strict comparisons: among equal keys the first pair wins; NaN keys never win.
+    """
+    n = pe.size
+    out = np.empty(n, dtype=np.int64)
+    m = 0
+    i = 0
+    while i < n:
+        ev = pe[i]
+        best = -1
+        b1 = 0.0
+        b2 = 0.0
+        while i < n and pe[i] == ev:
+            x1 = k1[i]
+            x2 = k2[i]
+            ok = not (np.isnan(x1) or np.isnan(x2))
+            if ok and (best < 0 or x1 > b1 or (x1 == b1 and x2 > b2)):
+                best = i
+                b1 = x1
+                b2 = x2
+            i += 1
+        if best >= 0:
+            out[m] = best
+            m += 1
+    return out[:m]
+
+
+@numba.njit(cache=True, nogil=True)
+def _best_pairs_direct(sa, ea, sb, eb, same, qa, qb, mode, pta, ptb, rule):  # pragma: no cover
+    """Chosen pair per event without listing all pairs (rule 1: leading, 2: max_sum_pt).
+
+    Same order, keys and tie rule as listing the passing pairs and calling
+    :func:`_best_per_event`; returns (a, b, event) of the chosen pairs.
+    """
+    n_ev = sa.size
+    a = np.empty(n_ev, dtype=np.int64)
+    b = np.empty(n_ev, dtype=np.int64)
+    pe = np.empty(n_ev, dtype=np.int64)
+    m = 0
+    for ev in range(n_ev):
+        best_i = -1
+        best_j = -1
+        b1 = 0.0
+        b2 = 0.0
+        for i in range(sa[ev], ea[ev]):
+            j0 = i + 1 if same else sb[ev]
+            for j in range(j0, eb[ev]):
+                if mode != 0:
+                    p = qa[i] * qb[j]
+                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
+                        continue
+                x = pta[i]
+                y = ptb[j]
+                if rule == 1:
+                    x1 = max(x, y)
+                    x2 = min(x, y)
+                else:
+                    x1 = x + y
+                    x2 = 0.0
+                ok = not (np.isnan(x1) or np.isnan(x2))
+                if ok and (best_i < 0 or x1 > b1 or (x1 == b1 and x2 > b2)):
+                    best_i = i
+                    best_j = j
+                    b1 = x1
+                    b2 = x2
+        if best_i >= 0:
+            a[m] = best_i
+            b[m] = best_j
+            pe[m] = ev
+            m += 1
+    return a[:m], b[:m], pe[:m]
+
+
+@numba.njit(cache=True, nogil=True)
+def _sum_pairs(a, b, ua, ub, pxa, pya, pza, ea, pxb, pyb, pzb, eb):  # pragma: no cover
+    """Component-wise four-vector sums of the pairs (a, b); ua/ub map to the Cartesian rows."""
+    n = a.size
+    px = np.empty(n)
+    py = np.empty(n)
+    pz = np.empty(n)
+    e = np.empty(n)
+    for k in range(n):
+        i = ua[a[k]]
+        j = ub[b[k]]
+        px[k] = pxa[i] + pxb[j]
+        py[k] = pya[i] + pyb[j]
+        pz[k] = pza[i] + pzb[j]
+        e[k] = ea[i] + eb[j]
+    return px, py, pz, e
+
+
+@numba.njit(cache=True, nogil=True)
+def _run_counts(pe):  # pragma: no cover - compiled
+    """For sorted ``pe``: the length of the run each entry belongs to."""
+    n = pe.size
+    out = np.empty(n, dtype=np.int64)
+    i = 0
+    while i < n:
+        j = i
+        while j < n and pe[j] == pe[i]:
+            j += 1
+        for k in range(i, j):
+            out[k] = j - i
+        i = j
+    return out
+
+
+# ----------------------------------------------------------------- collections
+class _Collection:
+    """Flat view of one jagged collection: counts, offsets and lazily flattened fields."""
+
+    def __init__(self, events: Any, name: str) -> None:
+        import awkward as ak
+
+        fields = list(events.fields)
+        if name not in fields:
+            guess = closest(name, fields)
+            hint = f"; did you mean {guess!r}?" if guess else ""
+            raise InputError(
+                f"no collection {name!r} in the events; fields present: "
+                f"{', '.join(fields) or '(none)'}{hint}")
+        arr = events[name]
+        if arr.ndim != 2 or not arr.fields:
+            raise InputError(
+                f"{name!r} is not a collection (a list of objects per event with fields pt, "
+                "eta, phi, mass); pair a jagged collection such as 'muon'")
+        missing = [f for f in _KINEMATIC_FIELDS if f not in arr.fields]
+        if missing:
+            raise InputError(
+                f"collection {name!r} lacks the kinematic field(s) {', '.join(missing)}; it has "
+                f"{', '.join(arr.fields)}; read the events with peaksift.read_events, which "
+                "provides pt, eta, phi and mass")
+        self.name = name
+        self.array = arr
+        self.fields = list(arr.fields)
+        try:
+            self.counts = ak.to_numpy(ak.num(arr, axis=1)).astype(np.int64, copy=False)
+        except (ValueError, TypeError) as exc:
+            raise InputError(f"collection {name!r}: cannot read its object counts ({exc}); "
+                             "missing (None) entries are not supported") from None
+        self.offsets = np.zeros(self.counts.size + 1, dtype=np.int64)
+        np.cumsum(self.counts, out=self.offsets[1:])
+        self.n_objects = int(self.offsets[-1])
+        self._cache: dict[str, np.ndarray] = {}
+
+    def get(self, f: str) -> np.ndarray:
+        import awkward as ak
+
+        if f in self._cache:
+            return self._cache[f]
+        if f not in self.fields:
+            raise KeyError(f)
+        try:
+            out = self._direct(f)
+            if out is None:
+                out = ak.to_numpy(ak.flatten(self.array[f], axis=1))
+        except (ValueError, TypeError) as exc:
+            raise InputError(f"collection {self.name!r}, field {f!r}: not a flat number per "
+                             f"object ({exc})") from None
+        self._cache[f] = out
+        return out
+
+    def _direct(self, f: str) -> np.ndarray | None:
+        """The field's flat numpy content straight from the layout (no copy), when simple."""
+        import awkward as ak
+
+        lay = self.array.layout
+        if not isinstance(lay, ak.contents.ListOffsetArray):
+            return None
+        rec = lay.content
+        if not isinstance(rec, ak.contents.RecordArray):
+            return None
+        col = rec.content(f)
+        if not isinstance(col, ak.contents.NumpyArray):
+            return None
+        off = np.asarray(lay.offsets.data)
+        lo, hi = int(off[0]), int(off[-1])
+        if hi - lo != self.n_objects:  # pragma: no cover - offsets disagree with counts
+            return None
+        data = np.asarray(col.data)
+        return data[lo:hi] if data.ndim == 1 else None
+
+
+def _is_no_cut(cut: Any) -> bool:
+    return cut is None or (isinstance(cut, str) and not cut.strip())
+
+
+def _selected(coll: _Collection, cut: CutLike, ev_ok: np.ndarray | None) -> tuple:
+    """(flat indices of selected objects or None for all, per-event start, per-event stop)."""
+    if _is_no_cut(cut) and ev_ok is None:
+        return None, coll.offsets[:-1], coll.offsets[1:]
+    if _is_no_cut(cut):
+        ok = np.repeat(ev_ok, coll.counts)
+    else:
+        ok = _flat_object_mask(cut, coll.array, coll.counts, coll.get, coll.fields, coll.name)
+        if ev_ok is not None:
+            ok &= np.repeat(ev_ok, coll.counts)
+    cs = np.zeros(ok.size + 1, dtype=np.int64)
+    np.cumsum(ok, out=cs[1:])
+    sel_off = cs[coll.offsets]
+    return np.flatnonzero(ok), sel_off[:-1], sel_off[1:]
+
+
+def _take(col: np.ndarray, idx: np.ndarray | None) -> np.ndarray:
+    return col if idx is None else col[idx]
+
+
+def _check_options(choose: str, charge: Any, target_mass: Any, min_delta_r: Any) -> tuple:
+    if choose not in CHOOSE_RULES:
+        guess = closest(str(choose), CHOOSE_RULES)
+        hint = f"; did you mean {guess!r}?" if guess else ""
+        raise ConfigError(
+            f"choose={choose!r} is not a candidate rule; use one of "
+            f"{', '.join(map(repr, CHOOSE_RULES))}{hint}")
+    if charge not in _CHARGE:
+        guess = closest(str(charge), [k for k in _CHARGE if k])
+        hint = f"; did you mean {guess!r}?" if guess else ""
+        raise ConfigError(
+            f"charge={charge!r} is not a charge requirement; use None (any), 'opposite' or "
+            f"'same'{hint}")
+    if choose == "closest":
+        if target_mass is None:
+            raise ConfigError("choose='closest' needs target_mass=<mass in GeV>")
+        try:
+            tm = float(target_mass)
+        except (TypeError, ValueError):
+            raise ConfigError(f"target_mass must be a number in GeV, got {target_mass!r}") from None
+        if not np.isfinite(tm):
+            raise ConfigError(f"target_mass must be finite, got {target_mass!r}")
+    elif target_mass is not None:
+        raise ConfigError(
+            f"target_mass={target_mass!r} is only used with choose='closest' (choose is "
+            f"{choose!r}); remove it or set choose='closest'")
+    else:
+        tm = None
+    dr = None
+    if min_delta_r is not None:
+        try:
+            dr = float(min_delta_r)
+        except (TypeError, ValueError):
+            raise ConfigError(f"min_delta_r must be a number, got {min_delta_r!r}") from None
+        if not (dr >= 0 and np.isfinite(dr)):
+            raise ConfigError(f"min_delta_r must be a finite number >= 0, got {min_delta_r!r}")
+        if dr == 0:
+            dr = None
+    return _CHARGE[charge], tm, dr
+
+
+def _charges(coll: _Collection, idx: np.ndarray | None, charge: str) -> np.ndarray:
+    if "charge" not in coll.fields:
+        raise InputError(
+            f"charge={charge!r} needs a 'charge' field in collection {coll.name!r}, which has "
+            f"{', '.join(coll.fields)}; pass charge=None to pair regardless of charge")
+    q = _take(coll.get("charge"), idx)
+    if q.dtype.kind not in "biuf":
+        raise InputError(f"collection {coll.name!r}: field 'charge' is not numeric ({q.dtype})")
+    # one dtype for every input keeps the kernels to one compiled version each
+    return np.ascontiguousarray(q, dtype=np.float64)
+
+
+def _cartesian(coll: _Collection, sel: np.ndarray | None, used: np.ndarray) -> tuple:
+    """Cartesian components of the objects ``sel[used]`` (indices into the selection)."""
+    flat = used if sel is None else sel[used]
+    cols = [coll.get(f)[flat] for f in _KINEMATIC_FIELDS]
+    return kinematics.to_cartesian(*cols)
+
+
+# ------------------------------------------------------------------------- pair
+def pair(
+    events: Any,
+    first: str,
+    second: str | None = None,
+    *,
+    cut: CutLike = None,
+    second_cut: CutLike = None,
+    event_cut: CutLike = None,
+    charge: str | None = None,
+    choose: str = "all",
+    target_mass: float | None = None,
+    min_delta_r: float | None = None,
+    event_offset: int = 0,
+) -> Candidates:
+    """Build di-object candidates; see the module guide for the exact rules.
+
+    Parameters
+    ----------
+    events : awkward.Array
+        Events as read by :func:`peaksift.read_events` (collections of Momentum4D records
+        with ``pt, eta, phi, mass``; optional per-event ``weight``).
+    first : str
+        Collection of the first object (``"muon"``).
+    second : str, optional
+        Collection of the second object; None (or ``first``) pairs ``first`` with itself.
+    cut, second_cut : str, Cut, callable or mask, optional
+        Object cuts on ``first`` and on ``second`` (see :mod:`peaksift.cuts`); an empty
+        string means no cut.  ``second_cut`` needs a different ``second`` collection.
+    event_cut : str, Cut, callable or mask, optional
+        Event cut (per-event scalars, ``n_<collection>`` counts before object cuts).
+    charge : {None, "any", "opposite", "same"}
+        Charge requirement on the pair (needs a ``charge`` field).
+    choose : {"all", "leading", "max_sum_pt", "closest"}
+        What each event contributes.
+    target_mass : float, optional
+        Mass in GeV for ``choose="closest"`` (required there, refused otherwise).
+    min_delta_r : float, optional
+        Keep pairs with :math:`\\Delta R = \\sqrt{\\Delta\\eta^2 + \\Delta\\phi^2} \\ge`
+        ``min_delta_r``; None or 0 for no requirement.
+    event_offset : int
+        Added to ``event_index`` (the global index of this chunk's first event).
+
+    Returns
+    -------
+    Candidates
+
+    Raises
+    ------
+    InputError
+        Missing collection, kinematic field or ``charge`` field.
+    ConfigError
+        Unknown ``choose``/``charge``, missing ``target_mass``, bad ``min_delta_r``.
+    CutError
+        A cut that cannot be parsed or names an unknown field.
+    """
+    import awkward as ak
+
+    mode, tm, dr = _check_options(choose, charge, target_mass, min_delta_r)
+    if not isinstance(events, ak.Array) or not events.fields:
+        raise InputError(
+            f"pair needs events as an awkward array of records (from peaksift.read_events), "
+            f"got {type(events).__name__}")
+    if not isinstance(first, str):
+        raise ConfigError(f"first must be a collection name, got {first!r}")
+    same = second is None or second == first
+    if same and not _is_no_cut(second_cut):
+        raise ConfigError(
+            "second_cut applies only when pairing two different collections; with one "
+            "collection put the requirement in cut")
+    n_events = len(events)
+
+    ca = _Collection(events, first)
+    cb = ca if same else _Collection(events, str(second))
+
+    ev_ok = None
+    n_after = n_events
+    if not _is_no_cut(event_cut):
+        ev_ok = event_mask(events, event_cut)
+        n_after = int(np.count_nonzero(ev_ok))
+
+    sel_a, sa, ea = _selected(ca, cut, ev_ok)
+    if same:
+        sel_b, sb, eb = sel_a, sa, ea
+    else:
+        sel_b, sb, eb = _selected(cb, second_cut, ev_ok)
+
+    if mode != 0:
+        qa = _charges(ca, sel_a, charge)  # type: ignore[arg-type]
+        qb = qa if same else _charges(cb, sel_b, charge)  # type: ignore[arg-type]
+    else:
+        qa = qb = np.zeros(1)
+
+    if dr is None and choose in ("leading", "max_sum_pt"):
+        # fast path: pick each event's pair while scanning, without listing every pair
+        pta = np.ascontiguousarray(_take(ca.get("pt"), sel_a), dtype=np.float64)
+        ptb = pta if same else np.ascontiguousarray(_take(cb.get("pt"), sel_b), dtype=np.float64)
+        rule = 1 if choose == "leading" else 2
+        a, b, pe = _best_pairs_direct(sa, ea, sb, eb, same, qa, qb, mode, pta, ptb, rule)
+        del pta, ptb
+        return _finish(events, ca, cb, same, sel_a, sel_b, a, b, pe, choose, None,
+                       n_events, n_after, int(pe.size), event_offset)
+
+    if dr is None and choose == "all":
+        return _all_pairs(events, ca, cb, same, sel_a, sel_b, sa, ea, sb, eb, qa, qb, mode,
+                          n_events, n_after, event_offset)
+
+    counts = _count_pairs(sa, ea, sb, eb, same, qa, qb, mode)
+    starts = np.zeros(n_events, dtype=np.int64)
+    if n_events > 1:
+        np.cumsum(counts[:-1], out=starts[1:])
+    total = int(counts.sum())
+    a, b, pe = _fill_pairs(sa, ea, sb, eb, same, qa, qb, mode, starts, total)
+    del counts, starts
+
+    if dr is not None and a.size:
+        eta_a, phi_a = _take(ca.get("eta"), sel_a), _take(ca.get("phi"), sel_a)
+        eta_b, phi_b = (eta_a, phi_a) if same else (_take(cb.get("eta"), sel_b),
+                                                    _take(cb.get("phi"), sel_b))
+        keep = kinematics.delta_r(eta_a[a], phi_a[a], eta_b[b], phi_b[b]) >= dr
+        a, b, pe = a[keep], b[keep], pe[keep]
+        del keep
+
+    n_with_pair = int(np.count_nonzero(pe[1:] != pe[:-1]) + 1) if pe.size else 0
+
+    if choose in ("leading", "max_sum_pt") and a.size:
+        pta = _take(ca.get("pt"), sel_a)[a]
+        ptb = (_take(ca.get("pt"), sel_a) if same else _take(cb.get("pt"), sel_b))[b]
+        if choose == "leading":
+            k1, k2 = np.maximum(pta, ptb), np.minimum(pta, ptb)
+        else:
+            k1 = pta + ptb
+            k2 = np.zeros_like(k1)
+        best = _best_per_event(pe, k1, k2)
+        a, b, pe = a[best], b[best], pe[best]
+        del pta, ptb, k1, k2, best
+
+    return _finish(events, ca, cb, same, sel_a, sel_b, a, b, pe, choose, tm,
+                   n_events, n_after, n_with_pair, event_offset)
+
+
+def _event_weights(events: Any) -> np.ndarray | None:
+    import awkward as ak
+
+    if "weight" not in events.fields:
+        return None
+    if events["weight"].ndim != 1 or events["weight"].fields:
+        raise InputError("the per-event 'weight' field must hold one number per event, "
+                         f"got type {events['weight'].type}; rename it or flatten it")
+    try:
+        return np.ascontiguousarray(ak.to_numpy(events["weight"]), dtype=np.float64)
+    except (ValueError, TypeError) as exc:
+        raise InputError(f"per-event 'weight' is not a flat number per event ({exc})") from None
+
+
+def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
+               sel_a: np.ndarray | None, sel_b: np.ndarray | None, sa: np.ndarray,
+               ea: np.ndarray, sb: np.ndarray, eb: np.ndarray, qa: np.ndarray, qb: np.ndarray,
+               mode: int, n_events: int, n_after: int, event_offset: int) -> Candidates:
+    """choose='all' without Delta R: count, convert used objects once, fill in one pass."""
+    n_a = ca.n_objects if sel_a is None else sel_a.size
+    used_a = np.zeros(n_a, dtype=np.bool_)
+    if same:
+        used_b = used_a
+    else:
+        used_b = np.zeros(cb.n_objects if sel_b is None else sel_b.size, dtype=np.bool_)
+    counts = _count_mark(sa, ea, sb, eb, same, qa, qb, mode, used_a, used_b)
+    starts = np.zeros(n_events, dtype=np.int64)
+    if n_events > 1:
+        np.cumsum(counts[:-1], out=starts[1:])
+    total = int(counts.sum())
+    n_with_pair = int(np.count_nonzero(counts))
+    cart_a = _cartesian(ca, sel_a, np.flatnonzero(used_a))
+    ra = np.cumsum(used_a, dtype=np.int64) - 1
+    if same:
+        cart_b, rb = cart_a, ra
+    else:
+        cart_b = _cartesian(cb, sel_b, np.flatnonzero(used_b))
+        rb = np.cumsum(used_b, dtype=np.int64) - 1
+    del used_a, used_b
+    w = _event_weights(events)
+    empty = np.zeros(1, dtype=np.int64)
+    px, py, pz, e, pt, pe, fi, si, mult, weight = _fill_all(
+        sa, ea, sb, eb, same, qa, qb, mode, starts, counts, total, ra, rb, *cart_a, *cart_b,
+        empty if sel_a is None else sel_a, empty if sel_b is None else sel_b,
+        sel_a is not None, sel_b is not None, ca.offsets, cb.offsets,
+        np.zeros(1) if w is None else w, w is not None)
+    del counts, starts, ra, rb, cart_a, cart_b
+    mass = kinematics.invariant_mass(e, px, py, pz)
+    rap = kinematics.rapidity(e, pz)
+    del px, py, pz, e
+    if event_offset:
+        pe += int(event_offset)
+    flow = {
+        "events_in": int(n_events),
+        "events_after_event_cut": int(n_after),
+        "events_with_pair": n_with_pair,
+        "candidates": int(mass.size),
+    }
+    return Candidates(mass=mass, pt=pt, rapidity=rap, weight=weight, event_index=pe,
+                      first_index=fi, second_index=si, cutflow=flow, multiplicity=mult,
+                      choose="all")
+
+
+def _finish(events: Any, ca: _Collection, cb: _Collection, same: bool,
+            sel_a: np.ndarray | None, sel_b: np.ndarray | None, a: np.ndarray, b: np.ndarray,
+            pe: np.ndarray, choose: str, tm: float | None, n_events: int, n_after: int,
+            n_with_pair: int, event_offset: int) -> Candidates:
+    """Kinematics, weights and indices of the chosen pairs (a, b in event pe)."""
+    px, py, pz, e = _pair_sums(ca, cb, same, sel_a, sel_b, a, b)
+    mass = kinematics.invariant_mass(e, px, py, pz)
+
+    if choose == "closest" and a.size:
+        k1 = -np.abs(mass - tm)
+        best = _best_per_event(pe, k1, np.zeros_like(k1))
+        a, b, pe, mass = a[best], b[best], pe[best], mass[best]
+        px, py, pz, e = px[best], py[best], pz[best], e[best]
+        del k1, best
+
+    pt = np.sqrt(px * px + py * py)
+    rap = kinematics.rapidity(e, pz)
+    del px, py, pz, e
+
+    w_ev = _event_weights(events)
+    weight = np.ones(pe.size) if w_ev is None else w_ev[pe]
+
+    first_index = (a if sel_a is None else sel_a[a]) - ca.offsets[pe]
+    second_index = (b if sel_b is None else sel_b[b]) - cb.offsets[pe]
+
+    multiplicity = _run_counts(pe) if choose == "all" else None
+    event_index = pe + int(event_offset)
+    flow = {
+        "events_in": int(n_events),
+        "events_after_event_cut": int(n_after),
+        "events_with_pair": n_with_pair,
+        "candidates": int(mass.size),
+    }
+    return Candidates(
+        mass=mass, pt=pt, rapidity=rap, weight=weight, event_index=event_index,
+        first_index=first_index, second_index=second_index, cutflow=flow,
+        multiplicity=multiplicity, choose=choose,
+    )
+
+
+def _pair_sums(ca: _Collection, cb: _Collection, same: bool, sel_a: np.ndarray | None,
+               sel_b: np.ndarray | None, a: np.ndarray, b: np.ndarray) -> tuple:
+    """Summed Cartesian components of the pairs, converting each used object once."""
+    if a.size == 0:
+        z = np.zeros(0)
+        return z, z.copy(), z.copy(), z.copy()
+    n_sel_a = ca.n_objects if sel_a is None else sel_a.size
+    if same:
+        used = np.zeros(n_sel_a, dtype=np.bool_)
+        used[a] = True
+        used[b] = True
+        ia = np.flatnonzero(used)
+        cart = _cartesian(ca, sel_a, ia)
+        remap = np.cumsum(used, dtype=np.int64) - 1
+        del used, ia
+        return _sum_pairs(a, b, remap, remap, *cart, *cart)
+    n_sel_b = cb.n_objects if sel_b is None else sel_b.size
+    used_a = np.zeros(n_sel_a, dtype=np.bool_)
+    used_a[a] = True
+    used_b = np.zeros(n_sel_b, dtype=np.bool_)
+    used_b[b] = True
+    cart_a = _cartesian(ca, sel_a, np.flatnonzero(used_a))
+    cart_b = _cartesian(cb, sel_b, np.flatnonzero(used_b))
+    ra = np.cumsum(used_a, dtype=np.int64) - 1
+    rb = np.cumsum(used_b, dtype=np.int64) - 1
+    return _sum_pairs(a, b, ra, rb, *cart_a, *cart_b)
