@@ -1,0 +1,67 @@
+"""Search statistics: local significance, mass scans, look-elsewhere effect, limits, toys.
+
+Which piece when
+----------------
+* :func:`scan` -> :class:`ScanResult`                  -- q0 / Z_local / p_local vs mass, the
+  best hypothesis and its refit, ``global_significance()`` and ``plot()``.
+* :func:`upper_limits` -> :class:`LimitResult`         -- CLs limits (asymptotic or toys) with
+  expected bands, on the yield or on sigma x B.
+* :mod:`.significance`                                 -- q0, Z, p conversions; Asimov and
+  counting-experiment sensitivities.
+* :mod:`.lee`                                          -- upcrossings (Gross-Vitells) and
+  toy-based global p-values.
+* :mod:`.toys`                                         -- the batched toy engine
+  (:func:`run_toys`, :func:`run_toy_batch` for execution engines).
+"""
+
+from __future__ import annotations
+
+from .lee import binomial_error, global_from_toys, global_from_upcrossings, upcrossings
+from .limits import (
+    LimitResult,
+    cls_asymptotic,
+    expected_band_factor,
+    poisson_interval,
+    poisson_upper_limit,
+    upper_limits,
+)
+from .scan import ScanResult, resolution_model, scan
+from .significance import (
+    asimov_counts,
+    binned_q0,
+    counting_significance,
+    p_from_q0,
+    p_from_z,
+    q0_from_nll,
+    z_from_p,
+    z_from_q0,
+)
+from .toys import ScanModel, ToyBatch, run_toy_batch, run_toys
+
+__all__ = [
+    "LimitResult",
+    "ScanModel",
+    "ScanResult",
+    "ToyBatch",
+    "asimov_counts",
+    "binned_q0",
+    "binomial_error",
+    "cls_asymptotic",
+    "counting_significance",
+    "expected_band_factor",
+    "global_from_toys",
+    "global_from_upcrossings",
+    "p_from_q0",
+    "p_from_z",
+    "poisson_interval",
+    "poisson_upper_limit",
+    "q0_from_nll",
+    "resolution_model",
+    "run_toy_batch",
+    "run_toys",
+    "scan",
+    "upcrossings",
+    "upper_limits",
+    "z_from_p",
+    "z_from_q0",
+]

@@ -1,0 +1,640 @@
+"""Mass scan: the local significance of a signal at each mass hypothesis.
+
+Use :func:`scan` on a spectrum (a :class:`~peaksift.histogram.MassHistogram`, or an array of
+masses which is histogrammed finely) to get a :class:`ScanResult`: q0, Z_local, p_local and
+the fitted signal yield at every mass, the best hypothesis, a free refit there, the global
+significance (:meth:`ScanResult.global_significance`, look-elsewhere effect included) and a
+plot of p_local against mass.
+
+At each hypothesis the signal shape is fixed by the resolution model (``resolution``: a
+number = sigma/m; a callable sigma(m); or a table ``(masses, sigmas)`` interpolated
+linearly), optionally with a natural ``width``; the signal yield (free, may be negative) and
+all background parameters are profiled in the extended binned Poisson likelihood (see
+:mod:`peaksift.stats.toys` for the engine).  q0 = 0 when the fitted yield is negative (the
+one-sided discovery test of Cowan, Cranmer, Gross, Vitells, EPJC 71 (2011) 1554).
+
+Blinding: with ``blind=(lo, hi)`` every bin overlapping that mass range is left out of the
+likelihood, no observed number is computed for hypotheses inside it (they are NaN in the
+arrays, ``None`` in ``to_dict()``), the plot hides them, and no free refit is made (it would
+look inside).  Only expected values (``expected_signal=``) are shown there.  To unblind,
+call :func:`scan` again without ``blind``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import warnings
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..errors import DataWarning, FitError, PeaksiftError
+from . import lee
+from .significance import p_from_q0, z_from_q0
+from .toys import ScanModel, fit_background, profile_signal, run_toys
+
+__all__ = ["ScanResult", "resolution_model", "scan"]
+
+
+# ------------------------------------------------------------------ resolution model
+def resolution_model(resolution: Any) -> Callable[[np.ndarray], np.ndarray]:
+    """Turn a resolution description into a vectorised ``sigma(m)``.
+
+    ``resolution`` may be a positive number (relative resolution, sigma = r m), a callable
+    ``sigma(m)``, a pair ``(masses, sigmas)`` or a mapping ``{"mass": [...], "sigma": [...]}``
+    (linear interpolation; masses outside the table are an error).
+    """
+    if isinstance(resolution, (int, float)) and not isinstance(resolution, bool):
+        r = float(resolution)
+        if not (r > 0 and math.isfinite(r)):
+            raise FitError(f"resolution must be a positive relative resolution sigma/m, got {r!r}"
+                           "; e.g. resolution=0.01 for 1%")
+        return lambda m: r * np.asarray(m, float)
+    if callable(resolution):
+        def from_callable(m: np.ndarray) -> np.ndarray:
+            m = np.asarray(m, float)
+            try:
+                out = np.asarray(resolution(m), float)
+                if out.shape != m.shape:
+                    out = np.broadcast_to(out, m.shape).astype(float)
+            except (TypeError, ValueError):
+                out = np.array([float(resolution(float(v))) for v in m.ravel()]).reshape(m.shape)
+            return out
+        return from_callable
+    if isinstance(resolution, Mapping):
+        try:
+            tm, ts = resolution["mass"], resolution["sigma"]
+        except KeyError as exc:
+            raise FitError(f"resolution table needs keys 'mass' and 'sigma', missing {exc}"
+                           ) from None
+    else:
+        try:
+            tm, ts = resolution
+        except (TypeError, ValueError):
+            raise FitError(
+                f"resolution must be a number (sigma/m), a callable sigma(m) or a table "
+                f"(masses, sigmas); got {type(resolution).__name__}"
+            ) from None
+    tm = np.asarray(tm, float)
+    ts = np.asarray(ts, float)
+    if tm.ndim != 1 or tm.shape != ts.shape or tm.size < 2:
+        raise FitError("resolution table: masses and sigmas must be 1-d of the same length >= 2")
+    if np.any(np.diff(tm) <= 0):
+        raise FitError("resolution table: masses must increase strictly")
+    if np.any(ts <= 0):
+        raise FitError("resolution table: every sigma must be > 0")
+
+    def from_table(m: np.ndarray) -> np.ndarray:
+        m = np.asarray(m, float)
+        out = (m < tm[0] - 1e-9 * abs(tm[0])) | (m > tm[-1] + 1e-9 * abs(tm[-1]))
+        if np.any(out):
+            bad = m[out].ravel()[0]
+            raise FitError(f"mass {bad:g} is outside the resolution table "
+                           f"({tm[0]:g}-{tm[-1]:g} GeV); extend the table or the scan range")
+        return np.interp(m, tm, ts)
+
+    return from_table
+
+
+# ---------------------------------------------------------------------- data input
+@dataclass(frozen=True)
+class _Spectrum:
+    edges: np.ndarray      # bins in the window
+    counts: np.ndarray     # effective counts (window bins)
+    scale: float           # effective-count factor sum(w)/sum(w^2) (1 unweighted)
+    window: tuple[float, float]
+    unit: str
+
+
+def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
+    from ..histogram import MassHistogram
+
+    if isinstance(data, MassHistogram):
+        e = np.asarray(data.edges, float)
+        lo, hi = (e[0], e[-1]) if window is None else (float(window[0]), float(window[1]))
+        tol = 1e-9 * (e[-1] - e[0])
+        keep = np.flatnonzero((e[:-1] >= lo - tol) & (e[1:] <= hi + tol))
+        if keep.size == 0:
+            raise FitError(f"scan window ({lo:g}, {hi:g}) holds no complete bin of the "
+                           f"histogram ({e[0]:g}-{e[-1]:g}); choose a window inside it")
+        i0, i1 = keep[0], keep[-1] + 1
+        sumw = np.asarray(data.sumw, float)[i0:i1]
+        sumw2 = np.asarray(data.sumw2, float)[i0:i1]
+        unit = data.unit
+        edges = e[i0 : i1 + 1]
+    else:
+        if isinstance(data, tuple) and len(data) == 2:
+            x, w = (np.asarray(v, float).ravel() for v in data)
+        else:
+            x, w = np.asarray(data, float).ravel(), None
+        if x.size == 0:
+            raise FitError("scan: no masses given")
+        if not np.all(np.isfinite(x)):
+            raise FitError("scan: masses contain NaN or infinite values; drop them first")
+        lo, hi = (float(x.min()), float(x.max())) if window is None else (float(window[0]),
+                                                                        float(window[1]))
+        if bins is None:
+            nb = int(np.clip(math.ceil((hi - lo) / (0.25 * min_sigma())), 50, 2000))
+        else:
+            nb = int(bins)
+        edges = np.linspace(lo, hi, nb + 1)
+        sel = (x >= lo) & (x <= hi)
+        idx = np.clip(np.searchsorted(edges, x[sel], side="right") - 1, 0, nb - 1)
+        ws = None if w is None else w[sel]
+        sumw = np.bincount(idx, weights=ws, minlength=nb).astype(float)
+        sumw2 = sumw.copy() if w is None else np.bincount(idx, weights=ws * ws, minlength=nb)
+        unit = "GeV"
+    if not (np.all(np.isfinite(sumw)) and np.all(sumw >= 0)):
+        raise FitError("scan: bin contents in the window must be finite and non-negative")
+    if sumw.sum() <= 0:
+        raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
+    scale = 1.0
+    if not np.allclose(sumw, sumw2):
+        scale = float(sumw.sum() / sumw2.sum())
+        warnings.warn(
+            f"scan: weighted spectrum; significances use effective counts sum(w)/sum(w^2) = "
+            f"{scale:.4g} x sum(w) (exact for equal weights, approximate otherwise)",
+            DataWarning, stacklevel=3)
+    return _Spectrum(edges, sumw * scale, scale, (float(edges[0]), float(edges[-1])), unit)
+
+
+def _blind_mask(edges: np.ndarray, blind: Any) -> np.ndarray:
+    """True for bins overlapping the blinded mass range."""
+    if blind is None:
+        return np.zeros(edges.size - 1, bool)
+    try:
+        lo, hi = float(blind[0]), float(blind[1])
+    except (TypeError, IndexError, ValueError):
+        raise FitError(f"blind must be a mass range (lo, hi), got {blind!r}") from None
+    if not hi > lo:
+        raise FitError(f"blind range must have hi > lo, got ({lo:g}, {hi:g})")
+    return (edges[:-1] < hi) & (edges[1:] > lo)
+
+
+def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
+                   sigma: np.ndarray, natural_width: Any,
+                   signal_params: Mapping[str, float] | None) -> list[Any]:
+    names = shape.parameter_names
+    given = dict(signal_params or {})
+    unknown = set(given) - set(names)
+    if unknown:
+        raise FitError(f"signal_params: shape {shape.name!r} has no parameter "
+                       f"{min(unknown)!r}; its parameters are {', '.join(names)}")
+    width = None
+    if natural_width is not None:
+        if "width" not in names:
+            raise FitError(f"natural_width given but signal shape {shape.name!r} has no natural "
+                           "width; use 'voigt' (width with resolution) or 'breitwigner'")
+        width = (np.asarray(natural_width(masses), float) if callable(natural_width)
+                 else np.full(masses.shape, float(natural_width)))
+    out: list[Any] = []
+    for p in shape.parameters_for(window):
+        if p.name == "mass":
+            out.append(masses[:, None])
+        elif p.name == "sigma":
+            out.append(sigma[:, None])
+        elif p.name == "width":
+            if width is None and "sigma" in names:
+                raise FitError(f"signal shape {shape.name!r} needs natural_width= (GeV, or a "
+                               "callable of mass) for its Breit-Wigner part")
+            out.append((sigma if width is None else width)[:, None])
+        elif p.name in given:
+            out.append(float(given[p.name]))
+        else:
+            out.append(float(p.start))
+    return out
+
+
+def _background_start(background: Any, window: tuple[float, float]) -> tuple[np.ndarray,
+                                                                            np.ndarray,
+                                                                            np.ndarray]:
+    pars = background.parameters_for(window)
+    start = np.array([p.start for p in pars], float)
+    lower = np.array([p.lower for p in pars], float)
+    upper = np.array([p.upper for p in pars], float)
+    start = np.where(np.isfinite(start), start, 0.0)
+    return start, lower, upper
+
+
+def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, resolution: Any,
+                   window: Any, natural_width: Any, blind: Any, signal_params: Any,
+                   bins: Any, background_start: Mapping[str, float] | None = None
+                   ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
+    from .. import shapes
+
+    sig = shapes.get(signal)
+    bkg = shapes.get(background)
+    if sig.kind != "signal":
+        raise FitError(f"scan: {sig.name!r} is a {sig.kind} shape; give a signal shape "
+                       f"such as 'gaussian'")
+    if bkg.kind != "background":
+        raise FitError(f"scan: {bkg.name!r} is a {bkg.kind} shape; give a background shape "
+                       f"such as 'exponential'")
+    sigma_of = resolution_model(resolution)
+    m_arr = None if np.ndim(masses) == 0 else np.asarray(masses, float)
+
+    def min_sigma() -> float:
+        probe = m_arr if m_arr is not None else np.linspace(
+            *(window if window is not None else (np.min(data), np.max(data))), 50)
+        return float(np.min(sigma_of(probe)))
+
+    spec = _spectrum(data, window, bins, min_sigma)
+    lo, hi = spec.window
+    if m_arr is None:
+        npts = int(masses)
+        if npts < 2:
+            raise FitError(f"scan needs at least 2 mass points, got {masses!r}")
+        pad = 0.05 * (hi - lo)
+        m_arr = np.linspace(lo + pad, hi - pad, npts)
+    if m_arr.ndim != 1 or m_arr.size == 0 or not np.all(np.isfinite(m_arr)):
+        raise FitError("scan masses must be a non-empty 1-d array of finite numbers")
+    outside = (m_arr <= lo) | (m_arr >= hi)
+    if outside.any():
+        raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
+                       f"({lo:g}, {hi:g}); scan inside the window")
+    sigma = np.asarray(sigma_of(m_arr), float)
+    if not np.all(np.isfinite(sigma) & (sigma > 0)):
+        raise FitError("the resolution model gave a non-positive or non-finite sigma")
+    blinded_bins = _blind_mask(spec.edges, blind)
+    used = np.flatnonzero(~blinded_bins)
+    if used.size < bkg.parameters.__len__() + 3:
+        raise FitError("scan: too few bins outside the blinded range to fit the background")
+    blinded_mass = np.zeros(m_arr.size, bool)
+    if blind is not None:
+        blinded_mass = (m_arr >= float(blind[0])) & (m_arr <= float(blind[1]))
+    fr_all = np.asarray(sig.bin_fractions(spec.edges, _signal_params(
+        sig, spec.window, m_arr, sigma, natural_width, signal_params), spec.window), float)
+    fr_all = np.broadcast_to(fr_all, (m_arr.size, spec.edges.size - 1))
+    fractions = np.ascontiguousarray(fr_all[:, used])
+    start, lower, upper = _background_start(bkg, spec.window)
+    if background_start:
+        names = bkg.parameter_names
+        for k, v in background_start.items():
+            if k in names:
+                start[names.index(k)] = float(v)
+    counts = spec.counts[used]
+    proto = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
+                      background=bkg, theta=start, bkg_yield=float(counts.sum()),
+                      lower=lower, upper=upper, masses=m_arr[~blinded_mass],
+                      fractions=fractions[~blinded_mass])
+    theta, b, nll0 = fit_background(proto, counts[None, :], start[None, :], steps=200)
+    model = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
+                      background=bkg, theta=theta[0], bkg_yield=float(b[0]),
+                      lower=lower, upper=upper, masses=m_arr[~blinded_mass],
+                      fractions=fractions[~blinded_mass], nll_background=float(nll0[0]))
+    info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
+            "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
+            "blinded_bins": blinded_bins}
+    return model, spec, info
+
+
+# ------------------------------------------------------------------------ result
+def _clean(v: Any) -> Any:
+    if isinstance(v, (float, np.floating)):
+        return float(v) if math.isfinite(v) else None
+    if isinstance(v, np.ndarray):
+        return [_clean(x) for x in v.tolist()]
+    if isinstance(v, (list, tuple)):
+        return [_clean(x) for x in v]
+    if isinstance(v, dict):
+        return {k: _clean(x) for k, x in v.items()}
+    if isinstance(v, (np.integer,)):
+        return int(v)
+    if isinstance(v, np.bool_):
+        return bool(v)
+    return v
+
+
+@dataclass(frozen=True, repr=False)
+class ScanResult:
+    """Outcome of :func:`scan` (a frozen value).
+
+    Attributes
+    ----------
+    masses, sigma : ndarray
+        Mass hypotheses and the resolution used at each (GeV).
+    q0, z_local, p_local : ndarray
+        Discovery statistic, local significance sqrt(q0) and asymptotic local p-value
+        1 - Phi(sqrt(q0)); NaN inside a blinded range.
+    signal_yield, signal_yield_error, background_yield : ndarray
+        Profiled fit at each hypothesis (events; the signal yield may be negative).
+    z_expected : ndarray or None
+        Median expected local significance of ``expected_signal`` (Asimov), everywhere.
+    best_index, best_mass : int, float
+        Hypothesis with the largest q0 among the unblinded ones.
+    refit : FitResult or None
+        Fit at the best mass with mass and width free (None when blinded or if it failed).
+    blind : (float, float) or None
+        Blinded mass range; ``blinded`` marks the hypotheses inside it.
+    """
+
+    masses: np.ndarray
+    sigma: np.ndarray
+    q0: np.ndarray
+    z_local: np.ndarray
+    p_local: np.ndarray
+    signal_yield: np.ndarray
+    signal_yield_error: np.ndarray
+    background_yield: np.ndarray
+    converged: np.ndarray
+    best_index: int
+    best_mass: float
+    refit: Any
+    window: tuple[float, float]
+    blind: tuple[float, float] | None
+    blinded: np.ndarray
+    signal_shape: str
+    background_shape: str
+    weight_scale: float
+    z_expected: np.ndarray | None = None
+    notes: tuple[str, ...] = ()
+    unit: str = "GeV"
+    model: ScanModel | None = field(default=None, compare=False)
+
+    # --------------------------------------------------------------- summary
+    @property
+    def best(self) -> dict[str, float]:
+        i = self.best_index
+        return {"mass": float(self.best_mass), "z_local": float(self.z_local[i]),
+                "p_local": float(self.p_local[i]), "q0": float(self.q0[i])}
+
+    def __repr__(self) -> str:
+        b = self.best
+        blind = "" if self.blind is None else f", blinded {self.blind[0]:g}-{self.blind[1]:g}"
+        return (f"ScanResult({self.masses.size} masses {self.masses[0]:g}-{self.masses[-1]:g} "
+                f"{self.unit}, best {b['mass']:.4g} {self.unit}: Z_local = {b['z_local']:.2f}, "
+                f"p_local = {b['p_local']:.3g}{blind})")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict: the search's ``scan`` keys (``mass``, ``z_local``, ``p_local``,
+        ``signal_yield``) as lists, plus errors, q0, sigma, blinding and the best point.
+        Blinded entries are ``None``."""
+        d = {
+            "mass": self.masses, "z_local": self.z_local, "p_local": self.p_local,
+            "signal_yield": self.signal_yield, "signal_yield_error": self.signal_yield_error,
+            "background_yield": self.background_yield, "q0": self.q0, "sigma": self.sigma,
+            "z_expected": self.z_expected, "blind": None if self.blind is None else
+            list(self.blind), "blinded": [bool(v) for v in self.blinded],
+            "best": self.best, "window": list(self.window), "signal_shape": self.signal_shape,
+            "background_shape": self.background_shape, "weight_scale": self.weight_scale,
+            "unit": self.unit, "notes": list(self.notes),
+            "refit": None if self.refit is None else self.refit.to_dict(),
+        }
+        return _clean(d)
+
+    # ------------------------------------------------------ look-elsewhere
+    def toy_scans(self, toys: int, *, seed: int = 0, workers: int | None = None,
+                  progress: bool | None = None) -> np.ndarray:
+        """q0 scans of ``toys`` background-only pseudo-experiments, ``(toys, n_unblinded)``."""
+        if self.model is None:
+            raise FitError("this ScanResult carries no model (rebuilt from a dict?); rerun scan")
+        return run_toys(self.model, toys, seed=seed, workers=workers, progress=progress)
+
+    def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
+                            seed: int = 0, u0: float = 0.5, workers: int | None = None,
+                            progress: bool | None = None) -> dict[str, Any]:
+        """Global significance of the best excess (look-elsewhere effect in the scan range).
+
+        Parameters
+        ----------
+        method : "upcrossings" or "toys"
+            ``"toys"``: p_global is the fraction of background-only toys whose largest q0
+            reaches the observed one (binomial error).  ``"upcrossings"``: Gross and Vitells,
+            EPJC 70 (2010) 525, ``p_global = p_local + N0 exp(-(q0 - u0)/2)`` with the mean
+            number of upcrossings N0 of the level ``u0`` estimated from toys.
+        toys : int, optional
+            Number of toys (default 1000 for ``"toys"``, 200 for ``"upcrossings"``; 0 with
+            upcrossings counts N0 on the observed scan instead, stated in ``n0_source``).
+        seed, workers, progress :
+            Passed to :func:`peaksift.stats.toys.run_toys`.
+
+        Returns
+        -------
+        dict with ``mass``, ``z_local``, ``p_local``, ``z_global``, ``p_global``,
+        ``global_method``, ``p_global_error``, ``n_toys`` and, for upcrossings, ``u0``,
+        ``N0``, ``N0_error``, ``n0_source``.
+        """
+        if method not in ("upcrossings", "toys"):
+            raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
+                           f"got {method!r}")
+        q_obs = float(self.q0[self.best_index])
+        mask = ~self.blinded
+        if method == "toys":
+            n = 1000 if toys is None else int(toys)
+            scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress)
+            res = lee.global_from_toys(q_obs, scans.max(axis=1))
+        else:
+            n = 200 if toys is None else int(toys)
+            if n > 0:
+                scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress)
+                res = lee.global_from_upcrossings(q_obs, scans, u0=u0)
+            else:
+                res = lee.global_from_upcrossings(q_obs, self.q0[mask][None, :], u0=u0,
+                                                  source="observed scan")
+        out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
+               "p_local": float(self.p_local[self.best_index])}
+        out.update(res)
+        return _clean(out)
+
+    # ------------------------------------------------------------------ plot
+    def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None,
+             global_result: Mapping[str, Any] | None = None) -> Any:
+        """Local p-value against mass (log scale) with 1-5 sigma reference lines.
+
+        Blinded hypotheses are not drawn (the range is shaded); the expected significance
+        (if computed) is drawn dashed.  ``global_result`` (from :meth:`global_significance`)
+        is noted on the figure.  Saves to ``path`` when given; returns the Figure.
+        """
+        from .._style import COLORS, figure_style, use_headless_backend
+
+        use_headless_backend()
+        import matplotlib.pyplot as plt
+
+        with figure_style():
+            if ax is None:
+                fig, ax = plt.subplots(figsize=(7.0, 4.6))
+            else:
+                fig = ax.figure
+            m = self.masses
+            p = np.where(self.blinded, np.nan, np.maximum(self.p_local, 1e-300))
+            ax.plot(m, p, color=COLORS["observed"], label="observed local $p$-value")
+            pmin = np.nanmin(p) if np.any(np.isfinite(p)) else 0.1
+            if self.z_expected is not None:
+                pe = np.maximum(p_from_q0(self.z_expected**2), 1e-300)
+                ax.plot(m, pe, ls="--", color=COLORS["expected"],
+                        label="expected for the signal hypothesis")
+                pmin = min(pmin, float(np.min(pe)))
+            lowest = max(min(pmin, p_from_q0(9.0)) * 0.3, p_from_q0(64.0))
+            ax.set_yscale("log")
+            ax.set_ylim(lowest, 1.0)
+            ax.set_xlim(m[0], m[-1])
+            for k in range(1, 6):
+                pk = p_from_q0(float(k * k))
+                if pk < lowest:
+                    break
+                ax.axhline(pk, color=COLORS["accent"], lw=0.8, ls=":")
+                ax.text(m[-1], pk, f" {k}$\\sigma$", va="center", ha="left",
+                        color=COLORS["accent"], fontsize=9, clip_on=False)
+            if self.blind is not None:
+                ax.axvspan(self.blind[0], self.blind[1], color=COLORS["blind"], zorder=0,
+                           label="blinded", hatch="//", ec="#c9c9d2", lw=0)
+            ax.set_xlabel(f"mass hypothesis [{self.unit}]")
+            ax.set_ylabel("local $p$-value")
+            if global_result is not None and global_result.get("z_global") is not None:
+                ax.text(0.0, 1.015, f"best {global_result['mass']:.4g} {self.unit}: "
+                        f"$Z_{{local}}$ = {global_result['z_local']:.2f}, "
+                        f"$Z_{{global}}$ = {global_result['z_global']:.2f} "
+                        f"({global_result['global_method']})",
+                        transform=ax.transAxes, fontsize=9, va="bottom")
+            ax.legend(loc="lower left")
+            if title:
+                ax.set_title(title)
+            if path is not None:
+                fig.savefig(path)
+        return fig
+
+
+# -------------------------------------------------------------------------- scan
+def scan(
+    data: Any,
+    signal: Any,
+    background: Any,
+    masses: Any,
+    *,
+    resolution: Any,
+    window: tuple[float, float] | None = None,
+    natural_width: Any = None,
+    blind: tuple[float, float] | None = None,
+    signal_params: Mapping[str, float] | None = None,
+    expected_signal: Any = None,
+    bins: int | None = None,
+    refit: bool = True,
+) -> ScanResult:
+    """Scan the local significance of a signal over mass hypotheses.
+
+    Parameters
+    ----------
+    data : MassHistogram, array of masses, or (masses, weights)
+        Arrays are histogrammed in bins of a quarter of the smallest resolution (50-2000 bins)
+        unless ``bins`` is given.
+    signal, background : shape name or Shape
+        As in :func:`peaksift.fit` (e.g. ``"gaussian"``, ``"exponential"``).
+    masses : array or int
+        Mass hypotheses (GeV) or a number of evenly spaced points inside the window.
+    resolution : float, callable or table
+        Signal resolution sigma(m): relative number, callable, or ``(masses, sigmas)``.
+    window : (lo, hi), optional
+        Fit window (default the histogram range); snaps to complete bins.
+    natural_width : float or callable, optional
+        Natural width (GeV) for shapes with a ``width`` (voigt, breitwigner).
+    blind : (lo, hi), optional
+        Blinded mass range (see the module guide).
+    signal_params : dict, optional
+        Values of other signal shape parameters (e.g. Crystal Ball tails).
+    expected_signal : float or callable, optional
+        Signal yield (events) whose median expected significance (Asimov data from the
+        background-only fit plus this signal) is reported in ``z_expected`` at every mass.
+    refit : bool
+        Refit at the best mass with mass and width free (:func:`peaksift.fit`).
+
+    Returns
+    -------
+    ScanResult
+
+    Notes
+    -----
+    q0 = 2 [NLL(s=0) - NLL(s_hat)] for s_hat > 0, else 0 (Cowan et al. 2011, eq. 12);
+    Z_local = sqrt(q0), p_local = 1 - Phi(Z_local) (eqs. 52-53).
+    """
+    model, spec, info = _prepare_model(
+        data, signal, background, masses, resolution=resolution, window=window,
+        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins)
+    m_all = info["masses"]
+    bl = info["blinded_mass"]
+    nm = m_all.size
+    notes: list[str] = []
+    arr = {k: np.full(nm, np.nan) for k in ("q0", "s", "se", "b")}
+    conv = np.zeros(nm, bool)
+    if model.masses.size:
+        mb = model.masses.size
+        r = profile_signal(model, model.counts, model.fractions,
+                           theta_start=np.repeat(model.theta[None, :], mb, axis=0),
+                           b_start=np.full(mb, model.bkg_yield), steps=100)
+        q0 = np.where(r["s"] > 0, np.maximum(2.0 * (model.nll_background - r["nll"]), 0.0), 0.0)
+        arr["q0"][~bl] = q0
+        arr["s"][~bl] = r["s"] / spec.scale
+        arr["se"][~bl] = r["s_error"] / spec.scale
+        arr["b"][~bl] = r["b"] / spec.scale
+        conv[~bl] = r["converged"]
+        if not r["converged"].all():
+            notes.append(f"{int((~r['converged']).sum())} hypotheses did not converge")
+    else:
+        notes.append("every mass hypothesis is blinded")
+    z = np.where(bl, np.nan, z_from_q0(np.nan_to_num(arr["q0"])))
+    p = np.where(bl, np.nan, p_from_q0(np.nan_to_num(arr["q0"])))
+    qsel = np.where(bl, -np.inf, np.nan_to_num(arr["q0"], nan=-np.inf))
+    best = int(np.argmax(qsel)) if np.isfinite(qsel).any() else 0
+    z_exp = None
+    if expected_signal is not None:
+        z_exp = _expected_z(model, info, spec, expected_signal)
+    fit_result = None
+    if refit and blind is None and model.masses.size:
+        fit_result = _refit(data, info, spec, best, signal_params, natural_width, notes)
+    elif refit and blind is not None:
+        notes.append("no free refit while blinded")
+    return ScanResult(
+        masses=m_all, sigma=info["sigma"], q0=arr["q0"], z_local=z, p_local=p,
+        signal_yield=arr["s"], signal_yield_error=arr["se"], background_yield=arr["b"],
+        converged=conv, best_index=best, best_mass=float(m_all[best]), refit=fit_result,
+        window=spec.window, blind=None if blind is None else (float(blind[0]), float(blind[1])),
+        blinded=bl, signal_shape=info["signal"].name, background_shape=info["background"].name,
+        weight_scale=spec.scale, z_expected=z_exp, notes=tuple(notes), unit=spec.unit,
+        model=model)
+
+
+def _expected_z(model: ScanModel, info: dict[str, Any], spec: _Spectrum,
+                expected_signal: Any) -> np.ndarray:
+    """Median expected Z (Asimov: background-only fit + the signal) at every mass."""
+    m = info["masses"]
+    s = (np.asarray(expected_signal(m), float) if callable(expected_signal)
+         else np.full(m.shape, float(expected_signal))) * spec.scale
+    f = info["window_fractions"]
+    # expected values do not look at the data: the Asimov set covers the blinded bins too
+    full = dataclasses.replace(model, masses=m, fractions=f,
+                               used=np.arange(spec.edges.size - 1), counts=spec.counts)
+    asimov = np.broadcast_to(full.expected_background, f.shape) + s[:, None] * f
+    nm = m.size
+    th = np.repeat(model.theta[None, :], nm, axis=0)
+    _, _, nll0 = fit_background(full, asimov, th)
+    r = profile_signal(full, asimov, f, s_start=s, theta_start=th,
+                       b_start=np.full(nm, model.bkg_yield))
+    q = np.where(r["s"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
+    return np.sqrt(q)
+
+
+def _refit(data: Any, info: dict[str, Any], spec: _Spectrum, best: int,
+           signal_params: Any, natural_width: Any, notes: list[str]) -> Any:
+    try:
+        from ..fitting import fit
+    except ImportError:  # pragma: no cover - the fitting layer is part of the package
+        notes.append("refit skipped: peaksift.fitting unavailable")
+        return None
+    sig = info["signal"]
+    m = float(info["masses"][best])
+    start = {"mass": m}
+    names = sig.parameter_names
+    if "sigma" in names:
+        start["sigma"] = float(info["sigma"][best])
+    if "width" in names:
+        w = natural_width(m) if callable(natural_width) else natural_width
+        start["width"] = float(w if w is not None else info["sigma"][best])
+    for k, v in (signal_params or {}).items():
+        start[k] = float(v)
+    try:
+        return fit(data, sig, info["background"], spec.window, start=start)
+    except PeaksiftError as exc:
+        notes.append(f"refit at {m:g} failed: {exc}")
+        return None
