@@ -270,7 +270,8 @@ def _parse(expression: str) -> tuple[str, str, _Node, tuple[str, ...]]:
         raise CutError(f"a cut expression must be text, got {type(expression).__name__}")
     if len(expression) > _MAX_LENGTH:
         raise CutError(
-            f"cut expression is {len(expression)} characters long; the limit is {_MAX_LENGTH}"
+            f"cut {expression[:60]!r}... is {len(expression)} characters long; the limit is "
+            f"{_MAX_LENGTH}; split the selection or shorten it"
         )
     # Line breaks and tabs become spaces (one character each, so positions are unchanged):
     # a cut written over several lines of a config file is one expression.
