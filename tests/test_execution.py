@@ -332,6 +332,24 @@ def test_selection_is_validated_and_checked_for_pickling(dataset):
     assert SEL.collections == ("muon",) and SEL.window == WINDOW
 
 
+@pytest.mark.parametrize("edges", [np.linspace(2.0, 150.0, 741), np.arange(201) * 0.1,
+                                   np.linspace(-1e3, 1e3, 129)])
+def test_fast_regular_binning_matches_binary_search(edges):
+    # Reference: numpy.searchsorted(side="right"), the rule MassHistogram.fill uses;
+    # values on, just below and just above every edge, and infinities.
+    rng = np.random.default_rng(11)
+    v = np.concatenate([rng.uniform(edges[0] - 5, edges[-1] + 5, 20_000), edges,
+                        np.nextafter(edges, -np.inf), np.nextafter(edges, np.inf),
+                        [np.inf, -np.inf, 1e300, -1e300]])
+    rng.shuffle(v)
+    np.testing.assert_array_equal(execution._regular_index(edges, v),
+                                  np.searchsorted(edges, v, side="right"))
+    w = rng.uniform(0.5, 1.5, v.size)
+    from peaksift.histogram import MassHistogram
+
+    assert execution._fill_hist(edges, v, w, "GeV", "m") == MassHistogram(edges).fill(v, w)
+
+
 def test_local_cluster_started_and_closed_when_no_address():
     got = execution.map_tasks(seeded_draw, SPECS[:3], engine="dask", workers=1)
     for a, b in zip(got, _reference()[:3]):
