@@ -123,7 +123,7 @@ def asimov_counts(signal: Any, background: Any, mu: float = 1.0) -> np.ndarray:
 
 def _nll_poisson(n: np.ndarray, nu: np.ndarray) -> float:
     nu = np.maximum(nu, 1e-300)
-    return float(np.sum(nu - special.xlogy(n, nu)))
+    return float(np.sum(nu - n * np.log(nu)))
 
 
 def binned_q0(
