@@ -20,6 +20,7 @@ from __future__ import annotations
 import json
 import os
 import tempfile
+import zipfile
 from pathlib import Path
 from typing import Any
 
@@ -34,7 +35,13 @@ _FORMAT_VERSION = 1
 
 
 def _check_edges(edges: Any) -> np.ndarray:
-    e = np.asarray(edges, dtype=float)
+    try:
+        e = np.array(edges, dtype=float)
+    except (TypeError, ValueError):
+        raise InputError(
+            f"histogram edges must be numbers, got {edges!r:.80}; pass e.g. "
+            "edges=np.linspace(60, 120, 121) or bins=120, range=(60, 120)"
+        ) from None
     if e.ndim != 1 or e.size < 2:
         raise InputError(
             f"histogram edges must be a 1-d sequence of at least 2 numbers, got shape {e.shape}; "
@@ -43,14 +50,14 @@ def _check_edges(edges: Any) -> np.ndarray:
     if not np.all(np.isfinite(e)):
         bad = int(np.flatnonzero(~np.isfinite(e))[0])
         raise InputError(
-            f"histogram edge {bad} is {e[bad]!r}; all edges must be finite numbers"
+            f"histogram edge {bad} is {float(e[bad])!r}; all edges must be finite numbers"
         )
     d = np.diff(e)
     if np.any(d <= 0):
         bad = int(np.flatnonzero(d <= 0)[0])
         raise InputError(
-            f"histogram edges must increase strictly, but edge {bad + 1} ({e[bad + 1]!r}) "
-            f"is not above edge {bad} ({e[bad]!r}); sort the edges and remove duplicates"
+            f"histogram edges must increase strictly, but edge {bad + 1} ({float(e[bad + 1])!r}) "
+            f"is not above edge {bad} ({float(e[bad])!r}); sort the edges and remove duplicates"
         )
     e.setflags(write=False)
     return e
@@ -84,8 +91,8 @@ class MassHistogram:
     """
 
     __slots__ = (
-        "edges", "sumw", "sumw2", "underflow", "overflow",
-        "underflow_sumw2", "overflow_sumw2", "n_nan", "unit", "label", "_regular",
+        "_regular", "edges", "label", "n_nan", "overflow", "overflow_sumw2", "sumw", "sumw2",
+        "underflow", "underflow_sumw2", "unit",
     )
 
     def __init__(
@@ -93,7 +100,7 @@ class MassHistogram:
         edges: Any = None,
         *,
         bins: int | None = None,
-        range: tuple[float, float] | None = None,  # noqa: A002 - mirrors numpy
+        range: tuple[float, float] | None = None,  # mirrors numpy.histogram
         unit: str = "GeV",
         label: str = "m",
     ) -> None:
@@ -189,11 +196,14 @@ class MassHistogram:
         InputError
             When ``weight`` does not match ``mass`` in length or holds non-finite values.
         """
-        m = np.asarray(mass, dtype=float).ravel()
-        if weight is None:
-            w = None
-        else:
-            w = np.asarray(weight, dtype=float)
+        try:
+            m = np.asarray(mass, dtype=float).ravel()
+            w = None if weight is None else np.asarray(weight, dtype=float)
+        except (TypeError, ValueError):
+            raise InputError(
+                "fill: masses and weights must be numbers (a flat array, e.g. cands.mass)"
+            ) from None
+        if w is not None:
             if w.ndim == 0:
                 w = np.full(m.shape, float(w))
             w = w.ravel()
@@ -254,7 +264,7 @@ class MassHistogram:
 
     __radd__ = __add__
 
-    def __iadd__(self, other: MassHistogram) -> MassHistogram:
+    def __iadd__(self, other: MassHistogram) -> MassHistogram:  # noqa: PYI034 - py3.10
         self._check_compatible(other)
         self.sumw += other.sumw
         self.sumw2 += other.sumw2
@@ -299,14 +309,16 @@ class MassHistogram:
             keep = np.arange(0, self.nbins + 1, factor)
         else:
             new = _check_edges(edges)
-            keep = np.searchsorted(self.edges, new)
-            ok = (keep < self.edges.size) & np.isclose(
-                self.edges[np.minimum(keep, self.edges.size - 1)], new, rtol=1e-12, atol=1e-12
-            )
+            # nearest current edge to each new one; it must agree to rounding
+            right = np.clip(np.searchsorted(self.edges, new), 0, self.edges.size - 1)
+            left = np.clip(right - 1, 0, self.edges.size - 1)
+            closer_left = np.abs(self.edges[left] - new) < np.abs(self.edges[right] - new)
+            keep = np.where(closer_left, left, right)
+            ok = np.isclose(self.edges[keep], new, rtol=1e-12, atol=1e-12)
             if not ok.all():
                 bad = new[~ok][0]
                 raise InputError(
-                    f"rebin edge {bad!r} is not one of the current edges; new edges must be a "
+                    f"rebin edge {float(bad)!r} is not one of the current edges; new edges must be a "
                     "subset of the old ones"
                 )
         h = MassHistogram(self.edges[keep], unit=self.unit, label=self.label)
@@ -342,6 +354,8 @@ class MassHistogram:
 
     @classmethod
     def from_dict(cls, d: dict[str, Any], *, where: str = "histogram") -> MassHistogram:
+        if not isinstance(d, dict):
+            raise InputError(f"{where}: not a peaksift mass histogram (not a JSON object)")
         if d.get("format") != _FORMAT:
             raise InputError(f"{where}: not a peaksift mass histogram (format key is {d.get('format')!r})")
         try:
@@ -423,7 +437,8 @@ class MassHistogram:
                 }
         except InputError:
             raise
-        except Exception as exc:  # corrupt file, wrong archive
+        except (OSError, ValueError, KeyError, TypeError, EOFError, zipfile.BadZipFile) as exc:
+            # corrupt file, wrong archive, missing arrays
             raise InputError(f"cannot read histogram file {str(path)!r}: {exc}") from None
         return cls.from_dict(d, where=str(path))
 
@@ -431,18 +446,22 @@ class MassHistogram:
     def plot(self, ax: Any = None, *, density: bool = False, **kwargs: Any) -> Any:
         """Draw the spectrum as points with ``sqrt(sumw2)`` error bars; returns the Axes.
 
-        With ``density=True`` the contents are divided by the bin width (events per GeV).
+        With ``density=True`` (and always for variable bins) the contents are divided by
+        the bin width (candidates per GeV).  Drawn in the peaksift figure style.
         """
         import matplotlib.pyplot as plt
 
+        from ._style import COLORS, figure_style
+
         if ax is None:
-            _, ax = plt.subplots(figsize=(7, 4.5))
+            with figure_style():
+                _, ax = plt.subplots(figsize=(7, 4.5))
         scale = 1.0 / self.widths if (density or not self._regular) else 1.0
         y = self.sumw * scale
         yerr = self.errors * scale
         kwargs.setdefault("fmt", "o")
         kwargs.setdefault("ms", 3)
-        kwargs.setdefault("color", "#1d1d1d")
+        kwargs.setdefault("color", COLORS["data"])
         kwargs.setdefault("elinewidth", 0.9)
         kwargs.setdefault("label", "data")
         ax.errorbar(self.centers, y, yerr=yerr, xerr=0.5 * self.widths if self.nbins < 80 else None,
