@@ -209,6 +209,9 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("efficiency_uncertainty", "float", 0.0,
              "Relative uncertainty of the efficiency (constrained nuisance parameter).",
              lo=0.0, hi=1.0),
+        _Key("constraint", "choice", "lognormal",
+             "Distribution constraining the luminosity and efficiency nuisance parameters.",
+             choices=("lognormal", "gaussian")),
     ),
     "calibration": (
         _Key("particle", "str", "",
@@ -371,6 +374,7 @@ class LimitsConfig:
     luminosity_uncertainty: float = 0.0
     efficiency: float = 1.0
     efficiency_uncertainty: float = 0.0
+    constraint: str = "lognormal"
 
     @property
     def cross_section_unit(self) -> str:

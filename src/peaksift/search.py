@@ -505,8 +505,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
                 fixed={"signal_yield": 0.0, **start}) if blind_window is None else None
 
     limits = None
-    import importlib.util
-    if cfg.limits.enabled and importlib.util.find_spec("peaksift.stats.limits"):  # TEMP
+    if cfg.limits.enabled:
         limits = _limits(cfg, hist, scan_sig, bkg, masses, sigma_fn, width, blind_window,
                          progress)
 
@@ -577,6 +576,7 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
                efficiency=L.efficiency if L.luminosity is not None else None,
                efficiency_uncertainty=L.efficiency_uncertainty or None,
                unit=L.cross_section_unit if L.luminosity is not None else None),
+        constraint=L.constraint, progress=progress,
     )
 
 
@@ -608,7 +608,6 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
     d = fr.to_dict()
     pm = d.get("peak_mass") or {}
     m, e = float(pm.get("value", np.nan)), float(pm.get("error") or np.nan)
-    values = d.get("values") or {}
     out = {
         "particle": ref.name,
         "pdgid": ref.pdgid,
@@ -621,7 +620,7 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "width_fixed_to_table": bool(fixed),
         "valid": bool(d.get("valid")),
         "fitted_mass": {"value": m, "error": e},
-        "fitted_resolution": _value_error(d, values, "sigma"),
+        "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),
         "shift": m - ref.mass,
         "shift_relative_permille": 1000.0 * (m - ref.mass) / ref.mass,
@@ -631,14 +630,12 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
     return out, h, fr
 
 
-def _value_error(d: Mapping[str, Any], values: Any, name: str) -> dict[str, Any] | None:
-    if isinstance(values, Mapping) and name in values:
-        errs = d.get("errors") or {}
-        v = values[name]
-        if isinstance(v, Mapping):
-            return {"value": v.get("value"), "error": v.get("error")}
-        return {"value": v, "error": errs.get(name) if isinstance(errs, Mapping) else None}
-    return None
+def _value_error(d: Mapping[str, Any], name: str) -> dict[str, Any] | None:
+    """``{"value", "error"}`` of a fit parameter from ``FitResult.to_dict()``."""
+    p = (d.get("parameters") or {}).get(name)
+    if not isinstance(p, Mapping):
+        return None
+    return {"value": p.get("value"), "error": p.get("error")}
 
 
 # ---------------------------------------------------------------------------- spectrum
@@ -712,3 +709,93 @@ def run_fit(
     binned = {"auto": None, "binned": True, "unbinned": False}[cfg.model.fit]
     blind = tuple(cfg.blinding.window) if cfg.blinding.enabled else None
     return fit(hist, sig, bkg, (lo, hi), binned=binned, start=start, **_opt(blind=blind))
+
+
+# ------------------------------------------------------------------------------- demo
+#: the configuration of the demo search; ``demo_data/search.toml`` is this text, and
+#: ``peaksift demo OUTDIR`` writes it next to the data it generates (``{files}`` filled in)
+DEMO_CONFIG = """\
+# The demo search: opposite-charge isolated muon pairs in the invented collider run.
+# Every key is documented, with its default, in docs/config.md.
+
+[input]
+files = {files}              # relative to this file
+
+[objects]
+collection = "muon"
+cut = "pt > 20 and abs(eta) < 2.4 and isolation < 0.15"
+
+[pairing]
+charge = "opposite"
+choose = "leading"             # one pair per event: the two hardest selected muons
+
+[spectrum]
+# The search window starts above the Z peak, which would otherwise dominate the
+# background model; the Z is fitted separately as a calibration check (below).
+window = [110.0, 200.0]
+bin_width = 1.0
+
+[model]
+signal = "gaussian"            # free fit at the best mass: mass and width float
+background = "bernstein"
+background_options = {{ degree = 3 }}
+
+[model.resolution]
+# sigma(m) of the dimuon mass, measured on the simulated-sample variant
+# (`peaksift demo --weighted`: reconstructed vs generated mass, central 68%).
+table = [[90.0, 0.99], [120.0, 1.44], [150.0, 1.98], [200.0, 2.80]]
+
+[significance]
+method = "upcrossings"         # Gross and Vitells (2010), N0 from background-only toys
+toys = 100
+seed = 20261201
+
+[limits]
+cl = 0.95
+points = 25
+luminosity = 10.0              # fb^-1 of the invented run
+luminosity_uncertainty = 0.02
+efficiency = 0.55              # dimuon selection efficiency x acceptance (assumed)
+efficiency_uncertainty = 0.05
+
+[calibration]
+particle = "Z0"                # fitted in its own window; compared with the particle tables
+window = [70.0, 110.0]
+bins = 80
+signal = "crystalball"         # Gaussian core with radiative tails
+background = "exponential"
+
+[execution]
+engine = "serial"
+
+[output]
+dir = "../demo_out"
+formats = ["png", "pdf"]
+log_scale = false
+"""
+
+
+def demo_config_text(files: list[str] | tuple[str, ...]) -> str:
+    """The demo search configuration with ``input.files`` set to ``files``."""
+    import json
+
+    return DEMO_CONFIG.format(files=json.dumps(list(files)))
+
+
+def write_demo_config(outdir: str | os.PathLike[str]) -> Path | None:
+    """Write ``search.toml`` for the demo data in ``outdir`` (read from its ``truth.json``).
+
+    Returns the path, or None when ``outdir`` holds no demo truth file.  The config's output
+    directory is ``search_out`` inside ``outdir``.
+    """
+    import json
+
+    from .report import atomic_write
+
+    out = Path(outdir)
+    truth = out / "truth.json"
+    if not truth.exists():
+        return None
+    files = json.loads(truth.read_text()).get("files") or ["*.parquet"]
+    text = demo_config_text(files).replace('dir = "../demo_out"', 'dir = "search_out"')
+    return atomic_write(out / "search.toml", text)

@@ -1,0 +1,234 @@
+"""The whole search end to end on the committed demo data, checked against its truth file.
+
+One search run (through the command line) serves most checks; it uses the committed demo
+data and the demo config's modest toy count, so it takes seconds.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from peaksift.cli import main
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "demo_data"
+CONFIG = DEMO / "search.toml"
+TRUTH = DEMO / "truth.json"
+
+pytestmark = pytest.mark.skipif(not TRUTH.exists(), reason="demo data not generated")
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    out = tmp_path_factory.mktemp("search") / "demo_out"
+    import io
+    from contextlib import redirect_stdout
+
+    buf = io.StringIO()
+    with redirect_stdout(buf):
+        rc = main(["search", str(CONFIG), "--out", str(out), "--quiet"])
+    assert rc == 0
+    results = json.loads((out / "results.json").read_text())
+    return {"out": out, "stdout": buf.getvalue(), "results": results,
+            "truth": json.loads(TRUTH.read_text())}
+
+
+def test_results_json_has_every_key_with_sane_types(run):
+    r = run["results"]
+    assert isinstance(r["peaksift_version"], str)
+    assert isinstance(r["config"], dict) and r["config"]["spectrum"]["window"] == [110.0, 200.0]
+    inp = r["input"]
+    assert isinstance(inp["files"], list) and inp["files"]
+    for k in ("events_read", "events_selected", "candidates"):
+        assert isinstance(inp[k], int) and inp[k] > 0
+    assert inp["events_read"] >= inp["events_selected"] >= 1
+    assert isinstance(inp["cutflow"], dict) and all(isinstance(v, int)
+                                                    for v in inp["cutflow"].values())
+    fit = r["fit"]
+    assert isinstance(fit["valid"], bool)
+    for k in ("peak_mass", "width", "signal_yield", "background_yield"):
+        assert isinstance(fit[k]["value"], float) and isinstance(fit[k]["error"], float)
+        assert fit[k]["error"] >= 0
+    assert set(fit["gof"]) >= {"chi2", "ndf", "p_value"}
+    assert isinstance(fit["gof"]["ndf"], int) and 0 <= fit["gof"]["p_value"] <= 1
+    scan = r["scan"]
+    n = len(scan["mass"])
+    assert n > 20
+    for k in ("z_local", "p_local", "signal_yield"):
+        assert len(scan[k]) == n and all(isinstance(x, float) for x in scan[k])
+    assert scan["mass"] == sorted(scan["mass"])
+    best = r["best"]
+    for k in ("mass", "z_local", "p_local", "z_global", "p_global"):
+        assert isinstance(best[k], float)
+    assert isinstance(best["global_method"], str)
+    lim = r["limits"]
+    nl = len(lim["mass"])
+    assert nl > 5
+    for k in ("observed", "expected", "expected_minus2", "expected_minus1", "expected_plus1",
+              "expected_plus2"):
+        assert len(lim[k]) == nl and all(isinstance(x, float) and x > 0 for x in lim[k])
+    # the expected bands are ordered (Cowan et al. 2011, sec. 4.3: median with +-1, +-2 sigma)
+    for i in range(nl):
+        assert (lim["expected_minus2"][i] <= lim["expected_minus1"][i] <= lim["expected"][i]
+                <= lim["expected_plus1"][i] <= lim["expected_plus2"][i])
+    assert isinstance(lim["unit"], str)
+    assert isinstance(r["known_matches"], list)
+    pv = r["provenance"]
+    assert pv["inputs"] and all(len(f["sha256"]) == 64 for f in pv["inputs"])
+    assert len(pv["config_sha256"]) == 64 and isinstance(pv["seed"], int)
+    for k in ("python", "numpy", "scipy", "iminuit", "awkward", "pyarrow"):
+        assert isinstance(pv["versions"][k], str)
+    assert pv["started"] <= pv["finished"] and pv["finished"].endswith("Z")
+
+
+def test_provenance_hashes_match_the_files(run):
+    pv = run["results"]["provenance"]
+    for f in pv["inputs"]:
+        assert hashlib.sha256(Path(f["path"]).read_bytes()).hexdigest() == f["sha256"]
+    assert hashlib.sha256(CONFIG.read_bytes()).hexdigest() == pv["config_sha256"]
+
+
+def test_finds_the_invented_resonance_near_its_true_mass(run):
+    truth = run["truth"]["invented_resonance"]
+    fit = run["results"]["fit"]
+    assert fit["valid"]
+    m, e = fit["peak_mass"]["value"], fit["peak_mass"]["error"]
+    # within 2 sigma of the generator's truth (the demo's truth file)
+    assert abs(m - truth["mass_gev"]) < 2.0 * e, (m, e, truth["mass_gev"])
+    assert abs(run["results"]["best"]["mass"] - truth["mass_gev"]) < 3.0 * 1.98
+
+
+def test_local_significance_in_the_expected_range(run):
+    """Expected: the counting-experiment Asimov significance Z_A(s, b) (Cowan, Cranmer, Gross,
+    Vitells 2011, eq. 97) in +-2 resolution widths around the true mass, with s from the truth
+    file and b from the sidebands at 3-6 resolution widths on either side (a sideband
+    estimate, common practice).  Poisson fluctuations of s and b move the observed Z by about
+    one unit, so the accepted range is Z_A +- 2 (forgiving)."""
+    from peaksift.histogram import MassHistogram
+
+    truth = run["truth"]["invented_resonance"]
+    h = MassHistogram.load(run["out"] / "spectrum.json")
+    m0, sigma = truth["mass_gev"], 1.98  # resolution at 150 GeV from the demo config's table
+    c = h.centers
+    signal_region = np.abs(c - m0) < 2 * sigma
+    sidebands = (np.abs(c - m0) > 3 * sigma) & (np.abs(c - m0) < 6 * sigma)
+    b = float(h.sumw[sidebands].mean()) * int(signal_region.sum())
+    s = 0.9 * truth["selected_in_search_window"]  # ~90% of the peak lies inside +-2 sigma
+    z_a = math.sqrt(2.0 * ((s + b) * math.log1p(s / b) - s))
+    z = run["results"]["best"]["z_local"]
+    assert z_a - 2.0 < z < z_a + 2.0, (z, z_a, s, b)
+
+
+def test_global_not_above_local(run):
+    best = run["results"]["best"]
+    assert best["z_global"] <= best["z_local"] + 1e-9
+    assert best["p_global"] >= best["p_local"]
+
+
+def test_calibration_peak_where_the_tables_put_it(run):
+    from particle import Particle
+
+    cal = run["results"]["calibration"]
+    m_z = Particle.from_pdgid(23).mass / 1000.0  # particle package (PDG tables)
+    assert cal["particle"] == "Z0" and cal["table_mass"] == pytest.approx(m_z)
+    # the fitted peak sits within 0.5% of the tables: the demo detector's radiative losses
+    # shift reconstructed masses by a few per mille, which the check is there to show
+    assert abs(cal["fitted_mass"]["value"] - m_z) / m_z < 5e-3
+    assert cal["valid"]
+
+
+def test_no_known_particle_at_the_invented_mass(run):
+    # particle package: no neutral state lies near 152 GeV
+    assert run["results"]["known_matches"] == []
+    assert "none match" in run["stdout"]
+
+
+def test_summary_printed(run):
+    out = run["stdout"]
+    for label in ("best mass hypothesis", "fitted mass", "fitted width", "signal yield",
+                  "local significance", "global significance", "outputs"):
+        assert label in out
+    assert str(run["out"]) in out
+
+
+class _Images(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.srcs: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "img":
+            self.srcs.append(dict(attrs).get("src", ""))
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def test_every_figure_is_a_valid_png_and_pdf(run):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.image as mpimg
+
+    figs = sorted((run["out"] / "figures").glob("*.png"))
+    names = {p.stem for p in figs}
+    assert {"spectrum", "pvalue_scan", "limits", "candidates", "calibration"} <= names
+    for p in figs:
+        raw = p.read_bytes()
+        assert raw[:8] == PNG_SIGNATURE
+        img = mpimg.imread(p)
+        assert img.ndim == 3 and img.shape[0] > 200 and img.shape[1] > 300
+        assert float(np.std(img)) > 0.01  # not a blank canvas
+        assert p.with_suffix(".pdf").read_bytes()[:5] == b"%PDF-"
+
+
+def test_html_report_parses_and_embeds_every_figure(run):
+    import base64
+
+    page = (run["out"] / "report.html").read_text()
+    parser = _Images()
+    parser.feed(page)
+    parser.close()
+    embedded = [base64.b64decode(s.split(",", 1)[1]) for s in parser.srcs
+                if s.startswith("data:image/png;base64,")]
+    assert len(embedded) == len(parser.srcs), "every image is a data URI (self-contained)"
+    for p in (run["out"] / "figures").glob("*.png"):
+        assert p.read_bytes() in embedded, f"{p.name} not embedded"
+    text = " ".join(parser.text)
+    assert "A local significance is not a discovery" in text
+    assert "statistical procedures" in text
+    assert "look-elsewhere effect is included" in text
+    md = (run["out"] / "report.md").read_text()
+    assert "figures/spectrum.png" in md and "## Provenance" in md
+
+
+def test_no_staging_directories_left(run):
+    parent = run["out"].parent
+    assert [p.name for p in parent.iterdir()] == ["demo_out"]
+
+
+def test_blinded_run_hides_the_window_until_unblinded():
+    from peaksift.config import load_config
+    from peaksift.search import run_search
+
+    cfg = load_config(CONFIG).with_overrides(blinding__enabled=True,
+                                             blinding__window=[140.0, 165.0],
+                                             limits__enabled=False, calibration__particle="",
+                                             significance__toys=20)
+    res = run_search(cfg, out=False)
+    d = res.to_dict()
+    scan = d["scan"]
+    inside = [i for i, m in enumerate(scan["mass"]) if 140.0 <= m <= 165.0]
+    assert inside and all(scan["z_local"][i] is None for i in inside)
+    assert d["fit"]["peak_mass"]["value"] is None and d["blinding"]["active"]
+    assert not (140.0 <= d["best"]["mass"] <= 165.0)
