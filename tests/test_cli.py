@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
@@ -152,3 +153,16 @@ def test_overrides_reach_the_config(tiny_data, capsys, tmp_path):
     rc, _, err = _run(capsys, ["search", str(cfg), "--toys", "-5", "--out", str(tmp_path / "o")])
     assert rc == 2 and "significance.toys" in _one_line(err)
     _assert_nothing_written(tmp_path, "o")
+
+
+def test_demo_writes_a_ready_config(capsys, tmp_path):
+    from peaksift.config import load_config
+
+    out = tmp_path / "demo"
+    rc, stdout, _ = _run(capsys, ["demo", str(out), "--events", "20000"])
+    assert rc == 0
+    cfg = load_config(out / "search.toml")
+    truth = json.loads((out / "truth.json").read_text())
+    assert [Path(f).name for f in cfg.input.files] == truth["files"]
+    assert all(Path(f).exists() for f in cfg.input.files)
+    assert "peaksift search" in stdout

@@ -103,10 +103,18 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
 # ------------------------------------------------------------------------- candidates
 def candidates(collected: Any, outdir: str | os.PathLike[str], *,
                formats: Sequence[str] = ("png", "pdf")) -> dict[str, Path]:
-    """Candidates' transverse momentum and rapidity, side by side."""
+    """Candidates' transverse momentum and rapidity, side by side.
+
+    The histograms hold the candidates whose mass lies in the range the data were collected
+    on (the search window, joined with the calibration window when there is one); the
+    figure says which.
+    """
     plt = _plt()
+    e_m = np.asarray(collected.histogram.edges)
     with figure_style():
-        fig, (a1, a2) = plt.subplots(1, 2, figsize=(9.0, 3.8))
+        fig, (a1, a2) = plt.subplots(1, 2, figsize=(9.0, 3.9))
+        fig.suptitle(f"candidates with {e_m[0]:g} < $m$ < {e_m[-1]:g} GeV "
+                     f"({collected.histogram.total():,.0f})", fontsize=10.5)
         for ax, h, label, unit in ((a1, collected.pt_histogram, r"$p_\mathrm{T}$ of the pair",
                                     "GeV"),
                                    (a2, collected.rapidity_histogram, "rapidity $y$ of the pair",

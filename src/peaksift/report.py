@@ -52,7 +52,8 @@ _CAPTIONS = {
                    "excess is noted.",
     "limits": "Upper limits at each mass hypothesis: observed, and the expected median with its "
               "68% and 95% bands under the background-only hypothesis.",
-    "candidates": "Transverse momentum and rapidity of the candidates in the spectrum.",
+    "candidates": "Transverse momentum and rapidity of the pairs, for the candidates in the "
+                  "mass range that was collected (stated on the figure).",
     "calibration": "Calibration fit of the standard-candle peak in its own window.",
 }
 
@@ -174,7 +175,8 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
                                 f"(p = {_p(best.get('p_global'))}, "
                                 f"{best.get('global_method', 'n/a')})")),
         ("Fitted peak mass", format_pm(*_ve(fit.get("peak_mass")), "GeV")),
-        ("Fitted width", format_pm(*_ve(fit.get("width")), "GeV")),
+        (f"Fitted width ({fit.get('width_parameter') or 'width'})",
+         format_pm(*_ve(fit.get("width")), "GeV")),
         ("Signal yield", format_pm(*_ve(fit.get("signal_yield")))),
         ("Background yield (window)", format_pm(*_ve(fit.get("background_yield")))),
     ]
@@ -206,8 +208,14 @@ def _lee_sentence(r: Mapping[str, Any]) -> str:
 
 
 def _cutflow_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
-    cf = (r.get("input") or {}).get("cutflow") or {}
-    return [(str(k).replace("_", " "), _num(v)) for k, v in cf.items()]
+    inp = r.get("input") or {}
+    cf = inp.get("cutflow") or {}
+    rows = [(str(k).replace("_", " "), _num(v)) for k, v in cf.items()]
+    w = ((r.get("config") or {}).get("spectrum") or {}).get("window")
+    if rows and w and inp.get("candidates") is not None:
+        rows.append((f"candidates in the fit window {_num(w[0])}-{_num(w[1])} GeV",
+                     _num(inp["candidates"])))
+    return rows
 
 
 def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
@@ -219,7 +227,7 @@ def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
         ("Particle (tables)", (f"{c.get('particle')} : {_num(c.get('table_mass'), 6)} GeV, "
                               f"width {_num(c.get('table_width'), 4)} GeV")),
         ("Fitted mass", format_pm(fm, fe, "GeV")),
-        ("Fitted resolution", format_pm(*_ve(c.get("fitted_resolution")), "GeV")),
+        ("Fitted core width (sigma)", format_pm(*_ve(c.get("fitted_resolution")), "GeV")),
         ("Shift (fit - tables)", (f"{_num(c.get('shift'), 3)} GeV = "
                                  f"{_num(c.get('shift_relative_permille'), 3)} \u2030, "
                                  f"{_num(c.get('shift_sigma'), 3)} \u03c3")),
@@ -244,8 +252,9 @@ def _limit_rows(r: Mapping[str, Any], max_rows: int = 12) -> tuple[list[str], li
     for i in idx:
         def g(k: str, i: int = i) -> str:
             v = lim.get(k) or []
-            return _num(v[i], 3) if i < len(v) else "n/a"
-        rows.append([_num(m[i], 5), g("observed"), g("expected"), g("expected_minus1"),
+            return f"{float(v[i]):#.3g}".rstrip(".") if i < len(v) and v[i] is not None \
+                else "n/a"
+        rows.append([f"{float(m[i]):.2f}", g("observed"), g("expected"), g("expected_minus1"),
                      g("expected_plus1")])
     return head, rows
 
@@ -264,7 +273,8 @@ def _provenance_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         rows.append(("Execution", ", ".join(f"{k} {v}" for k, v in eng.items()
                                             if v not in (None, ""))))
     for k, v in (pv.get("versions") or {}).items():
-        rows.append((k, str(v)))
+        if k != "peaksift":
+            rows.append((k, str(v)))
     return rows
 
 
@@ -285,10 +295,11 @@ def _title(r: Mapping[str, Any]) -> str:
         return str(t)
     ob = cfg.get("objects") or {}
     a = ob.get("collection", "object")
-    b = ob.get("second_collection") or a
+    b = ob.get("second_collection")
     ch = (cfg.get("pairing") or {}).get("charge", "")
     chs = {"opposite": "opposite-charge ", "same": "same-charge "}.get(ch, "")
-    return f"Resonance search in {chs}{a}-{b} pairs"
+    return f"Resonance search in {chs}{a}-{b} pairs" if b and b != a else \
+        f"Resonance search in {chs}{a} pairs"
 
 
 def _selection_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
