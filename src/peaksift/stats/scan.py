@@ -523,7 +523,9 @@ def scan(
     signal, background : shape name or Shape
         As in :func:`peaksift.fit` (e.g. ``"gaussian"``, ``"exponential"``).
     masses : array or int
-        Mass hypotheses (GeV) or a number of evenly spaced points inside the window.
+        Mass hypotheses (GeV) or a number of evenly spaced points inside the window.  Space
+        them by at most about half the resolution, or the scan (and every toy's) misses the
+        top of narrow excesses and the look-elsewhere estimates disagree.
     resolution : float, callable or table
         Signal resolution sigma(m): relative number, callable, or ``(masses, sigmas)``.
     window : (lo, hi), optional

@@ -1,0 +1,179 @@
+"""Mass scan: profile likelihood vs iminuit, Wilks, signal injection, resolution, blinding."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from peaksift import MassHistogram, fit, shapes
+from peaksift.errors import FitError
+from peaksift.stats import scan
+from peaksift.stats.scan import _prepare_model, resolution_model
+from peaksift.stats.toys import profile_signal, run_toys, toy_counts
+
+WINDOW = (100.0, 400.0)
+
+
+def _spectrum(seed: int = 5, n_bkg: int = 20_000, n_sig: int = 0, mass: float = 250.0,
+              sigma: float = 2.5, bins: int = 300) -> MassHistogram:
+    rng = np.random.default_rng(seed)
+    x = WINDOW[0] + rng.exponential(90.0, n_bkg)
+    x = np.concatenate([x, rng.normal(mass, sigma, n_sig)])
+    return MassHistogram(bins=bins, range=WINDOW).fill(x)
+
+
+def test_scan_q0_matches_iminuit_fits():
+    """At fixed mass and resolution, q0 from the scan equals 2 (NLL_b - NLL_s+b) of two
+    iminuit fits (peaksift.fit with the signal shape fixed), the standard definition of
+    Cowan et al. 2011 eq. 12; agreement to 1e-3 in Z."""
+    h = _spectrum(n_sig=120)
+    masses = np.array([180.0, 250.0, 320.0])
+    r = scan(h, "gaussian", "exponential", masses, resolution=0.01, refit=False)
+    for j, m in enumerate(masses):
+        sb = fit(h, "gaussian", "exponential", WINDOW,
+                 fixed={"mass": m, "sigma": 0.01 * m}, start={"signal_yield": 10.0})
+        b = fit(h, "gaussian", "exponential", WINDOW,
+                fixed={"signal_yield": 0.0, "mass": m, "sigma": 0.01 * m})
+        q = 2 * (b.nll - sb.nll) if sb.values["signal_yield"] > 0 else 0.0
+        assert np.sqrt(max(q, 0)) == pytest.approx(r.z_local[j], abs=1e-3)
+        assert r.signal_yield[j] == pytest.approx(sb.values["signal_yield"],
+                                                  abs=0.02 * sb.errors["signal_yield"])
+        assert r.signal_yield_error[j] == pytest.approx(sb.errors["signal_yield"], rel=0.05)
+
+
+def test_scan_finds_injected_peak_and_refits():
+    h = _spectrum(n_sig=250)
+    r = scan(h, "gaussian", "exponential", 121, resolution=0.01)
+    assert abs(r.best_mass - 250.0) < 5.0
+    assert r.z_local[r.best_index] > 4.0
+    assert r.refit is not None and r.refit.valid
+    assert abs(r.refit.peak_mass - 250.0) < 3 * r.refit.peak_mass_error
+    d = r.to_dict()
+    for key in ("mass", "z_local", "p_local", "signal_yield"):
+        assert len(d[key]) == 121
+    json.dumps(d)  # JSON-ready
+
+
+def test_negative_yield_allowed_but_q0_one_sided():
+    """A deficit gives a negative fitted yield and q0 = 0 (Cowan et al. 2011 eq. 12)."""
+    h = _spectrum(seed=9)
+    r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+    neg = r.signal_yield < 0
+    assert neg.any()
+    assert np.all(r.q0[neg] == 0.0) and np.all(r.p_local[neg] == 0.5)
+
+
+def test_wilks_half_chi_square_at_fixed_mass():
+    """Wilks (1938) / Cowan et al. 2011 eq. 49: under the background-only hypothesis q0 at a
+    fixed mass is a half chi-square with one dof, P(q0 > 1) = 0.1587, P(q0 > 4) = 0.02275
+    (scipy.stats.chi2.sf(q, 1)/2).  20,000 toys: binomial errors 0.0026 and 0.0011; we allow
+    3 of them."""
+    h = _spectrum(n_bkg=40_000)
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], resolution=0.01,
+                                 window=None, natural_width=None, blind=None,
+                                 signal_params=None, bins=None)
+    q = run_toys(model, 20_000, seed=1, progress=False)[:, 0]
+    n = q.size
+    for level, ref in ((1.0, 0.158655), (4.0, 0.0227501)):
+        frac = np.mean(q > level)
+        err = np.sqrt(ref * (1 - ref) / n)
+        assert abs(frac - ref) < 3 * err, (level, frac, ref, err)
+
+
+def test_signal_injection_pulls():
+    """Injected signals are recovered without bias: pulls (s_hat - s)/sigma_s have mean 0 and
+    width 1 (common practice), 400 toys: mean within 0.15, width within 10%."""
+    h = _spectrum(n_bkg=20_000)
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], resolution=0.01,
+                                 window=None, natural_width=None, blind=None,
+                                 signal_params=None, bins=None)
+    s_true = 150.0
+    expected = model.expected_background + s_true * model.fractions[0]
+    n = toy_counts(expected, 77, 0, 400)
+    f = np.broadcast_to(model.fractions[0], n.shape)
+    r = profile_signal(model, n, f, theta_start=np.repeat(model.theta[None], 400, axis=0),
+                       b_start=np.full(400, model.bkg_yield))
+    assert r["converged"].all()
+    pulls = (r["s"] - s_true) / r["s_error"]
+    assert abs(pulls.mean()) < 0.15
+    assert abs(pulls.std(ddof=1) - 1.0) < 0.1
+
+
+def test_resolution_forms_agree():
+    masses = np.array([150.0, 250.0, 350.0])
+    a = resolution_model(0.01)(masses)
+    b = resolution_model(lambda m: 0.01 * m)(masses)
+    c = resolution_model(([100.0, 400.0], [1.0, 4.0]))(masses)
+    d = resolution_model({"mass": [100.0, 400.0], "sigma": [1.0, 4.0]})(masses)
+    assert np.allclose(a, [1.5, 2.5, 3.5]) and np.allclose(a, b) and np.allclose(a, c)
+    assert np.allclose(c, d)
+    with pytest.raises(FitError, match="outside the resolution table"):
+        resolution_model(([200.0, 300.0], [1.0, 2.0]))(masses)
+    with pytest.raises(FitError, match="positive relative resolution"):
+        resolution_model(-0.1)
+
+
+def test_voigt_needs_natural_width_and_gaussian_refuses_one():
+    h = _spectrum()
+    with pytest.raises(FitError, match="needs natural_width"):
+        scan(h, "voigt", "exponential", 11, resolution=0.01)
+    with pytest.raises(FitError, match="has no natural width"):
+        scan(h, "gaussian", "exponential", 11, resolution=0.01, natural_width=1.0)
+    r = scan(h, "voigt", "exponential", 11, resolution=0.01, natural_width=1.0, refit=False)
+    assert np.all(np.isfinite(r.q0))
+
+
+def test_scan_bad_input_messages():
+    h = _spectrum()
+    with pytest.raises(FitError, match="outside the window"):
+        scan(h, "gaussian", "exponential", [50.0], resolution=0.01)
+    with pytest.raises(FitError, match="background shape"):
+        scan(h, "gaussian", "gaussian", [200.0], resolution=0.01)
+    with pytest.raises(FitError, match="unknown shape"):
+        scan(h, "gausian", "exponential", [200.0], resolution=0.01)
+
+
+def test_blinding_hides_and_ignores_the_window(tmp_path):
+    """Bins in the blinded range are out of the likelihood: changing the data there changes
+    nothing; observed values inside are NaN / None; expected values are still given."""
+    h = _spectrum(n_sig=250)
+    blind = (235.0, 265.0)
+    kw = {"resolution": 0.01, "blind": blind, "expected_signal": 100.0}
+    r1 = scan(h, "gaussian", "exponential", 61, **kw)
+    h2 = h.copy()
+    inside = (h2.edges[:-1] < blind[1]) & (h2.edges[1:] > blind[0])
+    h2.sumw[inside] *= 3.0
+    h2.sumw2[inside] *= 3.0
+    r2 = scan(h2, "gaussian", "exponential", 61, **kw)
+    assert r1.blinded.any()
+    assert np.all(np.isnan(r1.q0[r1.blinded])) and np.all(np.isnan(r1.p_local[r1.blinded]))
+    assert np.allclose(r1.q0[~r1.blinded], r2.q0[~r2.blinded], rtol=1e-8, atol=1e-10)
+    assert r1.refit is None
+    d = r1.to_dict()
+    assert all(d["z_local"][i] is None for i in np.flatnonzero(r1.blinded))
+    assert np.all(np.isfinite(r1.z_expected)) and np.all(r1.z_expected[r1.blinded] > 0)
+    assert r1.best_mass < blind[0] or r1.best_mass > blind[1]
+    path = tmp_path / "scan_blind.png"
+    r1.plot(path)
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_plot_writes_png(tmp_path):
+    h = _spectrum(n_sig=200)
+    r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+    g = r.global_significance(toys=50, seed=3)
+    path = tmp_path / "scan.png"
+    fig = r.plot(path, global_result=g)
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    ax = fig.axes[0]
+    assert ax.get_yscale() == "log" and "GeV" in ax.get_xlabel()
+
+
+def test_unbinned_masses_are_histogrammed():
+    rng = np.random.default_rng(2)
+    x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 5000), rng.normal(250, 2.5, 80)])
+    r = scan(x, shapes.get("gaussian"), "exponential", 31, resolution=0.01,
+             window=WINDOW, refit=False)
+    assert abs(r.best_mass - 250.0) < 8.0
