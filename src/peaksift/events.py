@@ -457,48 +457,31 @@ def _plan_request(files: list[Path], collections: str | Sequence[str] | None,
 
 @dataclass
 class _Piece:
-    """Flat numpy buffers of one read (a chunk or a file), ready to concatenate."""
+    """Flat numpy buffers of one read, kept per arrow chunk so the final build copies once."""
 
     n_events: int
-    colls: dict[str, tuple[np.ndarray, dict[str, Any]]] = field(default_factory=dict)
-    scalars: dict[str, Any] = field(default_factory=dict)
-    others: dict[str, Any] = field(default_factory=dict)
+    # collection -> (offsets per chunk, each starting at 0; field -> arrays per chunk)
+    colls: dict[str, tuple[list[np.ndarray], dict[str, list[Any]]]] = field(default_factory=dict)
+    scalars: dict[str, list[Any]] = field(default_factory=dict)
+    others: dict[str, list[Any]] = field(default_factory=dict)
     order: list[tuple[str, str]] = field(default_factory=list)   # (kind, name) in file order
     counts: dict[str, dict[str, int]] = field(default_factory=dict)
     n_objects: dict[str, int] = field(default_factory=dict)
 
 
 def _flat_numpy(arr: pa.Array) -> Any:
-    """Flat numpy array (numbers, bools) or an awkward layout (anything else)."""
+    """Flat numpy array (numbers, bools; zero-copy where arrow allows) or an awkward layout."""
     t = arr.type
     if pa.types.is_floating(t) or pa.types.is_integer(t) or pa.types.is_boolean(t):
         return arr.to_numpy(zero_copy_only=False)
     return ak.from_arrow(arr, highlevel=False)
 
 
-def _list_parts(col: pa.ChunkedArray) -> tuple[np.ndarray, list[tuple[pa.Array, int, int]]]:
-    """Offsets (int64, starting at 0) and (values, start, stop) slices of each arrow chunk."""
-    offs = [np.zeros(1, dtype=np.int64)]
-    parts = []
-    shift = 0
-    for ch in col.chunks:
-        o = np.asarray(ch.offsets, dtype=np.int64)
-        if len(o) == 0:
-            continue
-        start, stop = int(o[0]), int(o[-1])
-        offs.append(o[1:] - start + shift)
-        shift += stop - start
-        parts.append((ch.values, start, stop))
-    return np.concatenate(offs), parts
-
-
-def _gather(parts: list[tuple[pa.Array, int, int]], pick) -> Any:
-    pieces = [_flat_numpy(pick(v).slice(a, b - a)) for v, a, b in parts]
-    if not pieces:
-        return np.zeros(0)
-    if all(isinstance(p, np.ndarray) for p in pieces):
-        return pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
-    return ak.concatenate([ak.Array(p) for p in pieces], highlevel=False)
+def _list_chunk(ch: pa.Array) -> tuple[np.ndarray, pa.Array, int, int]:
+    """Offsets of one arrow list chunk (starting at 0), its values, and the value slice."""
+    o = np.asarray(ch.offsets)
+    start, stop = int(o[0]), int(o[-1])
+    return (o - start if start else o), ch.values, start, stop
 
 
 def _struct_child(values: pa.Array, name: str) -> pa.Array:
@@ -594,69 +577,91 @@ def _read_piece(info: _FileInfo, sel: tuple, row_groups: Sequence[int], first_ev
     n = table.num_rows
     piece = _Piece(n)
     for c in colls:
-        data: dict[str, Any] = {}
-        kin_src = _kin_source_fields(c)
+        names = (*_kin_source_fields(c), *extras[c.name])
         if c.layout == "records":
-            offsets, parts = _list_parts(table.column(c.name))
-            for f in (*kin_src, *extras[c.name]):
-                data[f] = _gather(parts, lambda v, f=f: _struct_child(v, f))
+            chunks = [_list_chunk(ch) for ch in table.column(c.name).chunks]
+            offs = [o for o, _, _, _ in chunks]
+            cols = {f: [_flat_numpy(_struct_child(v, f).slice(a, b - a)) for _, v, a, b in chunks]
+                    for f in names}
         else:
-            offsets = None
-            ref_col = None
-            for f in (*kin_src, *extras[c.name]):
-                col = c.columns[f]
-                o, parts = _list_parts(table.column(col))
-                if offsets is None:
-                    offsets, ref_col = o, col
-                elif not np.array_equal(o, offsets):
-                    bad = int(np.flatnonzero(np.diff(o) != np.diff(offsets))[0])
-                    raise InputError(
-                        f"columns '{ref_col}' and '{col}' of '{info.path}' have different "
-                        f"numbers of entries in event {first_event + bad}; sibling columns of "
-                        f"collection '{c.name}' must have one entry per object")
-                data[f] = _gather(parts, lambda v: v)
-        for f in list(data):
+            colarrs = {f: table.column(c.columns[f]) for f in names}
+            if len({tuple(len(ch) for ch in ca.chunks) for ca in colarrs.values()}) > 1:
+                colarrs = {f: pa.chunked_array([ca.combine_chunks()]) for f, ca in colarrs.items()}
+            offs, cols, ref = [], {}, None
+            for f in names:
+                chunks = [_list_chunk(ch) for ch in colarrs[f].chunks]
+                if ref is None:
+                    offs, ref = [o for o, _, _, _ in chunks], c.columns[f]
+                else:
+                    row = 0
+                    for o_ref, (o, _, _, _) in zip(offs, chunks):
+                        if not np.array_equal(o, o_ref):
+                            bad = row + int(np.flatnonzero(np.diff(o) != np.diff(o_ref))[0])
+                            raise InputError(
+                                f"columns '{ref}' and '{c.columns[f]}' of '{info.path}' have "
+                                f"different numbers of entries in event {first_event + bad}; "
+                                f"sibling columns of collection '{c.name}' must have one entry "
+                                "per object")
+                        row += len(o) - 1
+                cols[f] = [_flat_numpy(v.slice(a, b - a)) for _, v, a, b in chunks]
+        for f in list(cols):
             if f in _MASS_NAMES and f != "mass" and c.coords == "polar":
-                data["mass"] = data.pop(f)
+                cols["mass"] = cols.pop(f)
             if f in _ENERGY_NAMES and f != "energy" and c.coords == "cartesian":
-                data["energy"] = data.pop(f)
-        counts: dict[str, int] = {}
-        keep = _repair(c.name, data, c.coords == "cartesian", masses, counts)
-        n_obj = len(keep)
+                cols["energy"] = cols.pop(f)
+        counts: dict[str, int] = dict.fromkeys(_PROBLEMS, 0)
+        out_cols: dict[str, list[Any]] = {}
+        out_offs: list[np.ndarray] = []
+        row = 0
+        n_obj = 0
+        for i, o in enumerate(offs):
+            data = {f: v[i] for f, v in cols.items()}
+            cc: dict[str, int] = {}
+            keep = _repair(c.name, data, c.coords == "cartesian", masses, cc)
+            n_obj += len(keep)
+            for k, v in cc.items():
+                counts[k] += v
+            n_ev = len(o) - 1
+            if not keep.all():
+                ev = np.repeat(np.arange(n_ev), np.diff(o))
+                if strict:
+                    problem = next(k for k, v in cc.items() if v)
+                    first = first_event + row + int(ev[np.flatnonzero(~keep)[0]])
+                    raise InputError(
+                        f"'{info.path}', collection '{c.name}': {cc[problem]} objects have "
+                        f"{_PROBLEMS[problem]} (first in event {first}); repair the file, or "
+                        "read with strict=False to drop such objects with a warning")
+                o = np.concatenate([[0], np.cumsum(np.bincount(ev[keep], minlength=n_ev))])
+                data = {f: (v[keep] if isinstance(v, np.ndarray) else ak.Array(v)[keep].layout)
+                        for f, v in data.items()}
+            out_offs.append(o)
+            ordered = {k: data.pop(k) for k in _KIN_OUT}
+            for f in extras[c.name]:
+                if f in data:
+                    ordered["raw_" + f if f in _RESERVED else f] = data.pop(f)
+            for f, v in ordered.items():
+                out_cols.setdefault(f, []).append(v)
+            row += n_ev
+        if not offs:
+            out_cols = {f: [] for f in (*_KIN_OUT, *(("raw_" + f if f in _RESERVED else f)
+                                                     for f in extras[c.name]))}
         piece.n_objects[c.name] = n_obj
-        n_drop = n_obj - int(np.count_nonzero(keep))
-        if n_drop:
-            if strict:
-                problem = next(k for k, v in counts.items() if v)
-                ev = np.repeat(np.arange(n), np.diff(offsets))
-                first = int(ev[np.flatnonzero(~keep)[0]]) + first_event
-                raise InputError(
-                    f"'{info.path}', collection '{c.name}': {counts[problem]} objects have "
-                    f"{_PROBLEMS[problem]} (first in event {first}); repair the file, or read "
-                    "with strict=False to drop such objects with a warning")
-            ev = np.repeat(np.arange(n), np.diff(offsets))
-            kept = np.bincount(ev[keep], minlength=n)
-            offsets = np.concatenate([[0], np.cumsum(kept)]).astype(np.int64)
-            for f in list(data):
-                v = data[f]
-                data[f] = v[keep] if isinstance(v, np.ndarray) else ak.Array(v)[keep].layout
         piece.counts[c.name] = counts
-        ordered: dict[str, Any] = {k: data.pop(k) for k in _KIN_OUT}
-        for f in extras[c.name]:
-            if f in data:
-                ordered["raw_" + f if f in _RESERVED else f] = data.pop(f)
-        piece.colls[c.name] = (offsets, ordered)
+        piece.colls[c.name] = (out_offs, out_cols)
         piece.order.append(("coll", c.name))
     for s in scal:
-        piece.scalars[s] = _gather([(a, 0, len(a)) for a in table.column(s).chunks], lambda v: v)
+        piece.scalars[s] = [_flat_numpy(ch) for ch in table.column(s).chunks]
         piece.order.append(("scalar", s))
     for o in others:
-        piece.others[o] = ak.from_arrow(table.column(o), highlevel=False)
+        piece.others[o] = [ak.from_arrow(table.column(o), highlevel=False)]
         piece.order.append(("other", o))
     return piece
 
 
-def _concat(values: list[Any]) -> Any:
+def _concat(values: list[Any], dtype: Any = None) -> Any:
+    """One concatenation (one copy) of per-chunk arrays; a single part is used as is."""
+    if not values:
+        return np.zeros(0, dtype=dtype or np.float64)
     if len(values) == 1:
         return values[0]
     if all(isinstance(v, np.ndarray) for v in values):
@@ -670,6 +675,23 @@ def _to_layout(x: Any) -> ak.contents.Content:
     return x
 
 
+def _offsets(parts: list[np.ndarray]) -> np.ndarray:
+    if not parts:
+        return np.zeros(1, np.int64)
+    if len(parts) == 1:
+        return parts[0].astype(np.int64, copy=False)
+    sizes = [len(p) - 1 for p in parts]
+    out = np.empty(sum(sizes) + 1, np.int64)
+    out[0] = 0
+    pos, shift = 1, 0
+    for p, k in zip(parts, sizes):
+        out[pos:pos + k] = p[1:]
+        out[pos:pos + k] += shift
+        shift += int(p[-1])
+        pos += k
+    return out
+
+
 def _build(pieces: list[_Piece]) -> ak.Array:
     pieces = [p for p in pieces if p.order] or pieces[:1]
     if not pieces:
@@ -678,21 +700,17 @@ def _build(pieces: list[_Piece]) -> ak.Array:
     contents, names = [], []
     for kind, name in pieces[0].order:
         if kind == "coll":
-            offs, shift = [np.zeros(1, np.int64)], 0
-            for p in pieces:
-                o = p.colls[name][0]
-                offs.append(o[1:] + shift)
-                shift += int(o[-1])
-            offsets = np.concatenate(offs)
+            offsets = _offsets([o for p in pieces for o in p.colls[name][0]])
             fnames = list(pieces[0].colls[name][1])
-            arrays = [_to_layout(_concat([p.colls[name][1][f] for p in pieces])) for f in fnames]
+            arrays = [_to_layout(_concat([v for p in pieces for v in p.colls[name][1][f]]))
+                      for f in fnames]
             rec = ak.contents.RecordArray(arrays, fnames, length=int(offsets[-1]),
                                           parameters={"__record__": "Momentum4D"})
             contents.append(ak.contents.ListOffsetArray(ak.index.Index64(offsets), rec))
         elif kind == "scalar":
-            contents.append(_to_layout(_concat([p.scalars[name] for p in pieces])))
+            contents.append(_to_layout(_concat([v for p in pieces for v in p.scalars[name]])))
         else:
-            contents.append(_to_layout(_concat([p.others[name] for p in pieces])))
+            contents.append(_to_layout(_concat([v for p in pieces for v in p.others[name]])))
         names.append(name)
     return ak.Array(ak.contents.RecordArray(contents, names, length=n))
 
@@ -936,6 +954,13 @@ class Description:
         return "\n".join(lines)
 
 
+def _dtype_text(t: pa.DataType) -> str:
+    """numpy-style names for numbers (float32, int8, ...), arrow's own text otherwise."""
+    if pa.types.is_floating(t) or pa.types.is_integer(t) or pa.types.is_boolean(t):
+        return np.dtype(t.to_pandas_dtype()).name
+    return str(t)
+
+
 def describe(source: Source) -> Description:
     """Describe a set of Parquet event files: collections, fields and dtypes, events per file,
     object multiplicities.  Reads footers plus one column per collection (for the counts)."""
@@ -958,14 +983,11 @@ def describe(source: Source) -> Description:
             f0 = _kin_source_fields(cc)[0]
             pf = _open(info.path)
             tab = pf.read(columns=cc.paths[f0][:1])
-            o, _ = _list_parts(tab.column(0))
-            counts_all.append(np.diff(o))
+            counts_all.extend(np.diff(_list_chunk(ch)[0]) for ch in tab.column(0).chunks)
         counts = np.concatenate(counts_all) if counts_all else np.zeros(0, np.int64)
         binned = np.bincount(np.minimum(counts, top), minlength=top + 1) if counts.size else \
             np.zeros(top + 1, np.int64)
-        fields_out: dict[str, str] = {}
-        for f, t in c.fields.items():
-            fields_out[f] = str(t)
+        fields_out = {f: _dtype_text(t) for f, t in c.fields.items()}
         colls[name] = {
             "layout": c.layout,
             "coordinates": c.coords,
@@ -978,8 +1000,8 @@ def describe(source: Source) -> Description:
     return Description(
         files=[(str(i.path), i.n_events, len(i.row_groups), i.size) for i in infos],
         collections=colls,
-        event_fields={k: str(v) for k, v in first.scalars.items()},
-        other_fields={k: ", ".join(f"{f or 'values'} {t}" for f, t in c.fields.items())
+        event_fields={k: _dtype_text(v) for k, v in first.scalars.items()},
+        other_fields={k: ", ".join(f"{f or 'values'} {_dtype_text(t)}" for f, t in c.fields.items())
                       for k, c in first.others.items()},
         n_events=sum(i.n_events for i in infos),
         problems=problems,

@@ -1,0 +1,105 @@
+"""Benchmark the event reader against a raw pyarrow read of the same columns, in the same run.
+
+    python scripts/bench_read.py                 # demo-sized set + a 5M-event generated set
+    python scripts/bench_read.py --events 1000000 --repeat 2
+
+For each data set it times (best of --repeat):
+
+* raw pyarrow: ``pyarrow.parquet.ParquetFile(f).read(columns=...)`` for every file, with the
+  same leaf columns peaksift reads (the baseline);
+* ``peaksift.read_events`` (everything: awkward arrays with Momentum4D records, input checks);
+* ``peaksift.iter_events`` over chunks (the streaming path the search uses).
+
+and prints events/s and the ratio speed(peaksift) / speed(raw pyarrow); the target is >= 0.8.
+The large set is generated to a temporary directory and removed afterwards.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import pyarrow.parquet as pq
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT / "src"))
+
+from peaksift import events, simulate  # noqa: E402
+
+
+def _leaf_columns(path: Path) -> list[str]:
+    pf = pq.ParquetFile(path)
+    return [pf.schema.column(i).path for i in range(len(pf.schema))]
+
+
+def _best(fn, repeat: int) -> float:
+    best = float("inf")
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
+def bench(source: Path, repeat: int, chunk_events: int) -> dict[str, float]:
+    files = events.list_files(source)
+    n = sum(pq.ParquetFile(f).metadata.num_rows for f in files)
+    cols = {f: _leaf_columns(f) for f in files}
+
+    def raw() -> None:
+        for f in files:
+            pq.ParquetFile(f).read(columns=cols[f], use_threads=True)
+
+    def ours() -> None:
+        events.read_events(source)
+
+    def streamed() -> None:
+        for _ in events.iter_events(source, chunk_events=chunk_events):
+            pass
+
+    raw()  # warm the page cache once so neither side pays for the first disk read
+    t_raw = _best(raw, repeat)
+    t_ours = _best(ours, repeat)
+    t_iter = _best(streamed, repeat)
+    return {"events": n, "raw": t_raw, "read_events": t_ours, "iter_events": t_iter}
+
+
+def _report(name: str, r: dict[str, float]) -> None:
+    n = r["events"]
+    print(f"{name}: {n:,} events")
+    for key in ("raw", "read_events", "iter_events"):
+        label = {"raw": "raw pyarrow read", "read_events": "peaksift.read_events",
+                 "iter_events": "peaksift.iter_events"}[key]
+        ratio = "" if key == "raw" else f"   ratio vs raw pyarrow: {r['raw'] / r[key]:.2f}"
+        print(f"  {label:<22} {r[key]:7.3f} s  {n / r[key] / 1e6:7.2f} M events/s{ratio}")
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--events", type=int, default=5_000_000, help="size of the generated set")
+    p.add_argument("--repeat", type=int, default=3)
+    p.add_argument("--chunk-events", type=int, default=500_000)
+    p.add_argument("--demo", default=str(ROOT / "demo_data"), help="demo-sized data set")
+    args = p.parse_args(argv)
+
+    demo = Path(args.demo)
+    with tempfile.TemporaryDirectory(prefix="peaksift-bench-") as tmp:
+        if not any(demo.glob("*.parquet")):
+            demo = Path(tmp) / "demo"
+            simulate.write_demo(demo)
+        _report(f"demo-sized set ({demo})", bench(demo, args.repeat, args.chunk_events))
+        if args.events > 0:
+            big = Path(tmp) / "big"
+            t = time.perf_counter()
+            files = max(1, args.events // 1_000_000)
+            simulate.write_demo(big, n_events=args.events, files=files, row_group_events=100_000)
+            print(f"(generated {args.events:,} events in {time.perf_counter() - t:.1f} s)")
+            _report("generated set", bench(big, args.repeat, args.chunk_events))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
