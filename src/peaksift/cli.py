@@ -17,6 +17,7 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Callable, Sequence
+from pathlib import Path
 
 from .errors import PeaksiftError
 
@@ -76,7 +77,8 @@ def _summary(result: object) -> str:
         fm = cal["fitted_mass"]
         lines.append(_row(f"calibration {cal['particle']}",
                           f"{format_pm(fm['value'], fm['error'], 'GeV')} vs tables "
-                          f"{cal['table_mass']:.4f} GeV"))
+                          f"{cal['table_mass']:.4f} GeV (shift "
+                          f"{cal['shift_relative_permille']:+.1f} per mille)"))
     if d.get("blinding", {}).get("active"):
         lines.append(_row("blinding", "ACTIVE (data in the blinded window hidden)"))
     if "outputs" in d:
@@ -86,10 +88,24 @@ def _summary(result: object) -> str:
 
 
 def _cmd_search(args: argparse.Namespace) -> int:
+    import warnings
+
     from .search import run_search
 
-    res = run_search(args.config, out=args.out, unblind=args.unblind, toys=args.toys,
-                     seed=args.seed, engine=args.engine, progress=_progress_wanted(args))
+    with warnings.catch_warnings(record=True) as caught:
+        # numpy's floating-point notices from the statistics layer are counted, not
+        # printed one by one in the middle of the progress bars
+        warnings.simplefilter("always")
+        res = run_search(args.config, out=args.out, unblind=args.unblind, toys=args.toys,
+                         seed=args.seed, engine=args.engine, progress=_progress_wanted(args))
+    numeric = [w for w in caught if issubclass(w.category, RuntimeWarning)]
+    for w in caught:
+        if not issubclass(w.category, RuntimeWarning):
+            warnings.showwarning(w.message, w.category, w.filename, w.lineno)
+    if numeric:
+        where = sorted({Path(w.filename).name for w in numeric})
+        print(f"peaksift: note: {len(numeric)} floating-point warnings (overflow/invalid "
+              f"value) in {', '.join(where)} during the run", file=sys.stderr)
     print(_summary(res))
     return 0
 

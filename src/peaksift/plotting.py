@@ -159,7 +159,8 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
         title = (f"calibration: {c['particle']}, particle-data tables "
                  f"{c['table_mass']:.4f} GeV")
         out["calibration"] = _fit_figure(calibration[1], outdir, "calibration", formats,
-                                         log=False, blind=None, title=title)
+                                         log=False, blind=None, title=title,
+                                         reference=(c["table_mass"], "mass in the tables"))
     return out
 
 
@@ -185,11 +186,18 @@ def _call_plot(obj: Any, **kw: Any) -> Any:
 
 
 def _fit_figure(fr: Any, outdir: str | os.PathLike[str], name: str, formats: Sequence[str], *,
-                log: bool, blind: Sequence[float] | None, title: str) -> Path:
-    """``FitResult.plot`` (data, model, signal, background, pulls) plus blinding and log."""
+                log: bool, blind: Sequence[float] | None, title: str,
+                reference: tuple[float, str] | None = None) -> Path:
+    """``FitResult.plot`` (data, model, signal, background, pulls) plus blinding and log;
+    ``reference`` = (mass, label) draws a vertical line (e.g. the tabulated mass)."""
     with figure_style():
         fig = fr.plot(title=title)
         ax, axp = fig.axes[0], fig.axes[1]
+        if reference is not None:
+            for a in (ax, axp):
+                a.axvline(reference[0], color=COLORS["accent"], lw=1.0, ls="-.",
+                          label=reference[1] if a is ax else None, zorder=1)
+            ax.legend(loc="upper right")
         _shade_blind(ax, blind)
         _shade_blind(axp, blind)
         n = np.asarray(fr.observed, dtype=float)
