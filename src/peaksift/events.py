@@ -517,7 +517,8 @@ def _repair(name: str, data: dict[str, np.ndarray], cart: bool, masses: Mapping[
         below &= finite & ~neg_e
         zero_pt = finite & (pt == 0)
         data["pt"], data["eta"], data["phi"] = pt, eta, np.arctan2(pyf, pxf)
-        data["mass"] = np.sqrt(np.where(below, 0.0, m2))
+        with np.errstate(invalid="ignore"):
+            data["mass"] = np.sqrt(np.where(below, 0.0, m2))
         counts["nonfinite"] = int(np.count_nonzero(~finite | zero_pt))
         counts["negative_energy"] = int(np.count_nonzero(neg_e))
         counts["energy_below_momentum"] = int(np.count_nonzero(below))
