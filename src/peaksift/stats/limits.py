@@ -45,7 +45,7 @@ from scipy import optimize, special, stats
 
 from ..errors import FitError
 from .scan import _clean, _prepare_model
-from .toys import ScanModel, bkg_fractions, fit_background, profile_signal, toy_counts
+from .toys import ScanModel, bkg_fractions, fit_background, profile_signal
 
 __all__ = [
     "LimitResult",
@@ -537,7 +537,7 @@ def _toy_limit(model: ScanModel, full: ScanModel, info: dict[str, Any], j: int, 
     n_obs = model.counts
     lo_ref = np.nanmin(np.r_[exp_asym, obs_asym])
     hi_ref = np.nanmax(np.r_[exp_asym, obs_asym])
-    grid = np.geomspace(0.6 * lo_ref, 1.6 * hi_ref, 12)
+    grid = np.geomspace(0.7 * lo_ref, 1.5 * hi_ref, 9)
     b_fit = model.expected_background
     q_obs = np.empty(grid.size)
     clsb = np.empty(grid.size)
@@ -552,10 +552,9 @@ def _toy_limit(model: ScanModel, full: ScanModel, info: dict[str, Any], j: int, 
         g = bkg_fractions(model, prob.theta)[0]
         s_mu = mu * conv * prob.kappa(prob.t)[0][0]
         exp_sb = s_mu * f + prob.b[0] * g
-        child = ss.spawn(1)[0]
-        n_sb = toy_counts(exp_sb, child, 0, ntoys)
-        n_b = toy_counts(b_fit, child, ntoys, ntoys)
-        rng = np.random.default_rng(child.spawn(1)[0])
+        rng = np.random.default_rng(ss.spawn(1)[0])
+        n_sb = rng.poisson(exp_sb, size=(ntoys, exp_sb.size)).astype(float)
+        n_b = rng.poisson(b_fit, size=(ntoys, b_fit.size)).astype(float)
         aux_sb = prob.t[0] + rng.standard_normal(ntoys) if delta else np.zeros(ntoys)
         aux_b = rng.standard_normal(ntoys) if delta else np.zeros(ntoys)
         q_sb = _toy_q(model, n_sb, f, conv, mu, delta, kind, aux_sb)

@@ -1,0 +1,187 @@
+"""CLs upper limits: exact Poisson limits, asymptotic formulae, toys, conversion, blinding."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from scipy import optimize, stats
+
+from peaksift import MassHistogram
+from peaksift.errors import FitError
+from peaksift.stats import upper_limits
+from peaksift.stats.limits import (
+    cls_asymptotic,
+    expected_band_factor,
+    poisson_interval,
+    poisson_upper_limit,
+)
+from peaksift.stats.scan import _prepare_model
+
+WINDOW = (100.0, 400.0)
+
+
+def _spectrum(seed: int = 3, n_bkg: int = 20_000, n_sig: int = 0, bins: int = 300):
+    rng = np.random.default_rng(seed)
+    x = np.concatenate([WINDOW[0] + rng.exponential(90.0, n_bkg),
+                        rng.normal(250.0, 2.5, n_sig)])
+    return MassHistogram(bins=bins, range=WINDOW).fill(x)
+
+
+def test_zero_observed_no_background_limit_is_2996():
+    """Garwood (1936) one-sided exact limit, 0.5 chi2.ppf(0.95, 2) = 2.996 events (from
+    memory, and scipy.stats.chi2.ppf); CLs gives the same for n = 0 whatever the background
+    (Read, J. Phys. G 28 (2002) 2693)."""
+    assert poisson_upper_limit(0, 0.95, method="classical") == pytest.approx(2.996, abs=1e-3)
+    assert poisson_upper_limit(0, 0.95) == pytest.approx(2.996, abs=1e-3)
+    assert poisson_upper_limit(0, 0.95, background=4.0) == pytest.approx(2.996, abs=1e-3)
+    assert poisson_upper_limit(0, 0.95) == pytest.approx(-np.log(0.05), rel=1e-9)
+
+
+@pytest.mark.parametrize("n", [0, 1, 2, 5, 10, 30])
+def test_cls_without_background_equals_garwood(n):
+    """With b = 0 the CLs limit (root of the Poisson CDF, scipy.stats.poisson) equals the
+    Garwood limit 0.5 chi2.ppf(CL, 2n+2) (scipy.stats.chi2.ppf)."""
+    assert poisson_upper_limit(n, 0.95) == pytest.approx(0.5 * stats.chi2.ppf(0.95, 2 * n + 2),
+                                                         rel=1e-8)
+    assert poisson_upper_limit(n, 0.9) == pytest.approx(0.5 * stats.chi2.ppf(0.9, 2 * n + 2),
+                                                        rel=1e-8)
+
+
+def test_garwood_central_intervals():
+    """68.27% central exact Poisson intervals (Garwood 1936; PDG Review, Statistics, table of
+    Poisson limits; from memory): n=0: [0, 1.84]; n=1: [0.17, 3.30]; n=2: [0.71, 4.64]."""
+    lo, hi = poisson_interval([0, 1, 2])
+    assert np.allclose(lo, [0.0, 0.173, 0.708], atol=0.01)
+    assert np.allclose(hi, [1.841, 3.300, 4.638], atol=0.01)
+
+
+def test_poisson_limit_errors():
+    with pytest.raises(FitError, match="non-negative integer"):
+        poisson_upper_limit(-1)
+    with pytest.raises(FitError, match="confidence level"):
+        poisson_upper_limit(1, cl=1.5)
+
+
+def test_asymptotic_formulae_consistency():
+    """Cowan et al. 2011: the median expected CLs limit is sigma Phi^-1(1 - alpha/2) = 1.96
+    sigma at 95% (eq. 89 with N = 0; scipy.stats.norm.ppf), and the CLs formula
+    (eqs. 65-66) gives exactly alpha there for the Asimov q~mu = (mu/sigma)^2."""
+    assert expected_band_factor(0.0) == pytest.approx(stats.norm.ppf(0.975), rel=1e-12)
+    for n in (-2, -1, 1, 2):
+        assert expected_band_factor(n) == pytest.approx(
+            stats.norm.ppf(1 - 0.05 * stats.norm.cdf(n)) + n, rel=1e-12)
+    a = expected_band_factor(0.0)
+    assert cls_asymptotic(a * a, a, 1.0) == pytest.approx(0.05, rel=1e-9)
+    # the +1 sigma band edge: Asimov-like q for an upward-fluctuated background
+    a1 = expected_band_factor(1.0)
+    assert cls_asymptotic((a1 - 1.0) ** 2, a1, 1.0) == pytest.approx(0.05, rel=1e-9)
+
+
+def test_expected_limit_matches_fisher_information():
+    """Large counts: the median expected limit solves q_mu,A = 1.96^2 on the Asimov set (Cowan
+    et al. 2011 eqs. 32 and 89), close to 1.96 sigma_s with sigma_s^-2 = sum f_i^2 / b_i (the
+    Fisher information, eqs. 28-30).  With the background known it is computed here
+    independently; profiling the background makes ours slightly larger (we allow +5%),
+    never smaller.  The band edges likewise, with the eq. 89 factors."""
+    h = _spectrum(n_bkg=40_000)
+    masses = [180.0, 250.0, 320.0]
+    r = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01)
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", masses, resolution=0.01,
+                                    window=None, natural_width=None, blind=None,
+                                    signal_params=None, bins=None)
+    b = model.expected_background
+    sig = 1.0 / np.sqrt(np.sum(model.fractions**2 / b, axis=1))
+    # known-background Asimov q_mu,A = 2 sum[mu f - b ln(1 + mu f / b)] equal to the squared
+    # band factor of CCGV eq. 89 (sigma from the Asimov set, eq. 32), by scipy.optimize.brentq
+    def known(f, factor):
+        return optimize.brentq(
+            lambda mu: 2 * np.sum(mu * f - b * np.log1p(mu * f / b)) - factor**2, 1e-3, 1e5)
+
+    med = np.array([known(f, 1.96) for f in model.fractions])
+    assert np.all(med > 1.96 * sig)  # Poisson skew: slightly above the Gaussian value
+    ratio = r.expected / med
+    assert np.all(ratio > 0.999) and np.all(ratio < 1.05)
+    for name, n in (("expected_minus2", -2), ("expected_minus1", -1),
+                    ("expected_plus1", 1), ("expected_plus2", 2)):
+        want = np.array([known(f, expected_band_factor(n)) for f in model.fractions])
+        ratio = getattr(r, name) / want
+        assert np.all(ratio > 0.999) and np.all(ratio < 1.05), name
+    assert np.all(r.expected_minus2 < r.expected_minus1)
+    assert np.all(r.expected_plus1 < r.expected_plus2)
+    assert np.all(np.isfinite(r.observed))
+
+
+def test_asymptotic_and_toy_limits_agree_at_moderate_counts():
+    """Asymptotic CLs (Cowan et al. 2011) and toy-based CLs (Read 2002) agree within 10% at
+    moderate counts (~40 background events under the peak): observed and median expected."""
+    h = _spectrum(n_bkg=3000, n_sig=15, bins=150)
+    r = upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01)
+    t = upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01, method="toys",
+                     toy_masses=[250.0], toys=1000, seed=5)
+    assert t.methods == ("toys",)
+    assert t.observed[0] == pytest.approx(r.observed[0], rel=0.10)
+    assert t.expected[0] == pytest.approx(r.expected[0], rel=0.10)
+    assert t.expected_plus1[0] == pytest.approx(r.expected_plus1[0], rel=0.15)
+
+
+def test_cross_section_conversion_and_nuisances():
+    """sigma x B = s / (L eff) (common practice).  Without uncertainties the limits convert
+    exactly; constrained luminosity and efficiency uncertainties weaken them, more for a
+    larger uncertainty; log-normal and Gaussian constraints agree for small uncertainties."""
+    h = _spectrum()
+    masses = [200.0, 300.0]
+    ev = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01)
+    def eff(m):
+        return 0.2 + 0.001 * np.asarray(m)
+
+    xs = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01, luminosity=20.0,
+                      efficiency=eff)
+    conv = 20.0 * eff(np.array(masses))
+    assert xs.unit == "fb" and ev.unit == "events"
+    assert np.allclose(xs.observed * conv, ev.observed, rtol=1e-4)
+    assert np.allclose(xs.expected * conv, ev.expected, rtol=1e-4)
+    small = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01,
+                         luminosity=20.0, efficiency=eff, luminosity_uncertainty=0.05)
+    big = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01,
+                       luminosity=20.0, efficiency=eff, luminosity_uncertainty=0.05,
+                       efficiency_uncertainty=0.3)
+    gauss = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01,
+                         luminosity=20.0, efficiency=eff, luminosity_uncertainty=0.05,
+                         constraint="gaussian")
+    assert np.all(small.expected > xs.expected) and np.all(big.expected > small.expected)
+    assert np.all(big.observed > small.observed)
+    assert np.allclose(gauss.expected, small.expected, rtol=0.02)
+
+
+def test_blinded_limits_show_expected_only(tmp_path):
+    h = _spectrum(n_sig=60)
+    blind = (240.0, 260.0)
+    r = upper_limits(h, "gaussian", "exponential", np.linspace(150, 350, 41), resolution=0.01,
+                     blind=blind)
+    inside = (r.masses >= blind[0]) & (r.masses <= blind[1])
+    assert np.array_equal(r.blinded, inside) and inside.any()
+    assert np.all(np.isnan(r.observed[inside])) and np.all(np.isfinite(r.observed[~inside]))
+    assert np.all(np.isfinite(r.expected)) and np.all(np.isfinite(r.expected_plus2))
+    d = r.to_dict()
+    for key in ("mass", "observed", "expected", "expected_minus2", "expected_minus1",
+                "expected_plus1", "expected_plus2", "unit", "cl", "method"):
+        assert key in d
+    assert all(d["observed"][i] is None for i in np.flatnonzero(inside))
+    json.dumps(d)
+    path = tmp_path / "limits.png"
+    fig = r.plot(path)
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "upper limit" in fig.axes[0].get_ylabel()
+
+
+def test_limit_input_errors():
+    h = _spectrum()
+    with pytest.raises(FitError, match="cl must be in"):
+        upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01, cl=95)
+    with pytest.raises(FitError, match="need luminosity"):
+        upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01,
+                     efficiency_uncertainty=0.1)
+    with pytest.raises(FitError, match="'asymptotic' or 'toys'"):
+        upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01, method="exact")
