@@ -537,7 +537,7 @@ def write_demo(
     """Write the demo data set to ``outdir``: Parquet event files and ``truth.json``.
 
     Events are generated and written block by block (:data:`BLOCK_EVENTS` at a time), so
-    memory stays near 100 MB whatever ``n_events``.  Files are written under temporary names
+    memory stays near 150 MB (resident) whatever ``n_events``.  Files are written under temporary names
     and renamed when complete.
 
     Parameters
