@@ -229,79 +229,270 @@ class _BinnedCost(_Cost):
     def __init__(self, model, full, free, constraints, edges, n, scale, mask=None):
         super().__init__(model, full, free, constraints)
         self.edges = edges
-        self.mask = np.ones(n.size, bool) if mask is None else mask
-        self.s = scale[self.mask]
-        self.n = (n * scale)[self.mask]  # effective counts
+        self.mask = None if mask is None or mask.all() else mask
+        m = slice(None) if self.mask is None else self.mask
+        self.s = scale[m]
+        self.unit_scale = bool(np.all(self.s == 1.0))
+        self.n = (n * scale)[m]  # effective counts
         nz = self.n > 0
-        self._sat = np.zeros_like(self.n)
-        self._sat[nz] = self.n[nz] * np.log(self.n[nz])
-        self._sat -= self.n
+        sat = np.zeros_like(self.n)
+        sat[nz] = self.n[nz] * np.log(self.n[nz])
+        sat -= self.n
+        if not self.unit_scale:
+            sat -= self.n * np.log(self.s)  # so that the value is sum(s mu - n~ ln(s mu)) + sat
+        self._satsum = float(sat.sum())
+        free = np.asarray(free)
+        row = {int(i): k for k, i in enumerate(free)}
+        self._plan = []
+        for shape, sl, iy in model._blocks:
+            rows = [row.get(i, -1) for i in range(sl.start, sl.stop)]
+            self._plan.append((shape, sl, iy, any(r >= 0 for r in rows), rows, row.get(iy, -1)))
+        self._jac = np.zeros((free.size, self.n.size))
+        self._cons = [(row[i], c, sd) for i, c, sd in constraints if i in row]
 
     def expected_and_grad(self, v: np.ndarray):
+        """Expected contents and d(mu)/d(parameter) per model parameter (None if unused)."""
         model = self.model
         mu = 0.0
         parts = [None] * v.size
-        for shape, sl, iy in model._blocks:
+        for shape, sl, iy, need, _, _ in self._plan:
             p = list(v[sl])
-            f = shape.bin_fractions(self.edges, p, model.window)[self.mask]
-            mu = mu + v[iy] * f
-            parts[iy] = f
-            if sl.stop > sl.start and np.any(np.isin(np.arange(sl.start, sl.stop), self.free)):
-                g = shape.grad_bin_fractions(self.edges, p, model.window)[:, self.mask]
+            if need:
+                f, g = shape.fractions_and_grad(self.edges, p, model.window)
+                if self.mask is not None:
+                    f, g = f[self.mask], g[:, self.mask]
                 for j, i in enumerate(range(sl.start, sl.stop)):
                     parts[i] = v[iy] * g[j]
+            else:
+                f = shape.bin_fractions(self.edges, p, model.window)
+                if self.mask is not None:
+                    f = f[self.mask]
+            mu = mu + v[iy] * f
+            parts[iy] = f
         return mu, parts
 
-    def _value_grad(self, v):
-        mu, parts = self.expected_and_grad(v)
-        floor = 1e-300 + 1e-12 * max(float(np.mean(np.abs(mu))), 1e-300)
-        mus = np.maximum(mu, floor) * self.s
-        val = float(np.sum(mus - self.n * np.log(mus) + self._sat))
-        r = self.s * (1.0 - self.n / mus)
-        g = np.array([0.0 if p is None else float(r @ p) for p in parts])
+    def value_grad_info(self, x: np.ndarray):
+        """NLL, gradient and expected information (free parameters) at free values ``x``."""
+        self.ncall += 1
+        v = self.full.copy()
+        v[self.free] = x
+        jac = self._jac
+        window = self.model.window
+        mu = None
+        for shape, sl, iy, need, rows, ry in self._plan:
+            p = [float(q) for q in v[sl]]
+            y = float(v[iy])
+            if need:
+                f, g = shape.fractions_and_grad(self.edges, p, window)
+                if self.mask is not None:
+                    f, g = f[self.mask], g[:, self.mask]
+                for j, r in enumerate(rows):
+                    if r >= 0:
+                        np.multiply(g[j], y, out=jac[r])
+            else:
+                f = shape.bin_fractions(self.edges, p, window)
+                if self.mask is not None:
+                    f = f[self.mask]
+            if ry >= 0:
+                jac[ry] = f
+            mu = y * f if mu is None else mu + y * f
+        if mu.min() <= 0.0:
+            mu = np.maximum(mu, 1e-300 + 1e-12 * float(np.abs(mu).mean()))
+        n = self.n
+        if self.unit_scale:
+            val = float(mu.sum() - n @ np.log(mu)) + self._satsum
+            r = 1.0 - n / mu
+            w = 1.0 / mu
+        else:
+            val = float(self.s @ mu - n @ np.log(mu)) + self._satsum
+            r = self.s - n / mu
+            w = self.s / mu
+        g = jac @ r
+        info = (jac * w) @ jac.T
+        for k, c, sd in self._cons:
+            xv = float(x[k])
+            val += 0.5 * ((xv - c) / sd) ** 2
+            g[k] += (xv - c) / sd**2
+            info[k, k] += 1.0 / sd**2
+        return val, g, info
+
+    def hessian(self, x: np.ndarray, steps: np.ndarray) -> np.ndarray:
+        """Observed Hessian of the NLL at free values ``x``:
+        sum_i n~_i/mu_i^2 dmu dmu^T + sum_i (s_i - n~_i/mu_i) d^2mu, with d^2mu exact for
+        yield pairs (0) and yield-shape pairs (dF/dtheta), and by forward differences of the
+        analytic shape gradients (step ``steps``) for shape-shape pairs of one component."""
+        v = self.full.copy()
+        v[self.free] = x
+        window = self.model.window
+        nfree = self.free.size
+        jac = np.zeros((nfree, self.n.size))
+        blocks = []
+        mu = None
+        for shape, sl, iy, need, rows, ry in self._plan:
+            p = [float(q) for q in v[sl]]
+            y = float(v[iy])
+            if need:
+                f, g = shape.fractions_and_grad(self.edges, p, window)
+                if self.mask is not None:
+                    f, g = f[self.mask], g[:, self.mask]
+                for j, r in enumerate(rows):
+                    if r >= 0:
+                        jac[r] = y * g[j]
+            else:
+                f, g = shape.bin_fractions(self.edges, p, window), None
+                if self.mask is not None:
+                    f = f[self.mask]
+            if ry >= 0:
+                jac[ry] = f
+            mu = y * f if mu is None else mu + y * f
+            blocks.append((shape, p, y, g, rows, ry))
+        mu = np.maximum(mu, 1e-300)
+        n = self.n
+        w2 = n / (mu * mu)
+        r = (1.0 if self.unit_scale else self.s) - n / mu
+        hess = (jac * w2) @ jac.T
+        for shape, p, y, g, rows, ry in blocks:
+            if g is None:
+                continue
+            for j, rj in enumerate(rows):
+                if rj < 0:
+                    continue
+                if ry >= 0:  # d2 mu / d yield d theta_j = dF/dtheta_j
+                    t = float(r @ g[j])
+                    hess[ry, rj] += t
+                    hess[rj, ry] += t
+                q = list(p)
+                h = float(steps[rj])
+                q[j] = p[j] + h
+                par = shape.parameters[j]
+                if q[j] > par.upper:
+                    h = -h
+                    q[j] = p[j] + h
+                _, g2 = shape.fractions_and_grad(self.edges, q, window)
+                if self.mask is not None:
+                    g2 = g2[:, self.mask]
+                d2 = y * (g2 - g) / h  # row k: d2 F / d theta_k d theta_j
+                for k, rk in enumerate(rows):
+                    if rk >= 0:
+                        hess[rk, rj] += float(r @ d2[k])
+        for k, _, sd in self._cons:
+            hess[k, k] += 1.0 / sd**2
+        return 0.5 * (hess + hess.T)
+
+    def _eval(self, x: Sequence[float]) -> tuple[float, np.ndarray]:
+        key = np.asarray(x, dtype=float).tobytes()
+        if self._last is not None and self._last[0] == key:
+            return self._last[1], self._last[2]
+        val, g, _ = self.value_grad_info(np.asarray(x, dtype=float))
+        if not np.isfinite(val):
+            val, g = 1e300, np.zeros_like(g)
+        self._last = (key, val, g)
         return val, g
 
 
 class _UnbinnedCost(_Cost):
+    """Extended unbinned NLL, evaluated in chunks of ``_CHUNK`` masses so temporaries stay
+    in cache (several times faster than whole-array numpy expressions for 1M masses)."""
+
+    _CHUNK = 32768
+
     def __init__(self, model, full, free, constraints, x, w):
         super().__init__(model, full, free, constraints)
         self.x = x
         self.w = w
         self.sumw = float(x.size if w is None else w.sum())
+        fr = set(np.asarray(free).tolist())
+        self._need = [any(i in fr for i in range(sl.start, sl.stop)) for _, sl, _ in model._blocks]
+        self._yields = [iy for _, _, iy in model._blocks]
 
-    def per_event(self, v: np.ndarray):
+    def _chunks(self):
+        n = self.x.size
+        for a in range(0, n, self._CHUNK):
+            b = min(a + self._CHUNK, n)
+            yield self.x[a:b], None if self.w is None else self.w[a:b]
+
+    def per_event(self, v: np.ndarray, x: np.ndarray):
         model = self.model
-        mu = 0.0
+        mu = None
         dens = [None] * v.size
-        for shape, sl, iy in model._blocks:
-            p = list(v[sl])
-            f = shape.pdf(self.x, p, model.window)
-            mu = mu + v[iy] * f
-            dens[iy] = f
-            if sl.stop > sl.start and np.any(np.isin(np.arange(sl.start, sl.stop), self.free)):
-                g = shape.grad_pdf(self.x, p, model.window)
+        for (shape, sl, iy), need in zip(model._blocks, self._need):
+            p = [float(q) for q in v[sl]]
+            y = float(v[iy])
+            if need:
+                f, g = shape.pdf_and_grad(x, p, model.window)
                 for j, i in enumerate(range(sl.start, sl.stop)):
-                    dens[i] = v[iy] * g[j]
+                    dens[i] = (y, g[j])
+            else:
+                f = shape.pdf(x, p, model.window)
+            mu = y * f if mu is None else mu + y * f
+            dens[iy] = (1.0, f)
         return mu, dens
 
     def _value_grad(self, v):
-        mu, dens = self.per_event(v)
-        mu = np.maximum(mu, 1e-300)
-        total = sum(v[iy] for _, _, iy in self.model._blocks)
-        lm = np.log(mu)
-        if self.w is None:
-            val = total - float(lm.sum())
-            inv = 1.0 / mu
-        else:
-            val = total - float(self.w @ lm)
-            inv = self.w / mu
+        val = float(sum(v[iy] for iy in self._yields))
         g = np.zeros(v.size)
-        yields = {iy for _, _, iy in self.model._blocks}
-        for i, d in enumerate(dens):
-            if d is None:
-                continue
-            g[i] = (1.0 if i in yields else 0.0) - float(inv @ d)
+        for iy in self._yields:
+            g[iy] = 1.0
+        for x, w in self._chunks():
+            mu, dens = self.per_event(v, x)
+            np.maximum(mu, 1e-300, out=mu)
+            inv = 1.0 / mu
+            if w is None:
+                val += float(np.log(inv).sum())
+            else:
+                val -= float(w @ np.log(mu))
+                inv *= w
+            for i, d in enumerate(dens):
+                if d is not None:
+                    g[i] -= d[0] * float(inv @ d[1])
         return val, g
+
+    def value_grad_info(self, x: np.ndarray):
+        """NLL, gradient and the outer-product (BHHH) information sum_j w_j s_j s_j^T,
+        s_j = grad ln mu(x_j), over the free parameters at free values ``x``."""
+        self.ncall += 1
+        v = self.full.copy()
+        v[self.free] = x
+        free = self.free
+        val = float(sum(v[iy] for iy in self._yields))
+        g = np.zeros(v.size)
+        for iy in self._yields:
+            g[iy] = 1.0
+        info = np.zeros((free.size, free.size))
+        for xc, w in self._chunks():
+            mu, dens = self.per_event(v, xc)
+            np.maximum(mu, 1e-300, out=mu)
+            inv = 1.0 / mu
+            if w is None:
+                val += float(np.log(inv).sum())
+            else:
+                val -= float(w @ np.log(mu))
+            sc = np.array([np.zeros_like(mu) if dens[i] is None else (dens[i][0] * inv) * dens[i][1]
+                           for i in free])
+            if w is None:
+                g[free] -= sc.sum(axis=1)
+                info += sc @ sc.T
+            else:
+                g[free] -= sc @ w
+                info += (sc * w) @ sc.T
+        cv, cg = self._constraint(v)
+        for i, _, sd in self.constraints:
+            k = np.flatnonzero(free == i)
+            if k.size:
+                info[k[0], k[0]] += 1.0 / sd**2
+        return val + cv, (g + cg)[free], info
+
+    def score_outer(self, v: np.ndarray, free: np.ndarray) -> np.ndarray:
+        """D = sum_j w_j^2 grad(ln mu_j) grad(ln mu_j)^T over the free parameters."""
+        d = np.zeros((free.size, free.size))
+        for x, w in self._chunks():
+            mu, dens = self.per_event(v, x)
+            mu = np.maximum(mu, 1e-300)
+            wm = (1.0 if w is None else w) / mu
+            g = np.array([np.zeros_like(mu) if dens[i] is None else dens[i][0] * dens[i][1] * wm
+                          for i in free])
+            d += g @ g.T
+        return d
 
 
 # ================================================================== FitResult
@@ -373,7 +564,18 @@ class FitResult:
     attempts: int = 1
     n_calls: int = 0
     unit: str = "GeV"
-    minuit: Any = field(default=None, compare=False)
+    minimizer: str = "MIGRAD"
+    _minuit_factory: Any = field(default=None, compare=False)
+    _cache: dict = field(default_factory=dict, compare=False)
+
+    @property
+    def minuit(self) -> Any:
+        """The ``iminuit.Minuit`` object of the fit, set up at the minimum with the model's
+        cost function and bounds (MIGRAD has run on it only when the fast Fisher-scoring
+        path was not used; call ``.migrad()``, ``.hesse()``, ``.minos()`` for more)."""
+        if "minuit" not in self._cache and self._minuit_factory is not None:
+            self._cache["minuit"] = self._minuit_factory()
+        return self._cache.get("minuit")
 
     # ---------------------------------------------------------------- summary
     @property
@@ -643,6 +845,16 @@ def _gof_binning(d: _Data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return edges, n, n2
 
 
+def _coarse(edges: np.ndarray, n: np.ndarray, n2: np.ndarray, most: int):
+    """Merge groups of adjacent bins so at most ``most`` remain (for finding starts)."""
+    k = math.ceil(n.size / most)
+    if k <= 1:
+        return edges, n, n2
+    idx = np.arange(0, n.size, k)
+    return (np.append(edges[idx], edges[-1]), np.add.reduceat(n, idx),
+            np.add.reduceat(n2, idx))
+
+
 def _scale(n: np.ndarray, n2: np.ndarray) -> np.ndarray:
     """Scaled-Poisson factor sum(w)/sum(w^2) per bin (1 for unweighted bins)."""
     glob = n.sum() / n2.sum() if n2.sum() > 0 else 1.0
@@ -651,23 +863,94 @@ def _scale(n: np.ndarray, n2: np.ndarray) -> np.ndarray:
     return np.where(s > 0, s, glob)
 
 
-def _minimize(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-              names: list[str], strategy: int = 1):
+@dataclass
+class _MinOut:
+    x: np.ndarray
+    fval: float
+    converged: bool
+    call_limit: bool
+    errors: np.ndarray
+    minuit: Any
+    method: str
+
+
+def _new_minuit(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                names: list[str], steps: np.ndarray | None = None):
     from iminuit import Minuit
 
     m = Minuit(cost, *start, grad=cost.grad, name=names)
-    m.strategy = strategy
+    m.strategy = 0
     m.print_level = 0
     for i, n in enumerate(names):
         lo = None if not math.isfinite(lower[i]) else float(lower[i])
         hi = None if not math.isfinite(upper[i]) else float(upper[i])
         m.limits[n] = (lo, hi)
-        span = (upper[i] - lower[i]) if math.isfinite(upper[i] - lower[i]) else abs(start[i])
-        m.errors[n] = max(abs(start[i]) * 0.05, 1e-3 * span, 1e-6)
+        if steps is not None and math.isfinite(steps[i]) and steps[i] > 0:
+            m.errors[n] = float(steps[i])
+        else:
+            span = (upper[i] - lower[i]) if math.isfinite(upper[i] - lower[i]) else abs(start[i])
+            m.errors[n] = max(abs(start[i]) * 0.05, 1e-3 * span, 1e-6)
+    return m
+
+
+def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
+                    upper: np.ndarray, max_iter: int = 60):
+    """Damped Fisher scoring (Levenberg-Marquardt on the expected information
+    sum_i s_i/mu_i dmu_i dmu_i^T) for the binned Poisson NLL.  Returns (x, f, converged,
+    inverse information) with convergence when EDM = g^T I^-1 g / 2 < 1e-7."""
+    x = np.clip(np.asarray(x0, float), lower, upper)
+    lam = 1e-3
+    f, g, info = cost.value_grad_info(x)
+    for _ in range(max_iter):
+        try:
+            inv = np.linalg.inv(info)
+        except np.linalg.LinAlgError:
+            return x, f, False, None
+        edm = 0.5 * float(g @ inv @ g)
+        if not np.isfinite(edm):
+            return x, f, False, None
+        if edm < 1e-7:
+            return x, f, True, inv
+        for _ in range(12):
+            a = info + lam * np.diag(np.diag(info))
+            try:
+                step = -np.linalg.solve(a, g)
+            except np.linalg.LinAlgError:
+                return x, f, False, None
+            xn = np.clip(x + step, lower, upper)
+            fn, gn, infon = cost.value_grad_info(xn)
+            if np.isfinite(fn) and fn <= f + 1e-12 * abs(f):
+                x, f, g, info = xn, fn, gn, infon
+                lam = max(lam / 10.0, 1e-9)
+                break
+            lam *= 10.0
+        else:
+            return x, f, False, None
+    return x, f, False, None
+
+
+def _minimize(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+              names: list[str]) -> _MinOut:
+    """Fisher scoring first (few calls: expected information for binned fits, the
+    outer-product information for unbinned ones); MIGRAD (strategy 0, analytic gradient)
+    when that does not converge.  Returns a :class:`_MinOut`."""
+    if hasattr(cost, "value_grad_info"):
+        x, f, ok, inv = _fisher_scoring(cost, start, lower, upper)
+        if ok:
+            errs = np.sqrt(np.clip(np.diag(inv), 0, None))
+
+            def make(cost=cost, x=x, errs=errs):
+                return _new_minuit(cost, x, lower, upper, names, errs)
+
+            return _MinOut(x, f, True, False, errs, make, "Fisher scoring")
+    m = _new_minuit(cost, start, lower, upper, names)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         m.migrad(ncall=20000)
-    return m
+    fm = m.fmin
+    return _MinOut(np.asarray(m.values, float), float(m.fval), bool(fm.is_valid),
+                   bool(fm.has_reached_call_limit), np.asarray(m.errors, float), lambda: m,
+                   "MIGRAD")
 
 
 def _background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
@@ -687,9 +970,9 @@ def _background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.
     lower = np.array([pars[i].lower for i in free], float)
     upper = np.array([pars[i].upper for i in free], float)
     upper[free == biy] = 10.0 * max(n.sum(), 1.0) + 10.0
-    mi = _minimize(cost, v[free], lower, upper, [model.parameter_names[i] for i in free])
+    mo = _minimize(cost, v[free], lower, upper, [model.parameter_names[i] for i in free])
     out = v.copy()
-    out[free] = np.asarray(mi.values)
+    out[free] = mo.x
     return out
 
 
@@ -838,7 +1121,7 @@ def fit(
     if not math.isfinite(base[yields[-1]]):
         base[yields[-1]] = d.total
     if d.binned:
-        se, sn, sn2 = d.edges, d.n, d.n2
+        se, sn, sn2 = _coarse(d.edges, d.n, d.n2, 100)
     else:
         se, sn, sn2 = _gof_binning(d)
     sscale = _scale(sn, sn2)
@@ -862,24 +1145,20 @@ def fit(
     for s0 in starts:
         attempts += 1
         cost = make_cost(s0)
-        mi = _minimize(cost, s0[free_idx], lower[free_idx], upper[free_idx],
+        mo = _minimize(cost, s0[free_idx], lower[free_idx], upper[free_idx],
                        [names[i] for i in free_idx])
+        xbest, fbest, hcov, posdef = _polish(cost, mo, lower[free_idx], upper[free_idx])
         total_calls += cost.ncall
-        if mi.fmin.is_valid:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                mi.hesse()
-        problems = _problems(mi, lower[free_idx], upper[free_idx])
-        rank = (len(problems) > 0, mi.fval)
+        problems = _problems(mo, xbest, hcov, posdef, lower[free_idx], upper[free_idx],
+                             [names[i] for i in free_idx])
+        rank = (len(problems) > 0, fbest)
         if best is None or rank < best[0]:
-            best = (rank, mi, cost, problems)
+            best = (rank, mo, cost, problems, xbest, fbest, hcov, posdef)
         if not problems:
             break
-    _, mi, cost, problems = best
+    _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     vals = base.copy()
-    vals[free_idx] = np.asarray(mi.values)
-    free_cov = np.array(mi.covariance, float) if mi.covariance is not None else \
-        np.full((free_idx.size, free_idx.size), np.nan)
+    vals[free_idx] = xbest
     treatment = "none (unweighted)"
     if d.weighted:
         if d.binned:
@@ -899,8 +1178,11 @@ def fit(
     if minos and not problems:
         which = [names[i] for i in free_idx] if minos is True else list(minos)
         minos_out = {}
+        mi = mo.minuit()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
+            mi.values = list(xbest)
+            mi.migrad()
             for k in which:
                 if k not in names or is_fixed[names.index(k)]:
                     raise FitError(f"minos: {k!r} is not a free parameter")
@@ -924,22 +1206,20 @@ def fit(
     gsc = _scale(gn, gn2)
     chi2 = _baker_cousins(gn * gsc, mu * gsc)
     ndf = int(gn.size - free_idx.size)
-    from scipy import stats
+    from scipy import special
 
-    pval = float(stats.chi2.sf(chi2, ndf)) if ndf > 0 else math.nan
+    pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
     with np.errstate(invalid="ignore", divide="ignore"):
         pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
     flags = {
-        "converged": bool(mi.fmin.is_valid),
+        "converged": bool(mo.converged),
         "at_bound": any("bound" in p for p in problems),
-        "accurate_covariance": bool(mi.fmin.has_accurate_covar),
-        "posdef_covariance": bool(mi.fmin.has_posdef_covar) and
-        bool(np.all(np.linalg.eigvalsh(free_cov) > 0) if np.all(np.isfinite(free_cov)) else False),
+        "posdef_covariance": bool(posdef),
     }
     return FitResult(
         parameters=tuple(names), values=values, errors=errors,
         fixed=tuple(n for n, f in zip(names, is_fixed) if f),
-        covariance=cov, correlations=corr, minos=minos_out, nll=float(mi.fval),
+        covariance=cov, correlations=corr, minos=minos_out, nll=float(fbest),
         valid=not problems, problems=tuple(problems), flags=flags,
         binned=d.binned, binned_reason=d.reason, weighted=d.weighted,
         weight_treatment=treatment, window=d.window, n_events=d.total,
@@ -950,7 +1230,8 @@ def fit(
         gof_chi2=float(chi2), gof_ndf=ndf, gof_p_value=pval,
         edges=np.asarray(ge), observed=np.asarray(gn), observed_sumw2=np.asarray(gn2),
         expected=np.asarray(mu), pulls=np.asarray(pulls), model=model, attempts=attempts,
-        n_calls=total_calls, unit=d.unit, minuit=mi,
+        n_calls=total_calls, unit=d.unit, minimizer=mo.method,
+        _minuit_factory=mo.minuit,
     )
 
 
@@ -962,39 +1243,68 @@ def _baker_cousins(n: np.ndarray, mu: np.ndarray) -> float:
     return float(2.0 * np.sum(mu - n + t))
 
 
-def _problems(mi: Any, lower: np.ndarray, upper: np.ndarray) -> list[str]:
+def _problems(mo: _MinOut, x: np.ndarray, cov: np.ndarray, posdef: bool, lower: np.ndarray,
+              upper: np.ndarray, names: list[str]) -> list[str]:
     out = []
-    fm = mi.fmin
-    if not fm.is_valid:
+    if not mo.converged:
         out.append("minimiser did not converge" + (" (call limit reached)"
-                                                  if fm.has_reached_call_limit else ""))
-    vals = np.asarray(mi.values)
-    errs = np.asarray(mi.errors)
-    for i, name in enumerate(mi.parameters):
+                                                  if mo.call_limit else ""))
+    errs = np.sqrt(np.clip(np.diag(cov), 0, None)) if posdef else mo.errors
+    for i, name in enumerate(names):
         span = upper[i] - lower[i]
         tol = 1e-5 * span if math.isfinite(span) else 0.0
         tol = max(tol, 0.01 * errs[i]) if math.isfinite(errs[i]) else tol
-        if (math.isfinite(lower[i]) and vals[i] - lower[i] <= tol) or \
-           (math.isfinite(upper[i]) and upper[i] - vals[i] <= tol):
-            out.append(f"{name} at a bound ({vals[i]:.6g})")
-    if fm.is_valid:
-        if not fm.has_accurate_covar or not fm.has_posdef_covar or fm.hesse_failed:
-            out.append("covariance not accurate or not positive definite")
-        elif mi.covariance is not None:
-            ev = np.linalg.eigvalsh(np.array(mi.covariance))
-            if not np.all(ev > 0):
-                out.append("covariance not positive definite")
+        if (math.isfinite(lower[i]) and x[i] - lower[i] <= tol) or \
+           (math.isfinite(upper[i]) and upper[i] - x[i] <= tol):
+            out.append(f"{name} at a bound ({x[i]:.6g})")
+    if not posdef:
+        out.append("covariance not positive definite (Hessian of the NLL not invertible)")
     return out
+
+
+def _polish(cost: _Cost, mo: _MinOut, lower: np.ndarray, upper: np.ndarray):
+    """Hessian by central differences of the analytic gradient at MIGRAD's minimum, one
+    Newton step to refine the minimum, and the covariance H^-1 (errordef 0.5).
+
+    Returns (x, nll, covariance, positive_definite).
+    """
+    x0 = np.asarray(mo.x, float)
+    f0 = cost(*x0)
+    n = x0.size
+    errs = np.asarray(mo.errors, float)
+    h = np.where(np.isfinite(errs) & (errs > 0), 1e-3 * errs, 1e-6 * np.maximum(np.abs(x0), 1.0))
+    if isinstance(cost, _BinnedCost):
+        hess = cost.hessian(x0, h)
+    else:
+        g0 = cost.grad(*x0)
+        hess = np.empty((n, n))
+        for i in range(n):  # forward differences of the analytic gradient (backward at a bound)
+            xs = x0.copy()
+            step = h[i] if not (math.isfinite(upper[i]) and x0[i] + h[i] > upper[i]) else -h[i]
+            xs[i] = x0[i] + step
+            hess[:, i] = (cost.grad(*xs) - g0) / step
+    hess = 0.5 * (hess + hess.T)
+    if not np.all(np.isfinite(hess)):
+        return x0, f0, np.full((n, n), np.nan), False
+    try:
+        ev = np.linalg.eigvalsh(hess)
+    except np.linalg.LinAlgError:
+        return x0, f0, np.full((n, n), np.nan), False
+    if not np.all(ev > 1e-12 * max(abs(ev).max(), 1e-300)):
+        return x0, f0, np.full((n, n), np.nan), False
+    cov = np.linalg.inv(hess)
+    if mo.method == "MIGRAD":  # one Newton step refines MIGRAD's minimum
+        x1 = np.clip(x0 - cov @ cost.grad(*x0), lower, upper)
+        f1 = cost(*x1)
+        if np.isfinite(f1) and f1 < f0:
+            x0, f0 = x1, f1
+    return x0, f0, cov, True
 
 
 def _sandwich(cost: _UnbinnedCost, vals: np.ndarray, free_idx: np.ndarray,
               cov: np.ndarray) -> np.ndarray:
     """H^-1 D H^-1 with D = sum w^2 grad(ln mu) grad(ln mu)^T (Langenbruch 2022)."""
-    mu, dens = cost.per_event(vals)
-    mu = np.maximum(mu, 1e-300)
-    g = np.array([np.zeros_like(mu) if dens[i] is None else dens[i] / mu for i in free_idx])
-    gw = g * cost.w
-    dmat = gw @ gw.T
+    dmat = cost.score_outer(vals, free_idx)
     return cov @ dmat @ cov
 
 
@@ -1016,10 +1326,9 @@ def _fwhm_with_error(shape: Shape, p: list[float], cov: np.ndarray) -> tuple[flo
 
 
 def _auto_starts(model, edges, n, scale, base, is_fixed, start, fixed, lower, upper,
-                 total, retries) -> list[np.ndarray]:
-    """Starting points: background from sidebands, peak at the largest local excess."""
+                 total, retries):
+    """Starting points (lazily): background from sidebands, peak at the largest excess."""
     names = model.parameter_names
-    out = []
     yields = [iy for _, _, iy in model._blocks]
     sig_free = any(not is_fixed[iy] for iy in yields[:-1])
     bkg_given = all(k in start or k in fixed for k in names[model._blocks[-1][1]])
@@ -1088,9 +1397,8 @@ def _auto_starts(model, edges, n, scale, base, is_fixed, start, fixed, lower, up
             for shape2, sl2, iy2 in model._blocks[1:-1]:
                 if names[iy2] not in start and names[iy2] not in fixed:
                     s[iy2] = np.clip(max(0.01 * total, 1.0), lower[iy2], upper[iy2])
-            out.append(np.clip(s, lower, upper))
+            yield np.clip(s, lower, upper)
     else:
-        out.append(np.clip(vb, lower, upper))
-        for _ in range(min(retries, 1)):
-            out.append(np.clip(base, lower, upper))
-    return out
+        yield np.clip(vb, lower, upper)
+        if retries > 0:
+            yield np.clip(base, lower, upper)

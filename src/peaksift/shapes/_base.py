@@ -234,25 +234,47 @@ class Shape:
         Analytic for shapes with an analytic primitive gradient (gaussian, exponential of
         order 1, bernstein, powerlaw); central finite differences otherwise.
         """
+        return self.fractions_and_grad(edges, params, window)[1]
+
+    def fractions_and_grad(self, edges: Any, params: Sequence[Any],
+                           window: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+        """``(bin_fractions, grad_bin_fractions)`` computed together (shared work)."""
         lo, hi = _as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         edges = np.asarray(edges, dtype=float)
-        if self._primitive_grad is not None:
-            w = (lo, hi)
-            x = np.clip(edges, lo, hi)
+        if self._primitive_grad is None:
+            frac = self.bin_fractions(edges, p, window)
+            grad = _finite_difference(lambda q: self.bin_fractions(edges, q, window), p,
+                                      self.parameters)
+            return frac, grad
+        w = (lo, hi)
+        x = np.clip(edges, lo, hi)
+        ends = np.array([lo, hi])
+        if all(np.ndim(v) == 0 for v in p):
+            pe = self._prim(ends, p, w)
+            plo, phi = pe[0], pe[1]
+            ge = self._primitive_grad(ends, p, w)
+            glo = [np.asarray(g)[0] if np.ndim(g) else g for g in ge]
+            ghi = [np.asarray(g)[1] if np.ndim(g) else g for g in ge]
+        else:
             plo, phi = self._prim(np.array(lo), p, w), self._prim(np.array(hi), p, w)
-            px = self._prim(x, p, w)
             glo = self._primitive_grad(np.array(lo), p, w)
             ghi = self._primitive_grad(np.array(hi), p, w)
-            gx = self._primitive_grad(x, p, w)
-            z = phi - plo
-            out = []
-            for a, b, c in zip(glo, ghi, gx):
-                gc = (c - a) / z - (px - plo) * (b - a) / z**2
-                out.append(np.diff(gc, axis=-1))
-            return np.array(np.broadcast_arrays(*out))
-        return _finite_difference(lambda q: self.bin_fractions(edges, q, window), p,
-                                  self.parameters)
+        px = self._prim(x, p, w)
+        gx = self._primitive_grad(x, p, w)
+        inv = 1.0 / (phi - plo)
+        c = (px - plo) * inv
+        out = []
+        for a, b, gc in zip(glo, ghi, gx):
+            out.append(np.diff((gc - a) * inv - c * ((b - a) * inv), axis=-1))
+        frac = np.diff(c, axis=-1)
+        return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
+
+    def pdf_and_grad(self, x: np.ndarray, params: Sequence[float],
+                     window: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+        """``(pdf, grad_pdf)`` for masses known to lie inside the window (not checked) and
+        scalar parameters; the unbinned fit's hot path (shapes may fuse the work)."""
+        return self.pdf(x, params, window), self.grad_pdf(x, params, window)
 
     # ----------------------------------------------------- peak description
     def location(self, params: Sequence[Any]) -> float:

@@ -92,12 +92,51 @@ class ExpPoly(_Background):
         h = 0.5 * (window[1] - window[0])
         t = _t(x, window)
         b = np.asarray(p[0], dtype=float)
+        if b.ndim == 0 and abs(float(b)) >= 1e-3:  # the common case: no series needed
+            bf = float(b)
+            return [h * ((t / bf - 1.0 / bf**2) * np.exp(bf * t)
+                         + (1.0 / bf + 1.0 / bf**2) * math.exp(-bf))]
         small = np.abs(b) < 1e-3
         bs = np.where(small, 1.0, b)
         exact = ((t / bs - 1.0 / bs**2) * np.exp(bs * t)
                  - (-1.0 / bs - 1.0 / bs**2) * np.exp(-bs))
-        series = 0.5 * (t * t - 1.0) + b * (t**3 + 1.0) / 3.0 + b * b * (t**4 - 1.0) / 8.0
+        t2 = t * t
+        series = 0.5 * (t2 - 1.0) + b * (t2 * t + 1.0) / 3.0 + b * b * (t2 * t2 - 1.0) / 8.0
         return [h * np.where(small, series, exact)]
+
+    def fractions_and_grad(self, edges, params, window):
+        if self.order != 1 or np.ndim(params[0]) or abs(float(params[0])) < 1e-3:
+            return super().fractions_and_grad(edges, params, window)
+        b = float(params[0])
+        lo, hi = float(window[0]), float(window[1])
+        x = np.asarray(edges, dtype=float)
+        if x[0] < lo or x[-1] > hi:
+            x = np.clip(x, lo, hi)
+        t = (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo))
+        e = np.exp(b * t)
+        em, ep = math.exp(-b), math.exp(b)
+        # P(t) = (e^{bt} - e^{-b}) / b, dP/db = e^{bt}(t/b - 1/b^2) + e^{-b}(1/b + 1/b^2)
+        inv_z = b / (ep - em)  # 1 / P(1)
+        c = (e - em) * (inv_z / b)
+        ib, ib2 = 1.0 / b, 1.0 / (b * b)
+        g0 = em * (ib + ib2)
+        gx = e * (t * ib - ib2) + g0
+        ghi = ep * (ib - ib2) + g0
+        grad = (gx - c * ghi) * inv_z
+        return np.diff(c), np.diff(grad)[None, :]
+
+    def pdf_and_grad(self, x, params, window):
+        if self.order != 1:
+            return super().pdf_and_grad(x, params, window)
+        b = float(params[0])
+        ends = np.array([float(window[0]), float(window[1])])
+        pe = self._primitive(ends, [b], window)
+        z = float(pe[1] - pe[0])
+        gz = self._primitive_grad(ends, [b], window)[0]
+        dz = float(gz[1] - gz[0]) / z
+        t = _t(x, window)
+        pdf = np.exp(b * t) * (1.0 / z)
+        return pdf, (pdf * (t - dz))[None, :]
 
     def __repr__(self) -> str:
         return f"<background shape 'exppoly' order={self.order}>"
@@ -137,7 +176,13 @@ class Bernstein(_Background):
         lo, hi = window
         u = np.clip((x - lo) / (hi - lo), 0.0, 1.0)
         n = self.degree
-        return [special.comb(n, i) * u**i * (1.0 - u) ** (n - i) for i in range(n + 1)]
+        v = 1.0 - u
+        up = [np.ones_like(u)]
+        vp = [np.ones_like(u)]
+        for _ in range(n):
+            up.append(up[-1] * u)
+            vp.append(vp[-1] * v)
+        return [special.comb(n, i) * up[i] * vp[n - i] for i in range(n + 1)]
 
     def _ibasis(self, x, window):
         lo, hi = window
@@ -204,7 +249,8 @@ class PowerLaw(_Background):
         small = np.abs(a * lx) < 1e-3
         asafe = np.where(np.abs(a) < 1e-12, 1e-12, a)
         exact = (lx / asafe - 1.0 / asafe**2) * np.exp(asafe * lx) + 1.0 / asafe**2
-        series = 0.5 * lx * lx + a * lx**3 / 3.0 + a * a * lx**4 / 8.0
+        lx2 = lx * lx
+        series = 0.5 * lx2 + a * lx2 * lx / 3.0 + a * a * lx2 * lx2 / 8.0
         return [-c * np.where(small, series, exact)]
 
 

@@ -123,6 +123,44 @@ class Gaussian(_Signal):
         f = _phi(z) / s
         return [-f, -f * z]
 
+    def fractions_and_grad(self, edges, params, window):
+        if np.ndim(params[0]) or np.ndim(params[1]):
+            return super().fractions_and_grad(edges, params, window)
+        m, s = float(params[0]), float(params[1])
+        lo, hi = float(window[0]), float(window[1])
+        x = np.asarray(edges, dtype=float)
+        if x[0] < lo or x[-1] > hi:
+            x = np.clip(x, lo, hi)
+        inv_s = 1.0 / s
+        zl, zh = (lo - m) * inv_s, (hi - m) * inv_s
+        pl, ph = 0.5 * math.erfc(-zl / math.sqrt(2.0)), 0.5 * math.erfc(-zh / math.sqrt(2.0))
+        fl = math.exp(-0.5 * zl * zl) / _SQRT2PI * inv_s
+        fh = math.exp(-0.5 * zh * zh) / _SQRT2PI * inv_s
+        inv = 1.0 / (ph - pl)
+        z = (x - m) * inv_s
+        c = (special.ndtr(z) - pl) * inv
+        f = np.exp(-0.5 * z * z) * (inv_s / _SQRT2PI)
+        # dP/dm = -f, dP/ds = -f z at x, lo and hi
+        dm = (fl - f) * inv - c * ((fl - fh) * inv)
+        ds = (fl * zl - f * z) * inv - c * ((fl * zl - fh * zh) * inv)
+        return np.diff(c), np.array([np.diff(dm), np.diff(ds)])
+
+    def pdf_and_grad(self, x, params, window):
+        m, s = float(params[0]), float(params[1])
+        lo, hi = float(window[0]), float(window[1])
+        zl, zh = (lo - m) / s, (hi - m) / s
+        z_norm = float(special.ndtr(zh) - special.ndtr(zl))
+        pl, ph = math.exp(-0.5 * zl * zl) / _SQRT2PI, math.exp(-0.5 * zh * zh) / _SQRT2PI
+        dz_m = -(ph - pl) / s / z_norm
+        dz_s = -(ph * zh - pl * zl) / s / z_norm
+        inv_s = 1.0 / s
+        z = (x - m) * inv_s
+        z2 = z * z
+        pdf = np.exp(-0.5 * z2) * (inv_s / (_SQRT2PI * z_norm))
+        g_m = pdf * (z * inv_s - dz_m)
+        g_s = pdf * (z2 * inv_s - (inv_s + dz_s))
+        return pdf, np.array([g_m, g_s])
+
     def fwhm(self, params):
         return 2.0 * math.sqrt(2.0 * math.log(2.0)) * float(params[1])
 
@@ -161,7 +199,7 @@ class CrystalBall(_Signal):
         # t = distance beyond the core edge measured outward (t >= 0 in the tail)
         q = n / a
         r = q / np.maximum(q + t, 1e-300)
-        return np.exp(-0.5 * a * a) * r**n, q
+        return np.exp(n * np.log(r) - 0.5 * a * a), q
 
     def _density(self, x, p, window):
         m, s, al, nl, ah, nh = p
