@@ -20,8 +20,9 @@ What :func:`pair` does, in order
    Within an event, pairs come in lexicographic order of ``(first_index, second_index)``;
    events come in order.  Object indices always refer to the collection as read (before
    any cut).
-4. Pair requirements: ``charge="opposite"`` keeps ``q_i * q_j < 0``, ``"same"`` keeps
-   ``q_i * q_j > 0`` (a neutral object, ``q = 0``, passes neither); ``min_delta_r`` keeps
+4. Pair requirements: ``charge="opposite"`` keeps pairs with one charge positive and the
+   other negative, ``"same"`` pairs with both positive or both negative (a neutral object,
+   ``q = 0``, or a NaN charge passes neither); ``min_delta_r`` keeps
    pairs with :math:`\\Delta R \\ge` ``min_delta_r`` (overlap removal).
 5. ``choose`` decides what each event contributes among the pairs that passed:
 
@@ -181,83 +182,101 @@ class Candidates:
 
 
 # ----------------------------------------------------------------------- kernels
+# Charges enter the kernels as int8 signs (+1, -1, 0); ``mode`` is 0 (any charge), -1
+# (opposite: sign product -1) or +1 (same: sign product +1).  ``sa, ea`` / ``sb, eb`` are
+# each event's start and stop in the selected objects of the first / second collection;
+# ``same`` pairs the first collection with itself (j > i).
+
+
 @numba.njit(cache=True, nogil=True)
-def _count_pairs(sa, ea, sb, eb, same, qa, qb, mode):  # pragma: no cover - compiled
-    """Number of pairs passing the charge requirement, per event."""
+def _count_mark(sa, ea, sb, eb, same, ga, gb, mode, used_a, used_b, out):  # pragma: no cover
+    """Passing pairs per event (into ``out``) from per-event sign counts; flags objects in a
+    passing pair in ``used_a``/``used_b`` (zero-initialised)."""
     n_ev = sa.size
-    out = np.zeros(n_ev, dtype=np.int64)
     for ev in range(n_ev):
-        c = 0
+        na = ea[ev] - sa[ev]
+        nb = eb[ev] - sb[ev]
+        if mode == 0:
+            c = na * (na - 1) // 2 if same else na * nb
+            out[ev] = c
+            if c > 0:
+                for i in range(sa[ev], ea[ev]):
+                    used_a[i] = True
+                if not same:
+                    for j in range(sb[ev], eb[ev]):
+                        used_b[j] = True
+            continue
+        pa = 0
+        ma = 0
         for i in range(sa[ev], ea[ev]):
-            j0 = i + 1 if same else sb[ev]
-            if mode == 0:
-                c += eb[ev] - j0
-            else:
-                q = qa[i]
-                for j in range(j0, eb[ev]):
-                    p = q * qb[j]
-                    if (mode < 0 and p < 0) or (mode > 0 and p > 0):
-                        c += 1
+            if ga[i] > 0:
+                pa += 1
+            elif ga[i] < 0:
+                ma += 1
+        pb = pa
+        mb = ma
+        if not same:
+            pb = 0
+            mb = 0
+            for j in range(sb[ev], eb[ev]):
+                if gb[j] > 0:
+                    pb += 1
+                elif gb[j] < 0:
+                    mb += 1
+        if same:
+            c = pa * ma if mode < 0 else pa * (pa - 1) // 2 + ma * (ma - 1) // 2
+        else:
+            c = pa * mb + ma * pb if mode < 0 else pa * pb + ma * mb
         out[ev] = c
-    return out
-
-
-@numba.njit(cache=True, nogil=True)
-def _count_mark(sa, ea, sb, eb, same, qa, qb, mode, used_a, used_b):  # pragma: no cover
-    """Like :func:`_count_pairs`, also flagging the objects that are in a passing pair."""
-    n_ev = sa.size
-    out = np.zeros(n_ev, dtype=np.int64)
-    for ev in range(n_ev):
-        c = 0
+        if c == 0:
+            continue
+        # number of possible partners of a positive / negative object of each collection
+        if same:
+            pos_a = ma if mode < 0 else pa - 1
+            neg_a = pa if mode < 0 else ma - 1
+        else:
+            pos_a = mb if mode < 0 else pb
+            neg_a = pb if mode < 0 else mb
         for i in range(sa[ev], ea[ev]):
-            j0 = i + 1 if same else sb[ev]
-            for j in range(j0, eb[ev]):
-                if mode != 0:
-                    p = qa[i] * qb[j]
-                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
-                        continue
+            if (ga[i] > 0 and pos_a > 0) or (ga[i] < 0 and neg_a > 0):
                 used_a[i] = True
-                used_b[j] = True
-                c += 1
-        out[ev] = c
-    return out
+        if not same:
+            pos_b = ma if mode < 0 else pa
+            neg_b = pa if mode < 0 else ma
+            for j in range(sb[ev], eb[ev]):
+                if (gb[j] > 0 and pos_b > 0) or (gb[j] < 0 and neg_b > 0):
+                    used_b[j] = True
 
 
 @numba.njit(cache=True, nogil=True)
-def _fill_all(sa, ea, sb, eb, same, qa, qb, mode, starts, counts, total,  # pragma: no cover
+def _fill_all(sa, ea, sb, eb, same, ga, gb, mode, starts, counts,  # pragma: no cover
               ra, rb, pxa, pya, pza, eea, pxb, pyb, pzb, eeb,
-              gla, glb, has_gla, has_glb, offa, offb, w, has_w):
+              gla, glb, has_gla, has_glb, offa, offb, w, has_w,
+              px, py, pz, e, pt, evo, fi, si, mult, wo):
     """Every passing pair's summed four-vector, pT, event, object indices, multiplicity, weight.
 
     ``ra``/``rb`` map selected objects to rows of the Cartesian columns; ``gla``/``glb`` map
     them to flat indices of the collection as read (identity when ``has_gl*`` is false);
-    ``offa``/``offb`` are the collections' event offsets.
+    ``offa``/``offb`` are the collections' event offsets.  Stores are branch-free: every
+    pair is written at slot ``k`` and ``k`` advances only for passing pairs (hence one spare
+    slot at the end).  The outputs (one more entry than pairs) are allocated by the caller:
+    numpy asks the kernel for huge pages on large arrays, which makes first touch cheaper.
     """
-    px = np.empty(total)
-    py = np.empty(total)
-    pz = np.empty(total)
-    e = np.empty(total)
-    pt = np.empty(total)
-    evo = np.empty(total, dtype=np.int64)
-    fi = np.empty(total, dtype=np.int64)
-    si = np.empty(total, dtype=np.int64)
-    mult = np.empty(total, dtype=np.int64)
-    wo = np.empty(total)
     for ev in range(sa.size):
-        k = starts[ev]
         nc = counts[ev]
         if nc == 0:
             continue
+        k = starts[ev]
+        stop = k + nc
         wev = w[ev] if has_w else 1.0
         for i in range(sa[ev], ea[ev]):
+            if k == stop:
+                break
             j0 = i + 1 if same else sb[ev]
             ia = ra[i]
             fa = (gla[i] if has_gla else i) - offa[ev]
+            gi = ga[i] if mode != 0 else 0
             for j in range(j0, eb[ev]):
-                if mode != 0:
-                    p = qa[i] * qb[j]
-                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
-                        continue
                 jb = rb[j]
                 x = pxa[ia] + pxb[jb]
                 y = pya[ia] + pyb[jb]
@@ -271,30 +290,27 @@ def _fill_all(sa, ea, sb, eb, same, qa, qb, mode, starts, counts, total,  # prag
                 si[k] = (glb[j] if has_glb else j) - offb[ev]
                 mult[k] = nc
                 wo[k] = wev
-                k += 1
-    return px, py, pz, e, pt, evo, fi, si, mult, wo
+                if mode == 0 or gi * gb[j] == mode:
+                    k += 1
 
 
 @numba.njit(cache=True, nogil=True)
-def _fill_pairs(sa, ea, sb, eb, same, qa, qb, mode, starts, total):  # pragma: no cover
-    """Object indices (a, b) and event index of every passing pair, in event then (i, j) order."""
-    a = np.empty(total, dtype=np.int64)
-    b = np.empty(total, dtype=np.int64)
-    pe = np.empty(total, dtype=np.int64)
+def _fill_pairs(sa, ea, sb, eb, same, ga, gb, mode, starts, counts, a, b, pe):  # pragma: no cover
+    """Object indices (a, b) and event index of every passing pair, in event then (i, j) order
+    (outputs allocated by the caller with one spare entry)."""
     for ev in range(sa.size):
+        if counts[ev] == 0:
+            continue
         k = starts[ev]
         for i in range(sa[ev], ea[ev]):
             j0 = i + 1 if same else sb[ev]
+            gi = ga[i] if mode != 0 else 0
             for j in range(j0, eb[ev]):
-                if mode != 0:
-                    p = qa[i] * qb[j]
-                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
-                        continue
                 a[k] = i
                 b[k] = j
                 pe[k] = ev
-                k += 1
-    return a, b, pe
+                if mode == 0 or gi * gb[j] == mode:
+                    k += 1
 
 
 @numba.njit(cache=True, nogil=True)
@@ -328,7 +344,7 @@ def _best_per_event(pe, k1, k2):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True)
-def _best_pairs_direct(sa, ea, sb, eb, same, qa, qb, mode, pta, ptb, rule):  # pragma: no cover
+def _best_pairs_direct(sa, ea, sb, eb, same, ga, gb, mode, pta, ptb, rule):  # pragma: no cover
     """Chosen pair per event without listing all pairs (rule 1: leading, 2: max_sum_pt).
 
     Same order, keys and tie rule as listing the passing pairs and calling
@@ -347,10 +363,8 @@ def _best_pairs_direct(sa, ea, sb, eb, same, qa, qb, mode, pta, ptb, rule):  # p
         for i in range(sa[ev], ea[ev]):
             j0 = i + 1 if same else sb[ev]
             for j in range(j0, eb[ev]):
-                if mode != 0:
-                    p = qa[i] * qb[j]
-                    if not ((mode < 0 and p < 0) or (mode > 0 and p > 0)):
-                        continue
+                if mode != 0 and ga[i] * gb[j] != mode:
+                    continue
                 x = pta[i]
                 y = ptb[j]
                 if rule == 1:
@@ -371,6 +385,27 @@ def _best_pairs_direct(sa, ea, sb, eb, same, qa, qb, mode, pta, ptb, rule):  # p
             pe[m] = ev
             m += 1
     return a[:m], b[:m], pe[:m]
+
+
+@numba.njit(cache=True, nogil=True)
+def _compress_used(used, sel, has_sel, pt, eta, phi, mass, remap, cpt, ceta, cphi, cmass):
+    """Copy the kinematics of the used objects (flat index ``sel[i]`` or ``i``) into ``c*``
+    and set ``remap[i]`` to each used object's row there (0 for unused objects, which only
+    meet failing pairs); returns the number used."""
+    m = 0
+    for i in range(used.size):  # pragma: no cover - compiled
+        if used[i]:
+            f = sel[i] if has_sel else i
+            cpt[m] = pt[f]
+            ceta[m] = eta[f]
+            cphi[m] = phi[f]
+            cmass[m] = mass[f]
+            remap[i] = m
+            m += 1
+        else:
+            # never used for a passing pair, but the branch-free fill reads it: keep it valid
+            remap[i] = 0
+    return m
 
 
 @numba.njit(cache=True, nogil=True)
@@ -549,6 +584,7 @@ def _check_options(choose: str, charge: Any, target_mass: Any, min_delta_r: Any)
 
 
 def _charges(coll: _Collection, idx: np.ndarray | None, charge: str) -> np.ndarray:
+    """Charge signs (+1, -1, 0; NaN counts as 0) of the selected objects, as int8."""
     if "charge" not in coll.fields:
         raise InputError(
             f"charge={charge!r} needs a 'charge' field in collection {coll.name!r}, which has "
@@ -556,8 +592,10 @@ def _charges(coll: _Collection, idx: np.ndarray | None, charge: str) -> np.ndarr
     q = _take(coll.get("charge"), idx)
     if q.dtype.kind not in "biuf":
         raise InputError(f"collection {coll.name!r}: field 'charge' is not numeric ({q.dtype})")
-    # one dtype for every input keeps the kernels to one compiled version each
-    return np.ascontiguousarray(q, dtype=np.float64)
+    if q.dtype.kind == "b":
+        raise InputError(f"collection {coll.name!r}: field 'charge' holds true/false values; "
+                         "charges must be numbers such as +1 and -1")
+    return (q > 0).view(np.int8) - (q < 0).view(np.int8)
 
 
 def _cartesian(coll: _Collection, sel: np.ndarray | None, used: np.ndarray) -> tuple:
@@ -565,6 +603,17 @@ def _cartesian(coll: _Collection, sel: np.ndarray | None, used: np.ndarray) -> t
     flat = used if sel is None else sel[used]
     cols = [coll.get(f)[flat] for f in _KINEMATIC_FIELDS]
     return kinematics.to_cartesian(*cols)
+
+
+def _cartesian_used(coll: _Collection, sel: np.ndarray | None, used: np.ndarray) -> tuple:
+    """(Cartesian components of the flagged objects, row of each selected object in them)."""
+    cols = [np.ascontiguousarray(coll.get(f), dtype=np.float64) for f in _KINEMATIC_FIELDS]
+    n = int(np.count_nonzero(used))
+    out = [np.empty(n) for _ in range(4)]
+    remap = np.empty(used.size, dtype=np.int64)
+    _compress_used(used, np.zeros(1, dtype=np.int64) if sel is None else sel, sel is not None,
+                   *cols, remap, *out)
+    return kinematics.to_cartesian(*out), remap
 
 
 # ------------------------------------------------------------------------- pair
@@ -658,7 +707,7 @@ def pair(
         qa = _charges(ca, sel_a, charge)  # type: ignore[arg-type]
         qb = qa if same else _charges(cb, sel_b, charge)  # type: ignore[arg-type]
     else:
-        qa = qb = np.zeros(1)
+        qa = qb = np.zeros(1, dtype=np.int8)
 
     if dr is None and choose in ("leading", "max_sum_pt"):
         # fast path: pick each event's pair while scanning, without listing every pair
@@ -674,12 +723,18 @@ def pair(
         return _all_pairs(events, ca, cb, same, sel_a, sel_b, sa, ea, sb, eb, qa, qb, mode,
                           n_events, n_after, event_offset)
 
-    counts = _count_pairs(sa, ea, sb, eb, same, qa, qb, mode)
+    scratch = np.zeros(int(ea[-1]) if ea.size else 0, dtype=np.bool_)
+    counts = np.empty(n_events, dtype=np.int64)
+    _count_mark(sa, ea, sb, eb, same, qa, qb, mode, scratch,
+                scratch if same else np.zeros(int(eb[-1]) if eb.size else 0, np.bool_), counts)
+    del scratch
     starts = np.zeros(n_events, dtype=np.int64)
     if n_events > 1:
         np.cumsum(counts[:-1], out=starts[1:])
     total = int(counts.sum())
-    a, b, pe = _fill_pairs(sa, ea, sb, eb, same, qa, qb, mode, starts, total)
+    a, b, pe = (np.empty(total + 1, dtype=np.int64) for _ in range(3))
+    _fill_pairs(sa, ea, sb, eb, same, qa, qb, mode, starts, counts, a, b, pe)
+    a, b, pe = a[:total], b[:total], pe[:total]
     del counts, starts
 
     if dr is not None and a.size:
@@ -733,27 +788,33 @@ def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
         used_b = used_a
     else:
         used_b = np.zeros(cb.n_objects if sel_b is None else sel_b.size, dtype=np.bool_)
-    counts = _count_mark(sa, ea, sb, eb, same, qa, qb, mode, used_a, used_b)
+    counts = np.empty(n_events, dtype=np.int64)
+    _count_mark(sa, ea, sb, eb, same, qa, qb, mode, used_a, used_b, counts)
     starts = np.zeros(n_events, dtype=np.int64)
     if n_events > 1:
         np.cumsum(counts[:-1], out=starts[1:])
     total = int(counts.sum())
     n_with_pair = int(np.count_nonzero(counts))
-    cart_a = _cartesian(ca, sel_a, np.flatnonzero(used_a))
-    ra = np.cumsum(used_a, dtype=np.int64) - 1
+    cart_a, ra = _cartesian_used(ca, sel_a, used_a)
     if same:
         cart_b, rb = cart_a, ra
     else:
-        cart_b = _cartesian(cb, sel_b, np.flatnonzero(used_b))
-        rb = np.cumsum(used_b, dtype=np.int64) - 1
+        cart_b, rb = _cartesian_used(cb, sel_b, used_b)
     del used_a, used_b
     w = _event_weights(events)
     empty = np.zeros(1, dtype=np.int64)
-    px, py, pz, e, pt, pe, fi, si, mult, weight = _fill_all(
-        sa, ea, sb, eb, same, qa, qb, mode, starts, counts, total, ra, rb, *cart_a, *cart_b,
+    n = total + 1  # one spare slot for the kernel's branch-free stores
+    floats = [np.empty(n) for _ in range(6)]
+    ints = [np.empty(n, dtype=np.int64) for _ in range(4)]
+    _fill_all(
+        sa, ea, sb, eb, same, qa, qb, mode, starts, counts, ra, rb, *cart_a, *cart_b,
         empty if sel_a is None else sel_a, empty if sel_b is None else sel_b,
         sel_a is not None, sel_b is not None, ca.offsets, cb.offsets,
-        np.zeros(1) if w is None else w, w is not None)
+        np.zeros(1) if w is None else w, w is not None,
+        *floats[:5], ints[0], ints[1], ints[2], ints[3], floats[5])
+    px, py, pz, e, pt, weight = (f[:total] for f in floats)
+    pe, fi, si, mult = (i[:total] for i in ints)
+    del floats, ints
     del counts, starts, ra, rb, cart_a, cart_b
     mass = kinematics.invariant_mass(e, px, py, pz)
     rap = kinematics.rapidity(e, pz)
