@@ -316,7 +316,7 @@ class _BinnedCost(_Cost):
             info[k, k] += 1.0 / sd**2
         return val, g, info
 
-    def hessian(self, x: np.ndarray, steps: np.ndarray) -> np.ndarray:
+    def observed_hessian(self, x: np.ndarray, steps: np.ndarray) -> np.ndarray:
         """Observed Hessian of the NLL at free values ``x``:
         sum_i n~_i/mu_i^2 dmu dmu^T + sum_i (s_i - n~_i/mu_i) d^2mu, with d^2mu exact for
         yield pairs (0) and yield-shape pairs (dF/dtheta), and by forward differences of the
@@ -1274,7 +1274,7 @@ def _polish(cost: _Cost, mo: _MinOut, lower: np.ndarray, upper: np.ndarray):
     errs = np.asarray(mo.errors, float)
     h = np.where(np.isfinite(errs) & (errs > 0), 1e-3 * errs, 1e-6 * np.maximum(np.abs(x0), 1.0))
     if isinstance(cost, _BinnedCost):
-        hess = cost.hessian(x0, h)
+        hess = cost.observed_hessian(x0, h)
     else:
         g0 = cost.grad(*x0)
         hess = np.empty((n, n))
