@@ -295,7 +295,7 @@ class _Problem:
     def nll(self, mu: np.ndarray) -> np.ndarray:
         """NLL profiled over background and nuisance at fixed parameter of interest ``mu``."""
         mu = np.asarray(mu, float)
-        steps = 1 if self.delta == 0 else 8
+        steps = 1 if self.delta == 0 else 5
         t = self.t.copy()
         for it in range(steps):
             k, dk, d2k = self.kappa(t)
@@ -315,7 +315,11 @@ class _Problem:
             h1 = np.sum(n / nu**2 * self.fractions**2, axis=1)
             d1 = g1 * ds + (t - self.aux)
             dd = h1 * ds**2 + g1 * d2s + 1.0
-            t = t - d1 / np.maximum(dd, 1e-6)
+            step = d1 / np.maximum(dd, 1e-6)
+            t = t - step
+            if np.all(np.abs(step) < 1e-5):
+                # converged: one more profile at this t gives the value
+                steps = it + 2
         self.t = t
         return total
 
@@ -341,17 +345,36 @@ def _qtilde(prob: _Problem, mu: np.ndarray, mu_hat: np.ndarray, nll_hat: np.ndar
     return np.where(mu_hat > mu, 0.0, q)
 
 
-def _bisect(func, lo: np.ndarray, hi: np.ndarray, steps: int = _BISECT) -> np.ndarray:
-    """Vectorised log-space bisection for increasing ``func(x) - 0`` crossing from - to +."""
-    lo = np.array(lo, float)
-    hi = np.array(hi, float)
+def _bisect(func, lo: np.ndarray, hi: np.ndarray, steps: int = _BISECT,
+            xtol: float = 1e-7) -> np.ndarray:
+    """Root of an increasing ``func`` in ``[lo, hi]`` for many problems at once.
+
+    Illinois (modified regula falsi) in log space, with a bisection step whenever the
+    secant leaves the bracket; stops when every bracket is below ``xtol`` (relative).
+    """
+    a = np.log(np.array(lo, float))
+    b = np.log(np.array(hi, float))
+    fa = func(np.exp(a))
+    fb = func(np.exp(b))
+    side = np.zeros(a.shape, int)
+    x = 0.5 * (a + b)
     for _ in range(steps):
-        mid = np.sqrt(lo * hi)
-        v = func(mid)
-        up = v > 0
-        hi = np.where(up, mid, hi)
-        lo = np.where(up, lo, mid)
-    return np.sqrt(lo * hi)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x = b - fb * (b - a) / (fb - fa)
+        bad = ~np.isfinite(x) | (x <= np.minimum(a, b)) | (x >= np.maximum(a, b))
+        x = np.where(bad, 0.5 * (a + b), x)
+        fx = func(np.exp(x))
+        same_b = np.sign(fx) == np.sign(fb)
+        # replace b by x where fx has b's sign; otherwise a by b and b by x
+        new_a = np.where(same_b, a, b)
+        new_fa = np.where(same_b, np.where(side == 1, 0.5 * fa, fa), fb)
+        side = np.where(same_b, 1, -1)
+        a, fa = new_a, new_fa
+        b, fb = x, fx
+        done = (np.abs(b - a) < xtol) | (fx == 0)
+        if done.all():
+            break
+    return np.exp(b)
 
 
 # ------------------------------------------------------------- upper limits
@@ -401,6 +424,8 @@ def upper_limits(
     luminosity_uncertainty, efficiency_uncertainty : float
         Relative uncertainties, constrained nuisance parameters (see the module guide).
     constraint : "lognormal" or "gaussian"
+    progress : bool, optional
+        Progress bar over the toy masses (default: when stderr is a terminal).
 
     Returns
     -------
@@ -494,7 +519,12 @@ def upper_limits(
     if method == "toys":
         tm = (np.asarray(toy_masses, float) if toy_masses is not None
               else m_all[np.linspace(0, nm - 1, 3).round().astype(int)])
-        for mass in tm:
+        from tqdm.auto import tqdm
+
+        from .toys import _progress_enabled
+
+        for mass in tqdm(tm, desc="toy limits", unit="mass", leave=False,
+                         disable=not _progress_enabled(progress)):
             j = int(np.argmin(np.abs(m_all - mass)))
             if bl[j]:
                 notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
