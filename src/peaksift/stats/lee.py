@@ -10,7 +10,8 @@ Which function when
 * :func:`binomial_error`           -- the error of such a fraction.
 
 Both estimates are floored at the local p-value: the largest q0 of a scan is never below its
-value at the best mass, so p_global >= p_local.
+value at the best mass, so p_global >= p_local.  Z_global = Phi^-1(1 - p_global) is reported
+as 0 when p_global >= 0.5.
 """
 
 from __future__ import annotations
@@ -66,7 +67,7 @@ def global_from_upcrossings(q_obs: float, scans: Any, *, u0: float = 0.5,
     p_glob = min(1.0, p_loc + n0 * fac)
     err = n0_err * fac
     return {
-        "z_global": float(z_from_p(p_glob)) if p_glob < 1.0 else 0.0,
+        "z_global": max(float(z_from_p(p_glob)), 0.0),
         "p_global": p_glob,
         "global_method": "upcrossings",
         "p_global_error": err,
@@ -95,7 +96,7 @@ def global_from_toys(q_obs: float, max_q0: Any) -> dict[str, Any]:
     p = (1.0 - 0.05 ** (1.0 / ntoy)) if bound else k / ntoy
     p = max(p, p_loc)
     return {
-        "z_global": float(z_from_p(p)) if p < 1.0 else 0.0,
+        "z_global": max(float(z_from_p(p)), 0.0),
         "p_global": p,
         "global_method": "toys",
         "p_global_error": binomial_error(k, ntoy),

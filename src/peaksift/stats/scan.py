@@ -34,7 +34,7 @@ import numpy as np
 from ..errors import DataWarning, FitError, PeaksiftError
 from . import lee
 from .significance import p_from_q0, z_from_q0
-from .toys import ScanModel, fit_background, profile_signal, run_toys
+from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background, profile_signal, run_toys
 
 __all__ = ["ScanResult", "resolution_model", "scan"]
 
@@ -219,6 +219,39 @@ def _background_start(background: Any, window: tuple[float, float]) -> tuple[np.
     return start, lower, upper
 
 
+def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
+                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Background-only fit of the data, robust to poor starting values.
+
+    Bounded quasi-Newton (scipy L-BFGS-B) on the NLL with the yield profiled in closed form,
+    polished by the Fisher-scoring fit used for the toys; the direct Fisher-scoring fit from
+    the start is tried too and the lower minimum kept.
+    """
+    from scipy import optimize
+
+    ntot = float(counts.sum())
+    lower = np.where(np.isfinite(proto.lower), proto.lower, None)
+    upper = np.where(np.isfinite(proto.upper), proto.upper, None)
+    candidates = [fit_background(proto, counts[None, :], start[None, :], steps=200)]
+    if start.size:
+        def nll_grad(th: np.ndarray) -> tuple[float, np.ndarray]:
+            th2 = th[None, :]
+            g = bkg_fractions(proto, th2)[0]
+            b = ntot / max(g.sum(), 1e-300)
+            nu = np.maximum(b * g, 1e-300)
+            dg = bkg_gradients(proto, th2)[0]
+            val = float(np.sum(nu - counts * np.log(nu)))
+            return val, (dg * b) @ (1.0 - counts / nu)
+
+        with np.errstate(all="ignore"):
+            res = optimize.minimize(nll_grad, start, jac=True, method="L-BFGS-B",
+                                    bounds=list(zip(lower, upper)))
+        if np.all(np.isfinite(res.x)):
+            candidates.append(fit_background(proto, counts[None, :], res.x[None, :],
+                                             steps=200))
+    return min(candidates, key=lambda c: float(c[2][0]))
+
+
 def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, resolution: Any,
                    window: Any, natural_width: Any, blind: Any, signal_params: Any,
                    bins: Any, background_start: Mapping[str, float] | None = None
@@ -280,7 +313,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
                       background=bkg, theta=start, bkg_yield=float(counts.sum()),
                       lower=lower, upper=upper, masses=m_arr[~blinded_mass],
                       fractions=fractions[~blinded_mass])
-    theta, b, nll0 = fit_background(proto, counts[None, :], start[None, :], steps=200)
+    theta, b, nll0 = _fit_data_background(proto, counts, start)
     model = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
                       background=bkg, theta=theta[0], bkg_yield=float(b[0]),
                       lower=lower, upper=upper, masses=m_arr[~blinded_mass],
