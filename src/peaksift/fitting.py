@@ -459,6 +459,16 @@ class _UnbinnedCost(_Cost):
         for iy in self._yields:
             g[iy] = 1.0
         info = np.zeros((free.size, free.size))
+        with np.errstate(over="ignore", invalid="ignore"):
+            val, g, info = self._accumulate(v, free, val, g, info)
+        cv, cg = self._constraint(v)
+        for i, _, sd in self.constraints:
+            k = np.flatnonzero(free == i)
+            if k.size:
+                info[k[0], k[0]] += 1.0 / sd**2
+        return val + cv, (g + cg)[free], info
+
+    def _accumulate(self, v, free, val, g, info):
         for xc, w in self._chunks():
             mu, dens = self.per_event(v, xc)
             np.maximum(mu, 1e-300, out=mu)
@@ -475,12 +485,7 @@ class _UnbinnedCost(_Cost):
             else:
                 g[free] -= sc @ w
                 info += (sc * w) @ sc.T
-        cv, cg = self._constraint(v)
-        for i, _, sd in self.constraints:
-            k = np.flatnonzero(free == i)
-            if k.size:
-                info[k[0], k[0]] += 1.0 / sd**2
-        return val + cv, (g + cg)[free], info
+        return val, g, info
 
     def score_outer(self, v: np.ndarray, free: np.ndarray) -> np.ndarray:
         """D = sum_j w_j^2 grad(ln mu_j) grad(ln mu_j)^T over the free parameters."""
@@ -698,7 +703,8 @@ class FitResult:
                     a1.plot(xs, v * ref_bw, color=COLORS["signal"], lw=1.2,
                             label=k.replace("_", " "))
             a1.set_ylabel(f"events / {ref_bw:.3g} {self.unit}")
-            a1.set_ylim(bottom=0)
+            top = max(float(np.max((n + hi_err) * scale_n)), float(np.max(total * ref_bw)))
+            a1.set_ylim(0, 1.45 * top)  # headroom for the legend and the numbers
             txt = (f"m = {_fmt(self.peak_mass, self.peak_mass_error)} {self.unit}\n"
                    f"{self.width_parameter} = {_fmt(self.peak_width, self.peak_width_error)} "
                    f"{self.unit}\n"
@@ -1249,11 +1255,9 @@ def _problems(mo: _MinOut, x: np.ndarray, cov: np.ndarray, posdef: bool, lower: 
     if not mo.converged:
         out.append("minimiser did not converge" + (" (call limit reached)"
                                                   if mo.call_limit else ""))
-    errs = np.sqrt(np.clip(np.diag(cov), 0, None)) if posdef else mo.errors
     for i, name in enumerate(names):
         span = upper[i] - lower[i]
-        tol = 1e-5 * span if math.isfinite(span) else 0.0
-        tol = max(tol, 0.01 * errs[i]) if math.isfinite(errs[i]) else tol
+        tol = 1e-4 * span if math.isfinite(span) else 1e-8 * max(abs(x[i]), 1.0)
         if (math.isfinite(lower[i]) and x[i] - lower[i] <= tol) or \
            (math.isfinite(upper[i]) and upper[i] - x[i] <= tol):
             out.append(f"{name} at a bound ({x[i]:.6g})")
@@ -1311,17 +1315,22 @@ def _sandwich(cost: _UnbinnedCost, vals: np.ndarray, free_idx: np.ndarray,
 def _fwhm_with_error(shape: Shape, p: list[float], cov: np.ndarray) -> tuple[float, float]:
     try:
         f0 = shape.fwhm(p)
-    except FitError:
+    except (FitError, ValueError):
         return math.nan, math.nan
+    if not np.all(np.isfinite(cov)):
+        return float(f0), math.nan
     grad = np.zeros(len(p))
-    for i in range(len(p)):
-        if cov[i, i] <= 0:
-            continue
-        h = 1e-4 * math.sqrt(cov[i, i])
-        q1, q2 = list(p), list(p)
-        q1[i] += h
-        q2[i] -= h
-        grad[i] = (shape.fwhm(q1) - shape.fwhm(q2)) / (2 * h)
+    try:
+        for i in range(len(p)):
+            if cov[i, i] <= 0:
+                continue
+            h = 1e-4 * math.sqrt(cov[i, i])
+            q1, q2 = list(p), list(p)
+            q1[i] += h
+            q2[i] -= h
+            grad[i] = (shape.fwhm(q1) - shape.fwhm(q2)) / (2 * h)
+    except (FitError, ValueError):
+        return float(f0), math.nan
     return float(f0), float(math.sqrt(max(grad @ cov @ grad, 0.0)))
 
 
