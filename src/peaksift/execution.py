@@ -195,8 +195,8 @@ class Selection:
             missing = [c for c in (self.first, self.second) if c is not None and c not in names]
             names = names + tuple(missing)
         set_(self, "collections", tuple(dict.fromkeys(names)))
-        pt = (0.0, *np.linspace(0.0, max(edges[-1], 1.0), 101)[1:]) \
-            if self.pt_edges is None else self.pt_edges
+        pt = np.linspace(0.0, max(edges[-1], 1.0), 101) if self.pt_edges is None \
+            else self.pt_edges
         set_(self, "pt_edges", _float_tuple(pt, "pt_edges"))
         rap = np.linspace(-3.0, 3.0, 61) if self.rapidity_edges is None else self.rapidity_edges
         set_(self, "rapidity_edges", _float_tuple(rap, "rapidity_edges"))
