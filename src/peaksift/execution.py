@@ -824,14 +824,18 @@ def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str =
     info: dict[str, Any] = {}
     out: list[Any] = []
     bar = _progress(len(specs), desc, "task", progress)
+    run = None
     try:
-        for _, ok, value in _run(func, specs, engine=engine, workers=workers, address=address,
-                                 describe=describe, info=info):
+        run = _run(func, specs, engine=engine, workers=workers, address=address,
+                   describe=describe, info=info)
+        for _, ok, value in run:
             if not ok:
                 raise value
             out.append(value)
             bar.update(1)
     finally:
+        if run is not None:
+            run.close()  # stop the workers now, not when the traceback is freed
         bar.close()
     return out
 
@@ -995,10 +999,11 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     bar = _progress(total or n, "events" if total else "chunks", "ev" if total else "chunk",
                     progress)
     func = _ChunkTask(selection)
+    run = None
     try:
-        for i, ok, value in _run(func, specs, engine=engine, workers=workers, address=address,
-                                 describe=lambda i: f"chunk {i} ({_describe_spec(specs[i])})",
-                                 info=info):
+        run = _run(func, specs, engine=engine, workers=workers, address=address,
+                   describe=lambda i: f"chunk {i} ({_describe_spec(specs[i])})", info=info)
+        for i, ok, value in run:
             fname = _spec_file(specs[i])
             if fname == bad_file:  # rest of a file already skipped
                 continue
@@ -1012,6 +1017,8 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
             reducer.add(dataclasses.replace(value, index=i), last_of_file[i])
             bar.update(value.events if total else 1)
     finally:
+        if run is not None:
+            run.close()  # stop the workers now, not when the traceback is freed
         bar.close()
     if not reducer.files:
         reasons = "; ".join(f"{s.path}: {s.reason}" for s in skipped[:3])
