@@ -21,12 +21,12 @@ import pytest
 from peaksift import execution
 from peaksift.errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 
-distributed = pytest.importorskip("distributed")
-
 
 @pytest.fixture(scope="module")
 def dask_address():
     """A two-worker LocalCluster started by the engine's own helper, closed at module end."""
+    # (distributed is imported here, not at module level: pool workers import this file)
+    pytest.importorskip("distributed")
     logging.getLogger("distributed").setLevel(logging.CRITICAL)
     import dask
 
@@ -361,6 +361,7 @@ def test_fast_regular_binning_matches_binary_search(edges):
 
 
 def test_local_cluster_started_and_closed_when_no_address():
+    pytest.importorskip("distributed")
     got = execution.map_tasks(seeded_draw, SPECS[:3], engine="dask", workers=1)
     for a, b in zip(got, _reference()[:3]):
         np.testing.assert_array_equal(a, b)
