@@ -129,7 +129,7 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
     "model": (
         _Key("signal", "str", "gaussian",
              "Signal shape of the free fit at the best mass (`peaksift.shapes.available()`)."),
-        _Key("background", "str", "bernstein", "Background shape name."),
+        _Key("background", "str", "exponential", "Background shape name."),
         _Key("signal_options", "table", {}, "Options passed to the signal shape."),
         _Key("background_options", "table", {},
              "Options passed to the background shape, e.g. `{ degree = 3 }`."),
@@ -332,7 +332,7 @@ class ResolutionConfig:
 @dataclass(frozen=True)
 class ModelConfig:
     signal: str = "gaussian"
-    background: str = "bernstein"
+    background: str = "exponential"
     signal_options: Mapping[str, Any] = field(default_factory=dict)
     background_options: Mapping[str, Any] = field(default_factory=dict)
     fit: str = "auto"

@@ -737,8 +737,7 @@ bin_width = 1.0
 
 [model]
 signal = "gaussian"            # free fit at the best mass: mass and width float
-background = "bernstein"
-background_options = {{ degree = 3 }}
+background = "powerlaw"        # m^-k: the falling opposite-charge continuum
 
 [model.resolution]
 # sigma(m) of the dimuon mass, measured on the simulated-sample variant
