@@ -52,6 +52,7 @@ could not reach the speed target set for this layer (see ``scripts/bench_pairing
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -61,7 +62,7 @@ import numpy as np
 
 from . import kinematics
 from .cuts import CutLike, _flat_object_mask, event_mask
-from .errors import ConfigError, InputError, closest
+from .errors import ConfigError, DataWarning, InputError, closest
 
 __all__ = ["CHOOSE_RULES", "Candidates", "pair"]
 
@@ -69,6 +70,7 @@ CHOOSE_RULES = ("all", "leading", "max_sum_pt", "closest")
 _CHARGE = {None: 0, "any": 0, "opposite": -1, "same": 1}
 _CUTFLOW_KEYS = ("events_in", "events_after_event_cut", "events_with_pair", "candidates")
 _KINEMATIC_FIELDS = ("pt", "eta", "phi", "mass")
+_BLOCK = 1 << 18  # objects (and pairs) per block of events in the choose='all' path
 
 
 # ------------------------------------------------------------------------ result
@@ -189,17 +191,17 @@ class Candidates:
 
 
 @numba.njit(cache=True, nogil=True)
-def _count_mark(sa, ea, sb, eb, same, ga, gb, mode, used_a, used_b, out):  # pragma: no cover
-    """Passing pairs per event (into ``out``) from per-event sign counts; flags objects in a
-    passing pair in ``used_a``/``used_b`` (zero-initialised)."""
-    n_ev = sa.size
-    for ev in range(n_ev):
+def _count_pairs(sa, ea, sb, eb, same, ga, gb, mode, out, mark, used_a, used_b):  # pragma: no cover
+    """Number of pairs passing the charge requirement per event (into ``out``), from the
+    numbers of positive and negative objects in each event.  With ``mark``, also flag in
+    ``used_a``/``used_b`` the objects that are in at least one passing pair."""
+    for ev in range(sa.size):
         na = ea[ev] - sa[ev]
         nb = eb[ev] - sb[ev]
         if mode == 0:
             c = na * (na - 1) // 2 if same else na * nb
             out[ev] = c
-            if c > 0:
+            if mark and c > 0:
                 for i in range(sa[ev], ea[ev]):
                     used_a[i] = True
                 if not same:
@@ -228,9 +230,9 @@ def _count_mark(sa, ea, sb, eb, same, ga, gb, mode, used_a, used_b, out):  # pra
         else:
             c = pa * mb + ma * pb if mode < 0 else pa * pb + ma * mb
         out[ev] = c
-        if c == 0:
+        if not mark or c == 0:
             continue
-        # number of possible partners of a positive / negative object of each collection
+        # possible partners of a positive / negative object of each collection
         if same:
             pos_a = ma if mode < 0 else pa - 1
             neg_a = pa if mode < 0 else ma - 1
@@ -238,31 +240,33 @@ def _count_mark(sa, ea, sb, eb, same, ga, gb, mode, used_a, used_b, out):  # pra
             pos_a = mb if mode < 0 else pb
             neg_a = pb if mode < 0 else mb
         for i in range(sa[ev], ea[ev]):
-            if (ga[i] > 0 and pos_a > 0) or (ga[i] < 0 and neg_a > 0):
-                used_a[i] = True
+            g = ga[i]
+            used_a[i] = ((g > 0) & (pos_a > 0)) | ((g < 0) & (neg_a > 0))
         if not same:
             pos_b = ma if mode < 0 else pa
             neg_b = pa if mode < 0 else ma
             for j in range(sb[ev], eb[ev]):
-                if (gb[j] > 0 and pos_b > 0) or (gb[j] < 0 and neg_b > 0):
-                    used_b[j] = True
+                g = gb[j]
+                used_b[j] = ((g > 0) & (pos_b > 0)) | ((g < 0) & (neg_b > 0))
 
 
 @numba.njit(cache=True, nogil=True)
-def _fill_all(sa, ea, sb, eb, same, ga, gb, mode, starts, counts,  # pragma: no cover
-              ra, rb, pxa, pya, pza, eea, pxb, pyb, pzb, eeb,
-              gla, glb, has_gla, has_glb, offa, offb, w, has_w,
-              px, py, pz, e, pt, evo, fi, si, mult, wo):
-    """Every passing pair's summed four-vector, pT, event, object indices, multiplicity, weight.
+def _fill_block(e0, e1, sa, ea, sb, eb, same, ga, gb, mode, starts, counts,  # pragma: no cover
+                oa, ob, rma, rmb, pxa, pya, pza, eea, pxb, pyb, pzb, eeb,
+                gla, glb, has_gla, has_glb, offa, offb, w, has_w,
+                px, py, pz, e, pt, evo, fi, si, mult, wo):
+    """Every passing pair of events ``e0 <= ev < e1``, for choose='all'.
 
-    ``ra``/``rb`` map selected objects to rows of the Cartesian columns; ``gla``/``glb`` map
-    them to flat indices of the collection as read (identity when ``has_gl*`` is false);
-    ``offa``/``offb`` are the collections' event offsets.  Stores are branch-free: every
-    pair is written at slot ``k`` and ``k`` advances only for passing pairs (hence one spare
-    slot at the end).  The outputs (one more entry than pairs) are allocated by the caller:
-    numpy asks the kernel for huge pages on large arrays, which makes first touch cheaper.
+    The Cartesian columns hold the block's objects in a pair only (row =
+    ``rma[i - oa]`` / ``rmb[j - ob]`` for selected objects ``i`` / ``j``); ``px, py, pz, e`` are block buffers (row = pair slot - ``starts[e0]``); ``pt``,
+    event, object indices, multiplicity and weight go to the full outputs.  ``gla``/``glb``
+    map selected objects to flat indices of the collection as read (identity when
+    ``has_gl*`` is false); ``offa``/``offb`` are the collections' event offsets.  Stores are
+    branch-free: every pair is written at slot ``k``, which advances only for passing pairs,
+    so every output has one spare slot past the block.
     """
-    for ev in range(sa.size):
+    p0 = starts[e0]
+    for ev in range(e0, e1):
         nc = counts[ev]
         if nc == 0:
             continue
@@ -273,17 +277,18 @@ def _fill_all(sa, ea, sb, eb, same, ga, gb, mode, starts, counts,  # pragma: no 
             if k == stop:
                 break
             j0 = i + 1 if same else sb[ev]
-            ia = ra[i]
+            ia = rma[i - oa]
             fa = (gla[i] if has_gla else i) - offa[ev]
             gi = ga[i] if mode != 0 else 0
             for j in range(j0, eb[ev]):
-                jb = rb[j]
+                jb = rmb[j - ob]
+                kl = k - p0
                 x = pxa[ia] + pxb[jb]
                 y = pya[ia] + pyb[jb]
-                px[k] = x
-                py[k] = y
-                pz[k] = pza[ia] + pzb[jb]
-                e[k] = eea[ia] + eeb[jb]
+                px[kl] = x
+                py[kl] = y
+                pz[kl] = pza[ia] + pzb[jb]
+                e[kl] = eea[ia] + eeb[jb]
                 pt[k] = np.sqrt(x * x + y * y)
                 evo[k] = ev
                 fi[k] = fa
@@ -385,27 +390,6 @@ def _best_pairs_direct(sa, ea, sb, eb, same, ga, gb, mode, pta, ptb, rule):  # p
             pe[m] = ev
             m += 1
     return a[:m], b[:m], pe[:m]
-
-
-@numba.njit(cache=True, nogil=True)
-def _compress_used(used, sel, has_sel, pt, eta, phi, mass, remap, cpt, ceta, cphi, cmass):
-    """Copy the kinematics of the used objects (flat index ``sel[i]`` or ``i``) into ``c*``
-    and set ``remap[i]`` to each used object's row there (0 for unused objects, which only
-    meet failing pairs); returns the number used."""
-    m = 0
-    for i in range(used.size):  # pragma: no cover - compiled
-        if used[i]:
-            f = sel[i] if has_sel else i
-            cpt[m] = pt[f]
-            ceta[m] = eta[f]
-            cphi[m] = phi[f]
-            cmass[m] = mass[f]
-            remap[i] = m
-            m += 1
-        else:
-            # never used for a passing pair, but the branch-free fill reads it: keep it valid
-            remap[i] = 0
-    return m
 
 
 @numba.njit(cache=True, nogil=True)
@@ -605,17 +589,6 @@ def _cartesian(coll: _Collection, sel: np.ndarray | None, used: np.ndarray) -> t
     return kinematics.to_cartesian(*cols)
 
 
-def _cartesian_used(coll: _Collection, sel: np.ndarray | None, used: np.ndarray) -> tuple:
-    """(Cartesian components of the flagged objects, row of each selected object in them)."""
-    cols = [np.ascontiguousarray(coll.get(f), dtype=np.float64) for f in _KINEMATIC_FIELDS]
-    n = int(np.count_nonzero(used))
-    out = [np.empty(n) for _ in range(4)]
-    remap = np.empty(used.size, dtype=np.int64)
-    _compress_used(used, np.zeros(1, dtype=np.int64) if sel is None else sel, sel is not None,
-                   *cols, remap, *out)
-    return kinematics.to_cartesian(*out), remap
-
-
 # ------------------------------------------------------------------------- pair
 def pair(
     events: Any,
@@ -723,11 +696,9 @@ def pair(
         return _all_pairs(events, ca, cb, same, sel_a, sel_b, sa, ea, sb, eb, qa, qb, mode,
                           n_events, n_after, event_offset)
 
-    scratch = np.zeros(int(ea[-1]) if ea.size else 0, dtype=np.bool_)
     counts = np.empty(n_events, dtype=np.int64)
-    _count_mark(sa, ea, sb, eb, same, qa, qb, mode, scratch,
-                scratch if same else np.zeros(int(eb[-1]) if eb.size else 0, np.bool_), counts)
-    del scratch
+    nothing = np.zeros(1, dtype=np.bool_)
+    _count_pairs(sa, ea, sb, eb, same, qa, qb, mode, counts, False, nothing, nothing)
     starts = np.zeros(n_events, dtype=np.int64)
     if n_events > 1:
         np.cumsum(counts[:-1], out=starts[1:])
@@ -777,58 +748,96 @@ def _event_weights(events: Any) -> np.ndarray | None:
         raise InputError(f"per-event 'weight' is not a flat number per event ({exc})") from None
 
 
+def _block_columns(coll: _Collection, sel: np.ndarray | None, used: np.ndarray, o0: int,
+                   o1: int) -> tuple:
+    """Cartesian components of the used selected objects ``o0 <= i < o1`` and their rows.
+
+    Returns ``(cartesian, remap)`` with ``remap[i - o0]`` the row of object ``i`` (unused
+    objects get a valid but meaningless row: they only meet failing pairs).
+    """
+    u = used[o0:o1]
+    idx = np.flatnonzero(u)
+    flat = idx + o0 if sel is None else sel[o0:o1][idx]
+    cols = [coll.get(f)[flat] for f in _KINEMATIC_FIELDS]
+    remap = np.cumsum(u, dtype=np.int64)
+    remap -= 1
+    np.maximum(remap, 0, out=remap)
+    return kinematics.to_cartesian(*cols), remap
+
+
 def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
                sel_a: np.ndarray | None, sel_b: np.ndarray | None, sa: np.ndarray,
                ea: np.ndarray, sb: np.ndarray, eb: np.ndarray, qa: np.ndarray, qb: np.ndarray,
                mode: int, n_events: int, n_after: int, event_offset: int) -> Candidates:
-    """choose='all' without Delta R: count, convert used objects once, fill in one pass."""
-    n_a = ca.n_objects if sel_a is None else sel_a.size
-    used_a = np.zeros(n_a, dtype=np.bool_)
-    if same:
-        used_b = used_a
-    else:
-        used_b = np.zeros(cb.n_objects if sel_b is None else sel_b.size, dtype=np.bool_)
+    """choose='all' without Delta R, in blocks of events.
+
+    Each block's objects are converted to Cartesian components once, its pairs filled by one
+    kernel call, and their masses and rapidities computed from block-sized buffers that stay
+    in cache; only the final columns are full-size arrays.
+    """
     counts = np.empty(n_events, dtype=np.int64)
-    _count_mark(sa, ea, sb, eb, same, qa, qb, mode, used_a, used_b, counts)
-    starts = np.zeros(n_events, dtype=np.int64)
-    if n_events > 1:
-        np.cumsum(counts[:-1], out=starts[1:])
-    total = int(counts.sum())
+    used_a = np.zeros(int(ea[-1]) if n_events else 0, dtype=np.bool_)
+    used_b = used_a if same else np.zeros(int(eb[-1]) if n_events else 0, dtype=np.bool_)
+    _count_pairs(sa, ea, sb, eb, same, qa, qb, mode, counts, True, used_a, used_b)
+    starts = np.zeros(n_events + 1, dtype=np.int64)
+    np.cumsum(counts, out=starts[1:])
+    total = int(starts[-1])
     n_with_pair = int(np.count_nonzero(counts))
-    cart_a, ra = _cartesian_used(ca, sel_a, used_a)
-    if same:
-        cart_b, rb = cart_a, ra
-    else:
-        cart_b, rb = _cartesian_used(cb, sel_b, used_b)
-    del used_a, used_b
     w = _event_weights(events)
-    empty = np.zeros(1, dtype=np.int64)
+
     n = total + 1  # one spare slot for the kernel's branch-free stores
-    floats = [np.empty(n) for _ in range(6)]
-    ints = [np.empty(n, dtype=np.int64) for _ in range(4)]
-    _fill_all(
-        sa, ea, sb, eb, same, qa, qb, mode, starts, counts, ra, rb, *cart_a, *cart_b,
-        empty if sel_a is None else sel_a, empty if sel_b is None else sel_b,
-        sel_a is not None, sel_b is not None, ca.offsets, cb.offsets,
-        np.zeros(1) if w is None else w, w is not None,
-        *floats[:5], ints[0], ints[1], ints[2], ints[3], floats[5])
-    px, py, pz, e, pt, weight = (f[:total] for f in floats)
-    pe, fi, si, mult = (i[:total] for i in ints)
-    del floats, ints
-    del counts, starts, ra, rb, cart_a, cart_b
-    mass = kinematics.invariant_mass(e, px, py, pz)
-    rap = kinematics.rapidity(e, pz)
-    del px, py, pz, e
+    mass, rap, pt, weight = (np.empty(n) for _ in range(4))
+    pe, fi, si, mult = (np.empty(n, dtype=np.int64) for _ in range(4))
+    # event blocks of about _BLOCK objects (first collection) and at most _BLOCK pairs
+    # unless one event alone has more
+    n_sel = int(ea[-1]) if n_events else 0
+    cuts = np.union1d(np.searchsorted(sa, np.arange(0, n_sel, _BLOCK), side="left"),
+                      np.searchsorted(starts[:-1], np.arange(0, total, _BLOCK), side="left"))
+    bounds = np.unique(np.concatenate([[0], cuts, [n_events]]))
+    empty = np.zeros(1, dtype=np.int64)
+    no_w = np.zeros(1)
+    buf = np.empty((4, 0))
+    for e0, e1 in zip(bounds[:-1].tolist(), bounds[1:].tolist()):
+        p0, p1 = int(starts[e0]), int(starts[e1])
+        if p1 == p0:
+            continue
+        oa0, oa1 = int(sa[e0]), int(ea[e1 - 1])
+        cart_a, rma = _block_columns(ca, sel_a, used_a, oa0, oa1)
+        if same:
+            ob0, cart_b, rmb = oa0, cart_a, rma
+        else:
+            ob0, ob1 = int(sb[e0]), int(eb[e1 - 1])
+            cart_b, rmb = _block_columns(cb, sel_b, used_b, ob0, ob1)
+        if buf.shape[1] < p1 - p0 + 1:
+            buf = np.empty((4, p1 - p0 + 1))
+        bpx, bpy, bpz, be = buf
+        _fill_block(e0, e1, sa, ea, sb, eb, same, qa, qb, mode, starts, counts,
+                    oa0, ob0, rma, rmb, *cart_a, *cart_b,
+                    empty if sel_a is None else sel_a, empty if sel_b is None else sel_b,
+                    sel_a is not None, sel_b is not None, ca.offsets, cb.offsets,
+                    no_w if w is None else w, w is not None,
+                    bpx, bpy, bpz, be, pt, pe, fi, si, mult, weight)
+        m = p1 - p0
+        mass[p0:p1] = kinematics.invariant_mass(be[:m], bpx[:m], bpy[:m], bpz[:m],
+                                                warn=False)
+        rap[p0:p1] = kinematics.rapidity(be[:m], bpz[:m])
+    n_nan = int(np.count_nonzero(np.isnan(mass[:total])))
+    if n_nan:  # one warning for all blocks, as invariant_mass gives for one call
+        warnings.warn(
+            f"pair: {n_nan} of {total} pair four-vectors have E^2 - p^2 below -1e-12 E^2 "
+            "(energy smaller than momentum, not rounding); their mass is NaN",
+            DataWarning, stacklevel=3)
     if event_offset:
         pe += int(event_offset)
     flow = {
         "events_in": int(n_events),
         "events_after_event_cut": int(n_after),
         "events_with_pair": n_with_pair,
-        "candidates": int(mass.size),
+        "candidates": total,
     }
-    return Candidates(mass=mass, pt=pt, rapidity=rap, weight=weight, event_index=pe,
-                      first_index=fi, second_index=si, cutflow=flow, multiplicity=mult,
+    return Candidates(mass=mass[:total], pt=pt[:total], rapidity=rap[:total],
+                      weight=weight[:total], event_index=pe[:total], first_index=fi[:total],
+                      second_index=si[:total], cutflow=flow, multiplicity=mult[:total],
                       choose="all")
 
 
