@@ -15,8 +15,8 @@ COLORS = {
     "total": "#1f6f8b",       # deep teal: the full model
     "signal": "#d1495b",      # brick red: signal component
     "background": "#8a8f98",  # slate grey, dashed: background component
-    "band1": "#7fc8a9",       # mint: +-1 sigma band
-    "band2": "#f2d98d",       # pale amber: +-2 sigma band
+    "band1": "#8fb8d6",       # steel blue: +-1 sigma band
+    "band2": "#d9e6f0",       # pale blue-grey: +-2 sigma band
     "observed": "#1b1b1f",
     "expected": "#1f6f8b",
     "accent": "#e0a458",
