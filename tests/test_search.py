@@ -217,18 +217,32 @@ def test_no_staging_directories_left(run):
     assert [p.name for p in parent.iterdir()] == ["demo_out"]
 
 
-def test_blinded_run_hides_the_window_until_unblinded():
+def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     from peaksift.config import load_config
     from peaksift.search import run_search
 
     cfg = load_config(CONFIG).with_overrides(blinding__enabled=True,
                                              blinding__window=[140.0, 165.0],
                                              limits__enabled=False, calibration__particle="",
-                                             significance__toys=20)
-    res = run_search(cfg, out=False)
-    d = res.to_dict()
+                                             significance__toys=20, output__log_scale=True)
+    res = run_search(cfg, out=tmp_path / "blind")
+    d = json.loads((tmp_path / "blind" / "results.json").read_text())
+    assert d == json.loads(json.dumps(d))  # plain JSON
     scan = d["scan"]
     inside = [i for i, m in enumerate(scan["mass"]) if 140.0 <= m <= 165.0]
     assert inside and all(scan["z_local"][i] is None for i in inside)
+    assert all(scan["z_local"][i] is not None for i in range(len(scan["mass"]))
+               if i not in inside)
     assert d["fit"]["peak_mass"]["value"] is None and d["blinding"]["active"]
     assert not (140.0 <= d["best"]["mass"] <= 165.0)
+    assert res.fit is None
+    figs = tmp_path / "blind" / "figures"
+    assert (figs / "spectrum.png").exists() and (figs / "spectrum_log.png").exists()
+    assert "blinded" in (tmp_path / "blind" / "report.md").read_text().lower()
+
+    # --unblind lifts it for one run: numbers inside the window, the peak found again
+    un = run_search(cfg, out=False, unblind=True).to_dict()
+    assert un["blinding"]["unblinded"] and not un["blinding"]["active"]
+    assert all(un["scan"]["z_local"][i] is not None for i in inside)
+    assert 140.0 <= un["best"]["mass"] <= 165.0
+    assert un["fit"]["valid"]

@@ -185,7 +185,15 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         rows.append(("Goodness of fit", (f"\u03c7\u00b2 = {_num(gof.get('chi2'))} for "
                                         f"{gof.get('ndf', 'n/a')} degrees of freedom "
                                         f"(p = {_p(gof.get('p_value'))})")))
-    rows.append(("Fit valid", "yes" if fit.get("valid") else "NO (see the fit section)"))
+    bl = r.get("blinding") or {}
+    if bl.get("active"):
+        w = bl.get("window") or [None, None]
+        rows.insert(0, ("BLINDED", (f"data in {_num(w[0])}-{_num(w[1])} GeV are hidden: no "
+                                   "observed numbers there and no signal-plus-background fit "
+                                   "until the run is unblinded (--unblind)")))
+    else:
+        rows.append(("Fit valid", "yes" if fit.get("valid") else
+                     "NO: " + "; ".join(fit.get("problems") or ["see the fit section"])))
     return rows
 
 
