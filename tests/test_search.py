@@ -144,6 +144,9 @@ def test_calibration_peak_where_the_tables_put_it(run):
     # shift reconstructed masses by a few per mille, which the check is there to show
     assert abs(cal["fitted_mass"]["value"] - m_z) / m_z < 5e-3
     assert cal["valid"]
+    # and the known-particle matching names it (particle package: Z0, PDG id 23)
+    assert cal["known_matches"][0]["name"] == "Z0"
+    assert cal["known_matches"][0]["pdgid"] == 23
 
 
 def test_no_known_particle_at_the_invented_mass(run):

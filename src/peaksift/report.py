@@ -241,6 +241,11 @@ def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
                                  f"{_num(c.get('shift_sigma'), 3)} \u03c3")),
         ("Fit valid", "yes" if c.get("valid") else "NO"),
     ]
+    km = c.get("known_matches")
+    if km is not None:
+        rows.append(("Known particles at the fitted mass",
+                     ", ".join(f"{k['name']} ({k['distance_sigma']:.1f} \u03c3)" for k in km)
+                     or "none (check the mass scale)"))
     return rows
 
 
