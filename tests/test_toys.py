@@ -23,10 +23,11 @@ from peaksift.stats.toys import (
 WINDOW = (100.0, 500.0)
 
 
-def _model(n_masses: int = 40, blind=None, background: str = "exponential"):
+def _model(n_masses: int = 40, blind=None, background: str = "exponential",
+           n_events: int = 30_000, bins: int = 400):
     rng = np.random.default_rng(21)
-    x = WINDOW[0] + rng.exponential(120.0, 30_000)
-    h = MassHistogram(bins=400, range=WINDOW).fill(x)
+    x = WINDOW[0] + rng.exponential(120.0, n_events)
+    h = MassHistogram(bins=bins, range=WINDOW).fill(x)
     masses = np.linspace(115.0, 485.0, n_masses)
     model, _, _ = _prepare_model(h, "gaussian", background, masses, resolution=0.01,
                                  window=None, natural_width=None, blind=blind,
@@ -66,18 +67,23 @@ def _iminuit_q0(model, n: np.ndarray) -> np.ndarray:
     return out
 
 
-@pytest.mark.parametrize("background", ["exponential", "bernstein"])
-def test_batched_engine_matches_iminuit(background):
+@pytest.mark.parametrize(("background", "n_events", "bins", "any_mass"), [
+    ("exponential", 30_000, 400, 0.05),
+    ("bernstein", 30_000, 400, 0.05),
+    ("exponential", 1_500, 100, 0.1),   # a few events per bin at the high end
+    ("bernstein", 1_500, 100, 0.1),
+])
+def test_batched_engine_matches_iminuit(background, n_events, bins, any_mass):
     """Requirement of the toy engine: on a sample of background-only toys the largest q0 of
     each scan agrees with per-toy iminuit fits within 0.05 in Z (Z = sqrt(q0), Cowan et al.
-    2011 eq. 53); we also require every mass point within 0.05."""
-    model = _model(background=background)
+    2011 eq. 53).  Away from the maximum the linearised values agree within ``any_mass``."""
+    model = _model(background=background, n_events=n_events, bins=bins)
     n = toy_counts(model.expected_background, 4, 0, 5)
     fast = scan_toys_linear(model, n)
     for i in range(n.shape[0]):
         ref = _iminuit_q0(model, n[i])
         assert abs(np.sqrt(fast[i].max()) - np.sqrt(ref.max())) < 0.05
-        assert np.max(np.abs(np.sqrt(fast[i]) - np.sqrt(ref))) < 0.05
+        assert np.max(np.abs(np.sqrt(fast[i]) - np.sqrt(ref))) < any_mass
 
 
 def test_background_fit_of_stacked_toys_matches_iminuit():

@@ -58,6 +58,7 @@ _GROUP = 16            # masses per band group in the toy scan
 _SUB_BATCH = 256       # toys processed together (memory/cache)
 _NEWTON_STEPS = 5      # Newton iterations of the linearised toy scan
 _TOYS_PER_BATCH = 500  # toys per ToyBatch handed to a worker
+_REFINE = 2            # highest points of each toy scan refitted exactly
 
 
 # --------------------------------------------------------------------------- model
@@ -125,19 +126,58 @@ def bkg_gradients(model: ScanModel, theta: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(np.moveaxis(dg[:, :, model.used], 0, 1))
 
 
+def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
+    """Second derivatives of the used-bin background fractions, ``(B, K, K, n_used)``.
+
+    Central differences of the analytic first derivatives (step 1e-5 max(|theta|, 0.1)),
+    kept inside the bounds; symmetrised.  This is the curvature a Fisher-type Hessian
+    leaves out, needed e.g. where a squared coefficient sits at 0.  The fits compute it
+    once at their starting point and reuse it (it only steers the Newton steps).
+    """
+    nb, k = theta.shape
+    out = np.empty((nb, k, k, model.used.size))
+    for j in range(k):
+        h = 1e-5 * np.maximum(np.abs(theta[:, j]), 0.1)
+        up = theta.copy()
+        dn = theta.copy()
+        up[:, j] = np.minimum(theta[:, j] + h, model.upper[j])
+        dn[:, j] = np.maximum(theta[:, j] - h, model.lower[j])
+        width = np.where(up[:, j] > dn[:, j], up[:, j] - dn[:, j], 1.0)
+        out[:, j] = (bkg_gradients(model, up) - bkg_gradients(model, dn)) / width[:, None, None]
+    return 0.5 * (out + out.transpose(0, 2, 1, 3))
+
+
 def _nll(n: np.ndarray, nu: np.ndarray) -> np.ndarray:
     # n * log(nu) with nu > 0 (0 * log(nu) = 0 for empty bins); faster than xlogy
     return np.sum(nu - n * np.log(np.maximum(nu, 1e-300)), axis=-1)
 
 
 # ------------------------------------------------------- background-only fit (stacked)
-def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = None,
-                   *, steps: int = 30, tol: float = 1e-7) -> tuple[np.ndarray, np.ndarray,
-                                                                     np.ndarray]:
-    """Background-only fits of stacked spectra ``n (B, n_used)``.
+def _damped_solve(hess: np.ndarray, grad: np.ndarray, lam: np.ndarray) -> np.ndarray:
+    """Levenberg-Marquardt step ``-(H + lam (diag H + floor))^-1 g`` for stacked systems.
 
-    Fisher scoring on the shape parameters with the yield profiled in closed form
-    (:math:`\\hat b = \\sum n / \\sum g`), step halving when the NLL would rise.
+    The floor (1e-6 of the mean diagonal) keeps directions the Fisher-type Hessian sees as
+    flat (e.g. a squared coefficient at 0) from taking huge steps.
+    """
+    p = hess.shape[-1]
+    d = np.diagonal(hess, axis1=-2, axis2=-1)
+    floor = 1e-6 * np.abs(d).mean(axis=-1, keepdims=True) + 1e-300
+    h = hess.copy()
+    i = np.arange(p)
+    h[:, i, i] += lam[:, None] * (d + floor) + 1e-14 * floor
+    with np.errstate(all="ignore"):
+        step = -np.linalg.solve(h, grad[..., None])[..., 0]
+    return np.where(np.isfinite(step), step, 0.0)
+
+
+def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = None,
+                   *, steps: int = 30, tol: float = 1e-9) -> tuple[np.ndarray, np.ndarray,
+                                                                     np.ndarray]:
+    r"""Background-only fits of stacked spectra ``n (B, n_used)``.
+
+    Levenberg-Marquardt steps on the Fisher-type Hessian for the shape parameters, the
+    yield profiled in closed form (:math:`\hat b = \sum n / \sum g`); a step is taken only
+    when the NLL does not rise.  Stops when the NLL changes by less than ``tol``.
 
     Returns ``(theta (B, K), b (B,), nll (B,))``.
     """
@@ -151,12 +191,15 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
                                                                    np.ndarray]:
         g = bkg_fractions(model, th)
         b = ntot[rows] / np.maximum(g.sum(axis=1), 1e-300)
-        return g, b, _nll(n[rows], b[:, None] * g)
+        val = _nll(n[rows], b[:, None] * g)
+        return g, b, np.where(np.all(g > 0, axis=1) | (n[rows] == 0).all(axis=1), val, np.inf)
 
     g, b, nll = profile_b(theta)
     if k == 0:
         return theta, b, nll
+    lam = np.full(nb, 1e-3)
     active = np.ones(nb, bool)
+    d2 = bkg_second(model, theta)
     for _ in range(steps):
         idx = np.flatnonzero(active)
         if idx.size == 0:
@@ -165,34 +208,31 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
         dg = bkg_gradients(model, th)                      # (B, K, N)
         nu = np.maximum(bi[:, None] * gi, 1e-300)
         a = np.concatenate([gi[:, None, :], bi[:, None, None] * dg], axis=1)  # (B, P, N)
-        grad = np.einsum("bpn,bn->bp", a, 1.0 - n[idx] / nu)
-        hess = np.einsum("bpn,bqn,bn->bpq", a, a, 1.0 / nu)
-        hess += 1e-12 * np.eye(k + 1) * np.trace(hess, axis1=1, axis2=2)[:, None, None]
-        step = -np.linalg.solve(hess, grad[..., None])[..., 0]
-        dth = step[:, 1:]
-        lam = np.ones(idx.size)
-        new_theta = th.copy()
-        accepted = np.zeros(idx.size, bool)
-        for _half in range(8):
-            trial = np.clip(th + lam[:, None] * dth, model.lower, model.upper)
-            gt, bt, nt = profile_b(trial, idx)
-            ok = (nt <= nll[idx] + 1e-10) & ~accepted
-            new_theta[ok] = trial[ok]
-            g[idx[ok]], b[idx[ok]] = gt[ok], bt[ok]
-            nll_new = nt[ok]
-            # convergence: step small relative to the parameter errors
-            err = np.sqrt(np.maximum(np.diagonal(np.linalg.inv(hess), axis1=1, axis2=2)[:, 1:],
-                                     1e-300))
-            small = np.all(np.abs(lam[:, None] * dth) < tol * np.maximum(err, 1e-12), axis=1)
-            conv = ok & (small | (nll[idx] - nt < 1e-9))
-            nll[idx[ok]] = nll_new
-            active[idx[conv]] = False
-            accepted |= ok
-            if accepted.all():
+        w = 1.0 - n[idx] / nu
+        grad = np.einsum("bpn,bn->bp", a, w)
+        # exact Hessian: observed Fisher part + the curvature of the shape
+        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[idx] / nu**2)
+        hess[:, 1:, 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl", d2[idx], w)
+        cross = np.einsum("bkn,bn->bk", dg, w)
+        hess[:, 0, 1:] += cross
+        hess[:, 1:, 0] += cross
+        todo = np.ones(idx.size, bool)
+        for _try in range(12):
+            r = np.flatnonzero(todo)
+            rows = idx[r]
+            step = _damped_solve(hess[r], grad[r], lam[rows])
+            trial = np.clip(th[r] + step[:, 1:], model.lower, model.upper)
+            gt, bt, nt = profile_b(trial, rows)
+            ok = nt <= nll[rows] + 1e-10
+            j = rows[ok]
+            conv = ok & (nll[rows] - nt < tol) & (lam[rows] <= 1e-2)
+            theta[j], g[j], b[j], nll[j] = trial[ok], gt[ok], bt[ok], nt[ok]
+            active[rows[conv]] = False
+            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
+            todo[r[ok]] = False
+            if not todo.any():
                 break
-            lam = np.where(accepted, lam, 0.5 * lam)
-        theta[idx] = new_theta
-        active[idx[~accepted]] = False  # no descent possible: at the minimum to rounding
+        active[idx[todo]] = False  # no descent at any damping: at the minimum to rounding
     return theta, b, nll
 
 
@@ -242,6 +282,8 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     active = np.ones(nb, bool)
     converged = np.zeros(nb, bool)
     off = 0 if fixed else 1
+    lam = np.full(nb, 1e-3)
+    d2 = bkg_second(model, theta) if k else None
     for _ in range(steps):
         idx = np.flatnonzero(active)
         if idx.size == 0:
@@ -256,50 +298,65 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         a = np.concatenate(cols, axis=1)
         w = 1.0 - n[idx] / nu
         grad = np.einsum("bpn,bn->bp", a, w)
-        hess = np.einsum("bpn,bqn,bn->bpq", a, a, 1.0 / nu)
-        p = a.shape[1]
-        hess += 1e-12 * np.eye(p) * np.trace(hess, axis1=1, axis2=2)[:, None, None]
-        step = -np.linalg.solve(hess, grad[..., None])[..., 0]
-        err = np.sqrt(np.maximum(np.diagonal(np.linalg.inv(hess), axis1=1, axis2=2), 1e-300))
-        lam = np.ones(idx.size)
-        accepted = np.zeros(idx.size, bool)
-        for _half in range(12):
-            ts = si if fixed else si + lam * step[:, 0]
-            tb = bi + lam * step[:, off]
-            tth = np.clip(thi + lam[:, None] * step[:, off + 1:], model.lower, model.upper)
+        # exact Hessian: observed Fisher part + the curvature of the background shape
+        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[idx] / nu**2)
+        if k:
+            ib = off  # index of the background yield
+            hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
+                                                                         d2[idx], w)
+            cross = np.einsum("bkn,bn->bk", cols[-1] / bi[:, None, None], w)
+            hess[:, ib, ib + 1:] += cross
+            hess[:, ib + 1:, ib] += cross
+        with np.errstate(all="ignore"):
+            err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
+        todo = np.ones(idx.size, bool)
+        for _try in range(12):
+            r = np.flatnonzero(todo)
+            rows = idx[r]
+            step = _damped_solve(hess[r], grad[r], lam[rows])
+            ts = si[r] if fixed else si[r] + step[:, 0]
+            tb = bi[r] + step[:, off]
+            tth = np.clip(thi[r] + step[:, off + 1:], model.lower, model.upper)
             tg = bkg_fractions(model, tth)
-            tn = total_nll(ts, tb, tg, idx)
-            ok = (tn <= nll[idx] + 1e-9) & ~accepted
-            j = idx[ok]
-            s[j], b[j], theta[j], g[j] = ts[ok], tb[ok], tth[ok], tg[ok]
-            small = np.all(np.abs(lam[:, None] * step) < tol * err, axis=1)
-            conv = ok & (small | (nll[idx] - tn < 1e-10))
-            nll[j] = tn[ok]
-            converged[idx[conv]] = True
-            active[idx[conv]] = False
-            accepted |= ok
-            if accepted.all():
+            tn = total_nll(ts, tb, tg, rows)
+            ok = tn <= nll[rows] + 1e-9
+            j = rows[ok]
+            small = np.all(np.abs(step) < tol * err[r], axis=1)
+            conv = ok & (small | (nll[rows] - tn < 1e-8)) & (lam[rows] <= 1e-2)
+            s[j], b[j], theta[j], g[j], nll[j] = ts[ok], tb[ok], tth[ok], tg[ok], tn[ok]
+            converged[rows[conv]] = True
+            active[rows[conv]] = False
+            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
+            todo[r[ok]] = False
+            if not todo.any():
                 break
-            lam = np.where(accepted, lam, 0.5 * lam)
-        stuck = idx[~accepted]
-        converged[stuck] = True  # no descent direction left: at the minimum to rounding
+        stuck = idx[todo]
+        converged[stuck] = True  # no descent at any damping: at the minimum to rounding
         active[stuck] = False
-    # errors from the observed Hessian at the minimum (linear parameters exact)
-    nu = np.maximum(s[:, None] * f + b[:, None] * g, 1e-300)
-    cols = [f[:, None, :], g[:, None, :]]
-    if k:
-        cols.append(b[:, None, None] * bkg_gradients(model, theta))
-    a = np.concatenate(cols, axis=1)
-    hobs = np.einsum("bpn,bqn,bn->bpq", a, a, n / nu**2)
-    hexp = np.einsum("bpn,bqn,bn->bpq", a, a, 1.0 / nu)
-    h = np.where((n.sum(axis=1) > 0)[:, None, None], hobs, hexp)
-    with np.errstate(all="ignore"):
-        try:
-            cov = np.linalg.inv(h + 1e-12 * np.eye(h.shape[1]) * np.trace(h, axis1=1,
-                                                                           axis2=2)[:, None, None])
-            s_err = np.sqrt(np.maximum(cov[:, 0, 0], 0.0))
-        except np.linalg.LinAlgError:
-            s_err = np.full(nb, np.nan)
+    # HESSE-type error of the signal yield: inverse of the exact Hessian at the minimum
+    if fixed:
+        s_err = np.full(nb, np.nan)
+    else:
+        nu = np.maximum(s[:, None] * f + b[:, None] * g, 1e-300)
+        cols = [f[:, None, :], g[:, None, :]]
+        if k:
+            dgm = bkg_gradients(model, theta)
+            cols.append(b[:, None, None] * dgm)
+        a = np.concatenate(cols, axis=1)
+        w = 1.0 - n / nu
+        h = np.einsum("bpn,bqn,bn->bpq", a, a, n / nu**2)
+        if k:
+            h[:, 2:, 2:] += b[:, None, None] * np.einsum("bkln,bn->bkl", d2, w)
+            cross = np.einsum("bkn,bn->bk", dgm, w)
+            h[:, 1, 2:] += cross
+            h[:, 2:, 1] += cross
+        with np.errstate(all="ignore"):
+            try:
+                reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
+                cov = np.linalg.inv(h + reg * np.eye(h.shape[1]))
+                s_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
+            except np.linalg.LinAlgError:
+                s_err = np.full(nb, np.nan)
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
             "converged": converged}
 
@@ -399,7 +456,8 @@ def _solve_packed(h: np.ndarray, g: np.ndarray, kidx: dict) -> np.ndarray:
 
 
 def scan_toys_linear(model: ScanModel, n: np.ndarray,
-                     directions: np.ndarray | None = None) -> np.ndarray:
+                     directions: np.ndarray | None = None, *,
+                     refine: int = _REFINE) -> np.ndarray:
     r"""q0 at every mass for stacked background-only toys ``n (T, n_used)`` (fast engine).
 
     See the module guide for the method and its approximations.  The background is
@@ -412,7 +470,7 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     """
     n = np.atleast_2d(np.asarray(n, float))
     t = n.shape[0]
-    theta, b, _ = fit_background(model, n)
+    theta, b, nll_b = fit_background(model, n)
     b0 = np.maximum(b[:, None] * bkg_fractions(model, theta), 1e-300)   # (T, N)
     d = _background_directions(model) if directions is None else directions  # (N, Q)
     q = d.shape[1]
@@ -463,15 +521,55 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
             hess[:, 0] += ssreg
             grad = at @ (1.0 - r)
             grad += g_out + _packed_matvec(h_out, par, kidx)
-            par -= _solve_packed(hess, grad, kidx)
-            np.maximum(par[:, 0], 0.0, out=par[:, 0])
+            step = _solve_packed(hess, grad, kidx)
+            # damped step: keep every band expectation positive (halve where it is not)
+            lam = np.ones((sel.size, 1, t))
+            for _half in range(8):
+                trial = par - lam * step
+                np.maximum(trial[:, 0], 0.0, out=trial[:, 0])
+                bad = np.any(b0b + a @ trial <= 0.02 * b0b, axis=1)     # (Mg, T)
+                if not bad.any():
+                    break
+                lam[:, 0] = np.where(bad, 0.5 * lam[:, 0], lam[:, 0])
+            par = trial
         nu = np.maximum(b0b + a @ par, 1e-300)
         dnll = np.sum(nu - b0b - nb * np.log(nu / b0b), axis=1) \
             + np.sum(g_out * par, axis=1) \
             + 0.5 * np.sum(par * _packed_matvec(h_out, par, kidx), axis=1)
         qq = 2.0 * (null_shift[None, :] - dnll)
         q0[sel] = np.where(par[:, 0] > 0, np.maximum(qq, 0.0), 0.0)
-    return np.ascontiguousarray(q0.T)
+    q0 = np.ascontiguousarray(q0.T)
+    if refine > 0:
+        _refine_maxima(model, n, q0, theta, b, nll_b, refine)
+    return q0
+
+
+def _refine_maxima(model: ScanModel, n: np.ndarray, q0: np.ndarray, theta: np.ndarray,
+                   b: np.ndarray, nll_b: np.ndarray, count: int) -> None:
+    """Replace each toy's ``count`` largest linearised q0 values by exact profile fits.
+
+    The maximum of a toy scan is what the global p-value uses; the linearisation is least
+    accurate where a large local excess pulls the background most, so the few highest
+    points are refitted with :func:`profile_signal` (all toys at once), in place.
+    """
+    t, m = q0.shape
+    count = min(count, m)
+    top = np.argpartition(-q0, count - 1, axis=1)[:, :count]          # (T, count)
+    rows = np.repeat(np.arange(t), count)
+    cols = top.ravel()
+    keep = q0[rows, cols] > 0
+    rows, cols = rows[keep], cols[keep]
+    if rows.size == 0:
+        return
+    f = model.fractions[cols]
+    b0 = np.maximum(b[rows, None] * bkg_fractions(model, theta[rows]), 1e-300)
+    nr = n[rows]
+    s0 = np.maximum(np.sum((nr / b0 - 1.0) * f, axis=1)
+                    / np.maximum(np.sum(nr * f * f / b0**2, axis=1), 1e-300), 0.0)
+    r = profile_signal(model, nr, f, s_start=0.5 * s0, theta_start=theta[rows],
+                       b_start=b[rows] - 0.5 * s0, steps=40)
+    exact = np.where(r["s"] > 0, np.maximum(2.0 * (nll_b[rows] - r["nll"]), 0.0), 0.0)
+    q0[rows, cols] = exact
 
 
 # ----------------------------------------------------------------- toy generation
