@@ -180,6 +180,7 @@ class _FileInfo:
     scalars: dict[str, pa.DataType]  # per-event columns
     scalar_paths: dict[str, list[str]]
     handle: pq.ParquetFile | None = field(default=None, compare=False, repr=False)
+    leaf_index: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
 
 
 def _kind(t: pa.DataType) -> str:
@@ -222,9 +223,11 @@ def _inspect(path: Path) -> _FileInfo:
     schema = pf.schema_arrow
     md = pf.metadata
     leaf_paths: dict[str, list[str]] = {}
+    leaf_index: dict[str, int] = {}
     for i in range(len(pf.schema)):
         p = pf.schema.column(i).path
         leaf_paths.setdefault(p.split(".")[0], []).append(p)
+        leaf_index[p] = i
 
     records: dict[str, _Coll] = {}
     scalars: dict[str, pa.DataType] = {}
@@ -283,7 +286,7 @@ def _inspect(path: Path) -> _FileInfo:
     except OSError:
         size = 0
     return _FileInfo(path, md.num_rows, rg, size, records, jagged_other, scalars, scalar_paths,
-                     pf)
+                     pf, leaf_index)
 
 
 def _present_text(info: _FileInfo) -> str:
@@ -736,6 +739,121 @@ def _build(pieces: list[_Piece]) -> ak.Array:
     return ak.Array(ak.contents.RecordArray(contents, names, length=n))
 
 
+class _Growing:
+    """Numpy parts appended into one buffer allocated once at an upper-bound capacity.
+
+    Pages past the filled length are never touched, so the spare capacity costs no memory.
+    Anything unexpected (a non-numeric part, a dtype change, a capacity overflow) falls back to
+    collecting the parts and concatenating them at the end."""
+
+    def __init__(self, capacity: int) -> None:
+        self.capacity = int(capacity)
+        self.buf: np.ndarray | None = None
+        self.n = 0
+        self.parts: list[Any] | None = None
+
+    def append(self, arr: Any) -> None:
+        if self.parts is None:
+            ok = isinstance(arr, np.ndarray) and arr.dtype.kind in "biuf"
+            if ok and self.buf is None:
+                self.buf = _empty(self.capacity, arr.dtype)
+            if ok and arr.dtype == self.buf.dtype and self.n + len(arr) <= self.capacity:
+                self.buf[self.n:self.n + len(arr)] = arr
+                self.n += len(arr)
+                return
+            self.parts = [] if self.buf is None else [self.buf[:self.n]]
+        self.parts.append(arr)
+
+    def result(self) -> Any:
+        if self.parts is not None:
+            return _concat(self.parts)
+        return self.buf[:self.n] if self.buf is not None else np.zeros(0)
+
+
+class _Collector:
+    """Pieces added one by one into preallocated outputs (read_events' single-copy path).
+
+    Each piece's Arrow buffers can be freed as soon as it is copied, so the memory pool reuses
+    them for the next piece and the peak is about one output plus one piece."""
+
+    def __init__(self, n_events: int, capacity: dict[str, int]) -> None:
+        self.n_events = n_events
+        self.capacity = capacity
+        self.order: list[tuple[str, str]] | None = None
+        self.offsets: dict[str, np.ndarray] = {}
+        self.pos = 1
+        self.shift: dict[str, int] = {}
+        self.fields: dict[str, dict[str, _Growing]] = {}
+        self.columns: dict[str, _Growing] = {}
+        self.meta: list[_Piece] = []
+
+    def add(self, p: _Piece) -> None:
+        if self.order is None:
+            self.order = list(p.order)
+            for kind, name in p.order:
+                if kind == "coll":
+                    self.offsets[name] = _empty(self.n_events + 1, np.int64)
+                    self.offsets[name][0] = 0
+                    self.shift[name] = 0
+                    self.fields[name] = {f: _Growing(self.capacity.get(name, 0))
+                                         for f in p.colls[name][1]}
+                else:
+                    self.columns[name] = _Growing(self.n_events)
+        pos = self.pos
+        for kind, name in self.order:
+            if kind == "coll":
+                offs, cols = p.colls[name]
+                out, at, shift = self.offsets[name], pos, self.shift[name]
+                for o in offs:
+                    k = len(o) - 1
+                    out[at:at + k] = o[1:]
+                    out[at:at + k] += shift
+                    shift += int(o[-1])
+                    at += k
+                self.shift[name] = shift
+                for f, g in self.fields[name].items():
+                    for v in cols[f]:
+                        g.append(v)
+            else:
+                for v in (p.scalars if kind == "scalar" else p.others)[name]:
+                    self.columns[name].append(v)
+        self.pos = pos + p.n_events
+        self.meta.append(_Piece(p.n_events, counts=p.counts, n_objects=p.n_objects))
+
+    def array(self) -> ak.Array:
+        if self.order is None:
+            return ak.Array(ak.contents.RecordArray([], [], length=0))
+        contents, names = [], []
+        for kind, name in self.order:
+            if kind == "coll":
+                offsets = self.offsets[name][:self.pos]
+                fnames = list(self.fields[name])
+                arrays = [_to_layout(self.fields[name][f].result()) for f in fnames]
+                rec = ak.contents.RecordArray(arrays, fnames, length=int(offsets[-1]),
+                                              parameters={"__record__": "Momentum4D"})
+                contents.append(ak.contents.ListOffsetArray(ak.index.Index64(offsets), rec))
+            else:
+                contents.append(_to_layout(self.columns[name].result()))
+            names.append(name)
+        return ak.Array(ak.contents.RecordArray(contents, names, length=self.pos - 1))
+
+
+def _object_capacity(plans: list[tuple[_FileInfo, tuple]]) -> dict[str, int]:
+    """Upper bound on the objects per collection from the footers (leaf value counts)."""
+    cap: dict[str, int] = {}
+    for info, sel in plans:
+        md = info.handle.metadata if info.handle is not None else _open(info.path).metadata
+        for c in sel[0]:
+            leaf = c.paths[_kin_source_fields(c)[0]][0]
+            j = info.leaf_index.get(leaf)
+            if j is None:
+                cap[c.name] = 1 << 62
+                continue
+            tot = sum(md.row_group(i).column(j).num_values for i in range(md.num_row_groups))
+            cap[c.name] = cap.get(c.name, 0) + int(tot)
+    return cap
+
+
 def _warn(pieces: list[_Piece], files: list[Path]) -> None:
     parts = []
     for name in dict.fromkeys(k for p in pieces for k in p.counts):
@@ -880,16 +998,16 @@ def read_events(
     """
     files = list_files(source)
     plans = _plan_request(files, collections, fields)
-    pieces = []
+    out = _Collector(sum(info.n_events for info, _ in plans), _object_capacity(plans))
     first = 0
     for info, sel in plans:
-        # whole row groups in pieces of ~DEFAULT_CHUNK_EVENTS: a smaller working set reads
-        # faster than one call per file, and the final build copies each field once
+        # whole row groups in pieces of ~DEFAULT_CHUNK_EVENTS, each copied into the outputs
+        # and released before the next is read
         for rgs, n in _group_row_groups(info.row_groups, DEFAULT_CHUNK_EVENTS):
-            pieces.append(_read_piece(info, sel, rgs, first, masses or {}, strict))
+            out.add(_read_piece(info, sel, rgs, first, masses or {}, strict))
             first += n
-    _warn(pieces, files)
-    return _build(pieces)
+    _warn(out.meta, files)
+    return out.array()
 
 
 def iter_events(
