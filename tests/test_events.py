@@ -263,3 +263,18 @@ def test_dropping_keeps_event_alignment(tmp_path):
     with pytest.warns(DataWarning, match="1 with NaN or infinite kinematics"):
         ev = events.read_events(path)
     assert ak.to_list(ev.muon.pt) == [[10.0, 20.0], [], [30.0, 40.0], [50.0]]
+
+
+def test_files_with_different_float_widths_combine(tmp_path):
+    counts, obj = _truth_objects()
+    _write(tmp_path / "a.parquet", counts, obj, "records")
+    narrow = {k: (v.astype(np.float32) if v.dtype == np.float64 else v) for k, v in obj.items()}
+    _write(tmp_path / "b.parquet", counts, narrow, "columns")
+    ev = events.read_events(tmp_path)
+    assert len(ev) == 2 * N_EVENTS
+    pt = ak.to_numpy(ak.flatten(ev.muon.pt))
+    assert pt.dtype == np.float64
+    np.testing.assert_array_equal(pt[: counts.sum()], obj["pt"])
+    np.testing.assert_allclose(pt[counts.sum():], obj["pt"], rtol=1e-7)
+    whole = ak.concatenate(list(events.iter_events(tmp_path, chunk_events=100)))
+    assert ak.array_equal(whole, ev)
