@@ -49,6 +49,7 @@ Guarantees
 
 from __future__ import annotations
 
+import atexit
 import contextlib
 import dataclasses
 import math
@@ -57,6 +58,7 @@ import os
 import pickle
 import re
 import signal
+import sys
 import time
 import uuid
 import warnings
@@ -506,11 +508,32 @@ def _default_workers() -> int:
 _TRACK: Any = None  # in a pool worker: queue of (pid, task index) as tasks start
 
 
+def _exit_fast() -> None:
+    """Last step of a worker process we started: end without the interpreter's final
+    clean-up.  A worker that has delivered its results has nothing left to save, and
+    finalising numba's compiler objects alone takes about a second per process, which the
+    pool's (or the local cluster's) shutdown would otherwise wait for."""
+    import logging
+
+    logging.shutdown()
+    for stream in (sys.stdout, sys.stderr):
+        with contextlib.suppress(OSError, ValueError, AttributeError):
+            stream.flush()
+    os._exit(0)
+
+
+def _install_exit_fast() -> None:
+    # registered late, so it runs first among the exit handlers; the ones it skips are
+    # multiprocessing's (already run by then for pool workers) and module finalisers
+    atexit.register(_exit_fast)
+
+
 def _worker_init(track: Any) -> None:
     """Pool workers leave Ctrl-C to the parent, which stops them cleanly."""
     global _TRACK
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     _TRACK = track
+    _install_exit_fast()
 
 
 def _tracked(func: Callable[[Any], Any], index: int, task: Any) -> Any:
@@ -679,7 +702,9 @@ def _connect(address: str | None, workers: int, timeout: str = "30s") -> tuple[A
     if address is None:
         cluster = _start_local_cluster(workers)
         try:
-            return Client(cluster, set_as_default=False), cluster
+            client = Client(cluster, set_as_default=False)
+            client.run(_install_exit_fast)  # our own workers only, never a user's cluster
+            return client, cluster
         except BaseException:
             cluster.close()
             raise
