@@ -278,3 +278,14 @@ def test_files_with_different_float_widths_combine(tmp_path):
     np.testing.assert_allclose(pt[counts.sum():], obj["pt"], rtol=1e-7)
     whole = ak.concatenate(list(events.iter_events(tmp_path, chunk_events=100)))
     assert ak.array_equal(whole, ev)
+
+
+def test_check_files_up_front(tmp_path):
+    counts, obj = _truth_objects()
+    _write(tmp_path / "a.parquet", counts, obj, "records")
+    assert [f.name for f in events.check_files(tmp_path, "muon")] == ["a.parquet"]
+    obj["charge"] = obj["charge"].astype(np.float32)
+    _write(tmp_path / "b.parquet", counts, obj, "records")
+    with pytest.raises(InputError, match=r"'.*a.parquet' and '.*b.parquet' disagree: field "
+                                         r"'muon.charge' is int in the first and float"):
+        events.check_files(tmp_path, "muon")

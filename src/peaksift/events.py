@@ -6,7 +6,8 @@ Which function to use
 * :func:`iter_events` -- the same, streamed in chunks of whole Parquet row groups, so memory
   stays bounded whatever the size of the data set.
 * :func:`plan_chunks` + :func:`read_chunk` -- picklable chunk descriptions that workers read
-  themselves (this is what :mod:`peaksift.execution` uses).
+  themselves (this is what :mod:`peaksift.execution` uses); :func:`check_files` checks all
+  files' schemas against the request once, up front, from the footers.
 * :func:`describe` -- what a set of files holds (``peaksift inspect`` prints it).
 * :func:`list_files` -- resolve paths, globs, directories and lists to a sorted list of files.
 
@@ -68,6 +69,7 @@ vector.register_awkward()
 __all__ = [
     "ChunkSpec",
     "Description",
+    "check_files",
     "describe",
     "iter_events",
     "list_files",
@@ -898,6 +900,25 @@ class ChunkSpec:
     row_groups: tuple[int, ...]
     n_events: int
     first_event: int
+
+
+def check_files(
+    source: Source,
+    collections: str | Sequence[str] | None = None,
+    *,
+    fields: Iterable[str] | None = None,
+) -> list[Path]:
+    """Check a data set before reading it, from the file footers only, and return its files.
+
+    Raises the same :class:`~peaksift.errors.InputError` as :func:`read_events` would for a
+    missing file, unreadable Parquet, an absent collection or kinematic field, non-numeric
+    kinematics, an unknown requested field, or files that disagree on what would be read
+    (both named).  Workers reading :func:`read_chunk` see one file each, so a driver calls this
+    once up front.
+    """
+    files = list_files(source)
+    _plan_request(files, collections, fields)
+    return files
 
 
 def plan_chunks(source: Source, *, chunk_events: int = DEFAULT_CHUNK_EVENTS) -> list[ChunkSpec]:
