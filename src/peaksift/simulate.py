@@ -544,7 +544,7 @@ def write_demo(
     ----------
     outdir : path
         Created if missing.  Files are ``events_NNN.parquet`` (``simulated_NNN.parquet`` for
-        the weighted variant).
+        the weighted variant); older files of that name pattern in ``outdir`` are replaced.
     n_events, seed : int, optional
         Defaults :data:`DEMO_EVENTS` and :data:`DEMO_SEED`.
     weighted : bool
@@ -615,6 +615,10 @@ def write_demo(
                 w_.close()
         for t, p in zip(tmps, paths):
             os.replace(t, p)
+        # files of an earlier, larger split would otherwise join this data set's glob
+        for old in out.glob(f"{stem}_[0-9][0-9][0-9].parquet"):
+            if old not in paths:
+                old.unlink()
     except BaseException:
         for w_ in writers:
             if w_ is not None:
