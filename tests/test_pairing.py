@@ -406,3 +406,30 @@ def test_errors_are_clear():
         pair(ev, "muon", event_cut="n_muons >= 2")
     with pytest.raises(CutError, match="does not match the collection"):
         pair(ev, "muon", cut=ev.muon.pt[::-1] > 10)
+
+
+def test_sliced_and_masked_events_give_the_same_as_packed(random_rows):
+    """Views of events (slices, masks: indexed layouts) read the same objects as a copy."""
+    rows, _ = random_rows
+    ev = _events(weight=np.arange(len(rows), dtype=float), muon=_collection(rows))
+    mask = np.random.default_rng(5).uniform(size=len(rows)) < 0.5
+    for sub in (ev[10:250], ev[::3], ev[mask]):
+        packed = ak.to_packed(sub)
+        for choose, target in (("all", None), ("leading", None), ("closest", 90.0)):
+            kw = {"charge": "opposite", "choose": choose, "cut": "pt > 10",
+                  "target_mass": target}
+            a, b = pair(sub, "muon", **kw), pair(packed, "muon", **kw)
+            for col in Candidates._COLUMNS:
+                np.testing.assert_array_equal(getattr(a, col), getattr(b, col), err_msg=col)
+            assert a.cutflow == b.cutflow
+
+
+def test_no_events_and_no_pairs():
+    ev = _events(muon=_collection(_hand_events()))
+    for choose in ("all", "leading", "max_sum_pt"):
+        c = pair(ev[:0], "muon", charge="opposite", choose=choose)
+        assert len(c) == 0 and c.cutflow["events_in"] == 0
+    c = pair(ev, "muon", cut="pt > 1000")
+    assert len(c) == 0 and c.cutflow == {"events_in": 5, "events_after_event_cut": 5,
+                                         "events_with_pair": 0, "candidates": 0}
+    assert len(Candidates.concatenate([])) == 0
