@@ -54,6 +54,7 @@ def test_toys_with_no_exceedance_give_a_bound():
     assert res["p_global"] == pytest.approx(1 - 0.05 ** (1 / 200))
 
 
+@pytest.mark.slow
 def test_upcrossings_agree_with_toys_for_moderate_excess():
     """For a moderate excess (Z_local ~ 3.4) on a scan grid finer than the resolution, the Gross-Vitells extrapolation from 300 toys at
     u0 = 0.5 and the direct toy estimate from 3000 toys agree within their combined errors

@@ -113,6 +113,7 @@ def test_expected_limit_matches_fisher_information():
     assert np.all(np.isfinite(r.observed))
 
 
+@pytest.mark.slow
 def test_asymptotic_and_toy_limits_agree_at_moderate_counts():
     """Asymptotic CLs (Cowan et al. 2011) and toy-based CLs (Read 2002) agree within 10% at
     moderate counts (~40 background events under the peak): observed and median expected."""

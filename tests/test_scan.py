@@ -65,6 +65,7 @@ def test_negative_yield_allowed_but_q0_one_sided():
     assert np.all(r.q0[neg] == 0.0) and np.all(r.p_local[neg] == 0.5)
 
 
+@pytest.mark.slow
 def test_wilks_half_chi_square_at_fixed_mass():
     """Wilks (1938) / Cowan et al. 2011 eq. 49: under the background-only hypothesis q0 at a
     fixed mass is a half chi-square with one dof, P(q0 > 1) = 0.1587, P(q0 > 4) = 0.02275

@@ -270,9 +270,15 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
     m_arr = None if np.ndim(masses) == 0 else np.asarray(masses, float)
 
     def min_sigma() -> float:
-        probe = m_arr if m_arr is not None else np.linspace(
-            *(window if window is not None else (np.min(data), np.max(data))), 50)
-        return float(np.min(sigma_of(probe)))
+        if m_arr is not None:
+            return float(np.min(sigma_of(m_arr)))
+        if window is not None:
+            lo, hi = float(window[0]), float(window[1])
+        else:
+            x = np.asarray(data[0] if isinstance(data, tuple) else data, float)
+            lo, hi = float(np.min(x)), float(np.max(x))
+        pad = 0.05 * (hi - lo)  # the default grid's range
+        return float(np.min(sigma_of(np.linspace(lo + pad, hi - pad, 50))))
 
     spec = _spectrum(data, window, bins, min_sigma)
     lo, hi = spec.window
@@ -424,6 +430,9 @@ class ScanResult:
         """q0 scans of ``toys`` background-only pseudo-experiments, ``(toys, n_unblinded)``."""
         if self.model is None:
             raise FitError("this ScanResult carries no model (rebuilt from a dict?); rerun scan")
+        if self.model.masses.size == 0:
+            raise FitError("every mass hypothesis of this scan is blinded; there is no "
+                           "observed excess to assess (unblind, or scan outside the blind range)")
         return run_toys(self.model, toys, seed=seed, workers=workers, progress=progress)
 
     def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
