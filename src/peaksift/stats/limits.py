@@ -242,9 +242,7 @@ class LimitResult:
             ax.set_xlabel(f"mass [{self.mass_unit}]")
             what = ("signal yield [events]" if self.unit == "events"
                     else rf"$\sigma \times B$ [{self.unit}]")
-            ax.set_ylabel(f"{self.cl:.0%} CL upper limit on {what}".replace("%", r"\%")
-                          if plt.rcParams.get("text.usetex") else
-                          f"{self.cl:.0%} CL upper limit on {what}")
+            ax.set_ylabel(f"{self.cl:.0%} CL upper limit on {what}")
             ax.legend(loc="upper right", ncol=2)
             ax.text(0.01, 1.015, f"CLs, {self.method}", transform=ax.transAxes, fontsize=9,
                     va="bottom")

@@ -33,9 +33,13 @@ How the toy scan is made fast (and what it approximates)
    products over all bins, so the signal tails are not lost).
 4. The resulting convex problem in ``1 + len(eta)`` parameters is solved by a few Newton steps
    for all toys and all masses of a band group at once, with ``s >= 0`` (q0 is one-sided).
+5. The two highest points of every toy scan are refitted exactly (:func:`profile_signal`), so
+   the maximum that the global p-value uses carries no linearisation error.
 
 The approximations are second order in the (small) shift of the background parameters that a
-local signal causes; the tests compare max q0 with per-toy iminuit fits (within 0.05 in Z).
+local signal causes; the tests compare the scans with per-toy iminuit fits (max q0 within
+0.05 in Z as required; measured < 0.005 away from the maximum at high counts, < 0.05 with a
+few events per bin, and exact at the maximum after step 5).
 """
 
 from __future__ import annotations
