@@ -126,7 +126,8 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
 def _cmd_fit(args: argparse.Namespace) -> int:
     from .search import run_fit
 
-    fr = run_fit(args.config, args.mass, engine=args.engine, progress=_progress_wanted(args))
+    fr = run_fit(args.config, args.mass, engine=args.engine, unblind=args.unblind,
+                 progress=_progress_wanted(args))
     print(repr(fr))
     return 0
 
@@ -186,6 +187,7 @@ def build_parser() -> argparse.ArgumentParser:
     f = sub.add_parser("fit", help="one signal-plus-background fit at a chosen mass")
     f.add_argument("config")
     f.add_argument("--mass", type=float, required=True, help="starting peak mass in GeV")
+    f.add_argument("--unblind", action="store_true", help="fit even if the config is blinded")
     engine_opt(f)
     f.set_defaults(handler=_cmd_fit)
     return p

@@ -204,13 +204,20 @@ def _lee_sentence(r: Mapping[str, Any]) -> str:
     method = best.get("global_method") or "n/a"
     rng = (f" over the scanned range {_num(min(masses), 5)}-{_num(max(masses), 5)} GeV "
            f"({len(masses)} hypotheses)") if masses else ""
-    toys = best.get("toys")
+    toys = best.get("n_toys", best.get("toys"))
     how = {
         "upcrossings": "from upcrossings of the q0 scan (Gross and Vitells 2010)",
         "toys": "from background-only toys of the whole scan",
     }
     desc = next((v for k, v in how.items() if str(method).startswith(k)), f"by '{method}'")
-    toy_txt = f", {toys} toys" if toys else ""
+    if str(method).startswith("upcrossings") and best.get("N0") is not None:
+        n0e = best.get("N0_error")
+        toy_txt = (f"; mean number of upcrossings N0 = {_num(best['N0'], 3)}"
+                   + (f" \u00b1 {_num(n0e, 2)}" if n0e is not None else "")
+                   + f" of the level u0 = {_num(best.get('u0'), 3)}"
+                   + (f", from {best['n0_source']}" if best.get("n0_source") else ""))
+    else:
+        toy_txt = f", {toys} toys" if toys else ""
     return (f"The look-elsewhere effect is included in the global significance, estimated "
             f"{desc}{rng}{toy_txt}. The local significance does not include it.")
 

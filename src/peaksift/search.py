@@ -472,9 +472,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     bkg = _shape(cfg.model.background, cfg.model.background_options)
     scan_sig = _shape(_scan_signal_name(cfg), {})
     masses = _scan_masses(cfg)
-    binned = {"auto": None, "binned": True, "unbinned": False}[cfg.model.fit]
-    data = hist if binned is not False else np.asarray(col.window_mass)[
-        (col.window_mass >= lo) & (col.window_mass < hi)]
+    binned, data = _fit_data(cfg, col, hist)
 
     sigma_fn = res.sigma
     if res.natural_width > 0:
@@ -488,7 +486,6 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     best = dict(sres.global_significance(
         method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
         u0=cfg.significance.reference_level, progress=progress))
-    best.setdefault("toys", cfg.significance.toys)
 
     m_best = float(best["mass"])
     start = {"mass": m_best}
@@ -691,9 +688,12 @@ def run_fit(
     mass: float,
     *,
     engine: str | None = None,
+    unblind: bool = False,
     progress: bool = False,
 ) -> Any:
     """One signal-plus-background fit with ``model.signal`` started at ``mass`` GeV.
+
+    Refused while the configuration is blinded unless ``unblind`` is given.
 
     Returns the :class:`~peaksift.fitting.FitResult`.
     """
@@ -701,6 +701,9 @@ def run_fit(
 
     cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
     lo, hi = cfg.spectrum.window
+    if cfg.blinding.enabled and not unblind:
+        raise ConfigError(f"config {cfg.source}: blinding.enabled = true: a free fit would look "
+                          "inside the blinded window; pass --unblind to fit anyway")
     if not (lo < float(mass) < hi):
         raise ConfigError(f"--mass {mass:g} GeV lies outside spectrum.window [{lo:g}, {hi:g}]; "
                           "choose a mass inside the fit window")
@@ -712,9 +715,22 @@ def run_fit(
     names = [p.name for p in sig.parameters]
     if "sigma" in names:
         start["sigma"] = float(cfg.model.resolution.sigma(float(mass)))
+    binned, data = _fit_data(cfg, col, hist)
+    return fit(data, sig, bkg, (lo, hi), binned=binned, start=start)
+
+
+def _fit_data(cfg: Config, col: Any, hist: Any) -> tuple[bool | None, Any]:
+    """What the free fits get: the histogram (binned, or ``auto``: the fitter's choice for a
+    histogram is binned), or the window masses with their weights for ``fit = "unbinned"``."""
     binned = {"auto": None, "binned": True, "unbinned": False}[cfg.model.fit]
-    blind = tuple(cfg.blinding.window) if cfg.blinding.enabled else None
-    return fit(hist, sig, bkg, (lo, hi), binned=binned, start=start, **_opt(blind=blind))
+    if binned is not False:
+        return binned, hist
+    lo, hi = cfg.spectrum.window
+    m = np.asarray(col.window_mass, dtype=float)
+    sel = (m >= lo) & (m < hi)
+    if cfg.input.weights and hist.is_weighted:
+        return binned, (m[sel], np.asarray(col.window_weight, dtype=float)[sel])
+    return binned, m[sel]
 
 
 # ------------------------------------------------------------------------------- demo
