@@ -110,7 +110,7 @@ def test_markdown_has_tables_caution_and_figure_links(tmp_path):
     md = render_markdown(_results(), {"spectrum": "figures/spectrum.png"})
     assert md.count(CAUTION) >= 2
     assert "![spectrum](figures/spectrum.png)" in md
-    assert "| Local significance | 3.9 σ (p = 4.80e-05) |" in md
+    assert "| Local significance | 3.90 σ (p = 4.80e-05) |" in md
     assert "upcrossings" in md
     assert "| events | 1 000 |".replace(" 000", "\u2009000") in md
 

@@ -156,6 +156,10 @@ def _ve(d: Any) -> tuple[Any, Any]:
     return d, None
 
 
+def _z(z: Any) -> str:
+    return "n/a" if z is None else f"{float(z):.2f}"
+
+
 def _p(p: Any) -> str:
     if p is None:
         return "n/a"
@@ -169,9 +173,9 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     fit = r.get("fit") or {}
     rows = [
         ("Best mass hypothesis", f"{_num(best.get('mass'), 5)} GeV"),
-        ("Local significance", (f"{_num(best.get('z_local'), 3)} \u03c3 "
+        ("Local significance", (f"{_z(best.get('z_local'))} \u03c3 "
                                f"(p = {_p(best.get('p_local'))})")),
-        ("Global significance", (f"{_num(best.get('z_global'), 3)} \u03c3 "
+        ("Global significance", (f"{_z(best.get('z_global'))} \u03c3 "
                                 f"(p = {_p(best.get('p_global'))}, "
                                 f"{best.get('global_method', 'n/a')})")),
         ("Fitted peak mass", format_pm(*_ve(fit.get("peak_mass")), "GeV")),
@@ -245,7 +249,8 @@ def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
         ("Fitted core width (sigma)", format_pm(*_ve(c.get("fitted_resolution")), "GeV")),
         ("Shift (fit - tables)", (f"{_num(c.get('shift'), 3)} GeV = "
                                  f"{_num(c.get('shift_relative_permille'), 3)} \u2030, "
-                                 f"{_num(c.get('shift_sigma'), 3)} \u03c3")),
+                                 f"{_num(c.get('shift_sigma'), 3)} \u03c3 (statistical "
+                                 "errors of fit and tables)")),
         ("Fit valid", "yes" if c.get("valid") else "NO"),
     ]
     km = c.get("known_matches")
