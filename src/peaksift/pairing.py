@@ -70,7 +70,8 @@ CHOOSE_RULES = ("all", "leading", "max_sum_pt", "closest")
 _CHARGE = {None: 0, "any": 0, "opposite": -1, "same": 1}
 _CUTFLOW_KEYS = ("events_in", "events_after_event_cut", "events_with_pair", "candidates")
 _KINEMATIC_FIELDS = ("pt", "eta", "phi", "mass")
-_BLOCK = 1 << 18  # objects (and pairs) per block of events in the choose='all' path
+_BLOCK = 1 << 18
+_NO_INDEX = np.zeros(1, dtype=np.int64)  # objects (and pairs) per block of events in the choose='all' path
 
 
 # ------------------------------------------------------------------------ result
@@ -390,6 +391,33 @@ def _best_pairs_direct(sa, ea, sb, eb, same, ga, gb, mode, pta, ptb, rule):  # p
             pe[m] = ev
             m += 1
     return a[:m], b[:m], pe[:m]
+
+
+@numba.njit(cache=True, nogil=True)
+def _compress_block(used, o0, o1, sel, has_sel, pt, eta, phi, mass,  # pragma: no cover
+                    remap, cpt, ceta, cphi, cmass):
+    """Copy (as float64) the kinematics of used selected objects ``o0 <= i < o1`` to ``c*``
+    and set ``remap[i - o0]`` to their rows; returns the number used.
+
+    Branch-free: every object is copied to row ``m``, which advances only for used ones
+    (so ``c*`` have one spare row); unused objects get a valid row (they only meet failing
+    pairs).
+    """
+    m = 0
+    for i in range(o0, o1):
+        f = sel[i] if has_sel else i
+        cpt[m] = pt[f]
+        ceta[m] = eta[f]
+        cphi[m] = phi[f]
+        cmass[m] = mass[f]
+        remap[i - o0] = m
+        m += used[i]
+    last = max(m - 1, 0)
+    for r in range(o1 - o0 - 1, -1, -1):  # trailing unused objects point past the end
+        if remap[r] < m:
+            break
+        remap[r] = last
+    return m
 
 
 @numba.njit(cache=True, nogil=True)
@@ -755,14 +783,13 @@ def _block_columns(coll: _Collection, sel: np.ndarray | None, used: np.ndarray, 
     Returns ``(cartesian, remap)`` with ``remap[i - o0]`` the row of object ``i`` (unused
     objects get a valid but meaningless row: they only meet failing pairs).
     """
-    u = used[o0:o1]
-    idx = np.flatnonzero(u)
-    flat = idx + o0 if sel is None else sel[o0:o1][idx]
-    cols = [coll.get(f)[flat] for f in _KINEMATIC_FIELDS]
-    remap = np.cumsum(u, dtype=np.int64)
-    remap -= 1
-    np.maximum(remap, 0, out=remap)
-    return kinematics.to_cartesian(*cols), remap
+    cols = [coll.get(f) for f in _KINEMATIC_FIELDS]
+    n = o1 - o0
+    out = [np.empty(n + 1) for _ in range(4)]
+    remap = np.empty(n, dtype=np.int64)
+    m = _compress_block(used, o0, o1, _NO_INDEX if sel is None else sel, sel is not None,
+                        *cols, remap, *out)
+    return kinematics.to_cartesian(*(c[:m] for c in out)), remap
 
 
 def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
