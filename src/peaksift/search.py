@@ -677,9 +677,9 @@ def run_spectrum(
 
 
 def _short_title(cfg: Config) -> str:
-    a = cfg.objects.collection
-    b = cfg.objects.second_collection or a
-    return f"{a}-{b} pairs, charge {cfg.pairing.charge}"
+    a, b = cfg.objects.collection, cfg.objects.second_collection
+    ch = {"opposite": "opposite-charge ", "same": "same-charge "}.get(cfg.pairing.charge, "")
+    return f"{ch}{a}-{b} pairs" if b and b != a else f"{ch}{a} pairs"
 
 
 # --------------------------------------------------------------------------------- fit
