@@ -35,6 +35,7 @@ _EXPORTS: dict[str, str] = {
     "describe": "peaksift.events",
     "pair": "peaksift.pairing",
     "Candidates": "peaksift.pairing",
+    "compile_cut": "peaksift.cuts",
     "MassHistogram": "peaksift.histogram",
     "fit": "peaksift.fitting",
     "FitResult": "peaksift.fitting",
