@@ -150,6 +150,12 @@ def test_map_tasks_processes_same_results_in_order():
         np.testing.assert_array_equal(a, b)
 
 
+def test_map_tasks_processes_many_small_tasks():
+    # Thousands of tasks: the pool's per-task bookkeeping must not fill any pipe and stall.
+    got = execution.map_tasks(abs, range(-3000, 0), engine="processes", workers=2)
+    assert got == list(range(3000, 0, -1))
+
+
 def test_map_tasks_dask_same_results_in_order(dask_address):
     got = execution.map_tasks(seeded_draw, SPECS, engine="dask", address=dask_address)
     for a, b in zip(got, _reference()):

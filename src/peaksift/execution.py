@@ -11,7 +11,7 @@ What is here, and which piece to use when
   a :class:`Collected` (spectrum, candidate masses inside the fit window, cut flow, files
   read and skipped, events read).  This is what :func:`peaksift.run_search` calls.
 * :func:`map_tasks` -- map any picklable function over a list of task descriptions with the
-  same engines, results in task order (the toy batches of the statistics layer use it).
+  same engines, results in task order (so toy batches can run on the same engines).
 
 Engines
 -------
@@ -381,13 +381,15 @@ def _regular_index(edges: np.ndarray, values: np.ndarray) -> np.ndarray:
     np.clip(t, -1.0, float(n), out=t)
     k = np.floor(t, out=t).astype(np.intp)  # -1: underflow, n: overflow, else the bin
     k += 1  # now the searchsorted index, 0 .. n + 1
-    for _ in range(4):  # rounding moves a guess by at most one bin; loop to be sure
+    for _ in range(3):  # rounding moves a guess by at most one bin
         down = values < ext[k]
         up = values >= ext[k + 1]
         if not (down.any() or up.any()):
-            break
+            return k
         k -= down
         k += up
+    wrong = (values < ext[k]) | (values >= ext[k + 1])  # never seen; exact either way
+    k[wrong] = np.searchsorted(edges, values[wrong], side="right")
     return k
 
 
@@ -591,16 +593,22 @@ def _exit_text(code: int | None) -> str:
     return f"exit code {code}"
 
 
-def _culprit(procs: dict[int, Any], track: Any, unfinished: set[int]) -> tuple[int, str] | None:
-    """The task whose worker died first: it started last on a process that did not exit
-    by the pool's own SIGTERM."""
-    last: dict[int, int] = {}
+def _drain(track: Any, started: dict[int, int]) -> None:
+    """Read the (pid, task) start records; done after every result, so the pipe never
+    fills (a worker blocked on a full pipe would stall the pool)."""
     with contextlib.suppress(OSError, EOFError):
         while not track.empty():
             pid, index = track.get()
-            last[pid] = index
+            started[pid] = index
+
+
+def _culprit(procs: dict[int, Any], track: Any, started: dict[int, int],
+             unfinished: set[int]) -> tuple[int, str] | None:
+    """The task whose worker died first: it started last on a process that did not exit
+    by the pool's own SIGTERM."""
+    _drain(track, started)
     found = []
-    for pid, index in last.items():
+    for pid, index in started.items():
         proc = procs.get(pid)
         if proc is None or index not in unfinished:
             continue
@@ -635,6 +643,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
                                initargs=(track,))
     pending: dict[int, Any] = {}
     procs: dict[int, Any] = {}
+    started: dict[int, int] = {}
     clean = False
     try:
         nxt = 0
@@ -647,17 +656,19 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
             try:
                 value = fut.result()
             except PeaksiftError as exc:
+                _drain(track, started)
                 yield i, False, exc
                 continue
             except BrokenProcessPool:
                 unfinished = {i, *pending}
-                found = _culprit(procs, track, unfinished)
+                found = _culprit(procs, track, started, unfinished)
                 j, detail = found if found else (i, "the process was terminated abruptly")
                 raise _dead_worker_error(
                     "worker process", j, n, describe, sorted(unfinished), detail,
                     "it was killed or crashed: lower chunk_events or workers, or run "
                     "engine='serial' to see the underlying error",
                 ) from None
+            _drain(track, started)
             yield i, True, value
         clean = True
     finally:
