@@ -410,7 +410,7 @@ def _parse(expression: str) -> tuple[str, str, _Node, tuple[str, ...]]:
         raise AssertionError("unreachable")  # pragma: no cover
 
     try:
-        root = conv(tree.body, 0)
+        top = conv(tree.body, 0)
     except RecursionError:
         raise _cut_error(expression, shift, "the expression is nested too deeply") from None
     except _BoolNeeded as exc:
@@ -419,13 +419,13 @@ def _parse(expression: str) -> tuple[str, str, _Node, tuple[str, ...]]:
             f"the operand of '{exc.op}' is a number, not a condition; "
             "compare it, e.g. 'pt > 25 and abs(eta) < 2.4'",
         ) from None
-    if _static_kind(root) == "num":
+    if _static_kind(top) == "num":
         raise _cut_error(
-            expression, root[1],
+            expression, top[1],
             "the expression gives a number, not a true/false condition; "
             "add a comparison such as 'pt > 25'",
         )
-    return expression, clean, root, tuple(names)
+    return expression, clean, top, tuple(names)
 
 
 def _find_op(line: str, node: ast.BinOp, sym: str) -> int | None:
