@@ -5,6 +5,7 @@ One small LocalCluster (two single-threaded workers, no dashboard) serves the wh
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import logging
 import os
@@ -318,6 +319,16 @@ def test_file_failing_mid_run_is_named_or_skipped_whole(dataset, tmp_path):
         assert "run_2b.parquet" in got.files_skipped[0].reason
         # its first two (readable) chunks were discarded too: the file counts not at all
         _assert_same(got, expected)
+
+
+def test_empty_file_is_read_with_no_events(dataset, tmp_path):
+    empty = str(_write_events(tmp_path / "empty.parquet", 0, seed=1))
+    got = execution.collect([empty, dataset[0]], SEL)
+    assert got.files_read == (empty, dataset[0]) and got.files_skipped == ()
+    _assert_same(dataclasses.replace(got, files_read=(dataset[0],)),
+                 execution.collect([dataset[0]], SEL))
+    alone = execution.collect([empty], SEL)
+    assert (alone.events_read, alone.candidates, alone.window_mass.size) == (0, 0, 0)
 
 
 def test_every_file_bad_is_an_error(tmp_path):

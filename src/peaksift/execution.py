@@ -1019,12 +1019,6 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         _check_picklable(selection, "the selection")
     t0 = time.perf_counter()
     specs, skipped, files = _plan(source, int(chunk_events), skip_bad_files)
-    if not specs:
-        reasons = "; ".join(f"{s.path}: {s.reason}" for s in skipped[:3])
-        raise ExecutionError(
-            f"every input file was skipped as unreadable ({len(skipped)} of {len(files)}): "
-            f"{reasons}"
-        )
     n = len(specs)
     last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
                     for i in range(n)]
@@ -1056,9 +1050,17 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         if run is not None:
             run.close()  # stop the workers now, not when the traceback is freed
         bar.close()
-    if not reducer.files:
+    if skipped and len(skipped) == len(files):
         reasons = "; ".join(f"{s.path}: {s.reason}" for s in skipped[:3])
-        raise ExecutionError(f"every input file was skipped as unreadable: {reasons}")
+        raise ExecutionError(
+            f"every input file was skipped as unreadable ({len(skipped)} of {len(files)}): "
+            f"{reasons}"
+        )
+    # files read: those whose chunks all went in, and those with no events (no chunks)
+    done = set(reducer.files)
+    planned = {_spec_file(s) for s in specs}
+    gone = {s.path for s in skipped}
+    files_read = tuple(f for f in files if f in done or (f not in planned and f not in gone))
     if reducer.n_warn:
         first = next(iter(reducer.warn))
         warnings.warn(
@@ -1080,7 +1082,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         pt_histogram=reducer.pt,
         rapidity_histogram=reducer.rap,
         cutflow=reducer.cutflow,
-        files_read=tuple(reducer.files),
+        files_read=files_read,
         files_skipped=tuple(skipped),
         events_read=reducer.events,
         candidates=reducer.candidates,
