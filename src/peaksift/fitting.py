@@ -863,6 +863,8 @@ def _coarse(edges: np.ndarray, n: np.ndarray, n2: np.ndarray, most: int):
 
 def _scale(n: np.ndarray, n2: np.ndarray) -> np.ndarray:
     """Scaled-Poisson factor sum(w)/sum(w^2) per bin (1 for unweighted bins)."""
+    if np.array_equal(n, n2):
+        return np.ones_like(n)
     glob = n.sum() / n2.sum() if n2.sum() > 0 else 1.0
     with np.errstate(invalid="ignore", divide="ignore"):
         s = np.where(n2 > 0, n / np.where(n2 > 0, n2, 1.0), glob)
@@ -906,17 +908,21 @@ def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
     inverse information) with convergence when EDM = g^T I^-1 g / 2 < 1e-7."""
     x = np.clip(np.asarray(x0, float), lower, upper)
     lam = 1e-3
+    stalled = 0
     f, g, info = cost.value_grad_info(x)
     for _ in range(max_iter):
         try:
-            inv = np.linalg.inv(info)
+            newton = np.linalg.solve(info, g)
         except np.linalg.LinAlgError:
             return x, f, False, None
-        edm = 0.5 * float(g @ inv @ g)
+        edm = 0.5 * float(g @ newton)
         if not np.isfinite(edm):
             return x, f, False, None
         if edm < 1e-7:
-            return x, f, True, inv
+            try:
+                return x, f, True, np.linalg.inv(info)
+            except np.linalg.LinAlgError:
+                return x, f, False, None
         for _ in range(12):
             a = info + lam * np.diag(np.diag(info))
             try:
@@ -926,11 +932,14 @@ def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
             xn = np.clip(x + step, lower, upper)
             fn, gn, infon = cost.value_grad_info(xn)
             if np.isfinite(fn) and fn <= f + 1e-12 * abs(f):
+                stalled = stalled + 1 if f - fn < 1e-10 * max(1.0, abs(f)) else 0
                 x, f, g, info = xn, fn, gn, infon
                 lam = max(lam / 10.0, 1e-9)
                 break
             lam *= 10.0
         else:
+            return x, f, False, None
+        if stalled >= 3:  # no progress (e.g. pressing on a bound): let MIGRAD decide
             return x, f, False, None
     return x, f, False, None
 
@@ -1273,7 +1282,7 @@ def _polish(cost: _Cost, mo: _MinOut, lower: np.ndarray, upper: np.ndarray):
     Returns (x, nll, covariance, positive_definite).
     """
     x0 = np.asarray(mo.x, float)
-    f0 = cost(*x0)
+    f0 = mo.fval
     n = x0.size
     errs = np.asarray(mo.errors, float)
     h = np.where(np.isfinite(errs) & (errs > 0), 1e-3 * errs, 1e-6 * np.maximum(np.abs(x0), 1.0))

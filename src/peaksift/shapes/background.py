@@ -123,7 +123,7 @@ class ExpPoly(_Background):
         gx = e * (t * ib - ib2) + g0
         ghi = ep * (ib - ib2) + g0
         grad = (gx - c * ghi) * inv_z
-        return np.diff(c), np.diff(grad)[None, :]
+        return c[1:] - c[:-1], (grad[1:] - grad[:-1])[None, :]
 
     def pdf_and_grad(self, x, params, window):
         if self.order != 1:

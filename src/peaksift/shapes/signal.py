@@ -143,7 +143,10 @@ class Gaussian(_Signal):
         # dP/dm = -f, dP/ds = -f z at x, lo and hi
         dm = (fl - f) * inv - c * ((fl - fh) * inv)
         ds = (fl * zl - f * z) * inv - c * ((fl * zl - fh * zh) * inv)
-        return np.diff(c), np.array([np.diff(dm), np.diff(ds)])
+        out = np.empty((2, x.size - 1))
+        np.subtract(dm[1:], dm[:-1], out=out[0])
+        np.subtract(ds[1:], ds[:-1], out=out[1])
+        return c[1:] - c[:-1], out
 
     def pdf_and_grad(self, x, params, window):
         m, s = float(params[0]), float(params[1])
