@@ -1043,7 +1043,8 @@ def fit(
         ``name -> (mean, sigma)`` Gaussian constraints, adding
         ``0.5 ((value - mean)/sigma)^2`` to the negative log-likelihood.
     minos : bool or list of names
-        Run MINOS for all free (True) or the named parameters.
+        Run MINOS for all free (True) or the named parameters (valid fits only; ``minos``
+        stays None for an invalid fit).
     retries : int
         Further starting points tried when a fit is not valid.
 
