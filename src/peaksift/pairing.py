@@ -44,9 +44,12 @@ its rapidity :func:`peaksift.kinematics.rapidity` and its pT
 :math:`\\sqrt{p_x^2 + p_y^2}` of the summed momentum (PDG Review, "Kinematics").
 
 Implementation: all work is on flat numpy columns (collection offsets + contents).  The
-pair loops run in small numba kernels (compiled once, cached on disk): numpy alone needs
-several full-size index arrays per pair (repeat/cumsum index tricks, gathers, masks) and
-could not reach the speed target set for this layer (see ``scripts/bench_pairing.py``).
+pair loops run in small numba kernels (compiled once, cached on disk).  Numba was chosen
+because pairing inside variable-length events is naturally a loop: in numpy every step
+(pair index generation with repeat/cumsum tricks, the charge mask, gathers of both objects'
+components, the sums) is a separate full-size array, while a kernel counts, tests charges
+and adds the four-vectors in one pass.  ``scripts/bench_pairing.py`` measures the result
+against a hand-written vector + awkward selection.
 """
 
 from __future__ import annotations
@@ -70,8 +73,8 @@ CHOOSE_RULES = ("all", "leading", "max_sum_pt", "closest")
 _CHARGE = {None: 0, "any": 0, "opposite": -1, "same": 1}
 _CUTFLOW_KEYS = ("events_in", "events_after_event_cut", "events_with_pair", "candidates")
 _KINEMATIC_FIELDS = ("pt", "eta", "phi", "mass")
-_BLOCK = 1 << 18
-_NO_INDEX = np.zeros(1, dtype=np.int64)  # objects (and pairs) per block of events in the choose='all' path
+_BLOCK = 1 << 18  # objects (and pairs) per block of events in the choose='all' path
+_NO_INDEX = np.zeros(1, dtype=np.int64)
 
 
 # ------------------------------------------------------------------------ result
@@ -824,6 +827,7 @@ def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
     empty = np.zeros(1, dtype=np.int64)
     no_w = np.zeros(1)
     buf = np.empty((4, 0))
+    n_nan = 0
     for e0, e1 in zip(bounds[:-1].tolist(), bounds[1:].tolist()):
         p0, p1 = int(starts[e0]), int(starts[e1])
         if p1 == p0:
@@ -845,10 +849,10 @@ def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
                     no_w if w is None else w, w is not None,
                     bpx, bpy, bpz, be, pt, pe, fi, si, mult, weight)
         m = p1 - p0
-        mass[p0:p1] = kinematics.invariant_mass(be[:m], bpx[:m], bpy[:m], bpz[:m],
-                                                warn=False)
+        bm = kinematics.invariant_mass(be[:m], bpx[:m], bpy[:m], bpz[:m], warn=False)
+        n_nan += int(np.count_nonzero(np.isnan(bm)))
+        mass[p0:p1] = bm
         rap[p0:p1] = kinematics.rapidity(be[:m], bpz[:m])
-    n_nan = int(np.count_nonzero(np.isnan(mass[:total])))
     if n_nan:  # one warning for all blocks, as invariant_mass gives for one call
         warnings.warn(
             f"pair: {n_nan} of {total} pair four-vectors have E^2 - p^2 below -1e-12 E^2 "
