@@ -433,3 +433,22 @@ def test_no_events_and_no_pairs():
     assert len(c) == 0 and c.cutflow == {"events_in": 5, "events_after_event_cut": 5,
                                          "events_with_pair": 0, "candidates": 0}
     assert len(Candidates.concatenate([])) == 0
+
+
+@pytest.mark.parametrize("second", [None, "electron"])
+def test_results_do_not_depend_on_the_block_size(random_rows, monkeypatch, second):
+    """choose='all' works in blocks of events; tiny blocks give the same columns."""
+    from peaksift import pairing
+
+    rows_a, rows_b = random_rows
+    ev = _events(weight=np.linspace(1, 2, len(rows_a)), muon=_collection(rows_a),
+                 electron=_collection(rows_b))
+    kw = {"charge": "opposite", "cut": "pt > 7"}
+    if second:
+        kw["second_cut"] = "pt > 9"
+    ref = pair(ev, "muon", second, **kw)
+    monkeypatch.setattr(pairing, "_BLOCK", 7)
+    small = pair(ev, "muon", second, **kw)
+    for col in Candidates._COLUMNS + ("multiplicity",):
+        np.testing.assert_array_equal(getattr(small, col), getattr(ref, col), err_msg=col)
+    assert small.cutflow == ref.cutflow
