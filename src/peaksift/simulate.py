@@ -133,8 +133,8 @@ class Scenario:
     muon_res_a: float = 0.010          # sigma_pT/pT constant term at eta = 0
     muon_res_a_eta: float = 0.5        # ... times (1 + this * (|eta| / eta_max)^2)
     muon_res_b: float = 1.5e-4         # per GeV
-    electron_eta_max: float = 2.47
-    electron_gap: tuple[float, float] = (1.37, 1.52)
+    electron_eta_max: float = 2.5
+    electron_gap: tuple[float, float] = (1.30, 1.45)
     electron_pt_min: float = 7.0
     electron_efficiency: float = 0.92
     electron_res_stochastic: float = 0.10   # GeV^0.5
