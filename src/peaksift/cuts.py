@@ -259,8 +259,9 @@ def _cut_error(expression: str, pos: int, what: str) -> CutError:
     exc = CutError(f"cut {shown!r}: {at}: {what}")
     exc.expression = expression  # type: ignore[attr-defined]
     exc.position = pos  # type: ignore[attr-defined]
-    if len(expression) <= 200 and "\n" not in expression:
-        exc.add_note(f"    {expression}\n    {' ' * pos}^")
+    if len(expression) <= 200 and hasattr(exc, "add_note"):  # Python >= 3.11
+        flat = expression.translate({ord(c): " " for c in "\n\r\t\f\v"})
+        exc.add_note(f"    {flat}\n    {' ' * pos}^")
     return exc
 
 
