@@ -969,23 +969,24 @@ def _minimize(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarr
 
 
 def _background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
-                      mask: np.ndarray | None, bstart: np.ndarray) -> np.ndarray:
-    """Background-only binned fit (on ``mask`` bins) -> full parameter vector."""
+                      mask: np.ndarray | None, bstart: np.ndarray, is_fixed: np.ndarray,
+                      lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
+    """Background-only binned fit (on ``mask`` bins; fixed background parameters stay
+    fixed) -> full parameter vector."""
     v = bstart.copy()
-    sig_idx = [i for s, sl, iy in model._blocks[:-1] for i in [*range(sl.start, sl.stop), iy]]
     for _, _, iy in model._blocks[:-1]:
         v[iy] = 0.0
-    biy = model._blocks[-1][2]
-    free = np.array([i for i in range(v.size) if i not in sig_idx])
+    _, bsl, biy = model._blocks[-1]
+    free = np.array([i for i in [*range(bsl.start, bsl.stop), biy] if not is_fixed[i]], int)
+    if free.size == 0:
+        return v
     m = mask if mask is not None else np.ones(n.size, bool)
-    frac_inside = 1.0
-    v[biy] = max(float(n[m].sum()) / max(frac_inside, 1e-9), 1.0)
+    if not is_fixed[biy]:
+        v[biy] = max(float(n[m].sum()), 1.0)
     cost = _BinnedCost(model, v, free, [], edges, n, scale, mask)
-    pars = model.parameters
-    lower = np.array([pars[i].lower for i in free], float)
-    upper = np.array([pars[i].upper for i in free], float)
-    upper[free == biy] = 10.0 * max(n.sum(), 1.0) + 10.0
-    mo = _minimize(cost, v[free], lower, upper, [model.parameter_names[i] for i in free])
+    lo, hi = lower[free].copy(), upper[free].copy()
+    mo = _minimize(cost, np.clip(v[free], lo, hi), lo, hi,
+                   [model.parameter_names[i] for i in free])
     out = v.copy()
     out[free] = mo.x
     return out
@@ -1128,9 +1129,11 @@ def fit(
     for i, p in enumerate(pars):
         if not math.isfinite(base[i]) and i not in yields:
             base[i] = 0.5 * (lower[i] + upper[i])
-    for k, v in {**start, **fixed}.items():
+    for k, v in start.items():
         base[names.index(k)] = float(v)
     base = np.clip(base, lower, upper)
+    for k, v in fixed.items():  # fixed values are used as given, even outside the bounds
+        base[names.index(k)] = float(v)
     for iy in yields[:-1]:
         if not math.isfinite(base[iy]):
             base[iy] = 0.0
@@ -1353,7 +1356,8 @@ def _auto_starts(model, edges, n, scale, base, is_fixed, start, fixed, lower, up
     bkg_given = all(k in start or k in fixed for k in names[model._blocks[-1][1]])
     v = base.copy()
     try:
-        vb = v if bkg_given else _background_start(model, edges, n, scale, None, v)
+        vb = v if bkg_given else _background_start(model, edges, n, scale, None, v,
+                                                   is_fixed, lower, upper)
     except Exception:  # noqa: BLE001 - a failed helper fit only costs a worse start
         vb = v
     c = 0.5 * (edges[1:] + edges[:-1])
@@ -1393,7 +1397,8 @@ def _auto_starts(model, edges, n, scale, base, is_fixed, start, fixed, lower, up
             mask = np.abs(c - s[i_m]) > hw
             if not bkg_given and mask.sum() > len(names) and (~mask).sum() > 0:
                 try:
-                    sb = _background_start(model, edges, n, scale, mask, s)
+                    sb = _background_start(model, edges, n, scale, mask, s, is_fixed,
+                                           lower, upper)
                     frac = model._blocks[-1][0].bin_fractions(
                         edges, list(sb[model._blocks[-1][1]]), model.window)
                     inside = float(frac[mask].sum())
@@ -1416,8 +1421,11 @@ def _auto_starts(model, edges, n, scale, base, is_fixed, start, fixed, lower, up
             for shape2, sl2, iy2 in model._blocks[1:-1]:
                 if names[iy2] not in start and names[iy2] not in fixed:
                     s[iy2] = np.clip(max(0.01 * total, 1.0), lower[iy2], upper[iy2])
-            yield np.clip(s, lower, upper)
+            s = np.clip(s, lower, upper)
+            for k, kv in fixed.items():
+                s[names.index(k)] = float(kv)
+            yield s
     else:
-        yield np.clip(vb, lower, upper)
+        yield np.where(is_fixed, base, np.clip(vb, lower, upper))
         if retries > 0:
-            yield np.clip(base, lower, upper)
+            yield np.where(is_fixed, base, np.clip(base, lower, upper))
