@@ -23,6 +23,12 @@ Likelihoods
 * unbinned (an array of masses): :math:`-\\ln L = \\sum_k \\nu_k - \\sum_j w_j \\ln
   \\sum_k \\nu_k f_k(x_j)`.
 
+Minimisation and errors
+-----------------------
+Damped Fisher scoring with the analytic gradient (a few evaluations from the automatic
+starts), MIGRAD as the fallback; errors from the observed Hessian at the minimum (what HESSE
+computes), see DEVELOPERS.md "Shapes and fits in detail".
+
 Weighted data
 -------------
 * binned: each bin is treated as a scaled Poisson variable, :math:`\\tilde n_i = n_i s_i`,
@@ -698,9 +704,10 @@ class FitResult:
             a1.plot(xs, total * ref_bw, color=COLORS["total"], label="signal + background")
             a1.plot(xs, comps["background"] * ref_bw, color=COLORS["background"], ls="--",
                     label="background")
+            styles = iter(["-", "-.", ":", (0, (5, 1, 1, 1))] * 4)
             for k, v in comps.items():
                 if k.startswith("signal"):
-                    a1.plot(xs, v * ref_bw, color=COLORS["signal"], lw=1.2,
+                    a1.plot(xs, v * ref_bw, color=COLORS["signal"], lw=1.2, ls=next(styles),
                             label=k.replace("_", " "))
             a1.set_ylabel(f"events / {ref_bw:.3g} {self.unit}")
             top = max(float(np.max((n + hi_err) * scale_n)), float(np.max(total * ref_bw)))
