@@ -219,32 +219,74 @@ def _background_start(background: Any, window: tuple[float, float]) -> tuple[np.
     return start, lower, upper
 
 
+def _start_grid(start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                product: bool = True) -> np.ndarray:
+    """Starting points for the data's background fit: the default start and, per parameter,
+    points across its bounded range (10%, 50%, 90%) or start +- max(1, |start|) when
+    unbounded; all combinations for up to 3 parameters (``product``), else one parameter at
+    a time."""
+    options = []
+    for k, s0 in enumerate(start):
+        lo, hi = lower[k], upper[k]
+        if np.isfinite(lo) and np.isfinite(hi):
+            vals = [s0, lo + 0.1 * (hi - lo), lo + 0.5 * (hi - lo), lo + 0.9 * (hi - lo)]
+        else:
+            d = max(1.0, abs(s0))
+            vals = [s0, s0 - d, s0 + d]
+        options.append(np.clip(vals, lo, hi))
+    if product and start.size <= 3:
+        grid = np.array(np.meshgrid(*options, indexing="ij")).reshape(start.size, -1).T
+    else:
+        rows = [start]
+        for k, vals in enumerate(options):
+            for v in vals[1:]:
+                r = start.copy()
+                r[k] = v
+                rows.append(r)
+        grid = np.array(rows)
+    return np.unique(grid, axis=0)
+
+
 def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
                          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Background-only fit of the data, robust to poor starting values.
 
-    Bounded quasi-Newton (scipy L-BFGS-B) on the NLL with the yield profiled in closed form,
-    polished by the Fisher-scoring fit used for the toys; the direct Fisher-scoring fit from
-    the start is tried too and the lower minimum kept.
+    All starts of :func:`_start_grid` are fitted together (stacked Levenberg-Marquardt); the
+    two best are refined by bounded quasi-Newton (scipy L-BFGS-B, yield profiled in closed
+    form) and polished again; the lowest minimum is kept.
     """
     from scipy import optimize
 
+    if start.size == 0:
+        return fit_background(proto, counts[None, :], start[None, :])
     ntot = float(counts.sum())
     lower = np.where(np.isfinite(proto.lower), proto.lower, None)
     upper = np.where(np.isfinite(proto.upper), proto.upper, None)
-    candidates = [fit_background(proto, counts[None, :], start[None, :], steps=200)]
-    if start.size:
-        def nll_grad(th: np.ndarray) -> tuple[float, np.ndarray]:
-            th2 = th[None, :]
-            g = bkg_fractions(proto, th2)[0]
-            b = ntot / max(g.sum(), 1e-300)
-            nu = np.maximum(b * g, 1e-300)
-            dg = bkg_gradients(proto, th2)[0]
-            val = float(np.sum(nu - counts * np.log(nu)))
-            return val, (dg * b) @ (1.0 - counts / nu)
+    # numerically integrated shapes cost one integration per start: fewer starts for them
+    grid = _start_grid(start, proto.lower, proto.upper,
+                       product=bool(getattr(proto.background, "_has_primitive", True)))
+    with np.errstate(all="ignore"):
+        th_g, b_g, nll_g = fit_background(proto, np.broadcast_to(counts, (len(grid),
+                                                                         counts.size)),
+                                          grid, steps=60)
+    nll_g = np.where(np.isfinite(nll_g), nll_g, np.inf)
+    order = np.argsort(nll_g)
+    candidates = [(th_g[i:i + 1], b_g[i:i + 1], nll_g[i:i + 1]) for i in order[:1]]
 
+    def nll_grad(th: np.ndarray) -> tuple[float, np.ndarray]:
+        th2 = th[None, :]
+        g = bkg_fractions(proto, th2)[0]
+        b = ntot / max(g.sum(), 1e-300)
+        nu = np.maximum(b * g, 1e-300)
+        dg = bkg_gradients(proto, th2)[0]
+        val = float(np.sum(nu - counts * np.log(nu)))
+        return val, (dg * b) @ (1.0 - counts / nu)
+
+    for i in order[:2]:
+        if not np.isfinite(nll_g[i]):
+            continue
         with np.errstate(all="ignore"):
-            res = optimize.minimize(nll_grad, start, jac=True, method="L-BFGS-B",
+            res = optimize.minimize(nll_grad, th_g[i], jac=True, method="L-BFGS-B",
                                     bounds=list(zip(lower, upper)))
         if np.all(np.isfinite(res.x)):
             candidates.append(fit_background(proto, counts[None, :], res.x[None, :],
