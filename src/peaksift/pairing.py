@@ -485,13 +485,20 @@ class _Collection:
         self.name = name
         self.array = arr
         self.fields = list(arr.fields)
-        try:
-            self.counts = ak.to_numpy(ak.num(arr, axis=1)).astype(np.int64, copy=False)
-        except (ValueError, TypeError) as exc:
-            raise InputError(f"collection {name!r}: cannot read its object counts ({exc}); "
-                             "missing (None) entries are not supported") from None
-        self.offsets = np.zeros(self.counts.size + 1, dtype=np.int64)
-        np.cumsum(self.counts, out=self.offsets[1:])
+        lay = arr.layout
+        if isinstance(lay, ak.contents.ListOffsetArray):
+            # plain layout: the counts are the differences of its offsets (no awkward pass)
+            raw = np.asarray(lay.offsets.data).astype(np.int64, copy=False)
+            self.counts = np.diff(raw)
+            self.offsets = raw - raw[0] if raw[0] else raw
+        else:
+            try:
+                self.counts = ak.to_numpy(ak.num(arr, axis=1)).astype(np.int64, copy=False)
+            except (ValueError, TypeError) as exc:
+                raise InputError(f"collection {name!r}: cannot read its object counts ({exc}); "
+                                 "missing (None) entries are not supported") from None
+            self.offsets = np.zeros(self.counts.size + 1, dtype=np.int64)
+            np.cumsum(self.counts, out=self.offsets[1:])
         self.n_objects = int(self.offsets[-1])
         self._cache: dict[str, np.ndarray] = {}
 
