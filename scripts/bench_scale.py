@@ -87,6 +87,7 @@ def _child(args: argparse.Namespace) -> None:
         "engine": args.child, "seconds": seconds, "events": col.events_read,
         "candidates": col.candidates, "window": int(col.window_mass.size),
         "chunks": col.engine_info["chunks"], "digest": _digest(col),
+        "busy": col.engine_info["chunk_seconds"] / (seconds * col.engine_info["workers"]),
     }))
 
 
@@ -220,7 +221,8 @@ def main(argv: list[str] | None = None) -> int:
         for engine in engines:
             r = full[engine] = _measure(engine, args)
             print(f"  {engine:<10} {r['events'] / r['seconds']:>12,.0f} events/s  "
-                  f"({r['seconds']:.2f} s, {r['chunks']} chunks)  peak RSS "
+                  f"({r['seconds']:.2f} s, {r['chunks']} chunks, workers busy "
+                  f"{100 * r['busy']:.0f}%)  peak RSS "
                   f"{r['peak_rss'] / GIB:.2f} GiB  digest {r['digest']}", flush=True)
             if n_small:
                 q = small[engine] = _measure(engine, args, n_small)

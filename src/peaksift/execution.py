@@ -309,7 +309,8 @@ class Collected:
         (``{"muon": {"NaN or infinite kinematics": 3}}``), summed over the files read.
     engine_info : dict
         ``engine``, ``workers``, ``address``, ``chunks``, ``chunk_events``, ``seconds``,
-        ``events_per_second``.
+        ``events_per_second`` and ``chunk_seconds`` (time spent inside the chunks, summed
+        over workers: ``chunk_seconds / (seconds * workers)`` is how busy the workers were).
     """
 
     histogram: MassHistogram
@@ -909,6 +910,7 @@ class _Reducer:
         self.warn: dict[str, None] = {}
         self.n_warn = 0
         self.dropped: dict[str, dict[str, int]] = {}
+        self.busy = 0.0
         self._file: list[ChunkOutput] = []
 
     def add(self, out: ChunkOutput, last_of_file: bool) -> None:
@@ -931,6 +933,7 @@ class _Reducer:
                 self.cutflow[k] = self.cutflow.get(k, 0) + int(v)
             self.events += out.events
             self.candidates += out.candidates
+            self.busy += out.seconds
             if out.data_warnings:
                 self.n_warn += 1
                 for m in out.data_warnings:
@@ -1069,7 +1072,8 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         )
     seconds = time.perf_counter() - t0
     info.update(chunks=n, chunk_events=int(chunk_events), seconds=round(seconds, 3),
-                events_per_second=(reducer.events / seconds if seconds > 0 else math.inf))
+                events_per_second=(reducer.events / seconds if seconds > 0 else math.inf),
+                chunk_seconds=round(reducer.busy, 3))
     masses = np.concatenate(reducer.masses) if reducer.masses else np.zeros(0)
     weights = np.concatenate(reducer.weights) if reducer.weights else np.zeros(0)
     order = {f: k for k, f in enumerate(files)}
