@@ -286,8 +286,10 @@ class _BinnedCost(_Cost):
         window = self.model.window
         mu = None
         for shape, sl, iy, need, rows, ry in self._plan:
-            p = [float(q) for q in v[sl]]
             y = float(v[iy])
+            if ry < 0 and y == 0.0:  # a component fixed at zero yield contributes nothing
+                continue
+            p = [float(q) for q in v[sl]]
             if need:
                 f, g = shape.fractions_and_grad(self.edges, p, window)
                 if self.mask is not None:
@@ -910,40 +912,38 @@ def _new_minuit(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.nda
 
 def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
                     upper: np.ndarray, max_iter: int = 60):
-    """Damped Fisher scoring (Levenberg-Marquardt on the expected information
-    sum_i s_i/mu_i dmu_i dmu_i^T) for the binned Poisson NLL.  Returns (x, f, converged,
-    inverse information) with convergence when EDM = g^T I^-1 g / 2 < 1e-7."""
+    """Damped Fisher scoring (Levenberg-Marquardt on the information matrix I returned by
+    ``cost.value_grad_info``).  Returns (x, f, converged, I^-1); converged when
+    EDM = g^T I^-1 g / 2 < 1e-7 (the EDM is read off the undamped Newton step)."""
     x = np.clip(np.asarray(x0, float), lower, upper)
-    lam = 1e-3
+    lam = 0.0  # undamped first: from good starts Newton steps are accepted
     stalled = 0
     f, g, info = cost.value_grad_info(x)
+    solve = np.linalg.solve
     for _ in range(max_iter):
-        try:
-            newton = np.linalg.solve(info, g)
-        except np.linalg.LinAlgError:
-            return x, f, False, None
-        edm = 0.5 * float(g @ newton)
-        if not np.isfinite(edm):
-            return x, f, False, None
-        if edm < 1e-7:
+        for _ in range(14):
+            a = info if lam == 0.0 else info + lam * np.diag(info.diagonal())
             try:
-                return x, f, True, np.linalg.inv(info)
+                step = -solve(a, g)
             except np.linalg.LinAlgError:
                 return x, f, False, None
-        for _ in range(12):
-            a = info + lam * np.diag(np.diag(info))
-            try:
-                step = -np.linalg.solve(a, g)
-            except np.linalg.LinAlgError:
-                return x, f, False, None
+            if lam == 0.0:
+                edm = -0.5 * float(g @ step)
+                if not np.isfinite(edm):
+                    return x, f, False, None
+                if edm < 1e-7:
+                    try:
+                        return x, f, True, np.linalg.inv(info)
+                    except np.linalg.LinAlgError:
+                        return x, f, False, None
             xn = np.clip(x + step, lower, upper)
             fn, gn, infon = cost.value_grad_info(xn)
             if np.isfinite(fn) and fn <= f + 1e-12 * abs(f):
                 stalled = stalled + 1 if f - fn < 1e-10 * max(1.0, abs(f)) else 0
                 x, f, g, info = xn, fn, gn, infon
-                lam = max(lam / 10.0, 1e-9)
+                lam = 0.0 if lam <= 1e-3 else lam / 10.0
                 break
-            lam *= 10.0
+            lam = 1e-3 if lam == 0.0 else lam * 10.0
         else:
             return x, f, False, None
         if stalled >= 3:  # no progress (e.g. pressing on a bound): let MIGRAD decide
@@ -1406,17 +1406,23 @@ def _auto_starts(model, edges, n, scale, base, is_fixed, start, fixed, lower, up
                 try:
                     sb = _background_start(model, edges, n, scale, mask, s, is_fixed,
                                            lower, upper)
-                    frac = model._blocks[-1][0].bin_fractions(
-                        edges, list(sb[model._blocks[-1][1]]), model.window)
-                    inside = float(frac[mask].sum())
                     s[model._blocks[-1][1]] = sb[model._blocks[-1][1]]
-                    s[yields[-1]] = float(n[mask].sum()) / max(inside, 1e-6)
+                    s[yields[-1]] = sb[yields[-1]]
                 except Exception:  # noqa: BLE001, S110 - keep the full-window background start
                     pass
             bfr = model._blocks[-1][0].bin_fractions(edges, list(s[model._blocks[-1][1]]),
                                                      model.window) * s[yields[-1]]
+            sel = ~mask
+            resid = np.clip(n[sel] - bfr[sel], 0.0, None)
+            i_sig = sl.start + shape.parameter_names.index("sigma") if (
+                shape.name in ("gaussian", "crystalball")) else None
+            if (i_sig is not None and f == 1.0 and names[i_sig] not in start
+                    and names[i_sig] not in fixed and resid.sum() > 0):
+                # width from the second moment of the excess (truncated at +-3 start widths,
+                # so it errs low; bounded to a factor 2 of the start)
+                d2 = float(resid @ (c[sel] - s[i_m]) ** 2 / resid.sum())
+                s[i_sig] = np.clip(math.sqrt(max(d2, 1e-12)), 0.5 * s[i_sig], 2.0 * s[i_sig])
             if names[iy] not in start and names[iy] not in fixed:
-                sel = ~mask
                 excess = float(np.sum(n[sel] - bfr[sel]))
                 s[iy] = np.clip(max(excess, 0.05 * math.sqrt(max(total, 1.0)) + 1.0),
                                 lower[iy], upper[iy])
