@@ -166,3 +166,10 @@ def test_demo_writes_a_ready_config(capsys, tmp_path):
     assert [Path(f).name for f in cfg.input.files] == truth["files"]
     assert all(Path(f).exists() for f in cfg.input.files)
     assert "peaksift search" in stdout
+
+
+def test_fit_command_prints_the_fit(tiny_data, capsys):
+    cfg = _config(tiny_data)
+    rc, stdout, _ = _run(capsys, ["fit", str(cfg), "--mass", "100", "--quiet"])
+    assert rc == 0
+    assert stdout.startswith("FitResult(") and "signal_yield" in stdout and "GoF" in stdout
