@@ -205,7 +205,7 @@ def _fit_figure(fr: Any, outdir: str | os.PathLike[str], name: str, formats: Seq
             pos = n[n > 0]
             ax.set_yscale("log")
             if pos.size:
-                ax.set_ylim(0.3 * pos.min(), 20.0 * pos.max())
+                ax.set_ylim(0.3 * pos.min(), 6.0 * pos.max())
         else:  # headroom so the fit's numbers and the legend sit above the data
             ax.set_ylim(0.0, 1.45 * ax.get_ylim()[1])
         return save(fig, outdir, name, formats)
