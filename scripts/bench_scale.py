@@ -103,12 +103,26 @@ def _tree_rss(proc) -> int:
     return total
 
 
+def _busy_cpu_seconds() -> float | None:
+    """CPU seconds the whole machine has spent busy since boot (Linux /proc/stat)."""
+    try:
+        fields = Path("/proc/stat").read_text().split("\n", 1)[0].split()[1:]
+    except OSError:
+        return None
+    user, nice, system, _idle, _iowait, irq, softirq, steal = (int(x) for x in fields[:8])
+    return (user + nice + system + irq + softirq + steal) / os.sysconf("SC_CLK_TCK")
+
+
 def _run_engine(engine: str, args: argparse.Namespace, first_files: int = 0) -> dict:
     cmd = [sys.executable, __file__, "--child", engine, "--data", str(args.data),
            "--first-files", str(first_files),
            "--workers", str(args.workers), "--chunk-events", str(args.chunk_events),
            "--first", args.first, "--cut", args.cut, "--choose", args.choose,
            "--lo", str(args.lo), "--hi", str(args.hi), "--bins", str(args.bins)]
+    import resource
+
+    usage0 = resource.getrusage(resource.RUSAGE_CHILDREN)
+    busy0 = _busy_cpu_seconds()
     child = subprocess.Popen(cmd, stdout=subprocess.PIPE, text=True)
     peak = [0]
     stop = threading.Event()
@@ -132,6 +146,8 @@ def _run_engine(engine: str, args: argparse.Namespace, first_files: int = 0) -> 
         sampler = None
         method = "getrusage, largest single process"
     out, _ = child.communicate()
+    busy1 = _busy_cpu_seconds()
+    usage1 = resource.getrusage(resource.RUSAGE_CHILDREN)
     stop.set()
     if sampler is not None:
         sampler.join()
@@ -139,9 +155,12 @@ def _run_engine(engine: str, args: argparse.Namespace, first_files: int = 0) -> 
         raise SystemExit(f"engine {engine} failed with exit code {child.returncode}")
     res = json.loads(out.strip().splitlines()[-1])
     if sampler is None:
-        import resource
-
-        peak[0] = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024
+        peak[0] = usage1.ru_maxrss * 1024
+    # CPU of the run's whole process tree (children are reaped by then), and what the rest
+    # of the machine used meanwhile: a busy machine makes the ratios meaningless
+    ours = (usage1.ru_utime + usage1.ru_stime) - (usage0.ru_utime + usage0.ru_stime)
+    res["cpu"] = ours
+    res["cpu_others"] = None if busy0 is None else max(0.0, (busy1 - busy0) - ours)
     res["peak_rss"] = peak[0]
     res["rss_method"] = method
     return res
@@ -220,13 +239,15 @@ def main(argv: list[str] | None = None) -> int:
               f"{args.chunk_events:,}, files: {len(have)}", flush=True)
         for engine in engines:
             r = full[engine] = _measure(engine, args)
-            print(f"  {engine:<10} {r['events'] / r['seconds']:>12,.0f} events/s  "
+            others = "" if r["cpu_others"] is None else \
+                f", other processes {r['cpu_others']:.1f} CPU s"
+            print(f"  {engine:<12} {r['events'] / r['seconds']:>11,.0f} events/s  "
                   f"({r['seconds']:.2f} s, {r['chunks']} chunks, workers busy "
-                  f"{100 * r['busy']:.0f}%)  peak RSS "
+                  f"{100 * r['busy']:.0f}%; run {r['cpu']:.1f} CPU s{others})  peak RSS "
                   f"{r['peak_rss'] / GIB:.2f} GiB  digest {r['digest']}", flush=True)
             if n_small:
                 q = small[engine] = _measure(engine, args, n_small)
-                print(f"  {'':<10} {q['events']:,} events ({n_small} of {len(have)} files): "
+                print(f"  {'':<12} {q['events']:,} events ({n_small} of {len(have)} files): "
                       f"{q['seconds']:.2f} s", flush=True)
     finally:
         if tmp is not None:
@@ -260,7 +281,7 @@ def main(argv: list[str] | None = None) -> int:
             if de > 0 and dt > 0:
                 marg[engine] = de / dt
                 fixed = small[engine]["seconds"] - small[engine]["events"] / marg[engine]
-                print(f"  {engine:<10} {marg[engine]:>12,.0f} events/s once running, start-up "
+                print(f"  {engine:<12} {marg[engine]:>11,.0f} events/s once running, start-up "
                       f"~{fixed:.2f} s")
         if "serial" in marg:
             for engine in TARGETS:
