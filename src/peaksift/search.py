@@ -131,8 +131,7 @@ class SearchResult:
                 "files_skipped": [s.to_dict() for s in col.files_skipped],
                 "events_read": int(col.events_read),
                 "events_selected": _events_selected(cutflow),
-                "candidates": int(self.histogram.total()) if not self.histogram.is_weighted
-                else int(col.window_candidates),
+                "candidates": _in_window(col, self.config),
                 "candidates_all_masses": int(col.candidates),
                 "sum_of_weights": float(self.histogram.total()),
                 "cutflow": cutflow,
@@ -172,6 +171,13 @@ def _fit_dict(fr: Any) -> dict[str, Any]:
     d = _plain(fr.to_dict())
     keep = ("valid", "peak_mass", "width", "signal_yield", "background_yield", "gof")
     return {**{k: d.get(k) for k in keep}, **{k: v for k, v in d.items() if k not in keep}}
+
+
+def _in_window(col: Any, cfg: Config) -> int:
+    """Candidates (not weights) with a mass inside the fit window."""
+    lo, hi = cfg.spectrum.window
+    m = np.asarray(col.window_mass, dtype=float)
+    return int(np.count_nonzero((m >= lo) & (m < hi)))
 
 
 def _blinded_fit() -> dict[str, Any]:
