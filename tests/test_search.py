@@ -90,6 +90,15 @@ def test_results_json_has_every_key_with_sane_types(run):
     assert pv["started"] <= pv["finished"] and pv["finished"].endswith("Z")
 
 
+def test_candidate_count_matches_the_spectrum_file(run):
+    from peaksift.histogram import MassHistogram
+
+    h = MassHistogram.load(run["out"] / "spectrum.json")
+    assert not h.is_weighted
+    assert run["results"]["input"]["candidates"] == int(h.total())
+    assert (h.lo, h.hi, h.nbins) == (110.0, 200.0, 90)
+
+
 def test_provenance_hashes_match_the_files(run):
     pv = run["results"]["provenance"]
     for f in pv["inputs"]:
