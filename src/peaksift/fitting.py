@@ -285,11 +285,13 @@ class _BinnedCost(_Cost):
         jac = self._jac
         window = self.model.window
         mu = None
+        blocks = []
         for shape, sl, iy, need, rows, ry in self._plan:
             y = float(v[iy])
             if ry < 0 and y == 0.0:  # a component fixed at zero yield contributes nothing
                 continue
             p = [float(q) for q in v[sl]]
+            g = None
             if need:
                 f, g = shape.fractions_and_grad(self.edges, p, window)
                 if self.mask is not None:
@@ -304,6 +306,9 @@ class _BinnedCost(_Cost):
             if ry >= 0:
                 jac[ry] = f
             mu = y * f if mu is None else mu + y * f
+            blocks.append((shape, p, y, g, rows, ry))
+        # what observed_hessian / the goodness of fit can reuse at this point
+        self._state = (np.asarray(x, float).tobytes(), mu, blocks)
         if mu.min() <= 0.0:
             mu = np.maximum(mu, 1e-300 + 1e-12 * float(np.abs(mu).mean()))
         n = self.n
@@ -333,10 +338,16 @@ class _BinnedCost(_Cost):
         v[self.free] = x
         window = self.model.window
         nfree = self.free.size
-        jac = np.zeros((nfree, self.n.size))
-        blocks = []
-        mu = None
-        for shape, sl, iy, need, rows, ry in self._plan:
+        state = getattr(self, "_state", None)
+        if state is not None and state[0] == np.asarray(x, float).tobytes():
+            mu, blocks, jac = state[1], state[2], self._jac.copy()
+            plan = ()
+        else:
+            jac = np.zeros((nfree, self.n.size))
+            blocks = []
+            mu = None
+            plan = self._plan
+        for shape, sl, iy, need, rows, ry in plan:
             p = [float(q) for q in v[sl]]
             y = float(v[iy])
             if need:
@@ -911,10 +922,10 @@ def _new_minuit(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.nda
 
 
 def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
-                    upper: np.ndarray, max_iter: int = 60):
+                    upper: np.ndarray, max_iter: int = 60, edm_goal: float = 1e-7):
     """Damped Fisher scoring (Levenberg-Marquardt on the information matrix I returned by
     ``cost.value_grad_info``).  Returns (x, f, converged, I^-1); converged when
-    EDM = g^T I^-1 g / 2 < 1e-7 (the EDM is read off the undamped Newton step)."""
+    EDM = g^T I^-1 g / 2 < ``edm_goal`` (read off the undamped Newton step)."""
     x = np.clip(np.asarray(x0, float), lower, upper)
     lam = 0.0  # undamped first: from good starts Newton steps are accepted
     stalled = 0
@@ -931,7 +942,7 @@ def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
                 edm = -0.5 * float(g @ step)
                 if not np.isfinite(edm):
                     return x, f, False, None
-                if edm < 1e-7:
+                if edm < edm_goal:
                     try:
                         return x, f, True, np.linalg.inv(info)
                     except np.linalg.LinAlgError:
@@ -952,12 +963,12 @@ def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
 
 
 def _minimize(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-              names: list[str]) -> _MinOut:
+              names: list[str], edm_goal: float = 1e-7) -> _MinOut:
     """Fisher scoring first (few calls: expected information for binned fits, the
     outer-product information for unbinned ones); MIGRAD (strategy 0, analytic gradient)
     when that does not converge.  Returns a :class:`_MinOut`."""
     if hasattr(cost, "value_grad_info"):
-        x, f, ok, inv = _fisher_scoring(cost, start, lower, upper)
+        x, f, ok, inv = _fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal)
         if ok:
             errs = np.sqrt(np.clip(np.diag(inv), 0, None))
 
@@ -993,7 +1004,7 @@ def _background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.
     cost = _BinnedCost(model, v, free, [], edges, n, scale, mask)
     lo, hi = lower[free].copy(), upper[free].copy()
     mo = _minimize(cost, np.clip(v[free], lo, hi), lo, hi,
-                   [model.parameter_names[i] for i in free])
+                   [model.parameter_names[i] for i in free], edm_goal=1e-2)
     out = v.copy()
     out[free] = mo.x
     return out
@@ -1228,7 +1239,11 @@ def fit(
     i_w = sl0.start + sig0.parameter_names.index(wname) if wname else None
     fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
     ge, gn, gn2 = _gof_binning(d)
-    mu = model.expected(ge, vals)
+    state = getattr(cost, "_state", None)
+    if d.binned and state is not None and state[0] == np.asarray(xbest, float).tobytes():
+        mu = np.asarray(state[1])  # the expectation at the minimum, already computed
+    else:
+        mu = model.expected(ge, vals)
     gsc = _scale(gn, gn2)
     chi2 = _baker_cousins(gn * gsc, mu * gsc)
     ndf = int(gn.size - free_idx.size)
