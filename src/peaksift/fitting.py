@@ -380,17 +380,27 @@ class _BinnedCost(_Cost):
                     t = float(r @ g[j])
                     hess[ry, rj] += t
                     hess[rj, ry] += t
-                q = list(p)
                 h = float(steps[rj])
-                q[j] = p[j] + h
                 par = shape.parameters[j]
+                central = (shape._primitive_grad is None and p[j] + h <= par.upper
+                           and p[j] - h >= par.lower)  # gradients by differences: be careful
+                q = list(p)
+                q[j] = p[j] + h
                 if q[j] > par.upper:
                     h = -h
                     q[j] = p[j] + h
                 _, g2 = shape.fractions_and_grad(self.edges, q, window)
+                if central:
+                    q[j] = p[j] - h
+                    g1 = shape.fractions_and_grad(self.edges, q, window)[1]
+                    h = 2.0 * h
+                else:
+                    g1 = g
                 if self.mask is not None:
                     g2 = g2[:, self.mask]
-                d2 = y * (g2 - g) / h  # row k: d2 F / d theta_k d theta_j
+                    if central:
+                        g1 = g1[:, self.mask]
+                d2 = y * (g2 - g1) / h  # row k: d2 F / d theta_k d theta_j
                 for k, rk in enumerate(rows):
                     if rk >= 0:
                         hess[rk, rj] += float(r @ d2[k])
