@@ -55,14 +55,29 @@ _SUBMODULES = {
 }
 
 __all__ = [
-    "__version__",
-    "PeaksiftError",
-    "InputError",
+    "Candidates",
     "ConfigError",
     "CutError",
-    "FitError",
     "ExecutionError",
-    *_EXPORTS,
+    "FitError",
+    "FitResult",
+    "InputError",
+    "LimitResult",
+    "MassHistogram",
+    "PeaksiftError",
+    "ScanResult",
+    "SearchResult",
+    "__version__",
+    "compile_cut",
+    "describe",
+    "fit",
+    "iter_events",
+    "load_config",
+    "pair",
+    "read_events",
+    "run_search",
+    "scan",
+    "upper_limits",
 ]
 
 

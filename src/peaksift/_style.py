@@ -64,7 +64,5 @@ def use_headless_backend() -> None:
     import matplotlib
 
     if not os.environ.get("MPLBACKEND") and matplotlib.get_backend().lower() not in ("agg",):
-        try:
+        with contextlib.suppress(ValueError, ImportError):  # backend locked by the caller
             matplotlib.use("Agg")
-        except Exception:  # pragma: no cover - backend already locked by the caller
-            pass

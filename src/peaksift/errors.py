@@ -20,14 +20,14 @@ import difflib
 from collections.abc import Iterable
 
 __all__ = [
-    "PeaksiftError",
-    "InputError",
     "ConfigError",
     "CutError",
-    "FitError",
-    "ExecutionError",
-    "closest",
     "DataWarning",
+    "ExecutionError",
+    "FitError",
+    "InputError",
+    "PeaksiftError",
+    "closest",
 ]
 
 
