@@ -26,8 +26,8 @@ from pathlib import Path
 
 import pyarrow.parquet as pq
 
-ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT / "src"))
+REPO_DIR = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(REPO_DIR / "src"))
 
 from peaksift import events, simulate
 
@@ -93,7 +93,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--events", type=int, default=5_000_000, help="size of the generated set")
     p.add_argument("--repeat", type=int, default=3)
     p.add_argument("--chunk-events", type=int, default=500_000)
-    p.add_argument("--demo", default=str(ROOT / "demo_data"), help="demo-sized data set")
+    p.add_argument("--demo", default=str(REPO_DIR / "demo_data"), help="demo-sized data set")
     args = p.parse_args(argv)
 
     demo = Path(args.demo)

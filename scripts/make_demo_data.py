@@ -23,8 +23,8 @@ from pathlib import Path
 import awkward as ak
 import numpy as np
 
-ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT / "src"))
+REPO_DIR = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(REPO_DIR / "src"))
 
 from peaksift import events, simulate
 
@@ -105,7 +105,7 @@ def local_significance(m: np.ndarray, lo: float, hi: float) -> dict:
 
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--outdir", default=str(ROOT / "demo_data"))
+    p.add_argument("--outdir", default=str(REPO_DIR / "demo_data"))
     p.add_argument("--events", type=int, default=None)
     p.add_argument("--seed", type=int, default=None)
     p.add_argument("--weighted", action="store_true")

@@ -6,13 +6,13 @@ from pathlib import Path
 
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1]
+REPO_DIR = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="session")
 def demo_dir() -> Path:
     """The committed demo data set (demo_data/: events_*.parquet and truth.json)."""
-    return ROOT / "demo_data"
+    return REPO_DIR / "demo_data"
 
 
 @pytest.fixture(scope="session")

@@ -10,7 +10,7 @@ import pytest
 from peaksift.config import SCHEMA, Config, load_config, reference_markdown
 from peaksift.errors import ConfigError
 
-ROOT = Path(__file__).resolve().parents[1]
+REPO_DIR = Path(__file__).resolve().parents[1]
 
 MINIMAL = """
 [input]
@@ -149,7 +149,7 @@ def test_dict_config_and_overrides(tmp_path):
 
 
 def test_docs_page_lists_every_key_with_default():
-    doc = (ROOT / "docs" / "config.md").read_text()
+    doc = (REPO_DIR / "docs" / "config.md").read_text()
     start, end = "<!-- reference:start -->\n", "<!-- reference:end -->"
     embedded = doc[doc.index(start) + len(start): doc.index(end)]
     assert embedded == reference_markdown(), "regenerate docs/config.md from the schema"
@@ -161,9 +161,9 @@ def test_docs_page_lists_every_key_with_default():
 def test_demo_config_is_valid_and_matches_the_template():
     from peaksift.search import demo_config_text
 
-    path = ROOT / "demo_data" / "search.toml"
+    path = REPO_DIR / "demo_data" / "search.toml"
     cfg = load_config(path)
-    assert cfg.input.files == (str((ROOT / "demo_data" / "events_*.parquet").resolve()),)
+    assert cfg.input.files == (str((REPO_DIR / "demo_data" / "events_*.parquet").resolve()),)
     assert cfg.calibration.particle == "Z0"
     # the committed file is the template that `peaksift demo` writes next to new data
     assert path.read_text() == demo_config_text(["events_*.parquet"])

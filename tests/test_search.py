@@ -17,8 +17,8 @@ import pytest
 
 from peaksift.cli import main
 
-ROOT = Path(__file__).resolve().parents[1]
-DEMO = ROOT / "demo_data"
+REPO_DIR = Path(__file__).resolve().parents[1]
+DEMO = REPO_DIR / "demo_data"
 CONFIG = DEMO / "search.toml"
 TRUTH = DEMO / "truth.json"
 

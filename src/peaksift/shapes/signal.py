@@ -170,7 +170,8 @@ class Gaussian(_Signal):
 
 class CrystalBall(_Signal):
     r"""Double-sided Crystal Ball: Gaussian core, power-law tails with their own
-    ``alpha``/``n`` on each side (Oreglia, SLAC-R-236 (1980); Gaiser, SLAC-R-255 (1982)).
+    ``alpha``/``n`` on each side (M. Oreglia, Ph.D. thesis, 1980; J. E. Gaiser, Ph.D. thesis,
+    1982; from memory).
 
     With :math:`z=(x-m)/\sigma`, :math:`q=n/\alpha`:
 
