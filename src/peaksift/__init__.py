@@ -69,14 +69,18 @@ __all__ = [
     "SearchResult",
     "__version__",
     "compile_cut",
+    "cuts",
     "describe",
     "fit",
     "iter_events",
+    "kinematics",
     "load_config",
     "pair",
     "read_events",
     "run_search",
     "scan",
+    "shapes",
+    "stats",
     "upper_limits",
 ]
 
