@@ -9,6 +9,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from peaksift import MassHistogram
+from peaksift.errors import FitError
 from peaksift.stats import scan
 from peaksift.stats.lee import (
     binomial_error,
@@ -25,8 +26,66 @@ def test_upcrossings_count():
     assert upcrossings(q, 0.5).tolist() == [3]
     assert upcrossings(q, 2.0).tolist() == [1]
     assert upcrossings(np.vstack([q, np.zeros_like(q)]), 0.5).tolist() == [3, 0]
-    # blinded (NaN) points count as below the level
-    assert upcrossings([np.nan, 1.0, np.nan, 1.0], 0.5).tolist() == [2]
+    # a failed fit (NaN) is not silently a low value
+    with pytest.raises(FitError, match="failed fits"):
+        upcrossings([np.nan, 1.0, np.nan, 1.0], 0.5)
+
+
+def test_upcrossings_per_segment_across_a_blinded_gap():
+    """Upcrossings are counted within each contiguous segment and summed (Gross, Vitells
+    2010 sec. 2 define them along a connected parameter range): the pair joining the two
+    sides of a gap is no upcrossing.  Counted by hand: segment [0.0, 1.0, 0.2] has 1,
+    segment [0.9, 0.1, 3.0] has 1; joined naively, 0.2 -> 0.9 would add a third."""
+    q = np.array([0.0, 1.0, 0.2, 0.9, 0.1, 3.0])
+    gaps = np.array([False, False, True, False, False])
+    assert upcrossings(q, 0.5).tolist() == [3]
+    assert upcrossings(q, 0.5, gaps=gaps).tolist() == [2]
+    with pytest.raises(FitError, match="gaps needs 5"):
+        upcrossings(q, 0.5, gaps=[True])
+
+
+def test_blinded_scan_counts_upcrossings_per_segment():
+    """ScanResult.global_significance with N0 from the observed scan: equal to the sum of
+    upcrossings counted separately on the hypotheses below and above the blinded range
+    (Gross, Vitells 2010 sec. 2, per connected range)."""
+    rng = np.random.default_rng(10)   # seed chosen so the gap pair is an upcrossing
+    x = 100.0 + rng.exponential(100.0, 20_000)
+    h = MassHistogram(bins=300, range=(100.0, 400.0)).fill(x)
+    r = scan(h, "gaussian", "exponential", 121, resolution=0.01, blind=(240.0, 260.0),
+             refit=False)
+    res = r.global_significance("upcrossings", toys=0, u0=0.5)
+    low = r.q0[~r.blinded & (r.masses < 240.0)]
+    high = r.q0[~r.blinded & (r.masses > 260.0)]
+    want = upcrossings(low, 0.5)[0] + upcrossings(high, 0.5)[0]
+    assert res["N0"] == want
+    # joining the sides would count the pair across the gap (low[-1] <= 0.5 < high[0])
+    assert low[-1] <= 0.5 < high[0]
+    assert upcrossings(np.concatenate([low, high]), 0.5)[0] == want + 1
+
+
+def test_capped_p_global_has_no_error():
+    """When p_local + N0 exp(-(u - u0)/2) exceeds 1 the estimate is capped at 1 (a
+    probability, Gross and Vitells 2010 eq. 4 is an upper-bound approximation) and its linear
+    error is meaningless: reported as None with p_global_capped."""
+    scans = np.tile([0.0, 1.0] * 10, (5, 1))
+    scans[0, -1] = 0.0
+    res = global_from_upcrossings(0.5, scans, u0=0.5)
+    assert res["p_global"] == 1.0 and res["p_global_capped"] is True
+    assert res["p_global_error"] is None
+    ok = global_from_upcrossings(16.0, scans, u0=0.5)
+    assert ok["p_global_capped"] is False and 0 < ok["p_global_error"] < ok["p_global"]
+
+
+def test_failed_toys_are_counted_not_treated_as_low():
+    """Toys with a NaN q0 (failed fit) are left out and counted in n_failed_toys, for both
+    estimates (the remaining fractions as defined, common practice)."""
+    scans = np.array([[0.0, 1.0, 0.0], [0.0, np.nan, 0.0], [2.0, 0.0, 9.0], [0.0, 0.2, 0.0]])
+    up = global_from_upcrossings(4.0, scans, u0=0.5)
+    assert up["n_failed_toys"] == 1 and up["n_toys"] == 3
+    assert up["N0"] == pytest.approx(2 / 3)
+    toy = global_from_toys(4.0, scans.max(axis=1))
+    assert toy["n_failed_toys"] == 1 and toy["n_toys"] == 3 and toy["n_toys_above"] == 1
+    assert toy["p_global"] == pytest.approx(1 / 3)
 
 
 def test_binomial_error_matches_scipy():

@@ -8,6 +8,7 @@ Which function when
 * :func:`global_from_toys`         -- fraction of background-only toys whose largest q0 is at
   least the observed one, with its binomial error.
 * :func:`binomial_error`           -- the error of such a fraction.
+* :func:`finite_scans`             -- drop (and count) toys whose fit failed (NaN q0).
 
 Both estimates are floored at the local p-value: the largest q0 of a scan is never below its
 value at the best mass, so p_global >= p_local.  Z_global = Phi^-1(1 - p_global) is reported
@@ -24,19 +25,47 @@ import numpy as np
 from ..errors import FitError
 from .significance import p_from_q0, z_from_p
 
-__all__ = ["binomial_error", "global_from_toys", "global_from_upcrossings", "upcrossings"]
+__all__ = ["binomial_error", "finite_scans", "global_from_toys", "global_from_upcrossings",
+           "upcrossings"]
 
 
-def upcrossings(q0: Any, level: float) -> np.ndarray:
+def upcrossings(q0: Any, level: float, *, gaps: Any = None) -> np.ndarray:
     """Number of upcrossings of ``level`` along the mass axis of each scan.
 
     An upcrossing is a pair of neighbouring hypotheses with ``q0[i] <= level < q0[i+1]``
     (Gross, Vitells, EPJC 70 (2010) 525, sec. 2).  ``q0`` is ``(n_masses,)`` or
-    ``(n_scans, n_masses)``; NaN entries (blinded) count as below the level.
+    ``(n_scans, n_masses)`` and must be finite (drop failed toys first, see
+    :func:`finite_scans`).
+
+    ``gaps`` (``n_masses - 1`` booleans) marks neighbouring entries that are *not*
+    neighbours in mass, e.g. the two sides of a blinded range whose hypotheses were left
+    out.  The scan is then a set of contiguous segments: upcrossings are counted within each
+    segment and summed; a pair across a gap is never an upcrossing.
     """
-    q = np.atleast_2d(np.nan_to_num(np.asarray(q0, float), nan=-np.inf))
+    q = np.atleast_2d(np.asarray(q0, float))
+    if not np.all(np.isfinite(q)):
+        raise FitError("upcrossings: q0 scans contain NaN or infinite values (failed fits); "
+                       "drop those scans first (lee.finite_scans) and report how many")
     above = q > level
-    return np.sum(~above[:, :-1] & above[:, 1:], axis=1)
+    pairs = ~above[:, :-1] & above[:, 1:]
+    if gaps is not None:
+        gaps = np.asarray(gaps, bool).ravel()
+        if gaps.size != max(q.shape[1] - 1, 0):
+            raise FitError(f"upcrossings: gaps needs {q.shape[1] - 1} entries (one per "
+                           f"neighbouring pair), got {gaps.size}")
+        pairs = pairs & ~gaps[None, :]
+    return np.sum(pairs, axis=1)
+
+
+def finite_scans(scans: Any) -> tuple[np.ndarray, int]:
+    """Split off failed toys: ``(scans with every q0 finite, number of scans dropped)``.
+
+    A toy whose fit failed has NaN (or infinite) q0 somewhere; it is neither a low nor a
+    high value, so it is left out of the estimates and counted (``n_failed_toys``).
+    """
+    s = np.atleast_2d(np.asarray(scans, float))
+    ok = np.all(np.isfinite(s), axis=1)
+    return s[ok], int(np.sum(~ok))
 
 
 def binomial_error(k: int, n: int) -> float:
@@ -48,7 +77,7 @@ def binomial_error(k: int, n: int) -> float:
 
 
 def global_from_upcrossings(q_obs: float, scans: Any, *, u0: float = 0.5,
-                            source: str | None = None) -> dict[str, Any]:
+                            source: str | None = None, gaps: Any = None) -> dict[str, Any]:
     """Gross-Vitells estimate of the global p-value.
 
     .. math:: p_\\mathrm{global} \\approx p_\\mathrm{local}(u) + \\langle N(u_0)\\rangle\\,
@@ -56,22 +85,34 @@ def global_from_upcrossings(q_obs: float, scans: Any, *, u0: float = 0.5,
 
     for the one-degree-of-freedom q0 (Gross, Vitells, EPJC 70 (2010) 525, eq. 4 with
     s = 1), ``u`` the observed q0 and ``<N(u0)>`` the mean number of upcrossings of ``u0``,
-    estimated from ``scans`` (toys, or the observed scan alone).  Capped at 1.
+    estimated from ``scans`` (toys, or the observed scan alone); ``gaps`` as in
+    :func:`upcrossings` (blinded ranges: upcrossings per contiguous segment, summed).
+
+    Scans with a non-finite q0 (failed toy fits) are dropped and counted in
+    ``n_failed_toys``.  The estimate is capped at 1; when capped, ``p_global_error`` is
+    None (the linear error of the uncapped sum means nothing there) and
+    ``p_global_capped`` is True.
     """
-    s = np.atleast_2d(np.asarray(scans, float))
-    n = upcrossings(s, u0).astype(float)
+    s, failed = finite_scans(scans)
+    if s.shape[0] == 0:
+        raise FitError(f"global_from_upcrossings: all {failed} scans contain failed fits "
+                       "(NaN q0); nothing to count upcrossings on")
+    n = upcrossings(s, u0, gaps=gaps).astype(float)
     n0 = float(n.mean())
     n0_err = float(n.std(ddof=1) / math.sqrt(n.size)) if n.size > 1 else float(math.sqrt(n0))
     p_loc = float(p_from_q0(q_obs))
     fac = math.exp(-(q_obs - u0) / 2.0)
-    p_glob = min(1.0, p_loc + n0 * fac)
-    err = n0_err * fac
+    raw = p_loc + n0 * fac
+    capped = raw >= 1.0
+    p_glob = min(1.0, raw)
     return {
         "z_global": max(float(z_from_p(p_glob)), 0.0),
         "p_global": p_glob,
         "global_method": "upcrossings",
-        "p_global_error": err,
+        "p_global_error": None if capped else n0_err * fac,
+        "p_global_capped": bool(capped),
         "n_toys": int(s.shape[0]) if source is None else 0,
+        "n_failed_toys": failed if source is None else 0,
         "u0": float(u0),
         "N0": n0,
         "N0_error": n0_err,
@@ -84,12 +125,17 @@ def global_from_toys(q_obs: float, max_q0: Any) -> dict[str, Any]:
 
     When no toy reaches the observed value, ``p_global`` is reported as the 95% upper bound
     ``1 - 0.05**(1/n)`` (Clopper-Pearson for k = 0) and ``z_global_is_lower_bound`` is True.
-    The estimate is floored at p_local.
+    The estimate is floored at p_local.  Toys whose largest q0 is not finite (a failed fit)
+    are left out and counted in ``n_failed_toys``.
     """
     mq = np.asarray(max_q0, float).ravel()
+    good = np.isfinite(mq)
+    failed = int(np.sum(~good))
+    mq = mq[good]
     ntoy = mq.size
     if ntoy == 0:
-        raise FitError("global_from_toys needs at least one toy")
+        raise FitError("global_from_toys needs at least one toy with a finite q0"
+                       + (f" ({failed} failed)" if failed else ""))
     k = int(np.sum(mq >= q_obs))
     p_loc = float(p_from_q0(q_obs))
     bound = k == 0
@@ -101,6 +147,7 @@ def global_from_toys(q_obs: float, max_q0: Any) -> dict[str, Any]:
         "global_method": "toys",
         "p_global_error": binomial_error(k, ntoy),
         "n_toys": ntoy,
+        "n_failed_toys": failed,
         "n_toys_above": k,
         "z_global_is_lower_bound": bound,
     }

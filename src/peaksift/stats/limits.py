@@ -29,7 +29,11 @@ NLL (the auxiliary measurement is at 0 for the data):
 
 Blinding: with ``blind=(lo, hi)`` the blinded bins are left out of every fit, the observed
 limits inside the range are NaN (``None`` in ``to_dict()``) and not drawn; the expected
-limits (Asimov data from the background fit, all bins) are given everywhere.
+limits (Asimov data from the background fit, all bins) are given everywhere.  The sigma of
+the observed limit (CCGV eq. 32) comes from the Asimov set restricted to the bins actually
+in the observed likelihood, so near a blinded range the observed limit is the one those
+bins support (on background-like data it equals the expected limit computed on the same
+bins, which is weaker than the all-bins expected limit).
 """
 
 from __future__ import annotations
@@ -90,9 +94,12 @@ def cls_asymptotic(qmu: Any, mu: Any, sigma: Any) -> np.ndarray:
 
 
 def expected_band_factor(n_sigma: float, cl: float = 0.95) -> float:
-    r"""Asimov expected-limit factor :math:`\Phi^{-1}(1 - \alpha\Phi(N)) + N` (CCGV eq. 89
-    for CLs), so that :math:`\mu_{\mathrm{up}+N} = \sigma\,[\Phi^{-1}(1-\alpha\Phi(N)) + N]`
-    with :math:`\alpha = 1 - \mathrm{CL}`."""
+    r"""Asimov expected-limit factor :math:`\Phi^{-1}(1 - \alpha\Phi(N)) + N`, so that :math:`\mu_{\mathrm{up}+N} = \sigma\,[\Phi^{-1}(1-\alpha\Phi(N)) + N]`
+    with :math:`\alpha = 1 - \mathrm{CL}`.
+
+    Derived from Cowan et al. 2011 eq. 89 (the CLs+b band :math:`\sigma(\Phi^{-1}(1-\alpha)
+    + N)`) with CLs = CLs+b/CLb and, on the band edge, CLb = :math:`\Phi(N)` (common
+    practice)."""
     alpha = 1.0 - cl
     return float(special.ndtri(1.0 - alpha * special.ndtr(n_sigma)) + n_sigma)
 
@@ -490,7 +497,8 @@ def upper_limits(
 
     exp_lim = _bisect(f_exp, 1e-2 * scale0, 1e3 * scale0).reshape(nb5, nm)
 
-    # observed: data in the used bins, sigma from the Asimov set at the same mu
+    # observed: data in the used bins; sigma from the Asimov set on the *same* bins (the
+    # blinded ones are out of the observed likelihood, so they must be out of sigma too)
     obs = np.full(nm, np.nan)
     keep = ~bl
     if keep.any():
@@ -500,16 +508,18 @@ def upper_limits(
         mu_hat = mu_hat_s / co
         prob_o = _Problem(model, model.counts, fo, co, delta, kind or "lognormal",
                           np.zeros(fo.shape[0]))
-        prob_s = _Problem(full, asimov, f_win[keep], co, delta, kind or "lognormal",
+        asimov_used = model.expected_background
+        prob_s = _Problem(model, asimov_used, fo, co, delta, kind or "lognormal",
                           np.zeros(fo.shape[0]))
+        nll_u0 = float(fit_background(model, asimov_used[None, :])[2][0])
 
         def f_obs(mu: np.ndarray) -> np.ndarray:
             q = _qtilde(prob_o, mu, mu_hat, nll_hat, nll_zero)
-            qa = np.maximum(2.0 * (prob_s.nll(mu) - nll_a0), 1e-300)
+            qa = np.maximum(2.0 * (prob_s.nll(mu) - nll_u0), 1e-300)
             sigma = mu / np.sqrt(qa)
             return alpha - cls_asymptotic(q, mu, sigma)
 
-        s0 = sig_fisher[keep] / co
+        s0 = 1.0 / np.sqrt(np.sum(fo**2 / np.maximum(asimov_used, 1e-300), axis=1)) / co
         lo = np.maximum(1e-2 * s0, 0.5 * np.maximum(mu_hat, 0.0))
         obs[keep] = _bisect(f_obs, lo, 1e3 * s0 + 3.0 * np.maximum(mu_hat, 0.0))
     methods = ["asymptotic"] * nm

@@ -498,14 +498,25 @@ class ScanResult:
         Returns
         -------
         dict with ``mass``, ``z_local``, ``p_local``, ``z_global``, ``p_global``,
-        ``global_method``, ``p_global_error``, ``n_toys`` and, for upcrossings, ``u0``,
-        ``N0``, ``N0_error``, ``n0_source``.
+        ``global_method``, ``p_global_error``, ``n_toys`` (toys used), ``n_failed_toys``
+        (toys left out because a fit failed, NaN q0) and, for upcrossings, ``u0``, ``N0``,
+        ``N0_error``, ``n0_source``, ``p_global_capped`` (then ``p_global_error`` is None);
+        for toys ``n_toys_above``, ``z_global_is_lower_bound``.
+
+        Notes
+        -----
+        With a blinded range the unblinded hypotheses form separate contiguous segments;
+        upcrossings are counted within each segment and summed (a pair of hypotheses on
+        the two sides of the blinded range is not an upcrossing).
         """
         if method not in ("upcrossings", "toys"):
             raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
                            f"got {method!r}")
         q_obs = float(self.q0[self.best_index])
         mask = ~self.blinded
+        # a blinded range splits the unblinded hypotheses into contiguous segments: no
+        # upcrossing is counted across it (the two sides are not neighbours in mass)
+        gaps = np.diff(np.flatnonzero(mask)) > 1
         if method == "toys":
             n = 1000 if toys is None else int(toys)
             scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress)
@@ -514,10 +525,10 @@ class ScanResult:
             n = 200 if toys is None else int(toys)
             if n > 0:
                 scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress)
-                res = lee.global_from_upcrossings(q_obs, scans, u0=u0)
+                res = lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps)
             else:
                 res = lee.global_from_upcrossings(q_obs, self.q0[mask][None, :], u0=u0,
-                                                  source="observed scan")
+                                                  source="observed scan", gaps=gaps)
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
                "p_local": float(self.p_local[self.best_index])}
         out.update(res)
