@@ -159,11 +159,25 @@ def test_voigt_against_scipy_voigt_profile():
 
 
 def test_voigt_fwhm_against_olivero_longbothum():
-    """Numerical FWHM vs Olivero and Longbothum, JQSRT 17 (1977) 233 (about 0.02 %
-    accurate, from memory; tolerance 0.05 %), and its Gaussian / Lorentzian limits."""
+    """Numerical FWHM vs the published approximation of Olivero and Longbothum, J. Quant.
+    Spectrosc. Radiat. Transfer 17 (1977) 233: f_V ~ 0.5346 f_L + sqrt(0.2166 f_L^2 + f_G^2),
+    f_L = Gamma (Lorentzian FWHM), f_G = 2 sqrt(2 ln 2) sigma; about 0.02 % accurate (from
+    memory, so tolerance 0.1 %).  Also the half-maximum points of
+    scipy.special.voigt_profile found by root finding (1e-6), and the Gaussian / Lorentzian
+    limits."""
+    from scipy.optimize import brentq
+
     s = shapes.get("voigt")
-    for sg, g in [(1.5, 2.5), (0.5, 3.0), (2.0, 0.5)]:
-        assert s.fwhm([91.0, sg, g]) == pytest.approx(s.fwhm_approx([91.0, sg, g]), rel=5e-4)
+    for sg, g in [(1.5, 2.5), (0.5, 3.0), (2.0, 0.5), (1.0, 1.0)]:
+        f_l = g
+        f_g = 2.0 * math.sqrt(2.0 * math.log(2.0)) * sg
+        olivero = 0.5346 * f_l + math.sqrt(0.2166 * f_l**2 + f_g**2)
+        got = s.fwhm([91.0, sg, g])
+        assert got == pytest.approx(olivero, rel=1e-3), (sg, g, got, olivero)
+        half = 0.5 * special.voigt_profile(0.0, sg, g / 2)
+        hwhm = brentq(lambda t, sg=sg, g=g, half=half: special.voigt_profile(t, sg, g / 2) - half,
+                      0.0, 10 * olivero, xtol=1e-14, rtol=1e-14)
+        assert got == pytest.approx(2 * hwhm, rel=1e-6)
     assert s.fwhm([91.0, 1.0, 1e-7]) == pytest.approx(2 * math.sqrt(2 * math.log(2)), rel=1e-5)
     assert s.fwhm([91.0, 1e-7, 2.0]) == pytest.approx(2.0, rel=1e-5)
 
@@ -252,3 +266,141 @@ def test_turnon_rises_then_falls():
     k = int(np.argmax(f))
     assert 70 < x[k] < 90
     assert np.all(np.diff(f[:k - 3]) > 0) and np.all(np.diff(f[k + 3:]) < 0)
+
+
+# ------------------------------------------------------------------ background shapes
+# Each background shape against a closed form written out here (or a scipy distribution),
+# pdf to 1e-10 relative (1e-14 /GeV absolute), CDF vs scipy.integrate.quad of the reference
+# density to 1e-8 relative (1e-14 absolute).
+XS = np.linspace(W[0], W[1], 121)
+
+
+def _check_against(s, p, ref_pdf, window=W, ref_cdf=None, breaks=()):
+    """peaksift pdf == ref_pdf normalised on the window (quad); peaksift cdf == ref_cdf or
+    quad of the normalised reference."""
+    lo, hi = window
+    x = np.linspace(lo, hi, 121)
+    pts = [b for b in breaks if lo < b < hi] or None
+    z = integrate.quad(ref_pdf, lo, hi, points=pts, limit=400, epsabs=0, epsrel=1e-13)[0]
+    np.testing.assert_allclose(s.pdf(x, p, window), ref_pdf(x) / z, rtol=1e-10, atol=1e-14)
+    xc = x[1::12]
+    if ref_cdf is None:
+        ref = np.array([integrate.quad(ref_pdf, lo, t, points=[b for b in breaks if lo < b < t]
+                                       or None, limit=400, epsabs=0, epsrel=1e-13)[0]
+                        for t in xc]) / z
+    else:
+        ref = ref_cdf(xc)
+    np.testing.assert_allclose(s.cdf(xc, p, window), ref, rtol=1e-8, atol=1e-14)
+
+
+@pytest.mark.parametrize(("npar", "sqrt_s", "p"), [
+    (4, None, [5.0, 4.0, 0.3]), (3, 500.0, [6.0, 3.0]), (2, None, [8.0]),
+    (4, 13000.0, [12.0, 5.0, 0.1])])
+def test_dijet_against_published_form(npar, sqrt_s, p):
+    """f(m) = p0 (1-x)^p1 / x^(p2 + p3 ln x), x = m/sqrt_s (Phys. Rev. D 79 (2009) 112002;
+    p2 = p3 = 0 for fewer parameters), normalised with scipy.integrate.quad; sqrt_s
+    defaults to twice the window's upper edge (peaksift's documented choice)."""
+    s = shapes.get("dijet", npar=npar, **({} if sqrt_s is None else {"sqrt_s": sqrt_s}))
+    rs = 2 * W[1] if sqrt_s is None else sqrt_s
+    p1, p2, p3 = (list(p) + [0.0, 0.0])[:3]
+
+    def ref(m):
+        x = np.asarray(m) / rs
+        return 1.0 * (1 - x) ** p1 / x ** (p2 + p3 * np.log(x))
+
+    _check_against(s, p, ref)
+
+
+@pytest.mark.parametrize("b1", [-1.3, -8.0, 0.7])
+def test_exponential_against_scipy_truncexpon(b1):
+    """exp(b1 t), t = (m - c)/h, is an exponential of slope b1/h per GeV truncated to the
+    window: scipy.stats.truncexpon(b=(hi-lo)/scale, loc=lo, scale=h/|b1|), reflected
+    about the window (m -> lo + hi - m) for a rising slope."""
+    lo, hi = W
+    h = 0.5 * (hi - lo)
+    scale = h / abs(b1)
+    ref = stats.truncexpon(b=(hi - lo) / scale, loc=lo, scale=scale)
+    y = XS if b1 < 0 else lo + hi - XS
+    ref_pdf = ref.pdf(y)
+    ref_cdf = ref.cdf(y) if b1 < 0 else ref.sf(y)
+    for s in (shapes.get("exponential"), shapes.get("exppoly", order=1)):
+        np.testing.assert_allclose(s.pdf(XS, [b1], W), ref_pdf, rtol=1e-10)
+        np.testing.assert_allclose(s.cdf(XS, [b1], W), ref_cdf, rtol=1e-9, atol=1e-14)
+
+
+@pytest.mark.parametrize(("order", "p"), [(2, [-1.0, 0.4]), (3, [-1.0, 0.3, -0.2]),
+                                          (3, [2.0, -3.0, 1.5])])
+def test_exppoly_against_closed_form(order, p):
+    """exp(b1 t + b2 t^2 + b3 t^3), t = (m - c)/h in [-1, 1] (the definition, written out),
+    normalised with scipy.integrate.quad."""
+    s = shapes.get("exppoly", order=order)
+    c, h = 0.5 * (W[0] + W[1]), 0.5 * (W[1] - W[0])
+    b = list(p) + [0.0] * (3 - len(p))
+
+    def ref(m):
+        t = (np.asarray(m) - c) / h
+        return np.exp(b[0] * t + b[1] * t**2 + b[2] * t**3)
+
+    _check_against(s, p, ref)
+
+
+@pytest.mark.parametrize("power", [3.5, 1.0, 0.0, -2.0, 25.0])
+def test_powerlaw_against_pareto_and_closed_form(power):
+    """m^-k on [lo, hi]: closed-form normalisation (m^(1-k) - lo^(1-k)) / (hi^(1-k) -
+    lo^(1-k)), ln(m/lo)/ln(hi/lo) for k = 1 (elementary calculus); for k > 1 also
+    scipy.stats.pareto(b=k-1, scale=lo) truncated at hi."""
+    s = shapes.get("powerlaw")
+    lo, hi = W
+    k = power
+    if k == 1.0:
+        cdf = np.log(XS / lo) / np.log(hi / lo)
+        pdf = 1.0 / (XS * np.log(hi / lo))
+    else:
+        a = 1.0 - k
+        cdf = (XS**a - lo**a) / (hi**a - lo**a)
+        pdf = a * XS ** (-k) / (hi**a - lo**a)
+    np.testing.assert_allclose(s.pdf(XS, [k], W), pdf, rtol=1e-10)
+    np.testing.assert_allclose(s.cdf(XS, [k], W), cdf, rtol=1e-9, atol=1e-14)
+    if k > 1:
+        par = stats.pareto(b=k - 1.0, scale=lo)
+        zt = par.cdf(hi)
+        np.testing.assert_allclose(s.pdf(XS, [k], W), par.pdf(XS) / zt, rtol=1e-10)
+        np.testing.assert_allclose(s.cdf(XS, [k], W), par.cdf(XS) / zt, rtol=1e-9, atol=1e-14)
+    _check_against(s, [k], lambda m: np.asarray(m, float) ** (-k))
+
+
+@pytest.mark.parametrize("p", [[0.5, 1.2, 0.3], [1.0, 0.2, 0.9, 0.0, 1.4, 0.5], [-2.0],
+                               [0.0, 0.0, 0.0, 3.0]])
+def test_bernstein_against_scipy_bpoly(p):
+    """sum_i beta_i b_{i,n}(u), u = (m - lo)/(hi - lo), with beta = (1, c1^2, ..., cn^2)
+    (peaksift's parametrisation, see Bernstein's docstring) is
+    scipy.interpolate.BPoly(beta, [lo, hi]); normalised by BPoly.integrate, CDF from
+    BPoly.antiderivative, and the CDF also vs scipy.integrate.quad."""
+    from scipy.interpolate import BPoly
+
+    s = shapes.get("bernstein", degree=len(p))
+    beta = np.array([1.0] + [c * c for c in p])
+    bp = BPoly(beta[:, None], [W[0], W[1]])
+    z = bp.integrate(*W)
+    prim = bp.antiderivative()
+    np.testing.assert_allclose(s.pdf(XS, p, W), bp(XS) / z, rtol=1e-10, atol=1e-15)
+    np.testing.assert_allclose(s.cdf(XS, p, W), (prim(XS) - prim(W[0])) / z, rtol=1e-9,
+                               atol=1e-14)
+    _check_against(s, p, bp)
+
+
+@pytest.mark.parametrize("p", [[70.0, 3.0, 0.05], [100.0, 1.5, 0.5], [62.0, 8.0, 0.02],
+                               [80.0, 4.0, 1.5], [45.0, 5.0, 0.1], [30.0, 0.06, 1.6],
+                               [115.0, 1.0, 1.66], [90.0, 0.5, 1.66]])
+def test_turnon_against_norm_cdf_times_exponential(p):
+    """scipy.stats.norm.cdf((m - threshold)/resolution) * exp(-slope m) (the definition,
+    written out), normalised with scipy.integrate.quad.  The last three sets (inside the
+    default bounds: a turn-on far below the window or a steep fall) once lost the whole
+    normalisation to cancellation."""
+    s = shapes.get("turnon")
+    t, r, k = p
+
+    def ref(m):
+        return stats.norm.cdf((np.asarray(m) - t) / r) * np.exp(-k * (np.asarray(m) - W[0]))
+
+    _check_against(s, p, ref, breaks=(t,))

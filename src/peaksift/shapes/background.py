@@ -308,10 +308,16 @@ class TurnOn(_Background):
 
     parameters ``threshold`` (x0, GeV), ``resolution`` (r, GeV) and ``slope`` (k, 1/GeV;
     c = window centre).  Analytic CDF by parts, with
-    :math:`\int \phi((x-x_0)/r)\, e^{-kx} dx/r = e^{-k x_0 + k^2 r^2/2}\,\Phi((x-x_0)/r + k r)`:
+    :math:`\int \phi((x-x_0)/r)\, e^{-kx} dx/r = e^{-k x_0 + k^2 r^2/2}\,\Phi((x-x_0)/r + k r)`,
+    taken as the integral from x to infinity (both terms positive, so nothing cancels even
+    when the turn-on sits far outside the window or the fall is steep):
 
-    .. math:: F(x) = \frac{1}{k}\left[e^{-k(x_0 - c) + k^2r^2/2}\,\Phi(u + kr)
-              - e^{-k(x-c)}\Phi(u)\right], \quad u = (x-x_0)/r
+    .. math:: S(x) = \int_x^\infty f = \frac{1}{k}\left[e^{-k(x_0 - c) + k^2r^2/2}\,
+              \Phi(-(u + kr)) + e^{-k(x-c)}\Phi(u)\right], \quad u = (x-x_0)/r,
+
+    the first term evaluated as :math:`e^{-k(x-c) - u^2/2}\,\mathrm{erfcx}((u+kr)/\sqrt2)/2`
+    for :math:`u + kr > 0` and with ``scipy.special.log_ndtr`` otherwise; the CDF is
+    :math:`(S(lo) - S(x)) / (S(lo) - S(hi))`.
     """
 
     name = "turnon"
@@ -341,8 +347,15 @@ class TurnOn(_Background):
         return special.ndtr((x - t) / r) * np.exp(-k * (x - c))
 
     def _primitive(self, x, p, window):
+        # -S(x), S = integral from x to infinity (see the class docstring)
         t, r, k = p
         c = 0.5 * (window[0] + window[1])
         u = (x - t) / r
-        return (np.exp(-k * (t - c) + 0.5 * (k * r) ** 2) * special.ndtr(u + k * r)
-                - np.exp(-k * (x - c)) * special.ndtr(u)) / k
+        q = k * r
+        v = u + q
+        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+            upper = 0.5 * special.erfcx(v * (1.0 / math.sqrt(2.0))) * np.exp(-k * (x - c)
+                                                                                - 0.5 * u * u)
+            lower = np.exp(-k * (t - c) + 0.5 * q * q + special.log_ndtr(-v))
+            first = np.where(v > 0, upper, lower)
+        return -(first + np.exp(-k * (x - c)) * special.ndtr(u)) / k
