@@ -295,11 +295,12 @@ def _check_against(s, p, ref_pdf, window=W, ref_cdf=None, breaks=()):
 
 @pytest.mark.parametrize(("npar", "sqrt_s", "p"), [
     (4, None, [5.0, 4.0, 0.3]), (3, 500.0, [6.0, 3.0]), (2, None, [8.0]),
-    (4, 13000.0, [12.0, 5.0, 0.1])])
+    (4, 13000.0, [12.0, 5.0, 0.1]), (4, 120.2, [-5.0, 4.0, 0.3])])
 def test_dijet_against_published_form(npar, sqrt_s, p):
     """f(m) = p0 (1-x)^p1 / x^(p2 + p3 ln x), x = m/sqrt_s (Phys. Rev. D 79 (2009) 112002;
     p2 = p3 = 0 for fewer parameters), normalised with scipy.integrate.quad; sqrt_s
-    defaults to twice the window's upper edge (peaksift's documented choice)."""
+    defaults to twice the window's upper edge (peaksift's documented choice).  The last set
+    (sqrt_s just above the window) needs panels graded towards sqrt_s."""
     s = shapes.get("dijet", npar=npar, **({} if sqrt_s is None else {"sqrt_s": sqrt_s}))
     rs = 2 * W[1] if sqrt_s is None else sqrt_s
     p1, p2, p3 = (list(p) + [0.0, 0.0])[:3]

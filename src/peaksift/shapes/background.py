@@ -262,7 +262,8 @@ class Dijet(_Background):
 
     ``npar`` counts p0 as in the literature: 2 -> (p1), 3 -> (p1, p2), 4 -> (p1, p2, p3)
     free shape parameters; p0 is the fit's ``background_yield``.  ``sqrt_s`` (GeV) must
-    exceed the window; by default it is twice the window's upper edge.  Numerical CDF.
+    exceed the window; by default it is twice the window's upper edge.  Numerical CDF
+    (Gauss-Legendre panels, graded towards sqrt_s when it lies close to the window).
     """
 
     name = "dijet"
@@ -285,6 +286,17 @@ class Dijet(_Background):
         if rs <= window[1]:
             raise FitError(f"dijet sqrt_s={rs} must exceed the window's upper edge {window[1]}")
         return rs
+
+    def _panels(self, p, window):
+        """Uniform panels, or, when sqrt_s lies within a window width of the upper edge
+        (where (1-x)^p1 varies fastest), panels geometric in the distance from sqrt_s."""
+        lo, hi = window
+        rs = self._roots(window)
+        if rs - hi >= hi - lo:
+            return super()._panels(p, window)
+        e = rs - np.geomspace(rs - lo, rs - hi, 129)
+        e[0], e[-1] = lo, hi
+        return e
 
     def _density(self, x, p, window):
         rs = self._roots(window)
