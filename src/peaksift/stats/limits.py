@@ -473,7 +473,7 @@ def upper_limits(
         else:
             delta = math.hypot(luminosity_uncertainty, efficiency_uncertainty)
         kind = constraint
-    conv_eff = conv * spec.scale
+    conv_eff = conv  # yields in weighted units (per-bin scaled Poisson inside the model)
     notes: list[str] = []
 
     # expected: Asimov background-only data over all window bins (blinding does not matter)

@@ -103,10 +103,11 @@ def resolution_model(resolution: Any) -> Callable[[np.ndarray], np.ndarray]:
 @dataclass(frozen=True)
 class _Spectrum:
     edges: np.ndarray      # bins in the window
-    counts: np.ndarray     # effective counts (window bins)
-    scale: float           # effective-count factor sum(w)/sum(w^2) (1 unweighted)
+    counts: np.ndarray     # effective counts k_i sumw_i (window bins)
+    scale: float           # overall factor sum(w)/sum(w^2) (1 unweighted), for information
     window: tuple[float, float]
     unit: str
+    bin_scale: np.ndarray | None = None  # per-bin k_i = sumw_i/sumw2_i (None unweighted)
 
 
 def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
@@ -152,13 +153,19 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
     if sumw.sum() <= 0:
         raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
     scale = 1.0
+    bin_scale = None
     if not np.allclose(sumw, sumw2):
+        from ..fitting import _scale
+
         scale = float(sumw.sum() / sumw2.sum())
+        bin_scale = np.asarray(_scale(sumw, sumw2), float)
         warnings.warn(
-            f"scan: weighted spectrum; significances use effective counts sum(w)/sum(w^2) = "
-            f"{scale:.4g} x sum(w) (exact for equal weights, approximate otherwise)",
+            f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
+            f"k_i sum(w) per bin, k_i = sum(w)/sum(w^2) of the bin (overall {scale:.4g}); "
+            f"an approximation for unequal weights (exact for equal ones)",
             DataWarning, stacklevel=3)
-    return _Spectrum(edges, sumw * scale, scale, (float(edges[0]), float(edges[-1])), unit)
+    return _Spectrum(edges, sumw * (1.0 if bin_scale is None else bin_scale), scale,
+                     (float(edges[0]), float(edges[-1])), unit, bin_scale)
 
 
 def _blind_mask(edges: np.ndarray, blind: Any) -> np.ndarray:
@@ -349,6 +356,8 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
     fr_all = np.asarray(sig.bin_fractions(spec.edges, _signal_params(
         sig, spec.window, m_arr, sigma, natural_width, signal_params), spec.window), float)
     fr_all = np.broadcast_to(fr_all, (m_arr.size, spec.edges.size - 1))
+    if spec.bin_scale is not None:
+        fr_all = fr_all * spec.bin_scale   # expectations in effective counts, bin by bin
     fractions = np.ascontiguousarray(fr_all[:, used])
     start, lower, upper = _background_start(bkg, spec.window)
     if background_start:
@@ -360,12 +369,13 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
     proto = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
                       background=bkg, theta=start, bkg_yield=float(counts.sum()),
                       lower=lower, upper=upper, masses=m_arr[~blinded_mass],
-                      fractions=fractions[~blinded_mass])
+                      fractions=fractions[~blinded_mass], bin_scale=spec.bin_scale)
     theta, b, nll0 = _fit_data_background(proto, counts, start)
     model = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
                       background=bkg, theta=theta[0], bkg_yield=float(b[0]),
                       lower=lower, upper=upper, masses=m_arr[~blinded_mass],
-                      fractions=fractions[~blinded_mass], nll_background=float(nll0[0]))
+                      fractions=fractions[~blinded_mass], nll_background=float(nll0[0]),
+                      bin_scale=spec.bin_scale)
     info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
             "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
             "blinded_bins": blinded_bins}
@@ -410,6 +420,11 @@ class ScanResult:
         Fit at the best mass with mass and width free (None when blinded or if it failed).
     blind : (float, float) or None
         Blinded mass range; ``blinded`` marks the hypotheses inside it.
+    weight_scale : float
+        Weighted spectra: the overall ``sum w / sum w^2`` of the window, for information
+        (1 unweighted).  The likelihood itself scales every bin by its own
+        ``k_i = sumw_i / sumw2_i`` (scaled Poisson, as :func:`peaksift.fit`; empty bins get
+        the overall value); yields are in weighted units.
     """
 
     masses: np.ndarray
@@ -614,7 +629,10 @@ def scan(
     ----------
     data : MassHistogram, array of masses, or (masses, weights)
         Arrays are histogrammed in bins of a quarter of the smallest resolution (50-2000 bins)
-        unless ``bins`` is given.
+        unless ``bins`` is given.  Weighted bins are scaled Poisson variables: effective
+        counts ``k_i sumw_i`` with ``k_i = sumw_i / sumw2_i`` per bin (Bohm and Zech, NIM A
+        748 (2014) 1; the same likelihood as the weighted binned :func:`peaksift.fit`, so
+        q0 agrees with two such fits); yields are reported in weighted units.
     signal, background : shape name or Shape
         As in :func:`peaksift.fit` (e.g. ``"gaussian"``, ``"exponential"``).
     masses : array or int
@@ -662,9 +680,10 @@ def scan(
                            b_start=np.full(mb, model.bkg_yield), steps=100)
         q0 = np.where(r["s"] > 0, np.maximum(2.0 * (model.nll_background - r["nll"]), 0.0), 0.0)
         arr["q0"][~bl] = q0
-        arr["s"][~bl] = r["s"] / spec.scale
-        arr["se"][~bl] = r["s_error"] / spec.scale
-        arr["b"][~bl] = r["b"] / spec.scale
+        # yields are in weighted units already (the per-bin k_i sits in the expectations)
+        arr["s"][~bl] = r["s"]
+        arr["se"][~bl] = r["s_error"]
+        arr["b"][~bl] = r["b"]
         conv[~bl] = r["converged"]
         if not r["converged"].all():
             notes.append(f"{int((~r['converged']).sum())} hypotheses did not converge")
@@ -697,7 +716,7 @@ def _expected_z(model: ScanModel, info: dict[str, Any], spec: _Spectrum,
     """Median expected Z (Asimov: background-only fit + the signal) at every mass."""
     m = info["masses"]
     s = (np.asarray(expected_signal(m), float) if callable(expected_signal)
-         else np.full(m.shape, float(expected_signal))) * spec.scale
+         else np.full(m.shape, float(expected_signal)))
     f = info["window_fractions"]
     # expected values do not look at the data: the Asimov set covers the blinded bins too
     full = dataclasses.replace(model, masses=m, fractions=f,

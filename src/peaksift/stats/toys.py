@@ -91,7 +91,14 @@ class ScanModel:
     masses : ndarray
         Mass hypotheses.
     fractions : ndarray
-        Signal bin fractions ``(n_masses, n_used)`` at each hypothesis.
+        Signal bin fractions ``(n_masses, n_used)`` at each hypothesis (already multiplied
+        by ``bin_scale``).
+    bin_scale : ndarray or None
+        Weighted spectra: the scaled-Poisson factor ``k_i = sumw_i / sumw2_i`` of every
+        window bin (Bohm and Zech 2014; the rule of :func:`peaksift.fit`, empty bins get
+        ``sum w / sum w^2``).  Counts are effective counts ``k_i sumw_i`` and every
+        expectation is ``k_i (s f_i + b g_i)`` with the yields in weighted units, so the
+        NLL equals the weighted binned fit's up to a constant.  None: unweighted (k = 1).
     """
 
     edges: np.ndarray
@@ -107,6 +114,7 @@ class ScanModel:
     fractions: np.ndarray
     nll_background: float = float("nan")
     extras: dict = field(default_factory=dict)
+    bin_scale: np.ndarray | None = None
 
     @property
     def expected_background(self) -> np.ndarray:
@@ -119,6 +127,8 @@ def bkg_fractions(model: ScanModel, theta: np.ndarray) -> np.ndarray:
     params = [theta[:, k : k + 1] for k in range(theta.shape[1])]
     g = model.background.bin_fractions(model.edges, params, model.window)
     g = np.broadcast_to(g, (theta.shape[0], model.edges.size - 1))
+    if model.bin_scale is not None:
+        g = g * model.bin_scale
     return np.ascontiguousarray(g[:, model.used])
 
 
@@ -127,6 +137,8 @@ def bkg_gradients(model: ScanModel, theta: np.ndarray) -> np.ndarray:
     params = [theta[:, k : k + 1] for k in range(theta.shape[1])]
     dg = model.background.grad_bin_fractions(model.edges, params, model.window)
     dg = np.broadcast_to(dg, (theta.shape[1], theta.shape[0], model.edges.size - 1))
+    if model.bin_scale is not None:
+        dg = dg * model.bin_scale
     return np.ascontiguousarray(np.moveaxis(dg[:, :, model.used], 0, 1))
 
 
