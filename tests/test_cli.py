@@ -116,7 +116,45 @@ def test_unknown_cut_field_found_while_reading_leaves_nothing(tiny_data, capsys,
     assert rc == 2
     line = _one_line(err)
     assert "isolaton" in line and "isolation" in line
+    # the config file and the key that holds the cut are named
+    assert line.startswith(f"peaksift: error: config {cfg}: objects.cut: cut ")
     assert not (tmp_path / "deep").exists(), "directories made by the failed run remain"
+
+
+def test_event_cut_error_found_while_reading_names_its_key(tiny_data, capsys, tmp_path):
+    cfg = _config(tiny_data)
+    cfg.write_text(cfg.read_text().replace(
+        "[objects]\n", '[objects]\nevent_cut = "n_muon >= 2 and met > 3"\n'))
+    rc, _, err = _run(capsys, ["search", str(cfg), "--out", str(tmp_path / "out")])
+    assert rc == 2
+    line = _one_line(err)
+    assert f"config {cfg}: objects.event_cut: cut 'n_muon >= 2 and met > 3'" in line
+    assert "'met'" in line
+    _assert_nothing_written(tmp_path, "out")
+
+
+def test_missing_collection_names_the_config_key(tiny_data, capsys, tmp_path):
+    cfg = _config(tiny_data, cut="")
+    cfg.write_text(cfg.read_text().replace('collection = "muon"', 'collection = "electron"'))
+    rc, _, err = _run(capsys, ["search", str(cfg), "--out", str(tmp_path / "out")])
+    assert rc == 2
+    line = _one_line(err)
+    assert f"config {cfg}: objects.collection: collection 'electron'" in line
+    assert "collections present: muon" in line
+    assert line.endswith("Name one of those in objects.collection")
+    _assert_nothing_written(tmp_path, "out")
+
+
+def test_input_without_events_says_so(tiny_data, capsys, tmp_path):
+    t = pq.read_table(tiny_data / "events.parquet")
+    pq.write_table(t.slice(0, 0), tmp_path / "empty.parquet")
+    cfg = _config(tmp_path, files='"empty.parquet"')
+    rc, _, err = _run(capsys, ["search", str(cfg), "--out", str(tmp_path / "out")])
+    assert rc == 2
+    line = _one_line(err)
+    assert "input.files" in line and "no events" in line
+    assert "loosen" not in line  # not a selection problem
+    _assert_nothing_written(tmp_path, "out")
 
 
 def test_fit_mass_outside_window_exits_2(tiny_data, capsys):
@@ -151,7 +189,10 @@ def test_spectrum_writes_histogram_and_figure(tiny_data, capsys, tmp_path):
 def test_overrides_reach_the_config(tiny_data, capsys, tmp_path):
     cfg = _config(tiny_data)
     rc, _, err = _run(capsys, ["search", str(cfg), "--toys", "-5", "--out", str(tmp_path / "o")])
-    assert rc == 2 and "significance.toys" in _one_line(err)
+    assert rc == 2
+    # an integer key's value and bounds print as integers (the schema: 0 to 10_000_000)
+    assert "significance.toys = -5 is out of range; it must be >= 0 and <= 10000000" \
+        in _one_line(err)
     _assert_nothing_written(tmp_path, "o")
 
 

@@ -81,7 +81,11 @@ def test_out_of_range(tmp_path):
     msg = _err(tmp_path, MINIMAL + "\n[limits]\ncl = 1.5\n")
     assert "limits.cl = 1.5 is out of range" in msg and "< 1" in msg
     msg = _err(tmp_path, MINIMAL + "\n[significance]\ntoys = -3\n")
-    assert "significance.toys" in msg
+    # integer keys print as integers, value and bounds (schema: 0 to 10_000_000)
+    assert "significance.toys = -3 is out of range; it must be >= 0 and <= 10000000" in msg
+    assert "1e+07" not in msg and "-3.0" not in msg
+    msg = _err(tmp_path, MINIMAL + "\n[execution]\nchunk_events = 0\n")
+    assert "execution.chunk_events = 0 is out of range" in msg and "<= 1000000000" in msg
 
 
 def test_window_rules(tmp_path):
@@ -126,6 +130,31 @@ def test_calibration_particle_checked_against_tables(tmp_path):
     cfg = load_config(_write(tmp_path, MINIMAL + '\n[calibration]\nparticle = "Z0"\n'
                                                  "window = [70.0, 110.0]\n"))
     assert cfg.calibration.enabled
+
+
+def test_shape_option_must_be_a_number(tmp_path):
+    msg = _err(tmp_path, MINIMAL + '\n[model]\nsignal_options = { sigma = "wide" }\n')
+    assert "model.signal_options.sigma must be a number, got 'wide'" in msg
+    assert "could not convert" not in msg
+    msg = _err(tmp_path, MINIMAL + '\n[model]\nbackground = "bernstein"\n'
+                                   'background_options = { degree = "three" }\n')
+    assert "model.background_options.degree must be a number, got 'three'" in msg
+
+
+def test_calibration_window_may_not_overlap_the_blinding(tmp_path):
+    blind = "\n[blinding]\nenabled = true\nwindow = [140.0, 160.0]\n"
+    cal = '\n[calibration]\nparticle = "Z0"\nwindow = [{lo}, {hi}]\n'
+    msg = _err(tmp_path, MINIMAL + blind + cal.format(lo=100.0, hi=145.0))
+    assert "calibration.window [100, 145] overlaps blinding.window [140, 160]" in msg
+    # the hidden bins are those overlapping the window: 100 bins of 0.9 GeV on 110-200, so
+    # blinding from 140.0 hides [139.7, 140.6) too, and the message says where to stop
+    assert "spectrum bins 139.7-160.4 GeV are hidden" in msg
+    assert "at or below 139.7 GeV" in msg and "at or above 160.4 GeV" in msg
+    msg = _err(tmp_path, MINIMAL + blind + cal.format(lo=70.0, hi=140.0))
+    assert "calibration.window [70, 140] overlaps" in msg
+    # a window clear of the hidden bins is fine; so is any window without blinding
+    assert load_config(_write(tmp_path, MINIMAL + blind + cal.format(lo=70.0, hi=139.0)))
+    assert load_config(_write(tmp_path, MINIMAL + cal.format(lo=100.0, hi=145.0)))
 
 
 def test_cross_key_rules(tmp_path):

@@ -149,3 +149,40 @@ def test_write_report_relative_links(tmp_path):
     out = write_report(_results(), tmp_path, {"spectrum": fig})
     assert "](figures/spectrum.png)" in out["markdown"].read_text()
     assert "data:image/png;base64," in out["html"].read_text()
+
+
+def _blinded_results() -> dict:
+    """The results dictionary of a blinded run, as ``SearchResult.to_dict`` writes it."""
+    r = _results()
+    none = {"value": None, "error": None}
+    r["fit"] = {"valid": False, "peak_mass": dict(none), "width": dict(none),
+                "signal_yield": dict(none), "background_yield": dict(none),
+                "gof": {"chi2": None, "ndf": None, "p_value": None},
+                "problems": ["blinded: no signal-plus-background fit until --unblind"]}
+    r["blinding"] = {"enabled": True, "window": [140.5, 165.0], "unblinded": False,
+                     "active": True, "hidden_range": [140.0, 165.0]}
+    r["input"]["candidates"] = 300
+    return r
+
+
+def test_blinded_report_says_what_is_hidden(tmp_path):
+    from peaksift.report import _BLINDED_CAPTIONS, _CAPTIONS
+
+    r = _blinded_results()
+    figs = {n: _png(tmp_path, n) for n in ("spectrum", "pvalue_scan")}
+    md = render_markdown(r, {n: f"figures/{n}.png" for n in figs})
+    # no fit: the goodness of fit is n/a, not "n/a for None degrees of freedom"
+    assert "| Goodness of fit | n/a |" in md and "None" not in md
+    # the spectrum caption does not promise a fit and pulls the blinded figure lacks
+    assert f"*{_BLINDED_CAPTIONS['spectrum']}*" in md and _CAPTIONS["spectrum"] not in md
+    # counts are labelled as the sidebands', and the withheld figure is mentioned
+    assert ("candidates in the fit window 110-200 GeV outside the blinded bins 140-165 GeV "
+            "(sidebands only while blinded): 300") in md
+    assert "withheld while the run is blinded" in md
+    text = render_html(r, figs)
+    assert "withheld while the run is blinded" in text
+    assert _BLINDED_CAPTIONS["spectrum"] in text and _CAPTIONS["spectrum"] not in text
+    # an unblinded report keeps the fit caption and has no such notes
+    plain = render_markdown(_results(), {"spectrum": "figures/spectrum.png"})
+    assert _CAPTIONS["spectrum"] in plain and "withheld" not in plain
+    assert "χ² = 80.1 for 84 degrees of freedom" in plain

@@ -229,32 +229,101 @@ def test_no_staging_directories_left(run):
     assert [p.name for p in parent.iterdir()] == ["demo_out"]
 
 
+def _overlapping_bins(edges, lo, hi):
+    """Bins sharing any mass with [lo, hi]: a partly covered bin is hidden too (common
+    practice for blinding: no bin that holds blinded events is shown)."""
+    e = np.asarray(edges)
+    return (e[:-1] < hi) & (e[1:] > lo)
+
+
 def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     from peaksift.config import load_config
+    from peaksift.errors import ConfigError
+    from peaksift.histogram import MassHistogram
     from peaksift.search import run_search
 
+    b0, b1 = 140.5, 165.0  # starts mid-bin: the bin [140, 141) holds blinded events
     cfg = load_config(CONFIG).with_overrides(blinding__enabled=True,
-                                             blinding__window=[140.0, 165.0],
+                                             blinding__window=[b0, b1],
                                              limits__enabled=False, calibration__particle="",
                                              significance__toys=20, output__log_scale=True)
     res = run_search(cfg, out=tmp_path / "blind")
-    d = json.loads((tmp_path / "blind" / "results.json").read_text())
+    out = tmp_path / "blind"
+    d = json.loads((out / "results.json").read_text())
     assert d == json.loads(json.dumps(d))  # plain JSON
     scan = d["scan"]
-    inside = [i for i, m in enumerate(scan["mass"]) if 140.0 <= m <= 165.0]
+    inside = [i for i, m in enumerate(scan["mass"]) if b0 <= m <= b1]
     assert inside and all(scan["z_local"][i] is None for i in inside)
     assert all(scan["z_local"][i] is not None for i in range(len(scan["mass"]))
                if i not in inside)
     assert d["fit"]["peak_mass"]["value"] is None and d["blinding"]["active"]
-    assert not (140.0 <= d["best"]["mass"] <= 165.0)
+    assert not (b0 <= d["best"]["mass"] <= b1)
     assert res.fit is None
-    figs = tmp_path / "blind" / "figures"
+    figs = out / "figures"
     assert (figs / "spectrum.png").exists() and (figs / "spectrum_log.png").exists()
-    assert "blinded" in (tmp_path / "blind" / "report.md").read_text().lower()
+    # the pT/rapidity histograms include the blinded window: no such figure, and the
+    # report says it is withheld
+    assert not list(figs.glob("candidates.*"))
+    md = (out / "report.md").read_text()
+    assert "blinded" in md.lower() and "withheld while the run is blinded" in md
+    assert "for None degrees of freedom" not in md and "| Goodness of fit | n/a |" in md
+
+    # spectrum.json: every bin overlapping the window is empty, and the file says why
+    h = MassHistogram.load(out / "spectrum.json")
+    hidden = _overlapping_bins(h.edges, b0, b1)
+    assert hidden.sum() == 25 and hidden[30]  # 140-165 GeV in 1 GeV bins, [140, 141) too
+    assert np.all(h.sumw[hidden] == 0) and np.all(h.sumw2[hidden] == 0)
+    raw = json.loads((out / "spectrum.json").read_text())
+    assert raw["blinded"]["window"] == [b0, b1]
+    assert raw["blinded"]["hidden_range"] == [140.0, 165.0]
 
     # --unblind lifts it for one run: numbers inside the window, the peak found again
-    un = run_search(cfg, out=False, unblind=True).to_dict()
+    unres = run_search(cfg, out=False, unblind=True)
+    un = unres.to_dict()
     assert un["blinding"]["unblinded"] and not un["blinding"]["active"]
     assert all(un["scan"]["z_local"][i] is not None for i in inside)
     assert 140.0 <= un["best"]["mass"] <= 165.0
     assert un["fit"]["valid"]
+
+    # the counts are the sidebands': the full spectrum minus the hidden bins
+    full = unres.histogram
+    assert np.array_equal(full.sumw[~hidden], h.sumw[~hidden])
+    n_hidden = int(full.sumw[hidden].sum())
+    assert n_hidden > 0
+    assert d["input"]["candidates"] == int(full.sumw[~hidden].sum()) == int(h.total())
+    assert d["input"]["candidates"] == un["input"]["candidates"] - n_hidden
+    assert d["input"]["sum_of_weights"] == pytest.approx(h.total())
+    assert f"{d['input']['candidates']:,}".replace(",", "\u2009") in md
+
+    # a calibration window reaching into the hidden bins is refused before any reading
+    with pytest.raises(ConfigError) as info:
+        cfg.with_overrides(calibration__particle="Z0", calibration__window=[70.0, 140.3])
+    msg = str(info.value)
+    assert "calibration.window" in msg and "blinding.window" in msg and "\n" not in msg
+    assert "140" in msg  # says where the calibration window has to end
+
+
+def test_spectrum_figure_hides_the_bins_the_statistics_leave_out(monkeypatch, tmp_path):
+    """The figure hides exactly the bins that overlap the blinded range (as the scan does),
+    including a bin whose centre lies on the range's edge."""
+    from peaksift import plotting
+    from peaksift.histogram import MassHistogram
+
+    h = MassHistogram(bins=90, range=(110.0, 200.0))
+    h.fill(np.repeat(h.centers, 3))
+    drawn = []
+
+    def keep(fig, outdir, name, formats=("png",)):
+        for line in fig.axes[0].lines:
+            x, y = np.asarray(line.get_xdata(), float), np.asarray(line.get_ydata(), float)
+            if x.size == h.nbins:
+                drawn.append((x, y))
+        return tmp_path / f"{name}.png"
+
+    monkeypatch.setattr(plotting, "save", keep)
+    plotting.spectrum_only(h, tmp_path, blind=(140.5, 165.0))
+    assert drawn
+    x, y = drawn[0]
+    assert np.allclose(x, h.centers)
+    hidden = _overlapping_bins(h.edges, 140.5, 165.0)
+    assert np.all(np.isnan(y[hidden])) and np.all(y[~hidden] == 3)

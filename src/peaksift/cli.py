@@ -54,9 +54,11 @@ def _summary(result: object) -> str:
     d = result.to_dict()  # type: ignore[attr-defined]
     best, fit, inp = d["best"], d["fit"], d["input"]
     pm, w, sy = fit["peak_mass"], fit["width"], fit["signal_yield"]
+    blinded = bool(d.get("blinding", {}).get("active"))
     lines = ["peaksift search: summary",
              _row("events read", f"{inp['events_read']:,}"),
-             _row("candidates in window", f"{inp['candidates']:,}"),
+             _row("candidates in sidebands" if blinded else "candidates in window",
+                  f"{inp['candidates']:,}"),
              _row("best mass hypothesis", f"{best['mass']:.2f} GeV"),
              _row("fitted mass", format_pm(pm["value"], pm["error"], "GeV")),
              _row(f"fitted width ({fit.get('width_parameter', 'width')})",
@@ -116,8 +118,11 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
     res = run_spectrum(args.config, out=args.out, engine=args.engine,
                        progress=_progress_wanted(args))
     h = res.histogram
+    bl = res.config.blinding
+    hidden = (f" outside the blinded window [{bl.window[0]:g}, {bl.window[1]:g}] GeV "
+              "(its bins are hidden)" if bl.enabled else "")
     print(f"peaksift spectrum: {h.total():,.6g} candidates in {h.nbins} bins on "
-          f"[{h.lo:g}, {h.hi:g}] GeV from {res.collected.events_read:,} events")
+          f"[{h.lo:g}, {h.hi:g}] GeV{hidden} from {res.collected.events_read:,} events")
     for name, path in res.files.items():
         print(f"  {name:<14} {path}")
     return 0

@@ -513,8 +513,21 @@ def _type_name(v: Any) -> str:
     return type(v).__name__
 
 
-def _fmt(v: float) -> str:
+def _fmt(v: float, integer: bool = False) -> str:
+    """A bound or value as text: integer keys as integers (``10000000``, not ``1e+07``)."""
+    if integer and float(v).is_integer():
+        return str(int(v))
     return f"{v:g}"
+
+
+def _range_text(key: _Key) -> str:
+    """``>= 0 and <= 10000000``: the allowed range of a numeric key."""
+    integer = key.kind == "int"
+    lo = "" if key.lo is None else (
+        f"{'>' if key.lo_open else '>='} {_fmt(key.lo, integer)}")
+    hi = "" if key.hi is None else (
+        f"{'<' if key.hi_open else '<='} {_fmt(key.hi, integer)}")
+    return " and ".join(x for x in (lo, hi) if x)
 
 
 def _check_range(path: str, key: _Key, v: float, where: str) -> None:
@@ -526,10 +539,9 @@ def _check_range(path: str, key: _Key, v: float, where: str) -> None:
     if key.hi is not None and (v > key.hi or (key.hi_open and v == key.hi)):
         bad = True
     if bad:
-        lo = "" if key.lo is None else (f"> {_fmt(key.lo)}" if key.lo_open else f">= {_fmt(key.lo)}")
-        hi = "" if key.hi is None else (f"< {_fmt(key.hi)}" if key.hi_open else f"<= {_fmt(key.hi)}")
-        rng = " and ".join(x for x in (lo, hi) if x)
-        raise ConfigError(f"{where}: {path} = {v!r} is out of range; it must be {rng}")
+        shown = _fmt(v, True) if key.kind == "int" else repr(v)
+        raise ConfigError(f"{where}: {path} = {shown} is out of range; it must be "
+                          f"{_range_text(key)}")
 
 
 def _number(path: str, v: Any, where: str, *, integer: bool) -> float | int:
@@ -680,11 +692,38 @@ def _check_shape(path: str, name: str, where: str, kind: str,
     if options:
         from .errors import FitError
 
+        for k, v in options.items():  # every shape option is a number (start, order, ...)
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                raise ConfigError(f"{where}: {path}_options.{k} must be a number, got {v!r}")
         try:
             shapes.get(name, **dict(options))
         except (FitError, TypeError, ValueError) as exc:
             raise ConfigError(f"{where}: {path}_options {dict(options)!r} not accepted by "
                               f"{name!r}: {' '.join(str(exc).split())}") from None
+
+
+def _check_calibration_outside_blinding(cal: tuple[float, float], blind: tuple[float, float],
+                                        spectrum: Mapping[str, Any], where: str) -> None:
+    """The calibration fit must not see blinded data: its window may not overlap the spectrum
+    bins hidden by the blinding (every bin overlapping ``blinding.window``, as the statistics
+    layer's ``_blind_mask``)."""
+    import numpy as np
+
+    from .stats.scan import _blind_mask
+
+    lo, hi = spectrum["window"]
+    e = np.linspace(lo, hi, int(spectrum["bins"]) + 1)
+    idx = np.flatnonzero(_blind_mask(e, blind))
+    h0, h1 = (float(e[idx[0]]), float(e[idx[-1] + 1])) if idx.size else blind
+    c0, c1 = cal
+    if c0 < h1 and c1 > h0:
+        raise ConfigError(
+            f"{where}: calibration.window [{c0:g}, {c1:g}] overlaps blinding.window "
+            f"[{blind[0]:g}, {blind[1]:g}] (spectrum bins {h0:g}-{h1:g} GeV are hidden), so "
+            f"the calibration fit would see blinded data; end calibration.window at or below "
+            f"{h0:g} GeV or start it at or above {h1:g} GeV, or disable the calibration "
+            "(calibration.particle = \"\")"
+        )
 
 
 def _check_cut(path: str, text: str, where: str) -> None:
@@ -810,6 +849,8 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         if cal["window"] is None:
             raise ConfigError(f"{where}: calibration.window is required when "
                               "calibration.particle is set, e.g. window = [70.0, 110.0]")
+        if bl["enabled"]:
+            _check_calibration_outside_blinding(cal["window"], bl["window"], sp, where)
         _check_shape("calibration.signal", cal["signal"], where, "signal",
                      cal["signal_options"])
         _check_shape("calibration.background", cal["background"], where, "background",
@@ -904,16 +945,12 @@ def _default_text(key: _Key) -> str:
 def _allowed_text(key: _Key) -> str:
     if key.choices:
         return ", ".join(f'"{c}"' for c in key.choices)
-    parts = []
-    if key.lo is not None:
-        parts.append(f"{'>' if key.lo_open else '>='} {key.lo:g}")
-    if key.hi is not None:
-        parts.append(f"{'<' if key.hi_open else '<='} {key.hi:g}")
+    rng = _range_text(key)
     kinds = {"str": "string", "int": "integer", "float": "number", "bool": "true/false",
              "window": "[low, high] GeV", "paths": "string or list of strings",
              "strings": "list of strings", "table": "table", "pairs": "[[mass, sigma], ...]"}
     base = kinds.get(key.kind, key.kind)
-    return base + (f", {' and '.join(parts)}" if parts else "")
+    return base + (f", {rng}" if rng else "")
 
 
 def reference_markdown() -> str:

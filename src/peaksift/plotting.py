@@ -4,7 +4,8 @@ Which function
 --------------
 * :func:`search_figures` -- every figure of a :class:`~peaksift.search.SearchResult` into a
   directory: ``spectrum`` (fit, signal component, pulls; optionally also ``spectrum_log``),
-  ``pvalue_scan``, ``limits``, ``candidates``, ``calibration``.  Returns name -> PNG path.
+  ``pvalue_scan``, ``limits``, ``candidates`` (not while blinded: its histograms include the
+  blinded window), ``calibration``.  Returns name -> PNG path.
 * :func:`spectrum_only` -- the selected spectrum without a fit (``peaksift spectrum``).
 * :func:`candidates` -- the candidates' pT and rapidity.
 * :func:`save` -- write one figure in several formats.
@@ -70,30 +71,44 @@ def _text(ax: Any, lines: Sequence[str], *, loc: str = "upper right") -> None:
 def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                   formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                   blind: Sequence[float] | None = None, title: str = "") -> dict[str, Path]:
-    """The selected spectrum as points with Poisson-like error bars (``sqrt(sumw2)``)."""
+    """The selected spectrum as points with Poisson-like error bars (``sqrt(sumw2)``).
+
+    With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
+    statistics layer leaves out (:func:`peaksift.stats.scan._blind_mask`) -- the hidden bins'
+    mass range is hatched, and the count in the corner is that of the sidebands only.
+    """
     plt = _plt()
     out: dict[str, Path] = {}
     h = hist
+    span = None
     if blind is not None:
+        from .stats.scan import _blind_mask
+
         h = hist.copy()
-        inside = (h.centers > blind[0]) & (h.centers < blind[1])
+        e = np.asarray(h.edges, dtype=float)
+        inside = _blind_mask(e, blind)
         h.sumw[inside] = np.nan
         h.sumw2[inside] = np.nan
+        idx = np.flatnonzero(inside)
+        span = (float(e[idx[0]]), float(e[idx[-1] + 1])) if idx.size else None
+    shown = h.sumw[np.isfinite(h.sumw)]
+    total = float(shown.sum())
+    where = " outside the blinded window" if span is not None else ""
+    count = (f"sum of weights {total:,.1f}{where}" if hist.is_weighted
+             else f"{total:,.0f} candidates{where}")
     for log in ([False, True] if log_scale else [False]):
         with figure_style():
             fig, ax = plt.subplots(figsize=(7.0, 4.6))
             h.plot(ax=ax, color=COLORS["data"])
-            _shade_blind(ax, blind)
+            _shade_blind(ax, span)
             if log:
                 ax.set_yscale("log")
-                pos = hist.sumw[hist.sumw > 0]
+                pos = shown[shown > 0]  # the axis range must not reveal the hidden bins
                 if pos.size:
                     ax.set_ylim(0.5 * pos.min(), 3.0 * pos.max())
             else:
                 ax.set_ylim(0, None)
-            _text(ax, [title, f"{hist.total():,.0f} candidates" if not hist.is_weighted
-                       else f"sum of weights {hist.total():,.1f}"] if title else
-                  [f"{hist.total():,.0f} candidates"])
+            _text(ax, [title, count] if title else [count])
             ax.legend(loc="upper left")
             out["spectrum_log" if log else "spectrum"] = save(
                 fig, outdir, "spectrum_log" if log else "spectrum", formats)
@@ -153,7 +168,8 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
     out["pvalue_scan"] = _scan_figure(result, outdir, formats)
     if result.limits is not None:
         out["limits"] = _limits_figure(result, outdir, formats, blind)
-    out.update(candidates(result.collected, outdir, formats=formats))
+    if blind is None:  # the pT/rapidity histograms include the blinded window: withheld
+        out.update(candidates(result.collected, outdir, formats=formats))
     if calibration is not None and calibration[1] is not None and result.calibration:
         c = result.calibration
         title = (f"calibration: {c['particle']}, particle-data tables "

@@ -57,6 +57,46 @@ _CAPTIONS = {
     "calibration": "Calibration fit of the standard-candle peak in its own window.",
 }
 
+# captions that differ while the run is blinded (no fit drawn, nothing shown inside)
+_BLINDED_CAPTIONS = {
+    "spectrum": "Selected mass spectrum while blinded: the bins overlapping the blinded window "
+                "(hatched) are hidden, and no signal-plus-background fit or pulls are drawn "
+                "until the run is unblinded.",
+    "pvalue_scan": "Local p-value of the background-only hypothesis at each mass hypothesis "
+                   "outside the blinded window (none is computed inside it), with the 1 to 5 "
+                   "sigma levels; the global significance of the largest excess is noted.",
+    "limits": "Upper limits at each mass hypothesis: observed outside the blinded window only, "
+              "and the expected median with its 68% and 95% bands under the "
+              "background-only hypothesis everywhere.",
+}
+
+_WITHHELD_CANDIDATES = ("The candidates' transverse momentum and rapidity figure is withheld "
+                        "while the run is blinded (its histograms include the candidates inside "
+                        "the blinded window).")
+
+
+def _blinded(r: Mapping[str, Any]) -> bool:
+    return bool((r.get("blinding") or {}).get("active"))
+
+
+def _caption(name: str, r: Mapping[str, Any]) -> str:
+    if _blinded(r) and name in _BLINDED_CAPTIONS:
+        return _BLINDED_CAPTIONS[name]
+    return _CAPTIONS.get(name, name)
+
+
+def _window_count_label(r: Mapping[str, Any]) -> str:
+    """What ``input.candidates`` counts: the fit window, or only its sidebands while blinded."""
+    w = ((r.get("config") or {}).get("spectrum") or {}).get("window")
+    txt = f"candidates in the fit window {_num(w[0])}-{_num(w[1])} GeV" if w \
+        else "candidates in the fit window"
+    if _blinded(r):
+        hr = (r.get("blinding") or {}).get("hidden_range") or \
+            (r.get("blinding") or {}).get("window")
+        hid = f" {_num(hr[0])}-{_num(hr[1])} GeV" if hr else ""
+        txt += f" outside the blinded bins{hid} (sidebands only while blinded)"
+    return txt
+
 
 # ------------------------------------------------------------------------------- writing
 def atomic_write(path: str | os.PathLike[str], data: bytes | str) -> Path:
@@ -186,15 +226,23 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     ]
     gof = fit.get("gof") or {}
     if gof:
-        rows.append(("Goodness of fit", (f"\u03c7\u00b2 = {_num(gof.get('chi2'))} for "
-                                        f"{gof.get('ndf', 'n/a')} degrees of freedom "
-                                        f"(p = {_p(gof.get('p_value'))})")))
+        if gof.get("chi2") is None:  # no fit (blinded) or no goodness of fit
+            rows.append(("Goodness of fit", "n/a"))
+        else:
+            ndf = gof.get("ndf")
+            rows.append(("Goodness of fit", (f"\u03c7\u00b2 = {_num(gof.get('chi2'))} for "
+                                            f"{'n/a' if ndf is None else ndf} degrees of "
+                                            f"freedom (p = {_p(gof.get('p_value'))})")))
     bl = r.get("blinding") or {}
     if bl.get("active"):
         w = bl.get("window") or [None, None]
-        rows.insert(0, ("BLINDED", (f"data in {_num(w[0])}-{_num(w[1])} GeV are hidden: no "
-                                   "observed numbers there and no signal-plus-background fit "
-                                   "until the run is unblinded (--unblind)")))
+        hr = bl.get("hidden_range")
+        bins = (f" (spectrum bins {_num(hr[0])}-{_num(hr[1])} GeV)"
+                if hr and list(hr) != list(w) else "")
+        rows.insert(0, ("BLINDED", (f"data in {_num(w[0])}-{_num(w[1])} GeV{bins} are hidden: "
+                                   "no observed numbers there and no signal-plus-background "
+                                   "fit until the run is unblinded (--unblind); candidate "
+                                   "counts are those of the sidebands")))
     else:
         rows.append(("Fit valid", "yes" if fit.get("valid") else
                      "NO: " + "; ".join(fit.get("problems") or ["see the fit section"])))
@@ -230,10 +278,8 @@ def _cutflow_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     inp = r.get("input") or {}
     cf = inp.get("cutflow") or {}
     rows = [(str(k).replace("_", " "), _num(v)) for k, v in cf.items()]
-    w = ((r.get("config") or {}).get("spectrum") or {}).get("window")
-    if rows and w and inp.get("candidates") is not None:
-        rows.append((f"candidates in the fit window {_num(w[0])}-{_num(w[1])} GeV",
-                     _num(inp["candidates"])))
+    if rows and inp.get("candidates") is not None:
+        rows.append((_window_count_label(r), _num(inp["candidates"])))
     return rows
 
 
@@ -380,7 +426,7 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
     out.append("")
     for name in ("spectrum", "spectrum_log", "pvalue_scan"):
         if name in fig:
-            out += [f"![{name}]({fig[name]})", "", f"*{_CAPTIONS[name]}*", ""]
+            out += [f"![{name}]({fig[name]})", "", f"*{_caption(name, r)}*", ""]
     cal = _calibration_rows(r)
     if cal:
         out += ["## Calibration peak", "", _md_table(["quantity", "value"], cal), ""]
@@ -395,16 +441,18 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
                 f"({lim.get('method', 'asymptotic')}), unit: {lim.get('unit', 'events')}."), "",
                 _md_table(head, rows), ""]
         if "limits" in fig:
-            out += [f"![limits]({fig['limits']})", "", f"*{_CAPTIONS['limits']}*", ""]
+            out += [f"![limits]({fig['limits']})", "", f"*{_caption('limits', r)}*", ""]
     inp = r.get("input") or {}
     out += ["## Selection and cut flow", "", _md_table(["setting", "value"], _selection_rows(r)),
             "", _md_table(["step", "count"], _cutflow_rows(r)) if _cutflow_rows(r) else "", ""]
     out.append(f"Events read: {_num(inp.get('events_read'))}; events with a candidate: "
-               f"{_num(inp.get('events_selected'))}; candidates in the fit window: "
+               f"{_num(inp.get('events_selected'))}; {_window_count_label(r)}: "
                f"{_num(inp.get('candidates'))}.")
     out.append("")
     if "candidates" in fig:
         out += [f"![candidates]({fig['candidates']})", "", f"*{_CAPTIONS['candidates']}*", ""]
+    elif _blinded(r):
+        out += [_WITHHELD_CANDIDATES, ""]
     out += ["## Provenance", "", _md_table(["item", "value"], _provenance_rows(r)), ""]
     files = (r.get("provenance") or {}).get("inputs") or []
     if files:
@@ -452,9 +500,9 @@ def _html_table(head: Sequence[str], rows: Sequence[Sequence[str]], *,
     return "\n".join(out)
 
 
-def _img(path: str | os.PathLike[str], name: str) -> str:
+def _img(path: str | os.PathLike[str], name: str, cap: str | None = None) -> str:
     data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
-    cap = _CAPTIONS.get(name, name)
+    cap = _CAPTIONS.get(name, name) if cap is None else cap
     return (f'<figure id="fig-{_h(name)}"><img alt="{_h(name)}" '
             f'src="data:image/png;base64,{data}"><figcaption>{_h(cap)}</figcaption></figure>')
 
@@ -482,7 +530,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
                  "standard deviations, charge compatible with the pair).</p>")
     for name in ("spectrum", "spectrum_log", "pvalue_scan"):
         if name in fig:
-            b.append(_img(fig[name], name))
+            b.append(_img(fig[name], name, _caption(name, r)))
     cal = _calibration_rows(r)
     if cal:
         b += ["<h2>Calibration peak</h2>", _html_table(["quantity", "value"], cal)]
@@ -496,16 +544,18 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
               f"({_h(lim.get('method', 'asymptotic'))}), unit: {_h(lim.get('unit', 'events'))}."
               "</p>"), _html_table(head, rows)]
         if "limits" in fig:
-            b.append(_img(fig["limits"], "limits"))
+            b.append(_img(fig["limits"], "limits", _caption("limits", r)))
     inp = r.get("input") or {}
     b += ["<h2>Selection and cut flow</h2>", _html_table(["setting", "value"], _selection_rows(r))]
     if _cutflow_rows(r):
         b.append(_html_table(["step", "count"], _cutflow_rows(r)))
     b.append(f"<p>Events read: {_h(_num(inp.get('events_read')))}; events with a candidate: "
-             f"{_h(_num(inp.get('events_selected')))}; candidates in the fit window: "
+             f"{_h(_num(inp.get('events_selected')))}; {_h(_window_count_label(r))}: "
              f"{_h(_num(inp.get('candidates')))}.</p>")
     if "candidates" in fig:
         b.append(_img(fig["candidates"], "candidates"))
+    elif _blinded(r):
+        b.append(f"<p>{_h(_WITHHELD_CANDIDATES)}</p>")
     for name, path in fig.items():
         if name not in _CAPTIONS:
             b.append(_img(path, name))

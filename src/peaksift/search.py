@@ -48,7 +48,7 @@ from typing import Any
 import numpy as np
 
 from .config import Config, load_config
-from .errors import ConfigError, FitError, PeaksiftError
+from .errors import ConfigError, CutError, FitError, InputError, PeaksiftError
 
 __all__ = ["SearchResult", "SpectrumResult", "run_fit", "run_search", "run_spectrum"]
 
@@ -131,7 +131,7 @@ class SearchResult:
                 "files_skipped": [s.to_dict() for s in col.files_skipped],
                 "events_read": int(col.events_read),
                 "events_selected": _events_selected(cutflow),
-                "candidates": _in_window(col, self.config),
+                "candidates": _in_window(col, self.config, _hidden(self.blinding)),
                 "candidates_all_masses": int(col.candidates),
                 "sum_of_weights": float(self.histogram.total()),
                 "cutflow": cutflow,
@@ -173,11 +173,65 @@ def _fit_dict(fr: Any) -> dict[str, Any]:
     return {**{k: d.get(k) for k in keep}, **{k: v for k, v in d.items() if k not in keep}}
 
 
-def _in_window(col: Any, cfg: Config) -> int:
-    """Candidates (not weights) with a mass inside the fit window."""
+def _in_window(col: Any, cfg: Config, hidden: tuple[float, float] | None = None) -> int:
+    """Candidates (not weights) with a mass inside the fit window; with ``hidden`` (the mass
+    range of the blinded bins) only those outside it: the sidebands."""
     lo, hi = cfg.spectrum.window
     m = np.asarray(col.window_mass, dtype=float)
-    return int(np.count_nonzero((m >= lo) & (m < hi)))
+    keep = (m >= lo) & (m < hi)
+    if hidden is not None:
+        keep &= ~((m >= hidden[0]) & (m < hidden[1]))
+    return int(np.count_nonzero(keep))
+
+
+def _hidden(blinding: Mapping[str, Any]) -> tuple[float, float] | None:
+    """The mass range ``[lo, hi)`` of the hidden bins while blinding is active, else None."""
+    r = blinding.get("hidden_range") if blinding.get("active") else None
+    return (float(r[0]), float(r[1])) if r else None
+
+
+def _hidden_range(edges: Any, blind: Any) -> tuple[float, float] | None:
+    """Mass range covered by the bins that overlap ``blind`` (the bins the statistics layer
+    leaves out, :func:`peaksift.stats.scan._blind_mask`); None when no bin overlaps."""
+    from .stats.scan import _blind_mask
+
+    e = np.asarray(edges, dtype=float)
+    idx = np.flatnonzero(_blind_mask(e, blind))
+    if idx.size == 0:
+        return None
+    return float(e[idx[0]]), float(e[idx[-1] + 1])
+
+
+def _blinded_copy(hist: Any, blind: Any) -> Any:
+    """A copy of ``hist`` with the bins overlapping ``blind`` emptied (sumw = sumw2 = 0)."""
+    from .stats.scan import _blind_mask
+
+    h = hist.copy()
+    mask = _blind_mask(np.asarray(h.edges, dtype=float), blind)
+    h.sumw[mask] = 0.0
+    h.sumw2[mask] = 0.0
+    return h
+
+
+def _save_spectrum(hist: Any, path: Path, blinding: Mapping[str, Any]) -> Path:
+    """``spectrum.json`` in the MassHistogram format; while blinded the histogram given is
+    the emptied copy and a ``blinded`` entry (ignored by ``MassHistogram.load``) says which
+    bins hold 0 because they are hidden, not because they are empty."""
+    hidden = _hidden(blinding)
+    if hidden is None:
+        return hist.save(path)
+    import json
+
+    from .report import atomic_write
+
+    d = hist.to_dict()
+    d["blinded"] = {
+        "window": list(blinding.get("window") or []),
+        "hidden_range": list(hidden),
+        "note": "the bins overlapping the blinded window are hidden: their sumw and sumw2 "
+                "are set to 0 (not measured empty); rerun with --unblind for the full spectrum",
+    }
+    return atomic_write(path, json.dumps(d, indent=1))
 
 
 def _blinded_fit() -> dict[str, Any]:
@@ -290,12 +344,55 @@ def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
     width = (hi - lo) / cfg.spectrum.bins
     nb = max(1, min(100_000, int(np.ceil((uhi - ulo) / width))))
     ex = cfg.execution
-    col = collect(
-        cfg.input.files, _selection(cfg, ulo, uhi, nb),
-        engine=ex.engine, workers=ex.workers, address=ex.address or None,
-        chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
-    )
+    try:
+        col = collect(
+            cfg.input.files, _selection(cfg, ulo, uhi, nb),
+            engine=ex.engine, workers=ex.workers, address=ex.address or None,
+            chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
+        )
+    except CutError as exc:
+        raise _keyed_cut_error(cfg, exc) from None
+    except InputError as exc:
+        raise _keyed_input_error(cfg, exc) from None
     return col, ulo, uhi
+
+
+def _where(cfg: Config) -> str:
+    return f"config {cfg.source}" if cfg.source != "<dict>" else "config"
+
+
+def _one_line(exc: BaseException) -> str:
+    return " ".join(str(exc).split())
+
+
+def _keyed_cut_error(cfg: Config, exc: CutError) -> CutError:
+    """A cut that failed on the data, prefixed with the config key that holds it."""
+    ob = cfg.objects
+    expr = getattr(exc, "expression", None)
+    msg = _one_line(exc)
+    keys = [k for k in ("cut", "second_cut", "event_cut") if getattr(ob, k)
+            and (getattr(ob, k) == expr or msg.startswith(f"cut {getattr(ob, k)!r}"))]
+    if not keys:
+        return exc
+    path = " / ".join(f"objects.{k}" for k in keys)
+    new = CutError(f"{_where(cfg)}: {path}: {msg}")
+    for a in ("expression", "position"):
+        if hasattr(exc, a):
+            setattr(new, a, getattr(exc, a))
+    return new
+
+
+def _keyed_input_error(cfg: Config, exc: InputError) -> InputError:
+    """A collection missing from the files, named by its config key."""
+    msg = _one_line(exc)
+    ob = cfg.objects
+    for key in ("collection", "second_collection"):
+        name = getattr(ob, key)
+        if name and msg.startswith(f"collection '{name}' is not in"):
+            msg = msg.replace("Name one of those in 'collections'",
+                              f"Name one of those in objects.{key}")
+            return InputError(f"{_where(cfg)}: objects.{key}: {msg}")
+    return exc
 
 
 def _fill(col: Any, cfg: Config, lo: float, hi: float, nbins: int) -> Any:
@@ -450,10 +547,23 @@ def run_search(
 
 
 def _blinding(cfg: Config, unblind: bool) -> dict[str, Any]:
+    """The results.json ``blinding`` section; while active it names the hidden bins' mass
+    range and what is withheld."""
     b = cfg.blinding
-    return {"enabled": b.enabled, "window": list(b.window) if b.window else None,
-            "unblinded": bool(b.enabled and unblind),
-            "active": bool(b.enabled and not unblind)}
+    out: dict[str, Any] = {"enabled": b.enabled, "window": list(b.window) if b.window else None,
+                           "unblinded": bool(b.enabled and unblind),
+                           "active": bool(b.enabled and not unblind)}
+    if out["active"]:
+        hidden = _hidden_range(cfg.spectrum.edges, b.window)
+        out["hidden_range"] = list(hidden) if hidden else None
+        out["counts"] = ("input.candidates and input.sum_of_weights count the sidebands only "
+                         "(the fit window outside hidden_range); input.cutflow and "
+                         "input.candidates_all_masses count the selection at all masses")
+        out["withheld"] = ["signal-plus-background fit",
+                           "observed scan and limit values inside the window",
+                           "spectrum.json bins in hidden_range (set to 0)",
+                           "candidates figure (pT and rapidity)"]
+    return out
 
 
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
@@ -465,13 +575,11 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     col, _, _ = _collect(cfg, progress=progress)
     lo, hi = cfg.spectrum.window
     hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
-    if hist.total() <= 0:
-        raise FitError(
-            f"no candidates in the fit window [{lo:g}, {hi:g}] GeV after the selection "
-            f"({col.events_read} events read); loosen objects.cut or move spectrum.window"
-        )
+    _require_candidates(cfg, col, hist)
     blind = _blinding(cfg, unblind)
     blind_window = tuple(cfg.blinding.window) if blind["active"] else None
+    if blind_window is not None:  # nothing downstream sees the blinded bins' contents
+        hist = _blinded_copy(hist, blind_window)
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -548,7 +656,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
                                    log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
-    hist.save(stage.path / "spectrum.json")
+    _save_spectrum(hist, stage.path / "spectrum.json", blind)
     prov["finished"] = _utc()
     final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
     result = SearchResult(**{**result.__dict__, "figures": final_figs})
@@ -556,6 +664,24 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     write_results_json(d, stage.path / "results.json")
     write_report(d, stage.path, figs)
     return result
+
+
+def _require_candidates(cfg: Config, col: Any, hist: Any) -> None:
+    """Stop with a message saying why the fit window is empty: no events, or the selection."""
+    lo, hi = cfg.spectrum.window
+    if hist.total() > 0:
+        return
+    if int(col.events_read) == 0:
+        n = len(col.files_read)
+        what = "the input file holds" if n == 1 else f"the {n} input files hold"
+        raise InputError(
+            f"{_where(cfg)}: input.files: {what} no events (0 events read); point "
+            "input.files at files with events"
+        )
+    raise FitError(
+        f"no candidates in the fit window [{lo:g}, {hi:g}] GeV after the selection "
+        f"({col.events_read} events read); loosen objects.cut or move spectrum.window"
+    )
 
 
 def _opt(**kw: Any) -> dict[str, Any]:
@@ -655,7 +781,12 @@ def run_spectrum(
     engine: str | None = None,
     progress: bool = False,
 ) -> SpectrumResult:
-    """Only the selected spectrum: ``spectrum.json`` (MassHistogram format) and its figure."""
+    """Only the selected spectrum: ``spectrum.json`` (MassHistogram format) and its figure.
+
+    With ``blinding.enabled`` the bins overlapping ``blinding.window`` are emptied in the
+    histogram returned and saved (marked in the file's ``blinded`` entry) and hidden in the
+    figure, and the candidates' pT/rapidity figure is not written (it includes them).
+    """
     cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
@@ -663,20 +794,24 @@ def run_spectrum(
         col, _, _ = _collect(cfg, progress=progress)
         lo, hi = cfg.spectrum.window
         hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
+        blinding = _blinding(cfg, unblind=False)
+        blind = cfg.blinding.window if blinding["active"] else None
+        if blind is not None:  # `peaksift spectrum` has no --unblind: always hidden
+            hist = _blinded_copy(hist, blind)
         files: dict[str, Path] = {}
         if stage is not None:
             from . import plotting
 
-            hist.save(stage.path / "spectrum.json")
-            blind = cfg.blinding.window if cfg.blinding.enabled else None
+            _save_spectrum(hist, stage.path / "spectrum.json", blinding)
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)
                 figs = plotting.spectrum_only(hist, stage.path / "figures",
                                               formats=cfg.output.formats,
                                               log_scale=cfg.output.log_scale, blind=blind,
                                               title=_short_title(cfg))
-                figs.update(plotting.candidates(col, stage.path / "figures",
-                                                formats=cfg.output.formats))
+                if blind is None:  # pT/rapidity include the blinded window: withheld
+                    figs.update(plotting.candidates(col, stage.path / "figures",
+                                                    formats=cfg.output.formats))
             files = {"spectrum.json": target / "spectrum.json",
                      **{k: target / "figures" / Path(v).name for k, v in figs.items()}}
     return SpectrumResult(config=cfg, histogram=hist, collected=col, outdir=target, files=files)
@@ -715,6 +850,7 @@ def run_fit(
                           "choose a mass inside the fit window")
     col, _, _ = _collect(cfg, progress=progress)
     hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
+    _require_candidates(cfg, col, hist)
     sig = _shape(cfg.model.signal, cfg.model.signal_options)
     bkg = _shape(cfg.model.background, cfg.model.background_options)
     start = {"mass": float(mass)}
