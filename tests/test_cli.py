@@ -186,6 +186,30 @@ def test_spectrum_writes_histogram_and_figure(tiny_data, capsys, tmp_path):
     assert (foreign / "notes.txt").read_text() == "keep me"
 
 
+def test_spectrum_while_blinded_hides_the_window(tiny_data, capsys, tmp_path):
+    from peaksift.histogram import MassHistogram
+
+    cfg = _config(tiny_data, "[blinding]\nenabled = true\nwindow = [101.0, 110.0]\n")
+    rc, stdout, _ = _run(capsys, ["spectrum", str(cfg), "--out", str(tmp_path / "b"),
+                                  "--quiet"])
+    assert rc == 0 and "outside the blinded window [101, 110] GeV" in stdout
+    h = MassHistogram.load(tmp_path / "b" / "spectrum.json")
+    # every 2 GeV bin sharing mass with [101, 110] is hidden: [100, 102) ... [108, 110)
+    hidden = (h.edges[:-1] < 110.0) & (h.edges[1:] > 101.0)
+    assert hidden.sum() == 5
+    assert np.all(h.sumw[hidden] == 0) and np.all(h.sumw2[hidden] == 0)
+    raw = json.loads((tmp_path / "b" / "spectrum.json").read_text())
+    assert raw["blinded"]["hidden_range"] == [100.0, 110.0]
+    assert not list((tmp_path / "b" / "figures").glob("candidates.*"))
+    # the sidebands are those of the full spectrum (same data without blinding)
+    _config(tiny_data)
+    assert main(["spectrum", str(cfg), "--out", str(tmp_path / "u"), "--quiet"]) == 0
+    full = MassHistogram.load(tmp_path / "u" / "spectrum.json")
+    assert full.sumw[hidden].sum() > 0
+    assert np.array_equal(full.sumw[~hidden], h.sumw[~hidden])
+    assert (tmp_path / "u" / "figures" / "candidates.png").exists()
+
+
 def test_overrides_reach_the_config(tiny_data, capsys, tmp_path):
     cfg = _config(tiny_data)
     rc, _, err = _run(capsys, ["search", str(cfg), "--toys", "-5", "--out", str(tmp_path / "o")])
