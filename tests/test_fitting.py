@@ -53,7 +53,7 @@ TRUTH = {"mass": MASS, "sigma": SIGMA, "signal_yield": LAMBDA_S}
 def test_toy_study_binned_unweighted():
     """1000 toys, binned extended likelihood: pulls of mass, sigma and signal yield are
     standard normal (asymptotic ML theory, e.g. Cowan et al., EPJC 71 (2011) 1554, sect. 3)
-    and HESSE intervals cover 68.3 % +- 3 %.  The Baker-Cousins chi-square has mean ndf
+    and the intervals from the Hessian cover 68.3 % +- 3 %.  The Baker-Cousins chi-square has mean ndf
     (Baker and Cousins, NIM 221 (1984) 437: asymptotically chi-square) and p-values are
     uniform (mean 0.5)."""
     rng = np.random.default_rng(20261201)
@@ -140,15 +140,19 @@ def test_binned_choice_is_recorded():
     assert r.binned and "binned in 400 bins" in r.binned_reason
     h = MassHistogram(bins=60, range=W)
     h.fill(small)
-    assert fit(h, "gaussian", "exponential", W).binned_reason == "data is a histogram"
+    rh = fit(h, "gaussian", "exponential", W)
+    assert rh.binned_reason == "data is a histogram"
+    assert rh.to_dict()["gof"]["note"].startswith("saturated-model (Baker-Cousins)")
 
 
 def test_standard_candle_recovers_pdg_z_mass():
-    """Generator-level Z masses from peaksift.simulate (the demo's standard candle) plus
-    the Drell-Yan continuum, fitted with a relativistic Breit-Wigner on an exponential:
-    the fitted mass is the Z mass of the particle package (Particle.from_pdgid(23)) within
-    its fitted error, and the width within 3 errors (generator and shape share the PDG
-    "Resonances" line shape)."""
+    """Closure check against the particle package's Z mass and width
+    (Particle.from_pdgid(23)): generator-level Z masses from peaksift.simulate (the demo's
+    standard candle, drawn with those values) plus the dilepton continuum, fitted with a
+    relativistic Breit-Wigner on an exponential, give back the mass and the width within
+    3 fitted errors.  Generator and fit shape share the same line shape (PDG Review,
+    "Resonances"), so this tests that the fit recovers what was put in, not the line shape
+    itself (that is test_shapes.test_breitwigner_against_pdg_formula)."""
     from particle import Particle
 
     from peaksift import simulate
@@ -165,7 +169,7 @@ def test_standard_candle_recovers_pdg_z_mass():
     z = Particle.from_pdgid(23)
     mz, gz = z.mass / 1000.0, z.width / 1000.0
     assert r.valid
-    assert abs(r.peak_mass - mz) < r.peak_mass_error, (r.peak_mass, mz, r.peak_mass_error)
+    assert abs(r.peak_mass - mz) < 3 * r.peak_mass_error, (r.peak_mass, mz, r.peak_mass_error)
     assert abs(r.peak_width - gz) < 3 * r.peak_width_error
     assert r.width_parameter == "width"
 
@@ -200,6 +204,10 @@ def test_gaussian_constraint_combines_information():
     assert con.errors["sigma"] == pytest.approx(expect, rel=0.1)
     assert con.values["sigma"] == pytest.approx(
         (free.values["sigma"] / free.errors["sigma"] ** 2 + SIGMA / sc**2) * expect**2, abs=0.2 * sc)
+    # the goodness of fit says that the constrained parameter still counts as free in ndf
+    assert con.gof_ndf == free.gof_ndf
+    assert "1 Gaussian-constrained parameter counted as free in ndf" in con.to_dict()["gof"]["note"]
+    assert "constrained" not in free.gof_note
 
 
 def test_two_signal_components():
@@ -306,10 +314,16 @@ def test_result_dict_repr_and_html():
     for key in ("valid", "peak_mass", "width", "signal_yield", "background_yield"):
         assert key in d
     assert set(d["peak_mass"]) == {"value", "error"}
-    assert set(d["gof"]) == {"chi2", "ndf", "p_value"}
+    assert set(d["gof"]) == {"chi2", "ndf", "p_value", "note"}
+    # unbinned fit, binned only for the chi-square: flagged as approximate (Chernoff and
+    # Lehmann, Ann. Math. Statist. 25 (1954) 579; from memory)
+    assert not r.binned and d["gof"]["note"].startswith("approximate")
+    assert "Chernoff-Lehmann" in d["gof"]["note"]
+    assert r.minimizer in ("fisher-scoring", "iminuit-migrad")
     assert d["width"]["value"] == r.values["sigma"]
     lo, hi = r.minos["mass"]
-    # MINOS and HESSE agree for a near-Gaussian likelihood (common practice)
+    # MINOS intervals and the errors from the Hessian agree for a near-Gaussian likelihood
+    # (common practice)
     assert -lo == pytest.approx(r.errors["mass"], rel=0.1)
     assert hi == pytest.approx(r.errors["mass"], rel=0.1)
     text = repr(r)

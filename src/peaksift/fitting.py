@@ -26,16 +26,17 @@ Likelihoods
 Minimisation and errors
 -----------------------
 Damped Fisher scoring with the analytic gradient (a few evaluations from the automatic
-starts), MIGRAD as the fallback; errors from the observed Hessian at the minimum (what HESSE
-computes), see DEVELOPERS.md "Shapes and fits in detail".
+starts), iminuit's variable-metric minimiser as the fallback (``FitResult.minimizer`` is
+``"fisher-scoring"`` or ``"iminuit-migrad"``); errors from the observed Hessian of the
+negative log-likelihood at the minimum, see DEVELOPERS.md "Shapes and fits in detail".
 
 Weighted data
 -------------
 * binned: each bin is treated as a scaled Poisson variable, :math:`\\tilde n_i = n_i s_i`,
   :math:`\\tilde\\mu_i = \\mu_i s_i`, :math:`s_i = \\sum w / \\sum w^2` in the bin (bins
-  with no entries use the global ratio); HESSE errors of this likelihood are asymptotically
-  correct for weighted events (Bohm and Zech, "Statistics of weighted Poisson events and its
-  applications", Nucl. Instrum. Meth. A 748 (2014) 1; from memory).
+  with no entries use the global ratio); errors from the Hessian of this likelihood are
+  asymptotically correct for weighted events (Bohm and Zech, "Statistics of weighted
+  Poisson events and its applications", Nucl. Instrum. Meth. A 748 (2014) 1; from memory).
 * unbinned: weighted likelihood with the sandwich covariance
   :math:`C = H^{-1} D H^{-1}`, :math:`D = \\sum_j w_j^2\\, \\nabla\\ln\\mu(x_j)\\,
   \\nabla\\ln\\mu(x_j)^T` (Langenbruch, "Parameter uncertainties in weighted unbinned
@@ -539,7 +540,8 @@ class FitResult:
     parameters : tuple of str
         Parameter names in model order.
     values, errors : dict
-        Best-fit values and HESSE errors (sandwich errors for weighted unbinned fits;
+        Best-fit values and errors from the Hessian of the negative log-likelihood at the
+        minimum (sandwich errors for weighted unbinned fits;
         fixed parameters have error 0).
     minos : dict or None
         ``name -> (lower, upper)`` MINOS errors (negative, positive) when requested.
@@ -556,7 +558,17 @@ class FitResult:
     gof_chi2, gof_ndf, gof_p_value : float, int, float
         Baker-Cousins saturated-model chi-square of the binned data (for unbinned fits the
         masses are histogrammed in ``edges``), its ndf (bins - free parameters) and the
-        chi-square p-value.
+        chi-square p-value.  Approximate: for an unbinned fit the parameters were estimated
+        from the unbinned masses, not from the bins the chi-square uses, so the statistic
+        is not exactly chi-square(ndf) distributed; it lies between chi-square(ndf) and
+        chi-square(bins - 1) (Chernoff and Lehmann, Ann. Math. Statist. 25 (1954) 579;
+        from memory), and the p-value is then somewhat too small.  Parameters with a
+        Gaussian constraint are counted as free in ndf although the constraint adds
+        information.  Weighted bins use the scaled-Poisson effective counts, again
+        asymptotic.  ``gof_note`` (``to_dict()["gof"]["note"]``) says which applies.
+    minimizer : str
+        What found the minimum: ``"fisher-scoring"`` (peaksift's damped Fisher scoring) or
+        ``"iminuit-migrad"`` (the fallback, iminuit's variable-metric minimiser).
     edges, observed, observed_sumw2, expected, pulls : ndarray
         Binning used for the goodness of fit and plots; pulls are (n - mu)/sqrt(var),
         var = mu * sumw2/sumw for weighted bins.
@@ -598,15 +610,17 @@ class FitResult:
     attempts: int = 1
     n_calls: int = 0
     unit: str = "GeV"
-    minimizer: str = "MIGRAD"
+    minimizer: str = "fisher-scoring"
+    gof_note: str = ""
     _minuit_factory: Any = field(default=None, compare=False)
     _cache: dict = field(default_factory=dict, compare=False)
 
     @property
     def minuit(self) -> Any:
         """The ``iminuit.Minuit`` object of the fit, set up at the minimum with the model's
-        cost function and bounds (MIGRAD has run on it only when the fast Fisher-scoring
-        path was not used; call ``.migrad()``, ``.hesse()``, ``.minos()`` for more)."""
+        cost function and bounds (iminuit's minimiser has run on it only when
+        ``minimizer`` is ``"iminuit-migrad"``; call its ``.migrad()``, ``.hesse()``,
+        ``.minos()`` methods for more)."""
         if "minuit" not in self._cache and self._minuit_factory is not None:
             self._cache["minuit"] = self._minuit_factory()
         return self._cache.get("minuit")
@@ -633,7 +647,7 @@ class FitResult:
             "signal_yield": ve(*self.signal_yield),
             "background_yield": ve(*self.background_yield),
             "gof": {"chi2": _num(self.gof_chi2), "ndf": int(self.gof_ndf),
-                    "p_value": _num(self.gof_p_value)},
+                    "p_value": _num(self.gof_p_value), "note": self.gof_note},
             "width_parameter": self.width_parameter,
             "fwhm": ve(self.fwhm, self.fwhm_error),
             "problems": list(self.problems),
@@ -967,7 +981,7 @@ def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
             lam = 1e-3 if lam == 0.0 else lam * 10.0
         else:
             return x, f, False, None
-        if stalled >= 3:  # no progress (e.g. pressing on a bound): let MIGRAD decide
+        if stalled >= 3:  # no progress (e.g. pressing on a bound): let iminuit decide
             return x, f, False, None
     return x, f, False, None
 
@@ -975,8 +989,8 @@ def _fisher_scoring(cost: _Cost, x0: np.ndarray, lower: np.ndarray,
 def _minimize(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
               names: list[str], edm_goal: float = 1e-7) -> _MinOut:
     """Fisher scoring first (few calls: expected information for binned fits, the
-    outer-product information for unbinned ones); MIGRAD (strategy 0, analytic gradient)
-    when that does not converge.  Returns a :class:`_MinOut`."""
+    outer-product information for unbinned ones); iminuit's migrad (strategy 0, analytic
+    gradient) when that does not converge.  Returns a :class:`_MinOut`."""
     if hasattr(cost, "value_grad_info"):
         x, f, ok, inv = _fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal)
         if ok:
@@ -985,7 +999,7 @@ def _minimize(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarr
             def make(cost=cost, x=x, errs=errs):
                 return _new_minuit(cost, x, lower, upper, names, errs)
 
-            return _MinOut(x, f, True, False, errs, make, "Fisher scoring")
+            return _MinOut(x, f, True, False, errs, make, "fisher-scoring")
     m = _new_minuit(cost, start, lower, upper, names)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -993,7 +1007,7 @@ def _minimize(cost: _Cost, start: np.ndarray, lower: np.ndarray, upper: np.ndarr
     fm = m.fmin
     return _MinOut(np.asarray(m.values, float), float(m.fval), bool(fm.is_valid),
                    bool(fm.has_reached_call_limit), np.asarray(m.errors, float), lambda: m,
-                   "MIGRAD")
+                   "iminuit-migrad")
 
 
 def _background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
@@ -1086,6 +1100,38 @@ def fit(
     FitError
         Empty window, fewer events than free parameters, non-finite data, inconsistent
         bounds or starts, unknown shape or parameter names.
+
+    Notes
+    -----
+    Binned (extended Poisson likelihood of the bin contents :math:`n_i`): the expectation
+    of each bin is its integral, from CDF differences, never the density at the bin centre,
+
+    .. math:: \\mu_i = \\sum_k \\nu_k \\,[F_k(e_{i+1}) - F_k(e_i)], \\qquad
+              -\\ln L = \\sum_i \\left[\\mu_i - n_i + n_i \\ln(n_i/\\mu_i)\\right]
+
+    (:math:`\\nu_k` the yields, :math:`F_k` the shapes' CDFs on the window).  This is the
+    Poisson likelihood ratio to the saturated model :math:`\\mu_i = n_i`, so :math:`2(-\\ln
+    L)` at the minimum is the goodness-of-fit chi-square (Baker and Cousins, Nucl. Instrum.
+    Meth. 221 (1984) 437, eq. 11) and differences of ``nll`` between fits are profile
+    likelihood ratios.
+
+    Unbinned (extended likelihood of the masses :math:`x_j`, weights :math:`w_j = 1` when
+    unweighted): :math:`-\\ln L = \\sum_k \\nu_k - \\sum_j w_j \\ln \\sum_k \\nu_k f_k(x_j)`.
+    The goodness of fit bins the masses afterwards and is therefore approximate (see
+    :class:`FitResult`, ``gof_chi2``).
+
+    Weighted bins: scaled Poisson, :math:`\\tilde n_i = s_i n_i`, :math:`\\tilde\\mu_i = s_i
+    \\mu_i`, :math:`s_i = \\sum w/\\sum w^2` in the bin, in the same saturated form, so the
+    errors from its Hessian are asymptotically right for weighted events (Bohm and Zech,
+    Nucl. Instrum. Meth. A 748 (2014) 1; from memory).
+
+    Weighted unbinned: the weighted likelihood above with the sandwich covariance
+    :math:`C = H^{-1} D H^{-1}`, :math:`D = \\sum_j w_j^2 \\nabla \\ln\\mu(x_j) \\nabla
+    \\ln\\mu(x_j)^T`, :math:`H` the Hessian of :math:`-\\ln L` (Langenbruch, Eur. Phys. J. C
+    82 (2022) 393; from memory).
+
+    Gaussian constraints add :math:`\\tfrac12((\\theta - c)/s)^2` to :math:`-\\ln L` (common
+    practice).
     """
     d = _prepare(data, weights, window, binned, bins)
     model = Model(signal, background, d.window)
@@ -1209,7 +1255,8 @@ def fit(
     treatment = "none (unweighted)"
     if d.weighted:
         if d.binned:
-            treatment = "scaled Poisson bins (Bohm and Zech 2014): HESSE of effective counts"
+            treatment = ("scaled Poisson bins (Bohm and Zech 2014): errors from the Hessian "
+                         "of the effective-count likelihood")
         else:
             treatment = "sandwich covariance H^-1 D H^-1 (Langenbruch 2022)"
             free_cov = _sandwich(cost, vals, free_idx, free_cov)
@@ -1257,6 +1304,19 @@ def fit(
     gsc = _scale(gn, gn2)
     chi2 = _baker_cousins(gn * gsc, mu * gsc)
     ndf = int(gn.size - free_idx.size)
+    if d.binned:
+        gof_note = ("saturated-model (Baker-Cousins) chi-square of the fitted bins, "
+                    "asymptotically chi-square(ndf)")
+    else:
+        gof_note = ("approximate: parameters fitted unbinned, the masses then binned for the "
+                    "chi-square, which lies between chi-square(ndf) and chi-square(bins - 1) "
+                    "(Chernoff-Lehmann), so the p-value is somewhat too small")
+    if d.weighted:
+        gof_note += "; weighted bins as scaled-Poisson effective counts"
+    n_con = sum(1 for k in constraints if not is_fixed[names.index(k)])
+    if n_con:
+        gof_note += (f"; {n_con} Gaussian-constrained parameter{'s' if n_con > 1 else ''} "
+                     "counted as free in ndf")
     from scipy import special
 
     pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
@@ -1281,7 +1341,7 @@ def fit(
         gof_chi2=float(chi2), gof_ndf=ndf, gof_p_value=pval,
         edges=np.asarray(ge), observed=np.asarray(gn), observed_sumw2=np.asarray(gn2),
         expected=np.asarray(mu), pulls=np.asarray(pulls), model=model, attempts=attempts,
-        n_calls=total_calls, unit=d.unit, minimizer=mo.method,
+        n_calls=total_calls, unit=d.unit, minimizer=mo.method, gof_note=gof_note,
         _minuit_factory=mo.minuit,
     )
 
@@ -1312,7 +1372,7 @@ def _problems(mo: _MinOut, x: np.ndarray, cov: np.ndarray, posdef: bool, lower: 
 
 
 def _polish(cost: _Cost, mo: _MinOut, lower: np.ndarray, upper: np.ndarray):
-    """Hessian by central differences of the analytic gradient at MIGRAD's minimum, one
+    """Hessian by central differences of the analytic gradient at the minimum found, one
     Newton step to refine the minimum, and the covariance H^-1 (errordef 0.5).
 
     Returns (x, nll, covariance, positive_definite).
@@ -1342,7 +1402,7 @@ def _polish(cost: _Cost, mo: _MinOut, lower: np.ndarray, upper: np.ndarray):
     if not np.all(ev > 1e-12 * max(abs(ev).max(), 1e-300)):
         return x0, f0, np.full((n, n), np.nan), False
     cov = np.linalg.inv(hess)
-    if mo.method == "MIGRAD":  # one Newton step refines MIGRAD's minimum
+    if mo.method == "iminuit-migrad":  # one Newton step refines iminuit's minimum
         x1 = np.clip(x0 - cov @ cost.grad(*x0), lower, upper)
         f1 = cost(*x1)
         if np.isfinite(f1) and f1 < f0:
