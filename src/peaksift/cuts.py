@@ -706,7 +706,7 @@ def event_mask(events: Any, cut: CutLike) -> np.ndarray:
                 raise KeyError(name)
             return ak.to_numpy(names[name]())
 
-        return c.evaluate(get, n, where="the events", available=list(names))
+        return c.evaluate(get, n, where="each event", available=list(names))
     label = "event cut"
     if callable(cut):
         label = f"event cut (from {_callable_name(cut)})"
