@@ -316,7 +316,7 @@ def test_dijet_against_published_form(npar, sqrt_s, p):
 def test_exponential_against_scipy_truncexpon(b1):
     """exp(b1 t), t = (m - c)/h, is an exponential of slope b1/h per GeV truncated to the
     window: scipy.stats.truncexpon(b=(hi-lo)/scale, loc=lo, scale=h/|b1|), reflected
-    about the window (m -> lo + hi - m) for a rising slope."""
+    about the window (m -> lo + hi - m) for a rising slope; CDF also vs scipy.integrate.quad."""
     lo, hi = W
     h = 0.5 * (hi - lo)
     scale = h / abs(b1)
@@ -327,6 +327,7 @@ def test_exponential_against_scipy_truncexpon(b1):
     for s in (shapes.get("exponential"), shapes.get("exppoly", order=1)):
         np.testing.assert_allclose(s.pdf(XS, [b1], W), ref_pdf, rtol=1e-10)
         np.testing.assert_allclose(s.cdf(XS, [b1], W), ref_cdf, rtol=1e-9, atol=1e-14)
+        _check_against(s, [b1], lambda m: np.exp(b1 * (np.asarray(m) - lo) / h))
 
 
 @pytest.mark.parametrize(("order", "p"), [(2, [-1.0, 0.4]), (3, [-1.0, 0.3, -0.2]),
