@@ -312,7 +312,7 @@ class _Problem:
             if self.delta == 0 or it == steps - 1:
                 break
             g = bkg_fractions(self.model, r["theta"])
-            nu = np.maximum(s[:, None] * self.fractions + r["b"][:, None] * g, 1e-300)
+            nu = np.maximum(s[:, None] * self.fractions + r["b"][:, None] * g, 1e-100)
             n = np.broadcast_to(self.counts, nu.shape)
             ds = mu * self.conv * dk
             d2s = mu * self.conv * d2k

@@ -44,6 +44,7 @@ few events per bin, and exact at the maximum after step 5).
 
 from __future__ import annotations
 
+import functools
 import os
 import sys
 from collections.abc import Sequence
@@ -63,6 +64,25 @@ _SUB_BATCH = 256       # toys processed together (memory/cache)
 _NEWTON_STEPS = 5      # Newton iterations of the linearised toy scan
 _TOYS_PER_BATCH = 500  # toys per ToyBatch handed to a worker
 _REFINE = 2            # highest points of each toy scan refitted exactly
+
+
+_NU_FLOOR = 1e-100     # floor of expectations in gradients/Hessians (nu**2 stays > 0)
+
+
+def _quiet(func: Any) -> Any:
+    """Run ``func`` with numpy floating-point warnings off.
+
+    The fits try steps into extreme regions (a background fraction underflowing to 0, an
+    expectation at its floor); those trial points give inf/NaN intermediate values that
+    the NLL comparison then rejects, so the warnings are expected and must not reach users.
+    A toy whose result is still not finite is returned as NaN and counted as failed
+    (``n_failed_toys`` in the global significance).
+    """
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        with np.errstate(all="ignore"):
+            return func(*args, **kwargs)
+    return wrapper
 
 
 # --------------------------------------------------------------------------- model
@@ -186,6 +206,7 @@ def _damped_solve(hess: np.ndarray, grad: np.ndarray, lam: np.ndarray) -> np.nda
     return np.where(np.isfinite(step), step, 0.0)
 
 
+@_quiet
 def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = None,
                    *, steps: int = 30, tol: float = 1e-9) -> tuple[np.ndarray, np.ndarray,
                                                                      np.ndarray]:
@@ -222,7 +243,7 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
             break
         th, gi, bi = theta[idx], g[idx], b[idx]
         dg = bkg_gradients(model, th)                      # (B, K, N)
-        nu = np.maximum(bi[:, None] * gi, 1e-300)
+        nu = np.maximum(bi[:, None] * gi, _NU_FLOOR)
         a = np.concatenate([gi[:, None, :], bi[:, None, None] * dg], axis=1)  # (B, P, N)
         w = 1.0 - n[idx] / nu
         grad = np.einsum("bpn,bn->bp", a, w)
@@ -253,6 +274,7 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
 
 
 # --------------------------------------------------- exact profile over masses (data)
+@_quiet
 def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
                    s_fixed: np.ndarray | None = None, s_start: np.ndarray | None = None,
                    theta_start: np.ndarray | None = None, b_start: np.ndarray | None = None,
@@ -305,7 +327,7 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         if idx.size == 0:
             break
         si, bi, thi, gi = s[idx], b[idx], theta[idx], g[idx]
-        nu = np.maximum(si[:, None] * f[idx] + bi[:, None] * gi, 1e-300)
+        nu = np.maximum(si[:, None] * f[idx] + bi[:, None] * gi, _NU_FLOOR)
         cols = [gi[:, None, :]]
         if k:
             cols.append(bi[:, None, None] * bkg_gradients(model, thi))
@@ -349,11 +371,11 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         stuck = idx[todo]
         converged[stuck] = True  # no descent at any damping: at the minimum to rounding
         active[stuck] = False
-    # HESSE-type error of the signal yield: inverse of the exact Hessian at the minimum
+    # Hessian-based error of the signal yield: inverse of the exact Hessian at the minimum
     if fixed:
         s_err = np.full(nb, np.nan)
     else:
-        nu = np.maximum(s[:, None] * f + b[:, None] * g, 1e-300)
+        nu = np.maximum(s[:, None] * f + b[:, None] * g, _NU_FLOOR)
         cols = [f[:, None, :], g[:, None, :]]
         if k:
             dgm = bkg_gradients(model, theta)
@@ -471,6 +493,7 @@ def _solve_packed(h: np.ndarray, g: np.ndarray, kidx: dict) -> np.ndarray:
     return np.stack(x, axis=-2)
 
 
+@_quiet
 def scan_toys_linear(model: ScanModel, n: np.ndarray,
                      directions: np.ndarray | None = None, *,
                      refine: int = _REFINE) -> np.ndarray:
@@ -487,7 +510,7 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     n = np.atleast_2d(np.asarray(n, float))
     t = n.shape[0]
     theta, b, nll_b = fit_background(model, n)
-    b0 = np.maximum(b[:, None] * bkg_fractions(model, theta), 1e-300)   # (T, N)
+    b0 = np.maximum(b[:, None] * bkg_fractions(model, theta), _NU_FLOOR)  # (T, N)
     d = _background_directions(model) if directions is None else directions  # (N, Q)
     q = d.shape[1]
     p = q + 1
@@ -530,7 +553,7 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
         par[:, 0] = np.maximum(-g_all[sel, 0] / np.maximum(h_all[sel, 0], 1e-300), 0.0)
         ssreg = 1e-9 * (aa[:, 0:1] @ (1.0 / b0b))[:, 0]                  # (Mg, T)
         for _ in range(_NEWTON_STEPS):
-            nu = np.maximum(b0b + a @ par, 1e-300)                       # (Mg, W, T)
+            nu = np.maximum(b0b + a @ par, _NU_FLOOR)                    # (Mg, W, T)
             r = nb / nu
             hess = aa @ (r / nu)
             hess += h_out
@@ -557,9 +580,13 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     q0 = np.ascontiguousarray(q0.T)
     if refine > 0:
         _refine_maxima(model, n, q0, theta, b, nll_b, refine)
+    # a toy whose fits failed (non-finite background fit or q0) is marked NaN, not -inf or 0
+    bad = ~np.isfinite(nll_b)[:, None] | ~np.isfinite(q0)
+    q0[bad] = np.nan
     return q0
 
 
+@_quiet
 def _refine_maxima(model: ScanModel, n: np.ndarray, q0: np.ndarray, theta: np.ndarray,
                    b: np.ndarray, nll_b: np.ndarray, count: int) -> None:
     """Replace each toy's ``count`` largest linearised q0 values by exact profile fits.
@@ -578,7 +605,7 @@ def _refine_maxima(model: ScanModel, n: np.ndarray, q0: np.ndarray, theta: np.nd
     if rows.size == 0:
         return
     f = model.fractions[cols]
-    b0 = np.maximum(b[rows, None] * bkg_fractions(model, theta[rows]), 1e-300)
+    b0 = np.maximum(b[rows, None] * bkg_fractions(model, theta[rows]), _NU_FLOOR)
     nr = n[rows]
     s0 = np.maximum(np.sum((nr / b0 - 1.0) * f, axis=1)
                     / np.maximum(np.sum(nr * f * f / b0**2, axis=1), 1e-300), 0.0)
