@@ -161,3 +161,99 @@ def test_cartesian_round_trip():
     back = kin.from_cartesian(*kin.to_cartesian(pt, eta, phi, m)[:3], kin.to_cartesian(pt, eta, phi, m)[3])
     for a, b in zip(back, (pt, eta, phi, m)):
         np.testing.assert_allclose(a, b, rtol=1e-8, atol=1e-7)
+
+
+# ------------------------------------------------- polar pair formulas vs 60 digits
+def _dec_sin_cos(x):
+    """sin and cos of a Decimal by their Taylor series (written here; 60 digits)."""
+    import decimal
+
+    s, c, term_s, term_c, k = decimal.Decimal(0), decimal.Decimal(0), x, decimal.Decimal(1), 0
+    eps = decimal.Decimal(10) ** -70
+    while abs(term_s) > eps or abs(term_c) > eps:
+        s += term_s
+        c += term_c
+        term_s = -term_s * x * x / ((2 * k + 2) * (2 * k + 3))
+        term_c = -term_c * x * x / ((2 * k + 1) * (2 * k + 2))
+        k += 1
+    return s, c
+
+
+def _reference_pair(pt1, eta1, phi1, m1, pt2, eta2, phi2, m2):
+    """Mass, pT and rapidity of the summed four-vector from Cartesian components, all in
+    60-digit decimal arithmetic (PDG Review, "Kinematics": px = pT cos phi, py = pT sin phi,
+    pz = pT sinh eta, E^2 = (pT cosh eta)^2 + m^2; m^2 = E^2 - |p|^2,
+    y = ln((E + pz)/(E - pz)) / 2), independent of peaksift.kinematics."""
+    import decimal
+
+    with decimal.localcontext() as ctx:
+        ctx.prec = 60
+        tot = [decimal.Decimal(0)] * 4
+        for pt, eta, phi, m in ((pt1, eta1, phi1, m1), (pt2, eta2, phi2, m2)):
+            pt, eta, phi, m = (decimal.Decimal(float(v)) for v in (pt, eta, phi, m))
+            s, c = _dec_sin_cos(phi)
+            x = eta.exp()
+            sh, ch = (x - 1 / x) / 2, (x + 1 / x) / 2
+            comp = (pt * c, pt * s, pt * sh, ((pt * ch) ** 2 + m * m).sqrt())
+            tot = [a + b for a, b in zip(tot, comp)]
+        px, py, pz, e = tot
+        msq = e * e - px * px - py * py - pz * pz
+        return (float(msq.sqrt()), float((px * px + py * py).sqrt()),
+                float(((e + pz) / (e - pz)).ln() / 2))
+
+
+def _check_pairs(cases, rtol_mass, rtol_pt, atol_y):
+    cols = np.array(cases, dtype=float).T
+    mass, pt, y = kin.pair_kinematics(*cols)
+    ref = np.array([_reference_pair(*c) for c in cases]).T
+    np.testing.assert_allclose(mass, ref[0], rtol=rtol_mass, atol=0)
+    np.testing.assert_allclose(pt, ref[1], rtol=rtol_pt, atol=0)
+    np.testing.assert_allclose(y, ref[2], rtol=0, atol=atol_y)
+    np.testing.assert_array_equal(kin.pair_mass(*cols), mass)
+
+
+def test_pair_kinematics_random_pairs_match_60_digit_cartesian():
+    # Ordinary pairs, massless and massive (masses: 0, e, mu, tau from memory; a heavy
+    # object), both forward and central; reference: 60-digit Cartesian sums (above).
+    rng = np.random.default_rng(11)
+    masses = [0.0, 0.000511, 0.10566, 1.777, 91.19]
+    cases = [(rng.uniform(0.5, 500), rng.uniform(-4.5, 4.5), rng.uniform(-np.pi, np.pi),
+              rng.choice(masses), rng.uniform(0.5, 500), rng.uniform(-4.5, 4.5),
+              rng.uniform(-np.pi, np.pi), rng.choice(masses)) for _ in range(400)]
+    _check_pairs(cases, rtol_mass=1e-14, rtol_pt=1e-14, atol_y=1e-14)
+
+
+def test_pair_kinematics_near_collinear_and_back_to_back():
+    # Nearly collinear pairs, where E^2 - |p|^2 in double precision loses up to all digits
+    # (common practice: use a cancellation-free form), against the 60-digit reference.
+    cases = []
+    for m in (0.0, 0.000511, 0.10566):
+        for d in (1e-3, 1e-5, 1e-7):
+            # opening in azimuth only (also across phi = +-pi), and in pseudorapidity only
+            cases += [(40.0, 0.7, 0.3, m, 25.0, 0.7, 0.3 + d, m),
+                      (40.0, -1.9, np.pi - d / 2, m, 60.0, -1.9, -np.pi + d / 2, m)]
+    # back to back with equal pT: the pair pT is tiny and must keep its relative precision
+    cases += [(45.0, 0.4, 0.2, 0.10566, 45.0 * (1 + 1e-9), -1.1, 0.2 - np.pi, 0.10566),
+              (30.0, 0.0, 0.0, 0.0, 30.0, 0.0, np.pi * (1 - 1e-8), 0.0)]
+    _check_pairs(cases, rtol_mass=1e-14, rtol_pt=1e-13, atol_y=1e-14)
+    # an opening d in pseudorapidity only: the mass is as sensitive to an ulp of eta as
+    # |eta| / d (the conditioning of the problem), so the tolerance scales with it
+    for d in (1e-3, 1e-5, 1e-7):
+        for m in (0.0, 0.10566, 5.0):
+            c = (40.0, 2.3, 0.3, m, 25.0, 2.3 + d, 0.3, m)
+            got = kin.pair_kinematics(*c)
+            ref = _reference_pair(*c)
+            assert abs(got[0] - ref[0]) <= 10 * 2.3 / d * 2.2e-16 * ref[0], (c, got, ref)
+            assert abs(got[1] - ref[1]) <= 1e-14 * ref[1]
+            assert abs(got[2] - ref[2]) <= 1e-14
+
+
+def test_half_angle_squares_match_numpy():
+    # sin^2(x/2) and cos^2(x/2) against numpy's libm sin/cos (an outside implementation) on
+    # |x| <= 2 pi, including the points where the range reduction switches.
+    x = np.concatenate([np.linspace(-2 * np.pi, 2 * np.pi, 20001),
+                        np.array([np.pi / 2, np.pi, 1.5 * np.pi, 2 * np.pi]) * (1 + 1e-16),
+                        [0.0, 1e-300, -1e-12]])
+    s2, c2 = kin.half_angle_squares(x)
+    np.testing.assert_allclose(s2, np.sin(x / 2) ** 2, rtol=2e-15, atol=1e-300)
+    np.testing.assert_allclose(c2, np.cos(x / 2) ** 2, rtol=2e-15, atol=1e-300)

@@ -436,19 +436,24 @@ def test_no_events_and_no_pairs():
 
 
 @pytest.mark.parametrize("second", [None, "electron"])
-def test_results_do_not_depend_on_the_block_size(random_rows, monkeypatch, second):
-    """choose='all' works in blocks of events; tiny blocks give the same columns."""
-    from peaksift import pairing
-
+def test_all_fast_path_agrees_with_the_listing_path(random_rows, second):
+    """choose='all' computes pairs with the polar formulas in one kernel; the general path
+    (taken when min_delta_r is set; a tiny value removes no pair here) lists the pairs and
+    adds Cartesian four-vectors.  Same pairs, indices, weights, multiplicities and cut flow;
+    masses, pT and rapidities equal to rounding (both are checked against exact references
+    above)."""
     rows_a, rows_b = random_rows
     ev = _events(weight=np.linspace(1, 2, len(rows_a)), muon=_collection(rows_a),
                  electron=_collection(rows_b))
     kw = {"charge": "opposite", "cut": "pt > 7"}
     if second:
         kw["second_cut"] = "pt > 9"
-    ref = pair(ev, "muon", second, **kw)
-    monkeypatch.setattr(pairing, "_BLOCK", 7)
-    small = pair(ev, "muon", second, **kw)
-    for col in Candidates._COLUMNS + ("multiplicity",):
-        np.testing.assert_array_equal(getattr(small, col), getattr(ref, col), err_msg=col)
-    assert small.cutflow == ref.cutflow
+    fast = pair(ev, "muon", second, **kw)
+    listed = pair(ev, "muon", second, min_delta_r=1e-300, **kw)
+    assert len(fast) > 100
+    for col in ("weight", "event_index", "first_index", "second_index", "multiplicity"):
+        np.testing.assert_array_equal(getattr(fast, col), getattr(listed, col), err_msg=col)
+    assert fast.cutflow == listed.cutflow
+    np.testing.assert_allclose(fast.mass, listed.mass, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(fast.pt, listed.pt, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(fast.rapidity, listed.rapidity, rtol=1e-12, atol=1e-12)

@@ -38,10 +38,19 @@ What :func:`pair` does, in order
    the lowest ``first_index``, then the lowest ``second_index``.  A pair whose key is NaN
    is never chosen.
 
-Four-vectors are added in Cartesian components (:func:`peaksift.kinematics.to_cartesian`,
-computed once per object); the pair's mass is :func:`peaksift.kinematics.invariant_mass`,
-its rapidity :func:`peaksift.kinematics.rapidity` and its pT
-:math:`\\sqrt{p_x^2 + p_y^2}` of the summed momentum (PDG Review, "Kinematics").
+With ``choose="all"`` (and no ``min_delta_r``) each pair's mass, pT and rapidity come
+straight from the objects' polar coordinates through the formulas of
+:func:`peaksift.kinematics.pair_kinematics` (sums of non-negative terms: no cancellation
+for nearly collinear or back-to-back pairs; one exponential per object, one polynomial sine
+and one logarithm per pair), evaluated inside the kernel by the same functions
+(:func:`~peaksift.kinematics.polar_object_terms`,
+:func:`~peaksift.kinematics.half_angle_squares`,
+:func:`~peaksift.kinematics.polar_pair_terms`).  The other rules add four-vectors in
+Cartesian components (:func:`peaksift.kinematics.to_cartesian`, once per object) and take
+:func:`peaksift.kinematics.invariant_mass`, :func:`peaksift.kinematics.rapidity` and
+:math:`\\sqrt{p_x^2 + p_y^2}` of the sum (PDG Review, "Kinematics").  Both agree to
+rounding (about 1e-15 relative for ordinary pairs; the polar form is the more precise one
+for nearly collinear pairs).
 
 Implementation: all work is on flat numpy columns (collection offsets + contents).  The
 pair loops run in small numba kernels (compiled once, cached on disk).  Numba was chosen
@@ -55,7 +64,6 @@ against a hand-written vector + awkward selection.
 from __future__ import annotations
 
 import dataclasses
-import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -65,7 +73,7 @@ import numpy as np
 
 from . import kinematics
 from .cuts import CutLike, _flat_object_mask, event_mask
-from .errors import ConfigError, DataWarning, InputError, closest
+from .errors import ConfigError, InputError, closest
 
 __all__ = ["CHOOSE_RULES", "Candidates", "pair"]
 
@@ -73,7 +81,6 @@ CHOOSE_RULES = ("all", "leading", "max_sum_pt", "closest")
 _CHARGE = {None: 0, "any": 0, "opposite": -1, "same": 1}
 _CUTFLOW_KEYS = ("events_in", "events_after_event_cut", "events_with_pair", "candidates")
 _KINEMATIC_FIELDS = ("pt", "eta", "phi", "mass")
-_BLOCK = 1 << 18  # objects (and pairs) per block of events in the choose='all' path
 _NO_INDEX = np.zeros(1, dtype=np.int64)
 
 
@@ -195,112 +202,108 @@ class Candidates:
 
 
 @numba.njit(cache=True, nogil=True)
-def _count_pairs(sa, ea, sb, eb, same, ga, gb, mode, out, mark, used_a, used_b):  # pragma: no cover
+def _count_pairs(sa, ea, sb, eb, same, ga, gb, mode, out):  # pragma: no cover
     """Number of pairs passing the charge requirement per event (into ``out``), from the
-    numbers of positive and negative objects in each event.  With ``mark``, also flag in
-    ``used_a``/``used_b`` the objects that are in at least one passing pair."""
+    numbers of positive and negative objects in each event (counted without branches)."""
     for ev in range(sa.size):
         na = ea[ev] - sa[ev]
         nb = eb[ev] - sb[ev]
         if mode == 0:
-            c = na * (na - 1) // 2 if same else na * nb
-            out[ev] = c
-            if mark and c > 0:
-                for i in range(sa[ev], ea[ev]):
-                    used_a[i] = True
-                if not same:
-                    for j in range(sb[ev], eb[ev]):
-                        used_b[j] = True
+            out[ev] = na * (na - 1) // 2 if same else na * nb
             continue
         pa = 0
         ma = 0
         for i in range(sa[ev], ea[ev]):
-            if ga[i] > 0:
-                pa += 1
-            elif ga[i] < 0:
-                ma += 1
+            g = ga[i]
+            pa += g > 0
+            ma += g < 0
         pb = pa
         mb = ma
         if not same:
             pb = 0
             mb = 0
             for j in range(sb[ev], eb[ev]):
-                if gb[j] > 0:
-                    pb += 1
-                elif gb[j] < 0:
-                    mb += 1
+                g = gb[j]
+                pb += g > 0
+                mb += g < 0
         if same:
             c = pa * ma if mode < 0 else pa * (pa - 1) // 2 + ma * (ma - 1) // 2
         else:
             c = pa * mb + ma * pb if mode < 0 else pa * pb + ma * mb
         out[ev] = c
-        if not mark or c == 0:
-            continue
-        # possible partners of a positive / negative object of each collection
-        if same:
-            pos_a = ma if mode < 0 else pa - 1
-            neg_a = pa if mode < 0 else ma - 1
-        else:
-            pos_a = mb if mode < 0 else pb
-            neg_a = pb if mode < 0 else mb
-        for i in range(sa[ev], ea[ev]):
-            g = ga[i]
-            used_a[i] = ((g > 0) & (pos_a > 0)) | ((g < 0) & (neg_a > 0))
-        if not same:
-            pos_b = ma if mode < 0 else pa
-            neg_b = pa if mode < 0 else ma
-            for j in range(sb[ev], eb[ev]):
-                g = gb[j]
-                used_b[j] = ((g > 0) & (pos_b > 0)) | ((g < 0) & (neg_b > 0))
+
+
+# The polar pair formulas live in peaksift.kinematics (written with arithmetic and numpy
+# functions only) and are compiled into the kernels here.  numba's on-disk cache keys a
+# kernel on this file only: after editing those kinematics functions, touch this file (or
+# delete __pycache__/pairing.*.nb*) or the kernels keep the old formulas.
+_object_terms = numba.njit(inline="always")(kinematics.polar_object_terms)
+_pair_terms = numba.njit(inline="always")(kinematics.polar_pair_terms)
+_half_angle_squares = numba.njit(inline="always")(kinematics.half_angle_squares)
 
 
 @numba.njit(cache=True, nogil=True)
-def _fill_block(e0, e1, sa, ea, sb, eb, same, ga, gb, mode, starts, counts,  # pragma: no cover
-                oa, ob, rma, rmb, pxa, pya, pza, eea, pxb, pyb, pzb, eeb,
-                gla, glb, has_gla, has_glb, offa, offb, w, has_w,
-                px, py, pz, e, pt, evo, fi, si, mult, wo):
-    """Every passing pair of events ``e0 <= ev < e1``, for choose='all'.
+def _terms_of_event(s0, s1, sel, has_sel, pt, eta, phi, mass, t):  # pragma: no cover
+    """Polar terms (pt, phi, m, mT, e^y, e^-y) of objects ``s0 <= i < s1`` into rows of ``t``."""
+    for i in range(s0, s1):
+        f = sel[i] if has_sel else i
+        p = np.float64(pt[f])
+        m = np.float64(mass[f])
+        mt, a, r = _object_terms(p, np.float64(eta[f]), m)
+        row = i - s0
+        t[0, row] = p
+        t[1, row] = np.float64(phi[f])
+        t[2, row] = m
+        t[3, row] = mt
+        t[4, row] = a
+        t[5, row] = r
 
-    The Cartesian columns hold the block's objects in a pair only (row =
-    ``rma[i - oa]`` / ``rmb[j - ob]`` for selected objects ``i`` / ``j``); ``px, py, pz, e`` are block buffers (row = pair slot - ``starts[e0]``); ``pt``,
-    event, object indices, multiplicity and weight go to the full outputs.  ``gla``/``glb``
-    map selected objects to flat indices of the collection as read (identity when
-    ``has_gl*`` is false); ``offa``/``offb`` are the collections' event offsets.  Stores are
-    branch-free: every pair is written at slot ``k``, which advances only for passing pairs,
-    so every output has one spare slot past the block.
+
+@numba.njit(cache=True, nogil=True)
+def _fill_all(sa, ea, sb, eb, same, ga, gb, mode, starts, counts,  # pragma: no cover
+              sela, selb, has_sela, has_selb, pta, etaa, phia, ma, ptb, etab, phib, mb,
+              offa, offb, w, has_w, ta, tb, mass, pt, rap, evo, fi, si, mult, wo):
+    """Every passing pair, for choose='all': mass, pT and rapidity from the polar formulas
+    of :func:`peaksift.kinematics.pair_kinematics` (per-object terms once per event into
+    the scratch rows ``ta``/``tb``), event and object indices, multiplicity and weight.
+
+    ``sela``/``selb`` map selected objects to flat indices of the collection as read
+    (identity when ``has_sel*`` is false); ``offa``/``offb`` are the collections' event
+    offsets.
     """
-    p0 = starts[e0]
-    for ev in range(e0, e1):
+    for ev in range(sa.size):
         nc = counts[ev]
         if nc == 0:
             continue
+        _terms_of_event(sa[ev], ea[ev], sela, has_sela, pta, etaa, phia, ma, ta)
+        if not same:
+            _terms_of_event(sb[ev], eb[ev], selb, has_selb, ptb, etab, phib, mb, tb)
         k = starts[ev]
-        stop = k + nc
         wev = w[ev] if has_w else 1.0
-        for i in range(sa[ev], ea[ev]):
-            if k == stop:
-                break
-            j0 = i + 1 if same else sb[ev]
-            ia = rma[i - oa]
-            fa = (gla[i] if has_gla else i) - offa[ev]
+        s0 = sa[ev]
+        t0 = sb[ev]
+        for i in range(s0, ea[ev]):
+            j0 = i + 1 if same else t0
+            ia = i - s0
+            fa = (sela[i] if has_sela else i) - offa[ev]
             gi = ga[i] if mode != 0 else 0
             for j in range(j0, eb[ev]):
-                jb = rmb[j - ob]
-                kl = k - p0
-                x = pxa[ia] + pxb[jb]
-                y = pya[ia] + pyb[jb]
-                px[kl] = x
-                py[kl] = y
-                pz[kl] = pza[ia] + pzb[jb]
-                e[kl] = eea[ia] + eeb[jb]
-                pt[k] = np.sqrt(x * x + y * y)
+                if mode != 0 and gi * gb[j] != mode:
+                    continue
+                jb = j - t0
+                s2, c2 = _half_angle_squares(ta[1, ia] - tb[1, jb])
+                msq, ptsq, y = _pair_terms(ta[0, ia], ta[2, ia], ta[3, ia], ta[4, ia],
+                                           ta[5, ia], tb[0, jb], tb[2, jb], tb[3, jb],
+                                           tb[4, jb], tb[5, jb], s2, c2)
+                mass[k] = np.sqrt(msq)
+                pt[k] = np.sqrt(ptsq)
+                rap[k] = y
                 evo[k] = ev
                 fi[k] = fa
-                si[k] = (glb[j] if has_glb else j) - offb[ev]
+                si[k] = (selb[j] if has_selb else j) - offb[ev]
                 mult[k] = nc
                 wo[k] = wev
-                if mode == 0 or gi * gb[j] == mode:
-                    k += 1
+                k += 1
 
 
 @numba.njit(cache=True, nogil=True)
@@ -394,33 +397,6 @@ def _best_pairs_direct(sa, ea, sb, eb, same, ga, gb, mode, pta, ptb, rule):  # p
             pe[m] = ev
             m += 1
     return a[:m], b[:m], pe[:m]
-
-
-@numba.njit(cache=True, nogil=True)
-def _compress_block(used, o0, o1, sel, has_sel, pt, eta, phi, mass,  # pragma: no cover
-                    remap, cpt, ceta, cphi, cmass):
-    """Copy (as float64) the kinematics of used selected objects ``o0 <= i < o1`` to ``c*``
-    and set ``remap[i - o0]`` to their rows; returns the number used.
-
-    Branch-free: every object is copied to row ``m``, which advances only for used ones
-    (so ``c*`` have one spare row); unused objects get a valid row (they only meet failing
-    pairs).
-    """
-    m = 0
-    for i in range(o0, o1):
-        f = sel[i] if has_sel else i
-        cpt[m] = pt[f]
-        ceta[m] = eta[f]
-        cphi[m] = phi[f]
-        cmass[m] = mass[f]
-        remap[i - o0] = m
-        m += used[i]
-    last = max(m - 1, 0)
-    for r in range(o1 - o0 - 1, -1, -1):  # trailing unused objects point past the end
-        if remap[r] < m:
-            break
-        remap[r] = last
-    return m
 
 
 @numba.njit(cache=True, nogil=True)
@@ -735,8 +711,7 @@ def pair(
                           n_events, n_after, event_offset)
 
     counts = np.empty(n_events, dtype=np.int64)
-    nothing = np.zeros(1, dtype=np.bool_)
-    _count_pairs(sa, ea, sb, eb, same, qa, qb, mode, counts, False, nothing, nothing)
+    _count_pairs(sa, ea, sb, eb, same, qa, qb, mode, counts)
     starts = np.zeros(n_events, dtype=np.int64)
     if n_events > 1:
         np.cumsum(counts[:-1], out=starts[1:])
@@ -786,85 +761,41 @@ def _event_weights(events: Any) -> np.ndarray | None:
         raise InputError(f"per-event 'weight' is not a flat number per event ({exc})") from None
 
 
-def _block_columns(coll: _Collection, sel: np.ndarray | None, used: np.ndarray, o0: int,
-                   o1: int) -> tuple:
-    """Cartesian components of the used selected objects ``o0 <= i < o1`` and their rows.
-
-    Returns ``(cartesian, remap)`` with ``remap[i - o0]`` the row of object ``i`` (unused
-    objects get a valid but meaningless row: they only meet failing pairs).
-    """
-    cols = [coll.get(f) for f in _KINEMATIC_FIELDS]
-    n = o1 - o0
-    out = [np.empty(n + 1) for _ in range(4)]
-    remap = np.empty(n, dtype=np.int64)
-    m = _compress_block(used, o0, o1, _NO_INDEX if sel is None else sel, sel is not None,
-                        *cols, remap, *out)
-    return kinematics.to_cartesian(*(c[:m] for c in out)), remap
-
-
 def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
                sel_a: np.ndarray | None, sel_b: np.ndarray | None, sa: np.ndarray,
                ea: np.ndarray, sb: np.ndarray, eb: np.ndarray, qa: np.ndarray, qb: np.ndarray,
                mode: int, n_events: int, n_after: int, event_offset: int) -> Candidates:
-    """choose='all' without Delta R, in blocks of events.
+    """choose='all' without Delta R: one counting pass, then one kernel writes every column.
 
-    Each block's objects are converted to Cartesian components once, its pairs filled by one
-    kernel call, and their masses and rapidities computed from block-sized buffers that stay
-    in cache; only the final columns are full-size arrays.
+    Masses, pT and rapidities come from the polar pair formulas
+    (:func:`peaksift.kinematics.pair_kinematics`): per object two square roots and one
+    ``sinh``, per pair one sine, one cosine and one logarithm.  Converting each object to
+    Cartesian components instead cost four trigonometric/hyperbolic calls per object, the
+    largest part of the time.
     """
     counts = np.empty(n_events, dtype=np.int64)
-    used_a = np.zeros(int(ea[-1]) if n_events else 0, dtype=np.bool_)
-    used_b = used_a if same else np.zeros(int(eb[-1]) if n_events else 0, dtype=np.bool_)
-    _count_pairs(sa, ea, sb, eb, same, qa, qb, mode, counts, True, used_a, used_b)
+    _count_pairs(sa, ea, sb, eb, same, qa, qb, mode, counts)
     starts = np.zeros(n_events + 1, dtype=np.int64)
     np.cumsum(counts, out=starts[1:])
     total = int(starts[-1])
     n_with_pair = int(np.count_nonzero(counts))
     w = _event_weights(events)
 
-    n = total + 1  # one spare slot for the kernel's branch-free stores
-    mass, rap, pt, weight = (np.empty(n) for _ in range(4))
-    pe, fi, si, mult = (np.empty(n, dtype=np.int64) for _ in range(4))
-    # event blocks of about _BLOCK objects (first collection) and at most _BLOCK pairs
-    # unless one event alone has more
-    n_sel = int(ea[-1]) if n_events else 0
-    cuts = np.union1d(np.searchsorted(sa, np.arange(0, n_sel, _BLOCK), side="left"),
-                      np.searchsorted(starts[:-1], np.arange(0, total, _BLOCK), side="left"))
-    bounds = np.unique(np.concatenate([[0], cuts, [n_events]]))
-    empty = np.zeros(1, dtype=np.int64)
-    no_w = np.zeros(1)
-    buf = np.empty((4, 0))
-    n_nan = 0
-    for e0, e1 in zip(bounds[:-1].tolist(), bounds[1:].tolist()):
-        p0, p1 = int(starts[e0]), int(starts[e1])
-        if p1 == p0:
-            continue
-        oa0, oa1 = int(sa[e0]), int(ea[e1 - 1])
-        cart_a, rma = _block_columns(ca, sel_a, used_a, oa0, oa1)
-        if same:
-            ob0, cart_b, rmb = oa0, cart_a, rma
-        else:
-            ob0, ob1 = int(sb[e0]), int(eb[e1 - 1])
-            cart_b, rmb = _block_columns(cb, sel_b, used_b, ob0, ob1)
-        if buf.shape[1] < p1 - p0 + 1:
-            buf = np.empty((4, p1 - p0 + 1))
-        bpx, bpy, bpz, be = buf
-        _fill_block(e0, e1, sa, ea, sb, eb, same, qa, qb, mode, starts, counts,
-                    oa0, ob0, rma, rmb, *cart_a, *cart_b,
-                    empty if sel_a is None else sel_a, empty if sel_b is None else sel_b,
-                    sel_a is not None, sel_b is not None, ca.offsets, cb.offsets,
-                    no_w if w is None else w, w is not None,
-                    bpx, bpy, bpz, be, pt, pe, fi, si, mult, weight)
-        m = p1 - p0
-        bm = kinematics.invariant_mass(be[:m], bpx[:m], bpy[:m], bpz[:m], warn=False)
-        n_nan += int(np.count_nonzero(np.isnan(bm)))
-        mass[p0:p1] = bm
-        rap[p0:p1] = kinematics.rapidity(be[:m], bpz[:m])
-    if n_nan:  # one warning for all blocks, as invariant_mass gives for one call
-        warnings.warn(
-            f"pair: {n_nan} of {total} pair four-vectors have E^2 - p^2 below -1e-12 E^2 "
-            "(energy smaller than momentum, not rounding); their mass is NaN",
-            DataWarning, stacklevel=3)
+    mass, rap, pt, weight = (np.empty(total) for _ in range(4))
+    pe, fi, si, mult = (np.empty(total, dtype=np.int64) for _ in range(4))
+    if total:
+        na = int((ea - sa).max())
+        nb = na if same else int((eb - sb).max())
+        ta = np.empty((6, na))
+        tb = ta if same else np.empty((6, nb))
+        cols_a = [ca.get(f) for f in _KINEMATIC_FIELDS]
+        cols_b = cols_a if same else [cb.get(f) for f in _KINEMATIC_FIELDS]
+        _fill_all(sa, ea, sb, eb, same, qa, qb, mode, starts, counts,
+                  _NO_INDEX if sel_a is None else sel_a, _NO_INDEX if sel_b is None else sel_b,
+                  sel_a is not None, sel_b is not None, *cols_a, *cols_b,
+                  ca.offsets, cb.offsets, np.zeros(1) if w is None else w, w is not None,
+                  ta, tb, mass, pt, rap, pe, fi, si, mult, weight)
+    del counts, starts
     if event_offset:
         pe += int(event_offset)
     flow = {
@@ -873,9 +804,8 @@ def _all_pairs(events: Any, ca: _Collection, cb: _Collection, same: bool,
         "events_with_pair": n_with_pair,
         "candidates": total,
     }
-    return Candidates(mass=mass[:total], pt=pt[:total], rapidity=rap[:total],
-                      weight=weight[:total], event_index=pe[:total], first_index=fi[:total],
-                      second_index=si[:total], cutflow=flow, multiplicity=mult[:total],
+    return Candidates(mass=mass, pt=pt, rapidity=rap, weight=weight, event_index=pe,
+                      first_index=fi, second_index=si, cutflow=flow, multiplicity=mult,
                       choose="all")
 
 
