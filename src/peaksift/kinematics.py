@@ -192,6 +192,10 @@ _PIO2_LO = 6.123233995736766e-17
 _PI_HI = 3.141592653589793
 _PI_LO = 1.2246467991473532e-16
 _PIO4 = 0.7853981633974483
+_INV_2PI = 0.15915494309189535
+_2PI_A = 6.283185303211212  # 0x1.921fb54p+2
+_2PI_B = 3.968374295837407e-09  # 0x1.10b461p-28
+_2PI_C = 2.2884754904439327e-17
 # Taylor coefficients (-1)^k / (2k+1)! of sin
 _S3, _S5, _S7, _S9 = -1.0 / 6.0, 1.0 / 120.0, -1.0 / 5040.0, 1.0 / 362880.0
 _S11, _S13 = -1.0 / 39916800.0, 1.0 / 6227020800.0
@@ -234,7 +238,8 @@ def polar_object_terms(pt: ArrayLike, eta: ArrayLike, mass: ArrayLike) -> tuple:
 
 def half_angle_squares(dphi: ArrayLike) -> tuple:
     r""":math:`\sin^2(\Delta\phi/2)` and :math:`\cos^2(\Delta\phi/2)` for
-    :math:`|\Delta\phi| \le 2\pi`, with one sine (a polynomial) and full precision in both.
+    any :math:`\Delta\phi`, with one sine (a polynomial) and full relative precision in
+    both for :math:`|\Delta\phi| \le 2\pi`.
 
     With :math:`u = |\Delta\phi|/2 \in [0, \pi]`: for :math:`u \le \pi/4`,
     :math:`\sin^2 = \sin^2 u`; for :math:`\pi/4 < u \le 3\pi/4`,
@@ -242,10 +247,15 @@ def half_angle_squares(dphi: ArrayLike) -> tuple:
     (common practice: reduction by multiples of :math:`\pi/2` with the constant split in
     two parts, the first subtraction exact by Sterbenz' lemma).  The other square is
     :math:`1 - w^2` with :math:`w^2 \le 1/2`, which does not cancel.  Both squares are
-    periodic in :math:`\Delta\phi` with period :math:`2\pi`, so no wrapping is needed.
-    Arithmetic only (numpy arrays and numba kernels alike).
+    periodic in :math:`\Delta\phi` with period :math:`2\pi`, so azimuths in
+    :math:`[-\pi, \pi]` need no wrapping; a larger :math:`|\Delta\phi|` has whole turns
+    removed first (leaving an absolute error of a few ulp of :math:`\pi`).  Arithmetic
+    only (numpy arrays and numba kernels alike).
     """
-    u = np.abs(0.5 * dphi)
+    # whole turns off when |dphi| > 2 pi (2 pi in three parts, the first two with 26 bits,
+    # so k times them is exact); k = 0 (the usual case) leaves dphi bit for bit
+    k = np.floor(dphi * _INV_2PI + 0.5) * (np.abs(dphi) > 2.0 * _PI_HI)
+    u = np.abs(0.5 * (((dphi - k * _2PI_A) - k * _2PI_B) - k * _2PI_C))
     m1 = (u > _PIO4) * (u <= 3.0 * _PIO4) * 1.0
     m2 = (u > 3.0 * _PIO4) * 1.0
     m0 = 1.0 - m1 - m2
