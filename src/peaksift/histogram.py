@@ -17,15 +17,16 @@ difference).  NaN values are not filled; they are counted in ``n_nan``.
 
 from __future__ import annotations
 
+import io
 import json
 import os
-import tempfile
 import zipfile
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from ._files import atomic_write
 from .errors import InputError
 
 __all__ = ["MassHistogram"]
@@ -384,31 +385,25 @@ class MassHistogram:
         so a failure never leaves a half-written histogram.
         """
         path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-        try:
-            with os.fdopen(fd, "wb") as f:
-                if path.suffix.lower() == ".json":
-                    f.write(json.dumps(self.to_dict(), indent=1).encode())
-                else:
-                    np.savez(
-                        f,
-                        format=np.array(_FORMAT),
-                        version=np.array(_FORMAT_VERSION),
-                        unit=np.array(self.unit),
-                        label=np.array(self.label),
-                        edges=np.asarray(self.edges),
-                        sumw=self.sumw,
-                        sumw2=self.sumw2,
-                        flow=np.array([self.underflow, self.overflow,
-                                       self.underflow_sumw2, self.overflow_sumw2]),
-                        n_nan=np.array(self.n_nan),
-                    )
-            os.replace(tmp, path)
-        except BaseException:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            raise
+        if path.suffix.lower() == ".json":
+            data = json.dumps(self.to_dict(), indent=1).encode()
+        else:
+            buf = io.BytesIO()
+            np.savez(
+                buf,
+                format=np.array(_FORMAT),
+                version=np.array(_FORMAT_VERSION),
+                unit=np.array(self.unit),
+                label=np.array(self.label),
+                edges=np.asarray(self.edges),
+                sumw=self.sumw,
+                sumw2=self.sumw2,
+                flow=np.array([self.underflow, self.overflow,
+                               self.underflow_sumw2, self.overflow_sumw2]),
+                n_nan=np.array(self.n_nan),
+            )
+            data = buf.getvalue()
+        atomic_write(path, data)
         return path
 
     @classmethod

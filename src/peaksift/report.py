@@ -21,10 +21,11 @@ import html
 import json
 import math
 import os
-import tempfile
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
+
+from ._files import atomic_write
 
 __all__ = [
     "CAUTION",
@@ -99,26 +100,6 @@ def _window_count_label(r: Mapping[str, Any]) -> str:
 
 
 # ------------------------------------------------------------------------------- writing
-def atomic_write(path: str | os.PathLike[str], data: bytes | str) -> Path:
-    """Write ``data`` to ``path`` through a temporary file in the same directory and rename.
-
-    A failure (or an interrupt) leaves either the old file or none, never half a file.
-    """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    raw = data.encode("utf-8") if isinstance(data, str) else data
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(raw)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
-
-
 def _json_default(o: Any) -> Any:
     try:
         import numpy as np

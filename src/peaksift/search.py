@@ -222,7 +222,7 @@ def _save_spectrum(hist: Any, path: Path, blinding: Mapping[str, Any]) -> Path:
         return hist.save(path)
     import json
 
-    from .report import atomic_write
+    from ._files import atomic_write
 
     d = hist.to_dict()
     d["blinded"] = {
@@ -953,7 +953,7 @@ def write_demo_config(outdir: str | os.PathLike[str]) -> Path | None:
     """
     import json
 
-    from .report import atomic_write
+    from ._files import atomic_write
 
     out = Path(outdir)
     truth = out / "truth.json"
