@@ -303,6 +303,35 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     assert "140" in msg  # says where the calibration window has to end
 
 
+def test_toys_run_on_the_configured_engine_with_the_same_result(monkeypatch):
+    """significance.method = "toys" on engine "processes": the toy batches go through
+    execution.map_tasks with that engine and the global significance equals the serial
+    run's (reference: the serial engine; toys seeded one by one, common practice)."""
+    from peaksift import execution
+    from peaksift.config import load_config
+    from peaksift.search import run_search
+
+    base = load_config(CONFIG).with_overrides(limits__enabled=False, calibration__particle="",
+                                              significance__method="toys",
+                                              significance__toys=30)
+    serial = run_search(base, out=False).to_dict()["best"]
+    engines = []
+    real = execution.map_tasks
+
+    def spy(func, specs, **kw):
+        engines.append((getattr(func, "__name__", ""), kw.get("engine"), kw.get("workers")))
+        return real(func, specs, **kw)
+
+    monkeypatch.setattr(execution, "map_tasks", spy)
+    pool = run_search(base.with_overrides(execution__engine="processes", execution__workers=2),
+                      out=False).to_dict()["best"]
+    assert ("run_toy_batch", "processes", 2) in engines
+    assert pool["n_toys"] == serial["n_toys"] == 30
+    assert pool["n_toys_above"] == serial["n_toys_above"]
+    for key in ("mass", "z_local", "p_local", "p_global", "z_global"):
+        assert pool[key] == pytest.approx(serial[key], rel=1e-12, abs=1e-12), key
+
+
 def test_spectrum_figure_hides_the_bins_the_statistics_leave_out(monkeypatch, tmp_path):
     """The figure hides exactly the bins that overlap the blinded range (as the scan does),
     including a bin whose centre lies on the range's edge."""

@@ -599,7 +599,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
                 natural_width=width, blind=blind_window, refit=False)
     best = dict(sres.global_significance(
         method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
-        u0=cfg.significance.reference_level, progress=progress))
+        u0=cfg.significance.reference_level, progress=progress,
+        executor=_toy_executor(cfg)))
 
     m_best = float(best["mass"])
     start = {"mass": m_best}
@@ -687,6 +688,20 @@ def _require_candidates(cfg: Config, col: Any, hist: Any) -> None:
 def _opt(**kw: Any) -> dict[str, Any]:
     """Keyword arguments whose value is not None (optional features of the layers)."""
     return {k: v for k, v in kw.items() if v is not None}
+
+
+def _toy_executor(cfg: Config) -> Any:
+    """The toy batches' map on the configured engine (None: serial, in this process).
+    Toys are seeded one by one, so the engine does not change the result."""
+    ex = cfg.execution
+    if ex.engine == "serial":
+        return None
+    import functools
+
+    from .execution import map_tasks
+
+    return functools.partial(map_tasks, engine=ex.engine, workers=ex.workers,
+                             address=ex.address or None, desc="toy batches")
 
 
 def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigma_fn: Any,

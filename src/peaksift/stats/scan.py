@@ -483,18 +483,20 @@ class ScanResult:
 
     # ------------------------------------------------------ look-elsewhere
     def toy_scans(self, toys: int, *, seed: int = 0, workers: int | None = None,
-                  progress: bool | None = None) -> np.ndarray:
+                  progress: bool | None = None, executor: Any = None) -> np.ndarray:
         """q0 scans of ``toys`` background-only pseudo-experiments, ``(toys, n_unblinded)``."""
         if self.model is None:
             raise FitError("this ScanResult carries no model (rebuilt from a dict?); rerun scan")
         if self.model.masses.size == 0:
             raise FitError("every mass hypothesis of this scan is blinded; there is no "
                            "observed excess to assess (unblind, or scan outside the blind range)")
-        return run_toys(self.model, toys, seed=seed, workers=workers, progress=progress)
+        return run_toys(self.model, toys, seed=seed, workers=workers, progress=progress,
+                        executor=executor)
 
     def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
                             seed: int = 0, u0: float = 0.5, workers: int | None = None,
-                            progress: bool | None = None) -> dict[str, Any]:
+                            progress: bool | None = None, executor: Any = None
+                            ) -> dict[str, Any]:
         """Global significance of the best excess (look-elsewhere effect in the scan range).
 
         Parameters
@@ -507,8 +509,9 @@ class ScanResult:
         toys : int, optional
             Number of toys (default 1000 for ``"toys"``, 200 for ``"upcrossings"``; 0 with
             upcrossings counts N0 on the observed scan instead, stated in ``n0_source``).
-        seed, workers, progress :
-            Passed to :func:`peaksift.stats.toys.run_toys`.
+        seed, workers, progress, executor :
+            Passed to :func:`peaksift.stats.toys.run_toys` (``executor``: e.g.
+            :func:`peaksift.execution.map_tasks` bound to an engine).
 
         Returns
         -------
@@ -534,12 +537,14 @@ class ScanResult:
         gaps = np.diff(np.flatnonzero(mask)) > 1
         if method == "toys":
             n = 1000 if toys is None else int(toys)
-            scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress)
+            scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress,
+                                       executor=executor)
             res = lee.global_from_toys(q_obs, scans.max(axis=1))
         else:
             n = 200 if toys is None else int(toys)
             if n > 0:
-                scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress)
+                scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress,
+                                       executor=executor)
                 res = lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps)
             else:
                 res = lee.global_from_upcrossings(q_obs, self.q0[mask][None, :], u0=u0,

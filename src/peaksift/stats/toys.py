@@ -47,7 +47,7 @@ from __future__ import annotations
 import functools
 import os
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
@@ -670,7 +670,9 @@ def _progress_enabled(progress: bool | None) -> bool:
 
 def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | None = None,
              progress: bool | None = None, expected: np.ndarray | None = None,
-             batch: int = _TOYS_PER_BATCH) -> np.ndarray:
+             batch: int = _TOYS_PER_BATCH,
+             executor: Callable[[Callable[[Any], Any], list[Any]], Sequence[Any]] | None = None,
+             ) -> np.ndarray:
     """Background-only toys of ``model``: the q0 scan of each, ``(n_toys, n_masses)``.
 
     Parameters
@@ -685,6 +687,13 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
         Show a tqdm progress bar (default: only when stderr is a terminal).
     expected : ndarray, optional
         Expectation per used bin to fluctuate (default: the background-only fit).
+    batch : int
+        Toys per :class:`ToyBatch` (the unit of work handed to ``workers`` or ``executor``).
+    executor : callable, optional
+        ``executor(run_toy_batch, specs) -> results in spec order``, e.g.
+        ``functools.partial(peaksift.execution.map_tasks, engine="dask")``; takes precedence
+        over ``workers``.  Each toy is seeded on its own (:func:`toy_counts`), so the toys do
+        not depend on where the batches run.
     """
     n_toys = int(n_toys)
     if n_toys < 1:
@@ -697,7 +706,14 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
     bar = tqdm(total=n_toys, desc="toys", unit="toy", disable=not show, leave=False)
     results: list[np.ndarray] = []
     try:
-        if workers is not None and int(workers) > 1 and len(specs) > 1:
+        if executor is not None:
+            done = list(executor(run_toy_batch, specs))
+            if len(done) != len(specs):
+                raise FitError(f"the toy executor returned {len(done)} results for "
+                               f"{len(specs)} toy batches; it must return one per batch")
+            results.extend(done)
+            bar.update(n_toys)
+        elif workers is not None and int(workers) > 1 and len(specs) > 1:
             with ProcessPoolExecutor(max_workers=min(int(workers), len(specs),
                                                      os.cpu_count() or 1)) as pool:
                 for spec, res in zip(specs, pool.map(run_toy_batch, specs)):
