@@ -129,6 +129,11 @@ def die_on_two(spec: int) -> int:
     return spec
 
 
+def pid_after_pause(spec: int) -> tuple[int, int]:
+    time.sleep(0.02)
+    return spec, os.getpid()
+
+
 # ---------------------------------------------------------------------- map_tasks
 SPECS = [(seed, 500) for seed in range(7)]
 
@@ -180,6 +185,22 @@ def test_dead_process_worker_is_reported_with_the_task():
                        match=r"worker process died while running task 2 \(2\).*exit code 7"):
         execution.map_tasks(die_on_two, range(5), engine="processes", workers=2)
     assert _pool_children() == before
+
+
+def test_collect_runner_shares_the_tasks_between_this_process_and_the_pool():
+    # collect's "processes" runner: this process takes tasks while the pool's worker starts
+    # (the first two always go to the pool); every result comes back once, in task order
+    info: dict = {}
+    threads = pa.cpu_count()
+    run = execution._run(pid_after_pause, list(range(30)), engine="processes", workers=2,
+                         address=None, describe=str, info=info, parent_helps=True)
+    got = [(i, ok, value) for i, ok, value in run]
+    assert [i for i, _, _ in got] == list(range(30)) and all(ok for _, ok, _ in got)
+    assert [v[0] for _, _, v in got] == list(range(30))
+    pids = [v[1] for _, _, v in got]
+    assert pids[0] != os.getpid() and pids[1] != os.getpid()
+    assert os.getpid() in pids and info["workers"] == 2
+    assert pa.cpu_count() == threads  # Arrow's decoding threads given back
 
 
 def _pool_children():

@@ -21,7 +21,10 @@ Engines
     A local pool of ``workers`` processes (:class:`concurrent.futures.ProcessPoolExecutor`,
     ``spawn`` start method, so it behaves the same on every platform and never forks a
     process that holds threads).  Scripts that use it need the usual
-    ``if __name__ == "__main__":`` guard.
+    ``if __name__ == "__main__":`` guard.  :func:`collect` counts this process as one of
+    the ``workers``: it runs chunks itself (from the same ordered queue) while the pool's
+    ``workers - 1`` processes start up and work; :func:`map_tasks` uses ``workers`` pool
+    processes.
 ``"dask"``
     A Dask cluster: the scheduler at ``address`` (``"tcp://host:8786"``) when given,
     otherwise a :class:`distributed.LocalCluster` with ``workers`` single-threaded worker
@@ -704,6 +707,99 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
         track.close()
 
 
+def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
+                           describe: Callable[[int], str]) -> _Run:
+    """``workers`` processes in all: this one and a pool of ``workers - 1``.
+
+    Every spawned process pays its start-up (interpreter, imports, numba's first-call
+    set-up: ~1.4 s here) before its first chunk, while this process is already running.
+    So this process takes tasks too, from the same ordered counter as the pool: the pool
+    is kept at ``_INFLIGHT_PER_WORKER`` unfinished tasks per worker, this process runs the
+    next task whenever the one to deliver is not ready.  Results are still yielded in task
+    order (early ones wait; chunk outputs are small, the data they came from is freed).
+    On 2 cores a third process would only share the cores and add a second start-up.
+    """
+    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
+
+    n = len(tasks)
+    size = workers - 1
+    limit = _INFLIGHT_PER_WORKER * size
+    ctx = multiprocessing.get_context("spawn")
+    track = ctx.SimpleQueue()
+    pool = ProcessPoolExecutor(max_workers=size, mp_context=ctx, initializer=_worker_init,
+                               initargs=(track,))
+    pending: dict[int, Any] = {}
+    own: dict[int, tuple[bool, Any]] = {}
+    procs: dict[int, Any] = {}
+    started: dict[int, int] = {}
+    clean = False
+    import pyarrow as pa
+
+    arrow_threads = pa.cpu_count()
+    pa.set_cpu_count(1)  # like the workers: one process per core, no decoding threads
+    try:
+        nxt = 0
+        with _spawn_env(_WORKER_ENV):  # the first submits start the worker processes
+            while nxt < min(n, limit):
+                pending[nxt] = pool.submit(_tracked, func, nxt, tasks[nxt])
+                nxt += 1
+        procs.update(getattr(pool, "_processes", None) or {})
+        i = 0
+        while i < n:
+            _drain(track, started)
+            busy = sum(1 for f in pending.values() if not f.done())
+            while nxt < n and busy < limit:
+                pending[nxt] = pool.submit(_tracked, func, nxt, tasks[nxt])
+                nxt += 1
+                busy += 1
+                procs.update(getattr(pool, "_processes", None) or {})
+            if i in own:
+                ok, value = own.pop(i)
+                yield i, ok, value
+                i += 1
+                continue
+            fut = pending.get(i)
+            if fut is not None and not fut.done() and nxt < n:
+                j = nxt  # this process takes the next task while the pool works
+                nxt += 1
+                try:
+                    own[j] = (True, func(tasks[j]))
+                except PeaksiftError as exc:
+                    own[j] = (False, exc)
+                continue
+            if fut is None:  # pragma: no cover - every index is either own or pending
+                raise ExecutionError(f"internal error: task {i} was never started")
+            del pending[i]
+            try:
+                value = fut.result()
+            except PeaksiftError as exc:
+                _drain(track, started)
+                yield i, False, exc
+                i += 1
+                continue
+            except BrokenProcessPool:
+                unfinished = {i, *(k for k, f in pending.items() if not f.done())}
+                found = _culprit(procs, track, started, unfinished)
+                j, detail = found if found else (i, "the process was terminated abruptly")
+                raise _dead_worker_error(
+                    "worker process", j, n, describe, sorted(unfinished), detail,
+                    "it was killed or crashed: lower chunk_events or workers, or run "
+                    "engine='serial' to see the underlying error",
+                ) from None
+            _drain(track, started)
+            yield i, True, value
+            i += 1
+        clean = True
+    finally:
+        if clean:
+            pool.shutdown(wait=True)
+        else:  # error, early stop or KeyboardInterrupt: do not wait for running chunks
+            _stop_pool(pool, procs)
+        track.close()
+        pa.set_cpu_count(arrow_threads)
+
+
 def _start_local_cluster(workers: int) -> Any:
     """A LocalCluster of ``workers`` single-threaded processes, quiet, no dashboard.
 
@@ -818,7 +914,7 @@ def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
 
 def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
          workers: int | None, address: str | None, describe: Callable[[int], str],
-         info: dict[str, Any]) -> _Run:
+         info: dict[str, Any], parent_helps: bool = False) -> _Run:
     n_workers = workers or _default_workers()
     address = address or None  # "" (the config's default) means: start a local cluster
     if engine != "dask":
@@ -827,6 +923,8 @@ def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
     if engine == "serial":
         return _run_serial(func, tasks)
     if engine == "processes":
+        if parent_helps and n_workers > 1 and len(tasks) > 1:
+            return _run_processes_helping(func, tasks, n_workers, describe)
         return _run_processes(func, tasks, n_workers, describe)
     return _run_dask(func, tasks, n_workers, address, describe, info)
 
@@ -1059,7 +1157,8 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     run = None
     try:
         run = _run(func, specs, engine=engine, workers=workers, address=address,
-                   describe=lambda i: f"chunk {i} ({_describe_spec(specs[i])})", info=info)
+                   describe=lambda i: f"chunk {i} ({_describe_spec(specs[i])})", info=info,
+                   parent_helps=True)
         for i, ok, value in run:
             fname = _spec_file(specs[i])
             if fname == bad_file:  # rest of a file already skipped
