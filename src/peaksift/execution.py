@@ -39,7 +39,9 @@ Guarantees
   ran them.  For unweighted data the bin counts also equal one pass over all events
   exactly; for weighted data a different ``chunk_events`` may change sums at the
   rounding level (floating-point addition is not associative).
-* **Bounded memory.**  At most ``2 x workers`` chunks are in flight or waiting to be reduced;
+* **Bounded memory.**  At most ``2 x workers`` chunks are in flight or waiting to be reduced
+  (outputs of chunks this process ran for ``processes`` may wait longer: they hold only
+  what the reduce keeps anyway);
   memory grows with the chunk size, not the dataset (plus the window masses, which an
   unbinned fit needs anyway: 16 bytes per candidate in the window).
 * **Faults are reported, never hidden.**  A file that cannot be read stops the run with an
