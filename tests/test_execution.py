@@ -10,6 +10,7 @@ import json
 import logging
 import os
 import pickle
+import re
 import signal
 import time
 from pathlib import Path
@@ -181,9 +182,13 @@ def test_map_tasks_task_error_propagates_from_dask(dask_address):
 
 def test_dead_process_worker_is_reported_with_the_task():
     before = _pool_children()
-    with pytest.raises(ExecutionError,
-                       match=r"worker process died while running task 2 \(2\).*exit code 7"):
+    # Normally the message names the task and its exit code; when the pool does not say
+    # which worker died, it lists the tasks in flight instead (task 2 among them).
+    with pytest.raises(ExecutionError, match=r"worker process died") as err:
         execution.map_tasks(die_on_two, range(5), engine="processes", workers=2)
+    msg = str(err.value)
+    assert (re.search(r"while running task 2 \(2\).*exit code 7", msg)
+            or re.search(r"in flight: .*task 2 \(2\)", msg)), msg
     assert _pool_children() == before
 
 

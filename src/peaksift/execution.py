@@ -606,6 +606,17 @@ def _dead_worker_error(kind: str, i: int, n: int, describe: Callable[[int], str]
     )
 
 
+def _dead_worker_unknown(kind: str, n: int, describe: Callable[[int], str],
+                         running: Sequence[int], hint: str) -> ExecutionError:
+    """A worker died, but the pool did not tell which of the tasks in flight it ran."""
+    listed = ", ".join(f"{describe(j)} [{j + 1} of {n}]" for j in running[:6])
+    more = f" and {len(running) - 6} more" if len(running) > 6 else ""
+    return ExecutionError(
+        f"a {kind} died while one of these tasks was in flight: {listed}{more} "
+        f"(the pool did not report which); {hint}"
+    )
+
+
 def _exit_text(code: int | None) -> str:
     if code is None:
         return "exit code unknown"
@@ -631,7 +642,17 @@ def _culprit(procs: dict[int, Any], track: Any, started: dict[int, int],
              unfinished: set[int]) -> tuple[int, str] | None:
     """The task whose worker died first: it started last on a process that did not exit
     by the pool's own SIGTERM."""
-    _drain(track, started)
+    for attempt in range(3):  # start records and exit codes can lag the pool's notice
+        _drain(track, started)
+        found = _dead_tasks(procs, started, unfinished)
+        if found:
+            return min(found)
+        time.sleep(0.2 * (attempt + 1))
+    return None
+
+
+def _dead_tasks(procs: dict[int, Any], started: dict[int, int],
+                unfinished: set[int]) -> list[tuple[int, str]]:
     found = []
     for pid, index in started.items():
         proc = procs.get(pid)
@@ -641,7 +662,7 @@ def _culprit(procs: dict[int, Any], track: Any, started: dict[int, int],
         code = proc.exitcode
         if code is not None and code != -signal.SIGTERM:
             found.append((index, _exit_text(code)))
-    return min(found) if found else None
+    return found
 
 
 def _stop_pool(pool: Any, procs: dict[int, Any]) -> None:
@@ -692,7 +713,13 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
             except BrokenProcessPool:
                 unfinished = {i, *pending}
                 found = _culprit(procs, track, started, unfinished)
-                j, detail = found if found else (i, "the process was terminated abruptly")
+                if found is None:
+                    raise _dead_worker_unknown(
+                        "worker process", n, describe, sorted(unfinished),
+                        "it was killed or crashed: lower chunk_events or workers, or run "
+                        "engine='serial' to see the underlying error",
+                    ) from None
+                j, detail = found
                 raise _dead_worker_error(
                     "worker process", j, n, describe, sorted(unfinished), detail,
                     "it was killed or crashed: lower chunk_events or workers, or run "
@@ -783,7 +810,13 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
             except BrokenProcessPool:
                 unfinished = {i, *(k for k, f in pending.items() if not f.done())}
                 found = _culprit(procs, track, started, unfinished)
-                j, detail = found if found else (i, "the process was terminated abruptly")
+                if found is None:
+                    raise _dead_worker_unknown(
+                        "worker process", n, describe, sorted(unfinished),
+                        "it was killed or crashed: lower chunk_events or workers, or run "
+                        "engine='serial' to see the underlying error",
+                    ) from None
+                j, detail = found
                 raise _dead_worker_error(
                     "worker process", j, n, describe, sorted(unfinished), detail,
                     "it was killed or crashed: lower chunk_events or workers, or run "
