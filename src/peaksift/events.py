@@ -1126,7 +1126,7 @@ class Description:
 def _dtype_text(t: pa.DataType) -> str:
     """numpy-style names for numbers (float32, int8, ...), arrow's own text otherwise."""
     if pa.types.is_floating(t) or pa.types.is_integer(t) or pa.types.is_boolean(t):
-        return np.dtype(t.to_pandas_dtype()).name
+        return pa.array([], type=t).to_numpy(zero_copy_only=False).dtype.name
     return str(t)
 
 
