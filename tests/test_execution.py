@@ -416,3 +416,21 @@ def test_dead_dask_worker_is_reported_with_the_task(dask_address):
     # so with several tasks the one named could be a bystander.
     with pytest.raises(ExecutionError, match=r"Dask worker died while running task 0 \(2\)"):
         execution.map_tasks(die_on_two, [2], engine="dask", address=dask_address)
+
+
+def test_submit_to_a_broken_pool_fails_at_the_result_not_at_the_submit():
+    # A pool broken by a dying worker refuses new work; the refusal must surface where
+    # results are read (and be reported as a dead worker), not escape from the submit.
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
+
+    pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
+    try:
+        with pytest.raises(BrokenProcessPool):
+            pool.submit(die_on_two, 2).result(timeout=60)
+        fut = execution._submit(pool, die_on_two, 3, 3)
+        with pytest.raises(BrokenProcessPool):
+            fut.result(timeout=5)
+    finally:
+        pool.shutdown(wait=True)

@@ -606,6 +606,21 @@ def _dead_worker_error(kind: str, i: int, n: int, describe: Callable[[int], str]
     )
 
 
+def _submit(pool: Any, func: Callable[[Any], Any], index: int, task: Any) -> Any:
+    """Submit one task to the process pool.  A pool that a dying worker has already broken
+    refuses new work; the refusal comes back as a failed future, so it surfaces where the
+    results are read and is reported like any other dead worker."""
+    from concurrent.futures import Future
+    from concurrent.futures.process import BrokenProcessPool
+
+    try:
+        return pool.submit(_tracked, func, index, task)
+    except BrokenProcessPool as exc:
+        failed: Future = Future()
+        failed.set_exception(exc)
+        return failed
+
+
 def _dead_worker_unknown(kind: str, n: int, describe: Callable[[int], str],
                          running: Sequence[int], hint: str) -> ExecutionError:
     """A worker died, but the pool did not tell which of the tasks in flight it ran."""
@@ -695,12 +710,12 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
         nxt = 0
         with _spawn_env(_WORKER_ENV):  # the first submit starts every worker process
             while nxt < min(n, limit):
-                pending[nxt] = pool.submit(_tracked, func, nxt, tasks[nxt])
+                pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
         procs.update(getattr(pool, "_processes", None) or {})
         for i in range(n):
             while nxt < n and nxt < i + limit:
-                pending[nxt] = pool.submit(_tracked, func, nxt, tasks[nxt])
+                pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
                 procs.update(getattr(pool, "_processes", None) or {})
             fut = pending.pop(i)
@@ -771,7 +786,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
         nxt = 0
         with _spawn_env(_WORKER_ENV):  # the first submits start the worker processes
             while nxt < min(n, limit):
-                pending[nxt] = pool.submit(_tracked, func, nxt, tasks[nxt])
+                pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
         procs.update(getattr(pool, "_processes", None) or {})
         i = 0
@@ -779,7 +794,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
             _drain(track, started)
             busy = sum(1 for f in pending.values() if not f.done())
             while nxt < n and busy < limit:
-                pending[nxt] = pool.submit(_tracked, func, nxt, tasks[nxt])
+                pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
                 busy += 1
                 procs.update(getattr(pool, "_processes", None) or {})
