@@ -44,7 +44,7 @@ def test_distance_combines_errors_in_quadrature():
 
 def test_nothing_where_no_neutral_state_exists():
     # Independent look at the tables: no neutral, non-nucleus, non-quark entry lies in 150-170 GeV
-    # (particle package; the Higgs is at 125 GeV, the top quark is a quark).
+    # (particle package; its H0 entry lies at 125 GeV, and the top quark is a quark).
     near = [
         p for p in Particle.all()
         if p.mass is not None and 150_000 < p.mass < 170_000 and p.charge == 0
