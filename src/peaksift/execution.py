@@ -606,6 +606,21 @@ def _dead_worker_error(kind: str, i: int, n: int, describe: Callable[[int], str]
     )
 
 
+def _broken_pool_error(procs: dict[int, Any], track: Any, started: dict[int, int],
+                       unfinished: set[int], n: int,
+                       describe: Callable[[int], str]) -> ExecutionError:
+    """The error for a process pool broken by a dying worker: the task it ran when the pool
+    can tell, otherwise the tasks in flight."""
+    hint = ("it was killed or crashed: lower chunk_events or workers, or run "
+            "engine='serial' to see the underlying error")
+    found = _culprit(procs, track, started, unfinished)
+    if found is None:
+        return _dead_worker_unknown("worker process", n, describe, sorted(unfinished), hint)
+    j, detail = found
+    return _dead_worker_error("worker process", j, n, describe, sorted(unfinished), detail,
+                              hint)
+
+
 def _submit(pool: Any, func: Callable[[Any], Any], index: int, task: Any) -> Any:
     """Submit one task to the process pool.  A pool that a dying worker has already broken
     refuses new work; the refusal comes back as a failed future, so it surfaces where the
@@ -726,20 +741,8 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
                 yield i, False, exc
                 continue
             except BrokenProcessPool:
-                unfinished = {i, *pending}
-                found = _culprit(procs, track, started, unfinished)
-                if found is None:
-                    raise _dead_worker_unknown(
-                        "worker process", n, describe, sorted(unfinished),
-                        "it was killed or crashed: lower chunk_events or workers, or run "
-                        "engine='serial' to see the underlying error",
-                    ) from None
-                j, detail = found
-                raise _dead_worker_error(
-                    "worker process", j, n, describe, sorted(unfinished), detail,
-                    "it was killed or crashed: lower chunk_events or workers, or run "
-                    "engine='serial' to see the underlying error",
-                ) from None
+                raise _broken_pool_error(procs, track, started, {i, *pending}, n,
+                                         describe) from None
             _drain(track, started)
             yield i, True, value
         clean = True
@@ -824,19 +827,8 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
                 continue
             except BrokenProcessPool:
                 unfinished = {i, *(k for k, f in pending.items() if not f.done())}
-                found = _culprit(procs, track, started, unfinished)
-                if found is None:
-                    raise _dead_worker_unknown(
-                        "worker process", n, describe, sorted(unfinished),
-                        "it was killed or crashed: lower chunk_events or workers, or run "
-                        "engine='serial' to see the underlying error",
-                    ) from None
-                j, detail = found
-                raise _dead_worker_error(
-                    "worker process", j, n, describe, sorted(unfinished), detail,
-                    "it was killed or crashed: lower chunk_events or workers, or run "
-                    "engine='serial' to see the underlying error",
-                ) from None
+                raise _broken_pool_error(procs, track, started, unfinished, n,
+                                         describe) from None
             _drain(track, started)
             yield i, True, value
             i += 1
