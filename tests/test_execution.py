@@ -20,7 +20,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from peaksift import execution
+from peaksift import execution, histogram
 from peaksift.errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 
 
@@ -395,12 +395,18 @@ def test_fast_regular_binning_matches_binary_search(edges):
                         np.nextafter(edges, -np.inf), np.nextafter(edges, np.inf),
                         [np.inf, -np.inf, 1e300, -1e300]])
     rng.shuffle(v)
-    np.testing.assert_array_equal(execution._regular_index(edges, v),
+    np.testing.assert_array_equal(histogram._regular_index(edges, v),
                                   np.searchsorted(edges, v, side="right"))
     w = rng.uniform(0.5, 1.5, v.size)
     from peaksift.histogram import MassHistogram
 
-    assert execution._fill_hist(edges, v, w, "GeV", "m") == MassHistogram(edges).fill(v, w)
+    # the fill (which takes the arithmetic index for many regular bins) against bin sums
+    # from the binary-search index
+    h = MassHistogram(edges).fill(v, w)
+    ref = np.bincount(np.searchsorted(edges, v, side="right"), weights=w,
+                      minlength=edges.size + 1)
+    np.testing.assert_array_equal(h.sumw, ref[1:-1])
+    assert (h.underflow, h.overflow) == (ref[0], ref[-1])
 
 
 def test_local_cluster_started_and_closed_when_no_address():

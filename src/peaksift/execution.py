@@ -373,52 +373,10 @@ def _describe_spec(spec: Any) -> str:
     return ", ".join(parts)
 
 
-def _regular_index(edges: np.ndarray, values: np.ndarray) -> np.ndarray:
-    """``np.searchsorted(edges, values, side="right")`` for regular edges and values without
-    NaN, exactly, by arithmetic: several times faster for unsorted values, since a binary
-    search over hundreds of edges misses the cache for every value.  The arithmetic guess
-    is checked against the actual edges and moved by one bin where rounding put it on the
-    wrong side of an edge (index ``j`` holds ``edges[j-1] <= v < edges[j]``; the padding
-    -inf and NaN make the tests false beyond the first and last edge)."""
-    n = edges.size - 1
-    lo, hi = float(edges[0]), float(edges[-1])
-    ext = np.concatenate([[-np.inf], edges, [np.nan]])
-    t = (values - lo) * (n / (hi - lo))
-    np.clip(t, -1.0, float(n), out=t)
-    k = np.floor(t, out=t).astype(np.intp)  # -1: underflow, n: overflow, else the bin
-    k += 1  # now the searchsorted index, 0 .. n + 1
-    for _ in range(3):  # rounding moves a guess by at most one bin
-        down = values < ext[k]
-        up = values >= ext[k + 1]
-        if not (down.any() or up.any()):
-            return k
-        k -= down
-        k += up
-    wrong = (values < ext[k]) | (values >= ext[k + 1])  # never seen; exact either way
-    k[wrong] = np.searchsorted(edges, values[wrong], side="right")
-    return k
-
-
 def _fill_hist(edges: Sequence[float], values: np.ndarray, weights: np.ndarray,
                unit: str, label: str) -> MassHistogram:
-    """A new histogram filled with ``values`` and ``weights``; the same numbers as
-    :meth:`MassHistogram.fill` (same bin indices, same ``bincount`` sums), faster for
-    regular binning with many bins (where the binary search is the slow part)."""
-    h = MassHistogram(edges, unit=unit, label=label)
-    if (not h.is_regular or h.nbins < 128 or values.size == 0
-            or np.isnan(values).any() or not np.isfinite(weights).all()):
-        return h.fill(values, weights)  # the general path (and its error messages)
-    n = h.nbins
-    idx = _regular_index(h.edges, values)
-    s1 = np.bincount(idx, weights=weights, minlength=n + 2)
-    s2 = np.bincount(idx, weights=weights * weights, minlength=n + 2)
-    h.sumw += s1[1 : n + 1]
-    h.sumw2 += s2[1 : n + 1]
-    h.underflow += s1[0]
-    h.overflow += s1[n + 1]
-    h.underflow_sumw2 += s2[0]
-    h.overflow_sumw2 += s2[n + 1]
-    return h
+    """A new histogram filled with ``values`` and ``weights``."""
+    return MassHistogram(edges, unit=unit, label=label).fill(values, weights)
 
 
 def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:

@@ -64,6 +64,36 @@ def _check_edges(edges: Any) -> np.ndarray:
     return e
 
 
+# below this many bins a binary search over the edges is as fast as the arithmetic index
+_ARITHMETIC_INDEX_MIN_BINS = 128
+
+
+def _regular_index(edges: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """``np.searchsorted(edges, values, side="right")`` for regular edges and values without
+    NaN, exactly, by arithmetic: several times faster for unsorted values, since a binary
+    search over hundreds of edges misses the cache for every value.  The arithmetic guess
+    is checked against the actual edges and moved by one bin where rounding put it on the
+    wrong side of an edge (index ``j`` holds ``edges[j-1] <= v < edges[j]``; the padding
+    -inf and NaN make the tests false beyond the first and last edge)."""
+    n = edges.size - 1
+    lo, hi = float(edges[0]), float(edges[-1])
+    ext = np.concatenate([[-np.inf], edges, [np.nan]])
+    t = (values - lo) * (n / (hi - lo))
+    np.clip(t, -1.0, float(n), out=t)
+    k = np.floor(t, out=t).astype(np.intp)  # -1: underflow, n: overflow, else the bin
+    k += 1  # now the searchsorted index, 0 .. n + 1
+    for _ in range(3):  # rounding moves a guess by at most one bin
+        down = values < ext[k]
+        up = values >= ext[k + 1]
+        if not (down.any() or up.any()):
+            return k
+        k -= down
+        k += up
+    wrong = (values < ext[k]) | (values >= ext[k + 1])  # never seen; exact either way
+    k[wrong] = np.searchsorted(edges, values[wrong], side="right")
+    return k
+
+
 class MassHistogram:
     """A weighted one-dimensional histogram of invariant masses.
 
@@ -225,24 +255,21 @@ class MassHistogram:
             return self
         n = self.nbins
         # index 0 = underflow, 1..n = bins, n+1 = overflow; bins are [e_i, e_{i+1})
-        idx = np.searchsorted(self.edges, m, side="right")
+        if self._regular and n >= _ARITHMETIC_INDEX_MIN_BINS:
+            idx = _regular_index(self.edges, m)
+        else:
+            idx = np.searchsorted(self.edges, m, side="right")
         if w is None:
-            counts = np.bincount(idx, minlength=n + 2).astype(float)
-            self.sumw += counts[1 : n + 1]
-            self.sumw2 += counts[1 : n + 1]
-            self.underflow += counts[0]
-            self.overflow += counts[n + 1]
-            self.underflow_sumw2 += counts[0]
-            self.overflow_sumw2 += counts[n + 1]
+            s1 = s2 = np.bincount(idx, minlength=n + 2).astype(float)
         else:
             s1 = np.bincount(idx, weights=w, minlength=n + 2)
             s2 = np.bincount(idx, weights=w * w, minlength=n + 2)
-            self.sumw += s1[1 : n + 1]
-            self.sumw2 += s2[1 : n + 1]
-            self.underflow += s1[0]
-            self.overflow += s1[n + 1]
-            self.underflow_sumw2 += s2[0]
-            self.overflow_sumw2 += s2[n + 1]
+        self.sumw += s1[1 : n + 1]
+        self.sumw2 += s2[1 : n + 1]
+        self.underflow += s1[0]
+        self.overflow += s1[n + 1]
+        self.underflow_sumw2 += s2[0]
+        self.overflow_sumw2 += s2[n + 1]
         return self
 
     # ------------------------------------------------------------------- merge
