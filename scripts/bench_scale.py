@@ -7,7 +7,8 @@ memory is measured alone.  For each engine it prints:
 
 * events/s (events read / wall time of ``collect``, which includes starting the process
   pool or the local Dask cluster and planning the chunks); ``dask-running`` is Dask given a
-  scheduler address, on a cluster started before the timed run, as a real cluster would be;
+  scheduler address, on a cluster started before the timed run (its workers spawned, fresh
+  interpreters that have not run peaksift yet), as a real cluster would be;
 * the speed-up over ``serial`` measured in the same run (targets on a 2-core machine:
   ``processes`` >= 1.6x and ``dask`` >= 1.5x with two workers);
 * the peak resident memory of the whole process tree (the run's process plus its pool or
@@ -19,6 +20,7 @@ Usage::
     python scripts/bench_scale.py                      # 20M events, all engines
     python scripts/bench_scale.py --events 2000000     # a quick run
     python scripts/bench_scale.py --data DIR           # reuse (or keep) generated files
+    python scripts/bench_scale.py --start-method spawn # workers as fresh interpreters
 """
 
 from __future__ import annotations
@@ -73,12 +75,14 @@ def _child(args: argparse.Namespace) -> None:
     if engine == EXISTING:  # a running cluster, as a real one would be: started untimed
         from peaksift.execution import _start_local_cluster
 
-        cluster = _start_local_cluster(args.workers)
+        # spawned, like the worker processes of a real cluster (not forked from this one)
+        cluster = _start_local_cluster(args.workers, start_method="spawn")
         engine, address = "dask", cluster.scheduler_address
     try:
         t0 = time.perf_counter()
         col = collect(_files(args.data, args.first_files), sel, engine=engine,
-                      workers=args.workers, address=address, chunk_events=args.chunk_events)
+                      workers=args.workers, address=address, chunk_events=args.chunk_events,
+                      start_method=args.start_method)
         seconds = time.perf_counter() - t0
     finally:
         if cluster is not None:
@@ -117,6 +121,7 @@ def _run_engine(engine: str, args: argparse.Namespace, first_files: int = 0) -> 
     cmd = [sys.executable, __file__, "--child", engine, "--data", str(args.data),
            "--first-files", str(first_files),
            "--workers", str(args.workers), "--chunk-events", str(args.chunk_events),
+           "--start-method", args.start_method,
            "--first", args.first, "--cut", args.cut, "--choose", args.choose,
            "--lo", str(args.lo), "--hi", str(args.hi), "--bins", str(args.bins)]
     import resource
@@ -196,6 +201,9 @@ def main(argv: list[str] | None = None) -> int:
                     help=f"{EXISTING}: Dask with a scheduler address, on a two-worker cluster "
                          "started before the timed run (its workers have not run peaksift "
                          "yet), as when pointing at a real cluster")
+    ap.add_argument("--start-method", default="auto", choices=("auto", "fork", "spawn"),
+                    help="how the pool's and the local cluster's worker processes start "
+                         "(auto: fork on Linux)")
     ap.add_argument("--repeat", type=int, default=1, help="runs per engine (best time)")
     ap.add_argument("--no-marginal", action="store_true",
                     help="skip the second, smaller run that separates start-up cost from "
@@ -236,7 +244,8 @@ def main(argv: list[str] | None = None) -> int:
             have = _files(args.data, None)
         n_small = max(1, len(have) // 4) if len(have) >= 2 and not args.no_marginal else 0
         print(f"cpus: {os.cpu_count()}, workers: {args.workers}, chunk_events: "
-              f"{args.chunk_events:,}, files: {len(have)}", flush=True)
+              f"{args.chunk_events:,}, files: {len(have)}, start method: "
+              f"{args.start_method}", flush=True)
         for engine in engines:
             r = full[engine] = _measure(engine, args)
             others = "" if r["cpu_others"] is None else \

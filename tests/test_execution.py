@@ -12,6 +12,8 @@ import os
 import pickle
 import re
 import signal
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -209,12 +211,14 @@ def test_collect_runner_shares_the_tasks_between_this_process_and_the_pool():
 
 
 def _pool_children():
-    """Pids of spawned worker processes of this test process still alive."""
+    """Pids of this test process's child processes still alive (forked or spawned), less
+    multiprocessing's resource tracker, which lives as long as the test process."""
     psutil = pytest.importorskip("psutil")
     alive = []
     for p in psutil.Process().children(recursive=True):
         try:
-            if p.status() != psutil.STATUS_ZOMBIE and any("spawn_main" in a for a in p.cmdline()):
+            if p.status() != psutil.STATUS_ZOMBIE and not any("resource_tracker" in a
+                                                               for a in p.cmdline()):
                 alive.append(p.pid)
         except psutil.NoSuchProcess:
             pass
@@ -245,6 +249,42 @@ def test_unpicklable_function_is_refused_before_starting():
 def test_unknown_engine_suggests_closest():
     with pytest.raises(ConfigError, match="did you mean 'processes'"):
         execution.map_tasks(seeded_draw, SPECS, engine="proceses")
+    with pytest.raises(ConfigError, match="unknown start_method 'forks'.*did you mean 'fork'"):
+        execution.collect([], SEL, engine="processes", start_method="forks")
+
+
+_KERNEL_PROBE = """
+import sys
+from peaksift import execution
+
+class Probe(execution._ChunkTask):
+    # what a worker holds when its first task starts
+    def __call__(self, spec):
+        pairing = sys.modules.get("peaksift.pairing")
+        return pairing is not None and len(pairing._count_pairs.overloads) > 0
+
+if __name__ == "__main__":
+    sel = execution.Selection(first="muon", edges=[0.0, 100.0])
+    for method in ("fork", "spawn"):
+        info = {}
+        run = execution._run(Probe(sel), [0, 1], engine="processes", workers=2, address=None,
+                             describe=str, info=info, start_method=method)
+        print(method, info["start_method"], [v for _, _, v in run])
+"""
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork is used on Linux only")
+def test_forked_workers_start_with_the_pairing_kernels_loaded(tmp_path):
+    # A fresh interpreter, so nothing is loaded before the run: with fork the parent loads
+    # the chunk work and numba's kernels first and the workers inherit them; spawned
+    # workers start without them (and pay numba's first-call set-up themselves).
+    script = tmp_path / "probe.py"
+    script.write_text(_KERNEL_PROBE)
+    out = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
+                         timeout=300, check=True).stdout.split("\n")
+    assert out[0] == "fork fork [True, True]", out
+    assert out[1] == "spawn spawn [False, False]", out
+    assert execution._resolve_start("auto") == "fork"
 
 
 def test_bad_scheduler_address_is_reported():
@@ -286,9 +326,14 @@ def test_engines_agree_exactly(weighted_dataset, dask_address):
     ref = execution.collect(files, SEL, chunk_events=1000)
     assert ref.histogram.is_weighted and ref.engine_info["chunks"] == 6
     procs = execution.collect(files, SEL, engine="processes", workers=2, chunk_events=1000)
+    spawned = execution.collect(files, SEL, engine="processes", workers=2, chunk_events=1000,
+                                start_method="spawn")
     dask = execution.collect(files, SEL, engine="dask", address=dask_address, chunk_events=1000)
     _assert_same(procs, ref)
+    _assert_same(spawned, ref)
     _assert_same(dask, ref)
+    assert spawned.engine_info["start_method"] == "spawn"
+    assert "start_method" not in dask.engine_info  # a running cluster's workers are its own
     assert procs.engine_info["engine"] == "processes" and procs.engine_info["workers"] == 2
     assert dask.engine_info["address"] == dask_address and dask.engine_info["workers"] == 2
     # and the weighted sums equal one pass to rounding (numpy.histogram with weights)
@@ -409,9 +454,11 @@ def test_fast_regular_binning_matches_binary_search(edges):
     assert (h.underflow, h.overflow) == (ref[0], ref[-1])
 
 
-def test_local_cluster_started_and_closed_when_no_address():
+@pytest.mark.parametrize("start_method", ["auto", "spawn"])
+def test_local_cluster_started_and_closed_when_no_address(start_method):
     pytest.importorskip("distributed")
-    got = execution.map_tasks(seeded_draw, SPECS[:3], engine="dask", workers=1)
+    got = execution.map_tasks(seeded_draw, SPECS[:3], engine="dask", workers=1,
+                              start_method=start_method)
     for a, b in zip(got, _reference()[:3]):
         np.testing.assert_array_equal(a, b)
 

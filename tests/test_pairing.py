@@ -457,3 +457,44 @@ def test_all_fast_path_agrees_with_the_listing_path(random_rows, second):
     np.testing.assert_allclose(fast.mass, listed.mass, rtol=1e-12, atol=0)
     np.testing.assert_allclose(fast.pt, listed.pt, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(fast.rapidity, listed.rapidity, rtol=1e-12, atol=1e-12)
+
+
+_EXTENSIONS_LATER = """
+import sys
+import awkward as ak
+import numba
+import numba.core.entrypoints as entrypoints
+import peaksift
+
+events = peaksift.read_events(sys.argv[1])[:3000]
+cands = peaksift.pair(events, "muon", charge="opposite", choose="leading")
+assert len(cands) > 0
+# the kernels loaded without numba's third-party extensions, and numba still owes them
+print("vector numba extension loaded by pair:", "vector.backends._numba_object" in sys.modules)
+print("extensions pending:", entrypoints._already_initialized is False)
+
+@numba.njit
+def total_pt(muons):  # a user's kernel over an awkward array: needs awkward's extension
+    s = 0.0
+    for event in muons:
+        for mu in event:
+            s += mu.pt
+    return s
+
+print("same sum:", abs(total_pt(events.muon) - float(ak.sum(events.muon.pt))) < 1e-3)
+"""
+
+
+def test_pair_leaves_numba_extensions_to_later_compilations(tmp_path, demo_dir):
+    # In a fresh interpreter: pair() loads its kernels without running numba's extension
+    # entry points (a worker's start-up saving), and a later numba function over an awkward
+    # array still compiles, with awkward's own sum as the reference.
+    import subprocess
+    import sys
+
+    script = tmp_path / "later.py"
+    script.write_text(_EXTENSIONS_LATER)
+    out = subprocess.run([sys.executable, str(script), str(demo_dir / "events_000.parquet")],
+                         capture_output=True, text=True, timeout=300, check=True).stdout
+    assert out.splitlines() == ["vector numba extension loaded by pair: False",
+                                "extensions pending: True", "same sum: True"], out

@@ -243,6 +243,11 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("skip_bad_files", "bool", False,
              "Skip unreadable files (listed in results.json and the report) instead of "
              "stopping."),
+        _Key("start_method", "choice", "auto",
+             "How local worker processes start: `auto` (fork on Linux, else spawn), `fork` "
+             "(ready at once, from this process) or `spawn` (fresh interpreters; use it if "
+             "code in the calling process is not fork-safe).",
+             choices=("auto", "fork", "spawn")),
     ),
     "output": (
         _Key("dir", "str", "peaksift_out",
@@ -405,6 +410,7 @@ class ExecutionConfig:
     address: str = ""
     chunk_events: int = 250_000
     skip_bad_files: bool = False
+    start_method: str = "auto"
 
 
 @dataclass(frozen=True)

@@ -18,18 +18,28 @@ Engines
 ``"serial"`` (default)
     In this process, one chunk after another.  Nothing to set up; the reference result.
 ``"processes"``
-    A local pool of ``workers`` processes (:class:`concurrent.futures.ProcessPoolExecutor`,
-    ``spawn`` start method, so it behaves the same on every platform and never forks a
-    process that holds threads).  Scripts that use it need the usual
-    ``if __name__ == "__main__":`` guard.  :func:`collect` counts this process as one of
-    the ``workers``: it runs chunks itself (from the same ordered queue) while the pool's
-    ``workers - 1`` processes start up and work; :func:`map_tasks` uses ``workers`` pool
-    processes.
+    A local pool of ``workers`` processes (:class:`concurrent.futures.ProcessPoolExecutor`).
+    :func:`collect` counts this process as one of the ``workers``: it runs chunks itself
+    (from the same ordered queue) beside a pool of ``workers - 1``; :func:`map_tasks` uses
+    ``workers`` pool processes.
 ``"dask"``
     A Dask cluster: the scheduler at ``address`` (``"tcp://host:8786"``) when given,
     otherwise a :class:`distributed.LocalCluster` with ``workers`` single-threaded worker
     processes that is started for the call and closed after it.  Every worker must be able
     to import peaksift and to open the input paths.
+
+How local worker processes start (``start_method``)
+---------------------------------------------------
+``"auto"`` (default) is ``"fork"`` on Linux and ``"spawn"`` elsewhere.  A spawned process
+starts a fresh interpreter: imports and numba's first-call set-up cost it about 0.6 s of
+CPU before its first chunk, as much as a fifth of a whole 20M-event selection on two cores.
+With ``"fork"`` this process first imports the chunk work and loads the pairing kernels,
+then forks the pool (or the local Dask cluster's workers), which start ready in a few
+milliseconds.  Forking a process that holds threads is safe here because the children
+run only the chunk work, whose libraries re-create their thread pools after a fork (Arrow,
+OpenBLAS) or use none (the numba kernels); choose ``"spawn"`` if your own code in the
+calling process is not fork-safe.  Scripts that use ``"spawn"`` need the usual
+``if __name__ == "__main__":`` guard.  The start method changes nothing in the results.
 
 Guarantees
 ----------
@@ -79,6 +89,7 @@ from .histogram import MassHistogram
 __all__ = [
     "DEFAULT_CHUNK_EVENTS",
     "ENGINES",
+    "START_METHODS",
     "ChunkOutput",
     "Collected",
     "Selection",
@@ -89,6 +100,9 @@ __all__ = [
 ]
 
 ENGINES = ("serial", "processes", "dask")
+
+#: How local worker processes start (see the module guide).
+START_METHODS = ("auto", "fork", "spawn")
 
 #: Events per chunk when the caller does not say.  The demo search on 500 000-event chunks
 #: peaks near 0.4 GiB per process (about half of it the libraries themselves).
@@ -313,7 +327,8 @@ class Collected:
         Objects dropped while reading for bad values, per collection and problem
         (``{"muon": {"NaN or infinite kinematics": 3}}``), summed over the files read.
     engine_info : dict
-        ``engine``, ``workers``, ``address``, ``chunks``, ``chunk_events``, ``seconds``,
+        ``engine``, ``workers``, ``address``, ``start_method`` (when worker processes were
+        started for the call), ``chunks``, ``chunk_events``, ``seconds``,
         ``events_per_second`` and ``chunk_seconds`` (time spent inside the chunks, summed
         over workers: ``chunk_seconds / (seconds * workers)`` is how busy the workers were).
     """
@@ -453,15 +468,18 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
 
 
 # ------------------------------------------------------------------------------ engines
-def _check_engine(engine: str, workers: int | None, address: str | None) -> None:
-    if engine not in ENGINES:
-        from .errors import closest
+def _check_engine(engine: str, workers: int | None, address: str | None,
+                  start_method: str = "auto") -> None:
+    from .errors import closest
 
-        near = closest(engine, ENGINES)
-        hint = f"; did you mean {near!r}?" if near else ""
-        raise ConfigError(
-            f"unknown engine {engine!r}: choose one of {', '.join(ENGINES)}{hint}"
-        )
+    for what, value, allowed in (("engine", engine, ENGINES),
+                                 ("start_method", start_method, START_METHODS)):
+        if value not in allowed:
+            near = closest(str(value), allowed)
+            hint = f"; did you mean {near!r}?" if near else ""
+            raise ConfigError(
+                f"unknown {what} {value!r}: choose one of {', '.join(allowed)}{hint}"
+            )
     if workers is not None and (isinstance(workers, bool) or int(workers) != workers
                                 or workers < 1):
         raise ConfigError(f"workers must be a positive integer, got {workers!r}")
@@ -469,6 +487,34 @@ def _check_engine(engine: str, workers: int | None, address: str | None) -> None
 
 def _default_workers() -> int:
     return max(1, os.cpu_count() or 1)
+
+
+def _resolve_start(start_method: str) -> str:
+    """``"fork"`` or ``"spawn"``: ``"auto"`` forks on Linux only (on macOS system libraries
+    are not fork-safe, and Windows cannot fork)."""
+    if start_method == "auto":
+        linux = sys.platform.startswith("linux")
+        return "fork" if linux and "fork" in multiprocessing.get_all_start_methods() \
+            else "spawn"
+    return start_method
+
+
+def _prepare_to_fork(func: Callable[[Any], Any]) -> None:
+    """Get this process ready to be forked: whatever ``func.prepare`` loads (the chunk
+    work's imports and numba kernels) is then inherited by every worker."""
+    prepare = getattr(func, "prepare", None)
+    if callable(prepare):
+        prepare()
+
+
+@contextlib.contextmanager
+def _quiet_fork() -> Iterator[None]:
+    """Python 3.12+ warns at every fork of a process that holds threads; the pool's
+    children run only the chunk work or the task function (see the module guide)."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=r".*use of fork\(\) may lead to deadlocks",
+                                category=DeprecationWarning)
+        yield
 
 
 _TRACK: Any = None  # in a pool worker: queue of (pid, task index) as tasks start
@@ -495,10 +541,18 @@ def _install_exit_fast() -> None:
 
 
 def _worker_init(track: Any) -> None:
-    """Pool workers leave Ctrl-C to the parent, which stops them cleanly."""
+    """Pool workers leave Ctrl-C to the parent, which stops them cleanly, and decode with
+    one Arrow thread (one process per core already; a forked worker does not see the
+    thread settings of ``_WORKER_ENV``, so it is told here)."""
     global _TRACK
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     _TRACK = track
+    for k, v in _WORKER_ENV.items():
+        os.environ.setdefault(k, v)
+    arrow = sys.modules.get("pyarrow")
+    if arrow is not None:  # already imported: a forked worker (or a user's setting)
+        with contextlib.suppress(ValueError):
+            arrow.set_cpu_count(max(1, int(os.environ["OMP_NUM_THREADS"])))
     _install_exit_fast()
 
 
@@ -506,6 +560,14 @@ def _worker_init(track: Any) -> None:
 #: one process per core, so Arrow's decoding threads and BLAS threads would only contend
 #: with the other workers (measured: ~10% faster chunks with one thread each).
 _WORKER_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+
+
+def _pool(size: int, method: str, track: Any) -> Any:
+    """A process pool of ``size`` workers started with ``method`` ("fork" or "spawn")."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    return ProcessPoolExecutor(max_workers=size, mp_context=multiprocessing.get_context(method),
+                               initializer=_worker_init, initargs=(track,))
 
 
 @contextlib.contextmanager
@@ -665,23 +727,20 @@ def _stop_pool(pool: Any, procs: dict[int, Any]) -> None:
 
 
 def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
-                   describe: Callable[[int], str]) -> _Run:
-    from concurrent.futures import ProcessPoolExecutor
+                   describe: Callable[[int], str], method: str) -> _Run:
     from concurrent.futures.process import BrokenProcessPool
 
     n = len(tasks)
     limit = _INFLIGHT_PER_WORKER * workers
-    ctx = multiprocessing.get_context("spawn")
-    track = ctx.SimpleQueue()
-    pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_worker_init,
-                               initargs=(track,))
+    track = multiprocessing.get_context(method).SimpleQueue()
+    pool = _pool(workers, method, track)
     pending: dict[int, Any] = {}
     procs: dict[int, Any] = {}
     started: dict[int, int] = {}
     clean = False
     try:
         nxt = 0
-        with _spawn_env(_WORKER_ENV):  # the first submit starts every worker process
+        with _spawn_env(_WORKER_ENV), _quiet_fork():  # the first submit starts the workers
             while nxt < min(n, limit):
                 pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
@@ -713,27 +772,22 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
 
 
 def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
-                           describe: Callable[[int], str]) -> _Run:
+                           describe: Callable[[int], str], method: str) -> _Run:
     """``workers`` processes in all: this one and a pool of ``workers - 1``.
 
-    Every spawned process pays its start-up (interpreter, imports, numba's first-call
-    set-up: ~1.4 s here) before its first chunk, while this process is already running.
-    So this process takes tasks too, from the same ordered counter as the pool: the pool
-    is kept at ``_INFLIGHT_PER_WORKER`` unfinished tasks per worker, this process runs the
+    This process takes tasks too, from the same ordered counter as the pool: the pool is
+    kept at ``_INFLIGHT_PER_WORKER`` unfinished tasks per worker, this process runs the
     next task whenever the one to deliver is not ready.  Results are still yielded in task
     order (early ones wait; chunk outputs are small, the data they came from is freed).
-    On 2 cores a third process would only share the cores and add a second start-up.
+    On 2 cores a third process would only share the cores (and, spawned, add a second
+    start-up); a spawned worker's start-up is covered by this process's work.
     """
-    from concurrent.futures import ProcessPoolExecutor
     from concurrent.futures.process import BrokenProcessPool
 
     n = len(tasks)
     size = workers - 1
     limit = _INFLIGHT_PER_WORKER * size
-    ctx = multiprocessing.get_context("spawn")
-    track = ctx.SimpleQueue()
-    pool = ProcessPoolExecutor(max_workers=size, mp_context=ctx, initializer=_worker_init,
-                               initargs=(track,))
+    track = multiprocessing.get_context(method).SimpleQueue()
     pending: dict[int, Any] = {}
     own: dict[int, tuple[bool, Any]] = {}
     procs: dict[int, Any] = {}
@@ -743,9 +797,10 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
 
     arrow_threads = pa.cpu_count()
     pa.set_cpu_count(1)  # like the workers: one process per core, no decoding threads
+    pool = _pool(size, method, track)
     try:
         nxt = 0
-        with _spawn_env(_WORKER_ENV):  # the first submits start the worker processes
+        with _spawn_env(_WORKER_ENV), _quiet_fork():  # the first submits start the workers
             while nxt < min(n, limit):
                 pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
@@ -800,8 +855,12 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
         pa.set_cpu_count(arrow_threads)
 
 
-def _start_local_cluster(workers: int) -> Any:
+def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
     """A LocalCluster of ``workers`` single-threaded processes, quiet, no dashboard.
+
+    The nannies start their workers with ``start_method`` (``"auto"``: fork on Linux; see
+    the module guide): forked from this process, a worker starts with distributed, the
+    chunk work and its kernels already loaded.
 
     Dask's nannies start workers with ``MALLOC_TRIM_THRESHOLD_=65536``, which makes glibc
     return freed memory to the system at once: every large temporary array of a chunk is
@@ -815,14 +874,17 @@ def _start_local_cluster(workers: int) -> Any:
 
     env = dict(dask.config.get("distributed.nanny.pre-spawn-environ", {}) or {})
     env.pop("MALLOC_TRIM_THRESHOLD_", None)
-    with dask.config.set({"distributed.nanny.pre-spawn-environ": env}):
+    method = _resolve_start(start_method)
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": env,
+                          "distributed.worker.multiprocessing-method": method}), _quiet_fork():
         # dashboard off; the scheduler's small HTTP endpoint takes a free port, not 8787
         return LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                             dashboard_address=None, silence_logs=logging.ERROR,
                             scheduler_kwargs={"dashboard": False, "dashboard_address": ":0"})
 
 
-def _connect(address: str | None, workers: int, timeout: str = "30s") -> tuple[Any, Any]:
+def _connect(address: str | None, workers: int, timeout: str = "30s",
+             start_method: str = "auto") -> tuple[Any, Any]:
     """Return (client, cluster_we_started_or_None)."""
     try:
         from distributed import Client
@@ -832,7 +894,7 @@ def _connect(address: str | None, workers: int, timeout: str = "30s") -> tuple[A
             "pip install 'peaksift[distributed]'"
         ) from None
     if address is None:
-        cluster = _start_local_cluster(workers)
+        cluster = _start_local_cluster(workers, start_method)
         try:
             client = Client(cluster, set_as_default=False)
             client.run(_install_exit_fast)  # our own workers only, never a user's cluster
@@ -859,11 +921,12 @@ def _dask_threads(client: Any) -> int:
 
 
 def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
-              address: str | None, describe: Callable[[int], str], info: dict[str, Any]) -> _Run:
+              address: str | None, describe: Callable[[int], str], info: dict[str, Any],
+              method: str) -> _Run:
     from distributed import KilledWorker
 
     n = len(tasks)
-    client, cluster = _connect(address, workers)
+    client, cluster = _connect(address, workers, start_method=method)
     pending: dict[int, Any] = {}
     try:
         threads = _dask_threads(client)
@@ -914,7 +977,8 @@ def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
 
 def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
          workers: int | None, address: str | None, describe: Callable[[int], str],
-         info: dict[str, Any], parent_helps: bool = False) -> _Run:
+         info: dict[str, Any], parent_helps: bool = False,
+         start_method: str = "auto") -> _Run:
     n_workers = workers or _default_workers()
     address = address or None  # "" (the config's default) means: start a local cluster
     if engine != "dask":
@@ -922,11 +986,16 @@ def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
     info.update(engine=engine, workers=1 if engine == "serial" else n_workers, address=address)
     if engine == "serial":
         return _run_serial(func, tasks)
+    method = _resolve_start(start_method)
+    if address is None:  # we start the worker processes
+        info["start_method"] = method
+        if method == "fork":
+            _prepare_to_fork(func)
     if engine == "processes":
         if parent_helps and n_workers > 1 and len(tasks) > 1:
-            return _run_processes_helping(func, tasks, n_workers, describe)
-        return _run_processes(func, tasks, n_workers, describe)
-    return _run_dask(func, tasks, n_workers, address, describe, info)
+            return _run_processes_helping(func, tasks, n_workers, describe, method)
+        return _run_processes(func, tasks, n_workers, describe, method)
+    return _run_dask(func, tasks, n_workers, address, describe, info, method)
 
 
 def _progress(total: int, desc: str, unit: str, enabled: bool) -> Any:
@@ -939,7 +1008,8 @@ def _progress(total: int, desc: str, unit: str, enabled: bool) -> Any:
 # ------------------------------------------------------------------------------ map_tasks
 def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str = "serial",
               workers: int | None = None, address: str | None = None,
-              progress: bool = False, desc: str = "tasks") -> list[Any]:
+              progress: bool = False, desc: str = "tasks",
+              start_method: str = "auto") -> list[Any]:
     """Apply ``func`` to every task description, on the chosen engine; results in order.
 
     Parameters
@@ -950,7 +1020,7 @@ def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str =
         same result wherever it runs (seed random numbers from the spec).
     specs : sequence
         Picklable task descriptions.
-    engine, workers, address
+    engine, workers, address, start_method
         As for :func:`collect`.
     progress : bool
         Show a progress bar (one step per finished task).
@@ -970,7 +1040,7 @@ def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str =
         The first error a task raised, in task order.
     """
     specs = list(specs)
-    _check_engine(engine, workers, address)
+    _check_engine(engine, workers, address, start_method)
     if not specs:
         return []
     if engine == "processes":
@@ -986,7 +1056,7 @@ def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str =
     run = None
     try:
         run = _run(func, specs, engine=engine, workers=workers, address=address,
-                   describe=describe, info=info)
+                   describe=describe, info=info, start_method=start_method)
         for _, ok, value in run:
             if not ok:
                 raise value
@@ -1097,7 +1167,7 @@ def _plan(source: Any, chunk_events: int, skip_bad_files: bool
 def collect(source: Any, selection: Selection, *, engine: str = "serial",
             workers: int | None = None, address: str | None = None,
             chunk_events: int = DEFAULT_CHUNK_EVENTS, skip_bad_files: bool = False,
-            progress: bool = False) -> Collected:
+            progress: bool = False, start_method: str = "auto") -> Collected:
     """Run the selection over a dataset, chunk by chunk, and reduce.
 
     Parameters
@@ -1120,6 +1190,9 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         stopping.
     progress : bool
         Show a progress bar over events.
+    start_method : {"auto", "fork", "spawn"}
+        How the local worker processes of ``processes`` and of a local Dask cluster start
+        (see the module guide); ``"auto"`` forks on Linux.  Results do not depend on it.
 
     Returns
     -------
@@ -1137,7 +1210,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         raise ConfigError(
             f"collect needs a peaksift.execution.Selection, got {type(selection).__name__}"
         )
-    _check_engine(engine, workers, address)
+    _check_engine(engine, workers, address, start_method)
     if isinstance(chunk_events, bool) or int(chunk_events) != chunk_events or chunk_events < 1:
         raise ConfigError(f"chunk_events must be a positive integer, got {chunk_events!r}")
     if engine == "processes":
@@ -1158,7 +1231,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     try:
         run = _run(func, specs, engine=engine, workers=workers, address=address,
                    describe=lambda i: f"chunk {i} ({_describe_spec(specs[i])})", info=info,
-                   parent_helps=True)
+                   parent_helps=True, start_method=start_method)
         for i, ok, value in run:
             fname = _spec_file(specs[i])
             if fname == bad_file:  # rest of a file already skipped
@@ -1228,4 +1301,13 @@ class _ChunkTask:
 
     def __call__(self, spec: Any) -> ChunkOutput:
         return process_chunk(spec, self.selection)
+
+    def prepare(self) -> None:
+        """Load the chunk work in this process before workers are forked from it: the
+        reader and pairing modules, and numba's kernels (its first-call set-up is most of
+        a worker's start-up)."""
+        from . import events  # noqa: F401
+        from .pairing import _load_kernels
+
+        _load_kernels()
 

@@ -63,8 +63,9 @@ against a hand-written vector + awkward selection.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -659,6 +660,50 @@ def pair(
     CutError
         A cut that cannot be parsed or names an unknown field.
     """
+    with _kernels_without_extensions():
+        return _pair(events, first, second, cut=cut, second_cut=second_cut,
+                     event_cut=event_cut, charge=charge, choose=choose,
+                     target_mass=target_mass, min_delta_r=min_delta_r,
+                     event_offset=event_offset)
+
+
+@contextlib.contextmanager
+def _kernels_without_extensions() -> Iterator[None]:
+    """Let the kernels load without numba's third-party extensions.
+
+    The first numba compilation or cache load in a process runs every installed
+    ``numba_extensions`` entry point: awkward's and vector's among them, about 0.25 s here,
+    half of numba's whole first-call cost, paid again by every worker process.  The kernels
+    take plain numpy arrays and need none of those extensions, so while they load numba is
+    told its extensions are in (``numba.core.entrypoints._already_initialized``).  The flag
+    is put back afterwards, and the next compilation anywhere else in the process loads the
+    extensions as usual (tested: awkward arrays still work in a user's ``numba.njit``
+    function after :func:`pair`).  With a numba that lacks the flag this does nothing.
+    """
+    eps = getattr(getattr(numba, "core", None), "entrypoints", None)
+    if eps is None or getattr(eps, "_already_initialized", True) is not False:
+        yield
+        return
+    eps._already_initialized = True
+    try:
+        yield
+    finally:
+        eps._already_initialized = False
+
+
+def _load_kernels() -> None:
+    """Run numba's first-call set-up now (its typing and target contexts, about 0.25 s)
+    by calling one small kernel; the other kernels then load from the disk cache in
+    milliseconds.  Called before worker processes are forked from this one."""
+    z = np.zeros(1, dtype=np.int64)
+    q = np.zeros(1, dtype=np.int8)
+    with _kernels_without_extensions():
+        _count_pairs(z, z, z, z, True, q, q, -1, np.zeros(1, dtype=np.int64))
+
+
+def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_cut: CutLike,
+          event_cut: CutLike, charge: str | None, choose: str, target_mass: float | None,
+          min_delta_r: float | None, event_offset: int) -> Candidates:
     import awkward as ak
 
     mode, tm, dr = _check_options(choose, charge, target_mass, min_delta_r)

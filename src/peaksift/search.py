@@ -349,6 +349,7 @@ def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
             cfg.input.files, _selection(cfg, ulo, uhi, nb),
             engine=ex.engine, workers=ex.workers, address=ex.address or None,
             chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
+            start_method=ex.start_method,
         )
     except CutError as exc:
         raise _keyed_cut_error(cfg, exc) from None
@@ -638,7 +639,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         "seed": seed,
         "versions": _versions(),
         "execution": {k: v for k, v in dict(col.engine_info).items()
-                      if k in ("engine", "workers", "address", "chunks", "chunk_events")},
+                      if k in ("engine", "workers", "address", "start_method", "chunks",
+                               "chunk_events")},
         "started": started,
         "finished": "",
     }
@@ -701,7 +703,8 @@ def _toy_executor(cfg: Config) -> Any:
     from .execution import map_tasks
 
     return functools.partial(map_tasks, engine=ex.engine, workers=ex.workers,
-                             address=ex.address or None, desc="toy batches")
+                             address=ex.address or None, desc="toy batches",
+                             start_method=ex.start_method)
 
 
 def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigma_fn: Any,
