@@ -5,8 +5,10 @@ generator (generation time is reported on its own and not counted), then runs th
 selection with ``collect`` on each engine, each in a fresh Python process so that its
 memory is measured alone.  For each engine it prints:
 
-* events/s (events read / wall time of ``collect``, which includes starting the process
-  pool or the local Dask cluster and planning the chunks); ``dask-running`` is Dask given a
+* events/s (events read / wall time of ``collect``, which includes planning the chunks,
+  numba's first-call set-up, and starting the process pool or the local Dask cluster; not
+  the import of peaksift's own modules, which comes first and costs every engine the same,
+  and is printed on its own); ``dask-running`` is Dask given a
   scheduler address, on a cluster started before the timed run (its workers spawned, fresh
   interpreters that have not run peaksift yet), as a real cluster would be;
 * the speed-up over ``serial`` measured in the same run (targets on a 2-core machine:
@@ -67,7 +69,15 @@ def _files(data: Path, first: int | None) -> list[str]:
 
 def _child(args: argparse.Namespace) -> None:
     """Run one engine and print its figures as JSON (runs in a fresh process)."""
+    t_import = time.perf_counter()
+    # the library itself, as in any session that uses it: the same for every engine, so
+    # not timed (what each engine adds -- worker processes, their imports, numba's
+    # first-call set-up in this process and in workers, distributed -- is timed)
+    import peaksift.events
+    import peaksift.pairing  # noqa: F401
     from peaksift.execution import collect
+
+    t_import = time.perf_counter() - t_import
 
     sel = _selection(args)
     cluster = None
@@ -88,7 +98,8 @@ def _child(args: argparse.Namespace) -> None:
         if cluster is not None:
             cluster.close()
     print(json.dumps({
-        "engine": args.child, "seconds": seconds, "events": col.events_read,
+        "engine": args.child, "seconds": seconds, "import": t_import,
+        "events": col.events_read,
         "candidates": col.candidates, "window": int(col.window_mass.size),
         "chunks": col.engine_info["chunks"], "digest": _digest(col),
         "busy": col.engine_info["chunk_seconds"] / (seconds * col.engine_info["workers"]),
@@ -267,6 +278,9 @@ def main(argv: list[str] | None = None) -> int:
     first = next(iter(full.values()))
     print(f"events: {first['events']:,}, candidates: {first['candidates']:,}, "
           f"in window: {first['window']:,}")
+    print(f"peaksift import before each timed run (every engine alike, not counted): "
+          f"{min(r['import'] for r in full.values()):.2f}-"
+          f"{max(r['import'] for r in full.values()):.2f} s")
     same = len({r["digest"] for r in full.values()}) == 1
     ok &= same
     print(f"identical results on every engine: {'yes' if same else 'NO'}")
