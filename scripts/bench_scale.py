@@ -83,7 +83,7 @@ def _child(args: argparse.Namespace) -> None:
     cluster = None
     engine, address = args.child, None
     if engine == EXISTING:  # a running cluster, as a real one would be: started untimed
-        from peaksift.execution import _start_local_cluster
+        from peaksift.execution._dask import _start_local_cluster
 
         # spawned, like the worker processes of a real cluster (not forked from this one)
         cluster = _start_local_cluster(args.workers, start_method="spawn")

@@ -24,6 +24,7 @@ import pytest
 
 from peaksift import execution, histogram
 from peaksift.errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
+from peaksift.execution import _dask, _engines, _local
 
 
 @pytest.fixture(scope="module")
@@ -36,7 +37,7 @@ def dask_address():
 
     # no retries, so a task that kills its worker fails at once (default: 3 more tries)
     with dask.config.set({"distributed.scheduler.allowed-failures": 0}):
-        cluster = execution._start_local_cluster(2)
+        cluster = _dask._start_local_cluster(2)
     try:
         yield cluster.scheduler_address
     finally:
@@ -199,7 +200,7 @@ def test_collect_runner_shares_the_tasks_between_this_process_and_the_pool():
     # (the first two always go to the pool); every result comes back once, in task order
     info: dict = {}
     threads = pa.cpu_count()
-    run = execution._run(pid_after_pause, list(range(30)), engine="processes", workers=2,
+    run = _engines._run(pid_after_pause, list(range(30)), engine="processes", workers=2,
                          address=None, describe=str, info=info, parent_helps=True)
     got = [(i, ok, value) for i, ok, value in run]
     assert [i for i, _, _ in got] == list(range(30)) and all(ok for _, ok, _ in got)
@@ -256,8 +257,10 @@ def test_unknown_engine_suggests_closest():
 _KERNEL_PROBE = """
 import sys
 from peaksift import execution
+from peaksift.execution import _engines
+from peaksift.execution._chunk import _ChunkTask
 
-class Probe(execution._ChunkTask):
+class Probe(_ChunkTask):
     # what a worker holds when its first task starts
     def __call__(self, spec):
         pairing = sys.modules.get("peaksift.pairing")
@@ -267,7 +270,7 @@ if __name__ == "__main__":
     sel = execution.Selection(first="muon", edges=[0.0, 100.0])
     for method in ("fork", "spawn"):
         info = {}
-        run = execution._run(Probe(sel), [0, 1], engine="processes", workers=2, address=None,
+        run = _engines._run(Probe(sel), [0, 1], engine="processes", workers=2, address=None,
                              describe=str, info=info, start_method=method)
         print(method, info["start_method"], [v for _, _, v in run])
 """
@@ -280,16 +283,18 @@ def test_forked_workers_start_with_the_pairing_kernels_loaded(tmp_path):
     # workers start without them (and pay numba's first-call set-up themselves).
     script = tmp_path / "probe.py"
     script.write_text(_KERNEL_PROBE)
-    out = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
-                         timeout=300, check=True).stdout.split("\n")
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
+                          timeout=300, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    out = done.stdout.split("\n")
     assert out[0] == "fork fork [True, True]", out
     assert out[1] == "spawn spawn [False, False]", out
-    assert execution._resolve_start("auto") == "fork"
+    assert _local._resolve_start("auto") == "fork"
 
 
 def test_bad_scheduler_address_is_reported():
     with pytest.raises(ExecutionError, match="cannot connect to the Dask scheduler"):
-        execution._connect("tcp://127.0.0.1:1", 1, timeout="1s")
+        _dask._connect("tcp://127.0.0.1:1", 1, timeout="1s")
 
 
 # ------------------------------------------------------------------------ collect
@@ -482,7 +487,7 @@ def test_submit_to_a_broken_pool_fails_at_the_result_not_at_the_submit():
     try:
         with pytest.raises(BrokenProcessPool):
             pool.submit(die_on_two, 2).result(timeout=60)
-        fut = execution._submit(pool, die_on_two, 3, 3)
+        fut = _local._submit(pool, die_on_two, 3, 3)
         with pytest.raises(BrokenProcessPool):
             fut.result(timeout=5)
     finally:

@@ -494,7 +494,9 @@ def test_pair_leaves_numba_extensions_to_later_compilations(tmp_path, demo_dir):
 
     script = tmp_path / "later.py"
     script.write_text(_EXTENSIONS_LATER)
-    out = subprocess.run([sys.executable, str(script), str(demo_dir / "events_000.parquet")],
-                         capture_output=True, text=True, timeout=300, check=True).stdout
+    done = subprocess.run([sys.executable, str(script), str(demo_dir / "events_000.parquet")],
+                          capture_output=True, text=True, timeout=300, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    out = done.stdout
     assert out.splitlines() == ["vector numba extension loaded by pair: False",
                                 "extensions pending: True", "same sum: True"], out
