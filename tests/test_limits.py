@@ -268,3 +268,38 @@ def test_single_bin_observed_limit_matches_exact_poisson_cls(n_obs):
     clb = stats.poisson.cdf(n_obs, b)
     exact = optimize.brentq(lambda s: stats.poisson.cdf(n_obs, s + b) / clb - 0.05, 0.0, 200.0)
     assert r.observed[0] == pytest.approx(exact, rel=0.10)
+
+
+def test_toy_limits_on_the_execution_engines_match_serial():
+    """Toy limits handed to ``execution.map_tasks`` (one task per toy mass, seeded per mass)
+    equal the serial computation: in this process exactly, in worker processes to rounding
+    (reference: the serial computation; per-mass seeding, common practice)."""
+    import functools
+
+    from peaksift.execution import map_tasks
+    from peaksift.stats.limits import run_toy_limit
+
+    h = _spectrum(n_bkg=3000, bins=150)
+    kw = {"resolution": 0.01, "method": "toys", "toy_masses": [200.0, 300.0, 200.5],
+          "toys": 200, "seed": 9}
+    serial = upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], **kw)
+    assert serial.methods == ("toys", "asymptotic", "toys")  # 200.5 is 200's hypothesis
+    seen = []
+
+    def recording(func, tasks):
+        assert func is run_toy_limit
+        seen.extend(t.seed for t in tasks)
+        return map_tasks(func, tasks, engine="serial")
+
+    rec = upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], **kw,
+                       executor=recording)
+    assert seen == [9, 11]  # seed + index of the scan mass, each mass once
+    pool = upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], **kw,
+                        executor=functools.partial(map_tasks, engine="processes", workers=2))
+    for name in ("observed", "expected", "expected_minus2", "expected_plus2"):
+        np.testing.assert_array_equal(getattr(rec, name), getattr(serial, name))
+        np.testing.assert_allclose(getattr(pool, name), getattr(serial, name), rtol=1e-9)
+    assert pool.toys.keys() == serial.toys.keys()
+    with pytest.raises(FitError, match="returned 1 results for 2 toy-limit masses"):
+        upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], **kw,
+                     executor=lambda func, tasks: [func(tasks[0])])

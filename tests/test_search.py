@@ -304,17 +304,20 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
 
 
 def test_toys_run_on_the_configured_engine_with_the_same_result(monkeypatch):
-    """significance.method = "toys" on engine "processes": the toy batches go through
-    execution.map_tasks with that engine and the global significance equals the serial
-    run's (reference: the serial engine; toys seeded one by one, common practice)."""
+    """significance.method = "toys" and limits.method = "toys" on engine "processes": the
+    toy batches and the toy limits go through execution.map_tasks with that engine, and the
+    global significance and the limits equal the serial run's (reference: the serial
+    engine; toys seeded one by one or per mass, common practice)."""
     from peaksift import execution
     from peaksift.config import load_config
     from peaksift.search import run_search
 
-    base = load_config(CONFIG).with_overrides(limits__enabled=False, calibration__particle="",
+    base = load_config(CONFIG).with_overrides(limits__method="toys", limits__toys=40,
+                                              limits__points=5, calibration__particle="",
                                               significance__method="toys",
                                               significance__toys=30)
-    serial = run_search(base, out=False).to_dict()["best"]
+    serial_run = run_search(base, out=False)
+    serial = serial_run.to_dict()["best"]
     engines = []
     real = execution.map_tasks
 
@@ -323,9 +326,16 @@ def test_toys_run_on_the_configured_engine_with_the_same_result(monkeypatch):
         return real(func, specs, **kw)
 
     monkeypatch.setattr(execution, "map_tasks", spy)
-    pool = run_search(base.with_overrides(execution__engine="processes", execution__workers=2),
-                      out=False).to_dict()["best"]
+    pool_run = run_search(base.with_overrides(execution__engine="processes",
+                                              execution__workers=2), out=False)
+    pool = pool_run.to_dict()["best"]
     assert ("run_toy_batch", "processes", 2) in engines
+    assert ("run_toy_limit", "processes", 2) in engines  # the toy limits too
+    assert serial_run.limits.methods.count("toys") == 3
+    np.testing.assert_allclose(pool_run.limits.observed, serial_run.limits.observed,
+                               rtol=1e-9)
+    np.testing.assert_allclose(pool_run.limits.expected, serial_run.limits.expected,
+                               rtol=1e-9)
     assert pool["n_toys"] == serial["n_toys"] == 30
     assert pool["n_toys_above"] == serial["n_toys_above"]
     for key in ("mass", "z_local", "p_local", "p_global", "z_global"):

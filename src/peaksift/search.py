@@ -692,9 +692,10 @@ def _opt(**kw: Any) -> dict[str, Any]:
     return {k: v for k, v in kw.items() if v is not None}
 
 
-def _toy_executor(cfg: Config) -> Any:
-    """The toy batches' map on the configured engine (None: serial, in this process).
-    Toys are seeded one by one, so the engine does not change the result."""
+def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
+    """The toys' map on the configured engine (None: serial, in this process).  Toys are
+    seeded one by one (global significance) or per mass (limits), so the engine does not
+    change the result."""
     ex = cfg.execution
     if ex.engine == "serial":
         return None
@@ -703,7 +704,7 @@ def _toy_executor(cfg: Config) -> Any:
     from .execution import map_tasks
 
     return functools.partial(map_tasks, engine=ex.engine, workers=ex.workers,
-                             address=ex.address or None, desc="toy batches",
+                             address=ex.address or None, desc=desc,
                              start_method=ex.start_method)
 
 
@@ -724,6 +725,7 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
                efficiency_uncertainty=L.efficiency_uncertainty or None,
                unit=L.cross_section_unit if L.luminosity is not None else None),
         constraint=L.constraint, progress=progress,
+        executor=_toy_executor(cfg, "toy limits") if L.method == "toys" else None,
     )
 
 

@@ -5,7 +5,8 @@ Which piece when
 * :func:`scan` -> :class:`ScanResult`                  -- q0 / Z_local / p_local vs mass, the
   best hypothesis and its refit, ``global_significance()`` and ``plot()``.
 * :func:`upper_limits` -> :class:`LimitResult`         -- CLs limits (asymptotic or toys) with
-  expected bands, on the yield or on sigma x B.
+  expected bands, on the yield or on sigma x B (:func:`run_toy_limit`: one mass's toy
+  limit, the unit of work for execution engines).
 * :mod:`.significance`                                 -- q0, Z, p conversions; Asimov and
   counting-experiment sensitivities.
 * :mod:`.lee`                                          -- upcrossings (Gross-Vitells) and
@@ -23,6 +24,7 @@ from .limits import (
     expected_band_factor,
     poisson_interval,
     poisson_upper_limit,
+    run_toy_limit,
     upper_limits,
 )
 from .scan import ScanResult, resolution_model, scan
@@ -58,6 +60,7 @@ __all__ = [
     "q0_from_nll",
     "resolution_model",
     "run_toy_batch",
+    "run_toy_limit",
     "run_toys",
     "scan",
     "upcrossings",

@@ -40,7 +40,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -57,6 +57,7 @@ __all__ = [
     "expected_band_factor",
     "poisson_interval",
     "poisson_upper_limit",
+    "run_toy_limit",
     "upper_limits",
 ]
 
@@ -407,6 +408,7 @@ def upper_limits(
     unit: str = "fb",
     bins: int | None = None,
     progress: bool | None = None,
+    executor: Callable[[Callable[[Any], Any], list[Any]], Sequence[Any]] | None = None,
 ) -> LimitResult:
     """CLs upper limits on the signal at each mass hypothesis.
 
@@ -431,6 +433,11 @@ def upper_limits(
     constraint : "lognormal" or "gaussian"
     progress : bool, optional
         Progress bar over the toy masses (default: when stderr is a terminal).
+    executor : callable, optional
+        ``executor(func, tasks) -> results in task order`` for the toy limits, one task per
+        toy mass, e.g. ``functools.partial(peaksift.execution.map_tasks,
+        engine="processes")``.  Each mass draws from its own seed (``seed + j`` for scan
+        mass ``j``), so the engine does not change the limits.
 
     Returns
     -------
@@ -531,15 +538,29 @@ def upper_limits(
 
         from .toys import _progress_enabled
 
-        for mass in tqdm(tm, desc="toy limits", unit="mass", leave=False,
-                         disable=not _progress_enabled(progress)):
+        tasks: list[_ToyLimitTask] = []
+        where: list[int] = []
+        for mass in tm:
             j = int(np.argmin(np.abs(m_all - mass)))
+            if j in where:  # two toy masses nearest the same scan mass
+                continue
             if bl[j]:
                 notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
                 continue
-            res = _toy_limit(model, full, info, j, int(np.sum(keep[:j])), conv_eff[j],
-                             delta, kind or "lognormal", cl, toys, seed + j,
-                             obs[j], exp_lim[:, j])
+            where.append(j)
+            tasks.append(_ToyLimitTask(model, int(np.sum(keep[:j])), float(conv_eff[j]),
+                                       delta, kind or "lognormal", cl, toys, seed + j,
+                                       float(obs[j]), exp_lim[:, j].copy()))
+        if executor is not None and tasks:
+            results = list(executor(run_toy_limit, tasks))
+            if len(results) != len(tasks):
+                raise FitError(f"the toy executor returned {len(results)} results for "
+                               f"{len(tasks)} toy-limit masses")
+        else:
+            results = [run_toy_limit(t) for t in tqdm(
+                tasks, desc="toy limits", unit="mass", leave=False,
+                disable=not _progress_enabled(progress))]
+        for j, res in zip(where, results):
             obs[j] = res["observed"]
             exp_lim[:, j] = [res["expected"][n] for n in _BANDS]
             methods[j] = "toys"
@@ -566,10 +587,33 @@ def _toy_q(model: ScanModel, n: np.ndarray, f: np.ndarray, conv: float, mu: floa
                    nll_zero)
 
 
-def _toy_limit(model: ScanModel, full: ScanModel, info: dict[str, Any], j: int, jj: int,
-               conv: float, delta: float, kind: str, cl: float, ntoys: int, seed: int,
-               obs_asym: float, exp_asym: np.ndarray) -> dict[str, Any]:
-    """Toy-based CLs limit and expected band at hypothesis ``j`` (``jj`` among unblinded)."""
+@dataclass(frozen=True)
+class _ToyLimitTask:
+    """One mass's toy limit as a picklable unit of work (see :func:`run_toy_limit`)."""
+
+    model: ScanModel
+    jj: int                 # the hypothesis among the unblinded ones
+    conv: float
+    delta: float
+    kind: str
+    cl: float
+    ntoys: int
+    seed: int
+    obs_asym: float
+    exp_asym: np.ndarray
+
+
+def run_toy_limit(task: _ToyLimitTask) -> dict[str, Any]:
+    """Toy-based CLs limit at one mass: the pure unit of work that ``upper_limits`` hands
+    to its ``executor`` (a module-level function, so worker processes can run it)."""
+    return _toy_limit(task.model, task.jj, task.conv, task.delta, task.kind, task.cl,
+                      task.ntoys, task.seed, task.obs_asym, task.exp_asym)
+
+
+def _toy_limit(model: ScanModel, jj: int, conv: float, delta: float, kind: str, cl: float,
+               ntoys: int, seed: int, obs_asym: float, exp_asym: np.ndarray
+               ) -> dict[str, Any]:
+    """Toy-based CLs limit and expected band at the unblinded hypothesis ``jj``."""
     alpha = 1.0 - cl
     f = model.fractions[jj]
     n_obs = model.counts
