@@ -22,7 +22,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from peaksift import execution, histogram
+from peaksift import _processes, execution, histogram
 from peaksift.errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 from peaksift.execution import _dask, _engines, _local
 
@@ -289,7 +289,7 @@ def test_forked_workers_start_with_the_pairing_kernels_loaded(tmp_path):
     out = done.stdout.split("\n")
     assert out[0] == "fork fork [True, True]", out
     assert out[1] == "spawn spawn [False, False]", out
-    assert _local._resolve_start("auto") == "fork"
+    assert _processes.resolve_start_method("auto") == "fork"
 
 
 def test_bad_scheduler_address_is_reported():

@@ -7,13 +7,12 @@ import uuid
 from collections.abc import Callable, Sequence
 from typing import Any
 
+from .._processes import quiet_fork, resolve_start_method
 from ..errors import ExecutionError, PeaksiftError
 from ._local import (
     _INFLIGHT_PER_WORKER,
     _dead_worker_error,
     _install_exit_fast,
-    _quiet_fork,
-    _resolve_start,
     _Run,
 )
 
@@ -39,10 +38,10 @@ def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
 
     env = dict(dask.config.get("distributed.nanny.pre-spawn-environ", {}) or {})
     env.pop("MALLOC_TRIM_THRESHOLD_", None)
-    method = _resolve_start(start_method)
+    method = resolve_start_method(start_method)
     with dask.config.set({"distributed.nanny.pre-spawn-environ": env,
                           "distributed.worker.multiprocessing-method": method,
-                          "distributed.worker.profile.enabled": False}), _quiet_fork():
+                          "distributed.worker.profile.enabled": False}), quiet_fork():
         # dashboard off; the scheduler's small HTTP endpoint takes a free port, not 8787
         return LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                             dashboard_address=None, silence_logs=logging.ERROR,

@@ -5,13 +5,13 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from typing import Any
 
+from .._processes import resolve_start_method
 from ..errors import ConfigError
 from ._dask import _run_dask
 from ._local import (
     _check_picklable,
     _default_workers,
     _prepare_to_fork,
-    _resolve_start,
     _Run,
     _run_processes,
     _run_processes_helping,
@@ -53,7 +53,7 @@ def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
     info.update(engine=engine, workers=1 if engine == "serial" else n_workers, address=address)
     if engine == "serial":
         return _run_serial(func, tasks)
-    method = _resolve_start(start_method)
+    method = resolve_start_method(start_method)
     if address is None:  # we start the worker processes
         info["start_method"] = method
         if method == "fork":

@@ -17,10 +17,10 @@ import pickle
 import signal
 import sys
 import time
-import warnings
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from typing import Any
 
+from .._processes import process_pool, quiet_fork
 from ..errors import ExecutionError, PeaksiftError
 
 #: Chunks allowed in flight (running, queued or waiting to be reduced) per worker.
@@ -31,32 +31,12 @@ def _default_workers() -> int:
     return max(1, os.cpu_count() or 1)
 
 
-def _resolve_start(start_method: str) -> str:
-    """``"fork"`` or ``"spawn"``: ``"auto"`` forks on Linux only (on macOS system libraries
-    are not fork-safe, and Windows cannot fork)."""
-    if start_method == "auto":
-        linux = sys.platform.startswith("linux")
-        return "fork" if linux and "fork" in multiprocessing.get_all_start_methods() \
-            else "spawn"
-    return start_method
-
-
 def _prepare_to_fork(func: Callable[[Any], Any]) -> None:
     """Get this process ready to be forked: whatever ``func.prepare`` loads (the chunk
     work's imports and numba kernels) is then inherited by every worker."""
     prepare = getattr(func, "prepare", None)
     if callable(prepare):
         prepare()
-
-
-@contextlib.contextmanager
-def _quiet_fork() -> Iterator[None]:
-    """Python 3.12+ warns at every fork of a process that holds threads; the pool's
-    children run only the chunk work or the task function (see the module guide)."""
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=r".*use of fork\(\) may lead to deadlocks",
-                                category=DeprecationWarning)
-        yield
 
 
 _TRACK: Any = None  # in a pool worker: queue of (pid, task index) as tasks start
@@ -106,10 +86,7 @@ _WORKER_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THR
 
 def _pool(size: int, method: str, track: Any) -> Any:
     """A process pool of ``size`` workers started with ``method`` ("fork" or "spawn")."""
-    from concurrent.futures import ProcessPoolExecutor
-
-    return ProcessPoolExecutor(max_workers=size, mp_context=multiprocessing.get_context(method),
-                               initializer=_worker_init, initargs=(track,))
+    return process_pool(size, method, initializer=_worker_init, initargs=(track,))
 
 
 @contextlib.contextmanager
@@ -282,7 +259,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
     clean = False
     try:
         nxt = 0
-        with _spawn_env(_WORKER_ENV), _quiet_fork():  # the first submit starts the workers
+        with _spawn_env(_WORKER_ENV), quiet_fork():  # the first submit starts the workers
             while nxt < min(n, limit):
                 pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
@@ -342,7 +319,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
     pool = _pool(size, method, track)
     try:
         nxt = 0
-        with _spawn_env(_WORKER_ENV), _quiet_fork():  # the first submits start the workers
+        with _spawn_env(_WORKER_ENV), quiet_fork():  # the first submits start the workers
             while nxt < min(n, limit):
                 pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1

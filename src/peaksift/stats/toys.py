@@ -48,12 +48,12 @@ import functools
 import os
 import sys
 from collections.abc import Callable, Sequence
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
+from .._processes import process_pool, quiet_fork
 from ..errors import FitError
 
 __all__ = ["ScanModel", "ToyBatch", "run_toy_batch", "run_toys", "toy_counts"]
@@ -714,9 +714,12 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
             results.extend(done)
             bar.update(n_toys)
         elif workers is not None and int(workers) > 1 and len(specs) > 1:
-            with ProcessPoolExecutor(max_workers=min(int(workers), len(specs),
-                                                     os.cpu_count() or 1)) as pool:
-                for spec, res in zip(specs, pool.map(run_toy_batch, specs)):
+            # forked on Linux, spawned elsewhere, like the execution engines' pools
+            size = min(int(workers), len(specs), os.cpu_count() or 1)
+            with process_pool(size) as pool:
+                with quiet_fork():  # the workers start at the first submit
+                    done_iter = pool.map(run_toy_batch, specs)
+                for spec, res in zip(specs, done_iter):
                     results.append(res)
                     bar.update(spec.count)
         else:
