@@ -29,7 +29,10 @@ def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
     then mapped afresh, page by page (measured here: ~9x the page faults and ~40% more CPU
     per chunk).  Workers of the clusters we start keep the default allocator behaviour.
     Their statistical profiler (a thread sampling the running task every 10 ms, for the
-    dashboard) is off too, since these clusters have no dashboard (~5% of a chunk's CPU).
+    dashboard) is off too, since these clusters have no dashboard (~5% of a chunk's CPU), and
+    the diagnostic event-loop tick (every 20 ms) and system monitor (every 0.5 s) run once a
+    second and every ten: on two cores the scheduler's and workers' housekeeping competes
+    with the chunks (measured: ~0.1 s of a 2.3 s run).
     """
     import logging
 
@@ -41,7 +44,9 @@ def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
     method = resolve_start_method(start_method)
     with dask.config.set({"distributed.nanny.pre-spawn-environ": env,
                           "distributed.worker.multiprocessing-method": method,
-                          "distributed.worker.profile.enabled": False}), quiet_fork():
+                          "distributed.worker.profile.enabled": False,
+                          "distributed.admin.tick.interval": "1s",
+                          "distributed.admin.system-monitor.interval": "10s"}), quiet_fork():
         # dashboard off; the scheduler's small HTTP endpoint takes a free port, not 8787
         return LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                             dashboard_address=None, silence_logs=logging.ERROR,
