@@ -397,6 +397,29 @@ def test_file_failing_mid_run_is_named_or_skipped_whole(dataset, tmp_path):
         _assert_same(got, expected)
 
 
+def test_file_without_the_collection_stops_the_run_before_any_chunk(dataset, tmp_path,
+                                                                    monkeypatch):
+    # A file whose footer shows it lacks the paired collection is refused (or skipped) at
+    # planning: no chunk of the files before it is processed first.
+    from peaksift.execution import _chunk
+
+    other = tmp_path / "run_e.parquet"
+    pq.write_table(pa.table({"electron_pt": pa.array([[30.0]] * 1500)}), other,
+                   row_group_size=500)
+    files = [dataset[0], dataset[1], str(other)]
+    calls = []
+    real = _chunk.process_chunk
+    monkeypatch.setattr(_chunk, "process_chunk", lambda spec, sel: calls.append(spec) or
+                        real(spec, sel))
+    with pytest.raises(InputError, match=r"run_e\.parquet.*muon|muon.*run_e\.parquet"):
+        execution.collect(files, SEL, chunk_events=1000)
+    assert calls == []
+    got = execution.collect(files, SEL, chunk_events=1000, skip_bad_files=True)
+    assert [s.path for s in got.files_skipped] == [str(other)]
+    assert "muon" in got.files_skipped[0].reason
+    _assert_same(got, execution.collect(dataset[:2], SEL, chunk_events=1000))
+
+
 def test_empty_file_is_read_with_no_events(dataset, tmp_path):
     empty = str(_write_events(tmp_path / "empty.parquet", 0, seed=1))
     got = execution.collect([empty, dataset[0]], SEL)

@@ -183,19 +183,32 @@ class _Reducer:
         self._file = []
 
 
-def _plan(source: Any, chunk_events: int, skip_bad_files: bool
+def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selection
           ) -> tuple[list[Any], list[SkippedFile], list[str]]:
-    """Chunks of every readable file, the files skipped at planning, all files."""
-    from ..events import list_files, plan_chunks
+    """Chunks of every readable file, the files skipped at planning, all files.
+
+    Each file's footer is checked for what the selection reads (collections, kinematic
+    fields, requested fields) before any chunk runs, so a file that lacks them stops the
+    run (or is skipped) at once, not after the files before it were processed.  Files are
+    checked one by one: chunks are processed independently, so files may differ in layout.
+    """
+    from ..events import check_files, list_files, plan_chunks
 
     files = [str(f) for f in list_files(source)]
+
+    def check(f: str) -> None:
+        check_files(f, list(selection.collections), fields=selection.fields)
+
     if not skip_bad_files:
+        for f in files:
+            check(f)
         return list(plan_chunks(files, chunk_events=chunk_events)), [], files
     specs: list[Any] = []
     skipped: list[SkippedFile] = []
     offset = 0
     for f in files:
         try:
+            check(f)
             part = list(plan_chunks(f, chunk_events=chunk_events))
         except InputError as exc:
             skipped.append(SkippedFile(f, str(exc)))
@@ -259,7 +272,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     if engine == "processes":
         _check_picklable(selection, "the selection")
     t0 = time.perf_counter()
-    specs, skipped, files = _plan(source, int(chunk_events), skip_bad_files)
+    specs, skipped, files = _plan(source, int(chunk_events), skip_bad_files, selection)
     n = len(specs)
     last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
                     for i in range(n)]
