@@ -226,20 +226,27 @@ def _pool_children():
     return sorted(alive)
 
 
-def test_keyboard_interrupt_stops_the_pool_and_propagates():
+@pytest.mark.parametrize("caller_sigterm", ["default", "ignored by the caller"])
+def test_keyboard_interrupt_stops_the_pool_and_propagates(caller_sigterm):
+    # A caller that ignores SIGTERM (a graceful-shutdown handler, say) must not pass that on
+    # to forked workers: they would outlive the interrupt, sleeping out their tasks.
     def interrupt(signum, frame):
         raise KeyboardInterrupt
 
     before = _pool_children()
     old = signal.signal(signal.SIGALRM, interrupt)
+    old_term = signal.getsignal(signal.SIGTERM)
+    if caller_sigterm != "default":
+        signal.signal(signal.SIGTERM, lambda signum, frame: None)
     signal.setitimer(signal.ITIMER_REAL, 1.5)
     try:
         with pytest.raises(KeyboardInterrupt):
-            execution.map_tasks(time.sleep, [5.0] * 4, engine="processes", workers=2)
+            execution.map_tasks(time.sleep, [30.0] * 4, engine="processes", workers=2)
+        assert _pool_children() == before  # no worker still asleep in its task
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
         signal.signal(signal.SIGALRM, old)
-    assert _pool_children() == before
+        signal.signal(signal.SIGTERM, old_term)
 
 
 def test_unpicklable_function_is_refused_before_starting():
@@ -485,10 +492,48 @@ def test_fast_regular_binning_matches_binary_search(edges):
 @pytest.mark.parametrize("start_method", ["auto", "spawn"])
 def test_local_cluster_started_and_closed_when_no_address(start_method):
     pytest.importorskip("distributed")
+    before = _pool_children()
     got = execution.map_tasks(seeded_draw, SPECS[:3], engine="dask", workers=1,
                               start_method=start_method)
     for a, b in zip(got, _reference()[:3]):
         np.testing.assert_array_equal(a, b)
+    assert _pool_children() == before  # the cluster's processes are gone
+
+
+def arrow_threads(_: int) -> int:
+    return pa.cpu_count()
+
+
+@pytest.mark.parametrize("engine", ["processes", "dask"])
+@pytest.mark.parametrize("start_method", ["fork", "spawn"])
+def test_workers_decode_with_one_arrow_thread(engine, start_method):
+    # One process per core: a worker forked from a caller with a larger Arrow pool must not
+    # inherit it (spawned ones read the thread count from their environment).
+    if engine == "dask":
+        pytest.importorskip("distributed")
+    if start_method == "fork" and not sys.platform.startswith("linux"):
+        pytest.skip("fork is used on Linux only")
+    threads = pa.cpu_count()
+    pa.set_cpu_count(3)
+    try:
+        got = execution.map_tasks(arrow_threads, [0, 1], engine=engine, workers=2,
+                                  start_method=start_method)
+    finally:
+        pa.set_cpu_count(threads)
+    assert got == [1, 1]
+
+
+def test_local_cluster_spawns_when_this_process_is_large(monkeypatch):
+    # Forked workers count the caller's pages in their resident memory, by which Dask's
+    # memory monitor pauses them: "auto" spawns when the caller is too large to fork.
+    pytest.importorskip("psutil")
+    if not sys.platform.startswith("linux"):
+        pytest.skip("fork is used on Linux only")
+    assert _dask._local_cluster_method("auto", 2) == "fork"  # this test process is small
+    monkeypatch.setattr(_dask, "_FORK_RSS_FRACTION", 0.0)
+    assert _dask._local_cluster_method("auto", 2) == "spawn"
+    assert _dask._local_cluster_method("fork", 2) == "fork"  # asked for: honoured
+    assert _dask._local_cluster_method("spawn", 2) == "spawn"
 
 
 def test_dead_dask_worker_is_reported_with_the_task(dask_address):

@@ -467,11 +467,6 @@ import numba.core.entrypoints as entrypoints
 import peaksift
 
 events = peaksift.read_events(sys.argv[1])[:3000]
-cands = peaksift.pair(events, "muon", charge="opposite", choose="leading")
-assert len(cands) > 0
-# the kernels loaded without numba's third-party extensions, and numba still owes them
-print("vector numba extension loaded by pair:", "vector.backends._numba_object" in sys.modules)
-print("extensions pending:", entrypoints._already_initialized is False)
 
 @numba.njit
 def total_pt(muons):  # a user's kernel over an awkward array: needs awkward's extension
@@ -481,22 +476,33 @@ def total_pt(muons):  # a user's kernel over an awkward array: needs awkward's e
             s += mu.pt
     return s
 
+def busy_events(ev):  # a callable event cut that compiles such a kernel on first use
+    return ak.num(ev.muon) >= 2 if total_pt(ev.muon) > 0 else ak.num(ev.muon) < 0
+
+cut = busy_events if sys.argv[2] == "user-kernel-in-cut" else None
+cands = peaksift.pair(events, "muon", charge="opposite", choose="leading", event_cut=cut)
+assert len(cands) > 0
+# without a user kernel, the pairing kernels loaded without numba's third-party extensions
+print("vector numba extension loaded:", "vector.backends._numba_object" in sys.modules)
+print("extensions pending:", entrypoints._already_initialized is False)
 print("same sum:", abs(total_pt(events.muon) - float(ak.sum(events.muon.pt))) < 1e-3)
 """
 
 
-def test_pair_leaves_numba_extensions_to_later_compilations(tmp_path, demo_dir):
+@pytest.mark.parametrize("mode, loaded", [("plain", False), ("user-kernel-in-cut", True)])
+def test_pair_leaves_numba_extensions_to_later_compilations(tmp_path, demo_dir, mode, loaded):
     # In a fresh interpreter: pair() loads its kernels without running numba's extension
-    # entry points (a worker's start-up saving), and a later numba function over an awkward
-    # array still compiles, with awkward's own sum as the reference.
+    # entry points (a worker's start-up saving), and a numba function over an awkward array
+    # compiles both later and inside a callable cut of that first pair() call, with
+    # awkward's own sum as the reference.
     import subprocess
     import sys
 
     script = tmp_path / "later.py"
     script.write_text(_EXTENSIONS_LATER)
-    done = subprocess.run([sys.executable, str(script), str(demo_dir / "events_000.parquet")],
-                          capture_output=True, text=True, timeout=300, check=False)
+    done = subprocess.run([sys.executable, str(script), str(demo_dir / "events_000.parquet"),
+                           mode], capture_output=True, text=True, timeout=300, check=False)
     assert done.returncode == 0, done.stderr[-2000:]
     out = done.stdout
-    assert out.splitlines() == ["vector numba extension loaded by pair: False",
-                                "extensions pending: True", "same sum: True"], out
+    assert out.splitlines() == [f"vector numba extension loaded: {loaded}",
+                                f"extensions pending: {not loaded}", "same sum: True"], out

@@ -660,35 +660,49 @@ def pair(
     CutError
         A cut that cannot be parsed or names an unknown field.
     """
-    with _kernels_without_extensions():
-        return _pair(events, first, second, cut=cut, second_cut=second_cut,
-                     event_cut=event_cut, charge=charge, choose=choose,
-                     target_mass=target_mass, min_delta_r=min_delta_r,
-                     event_offset=event_offset)
+    return _pair(events, first, second, cut=cut, second_cut=second_cut,
+                 event_cut=event_cut, charge=charge, choose=choose, target_mass=target_mass,
+                 min_delta_r=min_delta_r, event_offset=event_offset)
+
+
+_KERNELS_LOADED = False  # the first kernel section of this process has run
 
 
 @contextlib.contextmanager
-def _kernels_without_extensions() -> Iterator[None]:
-    """Let the kernels load without numba's third-party extensions.
+def _kernels_without_extensions(first_section: bool = True) -> Iterator[None]:
+    """Let the kernels load without numba's third-party extensions, once per process.
 
     The first numba compilation or cache load in a process runs every installed
     ``numba_extensions`` entry point: awkward's and vector's among them, about 0.25 s here,
     half of numba's whole first-call cost, paid again by every worker process.  The kernels
-    take plain numpy arrays and need none of those extensions, so while they load numba is
-    told its extensions are in (``numba.core.entrypoints._already_initialized``).  The flag
-    is put back afterwards, and the next compilation anywhere else in the process loads the
-    extensions as usual (tested: awkward arrays still work in a user's ``numba.njit``
-    function after :func:`pair`).  With a numba that lacks the flag this does nothing.
+    take plain numpy arrays and need none of those extensions, so while the first kernel
+    section runs numba is told its extensions are in
+    (``numba.core.entrypoints._already_initialized``); the flag is put back afterwards and
+    the next compilation anywhere in the process loads the extensions as usual (tested: a
+    user's ``numba.njit`` function over awkward arrays works after :func:`pair`, and inside
+    a callable cut of the first :func:`pair` call).  Only our kernels run inside: cuts and
+    other user code are evaluated before.  numba's compiler lock is held meanwhile, so no
+    other thread compiles without the extensions.  With a numba that lacks the flag, or
+    once the first section has run, this does nothing.  ``first_section=False`` (the
+    warm-up before forking) leaves the next section its turn.
     """
+    global _KERNELS_LOADED
     eps = getattr(getattr(numba, "core", None), "entrypoints", None)
-    if eps is None or getattr(eps, "_already_initialized", True) is not False:
+    if _KERNELS_LOADED or eps is None or getattr(eps, "_already_initialized", True) is not False:
         yield
         return
-    eps._already_initialized = True
-    try:
-        yield
-    finally:
-        eps._already_initialized = False
+    from numba.core.compiler_lock import global_compiler_lock
+
+    with global_compiler_lock:
+        ready = eps._already_initialized is not False  # another thread got there first
+        if not ready:
+            eps._already_initialized = True
+        try:
+            yield
+            _KERNELS_LOADED = _KERNELS_LOADED or first_section
+        finally:
+            if not ready:
+                eps._already_initialized = False
 
 
 def _load_kernels() -> None:
@@ -697,7 +711,7 @@ def _load_kernels() -> None:
     milliseconds.  Called before worker processes are forked from this one."""
     z = np.zeros(1, dtype=np.int64)
     q = np.zeros(1, dtype=np.int8)
-    with _kernels_without_extensions():
+    with _kernels_without_extensions(first_section=False):
         _count_pairs(z, z, z, z, True, q, q, -1, np.zeros(1, dtype=np.int64))
 
 
@@ -741,6 +755,18 @@ def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_c
     else:
         qa = qb = np.zeros(1, dtype=np.int8)
 
+    with _kernels_without_extensions():  # from here on only our own kernels and numpy
+        return _pair_selected(events, ca, cb, same, sel_a, sa, ea, sel_b, sb, eb, qa, qb,
+                              mode, choose, tm, dr, n_events, n_after, event_offset)
+
+
+def _pair_selected(events: Any, ca: _Collection, cb: _Collection, same: bool,
+                   sel_a: np.ndarray | None, sa: np.ndarray, ea: np.ndarray,
+                   sel_b: np.ndarray | None, sb: np.ndarray, eb: np.ndarray, qa: np.ndarray,
+                   qb: np.ndarray, mode: int, choose: str, tm: float | None,
+                   dr: float | None, n_events: int, n_after: int,
+                   event_offset: int) -> Candidates:
+    """The pairs of the selected objects: the kernel part of :func:`pair`."""
     if dr is None and choose in ("leading", "max_sum_pt"):
         # fast path: pick each event's pair while scanning, without listing every pair
         pta = np.ascontiguousarray(_take(ca.get("pt"), sel_a), dtype=np.float64)

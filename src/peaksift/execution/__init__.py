@@ -35,11 +35,18 @@ starts a fresh interpreter: imports and numba's first-call set-up cost it about 
 CPU before its first chunk, as much as a fifth of a whole 20M-event selection on two cores.
 With ``"fork"`` this process first imports the chunk work and loads the pairing kernels,
 then forks the pool (or the local Dask cluster's workers), which start ready in a few
-milliseconds.  Forking a process that holds threads is safe here because the children
-run only the chunk work, whose libraries re-create their thread pools after a fork (Arrow,
-OpenBLAS) or use none (the numba kernels); choose ``"spawn"`` if your own code in the
-calling process is not fork-safe.  Scripts that use ``"spawn"`` need the usual
-``if __name__ == "__main__":`` guard.  The start method changes nothing in the results.
+milliseconds.  Forking a process that holds threads is safe for what the children run:
+peaksift's chunk work or task function (and your cut callables), whose libraries
+re-create their thread pools after a fork (Arrow, OpenBLAS) or use none (the numba
+kernels), and, on a local Dask cluster, distributed's own worker; the workers reset the
+signal handlers and thread counts they inherit.  A forked worker's resident memory counts
+the pages it shares with this process, so for a local Dask cluster (whose memory monitor
+pauses workers by that figure) ``"auto"`` forks only while this process is below a tenth
+of each worker's memory limit, and spawns otherwise.  Choose ``"spawn"`` if your own code
+in the calling process is not fork-safe.  Scripts that use ``"spawn"`` need the usual
+``if __name__ == "__main__":`` guard.  The start method does not change peaksift's results;
+a cut callable of yours that reads module state set under that guard sees it only when
+forked.
 
 Guarantees
 ----------
@@ -55,7 +62,7 @@ Guarantees
   memory grows with the chunk size, not the dataset (plus the window masses, which an
   unbinned fit needs anyway: 16 bytes per candidate in the window).
 * **Faults are reported, never hidden.**  A file that cannot be read stops the run with an
-  error naming it; with ``skip_bad_files=True`` the whole file is left out (its chunks that
+  error naming it (a footer that lacks what the selection reads, before any chunk runs); with ``skip_bad_files=True`` the whole file is left out (its chunks that
   were already processed are discarded too, so a file counts completely or not at all) and
   listed in :attr:`Collected.files_skipped`.  A worker process that dies raises
   :class:`~peaksift.errors.ExecutionError` naming the chunk.  ``KeyboardInterrupt`` stops

@@ -7,7 +7,7 @@ import uuid
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from .._processes import quiet_fork, resolve_start_method
+from .._processes import arrow_threads_from_env, quiet_fork, resolve_start_method
 from ..errors import ExecutionError, PeaksiftError
 from ._local import (
     _INFLIGHT_PER_WORKER,
@@ -16,13 +16,42 @@ from ._local import (
     _Run,
 )
 
+#: A forked worker's resident memory includes the pages it shares with this process, and
+#: Dask's memory monitor pauses (80%) or restarts (95%) a worker by that figure.  ``"auto"``
+#: forks a local cluster's workers only while this process is below this fraction of each
+#: worker's memory limit (the machine's memory over the workers, LocalCluster's default).
+_FORK_RSS_FRACTION = 0.1
+
+
+def _local_cluster_method(start_method: str, workers: int) -> str:
+    """How a local cluster's workers start: ``start_method`` resolved, except that
+    ``"auto"`` spawns when this process is too large to fork (see ``_FORK_RSS_FRACTION``)."""
+    method = resolve_start_method(start_method)
+    if start_method != "auto" or method != "fork":
+        return method
+    try:
+        import psutil  # comes with distributed
+    except ImportError:  # pragma: no cover
+        return "spawn"
+    per_worker = psutil.virtual_memory().total / max(1, workers)
+    rss = psutil.Process().memory_info().rss
+    return "fork" if rss < _FORK_RSS_FRACTION * per_worker else "spawn"
+
+
+def _local_worker_setup() -> None:
+    """Run on every worker of a local cluster we start: a fast exit, and Arrow's thread
+    count from the environment (a forked worker inherits this process's pool size)."""
+    _install_exit_fast()
+    arrow_threads_from_env()
+
 
 def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
     """A LocalCluster of ``workers`` single-threaded processes, quiet, no dashboard.
 
-    The nannies start their workers with ``start_method`` (``"auto"``: fork on Linux; see
-    the module guide): forked from this process, a worker starts with distributed, the
-    chunk work and its kernels already loaded.
+    The nannies start their workers with ``start_method`` (``"auto"``: fork on Linux when
+    this process is small, see :func:`_local_cluster_method` and the module guide): forked
+    from this process, a worker starts with distributed, the chunk work and its kernels
+    already loaded.
 
     Dask's nannies start workers with ``MALLOC_TRIM_THRESHOLD_=65536``, which makes glibc
     return freed memory to the system at once: every large temporary array of a chunk is
@@ -41,7 +70,7 @@ def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
 
     env = dict(dask.config.get("distributed.nanny.pre-spawn-environ", {}) or {})
     env.pop("MALLOC_TRIM_THRESHOLD_", None)
-    method = resolve_start_method(start_method)
+    method = _local_cluster_method(start_method, workers)
     with dask.config.set({"distributed.nanny.pre-spawn-environ": env,
                           "distributed.worker.multiprocessing-method": method,
                           "distributed.worker.profile.enabled": False,
@@ -67,7 +96,7 @@ def _connect(address: str | None, workers: int, timeout: str = "30s",
         cluster = _start_local_cluster(workers, start_method)
         try:
             client = Client(cluster, set_as_default=False)
-            client.run(_install_exit_fast)  # our own workers only, never a user's cluster
+            client.run(_local_worker_setup)  # our own workers only, never a user's cluster
             return client, cluster
         except BaseException:
             cluster.close()

@@ -7,7 +7,7 @@ from typing import Any
 
 from .._processes import resolve_start_method
 from ..errors import ConfigError
-from ._dask import _run_dask
+from ._dask import _local_cluster_method, _run_dask
 from ._local import (
     _check_picklable,
     _default_workers,
@@ -54,6 +54,8 @@ def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
     if engine == "serial":
         return _run_serial(func, tasks)
     method = resolve_start_method(start_method)
+    if engine == "dask" and address is None:
+        method = _local_cluster_method(start_method, n_workers)
     if address is None:  # we start the worker processes
         info["start_method"] = method
         if method == "fork":

@@ -20,7 +20,7 @@ import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from typing import Any
 
-from .._processes import process_pool, quiet_fork
+from .._processes import WORKER_ENV, process_pool, quiet_fork, worker_start
 from ..errors import ExecutionError, PeaksiftError
 
 #: Chunks allowed in flight (running, queued or waiting to be reduced) per worker.
@@ -63,25 +63,12 @@ def _install_exit_fast() -> None:
 
 
 def _worker_init(track: Any) -> None:
-    """Pool workers leave Ctrl-C to the parent, which stops them cleanly, and decode with
-    one Arrow thread (one process per core already; a forked worker does not see the
-    thread settings of ``_WORKER_ENV``, so it is told here)."""
+    """Pool workers: signals and thread counts (:func:`peaksift._processes.worker_start`),
+    the task-start record queue, and a fast exit."""
     global _TRACK
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    worker_start()
     _TRACK = track
-    for k, v in _WORKER_ENV.items():
-        os.environ.setdefault(k, v)
-    arrow = sys.modules.get("pyarrow")
-    if arrow is not None:  # already imported: a forked worker (or a user's setting)
-        with contextlib.suppress(ValueError):
-            arrow.set_cpu_count(max(1, int(os.environ["OMP_NUM_THREADS"])))
     _install_exit_fast()
-
-
-#: Environment of the pool's worker processes (unless the user set these): the pool runs
-#: one process per core, so Arrow's decoding threads and BLAS threads would only contend
-#: with the other workers (measured: ~10% faster chunks with one thread each).
-_WORKER_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 
 
 def _pool(size: int, method: str, track: Any) -> Any:
@@ -243,6 +230,9 @@ def _stop_pool(pool: Any, procs: dict[int, Any]) -> None:
             p.terminate()
     for p in procs.values():
         p.join(timeout=10)
+        if p.is_alive():  # ignored SIGTERM (a handler of the caller's, say): end it
+            p.kill()
+            p.join(timeout=5)
 
 
 def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
@@ -259,7 +249,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
     clean = False
     try:
         nxt = 0
-        with _spawn_env(_WORKER_ENV), quiet_fork():  # the first submit starts the workers
+        with _spawn_env(WORKER_ENV), quiet_fork():  # the first submit starts the workers
             while nxt < min(n, limit):
                 pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1
@@ -319,7 +309,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
     pool = _pool(size, method, track)
     try:
         nxt = 0
-        with _spawn_env(_WORKER_ENV), quiet_fork():  # the first submits start the workers
+        with _spawn_env(WORKER_ENV), quiet_fork():  # the first submits start the workers
             while nxt < min(n, limit):
                 pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
                 nxt += 1

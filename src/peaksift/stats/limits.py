@@ -437,7 +437,8 @@ def upper_limits(
         ``executor(func, tasks) -> results in task order`` for the toy limits, one task per
         toy mass, e.g. ``functools.partial(peaksift.execution.map_tasks,
         engine="processes")``.  Each mass draws from its own seed (``seed + j`` for scan
-        mass ``j``), so the engine does not change the limits.
+        mass ``j``), so the engine does not change the toys; worker processes may round
+        sums differently (relative 1e-9 at most in the tests).
 
     Returns
     -------
