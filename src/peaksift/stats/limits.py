@@ -541,10 +541,12 @@ def upper_limits(
 
         tasks: list[_ToyLimitTask] = []
         where: list[int] = []
+        seen: set[int] = set()
         for mass in tm:
             j = int(np.argmin(np.abs(m_all - mass)))
-            if j in where:  # two toy masses nearest the same scan mass
+            if j in seen:  # two toy masses nearest the same scan mass
                 continue
+            seen.add(j)
             if bl[j]:
                 notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
                 continue
