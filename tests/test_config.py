@@ -164,6 +164,19 @@ def test_cross_key_rules(tmp_path):
         tmp_path, MINIMAL + '\n[execution]\naddress = "tcp://h:8786"\n')
 
 
+def test_toy_limit_masses(tmp_path):
+    toys = '\n[limits]\nmethod = "toys"\ntoy_masses = [130, 152.5]\n'
+    cfg = load_config(_write(tmp_path, MINIMAL + toys))
+    assert cfg.limits.toy_masses == (130.0, 152.5)
+    assert load_config(_write(tmp_path, MINIMAL)).limits.toy_masses == ()
+    msg = _err(tmp_path, MINIMAL + "\n[limits]\ntoy_masses = [150.0]\n")
+    assert "limits.toy_masses" in msg and "limits.method" in msg
+    msg = _err(tmp_path, MINIMAL + toys.replace("152.5", "250.0"))
+    assert "limits.toy_masses[1] = 250" in msg and "outside" in msg
+    msg = _err(tmp_path, MINIMAL + toys.replace("152.5", '"high"'))
+    assert "limits.toy_masses[1] must be a number" in msg
+
+
 def test_dict_config_and_overrides(tmp_path):
     cfg = load_config({"input": {"files": "x.parquet"}, "spectrum": {"window": [1.0, 5.0]},
                        "model": {"resolution": {"absolute": 0.05}}}, base_dir=tmp_path)

@@ -313,7 +313,8 @@ def test_toys_run_on_the_configured_engine_with_the_same_result(monkeypatch):
     from peaksift.search import run_search
 
     base = load_config(CONFIG).with_overrides(limits__method="toys", limits__toys=40,
-                                              limits__points=5, calibration__particle="",
+                                              limits__points=5, limits__toy_masses=[130.0, 152.0],
+                                              calibration__particle="",
                                               significance__method="toys",
                                               significance__toys=30)
     serial_run = run_search(base, out=False)
@@ -331,7 +332,9 @@ def test_toys_run_on_the_configured_engine_with_the_same_result(monkeypatch):
     pool = pool_run.to_dict()["best"]
     assert ("run_toy_batch", "processes", 2) in engines
     assert ("run_toy_limit", "processes", 2) in engines  # the toy limits too
-    assert serial_run.limits.methods.count("toys") == 3
+    assert serial_run.limits.methods.count("toys") == 2  # at limits.toy_masses
+    toy_at = serial_run.limits.masses[np.array(serial_run.limits.methods) == "toys"]
+    assert np.abs(toy_at - [130.0, 152.0]).max() < (200.0 - 110.0) / 4  # nearest of 5 points
     np.testing.assert_allclose(pool_run.limits.observed, serial_run.limits.observed,
                                rtol=1e-9)
     np.testing.assert_allclose(pool_run.limits.expected, serial_run.limits.expected,

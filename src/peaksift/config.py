@@ -72,7 +72,7 @@ class _Key:
     """One configuration key: its kind, default, constraints and documentation."""
 
     name: str
-    kind: str  # str, int, float, bool, choice, window, strings, paths, table, pairs
+    kind: str  # str, int, float, bool, choice, window, strings, paths, floats, table, pairs
     default: Any
     doc: str
     choices: tuple[str, ...] = ()
@@ -195,6 +195,10 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              lo=1, hi=10000),
         _Key("toys", "int", 200, "Toys per mass point when `method = \"toys\"`.",
              lo=10, hi=1_000_000),
+        _Key("toy_masses", "floats", [],
+             "Masses (GeV) where `method = \"toys\"` computes toy-based limits, each at the "
+             "nearest limit point (asymptotic elsewhere); empty: three masses spread over "
+             "the range."),
         _Key("luminosity", "float", None,
              "Integrated luminosity in `luminosity_unit`; when given, limits are on "
              "cross-section x branching fraction instead of the signal yield.",
@@ -374,6 +378,7 @@ class LimitsConfig:
     method: str = "asymptotic"
     points: int = 30
     toys: int = 200
+    toy_masses: tuple[float, ...] = ()
     luminosity: float | None = None
     luminosity_unit: str = "fb^-1"
     luminosity_uncertainty: float = 0.0
@@ -622,6 +627,14 @@ def _value(path: str, key: _Key, v: Any, where: str) -> Any:
                         + f" (allowed: {', '.join(map(repr, key.choices))})"
                     )
         return tuple(items)
+    if k == "floats":
+        if not isinstance(v, list):
+            raise ConfigError(f"{where}: {path} must be a list of numbers, got {v!r}")
+        vals = [float(_number(f"{path}[{i}]", x, where, integer=False)) for i, x in enumerate(v)]
+        bad = [x for x in vals if not math.isfinite(x)]
+        if bad:
+            raise ConfigError(f"{where}: {path} must hold finite numbers, got {bad[0]!r}")
+        return tuple(vals)
     if k == "table":
         if not isinstance(v, Mapping):
             raise ConfigError(
@@ -862,6 +875,16 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         _check_shape("calibration.background", cal["background"], where, "background",
                      cal["background_options"])
 
+    li = vals["limits"]
+    if li["toy_masses"] and li["method"] != "toys":
+        raise ConfigError(f"{where}: limits.toy_masses is set but limits.method = "
+                          f"{li['method']!r}; set method = \"toys\" or remove toy_masses")
+    for i, m in enumerate(li["toy_masses"]):
+        if not (s0 <= m <= s1):
+            raise ConfigError(f"{where}: limits.toy_masses[{i}] = {m:g} lies outside the "
+                              f"scanned masses [{s0:g}, {s1:g}]; choose masses inside the "
+                              "scan range")
+
     ex = vals["execution"]
     if ex["address"] and ex["engine"] != "dask":
         raise ConfigError(f"{where}: execution.address is set but execution.engine = "
@@ -954,7 +977,8 @@ def _allowed_text(key: _Key) -> str:
     rng = _range_text(key)
     kinds = {"str": "string", "int": "integer", "float": "number", "bool": "true/false",
              "window": "[low, high] GeV", "paths": "string or list of strings",
-             "strings": "list of strings", "table": "table", "pairs": "[[mass, sigma], ...]"}
+             "strings": "list of strings", "floats": "list of numbers", "table": "table",
+             "pairs": "[[mass, sigma], ...]"}
     base = kinds.get(key.kind, key.kind)
     return base + (f", {rng}" if rng else "")
 

@@ -719,6 +719,7 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
         hist, sig, bkg, lm, resolution=sigma_fn, window=cfg.spectrum.window, cl=L.cl,
         method=L.method,
         **_opt(toys=L.toys if L.method == "toys" else None, seed=cfg.significance.seed,
+               toy_masses=list(L.toy_masses) or None,
                natural_width=width, blind=blind, luminosity=L.luminosity,
                luminosity_uncertainty=L.luminosity_uncertainty or None,
                efficiency=L.efficiency if L.luminosity is not None else None,
