@@ -249,6 +249,25 @@ def test_keyboard_interrupt_stops_the_pool_and_propagates(caller_sigterm):
         signal.signal(signal.SIGTERM, old_term)
 
 
+_NO_MAIN_GUARD = """
+from peaksift import execution
+
+execution.map_tasks(abs, [-1, -2, -3], engine="processes", workers=2, start_method="spawn")
+"""
+
+
+def test_spawn_without_main_guard_says_so(tmp_path):
+    # Spawned workers re-run the script on import and refuse to start a pool from there;
+    # the error must point at the missing guard, not only at a dead worker.
+    script = tmp_path / "no_guard.py"
+    script.write_text(_NO_MAIN_GUARD)
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
+                          timeout=300, check=False)
+    assert done.returncode != 0
+    last = done.stderr.strip().splitlines()[-1]
+    assert last.startswith("peaksift.errors.ExecutionError") and "__main__" in last, last
+
+
 def test_unpicklable_function_is_refused_before_starting():
     with pytest.raises(ExecutionError, match="cannot be sent to worker processes"):
         execution.map_tasks(lambda s: s, [1, 2], engine="processes", workers=2)

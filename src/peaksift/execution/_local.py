@@ -133,12 +133,18 @@ def _dead_worker_error(kind: str, i: int, n: int, describe: Callable[[int], str]
 
 
 def _broken_pool_error(procs: dict[int, Any], track: Any, started: dict[int, int],
-                       unfinished: set[int], n: int,
-                       describe: Callable[[int], str]) -> ExecutionError:
+                       unfinished: set[int], n: int, describe: Callable[[int], str],
+                       method: str) -> ExecutionError:
     """The error for a process pool broken by a dying worker: the task it ran when the pool
     can tell, otherwise the tasks in flight."""
     hint = ("it was killed or crashed: lower chunk_events or workers, or run "
             "engine='serial' to see the underlying error")
+    _drain(track, started)
+    if method == "spawn" and not started:
+        # no worker got as far as a task: most often a script without the main guard,
+        # which spawned workers re-run on import (and which refuses to start them)
+        hint += ("; no worker started a task: with start_method 'spawn' a script must run "
+                 "peaksift under `if __name__ == \"__main__\":`")
     found = _culprit(procs, track, started, unfinished)
     if found is None:
         return _dead_worker_unknown("worker process", n, describe, sorted(unfinished), hint)
@@ -268,7 +274,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
                 continue
             except BrokenProcessPool:
                 raise _broken_pool_error(procs, track, started, {i, *pending}, n,
-                                         describe) from None
+                                         describe, method) from None
             _drain(track, started)
             yield i, True, value
         clean = True
@@ -350,7 +356,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
             except BrokenProcessPool:
                 unfinished = {i, *(k for k, f in pending.items() if not f.done())}
                 raise _broken_pool_error(procs, track, started, unfinished, n,
-                                         describe) from None
+                                         describe, method) from None
             _drain(track, started)
             yield i, True, value
             i += 1
