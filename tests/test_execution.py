@@ -268,6 +268,29 @@ def test_spawn_without_main_guard_says_so(tmp_path):
     assert last.startswith("peaksift.errors.ExecutionError") and "__main__" in last, last
 
 
+def worker_signals(_: int) -> tuple[bool, bool]:
+    return (signal.getsignal(signal.SIGINT) == signal.SIG_IGN,
+            signal.getsignal(signal.SIGTERM) == signal.SIG_DFL)
+
+
+@pytest.mark.parametrize("pool", ["execution", "toy engine"])
+def test_workers_leave_ctrl_c_to_the_caller_and_obey_sigterm(pool):
+    # Forked workers inherit the caller's handlers; every pool we start resets them: SIGINT
+    # ignored (the caller stops the pool), SIGTERM at its default (so the stop works).
+    from peaksift import _processes
+
+    old_term = signal.signal(signal.SIGTERM, lambda signum, frame: None)
+    try:
+        if pool == "execution":
+            got = execution.map_tasks(worker_signals, [0, 1], engine="processes", workers=2)
+        else:  # the pool stats.toys.run_toys(workers=) starts
+            with _processes.process_pool(2, initializer=_processes.worker_start) as p:
+                got = list(p.map(worker_signals, [0, 1]))
+    finally:
+        signal.signal(signal.SIGTERM, old_term)
+    assert got == [(True, True), (True, True)]
+
+
 def test_unpicklable_function_is_refused_before_starting():
     with pytest.raises(ExecutionError, match="cannot be sent to worker processes"):
         execution.map_tasks(lambda s: s, [1, 2], engine="processes", workers=2)
@@ -525,9 +548,10 @@ def arrow_threads(_: int) -> int:
 
 @pytest.mark.parametrize("engine", ["processes", "dask"])
 @pytest.mark.parametrize("start_method", ["fork", "spawn"])
-def test_workers_decode_with_one_arrow_thread(engine, start_method):
+def test_workers_decode_with_one_arrow_thread(engine, start_method, monkeypatch):
     # One process per core: a worker forked from a caller with a larger Arrow pool must not
     # inherit it (spawned ones read the thread count from their environment).
+    monkeypatch.delenv("OMP_NUM_THREADS", raising=False)  # the default: one thread
     if engine == "dask":
         pytest.importorskip("distributed")
     if start_method == "fork" and not sys.platform.startswith("linux"):
@@ -548,8 +572,9 @@ def test_local_cluster_spawns_when_this_process_is_large(monkeypatch):
     pytest.importorskip("psutil")
     if not sys.platform.startswith("linux"):
         pytest.skip("fork is used on Linux only")
-    assert _dask._local_cluster_method("auto", 2) == "fork"  # this test process is small
-    monkeypatch.setattr(_dask, "_FORK_RSS_FRACTION", 0.0)
+    monkeypatch.setattr(_dask, "_FORK_RSS_FRACTION", 1e9)  # any caller is small enough
+    assert _dask._local_cluster_method("auto", 2) == "fork"
+    monkeypatch.setattr(_dask, "_FORK_RSS_FRACTION", 0.0)  # no caller is
     assert _dask._local_cluster_method("auto", 2) == "spawn"
     assert _dask._local_cluster_method("fork", 2) == "fork"  # asked for: honoured
     assert _dask._local_cluster_method("spawn", 2) == "spawn"

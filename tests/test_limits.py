@@ -201,6 +201,17 @@ def _asimov_exponential(n_bkg: float = 20_000.0, slope: float = -3.0, bins: int 
     return h
 
 
+def test_toy_masses_on_a_blinded_point_are_skipped_with_one_note():
+    """Two toy masses nearest the same blinded scan mass: no toys there, one note."""
+    h = _spectrum(n_bkg=3000, bins=150)
+    r = upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], resolution=0.01,
+                     blind=(240.0, 260.0), method="toys", toy_masses=[249.0, 251.0],
+                     toys=50, seed=1)
+    assert r.methods == ("asymptotic", "asymptotic", "asymptotic")
+    skipped = [n for n in r.notes if "skipped: blinded" in n]
+    assert skipped == ["toy limits at 250 skipped: blinded"]
+
+
 def test_blinded_observed_limit_on_asimov_data_equals_expected_on_the_same_bins():
     """On background-only Asimov data the observed CLs limit equals the median expected limit
     (Cowan et al. 2011 sec. 3.8: mu_hat = 0 and q~mu = q_mu,A, so CLs = 2 Phi(-sqrt(q_mu,A))

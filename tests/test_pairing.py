@@ -480,6 +480,21 @@ def busy_events(ev):  # a callable event cut that compiles such a kernel on firs
     return ak.num(ev.muon) >= 2 if total_pt(ev.muon) > 0 else ak.num(ev.muon) < 0
 
 cut = busy_events if sys.argv[2] == "user-kernel-in-cut" else None
+if sys.argv[2] == "user-kernel-in-thread":
+    # another thread compiles its kernel while this one is inside pair()'s kernel section
+    import threading
+    import peaksift.pairing as pairing
+
+    inner = pairing._pair_selected
+    seen = []
+
+    def with_other_thread(*args, **kwargs):
+        t = threading.Thread(target=lambda: seen.append(total_pt(events.muon)))
+        t.start()
+        t.join()
+        return inner(*args, **kwargs)
+
+    pairing._pair_selected = with_other_thread
 cands = peaksift.pair(events, "muon", charge="opposite", choose="leading", event_cut=cut)
 assert len(cands) > 0
 # without a user kernel, the pairing kernels loaded without numba's third-party extensions
@@ -489,12 +504,13 @@ print("same sum:", abs(total_pt(events.muon) - float(ak.sum(events.muon.pt))) < 
 """
 
 
-@pytest.mark.parametrize("mode, loaded", [("plain", False), ("user-kernel-in-cut", True)])
+@pytest.mark.parametrize("mode, loaded", [("plain", False), ("user-kernel-in-cut", True),
+                                          ("user-kernel-in-thread", True)])
 def test_pair_leaves_numba_extensions_to_later_compilations(tmp_path, demo_dir, mode, loaded):
     # In a fresh interpreter: pair() loads its kernels without running numba's extension
     # entry points (a worker's start-up saving), and a numba function over an awkward array
-    # compiles both later and inside a callable cut of that first pair() call, with
-    # awkward's own sum as the reference.
+    # compiles later, inside a callable cut of that first pair() call, and in another thread
+    # while pair() loads its kernels, with awkward's own sum as the reference.
     import subprocess
     import sys
 

@@ -333,8 +333,9 @@ def test_toys_run_on_the_configured_engine_with_the_same_result(monkeypatch):
     assert ("run_toy_batch", "processes", 2) in engines
     assert ("run_toy_limit", "processes", 2) in engines  # the toy limits too
     assert serial_run.limits.methods.count("toys") == 2  # at limits.toy_masses
-    toy_at = serial_run.limits.masses[np.array(serial_run.limits.methods) == "toys"]
-    assert np.abs(toy_at - [130.0, 152.0]).max() < (200.0 - 110.0) / 4  # nearest of 5 points
+    lm = serial_run.limits.masses
+    toy_at = lm[np.array(serial_run.limits.methods) == "toys"]
+    np.testing.assert_array_equal(toy_at, [lm[np.argmin(np.abs(lm - m))] for m in (130, 152)])
     np.testing.assert_allclose(pool_run.limits.observed, serial_run.limits.observed,
                                rtol=1e-9)
     np.testing.assert_allclose(pool_run.limits.expected, serial_run.limits.expected,
@@ -343,6 +344,21 @@ def test_toys_run_on_the_configured_engine_with_the_same_result(monkeypatch):
     assert pool["n_toys_above"] == serial["n_toys_above"]
     for key in ("mass", "z_local", "p_local", "p_global", "z_global"):
         assert pool[key] == pytest.approx(serial[key], rel=1e-12, abs=1e-12), key
+
+
+def test_toy_mass_outside_the_limit_scan_is_a_config_error():
+    """A toy mass inside the window but outside the scanned masses (3 resolution sigma
+    inside by default) names its key instead of moving to the edge point silently."""
+    from peaksift.config import load_config
+    from peaksift.errors import ConfigError
+    from peaksift.search import run_search
+
+    cfg = load_config(CONFIG).with_overrides(limits__method="toys", limits__toys=20,
+                                             limits__toy_masses=(110.5,),
+                                             calibration__particle="")
+    with pytest.raises(ConfigError, match=r"limits\.toy_masses\[0\] = 110\.5 lies outside "
+                                          r"the limit scan"):
+        run_search(cfg, out=False)
 
 
 def test_spectrum_figure_hides_the_bins_the_statistics_leave_out(monkeypatch, tmp_path):

@@ -7,6 +7,8 @@
   with the resolved method.
 * :func:`worker_start`         -- the first step in every pool worker we start: signals,
   one thread per library, whatever a forked worker inherited.
+* :func:`stop_pool`            -- stop a pool now (Ctrl-C, an error): cancel what waits,
+  terminate the workers, kill any that outlive it.
 
 The execution engines (:mod:`peaksift.execution`) and the toy engine's ``workers=`` pool
 (:mod:`peaksift.stats.toys`) share these, so every pool peaksift starts behaves alike.  Why
@@ -20,12 +22,13 @@ import multiprocessing
 import os
 import signal
 import sys
+import time
 import warnings
 from collections.abc import Callable, Iterator
 from typing import Any
 
 __all__ = ["WORKER_ENV", "arrow_threads_from_env", "process_pool", "quiet_fork",
-           "resolve_start_method", "worker_start"]
+           "resolve_start_method", "stop_pool", "worker_start"]
 
 #: Environment of the worker processes we start (unless the user set these): they run one
 #: process per core, so Arrow's decoding threads and BLAS threads would only contend with
@@ -86,3 +89,22 @@ def worker_start() -> None:
     for k, v in WORKER_ENV.items():
         os.environ.setdefault(k, v)
     arrow_threads_from_env()
+
+
+def stop_pool(pool: Any, procs: dict[int, Any] | None = None, grace: float = 10.0) -> None:
+    """Stop a process pool now: cancel the queued tasks, send every worker SIGTERM, and
+    kill those still alive after ``grace`` seconds in all (one deadline for every worker,
+    not one each).  ``procs`` adds processes the caller recorded (a broken pool may have
+    dropped them)."""
+    procs = {**(procs or {}), **(getattr(pool, "_processes", None) or {})}
+    pool.shutdown(wait=False, cancel_futures=True)
+    for p in procs.values():
+        if p.is_alive():
+            p.terminate()
+    deadline = time.monotonic() + grace
+    for p in procs.values():
+        p.join(timeout=max(0.0, deadline - time.monotonic()))
+    for p in procs.values():
+        if p.is_alive():  # ignored SIGTERM: end it
+            p.kill()
+            p.join(timeout=5)

@@ -628,6 +628,8 @@ def _value(path: str, key: _Key, v: Any, where: str) -> Any:
                     )
         return tuple(items)
     if k == "floats":
+        if isinstance(v, tuple):  # from with_overrides
+            v = list(v)
         if not isinstance(v, list):
             raise ConfigError(f"{where}: {path} must be a list of numbers, got {v!r}")
         vals = [float(_number(f"{path}[{i}]", x, where, integer=False)) for i, x in enumerate(v)]
@@ -881,9 +883,9 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                           f"{li['method']!r}; set method = \"toys\" or remove toy_masses")
     for i, m in enumerate(li["toy_masses"]):
         if not (s0 <= m <= s1):
-            raise ConfigError(f"{where}: limits.toy_masses[{i}] = {m:g} lies outside the "
-                              f"scanned masses [{s0:g}, {s1:g}]; choose masses inside the "
-                              "scan range")
+            raise ConfigError(f"{where}: limits.toy_masses[{i}] = {m:g} lies outside "
+                              f"[{s0:g}, {s1:g}] GeV (spectrum.window, or scan.start / "
+                              "scan.stop); choose masses inside the scan range")
 
     ex = vals["execution"]
     if ex["address"] and ex["engine"] != "dask":

@@ -65,6 +65,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import threading
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -666,6 +667,7 @@ def pair(
 
 
 _KERNELS_LOADED = False  # the first kernel section of this process has run
+_FIRST_SECTION = threading.Lock()
 
 
 @contextlib.contextmanager
@@ -673,36 +675,43 @@ def _kernels_without_extensions(first_section: bool = True) -> Iterator[None]:
     """Let the kernels load without numba's third-party extensions, once per process.
 
     The first numba compilation or cache load in a process runs every installed
-    ``numba_extensions`` entry point: awkward's and vector's among them, about 0.25 s here,
-    half of numba's whole first-call cost, paid again by every worker process.  The kernels
-    take plain numpy arrays and need none of those extensions, so while the first kernel
-    section runs numba is told its extensions are in
-    (``numba.core.entrypoints._already_initialized``); the flag is put back afterwards and
-    the next compilation anywhere in the process loads the extensions as usual (tested: a
-    user's ``numba.njit`` function over awkward arrays works after :func:`pair`, and inside
-    a callable cut of the first :func:`pair` call).  Only our kernels run inside: cuts and
-    other user code are evaluated before.  numba's compiler lock is held meanwhile, so no
-    other thread compiles without the extensions.  With a numba that lacks the flag, or
-    once the first section has run, this does nothing.  ``first_section=False`` (the
-    warm-up before forking) leaves the next section its turn.
+    ``numba_extensions`` entry point (``numba.core.entrypoints.init_all``): awkward's and
+    vector's among them, about 0.25 s here, half of numba's whole first-call cost, paid
+    again by every worker process.  The kernels take plain numpy arrays and need none of
+    those extensions.  So while the first kernel section runs, ``init_all`` is replaced by a
+    function that does nothing when called from this thread and the real thing from any
+    other thread (whose compilations may need the extensions); it is put back afterwards,
+    and the next compilation in this thread loads the extensions as usual.  numba's own
+    "initialised" flag is never touched.  Tested: a user's ``numba.njit`` function over
+    awkward arrays works after :func:`pair`, inside a callable cut of the first
+    :func:`pair` call, and in another thread during it.  Only our kernels run inside: cuts
+    and other user code are evaluated before.  Once the first section has run, or with a
+    numba whose extensions are already in, this does nothing.  ``first_section=False``
+    (the warm-up before forking) leaves the next section its turn.
     """
     global _KERNELS_LOADED
     eps = getattr(getattr(numba, "core", None), "entrypoints", None)
-    if _KERNELS_LOADED or eps is None or getattr(eps, "_already_initialized", True) is not False:
+    if (_KERNELS_LOADED or eps is None or not callable(getattr(eps, "init_all", None))
+            or getattr(eps, "_already_initialized", True) is not False):
         yield
         return
-    from numba.core.compiler_lock import global_compiler_lock
+    with _FIRST_SECTION:  # one thread's first section at a time; the others then skip
+        if _KERNELS_LOADED:
+            yield
+            return
+        real = eps.init_all
+        owner = threading.get_ident()
 
-    with global_compiler_lock:
-        ready = eps._already_initialized is not False  # another thread got there first
-        if not ready:
-            eps._already_initialized = True
+        def init_all_but_here() -> None:
+            if threading.get_ident() != owner:
+                real()
+
         try:
+            eps.init_all = init_all_but_here
             yield
             _KERNELS_LOADED = _KERNELS_LOADED or first_section
         finally:
-            if not ready:
-                eps._already_initialized = False
+            eps.init_all = real
 
 
 def _load_kernels() -> None:

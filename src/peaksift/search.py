@@ -715,6 +715,13 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
     n = min(cfg.limits.points, masses.size)
     lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
     L = cfg.limits
+    half = (lm[-1] - lm[0]) / (2 * (lm.size - 1)) if lm.size > 1 else 0.0
+    for i, m in enumerate(L.toy_masses):
+        if not lm[0] - half <= m <= lm[-1] + half:
+            raise ConfigError(
+                f"{_where(cfg)}: limits.toy_masses[{i}] = {m:g} lies outside the limit scan "
+                f"[{lm[0]:g}, {lm[-1]:g}] GeV (the scan keeps 3 resolution sigma inside the "
+                "window unless scan.start / scan.stop say otherwise); choose masses inside it")
     return upper_limits(
         hist, sig, bkg, lm, resolution=sigma_fn, window=cfg.spectrum.window, cl=L.cl,
         method=L.method,

@@ -41,8 +41,8 @@ re-create their thread pools after a fork (Arrow, OpenBLAS) or use none (the num
 kernels), and, on a local Dask cluster, distributed's own worker; the workers reset the
 signal handlers and thread counts they inherit.  A forked worker's resident memory counts
 the pages it shares with this process, so for a local Dask cluster (whose memory monitor
-pauses workers by that figure) ``"auto"`` forks only while this process is below a tenth
-of each worker's memory limit, and spawns otherwise.  Choose ``"spawn"`` if your own code
+pauses workers by that figure) ``"auto"`` forks only while this process is below 30% of
+each worker's memory limit, and spawns otherwise.  Choose ``"spawn"`` if your own code
 in the calling process is not fork-safe.  Scripts that use ``"spawn"`` need the usual
 ``if __name__ == "__main__":`` guard.  The start method does not change peaksift's results;
 a cut callable of yours that reads module state set under that guard sees it only when

@@ -19,8 +19,10 @@ from ._local import (
 #: A forked worker's resident memory includes the pages it shares with this process, and
 #: Dask's memory monitor pauses (80%) or restarts (95%) a worker by that figure.  ``"auto"``
 #: forks a local cluster's workers only while this process is below this fraction of each
-#: worker's memory limit (the machine's memory over the workers, LocalCluster's default).
-_FORK_RSS_FRACTION = 0.1
+#: worker's memory limit (LocalCluster's default: the memory available to this process,
+#: cgroup limits included, over the workers), leaving the rest for the chunk work (~0.4 GiB
+#: per worker at the default chunk size).
+_FORK_RSS_FRACTION = 0.3
 
 
 def _local_cluster_method(start_method: str, workers: int) -> str:
@@ -31,9 +33,10 @@ def _local_cluster_method(start_method: str, workers: int) -> str:
         return method
     try:
         import psutil  # comes with distributed
+        from distributed.system import MEMORY_LIMIT
     except ImportError:  # pragma: no cover
         return "spawn"
-    per_worker = psutil.virtual_memory().total / max(1, workers)
+    per_worker = MEMORY_LIMIT / max(1, workers)
     rss = psutil.Process().memory_info().rss
     return "fork" if rss < _FORK_RSS_FRACTION * per_worker else "spawn"
 

@@ -20,7 +20,7 @@ import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from typing import Any
 
-from .._processes import WORKER_ENV, process_pool, quiet_fork, worker_start
+from .._processes import WORKER_ENV, process_pool, quiet_fork, stop_pool, worker_start
 from ..errors import ExecutionError, PeaksiftError
 
 #: Chunks allowed in flight (running, queued or waiting to be reduced) per worker.
@@ -229,16 +229,7 @@ def _dead_tasks(procs: dict[int, Any], started: dict[int, int],
 
 def _stop_pool(pool: Any, procs: dict[int, Any]) -> None:
     """Cancel what is queued and stop the pool's processes now."""
-    procs = {**procs, **(getattr(pool, "_processes", None) or {})}
-    pool.shutdown(wait=False, cancel_futures=True)
-    for p in procs.values():
-        if p.is_alive():
-            p.terminate()
-    for p in procs.values():
-        p.join(timeout=10)
-        if p.is_alive():  # ignored SIGTERM (a handler of the caller's, say): end it
-            p.kill()
-            p.join(timeout=5)
+    stop_pool(pool, procs)
 
 
 def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,

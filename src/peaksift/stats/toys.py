@@ -53,7 +53,7 @@ from typing import Any
 
 import numpy as np
 
-from .._processes import process_pool, quiet_fork, worker_start
+from .._processes import process_pool, quiet_fork, stop_pool, worker_start
 from ..errors import FitError
 
 __all__ = ["ScanModel", "ToyBatch", "run_toy_batch", "run_toys", "toy_counts"]
@@ -716,12 +716,17 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
         elif workers is not None and int(workers) > 1 and len(specs) > 1:
             # forked on Linux, spawned elsewhere, like the execution engines' pools
             size = min(int(workers), len(specs), os.cpu_count() or 1)
-            with process_pool(size, initializer=worker_start) as pool:
+            pool = process_pool(size, initializer=worker_start)
+            try:
                 with quiet_fork():  # the workers start at the first submit
                     done_iter = pool.map(run_toy_batch, specs)
                 for spec, res in zip(specs, done_iter):
                     results.append(res)
                     bar.update(spec.count)
+            except BaseException:  # Ctrl-C or a failed batch: stop now, do not wait
+                stop_pool(pool)
+                raise
+            pool.shutdown(wait=True)
         else:
             for spec in specs:
                 results.append(run_toy_batch(spec))
