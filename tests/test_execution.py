@@ -284,7 +284,8 @@ def test_workers_leave_ctrl_c_to_the_caller_and_obey_sigterm(pool):
         if pool == "execution":
             got = execution.map_tasks(worker_signals, [0, 1], engine="processes", workers=2)
         else:  # the pool stats.toys.run_toys(workers=) starts
-            with _processes.process_pool(2, initializer=_processes.worker_start) as p:
+            with _processes.process_pool(2, initializer=_processes.worker_start) as p, \
+                    _processes.quiet_fork():
                 got = list(p.map(worker_signals, [0, 1]))
     finally:
         signal.signal(signal.SIGTERM, old_term)
