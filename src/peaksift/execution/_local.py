@@ -232,6 +232,19 @@ def _stop_pool(pool: Any, procs: dict[int, Any]) -> None:
     stop_pool(pool, procs)
 
 
+def _first_submits(pool: Any, func: Callable[[Any], Any], tasks: Sequence[Any], limit: int,
+                   pending: dict[int, Any]) -> int:
+    """Submit the first ``limit`` tasks into ``pending``; these submits start the pool's
+    workers, so they run with the workers' environment and Python's fork warning quiet.
+    Returns the index of the next task to submit."""
+    nxt = 0
+    with _spawn_env(WORKER_ENV), quiet_fork():
+        while nxt < min(len(tasks), limit):
+            pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
+            nxt += 1
+    return nxt
+
+
 def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
                    describe: Callable[[int], str], method: str) -> _Run:
     from concurrent.futures.process import BrokenProcessPool
@@ -245,11 +258,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
     started: dict[int, int] = {}
     clean = False
     try:
-        nxt = 0
-        with _spawn_env(WORKER_ENV), quiet_fork():  # the first submit starts the workers
-            while nxt < min(n, limit):
-                pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
-                nxt += 1
+        nxt = _first_submits(pool, func, tasks, limit, pending)
         procs.update(getattr(pool, "_processes", None) or {})
         for i in range(n):
             while nxt < n and nxt < i + limit:
@@ -305,11 +314,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
     pa.set_cpu_count(1)  # like the workers: one process per core, no decoding threads
     pool = _pool(size, method, track)
     try:
-        nxt = 0
-        with _spawn_env(WORKER_ENV), quiet_fork():  # the first submits start the workers
-            while nxt < min(n, limit):
-                pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
-                nxt += 1
+        nxt = _first_submits(pool, func, tasks, limit, pending)
         procs.update(getattr(pool, "_processes", None) or {})
         i = 0
         while i < n:
