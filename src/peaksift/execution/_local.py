@@ -232,6 +232,16 @@ def _stop_pool(pool: Any, procs: dict[int, Any]) -> None:
     stop_pool(pool, procs)
 
 
+def _close_pool(pool: Any, procs: dict[int, Any], track: Any, clean: bool) -> None:
+    """After a run: wait for a pool that finished cleanly; stop one now after an error, an
+    early stop or Ctrl-C (no waiting for running tasks)."""
+    if clean:
+        pool.shutdown(wait=True)
+    else:
+        _stop_pool(pool, procs)
+    track.close()
+
+
 def _first_submits(pool: Any, func: Callable[[Any], Any], tasks: Sequence[Any], limit: int,
                    pending: dict[int, Any]) -> int:
     """Submit the first ``limit`` tasks into ``pending``; these submits start the pool's
@@ -279,11 +289,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
             yield i, True, value
         clean = True
     finally:
-        if clean:
-            pool.shutdown(wait=True)
-        else:  # error, early stop or KeyboardInterrupt: do not wait for running chunks
-            _stop_pool(pool, procs)
-        track.close()
+        _close_pool(pool, procs, track, clean)
 
 
 def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
@@ -358,9 +364,5 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
             i += 1
         clean = True
     finally:
-        if clean:
-            pool.shutdown(wait=True)
-        else:  # error, early stop or KeyboardInterrupt: do not wait for running chunks
-            _stop_pool(pool, procs)
-        track.close()
+        _close_pool(pool, procs, track, clean)
         pa.set_cpu_count(arrow_threads)
