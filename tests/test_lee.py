@@ -93,7 +93,7 @@ def test_binomial_error_matches_scipy():
     assert binomial_error(30, 1000) == pytest.approx(stats.binom(1000, 0.03).std() / 1000)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=60, deadline=None, derandomize=True)
 @given(q_obs=st.floats(0.0, 60.0),
        scans=st.lists(st.lists(st.floats(0.0, 40.0), min_size=3, max_size=12),
                       min_size=1, max_size=20).filter(lambda v: len({len(r) for r in v}) == 1))
