@@ -20,6 +20,7 @@ from typing import Any
 
 from ..errors import FitError
 from ._base import Parameter, Shape
+from ._base import _as_window as as_window
 from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, TurnOn
 from .signal import BreitWigner, CrystalBall, Gaussian, Voigt
 
@@ -36,6 +37,7 @@ __all__ = [
     "Shape",
     "TurnOn",
     "Voigt",
+    "as_window",
     "available",
     "get",
 ]

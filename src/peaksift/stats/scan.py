@@ -155,7 +155,7 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
     scale = 1.0
     bin_scale = None
     if not np.allclose(sumw, sumw2):
-        from ..fitting import _scale
+        from ..fitting.data import poisson_scale as _scale
 
         scale = float(sumw.sum() / sumw2.sum())
         bin_scale = np.asarray(_scale(sumw, sumw2), float)
