@@ -87,8 +87,12 @@ def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True) ->
     """
     n = np.asarray(n, float)
     mu = np.maximum(np.asarray(mu, float), MU_FLOOR)
-    nt, s = _scaled(n, scale)
-    val = np.sum(s * mu - nt * np.log(s * mu), axis=-1)
+    if scale is None:
+        val = np.sum(mu - n * np.log(mu), axis=-1)
+    else:
+        nt, s = _scaled(n, scale)
+        smu = s * mu
+        val = np.sum(smu - nt * np.log(smu), axis=-1)
     if saturated:
         val = val + saturated_term(n, scale)
     return val

@@ -55,6 +55,7 @@ import numpy as np
 
 from .._processes import process_pool, quiet_fork, stop_pool, worker_start
 from ..errors import FitError
+from ..likelihood import binned_nll, damped_step
 
 __all__ = ["ScanModel", "ToyBatch", "run_toy_batch", "run_toys", "toy_counts"]
 
@@ -184,28 +185,11 @@ def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
 
 
 def _nll(n: np.ndarray, nu: np.ndarray) -> np.ndarray:
-    # n * log(nu) with nu > 0 (0 * log(nu) = 0 for empty bins); faster than xlogy
-    return np.sum(nu - n * np.log(np.maximum(nu, 1e-300)), axis=-1)
+    # the core's Poisson NLL without its saturated constant (differences are all we need)
+    return binned_nll(n, nu, saturated=False)
 
 
 # ------------------------------------------------------- background-only fit (stacked)
-def _damped_solve(hess: np.ndarray, grad: np.ndarray, lam: np.ndarray) -> np.ndarray:
-    """Levenberg-Marquardt step ``-(H + lam (diag H + floor))^-1 g`` for stacked systems.
-
-    The floor (1e-6 of the mean diagonal) keeps directions the Fisher-type Hessian sees as
-    flat (e.g. a squared coefficient at 0) from taking huge steps.
-    """
-    p = hess.shape[-1]
-    d = np.diagonal(hess, axis1=-2, axis2=-1)
-    floor = 1e-6 * np.abs(d).mean(axis=-1, keepdims=True) + 1e-300
-    h = hess.copy()
-    i = np.arange(p)
-    h[:, i, i] += lam[:, None] * (d + floor) + 1e-14 * floor
-    with np.errstate(all="ignore"):
-        step = -np.linalg.solve(h, grad[..., None])[..., 0]
-    return np.where(np.isfinite(step), step, 0.0)
-
-
 @_quiet
 def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = None,
                    *, steps: int = 30, tol: float = 1e-9) -> tuple[np.ndarray, np.ndarray,
@@ -257,7 +241,7 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
         for _try in range(12):
             r = np.flatnonzero(todo)
             rows = idx[r]
-            step = _damped_solve(hess[r], grad[r], lam[rows])
+            step = damped_step(hess[r], grad[r], lam[rows])
             trial = np.clip(th[r] + step[:, 1:], model.lower, model.upper)
             gt, bt, nt = profile_b(trial, rows)
             ok = nt <= nll[rows] + 1e-10
@@ -351,7 +335,7 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         for _try in range(12):
             r = np.flatnonzero(todo)
             rows = idx[r]
-            step = _damped_solve(hess[r], grad[r], lam[rows])
+            step = damped_step(hess[r], grad[r], lam[rows])
             ts = si[r] if fixed else si[r] + step[:, 0]
             tb = bi[r] + step[:, off]
             tth = np.clip(thi[r] + step[:, off + 1:], model.lower, model.upper)
