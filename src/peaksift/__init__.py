@@ -49,7 +49,7 @@ _EXPORTS: dict[str, str] = {
 }
 
 _SUBMODULES = {
-    "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing",
+    "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing", "blinding",
     "histogram", "fitting", "config", "execution", "search", "plotting", "report",
     "resonances", "errors",
 }

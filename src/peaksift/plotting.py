@@ -74,7 +74,7 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     """The selected spectrum as points with Poisson-like error bars (``sqrt(sumw2)``).
 
     With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
-    statistics layer leaves out (:func:`peaksift.stats.scan._blind_mask`) -- the hidden bins'
+    statistics layer leaves out (:func:`peaksift.blinding.blinded_bins`) -- the hidden bins'
     mass range is hatched, and the count in the corner is that of the sidebands only.
     """
     plt = _plt()
@@ -82,15 +82,13 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     h = hist
     span = None
     if blind is not None:
-        from .stats.scan import _blind_mask
+        from .blinding import blinded_bins, hidden_range
 
         h = hist.copy()
-        e = np.asarray(h.edges, dtype=float)
-        inside = _blind_mask(e, blind)
+        inside = blinded_bins(h.edges, blind)
         h.sumw[inside] = np.nan
         h.sumw2[inside] = np.nan
-        idx = np.flatnonzero(inside)
-        span = (float(e[idx[0]]), float(e[idx[-1] + 1])) if idx.size else None
+        span = hidden_range(h.edges, blind)
     shown = h.sumw[np.isfinite(h.sumw)]
     total = float(shown.sum())
     where = " outside the blinded window" if span is not None else ""

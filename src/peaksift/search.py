@@ -190,24 +190,12 @@ def _hidden(blinding: Mapping[str, Any]) -> tuple[float, float] | None:
     return (float(r[0]), float(r[1])) if r else None
 
 
-def _hidden_range(edges: Any, blind: Any) -> tuple[float, float] | None:
-    """Mass range covered by the bins that overlap ``blind`` (the bins the statistics layer
-    leaves out, :func:`peaksift.stats.scan._blind_mask`); None when no bin overlaps."""
-    from .stats.scan import _blind_mask
-
-    e = np.asarray(edges, dtype=float)
-    idx = np.flatnonzero(_blind_mask(e, blind))
-    if idx.size == 0:
-        return None
-    return float(e[idx[0]]), float(e[idx[-1] + 1])
-
-
 def _blinded_copy(hist: Any, blind: Any) -> Any:
     """A copy of ``hist`` with the bins overlapping ``blind`` emptied (sumw = sumw2 = 0)."""
-    from .stats.scan import _blind_mask
+    from .blinding import blinded_bins
 
     h = hist.copy()
-    mask = _blind_mask(np.asarray(h.edges, dtype=float), blind)
+    mask = blinded_bins(h.edges, blind)
     h.sumw[mask] = 0.0
     h.sumw2[mask] = 0.0
     return h
@@ -555,7 +543,9 @@ def _blinding(cfg: Config, unblind: bool) -> dict[str, Any]:
                            "unblinded": bool(b.enabled and unblind),
                            "active": bool(b.enabled and not unblind)}
     if out["active"]:
-        hidden = _hidden_range(cfg.spectrum.edges, b.window)
+        from .blinding import hidden_range
+
+        hidden = hidden_range(cfg.spectrum.edges, b.window)
         out["hidden_range"] = list(hidden) if hidden else None
         out["counts"] = ("input.candidates and input.sum_of_weights count the sidebands only "
                          "(the fit window outside hidden_range); input.cutflow and "

@@ -19,8 +19,7 @@ from __future__ import annotations
 from typing import Any
 
 from ..errors import FitError
-from ._base import Parameter, Shape
-from ._base import _as_window as as_window
+from ._base import Parameter, Shape, as_window
 from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, TurnOn
 from .signal import BreitWigner, CrystalBall, Gaussian, Voigt
 

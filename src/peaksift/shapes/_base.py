@@ -37,7 +37,7 @@ import numpy as np
 
 from ..errors import FitError
 
-__all__ = ["Parameter", "Shape"]
+__all__ = ["Parameter", "Shape", "as_window"]
 
 _GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(10)
 _CACHE_SIZE = 256
@@ -67,7 +67,14 @@ class Parameter:
     unit: str = ""
 
 
-def _as_window(window: Any) -> tuple[float, float]:
+def as_window(window: Any) -> tuple[float, float]:
+    """A fit window ``(lo, hi)`` as two floats, checked: finite, ``hi > lo``.
+
+    Raises
+    ------
+    peaksift.errors.FitError
+        When ``window`` is not a pair of finite numbers with ``hi > lo``.
+    """
     try:
         lo, hi = (float(window[0]), float(window[1]))
     except (TypeError, IndexError, ValueError):
@@ -76,6 +83,7 @@ def _as_window(window: Any) -> tuple[float, float]:
         raise FitError(f"window must be finite with hi > lo, got ({lo!r}, {hi!r}); "
                        "pass e.g. window=(70, 110)")
     return lo, hi
+
 
 
 class Shape:
@@ -182,7 +190,7 @@ class Shape:
     # ------------------------------------------------------------- interface
     def pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
         """Density normalised on ``window`` (zero outside it)."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         x = np.asarray(x, dtype=float)
         edges = np.array([lo, hi])
@@ -196,7 +204,7 @@ class Shape:
 
     def cdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
         """Cumulative distribution on ``window``: 0 at ``lo``, 1 at ``hi``."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         x = np.clip(np.asarray(x, dtype=float), lo, hi)
         plo = self._prim(np.array(lo), p, (lo, hi))
@@ -210,7 +218,7 @@ class Shape:
 
     def grad_pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
         """Derivatives of :meth:`pdf` with respect to each parameter, stacked on axis 0."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         x = np.asarray(x, dtype=float)
         if self._density_grad is not None and self._primitive_grad is not None:
@@ -239,7 +247,7 @@ class Shape:
     def fractions_and_grad(self, edges: Any, params: Sequence[Any],
                            window: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
         """``(bin_fractions, grad_bin_fractions)`` computed together (shared work)."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         edges = np.asarray(edges, dtype=float)
         if self._primitive_grad is None:
