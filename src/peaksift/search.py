@@ -121,8 +121,11 @@ class SearchResult:
         cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
         fit = _fit_dict(self.fit) if self.fit is not None else _blinded_fit()
         scan = _plain(self.scan.to_dict())
+        lg_scan, lg_best = _scan_log10_p(self.scan)
+        scan["best"] = {**(scan.get("best") or {}), "log10_p_local": lg_best}
         scan_extra = {"resolution_model": self.config.model.resolution.kind,
-                      "signal_shape": _scan_signal_name(self.config)}
+                      "signal_shape": _scan_signal_name(self.config),
+                      "log10_p_local": lg_scan}
         out: dict[str, Any] = {
             "peaksift_version": __version__,
             "config": self.config.to_dict(),
@@ -165,6 +168,19 @@ def _plain(o: Any) -> Any:
     if isinstance(o, Path):
         return str(o)
     return o
+
+
+def _scan_log10_p(sres: Any) -> tuple[list[float | None], float]:
+    """``log10_p_local`` per hypothesis (None where blinded) and at the best one: the scan's
+    p_local as a power of ten, finite where the float p_local underflows to 0 (Z > 37.5).
+    Computed from q0 as the scan computes p_local (a NaN q0 counts as 0)."""
+    from .stats.significance import log10_p, log_p_from_q0
+
+    q = np.nan_to_num(np.asarray(sres.q0, dtype=float))
+    lg = np.asarray(log10_p(log_p_from_q0(q)), dtype=float)
+    hidden = np.asarray(sres.blinded, dtype=bool)
+    return ([None if h else float(v) for v, h in zip(lg, hidden)],
+            float(lg[sres.best_index]))
 
 
 def _fit_dict(fr: Any) -> dict[str, Any]:

@@ -6,6 +6,10 @@ Which function when
   signal-plus-background fit: returns the one-sided q0 (0 when the fitted signal is negative).
 * :func:`z_from_q0`, :func:`p_from_q0` -- Z = sqrt(q0) and p = 1 - Phi(sqrt(q0)) (half chi-square).
 * :func:`z_from_p`, :func:`p_from_z`   -- convert between a one-sided p-value and Z.
+* :func:`log_p_from_q0`, :func:`log_p_from_z`, :func:`z_from_log_p` -- the same in log space
+  (natural log of p), for significances beyond about 37 sigma where p underflows a double
+  (p < 1e-308); Z -> ln p -> Z round-trips to ~1e-12 relative up to Z = 1e4.
+* :func:`log10_p`                -- ln p as a base-10 exponent, the form results.json stores.
 * :func:`counting_significance`  -- median expected Z of a counting experiment, with or
   without an uncertainty on the background (closed forms).
 * :func:`binned_q0`              -- q0 of a binned spectrum with known signal and background
@@ -30,9 +34,13 @@ __all__ = [
     "asimov_counts",
     "binned_q0",
     "counting_significance",
+    "log10_p",
+    "log_p_from_q0",
+    "log_p_from_z",
     "p_from_q0",
     "p_from_z",
     "q0_from_nll",
+    "z_from_log_p",
     "z_from_p",
     "z_from_q0",
 ]
@@ -77,6 +85,47 @@ def z_from_p(p: Any) -> np.ndarray | float:
     r"""Significance of a one-sided p-value: :math:`Z = \Phi^{-1}(1 - p)` (CCGV eq. 2)."""
     z = -special.ndtri(np.asarray(p, float))
     return float(z) if np.ndim(z) == 0 else z
+
+
+def log_p_from_z(z: Any) -> np.ndarray | float:
+    r"""Natural log of the one-sided p-value, :math:`\ln p = \ln \Phi(-Z)`, without underflow.
+
+    ``scipy.special.log_ndtr`` computes the logarithm directly, never forming p, so it stays
+    accurate where :math:`p = 1 - \Phi(Z)` itself (``scipy.special.ndtr``) underflows
+    (subnormal, below 2.2e-308, from Z = 37.5 and 0 from Z = 37.7).  For large Z it follows the normal-tail series (Abramowitz, Stegun, Handbook
+    of Mathematical Functions, 26.2.12), :math:`\ln p \approx -Z^2/2 - \ln Z -
+    \tfrac12\ln 2\pi + \ln(1 - Z^{-2} + 3Z^{-4} - \dots)`.
+    """
+    lp = special.log_ndtr(-np.asarray(z, float))
+    return float(lp) if np.ndim(lp) == 0 else lp
+
+
+def log_p_from_q0(q0: Any) -> np.ndarray | float:
+    r"""Natural log of the asymptotic p-value of q0: :math:`\ln p_0 = \ln \Phi(-\sqrt{q_0})`.
+
+    The log-space twin of :func:`p_from_q0` (CCGV eq. 52); finite for any finite q0.
+    """
+    return log_p_from_z(np.sqrt(np.maximum(np.asarray(q0, float), 0.0)))
+
+
+def z_from_log_p(log_p: Any) -> np.ndarray | float:
+    r"""Significance of a one-sided p-value given as its natural log: :math:`Z = -\Phi^{-1}(p)`.
+
+    Uses ``scipy.special.ndtri_exp`` (the inverse of ``log_ndtr``), so
+    ``z_from_log_p(log_p_from_z(z)) == z`` to about 1e-12 relative for Z up to 1e4, far past
+    the point where :func:`z_from_p` returns infinity (p = 0).  ``log_p = 0`` (p = 1) gives
+    ``-inf``, ``log_p = ln 0.5`` gives 0; positive values (p > 1) give NaN.
+    """
+    lp = np.asarray(log_p, float)
+    with np.errstate(invalid="ignore"):
+        z = np.where(lp > 0.0, np.nan, -special.ndtri_exp(np.minimum(lp, 0.0)))
+    return float(z) if np.ndim(z) == 0 else z
+
+
+def log10_p(log_p: Any) -> np.ndarray | float:
+    """A natural-log p-value as a base-10 exponent: ``p = 10**log10_p(log_p)``."""
+    out = np.asarray(log_p, float) / np.log(10.0)
+    return float(out) if np.ndim(out) == 0 else out
 
 
 def counting_significance(s: Any, b: Any, sigma_b: Any = None) -> np.ndarray | float:
@@ -146,7 +195,8 @@ def binned_q0(
 
     Returns
     -------
-    dict with ``q0``, ``z``, ``p``, ``mu_hat``, ``beta_hat``.
+    dict with ``q0``, ``z``, ``p``, ``log10_p`` (p as a power of ten, finite where the float
+    ``p`` underflows to 0), ``mu_hat``, ``beta_hat``.
     """
     n = np.atleast_1d(np.asarray(counts, float))
     s = np.atleast_1d(np.asarray(signal, float))
@@ -188,5 +238,5 @@ def binned_q0(
     mu_hat = float(r.x)
     nll1, beta1 = prof(mu_hat)
     q0 = q0_from_nll(nll0, min(nll1, nll0), mu_hat)
-    return {"q0": q0, "z": z_from_q0(q0), "p": p_from_q0(q0), "mu_hat": mu_hat,
-            "beta_hat": beta1}
+    return {"q0": q0, "z": z_from_q0(q0), "p": p_from_q0(q0),
+            "log10_p": log10_p(log_p_from_q0(q0)), "mu_hat": mu_hat, "beta_hat": beta1}
