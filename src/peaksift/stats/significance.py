@@ -26,9 +26,10 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special
+from scipy import special
 
 from ..errors import FitError
+from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 
 __all__ = [
     "asimov_counts",
@@ -170,9 +171,38 @@ def asimov_counts(signal: Any, background: Any, mu: float = 1.0) -> np.ndarray:
     return mu * np.asarray(signal, float) + np.asarray(background, float)
 
 
-def _nll_poisson(n: np.ndarray, nu: np.ndarray) -> float:
-    nu = np.maximum(nu, 1e-300)
-    return float(np.sum(nu - n * np.log(nu)))
+class _TemplateCost:
+    """NLL of ``nu = mu s + beta b`` (plus the auxiliary count of beta) over the free ones of
+    (mu, beta), on the likelihood core's Poisson functions, for its minimiser."""
+
+    errordef = 0.5
+
+    def __init__(self, n, s, b, tau, m, free, fixed_values):
+        self.n, self.t = n, np.vstack([s, b])
+        self.tau, self.m, self.btot = tau, m, float(b.sum())
+        self.free, self.full = free, np.asarray(fixed_values, float)
+
+    def value_grad_info(self, x: np.ndarray, info: bool = True):
+        v = self.full.copy()
+        v[self.free] = x
+        mu = v @ self.t
+        val = float(binned_nll(self.n, mu, saturated=False))
+        g = binned_gradient(self.n, mu, self.t)
+        fi = binned_information(mu, self.t)
+        if self.tau is not None:  # auxiliary m ~ Pois(tau beta B): one more Poisson bin
+            aux = np.array([self.tau * self.btot])
+            mu_a = v[1] * aux
+            val += float(binned_nll(np.array([self.m]), mu_a, saturated=False))
+            g[1] += float(binned_gradient(np.array([self.m]), mu_a, aux[None, :])[0])
+            fi[1, 1] += float(binned_information(mu_a, aux[None, :])[0, 0])
+        return val, g[self.free], (fi[np.ix_(self.free, self.free)] if info else None)
+
+    def __call__(self, *x: float) -> float:
+        val = self.value_grad_info(np.asarray(x, float), info=False)[0]
+        return val if np.isfinite(val) else 1e300
+
+    def grad(self, *x: float) -> np.ndarray:
+        return self.value_grad_info(np.asarray(x, float), info=False)[1]
 
 
 def binned_q0(
@@ -216,27 +246,27 @@ def binned_q0(
         tau = None
         m = 0.0
 
-    def nll(mu: float, beta: float) -> float:
-        val = _nll_poisson(n, mu * s + beta * b)
-        if tau is not None:
-            val += _nll_poisson(np.array([m]), np.array([tau * beta * btot]))
-        return val
-
-    def prof(mu: float) -> tuple[float, float]:
-        if tau is None:
-            return nll(mu, 1.0), 1.0
-        r = optimize.minimize_scalar(
-            lambda lb: nll(mu, float(np.exp(lb))), bracket=(-0.5, 0.5), tol=1e-12
-        )
-        return float(r.fun), float(np.exp(r.x))
-
-    nll0, _ = prof(0.0)
-    # maximise over mu >= 0 (q0 is one-sided)
+    # beta > 0 keeps every expectation positive; mu >= 0 because q0 is one-sided
     smax = max(float(n.sum()), 1.0) / max(float(s.sum()), 1e-300)
-    r = optimize.minimize_scalar(lambda u: prof(u)[0], bounds=(0.0, 3.0 * smax + 10.0),
-                                 method="bounded", options={"xatol": 1e-10 * smax})
-    mu_hat = float(r.x)
-    nll1, beta1 = prof(mu_hat)
+    lower, upper = np.array([0.0, 1e-9]), np.array([3.0 * smax + 10.0, np.inf])
+
+    def profile(free: list[int], start: list[float]) -> tuple[float, np.ndarray]:
+        cost = _TemplateCost(n, s, b, tau, m, np.array(free), start)
+        mo = minimize(cost, np.asarray(start)[free], lower[free], upper[free],
+                      ["mu", "beta"][free[0]:free[-1] + 1], edm_goal=1e-12)
+        v = np.asarray(start, float)
+        v[free] = mo.x
+        return float(mo.fval), v
+
+    if tau is None:
+        nll0 = float(binned_nll(n, b, saturated=False))
+        nll1, (mu_hat, beta1) = profile([0], [max(float((n - b).sum()), 0.0) / max(
+            float(s.sum()), 1e-300) + 1e-3, 1.0])
+    else:
+        nll0, _ = profile([1], [0.0, 1.0])
+        nll1, (mu_hat, beta1) = profile([0, 1], [max(float((n - b).sum()), 0.0) / max(
+            float(s.sum()), 1e-300) + 1e-3, 1.0])
+    mu_hat, beta1 = float(mu_hat), float(beta1)
     q0 = q0_from_nll(nll0, min(nll1, nll0), mu_hat)
     return {"q0": q0, "z": z_from_q0(q0), "p": p_from_q0(q0),
             "log10_p": log10_p(log_p_from_q0(q0)), "mu_hat": mu_hat, "beta_hat": beta1}
