@@ -1,6 +1,6 @@
 """Numbers as text for the command-line summary, the report and the figures.
 
-Base layer (no peaksift imports): ``cli``, ``report`` and ``plotting`` all format through
+Base layer (imports only the base helper _json): ``cli``, ``report`` and ``plotting`` all format through
 these few functions, so a number reads the same everywhere and no output path can fail on a
 value peaksift itself produced.  Every function accepts anything -- None, NaN, infinities,
 numpy scalars, strings -- and returns text; a missing or non-finite number is ``"n/a"``.
@@ -22,6 +22,8 @@ import sys
 from collections.abc import Mapping
 from typing import Any
 
+from ._json import finite
+
 __all__ = ["NA", "as_finite", "fixed", "format_pm", "number", "p_value", "significance"]
 
 #: what every function prints for a missing or non-finite number
@@ -33,13 +35,7 @@ _P_FLOOR = sys.float_info.min
 
 def as_finite(x: Any) -> float | None:
     """``x`` as a finite float, or None (None, NaN, inf, bools, text that is not a number)."""
-    if x is None or isinstance(x, bool):
-        return None
-    try:
-        v = float(x)
-    except (TypeError, ValueError, OverflowError):
-        return None
-    return v if math.isfinite(v) else None
+    return None if isinstance(x, bool) else finite(x)
 
 
 def number(x: Any, digits: int = 4, *, sep: str = ",") -> str:

@@ -23,7 +23,6 @@ from __future__ import annotations
 import base64
 import html
 import json
-import math
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -31,6 +30,7 @@ from typing import Any
 
 from ._files import atomic_write
 from ._format import as_finite, fixed, format_pm, number, p_value, significance
+from ._json import plain
 
 __all__ = [
     "CAUTION",
@@ -105,42 +105,9 @@ def _window_count_label(r: Mapping[str, Any]) -> str:
 
 
 # ------------------------------------------------------------------------------- writing
-def _json_default(o: Any) -> Any:
-    try:
-        import numpy as np
-
-        if isinstance(o, np.integer):
-            return int(o)
-        if isinstance(o, np.floating):
-            return float(o)
-        if isinstance(o, np.bool_):
-            return bool(o)
-        if isinstance(o, np.ndarray):
-            return o.tolist()
-    except ImportError:  # pragma: no cover
-        pass
-    if isinstance(o, (Path, os.PathLike)):
-        return str(o)
-    if isinstance(o, (set, frozenset, tuple)):
-        return list(o)
-    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
-
-
-def _finite(o: Any) -> Any:
-    """Replace NaN and infinities by None (JSON has no such numbers)."""
-    if isinstance(o, float):
-        return o if math.isfinite(o) else None
-    if isinstance(o, Mapping):
-        return {k: _finite(v) for k, v in o.items()}
-    if isinstance(o, (list, tuple)):
-        return [_finite(v) for v in o]
-    return o
-
-
 def write_results_json(results: Mapping[str, Any], path: str | os.PathLike[str]) -> Path:
     """Write the results dictionary as indented JSON, atomically; NaN/inf become ``null``."""
-    plain = json.loads(json.dumps(results, default=_json_default))
-    text = json.dumps(_finite(plain), indent=2, allow_nan=False)
+    text = json.dumps(plain(results), indent=2, allow_nan=False)
     return atomic_write(path, text + "\n")
 
 

@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 
 from .. import shapes as _shapes
+from .._json import finite as number
 from ..errors import FitError
 from ..likelihood import Model, new_minuit
 
@@ -33,15 +34,6 @@ def shape_spec(shape: Any) -> dict[str, Any]:
     for k in _SHAPE_OPTIONS.get(shape.name, ()):
         out[k] = getattr(shape, k)
     return out
-
-
-def number(x: Any) -> float | None:
-    """A finite float for JSON, else None."""
-    try:
-        x = float(x)
-    except (TypeError, ValueError):
-        return None
-    return x if math.isfinite(x) else None
 
 
 def format_value(v: float, e: float) -> str:

@@ -31,6 +31,7 @@ from typing import Any
 
 import numpy as np
 
+from .._json import plain
 from ..errors import DataWarning, FitError, PeaksiftError
 from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 from . import lee
@@ -403,22 +404,6 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
 
 
 # ------------------------------------------------------------------------ result
-def _clean(v: Any) -> Any:
-    if isinstance(v, (float, np.floating)):
-        return float(v) if math.isfinite(v) else None
-    if isinstance(v, np.ndarray):
-        return [_clean(x) for x in v.tolist()]
-    if isinstance(v, (list, tuple)):
-        return [_clean(x) for x in v]
-    if isinstance(v, dict):
-        return {k: _clean(x) for k, x in v.items()}
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, np.bool_):
-        return bool(v)
-    return v
-
-
 @dataclass(frozen=True, repr=False)
 class ScanResult:
     """Outcome of :func:`scan` (a frozen value).
@@ -499,7 +484,7 @@ class ScanResult:
             "unit": self.unit, "notes": list(self.notes),
             "refit": None if self.refit is None else self.refit.to_dict(),
         }
-        return _clean(d)
+        return plain(d)
 
     # ------------------------------------------------------ look-elsewhere
     def toy_scans(self, toys: int, *, seed: int = 0, workers: int | None = None,
@@ -572,7 +557,7 @@ class ScanResult:
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
                "p_local": float(self.p_local[self.best_index])}
         out.update(res)
-        return _clean(out)
+        return plain(out)
 
     # ------------------------------------------------------------------ plot
     def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None,
