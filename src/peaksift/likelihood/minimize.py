@@ -25,7 +25,7 @@ from typing import Any
 import numpy as np
 
 __all__ = ["Minimum", "covariance", "damped_step", "fisher_scoring", "minimize", "new_minuit",
-           "refine"]
+           "refine", "solve_stacked"]
 
 #: a scaled Hessian with a smaller eigenvalue is treated as singular
 POSDEF_TOL = 1e-10
@@ -198,14 +198,21 @@ def damped_step(hess: np.ndarray, grad: np.ndarray, lam: np.ndarray) -> np.ndarr
     h = hess.copy()
     i = np.arange(p)
     h[:, i, i] += lam[:, None] * (d + floor) + 1e-14 * floor
+    step = -solve_stacked(h, grad)
+    return np.where(np.isfinite(step), step, 0.0)
+
+
+def solve_stacked(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a^-1 b`` for stacked ``a (B, P, P)``, ``b (B, P)``; a singular system gets the
+    least-squares (minimum-norm) solution instead of stopping the whole stack."""
     with np.errstate(all="ignore"):
         try:
-            step = -np.linalg.solve(h, grad[..., None])[..., 0]
+            return np.linalg.solve(a, b[..., None])[..., 0]
         except np.linalg.LinAlgError:
-            step = np.zeros_like(grad)
-            for b in range(h.shape[0]):
+            out = np.empty_like(b, dtype=float)
+            for k in range(a.shape[0]):
                 try:
-                    step[b] = -np.linalg.solve(h[b], grad[b])
+                    out[k] = np.linalg.solve(a[k], b[k])
                 except np.linalg.LinAlgError:
-                    step[b] = 0.0
-    return np.where(np.isfinite(step), step, 0.0)
+                    out[k] = np.linalg.lstsq(a[k], b[k], rcond=None)[0]
+            return out

@@ -56,6 +56,7 @@ import numpy as np
 from .._processes import process_pool, quiet_fork, stop_pool, worker_start
 from ..errors import FitError
 from ..likelihood import binned_nll, damped_step
+from ..likelihood.minimize import solve_stacked
 
 __all__ = ["ScanModel", "ToyBatch", "run_toy_batch", "run_toys", "toy_counts"]
 
@@ -520,7 +521,7 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     with np.errstate(all="ignore"):
         reg = 1e-12 * np.trace(h_eta, axis1=1, axis2=2)[:, None, None] * np.eye(q)
         null_shift = -0.5 * np.einsum("qt,tq->t", g_eta,
-                                      np.linalg.solve(h_eta + reg, g_eta.T[..., None])[..., 0])
+                                      solve_stacked(h_eta + reg, g_eta.T))
     q0 = np.zeros((mcount, t))
     kidx = {pr: k for k, pr in enumerate(pairs)}
     kidx.update({(j, i): k for (i, j), k in list(kidx.items())})
@@ -564,8 +565,10 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     q0 = np.ascontiguousarray(q0.T)
     if refine > 0:
         _refine_maxima(model, n, q0, theta, b, nll_b, refine)
+    # a toy with no event in the used bins has no excess anywhere: q0 = 0 exactly
+    q0[n.sum(axis=1) == 0] = 0.0
     # a toy whose fits failed (non-finite background fit or q0) is marked NaN, not -inf or 0
-    bad = ~np.isfinite(nll_b)[:, None] | ~np.isfinite(q0)
+    bad = (~np.isfinite(nll_b)[:, None] | ~np.isfinite(q0)) & (n.sum(axis=1) > 0)[:, None]
     q0[bad] = np.nan
     return q0
 
