@@ -205,8 +205,13 @@ class Shape:
 
     def bin_fractions(self, edges: Any, params: Sequence[Any],
                       window: tuple[float, float]) -> np.ndarray:
-        """Fraction of the shape in each bin ``[edges[i], edges[i+1]]`` (last axis)."""
-        return np.diff(self.cdf(edges, params, window), axis=-1)
+        """Fraction of the shape in each bin ``[edges[i], edges[i+1]]`` (last axis).
+
+        Never negative: where the density is below the rounding of the CDF (e.g. far below a
+        turn-on) neighbouring CDF values can come out in the wrong order by an ulp, and a
+        negative fraction would make an empty bin's ``n ln(nu)`` undefined.
+        """
+        return np.maximum(np.diff(self.cdf(edges, params, window), axis=-1), 0.0)
 
     def grad_pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
         """Derivatives of :meth:`pdf` with respect to each parameter, stacked on axis 0."""
@@ -267,7 +272,7 @@ class Shape:
         out = []
         for a, b, gc in zip(glo, ghi, gx):
             out.append(np.diff((gc - a) * inv - c * ((b - a) * inv), axis=-1))
-        frac = np.diff(c, axis=-1)
+        frac = np.maximum(np.diff(c, axis=-1), 0.0)  # as in bin_fractions
         return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
 
     def pdf_and_grad(self, x: np.ndarray, params: Sequence[float],
