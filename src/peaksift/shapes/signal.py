@@ -89,6 +89,18 @@ class _Signal(Shape):
         s = [p[names.index(n)] for n in ("sigma", "width") if n in names]
         return max(s)
 
+    def _difference_scales(self, p):
+        # the mass moves the peak across its narrowest width parameter
+        names = self.parameter_names
+        width = None
+        for n in ("sigma", "width"):
+            if n in names:
+                v = np.abs(p[names.index(n)])
+                width = v if width is None else np.minimum(width, v)
+        scales = super()._difference_scales(p)
+        scales[names.index("mass")] = np.maximum(width, 1e-300)
+        return scales
+
 
 class Gaussian(_Signal):
     r"""Gaussian peak.
