@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -149,7 +150,7 @@ def test_normalised_and_cdf_is_integral_of_pdf(name, opts, p):
 
     xs = [61.0, 75.0, 88.0, 91.1, 93.0, 100.0, 119.0] + [t for t in br if W[0] < t < W[1]]
     xs = np.unique(np.round([W[0], *xs, W[1]], 9))
-    ref = np.cumsum([0.0] + [_quad(f, a, b, br) for a, b in zip(xs[:-1], xs[1:])])
+    ref = np.cumsum([0.0] + [_quad(f, a, b, br) for a, b in itertools.pairwise(xs)])
     assert abs(ref[-1] - 1.0) < 1e-9
     np.testing.assert_allclose(s.cdf(xs, p, W), ref, rtol=0, atol=1e-9)
     assert s.cdf(np.array([W[0]]), p, W)[0] == pytest.approx(0.0, abs=1e-15)
