@@ -316,7 +316,8 @@ def test_difficult_background_start_is_recovered(background, density, starts, li
     from iminuit import Minuit
 
     h = _spectrum()
-    r = scan(h, "gaussian", background, 11, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", background, 11, resolution=lambda m: 0.01 * np.asarray(m, float),
+             refit=False)
     n, a, b = h.sumw, h.edges[:-1], h.edges[1:]
     gx, gw = np.polynomial.legendre.leggauss(8)
     nodes = 0.5 * (a + b)[:, None] + 0.5 * (b - a)[:, None] * gx
