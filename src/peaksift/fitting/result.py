@@ -11,14 +11,14 @@ from __future__ import annotations
 
 import html
 import math
-from dataclasses import dataclass, field, fields
-from types import MappingProxyType
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
 from .. import shapes as _shapes
 from .._json import finite as number
+from .._values import FrozenValue
 from ..errors import FitError
 from ..likelihood import Model, new_minuit
 
@@ -46,12 +46,8 @@ def format_value(v: float, e: float) -> str:
     return f"{v:.{digits}f} ± {e:.{digits}f}"
 
 
-def _frozen(d: Any) -> MappingProxyType:
-    return MappingProxyType(dict(d))
-
-
 @dataclass(frozen=True, repr=False, eq=False)
-class FitResult:
+class FitResult(FrozenValue):
     """Outcome of :func:`peaksift.fit` (a frozen value).
 
     Attributes
@@ -128,44 +124,24 @@ class FitResult:
     pulls: np.ndarray
     bounds: Any
     constraints: Any
-    model: Model
+    model: Model = field(compare=False)
     starts_tried: int = 1
     starts_nll: tuple[float, ...] = ()
-    n_calls: int = 0
+    n_calls: int = field(default=0, compare=False)
     unit: str = "GeV"
     minimizer: str = "fisher-scoring"
     gof_note: str = ""
-    cost: Any = field(default=None, repr=False)
+    cost: Any = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
-        for name in ("values", "errors", "flags", "bounds", "constraints"):
-            object.__setattr__(self, name, _frozen(getattr(self, name) or {}))
-        if self.intervals is not None:
-            object.__setattr__(self, "intervals", _frozen(self.intervals))
         for name in ("covariance", "correlations", "edges", "observed", "observed_sumw2",
                      "expected", "pulls"):
-            a = np.array(getattr(self, name), float)
-            a.flags.writeable = False
-            object.__setattr__(self, name, a)
-
-    # ------------------------------------------------------------ comparison
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, FitResult):
-            return NotImplemented
-        for f in fields(self):
-            if f.name in ("model", "cost", "n_calls"):
-                continue
-            a, b = getattr(self, f.name), getattr(other, f.name)
-            if isinstance(a, np.ndarray):
-                if not np.array_equal(a, b, equal_nan=True):
-                    return False
-            elif isinstance(a, float) and isinstance(b, float) and math.isnan(a) and math.isnan(b):
-                continue
-            elif a != b and not _nan_equal(a, b):
-                return False
-        return repr(self.model) == repr(other.model)
-
-    __hash__ = None  # type: ignore[assignment]
+            object.__setattr__(self, name, np.array(getattr(self, name), float))
+        for name in ("values", "errors", "flags", "bounds", "constraints"):
+            object.__setattr__(self, name, dict(getattr(self, name) or {}))
+        if self.intervals is not None:
+            object.__setattr__(self, "intervals", dict(self.intervals))
+        super().__post_init__()
 
     # ---------------------------------------------------------------- summary
     @property
@@ -353,9 +329,3 @@ class FitResult:
 
         return fit_figure(self, path, title=title)
 
-
-def _nan_equal(a: Any, b: Any) -> bool:
-    try:
-        return bool(np.array_equal(np.asarray(a, float), np.asarray(b, float), equal_nan=True))
-    except (TypeError, ValueError):
-        return False

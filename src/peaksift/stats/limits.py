@@ -48,6 +48,7 @@ import numpy as np
 from scipy import optimize, special, stats
 
 from .._json import plain
+from .._values import FrozenValue
 from ..errors import FitError
 from .scan import _prepare_model
 from .toys import ScanModel, bkg_fractions, fit_background, profile_signal
@@ -151,8 +152,8 @@ def poisson_upper_limit(n: int, cl: float = 0.95, background: float = 0.0, *,
 
 
 # --------------------------------------------------------------------- result
-@dataclass(frozen=True, repr=False)
-class LimitResult:
+@dataclass(frozen=True, repr=False, eq=False)
+class LimitResult(FrozenValue):
     """CLs upper limits against mass (a frozen value).
 
     Attributes

@@ -32,6 +32,7 @@ from typing import Any
 import numpy as np
 
 from .._json import plain
+from .._values import FrozenValue
 from ..errors import DataWarning, FitError, PeaksiftError
 from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 from . import lee
@@ -404,8 +405,8 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
 
 
 # ------------------------------------------------------------------------ result
-@dataclass(frozen=True, repr=False)
-class ScanResult:
+@dataclass(frozen=True, repr=False, eq=False)
+class ScanResult(FrozenValue):
     """Outcome of :func:`scan` (a frozen value).
 
     Attributes
