@@ -30,6 +30,8 @@ from ._files import atomic_write
 __all__ = [
     "CAUTION",
     "atomic_write",
+    "fit_settings_text",
+    "format_interval",
     "format_pm",
     "render_html",
     "render_markdown",
@@ -171,6 +173,65 @@ def format_pm(value: Any, error: Any, unit: str = "") -> str:
     return f"{v:.{dec}f} \u00b1 {e:.{dec}f}{u}"
 
 
+def format_interval(value: Any, lower: Any, upper: Any, unit: str = "") -> str:
+    """``value +upper -|lower|`` for an asymmetric (profile-likelihood) interval, rounded to
+    two significant digits of the smaller of the two errors (common practice), e.g.
+    ``152.24 +0.50 -0.55 GeV``.  Without a usable interval: the value alone."""
+    u = f" {unit}" if unit else ""
+    if value is None or not math.isfinite(float(value)):
+        return "n/a"
+    v = float(value)
+    errs = [abs(float(x)) for x in (lower, upper)
+            if x is not None and math.isfinite(float(x)) and float(x) != 0]
+    if not errs:
+        return f"{_num(v)}{u}"
+    dec = max(0, 1 - math.floor(math.log10(min(errs))))
+
+    def side(x: Any) -> str:
+        return "n/a" if x is None or not math.isfinite(float(x)) else f"{abs(float(x)):.{dec}f}"
+
+    return f"{v:.{dec}f} +{side(upper)} -{side(lower)}{u}"
+
+
+def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None:
+    """The fitted mass, width and yield rows with their profile-likelihood intervals where
+    the fit has them, and a row saying what the fit held, constrained or bounded."""
+    iv = fit.get("intervals") or {}
+    wname = fit.get("width_parameter") or "width"
+    which = {"Fitted peak mass": ("peak_mass", "mass", "GeV"),
+             f"Fitted width ({wname})": ("width", wname, "GeV"),
+             "Signal yield": ("signal_yield", "signal_yield", "")}
+    for i, (label, _) in enumerate(rows):
+        if label in which and which[label][1] in iv:
+            key, par, unit = which[label]
+            lo, hi = iv[par]
+            rows[i] = (label, format_interval(_ve(fit.get(key))[0], lo, hi, unit)
+                       + " (profile-likelihood interval)")
+    text = fit_settings_text(fit.get("settings") or {})
+    if text:
+        at = next((i for i, (label, _) in enumerate(rows) if label == "Signal yield"),
+                  len(rows) - 1)
+        rows.insert(at + 1, ("Fit settings", text))
+
+
+def fit_settings_text(st: Mapping[str, Any]) -> str:
+    """What ``fit.settings`` held, constrained or bounded, in words."""
+    tie = st.get("sigma_from_resolution") or {}
+    parts = []
+    for k, v in (st.get("fixed") or {}).items():
+        parts.append(f"{k} fixed to the resolution model, {_num(v)} GeV at "
+                     f"{_num(tie.get('at_mass'), 5)} GeV" if tie and k == "sigma"
+                     else f"{k} fixed at {_num(v, 6)}")
+    for k, c in (st.get("constraints") or {}).items():
+        src = "the resolution model, " if tie and k == "sigma" else ""
+        rel = " (relative, log-normal)" if c.get("kind") == "lognormal" else " (Gaussian)"
+        parts.append(f"{k} constrained to {src}{_num(c.get('center'))} \u00b1 "
+                     f"{_num(c.get('width'), 3)}{rel}")
+    for k, (a, b) in (st.get("bounds") or {}).items():
+        parts.append(f"{k} bounded to [{_num(a)}, {_num(b)}]")
+    return "; ".join(parts)
+
+
 def _ve(d: Any) -> tuple[Any, Any]:
     if isinstance(d, Mapping):
         return d.get("value"), d.get("error")
@@ -205,6 +266,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         ("Signal yield", format_pm(*_ve(fit.get("signal_yield")))),
         ("Background yield (window)", format_pm(*_ve(fit.get("background_yield")))),
     ]
+    _with_intervals(rows, fit)
     gof = fit.get("gof") or {}
     if gof:
         if gof.get("chi2") is None:  # no fit (blinded) or no goodness of fit
