@@ -929,7 +929,7 @@ def _fit_settings(cfg: Config, signal: Any, mass: float, *, hold_mass: bool = Fa
     if hold_mass:
         fixed["mass"] = float(mass)
     wanted: tuple[str, ...] = ()
-    if md.intervals:
+    if md.intervals and fixed.get("signal_yield") != 0.0:  # no signal: its shape is held too
         widths = signal.width_parameters()
         wanted = tuple(k for k in ("mass", widths[0] if widths else "", "signal_yield")
                        if k and k not in fixed)
@@ -1087,7 +1087,9 @@ def _check_fit_dir(target: Path) -> None:
                           "choose another --out")
     if not target.is_dir():
         return
-    names = {p.name for p in target.iterdir()}
+    # a temporary file of an interrupted atomic write (".fit.json.XXXX") is ours too
+    names = {p.name for p in target.iterdir()
+             if not any(p.name.startswith(f".{f}.") for f in FIT_FILES)}
     foreign = sorted(n for n in names if n not in FIT_FILES)
     if foreign:
         raise ConfigError(
