@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -238,3 +239,133 @@ def test_fit_command_prints_the_fit(tiny_data, capsys):
     rc, stdout, _ = _run(capsys, ["fit", str(cfg), "--mass", "100", "--quiet"])
     assert rc == 0
     assert stdout.startswith("FitResult(") and "signal_yield" in stdout and "GoF" in stdout
+
+
+# ----------------------------------------------------------------- peaksift fit --mass M
+DEMO_CONFIG = Path(__file__).resolve().parents[1] / "demo_data" / "search.toml"
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
+
+
+@pytest.fixture(scope="module")
+def demo_fits(tmp_path_factory):
+    """``peaksift fit`` on the demo at 140 and 155 GeV, held and free, and free from 150;
+    each run writes its fit.json and fit.png with --out."""
+    if not DEMO_CONFIG.exists():
+        pytest.skip("demo data not generated")
+    import io
+    from contextlib import redirect_stdout
+
+    base = tmp_path_factory.mktemp("fits")
+    out = {}
+    for mass, hold in ((140, True), (140, False), (155, True), (155, False), (150, False)):
+        d = base / f"m{mass}{'_held' if hold else ''}"
+        buf = io.StringIO()
+        with redirect_stdout(buf):
+            rc = main(["fit", str(DEMO_CONFIG), "--mass", str(mass), "--out", str(d), "--quiet"]
+                      + (["--hold-mass"] if hold else []))
+        assert rc == 0
+        out[mass, hold] = {"dir": d, "stdout": buf.getvalue(),
+                           "json": json.loads((d / "fit.json").read_text())}
+    return out
+
+
+def _values(fit_json: dict) -> dict:
+    return {k: p["value"] for k, p in fit_json["parameters"].items()}
+
+
+@pytest.mark.parametrize("mass", [140, 155])
+def test_fit_holds_the_mass_exactly_and_writes_its_files(demo_fits, demo_nll, mass):
+    from iminuit import Minuit
+
+    from peaksift.fitting import FitResult
+
+    run = demo_fits[mass, True]
+    d = run["json"]
+    assert d["peak_mass"]["value"] == float(mass)  # held: exactly the given mass
+    assert d["parameters"]["mass"]["fixed"] is True
+    assert d["run"]["mass_start"] == mass and d["run"]["mass_held"] is True
+    assert sorted(p.name for p in run["dir"].iterdir()) == ["fit.json", "fit.png"]
+    assert (run["dir"] / "fit.png").read_bytes()[:8] == PNG_SIGNATURE
+    assert FitResult.from_dict(d).peak_mass == float(mass)
+    assert f"held at {mass:g} GeV" in run["stdout"]
+    # outside reference: the NLL written here, at the fitted values, is the fit's minimum,
+    # and MIGRAD on it from there (mass held) finds nothing lower (1e-6 and 5e-3 absolute)
+    nll = demo_nll(d)
+    assert nll(**_values(d)) == pytest.approx(d["nll"], abs=1e-6)
+    mi = Minuit(nll, **_values(d))
+    mi.errordef = 0.5
+    mi.fixed["mass"] = True
+    mi.limits["sigma"] = (1e-3, None)
+    mi.migrad()
+    assert mi.fval > d["nll"] - 5e-3
+    # a held mass cannot beat the free fit (the profile likelihood's minimum)
+    assert d["nll"] >= demo_fits[mass, False]["json"]["nll"] - 1e-6
+
+
+@pytest.mark.parametrize("mass", [140, 155])
+def test_fit_starts_at_the_mass_and_reports_intervals(demo_fits, demo_nll, mass):
+    from iminuit import Minuit
+
+    run = demo_fits[mass, False]
+    d = run["json"]
+    assert d["run"]["settings"]["start"]["mass"] == mass and d["run"]["mass_held"] is False
+    assert d["parameters"]["mass"]["fixed"] is False
+    assert f"started at {mass:g} GeV" in run["stdout"]
+    assert set(d["intervals"]) == {"mass", "sigma", "signal_yield"}
+    # the summary line gives the interval as value +upper -lower, e.g. 152.24 +0.53 -0.53 GeV
+    line = next(ln for ln in run["stdout"].splitlines() if ln.strip().startswith("fitted mass"))
+    assert re.search(r"\d+\.\d+ \+\d+\.\d+ -\d+\.\d+ GeV", line), line
+    # outside reference: MIGRAD on the NLL written here, from the fitted values, stays
+    # at the same minimum (5e-3 in NLL, a tenth of the error in mass)
+    nll = demo_nll(d)
+    mi = Minuit(nll, **_values(d))
+    mi.errordef = 0.5
+    mi.limits["sigma"] = (1e-3, None)
+    mi.migrad()
+    assert mi.fval > d["nll"] - 5e-3
+    assert abs(mi.values["mass"] - d["peak_mass"]["value"]) < 0.1 * d["peak_mass"]["error"]
+
+
+def test_fit_started_in_a_local_minimum_says_so(demo_fits, demo_nll):
+    """Started at 150 GeV the demo's free fit settles in a minimum above the one reached
+    from 155 GeV; the note says so, with the difference of -2 ln L that the NLL written
+    here gives between the two fits' values (1e-3 absolute)."""
+    local, best = demo_fits[150, False]["json"], demo_fits[155, False]["json"]
+    nll = demo_nll(local)
+    gap = 2.0 * (nll(**_values(local)) - nll(**_values(best)))
+    assert gap > 0.1
+    notes = [n for n in local["notes"] if "lower minimum" in n]
+    assert len(notes) == 1
+    assert float(re.search(r"lower by ([0-9.]+)", notes[0]).group(1)) == pytest.approx(
+        gap, abs=1e-3 + 5e-3 * gap)  # the note prints three significant digits
+    assert not any("lower minimum" in n for n in best["notes"])
+
+
+def test_fit_out_refuses_a_directory_of_other_files(tiny_data, capsys, tmp_path):
+    cfg = _config(tiny_data)
+    foreign = tmp_path / "mine"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("keep me")
+    rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", "100", "--out", str(foreign)])
+    assert rc == 2 and "did not write" in _one_line(err)
+    assert sorted(p.name for p in foreign.iterdir()) == ["notes.txt"]
+    # a fit.json that peaksift fit did not write is not replaced either
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "fit.json").write_text("{}")
+    rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", "100", "--out", str(other)])
+    assert rc == 2 and "not written by peaksift fit" in _one_line(err)
+    assert (other / "fit.json").read_text() == "{}"
+    # a previous peaksift fit output is replaced; a file path is refused
+    mine = tmp_path / "fits"
+    assert main(["fit", str(cfg), "--mass", "100", "--out", str(mine), "--quiet"]) == 0
+    first = json.loads((mine / "fit.json").read_text())
+    assert main(["fit", str(cfg), "--mass", "120", "--out", str(mine), "--quiet",
+                 "--hold-mass"]) == 0
+    second = json.loads((mine / "fit.json").read_text())
+    assert first["run"]["mass_start"] == 100 and second["peak_mass"]["value"] == 120.0
+    assert sorted(p.name for p in mine.iterdir()) == ["fit.json", "fit.png"]
+    capsys.readouterr()
+    rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", "100", "--out",
+                               str(foreign / "notes.txt")])
+    assert rc == 2 and "not a directory" in _one_line(err)

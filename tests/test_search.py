@@ -172,6 +172,36 @@ def test_summary_printed(run):
     assert str(run["out"]) in out
 
 
+def test_profile_likelihood_intervals_by_default(run, demo_nll):
+    """The free fit's mass, width and yield intervals (MINOS-type) in results.json, the
+    summary and the report; the mass interval's ends are where the profile likelihood of the
+    NLL written in the tests (conftest ``demo_nll``) rises by 1/2 (Wilks 1938: 68.3 % for one
+    parameter), to 0.02 in -2 ln L."""
+    import re
+
+    from iminuit import Minuit
+
+    fit = run["results"]["fit"]
+    iv = fit["intervals"]
+    assert set(iv) == {"mass", "sigma", "signal_yield"}
+    assert all(lo < 0 < hi for lo, hi in iv.values())
+    assert fit["settings"]["intervals"] == ["mass", "sigma", "signal_yield"]
+    assert fit["settings"]["start"]["mass"] == run["results"]["best"]["mass"]
+    nll = demo_nll(fit)
+    values = {k: p["value"] for k, p in fit["parameters"].items()}
+    for side in iv["mass"]:
+        mi = Minuit(nll, **{**values, "mass": values["mass"] + side})
+        mi.errordef = 0.5
+        mi.fixed["mass"] = True
+        mi.limits["sigma"] = (1e-3, None)
+        mi.migrad()
+        assert 2.0 * (mi.fval - fit["nll"]) == pytest.approx(1.0, abs=0.02)
+    line = next(ln for ln in run["stdout"].splitlines() if ln.strip().startswith("fitted mass"))
+    assert re.search(r"\d+\.\d+ \+\d+\.\d+ -\d+\.\d+ GeV$", line), line
+    report = (run["out"] / "report.md").read_text()
+    assert "(profile-likelihood interval)" in report
+
+
 class _Images(HTMLParser):
     def __init__(self) -> None:
         super().__init__()

@@ -9,6 +9,7 @@ numpy scalars, strings -- and returns text; a missing or non-finite number is ``
 * :func:`number`        -- a plain number (4 significant digits; ints with a thousands mark).
 * :func:`fixed`         -- a fixed number of decimals (masses, Z).
 * :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits.
+* :func:`format_interval` -- ``value +upper -lower`` for a profile-likelihood interval.
 * :func:`p_value`       -- a p-value; below the smallest normal double (2.2e-308), where the
   float is 0, it is written as a power of ten from its ``log10_p``: ``10^-2173.9``.
 * :func:`significance`  -- ``Z sigma (p = ...)`` for the local or the global result of a
@@ -24,7 +25,8 @@ from typing import Any
 
 from ._json import finite
 
-__all__ = ["NA", "as_finite", "fixed", "format_pm", "number", "p_value", "significance"]
+__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "number", "p_value",
+           "significance"]
 
 #: what every function prints for a missing or non-finite number
 NA = "n/a"
@@ -127,3 +129,23 @@ def significance(best: Mapping[str, Any] | None, which: str = "local", *,
             inner += (f"; {number(100 * cl, 3)}% CL bound" if cl is not None else "") + \
                 (f", no toy of {int(n)} reached the observed q0" if n else "")
     return f"{ztxt} ({inner})"
+
+
+def format_interval(value: Any, lower: Any, upper: Any, unit: str = "") -> str:
+    """``value +upper -|lower|`` for an asymmetric (profile-likelihood) interval, rounded to
+    two significant digits of the smaller of the two errors (common practice), e.g.
+    ``152.24 +0.50 -0.55 GeV``.  Without a usable interval: the value alone."""
+    u = f" {unit}" if unit else ""
+    v = as_finite(value)
+    if v is None:
+        return NA
+    errs = [abs(x) for x in (as_finite(lower), as_finite(upper)) if x]
+    if not errs:
+        return f"{number(v)}{u}"
+    dec = max(0, 1 - math.floor(math.log10(min(errs))))
+
+    def side(x: Any) -> str:
+        f = as_finite(x)
+        return NA if f is None else f"{abs(f):.{dec}f}"
+
+    return f"{v:.{dec}f} +{side(upper)} -{side(lower)}{u}"

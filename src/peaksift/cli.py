@@ -6,7 +6,8 @@ Sub-commands::
     peaksift demo OUTDIR            write the demo scenario (events, truth, ready config)
     peaksift search CONFIG          the whole search (spectrum, fit, scan, significance, limits, report)
     peaksift spectrum CONFIG        only the selected spectrum: histogram file and figure
-    peaksift fit CONFIG --mass M    one signal-plus-background fit at a chosen mass
+    peaksift fit CONFIG --mass M    one signal-plus-background fit started (--hold-mass: held)
+                                    at a chosen mass; --out DIR writes fit.json and fit.png
 
 A user's mistake (a :class:`~peaksift.errors.PeaksiftError`) prints one line on stderr and
 exits with status 2; no traceback.
@@ -79,6 +80,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     if not fit.get("valid"):
         lines.append(_row("fit status", "INVALID: " + "; ".join(
             str(x) for x in fit.get("problems") or [])))
+    _fit_lines(lines, fit)
     km = [k for k in d.get("known_matches") or [] if isinstance(k, Mapping)]
     lines.append(_row("known particles", ", ".join(
         f"{k.get('name')} ({fixed(k.get('distance_sigma'), 1)} sigma)" for k in km)
@@ -97,6 +99,30 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         lines.append(_row("outputs", str(part(d, "outputs").get("dir"))))
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _fit_lines(lines: list[str], fit: dict) -> None:
+    """Give the fitted mass, width and yield lines their profile-likelihood intervals
+    (``152.24 +0.50 -0.55 GeV``) where the fit has them, and say what the fit held or
+    constrained."""
+    from ._format import format_interval
+    from .report import fit_settings_text
+
+    iv = fit.get("intervals") or {}
+    wname = fit.get("width_parameter") or "width"
+    rows = {"fitted mass": ("peak_mass", "mass", "GeV"),
+            f"fitted width ({wname})": ("width", wname, "GeV"),
+            "signal yield": ("signal_yield", "signal_yield", "")}
+    for i, line in enumerate(lines):
+        for label, (key, par, unit) in rows.items():
+            if line.startswith(_row(label, "")) and par in iv:
+                value = (fit.get(key) or {}).get("value")
+                lines[i] = _row(label, format_interval(value, *iv[par], unit))
+    held = fit_settings_text(fit.get("settings") or {})
+    if held:
+        at = next((i for i, ln in enumerate(lines) if ln.startswith(_row("signal yield", ""))),
+                  len(lines) - 1)
+        lines.insert(at + 1, _row("fit settings", held))
 
 
 def _cmd_search(args: argparse.Namespace) -> int:
@@ -139,11 +165,25 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from .search import run_fit
+    from ._format import format_interval
+    from .search import FIT_FILES, run_fit
 
-    fr = run_fit(args.config, args.mass, engine=args.engine, unblind=args.unblind,
-                 progress=_progress_wanted(args))
+    fr = run_fit(args.config, args.mass, hold_mass=args.hold_mass, out=args.out,
+                 engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args))
     print(repr(fr))
+    print(_row("mass", f"held at {args.mass:g} GeV" if args.hold_mass
+               else f"started at {args.mass:g} GeV"))
+    fit = fr.to_dict()
+    for label, key, par, unit in (("fitted mass", "peak_mass", "mass", "GeV"),
+                                  (f"fitted width ({fr.width_parameter})", "width",
+                                   fr.width_parameter, "GeV"),
+                                  ("signal yield", "signal_yield", "signal_yield", "")):
+        if fr.intervals and par in fr.intervals:
+            print(_row(label, format_interval(fit[key]["value"], *fr.intervals[par], unit)
+                       + "  (profile likelihood)"))
+    if args.out is not None:
+        for name in FIT_FILES:
+            print(_row("written", str(Path(args.out) / name)))
     return 0
 
 
@@ -201,7 +241,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     f = sub.add_parser("fit", help="one signal-plus-background fit at a chosen mass")
     f.add_argument("config")
-    f.add_argument("--mass", type=float, required=True, help="starting peak mass in GeV")
+    f.add_argument("--mass", type=float, required=True,
+                   help="peak mass in GeV where the fit starts (the mass then floats)")
+    f.add_argument("--hold-mass", action="store_true",
+                   help="hold the peak mass fixed at --mass instead of letting it float")
+    f.add_argument("--out", default=None,
+                   help="directory for the fit's JSON and figure (new, empty, or a previous "
+                        "`peaksift fit` output)")
     f.add_argument("--unblind", action="store_true", help="fit even if the config is blinded")
     engine_opt(f)
     f.set_defaults(handler=_cmd_fit)

@@ -11,7 +11,8 @@ Sections (all optional except ``input`` and ``spectrum``)::
     [objects]       which collection(s) to pair, and cut expressions on them
     [pairing]       charge requirement, which pair(s) each event contributes
     [spectrum]      the fit window and its binning
-    [model]         signal and background shapes, binned or unbinned fit
+    [model]         signal and background shapes, binned or unbinned fit, parameters of
+                    the free fit fixed, constrained or bounded, intervals
     [model.resolution]  the detector mass resolution used by the scan
     [scan]          the grid of mass hypotheses
     [significance]  global significance method (upcrossings or toys), toys, seed
@@ -37,7 +38,7 @@ from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
-from .errors import ConfigError, closest
+from .errors import ConfigError, FitError, closest
 
 if sys.version_info >= (3, 11):  # pragma: no cover - version switch
     import tomllib as _toml
@@ -136,6 +137,32 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("fit", "choice", "auto",
              "Binned or unbinned likelihood; `auto` lets the fitter choose.",
              choices=("auto", "binned", "unbinned")),
+        _Key("fix", "values", {},
+             "Parameters of the free fit held at a value, by name, e.g. "
+             "`{ alpha_low = 1.2, n_low = 4.0 }`. Names: the parameters of `model.signal` "
+             "and `model.background`, `signal_yield` and `background_yield`."),
+        _Key("constrain", "constraints", {},
+             "Parameters of the free fit constrained by an outside measurement, by name: "
+             "`{ width = { kind = \"gaussian\", center = 30.0, width = 3.0 } }` (`kind`: "
+             "{constraint_kinds}; default gaussian). For `lognormal`, `center` is the median "
+             "and `width` the relative uncertainty. `[center, width]` is short for a Gaussian."),
+        _Key("bounds", "ranges", {},
+             "Lower and upper bounds of free-fit parameters, by name, replacing the defaults: "
+             "`{ width = [0.0, 100.0] }`."),
+        _Key("sigma_from_resolution", "choice", "free",
+             "Tie the Gaussian `sigma` of the signal (gaussian, crystalball, voigt) to "
+             "`model.resolution` at the fit's starting mass: `fixed` to it, or `constrained` "
+             "by a Gaussian of relative width `resolution_uncertainty`; `free` floats it. "
+             "Tie it to measure a natural width with a Voigt signal.",
+             choices=("free", "fixed", "constrained")),
+        _Key("resolution_uncertainty", "float", None,
+             "Relative uncertainty of the resolution model, the width of the constraint when "
+             "`sigma_from_resolution = \"constrained\"` (e.g. 0.1 for 10%).",
+             lo=0.0, lo_open=True, hi=1.0, nullable=True),
+        _Key("intervals", "bool", True,
+             "Profile-likelihood (MINOS-type) intervals for the peak mass, its width and the "
+             "signal yield of the free fit (in results.json `fit.intervals`, the summary and "
+             "the report); `false` leaves only the symmetric errors."),
     ),
     "model.resolution": (
         _Key("relative", "float", None,
@@ -345,6 +372,12 @@ class ModelConfig:
     signal_options: Mapping[str, Any] = field(default_factory=dict)
     background_options: Mapping[str, Any] = field(default_factory=dict)
     fit: str = "auto"
+    fix: Mapping[str, float] = field(default_factory=dict)
+    constrain: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+    bounds: Mapping[str, tuple[float, float]] = field(default_factory=dict)
+    sigma_from_resolution: str = "free"
+    resolution_uncertainty: float | None = None
+    intervals: bool = True
     resolution: ResolutionConfig = field(default_factory=ResolutionConfig)
 
 
@@ -637,6 +670,11 @@ def _value(path: str, key: _Key, v: Any, where: str) -> Any:
         if bad:
             raise ConfigError(f"{where}: {path} must hold finite numbers, got {bad[0]!r}")
         return tuple(vals)
+    if k in ("values", "ranges", "constraints"):
+        if not isinstance(v, Mapping):
+            raise ConfigError(f"{where}: {path} must be a table of parameter names, e.g. "
+                              f"{_SETTING_EXAMPLE[k]}, got {_type_name(v)}")
+        return {str(n): _parameter_setting(f"{path}.{n}", k, x, where) for n, x in v.items()}
     if k == "table":
         if not isinstance(v, Mapping):
             raise ConfigError(
@@ -661,6 +699,134 @@ def _value(path: str, key: _Key, v: Any, where: str) -> Any:
             raise ConfigError(f"{where}: {path}: masses must increase from row to row")
         return tuple(rows)
     raise AssertionError(k)  # pragma: no cover - schema kinds are closed
+
+
+_SETTING_EXAMPLE = {"values": "{ sigma = 2.0 }", "ranges": "{ width = [0.0, 100.0] }",
+                    "constraints": "{ width = { kind = \"gaussian\", center = 30.0, width = 3.0 } }"}
+
+
+def _constraint_kinds() -> tuple[str, ...]:
+    """The constraint kinds a config may name (``peaksift.likelihood.CONSTRAINT_KINDS``,
+    imported only when needed: the likelihood layer is slow to import)."""
+    from .likelihood import CONSTRAINT_KINDS
+
+    return tuple(CONSTRAINT_KINDS)
+
+
+def _parameter_setting(path: str, kind: str, v: Any, where: str) -> Any:
+    """One entry of ``model.fix`` (a number), ``model.bounds`` (``[low, high]``) or
+    ``model.constrain`` (``{kind, center, width}`` or ``[center, width]``), checked."""
+    if kind == "values":
+        x = float(_number(path, v, where, integer=False))
+        if not math.isfinite(x):
+            raise ConfigError(f"{where}: {path} must be a finite number, got {v!r}")
+        return x
+    if kind == "ranges":
+        if not isinstance(v, (list, tuple)) or len(v) != 2:
+            raise ConfigError(f"{where}: {path} must be [low, high], got {v!r}")
+        lo = float(_number(f"{path}[0]", v[0], where, integer=False))
+        hi = float(_number(f"{path}[1]", v[1], where, integer=False))
+        if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
+            raise ConfigError(f"{where}: {path} = {list(v)!r} must have finite low < high")
+        return (lo, hi)
+    if isinstance(v, (list, tuple)):
+        if len(v) != 2:
+            raise ConfigError(f"{where}: {path} must be [center, width] (Gaussian) or "
+                              f"{{ kind = ..., center = ..., width = ... }}, got {v!r}")
+        v = {"kind": "gaussian", "center": v[0], "width": v[1]}
+    if not isinstance(v, Mapping):
+        raise ConfigError(f"{where}: {path} must be {{ kind = ..., center = ..., width = ... }} "
+                          f"or [center, width], got {_type_name(v)} ({v!r})")
+    fields_ = ("kind", "center", "width")
+    for f in v:
+        if f not in fields_:
+            hint = closest(f, fields_)
+            raise ConfigError(f"{where}: unknown key {path}.{f}"
+                              + (f"; did you mean {path}.{hint}?" if hint else "")
+                              + " (a constraint has kind, center and width)")
+    kinds = _constraint_kinds()
+    kind_ = v.get("kind", "gaussian")
+    if kind_ not in kinds:
+        hint = closest(str(kind_), kinds)
+        raise ConfigError(f"{where}: {path}.kind = {kind_!r} is not allowed"
+                          + (f"; did you mean {hint!r}?" if hint else "")
+                          + f" (choose one of {', '.join(map(repr, kinds))})")
+    for f in ("center", "width"):
+        if f not in v:
+            raise ConfigError(f"{where}: {path}.{f} is required (a {kind_} constraint needs "
+                              "center and width)")
+    center = float(_number(f"{path}.center", v["center"], where, integer=False))
+    width = float(_number(f"{path}.width", v["width"], where, integer=False))
+    from .likelihood import Constraint
+
+    try:  # the likelihood layer's own rules (finite, positive width, positive median)
+        Constraint(kind_, center, width)
+    except FitError as exc:
+        raise ConfigError(f"{where}: {path}: {' '.join(str(exc).split())}") from None
+    return {"kind": kind_, "center": center, "width": width}
+
+
+def _check_fit_parameters(md: dict[str, Any], window: tuple[float, float], where: str) -> None:
+    """``model.fix`` / ``constrain`` / ``bounds`` name parameters of the free fit, each at
+    most once across fix and the others, and ``sigma_from_resolution`` has a sigma to tie."""
+    try:
+        from . import shapes
+        from .likelihood import Model
+
+        sig = shapes.get(md["signal"], **dict(md["signal_options"]))
+        bkg = shapes.get(md["background"], **dict(md["background_options"]))
+        names = list(Model(sig, bkg, window).parameter_names)
+    except (ImportError, AttributeError):  # models layer absent: the fit itself reports it
+        return
+    shape_bounds = {p.name: (p.lower, p.upper) for p in [*sig.parameters, *bkg.parameters]}
+    what = f"{md['signal']} + {md['background']}"
+    for key in ("fix", "constrain", "bounds"):
+        for n in md[key]:
+            if n not in names:
+                hint = closest(n, names)
+                raise ConfigError(
+                    f"{where}: model.{key}.{n}: the free fit has no parameter {n!r}"
+                    + (f"; did you mean model.{key}.{hint}?" if hint else "")
+                    + f" (parameters of {what}: {', '.join(names)})")
+    for n, v in md["fix"].items():
+        for key in ("constrain", "bounds"):
+            if n in md[key]:
+                raise ConfigError(f"{where}: model.fix.{n} and model.{key}.{n} are both set; a "
+                                  f"fixed parameter is neither constrained nor bounded: "
+                                  f"remove one of them")
+        lo, hi = shape_bounds.get(n, (-math.inf, math.inf))
+        if not lo <= v <= hi:
+            raise ConfigError(f"{where}: model.fix.{n} = {v:g} lies outside the range of "
+                              f"{n} [{lo:g}, {hi:g}]")
+    for n, c in md["constrain"].items():
+        lo, hi = md["bounds"].get(n, shape_bounds.get(n, (-math.inf, math.inf)))
+        if not lo <= c["center"] <= hi:
+            raise ConfigError(f"{where}: model.constrain.{n}.center = {c['center']:g} lies "
+                              f"outside the bounds of {n} [{lo:g}, {hi:g}]")
+    tie = md["sigma_from_resolution"]
+    unc = md["resolution_uncertainty"]
+    if tie == "free":
+        if unc is not None:
+            raise ConfigError(f"{where}: model.resolution_uncertainty is set but "
+                              "model.sigma_from_resolution = \"free\"; set it to "
+                              "\"constrained\" or remove resolution_uncertainty")
+        return
+    if "sigma" not in [p.name for p in sig.parameters]:
+        raise ConfigError(f"{where}: model.sigma_from_resolution = {tie!r}, but model.signal = "
+                          f"{md['signal']!r} has no Gaussian sigma; use gaussian, crystalball "
+                          "or voigt, or set sigma_from_resolution = \"free\"")
+    for key in ("fix", "constrain") + (("bounds",) if tie == "fixed" else ()):
+        if "sigma" in md[key]:
+            raise ConfigError(f"{where}: model.{key}.sigma and model.sigma_from_resolution = "
+                              f"{tie!r} both set sigma; remove one of them")
+    if tie == "constrained" and unc is None:
+        raise ConfigError(f"{where}: model.sigma_from_resolution = \"constrained\" needs "
+                          "model.resolution_uncertainty, the relative width of the constraint "
+                          "(e.g. 0.1 for 10%)")
+    if tie == "fixed" and unc is not None:
+        raise ConfigError(f"{where}: model.resolution_uncertainty is set but "
+                          "model.sigma_from_resolution = \"fixed\" uses no uncertainty; set "
+                          "it to \"constrained\" or remove resolution_uncertainty")
 
 
 def _section(name: str, raw: Any, where: str) -> dict[str, Any]:
@@ -711,8 +877,6 @@ def _check_shape(path: str, name: str, where: str, kind: str,
             + f" (available: {', '.join(names)})"
         )
     if options:
-        from .errors import FitError
-
         for k, v in options.items():  # every shape option is a number (start, order, ...)
             if isinstance(v, bool) or not isinstance(v, (int, float)):
                 raise ConfigError(f"{where}: {path}_options.{k} must be a number, got {v!r}")
@@ -845,6 +1009,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
     _check_shape("model.signal", md["signal"], where, "signal", md["signal_options"])
     _check_shape("model.background", md["background"], where, "background",
                  md["background_options"])
+    _check_fit_parameters(md, (lo, hi), where)
     if sc["signal"]:
         _check_shape("scan.signal", sc["signal"], where, "signal")
 
@@ -979,7 +1144,8 @@ def _allowed_text(key: _Key) -> str:
     kinds = {"str": "string", "int": "integer", "float": "number", "bool": "true/false",
              "window": "[low, high] GeV", "paths": "string or list of strings",
              "strings": "list of strings", "floats": "list of numbers", "table": "table",
-             "pairs": "[[mass, sigma], ...]"}
+             "pairs": "[[mass, sigma], ...]", "values": "table of numbers",
+             "ranges": "table of [low, high]", "constraints": "table of constraints"}
     base = kinds.get(key.kind, key.kind)
     return base + (f", {rng}" if rng else "")
 
@@ -993,7 +1159,8 @@ def reference_markdown() -> str:
         lines.append("| key | default | allowed | meaning |")
         lines.append("|---|---|---|---|")
         for k in keys:
-            doc = k.doc.replace("|", "\\|")
+            doc = k.doc.replace("{constraint_kinds}", ", ".join(
+                f"`{c}`" for c in _constraint_kinds())).replace("|", "\\|")
             lines.append(f"| `{sec}.{k.name}` | `{_default_text(k)}` | {_allowed_text(k)} | {doc} |")
         lines.append("")
     return "\n".join(lines)

@@ -29,12 +29,22 @@ from pathlib import Path
 from typing import Any
 
 from ._files import atomic_write
-from ._format import as_finite, fixed, format_pm, number, p_value, significance
+from ._format import (
+    as_finite,
+    fixed,
+    format_interval,
+    format_pm,
+    number,
+    p_value,
+    significance,
+)
 from ._json import plain
 
 __all__ = [
     "CAUTION",
     "atomic_write",
+    "fit_settings_text",
+    "format_interval",
     "format_pm",
     "render_html",
     "render_markdown",
@@ -117,6 +127,45 @@ def _num(x: Any, digits: int = 4) -> str:
     return number(x, digits, sep="\u2009")
 
 
+def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None:
+    """The fitted mass, width and yield rows with their profile-likelihood intervals where
+    the fit has them, and a row saying what the fit held, constrained or bounded."""
+    iv = fit.get("intervals") or {}
+    wname = fit.get("width_parameter") or "width"
+    which = {"Fitted peak mass": ("peak_mass", "mass", "GeV"),
+             f"Fitted width ({wname})": ("width", wname, "GeV"),
+             "Signal yield": ("signal_yield", "signal_yield", "")}
+    for i, (label, _) in enumerate(rows):
+        if label in which and which[label][1] in iv:
+            key, par, unit = which[label]
+            lo, hi = iv[par]
+            rows[i] = (label, format_interval(_ve(fit.get(key))[0], lo, hi, unit)
+                       + " (profile-likelihood interval)")
+    text = fit_settings_text(fit.get("settings") or {})
+    if text:
+        at = next((i for i, (label, _) in enumerate(rows) if label == "Signal yield"),
+                  len(rows) - 1)
+        rows.insert(at + 1, ("Fit settings", text))
+
+
+def fit_settings_text(st: Mapping[str, Any]) -> str:
+    """What ``fit.settings`` held, constrained or bounded, in words."""
+    tie = st.get("sigma_from_resolution") or {}
+    parts = []
+    for k, v in (st.get("fixed") or {}).items():
+        parts.append(f"{k} fixed to the resolution model, {_num(v)} GeV at "
+                     f"{_num(tie.get('at_mass'), 5)} GeV" if tie and k == "sigma"
+                     else f"{k} fixed at {_num(v, 6)}")
+    for k, c in (st.get("constraints") or {}).items():
+        src = "the resolution model, " if tie and k == "sigma" else ""
+        rel = " (relative, log-normal)" if c.get("kind") == "lognormal" else " (Gaussian)"
+        parts.append(f"{k} constrained to {src}{_num(c.get('center'))} \u00b1 "
+                     f"{_num(c.get('width'), 3)}{rel}")
+    for k, (a, b) in (st.get("bounds") or {}).items():
+        parts.append(f"{k} bounded to [{_num(a)}, {_num(b)}]")
+    return "; ".join(parts)
+
+
 def _ve(d: Any) -> tuple[Any, Any]:
     if isinstance(d, Mapping):
         return d.get("value"), d.get("error")
@@ -137,6 +186,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         ("Signal yield", format_pm(*_ve(fit.get("signal_yield")))),
         ("Background yield (window)", format_pm(*_ve(fit.get("background_yield")))),
     ]
+    _with_intervals(rows, fit)
     gof = fit.get("gof") or {}
     if gof:
         if gof.get("chi2") is None:  # no fit (blinded) or no goodness of fit
