@@ -176,12 +176,16 @@ def _fit_dict(fr: Any) -> dict[str, Any]:
 def _in_window(col: Any, cfg: Config, hidden: tuple[float, float] | None = None) -> int:
     """Candidates (not weights) with a mass inside the fit window; with ``hidden`` (the mass
     range of the blinded bins) only those outside it: the sidebands."""
-    lo, hi = cfg.spectrum.window
-    m = np.asarray(col.window_mass, dtype=float)
-    keep = (m >= lo) & (m < hi)
-    if hidden is not None:
-        keep &= ~((m >= hidden[0]) & (m < hidden[1]))
-    return int(np.count_nonzero(keep))
+    from .histogram import MassHistogram
+
+    # counted by the spectrum's own bins, so the edge rule is the histogram's
+    h = MassHistogram.from_masses(np.asarray(col.window_mass, dtype=float),
+                                  edges=cfg.spectrum.edges)
+    counts = h.sumw
+    if hidden is not None:  # the hidden range is a union of whole bins
+        c = h.centers
+        counts = counts[~((c > hidden[0]) & (c < hidden[1]))]
+    return round(float(counts.sum()))
 
 
 def _hidden(blinding: Mapping[str, Any]) -> tuple[float, float] | None:
@@ -397,14 +401,13 @@ def _keyed_input_error(cfg: Config, exc: InputError) -> InputError:
 
 
 def _fill(col: Any, cfg: Config, lo: float, hi: float, nbins: int) -> Any:
-    from .histogram import MassHistogram
+    from .histogram import MassHistogram, in_range
 
     m = np.asarray(col.window_mass, dtype=float)
     w = np.asarray(col.window_weight, dtype=float) if cfg.input.weights else None
-    h = MassHistogram(bins=nbins, range=(lo, hi))
-    sel = (m >= lo) & (m < hi)
-    h.fill(m[sel], None if w is None else w[sel])
-    return h
+    sel = in_range(m, lo, hi)  # the collected masses may span a wider (union) window
+    return MassHistogram.from_masses(m[sel], None if w is None else w[sel], bins=nbins,
+                                     range=(lo, hi))
 
 
 def _shape(name: str, options: Mapping[str, Any]) -> Any:
@@ -895,9 +898,11 @@ def _fit_data(cfg: Config, col: Any, hist: Any) -> tuple[bool | None, Any]:
     binned = {"auto": None, "binned": True, "unbinned": False}[cfg.model.fit]
     if binned is not False:
         return binned, hist
+    from .histogram import in_range
+
     lo, hi = cfg.spectrum.window
     m = np.asarray(col.window_mass, dtype=float)
-    sel = (m >= lo) & (m < hi)
+    sel = in_range(m, lo, hi)
     if cfg.input.weights and hist.is_weighted:
         return binned, (m[sel], np.asarray(col.window_weight, dtype=float)[sel])
     return binned, m[sel]
