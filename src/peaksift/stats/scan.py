@@ -111,21 +111,16 @@ class _Spectrum:
 
 
 def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
+    """The window's bins as the likelihood sees them, from a MassHistogram or from masses.
+
+    Masses are histogrammed with :meth:`MassHistogram.from_masses` on the window (default:
+    their range) and then go the histogram's way, so an array and the histogram built from
+    it give the same spectrum; the edge rule is the histogram's (a mass equal to the top of
+    the window is in the last bin)."""
     from ..histogram import MassHistogram
 
     if isinstance(data, MassHistogram):
-        e = np.asarray(data.edges, float)
-        lo, hi = (e[0], e[-1]) if window is None else (float(window[0]), float(window[1]))
-        tol = 1e-9 * (e[-1] - e[0])
-        keep = np.flatnonzero((e[:-1] >= lo - tol) & (e[1:] <= hi + tol))
-        if keep.size == 0:
-            raise FitError(f"scan window ({lo:g}, {hi:g}) holds no complete bin of the "
-                           f"histogram ({e[0]:g}-{e[-1]:g}); choose a window inside it")
-        i0, i1 = keep[0], keep[-1] + 1
-        sumw = np.asarray(data.sumw, float)[i0:i1]
-        sumw2 = np.asarray(data.sumw2, float)[i0:i1]
-        unit = data.unit
-        edges = e[i0 : i1 + 1]
+        hist = data if window is None else data.restrict(window)
     else:
         if isinstance(data, tuple) and len(data) == 2:
             x, w = (np.asarray(v, float).ravel() for v in data)
@@ -137,35 +132,32 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
             raise FitError("scan: masses contain NaN or infinite values; drop them first")
         lo, hi = (float(x.min()), float(x.max())) if window is None else (float(window[0]),
                                                                         float(window[1]))
+        if not hi > lo:
+            raise FitError(f"scan: the window ({lo:g}, {hi:g}) is empty; give window=(lo, hi) "
+                           "with lo < hi")
         if bins is None:
             nb = int(np.clip(math.ceil((hi - lo) / (0.25 * min_sigma())), 50, 2000))
         else:
             nb = int(bins)
-        edges = np.linspace(lo, hi, nb + 1)
-        sel = (x >= lo) & (x <= hi)
-        idx = np.clip(np.searchsorted(edges, x[sel], side="right") - 1, 0, nb - 1)
-        ws = None if w is None else w[sel]
-        sumw = np.bincount(idx, weights=ws, minlength=nb).astype(float)
-        sumw2 = sumw.copy() if w is None else np.bincount(idx, weights=ws * ws, minlength=nb)
-        unit = "GeV"
+        hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
+    sumw = np.asarray(hist.sumw, float)
+    edges = np.asarray(hist.edges, float)
     if not (np.all(np.isfinite(sumw)) and np.all(sumw >= 0)):
         raise FitError("scan: bin contents in the window must be finite and non-negative")
     if sumw.sum() <= 0:
         raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
     scale = 1.0
     bin_scale = None
-    if not np.allclose(sumw, sumw2):
-        from ..fitting import _scale
-
-        scale = float(sumw.sum() / sumw2.sum())
-        bin_scale = np.asarray(_scale(sumw, sumw2), float)
+    if not np.allclose(sumw, hist.sumw2):
+        scale = float(sumw.sum() / hist.sumw2.sum())
+        bin_scale = hist.scaled_poisson_factors()
         warnings.warn(
             f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
             f"k_i sum(w) per bin, k_i = sum(w)/sum(w^2) of the bin (overall {scale:.4g}); "
             f"an approximation for unequal weights (exact for equal ones)",
             DataWarning, stacklevel=3)
     return _Spectrum(edges, sumw * (1.0 if bin_scale is None else bin_scale), scale,
-                     (float(edges[0]), float(edges[-1])), unit, bin_scale)
+                     (float(edges[0]), float(edges[-1])), hist.unit, bin_scale)
 
 
 def _blind_mask(edges: np.ndarray, blind: Any) -> np.ndarray:
@@ -633,8 +625,10 @@ def scan(
     Parameters
     ----------
     data : MassHistogram, array of masses, or (masses, weights)
-        Arrays are histogrammed in bins of a quarter of the smallest resolution (50-2000 bins)
-        unless ``bins`` is given.  Weighted bins are scaled Poisson variables: effective
+        Arrays are histogrammed on the window (:meth:`MassHistogram.from_masses`, so a mass
+        equal to the window's top is in the last bin) in bins of a quarter of the smallest
+        resolution (50-2000 bins) unless ``bins`` is given; the scan of an array and of the
+        histogram built from it are the same.  Weighted bins are scaled Poisson variables: effective
         counts ``k_i sumw_i`` with ``k_i = sumw_i / sumw2_i`` per bin (Bohm and Zech, NIM A
         748 (2014) 1; the same likelihood as the weighted binned :func:`peaksift.fit`, so
         q0 agrees with two such fits); yields are reported in weighted units.
@@ -647,7 +641,8 @@ def scan(
     resolution : float, callable or table
         Signal resolution sigma(m): relative number, callable, or ``(masses, sigmas)``.
     window : (lo, hi), optional
-        Fit window (default the histogram range); snaps to complete bins.
+        Fit window (default the histogram's range, or the masses' range); a histogram keeps
+        the bins lying completely inside it (:meth:`MassHistogram.restrict`).
     natural_width : float or callable, optional
         Natural width (GeV) for shapes with a ``width`` (voigt, breitwigner).
     blind : (lo, hi), optional
