@@ -11,7 +11,7 @@ import pytest
 from peaksift import MassHistogram, fit, shapes
 from peaksift.errors import DataWarning, FitError
 from peaksift.stats import scan
-from peaksift.stats.scan import _prepare_model, resolution_model
+from peaksift.stats.scan import _prepare_model
 from peaksift.stats.toys import profile_signal, run_toys, toy_counts
 
 WINDOW = (100.0, 400.0)
@@ -31,7 +31,7 @@ def test_scan_q0_matches_iminuit_fits():
     Cowan et al. 2011 eq. 12; agreement to 1e-3 in Z."""
     h = _spectrum(n_sig=120)
     masses = np.array([180.0, 250.0, 320.0])
-    r = scan(h, "gaussian", "exponential", masses, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", masses, relative_resolution=0.01, refit=False)
     for j, m in enumerate(masses):
         sb = fit(h, "gaussian", "exponential", WINDOW,
                  fixed={"mass": m, "sigma": 0.01 * m}, start={"signal_yield": 10.0})
@@ -46,7 +46,7 @@ def test_scan_q0_matches_iminuit_fits():
 
 def test_scan_finds_injected_peak_and_refits():
     h = _spectrum(n_sig=250)
-    r = scan(h, "gaussian", "exponential", 121, resolution=0.01)
+    r = scan(h, "gaussian", "exponential", 121, relative_resolution=0.01)
     assert abs(r.best_mass - 250.0) < 5.0
     assert r.z_local[r.best_index] > 4.0
     assert r.refit is not None and r.refit.valid
@@ -60,7 +60,7 @@ def test_scan_finds_injected_peak_and_refits():
 def test_negative_yield_allowed_but_q0_one_sided():
     """A deficit gives a negative fitted yield and q0 = 0 (Cowan et al. 2011 eq. 12)."""
     h = _spectrum(seed=9)
-    r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", 61, relative_resolution=0.01, refit=False)
     neg = r.signal_yield < 0
     assert neg.any()
     assert np.all(r.q0[neg] == 0.0) and np.all(r.p_local[neg] == 0.5)
@@ -73,7 +73,7 @@ def test_wilks_half_chi_square_at_fixed_mass():
     (scipy.stats.chi2.sf(q, 1)/2).  20,000 toys: binomial errors 0.0026 and 0.0011; we allow
     3 of them."""
     h = _spectrum(n_bkg=40_000)
-    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], resolution=0.01,
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], relative_resolution=0.01,
                                  window=None, natural_width=None, blind=None,
                                  signal_params=None, bins=None)
     q = run_toys(model, 20_000, seed=1, progress=False)[:, 0]
@@ -88,7 +88,7 @@ def test_signal_injection_pulls():
     """Injected signals are recovered without bias: pulls (s_hat - s)/sigma_s have mean 0 and
     width 1 (common practice), 400 toys: mean within 0.15, width within 10%."""
     h = _spectrum(n_bkg=20_000)
-    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], resolution=0.01,
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], relative_resolution=0.01,
                                  window=None, natural_width=None, blind=None,
                                  signal_params=None, bins=None)
     s_true = 150.0
@@ -103,38 +103,25 @@ def test_signal_injection_pulls():
     assert abs(pulls.std(ddof=1) - 1.0) < 0.1
 
 
-def test_resolution_forms_agree():
-    masses = np.array([150.0, 250.0, 350.0])
-    a = resolution_model(0.01)(masses)
-    b = resolution_model(lambda m: 0.01 * m)(masses)
-    c = resolution_model(([100.0, 400.0], [1.0, 4.0]))(masses)
-    d = resolution_model({"mass": [100.0, 400.0], "sigma": [1.0, 4.0]})(masses)
-    assert np.allclose(a, [1.5, 2.5, 3.5]) and np.allclose(a, b) and np.allclose(a, c)
-    assert np.allclose(c, d)
-    with pytest.raises(FitError, match="outside the resolution table"):
-        resolution_model(([200.0, 300.0], [1.0, 2.0]))(masses)
-    with pytest.raises(FitError, match="positive relative resolution"):
-        resolution_model(-0.1)
-
-
 def test_voigt_needs_natural_width_and_gaussian_refuses_one():
     h = _spectrum()
     with pytest.raises(FitError, match="needs natural_width"):
-        scan(h, "voigt", "exponential", 11, resolution=0.01)
+        scan(h, "voigt", "exponential", 11, relative_resolution=0.01)
     with pytest.raises(FitError, match="has no natural width"):
-        scan(h, "gaussian", "exponential", 11, resolution=0.01, natural_width=1.0)
-    r = scan(h, "voigt", "exponential", 11, resolution=0.01, natural_width=1.0, refit=False)
+        scan(h, "gaussian", "exponential", 11, relative_resolution=0.01, natural_width=1.0)
+    r = scan(h, "voigt", "exponential", 11, relative_resolution=0.01, natural_width=1.0,
+             refit=False)
     assert np.all(np.isfinite(r.q0))
 
 
 def test_scan_bad_input_messages():
     h = _spectrum()
     with pytest.raises(FitError, match="outside the window"):
-        scan(h, "gaussian", "exponential", [50.0], resolution=0.01)
+        scan(h, "gaussian", "exponential", [50.0], relative_resolution=0.01)
     with pytest.raises(FitError, match="background shape"):
-        scan(h, "gaussian", "gaussian", [200.0], resolution=0.01)
+        scan(h, "gaussian", "gaussian", [200.0], relative_resolution=0.01)
     with pytest.raises(FitError, match="unknown shape"):
-        scan(h, "gausian", "exponential", [200.0], resolution=0.01)
+        scan(h, "gausian", "exponential", [200.0], relative_resolution=0.01)
 
 
 def test_blinding_hides_and_ignores_the_window(tmp_path):
@@ -142,7 +129,7 @@ def test_blinding_hides_and_ignores_the_window(tmp_path):
     nothing; observed values inside are NaN / None; expected values are still given."""
     h = _spectrum(n_sig=250)
     blind = (235.0, 265.0)
-    kw = {"resolution": 0.01, "blind": blind, "expected_signal": 100.0}
+    kw = {"relative_resolution": 0.01, "blind": blind, "expected_signal": 100.0}
     r1 = scan(h, "gaussian", "exponential", 61, **kw)
     h2 = h.copy()
     inside = (h2.edges[:-1] < blind[1]) & (h2.edges[1:] > blind[0])
@@ -164,7 +151,7 @@ def test_blinding_hides_and_ignores_the_window(tmp_path):
 
 def test_plot_writes_png(tmp_path):
     h = _spectrum(n_sig=200)
-    r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", 61, relative_resolution=0.01, refit=False)
     g = r.global_significance(toys=50, seed=3)
     path = tmp_path / "scan.png"
     fig = r.plot(path, global_result=g)
@@ -176,7 +163,7 @@ def test_plot_writes_png(tmp_path):
 def test_unbinned_masses_are_histogrammed():
     rng = np.random.default_rng(2)
     x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 5000), rng.normal(250, 2.5, 80)])
-    r = scan(x, shapes.get("gaussian"), "exponential", 31, resolution=0.01,
+    r = scan(x, shapes.get("gaussian"), "exponential", 31, relative_resolution=0.01,
              window=WINDOW, refit=False)
     assert abs(r.best_mass - 250.0) < 8.0
     # bins of a quarter of the smallest sigma (0.01 x 115 GeV, the lowest default grid mass
@@ -197,7 +184,7 @@ def test_scan_of_masses_equals_scan_of_their_histogram(weighted):
                         [WINDOW[1] + 1e-9, WINDOW[0] - 1e-9]])
     w = rng.uniform(0.5, 1.5, x.size) if weighted else None
     data = (x, w) if weighted else x
-    kw = {"resolution": 0.01, "window": WINDOW, "refit": False}
+    kw = {"relative_resolution": 0.01, "window": WINDOW, "refit": False}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DataWarning)  # the weighted-spectrum note
         r_arr = scan(data, "gaussian", "exponential", 31, bins=300, **kw)
@@ -244,9 +231,9 @@ def test_weighted_spectrum_uses_effective_counts():
     hw = h.copy()
     hw.sumw = 2.0 * h.sumw
     hw.sumw2 = 4.0 * h.sumw2
-    r = scan(h, "gaussian", "exponential", 31, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", 31, relative_resolution=0.01, refit=False)
     with pytest.warns(DataWarning, match="effective counts"):
-        rw = scan(hw, "gaussian", "exponential", 31, resolution=0.01, refit=False)
+        rw = scan(hw, "gaussian", "exponential", 31, relative_resolution=0.01, refit=False)
     assert np.allclose(rw.z_local, r.z_local, atol=1e-9)
     # to the fits' convergence tolerance (the minimiser works in weighted units here)
     assert np.all(np.abs(rw.signal_yield - 2.0 * r.signal_yield)
@@ -267,7 +254,7 @@ def test_weighted_scan_matches_weighted_fits_with_mass_dependent_weights():
     w = (0.4 + (x - 100.0) / 150.0) * rng.uniform(0.5, 1.5, x.size)
     h = MassHistogram(bins=300, range=WINDOW).fill(x, weight=w)
     with pytest.warns(DataWarning, match="per bin"):
-        r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+        r = scan(h, "gaussian", "exponential", 61, relative_resolution=0.01, refit=False)
     m = r.best_mass
     assert abs(m - 250.0) < 5.0
     sb = fit(h, "gaussian", "exponential", WINDOW, fixed={"mass": m, "sigma": 0.01 * m},
@@ -288,7 +275,7 @@ def test_difficult_background_start_is_recovered(background):
     spectrum).  Compared as saturated-form NLLs, sum[nu - n + n ln(n/nu)] (Baker, Cousins,
     NIM 221 (1984) 437), which is what FitResult.nll holds for binned fits."""
     h = _spectrum()
-    r = scan(h, "gaussian", background, 11, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", background, 11, relative_resolution=0.01, refit=False)
     ref = fit(h, "gaussian", background, WINDOW,
               fixed={"signal_yield": 0.0, "mass": 250.0, "sigma": 2.5})
     n = r.model.counts

@@ -6,9 +6,10 @@ the fitted signal yield at every mass, the best hypothesis, a free refit there, 
 significance (:meth:`ScanResult.global_significance`, look-elsewhere effect included) and a
 plot of p_local against mass.
 
-At each hypothesis the signal shape is fixed by the resolution model (``resolution``: a
-number = sigma/m; a callable sigma(m); or a table ``(masses, sigmas)`` interpolated
-linearly), optionally with a natural ``width``; the signal yield (free, may be negative) and
+At each hypothesis the signal shape is fixed by the detector resolution, given explicitly
+(``relative_resolution=0.01`` for sigma/m, ``absolute_resolution=2.0`` for GeV, or
+``resolution=`` a :class:`peaksift.Resolution`, a callable sigma(m) or a table; a bare number
+is refused), optionally with a natural ``width``; the signal yield (free, may be negative) and
 all background parameters are profiled in the extended binned Poisson likelihood (see
 :mod:`peaksift.stats.toys` for the engine).  q0 = 0 when the fitted yield is negative (the
 one-sided discovery test of Cowan, Cranmer, Gross, Vitells, EPJC 71 (2011) 1554).
@@ -32,71 +33,12 @@ from typing import Any
 import numpy as np
 
 from ..errors import DataWarning, FitError, PeaksiftError
+from ..resolution import check_resolved, resolution_from
 from . import lee
 from .significance import p_from_q0, z_from_q0
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background, profile_signal, run_toys
 
-__all__ = ["ScanResult", "resolution_model", "scan"]
-
-
-# ------------------------------------------------------------------ resolution model
-def resolution_model(resolution: Any) -> Callable[[np.ndarray], np.ndarray]:
-    """Turn a resolution description into a vectorised ``sigma(m)``.
-
-    ``resolution`` may be a positive number (relative resolution, sigma = r m), a callable
-    ``sigma(m)``, a pair ``(masses, sigmas)`` or a mapping ``{"mass": [...], "sigma": [...]}``
-    (linear interpolation; masses outside the table are an error).
-    """
-    if isinstance(resolution, (int, float)) and not isinstance(resolution, bool):
-        r = float(resolution)
-        if not (r > 0 and math.isfinite(r)):
-            raise FitError(f"resolution must be a positive relative resolution sigma/m, got {r!r}"
-                           "; e.g. resolution=0.01 for 1%")
-        return lambda m: r * np.asarray(m, float)
-    if callable(resolution):
-        def from_callable(m: np.ndarray) -> np.ndarray:
-            m = np.asarray(m, float)
-            try:
-                out = np.asarray(resolution(m), float)
-                if out.shape != m.shape:
-                    out = np.broadcast_to(out, m.shape).astype(float)
-            except (TypeError, ValueError):
-                out = np.array([float(resolution(float(v))) for v in m.ravel()]).reshape(m.shape)
-            return out
-        return from_callable
-    if isinstance(resolution, Mapping):
-        try:
-            tm, ts = resolution["mass"], resolution["sigma"]
-        except KeyError as exc:
-            raise FitError(f"resolution table needs keys 'mass' and 'sigma', missing {exc}"
-                           ) from None
-    else:
-        try:
-            tm, ts = resolution
-        except (TypeError, ValueError):
-            raise FitError(
-                f"resolution must be a number (sigma/m), a callable sigma(m) or a table "
-                f"(masses, sigmas); got {type(resolution).__name__}"
-            ) from None
-    tm = np.asarray(tm, float)
-    ts = np.asarray(ts, float)
-    if tm.ndim != 1 or tm.shape != ts.shape or tm.size < 2:
-        raise FitError("resolution table: masses and sigmas must be 1-d of the same length >= 2")
-    if np.any(np.diff(tm) <= 0):
-        raise FitError("resolution table: masses must increase strictly")
-    if np.any(ts <= 0):
-        raise FitError("resolution table: every sigma must be > 0")
-
-    def from_table(m: np.ndarray) -> np.ndarray:
-        m = np.asarray(m, float)
-        out = (m < tm[0] - 1e-9 * abs(tm[0])) | (m > tm[-1] + 1e-9 * abs(tm[-1]))
-        if np.any(out):
-            bad = m[out].ravel()[0]
-            raise FitError(f"mass {bad:g} is outside the resolution table "
-                           f"({tm[0]:g}-{tm[-1]:g} GeV); extend the table or the scan range")
-        return np.interp(m, tm, ts)
-
-    return from_table
+__all__ = ["ScanResult", "scan"]
 
 
 # ---------------------------------------------------------------------- data input
@@ -293,9 +235,11 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
     return min(candidates, key=lambda c: float(c[2][0]))
 
 
-def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, resolution: Any,
-                   window: Any, natural_width: Any, blind: Any, signal_params: Any,
-                   bins: Any, background_start: Mapping[str, float] | None = None
+def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
+                   resolution: Any = None, relative_resolution: Any = None,
+                   absolute_resolution: Any = None, window: Any, natural_width: Any,
+                   blind: Any, signal_params: Any, bins: Any,
+                   background_start: Mapping[str, float] | None = None
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
 
@@ -307,7 +251,9 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
     if bkg.kind != "background":
         raise FitError(f"scan: {bkg.name!r} is a {bkg.kind} shape; give a background shape "
                        f"such as 'exponential'")
-    sigma_of = resolution_model(resolution)
+    resolution = resolution_from(resolution, relative=relative_resolution,
+                                 absolute=absolute_resolution)
+    sigma_of = resolution.sigma
     m_arr = None if np.ndim(masses) == 0 else np.asarray(masses, float)
 
     def min_sigma() -> float:
@@ -335,9 +281,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
     if outside.any():
         raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
                        f"({lo:g}, {hi:g}); scan inside the window")
-    sigma = np.asarray(sigma_of(m_arr), float)
-    if not np.all(np.isfinite(sigma) & (sigma > 0)):
-        raise FitError("the resolution model gave a non-positive or non-finite sigma")
+    sigma = check_resolved(resolution, m_arr, spec.edges)
     blinded_bins = _blind_mask(spec.edges, blind)
     used = np.flatnonzero(~blinded_bins)
     if used.size < bkg.parameters.__len__() + 3:
@@ -611,7 +555,9 @@ def scan(
     background: Any,
     masses: Any,
     *,
-    resolution: Any,
+    resolution: Any = None,
+    relative_resolution: float | None = None,
+    absolute_resolution: float | None = None,
     window: tuple[float, float] | None = None,
     natural_width: Any = None,
     blind: tuple[float, float] | None = None,
@@ -638,8 +584,13 @@ def scan(
         Mass hypotheses (GeV) or a number of evenly spaced points inside the window.  Space
         them by at most about half the resolution, or the scan (and every toy's) misses the
         top of narrow excesses and the look-elsewhere estimates disagree.
-    resolution : float, callable or table
-        Signal resolution sigma(m): relative number, callable, or ``(masses, sigmas)``.
+    resolution, relative_resolution, absolute_resolution :
+        The detector resolution sigma(m), exactly one of: ``relative_resolution`` (sigma/m,
+        0 < r <= 1), ``absolute_resolution`` (GeV), or ``resolution``: a
+        :class:`peaksift.Resolution`, a callable m -> sigma (GeV) or a table
+        ``(masses, sigmas)`` (GeV, interpolated linearly).  A bare number for
+        ``resolution`` is refused, since it could mean either; so is a sigma below 1% of
+        the bin width at a hypothesis (:func:`peaksift.resolution.check_resolved`).
     window : (lo, hi), optional
         Fit window (default the histogram's range, or the masses' range); a histogram keeps
         the bins lying completely inside it (:meth:`MassHistogram.restrict`).
@@ -665,7 +616,9 @@ def scan(
     Z_local = sqrt(q0), p_local = 1 - Phi(Z_local) (eqs. 52-53).
     """
     model, spec, info = _prepare_model(
-        data, signal, background, masses, resolution=resolution, window=window,
+        data, signal, background, masses, resolution=resolution,
+        relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
+        window=window,
         natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins)
     m_all = info["masses"]
     bl = info["blinded_mass"]
