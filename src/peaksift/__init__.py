@@ -38,8 +38,8 @@ _EXPORTS: dict[str, str] = {
     "Candidates": "peaksift.pairing",
     "compile_cut": "peaksift.cuts",
     "MassHistogram": "peaksift.histogram",
-    "fit": "peaksift.fitting",
-    "FitResult": "peaksift.fitting",
+    "fit": "peaksift.fitting.core",
+    "FitResult": "peaksift.fitting.result",
     "Resolution": "peaksift.resolution",
     "scan": "peaksift.stats.scan",
     "ScanResult": "peaksift.stats.scan",
@@ -51,7 +51,7 @@ _EXPORTS: dict[str, str] = {
 }
 
 _SUBMODULES = {
-    "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing",
+    "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing", "blinding",
     "histogram", "fitting", "config", "execution", "search", "plotting", "report",
     "resonances", "errors", "resolution",
 }

@@ -16,8 +16,9 @@ from __future__ import annotations
 
 import argparse
 import sys
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
+from typing import Any
 
 from .errors import PeaksiftError
 
@@ -49,42 +50,51 @@ def _row(label: str, value: str) -> str:
 
 def _summary(result: object) -> str:
     """The short table printed at the end of ``peaksift search``."""
-    from .report import format_pm
+    return _summary_text(result.to_dict())  # type: ignore[attr-defined]
 
-    d = result.to_dict()  # type: ignore[attr-defined]
-    best, fit, inp = d["best"], d["fit"], d["input"]
-    pm, w, sy = fit["peak_mass"], fit["width"], fit["signal_yield"]
-    blinded = bool(d.get("blinding", {}).get("active"))
+
+def _summary_text(d: Mapping[str, Any]) -> str:
+    """:func:`_summary` from the results dictionary; every number goes through
+    :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
+    from ._format import fixed, format_pm, number, significance
+
+    def part(m: Any, key: str) -> Mapping[str, Any]:
+        v = m.get(key) if isinstance(m, Mapping) else None
+        return v if isinstance(v, Mapping) else {}
+
+    best, fit, inp = part(d, "best"), part(d, "fit"), part(d, "input")
+    pm, w, sy = part(fit, "peak_mass"), part(fit, "width"), part(fit, "signal_yield")
+    blinded = bool(part(d, "blinding").get("active"))
     lines = ["peaksift search: summary",
-             _row("events read", f"{inp['events_read']:,}"),
+             _row("events read", number(inp.get("events_read"))),
              _row("candidates in sidebands" if blinded else "candidates in window",
-                  f"{inp['candidates']:,}"),
-             _row("best mass hypothesis", f"{best['mass']:.2f} GeV"),
-             _row("fitted mass", format_pm(pm["value"], pm["error"], "GeV")),
-             _row(f"fitted width ({fit.get('width_parameter', 'width')})",
-                  format_pm(w["value"], w["error"], "GeV")),
-             _row("signal yield", format_pm(sy["value"], sy["error"])),
-             _row("local significance", f"{best['z_local']:.2f} sigma "
-                                        f"(p = {best['p_local']:.2e})"),
-             _row("global significance", f"{best['z_global']:.2f} sigma "
-                                         f"(p = {best['p_global']:.2e}, "
-                                         f"{best['global_method']})")]
-    if not fit["valid"]:
-        lines.append(_row("fit status", "INVALID: " + "; ".join(fit.get("problems", []))))
-    km = d.get("known_matches") or []
+                  number(inp.get("candidates"))),
+             _row("best mass hypothesis", f"{fixed(best.get('mass'))} GeV"),
+             _row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
+             _row(f"fitted width ({fit.get('width_parameter') or 'width'})",
+                  format_pm(w.get("value"), w.get("error"), "GeV")),
+             _row("signal yield", format_pm(sy.get("value"), sy.get("error"))),
+             _row("local significance", significance(best, "local", sigma="sigma")),
+             _row("global significance", significance(best, "global", sigma="sigma"))]
+    if not fit.get("valid"):
+        lines.append(_row("fit status", "INVALID: " + "; ".join(
+            str(x) for x in fit.get("problems") or [])))
+    km = [k for k in d.get("known_matches") or [] if isinstance(k, Mapping)]
     lines.append(_row("known particles", ", ".join(
-        f"{k['name']} ({k['distance_sigma']:.1f} sigma)" for k in km) or "none match"))
+        f"{k.get('name')} ({fixed(k.get('distance_sigma'), 1)} sigma)" for k in km)
+        or "none match"))
     cal = d.get("calibration")
-    if cal:
-        fm = cal["fitted_mass"]
-        lines.append(_row(f"calibration {cal['particle']}",
-                          f"{format_pm(fm['value'], fm['error'], 'GeV')} vs tables "
-                          f"{cal['table_mass']:.4f} GeV (shift "
-                          f"{cal['shift_relative_permille']:+.1f} per mille)"))
-    if d.get("blinding", {}).get("active"):
+    if isinstance(cal, Mapping) and cal:
+        fm = part(cal, "fitted_mass")
+        lines.append(_row(f"calibration {cal.get('particle')}",
+                          f"{format_pm(fm.get('value'), fm.get('error'), 'GeV')} vs tables "
+                          f"{fixed(cal.get('table_mass'), 4)} GeV (shift "
+                          f"{fixed(cal.get('shift_relative_permille'), 1, signed=True)} "
+                          "per mille)"))
+    if blinded:
         lines.append(_row("blinding", "ACTIVE (data in the blinded window hidden)"))
     if "outputs" in d:
-        lines.append(_row("outputs", d["outputs"]["dir"]))
+        lines.append(_row("outputs", str(part(d, "outputs").get("dir"))))
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
 

@@ -733,16 +733,15 @@ def _check_shape(path: str, name: str, where: str, kind: str,
 def _check_calibration_outside_blinding(cal: tuple[float, float], blind: tuple[float, float],
                                         spectrum: Mapping[str, Any], where: str) -> None:
     """The calibration fit must not see blinded data: its window may not overlap the spectrum
-    bins hidden by the blinding (every bin overlapping ``blinding.window``, as the statistics
-    layer's ``_blind_mask``)."""
+    bins hidden by the blinding (every bin overlapping ``blinding.window``,
+    :func:`peaksift.blinding.blinded_bins`)."""
     import numpy as np
 
-    from .stats.scan import _blind_mask
+    from .blinding import hidden_range
 
     lo, hi = spectrum["window"]
     e = np.linspace(lo, hi, int(spectrum["bins"]) + 1)
-    idx = np.flatnonzero(_blind_mask(e, blind))
-    h0, h1 = (float(e[idx[0]]), float(e[idx[-1] + 1])) if idx.size else blind
+    h0, h1 = hidden_range(e, blind) or blind
     c0, c1 = cal
     if c0 < h1 and c1 > h0:
         raise ConfigError(

@@ -57,6 +57,7 @@ __all__ = [
     "compile_cut",
     "event_mask",
     "event_names",
+    "flat_object_mask",
     "object_mask",
 ]
 
@@ -618,11 +619,34 @@ def _flat_from_mask(mask: Any, counts: np.ndarray, name: str) -> np.ndarray:
     return arr
 
 
-def _flat_object_mask(
+def flat_object_mask(
     cut: CutLike, collection: Any, counts: np.ndarray, get: Callable[[str], Any],
     fields: list[str], name: str,
 ) -> np.ndarray:
-    """Flat boolean mask over all objects of ``collection`` (used by pairing)."""
+    """Flat boolean mask over all objects of ``collection``, one entry per object.
+
+    The flat form of :func:`object_mask` for callers that already hold the collection's
+    flat columns (the pairing works on them and never builds the jagged mask).
+
+    Parameters
+    ----------
+    cut : str, Cut, callable or mask
+        As for :func:`object_mask`.
+    collection : awkward.Array
+        The jagged collection (passed to a callable cut).
+    counts : numpy.ndarray
+        Objects per event.
+    get : callable
+        ``get(field)`` returns the flat column of ``field``; raises ``KeyError`` for others.
+    fields : list of str
+        The fields a text cut may use.
+    name : str
+        The collection's name, for messages.
+
+    Returns
+    -------
+    numpy.ndarray of bool, length ``counts.sum()``.
+    """
     if _is_text(cut):
         c = compile_cut(cut)
         return c.evaluate(get, int(counts.sum()), where=f"collection {name!r}", available=fields)
@@ -652,7 +676,7 @@ def object_mask(collection: Any, cut: CutLike, *, name: str = "objects") -> Any:
     import awkward as ak
 
     counts, get, fields = _collection_counts_and_getter(collection, name)
-    flat = _flat_object_mask(cut, collection, counts, get, fields, name)
+    flat = flat_object_mask(cut, collection, counts, get, fields, name)
     return ak.unflatten(flat, counts)
 
 

@@ -524,7 +524,7 @@ def _repair(name: str, data: dict[str, np.ndarray], cart: bool, masses: Mapping[
         neg_e = finite & (en < 0)
         with np.errstate(invalid="ignore", divide="ignore"):
             pxf, pyf, pzf, enf = (np.asarray(a, dtype=np.float64) for a in (px, py, pz, en))
-            m2, below = _kin._mass_squared_and_bad(enf, pxf, pyf, pzf, rtol)
+            m2, below = _kin.mass_squared(enf, pxf, pyf, pzf, rtol)
             pt = np.hypot(pxf, pyf)
             eta = np.arcsinh(pzf / pt)
         below &= finite & ~neg_e

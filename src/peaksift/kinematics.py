@@ -47,6 +47,7 @@ __all__ = [
     "from_cartesian",
     "half_angle_squares",
     "invariant_mass",
+    "mass_squared",
     "pair_kinematics",
     "pair_mass",
     "polar_object_terms",
@@ -104,9 +105,29 @@ def to_cartesian(
     return px, py, pz, e
 
 
-def _mass_squared_and_bad(
+def mass_squared(
     e: np.ndarray, px: np.ndarray, py: np.ndarray, pz: np.ndarray, rtol: float
 ) -> tuple[np.ndarray, np.ndarray]:
+    r"""Mass squared :math:`(E - |\vec p|)(E + |\vec p|)` with the rounding rule of
+    :func:`invariant_mass`, and where it is genuinely negative.
+
+    For callers that handle negative values themselves (the reader drops such objects);
+    :func:`invariant_mass` is the usual entry point.
+
+    Parameters
+    ----------
+    e, px, py, pz : numpy.ndarray
+        Energy and momentum components in GeV, float64 (broadcast together).
+    rtol : float
+        Tolerance on ``-m^2 / E^2`` treated as rounding (those entries become 0).
+
+    Returns
+    -------
+    m2 : numpy.ndarray
+        Mass squared in GeV^2; still negative where ``negative`` is True.
+    negative : numpy.ndarray of bool
+        True where ``m^2 < -rtol E^2`` (energy smaller than momentum, not rounding).
+    """
     p = np.sqrt(px * px + py * py + pz * pz)
     m2 = (e - p) * (e + p)
     tiny = (m2 < 0) & (-m2 <= rtol * e * e)
@@ -173,7 +194,7 @@ def invariant_mass(
     """
     rtol = _default_rtol(e, px, py, pz) if rtol is None else float(rtol)
     e, px, py, pz = _f64(e), _f64(px), _f64(py), _f64(pz)
-    m2, bad = _mass_squared_and_bad(e, px, py, pz, rtol)
+    m2, bad = mass_squared(e, px, py, pz, rtol)
     n_bad = int(np.count_nonzero(bad))
     if n_bad:
         m2 = np.where(bad, np.nan, m2)

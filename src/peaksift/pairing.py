@@ -74,11 +74,11 @@ import numba
 import numpy as np
 
 from . import kinematics
-from .cuts import CutLike, _flat_object_mask, event_mask
+from .cuts import CutLike, event_mask, flat_object_mask
 from .errors import ConfigError, InputError, closest
 from .histogram import in_range
 
-__all__ = ["CHOOSE_RULES", "Candidates", "pair"]
+__all__ = ["CHOOSE_RULES", "Candidates", "load_kernels", "pair"]
 
 CHOOSE_RULES = ("all", "leading", "max_sum_pt", "closest")
 _CHARGE = {None: 0, "any": 0, "opposite": -1, "same": 1}
@@ -531,7 +531,7 @@ def _selected(coll: _Collection, cut: CutLike, ev_ok: np.ndarray | None) -> tupl
     if _is_no_cut(cut):
         ok = np.repeat(ev_ok, coll.counts)
     else:
-        ok = _flat_object_mask(cut, coll.array, coll.counts, coll.get, coll.fields, coll.name)
+        ok = flat_object_mask(cut, coll.array, coll.counts, coll.get, coll.fields, coll.name)
         if ev_ok is not None:
             ok &= np.repeat(ev_ok, coll.counts)
     cs = np.zeros(ok.size + 1, dtype=np.int64)
@@ -716,7 +716,7 @@ def _kernels_without_extensions(first_section: bool = True) -> Iterator[None]:
             eps.init_all = real
 
 
-def _load_kernels() -> None:
+def load_kernels() -> None:
     """Run numba's first-call set-up now (its typing and target contexts, about 0.25 s)
     by calling one small kernel; the other kernels then load from the disk cache in
     milliseconds.  Called before worker processes are forked from this one."""

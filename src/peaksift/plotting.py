@@ -8,6 +8,8 @@ Which function
   blinded window), ``calibration``.  Returns name -> PNG path.
 * :func:`spectrum_only` -- the selected spectrum without a fit (``peaksift spectrum``).
 * :func:`candidates` -- the candidates' pT and rapidity.
+* :func:`scan_figure` -- the p-value scan with the global significance noted; an excess
+  beyond the axis floor is clipped there and its p stated (as a power of ten if need be).
 * :func:`save` -- write one figure in several formats.
 
 The drawing of a fit, a scan and a limit curve belongs to their result objects
@@ -25,9 +27,10 @@ from typing import Any
 
 import numpy as np
 
+from ._format import fixed, number, p_value
 from ._style import COLORS, figure_style, use_headless_backend
 
-__all__ = ["candidates", "save", "search_figures", "spectrum_only"]
+__all__ = ["candidates", "save", "scan_figure", "search_figures", "spectrum_only"]
 
 
 def _plt() -> Any:
@@ -74,7 +77,7 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     """The selected spectrum as points with Poisson-like error bars (``sqrt(sumw2)``).
 
     With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
-    statistics layer leaves out (:func:`peaksift.stats.scan._blind_mask`) -- the hidden bins'
+    statistics layer leaves out (:func:`peaksift.blinding.blinded_bins`) -- the hidden bins'
     mass range is hatched, and the count in the corner is that of the sidebands only.
     """
     plt = _plt()
@@ -82,15 +85,13 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     h = hist
     span = None
     if blind is not None:
-        from .stats.scan import _blind_mask
+        from .blinding import blinded_bins, hidden_range
 
         h = hist.copy()
-        e = np.asarray(h.edges, dtype=float)
-        inside = _blind_mask(e, blind)
+        inside = blinded_bins(h.edges, blind)
         h.sumw[inside] = np.nan
         h.sumw2[inside] = np.nan
-        idx = np.flatnonzero(inside)
-        span = (float(e[idx[0]]), float(e[idx[-1] + 1])) if idx.size else None
+        span = hidden_range(h.edges, blind)
     shown = h.sumw[np.isfinite(h.sumw)]
     total = float(shown.sum())
     where = " outside the blinded window" if span is not None else ""
@@ -172,22 +173,25 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
         out.update(candidates(result.collected, outdir, formats=formats))
     if calibration is not None and calibration[1] is not None and result.calibration:
         c = result.calibration
-        title = (f"calibration: {c['particle']}, particle-data tables "
-                 f"{c['table_mass']:.4f} GeV")
+        title = (f"calibration: {c.get('particle')}, particle-data tables "
+                 f"{fixed(c.get('table_mass'), 4)} GeV")
+        ref = c.get("table_mass")
         out["calibration"] = _fit_figure(calibration[1], outdir, "calibration", formats,
                                          log=False, blind=None, title=title,
-                                         reference=(c["table_mass"], "mass in the tables"))
+                                         reference=(ref, "mass in the tables")
+                                         if fixed(ref) != "n/a" else None)
     return out
 
 
 def _fit_title(result: Any) -> str:
     best = result.best
-    zl, zg = best.get("z_local"), best.get("z_global")
-    parts = [f"best hypothesis {best.get('mass', float('nan')):.2f} GeV"]
-    if zl is not None:
-        parts.append(f"$Z_\\mathrm{{local}}$ = {zl:.2f}$\\sigma$")
-    if zg is not None:
-        parts.append(f"$Z_\\mathrm{{global}}$ = {zg:.2f}$\\sigma$")
+    zl, zg = fixed(best.get("z_local")), fixed(best.get("z_global"))
+    parts = [f"best hypothesis {fixed(best.get('mass'))} GeV"]
+    if zl != "n/a":
+        parts.append(f"$Z_\\mathrm{{local}}$ = {zl}$\\sigma$")
+    if zg != "n/a":
+        gt = "> " if best.get("z_global_is_lower_bound") else ""
+        parts.append(f"$Z_\\mathrm{{global}}$ = {gt}{zg}$\\sigma$")
     return ", ".join(parts)
 
 
@@ -230,8 +234,44 @@ def _fit_figure(fr: Any, outdir: str | os.PathLike[str], name: str, formats: Seq
 def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str]) -> Path:
     """``ScanResult.plot`` with the global significance noted."""
     with figure_style():
-        fig = result.scan.plot(global_result=dict(result.best))
-        return save(fig, outdir, "pvalue_scan", formats)
+        return save(scan_figure(result.scan, result.best), outdir, "pvalue_scan", formats)
+
+
+def scan_figure(sres: Any, best: Any = None) -> Any:
+    """The p-value scan figure: ``ScanResult.plot``, the global significance of ``best``
+    (the search's ``best`` entry) above the axes, and a note when the curve leaves the axis.
+
+    The log axis stops at a floor (the scan's own choice, about 8 sigma); a larger excess
+    (p_local down to 1e-2000 and beyond, 0 as a float) is drawn clipped there, marked with
+    a triangle at the best mass and stated in numbers (p as a power of ten).
+    """
+    from .stats.significance import log10_p, log_p_from_q0
+
+    fig = sres.plot()
+    ax = fig.axes[0]
+    b = best if isinstance(best, dict) else dict(best or {})
+    if b:
+        unit = getattr(sres, "unit", "GeV")
+        gt = "> " if b.get("z_global_is_lower_bound") else ""
+        ax.text(0.0, 1.015, f"best {number(b.get('mass'))} {unit}: "
+                f"$Z_{{local}}$ = {fixed(b.get('z_local'))}, $Z_{{global}}$ = "
+                f"{gt}{fixed(b.get('z_global'))} ({b.get('global_method') or 'n/a'})",
+                transform=ax.transAxes, fontsize=9, va="bottom")
+    q = np.where(np.asarray(sres.blinded, bool), np.nan, np.asarray(sres.q0, dtype=float))
+    if np.any(np.isfinite(q)):
+        i = int(np.nanargmax(q))
+        lg = float(log10_p(log_p_from_q0(q[i])))
+        floor = float(ax.get_ylim()[0])
+        if floor > 0 and lg < np.log10(floor):
+            m = float(np.asarray(sres.masses, dtype=float)[i])
+            ax.plot([m], [floor], marker="v", ms=8, color=COLORS["signal"], clip_on=False,
+                    zorder=5, ls="none")
+            ax.text(0.97, 0.05, f"curve clipped at the axis floor p = {p_value(floor)};\n"
+                    f"lowest local p = {p_value(10.0 ** lg, lg)} at {number(m)} "
+                    f"{getattr(sres, 'unit', 'GeV')} (\u25bc)",
+                    transform=ax.transAxes, ha="right", va="bottom", fontsize=8.5,
+                    color=COLORS["signal"])
+    return fig
 
 
 def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],

@@ -9,6 +9,10 @@ report can be rebuilt from a results file without rerunning the search.
   every figure as a base64 ``data:`` URI and needs no other file.
 * :func:`write_report` -- both reports into a directory, atomically.
 
+Numbers are written through :mod:`peaksift._format` (shared with the command-line summary):
+a missing or non-finite value reads "n/a", and a p-value below the smallest double is given
+as a power of ten from its ``log10_p_*`` entry.
+
 The report always carries the caution that a local significance is not a discovery, says how
 the look-elsewhere effect was treated, and defers to the analysis group's statistical
 procedures and review.
@@ -19,13 +23,14 @@ from __future__ import annotations
 import base64
 import html
 import json
-import math
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 from ._files import atomic_write
+from ._format import as_finite, fixed, format_pm, number, p_value, significance
+from ._json import plain
 
 __all__ = [
     "CAUTION",
@@ -100,75 +105,16 @@ def _window_count_label(r: Mapping[str, Any]) -> str:
 
 
 # ------------------------------------------------------------------------------- writing
-def _json_default(o: Any) -> Any:
-    try:
-        import numpy as np
-
-        if isinstance(o, np.integer):
-            return int(o)
-        if isinstance(o, np.floating):
-            return float(o)
-        if isinstance(o, np.bool_):
-            return bool(o)
-        if isinstance(o, np.ndarray):
-            return o.tolist()
-    except ImportError:  # pragma: no cover
-        pass
-    if isinstance(o, (Path, os.PathLike)):
-        return str(o)
-    if isinstance(o, (set, frozenset, tuple)):
-        return list(o)
-    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
-
-
-def _finite(o: Any) -> Any:
-    """Replace NaN and infinities by None (JSON has no such numbers)."""
-    if isinstance(o, float):
-        return o if math.isfinite(o) else None
-    if isinstance(o, Mapping):
-        return {k: _finite(v) for k, v in o.items()}
-    if isinstance(o, (list, tuple)):
-        return [_finite(v) for v in o]
-    return o
-
-
 def write_results_json(results: Mapping[str, Any], path: str | os.PathLike[str]) -> Path:
     """Write the results dictionary as indented JSON, atomically; NaN/inf become ``null``."""
-    plain = json.loads(json.dumps(results, default=_json_default))
-    text = json.dumps(_finite(plain), indent=2, allow_nan=False)
+    text = json.dumps(plain(results), indent=2, allow_nan=False)
     return atomic_write(path, text + "\n")
 
 
 # ---------------------------------------------------------------------------- formatting
 def _num(x: Any, digits: int = 4) -> str:
-    if x is None:
-        return "n/a"
-    if isinstance(x, bool):
-        return "yes" if x else "no"
-    if isinstance(x, int):
-        return f"{x:,}".replace(",", "\u2009")
-    try:
-        v = float(x)
-    except (TypeError, ValueError):
-        return str(x)
-    if not math.isfinite(v):
-        return "n/a"
-    if v != 0 and (abs(v) < 1e-3 or abs(v) >= 1e6):
-        return f"{v:.{max(digits - 1, 1)}e}"
-    return f"{v:.{digits}g}"
-
-
-def format_pm(value: Any, error: Any, unit: str = "") -> str:
-    """``value ± error`` with the error rounded to two significant digits (common practice)."""
-    u = f" {unit}" if unit else ""
-    if value is None:
-        return "n/a"
-    v = float(value)
-    if error is None or not math.isfinite(float(error)) or float(error) <= 0:
-        return f"{_num(v)}{u}"
-    e = float(error)
-    dec = max(0, 1 - math.floor(math.log10(e)))
-    return f"{v:.{dec}f} \u00b1 {e:.{dec}f}{u}"
+    """:func:`peaksift._format.number` with a thin space between thousands (typeset text)."""
+    return number(x, digits, sep="\u2009")
 
 
 def _ve(d: Any) -> tuple[Any, Any]:
@@ -177,28 +123,14 @@ def _ve(d: Any) -> tuple[Any, Any]:
     return d, None
 
 
-def _z(z: Any) -> str:
-    return "n/a" if z is None else f"{float(z):.2f}"
-
-
-def _p(p: Any) -> str:
-    if p is None:
-        return "n/a"
-    v = float(p)
-    return f"{v:.2e}" if v < 1e-3 else f"{v:.4f}"
-
-
 # ------------------------------------------------------------------------------ sections
 def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     best = r.get("best") or {}
     fit = r.get("fit") or {}
     rows = [
         ("Best mass hypothesis", f"{_num(best.get('mass'), 5)} GeV"),
-        ("Local significance", (f"{_z(best.get('z_local'))} \u03c3 "
-                               f"(p = {_p(best.get('p_local'))})")),
-        ("Global significance", (f"{_z(best.get('z_global'))} \u03c3 "
-                                f"(p = {_p(best.get('p_global'))}, "
-                                f"{best.get('global_method', 'n/a')})")),
+        ("Local significance", significance(best, "local")),
+        ("Global significance", significance(best, "global")),
         ("Fitted peak mass", format_pm(*_ve(fit.get("peak_mass")), "GeV")),
         (f"Fitted width ({fit.get('width_parameter') or 'width'})",
          format_pm(*_ve(fit.get("width")), "GeV")),
@@ -213,7 +145,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
             ndf = gof.get("ndf")
             rows.append(("Goodness of fit", (f"\u03c7\u00b2 = {_num(gof.get('chi2'))} for "
                                             f"{'n/a' if ndf is None else ndf} degrees of "
-                                            f"freedom (p = {_p(gof.get('p_value'))})")))
+                                            f"freedom (p = {p_value(gof.get('p_value'))})")))
     bl = r.get("blinding") or {}
     if bl.get("active"):
         w = bl.get("window") or [None, None]
@@ -234,9 +166,10 @@ def _lee_sentence(r: Mapping[str, Any]) -> str:
     best = r.get("best") or {}
     scan = r.get("scan") or {}
     masses = scan.get("mass") or []
+    fin = [v for v in map(as_finite, masses) if v is not None]
     method = best.get("global_method") or "n/a"
-    rng = (f" over the scanned range {_num(min(masses), 5)}-{_num(max(masses), 5)} GeV "
-           f"({len(masses)} hypotheses)") if masses else ""
+    rng = (f" over the scanned range {_num(min(fin), 5)}-{_num(max(fin), 5)} GeV "
+           f"({len(masses)} hypotheses)") if fin else ""
     toys = best.get("n_toys", best.get("toys"))
     how = {
         "upcrossings": "from upcrossings of the q0 scan (Gross and Vitells 2010)",
@@ -283,9 +216,20 @@ def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
     km = c.get("known_matches")
     if km is not None:
         rows.append(("Known particles at the fitted mass",
-                     ", ".join(f"{k['name']} ({k['distance_sigma']:.1f} \u03c3)" for k in km)
+                     ", ".join(f"{k.get('name')} ({fixed(k.get('distance_sigma'), 1)} \u03c3)"
+                               for k in km if isinstance(k, Mapping))
                      or "none (check the mass scale)"))
     return rows
+
+
+def _cl_percent(lim: Mapping[str, Any]) -> str:
+    cl = as_finite(lim.get("cl", 0.95))
+    return _num(100 * cl, 3) if cl is not None else "n/a"
+
+
+def _known_rows(km: Sequence[Any]) -> list[list[str]]:
+    return [[str(k.get("name")), _num(k.get("mass"), 6), _num(k.get("width"), 4),
+             _num(k.get("distance_sigma"), 3)] for k in km if isinstance(k, Mapping)]
 
 
 def _limit_rows(r: Mapping[str, Any], max_rows: int = 12) -> tuple[list[str], list[list[str]]]:
@@ -304,9 +248,9 @@ def _limit_rows(r: Mapping[str, Any], max_rows: int = 12) -> tuple[list[str], li
     for i in idx:
         def g(k: str, i: int = i) -> str:
             v = lim.get(k) or []
-            return f"{float(v[i]):#.3g}".rstrip(".") if i < len(v) and v[i] is not None \
-                else "n/a"
-        rows.append([f"{float(m[i]):.2f}", g("observed"), g("expected"), g("expected_minus1"),
+            x = as_finite(v[i]) if i < len(v) else None
+            return f"{x:#.3g}".rstrip(".") if x is not None else "n/a"
+        rows.append([fixed(m[i]), g("observed"), g("expected"), g("expected_minus1"),
                      g("expected_plus1")])
     return head, rows
 
@@ -399,8 +343,7 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
     out.append("")
     if km:
         out.append(_md_table(["particle", "mass [GeV]", "width [GeV]", "distance [\u03c3]"],
-                             [[k["name"], _num(k["mass"], 6), _num(k["width"], 4),
-                               _num(k["distance_sigma"], 3)] for k in km]))
+                             _known_rows(km)))
     else:
         out.append("No known particle matches (particle-data tables, within 3 combined "
                    "standard deviations, charge compatible with the pair).")
@@ -418,7 +361,7 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
     if rows:
         lim = r.get("limits") or {}
         out += ["## Upper limits", "",
-                (f"{_num(100 * float(lim.get('cl', 0.95)), 3)}% CL CLs upper limits "
+                (f"{_cl_percent(lim)}% CL CLs upper limits "
                 f"({lim.get('method', 'asymptotic')}), unit: {lim.get('unit', 'events')}."), "",
                 _md_table(head, rows), ""]
         if "limits" in fig:
@@ -504,8 +447,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
     km = r.get("known_matches")
     if km:
         b.append(_html_table(["particle", "mass [GeV]", "width [GeV]", "distance [\u03c3]"],
-                             [[k["name"], _num(k["mass"], 6), _num(k["width"], 4),
-                               _num(k["distance_sigma"], 3)] for k in km]))
+                             _known_rows(km)))
     else:
         b.append("<p>No known particle matches (particle-data tables, within 3 combined "
                  "standard deviations, charge compatible with the pair).</p>")
@@ -521,7 +463,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
     if rows:
         lim = r.get("limits") or {}
         b += ["<h2>Upper limits</h2>",
-              (f"<p>{_h(_num(100 * float(lim.get('cl', 0.95)), 3))}% CL CLs upper limits "
+              (f"<p>{_h(_cl_percent(lim))}% CL CLs upper limits "
               f"({_h(lim.get('method', 'asymptotic'))}), unit: {_h(lim.get('unit', 'events'))}."
               "</p>"), _html_table(head, rows)]
         if "limits" in fig:

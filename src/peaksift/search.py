@@ -121,8 +121,11 @@ class SearchResult:
         cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
         fit = _fit_dict(self.fit) if self.fit is not None else _blinded_fit()
         scan = _plain(self.scan.to_dict())
+        lg_scan, lg_best = _scan_log10_p(self.scan)
+        scan["best"] = {**(scan.get("best") or {}), "log10_p_local": lg_best}
         scan_extra = {"resolution_model": self.config.model.resolution.kind,
-                      "signal_shape": _scan_signal_name(self.config)}
+                      "signal_shape": _scan_signal_name(self.config),
+                      "log10_p_local": lg_scan}
         out: dict[str, Any] = {
             "peaksift_version": __version__,
             "config": self.config.to_dict(),
@@ -167,6 +170,19 @@ def _plain(o: Any) -> Any:
     return o
 
 
+def _scan_log10_p(sres: Any) -> tuple[list[float | None], float]:
+    """``log10_p_local`` per hypothesis (None where blinded) and at the best one: the scan's
+    p_local as a power of ten, finite where the float p_local underflows to 0 (Z > 37.5).
+    Computed from q0 as the scan computes p_local (a NaN q0 counts as 0)."""
+    from .stats.significance import log10_p, log_p_from_q0
+
+    q = np.nan_to_num(np.asarray(sres.q0, dtype=float))
+    lg = np.asarray(log10_p(log_p_from_q0(q)), dtype=float)
+    hidden = np.asarray(sres.blinded, dtype=bool)
+    return ([None if h else float(v) for v, h in zip(lg, hidden)],
+            float(lg[sres.best_index]))
+
+
 def _fit_dict(fr: Any) -> dict[str, Any]:
     d = _plain(fr.to_dict())
     keep = ("valid", "peak_mass", "width", "signal_yield", "background_yield", "gof")
@@ -194,24 +210,12 @@ def _hidden(blinding: Mapping[str, Any]) -> tuple[float, float] | None:
     return (float(r[0]), float(r[1])) if r else None
 
 
-def _hidden_range(edges: Any, blind: Any) -> tuple[float, float] | None:
-    """Mass range covered by the bins that overlap ``blind`` (the bins the statistics layer
-    leaves out, :func:`peaksift.stats.scan._blind_mask`); None when no bin overlaps."""
-    from .stats.scan import _blind_mask
-
-    e = np.asarray(edges, dtype=float)
-    idx = np.flatnonzero(_blind_mask(e, blind))
-    if idx.size == 0:
-        return None
-    return float(e[idx[0]]), float(e[idx[-1] + 1])
-
-
 def _blinded_copy(hist: Any, blind: Any) -> Any:
     """A copy of ``hist`` with the bins overlapping ``blind`` emptied (sumw = sumw2 = 0)."""
-    from .stats.scan import _blind_mask
+    from .blinding import blinded_bins
 
     h = hist.copy()
-    mask = _blind_mask(np.asarray(h.edges, dtype=float), blind)
+    mask = blinded_bins(h.edges, blind)
     h.sumw[mask] = 0.0
     h.sumw2[mask] = 0.0
     return h
@@ -567,7 +571,9 @@ def _blinding(cfg: Config, unblind: bool) -> dict[str, Any]:
                            "unblinded": bool(b.enabled and unblind),
                            "active": bool(b.enabled and not unblind)}
     if out["active"]:
-        hidden = _hidden_range(cfg.spectrum.edges, b.window)
+        from .blinding import hidden_range
+
+        hidden = hidden_range(cfg.spectrum.edges, b.window)
         out["hidden_range"] = list(hidden) if hidden else None
         out["counts"] = ("input.candidates and input.sum_of_weights count the sidebands only "
                          "(the fit window outside hidden_range); input.cutflow and "

@@ -299,6 +299,6 @@ class _ChunkTask:
         reader and pairing modules, and numba's kernels (its first-call set-up is most of
         a worker's start-up)."""
         from .. import events  # noqa: F401
-        from ..pairing import _load_kernels
+        from ..pairing import load_kernels
 
-        _load_kernels()
+        load_kernels()

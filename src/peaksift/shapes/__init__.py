@@ -19,7 +19,7 @@ from __future__ import annotations
 from typing import Any
 
 from ..errors import FitError
-from ._base import Parameter, Shape
+from ._base import Parameter, Shape, as_window
 from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, TurnOn
 from .signal import BreitWigner, CrystalBall, Gaussian, Voigt
 
@@ -36,6 +36,7 @@ __all__ = [
     "Shape",
     "TurnOn",
     "Voigt",
+    "as_window",
     "available",
     "get",
 ]

@@ -37,7 +37,7 @@ import numpy as np
 
 from ..errors import FitError
 
-__all__ = ["Parameter", "Shape"]
+__all__ = ["Parameter", "Shape", "as_window"]
 
 _GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(10)
 _CACHE_SIZE = 256
@@ -67,7 +67,14 @@ class Parameter:
     unit: str = ""
 
 
-def _as_window(window: Any) -> tuple[float, float]:
+def as_window(window: Any) -> tuple[float, float]:
+    """A fit window ``(lo, hi)`` as two floats, checked: finite, ``hi > lo``.
+
+    Raises
+    ------
+    peaksift.errors.FitError
+        When ``window`` is not a pair of finite numbers with ``hi > lo``.
+    """
     try:
         lo, hi = (float(window[0]), float(window[1]))
     except (TypeError, IndexError, ValueError):
@@ -76,6 +83,7 @@ def _as_window(window: Any) -> tuple[float, float]:
         raise FitError(f"window must be finite with hi > lo, got ({lo!r}, {hi!r}); "
                        "pass e.g. window=(70, 110)")
     return lo, hi
+
 
 
 class Shape:
@@ -138,6 +146,13 @@ class Shape:
     _density_grad = None
     _primitive_grad = None
 
+    def _difference_scales(self, p: Sequence[Any]) -> list[Any]:
+        """Scale over which each parameter changes the shape (finite-difference steps are
+        1e-5 of it): the value itself by default.  A location (a peak's mass, a turn-on's
+        threshold) must use the width it moves across instead, or a step of 1e-5 x 91 GeV
+        across a 0.05 GeV wide peak is a visible fraction of the width."""
+        return [np.maximum(np.abs(v), 1e-2) for v in p]
+
     # ------------------------------------------------------------- numerics
     def _table(self, p: tuple[float, ...], window: tuple[float, float]):
         key = (p, window)
@@ -182,7 +197,7 @@ class Shape:
     # ------------------------------------------------------------- interface
     def pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
         """Density normalised on ``window`` (zero outside it)."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         x = np.asarray(x, dtype=float)
         edges = np.array([lo, hi])
@@ -196,7 +211,7 @@ class Shape:
 
     def cdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
         """Cumulative distribution on ``window``: 0 at ``lo``, 1 at ``hi``."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         x = np.clip(np.asarray(x, dtype=float), lo, hi)
         plo = self._prim(np.array(lo), p, (lo, hi))
@@ -205,12 +220,17 @@ class Shape:
 
     def bin_fractions(self, edges: Any, params: Sequence[Any],
                       window: tuple[float, float]) -> np.ndarray:
-        """Fraction of the shape in each bin ``[edges[i], edges[i+1]]`` (last axis)."""
-        return np.diff(self.cdf(edges, params, window), axis=-1)
+        """Fraction of the shape in each bin ``[edges[i], edges[i+1]]`` (last axis).
+
+        Never negative: where the density is below the rounding of the CDF (e.g. far below a
+        turn-on) neighbouring CDF values can come out in the wrong order by an ulp, and a
+        negative fraction would make an empty bin's ``n ln(nu)`` undefined.
+        """
+        return np.maximum(np.diff(self.cdf(edges, params, window), axis=-1), 0.0)
 
     def grad_pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
         """Derivatives of :meth:`pdf` with respect to each parameter, stacked on axis 0."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         x = np.asarray(x, dtype=float)
         if self._density_grad is not None and self._primitive_grad is not None:
@@ -225,7 +245,8 @@ class Shape:
                 inside = (x >= lo) & (x <= hi)
                 out = [np.where(inside, gdi / z - d * gzi / z**2, 0.0) for gdi, gzi in zip(gd, gz)]
                 return np.array(out)
-        return _finite_difference(lambda q: self.pdf(x, q, window), p, self.parameters)
+        return _finite_difference(lambda q: self.pdf(x, q, window), p, self.parameters,
+                                  self._difference_scales(p))
 
     def grad_bin_fractions(self, edges: Any, params: Sequence[Any],
                            window: tuple[float, float]) -> np.ndarray:
@@ -239,13 +260,13 @@ class Shape:
     def fractions_and_grad(self, edges: Any, params: Sequence[Any],
                            window: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
         """``(bin_fractions, grad_bin_fractions)`` computed together (shared work)."""
-        lo, hi = _as_window(window)
+        lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         edges = np.asarray(edges, dtype=float)
         if self._primitive_grad is None:
             frac = self.bin_fractions(edges, p, window)
             grad = _finite_difference(lambda q: self.bin_fractions(edges, q, window), p,
-                                      self.parameters)
+                                      self.parameters, self._difference_scales(p))
             return frac, grad
         w = (lo, hi)
         x = np.clip(edges, lo, hi)
@@ -267,7 +288,7 @@ class Shape:
         out = []
         for a, b, gc in zip(glo, ghi, gx):
             out.append(np.diff((gc - a) * inv - c * ((b - a) * inv), axis=-1))
-        frac = np.diff(c, axis=-1)
+        frac = np.maximum(np.diff(c, axis=-1), 0.0)  # as in bin_fractions
         return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
 
     def pdf_and_grad(self, x: np.ndarray, params: Sequence[float],
@@ -293,11 +314,12 @@ class Shape:
         return tuple(n for n in ("width", "sigma") if n in self.parameter_names)
 
 
-def _finite_difference(func, p: Sequence[Any], pars: Sequence[Parameter]) -> np.ndarray:
+def _finite_difference(func, p: Sequence[Any], pars: Sequence[Parameter],
+                       scales: Sequence[Any]) -> np.ndarray:
     out = []
     for i, par in enumerate(pars):
         v = np.asarray(p[i], dtype=float)
-        h = 1e-5 * np.maximum(np.abs(v), 1e-2)
+        h = 1e-5 * np.asarray(scales[i], dtype=float)
         up = v + h
         dn = v - h
         # stay inside the bounds: one-sided difference at a bound

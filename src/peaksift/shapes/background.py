@@ -353,6 +353,12 @@ class TurnOn(_Background):
             out.append(Parameter(p.name, p.start if math.isfinite(p.start) else s, a, b, p.unit))
         return tuple(out)
 
+    def _difference_scales(self, p):
+        # the threshold moves the turn-on across its resolution
+        scales = super()._difference_scales(p)
+        scales[0] = np.abs(p[1])
+        return scales
+
     def _density(self, x, p, window):
         t, r, k = p
         c = 0.5 * (window[0] + window[1])

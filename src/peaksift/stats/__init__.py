@@ -7,8 +7,8 @@ Which piece when
 * :func:`upper_limits` -> :class:`LimitResult`         -- CLs limits (asymptotic or toys) with
   expected bands, on the yield or on sigma x B (:func:`run_toy_limit`: one mass's toy
   limit, the unit of work for execution engines).
-* :mod:`.significance`                                 -- q0, Z, p conversions; Asimov and
-  counting-experiment sensitivities.
+* :mod:`.significance`                                 -- q0, Z, p conversions (also in log
+  space, for Z beyond ~37 where p underflows); Asimov and counting-experiment sensitivities.
 * :mod:`.lee`                                          -- upcrossings (Gross-Vitells) and
   toy-based global p-values.
 * :mod:`.toys`                                         -- the batched toy engine
@@ -32,9 +32,13 @@ from .significance import (
     asimov_counts,
     binned_q0,
     counting_significance,
+    log10_p,
+    log_p_from_q0,
+    log_p_from_z,
     p_from_q0,
     p_from_z,
     q0_from_nll,
+    z_from_log_p,
     z_from_p,
     z_from_q0,
 )
@@ -53,6 +57,9 @@ __all__ = [
     "expected_band_factor",
     "global_from_toys",
     "global_from_upcrossings",
+    "log10_p",
+    "log_p_from_q0",
+    "log_p_from_z",
     "p_from_q0",
     "p_from_z",
     "poisson_interval",
@@ -64,6 +71,7 @@ __all__ = [
     "scan",
     "upcrossings",
     "upper_limits",
+    "z_from_log_p",
     "z_from_p",
     "z_from_q0",
 ]

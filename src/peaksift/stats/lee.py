@@ -13,6 +13,11 @@ Which function when
 Both estimates are floored at the local p-value: the largest q0 of a scan is never below its
 value at the best mass, so p_global >= p_local.  Z_global = Phi^-1(1 - p_global) is reported
 as 0 when p_global >= 0.5.
+
+Both work in log space: a local excess of 40 sigma or more has p_local below the smallest
+double (it is 0 as a float), yet its global p-value and Z_global are finite numbers.  Every
+result carries ``log10_p_local`` and ``log10_p_global`` beside the plain floats, which are 0.0
+when they underflow.
 """
 
 from __future__ import annotations
@@ -23,7 +28,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import FitError
-from .significance import p_from_q0, z_from_p
+from .significance import log10_p, log_p_from_q0, p_from_q0, z_from_log_p
 
 __all__ = ["binomial_error", "finite_scans", "global_from_toys", "global_from_upcrossings",
            "upcrossings"]
@@ -88,6 +93,10 @@ def global_from_upcrossings(q_obs: float, scans: Any, *, u0: float = 0.5,
     estimated from ``scans`` (toys, or the observed scan alone); ``gaps`` as in
     :func:`upcrossings` (blinded ranges: upcrossings per contiguous segment, summed).
 
+    The sum is taken in log space, so a local Z of 100 (q0 = 1e4) gives a finite Z_global
+    just below it; ``log10_p_global`` and ``log10_p_local`` hold the exponents (the floats
+    ``p_global`` and ``p_global_error`` are 0.0 once they underflow).
+
     Scans with a non-finite q0 (failed toy fits) are dropped and counted in
     ``n_failed_toys``.  The estimate is capped at 1; when capped, ``p_global_error`` is
     None (the linear error of the uncapped sum means nothing there) and
@@ -100,16 +109,24 @@ def global_from_upcrossings(q_obs: float, scans: Any, *, u0: float = 0.5,
     n = upcrossings(s, u0, gaps=gaps).astype(float)
     n0 = float(n.mean())
     n0_err = float(n.std(ddof=1) / math.sqrt(n.size)) if n.size > 1 else float(math.sqrt(n0))
-    p_loc = float(p_from_q0(q_obs))
-    fac = math.exp(-(q_obs - u0) / 2.0)
-    raw = p_loc + n0 * fac
-    capped = raw >= 1.0
-    p_glob = min(1.0, raw)
+    log_p_loc = float(log_p_from_q0(q_obs))
+    # ln of the upcrossing term N0 exp(-(u - u0)/2): at q0 ~ 1e4 both terms are ~e^-5000,
+    # far below the smallest double, so the sum is taken in log space (logaddexp)
+    log_fac = -(q_obs - u0) / 2.0
+    log_term = math.log(n0) + log_fac if n0 > 0 else -math.inf
+    log_raw = float(np.logaddexp(log_p_loc, log_term))
+    capped = log_raw >= 0.0
+    log_p_glob = min(0.0, log_raw)
+    err = math.exp(math.log(n0_err) + log_fac) if n0_err > 0 else 0.0
+    # the float is floored at the float p_local, which exp(ln p) may miss by a rounding
+    p_glob = min(1.0, max(math.exp(log_p_glob), float(p_from_q0(q_obs))))
     return {
-        "z_global": max(float(z_from_p(p_glob)), 0.0),
+        "z_global": max(float(z_from_log_p(log_p_glob)), 0.0),
         "p_global": p_glob,
+        "log10_p_global": float(log10_p(log_p_glob)),
+        "log10_p_local": float(log10_p(log_p_loc)),
         "global_method": "upcrossings",
-        "p_global_error": None if capped else n0_err * fac,
+        "p_global_error": None if capped else err,
         "p_global_capped": bool(capped),
         "n_toys": int(s.shape[0]) if source is None else 0,
         "n_failed_toys": failed if source is None else 0,
@@ -124,7 +141,9 @@ def global_from_toys(q_obs: float, max_q0: Any) -> dict[str, Any]:
     """Global p-value as the fraction of toys with ``max q0 >= q_obs`` (binomial error).
 
     When no toy reaches the observed value, ``p_global`` is reported as the 95% upper bound
-    ``1 - 0.05**(1/n)`` (Clopper-Pearson for k = 0) and ``z_global_is_lower_bound`` is True.
+    ``1 - 0.05**(1/n)`` (about 3/n; Clopper-Pearson for k = 0), never 0:
+    ``p_global_is_upper_bound`` and ``z_global_is_lower_bound`` are True and
+    ``p_global_bound_cl`` is 0.95 (None otherwise).
     The estimate is floored at p_local.  Toys whose largest q0 is not finite (a failed fit)
     are left out and counted in ``n_failed_toys``.
     """
@@ -137,17 +156,21 @@ def global_from_toys(q_obs: float, max_q0: Any) -> dict[str, Any]:
         raise FitError("global_from_toys needs at least one toy with a finite q0"
                        + (f" ({failed} failed)" if failed else ""))
     k = int(np.sum(mq >= q_obs))
-    p_loc = float(p_from_q0(q_obs))
+    log_p_loc = float(log_p_from_q0(q_obs))
     bound = k == 0
     p = (1.0 - 0.05 ** (1.0 / ntoy)) if bound else k / ntoy
-    p = max(p, p_loc)
+    log_p = max(math.log(p), log_p_loc)
     return {
-        "z_global": max(float(z_from_p(p)), 0.0),
-        "p_global": p,
+        "z_global": max(float(z_from_log_p(log_p)), 0.0),
+        "p_global": max(p, float(p_from_q0(q_obs))),
+        "log10_p_global": float(log10_p(log_p)),
+        "log10_p_local": float(log10_p(log_p_loc)),
         "global_method": "toys",
         "p_global_error": binomial_error(k, ntoy),
         "n_toys": ntoy,
         "n_failed_toys": failed,
         "n_toys_above": k,
         "z_global_is_lower_bound": bound,
+        "p_global_is_upper_bound": bound,
+        "p_global_bound_cl": 0.95 if bound else None,
     }

@@ -47,8 +47,9 @@ from typing import Any
 import numpy as np
 from scipy import optimize, special, stats
 
+from .._json import plain
 from ..errors import FitError
-from .scan import _clean, _prepare_model
+from .scan import _prepare_model
 from .toys import ScanModel, bkg_fractions, fit_background, profile_signal
 
 __all__ = [
@@ -200,7 +201,7 @@ class LimitResult:
         """JSON-ready: the search's ``limits`` keys (``mass``, ``observed``, ``expected``,
         ``expected_minus2``, ``expected_minus1``, ``expected_plus1``, ``expected_plus2``,
         ``unit``) plus ``cl``, ``method`` and details; blinded observed entries are None."""
-        return _clean({
+        return plain({
             "mass": self.masses, "observed": self.observed, "expected": self.expected,
             "expected_minus2": self.expected_minus2, "expected_minus1": self.expected_minus1,
             "expected_plus1": self.expected_plus1, "expected_plus2": self.expected_plus2,
@@ -572,7 +573,7 @@ def upper_limits(
             obs[j] = res["observed"]
             exp_lim[:, j] = [res["expected"][n] for n in _BANDS]
             methods[j] = "toys"
-            toy_info[f"{m_all[j]:.6g}"] = _clean(res)
+            toy_info[f"{m_all[j]:.6g}"] = plain(res)
     return LimitResult(
         masses=m_all, observed=obs, expected=exp_lim[2], expected_minus2=exp_lim[0],
         expected_minus1=exp_lim[1], expected_plus1=exp_lim[3], expected_plus2=exp_lim[4],

@@ -32,7 +32,9 @@ from typing import Any
 
 import numpy as np
 
+from .._json import plain
 from ..errors import DataWarning, FitError, PeaksiftError
+from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 from ..resolution import check_resolved, resolution_from
 from . import lee
 from .significance import p_from_q0, z_from_q0
@@ -193,16 +195,11 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
     """Background-only fit of the data, robust to poor starting values.
 
     All starts of :func:`_start_grid` are fitted together (stacked Levenberg-Marquardt); the
-    two best are refined by bounded quasi-Newton (scipy L-BFGS-B, yield profiled in closed
-    form) and polished again; the lowest minimum is kept.
+    two best are refined by the likelihood core's minimiser (:func:`peaksift.likelihood.minimize`
+    on :class:`_BackgroundCost`) and polished again; the lowest minimum is kept.
     """
-    from scipy import optimize
-
     if start.size == 0:
         return fit_background(proto, counts[None, :], start[None, :])
-    ntot = float(counts.sum())
-    lower = np.where(np.isfinite(proto.lower), proto.lower, None)
-    upper = np.where(np.isfinite(proto.upper), proto.upper, None)
     # numerically integrated shapes cost one integration per start: fewer starts for them
     grid = _start_grid(start, proto.lower, proto.upper,
                        product=bool(getattr(proto.background, "_has_primitive", True)))
@@ -213,26 +210,50 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
     nll_g = np.where(np.isfinite(nll_g), nll_g, np.inf)
     order = np.argsort(nll_g)
     candidates = [(th_g[i:i + 1], b_g[i:i + 1], nll_g[i:i + 1]) for i in order[:1]]
-
-    def nll_grad(th: np.ndarray) -> tuple[float, np.ndarray]:
-        th2 = th[None, :]
-        g = bkg_fractions(proto, th2)[0]
-        b = ntot / max(g.sum(), 1e-300)
-        nu = np.maximum(b * g, 1e-300)
-        dg = bkg_gradients(proto, th2)[0]
-        val = float(np.sum(nu - counts * np.log(nu)))
-        return val, (dg * b) @ (1.0 - counts / nu)
-
+    cost = _BackgroundCost(proto, counts)
+    lower = np.concatenate([[0.0], proto.lower])
+    upper = np.concatenate([[np.inf], proto.upper])
+    names = ["background_yield"] + [f"theta_{k}" for k in range(proto.theta.size)]
     for i in order[:2]:
         if not np.isfinite(nll_g[i]):
             continue
-        with np.errstate(all="ignore"):
-            res = optimize.minimize(nll_grad, th_g[i], jac=True, method="L-BFGS-B",
-                                    bounds=list(zip(lower, upper)))
-        if np.all(np.isfinite(res.x)):
-            candidates.append(fit_background(proto, counts[None, :], res.x[None, :],
+        x0 = np.concatenate([[b_g[i]], th_g[i]])
+        try:
+            mo = minimize(cost, x0, lower, upper, names)
+        except (ArithmeticError, ValueError, np.linalg.LinAlgError):
+            continue
+        if np.all(np.isfinite(mo.x)):
+            candidates.append(fit_background(proto, counts[None, :], mo.x[None, 1:],
                                              steps=200))
     return min(candidates, key=lambda c: float(c[2][0]))
+
+
+class _BackgroundCost:
+    """Background-only NLL of one spectrum over (yield, shape parameters), built on the
+    likelihood core's Poisson functions, for :func:`peaksift.likelihood.minimize`."""
+
+    errordef = 0.5
+
+    def __init__(self, proto: ScanModel, counts: np.ndarray) -> None:
+        self.proto, self.counts = proto, counts
+
+    def value_grad_info(self, x: np.ndarray, info: bool = True):
+        b, th = float(x[0]), x[None, 1:]
+        with np.errstate(all="ignore"):
+            g = bkg_fractions(self.proto, th)[0]
+            dmu = np.vstack([g[None, :], b * bkg_gradients(self.proto, th)[0]])
+            mu = b * g
+            val = float(binned_nll(self.counts, mu, saturated=False))
+            return (val, binned_gradient(self.counts, mu, dmu),
+                    binned_information(mu, dmu) if info else None)
+
+    def __call__(self, *x: float) -> float:
+        v = self.value_grad_info(np.asarray(x, float), info=False)[0]
+        return v if np.isfinite(v) else 1e300
+
+    def grad(self, *x: float) -> np.ndarray:
+        g = self.value_grad_info(np.asarray(x, float), info=False)[1]
+        return np.where(np.isfinite(g), g, 0.0)
 
 
 def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
@@ -319,22 +340,6 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
 
 
 # ------------------------------------------------------------------------ result
-def _clean(v: Any) -> Any:
-    if isinstance(v, (float, np.floating)):
-        return float(v) if math.isfinite(v) else None
-    if isinstance(v, np.ndarray):
-        return [_clean(x) for x in v.tolist()]
-    if isinstance(v, (list, tuple)):
-        return [_clean(x) for x in v]
-    if isinstance(v, dict):
-        return {k: _clean(x) for k, x in v.items()}
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, np.bool_):
-        return bool(v)
-    return v
-
-
 @dataclass(frozen=True, repr=False)
 class ScanResult:
     """Outcome of :func:`scan` (a frozen value).
@@ -415,7 +420,7 @@ class ScanResult:
             "unit": self.unit, "notes": list(self.notes),
             "refit": None if self.refit is None else self.refit.to_dict(),
         }
-        return _clean(d)
+        return plain(d)
 
     # ------------------------------------------------------ look-elsewhere
     def toy_scans(self, toys: int, *, seed: int = 0, workers: int | None = None,
@@ -488,7 +493,7 @@ class ScanResult:
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
                "p_local": float(self.p_local[self.best_index])}
         out.update(res)
-        return _clean(out)
+        return plain(out)
 
     # ------------------------------------------------------------------ plot
     def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None,
@@ -686,11 +691,8 @@ def _expected_z(model: ScanModel, info: dict[str, Any], spec: _Spectrum,
 
 def _refit(data: Any, info: dict[str, Any], spec: _Spectrum, best: int,
            signal_params: Any, natural_width: Any, notes: list[str]) -> Any:
-    try:
-        from ..fitting import fit
-    except ImportError:  # pragma: no cover - the fitting layer is part of the package
-        notes.append("refit skipped: peaksift.fitting unavailable")
-        return None
+    from ..fitting import fit
+
     sig = info["signal"]
     m = float(info["masses"][best])
     start = {"mass": m}
@@ -700,10 +702,16 @@ def _refit(data: Any, info: dict[str, Any], spec: _Spectrum, best: int,
     if "width" in names:
         w = natural_width(m) if callable(natural_width) else natural_width
         start["width"] = float(w if w is not None else info["sigma"][best])
-    for k, v in (signal_params or {}).items():
-        start[k] = float(v)
+    # what the scan held fixed stays fixed: tails (given or default) and the natural width;
+    # the mass and the resolution width float
+    fixed = {}
+    for p in sig.parameters_for(spec.window):
+        if p.name in ("mass", "sigma") or (p.name == "width" and natural_width is None):
+            continue
+        fixed[p.name] = start.get(p.name, float((signal_params or {}).get(p.name, p.start)))
+    start = {k: v for k, v in start.items() if k not in fixed}
     try:
-        return fit(data, sig, info["background"], spec.window, start=start)
+        return fit(data, sig, info["background"], spec.window, start=start, fixed=fixed)
     except PeaksiftError as exc:
         notes.append(f"refit at {m:g} failed: {exc}")
         return None

@@ -6,6 +6,10 @@ Which function when
   signal-plus-background fit: returns the one-sided q0 (0 when the fitted signal is negative).
 * :func:`z_from_q0`, :func:`p_from_q0` -- Z = sqrt(q0) and p = 1 - Phi(sqrt(q0)) (half chi-square).
 * :func:`z_from_p`, :func:`p_from_z`   -- convert between a one-sided p-value and Z.
+* :func:`log_p_from_q0`, :func:`log_p_from_z`, :func:`z_from_log_p` -- the same in log space
+  (natural log of p), for significances beyond about 37 sigma where p underflows a double
+  (p < 1e-308); Z -> ln p -> Z round-trips to ~1e-12 relative up to Z = 1e4.
+* :func:`log10_p`                -- ln p as a base-10 exponent, the form results.json stores.
 * :func:`counting_significance`  -- median expected Z of a counting experiment, with or
   without an uncertainty on the background (closed forms).
 * :func:`binned_q0`              -- q0 of a binned spectrum with known signal and background
@@ -22,17 +26,22 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special
+from scipy import special
 
 from ..errors import FitError
+from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 
 __all__ = [
     "asimov_counts",
     "binned_q0",
     "counting_significance",
+    "log10_p",
+    "log_p_from_q0",
+    "log_p_from_z",
     "p_from_q0",
     "p_from_z",
     "q0_from_nll",
+    "z_from_log_p",
     "z_from_p",
     "z_from_q0",
 ]
@@ -79,6 +88,47 @@ def z_from_p(p: Any) -> np.ndarray | float:
     return float(z) if np.ndim(z) == 0 else z
 
 
+def log_p_from_z(z: Any) -> np.ndarray | float:
+    r"""Natural log of the one-sided p-value, :math:`\ln p = \ln \Phi(-Z)`, without underflow.
+
+    ``scipy.special.log_ndtr`` computes the logarithm directly, never forming p, so it stays
+    accurate where :math:`p = 1 - \Phi(Z)` itself (``scipy.special.ndtr``) underflows
+    (subnormal, below 2.2e-308, from Z = 37.5 and 0 from Z = 37.7).  For large Z it follows the normal-tail series (Abramowitz, Stegun, Handbook
+    of Mathematical Functions, 26.2.12), :math:`\ln p \approx -Z^2/2 - \ln Z -
+    \tfrac12\ln 2\pi + \ln(1 - Z^{-2} + 3Z^{-4} - \dots)`.
+    """
+    lp = special.log_ndtr(-np.asarray(z, float))
+    return float(lp) if np.ndim(lp) == 0 else lp
+
+
+def log_p_from_q0(q0: Any) -> np.ndarray | float:
+    r"""Natural log of the asymptotic p-value of q0: :math:`\ln p_0 = \ln \Phi(-\sqrt{q_0})`.
+
+    The log-space twin of :func:`p_from_q0` (CCGV eq. 52); finite for any finite q0.
+    """
+    return log_p_from_z(np.sqrt(np.maximum(np.asarray(q0, float), 0.0)))
+
+
+def z_from_log_p(log_p: Any) -> np.ndarray | float:
+    r"""Significance of a one-sided p-value given as its natural log: :math:`Z = -\Phi^{-1}(p)`.
+
+    Uses ``scipy.special.ndtri_exp`` (the inverse of ``log_ndtr``), so
+    ``z_from_log_p(log_p_from_z(z)) == z`` to about 1e-12 relative for Z up to 1e4, far past
+    the point where :func:`z_from_p` returns infinity (p = 0).  ``log_p = 0`` (p = 1) gives
+    ``-inf``, ``log_p = ln 0.5`` gives 0; positive values (p > 1) give NaN.
+    """
+    lp = np.asarray(log_p, float)
+    with np.errstate(invalid="ignore"):
+        z = np.where(lp > 0.0, np.nan, -special.ndtri_exp(np.minimum(lp, 0.0)))
+    return float(z) if np.ndim(z) == 0 else z
+
+
+def log10_p(log_p: Any) -> np.ndarray | float:
+    """A natural-log p-value as a base-10 exponent: ``p = 10**log10_p(log_p)``."""
+    out = np.asarray(log_p, float) / np.log(10.0)
+    return float(out) if np.ndim(out) == 0 else out
+
+
 def counting_significance(s: Any, b: Any, sigma_b: Any = None) -> np.ndarray | float:
     r"""Median expected discovery significance of a counting experiment.
 
@@ -121,9 +171,38 @@ def asimov_counts(signal: Any, background: Any, mu: float = 1.0) -> np.ndarray:
     return mu * np.asarray(signal, float) + np.asarray(background, float)
 
 
-def _nll_poisson(n: np.ndarray, nu: np.ndarray) -> float:
-    nu = np.maximum(nu, 1e-300)
-    return float(np.sum(nu - n * np.log(nu)))
+class _TemplateCost:
+    """NLL of ``nu = mu s + beta b`` (plus the auxiliary count of beta) over the free ones of
+    (mu, beta), on the likelihood core's Poisson functions, for its minimiser."""
+
+    errordef = 0.5
+
+    def __init__(self, n, s, b, tau, m, free, fixed_values):
+        self.n, self.t = n, np.vstack([s, b])
+        self.tau, self.m, self.btot = tau, m, float(b.sum())
+        self.free, self.full = free, np.asarray(fixed_values, float)
+
+    def value_grad_info(self, x: np.ndarray, info: bool = True):
+        v = self.full.copy()
+        v[self.free] = x
+        mu = v @ self.t
+        val = float(binned_nll(self.n, mu, saturated=False))
+        g = binned_gradient(self.n, mu, self.t)
+        fi = binned_information(mu, self.t)
+        if self.tau is not None:  # auxiliary m ~ Pois(tau beta B): one more Poisson bin
+            aux = np.array([self.tau * self.btot])
+            mu_a = v[1] * aux
+            val += float(binned_nll(np.array([self.m]), mu_a, saturated=False))
+            g[1] += float(binned_gradient(np.array([self.m]), mu_a, aux[None, :])[0])
+            fi[1, 1] += float(binned_information(mu_a, aux[None, :])[0, 0])
+        return val, g[self.free], (fi[np.ix_(self.free, self.free)] if info else None)
+
+    def __call__(self, *x: float) -> float:
+        val = self.value_grad_info(np.asarray(x, float), info=False)[0]
+        return val if np.isfinite(val) else 1e300
+
+    def grad(self, *x: float) -> np.ndarray:
+        return self.value_grad_info(np.asarray(x, float), info=False)[1]
 
 
 def binned_q0(
@@ -146,7 +225,8 @@ def binned_q0(
 
     Returns
     -------
-    dict with ``q0``, ``z``, ``p``, ``mu_hat``, ``beta_hat``.
+    dict with ``q0``, ``z``, ``p``, ``log10_p`` (p as a power of ten, finite where the float
+    ``p`` underflows to 0), ``mu_hat``, ``beta_hat``.
     """
     n = np.atleast_1d(np.asarray(counts, float))
     s = np.atleast_1d(np.asarray(signal, float))
@@ -166,27 +246,27 @@ def binned_q0(
         tau = None
         m = 0.0
 
-    def nll(mu: float, beta: float) -> float:
-        val = _nll_poisson(n, mu * s + beta * b)
-        if tau is not None:
-            val += _nll_poisson(np.array([m]), np.array([tau * beta * btot]))
-        return val
-
-    def prof(mu: float) -> tuple[float, float]:
-        if tau is None:
-            return nll(mu, 1.0), 1.0
-        r = optimize.minimize_scalar(
-            lambda lb: nll(mu, float(np.exp(lb))), bracket=(-0.5, 0.5), tol=1e-12
-        )
-        return float(r.fun), float(np.exp(r.x))
-
-    nll0, _ = prof(0.0)
-    # maximise over mu >= 0 (q0 is one-sided)
+    # beta > 0 keeps every expectation positive; mu >= 0 because q0 is one-sided
     smax = max(float(n.sum()), 1.0) / max(float(s.sum()), 1e-300)
-    r = optimize.minimize_scalar(lambda u: prof(u)[0], bounds=(0.0, 3.0 * smax + 10.0),
-                                 method="bounded", options={"xatol": 1e-10 * smax})
-    mu_hat = float(r.x)
-    nll1, beta1 = prof(mu_hat)
+    lower, upper = np.array([0.0, 1e-9]), np.array([3.0 * smax + 10.0, np.inf])
+
+    def profile(free: list[int], start: list[float]) -> tuple[float, np.ndarray]:
+        cost = _TemplateCost(n, s, b, tau, m, np.array(free), start)
+        mo = minimize(cost, np.asarray(start)[free], lower[free], upper[free],
+                      ["mu", "beta"][free[0]:free[-1] + 1], edm_goal=1e-12)
+        v = np.asarray(start, float)
+        v[free] = mo.x
+        return float(mo.fval), v
+
+    if tau is None:
+        nll0 = float(binned_nll(n, b, saturated=False))
+        nll1, (mu_hat, beta1) = profile([0], [max(float((n - b).sum()), 0.0) / max(
+            float(s.sum()), 1e-300) + 1e-3, 1.0])
+    else:
+        nll0, _ = profile([1], [0.0, 1.0])
+        nll1, (mu_hat, beta1) = profile([0, 1], [max(float((n - b).sum()), 0.0) / max(
+            float(s.sum()), 1e-300) + 1e-3, 1.0])
+    mu_hat, beta1 = float(mu_hat), float(beta1)
     q0 = q0_from_nll(nll0, min(nll1, nll0), mu_hat)
-    return {"q0": q0, "z": z_from_q0(q0), "p": p_from_q0(q0), "mu_hat": mu_hat,
-            "beta_hat": beta1}
+    return {"q0": q0, "z": z_from_q0(q0), "p": p_from_q0(q0),
+            "log10_p": log10_p(log_p_from_q0(q0)), "mu_hat": mu_hat, "beta_hat": beta1}

@@ -55,6 +55,8 @@ import numpy as np
 
 from .._processes import process_pool, quiet_fork, stop_pool, worker_start
 from ..errors import FitError
+from ..likelihood import binned_nll, damped_step
+from ..likelihood.minimize import solve_stacked
 
 __all__ = ["ScanModel", "ToyBatch", "run_toy_batch", "run_toys", "toy_counts"]
 
@@ -184,28 +186,11 @@ def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
 
 
 def _nll(n: np.ndarray, nu: np.ndarray) -> np.ndarray:
-    # n * log(nu) with nu > 0 (0 * log(nu) = 0 for empty bins); faster than xlogy
-    return np.sum(nu - n * np.log(np.maximum(nu, 1e-300)), axis=-1)
+    # the core's Poisson NLL without its saturated constant (differences are all we need)
+    return binned_nll(n, nu, saturated=False)
 
 
 # ------------------------------------------------------- background-only fit (stacked)
-def _damped_solve(hess: np.ndarray, grad: np.ndarray, lam: np.ndarray) -> np.ndarray:
-    """Levenberg-Marquardt step ``-(H + lam (diag H + floor))^-1 g`` for stacked systems.
-
-    The floor (1e-6 of the mean diagonal) keeps directions the Fisher-type Hessian sees as
-    flat (e.g. a squared coefficient at 0) from taking huge steps.
-    """
-    p = hess.shape[-1]
-    d = np.diagonal(hess, axis1=-2, axis2=-1)
-    floor = 1e-6 * np.abs(d).mean(axis=-1, keepdims=True) + 1e-300
-    h = hess.copy()
-    i = np.arange(p)
-    h[:, i, i] += lam[:, None] * (d + floor) + 1e-14 * floor
-    with np.errstate(all="ignore"):
-        step = -np.linalg.solve(h, grad[..., None])[..., 0]
-    return np.where(np.isfinite(step), step, 0.0)
-
-
 @_quiet
 def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = None,
                    *, steps: int = 30, tol: float = 1e-9) -> tuple[np.ndarray, np.ndarray,
@@ -257,7 +242,7 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
         for _try in range(12):
             r = np.flatnonzero(todo)
             rows = idx[r]
-            step = _damped_solve(hess[r], grad[r], lam[rows])
+            step = damped_step(hess[r], grad[r], lam[rows])
             trial = np.clip(th[r] + step[:, 1:], model.lower, model.upper)
             gt, bt, nt = profile_b(trial, rows)
             ok = nt <= nll[rows] + 1e-10
@@ -351,7 +336,7 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         for _try in range(12):
             r = np.flatnonzero(todo)
             rows = idx[r]
-            step = _damped_solve(hess[r], grad[r], lam[rows])
+            step = damped_step(hess[r], grad[r], lam[rows])
             ts = si[r] if fixed else si[r] + step[:, 0]
             tb = bi[r] + step[:, off]
             tth = np.clip(thi[r] + step[:, off + 1:], model.lower, model.upper)
@@ -536,7 +521,7 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     with np.errstate(all="ignore"):
         reg = 1e-12 * np.trace(h_eta, axis1=1, axis2=2)[:, None, None] * np.eye(q)
         null_shift = -0.5 * np.einsum("qt,tq->t", g_eta,
-                                      np.linalg.solve(h_eta + reg, g_eta.T[..., None])[..., 0])
+                                      solve_stacked(h_eta + reg, g_eta.T))
     q0 = np.zeros((mcount, t))
     kidx = {pr: k for k, pr in enumerate(pairs)}
     kidx.update({(j, i): k for (i, j), k in list(kidx.items())})
@@ -580,8 +565,10 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     q0 = np.ascontiguousarray(q0.T)
     if refine > 0:
         _refine_maxima(model, n, q0, theta, b, nll_b, refine)
+    # a toy with no event in the used bins has no excess anywhere: q0 = 0 exactly
+    q0[n.sum(axis=1) == 0] = 0.0
     # a toy whose fits failed (non-finite background fit or q0) is marked NaN, not -inf or 0
-    bad = ~np.isfinite(nll_b)[:, None] | ~np.isfinite(q0)
+    bad = (~np.isfinite(nll_b)[:, None] | ~np.isfinite(q0)) & (n.sum(axis=1) > 0)[:, None]
     q0[bad] = np.nan
     return q0
 

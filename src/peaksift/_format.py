@@ -1,0 +1,129 @@
+"""Numbers as text for the command-line summary, the report and the figures.
+
+Base layer (imports only the base helper _json): ``cli``, ``report`` and ``plotting`` all format through
+these few functions, so a number reads the same everywhere and no output path can fail on a
+value peaksift itself produced.  Every function accepts anything -- None, NaN, infinities,
+numpy scalars, strings -- and returns text; a missing or non-finite number is ``"n/a"``.
+
+* :func:`as_finite`     -- a finite float or None (the test every other function makes).
+* :func:`number`        -- a plain number (4 significant digits; ints with a thousands mark).
+* :func:`fixed`         -- a fixed number of decimals (masses, Z).
+* :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits.
+* :func:`p_value`       -- a p-value; below the smallest normal double (2.2e-308), where the
+  float is 0, it is written as a power of ten from its ``log10_p``: ``10^-2173.9``.
+* :func:`significance`  -- ``Z sigma (p = ...)`` for the local or the global result of a
+  search's ``best`` entry, bounds marked (``> 2.75``, ``p < 3.0e-03``).
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from collections.abc import Mapping
+from typing import Any
+
+from ._json import finite
+
+__all__ = ["NA", "as_finite", "fixed", "format_pm", "number", "p_value", "significance"]
+
+#: what every function prints for a missing or non-finite number
+NA = "n/a"
+
+# smallest positive normal double: below it a float p-value has lost precision (or is 0)
+_P_FLOOR = sys.float_info.min
+
+
+def as_finite(x: Any) -> float | None:
+    """``x`` as a finite float, or None (None, NaN, inf, bools, text that is not a number)."""
+    return None if isinstance(x, bool) else finite(x)
+
+
+def number(x: Any, digits: int = 4, *, sep: str = ",") -> str:
+    """A number in ``digits`` significant digits (scientific notation below 1e-3 and from
+    1e6); integers in full with ``sep`` between thousands; bools as yes/no; other text as is.
+    """
+    if x is None:
+        return NA
+    kind = getattr(getattr(x, "dtype", None), "kind", "")  # numpy scalars
+    if isinstance(x, bool) or kind == "b":
+        return "yes" if x else "no"
+    if isinstance(x, int) or kind in ("i", "u"):
+        return f"{int(x):,}".replace(",", sep)
+    if isinstance(x, str) and as_finite(x) is None:
+        return x
+    v = as_finite(x)
+    if v is None:
+        return NA
+    if v != 0 and (abs(v) < 1e-3 or abs(v) >= 1e6):
+        return f"{v:.{max(digits - 1, 1)}e}"
+    return f"{v:.{digits}g}"
+
+
+def fixed(x: Any, decimals: int = 2, *, signed: bool = False) -> str:
+    """``x`` with ``decimals`` decimals (``signed``: always with its sign), or ``"n/a"``."""
+    v = as_finite(x)
+    if v is None:
+        return NA
+    return f"{v:+.{decimals}f}" if signed else f"{v:.{decimals}f}"
+
+
+def format_pm(value: Any, error: Any, unit: str = "") -> str:
+    """``value ± error`` with the error rounded to two significant digits (common practice).
+
+    Without a usable error (None, NaN, inf, <= 0) only the value is shown; without a usable
+    value, ``"n/a"``.
+    """
+    u = f" {unit}" if unit else ""
+    v = as_finite(value)
+    if v is None:
+        return NA
+    e = as_finite(error)
+    if e is None or e <= 0:
+        return f"{number(v)}{u}"
+    dec = max(0, 1 - math.floor(math.log10(e)))
+    return f"{v:.{dec}f} \u00b1 {e:.{dec}f}{u}"
+
+
+def p_value(p: Any, log10_p: Any = None, *, upper_bound: bool = False) -> str:
+    """A p-value as text: ``0.0123``, ``4.80e-05``, or ``10^-2173.9`` once it underflows.
+
+    The float ``p`` is used while it is a normal double (>= 2.2e-308); below that (0 after
+    underflow) the exponent ``log10_p`` is written instead.  Without an exponent an
+    underflowed p reads ``< 2.2e-308``.  ``upper_bound`` prefixes ``<`` (e.g. no toy reached
+    the observed value, so only a bound is known).
+    """
+    lt = "< " if upper_bound else ""
+    v = as_finite(p)
+    if v is not None and v >= _P_FLOOR:
+        return lt + (f"{v:.2e}" if v < 1e-3 else f"{v:.4f}")
+    lg = as_finite(log10_p)
+    if lg is not None:
+        return f"{lt}10^{lg:.1f}"
+    if v is not None and 0.0 <= v < _P_FLOOR:  # underflowed and no exponent to show
+        return f"< {_P_FLOOR:.1e}"
+    return NA
+
+
+def significance(best: Mapping[str, Any] | None, which: str = "local", *,
+                 sigma: str = "\u03c3") -> str:
+    """``Z sigma (p = ...)`` of the ``local`` or ``global`` result in a search's ``best``.
+
+    Reads ``z_<which>``, ``p_<which>``, ``log10_p_<which>`` and, for the global result,
+    ``z_global_is_lower_bound``, ``p_global_is_upper_bound`` and ``global_method``; any of
+    them may be missing or not finite.
+    """
+    b = best if isinstance(best, Mapping) else {}
+    z = fixed(b.get(f"z_{which}"))
+    lower = which == "global" and bool(b.get("z_global_is_lower_bound"))
+    upper = which == "global" and bool(b.get("p_global_is_upper_bound", lower))
+    ztxt = f"> {z}" if lower and z != NA else z
+    ztxt = f"{ztxt} {sigma}" if z != NA else ztxt
+    ptxt = p_value(b.get(f"p_{which}"), b.get(f"log10_p_{which}"), upper_bound=upper)
+    inner = f"p = {ptxt}" if not ptxt.startswith("<") else f"p {ptxt}"
+    if which == "global":
+        inner += f", {b.get('global_method') or NA}"
+        if upper and b.get("p_global_bound_cl") is not None:
+            cl, n = as_finite(b.get("p_global_bound_cl")), as_finite(b.get("n_toys"))
+            inner += (f"; {number(100 * cl, 3)}% CL bound" if cl is not None else "") + \
+                (f", no toy of {int(n)} reached the observed q0" if n else "")
+    return f"{ztxt} ({inner})"

@@ -1,0 +1,427 @@
+"""The free fit: signal(s) plus background by an extended likelihood, from any start.
+
+:func:`fit` builds the cost from :mod:`peaksift.likelihood`, minimises it from every
+starting point the coarse likelihood scan suggests and keeps the lowest minimum (validity is a
+property of that minimum, never a reason to prefer a worse one), then derives errors, optional
+profile-likelihood intervals, the peak summary and the goodness of fit.  It returns a
+:class:`~peaksift.fitting.result.FitResult` for every fit it can set up: one that cannot be
+made is returned flagged invalid with its reasons.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+from scipy import special
+
+from ..errors import FitError, closest
+from ..likelihood import (
+    BinnedCost,
+    Constraint,
+    Minimum,
+    Model,
+    UnbinnedCost,
+    baker_cousins_chi2,
+    minimize,
+    new_minuit,
+    refine,
+)
+from ..likelihood.starts import coarse_bins, fit_starts
+from ..shapes import Shape
+from .data import FitData, gof_binning, poisson_scale, prepare
+from .result import FitResult
+
+__all__ = ["fit"]
+
+#: numerical failures of one start: that start is given up, the others still count
+_NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError)
+#: below this signal yield / error the symmetric errors of a free peak under-cover
+#: (measured on toys: 55-64 % instead of 68 % at ~5 sigma; see docs/decisions)
+_UNDERCOVER_Z = 6.0
+
+
+def fit(
+    data: Any,
+    signal: Any = "gaussian",
+    background: Any = "exponential",
+    window: tuple[float, float] | None = None,
+    *,
+    weights: Any = None,
+    binned: bool | None = None,
+    bins: Any = None,
+    start: Mapping[str, float] | None = None,
+    fixed: Mapping[str, float] | None = None,
+    limits: Mapping[str, tuple[float, float]] | None = None,
+    constraints: Mapping[str, Any] | None = None,
+    intervals: bool | Sequence[str] = False,
+    minos: bool | Sequence[str] | None = None,
+    retries: int = 3,
+) -> FitResult:
+    """Fit signal(s) + background with an extended likelihood.
+
+    Parameters
+    ----------
+    data : MassHistogram, array of masses, or (masses, weights)
+    signal : shape name, Shape, or a list of them (several peaks)
+    background : shape name or Shape
+    window : (lo, hi), optional
+        Fit window in GeV (default: the histogram's range / the masses' range).  For a
+        histogram, only bins completely inside the window are used and the window snaps
+        to their edges.
+    weights : array, optional
+        Per-mass weights (unbinned data).
+    binned : bool or None
+        None chooses: histograms binned; arrays unbinned up to ``UNBINNED_LIMIT`` masses in
+        the window, binned in ``bins`` (default ``DEFAULT_BINS``) bins above.  The choice and
+        its reason are in ``FitResult.binned`` / ``binned_reason``.
+    start : dict, optional
+        Starting values by parameter name (others are found automatically).
+    fixed : dict, optional
+        Parameters held at the given values.  Fixing every ``signal_yield`` to 0 also fixes
+        that component's shape parameters (they have no effect then).
+    limits : dict, optional
+        ``name -> (lower, upper)`` replacing the default bounds.
+    constraints : dict, optional
+        ``name -> Constraint`` (:class:`peaksift.likelihood.Constraint`: Gaussian or
+        log-normal) or ``name -> (center, width)`` for a Gaussian.
+    intervals : bool or list of names
+        Profile-likelihood (MINOS-type) intervals for all free (True) or the named
+        parameters.  ``minos=`` is an older spelling of the same.
+    retries : int
+        Further starting widths tried while the best fit is not valid.
+
+    Returns
+    -------
+    FitResult
+
+    Raises
+    ------
+    FitError
+        Empty window, fewer events than free parameters, non-finite data, inconsistent
+        bounds or starts, unknown shape or parameter names.
+
+    Notes
+    -----
+    Binned: :math:`-\\ln L = \\sum_i [\\mu_i - n_i + n_i \\ln(n_i/\\mu_i)]` with
+    :math:`\\mu_i` the bin integrals of the model (Baker and Cousins, Nucl. Instrum. Meth. 221
+    (1984) 437, eq. 11), so ``2 nll`` at the minimum is the goodness-of-fit chi-square and
+    differences of ``nll`` are profile likelihood ratios.  Weighted bins: scaled Poisson
+    (Bohm and Zech, Nucl. Instrum. Meth. A 748 (2014) 1; from memory).  Unbinned:
+    :math:`-\\ln L = \\sum_k \\nu_k - \\sum_j w_j \\ln \\sum_k \\nu_k f_k(x_j)`; weighted
+    unbinned fits get the sandwich covariance :math:`H^{-1} D H^{-1}` (Langenbruch, Eur. Phys.
+    J. C 82 (2022) 393; from memory).  See :mod:`peaksift.likelihood`.
+    """
+    if minos is not None:
+        intervals = minos
+    d = prepare(data, weights, window, binned, bins)
+    model = Model(signal, background, d.window)
+    names = list(model.parameter_names)
+    fixed = dict(fixed or {})
+    start = dict(start or {})
+    limits = dict(limits or {})
+    cons = {k: Constraint.coerce(c, k) for k, c in dict(constraints or {}).items()}
+    for label, dct in (("fixed", fixed), ("start", start), ("limits", limits),
+                       ("constraints", cons)):
+        for k in dct:
+            if k not in names:
+                hint = closest(k, names)
+                raise FitError(f"{label}: unknown parameter {k!r}"
+                               f"{f' (did you mean {hint!r}?)' if hint else ''}; "
+                               f"parameters are {', '.join(names)}")
+    if d.total <= 0:
+        raise FitError(f"the fit window {d.window} holds no events (sum of weights "
+                       f"{d.total:g}); widen the window or check the selection")
+    lower, upper = _bounds(model, d.total, limits)
+    base, is_fixed = _base_values(model, d, start, fixed, lower, upper)
+    free_idx = np.flatnonzero(~is_fixed)
+    nfree = int(free_idx.size)
+    n_entries = (float(np.sum(d.n)) if d.binned and not d.weighted else
+                 float(np.sum(d.n**2 / np.where(d.n2 > 0, d.n2, 1))) if d.binned else
+                 float(d.x.size))
+    if n_entries < nfree:
+        raise FitError(f"only {n_entries:g} events in the window {d.window} for {nfree} free "
+                       "parameters; widen the window, fix parameters or use fewer")
+
+    cons_idx = [(names.index(k), c) for k, c in cons.items()]
+    if d.binned:
+        scale = poisson_scale(d.n, d.n2)
+
+        def make_cost(v: np.ndarray) -> Any:
+            return BinnedCost(model, v, free_idx, cons_idx, d.edges, d.n, scale)
+        se, sn, sn2 = coarse_bins(d.edges, d.n, d.n2, 100)
+    else:
+        def make_cost(v: np.ndarray) -> Any:
+            return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
+        se, sn, sn2 = gof_binning(d)
+    given = {**start, **fixed}
+    with np.errstate(all="ignore"):
+        starts = fit_starts(model, se, sn, poisson_scale(sn, sn2), base, is_fixed, given,
+                            lower, upper, d.total, retries)
+    lo_f, hi_f = lower[free_idx], upper[free_idx]
+    free_names = [names[i] for i in free_idx]
+    best, tried, calls = None, [], 0
+    for s0, essential in starts:
+        if not essential and best is not None and not best[3]:
+            break  # every candidate peak tried and the best is valid: other widths not needed
+        cost = make_cost(s0)
+        try:
+            mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names)
+            x, f, cov, posdef = refine(cost, mo, lo_f, hi_f)
+        except _NUMERIC as exc:
+            tried.append(math.nan)
+            calls += cost.ncall
+            if best is None:
+                best = (math.inf, None, cost, [f"minimisation failed ({type(exc).__name__})"],
+                        s0[free_idx], math.nan, None, False)
+            continue
+        calls += cost.ncall
+        tried.append(float(f))
+        problems = _problems(mo, x, posdef, lo_f, hi_f, free_names)
+        if not math.isfinite(f):
+            problems.append("negative log-likelihood not finite at the minimum")
+        if best is None or (math.isfinite(f) and f < best[0] - 1e-9):
+            best = (f if math.isfinite(f) else math.inf, mo, cost, problems, x, f, cov, posdef)
+    _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
+    if free_cov is None:
+        free_cov = np.full((nfree, nfree), np.nan)
+    return _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
+                   problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
+                   tuple(tried), calls)
+
+
+def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):
+    names = model.parameter_names
+    lower = np.array([p.lower for p in model.parameters], float)
+    upper = np.array([p.upper for p in model.parameters], float)
+    tot = max(total, 1.0)
+    yields = [iy for _, _, iy in model.blocks]
+    for iy in yields[:-1]:
+        lower[iy], upper[iy] = -0.5 * tot - 10.0, 5.0 * tot + 10.0
+    lower[yields[-1]], upper[yields[-1]] = 0.0, 5.0 * tot + 10.0
+    for k, (a, b) in limits.items():
+        i = names.index(k)
+        lower[i], upper[i] = float(a), float(b)
+    for i, k in enumerate(names):
+        if not lower[i] < upper[i]:
+            raise FitError(f"inconsistent bounds for {k!r}: lower {lower[i]:g} is not below "
+                           f"upper {upper[i]:g}; fix limits={{{k!r}: (lo, hi)}}")
+    return lower, upper
+
+
+def _base_values(model: Model, d: FitData, start: dict, fixed: dict, lower: np.ndarray,
+                 upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    names = list(model.parameter_names)
+    for k, v in {**start, **fixed}.items():
+        i = names.index(k)
+        if not math.isfinite(float(v)):
+            raise FitError(f"value for {k!r} is not finite ({v!r})")
+        if k in start and not lower[i] <= float(v) <= upper[i]:
+            raise FitError(f"start value {k}={v:g} is outside its bounds "
+                           f"[{lower[i]:g}, {upper[i]:g}]; change the start or limits={{...}}")
+    is_fixed = np.zeros(len(names), bool)
+    for k in fixed:
+        is_fixed[names.index(k)] = True
+    for _, sl, iy in model.blocks[:-1]:
+        if names[iy] in fixed and float(fixed[names[iy]]) == 0.0:
+            is_fixed[sl] = True
+    yields = [iy for _, _, iy in model.blocks]
+    base = np.array([p.start for p in model.parameters], float)
+    for i in range(len(names)):
+        if not math.isfinite(base[i]) and i not in yields:
+            base[i] = 0.5 * (lower[i] + upper[i])
+    for k, v in start.items():
+        base[names.index(k)] = float(v)
+    base = np.clip(base, lower, upper)
+    for k, v in fixed.items():  # fixed values are used as given, even outside the bounds
+        base[names.index(k)] = float(v)
+    for iy in yields[:-1]:
+        if not math.isfinite(base[iy]):
+            base[iy] = 0.0
+    if not math.isfinite(base[yields[-1]]):
+        base[yields[-1]] = d.total
+    return base, is_fixed
+
+
+def _problems(mo: Minimum, x: np.ndarray, posdef: bool, lower: np.ndarray, upper: np.ndarray,
+              names: list[str]) -> list[str]:
+    out = []
+    if not mo.converged:
+        out.append("minimiser did not converge" + (" (call limit reached)"
+                                                  if mo.call_limit else ""))
+    for i, name in enumerate(names):
+        if _distance_to_bound(x[i], lower[i], upper[i])[0] <= _bound_tolerance(
+                x[i], lower[i], upper[i]):
+            out.append(f"{name} at a bound ({x[i]:.6g})")
+    if not posdef:
+        out.append("covariance not positive definite (Hessian of the NLL not invertible)")
+    return out
+
+
+def _bound_tolerance(x: float, lo: float, hi: float) -> float:
+    span = hi - lo
+    return 1e-4 * span if math.isfinite(span) else 1e-8 * max(abs(x), 1.0)
+
+
+def _distance_to_bound(x: float, lo: float, hi: float) -> tuple[float, float]:
+    """(distance to the nearer finite bound, that bound)."""
+    dl = x - lo if math.isfinite(lo) else math.inf
+    du = hi - x if math.isfinite(hi) else math.inf
+    return (dl, lo) if dl <= du else (du, hi)
+
+
+def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost, problems,
+            xbest, fbest, free_cov, posdef, intervals, tried, calls) -> FitResult:
+    npar = len(names)
+    vals = base.copy()
+    vals[free_idx] = xbest
+    treatment = "none (unweighted)"
+    if d.weighted:
+        if d.binned:
+            treatment = ("scaled Poisson bins (Bohm and Zech 2014): errors from the Hessian "
+                         "of the effective-count likelihood")
+        else:
+            treatment = "sandwich covariance H^-1 D H^-1 (Langenbruch 2022)"
+            if posdef:
+                free_cov = free_cov @ cost.score_outer(xbest) @ free_cov
+    cov = np.zeros((npar, npar))
+    cov[np.ix_(free_idx, free_idx)] = free_cov
+    err = np.sqrt(np.clip(np.diag(cov), 0, None))
+    err[~np.isfinite(np.diag(cov))] = np.nan
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corr = cov / np.outer(err, err)
+    corr[~np.isfinite(corr)] = 0.0
+    np.fill_diagonal(corr, np.where(err > 0, 1.0, 0.0))
+    notes: list[str] = []
+    for k, i in enumerate(free_idx):
+        dist, bnd = _distance_to_bound(xbest[k], lower[i], upper[i])
+        if (math.isfinite(dist) and dist > _bound_tolerance(xbest[k], lower[i], upper[i])
+                and math.isfinite(err[i]) and dist < err[i]):
+            notes.append(f"{names[i]} lies within one standard error of its bound {bnd:g}: "
+                         "its symmetric error is not meaningful, use the interval")
+    ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
+                       upper, problems, notes)
+    sig0, sl0, iy0 = model.blocks[0]
+    p0 = list(vals[sl0])
+    i_m = sl0.start + sig0.parameter_names.index("mass")
+    wpars = sig0.width_parameters()
+    wname = wpars[0] if wpars else ""
+    i_w = sl0.start + sig0.parameter_names.index(wname) if wname else None
+    if (not is_fixed[iy0] and (i_w is not None and not is_fixed[i_w]) and not ivals
+            and err[iy0] > 0 and abs(vals[iy0]) / err[iy0] < _UNDERCOVER_Z):
+        notes.append("free mass and width at a modest significance: the symmetric errors "
+                     "under-cover (55-64 % for 68 % on toys); ask for intervals=True")
+    fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
+    ge, gn, gn2 = gof_binning(d)
+    mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
+    if mu is None:
+        mu = model.expected(ge, vals)
+    gsc = poisson_scale(gn, gn2)
+    chi2 = float(baker_cousins_chi2(gn, mu, gsc))
+    ndf = int(gn.size - free_idx.size)
+    pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
+    flags = {
+        "converged": bool(mo is not None and mo.converged),
+        "at_bound": any("bound" in p for p in problems),
+        "near_bound": any("of its bound" in n for n in notes),
+        "posdef_covariance": bool(posdef),
+    }
+    return FitResult(
+        parameters=tuple(names), values=dict(zip(names, map(float, vals))),
+        errors=dict(zip(names, map(float, err))),
+        fixed=tuple(n for n, f in zip(names, is_fixed) if f),
+        covariance=cov, correlations=corr, intervals=ivals, nll=float(fbest),
+        valid=not problems, problems=tuple(problems), notes=tuple(notes), flags=flags,
+        binned=d.binned, binned_reason=d.reason, weighted=d.weighted,
+        weight_treatment=treatment, window=d.window, n_events=d.total,
+        peak_mass=float(sig0.location(p0)), peak_mass_error=float(err[i_m]),
+        peak_width=float(vals[i_w]) if i_w is not None else math.nan,
+        peak_width_error=float(err[i_w]) if i_w is not None else math.nan,
+        width_parameter=wname, fwhm=fw, fwhm_error=fw_err,
+        gof_chi2=chi2, gof_ndf=ndf, gof_p_value=pval, gof_note=_gof_note(d, cons, is_fixed,
+                                                                          names),
+        edges=np.asarray(ge), observed=np.asarray(gn), observed_sumw2=np.asarray(gn2),
+        expected=np.asarray(mu), pulls=np.asarray(pulls),
+        bounds={n: (float(lower[i]), float(upper[i])) for i, n in enumerate(names)},
+        constraints=cons, model=model, starts_tried=len(tried), starts_nll=tried,
+        n_calls=calls, unit=d.unit, minimizer="none" if mo is None else mo.method, cost=cost,
+    )
+
+
+def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
+               problems, notes):
+    if not which:
+        return None
+    if problems:
+        notes.append("profile-likelihood intervals not made: the fit is not valid")
+        return None
+    wanted = [names[i] for i in free_idx] if which is True else list(which)
+    for k in wanted:
+        if k not in names or is_fixed[names.index(k)]:
+            raise FitError(f"intervals: {k!r} is not a free parameter")
+    free_names = [names[i] for i in free_idx]
+    lo_f, hi_f = lower[free_idx], upper[free_idx]
+    out = {}
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore")
+        try:
+            m = new_minuit(cost, xbest, lo_f, hi_f, free_names, err[free_idx])
+            m.migrad()
+        except _NUMERIC + (RuntimeError,):
+            notes.append("profile-likelihood intervals failed (iminuit could not restart)")
+            return None
+        for k in wanted:
+            try:
+                m.minos(k)
+                me = m.merrors[k]
+                out[k] = (float(me.lower), float(me.upper))
+                if not me.is_valid:
+                    notes.append(f"profile-likelihood interval of {k} is not valid "
+                                 f"({'lower' if not me.lower_valid else 'upper'} side)")
+            except _NUMERIC + (RuntimeError,):
+                notes.append(f"profile-likelihood interval of {k} could not be made")
+    return out
+
+
+def _gof_note(d: FitData, cons: dict, is_fixed: np.ndarray, names: list[str]) -> str:
+    if d.binned:
+        note = ("saturated-model (Baker-Cousins) chi-square of the fitted bins, "
+                "asymptotically chi-square(ndf)")
+    else:
+        note = ("approximate: parameters fitted unbinned, the masses then binned for the "
+                "chi-square, which lies between chi-square(ndf) and chi-square(bins - 1) "
+                "(Chernoff-Lehmann), so the p-value is somewhat too small")
+    if d.weighted:
+        note += "; weighted bins as scaled-Poisson effective counts"
+    n_con = sum(1 for k in cons if not is_fixed[names.index(k)])
+    if n_con:
+        note += (f"; {n_con} constrained parameter{'s' if n_con > 1 else ''} "
+                 "counted as free in ndf")
+    return note
+
+
+def _fwhm_with_error(shape: Shape, p: list[float], cov: np.ndarray) -> tuple[float, float]:
+    try:
+        f0 = shape.fwhm(p)
+    except (FitError, ValueError, ArithmeticError):
+        return math.nan, math.nan
+    if not np.all(np.isfinite(cov)):
+        return float(f0), math.nan
+    grad = np.zeros(len(p))
+    try:
+        for i in range(len(p)):
+            if cov[i, i] <= 0:
+                continue
+            h = 1e-4 * math.sqrt(cov[i, i])
+            q1, q2 = list(p), list(p)
+            q1[i] += h
+            q2[i] -= h
+            grad[i] = (shape.fwhm(q1) - shape.fwhm(q2)) / (2 * h)
+    except (FitError, ValueError, ArithmeticError):
+        return float(f0), math.nan
+    return float(f0), float(math.sqrt(max(grad @ cov @ grad, 0.0)))

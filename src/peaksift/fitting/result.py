@@ -1,0 +1,361 @@
+"""The result of a free fit: a frozen value with a summary, a dict for results.json and back.
+
+``FitResult`` holds values, errors, profile-likelihood (MINOS-type) intervals when asked,
+the covariance, validity with its reasons, the peak summary (mass, width, FWHM), the
+goodness of fit and the binned data with the fitted expectation and pulls.  It compares
+with ``==``; its mappings cannot be changed through it; ``to_dict()`` / ``from_dict()`` go to
+and from JSON; ``to_minuit()`` gives an ``iminuit.Minuit`` set up at the minimum.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+from dataclasses import dataclass, field, fields
+from types import MappingProxyType
+from typing import Any
+
+import numpy as np
+
+from .. import shapes as _shapes
+from .._json import finite as number
+from ..errors import FitError
+from ..likelihood import Model, new_minuit
+
+__all__ = ["FitResult", "format_value"]
+
+#: shape options that change a shape's parameters (kept so ``from_dict`` rebuilds the model)
+_SHAPE_OPTIONS = {"exppoly": ("order",), "bernstein": ("degree",), "dijet": ("npar", "sqrt_s")}
+
+
+def shape_spec(shape: Any) -> dict[str, Any]:
+    """``{"name": ..., option: value}``: enough to rebuild ``shape`` with shapes.get."""
+    out: dict[str, Any] = {"name": shape.name}
+    for k in _SHAPE_OPTIONS.get(shape.name, ()):
+        out[k] = getattr(shape, k)
+    return out
+
+
+def format_value(v: float, e: float) -> str:
+    """``v ± e`` rounded to two significant digits of the error."""
+    if not math.isfinite(v):
+        return "n/a"
+    if not (math.isfinite(e) and e > 0):
+        return f"{v:.6g}"
+    digits = max(0, 1 - math.floor(math.log10(e)))
+    return f"{v:.{digits}f} ± {e:.{digits}f}"
+
+
+def _frozen(d: Any) -> MappingProxyType:
+    return MappingProxyType(dict(d))
+
+
+@dataclass(frozen=True, repr=False, eq=False)
+class FitResult:
+    """Outcome of :func:`peaksift.fit` (a frozen value).
+
+    Attributes
+    ----------
+    parameters : tuple of str
+        Parameter names in model order.
+    values, errors : mapping
+        Best-fit values and symmetric errors from the observed Hessian of the negative
+        log-likelihood at the minimum (sandwich errors for weighted unbinned fits; fixed
+        parameters have error 0).  Read-only.
+    intervals : mapping or None
+        ``name -> (lower, upper)`` profile-likelihood (MINOS-type) errors, negative and
+        positive, where they were asked for and could be made.
+    covariance, correlations : ndarray
+        Over all parameters in order (rows/columns of fixed parameters are zero).
+    nll : float
+        Minimum of the negative log-likelihood (binned: in the saturated form).
+    valid : bool
+        True only when the minimiser converged, no free parameter sits at a bound, and the
+        covariance is positive definite (tested on the unit-diagonal scaled Hessian).
+    problems : tuple of str
+        Why the fit is not valid.  ``notes`` hold warnings that do not invalidate it (a
+        parameter within one error of a bound, symmetric errors that under-cover, ...).
+    peak_mass, peak_width, fwhm (and ``*_error``) : float
+        Of the first signal component (``peak_width`` is its natural ``width`` if it has one,
+        else ``sigma``; its name in ``width_parameter``).
+    gof_chi2, gof_ndf, gof_p_value, gof_note
+        Baker-Cousins saturated-model chi-square of the binned data, its ndf (bins - free
+        parameters), the chi-square p-value and what approximation applies.
+    minimizer : str
+        ``"fisher-scoring"`` or ``"iminuit-migrad"``.
+    starts_tried, starts_nll : int, tuple
+        How many starting points were minimised, and the minimum each reached: the lowest
+        wins, whatever the validity of the others.
+    edges, observed, observed_sumw2, expected, pulls : ndarray
+        Binning used for the goodness of fit and figures; pulls are (n - mu)/sqrt(var),
+        var = mu * sumw2/sumw for weighted bins.
+    bounds : mapping
+        ``name -> (lower, upper)`` used in the fit.
+    """
+
+    parameters: tuple[str, ...]
+    values: Any
+    errors: Any
+    fixed: tuple[str, ...]
+    covariance: np.ndarray
+    correlations: np.ndarray
+    intervals: Any
+    nll: float
+    valid: bool
+    problems: tuple[str, ...]
+    notes: tuple[str, ...]
+    flags: Any
+    binned: bool
+    binned_reason: str
+    weighted: bool
+    weight_treatment: str
+    window: tuple[float, float]
+    n_events: float
+    peak_mass: float
+    peak_mass_error: float
+    peak_width: float
+    peak_width_error: float
+    width_parameter: str
+    fwhm: float
+    fwhm_error: float
+    gof_chi2: float
+    gof_ndf: int
+    gof_p_value: float
+    edges: np.ndarray
+    observed: np.ndarray
+    observed_sumw2: np.ndarray
+    expected: np.ndarray
+    pulls: np.ndarray
+    bounds: Any
+    constraints: Any
+    model: Model
+    starts_tried: int = 1
+    starts_nll: tuple[float, ...] = ()
+    n_calls: int = 0
+    unit: str = "GeV"
+    minimizer: str = "fisher-scoring"
+    gof_note: str = ""
+    cost: Any = field(default=None, repr=False)
+
+    def __post_init__(self) -> None:
+        for name in ("values", "errors", "flags", "bounds", "constraints"):
+            object.__setattr__(self, name, _frozen(getattr(self, name) or {}))
+        if self.intervals is not None:
+            object.__setattr__(self, "intervals", _frozen(self.intervals))
+        for name in ("covariance", "correlations", "edges", "observed", "observed_sumw2",
+                     "expected", "pulls"):
+            a = np.array(getattr(self, name), float)
+            a.flags.writeable = False
+            object.__setattr__(self, name, a)
+
+    # ------------------------------------------------------------ comparison
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, FitResult):
+            return NotImplemented
+        for f in fields(self):
+            if f.name in ("model", "cost", "n_calls"):
+                continue
+            a, b = getattr(self, f.name), getattr(other, f.name)
+            if isinstance(a, np.ndarray):
+                if not np.array_equal(a, b, equal_nan=True):
+                    return False
+            elif isinstance(a, float) and isinstance(b, float) and math.isnan(a) and math.isnan(b):
+                continue
+            elif a != b and not _nan_equal(a, b):
+                return False
+        return repr(self.model) == repr(other.model)
+
+    __hash__ = None  # type: ignore[assignment]
+
+    # ---------------------------------------------------------------- summary
+    @property
+    def signal_yield(self) -> tuple[float, float]:
+        return self.values["signal_yield"], self.errors["signal_yield"]
+
+    @property
+    def background_yield(self) -> tuple[float, float]:
+        return self.values["background_yield"], self.errors["background_yield"]
+
+    @property
+    def minos(self) -> Any:
+        """Alias of :attr:`intervals` (the profile-likelihood errors)."""
+        return self.intervals
+
+    def to_minuit(self) -> Any:
+        """An ``iminuit.Minuit`` on this fit's cost, at the minimum, with its bounds, for
+        MIGRAD/HESSE/MINOS of your own.  Raises FitError for a result read from JSON."""
+        if self.cost is None:
+            raise FitError("this FitResult has no cost function (it was read from a dict); "
+                           "refit with peaksift.fit to get an iminuit object")
+        free = [n for n in self.parameters if n not in self.fixed]
+        lo = np.array([self.bounds[n][0] for n in free], float)
+        hi = np.array([self.bounds[n][1] for n in free], float)
+        x = np.array([self.values[n] for n in free], float)
+        errs = np.array([self.errors[n] for n in free], float)
+        return new_minuit(self.cost, np.clip(x, lo, hi), lo, hi, free, errs)
+
+    # ------------------------------------------------------------------- JSON
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict with the results.json ``fit`` keys, plus everything else."""
+
+        def ve(v: float, e: float) -> dict[str, float | None]:
+            return {"value": number(v), "error": number(e)}
+
+        iv = self.intervals
+        return {
+            "valid": bool(self.valid),
+            "peak_mass": ve(self.peak_mass, self.peak_mass_error),
+            "width": ve(self.peak_width, self.peak_width_error),
+            "signal_yield": ve(*self.signal_yield),
+            "background_yield": ve(*self.background_yield),
+            "gof": {"chi2": number(self.gof_chi2), "ndf": int(self.gof_ndf),
+                    "p_value": number(self.gof_p_value), "note": self.gof_note},
+            "width_parameter": self.width_parameter,
+            "fwhm": ve(self.fwhm, self.fwhm_error),
+            "problems": list(self.problems),
+            "notes": list(self.notes),
+            "flags": {k: bool(v) for k, v in self.flags.items()},
+            "signal_shapes": [s.name for s in self.model.signals],
+            "shapes": {"signals": [shape_spec(s) for s in self.model.signals],
+                       "background": shape_spec(self.model.background)},
+            "background_shape": self.model.background.name,
+            "window": [float(self.window[0]), float(self.window[1])],
+            "binned": bool(self.binned),
+            "binned_reason": self.binned_reason,
+            "weighted": bool(self.weighted),
+            "weight_treatment": self.weight_treatment,
+            "n_events": number(self.n_events),
+            "nll": number(self.nll),
+            "minimizer": self.minimizer,
+            "starts_tried": int(self.starts_tried),
+            "starts_nll": [number(v) for v in self.starts_nll],
+            "parameters": {n: ve(self.values[n], self.errors[n])
+                           | {"fixed": n in self.fixed,
+                              "bounds": [number(self.bounds[n][0]), number(self.bounds[n][1])]}
+                           for n in self.parameters},
+            "constraints": {k: c.to_dict() for k, c in self.constraints.items()},
+            "intervals": None if iv is None else
+            {k: [number(a), number(b)] for k, (a, b) in iv.items()},
+            "minos": None if iv is None else
+            {k: [number(a), number(b)] for k, (a, b) in iv.items()},
+            "covariance": [[number(c) for c in row] for row in self.covariance],
+            "bins": {"edges": self.edges.tolist(), "observed": self.observed.tolist(),
+                     "observed_sumw2": self.observed_sumw2.tolist(),
+                     "expected": self.expected.tolist(),
+                     "pulls": [number(p) for p in self.pulls]},
+            "unit": self.unit,
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> FitResult:
+        """The FitResult that :meth:`to_dict` wrote (without the cost: no ``to_minuit``)."""
+        from ..likelihood import Constraint
+
+        try:
+            sh = d["shapes"]
+            sig = [_shapes.get(s["name"], **{k: v for k, v in s.items() if k != "name"})
+                   for s in sh["signals"]]
+            bkg = sh["background"]
+            model = Model(sig, _shapes.get(bkg["name"], **{k: v for k, v in bkg.items()
+                                                          if k != "name"}), tuple(d["window"]))
+            pars = d["parameters"]
+            names = tuple(model.parameter_names)
+
+            def val(x: Any) -> float:
+                return math.nan if x is None else float(x)
+
+            cov = np.array([[val(c) for c in row] for row in d["covariance"]], float)
+            err = np.sqrt(np.clip(np.diag(cov), 0, None))
+            with np.errstate(invalid="ignore", divide="ignore"):
+                corr = cov / np.outer(err, err)
+            b = d["bins"]
+            iv = d.get("intervals")
+            return cls(
+                parameters=names,
+                values={n: val(pars[n]["value"]) for n in names},
+                errors={n: val(pars[n]["error"]) for n in names},
+                fixed=tuple(n for n in names if pars[n]["fixed"]),
+                covariance=cov, correlations=np.where(np.isfinite(corr), corr, 0.0),
+                intervals=None if iv is None else {k: (val(a), val(c)) for k, (a, c) in iv.items()},
+                nll=val(d["nll"]), valid=bool(d["valid"]), problems=tuple(d["problems"]),
+                notes=tuple(d.get("notes", ())), flags=d["flags"], binned=bool(d["binned"]),
+                binned_reason=d["binned_reason"], weighted=bool(d["weighted"]),
+                weight_treatment=d["weight_treatment"],
+                window=(float(d["window"][0]), float(d["window"][1])),
+                n_events=val(d["n_events"]),
+                peak_mass=val(d["peak_mass"]["value"]), peak_mass_error=val(d["peak_mass"]["error"]),
+                peak_width=val(d["width"]["value"]), peak_width_error=val(d["width"]["error"]),
+                width_parameter=d["width_parameter"], fwhm=val(d["fwhm"]["value"]),
+                fwhm_error=val(d["fwhm"]["error"]), gof_chi2=val(d["gof"]["chi2"]),
+                gof_ndf=int(d["gof"]["ndf"]), gof_p_value=val(d["gof"]["p_value"]),
+                gof_note=d["gof"]["note"],
+                edges=np.array(b["edges"], float), observed=np.array(b["observed"], float),
+                observed_sumw2=np.array(b["observed_sumw2"], float),
+                expected=np.array(b["expected"], float),
+                pulls=np.array([val(p) for p in b["pulls"]], float),
+                bounds={n: (val(pars[n]["bounds"][0]) if pars[n]["bounds"][0] is not None
+                            else -math.inf,
+                            val(pars[n]["bounds"][1]) if pars[n]["bounds"][1] is not None
+                            else math.inf) for n in names},
+                constraints={k: Constraint(**c) for k, c in d.get("constraints", {}).items()},
+                model=model, starts_tried=int(d.get("starts_tried", 1)),
+                starts_nll=tuple(val(v) for v in d.get("starts_nll", ())),
+                unit=d.get("unit", "GeV"), minimizer=d.get("minimizer", ""),
+            )
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise FitError(f"not a fit result written by FitResult.to_dict: {exc!r}") from None
+
+    # ------------------------------------------------------------------ show
+    def __repr__(self) -> str:
+        head = (f"FitResult({'valid' if self.valid else 'INVALID'}; "
+                f"{' + '.join(s.name for s in self.model.signals)} + "
+                f"{self.model.background.name}, {'binned' if self.binned else 'unbinned'}, "
+                f"window {self.window[0]:g}-{self.window[1]:g} {self.unit})")
+        lines = [head]
+        if self.problems:
+            lines.append("  problems: " + "; ".join(self.problems))
+        if self.notes:
+            lines.append("  notes: " + "; ".join(self.notes))
+        w = max(len(n) for n in self.parameters)
+        for n in self.parameters:
+            tag = " (fixed)" if n in self.fixed else ""
+            if self.intervals and n in self.intervals:
+                lo, hi = self.intervals[n]
+                tag += f"  interval {lo:+.3g}/{hi:+.3g}"
+            lines.append(f"  {n:<{w}} = {format_value(self.values[n], self.errors[n])}{tag}")
+        lines.append(f"  peak: mass {format_value(self.peak_mass, self.peak_mass_error)} "
+                     f"{self.unit}, FWHM {format_value(self.fwhm, self.fwhm_error)} {self.unit}")
+        lines.append(f"  GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
+                     f"p = {self.gof_p_value:.3g}")
+        return "\n".join(lines)
+
+    def _repr_html_(self) -> str:
+        status = ("<b>valid</b>" if self.valid else
+                  "<b>INVALID</b>: " + html.escape("; ".join(self.problems)))
+        rows = "".join(
+            f"<tr><td>{html.escape(n)}</td><td>{self.values[n]:.6g}</td>"
+            f"<td>{self.errors[n]:.3g}</td><td>{'fixed' if n in self.fixed else ''}</td></tr>"
+            for n in self.parameters)
+        notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
+        return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
+                f"({html.escape(self.binned_reason)}); GoF chi2/ndf = {self.gof_chi2:.1f}/"
+                f"{self.gof_ndf}, p = {self.gof_p_value:.3g}</p>{notes}"
+                f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
+                f"{rows}</table><p>peak mass "
+                f"{html.escape(format_value(self.peak_mass, self.peak_mass_error))} "
+                f"{self.unit}; FWHM {html.escape(format_value(self.fwhm, self.fwhm_error))} "
+                f"{self.unit}</p></div>")
+
+    def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None) -> Any:
+        """Data, total model, signal and background, with pulls underneath (see
+        :func:`peaksift.fitting.figure.fit_figure`)."""
+        from .figure import fit_figure
+
+        return fit_figure(self, path, title=title)
+
+
+def _nan_equal(a: Any, b: Any) -> bool:
+    try:
+        return bool(np.array_equal(np.asarray(a, float), np.asarray(b, float), equal_nan=True))
+    except (TypeError, ValueError):
+        return False

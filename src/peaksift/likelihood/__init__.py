@@ -1,0 +1,57 @@
+"""The one likelihood core under every fit, scan, significance, limit and toy.
+
+What is here, and which piece to use when
+-----------------------------------------
+* :mod:`.poisson`     -- pure functions on stacked arrays: the extended binned Poisson NLL
+  (scaled Poisson for weighted bins), its gradient and Fisher information, the Baker-Cousins
+  goodness of fit, the extended unbinned NLL.  Stats code with templates of its own (scans
+  over many masses, batched toys) calls these directly.
+* :mod:`.constraints` -- Gaussian and log-normal constraint terms for nuisance parameters.
+* :mod:`.model`       -- :class:`Model`: signal component(s) + background with yields on a
+  window; expected bin contents and densities from the shapes.
+* :mod:`.cost`        -- :class:`BinnedCost`, :class:`UnbinnedCost`: a Model on data, over its
+  free parameters, with constraints (value, gradient, information, observed Hessian).
+* :mod:`.minimize`    -- the one minimiser (damped Fisher scoring; iminuit MIGRAD as the
+  fallback), the scaled positive-definiteness test, the stacked damped Newton step.
+* :mod:`.starts`      -- starting values: sideband background fits and candidate peak masses
+  from a coarse likelihood scan.
+
+:func:`peaksift.fit` (module :mod:`peaksift.fitting`) is the free fit built on these.
+"""
+
+from __future__ import annotations
+
+from .constraints import CONSTRAINT_KINDS, Constraint
+from .cost import BinnedCost, UnbinnedCost
+from .minimize import Minimum, covariance, damped_step, minimize, new_minuit, refine
+from .model import Model
+from .poisson import (
+    MU_FLOOR,
+    baker_cousins_chi2,
+    binned_gradient,
+    binned_information,
+    binned_nll,
+    saturated_term,
+    unbinned_nll,
+)
+
+__all__ = [
+    "CONSTRAINT_KINDS",
+    "MU_FLOOR",
+    "BinnedCost",
+    "Constraint",
+    "Minimum",
+    "Model",
+    "UnbinnedCost",
+    "baker_cousins_chi2",
+    "binned_gradient",
+    "binned_information",
+    "binned_nll",
+    "covariance",
+    "damped_step",
+    "minimize",
+    "new_minuit",
+    "refine",
+    "saturated_term",
+    "unbinned_nll",
+]

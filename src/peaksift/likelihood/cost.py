@@ -1,0 +1,340 @@
+"""Cost functions of a :class:`~peaksift.likelihood.model.Model` on data, over its free parameters.
+
+* :class:`BinnedCost`   -- :func:`~peaksift.likelihood.poisson.binned_nll` of a spectrum
+  (saturated form, scaled Poisson for weighted bins, optional bin mask for blinding).
+* :class:`UnbinnedCost` -- :func:`~peaksift.likelihood.poisson.unbinned_nll` of the masses,
+  in chunks so temporaries stay in cache.
+
+Both answer the same questions: ``cost(*x)`` and ``cost.grad(*x)`` (iminuit's protocol,
+``errordef = 0.5``), ``value_grad_info(x)`` (value, gradient, information: what the
+minimiser of :mod:`.minimize` uses) and ``observed_hessian(x, steps)`` (the observed Hessian for the
+covariance).  Constraint terms (:class:`~peaksift.likelihood.constraints.Constraint`) are added
+to all of them here, once.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from .constraints import Constraint
+from .model import Model
+from .poisson import MU_FLOOR, saturated_term, unbinned_nll
+
+__all__ = ["BinnedCost", "UnbinnedCost"]
+
+
+class _Cost:
+    """Free-parameter vector <-> full vector, constraints, iminuit's call protocol."""
+
+    errordef = 0.5
+
+    def __init__(self, model: Model, full: np.ndarray, free: np.ndarray,
+                 constraints: Sequence[tuple[int, Constraint]] = ()) -> None:
+        self.model = model
+        self.full = np.asarray(full, float).copy()
+        self.free = np.asarray(free, int)
+        row = {int(i): k for k, i in enumerate(self.free)}
+        self._row = row
+        # constraints on free parameters, by row of the free vector
+        self._cons = [(row[int(i)], c) for i, c in constraints if int(i) in row]
+        self._last: tuple[bytes, float, np.ndarray] | None = None
+        self.ncall = 0
+
+    def expand(self, x: Sequence[float]) -> np.ndarray:
+        v = self.full.copy()
+        v[self.free] = x
+        return v
+
+    def _add_constraints(self, x: np.ndarray, val: float, g: np.ndarray,
+                         info: np.ndarray | None) -> float:
+        for k, c in self._cons:
+            val += float(c.nll(x[k]))
+            g[k] += float(c.gradient(x[k]))
+            if info is not None:
+                info[k, k] += float(c.information(x[k]))
+        return val
+
+    def _constraint_hessian(self, x: np.ndarray, hess: np.ndarray) -> None:
+        for k, c in self._cons:
+            hess[k, k] += float(c.hessian(x[k]))
+
+    def _eval(self, x: Sequence[float]) -> tuple[float, np.ndarray]:
+        key = np.asarray(x, dtype=float).tobytes()
+        if self._last is not None and self._last[0] == key:
+            return self._last[1], self._last[2]
+        val, g, _ = self.value_grad_info(np.asarray(x, dtype=float), info=False)
+        if not np.isfinite(val) or not np.all(np.isfinite(g)):
+            val, g = 1e300, np.zeros_like(g)
+        self._last = (key, val, g)
+        return val, g
+
+    def __call__(self, *x: float) -> float:
+        return self._eval(x)[0]
+
+    def grad(self, *x: float) -> np.ndarray:
+        return self._eval(x)[1]
+
+    def value_grad_info(self, x: np.ndarray, info: bool = True):  # pragma: no cover - abstract
+        raise NotImplementedError
+
+
+class BinnedCost(_Cost):
+    """Binned extended Poisson NLL (saturated form) of counts ``n`` in ``edges``.
+
+    ``scale`` holds the scaled-Poisson factors per bin (all 1 for unweighted data); ``mask``
+    selects the bins used (blinded bins are simply not used).
+    """
+
+    def __init__(self, model: Model, full: np.ndarray, free: np.ndarray,
+                 constraints: Sequence[tuple[int, Constraint]], edges: np.ndarray,
+                 n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None = None) -> None:
+        super().__init__(model, full, free, constraints)
+        self.edges = np.asarray(edges, float)
+        self.mask = None if mask is None or np.all(mask) else np.asarray(mask, bool)
+        m = slice(None) if self.mask is None else self.mask
+        self.s = np.asarray(scale, float)[m]
+        self.unit_scale = bool(np.all(self.s == 1.0))
+        self.counts = np.asarray(n, float)[m]
+        self.n = self.counts * self.s  # effective counts
+        # constant part of the saturated form: sum(n~ ln n~ - n~) - sum(n~ ln s)
+        self._const = float(saturated_term(self.n)) - float(self.n @ np.log(self.s))
+        self._plan = []
+        for shape, sl, iy in model.blocks:
+            rows = [self._row.get(i, -1) for i in range(sl.start, sl.stop)]
+            self._plan.append((shape, sl, iy, any(r >= 0 for r in rows), rows,
+                               self._row.get(iy, -1)))
+        self._jac = np.zeros((self.free.size, self.n.size))
+        self._state: tuple | None = None
+
+    def _fractions(self, shape, p, need: bool):
+        if need:
+            f, g = shape.fractions_and_grad(self.edges, p, self.model.window)
+            if self.mask is not None:
+                f, g = f[self.mask], g[:, self.mask]
+            return f, g
+        f = shape.bin_fractions(self.edges, p, self.model.window)
+        return (f if self.mask is None else f[self.mask]), None
+
+    def expectation(self, x: np.ndarray, jac: np.ndarray):
+        """Expected counts ``mu`` at free values ``x`` and their Jacobian (filled into ``jac``)."""
+        v = self.expand(x)
+        mu = None
+        blocks = []
+        for shape, sl, iy, need, rows, ry in self._plan:
+            y = float(v[iy])
+            if ry < 0 and y == 0.0:  # a component fixed at zero yield contributes nothing
+                continue
+            p = [float(q) for q in v[sl]]
+            f, g = self._fractions(shape, p, need)
+            for j, r in enumerate(rows):
+                if r >= 0:
+                    np.multiply(g[j], y, out=jac[r])
+            if ry >= 0:
+                jac[ry] = f
+            mu = y * f if mu is None else mu + y * f
+            blocks.append((shape, p, y, g, rows, ry))
+        if mu is None:
+            mu = np.zeros(self.n.size)
+        return mu, blocks
+
+    def value_grad_info(self, x: np.ndarray, info: bool = True):
+        """NLL, gradient and expected information over the free parameters at ``x``."""
+        self.ncall += 1
+        x = np.asarray(x, float)
+        jac = self._jac
+        mu, blocks = self.expectation(x, jac)
+        self._state = (x.tobytes(), mu, blocks)
+        mu = np.maximum(mu, MU_FLOOR)
+        n, s = self.n, self.s
+        # binned_nll in effective counts, with its constant precomputed (this is the hot path)
+        if self.unit_scale:
+            val = float(mu.sum() - n @ np.log(mu)) + self._const
+            r = 1.0 - n / mu
+            w = 1.0 / mu
+        else:
+            val = float(s @ mu - n @ np.log(mu)) + self._const
+            r = s - n / mu
+            w = s / mu
+        g = jac @ r
+        fisher = (jac * w) @ jac.T if info else None
+        val = self._add_constraints(x, val, g, fisher)
+        return val, g, fisher
+
+    def expected_at(self, x: np.ndarray) -> np.ndarray | None:
+        """The expectation of the last evaluation if it was at ``x`` (else None)."""
+        st = self._state
+        if st is not None and st[0] == np.asarray(x, float).tobytes():
+            return np.asarray(st[1])
+        return None
+
+    def observed_hessian(self, x: np.ndarray, steps: np.ndarray, lower: Any = None,
+                upper: Any = None) -> np.ndarray:
+        """Observed Hessian of the NLL at ``x`` (``lower``/``upper`` unused: the shape's own
+        bounds decide where differences must be one-sided):
+        sum_i n~_i/mu_i^2 dmu dmu^T + sum_i (s_i - n~_i/mu_i) d^2mu, with d^2mu exact for
+        yield pairs (0) and yield-shape pairs (dF/dtheta), and by differences of the
+        analytic shape gradients (step ``steps``, central where the bounds allow) for
+        shape-shape pairs of one component."""
+        x = np.asarray(x, float)
+        jac = np.zeros((self.free.size, self.n.size))
+        mu, blocks = self.expectation(x, jac)
+        mu = np.maximum(mu, MU_FLOOR)
+        n = self.n
+        r = (1.0 if self.unit_scale else self.s) - n / mu
+        hess = (jac * (n / (mu * mu))) @ jac.T
+        window = self.model.window
+        for shape, p, y, g, rows, ry in blocks:
+            if g is None:
+                continue
+            for j, rj in enumerate(rows):
+                if rj < 0:
+                    continue
+                if ry >= 0:  # d2 mu / d yield d theta_j = dF/dtheta_j
+                    t = float(r @ g[j])
+                    hess[ry, rj] += t
+                    hess[rj, ry] += t
+                par = shape.parameters[j]
+                h = abs(float(steps[rj]))
+                if not (np.isfinite(h) and h > 0):
+                    h = 1e-6 * max(abs(p[j]), 1.0)
+                up, dn = p[j] + h <= par.upper, p[j] - h >= par.lower
+                q = list(p)
+                if up and dn:
+                    q[j] = p[j] + h
+                    g2 = shape.fractions_and_grad(self.edges, q, window)[1]
+                    q[j] = p[j] - h
+                    g1 = shape.fractions_and_grad(self.edges, q, window)[1]
+                    width = 2.0 * h
+                else:  # one-sided next to a bound
+                    q[j] = p[j] + (h if up else -h)
+                    g2 = shape.fractions_and_grad(self.edges, q, window)[1]
+                    g1 = None
+                    width = h if up else -h
+                if self.mask is not None:
+                    g2 = g2[:, self.mask]
+                    if g1 is not None:
+                        g1 = g1[:, self.mask]
+                base = g if g1 is None else g1
+                d2 = y * (g2 - base) / width  # row k: d2 F / d theta_k d theta_j
+                for k, rk in enumerate(rows):
+                    if rk >= 0:
+                        hess[rk, rj] += float(r @ d2[k])
+        self._constraint_hessian(x, hess)
+        return 0.5 * (hess + hess.T)
+
+
+class UnbinnedCost(_Cost):
+    """Extended unbinned NLL of masses ``x`` (weights ``w`` or None), evaluated in chunks of
+    ``CHUNK`` masses (several times faster than whole-array expressions for 1M masses)."""
+
+    CHUNK = 32768
+
+    def __init__(self, model: Model, full: np.ndarray, free: np.ndarray,
+                 constraints: Sequence[tuple[int, Constraint]], x: np.ndarray,
+                 w: np.ndarray | None) -> None:
+        super().__init__(model, full, free, constraints)
+        self.x = np.asarray(x, float)
+        self.w = None if w is None else np.asarray(w, float)
+        fr = set(self.free.tolist())
+        self._need = [any(i in fr for i in range(sl.start, sl.stop)) for _, sl, _ in model.blocks]
+        self._yields = [iy for _, _, iy in model.blocks]
+
+    def _chunks(self):
+        n = self.x.size
+        for a in range(0, n, self.CHUNK):
+            b = min(a + self.CHUNK, n)
+            yield self.x[a:b], None if self.w is None else self.w[a:b]
+
+    def per_event(self, v: np.ndarray, x: np.ndarray):
+        """Density mu(x) and, per parameter, (factor, d density) for the chunk ``x``."""
+        model = self.model
+        mu = None
+        dens: list[Any] = [None] * v.size
+        for (shape, sl, iy), need in zip(model.blocks, self._need):
+            p = [float(q) for q in v[sl]]
+            y = float(v[iy])
+            if need:
+                f, g = shape.pdf_and_grad(x, p, model.window)
+                for j, i in enumerate(range(sl.start, sl.stop)):
+                    dens[i] = (y, g[j])
+            else:
+                f = shape.pdf(x, p, model.window)
+            mu = y * f if mu is None else mu + y * f
+            dens[iy] = (1.0, f)
+        return mu, dens
+
+    def _scores(self, dens, inv):
+        return np.array([np.zeros_like(inv) if dens[i] is None else (dens[i][0] * inv) * dens[i][1]
+                         for i in self.free])
+
+    def value_grad_info(self, x: np.ndarray, info: bool = True):
+        """NLL, gradient and the outer-product (BHHH) information sum_j w_j s_j s_j^T,
+        s_j = grad ln mu(x_j), over the free parameters at ``x``."""
+        self.ncall += 1
+        x = np.asarray(x, float)
+        v = self.expand(x)
+        val = float(sum(v[iy] for iy in self._yields))
+        g = np.zeros(v.size)
+        g[self._yields] = 1.0
+        g = g[self.free]
+        fisher = np.zeros((self.free.size, self.free.size))
+        with np.errstate(over="ignore", invalid="ignore"):
+            for xc, w in self._chunks():
+                mu, dens = self.per_event(v, xc)
+                np.maximum(mu, MU_FLOOR, out=mu)
+                val += float(unbinned_nll(0.0, mu, w))
+                sc = self._scores(dens, 1.0 / mu)
+                if w is None:
+                    g -= sc.sum(axis=1)
+                    if info:
+                        fisher += sc @ sc.T
+                else:
+                    g -= sc @ w
+                    if info:
+                        fisher += (sc * w) @ sc.T
+        val = self._add_constraints(x, val, g, fisher if info else None)
+        return val, g, (fisher if info else None)
+
+    def observed_hessian(self, x: np.ndarray, steps: np.ndarray, lower: Any = None,
+                upper: Any = None) -> np.ndarray:
+        """Observed Hessian by differences of the analytic gradient (central where the
+        bounds ``lower``/``upper`` of the free parameters allow; callers pass steps of ~1e-3
+        of each parameter's error)."""
+        x = np.asarray(x, float)
+        n = x.size
+        lower = np.full(n, -np.inf) if lower is None else np.asarray(lower, float)
+        upper = np.full(n, np.inf) if upper is None else np.asarray(upper, float)
+        hess = np.empty((n, n))
+        for i in range(n):
+            h = abs(float(steps[i]))
+            if not (np.isfinite(h) and h > 0):
+                h = 1e-6 * max(abs(x[i]), 1.0)
+            hi, lo = x.copy(), x.copy()
+            up, dn = x[i] + h <= upper[i], x[i] - h >= lower[i]
+            if up and dn:
+                hi[i] += h
+                lo[i] -= h
+                width = 2 * h
+            elif up:
+                hi[i] += h
+                width = h
+            else:
+                lo[i] -= h
+                width = h
+            hess[:, i] = (self.value_grad_info(hi, info=False)[1]
+                          - self.value_grad_info(lo, info=False)[1]) / width
+        return 0.5 * (hess + hess.T)
+
+    def score_outer(self, x: np.ndarray) -> np.ndarray:
+        """D = sum_j w_j^2 grad(ln mu_j) grad(ln mu_j)^T over the free parameters (for the
+        sandwich covariance of weighted unbinned fits)."""
+        v = self.expand(x)
+        d = np.zeros((self.free.size, self.free.size))
+        for xc, w in self._chunks():
+            mu, dens = self.per_event(v, xc)
+            sc = self._scores(dens, (1.0 if w is None else w) / np.maximum(mu, MU_FLOOR))
+            d += sc @ sc.T
+        return d

@@ -1,0 +1,134 @@
+r"""The Poisson likelihood of a binned spectrum, and of unbinned masses, as pure functions.
+
+Every binned number peaksift reports (fits, scans, significances, limits, toys) is built on
+:func:`binned_nll`; write no other copy.  All functions work on stacked arrays: bins on the
+last axis, any leading axes (toys, mass hypotheses) broadcast, so many problems are one numpy
+call.
+
+Which function when
+-------------------
+* :func:`binned_nll`  -- extended binned Poisson NLL of counts ``n`` given expectations ``mu``;
+  ``saturated=True`` (default) subtracts the saturated model so twice the minimum is the
+  Baker-Cousins goodness-of-fit chi-square.  ``scale`` turns it into the scaled-Poisson form
+  for weighted bins.
+* :func:`binned_gradient`, :func:`binned_information` -- its gradient and expected (Fisher)
+  information from the Jacobian ``dmu`` (shape ``(..., P, N)``).
+* :func:`baker_cousins_chi2` -- the goodness-of-fit statistic.
+* :func:`unbinned_nll` -- extended unbinned NLL from per-event densities.
+
+Formulae
+--------
+Binned, bin :math:`i`, scaled-Poisson factor :math:`s_i` (1 for unweighted bins),
+effective count :math:`\tilde n_i = s_i n_i` and expectation :math:`\tilde\mu_i = s_i\mu_i`:
+
+.. math:: -\ln L = \sum_i \tilde\mu_i - \tilde n_i \ln\tilde\mu_i
+          \;[\; + \tilde n_i\ln\tilde n_i - \tilde n_i \;]_{\text{saturated}}
+
+(Baker and Cousins, Nucl. Instrum. Meth. 221 (1984) 437, eq. 11; scaled Poisson: Bohm and
+Zech, Nucl. Instrum. Meth. A 748 (2014) 1, from memory).  Gradient
+:math:`\partial_p = \sum_i s_i (1 - n_i/\mu_i)\,\partial_p\mu_i`; expected information
+:math:`I_{pq} = \sum_i (s_i/\mu_i)\,\partial_p\mu_i\,\partial_q\mu_i`.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+__all__ = [
+    "MU_FLOOR",
+    "baker_cousins_chi2",
+    "binned_gradient",
+    "binned_information",
+    "binned_nll",
+    "saturated_term",
+    "unbinned_nll",
+]
+
+#: expectations are floored here before a logarithm: an empty prediction in a filled bin
+#: costs ~700 per event instead of an infinity that stops every minimiser
+MU_FLOOR = 1e-300
+
+
+def _scaled(n: np.ndarray, scale: Any) -> tuple[np.ndarray, Any]:
+    if scale is None:
+        return n, 1.0
+    s = np.asarray(scale, float)
+    return n * s, s
+
+
+def saturated_term(n: Any, scale: Any = None) -> np.ndarray:
+    r""":math:`\sum_i \tilde n_i \ln \tilde n_i - \tilde n_i` over the last axis (0 ln 0 = 0)."""
+    nt, _ = _scaled(np.asarray(n, float), scale)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.where(nt > 0, nt * np.log(np.where(nt > 0, nt, 1.0)), 0.0)
+    return np.sum(t - nt, axis=-1)
+
+
+def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True) -> np.ndarray:
+    """Extended binned Poisson negative log-likelihood, summed over the last axis.
+
+    Parameters
+    ----------
+    n : array (..., N)
+        Observed counts (sums of weights for weighted bins).
+    mu : array (..., N)
+        Expected counts, same units as ``n``; floored at :data:`MU_FLOOR`.
+    scale : array (N,) or None
+        Scaled-Poisson factors ``sum(w)/sum(w^2)`` per bin (None: unweighted).
+    saturated : bool
+        Subtract the saturated model's value, so that ``2 * nll`` at the minimum is the
+        Baker-Cousins chi-square and differences between fits are unchanged.
+
+    Returns
+    -------
+    ndarray (...) or float
+    """
+    n = np.asarray(n, float)
+    mu = np.maximum(np.asarray(mu, float), MU_FLOOR)
+    if scale is None:
+        val = np.sum(mu - n * np.log(mu), axis=-1)
+    else:
+        nt, s = _scaled(n, scale)
+        smu = s * mu
+        val = np.sum(smu - nt * np.log(smu), axis=-1)
+    if saturated:
+        val = val + saturated_term(n, scale)
+    return val
+
+
+def binned_gradient(n: Any, mu: Any, dmu: Any, scale: Any = None) -> np.ndarray:
+    """Gradient of :func:`binned_nll`: ``dmu`` is (..., P, N); returns (..., P)."""
+    n = np.asarray(n, float)
+    mu = np.maximum(np.asarray(mu, float), MU_FLOOR)
+    s = 1.0 if scale is None else np.asarray(scale, float)
+    r = s * (1.0 - n / mu)
+    return np.matmul(np.asarray(dmu, float), r[..., None])[..., 0]
+
+
+def binned_information(mu: Any, dmu: Any, scale: Any = None) -> np.ndarray:
+    """Expected (Fisher) information of :func:`binned_nll`: (..., P, P) from ``dmu`` (..., P, N)."""
+    mu = np.maximum(np.asarray(mu, float), MU_FLOOR)
+    s = 1.0 if scale is None else np.asarray(scale, float)
+    dmu = np.asarray(dmu, float)
+    return np.matmul(dmu * (s / mu)[..., None, :], np.swapaxes(dmu, -1, -2))
+
+
+def baker_cousins_chi2(n: Any, mu: Any, scale: Any = None) -> np.ndarray:
+    """Saturated-model likelihood-ratio chi-square ``2 sum(mu - n + n ln(n/mu))`` (Baker and
+    Cousins 1984, eq. 11), in effective counts for weighted bins."""
+    return 2.0 * binned_nll(n, mu, scale, saturated=True)
+
+
+def unbinned_nll(total_yield: Any, density: Any, weights: Any = None) -> np.ndarray:
+    r"""Extended unbinned NLL :math:`\sum_k\nu_k - \sum_j w_j \ln \mu(x_j)`.
+
+    ``density`` (..., J) holds :math:`\mu(x_j) = \sum_k \nu_k f_k(x_j)` (expected events per
+    unit mass); ``total_yield`` (...) is :math:`\sum_k \nu_k`.
+    """
+    logd = np.log(np.maximum(np.asarray(density, float), MU_FLOOR))
+    tot = np.asarray(total_yield, float)
+    if weights is None:
+        return tot - np.sum(logd, axis=-1)
+    return tot - np.sum(np.asarray(weights, float) * logd, axis=-1)

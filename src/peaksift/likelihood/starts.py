@@ -1,0 +1,215 @@
+"""Starting values for fits: the background from the sidebands, peak masses from a coarse
+likelihood scan of the window.
+
+:func:`fit_starts` yields full parameter vectors, best first.  The candidate masses are the
+local maxima of a coarse profile-likelihood scan (signal and background yields profiled at
+each mass on at most 100 bins, the background shape from a background-only fit), so a fit
+starts at every plausible peak, not only at the largest excess; :func:`peaksift.fitting.fit`
+then keeps the lowest minimum.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..errors import PeaksiftError
+from .cost import BinnedCost
+from .minimize import damped_step, minimize
+from .model import Model
+from .poisson import binned_gradient, binned_information, binned_nll
+
+__all__ = ["background_start", "coarse_bins", "fit_starts", "peak_candidates"]
+
+#: numerical failures a helper fit may meet; a failed helper fit only costs a worse start
+_NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError, PeaksiftError)
+
+
+def coarse_bins(edges: np.ndarray, n: np.ndarray, n2: np.ndarray, most: int = 100):
+    """Merge groups of adjacent bins so at most ``most`` remain (for finding starts)."""
+    k = math.ceil(n.size / most)
+    if k <= 1:
+        return edges, n, n2
+    idx = np.arange(0, n.size, k)
+    return (np.append(edges[idx], edges[-1]), np.add.reduceat(n, idx),
+            np.add.reduceat(n2, idx))
+
+
+def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
+                     mask: np.ndarray | None, bstart: np.ndarray, is_fixed: np.ndarray,
+                     lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
+    """Background-only binned fit (on ``mask`` bins; fixed background parameters stay
+    fixed) -> full parameter vector with every signal yield at 0."""
+    v = bstart.copy()
+    for _, _, iy in model.blocks[:-1]:
+        v[iy] = 0.0
+    _, bsl, biy = model.blocks[-1]
+    free = np.array([i for i in [*range(bsl.start, bsl.stop), biy] if not is_fixed[i]], int)
+    if free.size == 0:
+        return v
+    m = mask if mask is not None else np.ones(n.size, bool)
+    if not is_fixed[biy]:
+        v[biy] = max(float(n[m].sum()), 1.0)
+    cost = BinnedCost(model, v, free, [], edges, n, scale, mask)
+    lo, hi = lower[free].copy(), upper[free].copy()
+    mo = minimize(cost, np.clip(v[free], lo, hi), lo, hi,
+                  [model.parameter_names[i] for i in free], edm_goal=1e-2)
+    out = v.copy()
+    out[free] = mo.x
+    return out
+
+
+def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarray, background: np.ndarray,
+                    most: int = 3) -> list[tuple[int, float]]:
+    """Local maxima of a coarse profile-likelihood scan, best first.
+
+    ``signal_fractions (M, N)`` are the signal's bin fractions at M trial masses,
+    ``background (N,)`` the background expectation.  At each mass the signal yield and the
+    background normalisation are profiled (a few stacked damped Newton steps on
+    :func:`~peaksift.likelihood.poisson.binned_nll`); returns ``[(mass index, 2 dNLL)]`` for
+    up to ``most`` separated local maxima with a positive signal.
+    """
+    f = np.asarray(signal_fractions, float)
+    b0 = np.maximum(np.asarray(background, float), 1e-12)
+    m = f.shape[0]
+    btot = float(b0.sum())
+    g = b0 / btot
+    nll0 = binned_nll(n, btot * g, scale)
+    x = np.column_stack([np.full(m, 0.1 * math.sqrt(max(btot, 1.0))), np.full(m, btot)])
+    dmu = np.stack([f, np.broadcast_to(g, f.shape)], axis=1)  # (M, 2, N)
+    lam = np.full(m, 1e-3)
+    with np.errstate(all="ignore"):
+        nll = binned_nll(n, x[:, :1] * f + x[:, 1:] * g, scale)
+        for _ in range(25):
+            mu = x[:, :1] * f + x[:, 1:] * g
+            grad = binned_gradient(n, mu, dmu, scale)
+            info = binned_information(mu, dmu, scale)
+            trial = x + damped_step(info, grad, lam)
+            mu_t = trial[:, :1] * f + trial[:, 1:] * g
+            ok = np.all(mu_t > 0, axis=1)
+            nt = np.where(ok, binned_nll(n, mu_t, scale), np.inf)
+            better = nt <= nll
+            x[better], nll[better] = trial[better], nt[better]
+            lam = np.where(better, np.maximum(lam * 0.1, 1e-9), lam * 10.0)
+    q = np.where((x[:, 0] > 0) & np.isfinite(nll), 2.0 * (nll0 - nll), 0.0)
+    peaks = [i for i in range(m) if q[i] > 0
+             and (i == 0 or q[i] >= q[i - 1]) and (i == m - 1 or q[i] >= q[i + 1])]
+    peaks.sort(key=lambda i: -q[i])
+    return [(i, float(q[i])) for i in peaks[:most]]
+
+
+def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
+               base: np.ndarray, is_fixed: np.ndarray, given: dict[str, float],
+               lower: np.ndarray, upper: np.ndarray, total: float,
+               retries: int) -> list[tuple[np.ndarray, bool]]:
+    """Starting points ``(vector, essential)``, best first: background from the sidebands of
+    each candidate peak, the peak at each local maximum of the coarse likelihood scan
+    (essential: every one is minimised), then other widths (tried while no valid fit is
+    found).  ``given`` holds the parameters whose starts (or fixed values) the caller set.
+    """
+    names = model.parameter_names
+    blocks = model.blocks
+    yields = [iy for _, _, iy in blocks]
+    sig_free = any(not is_fixed[iy] for iy in yields[:-1])
+    bshape, bsl, biy = blocks[-1]
+    bkg_given = all(k in given for k in names[bsl])
+    v = base.copy()
+    try:
+        vb = v if bkg_given else background_start(model, edges, n, scale, None, v,
+                                                  is_fixed, lower, upper)
+    except _NUMERIC:
+        vb = v
+    if not sig_free:
+        out = [(np.where(is_fixed, base, np.clip(vb, lower, upper)), True)]
+        if retries > 0:
+            out.append((np.where(is_fixed, base, np.clip(base, lower, upper)), False))
+        return out
+    c = 0.5 * (edges[1:] + edges[:-1])
+    bexp = bshape.bin_fractions(edges, list(vb[bsl]), model.window) * vb[biy]
+    shape, sl, _ = blocks[0]
+    i_m = sl.start + shape.parameter_names.index("mass")
+    i_s = [sl.start + shape.parameter_names.index(k) for k in shape.width_parameters()]
+    width = max(float(v[i_s[-1]]) if i_s else (edges[-1] - edges[0]) / 40,
+                float(np.median(np.diff(edges))))
+    if names[i_m] in given:
+        masses = [float(v[i_m])]
+    else:
+        masses = _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width)
+    candidates = [(mm, 1.0, True) for mm in masses]
+    candidates += [(masses[0], f, False) for f in (0.4, 2.5, 1.5)[:retries]]
+    return [(_one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given,
+                        is_fixed, lower, upper, total, bkg_given), essential)
+            for mm, factor, essential in candidates]
+
+
+def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width) -> list[float]:
+    shape, sl, _ = model.blocks[0]
+    lo = max(edges[0], lower[i_m])
+    hi = min(edges[-1], upper[i_m])
+    step = max(0.5 * width, (hi - lo) / 400)
+    grid = np.arange(lo + 0.5 * step, hi, step) if hi - lo > step else np.array([0.5 * (lo + hi)])
+    fr = []
+    p = list(v[sl])
+    for mass in grid:
+        p[shape.parameter_names.index("mass")] = mass
+        fr.append(shape.bin_fractions(edges, p, model.window))
+    try:
+        peaks = peak_candidates(n, scale, np.array(fr), bexp)
+    except _NUMERIC:
+        peaks = []
+    masses: list[float] = []
+    for i, _ in peaks:
+        if all(abs(grid[i] - mm) > 3 * width for mm in masses):
+            masses.append(float(grid[i]))
+    if not masses:  # no excess anywhere: start at the largest bin excess
+        c = 0.5 * (edges[1:] + edges[:-1])
+        masses = [float(np.clip(c[int(np.argmax(n - bexp))], lo, hi))]
+    return masses
+
+
+def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is_fixed,
+               lower, upper, total, bkg_given):
+    names = model.parameter_names
+    shape, sl, iy = model.blocks[0]
+    bshape, bsl, biy = model.blocks[-1]
+    s = vb.copy()
+    s[i_m] = np.clip(mm, lower[i_m], upper[i_m])
+    for i in i_s:
+        if names[i] not in given:
+            s[i] = np.clip(v[i] * factor, lower[i], upper[i])
+    # sideband background: exclude +-3 widths around the candidate peak
+    hw = 3.0 * max((s[i] for i in i_s), default=(edges[-1] - edges[0]) / 40)
+    mask = np.abs(c - s[i_m]) > hw
+    if not bkg_given and mask.sum() > len(names) and (~mask).sum() > 0:
+        try:
+            sb = background_start(model, edges, n, scale, mask, s, is_fixed, lower, upper)
+            s[bsl] = sb[bsl]
+            s[biy] = sb[biy]
+        except _NUMERIC:
+            pass
+    bfr = bshape.bin_fractions(edges, list(s[bsl]), model.window) * s[biy]
+    sel = ~mask
+    resid = np.clip(n[sel] - bfr[sel], 0.0, None)
+    i_sig = sl.start + shape.parameter_names.index("sigma") if (
+        "sigma" in shape.parameter_names and shape.name in ("gaussian", "crystalball")) else None
+    if (i_sig is not None and factor == 1.0 and names[i_sig] not in given
+            and resid.sum() > 0):
+        # width from the second moment of the excess (truncated at +-3 start widths, so it
+        # errs low; bounded to a factor 2 of the start)
+        d2 = float(resid @ (c[sel] - s[i_m]) ** 2 / resid.sum())
+        s[i_sig] = np.clip(math.sqrt(max(d2, 1e-12)), 0.5 * s[i_sig], 2.0 * s[i_sig])
+    if names[iy] not in given:
+        excess = float(np.sum(n[sel] - bfr[sel]))
+        s[iy] = np.clip(max(excess, 0.05 * math.sqrt(max(total, 1.0)) + 1.0),
+                        lower[iy], upper[iy])
+        if names[biy] not in given:
+            s[biy] = np.clip(max(total - s[iy], 1.0), lower[biy], upper[biy])
+    # later signal components: small positive yield at their given start
+    for _, _, iy2 in model.blocks[1:-1]:
+        if names[iy2] not in given:
+            s[iy2] = np.clip(max(0.01 * total, 1.0), lower[iy2], upper[iy2])
+    s = np.clip(s, lower, upper)
+    for k in given:  # given starts and fixed values are used as given
+        s[names.index(k)] = v[names.index(k)]
+    return s
