@@ -74,7 +74,7 @@ def main() -> None:
 
     h = _spectrum()
     masses = np.linspace(110.0, 590.0, 200)
-    model, _, _ = _prepare_model(h, "gaussian", "exponential", masses, resolution=0.01,
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", masses, relative_resolution=0.01,
                                  window=None, natural_width=None, blind=None,
                                  signal_params=None, bins=None)
     print(f"spectrum: {model.counts.size} bins, {model.counts.sum():.0f} events; "

@@ -97,7 +97,7 @@ def _one_pass(files, sel=SEL):
     c = pair(ev, sel.first, cut=sel.cut, charge=sel.charge)
     counts, _ = np.histogram(c.mass, bins=np.asarray(sel.edges), weights=c.weight)
     lo, hi = sel.window
-    inwin = (c.mass >= lo) & (c.mass < hi)
+    inwin = (c.mass >= lo) & (c.mass <= hi)  # the window closes both ends, as numpy's bins
     return c, counts, c.mass[inwin], c.weight[inwin]
 
 
@@ -361,7 +361,7 @@ def test_serial_collect_equals_one_pass_reference(dataset):
     assert got.candidates == len(c)
     assert got.files_read == tuple(dataset) and got.files_skipped == ()
     # the pT / rapidity summaries hold the candidates inside the histogram range
-    inrange = (c.mass >= EDGES[0]) & (c.mass < EDGES[-1])
+    inrange = (c.mass >= EDGES[0]) & (c.mass <= EDGES[-1])
     assert got.pt_histogram.total(flow=True) == inrange.sum()
     ref_y, _ = np.histogram(c.rapidity[inrange], bins=np.asarray(SEL.rapidity_edges))
     np.testing.assert_array_equal(got.rapidity_histogram.sumw, ref_y)
@@ -524,12 +524,15 @@ def test_fast_regular_binning_matches_binary_search(edges):
     from peaksift.histogram import MassHistogram
 
     # the fill (which takes the arithmetic index for many regular bins) against bin sums
-    # from the binary-search index
+    # from the binary-search index, with numpy.histogram's closed last bin: a value equal to
+    # the last edge is counted in the last bin, not in the overflow
     h = MassHistogram(edges).fill(v, w)
-    ref = np.bincount(np.searchsorted(edges, v, side="right"), weights=w,
-                      minlength=edges.size + 1)
+    idx = np.searchsorted(edges, v, side="right")
+    idx[v == edges[-1]] = edges.size - 1
+    ref = np.bincount(idx, weights=w, minlength=edges.size + 1)
     np.testing.assert_array_equal(h.sumw, ref[1:-1])
     assert (h.underflow, h.overflow) == (ref[0], ref[-1])
+    np.testing.assert_allclose(h.sumw, np.histogram(v, bins=edges, weights=w)[0], rtol=1e-12)
 
 
 @pytest.mark.parametrize("start_method", ["auto", "spawn"])

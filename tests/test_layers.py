@@ -39,7 +39,7 @@ LAYERS: tuple[tuple[str, frozenset[str]], ...] = (
                         "_json", "_values"})),
     ("input", frozenset({"events", "kinematics", "energy_loss"})),
     ("candidates", frozenset({"cuts", "pairing", "histogram", "blinding"})),
-    ("models", frozenset({"shapes", "likelihood", "fitting"})),
+    ("models", frozenset({"shapes", "resolution", "likelihood", "fitting"})),
     ("statistics", frozenset({"stats"})),
     ("pipeline", frozenset({"config", "execution"})),
     ("orchestration and output",

@@ -51,7 +51,7 @@ def test_blinded_scan_counts_upcrossings_per_segment():
     rng = np.random.default_rng(10)   # seed chosen so the gap pair is an upcrossing
     x = 100.0 + rng.exponential(100.0, 20_000)
     h = MassHistogram(bins=300, range=(100.0, 400.0)).fill(x)
-    r = scan(h, "gaussian", "exponential", 121, resolution=0.01, blind=(240.0, 260.0),
+    r = scan(h, "gaussian", "exponential", 121, relative_resolution=0.01, blind=(240.0, 260.0),
              refit=False)
     res = r.global_significance("upcrossings", toys=0, u0=0.5)
     low = r.q0[~r.blinded & (r.masses < 240.0)]
@@ -122,7 +122,7 @@ def test_upcrossings_agree_with_toys_for_moderate_excess():
     rng = np.random.default_rng(8)
     x = np.concatenate([100.0 + rng.exponential(100.0, 30_000), rng.normal(260.0, 2.6, 45)])
     h = MassHistogram(bins=300, range=(100.0, 400.0)).fill(x)
-    r = scan(h, "gaussian", "exponential", 250, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", 250, relative_resolution=0.01, refit=False)
     assert 2.5 < r.z_local[r.best_index] < 3.7
     up = r.global_significance("upcrossings", toys=300, seed=1)
     toy = r.global_significance("toys", toys=3000, seed=2)

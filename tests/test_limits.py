@@ -89,8 +89,8 @@ def test_expected_limit_matches_fisher_information():
     never smaller.  The band edges likewise, with those band factors."""
     h = _spectrum(n_bkg=40_000)
     masses = [180.0, 250.0, 320.0]
-    r = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01)
-    model, _, _ = _prepare_model(h, "gaussian", "exponential", masses, resolution=0.01,
+    r = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01)
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", masses, relative_resolution=0.01,
                                     window=None, natural_width=None, blind=None,
                                     signal_params=None, bins=None)
     b = model.expected_background
@@ -121,8 +121,8 @@ def test_asymptotic_and_toy_limits_agree_at_moderate_counts():
     """Asymptotic CLs (Cowan et al. 2011) and toy-based CLs (Read 2002) agree within 10% at
     moderate counts (~40 background events under the peak): observed and median expected."""
     h = _spectrum(n_bkg=3000, n_sig=15, bins=150)
-    r = upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01)
-    t = upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01, method="toys",
+    r = upper_limits(h, "gaussian", "exponential", [250.0], relative_resolution=0.01)
+    t = upper_limits(h, "gaussian", "exponential", [250.0], relative_resolution=0.01, method="toys",
                      toy_masses=[250.0], toys=1000, seed=5)
     assert t.methods == ("toys",)
     assert t.observed[0] == pytest.approx(r.observed[0], rel=0.10)
@@ -136,22 +136,22 @@ def test_cross_section_conversion_and_nuisances():
     larger uncertainty; log-normal and Gaussian constraints agree for small uncertainties."""
     h = _spectrum()
     masses = [200.0, 300.0]
-    ev = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01)
+    ev = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01)
     def eff(m):
         return 0.2 + 0.001 * np.asarray(m)
 
-    xs = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01, luminosity=20.0,
-                      efficiency=eff)
+    xs = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01,
+                      luminosity=20.0, efficiency=eff)
     conv = 20.0 * eff(np.array(masses))
     assert xs.unit == "fb" and ev.unit == "events"
     assert np.allclose(xs.observed * conv, ev.observed, rtol=1e-4)
     assert np.allclose(xs.expected * conv, ev.expected, rtol=1e-4)
-    small = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01,
+    small = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01,
                          luminosity=20.0, efficiency=eff, luminosity_uncertainty=0.05)
-    big = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01,
+    big = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01,
                        luminosity=20.0, efficiency=eff, luminosity_uncertainty=0.05,
                        efficiency_uncertainty=0.3)
-    gauss = upper_limits(h, "gaussian", "exponential", masses, resolution=0.01,
+    gauss = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01,
                          luminosity=20.0, efficiency=eff, luminosity_uncertainty=0.05,
                          constraint="gaussian")
     assert np.all(small.expected > xs.expected) and np.all(big.expected > small.expected)
@@ -162,8 +162,8 @@ def test_cross_section_conversion_and_nuisances():
 def test_blinded_limits_show_expected_only(tmp_path):
     h = _spectrum(n_sig=60)
     blind = (240.0, 260.0)
-    r = upper_limits(h, "gaussian", "exponential", np.linspace(150, 350, 41), resolution=0.01,
-                     blind=blind)
+    r = upper_limits(h, "gaussian", "exponential", np.linspace(150, 350, 41),
+                     relative_resolution=0.01, blind=blind)
     inside = (r.masses >= blind[0]) & (r.masses <= blind[1])
     assert np.array_equal(r.blinded, inside) and inside.any()
     assert np.all(np.isnan(r.observed[inside])) and np.all(np.isfinite(r.observed[~inside]))
@@ -183,12 +183,13 @@ def test_blinded_limits_show_expected_only(tmp_path):
 def test_limit_input_errors():
     h = _spectrum()
     with pytest.raises(FitError, match="cl must be in"):
-        upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01, cl=95)
+        upper_limits(h, "gaussian", "exponential", [250.0], relative_resolution=0.01, cl=95)
     with pytest.raises(FitError, match="need luminosity"):
-        upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01,
+        upper_limits(h, "gaussian", "exponential", [250.0], relative_resolution=0.01,
                      efficiency_uncertainty=0.1)
     with pytest.raises(FitError, match="'asymptotic' or 'toys'"):
-        upper_limits(h, "gaussian", "exponential", [250.0], resolution=0.01, method="exact")
+        upper_limits(h, "gaussian", "exponential", [250.0], relative_resolution=0.01,
+                     method="exact")
 
 
 def _asimov_exponential(n_bkg: float = 20_000.0, slope: float = -3.0, bins: int = 300):
@@ -204,7 +205,7 @@ def _asimov_exponential(n_bkg: float = 20_000.0, slope: float = -3.0, bins: int 
 def test_toy_masses_on_a_blinded_point_are_skipped_with_one_note():
     """Two toy masses nearest the same blinded scan mass: no toys there, one note."""
     h = _spectrum(n_bkg=3000, bins=150)
-    r = upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], resolution=0.01,
+    r = upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], relative_resolution=0.01,
                      blind=(240.0, 260.0), method="toys", toy_masses=[249.0, 251.0],
                      toys=50, seed=1)
     assert r.methods == ("asymptotic", "asymptotic", "asymptotic")
@@ -224,8 +225,8 @@ def test_blinded_observed_limit_on_asimov_data_equals_expected_on_the_same_bins(
 
     h = _asimov_exponential()
     mass, blind = 240.5, (241.0, 260.0)
-    r = upper_limits(h, "gaussian", "exponential", [mass], resolution=0.01, blind=blind)
-    u = upper_limits(h, "gaussian", "exponential", [mass], resolution=0.01)
+    r = upper_limits(h, "gaussian", "exponential", [mass], relative_resolution=0.01, blind=blind)
+    u = upper_limits(h, "gaussian", "exponential", [mass], relative_resolution=0.01)
     assert u.observed[0] == pytest.approx(u.expected[0], rel=2e-3)  # no blinding: equal
     edges = h.edges
     used = ~((edges[:-1] < blind[1]) & (edges[1:] > blind[0]))
@@ -269,8 +270,8 @@ def test_single_bin_observed_limit_matches_exact_poisson_cls(n_obs):
     counts[j] = n_obs
     h.sumw = counts
     h.sumw2 = counts.copy()
-    r = upper_limits(h, "gaussian", "exponential", [255.0], resolution=0.001)
-    model, _, _ = _prepare_model(h, "gaussian", "exponential", [255.0], resolution=0.001,
+    r = upper_limits(h, "gaussian", "exponential", [255.0], relative_resolution=0.001)
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", [255.0], relative_resolution=0.001,
                                  window=None, natural_width=None, blind=None,
                                  signal_params=None, bins=None)
     assert model.fractions[0, j] == pytest.approx(1.0, abs=1e-9)
@@ -291,7 +292,7 @@ def test_toy_limits_on_the_execution_engines_match_serial():
     from peaksift.stats.limits import run_toy_limit
 
     h = _spectrum(n_bkg=3000, bins=150)
-    kw = {"resolution": 0.01, "method": "toys", "toy_masses": [200.0, 300.0, 200.5],
+    kw = {"relative_resolution": 0.01, "method": "toys", "toy_masses": [200.0, 300.0, 200.5],
           "toys": 200, "seed": 9}
     serial = upper_limits(h, "gaussian", "exponential", [200.0, 250.0, 300.0], **kw)
     assert serial.methods == ("toys", "asymptotic", "toys")  # 200.5 is 200's hypothesis

@@ -366,13 +366,19 @@ def test_chunks_with_offsets_concatenate_to_one_pass(random_rows):
     np.testing.assert_array_equal(back.mass, whole.mass)
 
 
-def test_in_window_is_half_open():
+def test_in_window_closes_both_ends_as_the_histogram():
+    """The window keeps lo <= m <= hi: the masses numpy.histogram puts in bins on [lo, hi]
+    (its last bin is closed), as MassHistogram does."""
     ev = _events(photon=_collection([[_mu(45.0, 0.0, 0.0, 0.0, 0),
                                       _mu(45.0, 0.0, math.pi, 0.0, 0),
                                       _mu(20.0, 0.0, math.pi / 2, 0.0, 0)]]))
     c = pair(ev, "photon")
-    w = c.in_window(c.mass.min(), c.mass.max())
-    assert len(w) == len(c) - 1 and c.mass.max() not in w.mass
+    lo, hi = c.mass.min(), c.mass.max()
+    w = c.in_window(lo, hi)
+    assert len(w) == len(c) == np.histogram(c.mass, bins=[lo, hi])[0].sum()
+    below = np.nextafter(hi, -np.inf)
+    w2 = c.in_window(lo, below)
+    assert len(w2) == len(c) - 1 == np.histogram(c.mass, bins=[lo, below])[0].sum()
     assert w.cutflow == c.cutflow
     with pytest.raises(InputError, match="lo < hi"):
         c.in_window(5, 1)

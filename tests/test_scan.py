@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -12,7 +13,7 @@ from scipy import stats
 from peaksift import MassHistogram, fit, shapes
 from peaksift.errors import DataWarning, FitError
 from peaksift.stats import scan
-from peaksift.stats.scan import _prepare_model, resolution_model
+from peaksift.stats.scan import _prepare_model
 from peaksift.stats.toys import profile_signal, run_toys, toy_counts
 
 WINDOW = (100.0, 400.0)
@@ -98,7 +99,7 @@ def test_scan_q0_matches_a_raw_iminuit_cost():
 
 def test_scan_finds_injected_peak_and_refits():
     h = _spectrum(n_sig=250)
-    r = scan(h, "gaussian", "exponential", 121, resolution=0.01)
+    r = scan(h, "gaussian", "exponential", 121, relative_resolution=0.01)
     assert abs(r.best_mass - 250.0) < 5.0
     assert r.z_local[r.best_index] > 4.0
     assert r.refit is not None and r.refit.valid
@@ -112,7 +113,7 @@ def test_scan_finds_injected_peak_and_refits():
 def test_negative_yield_allowed_but_q0_one_sided():
     """A deficit gives a negative fitted yield and q0 = 0 (Cowan et al. 2011 eq. 12)."""
     h = _spectrum(seed=9)
-    r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", 61, relative_resolution=0.01, refit=False)
     neg = r.signal_yield < 0
     assert neg.any()
     assert np.all(r.q0[neg] == 0.0) and np.all(r.p_local[neg] == 0.5)
@@ -125,7 +126,7 @@ def test_wilks_half_chi_square_at_fixed_mass():
     (scipy.stats.chi2.sf(q, 1)/2).  20,000 toys: binomial errors 0.0026 and 0.0011; we allow
     3 of them."""
     h = _spectrum(n_bkg=40_000)
-    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], resolution=0.01,
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], relative_resolution=0.01,
                                  window=None, natural_width=None, blind=None,
                                  signal_params=None, bins=None)
     q = run_toys(model, 20_000, seed=1, progress=False)[:, 0]
@@ -140,7 +141,7 @@ def test_signal_injection_pulls():
     """Injected signals are recovered without bias: pulls (s_hat - s)/sigma_s have mean 0 and
     width 1 (common practice), 400 toys: mean within 0.15, width within 10%."""
     h = _spectrum(n_bkg=20_000)
-    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], resolution=0.01,
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", [250.0], relative_resolution=0.01,
                                  window=None, natural_width=None, blind=None,
                                  signal_params=None, bins=None)
     s_true = 150.0
@@ -155,38 +156,25 @@ def test_signal_injection_pulls():
     assert abs(pulls.std(ddof=1) - 1.0) < 0.1
 
 
-def test_resolution_forms_agree():
-    masses = np.array([150.0, 250.0, 350.0])
-    a = resolution_model(0.01)(masses)
-    b = resolution_model(lambda m: 0.01 * m)(masses)
-    c = resolution_model(([100.0, 400.0], [1.0, 4.0]))(masses)
-    d = resolution_model({"mass": [100.0, 400.0], "sigma": [1.0, 4.0]})(masses)
-    assert np.allclose(a, [1.5, 2.5, 3.5]) and np.allclose(a, b) and np.allclose(a, c)
-    assert np.allclose(c, d)
-    with pytest.raises(FitError, match="outside the resolution table"):
-        resolution_model(([200.0, 300.0], [1.0, 2.0]))(masses)
-    with pytest.raises(FitError, match="positive relative resolution"):
-        resolution_model(-0.1)
-
-
 def test_voigt_needs_natural_width_and_gaussian_refuses_one():
     h = _spectrum()
     with pytest.raises(FitError, match="needs natural_width"):
-        scan(h, "voigt", "exponential", 11, resolution=0.01)
+        scan(h, "voigt", "exponential", 11, relative_resolution=0.01)
     with pytest.raises(FitError, match="has no natural width"):
-        scan(h, "gaussian", "exponential", 11, resolution=0.01, natural_width=1.0)
-    r = scan(h, "voigt", "exponential", 11, resolution=0.01, natural_width=1.0, refit=False)
+        scan(h, "gaussian", "exponential", 11, relative_resolution=0.01, natural_width=1.0)
+    r = scan(h, "voigt", "exponential", 11, relative_resolution=0.01, natural_width=1.0,
+             refit=False)
     assert np.all(np.isfinite(r.q0))
 
 
 def test_scan_bad_input_messages():
     h = _spectrum()
     with pytest.raises(FitError, match="outside the window"):
-        scan(h, "gaussian", "exponential", [50.0], resolution=0.01)
+        scan(h, "gaussian", "exponential", [50.0], relative_resolution=0.01)
     with pytest.raises(FitError, match="background shape"):
-        scan(h, "gaussian", "gaussian", [200.0], resolution=0.01)
+        scan(h, "gaussian", "gaussian", [200.0], relative_resolution=0.01)
     with pytest.raises(FitError, match="unknown shape"):
-        scan(h, "gausian", "exponential", [200.0], resolution=0.01)
+        scan(h, "gausian", "exponential", [200.0], relative_resolution=0.01)
 
 
 def test_blinding_hides_and_ignores_the_window(tmp_path):
@@ -194,7 +182,7 @@ def test_blinding_hides_and_ignores_the_window(tmp_path):
     nothing; observed values inside are NaN / None; expected values are still given."""
     h = _spectrum(n_sig=250)
     blind = (235.0, 265.0)
-    kw = {"resolution": 0.01, "blind": blind, "expected_signal": 100.0}
+    kw = {"relative_resolution": 0.01, "blind": blind, "expected_signal": 100.0}
     r1 = scan(h, "gaussian", "exponential", 61, **kw)
     h2 = h.copy()
     inside = (h2.edges[:-1] < blind[1]) & (h2.edges[1:] > blind[0])
@@ -216,7 +204,7 @@ def test_blinding_hides_and_ignores_the_window(tmp_path):
 
 def test_plot_writes_png(tmp_path):
     h = _spectrum(n_sig=200)
-    r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", 61, relative_resolution=0.01, refit=False)
     g = r.global_significance(toys=50, seed=3)
     path = tmp_path / "scan.png"
     fig = r.plot(path, global_result=g)
@@ -228,17 +216,65 @@ def test_plot_writes_png(tmp_path):
 def test_unbinned_masses_are_histogrammed():
     rng = np.random.default_rng(2)
     x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 5000), rng.normal(250, 2.5, 80)])
-    r = scan(x, shapes.get("gaussian"), "exponential", 31, resolution=0.01,
+    r = scan(x, shapes.get("gaussian"), "exponential", 31, relative_resolution=0.01,
              window=WINDOW, refit=False)
     assert abs(r.best_mass - 250.0) < 8.0
-    # the same scan on an explicit MassHistogram of those masses gives the same q0: bins of
-    # a quarter of the smallest sigma (0.01 x 115 GeV, the lowest default grid mass 100 +
-    # 5% of 300 GeV): ceil(300 / 0.2875) = 1044 bins on the window
+    # bins of a quarter of the smallest sigma (0.01 x 115 GeV, the lowest default grid mass
+    # 100 + 5% of 300 GeV): ceil(300 / 0.2875) = 1044 bins on the window
     assert r.model.edges.size - 1 == 1044
-    h = MassHistogram(bins=1044, range=WINDOW).fill(x)
-    rh = scan(h, shapes.get("gaussian"), "exponential", 31, resolution=0.01, refit=False)
-    assert np.array_equal(rh.masses, r.masses)
-    assert np.allclose(r.q0, rh.q0, rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_scan_of_masses_equals_scan_of_their_histogram(weighted):
+    """An array of masses and the histogram of the same masses give identical scans.  The
+    histogram is made by numpy.histogram (the outside reference for the edge rule: its last
+    bin is closed), and by MassHistogram.from_masses; masses sit exactly on the window's
+    edges, on inner bin edges and outside the window."""
+    rng = np.random.default_rng(21)
+    edges = np.linspace(*WINDOW, 301)
+    x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 20_000), rng.normal(250, 2.5, 120),
+                        np.full(50, WINDOW[1]), np.full(7, WINDOW[0]), edges[100:110],
+                        [WINDOW[1] + 1e-9, WINDOW[0] - 1e-9]])
+    w = rng.uniform(0.5, 1.5, x.size) if weighted else None
+    data = (x, w) if weighted else x
+    kw = {"relative_resolution": 0.01, "window": WINDOW, "refit": False}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DataWarning)  # the weighted-spectrum note
+        r_arr = scan(data, "gaussian", "exponential", 31, bins=300, **kw)
+        h_np = MassHistogram(edges)
+        h_np.sumw = np.histogram(x, bins=edges, weights=w)[0].astype(float)
+        w2 = None if w is None else w * w
+        h_np.sumw2 = np.histogram(x, bins=edges, weights=w2)[0].astype(float)
+        r_np = scan(h_np, "gaussian", "exponential", 31, **kw)
+        r_h = scan(MassHistogram.from_masses(x, w, edges=edges), "gaussian", "exponential", 31,
+                   **kw)
+    # the array goes through the histogram: the same numbers to the last bit
+    for key in ("q0", "signal_yield", "signal_yield_error", "background_yield"):
+        np.testing.assert_array_equal(getattr(r_h, key), getattr(r_arr, key))
+    # numpy's bins: the same counts exactly (the 50 masses at the window's top are in the last
+    # bin); weighted sums are added in another order, so the effective counts agree to
+    # rounding (1e-10) and q0 (a difference of two NLLs of ~1e5) to 1e-8 absolute
+    if weighted:
+        np.testing.assert_allclose(r_arr.model.counts, r_np.model.counts, rtol=1e-10)
+        np.testing.assert_allclose(r_arr.q0, r_np.q0, rtol=1e-9, atol=1e-8)
+    else:
+        np.testing.assert_array_equal(r_arr.model.counts, r_np.model.counts)
+        np.testing.assert_array_equal(r_arr.q0, r_np.q0)
+
+
+def test_fit_of_histogram_and_of_masses_count_the_same_events():
+    """The issue's case: 50 masses exactly at the window's top edge.  The binned fit of the
+    masses and the fit of their MassHistogram count the same events, the number
+    numpy.histogram puts in bins on the window (its last bin is closed)."""
+    rng = np.random.default_rng(3)
+    x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 20_000), np.full(50, WINDOW[1])])
+    edges = np.linspace(*WINDOW, 301)
+    want = int(np.histogram(x, bins=edges)[0].sum())
+    h = MassHistogram.from_masses(x, edges=edges)
+    a = fit(h, "gaussian", "exponential", WINDOW, fixed={"mass": 250.0, "sigma": 2.5})
+    b = fit(x, "gaussian", "exponential", WINDOW, binned=True, bins=300,
+            fixed={"mass": 250.0, "sigma": 2.5})
+    assert a.n_events == b.n_events == want
 
 
 def test_weighted_spectrum_uses_effective_counts():
@@ -248,9 +284,9 @@ def test_weighted_spectrum_uses_effective_counts():
     hw = h.copy()
     hw.sumw = 2.0 * h.sumw
     hw.sumw2 = 4.0 * h.sumw2
-    r = scan(h, "gaussian", "exponential", 31, resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", 31, relative_resolution=0.01, refit=False)
     with pytest.warns(DataWarning, match="effective counts"):
-        rw = scan(hw, "gaussian", "exponential", 31, resolution=0.01, refit=False)
+        rw = scan(hw, "gaussian", "exponential", 31, relative_resolution=0.01, refit=False)
     assert np.allclose(rw.z_local, r.z_local, atol=1e-9)
     # to the fits' convergence tolerance (the minimiser works in weighted units here)
     assert np.all(np.abs(rw.signal_yield - 2.0 * r.signal_yield)
@@ -271,7 +307,7 @@ def test_weighted_scan_matches_weighted_fits_with_mass_dependent_weights():
     w = (0.4 + (x - 100.0) / 150.0) * rng.uniform(0.5, 1.5, x.size)
     h = MassHistogram(bins=300, range=WINDOW).fill(x, weight=w)
     with pytest.warns(DataWarning, match="per bin"):
-        r = scan(h, "gaussian", "exponential", 61, resolution=0.01, refit=False)
+        r = scan(h, "gaussian", "exponential", 61, relative_resolution=0.01, refit=False)
     m = r.best_mass
     assert abs(m - 250.0) < 5.0
     sb = fit(h, "gaussian", "exponential", WINDOW, fixed={"mass": m, "sigma": 0.01 * m},

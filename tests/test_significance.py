@@ -92,7 +92,7 @@ def test_scan_on_asimov_spectrum_matches_binned_formula():
     h = MassHistogram(edges)
     h.sumw = b + s
     h.sumw2 = b + s
-    r = scan(h, "gaussian", "exponential", [200.0], resolution=0.01, refit=False)
+    r = scan(h, "gaussian", "exponential", [200.0], relative_resolution=0.01, refit=False)
     z_known = np.sqrt(np.sum(2 * ((s + b) * np.log1p(s / b) - s)))
     assert r.z_local[0] <= z_known + 1e-9
     assert r.z_local[0] == pytest.approx(z_known, rel=0.03)

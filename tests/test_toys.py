@@ -29,7 +29,7 @@ def _model(n_masses: int = 40, blind=None, background: str = "exponential",
     x = WINDOW[0] + rng.exponential(120.0, n_events)
     h = MassHistogram(bins=bins, range=WINDOW).fill(x)
     masses = np.linspace(115.0, 485.0, n_masses)
-    model, _, _ = _prepare_model(h, "gaussian", background, masses, resolution=0.01,
+    model, _, _ = _prepare_model(h, "gaussian", background, masses, relative_resolution=0.01,
                                  window=None, natural_width=None, blind=blind,
                                  signal_params=None, bins=None)
     return model
@@ -212,7 +212,7 @@ def test_sparse_toys_emit_no_floating_point_warnings():
     with warnings.catch_warnings():
         warnings.simplefilter("error", RuntimeWarning)
         model, _, _ = _prepare_model(h, "gaussian", "exponential", np.linspace(110, 490, 100),
-                                     resolution=0.01, window=None, natural_width=None,
+                                     relative_resolution=0.01, window=None, natural_width=None,
                                      blind=None, signal_params=None, bins=None)
         q = run_toys(model, 300, seed=2, progress=False)
     assert np.all(np.isfinite(q)) and np.all(q >= 0)
@@ -226,7 +226,7 @@ def test_toys_of_a_nearly_empty_spectrum_never_fail():
     x = np.array([130.0, 180.0, 260.0, 420.0])
     h = MassHistogram(bins=90, range=WINDOW).fill(x)
     model, _, _ = _prepare_model(h, "gaussian", "exponential", np.linspace(110, 490, 30),
-                                 resolution=0.01, window=None, natural_width=None,
+                                 relative_resolution=0.01, window=None, natural_width=None,
                                  blind=None, signal_params=None, bins=None)
     counts = toy_counts(model.expected_background, 3, 0, 500)
     q = run_toys(model, 500, seed=3, progress=False)

@@ -6,6 +6,7 @@ Where to start
 * ``pair``                                          -- build di-object candidates under cuts.
 * ``MassHistogram``                                 -- weighted mass spectrum.
 * ``fit``                                           -- extended signal-plus-background fit.
+* ``Resolution``                                    -- detector mass resolution sigma(m).
 * ``scan``                                          -- local significance vs mass hypothesis.
 * ``run_search``                                    -- the whole search from a TOML config.
 
@@ -39,6 +40,7 @@ _EXPORTS: dict[str, str] = {
     "MassHistogram": "peaksift.histogram",
     "fit": "peaksift.fitting.core",
     "FitResult": "peaksift.fitting.result",
+    "Resolution": "peaksift.resolution",
     "scan": "peaksift.stats.scan",
     "ScanResult": "peaksift.stats.scan",
     "LimitResult": "peaksift.stats.limits",
@@ -51,7 +53,7 @@ _EXPORTS: dict[str, str] = {
 _SUBMODULES = {
     "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing", "blinding",
     "histogram", "fitting", "config", "execution", "search", "plotting", "report",
-    "resonances", "errors",
+    "resonances", "errors", "resolution",
 }
 
 __all__ = [
@@ -65,6 +67,7 @@ __all__ = [
     "LimitResult",
     "MassHistogram",
     "PeaksiftError",
+    "Resolution",
     "ScanResult",
     "SearchResult",
     "__version__",

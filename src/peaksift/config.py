@@ -29,16 +29,18 @@ the closest valid key or value.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import itertools
 import math
 import sys
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
 from .errors import ConfigError, FitError, closest
+from .resolution import RELATIVE_MAX, Resolution, check_resolved, relative_problem
 
 if sys.version_info >= (3, 11):  # pragma: no cover - version switch
     import tomllib as _toml
@@ -82,6 +84,9 @@ class _Key:
     lo_open: bool = False
     hi_open: bool = False
     nullable: bool = False
+    # a number's own check (what is wrong, or None) used instead of lo/hi, which then only
+    # document the range: for a rule that another layer owns and applies too
+    check: Callable[[Any], str | None] | None = None
 
 
 # ------------------------------------------------------------------------------- schema
@@ -167,12 +172,13 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
     "model.resolution": (
         _Key("relative", "float", None,
              "Relative mass resolution sigma/m (give exactly one of relative, absolute, "
-             "table).", lo=0.0, lo_open=True, hi=1.0, nullable=True),
+             "table).", lo=0.0, lo_open=True, hi=RELATIVE_MAX, nullable=True,
+             check=relative_problem),
         _Key("absolute", "float", None, "Constant mass resolution sigma in GeV.",
              lo=0.0, lo_open=True, nullable=True),
         _Key("table", "pairs", None,
-             "Resolution table `[[mass, sigma], ...]` in GeV, interpolated linearly in mass.",
-             nullable=True),
+             "Resolution table `[[mass, sigma], ...]` in GeV, interpolated linearly in mass; "
+             "it must cover `spectrum.window`.", nullable=True),
         _Key("natural_width", "float", 0.0,
              "Natural width Gamma (GeV) of the hypothesised resonance; with a width > 0 the "
              "scan uses a Voigt signal.", lo=0.0),
@@ -334,35 +340,31 @@ class SpectrumConfig:
 
 @dataclass(frozen=True)
 class ResolutionConfig:
-    """Detector mass resolution: ``sigma(m)`` from exactly one of the three forms."""
+    """Detector mass resolution: the ``[model.resolution]`` keys, exactly one of the three
+    forms, as a :class:`~peaksift.resolution.Resolution` in :attr:`resolution`."""
 
     relative: float | None = None
     absolute: float | None = None
     table: tuple[tuple[float, float], ...] | None = None
     natural_width: float = 0.0
 
-    def sigma(self, mass: Any) -> Any:
-        """Gaussian mass resolution in GeV at ``mass`` (scalar or array).
-
-        ``relative``: sigma = r m; ``absolute``: sigma = const; ``table``: linear
-        interpolation in mass, constant beyond the first and last rows.
-        """
-        import numpy as np
-
-        m = np.asarray(mass, dtype=float)
+    @functools.cached_property  # built once: search evaluates sigma(m) mass by mass
+    def resolution(self) -> Resolution:
+        """The resolution these keys describe."""
         if self.relative is not None:
-            out = self.relative * m
-        elif self.absolute is not None:
-            out = np.full_like(m, self.absolute)
-        else:
-            t = np.asarray(self.table, dtype=float)
-            out = np.interp(m, t[:, 0], t[:, 1])
-        return float(out) if out.ndim == 0 else out
+            return Resolution.relative(self.relative)
+        if self.absolute is not None:
+            return Resolution.absolute(self.absolute)
+        return Resolution.table(self.table)
+
+    def sigma(self, mass: Any) -> Any:
+        """Gaussian mass resolution in GeV at ``mass`` (scalar or array), as
+        :meth:`Resolution.sigma <peaksift.resolution.Resolution.sigma>`."""
+        return self.resolution.sigma(mass)
 
     @property
     def kind(self) -> str:
-        return "relative" if self.relative is not None else (
-            "absolute" if self.absolute is not None else "table")
+        return self.resolution.kind
 
 
 @dataclass(frozen=True)
@@ -627,7 +629,12 @@ def _value(path: str, key: _Key, v: Any, where: str) -> Any:
         return v
     if k in ("int", "float"):
         x = _number(path, v, where, integer=(k == "int"))
-        _check_range(path, key, float(x), where)
+        if key.check is not None:
+            problem = key.check(x)
+            if problem:
+                raise ConfigError(f"{where}: {path} {problem}")
+        else:
+            _check_range(path, key, float(x), where)
         return x
     if k == "choice":
         if not isinstance(v, str):
@@ -910,6 +917,30 @@ def _check_calibration_outside_blinding(cal: tuple[float, float], blind: tuple[f
         )
 
 
+def _check_resolution(res: Mapping[str, Any], spectrum: Mapping[str, Any], where: str) -> None:
+    """The resolution must be defined on the whole window (a table covers it) and not far
+    below the bin width (:func:`peaksift.resolution.check_resolved`), so the scan's grid of
+    hypotheses half a sigma apart stays finite."""
+    import numpy as np
+
+    cfg = ResolutionConfig(**res)
+    lo, hi = spectrum["window"]
+    r = cfg.resolution
+    try:
+        r.sigma(np.array([lo, hi]))
+    except FitError:  # only a table can fail here: its rows do not reach the window's ends
+        t0, t1 = r.mass_range  # type: ignore[misc]
+        raise ConfigError(
+            f"{where}: model.resolution.table covers {t0:g}-{t1:g} GeV but spectrum.window "
+            f"is [{lo:g}, {hi:g}]; add rows so the table spans the window (sigma is not "
+            "guessed beyond the measured points)") from None
+    edges = np.linspace(lo, hi, int(spectrum["bins"]) + 1)
+    try:
+        check_resolved(r, 0.5 * (edges[1:] + edges[:-1]), edges, what="model.resolution")
+    except FitError as exc:
+        raise ConfigError(f"{where}: {exc}") from None
+
+
 def _check_cut(path: str, text: str, where: str) -> None:
     """Parse a cut expression now (syntax and whitelist), so a typo stops the run up front."""
     if not text.strip():
@@ -977,6 +1008,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
             f"(got {', '.join(given) if given else 'none'}); e.g. [model.resolution] "
             "relative = 0.01 for sigma = 1% of the mass"
         )
+    _check_resolution(res, sp, where)
 
     pr = vals["pairing"]
     if pr["choose"] == "closest" and pr["target_mass"] is None:

@@ -7,12 +7,18 @@ and overflow.  Use it when
 * you fill a spectrum from candidates (``h.fill(cands.mass, cands.weight)``);
 * you merge partial spectra from chunks or workers (``h1 + h2``; for unweighted data
   the merged counts equal one pass exactly, for weighted data to rounding);
-* you hand a spectrum to :func:`peaksift.fit` or :func:`peaksift.scan`;
+* you hand a spectrum to :func:`peaksift.fit` or :func:`peaksift.scan`, which take the bins
+  inside their window (:meth:`~MassHistogram.restrict`) and, for weighted spectra, the
+  scaled-Poisson factor of each bin (:meth:`~MassHistogram.scaled_poisson_factors`);
 * you keep a spectrum on disk (``save``/``load``; ``.npz`` or ``.json``, both exact).
 
-Bins are half-open, ``[edge[i], edge[i+1])``: a value equal to the last edge goes to
-the overflow (``numpy.histogram`` instead closes its last bin; that is the only
-difference).  NaN values are not filled; they are counted in ``n_nan``.
+:meth:`MassHistogram.from_masses` builds and fills one in a call.
+
+The edge rule (``numpy.histogram``'s): bins are ``[edge[i], edge[i+1])`` except the last,
+which is closed, ``[edge[n-1], edge[n]]``.  A mass equal to the top of the range is inside
+the range, as a fit window ``lo <= m <= hi`` selects it (:func:`in_range` is that test for
+raw masses); the overflow holds masses above the last edge, the underflow masses below the
+first.  NaN values are not filled; they are counted in ``n_nan``.
 """
 
 from __future__ import annotations
@@ -25,11 +31,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._files import atomic_write
 from .errors import InputError
 
-__all__ = ["MassHistogram"]
+__all__ = ["MassHistogram", "in_range"]
 
 _FORMAT = "peaksift-mass-histogram"
 _FORMAT_VERSION = 1
@@ -94,6 +101,26 @@ def _regular_index(edges: np.ndarray, values: np.ndarray) -> np.ndarray:
     return k
 
 
+def in_range(mass: ArrayLike, lo: float, hi: float) -> np.ndarray:
+    """``lo <= mass <= hi`` (both ends closed): the masses a histogram on ``[lo, hi]`` puts
+    in its bins, and the masses a fit window ``(lo, hi)`` uses.  NaN is outside."""
+    m = np.asarray(mass, dtype=float)
+    return (m >= lo) & (m <= hi)
+
+
+def _bin_index(edges: np.ndarray, values: np.ndarray, regular: bool) -> np.ndarray:
+    """0 for underflow, ``1..n`` for the bins, ``n + 1`` for overflow, by the module's edge
+    rule: ``searchsorted(side="right")`` (half-open bins), then the last edge moved into the
+    last bin, which is closed.  ``values`` holds no NaN."""
+    n = edges.size - 1
+    if regular and n >= _ARITHMETIC_INDEX_MIN_BINS:
+        idx = _regular_index(edges, values)
+    else:
+        idx = np.searchsorted(edges, values, side="right")
+    idx[values == edges[-1]] = n
+    return idx
+
+
 class MassHistogram:
     """A weighted one-dimensional histogram of invariant masses.
 
@@ -115,8 +142,8 @@ class MassHistogram:
     sumw, sumw2 : ndarray
         Sum of weights and of squared weights per bin.
     underflow, overflow : float
-        Sum of weights below the first / at or above the last edge
-        (``underflow_sumw2`` and ``overflow_sumw2`` likewise).
+        Sum of weights below the first / above the last edge (a value equal to the last
+        edge is in the last bin); ``underflow_sumw2`` and ``overflow_sumw2`` likewise.
     n_nan : int
         Number of NaN values offered to :meth:`fill` and not filled.
     """
@@ -254,11 +281,7 @@ class MassHistogram:
         if m.size == 0:
             return self
         n = self.nbins
-        # index 0 = underflow, 1..n = bins, n+1 = overflow; bins are [e_i, e_{i+1})
-        if self._regular and n >= _ARITHMETIC_INDEX_MIN_BINS:
-            idx = _regular_index(self.edges, m)
-        else:
-            idx = np.searchsorted(self.edges, m, side="right")
+        idx = _bin_index(self.edges, m, self._regular)  # 0 underflow, 1..n, n+1 overflow
         if w is None:
             s1 = s2 = np.bincount(idx, minlength=n + 2).astype(float)
         else:
@@ -271,6 +294,86 @@ class MassHistogram:
         self.underflow_sumw2 += s2[0]
         self.overflow_sumw2 += s2[n + 1]
         return self
+
+    @classmethod
+    def from_masses(
+        cls,
+        mass: ArrayLike,
+        weight: ArrayLike | None = None,
+        *,
+        edges: ArrayLike | None = None,
+        bins: int | None = None,
+        range: tuple[float, float] | None = None,  # mirrors numpy.histogram
+        unit: str = "GeV",
+        label: str = "m",
+    ) -> MassHistogram:
+        """A new histogram (``edges``, or ``bins`` equal bins on ``range``) filled with
+        ``mass`` and optional ``weight``: ``MassHistogram(edges).fill(mass, weight)``."""
+        return cls(edges, bins=bins, range=range, unit=unit, label=label).fill(mass, weight)
+
+    # ------------------------------------------------------- window, likelihood
+    def restrict(self, window: tuple[float, float]) -> MassHistogram:
+        """The bins lying completely inside ``window = (lo, hi)``, as a new histogram.
+
+        The window snaps to the edges of those bins (an edge closer to ``lo`` or ``hi`` than
+        1e-9 of the histogram's range counts as on it); bins cut by the window are left out
+        and their contents join the under- or overflow, so no weight is lost.  A value equal to
+        an inner edge was counted in the bin above it and stays there: it is inside a
+        window starting at that edge and outside one ending there.
+
+        Raises
+        ------
+        InputError
+            ``window`` is not two finite numbers with lo < hi, or no bin lies completely
+            inside it (the message names the nearest edges to choose).
+        """
+        try:
+            lo, hi = (float(v) for v in window)
+        except (TypeError, ValueError):
+            raise InputError(f"window must be two numbers (lo, hi) in {self.unit}, got "
+                             f"{window!r:.80}") from None
+        if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
+            raise InputError(f"window must be finite with lo < hi, got ({lo!r}, {hi!r})")
+        e = self.edges
+        tol = 1e-9 * (self.hi - self.lo)
+        keep = np.flatnonzero((e[:-1] >= lo - tol) & (e[1:] <= hi + tol))
+        if keep.size == 0:
+            i = int(np.clip(np.searchsorted(e, lo, side="left"), 0, self.nbins - 1))
+            raise InputError(
+                f"window ({lo:g}, {hi:g}) contains no complete bin of the histogram ({self.nbins} "
+                f"bins on [{self.lo:g}, {self.hi:g}] {self.unit}); choose a window spanning "
+                f"at least one whole bin, e.g. ({e[i]:g}, {e[i + 1]:g}), or refill the masses "
+                "with finer bins")
+        i0, i1 = int(keep[0]), int(keep[-1]) + 1
+        h = MassHistogram(e[i0 : i1 + 1], unit=self.unit, label=self.label)
+        h.sumw = self.sumw[i0:i1].copy()
+        h.sumw2 = self.sumw2[i0:i1].copy()
+        h.underflow = self.underflow + float(self.sumw[:i0].sum())
+        h.underflow_sumw2 = self.underflow_sumw2 + float(self.sumw2[:i0].sum())
+        h.overflow = self.overflow + float(self.sumw[i1:].sum())
+        h.overflow_sumw2 = self.overflow_sumw2 + float(self.sumw2[i1:].sum())
+        h.n_nan = self.n_nan
+        return h
+
+    def scaled_poisson_factors(self) -> np.ndarray:
+        """The scaled-Poisson factor of every bin, ``s_i = sumw_i / sumw2_i``.
+
+        A bin of weighted entries is treated as a Poisson count of ``s_i sumw_i`` effective
+        entries with expectation ``s_i mu_i`` (Bohm and Zech, "Statistics of weighted
+        Poisson events and its applications", NIM A 748 (2014) 1): the scale makes the
+        effective count's variance equal its mean.  Bins with no usable ratio (``sumw2 = 0``,
+        or ``sumw <= 0`` from negative weights) take the ratio of the totals over the bins,
+        ``sum(sumw) / sum(sumw2)`` (1 when that is undefined).  Unweighted histograms give 1
+        in every bin.
+        """
+        n, n2 = self.sumw, self.sumw2
+        if np.array_equal(n, n2):
+            return np.ones_like(n)
+        total2 = float(n2.sum())
+        overall = float(n.sum()) / total2 if total2 > 0 else 1.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            s = np.where(n2 > 0, n / np.where(n2 > 0, n2, 1.0), overall)
+        return np.where(s > 0, s, overall)
 
     # ------------------------------------------------------------------- merge
     def _check_compatible(self, other: Any) -> None:

@@ -76,6 +76,7 @@ import numpy as np
 from . import kinematics
 from .cuts import CutLike, event_mask, flat_object_mask
 from .errors import ConfigError, InputError, closest
+from .histogram import in_range
 
 __all__ = ["CHOOSE_RULES", "Candidates", "load_kernels", "pair"]
 
@@ -185,7 +186,8 @@ class Candidates:
         return dataclasses.replace(self, **cols, cutflow=dict(self.cutflow), multiplicity=mult)
 
     def in_window(self, lo: float, hi: float) -> Candidates:
-        """Candidates with ``lo <= mass < hi`` (half-open, as histogram bins).
+        """Candidates with ``lo <= mass <= hi``: the masses a histogram on ``[lo, hi]`` puts
+        in its bins (:func:`peaksift.histogram.in_range`; the last bin is closed).
 
         The cut flow and multiplicities are copied unchanged: they describe the pairing,
         before the window.
@@ -193,7 +195,7 @@ class Candidates:
         lo, hi = float(lo), float(hi)
         if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
             raise InputError(f"in_window needs finite lo < hi, got ({lo!r}, {hi!r})")
-        return self.select((self.mass >= lo) & (self.mass < hi))
+        return self.select(in_range(self.mass, lo, hi))
 
 
 # ----------------------------------------------------------------------- kernels

@@ -50,7 +50,7 @@ from typing import Any
 
 import numpy as np
 
-from .config import Config, load_config
+from .config import SCHEMA, Config, load_config
 from .errors import ConfigError, CutError, FitError, InputError, PeaksiftError
 
 __all__ = ["FIT_FILES", "SearchResult", "SpectrumResult", "run_fit", "run_search", "run_spectrum"]
@@ -203,12 +203,16 @@ def _fit_dict(fr: Any) -> dict[str, Any]:
 def _in_window(col: Any, cfg: Config, hidden: tuple[float, float] | None = None) -> int:
     """Candidates (not weights) with a mass inside the fit window; with ``hidden`` (the mass
     range of the blinded bins) only those outside it: the sidebands."""
-    lo, hi = cfg.spectrum.window
-    m = np.asarray(col.window_mass, dtype=float)
-    keep = (m >= lo) & (m < hi)
-    if hidden is not None:
-        keep &= ~((m >= hidden[0]) & (m < hidden[1]))
-    return int(np.count_nonzero(keep))
+    from .histogram import MassHistogram
+
+    # counted by the spectrum's own bins, so the edge rule is the histogram's
+    h = MassHistogram.from_masses(np.asarray(col.window_mass, dtype=float),
+                                  edges=cfg.spectrum.edges)
+    counts = h.sumw
+    if hidden is not None:  # the hidden range is a union of whole bins
+        c = h.centers
+        counts = counts[~((c > hidden[0]) & (c < hidden[1]))]
+    return round(float(counts.sum()))
 
 
 def _hidden(blinding: Mapping[str, Any]) -> tuple[float, float] | None:
@@ -299,6 +303,10 @@ def _scan_signal_name(cfg: Config) -> str:
     return "voigt" if cfg.model.resolution.natural_width > 0 else "gaussian"
 
 
+#: most hypotheses the default grid may hold: as many as ``scan.points`` allows
+_MAX_DEFAULT_HYPOTHESES = int(next(k.hi for k in SCHEMA["scan"] if k.name == "points"))
+
+
 def _scan_masses(cfg: Config) -> np.ndarray:
     """The grid of hypotheses: ``[scan]`` keys, or half the local resolution apart."""
     lo, hi = cfg.spectrum.window
@@ -318,6 +326,11 @@ def _scan_masses(cfg: Config) -> np.ndarray:
         return start + cfg.scan.step * np.arange(n)
     grid = [start]
     while grid[-1] < stop:
+        if len(grid) > _MAX_DEFAULT_HYPOTHESES:  # config validation keeps sigma >= 1% of a bin
+            raise ConfigError(
+                f"config {cfg.source}: hypotheses half a resolution sigma apart would number "
+                f"more than {_MAX_DEFAULT_HYPOTHESES} ({res.resolution.describe()}); set "
+                "scan.step or scan.points, or check model.resolution")
         grid.append(grid[-1] + 0.5 * float(res.sigma(grid[-1])))
     grid[-1] = min(grid[-1], stop)
     if len(grid) > 1 and grid[-1] - grid[-2] < 1e-9:
@@ -412,14 +425,13 @@ def _keyed_input_error(cfg: Config, exc: InputError) -> InputError:
 
 
 def _fill(col: Any, cfg: Config, lo: float, hi: float, nbins: int) -> Any:
-    from .histogram import MassHistogram
+    from .histogram import MassHistogram, in_range
 
     m = np.asarray(col.window_mass, dtype=float)
     w = np.asarray(col.window_weight, dtype=float) if cfg.input.weights else None
-    h = MassHistogram(bins=nbins, range=(lo, hi))
-    sel = (m >= lo) & (m < hi)
-    h.fill(m[sel], None if w is None else w[sel])
-    return h
+    sel = in_range(m, lo, hi)  # the collected masses may span a wider (union) window
+    return MassHistogram.from_masses(m[sel], None if w is None else w[sel], bins=nbins,
+                                     range=(lo, hi))
 
 
 def _shape(name: str, options: Mapping[str, Any]) -> Any:
@@ -613,7 +625,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         width = None
     seed = cfg.significance.seed
 
-    sres = scan(hist, scan_sig, bkg, masses, resolution=sigma_fn, window=(lo, hi),
+    sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
                 natural_width=width, blind=blind_window, refit=False)
     best = dict(sres.global_significance(
         method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
@@ -634,8 +646,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     limits = None
     if cfg.limits.enabled:
-        limits = _limits(cfg, hist, scan_sig, bkg, masses, sigma_fn, width, blind_window,
-                         progress)
+        limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress)
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -723,7 +734,7 @@ def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
                              start_method=ex.start_method)
 
 
-def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigma_fn: Any,
+def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
             width: float | None, blind: Any, progress: bool) -> Any:
     from .stats.limits import upper_limits
 
@@ -738,7 +749,8 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
                 f"[{lm[0]:g}, {lm[-1]:g}] GeV (the scan keeps 3 resolution sigma inside the "
                 "window unless scan.start / scan.stop say otherwise); choose masses inside it")
     return upper_limits(
-        hist, sig, bkg, lm, resolution=sigma_fn, window=cfg.spectrum.window, cl=L.cl,
+        hist, sig, bkg, lm, resolution=cfg.model.resolution.resolution,
+        window=cfg.spectrum.window, cl=L.cl,
         method=L.method,
         **_opt(toys=L.toys if L.method == "toys" else None, seed=cfg.significance.seed,
                toy_masses=list(L.toy_masses) or None,
@@ -750,6 +762,15 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
         constraint=L.constraint, progress=progress,
         executor=_toy_executor(cfg, "toy limits") if L.method == "toys" else None,
     )
+
+
+def _sigma_near(cfg: Config, mass: float) -> float:
+    """sigma at ``mass``, or at the nearest row of a resolution table that stops short of it:
+    for the calibration peak, whose window may lie beyond the table (which must cover only
+    the search window), where sigma is a fit's starting value or a matching tolerance."""
+    r = cfg.model.resolution.resolution
+    m = float(mass) if r.mass_range is None else float(np.clip(mass, *r.mass_range))
+    return float(r.sigma(m))
 
 
 def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any]:
@@ -768,7 +789,7 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
     start: dict[str, float] = {"mass": ref.mass}
     fixed: dict[str, float] = {}
     if "sigma" in names:
-        start["sigma"] = float(cfg.model.resolution.sigma(ref.mass))
+        start["sigma"] = _sigma_near(cfg, ref.mass)
     if "width" in names:
         start["width"] = ref.width
         if c.fix_width:
@@ -801,7 +822,7 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
     }
     from .resonances import match_known, pair_charge
 
-    res_sigma = float(cfg.model.resolution.sigma(m)) if np.isfinite(m) else 0.0
+    res_sigma = _sigma_near(cfg, m) if np.isfinite(m) else 0.0
     out["known_matches"] = [k.to_dict() for k in match_known(
         m, error=e if np.isfinite(e) else 0.0, resolution=res_sigma,
         charge=pair_charge(cfg.pairing.charge))] if np.isfinite(m) else []
@@ -1147,9 +1168,11 @@ def _fit_data(cfg: Config, col: Any, hist: Any) -> tuple[bool | None, Any]:
     binned = {"auto": None, "binned": True, "unbinned": False}[cfg.model.fit]
     if binned is not False:
         return binned, hist
+    from .histogram import in_range
+
     lo, hi = cfg.spectrum.window
     m = np.asarray(col.window_mass, dtype=float)
-    sel = (m >= lo) & (m < hi)
+    sel = in_range(m, lo, hi)
     if cfg.input.weights and hist.is_weighted:
         return binned, (m[sel], np.asarray(col.window_weight, dtype=float)[sel])
     return binned, m[sel]

@@ -374,7 +374,7 @@ def _block(rng: np.random.Generator, n: int, first_event: int, sc: Scenario, wei
             mreco = kin.pair_mass(p1, e1, f1, m_l, p2, e2, f2, m_l)
             stats[name]["both_leptons_selected"] = int(both.sum())
             stats[name]["selected_in_search_window"] = int(
-                (both & (mreco >= lo_w) & (mreco < hi_w)).sum())
+                (both & (mreco >= lo_w) & (mreco <= hi_w)).sum())
     # fakes: non-prompt leptons with soft spectra and poor isolation
     for target, lam, m_l, eta_max in ((muons, sc.fake_muons_per_event, _M_MU, sc.muon_eta_max),
                                       (electrons, sc.fake_electrons_per_event, _M_E,

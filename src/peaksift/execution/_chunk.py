@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError, DataWarning
-from ..histogram import MassHistogram
+from ..histogram import MassHistogram, in_range
 
 
 def _float_tuple(values: Any, what: str) -> tuple[float, ...]:
@@ -48,8 +48,8 @@ class Selection:
     edges : sequence of float
         Bin edges of the mass spectrum (GeV), strictly increasing.
     window : (float, float), optional
-        Fit window ``[lo, hi)`` in GeV; candidate masses inside it are kept for unbinned
-        fits.  Default: the histogram range.
+        Fit window ``[lo, hi]`` in GeV (both ends inside, as the histogram's last bin);
+        candidate masses inside it are kept for unbinned fits.  Default: the histogram range.
     cut, second_cut, event_cut : str or compiled cut, optional
         Object cuts for ``first`` and ``second`` and the event-level cut, as accepted by
         :func:`peaksift.pair` (cut strings are always safe to send to workers; Python
@@ -261,8 +261,8 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
     edges = selection.edges
     hist = _fill_hist(edges, mass, weight, selection.unit, "m")
     lo, hi = selection.window
-    inwin = (mass >= lo) & (mass < hi)
-    inrange = (mass >= edges[0]) & (mass < edges[-1])
+    inwin = in_range(mass, lo, hi)
+    inrange = in_range(mass, edges[0], edges[-1])
     w_range = weight[inrange]
     pt_hist = _fill_hist(selection.pt_edges, np.asarray(cands.pt, dtype=float)[inrange],
                          w_range, selection.unit, "p_T")

@@ -27,7 +27,7 @@ from .limits import (
     run_toy_limit,
     upper_limits,
 )
-from .scan import ScanResult, resolution_model, scan
+from .scan import ScanResult, scan
 from .significance import (
     asimov_counts,
     binned_q0,
@@ -65,7 +65,6 @@ __all__ = [
     "poisson_interval",
     "poisson_upper_limit",
     "q0_from_nll",
-    "resolution_model",
     "run_toy_batch",
     "run_toy_limit",
     "run_toys",

@@ -392,7 +392,9 @@ def upper_limits(
     background: Any,
     masses: Any,
     *,
-    resolution: Any,
+    resolution: Any = None,
+    relative_resolution: float | None = None,
+    absolute_resolution: float | None = None,
     window: tuple[float, float] | None = None,
     natural_width: Any = None,
     blind: tuple[float, float] | None = None,
@@ -416,9 +418,10 @@ def upper_limits(
 
     Parameters
     ----------
-    data, signal, background, masses, resolution, window, natural_width, blind,
-    signal_params, bins :
-        As in :func:`peaksift.scan`.
+    data, signal, background, masses, resolution, relative_resolution, absolute_resolution,
+    window, natural_width, blind, signal_params, bins :
+        As in :func:`peaksift.scan` (exactly one of the three resolution forms; a bare
+        number for ``resolution`` is refused).
     cl : float
         Confidence level (default 0.95).
     method : "asymptotic" or "toys"
@@ -455,8 +458,10 @@ def upper_limits(
     if luminosity_uncertainty < 0 or efficiency_uncertainty < 0:
         raise FitError("luminosity_uncertainty and efficiency_uncertainty must be >= 0")
     model, spec, info = _prepare_model(
-        data, signal, background, masses, resolution=resolution, window=window,
-        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins)
+        data, signal, background, masses, resolution=resolution,
+        relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
+        window=window, natural_width=natural_width, blind=blind, signal_params=signal_params,
+        bins=bins)
     m_all = info["masses"]
     bl = info["blinded_mass"]
     nm = m_all.size

@@ -6,9 +6,10 @@ the fitted signal yield at every mass, the best hypothesis, a free refit there, 
 significance (:meth:`ScanResult.global_significance`, look-elsewhere effect included) and a
 plot of p_local against mass.
 
-At each hypothesis the signal shape is fixed by the resolution model (``resolution``: a
-number = sigma/m; a callable sigma(m); or a table ``(masses, sigmas)`` interpolated
-linearly), optionally with a natural ``width``; the signal yield (free, may be negative) and
+At each hypothesis the signal shape is fixed by the detector resolution, given explicitly
+(``relative_resolution=0.01`` for sigma/m, ``absolute_resolution=2.0`` for GeV, or
+``resolution=`` a :class:`peaksift.Resolution`, a callable sigma(m) or a table; a bare number
+is refused), optionally with a natural ``width``; the signal yield (free, may be negative) and
 all background parameters are profiled in the extended binned Poisson likelihood (see
 :mod:`peaksift.stats.toys` for the engine).  q0 = 0 when the fitted yield is negative (the
 one-sided discovery test of Cowan, Cranmer, Gross, Vitells, EPJC 71 (2011) 1554).
@@ -35,71 +36,12 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import DataWarning, FitError, PeaksiftError
 from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
+from ..resolution import check_resolved, resolution_from
 from . import lee
 from .significance import p_from_q0, z_from_q0
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background, profile_signal, run_toys
 
-__all__ = ["ScanResult", "resolution_model", "scan"]
-
-
-# ------------------------------------------------------------------ resolution model
-def resolution_model(resolution: Any) -> Callable[[np.ndarray], np.ndarray]:
-    """Turn a resolution description into a vectorised ``sigma(m)``.
-
-    ``resolution`` may be a positive number (relative resolution, sigma = r m), a callable
-    ``sigma(m)``, a pair ``(masses, sigmas)`` or a mapping ``{"mass": [...], "sigma": [...]}``
-    (linear interpolation; masses outside the table are an error).
-    """
-    if isinstance(resolution, (int, float)) and not isinstance(resolution, bool):
-        r = float(resolution)
-        if not (r > 0 and math.isfinite(r)):
-            raise FitError(f"resolution must be a positive relative resolution sigma/m, got {r!r}"
-                           "; e.g. resolution=0.01 for 1%")
-        return lambda m: r * np.asarray(m, float)
-    if callable(resolution):
-        def from_callable(m: np.ndarray) -> np.ndarray:
-            m = np.asarray(m, float)
-            try:
-                out = np.asarray(resolution(m), float)
-                if out.shape != m.shape:
-                    out = np.broadcast_to(out, m.shape).astype(float)
-            except (TypeError, ValueError):
-                out = np.array([float(resolution(float(v))) for v in m.ravel()]).reshape(m.shape)
-            return out
-        return from_callable
-    if isinstance(resolution, Mapping):
-        try:
-            tm, ts = resolution["mass"], resolution["sigma"]
-        except KeyError as exc:
-            raise FitError(f"resolution table needs keys 'mass' and 'sigma', missing {exc}"
-                           ) from None
-    else:
-        try:
-            tm, ts = resolution
-        except (TypeError, ValueError):
-            raise FitError(
-                f"resolution must be a number (sigma/m), a callable sigma(m) or a table "
-                f"(masses, sigmas); got {type(resolution).__name__}"
-            ) from None
-    tm = np.asarray(tm, float)
-    ts = np.asarray(ts, float)
-    if tm.ndim != 1 or tm.shape != ts.shape or tm.size < 2:
-        raise FitError("resolution table: masses and sigmas must be 1-d of the same length >= 2")
-    if np.any(np.diff(tm) <= 0):
-        raise FitError("resolution table: masses must increase strictly")
-    if np.any(ts <= 0):
-        raise FitError("resolution table: every sigma must be > 0")
-
-    def from_table(m: np.ndarray) -> np.ndarray:
-        m = np.asarray(m, float)
-        out = (m < tm[0] - 1e-9 * abs(tm[0])) | (m > tm[-1] + 1e-9 * abs(tm[-1]))
-        if np.any(out):
-            bad = m[out].ravel()[0]
-            raise FitError(f"mass {bad:g} is outside the resolution table "
-                           f"({tm[0]:g}-{tm[-1]:g} GeV); extend the table or the scan range")
-        return np.interp(m, tm, ts)
-
-    return from_table
+__all__ = ["ScanResult", "scan"]
 
 
 # ---------------------------------------------------------------------- data input
@@ -114,21 +56,16 @@ class _Spectrum:
 
 
 def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
+    """The window's bins as the likelihood sees them, from a MassHistogram or from masses.
+
+    Masses are histogrammed with :meth:`MassHistogram.from_masses` on the window (default:
+    their range) and then go the histogram's way, so an array and the histogram built from
+    it give the same spectrum; the edge rule is the histogram's (a mass equal to the top of
+    the window is in the last bin)."""
     from ..histogram import MassHistogram
 
     if isinstance(data, MassHistogram):
-        e = np.asarray(data.edges, float)
-        lo, hi = (e[0], e[-1]) if window is None else (float(window[0]), float(window[1]))
-        tol = 1e-9 * (e[-1] - e[0])
-        keep = np.flatnonzero((e[:-1] >= lo - tol) & (e[1:] <= hi + tol))
-        if keep.size == 0:
-            raise FitError(f"scan window ({lo:g}, {hi:g}) holds no complete bin of the "
-                           f"histogram ({e[0]:g}-{e[-1]:g}); choose a window inside it")
-        i0, i1 = keep[0], keep[-1] + 1
-        sumw = np.asarray(data.sumw, float)[i0:i1]
-        sumw2 = np.asarray(data.sumw2, float)[i0:i1]
-        unit = data.unit
-        edges = e[i0 : i1 + 1]
+        hist = data if window is None else data.restrict(window)
     else:
         if isinstance(data, tuple) and len(data) == 2:
             x, w = (np.asarray(v, float).ravel() for v in data)
@@ -140,35 +77,32 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
             raise FitError("scan: masses contain NaN or infinite values; drop them first")
         lo, hi = (float(x.min()), float(x.max())) if window is None else (float(window[0]),
                                                                         float(window[1]))
+        if not hi > lo:
+            raise FitError(f"scan: the window ({lo:g}, {hi:g}) is empty; give window=(lo, hi) "
+                           "with lo < hi")
         if bins is None:
             nb = int(np.clip(math.ceil((hi - lo) / (0.25 * min_sigma())), 50, 2000))
         else:
             nb = int(bins)
-        edges = np.linspace(lo, hi, nb + 1)
-        sel = (x >= lo) & (x <= hi)
-        idx = np.clip(np.searchsorted(edges, x[sel], side="right") - 1, 0, nb - 1)
-        ws = None if w is None else w[sel]
-        sumw = np.bincount(idx, weights=ws, minlength=nb).astype(float)
-        sumw2 = sumw.copy() if w is None else np.bincount(idx, weights=ws * ws, minlength=nb)
-        unit = "GeV"
+        hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
+    sumw = np.asarray(hist.sumw, float)
+    edges = np.asarray(hist.edges, float)
     if not (np.all(np.isfinite(sumw)) and np.all(sumw >= 0)):
         raise FitError("scan: bin contents in the window must be finite and non-negative")
     if sumw.sum() <= 0:
         raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
     scale = 1.0
     bin_scale = None
-    if not np.allclose(sumw, sumw2):
-        from ..fitting.data import poisson_scale as _scale
-
-        scale = float(sumw.sum() / sumw2.sum())
-        bin_scale = np.asarray(_scale(sumw, sumw2), float)
+    if not np.allclose(sumw, hist.sumw2):
+        scale = float(sumw.sum() / hist.sumw2.sum())
+        bin_scale = hist.scaled_poisson_factors()
         warnings.warn(
             f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
             f"k_i sum(w) per bin, k_i = sum(w)/sum(w^2) of the bin (overall {scale:.4g}); "
             f"an approximation for unequal weights (exact for equal ones)",
             DataWarning, stacklevel=3)
     return _Spectrum(edges, sumw * (1.0 if bin_scale is None else bin_scale), scale,
-                     (float(edges[0]), float(edges[-1])), unit, bin_scale)
+                     (float(edges[0]), float(edges[-1])), hist.unit, bin_scale)
 
 
 def _blind_mask(edges: np.ndarray, blind: Any) -> np.ndarray:
@@ -323,9 +257,11 @@ class _BackgroundCost:
         return np.where(np.isfinite(g), g, 0.0)
 
 
-def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, resolution: Any,
-                   window: Any, natural_width: Any, blind: Any, signal_params: Any,
-                   bins: Any, background_start: Mapping[str, float] | None = None
+def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
+                   resolution: Any = None, relative_resolution: Any = None,
+                   absolute_resolution: Any = None, window: Any, natural_width: Any,
+                   blind: Any, signal_params: Any, bins: Any,
+                   background_start: Mapping[str, float] | None = None
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
 
@@ -337,7 +273,9 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
     if bkg.kind != "background":
         raise FitError(f"scan: {bkg.name!r} is a {bkg.kind} shape; give a background shape "
                        f"such as 'exponential'")
-    sigma_of = resolution_model(resolution)
+    resolution = resolution_from(resolution, relative=relative_resolution,
+                                 absolute=absolute_resolution)
+    sigma_of = resolution.sigma
     m_arr = None if np.ndim(masses) == 0 else np.asarray(masses, float)
 
     def min_sigma() -> float:
@@ -365,9 +303,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *, reso
     if outside.any():
         raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
                        f"({lo:g}, {hi:g}); scan inside the window")
-    sigma = np.asarray(sigma_of(m_arr), float)
-    if not np.all(np.isfinite(sigma) & (sigma > 0)):
-        raise FitError("the resolution model gave a non-positive or non-finite sigma")
+    sigma = check_resolved(resolution, m_arr, spec.edges)
     blinded_bins = _blind_mask(spec.edges, blind)
     used = np.flatnonzero(~blinded_bins)
     if used.size < bkg.parameters.__len__() + 3:
@@ -625,7 +561,9 @@ def scan(
     background: Any,
     masses: Any,
     *,
-    resolution: Any,
+    resolution: Any = None,
+    relative_resolution: float | None = None,
+    absolute_resolution: float | None = None,
     window: tuple[float, float] | None = None,
     natural_width: Any = None,
     blind: tuple[float, float] | None = None,
@@ -639,8 +577,10 @@ def scan(
     Parameters
     ----------
     data : MassHistogram, array of masses, or (masses, weights)
-        Arrays are histogrammed in bins of a quarter of the smallest resolution (50-2000 bins)
-        unless ``bins`` is given.  Weighted bins are scaled Poisson variables: effective
+        Arrays are histogrammed on the window (:meth:`MassHistogram.from_masses`, so a mass
+        equal to the window's top is in the last bin) in bins of a quarter of the smallest
+        resolution (50-2000 bins) unless ``bins`` is given; the scan of an array and of the
+        histogram built from it are the same.  Weighted bins are scaled Poisson variables: effective
         counts ``k_i sumw_i`` with ``k_i = sumw_i / sumw2_i`` per bin (Bohm and Zech, NIM A
         748 (2014) 1; the same likelihood as the weighted binned :func:`peaksift.fit`, so
         q0 agrees with two such fits); yields are reported in weighted units.
@@ -650,10 +590,16 @@ def scan(
         Mass hypotheses (GeV) or a number of evenly spaced points inside the window.  Space
         them by at most about half the resolution, or the scan (and every toy's) misses the
         top of narrow excesses and the look-elsewhere estimates disagree.
-    resolution : float, callable or table
-        Signal resolution sigma(m): relative number, callable, or ``(masses, sigmas)``.
+    resolution, relative_resolution, absolute_resolution :
+        The detector resolution sigma(m), exactly one of: ``relative_resolution`` (sigma/m,
+        0 < r <= 1), ``absolute_resolution`` (GeV), or ``resolution``: a
+        :class:`peaksift.Resolution`, a callable m -> sigma (GeV) or a table
+        ``(masses, sigmas)`` (GeV, interpolated linearly).  A bare number for
+        ``resolution`` is refused, since it could mean either; so is a sigma below 1% of
+        the bin width at a hypothesis (:func:`peaksift.resolution.check_resolved`).
     window : (lo, hi), optional
-        Fit window (default the histogram range); snaps to complete bins.
+        Fit window (default the histogram's range, or the masses' range); a histogram keeps
+        the bins lying completely inside it (:meth:`MassHistogram.restrict`).
     natural_width : float or callable, optional
         Natural width (GeV) for shapes with a ``width`` (voigt, breitwigner).
     blind : (lo, hi), optional
@@ -676,7 +622,9 @@ def scan(
     Z_local = sqrt(q0), p_local = 1 - Phi(Z_local) (eqs. 52-53).
     """
     model, spec, info = _prepare_model(
-        data, signal, background, masses, resolution=resolution, window=window,
+        data, signal, background, masses, resolution=resolution,
+        relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
+        window=window,
         natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins)
     m_all = info["masses"]
     bl = info["blinded_mass"]
