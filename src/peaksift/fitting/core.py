@@ -30,9 +30,9 @@ from ..likelihood import (
     new_minuit,
     refine,
 )
-from ..likelihood.starts import coarse_bins, fit_starts
+from ..likelihood.starts import fit_starts
 from ..shapes import Shape
-from .data import FitData, gof_binning, poisson_scale, prepare
+from .data import FitData, gof_binning, prepare, start_bins
 from .result import FitResult
 
 __all__ = ["fit"]
@@ -148,19 +148,18 @@ def fit(
 
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
     if d.binned:
-        scale = poisson_scale(d.n, d.n2)
+        scale = d.hist.scaled_poisson_factors()
 
         def make_cost(v: np.ndarray) -> Any:
             return BinnedCost(model, v, free_idx, cons_idx, d.edges, d.n, scale)
-        se, sn, sn2 = coarse_bins(d.edges, d.n, d.n2, 100)
     else:
         def make_cost(v: np.ndarray) -> Any:
             return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
-        se, sn, sn2 = gof_binning(d)
     given = {**start, **fixed}
+    sh = start_bins(d)
     with np.errstate(all="ignore"):
-        starts = fit_starts(model, se, sn, poisson_scale(sn, sn2), base, is_fixed, given,
-                            lower, upper, d.total, retries)
+        starts = fit_starts(model, sh.edges, sh.sumw, sh.scaled_poisson_factors(), base,
+                            is_fixed, given, lower, upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
     best, tried, calls = None, [], 0
@@ -319,7 +318,7 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:
         mu = model.expected(ge, vals)
-    gsc = poisson_scale(gn, gn2)
+    gsc = d.hist.scaled_poisson_factors()
     chi2 = float(baker_cousins_chi2(gn, mu, gsc))
     ndf = int(gn.size - free_idx.size)
     pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan

@@ -11,7 +11,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import FitError
+from ..errors import FitError, InputError
 from ..shapes import as_window
 
 #: arrays with at most this many masses in the window are fitted unbinned by default
@@ -33,6 +33,7 @@ class FitData:
     window: tuple[float, float]
     total: float
     unit: str
+    hist: Any = None  # MassHistogram: the fitted bins, or the goodness-of-fit bins (unbinned)
 
 
 def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any) -> FitData:
@@ -44,23 +45,15 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
         if binned is False:
             raise FitError("an unbinned fit needs the masses themselves, not a MassHistogram; "
                            "pass the array of masses or use binned=True")
-        e = np.asarray(data.edges, float)
-        lo, hi = as_window(window) if window is not None else (e[0], e[-1])
-        tol = 1e-9 * (e[-1] - e[0])
-        keep = (e[:-1] >= lo - tol) & (e[1:] <= hi + tol)
-        if not keep.any():
-            raise FitError(f"fit window ({lo:g}, {hi:g}) contains no complete bin of the "
-                           f"histogram (range {e[0]:g}-{e[-1]:g}); choose a window inside it")
-        idx = np.flatnonzero(keep)
-        edges = e[idx[0]: idx[-1] + 2]
-        n = np.asarray(data.sumw, float)[idx[0]: idx[-1] + 1]
-        n2 = np.asarray(data.sumw2, float)[idx[0]: idx[-1] + 1]
+        try:
+            h = data if window is None else data.restrict(as_window(window))
+        except InputError as exc:
+            raise FitError(f"fit window: {exc}") from None
+        n, n2 = h.sumw, h.sumw2
         if not (np.all(np.isfinite(n)) and np.all(np.isfinite(n2))):
             raise FitError("the histogram has non-finite bin contents in the fit window")
-        weighted = bool(data.is_weighted)
-        return FitData(True, "data is a histogram", weighted, edges, n, n2, None, None,
-                     (float(edges[0]), float(edges[-1])), float(n.sum()),
-                     getattr(data, "unit", "GeV"))
+        return FitData(True, "data is a histogram", bool(h.is_weighted), h.edges, n, n2, None,
+                       None, (h.lo, h.hi), float(n.sum()), h.unit, h)
     if isinstance(data, tuple) and len(data) == 2 and weights is None:
         data, weights = data
     x = np.asarray(data, dtype=float).ravel()
@@ -108,32 +101,25 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
     if binned:
         edges = (np.linspace(lo, hi, (DEFAULT_BINS if bins is None else int(bins)) + 1)
                  if bins is None or np.ndim(bins) == 0 else np.asarray(bins, float))
-        idx = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, edges.size - 2)
-        nb = edges.size - 1
-        n = np.bincount(idx, weights=w, minlength=nb).astype(float)
-        n2 = n.copy() if w is None else np.bincount(idx, weights=w * w, minlength=nb)
-        return FitData(True, reason, weighted, edges, n, n2, None, None, (lo, hi), total, "GeV")
-    return FitData(False, reason, weighted, None, None, None, x, w, (lo, hi), total, "GeV")
+        h = MassHistogram.from_masses(x, w, edges=edges)
+        return FitData(True, reason, weighted, h.edges, h.sumw, h.sumw2, None, None,
+                       (lo, hi), float(h.sumw.sum()), "GeV", h)
+    nb = int(np.clip(x.size // 20, 5, 100))
+    gof = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
+    return FitData(False, reason, weighted, None, None, None, x, w, (lo, hi), total, "GeV", gof)
 
 
 def gof_binning(d: FitData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The fit's own bins, or for unbinned data 5-100 equal bins of ~20 masses."""
-    if d.binned:
-        return d.edges, d.n, d.n2
-    nb = int(np.clip(d.x.size // 20, 5, 100))
-    edges = np.linspace(d.window[0], d.window[1], nb + 1)
-    idx = np.clip(np.searchsorted(edges, d.x, side="right") - 1, 0, nb - 1)
-    n = np.bincount(idx, weights=d.w, minlength=nb).astype(float)
-    n2 = n.copy() if d.w is None else np.bincount(idx, weights=d.w**2, minlength=nb)
-    return edges, n, n2
+    """Edges, sums of weights and of squared weights of the goodness-of-fit bins: the fit's
+    own bins, or for unbinned data 5-100 equal bins of ~20 masses."""
+    return d.hist.edges, d.hist.sumw, d.hist.sumw2
 
 
-def poisson_scale(n: np.ndarray, n2: np.ndarray) -> np.ndarray:
-    """Scaled-Poisson factor sum(w)/sum(w^2) per bin (1 for unweighted bins)."""
-    if np.array_equal(n, n2):
-        return np.ones_like(n)
-    glob = n.sum() / n2.sum() if n2.sum() > 0 else 1.0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        s = np.where(n2 > 0, n / np.where(n2 > 0, n2, 1.0), glob)
-    return np.where(s > 0, s, glob)
-
+def start_bins(d: FitData, most: int = 100) -> Any:
+    """The histogram the starting values are found on: at most ``most`` bins."""
+    h = d.hist
+    k = -(-h.nbins // most)
+    if k <= 1:
+        return h
+    e = h.edges[::k]
+    return h.rebin(edges=e if e[-1] == h.edges[-1] else np.append(e, h.edges[-1]))

@@ -20,20 +20,10 @@ from .minimize import damped_step, minimize
 from .model import Model
 from .poisson import binned_gradient, binned_information, binned_nll
 
-__all__ = ["background_start", "coarse_bins", "fit_starts", "peak_candidates"]
+__all__ = ["background_start", "fit_starts", "peak_candidates"]
 
 #: numerical failures a helper fit may meet; a failed helper fit only costs a worse start
 _NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError, PeaksiftError)
-
-
-def coarse_bins(edges: np.ndarray, n: np.ndarray, n2: np.ndarray, most: int = 100):
-    """Merge groups of adjacent bins so at most ``most`` remain (for finding starts)."""
-    k = math.ceil(n.size / most)
-    if k <= 1:
-        return edges, n, n2
-    idx = np.arange(0, n.size, k)
-    return (np.append(edges[idx], edges[-1]), np.add.reduceat(n, idx),
-            np.add.reduceat(n2, idx))
 
 
 def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
