@@ -369,3 +369,13 @@ def test_plot_writes_png(tmp_path):
     ax = fig.axes[1]
     assert ax.get_ylabel() == "pull" and "GeV" in ax.get_xlabel()
     assert "GeV" in fig.axes[0].get_ylabel()
+
+
+def test_too_few_events_give_an_invalid_result_not_an_exception():
+    """Three masses for five free parameters cannot be fitted (fewer data than parameters:
+    common practice); the fit is returned flagged invalid with that reason, so a search on a
+    small data set still reports its scan and limits."""
+    r = fit(np.array([120.0, 150.0, 170.0]), "gaussian", "exponential", (100.0, 200.0))
+    assert not r.valid
+    assert any("3 events in the window for 5 free parameters" in p for p in r.problems)
+    assert r.intervals is None and r.starts_tried == 0

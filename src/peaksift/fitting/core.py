@@ -142,9 +142,7 @@ def fit(
     n_entries = (float(np.sum(d.n)) if d.binned and not d.weighted else
                  float(np.sum(d.n**2 / np.where(d.n2 > 0, d.n2, 1))) if d.binned else
                  float(d.x.size))
-    if n_entries < nfree:
-        raise FitError(f"only {n_entries:g} events in the window {d.window} for {nfree} free "
-                       "parameters; widen the window, fix parameters or use fewer")
+    too_few = n_entries < nfree
 
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
     if d.binned:
@@ -163,6 +161,14 @@ def fit(
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
     best, tried, calls = None, [], 0
+    if too_few:  # nothing to minimise: the result at the starting values, flagged invalid
+        s0 = starts[0][0]
+        cost = make_cost(s0)
+        best = (math.inf, None, cost, [f"not fitted: only {n_entries:g} events in the window "
+                                       f"for {nfree} free parameters (widen the window or fix "
+                                       "parameters)"], s0[free_idx], cost(*s0[free_idx]),
+                None, False)
+        starts = []
     for s0, essential in starts:
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
