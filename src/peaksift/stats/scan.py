@@ -34,6 +34,7 @@ import numpy as np
 
 from .._json import plain
 from .._values import FrozenValue
+from ..blinding import blinded_bins
 from ..errors import DataWarning, FitError, PeaksiftError
 from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 from ..resolution import check_resolved, resolution_from
@@ -103,19 +104,6 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
             DataWarning, stacklevel=3)
     return _Spectrum(edges, sumw * (1.0 if bin_scale is None else bin_scale), scale,
                      (float(edges[0]), float(edges[-1])), hist.unit, bin_scale)
-
-
-def _blind_mask(edges: np.ndarray, blind: Any) -> np.ndarray:
-    """True for bins overlapping the blinded mass range."""
-    if blind is None:
-        return np.zeros(edges.size - 1, bool)
-    try:
-        lo, hi = float(blind[0]), float(blind[1])
-    except (TypeError, IndexError, ValueError):
-        raise FitError(f"blind must be a mass range (lo, hi), got {blind!r}") from None
-    if not hi > lo:
-        raise FitError(f"blind range must have hi > lo, got ({lo:g}, {hi:g})")
-    return (edges[:-1] < hi) & (edges[1:] > lo)
 
 
 def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
@@ -304,8 +292,8 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
         raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
                        f"({lo:g}, {hi:g}); scan inside the window")
     sigma = check_resolved(resolution, m_arr, spec.edges)
-    blinded_bins = _blind_mask(spec.edges, blind)
-    used = np.flatnonzero(~blinded_bins)
+    blinded = blinded_bins(spec.edges, blind)
+    used = np.flatnonzero(~blinded)
     if used.size < bkg.parameters.__len__() + 3:
         raise FitError("scan: too few bins outside the blinded range to fit the background")
     blinded_mass = np.zeros(m_arr.size, bool)
@@ -336,7 +324,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                       bin_scale=spec.bin_scale)
     info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
             "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
-            "blinded_bins": blinded_bins}
+            "blinded_bins": blinded}
     return model, spec, info
 
 
