@@ -725,7 +725,7 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
     return upper_limits(
         hist, sig, bkg, lm, resolution=sigma_fn, window=cfg.spectrum.window, cl=L.cl,
         method=L.method,
-        **_opt(toys=L.toys if L.method == "toys" else None, seed=cfg.significance.seed,
+        **_opt(toys=L.toys if L.method != "asymptotic" else None, seed=cfg.significance.seed,
                toy_masses=list(L.toy_masses) or None,
                natural_width=width, blind=blind, luminosity=L.luminosity,
                luminosity_uncertainty=L.luminosity_uncertainty or None,
@@ -733,7 +733,7 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray, sigm
                efficiency_uncertainty=L.efficiency_uncertainty or None,
                unit=L.cross_section_unit if L.luminosity is not None else None),
         constraint=L.constraint, progress=progress,
-        executor=_toy_executor(cfg, "toy limits") if L.method == "toys" else None,
+        executor=_toy_executor(cfg, "toy limits") if L.method != "asymptotic" else None,
     )
 
 
