@@ -436,3 +436,26 @@ def test_auto_switches_to_toys_only_where_few_background_events_lie_under_the_si
                        low_count_background=0.1)
     assert off.methods == ("asymptotic", "asymptotic") and not off.asymptotic_doubtful.any()
     assert off.below_floor[1]   # the floor is still flagged
+
+
+def test_command_line_summary_counts_the_flagged_limit_masses():
+    """The search summary says how many limit masses came from toys, stayed asymptotic
+    though doubtful, or lie below the counting floor (common practice: nothing doubtful
+    only in the small print)."""
+    from peaksift.cli import _summary
+
+    class Result:
+        def to_dict(self):
+            ve = {"value": 1.0, "error": 0.1}
+            return {"best": {"mass": 150.0, "z_local": 1.0, "p_local": 0.16, "z_global": 0.2,
+                             "p_global": 0.4, "global_method": "upcrossings"},
+                    "fit": {"peak_mass": ve, "width": ve, "signal_yield": ve, "valid": True},
+                    "input": {"events_read": 10, "candidates": 5},
+                    "limits": {"flags": ["", "toys: 0.5 background events ...",
+                                         "asymptotic bands doubtful: ...; below the ..."],
+                               "asymptotic_doubtful": [False, False, True],
+                               "below_floor": [False, False, True]}}
+
+    text = _summary(Result())
+    assert ("of 3 masses: 1 from toys; 1 asymptotic DOUBTFUL; 1 below the counting floor"
+            in text)
