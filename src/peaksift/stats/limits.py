@@ -80,6 +80,16 @@ _BANDS = (-2, -1, 0, 1, 2)
 _BISECT = 24
 _FLOOR_SLACK = 0.01   # a value this far (relative) below the counting floor is flagged
 
+
+def _floor_reach(delta: float, kind: str | None) -> float:
+    """How far below the nominal counting floor a limit can legitimately go when the
+    signal normalisation has a constrained uncertainty: a toy (or data) whose auxiliary
+    measurement sits 2 sigma high reads each signal event as worth kappa(2) of the
+    parameter of interest.  1 without such an uncertainty."""
+    if not delta:
+        return 1.0
+    return math.exp(2.0 * delta) if kind == "lognormal" else 1.0 + 2.0 * delta
+
 #: Below this many background events expected under the signal (``b_eff``, see
 #: :func:`upper_limits`) the asymptotic CLs bands are misplaced.  Measured with
 #: ``scripts/study_low_count_limits.py`` (background-only toys, Gaussian peak on a falling
@@ -195,7 +205,9 @@ class LimitResult:
         weighted spectra), see :func:`upper_limits`.
     counting_floor : ndarray
         The lowest CLs limit any data can give, :math:`-\ln(1-\mathrm{CL})` = 2.996
-        signal events at 95% CL (Read 2002; CLs >= exp(-s)), in ``unit``.
+        signal events at 95% CL (Read 2002; CLs >= exp(-s)), in ``unit`` at the nominal
+        luminosity and efficiency.  With their uncertainties a limit may go below it by
+        the normalisation's 2 sigma factor before it is flagged.
     low_count_background : float
         The b_eff threshold below which the asymptotic bands are doubtful.
     asymptotic_doubtful : ndarray of bool
@@ -616,7 +628,8 @@ def upper_limits(
         _toy_limits(want, m_all, bl, model, conv_eff, delta, kind or "lognormal", cl, toys,
                     seed, obs, exp_lim, methods, toy_info, notes, progress, executor)
     flags, doubtful, below = _flags(m_all, methods, bl, b_under, floor, low, obs, exp_lim,
-                                    low_count_background, out_unit, cl)
+                                    low_count_background, out_unit, cl,
+                                    _floor_reach(delta, kind))
     notes += _summary_notes(method, methods, low, doubtful, below, low_count_background, cl)
     return LimitResult(
         masses=m_all, observed=obs, expected=exp_lim[2], expected_minus2=exp_lim[0],
@@ -670,13 +683,13 @@ def _toy_limits(want: list[float], m_all: np.ndarray, bl: np.ndarray, model: Sca
 
 def _flags(m_all: np.ndarray, methods: list[str], bl: np.ndarray, b_under: np.ndarray,
            floor: np.ndarray, low: np.ndarray, obs: np.ndarray, exp_lim: np.ndarray,
-           threshold: float, unit: str, cl: float
+           threshold: float, unit: str, cl: float, reach: float
            ) -> tuple[list[str], np.ndarray, np.ndarray]:
     """Per-mass flag text, 'asymptotic bands doubtful' and 'a value below the floor'."""
     n0 = -math.log(1.0 - cl)
     vals = np.vstack([exp_lim, np.where(bl, np.nan, obs)])
     with np.errstate(invalid="ignore"):
-        below = np.any(vals < (1.0 - _FLOOR_SLACK) * floor, axis=0)
+        below = np.any(vals < (1.0 - _FLOOR_SLACK) * floor / reach, axis=0)
     doubtful = low & (np.array(methods) == "asymptotic")
     flags = []
     for j in range(m_all.size):
@@ -814,13 +827,15 @@ def _toy_limit(model: ScanModel, jj: int, conv: float, delta: float, kind: str, 
       a limit some data set gives).
     * The limit is where ln CLs, interpolated linearly in mu between grid points, falls
       through ln(1 - CL).  The grid starts at the asymptotic values, never below 0.9 of the
-      counting floor :math:`-\ln(1-\mathrm{CL})/(\kappa\sum f)` (no CLs limit is lower:
-      :math:`\mathrm{CL}_s \ge e^{-s}` since the likelihood ratio of the two hypotheses is
-      at least :math:`e^{-s}`), and grows when a limit falls outside it.
+      counting floor :math:`-\ln(1-\mathrm{CL})/(\kappa\sum f)`, and grows when a limit
+      falls outside it.  Without a normalisation uncertainty (:math:`\kappa` = 1) no CLs
+      limit is below that floor: :math:`\mathrm{CL}_s \ge e^{-s}`, since the likelihood
+      ratio of the two hypotheses is at least :math:`e^{-s}`; with one, :math:`\kappa` is
+      the conversion at +2 sigma of it (a toy's auxiliary measurement moves the floor).
     """
     alpha = 1.0 - cl
     f = model.fractions[jj]
-    floor = -math.log(alpha) / (conv * float(f.sum()))
+    floor = -math.log(alpha) / (conv * float(f.sum())) / _floor_reach(delta, kind)
     refs = np.r_[exp_asym, obs_asym]
     refs = refs[np.isfinite(refs) & (refs > 0)]
     lo = max(0.7 * float(refs.min()), 0.9 * floor) if refs.size else 0.9 * floor
@@ -888,4 +903,4 @@ def _toy_limit(model: ScanModel, jj: int, conv: float, delta: float, kind: str, 
             "expected": {n: float(v) for n, v in zip(_BANDS, vals[1:])},
             "grid": grid, "cls": cls_obs,
             "q_observed": np.array([points[m][0] for m in grid]), "n_toys": ntoys,
-            "asymptotic_observed": obs_asym, "counting_floor": floor, "notes": notes}
+            "asymptotic_observed": obs_asym, "notes": notes}
