@@ -95,6 +95,16 @@ def _summary_text(d: Mapping[str, Any]) -> str:
                           "per mille)"))
     if blinded:
         lines.append(_row("blinding", "ACTIVE (data in the blinded window hidden)"))
+    lim = d.get("limits") or {}
+    if any(lim.get("flags") or []):
+        n_toys = sum(1 for f in lim["flags"] if f.startswith("toys"))
+        n_bad = sum(bool(x) for x in lim.get("asymptotic_doubtful") or [])
+        n_floor = sum(bool(x) for x in lim.get("below_floor") or [])
+        lines.append(_row("limits at low counts", f"of {len(lim['flags'])} masses: " + "; ".join(
+            s for s in (f"{n_toys} from toys" if n_toys else "",
+                        f"{n_bad} asymptotic DOUBTFUL" if n_bad else "",
+                        f"{n_floor} below the counting floor" if n_floor else "") if s)
+            + " (see the report)"))
     if "outputs" in d:
         lines.append(_row("outputs", str(part(d, "outputs").get("dir"))))
     lines.append("  (a local significance is not a discovery; see the report's caution)")

@@ -39,6 +39,7 @@ from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
+from ._vocabulary import LIMIT_METHODS
 from .errors import ConfigError, FitError, closest
 from .resolution import RELATIVE_MAX, Resolution, check_resolved, relative_problem
 
@@ -221,17 +222,20 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("enabled", "bool", True, "Compute upper limits across the scan range."),
         _Key("cl", "float", 0.95, "Confidence level of the CLs upper limits.",
              lo=0.0, hi=1.0, lo_open=True, hi_open=True),
-        _Key("method", "choice", "asymptotic",
-             "Asymptotic formulae (Cowan et al. 2011) or toys.",
-             choices=("asymptotic", "toys")),
+        _Key("method", "choice", "auto",
+             "How the CLs limits are computed: `auto` uses the asymptotic formulae (Cowan "
+             "et al. 2011) and toys where too few background events lie under the signal "
+             "for them (the expected bands would be misplaced); `asymptotic` uses the "
+             "formulae everywhere and flags those masses; `toys` is `auto` plus toys at "
+             "`toy_masses`.",
+             choices=LIMIT_METHODS),
         _Key("points", "int", 30, "Number of mass points for the limit curve.",
              lo=1, hi=10000),
-        _Key("toys", "int", 200, "Toys per mass point when `method = \"toys\"`.",
+        _Key("toys", "int", 200, "Toys per mass point where a limit is computed with toys.",
              lo=10, hi=1_000_000),
         _Key("toy_masses", "floats", [],
-             "Masses (GeV) where `method = \"toys\"` computes toy-based limits, each at the "
-             "nearest limit point (asymptotic elsewhere); empty: three masses spread over "
-             "the range."),
+             "Masses (GeV) where `method = \"toys\"` computes toy-based limits too, each at "
+             "the nearest limit point; empty: three masses spread over the range."),
         _Key("luminosity", "float", None,
              "Integrated luminosity in `luminosity_unit`; when given, limits are on "
              "cross-section x branching fraction instead of the signal yield.",
@@ -410,7 +414,7 @@ class BlindingConfig:
 class LimitsConfig:
     enabled: bool = True
     cl: float = 0.95
-    method: str = "asymptotic"
+    method: str = "auto"
     points: int = 30
     toys: int = 200
     toy_masses: tuple[float, ...] = ()

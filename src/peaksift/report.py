@@ -293,7 +293,7 @@ def _limit_rows(r: Mapping[str, Any], max_rows: int = 12) -> tuple[list[str], li
         idx = sorted({round(i * step) for i in range(max_rows)})
     unit = lim.get("unit", "events")
     head = ["mass [GeV]", f"observed [{unit}]", f"expected [{unit}]", "expected -1\u03c3",
-            "expected +1\u03c3"]
+            "expected +1\u03c3", "method"]
     rows = []
     for i in idx:
         def g(k: str, i: int = i) -> str:
@@ -301,8 +301,36 @@ def _limit_rows(r: Mapping[str, Any], max_rows: int = 12) -> tuple[list[str], li
             x = as_finite(v[i]) if i < len(v) else None
             return f"{x:#.3g}".rstrip(".") if x is not None else "n/a"
         rows.append([fixed(m[i]), g("observed"), g("expected"), g("expected_minus1"),
-                     g("expected_plus1")])
+                     g("expected_plus1"), _limit_method(lim, i)])
     return head, rows
+
+
+def _limit_method(lim: Mapping[str, Any], i: int) -> str:
+    """How the limit at mass ``i`` was computed, with its low-count warnings."""
+    def at(key: str) -> Any:
+        v = lim.get(key) or []
+        return v[i] if i < len(v) else None
+
+    how = at("methods") or lim.get("method", "asymptotic")
+    b = at("background_under_signal")
+    extra = [f"b_eff {float(b):#.2g}".rstrip(".")] if b is not None and (
+        at("asymptotic_doubtful") or how == "toys") else []
+    if at("asymptotic_doubtful"):
+        extra.insert(0, "DOUBTFUL")
+    if at("below_floor"):
+        extra.append("below counting floor")
+    return f"{how} ({', '.join(extra)})" if extra else str(how)
+
+
+def _limit_notes(r: Mapping[str, Any]) -> list[str]:
+    """The limits' notes, and what the method column means when a mass is flagged."""
+    lim = r.get("limits") or {}
+    notes = [str(n) for n in lim.get("notes") or []]
+    if any(lim.get("asymptotic_doubtful") or []) or "toys" in (lim.get("methods") or []):
+        notes.append(f"b_eff: background events expected under the signal; below "
+                     f"{_num(lim.get('low_count_background'))} the asymptotic CLs formulae "
+                     "misplace the expected bands (DOUBTFUL where they were still used).")
+    return notes
 
 
 def _provenance_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
@@ -414,6 +442,9 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
                 (f"{_cl_percent(lim)}% CL CLs upper limits "
                 f"({lim.get('method', 'asymptotic')}), unit: {lim.get('unit', 'events')}."), "",
                 _md_table(head, rows), ""]
+        notes = _limit_notes(r)
+        if notes:
+            out += [f"- {n}" for n in notes] + [""]
         if "limits" in fig:
             out += [f"![limits]({fig['limits']})", "", f"*{_caption('limits', r)}*", ""]
     inp = r.get("input") or {}
@@ -516,6 +547,9 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
               (f"<p>{_h(_cl_percent(lim))}% CL CLs upper limits "
               f"({_h(lim.get('method', 'asymptotic'))}), unit: {_h(lim.get('unit', 'events'))}."
               "</p>"), _html_table(head, rows)]
+        notes = _limit_notes(r)
+        if notes:
+            b.append("<ul>" + "".join(f"<li>{_h(n)}</li>" for n in notes) + "</ul>")
         if "limits" in fig:
             b.append(_img(fig["limits"], "limits", _caption("limits", r)))
     inp = r.get("input") or {}

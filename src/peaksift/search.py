@@ -752,7 +752,7 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
         hist, sig, bkg, lm, resolution=cfg.model.resolution.resolution,
         window=cfg.spectrum.window, cl=L.cl,
         method=L.method,
-        **_opt(toys=L.toys if L.method == "toys" else None, seed=cfg.significance.seed,
+        **_opt(toys=L.toys if L.method != "asymptotic" else None, seed=cfg.significance.seed,
                toy_masses=list(L.toy_masses) or None,
                natural_width=width, blind=blind, luminosity=L.luminosity,
                luminosity_uncertainty=L.luminosity_uncertainty or None,
@@ -760,7 +760,7 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
                efficiency_uncertainty=L.efficiency_uncertainty or None,
                unit=L.cross_section_unit if L.luminosity is not None else None),
         constraint=L.constraint, progress=progress,
-        executor=_toy_executor(cfg, "toy limits") if L.method == "toys" else None,
+        executor=_toy_executor(cfg, "toy limits") if L.method != "asymptotic" else None,
     )
 
 

@@ -164,10 +164,9 @@ def fit(
     if too_few:  # nothing to minimise: the result at the starting values, flagged invalid
         s0 = starts[0][0]
         cost = make_cost(s0)
-        best = (math.inf, None, cost, [f"not fitted: only {n_entries:g} events in the window "
-                                       f"for {nfree} free parameters (widen the window or fix "
-                                       "parameters)"], s0[free_idx], cost(*s0[free_idx]),
-                None, False)
+        why = (f"not fitted: only {n_entries:g} events in the window for {nfree} free "
+               "parameters (widen the window or fix parameters)")
+        best = (math.inf, None, cost, [why], s0[free_idx], cost(*s0[free_idx]), None, False)
         starts = []
     for s0, essential in starts:
         if not essential and best is not None and not best[3]:

@@ -1,0 +1,17 @@
+"""Choices that the configuration and a lower layer both name (each declared once here).
+
+The configuration (pipeline layer) cannot import the statistics layer without loading it
+(seconds of start-up for ``peaksift --help``), and the statistics layer may not import the
+configuration; so a vocabulary that both need lives in this base-layer module.
+"""
+
+from __future__ import annotations
+
+__all__ = ["LIMIT_METHODS"]
+
+#: How :func:`peaksift.upper_limits` computes its CLs limits (``limits.method``):
+#: ``"auto"``       asymptotic formulae, and toys at the masses where the formulae misplace
+#:                  the expected bands (few background events under the signal);
+#: ``"asymptotic"`` the formulae everywhere, such masses flagged in the result;
+#: ``"toys"``       as ``"auto"``, plus toys at chosen masses (``toy_masses``).
+LIMIT_METHODS: tuple[str, ...] = ("auto", "asymptotic", "toys")
