@@ -19,6 +19,28 @@ limit can be.
 
     PYTHONPATH=src python scripts/study_low_count_limits.py              # ~20 min on one free core
     PYTHONPATH=src python scripts/study_low_count_limits.py --quick      # a few minutes
+
+Measured 2026-12-02 (default settings, 100 toys per toy limit; rows for b_eff 5 and 20,
+and a second b_eff 10 row, from ``--b 5 10 20 --pseudo 400 --methods asymptotic
+--seed 12``); % strictly beyond / beyond or on:
+
+    b_eff  method      n        <-2sig        <-1sig       <median        >+1sig       >+2sig  median<floor
+    nominal                        2.3          15.9          50.0          15.9          2.3
+      0.1  asymptotic 200    0.0 /  0.0    0.0 /  0.0   86.0 / 86.0    1.0 /  1.0   0.0 / 0.0     100.0
+      0.1  toys        40    0.0 / 87.5    0.0 / 87.5    0.0 / 87.5   10.0 / 75.0   2.5 / 2.5       0.0
+      0.5  asymptotic 200    0.0 /  0.0    0.0 /  0.0   61.5 / 62.5    5.0 /  6.0   0.0 / 0.0      24.0
+      0.5  toys        40    0.0 / 42.5    0.0 / 42.5   27.5 / 47.5   12.5 / 15.0   2.5 / 2.5       0.0
+      2.0  asymptotic 200    0.0 /  0.0   14.5 / 15.0   58.0 / 59.0    6.0 /  6.0   0.0 / 0.0       0.0
+      2.0  toys        40    0.0 /  2.5   12.5 / 12.5   55.0 / 57.5   17.5 / 20.0   0.0 / 0.0       0.0
+      5.0  asymptotic 400    0.0 /  0.0   13.0 / 15.0   52.2 / 54.5    8.5 /  9.5   0.2 / 0.2       0.0
+     10.0  asymptotic 200    0.5 /  1.0   10.0 / 10.5   46.5 / 48.5   14.5 / 15.0   2.0 / 2.0       0.0
+     10.0  asymptotic 400    1.0 /  1.0   10.8 / 12.2   51.0 / 52.8   13.0 / 14.0   0.2 / 0.2       0.0
+     10.0  toys        40    0.0 /  0.0   17.5 / 17.5   35.0 / 37.5   15.0 / 17.5   0.0 / 0.0       0.0
+     20.0  asymptotic 400    0.8 /  1.0   13.2 / 14.8   49.0 / 51.0   11.5 / 13.2   1.0 / 1.5       0.0
+     50.0  asymptotic 200    1.5 /  2.0   12.5 / 16.5   51.0 / 54.0   14.0 / 16.0   1.5 / 1.5       0.0
+     50.0  toys        40    0.0 /  0.0   15.0 / 17.5   50.0 / 52.5   10.0 / 10.0   2.5 / 2.5       0.0
+
+Binomial errors: 2.6 (200) and 1.8 (400) points at 15.9%, 5.8 points for the toy rows (40).
 """
 
 from __future__ import annotations
