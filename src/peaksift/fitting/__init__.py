@@ -13,8 +13,8 @@ The likelihood itself lives in :mod:`peaksift.likelihood`; this package only use
 from __future__ import annotations
 
 from ..likelihood import Model
-from .data import DEFAULT_BINS, UNBINNED_LIMIT
 from .core import fit
+from .data import DEFAULT_BINS, UNBINNED_LIMIT
 from .result import FitResult, format_value
 
 __all__ = ["DEFAULT_BINS", "UNBINNED_LIMIT", "FitResult", "Model", "fit", "format_value"]

@@ -158,15 +158,15 @@ def fit(
             return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
         se, sn, sn2 = gof_binning(d)
     given = {**start, **fixed}
-    with np.errstate(all="ignore"):
-        starts = fit_starts(model, se, sn, poisson_scale(sn, sn2), base, is_fixed, given,
-                            lower, upper, d.total, retries)
+    starts = fit_starts(model, se, sn, poisson_scale(sn, sn2), base, is_fixed, given,
+                        lower, upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
     best, tried, calls = None, [], 0
-    for s0, essential in starts:
+    for essential, make_start in starts:
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
+        s0 = make_start()
         cost = make_cost(s0)
         try:
             mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names)
