@@ -155,22 +155,22 @@ def fit(
             return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
     given = {**start, **fixed}
     sh = start_bins(d)
-    with np.errstate(all="ignore"):
-        starts = fit_starts(model, sh.edges, sh.sumw, sh.scaled_poisson_factors(), base,
-                            is_fixed, given, lower, upper, d.total, retries)
+    starts = fit_starts(model, sh.edges, sh.sumw, sh.scaled_poisson_factors(), base,
+                        is_fixed, given, lower, upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
     best, tried, calls = None, [], 0
     if too_few:  # nothing to minimise: the result at the starting values, flagged invalid
-        s0 = starts[0][0]
+        s0 = next(iter(starts))[1]()
         cost = make_cost(s0)
         why = (f"not fitted: only {n_entries:g} events in the window for {nfree} free "
                "parameters (widen the window or fix parameters)")
         best = (math.inf, None, cost, [why], s0[free_idx], cost(*s0[free_idx]), None, False)
-        starts = []
-    for s0, essential in starts:
+        starts = iter(())
+    for essential, make_start in starts:
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
+        s0 = make_start()
         cost = make_cost(s0)
         try:
             mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names)

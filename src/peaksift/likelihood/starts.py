@@ -11,6 +11,7 @@ then keeps the lowest minimum.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable, Iterator
 
 import numpy as np
 
@@ -20,7 +21,7 @@ from .minimize import damped_step, minimize
 from .model import Model
 from .poisson import binned_gradient, binned_information, binned_nll
 
-__all__ = ["background_start", "fit_starts", "peak_candidates"]
+__all__ = ["CANDIDATE_MARGIN", "background_start", "fit_starts", "peak_candidates", "worth_trying"]
 
 #: numerical failures a helper fit may meet; a failed helper fit only costs a worse start
 _NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError, PeaksiftError)
@@ -65,12 +66,14 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
     m = f.shape[0]
     btot = float(b0.sum())
     g = b0 / btot
-    nll0 = binned_nll(n, btot * g, scale)
+    # differences of NLLs only: the saturated term is left out
+    nll0 = binned_nll(n, btot * g, scale, saturated=False)
     x = np.column_stack([np.full(m, 0.1 * math.sqrt(max(btot, 1.0))), np.full(m, btot)])
     dmu = np.stack([f, np.broadcast_to(g, f.shape)], axis=1)  # (M, 2, N)
     lam = np.full(m, 1e-3)
+    quiet = 0
     with np.errstate(all="ignore"):
-        nll = binned_nll(n, x[:, :1] * f + x[:, 1:] * g, scale)
+        nll = binned_nll(n, x[:, :1] * f + x[:, 1:] * g, scale, saturated=False)
         for _ in range(25):
             mu = x[:, :1] * f + x[:, 1:] * g
             grad = binned_gradient(n, mu, dmu, scale)
@@ -78,10 +81,14 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
             trial = x + damped_step(info, grad, lam)
             mu_t = trial[:, :1] * f + trial[:, 1:] * g
             ok = np.all(mu_t > 0, axis=1)
-            nt = np.where(ok, binned_nll(n, mu_t, scale), np.inf)
+            nt = np.where(ok, binned_nll(n, mu_t, scale, saturated=False), np.inf)
             better = nt <= nll
+            gain = np.where(better, nll - nt, 0.0)
             x[better], nll[better] = trial[better], nt[better]
             lam = np.where(better, np.maximum(lam * 0.1, 1e-9), lam * 10.0)
+            quiet = quiet + 1 if np.all(gain < 1e-6) else 0
+            if quiet >= 2:
+                break  # no mass gains any more (a coarse scan needs no more)
     q = np.where((x[:, 0] > 0) & np.isfinite(nll), 2.0 * (nll0 - nll), 0.0)
     peaks = [i for i in range(m) if q[i] > 0
              and (i == 0 or q[i] >= q[i - 1]) and (i == m - 1 or q[i] >= q[i + 1])]
@@ -92,45 +99,85 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
 def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
                base: np.ndarray, is_fixed: np.ndarray, given: dict[str, float],
                lower: np.ndarray, upper: np.ndarray, total: float,
-               retries: int) -> list[tuple[np.ndarray, bool]]:
-    """Starting points ``(vector, essential)``, best first: background from the sidebands of
-    each candidate peak, the peak at each local maximum of the coarse likelihood scan
-    (essential: every one is minimised), then other widths (tried while no valid fit is
-    found).  ``given`` holds the parameters whose starts (or fixed values) the caller set.
+               retries: int) -> Iterator[tuple[bool, Callable[[], np.ndarray]]]:
+    """Starting points, best first, as ``(essential, make)`` with ``make()`` giving the full
+    parameter vector: background from the sidebands of each candidate peak, the peak at each
+    local maximum of the coarse likelihood scan (essential: every one is minimised), then
+    other widths (tried while no valid fit is found).  ``given`` holds the parameters whose
+    starts (or fixed values) the caller set.
+
+    Lazy: the coarse scan runs at the first step and each start (a sideband fit) only when
+    ``make`` is called, so the other widths cost nothing once a valid minimum is found.
     """
+    with np.errstate(all="ignore"):
+        first = _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper)
+    if first is None:  # no free signal: the background-only start (and the given one)
+        def background_only() -> np.ndarray:
+            with np.errstate(all="ignore"):
+                vb = _background_or_base(model, edges, n, scale, base, is_fixed, given,
+                                         lower, upper)
+            return np.where(is_fixed, base, np.clip(vb, lower, upper))
+
+        yield True, background_only
+        if retries > 0:
+            yield False, lambda: np.where(is_fixed, base, np.clip(base, lower, upper))
+        return
+    vb, c, masses, i_m, i_s, bkg_given = first
+    candidates = [(mm, 1.0, True) for mm in masses]
+    candidates += [(masses[0], f, False) for f in (0.4, 2.5, 1.5)[:retries]]
+    for mm, factor, essential in candidates:
+        def make(mm: float = mm, factor: float = factor) -> np.ndarray:
+            with np.errstate(all="ignore"):
+                return _one_start(model, edges, n, scale, base, vb, c, mm, factor, i_m, i_s,
+                                  given, is_fixed, lower, upper, total, bkg_given)
+
+        yield essential, make
+
+
+def _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper):
+    if all(k in given for k in model.parameter_names[model.blocks[-1][1]]):
+        return base.copy()
+    try:
+        return background_start(model, edges, n, scale, None, base.copy(), is_fixed, lower,
+                                upper)
+    except _NUMERIC:
+        return base.copy()
+
+
+def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper):
+    """Background-only start and the candidate peak masses (None without a free signal)."""
     names = model.parameter_names
     blocks = model.blocks
     yields = [iy for _, _, iy in blocks]
-    sig_free = any(not is_fixed[iy] for iy in yields[:-1])
+    if not any(not is_fixed[iy] for iy in yields[:-1]):
+        return None
     bshape, bsl, biy = blocks[-1]
     bkg_given = all(k in given for k in names[bsl])
-    v = base.copy()
-    try:
-        vb = v if bkg_given else background_start(model, edges, n, scale, None, v,
-                                                  is_fixed, lower, upper)
-    except _NUMERIC:
-        vb = v
-    if not sig_free:
-        out = [(np.where(is_fixed, base, np.clip(vb, lower, upper)), True)]
-        if retries > 0:
-            out.append((np.where(is_fixed, base, np.clip(base, lower, upper)), False))
-        return out
+    vb = _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper)
     c = 0.5 * (edges[1:] + edges[:-1])
     bexp = bshape.bin_fractions(edges, list(vb[bsl]), model.window) * vb[biy]
     shape, sl, _ = blocks[0]
     i_m = sl.start + shape.parameter_names.index("mass")
     i_s = [sl.start + shape.parameter_names.index(k) for k in shape.width_parameters()]
-    width = max(float(v[i_s[-1]]) if i_s else (edges[-1] - edges[0]) / 40,
+    width = max(float(base[i_s[-1]]) if i_s else (edges[-1] - edges[0]) / 40,
                 float(np.median(np.diff(edges))))
     if names[i_m] in given:
-        masses = [float(v[i_m])]
+        masses = [float(base[i_m])]
     else:
-        masses = _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width)
-    candidates = [(mm, 1.0, True) for mm in masses]
-    candidates += [(masses[0], f, False) for f in (0.4, 2.5, 1.5)[:retries]]
-    return [(_one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given,
-                        is_fixed, lower, upper, total, bkg_given), essential)
-            for mm, factor, essential in candidates]
+        masses = _scan_masses(model, edges, n, scale, base, bexp, i_m, lower, upper, width)
+    return vb, c, masses, i_m, i_s, bkg_given
+
+
+#: a candidate peak whose coarse-scan gain 2 dNLL trails the best one's by more than
+#: max(CANDIDATE_MARGIN, best / 2) is not minimised: at 5 sigma (best ~ 25) every local
+#: maximum is still tried, while above ~7 sigma the hopeless ones (fluctuations far below the
+#: peak) no longer multiply the cost of a fit
+CANDIDATE_MARGIN = 25.0
+
+
+def worth_trying(q: float, q_best: float) -> bool:
+    """Whether a candidate of coarse-scan gain ``q`` can plausibly beat one of ``q_best``."""
+    return q_best - q <= max(CANDIDATE_MARGIN, 0.5 * q_best)
 
 
 def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width) -> list[float]:
@@ -139,18 +186,18 @@ def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width) -> l
     hi = min(edges[-1], upper[i_m])
     step = max(0.5 * width, (hi - lo) / 400)
     grid = np.arange(lo + 0.5 * step, hi, step) if hi - lo > step else np.array([0.5 * (lo + hi)])
-    fr = []
-    p = list(v[sl])
-    for mass in grid:
-        p[shape.parameter_names.index("mass")] = mass
-        fr.append(shape.bin_fractions(edges, p, model.window))
+    p: list = [float(q) for q in v[sl]]
+    p[shape.parameter_names.index("mass")] = grid[:, None]  # every trial mass in one call
     try:
-        peaks = peak_candidates(n, scale, np.array(fr), bexp)
+        fr = np.broadcast_to(shape.bin_fractions(edges, p, model.window),
+                             (grid.size, edges.size - 1))
+        peaks = peak_candidates(n, scale, fr, bexp)
     except _NUMERIC:
         peaks = []
     masses: list[float] = []
-    for i, _ in peaks:
-        if all(abs(grid[i] - mm) > 3 * width for mm in masses):
+    for i, q in peaks:
+        if (all(abs(grid[i] - mm) > 3 * width for mm in masses)
+                and worth_trying(q, peaks[0][1])):
             masses.append(float(grid[i]))
     if not masses:  # no excess anywhere: start at the largest bin excess
         c = 0.5 * (edges[1:] + edges[:-1])

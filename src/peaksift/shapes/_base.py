@@ -334,17 +334,25 @@ def _finite_difference(func, p: Sequence[Any], pars: Sequence[Parameter],
 
 
 def _by_parameter_set(func, x: np.ndarray, p: Sequence[Any], window: tuple[float, float]):
-    """Evaluate ``func(x, scalar_params, window)`` for broadcast parameter arrays."""
+    """Evaluate ``func(x, scalar_params, window)`` for broadcast parameter arrays.
+
+    The distinct parameter sets are found among the parameters alone (typically one per
+    toy or mass hypothesis), not among the rows of the full broadcast with ``x``: the
+    latter costs a sort of (sets x masses) rows and dominated stacked scans.
+    """
     if all(np.ndim(v) == 0 for v in p):
         return func(np.asarray(x, dtype=float), tuple(float(v) for v in p), window)
-    arrays = np.broadcast_arrays(np.asarray(x, dtype=float), *[np.asarray(v, float) for v in p])
-    xb = arrays[0]
-    stack = np.stack([a.ravel() for a in arrays[1:]], axis=1)
+    x = np.asarray(x, dtype=float)
+    pars = np.broadcast_arrays(*[np.asarray(v, float) for v in p])
+    shape = np.broadcast_shapes(x.shape, pars[0].shape)
+    stack = np.stack([a.ravel() for a in pars], axis=1)
     uniq, inverse = np.unique(stack, axis=0, return_inverse=True)
-    inverse = inverse.ravel()
-    out = np.empty(xb.size)
-    xr = xb.ravel()
+    which = np.broadcast_to(inverse.reshape(pars[0].shape), shape).ravel()
+    xr = np.broadcast_to(x, shape).ravel()
+    order = np.argsort(which, kind="stable")
+    cuts = np.searchsorted(which[order], np.arange(uniq.shape[0] + 1))
+    out = np.empty(xr.size)
     for j, row in enumerate(uniq):
-        sel = inverse == j
+        sel = order[cuts[j]:cuts[j + 1]]
         out[sel] = func(xr[sel], tuple(float(v) for v in row), window)
-    return out.reshape(xb.shape)
+    return out.reshape(shape)
