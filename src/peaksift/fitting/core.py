@@ -92,7 +92,9 @@ def fit(
         Profile-likelihood (MINOS-type) intervals for all free (True) or the named
         parameters.  ``minos=`` is an older spelling of the same.
     retries : int
-        Further starting widths tried while the best fit is not valid.
+        Further starting widths at the best candidate peak: minimised in every fit whose
+        peak width can vary (the lowest minimum wins), else tried while the best fit is not
+        valid.
 
     Returns
     -------
@@ -375,6 +377,10 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
         warnings.simplefilter("ignore")
         try:
             m = new_minuit(cost, xbest, lo_f, hi_f, free_names, err[free_idx])
+            # strategy 1: with new_minuit's strategy 0, MINOS stops early on the flat,
+            # non-parabolic profiles of ~5 sigma peaks and can call a wrong end valid (a mass
+            # end at 2 dNLL = 0.5 instead of 1 on a toy)
+            m.strategy = 1
             m.migrad()
         except _NUMERIC + (RuntimeError,):
             notes.append("profile-likelihood intervals failed (iminuit could not restart)")
