@@ -59,7 +59,7 @@ def by_hand_binned(h: MassHistogram, n: float, tol: float | None = None):
                    stats.expon.cdf(xe, LO, lam))
         return ns * s + nb * b
 
-    cost = ExtendedBinnedNLL(h.sumw, h.edges, cdf)
+    cost = ExtendedBinnedNLL(h.weight_sum, h.edges, cdf)
     m = Minuit(cost, ns=0.05 * n, mu=90.0, sigma=3.0, nb=0.95 * n, lam=20.0)
     m.limits["ns"] = (0, None)
     m.limits["nb"] = (0, None)
@@ -192,7 +192,7 @@ class PowerLawCost:
 
 
 def by_hand_power_law(h: MassHistogram, analytic: bool, strategy: int = 1):
-    cost = PowerLawCost(np.asarray(h.edges, float), np.asarray(h.sumw, float))
+    cost = PowerLawCost(np.asarray(h.edges, float), np.asarray(h.weight_sum, float))
     m = Minuit(cost, *PL_TRUTH.values(), name=list(PL_TRUTH),
                grad=cost.grad if analytic else None)
     m.strategy = strategy
@@ -221,7 +221,7 @@ def bench_power_law(repeat: int) -> None:
         fn()
     cpu, out = interleaved(fns, repeat)
     res = out["peaksift"]
-    print(f"power law + Gaussian peak, {PL_BINS} bins, {h.sumw.sum():.0f} events "
+    print(f"power law + Gaussian peak, {PL_BINS} bins, {h.weight_sum.sum():.0f} events "
           f"(best CPU time of {repeat}):")
     print(f"  peaksift.fit                          {cpu['peaksift'] * 1e3:8.1f} ms  "
           f"(valid={res.valid}, {getattr(res, 'starts_tried', '?')} start(s), "
@@ -283,10 +283,10 @@ def main() -> None:
     h.fill(x)
     cpu, out = interleaved({
         "ours": lambda: peaksift.fit(h, "gaussian", "exponential", (LO, HI)),
-        "hand": lambda: by_hand_binned(h, h.sumw.sum())}, args.repeat)
+        "hand": lambda: by_hand_binned(h, h.weight_sum.sum())}, args.repeat)
     res, m = out["ours"], out["hand"]
     d = compare(res, m)
-    d_strict = compare(res, by_hand_binned(h, h.sumw.sum(), tol=1e-4))
+    d_strict = compare(res, by_hand_binned(h, h.weight_sum.sum(), tol=1e-4))
     print(f"binned, {args.bins} bins, {args.events} events (hand-written fit started off the "
           "truth; best CPU time):")
     print(f"  peaksift.fit   {cpu['ours'] * 1e3:8.1f} ms  (valid={res.valid})")

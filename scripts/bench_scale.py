@@ -56,7 +56,7 @@ def _selection(args: argparse.Namespace):
 
 def _digest(col) -> str:
     h = hashlib.sha256()
-    for a in (col.histogram.sumw, col.histogram.sumw2, col.window_mass, col.window_weight):
+    for a in (col.histogram.weight_sum, col.histogram.weight_sq_sum, col.window_mass, col.window_weight):
         h.update(a.tobytes())
     h.update(json.dumps(col.cutflow, sort_keys=True).encode())
     return h.hexdigest()[:16]

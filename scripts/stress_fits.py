@@ -166,7 +166,7 @@ def make_data(case: Case, mode: str, sig: shapes.Shape, bkg: shapes.Shape, bkg_t
         if case.drop_upper_half:
             counts[0.5 * (edges[1:] + edges[:-1]) > 0.5 * sum(WINDOW)] = 0.0
         h = MassHistogram(edges)
-        h.sumw, h.sumw2 = counts, counts.copy()
+        h.weight_sum, h.weight_sq_sum = counts, counts.copy()
         return h
     if case.exact_total:
         nb = int(rng.binomial(round(case.background + s_yield),

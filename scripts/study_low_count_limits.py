@@ -66,8 +66,8 @@ FLOOR = -np.log(0.05)
 
 def histogram(counts: np.ndarray) -> MassHistogram:
     h = MassHistogram(bins=BINS, range=WINDOW)
-    h.sumw = np.asarray(counts, float)
-    h.sumw2 = h.sumw.copy()
+    h.weight_sum = np.asarray(counts, float)
+    h.weight_sq_sum = h.weight_sum.copy()
     return h
 
 

@@ -198,7 +198,7 @@ def test_spectrum_while_blinded_hides_the_window(tiny_data, capsys, tmp_path):
     # every 2 GeV bin sharing mass with [101, 110] is hidden: [100, 102) ... [108, 110)
     hidden = (h.edges[:-1] < 110.0) & (h.edges[1:] > 101.0)
     assert hidden.sum() == 5
-    assert np.all(h.sumw[hidden] == 0) and np.all(h.sumw2[hidden] == 0)
+    assert np.all(h.weight_sum[hidden] == 0) and np.all(h.weight_sq_sum[hidden] == 0)
     raw = json.loads((tmp_path / "b" / "spectrum.json").read_text())
     assert raw["blinded"]["hidden_range"] == [100.0, 110.0]
     assert not list((tmp_path / "b" / "figures").glob("candidates.*"))
@@ -206,8 +206,8 @@ def test_spectrum_while_blinded_hides_the_window(tiny_data, capsys, tmp_path):
     _config(tiny_data)
     assert main(["spectrum", str(cfg), "--out", str(tmp_path / "u"), "--quiet"]) == 0
     full = MassHistogram.load(tmp_path / "u" / "spectrum.json")
-    assert full.sumw[hidden].sum() > 0
-    assert np.array_equal(full.sumw[~hidden], h.sumw[~hidden])
+    assert full.weight_sum[hidden].sum() > 0
+    assert np.array_equal(full.weight_sum[~hidden], h.weight_sum[~hidden])
     assert (tmp_path / "u" / "figures" / "candidates.png").exists()
 
 

@@ -352,8 +352,8 @@ def test_serial_collect_equals_one_pass_reference(dataset):
     got = execution.collect(dataset, SEL, chunk_events=700)
     c, counts, wm, _ = _one_pass(dataset)
     assert got.engine_info["chunks"] == 9  # 3 files x 3 row groups, each above 700 events
-    np.testing.assert_array_equal(got.histogram.sumw, counts)  # exact for unweighted data
-    np.testing.assert_array_equal(got.histogram.sumw2, counts)
+    np.testing.assert_array_equal(got.histogram.weight_sum, counts)  # exact for unweighted data
+    np.testing.assert_array_equal(got.histogram.weight_sq_sum, counts)
     assert not got.histogram.is_weighted
     np.testing.assert_array_equal(got.window_mass, wm)
     assert got.events_read == 9000 == got.cutflow["events_in"]
@@ -364,7 +364,7 @@ def test_serial_collect_equals_one_pass_reference(dataset):
     inrange = (c.mass >= EDGES[0]) & (c.mass <= EDGES[-1])
     assert got.pt_histogram.total(flow=True) == inrange.sum()
     ref_y, _ = np.histogram(c.rapidity[inrange], bins=np.asarray(SEL.rapidity_edges))
-    np.testing.assert_array_equal(got.rapidity_histogram.sumw, ref_y)
+    np.testing.assert_array_equal(got.rapidity_histogram.weight_sum, ref_y)
 
 
 def test_chunked_equals_one_pass_for_any_chunk_size(dataset):
@@ -393,7 +393,7 @@ def test_engines_agree_exactly(weighted_dataset, dask_address):
     assert dask.engine_info["address"] == dask_address and dask.engine_info["workers"] == 2
     # and the weighted sums equal one pass to rounding (numpy.histogram with weights)
     _, counts, _, ww = _one_pass(files)
-    np.testing.assert_allclose(ref.histogram.sumw, counts, rtol=1e-12)
+    np.testing.assert_allclose(ref.histogram.weight_sum, counts, rtol=1e-12)
     np.testing.assert_array_equal(ref.window_weight, ww)
 
 
@@ -530,9 +530,9 @@ def test_fast_regular_binning_matches_binary_search(edges):
     idx = np.searchsorted(edges, v, side="right")
     idx[v == edges[-1]] = edges.size - 1
     ref = np.bincount(idx, weights=w, minlength=edges.size + 1)
-    np.testing.assert_array_equal(h.sumw, ref[1:-1])
+    np.testing.assert_array_equal(h.weight_sum, ref[1:-1])
     assert (h.underflow, h.overflow) == (ref[0], ref[-1])
-    np.testing.assert_allclose(h.sumw, np.histogram(v, bins=edges, weights=w)[0], rtol=1e-12)
+    np.testing.assert_allclose(h.weight_sum, np.histogram(v, bins=edges, weights=w)[0], rtol=1e-12)
 
 
 @pytest.mark.parametrize("start_method", ["auto", "spawn"])

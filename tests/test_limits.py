@@ -197,8 +197,8 @@ def _asimov_exponential(n_bkg: float = 20_000.0, slope: float = -3.0, bins: int 
     sec. 3.8) of an exponential on WINDOW; returns (histogram, bin fractions function)."""
     h = MassHistogram(bins=bins, range=WINDOW)
     g = shapes.get("exponential").bin_fractions(h.edges, [slope], WINDOW)
-    h.sumw = n_bkg * np.asarray(g, float)
-    h.sumw2 = h.sumw.copy()
+    h.weight_sum = n_bkg * np.asarray(g, float)
+    h.weight_sq_sum = h.weight_sum.copy()
     return h
 
 
@@ -230,7 +230,7 @@ def test_blinded_observed_limit_on_asimov_data_equals_expected_on_the_same_bins(
     assert u.observed[0] == pytest.approx(u.expected[0], rel=2e-3)  # no blinding: equal
     edges = h.edges
     used = ~((edges[:-1] < blind[1]) & (edges[1:] > blind[0]))
-    n = h.sumw[used]
+    n = h.weight_sum[used]
     f = np.asarray(shapes.get("gaussian").bin_fractions(edges, [mass, 0.01 * mass],
                                                         WINDOW))[used]
     expo = shapes.get("exponential")
@@ -268,8 +268,8 @@ def test_single_bin_observed_limit_matches_exact_poisson_cls(n_obs):
     counts = 1200.0 * g
     j = 15                                   # bin 250-260 GeV
     counts[j] = n_obs
-    h.sumw = counts
-    h.sumw2 = counts.copy()
+    h.weight_sum = counts
+    h.weight_sq_sum = counts.copy()
     r = upper_limits(h, "gaussian", "exponential", [255.0], relative_resolution=0.001)
     model, _, _ = _prepare_model(h, "gaussian", "exponential", [255.0], relative_resolution=0.001,
                                  window=None, natural_width=None, blind=None,
@@ -329,8 +329,8 @@ def _counting_histogram(b: float, n_total: float = 1e6):
     edges = np.r_[np.arange(100.0, 250.0, 10.0), 250.0, 250.0 + w,
                   np.arange(260.0, 400.1, 10.0)]
     h = MassHistogram(edges)
-    h.sumw = n_total * np.asarray(expo.bin_fractions(edges, [-1.0], WINDOW), float)
-    h.sumw2 = h.sumw.copy()
+    h.weight_sum = n_total * np.asarray(expo.bin_fractions(edges, [-1.0], WINDOW), float)
+    h.weight_sq_sum = h.weight_sum.copy()
     return h, 250.0 + w / 2, w
 
 
@@ -361,7 +361,7 @@ def test_toy_bands_at_low_counts_match_exact_counting_cls():
     bands (Cowan et al. 2011) miss all this: their -1 sigma edge lies below the floor."""
     toys, tol = 300, 0.06
     h, m, w = _counting_histogram(1.0)
-    b = float(h.sumw[15])
+    b = float(h.weight_sum[15])
     assert 0.95 < b < 1.05
     kw = {"relative_resolution": w / (40.0 * m)}   # the signal (+-20 sigma) inside the narrow bin
     r = upper_limits(h, "gaussian", "exponential", [m], method="toys", toy_masses=[m],
@@ -402,7 +402,7 @@ def test_auto_switches_to_toys_only_where_few_background_events_lie_under_the_si
     ref = []
     for mass in masses:
         f = np.diff(stats.norm.cdf(edges, mass, 0.01 * mass))
-        ref.append(f.sum() ** 2 / np.sum(f**2 / h.sumw))
+        ref.append(f.sum() ** 2 / np.sum(f**2 / h.weight_sum))
     auto = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01, toys=40,
                         seed=2)
     asym = upper_limits(h, "gaussian", "exponential", masses, relative_resolution=0.01,

@@ -82,7 +82,7 @@ def test_scan_q0_matches_a_raw_iminuit_cost():
     x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 20_000), rng.normal(250.0, sigma, 120)])
     h = MassHistogram(bins=300, range=WINDOW).fill(x)
     counts, edges = np.histogram(x, bins=300, range=WINDOW)  # the same data, binned by numpy
-    assert np.array_equal(h.sumw, counts)
+    assert np.array_equal(h.weight_sum, counts)
     masses = np.array([110.0, 180.0, 215.0, 250.0, 320.0, 390.0])
     r = scan(h, "gaussian", "exponential", masses,
              resolution=lambda m: np.full_like(np.asarray(m, float), sigma), refit=False)
@@ -186,8 +186,8 @@ def test_blinding_hides_and_ignores_the_window(tmp_path):
     r1 = scan(h, "gaussian", "exponential", 61, **kw)
     h2 = h.copy()
     inside = (h2.edges[:-1] < blind[1]) & (h2.edges[1:] > blind[0])
-    h2.sumw[inside] *= 3.0
-    h2.sumw2[inside] *= 3.0
+    h2.weight_sum[inside] *= 3.0
+    h2.weight_sq_sum[inside] *= 3.0
     r2 = scan(h2, "gaussian", "exponential", 61, **kw)
     assert r1.blinded.any()
     assert np.all(np.isnan(r1.q0[r1.blinded])) and np.all(np.isnan(r1.p_local[r1.blinded]))
@@ -242,9 +242,9 @@ def test_scan_of_masses_equals_scan_of_their_histogram(weighted):
         warnings.simplefilter("ignore", DataWarning)  # the weighted-spectrum note
         r_arr = scan(data, "gaussian", "exponential", 31, bins=300, **kw)
         h_np = MassHistogram(edges)
-        h_np.sumw = np.histogram(x, bins=edges, weights=w)[0].astype(float)
+        h_np.weight_sum = np.histogram(x, bins=edges, weights=w)[0].astype(float)
         w2 = None if w is None else w * w
-        h_np.sumw2 = np.histogram(x, bins=edges, weights=w2)[0].astype(float)
+        h_np.weight_sq_sum = np.histogram(x, bins=edges, weights=w2)[0].astype(float)
         r_np = scan(h_np, "gaussian", "exponential", 31, **kw)
         r_h = scan(MassHistogram.from_masses(x, w, edges=edges), "gaussian", "exponential", 31,
                    **kw)
@@ -282,8 +282,8 @@ def test_weighted_spectrum_uses_effective_counts():
     effective counts are the raw counts, so Z is unchanged and the yield doubles."""
     h = _spectrum(n_sig=150)
     hw = h.copy()
-    hw.sumw = 2.0 * h.sumw
-    hw.sumw2 = 4.0 * h.sumw2
+    hw.weight_sum = 2.0 * h.weight_sum
+    hw.weight_sq_sum = 4.0 * h.weight_sq_sum
     r = scan(h, "gaussian", "exponential", 31, relative_resolution=0.01, refit=False)
     with pytest.warns(DataWarning, match="effective counts"):
         rw = scan(hw, "gaussian", "exponential", 31, relative_resolution=0.01, refit=False)
@@ -354,7 +354,7 @@ def test_difficult_background_start_is_recovered(background, density, starts, li
     h = _spectrum()
     r = scan(h, "gaussian", background, 11, resolution=lambda m: 0.01 * np.asarray(m, float),
              refit=False)
-    n, a, b = h.sumw, h.edges[:-1], h.edges[1:]
+    n, a, b = h.weight_sum, h.edges[:-1], h.edges[1:]
     gx, gw = np.polynomial.legendre.leggauss(8)
     nodes = 0.5 * (a + b)[:, None] + 0.5 * (b - a)[:, None] * gx
 

@@ -130,7 +130,7 @@ def test_local_significance_in_the_expected_range(run):
     c = h.centers
     signal_region = np.abs(c - m0) < 2 * sigma
     sidebands = (np.abs(c - m0) > 3 * sigma) & (np.abs(c - m0) < 6 * sigma)
-    b = float(h.sumw[sidebands].mean()) * int(signal_region.sum())
+    b = float(h.weight_sum[sidebands].mean()) * int(signal_region.sum())
     s = 0.9 * truth["selected_in_search_window"]  # ~90% of the peak lies inside +-2 sigma
     z_a = math.sqrt(2.0 * ((s + b) * math.log1p(s / b) - s))
     z = run["results"]["best"]["z_local"]
@@ -302,7 +302,7 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     h = MassHistogram.load(out / "spectrum.json")
     hidden = _overlapping_bins(h.edges, b0, b1)
     assert hidden.sum() == 25 and hidden[30]  # 140-165 GeV in 1 GeV bins, [140, 141) too
-    assert np.all(h.sumw[hidden] == 0) and np.all(h.sumw2[hidden] == 0)
+    assert np.all(h.weight_sum[hidden] == 0) and np.all(h.weight_sq_sum[hidden] == 0)
     raw = json.loads((out / "spectrum.json").read_text())
     assert raw["blinded"]["window"] == [b0, b1]
     assert raw["blinded"]["hidden_range"] == [140.0, 165.0]
@@ -317,10 +317,10 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
 
     # the counts are the sidebands': the full spectrum minus the hidden bins
     full = unres.histogram
-    assert np.array_equal(full.sumw[~hidden], h.sumw[~hidden])
-    n_hidden = int(full.sumw[hidden].sum())
+    assert np.array_equal(full.weight_sum[~hidden], h.weight_sum[~hidden])
+    n_hidden = int(full.weight_sum[hidden].sum())
     assert n_hidden > 0
-    assert d["input"]["candidates"] == int(full.sumw[~hidden].sum()) == int(h.total())
+    assert d["input"]["candidates"] == int(full.weight_sum[~hidden].sum()) == int(h.total())
     assert d["input"]["candidates"] == un["input"]["candidates"] - n_hidden
     assert d["input"]["sum_of_weights"] == pytest.approx(h.total())
     assert f"{d['input']['candidates']:,}".replace(",", "\u2009") in md

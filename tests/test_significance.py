@@ -90,8 +90,8 @@ def test_scan_on_asimov_spectrum_matches_binned_formula():
     b = 50_000 * bkg.bin_fractions(edges, [-1.0], win)
     s = 300.0 * sig.bin_fractions(edges, [200.0, 2.0], win)
     h = MassHistogram(edges)
-    h.sumw = b + s
-    h.sumw2 = b + s
+    h.weight_sum = b + s
+    h.weight_sq_sum = b + s
     r = scan(h, "gaussian", "exponential", [200.0], relative_resolution=0.01, refit=False)
     z_known = np.sqrt(np.sum(2 * ((s + b) * np.log1p(s / b) - s)))
     assert r.z_local[0] <= z_known + 1e-9

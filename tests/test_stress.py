@@ -177,8 +177,8 @@ def test_far_weaker_candidates_skipped_without_losing_the_minimum():
     r = peaksift.fit(h, "gaussian", "exponential", window)
     assert r.valid and r.starts_tried == 4
     assert all(abs(f - r.nll) < 50 for f in r.starts_nll)  # all four at the strong peak
-    cost = _hand_binned_nll(h.sumw, np.asarray(h.edges), window)
-    ntot = float(h.sumw.sum())
+    cost = _hand_binned_nll(h.weight_sum, np.asarray(h.edges), window)
+    ntot = float(h.weight_sum.sum())
     m = Minuit(cost, mass=170.0, sigma=3.0, ns=1500.0, b1=-100.0 / 60.0, nb=ntot - 1500.0)
     m.errordef = Minuit.LIKELIHOOD
     m.limits["sigma"] = (0.1, 50.0)

@@ -139,18 +139,27 @@ class MassHistogram:
     ----------
     edges : ndarray
         Read-only bin edges (``nbins + 1``).
-    sumw, sumw2 : ndarray
+    weight_sum, weight_sq_sum : ndarray
         Sum of weights and of squared weights per bin.
     underflow, overflow : float
         Sum of weights below the first / above the last edge (a value equal to the last
-        edge is in the last bin); ``underflow_sumw2`` and ``overflow_sumw2`` likewise.
+        edge is in the last bin); ``underflow_weight_sq_sum`` and ``overflow_weight_sq_sum`` likewise.
     n_nan : int
         Number of NaN values offered to :meth:`fill` and not filled.
     """
 
     __slots__ = (
-        "_regular", "edges", "label", "n_nan", "overflow", "overflow_sumw2", "sumw", "sumw2",
-        "underflow", "underflow_sumw2", "unit",
+        "_regular",
+        "edges",
+        "label",
+        "n_nan",
+        "overflow",
+        "overflow_weight_sq_sum",
+        "underflow",
+        "underflow_weight_sq_sum",
+        "unit",
+        "weight_sq_sum",
+        "weight_sum",
     )
 
     def __init__(
@@ -177,12 +186,12 @@ class MassHistogram:
             raise InputError("give either edges=... or bins=/range=, not both")
         self.edges = _check_edges(edges)
         n = self.edges.size - 1
-        self.sumw = np.zeros(n)
-        self.sumw2 = np.zeros(n)
+        self.weight_sum = np.zeros(n)
+        self.weight_sq_sum = np.zeros(n)
         self.underflow = 0.0
         self.overflow = 0.0
-        self.underflow_sumw2 = 0.0
-        self.overflow_sumw2 = 0.0
+        self.underflow_weight_sq_sum = 0.0
+        self.overflow_weight_sq_sum = 0.0
         self.n_nan = 0
         self.unit = str(unit)
         self.label = str(label)
@@ -216,29 +225,29 @@ class MassHistogram:
 
     @property
     def errors(self) -> np.ndarray:
-        """Per-bin uncertainty ``sqrt(sumw2)``."""
-        return np.sqrt(self.sumw2)
+        """Per-bin uncertainty ``sqrt(weight_sq_sum)``."""
+        return np.sqrt(self.weight_sq_sum)
 
     @property
     def is_weighted(self) -> bool:
         """True when any bin's sum of squared weights differs from its sum of weights."""
         return not (
-            np.array_equal(self.sumw, self.sumw2)
-            and self.underflow == self.underflow_sumw2
-            and self.overflow == self.overflow_sumw2
+            np.array_equal(self.weight_sum, self.weight_sq_sum)
+            and self.underflow == self.underflow_weight_sq_sum
+            and self.overflow == self.overflow_weight_sq_sum
         )
 
     def total(self, *, flow: bool = False) -> float:
         """Sum of weights in the bins (and under/overflow when ``flow``)."""
-        s = float(self.sumw.sum())
+        s = float(self.weight_sum.sum())
         return s + self.underflow + self.overflow if flow else s
 
     def copy(self) -> MassHistogram:
         h = MassHistogram(self.edges, unit=self.unit, label=self.label)
-        h.sumw = self.sumw.copy()
-        h.sumw2 = self.sumw2.copy()
+        h.weight_sum = self.weight_sum.copy()
+        h.weight_sq_sum = self.weight_sq_sum.copy()
         h.underflow, h.overflow = self.underflow, self.overflow
-        h.underflow_sumw2, h.overflow_sumw2 = self.underflow_sumw2, self.overflow_sumw2
+        h.underflow_weight_sq_sum, h.overflow_weight_sq_sum = self.underflow_weight_sq_sum, self.overflow_weight_sq_sum
         h.n_nan = self.n_nan
         return h
 
@@ -287,12 +296,12 @@ class MassHistogram:
         else:
             s1 = np.bincount(idx, weights=w, minlength=n + 2)
             s2 = np.bincount(idx, weights=w * w, minlength=n + 2)
-        self.sumw += s1[1 : n + 1]
-        self.sumw2 += s2[1 : n + 1]
+        self.weight_sum += s1[1 : n + 1]
+        self.weight_sq_sum += s2[1 : n + 1]
         self.underflow += s1[0]
         self.overflow += s1[n + 1]
-        self.underflow_sumw2 += s2[0]
-        self.overflow_sumw2 += s2[n + 1]
+        self.underflow_weight_sq_sum += s2[0]
+        self.overflow_weight_sq_sum += s2[n + 1]
         return self
 
     @classmethod
@@ -346,27 +355,27 @@ class MassHistogram:
                 "with finer bins")
         i0, i1 = int(keep[0]), int(keep[-1]) + 1
         h = MassHistogram(e[i0 : i1 + 1], unit=self.unit, label=self.label)
-        h.sumw = self.sumw[i0:i1].copy()
-        h.sumw2 = self.sumw2[i0:i1].copy()
-        h.underflow = self.underflow + float(self.sumw[:i0].sum())
-        h.underflow_sumw2 = self.underflow_sumw2 + float(self.sumw2[:i0].sum())
-        h.overflow = self.overflow + float(self.sumw[i1:].sum())
-        h.overflow_sumw2 = self.overflow_sumw2 + float(self.sumw2[i1:].sum())
+        h.weight_sum = self.weight_sum[i0:i1].copy()
+        h.weight_sq_sum = self.weight_sq_sum[i0:i1].copy()
+        h.underflow = self.underflow + float(self.weight_sum[:i0].sum())
+        h.underflow_weight_sq_sum = self.underflow_weight_sq_sum + float(self.weight_sq_sum[:i0].sum())
+        h.overflow = self.overflow + float(self.weight_sum[i1:].sum())
+        h.overflow_weight_sq_sum = self.overflow_weight_sq_sum + float(self.weight_sq_sum[i1:].sum())
         h.n_nan = self.n_nan
         return h
 
     def scaled_poisson_factors(self) -> np.ndarray:
-        """The scaled-Poisson factor of every bin, ``s_i = sumw_i / sumw2_i``.
+        """The scaled-Poisson factor of every bin, ``s_i = weight_sum_i / weight_sq_sum_i``.
 
-        A bin of weighted entries is treated as a Poisson count of ``s_i sumw_i`` effective
+        A bin of weighted entries is treated as a Poisson count of ``s_i weight_sum_i`` effective
         entries with expectation ``s_i mu_i`` (Bohm and Zech, "Statistics of weighted
         Poisson events and its applications", NIM A 748 (2014) 1): the scale makes the
-        effective count's variance equal its mean.  Bins with no usable ratio (``sumw2 = 0``,
-        or ``sumw <= 0`` from negative weights) take the ratio of the totals over the bins,
-        ``sum(sumw) / sum(sumw2)`` (1 when that is undefined).  Unweighted histograms give 1
+        effective count's variance equal its mean.  Bins with no usable ratio (``weight_sq_sum = 0``,
+        or ``weight_sum <= 0`` from negative weights) take the ratio of the totals over the bins,
+        ``sum(weight_sum) / sum(weight_sq_sum)`` (1 when that is undefined).  Unweighted histograms give 1
         in every bin.
         """
-        n, n2 = self.sumw, self.sumw2
+        n, n2 = self.weight_sum, self.weight_sq_sum
         if np.array_equal(n, n2):
             return np.ones_like(n)
         total2 = float(n2.sum())
@@ -397,12 +406,12 @@ class MassHistogram:
 
     def __iadd__(self, other: MassHistogram) -> MassHistogram:  # noqa: PYI034 - py3.10
         self._check_compatible(other)
-        self.sumw += other.sumw
-        self.sumw2 += other.sumw2
+        self.weight_sum += other.weight_sum
+        self.weight_sq_sum += other.weight_sq_sum
         self.underflow += other.underflow
         self.overflow += other.overflow
-        self.underflow_sumw2 += other.underflow_sumw2
-        self.overflow_sumw2 += other.overflow_sumw2
+        self.underflow_weight_sq_sum += other.underflow_weight_sq_sum
+        self.overflow_weight_sq_sum += other.overflow_weight_sq_sum
         self.n_nan += other.n_nan
         return self
 
@@ -411,10 +420,10 @@ class MassHistogram:
             return NotImplemented
         return (
             np.array_equal(self.edges, other.edges)
-            and np.array_equal(self.sumw, other.sumw)
-            and np.array_equal(self.sumw2, other.sumw2)
-            and (self.underflow, self.overflow, self.underflow_sumw2, self.overflow_sumw2, self.n_nan)
-            == (other.underflow, other.overflow, other.underflow_sumw2, other.overflow_sumw2, other.n_nan)
+            and np.array_equal(self.weight_sum, other.weight_sum)
+            and np.array_equal(self.weight_sq_sum, other.weight_sq_sum)
+            and (self.underflow, self.overflow, self.underflow_weight_sq_sum, self.overflow_weight_sq_sum, self.n_nan)
+            == (other.underflow, other.overflow, other.underflow_weight_sq_sum, other.overflow_weight_sq_sum, other.n_nan)
         )
 
     __hash__ = None  # type: ignore[assignment]
@@ -455,14 +464,14 @@ class MassHistogram:
         h = MassHistogram(self.edges[keep], unit=self.unit, label=self.label)
         # exact per-group sums; reduceat's last group runs to the array end, so redo it
         starts = keep[:-1]
-        h.sumw = np.add.reduceat(self.sumw, starts)
-        h.sumw2 = np.add.reduceat(self.sumw2, starts)
-        h.sumw[-1] = self.sumw[keep[-2] : keep[-1]].sum()
-        h.sumw2[-1] = self.sumw2[keep[-2] : keep[-1]].sum()
-        h.underflow = self.underflow + float(self.sumw[: keep[0]].sum())
-        h.underflow_sumw2 = self.underflow_sumw2 + float(self.sumw2[: keep[0]].sum())
-        h.overflow = self.overflow + float(self.sumw[keep[-1] :].sum())
-        h.overflow_sumw2 = self.overflow_sumw2 + float(self.sumw2[keep[-1] :].sum())
+        h.weight_sum = np.add.reduceat(self.weight_sum, starts)
+        h.weight_sq_sum = np.add.reduceat(self.weight_sq_sum, starts)
+        h.weight_sum[-1] = self.weight_sum[keep[-2] : keep[-1]].sum()
+        h.weight_sq_sum[-1] = self.weight_sq_sum[keep[-2] : keep[-1]].sum()
+        h.underflow = self.underflow + float(self.weight_sum[: keep[0]].sum())
+        h.underflow_weight_sq_sum = self.underflow_weight_sq_sum + float(self.weight_sq_sum[: keep[0]].sum())
+        h.overflow = self.overflow + float(self.weight_sum[keep[-1] :].sum())
+        h.overflow_weight_sq_sum = self.overflow_weight_sq_sum + float(self.weight_sq_sum[keep[-1] :].sum())
         h.n_nan = self.n_nan
         return h
 
@@ -474,12 +483,12 @@ class MassHistogram:
             "unit": self.unit,
             "label": self.label,
             "edges": self.edges.tolist(),
-            "sumw": self.sumw.tolist(),
-            "sumw2": self.sumw2.tolist(),
+            "weight_sum": self.weight_sum.tolist(),
+            "weight_sq_sum": self.weight_sq_sum.tolist(),
             "underflow": self.underflow,
             "overflow": self.overflow,
-            "underflow_sumw2": self.underflow_sumw2,
-            "overflow_sumw2": self.overflow_sumw2,
+            "underflow_weight_sq_sum": self.underflow_weight_sq_sum,
+            "overflow_weight_sq_sum": self.overflow_weight_sq_sum,
             "n_nan": self.n_nan,
         }
 
@@ -492,19 +501,19 @@ class MassHistogram:
         try:
             h = cls(np.asarray(d["edges"], dtype=float), unit=str(d.get("unit", "GeV")),
                     label=str(d.get("label", "m")))
-            sumw = np.asarray(d["sumw"], dtype=float)
-            sumw2 = np.asarray(d["sumw2"], dtype=float)
+            weight_sum = np.asarray(d["weight_sum"], dtype=float)
+            weight_sq_sum = np.asarray(d["weight_sq_sum"], dtype=float)
         except KeyError as exc:
             raise InputError(f"{where}: missing key {exc.args[0]!r}") from None
-        if sumw.shape != (h.nbins,) or sumw2.shape != (h.nbins,):
+        if weight_sum.shape != (h.nbins,) or weight_sq_sum.shape != (h.nbins,):
             raise InputError(
-                f"{where}: {h.nbins} bins but sumw has {sumw.size} and sumw2 {sumw2.size} entries"
+                f"{where}: {h.nbins} bins but weight_sum has {weight_sum.size} and weight_sq_sum {weight_sq_sum.size} entries"
             )
-        h.sumw, h.sumw2 = sumw, sumw2
+        h.weight_sum, h.weight_sq_sum = weight_sum, weight_sq_sum
         h.underflow = float(d.get("underflow", 0.0))
         h.overflow = float(d.get("overflow", 0.0))
-        h.underflow_sumw2 = float(d.get("underflow_sumw2", 0.0))
-        h.overflow_sumw2 = float(d.get("overflow_sumw2", 0.0))
+        h.underflow_weight_sq_sum = float(d.get("underflow_weight_sq_sum", 0.0))
+        h.overflow_weight_sq_sum = float(d.get("overflow_weight_sq_sum", 0.0))
         h.n_nan = int(d.get("n_nan", 0))
         return h
 
@@ -526,10 +535,10 @@ class MassHistogram:
                 unit=np.array(self.unit),
                 label=np.array(self.label),
                 edges=np.asarray(self.edges),
-                sumw=self.sumw,
-                sumw2=self.sumw2,
+                weight_sum=self.weight_sum,
+                weight_sq_sum=self.weight_sq_sum,
                 flow=np.array([self.underflow, self.overflow,
-                               self.underflow_sumw2, self.overflow_sumw2]),
+                               self.underflow_weight_sq_sum, self.overflow_weight_sq_sum]),
                 n_nan=np.array(self.n_nan),
             )
             data = buf.getvalue()
@@ -552,12 +561,12 @@ class MassHistogram:
                     "unit": str(z["unit"]),
                     "label": str(z["label"]),
                     "edges": z["edges"],
-                    "sumw": z["sumw"],
-                    "sumw2": z["sumw2"],
+                    "weight_sum": z["weight_sum"],
+                    "weight_sq_sum": z["weight_sq_sum"],
                     "underflow": flow[0],
                     "overflow": flow[1],
-                    "underflow_sumw2": flow[2],
-                    "overflow_sumw2": flow[3],
+                    "underflow_weight_sq_sum": flow[2],
+                    "overflow_weight_sq_sum": flow[3],
                     "n_nan": int(z["n_nan"]),
                 }
         except InputError:
@@ -569,7 +578,7 @@ class MassHistogram:
 
     # -------------------------------------------------------------------- plot
     def plot(self, ax: Any = None, *, density: bool = False, **kwargs: Any) -> Any:
-        """Draw the spectrum as points with ``sqrt(sumw2)`` error bars; returns the Axes.
+        """Draw the spectrum as points with ``sqrt(weight_sq_sum)`` error bars; returns the Axes.
 
         With ``density=True`` (and always for variable bins) the contents are divided by
         the bin width (candidates per GeV).  Drawn in the peaksift figure style.
@@ -582,7 +591,7 @@ class MassHistogram:
             with figure_style():
                 _, ax = plt.subplots(figsize=(7, 4.5))
         scale = 1.0 / self.widths if (density or not self._regular) else 1.0
-        y = self.sumw * scale
+        y = self.weight_sum * scale
         yerr = self.errors * scale
         kwargs.setdefault("fmt", "o")
         kwargs.setdefault("ms", 3)

@@ -74,7 +74,7 @@ def _text(ax: Any, lines: Sequence[str], *, loc: str = "upper right") -> None:
 def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                   formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                   blind: Sequence[float] | None = None, title: str = "") -> dict[str, Path]:
-    """The selected spectrum as points with Poisson-like error bars (``sqrt(sumw2)``).
+    """The selected spectrum as points with Poisson-like error bars (``sqrt(weight_sq_sum)``).
 
     With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
     statistics layer leaves out (:func:`peaksift.blinding.blinded_bins`) -- the hidden bins'
@@ -89,10 +89,10 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
 
         h = hist.copy()
         inside = blinded_bins(h.edges, blind)
-        h.sumw[inside] = np.nan
-        h.sumw2[inside] = np.nan
+        h.weight_sum[inside] = np.nan
+        h.weight_sq_sum[inside] = np.nan
         span = hidden_range(h.edges, blind)
-    shown = h.sumw[np.isfinite(h.sumw)]
+    shown = h.weight_sum[np.isfinite(h.weight_sum)]
     total = float(shown.sum())
     where = " outside the blinded window" if span is not None else ""
     count = (f"sum of weights {total:,.1f}{where}" if hist.is_weighted
@@ -136,13 +136,13 @@ def candidates(collected: Any, outdir: str | os.PathLike[str], *,
                                    (a2, collected.rapidity_histogram, "rapidity $y$ of the pair",
                                     "")):
             e = np.asarray(h.edges)
-            ax.stairs(h.sumw, e, color=COLORS["total"], linewidth=1.4, fill=False)
-            ax.stairs(h.sumw, e, color=COLORS["total"], alpha=0.15, fill=True)
+            ax.stairs(h.weight_sum, e, color=COLORS["total"], linewidth=1.4, fill=False)
+            ax.stairs(h.weight_sum, e, color=COLORS["total"], alpha=0.15, fill=True)
             ax.set_xlabel(f"{label} [{unit}]" if unit else label)
             w = float(np.diff(e)[0])
             ax.set_ylabel(f"candidates / {w:.3g} {unit}".rstrip())
             ax.set_ylim(0, None)
-            nz = np.flatnonzero(h.sumw > 0)
+            nz = np.flatnonzero(h.weight_sum > 0)
             if nz.size and unit:  # trim an empty high-pT tail so the shape is visible
                 ax.set_xlim(e[0], e[min(nz[-1] + 2, e.size - 1)])
             else:

@@ -577,7 +577,7 @@ def write_demo(
     paths = [out / f"{stem}_{i:03d}.parquet" for i in range(files)]
     tmps = [p.with_name(f".{p.name}.tmp{os.getpid()}") for p in paths]
     totals: dict[str, dict[str, int]] = {}
-    sumw: dict[str, float] = {}
+    weight_sum: dict[str, float] = {}
     writers: list[pq.ParquetWriter | None] = [None] * files
     pending: list[list[pa.Table]] = [[] for _ in range(files)]
     pending_n = [0] * files
@@ -592,7 +592,7 @@ def write_demo(
                 proc = table.column("process").to_numpy()
                 w = table.column("weight").to_numpy()
                 for i, p in enumerate(PROCESSES):
-                    sumw[p] = sumw.get(p, 0.0) + float(w[proc == i].sum())
+                    weight_sum[p] = weight_sum.get(p, 0.0) + float(w[proc == i].sum())
             start = pos
             pos += table.num_rows
             for f in range(files):
@@ -627,7 +627,7 @@ def write_demo(
         for t in tmps:
             t.unlink(missing_ok=True)
         raise
-    truth = _truth(scenario, n, s, weighted, paths, row_group_events, totals, sumw)
+    truth = _truth(scenario, n, s, weighted, paths, row_group_events, totals, weight_sum)
     truth_path = out / "truth.json"
     _atomic_json(truth_path, truth)
     size = sum(p.stat().st_size for p in paths)
@@ -651,7 +651,7 @@ def write_demo(
 
 def _truth(sc: Scenario, n: int, seed: int, weighted: bool, paths: list[Path],
            row_group_events: int, totals: dict[str, dict[str, int]],
-           sumw: dict[str, float]) -> dict[str, Any]:
+           weight_sum: dict[str, float]) -> dict[str, Any]:
     from . import __version__
 
     fr = sc.weighted_fractions if weighted else sc.fractions
@@ -669,7 +669,7 @@ def _truth(sc: Scenario, n: int, seed: int, weighted: bool, paths: list[Path],
         d = {"description": descr[p], "fraction": fr[p] / tot,
              "expected_events": n * fr[p] / tot, **totals.get(p, {})}
         if weighted:
-            d["sum_of_weights"] = sumw.get(p, 0.0)
+            d["sum_of_weights"] = weight_sum.get(p, 0.0)
         procs[p] = d
     return {
         "scenario": sc.name,

@@ -157,7 +157,7 @@ def fit(
             return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
     given = {**start, **fixed}
     sh = start_bins(d)
-    starts = fit_starts(model, sh.edges, sh.sumw, sh.scaled_poisson_factors(), base,
+    starts = fit_starts(model, sh.edges, sh.weight_sum, sh.scaled_poisson_factors(), base,
                         is_fixed, given, lower, upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
@@ -351,7 +351,7 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
         width_parameter=wname, fwhm=fw, fwhm_error=fw_err,
         gof_chi2=chi2, gof_ndf=ndf, gof_p_value=pval, gof_note=_gof_note(d, cons, is_fixed,
                                                                           names),
-        edges=np.asarray(ge), observed=np.asarray(gn), observed_sumw2=np.asarray(gn2),
+        edges=np.asarray(ge), observed=np.asarray(gn), observed_weight_sq_sum=np.asarray(gn2),
         expected=np.asarray(mu), pulls=np.asarray(pulls),
         bounds={n: (float(lower[i]), float(upper[i])) for i, n in enumerate(names)},
         constraints=cons, model=model, starts_tried=len(tried), starts_nll=tried,

@@ -49,7 +49,7 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
             h = data if window is None else data.restrict(as_window(window))
         except InputError as exc:
             raise FitError(f"fit window: {exc}") from None
-        n, n2 = h.sumw, h.sumw2
+        n, n2 = h.weight_sum, h.weight_sq_sum
         if not (np.all(np.isfinite(n)) and np.all(np.isfinite(n2))):
             raise FitError("the histogram has non-finite bin contents in the fit window")
         return FitData(True, "data is a histogram", bool(h.is_weighted), h.edges, n, n2, None,
@@ -102,8 +102,8 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
         edges = (np.linspace(lo, hi, (DEFAULT_BINS if bins is None else int(bins)) + 1)
                  if bins is None or np.ndim(bins) == 0 else np.asarray(bins, float))
         h = MassHistogram.from_masses(x, w, edges=edges)
-        return FitData(True, reason, weighted, h.edges, h.sumw, h.sumw2, None, None,
-                       (lo, hi), float(h.sumw.sum()), "GeV", h)
+        return FitData(True, reason, weighted, h.edges, h.weight_sum, h.weight_sq_sum, None, None,
+                       (lo, hi), float(h.weight_sum.sum()), "GeV", h)
     nb = int(np.clip(x.size // 20, 5, 100))
     gof = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
     return FitData(False, reason, weighted, None, None, None, x, w, (lo, hi), total, "GeV", gof)
@@ -112,7 +112,7 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
 def gof_binning(d: FitData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Edges, sums of weights and of squared weights of the goodness-of-fit bins: the fit's
     own bins, or for unbinned data 5-100 equal bins of ~20 masses."""
-    return d.hist.edges, d.hist.sumw, d.hist.sumw2
+    return d.hist.edges, d.hist.weight_sum, d.hist.weight_sq_sum
 
 
 def start_bins(d: FitData, most: int = 100) -> Any:

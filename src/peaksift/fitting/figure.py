@@ -29,7 +29,7 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None)
     c = 0.5 * (e[1:] + e[:-1])
     bw = np.diff(e)
     if result.weighted:
-        lo_err = hi_err = np.sqrt(result.observed_sumw2)
+        lo_err = hi_err = np.sqrt(result.observed_weight_sq_sum)
     else:
         lower = np.where(n > 0, stats.chi2.ppf(0.15865, 2 * n) / 2.0, 0.0)
         upper = stats.chi2.ppf(0.84135, 2 * n + 2) / 2.0

@@ -82,9 +82,9 @@ class FitResult(FrozenValue):
     starts_tried, starts_nll : int, tuple
         How many starting points were minimised, and the minimum each reached: the lowest
         wins, whatever the validity of the others.
-    edges, observed, observed_sumw2, expected, pulls : ndarray
+    edges, observed, observed_weight_sq_sum, expected, pulls : ndarray
         Binning used for the goodness of fit and figures; pulls are (n - mu)/sqrt(var),
-        var = mu * sumw2/sumw for weighted bins.
+        var = mu * weight_sq_sum/weight_sum for weighted bins.
     bounds : mapping
         ``name -> (lower, upper)`` used in the fit.
     """
@@ -119,7 +119,7 @@ class FitResult(FrozenValue):
     gof_p_value: float
     edges: np.ndarray
     observed: np.ndarray
-    observed_sumw2: np.ndarray
+    observed_weight_sq_sum: np.ndarray
     expected: np.ndarray
     pulls: np.ndarray
     bounds: Any
@@ -134,7 +134,7 @@ class FitResult(FrozenValue):
     cost: Any = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
-        for name in ("covariance", "correlations", "edges", "observed", "observed_sumw2",
+        for name in ("covariance", "correlations", "edges", "observed", "observed_weight_sq_sum",
                      "expected", "pulls"):
             object.__setattr__(self, name, np.array(getattr(self, name), float))
         for name in ("values", "errors", "flags", "bounds", "constraints"):
@@ -216,7 +216,7 @@ class FitResult(FrozenValue):
             {k: [number(a), number(b)] for k, (a, b) in iv.items()},
             "covariance": [[number(c) for c in row] for row in self.covariance],
             "bins": {"edges": self.edges.tolist(), "observed": self.observed.tolist(),
-                     "observed_sumw2": self.observed_sumw2.tolist(),
+                     "observed_weight_sq_sum": self.observed_weight_sq_sum.tolist(),
                      "expected": self.expected.tolist(),
                      "pulls": [number(p) for p in self.pulls]},
             "unit": self.unit,
@@ -266,7 +266,7 @@ class FitResult(FrozenValue):
                 gof_ndf=int(d["gof"]["ndf"]), gof_p_value=val(d["gof"]["p_value"]),
                 gof_note=d["gof"]["note"],
                 edges=np.array(b["edges"], float), observed=np.array(b["observed"], float),
-                observed_sumw2=np.array(b["observed_sumw2"], float),
+                observed_weight_sq_sum=np.array(b["observed_weight_sq_sum"], float),
                 expected=np.array(b["expected"], float),
                 pulls=np.array([val(p) for p in b["pulls"]], float),
                 bounds={n: (val(pars[n]["bounds"][0]) if pars[n]["bounds"][0] is not None

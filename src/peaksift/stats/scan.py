@@ -49,11 +49,11 @@ __all__ = ["ScanResult", "scan"]
 @dataclass(frozen=True)
 class _Spectrum:
     edges: np.ndarray      # bins in the window
-    counts: np.ndarray     # effective counts k_i sumw_i (window bins)
+    counts: np.ndarray     # effective counts k_i weight_sum_i (window bins)
     scale: float           # overall factor sum(w)/sum(w^2) (1 unweighted), for information
     window: tuple[float, float]
     unit: str
-    bin_scale: np.ndarray | None = None  # per-bin k_i = sumw_i/sumw2_i (None unweighted)
+    bin_scale: np.ndarray | None = None  # per-bin k_i = weight_sum_i/weight_sq_sum_i (None unweighted)
 
 
 def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
@@ -86,23 +86,23 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
         else:
             nb = int(bins)
         hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
-    sumw = np.asarray(hist.sumw, float)
+    weight_sum = np.asarray(hist.weight_sum, float)
     edges = np.asarray(hist.edges, float)
-    if not (np.all(np.isfinite(sumw)) and np.all(sumw >= 0)):
+    if not (np.all(np.isfinite(weight_sum)) and np.all(weight_sum >= 0)):
         raise FitError("scan: bin contents in the window must be finite and non-negative")
-    if sumw.sum() <= 0:
+    if weight_sum.sum() <= 0:
         raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
     scale = 1.0
     bin_scale = None
-    if not np.allclose(sumw, hist.sumw2):
-        scale = float(sumw.sum() / hist.sumw2.sum())
+    if not np.allclose(weight_sum, hist.weight_sq_sum):
+        scale = float(weight_sum.sum() / hist.weight_sq_sum.sum())
         bin_scale = hist.scaled_poisson_factors()
         warnings.warn(
             f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
             f"k_i sum(w) per bin, k_i = sum(w)/sum(w^2) of the bin (overall {scale:.4g}); "
             f"an approximation for unequal weights (exact for equal ones)",
             DataWarning, stacklevel=3)
-    return _Spectrum(edges, sumw * (1.0 if bin_scale is None else bin_scale), scale,
+    return _Spectrum(edges, weight_sum * (1.0 if bin_scale is None else bin_scale), scale,
                      (float(edges[0]), float(edges[-1])), hist.unit, bin_scale)
 
 
@@ -353,7 +353,7 @@ class ScanResult(FrozenValue):
     weight_scale : float
         Weighted spectra: the overall ``sum w / sum w^2`` of the window, for information
         (1 unweighted).  The likelihood itself scales every bin by its own
-        ``k_i = sumw_i / sumw2_i`` (scaled Poisson, as :func:`peaksift.fit`; empty bins get
+        ``k_i = weight_sum_i / weight_sq_sum_i`` (scaled Poisson, as :func:`peaksift.fit`; empty bins get
         the overall value); yields are in weighted units.
     """
 
@@ -569,7 +569,7 @@ def scan(
         equal to the window's top is in the last bin) in bins of a quarter of the smallest
         resolution (50-2000 bins) unless ``bins`` is given; the scan of an array and of the
         histogram built from it are the same.  Weighted bins are scaled Poisson variables: effective
-        counts ``k_i sumw_i`` with ``k_i = sumw_i / sumw2_i`` per bin (Bohm and Zech, NIM A
+        counts ``k_i weight_sum_i`` with ``k_i = weight_sum_i / weight_sq_sum_i`` per bin (Bohm and Zech, NIM A
         748 (2014) 1; the same likelihood as the weighted binned :func:`peaksift.fit`, so
         q0 agrees with two such fits); yields are reported in weighted units.
     signal, background : shape name or Shape
