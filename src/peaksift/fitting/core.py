@@ -32,6 +32,7 @@ from ..likelihood import (
 )
 from ..likelihood.starts import fit_starts
 from ..shapes import Shape
+from .checks import as_limits, as_retries, as_values, check_fixed, check_support
 from .data import FitData, gof_binning, prepare, start_bins
 from .result import FitResult
 
@@ -122,9 +123,10 @@ def fit(
     d = prepare(data, weights, window, binned, bins)
     model = Model(signal, background, d.window)
     names = list(model.parameter_names)
-    fixed = dict(fixed or {})
-    start = dict(start or {})
-    limits = dict(limits or {})
+    fixed = as_values("fixed", fixed)
+    start = as_values("start", start)
+    limits = as_limits(limits)
+    retries = as_retries(retries)
     cons = {k: Constraint.coerce(c, k) for k, c in dict(constraints or {}).items()}
     for label, dct in (("fixed", fixed), ("start", start), ("limits", limits),
                        ("constraints", cons)):
@@ -138,7 +140,9 @@ def fit(
         raise FitError(f"the fit window {d.window} holds no events (sum of weights "
                        f"{d.total:g}); widen the window or check the selection")
     lower, upper = _bounds(model, d.total, limits)
+    check_fixed(model, fixed)
     base, is_fixed = _base_values(model, d, start, fixed, lower, upper)
+    check_support(model, base)
     free_idx = np.flatnonzero(~is_fixed)
     nfree = int(free_idx.size)
     n_entries = (float(np.sum(d.n)) if d.binned and not d.weighted else
@@ -156,6 +160,13 @@ def fit(
         def make_cost(v: np.ndarray) -> Any:
             return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
     given = {**start, **fixed}
+    if nfree == 0:  # nothing to minimise: the likelihood at the given values
+        cost = make_cost(base)
+        f = float(cost.value_grad_info(np.empty(0), info=False)[0])
+        mo = Minimum(np.empty(0), f, True, False, np.empty(0), "none (every parameter fixed)")
+        return _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
+                       cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
+                       cost.ncall)
     sh = start_bins(d)
     starts = fit_starts(model, sh.edges, sh.weight_sum, sh.scaled_poisson_factors(), base,
                         is_fixed, given, lower, upper, d.total, retries)
@@ -366,7 +377,8 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
     if problems:
         notes.append("profile-likelihood intervals not made: the fit is not valid")
         return None
-    wanted = [names[i] for i in free_idx] if which is True else list(which)
+    wanted = ([names[i] for i in free_idx] if which is True else
+              [which] if isinstance(which, str) else list(which))
     for k in wanted:
         if k not in names or is_fixed[names.index(k)]:
             raise FitError(f"intervals: {k!r} is not a free parameter")

@@ -6,6 +6,7 @@ binning used for the goodness of fit and the figure.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -52,24 +53,31 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
         n, n2 = h.weight_sum, h.weight_sq_sum
         if not (np.all(np.isfinite(n)) and np.all(np.isfinite(n2))):
             raise FitError("the histogram has non-finite bin contents in the fit window")
+        if np.any(n < 0):
+            k = int(np.flatnonzero(n < 0)[0])
+            raise FitError(f"the histogram has a negative sum of weights ({n[k]:g}) in the bin "
+                           f"{h.edges[k]:g}-{h.edges[k + 1]:g} GeV: a Poisson likelihood needs "
+                           "non-negative contents; merge bins or fit the masses unbinned")
         return FitData(True, "data is a histogram", bool(h.is_weighted), h.edges, n, n2, None,
                        None, (h.lo, h.hi), float(n.sum()), h.unit, h)
     if isinstance(data, tuple) and len(data) == 2 and weights is None:
         data, weights = data
-    x = np.asarray(data, dtype=float).ravel()
+    x = _masses(data, "masses")
     bad = ~np.isfinite(x)
     if bad.any():
         raise FitError(f"{int(bad.sum())} of {x.size} masses are not finite (first at index "
                        f"{int(np.flatnonzero(bad)[0])}); drop NaN/inf masses before fitting")
     w = None
     if weights is not None:
-        w = np.asarray(weights, dtype=float).ravel()
+        w = _masses(weights, "weights")
         if w.shape != x.shape:
             raise FitError(f"{x.size} masses but {w.size} weights; give one weight per mass")
         badw = ~np.isfinite(w)
         if badw.any():
             raise FitError(f"{int(badw.sum())} weights are not finite (first at index "
                            f"{int(np.flatnonzero(badw)[0])})")
+    if window is None and binned is not False and np.ndim(bins) == 1 and len(bins) >= 2:
+        window = (bins[0], bins[-1])  # given edges define the window
     if window is None:
         if x.size == 0:
             raise FitError("no masses given and no window; nothing to fit")
@@ -99,14 +107,55 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
     else:
         reason = "requested"
     if binned:
-        edges = (np.linspace(lo, hi, (DEFAULT_BINS if bins is None else int(bins)) + 1)
-                 if bins is None or np.ndim(bins) == 0 else np.asarray(bins, float))
-        h = MassHistogram.from_masses(x, w, edges=edges)
-        return FitData(True, reason, weighted, h.edges, h.weight_sum, h.weight_sq_sum, None, None,
-                       (lo, hi), float(h.weight_sum.sum()), "GeV", h)
+        h = MassHistogram.from_masses(x, w, edges=_edges(bins, lo, hi))
+        return FitData(True, reason, weighted, h.edges, h.weight_sum, h.weight_sq_sum, None,
+                       None, (lo, hi), float(h.weight_sum.sum()), "GeV", h)
     nb = int(np.clip(x.size // 20, 5, 100))
     gof = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
     return FitData(False, reason, weighted, None, None, None, x, w, (lo, hi), total, "GeV", gof)
+
+
+def _masses(data: Any, what: str) -> np.ndarray:
+    """A flat float array of masses (or weights), or a FitError saying what was given."""
+    if data is None or isinstance(data, (str, bytes)):
+        raise FitError(f"{what} must be an array of numbers (or a MassHistogram), got "
+                       f"{type(data).__name__}")
+    try:
+        a = np.asarray(data)
+        if np.iscomplexobj(a):
+            raise TypeError("complex")
+        return a.astype(float).ravel()
+    except (TypeError, ValueError):
+        raise FitError(f"{what} must be an array of real numbers, got "
+                       f"{type(data).__name__} with dtype {np.asarray(data).dtype}") from None
+
+
+def _edges(bins: Any, lo: float, hi: float) -> np.ndarray:
+    """Bin edges for a binned fit of masses in (lo, hi): a number of equal bins, or edges
+    increasing strictly from lo to hi."""
+    if bins is None:
+        return np.linspace(lo, hi, DEFAULT_BINS + 1)
+    if np.ndim(bins) == 0:
+        try:
+            nb = float(bins)
+        except (TypeError, ValueError):
+            nb = math.nan
+        if not (nb >= 1 and nb == int(nb)):
+            raise FitError(f"bins must be a positive whole number or an array of edges, got "
+                           f"{bins!r}")
+        return np.linspace(lo, hi, int(nb) + 1)
+    try:
+        e = np.asarray(bins, dtype=float)
+    except (TypeError, ValueError):
+        raise FitError(f"bins: edges must be numbers, got {bins!r}") from None
+    if e.ndim != 1 or e.size < 2 or not np.all(np.isfinite(e)) or np.any(np.diff(e) <= 0):
+        raise FitError("bins: edges must be a 1-d array of at least 2 finite numbers "
+                       "increasing strictly")
+    tol = 1e-9 * (hi - lo)
+    if abs(e[0] - lo) > tol or abs(e[-1] - hi) > tol:
+        raise FitError(f"bins: the edges run from {e[0]:g} to {e[-1]:g} but the fit window is "
+                       f"({lo:g}, {hi:g}); give edges spanning exactly the window")
+    return e
 
 
 def gof_binning(d: FitData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -26,6 +26,17 @@ from .poisson import MU_FLOOR, saturated_term, unbinned_nll
 __all__ = ["BinnedCost", "UnbinnedCost"]
 
 
+def _step_within(x: float, h: float, lo: float, hi: float) -> tuple[float, bool, bool]:
+    """A difference step ``h`` at ``x`` and which sides stay within ``[lo, hi]``; shrunk to
+    half the larger room when neither side fits (a huge error estimate on a bounded
+    parameter must not step outside)."""
+    up, dn = x + h <= hi, x - h >= lo
+    if not (up or dn):
+        h = 0.5 * max(hi - x, x - lo)
+        up, dn = x + h <= hi, x - h >= lo
+    return h, up, dn
+
+
 class _Cost:
     """Free-parameter vector <-> full vector, constraints, iminuit's call protocol."""
 
@@ -42,6 +53,27 @@ class _Cost:
         self._cons = [(row[int(i)], c) for i, c in constraints if int(i) in row]
         self._last: tuple[bytes, float, np.ndarray] | None = None
         self.ncall = 0
+
+    def _free_bounds(self, lower: Any, upper: Any) -> tuple[np.ndarray, np.ndarray]:
+        """Bounds of the free parameters: as given, else the model's (window-aware) ones,
+        never wider than a shape's own domain."""
+        pars = [self.model.parameters[i] for i in self.free]
+        own = self._shape_domain()
+        lo = np.array([p.lower for p in pars], float) if lower is None else np.asarray(lower,
+                                                                                      float)
+        hi = np.array([p.upper for p in pars], float) if upper is None else np.asarray(upper,
+                                                                                      float)
+        return np.maximum(lo, own[0]), np.minimum(hi, own[1])
+
+    def _shape_domain(self) -> tuple[np.ndarray, np.ndarray]:
+        lo = np.full(self.free.size, -np.inf)
+        hi = np.full(self.free.size, np.inf)
+        for shape, sl, _ in self.model.blocks:
+            for j, i in enumerate(range(sl.start, sl.stop)):
+                k = self._row.get(i)
+                if k is not None:
+                    lo[k], hi[k] = shape.parameters[j].lower, shape.parameters[j].upper
+        return lo, hi
 
     def expand(self, x: Sequence[float]) -> np.ndarray:
         v = self.full.copy()
@@ -172,13 +204,17 @@ class BinnedCost(_Cost):
 
     def observed_hessian(self, x: np.ndarray, steps: np.ndarray, lower: Any = None,
                 upper: Any = None) -> np.ndarray:
-        """Observed Hessian of the NLL at ``x`` (``lower``/``upper`` unused: the shape's own
-        bounds decide where differences must be one-sided):
+        """Observed Hessian of the NLL at ``x``:
         sum_i n~_i/mu_i^2 dmu dmu^T + sum_i (s_i - n~_i/mu_i) d^2mu, with d^2mu exact for
         yield pairs (0) and yield-shape pairs (dF/dtheta), and by differences of the
         analytic shape gradients (step ``steps``, central where the bounds allow) for
-        shape-shape pairs of one component."""
+        shape-shape pairs of one component.
+
+        The differences stay inside ``lower``/``upper`` (bounds of the free parameters; by
+        default the model's window-aware bounds): a step of a peak's mass out of the window
+        would leave no probability in it and make the bin fractions 0/0."""
         x = np.asarray(x, float)
+        lower, upper = self._free_bounds(lower, upper)
         jac = np.zeros((self.free.size, self.n.size))
         mu, blocks = self.expectation(x, jac)
         mu = np.maximum(mu, MU_FLOOR)
@@ -196,11 +232,10 @@ class BinnedCost(_Cost):
                     t = float(r @ g[j])
                     hess[ry, rj] += t
                     hess[rj, ry] += t
-                par = shape.parameters[j]
                 h = abs(float(steps[rj]))
                 if not (np.isfinite(h) and h > 0):
                     h = 1e-6 * max(abs(p[j]), 1.0)
-                up, dn = p[j] + h <= par.upper, p[j] - h >= par.lower
+                h, up, dn = _step_within(p[j], h, lower[rj], upper[rj])
                 q = list(p)
                 if up and dn:
                     q[j] = p[j] + h
@@ -267,6 +302,8 @@ class UnbinnedCost(_Cost):
         return mu, dens
 
     def _scores(self, dens, inv):
+        if not self.free.size:  # every parameter fixed: no scores
+            return np.zeros((0, inv.size))
         return np.array([np.zeros_like(inv) if dens[i] is None else (dens[i][0] * inv) * dens[i][1]
                          for i in self.free])
 
@@ -305,15 +342,14 @@ class UnbinnedCost(_Cost):
         of each parameter's error)."""
         x = np.asarray(x, float)
         n = x.size
-        lower = np.full(n, -np.inf) if lower is None else np.asarray(lower, float)
-        upper = np.full(n, np.inf) if upper is None else np.asarray(upper, float)
+        lower, upper = self._free_bounds(lower, upper)
         hess = np.empty((n, n))
         for i in range(n):
             h = abs(float(steps[i]))
             if not (np.isfinite(h) and h > 0):
                 h = 1e-6 * max(abs(x[i]), 1.0)
             hi, lo = x.copy(), x.copy()
-            up, dn = x[i] + h <= upper[i], x[i] - h >= lower[i]
+            h, up, dn = _step_within(x[i], h, lower[i], upper[i])
             if up and dn:
                 hi[i] += h
                 lo[i] -= h

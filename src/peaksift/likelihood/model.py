@@ -45,6 +45,8 @@ class Model:
 
         self.window = as_window(window)
         sig = signal if isinstance(signal, (list, tuple)) else [signal]
+        if not sig:
+            raise FitError("no signal shape given; name one, e.g. signal='gaussian'")
         self.signals: list[Shape] = [_shapes.get(s) for s in sig]
         self.background: Shape = _shapes.get(background)
         for s in self.signals:

@@ -120,8 +120,11 @@ class Gaussian(_Signal):
         return _phi((x - m) / s) / s
 
     def _primitive(self, x, p, window):
+        # -Phi(-z) = Phi(z) - 1 for a window above the peak: Phi(z) rounds to 1 there, its
+        # upper tail keeps every digit (a Z peak's tail in a window starting at 110 GeV)
         m, s = p
-        return special.ndtr((x - m) / s)
+        z = (x - m) / s
+        return np.where(np.asarray(m) < window[0], -special.ndtr(-z), special.ndtr(z))
 
     def _density_grad(self, x, p, window):
         m, s = p
@@ -145,12 +148,17 @@ class Gaussian(_Signal):
             x = np.clip(x, lo, hi)
         inv_s = 1.0 / s
         zl, zh = (lo - m) * inv_s, (hi - m) * inv_s
-        pl, ph = 0.5 * math.erfc(-zl / math.sqrt(2.0)), 0.5 * math.erfc(-zh / math.sqrt(2.0))
         fl = math.exp(-0.5 * zl * zl) / _SQRT2PI * inv_s
         fh = math.exp(-0.5 * zh * zh) / _SQRT2PI * inv_s
-        inv = 1.0 / (ph - pl)
         z = (x - m) * inv_s
-        c = (special.ndtr(z) - pl) * inv
+        if zl > 0:  # window above the peak: the upper tail, as in _primitive
+            pl, ph = -0.5 * math.erfc(zl / math.sqrt(2.0)), -0.5 * math.erfc(zh / math.sqrt(2.0))
+            prim = -special.ndtr(-z)
+        else:
+            pl, ph = 0.5 * math.erfc(-zl / math.sqrt(2.0)), 0.5 * math.erfc(-zh / math.sqrt(2.0))
+            prim = special.ndtr(z)
+        inv = 1.0 / (ph - pl)
+        c = (prim - pl) * inv
         f = np.exp(-0.5 * z * z) * (inv_s / _SQRT2PI)
         # dP/dm = -f, dP/ds = -f z at x, lo and hi
         dm = (fl - f) * inv - c * ((fl - fh) * inv)
@@ -164,7 +172,8 @@ class Gaussian(_Signal):
         m, s = float(params[0]), float(params[1])
         lo, hi = float(window[0]), float(window[1])
         zl, zh = (lo - m) / s, (hi - m) / s
-        z_norm = float(special.ndtr(zh) - special.ndtr(zl))
+        z_norm = float(special.ndtr(-zl) - special.ndtr(-zh) if zl > 0 else
+                       special.ndtr(zh) - special.ndtr(zl))  # the accurate tail
         pl, ph = math.exp(-0.5 * zl * zl) / _SQRT2PI, math.exp(-0.5 * zh * zh) / _SQRT2PI
         dz_m = -(ph - pl) / s / z_norm
         dz_s = -(ph * zh - pl * zl) / s / z_norm
