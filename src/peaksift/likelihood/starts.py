@@ -6,7 +6,7 @@ local maxima of a coarse profile-likelihood scan (signal and background yields p
 each mass on at most 100 bins, the background shape from a background-only fit), so a fit
 starts at every plausible peak, not only at the largest excess; :func:`peaksift.fitting.fit`
 then keeps the lowest minimum.  A local maximum far below the best one (see
-:func:`worth_trying`) is not a candidate: it cannot be the lowest minimum, and minimising
+:func:`worth_trying`) is not a candidate: in practice it is never the lowest minimum, and minimising
 it cost most of a fit's time on strong peaks.
 """
 
