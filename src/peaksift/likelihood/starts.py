@@ -1,11 +1,13 @@
 """Starting values for fits: the background from the sidebands, peak masses from a coarse
 likelihood scan of the window.
 
-:func:`fit_starts` yields full parameter vectors, best first.  The candidate masses are the
+:func:`fit_starts` yields starting points lazily, best first.  The candidate masses are the
 local maxima of a coarse profile-likelihood scan (signal and background yields profiled at
 each mass on at most 100 bins, the background shape from a background-only fit), so a fit
 starts at every plausible peak, not only at the largest excess; :func:`peaksift.fitting.fit`
-then keeps the lowest minimum.
+then keeps the lowest minimum.  A local maximum far below the best one (see
+:func:`worth_trying`) is not a candidate: in practice it is never the lowest minimum, and minimising
+it cost most of a fit's time on strong peaks.
 """
 
 from __future__ import annotations

@@ -124,7 +124,12 @@ class Gaussian(_Signal):
         # upper tail keeps every digit (a Z peak's tail in a window starting at 110 GeV)
         m, s = p
         z = (x - m) / s
-        return np.where(np.asarray(m) < window[0], -special.ndtr(-z), special.ndtr(z))
+        above = np.asarray(m) < window[0]
+        if not above.any():
+            return special.ndtr(z)
+        if above.all():
+            return -special.ndtr(-z)
+        return np.where(above, -special.ndtr(-z), special.ndtr(z))
 
     def _density_grad(self, x, p, window):
         m, s = p
