@@ -181,13 +181,24 @@ def fit(
                "parameters (widen the window or fix parameters)")
         best = (math.inf, None, cost, [why], s0[free_idx], cost(*s0[free_idx]), None, False)
         starts = iter(())
+    near = None  # (full vector, free x, nll, observed Hessian) of the best minimum so far
     for essential, make_start in starts:
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
-        s0 = make_start()
+        s0 = make_start(None if near is None else near[0])
         cost = make_cost(s0)
         try:
-            mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names)
+            mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names,
+                          stop=None if near is None else _joins(*near[1:]))
+            if mo.joined:  # on its way into the best minimum: nothing new to learn
+                tried.append(float(mo.fval))
+                calls += cost.ncall
+                continue
+            if best is not None and not (math.isfinite(mo.fval) and mo.fval < best[0] - 1e-9):
+                # not better: no errors needed (refine's Newton step only polishes by ~1e-9)
+                tried.append(float(mo.fval))
+                calls += cost.ncall
+                continue
             x, f, cov, posdef = refine(cost, mo, lo_f, hi_f)
         except _NUMERIC as exc:
             tried.append(math.nan)
@@ -203,12 +214,33 @@ def fit(
             problems.append("negative log-likelihood not finite at the minimum")
         if best is None or (math.isfinite(f) and f < best[0] - 1e-9):
             best = (f if math.isfinite(f) else math.inf, mo, cost, problems, x, f, cov, posdef)
+            if posdef and math.isfinite(f):
+                full = s0.copy()
+                full[free_idx] = x
+                near = (full, np.asarray(x, float), float(f), np.linalg.inv(cov))
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:
         free_cov = np.full((nfree, nfree), np.nan)
     return _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
                    problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
                    tuple(tried), calls)
+
+
+#: a start whose path comes within this squared distance (in units of the best minimum's
+#: errors, d^T H d) of the best minimum, no more than JOIN_NLL above it, is following that
+#: minimum: two minima that close would differ in NLL by less than ~0.01, below anything the
+#: fit reports, so the start is abandoned there (it saves most of the other-width starts)
+JOIN_DISTANCE = 0.02
+JOIN_NLL = 0.05
+
+
+def _joins(xb: np.ndarray, fb: float, hess: np.ndarray):
+    def stop(x: np.ndarray, f: float) -> bool:
+        if not f <= fb + JOIN_NLL:
+            return False
+        d = x - xb
+        return float(d @ hess @ d) < JOIN_DISTANCE
+    return stop
 
 
 def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):

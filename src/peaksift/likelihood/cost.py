@@ -124,7 +124,8 @@ class BinnedCost(_Cost):
                  constraints: Sequence[tuple[int, Constraint]], edges: np.ndarray,
                  n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None = None) -> None:
         super().__init__(model, full, free, constraints)
-        self.edges = np.asarray(edges, float)
+        self.edges = np.array(edges, float)
+        self.edges.flags.writeable = False  # shapes may keep per-edges work for this array
         self.mask = None if mask is None or np.all(mask) else np.asarray(mask, bool)
         m = slice(None) if self.mask is None else self.mask
         self.s = np.asarray(scale, float)[m]
@@ -138,12 +139,14 @@ class BinnedCost(_Cost):
             rows = [self._row.get(i, -1) for i in range(sl.start, sl.stop)]
             self._plan.append((shape, sl, iy, any(r >= 0 for r in rows), rows,
                                self._row.get(iy, -1)))
+
         self._jac = np.zeros((self.free.size, self.n.size))
         self._state: tuple | None = None
 
-    def _fractions(self, shape, p, need: bool):
-        if need:
-            f, g = shape.fractions_and_grad(self.edges, p, self.model.window)
+    def _fractions(self, shape, p, need: bool, rows):
+        if need:  # derivatives of the free parameters only (fixed ones are not differenced)
+            f, g = shape.fractions_and_grad(self.edges, p, self.model.window,
+                                            [r >= 0 for r in rows])
             if self.mask is not None:
                 f, g = f[self.mask], g[:, self.mask]
             return f, g
@@ -160,7 +163,7 @@ class BinnedCost(_Cost):
             if ry < 0 and y == 0.0:  # a component fixed at zero yield contributes nothing
                 continue
             p = [float(q) for q in v[sl]]
-            f, g = self._fractions(shape, p, need)
+            f, g = self._fractions(shape, p, need, rows)
             for j, r in enumerate(rows):
                 if r >= 0:
                     np.multiply(g[j], y, out=jac[r])
@@ -225,6 +228,7 @@ class BinnedCost(_Cost):
         for shape, p, y, g, rows, ry in blocks:
             if g is None:
                 continue
+            need = [r >= 0 for r in rows]
             for j, rj in enumerate(rows):
                 if rj < 0:
                     continue
@@ -239,13 +243,13 @@ class BinnedCost(_Cost):
                 q = list(p)
                 if up and dn:
                     q[j] = p[j] + h
-                    g2 = shape.fractions_and_grad(self.edges, q, window)[1]
+                    g2 = shape.fractions_and_grad(self.edges, q, window, need)[1]
                     q[j] = p[j] - h
-                    g1 = shape.fractions_and_grad(self.edges, q, window)[1]
+                    g1 = shape.fractions_and_grad(self.edges, q, window, need)[1]
                     width = 2.0 * h
                 else:  # one-sided next to a bound
                     q[j] = p[j] + (h if up else -h)
-                    g2 = shape.fractions_and_grad(self.edges, q, window)[1]
+                    g2 = shape.fractions_and_grad(self.edges, q, window, need)[1]
                     g1 = None
                     width = h if up else -h
                 if self.mask is not None:
@@ -275,6 +279,7 @@ class UnbinnedCost(_Cost):
         self.w = None if w is None else np.asarray(w, float)
         fr = set(self.free.tolist())
         self._need = [any(i in fr for i in range(sl.start, sl.stop)) for _, sl, _ in model.blocks]
+        self._flags = [[i in fr for i in range(sl.start, sl.stop)] for _, sl, _ in model.blocks]
         self._yields = [iy for _, _, iy in model.blocks]
 
     def _chunks(self):
@@ -288,11 +293,11 @@ class UnbinnedCost(_Cost):
         model = self.model
         mu = None
         dens: list[Any] = [None] * v.size
-        for (shape, sl, iy), need in zip(model.blocks, self._need):
+        for (shape, sl, iy), need, flags in zip(model.blocks, self._need, self._flags):
             p = [float(q) for q in v[sl]]
             y = float(v[iy])
             if need:
-                f, g = shape.pdf_and_grad(x, p, model.window)
+                f, g = shape.pdf_and_grad(x, p, model.window, flags)
                 for j, i in enumerate(range(sl.start, sl.stop)):
                     dens[i] = (y, g[j])
             else:

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -42,6 +43,8 @@ class Minimum:
     errors: np.ndarray
     method: str
     minuit: Any = None  # the Minuit object when MIGRAD ran
+    #: stopped early because ``stop`` said the path had joined a minimum found before
+    joined: bool = False
 
 
 def new_minuit(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
@@ -75,18 +78,28 @@ def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
     return step if np.all(np.isfinite(step)) else None
 
 
+class Joined(Exception):
+    """Raised inside :func:`fisher_scoring` when its ``stop`` callback fires."""
+
+
 def fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-                   max_iter: int = 60, edm_goal: float = 1e-7):
+                   max_iter: int = 60, edm_goal: float = 1e-7,
+                   stop: Callable[[np.ndarray, float], bool] | None = None):
     """Damped Fisher scoring (Levenberg-Marquardt on the information matrix I returned by
     ``cost.value_grad_info``).  Returns ``(x, f, converged, I^-1 or None)``; converged when
-    EDM = g^T I^-1 g / 2 < ``edm_goal`` (read off the undamped Newton step)."""
+    EDM = g^T I^-1 g / 2 < ``edm_goal`` (read off the undamped Newton step).
+
+    ``stop(x, f)``, called at every accepted point, ends the minimisation by raising
+    :class:`Joined` (the path has reached a minimum already known to the caller)."""
     x = np.clip(np.asarray(x0, float), lower, upper)
     lam = 0.0  # undamped first: from good starts Newton steps are accepted
     stalled = 0
     f, g, info = cost.value_grad_info(x)
-    if not (np.isfinite(f) and np.all(np.isfinite(g)) and np.all(np.isfinite(info))):
+    if not (math.isfinite(f) and np.isfinite(g.sum()) and np.isfinite(info.sum())):
         return x, f, False, None
     for _ in range(max_iter):
+        if stop is not None and stop(x, f):
+            raise Joined((x, f))
         for _ in range(14):
             a = info if lam == 0.0 else info + lam * np.diag(info.diagonal())
             step = _solve(a, g)
@@ -102,8 +115,8 @@ def fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper: np.ndarr
                     return x, f, posdef, cov if posdef else None
             xn = np.clip(x + step, lower, upper)
             fn, gn, infon = cost.value_grad_info(xn)
-            if (np.isfinite(fn) and fn <= f + 1e-12 * abs(f) and np.all(np.isfinite(gn))
-                    and np.all(np.isfinite(infon))):
+            if (math.isfinite(fn) and fn <= f + 1e-12 * abs(f) and np.isfinite(gn.sum())
+                    and np.isfinite(infon.sum())):
                 stalled = stalled + 1 if f - fn < 1e-10 * max(1.0, abs(f)) else 0
                 x, f, g, info = xn, fn, gn, infon
                 lam = 0.0 if lam <= 1e-3 else lam / 10.0
@@ -117,12 +130,22 @@ def fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper: np.ndarr
 
 
 def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-             names: list[str], edm_goal: float = 1e-7) -> Minimum:
-    """Fisher scoring first (few calls), MIGRAD when that does not converge."""
+             names: list[str], edm_goal: float = 1e-7,
+             stop: Callable[[np.ndarray, float], bool] | None = None) -> Minimum:
+    """Fisher scoring first (few calls), MIGRAD when that does not converge.
+
+    ``stop(x, f)`` (optional) is asked at every point Fisher scoring accepts; when it says
+    True the minimisation ends there and the :class:`Minimum` has ``joined=True`` (used by
+    the free fit to abandon a start whose path has run into a minimum it already has)."""
     start = np.clip(np.asarray(start, float), lower, upper)
     with np.errstate(all="ignore"):
         try:
-            x, f, ok, inv = fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal)
+            x, f, ok, inv = fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal,
+                                           stop=stop)
+        except Joined as j:
+            xj, fj = j.args[0]
+            return Minimum(xj, float(fj), False, False, np.full(xj.size, np.nan),
+                           "fisher-scoring", joined=True)
         except (ArithmeticError, np.linalg.LinAlgError, ValueError):
             ok, inv = False, None
     if ok:

@@ -102,11 +102,12 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                base: np.ndarray, is_fixed: np.ndarray, given: dict[str, float],
                lower: np.ndarray, upper: np.ndarray, total: float,
                retries: int) -> Iterator[tuple[bool, Callable[[], np.ndarray]]]:
-    """Starting points, best first, as ``(essential, make)`` with ``make()`` giving the full
-    parameter vector: background from the sidebands of each candidate peak, the peak at each
-    local maximum of the coarse likelihood scan (essential: every one is minimised), then
-    other widths at the best candidate (essential too when a width is free to vary, else
-    tried only while no valid fit is found).  ``given`` holds the parameters whose starts
+    """Starting points, best first, as ``(essential, make)`` with ``make(near=None)`` giving
+    the full parameter vector: background from the sidebands of each candidate peak, the peak
+    at each local maximum of the coarse likelihood scan (essential: every one is minimised),
+    then other widths at the best candidate (essential too when a width is free to vary, else
+    tried only while no valid fit is found).  Given ``near`` (the full vector of the best
+    minimum so far), an other-width start is that minimum with its free widths scaled.  ``given`` holds the parameters whose starts
     (or fixed values) the caller set.
 
     Lazy: the coarse scan runs at the first step and each start (a sideband fit) only when
@@ -115,7 +116,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     with np.errstate(all="ignore"):
         first = _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper)
     if first is None:  # no free signal: the background-only start (and the given one)
-        def background_only() -> np.ndarray:
+        def background_only(near: np.ndarray | None = None) -> np.ndarray:
             with np.errstate(all="ignore"):
                 vb = _background_or_base(model, edges, n, scale, base, is_fixed, given,
                                          lower, upper)
@@ -123,7 +124,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
 
         yield True, background_only
         if retries > 0:
-            yield False, lambda: np.where(is_fixed, base, np.clip(base, lower, upper))
+            yield False, lambda near=None: np.where(is_fixed, base, np.clip(base, lower, upper))
         return
     vb, c, masses, i_m, i_s, bkg_given = first
     candidates = [(mm, 1.0, True) for mm in masses]
@@ -132,8 +133,22 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     # lower one), so the other widths are minimised too whenever a width can vary.
     vary = any(model.parameter_names[i] not in given for i in i_s)
     candidates += [(masses[0], f, vary) for f in (0.4, 2.5, 1.5)[:retries]]
+    free_widths = [i for i in i_s if model.parameter_names[i] not in given]
+    sl0 = model.blocks[0][1]
+    other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
+                   and model.parameter_names[i] not in given]
     for mm, factor, essential in candidates:
-        def make(mm: float = mm, factor: float = factor) -> np.ndarray:
+        def make(near: np.ndarray | None = None, mm: float = mm,
+                 factor: float = factor) -> np.ndarray:
+            if near is not None and factor != 1.0 and free_widths:
+                # another width at the best minimum so far: that minimum with its widths
+                # scaled (background and yields already fitted), not a fresh sideband fit
+                s = np.asarray(near, float).copy()
+                for i in free_widths:
+                    s[i] = np.clip(s[i] * factor, lower[i], upper[i])
+                for i in other_shape:  # tails etc. from their own starts, as a fresh start
+                    s[i] = np.clip(base[i], lower[i], upper[i])
+                return s
             with np.errstate(all="ignore"):
                 return _one_start(model, edges, n, scale, base, vb, c, mm, factor, i_m, i_s,
                                   given, is_fixed, lower, upper, total, bkg_given)

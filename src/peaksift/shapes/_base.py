@@ -228,8 +228,12 @@ class Shape:
         """
         return np.maximum(np.diff(self.cdf(edges, params, window), axis=-1), 0.0)
 
-    def grad_pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float]) -> np.ndarray:
-        """Derivatives of :meth:`pdf` with respect to each parameter, stacked on axis 0."""
+    def grad_pdf(self, x: Any, params: Sequence[Any], window: tuple[float, float],
+                 need: Sequence[bool] | None = None) -> np.ndarray:
+        """Derivatives of :meth:`pdf` with respect to each parameter, stacked on axis 0.
+
+        ``need`` (one flag per parameter) may mark derivatives the caller does not use
+        (fixed parameters): finite differences skip them and leave zeros there."""
         lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         x = np.asarray(x, dtype=float)
@@ -246,7 +250,7 @@ class Shape:
                 out = [np.where(inside, gdi / z - d * gzi / z**2, 0.0) for gdi, gzi in zip(gd, gz)]
                 return np.array(out)
         return _finite_difference(lambda q: self.pdf(x, q, window), p, self.parameters,
-                                  self._difference_scales(p))
+                                  self._difference_scales(p), need)
 
     def grad_bin_fractions(self, edges: Any, params: Sequence[Any],
                            window: tuple[float, float]) -> np.ndarray:
@@ -258,15 +262,22 @@ class Shape:
         return self.fractions_and_grad(edges, params, window)[1]
 
     def fractions_and_grad(self, edges: Any, params: Sequence[Any],
-                           window: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
-        """``(bin_fractions, grad_bin_fractions)`` computed together (shared work)."""
+                           window: tuple[float, float],
+                           need: Sequence[bool] | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """``(bin_fractions, grad_bin_fractions)`` computed together (shared work).
+
+        ``need`` (one flag per parameter, default all) may mark derivatives the caller
+        does not use (fixed parameters): shapes differentiated by finite differences skip
+        them and leave zeros in their rows (a Crystal Ball with fixed tails then costs 2
+        differences instead of 6); analytic gradients are computed whole."""
         lo, hi = as_window(window)
         p = self._params(params, len(self.parameters), self.name)
         edges = np.asarray(edges, dtype=float)
         if self._primitive_grad is None:
             frac = self.bin_fractions(edges, p, window)
             grad = _finite_difference(lambda q: self.bin_fractions(edges, q, window), p,
-                                      self.parameters, self._difference_scales(p))
+                                      self.parameters, self._difference_scales(p), need,
+                                      frac)
             return frac, grad
         w = (lo, hi)
         x = np.clip(edges, lo, hi)
@@ -292,10 +303,12 @@ class Shape:
         return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
 
     def pdf_and_grad(self, x: np.ndarray, params: Sequence[float],
-                     window: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+                     window: tuple[float, float],
+                     need: Sequence[bool] | None = None) -> tuple[np.ndarray, np.ndarray]:
         """``(pdf, grad_pdf)`` for masses known to lie inside the window (not checked) and
-        scalar parameters; the unbinned fit's hot path (shapes may fuse the work)."""
-        return self.pdf(x, params, window), self.grad_pdf(x, params, window)
+        scalar parameters; the unbinned fit's hot path (shapes may fuse the work).
+        ``need`` as in :meth:`fractions_and_grad`."""
+        return self.pdf(x, params, window), self.grad_pdf(x, params, window, need)
 
     # ----------------------------------------------------- peak description
     def location(self, params: Sequence[Any]) -> float:
@@ -315,9 +328,19 @@ class Shape:
 
 
 def _finite_difference(func, p: Sequence[Any], pars: Sequence[Parameter],
-                       scales: Sequence[Any]) -> np.ndarray:
+                       scales: Sequence[Any], need: Sequence[bool] | None = None,
+                       at: Any = None) -> np.ndarray:
+    """Central differences (one-sided at a bound) of ``func`` in each parameter; rows whose
+    ``need`` flag is False are zeros (shaped like ``at``, the value at ``p``, if given)."""
     out = []
+    zero = None
     for i, par in enumerate(pars):
+        if need is not None and not need[i]:
+            if zero is None:
+                zero = np.zeros_like(np.asarray(func(list(p)) if at is None else at,
+                                                dtype=float))
+            out.append(zero)
+            continue
         v = np.asarray(p[i], dtype=float)
         h = 1e-5 * np.asarray(scales[i], dtype=float)
         up = v + h

@@ -104,9 +104,9 @@ class ExpPoly(_Background):
         series = 0.5 * (t2 - 1.0) + b * (t2 * t + 1.0) / 3.0 + b * b * (t2 * t2 - 1.0) / 8.0
         return [h * np.where(small, series, exact)]
 
-    def fractions_and_grad(self, edges, params, window):
+    def fractions_and_grad(self, edges, params, window, need=None):
         if self.order != 1 or np.ndim(params[0]) or abs(float(params[0])) < 1e-3:
-            return super().fractions_and_grad(edges, params, window)
+            return super().fractions_and_grad(edges, params, window, need)
         b = float(params[0])
         lo, hi = float(window[0]), float(window[1])
         x = np.asarray(edges, dtype=float)
@@ -125,9 +125,9 @@ class ExpPoly(_Background):
         grad = (gx - c * ghi) * inv_z
         return c[1:] - c[:-1], (grad[1:] - grad[:-1])[None, :]
 
-    def pdf_and_grad(self, x, params, window):
+    def pdf_and_grad(self, x, params, window, need=None):
         if self.order != 1:
-            return super().pdf_and_grad(x, params, window)
+            return super().pdf_and_grad(x, params, window, need)
         b = float(params[0])
         ends = np.array([float(window[0]), float(window[1])])
         pe = self._primitive(ends, [b], window)
@@ -253,7 +253,7 @@ class PowerLaw(_Background):
         series = 0.5 * lx2 + a * lx2 * lx / 3.0 + a * a * lx2 * lx2 / 8.0
         return [-c * np.where(small, series, exact)]
 
-    def fractions_and_grad(self, edges, params, window):
+    def fractions_and_grad(self, edges, params, window, need=None):
         r"""Fast path for one parameter set: with :math:`L = \ln(x/c)`, :math:`a = 1-k` and
         :math:`q = e^{aL}` the CDF is :math:`C = (q - q_{lo})/(q_{hi} - q_{lo})` and
 
@@ -265,17 +265,14 @@ class PowerLaw(_Background):
         finite.  Near k = 1 (q nearly constant) the series of the general path is used."""
         lo, hi = float(window[0]), float(window[1])
         if np.ndim(params[0]) or not lo > 0:
-            return super().fractions_and_grad(edges, params, window)
+            return super().fractions_and_grad(edges, params, window, need)
         a = 1.0 - float(params[0])
         c = 0.5 * (lo + hi)
         l_lo, l_hi = math.log(lo / c), math.log(hi / c)
         if abs(a) * (l_hi - l_lo) < 1e-3:
-            return super().fractions_and_grad(edges, params, window)
-        x = np.asarray(edges, dtype=float)
-        if x[0] < lo or x[-1] > hi:
-            x = np.clip(x, lo, hi)
+            return super().fractions_and_grad(edges, params, window, need)
+        lx = self._log_edges(edges, lo, hi, c)
         top = max(a * l_lo, a * l_hi)
-        lx = np.log(x * (1.0 / c))
         q = np.exp(a * lx - top)
         q_lo, q_hi = math.exp(a * l_lo - top), math.exp(a * l_hi - top)
         inv = 1.0 / (q_hi - q_lo)
@@ -283,6 +280,21 @@ class PowerLaw(_Background):
         grad = ((l_lo * q_lo - lx * q) + cdf * (l_hi * q_hi - l_lo * q_lo)) * inv
         return cdf[1:] - cdf[:-1], (grad[1:] - grad[:-1])[None, :]
 
+
+    def _log_edges(self, edges: Any, lo: float, hi: float, c: float) -> np.ndarray:
+        """ln(x/c) of the clipped edges, kept for the last edges array seen: a fit asks
+        for the same edges at every step."""
+        key = (id(edges), lo, hi)
+        hit = getattr(self, "_lx", None)
+        if hit is not None and hit[0] == key and hit[1] is edges:
+            return hit[2]
+        x = np.asarray(edges, dtype=float)
+        if x[0] < lo or x[-1] > hi:
+            x = np.clip(x, lo, hi)
+        lx = np.log(x * (1.0 / c))
+        if isinstance(edges, np.ndarray) and not edges.flags.writeable:
+            self._lx = (key, edges, lx)
+        return lx
 
 
 class Dijet(_Background):

@@ -28,6 +28,8 @@ __all__ = ["BreitWigner", "CrystalBall", "Gaussian", "Voigt"]
 
 _SQRT2PI = math.sqrt(2.0 * math.pi)
 _NAN = math.nan
+#: |z| beyond which exp(-z^2/2) and the normal tail integral underflow to exactly 0.0
+_CUT = 40.0
 
 
 def _phi(z: np.ndarray) -> np.ndarray:
@@ -143,14 +145,28 @@ class Gaussian(_Signal):
         f = _phi(z) / s
         return [-f, -f * z]
 
-    def fractions_and_grad(self, edges, params, window):
+    def fractions_and_grad(self, edges, params, window, need=None):
         if np.ndim(params[0]) or np.ndim(params[1]):
-            return super().fractions_and_grad(edges, params, window)
+            return super().fractions_and_grad(edges, params, window, need)
         m, s = float(params[0]), float(params[1])
         lo, hi = float(window[0]), float(window[1])
         x = np.asarray(edges, dtype=float)
         if x[0] < lo or x[-1] > hi:
             x = np.clip(x, lo, hi)
+        # Beyond 40 sigma the density and both tails of the normal CDF are exactly 0.0 (or
+        # the CDF exactly 1.0) in double precision, so every bin with both edges out there
+        # has fraction and derivatives exactly 0: compute only the edges in between (plus
+        # one outside on each side).  A narrow peak in a wide window costs its own bins.
+        k0 = max(int(np.searchsorted(x, m - _CUT * s, side="right")) - 1, 0)
+        k1 = min(int(np.searchsorted(x, m + _CUT * s, side="left")) + 1, x.size)
+        if k0 > 0 or k1 < x.size:
+            frac = np.zeros(x.size - 1)
+            grad = np.zeros((2, x.size - 1))
+            if k1 - k0 >= 2:
+                fr, gr = self.fractions_and_grad(x[k0:k1], params, window)
+                frac[k0:k1 - 1] = fr
+                grad[:, k0:k1 - 1] = gr
+            return frac, grad
         inv_s = 1.0 / s
         zl, zh = (lo - m) * inv_s, (hi - m) * inv_s
         fl = math.exp(-0.5 * zl * zl) / _SQRT2PI * inv_s
@@ -173,7 +189,7 @@ class Gaussian(_Signal):
         np.subtract(ds[1:], ds[:-1], out=out[1])
         return c[1:] - c[:-1], out
 
-    def pdf_and_grad(self, x, params, window):
+    def pdf_and_grad(self, x, params, window, need=None):
         m, s = float(params[0]), float(params[1])
         lo, hi = float(window[0]), float(window[1])
         zl, zh = (lo - m) / s, (hi - m) / s
