@@ -24,6 +24,7 @@ from .errors import (
     ExecutionError,
     FitError,
     InputError,
+    OutputError,
     PeaksiftError,
 )
 
@@ -66,6 +67,7 @@ __all__ = [
     "InputError",
     "LimitResult",
     "MassHistogram",
+    "OutputError",
     "PeaksiftError",
     "Resolution",
     "ScanResult",

@@ -10,7 +10,8 @@ Sub-commands::
                                     at a chosen mass; --out DIR writes fit.json and fit.png
 
 A user's mistake (a :class:`~peaksift.errors.PeaksiftError`) prints one line on stderr and
-exits with status 2; no traceback.
+exits with status 2; no traceback.  Ctrl-C exits with 130 and SIGTERM with 143, each after
+removing the run's unfinished outputs and stopping its worker processes.
 """
 
 from __future__ import annotations
@@ -265,16 +266,24 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from ._processes import Terminated, sigterm_as_interrupt
+
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        rc = int(args.handler(args) or 0)
-        if args.command == "demo" and rc == 0:
-            _demo_config_hook(args)
+        with sigterm_as_interrupt():
+            rc = int(args.handler(args) or 0)
+            if args.command == "demo" and rc == 0:
+                _demo_config_hook(args)
         return rc
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
+    except Terminated:
+        # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
+        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
+              file=sys.stderr)
+        return 143
     except KeyboardInterrupt:
         print("peaksift: interrupted; no outputs were written", file=sys.stderr)
         return 130
