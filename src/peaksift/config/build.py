@@ -15,6 +15,7 @@ if sys.version_info >= (3, 11):  # pragma: no cover - version switch
     import tomllib as _toml
 else:  # pragma: no cover
     import tomli as _toml
+from .plan import check_bins, check_scan_plan
 from .schema import _REQUIRED, _TOP, SCHEMA
 from .sections import (
     BlindingConfig,
@@ -199,6 +200,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                 f"window [{lo:g}, {hi:g}] into whole bins ({n:.4g}); change the width or window"
             )
         sp["bins"] = round(n)
+    check_bins(sp, where)
 
     given = [k for k in ("relative", "absolute", "table") if res[k] is not None]
     if len(given) != 1:
@@ -235,6 +237,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                               f"[{lo:g}, {hi:g}]; the scan must stay inside the fit window")
     if not s1 > s0:
         raise ConfigError(f"{where}: scan.stop ({s1:g}) must be above scan.start ({s0:g})")
+    check_scan_plan(ResolutionConfig(**res).resolution, res, sp, sc, where)
 
     md = vals["model"]
     _check_shape("model.signal", md["signal"], where, "signal", md["signal_options"])
