@@ -46,8 +46,8 @@ _EXPORTS: dict[str, str] = {
     "ScanResult": "peaksift.stats.scan",
     "LimitResult": "peaksift.stats.limits",
     "upper_limits": "peaksift.stats.limits",
-    "run_search": "peaksift.search",
-    "SearchResult": "peaksift.search",
+    "run_search": "peaksift.search.run",
+    "SearchResult": "peaksift.search.result",
     "load_config": "peaksift.config.build",
 }
 
