@@ -40,6 +40,7 @@ def run_search(
     seed: int | None = None,
     engine: str | None = None,
     progress: bool = False,
+    share_folder: bool = False,
 ) -> SearchResult:
     """Run the whole search described by a configuration.
 
@@ -57,6 +58,10 @@ def run_search(
         Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
     progress : bool
         Show progress bars (reading; toys).
+    share_folder : bool
+        Write into an output folder that holds files peaksift did not write (they are never
+        touched; a file of the same name as one of ours is refused).  Without it such a
+        folder is refused before the run.
 
     Returns
     -------
@@ -72,7 +77,7 @@ def run_search(
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
-    with _staged(target) as stage:
+    with _staged(target, "search", share_folder) as stage:
         res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
                       stage=stage, target=target)
     return res
