@@ -14,9 +14,9 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError, FitError
-from ..stats.bounds import MAX_BINS, check_plan, check_widths, default_grid_size
+from ..stats.bounds import MAX_BINS, check_fit_bins, check_plan, check_widths, default_grid_size
 
-__all__ = ["check_bins", "check_scan_plan"]
+__all__ = ["check_background_bins", "check_bins", "check_scan_plan"]
 
 
 def check_bins(spectrum: Mapping[str, Any], where: str) -> None:
@@ -65,5 +65,32 @@ def check_scan_plan(resolution: Any, res_keys: Mapping[str, Any], spectrum: Mapp
         else "spectrum.bins"
     try:
         check_plan(n, spectrum["bins"], masses_key=key, bins_key=bins_key)
+    except FitError as exc:
+        raise ConfigError(f"{where}: {exc}") from None
+
+
+def check_background_bins(model: Mapping[str, Any], spectrum: Mapping[str, Any],
+                          blinding: Mapping[str, Any], where: str) -> None:
+    """Enough bins outside the blinded window (when blinding is on) for the background fit:
+    the scan's own rule (:func:`~peaksift.stats.bounds.check_fit_bins`), applied before
+    any file is read."""
+    from .. import shapes
+    from ..blinding import blinded_bins
+
+    try:
+        n_par = len(shapes.get(model["background"], **dict(model["background_options"]))
+                    .parameters)
+    except Exception:  # noqa: BLE001 - a bad shape was reported by its own check
+        return
+    lo, hi = spectrum["window"]
+    edges = np.linspace(lo, hi, int(spectrum["bins"]) + 1)
+    hidden = 0
+    if blinding["enabled"] and blinding["window"] is not None:
+        hidden = int(np.count_nonzero(blinded_bins(edges, tuple(blinding["window"]))))
+    bins_key = "spectrum.bin_width" if spectrum.get("bin_width") is not None \
+        else "spectrum.bins"
+    try:
+        check_fit_bins(edges.size - 1 - hidden, n_par, n_blinded=hidden, bins_key=bins_key,
+                       blind_key="blinding.window")
     except FitError as exc:
         raise ConfigError(f"{where}: {exc}") from None

@@ -17,6 +17,7 @@ from .common import (
     _collect,
     _fill,
     _require_candidates,
+    _require_sidebands,
     _save_spectrum,
     _scan_masses,
     _scan_signal_name,
@@ -99,6 +100,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     blind_window = tuple(cfg.blinding.window) if blind["active"] else None
     if blind_window is not None:  # nothing downstream sees the blinded bins' contents
         hist = _blinded_copy(hist, blind_window)
+        _require_sidebands(cfg, hist)
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)

@@ -10,6 +10,7 @@ refuse such plans before any work, with the same rules for :func:`peaksift.scan`
 * :func:`check_plan`        -- a number of hypotheses and bins against the ceilings.
 * :func:`check_widths`      -- resolution sigma and natural width against the window.
 * :func:`default_grid_size` -- how many hypotheses half a local sigma apart a range holds.
+* :func:`check_fit_bins`    -- enough bins outside any blinded range to fit the background.
 """
 
 from __future__ import annotations
@@ -20,8 +21,8 @@ import numpy as np
 
 from ..errors import FitError
 
-__all__ = ["MAX_BINS", "MAX_HYPOTHESES", "MAX_SCAN_CELLS", "MAX_WIDTH_FRACTION", "check_plan",
-           "check_widths", "default_grid_size"]
+__all__ = ["MAX_BINS", "MAX_HYPOTHESES", "MAX_SCAN_CELLS", "MAX_WIDTH_FRACTION", "SPARE_BINS",
+           "check_fit_bins", "check_plan", "check_widths", "default_grid_size"]
 
 #: most mass hypotheses one scan may hold (a scan costs about 1 ms per hypothesis and
 #: several background-only toys repeat it)
@@ -35,6 +36,9 @@ MAX_SCAN_CELLS = 25_000_000
 #: peak would not fit in the window, the background could not be told from it, and the
 #: scan's limits would count signal that lies outside the window
 MAX_WIDTH_FRACTION = 0.5
+#: bins beyond the background's parameter count the scan needs (the background yield and
+#: the signal yield, and one degree of freedom left to judge the fit)
+SPARE_BINS = 3
 
 
 def _key(what: str, default: str) -> str:
@@ -92,3 +96,19 @@ def default_grid_size(sigma_of: Callable[[np.ndarray], np.ndarray], start: float
         return float("inf")
     f = 2.0 / s
     return float(np.sum(0.5 * (f[1:] + f[:-1]) * np.diff(m))) + 1.0
+
+
+def check_fit_bins(n_used: int, n_background_parameters: int, *, n_blinded: int = 0,
+                   bins_key: str = "", blind_key: str = "") -> None:
+    """Refuse fewer than ``n_background_parameters + SPARE_BINS`` bins to fit: with
+    ``n_blinded`` > 0 the message blames the blinded range, otherwise the bin count."""
+    need = int(n_background_parameters) + SPARE_BINS
+    if n_used >= need:
+        return
+    if n_blinded:
+        raise FitError(f"{_key(blind_key, 'blind')}: only {n_used} bin(s) lie outside the "
+                       f"blinded range ({n_blinded} hidden), the background fit needs at least "
+                       f"{need}; narrow the blinded range, widen the window or use finer bins")
+    raise FitError(f"{_key(bins_key, 'bins')}: {n_used} bin(s) in the window, the background "
+                   f"fit needs at least {need} ({n_background_parameters} background "
+                   f"parameter(s) + {SPARE_BINS}); use more bins")

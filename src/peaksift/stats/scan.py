@@ -39,7 +39,7 @@ from ..errors import DataWarning, FitError, PeaksiftError
 from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 from ..resolution import check_resolved, resolution_from
 from . import lee
-from .bounds import check_plan, check_widths
+from .bounds import check_fit_bins, check_plan, check_widths
 from .significance import p_from_q0, z_from_q0
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background, profile_signal, run_toys
 
@@ -301,8 +301,10 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                  None if gamma is None else float(np.max(gamma)))
     blinded = blinded_bins(spec.edges, blind)
     used = np.flatnonzero(~blinded)
-    if used.size < bkg.parameters.__len__() + 3:
-        raise FitError("scan: too few bins outside the blinded range to fit the background")
+    try:
+        check_fit_bins(used.size, len(bkg.parameters), n_blinded=int(blinded.sum()))
+    except FitError as exc:
+        raise FitError(f"scan: {exc}") from None
     blinded_mass = np.zeros(m_arr.size, bool)
     if blind is not None:
         blinded_mass = (m_arr >= float(blind[0])) & (m_arr <= float(blind[1]))
