@@ -109,8 +109,17 @@ def _summary_text(d: Mapping[str, Any]) -> str:
             + " (see the report)"))
     if "outputs" in d:
         lines.append(_row("outputs", str(part(d, "outputs").get("dir"))))
+    _doubt_lines(lines, d)
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _doubt_lines(lines: list[str], d: Mapping[str, Any]) -> None:
+    """One WARNING line per doubt results.json lists (:mod:`peaksift.search.doubts`); the
+    invalid main fit already has its ``fit status`` line."""
+    for w in d.get("warnings") or []:
+        if isinstance(w, Mapping) and w.get("topic") != "fit":
+            lines.append(f"  WARNING: {w.get('message')}")
 
 
 def _fit_lines(lines: list[str], fit: dict) -> None:

@@ -283,6 +283,7 @@ def _blinding(cfg: Config, unblind: bool) -> dict[str, Any]:
 def _require_candidates(cfg: Config, col: Any, hist: Any) -> None:
     """Stop with a message saying why the fit window is empty: no events, or the selection."""
     lo, hi = cfg.spectrum.window
+    _require_finite_weights(cfg, col, hist)
     if hist.total() > 0:
         return
     if int(col.events_read) == 0:
@@ -328,3 +329,19 @@ def _require_sidebands(cfg: Config, hist: Any) -> None:
         f"{_where(cfg)}: blinding.window [{b0:g}, {b1:g}] hides every candidate in the fit "
         f"window [{lo:g}, {hi:g}] GeV: the sidebands outside it are empty, so the background "
         "cannot be fitted; narrow blinding.window or widen spectrum.window")
+
+
+def _require_finite_weights(cfg: Config, col: Any, hist: Any) -> None:
+    """Weights so large that their sums (or sums of squares, the variances) overflow make
+    every fit meaningless: say so, with the largest weight, instead of a fit failure."""
+    sums = np.concatenate([np.asarray(hist.weight_sum, float),
+                           np.asarray(hist.weight_sq_sum, float)])
+    if np.all(np.isfinite(sums)):
+        return
+    w = np.asarray(col.window_weight, dtype=float)
+    big = float(np.max(np.abs(w))) if w.size else float("nan")
+    raise InputError(
+        f"{_where(cfg)}: the per-event weights overflow the spectrum's sums (largest |weight| "
+        f"in the window {big:.3g}; the sums of squared weights exceed the floating-point "
+        "range): rescale the 'weight' column (e.g. to weights near 1), or set "
+        "input.weights = false")

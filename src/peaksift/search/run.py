@@ -287,6 +287,8 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "background_shape": c.background,
         "width_fixed_to_table": bool(fixed),
         "valid": bool(d.get("valid")),
+        "problems": list(d.get("problems") or []),
+        "gof": d.get("gof"),
         "fitted_mass": {"value": m, "error": e},
         "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),
