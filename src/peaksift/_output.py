@@ -160,6 +160,13 @@ class OutputFolder:
     def _check_existing(self, share: bool, names: list[str]) -> None:
         t = self.target
         self._clear_stale_staging()
+        for n in names:  # a folder (or link) where one of our files goes cannot be replaced
+            p = t / n.rstrip("/")
+            if p.is_symlink() or (p.exists() and p.is_dir() != n.endswith("/")):
+                kind = "link" if p.is_symlink() else "folder" if p.is_dir() else "file"
+                raise OutputError(f"cannot write {str(p)!r}: a {kind} of that name is in the "
+                                  "way; move it away or choose another output folder; nothing "
+                                  "was written")
         manifest = _read_manifest(t)
         self.old = manifest or {}
         foreign = sorted(n for n in _entries(t) if n not in self.old
