@@ -27,6 +27,7 @@ from __future__ import annotations
 import contextlib
 import datetime as _dt
 import errno
+import itertools
 import json
 import os
 import shutil
@@ -99,8 +100,12 @@ def _entries(folder: Path) -> Iterator[str]:
                 yield rel
 
 
+#: foreign names a refusal quotes
+_NAMED = 3
+
+
 def _short(names: list[str]) -> str:
-    return ", ".join(names[:3]) + (f" and {len(names) - 3} more" if len(names) > 3 else "")
+    return ", ".join(names[:_NAMED]) + (" and more" if len(names) > _NAMED else "")
 
 
 class OutputFolder:
@@ -169,20 +174,29 @@ class OutputFolder:
                                   "was written")
         manifest = _read_manifest(t)
         self.old = manifest or {}
-        foreign = sorted(n for n in _entries(t) if n not in self.old
-                         and not _own_temporary(n, self.old))
-        if not foreign:
-            return
-        why = ("its peaksift-manifest.json cannot be read, so every file counts as not "
-               "peaksift's" if (t / MANIFEST_NAME).exists() and manifest is None else "")
+
+        def foreign(entries: Iterable[str]) -> list[str]:
+            # lazily, and at most a few: an --out at a large tree must not be walked whole
+            found = (n for n in entries if n not in self.old and not _own_temporary(n, self.old))
+            return sorted(itertools.islice(found, _NAMED + 1))
+
         if not share:
+            others = foreign(_entries(t))
+            if not others:
+                return
+            why = ("; its peaksift-manifest.json cannot be read, so every file counts as not "
+                   "peaksift's" if (t / MANIFEST_NAME).exists() and manifest is None else "")
             raise OutputError(
-                f"output folder {str(t)!r} holds files peaksift did not write ({_short(foreign)})"
-                f"{'; ' + why if why else ''}; choose a new or empty output folder, or pass "
-                "--share-folder to write beside them (they are never touched); nothing was "
-                "written")
-        clash = sorted(n for n in foreign if n in names
-                       or any(n.startswith(d.rstrip("/") + "/") for d in names if d.endswith("/")))
+                f"output folder {str(t)!r} holds files peaksift did not write ({_short(others)})"
+                f"{why}; choose a new or empty output folder, or pass --share-folder to write "
+                "beside them (they are never touched); nothing was written")
+        # shared: only the places this run writes to are looked at
+        mine = [n for n in names
+                if not n.endswith("/") and ((t / n).exists() or (t / n).is_symlink())]
+        for d in (n for n in names if n.endswith("/")):
+            if (t / d).is_dir():
+                mine += [f"{d}{e}" for e in _entries(t / d)]
+        clash = foreign(mine)
         if clash:
             raise OutputError(
                 f"output folder {str(t)!r}: {_short(clash)} would be replaced but peaksift did "
