@@ -47,7 +47,7 @@ _EXPORTS: dict[str, str] = {
     "upper_limits": "peaksift.stats.limits",
     "run_search": "peaksift.search",
     "SearchResult": "peaksift.search",
-    "load_config": "peaksift.config",
+    "load_config": "peaksift.config.build",
 }
 
 _SUBMODULES = {
