@@ -87,13 +87,14 @@ def test_same_betagamma_same_loss_for_kaon_and_pion():
 
 def test_one_over_beta_squared_rise_at_low_betagamma():
     # Below the minimum the loss rises as 1/beta^2 times a slowly varying logarithm
-    # (PDG Review, same chapter): S*beta^2 changes by under a factor 1.6 from betagamma 0.1
-    # to 1 while S itself falls by more than a factor 10.
+    # (PDG Review, same chapter): from betagamma 1 down to 0.1, beta^2 falls by a factor 50
+    # and S rises by more than 20, while S*beta^2 (the bracket, ln(2 m_e c^2 b^2 g^2 / I) with
+    # T_max ~ 2 m_e c^2 b^2 g^2: about 4.0 at 0.1 and 8.6 at 1 for argon) halves.
     bg = np.array([0.1, 1.0])
     s = el.mean_energy_loss(bg, "argon_gas", mass=0.938)
     b2 = bg**2 / (1 + bg**2)
-    assert s[0] / s[1] > 10
-    assert 1.0 < (s[1] * b2[1]) / (s[0] * b2[0]) < 1.6
+    assert s[0] / s[1] > 20
+    assert 1.7 < (s[1] * b2[1]) / (s[0] * b2[0]) < 2.4
     assert np.all(np.diff(el.mean_energy_loss(np.geomspace(0.1, 3, 40), "argon_gas")) < 0)
 
 
