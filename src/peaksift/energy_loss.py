@@ -431,18 +431,31 @@ class DedxFit:
 
 
 def fit_dedx_response(momentum: ArrayLike, measured: ArrayLike, response: DedxResponse, *,
-                      hypothesis: str | float = "pion", fit_resolution: bool = True,
-                      clip: float = 4.0) -> DedxFit:
+                      hypothesis: str | float = "pion", samples: ArrayLike | None = None,
+                      fit_resolution: bool = True, clip: float | None = 3.0) -> DedxFit:
     """Fit the scale (and the resolution) of ``response`` to tracks of one clean species.
 
-    With :math:`u_i = d_i / B(p_i/M)` (measured over the Bethe mean), the model is
-    :math:`u_i \\sim N(s, (r s)^2)`: the maximum-likelihood estimates are the mean and the
-    (1/n) standard deviation of u (a normal distribution's MLE), computed on the tracks within
-    ``clip`` robust standard deviations of the median (a few stray tracks of another species
-    would otherwise pull them).  Errors: :math:`\\sigma_s = r s/\\sqrt n`,
-    :math:`\\sigma_r \\approx r/\\sqrt{2n}`.  A resolution that depends on the number of
-    samples is not refitted (``fit_resolution`` must then be False).
+    With :math:`u_i = d_i / B(p_i/M)` (measured over the Bethe mean) and
+    :math:`w_i = \sigma_{rel}(n_i) / r` (1 unless the resolution depends on the number of
+    samples ``samples``), the model is :math:`u_i \sim N(s, (r w_i s)^2)`.  The estimates are
+    the weighted mean :math:`s = \sum u_i w_i^{-2} / \sum w_i^{-2}` and
+    :math:`r^2 = \frac1n \sum ((u_i - s)/(w_i s))^2` -- for equal :math:`w_i` exactly a normal
+    distribution's maximum-likelihood estimates (mean and 1/n variance of u), otherwise
+    those of the variance model with s in the variance held at its estimate (good for r ≪ 1).
+
+    Tracks of another species pull such a fit, so with ``clip`` the fit is repeated on the
+    tracks within ``clip`` standard deviations of the current scale (starting from the median
+    and the median absolute deviation) until the kept set no longer changes, and r is
+    corrected for the clipped tails of a Gaussian (divided by
+    :math:`\sqrt{1 - 2c\varphi(c)/(2\Phi(c) - 1)}`).  Errors: :math:`\sigma_s = r s /
+    \sqrt{\sum w_i^{-2}}`, :math:`\sigma_r \approx r/\sqrt{2n}`.
+
+    The default ``clip = 3`` keeps the fit on the species' core: on the demo's pion band
+    (0.4 < p < 0.6 GeV, with 4% electrons 40% higher and kaons 46% higher) a clip of 4 lets
+    the iteration walk into the neighbours and ends at a 9% larger scale.
     """
+    from scipy.stats import norm
+
     p, d = _f64(momentum).ravel(), _f64(measured).ravel()
     if p.shape != d.shape:
         raise InputError(f"fit_dedx_response: momentum and measured values differ in length "
@@ -450,19 +463,40 @@ def fit_dedx_response(momentum: ArrayLike, measured: ArrayLike, response: DedxRe
     m = hypothesis if isinstance(hypothesis, (int, float)) else hypothesis_mass(hypothesis)
     base = DedxResponse(response.material, 1.0, response.resolution)
     u = d / base.expected(p, float(m))
-    u = u[np.isfinite(u)]
+    w = np.ones_like(u)
+    if samples is not None and response.samples_exponent is not None:
+        w = np.broadcast_to(response.relative_sigma(samples), u.shape) / response.resolution
+    ok = np.isfinite(u) & np.isfinite(w)
+    u, w = u[ok], w[ok]
     if u.size < 10:
         raise InputError(f"fit_dedx_response needs at least 10 tracks with finite values, got "
                          f"{u.size}")
-    med = float(np.median(u))
-    mad = 1.4826 * float(np.median(np.abs(u - med)))
-    keep = u[np.abs(u - med) <= clip * mad] if mad > 0 else u
-    s = float(keep.mean())
-    r = float(keep.std()) / s if fit_resolution else response.resolution
-    if fit_resolution and response.samples_exponent is not None:
-        raise ConfigError("fit_dedx_response: the resolution depends on the number of samples; "
-                          "fit only the scale (fit_resolution=False)")
-    n = keep.size
+    if not (clip is None or (math.isfinite(clip) and clip > 1.0)):
+        raise ConfigError(f"fit_dedx_response: clip must be a number above 1 or None, got {clip!r}")
+
+    def estimate(keep: np.ndarray) -> tuple[float, float]:
+        iw2 = 1.0 / w[keep] ** 2
+        s_ = float(np.sum(u[keep] * iw2) / np.sum(iw2))
+        r_ = float(np.sqrt(np.mean(((u[keep] - s_) / (w[keep] * s_)) ** 2)))
+        if clip is not None:
+            r_ /= math.sqrt(1.0 - 2.0 * clip * norm.pdf(clip) / (2.0 * norm.cdf(clip) - 1.0))
+        return s_, r_
+
+    keep = np.ones(u.size, dtype=bool)
+    if clip is not None:
+        s0 = float(np.median(u))
+        r0 = 1.4826 * float(np.median(np.abs(u - s0) / w)) / s0
+        keep = np.abs(u - s0) <= clip * r0 * w * s0
+        for _ in range(100):
+            s, r = estimate(keep)
+            new = np.abs(u - s) <= clip * r * w * s
+            if np.array_equal(new, keep):
+                break
+            keep = new
+    s, r = estimate(keep)
+    if not fit_resolution:
+        r = response.resolution
+    n = int(np.count_nonzero(keep))
     fitted = dataclasses.replace(response, scale=s, resolution=r)
-    return DedxFit(s, r * s / math.sqrt(n), r, r / math.sqrt(2 * n) if fit_resolution else 0.0,
-                   n, fitted)
+    return DedxFit(s, r * s / math.sqrt(float(np.sum(1.0 / w[keep] ** 2))), r,
+                   r / math.sqrt(2 * n) if fit_resolution else 0.0, n, fitted)

@@ -114,7 +114,7 @@ def _truncated_mean_quantiles(n: int, keep: float) -> tuple[np.ndarray, np.ndarr
     rng = np.random.default_rng(np.random.SeedSequence([TRACK_DEMO_SEED, 7]))
     z = rng.standard_normal((100_000, n))
     x = -np.log(z * z)
-    k = max(1, int(round(n * keep)))
+    k = max(1, round(n * keep))
     t = np.partition(x, k - 1, axis=1)[:, :k].mean(axis=1)
     t = (t - t.mean()) / t.std()
     probs = np.linspace(0.0, 1.0, 4001)
