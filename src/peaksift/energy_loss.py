@@ -433,7 +433,7 @@ class DedxFit:
 def fit_dedx_response(momentum: ArrayLike, measured: ArrayLike, response: DedxResponse, *,
                       hypothesis: str | float = "pion", samples: ArrayLike | None = None,
                       fit_resolution: bool = True, clip: float | None = 3.0) -> DedxFit:
-    """Fit the scale (and the resolution) of ``response`` to tracks of one clean species.
+    r"""Fit the scale (and the resolution) of ``response`` to tracks of one clean species.
 
     With :math:`u_i = d_i / B(p_i/M)` (measured over the Bethe mean) and
     :math:`w_i = \sigma_{rel}(n_i) / r` (1 unless the resolution depends on the number of
