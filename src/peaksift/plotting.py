@@ -333,10 +333,14 @@ def dedx_figure(outcome: Any, outdir: str | os.PathLike[str], *,
             else:
                 ax.plot(grid, e, color=c, lw=1.0, ls="--", label=h)
         ax.set_xscale("log")
-        ax.set_xlim(p_edges[0], p_edges[-1])
+        used = np.flatnonzero(counts.sum(axis=1) > 0)  # the momenta the tracks occupy
+        if used.size:
+            ax.set_xlim(p_edges[max(used[0] - 2, 0)], p_edges[min(used[-1] + 3, p_edges.size - 1)])
+        else:
+            ax.set_xlim(p_edges[0], p_edges[-1])
         ax.set_ylim(d_edges[0], d_edges[-1])
         ax.set_xlabel("momentum p [GeV]")
-        ax.set_ylabel(f"measured dE/dx [{r.field}, detector units]")
+        ax.set_ylabel(f"measured dE/dx (field '{r.field}', detector units)")
         ax.legend(loc="upper right", ncol=1)
         _text(ax, [(f"{r.material.name}: scale {r.scale:.4g}, \u03c3/\u27e8dE/dx\u27e9 "
                    f"{r.resolution:.3g}")], loc="lower left")

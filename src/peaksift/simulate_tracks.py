@@ -230,12 +230,13 @@ def generate_tracks(n_events: int = TRACK_DEMO_EVENTS, *, seed: int = TRACK_DEMO
     pt_meas = pt * np.abs(1.0 + rel * rng.normal(0.0, 1.0, pt.size))
     dedx, samples = _measure(rng, pt * np.cosh(eta), mass, sc)
     keep = (np.abs(eta) < sc.eta_max) & (pt_meas > sc.pt_min)
-    ev, order = ev[keep], np.lexsort((-pt_meas[keep], ev[keep]))
+    order = np.lexsort((-pt_meas[keep], ev[keep]))   # by event, then decreasing pT
+    ev = ev[keep][order]
     cols = {"pt": pt_meas[keep], "eta": eta[keep], "phi": az[keep], "charge": charge[keep],
             "dedx": dedx[keep], "dedx_samples": samples[keep].astype(np.int16),
             "truth_species": code[keep], "truth_from_phi": from_phi[keep]}
     cols = {c: v[order] for c, v in cols.items()}
-    offsets = np.concatenate([[0], np.cumsum(np.bincount(ev[order], minlength=n))])
+    offsets = np.concatenate([[0], np.cumsum(np.bincount(ev, minlength=n))])
     struct = pa.StructArray.from_arrays(
         [pa.array(_rounded(v, _BITS[c]) if c in _BITS else v) for c, v in cols.items()],
         list(cols))
