@@ -70,8 +70,7 @@ def dedx_identification(cfg: Config, *, progress: bool = False) -> DedxOutcome |
     counts = None
     d_edges = None
     tracks = 0
-    for ev in iter_events(cfg.input.files, collections=[coll], fields=fields,
-                          chunk_events=cfg.execution.chunk_events, strict=cfg.input.strict):
+    for ev in _chunks(cfg, coll, fields, iter_events):
         import awkward as ak
 
         t = ev[coll]
@@ -119,17 +118,17 @@ def dedx_identification(cfg: Config, *, progress: bool = False) -> DedxOutcome |
     return DedxOutcome(response, fit, P_EDGES, d_edges, counts, tracks)
 
 
-def band_curves(outcome: DedxOutcome, hypotheses: tuple[str, ...], band: float,
-                p: np.ndarray | None = None) -> dict[str, tuple[np.ndarray, ...]]:
-    """Expected dE/dx and the ±band edges of each hypothesis on a momentum grid, for the
-    figure (the resolution at the reference number of samples)."""
-    from ..energy_loss import hypothesis_mass
-
-    grid = np.geomspace(outcome.p_edges[0], outcome.p_edges[-1], 400) if p is None else p
-    r = outcome.response
-    rel = float(r.resolution)
-    out = {}
-    for h in hypotheses:
-        e = r.expected(grid, hypothesis_mass(h))
-        out[h] = (grid, e, e * (1 - band * rel), e * (1 + band * rel))
-    return out
+def _chunks(cfg: Config, coll: str, fields: list[str], iter_events: Any) -> Any:
+    """The collection's chunks; a missing dE/dx field is named by its config key."""
+    idc = cfg.identification
+    try:
+        yield from iter_events(cfg.input.files, collections=[coll], fields=fields,
+                               chunk_events=cfg.execution.chunk_events, strict=cfg.input.strict)
+    except InputError as exc:
+        msg = " ".join(str(exc).split())
+        for key, name in (("field", idc.field), ("samples_field", idc.samples_field)):
+            if name and f"'{name}'" in msg:
+                where = f"config {cfg.source}" if cfg.source != "<dict>" else "config"
+                raise InputError(f"{where}: identification.{key}: collection {coll!r} has no "
+                                 f"field {name!r} ({msg})") from None
+        raise
