@@ -261,3 +261,16 @@ def test_bad_input_exits_2_with_one_line_and_writes_nothing(tmp_path, capsys, re
         assert w in lines[0], lines[0]
     assert not out.exists()
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".out")] == []
+
+
+def test_committed_hadron_set_is_regenerated():
+    # scripts/make_demo_data.py writes demo_data/tracks/ with the same arrays (determinism)
+    import pyarrow.parquet as pq
+
+    from peaksift import simulate_tracks
+
+    truth = json.loads((TRACKS / "truth.json").read_text())
+    fresh, counts = simulate_tracks.generate_tracks(truth["n_events"], seed=truth["seed"])
+    stored = pq.read_table(TRACKS / "tracks_000.parquet")
+    assert fresh.equals(stored)
+    assert counts["phi_decays_both_kaons_kept"] == truth["phi_decays_both_kaons_kept"]
