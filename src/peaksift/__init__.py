@@ -3,7 +3,9 @@
 Where to start
 --------------
 * ``read_events`` / ``iter_events`` / ``describe``  -- read Parquet events (awkward + vector).
-* ``pair``                                          -- build di-object candidates under cuts.
+* ``pair``                                          -- build di-object candidates under cuts
+                                                       (mass hypotheses per leg, dE/dx
+                                                       identification: ``energy_loss``).
 * ``MassHistogram``                                 -- weighted mass spectrum.
 * ``fit``                                           -- extended signal-plus-background fit.
 * ``Resolution``                                    -- detector mass resolution sigma(m).
@@ -24,6 +26,7 @@ from .errors import (
     ExecutionError,
     FitError,
     InputError,
+    OutputError,
     PeaksiftError,
 )
 
@@ -31,9 +34,9 @@ __version__ = "0.1.0"
 
 # public name -> module that defines it
 _EXPORTS: dict[str, str] = {
-    "read_events": "peaksift.events",
-    "iter_events": "peaksift.events",
-    "describe": "peaksift.events",
+    "read_events": "peaksift.events.read",
+    "iter_events": "peaksift.events.read",
+    "describe": "peaksift.events.describe",
     "pair": "peaksift.pairing",
     "Candidates": "peaksift.pairing",
     "compile_cut": "peaksift.cuts",
@@ -45,15 +48,15 @@ _EXPORTS: dict[str, str] = {
     "ScanResult": "peaksift.stats.scan",
     "LimitResult": "peaksift.stats.limits",
     "upper_limits": "peaksift.stats.limits",
-    "run_search": "peaksift.search",
-    "SearchResult": "peaksift.search",
-    "load_config": "peaksift.config",
+    "run_search": "peaksift.search.run",
+    "SearchResult": "peaksift.search.result",
+    "load_config": "peaksift.config.build",
 }
 
 _SUBMODULES = {
     "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing", "blinding",
     "histogram", "fitting", "config", "execution", "search", "plotting", "report",
-    "resonances", "errors", "resolution",
+    "resonances", "errors", "resolution", "energy_loss", "simulate_tracks",
 }
 
 __all__ = [
@@ -66,6 +69,7 @@ __all__ = [
     "InputError",
     "LimitResult",
     "MassHistogram",
+    "OutputError",
     "PeaksiftError",
     "Resolution",
     "ScanResult",
