@@ -327,18 +327,17 @@ def test_fit_starts_at_the_mass_and_reports_intervals(demo_fits, demo_nll, mass)
     assert abs(mi.values["mass"] - d["peak_mass"]["value"]) < 0.1 * d["peak_mass"]["error"]
 
 
-def test_fit_started_in_a_local_minimum_says_so(demo_fits, demo_nll):
-    """Started at 150 GeV the demo's free fit settles in a minimum above the one reached
-    from 155 GeV; the note says so, with the difference of -2 ln L that the NLL written
-    here gives between the two fits' values (1e-3 absolute)."""
+def test_fit_started_off_the_peak_reaches_the_lowest_minimum(demo_fits, demo_nll):
+    """Started at 150 GeV the demo's free fit (background also started from the whole
+    window, other widths minimised although the width's start is given) reaches the
+    minimum found from 155 GeV: the NLL written here gives the same value at both fits'
+    values (within 1e-3 in -2 ln L), and neither fit carries a "lower minimum" note.
+    (Before, it settled in a minimum 0.1 or more above.)"""
     local, best = demo_fits[150, False]["json"], demo_fits[155, False]["json"]
     nll = demo_nll(local)
     gap = 2.0 * (nll(**_values(local)) - nll(**_values(best)))
-    assert gap > 0.1
-    notes = [n for n in local["notes"] if "lower minimum" in n]
-    assert len(notes) == 1
-    assert float(re.search(r"lower by ([0-9.]+)", notes[0]).group(1)) == pytest.approx(
-        gap, abs=1e-3 + 5e-3 * gap)  # the note prints three significant digits
+    assert abs(gap) < 1e-3
+    assert not any("lower minimum" in n for n in local["notes"])
     assert not any("lower minimum" in n for n in best["notes"])
 
 

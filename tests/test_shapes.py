@@ -685,3 +685,48 @@ def test_turnon_against_norm_cdf_times_exponential(p):
         return stats.norm.cdf((np.asarray(m) - t) / r) * np.exp(-k * (np.asarray(m) - W[0]))
 
     _check_against(s, p, ref, breaks=(t,))
+
+
+@pytest.mark.parametrize(("name", "opts", "p"), POINTS, ids=_id)
+def test_gradients_of_free_parameters_only(name, opts, p):
+    """``need=`` (the fit's free parameters): the wanted rows match the reference
+    derivatives (analytic or Richardson, tolerance as above); a differenced shape (the
+    Crystal Ball) leaves the others zero instead of differencing them."""
+    s = shapes.get(name, **opts)
+    x, e = _grid(s, p)
+    ref = _reference(s, p, x, e)
+    need = [i % 2 == 0 for i in range(len(p))]
+    f2, g2 = s.fractions_and_grad(e, p, W, need)
+    v, gv = s.pdf_and_grad(x, p, W, need)
+    fl_p, fl_f = _floors(s, p, v), _floors(s, p, f2)
+    for i, wanted in enumerate(need):
+        if wanted:
+            _check(g2[i:i + 1], ref["dfrac"][i:i + 1], ref["err_frac"][i:i + 1],
+                   fl_f[i:i + 1], "fractions_and_grad")
+            _check(gv[i:i + 1], ref["dpdf"][i:i + 1], ref["err_pdf"][i:i + 1],
+                   fl_p[i:i + 1], "pdf_and_grad")
+        elif np.any(g2[i]):  # analytic gradients may give every row: then the right one
+            _check(g2[i:i + 1], ref["dfrac"][i:i + 1], ref["err_frac"][i:i + 1],
+                   fl_f[i:i + 1], "fractions_and_grad (not asked for)")
+    if name == "crystalball":  # differenced: the unwanted rows are skipped
+        assert not np.any(g2[1::2]) and not np.any(gv[1::2])
+
+
+def test_narrow_gaussian_in_a_wide_window_against_scipy():
+    """A peak 0.05 GeV wide among 6,000 bins of the window: bin fractions and their
+    derivatives against scipy.stats.norm (fractions 1e-10 relative / 1e-300 absolute;
+    derivatives 1e-8 of the largest), exactly zero more than 40 sigma from the peak."""
+    e = np.linspace(*W, 6001)
+    m, sg = 90.0123, 0.05
+    fr, g = shapes.get("gaussian").fractions_and_grad(e, [m, sg], W)
+    z, zl, zh = (e - m) / sg, (W[0] - m) / sg, (W[1] - m) / sg
+    norm = stats.norm.cdf(zh) - stats.norm.cdf(zl)
+    c = (stats.norm.cdf(z) - stats.norm.cdf(zl)) / norm
+    np.testing.assert_allclose(fr, np.diff(c), rtol=1e-10, atol=1e-300)
+    # d/dm of the truncated CDF; the window's edges are > 500 sigma away, their terms vanish
+    dm = -np.diff(stats.norm.pdf(z) / sg) / norm
+    ds = -np.diff(stats.norm.pdf(z) * z / sg) / norm
+    np.testing.assert_allclose(g[0], dm, rtol=0, atol=1e-8 * np.abs(dm).max())
+    np.testing.assert_allclose(g[1], ds, rtol=0, atol=1e-8 * np.abs(ds).max())
+    far = (e[1:] < m - 40 * sg) | (e[:-1] > m + 40 * sg)
+    assert far.sum() > 5900 and not np.any(fr[far]) and not np.any(g[:, far])

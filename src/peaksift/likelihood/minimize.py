@@ -171,15 +171,23 @@ def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
     d = np.diagonal(hess)
     if np.any(d <= 0):
         return bad
-    s = 1.0 / np.sqrt(d)
-    scaled = hess * np.outer(s, s)
-    try:
-        ev = np.linalg.eigvalsh(scaled)
-    except np.linalg.LinAlgError:
+    # no RuntimeWarning may leak from here: an overflow in the scaling or the inverse is a
+    # bad covariance, returned as such (the fit is then flagged invalid)
+    with np.errstate(all="ignore"):
+        s = 1.0 / np.sqrt(d)
+        scaled = hess * np.outer(s, s)
+        if not np.all(np.isfinite(scaled)):
+            return bad
+        try:
+            ev = np.linalg.eigvalsh(scaled)
+            if ev.min() <= POSDEF_TOL:
+                return bad
+            cov = np.linalg.inv(scaled) * np.outer(s, s)
+        except np.linalg.LinAlgError:
+            return bad
+    if not np.all(np.isfinite(cov)):
         return bad
-    if ev.min() <= POSDEF_TOL:
-        return bad
-    return np.linalg.inv(scaled) * np.outer(s, s), True
+    return cov, True
 
 
 def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
@@ -199,7 +207,8 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
         return x0, f0, np.full((x0.size, x0.size), np.nan), False
     cov, posdef = covariance(hess)
     if posdef and mo.method == "iminuit-migrad":  # one Newton step refines MIGRAD's minimum
-        with np.errstate(all="ignore"):
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
             x1 = np.clip(x0 - cov @ cost.grad(*x0), lower, upper)
             f1 = cost(*x1)
         if np.isfinite(f1) and f1 < f0:

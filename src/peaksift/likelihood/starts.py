@@ -127,19 +127,26 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
             yield False, lambda near=None: np.where(is_fixed, base, np.clip(base, lower, upper))
         return
     vb, c, masses, i_m, i_s, bkg_given = first
-    candidates = [(mm, 1.0, True) for mm in masses]
+    names = model.parameter_names
+    candidates = [(mm, 1.0, True, True) for mm in masses]
+    if names[i_m] in given and not bkg_given:
+        # a mass given (or held): no scan to offer other peaks, so the background is also
+        # started from the whole window, not only from the sidebands of that mass (a held
+        # mass stopped 1.1 above the lowest NLL from the sideband start alone)
+        candidates.append((masses[0], 1.0, True, False))
     # A free width can have several minima around one excess (a narrow and a wide solution;
     # on 5 sigma toys 0.5 % of fits from one width stopped up to 0.49 in -2 ln L above the
-    # lower one), so the other widths are minimised too whenever a width can vary.
-    vary = any(model.parameter_names[i] not in given for i in i_s)
-    candidates += [(masses[0], f, vary) for f in (0.4, 2.5, 1.5)[:retries]]
-    free_widths = [i for i in i_s if model.parameter_names[i] not in given]
+    # lower one), so the other widths are minimised too whenever a width can vary (its
+    # start given or not).
+    free_widths = [i for i in i_s if not is_fixed[i]]
+    vary = bool(free_widths)
+    candidates += [(masses[0], f, vary, True) for f in (0.4, 2.5, 1.5)[:retries]]
     sl0 = model.blocks[0][1]
     other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
-                   and model.parameter_names[i] not in given]
-    for mm, factor, essential in candidates:
-        def make(near: np.ndarray | None = None, mm: float = mm,
-                 factor: float = factor) -> np.ndarray:
+                   and names[i] not in given]
+    for mm, factor, essential, sideband in candidates:
+        def make(near: np.ndarray | None = None, mm: float = mm, factor: float = factor,
+                 sideband: bool = sideband) -> np.ndarray:
             if near is not None and factor != 1.0 and free_widths:
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
@@ -151,7 +158,8 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                 return s
             with np.errstate(all="ignore"):
                 return _one_start(model, edges, n, scale, base, vb, c, mm, factor, i_m, i_s,
-                                  given, is_fixed, lower, upper, total, bkg_given)
+                                  given, is_fixed, lower, upper, total,
+                                  bkg_given or not sideband)
 
         yield essential, make
 
@@ -235,7 +243,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     s = vb.copy()
     s[i_m] = np.clip(mm, lower[i_m], upper[i_m])
     for i in i_s:
-        if names[i] not in given:
+        if not is_fixed[i]:
             s[i] = np.clip(v[i] * factor, lower[i], upper[i])
     # sideband background: exclude +-3 widths around the candidate peak
     hw = 3.0 * max((s[i] for i in i_s), default=(edges[-1] - edges[0]) / 40)
@@ -269,6 +277,8 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         if names[iy2] not in given:
             s[iy2] = np.clip(max(0.01 * total, 1.0), lower[iy2], upper[iy2])
     s = np.clip(s, lower, upper)
-    for k in given:  # given starts and fixed values are used as given
-        s[names.index(k)] = v[names.index(k)]
+    for k in given:  # given starts and fixed values are used as given (but other widths)
+        i = names.index(k)
+        if not (factor != 1.0 and i in i_s and not is_fixed[i]):
+            s[i] = v[i]
     return s
