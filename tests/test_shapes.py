@@ -729,4 +729,4 @@ def test_narrow_gaussian_in_a_wide_window_against_scipy():
     np.testing.assert_allclose(g[0], dm, rtol=0, atol=1e-8 * np.abs(dm).max())
     np.testing.assert_allclose(g[1], ds, rtol=0, atol=1e-8 * np.abs(ds).max())
     far = (e[1:] < m - 40 * sg) | (e[:-1] > m + 40 * sg)
-    assert far.sum() > 5900 and not np.any(fr[far]) and not np.any(g[:, far])
+    assert far.sum() > 5500 and not np.any(fr[far]) and not np.any(g[:, far])
