@@ -403,10 +403,13 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
                      "under-cover, symmetric errors and profile-likelihood intervals alike "
                      "(61-64 % for mass and yield on ~5 sigma toys)")
     for i, floor in floors.items():
-        if not is_fixed[i] and vals[i] <= floor * (1.0 + 1e-3):
-            notes.append(f"{names[i]} stopped at its floor {floor:g} {d.unit} ({_FLOOR_FRACTION:g} "
-                         "of the narrowest bin): the peak is narrower than the binning "
-                         "resolves; a finer binning or an unbinned fit can tell more")
+        # at the floor, or within one error of it: the width is not measured, the peak is a
+        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
+        if not is_fixed[i] and (vals[i] <= floor * (1.0 + 1e-3) or not err[i] < vals[i] - floor):
+            problems = [*problems, (f"{names[i]} at or within one error of its floor (a "
+                                    f"bound) {floor:g} {d.unit}, {_FLOOR_FRACTION:g} of the "
+                                    "narrowest bin: the peak is narrower than the binning "
+                                    "resolves; use finer bins or an unbinned fit")]
     fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
     ge, gn, gn2 = gof_binning(d)
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
