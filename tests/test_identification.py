@@ -274,3 +274,26 @@ def test_committed_hadron_set_is_regenerated():
     stored = pq.read_table(TRACKS / "tracks_000.parquet")
     assert fresh.equals(stored)
     assert counts["phi_decays_both_kaons_kept"] == truth["phi_decays_both_kaons_kept"]
+
+
+def test_hadron_search_reports_the_identification(tmp_path):
+    """The demo's hadron search end to end (fast settings): the phi(1020) calibration against the
+    particle tables (within two combined standard errors), and the report's identification
+    section and figure."""
+    from peaksift import load_config, run_search
+
+    # no toys and no profile-likelihood intervals: the slow parts, not what is checked here
+    cfg = load_config(HADRON_CONFIG).with_overrides(significance__toys=0,
+                                                    model__intervals=False)
+    res = run_search(cfg, out=tmp_path / "out")
+    d = json.loads((tmp_path / "out" / "results.json").read_text())
+    ident = d["identification"]
+    truth = json.loads((TRACKS / "truth.json").read_text())["dedx"]["scale_kev_per_cm"]
+    fit = ident["calibration_fit"]["scale"]
+    assert abs(fit["value"] - truth) < 4 * fit["error"] + 0.002 * truth  # as above
+    cal = d["calibration"]
+    assert cal["particle"] == "phi(1020)" and abs(cal["shift_sigma"]) < 2
+    assert "dedx" in res.figures and (tmp_path / "out" / "figures" / "dedx.png").is_file()
+    md = (tmp_path / "out" / "report.md").read_text()
+    assert "## Particle identification (dE/dx)" in md and "figures/dedx.png" in md
+    assert d["config"]["pairing"]["hypotheses"] == ["kaon"]
