@@ -26,6 +26,7 @@ from .errors import (
     ExecutionError,
     FitError,
     InputError,
+    OutputError,
     PeaksiftError,
 )
 
@@ -68,6 +69,7 @@ __all__ = [
     "InputError",
     "LimitResult",
     "MassHistogram",
+    "OutputError",
     "PeaksiftError",
     "Resolution",
     "ScanResult",

@@ -446,11 +446,34 @@ def _selection_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     return rows
 
 
+def _warning_texts(r: Mapping[str, Any]) -> list[str]:
+    return [str(w.get("message")) for w in r.get("warnings") or [] if isinstance(w, Mapping)]
+
+
+def _warnings_md(r: Mapping[str, Any]) -> list[str]:
+    """The ``## Warnings`` section (results.json ``warnings``), empty when there are none."""
+    texts = _warning_texts(r)
+    if not texts:
+        return []
+    return ["## Warnings", "", "Read these before quoting any number below.", "",
+            *[f"- **Warning:** {t}" for t in texts], ""]
+
+
+def _warnings_html(r: Mapping[str, Any]) -> list[str]:
+    texts = _warning_texts(r)
+    if not texts:
+        return []
+    items = "".join(f"<li><strong>Warning:</strong> {_h(t)}</li>" for t in texts)
+    return ["<h2>Warnings</h2>", "<p>Read these before quoting any number below.</p>",
+            f'<ul class="caution">{items}</ul>']
+
+
 def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | None = None) -> str:
     """The meeting report as Markdown; ``figures`` maps figure names to relative PNG paths."""
     r = results
     fig = dict(figures or {})
-    out = [f"# {_title(r)}", "", f"> **Caution.** {CAUTION}", "", "## Result", ""]
+    out = [f"# {_title(r)}", "", f"> **Caution.** {CAUTION}", "", *_warnings_md(r), "## Result",
+           ""]
     out.append(_md_table(["quantity", "value"], _summary_rows(r)))
     out += ["", _lee_sentence(r), ""]
     km = r.get("known_matches")
@@ -565,6 +588,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
                     f"<title>{_h(title)}</title>", f"<style>{_CSS}</style></head><body>",
                     f"<h1>{_h(title)}</h1>",
                     f'<div class="caution"><strong>Caution.</strong> {_h(CAUTION)}</div>',
+                    *_warnings_html(r),
                     "<h2>Result</h2>", _html_table(["quantity", "value"], _summary_rows(r)),
                     f"<p>{_h(_lee_sentence(r))}</p>",
                     "<h3>Known particles near the best peak</h3>"]

@@ -15,6 +15,7 @@ if sys.version_info >= (3, 11):  # pragma: no cover - version switch
     import tomllib as _toml
 else:  # pragma: no cover
     import tomli as _toml
+from .plan import check_background_bins, check_bins, check_scan_plan
 from .schema import _REQUIRED, _TOP, SCHEMA
 from .sections import (
     BlindingConfig,
@@ -253,6 +254,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                 f"window [{lo:g}, {hi:g}] into whole bins ({n:.4g}); change the width or window"
             )
         sp["bins"] = round(n)
+    check_bins(sp, where)
 
     given = [k for k in ("relative", "absolute", "table") if res[k] is not None]
     if len(given) != 1:
@@ -295,6 +297,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                               f"[{lo:g}, {hi:g}]; the scan must stay inside the fit window")
     if not s1 > s0:
         raise ConfigError(f"{where}: scan.stop ({s1:g}) must be above scan.start ({s0:g})")
+    check_scan_plan(ResolutionConfig(**res).resolution, res, sp, sc, where)
 
     md = vals["model"]
     _check_shape("model.signal", md["signal"], where, "signal", md["signal_options"])
@@ -313,6 +316,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         if b0 < lo or b1 > hi:
             raise ConfigError(f"{where}: blinding.window [{b0:g}, {b1:g}] must lie inside "
                               f"spectrum.window [{lo:g}, {hi:g}]")
+    check_background_bins(md, sp, bl, where)
 
     cal = vals["calibration"]
     if cal["particle"]:
@@ -406,6 +410,11 @@ def load_config(config: str | Path | Mapping[str, Any] | Config, *,
     except UnicodeDecodeError as exc:
         raise ConfigError(f"config {path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
     except _toml.TOMLDecodeError as exc:
-        raise ConfigError(f"config {path}: TOML syntax error: {' '.join(str(exc).split())}") from None
+        hint = ""
+        if data.startswith(b"\xef\xbb\xbf"):  # some Windows editors save a UTF-8 byte-order mark
+            hint = ("; the file starts with a UTF-8 byte-order mark (BOM), which TOML does "
+                    "not allow: save it as UTF-8 without BOM")
+        raise ConfigError(f"config {path}: TOML syntax error: {' '.join(str(exc).split())}"
+                          f"{hint}") from None
     return _build(raw, source=str(path), base_dir=path.resolve().parent,
                   sha256=hashlib.sha256(data).hexdigest())

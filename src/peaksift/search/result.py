@@ -11,6 +11,7 @@ import numpy as np
 
 from ..config import Config
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
+from .doubts import doubts
 
 
 # ----------------------------------------------------------------------------- results
@@ -123,6 +124,7 @@ class SearchResult:
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
         }
+        out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}

@@ -17,6 +17,7 @@ from .common import (
     _collect,
     _fill,
     _require_candidates,
+    _require_sidebands,
     _save_spectrum,
     _scan_masses,
     _scan_signal_name,
@@ -41,6 +42,7 @@ def run_search(
     seed: int | None = None,
     engine: str | None = None,
     progress: bool = False,
+    share_folder: bool = False,
 ) -> SearchResult:
     """Run the whole search described by a configuration.
 
@@ -58,6 +60,10 @@ def run_search(
         Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
     progress : bool
         Show progress bars (reading; toys).
+    share_folder : bool
+        Write into an output folder that holds files peaksift did not write (they are never
+        touched; a file of the same name as one of ours is refused).  Without it such a
+        folder is refused before the run.
 
     Returns
     -------
@@ -73,7 +79,7 @@ def run_search(
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
-    with _staged(target) as stage:
+    with _staged(target, "search", share_folder) as stage:
         res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
                       stage=stage, target=target)
     return res
@@ -96,6 +102,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     blind_window = tuple(cfg.blinding.window) if blind["active"] else None
     if blind_window is not None:  # nothing downstream sees the blinded bins' contents
         hist = _blinded_copy(hist, blind_window)
+        _require_sidebands(cfg, hist)
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -287,6 +294,8 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "background_shape": c.background,
         "width_fixed_to_table": bool(fixed),
         "valid": bool(d.get("valid")),
+        "problems": list(d.get("problems") or []),
+        "gof": d.get("gof"),
         "fitted_mass": {"value": m, "error": e},
         "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),
