@@ -297,3 +297,47 @@ def test_hadron_search_reports_the_identification(tmp_path):
     md = (tmp_path / "out" / "report.md").read_text()
     assert "## Particle identification (dE/dx)" in md and "figures/dedx.png" in md
     assert d["config"]["pairing"]["hypotheses"] == ["kaon"]
+
+
+def _config_dict(**sections):
+    base = {"input": {"files": [str(TRACKS / "tracks_000.parquet")]},
+            "objects": {"collection": "track"},
+            "spectrum": {"window": [1.0, 1.08], "bins": 80},
+            "model": {"resolution": {"absolute": 0.0011}}}
+    for k, v in sections.items():
+        base.setdefault(k, {}).update(v)
+    return base
+
+
+def test_config_own_material_and_cross_key_rules():
+    from peaksift import load_config
+
+    own = {"z_over_a": 0.45059, "mean_excitation_ev": 188.0, "density": 1.662e-3,
+           "density_effect": [11.9480, 1.7635, 4.4855, 0.19714, 2.9618, 0.0]}
+    cfg = load_config(_config_dict(identification={"resolution": 0.08, "material": "own",
+                                                   "own_material": own, "scale": 1.0}))
+    # the constants of argon gas (PDG tables) typed in by the user give argon's curve
+    from peaksift.energy_loss import mean_energy_loss
+    r = cfg.identification.response()
+    bg = np.geomspace(0.2, 200, 50)
+    np.testing.assert_allclose(mean_energy_loss(bg, r.material),
+                               mean_energy_loss(bg, "argon_gas"), rtol=1e-12)
+    assert cfg.to_dict()["identification"]["own_material"]["z_over_a"] == 0.45059
+    bad = [
+        ({"identification": {"resolution": 0.08, "material": "own"}},
+         "identification.own_material.z_over_a"),
+        ({"objects": {"cut": "abs(dedx_deviation(kaon)) < 3"}}, "identification is off"),
+        ({"pairing": {"hypotheses": ["kaon", "pion"], "assignment": "more_probable"}},
+         "set identification.resolution"),
+        ({"pairing": {"hypotheses": ["kaon"], "assignment": "more_probable"}},
+         "two different pairing.hypotheses"),
+        ({"identification": {"resolution": 0.08, "samples_field": "dedx_samples"}},
+         "identification.reference_samples"),
+    ]
+    for sections, words in bad:
+        with pytest.raises(ConfigError, match=words.replace(".", r"\.")):
+            load_config(_config_dict(**sections))
+    # two hypotheses on one collection: second_cut selects the second leg
+    cfg = load_config(_config_dict(objects={"cut": "pt > 0.1", "second_cut": "pt > 0.2"},
+                                   pairing={"hypotheses": ["kaon", "pion"]}))
+    assert cfg.pairing.hypotheses == ("kaon", "pion")
