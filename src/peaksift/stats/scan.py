@@ -653,6 +653,15 @@ def scan(
         window=window,
         natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins,
         signal_model=signal_model)
+    return scan_prepared(data, model, spec, info, blind=blind, expected_signal=expected_signal,
+                         natural_width=natural_width, refit=refit)
+
+
+def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, Any], *,
+                  blind: Any, expected_signal: Any, natural_width: Any,
+                  refit: bool) -> ScanResult:
+    """The scan of a model prepared by :func:`_prepare_model` (the channels of a
+    combination prepare theirs once and scan them here, as :func:`scan` does)."""
     signal_params = info["signal_params"]
     m_all = info["masses"]
     bl = info["blinded_mass"]
