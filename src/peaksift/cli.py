@@ -51,7 +51,12 @@ def _row(label: str, value: str) -> str:
 
 def _summary(result: object) -> str:
     """The short table printed at the end of ``peaksift search``."""
-    return _summary_text(result.to_dict())  # type: ignore[attr-defined]
+    d = result.to_dict()  # type: ignore[attr-defined]
+    if d.get("kind") == "combination":
+        from .search.combination_report import combination_summary_text
+
+        return combination_summary_text(d)
+    return _summary_text(d)
 
 
 def _summary_text(d: Mapping[str, Any]) -> str:

@@ -78,6 +78,7 @@ class SearchResult:
     outdir: Path | None = None
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
+    signal_model: Any = None
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
@@ -118,6 +119,8 @@ class SearchResult:
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
         }
+        if self.signal_model is not None:  # absent without [signal_model]: today's keys
+            out["signal_model"] = self.signal_model.to_dict()
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}

@@ -376,8 +376,8 @@ class Combination(FrozenValue):
             ax.set_xlabel("mass hypothesis [GeV]")
             ax.set_ylabel("local $p$-value")
             ax.legend(loc="lower left")
-            ax.text(0.0, 1.015, "local p-values: a local excess is not a discovery",
-                    transform=ax.transAxes, fontsize=8.5, va="bottom")
+            ax.text(0.99, 0.02, "local p-values: a local excess is not a discovery",
+                    transform=ax.transAxes, fontsize=8.5, va="bottom", ha="right")
             if title:
                 ax.set_title(title)
             if path is not None:
@@ -497,7 +497,8 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
             window=ch.window, natural_width=ch.natural_width, blind=blind,
             signal_params=ch.signal_params, bins=ch.bins, signal_model=ch.signal_model,
             cl=cl, method="asymptotic", luminosity=float(ch.luminosity),
-            efficiency=lambda m, k=k, lumi=float(ch.luminosity): np.interp(m, m_all, k) / lumi,
+            efficiency=None if ch.signal_model is not None and ch.efficiency is None else (
+                lambda m, k=k, lumi=float(ch.luminosity): np.interp(m, m_all, k) / lumi),
             unit=unit,
             low_count_background=low_count_background)
     alpha = 1.0 - cl
