@@ -215,7 +215,7 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Fix the natural width to the tabulated value (fit mass and resolution only)."),
     ),
     "signal_model": (
-        _Key("files", "paths", [],
+        _Key("files", "strings", [],
              "Simulated signal samples, one file (or glob) per generated mass, in the order "
              "of `masses`; the search's own selection and pairing run on each. Empty: no "
              "signal model from samples."),
