@@ -56,7 +56,14 @@ def _summary(result: object) -> str:
         from .search.combination_report import combination_summary_text
 
         return combination_summary_text(d)
-    return _summary_text(d)
+    text = _summary_text(d)
+    sm = d.get("signal_model")
+    if sm:  # the scan's signal from simulated samples: say so, and flag a doubtful model
+        state = (f"doubtful: {len(sm['notes'])} notes in results.json signal_model.notes"
+                 if sm.get("doubtful") else
+                 f"closure max {sm.get('max_closure_deviation') or 0:.2f} errors")
+        text += f"\n  signal model               {sm['shape']} from samples ({state})"
+    return text
 
 
 def _summary_text(d: Mapping[str, Any]) -> str:

@@ -90,6 +90,9 @@ def render_combination_markdown(d: Mapping[str, Any],
         lines += [f"![{k}]({v})" for k, v in figures.items() if v.endswith(".png")]
         lines += [""]
     notes = list(c.get("notes") or [])
+    for n, r in d["channels"].items():
+        notes += [f"{n}: signal model: {x}" for x in (r.get("signal_model") or {}).get("notes")
+                  or []]
     if notes:
         lines += ["## Notes", ""] + [f"- {n}" for n in notes] + [""]
     return "\n".join(lines)
@@ -109,6 +112,10 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
         b = r.get("best") or {}
         lines.append(f"  {n:<26} best {_f(b.get('mass'), 5)} GeV, "
                      f"Z_local {_f(b.get('z_local'))}")
+    doubtful = [n for n, r in d["channels"].items()
+                if (r.get("signal_model") or {}).get("doubtful")]
+    if doubtful:
+        lines.append(f"  signal model doubtful in   {', '.join(doubtful)} (see the report)")
     if "outputs" in d:
         lines.append(f"  outputs                    {d['outputs']['dir']}")
     lines.append("  (a local significance is not a discovery; see the report's caution)")
