@@ -62,7 +62,9 @@ def _summary(result: object) -> str:
         state = (f"doubtful: {len(sm['notes'])} notes in results.json signal_model.notes"
                  if sm.get("doubtful") else
                  f"closure max {sm.get('max_closure_deviation') or 0:.2f} errors")
-        text += f"\n  signal model               {sm['shape']} from samples ({state})"
+        head, _, last = text.rpartition("\n")  # before the closing caution line
+        text = (f"{head}\n  signal model               {sm['shape']} from samples "
+                f"({state})\n{last}")
     return text
 
 
