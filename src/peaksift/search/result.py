@@ -11,6 +11,7 @@ import numpy as np
 
 from ..config import Config
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
+from .doubts import doubts
 
 
 # ----------------------------------------------------------------------------- results
@@ -64,6 +65,8 @@ class SearchResult:
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
         results.json ``fit.settings``.
+    identification : dict or None
+        The dE/dx identification the pairing used (response, calibration fit), when on.
     """
 
     config: Config
@@ -82,6 +85,7 @@ class SearchResult:
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
     signal_model: Any = None
+    identification: Mapping[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
@@ -122,11 +126,14 @@ class SearchResult:
             "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
             "known_matches": [k.to_dict() for k in self.known_matches],
             "calibration": _plain(dict(self.calibration)) if self.calibration else None,
+            "identification": _plain(dict(self.identification))
+            if self.identification else None,
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
         }
         if self.signal_model is not None:  # absent without [signal_model]: today's keys
             out["signal_model"] = self.signal_model.to_dict()
+        out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}
