@@ -40,8 +40,7 @@ def plot_parameters(model: Any, path: Any) -> Any:
             band = np.asarray(model.band(name, grid), float)
             ax.fill_between(grid, val - band, val + band, color=COLORS["band1"], lw=0,
                             label="1$\\sigma$ band")
-            ax.plot(grid, val, color=COLORS["total"],
-                    label=f"order {model.polynomials[k]['order']}")
+            ax.plot(grid, val, color=COLORS["total"], label="polynomial fit")
             pts = model.points[k]
             if k == "efficiency":
                 lo, hi = np.asarray(model.efficiency_interval).T
@@ -51,7 +50,8 @@ def plot_parameters(model: Any, path: Any) -> Any:
             ax.errorbar(m, pts["value"], yerr=yerr, fmt="o", ms=4, color=COLORS["data"],
                         label="samples")
             dev = model.closure[k]["max_deviation"]
-            ax.set_title(f"{k}: leave-one-out max {dev:.2f}$\\sigma$", fontsize=9)
+            ax.set_title(f"{k} (order {model.polynomials[k]['order']}): leave-one-out max "
+                         f"{dev:.2f}$\\sigma$", fontsize=9)
             ax.set_ylabel(_LABELS.get(k, k))
         for ax in axes[-1]:
             ax.set_xlabel("generated mass [GeV]")
