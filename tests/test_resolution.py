@@ -100,7 +100,11 @@ def test_relative_resolution_has_one_check_in_the_api_and_the_config(bad):
     cfg_text = str(cfg.value).split("model.resolution.relative", 1)[1]
     assert api_text == cfg_text
     assert "<= 1" in cfg_text
-    assert load_config(_config({"relative": 1.0})).model.resolution.sigma(150.0) == 150.0
+    # 1.0 itself passes the relative check; a sigma equal to the mass is then refused by
+    # the separate rule that the peak must fit in the window (half its width at most)
+    with pytest.raises(ConfigError) as edge:
+        load_config(_config({"relative": 1.0}))
+    assert "<= 1" not in str(edge.value) and "more than 0.5 of the" in str(edge.value)
 
 
 def test_absolute_resolution_is_in_gev():
