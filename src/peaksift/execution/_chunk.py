@@ -69,7 +69,7 @@ class Selection:
     pt_edges, rapidity_edges : sequence of float, optional
         Bins of the candidates' pT (GeV; default 100 bins from 0 to the top mass edge)
         and rapidity (default 60 bins on [-3, 3]) summary histograms, filled with the
-        candidates whose mass lies in the histogram range.
+        candidates whose mass lies in the fit window.
     unit : str
         Unit of the mass axis (default ``"GeV"``).
     """
@@ -164,7 +164,7 @@ class ChunkOutput:
     window_mass, window_weight : ndarray
         Masses and weights of the candidates inside the fit window, in event order.
     pt_histogram, rapidity_histogram : MassHistogram
-        The candidates' pT and rapidity, for candidates inside the histogram range.
+        The candidates' pT and rapidity, for candidates inside the fit window.
     cutflow : dict[str, int]
         The pairing's cut-flow counters.
     data_warnings : tuple[str, ...]
@@ -262,12 +262,12 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
     hist = _fill_hist(edges, mass, weight, selection.unit, "m")
     lo, hi = selection.window
     inwin = in_range(mass, lo, hi)
-    inrange = in_range(mass, edges[0], edges[-1])
-    w_range = weight[inrange]
-    pt_hist = _fill_hist(selection.pt_edges, np.asarray(cands.pt, dtype=float)[inrange],
-                         w_range, selection.unit, "p_T")
+    # the pT and rapidity summaries describe the search: candidates in the fit window
+    w_win = weight[inwin]
+    pt_hist = _fill_hist(selection.pt_edges, np.asarray(cands.pt, dtype=float)[inwin],
+                         w_win, selection.unit, "p_T")
     y_hist = _fill_hist(selection.rapidity_edges,
-                        np.asarray(cands.rapidity, dtype=float)[inrange], w_range, "", "y")
+                        np.asarray(cands.rapidity, dtype=float)[inwin], w_win, "", "y")
     return ChunkOutput(
         index=-1,
         file=_spec_file(spec),

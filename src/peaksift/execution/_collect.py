@@ -49,7 +49,7 @@ class Collected:
         Candidate masses and weights inside the window, in chunk order then event order
         (the same order on every engine and for every ``chunk_events``).
     pt_histogram, rapidity_histogram : MassHistogram
-        Candidates' pT and rapidity (candidates inside the histogram range).
+        Candidates' pT and rapidity (candidates inside the fit window).
     cutflow : dict[str, int]
         Cut-flow counters summed over chunks, in the pairing's order.
     files_read : tuple[str, ...]

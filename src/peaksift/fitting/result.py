@@ -322,10 +322,15 @@ class FitResult(FrozenValue):
                 f"{self.unit}; FWHM {html.escape(format_value(self.fwhm, self.fwhm_error))} "
                 f"{self.unit}</p></div>")
 
-    def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None) -> Any:
-        """Data, total model, signal and background, with pulls underneath (see
-        :func:`peaksift.fitting.figure.fit_figure`)."""
+    def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
+             run: Any = None, symbol: str | None = None, note: str = "") -> Any:
+        """Data, total model, signal and background, with pulls underneath and the fitted
+        numbers in a table; returns a matplotlib Figure drawn without pyplot (the user's
+        backend is left alone).  ``fig``: draw on this empty Figure instead; ``run``: a
+        run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``).  See
+        :func:`peaksift.fitting.figure.fit_figure`."""
         from .figure import fit_figure
 
-        return fit_figure(self, path, title=title)
+        return fit_figure(self, path, title=title, fig=fig, run=run, symbol=symbol,
+                          note=note)
 
