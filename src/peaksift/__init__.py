@@ -45,9 +45,9 @@ _EXPORTS: dict[str, str] = {
     "ScanResult": "peaksift.stats.scan",
     "LimitResult": "peaksift.stats.limits",
     "upper_limits": "peaksift.stats.limits",
-    "run_search": "peaksift.search",
-    "SearchResult": "peaksift.search",
-    "load_config": "peaksift.config",
+    "run_search": "peaksift.search.run",
+    "SearchResult": "peaksift.search.result",
+    "load_config": "peaksift.config.build",
 }
 
 _SUBMODULES = {
