@@ -152,7 +152,8 @@ def candidates(collected: Any, outdir: str | os.PathLike[str], *,
     """Candidates' transverse momentum (log scale, so the tail shows) and rapidity, side
     by side, for the candidates in the search window (stated on the figure)."""
     labels = labels or FigureLabels()
-    lo, hi = (float(v) for v in collected.window)
+    lo, hi = (float(v) for v in (getattr(collected, "summary_window", None)
+                                 or collected.window))
     fig, (a1, a2) = new_figure((9.0, 3.9), 1, 2)
     with figure_style():
         n = collected.pt_histogram.total()

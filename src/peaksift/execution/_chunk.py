@@ -69,7 +69,11 @@ class Selection:
     pt_edges, rapidity_edges : sequence of float, optional
         Bins of the candidates' pT (GeV; default 100 bins from 0 to the top mass edge)
         and rapidity (default 60 bins on [-3, 3]) summary histograms, filled with the
-        candidates whose mass lies in the fit window.
+        candidates whose mass lies in ``summary_window``.
+    summary_window : (float, float), optional
+        Mass range of the candidates in the pT and rapidity summaries (both ends inside);
+        default ``window``.  A search that also collects a calibration window sets it to
+        the search window, so the summaries describe the search.
     unit : str
         Unit of the mass axis (default ``"GeV"``).
     """
@@ -91,6 +95,7 @@ class Selection:
     strict: bool = False
     pt_edges: tuple[float, ...] | None = None
     rapidity_edges: tuple[float, ...] | None = None
+    summary_window: tuple[float, float] | None = None
     unit: str = "GeV"
 
     def __post_init__(self) -> None:
@@ -112,6 +117,14 @@ class Selection:
                     f"Selection.window must be two numbers (lo, hi), got {self.window!r}"
                 )
             set_(self, "window", win)
+        if self.summary_window is None:
+            set_(self, "summary_window", self.window)
+        else:
+            sw = _float_tuple(self.summary_window, "summary_window")
+            if len(sw) != 2:
+                raise ConfigError(f"Selection.summary_window must be two numbers (lo, hi), "
+                                  f"got {self.summary_window!r}")
+            set_(self, "summary_window", sw)
         if self.collections is None:
             names = (self.first,) if self.second in (None, self.first) else (self.first,
                                                                                self.second)
@@ -164,7 +177,8 @@ class ChunkOutput:
     window_mass, window_weight : ndarray
         Masses and weights of the candidates inside the fit window, in event order.
     pt_histogram, rapidity_histogram : MassHistogram
-        The candidates' pT and rapidity, for candidates inside the fit window.
+        The candidates' pT and rapidity, for candidates inside the selection's
+        ``summary_window``.
     cutflow : dict[str, int]
         The pairing's cut-flow counters.
     data_warnings : tuple[str, ...]
@@ -262,12 +276,13 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
     hist = _fill_hist(edges, mass, weight, selection.unit, "m")
     lo, hi = selection.window
     inwin = in_range(mass, lo, hi)
-    # the pT and rapidity summaries describe the search: candidates in the fit window
-    w_win = weight[inwin]
-    pt_hist = _fill_hist(selection.pt_edges, np.asarray(cands.pt, dtype=float)[inwin],
-                         w_win, selection.unit, "p_T")
+    # the pT and rapidity summaries describe the search: candidates in its window
+    insum = in_range(mass, *selection.summary_window)
+    w_sum = weight[insum]
+    pt_hist = _fill_hist(selection.pt_edges, np.asarray(cands.pt, dtype=float)[insum],
+                         w_sum, selection.unit, "p_T")
     y_hist = _fill_hist(selection.rapidity_edges,
-                        np.asarray(cands.rapidity, dtype=float)[inwin], w_win, "", "y")
+                        np.asarray(cands.rapidity, dtype=float)[insum], w_sum, "", "y")
     return ChunkOutput(
         index=-1,
         file=_spec_file(spec),

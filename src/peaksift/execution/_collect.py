@@ -49,7 +49,9 @@ class Collected:
         Candidate masses and weights inside the window, in chunk order then event order
         (the same order on every engine and for every ``chunk_events``).
     pt_histogram, rapidity_histogram : MassHistogram
-        Candidates' pT and rapidity (candidates inside the fit window).
+        Candidates' pT and rapidity (candidates inside ``summary_window``).
+    summary_window : (float, float) or None
+        The mass range of those summaries (the selection's ``summary_window``).
     cutflow : dict[str, int]
         Cut-flow counters summed over chunks, in the pairing's order.
     files_read : tuple[str, ...]
@@ -89,6 +91,7 @@ class Collected:
     n_data_warnings: int = 0
     dropped_objects: dict[str, dict[str, int]] = field(default_factory=dict)
     engine_info: dict[str, Any] = field(default_factory=dict)
+    summary_window: tuple[float, float] | None = None
 
     @property
     def window_candidates(self) -> int:
@@ -333,6 +336,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     return Collected(
         histogram=reducer.hist,
         window=selection.window,
+        summary_window=selection.summary_window,
         window_mass=masses,
         window_weight=weights,
         pt_histogram=reducer.pt,

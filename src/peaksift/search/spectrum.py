@@ -42,16 +42,18 @@ def run_spectrum(
         if stage is not None:
             from .. import plotting
 
+            labels = plotting.figure_labels(cfg)
             _save_spectrum(hist, stage.path / "spectrum.json", blinding)
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)
                 figs = plotting.spectrum_only(hist, stage.path / "figures",
                                               formats=cfg.output.formats,
                                               log_scale=cfg.output.log_scale, blind=blind,
-                                              title=_short_title(cfg))
+                                              title=_short_title(cfg), labels=labels)
                 if blind is None:  # pT/rapidity include the blinded window: withheld
                     figs.update(plotting.candidates(col, stage.path / "figures",
-                                                    formats=cfg.output.formats))
+                                                    formats=cfg.output.formats,
+                                                    labels=labels))
             files = {"spectrum.json": target / "spectrum.json",
                      **{k: target / "figures" / Path(v).name for k, v in figs.items()}}
     return SpectrumResult(config=cfg, histogram=hist, collected=col, outdir=target, files=files)
