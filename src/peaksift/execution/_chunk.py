@@ -181,6 +181,8 @@ class ChunkOutput:
         ``summary_window``.
     cutflow : dict[str, int]
         The pairing's cut-flow counters.
+    requirements : dict[str, int]
+        Per-requirement cut flow of the same chunk (:func:`requirement_flow`), in order.
     data_warnings : tuple[str, ...]
         Messages of the :class:`~peaksift.errors.DataWarning` raised while reading (objects
         with bad values dropped), to be reported once by the reduce.
@@ -201,6 +203,7 @@ class ChunkOutput:
     cutflow: dict[str, int]
     data_warnings: tuple[str, ...] = ()
     seconds: float = 0.0
+    requirements: dict[str, int] | None = None
 
 
 def _spec_file(spec: Any) -> str:
@@ -264,6 +267,7 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
             target_mass=selection.target_mass, min_delta_r=selection.min_delta_r,
             event_offset=int(spec.first_event),
         )
+        requirements = requirement_flow(events, selection)
     for w in caught:
         if issubclass(w.category, DataWarning):
             messages.append(str(w.message))
@@ -297,7 +301,48 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
         cutflow={str(k): int(v) for k, v in dict(cands.cutflow).items()},
         data_warnings=tuple(messages),
         seconds=time.perf_counter() - t0,
+        requirements=requirements,
     )
+
+
+def requirement_flow(events: Any, selection: Selection) -> dict[str, int]:
+    """Per-requirement cut flow of one chunk, in the order the pairing applies them.
+
+    Keys, in order: ``events read``; each clause of the event cut (``event: <clause>``,
+    events passing it and every clause before); for each collection (the second only when
+    it differs) ``<coll> objects`` and ``<coll>: <clause>`` (objects of the kept events
+    passing each clause of its cut in turn); and ``events with at least 2 selected <coll>
+    objects`` (or one of each collection).  The charge requirement and the pair choice follow in the
+    pairing's own cut flow (``events_with_pair``).  Counts are of entries, not weights.
+    """
+    from ..cuts import clauses, event_mask, requirement_counts
+
+    n = len(events)
+    out: dict[str, int] = {"events read": int(n)}
+    keep = np.ones(n, dtype=bool)
+    ev_cut = selection.event_cut
+    if ev_cut is not None and ev_cut != "":
+        parts = clauses(ev_cut) or (ev_cut,)
+        for part in parts:
+            keep &= event_mask(events, part)
+            label = getattr(part, "expression", "event cut")
+            out[f"event: {label}"] = int(keep.sum())
+    sides = [(selection.first, selection.cut)]
+    if selection.second not in (None, selection.first):
+        sides.append((selection.second, selection.second_cut))
+    per_event = []
+    for coll, cut in sides:
+        steps, n_pass = requirement_counts(events[coll], cut, name=coll, keep_events=keep)
+        for j, (label, count) in enumerate(steps):
+            out[label if j == 0 else f"{coll}: {label}"] = count
+        per_event.append(n_pass)
+    if len(per_event) == 1:
+        out[f"events with at least 2 selected {selection.first} objects"] = \
+            int(np.sum(per_event[0] >= 2))
+    else:
+        out[f"events with a selected {selection.first} and a selected {selection.second}"] = \
+            int(np.sum((per_event[0] >= 1) & (per_event[1] >= 1)))
+    return out
 
 
 @dataclass(frozen=True)

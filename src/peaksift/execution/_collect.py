@@ -52,6 +52,9 @@ class Collected:
         Candidates' pT and rapidity (candidates inside ``summary_window``).
     summary_window : (float, float) or None
         The mass range of those summaries (the selection's ``summary_window``).
+    requirements : dict[str, int]
+        Per-requirement cut flow summed over chunks, in order (see
+        :func:`peaksift.execution.requirement_flow`).
     cutflow : dict[str, int]
         Cut-flow counters summed over chunks, in the pairing's order.
     files_read : tuple[str, ...]
@@ -92,6 +95,7 @@ class Collected:
     dropped_objects: dict[str, dict[str, int]] = field(default_factory=dict)
     engine_info: dict[str, Any] = field(default_factory=dict)
     summary_window: tuple[float, float] | None = None
+    requirements: dict[str, int] = field(default_factory=dict)
 
     @property
     def window_candidates(self) -> int:
@@ -108,6 +112,7 @@ class Collected:
             "window": list(self.window),
             "window_candidates": self.window_candidates,
             "cutflow": {k: int(v) for k, v in self.cutflow.items()},
+            "requirements": {k: int(v) for k, v in self.requirements.items()},
             "data_warnings": list(self.data_warnings),
             "dropped_objects": {c: dict(v) for c, v in self.dropped_objects.items()},
             "engine": dict(self.engine_info),
@@ -142,6 +147,7 @@ class _Reducer:
         self.masses: list[np.ndarray] = []
         self.weights: list[np.ndarray] = []
         self.cutflow: dict[str, int] = {}
+        self.requirements: dict[str, int] = {}
         self.events = 0
         self.candidates = 0
         self.files: list[str] = []
@@ -169,6 +175,8 @@ class _Reducer:
                 self.weights.append(out.window_weight)
             for k, v in out.cutflow.items():
                 self.cutflow[k] = self.cutflow.get(k, 0) + int(v)
+            for k, v in (out.requirements or {}).items():
+                self.requirements[k] = self.requirements.get(k, 0) + int(v)
             self.events += out.events
             self.candidates += out.candidates
             self.busy += out.seconds
@@ -337,6 +345,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         histogram=reducer.hist,
         window=selection.window,
         summary_window=selection.summary_window,
+        requirements=reducer.requirements,
         window_mass=masses,
         window_weight=weights,
         pt_histogram=reducer.pt,

@@ -106,6 +106,8 @@ class SearchResult:
                 "candidates_all_masses": int(col.candidates),
                 "sum_of_weights": float(self.histogram.total()),
                 "cutflow": cutflow,
+                "requirements": {str(k): int(v) for k, v in
+                                 dict(getattr(col, "requirements", {}) or {}).items()},
             },
             "fit": fit,
             "background_only_fit": _fit_dict(self.background_fit)
