@@ -31,9 +31,9 @@ __version__ = "0.1.0"
 
 # public name -> module that defines it
 _EXPORTS: dict[str, str] = {
-    "read_events": "peaksift.events",
-    "iter_events": "peaksift.events",
-    "describe": "peaksift.events",
+    "read_events": "peaksift.events.read",
+    "iter_events": "peaksift.events.read",
+    "describe": "peaksift.events.describe",
     "pair": "peaksift.pairing",
     "Candidates": "peaksift.pairing",
     "compile_cut": "peaksift.cuts",
