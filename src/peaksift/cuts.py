@@ -62,8 +62,8 @@ __all__ = [
     "event_mask",
     "event_names",
     "flat_object_mask",
-    "requirement_counts",
     "object_mask",
+    "requirement_counts",
 ]
 
 #: Whitelisted functions: name -> (numpy implementation, minimum and maximum argument count).
