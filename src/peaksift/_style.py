@@ -48,7 +48,7 @@ _RC = {
     "figure.figsize": (7.0, 5.0),
     "figure.dpi": 110,
     "savefig.dpi": 150,
-    "savefig.bbox": "tight",
+    "savefig.bbox": None,  # fixed margins (see new_figure): "tight" draws every figure twice
     "font.size": 10.5,
     "axes.labelsize": 11,
     "axes.titlesize": 11,
@@ -97,7 +97,18 @@ def new_figure(figsize: tuple[float, float] = (7.0, 4.6), nrows: int = 1, ncols:
         fig = Figure(figsize=figsize)
         FigureCanvasAgg(fig)
         axes = fig.subplots(nrows, ncols, **subplots)
+        margins(fig)
     return fig, axes
+
+
+def margins(fig: Any, *, left: float = 0.85, right: float = 0.45, top: float = 0.62,
+            bottom: float = 0.62) -> None:
+    """Fixed margins in inches: room for the axis labels, the sigma labels on the right of a
+    p-value scan and the two header lines above (a fixed frame draws each figure once,
+    where a "tight" bounding box draws it twice)."""
+    w, h = fig.get_size_inches()
+    fig.subplots_adjust(left=left / w, right=1.0 - right / w, top=1.0 - top / h,
+                        bottom=bottom / h)
 
 
 # ---------------------------------------------------------------------- mass symbols

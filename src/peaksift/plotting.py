@@ -11,6 +11,8 @@ Which function
 * :func:`scan_figure` -- the p-value scan with the global significance noted; an excess
   beyond the axis floor is clipped there and its p stated (as a power of ten if need be).
 * :func:`figure_labels` -- the run label and the pair's mass symbol from a configuration.
+* :func:`draw_in_background` -- :func:`search_figures` without the limits, in a forked
+  process while the caller computes the limits; :func:`limits_figure` then adds them.
 * :func:`save` -- write one figure in several formats.
 
 Every figure carries the run label (name, sqrt(s), luminosity, channel) above its axes and
@@ -47,8 +49,8 @@ from ._style import (
     shade_blinded,
 )
 
-__all__ = ["FigureLabels", "candidates", "figure_labels", "save", "scan_figure",
-           "search_figures", "spectrum_only"]
+__all__ = ["FigureLabels", "candidates", "draw_in_background", "figure_labels",
+           "limits_figure", "save", "scan_figure", "search_figures", "spectrum_only"]
 
 
 @dataclass(frozen=True)
@@ -177,7 +179,7 @@ def candidates(collected: Any, outdir: str | os.PathLike[str], *,
                 ax.set_xlim(e[0], e[-1])
         draw_header(a1, labels.run, f"{number(round(n))} candidates with "
                     f"{fixed(lo, 1)} < ${labels.symbol}$ < {fixed(hi, 1)} GeV (search window)")
-        fig.subplots_adjust(wspace=0.28)
+        fig.subplots_adjust(wspace=0.3)
     return {"candidates": save(fig, outdir, "candidates", formats)}
 
 
@@ -317,6 +319,81 @@ def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = No
                         transform=ax.transAxes, ha="right", va="bottom", fontsize=8.5,
                         color=COLORS["signal"])
     return fig
+
+
+def limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
+                  labels: FigureLabels | None = None) -> Path:
+    """The limits figure of a search result (``limits.png`` and the other formats)."""
+    return _limits_figure(result, outdir, formats,
+                          labels or figure_labels(getattr(result, "config", None)))
+
+
+class _Drawing:
+    """Figures being drawn in a forked process; :meth:`join` waits and returns their paths
+    (drawing them here instead if the process failed, so no figure is ever lost)."""
+
+    def __init__(self, proc: Any, listing: Path, redo: Any) -> None:
+        self.proc, self.listing, self.redo = proc, listing, redo
+
+    def join(self) -> dict[str, Path]:
+        import json
+
+        if self.proc is not None:
+            self.proc.join()
+            if self.proc.exitcode == 0 and self.listing.exists():
+                names = json.loads(self.listing.read_text())
+                self.listing.unlink()
+                return {k: Path(v) for k, v in names.items()}
+        self.listing.unlink(missing_ok=True)
+        return self.redo()
+
+    def cancel(self) -> None:
+        """Stop the drawing process (the caller failed and discards the outputs)."""
+        if self.proc is not None and self.proc.is_alive():
+            self.proc.terminate()
+        if self.proc is not None:
+            self.proc.join()
+
+
+def _draw_child(result: Any, outdir: Path, listing: Path, kw: dict[str, Any]) -> None:
+    """In the forked process: draw, list the files, exit without the parent's clean-up."""
+    import json
+
+    code = 1
+    try:
+        out = search_figures(result, outdir, **kw)
+        listing.write_text(json.dumps({k: str(v) for k, v in out.items()}))
+        code = 0
+    finally:
+        os._exit(code)  # no atexit handlers or buffers of the parent run twice
+
+
+def draw_in_background(result: Any, outdir: str | os.PathLike[str], **kw: Any) -> _Drawing:
+    """Start :func:`search_figures` of ``result`` (its limits left out) in a forked process
+    and return at once; ``.join()`` gives name -> PNG path.  Where fork is not available
+    (or not safe: macOS, Windows), or ``PEAKSIFT_DRAW_INLINE`` is set, the figures are drawn
+    at ``join`` in this process instead.  Either way the files are the same."""
+    import dataclasses
+    import multiprocessing
+
+    from ._processes import quiet_fork, resolve_start_method
+
+    outdir = Path(outdir)
+    outdir.mkdir(parents=True, exist_ok=True)
+    pre = dataclasses.replace(result, limits=None) if dataclasses.is_dataclass(result) \
+        else result
+    listing = outdir / ".drawn.json"
+
+    def redo() -> dict[str, Path]:
+        return search_figures(pre, outdir, **kw)
+
+    if os.environ.get("PEAKSIFT_DRAW_INLINE") or resolve_start_method("auto") != "fork":
+        return _Drawing(None, listing, redo)
+    ctx = multiprocessing.get_context("fork")
+    proc = ctx.Process(target=_draw_child, args=(pre, outdir, listing, kw), daemon=True)
+    with quiet_fork():
+        proc.start()
+    return _Drawing(proc, listing, redo)
 
 
 def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
