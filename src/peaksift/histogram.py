@@ -617,3 +617,15 @@ class MassHistogram:
             f"sum of weights {self.total():.6g}, underflow {self.underflow:.6g}, "
             f"overflow {self.overflow:.6g})"
         )
+
+    def _repr_html_(self) -> str:
+        import html
+
+        kind = "regular" if self._regular else "variable"
+        rows = (("bins", f"{self.nbins} {kind} on [{self.lo:g}, {self.hi:g}] {self.unit}"),
+                ("sum of weights", f"{self.total():.6g}"),
+                ("weighted", "yes" if self.is_weighted else "no"),
+                ("underflow / overflow", f"{self.underflow:.6g} / {self.overflow:.6g}"))
+        cells = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
+                        for k, v in rows)
+        return f"<div><b>MassHistogram</b><table>{cells}</table></div>"

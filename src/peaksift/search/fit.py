@@ -120,7 +120,7 @@ def run_fit(
     out: str | os.PathLike[str] | None = None,
     engine: str | None = None,
     unblind: bool = False,
-    progress: bool = False,
+    progress: bool | None = None,
 ) -> Any:
     """One signal-plus-background fit of the configured spectrum, started at ``mass`` GeV.
 
@@ -143,6 +143,9 @@ def run_fit(
     -------
     FitResult
     """
+    from .._progress import progress_wanted
+
+    progress = progress_wanted(progress)  # None: a terminal or a notebook
     from ..fitting import fit
 
     cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)

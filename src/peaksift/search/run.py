@@ -58,7 +58,7 @@ def run_search(
     toys: int | None = None,
     seed: int | None = None,
     engine: str | None = None,
-    progress: bool = False,
+    progress: bool | None = None,
 ) -> SearchResult:
     """Run the whole search described by a configuration.
 
@@ -74,8 +74,9 @@ def run_search(
         Lift the configured blinding for this run.
     toys, seed, engine : optional
         Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
-    progress : bool
-        Show progress bars (reading; toys).
+    progress : bool or None
+        Show progress bars (reading; toys); None (default): when a terminal or a Jupyter
+        notebook is watching (``tqdm.auto`` draws notebook widgets).
 
     Returns
     -------
@@ -87,6 +88,9 @@ def run_search(
     PeaksiftError
         Any user-facing problem (configuration, input, cut, fit); nothing is written then.
     """
+    from .._progress import progress_wanted
+
+    progress = progress_wanted(progress)  # None: a terminal or a notebook
     started = _utc()
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)

@@ -19,7 +19,7 @@ def run_spectrum(
     *,
     out: str | os.PathLike[str] | bool | None = None,
     engine: str | None = None,
-    progress: bool = False,
+    progress: bool | None = None,
 ) -> SpectrumResult:
     """Only the selected spectrum: ``spectrum.json`` (MassHistogram format) and its figure.
 
@@ -27,6 +27,9 @@ def run_spectrum(
     histogram returned and saved (marked in the file's ``blinded`` entry) and hidden in the
     figure, and the candidates' pT/rapidity figure is not written (it includes them).
     """
+    from .._progress import progress_wanted
+
+    progress = progress_wanted(progress)  # None: a terminal or a notebook
     cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)

@@ -249,12 +249,71 @@ class LimitResult(FrozenValue):
     flags: tuple[str, ...] = ()
     assumptions: Any = field(default_factory=dict)
 
-    def __repr__(self) -> str:
-        i = int(np.nanargmin(self.expected))
+    def _summary(self) -> list[tuple[str, str]]:
+        obs = np.where(self.blinded, np.nan, self.observed)
+        out = [("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
+                          f"{self.mass_unit}")),
+               ("limit", f"{self.cl:.0%} CL CLs ({self.method}) on "
+                         + ("the signal yield" if self.unit == "events" else
+                            f"sigma x B [{self.unit}]"))]
+        if np.any(np.isfinite(obs)):
+            j = int(np.nanargmax(obs / self.expected))
+            out.append(("observed", (f"{np.nanmin(obs):.3g}-{np.nanmax(obs):.3g} {self.unit}; "
+                                    f"furthest above expected at {self.masses[j]:.2f} "
+                                    f"{self.mass_unit}: {obs[j]:.3g} vs {self.expected[j]:.3g}")))
+        out.append(("expected", (f"{np.nanmin(self.expected):.3g}-"
+                                f"{np.nanmax(self.expected):.3g} {self.unit}")))
         flagged = sum(1 for f in self.flags if f)
-        return (f"LimitResult({self.masses.size} masses, {self.cl:.0%} CL {self.method}, "
-                f"best expected {self.expected[i]:.3g} {self.unit} at {self.masses[i]:g} "
-                f"{self.mass_unit}" + (f", {flagged} flagged" if flagged else "") + ")")
+        if flagged:
+            out.append(("flagged", f"{flagged} masses (see flags)"))
+        return out
+
+    def __repr__(self) -> str:
+        return "LimitResult(" + "; ".join(f"{k} {v}" for k, v in self._summary()) + ")"
+
+    def _repr_html_(self) -> str:
+        import html
+
+        rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
+                       for k, v in self._summary())
+        return f"<div><b>LimitResult</b><table>{rows}</table></div>"
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> LimitResult:
+        """The LimitResult that :meth:`to_dict` wrote (or a results.json ``limits``)."""
+        def arr(key: str, default: Any = None) -> np.ndarray | None:
+            v = d.get(key, default)
+            if v is None:
+                return None
+            return np.array([np.nan if x is None else x for x in v], float)
+
+        try:
+            masses = arr("mass")
+            blind = d.get("blind")
+            return cls(
+                masses=masses, observed=arr("observed"), expected=arr("expected"),
+                expected_minus2=arr("expected_minus2"), expected_minus1=arr("expected_minus1"),
+                expected_plus1=arr("expected_plus1"), expected_plus2=arr("expected_plus2"),
+                unit=str(d["unit"]), cl=float(d["cl"]), method=str(d["method"]),
+                methods=tuple(d.get("methods") or ()),
+                blind=None if blind is None else (float(blind[0]), float(blind[1])),
+                blinded=np.array(d.get("blinded") or [False] * masses.size, bool),
+                conversion=arr("conversion"), constraint=d.get("constraint"),
+                relative_uncertainty=float(d.get("relative_uncertainty") or 0.0),
+                toys=dict(d.get("toys") or {}), notes=tuple(d.get("notes") or ()),
+                mass_unit=str(d.get("mass_unit", "GeV")),
+                background_under_signal=arr("background_under_signal"),
+                counting_floor=arr("counting_floor"),
+                low_count_background=float(d.get("low_count_background",
+                                                 LOW_COUNT_BACKGROUND)),
+                asymptotic_doubtful=None if d.get("asymptotic_doubtful") is None else
+                np.array(d["asymptotic_doubtful"], bool),
+                below_floor=None if d.get("below_floor") is None else
+                np.array(d["below_floor"], bool),
+                flags=tuple(d.get("flags") or ()), assumptions=dict(d.get("assumptions") or {}))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FitError(f"not a limit result written by LimitResult.to_dict: {exc!r}") \
+                from None
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: the search's ``limits`` keys (``mass``, ``observed``, ``expected``,
@@ -278,7 +337,7 @@ class LimitResult(FrozenValue):
             "low_count_background": self.low_count_background,
             "asymptotic_doubtful": self.asymptotic_doubtful,
             "below_floor": self.below_floor, "flags": list(self.flags),
-            "assumptions": dict(self.assumptions),
+            "assumptions": dict(self.assumptions), "mass_unit": self.mass_unit,
         })
 
     def plot(self, path: Any = None, *, ax: Any = None, fig: Any = None,

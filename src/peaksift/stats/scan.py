@@ -407,9 +407,61 @@ class ScanResult(FrozenValue):
             "best": self.best, "window": list(self.window), "signal_shape": self.signal_shape,
             "background_shape": self.background_shape, "weight_scale": self.weight_scale,
             "unit": self.unit, "notes": list(self.notes),
+            "converged": [bool(v) for v in self.converged], "best_index": int(self.best_index),
             "refit": None if self.refit is None else self.refit.to_dict(),
         }
         return plain(d)
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> ScanResult:
+        """The ScanResult that :meth:`to_dict` wrote (or a results.json ``scan``), without
+        the model: no toys or expected curves from it, everything else as it was."""
+        from ..fitting.result import FitResult
+
+        def arr(key: str) -> np.ndarray:
+            return np.array([np.nan if v is None else v for v in d[key]], float)
+
+        try:
+            masses = arr("mass")
+            blinded = np.array(d.get("blinded") or [False] * masses.size, bool)
+            q0 = arr("q0")
+            best = d.get("best_index")
+            if best is None:
+                best = int(np.nanargmax(np.where(blinded, -np.inf, np.nan_to_num(q0, nan=-1))))
+            blind = d.get("blind")
+            ze = d.get("z_expected")
+            return cls(
+                masses=masses, sigma=arr("sigma"), q0=q0, z_local=arr("z_local"),
+                p_local=arr("p_local"), signal_yield=arr("signal_yield"),
+                signal_yield_error=arr("signal_yield_error"),
+                background_yield=arr("background_yield"),
+                converged=np.array(d.get("converged") or [True] * masses.size, bool),
+                best_index=int(best), best_mass=float(masses[int(best)]),
+                refit=None if not d.get("refit") else FitResult.from_dict(d["refit"]),
+                window=tuple(float(v) for v in d["window"]),
+                blind=None if blind is None else (float(blind[0]), float(blind[1])),
+                blinded=blinded, signal_shape=str(d["signal_shape"]),
+                background_shape=str(d["background_shape"]),
+                weight_scale=float(d.get("weight_scale") or 1.0),
+                z_expected=None if ze is None else arr("z_expected"),
+                notes=tuple(d.get("notes") or ()), unit=str(d.get("unit", "GeV")))
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise FitError(f"not a scan result written by ScanResult.to_dict: {exc!r}") from None
+
+    def _repr_html_(self) -> str:
+        import html
+
+        b = self.best
+        rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>" for k, v in (
+            ("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
+                       f"{self.unit}")),
+            ("model", f"{self.signal_shape} + {self.background_shape}"),
+            ("best mass", f"{b['mass']:.2f} {self.unit}"),
+            ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
+            ("blinded", "no" if self.blind is None else
+             f"{self.blind[0]:g}-{self.blind[1]:g} {self.unit}")))
+        return (f"<div><b>ScanResult</b> (a local significance is not a discovery; see "
+                f"global_significance)<table>{rows}</table></div>")
 
     # ------------------------------------------------------ look-elsewhere
     def toy_scans(self, toys: int, *, seed: int = 0, workers: int | None = None,
