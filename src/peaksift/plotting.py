@@ -43,6 +43,7 @@ from ._style import (
     channel_tex,
     draw_header,
     figure_style,
+    margins,
     mass_symbol,
     new_figure,
     particle_tex,
@@ -141,7 +142,10 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                 ax.set_ylim(0, 1.3 * float(np.max(shown + np.sqrt(np.abs(shown)))))
             ax.set_xlabel(labels.mass_axis(hist.unit))
             ax.legend(loc="upper right")
-            draw_header(ax, labels.run, ",  ".join(p for p in (title, count) if p))
+            note = "\n".join(p for p in (title, count) if p)
+            if "\n" in note:  # a second statement line above the axes
+                margins(fig, top=0.78)
+            draw_header(ax, labels.run, note)
         name = "spectrum_log" if log else "spectrum"
         out[name] = save(fig, outdir, name, formats)
     return out
