@@ -35,15 +35,14 @@ from pathlib import Path
 from typing import Any
 
 from ._files import atomic_write
-from ._format import format_interval, format_pm
+from ._format import format_interval, format_pm, number
 from ._json import plain
 from .report_sections import (
-    _BLINDED_CAPTIONS,  # noqa: F401 - the captions, re-exported for callers
-    _CAPTIONS,
+    BLINDED_CAPTIONS,
+    CAPTIONS,
     CAUTION,
     Block,
     Section,
-    _num,
     fit_settings_text,
     section_background_fit,
     section_calibration,
@@ -69,6 +68,9 @@ __all__ = [
 ]
 
 
+
+# figure captions by name (kept under their former private names for existing callers)
+_CAPTIONS, _BLINDED_CAPTIONS = CAPTIONS, BLINDED_CAPTIONS
 
 # ------------------------------------------------------------------------------- writing
 def write_results_json(results: Mapping[str, Any], path: str | os.PathLike[str]) -> Path:
@@ -110,8 +112,8 @@ def _run_line(r: Mapping[str, Any]) -> str:
     run = cfg.get("run") or {}
     lumi = (cfg.get("limits") or {}).get("luminosity")
     parts = [str(run.get("name") or ""),
-             f"\u221as = {_num(run['sqrt_s'])} TeV" if run.get("sqrt_s") else "",
-             f"{_num(lumi)} fb\u207b\u00b9" if lumi else ""]
+             f"\u221as = {number(run['sqrt_s'])} TeV" if run.get("sqrt_s") else "",
+             f"{number(lumi)} fb\u207b\u00b9" if lumi else ""]
     return ", ".join(p for p in parts if p)
 
 
@@ -201,7 +203,7 @@ def _html_table(head: Sequence[str], rows: Sequence[Sequence[str]], *,
 
 def _img(path: str | os.PathLike[str], name: str, cap: str | None = None) -> str:
     data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
-    cap = _CAPTIONS.get(name, name) if cap is None else cap
+    cap = CAPTIONS.get(name, name) if cap is None else cap
     return (f'<figure id="fig-{_h(name)}"><img alt="{_h(name)}" '
             f'src="data:image/png;base64,{data}"><figcaption>{_h(cap)}</figcaption></figure>')
 

@@ -31,7 +31,7 @@ CAUTION = (
 )
 
 # figure name -> caption, in report order
-_CAPTIONS = {
+CAPTIONS = {
     "spectrum": "Selected mass spectrum with the signal-plus-background fit at the best mass "
                 "hypothesis, its signal component, and the pulls (data - fit) / error per bin.",
     "spectrum_log": "The same spectrum on a logarithmic scale.",
@@ -47,7 +47,7 @@ _CAPTIONS = {
 }
 
 # captions that differ while the run is blinded (no fit drawn, nothing shown inside)
-_BLINDED_CAPTIONS = {
+BLINDED_CAPTIONS = {
     "spectrum": "Selected mass spectrum while blinded: the bins overlapping the blinded window "
                 "(hatched) are hidden, and no signal-plus-background fit or pulls are drawn "
                 "until the run is unblinded.",
@@ -70,9 +70,9 @@ def _blinded(r: Mapping[str, Any]) -> bool:
 
 
 def _caption(name: str, r: Mapping[str, Any]) -> str:
-    if _blinded(r) and name in _BLINDED_CAPTIONS:
-        return _BLINDED_CAPTIONS[name]
-    return _CAPTIONS.get(name, name)
+    if _blinded(r) and name in BLINDED_CAPTIONS:
+        return BLINDED_CAPTIONS[name]
+    return CAPTIONS.get(name, name)
 
 
 def _window_count_label(r: Mapping[str, Any]) -> str:
@@ -339,7 +339,7 @@ def section_calibration(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Bl
     if not cal:
         return []
     return [("h2", "Calibration peak"), ("table", ["quantity", "value"], cal),
-            *_figure(fig, "calibration", _CAPTIONS["calibration"])]
+            *_figure(fig, "calibration", CAPTIONS["calibration"])]
 
 
 # ------------------------------------------------------------------------------- limits
@@ -511,7 +511,7 @@ def section_selection(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Bloc
                      f"{_num(inp.get('events_selected'))}; {_window_count_label(r)}: "
                      f"{_num(inp.get('candidates'))}.")))
     if "candidates" in fig:
-        out += _figure(fig, "candidates", _CAPTIONS["candidates"])
+        out += _figure(fig, "candidates", CAPTIONS["candidates"])
     elif _blinded(r):
         out.append(("p", _WITHHELD_CANDIDATES))
     return out
@@ -539,7 +539,7 @@ def _provenance_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
 
 def section_other_figures(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     """Figures no section placed (added by callers), so none is silently dropped."""
-    return [("figure", name, name) for name in fig if name not in _CAPTIONS]
+    return [("figure", name, name) for name in fig if name not in CAPTIONS]
 
 
 def section_provenance(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
