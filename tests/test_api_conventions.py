@@ -128,3 +128,13 @@ def test_window_snapping_is_reported():
                       start={"mass": 150.0, "sigma": 2.0})
     assert fr.window == (110.0, 200.0)
     assert any("snapped" in n and "110-200" in n for n in fr.notes)
+
+
+def test_arrays_under_their_json_names(search):
+    for res in (search.scan, search.limits):
+        d = res.to_dict()
+        assert np.array_equal(res.mass, np.array(d["mass"], float))
+        assert res.mass is res.masses
+    d = search.scan.to_dict()
+    assert np.array_equal(search.scan.signal_yield_error,
+                          np.array(d["signal_yield_error"], float))

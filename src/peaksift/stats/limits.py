@@ -249,6 +249,11 @@ class LimitResult(FrozenValue):
     flags: tuple[str, ...] = ()
     assumptions: Any = field(default_factory=dict)
 
+    @property
+    def mass(self) -> np.ndarray:
+        """The mass hypotheses under their results.json name (the same array as ``masses``)."""
+        return self.masses
+
     def _summary(self) -> list[tuple[str, str]]:
         obs = np.where(self.blinded, np.nan, self.observed)
         out = [("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "

@@ -380,6 +380,11 @@ class ScanResult(FrozenValue):
     unit: str = "GeV"
     model: ScanModel | None = field(default=None, compare=False)
 
+    @property
+    def mass(self) -> np.ndarray:
+        """The mass hypotheses under their results.json name (the same array as ``masses``)."""
+        return self.masses
+
     # --------------------------------------------------------------- summary
     @property
     def best(self) -> dict[str, float]:
