@@ -15,9 +15,11 @@ timings; ``-vv`` for more).  The ones that read events take ``--engine``, ``--wo
 ``--address`` (a Dask scheduler; implies ``--engine dask``).
 
 A user's mistake (a :class:`~peaksift.errors.PeaksiftError`) prints one line on stderr and
-exits with status 2; no traceback.  A missing optional package (the ``distributed`` extra for
-the Dask engine) is such a mistake: the line names the extra and how to install it.
-Warnings print as one ``peaksift: warning:`` line each, never with a source line.
+exits with status 2; no traceback.  Ctrl-C exits with 130 and SIGTERM with 143, each after
+removing the run's unfinished outputs and stopping its worker processes.  A missing optional
+package (the ``distributed`` extra for the Dask engine) is a user's mistake too: the line
+names the extra and how to install it.  Warnings print as one ``peaksift: warning:`` line
+each, never with a source line.
 """
 
 from __future__ import annotations
@@ -82,7 +84,8 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .simulate import write_demo
 
-    info = write_demo(args.outdir, n_events=args.events, seed=args.seed, weighted=args.weighted)
+    info = write_demo(args.outdir, n_events=args.events, seed=args.seed, weighted=args.weighted,
+                      share_folder=args.share_folder)
     print(info["summary"] if isinstance(info, dict) and "summary" in info else info)
     return 0
 
@@ -157,8 +160,17 @@ def _summary_text(d: Mapping[str, Any]) -> str:
             + " (see the report)"))
     if "outputs" in d:
         lines.append(_row("outputs", str(part(d, "outputs").get("dir"))))
+    _doubt_lines(lines, d)
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _doubt_lines(lines: list[str], d: Mapping[str, Any]) -> None:
+    """One WARNING line per doubt results.json lists (:mod:`peaksift.search.doubts`); the
+    invalid main fit already has its ``fit status`` line."""
+    for w in d.get("warnings") or []:
+        if isinstance(w, Mapping) and w.get("topic") != "fit":
+            lines.append(f"  WARNING: {w.get('message')}")
 
 
 def _fit_lines(lines: list[str], fit: dict) -> None:
@@ -195,7 +207,8 @@ def _cmd_search(args: argparse.Namespace) -> int:
         # printed one by one in the middle of the progress bars
         warnings.simplefilter("always")
         res = run_search(_config(args), out=args.out, unblind=args.unblind, toys=args.toys,
-                         seed=args.seed, engine=args.engine, progress=_progress_wanted(args))
+                         seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
+                         share_folder=args.share_folder)
     numeric = [w for w in caught if issubclass(w.category, RuntimeWarning)]
     seen: set[str] = set()
     for w in caught:
@@ -216,7 +229,7 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
     from .search import run_spectrum
 
     res = run_spectrum(_config(args), out=args.out, engine=args.engine,
-                       progress=_progress_wanted(args))
+                       progress=_progress_wanted(args), share_folder=args.share_folder)
     h = res.histogram
     bl = res.config.blinding
     hidden = (f" outside the blinded window [{bl.window[0]:g}, {bl.window[1]:g}] GeV "
@@ -233,7 +246,8 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     from .search import FIT_FILES, run_fit
 
     fr = run_fit(_config(args), args.mass, hold_mass=args.hold_mass, out=args.out,
-                 engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args))
+                 engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args),
+                 share_folder=args.share_folder)
     print(repr(fr))
     print(_row("mass", f"held at {args.mass:g} GeV" if args.hold_mass
                else f"started at {args.mass:g} GeV"))
@@ -258,6 +272,13 @@ def _demo_config_hook(args: argparse.Namespace) -> None:
     path = write_demo_config(args.outdir)
     if path is not None:
         print(f"config for the search: {path}  (run: peaksift search {path})")
+
+
+def _share_opt(q: argparse.ArgumentParser) -> None:
+    """The output-folder contract's one switch (see :mod:`peaksift._output`)."""
+    q.add_argument("--share-folder", action="store_true",
+                   help="write into an output folder that also holds files peaksift did not "
+                        "write (they are never touched); without it such a folder is refused")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -310,6 +331,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--events", type=int, default=None, help="number of events (default: demo size)")
     d.add_argument("--seed", type=int, default=None, help="random seed (default: the demo's own)")
     d.add_argument("--weighted", action="store_true", help="simulated-sample variant with weights")
+    _share_opt(d)
     d.set_defaults(handler=_cmd_demo)
 
     config_help = "the search's TOML configuration (every key: docs/config.md)"
@@ -323,6 +345,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--unblind", action="store_true", help="lift the configured blinding")
     s.add_argument("--toys", type=int, default=None, help="override significance.toys")
     s.add_argument("--seed", type=int, default=None, help="override significance.seed")
+    _share_opt(s)
     s.set_defaults(handler=_cmd_search)
 
     sp = cmd("spectrum", "only the selected spectrum: histogram file and figure",
@@ -330,6 +353,7 @@ def build_parser() -> argparse.ArgumentParser:
              "figure (and the candidates' pT/rapidity figure), no fit.", [common, engine])
     sp.add_argument("config", metavar="CONFIG", help=config_help)
     sp.add_argument("--out", default=None, help="output directory (default: output.dir)")
+    _share_opt(sp)
     sp.set_defaults(handler=_cmd_spectrum)
 
     f = cmd("fit", "one signal-plus-background fit at a chosen mass",
@@ -345,6 +369,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="directory for the fit's JSON and figure (new, empty, or a previous "
                         "`peaksift fit` output)")
     f.add_argument("--unblind", action="store_true", help="fit even if the config is blinded")
+    _share_opt(f)
     f.set_defaults(handler=_cmd_fit)
     return p
 
@@ -352,18 +377,26 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     import warnings
 
+    from ._processes import Terminated, sigterm_as_interrupt
+
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args)
     warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
     try:
-        rc = int(args.handler(args) or 0)
-        if args.command == "demo" and rc == 0:
-            _demo_config_hook(args)
+        with sigterm_as_interrupt():
+            rc = int(args.handler(args) or 0)
+            if args.command == "demo" and rc == 0:
+                _demo_config_hook(args)
         return rc
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
+    except Terminated:
+        # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
+        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
+              file=sys.stderr)
+        return 143
     except KeyboardInterrupt:
         print("peaksift: interrupted; no outputs were written", file=sys.stderr)
         return 130

@@ -47,11 +47,13 @@ from .report_sections import (
     section_background_fit,
     section_calibration,
     section_caution,
+    section_identification,
     section_limits,
     section_other_figures,
     section_provenance,
     section_result,
     section_selection,
+    section_warnings,
 )
 
 __all__ = [
@@ -81,9 +83,11 @@ def write_results_json(results: Mapping[str, Any], path: str | os.PathLike[str])
 
 #: the report's sections in order; a new section is one function added here
 SECTIONS: list[Section] = [
+    section_warnings,
     section_result,
     section_background_fit,
     section_calibration,
+    section_identification,
     section_limits,
     section_selection,
     section_other_figures,

@@ -44,6 +44,10 @@ CAPTIONS = {
     "candidates": "Transverse momentum (logarithmic scale) and rapidity of the pairs, for "
                   "the candidates in the search window (stated on the figure).",
     "calibration": "Calibration fit of the standard-candle peak in its own window.",
+    "dedx": "Measured dE/dx against momentum of the paired collection's tracks (density, log "
+            "momentum axis), with the expected Bethe curve of each mass hypothesis times the "
+            "calibrated scale; the pairing hypotheses carry the selection band (drawn with the "
+            "resolution at the reference number of samples).",
 }
 
 # captions that differ while the run is blinded (no fit drawn, nothing shown inside)
@@ -340,6 +344,59 @@ def section_calibration(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Bl
         return []
     return [("h2", "Calibration peak"), ("table", ["quantity", "value"], cal),
             *_figure(fig, "calibration", CAPTIONS["calibration"])]
+
+
+# ----------------------------------------------------------------------- identification
+def _identification_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
+    """The dE/dx identification the pairing used: response and its calibration fit."""
+    d = r.get("identification")
+    if not d:
+        return None
+    resp = d.get("response") or {}
+    pr = ((r.get("config") or {}).get("pairing") or {})
+    rows = [("material (Bethe curve)", str(resp.get("material"))),
+            ("measured field", str(resp.get("field"))),
+            ("relative resolution", _num(resp.get("resolution")))]
+    if resp.get("samples_field"):
+        rows.append(("resolution scaling", (f"x ({_num(resp.get('reference_samples'))} / n)^"
+                     f"{_num(resp.get('samples_exponent'))}, n from "
+                     f"'{resp.get('samples_field')}'")))
+    fit = d.get("calibration_fit")
+    if fit:
+        sc = fit.get("scale") or {}
+        rows.append(("scale (fitted)", (f"{_num(sc.get('value'), 5)} ± "
+                     f"{_num(sc.get('error'), 2)} on {_num(fit.get('tracks_used'))} tracks")))
+        rs = fit.get("resolution")
+        if rs:
+            rows.append(("resolution (fitted)", (f"{_num(rs.get('value'))} ± "
+                         f"{_num(rs.get('error'), 2)}")))
+    else:
+        rows.append(("scale (given)", _num(resp.get("scale"), 5)))
+    if pr.get("hypotheses"):
+        rows.append(("mass hypotheses per leg", ", ".join(pr["hypotheses"])))
+        if len(set(pr["hypotheses"])) == 2:
+            rows.append(("two assignments", str(pr.get("assignment"))))
+    rows.append(("tracks read", _num(d.get("tracks_read"))))
+    return rows
+
+
+def section_identification(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
+    """The dE/dx identification (response, calibration fit, hypotheses) and its figure."""
+    ident = _identification_rows(r)
+    if not ident:
+        return []
+    return [("h2", "Particle identification (dE/dx)"), ("table", ["quantity", "value"], ident),
+            *_figure(fig, "dedx", CAPTIONS["dedx"])]
+
+
+# ----------------------------------------------------------------------------- warnings
+def section_warnings(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
+    """The results.json ``warnings``, first, so nobody quotes a number without them."""
+    texts = [str(w.get("message")) for w in r.get("warnings") or [] if isinstance(w, Mapping)]
+    if not texts:
+        return []
+    return [("h2", "Warnings"), ("p", "Read these before quoting any number below."),
+            ("list", [f"Warning: {t}" for t in texts])]
 
 
 # ------------------------------------------------------------------------------- limits

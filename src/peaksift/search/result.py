@@ -11,6 +11,7 @@ import numpy as np
 
 from ..config import Config
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
+from .doubts import doubts
 
 
 # ----------------------------------------------------------------------------- results
@@ -61,6 +62,8 @@ class SearchResult:
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
         results.json ``fit.settings``.
+    identification : dict or None
+        The dE/dx identification the pairing used (response, calibration fit), when on.
     input_record : dict or None
         The results.json ``input`` of a result read back with :meth:`from_dict` (which has
         no ``collected`` data); None for a result of a run.
@@ -81,6 +84,7 @@ class SearchResult:
     outdir: Path | None = None
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
+    identification: Mapping[str, Any] | None = None
     input_record: Mapping[str, Any] | None = None
 
     # ------------------------------------------------------------------------ show
@@ -146,7 +150,8 @@ class SearchResult:
                 outdir=Path(outs["dir"]) if outs.get("dir") else None,
                 figures={k: Path(outs["dir"]) / "figures" / v
                          for k, v in (outs.get("figures") or {}).items()},
-                fit_settings=settings, input_record=dict(d.get("input") or {}))
+                fit_settings=settings, input_record=dict(d.get("input") or {}),
+                identification=d.get("identification"))
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"not a results.json written by peaksift search: {exc!r}") \
                 from None
@@ -195,9 +200,12 @@ class SearchResult:
             "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
             "known_matches": [k.to_dict() for k in self.known_matches],
             "calibration": _plain(dict(self.calibration)) if self.calibration else None,
+            "identification": _plain(dict(self.identification))
+            if self.identification else None,
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
         }
+        out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}

@@ -19,6 +19,7 @@ from .common import (
     _collect,
     _fill,
     _require_candidates,
+    _require_sidebands,
     _save_spectrum,
     _scan_masses,
     _scan_signal_name,
@@ -29,6 +30,7 @@ from .common import (
     _where,
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
+from .identification import dedx_identification
 from .result import SearchResult
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
 
@@ -59,6 +61,7 @@ def run_search(
     seed: int | None = None,
     engine: str | None = None,
     progress: bool | None = None,
+    share_folder: bool = False,
 ) -> SearchResult:
     """Run the whole search described by a configuration.
 
@@ -77,6 +80,10 @@ def run_search(
     progress : bool or None
         Show progress bars (reading; toys); None (default): when a terminal or a Jupyter
         notebook is watching (``tqdm.auto`` draws notebook widgets).
+    share_folder : bool
+        Write into an output folder that holds files peaksift did not write (they are never
+        touched; a file of the same name as one of ours is refused).  Without it such a
+        folder is refused before the run.
 
     Returns
     -------
@@ -95,7 +102,7 @@ def run_search(
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
-    with _staged(target) as stage:
+    with _staged(target, "search", share_folder) as stage:
         res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
                       stage=stage, target=target)
     return res
@@ -110,7 +117,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     from ..stats.scan import scan
 
     clock = _Clock()
-    col, _, _ = _collect(cfg, progress=progress)
+    ident = dedx_identification(cfg, progress=progress)
+    col, _, _ = _collect(cfg, progress=progress, identification=ident)
     info = dict(col.engine_info)
     _log.info("read %s events from %d files in %s chunks: engine %s, %s workers",
               f"{col.events_read:,}", len(col.files_read), info.get("chunks"),
@@ -123,6 +131,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     blind_window = tuple(cfg.blinding.window) if blind["active"] else None
     if blind_window is not None:  # nothing downstream sees the blinded bins' contents
         hist = _blinded_copy(hist, blind_window)
+        _require_sidebands(cfg, hist)
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -208,6 +217,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         config=cfg, histogram=hist, collected=col, background_fit=bonly, fit=fres, scan=sres,
         best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
         blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
+        identification=ident.to_dict() if ident is not None else None,
     )
     if stage is None:
         prov["finished"] = _utc()
@@ -219,8 +229,13 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     lim_fig = ({"limits": plotting.limits_figure(result, figdir, cfg.output.formats)}
                if limits is not None else {})
+    if ident is not None:
+        lim_fig["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
+                                               hypotheses=tuple(cfg.pairing.hypotheses),
+                                               band=cfg.identification.band)
     drawn = {**(drawing.join() if drawing is not None else {}), **lim_fig}
-    order = ("spectrum", "spectrum_log", "pvalue_scan", "limits", "candidates", "calibration")
+    order = ("spectrum", "spectrum_log", "pvalue_scan", "limits", "candidates", "calibration",
+             "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}
     clock.lap("figures (rest)")
@@ -336,6 +351,8 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "background_shape": c.background,
         "width_fixed_to_table": bool(fixed),
         "valid": bool(d.get("valid")),
+        "problems": list(d.get("problems") or []),
+        "gof": d.get("gof"),
         "fitted_mass": {"value": m, "error": e},
         "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),
