@@ -317,6 +317,18 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "code in the calling process is not fork-safe).",
              choices=("auto", "fork", "spawn")),
     ),
+    "run": (
+        _Key("name", "str", "",
+             "Name of the data-taking run or data set, shown first in every figure's run "
+             "label (e.g. `demo run`); empty for none."),
+        _Key("sqrt_s", "float", None,
+             "Centre-of-mass energy in TeV for the run label; the label's integrated "
+             "luminosity is `limits.luminosity`.", lo=0.0, lo_open=True, nullable=True),
+        _Key("channel", "str", "",
+             "Final state in the run label, matplotlib mathtext allowed (e.g. "
+             "`$\\mu^+\\mu^-$`); empty: written from the collections and the pairing's "
+             "charge."),
+    ),
     "output": (
         _Key("dir", "str", "peaksift_out",
              "Output directory (relative to the config file); `--out` overrides it."),

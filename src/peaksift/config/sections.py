@@ -237,6 +237,15 @@ class ExecutionConfig:
 
 
 @dataclass(frozen=True)
+class RunConfig:
+    """What the figures' run label says: the run's name, sqrt(s) in TeV, the channel."""
+
+    name: str = ""
+    sqrt_s: float | None = None
+    channel: str = ""
+
+
+@dataclass(frozen=True)
 class OutputConfig:
     dir: str = "peaksift_out"
     formats: tuple[str, ...] = ("png", "pdf")
@@ -271,6 +280,7 @@ class Config:
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
     signal_model: SignalModelConfig = field(default_factory=SignalModelConfig)
     execution: ExecutionConfig = field(default_factory=ExecutionConfig)
+    run: RunConfig = field(default_factory=RunConfig)
     output: OutputConfig = field(default_factory=OutputConfig)
     source: str = "<dict>"
     base_dir: Path = field(default_factory=Path.cwd)
