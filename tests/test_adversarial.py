@@ -423,7 +423,9 @@ def task(i):
     time.sleep(120)
     return i
 if __name__ == "__main__":
-    map_tasks(task, list(range(6)), engine="processes", workers=3, start_method=sys.argv[2])
+    engine, method = sys.argv[2].split("-")
+    map_tasks(task, list(range(6)), engine=engine, workers=3 if engine == "processes" else 2,
+              start_method=method)
 """
 
 
@@ -436,18 +438,33 @@ def _gone(pid: int) -> bool:
         return True
 
 
+def _children(pid: int) -> set[int]:
+    out = set()
+    for p in Path("/proc").iterdir():
+        if p.name.isdigit():
+            try:
+                if int((p / "stat").read_text().rsplit(")", 1)[1].split()[1]) == pid:
+                    out.add(int(p.name))
+            except (OSError, IndexError, ValueError):
+                pass
+    return out
+
+
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
-@pytest.mark.parametrize("method", ["fork", "spawn"])
+@pytest.mark.parametrize("method", ["processes-fork", "processes-spawn", "dask-auto"])
 def test_workers_die_with_a_killed_parent(tmp_path, method):
-    """Cases 21-22: `kill -9` of the parent: every pool worker is gone within 5 s (before
-    the fix they lived on, blocked on their task pipe)."""
+    """Cases 21-23: `kill -9` of the parent: every pool worker (local process pool, forked
+    or spawned; a local Dask cluster's workers) is gone within 5 s (before the fix the
+    process pool's workers lived on, blocked on their task pipe)."""
+    if method.startswith("dask"):
+        pytest.importorskip("distributed")
     script = tmp_path / "parent.py"
     script.write_text(_ORPHAN_SCRIPT.format(src=str(SRC)))
     marks = tmp_path / "marks"
     marks.mkdir()
     parent = subprocess.Popen([sys.executable, str(script), str(marks), method])
     try:
-        deadline = time.monotonic() + 60
+        deadline = time.monotonic() + 180  # generous: start-up on a loaded machine
         while time.monotonic() < deadline:
             pids = {int(p.name[1:]) for p in marks.iterdir()} - {parent.pid}
             if len(pids) >= 2:
@@ -469,23 +486,34 @@ def test_workers_die_with_a_killed_parent(tmp_path, method):
                 pass
 
 
-@pytest.mark.skipif(sys.platform == "win32", reason="POSIX signals")
-def test_sigterm_is_handled_like_ctrl_c(data, tmp_path):
-    """Case 23: SIGTERM during a search: one line, exit 143, staging removed, the output
-    folder this run created removed."""
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+@pytest.mark.parametrize("engine", ["serial", "processes"])
+def test_sigterm_is_handled_like_ctrl_c(data, tmp_path, engine):
+    """Cases 24-25: SIGTERM during a search (toys running in this process, or in worker
+    processes): one line, exit 143, staging removed, the output folder this run created
+    removed, no worker left."""
     cfg = tmp_path / "c.toml"
     cfg.write_text((data / "c.toml").read_text().replace(
         '"ev.parquet"', json.dumps(str(data / "ev.parquet"))).replace(
-        "toys = 0", "toys = 1000000"))
+        "toys = 0", "toys = 1000000") + f'[execution]\nengine = "{engine}"\nworkers = 2\n')
     out = tmp_path / "o"
     env = {**os.environ, "PYTHONPATH": str(SRC)}
     proc = subprocess.Popen([sys.executable, "-m", "peaksift.cli", "search", str(cfg), "--out",
                              str(out), "--quiet"], env=env, stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 60
+    deadline = time.monotonic() + 180  # generous: start-up on a loaded 2-core machine
     while time.monotonic() < deadline and not list(out.glob(".peaksift-staging-*")):
+        assert proc.poll() is None, proc.communicate()[1]
         time.sleep(0.05)
     assert list(out.glob(".peaksift-staging-*")), "the run never started writing"
+    workers: set[int] = set()
+    if engine == "processes":  # wait for the workers (reading, then toys)
+        while time.monotonic() < deadline and not workers:
+            assert proc.poll() is None, proc.communicate()[1]
+            time.sleep(0.1)
+            workers = _children(proc.pid)
+        assert workers, "no worker processes started"
     time.sleep(1.0)  # into the run
+    workers |= _children(proc.pid)
     proc.send_signal(signal.SIGTERM)
     _, err = proc.communicate(timeout=60)
     assert proc.returncode == 143, err
@@ -493,6 +521,10 @@ def test_sigterm_is_handled_like_ctrl_c(data, tmp_path):
     assert lines == [("peaksift: terminated (SIGTERM); the run's unfinished outputs were "
                       "removed")], err
     assert not out.exists()
+    deadline = time.monotonic() + 5  # a helper such as multiprocessing's resource tracker
+    while time.monotonic() < deadline and not all(_gone(p) for p in workers):  # ends after
+        time.sleep(0.1)
+    assert all(_gone(p) for p in workers)
 
 
 # ------------------------------------------------------------- validation of the work
