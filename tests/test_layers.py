@@ -46,7 +46,7 @@ LAYERS: tuple[tuple[str, frozenset[str]], ...] = (
     ("statistics", frozenset({"stats"})),
     ("pipeline", frozenset({"config", "execution"})),
     ("orchestration and output",
-     frozenset({"search", "plotting", "report", "simulate", "cli"})),
+     frozenset({"search", "plotting", "report", "simulate", "simulate_tracks", "cli"})),
 )
 BASE_HELPERS = frozenset({"_files", "_style", "_processes", "_format", "_json", "_values",
                           "_vocabulary", "_output"})

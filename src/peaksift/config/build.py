@@ -22,11 +22,13 @@ from .sections import (
     CalibrationConfig,
     Config,
     ExecutionConfig,
+    IdentificationConfig,
     InputConfig,
     LimitsConfig,
     ModelConfig,
     ObjectsConfig,
     OutputConfig,
+    OwnMaterialConfig,
     PairingConfig,
     ResolutionConfig,
     ScanConfig,
@@ -164,6 +166,58 @@ def _check_cut(path: str, text: str, where: str) -> None:
         raise
 
 
+def _check_identification(ident: dict[str, Any], own: Mapping[str, Any], pr: dict[str, Any],
+                          ob: Mapping[str, Any], where: str) -> bool:
+    """The [identification] table and pairing.hypotheses / assignment; True when two
+    different hypotheses pair one collection as two legs."""
+    from ..cuts import compile_cut
+
+    hyps = tuple(pr["hypotheses"])
+    if len(hyps) > 2:
+        raise ConfigError(f"{where}: pairing.hypotheses takes one name (both legs) or two (one "
+                          f"per leg), got {len(hyps)}")
+    pr["hypotheses"] = hyps
+    two_legs = len(hyps) == 2 and hyps[0] != hyps[1] and not ob["second_collection"]
+    if pr["assignment"] != "both" and not two_legs:
+        raise ConfigError(f"{where}: pairing.assignment = {pr['assignment']!r} applies only "
+                          "with two different pairing.hypotheses on one collection")
+    if pr["assignment"] == "more_probable" and ident["resolution"] is None:
+        raise ConfigError(f"{where}: pairing.assignment = \"more_probable\" compares dE/dx: "
+                          "set identification.resolution (and the other [identification] keys)")
+    if ident["resolution"] is None:
+        for key in ("cut", "second_cut"):
+            if ob[key].strip() and compile_cut(ob[key]).hypotheses:
+                raise ConfigError(
+                    f"{where}: objects.{key} uses dedx_deviation(...) but identification is "
+                    "off; set identification.resolution (e.g. 0.07) in an [identification] "
+                    "table")
+        return two_legs
+    if ident["samples_field"] and ident["reference_samples"] is None:
+        raise ConfigError(f"{where}: identification.samples_field is set: give "
+                          "identification.reference_samples too (the samples at which "
+                          "identification.resolution holds)")
+    if ident["material"] == "own":
+        missing = [k for k in ("z_over_a", "mean_excitation_ev", "density") if own[k] is None]
+        if missing:
+            raise ConfigError(f"{where}: identification.material = \"own\" needs "
+                              f"identification.own_material.{', .'.join(missing)}")
+        if own["density_effect"] and len(own["density_effect"]) != 6:
+            raise ConfigError(f"{where}: identification.own_material.density_effect takes six "
+                              "numbers [C, X0, X1, a, k, delta0], got "
+                              f"{len(own['density_effect'])}")
+    elif any(v not in (None, (), []) for v in own.values()):
+        raise ConfigError(f"{where}: [identification.own_material] is set but "
+                          f"identification.material = {ident['material']!r}; set material = "
+                          "\"own\" to use it")
+    if ident["calibration_momentum"][0] <= 0:
+        raise ConfigError(f"{where}: identification.calibration_momentum must lie above 0 GeV")
+    try:
+        IdentificationConfig(**ident, own_material=OwnMaterialConfig(**own)).response()
+    except ConfigError as exc:
+        raise ConfigError(f"{where}: identification: {exc}") from None
+    return two_legs
+
+
 def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
            resolve_paths: bool = True) -> Config:
     where = _where(source)
@@ -222,9 +276,15 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
             raise ConfigError(f"{where}: objects.{key} must name a collection, e.g. \"muon\"")
     for key in ("cut", "second_cut", "event_cut"):
         _check_cut(f"objects.{key}", ob[key], where)
-    if ob["second_cut"] and not ob["second_collection"]:
+    ident = vals["identification"]
+    own = _section("identification.own_material",
+                   (raw.get("identification") or {}).get("own_material"), where)
+    two_legs = _check_identification(ident, own, pr, ob, where)
+    if ob["second_cut"] and not ob["second_collection"] and not two_legs:
         raise ConfigError(f"{where}: objects.second_cut is set but objects.second_collection is "
-                          "empty; name the second collection or move the cut to objects.cut")
+                          "empty; name the second collection, give pairing.hypotheses two "
+                          "different names (second_cut then selects the second leg), or move "
+                          "the cut to objects.cut")
 
     sc = vals["scan"]
     if sc["step"] is not None and sc["points"] is not None:
@@ -296,6 +356,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         spectrum=SpectrumConfig(**sp),
         objects=ObjectsConfig(**ob),
         pairing=PairingConfig(**pr),
+        identification=IdentificationConfig(**ident, own_material=OwnMaterialConfig(**own)),
         model=ModelConfig(**md, resolution=ResolutionConfig(**res)),
         scan=ScanConfig(**sc),
         significance=SignificanceConfig(**vals["significance"]),

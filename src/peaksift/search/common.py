@@ -153,10 +153,12 @@ def _scan_masses(cfg: Config) -> np.ndarray:
     return np.asarray(grid)
 
 
-def _selection(cfg: Config, lo: float, hi: float, nbins: int) -> Any:
+def _selection(cfg: Config, lo: float, hi: float, nbins: int,
+               identification: Any = None) -> Any:
     from ..execution import Selection
 
     ob, pr = cfg.objects, cfg.pairing
+    hyps = tuple(pr.hypotheses)
     return Selection(
         first=ob.collection,
         second=ob.second_collection or None,
@@ -170,12 +172,20 @@ def _selection(cfg: Config, lo: float, hi: float, nbins: int) -> Any:
         target_mass=pr.target_mass,
         min_delta_r=pr.min_delta_r or None,
         strict=cfg.input.strict,
+        hypotheses=(hyps * 2 if len(hyps) == 1 else hyps) or None,
+        identification=identification,
+        assignment=pr.assignment,
     )
 
 
-def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
-    """Run the read/select/pair map-reduce once over the union of the needed windows."""
+def _collect(cfg: Config, *, progress: bool, identification: Any = None
+             ) -> tuple[Any, float, float]:
+    """Run the read/select/pair map-reduce once over the union of the needed windows.
+
+    ``identification``: the :class:`~peaksift.search.identification.DedxOutcome` of the
+    calibration pass (run here when identification is on and none is given)."""
     from ..execution import collect
+    from .identification import dedx_identification
 
     lo, hi = cfg.spectrum.window
     ulo, uhi = lo, hi
@@ -188,8 +198,11 @@ def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
     nb = max(1, min(100_000, int(np.ceil((uhi - ulo) / width))))
     ex = cfg.execution
     try:
+        if identification is None and cfg.identification.enabled:
+            identification = dedx_identification(cfg, progress=progress)
+        response = identification.response if identification is not None else None
         col = collect(
-            cfg.input.files, _selection(cfg, ulo, uhi, nb),
+            cfg.input.files, _selection(cfg, ulo, uhi, nb, response),
             engine=ex.engine, workers=ex.workers, address=ex.address or None,
             chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
             start_method=ex.start_method,

@@ -62,6 +62,8 @@ class SearchResult:
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
         results.json ``fit.settings``.
+    identification : dict or None
+        The dE/dx identification the pairing used (response, calibration fit), when on.
     """
 
     config: Config
@@ -79,6 +81,7 @@ class SearchResult:
     outdir: Path | None = None
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
+    identification: Mapping[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
@@ -116,6 +119,8 @@ class SearchResult:
             "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
             "known_matches": [k.to_dict() for k in self.known_matches],
             "calibration": _plain(dict(self.calibration)) if self.calibration else None,
+            "identification": _plain(dict(self.identification))
+            if self.identification else None,
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
         }

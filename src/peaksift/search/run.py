@@ -28,6 +28,7 @@ from .common import (
     _where,
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
+from .identification import dedx_identification
 from .result import SearchResult
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
 
@@ -92,7 +93,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     from ..resonances import match_known, pair_charge
     from ..stats.scan import scan
 
-    col, _, _ = _collect(cfg, progress=progress)
+    ident = dedx_identification(cfg, progress=progress)
+    col, _, _ = _collect(cfg, progress=progress, identification=ident)
     lo, hi = cfg.spectrum.window
     hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
     _require_candidates(cfg, col, hist)
@@ -165,6 +167,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         config=cfg, histogram=hist, collected=col, background_fit=bonly, fit=fres, scan=sres,
         best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
         blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
+        identification=ident.to_dict() if ident is not None else None,
     )
     if stage is None:
         prov["finished"] = _utc()
@@ -176,6 +179,10 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
                                    log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    if ident is not None:
+        figs["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
+                                            hypotheses=tuple(cfg.pairing.hypotheses),
+                                            band=cfg.identification.band)
     _save_spectrum(hist, stage.path / "spectrum.json", blind)
     prov["finished"] = _utc()
     final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
