@@ -5,7 +5,8 @@ files, the file modes the operating system gives under a umask, the process tabl
 ``kill -9``, the exit status and the one-line message, numpy sums of the weights written
 here, and scipy's chi-square survival function for the goodness of fit.  Sized for CI: the
 data sets are a few thousand events and the searches run without toys or limits unless the
-case needs them.
+case needs them.  64 numbered cases (each test's docstring says which), the clean
+neighbours of the refused ones among them.
 """
 
 from __future__ import annotations
@@ -533,16 +534,16 @@ def _load(d: Path, extra: str = "", **kw):
 
 
 @pytest.mark.parametrize("resolution, extra, key", [
-    ("absolute = 1e-9", "", "model.resolution"),                              # case 24
-    ("table = [[90.0, 1e-7], [210.0, 1e-7]]", "", "model.resolution"),        # case 25
-    ("absolute = 2.0", "[scan]\nstep = 1e-12\n", "scan.step"),                # case 26
-    ("absolute = 2.0\nnatural_width = 1e6", "", "model.resolution.natural_width"),  # 27
-    ("absolute = 500.0", "", "model.resolution.absolute"),                    # case 28
-    ("absolute = 2.0", "[scan]\npoints = 100000\n", "scan.points and spectrum.bins"),  # 29
+    ("absolute = 1e-9", "", "model.resolution"),                              # 26
+    ("table = [[90.0, 1e-7], [210.0, 1e-7]]", "", "model.resolution"),        # 27
+    ("absolute = 2.0", "[scan]\nstep = 1e-12\n", "scan.step"),                # 28
+    ("absolute = 2.0\nnatural_width = 1e6", "", "model.resolution.natural_width"),  # 29
+    ("absolute = 500.0", "", "model.resolution.absolute"),                    # 30
+    ("absolute = 2.0", "[scan]\npoints = 100000\n", "scan.points and spectrum.bins"),  # 31
 ])
 def test_plans_that_cannot_run_are_refused_at_config_time(tmp_path, resolution, extra, key):
-    """Cases 24-29: values that pass type checks but would hang (~1e11 planning steps),
-    allocate terabytes, or put the peak outside the window: refused within a second,
+    """Cases 26-31: values that pass type checks but would hang (~1e11 planning steps),
+    allocate terabytes, or put the peak outside the window: refused in well under 5 s,
     naming the key."""
     t0 = time.perf_counter()
     with pytest.raises(peaksift.ConfigError) as err:
@@ -552,7 +553,7 @@ def test_plans_that_cannot_run_are_refused_at_config_time(tmp_path, resolution, 
 
 
 def test_bin_width_that_would_allocate_terabytes(tmp_path):
-    """Case 30: spectrum.bin_width = 1e-9 (1e11 bins) is refused before any array."""
+    """Case 32: spectrum.bin_width = 1e-9 (1e11 bins) is refused before any array."""
     cfg = _config(tmp_path).read_text().replace("bins = 50", "bin_width = 1e-9")
     (tmp_path / "c.toml").write_text(cfg)
     with pytest.raises(peaksift.ConfigError, match="spectrum.bin_width gives 1e"):
@@ -560,7 +561,7 @@ def test_bin_width_that_would_allocate_terabytes(tmp_path):
 
 
 def test_reasonable_plans_are_accepted(tmp_path):
-    """Case 31: the clean neighbours: a natural width of 5 GeV, a 0.5 GeV step, the
+    """Case 33 (clean): the neighbours: a natural width of 5 GeV, a 0.5 GeV step, the
     default grid at 2 GeV resolution."""
     assert _load(tmp_path, resolution="absolute = 2.0\nnatural_width = 5.0") is not None
     assert _load(tmp_path, "[scan]\nstep = 0.5\n") is not None
@@ -568,7 +569,8 @@ def test_reasonable_plans_are_accepted(tmp_path):
 
 
 def test_api_scan_and_limits_apply_the_same_rules():
-    """Cases 32-34: the same ceilings in peaksift.scan and peaksift.upper_limits."""
+    """Cases 34-38: the same ceilings in peaksift.scan (natural width, hypotheses, bins)
+    and peaksift.upper_limits (natural width), and a clean scan beside them."""
     from peaksift.stats.bounds import MAX_BINS, MAX_HYPOTHESES
 
     m = _background()
@@ -591,7 +593,7 @@ def test_api_scan_and_limits_apply_the_same_rules():
 
 @pytest.mark.parametrize("bins", [1, 3])
 def test_few_bins_are_not_called_a_blinded_range(tmp_path, bins):
-    """Cases 35-36: 1 or 3 bins without blinding: the message is about the bin count."""
+    """Cases 39-40: 1 or 3 bins without blinding: the message is about the bin count."""
     with pytest.raises(peaksift.ConfigError) as err:
         _load(tmp_path, bins=bins)
     msg = str(err.value)
@@ -599,7 +601,7 @@ def test_few_bins_are_not_called_a_blinded_range(tmp_path, bins):
 
 
 def test_blinding_that_leaves_no_sidebands(tmp_path, capsys):
-    """Case 37: a blinded window covering nearly all bins names blinding.window; case 38:
+    """Case 41: a blinded window covering nearly all bins names blinding.window; case 42:
     sidebands that exist but hold no candidate say so (not 'the window is empty')."""
     with pytest.raises(peaksift.ConfigError, match="blinding.window: only 2 bin"):
         _load(tmp_path, "[blinding]\nenabled = true\nwindow = [102.0, 198.0]\n")
@@ -612,7 +614,7 @@ def test_blinding_that_leaves_no_sidebands(tmp_path, capsys):
 
 
 def test_utf8_byte_order_mark_gets_a_hint(tmp_path, capsys):
-    """Case 39."""
+    """Case 43."""
     p = tmp_path / "c.toml"
     p.write_bytes(b"\xef\xbb\xbf" + _config(tmp_path).read_bytes())
     rc, _, err = _run(capsys, ["spectrum", p])
@@ -620,7 +622,7 @@ def test_utf8_byte_order_mark_gets_a_hint(tmp_path, capsys):
 
 
 def test_demo_with_too_few_events_names_a_real_option(tmp_path, capsys):
-    """Case 40: `demo --events 1` names --events (there is no --files option)."""
+    """Case 44: `demo --events 1` names --events (there is no --files option)."""
     rc, _, err = _run(capsys, ["demo", tmp_path / "d", "--events", "1"])
     line = _one_line(err)
     assert rc == 2 and "--events 2" in line and "--files" not in line
@@ -629,11 +631,11 @@ def test_demo_with_too_few_events_names_a_real_option(tmp_path, capsys):
 
 # --------------------------------------------------------------------------- weights
 @pytest.mark.parametrize("weight", [
-    pa.array([[1.0]] * 10, type=pa.list_(pa.float64())),   # case 41
-    pa.array(["1.0"] * 10),                                 # case 42
+    pa.array([[1.0]] * 10, type=pa.list_(pa.float64())),   # cases 45-46
+    pa.array(["1.0"] * 10),                                 # cases 47-48
 ])
 def test_weight_column_must_be_one_number_per_event(tmp_path, capsys, weight):
-    """Cases 41-42: the CLI and the API refuse the same column, naming it and the file."""
+    """Cases 45-48: the CLI and the API refuse the same column, naming it and the file."""
     d = tmp_path / "d"
     f = _write_data(d, np.full(10, 150.0), weight=weight)
     rc, _, err = _run(capsys, ["spectrum", _config(d), "--out", tmp_path / "o", "--quiet"])
@@ -646,7 +648,7 @@ def test_weight_column_must_be_one_number_per_event(tmp_path, capsys, weight):
 
 @pytest.mark.parametrize("value, word", [(0.0, "zero"), (-1.0, "negative")])
 def test_zero_or_negative_total_weight(tmp_path, capsys, value, word):
-    """Cases 43-44: not 'no candidates ... loosen objects.cut'."""
+    """Cases 49-50: not 'no candidates ... loosen objects.cut'."""
     d = tmp_path / "d"
     m = _background(500)
     _write_data(d, m, weight=np.full(m.size, value))
@@ -657,7 +659,7 @@ def test_zero_or_negative_total_weight(tmp_path, capsys, value, word):
 
 
 def test_overflowing_weights(tmp_path, capsys):
-    """Case 45: weights of 1e300 (squares overflow): one line, not a linear-algebra crash."""
+    """Case 51: weights of 1e300 (squares overflow): one line, not a linear-algebra crash."""
     d = tmp_path / "d"
     m = _background(500)
     _write_data(d, m, weight=np.full(m.size, 1e300))
@@ -666,7 +668,7 @@ def test_overflowing_weights(tmp_path, capsys):
 
 
 def test_numeric_weights_are_used(tmp_path):
-    """Case 46 (clean): float weights fill the spectrum with their sum (numpy's sum of the
+    """Case 52 (clean): float weights fill the spectrum with their sum (numpy's sum of the
     weights written here, 1e-9 relative)."""
     d = tmp_path / "d"
     m = _background(800)
@@ -685,7 +687,9 @@ def _results(**over):
 
 
 def test_doubts_thresholds():
-    """Cases 47-52: each warning fires past its stated threshold and not before it."""
+    """Cases 53-60: each warning fires past its stated threshold and not before it
+    (clean results, invalid fit, blinded fit, low and fine goodness of fit, invalid
+    calibration, limits outside the band at too many and at few enough masses)."""
     from peaksift.search.doubts import BAND_OUTSIDE_MAX_FRACTION, GOF_P_MIN, doubts
 
     assert doubts(_results()) == []
@@ -712,7 +716,7 @@ def test_doubts_thresholds():
 
 
 def test_unmodelled_peak_is_flagged_everywhere(tmp_path, capsys):
-    """Case 53: a second narrow peak the one-signal model cannot follow: the fit's
+    """Case 61: a second narrow peak the one-signal model cannot follow: the fit's
     goodness-of-fit p (checked against scipy's chi-square survival function, 1e-6
     relative) is below 0.001 and the warning is in results.json, the summary and both
     reports."""
@@ -737,7 +741,7 @@ def test_unmodelled_peak_is_flagged_everywhere(tmp_path, capsys):
 
 
 def test_clean_search_has_no_warnings(data, capsys, tmp_path):
-    """Case 54 (clean): a background-only spectrum the model describes: no warning, and the
+    """Case 62 (clean): a background-only spectrum the model describes: no warning, and the
     summary prints none."""
     out = tmp_path / "o"
     rc, stdout, err = _run(capsys, ["search", data / "c.toml", "--out", out, "--quiet"])
@@ -748,10 +752,10 @@ def test_clean_search_has_no_warnings(data, capsys, tmp_path):
 
 
 # ------------------------------------------------------------ data that used to crash
-@pytest.mark.parametrize("masses", [np.array([150.0]),                            # case 55
-                                    np.r_[_background(), np.full(3000, 150.5)]])  # case 56
+@pytest.mark.parametrize("masses", [np.array([150.0]),                            # case 63
+                                    np.r_[_background(), np.full(3000, 150.5)]])  # case 64
 def test_degenerate_data_never_give_a_traceback(tmp_path, capsys, masses):
-    """Cases 55-56: a one-event data set and a 3000-event peak inside one bin: the search
+    """Cases 63-64: a one-event data set and a 3000-event peak inside one bin: the search
     either finishes with its doubts printed or stops with one line, never a traceback."""
     d = tmp_path / "d"
     _write_data(d, masses)
