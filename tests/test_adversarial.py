@@ -501,22 +501,28 @@ def test_sigterm_is_handled_like_ctrl_c(data, tmp_path, engine):
     env = {**os.environ, "PYTHONPATH": str(SRC)}
     proc = subprocess.Popen([sys.executable, "-m", "peaksift.cli", "search", str(cfg), "--out",
                              str(out), "--quiet"], env=env, stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 180  # generous: start-up on a loaded 2-core machine
-    while time.monotonic() < deadline and not list(out.glob(".peaksift-staging-*")):
-        assert proc.poll() is None, proc.communicate()[1]
-        time.sleep(0.05)
-    assert list(out.glob(".peaksift-staging-*")), "the run never started writing"
     workers: set[int] = set()
-    if engine == "processes":  # wait for the workers (reading, then toys)
-        while time.monotonic() < deadline and not workers:
+    try:
+        deadline = time.monotonic() + 180  # generous: start-up on a loaded 2-core machine
+        while time.monotonic() < deadline and not list(out.glob(".peaksift-staging-*")):
             assert proc.poll() is None, proc.communicate()[1]
-            time.sleep(0.1)
-            workers = _children(proc.pid)
-        assert workers, "no worker processes started"
-    time.sleep(1.0)  # into the run
-    workers |= _children(proc.pid)
-    proc.send_signal(signal.SIGTERM)
-    _, err = proc.communicate(timeout=60)
+            time.sleep(0.05)
+        assert list(out.glob(".peaksift-staging-*")), "the run never started writing"
+        if engine == "processes":  # wait for the workers (reading, then toys)
+            while time.monotonic() < deadline and not workers:
+                assert proc.poll() is None, proc.communicate()[1]
+                time.sleep(0.1)
+                workers = _children(proc.pid)
+            assert workers, "no worker processes started"
+        time.sleep(1.0)  # into the run
+        workers |= _children(proc.pid)
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        # a failed wait must not leave a million-toy search running after the test
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()
     assert proc.returncode == 143, err
     lines = [x for x in err.splitlines() if x.strip()]
     assert lines == [("peaksift: terminated (SIGTERM); the run's unfinished outputs were "
