@@ -100,12 +100,11 @@ def test_relative_resolution_has_one_check_in_the_api_and_the_config(bad):
     cfg_text = str(cfg.value).split("model.resolution.relative", 1)[1]
     assert api_text == cfg_text
     assert "<= 1" in cfg_text
-    # r = 1 passes the range check (sigma = m) but is refused against the 90 GeV window: a
-    # sigma above half the window's width (peaksift.stats.bounds.check_widths)
-    assert Resolution.relative(1.0).sigma(150.0) == 150.0
-    with pytest.raises(ConfigError, match="relative: a resolution sigma of 200 GeV is more "
-                                          "than 0.5 of the 90 GeV window"):
+    # 1.0 itself passes the relative check; a sigma equal to the mass is then refused by
+    # the separate rule that the peak must fit in the window (half its width at most)
+    with pytest.raises(ConfigError) as edge:
         load_config(_config({"relative": 1.0}))
+    assert "<= 1" not in str(edge.value) and "more than 0.5 of the" in str(edge.value)
 
 
 def test_absolute_resolution_is_in_gev():
@@ -143,10 +142,10 @@ def test_sigma_far_below_the_bin_width_is_refused_quickly():
 
 def test_default_grid_of_the_search_is_bounded():
     """The search's default hypotheses half a sigma apart: a resolution just above the
-    refusal threshold on the finest allowed binning would give ~2e7 of them (90 GeV / 5e-6
-    GeV); refused when the config is loaded, before any file is read."""
-    with pytest.raises(ConfigError, match=r"scan.step or scan.points\): the scan would hold "
-                                          r"1.8e\+07 mass hypotheses"):
+    refusal threshold on the finest allowed binning would give ~2e7 of them; refused when
+    the config is loaded, naming the key."""
+    with pytest.raises(ConfigError, match=r"model.resolution.absolute .*scan.step or "
+                                          r"scan.points.*1.8e\+07 mass hypotheses"):
         load_config(_config({"absolute": 1.0e-5}, bins=100_000))  # bins of 0.9 MeV
 
 
