@@ -117,8 +117,10 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--check", action="store_true", help="fit the intended selection's spectrum")
     p.add_argument("--no-tracks", action="store_true", help="do not rewrite the hadron demo set")
     args = p.parse_args(argv)
+    # demo_data/ also holds hand-written configs and the tracks/ set: shared, and only the
+    # files its peaksift-manifest.json lists are replaced
     info = simulate.write_demo(args.outdir, n_events=args.events, seed=args.seed,
-                               weighted=args.weighted)
+                               weighted=args.weighted, share_folder=True)
     print(info["summary"])
     print("content digest (arrays):", _content_digest(info["files"]))
     if not args.weighted:  # the simulated signal samples of the combined demo search

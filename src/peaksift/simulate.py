@@ -841,27 +841,33 @@ def _fwhm_sigma(x: np.ndarray) -> float:
 def write_signal_samples(outdir: str | os.PathLike, *, n_events: int = 10_000,
                          masses: tuple[float, ...] = SIGNAL_SAMPLE_MASSES,
                          leptons: tuple[str, ...] = ("muon", "electron"),
-                         seed: int = DEMO_SEED, scenario: Scenario = DEMO) -> dict[str, Any]:
+                         seed: int = DEMO_SEED, scenario: Scenario = DEMO,
+                         share_folder: bool = False) -> dict[str, Any]:
     """Write simulated signal samples (``signal_<lepton>_<mass>.parquet``, one per lepton and
-    mass, :func:`generate_signal_sample`) and their ``truth.json`` to ``outdir``."""
+    mass, :func:`generate_signal_sample`) and their ``truth.json`` to ``outdir``, under the
+    output-folder contract of :mod:`peaksift._output` (``share_folder`` as for
+    :func:`write_demo`)."""
+    from ._output import staged_output
+
     out = Path(outdir)
-    out.mkdir(parents=True, exist_ok=True)
+    names = [f"signal_{lepton}_{m:g}.parquet" for lepton in leptons for m in masses]
     samples = []
-    for lepton in leptons:
-        for m in masses:
-            table, truth = generate_signal_sample(m, lepton, n_events, seed=seed,
-                                                  scenario=scenario)
-            path = out / f"signal_{lepton}_{m:g}.parquet"
-            tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
-            with _writer(tmp, table.schema) as w:
-                w.write_table(table)
-            os.replace(tmp, path)
-            samples.append({"file": path.name, **truth})
-    record = {"generator": GENERATOR_VERSION, "scenario": scenario.name, "seed": seed,
-              "selection": {k: INTENDED_SELECTION[k] for k in ("cut", "charge", "choose",
-                                                                "search_window_gev")},
-              "note": "true efficiencies and resolutions of the generator for the intended "
-                      "selection applied to each sample's lepton",
-              "samples": samples}
-    _json_file(out / "truth.json", record)
+    with staged_output(out, "signal-samples", share=share_folder,
+                       names=[*names, "truth.json"]) as stage:
+        assert stage is not None
+        for lepton in leptons:
+            for m in masses:
+                table, truth = generate_signal_sample(m, lepton, n_events, seed=seed,
+                                                      scenario=scenario)
+                name = f"signal_{lepton}_{m:g}.parquet"
+                with _writer(stage.path / name, table.schema) as w:
+                    w.write_table(table)
+                samples.append({"file": name, **truth})
+        record = {"generator": GENERATOR_VERSION, "scenario": scenario.name, "seed": seed,
+                  "selection": {k: INTENDED_SELECTION[k] for k in ("cut", "charge", "choose",
+                                                                    "search_window_gev")},
+                  "note": "true efficiencies and resolutions of the generator for the intended "
+                          "selection applied to each sample's lepton",
+                  "samples": samples}
+        _json_file(stage.path / "truth.json", record)
     return record

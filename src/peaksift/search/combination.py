@@ -106,11 +106,13 @@ class CombinedSearchResult:
 
 def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                     seed: int | None = None, engine: str | None = None,
-                    progress: bool = False) -> CombinedSearchResult:
+                    progress: bool = False, share_folder: bool = False
+                    ) -> CombinedSearchResult:
     """Run every channel's search and their combination (see the module guide).
 
     ``out``: output directory (None: ``output.dir`` of the combination config; False: write
     nothing).  ``toys``, ``seed``, ``engine`` override every channel's settings.
+    ``share_folder`` as for :func:`~peaksift.search.run_search` (the output-folder contract).
     """
     from ..stats.channels import combine, combined_limits
     from .common import _scan_masses, _utc
@@ -158,7 +160,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         t = Path(out_dir).expanduser()
         target = (t if t.is_absolute() or out is not None else base / t).resolve()
     started = _utc()
-    with _staged(target) as stage:
+    with _staged(target, "search", share_folder) as stage:
         results = {n: _search(c, unblind=False, progress=progress, started=started, stage=None,
                               target=None) for n, c in zip(names, cfgs)}
         first = cfgs[0]

@@ -107,7 +107,8 @@ def run_search(
             raise ConfigError("--unblind does not apply to a combination (blinding is not "
                               "supported there yet)")
         return run_combination(config, out=out, toys=toys, seed=seed, engine=engine,
-                               progress=progress)  # type: ignore[return-value]
+                               progress=progress,
+                               share_folder=share_folder)  # type: ignore[return-value]
     started = _utc()
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
