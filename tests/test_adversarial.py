@@ -5,7 +5,8 @@ files, the file modes the operating system gives under a umask, the process tabl
 ``kill -9``, the exit status and the one-line message, numpy sums of the weights written
 here, and scipy's chi-square survival function for the goodness of fit.  Sized for CI: the
 data sets are a few thousand events and the searches run without toys or limits unless the
-case needs them.
+case needs them.  64 numbered cases (each test's docstring says which), the clean
+neighbours of the refused ones among them.
 """
 
 from __future__ import annotations
@@ -423,7 +424,9 @@ def task(i):
     time.sleep(120)
     return i
 if __name__ == "__main__":
-    map_tasks(task, list(range(6)), engine="processes", workers=3, start_method=sys.argv[2])
+    engine, method = sys.argv[2].split("-")
+    map_tasks(task, list(range(6)), engine=engine, workers=3 if engine == "processes" else 2,
+              start_method=method)
 """
 
 
@@ -436,18 +439,33 @@ def _gone(pid: int) -> bool:
         return True
 
 
+def _children(pid: int) -> set[int]:
+    out = set()
+    for p in Path("/proc").iterdir():
+        if p.name.isdigit():
+            try:
+                if int((p / "stat").read_text().rsplit(")", 1)[1].split()[1]) == pid:
+                    out.add(int(p.name))
+            except (OSError, IndexError, ValueError):
+                pass
+    return out
+
+
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
-@pytest.mark.parametrize("method", ["fork", "spawn"])
+@pytest.mark.parametrize("method", ["processes-fork", "processes-spawn", "dask-auto"])
 def test_workers_die_with_a_killed_parent(tmp_path, method):
-    """Cases 21-22: `kill -9` of the parent: every pool worker is gone within 5 s (before
-    the fix they lived on, blocked on their task pipe)."""
+    """Cases 21-23: `kill -9` of the parent: every pool worker (local process pool, forked
+    or spawned; a local Dask cluster's workers) is gone within 5 s (before the fix the
+    process pool's workers lived on, blocked on their task pipe)."""
+    if method.startswith("dask"):
+        pytest.importorskip("distributed")
     script = tmp_path / "parent.py"
     script.write_text(_ORPHAN_SCRIPT.format(src=str(SRC)))
     marks = tmp_path / "marks"
     marks.mkdir()
     parent = subprocess.Popen([sys.executable, str(script), str(marks), method])
     try:
-        deadline = time.monotonic() + 60
+        deadline = time.monotonic() + 180  # generous: start-up on a loaded machine
         while time.monotonic() < deadline:
             pids = {int(p.name[1:]) for p in marks.iterdir()} - {parent.pid}
             if len(pids) >= 2:
@@ -469,24 +487,35 @@ def test_workers_die_with_a_killed_parent(tmp_path, method):
                 pass
 
 
-@pytest.mark.skipif(sys.platform == "win32", reason="POSIX signals")
-def test_sigterm_is_handled_like_ctrl_c(data, tmp_path):
-    """Case 23: SIGTERM during a search: one line, exit 143, staging removed, the output
-    folder this run created removed."""
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+@pytest.mark.parametrize("engine", ["serial", "processes"])
+def test_sigterm_is_handled_like_ctrl_c(data, tmp_path, engine):
+    """Cases 24-25: SIGTERM during a search (toys running in this process, or in worker
+    processes): one line, exit 143, staging removed, the output folder this run created
+    removed, no worker left."""
     cfg = tmp_path / "c.toml"
     cfg.write_text((data / "c.toml").read_text().replace(
         '"ev.parquet"', json.dumps(str(data / "ev.parquet"))).replace(
-        "toys = 0", "toys = 1000000"))
+        "toys = 0", "toys = 1000000") + f'[execution]\nengine = "{engine}"\nworkers = 2\n')
     out = tmp_path / "o"
     env = {**os.environ, "PYTHONPATH": str(SRC)}
     proc = subprocess.Popen([sys.executable, "-m", "peaksift.cli", "search", str(cfg), "--out",
                              str(out), "--quiet"], env=env, stderr=subprocess.PIPE, text=True)
+    workers: set[int] = set()
     try:
-        deadline = time.monotonic() + 60
+        deadline = time.monotonic() + 180  # generous: start-up on a loaded 2-core machine
         while time.monotonic() < deadline and not list(out.glob(".peaksift-staging-*")):
+            assert proc.poll() is None, proc.communicate()[1]
             time.sleep(0.05)
         assert list(out.glob(".peaksift-staging-*")), "the run never started writing"
+        if engine == "processes":  # wait for the workers (reading, then toys)
+            while time.monotonic() < deadline and not workers:
+                assert proc.poll() is None, proc.communicate()[1]
+                time.sleep(0.1)
+                workers = _children(proc.pid)
+            assert workers, "no worker processes started"
         time.sleep(1.0)  # into the run
+        workers |= _children(proc.pid)
         proc.send_signal(signal.SIGTERM)
         _, err = proc.communicate(timeout=60)
     finally:
@@ -499,6 +528,10 @@ def test_sigterm_is_handled_like_ctrl_c(data, tmp_path):
     assert lines == [("peaksift: terminated (SIGTERM); the run's unfinished outputs were "
                       "removed")], err
     assert not out.exists()
+    deadline = time.monotonic() + 5  # a helper such as multiprocessing's resource tracker
+    while time.monotonic() < deadline and not all(_gone(p) for p in workers):  # ends after
+        time.sleep(0.1)
+    assert all(_gone(p) for p in workers)
 
 
 # ------------------------------------------------------------- validation of the work
@@ -507,16 +540,16 @@ def _load(d: Path, extra: str = "", **kw):
 
 
 @pytest.mark.parametrize("resolution, extra, key", [
-    ("absolute = 1e-9", "", "model.resolution"),                              # case 24
-    ("table = [[90.0, 1e-7], [210.0, 1e-7]]", "", "model.resolution"),        # case 25
-    ("absolute = 2.0", "[scan]\nstep = 1e-12\n", "scan.step"),                # case 26
-    ("absolute = 2.0\nnatural_width = 1e6", "", "model.resolution.natural_width"),  # 27
-    ("absolute = 500.0", "", "model.resolution.absolute"),                    # case 28
-    ("absolute = 2.0", "[scan]\npoints = 100000\n", "scan.points and spectrum.bins"),  # 29
+    ("absolute = 1e-9", "", "model.resolution"),                              # 26
+    ("table = [[90.0, 1e-7], [210.0, 1e-7]]", "", "model.resolution"),        # 27
+    ("absolute = 2.0", "[scan]\nstep = 1e-12\n", "scan.step"),                # 28
+    ("absolute = 2.0\nnatural_width = 1e6", "", "model.resolution.natural_width"),  # 29
+    ("absolute = 500.0", "", "model.resolution.absolute"),                    # 30
+    ("absolute = 2.0", "[scan]\npoints = 100000\n", "scan.points and spectrum.bins"),  # 31
 ])
 def test_plans_that_cannot_run_are_refused_at_config_time(tmp_path, resolution, extra, key):
-    """Cases 24-29: values that pass type checks but would hang (~1e11 planning steps),
-    allocate terabytes, or put the peak outside the window: refused within a second,
+    """Cases 26-31: values that pass type checks but would hang (~1e11 planning steps),
+    allocate terabytes, or put the peak outside the window: refused in well under 5 s,
     naming the key."""
     t0 = time.perf_counter()
     with pytest.raises(peaksift.ConfigError) as err:
@@ -526,7 +559,7 @@ def test_plans_that_cannot_run_are_refused_at_config_time(tmp_path, resolution, 
 
 
 def test_bin_width_that_would_allocate_terabytes(tmp_path):
-    """Case 30: spectrum.bin_width = 1e-9 (1e11 bins) is refused before any array."""
+    """Case 32: spectrum.bin_width = 1e-9 (1e11 bins) is refused before any array."""
     cfg = _config(tmp_path).read_text().replace("bins = 50", "bin_width = 1e-9")
     (tmp_path / "c.toml").write_text(cfg)
     with pytest.raises(peaksift.ConfigError, match="spectrum.bin_width gives 1e"):
@@ -534,7 +567,7 @@ def test_bin_width_that_would_allocate_terabytes(tmp_path):
 
 
 def test_reasonable_plans_are_accepted(tmp_path):
-    """Case 31: the clean neighbours: a natural width of 5 GeV, a 0.5 GeV step, the
+    """Case 33 (clean): the neighbours: a natural width of 5 GeV, a 0.5 GeV step, the
     default grid at 2 GeV resolution."""
     assert _load(tmp_path, resolution="absolute = 2.0\nnatural_width = 5.0") is not None
     assert _load(tmp_path, "[scan]\nstep = 0.5\n") is not None
@@ -542,7 +575,8 @@ def test_reasonable_plans_are_accepted(tmp_path):
 
 
 def test_api_scan_and_limits_apply_the_same_rules():
-    """Cases 32-34: the same ceilings in peaksift.scan and peaksift.upper_limits."""
+    """Cases 34-38: the same ceilings in peaksift.scan (natural width, hypotheses, bins)
+    and peaksift.upper_limits (natural width), and a clean scan beside them."""
     from peaksift.stats.bounds import MAX_BINS, MAX_HYPOTHESES
 
     m = _background()
@@ -565,7 +599,7 @@ def test_api_scan_and_limits_apply_the_same_rules():
 
 @pytest.mark.parametrize("bins", [1, 3])
 def test_few_bins_are_not_called_a_blinded_range(tmp_path, bins):
-    """Cases 35-36: 1 or 3 bins without blinding: the message is about the bin count."""
+    """Cases 39-40: 1 or 3 bins without blinding: the message is about the bin count."""
     with pytest.raises(peaksift.ConfigError) as err:
         _load(tmp_path, bins=bins)
     msg = str(err.value)
@@ -573,7 +607,7 @@ def test_few_bins_are_not_called_a_blinded_range(tmp_path, bins):
 
 
 def test_blinding_that_leaves_no_sidebands(tmp_path, capsys):
-    """Case 37: a blinded window covering nearly all bins names blinding.window; case 38:
+    """Case 41: a blinded window covering nearly all bins names blinding.window; case 42:
     sidebands that exist but hold no candidate say so (not 'the window is empty')."""
     with pytest.raises(peaksift.ConfigError, match="blinding.window: only 2 bin"):
         _load(tmp_path, "[blinding]\nenabled = true\nwindow = [102.0, 198.0]\n")
@@ -586,7 +620,7 @@ def test_blinding_that_leaves_no_sidebands(tmp_path, capsys):
 
 
 def test_utf8_byte_order_mark_gets_a_hint(tmp_path, capsys):
-    """Case 39."""
+    """Case 43."""
     p = tmp_path / "c.toml"
     p.write_bytes(b"\xef\xbb\xbf" + _config(tmp_path).read_bytes())
     rc, _, err = _run(capsys, ["spectrum", p])
@@ -594,7 +628,7 @@ def test_utf8_byte_order_mark_gets_a_hint(tmp_path, capsys):
 
 
 def test_demo_with_too_few_events_names_a_real_option(tmp_path, capsys):
-    """Case 40: `demo --events 1` names --events (there is no --files option)."""
+    """Case 44: `demo --events 1` names --events (there is no --files option)."""
     rc, _, err = _run(capsys, ["demo", tmp_path / "d", "--events", "1"])
     line = _one_line(err)
     assert rc == 2 and "--events 2" in line and "--files" not in line
@@ -603,11 +637,11 @@ def test_demo_with_too_few_events_names_a_real_option(tmp_path, capsys):
 
 # --------------------------------------------------------------------------- weights
 @pytest.mark.parametrize("weight", [
-    pa.array([[1.0]] * 10, type=pa.list_(pa.float64())),   # case 41
-    pa.array(["1.0"] * 10),                                 # case 42
+    pa.array([[1.0]] * 10, type=pa.list_(pa.float64())),   # cases 45-46
+    pa.array(["1.0"] * 10),                                 # cases 47-48
 ])
 def test_weight_column_must_be_one_number_per_event(tmp_path, capsys, weight):
-    """Cases 41-42: the CLI and the API refuse the same column, naming it and the file."""
+    """Cases 45-48: the CLI and the API refuse the same column, naming it and the file."""
     d = tmp_path / "d"
     f = _write_data(d, np.full(10, 150.0), weight=weight)
     rc, _, err = _run(capsys, ["spectrum", _config(d), "--out", tmp_path / "o", "--quiet"])
@@ -620,7 +654,7 @@ def test_weight_column_must_be_one_number_per_event(tmp_path, capsys, weight):
 
 @pytest.mark.parametrize("value, word", [(0.0, "zero"), (-1.0, "negative")])
 def test_zero_or_negative_total_weight(tmp_path, capsys, value, word):
-    """Cases 43-44: not 'no candidates ... loosen objects.cut'."""
+    """Cases 49-50: not 'no candidates ... loosen objects.cut'."""
     d = tmp_path / "d"
     m = _background(500)
     _write_data(d, m, weight=np.full(m.size, value))
@@ -631,7 +665,7 @@ def test_zero_or_negative_total_weight(tmp_path, capsys, value, word):
 
 
 def test_overflowing_weights(tmp_path, capsys):
-    """Case 45: weights of 1e300 (squares overflow): one line, not a linear-algebra crash."""
+    """Case 51: weights of 1e300 (squares overflow): one line, not a linear-algebra crash."""
     d = tmp_path / "d"
     m = _background(500)
     _write_data(d, m, weight=np.full(m.size, 1e300))
@@ -640,7 +674,7 @@ def test_overflowing_weights(tmp_path, capsys):
 
 
 def test_numeric_weights_are_used(tmp_path):
-    """Case 46 (clean): float weights fill the spectrum with their sum (numpy's sum of the
+    """Case 52 (clean): float weights fill the spectrum with their sum (numpy's sum of the
     weights written here, 1e-9 relative)."""
     d = tmp_path / "d"
     m = _background(800)
@@ -659,7 +693,9 @@ def _results(**over):
 
 
 def test_doubts_thresholds():
-    """Cases 47-52: each warning fires past its stated threshold and not before it."""
+    """Cases 53-60: each warning fires past its stated threshold and not before it
+    (clean results, invalid fit, blinded fit, low and fine goodness of fit, invalid
+    calibration, limits outside the band at too many and at few enough masses)."""
     from peaksift.search.doubts import BAND_OUTSIDE_MAX_FRACTION, GOF_P_MIN, doubts
 
     assert doubts(_results()) == []
@@ -686,7 +722,7 @@ def test_doubts_thresholds():
 
 
 def test_unmodelled_peak_is_flagged_everywhere(tmp_path, capsys):
-    """Case 53: a second narrow peak the one-signal model cannot follow: the fit's
+    """Case 61: a second narrow peak the one-signal model cannot follow: the fit's
     goodness-of-fit p (checked against scipy's chi-square survival function, 1e-6
     relative) is below 0.001 and the warning is in results.json, the summary and both
     reports."""
@@ -711,7 +747,7 @@ def test_unmodelled_peak_is_flagged_everywhere(tmp_path, capsys):
 
 
 def test_clean_search_has_no_warnings(data, capsys, tmp_path):
-    """Case 54 (clean): a background-only spectrum the model describes: no warning, and the
+    """Case 62 (clean): a background-only spectrum the model describes: no warning, and the
     summary prints none."""
     out = tmp_path / "o"
     rc, stdout, err = _run(capsys, ["search", data / "c.toml", "--out", out, "--quiet"])
@@ -722,10 +758,10 @@ def test_clean_search_has_no_warnings(data, capsys, tmp_path):
 
 
 # ------------------------------------------------------------ data that used to crash
-@pytest.mark.parametrize("masses", [np.array([150.0]),                            # case 55
-                                    np.r_[_background(), np.full(3000, 150.5)]])  # case 56
+@pytest.mark.parametrize("masses", [np.array([150.0]),                            # case 63
+                                    np.r_[_background(), np.full(3000, 150.5)]])  # case 64
 def test_degenerate_data_never_give_a_traceback(tmp_path, capsys, masses):
-    """Cases 55-56: a one-event data set and a 3000-event peak inside one bin: the search
+    """Cases 63-64: a one-event data set and a 3000-event peak inside one bin: the search
     either finishes with its doubts printed or stops with one line, never a traceback."""
     d = tmp_path / "d"
     _write_data(d, masses)

@@ -302,3 +302,31 @@ def test_probe_is_never_called_by_explicit_attempts():
         with pytest.raises(CutError):
             compile_cut(text).evaluate(COLS, N)
     assert PROBE_CALLS == []
+
+
+def test_clauses_and_requirement_counts_against_numpy():
+    """Each clause of a top-level ``and`` is counted after the ones before it; checked
+    against the same requirements written directly in numpy on the flat columns."""
+    import awkward as ak
+
+    from peaksift.cuts import clauses, requirement_counts
+
+    assert [c.expression for c in clauses("pt > 20 and (eta < 1 or eta > 2) and 1 < q < 3")] \
+        == ["pt > 20", "(eta < 1 or eta > 2)", "1 < q < 3"]
+    assert clauses("pt > 20 or eta < 1")[0].expression == "pt > 20 or eta < 1"
+    assert clauses(lambda c: c.pt > 1) == ()
+    rng = np.random.default_rng(5)
+    counts = rng.integers(0, 4, 200)
+    n = int(counts.sum())
+    pt, eta = rng.exponential(25.0, n), rng.uniform(-3, 3, n)
+    coll = ak.unflatten(ak.zip({"pt": pt, "eta": eta}), counts)
+    keep_events = rng.random(200) < 0.8
+    steps, per_event = requirement_counts(coll, "pt > 20 and abs(eta) < 2.4", name="mu",
+                                          keep_events=keep_events)
+    kept = np.repeat(keep_events, counts)
+    a = kept & (pt > 20)
+    b = a & (np.abs(eta) < 2.4)
+    assert steps == [("mu objects", int(kept.sum())), ("pt > 20", int(a.sum())),
+                     ("abs(eta) < 2.4", int(b.sum()))]
+    owner = np.repeat(np.arange(200), counts)
+    assert np.array_equal(per_event, np.bincount(owner[b], minlength=200))

@@ -360,8 +360,8 @@ def test_serial_collect_equals_one_pass_reference(dataset):
     assert got.cutflow == c.cutflow
     assert got.candidates == len(c)
     assert got.files_read == tuple(dataset) and got.files_skipped == ()
-    # the pT / rapidity summaries hold the candidates inside the histogram range
-    inrange = (c.mass >= EDGES[0]) & (c.mass <= EDGES[-1])
+    # the pT / rapidity summaries hold the candidates inside the fit window
+    inrange = (c.mass >= WINDOW[0]) & (c.mass <= WINDOW[-1])
     assert got.pt_histogram.total(flow=True) == inrange.sum()
     ref_y, _ = np.histogram(c.rapidity[inrange], bins=np.asarray(SEL.rapidity_edges))
     np.testing.assert_array_equal(got.rapidity_histogram.weight_sum, ref_y)

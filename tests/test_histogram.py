@@ -253,7 +253,8 @@ def test_plot_labels_and_points(tmp_path):
 
     m, _ = _data(4000)
     h = MassHistogram(bins=60, range=(60, 120)).fill(m)
-    ax = h.plot()
+    fig = h.plot()  # a Figure, as every plot() in peaksift
+    ax = fig.axes[0]
     assert ax.get_xlabel() == "$m$ [GeV]"
     assert ax.get_ylabel() == "candidates / 1 GeV"
     line = ax.lines[0]
@@ -261,7 +262,7 @@ def test_plot_labels_and_points(tmp_path):
     ax.figure.savefig(tmp_path / "spectrum.png")
     plt.close(ax.figure)
     hv = MassHistogram(EDGES_VAR).fill(m)
-    ax = hv.plot()
+    ax = hv.plot().axes[0]
     np.testing.assert_allclose(ax.lines[0].get_ydata(), hv.weight_sum / hv.widths)
     assert ax.get_ylabel() == "candidates / GeV"
     plt.close(ax.figure)

@@ -163,13 +163,23 @@ def _calibrated(cols):
                              samples=cols["dedx_samples"][band])
 
 
-def test_scale_fit_on_the_demo_pions_recovers_the_generated_scale(demo_tracks):
+def _pure_pion_scale(cols):
+    """The normal MLE (scipy.stats.norm.fit) of measured / Bethe mean on the generator-truth
+    pions of the calibration band: what the clipped fit must find without using the truth."""
+    band = (cols["p"] > 0.4) & (cols["p"] < 0.6) & (cols["truth_species"] == 211)
+    b = DedxResponse("argon_co2_70_30", 1.0, 0.07).expected(cols["p"][band], M_PI)
+    mu, _ = stats.norm.fit(cols["dedx"][band] / b)
+    return mu
+
+
+def test_scale_fit_on_the_demo_band_matches_the_pure_pion_mle(demo_tracks):
+    # the band holds kaons, protons and electrons too; the 3-sigma clip must remove them.
+    # Tolerance: 4 standard errors of the fit plus 0.3% for the clip on the truncated
+    # mean's skewed distribution and the per-track weights of the fit.
     _, cols = demo_tracks
     fit = _calibrated(cols)
-    truth = json.loads((TRACKS / "truth.json").read_text())["dedx"]["scale_kev_per_cm"]
-    # invented demo value as truth; 4 standard errors of the fit, plus 0.2% for the
-    # generator's per-track momentum smearing and the truncated mean's skew
-    assert abs(fit.scale - truth) < 4 * fit.scale_error + 0.002 * truth
+    want = _pure_pion_scale(cols)
+    assert abs(fit.scale - want) < 4 * fit.scale_error + 0.003 * want
 
 
 @pytest.mark.parametrize("species,code,p_range,neighbours", [
@@ -274,3 +284,70 @@ def test_committed_hadron_set_is_regenerated():
     stored = pq.read_table(TRACKS / "tracks_000.parquet")
     assert fresh.equals(stored)
     assert counts["phi_decays_both_kaons_kept"] == truth["phi_decays_both_kaons_kept"]
+
+
+def test_hadron_search_reports_the_identification(tmp_path, demo_tracks):
+    """The demo's hadron search end to end (fast settings): the phi(1020) calibration against the
+    particle tables (within two combined standard errors), and the report's identification
+    section and figure."""
+    from peaksift import load_config, run_search
+
+    # no toys and no profile-likelihood intervals: the slow parts, not what is checked here
+    cfg = load_config(HADRON_CONFIG).with_overrides(significance__toys=0,
+                                                    model__intervals=False)
+    res = run_search(cfg, out=tmp_path / "out")
+    d = json.loads((tmp_path / "out" / "results.json").read_text())
+    ident = d["identification"]
+    fit = ident["calibration_fit"]["scale"]
+    want = _pure_pion_scale(demo_tracks[1])
+    assert abs(fit["value"] - want) < 4 * fit["error"] + 0.003 * want  # as above
+    cal = d["calibration"]
+    assert cal["particle"] == "phi(1020)" and abs(cal["shift_sigma"]) < 2
+    assert "dedx" in res.figures and (tmp_path / "out" / "figures" / "dedx.png").is_file()
+    md = (tmp_path / "out" / "report.md").read_text()
+    assert "## Particle identification (dE/dx)" in md and "figures/dedx.png" in md
+    assert d["config"]["pairing"]["hypotheses"] == ["kaon"]
+
+
+def _config_dict(**sections):
+    base = {"input": {"files": [str(TRACKS / "tracks_000.parquet")]},
+            "objects": {"collection": "track"},
+            "spectrum": {"window": [1.0, 1.08], "bins": 80},
+            "model": {"resolution": {"absolute": 0.0011}}}
+    for k, v in sections.items():
+        base.setdefault(k, {}).update(v)
+    return base
+
+
+def test_config_own_material_and_cross_key_rules():
+    from peaksift import load_config
+
+    own = {"z_over_a": 0.45059, "mean_excitation_ev": 188.0, "density": 1.662e-3,
+           "density_effect": [11.9480, 1.7635, 4.4855, 0.19714, 2.9618, 0.0]}
+    cfg = load_config(_config_dict(identification={"resolution": 0.08, "material": "own",
+                                                   "own_material": own, "scale": 1.0}))
+    # the constants of argon gas (PDG tables) typed in by the user give argon's curve
+    from peaksift.energy_loss import mean_energy_loss
+    r = cfg.identification.response()
+    bg = np.geomspace(0.2, 200, 50)
+    np.testing.assert_allclose(mean_energy_loss(bg, r.material),
+                               mean_energy_loss(bg, "argon_gas"), rtol=1e-12)
+    assert cfg.to_dict()["identification"]["own_material"]["z_over_a"] == 0.45059
+    bad = [
+        ({"identification": {"resolution": 0.08, "material": "own"}},
+         "identification.own_material.z_over_a"),
+        ({"objects": {"cut": "abs(dedx_deviation(kaon)) < 3"}}, "identification is off"),
+        ({"pairing": {"hypotheses": ["kaon", "pion"], "assignment": "more_probable"}},
+         "set identification.resolution"),
+        ({"pairing": {"hypotheses": ["kaon"], "assignment": "more_probable"}},
+         "two different pairing.hypotheses"),
+        ({"identification": {"resolution": 0.08, "samples_field": "dedx_samples"}},
+         "identification.reference_samples"),
+    ]
+    for sections, words in bad:
+        with pytest.raises(ConfigError, match=words.replace(".", r"\.")):
+            load_config(_config_dict(**sections))
+    # two hypotheses on one collection: second_cut selects the second leg
+    cfg = load_config(_config_dict(objects={"cut": "pt > 0.1", "second_cut": "pt > 0.2"},
+                                   pairing={"hypotheses": ["kaon", "pion"]}))
+    assert cfg.pairing.hypotheses == ("kaon", "pion")

@@ -528,3 +528,23 @@ def test_pair_leaves_numba_extensions_to_later_compilations(tmp_path, demo_dir, 
     out = done.stdout
     assert out.splitlines() == [f"vector numba extension loaded: {loaded}",
                                 f"extensions pending: {not loaded}", "same sum: True"], out
+
+
+def test_candidates_select_like_numpy_columns(random_rows):
+    """Slicing, boolean masks and position arrays select the same rows numpy's own indexing
+    selects from each column (reference: numpy's basic and advanced indexing rules)."""
+    cands = pair(_events(muon=_collection(random_rows[0])), "muon", charge="opposite")
+    assert len(cands) > 20
+    m = cands.mass
+    for index in (slice(3, 17, 2), m > np.median(m), np.array([5, 0, 5, len(m) - 1])):
+        sub = cands[index]
+        assert isinstance(sub, Candidates)
+        for k in Candidates._COLUMNS:
+            np.testing.assert_array_equal(getattr(sub, k), getattr(cands, k)[index])
+        np.testing.assert_array_equal(sub.multiplicity, cands.multiplicity[index])
+        assert sub.cutflow == cands.cutflow and sub.choose == cands.choose
+    assert cands[-1]["mass"] == m[-1] and cands[0]["event_index"] == cands.event_index[0]
+    with pytest.raises(InputError, match="does not exist"):
+        cands[len(m)]
+    with pytest.raises(InputError, match="boolean mask of length"):
+        cands[np.ones(3, dtype=bool)]

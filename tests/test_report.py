@@ -112,7 +112,7 @@ def test_markdown_has_tables_caution_and_figure_links(tmp_path):
     assert "![spectrum](figures/spectrum.png)" in md
     assert "| Local significance | 3.90 σ (p = 4.80e-05) |" in md
     assert "upcrossings" in md
-    assert "| events | 1 000 |".replace(" 000", "\u2009000") in md
+    assert "| events | 1,000 |" in md  # one number format: the command line's
 
 
 def test_format_pm_rounds_error_to_two_digits():
@@ -186,3 +186,72 @@ def test_blinded_report_says_what_is_hidden(tmp_path):
     plain = render_markdown(_results(), {"spectrum": "figures/spectrum.png"})
     assert _CAPTIONS["spectrum"] in plain and "withheld" not in plain
     assert "χ² = 80.1 for 84 degrees of freedom" in plain
+
+
+def _full_results() -> dict:
+    """A results dictionary with 25 limit points, the assumptions, a background-only fit
+    and a per-requirement cut flow (as SearchResult.to_dict writes them)."""
+    r = _results()
+    m = np.linspace(113.87, 191.6, 25)
+    exp = 5.8 * (113.87 / m) ** 2
+    r["limits"] = {"mass": m.tolist(), "observed": (exp * 1.1).tolist(),
+                   "expected": exp.tolist(), "expected_minus2": (exp * 0.52).tolist(),
+                   "expected_minus1": (exp * 0.71).tolist(),
+                   "expected_plus1": (exp * 1.42).tolist(),
+                   "expected_plus2": (exp * 1.95).tolist(), "unit": "fb", "cl": 0.95,
+                   "method": "auto",
+                   "assumptions": {"luminosity": 10.0, "luminosity_uncertainty": 0.02,
+                                   "efficiency": 0.55, "efficiency_uncertainty": 0.05,
+                                   "constraint": "lognormal"}}
+    r["limits"]["observed"][12] = 8.44  # the point that matters must not be skipped
+    r["background_only_fit"] = {
+        "valid": True, "background_shape": "powerlaw",
+        "gof": {"chi2": 118.95, "ndf": 88, "p_value": 0.0156},
+        "parameters": {"mass": {"value": 152.6, "error": 0.0, "fixed": True},
+                       "power": {"value": 4.9927, "error": 0.2111, "fixed": False},
+                       "background_yield": {"value": 980.0, "error": 31.3, "fixed": False}}}
+    r["input"]["requirements"] = {"events read": 1000, "muon objects": 700,
+                                  "muon: pt > 20": 500, "muon: abs(eta) < 2.4": 480,
+                                  "events with at least 2 selected muon objects": 400}
+    r["input"]["cutflow"] = {"events_in": 1000, "events_with_pair": 390, "candidates": 390}
+    return r
+
+
+def test_report_has_every_limit_point_its_bands_and_the_assumptions(tmp_path):
+    r = _full_results()
+    lim = r["limits"]
+    md = render_markdown(r)
+    page = render_html(r)
+    parser = _Collect()
+    parser.feed(page)
+    text = " ".join(parser.text)
+    for doc in (md, text):
+        # every point, formatted independently here with two decimals (the table's precision)
+        for i, mass in enumerate(lim["mass"]):
+            cells = [f"{mass:.2f}"] + [f"{lim[k][i]:.2f}" for k in (
+                "observed", "expected", "expected_minus2", "expected_minus1",
+                "expected_plus1", "expected_plus2")]
+            if doc is md:
+                assert "| " + " | ".join(cells) + " |" in md, cells
+            else:
+                assert all(c in text for c in cells)
+        assert "8.44" in doc
+        assert "L = 10 fb⁻¹ ± 2%" in doc and "ε = 0.55 ± 5%" in doc
+        assert "log-normal" in doc
+    # the table heads name the two bands on both sides
+    assert "| −2σ | −1σ | +1σ | +2σ |" in md
+
+
+def test_report_has_the_background_fit_and_each_requirement_in_order():
+    r = _full_results()
+    md = render_markdown(r)
+    assert "χ² = 119 for 88 degrees of freedom (p = 0.0156)" in md
+    assert "| power | 4.99 ± 0.21 |" in md and "| background yield | 980 ± 31 |" in md
+    assert "| mass |" not in md.split("## Background-only fit")[1].split("##")[0]
+    steps = ["| events read | 1,000 |", "| muon objects | 700 |", "| muon: pt > 20 | 500 |",
+             "| muon: abs(eta) < 2.4 | 480 |",
+             "| events with at least 2 selected muon objects | 400 |"]
+    at = [md.index(s) for s in steps]
+    assert at == sorted(at)
+    # the look-elsewhere numbers explained in plain words, beside the technical sentence
+    assert "In plain words" in md and "somewhere in the scanned range" in md

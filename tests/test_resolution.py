@@ -100,7 +100,11 @@ def test_relative_resolution_has_one_check_in_the_api_and_the_config(bad):
     cfg_text = str(cfg.value).split("model.resolution.relative", 1)[1]
     assert api_text == cfg_text
     assert "<= 1" in cfg_text
-    assert load_config(_config({"relative": 1.0})).model.resolution.sigma(150.0) == 150.0
+    # 1.0 itself passes the relative check; a sigma equal to the mass is then refused by
+    # the separate rule that the peak must fit in the window (half its width at most)
+    with pytest.raises(ConfigError) as edge:
+        load_config(_config({"relative": 1.0}))
+    assert "<= 1" not in str(edge.value) and "more than 0.5 of the" in str(edge.value)
 
 
 def test_absolute_resolution_is_in_gev():
@@ -138,12 +142,11 @@ def test_sigma_far_below_the_bin_width_is_refused_quickly():
 
 def test_default_grid_of_the_search_is_bounded():
     """The search's default hypotheses half a sigma apart: a resolution just above the
-    refusal threshold on the finest allowed binning would give ~2e7 of them; refused."""
-    from peaksift.search.common import _scan_masses
-
-    cfg = load_config(_config({"absolute": 1.0e-5}, bins=100_000))  # bins of 0.9 MeV
-    with pytest.raises(ConfigError, match="scan.step or scan.points"):
-        _scan_masses(cfg)
+    refusal threshold on the finest allowed binning would give ~2e7 of them; refused when
+    the config is loaded, naming the key."""
+    with pytest.raises(ConfigError, match=r"model.resolution.absolute .*scan.step or "
+                                          r"scan.points.*1.8e\+07 mass hypotheses"):
+        load_config(_config({"absolute": 1.0e-5}, bins=100_000))  # bins of 0.9 MeV
 
 
 def test_tables_are_not_extrapolated():

@@ -8,7 +8,8 @@ numpy scalars, strings -- and returns text; a missing or non-finite number is ``
 * :func:`as_finite`     -- a finite float or None (the test every other function makes).
 * :func:`number`        -- a plain number (4 significant digits; ints with a thousands mark).
 * :func:`fixed`         -- a fixed number of decimals (masses, Z).
-* :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits.
+* :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits
+  (:func:`pm_parts`: the same as two texts, for aligned tables).
 * :func:`format_interval` -- ``value +upper -lower`` for a profile-likelihood interval.
 * :func:`p_value`       -- a p-value; below the smallest normal double (2.2e-308), where the
   float is 0, it is written as a power of ten from its ``log10_p``: ``10^-2173.9``.
@@ -25,7 +26,7 @@ from typing import Any
 
 from ._json import finite
 
-__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "number", "p_value",
+__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "number", "p_value", "pm_parts",
            "significance"]
 
 #: what every function prints for a missing or non-finite number
@@ -84,6 +85,14 @@ def format_pm(value: Any, error: Any, unit: str = "") -> str:
         return f"{number(v)}{u}"
     dec = max(0, 1 - math.floor(math.log10(e)))
     return f"{v:.{dec}f} \u00b1 {e:.{dec}f}{u}"
+
+
+def pm_parts(value: Any, error: Any) -> tuple[str, str]:
+    """``(value, error)`` as the two texts :func:`format_pm` joins with ``±`` (the error
+    ``""`` when there is none): for tables that align the ``±`` signs."""
+    text = format_pm(value, error)
+    v, _, e = text.partition(" \u00b1 ")
+    return v, e
 
 
 def p_value(p: Any, log10_p: Any = None, *, upper_bound: bool = False) -> str:

@@ -1,14 +1,30 @@
 """The peaksift figure style, shared by every layer that draws (no peaksift imports here).
 
-Use :func:`figure_style` as a context manager around any drawing, and the colour names
-below for data, model parts and bands, so every figure looks like one family:
-a white canvas, thin dark axes, ticks inside, a muted slate/teal/amber palette.
+What to use when
+----------------
+* :func:`new_figure` -- a Figure with its axes, made without pyplot: the user's matplotlib
+  backend is never switched, the figure saves to any format and shows in a notebook.
+* :func:`figure_style` -- context manager with the rc settings; wrap any drawing in it.
+* :func:`mass_symbol` / :func:`mass_label` -- the pair's mass symbol (``m_{\\mu\\mu}``,
+  ``m_{ee}``, ``m_{KK}``) from the collection names; every mass axis is labelled with it.
+* :func:`particle_tex` -- a particle name from the tables typeset (``Z0`` -> ``Z^0``).
+* :class:`RunLabel` and :func:`draw_header` -- the run label (name, sqrt(s), integrated
+  luminosity, channel) above the axes, and the figure's own statement under it.
+* :func:`value_table` -- the fitted numbers as a small aligned table (quantity, value,
+  error, unit) with a caption line, under the legend.
+* :func:`shade_blinded` -- the blinded mass range, drawn the same way on every figure.
+
+The look: a white canvas, thin dark axes, ticks inside, a muted slate/teal/amber palette,
+the run label as a teal name followed by its conditions in grey.
 """
 
 from __future__ import annotations
 
 import contextlib
-from collections.abc import Iterator
+import re
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from typing import Any
 
 COLORS = {
     "data": "#1b1b1f",        # near-black points
@@ -20,14 +36,19 @@ COLORS = {
     "observed": "#1b1b1f",
     "expected": "#1f6f8b",
     "accent": "#e0a458",
-    "blind": "#e9e9ee",       # hatched/blinded region
+    "blind": "#e9e9ee",       # blinded region: pale fill
+    "blind_edge": "#9a9aa6",  # and its hatching
+    "label": "#1f6f8b",       # the run's name in the run label
+    "muted": "#55585f",       # secondary text
+    "table": "#f4f6f8",       # background of the value table
+    "mark": "#6b4c9a",        # muted violet: a fitted position marked on the axis
 }
 
 _RC = {
     "figure.figsize": (7.0, 5.0),
     "figure.dpi": 110,
     "savefig.dpi": 150,
-    "savefig.bbox": "tight",
+    "savefig.bbox": None,  # fixed margins (see new_figure): "tight" draws every figure twice
     "font.size": 10.5,
     "axes.labelsize": 11,
     "axes.titlesize": 11,
@@ -45,7 +66,11 @@ _RC = {
     "legend.frameon": False,
     "legend.fontsize": 9.5,
     "lines.linewidth": 1.6,
+    "mathtext.default": "regular",  # subscripts and names upright, as in running text
+    "hatch.linewidth": 0.6,
 }
+
+_TABLE_FONT = 8.8
 
 
 @contextlib.contextmanager
@@ -57,8 +82,266 @@ def figure_style() -> Iterator[None]:
         yield
 
 
+def new_figure(figsize: tuple[float, float] = (7.0, 4.6), nrows: int = 1, ncols: int = 1,
+               **subplots: Any) -> tuple[Any, Any]:
+    """``(Figure, axes)`` made without pyplot, in the peaksift style.
+
+    The figure carries its own Agg canvas, so ``fig.savefig`` works and nothing changes the
+    backend the user chose (an interactive session keeps showing its windows).  A notebook
+    shows a returned Figure as usual.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    with figure_style():
+        fig = Figure(figsize=figsize)
+        FigureCanvasAgg(fig)
+        axes = fig.subplots(nrows, ncols, **subplots)
+        margins(fig)
+    return fig, axes
+
+
+def margins(fig: Any, *, left: float = 0.85, right: float = 0.45, top: float = 0.62,
+            bottom: float = 0.62) -> None:
+    """Fixed margins in inches: room for the axis labels, the sigma labels on the right of a
+    p-value scan and the two header lines above (a fixed frame draws each figure once,
+    where a "tight" bounding box draws it twice)."""
+    w, h = fig.get_size_inches()
+    fig.subplots_adjust(left=left / w, right=1.0 - right / w, top=1.0 - top / h,
+                        bottom=bottom / h)
+
+
+# ---------------------------------------------------------------------- mass symbols
+# collection name (lower case, singular) -> symbol of one object in the subscript
+_OBJECT_SYMBOLS = {
+    "muon": r"\mu", "mu": r"\mu", "electron": "e", "ele": "e", "e": "e", "positron": "e",
+    "kaon": "K", "k": "K", "pion": r"\pi", "pi": r"\pi", "proton": "p", "p": "p",
+    "photon": r"\gamma", "gamma": r"\gamma", "tau": r"\tau", "lepton": r"\ell",
+    "track": "t", "jet": "j", "b_jet": "b", "bjet": "b",
+}
+
+
+def _object_symbol(collection: str) -> str:
+    name = str(collection).strip().lower()
+    for cand in (name, name.rstrip("s"), name.removesuffix("es")):
+        if cand in _OBJECT_SYMBOLS:
+            return _OBJECT_SYMBOLS[cand]
+    return r"\mathrm{" + re.sub(r"[^A-Za-z0-9]", "", str(collection))[:6] + "}"
+
+
+def mass_symbol(first: str | None = None, second: str | None = None) -> str:
+    """The pair's mass symbol as mathtext without dollars: ``m_{\\mu\\mu}``, ``m_{ee}``,
+    ``m_{KK}``, ``m_{e\\mu}``; plain ``m`` without a collection name."""
+    if not first:
+        return "m"
+    a = _object_symbol(first)
+    b = _object_symbol(second) if second else a
+    return f"m_{{{a}{b}}}"
+
+
+def mass_label(first: str | None = None, second: str | None = None, unit: str = "GeV") -> str:
+    """Axis label of a pair mass, ``$m_{\\mu\\mu}$ [GeV]`` (every mass axis uses this)."""
+    return f"${mass_symbol(first, second)}$ [{unit}]" if unit else f"${mass_symbol(first, second)}$"
+
+
+def channel_tex(first: str | None, second: str | None = None, charge: str | None = None
+                ) -> str:
+    """The final state as mathtext: ``$\\mu^+\\mu^-$`` for opposite charges, ``$\\mu^\\pm\\mu^\\pm$``
+    for equal charges, ``$\\mu\\mu$`` otherwise; '' without a collection."""
+    if not first:
+        return ""
+    a = _object_symbol(first)
+    b = _object_symbol(second) if second else a
+    if charge == "opposite":
+        return f"${a}^+{b}^-$"
+    if charge == "same":
+        return f"${a}^\\pm{b}^\\pm$"
+    return f"${a}{b}$"
+
+
+_PARTICLE_TEX = [  # regex on the tables' names -> mathtext
+    (re.compile(r"^([A-Za-z])0$"), r"$\1^0$"),
+    (re.compile(r"^([A-Za-z])\+$"), r"$\1^+$"),
+    (re.compile(r"^([A-Za-z])-$"), r"$\1^-$"),
+    (re.compile(r"^J/psi(.*)$"), r"$J/\\psi$\1"),
+    (re.compile(r"^psi(.*)$"), r"$\\psi$\1"),
+    (re.compile(r"^Upsilon(.*)$"), r"$\\Upsilon$\1"),
+    (re.compile(r"^phi(.*)$"), r"$\\phi$\1"),
+    (re.compile(r"^omega(.*)$"), r"$\\omega$\1"),
+    (re.compile(r"^rho(.*)$"), r"$\\rho$\1"),
+    (re.compile(r"^eta(.*)$"), r"$\\eta$\1"),
+]
+
+
+def particle_tex(name: Any) -> str:
+    """A particle name as written in the tables, typeset: ``Z0`` -> ``$Z^0$``,
+    ``J/psi`` -> ``$J/\\psi$``, ``Upsilon(1S)`` -> ``$\\Upsilon$(1S)``; others unchanged."""
+    s = str(name)
+    for pat, rep in _PARTICLE_TEX:
+        if pat.match(s):
+            return pat.sub(rep, s)
+    return s
+
+
+# ------------------------------------------------------------------------- run label
+@dataclass(frozen=True)
+class RunLabel:
+    """What a figure says about the data it shows.
+
+    Attributes
+    ----------
+    name : str
+        The run's name (``"demo run"``).
+    sqrt_s : float or None
+        Centre-of-mass energy in TeV.
+    luminosity : float or None
+        Integrated luminosity in fb^-1.
+    channel : str
+        The final state (mathtext allowed, e.g. ``$\\mu^+\\mu^-$``).
+    """
+
+    name: str = ""
+    sqrt_s: float | None = None
+    luminosity: float | None = None
+    channel: str = ""
+
+    def conditions(self) -> str:
+        """``√s = 10 TeV,  10 fb⁻¹,  μ⁺μ⁻`` (mathtext)."""
+        parts = []
+        if self.sqrt_s is not None:
+            parts.append(rf"$\sqrt{{s}}$ = {self.sqrt_s:g} TeV")
+        if self.luminosity is not None:
+            parts.append(f"{self.luminosity:g} fb$^{{-1}}$")
+        if self.channel:
+            parts.append(self.channel)
+        return ",  ".join(parts)
+
+    def text(self) -> str:
+        """The whole label on one line."""
+        return "  ".join(p for p in (self.name, self.conditions()) if p)
+
+    def __bool__(self) -> bool:
+        return bool(self.name or self.sqrt_s is not None or self.luminosity is not None
+                    or self.channel)
+
+
+def _points(ax: Any, x: float, y: float) -> Any:
+    """A transform in points whose origin is the axes point ``(x, y)`` (axes fraction)."""
+    from matplotlib import transforms
+
+    fig = ax.figure
+    return (transforms.Affine2D().scale(1.0 / 72.0) + fig.dpi_scale_trans
+            + transforms.ScaledTranslation(x, y, ax.transAxes))
+
+
+def text_width(text: str, size: float, weight: str = "normal") -> float:
+    """Width of ``text`` in points at font ``size`` (mathtext measured as mathtext)."""
+    from matplotlib.font_manager import FontProperties
+    from matplotlib.textpath import text_to_path
+
+    prop = FontProperties(size=size, weight=weight)
+    ismath = text.count("$") >= 2 and text.count("$") % 2 == 0
+    w, _, _ = text_to_path.get_text_width_height_descent(text, prop, ismath=ismath)
+    return float(w)
+
+
+def draw_header(ax: Any, run: RunLabel | None = None, note: str = "") -> None:
+    """The run label above the axes (name in teal, conditions in grey) and, under it, the
+    figure's own statement ``note`` (best mass, significance, assumptions)."""
+    size = 9.5
+    y = 4.0 if note else 3.0
+    if note:
+        ax.text(0.0, 4.0, note, transform=_points(ax, 0.0, 1.0), fontsize=8.8,
+                color=COLORS["muted"], va="bottom", ha="left")
+        y = 4.0 + 8.8 * 1.45 * (note.count("\n") + 1)
+    if run:
+        x = 0.0
+        if run.name:
+            ax.text(0.0, y, run.name, transform=_points(ax, 0.0, 1.0), fontsize=size,
+                    fontweight="bold", color=COLORS["label"], va="bottom", ha="left")
+            x = text_width(run.name, size, "bold") + 9.0
+        cond = run.conditions()
+        if cond:
+            ax.text(x, y, cond, transform=_points(ax, 0.0, 1.0), fontsize=size,
+                    color=COLORS["data"], va="bottom", ha="left")
+
+
+# ------------------------------------------------------------------------ value table
+def value_table_height(n_rows: int, *, caption: str = "", title: str = "") -> float:
+    """Height in points of :func:`value_table` with ``n_rows`` rows."""
+    lines = n_rows + (caption.count("\n") + 1 if caption else 0) + (1 if title else 0)
+    return lines * _TABLE_FONT * 1.55 + 8.0
+
+
+def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: str = "",
+                below: Any = None, corner: str = "right", title: str = "") -> None:
+    """Fitted numbers as a small table: quantity | value | ± error | unit, aligned on the
+    ± sign, with an optional ``title`` row and a ``caption`` line (goodness of fit) under it.
+
+    Placed in the upper ``corner`` ("right" or "left") of ``ax``, below the legend
+    ``below`` when given (measured on the figure's renderer).
+    """
+    from matplotlib.patches import FancyBboxPatch
+
+    if not rows:
+        return
+    size = _TABLE_FONT
+    pad, gap, row_h = 5.0, 5.0, size * 1.55
+    cols = list(zip(*rows))
+    widths = [max(text_width(c, size) for c in col) if any(col) else 0.0 for col in cols]
+    inner = sum(widths) + gap * (len(widths) - 1)
+    cap_w = text_width(caption, size - 0.6) if caption else 0.0
+    title_w = text_width(title, size, "bold") if title else 0.0
+    inner = max(inner, cap_w, title_w)
+    height = value_table_height(len(rows), caption=caption, title=title)
+    top = -6.0  # points below the axes' top
+    if below is not None:
+        renderer = ax.figure.canvas.get_renderer()
+        bb = below.get_window_extent(renderer)
+        ax_top = ax.get_window_extent(renderer).y1
+        top = -(ax_top - bb.y0) * 72.0 / ax.figure.dpi - 2.0
+    x0 = -8.0 - inner - 2 * pad if corner == "right" else 8.0
+    ax_x = 1.0 if corner == "right" else 0.0
+    tr = _points(ax, ax_x, 1.0)
+    ax.add_patch(FancyBboxPatch((x0, top - height), inner + 2 * pad, height,
+                                boxstyle="round,pad=0,rounding_size=3", transform=tr,
+                                facecolor=COLORS["table"], edgecolor="#d3d7dc", lw=0.6,
+                                zorder=4, clip_on=False))
+    y = top - pad - size
+    if title:
+        ax.text(x0 + pad, y, title, transform=tr, fontsize=size, fontweight="bold",
+                color=COLORS["label"], va="baseline", ha="left", zorder=5)
+        y -= row_h
+    for row in rows:
+        x = x0 + pad
+        for j, (cell, w) in enumerate(zip(row, widths)):
+            right = j == 1  # the value column ends at the ± sign
+            ax.text(x + w if right else x, y, cell, transform=tr, fontsize=size,
+                    ha="right" if right else "left", va="baseline", zorder=5,
+                    color=COLORS["data"] if j else COLORS["muted"])
+            x += w + (2.5 if j == 1 else gap)
+        y -= row_h
+    for line in caption.split("\n") if caption else ():
+        ax.text(x0 + pad, y, line, transform=tr, fontsize=size - 0.6, ha="left",
+                va="baseline", color=COLORS["muted"], zorder=5)
+        y -= row_h
+
+
+# ---------------------------------------------------------------------------- blinding
+def shade_blinded(ax: Any, span: Sequence[float] | None, *, label: str | None = "blinded"
+                  ) -> None:
+    """The blinded mass range as a pale hatched band (the same on every figure; its legend
+    swatch is the same patch, hatching included)."""
+    if span is None:
+        return
+    ax.axvspan(float(span[0]), float(span[1]), facecolor=COLORS["blind"],
+               edgecolor=COLORS["blind_edge"], hatch="////", linewidth=0.0, zorder=0.5,
+               label=label)
+
+
 def use_headless_backend() -> None:
-    """Select the non-interactive Agg backend unless a backend was already chosen."""
+    """Kept for callers that still draw through pyplot: select Agg unless a backend was
+    chosen.  New code draws with :func:`new_figure` and never switches the backend."""
     import os
 
     import matplotlib

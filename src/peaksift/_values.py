@@ -1,6 +1,18 @@
 """Result objects as values: ``==`` over their compared fields, nothing changeable in place.
 
-Base layer (no peaksift imports).  A frozen dataclass that inherits :class:`FrozenValue`
+Base layer (no peaksift imports).
+
+Value and error
+---------------
+Every fitted number with an error is a :class:`Measurement`: a float (it adds, compares and
+formats as its value) that also carries ``.error`` and unpacks as ``value, error``; its
+``str`` is ``152.24 ± 0.52``.  results.json writes it as ``{"value": ..., "error": ...}``
+under the same name.  Arrays of fitted numbers come as two arrays, ``name`` and
+``name_error`` (``ScanResult.signal_yield`` / ``signal_yield_error``).
+
+Frozen results
+--------------
+A frozen dataclass that inherits :class:`FrozenValue`
 
 * compares equal when every field declared with ``compare=True`` (the dataclass default) is
   equal, arrays by content with NaN equal to NaN, mappings and sequences item by item;
@@ -18,7 +30,52 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["FrozenValue", "values_equal"]
+__all__ = ["FrozenValue", "Measurement", "values_equal"]
+
+
+class Measurement(float):
+    """A value with its error: a float that also has ``.value``, ``.error``, unpacks as
+    ``value, error`` and indexes as such (``m[1]`` is the error).
+
+    >>> m = Measurement(152.24, 0.52)
+    >>> m + 1, m.error, str(m)
+    (153.24, 0.52, '152.24 ± 0.52')
+    """
+
+    __slots__ = ("error",)
+
+    def __new__(cls, value: float, error: float = math.nan) -> Measurement:  # noqa: PYI034
+        obj = super().__new__(cls, float(value))
+        obj.error = float(error) if error is not None else math.nan
+        return obj
+
+    @property
+    def value(self) -> float:
+        return float(self)
+
+    def __iter__(self) -> Any:
+        return iter((float(self), self.error))
+
+    def __getitem__(self, i: int) -> float:
+        return (float(self), self.error)[i]
+
+    def __getnewargs__(self) -> tuple[float, float]:
+        return float(self), self.error
+
+    def __repr__(self) -> str:
+        return f"Measurement({float(self)!r}, {self.error!r})"
+
+    def __str__(self) -> str:
+        if not (math.isfinite(self.error) and self.error > 0) or not math.isfinite(self):
+            return f"{float(self):.6g}"
+        dec = max(0, 1 - math.floor(math.log10(self.error)))  # two digits of the error
+        return f"{float(self):.{dec}f} \u00b1 {self.error:.{dec}f}"
+
+    def to_dict(self) -> dict[str, float | None]:
+        """``{"value": ..., "error": ...}`` as in results.json (non-finite -> None)."""
+        def f(x: float) -> float | None:
+            return x if math.isfinite(x) else None
+        return {"value": f(float(self)), "error": f(self.error)}
 
 
 def values_equal(a: Any, b: Any) -> bool:

@@ -9,9 +9,17 @@ Sub-commands::
     peaksift fit CONFIG --mass M    one signal-plus-background fit started (--hold-mass: held)
                                     at a chosen mass; --out DIR writes fit.json and fit.png
 
+Every sub-command takes ``-q/--quiet`` (no progress bars, warnings only) and
+``-v/--verbose`` (log lines of the ``peaksift`` logger: engine, workers, chunks, stage
+timings; ``-vv`` for more).  The ones that read events take ``--engine``, ``--workers`` and
+``--address`` (a Dask scheduler; implies ``--engine dask``).
+
 A user's mistake (a :class:`~peaksift.errors.PeaksiftError`) prints one line on stderr and
 exits with status 2; no traceback.  Ctrl-C exits with 130 and SIGTERM with 143, each after
-removing the run's unfinished outputs and stopping its worker processes.
+removing the run's unfinished outputs and stopping its worker processes.  A missing optional
+package (the ``distributed`` extra for the Dask engine) is a user's mistake too: the line
+names the extra and how to install it.  Warnings print as one ``peaksift: warning:`` line
+each, never with a source line.
 """
 
 from __future__ import annotations
@@ -25,6 +33,45 @@ from typing import Any
 from .errors import PeaksiftError
 
 Handler = Callable[[argparse.Namespace], int]
+
+
+def _config(args: argparse.Namespace) -> Any:
+    """The validated config with the command line's execution overrides applied."""
+    from .config import load_config
+
+    cfg = load_config(args.config)
+    ov: dict[str, Any] = {}
+    if getattr(args, "workers", None) is not None:
+        ov["execution__workers"] = args.workers
+    if getattr(args, "address", None):
+        ov["execution__address"] = args.address
+        ov["execution__engine"] = "dask"  # a scheduler address means the Dask engine
+    return cfg.with_overrides(**ov) if ov else cfg
+
+
+def _setup_logging(args: argparse.Namespace) -> None:
+    """``-v``: INFO lines of the ``peaksift`` logger on stderr; ``-vv``: DEBUG; ``-q``:
+    warnings only."""
+    import logging
+
+    level = (logging.WARNING if getattr(args, "quiet", False) else
+             {0: logging.WARNING, 1: logging.INFO}.get(getattr(args, "verbose", 0),
+                                                       logging.DEBUG))
+    log = logging.getLogger("peaksift")
+    log.setLevel(level)
+    if not any(getattr(h, "_peaksift_cli", False) for h in log.handlers):
+        h = logging.StreamHandler(sys.stderr)
+        h.setFormatter(logging.Formatter("peaksift: %(message)s"))
+        h._peaksift_cli = True  # type: ignore[attr-defined]
+        log.addHandler(h)
+        log.propagate = False
+
+
+def _one_line_warning(message: Any, category: type, *_: Any, **__: Any) -> str:
+    """A warning as the command prints it: one line, no source line."""
+    text = " ".join(str(message).split())
+    name = "" if category.__module__.startswith("peaksift") else f" ({category.__name__})"
+    return f"peaksift: warning: {text}{name}\n"
 
 
 def _cmd_inspect(args: argparse.Namespace) -> int:
@@ -53,7 +100,21 @@ def _row(label: str, value: str) -> str:
 
 def _summary(result: object) -> str:
     """The short table printed at the end of ``peaksift search``."""
-    return _summary_text(result.to_dict())  # type: ignore[attr-defined]
+    d = result.to_dict()  # type: ignore[attr-defined]
+    if d.get("kind") == "combination":
+        from .search.combination_report import combination_summary_text
+
+        return combination_summary_text(d)
+    text = _summary_text(d)
+    sm = d.get("signal_model")
+    if sm:  # the scan's signal from simulated samples: say so, and flag a doubtful model
+        state = (f"doubtful: {len(sm['notes'])} notes in results.json signal_model.notes"
+                 if sm.get("doubtful") else
+                 f"closure max {sm.get('max_closure_deviation') or 0:.2f} errors")
+        head, _, last = text.rpartition("\n")  # before the closing caution line
+        text = (f"{head}\n  signal model               {sm['shape']} from samples "
+                f"({state})\n{last}")
+    return text
 
 
 def _summary_text(d: Mapping[str, Any]) -> str:
@@ -72,14 +133,18 @@ def _summary_text(d: Mapping[str, Any]) -> str:
              _row("events read", number(inp.get("events_read"))),
              _row("candidates in sidebands" if blinded else "candidates in window",
                   number(inp.get("candidates"))),
-             _row("best mass hypothesis", f"{fixed(best.get('mass'))} GeV"),
-             _row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
-             _row(f"fitted width ({fit.get('width_parameter') or 'width'})",
-                  format_pm(w.get("value"), w.get("error"), "GeV")),
-             _row("signal yield", format_pm(sy.get("value"), sy.get("error"))),
-             _row("local significance", significance(best, "local", sigma="sigma")),
-             _row("global significance", significance(best, "global", sigma="sigma"))]
-    if not fit.get("valid"):
+             _row("best mass hypothesis", f"{fixed(best.get('mass'))} GeV")]
+    if blinded:  # intended: no fit inside the blinded window, which is not a failure
+        lines.append(_row("signal fit", "not made: the run is blinded as configured "
+                                        "(--unblind to fit)"))
+    else:
+        lines += [_row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
+                  _row(f"fitted width ({fit.get('width_parameter') or 'width'})",
+                       format_pm(w.get("value"), w.get("error"), "GeV")),
+                  _row("signal yield", format_pm(sy.get("value"), sy.get("error")))]
+    lines += [_row("local significance", significance(best, "local", sigma="sigma")),
+              _row("global significance", significance(best, "global", sigma="sigma"))]
+    if not fit.get("valid") and not blinded:
         lines.append(_row("fit status", "INVALID: " + "; ".join(
             str(x) for x in fit.get("problems") or [])))
     _fit_lines(lines, fit)
@@ -155,13 +220,17 @@ def _cmd_search(args: argparse.Namespace) -> int:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars
         warnings.simplefilter("always")
-        res = run_search(args.config, out=args.out, unblind=args.unblind, toys=args.toys,
+        res = run_search(_config(args), out=args.out, unblind=args.unblind, toys=args.toys,
                          seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
                          share_folder=args.share_folder)
     numeric = [w for w in caught if issubclass(w.category, RuntimeWarning)]
+    seen: set[str] = set()
     for w in caught:
         if not issubclass(w.category, RuntimeWarning):
-            warnings.showwarning(w.message, w.category, w.filename, w.lineno)
+            line = _one_line_warning(w.message, w.category)
+            if line not in seen:  # the same notice from every chunk is said once
+                seen.add(line)
+                sys.stderr.write(line)
     if numeric:
         where = sorted({Path(w.filename).name for w in numeric})
         print(f"peaksift: note: {len(numeric)} floating-point warnings (overflow/invalid "
@@ -173,7 +242,7 @@ def _cmd_search(args: argparse.Namespace) -> int:
 def _cmd_spectrum(args: argparse.Namespace) -> int:
     from .search import run_spectrum
 
-    res = run_spectrum(args.config, out=args.out, engine=args.engine,
+    res = run_spectrum(_config(args), out=args.out, engine=args.engine,
                        progress=_progress_wanted(args), share_folder=args.share_folder)
     h = res.histogram
     bl = res.config.blinding
@@ -190,7 +259,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     from ._format import format_interval
     from .search import FIT_FILES, run_fit
 
-    fr = run_fit(args.config, args.mass, hold_mass=args.hold_mass, out=args.out,
+    fr = run_fit(_config(args), args.mass, hold_mass=args.hold_mass, out=args.out,
                  engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args),
                  share_folder=args.share_folder)
     print(repr(fr))
@@ -227,53 +296,85 @@ def _share_opt(q: argparse.ArgumentParser) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(
-        prog="peaksift",
-        description="Invariant-mass resonance searches from columnar (Parquet) events.",
-    )
     from . import __version__
 
+    p = argparse.ArgumentParser(
+        prog="peaksift",
+        description="Invariant-mass resonance searches from columnar (Parquet) events: "
+                    "spectrum, fits, mass scan, local and global significance, limits, "
+                    "figures and a meeting report.",
+        epilog="Run 'peaksift COMMAND --help' for a command's options; docs/config.md "
+               "documents every configuration key.",
+    )
     p.add_argument("--version", action="version", version=f"peaksift {__version__}")
+    common = argparse.ArgumentParser(add_help=False)
+    g = common.add_argument_group("output")
+    g.add_argument("-q", "--quiet", action="store_true",
+                   help="no progress bars; print only warnings, errors and the result")
+    g.add_argument("-v", "--verbose", action="count", default=0,
+                   help="log what runs where (engine, workers, chunks, stage timings); "
+                        "-vv for more")
+    engine = argparse.ArgumentParser(add_help=False)
+    e = engine.add_argument_group("execution")
+    e.add_argument("--engine", choices=("serial", "processes", "dask"), default=None,
+                   help="where the per-chunk work runs (overrides execution.engine)")
+    e.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="worker processes or local Dask workers (overrides execution.workers)")
+    e.add_argument("--address", default=None, metavar="URL",
+                   help="Dask scheduler to use, e.g. tcp://host:8786 (implies --engine dask; "
+                        "overrides execution.address)")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
-    q = sub.add_parser("inspect", help="describe Parquet event files (collections, fields, counts)")
-    q.add_argument("paths", nargs="+", help="files, directories or globs")
+    def cmd(name: str, summary: str, description: str, parents: list) -> argparse.ArgumentParser:
+        return sub.add_parser(name, help=summary, description=description, parents=parents)
+
+    q = cmd("inspect", "describe Parquet event files (collections, fields, counts)",
+            "Describe Parquet event files: collections and their layouts, fields and dtypes, "
+            "events per file and object multiplicities.", [common])
+    q.add_argument("paths", nargs="+", metavar="PATH",
+                   help="event files, directories or glob patterns (quote globs)")
     q.set_defaults(handler=_cmd_inspect)
 
-    d = sub.add_parser("demo", help="write the demo scenario's events, truth file and config")
-    d.add_argument("outdir")
+    d = cmd("demo", "write the demo scenario's events, truth file and config",
+            "Write the demo scenario: an invented collider run with a Z calibration peak and "
+            "one invented resonance, as Parquet files, truth.json and a ready search.toml.",
+            [common])
+    d.add_argument("outdir", metavar="OUTDIR",
+                   help="directory to write into (created; files there are not overwritten)")
     d.add_argument("--events", type=int, default=None, help="number of events (default: demo size)")
     d.add_argument("--seed", type=int, default=None, help="random seed (default: the demo's own)")
     d.add_argument("--weighted", action="store_true", help="simulated-sample variant with weights")
     _share_opt(d)
     d.set_defaults(handler=_cmd_demo)
 
-    def engine_opt(q: argparse.ArgumentParser) -> None:
-        q.add_argument("--engine", choices=("serial", "processes", "dask"), default=None,
-                       help="where the per-chunk work runs (overrides execution.engine)")
-        q.add_argument("--quiet", action="store_true", help="no progress bars")
-
-    s = sub.add_parser("search", help="the whole search: spectrum, fits, scan, significance, "
-                       "limits, figures, results.json and the report")
-    s.add_argument("config", help="the search's TOML configuration (see docs/config.md)")
+    config_help = "the search's TOML configuration (every key: docs/config.md)"
+    s = cmd("search", "the whole search: spectrum, fits, scan, significance, limits, report",
+            "Run the whole search of a configuration: the selected spectrum, the "
+            "signal-plus-background and background-only fits, the mass scan, local and global "
+            "significance, upper limits, the calibration check, figures, results.json and "
+            "the report (Markdown and HTML).", [common, engine])
+    s.add_argument("config", metavar="CONFIG", help=config_help)
     s.add_argument("--out", default=None, help="output directory (default: output.dir)")
     s.add_argument("--unblind", action="store_true", help="lift the configured blinding")
     s.add_argument("--toys", type=int, default=None, help="override significance.toys")
     s.add_argument("--seed", type=int, default=None, help="override significance.seed")
-    engine_opt(s)
     _share_opt(s)
     s.set_defaults(handler=_cmd_search)
 
-    sp = sub.add_parser("spectrum", help="only the selected spectrum: histogram file and figure")
-    sp.add_argument("config")
+    sp = cmd("spectrum", "only the selected spectrum: histogram file and figure",
+             "Select, pair and histogram the events of a configuration: spectrum.json and its "
+             "figure (and the candidates' pT/rapidity figure), no fit.", [common, engine])
+    sp.add_argument("config", metavar="CONFIG", help=config_help)
     sp.add_argument("--out", default=None, help="output directory (default: output.dir)")
-    engine_opt(sp)
     _share_opt(sp)
     sp.set_defaults(handler=_cmd_spectrum)
 
-    f = sub.add_parser("fit", help="one signal-plus-background fit at a chosen mass")
-    f.add_argument("config")
+    f = cmd("fit", "one signal-plus-background fit at a chosen mass",
+            "One signal-plus-background fit of the configured spectrum, started (or held, "
+            "--hold-mass) at a chosen mass, with profile-likelihood intervals.",
+            [common, engine])
+    f.add_argument("config", metavar="CONFIG", help=config_help)
     f.add_argument("--mass", type=float, required=True,
                    help="peak mass in GeV where the fit starts (the mass then floats)")
     f.add_argument("--hold-mass", action="store_true",
@@ -282,17 +383,20 @@ def build_parser() -> argparse.ArgumentParser:
                    help="directory for the fit's JSON and figure (new, empty, or a previous "
                         "`peaksift fit` output)")
     f.add_argument("--unblind", action="store_true", help="fit even if the config is blinded")
-    engine_opt(f)
     _share_opt(f)
     f.set_defaults(handler=_cmd_fit)
     return p
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    import warnings
+
     from ._processes import Terminated, sigterm_as_interrupt
 
     parser = build_parser()
     args = parser.parse_args(argv)
+    _setup_logging(args)
+    warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
     try:
         with sigterm_as_interrupt():
             rc = int(args.handler(args) or 0)

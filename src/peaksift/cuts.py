@@ -13,6 +13,9 @@ Which piece to use
   scalars such as ``weight``, object counts ``n_<collection>``, and ``<record>_<field>`` for
   a per-event record such as ``met_pt``).
 * :meth:`Cut.evaluate` -- the same on a plain mapping of names to flat numpy arrays.
+* :func:`clauses` -- the requirements of a text cut joined by a top-level ``and``, each as
+  its own :class:`Cut`; :func:`requirement_counts` counts the objects (or events) passing
+  them one after the other, for a per-requirement cut flow.
 
 Anything a user may pass as a cut -- text, a :class:`Cut`, a callable returning a mask, or
 a boolean (awkward or numpy) mask -- is accepted by :func:`object_mask` and
@@ -62,11 +65,13 @@ __all__ = [
     "IDENTIFY_FUNCTION",
     "Cut",
     "CutLike",
+    "clauses",
     "compile_cut",
     "event_mask",
     "event_names",
     "flat_object_mask",
     "object_mask",
+    "requirement_counts",
 ]
 
 #: Whitelisted functions: name -> (numpy implementation, minimum and maximum argument count).
@@ -821,3 +826,76 @@ def event_mask(events: Any, cut: CutLike) -> np.ndarray:
     if arr.dtype != np.bool_:
         raise CutError(f"{label}: holds {arr.dtype} values, not true/false")
     return arr
+
+
+# ------------------------------------------------------------------ per-requirement flow
+def clauses(cut: CutLike) -> tuple[Cut, ...]:
+    """The requirements of a text cut that a top-level ``and`` joins, in order, each a
+    :class:`Cut` (``"pt > 20 and abs(eta) < 2.4"`` -> ``pt > 20``, ``abs(eta) < 2.4``).
+
+    A cut without a top-level ``and`` is its own single clause; ``or``/``not`` groups and
+    chained comparisons stay whole.  Callables and masks have no clauses: ``()``.
+    """
+    if not _is_text(cut) or cut == "":
+        return ()
+    c = compile_cut(cut)
+    text = " ".join(c.expression.split())
+    try:
+        tree = ast.parse(text, mode="eval").body
+    except SyntaxError:  # compile_cut accepted it, so this does not happen
+        return (c,)
+    if not (isinstance(tree, ast.BoolOp) and isinstance(tree.op, ast.And)):
+        return (c,)
+    out = []
+    for value in tree.values:
+        seg = ast.get_source_segment(text, value)
+        if seg is None:
+            return (c,)
+        if isinstance(value, ast.BoolOp) and isinstance(value.op, ast.Or):
+            seg = f"({seg})"
+        out.append(compile_cut(seg))
+    return tuple(out)
+
+
+def requirement_counts(collection: Any, cut: CutLike, *, name: str,
+                       keep_events: np.ndarray | None = None
+                       ) -> tuple[list[tuple[str, int]], np.ndarray]:
+    """Objects of ``collection`` passing each clause of ``cut`` in turn, in one pass.
+
+    Parameters
+    ----------
+    collection : awkward.Array
+        A jagged collection of records (one list of objects per event).
+    cut : str, Cut, callable or mask
+        The object cut; a text cut is split by :func:`clauses`, anything else counts as one
+        step named ``"cut"``.
+    name : str
+        The collection's name (step labels and messages).
+    keep_events : ndarray of bool, optional
+        Count only the objects of these events (those passing the event cut).
+
+    Returns
+    -------
+    steps : list of (label, count)
+        ``(f"{name} objects", all)``, then one ``(clause text, objects passing it and every
+        clause before it)`` per clause.
+    per_event : ndarray of int
+        Objects per event passing the whole cut (0 for events not kept).
+    """
+    counts, get, fields = _collection_counts_and_getter(collection, name)
+    n_obj = int(counts.sum())
+    keep = np.ones(n_obj, dtype=bool)
+    if keep_events is not None:
+        keep = np.repeat(np.asarray(keep_events, dtype=bool), counts)
+    steps = [(f"{name} objects", int(keep.sum()))]
+    parts: tuple[Any, ...] = clauses(cut) if _is_text(cut) else ((cut,) if cut is not None
+                                                                  else ())
+    for part in parts:
+        if part is None or (isinstance(part, str) and not part):
+            continue
+        keep &= flat_object_mask(part, collection, counts, get, fields, name)
+        label = part.expression if isinstance(part, Cut) else "cut"
+        steps.append((label, int(keep.sum())))
+    owner = np.repeat(np.arange(counts.size), counts)
+    per_event = np.bincount(owner[keep], minlength=counts.size).astype(np.int64)
+    return steps, per_event

@@ -456,7 +456,8 @@ def _deviation_kernel(pt, eta, meas, samples, with_n, mass, g0, inv_dg, table, r
         e = table[i] + (u - i) * (table[i + 1] - table[i])
         rel = rel0
         if with_n:
-            rel = rel0 * (nref / max(np.float64(samples[k]), 1.0)) ** expo
+            r = nref / max(np.float64(samples[k]), 1.0)
+            rel = rel0 * (np.sqrt(r) if expo == 0.5 else r**expo)  # sqrt: the usual case
         out[k] = (np.float64(meas[k]) - e) / (rel * e)
 
 

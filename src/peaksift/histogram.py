@@ -578,18 +578,17 @@ class MassHistogram:
 
     # -------------------------------------------------------------------- plot
     def plot(self, ax: Any = None, *, density: bool = False, **kwargs: Any) -> Any:
-        """Draw the spectrum as points with ``sqrt(weight_sq_sum)`` error bars; returns the Axes.
+        """Draw the spectrum as points with ``sqrt(weight_sq_sum)`` error bars; returns the
+        Figure (``ax.figure`` when an Axes is given, else a new Figure made without pyplot,
+        so the matplotlib backend is left alone).
 
         With ``density=True`` (and always for variable bins) the contents are divided by
         the bin width (candidates per GeV).  Drawn in the peaksift figure style.
         """
-        import matplotlib.pyplot as plt
-
-        from ._style import COLORS, figure_style
+        from ._style import COLORS, figure_style, new_figure
 
         if ax is None:
-            with figure_style():
-                _, ax = plt.subplots(figsize=(7, 4.5))
+            _, ax = new_figure((7, 4.5))
         scale = 1.0 / self.widths if (density or not self._regular) else 1.0
         y = self.weight_sum * scale
         yerr = self.errors * scale
@@ -598,8 +597,9 @@ class MassHistogram:
         kwargs.setdefault("color", COLORS["data"])
         kwargs.setdefault("elinewidth", 0.9)
         kwargs.setdefault("label", "data")
-        ax.errorbar(self.centers, y, yerr=yerr, xerr=0.5 * self.widths if self.nbins < 80 else None,
-                    **kwargs)
+        with figure_style():
+            ax.errorbar(self.centers, y, yerr=yerr,
+                        xerr=0.5 * self.widths if self.nbins < 80 else None, **kwargs)
         ax.set_xlabel(f"${self.label}$ [{self.unit}]" if self.label.isalpha() else
                       f"{self.label} [{self.unit}]")
         if density or not self._regular:
@@ -607,7 +607,7 @@ class MassHistogram:
         else:
             ax.set_ylabel(f"candidates / {self.widths[0]:.3g} {self.unit}")
         ax.set_xlim(self.lo, self.hi)
-        return ax
+        return ax.figure
 
     # ------------------------------------------------------------------- repr
     def __repr__(self) -> str:
@@ -617,3 +617,15 @@ class MassHistogram:
             f"sum of weights {self.total():.6g}, underflow {self.underflow:.6g}, "
             f"overflow {self.overflow:.6g})"
         )
+
+    def _repr_html_(self) -> str:
+        import html
+
+        kind = "regular" if self._regular else "variable"
+        rows = (("bins", f"{self.nbins} {kind} on [{self.lo:g}, {self.hi:g}] {self.unit}"),
+                ("sum of weights", f"{self.total():.6g}"),
+                ("weighted", "yes" if self.is_weighted else "no"),
+                ("underflow / overflow", f"{self.underflow:.6g} / {self.overflow:.6g}"))
+        cells = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
+                        for k, v in rows)
+        return f"<div><b>MassHistogram</b><table>{cells}</table></div>"

@@ -153,6 +153,30 @@ class Candidates:
     def __len__(self) -> int:
         return int(self.mass.size)
 
+    def __getitem__(self, index: Any) -> Candidates | dict[str, Any]:
+        """``c[10:20]``, ``c[c.mass > 120]`` or ``c[[3, 5]]``: the selected candidates as a new
+        :class:`Candidates` (every column, the multiplicity too; ``cutflow`` still describes
+        the selection that made the whole set).  ``c[i]`` with one integer: that candidate's
+        columns as a dict of numbers."""
+        if isinstance(index, (int, np.integer)):
+            n = len(self)
+            if not -n <= int(index) < n:
+                raise InputError(f"candidate {int(index)} does not exist: there are {n}")
+            out = {k: getattr(self, k)[index].item() for k in self._COLUMNS}
+            if self.multiplicity is not None:
+                out["multiplicity"] = int(self.multiplicity[index])
+            return out
+        try:
+            cols = {k: getattr(self, k)[index] for k in self._COLUMNS}
+        except (IndexError, TypeError, ValueError) as exc:
+            raise InputError(f"cannot select candidates with {type(index).__name__} "
+                             f"({exc}); use a slice, a boolean mask of length {len(self)} "
+                             "or an array of integer positions") from None
+        if cols["mass"].ndim != 1:
+            raise InputError("selecting candidates needs a one-dimensional index")
+        mult = None if self.multiplicity is None else self.multiplicity[index]
+        return dataclasses.replace(self, **cols, cutflow=dict(self.cutflow), multiplicity=mult)
+
     def __repr__(self) -> str:
         flow = ", ".join(f"{k}={v}" for k, v in self.cutflow.items())
         return f"Candidates({len(self)} candidates, choose={self.choose!r}, {flow})"

@@ -3,84 +3,115 @@
 Which function
 --------------
 * :func:`search_figures` -- every figure of a :class:`~peaksift.search.SearchResult` into a
-  directory: ``spectrum`` (fit, signal component, pulls; optionally also ``spectrum_log``),
-  ``pvalue_scan``, ``limits``, ``candidates`` (not while blinded: its histograms include the
-  blinded window), ``calibration``.  Returns name -> PNG path.
+  directory: ``spectrum`` (fit, signal component, pulls, fitted numbers; optionally also
+  ``spectrum_log``), ``pvalue_scan``, ``limits``, ``candidates`` (not while blinded: its
+  histograms include the blinded window), ``calibration``.  Returns name -> PNG path.
 * :func:`spectrum_only` -- the selected spectrum without a fit (``peaksift spectrum``).
-* :func:`candidates` -- the candidates' pT and rapidity.
+* :func:`candidates` -- the candidates' pT (log scale) and rapidity in the search window.
 * :func:`scan_figure` -- the p-value scan with the global significance noted; an excess
   beyond the axis floor is clipped there and its p stated (as a power of ten if need be).
+* :func:`figure_labels` -- the run label and the pair's mass symbol from a configuration.
+* :func:`draw_in_background` -- :func:`search_figures` without the limits, in a forked
+  process while the caller computes the limits; :func:`limits_figure` then adds them.
 * :func:`save` -- write one figure in several formats.
+
+Every figure carries the run label (name, sqrt(s), luminosity, channel) above its axes and
+names its mass axis with the pair's symbol (``m_{\\mu\\mu}``); masses are written with two
+decimals, significances with two, fitted values rounded to two digits of their error.  No
+function here touches pyplot or the matplotlib backend.
 
 The drawing of a fit, a scan and a limit curve belongs to their result objects
 (``FitResult.plot``, ``ScanResult.plot``, ``LimitResult.plot``); this module lays them out,
-adds what only the search knows (the global significance, the blinded window, the fitted peak
-in numbers) and writes the files.
+adds what only the search knows (the global significance, the blinded window, the run) and
+writes the files.
 """
 
 from __future__ import annotations
 
 import os
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from ._format import fixed, number, p_value
-from ._style import COLORS, figure_style, use_headless_backend
+from ._format import fixed, format_pm, number, p_value
+from ._style import (
+    COLORS,
+    RunLabel,
+    channel_tex,
+    draw_header,
+    figure_style,
+    margins,
+    mass_symbol,
+    new_figure,
+    particle_tex,
+    shade_blinded,
+)
 
-__all__ = ["candidates", "dedx_figure", "save", "scan_figure", "search_figures", "spectrum_only"]
+__all__ = ["FigureLabels", "candidates", "dedx_figure", "draw_in_background", "figure_labels",
+           "limits_figure", "save", "scan_figure", "search_figures", "spectrum_only"]
 
 
-def _plt() -> Any:
-    use_headless_backend()
-    import matplotlib.pyplot as plt
+@dataclass(frozen=True)
+class FigureLabels:
+    """What every figure of one run says about it: the run label and the mass symbol."""
 
-    return plt
+    run: RunLabel | None = None
+    symbol: str = "m"
+
+    def mass_axis(self, unit: str = "GeV") -> str:
+        return f"${self.symbol}$ [{unit}]"
+
+
+def figure_labels(cfg: Any) -> FigureLabels:
+    """:class:`FigureLabels` from a validated configuration: the ``[run]`` keys (name,
+    sqrt_s, channel; the luminosity is ``limits.luminosity``), the collections and the
+    pairing's charge (the channel when ``run.channel`` is not set)."""
+    if cfg is None:
+        return FigureLabels()
+    ob, pr = getattr(cfg, "objects", None), getattr(cfg, "pairing", None)
+    first = getattr(ob, "collection", None)
+    second = getattr(ob, "second_collection", None)
+    charge = getattr(pr, "charge", None)
+    run_cfg = getattr(cfg, "run", None)
+    lim = getattr(cfg, "limits", None)
+    channel = getattr(run_cfg, "channel", "") or channel_tex(first, second, charge)
+    run = RunLabel(name=getattr(run_cfg, "name", "") or "",
+                   sqrt_s=getattr(run_cfg, "sqrt_s", None),
+                   luminosity=getattr(lim, "luminosity", None),
+                   channel=channel)
+    return FigureLabels(run=run, symbol=mass_symbol(first, second))
 
 
 def save(fig: Any, outdir: str | os.PathLike[str], name: str,
          formats: Sequence[str] = ("png", "pdf")) -> Path:
-    """Save ``fig`` as ``outdir/name.<fmt>`` for each format, close it, return the PNG path.
+    """Save ``fig`` as ``outdir/name.<fmt>`` for each format; return the PNG path.
 
     PNG is always written (the reports embed it) even when not listed in ``formats``.
     """
-    plt = _plt()
     outdir = Path(outdir)
     outdir.mkdir(parents=True, exist_ok=True)
     fmts = list(dict.fromkeys(["png", *formats]))
-    for fmt in fmts:
-        fig.savefig(outdir / f"{name}.{fmt}", format=fmt)
-    plt.close(fig)
+    with figure_style():
+        for fmt in fmts:
+            fig.savefig(outdir / f"{name}.{fmt}", format=fmt)
     return outdir / f"{name}.png"
-
-
-def _shade_blind(ax: Any, blind: Sequence[float] | None) -> None:
-    if blind is None:
-        return
-    ax.axvspan(blind[0], blind[1], facecolor=COLORS["blind"], edgecolor="#9a9aa6",
-               hatch="///", linewidth=0.0, zorder=0.5, label="blinded")
-
-
-def _text(ax: Any, lines: Sequence[str], *, loc: str = "upper right") -> None:
-    x, ha = (0.97, "right") if "right" in loc else (0.03, "left")
-    y, va = (0.95, "top") if "upper" in loc else (0.05, "bottom")
-    ax.text(x, y, "\n".join(lines), transform=ax.transAxes, ha=ha, va=va, fontsize=9,
-            linespacing=1.4)
 
 
 # ---------------------------------------------------------------------- spectrum only
 def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                   formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
-                  blind: Sequence[float] | None = None, title: str = "") -> dict[str, Path]:
+                  blind: Sequence[float] | None = None, title: str = "",
+                  labels: FigureLabels | None = None) -> dict[str, Path]:
     """The selected spectrum as points with Poisson-like error bars (``sqrt(weight_sq_sum)``).
 
     With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
     statistics layer leaves out (:func:`peaksift.blinding.blinded_bins`) -- the hidden bins'
-    mass range is hatched, and the count in the corner is that of the sidebands only.
+    mass range is hatched, and the count stated is that of the sidebands only.
     """
-    plt = _plt()
+    labels = labels or FigureLabels()
     out: dict[str, Path] = {}
     h = hist
     span = None
@@ -95,91 +126,92 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     shown = h.weight_sum[np.isfinite(h.weight_sum)]
     total = float(shown.sum())
     where = " outside the blinded window" if span is not None else ""
-    count = (f"sum of weights {total:,.1f}{where}" if hist.is_weighted
-             else f"{total:,.0f} candidates{where}")
+    count = (f"sum of weights {number(total)}{where}" if hist.is_weighted
+             else f"{number(round(total))} candidates{where}")
     for log in ([False, True] if log_scale else [False]):
+        fig, ax = new_figure((7.0, 4.6))
         with figure_style():
-            fig, ax = plt.subplots(figsize=(7.0, 4.6))
             h.plot(ax=ax, color=COLORS["data"])
-            _shade_blind(ax, span)
+            shade_blinded(ax, span)
             if log:
                 ax.set_yscale("log")
                 pos = shown[shown > 0]  # the axis range must not reveal the hidden bins
                 if pos.size:
                     ax.set_ylim(0.5 * pos.min(), 3.0 * pos.max())
-            else:
-                ax.set_ylim(0, None)
-            _text(ax, [title, count] if title else [count])
-            ax.legend(loc="upper left")
-            out["spectrum_log" if log else "spectrum"] = save(
-                fig, outdir, "spectrum_log" if log else "spectrum", formats)
+            elif shown.size:
+                ax.set_ylim(0, 1.3 * float(np.max(shown + np.sqrt(np.abs(shown)))))
+            ax.set_xlabel(labels.mass_axis(hist.unit))
+            ax.legend(loc="upper right")
+            note = "\n".join(p for p in (title, count) if p)
+            if "\n" in note:  # a second statement line above the axes
+                margins(fig, top=0.78)
+            draw_header(ax, labels.run, note)
+        name = "spectrum_log" if log else "spectrum"
+        out[name] = save(fig, outdir, name, formats)
     return out
 
 
 # ------------------------------------------------------------------------- candidates
 def candidates(collected: Any, outdir: str | os.PathLike[str], *,
-               formats: Sequence[str] = ("png", "pdf")) -> dict[str, Path]:
-    """Candidates' transverse momentum and rapidity, side by side.
-
-    The histograms hold the candidates whose mass lies in the range the data were collected
-    on (the search window, joined with the calibration window when there is one); the
-    figure says which.
-    """
-    plt = _plt()
-    e_m = np.asarray(collected.histogram.edges)
+               formats: Sequence[str] = ("png", "pdf"),
+               labels: FigureLabels | None = None) -> dict[str, Path]:
+    """Candidates' transverse momentum (log scale, so the tail shows) and rapidity, side
+    by side, for the candidates in the search window (stated on the figure)."""
+    labels = labels or FigureLabels()
+    lo, hi = (float(v) for v in (getattr(collected, "summary_window", None)
+                                 or collected.window))
+    fig, (a1, a2) = new_figure((9.0, 3.9), 1, 2)
     with figure_style():
-        fig, (a1, a2) = plt.subplots(1, 2, figsize=(9.0, 3.9))
-        fig.suptitle(f"candidates with {e_m[0]:g} < $m$ < {e_m[-1]:g} GeV "
-                     f"({collected.histogram.total():,.0f})", fontsize=10.5)
-        for ax, h, label, unit in ((a1, collected.pt_histogram, r"$p_\mathrm{T}$ of the pair",
-                                    "GeV"),
+        n = collected.pt_histogram.total()
+        for ax, h, label, unit in ((a1, collected.pt_histogram, r"$p_{T}$ of the pair", "GeV"),
                                    (a2, collected.rapidity_histogram, "rapidity $y$ of the pair",
                                     "")):
             e = np.asarray(h.edges)
             ax.stairs(h.weight_sum, e, color=COLORS["total"], linewidth=1.4, fill=False)
             ax.stairs(h.weight_sum, e, color=COLORS["total"], alpha=0.15, fill=True)
             ax.set_xlabel(f"{label} [{unit}]" if unit else label)
-            w = float(np.diff(e)[0])
-            ax.set_ylabel(f"candidates / {w:.3g} {unit}".rstrip())
-            ax.set_ylim(0, None)
+            ax.set_ylabel(f"candidates / {number(float(np.diff(e)[0]), 3)} {unit}".rstrip())
             nz = np.flatnonzero(h.weight_sum > 0)
-            if nz.size and unit:  # trim an empty high-pT tail so the shape is visible
-                ax.set_xlim(e[0], e[min(nz[-1] + 2, e.size - 1)])
+            if unit:  # pT: log scale shows the tail; trim the empty end of the axis
+                if nz.size:
+                    ax.set_yscale("log")
+                    ax.set_ylim(0.5 * float(h.weight_sum[nz].min()),
+                                3.0 * float(h.weight_sum.max()))
+                    ax.set_xlim(e[0], e[min(nz[-1] + 2, e.size - 1)])
             else:
+                ax.set_ylim(0, 1.2 * float(max(h.weight_sum.max(), 1.0)))
                 ax.set_xlim(e[0], e[-1])
-        fig.tight_layout()
-        return {"candidates": save(fig, outdir, "candidates", formats)}
+        draw_header(a1, labels.run, f"{number(round(n))} candidates with "
+                    f"{fixed(lo, 1)} < ${labels.symbol}$ < {fixed(hi, 1)} GeV (search window)")
+        fig.subplots_adjust(wspace=0.3)
+    return {"candidates": save(fig, outdir, "candidates", formats)}
 
 
 # --------------------------------------------------------------------------- search
 def search_figures(result: Any, outdir: str | os.PathLike[str], *,
                    formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
-                   calibration: tuple[Any, Any] | None = None) -> dict[str, Path]:
+                   calibration: tuple[Any, Any] | None = None,
+                   labels: FigureLabels | None = None) -> dict[str, Path]:
     """Every figure of a search result; returns figure name -> PNG path."""
+    labels = labels or figure_labels(getattr(result, "config", None))
     out: dict[str, Path] = {}
     blind = result.blinding.get("window") if result.blinding.get("active") else None
     if result.fit is None:  # blinded: the spectrum with the blinded bins hidden, no fit
         out.update(spectrum_only(result.histogram, outdir, formats=formats, log_scale=log_scale,
-                                 blind=blind, title=_fit_title(result)))
+                                 blind=blind, title=_fit_title(result), labels=labels))
     else:
         for log in ([False, True] if log_scale else [False]):
             name = "spectrum_log" if log else "spectrum"
             out[name] = _fit_figure(result.fit, outdir, name, formats, log=log, blind=blind,
-                                    title=_fit_title(result))
-    out["pvalue_scan"] = _scan_figure(result, outdir, formats)
+                                    title=_fit_title(result), labels=labels)
+    out["pvalue_scan"] = _scan_figure(result, outdir, formats, labels)
     if result.limits is not None:
-        out["limits"] = _limits_figure(result, outdir, formats, blind)
+        out["limits"] = _limits_figure(result, outdir, formats, labels)
     if blind is None:  # the pT/rapidity histograms include the blinded window: withheld
-        out.update(candidates(result.collected, outdir, formats=formats))
+        out.update(candidates(result.collected, outdir, formats=formats, labels=labels))
     if calibration is not None and calibration[1] is not None and result.calibration:
-        c = result.calibration
-        title = (f"calibration: {c.get('particle')}, particle-data tables "
-                 f"{fixed(c.get('table_mass'), 4)} GeV")
-        ref = c.get("table_mass")
-        out["calibration"] = _fit_figure(calibration[1], outdir, "calibration", formats,
-                                         log=False, blind=None, title=title,
-                                         reference=(ref, "mass in the tables")
-                                         if fixed(ref) != "n/a" else None)
+        out["calibration"] = calibration_figure(result.calibration, calibration[1], outdir,
+                                                formats, labels)
     return out
 
 
@@ -188,75 +220,93 @@ def _fit_title(result: Any) -> str:
     zl, zg = fixed(best.get("z_local")), fixed(best.get("z_global"))
     parts = [f"best hypothesis {fixed(best.get('mass'))} GeV"]
     if zl != "n/a":
-        parts.append(f"$Z_\\mathrm{{local}}$ = {zl}$\\sigma$")
+        parts.append(f"$Z_{{local}}$ = {zl}")
     if zg != "n/a":
         gt = "> " if best.get("z_global_is_lower_bound") else ""
-        parts.append(f"$Z_\\mathrm{{global}}$ = {gt}{zg}$\\sigma$")
-    return ", ".join(parts)
-
-
-def _call_plot(obj: Any, **kw: Any) -> Any:
-    """Call ``obj.plot`` with the keyword arguments its signature accepts."""
-    import inspect
-
-    sig = inspect.signature(obj.plot)
-    takes_any = any(p.kind is p.VAR_KEYWORD for p in sig.parameters.values())
-    use = {k: v for k, v in kw.items() if takes_any or k in sig.parameters}
-    return obj.plot(**use)
+        parts.append(f"$Z_{{global}}$ = {gt}{zg}")
+    return ",  ".join(parts)
 
 
 def _fit_figure(fr: Any, outdir: str | os.PathLike[str], name: str, formats: Sequence[str], *,
                 log: bool, blind: Sequence[float] | None, title: str,
-                reference: tuple[float, str] | None = None) -> Path:
-    """``FitResult.plot`` (data, model, signal, background, pulls) plus blinding and log;
-    ``reference`` = (mass, label) draws a vertical line (e.g. the tabulated mass)."""
+                labels: FigureLabels) -> Path:
+    """``FitResult.plot`` (data, model, signal, background, pulls, numbers) plus blinding
+    and log scale."""
+    fig = fr.plot(run=labels.run, symbol=labels.symbol, note=title)
+    ax, axp = fig.axes[0], fig.axes[1]
     with figure_style():
-        fig = fr.plot(title=title)
-        ax, axp = fig.axes[0], fig.axes[1]
-        if reference is not None:
-            for a in (ax, axp):
-                a.axvline(reference[0], color=COLORS["accent"], lw=1.0, ls="-.",
-                          label=reference[1] if a is ax else None, zorder=1)
-            ax.legend(loc="upper right")
-        _shade_blind(ax, blind)
-        _shade_blind(axp, blind)
+        shade_blinded(ax, blind)
+        shade_blinded(axp, blind, label=None)
         n = np.asarray(fr.observed, dtype=float)
         if log:
             pos = n[n > 0]
             ax.set_yscale("log")
             if pos.size:
-                ax.set_ylim(0.3 * pos.min(), 6.0 * pos.max())
-        else:  # headroom so the fit's numbers and the legend sit above the data
-            ax.set_ylim(0.0, 1.45 * ax.get_ylim()[1])
-        return save(fig, outdir, name, formats)
+                ax.set_ylim(0.3 * pos.min(), 30.0 * pos.max())
+    return save(fig, outdir, name, formats)
 
 
-def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str]) -> Path:
-    """``ScanResult.plot`` with the global significance noted."""
-    with figure_style():
-        return save(scan_figure(result.scan, result.best), outdir, "pvalue_scan", formats)
+def calibration_figure(cal: Any, fr: Any, outdir: str | os.PathLike[str],
+                       formats: Sequence[str], labels: FigureLabels) -> Path:
+    """The calibration peak's fit with the fitted mass (solid) and the tables' mass
+    (dash-dotted) drawn, and the shift between them stated above the axes."""
+    name = particle_tex(cal.get("particle"))
+    fm, fe = cal.get("fitted_mass") or {}, None
+    if isinstance(fm, dict):
+        fm, fe = fm.get("value"), fm.get("error")
+    ref = cal.get("table_mass")
+    note = (f"calibration: {name},  fitted {format_pm(fm, fe, 'GeV')},  tables "
+            f"{fixed(ref, 4)} GeV,  shift {fixed(cal.get('shift'), 3, signed=True)} GeV "
+            f"({fixed(cal.get('shift_relative_permille'), 2, signed=True)}\u2030)")
+    from .fitting.figure import fit_figure
+
+    marks = []
+    if fixed(fm) != "n/a":
+        marks.append((float(fm), "fitted mass", COLORS["mark"], "-"))
+    if fixed(ref) != "n/a":
+        marks.append((float(ref), "mass in the tables", COLORS["accent"], "-."))
+    fig = fit_figure(fr, run=labels.run, symbol=labels.symbol, note=note, marks=marks)
+    return save(fig, outdir, "calibration", formats)
 
 
-def scan_figure(sres: Any, best: Any = None) -> Any:
+def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
+                 labels: FigureLabels) -> Path:
+    """``ScanResult.plot`` with the global significance noted and, when the search has a
+    fit, the expected p-value of a signal of the fitted size."""
+    expected = None
+    fit = getattr(result, "fit", None)
+    scan = result.scan
+    if fit is not None and getattr(scan, "model", None) is not None:
+        s = float(fit.signal_yield[0])
+        if np.isfinite(s) and s > 0:
+            expected = (scan.expected_z(s),
+                        f"expected for a signal of {number(s, 3)} events (the fitted size)")
+    fig = scan_figure(scan, result.best, labels=labels, expected=expected)
+    return save(fig, outdir, "pvalue_scan", formats)
+
+
+def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = None,
+                expected: Any = None) -> Any:
     """The p-value scan figure: ``ScanResult.plot``, the global significance of ``best``
     (the search's ``best`` entry) above the axes, and a note when the curve leaves the axis.
 
-    The log axis stops at a floor (the scan's own choice, about 8 sigma); a larger excess
-    (p_local down to 1e-2000 and beyond, 0 as a float) is drawn clipped there, marked with
-    a triangle at the best mass and stated in numbers (p as a power of ten).
+    The log axis stops at a floor (the scan's own choice, at most about 8 sigma); a larger
+    excess (p_local down to 1e-2000 and beyond, 0 as a float) is drawn clipped there, marked
+    with a triangle at the best mass and stated in numbers (p as a power of ten).
     """
     from .stats.significance import log10_p, log_p_from_q0
 
-    fig = sres.plot()
-    ax = fig.axes[0]
+    labels = labels or FigureLabels()
     b = best if isinstance(best, dict) else dict(best or {})
+    note = ""
     if b:
         unit = getattr(sres, "unit", "GeV")
         gt = "> " if b.get("z_global_is_lower_bound") else ""
-        ax.text(0.0, 1.015, f"best {number(b.get('mass'))} {unit}: "
-                f"$Z_{{local}}$ = {fixed(b.get('z_local'))}, $Z_{{global}}$ = "
-                f"{gt}{fixed(b.get('z_global'))} ({b.get('global_method') or 'n/a'})",
-                transform=ax.transAxes, fontsize=9, va="bottom")
+        note = (f"best {fixed(b.get('mass'))} {unit}:  $Z_{{local}}$ = "
+                f"{fixed(b.get('z_local'))},  $Z_{{global}}$ = {gt}{fixed(b.get('z_global'))} "
+                f"({b.get('global_method') or 'n/a'})")
+    fig = sres.plot(run=labels.run, symbol=labels.symbol, expected=expected, title=note)
+    ax = fig.axes[0]
     q = np.where(np.asarray(sres.blinded, bool), np.nan, np.asarray(sres.q0, dtype=float))
     if np.any(np.isfinite(q)):
         i = int(np.nanargmax(q))
@@ -264,24 +314,96 @@ def scan_figure(sres: Any, best: Any = None) -> Any:
         floor = float(ax.get_ylim()[0])
         if floor > 0 and lg < np.log10(floor):
             m = float(np.asarray(sres.masses, dtype=float)[i])
-            ax.plot([m], [floor], marker="v", ms=8, color=COLORS["signal"], clip_on=False,
-                    zorder=5, ls="none")
-            ax.text(0.97, 0.05, f"curve clipped at the axis floor p = {p_value(floor)};\n"
-                    f"lowest local p = {p_value(10.0 ** lg, lg)} at {number(m)} "
-                    f"{getattr(sres, 'unit', 'GeV')} (\u25bc)",
-                    transform=ax.transAxes, ha="right", va="bottom", fontsize=8.5,
-                    color=COLORS["signal"])
+            with figure_style():
+                ax.plot([m], [floor], marker="v", ms=8, color=COLORS["signal"],
+                        clip_on=False, zorder=5, ls="none")
+                ax.text(0.97, 0.05, f"curve clipped at the axis floor p = {p_value(floor)};\n"
+                        f"lowest local p = {p_value(10.0 ** lg, lg)} at {fixed(m)} "
+                        f"{getattr(sres, 'unit', 'GeV')} (\u25bc)",
+                        transform=ax.transAxes, ha="right", va="bottom", fontsize=8.5,
+                        color=COLORS["signal"])
     return fig
 
 
+def limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
+                  labels: FigureLabels | None = None) -> Path:
+    """The limits figure of a search result (``limits.png`` and the other formats)."""
+    return _limits_figure(result, outdir, formats,
+                          labels or figure_labels(getattr(result, "config", None)))
+
+
+class _Drawing:
+    """Figures being drawn in a forked process; :meth:`join` waits and returns their paths
+    (drawing them here instead if the process failed, so no figure is ever lost)."""
+
+    def __init__(self, proc: Any, listing: Path, redo: Any) -> None:
+        self.proc, self.listing, self.redo = proc, listing, redo
+
+    def join(self) -> dict[str, Path]:
+        import json
+
+        if self.proc is not None:
+            self.proc.join()
+            if self.proc.exitcode == 0 and self.listing.exists():
+                names = json.loads(self.listing.read_text())
+                self.listing.unlink()
+                return {k: Path(v) for k, v in names.items()}
+        self.listing.unlink(missing_ok=True)
+        return self.redo()
+
+    def cancel(self) -> None:
+        """Stop the drawing process (the caller failed and discards the outputs)."""
+        if self.proc is not None and self.proc.is_alive():
+            self.proc.terminate()
+        if self.proc is not None:
+            self.proc.join()
+
+
+def _draw_child(result: Any, outdir: Path, listing: Path, kw: dict[str, Any]) -> None:
+    """In the forked process: draw, list the files, exit without the parent's clean-up."""
+    import json
+
+    code = 1
+    try:
+        out = search_figures(result, outdir, **kw)
+        listing.write_text(json.dumps({k: str(v) for k, v in out.items()}))
+        code = 0
+    finally:
+        os._exit(code)  # no atexit handlers or buffers of the parent run twice
+
+
+def draw_in_background(result: Any, outdir: str | os.PathLike[str], **kw: Any) -> _Drawing:
+    """Start :func:`search_figures` of ``result`` (its limits left out) in a forked process
+    and return at once; ``.join()`` gives name -> PNG path.  Where fork is not available
+    (or not safe: macOS, Windows), or ``PEAKSIFT_DRAW_INLINE`` is set, the figures are drawn
+    at ``join`` in this process instead.  Either way the files are the same."""
+    import dataclasses
+    import multiprocessing
+
+    from ._processes import quiet_fork, resolve_start_method
+
+    outdir = Path(outdir)
+    outdir.mkdir(parents=True, exist_ok=True)
+    pre = dataclasses.replace(result, limits=None) if dataclasses.is_dataclass(result) \
+        else result
+    listing = outdir / ".drawn.json"
+
+    def redo() -> dict[str, Path]:
+        return search_figures(pre, outdir, **kw)
+
+    if os.environ.get("PEAKSIFT_DRAW_INLINE") or resolve_start_method("auto") != "fork":
+        return _Drawing(None, listing, redo)
+    ctx = multiprocessing.get_context("fork")
+    proc = ctx.Process(target=_draw_child, args=(pre, outdir, listing, kw), daemon=True)
+    with quiet_fork():
+        proc.start()
+    return _Drawing(proc, listing, redo)
+
+
 def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
-                   blind: Sequence[float] | None) -> Path:
-    plt = _plt()
-    with figure_style():
-        fig, ax = plt.subplots(figsize=(7.0, 4.6))
-        _call_plot(result.limits, ax=ax)
-        _shade_blind(ax, blind)
-        return save(fig, outdir, "limits", formats)
+                   labels: FigureLabels) -> Path:
+    fig = result.limits.plot(run=labels.run, symbol=labels.symbol)
+    return save(fig, outdir, "limits", formats)
 
 
 # ------------------------------------------------------------------ dE/dx identification
@@ -305,7 +427,6 @@ def dedx_figure(outcome: Any, outdir: str | os.PathLike[str], *,
 
     from .energy_loss import HYPOTHESES, hypothesis_mass
 
-    plt = _plt()
     r = outcome.response
     counts = np.asarray(outcome.counts, dtype=float)
     p_edges = np.asarray(outcome.p_edges, dtype=float)
@@ -314,8 +435,9 @@ def dedx_figure(outcome: Any, outdir: str | os.PathLike[str], *,
     ramp = LinearSegmentedColormap.from_list(
         "peaksift_density", ["#ffffff", COLORS["band2"], COLORS["band1"], COLORS["total"],
                              COLORS["data"]])
+    fig, ax = new_figure((7.0, 5.0))
+    margins(fig, right=1.1)  # room for the colour bar
     with figure_style():
-        fig, ax = plt.subplots(figsize=(7.0, 5.0))
         if counts.max() > 0:
             m = ax.pcolormesh(p_edges, d_edges, np.where(counts > 0, counts, np.nan).T,
                               cmap=ramp, norm=LogNorm(vmin=1.0, vmax=counts.max()),
@@ -342,6 +464,6 @@ def dedx_figure(outcome: Any, outdir: str | os.PathLike[str], *,
         ax.set_xlabel("momentum p [GeV]")
         ax.set_ylabel(f"measured dE/dx (field '{r.field}', detector units)")
         ax.legend(loc="upper right", ncol=1)
-        _text(ax, [(f"{r.material.name}: scale {r.scale:.4g}, \u03c3/\u27e8dE/dx\u27e9 "
-                   f"{r.resolution:.3g}")], loc="lower left")
-        return save(fig, outdir, "dedx", formats)
+        draw_header(ax, None, (f"{r.material.name}: scale {r.scale:.4g}, "
+                               f"\u03c3/\u27e8dE/dx\u27e9 {r.resolution:.3g}"))
+    return save(fig, outdir, "dedx", formats)

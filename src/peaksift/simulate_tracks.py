@@ -258,56 +258,52 @@ def generate_tracks(n_events: int = TRACK_DEMO_EVENTS, *, seed: int = TRACK_DEMO
 
 
 def write_track_demo(outdir: str | os.PathLike, *, n_events: int | None = None,
-                     seed: int | None = None, scenario: TrackScenario = TRACK_DEMO
-                     ) -> dict[str, Any]:
+                     seed: int | None = None, scenario: TrackScenario = TRACK_DEMO,
+                     share_folder: bool = False) -> dict[str, Any]:
     """Write ``tracks_000.parquet`` and ``truth.json`` of the hadron demo to ``outdir``.
 
-    Files are written under temporary names and renamed when complete.  Returns ``files``,
-    ``truth`` and ``summary`` (a few lines for the terminal).
+    Written under the output-folder contract (:mod:`peaksift._output`): staged and moved
+    into place when complete; a folder holding files peaksift did not write is refused
+    unless ``share_folder``, and only files peaksift wrote are ever replaced.  Returns
+    ``files``, ``truth`` and ``summary`` (a few lines for the terminal).
     """
+    from ._files import atomic_write
+    from ._output import staged_output
+
     n = TRACK_DEMO_EVENTS if n_events is None else n_events
     s = TRACK_DEMO_SEED if seed is None else seed
     table, counts = generate_tracks(n, seed=s, scenario=scenario)
     out = Path(outdir)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise InputError(f"cannot create output directory '{out}': {exc.strerror}; choose a "
-                         "writable directory") from None
     path = out / "tracks_000.parquet"
-    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
-    try:
-        pq.write_table(table, tmp, compression="zstd", compression_level=9,
-                       use_dictionary=False, row_group_size=20_000)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-    from . import __version__
-
-    truth = {
-        "scenario": scenario.name,
-        "generator": "peaksift.simulate_tracks 1",
-        "peaksift_version": __version__,
-        "seed": int(s),
-        "n_events": int(n),
-        "files": [path.name],
-        "phi_meson": {"mass_gev": scenario.phi_mass, "width_gev": scenario.phi_width,
-                      "decay": "K+ K-", "source": "particle package (PDG tables)"},
-        "dedx": {"material": scenario.material, "scale_kev_per_cm": scenario.scale,
-                 "resolution_at_reference": scenario.resolution,
-                 "reference_samples": scenario.reference_samples, "samples_exponent": 0.5,
-                 "units": "keV/cm"},
-        **counts,
-        "columns": {"track": "list<struct<pt, eta, phi (float32), charge (int8), dedx "
-                             "(float32, keV/cm), dedx_samples (int16), truth_species (int16, "
-                             "PDG code), truth_from_phi (bool)>>",
-                    "run, event": "per event"},
-        "parameters": scenario.to_dict(),
-    }
     tj = out / "truth.json"
-    tmpj = tj.with_name(f".{tj.name}.tmp{os.getpid()}")
-    tmpj.write_text(json.dumps(truth, indent=2) + "\n")
-    os.replace(tmpj, tj)
+    with staged_output(out, "track-demo", share=share_folder,
+                       names=(path.name, tj.name)) as stage:
+        assert stage is not None
+        pq.write_table(table, stage.path / path.name, compression="zstd", compression_level=9,
+                       use_dictionary=False, row_group_size=20_000)
+        from . import __version__
+
+        truth = {
+            "scenario": scenario.name,
+            "generator": "peaksift.simulate_tracks 1",
+            "peaksift_version": __version__,
+            "seed": int(s),
+            "n_events": int(n),
+            "files": [path.name],
+            "phi_meson": {"mass_gev": scenario.phi_mass, "width_gev": scenario.phi_width,
+                          "decay": "K+ K-", "source": "particle package (PDG tables)"},
+            "dedx": {"material": scenario.material, "scale_kev_per_cm": scenario.scale,
+                     "resolution_at_reference": scenario.resolution,
+                     "reference_samples": scenario.reference_samples,
+                     "samples_exponent": 0.5, "units": "keV/cm"},
+            **counts,
+            "columns": {"track": "list<struct<pt, eta, phi (float32), charge (int8), dedx "
+                                 "(float32, keV/cm), dedx_samples (int16), truth_species "
+                                 "(int16, PDG code), truth_from_phi (bool)>>",
+                        "run, event": "per event"},
+            "parameters": scenario.to_dict(),
+        }
+        atomic_write(stage.path / tj.name, json.dumps(truth, indent=2) + "\n")
     summary = (f"wrote {path} with {n} events and {counts['tracks']} tracks "
                f"({path.stat().st_size / 1e6:.1f} MB); phi(1020) -> K+K- decays: "
                f"{counts['phi_decays_generated']} ({counts['phi_decays_both_kaons_kept']} with "

@@ -15,6 +15,25 @@ from .schema import _TOP
 
 # ---------------------------------------------------------------------------- dataclasses
 @dataclass(frozen=True)
+class SignalModelConfig:
+    """``[signal_model]``: simulated samples (or a saved model) that give the scan and the
+    limits their signal shape, resolution and efficiency as functions of mass."""
+
+    files: tuple[str, ...] = ()
+    masses: tuple[float, ...] = ()
+    generated: tuple[float, ...] = ()
+    shape: str = "crystalball"
+    order: int = 1
+    efficiency_order: int = 2
+    fix: Any = field(default_factory=dict)
+    saved: str = ""
+
+    @property
+    def enabled(self) -> bool:
+        return bool(self.files or self.saved)
+
+
+@dataclass(frozen=True)
 class InputConfig:
     files: tuple[str, ...]
     weights: bool = True
@@ -218,6 +237,15 @@ class ExecutionConfig:
 
 
 @dataclass(frozen=True)
+class RunConfig:
+    """What the figures' run label says: the run's name, sqrt(s) in TeV, the channel."""
+
+    name: str = ""
+    sqrt_s: float | None = None
+    channel: str = ""
+
+
+@dataclass(frozen=True)
 class OutputConfig:
     dir: str = "peaksift_out"
     formats: tuple[str, ...] = ("png", "pdf")
@@ -250,7 +278,9 @@ class Config:
     blinding: BlindingConfig = field(default_factory=BlindingConfig)
     limits: LimitsConfig = field(default_factory=LimitsConfig)
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
+    signal_model: SignalModelConfig = field(default_factory=SignalModelConfig)
     execution: ExecutionConfig = field(default_factory=ExecutionConfig)
+    run: RunConfig = field(default_factory=RunConfig)
     output: OutputConfig = field(default_factory=OutputConfig)
     source: str = "<dict>"
     base_dir: Path = field(default_factory=Path.cwd)

@@ -16,7 +16,7 @@ from .schema import _inspect, _kin_source_fields, _open, _plan_request
 # --------------------------------------------------------------------------- describe
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False)
 class Description:
     """What a set of event files holds; ``str()`` gives the ``peaksift inspect`` text.
 
@@ -41,6 +41,14 @@ class Description:
     other_fields: dict[str, str]
     n_events: int
     problems: list[str]
+
+    def __repr__(self) -> str:
+        return str(self)  # the inspect text, not a dump of the fields
+
+    def _repr_html_(self) -> str:
+        import html
+
+        return f"<pre>{html.escape(str(self))}</pre>"
 
     def __str__(self) -> str:
         plural = "s" if len(self.files) != 1 else ""

@@ -75,7 +75,7 @@ process-pool runners, worker start, dead workers), ``_dask.py`` (the Dask engine
 
 from __future__ import annotations
 
-from ._chunk import ChunkOutput, Selection, process_chunk
+from ._chunk import ChunkOutput, Selection, process_chunk, requirement_flow
 from ._collect import DEFAULT_CHUNK_EVENTS, Collected, SkippedFile, collect
 from ._engines import ENGINES, START_METHODS, map_tasks
 
@@ -90,4 +90,5 @@ __all__ = [
     "collect",
     "map_tasks",
     "process_chunk",
+    "requirement_flow",
 ]

@@ -69,7 +69,11 @@ class Selection:
     pt_edges, rapidity_edges : sequence of float, optional
         Bins of the candidates' pT (GeV; default 100 bins from 0 to the top mass edge)
         and rapidity (default 60 bins on [-3, 3]) summary histograms, filled with the
-        candidates whose mass lies in the histogram range.
+        candidates whose mass lies in ``summary_window``.
+    summary_window : (float, float), optional
+        Mass range of the candidates in the pT and rapidity summaries (both ends inside);
+        default ``window``.  A search that also collects a calibration window sets it to
+        the search window, so the summaries describe the search.
     unit : str
         Unit of the mass axis (default ``"GeV"``).
     hypotheses, identification, assignment
@@ -94,6 +98,7 @@ class Selection:
     strict: bool = False
     pt_edges: tuple[float, ...] | None = None
     rapidity_edges: tuple[float, ...] | None = None
+    summary_window: tuple[float, float] | None = None
     unit: str = "GeV"
     hypotheses: tuple[str, ...] | None = None
     identification: Any = None
@@ -118,6 +123,14 @@ class Selection:
                     f"Selection.window must be two numbers (lo, hi), got {self.window!r}"
                 )
             set_(self, "window", win)
+        if self.summary_window is None:
+            set_(self, "summary_window", self.window)
+        else:
+            sw = _float_tuple(self.summary_window, "summary_window")
+            if len(sw) != 2:
+                raise ConfigError(f"Selection.summary_window must be two numbers (lo, hi), "
+                                  f"got {self.summary_window!r}")
+            set_(self, "summary_window", sw)
         if self.collections is None:
             names = (self.first,) if self.second in (None, self.first) else (self.first,
                                                                                self.second)
@@ -170,9 +183,12 @@ class ChunkOutput:
     window_mass, window_weight : ndarray
         Masses and weights of the candidates inside the fit window, in event order.
     pt_histogram, rapidity_histogram : MassHistogram
-        The candidates' pT and rapidity, for candidates inside the histogram range.
+        The candidates' pT and rapidity, for candidates inside the selection's
+        ``summary_window``.
     cutflow : dict[str, int]
         The pairing's cut-flow counters.
+    requirements : dict[str, int]
+        Per-requirement cut flow of the same chunk (:func:`requirement_flow`), in order.
     data_warnings : tuple[str, ...]
         Messages of the :class:`~peaksift.errors.DataWarning` raised while reading (objects
         with bad values dropped), to be reported once by the reduce.
@@ -193,6 +209,7 @@ class ChunkOutput:
     cutflow: dict[str, int]
     data_warnings: tuple[str, ...] = ()
     seconds: float = 0.0
+    requirements: dict[str, int] | None = None
 
 
 def _spec_file(spec: Any) -> str:
@@ -257,6 +274,7 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
             event_offset=int(spec.first_event), hypotheses=selection.hypotheses,
             identification=selection.identification, assignment=selection.assignment,
         )
+        requirements = requirement_flow(events, selection)
     for w in caught:
         if issubclass(w.category, DataWarning):
             messages.append(str(w.message))
@@ -269,12 +287,13 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
     hist = _fill_hist(edges, mass, weight, selection.unit, "m")
     lo, hi = selection.window
     inwin = in_range(mass, lo, hi)
-    inrange = in_range(mass, edges[0], edges[-1])
-    w_range = weight[inrange]
-    pt_hist = _fill_hist(selection.pt_edges, np.asarray(cands.pt, dtype=float)[inrange],
-                         w_range, selection.unit, "p_T")
+    # the pT and rapidity summaries describe the search: candidates in its window
+    insum = in_range(mass, *selection.summary_window)
+    w_sum = weight[insum]
+    pt_hist = _fill_hist(selection.pt_edges, np.asarray(cands.pt, dtype=float)[insum],
+                         w_sum, selection.unit, "p_T")
     y_hist = _fill_hist(selection.rapidity_edges,
-                        np.asarray(cands.rapidity, dtype=float)[inrange], w_range, "", "y")
+                        np.asarray(cands.rapidity, dtype=float)[insum], w_sum, "", "y")
     return ChunkOutput(
         index=-1,
         file=_spec_file(spec),
@@ -289,7 +308,48 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
         cutflow={str(k): int(v) for k, v in dict(cands.cutflow).items()},
         data_warnings=tuple(messages),
         seconds=time.perf_counter() - t0,
+        requirements=requirements,
     )
+
+
+def requirement_flow(events: Any, selection: Selection) -> dict[str, int]:
+    """Per-requirement cut flow of one chunk, in the order the pairing applies them.
+
+    Keys, in order: ``events read``; each clause of the event cut (``event: <clause>``,
+    events passing it and every clause before); for each collection (the second only when
+    it differs) ``<coll> objects`` and ``<coll>: <clause>`` (objects of the kept events
+    passing each clause of its cut in turn); and ``events with at least 2 selected <coll>
+    objects`` (or one of each collection).  The charge requirement and the pair choice follow in the
+    pairing's own cut flow (``events_with_pair``).  Counts are of entries, not weights.
+    """
+    from ..cuts import clauses, event_mask, requirement_counts
+
+    n = len(events)
+    out: dict[str, int] = {"events read": int(n)}
+    keep = np.ones(n, dtype=bool)
+    ev_cut = selection.event_cut
+    if ev_cut is not None and ev_cut != "":
+        parts = clauses(ev_cut) or (ev_cut,)
+        for part in parts:
+            keep &= event_mask(events, part)
+            label = getattr(part, "expression", "event cut")
+            out[f"event: {label}"] = int(keep.sum())
+    sides = [(selection.first, selection.cut)]
+    if selection.second not in (None, selection.first):
+        sides.append((selection.second, selection.second_cut))
+    per_event = []
+    for coll, cut in sides:
+        steps, n_pass = requirement_counts(events[coll], cut, name=coll, keep_events=keep)
+        for j, (label, count) in enumerate(steps):
+            out[label if j == 0 else f"{coll}: {label}"] = count
+        per_event.append(n_pass)
+    if len(per_event) == 1:
+        out[f"events with at least 2 selected {selection.first} objects"] = \
+            int(np.sum(per_event[0] >= 2))
+    else:
+        out[f"events with a selected {selection.first} and a selected {selection.second}"] = \
+            int(np.sum((per_event[0] >= 1) & (per_event[1] >= 1)))
+    return out
 
 
 @dataclass(frozen=True)

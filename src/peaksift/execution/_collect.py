@@ -46,7 +46,12 @@ class Collected:
         Candidate masses and weights inside the window, in chunk order then event order
         (the same order on every engine and for every ``chunk_events``).
     pt_histogram, rapidity_histogram : MassHistogram
-        Candidates' pT and rapidity (candidates inside the histogram range).
+        Candidates' pT and rapidity (candidates inside ``summary_window``).
+    summary_window : (float, float) or None
+        The mass range of those summaries (the selection's ``summary_window``).
+    requirements : dict[str, int]
+        Per-requirement cut flow summed over chunks, in order (see
+        :func:`peaksift.execution.requirement_flow`).
     cutflow : dict[str, int]
         Cut-flow counters summed over chunks, in the pairing's order.
     files_read : tuple[str, ...]
@@ -86,6 +91,8 @@ class Collected:
     n_data_warnings: int = 0
     dropped_objects: dict[str, dict[str, int]] = field(default_factory=dict)
     engine_info: dict[str, Any] = field(default_factory=dict)
+    summary_window: tuple[float, float] | None = None
+    requirements: dict[str, int] = field(default_factory=dict)
 
     @property
     def window_candidates(self) -> int:
@@ -102,6 +109,7 @@ class Collected:
             "window": list(self.window),
             "window_candidates": self.window_candidates,
             "cutflow": {k: int(v) for k, v in self.cutflow.items()},
+            "requirements": {k: int(v) for k, v in self.requirements.items()},
             "data_warnings": list(self.data_warnings),
             "dropped_objects": {c: dict(v) for c, v in self.dropped_objects.items()},
             "engine": dict(self.engine_info),
@@ -136,6 +144,7 @@ class _Reducer:
         self.masses: list[np.ndarray] = []
         self.weights: list[np.ndarray] = []
         self.cutflow: dict[str, int] = {}
+        self.requirements: dict[str, int] = {}
         self.events = 0
         self.candidates = 0
         self.files: list[str] = []
@@ -163,6 +172,8 @@ class _Reducer:
                 self.weights.append(out.window_weight)
             for k, v in out.cutflow.items():
                 self.cutflow[k] = self.cutflow.get(k, 0) + int(v)
+            for k, v in (out.requirements or {}).items():
+                self.requirements[k] = self.requirements.get(k, 0) + int(v)
             self.events += out.events
             self.candidates += out.candidates
             self.busy += out.seconds
@@ -330,6 +341,8 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     return Collected(
         histogram=reducer.hist,
         window=selection.window,
+        summary_window=selection.summary_window,
+        requirements=reducer.requirements,
         window_mass=masses,
         window_weight=weights,
         pt_histogram=reducer.pt,

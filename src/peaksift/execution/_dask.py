@@ -41,6 +41,22 @@ def _local_cluster_method(start_method: str, workers: int) -> str:
     return "fork" if rss < _FORK_RSS_FRACTION * per_worker else "spawn"
 
 
+#: the one line a user without the optional extra sees (the README says the same)
+MISSING_DASK = ("engine 'dask' needs the optional 'distributed' extra (the dask and "
+                "distributed packages), which is not installed: pip install "
+                "'peaksift[distributed]' (from a checkout: pip install '.[distributed]'), or "
+                "use engine 'serial' or 'processes'")
+
+
+def require_dask() -> None:
+    """Raise :class:`ExecutionError` naming the extra when dask/distributed are missing."""
+    try:
+        import dask  # noqa: F401
+        import distributed  # noqa: F401
+    except ImportError:
+        raise ExecutionError(MISSING_DASK) from None
+
+
 def _local_worker_setup() -> None:
     """Run on every worker of a local cluster we start: a fast exit, and Arrow's thread
     count from the environment (a forked worker inherits this process's pool size)."""
@@ -88,13 +104,8 @@ def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
 def _connect(address: str | None, workers: int, timeout: str = "30s",
              start_method: str = "auto") -> tuple[Any, Any]:
     """Return (client, cluster_we_started_or_None)."""
-    try:
-        from distributed import Client
-    except ImportError:
-        raise ExecutionError(
-            "engine='dask' needs the dask and distributed packages: "
-            "pip install 'peaksift[distributed]'"
-        ) from None
+    require_dask()
+    from distributed import Client
     if address is None:
         cluster = _start_local_cluster(workers, start_method)
         try:
@@ -125,6 +136,7 @@ def _dask_threads(client: Any) -> int:
 def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
               address: str | None, describe: Callable[[int], str], info: dict[str, Any],
               method: str) -> _Run:
+    require_dask()
     from distributed import KilledWorker
 
     n = len(tasks)

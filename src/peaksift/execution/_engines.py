@@ -7,7 +7,7 @@ from typing import Any
 
 from .._processes import resolve_start_method
 from ..errors import ConfigError
-from ._dask import _local_cluster_method, _run_dask
+from ._dask import _local_cluster_method, _run_dask, require_dask
 from ._local import (
     _check_picklable,
     _default_workers,
@@ -53,6 +53,8 @@ def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
     info.update(engine=engine, workers=1 if engine == "serial" else n_workers, address=address)
     if engine == "serial":
         return _run_serial(func, tasks)
+    if engine == "dask":
+        require_dask()  # one line naming the extra, before anything else is started
     method = resolve_start_method(start_method)
     if engine == "dask" and address is None:
         method = _local_cluster_method(start_method, n_workers)

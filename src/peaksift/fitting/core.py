@@ -382,7 +382,7 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
         corr = cov / np.outer(err, err)
     corr[~np.isfinite(corr)] = 0.0
     np.fill_diagonal(corr, np.where(err > 0, 1.0, 0.0))
-    notes: list[str] = []
+    notes: list[str] = [d.note] if d.note else []
     for k, i in enumerate(free_idx):
         dist, bnd = _distance_to_bound(xbest[k], lower[i], upper[i])
         if (math.isfinite(dist) and dist > _bound_tolerance(xbest[k], lower[i], upper[i])

@@ -6,6 +6,7 @@ binning used for the goodness of fit and the figure.
 
 from __future__ import annotations
 
+import logging
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -17,6 +18,8 @@ from ..shapes import as_window
 
 #: arrays with at most this many masses in the window are fitted unbinned by default
 UNBINNED_LIMIT = 20000
+_log = logging.getLogger("peaksift.fitting")
+
 #: number of bins used when a large array is fitted binned by default
 DEFAULT_BINS = 400
 
@@ -35,6 +38,7 @@ class FitData:
     total: float
     unit: str
     hist: Any = None  # MassHistogram: the fitted bins, or the goodness-of-fit bins (unbinned)
+    note: str = ""  # said in the result's notes (a window snapped to the histogram's bins)
 
 
 def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any) -> FitData:
@@ -58,8 +62,15 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
             raise FitError(f"the histogram has a negative sum of weights ({n[k]:g}) in the bin "
                            f"{h.edges[k]:g}-{h.edges[k + 1]:g} GeV: a Poisson likelihood needs "
                            "non-negative contents; merge bins or fit the masses unbinned")
+        note = ""
+        if window is not None:
+            lo, hi = as_window(window)
+            if not (math.isclose(lo, h.lo, abs_tol=1e-9) and math.isclose(hi, h.hi, abs_tol=1e-9)):
+                note = (f"fit window {lo:g}-{hi:g} {h.unit} snapped to the histogram's bins "
+                        f"lying completely inside it: {h.lo:g}-{h.hi:g} {h.unit}")
+                _log.info(note)
         return FitData(True, "data is a histogram", bool(h.is_weighted), h.edges, n, n2, None,
-                       None, (h.lo, h.hi), float(n.sum()), h.unit, h)
+                       None, (h.lo, h.hi), float(n.sum()), h.unit, h, note)
     if isinstance(data, tuple) and len(data) == 2 and weights is None:
         data, weights = data
     x = _masses(data, "masses")

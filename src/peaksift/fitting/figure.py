@@ -1,4 +1,10 @@
-"""The fit figure: data with Poisson error bars, the model, its components, pulls beneath."""
+"""The fit figure: data with Poisson error bars, the model, its components, pulls beneath,
+and the fitted numbers as a small table under the legend.
+
+:func:`fit_figure` draws on a new Figure made without pyplot (or on one you pass), so the
+user's matplotlib backend is never touched.  :func:`parameter_rows` gives the table's rows
+(also used by the calibration figure of a search).
+"""
 
 from __future__ import annotations
 
@@ -6,24 +12,110 @@ from typing import Any
 
 import numpy as np
 
-from .result import FitResult, format_value
+from .._format import fixed, number, p_value, pm_parts
+from .result import FitResult
 
-__all__ = ["fit_figure"]
+__all__ = ["fit_figure", "parameter_rows"]
+
+# parameter name -> (symbol in mathtext, unit is the mass unit?)
+_SYMBOLS = {
+    "mass": ("mass", True), "sigma": (r"$\sigma$", True), "width": (r"$\Gamma$", True),
+    "signal_yield": (r"$N_{sig}$", False), "background_yield": (r"$N_{bkg}$", False),
+    "alpha_low": (r"$\alpha_{low}$", False), "n_low": (r"$n_{low}$", False),
+    "alpha_high": (r"$\alpha_{high}$", False), "n_high": (r"$n_{high}$", False),
+    "alpha": (r"$\alpha$", False), "n": (r"$n$", False),
+}
 
 
-def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None) -> Any:
-    """Data with Poisson error bars, total model, signal and (dashed) background, and a
-    pulls panel underneath.  Returns the matplotlib Figure (saved to ``path`` if given).
+def parameter_rows(result: FitResult, *, background: bool = False
+                   ) -> list[tuple[str, str, str, str]]:
+    """``(symbol, value, ± error, unit)`` for the signal parameters, the signal yield and
+    the background yield (``background=True``: the background shape's parameters too).
+    Fixed parameters say "fixed" in the error column."""
+    sig_names: list[str] = []
+    for s in result.model.signals:
+        sig_names += [p.name for p in s.parameters]
+    names = [n for n in result.parameters
+             if n in sig_names or n in ("signal_yield", "background_yield")
+             or n.split("_")[0] in sig_names or background]
+    order = {n: i for i, n in enumerate(("mass", "sigma", "width"))}
+    names.sort(key=lambda n: (order.get(n, 3), n in ("signal_yield", "background_yield")))
+    rows = []
+    for n in names:
+        sym, mass_unit = _SYMBOLS.get(n, (n.replace("_", " "), False))
+        if n in result.fixed:
+            v, e = number(result.values[n]), "(fixed)"
+        else:
+            v, e = pm_parts(result.values[n], result.errors[n])
+            e = f"\u00b1 {e}" if e else ""
+        rows.append((sym, v, e, result.unit if mass_unit else ""))
+    return rows
+
+
+def gof_caption(result: FitResult) -> str:
+    """``χ²/ndf = 103.8/85, p = 0.077`` (Baker-Cousins); what is missing said plainly."""
+    if result.gof_ndf <= 0 or not np.isfinite(result.gof_chi2):
+        return r"$\chi^2$ not defined (no degrees of freedom left)"
+    return (rf"$\chi^2$/ndf = {fixed(result.gof_chi2, 1)}/{result.gof_ndf},  "
+            f"p = {p_value(result.gof_p_value)}")
+
+
+def _table_corner(ax: Any, legend: Any, table_h: float, x: np.ndarray, y_top: np.ndarray,
+                  top: float) -> str:
+    """Where the value table goes: under the legend (upper right) when the data there stay
+    below it, else the upper left when free there, else under the legend with the y axis
+    raised until the data clear it."""
+    renderer = ax.figure.canvas.get_renderer()
+    box = ax.get_window_extent(renderer)
+    to_pt = 72.0 / ax.figure.dpi
+    ax_h = box.height * to_pt
+    leg_h = (box.y1 - legend.get_window_extent(renderer).y0) * to_pt
+    lo, hi = ax.get_xlim()
+    ymax = ax.get_ylim()[1]
+    span = 0.42 * (hi - lo)  # about the table's width
+
+    def highest(sel: np.ndarray) -> float:
+        return float(np.max(y_top[sel])) / ymax if np.any(sel) else 0.0
+
+    right = highest(x >= hi - span)
+    left = highest(x <= lo + span)
+    if right < 1.0 - (leg_h + table_h + 8.0) / ax_h:
+        return "right"
+    if left < 1.0 - (table_h + 12.0) / ax_h:
+        return "left"
+    free = 1.0 - (leg_h + table_h + 8.0) / ax_h
+    if free > 0.2:
+        ax.set_ylim(0.0, ymax * right / free * 1.05)
+    return "right"
+
+
+def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
+               fig: Any = None, run: Any = None, symbol: str | None = None,
+               note: str = "", marks: Any = ()) -> Any:
+    """Data with Poisson error bars, total model, signal and (dashed) background, a pulls
+    panel underneath and the fitted numbers in a table.  Returns the matplotlib Figure
+    (saved to ``path`` if given).
+
+    ``fig``: draw on this (empty) Figure instead of a new one.  ``run``: a
+    :class:`peaksift._style.RunLabel` drawn above the axes; ``note``/``title``: the figure's
+    statement under it.  ``symbol``: mathtext of the mass (default ``m``), e.g.
+    ``m_{\\mu\\mu}``.  ``marks``: ``(mass, label, colour, linestyle)`` vertical lines drawn
+    on both panels and named in the legend (the calibration's fitted and tabulated masses).
 
     Unweighted counts get central 68.3 % Garwood intervals
     (``chi2.ppf(0.1587, 2n)/2``, ``chi2.ppf(0.8413, 2n+2)/2``; Garwood, Biometrika 28
     (1936) 437); weighted bins get sqrt(sum w^2).
     """
-    from .._style import COLORS, figure_style, use_headless_backend
-
-    use_headless_backend()
-    import matplotlib.pyplot as plt
     from scipy import stats
+
+    from .._style import (
+        COLORS,
+        draw_header,
+        figure_style,
+        new_figure,
+        value_table,
+        value_table_height,
+    )
 
     e, n = result.edges, result.observed
     c = 0.5 * (e[1:] + e[:-1])
@@ -39,9 +131,12 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None)
     ref_bw = float(np.median(bw))
     comps = result.model.components(xs, vals)
     total = sum(comps.values())
+    grid = {"height_ratios": [3.2, 1], "hspace": 0.05}
     with figure_style():
-        fig, (a1, a2) = plt.subplots(2, 1, sharex=True, figsize=(7.0, 5.6),
-                                     gridspec_kw={"height_ratios": [3.2, 1], "hspace": 0.05})
+        if fig is None:
+            fig, (a1, a2) = new_figure((7.0, 5.6), 2, 1, sharex=True, gridspec_kw=grid)
+        else:
+            a1, a2 = fig.subplots(2, 1, sharex=True, gridspec_kw=grid)
         scale_n = ref_bw / bw
         a1.errorbar(c, n * scale_n, yerr=[lo_err * scale_n, hi_err * scale_n], fmt="o",
                     ms=2.8, lw=0.9, color=COLORS["data"], label="data", zorder=3)
@@ -53,20 +148,25 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None)
             if k.startswith("signal"):
                 a1.plot(xs, v * ref_bw, color=COLORS["signal"], lw=1.2, ls=next(styles),
                         label=k.replace("_", " "))
-        a1.set_ylabel(f"events / {ref_bw:.3g} {result.unit}")
+        a1.set_ylabel(f"candidates / {number(ref_bw, 3)} {result.unit}")
         top = max(float(np.max((n + hi_err) * scale_n)), float(np.max(total * ref_bw)))
-        a1.set_ylim(0, 1.45 * top)  # headroom for the legend and the numbers
-        txt = (f"m = {format_value(result.peak_mass, result.peak_mass_error)} {result.unit}\n"
-               f"{result.width_parameter} = {format_value(result.peak_width, result.peak_width_error)} "
-               f"{result.unit}\n"
-               f"N_sig = {format_value(*result.signal_yield)}\n"
-               f"chi2/ndf = {result.gof_chi2:.1f}/{result.gof_ndf}")
+        a1.set_ylim(0, 1.6 * top)  # headroom for the legend and the table, once
+        for x, label, color, ls in marks:
+            for a in (a1, a2):
+                a.axvline(float(x), color=color, lw=1.0, ls=ls, zorder=1,
+                          label=label if a is a1 else None)
+        leg = a1.legend(loc="upper right")
+        caption = gof_caption(result)
         if not result.valid:
-            txt += "\nINVALID FIT"
-        a1.text(0.03, 0.96, txt, transform=a1.transAxes, va="top", fontsize=9)
-        a1.legend(loc="upper right")
-        if title:
-            a1.set_title(title)
+            caption += "\nFIT NOT VALID: " + "; ".join(result.problems)[:60]
+        shapes = " + ".join(s.name for s in result.model.signals)
+        rows = parameter_rows(result)
+        title_t = f"fit: {shapes} + {result.model.background.name}"
+        h_table = value_table_height(len(rows), caption=caption, title=title_t)
+        corner = _table_corner(a1, leg, h_table, c, (n + hi_err) * scale_n, top)
+        value_table(a1, rows, caption=caption, below=leg if corner == "right" else None,
+                    corner=corner, title=title_t)
+        draw_header(a1, run, note or title or "")
         a2.axhline(0, color=COLORS["background"], lw=0.8)
         for lvl in (-2, 2):
             a2.axhline(lvl, color=COLORS["background"], lw=0.6, ls=":")
@@ -74,7 +174,7 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None)
         lim = max(3.5, float(np.nanmax(np.abs(result.pulls))) * 1.1 if result.pulls.size else 3.5)
         a2.set_ylim(-lim, lim)
         a2.set_ylabel("pull")
-        a2.set_xlabel(f"m [{result.unit}]")
+        a2.set_xlabel(f"${symbol or 'm'}$ [{result.unit}]")
         a2.set_xlim(result.window)
         if path is not None:
             fig.savefig(path)

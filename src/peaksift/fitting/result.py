@@ -18,7 +18,7 @@ import numpy as np
 
 from .. import shapes as _shapes
 from .._json import finite as number
-from .._values import FrozenValue
+from .._values import FrozenValue, Measurement
 from ..errors import FitError
 from ..likelihood import Model, new_minuit
 
@@ -71,9 +71,10 @@ class FitResult(FrozenValue):
     problems : tuple of str
         Why the fit is not valid.  ``notes`` hold warnings that do not invalidate it (a
         parameter within one error of a bound, symmetric errors that under-cover, ...).
-    peak_mass, peak_width, fwhm (and ``*_error``) : float
+    peak_mass, peak_width, fwhm : Measurement
         Of the first signal component (``peak_width`` is its natural ``width`` if it has one,
-        else ``sigma``; its name in ``width_parameter``).
+        else ``sigma``; its name in ``width_parameter``): floats carrying ``.error`` (also in
+        ``*_error``); ``signal_yield`` and ``background_yield`` likewise.
     gof_chi2, gof_ndf, gof_p_value, gof_note
         Baker-Cousins saturated-model chi-square of the binned data, its ndf (bins - free
         parameters), the chi-square p-value and what approximation applies.
@@ -141,16 +142,31 @@ class FitResult(FrozenValue):
             object.__setattr__(self, name, dict(getattr(self, name) or {}))
         if self.intervals is not None:
             object.__setattr__(self, "intervals", dict(self.intervals))
+        # one convention for a number with its error (peaksift._values.Measurement)
+        for name in ("peak_mass", "peak_width", "fwhm"):
+            object.__setattr__(self, name, Measurement(getattr(self, name),
+                                                       getattr(self, f"{name}_error")))
         super().__post_init__()
 
     # ---------------------------------------------------------------- summary
     @property
-    def signal_yield(self) -> tuple[float, float]:
-        return self.values["signal_yield"], self.errors["signal_yield"]
+    def signal_yield(self) -> Measurement:
+        """Fitted signal yield with its error (unpacks as ``value, error``)."""
+        return Measurement(self.values["signal_yield"], self.errors["signal_yield"])
 
     @property
-    def background_yield(self) -> tuple[float, float]:
-        return self.values["background_yield"], self.errors["background_yield"]
+    def background_yield(self) -> Measurement:
+        """Fitted background yield with its error."""
+        return Measurement(self.values["background_yield"], self.errors["background_yield"])
+
+    @property
+    def width(self) -> Measurement:
+        """The peak width with its error, as results.json's ``width`` (= ``peak_width``)."""
+        return self.peak_width
+
+    def measurement(self, name: str) -> Measurement:
+        """Any parameter's fitted value with its error."""
+        return Measurement(self.values[name], self.errors[name])
 
     @property
     def minos(self) -> Any:
@@ -215,6 +231,7 @@ class FitResult(FrozenValue):
             "minos": None if iv is None else
             {k: [number(a), number(b)] for k, (a, b) in iv.items()},
             "covariance": [[number(c) for c in row] for row in self.covariance],
+            "correlations": [[number(c) for c in row] for row in self.correlations],
             "bins": {"edges": self.edges.tolist(), "observed": self.observed.tolist(),
                      "observed_weight_sq_sum": self.observed_weight_sq_sum.tolist(),
                      "expected": self.expected.tolist(),
@@ -244,6 +261,8 @@ class FitResult(FrozenValue):
             err = np.sqrt(np.clip(np.diag(cov), 0, None))
             with np.errstate(invalid="ignore", divide="ignore"):
                 corr = cov / np.outer(err, err)
+            if d.get("correlations") is not None:  # as fitted, not recomputed
+                corr = np.array([[val(c) for c in row] for row in d["correlations"]], float)
             b = d["bins"]
             iv = d.get("intervals")
             return cls(
@@ -301,8 +320,12 @@ class FitResult(FrozenValue):
             lines.append(f"  {n:<{w}} = {format_value(self.values[n], self.errors[n])}{tag}")
         lines.append(f"  peak: mass {format_value(self.peak_mass, self.peak_mass_error)} "
                      f"{self.unit}, FWHM {format_value(self.fwhm, self.fwhm_error)} {self.unit}")
-        lines.append(f"  GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
-                     f"p = {self.gof_p_value:.3g}")
+        if self.gof_ndf > 0 and math.isfinite(self.gof_chi2):
+            lines.append(f"  GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
+                         f"p = {self.gof_p_value:.3g}")
+        else:
+            lines.append("  GoF: not defined (no degrees of freedom left"
+                         + (", unbinned fit" if not self.binned else "") + ")")
         return "\n".join(lines)
 
     def _repr_html_(self) -> str:
@@ -322,10 +345,15 @@ class FitResult(FrozenValue):
                 f"{self.unit}; FWHM {html.escape(format_value(self.fwhm, self.fwhm_error))} "
                 f"{self.unit}</p></div>")
 
-    def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None) -> Any:
-        """Data, total model, signal and background, with pulls underneath (see
-        :func:`peaksift.fitting.figure.fit_figure`)."""
+    def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
+             run: Any = None, symbol: str | None = None, note: str = "") -> Any:
+        """Data, total model, signal and background, with pulls underneath and the fitted
+        numbers in a table; returns a matplotlib Figure drawn without pyplot (the user's
+        backend is left alone).  ``fig``: draw on this empty Figure instead; ``run``: a
+        run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``).  See
+        :func:`peaksift.fitting.figure.fit_figure`."""
         from .figure import fit_figure
 
-        return fit_figure(self, path, title=title)
+        return fit_figure(self, path, title=title, fig=fig, run=run, symbol=symbol,
+                          note=note)
 

@@ -164,6 +164,7 @@ def _selection(cfg: Config, lo: float, hi: float, nbins: int,
         second=ob.second_collection or None,
         edges=tuple(np.linspace(lo, hi, nbins + 1)),
         window=(lo, hi),
+        summary_window=tuple(cfg.spectrum.window),  # pT/rapidity: the search window only
         cut=ob.cut or None,
         second_cut=ob.second_cut or None,
         event_cut=ob.event_cut or None,

@@ -56,6 +56,10 @@ bins = 80
 signal = "crystalball"         # Gaussian core with radiative tails
 background = "exponential"
 
+[run]
+name = "demo run"              # the invented run, as labelled on every figure
+sqrt_s = 10.0                  # TeV; the label's luminosity is limits.luminosity
+
 [execution]
 engine = "serial"
 

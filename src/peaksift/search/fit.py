@@ -120,7 +120,7 @@ def run_fit(
     out: str | os.PathLike[str] | None = None,
     engine: str | None = None,
     unblind: bool = False,
-    progress: bool = False,
+    progress: bool | None = None,
     share_folder: bool = False,
 ) -> Any:
     """One signal-plus-background fit of the configured spectrum, started at ``mass`` GeV.
@@ -144,6 +144,9 @@ def run_fit(
     -------
     FitResult
     """
+    from .._progress import progress_wanted
+
+    progress = progress_wanted(progress)  # None: a terminal or a notebook
     from ..fitting import fit
 
     cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
@@ -178,10 +181,12 @@ def run_fit(
             fr = _note_lower_minimum(fr, fit, data, sig, bkg, (lo, hi), binned, start, settings)
         fr = _note_tie_drift(fr, cfg, settings)
         if stage is not None:
+            from ..plotting import figure_labels
+
             _write_fit(stage.path, fr, {
                 "written_by": _FIT_MARK, "config": cfg.source, "config_sha256": cfg.sha256,
                 "mass_start": mass, "mass_held": bool(hold_mass),
-                "settings": settings.echo(start)})
+                "settings": settings.echo(start)}, figure_labels(cfg))
     return fr
 
 
@@ -231,26 +236,22 @@ def _note_tie_drift(fr: Any, cfg: Config, settings: _FitSettings) -> Any:
                           "start the fit there (peaksift fit --mass) for a consistent sigma")
 
 
-def _write_fit(target: Path, fr: Any, run: Mapping[str, Any]) -> dict[str, Path]:
+def _write_fit(target: Path, fr: Any, run: Mapping[str, Any], labels: Any = None
+               ) -> dict[str, Path]:
     """``fit.png`` and ``fit.json`` into ``target``, each atomically; the figure is drawn
-    in memory first, so a failure to draw leaves no file."""
+    in memory first (without pyplot), so a failure to draw leaves no file."""
     import io
 
-    from .._style import use_headless_backend
+    from .._files import atomic_write
+    from .._style import figure_style
     from ..report import write_results_json
 
-    use_headless_backend()
-    import matplotlib.pyplot as plt
-
-    from .._files import atomic_write
-
-    fig = fr.plot(title=f"fit started at {run['mass_start']:g} GeV"
-                  + (" (mass held)" if run["mass_held"] else ""))
+    fig = fr.plot(note=f"fit started at {run['mass_start']:.2f} GeV"
+                  + (" (mass held)" if run["mass_held"] else ""),
+                  run=getattr(labels, "run", None), symbol=getattr(labels, "symbol", None))
     buf = io.BytesIO()
-    try:
+    with figure_style():
         fig.savefig(buf, format="png")
-    finally:
-        plt.close(fig)
     d = {**_plain(fr.to_dict()), "run": _plain(dict(run))}
     png = atomic_write(target / "fit.png", buf.getvalue())
     return {"fit.json": write_results_json(d, target / "fit.json"), "fit.png": png}

@@ -26,7 +26,7 @@ class SpectrumResult:
     files: Mapping[str, Path] = field(default_factory=dict)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False)
 class SearchResult:
     """The outcome of :func:`run_search`.
 
@@ -58,12 +58,18 @@ class SearchResult:
         Where the outputs were written (None when ``out=False``).
     figures : dict
         Figure name -> PNG path.
+    signal_model : SignalModel or None
+        The signal model from ``[signal_model]`` (results.json ``signal_model``), which gave
+        the scan and the limits their shape, resolution and efficiency.
     fit_settings : dict
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
         results.json ``fit.settings``.
     identification : dict or None
         The dE/dx identification the pairing used (response, calibration fit), when on.
+    input_record : dict or None
+        The results.json ``input`` of a result read back with :meth:`from_dict` (which has
+        no ``collected`` data); None for a result of a run.
     """
 
     config: Config
@@ -81,14 +87,102 @@ class SearchResult:
     outdir: Path | None = None
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
+    signal_model: Any = None
     identification: Mapping[str, Any] | None = None
+    input_record: Mapping[str, Any] | None = None
+
+    # ------------------------------------------------------------------------ show
+    def _summary(self) -> list[tuple[str, str]]:
+        from .._format import fixed, significance
+
+        b = dict(self.best or {})
+        rows = [("best mass", f"{fixed(b.get('mass'))} GeV"),
+                ("local", significance(b, "local")),
+                ("global", significance(b, "global"))]
+        if self.fit is not None:
+            rows += [("fitted mass", f"{self.fit.peak_mass} GeV"),
+                     ("signal yield", str(self.fit.signal_yield))]
+        elif (self.blinding or {}).get("active"):
+            rows.append(("fit", "not made: blinded as configured"))
+        if self.limits is not None:
+            rows.append(("limits", f"{self.limits.masses.size} masses, {self.limits.unit}"))
+        if self.outdir is not None:
+            rows.append(("outputs", str(self.outdir)))
+        return rows
+
+    def __repr__(self) -> str:
+        return ("SearchResult(" + "; ".join(f"{k} {v}" for k, v in self._summary())
+                + "; a local significance is not a discovery)")
+
+    def _repr_html_(self) -> str:
+        import html
+
+        rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
+                       for k, v in self._summary())
+        return (f"<div><b>SearchResult</b><table>{rows}</table><p>A local significance is "
+                f"not a discovery; see the report.</p></div>")
+
+    # ------------------------------------------------------------------------ JSON
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> SearchResult:
+        """The SearchResult of a results.json: fits, scan, limits, best, calibration,
+        provenance and the validated config, without the event-level data (``collected``
+        is None, ``histogram`` None; ``input_record`` keeps the counts).  ``to_dict`` of it
+        gives the same results.json sections back."""
+        from ..config import load_config
+        from ..errors import InputError
+        from ..fitting.result import FitResult
+        from ..resonances import KnownMatch
+        from ..stats.limits import LimitResult
+        from ..stats.scan import ScanResult
+
+        try:
+            cfg = load_config(dict(d["config"]))
+            fit = d.get("fit") or {}
+            settings = fit.get("settings") or {}
+            outs = d.get("outputs") or {}
+            return cls(
+                config=cfg, histogram=None, collected=None,
+                background_fit=FitResult.from_dict(d["background_only_fit"])
+                if d.get("background_only_fit") else None,
+                fit=FitResult.from_dict(fit) if fit.get("shapes") else None,
+                scan=ScanResult.from_dict(d["scan"]), best=dict(d["best"]),
+                limits=LimitResult.from_dict(d["limits"]) if d.get("limits") else None,
+                known_matches=tuple(KnownMatch(**k) for k in d.get("known_matches") or ()),
+                calibration=d.get("calibration"), provenance=dict(d.get("provenance") or {}),
+                blinding=dict(d.get("blinding") or {}),
+                outdir=Path(outs["dir"]) if outs.get("dir") else None,
+                figures={k: Path(outs["dir"]) / "figures" / v
+                         for k, v in (outs.get("figures") or {}).items()},
+                fit_settings=settings, input_record=dict(d.get("input") or {}),
+                identification=d.get("identification"))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"not a results.json written by peaksift search: {exc!r}") \
+                from None
+
+    def _input(self) -> dict[str, Any]:
+        """The results.json ``input``: from the collected data, or as recorded."""
+        if self.collected is None:  # read back with from_dict
+            return _plain(dict(self.input_record or {}))
+        col = self.collected
+        cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
+        return {
+            "files": list(col.files_read),
+            "files_skipped": [s.to_dict() for s in col.files_skipped],
+            "events_read": int(col.events_read),
+            "events_selected": _events_selected(cutflow),
+            "candidates": _in_window(col, self.config, _hidden(self.blinding)),
+            "candidates_all_masses": int(col.candidates),
+            "sum_of_weights": float(self.histogram.total()),
+            "cutflow": cutflow,
+            "requirements": {str(k): int(v) for k, v in
+                             dict(getattr(col, "requirements", {}) or {}).items()},
+        }
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
         from .. import __version__
 
-        col = self.collected
-        cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
         fit = _fit_dict(self.fit) if self.fit is not None else _blinded_fit()
         if self.fit_settings:
             fit["settings"] = _plain(dict(self.fit_settings))
@@ -98,19 +192,13 @@ class SearchResult:
         scan_extra = {"resolution_model": self.config.model.resolution.kind,
                       "signal_shape": _scan_signal_name(self.config),
                       "log10_p_local": lg_scan}
+        if self.signal_model is not None:  # the scan's shape and sigma(m) came from samples
+            scan_extra.update(resolution_model="signal_model",
+                              signal_shape=self.signal_model.shape)
         out: dict[str, Any] = {
             "peaksift_version": __version__,
             "config": self.config.to_dict(),
-            "input": {
-                "files": list(col.files_read),
-                "files_skipped": [s.to_dict() for s in col.files_skipped],
-                "events_read": int(col.events_read),
-                "events_selected": _events_selected(cutflow),
-                "candidates": _in_window(col, self.config, _hidden(self.blinding)),
-                "candidates_all_masses": int(col.candidates),
-                "sum_of_weights": float(self.histogram.total()),
-                "cutflow": cutflow,
-            },
+            "input": self._input(),
             "fit": fit,
             "background_only_fit": _fit_dict(self.background_fit)
             if self.background_fit is not None else None,
@@ -124,6 +212,8 @@ class SearchResult:
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
         }
+        if self.signal_model is not None:  # absent without [signal_model]: today's keys
+            out["signal_model"] = self.signal_model.to_dict()
         out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),

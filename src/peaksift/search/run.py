@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import logging
 import os
+import time
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -30,7 +32,25 @@ from .common import (
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
 from .identification import dedx_identification
 from .result import SearchResult
+from .signal import search_signal_model
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
+
+_log = logging.getLogger("peaksift.search")
+
+
+class _Clock:
+    """Wall time of each stage of a search: logged (``peaksift -v``) and kept in the
+    provenance (``timings``, seconds)."""
+
+    def __init__(self) -> None:
+        self.t = time.perf_counter()
+        self.stages: dict[str, float] = {}
+
+    def lap(self, name: str) -> None:
+        now = time.perf_counter()
+        self.stages[name] = round(now - self.t, 3)
+        _log.info("%-22s %6.2f s", name, now - self.t)
+        self.t = now
 
 
 def run_search(
@@ -41,7 +61,7 @@ def run_search(
     toys: int | None = None,
     seed: int | None = None,
     engine: str | None = None,
-    progress: bool = False,
+    progress: bool | None = None,
     share_folder: bool = False,
 ) -> SearchResult:
     """Run the whole search described by a configuration.
@@ -58,8 +78,9 @@ def run_search(
         Lift the configured blinding for this run.
     toys, seed, engine : optional
         Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
-    progress : bool
-        Show progress bars (reading; toys).
+    progress : bool or None
+        Show progress bars (reading; toys); None (default): when a terminal or a Jupyter
+        notebook is watching (``tqdm.auto`` draws notebook widgets).
     share_folder : bool
         Write into an output folder that holds files peaksift did not write (they are never
         touched; a file of the same name as one of ours is refused).  Without it such a
@@ -75,6 +96,19 @@ def run_search(
     PeaksiftError
         Any user-facing problem (configuration, input, cut, fit); nothing is written then.
     """
+    from .._progress import progress_wanted
+
+    progress = progress_wanted(progress)  # None: a terminal or a notebook
+
+    from .combination import is_combination, run_combination
+
+    if is_combination(config):  # several channels: each its own search, then combined
+        if unblind:
+            raise ConfigError("--unblind does not apply to a combination (blinding is not "
+                              "supported there yet)")
+        return run_combination(config, out=out, toys=toys, seed=seed, engine=engine,
+                               progress=progress,
+                               share_folder=share_folder)  # type: ignore[return-value]
     started = _utc()
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
@@ -93,8 +127,14 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     from ..resonances import match_known, pair_charge
     from ..stats.scan import scan
 
+    clock = _Clock()
     ident = dedx_identification(cfg, progress=progress)
     col, _, _ = _collect(cfg, progress=progress, identification=ident)
+    info = dict(col.engine_info)
+    _log.info("read %s events from %d files in %s chunks: engine %s, %s workers",
+              f"{col.events_read:,}", len(col.files_read), info.get("chunks"),
+              info.get("engine"), info.get("workers"))
+    clock.lap("read and select")
     lo, hi = cfg.spectrum.window
     hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
     _require_candidates(cfg, col, hist)
@@ -118,12 +158,19 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         width = None
     seed = cfg.significance.seed
 
-    sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
-                natural_width=width, blind=blind_window, refit=False)
+    smodel = search_signal_model(cfg, progress=progress)
+    if smodel is None:
+        sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
+                    natural_width=width, blind=blind_window, refit=False)
+    else:  # shape, resolution and efficiency from the simulated samples
+        sres = scan(hist, None, bkg, masses, window=(lo, hi), blind=blind_window,
+                    refit=False, signal_model=smodel)
+    clock.lap("mass scan")
     best = dict(sres.global_significance(
         method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
         u0=cfg.significance.reference_level, progress=progress,
         executor=_toy_executor(cfg)))
+    clock.lap("global significance")
 
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
@@ -136,10 +183,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     fres = _note_tie_drift(fres, cfg, settings)
     bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
                 **settings.background_only(sig_fit, start)) if blind_window is None else None
-
-    limits = None
-    if cfg.limits.enabled:
-        limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress)
+    clock.lap("fits")
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -148,6 +192,28 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
                               resolution=float(sigma_fn(float(m_fit))),
                               charge=pair_charge(cfg.pairing.charge)))
     cal, cal_hist, cal_fit = _calibration(cfg, col)
+    clock.lap("calibration")
+
+    drawing = None
+    if stage is not None:  # the figures that need no limits are drawn while they compute
+        from .. import plotting
+
+        drawing = plotting.draw_in_background(
+            SearchResult(config=cfg, histogram=hist, collected=col, background_fit=bonly,
+                         fit=fres, scan=sres, best=best, limits=None, known_matches=known,
+                         calibration=cal, provenance={}, blinding=blind),
+            stage.path / "figures", formats=cfg.output.formats,
+            log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    limits = None
+    try:
+        if cfg.limits.enabled:
+            limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
+                             smodel)
+            clock.lap("limits")
+    except BaseException:
+        if drawing is not None:  # nothing may keep writing into the discarded staging
+            drawing.cancel()
+        raise
 
     inputs = [{"path": str(p), "sha256": _sha256(p)} for p in col.files_read]
     prov: dict[str, Any] = {
@@ -162,11 +228,13 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                "chunk_events")},
         "started": started,
         "finished": "",
+        "timings": clock.stages,
     }
     result = SearchResult(
         config=cfg, histogram=hist, collected=col, background_fit=bonly, fit=fres, scan=sres,
         best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
         blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
+        signal_model=smodel,
         identification=ident.to_dict() if ident is not None else None,
     )
     if stage is None:
@@ -177,12 +245,21 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     from ..report import write_report, write_results_json
 
     figdir = stage.path / "figures"
-    figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
-                                   log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    lim_fig = ({"limits": plotting.limits_figure(result, figdir, cfg.output.formats)}
+               if limits is not None else {})
+    if smodel is not None:
+        lim_fig.update(zip(("signal_model_parameters", "signal_model_shapes"),
+                           smodel.plot(figdir)))
     if ident is not None:
-        figs["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
-                                            hypotheses=tuple(cfg.pairing.hypotheses),
-                                            band=cfg.identification.band)
+        lim_fig["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
+                                               hypotheses=tuple(cfg.pairing.hypotheses),
+                                               band=cfg.identification.band)
+    drawn = {**(drawing.join() if drawing is not None else {}), **lim_fig}
+    order = ("spectrum", "spectrum_log", "pvalue_scan", "limits", "candidates", "calibration",
+             "dedx")
+    figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
+                                                           order.index(k) if k in order else 0))}
+    clock.lap("figures (rest)")
     _save_spectrum(hist, stage.path / "spectrum.json", blind)
     prov["finished"] = _utc()
     final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
@@ -190,6 +267,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     d = result.to_dict()
     write_results_json(d, stage.path / "results.json")
     write_report(d, stage.path, figs)
+    clock.lap("report")
     return result
 
 
@@ -217,7 +295,7 @@ def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
 
 
 def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
-            width: float | None, blind: Any, progress: bool) -> Any:
+            width: float | None, blind: Any, progress: bool, smodel: Any = None) -> Any:
     from ..stats.limits import upper_limits
 
     n = min(cfg.limits.points, masses.size)
@@ -230,15 +308,20 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
                 f"{_where(cfg)}: limits.toy_masses[{i}] = {m:g} lies outside the limit scan "
                 f"[{lm[0]:g}, {lm[-1]:g}] GeV (the scan keeps 3 resolution sigma inside the "
                 "window unless scan.start / scan.stop say otherwise); choose masses inside it")
+    if smodel is not None:  # the model gives shape, resolution and efficiency
+        sig, width = None, None
     return upper_limits(
-        hist, sig, bkg, lm, resolution=cfg.model.resolution.resolution,
+        hist, sig, bkg, lm,
+        **({"signal_model": smodel} if smodel is not None
+           else {"resolution": cfg.model.resolution.resolution}),
         window=cfg.spectrum.window, cl=L.cl,
         method=L.method,
         **_opt(toys=L.toys if L.method != "asymptotic" else None, seed=cfg.significance.seed,
                toy_masses=list(L.toy_masses) or None,
                natural_width=width, blind=blind, luminosity=L.luminosity,
                luminosity_uncertainty=L.luminosity_uncertainty or None,
-               efficiency=L.efficiency if L.luminosity is not None else None,
+               efficiency=L.efficiency if L.luminosity is not None and smodel is None
+               else None,
                efficiency_uncertainty=L.efficiency_uncertainty or None,
                unit=L.cross_section_unit if L.luminosity is not None else None),
         constraint=L.constraint, progress=progress,

@@ -19,7 +19,7 @@ def run_spectrum(
     *,
     out: str | os.PathLike[str] | bool | None = None,
     engine: str | None = None,
-    progress: bool = False,
+    progress: bool | None = None,
     share_folder: bool = False,
 ) -> SpectrumResult:
     """Only the selected spectrum: ``spectrum.json`` (MassHistogram format) and its figure.
@@ -29,6 +29,9 @@ def run_spectrum(
     figure, and the candidates' pT/rapidity figure is not written (it includes them).
     ``share_folder`` as for :func:`~peaksift.search.run_search`.
     """
+    from .._progress import progress_wanted
+
+    progress = progress_wanted(progress)  # None: a terminal or a notebook
     cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
@@ -44,16 +47,18 @@ def run_spectrum(
         if stage is not None:
             from .. import plotting
 
+            labels = plotting.figure_labels(cfg)
             _save_spectrum(hist, stage.path / "spectrum.json", blinding)
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)
                 figs = plotting.spectrum_only(hist, stage.path / "figures",
                                               formats=cfg.output.formats,
                                               log_scale=cfg.output.log_scale, blind=blind,
-                                              title=_short_title(cfg))
+                                              title=_short_title(cfg), labels=labels)
                 if blind is None:  # pT/rapidity include the blinded window: withheld
                     figs.update(plotting.candidates(col, stage.path / "figures",
-                                                    formats=cfg.output.formats))
+                                                    formats=cfg.output.formats,
+                                                    labels=labels))
             files = {"spectrum.json": target / "spectrum.json",
                      **{k: target / "figures" / Path(v).name for k, v in figs.items()}}
     return SpectrumResult(config=cfg, histogram=hist, collected=col, outdir=target, files=files)

@@ -216,6 +216,10 @@ class LimitResult(FrozenValue):
         Masses with an observed limit or band edge below the counting floor.
     flags : tuple of str
         Per mass, why it is flagged ("" when it is not).
+    assumptions : mapping
+        With a luminosity: ``luminosity``, ``luminosity_uncertainty``, ``efficiency``
+        (None when it depends on mass: then ``efficiency_range``),
+        ``efficiency_uncertainty`` (relative) and the ``constraint`` kind; empty otherwise.
     """
 
     masses: np.ndarray
@@ -243,13 +247,78 @@ class LimitResult(FrozenValue):
     asymptotic_doubtful: np.ndarray | None = None
     below_floor: np.ndarray | None = None
     flags: tuple[str, ...] = ()
+    assumptions: Any = field(default_factory=dict)
+
+    @property
+    def mass(self) -> np.ndarray:
+        """The mass hypotheses under their results.json name (the same array as ``masses``)."""
+        return self.masses
+
+    def _summary(self) -> list[tuple[str, str]]:
+        obs = np.where(self.blinded, np.nan, self.observed)
+        out = [("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
+                          f"{self.mass_unit}")),
+               ("limit", f"{self.cl:.0%} CL CLs ({self.method}) on "
+                         + ("the signal yield" if self.unit == "events" else
+                            f"sigma x B [{self.unit}]"))]
+        if np.any(np.isfinite(obs)):
+            j = int(np.nanargmax(obs / self.expected))
+            out.append(("observed", (f"{np.nanmin(obs):.3g}-{np.nanmax(obs):.3g} {self.unit}; "
+                                    f"furthest above expected at {self.masses[j]:.2f} "
+                                    f"{self.mass_unit}: {obs[j]:.3g} vs {self.expected[j]:.3g}")))
+        out.append(("expected", (f"{np.nanmin(self.expected):.3g}-"
+                                f"{np.nanmax(self.expected):.3g} {self.unit}")))
+        flagged = sum(1 for f in self.flags if f)
+        if flagged:
+            out.append(("flagged", f"{flagged} masses (see flags)"))
+        return out
 
     def __repr__(self) -> str:
-        i = int(np.nanargmin(self.expected))
-        flagged = sum(1 for f in self.flags if f)
-        return (f"LimitResult({self.masses.size} masses, {self.cl:.0%} CL {self.method}, "
-                f"best expected {self.expected[i]:.3g} {self.unit} at {self.masses[i]:g} "
-                f"{self.mass_unit}" + (f", {flagged} flagged" if flagged else "") + ")")
+        return "LimitResult(" + "; ".join(f"{k} {v}" for k, v in self._summary()) + ")"
+
+    def _repr_html_(self) -> str:
+        import html
+
+        rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
+                       for k, v in self._summary())
+        return f"<div><b>LimitResult</b><table>{rows}</table></div>"
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> LimitResult:
+        """The LimitResult that :meth:`to_dict` wrote (or a results.json ``limits``)."""
+        def arr(key: str, default: Any = None) -> np.ndarray | None:
+            v = d.get(key, default)
+            if v is None:
+                return None
+            return np.array([np.nan if x is None else x for x in v], float)
+
+        try:
+            masses = arr("mass")
+            blind = d.get("blind")
+            return cls(
+                masses=masses, observed=arr("observed"), expected=arr("expected"),
+                expected_minus2=arr("expected_minus2"), expected_minus1=arr("expected_minus1"),
+                expected_plus1=arr("expected_plus1"), expected_plus2=arr("expected_plus2"),
+                unit=str(d["unit"]), cl=float(d["cl"]), method=str(d["method"]),
+                methods=tuple(d.get("methods") or ()),
+                blind=None if blind is None else (float(blind[0]), float(blind[1])),
+                blinded=np.array(d.get("blinded") or [False] * masses.size, bool),
+                conversion=arr("conversion"), constraint=d.get("constraint"),
+                relative_uncertainty=float(d.get("relative_uncertainty") or 0.0),
+                toys=dict(d.get("toys") or {}), notes=tuple(d.get("notes") or ()),
+                mass_unit=str(d.get("mass_unit", "GeV")),
+                background_under_signal=arr("background_under_signal"),
+                counting_floor=arr("counting_floor"),
+                low_count_background=float(d.get("low_count_background",
+                                                 LOW_COUNT_BACKGROUND)),
+                asymptotic_doubtful=None if d.get("asymptotic_doubtful") is None else
+                np.array(d["asymptotic_doubtful"], bool),
+                below_floor=None if d.get("below_floor") is None else
+                np.array(d["below_floor"], bool),
+                flags=tuple(d.get("flags") or ()), assumptions=dict(d.get("assumptions") or {}))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FitError(f"not a limit result written by LimitResult.to_dict: {exc!r}") \
+                from None
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: the search's ``limits`` keys (``mass``, ``observed``, ``expected``,
@@ -273,21 +342,29 @@ class LimitResult(FrozenValue):
             "low_count_background": self.low_count_background,
             "asymptotic_doubtful": self.asymptotic_doubtful,
             "below_floor": self.below_floor, "flags": list(self.flags),
+            "assumptions": dict(self.assumptions), "mass_unit": self.mass_unit,
         })
 
-    def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None,
-             log: bool = True) -> Any:
-        """Observed and expected limits with the +-1 and +-2 sigma bands; returns the Figure."""
-        from .._style import COLORS, figure_style, use_headless_backend
+    def plot(self, path: Any = None, *, ax: Any = None, fig: Any = None,
+             title: str | None = None, log: bool = True, run: Any = None,
+             symbol: str | None = None, assumptions: str = "") -> Any:
+        """Observed and expected limits with the +-1 and +-2 sigma bands.
 
-        use_headless_backend()
-        import matplotlib.pyplot as plt
+        ``assumptions``: what the conversion to the limit's unit took (luminosity,
+        efficiency, their uncertainties), written above the axes under the run label
+        ``run`` (a :class:`peaksift._style.RunLabel`); ``symbol``: the mass symbol
+        (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on a new Figure (made
+        without pyplot) otherwise; saves to ``path``; returns the Figure.
+        """
+        from .._style import COLORS, draw_header, figure_style, new_figure, shade_blinded
 
         with figure_style():
             if ax is None:
-                fig, ax = plt.subplots(figsize=(7.0, 4.6))
-            else:
-                fig = ax.figure
+                if fig is None:
+                    fig, ax = new_figure((7.0, 4.6))
+                else:
+                    ax = fig.subplots()
+            fig = ax.figure
             m = self.masses
             ax.fill_between(m, self.expected_minus2, self.expected_plus2, color=COLORS["band2"],
                             lw=0, label=r"expected $\pm 2\sigma$")
@@ -298,29 +375,44 @@ class LimitResult(FrozenValue):
             if np.any(np.isfinite(obs)):
                 ax.plot(m, obs, color=COLORS["observed"], marker="o", ms=2.5, lw=1.4,
                         label="observed")
-            if self.blind is not None:
-                ax.axvspan(self.blind[0], self.blind[1], color=COLORS["blind"], alpha=0.45,
-                           zorder=3, lw=0, label="blinded (expected only)")
+            shade_blinded(ax, self.blind, label="blinded (expected only)")
             top = float(np.nanmax(np.r_[self.expected_plus2, obs]))
             bottom = float(np.nanmin(np.r_[self.expected_minus2, obs]))
             if log:
                 ax.set_yscale("log")
-                ax.set_ylim(bottom / 1.5, top * 4.0)
+                ax.set_ylim(bottom / 1.25, top * 2.2)  # room for the legend above the bands
             else:
-                ax.set_ylim(0.0, top * 1.45)
+                ax.set_ylim(0.0, top * 1.35)
             ax.set_xlim(m[0], m[-1])
-            ax.set_xlabel(f"mass [{self.mass_unit}]")
+            ax.set_xlabel(f"${symbol or 'm'}$ [{self.mass_unit}]")
             what = ("signal yield [events]" if self.unit == "events"
                     else rf"$\sigma \times B$ [{self.unit}]")
             ax.set_ylabel(f"{self.cl:.0%} CL upper limit on {what}")
             ax.legend(loc="upper right", ncol=2)
-            ax.text(0.01, 1.015, f"CLs, {self.method}", transform=ax.transAxes, fontsize=9,
-                    va="bottom")
-            if title:
-                ax.set_title(title)
+            assumptions = assumptions or assumptions_text(self.assumptions)
+            note = f"CLs ({self.method})" + (f";  {assumptions}" if assumptions else "")
+            draw_header(ax, run, (title + "\n" + note) if title else note)
             if path is not None:
                 fig.savefig(path)
         return fig
+
+
+def assumptions_text(a: Mapping[str, Any]) -> str:
+    """``L = 10 fb⁻¹ ± 2%,  ε = 0.55 ± 5%`` (mathtext) from :attr:`LimitResult.assumptions`."""
+    from .._format import number
+
+    if not a or a.get("luminosity") is None:
+        return ""
+    lu, eu = a.get("luminosity_uncertainty") or 0.0, a.get("efficiency_uncertainty") or 0.0
+    eff = a.get("efficiency")
+    if eff is None and a.get("efficiency_range"):
+        lo, hi = a["efficiency_range"]
+        eff_txt = f"{number(lo, 3)}-{number(hi, 3)}"
+    else:
+        eff_txt = number(eff, 3)
+    return (f"L = {number(a['luminosity'], 4)} fb$^{{-1}}$"
+            + (f" $\\pm$ {number(100 * lu, 3)}%" if lu else "")
+            + f",  $\\varepsilon$ = {eff_txt}" + (f" $\\pm$ {number(100 * eu, 3)}%" if eu else ""))
 
 
 # ------------------------------------------------------------- upper limits
@@ -344,7 +436,7 @@ def upper_limits(
     seed: int = 0,
     luminosity: float | None = None,
     luminosity_uncertainty: float = 0.0,
-    efficiency: Any = 1.0,
+    efficiency: Any = None,
     efficiency_uncertainty: float = 0.0,
     constraint: str = "lognormal",
     unit: str = "fb",
@@ -352,6 +444,7 @@ def upper_limits(
     progress: bool | None = None,
     executor: Callable[[Callable[[Any], Any], list[Any]], Sequence[Any]] | None = None,
     low_count_background: float = LOW_COUNT_BACKGROUND,
+    signal_model: Any = None,
 ) -> LimitResult:
     r"""CLs upper limits on the signal at each mass hypothesis.
 
@@ -382,7 +475,12 @@ def upper_limits(
         Integrated luminosity (e.g. fb^-1); limits are then on sigma x B in ``unit``
         (``fb`` for fb^-1).  Without it the limits are on the signal yield in events.
     efficiency : float or callable
-        Signal efficiency x acceptance, constant or a function of mass.
+        Signal efficiency x acceptance, constant or a function of mass (default 1, or the
+        signal model's interpolated efficiency).
+    signal_model : SignalModel, optional
+        Shape, resolution and efficiency as functions of mass from simulated samples (as in
+        :func:`peaksift.scan`); with ``luminosity`` the limits are on sigma x B with its
+        interpolated efficiency.
     luminosity_uncertainty, efficiency_uncertainty : float
         Relative uncertainties, constrained nuisance parameters (see the module guide).
     constraint : "lognormal" or "gaussian"
@@ -418,12 +516,18 @@ def upper_limits(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window, natural_width=natural_width, blind=blind, signal_params=signal_params,
-        bins=bins)
+        bins=bins, signal_model=signal_model)
+    if signal_model is not None and efficiency is not None:
+        raise FitError("give the efficiency either through signal_model= or efficiency=, "
+                       "not both")
+    if efficiency is None:
+        efficiency = 1.0 if signal_model is None else signal_model.efficiency
     m_all = info["masses"]
     bl = info["blinded_mass"]
     nm = m_all.size
     alpha = 1.0 - cl
     # conversion: events per unit of the parameter of interest (effective-count scale)
+    eff_values = None
     if luminosity is None:
         if luminosity_uncertainty or efficiency_uncertainty:
             raise FitError("luminosity/efficiency uncertainties need luminosity=...")
@@ -435,6 +539,7 @@ def upper_limits(
             raise FitError(f"luminosity must be > 0, got {luminosity!r}")
         eff = (np.asarray(efficiency(m_all), float) if callable(efficiency)
                else np.full(nm, float(efficiency)))
+        eff_values = eff
         if np.any(~np.isfinite(eff) | (eff <= 0)):
             raise FitError("signal efficiency must be > 0 at every scan mass")
         conv = float(luminosity) * eff
@@ -522,7 +627,25 @@ def upper_limits(
         conversion=conv, constraint=kind, relative_uncertainty=delta, toys=toy_info,
         notes=tuple(notes), mass_unit=spec.unit, background_under_signal=b_under,
         counting_floor=floor, low_count_background=low_count_background,
-        asymptotic_doubtful=doubtful, below_floor=below, flags=tuple(flags))
+        asymptotic_doubtful=doubtful, below_floor=below, flags=tuple(flags),
+        assumptions=_assumptions(luminosity, luminosity_uncertainty, efficiency,
+                                 efficiency_uncertainty, eff_values, kind))
+
+
+def _assumptions(luminosity: float | None, lumi_unc: float, efficiency: Any, eff_unc: float,
+                 eff_values: np.ndarray | None, kind: str | None) -> dict[str, Any]:
+    """What the conversion from signal events to the limit's unit assumed, for the figure,
+    the report and results.json (relative uncertainties)."""
+    if luminosity is None:
+        return {}
+    eff: Any = float(efficiency) if not callable(efficiency) else None
+    out: dict[str, Any] = {"luminosity": float(luminosity),
+                           "luminosity_uncertainty": float(lumi_unc),
+                           "efficiency": eff, "efficiency_uncertainty": float(eff_unc),
+                           "constraint": kind}
+    if eff is None and eff_values is not None and eff_values.size:
+        out["efficiency_range"] = [float(np.min(eff_values)), float(np.max(eff_values))]
+    return out
 
 
 def _toy_limits(want: list[float], m_all: np.ndarray, bl: np.ndarray, model: ScanModel,

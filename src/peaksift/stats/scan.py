@@ -126,7 +126,9 @@ def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
                  else np.full(masses.shape, float(natural_width)))
     out: list[Any] = []
     for p in shape.parameters_for(window):
-        if p.name == "mass":
+        if callable(given.get(p.name)):  # a function of the hypothesised mass (signal model)
+            out.append(np.asarray(given[p.name](masses), float)[:, None])
+        elif p.name == "mass":
             out.append(masses[:, None])
         elif p.name == "sigma":
             out.append(sigma[:, None])
@@ -140,6 +142,31 @@ def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
         else:
             out.append(float(p.start))
     return out
+
+
+def from_signal_model(signal_model: Any, signal: Any, resolution: Any, relative: Any,
+                      absolute: Any, signal_params: Any) -> tuple[Any, Any, dict[str, Any]]:
+    """The signal shape, resolution and shape parameters (functions of the hypothesised
+    mass) a :class:`~peaksift.stats.signal_model.SignalModel` provides; refuses a second
+    source for any of them."""
+    from .signal_model import SignalModel
+
+    if not isinstance(signal_model, SignalModel):
+        raise FitError(f"signal_model must be a peaksift SignalModel (from signal_model() or "
+                       f"SignalModel.from_dict), got {type(signal_model).__name__}")
+    if any(v is not None for v in (resolution, relative, absolute)):
+        raise FitError("give the resolution either through signal_model= or through "
+                       "resolution=/relative_resolution=/absolute_resolution=, not both")
+    if signal_params:
+        raise FitError("signal_params= cannot be combined with signal_model= (the model "
+                       "gives every shape parameter as a function of mass)")
+    if signal is not None:
+        from .. import shapes
+
+        if shapes.get(signal).name != signal_model.shape:
+            raise FitError(f"signal shape {shapes.get(signal).name!r} differs from the signal "
+                           f"model's {signal_model.shape!r}; pass signal=None")
+    return signal_model.shape, signal_model.resolution, signal_model.shape_functions()
 
 
 def _background_start(background: Any, window: tuple[float, float]) -> tuple[np.ndarray,
@@ -251,10 +278,15 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    resolution: Any = None, relative_resolution: Any = None,
                    absolute_resolution: Any = None, window: Any, natural_width: Any,
                    blind: Any, signal_params: Any, bins: Any,
-                   background_start: Mapping[str, float] | None = None
+                   background_start: Mapping[str, float] | None = None,
+                   signal_model: Any = None,
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
 
+    if signal_model is not None:
+        signal, resolution, signal_params = from_signal_model(
+            signal_model, signal, resolution, relative_resolution, absolute_resolution,
+            signal_params)
     sig = shapes.get(signal)
     bkg = shapes.get(background)
     if sig.kind != "signal":
@@ -332,6 +364,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                       fractions=fractions[~blinded_mass], nll_background=float(nll0[0]),
                       bin_scale=spec.bin_scale)
     info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
+            "signal_params": signal_params,
             "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
             "blinded_bins": blinded}
     return model, spec, info
@@ -389,6 +422,11 @@ class ScanResult(FrozenValue):
     unit: str = "GeV"
     model: ScanModel | None = field(default=None, compare=False)
 
+    @property
+    def mass(self) -> np.ndarray:
+        """The mass hypotheses under their results.json name (the same array as ``masses``)."""
+        return self.masses
+
     # --------------------------------------------------------------- summary
     @property
     def best(self) -> dict[str, float]:
@@ -416,9 +454,61 @@ class ScanResult(FrozenValue):
             "best": self.best, "window": list(self.window), "signal_shape": self.signal_shape,
             "background_shape": self.background_shape, "weight_scale": self.weight_scale,
             "unit": self.unit, "notes": list(self.notes),
+            "converged": [bool(v) for v in self.converged], "best_index": int(self.best_index),
             "refit": None if self.refit is None else self.refit.to_dict(),
         }
         return plain(d)
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> ScanResult:
+        """The ScanResult that :meth:`to_dict` wrote (or a results.json ``scan``), without
+        the model: no toys or expected curves from it, everything else as it was."""
+        from ..fitting.result import FitResult
+
+        def arr(key: str) -> np.ndarray:
+            return np.array([np.nan if v is None else v for v in d[key]], float)
+
+        try:
+            masses = arr("mass")
+            blinded = np.array(d.get("blinded") or [False] * masses.size, bool)
+            q0 = arr("q0")
+            best = d.get("best_index")
+            if best is None:
+                best = int(np.nanargmax(np.where(blinded, -np.inf, np.nan_to_num(q0, nan=-1))))
+            blind = d.get("blind")
+            ze = d.get("z_expected")
+            return cls(
+                masses=masses, sigma=arr("sigma"), q0=q0, z_local=arr("z_local"),
+                p_local=arr("p_local"), signal_yield=arr("signal_yield"),
+                signal_yield_error=arr("signal_yield_error"),
+                background_yield=arr("background_yield"),
+                converged=np.array(d.get("converged") or [True] * masses.size, bool),
+                best_index=int(best), best_mass=float(masses[int(best)]),
+                refit=None if not d.get("refit") else FitResult.from_dict(d["refit"]),
+                window=tuple(float(v) for v in d["window"]),
+                blind=None if blind is None else (float(blind[0]), float(blind[1])),
+                blinded=blinded, signal_shape=str(d["signal_shape"]),
+                background_shape=str(d["background_shape"]),
+                weight_scale=float(d.get("weight_scale") or 1.0),
+                z_expected=None if ze is None else arr("z_expected"),
+                notes=tuple(d.get("notes") or ()), unit=str(d.get("unit", "GeV")))
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise FitError(f"not a scan result written by ScanResult.to_dict: {exc!r}") from None
+
+    def _repr_html_(self) -> str:
+        import html
+
+        b = self.best
+        rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>" for k, v in (
+            ("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
+                       f"{self.unit}")),
+            ("model", f"{self.signal_shape} + {self.background_shape}"),
+            ("best mass", f"{b['mass']:.2f} {self.unit}"),
+            ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
+            ("blinded", "no" if self.blind is None else
+             f"{self.blind[0]:g}-{self.blind[1]:g} {self.unit}")))
+        return (f"<div><b>ScanResult</b> (a local significance is not a discovery; see "
+                f"global_significance)<table>{rows}</table></div>")
 
     # ------------------------------------------------------ look-elsewhere
     def toy_scans(self, toys: int, *, seed: int = 0, workers: int | None = None,
@@ -493,62 +583,109 @@ class ScanResult(FrozenValue):
         out.update(res)
         return plain(out)
 
+    def expected_z(self, signal_yield: float) -> np.ndarray:
+        """Median expected local significance of a signal of ``signal_yield`` events at every
+        mass hypothesis (Asimov data: the background-only fit plus that signal; Cowan et al.,
+        EPJC 71 (2011) 1554, sec. 3.1), in the bins the scan used.  NaN where blinded.
+        Needs the scan's model (not kept by :meth:`from_dict`)."""
+        if self.model is None:
+            raise FitError("this ScanResult carries no model (rebuilt from a dict?); rerun "
+                           "scan with expected_signal= instead")
+        m = self.model
+        out = np.full(self.masses.size, np.nan)
+        if m.masses.size == 0:
+            return out
+        s = np.full(m.masses.size, float(signal_yield))
+        asimov = np.broadcast_to(m.expected_background, m.fractions.shape) + \
+            s[:, None] * m.fractions
+        th = np.repeat(m.theta[None, :], m.masses.size, axis=0)
+        _, _, nll0 = fit_background(m, asimov, th)
+        r = profile_signal(m, asimov, m.fractions, s_start=s, theta_start=th,
+                           b_start=np.full(m.masses.size, m.bkg_yield))
+        q = np.where(r["s"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
+        out[~self.blinded] = np.sqrt(q)
+        return out
+
     # ------------------------------------------------------------------ plot
-    def plot(self, path: Any = None, *, ax: Any = None, title: str | None = None,
-             global_result: Mapping[str, Any] | None = None) -> Any:
-        """Local p-value against mass (log scale) with 1-5 sigma reference lines.
+    def plot(self, path: Any = None, *, ax: Any = None, fig: Any = None,
+             title: str | None = None, global_result: Mapping[str, Any] | None = None,
+             run: Any = None, symbol: str | None = None,
+             expected: tuple[np.ndarray, str] | None = None) -> Any:
+        """Local p-value against mass (log scale) with the whole-sigma levels (1 to 5) that
+        fall in the axis range and the best hypothesis marked.
 
-        Blinded hypotheses are not drawn (the range is shaded); the expected significance
-        (if computed) is drawn dashed.  ``global_result`` (from :meth:`global_significance`)
-        is noted on the figure.  Saves to ``path`` when given; returns the Figure.
+        Blinded hypotheses are not drawn (the range is hatched).  The expected p-value is
+        drawn dashed: ``expected = (z_expected, label)`` when given, else the scan's own
+        ``z_expected``.  ``global_result`` (from :meth:`global_significance`) is noted above
+        the axes; ``run`` (a :class:`peaksift._style.RunLabel`) labels the run; ``symbol``
+        is the mass symbol (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on
+        a new Figure (made without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
-        from .._style import COLORS, figure_style, use_headless_backend
-
-        use_headless_backend()
-        import matplotlib.pyplot as plt
+        from .._format import fixed
+        from .._style import COLORS, draw_header, figure_style, new_figure, shade_blinded
 
         with figure_style():
             if ax is None:
-                fig, ax = plt.subplots(figsize=(7.0, 4.6))
-            else:
-                fig = ax.figure
+                if fig is None:
+                    fig, ax = new_figure((7.0, 4.6))
+                else:
+                    ax = fig.subplots()
+            fig = ax.figure
             m = self.masses
             p = np.where(self.blinded, np.nan, np.maximum(self.p_local, 1e-300))
-            ax.plot(m, p, color=COLORS["observed"], label="observed local $p$-value")
-            pmin = np.nanmin(p) if np.any(np.isfinite(p)) else 0.1
-            if self.z_expected is not None:
-                pe = np.maximum(p_from_q0(self.z_expected**2), 1e-300)
-                ax.plot(m, pe, ls="--", color=COLORS["expected"],
-                        label="expected for the signal hypothesis")
-                pmin = min(pmin, float(np.min(pe)))
-            lowest = max(min(pmin, p_from_q0(9.0)) * 0.3, p_from_q0(64.0))
+            ax.plot(m, p, color=COLORS["observed"], label="observed")
+            pmin = float(np.nanmin(p)) if np.any(np.isfinite(p)) else 0.1
+            if expected is None and self.z_expected is not None:
+                expected = (self.z_expected, "expected for the signal hypothesis")
+            if expected is not None:
+                ze = np.asarray(expected[0], float)
+                pe = np.maximum(p_from_q0(np.nan_to_num(ze) ** 2), 1e-300)
+                pe = np.where(np.isfinite(ze), pe, np.nan)
+                ax.plot(m, pe, ls="--", color=COLORS["expected"], label=expected[1])
+                if np.any(np.isfinite(pe)):  # a strong expected curve may leave the axis
+                    pmin = min(pmin, max(float(np.nanmin(pe)), float(p_from_q0(25.0))))
+            # the axis reaches the whole-sigma level just below the lowest curve point
+            z_low = min(max(math.ceil(_z_of_p(pmin) + 1e-9), 2), 8)
+            lowest = max(float(p_from_q0(float(z_low * z_low))) * 0.4, float(p_from_q0(64.0)))
             ax.set_yscale("log")
             ax.set_ylim(lowest, 1.0)
             ax.set_xlim(m[0], m[-1])
             for k in range(1, 6):
-                pk = p_from_q0(float(k * k))
+                pk = float(p_from_q0(float(k * k)))
                 if pk < lowest:
                     break
-                ax.axhline(pk, color=COLORS["accent"], lw=0.8, ls=":")
-                ax.text(m[-1], pk, f" {k}$\\sigma$", va="center", ha="left",
-                        color=COLORS["accent"], fontsize=9, clip_on=False)
-            if self.blind is not None:
-                ax.axvspan(self.blind[0], self.blind[1], color=COLORS["blind"], zorder=0,
-                           label="blinded", hatch="//", ec="#c9c9d2", lw=0)
-            ax.set_xlabel(f"mass hypothesis [{self.unit}]")
-            ax.set_ylabel("local $p$-value")
+                ax.axhline(pk, color=COLORS["accent"], lw=0.8, ls=":", zorder=1)
+                ax.text(1.0, pk, f" {k}$\\sigma$", va="center", ha="left",
+                        color=COLORS["accent"], fontsize=9, clip_on=False,
+                        transform=ax.get_yaxis_transform())
+            if np.any(np.isfinite(p)):
+                i = self.best_index
+                pb = max(float(p[i]), lowest)
+                ax.plot([m[i]], [pb], marker="o", ms=6, mfc="white", mec=COLORS["signal"],
+                        mew=1.5, ls="none", zorder=5,
+                        label=f"best: {fixed(m[i])} {self.unit}, $Z_{{local}}$ = "
+                              f"{fixed(self.z_local[i])}")
+            shade_blinded(ax, self.blind)
+            ax.set_xlabel(f"${symbol or 'm'}$ hypothesis [{self.unit}]")
+            ax.set_ylabel("local p-value")
+            note = title or ""
             if global_result is not None and global_result.get("z_global") is not None:
-                ax.text(0.0, 1.015, f"best {global_result['mass']:.4g} {self.unit}: "
-                        f"$Z_{{local}}$ = {global_result['z_local']:.2f}, "
-                        f"$Z_{{global}}$ = {global_result['z_global']:.2f} "
-                        f"({global_result['global_method']})",
-                        transform=ax.transAxes, fontsize=9, va="bottom")
+                note = (f"best {fixed(global_result['mass'])} {self.unit}:  "
+                        f"$Z_{{local}}$ = {fixed(global_result['z_local'])},  "
+                        f"$Z_{{global}}$ = {fixed(global_result['z_global'])} "
+                        f"({global_result['global_method']})")
             ax.legend(loc="lower left")
-            if title:
-                ax.set_title(title)
+            draw_header(ax, run, note)
             if path is not None:
                 fig.savefig(path)
         return fig
+
+
+def _z_of_p(p: float) -> float:
+    """Z of a one-sided p-value (1 - Phi(Z) = p), for the axis range."""
+    from scipy.special import ndtri
+
+    return float(-ndtri(min(max(p, 1e-300), 0.5)))
 
 
 # -------------------------------------------------------------------------- scan
@@ -568,6 +705,7 @@ def scan(
     expected_signal: Any = None,
     bins: int | None = None,
     refit: bool = True,
+    signal_model: Any = None,
 ) -> ScanResult:
     """Scan the local significance of a signal over mass hypotheses.
 
@@ -608,6 +746,10 @@ def scan(
         background-only fit plus this signal) is reported in ``z_expected`` at every mass.
     refit : bool
         Refit at the best mass with mass and width free (:func:`peaksift.fit`).
+    signal_model : SignalModel, optional
+        The signal shape, its parameters and the resolution as functions of the
+        hypothesised mass, from simulated samples (:func:`peaksift.stats.signal_model.signal_model`);
+        then ``signal`` is None (or the model's shape) and no resolution is given.
 
     Returns
     -------
@@ -622,7 +764,18 @@ def scan(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window,
-        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins)
+        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins,
+        signal_model=signal_model)
+    return scan_prepared(data, model, spec, info, blind=blind, expected_signal=expected_signal,
+                         natural_width=natural_width, refit=refit)
+
+
+def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, Any], *,
+                  blind: Any, expected_signal: Any, natural_width: Any,
+                  refit: bool) -> ScanResult:
+    """The scan of a model prepared by :func:`_prepare_model` (the channels of a
+    combination prepare theirs once and scan them here, as :func:`scan` does)."""
+    signal_params = info["signal_params"]
     m_all = info["masses"]
     bl = info["blinded_mass"]
     nm = m_all.size
@@ -706,7 +859,8 @@ def _refit(data: Any, info: dict[str, Any], spec: _Spectrum, best: int,
     for p in sig.parameters_for(spec.window):
         if p.name in ("mass", "sigma") or (p.name == "width" and natural_width is None):
             continue
-        fixed[p.name] = start.get(p.name, float((signal_params or {}).get(p.name, p.start)))
+        given = (signal_params or {}).get(p.name, p.start)
+        fixed[p.name] = start.get(p.name, float(given(m) if callable(given) else given))
     start = {k: v for k, v in start.items() if k not in fixed}
     try:
         return fit(data, sig, info["background"], spec.window, start=start, fixed=fixed)

@@ -46,7 +46,6 @@ from __future__ import annotations
 
 import functools
 import os
-import sys
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -650,9 +649,9 @@ def run_toy_batch(spec: ToyBatch) -> np.ndarray:
 
 
 def _progress_enabled(progress: bool | None) -> bool:
-    if progress is None:
-        return bool(getattr(sys.stderr, "isatty", lambda: False)())
-    return bool(progress)
+    from .._progress import progress_wanted
+
+    return progress_wanted(progress)  # None: a terminal or a notebook is watching
 
 
 def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | None = None,

@@ -1,0 +1,140 @@
+"""One convention across the result types: value ± error, names as in results.json,
+from_dict(to_dict()) gives the result back, short reprs and notebook HTML, plot() returns a
+matplotlib Figure and leaves the user's backend alone.
+
+The numbers themselves are checked elsewhere against outside references; here the surface:
+every check compares two independent routes (the Python attribute and the JSON entry, the
+result and its JSON round trip, the backend before and after).
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import peaksift
+from peaksift import FitResult, LimitResult, MassHistogram, ScanResult, SearchResult
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def search(small_demo):
+    """A quick search on the small demo set (few toys, few limit points, no calibration)."""
+    from peaksift.config import load_config
+
+    cfg = load_config(REPO / "demo_data" / "search.toml").with_overrides(
+        input__files=[str(p) for p in sorted(small_demo.glob("*.parquet"))],
+        significance__toys=20, limits__points=5, calibration__particle="",
+        calibration__window=None)
+    return peaksift.run_search(cfg, out=False, progress=False)
+
+
+def _json(d):
+    return json.loads(json.dumps(d))
+
+
+def test_value_and_error_read_the_same_in_python_and_json(search):
+    fit = search.fit
+    d = fit.to_dict()
+    for name in ("peak_mass", "width", "fwhm", "signal_yield", "background_yield"):
+        m = getattr(fit, name)
+        value, error = m  # every one unpacks as value, error ...
+        assert m.value == value and m.error == error and float(m) == value
+        assert d[name]["value"] == pytest.approx(value, rel=1e-12)  # ... under its JSON name
+        assert d[name]["error"] == pytest.approx(error, rel=1e-12)
+        assert " \u00b1 " in str(m)
+    assert fit.peak_mass.error == fit.peak_mass_error
+    assert fit.signal_yield.error == fit.errors["signal_yield"]
+
+
+@pytest.mark.parametrize("kind", ["fit", "scan", "limits"])
+def test_from_dict_gives_the_result_back(search, kind):
+    res = getattr(search, kind)
+    cls = {"fit": FitResult, "scan": ScanResult, "limits": LimitResult}[kind]
+    back = cls.from_dict(_json(res.to_dict()))
+    assert back == res
+    assert _json(back.to_dict()) == _json(res.to_dict())
+
+
+def test_search_result_from_results_json(search):
+    d = _json(search.to_dict())
+    back = SearchResult.from_dict(d)
+    again = _json(back.to_dict())
+    for key in ("fit", "background_only_fit", "scan", "best", "limits", "input", "blinding"):
+        assert again[key] == d[key], key
+    assert back.fit == search.fit and back.limits == search.limits
+
+
+@pytest.mark.parametrize("kind", ["fit", "scan", "limits", "search", "histogram"])
+def test_short_repr_and_notebook_html(search, kind):
+    obj = search if kind == "search" else getattr(search, kind)
+    text = repr(obj)
+    assert len(text) < 1200 and "config" not in text.lower().split("(")[0]
+    page = obj._repr_html_()
+    assert page.startswith("<div>") and "</table>" in page
+    if kind == "search":
+        assert "not a discovery" in text
+    if kind == "limits":
+        assert not text.startswith("LimitResult(best expected")
+
+
+def test_describe_repr_is_the_inspect_text(small_demo):
+    desc = peaksift.describe(small_demo)
+    assert repr(desc) == str(desc) and "collections:" in repr(desc)
+    assert desc._repr_html_().startswith("<pre>")
+
+
+_PLOTS = """
+import json, sys
+import matplotlib
+matplotlib.use("{backend}")
+before = matplotlib.get_backend()
+from matplotlib.figure import Figure
+from peaksift import FitResult, LimitResult, MassHistogram, ScanResult
+d = json.load(open(sys.argv[1]))
+figs = [FitResult.from_dict(d["fit"]).plot(), ScanResult.from_dict(d["scan"]).plot(),
+        LimitResult.from_dict(d["limits"]).plot(),
+        MassHistogram(bins=10, range=(0, 1)).fill([0.5]).plot()]
+print(json.dumps({{"figures": all(isinstance(f, Figure) for f in figs),
+                  "backend": matplotlib.get_backend() == before,
+                  "pyplot": "matplotlib.pyplot" in sys.modules}}))
+"""
+
+
+def test_plot_returns_a_figure_and_leaves_the_backend(search, tmp_path):
+    """In a fresh interpreter with an interactive-capable backend chosen by the user, every
+    plot() returns a Figure, the backend is unchanged and pyplot is never imported."""
+    res = tmp_path / "results.json"
+    res.write_text(json.dumps(_json(search.to_dict())))
+    code = _PLOTS.format(backend="svg")  # a backend other than Agg, set by the "user"
+    out = subprocess.run([sys.executable, "-c", code, str(res)], capture_output=True, check=False,
+                         text=True, cwd=REPO, env={"PYTHONPATH": str(REPO / "src"),
+                                                   "PATH": "/usr/bin:/bin"})
+    assert out.returncode == 0, out.stderr[-2000:]
+    got = json.loads(out.stdout.strip().splitlines()[-1])
+    assert got == {"figures": True, "backend": True, "pyplot": False}
+
+
+def test_window_snapping_is_reported():
+    h = MassHistogram(bins=90, range=(110.0, 200.0)).fill(
+        110 + np.random.default_rng(3).exponential(30.0, 3000))
+    fr = peaksift.fit(h, "gaussian", "exponential", window=(50.0, 300.0),
+                      start={"mass": 150.0, "sigma": 2.0})
+    assert fr.window == (110.0, 200.0)
+    assert any("snapped" in n and "110-200" in n for n in fr.notes)
+
+
+def test_arrays_under_their_json_names(search):
+    for res in (search.scan, search.limits):
+        d = res.to_dict()
+        assert np.array_equal(res.mass, np.array(d["mass"], float))
+        assert res.mass is res.masses
+    d = search.scan.to_dict()
+    assert np.array_equal(search.scan.signal_yield_error,
+                          np.array(d["signal_yield_error"], float))
