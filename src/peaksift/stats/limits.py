@@ -418,7 +418,7 @@ def upper_limits(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window, natural_width=natural_width, blind=blind, signal_params=signal_params,
-        bins=bins)
+        bins=bins, what="upper_limits")
     m_all = info["masses"]
     bl = info["blinded_mass"]
     nm = m_all.size

@@ -68,10 +68,7 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
     if isinstance(data, MassHistogram):
         hist = data if window is None else data.restrict(window)
     else:
-        if isinstance(data, tuple) and len(data) == 2:
-            x, w = (np.asarray(v, float).ravel() for v in data)
-        else:
-            x, w = np.asarray(data, float).ravel(), None
+        x, w = data  # as_spectrum's (masses, weights)
         if x.size == 0:
             raise FitError("scan: no masses given")
         if not np.all(np.isfinite(x)):
@@ -86,7 +83,7 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
         else:
             nb = int(bins)
         hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
-    weight_sum = np.asarray(hist.weight_sum, float)
+    weight_sum = np.asarray(hist.values(), float)
     edges = np.asarray(hist.edges, float)
     if not (np.all(np.isfinite(weight_sum)) and np.all(weight_sum >= 0)):
         raise FitError("scan: bin contents in the window must be finite and non-negative")
@@ -94,8 +91,8 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
         raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
     scale = 1.0
     bin_scale = None
-    if not np.allclose(weight_sum, hist.weight_sq_sum):
-        scale = float(weight_sum.sum() / hist.weight_sq_sum.sum())
+    if not np.allclose(weight_sum, hist.variances()):
+        scale = float(weight_sum.sum() / hist.variances().sum())
         bin_scale = hist.scaled_poisson_factors()
         warnings.warn(
             f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
@@ -249,9 +246,12 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    resolution: Any = None, relative_resolution: Any = None,
                    absolute_resolution: Any = None, window: Any, natural_width: Any,
                    blind: Any, signal_params: Any, bins: Any,
-                   background_start: Mapping[str, float] | None = None
+                   background_start: Mapping[str, float] | None = None, what: str = "scan"
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
+    from ..histogram import MassHistogram, as_spectrum
+
+    data = as_spectrum(data, what=what)  # a MassHistogram or (masses, weights); else FitError
 
     sig = shapes.get(signal)
     bkg = shapes.get(background)
@@ -271,8 +271,12 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
             return float(np.min(sigma_of(m_arr)))
         if window is not None:
             lo, hi = float(window[0]), float(window[1])
+        elif isinstance(data, MassHistogram):
+            lo, hi = data.lo, data.hi
         else:
-            x = np.asarray(data[0] if isinstance(data, tuple) else data, float)
+            x = data[0]
+            if x.size == 0:
+                raise FitError(f"{what}: no masses given")
             lo, hi = float(np.min(x)), float(np.max(x))
         pad = 0.05 * (hi - lo)  # the default grid's range
         return float(np.min(sigma_of(np.linspace(lo + pad, hi - pad, 50))))
@@ -564,7 +568,10 @@ def scan(
 
     Parameters
     ----------
-    data : MassHistogram, array of masses, or (masses, weights)
+    data : histogram, array of masses, or (masses, weights)
+        A MassHistogram, a histogram speaking the cross-library histogram protocol,
+        ``numpy.histogram``'s ``(counts, edges)``, masses in GeV or ``(masses, weights)``;
+        anything else is a FitError (:func:`peaksift.histogram.as_spectrum`).
         Arrays are histogrammed on the window (:meth:`MassHistogram.from_masses`, so a mass
         equal to the window's top is in the last bin) in bins of a quarter of the smallest
         resolution (50-2000 bins) unless ``bins`` is given; the scan of an array and of the

@@ -1,0 +1,10 @@
+"""Invariant-mass histograms: :class:`MassHistogram` (``_mass``), the edge rule and bin
+index (:mod:`~peaksift.histogram.binning`), and the cross-library histogram protocol both
+ways (``_protocol``: :class:`MassAxis`, and :func:`as_spectrum`, what a fit, scan or limit
+accepts as data)."""
+
+from ._mass import MassHistogram
+from ._protocol import MassAxis, as_spectrum
+from .binning import in_range
+
+__all__ = ["MassAxis", "MassHistogram", "as_spectrum", "in_range"]
