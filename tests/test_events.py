@@ -152,7 +152,7 @@ def test_no_file_matches(tmp_path):
         events.read_events(str(tmp_path / "*.parquet"))
     with pytest.raises(InputError, match="no file or directory '.*missing.parquet'"):
         events.read_events(tmp_path / "missing.parquet")
-    with pytest.raises(InputError, match="contains no .parquet file"):
+    with pytest.raises(InputError, match="contains no .parquet or .arrow/.feather file"):
         events.read_events(tmp_path)
 
 

@@ -729,16 +729,12 @@ def load_kernels() -> None:
 def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_cut: CutLike,
           event_cut: CutLike, charge: str | None, choose: str, target_mass: float | None,
           min_delta_r: float | None, event_offset: int) -> Candidates:
-    import awkward as ak
 
     mode, tm, dr = _check_options(choose, charge, target_mass, min_delta_r)
-    if not isinstance(events, ak.Array) or not events.fields:
-        raise InputError(
-            f"pair needs events as an awkward array of records (from peaksift.read_events), "
-            f"got {type(events).__name__}")
     if not isinstance(first, str):
         raise ConfigError(f"first must be a collection name, got {first!r}")
     same = second is None or second == first
+    events = _as_read_events(events, [first] if same else [first, str(second)])
     if same and not _is_no_cut(second_cut):
         raise ConfigError(
             "second_cut applies only when pairing two different collections; with one "
@@ -769,6 +765,53 @@ def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_c
     with _kernels_without_extensions():  # from here on only our own kernels and numpy
         return _pair_selected(events, ca, cb, same, sel_a, sa, ea, sel_b, sb, eb, qa, qb,
                               mode, choose, tm, dr, n_events, n_after, event_offset)
+
+
+def _plain_collection(events: Any, name: str) -> bool:
+    """True when ``events[name]`` has the reader's layout: a list of records whose pt, eta,
+    phi and mass are plain floating-point arrays (no option types, no vector conversion)."""
+    import awkward as ak
+
+    if name not in events.fields:
+        return True  # let _Collection name what is missing
+    lay = events[name].layout
+    if not isinstance(lay, (ak.contents.ListOffsetArray, ak.contents.ListArray)):
+        return False
+    rec = lay.content
+    if not isinstance(rec, ak.contents.RecordArray) or not all(
+            f in rec.fields for f in _KINEMATIC_FIELDS):
+        return False
+    return all(isinstance(rec.content(f), ak.contents.NumpyArray)
+               and rec.content(f).data.dtype.kind == "f" for f in _KINEMATIC_FIELDS)
+
+
+def _as_read_events(events: Any, names: list[str]) -> Any:
+    """Events as :func:`peaksift.read_events` gives them: an awkward array whose collections
+    are already plain is used as it is; other in-memory events (option types, other vector
+    coordinates, Arrow tables) go through :func:`peaksift.events.from_memory`."""
+    import awkward as ak
+    import pyarrow as pa
+
+    from .events import from_memory, is_in_memory
+
+    if isinstance(events, ak.Array) and events.fields and events.ndim == 1 and all(
+            _plain_collection(events, n) for n in names):
+        return events
+    if not is_in_memory(events) or (isinstance(events, ak.Array) and not events.fields):
+        raise InputError(
+            "pair needs events: an awkward array of event records (from peaksift.read_events, "
+            "ak.from_parquet, vector.zip, ...) or a pyarrow Table / RecordBatchReader; got "
+            f"{type(events).__name__}")
+    present = events.fields if isinstance(events, ak.Array) else (
+        events.schema.names if not isinstance(events, pa.RecordBatchReader) else None)
+    if present is not None:
+        for n in names:
+            if n not in present:
+                guess = closest(n, list(present))
+                hint = f"; did you mean {guess!r}?" if guess else ""
+                raise InputError(f"no collection {n!r} in the events; fields present: "
+                                 f"{', '.join(present) or '(none)'}{hint}")
+    return from_memory(events, names)
 
 
 def _pair_selected(events: Any, ca: _Collection, cb: _Collection, same: bool,

@@ -1,4 +1,5 @@
-"""Reading reconstructed events from Parquet files into awkward arrays.
+"""Reading reconstructed events from Parquet and Arrow IPC files (local or fsspec URLs) and
+from memory into awkward arrays.
 
 Which function to use
 ---------------------
@@ -8,6 +9,9 @@ Which function to use
 * :func:`plan_chunks` + :func:`read_chunk` -- picklable chunk descriptions that workers read
   themselves (this is what :mod:`peaksift.execution` uses); :func:`check_files` checks all
   files' schemas against the request once, up front, from the footers.
+* :func:`from_memory` -- events already in memory (an awkward array in any vector coordinate
+  system, a pyarrow Table or record-batch reader) as :func:`read_events` would return them;
+  :func:`read_events` and :func:`peaksift.pair` call it for such inputs.
 * :func:`describe` -- what a set of files holds (``peaksift inspect`` prints it).
 * :func:`list_files` -- resolve paths, globs, directories and lists to a sorted list of files.
 
@@ -50,6 +54,7 @@ import vector
 
 from .describe import Description, describe
 from .files import DEFAULT_CHUNK_EVENTS, list_files
+from .memory import from_memory, is_in_memory
 from .read import ChunkSpec, check_files, iter_events, plan_chunks, read_chunk, read_events
 
 vector.register_awkward()
@@ -60,6 +65,8 @@ __all__ = [
     "Description",
     "check_files",
     "describe",
+    "from_memory",
+    "is_in_memory",
     "iter_events",
     "list_files",
     "plan_chunks",

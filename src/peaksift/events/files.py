@@ -27,20 +27,25 @@ _KIN_OUT = ("pt", "eta", "phi", "mass")
 _RESERVED = {"x", "y", "z", "t", "rho", "theta", "tau", "px", "py", "pz", "E", "e", "energy",
              "M", "m", "mass", "pt", "eta", "phi"}
 _GLOB_CHARS = set("*?[")
+#: file name endings a directory is searched for
+EVENT_SUFFIXES = (".parquet", ".arrow", ".feather", ".ipc")
 
 
 # --------------------------------------------------------------------------- files
 
 
-def list_files(source: Source) -> list[Path]:
-    """Resolve ``source`` to a list of Parquet files.
+def list_files(source: Source) -> list[Path | str]:
+    """Resolve ``source`` to a list of event files (Parquet or Arrow IPC).
 
     Parameters
     ----------
     source : str, path or sequence of them
-        Each entry is a file, a directory (all ``*.parquet`` files below it, recursively) or a
-        glob (``"data/run_*.parquet"``, ``**`` allowed).  Matches of one entry are sorted; the
-        entries keep their order; duplicates are removed.
+        Each entry is a file, a directory (all ``*.parquet``, ``*.arrow``, ``*.feather`` and
+        ``*.ipc`` files below it, recursively) or a glob (``"data/run_*.parquet"``, ``**``
+        allowed); local, ``file://`` or any fsspec URL (``memory://``, ``s3://``, ...; the
+        file system's package must be installed).  Matches of one entry are sorted; the
+        entries keep their order; duplicates are removed.  Local files come back as
+        :class:`~pathlib.Path`, URLs as text.
 
     Raises
     ------
@@ -54,11 +59,14 @@ def list_files(source: Source) -> list[Path]:
         entries = list(source)
         if not entries:
             raise InputError("no input given: pass a Parquet file, a directory or a glob")
-    out: list[Path] = []
-    seen: set[Path] = set()
+    out: list[Path | str] = []
+    seen: set[Path | str] = set()
     for entry in entries:
         text = os.fspath(entry)
-        if _GLOB_CHARS & set(text):
+        text = text.removeprefix("file://")
+        if "://" in text:
+            found = _list_url(text)
+        elif _GLOB_CHARS & set(text):
             found = sorted(Path(p) for p in glob.glob(text, recursive=True) if Path(p).is_file())
             if not found:
                 raise InputError(
@@ -67,11 +75,13 @@ def list_files(source: Source) -> list[Path]:
         else:
             path = Path(text)
             if path.is_dir():
-                found = sorted(p for p in path.rglob("*.parquet") if p.is_file())
+                found = sorted(p for p in path.rglob("*") if p.suffix.lower() in
+                               EVENT_SUFFIXES and p.is_file())
                 if not found:
                     raise InputError(
-                        f"directory '{text}' contains no .parquet file; point to the directory "
-                        "that holds the event files or give the files themselves")
+                        f"directory '{text}' contains no .parquet or .arrow/.feather file; "
+                        "point to the directory that holds the event files or give the files "
+                        "themselves")
             elif path.is_file():
                 found = [path]
             else:
@@ -89,3 +99,32 @@ def list_files(source: Source) -> list[Path]:
                 seen.add(p)
                 out.append(p)
     return out
+
+
+def _list_url(url: str) -> list[Path | str]:
+    """Files an fsspec URL names: a file, a directory (searched like a local one) or a glob."""
+    try:
+        import fsspec
+
+        fs, path = fsspec.core.url_to_fs(url)
+    except (ImportError, ValueError) as exc:
+        raise InputError(f"cannot open the URL '{url}' ({exc}); install fsspec and the package "
+                         "of that file system, or copy the files locally") from None
+    try:
+        if _GLOB_CHARS & set(path):
+            found = [p for p in fs.glob(path) if fs.isfile(p)]
+        elif fs.isdir(path):
+            found = [p for p in fs.find(path) if p.lower().endswith(EVENT_SUFFIXES)]
+            if not found:
+                raise InputError(f"directory '{url}' contains no .parquet or .arrow/.feather "
+                                 "file; point to the directory that holds the event files")
+        elif fs.isfile(path):
+            found = [path]
+        else:
+            found = []
+    except OSError as exc:
+        raise InputError(f"cannot list '{url}' ({exc}); check the URL and the credentials of "
+                         "that file system") from None
+    if not found:
+        raise InputError(f"no file matches '{url}'; check the URL")
+    return [fs.unstrip_protocol(p) for p in sorted(found)]

@@ -10,6 +10,8 @@ import awkward as ak
 
 from ..errors import InputError
 from .files import _PIECE_EVENTS, DEFAULT_CHUNK_EVENTS, Source, list_files
+from .formats import is_url, local_path
+from .memory import ACCEPTED, from_memory, is_in_memory
 from .pieces import _build, _Collector, _object_capacity, _read_piece, _warn
 from .schema import _inspect, _plan_request
 
@@ -100,8 +102,8 @@ def read_chunk(
     masses: Mapping[str, float] | None = None,
 ) -> ak.Array:
     """Read one chunk planned by :func:`plan_chunks` (same options as :func:`read_events`)."""
-    path = Path(spec.path)
-    if not path.is_file():
+    path = local_path(spec.path)
+    if not is_url(path) and not Path(path).is_file():
         raise InputError(f"chunk file '{path}' no longer exists; plan the chunks again")
     info, sel = _plan_request([path], collections, fields)[0]
     if any(i >= len(info.row_groups) for i in spec.row_groups) or \
@@ -126,8 +128,12 @@ def read_events(
 
     Parameters
     ----------
-    source : str, path or sequence of them
-        Files, directories or globs (see :func:`list_files`); all are one data set.
+    source : str, path, sequence of them, or events in memory
+        Files, directories, globs or fsspec URLs of Parquet or Arrow IPC (Feather) files (see
+        :func:`list_files`); all are one data set.  Or events in memory: an awkward array of
+        records (any vector coordinate system, option types stripped with a warning), a
+        ``pyarrow.Table``, ``RecordBatch`` or ``RecordBatchReader``
+        (:func:`~peaksift.events.from_memory`).
     collections : str or sequence of str, optional
         Object collections to read (default: every collection with kinematics, plus all other
         columns).  When given, only those collections and the per-event columns are read.
@@ -154,6 +160,10 @@ def read_events(
         requested field is absent; kinematics are not numbers; files disagree on what is read;
         bad objects with ``strict=True``.  All schema checks happen before any data are read.
     """
+    if is_in_memory(source):
+        return from_memory(source, collections, fields=fields, strict=strict, masses=masses)
+    if isinstance(source, (int, float, dict)) or source is None:
+        raise InputError(f"cannot read events from {type(source).__name__}; give {ACCEPTED}")
     files = list_files(source)
     plans = _plan_request(files, collections, fields)
     out = _Collector(sum(info.n_events for info, _ in plans), _object_capacity(plans))
@@ -184,12 +194,12 @@ def iter_events(
     :class:`~peaksift.errors.DataWarning` is issued per chunk that had bad objects.
     """
     specs = plan_chunks(source, chunk_events=chunk_events)
-    files = list(dict.fromkeys(Path(s.path) for s in specs))
+    files = list(dict.fromkeys(local_path(s.path) for s in specs))
     plans = {info.path: (info, sel) for info, sel in _plan_request(files, collections, fields)}
 
     def _gen() -> Iterator[ak.Array]:
         for s in specs:
-            info, sel = plans[Path(s.path)]
+            info, sel = plans[local_path(s.path)]
             piece = _read_piece(info, sel, s.row_groups, s.first_event, masses or {}, strict)
             _warn([piece], [info.path])
             yield _build([piece])

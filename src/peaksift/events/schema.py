@@ -9,10 +9,11 @@ from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..errors import InputError, closest
 from .files import _CART, _ENERGY_NAMES, _KIN_OUT, _MASS_NAMES, _MAX_OPEN_FILES, _POLAR
+from .formats import leaf_paths as _leaves
+from .formats import open_source, row_group_sizes, source_size
 
 # --------------------------------------------------------------------------- schema
 
@@ -31,7 +32,7 @@ class _Coll:
 
 @dataclass(frozen=True)
 class _FileInfo:
-    path: Path
+    path: Path | str
     n_events: int
     row_groups: tuple[int, ...]      # events per row group
     size: int
@@ -39,7 +40,7 @@ class _FileInfo:
     others: dict[str, _Coll]         # jagged columns / groups without kinematics
     scalars: dict[str, pa.DataType]  # per-event columns
     scalar_paths: dict[str, list[str]]
-    handle: pq.ParquetFile | None = field(default=None, compare=False, repr=False)
+    handle: Any = field(default=None, compare=False, repr=False)
     leaf_index: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
 
 
@@ -68,24 +69,18 @@ def _coords_of(names: Iterable[str]) -> str | None:
     return None
 
 
-def _open(path: Path) -> pq.ParquetFile:
-    try:
-        return pq.ParquetFile(path)
-    except (pa.ArrowException, OSError, ValueError) as exc:
-        raise InputError(
-            f"cannot read '{path}' as Parquet ({' '.join(str(exc).split())}); the file is "
-            "corrupt, truncated or not Parquet: regenerate it or leave it out of the input"
-        ) from None
+def _open(path: Path | str) -> Any:
+    """The file's Parquet handle or Arrow IPC :class:`~.formats.TableSource`."""
+    return open_source(path)
 
 
-def _inspect(path: Path) -> _FileInfo:
-    pf = _open(path)
+def _inspect(path: Path | str, handle: Any = None) -> _FileInfo:
+    """What one file (or, with ``handle``, an in-memory table named ``path``) holds."""
+    pf = _open(path) if handle is None else handle
     schema = pf.schema_arrow
-    md = pf.metadata
     leaf_paths: dict[str, list[str]] = {}
     leaf_index: dict[str, int] = {}
-    for i in range(len(pf.schema)):
-        p = pf.schema.column(i).path
+    for i, p in enumerate(_leaves(pf)):
         leaf_paths.setdefault(p.split(".")[0], []).append(p)
         leaf_index[p] = i
 
@@ -140,12 +135,9 @@ def _inspect(path: Path) -> _FileInfo:
         if name not in assigned:
             jagged_other[name] = _Coll(name, "plain", {"": t}, {"": leaf_paths.get(name, [name])},
                                        {"": name}, None)
-    rg = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
-    try:
-        size = path.stat().st_size
-    except OSError:
-        size = 0
-    return _FileInfo(path, md.num_rows, rg, size, records, jagged_other, scalars, scalar_paths,
+    rg = row_group_sizes(pf)
+    size = 0 if handle is not None else source_size(path)
+    return _FileInfo(path, sum(rg), rg, size, records, jagged_other, scalars, scalar_paths,
                      pf, leaf_index)
 
 
