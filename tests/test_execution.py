@@ -345,7 +345,7 @@ def test_forked_workers_start_with_the_pairing_kernels_loaded(tmp_path):
 
 def test_bad_scheduler_address_is_reported():
     with pytest.raises(ExecutionError, match="cannot connect to the Dask scheduler"):
-        _dask._connect("tcp://127.0.0.1:1", 1, timeout="1s")
+        _dask.DaskSession("tcp://127.0.0.1:1", None, 1, "spawn", {}, timeout="1s")
 
 
 # ------------------------------------------------------------------------ collect

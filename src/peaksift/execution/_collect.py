@@ -13,11 +13,11 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import ConfigError, DataWarning, ExecutionError, InputError
+from ..errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 from ..events import DEFAULT_CHUNK_EVENTS
 from ..histogram import MassHistogram
 from ._chunk import ChunkOutput, Selection, _ChunkTask, _describe_spec, _spec_file
-from ._engines import _check_engine, _progress, _run
+from ._engines import _check_engine, _open_dask_session, _progress, _run
 from ._local import _check_picklable
 
 
@@ -180,7 +180,23 @@ class _Reducer:
         self._file = []
 
 
-def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selection
+@dataclass(frozen=True)
+class _PlanFile:
+    """Check one file's footer against the selection and plan its chunks (a picklable task,
+    so that on a cluster the workers read the footers, not the client)."""
+
+    selection: Selection
+    chunk_events: int
+
+    def __call__(self, f: str) -> list[Any]:
+        from ..events import check_files, plan_chunks
+
+        check_files(f, list(self.selection.collections), fields=self.selection.fields)
+        return list(plan_chunks(f, chunk_events=self.chunk_events))
+
+
+def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selection,
+          session: Any = None, info: dict[str, Any] | None = None
           ) -> tuple[list[Any], list[SkippedFile], list[str]]:
     """Chunks of every readable file, the files skipped at planning, all files.
 
@@ -189,27 +205,26 @@ def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selec
     run (or is skipped) at once, not after the files before it were processed.  Files are
     checked one by one: chunks are processed independently, so files may differ in layout.
     """
-    from ..events import check_files, list_files, plan_chunks
+    from ..events import list_files
 
     files = [str(f) for f in list_files(source)]
-
-    def check(f: str) -> None:
-        check_files(f, list(selection.collections), fields=selection.fields)
-
-    if not skip_bad_files:
-        for f in files:
-            check(f)
-        return list(plan_chunks(files, chunk_events=chunk_events)), [], files
+    plan_file = _PlanFile(selection, chunk_events)
+    if session is not None:  # footers read on the workers, all files at once
+        outcomes = _run(plan_file, files, engine="dask", workers=None, address=None,
+                        describe=lambda i: f"footer of {files[i]!r}", info=dict(info or {}),
+                        session=session)
+    else:
+        outcomes = ((i, *_try(plan_file, f)) for i, f in enumerate(files))
     specs: list[Any] = []
     skipped: list[SkippedFile] = []
     offset = 0
-    for f in files:
-        try:
-            check(f)
-            part = list(plan_chunks(f, chunk_events=chunk_events))
-        except InputError as exc:
-            skipped.append(SkippedFile(f, str(exc)))
-            continue
+    for i, ok, part in outcomes:
+        f = files[i]
+        if not ok:
+            if skip_bad_files and isinstance(part, InputError):
+                skipped.append(SkippedFile(f, str(part)))
+                continue
+            raise part
         for s in part:
             specs.append(dataclasses.replace(s, first_event=int(s.first_event) + offset)
                          if offset else s)
@@ -217,10 +232,18 @@ def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selec
     return specs, skipped, files
 
 
+def _try(func: Any, arg: Any) -> tuple[bool, Any]:
+    try:
+        return True, func(arg)
+    except PeaksiftError as exc:
+        return False, exc
+
+
 def collect(source: Any, selection: Selection, *, engine: str = "serial",
             workers: int | None = None, address: str | None = None,
             chunk_events: int = DEFAULT_CHUNK_EVENTS, skip_bad_files: bool = False,
-            progress: bool = False, start_method: str = "auto") -> Collected:
+            progress: bool = False, start_method: str = "auto", client: Any = None
+            ) -> Collected:
     """Run the selection over a dataset, chunk by chunk, and reduce.
 
     Parameters
@@ -236,6 +259,10 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         number of CPUs).  Ignored with ``serial`` and with a Dask ``address``.
     address : str, optional
         Scheduler of an existing Dask cluster (``"tcp://host:8786"``); engine ``dask`` only.
+    client : distributed.Client, optional
+        A Dask client you already hold (engine ``dask``); it and its cluster stay open.
+        Without ``client`` and ``address`` the client current in this process is used when
+        there is one (said in ``engine_info["note"]``), else a local cluster is started.
     chunk_events : int
         Target events per chunk (chunks are whole Parquet row groups).
     skip_bad_files : bool
@@ -269,22 +296,27 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     if engine == "processes":
         _check_picklable(selection, "the selection")
     t0 = time.perf_counter()
-    specs, skipped, files = _plan(source, int(chunk_events), skip_bad_files, selection)
-    n = len(specs)
-    last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
-                    for i in range(n)]
-    reducer = _Reducer(selection)
-    bad_file: str | None = None
     info: dict[str, Any] = {}
-    total = sum(int(getattr(s, "n_events", 0)) for s in specs)
-    bar = _progress(total or n, "events" if total else "chunks", "ev" if total else "chunk",
-                    progress)
     func = _ChunkTask(selection)
+    session = None
     run = None
+    bar = None
     try:
+        if engine == "dask":
+            session = _open_dask_session(func, workers, address, client, start_method, info)
+        specs, skipped, files = _plan(source, int(chunk_events), skip_bad_files, selection,
+                                      session, info)
+        n = len(specs)
+        last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
+                        for i in range(n)]
+        reducer = _Reducer(selection)
+        bad_file: str | None = None
+        total = sum(int(getattr(s, "n_events", 0)) for s in specs)
+        bar = _progress(total or n, "events" if total else "chunks",
+                        "ev" if total else "chunk", progress)
         run = _run(func, specs, engine=engine, workers=workers, address=address,
                    describe=lambda i: f"chunk {i} ({_describe_spec(specs[i])})", info=info,
-                   parent_helps=True, start_method=start_method)
+                   parent_helps=True, start_method=start_method, session=session)
         for i, ok, value in run:
             fname = _spec_file(specs[i])
             if fname == bad_file:  # rest of a file already skipped
@@ -301,7 +333,10 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     finally:
         if run is not None:
             run.close()  # stop the workers now, not when the traceback is freed
-        bar.close()
+        if session is not None:
+            session.close()
+        if bar is not None:
+            bar.close()
     if skipped and len(skipped) == len(files):
         reasons = "; ".join(f"{s.path}: {s.reason}" for s in skipped[:3])
         raise ExecutionError(
@@ -344,3 +379,28 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         dropped_objects=reducer.dropped,
         engine_info=info,
     )
+
+
+def reduce_outputs(outputs: Any, selection: Selection) -> Collected:
+    """Reduce chunk outputs you computed yourself (:func:`process_events` or
+    :func:`process_chunk` on your own cluster or collection) into a :class:`Collected`.
+
+    Give the outputs in chunk order (the order of their events): the sums are then bit for
+    bit those :func:`collect` makes.  ``engine_info`` says ``{"engine": "outputs"}``.
+    """
+    reducer = _Reducer(selection)
+    outs = list(outputs)
+    for i, out in enumerate(outs):
+        if not isinstance(out, ChunkOutput):
+            raise ConfigError(f"reduce_outputs: item {i} is a {type(out).__name__}, not a "
+                              "ChunkOutput from process_events or process_chunk")
+        reducer.add(dataclasses.replace(out, index=i), True)
+    masses = np.concatenate(reducer.masses) if reducer.masses else np.zeros(0)
+    weights = np.concatenate(reducer.weights) if reducer.weights else np.zeros(0)
+    return Collected(
+        histogram=reducer.hist, window=selection.window, window_mass=masses,
+        window_weight=weights, pt_histogram=reducer.pt, rapidity_histogram=reducer.rap,
+        cutflow=reducer.cutflow, files_read=tuple(dict.fromkeys(reducer.files)),
+        files_skipped=(), events_read=reducer.events, candidates=reducer.candidates,
+        data_warnings=tuple(reducer.warn), n_data_warnings=reducer.n_warn,
+        dropped_objects=reducer.dropped, engine_info={"engine": "outputs", "chunks": len(outs)})
