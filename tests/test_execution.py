@@ -408,7 +408,7 @@ def test_corrupt_file_is_named_or_skipped(dataset, tmp_path):
     files = [dataset[0], bad, dataset[1]]
     with pytest.raises(InputError, match="run_1b.parquet"):
         execution.collect(files, SEL)
-    got = execution.collect(files, SEL, skip_bad_files=True, chunk_events=1000)
+    got = execution.collect(files, SEL, unreadable_files="left_out", chunk_events=1000)
     assert [s.path for s in got.files_skipped] == [bad]
     assert "run_1b.parquet" in got.files_skipped[0].reason
     assert got.files_read == (dataset[0], dataset[1])
@@ -441,7 +441,7 @@ def test_file_failing_mid_run_is_named_or_skipped_whole(dataset, tmp_path):
     expected = execution.collect([dataset[0], dataset[1]], SEL, chunk_events=1000)
     for engine in ("serial", "processes"):
         got = execution.collect(files, SEL, engine=engine, workers=2, chunk_events=1000,
-                                skip_bad_files=True)
+                                unreadable_files="left_out")
         assert [s.path for s in got.files_skipped] == [bad]
         assert "run_2b.parquet" in got.files_skipped[0].reason
         # its first two (readable) chunks were discarded too: the file counts not at all
@@ -465,7 +465,7 @@ def test_file_without_the_collection_stops_the_run_before_any_chunk(dataset, tmp
     with pytest.raises(InputError, match=r"run_e\.parquet.*muon|muon.*run_e\.parquet"):
         execution.collect(files, SEL, chunk_events=1000)
     assert calls == []
-    got = execution.collect(files, SEL, chunk_events=1000, skip_bad_files=True)
+    got = execution.collect(files, SEL, chunk_events=1000, unreadable_files="left_out")
     assert [s.path for s in got.files_skipped] == [str(other)]
     assert "muon" in got.files_skipped[0].reason
     _assert_same(got, execution.collect(dataset[:2], SEL, chunk_events=1000))
@@ -484,7 +484,7 @@ def test_empty_file_is_read_with_no_events(dataset, tmp_path):
 def test_every_file_bad_is_an_error(tmp_path):
     bad = _garbage(tmp_path / "only.parquet")
     with pytest.raises(ExecutionError, match="every input file was skipped.*only.parquet"):
-        execution.collect([bad], SEL, skip_bad_files=True)
+        execution.collect([bad], SEL, unreadable_files="left_out")
 
 
 def test_bad_values_reported_once_with_counts(tmp_path):

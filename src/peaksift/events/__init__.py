@@ -26,7 +26,10 @@ Per-event scalars (``weight``, run and event numbers, ...) are top-level fields.
 Files may store a collection in either layout:
 
 * one list-of-struct column: ``muon: list<struct<pt, eta, phi, mass, charge>>``;
-* sibling list columns named ``<collection>_<field>``: ``muon_pt, muon_eta, ...``.
+* sibling list columns named by a column pattern, by default ``"{collection}.{field}"``
+  (``muon.pt, muon.eta, ...``: the names ``pyarrow.Table.flatten`` gives a struct of lists);
+  other names through ``column_pattern=``, e.g. ``"{collection}_{field}"`` for
+  ``muon_pt, muon_eta, ...``.
 
 and its kinematics as ``(pt, eta, phi[, mass])`` or ``(px, py, pz, energy)`` (``m`` and ``e``
 are accepted as short names).  Cartesian kinematics are converted to ``pt, eta, phi, mass``
@@ -53,7 +56,7 @@ from __future__ import annotations
 import vector
 
 from .describe import Description, describe
-from .files import DEFAULT_CHUNK_EVENTS, list_files
+from .files import DEFAULT_CHUNK_EVENTS, DEFAULT_COLUMN_PATTERN, list_files
 from .memory import from_memory, is_in_memory
 from .read import ChunkSpec, check_files, iter_events, plan_chunks, read_chunk, read_events
 
@@ -61,6 +64,7 @@ vector.register_awkward()
 
 __all__ = [
     "DEFAULT_CHUNK_EVENTS",
+    "DEFAULT_COLUMN_PATTERN",
     "ChunkSpec",
     "Description",
     "check_files",

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import glob
 import os
+import re
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Union
@@ -27,6 +28,37 @@ _KIN_OUT = ("pt", "eta", "phi", "mass")
 _RESERVED = {"x", "y", "z", "t", "rho", "theta", "tau", "px", "py", "pz", "E", "e", "energy",
              "M", "m", "mass", "pt", "eta", "phi"}
 _GLOB_CHARS = set("*?[")
+
+#: How sibling list columns name a collection's fields by default: the dotted names Arrow's
+#: own struct flattening gives (``pyarrow.Table.flatten``: ``muon.pt``, ``muon.eta``, ...).
+#: Other layouts are read with ``column_pattern`` (e.g. ``"{collection}_{field}"``).
+DEFAULT_COLUMN_PATTERN = "{collection}.{field}"
+
+
+def column_regex(pattern: str, collection: str | None = None) -> re.Pattern[str]:
+    """The regular expression of a column pattern holding ``{collection}`` and ``{field}``
+    once each (``collection`` given: only that collection's columns match).
+
+    Raises
+    ------
+    InputError
+        The pattern lacks one of the two placeholders or repeats one.
+    """
+    if not isinstance(pattern, str) or pattern.count("{collection}") != 1 or \
+            pattern.count("{field}") != 1:
+        raise InputError(
+            f"column_pattern {pattern!r} must hold {{collection}} and {{field}} once each, e.g. "
+            f"{DEFAULT_COLUMN_PATTERN!r} (muon.pt) or '{{collection}}_{{field}}' (muon_pt)")
+    out = ""
+    for part in re.split(r"(\{collection\}|\{field\})", pattern):
+        if part == "{collection}":
+            out += "(?P<collection>.+)" if collection is None else \
+                f"(?P<collection>{re.escape(collection)})"
+        elif part == "{field}":
+            out += "(?P<field>.+?)" if collection is None else "(?P<field>.+)"
+        else:
+            out += re.escape(part)
+    return re.compile(f"^{out}$")
 #: file name endings a directory is searched for
 EVENT_SUFFIXES = (".parquet", ".arrow", ".feather", ".ipc")
 

@@ -49,6 +49,16 @@ def _leaf_paths(name: str, t: pa.DataType) -> list[str]:
     return [name]
 
 
+def column_of(path: str, names: Sequence[str]) -> str:
+    """The top-level column a leaf path belongs to (column names may hold dots themselves:
+    ``muon.pt.list.element`` is column ``muon.pt`` when there is one); ``names`` longest
+    first."""
+    for n in names:
+        if path == n or path.startswith(n + "."):
+            return n
+    return path.split(".")[0]
+
+
 def _values_of(arr: pa.Array, parts: Sequence[str]) -> int:
     """Number of leaf values under ``arr`` along the path ``parts`` (list levels counted by
     their offsets, so a sliced batch counts only its own values)."""
@@ -71,6 +81,7 @@ class TableSource:
         self.schema_arrow = schema
         self.leaf_paths = [p for f in schema for p in _leaf_paths(f.name, f.type)]
         self.row_group_sizes = tuple(b.num_rows for b in self.batches)
+        self.names = sorted(schema.names, key=len, reverse=True)
         self.num_rows = sum(self.row_group_sizes)
 
     @classmethod
@@ -82,14 +93,15 @@ class TableSource:
         del use_threads
         t = pa.Table.from_batches([self.batches[i] for i in row_groups], self.schema_arrow)
         return t if columns is None else t.select(list(dict.fromkeys(
-            c.split(".")[0] for c in columns)))
+            column_of(c, self.names) for c in columns)))
 
     def read(self, columns: Sequence[str] | None = None) -> pa.Table:
         return self.read_row_groups(range(len(self.batches)), columns)
 
     def leaf_values(self, leaf: str) -> int:
         """Values of one leaf column over all batches (the object capacity of a collection)."""
-        top, *rest = leaf.split(".")
+        top = column_of(leaf, self.names)
+        rest = leaf[len(top) + 1:].split(".") if leaf != top else []
         return sum(_values_of(b.column(top), rest) for b in self.batches)
 
 

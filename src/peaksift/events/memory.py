@@ -26,6 +26,7 @@ import awkward as ak
 import pyarrow as pa
 
 from ..errors import DataWarning, InputError
+from .files import DEFAULT_COLUMN_PATTERN
 from .formats import TableSource
 from .pieces import _build, _read_piece, _warn
 from .schema import _inspect, _select
@@ -56,6 +57,7 @@ def from_memory(
     fields: Iterable[str] | None = None,
     strict: bool = False,
     masses: Mapping[str, float] | None = None,
+    column_pattern: str = DEFAULT_COLUMN_PATTERN,
 ) -> ak.Array:
     """In-memory events as :func:`~peaksift.events.read_events` returns them (options as
     there; see the module guide for what is accepted).
@@ -77,7 +79,7 @@ def from_memory(
         table = events.read_all()
     else:
         raise InputError(f"cannot read events from {type(events).__name__}; give {ACCEPTED}")
-    info = _inspect(name, handle=TableSource.from_table(table))
+    info = _inspect(name, handle=TableSource.from_table(table), pattern=column_pattern)
     sel = _select(info, collections, None if fields is None else list(fields))
     piece = _read_piece(info, sel, range(len(info.row_groups)), 0, masses or {}, strict)
     _warn([piece], [name])

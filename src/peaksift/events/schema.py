@@ -11,9 +11,18 @@ from typing import Any
 import pyarrow as pa
 
 from ..errors import InputError, closest
-from .files import _CART, _ENERGY_NAMES, _KIN_OUT, _MASS_NAMES, _MAX_OPEN_FILES, _POLAR
+from .files import (
+    _CART,
+    _ENERGY_NAMES,
+    _KIN_OUT,
+    _MASS_NAMES,
+    _MAX_OPEN_FILES,
+    _POLAR,
+    DEFAULT_COLUMN_PATTERN,
+    column_regex,
+)
+from .formats import column_of, open_source, row_group_sizes, source_size
 from .formats import leaf_paths as _leaves
-from .formats import open_source, row_group_sizes, source_size
 
 # --------------------------------------------------------------------------- schema
 
@@ -42,6 +51,7 @@ class _FileInfo:
     scalar_paths: dict[str, list[str]]
     handle: Any = field(default=None, compare=False, repr=False)
     leaf_index: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
+    pattern: str = DEFAULT_COLUMN_PATTERN  # how sibling list columns are named
 
 
 def _kind(t: pa.DataType) -> str:
@@ -74,14 +84,16 @@ def _open(path: Path | str) -> Any:
     return open_source(path)
 
 
-def _inspect(path: Path | str, handle: Any = None) -> _FileInfo:
+def _inspect(path: Path | str, handle: Any = None,
+             pattern: str = DEFAULT_COLUMN_PATTERN) -> _FileInfo:
     """What one file (or, with ``handle``, an in-memory table named ``path``) holds."""
     pf = _open(path) if handle is None else handle
     schema = pf.schema_arrow
     leaf_paths: dict[str, list[str]] = {}
     leaf_index: dict[str, int] = {}
+    names = sorted(schema.names, key=len, reverse=True)
     for i, p in enumerate(_leaves(pf)):
-        leaf_paths.setdefault(p.split(".")[0], []).append(p)
+        leaf_paths.setdefault(column_of(p, names), []).append(p)
         leaf_index[p] = i
 
     records: dict[str, _Coll] = {}
@@ -111,18 +123,22 @@ def _inspect(path: Path | str, handle: Any = None) -> _FileInfo:
             scalars[f.name] = t
             scalar_paths[f.name] = leaf_paths.get(f.name, [f.name])
 
-    # sibling list columns: a prefix is a collection when <prefix>_pt or <prefix>_px exists
+    # sibling list columns named by the column pattern: a collection is named by a pt or px
+    # column; every other column belongs to the longest collection name it fits
+    rx = column_regex(pattern)
     prefixes = set()
     for name in flat_lists:
-        for k in ("pt", "px"):
-            if name.endswith("_" + k) and len(name) > len(k) + 1:
-                prefixes.add(name[: -len(k) - 1])
+        m = rx.match(name)
+        if m and m["field"] in ("pt", "px"):
+            prefixes.add(m["collection"])
     groups: dict[str, dict[str, str]] = {}
+    owners = {p: column_regex(pattern, p) for p in sorted(prefixes, key=len, reverse=True)}
     for name in flat_lists:
-        owner = max((p for p in prefixes if name.startswith(p + "_")), key=len, default=None)
-        if owner is None:
-            continue
-        groups.setdefault(owner, {})[name[len(owner) + 1:]] = name
+        for prefix, prx in owners.items():
+            m = prx.match(name)
+            if m:
+                groups.setdefault(prefix, {})[m["field"]] = name
+                break
     assigned = set()
     for prefix, cols in groups.items():
         if prefix in records or prefix in scalars or _coords_of(cols) is None:
@@ -138,7 +154,7 @@ def _inspect(path: Path | str, handle: Any = None) -> _FileInfo:
     rg = row_group_sizes(pf)
     size = 0 if handle is not None else source_size(path)
     return _FileInfo(path, sum(rg), rg, size, records, jagged_other, scalars, scalar_paths,
-                     pf, leaf_index)
+                     pf, leaf_index, pattern)
 
 
 def _present_text(info: _FileInfo) -> str:
@@ -168,12 +184,14 @@ def _select(
                 continue
             if n in info.others and info.others[n].layout != "plain":
                 c = info.others[n]
-                _raise_missing_kinematics(path, c)
-            # sibling columns with partial kinematics (no <n>_pt / <n>_px column)
-            partial = sorted(c[len(n) + 1:] for c in info.others if c.startswith(n + "_"))
+                _raise_missing_kinematics(path, c, info.pattern)
+            # sibling columns with partial kinematics (no pt / px column by the pattern)
+            own = column_regex(info.pattern, n)
+            partial = sorted(m["field"] for c in info.others if (m := own.match(c)))
             if partial:
                 _raise_missing_kinematics(
-                    path, _Coll(n, "columns", dict.fromkeys(partial, pa.float64()), {}, {}, None))
+                    path, _Coll(n, "columns", dict.fromkeys(partial, pa.float64()), {}, {}, None),
+                    info.pattern)
             near = closest(n, info.collections)
             hint = f" (did you mean '{near}'?)" if near else ""
             raise InputError(
@@ -230,13 +248,15 @@ def _kin_source_fields(c: _Coll) -> list[str]:
     return [*_CART, *e]
 
 
-def _raise_missing_kinematics(path: Path, c: _Coll) -> None:
+def _raise_missing_kinematics(path: Path, c: _Coll,
+                              pattern: str = DEFAULT_COLUMN_PATTERN) -> None:
     have = set(c.fields)
     need_polar = [n for n in _POLAR if n not in have]
     need_cart = [n for n in _CART if n not in have] + (
         [] if any(n in have for n in _ENERGY_NAMES) else ["energy"])
     missing = need_polar if len(need_polar) <= len(need_cart) else need_cart
-    where = (f"columns '{c.name}_<field>'" if c.layout == "columns" else f"column '{c.name}'")
+    where = (f"columns '{pattern.format(collection=c.name, field='<field>')}'"
+             if c.layout == "columns" else f"column '{c.name}'")
     raise InputError(
         f"collection '{c.name}' in '{path}' ({where}) has no kinematic field "
         f"'{missing[0]}'; fields present: {', '.join(sorted(have)) or 'none'}. A collection needs "
@@ -287,7 +307,8 @@ def _describe_sig_diff(a: dict[str, Any], b: dict[str, Any]) -> str:
 
 
 def _plan_request(files: list[Path], collections: str | Sequence[str] | None,
-                  fields: Iterable[str] | None) -> list[tuple[_FileInfo, tuple]]:
+                  fields: Iterable[str] | None, pattern: str = DEFAULT_COLUMN_PATTERN
+                  ) -> list[tuple[_FileInfo, tuple]]:
     """Inspect every file and check the request and schema agreement before reading data."""
     if isinstance(fields, str):
         fields = [fields]
@@ -298,7 +319,7 @@ def _plan_request(files: list[Path], collections: str | Sequence[str] | None,
     first_path: Path | None = None
     keep_open = len(files) <= _MAX_OPEN_FILES
     for p in files:
-        info = _inspect(p)
+        info = _inspect(p, pattern=pattern)
         if not keep_open:  # do not hold thousands of file descriptors; reopen when reading
             info = dataclasses.replace(info, handle=None)
         sel = _select(info, collections, fields)

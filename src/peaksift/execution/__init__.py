@@ -70,7 +70,7 @@ Guarantees
   memory grows with the chunk size, not the dataset (plus the window masses, which an
   unbinned fit needs anyway: 16 bytes per candidate in the window).
 * **Faults are reported, never hidden.**  A file that cannot be read stops the run with an
-  error naming it (a footer that lacks what the selection reads, before any chunk runs); with ``skip_bad_files=True`` the whole file is left out (its chunks that
+  error naming it (a footer that lacks what the selection reads, before any chunk runs); with ``unreadable_files="left_out"`` the whole file is left out (its chunks that
   were already processed are discarded too, so a file counts completely or not at all) and
   listed in :attr:`Collected.files_skipped`.  A worker process that dies raises
   :class:`~peaksift.errors.ExecutionError` naming the chunk.  ``KeyboardInterrupt`` stops

@@ -73,6 +73,9 @@ class Selection:
         candidates whose mass lies in the histogram range.
     unit : str
         Unit of the mass axis (default ``"GeV"``).
+    column_pattern : str
+        How sibling list columns name a collection's fields (see
+        :func:`peaksift.read_events`; default ``"{collection}.{field}"``).
     """
 
     first: str
@@ -93,6 +96,7 @@ class Selection:
     pt_edges: tuple[float, ...] | None = None
     rapidity_edges: tuple[float, ...] | None = None
     unit: str = "GeV"
+    column_pattern: str = "{collection}.{field}"
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -241,7 +245,8 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
         warnings.simplefilter("always")
         events = read_chunk(spec, list(selection.collections), fields=selection.fields,
                             strict=selection.strict,
-                            masses=dict(selection.masses) if selection.masses else None)
+                            masses=dict(selection.masses) if selection.masses else None,
+                            column_pattern=selection.column_pattern)
     out = process_events(events, selection, first_event=int(spec.first_event),
                          file=_spec_file(spec))
     return dataclasses.replace(out, data_warnings=_data_messages(caught) + out.data_warnings,

@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from .._vocabulary import UNREADABLE_FILES
 from ..errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 from ..events import DEFAULT_CHUNK_EVENTS
 from ..histogram import MassHistogram
@@ -23,7 +24,7 @@ from ._local import _check_picklable
 
 @dataclass(frozen=True)
 class SkippedFile:
-    """A file left out of a run with ``skip_bad_files=True``, and why."""
+    """A file left out of a run with ``unreadable_files="left_out"``, and why."""
 
     path: str
     reason: str
@@ -52,7 +53,7 @@ class Collected:
     files_read : tuple[str, ...]
         Files whose every chunk was processed.
     files_skipped : tuple[SkippedFile, ...]
-        Files left out (only with ``skip_bad_files=True``), with the reason.
+        Files left out (only with ``unreadable_files="left_out"``), with the reason.
     events_read : int
         Events read from ``files_read``.
     candidates : int
@@ -191,11 +192,12 @@ class _PlanFile:
     def __call__(self, f: str) -> list[Any]:
         from ..events import check_files, plan_chunks
 
-        check_files(f, list(self.selection.collections), fields=self.selection.fields)
+        check_files(f, list(self.selection.collections), fields=self.selection.fields,
+                    column_pattern=self.selection.column_pattern)
         return list(plan_chunks(f, chunk_events=self.chunk_events))
 
 
-def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selection,
+def _plan(source: Any, chunk_events: int, leave_out: bool, selection: Selection,
           session: Any = None, info: dict[str, Any] | None = None
           ) -> tuple[list[Any], list[SkippedFile], list[str]]:
     """Chunks of every readable file, the files skipped at planning, all files.
@@ -221,7 +223,7 @@ def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selec
     for i, ok, part in outcomes:
         f = files[i]
         if not ok:
-            if skip_bad_files and isinstance(part, InputError):
+            if leave_out and isinstance(part, InputError):
                 skipped.append(SkippedFile(f, str(part)))
                 continue
             raise part
@@ -241,7 +243,7 @@ def _try(func: Any, arg: Any) -> tuple[bool, Any]:
 
 def collect(source: Any, selection: Selection, *, engine: str = "serial",
             workers: int | None = None, address: str | None = None,
-            chunk_events: int = DEFAULT_CHUNK_EVENTS, skip_bad_files: bool = False,
+            chunk_events: int = DEFAULT_CHUNK_EVENTS, unreadable_files: str = "stop",
             progress: bool = False, start_method: str = "auto", client: Any = None
             ) -> Collected:
     """Run the selection over a dataset, chunk by chunk, and reduce.
@@ -265,9 +267,9 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         there is one (said in ``engine_info["note"]``), else a local cluster is started.
     chunk_events : int
         Target events per chunk (chunks are whole Parquet row groups).
-    skip_bad_files : bool
-        Leave out files that cannot be read (listed in ``files_skipped``) instead of
-        stopping.
+    unreadable_files : {"stop", "left_out"}
+        What a file that cannot be read does: ``"stop"`` the run (the error names it), or
+        it is ``"left_out"`` whole (listed with the reason in ``files_skipped``).
     progress : bool
         Show a progress bar over events.
     start_method : {"auto", "fork", "spawn"}
@@ -281,7 +283,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     Raises
     ------
     InputError
-        A file cannot be read (named in the message) and ``skip_bad_files`` is False.
+        A file cannot be read (named in the message) and ``unreadable_files="stop"``.
     ExecutionError
         A worker died (the chunk is named), the selection cannot be sent to workers, or
         every file had to be skipped.
@@ -291,6 +293,10 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
             f"collect needs a peaksift.execution.Selection, got {type(selection).__name__}"
         )
     _check_engine(engine, workers, address, start_method)
+    if unreadable_files not in UNREADABLE_FILES:
+        raise ConfigError(f"unreadable_files must be one of {', '.join(UNREADABLE_FILES)}, got "
+                          f"{unreadable_files!r}")
+    leave_out = unreadable_files == "left_out"
     if isinstance(chunk_events, bool) or int(chunk_events) != chunk_events or chunk_events < 1:
         raise ConfigError(f"chunk_events must be a positive integer, got {chunk_events!r}")
     if engine == "processes":
@@ -304,7 +310,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     try:
         if engine == "dask":
             session = _open_dask_session(func, workers, address, client, start_method, info)
-        specs, skipped, files = _plan(source, int(chunk_events), skip_bad_files, selection,
+        specs, skipped, files = _plan(source, int(chunk_events), leave_out, selection,
                                       session, info)
         n = len(specs)
         last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
@@ -322,7 +328,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
             if fname == bad_file:  # rest of a file already skipped
                 continue
             if not ok:
-                if skip_bad_files and isinstance(value, InputError):
+                if leave_out and isinstance(value, InputError):
                     reducer.drop_file()
                     skipped.append(SkippedFile(fname, str(value)))
                     bad_file = fname

@@ -170,6 +170,7 @@ def _selection(cfg: Config, lo: float, hi: float, nbins: int) -> Any:
         target_mass=pr.target_mass,
         min_delta_r=pr.min_delta_r or None,
         strict=cfg.input.strict,
+        column_pattern=cfg.input.column_pattern,
     )
 
 
@@ -191,7 +192,7 @@ def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
         col = collect(
             cfg.input.files, _selection(cfg, ulo, uhi, nb),
             engine=ex.engine, workers=ex.workers, address=ex.address or None,
-            chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
+            chunk_events=ex.chunk_events, unreadable_files=ex.unreadable_files, progress=progress,
             start_method=ex.start_method,
         )
     except CutError as exc:
