@@ -124,3 +124,17 @@ def test_missing_values_are_stripped_with_a_warning(parquet_file, reference):
 def test_other_inputs_are_input_errors(bad):
     with pytest.raises(InputError):
         peaksift.pair(bad, "muon")
+
+
+@pytest.mark.parametrize("suffix", [".parquet", ".arrow", ".feather"])
+def test_candidates_to_files_and_back(reference, tmp_path, suffix):
+    p = reference.save(tmp_path / f"cands{suffix}")
+    back = peaksift.Candidates.load(p)
+    assert back == reference and back.cutflow == reference.cutflow
+    # another reader sees plain columns: pyarrow's own readers, no peaksift involved
+    t = pq.read_table(p) if suffix == ".parquet" else feather.read_table(p)
+    np.testing.assert_array_equal(t.column("mass").to_numpy(), reference.mass)
+    np.testing.assert_array_equal(t.column("event_index").to_numpy(), reference.event_index)
+    assert peaksift.Candidates.from_arrow(reference.to_arrow()) == reference
+    with pytest.raises(InputError, match="give a .parquet, .arrow or .feather"):
+        reference.save(tmp_path / "cands.csv")

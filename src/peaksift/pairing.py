@@ -185,6 +185,45 @@ class Candidates:
         mult = None if self.multiplicity is None else self.multiplicity[m]
         return dataclasses.replace(self, **cols, cutflow=dict(self.cutflow), multiplicity=mult)
 
+    # ------------------------------------------------ Arrow and files (candidates_io)
+    def to_arrow(self) -> Any:
+        """The candidates as a ``pyarrow.Table`` (one row each; cut flow and rule in the
+        schema metadata); see :mod:`peaksift.candidates_io`."""
+        from .candidates_io import to_arrow
+
+        return to_arrow(self)
+
+    @classmethod
+    def from_arrow(cls, table: Any) -> Candidates:
+        """Candidates from :meth:`to_arrow`'s table (or a record-batch reader of it)."""
+        from .candidates_io import from_arrow
+
+        return from_arrow(cls, table)
+
+    def save(self, path: Any) -> Any:
+        """Write to ``path``: Parquet (``.parquet``) or Arrow IPC (``.arrow``, ``.feather``)."""
+        from .candidates_io import save
+
+        return save(self, path)
+
+    @classmethod
+    def load(cls, path: Any) -> Candidates:
+        """Read candidates written by :meth:`save` (a local path or an fsspec URL)."""
+        from .candidates_io import load
+
+        return load(cls, path)
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Candidates):
+            return NotImplemented
+        return (all(np.array_equal(getattr(self, c), getattr(other, c)) for c in self._COLUMNS)
+                and self.cutflow == other.cutflow and self.choose == other.choose
+                and (self.multiplicity is None) == (other.multiplicity is None)
+                and (self.multiplicity is None
+                     or np.array_equal(self.multiplicity, other.multiplicity)))
+
+    __hash__ = None  # type: ignore[assignment]
+
     def in_window(self, lo: float, hi: float) -> Candidates:
         """Candidates with ``lo <= mass <= hi``: the masses a histogram on ``[lo, hi]`` puts
         in its bins (:func:`peaksift.histogram.in_range`; the last bin is closed).
