@@ -461,7 +461,7 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
     out += ["## Provenance", "", _md_table(["item", "value"], _provenance_rows(r)), ""]
     files = (r.get("provenance") or {}).get("inputs") or []
     if files:
-        out += [_md_table(["input file", "sha256"], [[f["path"], f["sha256"]] for f in files]), ""]
+        out += [_md_table(["input file", "sha256"], [[f["path"], f["sha256"] or "not recorded"] for f in files]), ""]
     skipped = inp.get("files_skipped") or []
     if skipped:
         out += ["Files skipped (unreadable):", ""]
@@ -569,7 +569,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
     b += ["<h2>Provenance</h2>", _html_table(["item", "value"], _provenance_rows(r))]
     files = (r.get("provenance") or {}).get("inputs") or []
     if files:
-        b.append(_html_table(["input file", "sha256"], [[f["path"], f["sha256"]] for f in files],
+        b.append(_html_table(["input file", "sha256"], [[f["path"], f["sha256"] or "not recorded"] for f in files],
                              mono_last=True))
     skipped = inp.get("files_skipped") or []
     if skipped:

@@ -47,6 +47,9 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("strict", "bool", False,
              "Stop on NaN/infinite or negative kinematics instead of dropping those objects "
              "with a warning."),
+        _Key("hash_inputs", "bool", True,
+             "Record each input file's sha256 in results.json (on a Dask cluster the workers "
+             "compute it); false leaves it out, for huge or remote inputs."),
         _Key("column_pattern", "str", "{collection}.{field}",
              "How sibling list columns name a collection's fields, with `{collection}` and "
              "`{field}` once each: the default reads `muon.pt, muon.eta, ...` (Arrow's struct "

@@ -19,6 +19,7 @@ class InputConfig:
     weights: bool = True
     strict: bool = False
     column_pattern: str = "{collection}.{field}"
+    hash_inputs: bool = True
 
 
 @dataclass(frozen=True)

@@ -56,7 +56,7 @@ from __future__ import annotations
 import vector
 
 from .describe import Description, describe
-from .files import DEFAULT_CHUNK_EVENTS, DEFAULT_COLUMN_PATTERN, list_files
+from .files import DEFAULT_CHUNK_EVENTS, DEFAULT_COLUMN_PATTERN, file_sha256, list_files
 from .memory import from_memory, is_in_memory
 from .read import ChunkSpec, check_files, iter_events, plan_chunks, read_chunk, read_events
 
@@ -69,6 +69,7 @@ __all__ = [
     "Description",
     "check_files",
     "describe",
+    "file_sha256",
     "from_memory",
     "is_in_memory",
     "iter_events",

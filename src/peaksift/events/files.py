@@ -133,6 +133,24 @@ def list_files(source: Source) -> list[Path | str]:
     return out
 
 
+def file_sha256(loc: Path | str) -> str:
+    """The sha256 of a file's bytes (local path or fsspec URL), read in 1 MiB blocks."""
+    import hashlib
+
+    h = hashlib.sha256()
+    text = os.fspath(loc)
+    if "://" in text and not text.startswith("file://"):
+        import fsspec
+
+        opener: Any = fsspec.open(text, "rb")
+    else:
+        opener = open(text.removeprefix("file://"), "rb")  # noqa: SIM115 - closed below
+    with opener as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
 def _list_url(url: str) -> list[Path | str]:
     """Files an fsspec URL names: a file, a directory (searched like a local one) or a glob."""
     try:

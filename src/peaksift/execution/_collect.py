@@ -70,6 +70,9 @@ class Collected:
         started for the call), ``chunks``, ``chunk_events``, ``seconds``,
         ``events_per_second`` and ``chunk_seconds`` (time spent inside the chunks, summed
         over workers: ``chunk_seconds / (seconds * workers)`` is how busy the workers were).
+    file_hashes : dict[str, str]
+        sha256 of each file read, with ``hash_files=True`` (computed where the footers were
+        read: on the workers of a Dask cluster).
     """
 
     histogram: MassHistogram
@@ -87,6 +90,7 @@ class Collected:
     n_data_warnings: int = 0
     dropped_objects: dict[str, dict[str, int]] = field(default_factory=dict)
     engine_info: dict[str, Any] = field(default_factory=dict)
+    file_hashes: dict[str, str] = field(default_factory=dict)
 
     @property
     def window_candidates(self) -> int:
@@ -188,17 +192,20 @@ class _PlanFile:
 
     selection: Selection
     chunk_events: int
+    hash_files: bool = False
 
-    def __call__(self, f: str) -> list[Any]:
-        from ..events import check_files, plan_chunks
+    def __call__(self, f: str) -> tuple[list[Any], str | None]:
+        from ..events import check_files, file_sha256, plan_chunks
 
         check_files(f, list(self.selection.collections), fields=self.selection.fields,
                     column_pattern=self.selection.column_pattern)
-        return list(plan_chunks(f, chunk_events=self.chunk_events))
+        specs = list(plan_chunks(f, chunk_events=self.chunk_events))
+        return specs, (file_sha256(f) if self.hash_files else None)
 
 
 def _plan(source: Any, chunk_events: int, leave_out: bool, selection: Selection,
-          session: Any = None, info: dict[str, Any] | None = None
+          session: Any = None, info: dict[str, Any] | None = None,
+          hashes: dict[str, str] | None = None
           ) -> tuple[list[Any], list[SkippedFile], list[str]]:
     """Chunks of every readable file, the files skipped at planning, all files.
 
@@ -210,7 +217,7 @@ def _plan(source: Any, chunk_events: int, leave_out: bool, selection: Selection,
     from ..events import list_files
 
     files = [str(f) for f in list_files(source)]
-    plan_file = _PlanFile(selection, chunk_events)
+    plan_file = _PlanFile(selection, chunk_events, hashes is not None)
     if session is not None:  # footers read on the workers, all files at once
         outcomes = _run(plan_file, files, engine="dask", workers=None, address=None,
                         describe=lambda i: f"footer of {files[i]!r}", info=dict(info or {}),
@@ -227,6 +234,9 @@ def _plan(source: Any, chunk_events: int, leave_out: bool, selection: Selection,
                 skipped.append(SkippedFile(f, str(part)))
                 continue
             raise part
+        part, digest = part
+        if digest is not None and hashes is not None:
+            hashes[f] = digest
         for s in part:
             specs.append(dataclasses.replace(s, first_event=int(s.first_event) + offset)
                          if offset else s)
@@ -244,8 +254,8 @@ def _try(func: Any, arg: Any) -> tuple[bool, Any]:
 def collect(source: Any, selection: Selection, *, engine: str = "serial",
             workers: int | None = None, address: str | None = None,
             chunk_events: int = DEFAULT_CHUNK_EVENTS, unreadable_files: str = "stop",
-            progress: bool = False, start_method: str = "auto", client: Any = None
-            ) -> Collected:
+            progress: bool = False, start_method: str = "auto", client: Any = None,
+            hash_files: bool = False) -> Collected:
     """Run the selection over a dataset, chunk by chunk, and reduce.
 
     Parameters
@@ -275,6 +285,10 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     start_method : {"auto", "fork", "spawn"}
         How the local worker processes of ``processes`` and of a local Dask cluster start
         (see the module guide); ``"auto"`` forks on Linux.  Results do not depend on it.
+
+    hash_files : bool
+        Record each file's sha256 in ``Collected.file_hashes``, computed where the footers
+        are read (on a Dask cluster: on the workers, in parallel, near the data).
 
     Returns
     -------
@@ -310,8 +324,9 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     try:
         if engine == "dask":
             session = _open_dask_session(func, workers, address, client, start_method, info)
+        hashes: dict[str, str] | None = {} if hash_files else None
         specs, skipped, files = _plan(source, int(chunk_events), leave_out, selection,
-                                      session, info)
+                                      session, info, hashes)
         n = len(specs)
         last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
                         for i in range(n)]
@@ -384,6 +399,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         n_data_warnings=reducer.n_warn,
         dropped_objects=reducer.dropped,
         engine_info=info,
+        file_hashes={f: hashes[f] for f in files_read if f in hashes} if hashes else {},
     )
 
 

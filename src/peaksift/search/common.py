@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import datetime as _dt
-import hashlib
 import platform
 from collections.abc import Mapping
 from pathlib import Path
@@ -89,14 +88,6 @@ def _events_selected(cutflow: Mapping[str, int]) -> int:
 # ------------------------------------------------------------------------------ helpers
 def _utc() -> str:
     return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
-def _sha256(path: str | Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def _versions() -> dict[str, str]:
@@ -193,7 +184,7 @@ def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
             cfg.input.files, _selection(cfg, ulo, uhi, nb),
             engine=ex.engine, workers=ex.workers, address=ex.address or None,
             chunk_events=ex.chunk_events, unreadable_files=ex.unreadable_files, progress=progress,
-            start_method=ex.start_method,
+            start_method=ex.start_method, hash_files=cfg.input.hash_inputs,
         )
     except CutError as exc:
         raise _keyed_cut_error(cfg, exc) from None
