@@ -32,7 +32,7 @@ class _Coll:
     """How one collection is stored in one file."""
 
     name: str
-    layout: str                      # "records" (list<struct>) or "columns" (<coll>_<field>)
+    layout: str                      # "records" (list<struct>) or "columns" (by the pattern)
     fields: dict[str, pa.DataType]   # file field name -> arrow value type
     paths: dict[str, list[str]]      # file field name -> parquet leaf paths to read
     columns: dict[str, str]          # file field name -> top-level column name (layout columns)

@@ -22,7 +22,7 @@ def _in_window(col: Any, cfg: Config, hidden: tuple[float, float] | None = None)
     # counted by the spectrum's own bins, so the edge rule is the histogram's
     h = MassHistogram.from_masses(np.asarray(col.window_mass, dtype=float),
                                   edges=cfg.spectrum.edges)
-    counts = h.weight_sum
+    counts = h.values()
     if hidden is not None:  # the hidden range is a union of whole bins
         c = h.centers
         counts = counts[~((c > hidden[0]) & (c < hidden[1]))]
@@ -36,13 +36,13 @@ def _hidden(blinding: Mapping[str, Any]) -> tuple[float, float] | None:
 
 
 def _blinded_copy(hist: Any, blind: Any) -> Any:
-    """A copy of ``hist`` with the bins overlapping ``blind`` emptied (weight_sum = weight_sq_sum = 0)."""
+    """A copy of ``hist`` with the bins overlapping ``blind`` emptied (values = variances = 0)."""
     from ..blinding import blinded_bins
 
     h = hist.copy()
     mask = blinded_bins(h.edges, blind)
-    h.weight_sum[mask] = 0.0
-    h.weight_sq_sum[mask] = 0.0
+    h.values()[mask] = 0.0
+    h.variances()[mask] = 0.0
     return h
 
 
@@ -61,7 +61,7 @@ def _save_spectrum(hist: Any, path: Path, blinding: Mapping[str, Any]) -> Path:
     d["blinded"] = {
         "window": list(blinding.get("window") or []),
         "hidden_range": list(hidden),
-        "note": "the bins overlapping the blinded window are hidden: their weight_sum and weight_sq_sum "
+        "note": "the bins overlapping the blinded window are hidden: their values and variances "
                 "are set to 0 (not measured empty); rerun with --unblind for the full spectrum",
     }
     return atomic_write(path, json.dumps(d, indent=1))

@@ -49,11 +49,11 @@ __all__ = ["ScanResult", "scan"]
 @dataclass(frozen=True)
 class _Spectrum:
     edges: np.ndarray      # bins in the window
-    counts: np.ndarray     # effective counts k_i weight_sum_i (window bins)
+    counts: np.ndarray     # effective counts k_i values_i (window bins)
     scale: float           # overall factor sum(w)/sum(w^2) (1 unweighted), for information
     window: tuple[float, float]
     unit: str
-    bin_scale: np.ndarray | None = None  # per-bin k_i = weight_sum_i/weight_sq_sum_i (None unweighted)
+    bin_scale: np.ndarray | None = None  # per-bin k_i = values_i/variances_i (None unweighted)
 
 
 def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
@@ -357,7 +357,7 @@ class ScanResult(FrozenValue):
     weight_scale : float
         Weighted spectra: the overall ``sum w / sum w^2`` of the window, for information
         (1 unweighted).  The likelihood itself scales every bin by its own
-        ``k_i = weight_sum_i / weight_sq_sum_i`` (scaled Poisson, as :func:`peaksift.fit`; empty bins get
+        ``k_i = values_i / variances_i`` (scaled Poisson, as :func:`peaksift.fit`; empty bins get
         the overall value); yields are in weighted units.
     """
 
@@ -576,7 +576,7 @@ def scan(
         equal to the window's top is in the last bin) in bins of a quarter of the smallest
         resolution (50-2000 bins) unless ``bins`` is given; the scan of an array and of the
         histogram built from it are the same.  Weighted bins are scaled Poisson variables: effective
-        counts ``k_i weight_sum_i`` with ``k_i = weight_sum_i / weight_sq_sum_i`` per bin (Bohm and Zech, NIM A
+        counts ``k_i values_i`` with ``k_i = values_i / variances_i`` per bin (Bohm and Zech, NIM A
         748 (2014) 1; the same likelihood as the weighted binned :func:`peaksift.fit`, so
         q0 agrees with two such fits); yields are reported in weighted units.
     signal, background : shape name or Shape
