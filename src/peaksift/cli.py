@@ -2,7 +2,7 @@
 
 Sub-commands::
 
-    peaksift inspect PATH...        what is in a set of Parquet event files
+    peaksift inspect PATH...        what is in a set of Parquet / Arrow IPC event files
     peaksift demo OUTDIR            write the demo scenario (events, truth, ready config)
     peaksift search CONFIG          the whole search (spectrum, fit, scan, significance, limits, report)
     peaksift spectrum CONFIG        only the selected spectrum: histogram file and figure
@@ -29,7 +29,8 @@ Handler = Callable[[argparse.Namespace], int]
 def _cmd_inspect(args: argparse.Namespace) -> int:
     from .events import describe
 
-    print(describe(args.paths if len(args.paths) > 1 else args.paths[0]))
+    print(describe(args.paths if len(args.paths) > 1 else args.paths[0],
+                   column_pattern=args.column_pattern))
     return 0
 
 
@@ -217,7 +218,11 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
-    q = sub.add_parser("inspect", help="describe Parquet event files (collections, fields, counts)")
+    q = sub.add_parser("inspect", help="describe Parquet or Arrow IPC event files (collections, "
+                       "fields, counts)")
+    q.add_argument("--column-pattern", default="{collection}.{field}",
+                   help="how sibling list columns name a collection's fields (default "
+                        "%(default)s; e.g. {collection}_{field})")
     q.add_argument("paths", nargs="+", help="files, directories or globs")
     q.set_defaults(handler=_cmd_inspect)
 
