@@ -7,4 +7,8 @@ from ._mass import MassHistogram
 from ._protocol import MassAxis, as_spectrum
 from .binning import in_range
 
+# the public home of the classes (reprs, pickles and the documentation name it)
+MassHistogram.__module__ = __name__
+MassAxis.__module__ = __name__
+
 __all__ = ["MassAxis", "MassHistogram", "as_spectrum", "in_range"]
