@@ -3,11 +3,15 @@
 Where to start
 --------------
 * ``read_events`` / ``iter_events`` / ``describe``  -- read Parquet events (awkward + vector).
-* ``pair``                                          -- build di-object candidates under cuts.
+* ``pair``                                          -- build di-object candidates under cuts
+                                                       (mass hypotheses per leg, dE/dx
+                                                       identification: ``energy_loss``).
 * ``MassHistogram``                                 -- weighted mass spectrum.
 * ``fit``                                           -- extended signal-plus-background fit.
 * ``Resolution``                                    -- detector mass resolution sigma(m).
 * ``scan``                                          -- local significance vs mass hypothesis.
+* ``signal_model``                                  -- shape and efficiency from simulated samples.
+* ``combine`` / ``combined_limits``                 -- several channels, one sigma x B.
 * ``run_search``                                    -- the whole search from a TOML config.
 
 Public names are imported lazily so ``import peaksift`` and the command line stay quick.
@@ -24,6 +28,7 @@ from .errors import (
     ExecutionError,
     FitError,
     InputError,
+    OutputError,
     PeaksiftError,
 )
 
@@ -45,6 +50,14 @@ _EXPORTS: dict[str, str] = {
     "ScanResult": "peaksift.stats.scan",
     "LimitResult": "peaksift.stats.limits",
     "upper_limits": "peaksift.stats.limits",
+    "signal_model": "peaksift.stats.signal_model",
+    "SignalModel": "peaksift.stats.signal_model",
+    "SignalSample": "peaksift.stats.signal_model",
+    "Channel": "peaksift.stats.channels",
+    "Combination": "peaksift.stats.channels",
+    "CombinedLimits": "peaksift.stats.channels",
+    "combine": "peaksift.stats.channels",
+    "combined_limits": "peaksift.stats.channels",
     "run_search": "peaksift.search.run",
     "SearchResult": "peaksift.search.result",
     "load_config": "peaksift.config.build",
@@ -53,11 +66,14 @@ _EXPORTS: dict[str, str] = {
 _SUBMODULES = {
     "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing", "blinding",
     "histogram", "fitting", "config", "execution", "search", "plotting", "report",
-    "resonances", "errors", "resolution",
+    "resonances", "errors", "resolution", "energy_loss", "simulate_tracks",
 }
 
 __all__ = [
     "Candidates",
+    "Channel",
+    "Combination",
+    "CombinedLimits",
     "ConfigError",
     "CutError",
     "ExecutionError",
@@ -66,11 +82,16 @@ __all__ = [
     "InputError",
     "LimitResult",
     "MassHistogram",
+    "OutputError",
     "PeaksiftError",
     "Resolution",
     "ScanResult",
     "SearchResult",
+    "SignalModel",
+    "SignalSample",
     "__version__",
+    "combine",
+    "combined_limits",
     "compile_cut",
     "cuts",
     "describe",
@@ -83,6 +104,7 @@ __all__ = [
     "run_search",
     "scan",
     "shapes",
+    "signal_model",
     "stats",
     "upper_limits",
 ]

@@ -71,11 +71,14 @@ __all__ = [
     "DEMO_EVENTS",
     "DEMO_SEED",
     "PROCESSES",
+    "SIGNAL_SAMPLE_MASSES",
     "Resonance",
     "Scenario",
     "breit_wigner_pdf",
     "generate",
+    "generate_signal_sample",
     "write_demo",
+    "write_signal_samples",
 ]
 
 GENERATOR_VERSION = "peaksift.simulate 1"
@@ -519,12 +522,6 @@ def _writer(path: Path, schema: pa.Schema) -> pq.ParquetWriter:
                             use_dictionary=False, column_encoding=enc)
 
 
-def _atomic_json(path: Path, obj: Any) -> None:
-    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
-    tmp.write_text(json.dumps(obj, indent=2, sort_keys=False) + "\n")
-    os.replace(tmp, path)
-
-
 def write_demo(
     outdir: str | os.PathLike,
     *,
@@ -534,18 +531,22 @@ def write_demo(
     files: int = 2,
     row_group_events: int = 50_000,
     scenario: Scenario = DEMO,
+    share_folder: bool = False,
 ) -> dict[str, Any]:
     """Write the demo data set to ``outdir``: Parquet event files and ``truth.json``.
 
     Events are generated and written block by block (:data:`BLOCK_EVENTS` at a time), so
-    memory stays near 150 MB (resident) whatever ``n_events``.  Files are written under temporary names
-    and renamed when complete.
+    memory stays near 150 MB (resident) whatever ``n_events``.  Files are written into a
+    staging folder inside ``outdir`` and moved into place when all are complete (the
+    output-folder contract of :mod:`peaksift._output`).
 
     Parameters
     ----------
     outdir : path
         Created if missing.  Files are ``events_NNN.parquet`` (``simulated_NNN.parquet`` for
-        the weighted variant); older files of that name pattern in ``outdir`` are replaced.
+        the weighted variant) and ``truth.json``.  A folder holding files peaksift did not
+        write is refused unless ``share_folder``; files of an earlier demo written there
+        (listed in its ``peaksift-manifest.json``) are replaced, nothing else is touched.
     n_events, seed : int, optional
         Defaults :data:`DEMO_EVENTS` and :data:`DEMO_SEED`.
     weighted : bool
@@ -554,6 +555,9 @@ def write_demo(
         Number of files the events are split into (contiguous, nearly equal).
     row_group_events : int
         Events per Parquet row group (the reader's chunk unit).
+    share_folder : bool
+        Write beside files peaksift did not write (they are never touched; a name clash
+        with one of them is refused).
 
     Returns
     -------
@@ -561,22 +565,44 @@ def write_demo(
         ``files`` (list of paths), ``truth`` (the truth record), ``truth_file``, ``summary``
         (a few lines for the terminal).
     """
+    from ._output import staged_output
+
     n, s = _check_size(DEMO_EVENTS if n_events is None else n_events,
                        DEMO_SEED if seed is None else seed)
-    if int(files) < 1 or int(files) > n:
-        raise InputError(f"files must be between 1 and the number of events ({n}), got {files}")
+    if int(files) < 1:
+        raise InputError(f"files must be 1 or more, got {files}")
+    if int(files) > n:
+        raise InputError(f"{n} event{'s' if n != 1 else ''} cannot fill {files} files: ask for "
+                         f"at least {files} events (peaksift demo --events {files})")
     if int(row_group_events) < 1:
         raise InputError(f"row_group_events must be positive, got {row_group_events}")
     out = Path(outdir)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise InputError(f"cannot create output directory '{out}': {exc.strerror}; choose a "
-                         "writable directory") from None
     stem = "simulated" if weighted else "events"
+    names = [f"{stem}_{i:03d}.parquet" for i in range(files)]
+    with staged_output(out, "demo", share=share_folder, names=[*names, "truth.json"]) as stage:
+        assert stage is not None
+        totals, weight_sum = _write_events(stage.path, names, n, s, scenario, weighted,
+                                           int(row_group_events))
+        paths = [out / nm for nm in names]
+        truth = _truth(scenario, n, s, weighted, paths, row_group_events, totals, weight_sum)
+        _json_file(stage.path / "truth.json", truth)
+    return _demo_summary(out, paths, truth, n, s, weighted, scenario)
+
+
+def _json_file(path: Path, obj: Any) -> None:
+    from ._files import atomic_write
+
+    atomic_write(path, json.dumps(obj, indent=2, sort_keys=False) + "\n")
+
+
+def _write_events(folder: Path, names: list[str], n: int, s: int, scenario: Scenario,
+                  weighted: bool, row_group_events: int
+                  ) -> tuple[dict[str, dict[str, int]], dict[str, float]]:
+    """Generate the events block by block into ``folder``/``names`` (nearly equal,
+    contiguous parts); returns the per-process counts and sums of weights."""
+    files = len(names)
     bounds = [round(i * n / files) for i in range(files + 1)]
-    paths = [out / f"{stem}_{i:03d}.parquet" for i in range(files)]
-    tmps = [p.with_name(f".{p.name}.tmp{os.getpid()}") for p in paths]
+    paths = [folder / nm for nm in names]
     totals: dict[str, dict[str, int]] = {}
     weight_sum: dict[str, float] = {}
     writers: list[pq.ParquetWriter | None] = [None] * files
@@ -606,31 +632,23 @@ def write_demo(
                     chunk = pa.concat_tables(pending[f]).combine_chunks()
                     take = min(row_group_events, chunk.num_rows)
                     if writers[f] is None:
-                        writers[f] = _writer(tmps[f], chunk.schema)
+                        writers[f] = _writer(paths[f], chunk.schema)
                     writers[f].write_table(chunk.slice(0, take), row_group_size=take)
                     rest = chunk.slice(take)
                     pending[f] = [rest] if rest.num_rows else []
                     pending_n[f] = rest.num_rows
+    finally:
         for w_ in writers:
             if w_ is not None:
-                w_.close()
-        for t, p in zip(tmps, paths):
-            os.replace(t, p)
-        # files of an earlier, larger split would otherwise join this data set's glob
-        for old in out.glob(f"{stem}_[0-9][0-9][0-9].parquet"):
-            if old not in paths:
-                old.unlink()
-    except BaseException:
-        for w_ in writers:
-            if w_ is not None:
-                with contextlib.suppress(OSError, pa.ArrowException):
+                with contextlib.suppress(pa.ArrowException):
                     w_.close()
-        for t in tmps:
-            t.unlink(missing_ok=True)
-        raise
-    truth = _truth(scenario, n, s, weighted, paths, row_group_events, totals, weight_sum)
+    return totals, weight_sum
+
+
+def _demo_summary(out: Path, paths: list[Path], truth: dict[str, Any], n: int, s: int,
+                  weighted: bool, scenario: Scenario) -> dict[str, Any]:
+    files = len(paths)
     truth_path = out / "truth.json"
-    _atomic_json(truth_path, truth)
     size = sum(p.stat().st_size for p in paths)
     x = scenario.x
     summary = (
@@ -710,3 +728,141 @@ def _truth(sc: Scenario, n: int, seed: int, weighted: bool, paths: list[Path],
                if weighted else {})},
         "parameters": sc.to_dict(),
     }
+
+
+# ------------------------------------------------------------------ simulated signal samples
+#: generated masses (GeV) of the demo's simulated signal samples
+SIGNAL_SAMPLE_MASSES = (120.0, 137.5, 155.0, 172.5, 190.0)
+#: natural width (GeV) of the samples' resonance: narrow, so the detector sets the peak
+SIGNAL_SAMPLE_WIDTH = 0.05
+
+
+def generate_signal_sample(mass: float, lepton: str, n_events: int, *, seed: int = DEMO_SEED,
+                           scenario: Scenario = DEMO, width: float = SIGNAL_SAMPLE_WIDTH
+                           ) -> tuple[pa.Table, dict[str, Any]]:
+    """A simulated signal sample: ``n_events`` decays of a narrow resonance of ``mass`` (GeV)
+    to a ``lepton`` pair (``"muon"`` or ``"electron"``), through the demo's detector
+    (final-state radiation, smearing, acceptance, efficiencies, isolation, fake leptons).
+
+    Returns the events (columns ``run, event, n_vertices, muon, electron, true_mass``, the
+    data's layout without tracks) and the generator's truth for the intended selection
+    (:data:`INTENDED_SELECTION`'s cuts on ``lepton``, opposite charge, mass inside the
+    search window): ``efficiency`` (selected / generated, with its binomial error),
+    ``resolution_68_gev`` (half the central 68% range of reconstructed minus generated
+    mass of the selected events) and ``resolution_fwhm_gev`` (their full width at half
+    maximum over 2 sqrt(2 ln 2), the Gaussian-equivalent core width).
+    """
+    if lepton not in ("muon", "electron"):
+        raise InputError(f"lepton must be 'muon' or 'electron', got {lepton!r}")
+    n, s = _check_size(n_events, seed)
+    sc = scenario
+    code = 0 if lepton == "muon" else 1
+    rng = np.random.default_rng(np.random.SeedSequence([s, 7919, code, round(mass * 1000)]))
+    res = Resonance("signal sample", float(mass), float(width), (0.9 * mass, 1.1 * mass))
+    m_true = _sample_breit_wigner(rng, n, res)
+    m_l = _M_MU if lepton == "muon" else _M_E
+    d1, d2 = _decay(rng, m_true, sc, m_l)
+    objs = {"muon": _Objects(), "electron": _Objects()}
+    idx = np.arange(n)
+    reco = []
+    for d, q in ((d1, -1), (d2, 1)):
+        pt, eta, phi = _polar(d[0], d[1], d[2])
+        charge = np.full(n, q, dtype=np.int8)
+        if lepton == "muon":
+            pt = _fsr(rng, pt, sc.fsr_probability_muon, sc.fsr_fraction_range)
+            pt, charge, kept = _muon_detector(rng, pt, eta, charge, sc)
+        else:
+            pt = _fsr(rng, pt, sc.fsr_probability_electron, sc.fsr_fraction_range)
+            pt, kept = _electron_detector(rng, pt, eta, sc)
+        iso = rng.exponential(sc.prompt_isolation_mean, n)
+        objs[lepton].add(idx[kept], pt=pt[kept], eta=eta[kept], phi=phi[kept],
+                         mass=np.full(int(kept.sum()), m_l), charge=charge[kept],
+                         isolation=iso[kept])
+        reco.append((pt, eta, phi, charge, iso, kept))
+    for name, lam, ml, eta_max in (("muon", sc.fake_muons_per_event, _M_MU, sc.muon_eta_max),
+                                   ("electron", sc.fake_electrons_per_event, _M_E,
+                                    sc.electron_eta_max)):
+        k = rng.poisson(lam, n)
+        ev = np.repeat(idx, k)
+        nf = ev.size
+        objs[name].add(ev, pt=sc.fake_pt_min + rng.exponential(sc.fake_pt_mean_above_min, nf),
+                       eta=rng.uniform(-eta_max, eta_max, nf), phi=rng.uniform(-np.pi, np.pi, nf),
+                       mass=np.full(nf, ml), charge=rng.choice(np.array([-1, 1], np.int8), nf),
+                       isolation=rng.gamma(sc.fake_isolation_shape, sc.fake_isolation_scale, nf))
+    (p1, e1, f1, c1, i1, k1), (p2, e2, f2, c2, i2, k2) = reco
+    lo_w, hi_w = INTENDED_SELECTION["search_window_gev"]
+    m_reco = kin.pair_mass(p1, e1, f1, m_l, p2, e2, f2, m_l)
+    both = (k1 & k2 & _intended_pass(p1, e1, i1) & _intended_pass(p2, e2, i2) & (c1 != c2)
+            & (m_reco >= lo_w) & (m_reco <= hi_w))
+    cols: dict[str, pa.Array] = {
+        "run": pa.array(np.full(n, 2000 + code, np.int32)),
+        "event": pa.array(np.arange(n, dtype=np.int64)),
+        "n_vertices": pa.array(rng.poisson(sc.vertices_mean, n).astype(np.int16)),
+    }
+    for name in ("muon", "electron"):
+        offsets, flat = _assemble(objs[name], n)
+        struct = pa.StructArray.from_arrays(
+            [pa.array(_round_mantissa(flat[k], _PRECISION[k])) for k in ("pt", "eta", "phi")]
+            + [pa.array(flat["mass"].astype(np.float32)),
+               pa.array(flat["charge"].astype(np.int8)),
+               pa.array(_round_mantissa(flat["isolation"], _PRECISION["isolation"]))],
+            ["pt", "eta", "phi", "mass", "charge", "isolation"])
+        cols[name] = pa.ListArray.from_arrays(pa.array(offsets.astype(np.int32)), struct)
+    cols["true_mass"] = pa.array(m_true.astype(np.float32))
+    k_sel = int(both.sum())
+    eff = k_sel / n
+    dm = (m_reco - m_true)[both]
+    q16, q84 = np.percentile(dm, [15.87, 84.13]) if k_sel else (np.nan, np.nan)
+    truth = {"mass_gev": float(mass), "lepton": lepton, "generated": n, "selected": k_sel,
+             "efficiency": eff, "efficiency_error": float(np.sqrt(eff * (1 - eff) / n)),
+             "resolution_68_gev": float(0.5 * (q84 - q16)),
+             "resolution_fwhm_gev": _fwhm_sigma(dm), "natural_width_gev": float(width)}
+    return pa.table(cols), truth
+
+
+def _fwhm_sigma(x: np.ndarray) -> float:
+    """Full width at half maximum of a histogram of ``x`` (bins of a tenth of the central
+    68% half-range), over 2 sqrt(2 ln 2)."""
+    if x.size < 100:
+        return float("nan")
+    q16, q50, q84 = np.percentile(x, [15.87, 50.0, 84.13])
+    step = 0.1 * 0.5 * (q84 - q16)
+    h, e = np.histogram(x, bins=np.arange(q50 - 6 * (q84 - q16), q50 + 6 * (q84 - q16), step))
+    c = 0.5 * (e[1:] + e[:-1])
+    hs = np.convolve(h, np.ones(3) / 3, mode="same")  # light smoothing against bin noise
+    top = int(np.argmax(hs))
+    half = 0.5 * hs[top]
+    lo = top - int(np.argmax(hs[top::-1] < half))
+    hi = top + int(np.argmax(hs[top:] < half))
+    left = np.interp(half, [hs[lo], hs[lo + 1]], [c[lo], c[lo + 1]])
+    right = np.interp(half, [hs[hi], hs[hi - 1]], [c[hi], c[hi - 1]])
+    return float((right - left) / (2.0 * np.sqrt(2.0 * np.log(2.0))))
+
+
+def write_signal_samples(outdir: str | os.PathLike, *, n_events: int = 10_000,
+                         masses: tuple[float, ...] = SIGNAL_SAMPLE_MASSES,
+                         leptons: tuple[str, ...] = ("muon", "electron"),
+                         seed: int = DEMO_SEED, scenario: Scenario = DEMO) -> dict[str, Any]:
+    """Write simulated signal samples (``signal_<lepton>_<mass>.parquet``, one per lepton and
+    mass, :func:`generate_signal_sample`) and their ``truth.json`` to ``outdir``."""
+    out = Path(outdir)
+    out.mkdir(parents=True, exist_ok=True)
+    samples = []
+    for lepton in leptons:
+        for m in masses:
+            table, truth = generate_signal_sample(m, lepton, n_events, seed=seed,
+                                                  scenario=scenario)
+            path = out / f"signal_{lepton}_{m:g}.parquet"
+            tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
+            with _writer(tmp, table.schema) as w:
+                w.write_table(table)
+            os.replace(tmp, path)
+            samples.append({"file": path.name, **truth})
+    record = {"generator": GENERATOR_VERSION, "scenario": scenario.name, "seed": seed,
+              "selection": {k: INTENDED_SELECTION[k] for k in ("cut", "charge", "choose",
+                                                                "search_window_gev")},
+              "note": "true efficiencies and resolutions of the generator for the intended "
+                      "selection applied to each sample's lepton",
+              "samples": samples}
+    _json_file(out / "truth.json", record)
+    return record

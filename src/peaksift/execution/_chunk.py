@@ -76,6 +76,9 @@ class Selection:
     column_pattern : str
         How sibling list columns name a collection's fields (see
         :func:`peaksift.read_events`; default ``"{collection}.{field}"``).
+    hypotheses, identification, assignment
+        Mass hypotheses per leg, the dE/dx response and the assignment rule, passed to
+        :func:`peaksift.pair` unchanged.
     """
 
     first: str
@@ -97,6 +100,9 @@ class Selection:
     rapidity_edges: tuple[float, ...] | None = None
     unit: str = "GeV"
     column_pattern: str = "{collection}.{field}"
+    hypotheses: tuple[str, ...] | None = None
+    identification: Any = None
+    assignment: str = "both"
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -289,7 +295,8 @@ def process_events(events: Any, selection: Selection, *, first_event: int = 0,
             cut=selection.cut, second_cut=selection.second_cut, event_cut=selection.event_cut,
             charge=selection.charge, choose=selection.choose,
             target_mass=selection.target_mass, min_delta_r=selection.min_delta_r,
-            event_offset=int(first_event),
+            event_offset=int(first_event), hypotheses=selection.hypotheses,
+            identification=selection.identification, assignment=selection.assignment,
         )
     messages = _data_messages(caught)
     mass = np.asarray(cands.mass, dtype=float)

@@ -11,6 +11,7 @@ import numpy as np
 
 from ..config import Config
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
+from .doubts import doubts
 
 
 # ----------------------------------------------------------------------------- results
@@ -57,10 +58,15 @@ class SearchResult:
         Where the outputs were written (None when ``out=False``).
     figures : dict
         Figure name -> PNG path.
+    signal_model : SignalModel or None
+        The signal model from ``[signal_model]`` (results.json ``signal_model``), which gave
+        the scan and the limits their shape, resolution and efficiency.
     fit_settings : dict
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
         results.json ``fit.settings``.
+    identification : dict or None
+        The dE/dx identification the pairing used (response, calibration fit), when on.
     """
 
     config: Config
@@ -78,6 +84,8 @@ class SearchResult:
     outdir: Path | None = None
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
+    signal_model: Any = None
+    identification: Mapping[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
@@ -94,6 +102,9 @@ class SearchResult:
         scan_extra = {"resolution_model": self.config.model.resolution.kind,
                       "signal_shape": _scan_signal_name(self.config),
                       "log10_p_local": lg_scan}
+        if self.signal_model is not None:  # the scan's shape and sigma(m) came from samples
+            scan_extra.update(resolution_model="signal_model",
+                              signal_shape=self.signal_model.shape)
         out: dict[str, Any] = {
             "peaksift_version": __version__,
             "config": self.config.to_dict(),
@@ -115,9 +126,14 @@ class SearchResult:
             "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
             "known_matches": [k.to_dict() for k in self.known_matches],
             "calibration": _plain(dict(self.calibration)) if self.calibration else None,
+            "identification": _plain(dict(self.identification))
+            if self.identification else None,
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
         }
+        if self.signal_model is not None:  # absent without [signal_model]: today's keys
+            out["signal_model"] = self.signal_model.to_dict()
+        out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}

@@ -17,6 +17,7 @@ from .common import (
     _collect,
     _fill,
     _require_candidates,
+    _require_sidebands,
     _save_spectrum,
     _scan_masses,
     _scan_signal_name,
@@ -26,7 +27,9 @@ from .common import (
     _where,
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
+from .identification import dedx_identification
 from .result import SearchResult
+from .signal import search_signal_model
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
 
 
@@ -39,6 +42,7 @@ def run_search(
     seed: int | None = None,
     engine: str | None = None,
     progress: bool = False,
+    share_folder: bool = False,
 ) -> SearchResult:
     """Run the whole search described by a configuration.
 
@@ -56,6 +60,10 @@ def run_search(
         Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
     progress : bool
         Show progress bars (reading; toys).
+    share_folder : bool
+        Write into an output folder that holds files peaksift did not write (they are never
+        touched; a file of the same name as one of ours is refused).  Without it such a
+        folder is refused before the run.
 
     Returns
     -------
@@ -67,11 +75,19 @@ def run_search(
     PeaksiftError
         Any user-facing problem (configuration, input, cut, fit); nothing is written then.
     """
+    from .combination import is_combination, run_combination
+
+    if is_combination(config):  # several channels: each its own search, then combined
+        if unblind:
+            raise ConfigError("--unblind does not apply to a combination (blinding is not "
+                              "supported there yet)")
+        return run_combination(config, out=out, toys=toys, seed=seed, engine=engine,
+                               progress=progress)  # type: ignore[return-value]
     started = _utc()
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
-    with _staged(target) as stage:
+    with _staged(target, "search", share_folder) as stage:
         res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
                       stage=stage, target=target)
     return res
@@ -85,7 +101,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     from ..resonances import match_known, pair_charge
     from ..stats.scan import scan
 
-    col, _, _ = _collect(cfg, progress=progress)
+    ident = dedx_identification(cfg, progress=progress)
+    col, _, _ = _collect(cfg, progress=progress, identification=ident)
     lo, hi = cfg.spectrum.window
     hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
     _require_candidates(cfg, col, hist)
@@ -93,6 +110,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     blind_window = tuple(cfg.blinding.window) if blind["active"] else None
     if blind_window is not None:  # nothing downstream sees the blinded bins' contents
         hist = _blinded_copy(hist, blind_window)
+        _require_sidebands(cfg, hist)
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -108,8 +126,13 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         width = None
     seed = cfg.significance.seed
 
-    sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
-                natural_width=width, blind=blind_window, refit=False)
+    smodel = search_signal_model(cfg, progress=progress)
+    if smodel is None:
+        sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
+                    natural_width=width, blind=blind_window, refit=False)
+    else:  # shape, resolution and efficiency from the simulated samples
+        sres = scan(hist, None, bkg, masses, window=(lo, hi), blind=blind_window,
+                    refit=False, signal_model=smodel)
     best = dict(sres.global_significance(
         method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
         u0=cfg.significance.reference_level, progress=progress,
@@ -129,7 +152,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     limits = None
     if cfg.limits.enabled:
-        limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress)
+        limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
+                         smodel)
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -159,6 +183,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         config=cfg, histogram=hist, collected=col, background_fit=bonly, fit=fres, scan=sres,
         best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
         blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
+        signal_model=smodel,
+        identification=ident.to_dict() if ident is not None else None,
     )
     if stage is None:
         prov["finished"] = _utc()
@@ -170,6 +196,13 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
                                    log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    if smodel is not None:
+        figs.update(zip(("signal_model_parameters", "signal_model_shapes"),
+                        smodel.plot(figdir)))
+    if ident is not None:
+        figs["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
+                                            hypotheses=tuple(cfg.pairing.hypotheses),
+                                            band=cfg.identification.band)
     _save_spectrum(hist, stage.path / "spectrum.json", blind)
     prov["finished"] = _utc()
     final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
@@ -204,7 +237,7 @@ def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
 
 
 def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
-            width: float | None, blind: Any, progress: bool) -> Any:
+            width: float | None, blind: Any, progress: bool, smodel: Any = None) -> Any:
     from ..stats.limits import upper_limits
 
     n = min(cfg.limits.points, masses.size)
@@ -217,15 +250,20 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
                 f"{_where(cfg)}: limits.toy_masses[{i}] = {m:g} lies outside the limit scan "
                 f"[{lm[0]:g}, {lm[-1]:g}] GeV (the scan keeps 3 resolution sigma inside the "
                 "window unless scan.start / scan.stop say otherwise); choose masses inside it")
+    if smodel is not None:  # the model gives shape, resolution and efficiency
+        sig, width = None, None
     return upper_limits(
-        hist, sig, bkg, lm, resolution=cfg.model.resolution.resolution,
+        hist, sig, bkg, lm,
+        **({"signal_model": smodel} if smodel is not None
+           else {"resolution": cfg.model.resolution.resolution}),
         window=cfg.spectrum.window, cl=L.cl,
         method=L.method,
         **_opt(toys=L.toys if L.method != "asymptotic" else None, seed=cfg.significance.seed,
                toy_masses=list(L.toy_masses) or None,
                natural_width=width, blind=blind, luminosity=L.luminosity,
                luminosity_uncertainty=L.luminosity_uncertainty or None,
-               efficiency=L.efficiency if L.luminosity is not None else None,
+               efficiency=L.efficiency if L.luminosity is not None and smodel is None
+               else None,
                efficiency_uncertainty=L.efficiency_uncertainty or None,
                unit=L.cross_section_unit if L.luminosity is not None else None),
         constraint=L.constraint, progress=progress,
@@ -281,6 +319,8 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "background_shape": c.background,
         "width_fixed_to_table": bool(fixed),
         "valid": bool(d.get("valid")),
+        "problems": list(d.get("problems") or []),
+        "gof": d.get("gof"),
         "fitted_mass": {"value": m, "error": e},
         "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),

@@ -39,6 +39,7 @@ from ..errors import DataWarning, FitError, PeaksiftError
 from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
 from ..resolution import check_resolved, resolution_from
 from . import lee
+from .bounds import check_fit_bins, check_plan, check_widths
 from .significance import p_from_q0, z_from_q0
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background, profile_signal, run_toys
 
@@ -82,6 +83,7 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
             nb = int(np.clip(math.ceil((hi - lo) / (0.25 * min_sigma())), 50, 2000))
         else:
             nb = int(bins)
+            check_plan(2, nb)  # before the histogram is allocated
         hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
     weight_sum = np.asarray(hist.values(), float)
     edges = np.asarray(hist.edges, float)
@@ -121,7 +123,9 @@ def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
                  else np.full(masses.shape, float(natural_width)))
     out: list[Any] = []
     for p in shape.parameters_for(window):
-        if p.name == "mass":
+        if callable(given.get(p.name)):  # a function of the hypothesised mass (signal model)
+            out.append(np.asarray(given[p.name](masses), float)[:, None])
+        elif p.name == "mass":
             out.append(masses[:, None])
         elif p.name == "sigma":
             out.append(sigma[:, None])
@@ -135,6 +139,31 @@ def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
         else:
             out.append(float(p.start))
     return out
+
+
+def from_signal_model(signal_model: Any, signal: Any, resolution: Any, relative: Any,
+                      absolute: Any, signal_params: Any) -> tuple[Any, Any, dict[str, Any]]:
+    """The signal shape, resolution and shape parameters (functions of the hypothesised
+    mass) a :class:`~peaksift.stats.signal_model.SignalModel` provides; refuses a second
+    source for any of them."""
+    from .signal_model import SignalModel
+
+    if not isinstance(signal_model, SignalModel):
+        raise FitError(f"signal_model must be a peaksift SignalModel (from signal_model() or "
+                       f"SignalModel.from_dict), got {type(signal_model).__name__}")
+    if any(v is not None for v in (resolution, relative, absolute)):
+        raise FitError("give the resolution either through signal_model= or through "
+                       "resolution=/relative_resolution=/absolute_resolution=, not both")
+    if signal_params:
+        raise FitError("signal_params= cannot be combined with signal_model= (the model "
+                       "gives every shape parameter as a function of mass)")
+    if signal is not None:
+        from .. import shapes
+
+        if shapes.get(signal).name != signal_model.shape:
+            raise FitError(f"signal shape {shapes.get(signal).name!r} differs from the signal "
+                           f"model's {signal_model.shape!r}; pass signal=None")
+    return signal_model.shape, signal_model.resolution, signal_model.shape_functions()
 
 
 def _background_start(background: Any, window: tuple[float, float]) -> tuple[np.ndarray,
@@ -246,13 +275,18 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    resolution: Any = None, relative_resolution: Any = None,
                    absolute_resolution: Any = None, window: Any, natural_width: Any,
                    blind: Any, signal_params: Any, bins: Any,
-                   background_start: Mapping[str, float] | None = None, what: str = "scan"
+                   background_start: Mapping[str, float] | None = None,
+                   signal_model: Any = None, what: str = "scan"
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
     from ..histogram import MassHistogram, as_spectrum
 
     data = as_spectrum(data, what=what)  # a MassHistogram or (masses, weights); else FitError
 
+    if signal_model is not None:
+        signal, resolution, signal_params = from_signal_model(
+            signal_model, signal, resolution, relative_resolution, absolute_resolution,
+            signal_params)
     sig = shapes.get(signal)
     bkg = shapes.get(background)
     if sig.kind != "signal":
@@ -287,6 +321,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
         npts = int(masses)
         if npts < 2:
             raise FitError(f"scan needs at least 2 mass points, got {masses!r}")
+        check_plan(npts, spec.edges.size - 1)
         pad = 0.05 * (hi - lo)
         m_arr = np.linspace(lo + pad, hi - pad, npts)
     if m_arr.ndim != 1 or m_arr.size == 0 or not np.all(np.isfinite(m_arr)):
@@ -295,11 +330,17 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
     if outside.any():
         raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
                        f"({lo:g}, {hi:g}); scan inside the window")
+    check_plan(m_arr.size, spec.edges.size - 1)
     sigma = check_resolved(resolution, m_arr, spec.edges)
+    gamma = natural_width(m_arr) if callable(natural_width) else natural_width
+    check_widths((lo, hi), float(np.max(sigma)),
+                 None if gamma is None else float(np.max(gamma)))
     blinded = blinded_bins(spec.edges, blind)
     used = np.flatnonzero(~blinded)
-    if used.size < bkg.parameters.__len__() + 3:
-        raise FitError("scan: too few bins outside the blinded range to fit the background")
+    try:
+        check_fit_bins(used.size, len(bkg.parameters), n_blinded=int(blinded.sum()))
+    except FitError as exc:
+        raise FitError(f"scan: {exc}") from None
     blinded_mass = np.zeros(m_arr.size, bool)
     if blind is not None:
         blinded_mass = (m_arr >= float(blind[0])) & (m_arr <= float(blind[1]))
@@ -327,6 +368,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                       fractions=fractions[~blinded_mass], nll_background=float(nll0[0]),
                       bin_scale=spec.bin_scale)
     info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
+            "signal_params": signal_params,
             "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
             "blinded_bins": blinded}
     return model, spec, info
@@ -563,6 +605,7 @@ def scan(
     expected_signal: Any = None,
     bins: int | None = None,
     refit: bool = True,
+    signal_model: Any = None,
 ) -> ScanResult:
     """Scan the local significance of a signal over mass hypotheses.
 
@@ -606,6 +649,10 @@ def scan(
         background-only fit plus this signal) is reported in ``z_expected`` at every mass.
     refit : bool
         Refit at the best mass with mass and width free (:func:`peaksift.fit`).
+    signal_model : SignalModel, optional
+        The signal shape, its parameters and the resolution as functions of the
+        hypothesised mass, from simulated samples (:func:`peaksift.stats.signal_model.signal_model`);
+        then ``signal`` is None (or the model's shape) and no resolution is given.
 
     Returns
     -------
@@ -620,7 +667,18 @@ def scan(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window,
-        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins)
+        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins,
+        signal_model=signal_model)
+    return scan_prepared(data, model, spec, info, blind=blind, expected_signal=expected_signal,
+                         natural_width=natural_width, refit=refit)
+
+
+def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, Any], *,
+                  blind: Any, expected_signal: Any, natural_width: Any,
+                  refit: bool) -> ScanResult:
+    """The scan of a model prepared by :func:`_prepare_model` (the channels of a
+    combination prepare theirs once and scan them here, as :func:`scan` does)."""
+    signal_params = info["signal_params"]
     m_all = info["masses"]
     bl = info["blinded_mass"]
     nm = m_all.size
@@ -704,7 +762,8 @@ def _refit(data: Any, info: dict[str, Any], spec: _Spectrum, best: int,
     for p in sig.parameters_for(spec.window):
         if p.name in ("mass", "sigma") or (p.name == "width" and natural_width is None):
             continue
-        fixed[p.name] = start.get(p.name, float((signal_params or {}).get(p.name, p.start)))
+        given = (signal_params or {}).get(p.name, p.start)
+        fixed[p.name] = start.get(p.name, float(given(m) if callable(given) else given))
     start = {k: v for k, v in start.items() if k not in fixed}
     try:
         return fit(data, sig, info["background"], spec.window, start=start, fixed=fixed)
