@@ -2,6 +2,7 @@
 
     python scripts/bench_read.py                 # demo-sized set + a 5M-event generated set
     python scripts/bench_read.py --events 1000000 --repeat 2
+    python scripts/bench_read.py --events 2000000 --collection muon   # one collection
 
 For each data set it times (best of --repeat):
 
@@ -10,7 +11,12 @@ For each data set it times (best of --repeat):
 * ``peaksift.read_events`` (everything: awkward arrays with Momentum4D records, input checks);
 * ``peaksift.iter_events`` over chunks (the streaming path the search uses).
 
-and prints events/s and the ratio speed(peaksift) / speed(raw pyarrow), from wall-clock time
+With ``--collection NAME`` the comparison is for one collection: the raw side reads that
+collection's leaf columns and turns them into numpy arrays (offsets and one flat array per
+field, ``combine_chunks`` + ``to_numpy``: what any reader of the data must do), peaksift
+reads ``read_events(source, NAME)``.
+
+It prints events/s and the ratio speed(peaksift) / speed(raw pyarrow), from wall-clock time
 and from user CPU time (all threads; steadier on a shared machine); the target is >= 0.8.
 The large set is generated to a temporary directory and removed afterwards.
 """
@@ -24,6 +30,7 @@ import tempfile
 import time
 from pathlib import Path
 
+import numpy as np
 import pyarrow.parquet as pq
 
 REPO_DIR = Path(__file__).resolve().parents[1]
@@ -48,20 +55,29 @@ def _timed(fn) -> tuple[float, float]:
     return t1.elapsed - t0.elapsed, t1.user - t0.user
 
 
-def bench(source: Path, repeat: int, chunk_events: int) -> dict[str, float]:
+def bench(source: Path, repeat: int, chunk_events: int, collection: str | None = None
+          ) -> dict[str, float]:
     files = events.list_files(source)
     n = sum(pq.ParquetFile(f).metadata.num_rows for f in files)
-    cols = {f: _leaf_columns(f) for f in files}
+    cols = {f: [c for c in _leaf_columns(f) if collection is None
+                or c.startswith(collection + ".")] for f in files}
 
     def raw() -> None:
         for f in files:
-            pq.ParquetFile(f).read(columns=cols[f], use_threads=True)
+            t = pq.ParquetFile(f).read(columns=cols[f], use_threads=True)
+            if collection is not None:  # and numpy arrays, as any reader needs them
+                ch = t.column(collection).combine_chunks()
+                _ = np.asarray(ch.offsets)
+                vals = ch.values
+                for i in range(vals.type.num_fields):
+                    _ = vals.field(i).to_numpy(zero_copy_only=False)
 
     def ours() -> None:
-        events.read_events(source)
+        events.read_events(source, collection)
 
     def streamed() -> None:
-        for _ in events.iter_events(source, chunk_events=chunk_events):
+        for _ in events.iter_events(source, chunk_events=chunk_events,
+                                    collections=collection):
             pass
 
     raw()  # warm the page cache once so neither side pays for the first disk read
@@ -94,6 +110,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--repeat", type=int, default=3)
     p.add_argument("--chunk-events", type=int, default=500_000)
     p.add_argument("--demo", default=str(REPO_DIR / "demo_data"), help="demo-sized data set")
+    p.add_argument("--collection", default=None,
+                   help="compare reading this one collection (raw side: pyarrow + numpy)")
     args = p.parse_args(argv)
 
     demo = Path(args.demo)
@@ -101,14 +119,16 @@ def main(argv: list[str] | None = None) -> int:
         if not any(demo.glob("*.parquet")):
             demo = Path(tmp) / "demo"
             simulate.write_demo(demo)
-        _report(f"demo-sized set ({demo})", bench(demo, args.repeat, args.chunk_events))
+        _report(f"demo-sized set ({demo})", bench(demo, args.repeat, args.chunk_events,
+                                                               args.collection))
         if args.events > 0:
             big = Path(tmp) / "big"
             t = time.perf_counter()
             files = max(1, args.events // 1_000_000)
             simulate.write_demo(big, n_events=args.events, files=files, row_group_events=100_000)
             print(f"(generated {args.events:,} events in {time.perf_counter() - t:.1f} s)")
-            _report("generated set", bench(big, args.repeat, args.chunk_events))
+            _report("generated set", bench(big, args.repeat, args.chunk_events,
+                                           args.collection))
     return 0
 
 

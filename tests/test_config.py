@@ -73,8 +73,10 @@ def test_bad_choice_suggests_value(tmp_path):
 def test_wrong_type(tmp_path):
     msg = _err(tmp_path, MINIMAL.replace("[spectrum]", '[spectrum]\nbins = "fifty"'))
     assert "spectrum.bins must be an integer" in msg
-    msg = _err(tmp_path, MINIMAL + "\n[execution]\nskip_bad_files = 1\n")
-    assert "execution.skip_bad_files must be true or false" in msg
+    msg = _err(tmp_path, MINIMAL + "\n[output]\nlog_scale = 1\n")
+    assert "output.log_scale must be true or false" in msg
+    msg = _err(tmp_path, MINIMAL + "\n[execution]\nunreadable_files = \"skip\"\n")
+    assert "execution.unreadable_files" in msg and "'left_out'" in msg
 
 
 def test_out_of_range(tmp_path):

@@ -46,7 +46,7 @@ def _write(path, counts, obj, layout, name="muon", extra_cols=None, row_group_si
         cols[name] = pa.ListArray.from_arrays(off, st)
     else:
         for k, v in obj.items():
-            cols[f"{name}_{k}"] = pa.ListArray.from_arrays(off, pa.array(v))
+            cols[f"{name}.{k}"] = pa.ListArray.from_arrays(off, pa.array(v))
     cols["weight"] = pa.array(np.linspace(0.5, 1.5, len(counts)))
     cols.update(extra_cols or {})
     pq.write_table(pa.table(cols), path, row_group_size=row_group_size)
@@ -119,7 +119,7 @@ def test_describe_content(small_demo):
     assert "2 files, 20000 events" in text
     assert "events_000.parquet" in text and "events_001.parquet" in text
     assert "muon: one list-of-struct column" in text
-    assert "track: sibling columns track_<field>" in text and "massless" in text
+    assert "track: sibling columns track.<field>" in text and "massless" in text
     assert "isolation float32" in text and "charge int8" in text
     assert "n_vertices (int16)" in text
     assert d.collections["muon"]["mean"] == pytest.approx(float(ak.mean(ak.num(ev.muon))))
@@ -152,7 +152,7 @@ def test_no_file_matches(tmp_path):
         events.read_events(str(tmp_path / "*.parquet"))
     with pytest.raises(InputError, match="no file or directory '.*missing.parquet'"):
         events.read_events(tmp_path / "missing.parquet")
-    with pytest.raises(InputError, match="contains no .parquet file"):
+    with pytest.raises(InputError, match="contains no .parquet or .arrow/.feather file"):
         events.read_events(tmp_path)
 
 
@@ -186,7 +186,7 @@ def test_non_numeric_kinematics(tmp_path):
     obj["eta"] = obj["eta"].astype(str)
     path = _write(tmp_path / "e.parquet", counts, obj, "columns")
     with pytest.raises(InputError, match=r"kinematic field 'eta' of collection 'muon' in "
-                                         r"'.*' \(column 'muon_eta'\) has type string"):
+                                         r"'.*' \(column 'muon.eta'\) has type string"):
         events.read_events(path)
 
 
@@ -215,7 +215,26 @@ def test_sibling_columns_with_different_counts(tmp_path):
     pq.write_table(pa.table(cols), tmp_path / "s.parquet")
     with pytest.raises(InputError, match=r"columns 'muon_pt' and 'muon_phi' of '.*' have "
                                          r"different numbers of entries in event 4"):
-        events.read_events(tmp_path / "s.parquet")
+        events.read_events(tmp_path / "s.parquet", column_pattern="{collection}_{field}")
+
+
+@pytest.mark.parametrize("pattern", ["{collection}_{field}", "{field}_of_{collection}",
+                                     "{collection}:{field}"])
+def test_column_pattern_names_sibling_columns(tmp_path, pattern):
+    # the same objects as list-of-struct records (the reference layout) and as sibling columns
+    # named by a pattern the user gives; without the pattern such columns are no collection
+    counts, obj = _truth_objects()
+    ref = events.read_events(_write(tmp_path / "r.parquet", counts, obj, "records"), "muon")
+    off = pa.array(np.concatenate([[0], np.cumsum(counts)]).astype(np.int32))
+    cols = {pattern.format(collection="muon", field=k): pa.ListArray.from_arrays(off, pa.array(v))
+            for k, v in obj.items()}
+    pq.write_table(pa.table(cols), tmp_path / "c.parquet")
+    got = events.read_events(tmp_path / "c.parquet", "muon", column_pattern=pattern)
+    assert ak.array_equal(got.muon, ref.muon)
+    with pytest.raises(InputError, match="collection 'muon' is not in"):
+        events.read_events(tmp_path / "c.parquet", "muon")
+    with pytest.raises(InputError, match="must hold {collection} and {field} once each"):
+        events.read_events(tmp_path / "c.parquet", "muon", column_pattern="{collection}")
 
 
 def test_unknown_field(tmp_path):

@@ -22,9 +22,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from peaksift import _processes, execution, histogram
+from peaksift import _processes, execution
 from peaksift.errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 from peaksift.execution import _dask, _engines, _local
+from peaksift.histogram.binning import regular_index
 
 
 @pytest.fixture(scope="module")
@@ -344,7 +345,7 @@ def test_forked_workers_start_with_the_pairing_kernels_loaded(tmp_path):
 
 def test_bad_scheduler_address_is_reported():
     with pytest.raises(ExecutionError, match="cannot connect to the Dask scheduler"):
-        _dask._connect("tcp://127.0.0.1:1", 1, timeout="1s")
+        _dask.DaskSession("tcp://127.0.0.1:1", None, 1, "spawn", {}, timeout="1s")
 
 
 # ------------------------------------------------------------------------ collect
@@ -352,8 +353,8 @@ def test_serial_collect_equals_one_pass_reference(dataset):
     got = execution.collect(dataset, SEL, chunk_events=700)
     c, counts, wm, _ = _one_pass(dataset)
     assert got.engine_info["chunks"] == 9  # 3 files x 3 row groups, each above 700 events
-    np.testing.assert_array_equal(got.histogram.weight_sum, counts)  # exact for unweighted data
-    np.testing.assert_array_equal(got.histogram.weight_sq_sum, counts)
+    np.testing.assert_array_equal(got.histogram.values(), counts)  # exact for unweighted data
+    np.testing.assert_array_equal(got.histogram.variances(), counts)
     assert not got.histogram.is_weighted
     np.testing.assert_array_equal(got.window_mass, wm)
     assert got.events_read == 9000 == got.cutflow["events_in"]
@@ -364,7 +365,7 @@ def test_serial_collect_equals_one_pass_reference(dataset):
     inrange = (c.mass >= WINDOW[0]) & (c.mass <= WINDOW[-1])
     assert got.pt_histogram.total(flow=True) == inrange.sum()
     ref_y, _ = np.histogram(c.rapidity[inrange], bins=np.asarray(SEL.rapidity_edges))
-    np.testing.assert_array_equal(got.rapidity_histogram.weight_sum, ref_y)
+    np.testing.assert_array_equal(got.rapidity_histogram.values(), ref_y)
 
 
 def test_chunked_equals_one_pass_for_any_chunk_size(dataset):
@@ -393,7 +394,7 @@ def test_engines_agree_exactly(weighted_dataset, dask_address):
     assert dask.engine_info["address"] == dask_address and dask.engine_info["workers"] == 2
     # and the weighted sums equal one pass to rounding (numpy.histogram with weights)
     _, counts, _, ww = _one_pass(files)
-    np.testing.assert_allclose(ref.histogram.weight_sum, counts, rtol=1e-12)
+    np.testing.assert_allclose(ref.histogram.values(), counts, rtol=1e-12)
     np.testing.assert_array_equal(ref.window_weight, ww)
 
 
@@ -407,7 +408,7 @@ def test_corrupt_file_is_named_or_skipped(dataset, tmp_path):
     files = [dataset[0], bad, dataset[1]]
     with pytest.raises(InputError, match="run_1b.parquet"):
         execution.collect(files, SEL)
-    got = execution.collect(files, SEL, skip_bad_files=True, chunk_events=1000)
+    got = execution.collect(files, SEL, unreadable_files="left_out", chunk_events=1000)
     assert [s.path for s in got.files_skipped] == [bad]
     assert "run_1b.parquet" in got.files_skipped[0].reason
     assert got.files_read == (dataset[0], dataset[1])
@@ -440,7 +441,7 @@ def test_file_failing_mid_run_is_named_or_skipped_whole(dataset, tmp_path):
     expected = execution.collect([dataset[0], dataset[1]], SEL, chunk_events=1000)
     for engine in ("serial", "processes"):
         got = execution.collect(files, SEL, engine=engine, workers=2, chunk_events=1000,
-                                skip_bad_files=True)
+                                unreadable_files="left_out")
         assert [s.path for s in got.files_skipped] == [bad]
         assert "run_2b.parquet" in got.files_skipped[0].reason
         # its first two (readable) chunks were discarded too: the file counts not at all
@@ -464,7 +465,7 @@ def test_file_without_the_collection_stops_the_run_before_any_chunk(dataset, tmp
     with pytest.raises(InputError, match=r"run_e\.parquet.*muon|muon.*run_e\.parquet"):
         execution.collect(files, SEL, chunk_events=1000)
     assert calls == []
-    got = execution.collect(files, SEL, chunk_events=1000, skip_bad_files=True)
+    got = execution.collect(files, SEL, chunk_events=1000, unreadable_files="left_out")
     assert [s.path for s in got.files_skipped] == [str(other)]
     assert "muon" in got.files_skipped[0].reason
     _assert_same(got, execution.collect(dataset[:2], SEL, chunk_events=1000))
@@ -483,7 +484,7 @@ def test_empty_file_is_read_with_no_events(dataset, tmp_path):
 def test_every_file_bad_is_an_error(tmp_path):
     bad = _garbage(tmp_path / "only.parquet")
     with pytest.raises(ExecutionError, match="every input file was skipped.*only.parquet"):
-        execution.collect([bad], SEL, skip_bad_files=True)
+        execution.collect([bad], SEL, unreadable_files="left_out")
 
 
 def test_bad_values_reported_once_with_counts(tmp_path):
@@ -518,7 +519,7 @@ def test_fast_regular_binning_matches_binary_search(edges):
                         np.nextafter(edges, -np.inf), np.nextafter(edges, np.inf),
                         [np.inf, -np.inf, 1e300, -1e300]])
     rng.shuffle(v)
-    np.testing.assert_array_equal(histogram._regular_index(edges, v),
+    np.testing.assert_array_equal(regular_index(edges, v),
                                   np.searchsorted(edges, v, side="right"))
     w = rng.uniform(0.5, 1.5, v.size)
     from peaksift.histogram import MassHistogram
@@ -530,9 +531,9 @@ def test_fast_regular_binning_matches_binary_search(edges):
     idx = np.searchsorted(edges, v, side="right")
     idx[v == edges[-1]] = edges.size - 1
     ref = np.bincount(idx, weights=w, minlength=edges.size + 1)
-    np.testing.assert_array_equal(h.weight_sum, ref[1:-1])
+    np.testing.assert_array_equal(h.values(), ref[1:-1])
     assert (h.underflow, h.overflow) == (ref[0], ref[-1])
-    np.testing.assert_allclose(h.weight_sum, np.histogram(v, bins=edges, weights=w)[0], rtol=1e-12)
+    np.testing.assert_allclose(h.values(), np.histogram(v, bins=edges, weights=w)[0], rtol=1e-12)
 
 
 @pytest.mark.parametrize("start_method", ["auto", "spawn"])

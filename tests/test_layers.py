@@ -41,7 +41,7 @@ LAYERS: tuple[tuple[str, frozenset[str]], ...] = (
     # and widths of known particles) that config, identification and pairing all read, and it
     # imports only errors and the `particle` package (DEVELOPERS.md, "Layers").
     ("input", frozenset({"events", "kinematics", "energy_loss", "resonances"})),
-    ("candidates", frozenset({"cuts", "pairing", "histogram", "blinding"})),
+    ("candidates", frozenset({"cuts", "pairing", "candidates_io", "histogram", "blinding"})),
     ("models", frozenset({"shapes", "resolution", "likelihood", "fitting"})),
     ("statistics", frozenset({"stats"})),
     ("pipeline", frozenset({"config", "execution"})),

@@ -7,7 +7,7 @@ configuration; so a vocabulary that both need lives in this base-layer module.
 
 from __future__ import annotations
 
-__all__ = ["LIMIT_METHODS"]
+__all__ = ["LIMIT_METHODS", "UNREADABLE_FILES"]
 
 #: How :func:`peaksift.upper_limits` computes its CLs limits (``limits.method``):
 #: ``"auto"``       asymptotic formulae, and toys at the masses where the formulae misplace
@@ -15,3 +15,9 @@ __all__ = ["LIMIT_METHODS"]
 #: ``"asymptotic"`` the formulae everywhere, such masses flagged in the result;
 #: ``"toys"``       as ``"auto"``, plus toys at chosen masses (``toy_masses``).
 LIMIT_METHODS: tuple[str, ...] = ("auto", "asymptotic", "toys")
+
+#: What an input file that cannot be read does to a run (``execution.unreadable_files``,
+#: :func:`peaksift.execution.collect`'s ``unreadable_files``):
+#: ``"stop"``      the run stops with an error naming the file (default);
+#: ``"left_out"``  the whole file is left out of the result and listed with the reason.
+UNREADABLE_FILES: tuple[str, ...] = ("stop", "left_out")

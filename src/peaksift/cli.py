@@ -2,7 +2,7 @@
 
 Sub-commands::
 
-    peaksift inspect PATH...        what is in a set of Parquet event files
+    peaksift inspect PATH...        what is in a set of Parquet / Arrow IPC event files
     peaksift demo OUTDIR            write the demo scenario (events, truth, ready config)
     peaksift search CONFIG          the whole search (spectrum, fit, scan, significance, limits, report)
     peaksift spectrum CONFIG        only the selected spectrum: histogram file and figure
@@ -77,7 +77,8 @@ def _one_line_warning(message: Any, category: type, *_: Any, **__: Any) -> str:
 def _cmd_inspect(args: argparse.Namespace) -> int:
     from .events import describe
 
-    print(describe(args.paths if len(args.paths) > 1 else args.paths[0]))
+    print(describe(args.paths if len(args.paths) > 1 else args.paths[0],
+                   column_pattern=args.column_pattern))
     return 0
 
 
@@ -329,9 +330,12 @@ def build_parser() -> argparse.ArgumentParser:
     def cmd(name: str, summary: str, description: str, parents: list) -> argparse.ArgumentParser:
         return sub.add_parser(name, help=summary, description=description, parents=parents)
 
-    q = cmd("inspect", "describe Parquet event files (collections, fields, counts)",
-            "Describe Parquet event files: collections and their layouts, fields and dtypes, "
-            "events per file and object multiplicities.", [common])
+    q = cmd("inspect", "describe Parquet or Arrow IPC event files (collections, fields, counts)",
+            "Describe Parquet or Arrow IPC event files: collections and their layouts, fields "
+            "and dtypes, events per file and object multiplicities.", [common])
+    q.add_argument("--column-pattern", default="{collection}.{field}",
+                   help="how sibling list columns name a collection's fields (default "
+                        "%(default)s; e.g. {collection}_{field})")
     q.add_argument("paths", nargs="+", metavar="PATH",
                    help="event files, directories or glob patterns (quote globs)")
     q.set_defaults(handler=_cmd_inspect)

@@ -237,6 +237,45 @@ class Candidates:
         mult = None if self.multiplicity is None else self.multiplicity[m]
         return dataclasses.replace(self, **cols, cutflow=dict(self.cutflow), multiplicity=mult)
 
+    # ------------------------------------------------ Arrow and files (candidates_io)
+    def to_arrow(self) -> Any:
+        """The candidates as a ``pyarrow.Table`` (one row each; cut flow and rule in the
+        schema metadata); see :mod:`peaksift.candidates_io`."""
+        from .candidates_io import to_arrow
+
+        return to_arrow(self)
+
+    @classmethod
+    def from_arrow(cls, table: Any) -> Candidates:
+        """Candidates from :meth:`to_arrow`'s table (or a record-batch reader of it)."""
+        from .candidates_io import from_arrow
+
+        return from_arrow(cls, table)
+
+    def save(self, path: Any) -> Any:
+        """Write to ``path``: Parquet (``.parquet``) or Arrow IPC (``.arrow``, ``.feather``)."""
+        from .candidates_io import save
+
+        return save(self, path)
+
+    @classmethod
+    def load(cls, path: Any) -> Candidates:
+        """Read candidates written by :meth:`save` (a local path or an fsspec URL)."""
+        from .candidates_io import load
+
+        return load(cls, path)
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Candidates):
+            return NotImplemented
+        return (all(np.array_equal(getattr(self, c), getattr(other, c)) for c in self._COLUMNS)
+                and self.cutflow == other.cutflow and self.choose == other.choose
+                and (self.multiplicity is None) == (other.multiplicity is None)
+                and (self.multiplicity is None
+                     or np.array_equal(self.multiplicity, other.multiplicity)))
+
+    __hash__ = None  # type: ignore[assignment]
+
     def in_window(self, lo: float, hi: float) -> Candidates:
         """Candidates with ``lo <= mass <= hi``: the masses a histogram on ``[lo, hi]`` puts
         in its bins (:func:`peaksift.histogram.in_range`; the last bin is closed).
@@ -864,25 +903,42 @@ def load_kernels() -> None:
         _count_pairs(z, z, z, z, True, q, q, -1, np.zeros(1, dtype=np.int64))
 
 
+def warm_cache() -> None:
+    """Compile (or load) every pairing kernel once, filling numba's on-disk cache.
+
+    Run it where a cluster image is built (``python -c "import peaksift.pairing as p;
+    p.warm_cache()"``): workers started from the image then load the kernels in
+    milliseconds instead of compiling them (about 2 s with an empty cache).  Pairs two tiny
+    events under every choice rule, with and without charge and overlap requirements."""
+    import awkward as ak
+
+    muon = ak.Array([[{"pt": 30.0, "eta": 0.1, "phi": 0.2, "mass": 0.1, "charge": 1},
+                      {"pt": 20.0, "eta": -0.3, "phi": 2.9, "mass": 0.1, "charge": -1},
+                      {"pt": 10.0, "eta": 1.0, "phi": -1.0, "mass": 0.1, "charge": -1}], []])
+    ev = ak.zip({"muon": muon, "other": muon}, depth_limit=1)
+    for choose in CHOOSE_RULES:
+        tm = 91.0 if choose == "closest" else None
+        for charge, dr in ((None, None), ("opposite", 0.1)):
+            pair(ev, "muon", choose=choose, target_mass=tm, charge=charge, min_delta_r=dr)
+            pair(ev, "muon", "other", choose=choose, target_mass=tm, charge=charge,
+                 min_delta_r=dr)
+
+
 def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_cut: CutLike,
           event_cut: CutLike, charge: str | None, choose: str, target_mass: float | None,
           min_delta_r: float | None, event_offset: int,
           hypotheses: tuple[str, str] | None = None,
           identification: DedxResponse | None = None,
           assignment: str = "both") -> Candidates:
-    import awkward as ak
 
     mode, tm, dr = _check_options(choose, charge, target_mass, min_delta_r)
-    if not isinstance(events, ak.Array) or not events.fields:
-        raise InputError(
-            f"pair needs events as an awkward array of records (from peaksift.read_events), "
-            f"got {type(events).__name__}")
     if not isinstance(first, str):
         raise ConfigError(f"first must be a collection name, got {first!r}")
     one_collection = second is None or second == first
     # two different hypotheses on one collection: two views of it, paired as ordered legs
     unlike = one_collection and hypotheses is not None and hypotheses[0] != hypotheses[1]
     same = one_collection and not unlike
+    events = _as_read_events(events, [first] if one_collection else [first, str(second)])
     if same and not _is_no_cut(second_cut):
         raise ConfigError(
             "second_cut applies only when pairing two different collections (or two "
@@ -945,6 +1001,53 @@ def _ordered_inputs(coll: _Collection, sel_a: np.ndarray | None, sel_b: np.ndarr
         ina = inb = np.zeros(1, dtype=np.bool_)
         za2 = zb2 = np.zeros(1)
     return ia, ib, rule, ina, inb, za2, zb2
+
+
+def _plain_collection(events: Any, name: str) -> bool:
+    """True when ``events[name]`` has the reader's layout: a list of records whose pt, eta,
+    phi and mass are plain floating-point arrays (no option types, no vector conversion)."""
+    import awkward as ak
+
+    if name not in events.fields:
+        return True  # let _Collection name what is missing
+    lay = events[name].layout
+    if not isinstance(lay, (ak.contents.ListOffsetArray, ak.contents.ListArray)):
+        return False
+    rec = lay.content
+    if not isinstance(rec, ak.contents.RecordArray) or not all(
+            f in rec.fields for f in _KINEMATIC_FIELDS):
+        return False
+    return all(isinstance(rec.content(f), ak.contents.NumpyArray)
+               and rec.content(f).data.dtype.kind == "f" for f in _KINEMATIC_FIELDS)
+
+
+def _as_read_events(events: Any, names: list[str]) -> Any:
+    """Events as :func:`peaksift.read_events` gives them: an awkward array whose collections
+    are already plain is used as it is; other in-memory events (option types, other vector
+    coordinates, Arrow tables) go through :func:`peaksift.events.from_memory`."""
+    import awkward as ak
+    import pyarrow as pa
+
+    from .events import from_memory, is_in_memory
+
+    if isinstance(events, ak.Array) and events.fields and events.ndim == 1 and all(
+            _plain_collection(events, n) for n in names):
+        return events
+    if not is_in_memory(events) or (isinstance(events, ak.Array) and not events.fields):
+        raise InputError(
+            "pair needs events: an awkward array of event records (from peaksift.read_events, "
+            "ak.from_parquet, vector.zip, ...) or a pyarrow Table / RecordBatchReader; got "
+            f"{type(events).__name__}")
+    present = events.fields if isinstance(events, ak.Array) else (
+        events.schema.names if not isinstance(events, pa.RecordBatchReader) else None)
+    if present is not None:
+        for n in names:
+            if n not in present:
+                guess = closest(n, list(present))
+                hint = f"; did you mean {guess!r}?" if guess else ""
+                raise InputError(f"no collection {n!r} in the events; fields present: "
+                                 f"{', '.join(present) or '(none)'}{hint}")
+    return from_memory(events, names)
 
 
 def _pair_selected(events: Any, ca: _Collection, cb: _Collection, same: bool,

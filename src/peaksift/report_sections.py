@@ -604,8 +604,8 @@ def section_provenance(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Blo
     out: list[Block] = [("h2", "Provenance"), ("table", ["item", "value"], _provenance_rows(r))]
     files = (r.get("provenance") or {}).get("inputs") or []
     if files:
-        out.append(("table", ["input file", "sha256"], [[f["path"], f["sha256"]] for f in files],
-                    "hash"))
+        out.append(("table", ["input file", "sha256"],
+                    [[f["path"], f["sha256"] or "not recorded"] for f in files], "hash"))
     skipped = (r.get("input") or {}).get("files_skipped") or []
     if skipped:
         out += [("p", "Files skipped (unreadable):"),

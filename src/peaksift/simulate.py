@@ -34,8 +34,9 @@ the barrel-endcap gap), reconstruction thresholds and efficiencies, and a relati
 muons and electrons and soft tracks, so pair combinatorics are real.
 
 File layout: ``muon`` and ``electron`` are list-of-struct columns (pt, eta, phi, mass,
-charge, isolation); ``track`` is stored as sibling columns ``track_pt, track_eta, track_phi,
-track_charge`` without a mass field (read as massless); per-event ``run``, ``event``,
+charge, isolation); ``track`` is stored as sibling list columns ``track.pt, track.eta,
+track.phi, track.charge`` (the names Arrow gives a flattened struct) without a mass field
+(read as massless); per-event ``run``, ``event``,
 ``n_vertices``.  The simulated-sample variant (``weighted=True``) generates the processes in
 flatter proportions, adds a per-event ``weight`` (the ratio of true to generated process
 fractions times an efficiency-correction factor near 1, so weighted sums reproduce the
@@ -415,9 +416,9 @@ def _block(rng: np.random.Generator, n: int, first_event: int, sc: Scenario, wei
     offsets, flat = _assemble(tracks, n)
     off = pa.array(offsets.astype(np.int32))
     for k in ("pt", "eta", "phi"):
-        cols[f"track_{k}"] = pa.ListArray.from_arrays(
+        cols[f"track.{k}"] = pa.ListArray.from_arrays(
             off, pa.array(_round_mantissa(flat[k], _PRECISION["track"])))
-    cols["track_charge"] = pa.ListArray.from_arrays(off, pa.array(flat["charge"].astype(np.int8)))
+    cols["track.charge"] = pa.ListArray.from_arrays(off, pa.array(flat["charge"].astype(np.int8)))
     if weighted:
         tf = np.array([sc.fractions[p] for p in PROCESSES], dtype=float)
         tf /= tf.sum()
@@ -720,7 +721,7 @@ def _truth(sc: Scenario, n: int, seed: int, weighted: bool, paths: list[Path],
         "columns": {
             "muon, electron": "list<struct<pt, eta, phi, mass (float32, GeV), charge (int8), "
                               "isolation (float32, relative)>>",
-            "track_pt, track_eta, track_phi, track_charge": "sibling list columns, no mass "
+            "track.pt, track.eta, track.phi, track.charge": "sibling list columns, no mass "
                                                             "(massless)",
             "run, event, n_vertices": "per event",
             **({"weight, process, true_mass": "per event (simulated-sample variant)"}

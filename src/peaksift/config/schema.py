@@ -10,7 +10,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
-from .._vocabulary import LIMIT_METHODS
+from .._vocabulary import LIMIT_METHODS, UNREADABLE_FILES
 from ..energy_loss import HYPOTHESES, MATERIALS
 from ..resolution import RELATIVE_MAX, relative_problem
 
@@ -40,13 +40,22 @@ class _Key:
 SCHEMA: dict[str, tuple[_Key, ...]] = {
     "input": (
         _Key("files", "paths", _REQUIRED,
-             "Parquet files, directories or globs; a string or a list. Relative paths are "
-             "taken from the directory of the config file."),
+             "Parquet or Arrow IPC (Feather) files, directories, globs or fsspec URLs "
+             "(`memory://`, `s3://`, ...); a string or a list. Relative paths are taken from "
+             "the directory of the config file."),
         _Key("weights", "bool", True,
              "Use the per-event `weight` column when the files have one."),
         _Key("strict", "bool", False,
              "Stop on NaN/infinite or negative kinematics instead of dropping those objects "
              "with a warning."),
+        _Key("hash_inputs", "bool", True,
+             "Record each input file's sha256 in results.json (on a Dask cluster the workers "
+             "compute it); false leaves it out, for huge or remote inputs."),
+        _Key("column_pattern", "str", "{collection}.{field}",
+             "How sibling list columns name a collection's fields, with `{collection}` and "
+             "`{field}` once each: the default reads `muon.pt, muon.eta, ...` (Arrow's struct "
+             "flattening); `{collection}_{field}` reads `muon_pt, ...`. List-of-struct "
+             "columns are read whatever the pattern."),
     ),
     "objects": (
         _Key("collection", "str", "muon", "Collection whose objects are paired."),
@@ -308,9 +317,10 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "local cluster."),
         _Key("chunk_events", "int", 250_000, "Events per chunk (bounds memory).",
              lo=1, hi=1_000_000_000),
-        _Key("skip_bad_files", "bool", False,
-             "Skip unreadable files (listed in results.json and the report) instead of "
-             "stopping."),
+        _Key("unreadable_files", "choice", "stop",
+             "What an input file that cannot be read does to the run: `stop` it (the error "
+             "names the file) or is `left_out` (listed in results.json and the report).",
+             choices=UNREADABLE_FILES),
         _Key("start_method", "choice", "auto",
              "How local worker processes start: `auto` (fork on Linux, else spawn), `fork` "
              "(ready at once, from this process) or `spawn` (fresh interpreters; use it if "

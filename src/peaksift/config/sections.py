@@ -38,6 +38,8 @@ class InputConfig:
     files: tuple[str, ...]
     weights: bool = True
     strict: bool = False
+    column_pattern: str = "{collection}.{field}"
+    hash_inputs: bool = True
 
 
 @dataclass(frozen=True)
@@ -232,7 +234,7 @@ class ExecutionConfig:
     workers: int | None = None
     address: str = ""
     chunk_events: int = 250_000
-    skip_bad_files: bool = False
+    unreadable_files: str = "stop"
     start_method: str = "auto"
 
 

@@ -1,4 +1,5 @@
-"""Reading reconstructed events from Parquet files into awkward arrays.
+"""Reading reconstructed events from Parquet and Arrow IPC files (local or fsspec URLs) and
+from memory into awkward arrays.
 
 Which function to use
 ---------------------
@@ -8,6 +9,9 @@ Which function to use
 * :func:`plan_chunks` + :func:`read_chunk` -- picklable chunk descriptions that workers read
   themselves (this is what :mod:`peaksift.execution` uses); :func:`check_files` checks all
   files' schemas against the request once, up front, from the footers.
+* :func:`from_memory` -- events already in memory (an awkward array in any vector coordinate
+  system, a pyarrow Table or record-batch reader) as :func:`read_events` would return them;
+  :func:`read_events` and :func:`peaksift.pair` call it for such inputs.
 * :func:`describe` -- what a set of files holds (``peaksift inspect`` prints it).
 * :func:`list_files` -- resolve paths, globs, directories and lists to a sorted list of files.
 
@@ -22,7 +26,10 @@ Per-event scalars (``weight``, run and event numbers, ...) are top-level fields.
 Files may store a collection in either layout:
 
 * one list-of-struct column: ``muon: list<struct<pt, eta, phi, mass, charge>>``;
-* sibling list columns named ``<collection>_<field>``: ``muon_pt, muon_eta, ...``.
+* sibling list columns named by a column pattern, by default ``"{collection}.{field}"``
+  (``muon.pt, muon.eta, ...``: the names ``pyarrow.Table.flatten`` gives a struct of lists);
+  other names through ``column_pattern=``, e.g. ``"{collection}_{field}"`` for
+  ``muon_pt, muon_eta, ...``.
 
 and its kinematics as ``(pt, eta, phi[, mass])`` or ``(px, py, pz, energy)`` (``m`` and ``e``
 are accepted as short names).  Cartesian kinematics are converted to ``pt, eta, phi, mass``
@@ -49,17 +56,22 @@ from __future__ import annotations
 import vector
 
 from .describe import Description, describe
-from .files import DEFAULT_CHUNK_EVENTS, list_files
+from .files import DEFAULT_CHUNK_EVENTS, DEFAULT_COLUMN_PATTERN, file_sha256, list_files
+from .memory import from_memory, is_in_memory
 from .read import ChunkSpec, check_files, iter_events, plan_chunks, read_chunk, read_events
 
 vector.register_awkward()
 
 __all__ = [
     "DEFAULT_CHUNK_EVENTS",
+    "DEFAULT_COLUMN_PATTERN",
     "ChunkSpec",
     "Description",
     "check_files",
     "describe",
+    "file_sha256",
+    "from_memory",
+    "is_in_memory",
     "iter_events",
     "list_files",
     "plan_chunks",

@@ -9,7 +9,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InputError
-from .files import _MASS_NAMES, Source, list_files
+from .files import _MASS_NAMES, DEFAULT_COLUMN_PATTERN, Source, list_files
 from .pieces import _list_chunk
 from .schema import _inspect, _kin_source_fields, _open, _plan_request
 
@@ -62,7 +62,7 @@ class Description:
         lines.append("collections:")
         for name, c in self.collections.items():
             layout = ("one list-of-struct column" if c["layout"] == "records"
-                      else f"sibling columns {name}_<field>")
+                      else "sibling columns " + c.get("columns", f"{name}.<field>"))
             coords = ("pt, eta, phi, mass" if c["coordinates"] == "polar" and c["has_mass"]
                       else "pt, eta, phi (no mass field: massless)" if c["coordinates"] == "polar"
                       else "px, py, pz, energy (converted to pt, eta, phi, mass)")
@@ -90,14 +90,15 @@ def _dtype_text(t: pa.DataType) -> str:
     return str(t)
 
 
-def describe(source: Source) -> Description:
-    """Describe a set of Parquet event files: collections, fields and dtypes, events per file,
-    object multiplicities.  Reads footers plus one column per collection (for the counts)."""
+def describe(source: Source, *, column_pattern: str = DEFAULT_COLUMN_PATTERN) -> Description:
+    """Describe a set of event files: collections, fields and dtypes, events per file,
+    object multiplicities.  Reads footers plus one column per collection (for the counts).
+    ``column_pattern`` as for :func:`~peaksift.events.read_events`."""
     files = list_files(source)
-    infos = [_inspect(p) for p in files]
+    infos = [_inspect(p, pattern=column_pattern) for p in files]
     problems: list[str] = []
     try:
-        _plan_request(files, None, None)
+        _plan_request(files, None, None, column_pattern)
     except InputError as exc:
         problems.append(str(exc))
     first = infos[0]
@@ -119,6 +120,8 @@ def describe(source: Source) -> Description:
         fields_out = {f: _dtype_text(t) for f, t in c.fields.items()}
         colls[name] = {
             "layout": c.layout,
+            **({"columns": column_pattern.format(collection=name, field="<field>")}
+               if c.layout == "columns" else {}),
             "coordinates": c.coords,
             "has_mass": any(n in c.fields for n in _MASS_NAMES),
             "fields": fields_out,

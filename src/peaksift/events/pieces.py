@@ -15,6 +15,7 @@ import pyarrow as pa
 from .. import kinematics as _kin
 from ..errors import DataWarning, InputError
 from .files import _ENERGY_NAMES, _KIN_OUT, _MASS_NAMES, _RESERVED
+from .formats import leaf_value_count
 from .schema import _FileInfo, _kin_source_fields, _open
 
 # --------------------------------------------------------------------------- reading
@@ -394,18 +395,17 @@ class _Collector:
 
 
 def _object_capacity(plans: list[tuple[_FileInfo, tuple]]) -> dict[str, int]:
-    """Upper bound on the objects per collection from the footers (leaf value counts)."""
+    """Upper bound on the objects per collection (Parquet: from the footers' leaf value
+    counts; Arrow IPC and memory: from the list offsets)."""
     cap: dict[str, int] = {}
     for info, sel in plans:
-        md = info.handle.metadata if info.handle is not None else _open(info.path).metadata
+        handle = info.handle if info.handle is not None else _open(info.path)
         for c in sel[0]:
             leaf = c.paths[_kin_source_fields(c)[0]][0]
             j = info.leaf_index.get(leaf)
-            if j is None:
-                cap[c.name] = 1 << 62
-                continue
-            tot = sum(md.row_group(i).column(j).num_values for i in range(md.num_row_groups))
-            cap[c.name] = cap.get(c.name, 0) + int(tot)
+            if j is None:  # pragma: no cover - every kinematic field has a leaf
+                raise InputError(f"'{info.path}': no column for '{leaf}'")
+            cap[c.name] = cap.get(c.name, 0) + leaf_value_count(handle, leaf, j)
     return cap
 
 

@@ -9,7 +9,9 @@ from pathlib import Path
 import awkward as ak
 
 from ..errors import InputError
-from .files import _PIECE_EVENTS, DEFAULT_CHUNK_EVENTS, Source, list_files
+from .files import _PIECE_EVENTS, DEFAULT_CHUNK_EVENTS, DEFAULT_COLUMN_PATTERN, Source, list_files
+from .formats import is_url, local_path
+from .memory import ACCEPTED, from_memory, is_in_memory
 from .pieces import _build, _Collector, _object_capacity, _read_piece, _warn
 from .schema import _inspect, _plan_request
 
@@ -44,7 +46,8 @@ def check_files(
     collections: str | Sequence[str] | None = None,
     *,
     fields: Iterable[str] | None = None,
-) -> list[Path]:
+    column_pattern: str = DEFAULT_COLUMN_PATTERN,
+) -> list[Path | str]:
     """Check a data set before reading it, from the file footers only, and return its files.
 
     Raises the same :class:`~peaksift.errors.InputError` as :func:`read_events` would for a
@@ -54,7 +57,7 @@ def check_files(
     once up front.
     """
     files = list_files(source)
-    _plan_request(files, collections, fields)
+    _plan_request(files, collections, fields, column_pattern)
     return files
 
 
@@ -98,12 +101,13 @@ def read_chunk(
     fields: Iterable[str] | None = None,
     strict: bool = False,
     masses: Mapping[str, float] | None = None,
+    column_pattern: str = DEFAULT_COLUMN_PATTERN,
 ) -> ak.Array:
     """Read one chunk planned by :func:`plan_chunks` (same options as :func:`read_events`)."""
-    path = Path(spec.path)
-    if not path.is_file():
+    path = local_path(spec.path)
+    if not is_url(path) and not Path(path).is_file():
         raise InputError(f"chunk file '{path}' no longer exists; plan the chunks again")
-    info, sel = _plan_request([path], collections, fields)[0]
+    info, sel = _plan_request([path], collections, fields, column_pattern)[0]
     if any(i >= len(info.row_groups) for i in spec.row_groups) or \
             sum(info.row_groups[i] for i in spec.row_groups) != spec.n_events:
         raise InputError(
@@ -121,13 +125,18 @@ def read_events(
     fields: Iterable[str] | None = None,
     strict: bool = False,
     masses: Mapping[str, float] | None = None,
+    column_pattern: str = DEFAULT_COLUMN_PATTERN,
 ) -> ak.Array:
-    """Read Parquet event files into one ``awkward.Array``.
+    """Read event files (Parquet, Arrow IPC) or in-memory events into one ``awkward.Array``.
 
     Parameters
     ----------
-    source : str, path or sequence of them
-        Files, directories or globs (see :func:`list_files`); all are one data set.
+    source : str, path, sequence of them, or events in memory
+        Files, directories, globs or fsspec URLs of Parquet or Arrow IPC (Feather) files (see
+        :func:`list_files`); all are one data set.  Or events in memory: an awkward array of
+        records (any vector coordinate system, option types stripped with a warning), a
+        ``pyarrow.Table``, ``RecordBatch`` or ``RecordBatchReader``
+        (:func:`~peaksift.events.from_memory`).
     collections : str or sequence of str, optional
         Object collections to read (default: every collection with kinematics, plus all other
         columns).  When given, only those collections and the per-event columns are read.
@@ -140,6 +149,12 @@ def read_events(
         bad objects with one :class:`~peaksift.errors.DataWarning`.
     masses : mapping, optional
         Mass in GeV for collections stored without a mass field (default massless).
+    column_pattern : str
+        How sibling list columns name a collection's fields: ``{collection}`` and ``{field}``
+        once each.  Default ``"{collection}.{field}"`` (``muon.pt``, the names Arrow's struct
+        flattening gives); e.g. ``"{collection}_{field}"`` reads ``muon_pt, muon_eta, ...``,
+        ``"{field}_of_{collection}"`` reads ``pt_of_muon``.  List-of-struct columns are read
+        whatever the pattern.
 
     Returns
     -------
@@ -154,8 +169,13 @@ def read_events(
         requested field is absent; kinematics are not numbers; files disagree on what is read;
         bad objects with ``strict=True``.  All schema checks happen before any data are read.
     """
+    if is_in_memory(source):
+        return from_memory(source, collections, fields=fields, strict=strict, masses=masses,
+                           column_pattern=column_pattern)
+    if isinstance(source, (int, float, dict)) or source is None:
+        raise InputError(f"cannot read events from {type(source).__name__}; give {ACCEPTED}")
     files = list_files(source)
-    plans = _plan_request(files, collections, fields)
+    plans = _plan_request(files, collections, fields, column_pattern)
     out = _Collector(sum(info.n_events for info, _ in plans), _object_capacity(plans))
     first = 0
     for info, sel in plans:
@@ -176,6 +196,7 @@ def iter_events(
     fields: Iterable[str] | None = None,
     strict: bool = False,
     masses: Mapping[str, float] | None = None,
+    column_pattern: str = DEFAULT_COLUMN_PATTERN,
 ) -> Iterator[ak.Array]:
     """Stream a data set in chunks of whole row groups (~``chunk_events`` events each).
 
@@ -184,12 +205,13 @@ def iter_events(
     :class:`~peaksift.errors.DataWarning` is issued per chunk that had bad objects.
     """
     specs = plan_chunks(source, chunk_events=chunk_events)
-    files = list(dict.fromkeys(Path(s.path) for s in specs))
-    plans = {info.path: (info, sel) for info, sel in _plan_request(files, collections, fields)}
+    files = list(dict.fromkeys(local_path(s.path) for s in specs))
+    plans = {info.path: (info, sel)
+             for info, sel in _plan_request(files, collections, fields, column_pattern)}
 
     def _gen() -> Iterator[ak.Array]:
         for s in specs:
-            info, sel = plans[Path(s.path)]
+            info, sel = plans[local_path(s.path)]
             piece = _read_piece(info, sel, s.row_groups, s.first_event, masses or {}, strict)
             _warn([piece], [info.path])
             yield _build([piece])

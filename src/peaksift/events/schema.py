@@ -9,10 +9,20 @@ from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..errors import InputError, closest
-from .files import _CART, _ENERGY_NAMES, _KIN_OUT, _MASS_NAMES, _MAX_OPEN_FILES, _POLAR
+from .files import (
+    _CART,
+    _ENERGY_NAMES,
+    _KIN_OUT,
+    _MASS_NAMES,
+    _MAX_OPEN_FILES,
+    _POLAR,
+    DEFAULT_COLUMN_PATTERN,
+    column_regex,
+)
+from .formats import column_of, open_source, row_group_sizes, source_size
+from .formats import leaf_paths as _leaves
 
 # --------------------------------------------------------------------------- schema
 
@@ -22,7 +32,7 @@ class _Coll:
     """How one collection is stored in one file."""
 
     name: str
-    layout: str                      # "records" (list<struct>) or "columns" (<coll>_<field>)
+    layout: str                      # "records" (list<struct>) or "columns" (by the pattern)
     fields: dict[str, pa.DataType]   # file field name -> arrow value type
     paths: dict[str, list[str]]      # file field name -> parquet leaf paths to read
     columns: dict[str, str]          # file field name -> top-level column name (layout columns)
@@ -31,7 +41,7 @@ class _Coll:
 
 @dataclass(frozen=True)
 class _FileInfo:
-    path: Path
+    path: Path | str
     n_events: int
     row_groups: tuple[int, ...]      # events per row group
     size: int
@@ -39,8 +49,9 @@ class _FileInfo:
     others: dict[str, _Coll]         # jagged columns / groups without kinematics
     scalars: dict[str, pa.DataType]  # per-event columns
     scalar_paths: dict[str, list[str]]
-    handle: pq.ParquetFile | None = field(default=None, compare=False, repr=False)
+    handle: Any = field(default=None, compare=False, repr=False)
     leaf_index: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
+    pattern: str = DEFAULT_COLUMN_PATTERN  # how sibling list columns are named
 
 
 def _kind(t: pa.DataType) -> str:
@@ -68,25 +79,21 @@ def _coords_of(names: Iterable[str]) -> str | None:
     return None
 
 
-def _open(path: Path) -> pq.ParquetFile:
-    try:
-        return pq.ParquetFile(path)
-    except (pa.ArrowException, OSError, ValueError) as exc:
-        raise InputError(
-            f"cannot read '{path}' as Parquet ({' '.join(str(exc).split())}); the file is "
-            "corrupt, truncated or not Parquet: regenerate it or leave it out of the input"
-        ) from None
+def _open(path: Path | str) -> Any:
+    """The file's Parquet handle or Arrow IPC :class:`~.formats.TableSource`."""
+    return open_source(path)
 
 
-def _inspect(path: Path) -> _FileInfo:
-    pf = _open(path)
+def _inspect(path: Path | str, handle: Any = None,
+             pattern: str = DEFAULT_COLUMN_PATTERN) -> _FileInfo:
+    """What one file (or, with ``handle``, an in-memory table named ``path``) holds."""
+    pf = _open(path) if handle is None else handle
     schema = pf.schema_arrow
-    md = pf.metadata
     leaf_paths: dict[str, list[str]] = {}
     leaf_index: dict[str, int] = {}
-    for i in range(len(pf.schema)):
-        p = pf.schema.column(i).path
-        leaf_paths.setdefault(p.split(".")[0], []).append(p)
+    names = sorted(schema.names, key=len, reverse=True)
+    for i, p in enumerate(_leaves(pf)):
+        leaf_paths.setdefault(column_of(p, names), []).append(p)
         leaf_index[p] = i
 
     records: dict[str, _Coll] = {}
@@ -116,18 +123,22 @@ def _inspect(path: Path) -> _FileInfo:
             scalars[f.name] = t
             scalar_paths[f.name] = leaf_paths.get(f.name, [f.name])
 
-    # sibling list columns: a prefix is a collection when <prefix>_pt or <prefix>_px exists
+    # sibling list columns named by the column pattern: a collection is named by a pt or px
+    # column; every other column belongs to the longest collection name it fits
+    rx = column_regex(pattern)
     prefixes = set()
     for name in flat_lists:
-        for k in ("pt", "px"):
-            if name.endswith("_" + k) and len(name) > len(k) + 1:
-                prefixes.add(name[: -len(k) - 1])
+        m = rx.match(name)
+        if m and m["field"] in ("pt", "px"):
+            prefixes.add(m["collection"])
     groups: dict[str, dict[str, str]] = {}
+    owners = {p: column_regex(pattern, p) for p in sorted(prefixes, key=len, reverse=True)}
     for name in flat_lists:
-        owner = max((p for p in prefixes if name.startswith(p + "_")), key=len, default=None)
-        if owner is None:
-            continue
-        groups.setdefault(owner, {})[name[len(owner) + 1:]] = name
+        for prefix, prx in owners.items():
+            m = prx.match(name)
+            if m:
+                groups.setdefault(prefix, {})[m["field"]] = name
+                break
     assigned = set()
     for prefix, cols in groups.items():
         if prefix in records or prefix in scalars or _coords_of(cols) is None:
@@ -140,13 +151,10 @@ def _inspect(path: Path) -> _FileInfo:
         if name not in assigned:
             jagged_other[name] = _Coll(name, "plain", {"": t}, {"": leaf_paths.get(name, [name])},
                                        {"": name}, None)
-    rg = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
-    try:
-        size = path.stat().st_size
-    except OSError:
-        size = 0
-    return _FileInfo(path, md.num_rows, rg, size, records, jagged_other, scalars, scalar_paths,
-                     pf, leaf_index)
+    rg = row_group_sizes(pf)
+    size = 0 if handle is not None else source_size(path)
+    return _FileInfo(path, sum(rg), rg, size, records, jagged_other, scalars, scalar_paths,
+                     pf, leaf_index, pattern)
 
 
 def _present_text(info: _FileInfo) -> str:
@@ -176,12 +184,14 @@ def _select(
                 continue
             if n in info.others and info.others[n].layout != "plain":
                 c = info.others[n]
-                _raise_missing_kinematics(path, c)
-            # sibling columns with partial kinematics (no <n>_pt / <n>_px column)
-            partial = sorted(c[len(n) + 1:] for c in info.others if c.startswith(n + "_"))
+                _raise_missing_kinematics(path, c, info.pattern)
+            # sibling columns with partial kinematics (no pt / px column by the pattern)
+            own = column_regex(info.pattern, n)
+            partial = sorted(m["field"] for c in info.others if (m := own.match(c)))
             if partial:
                 _raise_missing_kinematics(
-                    path, _Coll(n, "columns", dict.fromkeys(partial, pa.float64()), {}, {}, None))
+                    path, _Coll(n, "columns", dict.fromkeys(partial, pa.float64()), {}, {}, None),
+                    info.pattern)
             near = closest(n, info.collections)
             hint = f" (did you mean '{near}'?)" if near else ""
             raise InputError(
@@ -261,13 +271,15 @@ def _kin_source_fields(c: _Coll) -> list[str]:
     return [*_CART, *e]
 
 
-def _raise_missing_kinematics(path: Path, c: _Coll) -> None:
+def _raise_missing_kinematics(path: Path, c: _Coll,
+                              pattern: str = DEFAULT_COLUMN_PATTERN) -> None:
     have = set(c.fields)
     need_polar = [n for n in _POLAR if n not in have]
     need_cart = [n for n in _CART if n not in have] + (
         [] if any(n in have for n in _ENERGY_NAMES) else ["energy"])
     missing = need_polar if len(need_polar) <= len(need_cart) else need_cart
-    where = (f"columns '{c.name}_<field>'" if c.layout == "columns" else f"column '{c.name}'")
+    where = (f"columns '{pattern.format(collection=c.name, field='<field>')}'"
+             if c.layout == "columns" else f"column '{c.name}'")
     raise InputError(
         f"collection '{c.name}' in '{path}' ({where}) has no kinematic field "
         f"'{missing[0]}'; fields present: {', '.join(sorted(have)) or 'none'}. A collection needs "
@@ -318,7 +330,8 @@ def _describe_sig_diff(a: dict[str, Any], b: dict[str, Any]) -> str:
 
 
 def _plan_request(files: list[Path], collections: str | Sequence[str] | None,
-                  fields: Iterable[str] | None) -> list[tuple[_FileInfo, tuple]]:
+                  fields: Iterable[str] | None, pattern: str = DEFAULT_COLUMN_PATTERN
+                  ) -> list[tuple[_FileInfo, tuple]]:
     """Inspect every file and check the request and schema agreement before reading data."""
     if isinstance(fields, str):
         fields = [fields]
@@ -329,7 +342,7 @@ def _plan_request(files: list[Path], collections: str | Sequence[str] | None,
     first_path: Path | None = None
     keep_open = len(files) <= _MAX_OPEN_FILES
     for p in files:
-        info = _inspect(p)
+        info = _inspect(p, pattern=pattern)
         if not keep_open:  # do not hold thousands of file descriptors; reopen when reading
             info = dataclasses.replace(info, handle=None)
         sel = _select(info, collections, fields)

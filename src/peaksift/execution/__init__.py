@@ -7,6 +7,9 @@ What is here, and which piece to use when
   from the config, scripts build it by hand.
 * :func:`process_chunk` -- the pure per-chunk function: read one chunk, select, pair, fill.
   Returns a :class:`ChunkOutput`.  Call it yourself only to debug one chunk.
+* :func:`process_events` -- the same on a chunk already in memory (an awkward array or
+  Arrow table from your own Dask collection or reader); :func:`reduce_outputs` adds such
+  outputs in chunk order into a :class:`Collected`, bit for bit as :func:`collect` would.
 * :func:`collect` -- the whole map-reduce over a dataset, on the engine you choose.  Returns
   a :class:`Collected` (spectrum, candidate masses inside the fit window, cut flow, files
   read and skipped, events read).  This is what :func:`peaksift.run_search` calls.
@@ -23,10 +26,15 @@ Engines
     (from the same ordered queue) beside a pool of ``workers - 1``; :func:`map_tasks` uses
     ``workers`` pool processes.
 ``"dask"``
-    A Dask cluster: the scheduler at ``address`` (``"tcp://host:8786"``) when given,
-    otherwise a :class:`distributed.LocalCluster` with ``workers`` single-threaded worker
-    processes that is started for the call and closed after it.  Every worker must be able
-    to import peaksift and to open the input paths.
+    A Dask cluster: the ``client`` you pass (a :class:`distributed.Client`, left open), the
+    scheduler at ``address`` (``"tcp://host:8786"``), the client current in this process
+    (``distributed.get_client()``; said in ``engine_info["note"]``), or else a
+    :class:`distributed.LocalCluster` with ``workers`` single-threaded worker processes that
+    is started for the call and closed after it.  The file footers are read and checked on
+    the workers.  Tasks in flight follow the cluster's threads as workers join or leave;
+    results are taken as they complete and reduced in chunk order.  Every worker must run
+    the same peaksift version as this process (a worker that differs, also one joining
+    later, is refused with an ExecutionError) and be able to open the input paths or URLs.
 
 How local worker processes start (``start_method``)
 ---------------------------------------------------
@@ -62,7 +70,7 @@ Guarantees
   memory grows with the chunk size, not the dataset (plus the window masses, which an
   unbinned fit needs anyway: 16 bytes per candidate in the window).
 * **Faults are reported, never hidden.**  A file that cannot be read stops the run with an
-  error naming it (a footer that lacks what the selection reads, before any chunk runs); with ``skip_bad_files=True`` the whole file is left out (its chunks that
+  error naming it (a footer that lacks what the selection reads, before any chunk runs); with ``unreadable_files="left_out"`` the whole file is left out (its chunks that
   were already processed are discarded too, so a file counts completely or not at all) and
   listed in :attr:`Collected.files_skipped`.  A worker process that dies raises
   :class:`~peaksift.errors.ExecutionError` naming the chunk.  ``KeyboardInterrupt`` stops
@@ -75,8 +83,8 @@ process-pool runners, worker start, dead workers), ``_dask.py`` (the Dask engine
 
 from __future__ import annotations
 
-from ._chunk import ChunkOutput, Selection, process_chunk, requirement_flow
-from ._collect import DEFAULT_CHUNK_EVENTS, Collected, SkippedFile, collect
+from ._chunk import ChunkOutput, Selection, process_chunk, process_events, requirement_flow
+from ._collect import DEFAULT_CHUNK_EVENTS, Collected, SkippedFile, collect, reduce_outputs
 from ._engines import ENGINES, START_METHODS, map_tasks
 
 __all__ = [
@@ -90,5 +98,7 @@ __all__ = [
     "collect",
     "map_tasks",
     "process_chunk",
+    "process_events",
+    "reduce_outputs",
     "requirement_flow",
 ]

@@ -8,6 +8,7 @@ engines, and knows how to get a process ready before workers are forked from it.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 import warnings
 from collections.abc import Mapping, Sequence
@@ -76,6 +77,9 @@ class Selection:
         the search window, so the summaries describe the search.
     unit : str
         Unit of the mass axis (default ``"GeV"``).
+    column_pattern : str
+        How sibling list columns name a collection's fields (see
+        :func:`peaksift.read_events`; default ``"{collection}.{field}"``).
     hypotheses, identification, assignment
         Mass hypotheses per leg, the dE/dx response and the assignment rule, passed to
         :func:`peaksift.pair` unchanged.
@@ -100,6 +104,7 @@ class Selection:
     rapidity_edges: tuple[float, ...] | None = None
     summary_window: tuple[float, float] | None = None
     unit: str = "GeV"
+    column_pattern: str = "{collection}.{field}"
     hypotheses: tuple[str, ...] | None = None
     identification: Any = None
     assignment: str = "both"
@@ -257,30 +262,61 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
         When the chunk cannot be read (the message names the file and row groups).
     """
     from ..events import read_chunk
-    from ..pairing import pair
 
     t0 = time.perf_counter()
-    messages: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         events = read_chunk(spec, list(selection.collections), fields=selection.fields,
                             strict=selection.strict,
-                            masses=dict(selection.masses) if selection.masses else None)
-        cands = pair(
-            events, selection.first, selection.second,
-            cut=selection.cut, second_cut=selection.second_cut, event_cut=selection.event_cut,
-            charge=selection.charge, choose=selection.choose,
-            target_mass=selection.target_mass, min_delta_r=selection.min_delta_r,
-            event_offset=int(spec.first_event), hypotheses=selection.hypotheses,
-            identification=selection.identification, assignment=selection.assignment,
-        )
-        requirements = requirement_flow(events, selection)
+                            masses=dict(selection.masses) if selection.masses else None,
+                            column_pattern=selection.column_pattern)
+    out = process_events(events, selection, first_event=int(spec.first_event),
+                         file=_spec_file(spec))
+    return dataclasses.replace(out, data_warnings=_data_messages(caught) + out.data_warnings,
+                               seconds=time.perf_counter() - t0)
+
+
+def _data_messages(caught: list[Any]) -> tuple[str, ...]:
+    """The DataWarning messages among ``caught``; other warnings are re-issued."""
+    messages = []
     for w in caught:
         if issubclass(w.category, DataWarning):
             messages.append(str(w.message))
         else:  # not ours to swallow
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return tuple(messages)
 
+
+def process_events(events: Any, selection: Selection, *, first_event: int = 0,
+                   file: str = "<memory>") -> ChunkOutput:
+    """Select, pair and fill one chunk of events already in memory: :func:`process_chunk`
+    without the read, for your own chunks (an awkward array from your Dask collection,
+    ``ak.from_parquet``, a pyarrow Table, ...; see :func:`peaksift.events.from_memory`).
+
+    Reduce the outputs of consecutive chunks with :func:`reduce_outputs` in chunk order (pass
+    ``first_event``, the global index of the chunk's first event, so event indices stay
+    global).  DataWarnings (objects dropped from the input) are kept in ``data_warnings``.
+
+    Raises
+    ------
+    InputError
+        ``events`` is not events, or lacks what the selection reads.
+    """
+    from ..pairing import pair
+
+    t0 = time.perf_counter()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        cands = pair(
+            events, selection.first, selection.second,
+            cut=selection.cut, second_cut=selection.second_cut, event_cut=selection.event_cut,
+            charge=selection.charge, choose=selection.choose,
+            target_mass=selection.target_mass, min_delta_r=selection.min_delta_r,
+            event_offset=int(first_event), hypotheses=selection.hypotheses,
+            identification=selection.identification, assignment=selection.assignment,
+        )
+        requirements = requirement_flow(events, selection)
+    messages = _data_messages(caught)
     mass = np.asarray(cands.mass, dtype=float)
     weight = np.asarray(cands.weight, dtype=float)
     edges = selection.edges
@@ -296,8 +332,8 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
                         np.asarray(cands.rapidity, dtype=float)[insum], w_sum, "", "y")
     return ChunkOutput(
         index=-1,
-        file=_spec_file(spec),
-        first_event=int(spec.first_event),
+        file=str(file),
+        first_event=int(first_event),
         events=len(events),
         candidates=int(mass.size),
         histogram=hist,
@@ -306,7 +342,7 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
         pt_histogram=pt_hist,
         rapidity_histogram=y_hist,
         cutflow={str(k): int(v) for k, v in dict(cands.cutflow).items()},
-        data_warnings=tuple(messages),
+        data_warnings=messages,
         seconds=time.perf_counter() - t0,
         requirements=requirements,
     )

@@ -13,17 +13,18 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import ConfigError, DataWarning, ExecutionError, InputError
+from .._vocabulary import UNREADABLE_FILES
+from ..errors import ConfigError, DataWarning, ExecutionError, InputError, PeaksiftError
 from ..events import DEFAULT_CHUNK_EVENTS
 from ..histogram import MassHistogram
 from ._chunk import ChunkOutput, Selection, _ChunkTask, _describe_spec, _spec_file
-from ._engines import _check_engine, _progress, _run
+from ._engines import _check_engine, _open_dask_session, _progress, _run
 from ._local import _check_picklable
 
 
 @dataclass(frozen=True)
 class SkippedFile:
-    """A file left out of a run with ``skip_bad_files=True``, and why."""
+    """A file left out of a run with ``unreadable_files="left_out"``, and why."""
 
     path: str
     reason: str
@@ -57,7 +58,7 @@ class Collected:
     files_read : tuple[str, ...]
         Files whose every chunk was processed.
     files_skipped : tuple[SkippedFile, ...]
-        Files left out (only with ``skip_bad_files=True``), with the reason.
+        Files left out (only with ``unreadable_files="left_out"``), with the reason.
     events_read : int
         Events read from ``files_read``.
     candidates : int
@@ -74,6 +75,9 @@ class Collected:
         started for the call), ``chunks``, ``chunk_events``, ``seconds``,
         ``events_per_second`` and ``chunk_seconds`` (time spent inside the chunks, summed
         over workers: ``chunk_seconds / (seconds * workers)`` is how busy the workers were).
+    file_hashes : dict[str, str]
+        sha256 of each file read, with ``hash_files=True`` (computed where the footers were
+        read: on the workers of a Dask cluster).
     """
 
     histogram: MassHistogram
@@ -93,6 +97,7 @@ class Collected:
     engine_info: dict[str, Any] = field(default_factory=dict)
     summary_window: tuple[float, float] | None = None
     requirements: dict[str, int] = field(default_factory=dict)
+    file_hashes: dict[str, str] = field(default_factory=dict)
 
     @property
     def window_candidates(self) -> int:
@@ -191,7 +196,27 @@ class _Reducer:
         self._file = []
 
 
-def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selection
+@dataclass(frozen=True)
+class _PlanFile:
+    """Check one file's footer against the selection and plan its chunks (a picklable task,
+    so that on a cluster the workers read the footers, not the client)."""
+
+    selection: Selection
+    chunk_events: int
+    hash_files: bool = False
+
+    def __call__(self, f: str) -> tuple[list[Any], str | None]:
+        from ..events import check_files, file_sha256, plan_chunks
+
+        check_files(f, list(self.selection.collections), fields=self.selection.fields,
+                    column_pattern=self.selection.column_pattern)
+        specs = list(plan_chunks(f, chunk_events=self.chunk_events))
+        return specs, (file_sha256(f) if self.hash_files else None)
+
+
+def _plan(source: Any, chunk_events: int, leave_out: bool, selection: Selection,
+          session: Any = None, info: dict[str, Any] | None = None,
+          hashes: dict[str, str] | None = None
           ) -> tuple[list[Any], list[SkippedFile], list[str]]:
     """Chunks of every readable file, the files skipped at planning, all files.
 
@@ -200,27 +225,29 @@ def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selec
     run (or is skipped) at once, not after the files before it were processed.  Files are
     checked one by one: chunks are processed independently, so files may differ in layout.
     """
-    from ..events import check_files, list_files, plan_chunks
+    from ..events import list_files
 
     files = [str(f) for f in list_files(source)]
-
-    def check(f: str) -> None:
-        check_files(f, list(selection.collections), fields=selection.fields)
-
-    if not skip_bad_files:
-        for f in files:
-            check(f)
-        return list(plan_chunks(files, chunk_events=chunk_events)), [], files
+    plan_file = _PlanFile(selection, chunk_events, hashes is not None)
+    if session is not None:  # footers read on the workers, all files at once
+        outcomes = _run(plan_file, files, engine="dask", workers=None, address=None,
+                        describe=lambda i: f"footer of {files[i]!r}", info=dict(info or {}),
+                        session=session)
+    else:
+        outcomes = ((i, *_try(plan_file, f)) for i, f in enumerate(files))
     specs: list[Any] = []
     skipped: list[SkippedFile] = []
     offset = 0
-    for f in files:
-        try:
-            check(f)
-            part = list(plan_chunks(f, chunk_events=chunk_events))
-        except InputError as exc:
-            skipped.append(SkippedFile(f, str(exc)))
-            continue
+    for i, ok, part in outcomes:
+        f = files[i]
+        if not ok:
+            if leave_out and isinstance(part, InputError):
+                skipped.append(SkippedFile(f, str(part)))
+                continue
+            raise part
+        part, digest = part
+        if digest is not None and hashes is not None:
+            hashes[f] = digest
         for s in part:
             specs.append(dataclasses.replace(s, first_event=int(s.first_event) + offset)
                          if offset else s)
@@ -228,10 +255,18 @@ def _plan(source: Any, chunk_events: int, skip_bad_files: bool, selection: Selec
     return specs, skipped, files
 
 
+def _try(func: Any, arg: Any) -> tuple[bool, Any]:
+    try:
+        return True, func(arg)
+    except PeaksiftError as exc:
+        return False, exc
+
+
 def collect(source: Any, selection: Selection, *, engine: str = "serial",
             workers: int | None = None, address: str | None = None,
-            chunk_events: int = DEFAULT_CHUNK_EVENTS, skip_bad_files: bool = False,
-            progress: bool = False, start_method: str = "auto") -> Collected:
+            chunk_events: int = DEFAULT_CHUNK_EVENTS, unreadable_files: str = "stop",
+            progress: bool = False, start_method: str = "auto", client: Any = None,
+            hash_files: bool = False) -> Collected:
     """Run the selection over a dataset, chunk by chunk, and reduce.
 
     Parameters
@@ -247,16 +282,24 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         number of CPUs).  Ignored with ``serial`` and with a Dask ``address``.
     address : str, optional
         Scheduler of an existing Dask cluster (``"tcp://host:8786"``); engine ``dask`` only.
+    client : distributed.Client, optional
+        A Dask client you already hold (engine ``dask``); it and its cluster stay open.
+        Without ``client`` and ``address`` the client current in this process is used when
+        there is one (said in ``engine_info["note"]``), else a local cluster is started.
     chunk_events : int
         Target events per chunk (chunks are whole Parquet row groups).
-    skip_bad_files : bool
-        Leave out files that cannot be read (listed in ``files_skipped``) instead of
-        stopping.
+    unreadable_files : {"stop", "left_out"}
+        What a file that cannot be read does: ``"stop"`` the run (the error names it), or
+        it is ``"left_out"`` whole (listed with the reason in ``files_skipped``).
     progress : bool
         Show a progress bar over events.
     start_method : {"auto", "fork", "spawn"}
         How the local worker processes of ``processes`` and of a local Dask cluster start
         (see the module guide); ``"auto"`` forks on Linux.  Results do not depend on it.
+
+    hash_files : bool
+        Record each file's sha256 in ``Collected.file_hashes``, computed where the footers
+        are read (on a Dask cluster: on the workers, in parallel, near the data).
 
     Returns
     -------
@@ -265,7 +308,7 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     Raises
     ------
     InputError
-        A file cannot be read (named in the message) and ``skip_bad_files`` is False.
+        A file cannot be read (named in the message) and ``unreadable_files="stop"``.
     ExecutionError
         A worker died (the chunk is named), the selection cannot be sent to workers, or
         every file had to be skipped.
@@ -275,33 +318,43 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
             f"collect needs a peaksift.execution.Selection, got {type(selection).__name__}"
         )
     _check_engine(engine, workers, address, start_method)
+    if unreadable_files not in UNREADABLE_FILES:
+        raise ConfigError(f"unreadable_files must be one of {', '.join(UNREADABLE_FILES)}, got "
+                          f"{unreadable_files!r}")
+    leave_out = unreadable_files == "left_out"
     if isinstance(chunk_events, bool) or int(chunk_events) != chunk_events or chunk_events < 1:
         raise ConfigError(f"chunk_events must be a positive integer, got {chunk_events!r}")
     if engine == "processes":
         _check_picklable(selection, "the selection")
     t0 = time.perf_counter()
-    specs, skipped, files = _plan(source, int(chunk_events), skip_bad_files, selection)
-    n = len(specs)
-    last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
-                    for i in range(n)]
-    reducer = _Reducer(selection)
-    bad_file: str | None = None
     info: dict[str, Any] = {}
-    total = sum(int(getattr(s, "n_events", 0)) for s in specs)
-    bar = _progress(total or n, "events" if total else "chunks", "ev" if total else "chunk",
-                    progress)
     func = _ChunkTask(selection)
+    session = None
     run = None
+    bar = None
     try:
+        if engine == "dask":
+            session = _open_dask_session(func, workers, address, client, start_method, info)
+        hashes: dict[str, str] | None = {} if hash_files else None
+        specs, skipped, files = _plan(source, int(chunk_events), leave_out, selection,
+                                      session, info, hashes)
+        n = len(specs)
+        last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
+                        for i in range(n)]
+        reducer = _Reducer(selection)
+        bad_file: str | None = None
+        total = sum(int(getattr(s, "n_events", 0)) for s in specs)
+        bar = _progress(total or n, "events" if total else "chunks",
+                        "ev" if total else "chunk", progress)
         run = _run(func, specs, engine=engine, workers=workers, address=address,
                    describe=lambda i: f"chunk {i} ({_describe_spec(specs[i])})", info=info,
-                   parent_helps=True, start_method=start_method)
+                   parent_helps=True, start_method=start_method, session=session)
         for i, ok, value in run:
             fname = _spec_file(specs[i])
             if fname == bad_file:  # rest of a file already skipped
                 continue
             if not ok:
-                if skip_bad_files and isinstance(value, InputError):
+                if leave_out and isinstance(value, InputError):
                     reducer.drop_file()
                     skipped.append(SkippedFile(fname, str(value)))
                     bad_file = fname
@@ -312,7 +365,10 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     finally:
         if run is not None:
             run.close()  # stop the workers now, not when the traceback is freed
-        bar.close()
+        if session is not None:
+            session.close()
+        if bar is not None:
+            bar.close()
     if skipped and len(skipped) == len(files):
         reasons = "; ".join(f"{s.path}: {s.reason}" for s in skipped[:3])
         raise ExecutionError(
@@ -356,4 +412,30 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         n_data_warnings=reducer.n_warn,
         dropped_objects=reducer.dropped,
         engine_info=info,
+        file_hashes={f: hashes[f] for f in files_read if f in hashes} if hashes else {},
     )
+
+
+def reduce_outputs(outputs: Any, selection: Selection) -> Collected:
+    """Reduce chunk outputs you computed yourself (:func:`process_events` or
+    :func:`process_chunk` on your own cluster or collection) into a :class:`Collected`.
+
+    Give the outputs in chunk order (the order of their events): the sums are then bit for
+    bit those :func:`collect` makes.  ``engine_info`` says ``{"engine": "outputs"}``.
+    """
+    reducer = _Reducer(selection)
+    outs = list(outputs)
+    for i, out in enumerate(outs):
+        if not isinstance(out, ChunkOutput):
+            raise ConfigError(f"reduce_outputs: item {i} is a {type(out).__name__}, not a "
+                              "ChunkOutput from process_events or process_chunk")
+        reducer.add(dataclasses.replace(out, index=i), True)
+    masses = np.concatenate(reducer.masses) if reducer.masses else np.zeros(0)
+    weights = np.concatenate(reducer.weights) if reducer.weights else np.zeros(0)
+    return Collected(
+        histogram=reducer.hist, window=selection.window, window_mass=masses,
+        window_weight=weights, pt_histogram=reducer.pt, rapidity_histogram=reducer.rap,
+        cutflow=reducer.cutflow, files_read=tuple(dict.fromkeys(reducer.files)),
+        files_skipped=(), events_read=reducer.events, candidates=reducer.candidates,
+        data_warnings=tuple(reducer.warn), n_data_warnings=reducer.n_warn,
+        dropped_objects=reducer.dropped, engine_info={"engine": "outputs", "chunks": len(outs)})

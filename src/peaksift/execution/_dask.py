@@ -1,10 +1,14 @@
-"""The Dask engine: a local cluster started for the call, or a running scheduler."""
+"""The Dask engine: a client the user holds, a running scheduler, or a local cluster started
+for the call (:class:`DaskSession`), and the runner that keeps the cluster busy."""
 
 from __future__ import annotations
 
 import contextlib
+import queue
+import time
 import uuid
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 from .._processes import arrow_threads_from_env, quiet_fork, resolve_start_method
@@ -101,89 +105,209 @@ def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
                             scheduler_kwargs={"dashboard": False, "dashboard_address": ":0"})
 
 
-def _connect(address: str | None, workers: int, timeout: str = "30s",
-             start_method: str = "auto") -> tuple[Any, Any]:
-    """Return (client, cluster_we_started_or_None)."""
-    require_dask()
-    from distributed import Client
-    if address is None:
-        cluster = _start_local_cluster(workers, start_method)
-        try:
-            client = Client(cluster, set_as_default=False)
-            client.run(_local_worker_setup)  # our own workers only, never a user's cluster
-            return client, cluster
-        except BaseException:
-            cluster.close()
-            raise
+class DaskSession:
+    """The Dask client one run uses, and what to close after it.
+
+    In order of preference: the ``client`` given; a scheduler ``address``; the client that is
+    current in this process (``distributed.get_client()``, e.g. made in a notebook), used
+    with a note in ``info``; else a local cluster started here and closed by :meth:`close`.
+    A user's client and cluster are never closed.
+    """
+
+    def __init__(self, address: str | None, client: Any, workers: int, method: str,
+                 info: dict[str, Any], timeout: str = "30s") -> None:
+        require_dask()
+        from distributed import Client
+
+        self.cluster = None
+        self.own_client = False
+        if client is None and address is None:
+            client = _current_client()
+            if client is not None:
+                info["note"] = (f"used the Dask client current in this process (scheduler "
+                                f"{client.scheduler.address}); pass client=... or an address "
+                                "to choose another")
+        if client is not None:
+            if not hasattr(client, "submit") or not hasattr(client, "scheduler"):
+                raise ExecutionError(f"client must be a distributed.Client, got "
+                                     f"{type(client).__name__}")
+            self.client = client
+            info["address"] = client.scheduler.address
+        elif address is not None:
+            try:
+                self.client = Client(address, set_as_default=False, timeout=timeout)
+            except (OSError, TimeoutError) as exc:
+                raise ExecutionError(
+                    f"cannot connect to the Dask scheduler at {address!r} "
+                    f"({type(exc).__name__}: {exc}); check the address and that the scheduler "
+                    "is running, or leave the address unset to start a local cluster"
+                ) from None
+            self.own_client = True
+        else:
+            self.cluster = _start_local_cluster(workers, method)
+            try:
+                self.client = Client(self.cluster, set_as_default=False)
+                self.client.run(_local_worker_setup)  # our own workers only
+            except BaseException:
+                self.cluster.close()
+                raise
+            self.own_client = True
+            info["address"] = self.cluster.scheduler_address
+        _check_versions(self.client)
+
+    def close(self) -> None:
+        if self.own_client:
+            self.client.close()
+        if self.cluster is not None:
+            self.cluster.close()
+
+
+def _current_client() -> Any:
     try:
-        return Client(address, set_as_default=False, timeout=timeout), None
-    except (OSError, TimeoutError) as exc:
+        from distributed import get_client
+
+        return get_client()
+    except (ValueError, ImportError):  # no client in this process
+        return None
+
+
+def _peaksift_version() -> str:
+    from .. import __version__
+
+    return __version__
+
+
+def _check_versions(client: Any) -> None:
+    """Refuse workers (present now) whose peaksift differs from this process's."""
+    ours = _peaksift_version()
+    try:
+        theirs = client.run(_peaksift_version)
+    except ModuleNotFoundError as exc:
+        raise ExecutionError(f"the Dask workers cannot import peaksift ({exc}); install "
+                             f"peaksift {ours} in every worker's environment") from None
+    bad = {w: v for w, v in theirs.items() if v != ours}
+    if bad:
+        w, v = next(iter(bad.items()))
         raise ExecutionError(
-            f"cannot connect to the Dask scheduler at {address!r} ({type(exc).__name__}: "
-            f"{exc}); check the address and that the scheduler is running, or leave the "
-            "address unset to start a local cluster"
-        ) from None
+            f"Dask worker {w} runs peaksift {v} but this process runs {ours} ({len(bad)} of "
+            f"{len(theirs)} workers differ); install the same peaksift version on every worker "
+            "so that results do not depend on where a chunk ran")
+
+
+@dataclass(frozen=True)
+class _Versioned:
+    """The task function with the client's peaksift version: a worker that joins later with
+    another version refuses the task instead of computing it differently."""
+
+    func: Any
+    version: str
+
+    def __call__(self, task: Any) -> Any:
+        here = _peaksift_version()
+        if here != self.version:
+            raise ExecutionError(
+                f"this Dask worker runs peaksift {here} but the client runs {self.version}; "
+                "install the same peaksift version on every worker")
+        return self.func(task)
 
 
 def _dask_threads(client: Any) -> int:
     try:
-        info = client.scheduler_info()
-        return max(1, sum(int(w.get("nthreads", 1)) for w in info.get("workers", {}).values()))
+        return max(1, sum(int(v) for v in client.nthreads().values()))
     except (KeyError, TypeError, AttributeError, OSError):  # pragma: no cover
         return 1
 
 
+#: how often the cluster's thread count is asked for while waiting (workers come and go)
+_RESIZE_SECONDS = 0.2
+#: results that finished early may wait for their predecessors, up to this many per thread
+_WAITING_PER_THREAD = 4
+
+
 def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
               address: str | None, describe: Callable[[int], str], info: dict[str, Any],
-              method: str) -> _Run:
-    require_dask()
-    from distributed import KilledWorker
+              method: str, client: Any = None, session: DaskSession | None = None) -> _Run:
+    """Yield ``(i, ok, value)`` in task order while the cluster works in any order.
 
+    Tasks in flight follow the cluster's thread count (asked again every
+    ``_RESIZE_SECONDS`` while waiting), so workers that join late get work at once; results
+    are taken as they complete and handed on in task order (the reduce stays bit-identical
+    to serial); at most ``_WAITING_PER_THREAD`` x threads results wait for a slow
+    predecessor, which bounds memory."""
     n = len(tasks)
-    client, cluster = _connect(address, workers, start_method=method)
-    pending: dict[int, Any] = {}
+    own = session is None
+    if own:
+        session = DaskSession(address, client, workers, method, info)
+    cl = session.client
+    info["address"] = cl.scheduler.address
+    running: dict[int, Any] = {}
+    done: dict[int, tuple[bool, Any]] = {}
+    finished: queue.SimpleQueue[int] = queue.SimpleQueue()  # filled by the client's thread
     try:
-        threads = _dask_threads(client)
-        info["workers"] = threads
-        info["address"] = address if address is not None else cluster.scheduler_address
-        limit = _INFLIGHT_PER_WORKER * threads
+        task_func = _Versioned(func, _peaksift_version())
         token = uuid.uuid4().hex[:12]
         nxt = 0
-        for i in range(n):
-            while nxt < n and nxt < i + limit:
-                pending[nxt] = client.submit(func, tasks[nxt], key=f"peaksift-{token}-{nxt}",
-                                             pure=False)
+        emit = 0
+        threads = _dask_threads(cl)
+        last = time.monotonic()
+        info["workers"] = threads
+        while emit < n:
+            if time.monotonic() - last > _RESIZE_SECONDS:
+                threads, last = _dask_threads(cl), time.monotonic()
+                info["workers"] = max(info["workers"], threads)
+            while (nxt < n and len(running) < _INFLIGHT_PER_WORKER * threads
+                   and nxt - emit < _WAITING_PER_THREAD * threads):
+                fut = cl.submit(task_func, tasks[nxt], key=f"peaksift-{token}-{nxt}",
+                                pure=False)
+                fut.add_done_callback(lambda _f, i=nxt: finished.put(i))
+                running[nxt] = fut
                 nxt += 1
-            fut = pending.pop(i)
-            try:
-                value = fut.result()
-            except PeaksiftError as exc:
-                yield i, False, exc
-                continue
-            except KilledWorker as exc:
-                # tasks queued on the same worker may have failed with it; name them too
-                also = [j for j, f in pending.items() if f.status == "error"]
-                detail = f"KilledWorker: {exc}" + (
-                    f" (tasks {', '.join(map(str, also))} failed with it)" if also else "")
-                raise _dead_worker_error(
-                    "Dask worker", i, n, describe, [i, *pending], detail,
-                    "the worker process running it was killed or crashed (out of memory?): "
-                    "lower chunk_events, or run engine='serial' to see the underlying error",
-                ) from None
-            except ModuleNotFoundError as exc:
-                if "peaksift" in str(exc):
-                    raise ExecutionError(
-                        f"the Dask workers cannot import peaksift ({exc}); install the same "
-                        "peaksift version in every worker's environment"
-                    ) from None
-                raise
-            finally:
-                fut.release()
-            yield i, True, value
+            if emit not in done:
+                try:
+                    ready = [finished.get(timeout=_RESIZE_SECONDS)]
+                except queue.Empty:
+                    continue
+                while not finished.empty():
+                    ready.append(finished.get())
+                for i in ready:
+                    done[i] = _outcome(running, i, n, describe)
+            while emit in done:
+                ok, value = done.pop(emit)
+                yield emit, ok, value
+                emit += 1
     finally:
-        if pending:
+        if running:
             with contextlib.suppress(OSError, RuntimeError, TimeoutError):  # scheduler gone
-                client.cancel(list(pending.values()))
-        client.close()
-        if cluster is not None:
-            cluster.close()
+                cl.cancel(list(running.values()))
+        if own:
+            session.close()
+
+
+def _outcome(running: dict[int, Any], i: int, n: int, describe: Callable[[int], str]
+             ) -> tuple[bool, Any]:
+    from distributed import KilledWorker
+
+    fut = running.pop(i)
+    try:
+        return True, fut.result()
+    except PeaksiftError as exc:
+        return False, exc
+    except KilledWorker as exc:
+        # tasks queued on the same worker may have failed with it; name them too
+        also = [j for j, f in running.items() if f.status == "error"]
+        detail = f"KilledWorker: {exc}" + (
+            f" (tasks {', '.join(map(str, also))} failed with it)" if also else "")
+        raise _dead_worker_error(
+            "Dask worker", i, n, describe, [i, *running], detail,
+            "the worker process running it was killed or crashed (out of memory?): "
+            "lower chunk_events, or run engine='serial' to see the underlying error",
+        ) from None
+    except ModuleNotFoundError as exc:
+        if "peaksift" in str(exc):
+            raise ExecutionError(
+                f"the Dask workers cannot import peaksift ({exc}); install the same "
+                "peaksift version in every worker's environment"
+            ) from None
+        raise
+    finally:
+        fut.release()

@@ -7,7 +7,7 @@ from typing import Any
 
 from .._processes import resolve_start_method
 from ..errors import ConfigError
-from ._dask import _local_cluster_method, _run_dask, require_dask
+from ._dask import DaskSession, _current_client, _local_cluster_method, _run_dask, require_dask
 from ._local import (
     _check_picklable,
     _default_workers,
@@ -45,7 +45,7 @@ def _check_engine(engine: str, workers: int | None, address: str | None,
 def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
          workers: int | None, address: str | None, describe: Callable[[int], str],
          info: dict[str, Any], parent_helps: bool = False,
-         start_method: str = "auto") -> _Run:
+         start_method: str = "auto", client: Any = None, session: Any = None) -> _Run:
     n_workers = workers or _default_workers()
     address = address or None  # "" (the config's default) means: start a local cluster
     if engine != "dask":
@@ -56,7 +56,12 @@ def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
     if engine == "dask":
         require_dask()  # one line naming the extra, before anything else is started
     method = resolve_start_method(start_method)
+    if engine == "dask" and (client is not None or session is not None):
+        return _run_dask(func, tasks, n_workers, address, describe, info, method, client,
+                         session)
     if engine == "dask" and address is None:
+        if _current_client() is not None:  # a user's cluster: nothing of ours to fork
+            return _run_dask(func, tasks, n_workers, None, describe, info, method)
         method = _local_cluster_method(start_method, n_workers)
     if address is None:  # we start the worker processes
         info["start_method"] = method
@@ -69,6 +74,22 @@ def _run(func: Callable[[Any], Any], tasks: Sequence[Any], *, engine: str,
     return _run_dask(func, tasks, n_workers, address, describe, info, method)
 
 
+def _open_dask_session(func: Any, workers: int | None, address: str | None, client: Any,
+                       start_method: str, info: dict[str, Any]) -> Any:
+    """A :class:`DaskSession` for several runs (the plan, then the chunks): the client given,
+    the address, the current client, or a local cluster started as :func:`_run` would."""
+    n_workers = workers or _default_workers()
+    address = address or None
+    info.update(engine="dask", workers=n_workers, address=address)
+    method = resolve_start_method(start_method)
+    if client is None and address is None and _current_client() is None:
+        method = _local_cluster_method(start_method, n_workers)
+        info["start_method"] = method
+        if method == "fork":
+            _prepare_to_fork(func)
+    return DaskSession(address, client, n_workers, method, info)
+
+
 def _progress(total: int, desc: str, unit: str, enabled: bool) -> Any:
     from tqdm.auto import tqdm
 
@@ -79,7 +100,7 @@ def _progress(total: int, desc: str, unit: str, enabled: bool) -> Any:
 def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str = "serial",
               workers: int | None = None, address: str | None = None,
               progress: bool = False, desc: str = "tasks",
-              start_method: str = "auto") -> list[Any]:
+              start_method: str = "auto", client: Any = None) -> list[Any]:
     """Apply ``func`` to every task description, on the chosen engine; results in order.
 
     Parameters
@@ -90,7 +111,7 @@ def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str =
         same result wherever it runs (seed random numbers from the spec).
     specs : sequence
         Picklable task descriptions.
-    engine, workers, address, start_method
+    engine, workers, address, start_method, client
         As for :func:`collect`.
     progress : bool
         Show a progress bar (one step per finished task).
@@ -126,7 +147,7 @@ def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str =
     run = None
     try:
         run = _run(func, specs, engine=engine, workers=workers, address=address,
-                   describe=describe, info=info, start_method=start_method)
+                   describe=describe, info=info, start_method=start_method, client=client)
         for _, ok, value in run:
             if not ok:
                 raise value

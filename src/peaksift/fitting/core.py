@@ -67,7 +67,11 @@ def fit(
 
     Parameters
     ----------
-    data : MassHistogram, array of masses, or (masses, weights)
+    data : histogram, array of masses, or (masses, weights)
+        A MassHistogram; any histogram speaking the cross-library histogram protocol
+        (``values()``, ``variances()``, ``axes``, ``kind``); ``numpy.histogram``'s
+        ``(counts, edges)``; a 1-d array of masses in GeV; or ``(masses, weights)``.
+        Anything else is refused with a FitError (:func:`peaksift.histogram.as_spectrum`).
     signal : shape name, Shape, or a list of them (several peaks)
     background : shape name or Shape
     window : (lo, hi), optional
@@ -179,7 +183,7 @@ def fit(
                        cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
                        cost.ncall, floors)
     sh = start_bins(d)
-    starts = fit_starts(model, sh.edges, sh.weight_sum, sh.scaled_poisson_factors(), base,
+    starts = fit_starts(model, sh.edges, sh.values(), sh.scaled_poisson_factors(), base,
                         is_fixed, given, lower, upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]

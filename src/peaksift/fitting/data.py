@@ -42,19 +42,18 @@ class FitData:
 
 
 def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any) -> FitData:
-    from ..histogram import MassHistogram
+    from ..histogram import MassHistogram, as_spectrum
 
-    if isinstance(data, MassHistogram):
-        if weights is not None:
-            raise FitError("weights= given with a MassHistogram; the histogram already holds them")
+    spec = as_spectrum(data, weights, what="fit")
+    if isinstance(spec, MassHistogram):
         if binned is False:
-            raise FitError("an unbinned fit needs the masses themselves, not a MassHistogram; "
+            raise FitError("an unbinned fit needs the masses themselves, not a histogram; "
                            "pass the array of masses or use binned=True")
         try:
-            h = data if window is None else data.restrict(as_window(window))
+            h = spec if window is None else spec.restrict(as_window(window))
         except InputError as exc:
             raise FitError(f"fit window: {exc}") from None
-        n, n2 = h.weight_sum, h.weight_sq_sum
+        n, n2 = h.values(), h.variances()
         if not (np.all(np.isfinite(n)) and np.all(np.isfinite(n2))):
             raise FitError("the histogram has non-finite bin contents in the fit window")
         if np.any(n < 0):
@@ -71,16 +70,12 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
                 _log.info(note)
         return FitData(True, "data is a histogram", bool(h.is_weighted), h.edges, n, n2, None,
                        None, (h.lo, h.hi), float(n.sum()), h.unit, h, note)
-    if isinstance(data, tuple) and len(data) == 2 and weights is None:
-        data, weights = data
-    x = _masses(data, "masses")
+    x, w = spec
     bad = ~np.isfinite(x)
     if bad.any():
         raise FitError(f"{int(bad.sum())} of {x.size} masses are not finite (first at index "
                        f"{int(np.flatnonzero(bad)[0])}); drop NaN/inf masses before fitting")
-    w = None
-    if weights is not None:
-        w = _masses(weights, "weights")
+    if w is not None:
         if w.shape != x.shape:
             raise FitError(f"{x.size} masses but {w.size} weights; give one weight per mass")
         badw = ~np.isfinite(w)
@@ -119,26 +114,11 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
         reason = "requested"
     if binned:
         h = MassHistogram.from_masses(x, w, edges=_edges(bins, lo, hi))
-        return FitData(True, reason, weighted, h.edges, h.weight_sum, h.weight_sq_sum, None,
-                       None, (lo, hi), float(h.weight_sum.sum()), "GeV", h)
+        return FitData(True, reason, weighted, h.edges, h.values(), h.variances(), None,
+                       None, (lo, hi), float(h.values().sum()), "GeV", h)
     nb = int(np.clip(x.size // 20, 5, 100))
     gof = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
     return FitData(False, reason, weighted, None, None, None, x, w, (lo, hi), total, "GeV", gof)
-
-
-def _masses(data: Any, what: str) -> np.ndarray:
-    """A flat float array of masses (or weights), or a FitError saying what was given."""
-    if data is None or isinstance(data, (str, bytes)):
-        raise FitError(f"{what} must be an array of numbers (or a MassHistogram), got "
-                       f"{type(data).__name__}")
-    try:
-        a = np.asarray(data)
-        if np.iscomplexobj(a):
-            raise TypeError("complex")
-        return a.astype(float).ravel()
-    except (TypeError, ValueError):
-        raise FitError(f"{what} must be an array of real numbers, got "
-                       f"{type(data).__name__} with dtype {np.asarray(data).dtype}") from None
 
 
 def _edges(bins: Any, lo: float, hi: float) -> np.ndarray:
@@ -172,7 +152,7 @@ def _edges(bins: Any, lo: float, hi: float) -> np.ndarray:
 def gof_binning(d: FitData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Edges, sums of weights and of squared weights of the goodness-of-fit bins: the fit's
     own bins, or for unbinned data 5-100 equal bins of ~20 masses."""
-    return d.hist.edges, d.hist.weight_sum, d.hist.weight_sq_sum
+    return d.hist.edges, d.hist.values(), d.hist.variances()
 
 
 def start_bins(d: FitData, most: int = 100) -> Any:

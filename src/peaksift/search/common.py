@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import datetime as _dt
-import hashlib
 import platform
 from collections.abc import Mapping
 from pathlib import Path
@@ -23,7 +22,7 @@ def _in_window(col: Any, cfg: Config, hidden: tuple[float, float] | None = None)
     # counted by the spectrum's own bins, so the edge rule is the histogram's
     h = MassHistogram.from_masses(np.asarray(col.window_mass, dtype=float),
                                   edges=cfg.spectrum.edges)
-    counts = h.weight_sum
+    counts = h.values()
     if hidden is not None:  # the hidden range is a union of whole bins
         c = h.centers
         counts = counts[~((c > hidden[0]) & (c < hidden[1]))]
@@ -37,13 +36,13 @@ def _hidden(blinding: Mapping[str, Any]) -> tuple[float, float] | None:
 
 
 def _blinded_copy(hist: Any, blind: Any) -> Any:
-    """A copy of ``hist`` with the bins overlapping ``blind`` emptied (weight_sum = weight_sq_sum = 0)."""
+    """A copy of ``hist`` with the bins overlapping ``blind`` emptied (values = variances = 0)."""
     from ..blinding import blinded_bins
 
     h = hist.copy()
     mask = blinded_bins(h.edges, blind)
-    h.weight_sum[mask] = 0.0
-    h.weight_sq_sum[mask] = 0.0
+    h.values()[mask] = 0.0
+    h.variances()[mask] = 0.0
     return h
 
 
@@ -62,7 +61,7 @@ def _save_spectrum(hist: Any, path: Path, blinding: Mapping[str, Any]) -> Path:
     d["blinded"] = {
         "window": list(blinding.get("window") or []),
         "hidden_range": list(hidden),
-        "note": "the bins overlapping the blinded window are hidden: their weight_sum and weight_sq_sum "
+        "note": "the bins overlapping the blinded window are hidden: their values and variances "
                 "are set to 0 (not measured empty); rerun with --unblind for the full spectrum",
     }
     return atomic_write(path, json.dumps(d, indent=1))
@@ -89,14 +88,6 @@ def _events_selected(cutflow: Mapping[str, int]) -> int:
 # ------------------------------------------------------------------------------ helpers
 def _utc() -> str:
     return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
-def _sha256(path: str | Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def _versions() -> dict[str, str]:
@@ -173,6 +164,7 @@ def _selection(cfg: Config, lo: float, hi: float, nbins: int,
         target_mass=pr.target_mass,
         min_delta_r=pr.min_delta_r or None,
         strict=cfg.input.strict,
+        column_pattern=cfg.input.column_pattern,
         hypotheses=(hyps * 2 if len(hyps) == 1 else hyps) or None,
         identification=identification,
         assignment=pr.assignment,
@@ -205,8 +197,8 @@ def _collect(cfg: Config, *, progress: bool, identification: Any = None
         col = collect(
             cfg.input.files, _selection(cfg, ulo, uhi, nb, response),
             engine=ex.engine, workers=ex.workers, address=ex.address or None,
-            chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
-            start_method=ex.start_method,
+            chunk_events=ex.chunk_events, unreadable_files=ex.unreadable_files, progress=progress,
+            start_method=ex.start_method, hash_files=cfg.input.hash_inputs,
         )
     except CutError as exc:
         raise _keyed_cut_error(cfg, exc) from None

@@ -23,7 +23,6 @@ from .common import (
     _save_spectrum,
     _scan_masses,
     _scan_signal_name,
-    _sha256,
     _shape,
     _utc,
     _versions,
@@ -215,7 +214,9 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
             drawing.cancel()
         raise
 
-    inputs = [{"path": str(p), "sha256": _sha256(p)} for p in col.files_read]
+    # hashed where the footers were read (on the workers of a cluster); None when
+    # input.hash_inputs is off
+    inputs = [{"path": str(p), "sha256": col.file_hashes.get(str(p))} for p in col.files_read]
     prov: dict[str, Any] = {
         "inputs": inputs,
         "files_skipped": [s.to_dict() for s in col.files_skipped],

@@ -516,7 +516,7 @@ def upper_limits(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window, natural_width=natural_width, blind=blind, signal_params=signal_params,
-        bins=bins, signal_model=signal_model)
+        bins=bins, signal_model=signal_model, what="upper_limits")
     if signal_model is not None and efficiency is not None:
         raise FitError("give the efficiency either through signal_model= or efficiency=, "
                        "not both")

@@ -50,11 +50,11 @@ __all__ = ["ScanResult", "scan"]
 @dataclass(frozen=True)
 class _Spectrum:
     edges: np.ndarray      # bins in the window
-    counts: np.ndarray     # effective counts k_i weight_sum_i (window bins)
+    counts: np.ndarray     # effective counts k_i values_i (window bins)
     scale: float           # overall factor sum(w)/sum(w^2) (1 unweighted), for information
     window: tuple[float, float]
     unit: str
-    bin_scale: np.ndarray | None = None  # per-bin k_i = weight_sum_i/weight_sq_sum_i (None unweighted)
+    bin_scale: np.ndarray | None = None  # per-bin k_i = values_i/variances_i (None unweighted)
 
 
 def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
@@ -69,10 +69,7 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
     if isinstance(data, MassHistogram):
         hist = data if window is None else data.restrict(window)
     else:
-        if isinstance(data, tuple) and len(data) == 2:
-            x, w = (np.asarray(v, float).ravel() for v in data)
-        else:
-            x, w = np.asarray(data, float).ravel(), None
+        x, w = data  # as_spectrum's (masses, weights)
         if x.size == 0:
             raise FitError("scan: no masses given")
         if not np.all(np.isfinite(x)):
@@ -88,7 +85,7 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
             nb = int(bins)
             check_plan(2, nb)  # before the histogram is allocated
         hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
-    weight_sum = np.asarray(hist.weight_sum, float)
+    weight_sum = np.asarray(hist.values(), float)
     edges = np.asarray(hist.edges, float)
     if not (np.all(np.isfinite(weight_sum)) and np.all(weight_sum >= 0)):
         raise FitError("scan: bin contents in the window must be finite and non-negative")
@@ -96,8 +93,8 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
         raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
     scale = 1.0
     bin_scale = None
-    if not np.allclose(weight_sum, hist.weight_sq_sum):
-        scale = float(weight_sum.sum() / hist.weight_sq_sum.sum())
+    if not np.allclose(weight_sum, hist.variances()):
+        scale = float(weight_sum.sum() / hist.variances().sum())
         bin_scale = hist.scaled_poisson_factors()
         warnings.warn(
             f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
@@ -279,9 +276,12 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    absolute_resolution: Any = None, window: Any, natural_width: Any,
                    blind: Any, signal_params: Any, bins: Any,
                    background_start: Mapping[str, float] | None = None,
-                   signal_model: Any = None,
+                   signal_model: Any = None, what: str = "scan"
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
+    from ..histogram import MassHistogram, as_spectrum
+
+    data = as_spectrum(data, what=what)  # a MassHistogram or (masses, weights); else FitError
 
     if signal_model is not None:
         signal, resolution, signal_params = from_signal_model(
@@ -305,8 +305,12 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
             return float(np.min(sigma_of(m_arr)))
         if window is not None:
             lo, hi = float(window[0]), float(window[1])
+        elif isinstance(data, MassHistogram):
+            lo, hi = data.lo, data.hi
         else:
-            x = np.asarray(data[0] if isinstance(data, tuple) else data, float)
+            x = data[0]
+            if x.size == 0:
+                raise FitError(f"{what}: no masses given")
             lo, hi = float(np.min(x)), float(np.max(x))
         pad = 0.05 * (hi - lo)  # the default grid's range
         return float(np.min(sigma_of(np.linspace(lo + pad, hi - pad, 50))))
@@ -395,7 +399,7 @@ class ScanResult(FrozenValue):
     weight_scale : float
         Weighted spectra: the overall ``sum w / sum w^2`` of the window, for information
         (1 unweighted).  The likelihood itself scales every bin by its own
-        ``k_i = weight_sum_i / weight_sq_sum_i`` (scaled Poisson, as :func:`peaksift.fit`; empty bins get
+        ``k_i = values_i / variances_i`` (scaled Poisson, as :func:`peaksift.fit`; empty bins get
         the overall value); yields are in weighted units.
     """
 
@@ -711,12 +715,15 @@ def scan(
 
     Parameters
     ----------
-    data : MassHistogram, array of masses, or (masses, weights)
+    data : histogram, array of masses, or (masses, weights)
+        A MassHistogram, a histogram speaking the cross-library histogram protocol,
+        ``numpy.histogram``'s ``(counts, edges)``, masses in GeV or ``(masses, weights)``;
+        anything else is a FitError (:func:`peaksift.histogram.as_spectrum`).
         Arrays are histogrammed on the window (:meth:`MassHistogram.from_masses`, so a mass
         equal to the window's top is in the last bin) in bins of a quarter of the smallest
         resolution (50-2000 bins) unless ``bins`` is given; the scan of an array and of the
         histogram built from it are the same.  Weighted bins are scaled Poisson variables: effective
-        counts ``k_i weight_sum_i`` with ``k_i = weight_sum_i / weight_sq_sum_i`` per bin (Bohm and Zech, NIM A
+        counts ``k_i values_i`` with ``k_i = values_i / variances_i`` per bin (Bohm and Zech, NIM A
         748 (2014) 1; the same likelihood as the weighted binned :func:`peaksift.fit`, so
         q0 agrees with two such fits); yields are reported in weighted units.
     signal, background : shape name or Shape

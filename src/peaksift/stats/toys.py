@@ -115,9 +115,9 @@ class ScanModel:
         Signal bin fractions ``(n_masses, n_used)`` at each hypothesis (already multiplied
         by ``bin_scale``).
     bin_scale : ndarray or None
-        Weighted spectra: the scaled-Poisson factor ``k_i = weight_sum_i / weight_sq_sum_i`` of every
+        Weighted spectra: the scaled-Poisson factor ``k_i = values_i / variances_i`` of every
         window bin (Bohm and Zech 2014; the rule of :func:`peaksift.fit`, empty bins get
-        ``sum w / sum w^2``).  Counts are effective counts ``k_i weight_sum_i`` and every
+        ``sum w / sum w^2``).  Counts are effective counts ``k_i values_i`` and every
         expectation is ``k_i (s f_i + b g_i)`` with the yields in weighted units, so the
         NLL equals the weighted binned fit's up to a constant.  None: unweighted (k = 1).
     """

@@ -1,8 +1,8 @@
 """Weighted invariant-mass histograms.
 
 :class:`MassHistogram` is the one spectrum object peaksift passes between layers:
-bin edges, the sum of weights and the sum of squared weights per bin, plus under-
-and overflow.  Use it when
+bin edges, per bin the sum of weights (its *values*) and the sum of squared weights (its
+*variances*), plus under- and overflow.  Use it when
 
 * you fill a spectrum from candidates (``h.fill(cands.mass, cands.weight)``);
 * you merge partial spectra from chunks or workers (``h1 + h2``; for unweighted data
@@ -10,116 +10,34 @@ and overflow.  Use it when
 * you hand a spectrum to :func:`peaksift.fit` or :func:`peaksift.scan`, which take the bins
   inside their window (:meth:`~MassHistogram.restrict`) and, for weighted spectra, the
   scaled-Poisson factor of each bin (:meth:`~MassHistogram.scaled_poisson_factors`);
-* you keep a spectrum on disk (``save``/``load``; ``.npz`` or ``.json``, both exact).
+* you keep a spectrum on disk (``save``/``load``; ``.npz`` or ``.json``, both exact);
+* you hand it to another histogram or plotting library: it speaks the cross-library
+  histogram protocol (``values()``, ``variances()``, ``counts()``, ``axes``, ``kind``).
 
-:meth:`MassHistogram.from_masses` builds and fills one in a call.
+:meth:`MassHistogram.from_masses` builds and fills one in a call;
+:meth:`MassHistogram.from_counts` takes a ``(counts, edges)`` pair (``numpy.histogram``'s
+return); :meth:`MassHistogram.from_protocol` converts any histogram that speaks the protocol.
 
-The edge rule (``numpy.histogram``'s): bins are ``[edge[i], edge[i+1])`` except the last,
-which is closed, ``[edge[n-1], edge[n]]``.  A mass equal to the top of the range is inside
-the range, as a fit window ``lo <= m <= hi`` selects it (:func:`in_range` is that test for
-raw masses); the overflow holds masses above the last edge, the underflow masses below the
+The edge rule is :mod:`peaksift.histogram.binning`'s (``numpy.histogram``'s, the last bin
+closed); the overflow holds masses above the last edge, the underflow masses below the
 first.  NaN values are not filled; they are counted in ``n_nan``.
 """
 
 from __future__ import annotations
 
-import io
-import json
 import os
-import zipfile
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ._files import atomic_write
-from .errors import InputError
+from ..errors import InputError
+from ._protocol import MassAxis, from_counts, from_protocol, speaks_protocol
+from ._storage import from_dict, load, save, to_dict
+from .binning import bin_index, check_edges, is_regular
 
-__all__ = ["MassHistogram", "in_range"]
-
-_FORMAT = "peaksift-mass-histogram"
-_FORMAT_VERSION = 1
-
-
-def _check_edges(edges: Any) -> np.ndarray:
-    try:
-        e = np.array(edges, dtype=float)
-    except (TypeError, ValueError):
-        raise InputError(
-            f"histogram edges must be numbers, got {edges!r:.80}; pass e.g. "
-            "edges=np.linspace(60, 120, 121) or bins=120, range=(60, 120)"
-        ) from None
-    if e.ndim != 1 or e.size < 2:
-        raise InputError(
-            f"histogram edges must be a 1-d sequence of at least 2 numbers, got shape {e.shape}; "
-            "pass e.g. edges=np.linspace(60, 120, 121) or bins=120, range=(60, 120)"
-        )
-    if not np.all(np.isfinite(e)):
-        bad = int(np.flatnonzero(~np.isfinite(e))[0])
-        raise InputError(
-            f"histogram edge {bad} is {float(e[bad])!r}; all edges must be finite numbers"
-        )
-    d = np.diff(e)
-    if np.any(d <= 0):
-        bad = int(np.flatnonzero(d <= 0)[0])
-        raise InputError(
-            f"histogram edges must increase strictly, but edge {bad + 1} ({float(e[bad + 1])!r}) "
-            f"is not above edge {bad} ({float(e[bad])!r}); sort the edges and remove duplicates"
-        )
-    e.setflags(write=False)
-    return e
-
-
-# below this many bins a binary search over the edges is as fast as the arithmetic index
-_ARITHMETIC_INDEX_MIN_BINS = 128
-
-
-def _regular_index(edges: np.ndarray, values: np.ndarray) -> np.ndarray:
-    """``np.searchsorted(edges, values, side="right")`` for regular edges and values without
-    NaN, exactly, by arithmetic: several times faster for unsorted values, since a binary
-    search over hundreds of edges misses the cache for every value.  The arithmetic guess
-    is checked against the actual edges and moved by one bin where rounding put it on the
-    wrong side of an edge (index ``j`` holds ``edges[j-1] <= v < edges[j]``; the padding
-    -inf and NaN make the tests false beyond the first and last edge)."""
-    n = edges.size - 1
-    lo, hi = float(edges[0]), float(edges[-1])
-    ext = np.concatenate([[-np.inf], edges, [np.nan]])
-    t = (values - lo) * (n / (hi - lo))
-    np.clip(t, -1.0, float(n), out=t)
-    k = np.floor(t, out=t).astype(np.intp)  # -1: underflow, n: overflow, else the bin
-    k += 1  # now the searchsorted index, 0 .. n + 1
-    for _ in range(3):  # rounding moves a guess by at most one bin
-        down = values < ext[k]
-        up = values >= ext[k + 1]
-        if not (down.any() or up.any()):
-            return k
-        k -= down
-        k += up
-    wrong = (values < ext[k]) | (values >= ext[k + 1])  # never seen; exact either way
-    k[wrong] = np.searchsorted(edges, values[wrong], side="right")
-    return k
-
-
-def in_range(mass: ArrayLike, lo: float, hi: float) -> np.ndarray:
-    """``lo <= mass <= hi`` (both ends closed): the masses a histogram on ``[lo, hi]`` puts
-    in its bins, and the masses a fit window ``(lo, hi)`` uses.  NaN is outside."""
-    m = np.asarray(mass, dtype=float)
-    return (m >= lo) & (m <= hi)
-
-
-def _bin_index(edges: np.ndarray, values: np.ndarray, regular: bool) -> np.ndarray:
-    """0 for underflow, ``1..n`` for the bins, ``n + 1`` for overflow, by the module's edge
-    rule: ``searchsorted(side="right")`` (half-open bins), then the last edge moved into the
-    last bin, which is closed.  ``values`` holds no NaN."""
-    n = edges.size - 1
-    if regular and n >= _ARITHMETIC_INDEX_MIN_BINS:
-        idx = _regular_index(edges, values)
-    else:
-        idx = np.searchsorted(edges, values, side="right")
-    idx[values == edges[-1]] = n
-    return idx
-
+__all__ = ["MassHistogram"]
 
 class MassHistogram:
     """A weighted one-dimensional histogram of invariant masses.
@@ -140,26 +58,27 @@ class MassHistogram:
     edges : ndarray
         Read-only bin edges (``nbins + 1``).
     weight_sum, weight_sq_sum : ndarray
-        Sum of weights and of squared weights per bin.
+        The arrays ``values()`` and ``variances()`` return: sum of weights and of squared
+        weights per bin (kept for code written against these names).
     underflow, overflow : float
         Sum of weights below the first / above the last edge (a value equal to the last
-        edge is in the last bin); ``underflow_weight_sq_sum`` and ``overflow_weight_sq_sum`` likewise.
+        edge is in the last bin); ``underflow_variance`` and ``overflow_variance`` likewise.
     n_nan : int
         Number of NaN values offered to :meth:`fill` and not filled.
     """
 
     __slots__ = (
         "_regular",
+        "_values",
+        "_variances",
         "edges",
         "label",
         "n_nan",
         "overflow",
-        "overflow_weight_sq_sum",
+        "overflow_variance",
         "underflow",
-        "underflow_weight_sq_sum",
+        "underflow_variance",
         "unit",
-        "weight_sq_sum",
-        "weight_sum",
     )
 
     def __init__(
@@ -184,19 +103,18 @@ class MassHistogram:
             edges = np.linspace(lo, hi, int(bins) + 1)
         elif bins is not None or range is not None:
             raise InputError("give either edges=... or bins=/range=, not both")
-        self.edges = _check_edges(edges)
+        self.edges = check_edges(edges)
         n = self.edges.size - 1
-        self.weight_sum = np.zeros(n)
-        self.weight_sq_sum = np.zeros(n)
+        self._values = np.zeros(n)
+        self._variances = np.zeros(n)
         self.underflow = 0.0
         self.overflow = 0.0
-        self.underflow_weight_sq_sum = 0.0
-        self.overflow_weight_sq_sum = 0.0
+        self.underflow_variance = 0.0
+        self.overflow_variance = 0.0
         self.n_nan = 0
         self.unit = str(unit)
         self.label = str(label)
-        w = np.diff(self.edges)
-        self._regular = bool(np.allclose(w, w[0], rtol=1e-12, atol=0.0))
+        self._regular = is_regular(self.edges)
 
     # ------------------------------------------------------------------ basics
     @property
@@ -223,31 +141,85 @@ class MassHistogram:
     def is_regular(self) -> bool:
         return self._regular
 
+    # ---------------------------------------------- cross-library histogram protocol
+    @property
+    def kind(self) -> str:
+        """``"COUNT"``: the bins hold sums of weights (the protocol's other kind, a mean per
+        bin, is not a spectrum)."""
+        return "COUNT"
+
+    @property
+    def axes(self) -> tuple[MassAxis]:
+        """The one mass axis (protocol axis: ``len``, ``axis[i] -> (lo, hi)``, ``traits``,
+        ``edges``, ``label``)."""
+        return (MassAxis(self.edges, self.label, self.unit),)
+
+    def values(self, flow: bool = False) -> np.ndarray:
+        """Sum of weights per bin (with ``flow``: underflow first, overflow last).  Without
+        ``flow`` this is the histogram's own array: writing into it changes the histogram."""
+        if flow:
+            return np.concatenate([[self.underflow], self._values, [self.overflow]])
+        return self._values
+
+    def variances(self, flow: bool = False) -> np.ndarray:
+        """Sum of squared weights per bin, the variance of each bin's sum of weights (with
+        ``flow``: underflow first, overflow last)."""
+        if flow:
+            return np.concatenate([[self.underflow_variance], self._variances,
+                                   [self.overflow_variance]])
+        return self._variances
+
+    def counts(self, flow: bool = False) -> np.ndarray:
+        """Entries per bin: the values for unweighted fills; for weighted ones the effective
+        number of entries ``values**2 / variances`` (0 where the variance is 0), the
+        protocol's definition."""
+        v, var = self.values(flow), self.variances(flow)
+        if not self.is_weighted:
+            return v.copy()
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(var > 0, v * v / np.where(var > 0, var, 1.0), 0.0)
+
+    @property
+    def weight_sum(self) -> np.ndarray:
+        return self._values
+
+    @weight_sum.setter
+    def weight_sum(self, a: Any) -> None:
+        self._values = np.asarray(a, dtype=float)
+
+    @property
+    def weight_sq_sum(self) -> np.ndarray:
+        return self._variances
+
+    @weight_sq_sum.setter
+    def weight_sq_sum(self, a: Any) -> None:
+        self._variances = np.asarray(a, dtype=float)
+
     @property
     def errors(self) -> np.ndarray:
-        """Per-bin uncertainty ``sqrt(weight_sq_sum)``."""
-        return np.sqrt(self.weight_sq_sum)
+        """Per-bin uncertainty ``sqrt(variances)``."""
+        return np.sqrt(self._variances)
 
     @property
     def is_weighted(self) -> bool:
         """True when any bin's sum of squared weights differs from its sum of weights."""
         return not (
-            np.array_equal(self.weight_sum, self.weight_sq_sum)
-            and self.underflow == self.underflow_weight_sq_sum
-            and self.overflow == self.overflow_weight_sq_sum
+            np.array_equal(self._values, self._variances)
+            and self.underflow == self.underflow_variance
+            and self.overflow == self.overflow_variance
         )
 
     def total(self, *, flow: bool = False) -> float:
         """Sum of weights in the bins (and under/overflow when ``flow``)."""
-        s = float(self.weight_sum.sum())
+        s = float(self._values.sum())
         return s + self.underflow + self.overflow if flow else s
 
     def copy(self) -> MassHistogram:
         h = MassHistogram(self.edges, unit=self.unit, label=self.label)
-        h.weight_sum = self.weight_sum.copy()
-        h.weight_sq_sum = self.weight_sq_sum.copy()
+        h._values = self._values.copy()
+        h._variances = self._variances.copy()
         h.underflow, h.overflow = self.underflow, self.overflow
-        h.underflow_weight_sq_sum, h.overflow_weight_sq_sum = self.underflow_weight_sq_sum, self.overflow_weight_sq_sum
+        h.underflow_variance, h.overflow_variance = self.underflow_variance, self.overflow_variance
         h.n_nan = self.n_nan
         return h
 
@@ -290,18 +262,18 @@ class MassHistogram:
         if m.size == 0:
             return self
         n = self.nbins
-        idx = _bin_index(self.edges, m, self._regular)  # 0 underflow, 1..n, n+1 overflow
+        idx = bin_index(self.edges, m, self._regular)  # 0 underflow, 1..n, n+1 overflow
         if w is None:
             s1 = s2 = np.bincount(idx, minlength=n + 2).astype(float)
         else:
             s1 = np.bincount(idx, weights=w, minlength=n + 2)
             s2 = np.bincount(idx, weights=w * w, minlength=n + 2)
-        self.weight_sum += s1[1 : n + 1]
-        self.weight_sq_sum += s2[1 : n + 1]
+        self._values += s1[1 : n + 1]
+        self._variances += s2[1 : n + 1]
         self.underflow += s1[0]
         self.overflow += s1[n + 1]
-        self.underflow_weight_sq_sum += s2[0]
-        self.overflow_weight_sq_sum += s2[n + 1]
+        self.underflow_variance += s2[0]
+        self.overflow_variance += s2[n + 1]
         return self
 
     @classmethod
@@ -319,6 +291,52 @@ class MassHistogram:
         """A new histogram (``edges``, or ``bins`` equal bins on ``range``) filled with
         ``mass`` and optional ``weight``: ``MassHistogram(edges).fill(mass, weight)``."""
         return cls(edges, bins=bins, range=range, unit=unit, label=label).fill(mass, weight)
+
+    @classmethod
+    def from_counts(
+        cls,
+        counts: ArrayLike,
+        edges: ArrayLike,
+        variances: ArrayLike | None = None,
+        *,
+        underflow: float = 0.0,
+        overflow: float = 0.0,
+        unit: str = "GeV",
+        label: str = "m",
+    ) -> MassHistogram:
+        """A histogram from bin contents and edges, e.g. ``numpy.histogram``'s return
+        ``(counts, edges)``: ``MassHistogram.from_counts(*np.histogram(m, bins=90))``.
+
+        ``variances`` (sums of squared weights per bin) default to the counts themselves,
+        which is right for unweighted counts; give them for sums of weights.  Flow
+        variances equal the flow contents.
+
+        Raises
+        ------
+        InputError
+            Counts and edges do not match (``len(edges) == len(counts) + 1``), contents are
+            not finite, or counts are negative without variances.
+        """
+        return from_counts(cls, counts, edges, variances, underflow, overflow, unit, label)
+
+    @classmethod
+    def from_protocol(cls, hist: Any, *, unit: str = "GeV", label: str | None = None
+                      ) -> MassHistogram:
+        """Convert any one-dimensional histogram that speaks the cross-library histogram
+        protocol (``values()``, ``variances()``, ``axes``, ``kind``), e.g. one from a
+        general-purpose histogram library, keeping its flow bins when it has them.
+
+        The other library's edge rule may differ at the last edge (a value equal to it may
+        sit in the overflow there); the contents are taken as they are.
+
+        Raises
+        ------
+        InputError
+            Not one-dimensional, a categorical or circular axis, a histogram of means, or
+            weighted contents without variances (fill with a storage that keeps the sum of
+            squared weights).
+        """
+        return from_protocol(cls, hist, unit, label)
 
     # ------------------------------------------------------- window, likelihood
     def restrict(self, window: tuple[float, float]) -> MassHistogram:
@@ -355,27 +373,27 @@ class MassHistogram:
                 "with finer bins")
         i0, i1 = int(keep[0]), int(keep[-1]) + 1
         h = MassHistogram(e[i0 : i1 + 1], unit=self.unit, label=self.label)
-        h.weight_sum = self.weight_sum[i0:i1].copy()
-        h.weight_sq_sum = self.weight_sq_sum[i0:i1].copy()
-        h.underflow = self.underflow + float(self.weight_sum[:i0].sum())
-        h.underflow_weight_sq_sum = self.underflow_weight_sq_sum + float(self.weight_sq_sum[:i0].sum())
-        h.overflow = self.overflow + float(self.weight_sum[i1:].sum())
-        h.overflow_weight_sq_sum = self.overflow_weight_sq_sum + float(self.weight_sq_sum[i1:].sum())
+        h._values = self._values[i0:i1].copy()
+        h._variances = self._variances[i0:i1].copy()
+        h.underflow = self.underflow + float(self._values[:i0].sum())
+        h.underflow_variance = self.underflow_variance + float(self._variances[:i0].sum())
+        h.overflow = self.overflow + float(self._values[i1:].sum())
+        h.overflow_variance = self.overflow_variance + float(self._variances[i1:].sum())
         h.n_nan = self.n_nan
         return h
 
     def scaled_poisson_factors(self) -> np.ndarray:
-        """The scaled-Poisson factor of every bin, ``s_i = weight_sum_i / weight_sq_sum_i``.
+        """The scaled-Poisson factor of every bin, ``s_i = values_i / variances_i``.
 
-        A bin of weighted entries is treated as a Poisson count of ``s_i weight_sum_i`` effective
+        A bin of weighted entries is treated as a Poisson count of ``s_i values_i`` effective
         entries with expectation ``s_i mu_i`` (Bohm and Zech, "Statistics of weighted
         Poisson events and its applications", NIM A 748 (2014) 1): the scale makes the
-        effective count's variance equal its mean.  Bins with no usable ratio (``weight_sq_sum = 0``,
-        or ``weight_sum <= 0`` from negative weights) take the ratio of the totals over the bins,
-        ``sum(weight_sum) / sum(weight_sq_sum)`` (1 when that is undefined).  Unweighted histograms give 1
+        effective count's variance equal its mean.  Bins with no usable ratio (``variances = 0``,
+        or ``values <= 0`` from negative weights) take the ratio of the totals over the bins,
+        ``sum(values) / sum(variances)`` (1 when that is undefined).  Unweighted histograms give 1
         in every bin.
         """
-        n, n2 = self.weight_sum, self.weight_sq_sum
+        n, n2 = self._values, self._variances
         if np.array_equal(n, n2):
             return np.ones_like(n)
         total2 = float(n2.sum())
@@ -385,17 +403,26 @@ class MassHistogram:
         return np.where(s > 0, s, overall)
 
     # ------------------------------------------------------------------- merge
-    def _check_compatible(self, other: Any) -> None:
+    def _compatible(self, other: Any) -> MassHistogram:
+        """``other`` as a MassHistogram with this binning (edges equal to 1e-12 of the
+        range, so another library's regular edges match ``numpy.linspace``'s)."""
         if not isinstance(other, MassHistogram):
-            raise InputError(f"can only add a MassHistogram to a MassHistogram, not {type(other).__name__}")
-        if other.edges.shape != self.edges.shape or not np.array_equal(other.edges, self.edges):
+            if not speaks_protocol(other):
+                raise InputError(
+                    f"can only add a histogram to a MassHistogram (a MassHistogram or an object "
+                    f"speaking the histogram protocol: values(), variances(), axes), not "
+                    f"{type(other).__name__}")
+            other = MassHistogram.from_protocol(other, unit=self.unit, label=self.label)
+        if other.edges.shape != self.edges.shape or not np.allclose(
+                other.edges, self.edges, rtol=0.0, atol=1e-12 * (self.hi - self.lo)):
             raise InputError(
                 f"cannot add histograms with different binning ({self.nbins} bins on "
                 f"[{self.lo:g}, {self.hi:g}] vs {other.nbins} bins on [{other.lo:g}, {other.hi:g}]); "
                 "fill both with the same edges, or rebin one to the other's edges first"
             )
+        return other
 
-    def __add__(self, other: MassHistogram) -> MassHistogram:
+    def __add__(self, other: Any) -> MassHistogram:
         if isinstance(other, int) and other == 0:  # lets sum([...]) work
             return self.copy()
         h = self.copy()
@@ -404,14 +431,14 @@ class MassHistogram:
 
     __radd__ = __add__
 
-    def __iadd__(self, other: MassHistogram) -> MassHistogram:  # noqa: PYI034 - py3.10
-        self._check_compatible(other)
-        self.weight_sum += other.weight_sum
-        self.weight_sq_sum += other.weight_sq_sum
+    def __iadd__(self, other: Any) -> MassHistogram:  # noqa: PYI034 - py3.10
+        other = self._compatible(other)
+        self._values += other._values
+        self._variances += other._variances
         self.underflow += other.underflow
         self.overflow += other.overflow
-        self.underflow_weight_sq_sum += other.underflow_weight_sq_sum
-        self.overflow_weight_sq_sum += other.overflow_weight_sq_sum
+        self.underflow_variance += other.underflow_variance
+        self.overflow_variance += other.overflow_variance
         self.n_nan += other.n_nan
         return self
 
@@ -420,10 +447,10 @@ class MassHistogram:
             return NotImplemented
         return (
             np.array_equal(self.edges, other.edges)
-            and np.array_equal(self.weight_sum, other.weight_sum)
-            and np.array_equal(self.weight_sq_sum, other.weight_sq_sum)
-            and (self.underflow, self.overflow, self.underflow_weight_sq_sum, self.overflow_weight_sq_sum, self.n_nan)
-            == (other.underflow, other.overflow, other.underflow_weight_sq_sum, other.overflow_weight_sq_sum, other.n_nan)
+            and np.array_equal(self._values, other._values)
+            and np.array_equal(self._variances, other._variances)
+            and (self.underflow, self.overflow, self.underflow_variance, self.overflow_variance, self.n_nan)
+            == (other.underflow, other.overflow, other.underflow_variance, other.overflow_variance, other.n_nan)
         )
 
     __hash__ = None  # type: ignore[assignment]
@@ -448,7 +475,7 @@ class MassHistogram:
                 )
             keep = np.arange(0, self.nbins + 1, factor)
         else:
-            new = _check_edges(edges)
+            new = check_edges(edges)
             # nearest current edge to each new one; it must agree to rounding
             right = np.clip(np.searchsorted(self.edges, new), 0, self.edges.size - 1)
             left = np.clip(right - 1, 0, self.edges.size - 1)
@@ -464,58 +491,28 @@ class MassHistogram:
         h = MassHistogram(self.edges[keep], unit=self.unit, label=self.label)
         # exact per-group sums; reduceat's last group runs to the array end, so redo it
         starts = keep[:-1]
-        h.weight_sum = np.add.reduceat(self.weight_sum, starts)
-        h.weight_sq_sum = np.add.reduceat(self.weight_sq_sum, starts)
-        h.weight_sum[-1] = self.weight_sum[keep[-2] : keep[-1]].sum()
-        h.weight_sq_sum[-1] = self.weight_sq_sum[keep[-2] : keep[-1]].sum()
-        h.underflow = self.underflow + float(self.weight_sum[: keep[0]].sum())
-        h.underflow_weight_sq_sum = self.underflow_weight_sq_sum + float(self.weight_sq_sum[: keep[0]].sum())
-        h.overflow = self.overflow + float(self.weight_sum[keep[-1] :].sum())
-        h.overflow_weight_sq_sum = self.overflow_weight_sq_sum + float(self.weight_sq_sum[keep[-1] :].sum())
+        h._values = np.add.reduceat(self._values, starts)
+        h._variances = np.add.reduceat(self._variances, starts)
+        h._values[-1] = self._values[keep[-2] : keep[-1]].sum()
+        h._variances[-1] = self._variances[keep[-2] : keep[-1]].sum()
+        h.underflow = self.underflow + float(self._values[: keep[0]].sum())
+        h.underflow_variance = self.underflow_variance + float(self._variances[: keep[0]].sum())
+        h.overflow = self.overflow + float(self._values[keep[-1] :].sum())
+        h.overflow_variance = self.overflow_variance + float(self._variances[keep[-1] :].sum())
         h.n_nan = self.n_nan
         return h
 
     # -------------------------------------------------------------- save/load
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "format": _FORMAT,
-            "version": _FORMAT_VERSION,
-            "unit": self.unit,
-            "label": self.label,
-            "edges": self.edges.tolist(),
-            "weight_sum": self.weight_sum.tolist(),
-            "weight_sq_sum": self.weight_sq_sum.tolist(),
-            "underflow": self.underflow,
-            "overflow": self.overflow,
-            "underflow_weight_sq_sum": self.underflow_weight_sq_sum,
-            "overflow_weight_sq_sum": self.overflow_weight_sq_sum,
-            "n_nan": self.n_nan,
-        }
+        """A JSON-ready dict (the ``spectrum.json`` format, version 2: ``values`` and
+        ``variances`` per bin); :meth:`from_dict` reads it back exactly."""
+        return to_dict(self)
 
     @classmethod
     def from_dict(cls, d: dict[str, Any], *, where: str = "histogram") -> MassHistogram:
-        if not isinstance(d, dict):
-            raise InputError(f"{where}: not a peaksift mass histogram (not a JSON object)")
-        if d.get("format") != _FORMAT:
-            raise InputError(f"{where}: not a peaksift mass histogram (format key is {d.get('format')!r})")
-        try:
-            h = cls(np.asarray(d["edges"], dtype=float), unit=str(d.get("unit", "GeV")),
-                    label=str(d.get("label", "m")))
-            weight_sum = np.asarray(d["weight_sum"], dtype=float)
-            weight_sq_sum = np.asarray(d["weight_sq_sum"], dtype=float)
-        except KeyError as exc:
-            raise InputError(f"{where}: missing key {exc.args[0]!r}") from None
-        if weight_sum.shape != (h.nbins,) or weight_sq_sum.shape != (h.nbins,):
-            raise InputError(
-                f"{where}: {h.nbins} bins but weight_sum has {weight_sum.size} and weight_sq_sum {weight_sq_sum.size} entries"
-            )
-        h.weight_sum, h.weight_sq_sum = weight_sum, weight_sq_sum
-        h.underflow = float(d.get("underflow", 0.0))
-        h.overflow = float(d.get("overflow", 0.0))
-        h.underflow_weight_sq_sum = float(d.get("underflow_weight_sq_sum", 0.0))
-        h.overflow_weight_sq_sum = float(d.get("overflow_weight_sq_sum", 0.0))
-        h.n_nan = int(d.get("n_nan", 0))
-        return h
+        """Read :meth:`to_dict`'s dict; a version 1 dict (``weight_sum``/``weight_sq_sum``)
+        still loads, with a DeprecationWarning."""
+        return from_dict(cls, d, where)
 
     def save(self, path: str | os.PathLike[str]) -> Path:
         """Write to ``path``: JSON when it ends in ``.json``, otherwise NumPy ``.npz``.
@@ -523,74 +520,28 @@ class MassHistogram:
         Both round-trip exactly.  The file is written under a temporary name and renamed,
         so a failure never leaves a half-written histogram.
         """
-        path = Path(path)
-        if path.suffix.lower() == ".json":
-            data = json.dumps(self.to_dict(), indent=1).encode()
-        else:
-            buf = io.BytesIO()
-            np.savez(
-                buf,
-                format=np.array(_FORMAT),
-                version=np.array(_FORMAT_VERSION),
-                unit=np.array(self.unit),
-                label=np.array(self.label),
-                edges=np.asarray(self.edges),
-                weight_sum=self.weight_sum,
-                weight_sq_sum=self.weight_sq_sum,
-                flow=np.array([self.underflow, self.overflow,
-                               self.underflow_weight_sq_sum, self.overflow_weight_sq_sum]),
-                n_nan=np.array(self.n_nan),
-            )
-            data = buf.getvalue()
-        atomic_write(path, data)
-        return path
+        return save(self, Path(path))
 
     @classmethod
     def load(cls, path: str | os.PathLike[str]) -> MassHistogram:
-        """Read a histogram written by :meth:`save`."""
-        path = Path(path)
-        if not path.exists():
-            raise InputError(f"histogram file {str(path)!r} does not exist")
-        try:
-            if path.suffix.lower() == ".json":
-                return cls.from_dict(json.loads(path.read_text()), where=str(path))
-            with np.load(path, allow_pickle=False) as z:
-                flow = z["flow"]
-                d = {
-                    "format": str(z["format"]),
-                    "unit": str(z["unit"]),
-                    "label": str(z["label"]),
-                    "edges": z["edges"],
-                    "weight_sum": z["weight_sum"],
-                    "weight_sq_sum": z["weight_sq_sum"],
-                    "underflow": flow[0],
-                    "overflow": flow[1],
-                    "underflow_weight_sq_sum": flow[2],
-                    "overflow_weight_sq_sum": flow[3],
-                    "n_nan": int(z["n_nan"]),
-                }
-        except InputError:
-            raise
-        except (OSError, ValueError, KeyError, TypeError, EOFError, zipfile.BadZipFile) as exc:
-            # corrupt file, wrong archive, missing arrays
-            raise InputError(f"cannot read histogram file {str(path)!r}: {exc}") from None
-        return cls.from_dict(d, where=str(path))
+        """Read a histogram written by :meth:`save` (either version)."""
+        return load(cls, Path(path))
 
     # -------------------------------------------------------------------- plot
     def plot(self, ax: Any = None, *, density: bool = False, **kwargs: Any) -> Any:
-        """Draw the spectrum as points with ``sqrt(weight_sq_sum)`` error bars; returns the
+        """Draw the spectrum as points with ``sqrt(variances)`` error bars; returns the
         Figure (``ax.figure`` when an Axes is given, else a new Figure made without pyplot,
         so the matplotlib backend is left alone).
 
         With ``density=True`` (and always for variable bins) the contents are divided by
         the bin width (candidates per GeV).  Drawn in the peaksift figure style.
         """
-        from ._style import COLORS, figure_style, new_figure
+        from .._style import COLORS, figure_style, new_figure
 
         if ax is None:
             _, ax = new_figure((7, 4.5))
         scale = 1.0 / self.widths if (density or not self._regular) else 1.0
-        y = self.weight_sum * scale
+        y = self._values * scale
         yerr = self.errors * scale
         kwargs.setdefault("fmt", "o")
         kwargs.setdefault("ms", 3)
