@@ -314,8 +314,8 @@ from peaksift.execution._chunk import _ChunkTask
 class Probe(_ChunkTask):
     # what a worker holds when its first task starts
     def __call__(self, spec):
-        pairing = sys.modules.get("peaksift.pairing")
-        return pairing is not None and len(pairing._count_pairs.overloads) > 0
+        kernels = sys.modules.get("peaksift.pairing.kernels")
+        return kernels is not None and len(kernels._count_pairs.overloads) > 0
 
 if __name__ == "__main__":
     sel = execution.Selection(first="muon", edges=[0.0, 100.0])

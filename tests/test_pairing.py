@@ -489,7 +489,7 @@ cut = busy_events if sys.argv[2] == "user-kernel-in-cut" else None
 if sys.argv[2] == "user-kernel-in-thread":
     # another thread compiles its kernel while this one is inside pair()'s kernel section
     import threading
-    import peaksift.pairing as pairing
+    import peaksift.pairing.build as pairing
 
     inner = pairing._pair_selected
     seen = []

@@ -858,7 +858,7 @@ def clauses(cut: CutLike) -> tuple[Cut, ...]:
 
 
 def requirement_counts(collection: Any, cut: CutLike, *, name: str,
-                       keep_events: np.ndarray | None = None
+                       keep_events: np.ndarray | None = None, identification: Any = None
                        ) -> tuple[list[tuple[str, int]], np.ndarray]:
     """Objects of ``collection`` passing each clause of ``cut`` in turn, in one pass.
 
@@ -873,6 +873,8 @@ def requirement_counts(collection: Any, cut: CutLike, *, name: str,
         The collection's name (step labels and messages).
     keep_events : ndarray of bool, optional
         Count only the objects of these events (those passing the event cut).
+    identification : peaksift.energy_loss.DedxResponse, optional
+        The dE/dx response behind ``dedx_deviation(...)`` clauses (as in the pairing).
 
     Returns
     -------
@@ -893,7 +895,7 @@ def requirement_counts(collection: Any, cut: CutLike, *, name: str,
     for part in parts:
         if part is None or (isinstance(part, str) and not part):
             continue
-        keep &= flat_object_mask(part, collection, counts, get, fields, name)
+        keep &= flat_object_mask(part, collection, counts, get, fields, name, identification)
         label = part.expression if isinstance(part, Cut) else "cut"
         steps.append((label, int(keep.sum())))
     owner = np.repeat(np.arange(counts.size), counts)

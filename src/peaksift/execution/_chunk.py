@@ -375,7 +375,8 @@ def requirement_flow(events: Any, selection: Selection) -> dict[str, int]:
         sides.append((selection.second, selection.second_cut))
     per_event = []
     for coll, cut in sides:
-        steps, n_pass = requirement_counts(events[coll], cut, name=coll, keep_events=keep)
+        steps, n_pass = requirement_counts(events[coll], cut, name=coll, keep_events=keep,
+                                           identification=selection.identification)
         for j, (label, count) in enumerate(steps):
             out[label if j == 0 else f"{coll}: {label}"] = count
         per_event.append(n_pass)
