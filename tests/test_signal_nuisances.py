@@ -92,7 +92,7 @@ def _independent_q0(n: np.ndarray, mass: float, d_scale: float, d_res: float) ->
 
 def test_zero_sizes_give_the_plain_scan_exactly():
     x = _data()
-    kw = dict(absolute_resolution=SIGMA, window=WINDOW, bins=100, refit=False)
+    kw = {"absolute_resolution": SIGMA, "window": WINDOW, "bins": 100, "refit": False}
     plain = scan(x, "gaussian", "exponential", np.linspace(110, 190, 41), **kw)
     zero = scan(x, "gaussian", "exponential", np.linspace(110, 190, 41),
                 nuisances=SignalNuisances(), **kw)
