@@ -139,7 +139,7 @@ def test_sigma_far_below_the_bin_width_is_refused_quickly():
 def test_default_grid_of_the_search_is_bounded():
     """The search's default hypotheses half a sigma apart: a resolution just above the
     refusal threshold on the finest allowed binning would give ~2e7 of them; refused."""
-    from peaksift.search import _scan_masses
+    from peaksift.search.common import _scan_masses
 
     cfg = load_config(_config({"absolute": 1.0e-5}, bins=100_000))  # bins of 0.9 MeV
     with pytest.raises(ConfigError, match="scan.step or scan.points"):

@@ -31,9 +31,9 @@ __version__ = "0.1.0"
 
 # public name -> module that defines it
 _EXPORTS: dict[str, str] = {
-    "read_events": "peaksift.events",
-    "iter_events": "peaksift.events",
-    "describe": "peaksift.events",
+    "read_events": "peaksift.events.read",
+    "iter_events": "peaksift.events.read",
+    "describe": "peaksift.events.describe",
     "pair": "peaksift.pairing",
     "Candidates": "peaksift.pairing",
     "compile_cut": "peaksift.cuts",
@@ -45,9 +45,9 @@ _EXPORTS: dict[str, str] = {
     "ScanResult": "peaksift.stats.scan",
     "LimitResult": "peaksift.stats.limits",
     "upper_limits": "peaksift.stats.limits",
-    "run_search": "peaksift.search",
-    "SearchResult": "peaksift.search",
-    "load_config": "peaksift.config",
+    "run_search": "peaksift.search.run",
+    "SearchResult": "peaksift.search.result",
+    "load_config": "peaksift.config.build",
 }
 
 _SUBMODULES = {

@@ -14,14 +14,11 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError, DataWarning, ExecutionError, InputError
+from ..events import DEFAULT_CHUNK_EVENTS
 from ..histogram import MassHistogram
 from ._chunk import ChunkOutput, Selection, _ChunkTask, _describe_spec, _spec_file
 from ._engines import _check_engine, _progress, _run
 from ._local import _check_picklable
-
-#: Events per chunk when the caller does not say.  The demo search on 500 000-event chunks
-#: peaks near 0.4 GiB per process (about half of it the libraries themselves).
-DEFAULT_CHUNK_EVENTS = 500_000
 
 
 @dataclass(frozen=True)

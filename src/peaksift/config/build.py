@@ -1,0 +1,350 @@
+"""Building a :class:`Config` from TOML or a mapping: sections, cross-key checks, loading."""
+
+from __future__ import annotations
+
+import hashlib
+import sys
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from ..errors import ConfigError, FitError, closest
+from ..resolution import check_resolved
+
+if sys.version_info >= (3, 11):  # pragma: no cover - version switch
+    import tomllib as _toml
+else:  # pragma: no cover
+    import tomli as _toml
+from .schema import _REQUIRED, _TOP, SCHEMA
+from .sections import (
+    BlindingConfig,
+    CalibrationConfig,
+    Config,
+    ExecutionConfig,
+    InputConfig,
+    LimitsConfig,
+    ModelConfig,
+    ObjectsConfig,
+    OutputConfig,
+    PairingConfig,
+    ResolutionConfig,
+    ScanConfig,
+    SignificanceConfig,
+    SpectrumConfig,
+)
+from .values import _check_fit_parameters, _type_name, _value, _where
+
+
+def _section(name: str, raw: Any, where: str) -> dict[str, Any]:
+    keys = {k.name: k for k in SCHEMA[name]}
+    if raw is None:
+        raw = {}
+    if not isinstance(raw, Mapping):
+        raise ConfigError(f"{where}: [{name}] must be a table, got {_type_name(raw)}")
+    sub = {s.split(".", 1)[1] for s in SCHEMA if s.startswith(name + ".")}
+    out: dict[str, Any] = {}
+    for k, v in raw.items():
+        if k in sub:
+            continue
+        if k not in keys:
+            valid = list(keys) + sorted(sub)
+            hint = closest(k, valid)
+            raise ConfigError(
+                f"{where}: unknown key {name}.{k}"
+                + (f"; did you mean {name}.{hint}?" if hint else "")
+                + f" (valid keys in [{name}]: {', '.join(valid)})"
+            )
+        out[k] = _value(f"{name}.{k}", keys[k], v, where)
+    for k, key in keys.items():
+        if k not in out or (out[k] is None and not key.nullable):
+            if key.default is _REQUIRED:
+                raise ConfigError(f"{where}: {name}.{k} is required ({key.doc})")
+            d = key.default
+            out[k] = tuple(d) if isinstance(d, list) else (dict(d) if isinstance(d, dict) else d)
+    return out
+
+
+def _check_shape(path: str, name: str, where: str, kind: str,
+                 options: Mapping[str, Any] | None = None) -> None:
+    """The shape must exist, be of the right kind, and accept its options."""
+    try:
+        from .. import shapes
+        table = shapes.available()
+    except (ImportError, AttributeError):  # models layer absent: the fit itself reports it
+        return
+    names = [n for n, info in table.items() if info.get("kind") == kind]
+    if name not in names:
+        hint = closest(name, names)
+        other = table.get(name, {}).get("kind")
+        what = f"is a {other} shape, not a {kind} shape" if other else f"is not a {kind} shape"
+        raise ConfigError(
+            f"{where}: {path} = {name!r} {what}"
+            + (f"; did you mean {hint!r}?" if hint else "")
+            + f" (available: {', '.join(names)})"
+        )
+    if options:
+        for k, v in options.items():  # every shape option is a number (start, order, ...)
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                raise ConfigError(f"{where}: {path}_options.{k} must be a number, got {v!r}")
+        try:
+            shapes.get(name, **dict(options))
+        except (FitError, TypeError, ValueError) as exc:
+            raise ConfigError(f"{where}: {path}_options {dict(options)!r} not accepted by "
+                              f"{name!r}: {' '.join(str(exc).split())}") from None
+
+
+def _check_calibration_outside_blinding(cal: tuple[float, float], blind: tuple[float, float],
+                                        spectrum: Mapping[str, Any], where: str) -> None:
+    """The calibration fit must not see blinded data: its window may not overlap the spectrum
+    bins hidden by the blinding (every bin overlapping ``blinding.window``,
+    :func:`peaksift.blinding.blinded_bins`)."""
+    import numpy as np
+
+    from ..blinding import hidden_range
+
+    lo, hi = spectrum["window"]
+    e = np.linspace(lo, hi, int(spectrum["bins"]) + 1)
+    h0, h1 = hidden_range(e, blind) or blind
+    c0, c1 = cal
+    if c0 < h1 and c1 > h0:
+        raise ConfigError(
+            f"{where}: calibration.window [{c0:g}, {c1:g}] overlaps blinding.window "
+            f"[{blind[0]:g}, {blind[1]:g}] (spectrum bins {h0:g}-{h1:g} GeV are hidden), so "
+            f"the calibration fit would see blinded data; end calibration.window at or below "
+            f"{h0:g} GeV or start it at or above {h1:g} GeV, or disable the calibration "
+            "(calibration.particle = \"\")"
+        )
+
+
+def _check_resolution(res: Mapping[str, Any], spectrum: Mapping[str, Any], where: str) -> None:
+    """The resolution must be defined on the whole window (a table covers it) and not far
+    below the bin width (:func:`peaksift.resolution.check_resolved`), so the scan's grid of
+    hypotheses half a sigma apart stays finite."""
+    import numpy as np
+
+    cfg = ResolutionConfig(**res)
+    lo, hi = spectrum["window"]
+    r = cfg.resolution
+    try:
+        r.sigma(np.array([lo, hi]))
+    except FitError:  # only a table can fail here: its rows do not reach the window's ends
+        t0, t1 = r.mass_range  # type: ignore[misc]
+        raise ConfigError(
+            f"{where}: model.resolution.table covers {t0:g}-{t1:g} GeV but spectrum.window "
+            f"is [{lo:g}, {hi:g}]; add rows so the table spans the window (sigma is not "
+            "guessed beyond the measured points)") from None
+    edges = np.linspace(lo, hi, int(spectrum["bins"]) + 1)
+    try:
+        check_resolved(r, 0.5 * (edges[1:] + edges[:-1]), edges, what="model.resolution")
+    except FitError as exc:
+        raise ConfigError(f"{where}: {exc}") from None
+
+
+def _check_cut(path: str, text: str, where: str) -> None:
+    """Parse a cut expression now (syntax and whitelist), so a typo stops the run up front."""
+    if not text.strip():
+        return
+    try:
+        from .. import cuts
+    except ImportError:  # pragma: no cover - candidates layer missing
+        return
+    checker = getattr(cuts, "compile_cut", None)
+    if checker is None:
+        return
+    try:
+        checker(text)
+    except ConfigError:
+        raise
+    except Exception as exc:
+        from ..errors import CutError
+
+        if isinstance(exc, CutError):
+            raise CutError(f"{where}: {path}: {' '.join(str(exc).split())}") from None
+        raise
+
+
+def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
+           resolve_paths: bool = True) -> Config:
+    where = _where(source)
+    if not isinstance(raw, Mapping):
+        raise ConfigError(f"{where}: the configuration must be a table of sections")
+    tops = [s for s in _TOP if "." not in s]
+    for k, v in raw.items():
+        if k not in tops:
+            hint = closest(k, tops)
+            hint_txt = f"; did you mean [{hint}]?" if hint else ""
+            raise ConfigError(
+                f"{where}: unknown section [{k}]{hint_txt} (sections: {', '.join(tops)})"
+            )
+    vals = {name: _section(name, raw.get(name), where) for name in tops}
+    model_raw = raw.get("model") or {}
+    res = _section("model.resolution", model_raw.get("resolution"), where)
+
+    # ---- cross-key rules
+    inp = vals["input"]
+    if resolve_paths:
+        files = []
+        for f in inp["files"]:
+            p = Path(f).expanduser()
+            files.append(str(p if p.is_absolute() else (base_dir / p)))
+        inp["files"] = tuple(files)
+
+    sp = vals["spectrum"]
+    lo, hi = sp["window"]
+    if sp["bin_width"] is not None:
+        n = (hi - lo) / sp["bin_width"]
+        if abs(n - round(n)) > 1e-6 * max(1.0, n) or round(n) < 1:
+            raise ConfigError(
+                f"{where}: spectrum.bin_width = {sp['bin_width']:g} GeV does not divide the "
+                f"window [{lo:g}, {hi:g}] into whole bins ({n:.4g}); change the width or window"
+            )
+        sp["bins"] = round(n)
+
+    given = [k for k in ("relative", "absolute", "table") if res[k] is not None]
+    if len(given) != 1:
+        raise ConfigError(
+            f"{where}: model.resolution needs exactly one of relative, absolute or table "
+            f"(got {', '.join(given) if given else 'none'}); e.g. [model.resolution] "
+            "relative = 0.01 for sigma = 1% of the mass"
+        )
+    _check_resolution(res, sp, where)
+
+    pr = vals["pairing"]
+    if pr["choose"] == "closest" and pr["target_mass"] is None:
+        raise ConfigError(f"{where}: pairing.target_mass is required when pairing.choose = "
+                          "\"closest\" (the mass in GeV the chosen pair should be nearest)")
+
+    ob = vals["objects"]
+    for key in ("collection",):
+        if not ob[key].strip():
+            raise ConfigError(f"{where}: objects.{key} must name a collection, e.g. \"muon\"")
+    for key in ("cut", "second_cut", "event_cut"):
+        _check_cut(f"objects.{key}", ob[key], where)
+    if ob["second_cut"] and not ob["second_collection"]:
+        raise ConfigError(f"{where}: objects.second_cut is set but objects.second_collection is "
+                          "empty; name the second collection or move the cut to objects.cut")
+
+    sc = vals["scan"]
+    if sc["step"] is not None and sc["points"] is not None:
+        raise ConfigError(f"{where}: give scan.step or scan.points, not both")
+    s0 = sc["start"] if sc["start"] is not None else lo
+    s1 = sc["stop"] if sc["stop"] is not None else hi
+    for k, v in (("start", sc["start"]), ("stop", sc["stop"])):
+        if v is not None and not (lo <= v <= hi):
+            raise ConfigError(f"{where}: scan.{k} = {v:g} lies outside spectrum.window "
+                              f"[{lo:g}, {hi:g}]; the scan must stay inside the fit window")
+    if not s1 > s0:
+        raise ConfigError(f"{where}: scan.stop ({s1:g}) must be above scan.start ({s0:g})")
+
+    md = vals["model"]
+    _check_shape("model.signal", md["signal"], where, "signal", md["signal_options"])
+    _check_shape("model.background", md["background"], where, "background",
+                 md["background_options"])
+    _check_fit_parameters(md, (lo, hi), where)
+    if sc["signal"]:
+        _check_shape("scan.signal", sc["signal"], where, "signal")
+
+    bl = vals["blinding"]
+    if bl["enabled"]:
+        if bl["window"] is None:
+            raise ConfigError(f"{where}: blinding.window is required when blinding.enabled = "
+                              "true, e.g. window = [150.0, 170.0]")
+        b0, b1 = bl["window"]
+        if b0 < lo or b1 > hi:
+            raise ConfigError(f"{where}: blinding.window [{b0:g}, {b1:g}] must lie inside "
+                              f"spectrum.window [{lo:g}, {hi:g}]")
+
+    cal = vals["calibration"]
+    if cal["particle"]:
+        from ..resonances import lookup
+
+        try:
+            lookup(cal["particle"])
+        except ConfigError as exc:
+            raise ConfigError(f"{where}: calibration.particle: {exc}") from None
+        if cal["window"] is None:
+            raise ConfigError(f"{where}: calibration.window is required when "
+                              "calibration.particle is set, e.g. window = [70.0, 110.0]")
+        if bl["enabled"]:
+            _check_calibration_outside_blinding(cal["window"], bl["window"], sp, where)
+        _check_shape("calibration.signal", cal["signal"], where, "signal",
+                     cal["signal_options"])
+        _check_shape("calibration.background", cal["background"], where, "background",
+                     cal["background_options"])
+
+    li = vals["limits"]
+    if li["toy_masses"] and li["method"] != "toys":
+        raise ConfigError(f"{where}: limits.toy_masses is set but limits.method = "
+                          f"{li['method']!r}; set method = \"toys\" or remove toy_masses")
+    for i, m in enumerate(li["toy_masses"]):
+        if not (s0 <= m <= s1):
+            raise ConfigError(f"{where}: limits.toy_masses[{i}] = {m:g} lies outside "
+                              f"[{s0:g}, {s1:g}] GeV (spectrum.window, or scan.start / "
+                              "scan.stop); choose masses inside the scan range")
+
+    ex = vals["execution"]
+    if ex["address"] and ex["engine"] != "dask":
+        raise ConfigError(f"{where}: execution.address is set but execution.engine = "
+                          f"{ex['engine']!r}; set engine = \"dask\" to use a scheduler")
+
+    return Config(
+        input=InputConfig(**inp),
+        spectrum=SpectrumConfig(**sp),
+        objects=ObjectsConfig(**ob),
+        pairing=PairingConfig(**pr),
+        model=ModelConfig(**md, resolution=ResolutionConfig(**res)),
+        scan=ScanConfig(**sc),
+        significance=SignificanceConfig(**vals["significance"]),
+        blinding=BlindingConfig(**bl),
+        limits=LimitsConfig(**vals["limits"]),
+        calibration=CalibrationConfig(**cal),
+        execution=ExecutionConfig(**ex),
+        output=OutputConfig(**vals["output"]),
+        source=source,
+        base_dir=base_dir,
+        sha256=sha256,
+    )
+
+
+def load_config(config: str | Path | Mapping[str, Any] | Config, *,
+                base_dir: str | Path | None = None) -> Config:
+    """Read and validate a search configuration.
+
+    Parameters
+    ----------
+    config : path, mapping or Config
+        A TOML file, a mapping with the same layout (paths relative to ``base_dir``, default
+        the working directory), or an already validated :class:`Config` (returned as is).
+    base_dir : path, optional
+        Directory for relative paths when ``config`` is a mapping.
+
+    Raises
+    ------
+    peaksift.errors.ConfigError
+        Missing file, TOML syntax error (with line and column), unknown key, wrong type or
+        out-of-range value; the message names the key path and suggests a fix.
+    """
+    if isinstance(config, Config):
+        return config
+    if isinstance(config, Mapping):
+        import json
+
+        text = json.dumps(config, sort_keys=True, default=str).encode()
+        return _build(config, source="<dict>",
+                      base_dir=Path(base_dir).resolve() if base_dir else Path.cwd(),
+                      sha256=hashlib.sha256(text).hexdigest())
+    path = Path(config)
+    if not path.exists():
+        raise ConfigError(f"config file {str(path)!r} does not exist; check the path "
+                          "(write one with `peaksift demo OUTDIR` for an example)")
+    if path.is_dir():
+        raise ConfigError(f"config {str(path)!r} is a directory; give the TOML file itself")
+    data = path.read_bytes()
+    try:
+        raw = _toml.loads(data.decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"config {path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
+    except _toml.TOMLDecodeError as exc:
+        raise ConfigError(f"config {path}: TOML syntax error: {' '.join(str(exc).split())}") from None
+    return _build(raw, source=str(path), base_dir=path.resolve().parent,
+                  sha256=hashlib.sha256(data).hexdigest())

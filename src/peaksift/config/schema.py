@@ -1,0 +1,248 @@
+"""The configuration schema: every key of every section, its kind, default, range and doc.
+
+One table (``SCHEMA``) declares each key once; validation, the dataclasses' defaults and the
+reference page ``docs/config.md`` all read it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+from .._vocabulary import LIMIT_METHODS
+from ..resolution import RELATIVE_MAX, relative_problem
+
+_REQUIRED = object()
+
+
+@dataclass(frozen=True)
+class _Key:
+    """One configuration key: its kind, default, constraints and documentation."""
+
+    name: str
+    kind: str  # str, int, float, bool, choice, window, strings, paths, floats, table, pairs
+    default: Any
+    doc: str
+    choices: tuple[str, ...] = ()
+    lo: float | None = None
+    hi: float | None = None
+    lo_open: bool = False
+    hi_open: bool = False
+    nullable: bool = False
+    # a number's own check (what is wrong, or None) used instead of lo/hi, which then only
+    # document the range: for a rule that another layer owns and applies too
+    check: Callable[[Any], str | None] | None = None
+
+
+# ------------------------------------------------------------------------------- schema
+SCHEMA: dict[str, tuple[_Key, ...]] = {
+    "input": (
+        _Key("files", "paths", _REQUIRED,
+             "Parquet files, directories or globs; a string or a list. Relative paths are "
+             "taken from the directory of the config file."),
+        _Key("weights", "bool", True,
+             "Use the per-event `weight` column when the files have one."),
+        _Key("strict", "bool", False,
+             "Stop on NaN/infinite or negative kinematics instead of dropping those objects "
+             "with a warning."),
+    ),
+    "objects": (
+        _Key("collection", "str", "muon", "Collection whose objects are paired."),
+        _Key("cut", "str", "", "Cut expression on the objects, e.g. "
+             "`pt > 25 and abs(eta) < 2.4 and isolation < 0.15`; empty for none."),
+        _Key("second_collection", "str", "",
+             "Pair `collection` with this other collection (e.g. `electron`); empty pairs "
+             "objects of `collection` among themselves."),
+        _Key("second_cut", "str", "", "Cut expression on the second collection's objects."),
+        _Key("event_cut", "str", "",
+             "Event-level cut expression (per-event scalars and object counts)."),
+    ),
+    "pairing": (
+        _Key("charge", "choice", "opposite",
+             "Charge requirement on the pair.", choices=("opposite", "same", "any")),
+        _Key("choose", "choice", "all",
+             "What each event contributes: every pair, the leading pair, the pair with the "
+             "largest scalar pT sum, or the pair closest to `target_mass`.",
+             choices=("all", "leading", "max_sum_pt", "closest")),
+        _Key("target_mass", "float", None, "Mass in GeV for `choose = \"closest\"`.",
+             lo=0.0, lo_open=True, nullable=True),
+        _Key("min_delta_r", "float", 0.0,
+             "Minimum Delta R between the two objects (0 for no requirement).", lo=0.0),
+    ),
+    "spectrum": (
+        _Key("window", "window", _REQUIRED,
+             "Fit window `[low, high]` in GeV; the spectrum, fits and scan live here."),
+        _Key("bins", "int", 100, "Number of equal bins on the window.", lo=1, hi=100000),
+        _Key("bin_width", "float", None,
+             "Bin width in GeV; overrides `bins` (the window must hold a whole number).",
+             lo=0.0, lo_open=True, nullable=True),
+    ),
+    "model": (
+        _Key("signal", "str", "gaussian",
+             "Signal shape of the free fit at the best mass (`peaksift.shapes.available()`)."),
+        _Key("background", "str", "exponential", "Background shape name."),
+        _Key("signal_options", "table", {}, "Options passed to the signal shape."),
+        _Key("background_options", "table", {},
+             "Options passed to the background shape, e.g. `{ degree = 3 }`."),
+        _Key("fit", "choice", "auto",
+             "Binned or unbinned likelihood; `auto` lets the fitter choose.",
+             choices=("auto", "binned", "unbinned")),
+        _Key("fix", "values", {},
+             "Parameters of the free fit held at a value, by name, e.g. "
+             "`{ alpha_low = 1.2, n_low = 4.0 }`. Names: the parameters of `model.signal` "
+             "and `model.background`, `signal_yield` and `background_yield`."),
+        _Key("constrain", "constraints", {},
+             "Parameters of the free fit constrained by an outside measurement, by name: "
+             "`{ width = { kind = \"gaussian\", center = 30.0, width = 3.0 } }` (`kind`: "
+             "{constraint_kinds}; default gaussian). For `lognormal`, `center` is the median "
+             "and `width` the relative uncertainty. `[center, width]` is short for a Gaussian."),
+        _Key("bounds", "ranges", {},
+             "Lower and upper bounds of free-fit parameters, by name, replacing the defaults: "
+             "`{ width = [0.0, 100.0] }`."),
+        _Key("sigma_from_resolution", "choice", "free",
+             "Tie the Gaussian `sigma` of the signal (gaussian, crystalball, voigt) to "
+             "`model.resolution` at the fit's starting mass: `fixed` to it, or `constrained` "
+             "by a Gaussian of relative width `resolution_uncertainty`; `free` floats it. "
+             "Tie it to measure a natural width with a Voigt signal.",
+             choices=("free", "fixed", "constrained")),
+        _Key("resolution_uncertainty", "float", None,
+             "Relative uncertainty of the resolution model, the width of the constraint when "
+             "`sigma_from_resolution = \"constrained\"` (e.g. 0.1 for 10%).",
+             lo=0.0, lo_open=True, hi=1.0, nullable=True),
+        _Key("intervals", "bool", True,
+             "Profile-likelihood (MINOS-type) intervals for the peak mass, its width and the "
+             "signal yield of the free fit (in results.json `fit.intervals`, the summary and "
+             "the report); `false` leaves only the symmetric errors."),
+    ),
+    "model.resolution": (
+        _Key("relative", "float", None,
+             "Relative mass resolution sigma/m (give exactly one of relative, absolute, "
+             "table).", lo=0.0, lo_open=True, hi=RELATIVE_MAX, nullable=True,
+             check=relative_problem),
+        _Key("absolute", "float", None, "Constant mass resolution sigma in GeV.",
+             lo=0.0, lo_open=True, nullable=True),
+        _Key("table", "pairs", None,
+             "Resolution table `[[mass, sigma], ...]` in GeV, interpolated linearly in mass; "
+             "it must cover `spectrum.window`.", nullable=True),
+        _Key("natural_width", "float", 0.0,
+             "Natural width Gamma (GeV) of the hypothesised resonance; with a width > 0 the "
+             "scan uses a Voigt signal.", lo=0.0),
+    ),
+    "scan": (
+        _Key("start", "float", None,
+             "First mass hypothesis, GeV (default: 3 resolution sigma inside the window).",
+             nullable=True),
+        _Key("stop", "float", None,
+             "Last mass hypothesis, GeV (default: 3 resolution sigma inside the window).",
+             nullable=True),
+        _Key("step", "float", None,
+             "Spacing of hypotheses, GeV (default: half the local resolution sigma).",
+             lo=0.0, lo_open=True, nullable=True),
+        _Key("points", "int", None, "Number of equally spaced hypotheses (instead of step).",
+             lo=2, hi=100000, nullable=True),
+        _Key("signal", "str", "",
+             "Signal shape used at each hypothesis; empty: `gaussian`, or `voigt` when "
+             "`model.resolution.natural_width` > 0."),
+    ),
+    "significance": (
+        _Key("method", "choice", "upcrossings",
+             "Global significance: upcrossings (Gross & Vitells 2010) or background-only "
+             "toys of the whole scan.", choices=("upcrossings", "toys")),
+        _Key("toys", "int", 200,
+             "Background-only toys (for `upcrossings`: toys that estimate the upcrossing "
+             "rate; 0 uses the observed scan).", lo=0, hi=10_000_000),
+        _Key("reference_level", "float", 0.5,
+             "Reference level u0 of q0 at which upcrossings are counted.", lo=0.0),
+        _Key("seed", "int", 20261201, "Random seed for all toys (results are reproducible).",
+             lo=0),
+    ),
+    "blinding": (
+        _Key("enabled", "bool", False,
+             "Hide the data in `window` from fits, plots and results until `--unblind`."),
+        _Key("window", "window", None, "Blinded mass window `[low, high]`, GeV.",
+             nullable=True),
+    ),
+    "limits": (
+        _Key("enabled", "bool", True, "Compute upper limits across the scan range."),
+        _Key("cl", "float", 0.95, "Confidence level of the CLs upper limits.",
+             lo=0.0, hi=1.0, lo_open=True, hi_open=True),
+        _Key("method", "choice", "auto",
+             "How the CLs limits are computed: `auto` uses the asymptotic formulae (Cowan "
+             "et al. 2011) and toys where too few background events lie under the signal "
+             "for them (the expected bands would be misplaced); `asymptotic` uses the "
+             "formulae everywhere and flags those masses; `toys` is `auto` plus toys at "
+             "`toy_masses`.",
+             choices=LIMIT_METHODS),
+        _Key("points", "int", 30, "Number of mass points for the limit curve.",
+             lo=1, hi=10000),
+        _Key("toys", "int", 200, "Toys per mass point where a limit is computed with toys.",
+             lo=10, hi=1_000_000),
+        _Key("toy_masses", "floats", [],
+             "Masses (GeV) where `method = \"toys\"` computes toy-based limits too, each at "
+             "the nearest limit point; empty: three masses spread over the range."),
+        _Key("luminosity", "float", None,
+             "Integrated luminosity in `luminosity_unit`; when given, limits are on "
+             "cross-section x branching fraction instead of the signal yield.",
+             lo=0.0, lo_open=True, nullable=True),
+        _Key("luminosity_unit", "choice", "fb^-1", "Unit of `luminosity`.",
+             choices=("fb^-1", "pb^-1")),
+        _Key("luminosity_uncertainty", "float", 0.0,
+             "Relative uncertainty of the luminosity (constrained nuisance parameter).",
+             lo=0.0, hi=1.0),
+        _Key("efficiency", "float", 1.0,
+             "Signal efficiency times acceptance.", lo=0.0, hi=1.0, lo_open=True),
+        _Key("efficiency_uncertainty", "float", 0.0,
+             "Relative uncertainty of the efficiency (constrained nuisance parameter).",
+             lo=0.0, hi=1.0),
+        _Key("constraint", "choice", "lognormal",
+             "Distribution constraining the luminosity and efficiency nuisance parameters.",
+             choices=("lognormal", "gaussian")),
+    ),
+    "calibration": (
+        _Key("particle", "str", "",
+             "Known particle (particle-data table name, e.g. `Z0`) whose peak is fitted as a "
+             "calibration check; empty: no calibration fit."),
+        _Key("window", "window", None, "Calibration fit window `[low, high]`, GeV.",
+             nullable=True),
+        _Key("bins", "int", 80, "Bins on the calibration window.", lo=1, hi=100000),
+        _Key("signal", "str", "voigt", "Signal shape of the calibration fit."),
+        _Key("background", "str", "exponential", "Background shape of the calibration fit."),
+        _Key("signal_options", "table", {}, "Options passed to the calibration signal shape."),
+        _Key("background_options", "table", {},
+             "Options passed to the calibration background shape."),
+        _Key("fix_width", "bool", True,
+             "Fix the natural width to the tabulated value (fit mass and resolution only)."),
+    ),
+    "execution": (
+        _Key("engine", "choice", "serial",
+             "Where the per-chunk work runs: in this process, a local process pool, or Dask.",
+             choices=("serial", "processes", "dask")),
+        _Key("workers", "int", None,
+             "Worker processes (`processes`) or local Dask workers; default: CPU count.",
+             lo=1, hi=4096, nullable=True),
+        _Key("address", "str", "",
+             "Dask scheduler address (e.g. `tcp://scheduler.example:8786`); empty starts a "
+             "local cluster."),
+        _Key("chunk_events", "int", 250_000, "Events per chunk (bounds memory).",
+             lo=1, hi=1_000_000_000),
+        _Key("skip_bad_files", "bool", False,
+             "Skip unreadable files (listed in results.json and the report) instead of "
+             "stopping."),
+        _Key("start_method", "choice", "auto",
+             "How local worker processes start: `auto` (fork on Linux, else spawn), `fork` "
+             "(ready at once, from this process) or `spawn` (fresh interpreters; use it if "
+             "code in the calling process is not fork-safe).",
+             choices=("auto", "fork", "spawn")),
+    ),
+    "output": (
+        _Key("dir", "str", "peaksift_out",
+             "Output directory (relative to the config file); `--out` overrides it."),
+        _Key("formats", "strings", ["png", "pdf"], "Figure formats.",
+             choices=("png", "pdf", "svg")),
+        _Key("log_scale", "bool", False, "Draw the spectrum with a logarithmic y axis."),
+        _Key("title", "str", "", "Report title (default: names the searched pair)."),
+    ),
+}
+
+_TOP = tuple(SCHEMA)

@@ -1,0 +1,45 @@
+"""The whole search as one call: :func:`run_search` (``peaksift search CONFIG``).
+
+Which function
+--------------
+* :func:`run_search` -- config in, everything out: read, select and pair (through
+  :func:`peaksift.execution.collect`, on the configured engine), the spectrum, the
+  background-only and signal-plus-background fits, the mass scan, the global significance,
+  the upper limits, the known-particle matching, the calibration check, figures,
+  ``results.json`` and the meeting report.  Returns a :class:`SearchResult`.
+* :func:`run_spectrum` -- only the selected spectrum: its histogram file and figure.
+* :func:`run_fit` -- one signal-plus-background fit started (or held) at a chosen mass, with
+  its figure and JSON on request.
+
+Outputs are written into a temporary directory next to the target and renamed into place at
+the very end, so a failed or interrupted run leaves no partial outputs.  An existing target
+directory is replaced only when it holds a previous peaksift result (``results.json``).
+
+Steps and where their numbers come from
+---------------------------------------
+1. Candidates: :func:`peaksift.execution.collect` with a :class:`~peaksift.execution.Selection`
+   built from ``[objects]`` and ``[pairing]``.  The spectrum (and the calibration window, when
+   configured) are filled from the candidate masses it returns, so one pass over the data
+   serves both windows.
+2. Scan: :func:`peaksift.scan` over the ``[scan]`` grid with the signal width fixed by the
+   resolution model; q0 and Z_local = sqrt(q0) (Cowan, Cranmer, Gross, Vitells 2011).
+3. Global significance: :meth:`ScanResult.global_significance` (upcrossings, Gross and
+   Vitells 2010; or background-only toys).
+4. Free fit at the best hypothesis with ``model.signal`` (mass and width float, unless
+   ``model.fix`` / ``constrain`` / ``bounds`` / ``sigma_from_resolution`` say otherwise),
+   with profile-likelihood intervals of mass, width and yield: the ``fit`` section of
+   results.json (``fit.settings`` echoes what was held or constrained).
+5. Limits: :func:`peaksift.upper_limits` (CLs, asymptotic or toys).
+6. Known particles: :func:`peaksift.resonances.match_known` around the fitted mass.
+"""
+
+from __future__ import annotations
+
+from .demo import DEMO_CONFIG, demo_config_text, write_demo_config
+from .fit import FIT_FILES, run_fit
+from .result import SearchResult, SpectrumResult
+from .run import run_search
+from .spectrum import run_spectrum
+
+__all__ = ["DEMO_CONFIG", "FIT_FILES", "SearchResult", "SpectrumResult", "demo_config_text",
+           "run_fit", "run_search", "run_spectrum", "write_demo_config"]

@@ -1,0 +1,157 @@
+"""What a search returns: :class:`SearchResult` (and :class:`SpectrumResult`) and their JSON form."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..config import Config
+from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
+
+
+# ----------------------------------------------------------------------------- results
+@dataclass(frozen=True)
+class SpectrumResult:
+    """What :func:`run_spectrum` produced: the spectrum, the collected data and the files."""
+
+    config: Config
+    histogram: Any
+    collected: Any
+    outdir: Path | None = None
+    files: Mapping[str, Path] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class SearchResult:
+    """The outcome of :func:`run_search`.
+
+    Attributes
+    ----------
+    config : Config
+        The validated configuration (with command-line overrides applied).
+    histogram : MassHistogram
+        The spectrum in the fit window (blinded bins emptied unless unblinded).
+    collected : peaksift.execution.Collected
+        Everything the read/select/pair step returned (cut flow, files, pT and rapidity).
+    background_fit, fit : FitResult
+        Background-only fit, and the signal-plus-background fit at the best hypothesis
+        with free mass and width (profile-likelihood intervals of mass, width and signal
+        yield unless ``model.intervals = false``).
+    scan : ScanResult
+        The mass scan.
+    best : dict
+        Best hypothesis with local and global significance (the results.json ``best``).
+    limits : LimitResult or None
+        Upper limits (None when ``limits.enabled = false``).
+    known_matches : tuple of KnownMatch
+        Known particles near the fitted peak, nearest first.
+    calibration : dict or None
+        The calibration check (fitted vs tabulated mass) when configured.
+    provenance : dict
+        Inputs with sha256, config sha256, seed, versions, start and finish times.
+    outdir : Path or None
+        Where the outputs were written (None when ``out=False``).
+    figures : dict
+        Figure name -> PNG path.
+    fit_settings : dict
+        What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
+        ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
+        results.json ``fit.settings``.
+    """
+
+    config: Config
+    histogram: Any
+    collected: Any
+    background_fit: Any
+    fit: Any
+    scan: Any
+    best: Mapping[str, Any]
+    limits: Any
+    known_matches: tuple[Any, ...]
+    calibration: Mapping[str, Any] | None
+    provenance: Mapping[str, Any]
+    blinding: Mapping[str, Any]
+    outdir: Path | None = None
+    figures: Mapping[str, Path] = field(default_factory=dict)
+    fit_settings: Mapping[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The content of ``results.json``."""
+        from .. import __version__
+
+        col = self.collected
+        cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
+        fit = _fit_dict(self.fit) if self.fit is not None else _blinded_fit()
+        if self.fit_settings:
+            fit["settings"] = _plain(dict(self.fit_settings))
+        scan = _plain(self.scan.to_dict())
+        lg_scan, lg_best = _scan_log10_p(self.scan)
+        scan["best"] = {**(scan.get("best") or {}), "log10_p_local": lg_best}
+        scan_extra = {"resolution_model": self.config.model.resolution.kind,
+                      "signal_shape": _scan_signal_name(self.config),
+                      "log10_p_local": lg_scan}
+        out: dict[str, Any] = {
+            "peaksift_version": __version__,
+            "config": self.config.to_dict(),
+            "input": {
+                "files": list(col.files_read),
+                "files_skipped": [s.to_dict() for s in col.files_skipped],
+                "events_read": int(col.events_read),
+                "events_selected": _events_selected(cutflow),
+                "candidates": _in_window(col, self.config, _hidden(self.blinding)),
+                "candidates_all_masses": int(col.candidates),
+                "sum_of_weights": float(self.histogram.total()),
+                "cutflow": cutflow,
+            },
+            "fit": fit,
+            "background_only_fit": _fit_dict(self.background_fit)
+            if self.background_fit is not None else None,
+            "scan": {**scan, **scan_extra},
+            "best": _plain(dict(self.best)),
+            "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
+            "known_matches": [k.to_dict() for k in self.known_matches],
+            "calibration": _plain(dict(self.calibration)) if self.calibration else None,
+            "blinding": dict(self.blinding),
+            "provenance": _plain(dict(self.provenance)),
+        }
+        if self.outdir is not None:
+            out["outputs"] = {"dir": str(self.outdir),
+                              "figures": {k: Path(v).name for k, v in self.figures.items()}}
+        return out
+
+
+def _plain(o: Any) -> Any:
+    if isinstance(o, Mapping):
+        return {str(k): _plain(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_plain(v) for v in o]
+    if isinstance(o, np.ndarray):
+        return _plain(o.tolist())
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, Path):
+        return str(o)
+    return o
+
+
+def _scan_log10_p(sres: Any) -> tuple[list[float | None], float]:
+    """``log10_p_local`` per hypothesis (None where blinded) and at the best one: the scan's
+    p_local as a power of ten, finite where the float p_local underflows to 0 (Z > 37.5).
+    Computed from q0 as the scan computes p_local (a NaN q0 counts as 0)."""
+    from ..stats.significance import log10_p, log_p_from_q0
+
+    q = np.nan_to_num(np.asarray(sres.q0, dtype=float))
+    lg = np.asarray(log10_p(log_p_from_q0(q)), dtype=float)
+    hidden = np.asarray(sres.blinded, dtype=bool)
+    return ([None if h else float(v) for v, h in zip(lg, hidden)],
+            float(lg[sres.best_index]))
+
+
+def _fit_dict(fr: Any) -> dict[str, Any]:
+    d = _plain(fr.to_dict())
+    keep = ("valid", "peak_mass", "width", "signal_yield", "background_yield", "gof")
+    return {**{k: d.get(k) for k in keep}, **{k: v for k, v in d.items() if k not in keep}}

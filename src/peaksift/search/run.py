@@ -1,0 +1,308 @@
+"""The whole search from a config: :func:`run_search`."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..config import Config, load_config
+from ..errors import ConfigError, FitError
+from .common import (
+    _blinded_copy,
+    _blinding,
+    _collect,
+    _fill,
+    _require_candidates,
+    _save_spectrum,
+    _scan_masses,
+    _scan_signal_name,
+    _sha256,
+    _shape,
+    _utc,
+    _versions,
+    _where,
+)
+from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
+from .result import SearchResult
+from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
+
+
+def run_search(
+    config: str | os.PathLike[str] | Mapping[str, Any] | Config,
+    *,
+    out: str | os.PathLike[str] | bool | None = None,
+    unblind: bool | None = None,
+    toys: int | None = None,
+    seed: int | None = None,
+    engine: str | None = None,
+    progress: bool = False,
+) -> SearchResult:
+    """Run the whole search described by a configuration.
+
+    Parameters
+    ----------
+    config : path, mapping or Config
+        The TOML file (see ``docs/config.md``), a mapping of the same layout, or a
+        :class:`~peaksift.config.Config`.
+    out : path, False or None
+        Output directory; None uses ``output.dir`` from the config (relative to the config
+        file); False writes nothing and only returns the result.
+    unblind : bool, optional
+        Lift the configured blinding for this run.
+    toys, seed, engine : optional
+        Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
+    progress : bool
+        Show progress bars (reading; toys).
+
+    Returns
+    -------
+    SearchResult
+        Its :meth:`~SearchResult.to_dict` is the content of ``results.json``.
+
+    Raises
+    ------
+    PeaksiftError
+        Any user-facing problem (configuration, input, cut, fit); nothing is written then.
+    """
+    started = _utc()
+    cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
+    _check_inputs(cfg)
+    target = _target(cfg, out)
+    with _staged(target) as stage:
+        res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
+                      stage=stage, target=target)
+    return res
+
+
+
+
+def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
+            stage: _Staging | None, target: Path | None) -> SearchResult:
+    from ..fitting import fit
+    from ..resonances import match_known, pair_charge
+    from ..stats.scan import scan
+
+    col, _, _ = _collect(cfg, progress=progress)
+    lo, hi = cfg.spectrum.window
+    hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
+    _require_candidates(cfg, col, hist)
+    blind = _blinding(cfg, unblind)
+    blind_window = tuple(cfg.blinding.window) if blind["active"] else None
+    if blind_window is not None:  # nothing downstream sees the blinded bins' contents
+        hist = _blinded_copy(hist, blind_window)
+
+    res = cfg.model.resolution
+    sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
+    bkg = _shape(cfg.model.background, cfg.model.background_options)
+    scan_sig = _shape(_scan_signal_name(cfg), {})
+    masses = _scan_masses(cfg)
+    binned, data = _fit_data(cfg, col, hist)
+
+    sigma_fn = res.sigma
+    if res.natural_width > 0:
+        width = float(res.natural_width)
+    else:
+        width = None
+    seed = cfg.significance.seed
+
+    sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
+                natural_width=width, blind=blind_window, refit=False)
+    best = dict(sres.global_significance(
+        method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
+        u0=cfg.significance.reference_level, progress=progress,
+        executor=_toy_executor(cfg)))
+
+    m_best = float(best["mass"])
+    settings = _fit_settings(cfg, sig_fit, m_best)
+    start = _fit_start(cfg, sig_fit, m_best, settings)
+    if blind_window is None:
+        fres = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
+                   **settings.arguments())
+    else:  # while blinded no fit may look inside the blinded window
+        fres = None
+    fres = _note_tie_drift(fres, cfg, settings)
+    bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
+                **settings.background_only(sig_fit, start)) if blind_window is None else None
+
+    limits = None
+    if cfg.limits.enabled:
+        limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress)
+
+    peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
+    m_fit = peak.get("value") or m_best
+    m_err = peak.get("error") or 0.0
+    known = tuple(match_known(float(m_fit), error=float(m_err),
+                              resolution=float(sigma_fn(float(m_fit))),
+                              charge=pair_charge(cfg.pairing.charge)))
+    cal, cal_hist, cal_fit = _calibration(cfg, col)
+
+    inputs = [{"path": str(p), "sha256": _sha256(p)} for p in col.files_read]
+    prov: dict[str, Any] = {
+        "inputs": inputs,
+        "files_skipped": [s.to_dict() for s in col.files_skipped],
+        "config_path": cfg.source,
+        "config_sha256": cfg.sha256,
+        "seed": seed,
+        "versions": _versions(),
+        "execution": {k: v for k, v in dict(col.engine_info).items()
+                      if k in ("engine", "workers", "address", "start_method", "chunks",
+                               "chunk_events")},
+        "started": started,
+        "finished": "",
+    }
+    result = SearchResult(
+        config=cfg, histogram=hist, collected=col, background_fit=bonly, fit=fres, scan=sres,
+        best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
+        blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
+    )
+    if stage is None:
+        prov["finished"] = _utc()
+        return result
+
+    from .. import plotting
+    from ..report import write_report, write_results_json
+
+    figdir = stage.path / "figures"
+    figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
+                                   log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    _save_spectrum(hist, stage.path / "spectrum.json", blind)
+    prov["finished"] = _utc()
+    final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
+    result = SearchResult(**{**result.__dict__, "figures": final_figs})
+    d = result.to_dict()
+    write_results_json(d, stage.path / "results.json")
+    write_report(d, stage.path, figs)
+    return result
+
+
+
+
+def _opt(**kw: Any) -> dict[str, Any]:
+    """Keyword arguments whose value is not None (optional features of the layers)."""
+    return {k: v for k, v in kw.items() if v is not None}
+
+
+def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
+    """The toys' map on the configured engine (None: serial, in this process).  Toys are
+    seeded one by one (global significance) or per mass (limits), so the engine does not
+    change the result."""
+    ex = cfg.execution
+    if ex.engine == "serial":
+        return None
+    import functools
+
+    from ..execution import map_tasks
+
+    return functools.partial(map_tasks, engine=ex.engine, workers=ex.workers,
+                             address=ex.address or None, desc=desc,
+                             start_method=ex.start_method)
+
+
+def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
+            width: float | None, blind: Any, progress: bool) -> Any:
+    from ..stats.limits import upper_limits
+
+    n = min(cfg.limits.points, masses.size)
+    lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
+    L = cfg.limits
+    half = (lm[-1] - lm[0]) / (2 * (lm.size - 1)) if lm.size > 1 else 0.0
+    for i, m in enumerate(L.toy_masses):
+        if not lm[0] - half <= m <= lm[-1] + half:
+            raise ConfigError(
+                f"{_where(cfg)}: limits.toy_masses[{i}] = {m:g} lies outside the limit scan "
+                f"[{lm[0]:g}, {lm[-1]:g}] GeV (the scan keeps 3 resolution sigma inside the "
+                "window unless scan.start / scan.stop say otherwise); choose masses inside it")
+    return upper_limits(
+        hist, sig, bkg, lm, resolution=cfg.model.resolution.resolution,
+        window=cfg.spectrum.window, cl=L.cl,
+        method=L.method,
+        **_opt(toys=L.toys if L.method != "asymptotic" else None, seed=cfg.significance.seed,
+               toy_masses=list(L.toy_masses) or None,
+               natural_width=width, blind=blind, luminosity=L.luminosity,
+               luminosity_uncertainty=L.luminosity_uncertainty or None,
+               efficiency=L.efficiency if L.luminosity is not None else None,
+               efficiency_uncertainty=L.efficiency_uncertainty or None,
+               unit=L.cross_section_unit if L.luminosity is not None else None),
+        constraint=L.constraint, progress=progress,
+        executor=_toy_executor(cfg, "toy limits") if L.method != "asymptotic" else None,
+    )
+
+
+def _sigma_near(cfg: Config, mass: float) -> float:
+    """sigma at ``mass``, or at the nearest row of a resolution table that stops short of it:
+    for the calibration peak, whose window may lie beyond the table (which must cover only
+    the search window), where sigma is a fit's starting value or a matching tolerance."""
+    r = cfg.model.resolution.resolution
+    m = float(mass) if r.mass_range is None else float(np.clip(mass, *r.mass_range))
+    return float(r.sigma(m))
+
+
+def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any]:
+    c = cfg.calibration
+    if not c.enabled:
+        return None, None, None
+    from ..fitting import fit
+    from ..resonances import lookup
+
+    ref = lookup(c.particle)
+    lo, hi = c.window
+    h = _fill(col, cfg, lo, hi, c.bins)
+    sig = _shape(c.signal, c.signal_options)
+    bkg = _shape(c.background, c.background_options)
+    names = [p.name for p in sig.parameters]
+    start: dict[str, float] = {"mass": ref.mass}
+    fixed: dict[str, float] = {}
+    if "sigma" in names:
+        start["sigma"] = _sigma_near(cfg, ref.mass)
+    if "width" in names:
+        start["width"] = ref.width
+        if c.fix_width:
+            fixed["width"] = ref.width
+    try:
+        fr = fit(h, sig, bkg, (lo, hi), start=start, fixed=fixed or None)
+    except FitError as exc:
+        raise FitError(f"calibration fit of {c.particle} in [{lo:g}, {hi:g}] GeV: {exc}") from None
+    d = fr.to_dict()
+    pm = d.get("peak_mass") or {}
+    m, e = float(pm.get("value", np.nan)), float(pm.get("error") or np.nan)
+    out = {
+        "particle": ref.name,
+        "pdgid": ref.pdgid,
+        "table_mass": ref.mass,
+        "table_mass_error": ref.mass_error,
+        "table_width": ref.width,
+        "window": [lo, hi],
+        "signal_shape": c.signal,
+        "background_shape": c.background,
+        "width_fixed_to_table": bool(fixed),
+        "valid": bool(d.get("valid")),
+        "fitted_mass": {"value": m, "error": e},
+        "fitted_resolution": _value_error(d, "sigma"),
+        "signal_yield": d.get("signal_yield"),
+        "shift": m - ref.mass,
+        "shift_relative_permille": 1000.0 * (m - ref.mass) / ref.mass,
+        "shift_sigma": (m - ref.mass) / np.hypot(e, ref.mass_error) if e > 0 else None,
+        "source": "particle package (PDG tables)",
+    }
+    from ..resonances import match_known, pair_charge
+
+    res_sigma = _sigma_near(cfg, m) if np.isfinite(m) else 0.0
+    out["known_matches"] = [k.to_dict() for k in match_known(
+        m, error=e if np.isfinite(e) else 0.0, resolution=res_sigma,
+        charge=pair_charge(cfg.pairing.charge))] if np.isfinite(m) else []
+    return out, h, fr
+
+
+def _value_error(d: Mapping[str, Any], name: str) -> dict[str, Any] | None:
+    """``{"value", "error"}`` of a fit parameter from ``FitResult.to_dict()``."""
+    p = (d.get("parameters") or {}).get(name)
+    if not isinstance(p, Mapping):
+        return None
+    return {"value": p.get("value"), "error": p.get("error")}
+
+
+# ---------------------------------------------------------------------------- spectrum
