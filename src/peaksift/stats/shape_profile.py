@@ -22,8 +22,8 @@ add nothing, so q0 = 2 (NLL_b - NLL) keeps the background-only fit of the plain 
 Method: damped Newton (Levenberg-Marquardt, :func:`peaksift.likelihood.damped_step`) on all
 hypotheses at once, started from the fit with the factors at 1; the Hessian is the observed
 Fisher part plus the exact yield-factor and background-curvature cross terms; the
-derivatives of the signal fractions in the factors are central differences (step 1e-5),
-so any signal shape works.  A step is taken only where the NLL does not rise.
+derivatives of the signal fractions in the factors come from the shape's own parameter
+derivatives (analytic where the shape has them) by the chain rule.  A step is taken only where the NLL does not rise.
 
 Toys: the linearised engine finds each toy's scan with the factors fixed at their centres,
 and the ``NUISANCE_REFINE`` highest points of each toy are refitted with the factors free.
@@ -48,7 +48,6 @@ from .toys import (
     bkg_gradients,
     bkg_second,
     fit_background,
-    profile_signal,
     run_toy_batch,
     toy_counts,
 )
@@ -58,7 +57,6 @@ __all__ = ["NUISANCE_REFINE", "profile_with_nuisances", "run_nuisance_toy_batch"
 
 #: highest points of each toy scan refitted with the signal nuisances free
 NUISANCE_REFINE = 3
-_H = 1e-5
 _FLOOR = 1e-100
 
 
@@ -74,14 +72,31 @@ def with_nuisances(model: ScanModel, signal: Any, base_params: Sequence[Any],
 
 
 def _fractions(model: ScanModel, signal: Any, base: Sequence[Any], names: Sequence[str],
-               nuis: SignalNuisances, k: np.ndarray, rows: Any) -> np.ndarray:
+               nuis: SignalNuisances, k: np.ndarray, rows: Any, grad: bool = False):
+    """Signal fractions in the used bins at factors ``k (B, J)`` and, with ``grad``, their
+    derivatives in the factors ``(J, B, N)`` (chain rule on the shape's own parameter
+    derivatives: d/dk_m = m d/dmass, d/dk_r = sigma d/dsigma)."""
     params = [np.asarray(p)[rows] if np.ndim(p) else p for p in base]
     p = nuis.signal_parameters(signal.parameter_names, params, names, k)
-    f = np.asarray(signal.bin_fractions(model.edges, p, model.window), float)
-    f = np.broadcast_to(f, (k.shape[0], model.edges.size - 1))
-    if model.bin_scale is not None:
-        f = f * model.bin_scale
-    return np.ascontiguousarray(f[:, model.used])
+    nb = k.shape[0]
+    full = (nb, model.edges.size - 1)
+    scale = 1.0 if model.bin_scale is None else model.bin_scale
+    if not grad:
+        f = np.broadcast_to(np.asarray(signal.bin_fractions(model.edges, p, model.window),
+                                       float), full) * scale
+        return np.ascontiguousarray(f[:, model.used])
+    f, g = signal.fractions_and_grad(model.edges, p, model.window)
+    f = np.broadcast_to(np.asarray(f, float), full) * scale
+    pn = list(signal.parameter_names)
+    target = {"mass_scale": "mass",
+              "mass_resolution": "sigma" if "sigma" in pn else "width"}
+    d = []
+    for j, name in enumerate(names):
+        i = pn.index(target[name])
+        val = np.broadcast_to(np.asarray(p[i], float), (nb, 1))
+        d.append((np.broadcast_to(g[i], full) * scale * (val / k[:, j : j + 1]))
+                 [:, model.used])
+    return np.ascontiguousarray(f[:, model.used]), np.array(d)
 
 
 def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: Sequence[Any],
@@ -147,15 +162,7 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
         if idx.size == 0:
             break
         si, ki, bi, thi, gi = s[idx], k[idx], b[idx], theta[idx], g[idx]
-        fi = _fractions(model, signal, base_params, names, nuisances, ki, idx)
-        dfs = []
-        for j in range(j_n):
-            up, dn = ki.copy(), ki.copy()
-            up[:, j] += _H
-            dn[:, j] -= _H
-            dfs.append((_fractions(model, signal, base_params, names, nuisances, up, idx)
-                        - _fractions(model, signal, base_params, names, nuisances, dn, idx))
-                       / (2 * _H))
+        fi, dfs = _fractions(model, signal, base_params, names, nuisances, ki, idx, True)
         nu = np.maximum(si[:, None] * fi + bi[:, None] * gi, _FLOOR)
         cols = [fi[:, None, :]] + [si[:, None, None] * d[:, None, :] for d in dfs]
         cols.append(gi[:, None, :])
@@ -251,8 +258,13 @@ def run_nuisance_toy_batch(spec: ToyBatch) -> np.ndarray:
     base = [np.asarray(p)[cols] if np.ndim(p) else p for p in info["params"]]
     nr = n[rows]
     with np.errstate(all="ignore"):
-        r0 = profile_signal(model, nr, model.fractions[cols], theta_start=theta[rows],
-                            b_start=b[rows], steps=40)
+        # start: the one-step yield estimate at the toy's background-only fit (the joint
+        # Newton of profile_with_nuisances then fits everything)
+        f = model.fractions[cols]
+        b0 = np.maximum(b[rows, None] * bkg_fractions(model, theta[rows]), _FLOOR)
+        s0 = np.maximum(np.sum((nr / b0 - 1.0) * f, axis=1)
+                        / np.maximum(np.sum(nr * f * f / b0**2, axis=1), 1e-300), 0.0)
+        r0 = {"s": s0, "b": b[rows] - s0, "theta": theta[rows]}
         r = profile_with_nuisances(model, nr, info["signal"], base, nuis, start=r0,
                                    centers=centers)
     # r starts from r0 with the factors at 1 and only descends: its NLL (constraints
