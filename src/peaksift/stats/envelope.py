@@ -177,11 +177,13 @@ class EnvelopeResult(FrozenValue):
 
     def toy_scans(self, toys: int, *, seed: int = 0, workers: int | None = None,
                   progress: bool | None = None, executor: Any = None,
-                  batch: int = 250) -> np.ndarray:
+                  batch: int = 250, expected: np.ndarray | None = None) -> np.ndarray:
         """Envelope q0 scans of background-only toys ``(toys, n_unblinded)``, generated from
-        the background-only fit of the function the envelope chooses without signal."""
+        the background-only fit of the function the envelope chooses without signal (or
+        from ``expected``, per used bin, e.g. a known truth in a study)."""
         models = self._models()
-        expected = models[self.null_choice].expected_background
+        if expected is None:
+            expected = models[self.null_choice].expected_background
         toys = int(toys)
         if toys < 1:
             raise FitError(f"toys must be a positive number, got {toys}")
