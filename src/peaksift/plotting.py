@@ -10,6 +10,9 @@ Which function
 * :func:`candidates` -- the candidates' pT and rapidity.
 * :func:`scan_figure` -- the p-value scan with the global significance noted; an excess
   beyond the axis floor is clipped there and its p stated (as a power of ten if need be).
+* :func:`envelope_figure` -- the background-function envelope: twice the profiled NLL
+  against the signal yield at the best mass, one curve per candidate, the envelope over them
+  (``background_envelope``, with ``[systematics]`` background families).
 * :func:`save` -- write one figure in several formats.
 
 The drawing of a fit, a scan and a limit curve belongs to their result objects
@@ -30,7 +33,8 @@ import numpy as np
 from ._format import fixed, number, p_value
 from ._style import COLORS, figure_style, use_headless_backend
 
-__all__ = ["candidates", "save", "scan_figure", "search_figures", "spectrum_only"]
+__all__ = ["candidates", "envelope_figure", "save", "scan_figure", "search_figures",
+           "spectrum_only"]
 
 
 def _plt() -> Any:
@@ -171,6 +175,10 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
         out["limits"] = _limits_figure(result, outdir, formats, blind)
     if blind is None:  # the pT/rapidity histograms include the blinded window: withheld
         out.update(candidates(result.collected, outdir, formats=formats))
+    syst = getattr(result, "systematics", None) or {}
+    if (syst.get("envelope") or {}).get("profile"):
+        out["background_envelope"] = save(envelope_figure(syst), outdir, "background_envelope",
+                                          formats)
     if calibration is not None and calibration[1] is not None and result.calibration:
         c = result.calibration
         title = (f"calibration: {c.get('particle')}, particle-data tables "
@@ -282,3 +290,41 @@ def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequenc
         _call_plot(result.limits, ax=ax)
         _shade_blind(ax, blind)
         return save(fig, outdir, "limits", formats)
+
+
+# ------------------------------------------------------------- background envelope
+_CURVE_STYLES = ("-", "--", "-.", ":", (0, (5, 1, 1, 1)), (0, (1, 1)))
+
+
+def envelope_figure(systematics: Any) -> Any:
+    """The envelope figure from a search's ``systematics`` block (results.json form): at the
+    best mass, twice the profiled NLL plus the penalty against the signal yield for every
+    candidate function (thin), their minimum -- the envelope -- drawn over them (thick), all
+    relative to the envelope's minimum; the level 1 marks the 68% interval."""
+    plt = _plt()
+    env = systematics["envelope"]
+    prof = env["profile"]
+    s = np.asarray(prof["signal_yield"], float)
+    with figure_style():
+        fig, ax = plt.subplots(figsize=(7.0, 4.6))
+        greys = ("#5b6270", "#8a8f98", "#1f6f8b", "#b07a2a", "#6a4c93", "#2e7d4f")
+        top = 0.0
+        for k, (label, curve) in enumerate(prof["curves"].items()):
+            c = np.asarray(curve, float)
+            ax.plot(s, c, lw=1.1, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
+                    color=greys[k % len(greys)], label=label)
+            top = max(top, float(np.nanmin(c)))
+        e = np.asarray(prof["envelope"], float)
+        ax.plot(s, e, lw=2.6, color=COLORS["signal"], alpha=0.85, label="envelope", zorder=4)
+        ax.axhline(1.0, color=COLORS["accent"], lw=0.8, ls=":")
+        ax.text(s[-1], 1.0, " 68%", va="center", ha="left", color=COLORS["accent"],
+                fontsize=9, clip_on=False)
+        ax.set_ylim(-0.3, max(6.0, min(top + 4.0, 40.0)))
+        ax.set_xlim(s[0], s[-1])
+        ax.set_xlabel("signal yield [events]")
+        ax.set_ylabel(r"$-2\,\Delta\ln L$ + penalty")
+        ax.text(0.0, 1.015, f"discrete profiling at {number(prof['mass'])} GeV: "
+                f"{len(prof['curves'])} functions, penalty {fixed(env['penalty'], 2)} per "
+                "parameter", transform=ax.transAxes, fontsize=9, va="bottom")
+        ax.legend(loc="upper center", fontsize=8.5, ncol=min(3, len(prof["curves"]) + 1))
+    return fig

@@ -71,6 +71,11 @@ _CAPTIONS = {
     "candidates": "Transverse momentum and rapidity of the pairs, for the candidates in the "
                   "mass range that was collected (stated on the figure).",
     "calibration": "Calibration fit of the standard-candle peak in its own window.",
+    "background_envelope": "Discrete profiling of the background function at the best mass: "
+                           "twice the profiled negative log-likelihood plus the penalty per "
+                           "free parameter against the signal yield, one curve per candidate "
+                           "function; the envelope (thick) is their minimum, and its rise "
+                           "by 1 gives the 68% interval.",
 }
 
 # captions that differ while the run is blinded (no fit drawn, nothing shown inside)
@@ -429,6 +434,7 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
     for name in ("spectrum", "spectrum_log", "pvalue_scan"):
         if name in fig:
             out += [f"![{name}]({fig[name]})", "", f"*{_caption(name, r)}*", ""]
+    out += background_model_markdown(r, fig)
     cal = _calibration_rows(r)
     if cal:
         out += ["## Calibration peak", "", _md_table(["quantity", "value"], cal), ""]
@@ -535,6 +541,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
     for name in ("spectrum", "spectrum_log", "pvalue_scan"):
         if name in fig:
             b.append(_img(fig[name], name, _caption(name, r)))
+    b += background_model_html(r, fig)
     cal = _calibration_rows(r)
     if cal:
         b += ["<h2>Calibration peak</h2>", _html_table(["quantity", "value"], cal)]
@@ -564,7 +571,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
     elif _blinded(r):
         b.append(f"<p>{_h(_WITHHELD_CANDIDATES)}</p>")
     for name, path in fig.items():
-        if name not in _CAPTIONS:
+        if name not in _CAPTIONS and name != "background_envelope":
             b.append(_img(path, name))
     b += ["<h2>Provenance</h2>", _html_table(["item", "value"], _provenance_rows(r))]
     files = (r.get("provenance") or {}).get("inputs") or []
@@ -593,3 +600,96 @@ def write_report(results: Mapping[str, Any], outdir: str | os.PathLike[str],
     md = atomic_write(outdir / "report.md", render_markdown(results, rel))
     ht = atomic_write(outdir / "report.html", render_html(results, figures))
     return {"markdown": md, "html": ht}
+
+
+# ------------------------------------------------------------------ background model
+def _background_model_parts(r: Mapping[str, Any]) -> list[tuple[str, Any]] | None:
+    """The "Background model" section as (kind, content) parts, from results.json alone:
+    ``("p", text)``, ``("table", (head, rows))``, ``("fig", name)``."""
+    sy = r.get("systematics")
+    if not sy:
+        return None
+    parts: list[tuple[str, Any]] = []
+    nu = sy.get("nuisances") or {}
+    active = [f"{k.replace('_', ' ')} {100 * v['size']:.3g}% ({v['kind']})"
+              for k, v in nu.items() if v.get("size")]
+    parts.append(("p", "Signal nuisance parameters profiled at every hypothesis and in every "
+                  "toy: " + (", ".join(active) if active else "none") +
+                  f"; toys keep the constraints {sy.get('toy_constraints', 'fixed')}."))
+    ch = sy.get("background_choice")
+    env = sy.get("envelope") or {}
+    sp = sy.get("spurious_signal") or {}
+    if ch:
+        inenv = set(env.get("functions") or [])
+        rows = []
+        for c in ch["candidates"]:
+            spc = sp.get(c["label"])
+            rows.append([c["label"], _num(c["nll"], 8), str(c["n_parameters"]),
+                         _num(c["gof_p_value"], 3),
+                         _num(c["order_p_value"], 3) if c["order_p_value"] is not None else "-",
+                         (f"{spc['max_ratio']:.2f}" + (" (flagged)" if spc["flagged"] else ""))
+                         if spc else "-",
+                         "kept" + (", in envelope" if c["label"] in inenv else "")
+                         if c["chosen"] else ""])
+        parts.append(("p", (f"Candidate background functions fitted to the "
+                      f"{'sidebands' if ch.get('blind') else 'spectrum'} ({ch['n_bins']} bins). "
+                      f"Order test: {ch['test']}; an order is kept when the next one's p-value "
+                      f"is at least {ch['size']:g}. Spurious signal: the largest fitted signal "
+                      "on the background template over its statistical error.")))
+        parts.append(("table", (["function", "NLL", "free parameters", "goodness-of-fit p",
+                                 "order test p", "spurious signal / stat. error", "status"],
+                                rows)))
+    if env:
+        parts.append(("p", (f"Discrete profiling (Dauncey et al., JINST 10 (2015) P04015) over "
+                      f"{', '.join(env['functions'])} with a penalty of {env['penalty']:g} per "
+                      f"free parameter; at the best mass the envelope takes "
+                      f"{env['chosen_at_best']}, and without signal {env['null_choice']}.")))
+    w, wo = sy.get("with_systematics") or {}, sy.get("without_systematics") or {}
+    keys = (("best mass [GeV]", "mass"), ("local Z", "z_local"), ("local p", "p_local"),
+            ("global Z", "z_global"), ("global p", "p_global"))
+    parts.append(("table", (["quantity", "single function, no systematics",
+                             "with systematics"],
+                            [[lab, _num(wo.get(k)), _num(w.get(k))] for lab, k in keys])))
+    pulls = sy.get("nuisance_pulls") or {}
+    if pulls:
+        parts.append(("table", (["nuisance parameter", "pull at the best mass [sigma]"],
+                                [[k.replace("_", " "), f"{v:+.2f}"] for k, v in pulls.items()])))
+    notes = list(sy.get("notes") or [])
+    if sy.get("limits"):
+        notes.append(sy["limits"])
+    for n in notes:
+        parts.append(("p", f"Note: {n}."))
+    parts.append(("fig", "background_envelope"))
+    return parts
+
+
+def background_model_markdown(r: Mapping[str, Any], fig: Mapping[str, str]) -> list[str]:
+    """The report's "Background model" section as Markdown lines (empty without systematics)."""
+    parts = _background_model_parts(r)
+    if not parts:
+        return []
+    out = ["## Background model", ""]
+    for kind, c in parts:
+        if kind == "p":
+            out += [c, ""]
+        elif kind == "table":
+            out += [_md_table(*c), ""]
+        elif c in fig:
+            out += [f"![{c}]({fig[c]})", "", f"*{_CAPTIONS[c]}*", ""]
+    return out
+
+
+def background_model_html(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[str]:
+    """The report's "Background model" section as HTML pieces (empty without systematics)."""
+    parts = _background_model_parts(r)
+    if not parts:
+        return []
+    out = ["<h2>Background model</h2>"]
+    for kind, c in parts:
+        if kind == "p":
+            out.append(f"<p>{_h(c)}</p>")
+        elif kind == "table":
+            out.append(_html_table(*c))
+        elif c in fig:
+            out.append(_img(fig[c], c, _CAPTIONS[c]))
+    return out

@@ -31,6 +31,7 @@ from .sections import (
     ScanConfig,
     SignificanceConfig,
     SpectrumConfig,
+    SystematicsConfig,
 )
 from .values import _check_fit_parameters, _type_name, _value, _where
 
@@ -282,6 +283,18 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                               f"[{s0:g}, {s1:g}] GeV (spectrum.window, or scan.start / "
                               "scan.stop); choose masses inside the scan range")
 
+    sy = vals["systematics"]
+    if sy["background_families"]:
+        from ..stats.background_choice import candidate_shapes
+
+        try:
+            candidate_shapes(list(sy["background_families"]), sqrt_s=sy["sqrt_s"])
+        except FitError as exc:
+            raise ConfigError(f"{where}: systematics.background_families: {exc}") from None
+    if sy["template"] and resolve_paths:
+        p = Path(sy["template"]).expanduser()
+        sy["template"] = str(p if p.is_absolute() else (base_dir / p))
+
     ex = vals["execution"]
     if ex["address"] and ex["engine"] != "dask":
         raise ConfigError(f"{where}: execution.address is set but execution.engine = "
@@ -297,6 +310,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         significance=SignificanceConfig(**vals["significance"]),
         blinding=BlindingConfig(**bl),
         limits=LimitsConfig(**vals["limits"]),
+        systematics=SystematicsConfig(**sy),
         calibration=CalibrationConfig(**cal),
         execution=ExecutionConfig(**ex),
         output=OutputConfig(**vals["output"]),

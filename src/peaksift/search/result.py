@@ -61,6 +61,10 @@ class SearchResult:
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
         results.json ``fit.settings``.
+    systematics : dict or None
+        With ``[systematics]``: the nuisances, the background choice and order tests, the
+        spurious signal, the envelope, the pulls, and the best hypothesis with and without
+        systematics (``best`` is then the one with them); None otherwise.
     """
 
     config: Config
@@ -78,6 +82,7 @@ class SearchResult:
     outdir: Path | None = None
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
+    systematics: Mapping[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
@@ -117,6 +122,7 @@ class SearchResult:
             "calibration": _plain(dict(self.calibration)) if self.calibration else None,
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
+            "systematics": _plain(dict(self.systematics)) if self.systematics else None,
         }
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),
