@@ -241,20 +241,27 @@ def _background_model(spec: Any, used: np.ndarray, shape: Any):
 def fit_candidate(spec: Any, used: np.ndarray, shape: Any,
                   extra_start: np.ndarray | None = None) -> tuple[np.ndarray, float, float]:
     """Background-only fit of one candidate: ``(theta, yield, NLL)`` (NLL without the
-    saturated constant), the best of the default starts and ``extra_start``."""
+    saturated constant).
+
+    Without ``extra_start``: the scan's robust multi-start fit.  With it (the next order of
+    a family, started from the lower order's minimum embedded, :func:`_embed`): the stacked
+    damped Newton fit from that start and the default one, which never rises above the
+    start's NLL, so a higher order is never fitted worse than the lower one it contains."""
     from .scan import _fit_data_background
+    from .toys import fit_background
 
     model, start = _background_model(spec, used, shape)
     counts = model.counts
     with np.errstate(all="ignore"):
-        th, b, nll = _fit_data_background(model, counts, start)
-        best = (th[0], float(b[0]), float(nll[0]))
-        if extra_start is not None:
-            xs = np.clip(extra_start, model.lower, model.upper)
-            th2, b2, nll2 = _fit_data_background(model, counts, xs)
-            if float(nll2[0]) < best[2]:
-                best = (th2[0], float(b2[0]), float(nll2[0]))
-    return best
+        if extra_start is None:
+            th, b, nll = _fit_data_background(model, counts, start)
+            return th[0], float(b[0]), float(nll[0])
+        starts = np.clip(np.vstack([extra_start, start]), model.lower, model.upper)
+        th, b, nll = fit_background(model, np.broadcast_to(counts, (2, counts.size)), starts,
+                                    steps=300)
+    nll = np.where(np.isfinite(nll), nll, np.inf)
+    i = int(np.argmin(nll))
+    return th[i], float(b[i]), float(nll[i])
 
 
 def choose_background(data: Any, families: Any = None, *, window: Any = None,
