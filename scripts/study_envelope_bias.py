@@ -57,7 +57,7 @@ def study(toys: int, signals: list[float], seed: int = 1) -> None:
             s_true = z * err
             mu = model.expected_background + s_true * model.fractions[0]
             n = rng.poisson(np.broadcast_to(mu, (toys, mu.size))).astype(float)
-            grid = np.linspace(s_true - 6 * err, s_true + 6 * err, 121)
+            grid = np.linspace(s_true - 5 * err, s_true + 5 * err, 61)
             curves = profile_curves(models, 0, grid, env.n_parameters, env.penalty, counts=n)
             r = envelope_minimum(grid, curves)
             s_hat, lo, hi = r["s_hat"], r["lower"], r["upper"]
