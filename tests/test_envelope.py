@@ -101,6 +101,7 @@ def test_envelope_q0_matches_the_papers_definition(mass):
     e = envelope_scan(_hist(n), CANDS, "gaussian", np.array([mass]),
                       absolute_resolution=SIGMA)
     assert e.q0[0] == pytest.approx(_paper_q0(n, mass), abs=2e-3)
+    assert type(e).from_dict(e.to_dict()) == e
 
 
 def test_envelope_toy_maximum_matches_an_independent_evaluation():

@@ -162,11 +162,32 @@ class EnvelopeResult(FrozenValue):
             "n_parameters": list(self.n_parameters), "penalty": self.penalty,
             "chosen": [self.labels[int(c)] for c in self.chosen],
             "null_choice": self.labels[self.null_choice],
-            "candidate_z_local": {k: np.sqrt(np.maximum(v, 0)) for k, v in
-                                  self.candidate_q0.items()},
+            "candidate_q0": dict(self.candidate_q0),
             "nll_background": dict(self.nll_background), "signal_yield": self.signal_yield,
             "signal_yield_error": self.signal_yield_error, "best": self.best,
             "blinded": [bool(v) for v in self.blinded], "unit": self.unit})
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> EnvelopeResult:
+        """Back from :meth:`to_dict` (without the scans: no toys or curves from it)."""
+        labels = tuple(d["functions"])
+
+        def arr(v: Any) -> np.ndarray:
+            return np.array([np.nan if x is None else x for x in v], float)
+
+        mass = arr(d["mass"])
+        best = int(np.flatnonzero(mass == d["best"]["mass"])[0])
+        return cls(masses=mass, q0=arr(d["q0"]), z_local=arr(d["z_local"]),
+                   p_local=arr(d["p_local"]), labels=labels,
+                   n_parameters=tuple(d["n_parameters"]), penalty=float(d["penalty"]),
+                   chosen=np.array([labels.index(c) for c in d["chosen"]]),
+                   null_choice=labels.index(d["null_choice"]),
+                   candidate_q0={k: arr(v) for k, v in d["candidate_q0"].items()},
+                   nll_background=dict(d["nll_background"]),
+                   signal_yield=arr(d["signal_yield"]),
+                   signal_yield_error=arr(d["signal_yield_error"]), best_index=best,
+                   best_mass=float(mass[best]), blinded=np.array(d["blinded"], bool),
+                   unit=d["unit"])
 
     # -------------------------------------------------------------- toys
     def _models(self) -> list[ScanModel]:
