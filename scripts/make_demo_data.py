@@ -4,6 +4,10 @@
     python scripts/make_demo_data.py --check     # also fit the intended selection's spectrum
     python scripts/make_demo_data.py --outdir /tmp/d --events 100000 --seed 7 --check
 
+It also rewrites the hadron demo set in ``<outdir>/tracks/`` (:mod:`peaksift.simulate_tracks`,
+its own seed and random stream; ``--no-tracks`` skips it), which
+``demo_data/hadron_search.toml`` searches for the phi(1020) in K+K- pairs.
+
 The check applies the selection recorded in truth.json (isolated opposite-charge muon pairs,
 the leading pair per event) and fits the search window with an extended unbinned likelihood:
 a Gaussian peak (mean and width free) on an exponential-of-quadratic background, against the
@@ -26,7 +30,7 @@ import numpy as np
 REPO_DIR = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO_DIR / "src"))
 
-from peaksift import events, simulate
+from peaksift import events, simulate, simulate_tracks
 
 
 def _content_digest(paths: list[str]) -> str:
@@ -110,11 +114,16 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--seed", type=int, default=None)
     p.add_argument("--weighted", action="store_true")
     p.add_argument("--check", action="store_true", help="fit the intended selection's spectrum")
+    p.add_argument("--no-tracks", action="store_true", help="do not rewrite the hadron demo set")
     args = p.parse_args(argv)
     info = simulate.write_demo(args.outdir, n_events=args.events, seed=args.seed,
                                weighted=args.weighted)
     print(info["summary"])
     print("content digest (arrays):", _content_digest(info["files"]))
+    if not args.no_tracks and not args.weighted:
+        tinfo = simulate_tracks.write_track_demo(Path(args.outdir) / "tracks")
+        print(tinfo["summary"])
+        print("content digest (arrays):", _content_digest(tinfo["files"]))
     if args.check:
         truth = info["truth"]
         m = selected_masses(args.outdir, truth)

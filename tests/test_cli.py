@@ -183,7 +183,7 @@ def test_spectrum_writes_histogram_and_figure(tiny_data, capsys, tmp_path):
     (foreign / "notes.txt").write_text("keep me")
     capsys.readouterr()
     rc, _, err = _run(capsys, ["spectrum", str(cfg), "--out", str(foreign)])
-    assert rc == 2 and "does not hold a previous peaksift result" in _one_line(err)
+    assert rc == 2 and "holds files peaksift did not write (notes.txt)" in _one_line(err)
     assert (foreign / "notes.txt").read_text() == "keep me"
 
 
@@ -284,7 +284,8 @@ def test_fit_holds_the_mass_exactly_and_writes_its_files(demo_fits, demo_nll, ma
     assert d["peak_mass"]["value"] == float(mass)  # held: exactly the given mass
     assert d["parameters"]["mass"]["fixed"] is True
     assert d["run"]["mass_start"] == mass and d["run"]["mass_held"] is True
-    assert sorted(p.name for p in run["dir"].iterdir()) == ["fit.json", "fit.png"]
+    assert sorted(p.name for p in run["dir"].iterdir()) == ["fit.json", "fit.png",
+                                                           "peaksift-manifest.json"]
     assert (run["dir"] / "fit.png").read_bytes()[:8] == PNG_SIGNATURE
     assert FitResult.from_dict(d).peak_mass == float(mass)
     assert f"held at {mass:g} GeV" in run["stdout"]
@@ -354,7 +355,7 @@ def test_fit_out_refuses_a_directory_of_other_files(tiny_data, capsys, tmp_path)
     other.mkdir()
     (other / "fit.json").write_text("{}")
     rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", "100", "--out", str(other)])
-    assert rc == 2 and "not written by peaksift fit" in _one_line(err)
+    assert rc == 2 and "did not write (fit.json)" in _one_line(err)
     assert (other / "fit.json").read_text() == "{}"
     # a previous peaksift fit output is replaced; a file path is refused
     mine = tmp_path / "fits"
@@ -364,8 +365,9 @@ def test_fit_out_refuses_a_directory_of_other_files(tiny_data, capsys, tmp_path)
                  "--hold-mass"]) == 0
     second = json.loads((mine / "fit.json").read_text())
     assert first["run"]["mass_start"] == 100 and second["peak_mass"]["value"] == 120.0
-    assert sorted(p.name for p in mine.iterdir()) == ["fit.json", "fit.png"]
+    assert sorted(p.name for p in mine.iterdir()) == ["fit.json", "fit.png",
+                                                      "peaksift-manifest.json"]
     capsys.readouterr()
     rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", "100", "--out",
                                str(foreign / "notes.txt")])
-    assert rc == 2 and "not a directory" in _one_line(err)
+    assert rc == 2 and "not a folder" in _one_line(err)

@@ -3,7 +3,9 @@
 Where to start
 --------------
 * ``read_events`` / ``iter_events`` / ``describe``  -- read Parquet events (awkward + vector).
-* ``pair``                                          -- build di-object candidates under cuts.
+* ``pair``                                          -- build di-object candidates under cuts
+                                                       (mass hypotheses per leg, dE/dx
+                                                       identification: ``energy_loss``).
 * ``MassHistogram``                                 -- weighted mass spectrum.
 * ``fit``                                           -- extended signal-plus-background fit.
 * ``Resolution``                                    -- detector mass resolution sigma(m).
@@ -24,6 +26,7 @@ from .errors import (
     ExecutionError,
     FitError,
     InputError,
+    OutputError,
     PeaksiftError,
 )
 
@@ -53,7 +56,7 @@ _EXPORTS: dict[str, str] = {
 _SUBMODULES = {
     "kinematics", "cuts", "shapes", "stats", "simulate", "events", "pairing", "blinding",
     "histogram", "fitting", "config", "execution", "search", "plotting", "report",
-    "resonances", "errors", "resolution",
+    "resonances", "errors", "resolution", "energy_loss", "simulate_tracks",
 }
 
 __all__ = [
@@ -66,6 +69,7 @@ __all__ = [
     "InputError",
     "LimitResult",
     "MassHistogram",
+    "OutputError",
     "PeaksiftError",
     "Resolution",
     "ScanResult",

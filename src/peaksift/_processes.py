@@ -9,6 +9,10 @@
   one thread per library, whatever a forked worker inherited.
 * :func:`stop_pool`            -- stop a pool now (Ctrl-C, an error): cancel what waits,
   terminate the workers, kill any that outlive it.
+* :func:`die_with_parent`      -- in a worker: end as soon as the process that started it
+  ends, however it ends (``kill -9`` included).
+* :class:`Terminated` and :func:`sigterm_as_interrupt` -- SIGTERM (what ``timeout`` and
+  batch systems send) handled like Ctrl-C: the same clean-up, then exit status 143.
 
 The execution engines (:mod:`peaksift.execution`) and the toy engine's ``workers=`` pool
 (:mod:`peaksift.stats.toys`) share these, so every pool peaksift starts behaves alike.  Why
@@ -27,8 +31,9 @@ import warnings
 from collections.abc import Callable, Iterator
 from typing import Any
 
-__all__ = ["WORKER_ENV", "arrow_threads_from_env", "process_pool", "quiet_fork",
-           "resolve_start_method", "stop_pool", "worker_start"]
+__all__ = ["WORKER_ENV", "Terminated", "arrow_threads_from_env", "die_with_parent",
+           "process_pool", "quiet_fork", "resolve_start_method", "sigterm_as_interrupt",
+           "stop_pool", "worker_start"]
 
 #: Environment of the worker processes we start (unless the user set these): they run one
 #: process per core, so Arrow's decoding threads and BLAS threads would only contend with
@@ -64,11 +69,83 @@ def process_pool(size: int, start_method: str = "auto",
     """A process pool of ``size`` workers started with ``start_method`` (resolved with
     :func:`resolve_start_method`).  Its processes start at the first submit: wrap that in
     :func:`quiet_fork`."""
+    import functools
     from concurrent.futures import ProcessPoolExecutor
 
     ctx = multiprocessing.get_context(resolve_start_method(start_method))
-    return ProcessPoolExecutor(max_workers=size, mp_context=ctx, initializer=initializer,
-                               initargs=initargs)
+    # every worker first ties its life to this process's, whatever the caller's initializer
+    init = functools.partial(_start_worker, os.getpid(), initializer, initargs)
+    return ProcessPoolExecutor(max_workers=size, mp_context=ctx, initializer=init)
+
+
+def _start_worker(parent: int, initializer: Callable[..., Any] | None,
+                  initargs: tuple[Any, ...]) -> None:
+    die_with_parent(parent)
+    if initializer is not None:
+        initializer(*initargs)
+
+
+#: Linux ``prctl`` option: the signal the kernel sends this process when its parent ends
+_PR_SET_PDEATHSIG = 1
+#: how often the fallback watcher looks for the parent (seconds)
+_WATCH_INTERVAL = 0.5
+
+
+def die_with_parent(parent: int) -> None:
+    """End this (worker) process as soon as process ``parent`` ends, however it ends.
+
+    A worker blocked on its task pipe would otherwise outlive a parent killed with
+    ``kill -9``: the other workers hold the pipe's other end open, so no end-of-file ever
+    comes.  On Linux the kernel sends SIGKILL at the parent's death (``prctl(2)``,
+    PR_SET_PDEATHSIG); everywhere a daemon thread also checks every
+    ``_WATCH_INTERVAL`` s that the parent is still ours (an orphan is re-parented, so
+    ``getppid`` changes) -- the kernel's signal also covers a worker stuck in C code.
+    """
+    if sys.platform.startswith("linux"):
+        import ctypes
+        import ctypes.util
+
+        with contextlib.suppress(OSError, AttributeError, TypeError):
+            libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
+            libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
+    if os.getppid() != parent:  # the parent died before the request took effect
+        os._exit(1)
+    import threading
+
+    def watch() -> None:
+        while True:
+            time.sleep(_WATCH_INTERVAL)
+            if os.getppid() != parent:
+                os._exit(1)
+
+    threading.Thread(target=watch, name="peaksift-parent-watch", daemon=True).start()
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM arrived.  A :class:`KeyboardInterrupt`, so every clean-up written for
+    Ctrl-C (stop the worker pools, remove the staging folder) runs for it as well."""
+
+
+@contextlib.contextmanager
+def sigterm_as_interrupt() -> Iterator[None]:
+    """While inside: SIGTERM raises :class:`Terminated` in the main thread (once: a second
+    SIGTERM during the clean-up is ignored, so the clean-up can finish).  Outside the main
+    thread this does nothing (Python delivers signals to the main thread only)."""
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum: int, frame: Any) -> None:
+        signal.signal(signal.SIGTERM, signal.SIG_IGN)
+        raise Terminated
+
+    old = signal.signal(signal.SIGTERM, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, old)
 
 
 def arrow_threads_from_env() -> None:

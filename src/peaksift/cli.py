@@ -10,7 +10,8 @@ Sub-commands::
                                     at a chosen mass; --out DIR writes fit.json and fit.png
 
 A user's mistake (a :class:`~peaksift.errors.PeaksiftError`) prints one line on stderr and
-exits with status 2; no traceback.
+exits with status 2; no traceback.  Ctrl-C exits with 130 and SIGTERM with 143, each after
+removing the run's unfinished outputs and stopping its worker processes.
 """
 
 from __future__ import annotations
@@ -36,7 +37,8 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .simulate import write_demo
 
-    info = write_demo(args.outdir, n_events=args.events, seed=args.seed, weighted=args.weighted)
+    info = write_demo(args.outdir, n_events=args.events, seed=args.seed, weighted=args.weighted,
+                      share_folder=args.share_folder)
     print(info["summary"] if isinstance(info, dict) and "summary" in info else info)
     return 0
 
@@ -121,8 +123,17 @@ def _summary_text(d: Mapping[str, Any]) -> str:
             + " (see the report)"))
     if "outputs" in d:
         lines.append(_row("outputs", str(part(d, "outputs").get("dir"))))
+    _doubt_lines(lines, d)
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _doubt_lines(lines: list[str], d: Mapping[str, Any]) -> None:
+    """One WARNING line per doubt results.json lists (:mod:`peaksift.search.doubts`); the
+    invalid main fit already has its ``fit status`` line."""
+    for w in d.get("warnings") or []:
+        if isinstance(w, Mapping) and w.get("topic") != "fit":
+            lines.append(f"  WARNING: {w.get('message')}")
 
 
 def _fit_lines(lines: list[str], fit: dict) -> None:
@@ -159,7 +170,8 @@ def _cmd_search(args: argparse.Namespace) -> int:
         # printed one by one in the middle of the progress bars
         warnings.simplefilter("always")
         res = run_search(args.config, out=args.out, unblind=args.unblind, toys=args.toys,
-                         seed=args.seed, engine=args.engine, progress=_progress_wanted(args))
+                         seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
+                         share_folder=args.share_folder)
     numeric = [w for w in caught if issubclass(w.category, RuntimeWarning)]
     for w in caught:
         if not issubclass(w.category, RuntimeWarning):
@@ -176,7 +188,7 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
     from .search import run_spectrum
 
     res = run_spectrum(args.config, out=args.out, engine=args.engine,
-                       progress=_progress_wanted(args))
+                       progress=_progress_wanted(args), share_folder=args.share_folder)
     h = res.histogram
     bl = res.config.blinding
     hidden = (f" outside the blinded window [{bl.window[0]:g}, {bl.window[1]:g}] GeV "
@@ -193,7 +205,8 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     from .search import FIT_FILES, run_fit
 
     fr = run_fit(args.config, args.mass, hold_mass=args.hold_mass, out=args.out,
-                 engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args))
+                 engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args),
+                 share_folder=args.share_folder)
     print(repr(fr))
     print(_row("mass", f"held at {args.mass:g} GeV" if args.hold_mass
                else f"started at {args.mass:g} GeV"))
@@ -220,6 +233,13 @@ def _demo_config_hook(args: argparse.Namespace) -> None:
         print(f"config for the search: {path}  (run: peaksift search {path})")
 
 
+def _share_opt(q: argparse.ArgumentParser) -> None:
+    """The output-folder contract's one switch (see :mod:`peaksift._output`)."""
+    q.add_argument("--share-folder", action="store_true",
+                   help="write into an output folder that also holds files peaksift did not "
+                        "write (they are never touched); without it such a folder is refused")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="peaksift",
@@ -240,6 +260,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--events", type=int, default=None, help="number of events (default: demo size)")
     d.add_argument("--seed", type=int, default=None, help="random seed (default: the demo's own)")
     d.add_argument("--weighted", action="store_true", help="simulated-sample variant with weights")
+    _share_opt(d)
     d.set_defaults(handler=_cmd_demo)
 
     def engine_opt(q: argparse.ArgumentParser) -> None:
@@ -255,12 +276,14 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--toys", type=int, default=None, help="override significance.toys")
     s.add_argument("--seed", type=int, default=None, help="override significance.seed")
     engine_opt(s)
+    _share_opt(s)
     s.set_defaults(handler=_cmd_search)
 
     sp = sub.add_parser("spectrum", help="only the selected spectrum: histogram file and figure")
     sp.add_argument("config")
     sp.add_argument("--out", default=None, help="output directory (default: output.dir)")
     engine_opt(sp)
+    _share_opt(sp)
     sp.set_defaults(handler=_cmd_spectrum)
 
     f = sub.add_parser("fit", help="one signal-plus-background fit at a chosen mass")
@@ -274,21 +297,30 @@ def build_parser() -> argparse.ArgumentParser:
                         "`peaksift fit` output)")
     f.add_argument("--unblind", action="store_true", help="fit even if the config is blinded")
     engine_opt(f)
+    _share_opt(f)
     f.set_defaults(handler=_cmd_fit)
     return p
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from ._processes import Terminated, sigterm_as_interrupt
+
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        rc = int(args.handler(args) or 0)
-        if args.command == "demo" and rc == 0:
-            _demo_config_hook(args)
+        with sigterm_as_interrupt():
+            rc = int(args.handler(args) or 0)
+            if args.command == "demo" and rc == 0:
+                _demo_config_hook(args)
         return rc
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
+    except Terminated:
+        # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
+        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
+              file=sys.stderr)
+        return 143
     except KeyboardInterrupt:
         print("peaksift: interrupted; no outputs were written", file=sys.stderr)
         return 130

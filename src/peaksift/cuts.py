@@ -29,7 +29,13 @@ against a whitelist; it is never compiled to code, evaluated or executed.  Allow
 * comparisons ``< <= > >= == !=``, chained as in ``20 < pt < 60``;
 * ``and``, ``or``, ``not`` (operands must be conditions, not numbers);
 * the functions listed in :data:`FUNCTIONS` (``abs``, ``sqrt``, ``exp``, ``log``,
-  ``min``, ``max``, ...), called with positional arguments.
+  ``min``, ``max``, ...), called with positional arguments;
+* in object cuts, ``dedx_deviation(<hypothesis>)``: the track's standardised deviation
+  (measured - expected) / sigma of its dE/dx from the Bethe expectation for a mass hypothesis
+  (``electron``, ``pion``, ``kaon``, ``proton``, ``deuteron``; see
+  :mod:`peaksift.energy_loss`), e.g. ``abs(dedx_deviation(kaon)) < 3 and pt > 0.2``.  It
+  needs a dE/dx response (:class:`peaksift.energy_loss.DedxResponse`, the ``[identification]``
+  config table); the hypothesis is a bare word, never a field.
 
 Everything else -- attribute access, subscripts, unknown functions, keyword arguments,
 lambdas, comprehensions, strings, ``if``/``else`` expressions, bitwise ``& | ~`` -- is
@@ -48,10 +54,12 @@ from typing import Any
 
 import numpy as np
 
+from .energy_loss import HYPOTHESES
 from .errors import CutError, closest
 
 __all__ = [
     "FUNCTIONS",
+    "IDENTIFY_FUNCTION",
     "Cut",
     "CutLike",
     "compile_cut",
@@ -83,6 +91,9 @@ FUNCTIONS: dict[str, tuple[Callable[..., Any], int, int]] = {
     "min": (np.minimum, 2, 64),
     "max": (np.maximum, 2, 64),
 }
+
+#: the identification function: dedx_deviation(<hypothesis>) (see the module guide)
+IDENTIFY_FUNCTION = "dedx_deviation"
 
 _CONSTANTS = {"pi": math.pi}
 _MAX_LENGTH = 5000
@@ -139,12 +150,20 @@ class Cut:
     names : tuple of str
         Field (or event-variable) names the expression uses, in order of first appearance;
         a reader can load only these columns.
+    hypotheses : tuple of str
+        Mass hypotheses of ``dedx_deviation(...)`` calls, in order of first appearance
+        (empty when the cut needs no dE/dx identification).
     """
 
-    __slots__ = ("_clean", "_tree", "expression", "names")
+    __slots__ = ("_clean", "_tree", "expression", "hypotheses", "names")
 
     def __init__(self, expression: str) -> None:  # use compile_cut
         self.expression, self._clean, self._tree, self.names = _parse(expression)
+        hyp: list[str] = []
+        for node in _walk(self._tree):
+            if node[0] == "ident" and node[2] not in hyp:
+                hyp.append(node[2])
+        self.hypotheses = tuple(hyp)
 
     def __reduce__(self) -> tuple[Any, tuple[str]]:
         return (compile_cut, (self.expression,))
@@ -184,6 +203,7 @@ class Cut:
         *,
         where: str = "the data",
         available: Iterable[str] | None = None,
+        identify: Callable[[str], Any] | None = None,
     ) -> np.ndarray:
         """Evaluate on flat columns and return a boolean numpy array of ``length``.
 
@@ -199,12 +219,16 @@ class Cut:
         available : iterable of str, optional
             Names present, listed in the message for an unknown name.  Default: the keys of
             ``columns`` when it is a mapping.
+        identify : callable, optional
+            ``identify(hypothesis)`` gives the rows' standardised dE/dx deviations for
+            ``dedx_deviation(hypothesis)`` (e.g. from
+            :meth:`peaksift.energy_loss.DedxResponse.deviation_of`).
         """
         if available is None:
             available = list(columns) if isinstance(columns, Mapping) else []
         get = columns.__getitem__ if isinstance(columns, Mapping) else columns
         cache: dict[str, np.ndarray] = {}
-        ctx = _Context(self, get, cache, int(length), where, list(available))
+        ctx = _Context(self, get, cache, int(length), where, list(available), identify)
         try:
             with np.errstate(all="ignore"):
                 out = ctx.eval(self._tree)
@@ -386,10 +410,13 @@ def _parse(expression: str) -> tuple[str, str, _Node, tuple[str, ...]]:
                 fail(node.func, "only the whitelisted functions may be called, by plain name "
                      f"({', '.join(FUNCTIONS)})")
             fname = node.func.id
+            if fname == IDENTIFY_FUNCTION:
+                return _identify_node(node, pos, fail)
             if fname not in FUNCTIONS:
-                guess = closest(fname, FUNCTIONS)
+                known = (*FUNCTIONS, IDENTIFY_FUNCTION)
+                guess = closest(fname, known)
                 hint = f"; did you mean {guess!r}?" if guess else ""
-                fail(node.func, f"unknown function {fname!r}; allowed: {', '.join(FUNCTIONS)}{hint}")
+                fail(node.func, f"unknown function {fname!r}; allowed: {', '.join(known)}{hint}")
             if node.keywords:
                 fail(node.keywords[0].value, f"keyword arguments are not allowed in {fname}()")
             for a in node.args:
@@ -430,6 +457,23 @@ def _parse(expression: str) -> tuple[str, str, _Node, tuple[str, ...]]:
     return expression, clean, top, tuple(names)
 
 
+def _identify_node(node: ast.Call, pos: Callable[[ast.AST], int],
+                   fail: Callable[[ast.AST, str], None]) -> _Node:
+    """``dedx_deviation(kaon)`` -> ("ident", position, "kaon"); the argument is a bare word."""
+    usage = f"write e.g. '{IDENTIFY_FUNCTION}(kaon)' with one of {', '.join(HYPOTHESES)}"
+    if node.keywords or len(node.args) != 1:
+        fail(node.func, f"{IDENTIFY_FUNCTION}() takes one mass hypothesis; {usage}")
+    arg = node.args[0]
+    if not isinstance(arg, ast.Name):
+        fail(arg, f"the argument of {IDENTIFY_FUNCTION}() is a hypothesis name; {usage}")
+    if arg.id not in HYPOTHESES:
+        guess = closest(arg.id, HYPOTHESES)
+        hint = f"; did you mean {guess!r}?" if guess else ""
+        fail(arg, f"{arg.id!r} is not a known mass hypothesis; use one of "
+             f"{', '.join(HYPOTHESES)}{hint}")
+    return ("ident", pos(node), arg.id)
+
+
 def _find_op(line: str, node: ast.BinOp, sym: str) -> int | None:
     """Character index of the operator between the two operands of ``node`` (best effort)."""
     try:
@@ -448,7 +492,7 @@ def _static_kind(node: _Node) -> str:
         return "bool"
     if k == "const":
         return "bool" if isinstance(node[2], np.bool_) else "num"
-    if k in ("arith", "neg", "pos", "call"):
+    if k in ("arith", "neg", "pos", "call", "ident"):
         return "num"
     return "any"  # a name: known when applied
 
@@ -479,12 +523,29 @@ def _walk(node: _Node) -> Iterable[_Node]:
 
 # ------------------------------------------------------------------ evaluation
 class _Context:
-    __slots__ = ("available", "cache", "cut", "get", "length", "where")
+    __slots__ = ("available", "cache", "cut", "get", "identify", "length", "where")
 
     def __init__(self, cut: Cut, get: Callable[[str], Any], cache: dict[str, np.ndarray],
-                 length: int, where: str, available: list[str]) -> None:
+                 length: int, where: str, available: list[str],
+                 identify: Callable[[str], Any] | None = None) -> None:
         self.cut, self.get, self.cache = cut, get, cache
         self.length, self.where, self.available = length, where, available
+        self.identify = identify
+
+    def ident(self, node: _Node) -> np.ndarray:
+        key = f"{IDENTIFY_FUNCTION}({node[2]})"  # not a valid field name: no clash
+        if key in self.cache:
+            return self.cache[key]
+        if self.identify is None:
+            self.cut._fail(node[1], f"{IDENTIFY_FUNCTION}() needs a dE/dx response for "
+                           f"{self.where}: configure the [identification] table (or pass "
+                           "identification= to peaksift.pair)")
+        arr = np.asarray(self.identify(node[2]), dtype=np.float64)
+        if arr.shape != (self.length,):
+            self.cut._fail(node[1], f"{IDENTIFY_FUNCTION}({node[2]}) gave {arr.shape} values "
+                           f"for {self.length} rows")
+        self.cache[key] = arr
+        return arr
 
     def name(self, node: _Node) -> np.ndarray:
         n = node[2]
@@ -535,6 +596,8 @@ class _Context:
             return node[2]
         if k == "name":
             return self.name(node)
+        if k == "ident":
+            return self.ident(node)
         if k == "arith":
             return _ARITH_FUNC[node[2]](self.num(node[3]), self.num(node[4]))
         if k == "neg":
@@ -621,7 +684,7 @@ def _flat_from_mask(mask: Any, counts: np.ndarray, name: str) -> np.ndarray:
 
 def flat_object_mask(
     cut: CutLike, collection: Any, counts: np.ndarray, get: Callable[[str], Any],
-    fields: list[str], name: str,
+    fields: list[str], name: str, identification: Any = None,
 ) -> np.ndarray:
     """Flat boolean mask over all objects of ``collection``, one entry per object.
 
@@ -642,6 +705,8 @@ def flat_object_mask(
         The fields a text cut may use.
     name : str
         The collection's name, for messages.
+    identification : peaksift.energy_loss.DedxResponse, optional
+        The dE/dx response behind ``dedx_deviation(...)`` in a text cut.
 
     Returns
     -------
@@ -649,7 +714,13 @@ def flat_object_mask(
     """
     if _is_text(cut):
         c = compile_cut(cut)
-        return c.evaluate(get, int(counts.sum()), where=f"collection {name!r}", available=fields)
+        where = f"collection {name!r}"
+        identify = None
+        if identification is not None and c.hypotheses:
+            def identify(h: str) -> Any:
+                return identification.deviation_of(h, get, where)
+        return c.evaluate(get, int(counts.sum()), where=where, available=fields,
+                          identify=identify)
     if callable(cut):
         out = cut(collection)
         return _flat_from_mask(out, counts, f"cut on {name!r} (from {_callable_name(cut)})")
@@ -660,7 +731,8 @@ def _callable_name(f: Any) -> str:
     return getattr(f, "__qualname__", None) or type(f).__name__
 
 
-def object_mask(collection: Any, cut: CutLike, *, name: str = "objects") -> Any:
+def object_mask(collection: Any, cut: CutLike, *, name: str = "objects",
+                identification: Any = None) -> Any:
     """Jagged boolean mask over the objects of ``collection`` for any kind of cut.
 
     Parameters
@@ -672,11 +744,13 @@ def object_mask(collection: Any, cut: CutLike, *, name: str = "objects") -> Any:
         collection and returning a jagged boolean mask, or such a mask.
     name : str
         The collection's name, for messages.
+    identification : peaksift.energy_loss.DedxResponse, optional
+        The dE/dx response behind ``dedx_deviation(...)`` in a text cut.
     """
     import awkward as ak
 
     counts, get, fields = _collection_counts_and_getter(collection, name)
-    flat = flat_object_mask(cut, collection, counts, get, fields, name)
+    flat = flat_object_mask(cut, collection, counts, get, fields, name, identification)
     return ak.unflatten(flat, counts)
 
 

@@ -12,6 +12,8 @@ Use the most specific subclass:
 * :class:`CutError`       -- a cut expression that cannot be parsed or evaluated.
 * :class:`FitError`       -- a fit that cannot be set up (empty window, bad bounds, ...).
 * :class:`ExecutionError` -- a worker, engine or file failure during a run.
+* :class:`OutputError`    -- the output folder: files peaksift did not write, a read-only
+  or full file system, a rename the system refuses.
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ __all__ = [
     "ExecutionError",
     "FitError",
     "InputError",
+    "OutputError",
     "PeaksiftError",
     "closest",
 ]
@@ -53,6 +56,10 @@ class FitError(PeaksiftError):
 
 class ExecutionError(PeaksiftError):
     """A failure while running the work (a dead worker, an unreadable file mid-run)."""
+
+
+class OutputError(PeaksiftError):
+    """The output folder cannot take the run's files (see :mod:`peaksift._output`)."""
 
 
 def closest(word: str, choices: Iterable[str]) -> str | None:

@@ -38,6 +38,23 @@ What :func:`pair` does, in order
    the lowest ``first_index``, then the lowest ``second_index``.  A pair whose key is NaN
    is never chosen.
 
+Mass hypotheses per leg and dE/dx identification
+-------------------------------------------------
+``hypotheses="kaon"`` or ``("kaon", "pion")`` gives each leg the mass of a hypothesis of
+:data:`peaksift.energy_loss.HYPOTHESES` (replacing the collection's mass field) and computes
+the invariant mass with those masses.  ``identification`` (a
+:class:`peaksift.energy_loss.DedxResponse`) lets the cuts use ``dedx_deviation(kaon)``.
+For two *different* hypotheses on one collection, ``cut`` selects the first leg and
+``second_cut`` the second, and pairs are ordered: ``(i, j)`` with ``i`` passing ``cut``, ``j``
+passing ``second_cut``, ``i != j``.  When both objects pass both selections the pair has two
+assignments (Kπ and πK); ``assignment`` decides what is kept:
+
+* ``"both"``: both, as two candidates (each with its own mass);
+* ``"more_probable"``: the one with the smaller
+  :math:`z_{1}(i)^2 + z_{2}(j)^2` (z: the standardised dE/dx deviations under each leg's
+  hypothesis), i.e. the larger Gaussian likelihood with equal prior abundances; on a tie,
+  the one whose first leg comes first in the collection.
+
 With ``choose="all"`` (and no ``min_delta_r``) each pair's mass, pT and rapidity come
 straight from the objects' polar coordinates through the formulas of
 :func:`peaksift.kinematics.pair_kinematics` (sums of non-negative terms: no cancellation
@@ -75,12 +92,15 @@ import numpy as np
 
 from . import kinematics
 from .cuts import CutLike, event_mask, flat_object_mask
+from .energy_loss import DedxResponse, hypothesis_mass
 from .errors import ConfigError, InputError, closest
 from .histogram import in_range
 
-__all__ = ["CHOOSE_RULES", "Candidates", "load_kernels", "pair"]
+__all__ = ["ASSIGNMENT_RULES", "CHOOSE_RULES", "Candidates", "load_kernels", "pair"]
 
 CHOOSE_RULES = ("all", "leading", "max_sum_pt", "closest")
+#: what to keep when an unlike pair has two mass assignments (see the module guide)
+ASSIGNMENT_RULES = ("both", "more_probable")
 _CHARGE = {None: 0, "any": 0, "opposite": -1, "same": 1}
 _CUTFLOW_KEYS = ("events_in", "events_after_event_cut", "events_with_pair", "candidates")
 _KINEMATIC_FIELDS = ("pt", "eta", "phi", "mass")
@@ -111,6 +131,8 @@ class Candidates:
         (e.g. weight by ``1 / multiplicity`` to count each event once).  None otherwise.
     choose : str
         The rule that produced the candidates.
+    hypotheses : (str, str) or None
+        The mass hypothesis of each leg (None: the collections' own masses).
     """
 
     mass: np.ndarray
@@ -123,6 +145,7 @@ class Candidates:
     cutflow: dict[str, int] = field(default_factory=dict)
     multiplicity: np.ndarray | None = None
     choose: str = "all"
+    hypotheses: tuple[str, str] | None = None
 
     _COLUMNS = ("mass", "pt", "rapidity", "weight", "event_index", "first_index",
                 "second_index")
@@ -170,7 +193,12 @@ class Candidates:
         mult = None
         if all(p.multiplicity is not None for p in parts):
             mult = np.concatenate([p.multiplicity for p in parts])
-        return cls(**cols, cutflow=flow, multiplicity=mult, choose=parts[0].choose)
+        hyps = {p.hypotheses for p in parts}
+        if len(hyps) > 1:
+            raise InputError("cannot concatenate candidates made with different mass "
+                             "hypotheses; pair every chunk with the same options")
+        return cls(**cols, cutflow=flow, multiplicity=mult, choose=parts[0].choose,
+                   hypotheses=parts[0].hypotheses)
 
     def select(self, mask: Any) -> Candidates:
         """The candidates where the boolean ``mask`` (one entry per candidate) is true.
@@ -404,6 +432,43 @@ def _best_pairs_direct(sa, ea, sb, eb, same, ga, gb, mode, pta, ptb, rule):  # p
 
 
 @numba.njit(cache=True, nogil=True)
+def _ordered_pairs(sa, ea, sb, eb, sela, selb, ga, gb, mode, rule, ina, inb, za2,
+                   zb2, fill, a, b, pe):  # pragma: no cover - compiled
+    """Ordered pairs (i, j) of one collection under two different leg hypotheses.
+
+    ``i`` runs over the first leg's selection, ``j`` over the second's (``sela``/``selb``:
+    their flat indices in the collection); the same object is never paired with itself.
+    ``rule`` 1 (more probable): when the swapped assignment also exists (``ina[fb]`` and
+    ``inb[fa]``), keep the one with the smaller ``za2[first] + zb2[second]`` (ties: the one
+    whose first leg has the lower index; a NaN sum loses).  With ``fill`` false only counts;
+    otherwise writes (i, j, event) into a, b, pe.  Returns the number of pairs.
+    """
+    k = 0
+    for ev in range(sa.size):
+        for i in range(sa[ev], ea[ev]):
+            fa = sela[i]
+            gi = ga[i] if mode != 0 else 0
+            for j in range(sb[ev], eb[ev]):
+                fb = selb[j]
+                if fa == fb:
+                    continue
+                if mode != 0 and gi * gb[j] != mode:
+                    continue
+                if rule == 1 and ina[fb] and inb[fa]:
+                    c = za2[fa] + zb2[fb]
+                    cs = za2[fb] + zb2[fa]
+                    if not (c < cs or (c == cs and fa < fb)
+                            or (np.isnan(cs) and not np.isnan(c))):
+                        continue
+                if fill:
+                    a[k] = i
+                    b[k] = j
+                    pe[k] = ev
+                k += 1
+    return k
+
+
+@numba.njit(cache=True, nogil=True)
 def _sum_pairs(a, b, ua, ub, pxa, pya, pza, ea, pxb, pyb, pzb, eb):  # pragma: no cover
     """Component-wise four-vector sums of the pairs (a, b); ua/ub map to the Cartesian rows."""
     n = a.size
@@ -482,6 +547,10 @@ class _Collection:
         self.n_objects = int(self.offsets[-1])
         self._cache: dict[str, np.ndarray] = {}
 
+    def use_mass(self, mass: float) -> None:
+        """Give every object the mass of a hypothesis (GeV), in place of its mass field."""
+        self._cache["mass"] = np.full(self.n_objects, float(mass))
+
     def get(self, f: str) -> np.ndarray:
         import awkward as ak
 
@@ -524,14 +593,16 @@ def _is_no_cut(cut: Any) -> bool:
     return cut is None or (isinstance(cut, str) and not cut.strip())
 
 
-def _selected(coll: _Collection, cut: CutLike, ev_ok: np.ndarray | None) -> tuple:
+def _selected(coll: _Collection, cut: CutLike, ev_ok: np.ndarray | None,
+              identification: DedxResponse | None = None) -> tuple:
     """(flat indices of selected objects or None for all, per-event start, per-event stop)."""
     if _is_no_cut(cut) and ev_ok is None:
         return None, coll.offsets[:-1], coll.offsets[1:]
     if _is_no_cut(cut):
         ok = np.repeat(ev_ok, coll.counts)
     else:
-        ok = flat_object_mask(cut, coll.array, coll.counts, coll.get, coll.fields, coll.name)
+        ok = flat_object_mask(cut, coll.array, coll.counts, coll.get, coll.fields, coll.name,
+                              identification)
         if ev_ok is not None:
             ok &= np.repeat(ev_ok, coll.counts)
     cs = np.zeros(ok.size + 1, dtype=np.int64)
@@ -621,6 +692,9 @@ def pair(
     target_mass: float | None = None,
     min_delta_r: float | None = None,
     event_offset: int = 0,
+    hypotheses: str | Sequence[str] | None = None,
+    identification: DedxResponse | None = None,
+    assignment: str = "both",
 ) -> Candidates:
     """Build di-object candidates; see the module guide for the exact rules.
 
@@ -635,7 +709,8 @@ def pair(
         Collection of the second object; None (or ``first``) pairs ``first`` with itself.
     cut, second_cut : str, Cut, callable or mask, optional
         Object cuts on ``first`` and on ``second`` (see :mod:`peaksift.cuts`); an empty
-        string means no cut.  ``second_cut`` needs a different ``second`` collection.
+        string means no cut.  ``second_cut`` needs a different ``second`` collection, or two
+        different ``hypotheses`` (it then selects the second leg).
     event_cut : str, Cut, callable or mask, optional
         Event cut (per-event scalars, ``n_<collection>`` counts before object cuts).
     charge : {None, "any", "opposite", "same"}
@@ -649,6 +724,14 @@ def pair(
         ``min_delta_r``; None or 0 for no requirement.
     event_offset : int
         Added to ``event_index`` (the global index of this chunk's first event).
+    hypotheses : str or (str, str), optional
+        Mass hypothesis of both legs, or of each leg (names of
+        :data:`peaksift.energy_loss.HYPOTHESES`); None keeps the collections' masses.
+    identification : DedxResponse, optional
+        The dE/dx response behind ``dedx_deviation(...)`` in the cuts and the
+        ``"more_probable"`` assignment.
+    assignment : {"both", "more_probable"}
+        What to keep when an unlike pair has two assignments (module guide).
 
     Returns
     -------
@@ -659,13 +742,44 @@ def pair(
     InputError
         Missing collection, kinematic field or ``charge`` field.
     ConfigError
-        Unknown ``choose``/``charge``, missing ``target_mass``, bad ``min_delta_r``.
+        Unknown ``choose``/``charge``/hypothesis/``assignment``, missing ``target_mass``,
+        bad ``min_delta_r``, ``"more_probable"`` without ``identification``.
     CutError
         A cut that cannot be parsed or names an unknown field.
     """
     return _pair(events, first, second, cut=cut, second_cut=second_cut,
                  event_cut=event_cut, charge=charge, choose=choose, target_mass=target_mass,
-                 min_delta_r=min_delta_r, event_offset=event_offset)
+                 min_delta_r=min_delta_r, event_offset=event_offset,
+                 hypotheses=_check_hypotheses(hypotheses, identification, assignment),
+                 identification=identification, assignment=assignment)
+
+
+def _check_hypotheses(hypotheses: Any, identification: Any, assignment: Any
+                      ) -> tuple[str, str] | None:
+    """The two legs' hypothesis names (or None), after checking every identification option."""
+    if identification is not None and not isinstance(identification, DedxResponse):
+        raise ConfigError("identification must be a peaksift.energy_loss.DedxResponse, got "
+                          f"{type(identification).__name__}")
+    if assignment not in ASSIGNMENT_RULES:
+        guess = closest(str(assignment), ASSIGNMENT_RULES)
+        hint = f"; did you mean {guess!r}?" if guess else ""
+        raise ConfigError(f"assignment={assignment!r} is not a rule; use one of "
+                          f"{', '.join(map(repr, ASSIGNMENT_RULES))}{hint}")
+    if hypotheses is None:
+        if assignment != "both":
+            raise ConfigError("assignment applies only with two different hypotheses; set "
+                              "hypotheses=('kaon', 'pion') (for example) or drop it")
+        return None
+    legs = (hypotheses, hypotheses) if isinstance(hypotheses, str) else tuple(hypotheses)
+    if len(legs) != 2 or not all(isinstance(h, str) for h in legs):
+        raise ConfigError(f"hypotheses must be one name or two names (one per leg), got "
+                          f"{hypotheses!r}")
+    for h in legs:
+        hypothesis_mass(h, where="hypotheses")
+    if assignment == "more_probable" and identification is None:
+        raise ConfigError("assignment='more_probable' compares the dE/dx of both assignments; "
+                          "pass identification=DedxResponse(...)")
+    return legs  # type: ignore[return-value]
 
 
 _KERNELS_LOADED = False  # the first kernel section of this process has run
@@ -728,7 +842,10 @@ def load_kernels() -> None:
 
 def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_cut: CutLike,
           event_cut: CutLike, charge: str | None, choose: str, target_mass: float | None,
-          min_delta_r: float | None, event_offset: int) -> Candidates:
+          min_delta_r: float | None, event_offset: int,
+          hypotheses: tuple[str, str] | None = None,
+          identification: DedxResponse | None = None,
+          assignment: str = "both") -> Candidates:
     import awkward as ak
 
     mode, tm, dr = _check_options(choose, charge, target_mass, min_delta_r)
@@ -738,15 +855,22 @@ def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_c
             f"got {type(events).__name__}")
     if not isinstance(first, str):
         raise ConfigError(f"first must be a collection name, got {first!r}")
-    same = second is None or second == first
+    one_collection = second is None or second == first
+    # two different hypotheses on one collection: two views of it, paired as ordered legs
+    unlike = one_collection and hypotheses is not None and hypotheses[0] != hypotheses[1]
+    same = one_collection and not unlike
     if same and not _is_no_cut(second_cut):
         raise ConfigError(
-            "second_cut applies only when pairing two different collections; with one "
-            "collection put the requirement in cut")
+            "second_cut applies only when pairing two different collections (or two "
+            "different hypotheses); with one collection put the requirement in cut")
     n_events = len(events)
 
     ca = _Collection(events, first)
-    cb = ca if same else _Collection(events, str(second))
+    cb = ca if same else _Collection(events, first if one_collection else str(second))
+    if hypotheses is not None:
+        ca.use_mass(hypothesis_mass(hypotheses[0]))
+        if not same:
+            cb.use_mass(hypothesis_mass(hypotheses[1]))
 
     ev_ok = None
     n_after = n_events
@@ -754,11 +878,11 @@ def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_c
         ev_ok = event_mask(events, event_cut)
         n_after = int(np.count_nonzero(ev_ok))
 
-    sel_a, sa, ea = _selected(ca, cut, ev_ok)
+    sel_a, sa, ea = _selected(ca, cut, ev_ok, identification)
     if same:
         sel_b, sb, eb = sel_a, sa, ea
     else:
-        sel_b, sb, eb = _selected(cb, second_cut, ev_ok)
+        sel_b, sb, eb = _selected(cb, second_cut, ev_ok, identification)
 
     if mode != 0:
         qa = _charges(ca, sel_a, charge)  # type: ignore[arg-type]
@@ -766,9 +890,37 @@ def _pair(events: Any, first: str, second: str | None, *, cut: CutLike, second_c
     else:
         qa = qb = np.zeros(1, dtype=np.int8)
 
+    ordered = None
+    if unlike:
+        ordered = _ordered_inputs(ca, sel_a, sel_b, hypotheses, identification,  # type: ignore[arg-type]
+                                  assignment)
     with _kernels_without_extensions():  # from here on only our own kernels and numpy
-        return _pair_selected(events, ca, cb, same, sel_a, sa, ea, sel_b, sb, eb, qa, qb,
-                              mode, choose, tm, dr, n_events, n_after, event_offset)
+        out = _pair_selected(events, ca, cb, same, sel_a, sa, ea, sel_b, sb, eb, qa, qb,
+                             mode, choose, tm, dr, n_events, n_after, event_offset, ordered)
+    return out if hypotheses is None else dataclasses.replace(out, hypotheses=hypotheses)
+
+
+def _ordered_inputs(coll: _Collection, sel_a: np.ndarray | None, sel_b: np.ndarray | None,
+                    hypotheses: tuple[str, str], identification: DedxResponse | None,
+                    assignment: str) -> tuple:
+    """Arguments of :func:`_ordered_pairs` after the two selections: flat indices of each
+    leg's selection, membership masks, squared deviations and the rule."""
+    n = coll.n_objects
+    ia = np.arange(n, dtype=np.int64) if sel_a is None else sel_a
+    ib = np.arange(n, dtype=np.int64) if sel_b is None else sel_b
+    rule = 1 if assignment == "more_probable" else 0
+    if rule:
+        ina = np.zeros(n, dtype=np.bool_)
+        ina[ia] = True
+        inb = np.zeros(n, dtype=np.bool_)
+        inb[ib] = True
+        where = f"collection {coll.name!r}"
+        za2 = identification.deviation_of(hypotheses[0], coll.get, where) ** 2  # type: ignore[union-attr]
+        zb2 = identification.deviation_of(hypotheses[1], coll.get, where) ** 2  # type: ignore[union-attr]
+    else:
+        ina = inb = np.zeros(1, dtype=np.bool_)
+        za2 = zb2 = np.zeros(1)
+    return ia, ib, rule, ina, inb, za2, zb2
 
 
 def _pair_selected(events: Any, ca: _Collection, cb: _Collection, same: bool,
@@ -776,8 +928,22 @@ def _pair_selected(events: Any, ca: _Collection, cb: _Collection, same: bool,
                    sel_b: np.ndarray | None, sb: np.ndarray, eb: np.ndarray, qa: np.ndarray,
                    qb: np.ndarray, mode: int, choose: str, tm: float | None,
                    dr: float | None, n_events: int, n_after: int,
-                   event_offset: int) -> Candidates:
-    """The pairs of the selected objects: the kernel part of :func:`pair`."""
+                   event_offset: int, ordered: tuple | None = None) -> Candidates:
+    """The pairs of the selected objects: the kernel part of :func:`pair`.
+
+    ``ordered`` (from :func:`_ordered_inputs`) lists ordered pairs of two hypotheses on one
+    collection instead of the usual pairs; the rest is the same."""
+    if ordered is not None:
+        ia, ib, rule, ina, inb, za2, zb2 = ordered
+        e1 = np.empty(1, dtype=np.int64)
+        total = _ordered_pairs(sa, ea, sb, eb, ia, ib, qa, qb, mode, rule, ina, inb, za2, zb2,
+                               False, e1, e1, e1)
+        a, b, pe = (np.empty(total + 1, dtype=np.int64) for _ in range(3))
+        _ordered_pairs(sa, ea, sb, eb, ia, ib, qa, qb, mode, rule, ina, inb, za2, zb2, True,
+                       a, b, pe)
+        a, b, pe = a[:total], b[:total], pe[:total]
+        return _chosen(events, ca, cb, same, sel_a, sel_b, a, b, pe, choose, tm, dr,
+                       n_events, n_after, event_offset)
     if dr is None and choose in ("leading", "max_sum_pt"):
         # fast path: pick each event's pair while scanning, without listing every pair
         pta = np.ascontiguousarray(_take(ca.get("pt"), sel_a), dtype=np.float64)
@@ -802,7 +968,15 @@ def _pair_selected(events: Any, ca: _Collection, cb: _Collection, same: bool,
     _fill_pairs(sa, ea, sb, eb, same, qa, qb, mode, starts, counts, a, b, pe)
     a, b, pe = a[:total], b[:total], pe[:total]
     del counts, starts
+    return _chosen(events, ca, cb, same, sel_a, sel_b, a, b, pe, choose, tm, dr,
+                   n_events, n_after, event_offset)
 
+
+def _chosen(events: Any, ca: _Collection, cb: _Collection, same: bool,
+            sel_a: np.ndarray | None, sel_b: np.ndarray | None, a: np.ndarray, b: np.ndarray,
+            pe: np.ndarray, choose: str, tm: float | None, dr: float | None, n_events: int,
+            n_after: int, event_offset: int) -> Candidates:
+    """From the listed pairs (a, b in event pe): Delta R, the choose rule and the columns."""
     if dr is not None and a.size:
         eta_a, phi_a = _take(ca.get("eta"), sel_a), _take(ca.get("phi"), sel_a)
         eta_b, phi_b = (eta_a, phi_a) if same else (_take(cb.get("eta"), sel_b),

@@ -76,6 +76,10 @@ _CAPTIONS = {
                            "free parameter against the signal yield, one curve per candidate "
                            "function; the envelope (thick) is their minimum, and its rise "
                            "by 1 gives the 68% interval.",
+    "dedx": "Measured dE/dx against momentum of the paired collection's tracks (density, log "
+            "momentum axis), with the expected Bethe curve of each mass hypothesis times the "
+            "calibrated scale; the pairing hypotheses carry the selection band (drawn with the "
+            "resolution at the reference number of samples).",
 }
 
 # captions that differ while the run is blinded (no fit drawn, nothing shown inside)
@@ -277,6 +281,39 @@ def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
     return rows
 
 
+def _identification_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
+    """The dE/dx identification the pairing used: response and its calibration fit."""
+    d = r.get("identification")
+    if not d:
+        return None
+    resp = d.get("response") or {}
+    pr = ((r.get("config") or {}).get("pairing") or {})
+    rows = [("material (Bethe curve)", str(resp.get("material"))),
+            ("measured field", str(resp.get("field"))),
+            ("relative resolution", _num(resp.get("resolution")))]
+    if resp.get("samples_field"):
+        rows.append(("resolution scaling", (f"x ({_num(resp.get('reference_samples'))} / n)^"
+                     f"{_num(resp.get('samples_exponent'))}, n from "
+                     f"'{resp.get('samples_field')}'")))
+    fit = d.get("calibration_fit")
+    if fit:
+        sc = fit.get("scale") or {}
+        rows.append(("scale (fitted)", (f"{_num(sc.get('value'), 5)} ± "
+                     f"{_num(sc.get('error'), 2)} on {_num(fit.get('tracks_used'))} tracks")))
+        rs = fit.get("resolution")
+        if rs:
+            rows.append(("resolution (fitted)", (f"{_num(rs.get('value'))} ± "
+                         f"{_num(rs.get('error'), 2)}")))
+    else:
+        rows.append(("scale (given)", _num(resp.get("scale"), 5)))
+    if pr.get("hypotheses"):
+        rows.append(("mass hypotheses per leg", ", ".join(pr["hypotheses"])))
+        if len(set(pr["hypotheses"])) == 2:
+            rows.append(("two assignments", str(pr.get("assignment"))))
+    rows.append(("tracks read", _num(d.get("tracks_read"))))
+    return rows
+
+
 def _cl_percent(lim: Mapping[str, Any]) -> str:
     cl = as_finite(lim.get("cl", 0.95))
     return _num(100 * cl, 3) if cl is not None else "n/a"
@@ -414,11 +451,34 @@ def _selection_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     return rows
 
 
+def _warning_texts(r: Mapping[str, Any]) -> list[str]:
+    return [str(w.get("message")) for w in r.get("warnings") or [] if isinstance(w, Mapping)]
+
+
+def _warnings_md(r: Mapping[str, Any]) -> list[str]:
+    """The ``## Warnings`` section (results.json ``warnings``), empty when there are none."""
+    texts = _warning_texts(r)
+    if not texts:
+        return []
+    return ["## Warnings", "", "Read these before quoting any number below.", "",
+            *[f"- **Warning:** {t}" for t in texts], ""]
+
+
+def _warnings_html(r: Mapping[str, Any]) -> list[str]:
+    texts = _warning_texts(r)
+    if not texts:
+        return []
+    items = "".join(f"<li><strong>Warning:</strong> {_h(t)}</li>" for t in texts)
+    return ["<h2>Warnings</h2>", "<p>Read these before quoting any number below.</p>",
+            f'<ul class="caution">{items}</ul>']
+
+
 def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | None = None) -> str:
     """The meeting report as Markdown; ``figures`` maps figure names to relative PNG paths."""
     r = results
     fig = dict(figures or {})
-    out = [f"# {_title(r)}", "", f"> **Caution.** {CAUTION}", "", "## Result", ""]
+    out = [f"# {_title(r)}", "", f"> **Caution.** {CAUTION}", "", *_warnings_md(r), "## Result",
+           ""]
     out.append(_md_table(["quantity", "value"], _summary_rows(r)))
     out += ["", _lee_sentence(r), ""]
     km = r.get("known_matches")
@@ -441,6 +501,12 @@ def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | Non
         if "calibration" in fig:
             out += [f"![calibration]({fig['calibration']})", "", f"*{_CAPTIONS['calibration']}*",
                     ""]
+    ident = _identification_rows(r)
+    if ident:
+        out += ["## Particle identification (dE/dx)", "",
+                _md_table(["quantity", "value"], ident), ""]
+        if "dedx" in fig:
+            out += [f"![dedx]({fig['dedx']})", "", f"*{_CAPTIONS['dedx']}*", ""]
     head, rows = _limit_rows(r)
     if rows:
         lim = r.get("limits") or {}
@@ -528,6 +594,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
                     f"<title>{_h(title)}</title>", f"<style>{_CSS}</style></head><body>",
                     f"<h1>{_h(title)}</h1>",
                     f'<div class="caution"><strong>Caution.</strong> {_h(CAUTION)}</div>',
+                    *_warnings_html(r),
                     "<h2>Result</h2>", _html_table(["quantity", "value"], _summary_rows(r)),
                     f"<p>{_h(_lee_sentence(r))}</p>",
                     "<h3>Known particles near the best peak</h3>"]
@@ -547,6 +614,12 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
         b += ["<h2>Calibration peak</h2>", _html_table(["quantity", "value"], cal)]
         if "calibration" in fig:
             b.append(_img(fig["calibration"], "calibration"))
+    ident = _identification_rows(r)
+    if ident:
+        b += ["<h2>Particle identification (dE/dx)</h2>",
+              _html_table(["quantity", "value"], ident)]
+        if "dedx" in fig:
+            b.append(_img(fig["dedx"], "dedx"))
     head, rows = _limit_rows(r)
     if rows:
         lim = r.get("limits") or {}

@@ -518,12 +518,6 @@ def _writer(path: Path, schema: pa.Schema) -> pq.ParquetWriter:
                             use_dictionary=False, column_encoding=enc)
 
 
-def _atomic_json(path: Path, obj: Any) -> None:
-    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
-    tmp.write_text(json.dumps(obj, indent=2, sort_keys=False) + "\n")
-    os.replace(tmp, path)
-
-
 def write_demo(
     outdir: str | os.PathLike,
     *,
@@ -533,18 +527,22 @@ def write_demo(
     files: int = 2,
     row_group_events: int = 50_000,
     scenario: Scenario = DEMO,
+    share_folder: bool = False,
 ) -> dict[str, Any]:
     """Write the demo data set to ``outdir``: Parquet event files and ``truth.json``.
 
     Events are generated and written block by block (:data:`BLOCK_EVENTS` at a time), so
-    memory stays near 150 MB (resident) whatever ``n_events``.  Files are written under temporary names
-    and renamed when complete.
+    memory stays near 150 MB (resident) whatever ``n_events``.  Files are written into a
+    staging folder inside ``outdir`` and moved into place when all are complete (the
+    output-folder contract of :mod:`peaksift._output`).
 
     Parameters
     ----------
     outdir : path
         Created if missing.  Files are ``events_NNN.parquet`` (``simulated_NNN.parquet`` for
-        the weighted variant); older files of that name pattern in ``outdir`` are replaced.
+        the weighted variant) and ``truth.json``.  A folder holding files peaksift did not
+        write is refused unless ``share_folder``; files of an earlier demo written there
+        (listed in its ``peaksift-manifest.json``) are replaced, nothing else is touched.
     n_events, seed : int, optional
         Defaults :data:`DEMO_EVENTS` and :data:`DEMO_SEED`.
     weighted : bool
@@ -553,6 +551,9 @@ def write_demo(
         Number of files the events are split into (contiguous, nearly equal).
     row_group_events : int
         Events per Parquet row group (the reader's chunk unit).
+    share_folder : bool
+        Write beside files peaksift did not write (they are never touched; a name clash
+        with one of them is refused).
 
     Returns
     -------
@@ -560,22 +561,44 @@ def write_demo(
         ``files`` (list of paths), ``truth`` (the truth record), ``truth_file``, ``summary``
         (a few lines for the terminal).
     """
+    from ._output import staged_output
+
     n, s = _check_size(DEMO_EVENTS if n_events is None else n_events,
                        DEMO_SEED if seed is None else seed)
-    if int(files) < 1 or int(files) > n:
-        raise InputError(f"files must be between 1 and the number of events ({n}), got {files}")
+    if int(files) < 1:
+        raise InputError(f"files must be 1 or more, got {files}")
+    if int(files) > n:
+        raise InputError(f"{n} event{'s' if n != 1 else ''} cannot fill {files} files: ask for "
+                         f"at least {files} events (peaksift demo --events {files})")
     if int(row_group_events) < 1:
         raise InputError(f"row_group_events must be positive, got {row_group_events}")
     out = Path(outdir)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise InputError(f"cannot create output directory '{out}': {exc.strerror}; choose a "
-                         "writable directory") from None
     stem = "simulated" if weighted else "events"
+    names = [f"{stem}_{i:03d}.parquet" for i in range(files)]
+    with staged_output(out, "demo", share=share_folder, names=[*names, "truth.json"]) as stage:
+        assert stage is not None
+        totals, weight_sum = _write_events(stage.path, names, n, s, scenario, weighted,
+                                           int(row_group_events))
+        paths = [out / nm for nm in names]
+        truth = _truth(scenario, n, s, weighted, paths, row_group_events, totals, weight_sum)
+        _json_file(stage.path / "truth.json", truth)
+    return _demo_summary(out, paths, truth, n, s, weighted, scenario)
+
+
+def _json_file(path: Path, obj: Any) -> None:
+    from ._files import atomic_write
+
+    atomic_write(path, json.dumps(obj, indent=2, sort_keys=False) + "\n")
+
+
+def _write_events(folder: Path, names: list[str], n: int, s: int, scenario: Scenario,
+                  weighted: bool, row_group_events: int
+                  ) -> tuple[dict[str, dict[str, int]], dict[str, float]]:
+    """Generate the events block by block into ``folder``/``names`` (nearly equal,
+    contiguous parts); returns the per-process counts and sums of weights."""
+    files = len(names)
     bounds = [round(i * n / files) for i in range(files + 1)]
-    paths = [out / f"{stem}_{i:03d}.parquet" for i in range(files)]
-    tmps = [p.with_name(f".{p.name}.tmp{os.getpid()}") for p in paths]
+    paths = [folder / nm for nm in names]
     totals: dict[str, dict[str, int]] = {}
     weight_sum: dict[str, float] = {}
     writers: list[pq.ParquetWriter | None] = [None] * files
@@ -605,31 +628,23 @@ def write_demo(
                     chunk = pa.concat_tables(pending[f]).combine_chunks()
                     take = min(row_group_events, chunk.num_rows)
                     if writers[f] is None:
-                        writers[f] = _writer(tmps[f], chunk.schema)
+                        writers[f] = _writer(paths[f], chunk.schema)
                     writers[f].write_table(chunk.slice(0, take), row_group_size=take)
                     rest = chunk.slice(take)
                     pending[f] = [rest] if rest.num_rows else []
                     pending_n[f] = rest.num_rows
+    finally:
         for w_ in writers:
             if w_ is not None:
-                w_.close()
-        for t, p in zip(tmps, paths):
-            os.replace(t, p)
-        # files of an earlier, larger split would otherwise join this data set's glob
-        for old in out.glob(f"{stem}_[0-9][0-9][0-9].parquet"):
-            if old not in paths:
-                old.unlink()
-    except BaseException:
-        for w_ in writers:
-            if w_ is not None:
-                with contextlib.suppress(OSError, pa.ArrowException):
+                with contextlib.suppress(pa.ArrowException):
                     w_.close()
-        for t in tmps:
-            t.unlink(missing_ok=True)
-        raise
-    truth = _truth(scenario, n, s, weighted, paths, row_group_events, totals, weight_sum)
+    return totals, weight_sum
+
+
+def _demo_summary(out: Path, paths: list[Path], truth: dict[str, Any], n: int, s: int,
+                  weighted: bool, scenario: Scenario) -> dict[str, Any]:
+    files = len(paths)
     truth_path = out / "truth.json"
-    _atomic_json(truth_path, truth)
     size = sum(p.stat().st_size for p in paths)
     x = scenario.x
     summary = (

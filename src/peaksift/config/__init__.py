@@ -9,7 +9,9 @@ Sections (all optional except ``input`` and ``spectrum``)::
 
     [input]         files to read (paths and globs relative to the config file)
     [objects]       which collection(s) to pair, and cut expressions on them
-    [pairing]       charge requirement, which pair(s) each event contributes
+    [pairing]       charge requirement, which pair(s) each event contributes, mass
+                    hypotheses per leg
+    [identification]  dE/dx particle identification (Bethe curve, resolution, calibration)
     [spectrum]      the fit window and its binning
     [model]         signal and background shapes, binned or unbinned fit, parameters of
                     the free fit fixed, constrained or bounded, intervals
@@ -39,6 +41,7 @@ from .sections import (
     CalibrationConfig,
     Config,
     ExecutionConfig,
+    IdentificationConfig,
     InputConfig,
     LimitsConfig,
     ModelConfig,
@@ -58,6 +61,7 @@ __all__ = [
     "CalibrationConfig",
     "Config",
     "ExecutionConfig",
+    "IdentificationConfig",
     "InputConfig",
     "LimitsConfig",
     "ModelConfig",

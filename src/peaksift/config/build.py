@@ -15,17 +15,20 @@ if sys.version_info >= (3, 11):  # pragma: no cover - version switch
     import tomllib as _toml
 else:  # pragma: no cover
     import tomli as _toml
+from .plan import check_background_bins, check_bins, check_scan_plan
 from .schema import _REQUIRED, _TOP, SCHEMA
 from .sections import (
     BlindingConfig,
     CalibrationConfig,
     Config,
     ExecutionConfig,
+    IdentificationConfig,
     InputConfig,
     LimitsConfig,
     ModelConfig,
     ObjectsConfig,
     OutputConfig,
+    OwnMaterialConfig,
     PairingConfig,
     ResolutionConfig,
     ScanConfig,
@@ -164,6 +167,58 @@ def _check_cut(path: str, text: str, where: str) -> None:
         raise
 
 
+def _check_identification(ident: dict[str, Any], own: Mapping[str, Any], pr: dict[str, Any],
+                          ob: Mapping[str, Any], where: str) -> bool:
+    """The [identification] table and pairing.hypotheses / assignment; True when two
+    different hypotheses pair one collection as two legs."""
+    from ..cuts import compile_cut
+
+    hyps = tuple(pr["hypotheses"])
+    if len(hyps) > 2:
+        raise ConfigError(f"{where}: pairing.hypotheses takes one name (both legs) or two (one "
+                          f"per leg), got {len(hyps)}")
+    pr["hypotheses"] = hyps
+    two_legs = len(hyps) == 2 and hyps[0] != hyps[1] and not ob["second_collection"]
+    if pr["assignment"] != "both" and not two_legs:
+        raise ConfigError(f"{where}: pairing.assignment = {pr['assignment']!r} applies only "
+                          "with two different pairing.hypotheses on one collection")
+    if pr["assignment"] == "more_probable" and ident["resolution"] is None:
+        raise ConfigError(f"{where}: pairing.assignment = \"more_probable\" compares dE/dx: "
+                          "set identification.resolution (and the other [identification] keys)")
+    if ident["resolution"] is None:
+        for key in ("cut", "second_cut"):
+            if ob[key].strip() and compile_cut(ob[key]).hypotheses:
+                raise ConfigError(
+                    f"{where}: objects.{key} uses dedx_deviation(...) but identification is "
+                    "off; set identification.resolution (e.g. 0.07) in an [identification] "
+                    "table")
+        return two_legs
+    if ident["samples_field"] and ident["reference_samples"] is None:
+        raise ConfigError(f"{where}: identification.samples_field is set: give "
+                          "identification.reference_samples too (the samples at which "
+                          "identification.resolution holds)")
+    if ident["material"] == "own":
+        missing = [k for k in ("z_over_a", "mean_excitation_ev", "density") if own[k] is None]
+        if missing:
+            raise ConfigError(f"{where}: identification.material = \"own\" needs "
+                              f"identification.own_material.{', .'.join(missing)}")
+        if own["density_effect"] and len(own["density_effect"]) != 6:
+            raise ConfigError(f"{where}: identification.own_material.density_effect takes six "
+                              "numbers [C, X0, X1, a, k, delta0], got "
+                              f"{len(own['density_effect'])}")
+    elif any(v not in (None, (), []) for v in own.values()):
+        raise ConfigError(f"{where}: [identification.own_material] is set but "
+                          f"identification.material = {ident['material']!r}; set material = "
+                          "\"own\" to use it")
+    if ident["calibration_momentum"][0] <= 0:
+        raise ConfigError(f"{where}: identification.calibration_momentum must lie above 0 GeV")
+    try:
+        IdentificationConfig(**ident, own_material=OwnMaterialConfig(**own)).response()
+    except ConfigError as exc:
+        raise ConfigError(f"{where}: identification: {exc}") from None
+    return two_legs
+
+
 def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
            resolve_paths: bool = True) -> Config:
     where = _where(source)
@@ -200,6 +255,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                 f"window [{lo:g}, {hi:g}] into whole bins ({n:.4g}); change the width or window"
             )
         sp["bins"] = round(n)
+    check_bins(sp, where)
 
     given = [k for k in ("relative", "absolute", "table") if res[k] is not None]
     if len(given) != 1:
@@ -221,9 +277,15 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
             raise ConfigError(f"{where}: objects.{key} must name a collection, e.g. \"muon\"")
     for key in ("cut", "second_cut", "event_cut"):
         _check_cut(f"objects.{key}", ob[key], where)
-    if ob["second_cut"] and not ob["second_collection"]:
+    ident = vals["identification"]
+    own = _section("identification.own_material",
+                   (raw.get("identification") or {}).get("own_material"), where)
+    two_legs = _check_identification(ident, own, pr, ob, where)
+    if ob["second_cut"] and not ob["second_collection"] and not two_legs:
         raise ConfigError(f"{where}: objects.second_cut is set but objects.second_collection is "
-                          "empty; name the second collection or move the cut to objects.cut")
+                          "empty; name the second collection, give pairing.hypotheses two "
+                          "different names (second_cut then selects the second leg), or move "
+                          "the cut to objects.cut")
 
     sc = vals["scan"]
     if sc["step"] is not None and sc["points"] is not None:
@@ -236,6 +298,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                               f"[{lo:g}, {hi:g}]; the scan must stay inside the fit window")
     if not s1 > s0:
         raise ConfigError(f"{where}: scan.stop ({s1:g}) must be above scan.start ({s0:g})")
+    check_scan_plan(ResolutionConfig(**res).resolution, res, sp, sc, where)
 
     md = vals["model"]
     _check_shape("model.signal", md["signal"], where, "signal", md["signal_options"])
@@ -254,6 +317,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         if b0 < lo or b1 > hi:
             raise ConfigError(f"{where}: blinding.window [{b0:g}, {b1:g}] must lie inside "
                               f"spectrum.window [{lo:g}, {hi:g}]")
+    check_background_bins(md, sp, bl, where)
 
     cal = vals["calibration"]
     if cal["particle"]:
@@ -305,6 +369,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         spectrum=SpectrumConfig(**sp),
         objects=ObjectsConfig(**ob),
         pairing=PairingConfig(**pr),
+        identification=IdentificationConfig(**ident, own_material=OwnMaterialConfig(**own)),
         model=ModelConfig(**md, resolution=ResolutionConfig(**res)),
         scan=ScanConfig(**sc),
         significance=SignificanceConfig(**vals["significance"]),
@@ -359,6 +424,11 @@ def load_config(config: str | Path | Mapping[str, Any] | Config, *,
     except UnicodeDecodeError as exc:
         raise ConfigError(f"config {path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
     except _toml.TOMLDecodeError as exc:
-        raise ConfigError(f"config {path}: TOML syntax error: {' '.join(str(exc).split())}") from None
+        hint = ""
+        if data.startswith(b"\xef\xbb\xbf"):  # some Windows editors save a UTF-8 byte-order mark
+            hint = ("; the file starts with a UTF-8 byte-order mark (BOM), which TOML does "
+                    "not allow: save it as UTF-8 without BOM")
+        raise ConfigError(f"config {path}: TOML syntax error: {' '.join(str(exc).split())}"
+                          f"{hint}") from None
     return _build(raw, source=str(path), base_dir=path.resolve().parent,
                   sha256=hashlib.sha256(data).hexdigest())

@@ -11,6 +11,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from .._vocabulary import LIMIT_METHODS
+from ..energy_loss import HYPOTHESES, MATERIALS
 from ..resolution import RELATIVE_MAX, relative_problem
 
 _REQUIRED = object()
@@ -69,6 +70,66 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              lo=0.0, lo_open=True, nullable=True),
         _Key("min_delta_r", "float", 0.0,
              "Minimum Delta R between the two objects (0 for no requirement).", lo=0.0),
+        # --- mass hypotheses per leg (dE/dx identification: the [identification] table)
+        _Key("hypotheses", "strings", [],
+             "Mass hypothesis of both legs (`[\"kaon\"]`) or of each leg "
+             "(`[\"kaon\", \"pion\"]`): each leg gets that particle's mass in place of the "
+             "collection's. Two different hypotheses on one collection pair `objects.cut` "
+             "(first leg) with `objects.second_cut` (second leg). Empty: the collections' "
+             "own masses.", choices=HYPOTHESES),
+        _Key("assignment", "choice", "both",
+             "When both objects of an unlike pair pass both legs' selections (K pi and pi K): "
+             "keep both assignments, or the one whose dE/dx is more probable (smaller sum of "
+             "squared standardised deviations; needs [identification]).",
+             choices=("both", "more_probable")),
+    ),
+    # --- dE/dx particle identification (peaksift.energy_loss); used when `resolution` is set
+    "identification": (
+        _Key("resolution", "float", None,
+             "Relative dE/dx resolution sigma/<dE/dx> (at `reference_samples` samples when "
+             "`samples_field` is set). Setting it turns identification on: object cuts may "
+             "then use `dedx_deviation(kaon)` (pion, kaon, proton, electron, deuteron).",
+             lo=0.0, lo_open=True, hi=1.0, nullable=True),
+        _Key("material", "choice", "argon_co2_70_30",
+             "Medium of the Bethe curve (constants of the PDG atomic and nuclear properties "
+             "tables; `argon_co2_70_30` by Bragg additivity), or `own` with the constants in "
+             "[identification.own_material].", choices=(*MATERIALS, "own")),
+        _Key("field", "str", "dedx", "The track collection's field holding the measured dE/dx."),
+        _Key("scale", "float", None,
+             "Detector units per MeV cm^2/g (the Bethe curve's calibration); unset: fitted "
+             "from the data on `calibration_hypothesis` tracks in `calibration_momentum`.",
+             lo=0.0, lo_open=True, nullable=True),
+        _Key("calibration_hypothesis", "choice", "pion",
+             "Species whose tracks calibrate the scale (they must dominate the momentum band; "
+             "others are removed by a 3-sigma clip).", choices=HYPOTHESES),
+        _Key("calibration_momentum", "window", [0.4, 0.6],
+             "Momentum band `[low, high]` in GeV of the calibration tracks (near minimum "
+             "ionisation for pions)."),
+        _Key("fit_resolution", "bool", False,
+             "Also fit the resolution on the calibration tracks (and use the fitted value)."),
+        _Key("samples_field", "str", "",
+             "Field with each track's number of dE/dx samples; with it the resolution scales "
+             "as `(reference_samples / n) ** samples_exponent`."),
+        _Key("reference_samples", "float", None,
+             "Number of samples at which `resolution` holds.", lo=0.0, lo_open=True,
+             nullable=True),
+        _Key("samples_exponent", "float", 0.5,
+             "Exponent of the resolution's dependence on the number of samples.",
+             lo=0.0, hi=2.0),
+        _Key("band", "float", 3.0,
+             "Half-width in sigma of the selection band drawn around each pairing hypothesis "
+             "in the dE/dx figure (draw the band your cut uses).", lo=0.0, lo_open=True),
+    ),
+    "identification.own_material": (
+        _Key("z_over_a", "float", None, "<Z/A> in mol/g.", lo=0.0, lo_open=True,
+             nullable=True),
+        _Key("mean_excitation_ev", "float", None, "Mean excitation energy I in eV.",
+             lo=0.0, lo_open=True, nullable=True),
+        _Key("density", "float", None, "Density in g/cm^3.", lo=0.0, lo_open=True,
+             nullable=True),
+        _Key("density_effect", "floats", [],
+             "Sternheimer's density-effect constants `[C, X0, X1, a, k, delta0]` "
+             "(Sternheimer, Berger, Seltzer 1984); empty: no density effect."),
     ),
     "spectrum": (
         _Key("window", "window", _REQUIRED,

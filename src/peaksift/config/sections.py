@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
@@ -35,6 +36,56 @@ class PairingConfig:
     choose: str = "all"
     target_mass: float | None = None
     min_delta_r: float = 0.0
+    hypotheses: tuple[str, ...] = ()
+    assignment: str = "both"
+
+
+@dataclass(frozen=True)
+class OwnMaterialConfig:
+    z_over_a: float | None = None
+    mean_excitation_ev: float | None = None
+    density: float | None = None
+    density_effect: tuple[float, ...] = ()
+
+
+@dataclass(frozen=True)
+class IdentificationConfig:
+    """The ``[identification]`` keys: dE/dx identification (on when ``resolution`` is set)."""
+
+    resolution: float | None = None
+    material: str = "argon_co2_70_30"
+    field: str = "dedx"
+    scale: float | None = None
+    calibration_hypothesis: str = "pion"
+    calibration_momentum: tuple[float, float] = (0.4, 0.6)
+    fit_resolution: bool = False
+    samples_field: str = ""
+    reference_samples: float | None = None
+    samples_exponent: float = 0.5
+    band: float = 3.0
+    own_material: OwnMaterialConfig = dataclasses.field(default_factory=OwnMaterialConfig)
+
+    @property
+    def enabled(self) -> bool:
+        return self.resolution is not None
+
+    def response(self, scale: float | None = None, resolution: float | None = None) -> Any:
+        """The :class:`peaksift.energy_loss.DedxResponse` these keys describe (``scale``:
+        the fitted one when the config leaves it unset; 1 until then)."""
+        from ..energy_loss import DedxResponse, Material
+
+        mat: Any = self.material
+        if self.material == "own":
+            o = self.own_material
+            c = tuple(o.density_effect) or (0.0,) * 6
+            mat = Material("own", o.z_over_a, o.mean_excitation_ev, o.density, *c)
+        with_n = bool(self.samples_field)
+        return DedxResponse(
+            mat, scale=float(scale or self.scale or 1.0),
+            resolution=float(resolution or self.resolution),
+            field=self.field, samples_field=self.samples_field or None,
+            reference_samples=self.reference_samples if with_n else None,
+            samples_exponent=self.samples_exponent if with_n else None)
 
 
 @dataclass(frozen=True)
@@ -212,6 +263,7 @@ class Config:
     spectrum: SpectrumConfig
     objects: ObjectsConfig = field(default_factory=ObjectsConfig)
     pairing: PairingConfig = field(default_factory=PairingConfig)
+    identification: IdentificationConfig = field(default_factory=IdentificationConfig)
     model: ModelConfig = field(default_factory=ModelConfig)
     scan: ScanConfig = field(default_factory=ScanConfig)
     significance: SignificanceConfig = field(default_factory=SignificanceConfig)
@@ -229,20 +281,26 @@ class Config:
         """The validated configuration as plain JSON-ready data (echoed in results.json)."""
         out: dict[str, Any] = {}
         for sec in _TOP:
-            if sec == "model.resolution":
+            if sec in ("model.resolution", "identification.own_material"):
                 continue
             obj = self._section(sec)
             d = {f.name: _plain(getattr(obj, f.name)) for f in fields(obj)
-                 if f.name != "resolution"}
+                 if not (sec == "model" and f.name == "resolution")
+                 and not (sec == "identification" and f.name == "own_material")}
             if sec == "model":
                 r = self.model.resolution
                 d["resolution"] = {f.name: _plain(getattr(r, f.name)) for f in fields(r)}
+            if sec == "identification":
+                o = self.identification.own_material
+                d["own_material"] = {f.name: _plain(getattr(o, f.name)) for f in fields(o)}
             out[sec] = d
         return out
 
     def _section(self, name: str) -> Any:
         if name == "model.resolution":
             return self.model.resolution
+        if name == "identification.own_material":
+            return self.identification.own_material
         return getattr(self, name)
 
     def with_overrides(self, **changes: Any) -> Config:

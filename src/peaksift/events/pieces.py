@@ -12,8 +12,8 @@ import awkward as ak
 import numpy as np
 import pyarrow as pa
 
-from ..errors import DataWarning, InputError
 from .. import kinematics as _kin
+from ..errors import DataWarning, InputError
 from .files import _ENERGY_NAMES, _KIN_OUT, _MASS_NAMES, _RESERVED
 from .schema import _FileInfo, _kin_source_fields, _open
 

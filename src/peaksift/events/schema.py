@@ -206,6 +206,7 @@ def _select(
         if wanted is not None:
             ex = [f for f in ex if f in wanted or f"{c.name}.{f}" in wanted]
         extras[c.name] = ex
+    _check_weight_column(info)
     scal = list(info.scalars)
     if wanted is not None:
         scal = [s for s in scal if s in wanted or s == "weight"]
@@ -223,6 +224,28 @@ def _select(
                 f"field '{unknown[0]}' is not in the selected collections or event columns of "
                 f"'{path}'{hint}; available: {', '.join(avail) or 'none'}")
     return colls, extras, scal, others
+
+
+def _check_weight_column(info: _FileInfo) -> None:
+    """A ``weight`` column must hold one number per event: a list, a struct or a string
+    would otherwise be left out of the event weights without a word (CLI) or refused
+    (API); both paths read through here, so both refuse it the same way."""
+    if "weight" in info.scalars:
+        t = info.scalars["weight"]
+        if pa.types.is_floating(t) or pa.types.is_integer(t):
+            return
+    elif "weight" in info.others:
+        c = info.others["weight"]
+        t = next(iter(c.fields.values())) if c.layout == "plain" else None
+        t = pa.list_(t) if t is not None else "a jagged collection"
+    elif "weight" in info.collections:
+        t = "a collection of objects"
+    else:
+        return
+    raise InputError(
+        f"column 'weight' in '{info.path}' has type {t}, not one number per event; peaksift "
+        "reads 'weight' as the per-event weight, so store it as float64 (one value per row) "
+        "or rename the column")
 
 
 def _extras_all(c: _Coll) -> list[str]:

@@ -72,6 +72,9 @@ class Selection:
         candidates whose mass lies in the histogram range.
     unit : str
         Unit of the mass axis (default ``"GeV"``).
+    hypotheses, identification, assignment
+        Mass hypotheses per leg, the dE/dx response and the assignment rule, passed to
+        :func:`peaksift.pair` unchanged.
     """
 
     first: str
@@ -92,6 +95,9 @@ class Selection:
     pt_edges: tuple[float, ...] | None = None
     rapidity_edges: tuple[float, ...] | None = None
     unit: str = "GeV"
+    hypotheses: tuple[str, ...] | None = None
+    identification: Any = None
+    assignment: str = "both"
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -248,7 +254,8 @@ def process_chunk(spec: Any, selection: Selection) -> ChunkOutput:
             cut=selection.cut, second_cut=selection.second_cut, event_cut=selection.event_cut,
             charge=selection.charge, choose=selection.choose,
             target_mass=selection.target_mass, min_delta_r=selection.min_delta_r,
-            event_offset=int(spec.first_event),
+            event_offset=int(spec.first_event), hypotheses=selection.hypotheses,
+            identification=selection.identification, assignment=selection.assignment,
         )
     for w in caught:
         if issubclass(w.category, DataWarning):

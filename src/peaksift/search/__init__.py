@@ -11,9 +11,10 @@ Which function
 * :func:`run_fit` -- one signal-plus-background fit started (or held) at a chosen mass, with
   its figure and JSON on request.
 
-Outputs are written into a temporary directory next to the target and renamed into place at
-the very end, so a failed or interrupted run leaves no partial outputs.  An existing target
-directory is replaced only when it holds a previous peaksift result (``results.json``).
+Outputs are written into a staging folder inside the output folder and moved into place at
+the very end, so a failed or interrupted run leaves no partial outputs; a folder holding
+files peaksift did not write is refused unless shared, and only the files peaksift wrote
+(listed in ``peaksift-manifest.json``) are ever replaced (see :mod:`peaksift._output`).
 
 Steps and where their numbers come from
 ---------------------------------------

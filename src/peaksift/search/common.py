@@ -153,10 +153,12 @@ def _scan_masses(cfg: Config) -> np.ndarray:
     return np.asarray(grid)
 
 
-def _selection(cfg: Config, lo: float, hi: float, nbins: int) -> Any:
+def _selection(cfg: Config, lo: float, hi: float, nbins: int,
+               identification: Any = None) -> Any:
     from ..execution import Selection
 
     ob, pr = cfg.objects, cfg.pairing
+    hyps = tuple(pr.hypotheses)
     return Selection(
         first=ob.collection,
         second=ob.second_collection or None,
@@ -170,12 +172,20 @@ def _selection(cfg: Config, lo: float, hi: float, nbins: int) -> Any:
         target_mass=pr.target_mass,
         min_delta_r=pr.min_delta_r or None,
         strict=cfg.input.strict,
+        hypotheses=(hyps * 2 if len(hyps) == 1 else hyps) or None,
+        identification=identification,
+        assignment=pr.assignment,
     )
 
 
-def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
-    """Run the read/select/pair map-reduce once over the union of the needed windows."""
+def _collect(cfg: Config, *, progress: bool, identification: Any = None
+             ) -> tuple[Any, float, float]:
+    """Run the read/select/pair map-reduce once over the union of the needed windows.
+
+    ``identification``: the :class:`~peaksift.search.identification.DedxOutcome` of the
+    calibration pass (run here when identification is on and none is given)."""
     from ..execution import collect
+    from .identification import dedx_identification
 
     lo, hi = cfg.spectrum.window
     ulo, uhi = lo, hi
@@ -188,8 +198,11 @@ def _collect(cfg: Config, *, progress: bool) -> tuple[Any, float, float]:
     nb = max(1, min(100_000, int(np.ceil((uhi - ulo) / width))))
     ex = cfg.execution
     try:
+        if identification is None and cfg.identification.enabled:
+            identification = dedx_identification(cfg, progress=progress)
+        response = identification.response if identification is not None else None
         col = collect(
-            cfg.input.files, _selection(cfg, ulo, uhi, nb),
+            cfg.input.files, _selection(cfg, ulo, uhi, nb, response),
             engine=ex.engine, workers=ex.workers, address=ex.address or None,
             chunk_events=ex.chunk_events, skip_bad_files=ex.skip_bad_files, progress=progress,
             start_method=ex.start_method,
@@ -283,6 +296,7 @@ def _blinding(cfg: Config, unblind: bool) -> dict[str, Any]:
 def _require_candidates(cfg: Config, col: Any, hist: Any) -> None:
     """Stop with a message saying why the fit window is empty: no events, or the selection."""
     lo, hi = cfg.spectrum.window
+    _require_finite_weights(cfg, col, hist)
     if hist.total() > 0:
         return
     if int(col.events_read) == 0:
@@ -292,7 +306,55 @@ def _require_candidates(cfg: Config, col: Any, hist: Any) -> None:
             f"{_where(cfg)}: input.files: {what} no events (0 events read); point "
             "input.files at files with events"
         )
+    _require_positive_weight(cfg, col, hist)
     raise FitError(
         f"no candidates in the fit window [{lo:g}, {hi:g}] GeV after the selection "
         f"({col.events_read} events read); loosen objects.cut or move spectrum.window"
     )
+
+
+def _require_positive_weight(cfg: Config, col: Any, hist: Any) -> None:
+    """Candidates in the window whose weights add up to zero or less: a weighting problem,
+    not a selection one, so it gets its own message."""
+    from ..histogram import in_range
+
+    lo, hi = cfg.spectrum.window
+    m = np.asarray(col.window_mass, dtype=float)
+    n = int(np.count_nonzero(in_range(m, lo, hi)))
+    if n == 0 or not cfg.input.weights:
+        return
+    total = float(hist.total())
+    raise InputError(
+        f"{_where(cfg)}: the {n} candidates in the fit window [{lo:g}, {hi:g}] GeV have a total "
+        f"weight of {total:.6g} ({'zero' if total == 0 else 'negative'}): the per-event "
+        "'weight' column cannot make a spectrum to fit; check the weights, or set "
+        "input.weights = false to count events")
+
+
+def _require_sidebands(cfg: Config, hist: Any) -> None:
+    """While blinded: the sidebands (``hist`` with the blinded bins emptied) must hold
+    candidates; otherwise the window is not empty, the blinding hides all of it."""
+    if hist.total() > 0:
+        return
+    lo, hi = cfg.spectrum.window
+    b0, b1 = cfg.blinding.window
+    raise InputError(
+        f"{_where(cfg)}: blinding.window [{b0:g}, {b1:g}] hides every candidate in the fit "
+        f"window [{lo:g}, {hi:g}] GeV: the sidebands outside it are empty, so the background "
+        "cannot be fitted; narrow blinding.window or widen spectrum.window")
+
+
+def _require_finite_weights(cfg: Config, col: Any, hist: Any) -> None:
+    """Weights so large that their sums (or sums of squares, the variances) overflow make
+    every fit meaningless: say so, with the largest weight, instead of a fit failure."""
+    sums = np.concatenate([np.asarray(hist.weight_sum, float),
+                           np.asarray(hist.weight_sq_sum, float)])
+    if np.all(np.isfinite(sums)):
+        return
+    w = np.asarray(col.window_weight, dtype=float)
+    big = float(np.max(np.abs(w))) if w.size else float("nan")
+    raise InputError(
+        f"{_where(cfg)}: the per-event weights overflow the spectrum's sums (largest |weight| "
+        f"in the window {big:.3g}; the sums of squared weights exceed the floating-point "
+        "range): rescale the 'weight' column (e.g. to weights near 1), or set "
+        "input.weights = false")

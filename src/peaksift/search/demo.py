@@ -85,11 +85,14 @@ def write_demo_config(outdir: str | os.PathLike[str]) -> Path | None:
     """Write ``search.toml`` for the demo data in ``outdir`` (read from its ``truth.json``).
 
     Returns the path, or None when ``outdir`` holds no demo truth file.  The config's output
-    directory is ``search_out`` inside ``outdir``.
+    directory is ``search_out`` inside ``outdir``.  Written under the output-folder contract
+    (:mod:`peaksift._output`) beside the demo's files: a ``search.toml`` peaksift did not
+    write is refused, never replaced.
     """
     import json
 
     from .._files import atomic_write
+    from .._output import staged_output
 
     out = Path(outdir)
     truth = out / "truth.json"
@@ -97,4 +100,8 @@ def write_demo_config(outdir: str | os.PathLike[str]) -> Path | None:
         return None
     files = json.loads(truth.read_text()).get("files") or ["*.parquet"]
     text = demo_config_text(files).replace('dir = "../demo_out"', 'dir = "search_out"')
-    return atomic_write(out / "search.toml", text)
+    # the demo itself already applied the folder rule; this only adds its config
+    with staged_output(out, "demo-config", share=True, names=("search.toml",)) as stage:
+        assert stage is not None
+        atomic_write(stage.path / "search.toml", text)
+    return out / "search.toml"

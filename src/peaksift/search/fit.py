@@ -14,7 +14,7 @@ from ..config import Config, load_config
 from ..errors import ConfigError, FitError
 from .common import _collect, _fill, _require_candidates, _shape, _where
 from .result import _plain
-from .staging import _apply_overrides
+from .staging import _apply_overrides, _staged
 
 FIT_FILES = ("fit.json", "fit.png")
 #: the mark in fit.json that says ``peaksift fit`` wrote it
@@ -121,6 +121,7 @@ def run_fit(
     engine: str | None = None,
     unblind: bool = False,
     progress: bool = False,
+    share_folder: bool = False,
 ) -> Any:
     """One signal-plus-background fit of the configured spectrum, started at ``mass`` GeV.
 
@@ -135,9 +136,9 @@ def run_fit(
     ----------
     out : path, optional
         Directory for ``fit.json`` (:meth:`FitResult.to_dict` plus a ``run`` entry: config,
-        start, held mass, settings) and ``fit.png`` (the fit figure), each written
-        atomically.  The directory must be new, empty, or hold a previous ``peaksift fit``
-        output; nothing else in it is touched.
+        start, held mass, settings) and ``fit.png`` (the fit figure), under the output-folder
+        contract (:mod:`peaksift._output`): the folder must be new, empty, or hold only
+        files peaksift wrote, unless ``share_folder``; nothing else in it is touched.
 
     Returns
     -------
@@ -167,21 +168,20 @@ def run_fit(
     settings = _fit_settings(cfg, sig, mass, hold_mass=hold_mass)
     start = _fit_start(cfg, sig, mass, settings)
     target = None if out is None else Path(out).expanduser().resolve()
-    if target is not None:
-        _check_fit_dir(target)
-    col, _, _ = _collect(cfg, progress=progress)
-    hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
-    _require_candidates(cfg, col, hist)
-    binned, data = _fit_data(cfg, col, hist)
-    fr = fit(data, sig, bkg, (lo, hi), binned=binned, start=start, **settings.arguments())
-    if not hold_mass:
-        fr = _note_lower_minimum(fr, fit, data, sig, bkg, (lo, hi), binned, start, settings)
-    fr = _note_tie_drift(fr, cfg, settings)
-    if target is not None:
-        _write_fit(target, fr, {
-            "written_by": _FIT_MARK, "config": cfg.source, "config_sha256": cfg.sha256,
-            "mass_start": mass, "mass_held": bool(hold_mass),
-            "settings": settings.echo(start)})
+    with _staged(target, "fit", share_folder) as stage:
+        col, _, _ = _collect(cfg, progress=progress)
+        hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
+        _require_candidates(cfg, col, hist)
+        binned, data = _fit_data(cfg, col, hist)
+        fr = fit(data, sig, bkg, (lo, hi), binned=binned, start=start, **settings.arguments())
+        if not hold_mass:
+            fr = _note_lower_minimum(fr, fit, data, sig, bkg, (lo, hi), binned, start, settings)
+        fr = _note_tie_drift(fr, cfg, settings)
+        if stage is not None:
+            _write_fit(stage.path, fr, {
+                "written_by": _FIT_MARK, "config": cfg.source, "config_sha256": cfg.sha256,
+                "mass_start": mass, "mass_held": bool(hold_mass),
+                "settings": settings.echo(start)})
     return fr
 
 
@@ -229,39 +229,6 @@ def _note_tie_drift(fr: Any, cfg: Config, settings: _FitSettings) -> Any:
                           f"{tie['at_mass']:.6g} {fr.unit} ({tie['sigma']:.4g} {fr.unit}); at the "
                           f"fitted mass {fr.peak_mass:.6g} {fr.unit} it is {there:.4g} {fr.unit}: "
                           "start the fit there (peaksift fit --mass) for a consistent sigma")
-
-
-def _check_fit_dir(target: Path) -> None:
-    """``run_fit``'s output directory may be new, empty, or hold only a previous
-    ``peaksift fit`` output (its ``fit.json`` carries the mark); anything else is refused."""
-    import json
-
-    if target.exists() and not target.is_dir():
-        raise ConfigError(f"output path {str(target)!r} exists and is not a directory; "
-                          "choose another --out")
-    if not target.is_dir():
-        return
-    # a temporary file of an interrupted atomic write (".fit.json.XXXX") is ours too
-    names = {p.name for p in target.iterdir()
-             if not any(p.name.startswith(f".{f}.") for f in FIT_FILES)}
-    foreign = sorted(n for n in names if n not in FIT_FILES)
-    if foreign:
-        raise ConfigError(
-            f"output directory {str(target)!r} holds files peaksift fit did not write "
-            f"({', '.join(foreign[:3])}{', ...' if len(foreign) > 3 else ''}); choose an empty "
-            "or new directory with --out (nothing was overwritten)")
-    if not names:
-        return
-    try:
-        ours = json.loads((target / "fit.json").read_text()).get("run", {}).get(
-            "written_by") == _FIT_MARK
-    except (OSError, ValueError, AttributeError):
-        ours = False
-    if not ours:
-        raise ConfigError(
-            f"output directory {str(target)!r} holds {', '.join(sorted(names))} not written by "
-            "peaksift fit; choose an empty or new directory with --out (nothing was "
-            "overwritten)")
 
 
 def _write_fit(target: Path, fr: Any, run: Mapping[str, Any]) -> dict[str, Path]:

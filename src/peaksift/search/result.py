@@ -11,6 +11,7 @@ import numpy as np
 
 from ..config import Config
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
+from .doubts import doubts
 
 
 # ----------------------------------------------------------------------------- results
@@ -65,6 +66,8 @@ class SearchResult:
         With ``[systematics]``: the nuisances, the background choice and order tests, the
         spurious signal, the envelope, the pulls, and the best hypothesis with and without
         systematics (``best`` is then the one with them); None otherwise.
+    identification : dict or None
+        The dE/dx identification the pairing used (response, calibration fit), when on.
     """
 
     config: Config
@@ -83,6 +86,7 @@ class SearchResult:
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
     systematics: Mapping[str, Any] | None = None
+    identification: Mapping[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
@@ -120,10 +124,13 @@ class SearchResult:
             "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
             "known_matches": [k.to_dict() for k in self.known_matches],
             "calibration": _plain(dict(self.calibration)) if self.calibration else None,
+            "identification": _plain(dict(self.identification))
+            if self.identification else None,
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
             "systematics": _plain(dict(self.systematics)) if self.systematics else None,
         }
+        out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}

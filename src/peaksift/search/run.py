@@ -17,6 +17,7 @@ from .common import (
     _collect,
     _fill,
     _require_candidates,
+    _require_sidebands,
     _save_spectrum,
     _scan_masses,
     _scan_signal_name,
@@ -27,6 +28,7 @@ from .common import (
     _where,
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
+from .identification import dedx_identification
 from .result import SearchResult
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
 
@@ -40,6 +42,7 @@ def run_search(
     seed: int | None = None,
     engine: str | None = None,
     progress: bool = False,
+    share_folder: bool = False,
 ) -> SearchResult:
     """Run the whole search described by a configuration.
 
@@ -57,6 +60,10 @@ def run_search(
         Override ``significance.toys``, ``significance.seed`` and ``execution.engine``.
     progress : bool
         Show progress bars (reading; toys).
+    share_folder : bool
+        Write into an output folder that holds files peaksift did not write (they are never
+        touched; a file of the same name as one of ours is refused).  Without it such a
+        folder is refused before the run.
 
     Returns
     -------
@@ -72,7 +79,7 @@ def run_search(
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
-    with _staged(target) as stage:
+    with _staged(target, "search", share_folder) as stage:
         res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
                       stage=stage, target=target)
     return res
@@ -86,7 +93,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     from ..resonances import match_known, pair_charge
     from ..stats.scan import scan
 
-    col, _, _ = _collect(cfg, progress=progress)
+    ident = dedx_identification(cfg, progress=progress)
+    col, _, _ = _collect(cfg, progress=progress, identification=ident)
     lo, hi = cfg.spectrum.window
     hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)
     _require_candidates(cfg, col, hist)
@@ -94,6 +102,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     blind_window = tuple(cfg.blinding.window) if blind["active"] else None
     if blind_window is not None:  # nothing downstream sees the blinded bins' contents
         hist = _blinded_copy(hist, blind_window)
+        _require_sidebands(cfg, hist)
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -167,6 +176,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
         blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
         systematics=syst,
+        identification=ident.to_dict() if ident is not None else None,
     )
     if stage is None:
         prov["finished"] = _utc()
@@ -178,6 +188,10 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
                                    log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    if ident is not None:
+        figs["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
+                                            hypotheses=tuple(cfg.pairing.hypotheses),
+                                            band=cfg.identification.band)
     _save_spectrum(hist, stage.path / "spectrum.json", blind)
     prov["finished"] = _utc()
     final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
@@ -289,6 +303,8 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "background_shape": c.background,
         "width_fixed_to_table": bool(fixed),
         "valid": bool(d.get("valid")),
+        "problems": list(d.get("problems") or []),
+        "gof": d.get("gof"),
         "fitted_mass": {"value": m, "error": e},
         "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),

@@ -20,17 +20,19 @@ def run_spectrum(
     out: str | os.PathLike[str] | bool | None = None,
     engine: str | None = None,
     progress: bool = False,
+    share_folder: bool = False,
 ) -> SpectrumResult:
     """Only the selected spectrum: ``spectrum.json`` (MassHistogram format) and its figure.
 
     With ``blinding.enabled`` the bins overlapping ``blinding.window`` are emptied in the
     histogram returned and saved (marked in the file's ``blinded`` entry) and hidden in the
     figure, and the candidates' pT/rapidity figure is not written (it includes them).
+    ``share_folder`` as for :func:`~peaksift.search.run_search`.
     """
     cfg = _apply_overrides(load_config(config), toys=None, seed=None, engine=engine)
     _check_inputs(cfg)
     target = _target(cfg, out)
-    with _staged(target) as stage:
+    with _staged(target, "spectrum", share_folder) as stage:
         col, _, _ = _collect(cfg, progress=progress)
         lo, hi = cfg.spectrum.window
         hist = _fill(col, cfg, lo, hi, cfg.spectrum.bins)

@@ -1,71 +1,34 @@
-"""Where a run writes: the staging folder renamed into place at the end, the target, input checks."""
+"""Where a run writes (the output-folder contract of :mod:`peaksift._output`), the target,
+input checks."""
 
 from __future__ import annotations
 
 import contextlib
 import os
-import shutil
-import uuid
-from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+from .._output import OutputFolder, staged_output
 from ..config import Config
-from ..errors import ConfigError, PeaksiftError
+from ..errors import PeaksiftError
+
+#: the command's own staging folder (see :mod:`peaksift._output` for the contract)
+_Staging = OutputFolder
+
+#: files each command writes, known before the run (a clash with a file peaksift did not
+#: write is refused before any work); a name ending in "/" is a folder of ours
+OUTPUT_NAMES = {
+    "search": ("results.json", "report.md", "report.html", "spectrum.json", "figures/"),
+    "spectrum": ("spectrum.json", "figures/"),
+    "fit": ("fit.json", "fit.png"),
+}
 
 
-class _Staging:
-    """A temporary directory next to ``target``, renamed into place by :meth:`commit`."""
-
-    def __init__(self, target: Path) -> None:
-        self.target = target
-        if target.exists() and not target.is_dir():
-            raise ConfigError(f"output path {str(target)!r} exists and is not a directory; "
-                              "choose another --out")
-        if target.is_dir() and any(target.iterdir()) and not (target / "results.json").exists() \
-                and not (target / "spectrum.json").exists():
-            raise ConfigError(
-                f"output directory {str(target)!r} exists and does not hold a previous peaksift "
-                "result; choose an empty or new directory with --out (nothing was overwritten)"
-            )
-        self.created: list[Path] = []
-        p = target.parent
-        while not p.exists():
-            self.created.append(p)
-            p = p.parent
-        target.parent.mkdir(parents=True, exist_ok=True)
-        self.path = target.parent / f".{target.name}.partial-{uuid.uuid4().hex[:8]}"
-        self.path.mkdir()
-
-    def commit(self) -> Path:
-        old = None
-        if self.target.exists():
-            old = self.target.parent / f".{self.target.name}.old-{uuid.uuid4().hex[:8]}"
-            os.replace(self.target, old)
-        os.replace(self.path, self.target)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-        return self.target
-
-    def discard(self) -> None:
-        shutil.rmtree(self.path, ignore_errors=True)
-        for p in self.created:  # parents this run made, innermost first
-            with contextlib.suppress(OSError):
-                p.rmdir()
-
-
-@contextlib.contextmanager
-def _staged(target: Path | None) -> Iterator[_Staging | None]:
-    if target is None:
-        yield None
-        return
-    st = _Staging(target)
-    try:
-        yield st
-    except BaseException:
-        st.discard()
-        raise
-    st.commit()
+def _staged(target: Path | None, command: str = "search", share: bool = False
+            ) -> contextlib.AbstractContextManager[OutputFolder | None]:
+    """The output folder of one command's run: staged, committed at the end, discarded on
+    any failure or interrupt; ``share`` allows files peaksift did not write beside ours."""
+    return staged_output(target, command, share=share, names=OUTPUT_NAMES.get(command, ()))
 
 
 def _target(cfg: Config, out: str | os.PathLike[str] | bool | None) -> Path | None:

@@ -45,6 +45,7 @@ from ..likelihood import (
 )
 from ..resolution import check_resolved, resolution_from
 from . import lee
+from .bounds import check_fit_bins, check_plan, check_widths
 from .shape_profile import profile_with_nuisances, run_nuisance_toy_batch, with_nuisances
 from .significance import p_from_q0, z_from_q0
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background, profile_signal, run_toys
@@ -92,6 +93,7 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
             nb = int(np.clip(math.ceil((hi - lo) / (0.25 * min_sigma())), 50, 2000))
         else:
             nb = int(bins)
+            check_plan(2, nb)  # before the histogram is allocated
         hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
     weight_sum = np.asarray(hist.weight_sum, float)
     edges = np.asarray(hist.edges, float)
@@ -290,6 +292,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
         npts = int(masses)
         if npts < 2:
             raise FitError(f"scan needs at least 2 mass points, got {masses!r}")
+        check_plan(npts, spec.edges.size - 1)
         pad = 0.05 * (hi - lo)
         m_arr = np.linspace(lo + pad, hi - pad, npts)
     if m_arr.ndim != 1 or m_arr.size == 0 or not np.all(np.isfinite(m_arr)):
@@ -298,11 +301,17 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
     if outside.any():
         raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
                        f"({lo:g}, {hi:g}); scan inside the window")
+    check_plan(m_arr.size, spec.edges.size - 1)
     sigma = check_resolved(resolution, m_arr, spec.edges)
+    gamma = natural_width(m_arr) if callable(natural_width) else natural_width
+    check_widths((lo, hi), float(np.max(sigma)),
+                 None if gamma is None else float(np.max(gamma)))
     blinded = blinded_bins(spec.edges, blind)
     used = np.flatnonzero(~blinded)
-    if used.size < bkg.parameters.__len__() + 3:
-        raise FitError("scan: too few bins outside the blinded range to fit the background")
+    try:
+        check_fit_bins(used.size, len(bkg.parameters), n_blinded=int(blinded.sum()))
+    except FitError as exc:
+        raise FitError(f"scan: {exc}") from None
     blinded_mass = np.zeros(m_arr.size, bool)
     if blind is not None:
         blinded_mass = (m_arr >= float(blind[0])) & (m_arr <= float(blind[1]))

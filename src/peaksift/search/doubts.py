@@ -1,0 +1,113 @@
+"""Warnings where the search's numbers are doubtful: :func:`doubts` of a results dictionary.
+
+A number printed without its caveat reads as a good number.  These checks look at the
+finished results (the content of ``results.json``) and list what a reader must know before
+quoting them; the list is the ``warnings`` entry of results.json, a block of the terminal
+summary and a section at the top of the report.
+
+* ``fit``             -- the signal-plus-background fit is invalid (its problems quoted).
+* ``calibration``     -- the calibration fit is invalid: its mass shift is not a measurement.
+* ``goodness_of_fit`` -- the fit's (or the calibration fit's) goodness-of-fit p-value is
+  below :data:`GOF_P_MIN`: the model does not describe the data (e.g. a known peak inside
+  the search window), so its significance and limits inherit a wrong model.
+* ``limits``          -- observed limits outside the expected +-2 sigma band at more than
+  :data:`BAND_OUTSIDE_MAX_FRACTION` of the masses: a background model that misses the data
+  (a genuine signal lifts only the masses near it).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubts"]
+
+#: a goodness-of-fit p-value below this flags the fit (0.1%: about 1 in 1000 fits of a
+#: right model; our choice)
+GOF_P_MIN = 1e-3
+#: more than this fraction of limit masses outside the expected +-2 sigma band flags the
+#: limits (a right model puts about 5% there; a real signal a few masses near it)
+BAND_OUTSIDE_MAX_FRACTION = 0.2
+
+
+def _num(x: Any) -> float | None:
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def _gof_p(fit: Mapping[str, Any] | None) -> float | None:
+    gof = fit.get("gof") if isinstance(fit, Mapping) else None
+    return _num(gof.get("p_value")) if isinstance(gof, Mapping) else None
+
+
+def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
+    """The warnings of a search's results dictionary, each ``{"topic", "message"}``.
+
+    Parameters
+    ----------
+    results : mapping
+        :meth:`SearchResult.to_dict <peaksift.search.SearchResult.to_dict>` (results.json);
+        missing sections are skipped (a blinded search has no fit).
+    """
+    out: list[dict[str, str]] = []
+
+    def add(topic: str, message: str) -> None:
+        out.append({"topic": topic, "message": message})
+
+    fit = results.get("fit")
+    blinded = bool((results.get("blinding") or {}).get("active"))
+    if isinstance(fit, Mapping) and not blinded and "valid" in fit and not fit.get("valid"):
+        probs = "; ".join(str(p) for p in fit.get("problems") or []) or "no reason recorded"
+        add("fit", f"the signal-plus-background fit is invalid ({probs}): its mass, width and "
+                   "yield are not measurements")
+    p = _gof_p(fit)
+    if p is not None and p < GOF_P_MIN:
+        add("goodness_of_fit",
+            f"the fit at the best mass has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
+            "signal-plus-background model does not describe the spectrum (a known peak in the "
+            "window, or the wrong background shape); the significance and limits rest on it")
+
+    cal = results.get("calibration")
+    if isinstance(cal, Mapping) and cal:
+        name = cal.get("particle") or "calibration peak"
+        if "valid" in cal and not cal.get("valid"):
+            probs = "; ".join(str(x) for x in cal.get("problems") or [])
+            add("calibration", f"the calibration fit of {name} is invalid"
+                               f"{' (' + probs + ')' if probs else ''}: its fitted mass and "
+                               "mass-scale shift are not measurements")
+        pc = _gof_p(cal)
+        if pc is not None and pc < GOF_P_MIN:
+            add("goodness_of_fit",
+                f"the calibration fit of {name} has goodness-of-fit p = {pc:.3g} (< "
+                f"{GOF_P_MIN:g}): its shape does not describe the peak, so the mass-scale "
+                "shift is doubtful")
+
+    band = _outside_band(results.get("limits"))
+    if band is not None:
+        n_out, n_all, below, above = band
+        if n_all and n_out / n_all > BAND_OUTSIDE_MAX_FRACTION:
+            add("limits", f"observed limits lie outside the expected +-2 sigma band at {n_out} of "
+                          f"{n_all} masses ({below} below, {above} above; more than "
+                          f"{BAND_OUTSIDE_MAX_FRACTION:.0%}): the background model does not "
+                          "follow the data, so the limits are doubtful")
+    return out
+
+
+def _outside_band(lim: Any) -> tuple[int, int, int, int] | None:
+    """(outside, compared, below, above) over masses with an observed limit and a band."""
+    if not isinstance(lim, Mapping):
+        return None
+    obs, lo, hi = (lim.get(k) or [] for k in ("observed", "expected_minus2", "expected_plus2"))
+    below = above = n = 0
+    for o, a, b in zip(obs, lo, hi):
+        o, a, b = _num(o), _num(a), _num(b)
+        if o is None or a is None or b is None:
+            continue  # blinded or not computed
+        n += 1
+        below += o < a
+        above += o > b
+    return below + above, n, below, above
