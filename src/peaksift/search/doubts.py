@@ -13,6 +13,8 @@ summary and a section at the top of the report.
 * ``limits``          -- observed limits outside the expected +-2 sigma band at more than
   :data:`BAND_OUTSIDE_MAX_FRACTION` of the masses: a background model that misses the data
   (a genuine signal lifts only the masses near it).
+* ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
+  a kept order whose next order still improved the fit (the family needs higher orders).
 """
 
 from __future__ import annotations
@@ -85,6 +87,17 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                 f"the calibration fit of {name} has goodness-of-fit p = {pc:.3g} (< "
                 f"{GOF_P_MIN:g}): its shape does not describe the peak, so the mass-scale "
                 "shift is doubtful")
+
+    sy = results.get("systematics")
+    if isinstance(sy, Mapping):
+        for note in sy.get("notes") or []:
+            if "spurious" in str(note):
+                add("background_model", str(note))
+        for c in (sy.get("background_choice") or {}).get("candidates") or []:
+            if c.get("chosen") and "still improved" in str(c.get("note") or ""):
+                add("background_model", f"{c.get('label')}: the highest order tried still "
+                                        "improved the fit significantly; allow higher orders "
+                                        "in systematics.background_families")
 
     band = _outside_band(results.get("limits"))
     if band is not None:
