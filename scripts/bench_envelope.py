@@ -58,7 +58,8 @@ def _iminuit_toy(n, models, labels, k, masses, sigma):
             nu = x[0] * bkg(x[1:])
             return 1e30 if np.any(nu <= 0) else float(np.sum(nu - n * np.log(nu)))
 
-        m0 = Minuit(nll0, n.sum(), *model.theta)
+        names0 = ["b"] + [f"t{i}" for i in range(npar)]
+        m0 = Minuit(nll0, n.sum(), *model.theta, name=names0)
         m0.errordef = 0.5
         m0.migrad()
         base0.append(2 * m0.fval + k[c])
@@ -72,7 +73,7 @@ def _iminuit_toy(n, models, labels, k, masses, sigma):
                 return (float(np.sum(nu - n * np.log(nu))) + 0.5 * ((km - 1) / 0.01) ** 2
                         + 0.5 * ((kr - 1) / 0.1) ** 2)
 
-            m1 = Minuit(nll1, 1.0, 1.0, 1.0, *m0.values)
+            m1 = Minuit(nll1, 1.0, 1.0, 1.0, *m0.values, name=["s", "km", "kr", *names0])
             m1.errordef = 0.5
             m1.limits[0] = (0, None)
             m1.limits[1] = (0.94, 1.06)
