@@ -1,6 +1,7 @@
 """Regenerate the committed demo data set (demo_data/) and check what a search would see.
 
     python scripts/make_demo_data.py             # rewrite demo_data/ (same seed -> same arrays)
+                                                 # and the signal samples in demo_data/signal/
     python scripts/make_demo_data.py --check     # also fit the intended selection's spectrum
     python scripts/make_demo_data.py --outdir /tmp/d --events 100000 --seed 7 --check
 
@@ -120,6 +121,11 @@ def main(argv: list[str] | None = None) -> int:
                                weighted=args.weighted)
     print(info["summary"])
     print("content digest (arrays):", _content_digest(info["files"]))
+    if not args.weighted:  # the simulated signal samples of the combined demo search
+        sig = simulate.write_signal_samples(Path(args.outdir) / "signal", seed=info["truth"]["seed"])
+        for s in sig["samples"]:
+            print(f"signal sample {s['file']}: efficiency {s['efficiency']:.3f}, "
+                  f"resolution (68%) {s['resolution_68_gev']:.2f} GeV")
     if not args.no_tracks and not args.weighted:
         tinfo = simulate_tracks.write_track_demo(Path(args.outdir) / "tracks")
         print(tinfo["summary"])

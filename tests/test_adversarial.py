@@ -481,13 +481,19 @@ def test_sigterm_is_handled_like_ctrl_c(data, tmp_path):
     env = {**os.environ, "PYTHONPATH": str(SRC)}
     proc = subprocess.Popen([sys.executable, "-m", "peaksift.cli", "search", str(cfg), "--out",
                              str(out), "--quiet"], env=env, stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline and not list(out.glob(".peaksift-staging-*")):
-        time.sleep(0.05)
-    assert list(out.glob(".peaksift-staging-*")), "the run never started writing"
-    time.sleep(1.0)  # into the run
-    proc.send_signal(signal.SIGTERM)
-    _, err = proc.communicate(timeout=60)
+    try:
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline and not list(out.glob(".peaksift-staging-*")):
+            time.sleep(0.05)
+        assert list(out.glob(".peaksift-staging-*")), "the run never started writing"
+        time.sleep(1.0)  # into the run
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        # a failed wait must not leave a million-toy search running after the test
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()
     assert proc.returncode == 143, err
     lines = [x for x in err.splitlines() if x.strip()]
     assert lines == [("peaksift: terminated (SIGTERM); the run's unfinished outputs were "

@@ -10,6 +10,8 @@ Where to start
 * ``fit``                                           -- extended signal-plus-background fit.
 * ``Resolution``                                    -- detector mass resolution sigma(m).
 * ``scan``                                          -- local significance vs mass hypothesis.
+* ``signal_model``                                  -- shape and efficiency from simulated samples.
+* ``combine`` / ``combined_limits``                 -- several channels, one sigma x B.
 * ``run_search``                                    -- the whole search from a TOML config.
 
 Public names are imported lazily so ``import peaksift`` and the command line stay quick.
@@ -48,6 +50,14 @@ _EXPORTS: dict[str, str] = {
     "ScanResult": "peaksift.stats.scan",
     "LimitResult": "peaksift.stats.limits",
     "upper_limits": "peaksift.stats.limits",
+    "signal_model": "peaksift.stats.signal_model",
+    "SignalModel": "peaksift.stats.signal_model",
+    "SignalSample": "peaksift.stats.signal_model",
+    "Channel": "peaksift.stats.channels",
+    "Combination": "peaksift.stats.channels",
+    "CombinedLimits": "peaksift.stats.channels",
+    "combine": "peaksift.stats.channels",
+    "combined_limits": "peaksift.stats.channels",
     "run_search": "peaksift.search.run",
     "SearchResult": "peaksift.search.result",
     "load_config": "peaksift.config.build",
@@ -61,6 +71,9 @@ _SUBMODULES = {
 
 __all__ = [
     "Candidates",
+    "Channel",
+    "Combination",
+    "CombinedLimits",
     "ConfigError",
     "CutError",
     "ExecutionError",
@@ -74,7 +87,11 @@ __all__ = [
     "Resolution",
     "ScanResult",
     "SearchResult",
+    "SignalModel",
+    "SignalSample",
     "__version__",
+    "combine",
+    "combined_limits",
     "compile_cut",
     "cuts",
     "describe",
@@ -87,6 +104,7 @@ __all__ = [
     "run_search",
     "scan",
     "shapes",
+    "signal_model",
     "stats",
     "upper_limits",
 ]

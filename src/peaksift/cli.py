@@ -53,7 +53,21 @@ def _row(label: str, value: str) -> str:
 
 def _summary(result: object) -> str:
     """The short table printed at the end of ``peaksift search``."""
-    return _summary_text(result.to_dict())  # type: ignore[attr-defined]
+    d = result.to_dict()  # type: ignore[attr-defined]
+    if d.get("kind") == "combination":
+        from .search.combination_report import combination_summary_text
+
+        return combination_summary_text(d)
+    text = _summary_text(d)
+    sm = d.get("signal_model")
+    if sm:  # the scan's signal from simulated samples: say so, and flag a doubtful model
+        state = (f"doubtful: {len(sm['notes'])} notes in results.json signal_model.notes"
+                 if sm.get("doubtful") else
+                 f"closure max {sm.get('max_closure_deviation') or 0:.2f} errors")
+        head, _, last = text.rpartition("\n")  # before the closing caution line
+        text = (f"{head}\n  signal model               {sm['shape']} from samples "
+                f"({state})\n{last}")
+    return text
 
 
 def _summary_text(d: Mapping[str, Any]) -> str:

@@ -32,6 +32,7 @@ from .sections import (
     PairingConfig,
     ResolutionConfig,
     ScanConfig,
+    SignalModelConfig,
     SignificanceConfig,
     SpectrumConfig,
     SystematicsConfig,
@@ -165,6 +166,34 @@ def _check_cut(path: str, text: str, where: str) -> None:
         if isinstance(exc, CutError):
             raise CutError(f"{where}: {path}: {' '.join(str(exc).split())}") from None
         raise
+
+
+def _check_signal_model(sm: dict[str, Any], res: Mapping[str, Any], base_dir: Path | None,
+                        where: str) -> None:
+    """``[signal_model]``: one mass and one generated count per file, a signal shape, and
+    samples or a saved model but not both; paths resolved against the config's directory."""
+    if base_dir is not None:
+        sm["files"] = tuple(str(p if p.is_absolute() else base_dir / p)
+                            for p in (Path(f).expanduser() for f in sm["files"]))
+        if sm["saved"]:
+            p = Path(sm["saved"]).expanduser()
+            sm["saved"] = str(p if p.is_absolute() else base_dir / p)
+    if sm["files"] and sm["saved"]:
+        raise ConfigError(f"{where}: give signal_model.files (samples) or signal_model.saved "
+                          "(a previous results.json), not both")
+    n = len(sm["files"])
+    if n and (len(sm["masses"]) != n or len(sm["generated"]) != n):
+        raise ConfigError(
+            f"{where}: signal_model.files has {n} samples but masses has "
+            f"{len(sm['masses'])} and generated {len(sm['generated'])}; give one generated "
+            "mass and one number of generated events per file")
+    if n and any(g <= 0 for g in sm["generated"]):
+        raise ConfigError(f"{where}: signal_model.generated must be > 0 for every sample")
+    if n:
+        _check_shape("signal_model.shape", sm["shape"], where, "signal")
+    if (n or sm["saved"]) and res.get("natural_width"):
+        raise ConfigError(f"{where}: model.resolution.natural_width cannot be combined with "
+                          "[signal_model] (the samples give the whole peak shape)")
 
 
 def _check_identification(ident: dict[str, Any], own: Mapping[str, Any], pr: dict[str, Any],
@@ -347,6 +376,8 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                               f"[{s0:g}, {s1:g}] GeV (spectrum.window, or scan.start / "
                               "scan.stop); choose masses inside the scan range")
 
+    _check_signal_model(vals["signal_model"], res, base_dir if resolve_paths else None, where)
+
     sy = vals["systematics"]
     if sy["background_families"]:
         from ..stats.background_choice import candidate_shapes
@@ -377,6 +408,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         limits=LimitsConfig(**vals["limits"]),
         systematics=SystematicsConfig(**sy),
         calibration=CalibrationConfig(**cal),
+        signal_model=SignalModelConfig(**vals["signal_model"]),
         execution=ExecutionConfig(**ex),
         output=OutputConfig(**vals["output"]),
         source=source,

@@ -315,6 +315,27 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("fix_width", "bool", True,
              "Fix the natural width to the tabulated value (fit mass and resolution only)."),
     ),
+    "signal_model": (
+        _Key("files", "strings", [],
+             "Simulated signal samples, one file (or glob) per generated mass, in the order "
+             "of `masses`; the search's own selection and pairing run on each. Empty: no "
+             "signal model from samples."),
+        _Key("masses", "floats", [], "Generated mass (GeV) of each sample in `files`."),
+        _Key("generated", "floats", [],
+             "Number of generated events (or sum of generator weights) of each sample."),
+        _Key("shape", "str", "crystalball",
+             "Signal shape fitted to every sample (default: the double-sided Crystal Ball)."),
+        _Key("order", "int", 1, "Polynomial order in mass of every shape parameter.",
+             lo=0, hi=5),
+        _Key("efficiency_order", "int", 2,
+             "Polynomial order in mass of the efficiency x acceptance.", lo=0, hi=5),
+        _Key("fix", "values", {},
+             "Shape parameters held at a value in every sample fit, e.g. "
+             "`{ n_high = 10.0 }` for a tail the samples do not determine."),
+        _Key("saved", "str", "",
+             "A previous results.json whose `signal_model` is reused instead of samples "
+             "(relative to the config file)."),
+    ),
     "execution": (
         _Key("engine", "choice", "serial",
              "Where the per-chunk work runs: in this process, a local process pool, or Dask.",

@@ -15,6 +15,25 @@ from .schema import _TOP
 
 # ---------------------------------------------------------------------------- dataclasses
 @dataclass(frozen=True)
+class SignalModelConfig:
+    """``[signal_model]``: simulated samples (or a saved model) that give the scan and the
+    limits their signal shape, resolution and efficiency as functions of mass."""
+
+    files: tuple[str, ...] = ()
+    masses: tuple[float, ...] = ()
+    generated: tuple[float, ...] = ()
+    shape: str = "crystalball"
+    order: int = 1
+    efficiency_order: int = 2
+    fix: Any = field(default_factory=dict)
+    saved: str = ""
+
+    @property
+    def enabled(self) -> bool:
+        return bool(self.files or self.saved)
+
+
+@dataclass(frozen=True)
 class InputConfig:
     files: tuple[str, ...]
     weights: bool = True
@@ -271,6 +290,7 @@ class Config:
     limits: LimitsConfig = field(default_factory=LimitsConfig)
     systematics: SystematicsConfig = field(default_factory=SystematicsConfig)
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
+    signal_model: SignalModelConfig = field(default_factory=SignalModelConfig)
     execution: ExecutionConfig = field(default_factory=ExecutionConfig)
     output: OutputConfig = field(default_factory=OutputConfig)
     source: str = "<dict>"

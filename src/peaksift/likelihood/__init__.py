@@ -13,6 +13,8 @@ What is here, and which piece to use when
   window; expected bin contents and densities from the shapes.
 * :mod:`.cost`        -- :class:`BinnedCost`, :class:`UnbinnedCost`: a Model on data, over its
   free parameters, with constraints (value, gradient, information, observed Hessian).
+* :mod:`.joint`       -- :class:`JointCost`: several channels' costs as one (the product of
+  their likelihoods) over shared free parameters, e.g. one cross-section x branching fraction.
 * :mod:`.minimize`    -- the one minimiser (damped Fisher scoring; iminuit MIGRAD as the
   fallback), the scaled positive-definiteness test, the stacked damped Newton step.
 * :mod:`.starts`      -- starting values: sideband background fits and candidate peak masses
@@ -25,6 +27,7 @@ from __future__ import annotations
 
 from .constraints import CONSTRAINT_KINDS, Constraint
 from .cost import BinnedCost, UnbinnedCost
+from .joint import JointCost
 from .minimize import Minimum, covariance, damped_step, minimize, new_minuit, refine
 from .model import Model
 from .nuisances import NUISANCE_NAMES, SignalNuisances
@@ -44,6 +47,7 @@ __all__ = [
     "NUISANCE_NAMES",
     "BinnedCost",
     "Constraint",
+    "JointCost",
     "Minimum",
     "Model",
     "SignalNuisances",

@@ -10,6 +10,8 @@ summary and a section at the top of the report.
 * ``goodness_of_fit`` -- the fit's (or the calibration fit's) goodness-of-fit p-value is
   below :data:`GOF_P_MIN`: the model does not describe the data (e.g. a known peak inside
   the search window), so its significance and limits inherit a wrong model.
+* ``signal_model``    -- the signal model from simulated samples has invalid sample fits,
+  a polynomial that misses its points, or a leave-one-out deviation above 3 errors.
 * ``limits``          -- observed limits outside the expected +-2 sigma band at more than
   :data:`BAND_OUTSIDE_MAX_FRACTION` of the masses: a background model that misses the data
   (a genuine signal lifts only the masses near it).
@@ -98,6 +100,11 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                 add("background_model", f"{c.get('label')}: the highest order tried still "
                                         "improved the fit significantly; allow higher orders "
                                         "in systematics.background_families")
+    sm = results.get("signal_model")
+    if isinstance(sm, Mapping) and sm.get("doubtful"):
+        add("signal_model", "the signal model from simulated samples is doubtful ("
+            + "; ".join(str(n) for n in sm.get("notes") or []) + "): the scan's shape, "
+            "resolution and efficiency rest on it")
 
     band = _outside_band(results.get("limits"))
     if band is not None:

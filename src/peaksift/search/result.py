@@ -58,6 +58,9 @@ class SearchResult:
         Where the outputs were written (None when ``out=False``).
     figures : dict
         Figure name -> PNG path.
+    signal_model : SignalModel or None
+        The signal model from ``[signal_model]`` (results.json ``signal_model``), which gave
+        the scan and the limits their shape, resolution and efficiency.
     fit_settings : dict
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
@@ -86,6 +89,7 @@ class SearchResult:
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
     systematics: Mapping[str, Any] | None = None
+    signal_model: Any = None
     identification: Mapping[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
@@ -103,6 +107,9 @@ class SearchResult:
         scan_extra = {"resolution_model": self.config.model.resolution.kind,
                       "signal_shape": _scan_signal_name(self.config),
                       "log10_p_local": lg_scan}
+        if self.signal_model is not None:  # the scan's shape and sigma(m) came from samples
+            scan_extra.update(resolution_model="signal_model",
+                              signal_shape=self.signal_model.shape)
         out: dict[str, Any] = {
             "peaksift_version": __version__,
             "config": self.config.to_dict(),
@@ -130,6 +137,8 @@ class SearchResult:
             "provenance": _plain(dict(self.provenance)),
             "systematics": _plain(dict(self.systematics)) if self.systematics else None,
         }
+        if self.signal_model is not None:  # absent without [signal_model]: today's keys
+            out["signal_model"] = self.signal_model.to_dict()
         out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),

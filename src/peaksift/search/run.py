@@ -30,6 +30,7 @@ from .common import (
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
 from .identification import dedx_identification
 from .result import SearchResult
+from .signal import search_signal_model
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
 
 
@@ -75,6 +76,14 @@ def run_search(
     PeaksiftError
         Any user-facing problem (configuration, input, cut, fit); nothing is written then.
     """
+    from .combination import is_combination, run_combination
+
+    if is_combination(config):  # several channels: each its own search, then combined
+        if unblind:
+            raise ConfigError("--unblind does not apply to a combination (blinding is not "
+                              "supported there yet)")
+        return run_combination(config, out=out, toys=toys, seed=seed, engine=engine,
+                               progress=progress)  # type: ignore[return-value]
     started = _utc()
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
     _check_inputs(cfg)
@@ -118,8 +127,13 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         width = None
     seed = cfg.significance.seed
 
-    sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
-                natural_width=width, blind=blind_window, refit=False)
+    smodel = search_signal_model(cfg, progress=progress)
+    if smodel is None:
+        sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
+                    natural_width=width, blind=blind_window, refit=False)
+    else:  # shape, resolution and efficiency from the simulated samples
+        sres = scan(hist, None, bkg, masses, window=(lo, hi), blind=blind_window,
+                    refit=False, signal_model=smodel)
     best = dict(sres.global_significance(
         method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
         u0=cfg.significance.reference_level, progress=progress,
@@ -147,7 +161,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     limits = None
     if cfg.limits.enabled:
-        limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress)
+        limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
+                         smodel)
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -176,6 +191,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
         blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
         systematics=syst,
+        signal_model=smodel,
         identification=ident.to_dict() if ident is not None else None,
     )
     if stage is None:
@@ -188,6 +204,9 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     figs = plotting.search_figures(result, figdir, formats=cfg.output.formats,
                                    log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
+    if smodel is not None:
+        figs.update(zip(("signal_model_parameters", "signal_model_shapes"),
+                        smodel.plot(figdir)))
     if ident is not None:
         figs["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
@@ -226,7 +245,7 @@ def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
 
 
 def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
-            width: float | None, blind: Any, progress: bool) -> Any:
+            width: float | None, blind: Any, progress: bool, smodel: Any = None) -> Any:
     from ..stats.limits import upper_limits
 
     n = min(cfg.limits.points, masses.size)
@@ -239,15 +258,20 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
                 f"{_where(cfg)}: limits.toy_masses[{i}] = {m:g} lies outside the limit scan "
                 f"[{lm[0]:g}, {lm[-1]:g}] GeV (the scan keeps 3 resolution sigma inside the "
                 "window unless scan.start / scan.stop say otherwise); choose masses inside it")
+    if smodel is not None:  # the model gives shape, resolution and efficiency
+        sig, width = None, None
     return upper_limits(
-        hist, sig, bkg, lm, resolution=cfg.model.resolution.resolution,
+        hist, sig, bkg, lm,
+        **({"signal_model": smodel} if smodel is not None
+           else {"resolution": cfg.model.resolution.resolution}),
         window=cfg.spectrum.window, cl=L.cl,
         method=L.method,
         **_opt(toys=L.toys if L.method != "asymptotic" else None, seed=cfg.significance.seed,
                toy_masses=list(L.toy_masses) or None,
                natural_width=width, blind=blind, luminosity=L.luminosity,
                luminosity_uncertainty=L.luminosity_uncertainty or None,
-               efficiency=L.efficiency if L.luminosity is not None else None,
+               efficiency=L.efficiency if L.luminosity is not None and smodel is None
+               else None,
                efficiency_uncertainty=L.efficiency_uncertainty or None,
                unit=L.cross_section_unit if L.luminosity is not None else None),
         constraint=L.constraint, progress=progress,

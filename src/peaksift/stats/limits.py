@@ -344,7 +344,7 @@ def upper_limits(
     seed: int = 0,
     luminosity: float | None = None,
     luminosity_uncertainty: float = 0.0,
-    efficiency: Any = 1.0,
+    efficiency: Any = None,
     efficiency_uncertainty: float = 0.0,
     constraint: str = "lognormal",
     unit: str = "fb",
@@ -352,6 +352,7 @@ def upper_limits(
     progress: bool | None = None,
     executor: Callable[[Callable[[Any], Any], list[Any]], Sequence[Any]] | None = None,
     low_count_background: float = LOW_COUNT_BACKGROUND,
+    signal_model: Any = None,
 ) -> LimitResult:
     r"""CLs upper limits on the signal at each mass hypothesis.
 
@@ -382,7 +383,12 @@ def upper_limits(
         Integrated luminosity (e.g. fb^-1); limits are then on sigma x B in ``unit``
         (``fb`` for fb^-1).  Without it the limits are on the signal yield in events.
     efficiency : float or callable
-        Signal efficiency x acceptance, constant or a function of mass.
+        Signal efficiency x acceptance, constant or a function of mass (default 1, or the
+        signal model's interpolated efficiency).
+    signal_model : SignalModel, optional
+        Shape, resolution and efficiency as functions of mass from simulated samples (as in
+        :func:`peaksift.scan`); with ``luminosity`` the limits are on sigma x B with its
+        interpolated efficiency.
     luminosity_uncertainty, efficiency_uncertainty : float
         Relative uncertainties, constrained nuisance parameters (see the module guide).
     constraint : "lognormal" or "gaussian"
@@ -418,7 +424,12 @@ def upper_limits(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window, natural_width=natural_width, blind=blind, signal_params=signal_params,
-        bins=bins)
+        bins=bins, signal_model=signal_model)
+    if signal_model is not None and efficiency is not None:
+        raise FitError("give the efficiency either through signal_model= or efficiency=, "
+                       "not both")
+    if efficiency is None:
+        efficiency = 1.0 if signal_model is None else signal_model.efficiency
     m_all = info["masses"]
     bl = info["blinded_mass"]
     nm = m_all.size

@@ -133,7 +133,9 @@ def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
                  else np.full(masses.shape, float(natural_width)))
     out: list[Any] = []
     for p in shape.parameters_for(window):
-        if p.name == "mass":
+        if callable(given.get(p.name)):  # a function of the hypothesised mass (signal model)
+            out.append(np.asarray(given[p.name](masses), float)[:, None])
+        elif p.name == "mass":
             out.append(masses[:, None])
         elif p.name == "sigma":
             out.append(sigma[:, None])
@@ -147,6 +149,31 @@ def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
         else:
             out.append(float(p.start))
     return out
+
+
+def from_signal_model(signal_model: Any, signal: Any, resolution: Any, relative: Any,
+                      absolute: Any, signal_params: Any) -> tuple[Any, Any, dict[str, Any]]:
+    """The signal shape, resolution and shape parameters (functions of the hypothesised
+    mass) a :class:`~peaksift.stats.signal_model.SignalModel` provides; refuses a second
+    source for any of them."""
+    from .signal_model import SignalModel
+
+    if not isinstance(signal_model, SignalModel):
+        raise FitError(f"signal_model must be a peaksift SignalModel (from signal_model() or "
+                       f"SignalModel.from_dict), got {type(signal_model).__name__}")
+    if any(v is not None for v in (resolution, relative, absolute)):
+        raise FitError("give the resolution either through signal_model= or through "
+                       "resolution=/relative_resolution=/absolute_resolution=, not both")
+    if signal_params:
+        raise FitError("signal_params= cannot be combined with signal_model= (the model "
+                       "gives every shape parameter as a function of mass)")
+    if signal is not None:
+        from .. import shapes
+
+        if shapes.get(signal).name != signal_model.shape:
+            raise FitError(f"signal shape {shapes.get(signal).name!r} differs from the signal "
+                           f"model's {signal_model.shape!r}; pass signal=None")
+    return signal_model.shape, signal_model.resolution, signal_model.shape_functions()
 
 
 def _background_start(background: Any, window: tuple[float, float]) -> tuple[np.ndarray,
@@ -258,10 +285,15 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    resolution: Any = None, relative_resolution: Any = None,
                    absolute_resolution: Any = None, window: Any, natural_width: Any,
                    blind: Any, signal_params: Any, bins: Any,
-                   background_start: Mapping[str, float] | None = None
+                   background_start: Mapping[str, float] | None = None,
+                   signal_model: Any = None,
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
 
+    if signal_model is not None:
+        signal, resolution, signal_params = from_signal_model(
+            signal_model, signal, resolution, relative_resolution, absolute_resolution,
+            signal_params)
     sig = shapes.get(signal)
     bkg = shapes.get(background)
     if sig.kind != "signal":
@@ -339,6 +371,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                       fractions=fractions[~blinded_mass], nll_background=float(nll0[0]),
                       bin_scale=spec.bin_scale)
     info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
+            "signal_params": signal_params,
             "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
             "blinded_bins": blinded}
     return model, spec, info
@@ -583,6 +616,7 @@ def scan(
     refit: bool = True,
     nuisances: Any = None,
     nuisance_toys: str = "fixed",
+    signal_model: Any = None,
 ) -> ScanResult:
     """Scan the local significance of a signal over mass hypotheses.
 
@@ -631,6 +665,10 @@ def scan(
     nuisance_toys : "fixed" or "sampled"
         Toys keep the constraints' centres at their nominal values (conditional ensemble),
         or draw them per toy from the constraints (unconditional ensemble).
+    signal_model : SignalModel, optional
+        The signal shape, its parameters and the resolution as functions of the
+        hypothesised mass, from simulated samples (:func:`peaksift.stats.signal_model.signal_model`);
+        then ``signal`` is None (or the model's shape) and no resolution is given.
 
     Returns
     -------
@@ -645,7 +683,20 @@ def scan(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window,
-        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins)
+        natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins,
+        signal_model=signal_model)
+    return scan_prepared(data, model, spec, info, blind=blind, expected_signal=expected_signal,
+                         natural_width=natural_width, refit=refit, nuisances=nuisances,
+                         nuisance_toys=nuisance_toys)
+
+
+def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, Any], *,
+                  blind: Any, expected_signal: Any, natural_width: Any,
+                  refit: bool, nuisances: Any = None,
+                  nuisance_toys: str = "fixed") -> ScanResult:
+    """The scan of a model prepared by :func:`_prepare_model` (the channels of a
+    combination prepare theirs once and scan them here, as :func:`scan` does)."""
+    signal_params = info["signal_params"]
     m_all = info["masses"]
     bl = info["blinded_mass"]
     nm = m_all.size
@@ -760,7 +811,8 @@ def _refit(data: Any, info: dict[str, Any], spec: _Spectrum, best: int,
     for p in sig.parameters_for(spec.window):
         if p.name in ("mass", "sigma") or (p.name == "width" and natural_width is None):
             continue
-        fixed[p.name] = start.get(p.name, float((signal_params or {}).get(p.name, p.start)))
+        given = (signal_params or {}).get(p.name, p.start)
+        fixed[p.name] = start.get(p.name, float(given(m) if callable(given) else given))
     start = {k: v for k, v in start.items() if k not in fixed}
     try:
         return fit(data, sig, info["background"], spec.window, start=start, fixed=fixed)

@@ -1,0 +1,233 @@
+"""Several channels in one search: :func:`run_combination` (``peaksift search`` on a config
+with a ``[combination]`` section).
+
+A combination config names one single-channel search config per channel; each channel is
+its own complete search (its input or selection, objects, pairing, window and binning,
+background, signal model or resolution, efficiency and luminosity), run through the same
+code as ``peaksift search`` on that file alone, so each channel's numbers are exactly those
+of its own search.  The combination then fits all channels together with one sigma x B
+(:func:`peaksift.stats.channels.combine` and :func:`~peaksift.stats.channels.combined_limits`).
+
+.. code-block:: toml
+
+    [combination]
+    channels = ["dimuon.toml", "dielectron.toml"]   # relative to this file
+    names = ["dimuon", "dielectron"]                 # default: the files' stems
+
+    [output]
+    dir = "combined_out"
+
+The first channel gives the mass grid, the significance settings (method, toys, seed,
+reference level) and the limit settings (confidence level, points); every channel needs
+``limits.luminosity`` (the same unit in all) and an efficiency (``[signal_model]`` or
+``limits.efficiency``).  Blinding is not supported in a combination yet (refused).
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..config import load_config
+from ..errors import ConfigError
+
+__all__ = ["CombinedSearchResult", "is_combination", "run_combination"]
+
+if sys.version_info >= (3, 11):  # pragma: no cover - version switch
+    import tomllib as _toml
+else:  # pragma: no cover
+    import tomli as _toml
+
+_KEYS = {"channels", "names"}
+
+
+def is_combination(config: Any) -> bool:
+    """True for a TOML file (or mapping) with a ``[combination]`` section."""
+    if isinstance(config, Mapping):
+        return "combination" in config
+    if isinstance(config, (str, os.PathLike)) and Path(config).is_file():
+        try:
+            return "combination" in _toml.loads(Path(config).read_text())
+        except (OSError, UnicodeDecodeError, _toml.TOMLDecodeError):
+            return False  # load_config reports the problem
+    return False
+
+
+def _read(config: Any) -> tuple[dict[str, Any], Path, str]:
+    if isinstance(config, Mapping):
+        return dict(config), Path.cwd(), "<dict>"
+    path = Path(config)
+    try:
+        return _toml.loads(path.read_text()), path.resolve().parent, str(path)
+    except _toml.TOMLDecodeError as exc:
+        raise ConfigError(f"config {path}: TOML syntax error: {' '.join(str(exc).split())}"
+                          ) from None
+
+
+@dataclass(frozen=True)
+class CombinedSearchResult:
+    """Outcome of :func:`run_combination`: each channel's :class:`SearchResult`, the
+    combination's scan (:class:`~peaksift.stats.channels.Combination`), its global
+    significance and limits.  :meth:`to_dict` is ``results.json``."""
+
+    channels: Mapping[str, Any]
+    combination: Any
+    best: Mapping[str, Any]
+    limits: Any
+    source: str
+    outdir: Path | None = None
+    figures: Mapping[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        from .. import __version__
+        from .._json import plain
+
+        comb = self.combination.to_dict()
+        combined = {**comb["combined"], "global": plain(dict(self.best)),
+                    "limits": None if self.limits is None else
+                    self.limits.to_dict()["combined"]}
+        out = {"peaksift_version": __version__, "kind": "combination",
+               "config_path": self.source, "channel_names": list(self.channels),
+               "combined": combined,
+               "channels": {n: r.to_dict() for n, r in self.channels.items()}}
+        if self.outdir is not None:
+            out["outputs"] = {"dir": str(self.outdir),
+                              "figures": {k: str(Path(v).relative_to(self.outdir))
+                                          if Path(v).is_relative_to(self.outdir)
+                                          else Path(v).name for k, v in self.figures.items()}}
+        return out
+
+
+def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
+                    seed: int | None = None, engine: str | None = None,
+                    progress: bool = False) -> CombinedSearchResult:
+    """Run every channel's search and their combination (see the module guide).
+
+    ``out``: output directory (None: ``output.dir`` of the combination config; False: write
+    nothing).  ``toys``, ``seed``, ``engine`` override every channel's settings.
+    """
+    from ..stats.channels import combine, combined_limits
+    from .common import _scan_masses, _utc
+    from .run import _search
+    from .staging import _apply_overrides, _check_inputs, _staged
+
+    raw, base, source = _read(config)
+    where = f"config {source}"
+    unknown = set(raw) - {"combination", "output"}
+    if unknown:
+        raise ConfigError(f"{where}: unknown section [{min(unknown)}] in a combination config "
+                          "(sections: combination, output)")
+    comb = raw.get("combination") or {}
+    if not isinstance(comb, Mapping) or set(comb) - _KEYS:
+        raise ConfigError(f"{where}: [combination] takes the keys {', '.join(sorted(_KEYS))}")
+    files = comb.get("channels")
+    if not isinstance(files, list) or not files or not all(isinstance(f, str) for f in files):
+        raise ConfigError(f"{where}: combination.channels must list the channels' search "
+                          "configs, e.g. channels = [\"dimuon.toml\", \"dielectron.toml\"]")
+    paths = [p if p.is_absolute() else base / p for p in (Path(f).expanduser() for f in files)]
+    names = comb.get("names") or [p.stem for p in paths]
+    if len(names) != len(paths) or len(set(names)) != len(names):
+        raise ConfigError(f"{where}: combination.names must give one distinct name per channel")
+    cfgs = []
+    for name, p in zip(names, paths):
+        try:
+            cfg = _apply_overrides(load_config(p), toys=toys, seed=seed, engine=engine)
+        except ConfigError as exc:
+            raise ConfigError(f"{where}: channel {name!r}: {exc}") from None
+        _check_inputs(cfg)
+        if cfg.blinding.enabled:
+            raise ConfigError(f"{where}: channel {name!r} is blinded; a combination does not "
+                              "support blinding yet (disable it in the channel's config)")
+        if cfg.limits.luminosity is None:
+            raise ConfigError(f"{where}: channel {name!r} needs limits.luminosity (sigma x B "
+                              "is shared by the channels through L eff)")
+        cfgs.append(cfg)
+    units = {c.limits.luminosity_unit for c in cfgs}
+    if len(units) > 1:
+        raise ConfigError(f"{where}: the channels give luminosities in {sorted(units)}; use "
+                          "one unit")
+    out_dir = raw.get("output", {}).get("dir", "combined_out") if out is None else out
+    target = None
+    if out_dir is not False:
+        t = Path(out_dir).expanduser()
+        target = (t if t.is_absolute() or out is not None else base / t).resolve()
+    started = _utc()
+    with _staged(target) as stage:
+        results = {n: _search(c, unblind=False, progress=progress, started=started, stage=None,
+                              target=None) for n, c in zip(names, cfgs)}
+        first = cfgs[0]
+        masses = _scan_masses(first)
+        channels = [_channel(n, c, results[n]) for n, c in zip(names, cfgs)]
+        unit = first.limits.cross_section_unit
+        cmb = combine(channels, masses, refit=False, unit=unit)
+        sig = first.significance
+        best = cmb.global_significance(sig.method, toys=sig.toys, seed=sig.seed,
+                                       u0=sig.reference_level)
+        lim = None
+        if first.limits.enabled:
+            n = min(first.limits.points, masses.size)
+            lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
+            lim = combined_limits(channels, lm, cl=first.limits.cl, unit=unit)
+        res = CombinedSearchResult(channels=results, combination=cmb, best=best, limits=lim,
+                                   source=source, outdir=target)
+        if stage is not None:
+            res = _write(res, stage.path, target)
+    return res
+
+
+def _channel(name: str, cfg: Any, res: Any) -> Any:
+    """The :class:`~peaksift.stats.channels.Channel` of one channel's search."""
+    from ..stats.channels import Channel
+    from .common import _scan_signal_name, _shape
+
+    r = cfg.model.resolution
+    bkg = _shape(cfg.model.background, cfg.model.background_options)
+    if res.signal_model is not None:
+        return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
+                       signal_model=res.signal_model, window=cfg.spectrum.window)
+    return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
+                   signal=_shape(_scan_signal_name(cfg), {}), resolution=r.resolution,
+                   efficiency=float(cfg.limits.efficiency), window=cfg.spectrum.window,
+                   natural_width=float(r.natural_width) if r.natural_width > 0 else None)
+
+
+def _write(res: CombinedSearchResult, stage: Path, target: Path) -> CombinedSearchResult:
+    """results.json, the figures (the combined p-values; each channel's own figures in
+    ``figures/<channel>/``) and report.md into the staging directory."""
+    import dataclasses
+
+    import matplotlib.pyplot as plt
+
+    from .. import plotting
+    from ..report import write_results_json
+    from .combination_report import render_combination_markdown
+
+    figdir = stage / "figures"
+    figdir.mkdir(parents=True, exist_ok=True)
+    figs: dict[str, Path] = {}
+    fig = res.combination.plot(figdir / "pvalue_combined.png",
+                               title="local p-value: channels and their combination")
+    plt.close(fig)
+    figs["pvalue_combined"] = figdir / "pvalue_combined.png"
+    for name, r in res.channels.items():
+        cfg = r.config
+        sub = figdir / name
+        made = plotting.search_figures(r, sub, formats=("png",),
+                                       log_scale=cfg.output.log_scale)
+        if r.signal_model is not None:
+            made.update(zip(("signal_model_parameters", "signal_model_shapes"),
+                            r.signal_model.plot(sub)))
+        figs.update({f"{name}/{k}": Path(v) for k, v in made.items()})
+    final = {k: target / Path(v).relative_to(stage) for k, v in figs.items()}
+    res = dataclasses.replace(res, figures=final)
+    d = res.to_dict()
+    write_results_json(d, stage / "results.json")
+    rel = {k: str(Path(v).relative_to(stage)) for k, v in figs.items()}
+    (stage / "report.md").write_text(render_combination_markdown(d, rel))
+    return res

@@ -1,0 +1,103 @@
+"""Figures of a :class:`~peaksift.stats.signal_model.SignalModel` (in the project's style).
+
+* :func:`plot_parameters` -- one panel per modelled quantity against mass: the per-sample
+  points with errors, the fitted polynomial and its 1-sigma band.
+* :func:`plot_shapes`     -- every sample's histogram (normalised) with its fitted shape.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+__all__ = ["plot_parameters", "plot_shapes"]
+
+_LABELS = {"mass_shift": "peak shift [GeV]", "sigma": "$\\sigma$ [GeV]",
+           "width": "width [GeV]", "efficiency": "efficiency $\\times$ acceptance"}
+
+
+def plot_parameters(model: Any, path: Any) -> Any:
+    from .._style import COLORS, figure_style, use_headless_backend
+
+    use_headless_backend()
+    import matplotlib.pyplot as plt
+
+    keys = list(model.quantities)
+    ncol = 3 if len(keys) > 4 else 2
+    nrow = math.ceil(len(keys) / ncol)
+    m = np.asarray(model.sample_masses)
+    grid = np.linspace(m[0], m[-1], 200)
+    with figure_style():
+        fig, axes = plt.subplots(nrow, ncol, figsize=(3.6 * ncol, 2.8 * nrow),
+                                 squeeze=False, sharex=True)
+        for ax, k in zip(axes.ravel(), keys):
+            name = "mass" if k == "mass_shift" else k
+            val = np.asarray(model.value(name, grid), float)
+            if k == "mass_shift":
+                val = val - grid
+            band = np.asarray(model.band(name, grid), float)
+            ax.fill_between(grid, val - band, val + band, color=COLORS["band1"], lw=0,
+                            label="1$\\sigma$ band")
+            ax.plot(grid, val, color=COLORS["total"], label="polynomial fit")
+            pts = model.points[k]
+            if k == "efficiency":
+                lo, hi = np.asarray(model.efficiency_interval).T
+                yerr = [pts["value"] - lo, hi - pts["value"]]
+            else:
+                yerr = np.where(np.isfinite(pts["error"]), pts["error"], 0.0)
+            ax.errorbar(m, pts["value"], yerr=yerr, fmt="o", ms=4, color=COLORS["data"],
+                        label="samples")
+            dev = model.closure[k]["max_deviation"]
+            ax.set_title(f"{k} (order {model.polynomials[k]['order']}): leave-one-out max "
+                         f"{dev:.2f}$\\sigma$", fontsize=9)
+            ax.set_ylabel(_LABELS.get(k, k))
+        for ax in axes[-1]:
+            ax.set_xlabel("generated mass [GeV]")
+        for ax in axes.ravel()[len(keys):]:
+            ax.set_visible(False)
+        axes.ravel()[0].legend(loc="best", fontsize=8)
+        fig.tight_layout()
+        fig.savefig(path)
+        plt.close(fig)
+    return path
+
+
+def plot_shapes(model: Any, path: Any) -> Any:
+    from .. import shapes
+    from .._style import COLORS, figure_style, use_headless_backend
+
+    use_headless_backend()
+    import matplotlib.pyplot as plt
+    from matplotlib import colormaps
+
+    shape = shapes.get(model.shape)
+    names = shape.parameter_names
+    cmap = colormaps["viridis"]
+    with figure_style():
+        fig, ax = plt.subplots(figsize=(7.0, 4.6))
+        n = len(model.histograms)
+        for j, ((edges, counts), vals, win) in enumerate(zip(model.histograms,
+                                                             model.fit_values, model.windows)):
+            edges, counts = np.asarray(edges, float), np.asarray(counts, float)
+            width = np.diff(edges)
+            tot = counts.sum()
+            if tot <= 0:
+                continue
+            col = cmap(0.1 + 0.75 * j / max(n - 1, 1))
+            centres = 0.5 * (edges[1:] + edges[:-1])
+            ax.plot(centres, counts / tot / width, ".", ms=2.5, color=col)
+            x = np.linspace(edges[0], edges[-1], 600)
+            p = [vals[k] for k in names]
+            ax.plot(x, shape.pdf(x, p, (float(win[0]), float(win[1]))), color=col, lw=1.3,
+                    label=f"{model.sample_masses[j]:g} GeV")
+        ax.set_xlabel("candidate mass [GeV]")
+        ax.set_ylabel("probability density [1/GeV]")
+        ax.set_title(f"signal samples and fitted {model.shape} shapes", fontsize=10)
+        ax.legend(loc="upper right", title="generated mass", fontsize=8)
+        ax.text(0.01, 0.98, "points: simulated samples", transform=ax.transAxes, va="top",
+                fontsize=8, color=COLORS["data"])
+        fig.savefig(path)
+        plt.close(fig)
+    return path
