@@ -46,7 +46,8 @@ LAYERS: tuple[tuple[str, frozenset[str]], ...] = (
     ("statistics", frozenset({"stats"})),
     ("pipeline", frozenset({"config", "execution"})),
     ("orchestration and output",
-     frozenset({"search", "plotting", "report", "report_sections", "simulate",
+     frozenset({"search", "plotting", "report", "report_sections", "report_background",
+                "simulate",
                 "simulate_tracks", "cli", "__main__"})),
 )
 BASE_HELPERS = frozenset({"_files", "_style", "_processes", "_format", "_json", "_values",

@@ -90,6 +90,25 @@ def test_results_json_has_every_key_with_sane_types(run):
     assert pv["started"] <= pv["finished"] and pv["finished"].endswith("Z")
 
 
+def test_systematics_block_with_and_without(run):
+    """The demo's [systematics]: the order test, the envelope, the pulls, and the best
+    hypothesis with systematics (the search's ``best``) beside the plain one."""
+    r = run["results"]
+    sy = r["systematics"]
+    for k in ("nuisances", "background_choice", "envelope", "with_systematics",
+              "without_systematics", "nuisance_pulls", "limits", "notes"):
+        assert k in sy, k
+    assert r["best"] == sy["with_systematics"]
+    assert sy["with_systematics"]["z_local"] != sy["without_systematics"]["z_local"]
+    env = sy["envelope"]
+    assert set(env["functions"]) == set(sy["background_choice"]["kept"])
+    assert env["chosen_at_best"] in env["functions"]
+    assert set(sy["nuisance_pulls"]) == {"mass_scale", "mass_resolution"}
+    assert all(abs(v) < 5 for v in sy["nuisance_pulls"].values())
+    md = (run["out"] / "report.md").read_text()
+    assert "## Background model" in md and "background_envelope.png" in md
+
+
 def test_candidate_count_matches_the_spectrum_file(run):
     from peaksift.histogram import MassHistogram
 

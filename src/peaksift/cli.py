@@ -145,6 +145,20 @@ def _summary_text(d: Mapping[str, Any]) -> str:
                   _row("signal yield", format_pm(sy.get("value"), sy.get("error")))]
     lines += [_row("local significance", significance(best, "local", sigma="sigma")),
               _row("global significance", significance(best, "global", sigma="sigma"))]
+    syst = part(d, "systematics")
+    if syst:  # best is then the one with systematics; the plain numbers beside it
+        plain_best = part(syst, "without_systematics")
+        lines[-2] = _row("local significance", significance(best, "local", sigma="sigma")
+                         + " with systematics")
+        lines[-1] = _row("global significance", significance(best, "global", sigma="sigma")
+                         + " with systematics")
+        env = part(syst, "envelope")
+        lines.append(_row("  without systematics", (
+            f"local {significance(plain_best, 'local', sigma='sigma')}, global "
+            f"{significance(plain_best, 'global', sigma='sigma')}")))
+        if env:
+            lines.append(_row("background envelope", ", ".join(env.get("functions") or [])
+                              + f" (at the best mass: {env.get('chosen_at_best')})"))
     if not fit.get("valid") and not blinded:
         lines.append(_row("fit status", "INVALID: " + "; ".join(
             str(x) for x in fit.get("problems") or [])))

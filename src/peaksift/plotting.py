@@ -13,6 +13,9 @@ Which function
 * :func:`figure_labels` -- the run label and the pair's mass symbol from a configuration.
 * :func:`draw_in_background` -- :func:`search_figures` without the limits, in a forked
   process while the caller computes the limits; :func:`limits_figure` then adds them.
+* :func:`envelope_figure` -- the background-function envelope: twice the profiled NLL
+  against the signal yield at the best mass, one curve per candidate, the envelope over them
+  (``background_envelope``, with ``[systematics]`` background families).
 * :func:`save` -- write one figure in several formats.
 
 Every figure carries the run label (name, sqrt(s), luminosity, channel) above its axes and
@@ -50,8 +53,9 @@ from ._style import (
     shade_blinded,
 )
 
-__all__ = ["FigureLabels", "candidates", "dedx_figure", "draw_in_background", "figure_labels",
-           "limits_figure", "save", "scan_figure", "search_figures", "spectrum_only"]
+__all__ = ["FigureLabels", "candidates", "dedx_figure", "draw_in_background", "envelope_figure",
+           "figure_labels", "limits_figure", "save", "scan_figure", "search_figures",
+           "spectrum_only"]
 
 
 @dataclass(frozen=True)
@@ -209,6 +213,10 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
         out["limits"] = _limits_figure(result, outdir, formats, labels)
     if blind is None:  # the pT/rapidity histograms include the blinded window: withheld
         out.update(candidates(result.collected, outdir, formats=formats, labels=labels))
+    syst = getattr(result, "systematics", None) or {}
+    if (syst.get("envelope") or {}).get("profile"):
+        out["background_envelope"] = save(envelope_figure(syst, labels=labels), outdir,
+                                          "background_envelope", formats)
     if calibration is not None and calibration[1] is not None and result.calibration:
         out["calibration"] = calibration_figure(result.calibration, calibration[1], outdir,
                                                 formats, labels)
@@ -404,6 +412,44 @@ def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequenc
                    labels: FigureLabels) -> Path:
     fig = result.limits.plot(run=labels.run, symbol=labels.symbol)
     return save(fig, outdir, "limits", formats)
+
+
+# ------------------------------------------------------------- background envelope
+_CURVE_STYLES = ("-", "--", "-.", ":", (0, (5, 1, 1, 1)), (0, (1, 1)))
+
+
+def envelope_figure(systematics: Any, *, labels: FigureLabels | None = None) -> Any:
+    """The envelope figure from a search's ``systematics`` block (results.json form): at the
+    best mass, twice the profiled NLL plus the penalty against the signal yield for every
+    candidate function (thin), their minimum -- the envelope -- drawn over them (thick), all
+    relative to the envelope's minimum; the level 1 marks the 68% interval."""
+    labels = labels or FigureLabels()
+    env = systematics["envelope"]
+    prof = env["profile"]
+    s = np.asarray(prof["signal_yield"], float)
+    fig, ax = new_figure((7.0, 4.6))
+    with figure_style():
+        greys = ("#5b6270", "#8a8f98", "#1f6f8b", "#b07a2a", "#6a4c93", "#2e7d4f")
+        top = 0.0
+        for k, (label, curve) in enumerate(prof["curves"].items()):
+            c = np.asarray(curve, float)
+            ax.plot(s, c, lw=1.1, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
+                    color=greys[k % len(greys)], label=label)
+            top = max(top, float(np.nanmin(c)))
+        e = np.asarray(prof["envelope"], float)
+        ax.plot(s, e, lw=2.6, color=COLORS["signal"], alpha=0.85, label="envelope", zorder=4)
+        ax.axhline(1.0, color=COLORS["accent"], lw=0.8, ls=":")
+        ax.text(s[-1], 1.0, " 68%", va="center", ha="left", color=COLORS["accent"],
+                fontsize=9, clip_on=False)
+        ax.set_ylim(-0.3, max(6.0, min(top + 4.0, 40.0)))
+        ax.set_xlim(s[0], s[-1])
+        ax.set_xlabel("signal yield [events]")
+        ax.set_ylabel(r"$-2\,\Delta\ln L$ + penalty")
+        draw_header(ax, labels.run, f"discrete profiling at {number(prof['mass'])} GeV: "
+                    f"{len(prof['curves'])} functions, penalty {fixed(env['penalty'], 2)} per "
+                    "parameter")
+        ax.legend(loc="upper center", fontsize=8.5, ncol=min(3, len(prof["curves"]) + 1))
+    return fig
 
 
 # ------------------------------------------------------------------ dE/dx identification

@@ -37,6 +37,7 @@ from typing import Any
 from ._files import atomic_write
 from ._format import format_interval, format_pm, number
 from ._json import plain
+from .report_background import section_background_model
 from .report_sections import (
     BLINDED_CAPTIONS,
     CAPTIONS,
@@ -86,6 +87,7 @@ SECTIONS: list[Section] = [
     section_warnings,
     section_result,
     section_background_fit,
+    section_background_model,
     section_calibration,
     section_identification,
     section_limits,
@@ -252,3 +254,4 @@ def write_report(results: Mapping[str, Any], outdir: str | os.PathLike[str],
     md = atomic_write(outdir / "report.md", render_markdown(results, rel))
     ht = atomic_write(outdir / "report.html", render_html(results, figures))
     return {"markdown": md, "html": ht}
+

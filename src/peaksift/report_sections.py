@@ -44,6 +44,11 @@ CAPTIONS = {
     "candidates": "Transverse momentum (logarithmic scale) and rapidity of the pairs, for "
                   "the candidates in the search window (stated on the figure).",
     "calibration": "Calibration fit of the standard-candle peak in its own window.",
+    "background_envelope": "Discrete profiling of the background function at the best mass: "
+                           "twice the profiled negative log-likelihood plus the penalty per "
+                           "free parameter against the signal yield, one curve per candidate "
+                           "function; the envelope (thick) is their minimum, and its rise by 1 "
+                           "gives the 68% interval.",
     "dedx": "Measured dE/dx against momentum of the paired collection's tracks (density, log "
             "momentum axis), with the expected Bethe curve of each mass hypothesis times the "
             "calibrated scale; the pairing hypotheses carry the selection band (drawn with the "
@@ -151,7 +156,7 @@ Block = tuple[Any, ...]
 Section = Callable[[Mapping[str, Any], Mapping[str, Any]], list[Block]]
 
 
-def _figure(fig: Mapping[str, Any], name: str, caption: str) -> list[Block]:
+def figure_block(fig: Mapping[str, Any], name: str, caption: str) -> list[Block]:
     return [("figure", name, caption)] if name in fig else []
 
 
@@ -259,7 +264,7 @@ def section_result(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
         out.append(("p", ("No known particle matches (particle-data tables, within 3 combined "
                          "standard deviations, charge compatible with the pair).")))
     for name in ("spectrum", "spectrum_log", "pvalue_scan"):
-        out += _figure(fig, name, _caption(name, r))
+        out += figure_block(fig, name, _caption(name, r))
     return out
 
 
@@ -343,7 +348,7 @@ def section_calibration(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Bl
     if not cal:
         return []
     return [("h2", "Calibration peak"), ("table", ["quantity", "value"], cal),
-            *_figure(fig, "calibration", CAPTIONS["calibration"])]
+            *figure_block(fig, "calibration", CAPTIONS["calibration"])]
 
 
 # ----------------------------------------------------------------------- identification
@@ -386,7 +391,7 @@ def section_identification(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list
     if not ident:
         return []
     return [("h2", "Particle identification (dE/dx)"), ("table", ["quantity", "value"], ident),
-            *_figure(fig, "dedx", CAPTIONS["dedx"])]
+            *figure_block(fig, "dedx", CAPTIONS["dedx"])]
 
 
 # ----------------------------------------------------------------------------- warnings
@@ -494,7 +499,7 @@ def section_limits(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
               "expected limit is the median under the background-only hypothesis and "
               "\u00b11\u03c3/\u00b12\u03c3 the edges of its 68%/95% band.")),
         ("p", limit_assumptions(r)),
-        *_figure(fig, "limits", _caption("limits", r)),
+        *figure_block(fig, "limits", _caption("limits", r)),
         ("table", head, rows)]
     notes = _limit_notes(r)
     if notes:
@@ -568,7 +573,7 @@ def section_selection(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Bloc
                      f"{_num(inp.get('events_selected'))}; {_window_count_label(r)}: "
                      f"{_num(inp.get('candidates'))}.")))
     if "candidates" in fig:
-        out += _figure(fig, "candidates", CAPTIONS["candidates"])
+        out += figure_block(fig, "candidates", CAPTIONS["candidates"])
     elif _blinded(r):
         out.append(("p", _WITHHELD_CANDIDATES))
     return out

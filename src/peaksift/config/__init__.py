@@ -20,6 +20,8 @@ Sections (all optional except ``input`` and ``spectrum``)::
     [significance]  global significance method (upcrossings or toys), toys, seed
     [blinding]      a mass window hidden until the run is unblinded
     [limits]        confidence level, luminosity, efficiency and their uncertainties
+    [systematics]   signal nuisances (mass scale, resolution), background families, the
+                    order test, the envelope, the spurious-signal template
     [calibration]   optional fit of a known standard-candle peak in its own window
     [execution]     serial / processes / dask, workers, scheduler address, chunk size
     [output]        output directory, figure formats, log-scale spectrum, report title
@@ -51,6 +53,7 @@ from .sections import (
     ScanConfig,
     SignificanceConfig,
     SpectrumConfig,
+    SystematicsConfig,
 )
 
 __all__ = [
@@ -71,6 +74,7 @@ __all__ = [
     "ScanConfig",
     "SignificanceConfig",
     "SpectrumConfig",
+    "SystematicsConfig",
     "load_config",
     "reference_markdown",
 ]

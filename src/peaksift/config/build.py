@@ -36,6 +36,7 @@ from .sections import (
     SignalModelConfig,
     SignificanceConfig,
     SpectrumConfig,
+    SystematicsConfig,
 )
 from .values import _check_fit_parameters, _type_name, _value, _where
 
@@ -378,6 +379,18 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
 
     _check_signal_model(vals["signal_model"], res, base_dir if resolve_paths else None, where)
 
+    sy = vals["systematics"]
+    if sy["background_families"]:
+        from ..stats.background_choice import candidate_shapes
+
+        try:
+            candidate_shapes(list(sy["background_families"]), sqrt_s=sy["sqrt_s"])
+        except FitError as exc:
+            raise ConfigError(f"{where}: systematics.background_families: {exc}") from None
+    if sy["template"] and resolve_paths:
+        p = Path(sy["template"]).expanduser()
+        sy["template"] = str(p if p.is_absolute() else (base_dir / p))
+
     ex = vals["execution"]
     if ex["address"] and ex["engine"] != "dask":
         raise ConfigError(f"{where}: execution.address is set but execution.engine = "
@@ -394,6 +407,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         significance=SignificanceConfig(**vals["significance"]),
         blinding=BlindingConfig(**bl),
         limits=LimitsConfig(**vals["limits"]),
+        systematics=SystematicsConfig(**sy),
         calibration=CalibrationConfig(**cal),
         signal_model=SignalModelConfig(**vals["signal_model"]),
         execution=ExecutionConfig(**ex),

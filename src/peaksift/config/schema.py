@@ -269,6 +269,46 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Distribution constraining the luminosity and efficiency nuisance parameters.",
              choices=("lognormal", "gaussian")),
     ),
+    "systematics": (
+        _Key("mass_scale", "float", 0.0,
+             "Relative uncertainty of the mass scale (the peak at m(1 + delta)), a nuisance "
+             "parameter profiled in the scan, its toys and the envelope; 0: none.",
+             lo=0.0, hi=1.0, hi_open=True),
+        _Key("mass_resolution", "float", 0.0,
+             "Relative uncertainty of the mass resolution (the signal width sigma(m)(1 + "
+             "delta)), profiled like `mass_scale`; 0: none.", lo=0.0, hi=1.0, hi_open=True),
+        _Key("constraint", "choice", "gaussian",
+             "Constraint of the mass-scale and resolution nuisance parameters.",
+             choices=("gaussian", "lognormal")),
+        _Key("toy_constraints", "choice", "fixed",
+             "Background-only toys keep the constraints' centres at their nominal values "
+             "(`fixed`, conditional ensemble) or draw them per toy (`sampled`, unconditional).",
+             choices=("fixed", "sampled")),
+        _Key("background_families", "strings", [],
+             "Candidate background functions: families (`powersum`, `exppoly`, `bernstein`, "
+             "`dijet`, each with its default orders) or single orders (`exppoly2`, "
+             "`bernstein4`). Empty: the one function of `model.background`."),
+        _Key("order_test_size", "float", 0.05,
+             "Threshold of the likelihood-ratio test between consecutive orders of a family "
+             "(its nominal size): the next order is taken when its p-value is below.",
+             lo=0.0, hi=1.0, lo_open=True, hi_open=True),
+        _Key("envelope", "bool", True,
+             "Profile the choice of function as a discrete nuisance parameter (the envelope "
+             "of the kept orders, Dauncey et al. 2015) for the scan and the global "
+             "significance; `false` scans with the best kept function only."),
+        _Key("penalty", "float", 1.0,
+             "The envelope's penalty per free parameter, in -2 ln L.", lo=0.0),
+        _Key("template", "str", "",
+             "High-statistics background template for the spurious-signal test: a histogram "
+             "saved by peaksift (`spectrum.json` layout, same bins); empty: no test."),
+        _Key("spurious_limit", "float", 0.2,
+             "Largest accepted spurious signal, as a fraction of the statistical error of "
+             "the signal yield (common practice 0.2); candidates above it are flagged.",
+             lo=0.0, lo_open=True),
+        _Key("sqrt_s", "float", None,
+             "Centre-of-mass energy (GeV) of the dijet family; default twice the window's "
+             "upper edge.", lo=0.0, lo_open=True, nullable=True),
+    ),
     "calibration": (
         _Key("particle", "str", "",
              "Known particle (particle-data table name, e.g. `Z0`) whose peak is fitted as a "

@@ -213,6 +213,26 @@ class LimitsConfig:
 
 
 @dataclass(frozen=True)
+class SystematicsConfig:
+    mass_scale: float = 0.0
+    mass_resolution: float = 0.0
+    constraint: str = "gaussian"
+    toy_constraints: str = "fixed"
+    background_families: tuple[str, ...] = ()
+    order_test_size: float = 0.05
+    envelope: bool = True
+    penalty: float = 1.0
+    template: str = ""
+    spurious_limit: float = 0.2
+    sqrt_s: float | None = None
+
+    @property
+    def enabled(self) -> bool:
+        """Any systematic uncertainty configured (nuisances or a background family)."""
+        return bool(self.mass_scale or self.mass_resolution or self.background_families)
+
+
+@dataclass(frozen=True)
 class CalibrationConfig:
     particle: str = ""
     window: tuple[float, float] | None = None
@@ -279,6 +299,7 @@ class Config:
     significance: SignificanceConfig = field(default_factory=SignificanceConfig)
     blinding: BlindingConfig = field(default_factory=BlindingConfig)
     limits: LimitsConfig = field(default_factory=LimitsConfig)
+    systematics: SystematicsConfig = field(default_factory=SystematicsConfig)
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
     signal_model: SignalModelConfig = field(default_factory=SignalModelConfig)
     execution: ExecutionConfig = field(default_factory=ExecutionConfig)

@@ -7,6 +7,8 @@ What is here, and which piece to use when
   goodness of fit, the extended unbinned NLL.  Stats code with templates of its own (scans
   over many masses, batched toys) calls these directly.
 * :mod:`.constraints` -- Gaussian and log-normal constraint terms for nuisance parameters.
+* :mod:`.nuisances`   -- :class:`SignalNuisances`: the signal's mass-scale, resolution,
+  luminosity and efficiency factors with their constraints (absent at size 0).
 * :mod:`.model`       -- :class:`Model`: signal component(s) + background with yields on a
   window; expected bin contents and densities from the shapes.
 * :mod:`.cost`        -- :class:`BinnedCost`, :class:`UnbinnedCost`: a Model on data, over its
@@ -28,6 +30,7 @@ from .cost import BinnedCost, UnbinnedCost
 from .joint import JointCost
 from .minimize import Minimum, covariance, damped_step, minimize, new_minuit, refine
 from .model import Model
+from .nuisances import NUISANCE_NAMES, SignalNuisances
 from .poisson import (
     MU_FLOOR,
     baker_cousins_chi2,
@@ -41,11 +44,13 @@ from .poisson import (
 __all__ = [
     "CONSTRAINT_KINDS",
     "MU_FLOOR",
+    "NUISANCE_NAMES",
     "BinnedCost",
     "Constraint",
     "JointCost",
     "Minimum",
     "Model",
+    "SignalNuisances",
     "UnbinnedCost",
     "baker_cousins_chi2",
     "binned_gradient",

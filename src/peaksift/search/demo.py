@@ -49,6 +49,14 @@ luminosity_uncertainty = 0.02
 efficiency = 0.55              # dimuon selection efficiency x acceptance (assumed)
 efficiency_uncertainty = 0.05
 
+[systematics]
+# The mass scale and resolution of the invented detector are known to 0.2% and 10%
+# (nuisance parameters profiled everywhere); the background function is chosen by the
+# order test in three families and profiled as a discrete choice (the envelope).
+mass_scale = 0.002
+mass_resolution = 0.1
+background_families = ["powersum", "exppoly1", "bernstein"]
+
 [calibration]
 particle = "Z0"                # fitted in its own window; compared with the particle tables
 window = [70.0, 110.0]

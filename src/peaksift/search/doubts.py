@@ -15,6 +15,8 @@ summary and a section at the top of the report.
 * ``limits``          -- observed limits outside the expected +-2 sigma band at more than
   :data:`BAND_OUTSIDE_MAX_FRACTION` of the masses: a background model that misses the data
   (a genuine signal lifts only the masses near it).
+* ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
+  a kept order whose next order still improved the fit (the family needs higher orders).
 """
 
 from __future__ import annotations
@@ -88,6 +90,16 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                 f"{GOF_P_MIN:g}): its shape does not describe the peak, so the mass-scale "
                 "shift is doubtful")
 
+    sy = results.get("systematics")
+    if isinstance(sy, Mapping):
+        for note in sy.get("notes") or []:
+            if "spurious" in str(note):
+                add("background_model", str(note))
+        for c in (sy.get("background_choice") or {}).get("candidates") or []:
+            if c.get("chosen") and "still improved" in str(c.get("note") or ""):
+                add("background_model", f"{c.get('label')}: the highest order tried still "
+                                        "improved the fit significantly; allow higher orders "
+                                        "in systematics.background_families")
     sm = results.get("signal_model")
     if isinstance(sm, Mapping) and sm.get("doubtful"):
         add("signal_model", "the signal model from simulated samples is doubtful ("

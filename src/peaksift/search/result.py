@@ -65,6 +65,10 @@ class SearchResult:
         What the free fit held, constrained and bounded (``model.fix``, ``constrain``,
         ``bounds``, ``sigma_from_resolution``), its start and the intervals asked for: the
         results.json ``fit.settings``.
+    systematics : dict or None
+        With ``[systematics]``: the nuisances, the background choice and order tests, the
+        spurious signal, the envelope, the pulls, and the best hypothesis with and without
+        systematics (``best`` is then the one with them); None otherwise.
     identification : dict or None
         The dE/dx identification the pairing used (response, calibration fit), when on.
     input_record : dict or None
@@ -87,6 +91,7 @@ class SearchResult:
     outdir: Path | None = None
     figures: Mapping[str, Path] = field(default_factory=dict)
     fit_settings: Mapping[str, Any] = field(default_factory=dict)
+    systematics: Mapping[str, Any] | None = None
     signal_model: Any = None
     identification: Mapping[str, Any] | None = None
     input_record: Mapping[str, Any] | None = None
@@ -211,6 +216,7 @@ class SearchResult:
             if self.identification else None,
             "blinding": dict(self.blinding),
             "provenance": _plain(dict(self.provenance)),
+            "systematics": _plain(dict(self.systematics)) if self.systematics else None,
         }
         if self.signal_model is not None:  # absent without [signal_model]: today's keys
             out["signal_model"] = self.signal_model.to_dict()

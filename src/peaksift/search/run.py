@@ -171,6 +171,14 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         executor=_toy_executor(cfg)))
     clock.lap("global significance")
 
+    syst = None
+    if cfg.systematics.enabled:  # the numbers without systematics stay in the block
+        from .systematics import run_systematics
+
+        syst, best, _ = run_systematics(cfg, hist, scan_sig, masses, natural_width=width,
+                                        blind=blind_window, best_plain=best,
+                                        progress=progress, executor=_toy_executor(cfg))
+
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
     start = _fit_start(cfg, sig_fit, m_best, settings)
@@ -235,6 +243,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         config=cfg, histogram=hist, collected=col, background_fit=bonly, fit=fres, scan=sres,
         best=best, limits=limits, known_matches=known, calibration=cal, provenance=prov,
         blinding=blind, outdir=target, figures={}, fit_settings=settings.echo(start),
+        systematics=syst,
         signal_model=smodel,
         identification=ident.to_dict() if ident is not None else None,
     )

@@ -20,7 +20,7 @@ from typing import Any
 
 from ..errors import FitError
 from ._base import Parameter, Shape, as_window
-from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, TurnOn
+from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, PowerSum, TurnOn
 from .signal import BreitWigner, CrystalBall, Gaussian, Voigt
 
 __all__ = [
@@ -33,6 +33,7 @@ __all__ = [
     "Gaussian",
     "Parameter",
     "PowerLaw",
+    "PowerSum",
     "Shape",
     "TurnOn",
     "Voigt",
@@ -44,7 +45,7 @@ __all__ = [
 _REGISTRY: dict[str, type[Shape]] = {
     cls.name: cls
     for cls in (Gaussian, CrystalBall, BreitWigner, Voigt,
-                ExpPoly, Exponential, Bernstein, PowerLaw, Dijet, TurnOn)
+                ExpPoly, Exponential, Bernstein, PowerLaw, PowerSum, Dijet, TurnOn)
 }
 
 

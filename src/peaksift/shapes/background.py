@@ -6,13 +6,14 @@ Which to use
   with t in [-1, 1] across the window: the first choice for a falling spectrum.
 * ``bernstein`` (``degree=n``) -- non-negative polynomial of any shape on the window.
 * ``powerlaw``  -- x^-power: steeply falling spectra over a wide range.
+* ``powersum``  (``terms=1..3``) -- a sum of power laws, for the background-family choice.
 * ``dijet``     -- p0 (1-x)^p1 / x^(p2 + p3 ln x), x = m / sqrt_s (``npar=2..4``):
   the smoothly falling family of published dijet resonance searches
   (e.g. Phys. Rev. D 79 (2009) 112002).
 * ``turnon``    -- a Gaussian-CDF trigger turn-on times an exponential fall.
 
 Background parameter names never collide with signal names: ``b1..b3`` (exppoly),
-``c1..cn`` (bernstein), ``power``, ``p1..p3`` (dijet), ``threshold``/``resolution``/``slope``
+``c1..cn`` (bernstein), ``power`` (and ``power_j``/``weight_j``, powersum), ``p1..p3`` (dijet), ``threshold``/``resolution``/``slope``
 (turnon).  The overall normalisation (p0 and friends) is the fit's ``background_yield``.
 """
 
@@ -27,7 +28,7 @@ from scipy import special
 from ..errors import FitError
 from ._base import Parameter, Shape
 
-__all__ = ["Bernstein", "Dijet", "ExpPoly", "Exponential", "PowerLaw", "TurnOn"]
+__all__ = ["Bernstein", "Dijet", "ExpPoly", "Exponential", "PowerLaw", "PowerSum", "TurnOn"]
 
 
 def _t(x, window):
@@ -295,6 +296,66 @@ class PowerLaw(_Background):
         if isinstance(edges, np.ndarray) and not edges.flags.writeable:
             self._lx = (key, edges, lx)
         return lx
+
+
+class PowerSum(_Background):
+    r"""Sum of power laws, the "power law of n terms":
+
+    .. math:: f(x) \propto (x/c)^{-k_1} + \sum_{j=2}^{n} w_j^2\,(x/c)^{-k_j}
+
+    (c = window centre).  ``terms`` n = 1, 2 or 3; parameters ``power`` (k1), then
+    ``power_j``, ``weight_j`` per further term (the squared weights keep every term
+    non-negative).  One term is :class:`PowerLaw`; n terms nest n - 1 (``weight_n = 0``).
+    Analytic CDF and derivatives, term by term as for :class:`PowerLaw`.
+    """
+
+    name = "powersum"
+
+    def __init__(self, terms: int = 2, **options: Any) -> None:
+        if terms not in (1, 2, 3):
+            raise FitError(f"powersum terms must be 1, 2 or 3, got {terms!r}")
+        self.terms = int(terms)
+        pars = [Parameter("power", 3.0, -20.0, 60.0)]
+        for j in range(2, self.terms + 1):
+            pars += [Parameter(f"power_{j}", 3.0 + 3.0 * (j - 1), -20.0, 60.0),
+                     Parameter(f"weight_{j}", 0.3)]
+        self.parameters = tuple(pars)
+        super().__init__(**options)
+
+    def _split(self, p):
+        """(power, weight) per term; the first term's weight is 1."""
+        out = [(p[0], 1.0)]
+        for j in range(1, self.terms):
+            out.append((p[2 * j - 1], p[2 * j] ** 2))
+        return out
+
+    def _density(self, x, p, window):
+        return sum(w * _POWER._density(x, [k], window) for k, w in self._split(p))
+
+    def _primitive(self, x, p, window):
+        return sum(w * _POWER._primitive(x, [k], window) for k, w in self._split(p))
+
+    def _density_grad(self, x, p, window):
+        out = []
+        for j, (k, w) in enumerate(self._split(p)):
+            out.append(w * _POWER._density_grad(x, [k], window)[0])
+            if j:
+                out.append(2.0 * p[2 * j] * _POWER._density(x, [k], window))
+        return out
+
+    def _primitive_grad(self, x, p, window):
+        out = []
+        for j, (k, w) in enumerate(self._split(p)):
+            out.append(w * _POWER._primitive_grad(x, [k], window)[0])
+            if j:
+                out.append(2.0 * p[2 * j] * _POWER._primitive(x, [k], window))
+        return out
+
+    def __repr__(self) -> str:
+        return f"<background shape 'powersum' terms={self.terms}>"
+
+
+_POWER = PowerLaw()
 
 
 class Dijet(_Background):

@@ -13,10 +13,19 @@ Which piece when
   toy-based global p-values.
 * :mod:`.toys`                                         -- the batched toy engine
   (:func:`run_toys`, :func:`run_toy_batch` for execution engines).
+* :func:`choose_background` -> :class:`BackgroundChoice` -- candidate background families,
+  the order test between nested orders, goodness of fit; :func:`spurious_signal` on a
+  template (:mod:`.background_choice`).
+* :func:`envelope_scan` -> :class:`EnvelopeResult`     -- discrete profiling of the
+  background function for the scan and its toys (:mod:`.envelope`).
+* :mod:`.shape_profile`                                -- the signal's mass-scale and
+  resolution nuisance parameters profiled in the scan and its toys (``scan(nuisances=)``).
 """
 
 from __future__ import annotations
 
+from .background_choice import BackgroundChoice, choose_background, spurious_signal
+from .envelope import EnvelopeResult, envelope_scan
 from .lee import binomial_error, global_from_toys, global_from_upcrossings, upcrossings
 from .limits import (
     LimitResult,
@@ -45,6 +54,8 @@ from .significance import (
 from .toys import ScanModel, ToyBatch, run_toy_batch, run_toys
 
 __all__ = [
+    "BackgroundChoice",
+    "EnvelopeResult",
     "LimitResult",
     "ScanModel",
     "ScanResult",
@@ -52,8 +63,10 @@ __all__ = [
     "asimov_counts",
     "binned_q0",
     "binomial_error",
+    "choose_background",
     "cls_asymptotic",
     "counting_significance",
+    "envelope_scan",
     "expected_band_factor",
     "global_from_toys",
     "global_from_upcrossings",
@@ -69,6 +82,7 @@ __all__ = [
     "run_toy_limit",
     "run_toys",
     "scan",
+    "spurious_signal",
     "upcrossings",
     "upper_limits",
     "z_from_log_p",

@@ -36,10 +36,17 @@ from .._json import plain
 from .._values import FrozenValue
 from ..blinding import blinded_bins
 from ..errors import DataWarning, FitError, PeaksiftError
-from ..likelihood import binned_gradient, binned_information, binned_nll, minimize
+from ..likelihood import (
+    SignalNuisances,
+    binned_gradient,
+    binned_information,
+    binned_nll,
+    minimize,
+)
 from ..resolution import check_resolved, resolution_from
 from . import lee
 from .bounds import check_fit_bins, check_plan, check_widths
+from .shape_profile import profile_with_nuisances, run_nuisance_toy_batch, with_nuisances
 from .significance import p_from_q0, z_from_q0
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background, profile_signal, run_toys
 
@@ -425,6 +432,8 @@ class ScanResult(FrozenValue):
     notes: tuple[str, ...] = ()
     unit: str = "GeV"
     model: ScanModel | None = field(default=None, compare=False)
+    nuisances: dict | None = None
+    nuisance_factors: dict | None = None
 
     @property
     def mass(self) -> np.ndarray:
@@ -461,6 +470,9 @@ class ScanResult(FrozenValue):
             "converged": [bool(v) for v in self.converged], "best_index": int(self.best_index),
             "refit": None if self.refit is None else self.refit.to_dict(),
         }
+        if self.nuisances is not None:  # only with signal nuisances: old dicts stay as they were
+            d["nuisances"] = self.nuisances
+            d["nuisance_factors"] = self.nuisance_factors
         return plain(d)
 
     @classmethod
@@ -523,8 +535,9 @@ class ScanResult(FrozenValue):
         if self.model.masses.size == 0:
             raise FitError("every mass hypothesis of this scan is blinded; there is no "
                            "observed excess to assess (unblind, or scan outside the blind range)")
+        unit = (run_nuisance_toy_batch if "signal_nuisances" in self.model.extras else None)
         return run_toys(self.model, toys, seed=seed, workers=workers, progress=progress,
-                        executor=executor)
+                        executor=executor, batch_function=unit)
 
     def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
                             seed: int = 0, u0: float = 0.5, workers: int | None = None,
@@ -709,6 +722,8 @@ def scan(
     expected_signal: Any = None,
     bins: int | None = None,
     refit: bool = True,
+    nuisances: Any = None,
+    nuisance_toys: str = "fixed",
     signal_model: Any = None,
 ) -> ScanResult:
     """Scan the local significance of a signal over mass hypotheses.
@@ -753,6 +768,14 @@ def scan(
         background-only fit plus this signal) is reported in ``z_expected`` at every mass.
     refit : bool
         Refit at the best mass with mass and width free (:func:`peaksift.fit`).
+    nuisances : SignalNuisances or mapping, optional
+        Relative sizes of the signal's mass-scale and resolution nuisance parameters
+        (:class:`peaksift.likelihood.SignalNuisances`), profiled at every hypothesis and in
+        every toy of :meth:`ScanResult.global_significance` (:mod:`.shape_profile`).  Every
+        size 0 (or None): exactly the scan without them.
+    nuisance_toys : "fixed" or "sampled"
+        Toys keep the constraints' centres at their nominal values (conditional ensemble),
+        or draw them per toy from the constraints (unconditional ensemble).
     signal_model : SignalModel, optional
         The signal shape, its parameters and the resolution as functions of the
         hypothesised mass, from simulated samples (:func:`peaksift.stats.signal_model.signal_model`);
@@ -774,12 +797,14 @@ def scan(
         natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins,
         signal_model=signal_model)
     return scan_prepared(data, model, spec, info, blind=blind, expected_signal=expected_signal,
-                         natural_width=natural_width, refit=refit)
+                         natural_width=natural_width, refit=refit, nuisances=nuisances,
+                         nuisance_toys=nuisance_toys)
 
 
 def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, Any], *,
                   blind: Any, expected_signal: Any, natural_width: Any,
-                  refit: bool) -> ScanResult:
+                  refit: bool, nuisances: Any = None,
+                  nuisance_toys: str = "fixed") -> ScanResult:
     """The scan of a model prepared by :func:`_prepare_model` (the channels of a
     combination prepare theirs once and scan them here, as :func:`scan` does)."""
     signal_params = info["signal_params"]
@@ -787,6 +812,8 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
     bl = info["blinded_mass"]
     nm = m_all.size
     notes: list[str] = []
+    nuis = _nuisances(nuisances, nuisance_toys)
+    factors = {name: np.full(nm, np.nan) for name in nuis.shape_active}
     arr = {k: np.full(nm, np.nan) for k in ("q0", "s", "se", "b")}
     conv = np.zeros(nm, bool)
     if model.masses.size:
@@ -801,6 +828,22 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         arr["se"][~bl] = r["s_error"]
         arr["b"][~bl] = r["b"]
         conv[~bl] = r["converged"]
+        if nuis.shape_active:
+            base = _signal_params(info["signal"], spec.window, model.masses, info["sigma"][~bl],
+                                  natural_width, signal_params)
+            rn = profile_with_nuisances(model, model.counts, info["signal"], base, nuis,
+                                        start=r)
+            better = rn["nll"] <= r["nll"]  # started at r's minimum: never worse, to rounding
+            q0 = np.where(rn["s"] > 0,
+                          np.maximum(2.0 * (model.nll_background - rn["nll"]), 0.0), 0.0)
+            arr["q0"][~bl] = np.where(better, q0, arr["q0"][~bl])
+            arr["s"][~bl] = np.where(better, rn["s"], r["s"])
+            arr["se"][~bl] = np.where(better, rn["s_error"], r["s_error"])
+            arr["b"][~bl] = np.where(better, rn["b"], r["b"])
+            conv[~bl] = rn["converged"]
+            for j, name in enumerate(rn["names"]):
+                factors[name][~bl] = np.where(better, rn["factors"][:, j], 1.0)
+            model = with_nuisances(model, info["signal"], base, nuis, nuisance_toys)
         if not r["converged"].all():
             notes.append(f"{int((~r['converged']).sum())} hypotheses did not converge")
     else:
@@ -824,7 +867,20 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         window=spec.window, blind=None if blind is None else (float(blind[0]), float(blind[1])),
         blinded=bl, signal_shape=info["signal"].name, background_shape=info["background"].name,
         weight_scale=spec.scale, z_expected=z_exp, notes=tuple(notes), unit=spec.unit,
-        model=model)
+        model=model, nuisances=None if nuis.none else nuis.to_dict(),
+        nuisance_factors=factors or None)
+
+
+def _nuisances(spec: Any, toys: str) -> SignalNuisances:
+    if toys not in ("fixed", "sampled"):
+        raise FitError(f"nuisance_toys must be 'fixed' or 'sampled', got {toys!r}")
+    if spec is None:
+        return SignalNuisances()
+    if isinstance(spec, SignalNuisances):
+        return spec
+    if isinstance(spec, Mapping):
+        return SignalNuisances.make(spec)
+    raise FitError(f"nuisances must be a SignalNuisances or a mapping of sizes, got {spec!r}")
 
 
 def _expected_z(model: ScanModel, info: dict[str, Any], spec: _Spectrum,

@@ -658,6 +658,7 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
              progress: bool | None = None, expected: np.ndarray | None = None,
              batch: int = _TOYS_PER_BATCH,
              executor: Callable[[Callable[[Any], Any], list[Any]], Sequence[Any]] | None = None,
+             batch_function: Callable[[ToyBatch], np.ndarray] | None = None,
              ) -> np.ndarray:
     """Background-only toys of ``model``: the q0 scan of each, ``(n_toys, n_masses)``.
 
@@ -680,7 +681,12 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
         ``functools.partial(peaksift.execution.map_tasks, engine="dask")``; takes precedence
         over ``workers``.  Each toy is seeded on its own (:func:`toy_counts`), so the toys do
         not depend on where the batches run.
+    batch_function : callable, optional
+        The unit of work (default :func:`run_toy_batch`); e.g.
+        :func:`peaksift.stats.shape_profile.run_nuisance_toy_batch` to profile the signal's
+        nuisance parameters in every toy.  Must be a picklable top-level function.
     """
+    unit = run_toy_batch if batch_function is None else batch_function
     n_toys = int(n_toys)
     if n_toys < 1:
         raise FitError(f"toys must be a positive number of pseudo-experiments, got {n_toys}")
@@ -693,7 +699,7 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
     results: list[np.ndarray] = []
     try:
         if executor is not None:
-            done = list(executor(run_toy_batch, specs))
+            done = list(executor(unit, specs))
             if len(done) != len(specs):
                 raise FitError(f"the toy executor returned {len(done)} results for "
                                f"{len(specs)} toy batches; it must return one per batch")
@@ -705,7 +711,7 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
             pool = process_pool(size, initializer=worker_start)
             try:
                 with quiet_fork():  # the workers start at the first submit
-                    done_iter = pool.map(run_toy_batch, specs)
+                    done_iter = pool.map(unit, specs)
                 for spec, res in zip(specs, done_iter):
                     results.append(res)
                     bar.update(spec.count)
@@ -715,7 +721,7 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
             pool.shutdown(wait=True)
         else:
             for spec in specs:
-                results.append(run_toy_batch(spec))
+                results.append(unit(spec))
                 bar.update(spec.count)
     finally:
         bar.close()

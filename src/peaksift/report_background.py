@@ -1,0 +1,77 @@
+"""The report's "Background model" section: how the background function was chosen and what
+the systematic uncertainties did to the significance (present when ``[systematics]`` is set).
+
+Built from results.json alone, like every section in :mod:`peaksift.report_sections`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+from ._format import number
+from .report_sections import CAPTIONS, Block, figure_block
+
+
+def _candidate_rows(sy: Mapping[str, Any]) -> list[list[str]]:
+    ch = sy["background_choice"]
+    inenv = set((sy.get("envelope") or {}).get("functions") or [])
+    sp = sy.get("spurious_signal") or {}
+    rows = []
+    for c in ch["candidates"]:
+        spc = sp.get(c["label"])
+        spurious = "-" if not spc else (f"{spc['max_ratio']:.2f}"
+                                        + (" (flagged)" if spc["flagged"] else ""))
+        status = ("kept" + (", in envelope" if c["label"] in inenv else "")) if c["chosen"] \
+            else ""
+        rows.append([c["label"], number(c["nll"], 8), str(c["n_parameters"]),
+                     number(c["gof_p_value"], 3),
+                     number(c["order_p_value"], 3) if c["order_p_value"] is not None else "-",
+                     spurious, status])
+    return rows
+
+
+def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
+    """Candidate functions, the order test, spurious signal, the envelope, the significance
+    with and without systematics side by side, and the nuisance pulls."""
+    sy = r.get("systematics")
+    if not sy:
+        return []
+    out: list[Block] = [("h2", "Background model")]
+    nu = sy.get("nuisances") or {}
+    active = [f"{k.replace('_', ' ')} {100 * v['size']:.3g}% ({v['kind']})"
+              for k, v in nu.items() if v.get("size")]
+    out.append(("p", "Signal nuisance parameters profiled at every hypothesis and in every "
+                "toy: " + (", ".join(active) if active else "none")
+                + f"; toys keep the constraints {sy.get('toy_constraints', 'fixed')}."))
+    ch = sy.get("background_choice")
+    if ch:
+        out.append(("p", (f"Candidate background functions fitted to the "
+                    f"{'sidebands' if ch.get('blind') else 'spectrum'} ({ch['n_bins']} bins). "
+                    f"Order test: {ch['test']}; an order is kept when the next one's p-value "
+                    f"is at least {ch['size']:g}. Spurious signal: the largest fitted signal on "
+                    "the background template over its statistical error.")))
+        out.append(("table", ["function", "NLL", "free parameters", "goodness-of-fit p",
+                              "order test p", "spurious signal / stat. error", "status"],
+                    _candidate_rows(sy)))
+    env = sy.get("envelope") or {}
+    if env:
+        out.append(("p", (f"Discrete profiling (Dauncey et al., JINST 10 (2015) P04015) over "
+                    f"{', '.join(env['functions'])} with a penalty of {env['penalty']:g} per "
+                    f"free parameter; at the best mass the envelope takes "
+                    f"{env['chosen_at_best']}, and without signal {env['null_choice']}.")))
+    w, wo = sy.get("with_systematics") or {}, sy.get("without_systematics") or {}
+    keys = (("best mass [GeV]", "mass"), ("local Z", "z_local"), ("local p", "p_local"),
+            ("global Z", "z_global"), ("global p", "p_global"))
+    out.append(("table", ["quantity", "single function, no systematics", "with systematics"],
+                [[lab, number(wo.get(k)), number(w.get(k))] for lab, k in keys]))
+    pulls = sy.get("nuisance_pulls") or {}
+    if pulls:
+        out.append(("table", ["nuisance parameter", "pull at the best mass [sigma]"],
+                    [[k.replace("_", " "), f"{v:+.2f}"] for k, v in pulls.items()]))
+    notes = list(sy.get("notes") or [])
+    if sy.get("limits"):
+        notes.append(sy["limits"])
+    out += [("p", f"Note: {n}.") for n in notes]
+    out += figure_block(fig, "background_envelope", CAPTIONS["background_envelope"])
+    return out

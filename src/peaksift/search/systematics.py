@@ -1,0 +1,152 @@
+"""The search's systematic uncertainties: signal nuisances and the background-function choice.
+
+:func:`run_systematics` runs what ``[systematics]`` asks for, after the plain scan:
+
+1. the order test on each background family (:func:`peaksift.stats.background_choice.
+   choose_background`; the sidebands while blinded) and, with a template, the spurious signal
+   of every candidate;
+2. the scan with the signal nuisances profiled, over the envelope of the kept orders
+   (:func:`peaksift.stats.envelope.envelope_scan`) or with the one function (the best kept
+   one when ``envelope = false``, else ``model.background``);
+3. its global significance from toys with the same profiling.
+
+It returns the results.json ``systematics`` block (plain JSON) and the best hypothesis with
+systematics, which the search then reports as its ``best`` (the numbers without
+systematics stay beside it).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from ..config import Config
+from ..errors import ConfigError, FitError
+
+
+def _nuisances(cfg: Config) -> Any:
+    from ..likelihood import SignalNuisances
+
+    S = cfg.systematics
+    return SignalNuisances.make({"mass_scale": S.mass_scale,
+                                 "mass_resolution": S.mass_resolution},
+                                {"mass_scale": S.constraint, "mass_resolution": S.constraint})
+
+
+def _pulls(nuis: Any, factors: dict | None, index: int) -> dict[str, float]:
+    """(k - 1)/delta (Gaussian) or ln k / ln(1 + delta) (log-normal) at one mass."""
+    out: dict[str, float] = {}
+    for name, arr in (factors or {}).items():
+        k = float(np.asarray(arr)[index])
+        size = getattr(nuis, name)
+        out[name] = (float(np.log(k) / np.log1p(size)) if nuis.kind(name) == "lognormal"
+                     else (k - 1.0) / size)
+    return out
+
+
+def _template(cfg: Config, hist: Any) -> Any:
+    from ..histogram import MassHistogram
+
+    path = cfg.systematics.template
+    try:
+        t = MassHistogram.load(path)
+    except OSError as exc:
+        raise ConfigError(f"systematics.template: cannot read {path!r} ({exc}); give a "
+                          "histogram saved by peaksift (spectrum.json layout)") from None
+    return t.restrict(cfg.spectrum.window)
+
+
+def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
+                    natural_width: float | None, blind: Any, best_plain: dict[str, Any],
+                    progress: bool, executor: Any) -> tuple[dict[str, Any], dict[str, Any],
+                                                            Any]:
+    """Run ``[systematics]``; returns ``(block, best with systematics, envelope or scan)``.
+
+    See the module guide.  Limits are not part of it yet: they keep the single function of
+    ``model.background`` with the luminosity and efficiency nuisances (said in the block).
+    """
+    from ..stats.background_choice import choose_background, spurious_signal
+    from ..stats.envelope import envelope_scan
+    from ..stats.scan import scan
+
+    S = cfg.systematics
+    res = cfg.model.resolution
+    nuis = _nuisances(cfg)
+    sig_kw = {"resolution": res.resolution, "window": tuple(cfg.spectrum.window),
+              "natural_width": natural_width, "blind": blind}
+    block: dict[str, Any] = {"nuisances": nuis.to_dict(), "toy_constraints": S.toy_constraints,
+                             "background_choice": None, "spurious_signal": None,
+                             "envelope": None, "notes": []}
+    choice = None
+    if S.background_families:
+        try:
+            choice = choose_background(hist, list(S.background_families), blind=blind,
+                                       size=S.order_test_size, sqrt_s=S.sqrt_s)
+        except FitError as exc:
+            raise FitError(f"systematics.background_families: {exc}") from None
+        block["background_choice"] = choice.to_dict()
+        if S.template:
+            sp = spurious_signal(_template(cfg, hist), choice, signal, masses,
+                                 events=float(hist.total()), edges=np.asarray(hist.edges),
+                                 limit=S.spurious_limit, resolution=res.resolution,
+                                 natural_width=natural_width)
+            block["spurious_signal"] = {k: {kk: vv for kk, vv in v.items() if kk != "ratio"}
+                                        for k, v in sp.items()}
+            flagged = [k for k, v in sp.items() if v["flagged"]]
+            if flagged:
+                block["notes"].append(
+                    f"spurious signal above {S.spurious_limit:g} of the statistical error: "
+                    f"{', '.join(flagged)}")
+    toys = cfg.significance.toys
+    gkw = {"seed": cfg.significance.seed, "progress": progress, "executor": executor}
+    if choice is not None and S.envelope:
+        env = envelope_scan(hist, choice, signal, masses, penalty=S.penalty, sqrt_s=S.sqrt_s,
+                            nuisances=nuis, nuisance_toys=S.toy_constraints, **sig_kw)
+        method = cfg.significance.method
+        if method == "upcrossings" and toys == 0:
+            block["notes"].append("envelope: upcrossings need toys; 200 toys were run")
+            toys = 200
+        best = env.global_significance(method=method, toys=toys,
+                                       u0=cfg.significance.reference_level, **gkw)
+        j = env.best_index
+        chosen = int(env.chosen[j])
+        curves = env.profile_curves() if not env.blinded[j] else None
+        block["envelope"] = {
+            "functions": list(env.labels), "n_parameters": list(env.n_parameters),
+            "penalty": env.penalty, "chosen_at_best": env.labels[chosen],
+            "null_choice": env.labels[env.null_choice],
+            "z_local": env.z_local, "mass": env.masses,
+            "candidate_z_local": {k: np.sqrt(np.maximum(np.asarray(v), 0.0))
+                                  for k, v in env.candidate_q0.items()},
+            "profile": None if curves is None else {
+                "mass": curves["mass"], "signal_yield": curves["signal_yield"],
+                "curves": curves["curves"], "envelope": curves["envelope"]},
+        }
+        factors = env.scans[chosen].nuisance_factors
+        block["nuisance_pulls"] = _pulls(nuis, factors, j)
+        obj: Any = env
+    else:
+        if choice is not None:  # no envelope: the kept function with the best penalised NLL
+            kept = min(choice.chosen, key=lambda c: 2 * c.nll + S.penalty * c.n_parameters)
+            from ..stats.background_choice import candidate_shapes
+
+            bkg = candidate_shapes([kept.label], sqrt_s=S.sqrt_s)[kept.label]
+            block["notes"].append(f"envelope off: scanned with {kept.label} only")
+        else:
+            from .common import _shape
+
+            bkg = _shape(cfg.model.background, cfg.model.background_options)
+        sres = scan(hist, signal, bkg, masses, refit=False, nuisances=nuis,
+                    nuisance_toys=S.toy_constraints, **sig_kw)
+        best = sres.global_significance(method=cfg.significance.method, toys=toys,
+                                        u0=cfg.significance.reference_level, **gkw)
+        block["nuisance_pulls"] = _pulls(nuis, sres.nuisance_factors, sres.best_index)
+        obj = sres
+    best = dict(best)
+    block["with_systematics"] = best
+    block["without_systematics"] = dict(best_plain)
+    block["limits"] = ("limits use model.background alone with the luminosity and efficiency "
+                       "nuisance parameters; the envelope and the mass-scale and resolution "
+                       "nuisances are not yet part of them")
+    return block, best, obj
