@@ -208,7 +208,7 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         drawing = plotting.draw_in_background(
             SearchResult(config=cfg, histogram=hist, collected=col, background_fit=bonly,
                          fit=fres, scan=sres, best=best, limits=None, known_matches=known,
-                         calibration=cal, provenance={}, blinding=blind),
+                         calibration=cal, provenance={}, blinding=blind, systematics=syst),
             stage.path / "figures", formats=cfg.output.formats,
             log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
     limits = None
