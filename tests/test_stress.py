@@ -211,9 +211,10 @@ BAD_ARGUMENTS = {
     "edges 2-d": ({"data": _X, "binned": True, "bins": [[100, 200], [200, 300]]}, "1-d"),
     "edges beyond the window": ({"data": _X, "binned": True, "bins": [0, 50, 1000]},
                                 "spanning exactly the window"),
-    "masses as text": ({"data": ["a", "b"]}, "real numbers"),
-    "masses complex": ({"data": _X.astype(complex)}, "real numbers"),
-    "masses None": ({"data": None}, "array of numbers"),
+    # what cannot be read as data is refused with the list of what fit accepts
+    "masses as text": ({"data": ["a", "b"]}, "cannot read list as data; fit accepts"),
+    "masses complex": ({"data": _X.astype(complex)}, "1-d array of masses in GeV"),
+    "masses None": ({"data": None}, "cannot read NoneType as data"),
     "no signal shape": ({"signal": []}, "no signal shape"),
     "retries text": ({"retries": "a"}, "retries"),
     "retries negative": ({"retries": -1}, "retries"),

@@ -83,6 +83,8 @@ class CombinedSearchResult:
     source: str
     outdir: Path | None = None
     figures: Mapping[str, Any] = field(default_factory=dict)
+    #: what the combined numbers leave out (e.g. a channel's [systematics])
+    notes: tuple[str, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         from .. import __version__
@@ -90,6 +92,7 @@ class CombinedSearchResult:
 
         comb = self.combination.to_dict()
         combined = {**comb["combined"], "global": plain(dict(self.best)),
+                    "notes": list(self.notes),
                     "limits": None if self.limits is None else
                     self.limits.to_dict()["combined"]}
         out = {"peaksift_version": __version__, "kind": "combination",
@@ -176,8 +179,15 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             n = min(first.limits.points, masses.size)
             lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
             lim = combined_limits(channels, lm, cl=first.limits.cl, unit=unit)
+        # the joint likelihood has no shape nuisances or background envelope yet: say so
+        # rather than let a reader take the combined Z for one with systematics
+        with_syst = [n for n, c in zip(names, cfgs) if c.systematics.enabled]
+        note = (f"the combination does not include the [systematics] of channel(s) "
+                f"{', '.join(with_syst)}: its numbers are without systematics (each "
+                "channel's own results show both)")
+        notes = (note,) if with_syst else ()
         res = CombinedSearchResult(channels=results, combination=cmb, best=best, limits=lim,
-                                   source=source, outdir=target)
+                                   source=source, outdir=target, notes=notes)
         if stage is not None:
             res = _write(res, stage.path, target)
     return res

@@ -66,7 +66,8 @@ def render_combination_markdown(d: Mapping[str, Any],
                  ["fitted sigma x B at the best mass",
                   f"{_f(best.get('cross_section'))} {c.get('unit', '')}"],
              ]), ""]
-    lines += ["## Channels", "",
+    lines += [f"**Note:** {n}." for n in c.get("notes") or []]
+    lines += ["", "## Channels", "",
               _table(["channel", "best mass [GeV]", "Z local", "p local", "Z global",
                       "fitted mass [GeV]", "expected limits", "efficiency"],
                      [channel_rows(n, r) for n, r in d["channels"].items()]), "",
