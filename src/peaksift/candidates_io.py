@@ -6,7 +6,7 @@ for ``choose="all"``, ``multiplicity``); the cut flow and the ``choose`` rule ri
 schema metadata under ``peaksift.candidates``.  :meth:`Candidates.save` writes it as Parquet
 (``.parquet``) or Arrow IPC (``.arrow``, ``.feather``, ``.ipc``), atomically;
 :meth:`Candidates.load` and :meth:`Candidates.from_arrow` read it back exactly.  Any tool
-that reads Parquet or Arrow (pandas, polars, DuckDB, ROOT-free notebooks) reads the columns.
+that reads Parquet or Arrow (pandas, polars, DuckDB, plain notebooks) reads the columns.
 """
 
 from __future__ import annotations
