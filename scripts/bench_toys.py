@@ -20,7 +20,7 @@ from iminuit import Minuit
 from scipy import special
 
 from peaksift import MassHistogram, shapes
-from peaksift.stats.scan import _prepare_model
+from peaksift.stats.scan_inputs import _prepare_model
 from peaksift.stats.toys import run_toys, scan_toys_linear, toy_counts
 
 

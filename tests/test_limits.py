@@ -17,7 +17,7 @@ from peaksift.stats.limits import (
     poisson_interval,
     poisson_upper_limit,
 )
-from peaksift.stats.scan import _prepare_model
+from peaksift.stats.scan_inputs import _prepare_model
 
 WINDOW = (100.0, 400.0)
 

@@ -13,7 +13,7 @@ from scipy import stats
 from peaksift import MassHistogram, fit, shapes
 from peaksift.errors import DataWarning, FitError
 from peaksift.stats import scan
-from peaksift.stats.scan import _prepare_model
+from peaksift.stats.scan_inputs import _prepare_model
 from peaksift.stats.toys import profile_signal, run_toys, toy_counts
 
 WINDOW = (100.0, 400.0)

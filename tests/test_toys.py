@@ -10,7 +10,7 @@ from iminuit import Minuit
 
 from peaksift import MassHistogram
 from peaksift.errors import FitError
-from peaksift.stats.scan import _prepare_model
+from peaksift.stats.scan_inputs import _prepare_model
 from peaksift.stats.toys import (
     ToyBatch,
     fit_background,

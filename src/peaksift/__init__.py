@@ -47,7 +47,7 @@ _EXPORTS: dict[str, str] = {
     "FitResult": "peaksift.fitting.result",
     "Resolution": "peaksift.resolution",
     "scan": "peaksift.stats.scan",
-    "ScanResult": "peaksift.stats.scan",
+    "ScanResult": "peaksift.stats.scan_result",
     "LimitResult": "peaksift.stats.limits",
     "upper_limits": "peaksift.stats.limits",
     "signal_model": "peaksift.stats.signal_model",

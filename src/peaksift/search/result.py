@@ -139,7 +139,7 @@ class SearchResult:
         from ..fitting.result import FitResult
         from ..resonances import KnownMatch
         from ..stats.limits import LimitResult
-        from ..stats.scan import ScanResult
+        from ..stats.scan_result import ScanResult
 
         try:
             cfg = load_config(dict(d["config"]))

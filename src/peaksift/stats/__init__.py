@@ -36,7 +36,8 @@ from .limits import (
     run_toy_limit,
     upper_limits,
 )
-from .scan import ScanResult, scan
+from .scan import scan
+from .scan_result import ScanResult
 from .significance import (
     asimov_counts,
     binned_q0,

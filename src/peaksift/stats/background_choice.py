@@ -217,7 +217,7 @@ def order_test(nll_low: Any, nll_high: Any, dof: int) -> tuple[Any, Any]:
 
 
 def _spectrum_of(data: Any, window: Any, bins: Any):
-    from .scan import _spectrum
+    from .scan_inputs import _spectrum
 
     if bins is None and not hasattr(data, "edges"):
         bins = 100
@@ -226,7 +226,7 @@ def _spectrum_of(data: Any, window: Any, bins: Any):
 
 def _background_model(spec: Any, used: np.ndarray, shape: Any):
     """An empty-mass :class:`ScanModel` of ``shape`` on the used bins (for fitting)."""
-    from .scan import _background_start
+    from .scan_inputs import _background_start
     from .toys import ScanModel
 
     start, lower, upper = _background_start(shape, spec.window)
@@ -247,7 +247,7 @@ def fit_candidate(spec: Any, used: np.ndarray, shape: Any,
     a family, started from the lower order's minimum embedded, :func:`_embed`): the stacked
     damped Newton fit from that start and the default one, which never rises above the
     start's NLL, so a higher order is never fitted worse than the lower one it contains."""
-    from .scan import _fit_data_background
+    from .scan_inputs import _fit_data_background
     from .toys import fit_background
 
     model, start = _background_model(spec, used, shape)

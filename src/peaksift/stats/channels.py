@@ -39,7 +39,8 @@ from . import lee
 from .cls import _BANDS, _bisect
 from .joint import profile_joint
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
-from .scan import _prepare_model, scan_prepared
+from .scan import scan_prepared
+from .scan_inputs import _prepare_model
 from .significance import p_from_q0, z_from_q0
 from .toys import fit_background, toy_counts
 

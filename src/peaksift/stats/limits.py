@@ -65,7 +65,7 @@ from .._values import FrozenValue
 from .._vocabulary import LIMIT_METHODS
 from ..errors import FitError
 from .cls import _BANDS, _bisect, _floor_reach, _Problem, _qtilde, _unconditional
-from .scan import _prepare_model
+from .scan_inputs import _prepare_model
 from .toy_limits import _ToyLimitTask, run_toy_limit
 from .toys import ScanModel, fit_background
 

@@ -1,0 +1,351 @@
+"""What a scan works on: the spectrum, the signal's parameters at each hypothesis, the background's starts, and the prepared model."""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..blinding import blinded_bins
+from ..errors import DataWarning, FitError
+from ..likelihood import (
+    binned_gradient,
+    binned_information,
+    binned_nll,
+    minimize,
+)
+from ..resolution import check_resolved, resolution_from
+from .bounds import check_fit_bins, check_plan, check_widths
+from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background
+
+
+# ---------------------------------------------------------------------- data input
+@dataclass(frozen=True)
+class _Spectrum:
+    edges: np.ndarray      # bins in the window
+    counts: np.ndarray     # effective counts k_i values_i (window bins)
+    scale: float           # overall factor sum(w)/sum(w^2) (1 unweighted), for information
+    window: tuple[float, float]
+    unit: str
+    bin_scale: np.ndarray | None = None  # per-bin k_i = values_i/variances_i (None unweighted)
+
+
+def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float]) -> _Spectrum:
+    """The window's bins as the likelihood sees them, from a MassHistogram or from masses.
+
+    Masses are histogrammed with :meth:`MassHistogram.from_masses` on the window (default:
+    their range) and then go the histogram's way, so an array and the histogram built from
+    it give the same spectrum; the edge rule is the histogram's (a mass equal to the top of
+    the window is in the last bin)."""
+    from ..histogram import MassHistogram
+
+    if isinstance(data, MassHistogram):
+        hist = data if window is None else data.restrict(window)
+    else:
+        x, w = data  # as_spectrum's (masses, weights)
+        if x.size == 0:
+            raise FitError("scan: no masses given")
+        if not np.all(np.isfinite(x)):
+            raise FitError("scan: masses contain NaN or infinite values; drop them first")
+        lo, hi = (float(x.min()), float(x.max())) if window is None else (float(window[0]),
+                                                                        float(window[1]))
+        if not hi > lo:
+            raise FitError(f"scan: the window ({lo:g}, {hi:g}) is empty; give window=(lo, hi) "
+                           "with lo < hi")
+        if bins is None:
+            nb = int(np.clip(math.ceil((hi - lo) / (0.25 * min_sigma())), 50, 2000))
+        else:
+            nb = int(bins)
+            check_plan(2, nb)  # before the histogram is allocated
+        hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
+    weight_sum = np.asarray(hist.values(), float)
+    edges = np.asarray(hist.edges, float)
+    if not (np.all(np.isfinite(weight_sum)) and np.all(weight_sum >= 0)):
+        raise FitError("scan: bin contents in the window must be finite and non-negative")
+    if weight_sum.sum() <= 0:
+        raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
+    scale = 1.0
+    bin_scale = None
+    if not np.allclose(weight_sum, hist.variances()):
+        scale = float(weight_sum.sum() / hist.variances().sum())
+        bin_scale = hist.scaled_poisson_factors()
+        warnings.warn(
+            f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
+            f"k_i sum(w) per bin, k_i = sum(w)/sum(w^2) of the bin (overall {scale:.4g}); "
+            f"an approximation for unequal weights (exact for equal ones)",
+            DataWarning, stacklevel=3)
+    return _Spectrum(edges, weight_sum * (1.0 if bin_scale is None else bin_scale), scale,
+                     (float(edges[0]), float(edges[-1])), hist.unit, bin_scale)
+
+
+def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
+                   sigma: np.ndarray, natural_width: Any,
+                   signal_params: Mapping[str, float] | None) -> list[Any]:
+    names = shape.parameter_names
+    given = dict(signal_params or {})
+    unknown = set(given) - set(names)
+    if unknown:
+        raise FitError(f"signal_params: shape {shape.name!r} has no parameter "
+                       f"{min(unknown)!r}; its parameters are {', '.join(names)}")
+    width = None
+    if natural_width is not None:
+        if "width" not in names:
+            raise FitError(f"natural_width given but signal shape {shape.name!r} has no natural "
+                           "width; use 'voigt' (width with resolution) or 'breitwigner'")
+        width = (np.asarray(natural_width(masses), float) if callable(natural_width)
+                 else np.full(masses.shape, float(natural_width)))
+    out: list[Any] = []
+    for p in shape.parameters_for(window):
+        if callable(given.get(p.name)):  # a function of the hypothesised mass (signal model)
+            out.append(np.asarray(given[p.name](masses), float)[:, None])
+        elif p.name == "mass":
+            out.append(masses[:, None])
+        elif p.name == "sigma":
+            out.append(sigma[:, None])
+        elif p.name == "width":
+            if width is None and "sigma" in names:
+                raise FitError(f"signal shape {shape.name!r} needs natural_width= (GeV, or a "
+                               "callable of mass) for its Breit-Wigner part")
+            out.append((sigma if width is None else width)[:, None])
+        elif p.name in given:
+            out.append(float(given[p.name]))
+        else:
+            out.append(float(p.start))
+    return out
+
+
+def from_signal_model(signal_model: Any, signal: Any, resolution: Any, relative: Any,
+                      absolute: Any, signal_params: Any) -> tuple[Any, Any, dict[str, Any]]:
+    """The signal shape, resolution and shape parameters (functions of the hypothesised
+    mass) a :class:`~peaksift.stats.signal_model.SignalModel` provides; refuses a second
+    source for any of them."""
+    from .signal_model import SignalModel
+
+    if not isinstance(signal_model, SignalModel):
+        raise FitError(f"signal_model must be a peaksift SignalModel (from signal_model() or "
+                       f"SignalModel.from_dict), got {type(signal_model).__name__}")
+    if any(v is not None for v in (resolution, relative, absolute)):
+        raise FitError("give the resolution either through signal_model= or through "
+                       "resolution=/relative_resolution=/absolute_resolution=, not both")
+    if signal_params:
+        raise FitError("signal_params= cannot be combined with signal_model= (the model "
+                       "gives every shape parameter as a function of mass)")
+    if signal is not None:
+        from .. import shapes
+
+        if shapes.get(signal).name != signal_model.shape:
+            raise FitError(f"signal shape {shapes.get(signal).name!r} differs from the signal "
+                           f"model's {signal_model.shape!r}; pass signal=None")
+    return signal_model.shape, signal_model.resolution, signal_model.shape_functions()
+
+
+def _background_start(background: Any, window: tuple[float, float]) -> tuple[np.ndarray,
+                                                                            np.ndarray,
+                                                                            np.ndarray]:
+    pars = background.parameters_for(window)
+    start = np.array([p.start for p in pars], float)
+    lower = np.array([p.lower for p in pars], float)
+    upper = np.array([p.upper for p in pars], float)
+    start = np.where(np.isfinite(start), start, 0.0)
+    return start, lower, upper
+
+
+def _start_grid(start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                product: bool = True) -> np.ndarray:
+    """Starting points for the data's background fit: the default start and, per parameter,
+    points across its bounded range (10%, 50%, 90%) or start +- max(1, |start|) when
+    unbounded; all combinations for up to 3 parameters (``product``), else one parameter at
+    a time."""
+    options = []
+    for k, s0 in enumerate(start):
+        lo, hi = lower[k], upper[k]
+        if np.isfinite(lo) and np.isfinite(hi):
+            vals = [s0, lo + 0.1 * (hi - lo), lo + 0.5 * (hi - lo), lo + 0.9 * (hi - lo)]
+        else:
+            d = max(1.0, abs(s0))
+            vals = [s0, s0 - d, s0 + d]
+        options.append(np.clip(vals, lo, hi))
+    if product and start.size <= 3:
+        grid = np.array(np.meshgrid(*options, indexing="ij")).reshape(start.size, -1).T
+    else:
+        rows = [start]
+        for k, vals in enumerate(options):
+            for v in vals[1:]:
+                r = start.copy()
+                r[k] = v
+                rows.append(r)
+        grid = np.array(rows)
+    return np.unique(grid, axis=0)
+
+
+def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
+                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Background-only fit of the data, robust to poor starting values.
+
+    All starts of :func:`_start_grid` are fitted together (stacked Levenberg-Marquardt); the
+    two best are refined by the likelihood core's minimiser (:func:`peaksift.likelihood.minimize`
+    on :class:`_BackgroundCost`) and polished again; the lowest minimum is kept.
+    """
+    if start.size == 0:
+        return fit_background(proto, counts[None, :], start[None, :])
+    # numerically integrated shapes cost one integration per start: fewer starts for them
+    grid = _start_grid(start, proto.lower, proto.upper,
+                       product=bool(getattr(proto.background, "_has_primitive", True)))
+    with np.errstate(all="ignore"):
+        th_g, b_g, nll_g = fit_background(proto, np.broadcast_to(counts, (len(grid),
+                                                                         counts.size)),
+                                          grid, steps=60)
+    nll_g = np.where(np.isfinite(nll_g), nll_g, np.inf)
+    order = np.argsort(nll_g)
+    candidates = [(th_g[i:i + 1], b_g[i:i + 1], nll_g[i:i + 1]) for i in order[:1]]
+    cost = _BackgroundCost(proto, counts)
+    lower = np.concatenate([[0.0], proto.lower])
+    upper = np.concatenate([[np.inf], proto.upper])
+    names = ["background_yield"] + [f"theta_{k}" for k in range(proto.theta.size)]
+    for i in order[:2]:
+        if not np.isfinite(nll_g[i]):
+            continue
+        x0 = np.concatenate([[b_g[i]], th_g[i]])
+        try:
+            mo = minimize(cost, x0, lower, upper, names)
+        except (ArithmeticError, ValueError, np.linalg.LinAlgError):
+            continue
+        if np.all(np.isfinite(mo.x)):
+            candidates.append(fit_background(proto, counts[None, :], mo.x[None, 1:],
+                                             steps=200))
+    return min(candidates, key=lambda c: float(c[2][0]))
+
+
+class _BackgroundCost:
+    """Background-only NLL of one spectrum over (yield, shape parameters), built on the
+    likelihood core's Poisson functions, for :func:`peaksift.likelihood.minimize`."""
+
+    errordef = 0.5
+
+    def __init__(self, proto: ScanModel, counts: np.ndarray) -> None:
+        self.proto, self.counts = proto, counts
+
+    def value_grad_info(self, x: np.ndarray, info: bool = True):
+        b, th = float(x[0]), x[None, 1:]
+        with np.errstate(all="ignore"):
+            g = bkg_fractions(self.proto, th)[0]
+            dmu = np.vstack([g[None, :], b * bkg_gradients(self.proto, th)[0]])
+            mu = b * g
+            val = float(binned_nll(self.counts, mu, saturated=False))
+            return (val, binned_gradient(self.counts, mu, dmu),
+                    binned_information(mu, dmu) if info else None)
+
+    def __call__(self, *x: float) -> float:
+        v = self.value_grad_info(np.asarray(x, float), info=False)[0]
+        return v if np.isfinite(v) else 1e300
+
+    def grad(self, *x: float) -> np.ndarray:
+        g = self.value_grad_info(np.asarray(x, float), info=False)[1]
+        return np.where(np.isfinite(g), g, 0.0)
+
+
+def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
+                   resolution: Any = None, relative_resolution: Any = None,
+                   absolute_resolution: Any = None, window: Any, natural_width: Any,
+                   blind: Any, signal_params: Any, bins: Any,
+                   background_start: Mapping[str, float] | None = None,
+                   signal_model: Any = None, what: str = "scan"
+                   ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
+    from .. import shapes
+    from ..histogram import MassHistogram, as_spectrum
+
+    data = as_spectrum(data, what=what)  # a MassHistogram or (masses, weights); else FitError
+
+    if signal_model is not None:
+        signal, resolution, signal_params = from_signal_model(
+            signal_model, signal, resolution, relative_resolution, absolute_resolution,
+            signal_params)
+    sig = shapes.get(signal)
+    bkg = shapes.get(background)
+    if sig.kind != "signal":
+        raise FitError(f"scan: {sig.name!r} is a {sig.kind} shape; give a signal shape "
+                       f"such as 'gaussian'")
+    if bkg.kind != "background":
+        raise FitError(f"scan: {bkg.name!r} is a {bkg.kind} shape; give a background shape "
+                       f"such as 'exponential'")
+    resolution = resolution_from(resolution, relative=relative_resolution,
+                                 absolute=absolute_resolution)
+    sigma_of = resolution.sigma
+    m_arr = None if np.ndim(masses) == 0 else np.asarray(masses, float)
+
+    def min_sigma() -> float:
+        if m_arr is not None:
+            return float(np.min(sigma_of(m_arr)))
+        if window is not None:
+            lo, hi = float(window[0]), float(window[1])
+        elif isinstance(data, MassHistogram):
+            lo, hi = data.lo, data.hi
+        else:
+            x = data[0]
+            if x.size == 0:
+                raise FitError(f"{what}: no masses given")
+            lo, hi = float(np.min(x)), float(np.max(x))
+        pad = 0.05 * (hi - lo)  # the default grid's range
+        return float(np.min(sigma_of(np.linspace(lo + pad, hi - pad, 50))))
+
+    spec = _spectrum(data, window, bins, min_sigma)
+    lo, hi = spec.window
+    if m_arr is None:
+        npts = int(masses)
+        if npts < 2:
+            raise FitError(f"scan needs at least 2 mass points, got {masses!r}")
+        check_plan(npts, spec.edges.size - 1)
+        pad = 0.05 * (hi - lo)
+        m_arr = np.linspace(lo + pad, hi - pad, npts)
+    if m_arr.ndim != 1 or m_arr.size == 0 or not np.all(np.isfinite(m_arr)):
+        raise FitError("scan masses must be a non-empty 1-d array of finite numbers")
+    outside = (m_arr <= lo) | (m_arr >= hi)
+    if outside.any():
+        raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
+                       f"({lo:g}, {hi:g}); scan inside the window")
+    check_plan(m_arr.size, spec.edges.size - 1)
+    sigma = check_resolved(resolution, m_arr, spec.edges)
+    gamma = natural_width(m_arr) if callable(natural_width) else natural_width
+    check_widths((lo, hi), float(np.max(sigma)),
+                 None if gamma is None else float(np.max(gamma)))
+    blinded = blinded_bins(spec.edges, blind)
+    used = np.flatnonzero(~blinded)
+    try:
+        check_fit_bins(used.size, len(bkg.parameters), n_blinded=int(blinded.sum()))
+    except FitError as exc:
+        raise FitError(f"scan: {exc}") from None
+    blinded_mass = np.zeros(m_arr.size, bool)
+    if blind is not None:
+        blinded_mass = (m_arr >= float(blind[0])) & (m_arr <= float(blind[1]))
+    fr_all = np.asarray(sig.bin_fractions(spec.edges, _signal_params(
+        sig, spec.window, m_arr, sigma, natural_width, signal_params), spec.window), float)
+    fr_all = np.broadcast_to(fr_all, (m_arr.size, spec.edges.size - 1))
+    if spec.bin_scale is not None:
+        fr_all = fr_all * spec.bin_scale   # expectations in effective counts, bin by bin
+    fractions = np.ascontiguousarray(fr_all[:, used])
+    start, lower, upper = _background_start(bkg, spec.window)
+    if background_start:
+        names = bkg.parameter_names
+        for k, v in background_start.items():
+            if k in names:
+                start[names.index(k)] = float(v)
+    counts = spec.counts[used]
+    proto = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
+                      background=bkg, theta=start, bkg_yield=float(counts.sum()),
+                      lower=lower, upper=upper, masses=m_arr[~blinded_mass],
+                      fractions=fractions[~blinded_mass], bin_scale=spec.bin_scale)
+    theta, b, nll0 = _fit_data_background(proto, counts, start)
+    model = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
+                      background=bkg, theta=theta[0], bkg_yield=float(b[0]),
+                      lower=lower, upper=upper, masses=m_arr[~blinded_mass],
+                      fractions=fractions[~blinded_mass], nll_background=float(nll0[0]),
+                      bin_scale=spec.bin_scale)
+    info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
+            "signal_params": signal_params,
+            "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
+            "blinded_bins": blinded}
+    return model, spec, info
