@@ -41,7 +41,7 @@ _EXPORTS: dict[str, str] = {
     "describe": "peaksift.events.describe",
     "pair": "peaksift.pairing.build",
     "Candidates": "peaksift.pairing.candidates",
-    "compile_cut": "peaksift.cuts",
+    "compile_cut": "peaksift.cuts.expression",
     "MassHistogram": "peaksift.histogram",
     "fit": "peaksift.fitting.core",
     "FitResult": "peaksift.fitting.result",
