@@ -48,7 +48,7 @@ _EXPORTS: dict[str, str] = {
     "Resolution": "peaksift.resolution",
     "scan": "peaksift.stats.scan",
     "ScanResult": "peaksift.stats.scan_result",
-    "LimitResult": "peaksift.stats.limits",
+    "LimitResult": "peaksift.stats.limit_result",
     "upper_limits": "peaksift.stats.limits",
     "signal_model": "peaksift.stats.signal_model",
     "SignalModel": "peaksift.stats.signal_model",

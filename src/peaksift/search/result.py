@@ -138,7 +138,7 @@ class SearchResult:
         from ..errors import InputError
         from ..fitting.result import FitResult
         from ..resonances import KnownMatch
-        from ..stats.limits import LimitResult
+        from ..stats.limit_result import LimitResult
         from ..stats.scan_result import ScanResult
 
         try:
