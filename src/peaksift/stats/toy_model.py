@@ -1,0 +1,334 @@
+"""The stacked scan model the toys and the scan share: background fractions and their derivatives, the stacked background-only fit, and the exact profile of the signal over masses."""
+
+from __future__ import annotations
+
+import functools
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..likelihood import binned_nll, damped_step
+
+_BAND_EPS = 3e-3       # signal band: bins with f > eps * max f
+_GROUP = 16            # masses per band group in the toy scan
+_SUB_BATCH = 256       # toys processed together (memory/cache)
+_NEWTON_STEPS = 5      # Newton iterations of the linearised toy scan
+_TOYS_PER_BATCH = 500  # toys per ToyBatch handed to a worker
+_REFINE = 2            # highest points of each toy scan refitted exactly
+
+
+_NU_FLOOR = 1e-100     # floor of expectations in gradients/Hessians (nu**2 stays > 0)
+
+
+def _quiet(func: Any) -> Any:
+    """Run ``func`` with numpy floating-point warnings off.
+
+    The fits try steps into extreme regions (a background fraction underflowing to 0, an
+    expectation at its floor); those trial points give inf/NaN intermediate values that
+    the NLL comparison then rejects, so the warnings are expected and must not reach users.
+    A toy whose result is still not finite is returned as NaN and counted as failed
+    (``n_failed_toys`` in the global significance).
+    """
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        with np.errstate(all="ignore"):
+            return func(*args, **kwargs)
+    return wrapper
+
+
+# --------------------------------------------------------------------------- model
+@dataclass(frozen=True)
+class ScanModel:
+    """A prepared binned scan: data, background model and signal templates (picklable).
+
+    Attributes
+    ----------
+    edges : ndarray
+        Edges of all bins in the window (``n_window + 1``).
+    used : ndarray of int
+        Indices (into the window's bins) of the bins in the likelihood (blinded ones dropped).
+    window : (float, float)
+        The fit window (the shapes are normalised on it).
+    counts : ndarray
+        Observed counts in the used bins (effective counts for weighted data).
+    background : Shape
+        Background shape.
+    theta : ndarray
+        Background shape parameters of the background-only fit to the data.
+    bkg_yield : float
+        Background yield ``b`` (in the whole window) of that fit.
+    lower, upper : ndarray
+        Bounds of the background shape parameters.
+    masses : ndarray
+        Mass hypotheses.
+    fractions : ndarray
+        Signal bin fractions ``(n_masses, n_used)`` at each hypothesis (already multiplied
+        by ``bin_scale``).
+    bin_scale : ndarray or None
+        Weighted spectra: the scaled-Poisson factor ``k_i = values_i / variances_i`` of every
+        window bin (Bohm and Zech 2014; the rule of :func:`peaksift.fit`, empty bins get
+        ``sum w / sum w^2``).  Counts are effective counts ``k_i values_i`` and every
+        expectation is ``k_i (s f_i + b g_i)`` with the yields in weighted units, so the
+        NLL equals the weighted binned fit's up to a constant.  None: unweighted (k = 1).
+    """
+
+    edges: np.ndarray
+    used: np.ndarray
+    window: tuple[float, float]
+    counts: np.ndarray
+    background: Any
+    theta: np.ndarray
+    bkg_yield: float
+    lower: np.ndarray
+    upper: np.ndarray
+    masses: np.ndarray
+    fractions: np.ndarray
+    nll_background: float = float("nan")
+    extras: dict = field(default_factory=dict)
+    bin_scale: np.ndarray | None = None
+
+    @property
+    def expected_background(self) -> np.ndarray:
+        """Background expectation per used bin from the background-only fit to the data."""
+        return self.bkg_yield * bkg_fractions(self, self.theta[None, :])[0]
+
+
+def bkg_fractions(model: ScanModel, theta: np.ndarray) -> np.ndarray:
+    """Background bin fractions in the used bins for stacked parameters ``theta (B, K)``."""
+    params = [theta[:, k : k + 1] for k in range(theta.shape[1])]
+    g = model.background.bin_fractions(model.edges, params, model.window)
+    g = np.broadcast_to(g, (theta.shape[0], model.edges.size - 1))
+    if model.bin_scale is not None:
+        g = g * model.bin_scale
+    return np.ascontiguousarray(g[:, model.used])
+
+
+def bkg_gradients(model: ScanModel, theta: np.ndarray) -> np.ndarray:
+    """Derivatives of the used-bin background fractions, ``(B, K, n_used)``."""
+    params = [theta[:, k : k + 1] for k in range(theta.shape[1])]
+    dg = model.background.grad_bin_fractions(model.edges, params, model.window)
+    dg = np.broadcast_to(dg, (theta.shape[1], theta.shape[0], model.edges.size - 1))
+    if model.bin_scale is not None:
+        dg = dg * model.bin_scale
+    return np.ascontiguousarray(np.moveaxis(dg[:, :, model.used], 0, 1))
+
+
+def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
+    """Second derivatives of the used-bin background fractions, ``(B, K, K, n_used)``.
+
+    Central differences of the analytic first derivatives (step 1e-5 max(|theta|, 0.1)),
+    kept inside the bounds; symmetrised.  This is the curvature a Fisher-type Hessian
+    leaves out, needed e.g. where a squared coefficient sits at 0.  The fits compute it
+    once at their starting point and reuse it (it only steers the Newton steps).
+    """
+    nb, k = theta.shape
+    out = np.empty((nb, k, k, model.used.size))
+    for j in range(k):
+        h = 1e-5 * np.maximum(np.abs(theta[:, j]), 0.1)
+        up = theta.copy()
+        dn = theta.copy()
+        up[:, j] = np.minimum(theta[:, j] + h, model.upper[j])
+        dn[:, j] = np.maximum(theta[:, j] - h, model.lower[j])
+        width = np.where(up[:, j] > dn[:, j], up[:, j] - dn[:, j], 1.0)
+        out[:, j] = (bkg_gradients(model, up) - bkg_gradients(model, dn)) / width[:, None, None]
+    return 0.5 * (out + out.transpose(0, 2, 1, 3))
+
+
+def _nll(n: np.ndarray, nu: np.ndarray) -> np.ndarray:
+    # the core's Poisson NLL without its saturated constant (differences are all we need)
+    return binned_nll(n, nu, saturated=False)
+
+
+# ------------------------------------------------------- background-only fit (stacked)
+@_quiet
+def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = None,
+                   *, steps: int = 30, tol: float = 1e-9) -> tuple[np.ndarray, np.ndarray,
+                                                                     np.ndarray]:
+    r"""Background-only fits of stacked spectra ``n (B, n_used)``.
+
+    Levenberg-Marquardt steps on the Fisher-type Hessian for the shape parameters, the
+    yield profiled in closed form (:math:`\hat b = \sum n / \sum g`); a step is taken only
+    when the NLL does not rise.  Stops when the NLL changes by less than ``tol``.
+
+    Returns ``(theta (B, K), b (B,), nll (B,))``.
+    """
+    n = np.atleast_2d(np.asarray(n, float))
+    nb, k = n.shape[0], model.theta.size
+    theta = np.array(np.broadcast_to(model.theta if theta0 is None else theta0, (nb, k)),
+                     dtype=float)
+    ntot = n.sum(axis=1)
+
+    def profile_b(th: np.ndarray, rows: Any = slice(None)) -> tuple[np.ndarray, np.ndarray,
+                                                                   np.ndarray]:
+        g = bkg_fractions(model, th)
+        b = ntot[rows] / np.maximum(g.sum(axis=1), 1e-300)
+        val = _nll(n[rows], b[:, None] * g)
+        return g, b, np.where(np.all(g > 0, axis=1) | (n[rows] == 0).all(axis=1), val, np.inf)
+
+    g, b, nll = profile_b(theta)
+    if k == 0:
+        return theta, b, nll
+    lam = np.full(nb, 1e-3)
+    active = np.ones(nb, bool)
+    d2 = bkg_second(model, theta)
+    for _ in range(steps):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        th, gi, bi = theta[idx], g[idx], b[idx]
+        dg = bkg_gradients(model, th)                      # (B, K, N)
+        nu = np.maximum(bi[:, None] * gi, _NU_FLOOR)
+        a = np.concatenate([gi[:, None, :], bi[:, None, None] * dg], axis=1)  # (B, P, N)
+        w = 1.0 - n[idx] / nu
+        grad = np.einsum("bpn,bn->bp", a, w)
+        # exact Hessian: observed Fisher part + the curvature of the shape
+        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[idx] / nu**2)
+        hess[:, 1:, 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl", d2[idx], w)
+        cross = np.einsum("bkn,bn->bk", dg, w)
+        hess[:, 0, 1:] += cross
+        hess[:, 1:, 0] += cross
+        todo = np.ones(idx.size, bool)
+        for _try in range(12):
+            r = np.flatnonzero(todo)
+            rows = idx[r]
+            step = damped_step(hess[r], grad[r], lam[rows])
+            trial = np.clip(th[r] + step[:, 1:], model.lower, model.upper)
+            gt, bt, nt = profile_b(trial, rows)
+            ok = nt <= nll[rows] + 1e-10
+            j = rows[ok]
+            conv = ok & (nll[rows] - nt < tol) & (lam[rows] <= 1e-2)
+            theta[j], g[j], b[j], nll[j] = trial[ok], gt[ok], bt[ok], nt[ok]
+            active[rows[conv]] = False
+            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
+            todo[r[ok]] = False
+            if not todo.any():
+                break
+        active[idx[todo]] = False  # no descent at any damping: at the minimum to rounding
+    return theta, b, nll
+
+
+# --------------------------------------------------- exact profile over masses (data)
+@_quiet
+def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
+                   s_fixed: np.ndarray | None = None, s_start: np.ndarray | None = None,
+                   theta_start: np.ndarray | None = None, b_start: np.ndarray | None = None,
+                   steps: int = 60, tol: float = 1e-6) -> dict[str, np.ndarray]:
+    """Exact signal-plus-background fits for stacked hypotheses.
+
+    ``fractions (B, n_used)`` are the signal fractions of each hypothesis, ``n`` the counts
+    (``(n_used,)`` shared or ``(B, n_used)``).  The signal yield is free (it may go negative
+    as long as every expectation stays positive) unless ``s_fixed (B,)`` is given.  Newton
+    steps with the Fisher-type Hessian and step halving on the exact NLL.
+
+    Returns a dict of ``s``, ``s_error`` (from the inverse observed Hessian), ``b``,
+    ``theta``, ``nll`` and ``converged``.
+    """
+    f = np.atleast_2d(np.asarray(fractions, float))
+    nb, nbin = f.shape
+    n = np.broadcast_to(np.asarray(n, float), (nb, nbin))
+    k = model.theta.size
+    theta = np.array(np.broadcast_to(model.theta if theta_start is None else theta_start,
+                                     (nb, k)), dtype=float)
+    b = np.array(np.broadcast_to(model.bkg_yield if b_start is None else b_start, (nb,)),
+                 dtype=float)
+    fixed = s_fixed is not None
+    if fixed:
+        s = np.array(np.broadcast_to(s_fixed, (nb,)), dtype=float)
+    elif s_start is not None:
+        s = np.array(np.broadcast_to(s_start, (nb,)), dtype=float)
+    else:
+        s = np.zeros(nb)
+    g = bkg_fractions(model, theta)
+
+    def total_nll(s_, b_, g_, rows=slice(None)):
+        nu = s_[:, None] * f[rows] + b_[:, None] * g_
+        bad = np.any(nu <= 0, axis=1)
+        val = _nll(n[rows], nu)
+        return np.where(bad, np.inf, val)
+
+    nll = total_nll(s, b, g)
+    if np.any(~np.isfinite(nll)):
+        # start with a positive expectation everywhere
+        s = np.where(np.isfinite(nll), s, 0.0)
+        nll = total_nll(s, b, g)
+    active = np.ones(nb, bool)
+    converged = np.zeros(nb, bool)
+    off = 0 if fixed else 1
+    lam = np.full(nb, 1e-3)
+    d2 = bkg_second(model, theta) if k else None
+    for _ in range(steps):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        si, bi, thi, gi = s[idx], b[idx], theta[idx], g[idx]
+        nu = np.maximum(si[:, None] * f[idx] + bi[:, None] * gi, _NU_FLOOR)
+        cols = [gi[:, None, :]]
+        if k:
+            cols.append(bi[:, None, None] * bkg_gradients(model, thi))
+        if not fixed:
+            cols.insert(0, f[idx][:, None, :])
+        a = np.concatenate(cols, axis=1)
+        w = 1.0 - n[idx] / nu
+        grad = np.einsum("bpn,bn->bp", a, w)
+        # exact Hessian: observed Fisher part + the curvature of the background shape
+        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[idx] / nu**2)
+        if k:
+            ib = off  # index of the background yield
+            hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
+                                                                         d2[idx], w)
+            cross = np.einsum("bkn,bn->bk", cols[-1] / bi[:, None, None], w)
+            hess[:, ib, ib + 1:] += cross
+            hess[:, ib + 1:, ib] += cross
+        with np.errstate(all="ignore"):
+            err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
+        todo = np.ones(idx.size, bool)
+        for _try in range(12):
+            r = np.flatnonzero(todo)
+            rows = idx[r]
+            step = damped_step(hess[r], grad[r], lam[rows])
+            ts = si[r] if fixed else si[r] + step[:, 0]
+            tb = bi[r] + step[:, off]
+            tth = np.clip(thi[r] + step[:, off + 1:], model.lower, model.upper)
+            tg = bkg_fractions(model, tth)
+            tn = total_nll(ts, tb, tg, rows)
+            ok = tn <= nll[rows] + 1e-9
+            j = rows[ok]
+            small = np.all(np.abs(step) < tol * err[r], axis=1)
+            conv = ok & (small | (nll[rows] - tn < 1e-8)) & (lam[rows] <= 1e-2)
+            s[j], b[j], theta[j], g[j], nll[j] = ts[ok], tb[ok], tth[ok], tg[ok], tn[ok]
+            converged[rows[conv]] = True
+            active[rows[conv]] = False
+            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
+            todo[r[ok]] = False
+            if not todo.any():
+                break
+        stuck = idx[todo]
+        converged[stuck] = True  # no descent at any damping: at the minimum to rounding
+        active[stuck] = False
+    # Hessian-based error of the signal yield: inverse of the exact Hessian at the minimum
+    if fixed:
+        s_err = np.full(nb, np.nan)
+    else:
+        nu = np.maximum(s[:, None] * f + b[:, None] * g, _NU_FLOOR)
+        cols = [f[:, None, :], g[:, None, :]]
+        if k:
+            dgm = bkg_gradients(model, theta)
+            cols.append(b[:, None, None] * dgm)
+        a = np.concatenate(cols, axis=1)
+        w = 1.0 - n / nu
+        h = np.einsum("bpn,bqn,bn->bpq", a, a, n / nu**2)
+        if k:
+            h[:, 2:, 2:] += b[:, None, None] * np.einsum("bkln,bn->bkl", d2, w)
+            cross = np.einsum("bkn,bn->bk", dgm, w)
+            h[:, 1, 2:] += cross
+            h[:, 2:, 1] += cross
+        with np.errstate(all="ignore"):
+            try:
+                reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
+                cov = np.linalg.inv(h + reg * np.eye(h.shape[1]))
+                s_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
+            except np.linalg.LinAlgError:
+                s_err = np.full(nb, np.nan)
+    return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
+            "converged": converged}
