@@ -119,6 +119,22 @@ def _prepare(ch: Channel, masses: Any, blind: Any) -> tuple[Any, Any, dict[str, 
         raise FitError(f"channel {ch.name!r}: {exc}") from None
 
 
+def _prepare_all(channels: Any, masses: Any, blind: Any) -> tuple:
+    """Every channel checked and prepared on the first channel's grid of masses: (channels,
+    their (model, spectrum, info), the masses, the blinded-mass mask, the sigma x B to
+    signal-yield conversion of each channel at those masses)."""
+    chans = _check(channels)
+    prepared = []
+    for k, ch in enumerate(chans):
+        prepared.append(_prepare(ch, masses, blind))
+        if k == 0:
+            masses = prepared[0][2]["masses"]
+    m_all = np.asarray(masses, float)
+    bl = prepared[0][2]["blinded_mass"]
+    conv = [ch.conversion(m_all) for ch in chans]
+    return chans, prepared, m_all, bl, conv
+
+
 def _check(channels: Sequence[Channel]) -> list[Channel]:
     chans = list(channels)
     if not chans:
@@ -140,15 +156,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     ``expected_cross_section``: sigma x B whose median expected (Asimov) significance is
     reported per channel and combined.  ``unit``: of sigma x B (``fb`` for fb^-1).
     """
-    chans = _check(channels)
-    prepared = []
-    for k, ch in enumerate(chans):
-        prepared.append(_prepare(ch, masses, blind))
-        if k == 0:
-            masses = prepared[0][2]["masses"]
-    m_all = np.asarray(masses, float)
-    bl = prepared[0][2]["blinded_mass"]
-    conv = [ch.conversion(m_all) for ch in chans]
+    chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
     per = {}
     for ch, (model, spec, info), k in zip(chans, prepared, conv):
         exp_s = None if expected_cross_section is None else (
@@ -477,15 +485,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     """
     if not 0 < cl < 1:
         raise FitError(f"cl must be in (0, 1), got {cl!r}; e.g. cl=0.95")
-    chans = _check(channels)
-    prepared = []
-    for k, ch in enumerate(chans):
-        prepared.append(_prepare(ch, masses, blind))
-        if k == 0:
-            masses = prepared[0][2]["masses"]
-    m_all = np.asarray(masses, float)
-    bl = prepared[0][2]["blinded_mass"]
-    conv = [ch.conversion(m_all) for ch in chans]
+    chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
     per = {}
     notes = []
     for ch, k in zip(chans, conv):
