@@ -16,7 +16,8 @@ What is here, and which piece to use when
 * :mod:`.joint`       -- :class:`JointCost`: several channels' costs as one (the product of
   their likelihoods) over shared free parameters, e.g. one cross-section x branching fraction.
 * :mod:`.minimize`    -- the one minimiser (damped Fisher scoring; iminuit MIGRAD as the
-  fallback), the scaled positive-definiteness test, the stacked damped Newton step.
+  fallback), the scaled positive-definiteness test, and :func:`minimize_stacked`, the driver
+  of every stacked fit (many toys or mass hypotheses at once).
 * :mod:`.starts`      -- starting values: sideband background fits and candidate peak masses
   from a coarse likelihood scan.
 
@@ -28,7 +29,16 @@ from __future__ import annotations
 from .constraints import CONSTRAINT_KINDS, Constraint
 from .cost import BinnedCost, UnbinnedCost
 from .joint import JointCost
-from .minimize import Minimum, covariance, damped_step, minimize, new_minuit, refine
+from .minimize import (
+    Minimum,
+    StackedMinimum,
+    covariance,
+    damped_step,
+    minimize,
+    minimize_stacked,
+    new_minuit,
+    refine,
+)
 from .model import Model
 from .nuisances import NUISANCE_NAMES, SignalNuisances
 from .poisson import (
@@ -51,6 +61,7 @@ __all__ = [
     "Minimum",
     "Model",
     "SignalNuisances",
+    "StackedMinimum",
     "UnbinnedCost",
     "baker_cousins_chi2",
     "binned_gradient",
@@ -59,6 +70,7 @@ __all__ = [
     "covariance",
     "damped_step",
     "minimize",
+    "minimize_stacked",
     "new_minuit",
     "refine",
     "saturated_term",
