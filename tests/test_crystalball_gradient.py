@@ -11,6 +11,7 @@ step independent (two base steps agree) before the shape is compared with it.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -51,7 +52,7 @@ def _integral(a: float, b: float, p: list[float]) -> float:
 
 def ref_fractions(p: list[float]) -> np.ndarray:
     total = _integral(*WINDOW, p)
-    return np.array([_integral(a, b, p) for a, b in zip(EDGES[:-1], EDGES[1:])]) / total
+    return np.array([_integral(a, b, p) for a, b in itertools.pairwise(EDGES)]) / total
 
 
 def ref_pdf(p: list[float]) -> np.ndarray:

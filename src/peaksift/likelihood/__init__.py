@@ -13,6 +13,8 @@ What is here, and which piece to use when
   window; expected bin contents and densities from the shapes.
 * :mod:`.cost`        -- :class:`BinnedCost`, :class:`UnbinnedCost`: a Model on data, over its
   free parameters, with constraints (value, gradient, information, observed Hessian).
+* :mod:`.derived`     -- :class:`Tie`, :class:`TiedCost`: a parameter computed from another
+  inside the cost (sigma = resolution(mass)), with the chain rule in every derivative.
 * :mod:`.joint`       -- :class:`JointCost`: several channels' costs as one (the product of
   their likelihoods) over shared free parameters, e.g. one cross-section x branching fraction.
 * :mod:`.minimize`    -- the one minimiser (damped Fisher scoring; iminuit MIGRAD as the
@@ -28,12 +30,14 @@ from __future__ import annotations
 
 from .constraints import CONSTRAINT_KINDS, Constraint
 from .cost import BinnedCost, UnbinnedCost
+from .derived import Tie, TiedCost
 from .joint import JointCost
 from .minimize import (
     Minimum,
     StackedMinimum,
     covariance,
     damped_step,
+    first_error,
     minimize,
     minimize_stacked,
     new_minuit,
@@ -62,6 +66,8 @@ __all__ = [
     "Model",
     "SignalNuisances",
     "StackedMinimum",
+    "Tie",
+    "TiedCost",
     "UnbinnedCost",
     "baker_cousins_chi2",
     "binned_gradient",
@@ -69,6 +75,7 @@ __all__ = [
     "binned_nll",
     "covariance",
     "damped_step",
+    "first_error",
     "minimize",
     "minimize_stacked",
     "new_minuit",

@@ -27,8 +27,9 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Minimum", "StackedMinimum", "covariance", "damped_step", "fisher_scoring",
-           "minimize", "minimize_stacked", "new_minuit", "refine", "solve_stacked"]
+__all__ = ["Minimum", "StackedMinimum", "covariance", "damped_step", "first_error",
+           "fisher_scoring", "minimize", "minimize_stacked", "new_minuit", "refine",
+           "solve_stacked"]
 
 #: a scaled Hessian with a smaller eigenvalue is treated as singular
 POSDEF_TOL = 1e-10
@@ -363,3 +364,19 @@ def minimize_stacked(value: Callable, grad_hess: Callable, x0: np.ndarray,
     if hess_last is None:
         hess_last = np.zeros((nb, 0, 0))
     return StackedMinimum(x, nll, state, hess_last, converged, stalled, it)
+
+
+def first_error(hess: np.ndarray) -> np.ndarray:
+    """Standard error of the first parameter of stacked problems, ``sqrt((H^-1)_00)`` from
+    Hessians ``(B, P, P)`` regularised by 1e-12 of their absolute trace (a flat direction
+    elsewhere must not make the whole inverse fail); NaN where it is not positive."""
+    nb = hess.shape[0]
+    if hess.shape[1] == 0:
+        return np.full(nb, np.nan)
+    with np.errstate(all="ignore"):
+        try:
+            reg = 1e-12 * np.trace(np.abs(hess), axis1=1, axis2=2)[:, None, None]
+            cov = np.linalg.inv(hess + reg * np.eye(hess.shape[1]))
+        except np.linalg.LinAlgError:
+            return np.full(nb, np.nan)
+        return np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))

@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import binned_nll, minimize_stacked
+from ..likelihood import binned_nll, first_error, minimize_stacked
 from .toys import ScanModel, bkg_fractions, bkg_gradients, bkg_second
 
 __all__ = ["profile_joint"]
@@ -141,13 +141,8 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     mu_err = np.full(nb, np.nan)
     if not fixed:
         # the curvature of the background shapes from the start, as profile_signal does
-        _, h = _grad_hess(models, n, f, k, mu, b, theta, g, d2, all_rows, fixed, first, p)
-        reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
-        try:
-            cov = np.linalg.inv(h + reg * np.eye(p))
-            mu_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
-        except np.linalg.LinAlgError:
-            pass
+        mu_err = first_error(_grad_hess(models, n, f, k, mu, b, theta, g, d2, all_rows, fixed,
+                                        first, p)[1])
     return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nll": nll,
             "converged": converged}
 

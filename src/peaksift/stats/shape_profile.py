@@ -40,7 +40,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import SignalNuisances, binned_nll, minimize_stacked
+from ..likelihood import SignalNuisances, binned_nll, first_error, minimize_stacked
 from .toys import (
     ScanModel,
     ToyBatch,
@@ -195,15 +195,7 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
                          active=np.isfinite(nll), steps=steps, nll_tol=tol)
     x, nll, converged = r.x, r.nll, r.converged
     s, k, b, theta = x[:, 0].copy(), x[:, 1:ib].copy(), x[:, ib].copy(), x[:, ib + 1:].copy()
-    npar = 2 + j_n + kk
-    hess_last = r.hessian if r.hessian.size else np.zeros((nb, npar, npar))
-    with np.errstate(all="ignore"):
-        try:
-            reg = 1e-12 * np.trace(np.abs(hess_last), axis1=1, axis2=2)[:, None, None]
-            cov = np.linalg.inv(hess_last + reg * np.eye(hess_last.shape[1]))
-            s_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
-        except np.linalg.LinAlgError:
-            s_err = np.full(nb, np.nan)
+    s_err = first_error(r.hessian)
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll, "factors": k,
             "names": names, "converged": converged}
 

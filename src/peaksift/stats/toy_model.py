@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import binned_nll, minimize_stacked
+from ..likelihood import binned_nll, first_error, minimize_stacked
 
 _BAND_EPS = 3e-3       # signal band: bins with f > eps * max f
 _GROUP = 16            # masses per band group in the toy scan
@@ -258,7 +258,8 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         nu = np.maximum(si[:, None] * f[rows] + bi[:, None] * gi, _NU_FLOOR)
         cols = [gi[:, None, :]]
         if k:
-            cols.append(bi[:, None, None] * bkg_gradients(model, thi))
+            dg = bkg_gradients(model, thi)
+            cols.append(bi[:, None, None] * dg)
         if not fixed:
             cols.insert(0, f[rows][:, None, :])
         a = np.concatenate(cols, axis=1)
@@ -270,7 +271,7 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
             ib = off  # index of the background yield
             hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
                                                                          d2[rows], w)
-            cross = np.einsum("bkn,bn->bk", cols[-1] / bi[:, None, None], w)
+            cross = np.einsum("bkn,bn->bk", dg, w)
             hess[:, ib, ib + 1:] += cross
             hess[:, ib + 1:, ib] += cross
         return grad, hess
@@ -285,28 +286,7 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     s, b, theta, g, nll, converged = s.copy(), b.copy(), theta.copy(), r.state[0], r.nll, \
         r.converged
     # Hessian-based error of the signal yield: inverse of the exact Hessian at the minimum
-    if fixed:
-        s_err = np.full(nb, np.nan)
-    else:
-        nu = np.maximum(s[:, None] * f + b[:, None] * g, _NU_FLOOR)
-        cols = [f[:, None, :], g[:, None, :]]
-        if k:
-            dgm = bkg_gradients(model, theta)
-            cols.append(b[:, None, None] * dgm)
-        a = np.concatenate(cols, axis=1)
-        w = 1.0 - n / nu
-        h = np.einsum("bpn,bqn,bn->bpq", a, a, n / nu**2)
-        if k:
-            h[:, 2:, 2:] += b[:, None, None] * np.einsum("bkln,bn->bkl", d2, w)
-            cross = np.einsum("bkn,bn->bk", dgm, w)
-            h[:, 1, 2:] += cross
-            h[:, 2:, 1] += cross
-        with np.errstate(all="ignore"):
-            try:
-                reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
-                cov = np.linalg.inv(h + reg * np.eye(h.shape[1]))
-                s_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
-            except np.linalg.LinAlgError:
-                s_err = np.full(nb, np.nan)
+    s_err = (np.full(nb, np.nan) if fixed else
+             first_error(grad_hess(r.x, r.state, np.arange(nb))[1]))
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
             "converged": converged}
