@@ -142,6 +142,7 @@ class BinnedCost(_Cost):
 
         self._jac = np.zeros((self.free.size, self.n.size))
         self._state: tuple | None = None
+        self._fused = _fused_path(self)
 
     def _fractions(self, shape, p, need: bool, rows):
         if need:  # derivatives of the free parameters only (fixed ones are not differenced)
@@ -179,6 +180,13 @@ class BinnedCost(_Cost):
         """NLL, gradient and expected information over the free parameters at ``x``."""
         self.ncall += 1
         x = np.asarray(x, float)
+        if self._fused is not None:
+            out = self._fused.evaluate(self.expand(x), info)
+            if out is not None:
+                val, g, fisher, mu = out
+                self._state = (x.tobytes(), mu, None)
+                val = self._add_constraints(x, val + self._const, g, fisher)
+                return val, g, fisher
         jac = self._jac
         mu, blocks = self.expectation(x, jac)
         self._state = (x.tobytes(), mu, blocks)
@@ -263,6 +271,24 @@ class BinnedCost(_Cost):
                         hess[rk, rj] += float(r @ d2[k])
         self._constraint_hessian(x, hess)
         return 0.5 * (hess + hess.T)
+
+
+def _fused_path(cost: BinnedCost) -> Any:
+    """The compiled evaluation of :mod:`.kernels` when every component of the cost has an
+    edge kernel (else None: the numpy path); ``PEAKSIFT_NUMPY_COST=1`` turns it off (the
+    reference, for comparisons)."""
+    import os
+
+    if os.environ.get("PEAKSIFT_NUMPY_COST") == "1":
+        return None
+    from .kernels import FusedBinned, edge_kernel
+
+    kernels = [edge_kernel(shape, cost.edges, cost.model.window) for shape, _, _ in
+               cost.model.blocks]
+    if any(k is None for k in kernels):
+        return None
+    return FusedBinned(kernels, cost._plan, cost.free.size, cost.edges, cost.mask, cost.n,
+                       cost.s, cost.unit_scale, MU_FLOOR)
 
 
 class UnbinnedCost(_Cost):
