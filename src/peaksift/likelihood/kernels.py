@@ -29,97 +29,9 @@ import numpy as np
 from numba import njit
 
 from ..shapes import Exponential, ExpPoly, Gaussian, PowerLaw
+from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
 
 __all__ = ["FusedBinned", "edge_kernel"]
-
-_INV_SQRT2PI = 1.0 / math.sqrt(2.0 * math.pi)
-_SQRT1_2 = 1.0 / math.sqrt(2.0)
-#: |z| beyond which the normal density and tail integral are exactly 0.0 in double precision
-#: (as in :mod:`peaksift.shapes.signal`)
-_CUT = 40.0
-
-
-@njit(cache=True, nogil=True)
-def gaussian_edges(x, m, s, lo, hi, out):  # pragma: no cover - compiled
-    """Rows of ``out``: C(x), dC/dm, dC/dsigma of the Gaussian normalised on [lo, hi]."""
-    inv_s = 1.0 / s
-    zl = (lo - m) * inv_s
-    zh = (hi - m) * inv_s
-    fl = math.exp(-0.5 * zl * zl) * _INV_SQRT2PI * inv_s
-    fh = math.exp(-0.5 * zh * zh) * _INV_SQRT2PI * inv_s
-    upper = zl > 0.0  # window above the peak: the upper tail keeps every digit
-    if upper:
-        pl = -0.5 * math.erfc(zl * _SQRT1_2)
-        ph = -0.5 * math.erfc(zh * _SQRT1_2)
-    else:
-        pl = 0.5 * math.erfc(-zl * _SQRT1_2)
-        ph = 0.5 * math.erfc(-zh * _SQRT1_2)
-    norm = ph - pl
-    if not norm > 0.0:
-        return False
-    inv = 1.0 / norm
-    am = (fl - fh) * inv
-    asg = (fl * zl - fh * zh) * inv
-    for i in range(x.size):
-        z = (x[i] - m) * inv_s
-        if z < -_CUT:
-            prim = -1.0 if upper else 0.0
-            f = 0.0
-        elif z > _CUT:
-            prim = 0.0 if upper else 1.0
-            f = 0.0
-        else:
-            prim = -0.5 * math.erfc(z * _SQRT1_2) if upper else 0.5 * math.erfc(-z * _SQRT1_2)
-            f = math.exp(-0.5 * z * z) * _INV_SQRT2PI * inv_s
-        c = (prim - pl) * inv
-        out[0, i] = c
-        out[1, i] = (fl - f) * inv - c * am
-        out[2, i] = (fl * zl - f * z) * inv - c * asg
-    return True
-
-
-@njit(cache=True, nogil=True)
-def powerlaw_edges(lx, k, l_lo, l_hi, out):  # pragma: no cover - compiled
-    """Rows: C, dC/dk of x^-k on the window, with ``lx = ln(x/c)`` (the formulae of
-    ``PowerLaw.fractions_and_grad``); False near k = 1, where that path uses a series."""
-    a = 1.0 - k
-    if abs(a) * (l_hi - l_lo) < 1e-3:
-        return False
-    top = max(a * l_lo, a * l_hi)
-    q_lo = math.exp(a * l_lo - top)
-    q_hi = math.exp(a * l_hi - top)
-    inv = 1.0 / (q_hi - q_lo)
-    span = l_hi * q_hi - l_lo * q_lo
-    base = l_lo * q_lo
-    for i in range(lx.size):
-        q = math.exp(a * lx[i] - top)
-        c = (q - q_lo) * inv
-        out[0, i] = c
-        out[1, i] = ((base - lx[i] * q) + c * span) * inv
-    return True
-
-
-@njit(cache=True, nogil=True)
-def exponential_edges(t, b, out):  # pragma: no cover - compiled
-    """Rows: C, dC/db1 of exp(b1 t), t in [-1, 1] across the window (the formulae of
-    ``ExpPoly.fractions_and_grad``); False for |b1| < 1e-3, where that path uses a series."""
-    if abs(b) < 1e-3:
-        return False
-    em = math.exp(-b)
-    ep = math.exp(b)
-    inv_z = b / (ep - em)
-    ib = 1.0 / b
-    ib2 = ib * ib
-    g0 = em * (ib + ib2)
-    ghi = ep * (ib - ib2) + g0
-    scale = inv_z * ib
-    for i in range(t.size):
-        e = math.exp(b * t[i])
-        c = (e - em) * scale
-        out[0, i] = c
-        out[1, i] = (e * (t[i] * ib - ib2) + g0 - c * ghi) * inv_z
-    return True
-
 
 #: floating-point reordering only (vectorised sums); no assumption about NaN or infinity,
 #: so a bad parameter point still gives a non-finite NLL that the minimiser rejects
@@ -232,8 +144,10 @@ class FusedBinned:
                  floor: float) -> None:
         self.kernels = kernels
         self.plan = plan  # (shape, slice, yield index, need, free rows, yield free row)
-        self.start = np.cumsum([0] + [k.rows for k in kernels])
-        self.cdf = np.zeros((int(self.start[-1]), edges.size))
+        self.start = [0]
+        for k in kernels:
+            self.start.append(self.start[-1] + k.rows)
+        self.cdf = np.zeros((self.start[-1], edges.size))
         self.bins = (np.arange(edges.size - 1) if mask is None else
                      np.flatnonzero(mask)).astype(np.int64)
         self.n, self.s, self.unit, self.floor = n, s, bool(unit), float(floor)
@@ -251,8 +165,22 @@ class FusedBinned:
         self.drow = np.array(drow, np.int64)
         self.dcomp = np.array(dcomp, np.int64)
         self.dfree = np.array(dfree, np.int64)
-        self.value_row = np.asarray(self.start[:-1], np.int64)
+        self.value_row = np.array(self.start[:-1], np.int64)
         self.yield_free = np.array([p[5] for p in plan], np.int64)
+
+    def fractions(self, shape: Any, p: list[float]):
+        """``(fractions, derivatives)`` of component ``shape`` in the used bins at its
+        parameters ``p`` (fractions floored at 0, as ``bin_fractions``), or None."""
+        for kern, plan in zip(self.kernels, self.plan):
+            if plan[0] is shape:
+                out = np.empty((kern.rows, self.cdf.shape[1]))
+                if not kern([float(q) for q in p], out):
+                    return None
+                d = out[:, 1:] - out[:, :-1]
+                if self.bins.size != d.shape[1]:
+                    d = d[:, self.bins]
+                return np.maximum(d[0], 0.0), d[1:]
+        return None
 
     def evaluate(self, v: np.ndarray, info: bool):
         """``(nll without constant, gradient, information or None, mu)`` at the full
@@ -378,3 +306,49 @@ def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - co
         x[m, 0] = a0
         x[m, 1] = a1
         nll[m] = cur
+
+
+@njit(cache=True, nogil=True)
+def solve_small(a, g, out):  # pragma: no cover - compiled
+    """``out = -a^-1 g`` for a small dense ``a`` (Gaussian elimination with partial
+    pivoting on the unit-diagonal scaling of ``a``, as ``minimize._solve`` does with
+    ``numpy.linalg.solve``); False when singular or not finite."""
+    n = g.size
+    m = np.empty((n, n + 1))
+    d = np.empty(n)
+    for i in range(n):
+        v = math.sqrt(abs(a[i, i]))
+        d[i] = v if v > 0.0 else 1.0
+    for i in range(n):
+        for j in range(n):
+            m[i, j] = a[i, j] / (d[i] * d[j])
+        m[i, n] = g[i] / d[i]
+    for c in range(n):
+        p = c
+        big = abs(m[c, c])
+        for r in range(c + 1, n):
+            if abs(m[r, c]) > big:
+                big = abs(m[r, c])
+                p = r
+        if not big > 0.0:
+            return False
+        if p != c:
+            for j in range(c, n + 1):
+                t = m[c, j]
+                m[c, j] = m[p, j]
+                m[p, j] = t
+        for r in range(c + 1, n):
+            f = m[r, c] / m[c, c]
+            if f != 0.0:
+                for j in range(c, n + 1):
+                    m[r, j] -= f * m[c, j]
+    for i in range(n - 1, -1, -1):
+        acc = m[i, n]
+        for j in range(i + 1, n):
+            acc -= m[i, j] * out[j]
+        out[i] = acc / m[i, i]
+    for i in range(n):
+        out[i] = -out[i] / d[i]
+        if not math.isfinite(out[i]):
+            return False
+    return True

@@ -21,7 +21,7 @@ from ..errors import PeaksiftError
 from .cost import BinnedCost
 from .minimize import damped_step, minimize
 from .model import Model
-from .poisson import binned_gradient, binned_information, binned_nll
+from .poisson import binned_gradient, binned_information, binned_nll, use_compiled
 
 __all__ = ["CANDIDATE_MARGIN", "background_start", "fit_starts", "peak_candidates", "worth_trying"]
 
@@ -71,7 +71,7 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
     # differences of NLLs only: the saturated term is left out
     nll0 = binned_nll(n, btot * g, scale, saturated=False)
     x = np.column_stack([np.full(m, 0.1 * math.sqrt(max(btot, 1.0))), np.full(m, btot)])
-    if _compiled():
+    if use_compiled():
         from .kernels import profile_two_yields
 
         nll = np.empty(m)
@@ -100,14 +100,6 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
             if quiet >= 2:
                 break  # no mass gains any more (a coarse scan needs no more)
     return _local_maxima(x, nll, nll0, most)
-
-
-def _compiled() -> bool:
-    """Whether the compiled kernels of :mod:`.kernels` are used (``PEAKSIFT_NUMPY_COST=1``
-    selects the numpy reference instead)."""
-    import os
-
-    return os.environ.get("PEAKSIFT_NUMPY_COST") != "1"
 
 
 def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int):
