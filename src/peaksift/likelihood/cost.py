@@ -243,7 +243,6 @@ class BinnedCost(_Cost):
         n = self.n
         r = (1.0 if self.unit_scale else self.s) - n / mu
         hess = (jac * (n / (mu * mu))) @ jac.T
-        window = self.model.window
         for shape, p, y, g, rows, ry in blocks:
             if g is None:
                 continue
