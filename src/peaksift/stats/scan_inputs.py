@@ -222,9 +222,11 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
     lower = np.concatenate([[0.0], proto.lower])
     upper = np.concatenate([[np.inf], proto.upper])
     names = ["background_yield"] + [f"theta_{k}" for k in range(proto.theta.size)]
-    for i in order[:2]:
+    for rank, i in enumerate(order[:2]):
         if not np.isfinite(nll_g[i]):
             continue
+        if rank and _same_minimum(th_g[i], nll_g[i], th_g[order[0]], nll_g[order[0]]):
+            continue  # the grid's two best starts ended in one minimum: polish it once
         x0 = np.concatenate([[b_g[i]], th_g[i]])
         try:
             mo = minimize(cost, x0, lower, upper, names)
@@ -234,6 +236,13 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
             candidates.append(fit_background(proto, counts[None, :], mo.x[None, 1:],
                                              steps=200))
     return min(candidates, key=lambda c: float(c[2][0]))
+
+
+def _same_minimum(th: np.ndarray, nll: float, th0: np.ndarray, nll0: float) -> bool:
+    """Whether two background fits ended in the same minimum (NLL within 1e-6, every
+    parameter within 1e-6 of its scale)."""
+    return bool(abs(nll - nll0) < 1e-6
+                and np.all(np.abs(th - th0) <= 1e-6 * np.maximum(np.abs(th0), 1.0)))
 
 
 class _BackgroundCost:
