@@ -140,6 +140,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
                                         "(--unblind to fit)"))
     else:
         lines += [_row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
+                  *_scaled_mass(part(part(d, "systematics"), "fitted_mass")),
                   _row(f"fitted width ({fit.get('width_parameter') or 'width'})",
                        format_pm(w.get("value"), w.get("error"), "GeV")),
                   _row("signal yield", format_pm(sy.get("value"), sy.get("error")))]
@@ -193,6 +194,18 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     _doubt_lines(lines, d)
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
+    """The fitted mass with the mass scale profiled (``systematics.fitted_mass``)."""
+    from ._format import fixed
+
+    if not fm:
+        return []
+    size = (fm.get("mass_scale") or {}).get("size")
+    return [_row("  with mass scale", f"{fixed(fm.get('value'))} +{fixed(fm.get('error_plus'))} "
+                 f"-{fixed(fm.get('error_minus'))} GeV (scale uncertainty "
+                 f"{fixed(100 * size if size is not None else None, 2)}% profiled)")]
 
 
 def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:

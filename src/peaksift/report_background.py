@@ -99,6 +99,13 @@ def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> li
             ("global Z", "z_global"), ("global p", "p_global"))
     out.append(("table", ["quantity", "single function, no systematics", "with systematics"],
                 [[lab, number(wo.get(k)), number(w.get(k))] for lab, k in keys]))
+    fm = sy.get("fitted_mass") or {}
+    if fm:
+        out.append(("p", (f"Fitted mass {number(fm['value'], 6)} GeV: statistical errors "
+                    f"-{number(fm['stat_error_minus'], 3)} +{number(fm['stat_error_plus'], 3)}"
+                    f" GeV; with the mass scale ({100 * fm['mass_scale']['size']:.3g}%, "
+                    f"{fm['mass_scale']['kind']}) profiled -{number(fm['error_minus'], 3)} "
+                    f"+{number(fm['error_plus'], 3)} GeV.")))
     pulls = sy.get("nuisance_pulls") or {}
     if pulls:
         out.append(("table", ["nuisance parameter", "pull at the best mass [sigma]"],

@@ -190,6 +190,10 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     else:  # while blinded no fit may look inside the blinded window
         fres = None
     fres = _note_tie_drift(fres, cfg, settings)
+    if syst is not None and fres is not None:  # the fitted mass with the mass scale profiled
+        from .systematics import fitted_mass
+
+        syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
     bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
                 **settings.background_only(sig_fit, start)) if blind_window is None else None
     clock.lap("fits")

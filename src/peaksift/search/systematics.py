@@ -152,6 +152,26 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
     return block, best, obj
 
 
+def fitted_mass(cfg: Config, fit_dict: dict[str, Any]) -> dict[str, Any] | None:
+    """The results.json ``systematics.fitted_mass``: the free fit's peak position with the
+    mass scale profiled (:meth:`peaksift.likelihood.SignalNuisances.mass_interval`, from the
+    fit's profile interval on ``mass``, else its symmetric error); None without a mass
+    scale or a usable fit."""
+    nuis = _nuisances(cfg)
+    pm = fit_dict.get("peak_mass") or {}
+    value, err = pm.get("value"), pm.get("error")
+    iv = (fit_dict.get("intervals") or {}).get("mass")
+    em, ep = (-float(iv[0]), float(iv[1])) if iv and None not in iv else (err, err)
+    if not nuis.mass_scale or value is None or em is None or ep is None:
+        return None
+    if not (np.isfinite([value, em, ep]).all() and em > 0 and ep > 0):
+        return None
+    lo, hi = nuis.mass_interval(float(value), float(em), float(ep))
+    return {"value": float(value), "error_minus": lo, "error_plus": hi,
+            "stat_error_minus": float(em), "stat_error_plus": float(ep),
+            "mass_scale": {"size": nuis.mass_scale, "kind": nuis.kind("mass_scale")}}
+
+
 def _compact(lim: dict[str, Any]) -> dict[str, Any]:
     keys = ("mass", "observed", "expected", "expected_minus2", "expected_minus1",
             "expected_plus1", "expected_plus2", "unit", "cl", "method")
