@@ -175,9 +175,11 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
         from .systematics import run_systematics
 
-        syst, best, _ = run_systematics(cfg, hist, scan_sig, masses, natural_width=width,
-                                        blind=blind_window, best_plain=best,
-                                        progress=progress, executor=_toy_executor(cfg))
+        syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
+                                                natural_width=width, blind=blind_window,
+                                                best_plain=best, progress=progress,
+                                                executor=_toy_executor(cfg))
+        clock.lap("systematics")
 
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
@@ -188,6 +190,10 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     else:  # while blinded no fit may look inside the blinded window
         fres = None
     fres = _note_tie_drift(fres, cfg, settings)
+    if syst is not None and fres is not None:  # the fitted mass with the mass scale profiled
+        from .systematics import fitted_mass
+
+        syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
     bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
                 **settings.background_only(sig_fit, start)) if blind_window is None else None
     clock.lap("fits")
@@ -217,6 +223,13 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
             limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
                              smodel)
             clock.lap("limits")
+            if syst is not None and smodel is None:
+                from .systematics import limits_with_systematics
+
+                syst = {**syst, "limits": limits_with_systematics(
+                    cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
+                    blind=blind_window)}
+                clock.lap("limits with systematics")
     except BaseException:
         if drawing is not None:  # nothing may keep writing into the discarded staging
             drawing.cancel()
