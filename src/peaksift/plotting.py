@@ -11,8 +11,6 @@ Which function
 * :func:`scan_figure` -- the p-value scan with the global significance noted; an excess
   beyond the axis floor is clipped there and its p stated (as a power of ten if need be).
 * :func:`figure_labels` -- the run label and the pair's mass symbol from a configuration.
-* :func:`draw_in_background` -- :func:`search_figures` without the limits, in a forked
-  process while the caller computes the limits; :func:`limits_figure` then adds them.
 * :func:`envelope_figure` -- the background-function envelope: twice the profiled NLL
   against the signal yield at the best mass, one curve per candidate, the envelope over them
   (``background_envelope``, with ``[systematics]`` background families).
@@ -53,7 +51,7 @@ from ._style import (
     shade_blinded,
 )
 
-__all__ = ["FigureLabels", "candidates", "dedx_figure", "draw_in_background", "envelope_figure",
+__all__ = ["FigureLabels", "candidates", "dedx_figure", "envelope_figure",
            "figure_labels", "limits_figure", "save", "scan_figure", "search_figures",
            "spectrum_only"]
 
@@ -108,7 +106,8 @@ def save(fig: Any, outdir: str | os.PathLike[str], name: str,
 def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                   formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                   blind: Sequence[float] | None = None, title: str = "",
-                  labels: FigureLabels | None = None) -> dict[str, Path]:
+                  labels: FigureLabels | None = None,
+                  background: Any = None) -> dict[str, Path]:
     """The selected spectrum as points with Poisson-like error bars (``sqrt(weight_sq_sum)``).
 
     With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
@@ -192,34 +191,46 @@ def candidates(collected: Any, outdir: str | os.PathLike[str], *,
 
 
 # --------------------------------------------------------------------------- search
+#: the figures of a search, in the order the report shows them
+SEARCH_FIGURES = ("spectrum", "pvalue_scan", "limits", "candidates", "background_envelope",
+                  "calibration")
+
+
 def search_figures(result: Any, outdir: str | os.PathLike[str], *,
                    formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                    calibration: tuple[Any, Any] | None = None,
-                   labels: FigureLabels | None = None) -> dict[str, Path]:
-    """Every figure of a search result; returns figure name -> PNG path."""
+                   labels: FigureLabels | None = None,
+                   names: Sequence[str] = SEARCH_FIGURES) -> dict[str, Path]:
+    """Every figure of a search result among ``names`` (default: all) that the result has
+    the results for; returns figure name -> PNG path (``spectrum`` brings ``spectrum_log``
+    with ``log_scale``)."""
     labels = labels or figure_labels(getattr(result, "config", None))
     out: dict[str, Path] = {}
     blind = result.blinding.get("window") if result.blinding.get("active") else None
-    if result.fit is None:  # blinded: the spectrum with the blinded bins hidden, no fit
-        out.update(spectrum_only(result.histogram, outdir, formats=formats, log_scale=log_scale,
-                                 blind=blind, title=_fit_title(result), labels=labels))
-    else:
-        for log in ([False, True] if log_scale else [False]):
-            name = "spectrum_log" if log else "spectrum"
-            out[name] = _fit_figure(result.fit, outdir, name, formats, log=log, blind=blind,
-                                    title=_fit_title(result), labels=labels)
-    out["pvalue_scan"] = _scan_figure(result, outdir, formats, labels)
-    if result.limits is not None:
-        out["limits"] = _limits_figure(result, outdir, formats, labels)
-    if blind is None:  # the pT/rapidity histograms include the blinded window: withheld
-        out.update(candidates(result.collected, outdir, formats=formats, labels=labels))
     syst = getattr(result, "systematics", None) or {}
-    if (syst.get("envelope") or {}).get("profile"):
-        out["background_envelope"] = save(envelope_figure(syst, labels=labels), outdir,
-                                          "background_envelope", formats)
-    if calibration is not None and calibration[1] is not None and result.calibration:
-        out["calibration"] = calibration_figure(result.calibration, calibration[1], outdir,
-                                                formats, labels)
+    for name in names:
+        if name == "spectrum" and result.fit is None:  # blinded: the blinded bins hidden
+            out.update(spectrum_only(result.histogram, outdir, formats=formats,
+                                     log_scale=log_scale, blind=blind,
+                                     title=_fit_title(result), labels=labels,
+                                     background=result.background_fit))
+        elif name == "spectrum":
+            for log in ([False, True] if log_scale else [False]):
+                key = "spectrum_log" if log else "spectrum"
+                out[key] = _fit_figure(result.fit, outdir, key, formats, log=log, blind=blind,
+                                       title=_fit_title(result), labels=labels)
+        elif name == "pvalue_scan":
+            out[name] = _scan_figure(result, outdir, formats, labels)
+        elif name == "limits" and result.limits is not None:
+            out[name] = _limits_figure(result, outdir, formats, labels)
+        elif name == "candidates" and blind is None:  # they include the blinded window
+            out.update(candidates(result.collected, outdir, formats=formats, labels=labels))
+        elif name == "background_envelope" and (syst.get("envelope") or {}).get("profile"):
+            out[name] = save(envelope_figure(syst, labels=labels), outdir, name, formats)
+        elif (name == "calibration" and calibration is not None
+              and calibration[1] is not None and result.calibration):
+            out[name] = calibration_figure(result.calibration, calibration[1], outdir,
+                                           formats, labels)
     return out
 
 
@@ -338,74 +349,6 @@ def limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence
     """The limits figure of a search result (``limits.png`` and the other formats)."""
     return _limits_figure(result, outdir, formats,
                           labels or figure_labels(getattr(result, "config", None)))
-
-
-class _Drawing:
-    """Figures being drawn in a forked process; :meth:`join` waits and returns their paths
-    (drawing them here instead if the process failed, so no figure is ever lost)."""
-
-    def __init__(self, proc: Any, listing: Path, redo: Any) -> None:
-        self.proc, self.listing, self.redo = proc, listing, redo
-
-    def join(self) -> dict[str, Path]:
-        import json
-
-        if self.proc is not None:
-            self.proc.join()
-            if self.proc.exitcode == 0 and self.listing.exists():
-                names = json.loads(self.listing.read_text())
-                self.listing.unlink()
-                return {k: Path(v) for k, v in names.items()}
-        self.listing.unlink(missing_ok=True)
-        return self.redo()
-
-    def cancel(self) -> None:
-        """Stop the drawing process (the caller failed and discards the outputs)."""
-        if self.proc is not None and self.proc.is_alive():
-            self.proc.terminate()
-        if self.proc is not None:
-            self.proc.join()
-
-
-def _draw_child(result: Any, outdir: Path, listing: Path, kw: dict[str, Any]) -> None:
-    """In the forked process: draw, list the files, exit without the parent's clean-up."""
-    import json
-
-    code = 1
-    try:
-        out = search_figures(result, outdir, **kw)
-        listing.write_text(json.dumps({k: str(v) for k, v in out.items()}))
-        code = 0
-    finally:
-        os._exit(code)  # no atexit handlers or buffers of the parent run twice
-
-
-def draw_in_background(result: Any, outdir: str | os.PathLike[str], **kw: Any) -> _Drawing:
-    """Start :func:`search_figures` of ``result`` (its limits left out) in a forked process
-    and return at once; ``.join()`` gives name -> PNG path.  Where fork is not available
-    (or not safe: macOS, Windows), or ``PEAKSIFT_DRAW_INLINE`` is set, the figures are drawn
-    at ``join`` in this process instead.  Either way the files are the same."""
-    import dataclasses
-    import multiprocessing
-
-    from ._processes import quiet_fork, resolve_start_method
-
-    outdir = Path(outdir)
-    outdir.mkdir(parents=True, exist_ok=True)
-    pre = dataclasses.replace(result, limits=None) if dataclasses.is_dataclass(result) \
-        else result
-    listing = outdir / ".drawn.json"
-
-    def redo() -> dict[str, Path]:
-        return search_figures(pre, outdir, **kw)
-
-    if os.environ.get("PEAKSIFT_DRAW_INLINE") or resolve_start_method("auto") != "fork":
-        return _Drawing(None, listing, redo)
-    ctx = multiprocessing.get_context("fork")
-    proc = ctx.Process(target=_draw_child, args=(pre, outdir, listing, kw), daemon=True)
-    with quiet_fork():
-        proc.start()
-    return _Drawing(proc, listing, redo)
 
 
 def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
