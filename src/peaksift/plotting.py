@@ -132,10 +132,18 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     count = (f"sum of weights {number(total)}{where}" if hist.is_weighted
              else f"{number(round(total))} candidates{where}")
     for log in ([False, True] if log_scale else [False]):
-        fig, ax = new_figure((7.0, 4.6))
+        if background is None:
+            fig, ax = new_figure((7.0, 4.6))
+            axp = None
+        else:  # the sideband fit: pulls beneath, as under every fit
+            fig, (ax, axp) = new_figure((7.0, 5.6), 2, 1, sharex=True,
+                                        gridspec_kw={"height_ratios": [3.2, 1],
+                                                     "hspace": 0.05})
         with figure_style():
             h.plot(ax=ax, color=COLORS["data"])
             shade_blinded(ax, span)
+            if background is not None:
+                _draw_sideband_fit(ax, axp, background, span)
             if log:
                 ax.set_yscale("log")
                 pos = shown[shown > 0]  # the axis range must not reveal the hidden bins
@@ -143,7 +151,10 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                     ax.set_ylim(0.5 * pos.min(), 3.0 * pos.max())
             elif shown.size:
                 ax.set_ylim(0, 1.3 * float(np.max(shown + np.sqrt(np.abs(shown)))))
-            ax.set_xlabel(labels.mass_axis(hist.unit))
+            (axp if axp is not None else ax).set_xlabel(labels.mass_axis(hist.unit))
+            if axp is not None:
+                ax.set_xlabel("")
+                ax.set_xlim(float(hist.edges[0]), float(hist.edges[-1]))
             ax.legend(loc="upper right")
             note = "\n".join(p for p in (title, count) if p)
             if "\n" in note:  # a second statement line above the axes
@@ -152,6 +163,37 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
         name = "spectrum_log" if log else "spectrum"
         out[name] = save(fig, outdir, name, formats)
     return out
+
+
+def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None) -> None:
+    """The background fitted on the sidebands (``search.sideband.SidebandFit``): solid
+    where it was fitted, dashed across the blinded window where it is extrapolated, its
+    goodness of fit in the legend; the pulls of the sideband bins beneath."""
+    e = np.asarray(sb.edges, float)
+    c = 0.5 * (e[1:] + e[:-1])
+    bw = np.diff(e)
+    ref = float(np.median(bw))
+    y = np.asarray(sb.expected, float) * ref / bw
+    hid = np.asarray(sb.blinded, bool)
+    # the dashed part reaches one bin into each sideband, so the two parts join
+    near = hid | np.r_[hid[1:], False] | np.r_[False, hid[:-1]]
+    gof = (f"$\\chi^2$/ndf = {fixed(sb.gof_chi2, 1)}/{sb.gof_ndf}, "
+           f"p = {p_value(sb.gof_p_value)}")
+    ax.plot(c, np.where(hid, np.nan, y), color=COLORS["total"], lw=1.4,
+            label=f"background fit to the sidebands ({gof})")
+    if np.any(hid):
+        ax.plot(c, np.where(near, y, np.nan), color=COLORS["total"], lw=1.4, ls="--",
+                label="its extrapolation (blinded)")
+    pulls = np.asarray(sb.pulls, float)
+    axp.axhline(0, color=COLORS["background"], lw=0.8)
+    for lvl in (-2, 2):
+        axp.axhline(lvl, color=COLORS["background"], lw=0.6, ls=":")
+    axp.bar(c, np.nan_to_num(pulls), width=bw, color=COLORS["total"], alpha=0.75)
+    shade_blinded(axp, span, label=None)
+    lim = max(3.5, 1.1 * float(np.nanmax(np.abs(pulls)))) if np.any(np.isfinite(pulls)) \
+        else 3.5
+    axp.set_ylim(-lim, lim)
+    axp.set_ylabel("pull")
 
 
 # ------------------------------------------------------------------------- candidates

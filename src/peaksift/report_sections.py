@@ -208,7 +208,7 @@ def _lee_sentence(r: Mapping[str, Any]) -> str:
     """The look-elsewhere treatment in one technical sentence (method, range, N0 or toys)."""
     best = r.get("best") or {}
     scan = r.get("scan") or {}
-    masses = scan.get("mass") or []
+    masses = scan.get("masses") or []
     fin = [v for v in map(as_finite, masses) if v is not None]
     method = best.get("global_method") or "n/a"
     rng = (f" over the scanned range {fixed(min(fin))}-{fixed(max(fin))} GeV "
@@ -276,9 +276,11 @@ def _known_rows(km: Sequence[Any]) -> list[list[str]]:
 # ------------------------------------------------------------------ background-only fit
 def section_background_fit(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     """The background-only fit: its goodness of fit and every fitted parameter."""
-    b = r.get("background_only_fit")
+    b = r.get("background_fit")
     if not isinstance(b, Mapping) or not b:
         return []
+    if b.get("kind") == "sideband_fit":
+        return _sideband_fit(b)
     gof = b.get("gof") or {}
     rows = [["goodness of fit", _gof_text(gof)],
             ["background shape", str(b.get("background_shape", "n/a"))],
@@ -295,6 +297,37 @@ def section_background_fit(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list
                          f"(p = {p_value(pv)} < 0.05): part of that may be the excess "
                          "itself; if it remains without it, the background shape is doubtful "
                          "and so are the significances built on it.")))
+    return out
+
+
+def _sideband_fit(b: Mapping[str, Any]) -> list[Block]:
+    """The background fitted on the sidebands of a blinded spectrum."""
+    gof = {"chi2": b.get("gof_chi2"), "ndf": b.get("gof_ndf"), "p_value": b.get("gof_p_value")}
+    lo, hi = (b.get("blind") or [None, None])[:2]
+    rows = [["goodness of fit (sidebands only)", _gof_text(gof)],
+            ["background shape", str(b.get("background_shape", "n/a"))],
+            ["fit valid", "yes" if b.get("valid") else
+             "NO: " + "; ".join(b.get("problems") or ["n/a"])],
+            ["events in the sidebands", number(b.get("sideband_events"))]]
+    values, errors = b.get("values") or {}, b.get("errors") or {}
+    for name in b.get("parameters") or []:
+        label = ("background yield (whole window, extrapolated)"
+                 if name == "background_yield" else name.replace("_", " "))
+        rows.append([label, format_pm(values.get(name), errors.get(name))])
+    rows.append([f"background expected in {fixed(lo, 1)}-{fixed(hi, 1)} GeV (blinded)",
+                 format_pm(*_ve(b.get("blinded_yield")))])
+    out: list[Block] = [
+        ("h2", "Background fit on the sidebands"),
+        ("p", (f"The spectrum is blinded in {fixed(lo, 1)}-{fixed(hi, 1)} GeV: the background "
+               "function is fitted to the bins outside that window only, and its "
+               "normalisation carried across it (drawn dashed there on the spectrum "
+               "figure). The count inside stays hidden until the analysis is unblinded.")),
+        ("table", ["quantity", "value"], rows)]
+    pv = as_finite(gof.get("p_value"))
+    if pv is not None and pv < 0.05:
+        out.append(("p", (f"The background function describes the sidebands poorly "
+                         f"(p = {p_value(pv)} < 0.05): its extrapolation under the blinded "
+                         "window, and every significance built on it, are doubtful.")))
     return out
 
 
@@ -413,7 +446,7 @@ def _cl_percent(lim: Mapping[str, Any]) -> str:
 def _limit_rows(r: Mapping[str, Any]) -> tuple[list[str], list[list[str]]]:
     """Every limit point: observed, expected and the +-1, +-2 sigma band edges."""
     lim = r.get("limits") or {}
-    m = lim.get("mass") or []
+    m = lim.get("masses") or []
     if not m:
         return [], []
     unit = lim.get("unit", "events")

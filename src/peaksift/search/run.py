@@ -227,9 +227,11 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                    **settings.arguments())
         bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
                     **settings.background_only(sig_fit, start))
-    else:  # while blinded no fit may look inside the blinded window
-        fres = None
-        bonly = None
+    else:  # while blinded no fit may look inside the blinded window: the background
+        fres = None  # is fitted on the sidebands only, extrapolated under the window
+        from .sideband import sideband_fit
+
+        bonly = sideband_fit(hist, sig_fit, bkg, (lo, hi), blind_window)
     fres = _note_tie_drift(fres, cfg, settings)
     clock.lap("fits")
     if drawer is not None:
