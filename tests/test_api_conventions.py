@@ -140,7 +140,8 @@ def _same(python, stored):
         a = np.array([np.nan if v is None else v for v in np.ravel(stored)], float)
         return np.allclose(np.asarray(python, float).ravel(), a, rtol=1e-12, equal_nan=True)
     if isinstance(python, (int, float, str, bool)) and not isinstance(python, np.generic):
-        return stored == _json(python) or (stored is None and python != python)
+        nan = isinstance(python, float) and np.isnan(python)
+        return stored == _json(python) or (stored is None and nan)
     return True  # structures: their parts are checked by from_dict(to_dict(x)) == x
 
 
