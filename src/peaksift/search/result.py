@@ -186,7 +186,7 @@ class SearchResult:
                 figures={k: Path(outs["dir"]) / "figures" / v
                          for k, v in (outs.get("figures") or {}).items()},
                 fit_settings=settings, input_record=dict(d.get("input") or {}),
-                identification=d.get("identification"))
+                identification=d.get("identification"), systematics=d.get("systematics"))
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"not a results.json written by peaksift search: {exc!r}") \
                 from None
