@@ -344,7 +344,7 @@ def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[
                         f"expected for a signal of {number(s, 3)} events (the fitted size)")
     fig = scan_figure(scan, result.best, labels=labels, expected=expected)
     env = ((getattr(result, "systematics", None) or {}).get("envelope") or {})
-    if env.get("z_local") and env.get("mass"):
+    if env.get("z_local") is not None and len(env["z_local"]) and env.get("mass") is not None:
         _with_systematics(fig.axes[0], env, result.best)
     return save(fig, outdir, "pvalue_scan", formats)
 
