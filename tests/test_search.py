@@ -61,17 +61,17 @@ def test_results_json_has_every_key_with_sane_types(run):
     assert set(fit["gof"]) >= {"chi2", "ndf", "p_value"}
     assert isinstance(fit["gof"]["ndf"], int) and 0 <= fit["gof"]["p_value"] <= 1
     scan = r["scan"]
-    n = len(scan["mass"])
+    n = len(scan["masses"])
     assert n > 20
     for k in ("z_local", "p_local", "signal_yield"):
         assert len(scan[k]) == n and all(isinstance(x, float) for x in scan[k])
-    assert scan["mass"] == sorted(scan["mass"])
+    assert scan["masses"] == sorted(scan["masses"])
     best = r["best"]
     for k in ("mass", "z_local", "p_local", "z_global", "p_global"):
         assert isinstance(best[k], float)
     assert isinstance(best["global_method"], str)
     lim = r["limits"]
-    nl = len(lim["mass"])
+    nl = len(lim["masses"])
     assert nl > 5
     for k in ("observed", "expected", "expected_minus2", "expected_minus1", "expected_plus1",
               "expected_plus2"):
@@ -312,9 +312,9 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     d = json.loads((out / "results.json").read_text())
     assert d == json.loads(json.dumps(d))  # plain JSON
     scan = d["scan"]
-    inside = [i for i, m in enumerate(scan["mass"]) if b0 <= m <= b1]
+    inside = [i for i, m in enumerate(scan["masses"]) if b0 <= m <= b1]
     assert inside and all(scan["z_local"][i] is None for i in inside)
-    assert all(scan["z_local"][i] is not None for i in range(len(scan["mass"]))
+    assert all(scan["z_local"][i] is not None for i in range(len(scan["masses"]))
                if i not in inside)
     assert d["fit"]["peak_mass"]["value"] is None and d["blinding"]["active"]
     assert not (b0 <= d["best"]["mass"] <= b1)

@@ -121,7 +121,7 @@ def _summary(result: object) -> str:
 def _summary_text(d: Mapping[str, Any]) -> str:
     """:func:`_summary` from the results dictionary; every number goes through
     :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
-    from ._format import fixed, format_pm, number, significance
+    from ._format import fixed, format_pm, number, p_value, significance
 
     def part(m: Any, key: str) -> Mapping[str, Any]:
         v = m.get(key) if isinstance(m, Mapping) else None
@@ -138,6 +138,14 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     if blinded:  # intended: no fit inside the blinded window, which is not a failure
         lines.append(_row("signal fit", "not made: the run is blinded as configured "
                                         "(--unblind to fit)"))
+        sb = d.get("background_fit") or {}
+        if sb.get("kind") == "sideband_fit":
+            by = sb.get("blinded_yield") or {}
+            lines.append(_row("background (sidebands)",
+                              f"chi2/ndf = {fixed(sb.get('gof_chi2'), 1)}/{sb.get('gof_ndf')} "
+                              f"(p = {p_value(sb.get('gof_p_value'))}); "
+                              f"{format_pm(by.get('value'), by.get('error'))} expected in the "
+                              "blinded window"))
     else:
         lines += [_row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
                   *_scaled_mass(part(part(d, "systematics"), "fitted_mass")),
