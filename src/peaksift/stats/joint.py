@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 
 from ..likelihood import binned_nll, damped_step
-from .toys import ScanModel, bkg_fractions, bkg_gradients, bkg_second
+from .toys import ScanModel, bkg_fractions, bkg_second
 
 __all__ = ["profile_joint"]
 
@@ -88,8 +88,12 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
              for c, m in enumerate(models)]
     b = [np.array(np.broadcast_to(m.bkg_yield if b_start is None else b_start[c], (nb,)),
                   float) for c, m in enumerate(models)]
-    g = [bkg_fractions(m, th) for m, th in zip(models, theta)]
     ks = [m.theta.size for m in models]
+    # fractions and their gradients together: a trial's gradients are the next Newton
+    # step's (and the final Hessian's), so each accepted point costs one shape evaluation
+    gd = [_per_row(_bkg_both, m, th) for m, th in zip(models, theta)]
+    g = [np.array(x[0]) for x in gd]    # writable: accepted trials are stored in place
+    dg = [np.array(x[1]) for x in gd]
     off = 0 if fixed else 1
     first = []  # index of b_c in the parameter vector
     p = off
@@ -109,15 +113,16 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     if np.any(~np.isfinite(nll)) and not fixed:
         mu = np.where(np.isfinite(nll), mu, 0.0)
         nll = total(mu, b, g, all_rows)
-    d2 = [bkg_second(m, th) if kc else None for m, th, kc in zip(models, theta, ks)]
+    d2 = [_per_row(bkg_second, m, th) if kc else None for m, th, kc in zip(models, theta, ks)]
     lam = np.full(nb, 1e-3)
+    h_last = None if fixed else np.full((nb, p, p), np.nan)  # Hessian where each row stopped
     active = np.ones(nb, bool)
     converged = np.zeros(nb, bool)
     for _ in range(steps):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        grad, hess = _grad_hess(models, n, f, k, mu, b, theta, g, d2, idx, fixed, first, p)
+        grad, hess = _grad_hess(models, n, f, k, mu, b, dg, g, d2, idx, fixed, first, p)
         with np.errstate(all="ignore"):
             err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
         todo = np.ones(idx.size, bool)
@@ -126,13 +131,15 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
             rows = idx[r]
             step = damped_step(hess[r], grad[r], lam[rows])
             tmu = mu[rows] if fixed else mu[rows] + step[:, 0]
-            tb, tth, tg = [], [], []
+            tb, tth, tg, tdg = [], [], [], []
             for c, m in enumerate(models):
                 j = first[c]
                 tb.append(b[c][rows] + step[:, j])
                 th = np.clip(theta[c][rows] + step[:, j + 1:j + 1 + ks[c]], m.lower, m.upper)
                 tth.append(th)
-                tg.append(bkg_fractions(m, th) if ks[c] else g[c][rows])
+                both = _bkg_both(m, th) if ks[c] else (g[c][rows], dg[c][rows])
+                tg.append(both[0])
+                tdg.append(both[1])
             tn = total(tmu, tb, tg, rows)
             ok = tn <= nll[rows] + 1e-9
             acc = rows[ok]
@@ -141,9 +148,12 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
             mu[acc] = tmu[ok]
             for c in range(nc):
                 b[c][acc], theta[c][acc], g[c][acc] = tb[c][ok], tth[c][ok], tg[c][ok]
+                dg[c][acc] = tdg[c][ok]
             nll[acc] = tn[ok]
             converged[rows[conv_]] = True
             active[rows[conv_]] = False
+            if h_last is not None:
+                h_last[rows[conv_]] = hess[r[conv_]]
             lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
             todo[r[ok]] = False
             if not todo.any():
@@ -151,10 +161,18 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
         stuck = idx[todo]
         converged[stuck] = True  # no descent at any damping: at the minimum to rounding
         active[stuck] = False
+        if h_last is not None:
+            h_last[stuck] = hess[todo]
     mu_err = np.full(nb, np.nan)
     if not fixed:
-        # the curvature of the background shapes from the start, as profile_signal does
-        _, h = _grad_hess(models, n, f, k, mu, b, theta, g, d2, all_rows, fixed, first, p)
+        # the exact Hessian (the curvature of the background shapes from the start, as
+        # profile_signal does) where the last step was taken: that step moved a converged
+        # fit by < tol errors, so this is the Hessian at the minimum to that order; rows
+        # stopped by the step limit get theirs here
+        h = h_last
+        redo = np.flatnonzero(np.isnan(h[:, 0, 0]))
+        if redo.size:
+            h[redo] = _grad_hess(models, n, f, k, mu, b, dg, g, d2, redo, fixed, first, p)[1]
         reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
         try:
             cov = np.linalg.inv(h + reg * np.eye(p))
@@ -165,39 +183,76 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
             "converged": converged}
 
 
-def _grad_hess(models, n, f, k, mu, b, theta, g, d2, idx, fixed, first, p):
+def _per_row(func: Any, model: ScanModel, theta: np.ndarray) -> Any:
+    """``func(model, theta)`` (an array or a tuple of arrays) for stacked ``theta (B, K)``,
+    evaluated once when every row is the same (the usual start: each channel's
+    background-only fit for every hypothesis)."""
+    if theta.shape[0] > 1 and np.all(theta == theta[:1]):
+        one = func(model, theta[:1])
+        rows = theta.shape[0]
+
+        def spread(x):
+            return np.ascontiguousarray(np.broadcast_to(x, (rows,) + x.shape[1:]))
+        return tuple(spread(x) for x in one) if isinstance(one, tuple) else spread(one)
+    return func(model, theta)
+
+
+def _bkg_both(model: ScanModel, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Used-bin background fractions ``(B, n_used)`` and their derivatives ``(B, K,
+    n_used)`` from one shape evaluation (as :func:`~peaksift.stats.toys.bkg_fractions` and
+    :func:`~peaksift.stats.toys.bkg_gradients`)."""
+    nb, k = theta.shape
+    if k == 0:
+        return bkg_fractions(model, theta), np.zeros((nb, 0, model.used.size))
+    params = [theta[:, j:j + 1] for j in range(k)]
+    fr, dfr = model.background.fractions_and_grad(model.edges, params, model.window)
+    nw = model.edges.size - 1
+    fr = np.maximum(np.broadcast_to(fr, (nb, nw)), 0.0)  # as bin_fractions: never negative
+    dfr = np.broadcast_to(dfr, (k, nb, nw))
+    if model.bin_scale is not None:
+        fr, dfr = fr * model.bin_scale, dfr * model.bin_scale
+    if model.used.size < nw:
+        fr, dfr = fr[:, model.used], dfr[:, :, model.used]
+    return np.ascontiguousarray(fr), np.ascontiguousarray(np.moveaxis(dfr, 0, 1))
+
+
+def _grad_hess(models, n, f, k, mu, b, dg_all, g, d2, idx, fixed, first, p):
     """Gradient ``(B, P)`` and exact Hessian ``(B, P, P)`` of the summed NLL at rows ``idx``:
     per channel the blocks of :func:`~peaksift.stats.toys.profile_signal`, with the signal
     column ``k_c f_c`` on the shared parameter of interest."""
     nb = idx.size
+    every = nb == mu.size   # all rows: views instead of copies
+    take = (lambda x: x) if every else (lambda x: x[idx])
     grad = np.zeros((nb, p))
     hess = np.zeros((nb, p, p))
     for c, m in enumerate(models):
         kc = m.theta.size
-        bi, gi, fi = b[c][idx], g[c][idx], f[c][idx]
-        sig = (mu[idx] * k[c][idx])[:, None] * fi
-        nu = np.maximum(sig + bi[:, None] * gi, _NU_FLOOR)
-        cols = [gi[:, None, :]]
-        if kc:
-            dg = bkg_gradients(m, theta[c][idx])
-            cols.append(bi[:, None, None] * dg)
-        pos = list(range(first[c], first[c] + 1 + kc))
+        bi, gi, fi, kk = take(b[c]), take(g[c]), take(f[c]), take(k[c])
+        j = 0 if fixed else 1   # row of b_c within this channel's block
+        a = np.empty((nb, j + 1 + kc, gi.shape[1]))
         if not fixed:
-            cols.insert(0, (k[c][idx][:, None] * fi)[:, None, :])
-            pos.insert(0, 0)
-        a = np.concatenate(cols, axis=1)
-        nn = n[c][idx]
-        w = 1.0 - nn / nu
-        gc = np.einsum("bpn,bn->bp", a, w)
-        hc = np.einsum("bpn,bqn,bn->bpq", a, a, nn / nu**2)
+            np.multiply(kk[:, None], fi, out=a[:, 0])
+        a[:, j] = gi
         if kc:
-            j = 0 if fixed else 1   # position of b_c within this channel's block
-            hc[:, j + 1:, j + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
-                                                                     d2[c][idx], w)
-            cross = np.einsum("bkn,bn->bk", dg, w)
+            dg = take(dg_all[c])
+            np.multiply(bi[:, None, None], dg, out=a[:, j + 1:])
+        nu = np.maximum((take(mu) * kk)[:, None] * fi + bi[:, None] * gi, _NU_FLOOR)
+        r = take(n[c]) / nu
+        w = 1.0 - r
+        gc = np.matmul(a, w[:, :, None])[:, :, 0]
+        hc = np.matmul(a * (r / nu)[:, None, :], a.transpose(0, 2, 1))
+        if kc:
+            hc[:, j + 1:, j + 1:] += bi[:, None, None] * np.matmul(
+                take(d2[c]), w[:, None, :, None])[..., 0]
+            cross = np.matmul(dg, w[:, :, None])[:, :, 0]
             hc[:, j, j + 1:] += cross
             hc[:, j + 1:, j] += cross
-        pos = np.asarray(pos)
-        grad[:, pos] += gc
-        hess[:, pos[:, None], pos[None, :]] += hc
+        lo = first[c]
+        grad[:, lo:lo + 1 + kc] += gc[:, j:]
+        hess[:, lo:lo + 1 + kc, lo:lo + 1 + kc] += hc[:, j:, j:]
+        if not fixed:
+            grad[:, 0] += gc[:, 0]
+            hess[:, 0, 0] += hc[:, 0, 0]
+            hess[:, 0, lo:lo + 1 + kc] += hc[:, 0, 1:]
+            hess[:, lo:lo + 1 + kc, 0] += hc[:, 1:, 0]
     return grad, hess
