@@ -6,7 +6,8 @@ its own complete search (its input or selection, objects, pairing, window and bi
 background, signal model or resolution, efficiency and luminosity), run through the same
 code as ``peaksift search`` on that file alone, so each channel's numbers are exactly those
 of its own search.  The combination then fits all channels together with one sigma x B
-(:func:`peaksift.stats.channels.combine` and :func:`~peaksift.stats.channels.combined_limits`).
+(:func:`peaksift.stats.channels.combine` and
+:func:`~peaksift.stats.channel_limits.combined_limits`).
 
 .. code-block:: toml
 
@@ -117,7 +118,8 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     nothing).  ``toys``, ``seed``, ``engine`` override every channel's settings.
     ``share_folder`` as for :func:`~peaksift.search.run_search` (the output-folder contract).
     """
-    from ..stats.channels import combine, combined_limits
+    from ..stats.channel_limits import combined_limits
+    from ..stats.channels import combine
     from .common import _scan_masses, _utc
     from .run import _search
     from .staging import _apply_overrides, _check_inputs, _staged

@@ -16,6 +16,14 @@ at once: Levenberg-Marquardt steps with the exact Hessian (the channels' blocks 
 into one matrix over ``(mu, b_1, theta_1, b_2, theta_2, ...)``), on the exact NLL, the
 same steps as the one-channel :func:`~peaksift.stats.toys.profile_signal`.  A channel with
 ``k_c = 0`` adds its background-only fit and nothing to the parameter of interest.
+
+Normalisation nuisances (``norms``): constrained parameters :math:`\nu_j` (unit Gaussian
+constraint :math:`\nu_j^2/2` in the NLL, auxiliary measurement at 0) that scale channel
+``c``'s signal by :math:`\exp(\sum_j a_{cj}\nu_j)`, i.e. each factor log-normal with
+:math:`a = \ln(1 + \delta)` for a relative uncertainty :math:`\delta`.  A luminosity
+shared by several channels is one column with entries in each of them (fully
+correlated); an efficiency is a column of its own channel.  They are parameters of the same
+Newton steps, with their exact derivatives.
 """
 
 from __future__ import annotations
@@ -43,7 +51,8 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
                   mu_fixed: Any = None, mu_start: Any = None,
                   theta_start: Sequence[np.ndarray] | None = None,
                   b_start: Sequence[np.ndarray] | None = None,
-                  steps: int = 60, tol: float = 1e-6) -> dict[str, Any]:
+                  steps: int = 60, tol: float = 1e-6, norms: Any = None,
+                  nu_start: Any = None, nu_aux: Any = None) -> dict[str, Any]:
     """Joint signal-plus-background fits of several channels for stacked hypotheses.
 
     Parameters
@@ -61,20 +70,28 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
         while every expectation stays positive).
     mu_start, theta_start, b_start :
         Starting values (default 0 and each channel's background-only fit to its data).
+    norms : array, optional
+        ``(n_channels, J)``: the log-normal scales ``a_cj`` of J normalisation nuisances
+        (see the module guide); ``nu_start`` ``(B, J)`` their starting values (default 0);
+        ``nu_aux`` ``(B, J)`` their auxiliary measurements (default 0: the constraint is
+        ``(nu - aux)^2 / 2``; toys draw them).
 
     Returns
     -------
     dict with ``mu``, ``mu_error`` (free fits: from the inverse exact Hessian), ``b`` and
-    ``theta`` (lists per channel), ``nll`` (summed, without the saturated constant) and
-    ``converged``.
+    ``theta`` (lists per channel), ``nu`` ``(B, J)``, ``nll`` (summed, without the saturated
+    constant; with the constraints) and ``converged``.
     """
+    a = None if norms is None else np.asarray(norms, float).reshape(len(models), -1)
+    if a is not None and a.shape[1] == 0:
+        a = None   # no nuisances
     with np.errstate(all="ignore"):
         return _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start,
-                        b_start, steps, tol)
+                        b_start, steps, tol, a, nu_start, nu_aux)
 
 
 def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b_start,
-             steps, tol):
+             steps, tol, a_norm, nu_start, nu_aux):
     nc = len(models)
     f = [np.atleast_2d(np.asarray(x, float)) for x in fractions]
     nb = f[0].shape[0]
@@ -95,24 +112,28 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     g = [np.array(x[0]) for x in gd]    # writable: accepted trials are stored in place
     dg = [np.array(x[1]) for x in gd]
     off = 0 if fixed else 1
-    first = []  # index of b_c in the parameter vector
-    p = off
+    nj = 0 if a_norm is None else a_norm.shape[1]
+    nu = np.array(np.broadcast_to(0.0 if nu_start is None else nu_start, (nb, nj)), float)
+    aux = np.broadcast_to(np.asarray(0.0 if nu_aux is None else nu_aux, float), (nb, nj))
+    first = []  # index of b_c in the parameter vector: (mu), nu_1..nu_J, b_1, theta_1, ...
+    p = off + nj
     for kc in ks:
         first.append(p)
         p += 1 + kc
 
-    def total(mu_, b_, g_, rows):
-        out = 0.0
+    def total(mu_, nu_, b_, g_, rows):
+        out = 0.0 if a_norm is None else 0.5 * np.sum((nu_ - aux[rows]) ** 2, axis=1)
         for c in range(nc):
-            nu = (mu_ * k[c][rows])[:, None] * f[c][rows] + b_[c][:, None] * g_[c]
-            out = out + _channel_nll(n[c][rows], nu)
+            s = mu_ * k[c][rows] * _scale(a_norm, c, nu_)
+            out = out + _channel_nll(n[c][rows], s[:, None] * f[c][rows]
+                                     + b_[c][:, None] * g_[c])
         return out
 
     all_rows = np.arange(nb)
-    nll = total(mu, b, g, all_rows)
+    nll = total(mu, nu, b, g, all_rows)
     if np.any(~np.isfinite(nll)) and not fixed:
         mu = np.where(np.isfinite(nll), mu, 0.0)
-        nll = total(mu, b, g, all_rows)
+        nll = total(mu, nu, b, g, all_rows)
     d2 = [_per_row(bkg_second, m, th) if kc else None for m, th, kc in zip(models, theta, ks)]
     lam = np.full(nb, 1e-3)
     h_last = None if fixed else np.full((nb, p, p), np.nan)  # Hessian where each row stopped
@@ -122,7 +143,8 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        grad, hess = _grad_hess(models, n, f, k, mu, b, dg, g, d2, idx, fixed, first, p)
+        grad, hess = _grad_hess(models, n, f, k, mu, nu - aux, a_norm, b, dg, g, d2, idx,
+                                fixed, first, p, nu)
         with np.errstate(all="ignore"):
             err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
         todo = np.ones(idx.size, bool)
@@ -131,6 +153,7 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
             rows = idx[r]
             step = damped_step(hess[r], grad[r], lam[rows])
             tmu = mu[rows] if fixed else mu[rows] + step[:, 0]
+            tnu = nu[rows] + step[:, off:off + nj]
             tb, tth, tg, tdg = [], [], [], []
             for c, m in enumerate(models):
                 j = first[c]
@@ -140,12 +163,13 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
                 both = _bkg_both(m, th) if ks[c] else (g[c][rows], dg[c][rows])
                 tg.append(both[0])
                 tdg.append(both[1])
-            tn = total(tmu, tb, tg, rows)
+            tn = total(tmu, tnu, tb, tg, rows)
             ok = tn <= nll[rows] + 1e-9
             acc = rows[ok]
             small = np.all(np.abs(step) < tol * err[r], axis=1)
             conv_ = ok & (small | (nll[rows] - tn < 1e-8)) & (lam[rows] <= 1e-2)
             mu[acc] = tmu[ok]
+            nu[acc] = tnu[ok]
             for c in range(nc):
                 b[c][acc], theta[c][acc], g[c][acc] = tb[c][ok], tth[c][ok], tg[c][ok]
                 dg[c][acc] = tdg[c][ok]
@@ -172,15 +196,21 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
         h = h_last
         redo = np.flatnonzero(np.isnan(h[:, 0, 0]))
         if redo.size:
-            h[redo] = _grad_hess(models, n, f, k, mu, b, dg, g, d2, redo, fixed, first, p)[1]
+            h[redo] = _grad_hess(models, n, f, k, mu, nu - aux, a_norm, b, dg, g, d2, redo,
+                                 fixed, first, p, nu)[1]
         reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
         try:
             cov = np.linalg.inv(h + reg * np.eye(p))
             mu_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
         except np.linalg.LinAlgError:
             pass
-    return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nll": nll,
+    return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nu": nu, "nll": nll,
             "converged": converged}
+
+
+def _scale(a_norm: Any, c: int, nu: np.ndarray) -> Any:
+    """Channel ``c``'s signal factor ``exp(sum_j a_cj nu_j)`` per row (1 without norms)."""
+    return 1.0 if a_norm is None else np.exp(nu @ a_norm[c])
 
 
 def _per_row(func: Any, model: ScanModel, theta: np.ndarray) -> Any:
@@ -216,43 +246,62 @@ def _bkg_both(model: ScanModel, theta: np.ndarray) -> tuple[np.ndarray, np.ndarr
     return np.ascontiguousarray(fr), np.ascontiguousarray(np.moveaxis(dfr, 0, 1))
 
 
-def _grad_hess(models, n, f, k, mu, b, dg_all, g, d2, idx, fixed, first, p):
+def _grad_hess(models, n, f, k, mu, pull, a_norm, b, dg_all, g, d2, idx, fixed, first, p,
+               nu=None):
     """Gradient ``(B, P)`` and exact Hessian ``(B, P, P)`` of the summed NLL at rows ``idx``:
     per channel the blocks of :func:`~peaksift.stats.toys.profile_signal`, with the signal
-    column ``k_c f_c`` on the shared parameter of interest."""
+    column ``k_c e_c f_c`` on the shared parameter of interest and ``a_cj s_c f_c`` on each
+    normalisation nuisance of the channel (``e_c`` its signal factor, ``s_c = mu k_c e_c``),
+    plus the nuisances' constraints (``pull = nu - aux``)."""
     nb = idx.size
     every = nb == mu.size   # all rows: views instead of copies
     take = (lambda x: x) if every else (lambda x: x[idx])
     grad = np.zeros((nb, p))
     hess = np.zeros((nb, p, p))
+    off = 0 if fixed else 1
     for c, m in enumerate(models):
         kc = m.theta.size
-        bi, gi, fi, kk = take(b[c]), take(g[c]), take(f[c]), take(k[c])
-        j = 0 if fixed else 1   # row of b_c within this channel's block
-        a = np.empty((nb, j + 1 + kc, gi.shape[1]))
+        bi, gi, fi = take(b[c]), take(g[c]), take(f[c])
+        kk = take(k[c]) * _scale(a_norm, c, take(nu))   # signal events per unit of mu
+        js = [] if a_norm is None else [j for j in range(a_norm.shape[1]) if a_norm[c, j]]
+        sj = off + len(js)      # row of b_c within this channel's block
+        pos = ([0] if not fixed else []) + [off + j for j in js] + list(
+            range(first[c], first[c] + 1 + kc))
+        a = np.empty((nb, len(pos), gi.shape[1]))
+        sig = (take(mu) * kk)[:, None] * fi
         if not fixed:
             np.multiply(kk[:, None], fi, out=a[:, 0])
-        a[:, j] = gi
+        for q, j in enumerate(js):
+            np.multiply(a_norm[c, j], sig, out=a[:, off + q])
+        a[:, sj] = gi
         if kc:
             dg = take(dg_all[c])
-            np.multiply(bi[:, None, None], dg, out=a[:, j + 1:])
-        nu = np.maximum((take(mu) * kk)[:, None] * fi + bi[:, None] * gi, _NU_FLOOR)
-        r = take(n[c]) / nu
+            np.multiply(bi[:, None, None], dg, out=a[:, sj + 1:])
+        nu_c = np.maximum(sig + bi[:, None] * gi, _NU_FLOOR)
+        r = take(n[c]) / nu_c
         w = 1.0 - r
         gc = np.matmul(a, w[:, :, None])[:, :, 0]
-        hc = np.matmul(a * (r / nu)[:, None, :], a.transpose(0, 2, 1))
+        hc = np.matmul(a * (r / nu_c)[:, None, :], a.transpose(0, 2, 1))
         if kc:
-            hc[:, j + 1:, j + 1:] += bi[:, None, None] * np.matmul(
+            hc[:, sj + 1:, sj + 1:] += bi[:, None, None] * np.matmul(
                 take(d2[c]), w[:, None, :, None])[..., 0]
             cross = np.matmul(dg, w[:, :, None])[:, :, 0]
-            hc[:, j, j + 1:] += cross
-            hc[:, j + 1:, j] += cross
-        lo = first[c]
-        grad[:, lo:lo + 1 + kc] += gc[:, j:]
-        hess[:, lo:lo + 1 + kc, lo:lo + 1 + kc] += hc[:, j:, j:]
-        if not fixed:
-            grad[:, 0] += gc[:, 0]
-            hess[:, 0, 0] += hc[:, 0, 0]
-            hess[:, 0, lo:lo + 1 + kc] += hc[:, 0, 1:]
-            hess[:, lo:lo + 1 + kc, 0] += hc[:, 1:, 0]
+            hc[:, sj, sj + 1:] += cross
+            hc[:, sj + 1:, sj] += cross
+        if js:
+            # second derivatives of the signal term times w: d2(s f)/dmu dnu_j = a_j k e f,
+            # d2(s f)/dnu_j dnu_l = a_j a_l s f
+            wf = np.einsum("bn,bn->b", w, fi)
+            aj = a_norm[c, js]
+            hc[:, off:sj, off:sj] += (wf * take(mu) * kk)[:, None, None] * np.outer(aj, aj)
+            if not fixed:
+                hc[:, 0, off:sj] += (wf * kk)[:, None] * aj
+                hc[:, off:sj, 0] += (wf * kk)[:, None] * aj
+        pos = np.asarray(pos)
+        grad[:, pos] += gc
+        hess[:, pos[:, None], pos[None, :]] += hc
+    if a_norm is not None:
+        nj = a_norm.shape[1]
+        grad[:, off:off + nj] += take(pull)
+        hess[:, np.arange(off, off + nj), np.arange(off, off + nj)] += 1.0
     return grad, hess
