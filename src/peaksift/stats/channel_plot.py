@@ -9,17 +9,18 @@ from typing import Any
 
 import numpy as np
 
-from .._style import COLORS, new_figure
+from .._style import COLORS, RunLabel, draw_header, new_figure
 from .significance import p_from_q0
 
 __all__ = ["pvalue_figure"]
 
 
 def pvalue_figure(comb: Any, path: Any = None, *, title: str | None = None,
-                  run_label: str | None = None, symbol: str = "m") -> Any:
+                  run: RunLabel | None = None, symbol: str = "m") -> Any:
     """Local p-values of a :class:`~peaksift.stats.channels.Combination` (one line per
-    channel and the combination); saved to ``path`` when given.  ``symbol``: the pair's mass
-    symbol for the axis (e.g. ``m_{\\mu\\mu}``); ``run_label`` goes in the top-left corner."""
+    channel and the combination); saved to ``path`` when given.  ``symbol``: the mass
+    symbol of the axis (mathtext); ``run``: the run label drawn above the axes with
+    ``title`` (default: the combination's best excess) under it."""
     palette = [COLORS["total"], COLORS["signal"], COLORS["accent"], COLORS["background"]]
     fig, ax = new_figure()
     m = comb.masses
@@ -50,11 +51,11 @@ def pvalue_figure(comb: Any, path: Any = None, *, title: str | None = None,
     ax.legend(loc="lower left")
     ax.text(0.99, 0.02, "local p-values: a local excess is not a discovery",
             transform=ax.transAxes, fontsize=8.5, va="bottom", ha="right")
-    if run_label:
-        ax.text(0.0, 1.02, run_label, transform=ax.transAxes, fontsize=9, va="bottom",
-                ha="left")
-    if title:
-        ax.set_title(title, loc="right", fontsize=10)
+    if title is None:
+        b = comb.best
+        title = (f"combined: best {b['mass']:.5g} GeV, local Z = {b['z_local']:.2f}"
+                 if np.isfinite(b["z_local"]) else "combined local p-values")
+    draw_header(ax, run, title)
     if path is not None:
         fig.savefig(path)
     return fig

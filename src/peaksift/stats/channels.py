@@ -418,12 +418,13 @@ class Combination(FrozenValue):
         out.update(res)
         return plain(out)
 
-    def plot(self, path: Any = None, *, title: str | None = None) -> Any:
+    def plot(self, path: Any = None, *, title: str | None = None, run: Any = None,
+             symbol: str = "m") -> Any:
         """Local p-value against mass: each channel (thin) and the combination (thick);
-        see :func:`peaksift.stats.channel_plot.pvalue_figure`."""
+        see :func:`peaksift.stats.channel_plot.pvalue_figure` (no pyplot)."""
         from .channel_plot import pvalue_figure
 
-        return pvalue_figure(self, path, title=title)
+        return pvalue_figure(self, path, title=title, run=run, symbol=symbol)
 
 
 def combined_toy_scans(models: list, conv: list[np.ndarray], n_toys: int, *,
