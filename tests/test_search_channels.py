@@ -126,3 +126,33 @@ def test_combination_config_is_checked(demo_dir, tmp_path):
     (tmp_path / "c.toml").write_text(text)
     with pytest.raises(ConfigError, match="needs limits.luminosity"):
         run_combination({"combination": {"channels": [str(tmp_path / "c.toml")]}}, out=False)
+
+
+@pytest.mark.slow
+def test_combined_demo_writes_its_report_with_every_channel(demo_dir, tmp_path):
+    """The demo combination (dimuon + dielectron, one shared luminosity): results.json holds
+    the combined scan with its normalisation nuisances (one luminosity, one efficiency per
+    channel: the config's 2% and 5%, as ln(1 + d), the log-normal scale), the combined
+    limits with their method per mass; report.html embeds the combined p-value figure and
+    one spectrum per channel, carries one table per channel and the caution (a local
+    significance is not a discovery); no figure is left open in pyplot."""
+    import math
+
+    res = run_combination(demo_dir / "combined.toml", out=tmp_path / "out", toys=20)
+    d = json.loads((tmp_path / "out" / "results.json").read_text())
+    nuis = d["combined"]["nuisances"]
+    assert set(nuis) == {"luminosity_shared", "efficiency_dimuon", "efficiency_dielectron"}
+    assert nuis["luminosity_shared"]["log_scale"] == pytest.approx([math.log1p(0.02)] * 2)
+    assert nuis["efficiency_dimuon"]["log_scale"] == pytest.approx([math.log1p(0.05), 0.0])
+    lim = d["combined"]["limits"]
+    assert len(lim["methods"]) == len(lim["mass"]) and lim["nuisances"]
+    html = (tmp_path / "out" / "report.html").read_text()
+    assert "A local significance is not a discovery" in html
+    assert "Channel dimuon" in html and "Channel dielectron" in html
+    assert html.count("data:image/png;base64") >= 5   # combined + 2 x (spectrum, p-values)
+    for key in ("pvalue_combined", "dimuon/spectrum", "dielectron/spectrum"):
+        assert (tmp_path / "out" / res.to_dict()["outputs"]["figures"][key]).is_file()
+    import sys
+
+    if "matplotlib.pyplot" in sys.modules:
+        assert not sys.modules["matplotlib.pyplot"].get_fignums()
