@@ -163,7 +163,8 @@ def test_sample_masses_from_the_per_event_truth_column(dimuon, demo_dir):
     generator's per-event true mass, which equals the generated mass in truth.json
     (demo_data/signal/truth.json, the generator's own record; Breit-Wigner of 0.05 GeV width,
     so the median sits within 0.01 GeV); the model built from them matches the one built
-    from the configured masses (efficiency within 1e-3 absolute).  Giving both keys, or a missing column, is refused."""
+    from the configured masses (efficiency within 1e-3 absolute).  Giving both keys, or a
+    missing column, is refused."""
     from peaksift.search.signal import sample_mass
 
     cfg, sm = dimuon
