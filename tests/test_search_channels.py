@@ -145,7 +145,7 @@ def test_combined_demo_writes_its_report_with_every_channel(demo_dir, tmp_path):
     assert nuis["luminosity_shared"]["log_scale"] == pytest.approx([math.log1p(0.02)] * 2)
     assert nuis["efficiency_dimuon"]["log_scale"] == pytest.approx([math.log1p(0.05), 0.0])
     lim = d["combined"]["limits"]
-    assert len(lim["methods"]) == len(lim["mass"]) and lim["nuisances"]
+    assert len(lim["methods"]) == len(lim["masses"]) and lim["nuisances"]
     html = (tmp_path / "out" / "report.html").read_text()
     assert "A local significance is not a discovery" in html
     assert "Channel dimuon" in html and "Channel dielectron" in html

@@ -115,7 +115,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                 out.append(("figure", f"{n}/{key}", f"Channel {n}: {what}."))
     lim = c.get("limits")
     if lim:
-        masses = lim["mass"]
+        masses = lim["masses"]
         step = max(1, len(masses) // 12)
         methods = lim.get("methods") or ["asymptotic"] * len(masses)
         rows = [[_f(masses[i], 4), _f(lim["observed"][i]), _f(lim["expected"][i]),

@@ -65,7 +65,7 @@ class CombinedLimits(FrozenValue):
 
     def to_dict(self) -> dict[str, Any]:
         return plain({
-            "combined": {"mass": self.masses, "observed": self.observed,
+            "combined": {"masses": self.masses, "observed": self.observed,
                          "expected": self.expected, "expected_minus2": self.bands[0],
                          "expected_minus1": self.bands[1], "expected_plus1": self.bands[3],
                          "expected_plus2": self.bands[4], "cl": self.cl, "unit": self.unit,

@@ -391,7 +391,7 @@ class Combination(FrozenValue):
         channel's scan, with its luminosity and conversion)."""
         return plain({
             "combined": {
-                "mass": self.masses, "z_local": self.z_local, "p_local": self.p_local,
+                "masses": self.masses, "z_local": self.z_local, "p_local": self.p_local,
                 "q0": self.q0, "cross_section": self.cross_section,
                 "cross_section_error": self.cross_section_error, "unit": self.unit,
                 "z_expected": self.z_expected,

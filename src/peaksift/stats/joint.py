@@ -12,9 +12,12 @@ NLLs (:func:`peaksift.likelihood.binned_nll`): the likelihood is the product of 
 channels'.
 
 :func:`profile_joint` fits that likelihood for stacked hypotheses (masses, or toys x masses)
-at once: Levenberg-Marquardt steps with the exact Hessian (the channels' blocks scattered
-into one matrix over ``(mu, b_1, theta_1, b_2, theta_2, ...)``), on the exact NLL, the
-same steps as the one-channel :func:`~peaksift.stats.toys.profile_signal`.  A channel with
+at once: :func:`peaksift.likelihood.minimize_stacked` with the exact Hessian (the channels'
+blocks scattered into one matrix over ``(mu, nu_1..nu_J, b_1, theta_1, b_2, theta_2,
+...)``), on the exact NLL, as the one-channel :func:`~peaksift.stats.toys.profile_signal`
+does.  Each trial point evaluates every channel's background fractions and their
+gradients in one shape call (the driver's state), so an accepted step costs one shape
+evaluation per channel; rows that start at the same shape parameters are evaluated once.  A channel with
 ``k_c = 0`` adds its background-only fit and nothing to the parameter of interest.
 
 Normalisation nuisances (``norms``): constrained parameters :math:`\nu_j` (unit Gaussian
@@ -33,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import binned_nll, damped_step
+from ..likelihood import binned_nll, first_error, minimize_stacked
 from .toys import ScanModel, bkg_fractions, bkg_second
 
 __all__ = ["profile_joint"]
@@ -106,11 +109,6 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     b = [np.array(np.broadcast_to(m.bkg_yield if b_start is None else b_start[c], (nb,)),
                   float) for c, m in enumerate(models)]
     ks = [m.theta.size for m in models]
-    # fractions and their gradients together: a trial's gradients are the next Newton
-    # step's (and the final Hessian's), so each accepted point costs one shape evaluation
-    gd = [_per_row(_bkg_both, m, th) for m, th in zip(models, theta)]
-    g = [np.array(x[0]) for x in gd]    # writable: accepted trials are stored in place
-    dg = [np.array(x[1]) for x in gd]
     off = 0 if fixed else 1
     nj = 0 if a_norm is None else a_norm.shape[1]
     nu = np.array(np.broadcast_to(0.0 if nu_start is None else nu_start, (nb, nj)), float)
@@ -120,6 +118,11 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     for kc in ks:
         first.append(p)
         p += 1 + kc
+    # fractions and their gradients together: a trial's gradients are the next Newton
+    # step's, so each accepted point costs one shape evaluation per channel
+    gd = [_per_row(_bkg_both, m, th) for m, th in zip(models, theta)]
+    g0 = [x[0] for x in gd]
+    dg0 = [x[1] for x in gd]
 
     def total(mu_, nu_, b_, g_, rows):
         out = 0.0 if a_norm is None else 0.5 * np.sum((nu_ - aux[rows]) ** 2, axis=1)
@@ -130,82 +133,60 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
         return out
 
     all_rows = np.arange(nb)
-    nll = total(mu, nu, b, g, all_rows)
+    nll = total(mu, nu, b, g0, all_rows)
     if np.any(~np.isfinite(nll)) and not fixed:
         mu = np.where(np.isfinite(nll), mu, 0.0)
-        nll = total(mu, nu, b, g, all_rows)
+        nll = total(mu, nu, b, g0, all_rows)
     d2 = [_per_row(bkg_second, m, th) if kc else None for m, th, kc in zip(models, theta, ks)]
-    lam = np.full(nb, 1e-3)
-    h_last = None if fixed else np.full((nb, p, p), np.nan)  # Hessian where each row stopped
-    active = np.ones(nb, bool)
-    converged = np.zeros(nb, bool)
-    for _ in range(steps):
-        idx = np.flatnonzero(active)
-        if idx.size == 0:
-            break
-        grad, hess = _grad_hess(models, n, f, k, mu, nu - aux, a_norm, b, dg, g, d2, idx,
-                                fixed, first, p, nu)
-        with np.errstate(all="ignore"):
-            err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
-        todo = np.ones(idx.size, bool)
-        for _try in range(12):
-            r = np.flatnonzero(todo)
-            rows = idx[r]
-            step = damped_step(hess[r], grad[r], lam[rows])
-            tmu = mu[rows] if fixed else mu[rows] + step[:, 0]
-            tnu = nu[rows] + step[:, off:off + nj]
-            tb, tth, tg, tdg = [], [], [], []
-            for c, m in enumerate(models):
-                j = first[c]
-                tb.append(b[c][rows] + step[:, j])
-                th = np.clip(theta[c][rows] + step[:, j + 1:j + 1 + ks[c]], m.lower, m.upper)
-                tth.append(th)
-                both = _bkg_both(m, th) if ks[c] else (g[c][rows], dg[c][rows])
-                tg.append(both[0])
-                tdg.append(both[1])
-            tn = total(tmu, tnu, tb, tg, rows)
-            ok = tn <= nll[rows] + 1e-9
-            acc = rows[ok]
-            small = np.all(np.abs(step) < tol * err[r], axis=1)
-            conv_ = ok & (small | (nll[rows] - tn < 1e-8)) & (lam[rows] <= 1e-2)
-            mu[acc] = tmu[ok]
-            nu[acc] = tnu[ok]
-            for c in range(nc):
-                b[c][acc], theta[c][acc], g[c][acc] = tb[c][ok], tth[c][ok], tg[c][ok]
-                dg[c][acc] = tdg[c][ok]
-            nll[acc] = tn[ok]
-            converged[rows[conv_]] = True
-            active[rows[conv_]] = False
-            if h_last is not None:
-                h_last[rows[conv_]] = hess[r[conv_]]
-            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
-            todo[r[ok]] = False
-            if not todo.any():
-                break
-        stuck = idx[todo]
-        converged[stuck] = True  # no descent at any damping: at the minimum to rounding
-        active[stuck] = False
-        if h_last is not None:
-            h_last[stuck] = hess[todo]
+
+    def unpack(x, rows):
+        mu_ = mu[rows] if fixed else x[:, 0]
+        return (mu_, x[:, off:off + nj], [x[:, j] for j in first],
+                [x[:, j + 1:j + 1 + kc] for j, kc in zip(first, ks)])
+
+    def value(x, rows):
+        tmu, tnu, tb, tth = unpack(x, rows)
+        both = [_bkg_both(m, th) if kc else (g0[c][rows], dg0[c][rows])
+                for c, (m, th, kc) in enumerate(zip(models, tth, ks))]
+        tg = tuple(x[0] for x in both)
+        return total(tmu, tnu, tb, tg, rows), tg + tuple(x[1] for x in both)
+
+    def grad_hess(x, state, rows):
+        xmu, xnu, xb, _ = unpack(x, rows)
+        return _grad_hess(models, n, f, k, xmu, xnu - aux[rows], a_norm, xb,
+                          state[nc:], state[:nc], d2, rows, fixed, first, p, xnu)
+
+    free = [] if fixed else [mu[:, None]]
+    x0 = np.concatenate(free + [nu] + [a for c in range(nc) for a in (b[c][:, None],
+                                                                       theta[c])], axis=1)
+    # a normalisation nuisance beyond 10 sigma is no fit (and exp() stays finite)
+    lower = np.concatenate([np.full(off, -np.inf), np.full(nj, -10.0)]
+                           + [np.r_[-np.inf, m.lower] for m in models])
+    upper = np.concatenate([np.full(off, np.inf), np.full(nj, 10.0)]
+                           + [np.r_[np.inf, m.upper] for m in models])
+    r = minimize_stacked(value, grad_hess, x0, lower, upper,
+                         start=(nll, tuple(g0) + tuple(dg0)), steps=steps, nll_tol=1e-8,
+                         step_tol=tol)
+    mu, nu, b, theta = unpack(r.x, all_rows)
+    mu, nu = mu.copy(), nu.copy()
+    b, theta = [v.copy() for v in b], [v.copy() for v in theta]
+    g, dg = list(r.state[:nc]), list(r.state[nc:])
     mu_err = np.full(nb, np.nan)
     if not fixed:
-        # the exact Hessian (the curvature of the background shapes from the start, as
-        # profile_signal does) where the last step was taken: that step moved a converged
-        # fit by < tol errors, so this is the Hessian at the minimum to that order; rows
-        # stopped by the step limit get theirs here
-        h = h_last
-        redo = np.flatnonzero(np.isnan(h[:, 0, 0]))
+        # the exact Hessian (the background shapes' curvature from the start, as
+        # profile_signal does) where each fit took its last step: that step moved a
+        # converged fit by < tol errors, so it is the Hessian at the minimum to that order;
+        # rows without one get theirs here
+        h = np.array(r.hessian) if r.hessian.shape[1:] == (p, p) else np.zeros((nb, p, p))
+        redo = np.flatnonzero(~np.any(h, axis=(1, 2)))
         if redo.size:
-            h[redo] = _grad_hess(models, n, f, k, mu, nu - aux, a_norm, b, dg, g, d2, redo,
-                                 fixed, first, p, nu)[1]
-        reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
-        try:
-            cov = np.linalg.inv(h + reg * np.eye(p))
-            mu_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
-        except np.linalg.LinAlgError:
-            pass
-    return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nu": nu, "nll": nll,
-            "converged": converged}
+            h[redo] = _grad_hess(models, n, f, k, mu[redo], nu[redo] - aux[redo], a_norm,
+                                 [v[redo] for v in b], [v[redo] for v in dg],
+                                 [v[redo] for v in g], d2, redo, fixed, first, p,
+                                 nu[redo])[1]
+        mu_err = first_error(h)
+    return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nu": nu, "nll": r.nll,
+            "converged": r.converged}
 
 
 def _scale(a_norm: Any, c: int, nu: np.ndarray) -> Any:
@@ -246,37 +227,38 @@ def _bkg_both(model: ScanModel, theta: np.ndarray) -> tuple[np.ndarray, np.ndarr
     return np.ascontiguousarray(fr), np.ascontiguousarray(np.moveaxis(dfr, 0, 1))
 
 
-def _grad_hess(models, n, f, k, mu, pull, a_norm, b, dg_all, g, d2, idx, fixed, first, p,
+def _grad_hess(models, n, f, k, mu, pull, a_norm, b, dg, g, d2, idx, fixed, first, p,
                nu=None):
-    """Gradient ``(B, P)`` and exact Hessian ``(B, P, P)`` of the summed NLL at rows ``idx``:
-    per channel the blocks of :func:`~peaksift.stats.toys.profile_signal`, with the signal
-    column ``k_c e_c f_c`` on the shared parameter of interest and ``a_cj s_c f_c`` on each
-    normalisation nuisance of the channel (``e_c`` its signal factor, ``s_c = mu k_c e_c``),
-    plus the nuisances' constraints (``pull = nu - aux``)."""
+    """Gradient ``(R, P)`` and exact Hessian ``(R, P, P)`` of the summed NLL at rows ``idx``
+    (``mu``, ``pull = nu - aux``, ``nu``, ``b``, ``dg``, ``g`` are already those rows';
+    ``n``, ``f``, ``k``, ``d2`` are indexed here): per channel the blocks of
+    :func:`~peaksift.stats.toys.profile_signal`, with the signal column ``k_c e_c f_c`` on the
+    shared parameter of interest and ``a_cj s_c f_c`` on each normalisation nuisance of the
+    channel (``e_c`` its signal factor, ``s_c = mu k_c e_c``), plus the constraints."""
     nb = idx.size
-    every = nb == mu.size   # all rows: views instead of copies
+    every = nb == f[0].shape[0]   # all rows: views instead of copies
     take = (lambda x: x) if every else (lambda x: x[idx])
     grad = np.zeros((nb, p))
     hess = np.zeros((nb, p, p))
     off = 0 if fixed else 1
     for c, m in enumerate(models):
         kc = m.theta.size
-        bi, gi, fi = take(b[c]), take(g[c]), take(f[c])
-        kk = take(k[c]) * _scale(a_norm, c, take(nu))   # signal events per unit of mu
+        bi, gi, fi = b[c], g[c], take(f[c])
+        kk = take(k[c]) * _scale(a_norm, c, nu)   # signal events per unit of mu
         js = [] if a_norm is None else [j for j in range(a_norm.shape[1]) if a_norm[c, j]]
         sj = off + len(js)      # row of b_c within this channel's block
         pos = ([0] if not fixed else []) + [off + j for j in js] + list(
             range(first[c], first[c] + 1 + kc))
         a = np.empty((nb, len(pos), gi.shape[1]))
-        sig = (take(mu) * kk)[:, None] * fi
+        sig = (mu * kk)[:, None] * fi
         if not fixed:
             np.multiply(kk[:, None], fi, out=a[:, 0])
         for q, j in enumerate(js):
             np.multiply(a_norm[c, j], sig, out=a[:, off + q])
         a[:, sj] = gi
         if kc:
-            dg = take(dg_all[c])
-            np.multiply(bi[:, None, None], dg, out=a[:, sj + 1:])
+            dgc = dg[c]
+            np.multiply(bi[:, None, None], dgc, out=a[:, sj + 1:])
         nu_c = np.maximum(sig + bi[:, None] * gi, _NU_FLOOR)
         r = take(n[c]) / nu_c
         w = 1.0 - r
@@ -285,7 +267,7 @@ def _grad_hess(models, n, f, k, mu, pull, a_norm, b, dg_all, g, d2, idx, fixed, 
         if kc:
             hc[:, sj + 1:, sj + 1:] += bi[:, None, None] * np.matmul(
                 take(d2[c]), w[:, None, :, None])[..., 0]
-            cross = np.matmul(dg, w[:, :, None])[:, :, 0]
+            cross = np.matmul(dgc, w[:, :, None])[:, :, 0]
             hc[:, sj, sj + 1:] += cross
             hc[:, sj + 1:, sj] += cross
         if js:
@@ -293,7 +275,7 @@ def _grad_hess(models, n, f, k, mu, pull, a_norm, b, dg_all, g, d2, idx, fixed, 
             # d2(s f)/dnu_j dnu_l = a_j a_l s f
             wf = np.einsum("bn,bn->b", w, fi)
             aj = a_norm[c, js]
-            hc[:, off:sj, off:sj] += (wf * take(mu) * kk)[:, None, None] * np.outer(aj, aj)
+            hc[:, off:sj, off:sj] += (wf * mu * kk)[:, None, None] * np.outer(aj, aj)
             if not fixed:
                 hc[:, 0, off:sj] += (wf * kk)[:, None] * aj
                 hc[:, off:sj, 0] += (wf * kk)[:, None] * aj
@@ -302,6 +284,6 @@ def _grad_hess(models, n, f, k, mu, pull, a_norm, b, dg_all, g, d2, idx, fixed, 
         hess[:, pos[:, None], pos[None, :]] += hc
     if a_norm is not None:
         nj = a_norm.shape[1]
-        grad[:, off:off + nj] += take(pull)
+        grad[:, off:off + nj] += pull
         hess[:, np.arange(off, off + nj), np.arange(off, off + nj)] += 1.0
     return grad, hess
