@@ -36,17 +36,13 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import binned_nll, first_error, minimize_stacked
+from ..likelihood import first_error, minimize_stacked
+from .joint_kernels import channel_nll, sums
 from .toys import ScanModel, bkg_fractions, bkg_second
 
 __all__ = ["profile_joint"]
 
 _NU_FLOOR = 1e-100
-
-
-def _channel_nll(n: np.ndarray, nu: np.ndarray) -> np.ndarray:
-    bad = np.any(nu <= 0, axis=1)
-    return np.where(bad, np.inf, binned_nll(n, nu, saturated=False))
 
 
 def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
@@ -125,11 +121,15 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     dg0 = [x[1] for x in gd]
 
     def total(mu_, nu_, b_, g_, rows):
-        out = 0.0 if a_norm is None else 0.5 * np.sum((nu_ - aux[rows]) ** 2, axis=1)
+        out = np.zeros(rows.size) if a_norm is None else 0.5 * np.sum(
+            (nu_ - aux[rows]) ** 2, axis=1)
+        every = rows.size == nb
         for c in range(nc):
-            s = mu_ * k[c][rows] * _scale(a_norm, c, nu_)
-            out = out + _channel_nll(n[c][rows], s[:, None] * f[c][rows]
-                                     + b_[c][:, None] * g_[c])
+            s = np.ascontiguousarray(mu_ * k[c][rows] * _scale(a_norm, c, nu_), float)
+            part = np.empty(rows.size)
+            channel_nll(n[c] if every else n[c][rows], f[c] if every else f[c][rows],
+                        g_[c], s, np.ascontiguousarray(b_[c], float), part)
+            out = out + part
         return out
 
     all_rows = np.arange(nb)
@@ -137,7 +137,8 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     if np.any(~np.isfinite(nll)) and not fixed:
         mu = np.where(np.isfinite(nll), mu, 0.0)
         nll = total(mu, nu, b, g0, all_rows)
-    d2 = [_per_row(bkg_second, m, th) if kc else None for m, th, kc in zip(models, theta, ks)]
+    d2 = [_per_row(bkg_second, m, th, view=True) if kc else None
+          for m, th, kc in zip(models, theta, ks)]
 
     def unpack(x, rows):
         mu_ = mu[rows] if fixed else x[:, 0]
@@ -194,7 +195,7 @@ def _scale(a_norm: Any, c: int, nu: np.ndarray) -> Any:
     return 1.0 if a_norm is None else np.exp(nu @ a_norm[c])
 
 
-def _per_row(func: Any, model: ScanModel, theta: np.ndarray) -> Any:
+def _per_row(func: Any, model: ScanModel, theta: np.ndarray, view: bool = False) -> Any:
     """``func(model, theta)`` (an array or a tuple of arrays) for stacked ``theta (B, K)``,
     evaluated once when every row is the same (the usual start: each channel's
     background-only fit for every hypothesis)."""
@@ -203,7 +204,8 @@ def _per_row(func: Any, model: ScanModel, theta: np.ndarray) -> Any:
         rows = theta.shape[0]
 
         def spread(x):
-            return np.ascontiguousarray(np.broadcast_to(x, (rows,) + x.shape[1:]))
+            out = np.broadcast_to(x, (rows,) + x.shape[1:])   # read-only, one row's memory
+            return out if view else np.ascontiguousarray(out)
         return tuple(spread(x) for x in one) if isinstance(one, tuple) else spread(one)
     return func(model, theta)
 
@@ -234,52 +236,65 @@ def _grad_hess(models, n, f, k, mu, pull, a_norm, b, dg, g, d2, idx, fixed, firs
     ``n``, ``f``, ``k``, ``d2`` are indexed here): per channel the blocks of
     :func:`~peaksift.stats.toys.profile_signal`, with the signal column ``k_c e_c f_c`` on the
     shared parameter of interest and ``a_cj s_c f_c`` on each normalisation nuisance of the
-    channel (``e_c`` its signal factor, ``s_c = mu k_c e_c``), plus the constraints."""
+    channel (``e_c`` its signal factor, ``s_c = mu k_c e_c``), plus the constraints.  The
+    sums over bins come from one compiled pass per channel
+    (:func:`peaksift.stats.joint_kernels.channel_sums`)."""
     nb = idx.size
-    every = nb == f[0].shape[0]   # all rows: views instead of copies
-    take = (lambda x: x) if every else (lambda x: x[idx])
+    every = nb == f[0].shape[0]
+
+    def take(x):
+        # all rows, or rows that are one row repeated (shared counts, the start's shape
+        # curvature): views instead of copies
+        if every:
+            return x
+        if x.strides[0] == 0:
+            return np.broadcast_to(x[0], (nb,) + x.shape[1:])
+        return x[idx]
+
     grad = np.zeros((nb, p))
     hess = np.zeros((nb, p, p))
     off = 0 if fixed else 1
     for c, m in enumerate(models):
         kc = m.theta.size
-        bi, gi, fi = b[c], g[c], take(f[c])
+        bi = np.ascontiguousarray(b[c], float)
         kk = take(k[c]) * _scale(a_norm, c, nu)   # signal events per unit of mu
+        s = np.ascontiguousarray(mu * kk, float)
+        d2c = take(d2[c]) if kc else np.zeros((nb, 0, 0, 1))
+        fs, gs, ds, dd = sums(take(n[c]), take(f[c]), g[c], dg[c], d2c, s, bi)
         js = [] if a_norm is None else [j for j in range(a_norm.shape[1]) if a_norm[c, j]]
-        sj = off + len(js)      # row of b_c within this channel's block
-        pos = ([0] if not fixed else []) + [off + j for j in js] + list(
-            range(first[c], first[c] + 1 + kc))
-        a = np.empty((nb, len(pos), gi.shape[1]))
-        sig = (mu * kk)[:, None] * fi
-        if not fixed:
-            np.multiply(kk[:, None], fi, out=a[:, 0])
-        for q, j in enumerate(js):
-            np.multiply(a_norm[c, j], sig, out=a[:, off + q])
-        a[:, sj] = gi
-        if kc:
-            dgc = dg[c]
-            np.multiply(bi[:, None, None], dgc, out=a[:, sj + 1:])
-        nu_c = np.maximum(sig + bi[:, None] * gi, _NU_FLOOR)
-        r = take(n[c]) / nu_c
-        w = 1.0 - r
-        gc = np.matmul(a, w[:, :, None])[:, :, 0]
-        hc = np.matmul(a * (r / nu_c)[:, None, :], a.transpose(0, 2, 1))
-        if kc:
-            hc[:, sj + 1:, sj + 1:] += bi[:, None, None] * np.matmul(
-                take(d2[c]), w[:, None, :, None])[..., 0]
-            cross = np.matmul(dgc, w[:, :, None])[:, :, 0]
-            hc[:, sj, sj + 1:] += cross
-            hc[:, sj + 1:, sj] += cross
+        # the signal columns: d nu / d mu = k e f, d nu / d nu_j = a_j s f
+        coef = ([] if fixed else [kk]) + [a_norm[c, j] * s for j in js]
+        pos_s = ([] if fixed else [0]) + [off + j for j in js]
+        pos_b = list(range(first[c], first[c] + 1 + kc))
+        pos = np.asarray(pos_s + pos_b)
+        ns = len(coef)
+        q = ns + 1 + kc
+        gc = np.zeros((nb, q))
+        hc = np.zeros((nb, q, q))
+        cf = np.stack(coef, axis=1) if coef else np.zeros((nb, 0))
+        gc[:, :ns] = cf * fs[:, :1]
+        gc[:, ns] = gs[:, 0]
+        gc[:, ns + 1:] = bi[:, None] * ds
+        hc[:, :ns, :ns] = cf[:, :, None] * cf[:, None, :] * fs[:, 1, None, None]
+        hc[:, :ns, ns] = hc[:, ns, :ns] = cf * fs[:, 2:3]
+        fdb = cf[:, :, None] * (bi[:, None] * fs[:, 3:])[:, None, :]
+        hc[:, :ns, ns + 1:] = fdb
+        hc[:, ns + 1:, :ns] = fdb.transpose(0, 2, 1)
+        hc[:, ns, ns] = gs[:, 1]
+        cross = bi[:, None] * gs[:, 2:] + ds
+        hc[:, ns, ns + 1:] = hc[:, ns + 1:, ns] = cross
+        hc[:, ns + 1:, ns + 1:] = ((bi * bi)[:, None, None] * dd[:, 0]
+                                   + bi[:, None, None] * dd[:, 1])
         if js:
             # second derivatives of the signal term times w: d2(s f)/dmu dnu_j = a_j k e f,
             # d2(s f)/dnu_j dnu_l = a_j a_l s f
-            wf = np.einsum("bn,bn->b", w, fi)
+            wf = fs[:, 0]
             aj = a_norm[c, js]
-            hc[:, off:sj, off:sj] += (wf * mu * kk)[:, None, None] * np.outer(aj, aj)
+            o = 0 if fixed else 1
+            hc[:, o:ns, o:ns] += (wf * s)[:, None, None] * np.outer(aj, aj)
             if not fixed:
-                hc[:, 0, off:sj] += (wf * kk)[:, None] * aj
-                hc[:, off:sj, 0] += (wf * kk)[:, None] * aj
-        pos = np.asarray(pos)
+                hc[:, 0, 1:ns] += (wf * kk)[:, None] * aj
+                hc[:, 1:ns, 0] += (wf * kk)[:, None] * aj
         grad[:, pos] += gc
         hess[:, pos[:, None], pos[None, :]] += hc
     if a_norm is not None:
