@@ -125,3 +125,61 @@ def test_nuisances_change_the_nll_the_way_the_uncertainty_says():
     without = profile_joint(models, *args, mu_fixed=np.array([30.0]))
     assert with_n["nll"][0] < without["nll"][0] - 0.1
     assert np.all(with_n["nu"][0] < 0)     # a too-large signal: every factor pulled down
+
+
+def test_mass_scale_factor_of_one_channel_in_the_combined_scan():
+    """Channel mumu carries a 1% mass-scale nuisance (Gaussian constraint ((k - 1)/0.01)^2/2,
+    common practice; Cowan et al. 2011 sec. 2), its peak generated at 151 GeV; the combined
+    q0 at the 150 GeV hypothesis and the fitted factor k against the product likelihood
+    written here (the mumu signal's Gaussian bin integrals centred at 150 k,
+    scipy.stats.norm.cdf; exponential backgrounds) minimised by iminuit (MIGRAD, strategy 2):
+    2e-3 absolute on q0, 1e-3 on k (0.1 of its constraint)."""
+    from iminuit import Minuit
+
+    rng = np.random.default_rng(21)
+    bkg = 110.0 + rng.exponential(50.0, 3000)
+    x = np.concatenate([bkg[bkg < 190.0], rng.normal(151.0, SIGMA, 70)])
+    h1 = MassHistogram.from_masses(x, bins=EDGES.size - 1, range=WINDOW)
+    h2 = _hist(12, -0.03, 2000, 20)
+    chans = [Channel("mumu", h1, "exponential", 8.0, signal="gaussian",
+                     resolution=Resolution.absolute(SIGMA), efficiency=0.5,
+                     shape_nuisances={"mass_scale": 0.01}),
+             Channel("ee", h2, "exponential", 4.0, signal="gaussian",
+                     resolution=Resolution.absolute(SIGMA), efficiency=0.5)]
+    c = combine(chans, np.array([150.0]), refit=False)
+    assert "mass_scale_mumu" in c.nuisances
+    lo, hi = WINDOW
+    ns = [np.asarray(h.weight_sum) for h in (h1, h2)]
+
+    def fsig(m):
+        fs = np.diff(stats.norm.cdf(EDGES, m, SIGMA))
+        return fs / (stats.norm.cdf(hi, m, SIGMA) - stats.norm.cdf(lo, m, SIGMA))
+
+    def g(slope):
+        e = np.exp(slope * (EDGES - lo))
+        return np.diff(e) / (e[-1] - e[0])
+
+    def nll(mu, k, b1, s1, b2, s2):
+        out = 0.5 * ((k - 1.0) / 0.01) ** 2
+        for n, conv, f, bb, sl in ((ns[0], 4.0, fsig(150.0 * k), b1, s1),
+                                   (ns[1], 2.0, fsig(150.0), b2, s2)):
+            m = np.maximum(mu * conv * f + bb * g(sl), 1e-300)
+            out += float(np.sum(m - n * np.log(m)))
+        return out
+
+    start = {"mu": 10.0, "k": 1.0, "b1": ns[0].sum(), "s1": -0.02, "b2": ns[1].sum(),
+             "s2": -0.03}
+    m1 = Minuit(nll, **start)
+    m1.errordef, m1.strategy = 0.5, 2
+    m1.migrad()
+    m0 = Minuit(nll, **{**start, "mu": 0.0})
+    m0.errordef, m0.strategy = 0.5, 2
+    m0.fixed["mu"] = m0.fixed["k"] = True
+    m0.values["k"] = 1.0
+    m0.migrad()
+    assert m1.valid and m0.valid
+    assert c.q0[0] == pytest.approx(2 * (m0.fval - m1.fval), abs=2e-3)
+    j = c.nuisances.index("mass_scale_mumu")
+    assert 1.0 + c.nuisance_values[0, j] == pytest.approx(m1.values["k"], abs=1e-3)
+    assert c.to_dict()["combined"]["nuisances"]["mass_scale_mumu"]["shift_at_best"] \
+        == pytest.approx(m1.values["k"] - 1.0, abs=1e-3)

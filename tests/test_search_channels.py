@@ -107,8 +107,8 @@ def test_one_channel_through_the_combination_is_the_demo_search(demo_dir):
     for key in ("scan", "best", "fit", "limits", "calibration"):
         assert c[key] == a[key], key
     assert np.array_equal(comb.combination.q0, alone.scan.q0, equal_nan=True)
-    # the demo has [systematics]; the combination has none yet and says so, so its global
-    # significance is the search's without systematics
+    # the demo has [systematics]; a one-channel combination is its plain scan and says so,
+    # so its global significance is the search's without systematics
     assert comb.best["z_global"] == a["systematics"]["without_systematics"]["z_global"]
     assert any("[systematics]" in n for n in comb.to_dict()["combined"]["notes"])
 

@@ -26,8 +26,9 @@ channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
 ``limits.luminosity_uncertainty`` and ``limits.efficiency_uncertainty`` enter the joint
 likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channels share one
 luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
-``[systematics]`` (signal-shape nuisances, background envelope) stay in its own results and
-are not in the combined likelihood (said in the results and the report).  Blinding is not
+``[systematics]`` mass-scale and resolution factors are profiled in the combined scan (not
+in its toys or limits); its background envelope stays in its own results (both said in the
+results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
 
@@ -203,12 +204,22 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         # nuisances or background envelope yet: say so rather than let a reader take the
         # combined Z for one with every systematic
         notes: tuple[str, ...] = ()
-        with_syst = [n for n, c in zip(names, cfgs) if c.systematics.enabled]
-        if with_syst:
-            notes += ((f"the combination includes each channel's luminosity and efficiency "
-                      f"uncertainties but not the [systematics] (signal-shape nuisances, "
-                      f"background envelope) of channel(s) {', '.join(with_syst)}; each "
-                      "channel's own results show them"),)
+        with_shape = [n for n, c in zip(names, cfgs)
+                      if c.systematics.mass_scale or c.systematics.mass_resolution]
+        with_env = [n for n, c in zip(names, cfgs) if c.systematics.background_families]
+        if len(cfgs) == 1 and (with_shape or with_env):
+            notes += (("a combination of one channel is that channel's scan without its "
+                       "[systematics] (its own results show both)"),)
+        elif with_shape:
+            notes += ((f"the combined scan profiles the [systematics] mass-scale and "
+                       f"resolution factors of channel(s) {', '.join(with_shape)}; the "
+                       "combination's toys (global significance) and its limits do not "
+                       "include them"),)
+        if with_env and len(cfgs) > 1:
+            notes += ((f"the combination does not include the [systematics] background "
+                       f"envelope of "
+                       f"channel(s) {', '.join(with_env)} (each channel's own results show "
+                       "it); its numbers use each channel's configured background"),)
         gauss = [n for n, c in zip(names, cfgs) if c.limits.constraint != "lognormal" and (
             c.limits.luminosity_uncertainty or c.limits.efficiency_uncertainty)]
         if gauss:
@@ -228,9 +239,13 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
 
     r = cfg.model.resolution
     bkg = _shape(cfg.model.background, cfg.model.background_options)
+    sy = cfg.systematics
     norms = {"luminosity_uncertainty": float(cfg.limits.luminosity_uncertainty),
              "efficiency_uncertainty": float(cfg.limits.efficiency_uncertainty),
-             "luminosity_group": "shared" if shared_luminosity else None}
+             "luminosity_group": "shared" if shared_luminosity else None,
+             "shape_nuisances": {"mass_scale": float(sy.mass_scale),
+                                 "mass_resolution": float(sy.mass_resolution)},
+             "shape_constraint": sy.constraint}
     if res.signal_model is not None:
         return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
                        signal_model=res.signal_model, window=cfg.spectrum.window, **norms)

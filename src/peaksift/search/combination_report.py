@@ -95,7 +95,12 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
             ["fitted sigma x B at the best mass", (f"{_f(best.get('cross_section'))} "
              f"{c.get('unit', '')}")]]
     for name, v in (c.get("nuisances") or {}).items():
-        rows.append([f"nuisance {name} (pull at the best mass)", _f(v.get("pull_at_best"))])
+        if "shift_at_best" in v:
+            rows.append([f"shape factor {name} (k - 1 at the best mass)",
+                         _f(v.get("shift_at_best"))])
+        else:
+            rows.append([f"nuisance {name} (pull at the best mass)",
+                         _f(v.get("pull_at_best"))])
     out.append(("table", ["quantity", "value"], rows))
     if "pvalue_combined" in fig:
         out.append(("figure", "pvalue_combined", ("Local p-value of each channel and of their "

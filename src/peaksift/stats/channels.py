@@ -43,7 +43,7 @@ from ..errors import FitError
 from . import lee
 from .joint import profile_joint
 from .scan import scan_prepared
-from .scan_inputs import _prepare_model
+from .scan_inputs import _prepare_model, _signal_params
 from .significance import p_from_q0, z_from_q0
 from .toys import bkg_fractions, fit_background, toy_counts
 
@@ -82,6 +82,10 @@ class Channel:
     luminosity_group : str, optional
         Channels with the same group share one luminosity (one nuisance, fully correlated;
         their ``luminosity_uncertainty`` must agree); default: the channel's own.
+    shape_nuisances : mapping, optional
+        Relative sizes of the channel's signal-shape nuisances (``mass_scale``,
+        ``mass_resolution``), profiled with their constraints in the combined scan;
+        ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``).
     """
 
     name: str
@@ -99,6 +103,30 @@ class Channel:
     luminosity_uncertainty: float = 0.0
     efficiency_uncertainty: float = 0.0
     luminosity_group: str | None = None
+    shape_nuisances: Mapping[str, float] | None = None
+    shape_constraint: str = "gaussian"
+
+    def shape_spec(self, prepared: tuple, blinded: np.ndarray) -> Any:
+        """``(signal, base_params, SignalNuisances)`` of this channel's shape factors for
+        :func:`~peaksift.stats.joint.profile_joint` (None without any)."""
+        sizes = {k: float(v) for k, v in (self.shape_nuisances or {}).items() if v}
+        if not sizes:
+            return None
+        from ..likelihood import SignalNuisances
+
+        try:
+            nuis = SignalNuisances.make(sizes, {k: self.shape_constraint for k in sizes})
+        except FitError as exc:
+            raise FitError(f"channel {self.name!r}: {exc}") from None
+        if nuis.shape_active != tuple(k for k in nuis.shape_active if k in sizes) or set(
+                sizes) - set(nuis.shape_active):
+            raise FitError(f"channel {self.name!r}: shape_nuisances takes mass_scale and "
+                           f"mass_resolution, got {sorted(sizes)}")
+        model, spec, info = prepared
+        base = _signal_params(info["signal"], spec.window, model.masses,
+                              info["sigma"][~blinded], self.natural_width,
+                              info["signal_params"])
+        return info["signal"], base, nuis
 
     def conversion(self, masses: np.ndarray) -> np.ndarray:
         """Signal events per unit of sigma x B at ``masses``: ``L eff(m)``."""
@@ -209,6 +237,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     """
     chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
     norms, norm_names = signal_norms(chans)
+    specs = [ch.shape_spec(p, bl) for ch, p in zip(chans, prepared)]
     per = {}
     for ch, (model, spec, info), k in zip(chans, prepared, conv):
         exp_s = None if expected_cross_section is None else (
@@ -218,7 +247,10 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
                                      refit=refit)
     nm = m_all.size
     mu, mu_err = np.full(nm, np.nan), np.full(nm, np.nan)
-    nu_fit = None if norms is None else np.full((nm, norms.shape[1]), np.nan)
+    shape_names = tuple(f"{nm}_{ch.name}" for ch, sp in zip(chans, specs) if sp is not None
+                        for nm in sp[2].shape_active)
+    n_fit = (0 if norms is None else norms.shape[1]) + len(shape_names)
+    nu_fit = None if n_fit == 0 else np.full((nm, n_fit), np.nan)
     q0 = np.full(nm, np.nan)
     converged = np.zeros(nm, bool)
     notes: list[str] = []
@@ -241,12 +273,13 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
                           [k[~bl] for k in conv], steps=100, tol=3e-2,
                           mu_start=mu0,
                           b_start=_b_start(models, list(per.values()), conv, mu0, bl),
-                          norms=norms)
+                          norms=norms, shapes=specs if any(specs) else None)
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q0[~bl], mu[~bl], mu_err[~bl], converged[~bl] = q, r["mu"], r["mu_error"], r["converged"]
         if nu_fit is not None:
-            nu_fit[~bl] = r["nu"]
+            nu_fit[~bl] = np.concatenate([r["nu"]] + [fc - 1.0 for fc in r["factors"]],
+                                         axis=1) if any(specs) else r["nu"]
         if not r["converged"].all():
             notes.append(f"{int((~r['converged']).sum())} combined hypotheses did not converge")
         if expected_cross_section is not None:
@@ -264,7 +297,8 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         luminosity={ch.name: float(ch.luminosity) for ch in chans},
         blind=None if blind is None else (float(blind[0]), float(blind[1])), blinded=bl,
         z_expected=z_exp, expected_cross_section=expected_cross_section, unit=unit,
-        notes=tuple(notes), prepared=tuple(p[0] for p in prepared), nuisances=norm_names,
+        notes=tuple(notes), prepared=tuple(p[0] for p in prepared),
+        nuisances=norm_names + shape_names,
         nuisance_values=nu_fit, norms=norms)
 
 
@@ -397,14 +431,21 @@ class Combination(FrozenValue):
                 "z_expected": self.z_expected,
                 "expected_cross_section": self.expected_cross_section,
                 "best": self.best, "blind": None if self.blind is None else list(self.blind),
-                "nuisances": {n: {"pull_at_best": None if self.nuisance_values is None else
-                                  self.nuisance_values[self.best_index, j],
-                                  "log_scale": self.norms[:, j]}
-                              for j, n in enumerate(self.nuisances)},
+                "nuisances": {n: self._nuisance(j) for j, n in enumerate(self.nuisances)},
                 "notes": list(self.notes)},
             "channels": {n: {**s.to_dict(), "luminosity": self.luminosity[n],
                              "conversion": self.conversion[n]}
                          for n, s in self.channels.items()}})
+
+    def _nuisance(self, j: int) -> dict[str, Any]:
+        """A normalisation nuisance (its pull and log-normal scale per channel) or a shape
+        factor (its relative shift k - 1) at the best mass."""
+        v = (None if self.nuisance_values is None
+             else self.nuisance_values[self.best_index, j])
+        nj = 0 if self.norms is None else self.norms.shape[1]
+        if j < nj:
+            return {"pull_at_best": v, "log_scale": self.norms[:, j]}
+        return {"shift_at_best": v}
 
     def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
                             seed: int = 0, u0: float = 0.5) -> dict[str, Any]:
