@@ -183,3 +183,26 @@ def test_mass_scale_factor_of_one_channel_in_the_combined_scan():
     assert 1.0 + c.nuisance_values[0, j] == pytest.approx(m1.values["k"], abs=1e-3)
     assert c.to_dict()["combined"]["nuisances"]["mass_scale_mumu"]["shift_at_best"] \
         == pytest.approx(m1.values["k"] - 1.0, abs=1e-3)
+
+
+def test_shape_factors_can_only_widen_the_expected_combined_limits():
+    """On the background-only Asimov data the mass-scale and resolution factors sit at 1
+    at sigma x B = 0 and give the conditional fit at any other sigma x B more freedom, so
+    q_mu,A can only fall and every expected limit (and band edge) can only rise (Cowan et
+    al. 2011, eqs. 28-32: q_mu,A = -2 ln lambda_A(mu)); checked at three masses, to 1e-6
+    relative, and the widening is real (> 0.1% somewhere)."""
+    from peaksift.stats.channel_limits import combined_limits
+
+    h2 = _hist(12, -0.03, 2000, 20)
+    h1 = _hist(11, -0.02, 3000, 60)
+    out = []
+    for sn in ({"mass_scale": 0.01, "mass_resolution": 0.1}, None):
+        chans = [Channel("mumu", h1, "exponential", 8.0, signal="gaussian",
+                         resolution=Resolution.absolute(SIGMA), efficiency=0.5,
+                         shape_nuisances=sn),
+                 Channel("ee", h2, "exponential", 4.0, signal="gaussian",
+                         resolution=Resolution.absolute(SIGMA), efficiency=0.5)]
+        out.append(combined_limits(chans, np.array([140.0, 150.0, 160.0]),
+                                   method="asymptotic").bands)
+    assert np.all(out[0] >= out[1] * (1 - 1e-6))
+    assert np.any(out[0] > out[1] * 1.001)

@@ -78,9 +78,9 @@ class CombinedLimits(FrozenValue):
 class _Profiled:
     """The joint NLL at fixed sigma x B for a stack of problems, with warm starts."""
 
-    def __init__(self, models, counts, fractions, conv, norms=None) -> None:
+    def __init__(self, models, counts, fractions, conv, norms=None, shapes=None) -> None:
         self.models, self.counts, self.fractions, self.conv = models, counts, fractions, conv
-        self.norms, self.nu = norms, None
+        self.norms, self.nu, self.shapes = norms, None, shapes
         self.theta = [np.repeat(m.theta[None, :], fractions[0].shape[0], axis=0)
                       for m in models]
         self.b = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
@@ -88,7 +88,7 @@ class _Profiled:
     def nll(self, mu: np.ndarray) -> np.ndarray:
         r = profile_joint(self.models, self.counts, self.fractions, self.conv, mu_fixed=mu,
                           theta_start=self.theta, b_start=self.b, norms=self.norms,
-                          nu_start=self.nu)
+                          nu_start=self.nu, shapes=self.shapes)
         self.theta, self.b, self.nu = r["theta"], r["b"], r["nu"]
         return r["nll"]
 
@@ -113,6 +113,13 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                        f"{method!r}")
     chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
     norms, norm_names = signal_norms(chans)
+    nb5 = len(_BANDS)
+    # the channels' mass-scale and resolution factors, profiled in the asymptotic limits
+    sp_obs = [ch.shape_spec(p, bl) for ch, p in zip(chans, prepared)]
+    sp_exp = [ch.shape_spec(p, bl, every_mass=True, repeat=nb5)
+              for ch, p in zip(chans, prepared)]
+    sp_obs = sp_obs if any(sp_obs) else None
+    sp_exp = sp_exp if any(sp_exp) else None
     per = {}
     notes = []
     for ch, k in zip(chans, conv):
@@ -136,9 +143,8 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     nm = m_all.size
     fulls = [_full_model(*p) for p in prepared]
     asimov = [f.expected_background for f in fulls]
-    nb5 = len(_BANDS)
     a_stack = _Profiled(fulls, asimov, [np.tile(f.fractions, (nb5, 1)) for f in fulls],
-                        [np.tile(k, nb5) for k in conv], norms)
+                        [np.tile(k, nb5) for k in conv], norms, sp_exp)
     nll_a0 = sum(float(fit_background(f, a[None, :])[2][0]) for f, a in zip(fulls, asimov))
     target = np.repeat([expected_band_factor(n, cl) ** 2 for n in _BANDS], nm)
     info_s = sum((k[:, None] ** 2 * f.fractions**2 / np.maximum(a, 1e-300)).sum(axis=1)
@@ -152,14 +158,16 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         models = [p[0] for p in prepared]
         ck = [k[keep] for k in conv]
         free = profile_joint(models, [m.counts for m in models],
-                             [m.fractions for m in models], ck, steps=100, norms=norms)
+                             [m.fractions for m in models], ck, steps=100, norms=norms,
+                             shapes=sp_obs)
         mu_hat, nll_hat = free["mu"], free["nll"]
         nll_zero = sum(m.nll_background for m in models)
         nll_hat = np.minimum(nll_hat, nll_zero)
         prob_o = _Profiled(models, [m.counts for m in models], [m.fractions for m in models],
-                           ck, norms)
+                           ck, norms, sp_obs)
         used_asimov = [m.expected_background for m in models]
-        prob_s = _Profiled(models, used_asimov, [m.fractions for m in models], ck, norms)
+        prob_s = _Profiled(models, used_asimov, [m.fractions for m in models], ck, norms,
+                           sp_obs)
         nll_u0 = sum(float(fit_background(m, a[None, :])[2][0])
                      for m, a in zip(models, used_asimov))
 
@@ -186,6 +194,9 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                  [int(np.argmin(np.abs(m_all - float(x)))) for x in np.atleast_1d(toy_masses)])
         want += list(picks)
     toy_info: dict[str, Any] = {}
+    if sp_obs is not None and want:
+        notes.append("the toy-based limits leave the channels' mass-scale and resolution "
+                     "factors at 1 (the asymptotic ones profile them)")
     for j in sorted({int(x) for x in want}):
         if bl[j]:
             notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")

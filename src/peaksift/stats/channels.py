@@ -24,8 +24,9 @@ One channel goes through :func:`peaksift.scan` unchanged: the combination of one
 
 Luminosity and efficiency uncertainties enter as constrained log-normal factors on each
 channel's signal (:mod:`peaksift.stats.joint`); in the scan they matter only through the
-channels' relative normalisation (a common factor is absorbed by sigma x B).  Not here
-(said plainly): the channels' signal-shape nuisances (mass scale, resolution) and their
+channels' relative normalisation (a common factor is absorbed by sigma x B).  A channel's
+``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan and the
+asymptotic limits, not in the combination's toys.  Not here (said plainly): the channels'
 background envelopes; each channel's own results carry those.
 """
 
@@ -106,9 +107,11 @@ class Channel:
     shape_nuisances: Mapping[str, float] | None = None
     shape_constraint: str = "gaussian"
 
-    def shape_spec(self, prepared: tuple, blinded: np.ndarray) -> Any:
+    def shape_spec(self, prepared: tuple, blinded: np.ndarray, *, every_mass: bool = False,
+                   repeat: int = 1) -> Any:
         """``(signal, base_params, SignalNuisances)`` of this channel's shape factors for
-        :func:`~peaksift.stats.joint.profile_joint` (None without any)."""
+        :func:`~peaksift.stats.joint.profile_joint` (None without any): at the unblinded
+        hypotheses (``every_mass``: at all), the stack repeated ``repeat`` times."""
         sizes = {k: float(v) for k, v in (self.shape_nuisances or {}).items() if v}
         if not sizes:
             return None
@@ -122,10 +125,12 @@ class Channel:
                 sizes) - set(nuis.shape_active):
             raise FitError(f"channel {self.name!r}: shape_nuisances takes mass_scale and "
                            f"mass_resolution, got {sorted(sizes)}")
-        model, spec, info = prepared
-        base = _signal_params(info["signal"], spec.window, model.masses,
-                              info["sigma"][~blinded], self.natural_width,
-                              info["signal_params"])
+        _, spec, info = prepared
+        keep = np.ones(blinded.size, bool) if every_mass else ~blinded
+        base = _signal_params(info["signal"], spec.window, info["masses"][keep],
+                              info["sigma"][keep], self.natural_width, info["signal_params"])
+        base = [np.tile(np.asarray(v), (repeat,) + (1,) * (np.ndim(v) - 1)) if np.ndim(v)
+                else v for v in base]
         return info["signal"], base, nuis
 
     def conversion(self, masses: np.ndarray) -> np.ndarray:
