@@ -331,7 +331,12 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Simulated signal samples, one file (or glob) per generated mass, in the order "
              "of `masses`; the search's own selection and pairing run on each. Empty: no "
              "signal model from samples."),
-        _Key("masses", "floats", [], "Generated mass (GeV) of each sample in `files`."),
+        _Key("masses", "floats", [],
+             "Generated mass (GeV) of each sample in `files` (or give `mass_column`)."),
+        _Key("mass_column", "str", "",
+             "A per-event column of the samples holding the generated (true) mass in GeV; "
+             "each sample's mass is then the median of that column over its events, and "
+             "`masses` is left out. Empty: the masses come from `masses`."),
         _Key("generated", "floats", [],
              "Number of generated events (or sum of generator weights) of each sample."),
         _Key("shape", "str", "crystalball",
