@@ -27,9 +27,14 @@ from typing import Any
 
 import numpy as np
 
+from .poisson import use_compiled
+
 __all__ = ["Minimum", "StackedMinimum", "covariance", "damped_step", "first_error",
            "fisher_scoring", "minimize", "minimize_stacked", "new_minuit", "refine",
            "solve_stacked"]
+
+#: systems up to this size are solved by the compiled :func:`.kernels.solve_small`
+_SMALL = 16
 
 #: a scaled Hessian with a smaller eigenvalue is treated as singular
 POSDEF_TOL = 1e-10
@@ -72,6 +77,14 @@ def new_minuit(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarra
 
 def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
     """-a^-1 g, solved on the unit-diagonal scaling of ``a`` (None when singular)."""
+    if a.shape[0] <= _SMALL and use_compiled():
+        # compiled for the few parameters of a fit: numpy's solve costs ~20 us of call
+        # overhead per Newton step, more than the step's arithmetic
+        from .kernels import solve_small
+
+        out = np.empty(g.size)
+        ok = solve_small(np.ascontiguousarray(a, float), np.ascontiguousarray(g, float), out)
+        return out if ok else None
     d = np.sqrt(np.abs(np.diagonal(a)))
     d = np.where(d > 0, d, 1.0)
     try:

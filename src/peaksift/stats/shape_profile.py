@@ -102,7 +102,8 @@ def _fractions(model: ScanModel, signal: Any, base: Sequence[Any], names: Sequen
 def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: Sequence[Any],
                            nuisances: SignalNuisances, *, start: dict[str, np.ndarray],
                            centers: np.ndarray | None = None, steps: int = 40,
-                           tol: float = 1e-8) -> dict[str, np.ndarray]:
+                           tol: float = 1e-8, fixed_signal: bool = False
+                           ) -> dict[str, np.ndarray]:
     """Signal-plus-background fits with the signal shape's factors free and constrained.
 
     Parameters
@@ -118,9 +119,12 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
         Sizes; only the shape nuisances (mass scale, resolution) are free here.
     start : dict
         A fit with the factors at 1 (:func:`peaksift.stats.toys.profile_signal`'s result:
-        ``s``, ``b``, ``theta``).
+        ``s``, ``b``, ``theta``); an optional ``factors (B, J)`` starts the factors
+        elsewhere than at 1 (a warm start).
     centers : array (B, J), optional
         Constraint centres per hypothesis (default 1).
+    fixed_signal : bool
+        Keep the signal yield at ``start["s"]`` (the conditional fits of the limits).
 
     Returns
     -------
@@ -135,7 +139,8 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
     b = np.array(start["b"], float)
     theta = np.array(start["theta"], float).reshape(nb, -1)
     kk = theta.shape[1]
-    k = np.ones((nb, j_n))
+    k = (np.ones((nb, j_n)) if start.get("factors") is None
+         else np.array(start["factors"], float).reshape(nb, j_n))
     lo = np.array([nuisances.bounds(nm)[0] for nm in names])
     hi = np.array([nuisances.bounds(nm)[1] for nm in names])
     cen = None if centers is None else np.broadcast_to(np.asarray(centers, float), (nb, j_n))
@@ -186,6 +191,11 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
             cross = np.einsum("bkn,bn->bk", dg, w)
             hess[:, ib, ib + 1:] += cross
             hess[:, ib + 1:, ib] += cross
+        if fixed_signal:  # the yield's row and column out: its step is 0
+            grad[:, 0] = 0.0
+            hess[:, 0, :] = 0.0
+            hess[:, :, 0] = 0.0
+            hess[:, 0, 0] = 1.0
         return grad, hess
 
     x0 = np.concatenate([s[:, None], k, b[:, None], theta], axis=1)
