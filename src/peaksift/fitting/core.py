@@ -168,9 +168,10 @@ def fit(
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
     if d.binned:
         scale = d.hist.scaled_poisson_factors()
+        edges = _read_only(d.edges)  # one array for every start: its per-edges work is kept
 
         def make_cost(v: np.ndarray) -> Any:
-            return BinnedCost(model, v, free_idx, cons_idx, d.edges, d.n, scale)
+            return BinnedCost(model, v, free_idx, cons_idx, edges, d.n, scale)
     else:
         def make_cost(v: np.ndarray) -> Any:
             return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
@@ -183,7 +184,8 @@ def fit(
                        cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
                        cost.ncall, floors)
     sh = start_bins(d)
-    starts = fit_starts(model, sh.edges, sh.values(), sh.scaled_poisson_factors(), base,
+    starts = fit_starts(model, _read_only(sh.edges), sh.values(), sh.scaled_poisson_factors(),
+                        base,
                         is_fixed, given, lower, upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
@@ -238,6 +240,14 @@ def fit(
     return _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
                    problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
                    tuple(tried), calls, floors)
+
+
+def _read_only(a: np.ndarray) -> np.ndarray:
+    """A read-only float copy of ``a``: costs built on it share its per-edges work (a
+    shape's logarithms of the edges, the compiled kernels' clipped edges)."""
+    out = np.array(a, float)
+    out.flags.writeable = False
+    return out
 
 
 #: a start whose path comes within this squared distance (in units of the best minimum's

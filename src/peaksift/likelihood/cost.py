@@ -124,8 +124,11 @@ class BinnedCost(_Cost):
                  constraints: Sequence[tuple[int, Constraint]], edges: np.ndarray,
                  n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None = None) -> None:
         super().__init__(model, full, free, constraints)
-        self.edges = np.array(edges, float)
-        self.edges.flags.writeable = False  # shapes may keep per-edges work for this array
+        if isinstance(edges, np.ndarray) and edges.dtype == float and not edges.flags.writeable:
+            self.edges = edges  # shared by the caller's costs (fit's starts): no copy
+        else:
+            self.edges = np.array(edges, float)
+            self.edges.flags.writeable = False  # shapes may keep per-edges work for it
         self.mask = None if mask is None or np.all(mask) else np.asarray(mask, bool)
         m = slice(None) if self.mask is None else self.mask
         self.s = np.asarray(scale, float)[m]
