@@ -38,6 +38,8 @@ from ._files import atomic_write
 from ._format import format_interval, format_pm, number
 from ._json import plain
 from .report_background import section_background_model
+from .report_fits import section_background_fit, section_calibration, section_identification
+from .report_limits import section_limits
 from .report_sections import (
     BLINDED_CAPTIONS,
     CAPTIONS,
@@ -45,17 +47,13 @@ from .report_sections import (
     Block,
     Section,
     fit_settings_text,
-    section_background_fit,
-    section_calibration,
     section_caution,
-    section_identification,
-    section_limits,
     section_other_figures,
     section_provenance,
     section_result,
-    section_selection,
     section_warnings,
 )
+from .report_selection import section_selection
 
 __all__ = [
     "CAUTION",
@@ -190,17 +188,23 @@ def _h(s: Any) -> str:
     return html.escape(str(s), quote=True)
 
 
-_NUMERIC = re.compile(r"^[\u2212+\-]?[\d,.]+(e[+-]?\d+)?$|^n/a$")
+#: a number as the report writes it: sign, digits with thousands commas, one decimal point,
+#: an exponent; "n/a" stands in for one (a version such as 3.11.7 is not a number)
+_NUMERIC = re.compile(r"^[\u2212+\-]?(\d{1,3}(,\d{3})+|\d+)(\.\d+)?(e[+-]?\d+)?$|^n/a$")
 
 
 def _html_table(head: Sequence[str], rows: Sequence[Sequence[str]], *,
                 mono_last: bool = False) -> str:
+    # a column of numbers is right-aligned (digits line up); a column that mixes numbers
+    # with text stays left-aligned throughout, so it reads as one column
+    numeric = [j > 0 and all(_NUMERIC.match(str(r[j])) for r in rows if j < len(r))
+               for j in range(max((len(r) for r in rows), default=0))]
     out = ["<table>", "<tr>" + "".join(f"<th>{_h(x)}</th>" for x in head) + "</tr>"]
     for row in rows:
         cells = []
         for j, c in enumerate(row):
             cls = ' class="hash"' if (mono_last and j == len(row) - 1) else (
-                ' class="num"' if j and _NUMERIC.match(str(c)) else "")
+                ' class="num"' if numeric[j] else "")
             cells.append(f"<td{cls}>{_h(c)}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
     out.append("</table>")

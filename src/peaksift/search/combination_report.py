@@ -76,7 +76,7 @@ def render_combination_markdown(d: Mapping[str, Any],
     lim = c.get("limits")
     if lim:
         rows = []
-        masses = lim["mass"]
+        masses = lim["masses"]
         step = max(1, len(masses) // 12)
         for i in range(0, len(masses), step):
             rows.append([_f(masses[i], 4), _f(lim["observed"][i]), _f(lim["expected"][i]),

@@ -304,7 +304,7 @@ class Combination(FrozenValue):
         channel's scan, with its luminosity and conversion)."""
         return plain({
             "combined": {
-                "mass": self.masses, "z_local": self.z_local, "p_local": self.p_local,
+                "masses": self.masses, "z_local": self.z_local, "p_local": self.p_local,
                 "q0": self.q0, "cross_section": self.cross_section,
                 "cross_section_error": self.cross_section_error, "unit": self.unit,
                 "z_expected": self.z_expected,
@@ -446,7 +446,7 @@ class CombinedLimits(FrozenValue):
 
     def to_dict(self) -> dict[str, Any]:
         return plain({
-            "combined": {"mass": self.masses, "observed": self.observed,
+            "combined": {"masses": self.masses, "observed": self.observed,
                          "expected": self.expected, "expected_minus2": self.bands[0],
                          "expected_minus1": self.bands[1], "expected_plus1": self.bands[3],
                          "expected_plus2": self.bands[4], "cl": self.cl, "unit": self.unit,
