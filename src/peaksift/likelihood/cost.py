@@ -284,9 +284,14 @@ class BinnedCost(_Cost):
 _RECENT: list = []
 
 
+def _frozen(a: Any) -> bool:
+    return isinstance(a, np.ndarray) and not a.flags.writeable
+
+
 def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None):
     """(mask or None, scale, unit scale?, counts, effective counts, constant of the
-    saturated form) of the used bins; read-only arrays, kept for the last few inputs."""
+    saturated form) of the used bins; read-only arrays, kept for the last few read-only
+    inputs (the costs of one fit share them)."""
     for entry in _RECENT:
         if entry[0] is n and entry[1] is scale and entry[2] is mask:
             return entry[3]
@@ -300,7 +305,8 @@ def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None):
     for a in (s, counts, eff):
         a.flags.writeable = False
     out = (used, s, bool(np.all(s == 1.0)), counts, eff, const)
-    if all(isinstance(a, np.ndarray) for a in (n, scale)):
+    # kept only for read-only inputs: an array changed in place must not find stale data
+    if all(_frozen(a) for a in (n, scale)) and (mask is None or _frozen(mask)):
         _RECENT.insert(0, (n, scale, mask, out))
         del _RECENT[6:]
     return out
