@@ -46,9 +46,17 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
-from .shape_profile import run_nuisance_toy_batch
+from .shape_profile import NUISANCE_REFINE, refine_toy_points, top_points
 from .significance import p_from_q0, z_from_q0
-from .toys import ScanModel, ToyBatch, fit_background, profile_signal, run_toys, toy_counts
+from .toys import (
+    ScanModel,
+    ToyBatch,
+    fit_background,
+    profile_signal,
+    run_toy_batch,
+    run_toys,
+    toy_counts,
+)
 
 __all__ = ["PENALTY", "EnvelopeResult", "EnvelopeToyBatch", "envelope_batch_from_toy_batch",
            "envelope_minimum", "envelope_scan", "profile_curves", "run_envelope_toy_batch",
@@ -56,6 +64,10 @@ __all__ = ["PENALTY", "EnvelopeResult", "EnvelopeToyBatch", "envelope_batch_from
 
 #: the paper's penalty per free parameter, in units of -2 ln L
 PENALTY = 1.0
+#: rounds of exact refits at the toys' highest envelope points (see run_envelope_toy_batch)
+_REFINE_ROUNDS = 40
+#: points per toy refitted in each later round
+_REFINE_MORE = 12
 
 
 @dataclass(frozen=True)
@@ -117,12 +129,38 @@ def run_envelope_toy_batch(spec: EnvelopeToyBatch) -> np.ndarray:
     m = spec.models[0].masses.size
     q = np.empty((spec.count, nc, m))
     nll0 = np.empty((spec.count, nc))
+    units, fits = [], []
     for c, model in enumerate(spec.models):
-        unit = ToyBatch(model, spec.seed, spec.first, spec.count, spec.expected)
-        q[:, c] = run_nuisance_toy_batch(unit)
+        units.append(ToyBatch(model, spec.seed, spec.first, spec.count, spec.expected))
+        q[:, c] = run_toy_batch(units[-1])
         with np.errstate(all="ignore"):
-            nll0[:, c] = fit_background(model, n)[2]
+            fits.append(fit_background(model, n))
+        nll0[:, c] = fits[-1][2]
     k = np.asarray(spec.n_parameters, float)
+    # Exact fits (signal nuisances free) of the function the envelope takes at its highest
+    # points, until each toy's maximum sits at a point whose function is refitted: the
+    # linearised values elsewhere may overshoot (a candidate whose background-only fit
+    # is poor can show q0 in the hundreds), and a toy's maximum is its global p-value's.
+    done = np.zeros((spec.count, nc, m), bool)
+    cols_all = np.arange(m)
+    for _ in range(_REFINE_ROUNDS):
+        env, chosen, _ = _envelope_q0(nll0, q, k, spec.penalty, spec.weights)
+        settled = done[np.arange(spec.count)[:, None], chosen, cols_all[None, :]]
+        top = np.max(np.where(settled, env, -np.inf), axis=1)
+        open_ = np.where(~settled & (env > top[:, None]), env, -1.0)
+        # the first round takes each toy's top points; later rounds every point still
+        # above the settled maximum
+        rows, cols = top_points(open_, NUISANCE_REFINE if not done.any() else _REFINE_MORE)
+        if rows.size == 0:
+            break
+        which = chosen[rows, cols]
+        for c in range(nc):
+            sel = which == c
+            if sel.any():
+                qc = q[:, c].copy()
+                refine_toy_points(units[c], qc, rows[sel], cols[sel], n, fits[c])
+                q[:, c] = qc
+                done[rows[sel], c, cols[sel]] = True
     env, _, _ = _envelope_q0(nll0, q, k, spec.penalty, spec.weights)
     bad = ~np.isfinite(nll0).all(axis=1)
     env[bad] = np.nan
