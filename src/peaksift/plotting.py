@@ -447,17 +447,20 @@ def envelope_figure(systematics: Any, *, labels: FigureLabels | None = None) -> 
     with figure_style():
         greys = ("#5b6270", "#8a8f98", "#1f6f8b", "#b07a2a", "#6a4c93", "#2e7d4f")
         top = 0.0
+        # the envelope first, broad and pale, so the function it follows shows through it
+        e = np.asarray(prof["envelope"], float)
+        ax.plot(s, e, lw=5.0, color=COLORS["signal"], alpha=0.35, label="envelope",
+                solid_capstyle="butt", zorder=2)
         for k, (label, curve) in enumerate(prof["curves"].items()):
             c = np.asarray(curve, float)
-            ax.plot(s, c, lw=1.1, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
-                    color=greys[k % len(greys)], label=label)
+            ax.plot(s, c, lw=1.2, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
+                    color=greys[k % len(greys)], label=label, zorder=3)
             top = max(top, float(np.nanmin(c)))
-        e = np.asarray(prof["envelope"], float)
-        ax.plot(s, e, lw=2.6, color=COLORS["signal"], alpha=0.85, label="envelope", zorder=4)
         ax.axhline(1.0, color=COLORS["accent"], lw=0.8, ls=":")
         ax.text(s[-1], 1.0, " 68%", va="center", ha="left", color=COLORS["accent"],
                 fontsize=9, clip_on=False)
-        ax.set_ylim(-0.3, max(6.0, min(top + 4.0, 40.0)))
+        # every curve's minimum in range, with room above it for the legend
+        ax.set_ylim(-0.3, max(6.0, min(1.35 * top + 4.0, 55.0)))
         ax.set_xlim(s[0], s[-1])
         ax.set_xlabel("signal yield [events]")
         ax.set_ylabel(r"$-2\,\Delta\ln L$ + penalty")
