@@ -194,3 +194,46 @@ def test_sampled_constraint_centres_in_toys_are_reproducible():
     np.testing.assert_allclose(whole, split, rtol=1e-9, atol=1e-9)
     cond = run_nuisance_toy_batch(ToyBatch(fixed.model, 5, 0, 6))
     assert np.all(np.abs(np.sqrt(whole.max(axis=1)) - np.sqrt(cond.max(axis=1))) < 0.5)
+
+
+def test_fitted_mass_error_with_the_mass_scale_matches_an_independent_fit():
+    """The free fit's mass with the mass scale profiled (SignalNuisances.mass_interval)
+    against an iminuit fit of the binned likelihood written here with the peak at M k and
+    the constraint 1/2 ((k - 1)/delta)^2 as an explicit term (MINOS on M); tolerance 3%
+    (the module takes the fit's own mass profile as two half-parabolas).  Also against the
+    first-order quadrature sqrt(e^2 + (m delta)^2) (error propagation of m/k, common
+    practice), 3%."""
+    from peaksift import fit
+
+    delta = 0.004
+    x = _data()
+    n = _counts(x)
+    fr = fit((n, EDGES), "gaussian", "exponential", WINDOW, start={"mass": 150.0},
+             intervals=["mass"])
+    lo_e, hi_e = fr.intervals["mass"]
+    got = SignalNuisances.make({"mass_scale": delta}).mass_interval(fr.peak_mass, -lo_e,
+                                                                    hi_e)
+    lo, hi = WINDOW
+    c, h = 0.5 * (lo + hi), 0.5 * (hi - lo)
+
+    def nll(big_m, k, s, sigma, b, slope):
+        d = st.norm(big_m * k, sigma)
+        cdf = d.cdf(EDGES)
+        prim = np.exp(slope * (EDGES - c) / h)
+        nu = s * np.diff(cdf) / (cdf[-1] - cdf[0]) + b * np.diff(prim) / (prim[-1] - prim[0])
+        if np.any(nu <= 0):
+            return 1e30
+        return float(np.sum(nu - n * np.log(nu)) + 0.5 * ((k - 1.0) / delta) ** 2)
+
+    m = Minuit(nll, big_m=150.0, k=1.0, s=150.0, sigma=2.0, b=n.sum(), slope=-1.0)
+    m.errordef = Minuit.LIKELIHOOD
+    m.limits["sigma"] = (0.5, 6.0)
+    m.migrad()
+    m.minos("big_m")
+    ref = (-m.merrors["big_m"].lower, m.merrors["big_m"].upper)
+    assert m.values["big_m"] == pytest.approx(fr.peak_mass, abs=0.01 * ref[1])
+    assert got[0] == pytest.approx(ref[0], rel=0.03)
+    assert got[1] == pytest.approx(ref[1], rel=0.03)
+    quad = math.hypot(fr.peak_mass_error, fr.peak_mass * delta)
+    assert 0.5 * (got[0] + got[1]) == pytest.approx(quad, rel=0.03)
+    assert min(got) > max(-lo_e, hi_e)  # it grew: the scale adds to the statistical error

@@ -148,6 +148,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
                               "blinded window"))
     else:
         lines += [_row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
+                  *_scaled_mass(part(part(d, "systematics"), "fitted_mass")),
                   _row(f"fitted width ({fit.get('width_parameter') or 'width'})",
                        format_pm(w.get("value"), w.get("error"), "GeV")),
                   _row("signal yield", format_pm(sy.get("value"), sy.get("error")))]
@@ -167,6 +168,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         if env:
             lines.append(_row("background envelope", ", ".join(env.get("functions") or [])
                               + f" (at the best mass: {env.get('chosen_at_best')})"))
+        lines += _limit_lines(part(syst, "limits"), best.get("mass"))
     if not fit.get("valid") and not blinded:
         lines.append(_row("fit status", "INVALID: " + "; ".join(
             str(x) for x in fit.get("problems") or [])))
@@ -200,6 +202,39 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     _doubt_lines(lines, d)
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
+    """The fitted mass with the mass scale profiled (``systematics.fitted_mass``)."""
+    from ._format import fixed
+
+    if not fm:
+        return []
+    size = (fm.get("mass_scale") or {}).get("size")
+    return [_row("  with mass scale", f"{fixed(fm.get('value'))} +{fixed(fm.get('error_plus'))} "
+                 f"-{fixed(fm.get('error_minus'))} GeV (scale uncertainty "
+                 f"{fixed(100 * size if size is not None else None, 2)}% profiled)")]
+
+
+def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
+    """The observed limit at the limit mass nearest ``mass``, with and without systematics."""
+    from ._format import fixed, number
+
+    w, wo = lim.get("with_systematics"), lim.get("without_systematics")
+    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("mass"):
+        return []
+    ms = [float("inf") if m is None else float(m) for m in w["mass"]]
+    try:
+        i = min(range(len(ms)), key=lambda j: abs(ms[j] - float(mass)))
+    except (TypeError, ValueError):
+        return []
+
+    def pair(d: Mapping[str, Any]) -> str:
+        return (f"{number((d.get('observed') or [None] * (i + 1))[i], 3)} observed, "
+                f"{number((d.get('expected') or [None] * (i + 1))[i], 3)} expected")
+
+    return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(w)} {w.get('unit')} with "
+                 f"systematics ({pair(wo)} without)")]
 
 
 def _doubt_lines(lines: list[str], d: Mapping[str, Any]) -> None:

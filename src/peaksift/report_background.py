@@ -31,6 +31,40 @@ def _candidate_rows(sy: Mapping[str, Any]) -> list[list[str]]:
     return rows
 
 
+#: rows of the side-by-side limit table (evenly spread over the limit masses)
+_LIMIT_ROWS = 9
+
+
+def _limit_blocks(lim: Any) -> list[Block]:
+    """The upper limits with and without systematics side by side, at up to
+    ``_LIMIT_ROWS`` masses."""
+    if not isinstance(lim, Mapping) or not lim.get("with_systematics"):
+        return []
+    w, wo = lim["with_systematics"], lim["without_systematics"]
+    mass = list(w.get("mass") or [])
+    if not mass:
+        return []
+    pick = sorted({round(i * (len(mass) - 1) / max(_LIMIT_ROWS - 1, 1))
+                   for i in range(min(_LIMIT_ROWS, len(mass)))})
+
+    def at(d: Mapping[str, Any], key: str, i: int) -> str:
+        v = d.get(key) or []
+        return number(v[i], 4) if i < len(v) else "-"
+
+    rows = [[number(mass[i], 5), at(wo, "observed", i), at(w, "observed", i),
+             at(wo, "expected", i), at(w, "expected", i)] for i in pick]
+    unit = w.get("unit") or ""
+    cl = 100 * float(w.get("cl") or 0.95)
+    out: list[Block] = [
+        ("p", (f"Upper limits at {cl:g}% CL ({unit}), asymptotic CLs, without and with "
+               "systematics; profiled with systematics: "
+               + ", ".join(lim.get("profiled") or []) + ".")),
+        ("table", ["mass [GeV]", "observed, no systematics", "observed, with systematics",
+                   "expected, no systematics", "expected, with systematics"], rows)]
+    out += [("p", f"Note: {n}.") for n in lim.get("notes") or []]
+    return out
+
+
 def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     """Candidate functions, the order test, spurious signal, the envelope, the significance
     with and without systematics side by side, and the nuisance pulls."""
@@ -65,13 +99,19 @@ def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> li
             ("global Z", "z_global"), ("global p", "p_global"))
     out.append(("table", ["quantity", "single function, no systematics", "with systematics"],
                 [[lab, number(wo.get(k)), number(w.get(k))] for lab, k in keys]))
+    fm = sy.get("fitted_mass") or {}
+    if fm:
+        out.append(("p", (f"Fitted mass {number(fm['value'], 6)} GeV: statistical errors "
+                    f"-{number(fm['stat_error_minus'], 3)} +{number(fm['stat_error_plus'], 3)}"
+                    f" GeV; with the mass scale ({100 * fm['mass_scale']['size']:.3g}%, "
+                    f"{fm['mass_scale']['kind']}) profiled -{number(fm['error_minus'], 3)} "
+                    f"+{number(fm['error_plus'], 3)} GeV.")))
     pulls = sy.get("nuisance_pulls") or {}
     if pulls:
         out.append(("table", ["nuisance parameter", "pull at the best mass [sigma]"],
                     [[k.replace("_", " "), f"{v:+.2f}"] for k, v in pulls.items()]))
+    out += _limit_blocks(sy.get("limits"))
     notes = list(sy.get("notes") or [])
-    if sy.get("limits"):
-        notes.append(sy["limits"])
     out += [("p", f"Note: {n}.") for n in notes]
     out += figure_block(fig, "background_envelope", CAPTIONS["background_envelope"])
     return out

@@ -172,8 +172,10 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "`{ width = [0.0, 100.0] }`."),
         _Key("sigma_from_resolution", "choice", "free",
              "Tie the Gaussian `sigma` of the signal (gaussian, crystalball, voigt) to "
-             "`model.resolution` at the fit's starting mass: `fixed` to it, or `constrained` "
-             "by a Gaussian of relative width `resolution_uncertainty`; `free` floats it. "
+             "`model.resolution`: `fixed` makes it the resolution at the fitted mass "
+             "(recomputed as the mass moves), `constrained` a Gaussian constraint of relative "
+             "width `resolution_uncertainty` around the resolution at the fit's starting mass; "
+             "`free` floats it. "
              "Tie it to measure a natural width with a Voigt signal.",
              choices=("free", "fixed", "constrained")),
         _Key("resolution_uncertainty", "float", None,

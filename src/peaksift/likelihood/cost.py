@@ -21,7 +21,7 @@ import numpy as np
 
 from .constraints import Constraint
 from .model import Model
-from .poisson import MU_FLOOR, saturated_term, unbinned_nll
+from .poisson import MU_FLOOR, saturated_term, unbinned_nll, use_compiled
 
 __all__ = ["BinnedCost", "UnbinnedCost"]
 
@@ -142,8 +142,12 @@ class BinnedCost(_Cost):
 
         self._jac = np.zeros((self.free.size, self.n.size))
         self._state: tuple | None = None
+        self._fused = _fused_path(self)
 
     def _fractions(self, shape, p, need: bool, rows):
+        fast = self._fused.fractions(shape, p) if self._fused is not None else None
+        if fast is not None:
+            return fast if need else (fast[0], None)
         if need:  # derivatives of the free parameters only (fixed ones are not differenced)
             f, g = shape.fractions_and_grad(self.edges, p, self.model.window,
                                             [r >= 0 for r in rows])
@@ -179,6 +183,13 @@ class BinnedCost(_Cost):
         """NLL, gradient and expected information over the free parameters at ``x``."""
         self.ncall += 1
         x = np.asarray(x, float)
+        if self._fused is not None:
+            out = self._fused.evaluate(self.expand(x), info)
+            if out is not None:
+                val, g, fisher, mu = out
+                self._state = (x.tobytes(), mu, None)
+                val = self._add_constraints(x, val + self._const, g, fisher)
+                return val, g, fisher
         jac = self._jac
         mu, blocks = self.expectation(x, jac)
         self._state = (x.tobytes(), mu, blocks)
@@ -205,6 +216,14 @@ class BinnedCost(_Cost):
             return np.asarray(st[1])
         return None
 
+    def _grad_all_bins(self, shape, q, need):
+        """Derivatives of ``shape``'s fractions in the used bins at parameters ``q``."""
+        fast = self._fused.fractions(shape, q) if self._fused is not None else None
+        if fast is not None:
+            return fast[1]
+        g = shape.fractions_and_grad(self.edges, q, self.model.window, need)[1]
+        return g if self.mask is None else g[:, self.mask]
+
     def observed_hessian(self, x: np.ndarray, steps: np.ndarray, lower: Any = None,
                 upper: Any = None) -> np.ndarray:
         """Observed Hessian of the NLL at ``x``:
@@ -224,7 +243,6 @@ class BinnedCost(_Cost):
         n = self.n
         r = (1.0 if self.unit_scale else self.s) - n / mu
         hess = (jac * (n / (mu * mu))) @ jac.T
-        window = self.model.window
         for shape, p, y, g, rows, ry in blocks:
             if g is None:
                 continue
@@ -243,19 +261,15 @@ class BinnedCost(_Cost):
                 q = list(p)
                 if up and dn:
                     q[j] = p[j] + h
-                    g2 = shape.fractions_and_grad(self.edges, q, window, need)[1]
+                    g2 = self._grad_all_bins(shape, q, need)
                     q[j] = p[j] - h
-                    g1 = shape.fractions_and_grad(self.edges, q, window, need)[1]
+                    g1 = self._grad_all_bins(shape, q, need)
                     width = 2.0 * h
                 else:  # one-sided next to a bound
                     q[j] = p[j] + (h if up else -h)
-                    g2 = shape.fractions_and_grad(self.edges, q, window, need)[1]
+                    g2 = self._grad_all_bins(shape, q, need)
                     g1 = None
                     width = h if up else -h
-                if self.mask is not None:
-                    g2 = g2[:, self.mask]
-                    if g1 is not None:
-                        g1 = g1[:, self.mask]
                 base = g if g1 is None else g1
                 d2 = y * (g2 - base) / width  # row k: d2 F / d theta_k d theta_j
                 for k, rk in enumerate(rows):
@@ -263,6 +277,21 @@ class BinnedCost(_Cost):
                         hess[rk, rj] += float(r @ d2[k])
         self._constraint_hessian(x, hess)
         return 0.5 * (hess + hess.T)
+
+
+def _fused_path(cost: BinnedCost) -> Any:
+    """The compiled evaluation of :mod:`.kernels` when every component of the cost has an
+    edge kernel (else None: the numpy path); see :func:`.poisson.use_compiled`."""
+    if not use_compiled():
+        return None
+    from .kernels import FusedBinned, edge_kernel
+
+    kernels = [edge_kernel(shape, cost.edges, cost.model.window) for shape, _, _ in
+               cost.model.blocks]
+    if any(k is None for k in kernels):
+        return None
+    return FusedBinned(kernels, cost._plan, cost.free.size, cost.edges, cost.mask, cost.n,
+                       cost.s, cost.unit_scale, MU_FLOOR)
 
 
 class UnbinnedCost(_Cost):

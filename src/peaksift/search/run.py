@@ -212,9 +212,10 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
         from .systematics import run_systematics
 
-        syst, best, _ = run_systematics(cfg, hist, scan_sig, masses, natural_width=width,
-                                        blind=blind_window, best_plain=best,
-                                        progress=progress, executor=_toy_executor(cfg))
+        syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
+                                                natural_width=width, blind=blind_window,
+                                                best_plain=best, progress=progress,
+                                                executor=_toy_executor(cfg))
         clock.lap("systematics")
         if drawer is not None:
             drawer.draw(["background_envelope"], partial(systematics=syst))
@@ -233,6 +234,10 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
         bonly = sideband_fit(hist, sig_fit, bkg, (lo, hi), blind_window)
     fres = _note_tie_drift(fres, cfg, settings)
+    if syst is not None and fres is not None:  # the fitted mass with the mass scale profiled
+        from .systematics import fitted_mass
+
+        syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
     clock.lap("fits")
     if drawer is not None:
         drawer.draw(["spectrum", "pvalue_scan"],
@@ -257,8 +262,15 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                   _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
                           smodel))
         clock.lap("limits" if limits_job is None else "limits (rest of)")
+        if syst is not None and smodel is None:
+            from .systematics import limits_with_systematics
+
+            syst = {**syst, "limits": limits_with_systematics(
+                cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
+                blind=blind_window)}
+            clock.lap("limits with systematics")
         if drawer is not None:
-            drawer.draw(["limits"], partial(limits=limits))
+            drawer.draw(["limits"], partial(limits=limits, systematics=syst))
 
     # hashed where the footers were read (on the workers of a cluster); None when
     # input.hash_inputs is off

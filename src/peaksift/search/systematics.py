@@ -8,7 +8,10 @@
 2. the scan with the signal nuisances profiled, over the envelope of the kept orders
    (:func:`peaksift.stats.envelope.envelope_scan`) or with the one function (the best kept
    one when ``envelope = false``, else ``model.background``);
-3. its global significance from toys with the same profiling.
+3. its global significance from toys with the same profiling;
+4. after the plain limits, :func:`limits_with_systematics`: the same limits with the shape
+   nuisances and the same background functions profiled
+   (:func:`peaksift.stats.limits_systematics.systematic_limits`), beside the plain ones.
 
 It returns the results.json ``systematics`` block (plain JSON) and the best hypothesis with
 systematics, which the search then reports as its ``best`` (the numbers without
@@ -63,8 +66,8 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                                                             Any]:
     """Run ``[systematics]``; returns ``(block, best with systematics, envelope or scan)``.
 
-    See the module guide.  Limits are not part of it yet: they keep the single function of
-    ``model.background`` with the luminosity and efficiency nuisances (said in the block).
+    See the module guide; the limits with systematics come after the plain limits
+    (:func:`limits_with_systematics`).
     """
     from ..stats.background_choice import choose_background, spurious_signal
     from ..stats.envelope import envelope_scan
@@ -146,7 +149,66 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
     best = dict(best)
     block["with_systematics"] = best
     block["without_systematics"] = dict(best_plain)
-    block["limits"] = ("limits use model.background alone with the luminosity and efficiency "
-                       "nuisance parameters; the envelope and the mass-scale and resolution "
-                       "nuisances are not yet part of them")
     return block, best, obj
+
+
+def fitted_mass(cfg: Config, fit_dict: dict[str, Any]) -> dict[str, Any] | None:
+    """The results.json ``systematics.fitted_mass``: the free fit's peak position with the
+    mass scale profiled (:meth:`peaksift.likelihood.SignalNuisances.mass_interval`, from the
+    fit's profile interval on ``mass``, else its symmetric error); None without a mass
+    scale or a usable fit."""
+    nuis = _nuisances(cfg)
+    pm = fit_dict.get("peak_mass") or {}
+    value, err = pm.get("value"), pm.get("error")
+    iv = (fit_dict.get("intervals") or {}).get("mass")
+    em, ep = (-float(iv[0]), float(iv[1])) if iv and None not in iv else (err, err)
+    if not nuis.mass_scale or value is None or em is None or ep is None:
+        return None
+    if not (np.isfinite([value, em, ep]).all() and em > 0 and ep > 0):
+        return None
+    lo, hi = nuis.mass_interval(float(value), float(em), float(ep))
+    return {"value": float(value), "error_minus": lo, "error_plus": hi,
+            "stat_error_minus": float(em), "stat_error_plus": float(ep),
+            "mass_scale": {"size": nuis.mass_scale, "kind": nuis.kind("mass_scale")}}
+
+
+def _compact(lim: dict[str, Any]) -> dict[str, Any]:
+    keys = ("mass", "observed", "expected", "expected_minus2", "expected_minus1",
+            "expected_plus1", "expected_plus2", "unit", "cl", "method")
+    return {k: lim.get(k) for k in keys}
+
+
+def limits_with_systematics(cfg: Config, hist: Any, signal: Any, scanned: Any,
+                            plain_limits: Any, *, natural_width: float | None,
+                            blind: Any) -> dict[str, Any]:
+    """The results.json ``systematics.limits`` block: the limits at the masses of the
+    plain ones (``plain_limits``, a LimitResult) with the mass-scale and resolution factors
+    and the same background functions as the significance (``scanned``: the envelope or
+    the single-function scan of :func:`run_systematics`) profiled, beside the plain ones."""
+    from ..stats.envelope import EnvelopeResult
+    from ..stats.limits_systematics import systematic_limits
+
+    L, S = cfg.limits, cfg.systematics
+    if isinstance(scanned, EnvelopeResult):
+        shapes = {lab: s.model.background for lab, s in zip(scanned.labels, scanned.scans)}
+        counts = dict(zip(scanned.labels, scanned.n_parameters))
+    else:
+        shapes = {scanned.background_shape: scanned.model.background}
+        counts = None
+    lum = L.luminosity
+    with_s = systematic_limits(
+        hist, signal, shapes, np.asarray(plain_limits.masses), nuisances=_nuisances(cfg),
+        n_parameters=counts, penalty=S.penalty, resolution=cfg.model.resolution.resolution,
+        window=tuple(cfg.spectrum.window), natural_width=natural_width, blind=blind,
+        cl=L.cl, luminosity=lum,
+        luminosity_uncertainty=L.luminosity_uncertainty if lum is not None else 0.0,
+        efficiency=L.efficiency if lum is not None else 1.0,
+        efficiency_uncertainty=L.efficiency_uncertainty if lum is not None else 0.0,
+        constraint=L.constraint, unit=L.cross_section_unit)
+    plain = plain_limits.to_dict()
+    notes = list(with_s.pop("notes", []))
+    if plain.get("method") != "asymptotic" and any(m == "toys" for m in plain["methods"]):
+        notes.append("the limits with systematics are asymptotic everywhere; the plain ones "
+                     "use toys at some masses")
+    return {"with_systematics": with_s, "without_systematics": _compact(plain),
+            "profiled": with_s["profiled"], "notes": notes}

@@ -58,6 +58,13 @@ class _Problem:
         small = k < 1e-3
         return np.where(small, 1e-3, k), np.where(small, 0.0, self.delta), 0 * t
 
+    def _profile(self, s: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray]:
+        """The fit at signal yields ``s`` (background free) and the signal fractions it
+        used; :mod:`.limits_systematics` also frees the signal shape's factors here."""
+        r = profile_signal(self.model, self.counts, self.fractions, s_fixed=s,
+                           theta_start=self.theta, b_start=self.b)
+        return r, self.fractions
+
     def nll(self, mu: np.ndarray) -> np.ndarray:
         """NLL profiled over background and nuisance at fixed parameter of interest ``mu``."""
         mu = np.asarray(mu, float)
@@ -66,19 +73,18 @@ class _Problem:
         for it in range(steps):
             k, dk, d2k = self.kappa(t)
             s = mu * self.conv * k
-            r = profile_signal(self.model, self.counts, self.fractions, s_fixed=s,
-                               theta_start=self.theta, b_start=self.b)
+            r, f = self._profile(s)
             self.theta, self.b = r["theta"], r["b"]
             total = r["nll"] + (0.5 * (t - self.aux) ** 2 if self.delta else 0.0)
             if self.delta == 0 or it == steps - 1:
                 break
             g = bkg_fractions(self.model, r["theta"])
-            nu = np.maximum(s[:, None] * self.fractions + r["b"][:, None] * g, 1e-100)
+            nu = np.maximum(s[:, None] * f + r["b"][:, None] * g, 1e-100)
             n = np.broadcast_to(self.counts, nu.shape)
             ds = mu * self.conv * dk
             d2s = mu * self.conv * d2k
-            g1 = np.sum((1.0 - n / nu) * self.fractions, axis=1)
-            h1 = np.sum(n / nu**2 * self.fractions**2, axis=1)
+            g1 = np.sum((1.0 - n / nu) * f, axis=1)
+            h1 = np.sum(n / nu**2 * f**2, axis=1)
             d1 = g1 * ds + (t - self.aux)
             dd = h1 * ds**2 + g1 * d2s + 1.0
             step = d1 / np.maximum(dd, 1e-6)

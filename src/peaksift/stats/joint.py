@@ -12,9 +12,9 @@ NLLs (:func:`peaksift.likelihood.binned_nll`): the likelihood is the product of 
 channels'.
 
 :func:`profile_joint` fits that likelihood for stacked hypotheses (masses, or toys x masses)
-at once: Levenberg-Marquardt steps with the exact Hessian (the channels' blocks scattered
-into one matrix over ``(mu, b_1, theta_1, b_2, theta_2, ...)``), on the exact NLL, the
-same steps as the one-channel :func:`~peaksift.stats.toys.profile_signal`.  A channel with
+at once: :func:`peaksift.likelihood.minimize_stacked` with the exact Hessian (the channels'
+blocks scattered into one matrix over ``(mu, b_1, theta_1, b_2, theta_2, ...)``), on the
+exact NLL, as the one-channel :func:`~peaksift.stats.toys.profile_signal` does.  A channel with
 ``k_c = 0`` adds its background-only fit and nothing to the parameter of interest.
 """
 
@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import binned_nll, damped_step
+from ..likelihood import binned_nll, first_error, minimize_stacked
 from .toys import ScanModel, bkg_fractions, bkg_gradients, bkg_second
 
 __all__ = ["profile_joint"]
@@ -110,76 +110,59 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
         mu = np.where(np.isfinite(nll), mu, 0.0)
         nll = total(mu, b, g, all_rows)
     d2 = [bkg_second(m, th) if kc else None for m, th, kc in zip(models, theta, ks)]
-    lam = np.full(nb, 1e-3)
-    active = np.ones(nb, bool)
-    converged = np.zeros(nb, bool)
-    for _ in range(steps):
-        idx = np.flatnonzero(active)
-        if idx.size == 0:
-            break
-        grad, hess = _grad_hess(models, n, f, k, mu, b, theta, g, d2, idx, fixed, first, p)
-        with np.errstate(all="ignore"):
-            err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
-        todo = np.ones(idx.size, bool)
-        for _try in range(12):
-            r = np.flatnonzero(todo)
-            rows = idx[r]
-            step = damped_step(hess[r], grad[r], lam[rows])
-            tmu = mu[rows] if fixed else mu[rows] + step[:, 0]
-            tb, tth, tg = [], [], []
-            for c, m in enumerate(models):
-                j = first[c]
-                tb.append(b[c][rows] + step[:, j])
-                th = np.clip(theta[c][rows] + step[:, j + 1:j + 1 + ks[c]], m.lower, m.upper)
-                tth.append(th)
-                tg.append(bkg_fractions(m, th) if ks[c] else g[c][rows])
-            tn = total(tmu, tb, tg, rows)
-            ok = tn <= nll[rows] + 1e-9
-            acc = rows[ok]
-            small = np.all(np.abs(step) < tol * err[r], axis=1)
-            conv_ = ok & (small | (nll[rows] - tn < 1e-8)) & (lam[rows] <= 1e-2)
-            mu[acc] = tmu[ok]
-            for c in range(nc):
-                b[c][acc], theta[c][acc], g[c][acc] = tb[c][ok], tth[c][ok], tg[c][ok]
-            nll[acc] = tn[ok]
-            converged[rows[conv_]] = True
-            active[rows[conv_]] = False
-            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
-            todo[r[ok]] = False
-            if not todo.any():
-                break
-        stuck = idx[todo]
-        converged[stuck] = True  # no descent at any damping: at the minimum to rounding
-        active[stuck] = False
+    g0 = g
+
+    def unpack(x, rows):
+        mu_ = mu[rows] if fixed else x[:, 0]
+        return (mu_, [x[:, j] for j in first],
+                [x[:, j + 1:j + 1 + kc] for j, kc in zip(first, ks)])
+
+    def value(x, rows):
+        tmu, tb, tth = unpack(x, rows)
+        tg = tuple(bkg_fractions(m, th) if kc else g0[c][rows]
+                   for c, (m, th, kc) in enumerate(zip(models, tth, ks)))
+        return total(tmu, tb, tg, rows), tg
+
+    def grad_hess(x, state, rows):
+        xmu, xb, xth = unpack(x, rows)
+        return _grad_hess(models, n, f, k, xmu, xb, xth, state, d2, rows, fixed, first, p)
+
+    free = [] if fixed else [mu[:, None]]
+    x0 = np.concatenate(free + [a for c in range(nc) for a in (b[c][:, None], theta[c])],
+                        axis=1)
+    lower = np.concatenate([np.full(off, -np.inf)]
+                           + [np.r_[-np.inf, m.lower] for m in models])
+    upper = np.concatenate([np.full(off, np.inf)] + [np.r_[np.inf, m.upper] for m in models])
+    r = minimize_stacked(value, grad_hess, x0, lower, upper, start=(nll, tuple(g)),
+                         steps=steps, nll_tol=1e-8, step_tol=tol)
+    mu, b, theta = unpack(r.x, all_rows)
+    mu, b, theta = mu.copy(), [v.copy() for v in b], [v.copy() for v in theta]
+    g, nll, converged = list(r.state), r.nll, r.converged
     mu_err = np.full(nb, np.nan)
     if not fixed:
         # the curvature of the background shapes from the start, as profile_signal does
-        _, h = _grad_hess(models, n, f, k, mu, b, theta, g, d2, all_rows, fixed, first, p)
-        reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
-        try:
-            cov = np.linalg.inv(h + reg * np.eye(p))
-            mu_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
-        except np.linalg.LinAlgError:
-            pass
+        mu_err = first_error(_grad_hess(models, n, f, k, mu, b, theta, g, d2, all_rows, fixed,
+                                        first, p)[1])
     return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nll": nll,
             "converged": converged}
 
 
 def _grad_hess(models, n, f, k, mu, b, theta, g, d2, idx, fixed, first, p):
-    """Gradient ``(B, P)`` and exact Hessian ``(B, P, P)`` of the summed NLL at rows ``idx``:
-    per channel the blocks of :func:`~peaksift.stats.toys.profile_signal`, with the signal
-    column ``k_c f_c`` on the shared parameter of interest."""
+    """Gradient ``(B, P)`` and exact Hessian ``(B, P, P)`` of the summed NLL at rows ``idx``
+    (``mu``, ``b``, ``theta``, ``g`` are already those rows'): per channel the blocks of
+    :func:`~peaksift.stats.toys.profile_signal`, with the signal column ``k_c f_c`` on the
+    shared parameter of interest."""
     nb = idx.size
     grad = np.zeros((nb, p))
     hess = np.zeros((nb, p, p))
     for c, m in enumerate(models):
         kc = m.theta.size
-        bi, gi, fi = b[c][idx], g[c][idx], f[c][idx]
-        sig = (mu[idx] * k[c][idx])[:, None] * fi
+        bi, gi, fi = b[c], g[c], f[c][idx]
+        sig = (mu * k[c][idx])[:, None] * fi
         nu = np.maximum(sig + bi[:, None] * gi, _NU_FLOOR)
         cols = [gi[:, None, :]]
         if kc:
-            dg = bkg_gradients(m, theta[c][idx])
+            dg = bkg_gradients(m, theta[c])
             cols.append(bi[:, None, None] * dg)
         pos = list(range(first[c], first[c] + 1 + kc))
         if not fixed:

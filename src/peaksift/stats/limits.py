@@ -279,30 +279,10 @@ def upper_limits(
     bl = info["blinded_mass"]
     nm = m_all.size
     alpha = 1.0 - cl
-    # conversion: events per unit of the parameter of interest (effective-count scale)
-    eff_values = None
-    if luminosity is None:
-        if luminosity_uncertainty or efficiency_uncertainty:
-            raise FitError("luminosity/efficiency uncertainties need luminosity=...")
-        conv = np.ones(nm)
-        out_unit = "events"
-        delta, kind = 0.0, None
-    else:
-        if not luminosity > 0:
-            raise FitError(f"luminosity must be > 0, got {luminosity!r}")
-        eff = (np.asarray(efficiency(m_all), float) if callable(efficiency)
-               else np.full(nm, float(efficiency)))
-        eff_values = eff
-        if np.any(~np.isfinite(eff) | (eff <= 0)):
-            raise FitError("signal efficiency must be > 0 at every scan mass")
-        conv = float(luminosity) * eff
-        out_unit = unit
-        if constraint == "lognormal":
-            delta = math.sqrt(math.log1p(luminosity_uncertainty) ** 2
-                              + math.log1p(efficiency_uncertainty) ** 2)
-        else:
-            delta = math.hypot(luminosity_uncertainty, efficiency_uncertainty)
-        kind = constraint
+    conv, out_unit, delta, kind, eff_values = normalisation(
+        m_all, luminosity=luminosity, efficiency=efficiency, unit=unit,
+        luminosity_uncertainty=luminosity_uncertainty,
+        efficiency_uncertainty=efficiency_uncertainty, constraint=constraint)
     conv_eff = conv  # yields in weighted units (per-bin scaled Poisson inside the model)
     notes: list[str] = []
 
@@ -383,6 +363,32 @@ def upper_limits(
         asymptotic_doubtful=doubtful, below_floor=below, flags=tuple(flags),
         assumptions=_assumptions(luminosity, luminosity_uncertainty, efficiency,
                                  efficiency_uncertainty, eff_values, kind))
+
+
+def normalisation(masses: np.ndarray, *, luminosity: float | None, efficiency: Any,
+                  unit: str, luminosity_uncertainty: float, efficiency_uncertainty: float,
+                  constraint: str
+                  ) -> tuple[np.ndarray, str, float, str | None, np.ndarray | None]:
+    """Events per unit of the parameter of interest at each mass, the limit's unit, the
+    combined relative normalisation uncertainty and its constraint kind (see the module
+    guide), and the efficiencies used (None without a luminosity)."""
+    nm = masses.size
+    if luminosity is None:
+        if luminosity_uncertainty or efficiency_uncertainty:
+            raise FitError("luminosity/efficiency uncertainties need luminosity=...")
+        return np.ones(nm), "events", 0.0, None, None
+    if not luminosity > 0:
+        raise FitError(f"luminosity must be > 0, got {luminosity!r}")
+    eff = (np.asarray(efficiency(masses), float) if callable(efficiency)
+           else np.full(nm, float(efficiency)))
+    if np.any(~np.isfinite(eff) | (eff <= 0)):
+        raise FitError("signal efficiency must be > 0 at every scan mass")
+    if constraint == "lognormal":
+        delta = math.sqrt(math.log1p(luminosity_uncertainty) ** 2
+                          + math.log1p(efficiency_uncertainty) ** 2)
+    else:
+        delta = math.hypot(luminosity_uncertainty, efficiency_uncertainty)
+    return float(luminosity) * eff, unit, delta, constraint, eff
 
 
 def _assumptions(luminosity: float | None, lumi_unc: float, efficiency: Any, eff_unc: float,
