@@ -443,7 +443,7 @@ def _limits_with_systematics(ax: Any, w: Any) -> None:
     """The limits with every systematic profiled (mass scale, resolution, background
     function as well as L and efficiency) over the plain ones, which carry only L and
     efficiency: a reader must not take one for the other."""
-    m = np.asarray(w["mass"], float)
+    m = np.asarray(w["masses"], float)
 
     def arr(key: str) -> np.ndarray:
         return np.array([np.nan if v is None else v for v in w[key]], float)
