@@ -22,6 +22,14 @@ the shapes.
     python scripts/stress_fits.py                       # 100 toys per cell (hours)
     python scripts/stress_fits.py --toys 5 --cells 'gaussian/*/strong/*,*/dijet*/*/binned'
     python scripts/stress_fits.py --toys 20 --json out.json
+    python scripts/stress_fits.py --log cells.jsonl --deadline 20:50   # resumable, timed
+    python scripts/stress_fits.py --tables cells.jsonl                 # tables of a log
+
+``--log`` appends one JSON line per finished cell (flushed, so a stopped run loses at most
+the cell in progress) and skips the cells already in the file, so the same command resumes.
+``--deadline HH:MM`` (UTC) gives every remaining cell an equal share of the time left and
+stops a cell's toys when its share is spent (at least ``--min-toys``); the log records how
+many toys each cell really ran.
 
 A cell label is ``signal/background/case/mode``; ``--cells`` takes comma-separated
 fnmatch patterns.
@@ -263,13 +271,17 @@ def cells(patterns: list[str]):
 
 
 def run_cell(label: str, sname: str, blabel: str, cname: str, case: Case, mode: str,
-             toys: int, seed: int, scan_toys: int) -> CellStats:
+             toys: int, seed: int, scan_toys: int, budget_s: float = math.inf,
+             min_toys: int = 1) -> CellStats:
     st = CellStats(label)
     sig = shapes.get(sname)
     bkg = background_shape(blabel)
     bkg_truth = BACKGROUNDS[blabel][2]
     s_yield = signal_yield(case, sig, bkg, bkg_truth)
+    wall0 = time.monotonic()
     for k in range(toys):
+        if k >= min_toys and time.monotonic() - wall0 > budget_s:
+            break  # this cell's share of the time left is spent (see --deadline)
         rng = np.random.default_rng([seed, zlib.crc32(label.encode()), k])
         data = make_data(case, mode, sig, bkg, bkg_truth, s_yield, rng)
         st.toys += 1
@@ -292,15 +304,53 @@ def run_cell(label: str, sname: str, blabel: str, cname: str, case: Case, mode: 
     return st
 
 
+def to_record(st: CellStats) -> dict[str, Any]:
+    return {"cell": st.label, "toys": st.toys, "fits": st.fits, "raw": st.raw,
+            "scan_raw": st.scan_raw, "user_errors": st.user_errors, "invalid": st.invalid,
+            "reasons": dict(st.reasons), "times": st.times, "median_ms": st.median_ms,
+            "scans": st.scans}
+
+
+def from_record(rec: dict[str, Any]) -> CellStats:
+    return CellStats(rec["cell"], rec["toys"], list(rec["raw"]), list(rec["user_errors"]),
+                     rec["invalid"], collections.Counter(rec["reasons"]), list(rec["times"]),
+                     list(rec["scan_raw"]), rec["scans"])
+
+
+def read_log(path: str) -> list[CellStats]:
+    """The finished cells of a ``--log`` file (a torn last line, from a stop, is skipped)."""
+    out = []
+    try:
+        with open(path) as fh:
+            for line in fh:
+                try:
+                    out.append(from_record(json.loads(line)))
+                except (json.JSONDecodeError, KeyError):
+                    continue
+    except FileNotFoundError:
+        pass
+    return out
+
+
+def seconds_until(hhmm: str) -> float:
+    """Seconds from now to the next HH:MM UTC."""
+    now = time.time()
+    h, m = (int(v) for v in hhmm.split(":"))
+    day = now - now % 86400
+    t = day + 3600 * h + 60 * m
+    return t - now if t > now else t + 86400 - now
+
+
 def _top_reasons(st: CellStats, most: int = 3) -> str:
     return "; ".join(f"{r} x{n}" for r, n in st.reasons.most_common(most))
 
 
 def print_tables(results: list[CellStats]) -> None:
-    print("\n| cell | fits | raw exc | PeaksiftError | invalid | median CPU ms | top reasons |")
-    print("|---|---:|---:|---:|---:|---:|---|")
+    print("\n| cell | toys | fits | raw exc | PeaksiftError | invalid | median CPU ms "
+          "| top reasons |")
+    print("|---|---:|---:|---:|---:|---:|---:|---|")
     for st in results:
-        print(f"| {st.label} | {st.fits} | {len(st.raw) + len(st.scan_raw)} | "
+        print(f"| {st.label} | {st.toys} | {st.fits} | {len(st.raw) + len(st.scan_raw)} | "
               f"{len(st.user_errors)} | {100 * st.invalid_rate:.0f}% | {st.median_ms:.0f} | "
               f"{_top_reasons(st)} |")
     # compact: rows signal/background, columns case/mode -> invalid % (median ms)
@@ -348,15 +398,43 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--scan-toys", type=int, default=2,
                     help="toys per bkg_only/strong cell also scanned and limited (default 2)")
     ap.add_argument("--json", help="write the per-cell statistics to this file")
+    ap.add_argument("--log", help="append each finished cell as a JSON line here and skip "
+                    "the cells already in it (resume)")
+    ap.add_argument("--deadline", help="HH:MM UTC: share the time left equally among the "
+                    "remaining cells, cutting a cell's toys when its share is spent")
+    ap.add_argument("--min-toys", type=int, default=10,
+                    help="toys a cell runs whatever the deadline (default 10)")
+    ap.add_argument("--tables", metavar="LOG", help="only print the tables of --log files "
+                    "(comma-separated)")
+    ap.add_argument("--shuffle", type=int, metavar="SEED", help="run the cells in an order "
+                    "shuffled with this seed (spreads a time-limited run over every shape)")
     args = ap.parse_args(argv)
+    if args.tables:
+        results = []
+        for path in args.tables.split(","):
+            results += read_log(path)
+        print_tables(results)
+        return 1 if any(st.raw or st.scan_raw for st in results) else 0
     warnings.simplefilter("ignore")  # data warnings of awkward toys are expected here
     patterns = [p.strip() for p in args.cells.split(",") if p.strip()]
-    results = []
+    results = read_log(args.log) if args.log else []
+    done = {st.label for st in results}
+    todo = [spec for spec in cells(patterns) if spec[0] not in done]
+    if args.shuffle is not None:
+        order = np.random.default_rng(args.shuffle).permutation(len(todo))
+        todo = [todo[i] for i in order]
     t_start = time.perf_counter()
-    for spec in cells(patterns):
-        st = run_cell(*spec, toys=args.toys, seed=args.seed, scan_toys=args.scan_toys)
+    for i, spec in enumerate(todo):
+        budget = (seconds_until(args.deadline) / (len(todo) - i) if args.deadline
+                  else math.inf)
+        st = run_cell(*spec, toys=args.toys, seed=args.seed, scan_toys=args.scan_toys,
+                      budget_s=budget, min_toys=min(args.min_toys, args.toys))
         results.append(st)
-        print(f"{st.label:45s} fits {st.fits:4d}  raw {len(st.raw) + len(st.scan_raw)}  "
+        if args.log:
+            with open(args.log, "a") as fh:
+                fh.write(json.dumps(to_record(st)) + "\n")
+        print(f"{st.label:45s} toys {st.toys:4d} fits {st.fits:4d}  "
+              f"raw {len(st.raw) + len(st.scan_raw)}  "
               f"invalid {100 * st.invalid_rate:5.1f}%  median {st.median_ms:7.1f} ms  "
               f"[{time.perf_counter() - t_start:.0f} s]", flush=True)
     if not results:
@@ -365,10 +443,7 @@ def main(argv: list[str] | None = None) -> int:
     print_tables(results)
     if args.json:
         with open(args.json, "w") as fh:
-            json.dump([{"cell": st.label, "fits": st.fits, "raw": st.raw + st.scan_raw,
-                        "user_errors": st.user_errors, "invalid": st.invalid,
-                        "reasons": dict(st.reasons), "median_ms": st.median_ms,
-                        "scans": st.scans} for st in results], fh, indent=1)
+            json.dump([to_record(st) for st in results], fh, indent=1)
     return 1 if any(st.raw or st.scan_raw for st in results) else 0
 
 

@@ -66,7 +66,7 @@ def test_search_result_from_results_json(search):
     d = _json(search.to_dict())
     back = SearchResult.from_dict(d)
     again = _json(back.to_dict())
-    for key in ("fit", "background_only_fit", "scan", "best", "limits", "input", "blinding"):
+    for key in ("fit", "background_fit", "scan", "best", "limits", "input", "blinding"):
         assert again[key] == d[key], key
     assert back.fit == search.fit and back.limits == search.limits
 
@@ -130,11 +130,61 @@ def test_window_snapping_is_reported():
     assert any("snapped" in n and "110-200" in n for n in fr.notes)
 
 
-def test_arrays_under_their_json_names(search):
-    for res in (search.scan, search.limits):
-        d = res.to_dict()
-        assert np.array_equal(res.mass, np.array(d["mass"], float))
-        assert res.mass is res.masses
-    d = search.scan.to_dict()
-    assert np.array_equal(search.scan.signal_yield_error,
-                          np.array(d["signal_yield_error"], float))
+def _same(python, stored):
+    """An attribute and its JSON entry hold the same numbers (None where NaN)."""
+    if isinstance(python, float) and hasattr(python, "error"):  # a Measurement
+        return stored == {"value": _json(python.value), "error": _json(python.error)}
+    if isinstance(python, (np.ndarray, list, tuple)) and isinstance(stored, list):
+        if not all(v is None or isinstance(v, (int, float, list)) for v in stored):
+            return _json(list(python)) == stored  # names, notes
+        a = np.array([np.nan if v is None else v for v in np.ravel(stored)], float)
+        return np.allclose(np.asarray(python, float).ravel(), a, rtol=1e-12, equal_nan=True)
+    if isinstance(python, (int, float, str, bool)) and not isinstance(python, np.generic):
+        nan = isinstance(python, float) and np.isnan(python)
+        return stored == _json(python) or (stored is None and nan)
+    return True  # structures: their parts are checked by from_dict(to_dict(x)) == x
+
+
+def _results(search):
+    from peaksift.search.common import _blinded_copy
+    from peaksift.search.sideband import sideband_fit
+
+    cfg = search.config
+    sb = sideband_fit(_blinded_copy(search.histogram, (145.0, 160.0)), "gaussian",
+                      cfg.model.background, cfg.spectrum.window, (145.0, 160.0))
+    return {"fit": search.fit, "background_fit": search.background_fit,
+            "scan": search.scan, "limits": search.limits, "sideband_fit": sb,
+            "search": search}
+
+
+@pytest.mark.parametrize("kind", ["fit", "background_fit", "scan", "limits", "sideband_fit",
+                                  "search"])
+def test_json_keys_are_the_python_attribute_names(search, kind):
+    """Every key results.json writes for a result is an attribute of the same name holding
+    the same numbers, and the result read back from the JSON equals the one written."""
+    res = _results(search)[kind]
+    d = _json(res.to_dict())
+    keys = [k for k in d if k not in ("kind", "outputs")]  # kind: a tag, not a value
+    missing = [k for k in keys if not hasattr(res, k)]
+    assert not missing, f"{type(res).__name__}: JSON keys without an attribute: {missing}"
+    differ = [k for k in keys if not _same(getattr(res, k), d[k])]
+    assert not differ, f"{type(res).__name__}: attribute and JSON differ for {differ}"
+    back = type(res).from_dict(d)
+    if kind == "search":  # without the event-level data: the sections it keeps are equal
+        assert back.fit == res.fit and back.scan == res.scan and back.limits == res.limits
+        assert back.background_fit == res.background_fit
+    else:
+        assert back == res
+
+
+def test_results_json_of_earlier_versions_still_loads(search):
+    """Files written before the keys took the attribute names (``mass`` for the masses,
+    ``background_only_fit``) load the same."""
+    d = _json(search.to_dict())
+    old = {**d, "background_only_fit": d["background_fit"]}
+    del old["background_fit"]
+    old["scan"] = {("mass" if k == "masses" else k): v for k, v in d["scan"].items()}
+    old["limits"] = {("mass" if k == "masses" else k): v for k, v in d["limits"].items()}
+    back = SearchResult.from_dict(old)
+    assert back.scan == search.scan and back.limits == search.limits
+    assert back.background_fit == search.background_fit

@@ -40,11 +40,11 @@ def _results() -> dict:
                 "signal_yield": {"value": 120.0, "error": 30.0},
                 "background_yield": {"value": 3000.0, "error": 60.0},
                 "gof": {"chi2": 80.1, "ndf": 84, "p_value": 0.6}},
-        "scan": {"mass": [120.0, 150.0, 180.0], "z_local": [0.1, 3.9, 0.3],
+        "scan": {"masses": [120.0, 150.0, 180.0], "z_local": [0.1, 3.9, 0.3],
                  "p_local": [0.46, 4.8e-5, 0.38], "signal_yield": [3.0, 118.0, 8.0]},
         "best": {"mass": 150.0, "z_local": 3.9, "p_local": 4.8e-5, "z_global": 2.9,
                  "p_global": 0.0019, "global_method": "upcrossings"},
-        "limits": {"mass": [120.0, 150.0], "observed": [30.0, 210.0], "expected": [28.0, 40.0],
+        "limits": {"masses": [120.0, 150.0], "observed": [30.0, 210.0], "expected": [28.0, 40.0],
                    "expected_minus2": [15.0, 21.0], "expected_minus1": [20.0, 29.0],
                    "expected_plus1": [39.0, 56.0], "expected_plus2": [52.0, 75.0],
                    "unit": "events", "cl": 0.95},
@@ -194,7 +194,7 @@ def _full_results() -> dict:
     r = _results()
     m = np.linspace(113.87, 191.6, 25)
     exp = 5.8 * (113.87 / m) ** 2
-    r["limits"] = {"mass": m.tolist(), "observed": (exp * 1.1).tolist(),
+    r["limits"] = {"masses": m.tolist(), "observed": (exp * 1.1).tolist(),
                    "expected": exp.tolist(), "expected_minus2": (exp * 0.52).tolist(),
                    "expected_minus1": (exp * 0.71).tolist(),
                    "expected_plus1": (exp * 1.42).tolist(),
@@ -204,7 +204,7 @@ def _full_results() -> dict:
                                    "efficiency": 0.55, "efficiency_uncertainty": 0.05,
                                    "constraint": "lognormal"}}
     r["limits"]["observed"][12] = 8.44  # the point that matters must not be skipped
-    r["background_only_fit"] = {
+    r["background_fit"] = {
         "valid": True, "background_shape": "powerlaw",
         "gof": {"chi2": 118.95, "ndf": 88, "p_value": 0.0156},
         "parameters": {"mass": {"value": 152.6, "error": 0.0, "fixed": True},
@@ -227,7 +227,7 @@ def test_report_has_every_limit_point_its_bands_and_the_assumptions(tmp_path):
     text = " ".join(parser.text)
     for doc in (md, text):
         # every point, formatted independently here with two decimals (the table's precision)
-        for i, mass in enumerate(lim["mass"]):
+        for i, mass in enumerate(lim["masses"]):
             cells = [f"{mass:.2f}"] + [f"{lim[k][i]:.2f}" for k in (
                 "observed", "expected", "expected_minus2", "expected_minus1",
                 "expected_plus1", "expected_plus2")]

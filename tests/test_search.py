@@ -61,17 +61,17 @@ def test_results_json_has_every_key_with_sane_types(run):
     assert set(fit["gof"]) >= {"chi2", "ndf", "p_value"}
     assert isinstance(fit["gof"]["ndf"], int) and 0 <= fit["gof"]["p_value"] <= 1
     scan = r["scan"]
-    n = len(scan["mass"])
+    n = len(scan["masses"])
     assert n > 20
     for k in ("z_local", "p_local", "signal_yield"):
         assert len(scan[k]) == n and all(isinstance(x, float) for x in scan[k])
-    assert scan["mass"] == sorted(scan["mass"])
+    assert scan["masses"] == sorted(scan["masses"])
     best = r["best"]
     for k in ("mass", "z_local", "p_local", "z_global", "p_global"):
         assert isinstance(best[k], float)
     assert isinstance(best["global_method"], str)
     lim = r["limits"]
-    nl = len(lim["mass"])
+    nl = len(lim["masses"])
     assert nl > 5
     for k in ("observed", "expected", "expected_minus2", "expected_minus1", "expected_plus1",
               "expected_plus2"):
@@ -106,12 +106,12 @@ def test_systematics_block_with_and_without(run):
     assert set(sy["nuisance_pulls"]) == {"mass_scale", "mass_resolution"}
     assert all(abs(v) < 5 for v in sy["nuisance_pulls"].values())
     lim = sy["limits"]  # side by side: the plain limits and those with systematics
-    assert lim["without_systematics"]["mass"] == r["limits"]["mass"]
+    assert lim["without_systematics"]["masses"] == r["limits"]["masses"]
     assert lim["without_systematics"]["observed"] == r["limits"]["observed"]
     w = lim["with_systematics"]
-    assert w["mass"] == r["limits"]["mass"] and w["functions"] == env["functions"]
+    assert w["masses"] == r["limits"]["masses"] and w["functions"] == env["functions"]
     # the bands ordered (Cowan et al. 2011, sec. 4.3) and the limits positive
-    for i in range(len(w["mass"])):
+    for i in range(len(w["masses"])):
         assert 0 < w["expected_minus2"][i] <= w["expected"][i] <= w["expected_plus2"][i]
         assert w["observed"][i] > 0
     assert any("mass scale" in p for p in lim["profiled"])
@@ -312,9 +312,9 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     d = json.loads((out / "results.json").read_text())
     assert d == json.loads(json.dumps(d))  # plain JSON
     scan = d["scan"]
-    inside = [i for i, m in enumerate(scan["mass"]) if b0 <= m <= b1]
+    inside = [i for i, m in enumerate(scan["masses"]) if b0 <= m <= b1]
     assert inside and all(scan["z_local"][i] is None for i in inside)
-    assert all(scan["z_local"][i] is not None for i in range(len(scan["mass"]))
+    assert all(scan["z_local"][i] is not None for i in range(len(scan["masses"]))
                if i not in inside)
     assert d["fit"]["peak_mass"]["value"] is None and d["blinding"]["active"]
     assert not (b0 <= d["best"]["mass"] <= b1)

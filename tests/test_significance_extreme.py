@@ -226,7 +226,7 @@ def test_results_json_holds_numbers_for_a_huge_peak(huge):
     ln_ref = max(ln_loc, ln_term) + math.log1p(math.exp(-abs(ln_loc - ln_term)))
     assert best["log10_p_global"] == pytest.approx(ln_ref / LN10, rel=1e-9)
     scan = huge["results"]["scan"]
-    assert len(scan["log10_p_local"]) == len(scan["mass"])
+    assert len(scan["log10_p_local"]) == len(scan["masses"])
     assert min(scan["log10_p_local"]) == pytest.approx(best["log10_p_local"], rel=1e-12)
 
 

@@ -22,6 +22,7 @@ A frozen dataclass that inherits :class:`FrozenValue`
 
 from __future__ import annotations
 
+import copyreg
 import dataclasses
 import math
 from collections.abc import Mapping
@@ -31,6 +32,14 @@ from typing import Any
 import numpy as np
 
 __all__ = ["FrozenValue", "Measurement", "values_equal"]
+
+# A result's read-only mappings pickle as what they wrap (pickle refuses mappingproxy), so
+# results cross process boundaries: a search's stages in forked processes, engines' workers.
+def _read_only(d: dict[str, Any]) -> Mapping[str, Any]:
+    return MappingProxyType(d)
+
+
+copyreg.pickle(MappingProxyType, lambda m: (_read_only, (dict(m),)))
 
 
 class Measurement(float):

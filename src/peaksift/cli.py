@@ -121,7 +121,7 @@ def _summary(result: object) -> str:
 def _summary_text(d: Mapping[str, Any]) -> str:
     """:func:`_summary` from the results dictionary; every number goes through
     :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
-    from ._format import fixed, format_pm, number, significance
+    from ._format import fixed, format_pm, number, p_value, significance
 
     def part(m: Any, key: str) -> Mapping[str, Any]:
         v = m.get(key) if isinstance(m, Mapping) else None
@@ -138,6 +138,14 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     if blinded:  # intended: no fit inside the blinded window, which is not a failure
         lines.append(_row("signal fit", "not made: the run is blinded as configured "
                                         "(--unblind to fit)"))
+        sb = d.get("background_fit") or {}
+        if sb.get("kind") == "sideband_fit":
+            by = sb.get("blinded_yield") or {}
+            lines.append(_row("background (sidebands)",
+                              f"chi2/ndf = {fixed(sb.get('gof_chi2'), 1)}/{sb.get('gof_ndf')} "
+                              f"(p = {p_value(sb.get('gof_p_value'))}); "
+                              f"{format_pm(by.get('value'), by.get('error'))} expected in the "
+                              "blinded window"))
     else:
         lines += [_row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
                   *_scaled_mass(part(part(d, "systematics"), "fitted_mass")),
@@ -213,9 +221,9 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
     from ._format import fixed, number
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
-    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("mass"):
+    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
         return []
-    ms = [float("inf") if m is None else float(m) for m in w["mass"]]
+    ms = [float("inf") if m is None else float(m) for m in w["masses"]]
     try:
         i = min(range(len(ms)), key=lambda j: abs(ms[j] - float(mass)))
     except (TypeError, ValueError):
@@ -270,7 +278,11 @@ def _cmd_search(args: argparse.Namespace) -> int:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars
         warnings.simplefilter("always")
-        res = run_search(_config(args), out=args.out, unblind=args.unblind, toys=args.toys,
+        from .search.combination import is_combination
+
+        # a combination config names its channels' configs: run_search reads them itself
+        config = args.config if is_combination(args.config) else _config(args)
+        res = run_search(config, out=args.out, unblind=args.unblind, toys=args.toys,
                          seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
                          share_folder=args.share_folder)
     numeric = [w for w in caught if issubclass(w.category, RuntimeWarning)]

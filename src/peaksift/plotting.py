@@ -11,8 +11,6 @@ Which function
 * :func:`scan_figure` -- the p-value scan with the global significance noted; an excess
   beyond the axis floor is clipped there and its p stated (as a power of ten if need be).
 * :func:`figure_labels` -- the run label and the pair's mass symbol from a configuration.
-* :func:`draw_in_background` -- :func:`search_figures` without the limits, in a forked
-  process while the caller computes the limits; :func:`limits_figure` then adds them.
 * :func:`envelope_figure` -- the background-function envelope: twice the profiled NLL
   against the signal yield at the best mass, one curve per candidate, the envelope over them
   (``background_envelope``, with ``[systematics]`` background families).
@@ -53,7 +51,7 @@ from ._style import (
     shade_blinded,
 )
 
-__all__ = ["FigureLabels", "candidates", "dedx_figure", "draw_in_background", "envelope_figure",
+__all__ = ["FigureLabels", "candidates", "dedx_figure", "envelope_figure",
            "figure_labels", "limits_figure", "save", "scan_figure", "search_figures",
            "spectrum_only"]
 
@@ -108,7 +106,8 @@ def save(fig: Any, outdir: str | os.PathLike[str], name: str,
 def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                   formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                   blind: Sequence[float] | None = None, title: str = "",
-                  labels: FigureLabels | None = None) -> dict[str, Path]:
+                  labels: FigureLabels | None = None,
+                  background: Any = None) -> dict[str, Path]:
     """The selected spectrum as points with Poisson-like error bars (``sqrt(weight_sq_sum)``).
 
     With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
@@ -133,10 +132,18 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     count = (f"sum of weights {number(total)}{where}" if hist.is_weighted
              else f"{number(round(total))} candidates{where}")
     for log in ([False, True] if log_scale else [False]):
-        fig, ax = new_figure((7.0, 4.6))
+        if background is None:
+            fig, ax = new_figure((7.0, 4.6))
+            axp = None
+        else:  # the sideband fit: pulls beneath, as under every fit
+            fig, (ax, axp) = new_figure((7.0, 5.6), 2, 1, sharex=True,
+                                        gridspec_kw={"height_ratios": [3.2, 1],
+                                                     "hspace": 0.05})
         with figure_style():
             h.plot(ax=ax, color=COLORS["data"])
             shade_blinded(ax, span)
+            if background is not None:
+                _draw_sideband_fit(ax, axp, background, span)
             if log:
                 ax.set_yscale("log")
                 pos = shown[shown > 0]  # the axis range must not reveal the hidden bins
@@ -144,7 +151,10 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                     ax.set_ylim(0.5 * pos.min(), 3.0 * pos.max())
             elif shown.size:
                 ax.set_ylim(0, 1.3 * float(np.max(shown + np.sqrt(np.abs(shown)))))
-            ax.set_xlabel(labels.mass_axis(hist.unit))
+            (axp if axp is not None else ax).set_xlabel(labels.mass_axis(hist.unit))
+            if axp is not None:
+                ax.set_xlabel("")
+                ax.set_xlim(float(hist.edges[0]), float(hist.edges[-1]))
             ax.legend(loc="upper right")
             note = "\n".join(p for p in (title, count) if p)
             if "\n" in note:  # a second statement line above the axes
@@ -153,6 +163,37 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
         name = "spectrum_log" if log else "spectrum"
         out[name] = save(fig, outdir, name, formats)
     return out
+
+
+def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None) -> None:
+    """The background fitted on the sidebands (``search.sideband.SidebandFit``): solid
+    where it was fitted, dashed across the blinded window where it is extrapolated, its
+    goodness of fit in the legend; the pulls of the sideband bins beneath."""
+    e = np.asarray(sb.edges, float)
+    c = 0.5 * (e[1:] + e[:-1])
+    bw = np.diff(e)
+    ref = float(np.median(bw))
+    y = np.asarray(sb.expected, float) * ref / bw
+    hid = np.asarray(sb.blinded, bool)
+    # the dashed part reaches one bin into each sideband, so the two parts join
+    near = hid | np.r_[hid[1:], False] | np.r_[False, hid[:-1]]
+    gof = (f"$\\chi^2$/ndf = {fixed(sb.gof_chi2, 1)}/{sb.gof_ndf}, "
+           f"p = {p_value(sb.gof_p_value)}")
+    ax.plot(c, np.where(hid, np.nan, y), color=COLORS["total"], lw=1.4,
+            label=f"background fit to the sidebands ({gof})")
+    if np.any(hid):
+        ax.plot(c, np.where(near, y, np.nan), color=COLORS["total"], lw=1.4, ls="--",
+                label="its extrapolation (blinded)")
+    pulls = np.asarray(sb.pulls, float)
+    axp.axhline(0, color=COLORS["background"], lw=0.8)
+    for lvl in (-2, 2):
+        axp.axhline(lvl, color=COLORS["background"], lw=0.6, ls=":")
+    axp.bar(c, np.nan_to_num(pulls), width=bw, color=COLORS["total"], alpha=0.75)
+    shade_blinded(axp, span, label=None)
+    lim = max(3.5, 1.1 * float(np.nanmax(np.abs(pulls)))) if np.any(np.isfinite(pulls)) \
+        else 3.5
+    axp.set_ylim(-lim, lim)
+    axp.set_ylabel("pull")
 
 
 # ------------------------------------------------------------------------- candidates
@@ -192,34 +233,46 @@ def candidates(collected: Any, outdir: str | os.PathLike[str], *,
 
 
 # --------------------------------------------------------------------------- search
+#: the figures of a search, in the order the report shows them
+SEARCH_FIGURES = ("spectrum", "pvalue_scan", "limits", "candidates", "background_envelope",
+                  "calibration")
+
+
 def search_figures(result: Any, outdir: str | os.PathLike[str], *,
                    formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                    calibration: tuple[Any, Any] | None = None,
-                   labels: FigureLabels | None = None) -> dict[str, Path]:
-    """Every figure of a search result; returns figure name -> PNG path."""
+                   labels: FigureLabels | None = None,
+                   names: Sequence[str] = SEARCH_FIGURES) -> dict[str, Path]:
+    """Every figure of a search result among ``names`` (default: all) that the result has
+    the results for; returns figure name -> PNG path (``spectrum`` brings ``spectrum_log``
+    with ``log_scale``)."""
     labels = labels or figure_labels(getattr(result, "config", None))
     out: dict[str, Path] = {}
     blind = result.blinding.get("window") if result.blinding.get("active") else None
-    if result.fit is None:  # blinded: the spectrum with the blinded bins hidden, no fit
-        out.update(spectrum_only(result.histogram, outdir, formats=formats, log_scale=log_scale,
-                                 blind=blind, title=_fit_title(result), labels=labels))
-    else:
-        for log in ([False, True] if log_scale else [False]):
-            name = "spectrum_log" if log else "spectrum"
-            out[name] = _fit_figure(result.fit, outdir, name, formats, log=log, blind=blind,
-                                    title=_fit_title(result), labels=labels)
-    out["pvalue_scan"] = _scan_figure(result, outdir, formats, labels)
-    if result.limits is not None:
-        out["limits"] = _limits_figure(result, outdir, formats, labels)
-    if blind is None:  # the pT/rapidity histograms include the blinded window: withheld
-        out.update(candidates(result.collected, outdir, formats=formats, labels=labels))
     syst = getattr(result, "systematics", None) or {}
-    if (syst.get("envelope") or {}).get("profile"):
-        out["background_envelope"] = save(envelope_figure(syst, labels=labels), outdir,
-                                          "background_envelope", formats)
-    if calibration is not None and calibration[1] is not None and result.calibration:
-        out["calibration"] = calibration_figure(result.calibration, calibration[1], outdir,
-                                                formats, labels)
+    for name in names:
+        if name == "spectrum" and result.fit is None:  # blinded: the blinded bins hidden
+            out.update(spectrum_only(result.histogram, outdir, formats=formats,
+                                     log_scale=log_scale, blind=blind,
+                                     title=_fit_title(result), labels=labels,
+                                     background=result.background_fit))
+        elif name == "spectrum":
+            for log in ([False, True] if log_scale else [False]):
+                key = "spectrum_log" if log else "spectrum"
+                out[key] = _fit_figure(result.fit, outdir, key, formats, log=log, blind=blind,
+                                       title=_fit_title(result), labels=labels)
+        elif name == "pvalue_scan":
+            out[name] = _scan_figure(result, outdir, formats, labels)
+        elif name == "limits" and result.limits is not None:
+            out[name] = _limits_figure(result, outdir, formats, labels)
+        elif name == "candidates" and blind is None:  # they include the blinded window
+            out.update(candidates(result.collected, outdir, formats=formats, labels=labels))
+        elif name == "background_envelope" and (syst.get("envelope") or {}).get("profile"):
+            out[name] = save(envelope_figure(syst, labels=labels), outdir, name, formats)
+        elif (name == "calibration" and calibration is not None
+              and calibration[1] is not None and result.calibration):
+            out[name] = calibration_figure(result.calibration, calibration[1], outdir,
+                                           formats, labels)
     return out
 
 
@@ -290,7 +343,44 @@ def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[
             expected = (scan.expected_z(s),
                         f"expected for a signal of {number(s, 3)} events (the fitted size)")
     fig = scan_figure(scan, result.best, labels=labels, expected=expected)
+    env = ((getattr(result, "systematics", None) or {}).get("envelope") or {})
+    if env.get("z_local") is not None and len(env["z_local"]) and env.get("mass") is not None:
+        _with_systematics(fig.axes[0], env, result.best)
     return save(fig, outdir, "pvalue_scan", formats)
+
+
+def _with_systematics(ax: Any, env: Any, best: Any) -> None:
+    """The local p-value with the systematics (background function profiled as an envelope,
+    signal nuisances profiled) over the scan without them: the header's numbers are on this
+    curve, so it is drawn bold, its best point marked, and the single-function curve thin."""
+    from scipy.special import ndtr
+
+    m = np.asarray(env["mass"], float)
+    z = np.array([np.nan if v is None else v for v in env["z_local"]], float)
+    rank: dict[Any, int] = {}  # legend order: each curve followed by its best point
+    with figure_style():
+        for line in ax.get_lines():
+            label = str(line.get_label())
+            if label == "observed":
+                line.set_label("observed, no systematics")
+                line.set_linewidth(0.9)
+                line.set_alpha(0.55)
+                rank[line] = 0
+            elif label.startswith("best:"):  # the mass is in the header
+                line.set_label(f"its best: $Z_{{local}}$ = {label.rpartition('= ')[2]}")
+                line.set_alpha(0.55)
+                rank[line] = 1
+        rank[ax.plot(m, ndtr(-z), color=COLORS["signal"], lw=1.8,
+                     label="observed, with systematics", zorder=4)[0]] = 2
+        b = dict(best or {})
+        if b.get("mass") is not None and b.get("z_local") is not None:
+            rank[ax.plot([float(b["mass"])], [float(ndtr(-float(b["z_local"])))], ls="none",
+                         marker="o", ms=6, color=COLORS["signal"], zorder=5,
+                         label=f"its best: $Z_{{local}}$ = {fixed(b['z_local'])}")[0]] = 3
+        handles, names = ax.get_legend_handles_labels()
+        keep = sorted(range(len(handles)), key=lambda i: (rank.get(handles[i], 4), i))
+        ax.legend([handles[i] for i in keep], [names[i] for i in keep], loc="lower left",
+                  fontsize=8.5)
 
 
 def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = None,
@@ -340,78 +430,34 @@ def limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence
                           labels or figure_labels(getattr(result, "config", None)))
 
 
-class _Drawing:
-    """Figures being drawn in a forked process; :meth:`join` waits and returns their paths
-    (drawing them here instead if the process failed, so no figure is ever lost)."""
-
-    def __init__(self, proc: Any, listing: Path, redo: Any) -> None:
-        self.proc, self.listing, self.redo = proc, listing, redo
-
-    def join(self) -> dict[str, Path]:
-        import json
-
-        if self.proc is not None:
-            self.proc.join()
-            if self.proc.exitcode == 0 and self.listing.exists():
-                names = json.loads(self.listing.read_text())
-                self.listing.unlink()
-                return {k: Path(v) for k, v in names.items()}
-        self.listing.unlink(missing_ok=True)
-        return self.redo()
-
-    def cancel(self) -> None:
-        """Stop the drawing process (the caller failed and discards the outputs)."""
-        if self.proc is not None and self.proc.is_alive():
-            self.proc.terminate()
-        if self.proc is not None:
-            self.proc.join()
-
-
-def _draw_child(result: Any, outdir: Path, listing: Path, kw: dict[str, Any]) -> None:
-    """In the forked process: draw, list the files, exit without the parent's clean-up."""
-    import json
-
-    code = 1
-    try:
-        out = search_figures(result, outdir, **kw)
-        listing.write_text(json.dumps({k: str(v) for k, v in out.items()}))
-        code = 0
-    finally:
-        os._exit(code)  # no atexit handlers or buffers of the parent run twice
-
-
-def draw_in_background(result: Any, outdir: str | os.PathLike[str], **kw: Any) -> _Drawing:
-    """Start :func:`search_figures` of ``result`` (its limits left out) in a forked process
-    and return at once; ``.join()`` gives name -> PNG path.  Where fork is not available
-    (or not safe: macOS, Windows), or ``PEAKSIFT_DRAW_INLINE`` is set, the figures are drawn
-    at ``join`` in this process instead.  Either way the files are the same."""
-    import dataclasses
-    import multiprocessing
-
-    from ._processes import quiet_fork, resolve_start_method
-
-    outdir = Path(outdir)
-    outdir.mkdir(parents=True, exist_ok=True)
-    pre = dataclasses.replace(result, limits=None) if dataclasses.is_dataclass(result) \
-        else result
-    listing = outdir / ".drawn.json"
-
-    def redo() -> dict[str, Path]:
-        return search_figures(pre, outdir, **kw)
-
-    if os.environ.get("PEAKSIFT_DRAW_INLINE") or resolve_start_method("auto") != "fork":
-        return _Drawing(None, listing, redo)
-    ctx = multiprocessing.get_context("fork")
-    proc = ctx.Process(target=_draw_child, args=(pre, outdir, listing, kw), daemon=True)
-    with quiet_fork():
-        proc.start()
-    return _Drawing(proc, listing, redo)
-
-
 def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
                    labels: FigureLabels) -> Path:
     fig = result.limits.plot(run=labels.run, symbol=labels.symbol)
+    lim_s = ((getattr(result, "systematics", None) or {}).get("limits") or {})
+    if lim_s.get("with_systematics"):
+        _limits_with_systematics(fig.axes[0], lim_s["with_systematics"])
     return save(fig, outdir, "limits", formats)
+
+
+def _limits_with_systematics(ax: Any, w: Any) -> None:
+    """The limits with every systematic profiled (mass scale, resolution, background
+    function as well as L and efficiency) over the plain ones, which carry only L and
+    efficiency: a reader must not take one for the other."""
+    m = np.asarray(w["masses"], float)
+
+    def arr(key: str) -> np.ndarray:
+        return np.array([np.nan if v is None else v for v in w[key]], float)
+
+    with figure_style():
+        for line in ax.get_lines():
+            label = str(line.get_label())
+            if label in ("observed", "expected"):
+                line.set_label(f"{label}, L and \u03b5 only")
+        ax.plot(m, arr("expected"), color=COLORS["signal"], lw=1.3, ls="--",
+                label="expected, all systematics", zorder=4)
+        ax.plot(m, arr("observed"), color=COLORS["signal"], lw=1.6, marker="o", ms=3,
+                label="observed, all systematics", zorder=5)
+        ax.legend(loc="upper right", ncol=2, fontsize=8.5)
 
 
 # ------------------------------------------------------------- background envelope
@@ -431,17 +477,20 @@ def envelope_figure(systematics: Any, *, labels: FigureLabels | None = None) -> 
     with figure_style():
         greys = ("#5b6270", "#8a8f98", "#1f6f8b", "#b07a2a", "#6a4c93", "#2e7d4f")
         top = 0.0
+        # the envelope first, broad and pale, so the function it follows shows through it
+        e = np.asarray(prof["envelope"], float)
+        ax.plot(s, e, lw=5.0, color=COLORS["signal"], alpha=0.35, label="envelope",
+                solid_capstyle="butt", zorder=2)
         for k, (label, curve) in enumerate(prof["curves"].items()):
             c = np.asarray(curve, float)
-            ax.plot(s, c, lw=1.1, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
-                    color=greys[k % len(greys)], label=label)
+            ax.plot(s, c, lw=1.2, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
+                    color=greys[k % len(greys)], label=label, zorder=3)
             top = max(top, float(np.nanmin(c)))
-        e = np.asarray(prof["envelope"], float)
-        ax.plot(s, e, lw=2.6, color=COLORS["signal"], alpha=0.85, label="envelope", zorder=4)
         ax.axhline(1.0, color=COLORS["accent"], lw=0.8, ls=":")
         ax.text(s[-1], 1.0, " 68%", va="center", ha="left", color=COLORS["accent"],
                 fontsize=9, clip_on=False)
-        ax.set_ylim(-0.3, max(6.0, min(top + 4.0, 40.0)))
+        # every curve's minimum in range, with room above it for the legend
+        ax.set_ylim(-0.3, max(6.0, min(1.35 * top + 4.0, 55.0)))
         ax.set_xlim(s[0], s[-1])
         ax.set_xlabel("signal yield [events]")
         ax.set_ylabel(r"$-2\,\Delta\ln L$ + penalty")

@@ -38,6 +38,8 @@ from ._files import atomic_write
 from ._format import format_interval, format_pm, number
 from ._json import plain
 from .report_background import section_background_model
+from .report_fits import section_background_fit, section_calibration, section_identification
+from .report_limits import section_limits
 from .report_sections import (
     BLINDED_CAPTIONS,
     CAPTIONS,
@@ -45,22 +47,20 @@ from .report_sections import (
     Block,
     Section,
     fit_settings_text,
-    section_background_fit,
-    section_calibration,
     section_caution,
-    section_identification,
-    section_limits,
     section_other_figures,
     section_provenance,
     section_result,
-    section_selection,
     section_warnings,
 )
+from .report_selection import section_selection
 
 __all__ = [
     "CAUTION",
     "SECTIONS",
     "atomic_write",
+    "blocks_html",
+    "blocks_markdown",
     "fit_settings_text",
     "format_interval",
     "format_pm",
@@ -147,8 +147,15 @@ def _md_table(head: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
 def render_markdown(results: Mapping[str, Any], figures: Mapping[str, str] | None = None) -> str:
     """The meeting report as Markdown; ``figures`` maps figure names to relative PNG paths."""
     fig = dict(figures or {})
+    return blocks_markdown(_blocks(results, fig), fig)
+
+
+def blocks_markdown(blocks: Sequence[Block], figures: Mapping[str, str]) -> str:
+    """Report blocks (``("h1", text)``, ``("p", text)``, ``("table", head, rows)``, ...) as
+    Markdown; ``figures`` maps figure names to relative PNG paths."""
+    fig = figures
     out: list[str] = []
-    for b in _blocks(results, fig):
+    for b in blocks:
         kind = b[0]
         if kind == "h1":
             out += [f"# {b[1]}", ""]
@@ -190,17 +197,23 @@ def _h(s: Any) -> str:
     return html.escape(str(s), quote=True)
 
 
-_NUMERIC = re.compile(r"^[\u2212+\-]?[\d,.]+(e[+-]?\d+)?$|^n/a$")
+#: a number as the report writes it: sign, digits with thousands commas, one decimal point,
+#: an exponent; "n/a" and "-" stand in for one (a version such as 3.11.7 is not a number)
+_NUMERIC = re.compile(r"^[\u2212+\-]?(\d{1,3}(,\d{3})+|\d+)(\.\d+)?(e[+-]?\d+)?$|^n/a$|^-$")
 
 
 def _html_table(head: Sequence[str], rows: Sequence[Sequence[str]], *,
                 mono_last: bool = False) -> str:
+    # a column of numbers is right-aligned (digits line up); a column that mixes numbers
+    # with text stays left-aligned throughout, so it reads as one column
+    numeric = [j > 0 and all(_NUMERIC.match(str(r[j])) for r in rows if j < len(r))
+               for j in range(max((len(r) for r in rows), default=0))]
     out = ["<table>", "<tr>" + "".join(f"<th>{_h(x)}</th>" for x in head) + "</tr>"]
     for row in rows:
         cells = []
         for j, c in enumerate(row):
             cls = ' class="hash"' if (mono_last and j == len(row) - 1) else (
-                ' class="num"' if j and _NUMERIC.match(str(c)) else "")
+                ' class="num"' if numeric[j] else "")
             cells.append(f"<td{cls}>{_h(c)}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
     out.append("</table>")
@@ -218,18 +231,25 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
                 | None = None) -> str:
     """The meeting report as one self-contained HTML page (figures embedded as base64 PNG)."""
     fig = dict(figures or {})
-    title = _title(results)
+    return blocks_html(_title(results), _blocks(results, fig), fig, _run_line(results))
+
+
+def blocks_html(title: str, blocks: Sequence[Block],
+                figures: Mapping[str, str | os.PathLike[str]], run_line: str = "") -> str:
+    """Report blocks as one self-contained HTML page (figures embedded as base64 PNG);
+    a paragraph equal to ``run_line`` before any other is styled as the run label."""
+    fig = figures
     b: list[str] = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
                     f"<title>{_h(title)}</title>", f"<style>{_CSS}</style></head><body>"]
     first_p = True
-    for blk in _blocks(results, fig):
+    for blk in blocks:
         kind = blk[0]
         if kind in ("h1", "h2", "h3"):
             b.append(f"<{kind}>{_h(blk[1])}</{kind}>")
         elif kind == "caution":
             b.append(f'<div class="caution"><strong>Caution.</strong> {_h(blk[1])}</div>')
         elif kind == "p":
-            cls = ' class="run"' if first_p and blk[1] == _run_line(results) else ""
+            cls = ' class="run"' if first_p and run_line and blk[1] == run_line else ""
             b.append(f"<p{cls}>{_h(blk[1])}</p>")
         elif kind == "table":
             b.append(_html_table(blk[1], blk[2], mono_last=len(blk) > 3 and blk[3] == "hash"))

@@ -41,7 +41,7 @@ def _limit_blocks(lim: Any) -> list[Block]:
     if not isinstance(lim, Mapping) or not lim.get("with_systematics"):
         return []
     w, wo = lim["with_systematics"], lim["without_systematics"]
-    mass = list(w.get("mass") or [])
+    mass = list(w.get("masses") or [])
     if not mass:
         return []
     pick = sorted({round(i * (len(mass) - 1) / max(_LIMIT_ROWS - 1, 1))

@@ -236,6 +236,33 @@ class Resolution:
             out = self._call(m)
         return float(out) if out.ndim == 0 else out
 
+    def slope(self, mass: float) -> float:
+        """d sigma / d mass at ``mass`` (a tie of sigma to the fitted mass needs it): exact
+        for relative, absolute and table resolutions (a table's segment slope, the upper
+        segment at a knot), a five-point central difference for a function."""
+        m = float(mass)
+        if self.kind == "relative":
+            return float(self.value)  # type: ignore[arg-type]
+        if self.kind == "absolute":
+            return 0.0
+        if self.kind == "table":
+            t = np.asarray(self.points, dtype=float)
+            k = int(np.clip(np.searchsorted(t[:, 0], m, side="right") - 1, 0, len(t) - 2))
+            return float((t[k + 1, 1] - t[k, 1]) / (t[k + 1, 0] - t[k, 0]))
+        h = 1e-3 * max(abs(m), 1.0)
+        f = self.sigma(np.array([m - 2 * h, m - h, m + h, m + 2 * h]))
+        return float((f[0] - 8 * f[1] + 8 * f[2] - f[3]) / (12 * h))
+
+    def curvature(self, mass: float) -> float:
+        """d^2 sigma / d mass^2 at ``mass``: 0 for the piecewise-linear kinds, a central
+        second difference for a function."""
+        if self.kind != "function":
+            return 0.0
+        m = float(mass)
+        h = 1e-3 * max(abs(m), 1.0)
+        f = self.sigma(np.array([m - h, m, m + h]))
+        return float((f[0] - 2 * f[1] + f[2]) / (h * h))
+
     def _call(self, m: np.ndarray) -> np.ndarray:
         f = self.func
         try:

@@ -172,8 +172,10 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "`{ width = [0.0, 100.0] }`."),
         _Key("sigma_from_resolution", "choice", "free",
              "Tie the Gaussian `sigma` of the signal (gaussian, crystalball, voigt) to "
-             "`model.resolution` at the fit's starting mass: `fixed` to it, or `constrained` "
-             "by a Gaussian of relative width `resolution_uncertainty`; `free` floats it. "
+             "`model.resolution`: `fixed` makes it the resolution at the fitted mass "
+             "(recomputed as the mass moves), `constrained` a Gaussian constraint of relative "
+             "width `resolution_uncertainty` around the resolution at the fit's starting mass; "
+             "`free` floats it. "
              "Tie it to measure a natural width with a Voigt signal.",
              choices=("free", "fixed", "constrained")),
         _Key("resolution_uncertainty", "float", None,
@@ -334,7 +336,12 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Simulated signal samples, one file (or glob) per generated mass, in the order "
              "of `masses`; the search's own selection and pairing run on each. Empty: no "
              "signal model from samples."),
-        _Key("masses", "floats", [], "Generated mass (GeV) of each sample in `files`."),
+        _Key("masses", "floats", [],
+             "Generated mass (GeV) of each sample in `files` (or give `mass_column`)."),
+        _Key("mass_column", "str", "",
+             "A per-event column of the samples holding the generated (true) mass in GeV; "
+             "each sample's mass is then the median of that column over its events, and "
+             "`masses` is left out. Empty: the masses come from `masses`."),
         _Key("generated", "floats", [],
              "Number of generated events (or sum of generator weights) of each sample."),
         _Key("shape", "str", "crystalball",

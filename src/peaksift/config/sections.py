@@ -21,6 +21,7 @@ class SignalModelConfig:
 
     files: tuple[str, ...] = ()
     masses: tuple[float, ...] = ()
+    mass_column: str = ""
     generated: tuple[float, ...] = ()
     shape: str = "crystalball"
     order: int = 1

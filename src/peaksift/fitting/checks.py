@@ -100,3 +100,40 @@ def check_support(model: Model, values: np.ndarray) -> None:
             raise FitError(f"the {shape.name} shape with {given} has no probability in the "
                            f"window {model.window} (it lies too far outside); fix its "
                            "parameters inside the window or widen the window")
+
+
+def tie_rows(tied: Mapping[str, Any] | None, names: list[str], fixed: Mapping[str, float],
+             constraints: Mapping[str, Any]) -> list[tuple[int, int, Any]]:
+    """``tied`` (name -> :class:`peaksift.likelihood.Tie`) checked, as ``(target index,
+    source index, Tie)``."""
+    from ..likelihood import Tie
+
+    out = []
+    for key, tie in dict(tied or {}).items():
+        if not isinstance(tie, Tie):
+            raise FitError(f"tied: {key!r} must map to a peaksift.likelihood.Tie, got "
+                           f"{type(tie).__name__}")
+        for what in (tie.target, tie.source):
+            if what not in names:
+                raise FitError(f"tied: unknown parameter {what!r}; parameters are "
+                               f"{', '.join(names)}")
+        if key != tie.target or tie.target == tie.source:
+            raise FitError(f"tied: {key!r} -> Tie({tie.target!r}, {tie.source!r}) must tie "
+                           "the named parameter to another")
+        if tie.target in fixed or tie.target in constraints:
+            raise FitError(f"tied: {tie.target!r} is also fixed or constrained; give it one "
+                           "treatment")
+        if tie.source in dict(tied or {}):
+            raise FitError(f"tied: {tie.source!r} is tied itself; tie {tie.target!r} to a "
+                           "free or fixed parameter")
+        out.append((names.index(tie.target), names.index(tie.source), tie))
+    return out
+
+
+def tie_indices(cost: Any) -> list[tuple[int, int, Any]]:
+    """``(target index, source index, Tie)`` in the model's parameter vector of a
+    :class:`peaksift.likelihood.TiedCost` (none for another cost)."""
+    ties = getattr(cost, "ties", None)
+    if not ties:
+        return []
+    return [(int(cost.inner.free[t]), int(cost.free[s]), tie) for t, s, tie in ties]

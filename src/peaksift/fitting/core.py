@@ -10,6 +10,7 @@ made is returned flagged invalid with its reasons.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import warnings
 from collections.abc import Mapping, Sequence
@@ -24,6 +25,7 @@ from ..likelihood import (
     Constraint,
     Minimum,
     Model,
+    TiedCost,
     UnbinnedCost,
     baker_cousins_chi2,
     minimize,
@@ -32,7 +34,15 @@ from ..likelihood import (
 )
 from ..likelihood.starts import fit_starts
 from ..shapes import Shape
-from .checks import as_limits, as_retries, as_values, check_fixed, check_support
+from .checks import (
+    as_limits,
+    as_retries,
+    as_values,
+    check_fixed,
+    check_support,
+    tie_indices,
+    tie_rows,
+)
 from .data import FitData, gof_binning, prepare, start_bins
 from .result import FitResult
 
@@ -62,6 +72,7 @@ def fit(
     intervals: bool | Sequence[str] = False,
     minos: bool | Sequence[str] | None = None,
     retries: int = 3,
+    tied: Mapping[str, Any] | None = None,
 ) -> FitResult:
     """Fit signal(s) + background with an extended likelihood.
 
@@ -97,6 +108,11 @@ def fit(
     intervals : bool or list of names
         Profile-likelihood (MINOS-type) intervals for all free (True) or the named
         parameters.  ``minos=`` is an older spelling of the same.
+    tied : dict, optional
+        ``name -> Tie`` (:class:`peaksift.likelihood.Tie`): parameters computed from another
+        at every step of the minimisation, e.g. ``{"sigma": Tie("sigma", "mass",
+        resolution.sigma, resolution.slope)}`` ties the peak's sigma to the resolution at
+        the fitted mass (exact at the minimum; its error follows from the mass's).
     retries : int
         Further starting widths at the best candidate peak: minimised in every fit whose
         peak width can vary (the lowest minimum wins), else tried while the best fit is not
@@ -153,6 +169,13 @@ def fit(
                            f"limits={{{k!r}: (0, ...)}}")
     check_fixed(model, fixed)
     base, is_fixed = _base_values(model, d, start, fixed, lower, upper)
+    # a tied parameter is held in the bookkeeping and recomputed inside the cost ("live")
+    # while its source floats; with the source held it is simply held at func(source)
+    ties = tie_rows(tied, names, fixed, cons)
+    live = [(i_t, i_s, tie) for i_t, i_s, tie in ties if not is_fixed[i_s]]
+    for i_t, i_s, tie in ties:
+        is_fixed[i_t] = True
+        base[i_t] = tie.func(float(base[i_s]))
     floors = _width_floors(model, d, lower, upper, limits)
     for i, floor in floors.items():  # a start below the floor begins at it
         if not is_fixed[i]:
@@ -166,14 +189,23 @@ def fit(
     too_few = n_entries < nfree
 
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
+    inner_free = np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int)
     if d.binned:
-        scale = d.hist.scaled_poisson_factors()
+        # read-only arrays shared by every start's cost: their per-bin work is kept
+        scale = _read_only(d.hist.scaled_poisson_factors())
+        edges, counts = _read_only(d.edges), _read_only(d.n)
 
-        def make_cost(v: np.ndarray) -> Any:
-            return BinnedCost(model, v, free_idx, cons_idx, d.edges, d.n, scale)
+        def plain_cost(v: np.ndarray) -> Any:
+            return BinnedCost(model, v, inner_free, cons_idx, edges, counts, scale)
     else:
-        def make_cost(v: np.ndarray) -> Any:
-            return UnbinnedCost(model, v, free_idx, cons_idx, d.x, d.w)
+        def plain_cost(v: np.ndarray) -> Any:
+            return UnbinnedCost(model, v, inner_free, cons_idx, d.x, d.w)
+
+    def make_cost(v: np.ndarray) -> Any:
+        if not live:
+            return plain_cost(v)
+        row = {int(i): k for k, i in enumerate(inner_free)}
+        return TiedCost(plain_cost(v), [(row[i_t], row[i_s], t) for i_t, i_s, t in live])
     given = {**start, **fixed}
     if nfree == 0:  # nothing to minimise: the likelihood at the given values
         cost = make_cost(base)
@@ -183,8 +215,9 @@ def fit(
                        cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
                        cost.ncall, floors)
     sh = start_bins(d)
-    starts = fit_starts(model, sh.edges, sh.values(), sh.scaled_poisson_factors(), base,
-                        is_fixed, given, lower, upper, d.total, retries)
+    starts = fit_starts(model, _read_only(sh.edges), _read_only(sh.values()),
+                        _read_only(sh.scaled_poisson_factors()), base, is_fixed, given, lower,
+                        upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
     best, tried, calls = None, [], 0
@@ -196,6 +229,7 @@ def fit(
         best = (math.inf, None, cost, [why], s0[free_idx], cost(*s0[free_idx]), None, False)
         starts = iter(())
     near = None  # (full vector, free x, nll, observed Hessian) of the best minimum so far
+    superseded = None  # NLL of the first valid minimum a later start went below
     for essential, make_start in starts:
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
@@ -227,6 +261,8 @@ def fit(
         if not math.isfinite(f):
             problems.append("negative log-likelihood not finite at the minimum")
         if best is None or (math.isfinite(f) and f < best[0] - 1e-9):
+            if best is not None and best[1] is not None and not best[3] and superseded is None:
+                superseded = float(best[0])  # an earlier valid minimum, now beaten
             best = (f if math.isfinite(f) else math.inf, mo, cost, problems, x, f, cov, posdef)
             if posdef and math.isfinite(f):
                 full = s0.copy()
@@ -235,9 +271,29 @@ def fit(
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:
         free_cov = np.full((nfree, nfree), np.nan)
-    return _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
-                   problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
-                   tuple(tried), calls, floors)
+    fr = _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
+                 problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
+                 tuple(tried), calls, floors)
+    gap = math.nan if superseded is None else 2.0 * (superseded - float(fbest))
+    if gap > _LOWER_MINIMUM_NOTE:
+        fr = dataclasses.replace(fr, notes=(*fr.notes, (
+            f"a later start found a lower minimum than an earlier valid one (-2 ln L lower "
+            f"by {gap:.3g}); the lowest is kept")))
+    return fr
+
+
+#: Delta(-2 ln L) by which a later start must beat an earlier valid minimum before the
+#: result says so (below it the two are the same minimum for any purpose; our choice)
+_LOWER_MINIMUM_NOTE = 0.1
+
+
+def _read_only(a: np.ndarray) -> np.ndarray:
+    """A read-only float copy of ``a``: costs built on it share their per-bin work (a
+    shape's logarithms of the edges, the compiled kernels' clipped edges, the counts'
+    saturated term)."""
+    out = np.array(a, float)
+    out.flags.writeable = False
+    return out
 
 
 #: a start whose path comes within this squared distance (in units of the best minimum's
@@ -369,6 +425,9 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
     npar = len(names)
     vals = base.copy()
     vals[free_idx] = xbest
+    ties = tie_indices(cost)
+    for i_t, i_s, tie in ties:
+        vals[i_t] = tie.func(float(vals[i_s]))
     treatment = "none (unweighted)"
     if d.weighted:
         if d.binned:
@@ -380,6 +439,10 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
                 free_cov = free_cov @ cost.score_outer(xbest) @ free_cov
     cov = np.zeros((npar, npar))
     cov[np.ix_(free_idx, free_idx)] = free_cov
+    for i_t, i_s, tie in ties:  # a tied parameter's errors follow its source's
+        k = tie.slope(float(vals[i_s]))
+        cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]
+        cov[i_t, i_t] = k * k * cov[i_s, i_s]
     err = np.sqrt(np.clip(np.diag(cov), 0, None))
     err[~np.isfinite(np.diag(cov))] = np.nan
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -387,6 +450,9 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
     corr[~np.isfinite(corr)] = 0.0
     np.fill_diagonal(corr, np.where(err > 0, 1.0, 0.0))
     notes: list[str] = [d.note] if d.note else []
+    notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
+              f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
+              f"{names[i_s]}'s)" for i_t, i_s, tie in ties]
     for k, i in enumerate(free_idx):
         dist, bnd = _distance_to_bound(xbest[k], lower[i], upper[i])
         if (math.isfinite(dist) and dist > _bound_tolerance(xbest[k], lower[i], upper[i])

@@ -173,6 +173,37 @@ class FitResult(FrozenValue):
         """Alias of :attr:`intervals` (the profile-likelihood errors)."""
         return self.intervals
 
+    # results.json groups some fields; each group is an attribute of the same name too
+    @property
+    def gof(self) -> dict[str, Any]:
+        """Goodness of fit: ``chi2``, ``ndf``, ``p_value``, ``note`` (the ``gof_*`` fields)."""
+        return {"chi2": number(self.gof_chi2), "ndf": int(self.gof_ndf),
+                "p_value": number(self.gof_p_value), "note": self.gof_note}
+
+    @property
+    def bins(self) -> dict[str, Any]:
+        """The binning of the goodness of fit and the figure: ``edges``, ``observed``,
+        ``observed_weight_sq_sum``, ``expected``, ``pulls``."""
+        return {"edges": self.edges, "observed": self.observed,
+                "observed_weight_sq_sum": self.observed_weight_sq_sum,
+                "expected": self.expected, "pulls": self.pulls}
+
+    @property
+    def signal_shapes(self) -> list[str]:
+        """Names of the signal shapes, in order."""
+        return [s.name for s in self.model.signals]
+
+    @property
+    def background_shape(self) -> str:
+        """Name of the background shape."""
+        return self.model.background.name
+
+    @property
+    def shapes(self) -> dict[str, Any]:
+        """The shapes with their options: ``signals`` (a list) and ``background``."""
+        return {"signals": [shape_spec(s) for s in self.model.signals],
+                "background": shape_spec(self.model.background)}
+
     def to_minuit(self) -> Any:
         """An ``iminuit.Minuit`` on this fit's cost, at the minimum, with its bounds, for
         MIGRAD/HESSE/MINOS of your own.  Raises FitError for a result read from JSON."""
@@ -200,17 +231,15 @@ class FitResult(FrozenValue):
             "width": ve(self.peak_width, self.peak_width_error),
             "signal_yield": ve(*self.signal_yield),
             "background_yield": ve(*self.background_yield),
-            "gof": {"chi2": number(self.gof_chi2), "ndf": int(self.gof_ndf),
-                    "p_value": number(self.gof_p_value), "note": self.gof_note},
+            "gof": self.gof,
             "width_parameter": self.width_parameter,
             "fwhm": ve(self.fwhm, self.fwhm_error),
             "problems": list(self.problems),
             "notes": list(self.notes),
             "flags": {k: bool(v) for k, v in self.flags.items()},
-            "signal_shapes": [s.name for s in self.model.signals],
-            "shapes": {"signals": [shape_spec(s) for s in self.model.signals],
-                       "background": shape_spec(self.model.background)},
-            "background_shape": self.model.background.name,
+            "signal_shapes": self.signal_shapes,
+            "shapes": self.shapes,
+            "background_shape": self.background_shape,
             "window": [float(self.window[0]), float(self.window[1])],
             "binned": bool(self.binned),
             "binned_reason": self.binned_reason,
@@ -232,10 +261,7 @@ class FitResult(FrozenValue):
             {k: [number(a), number(b)] for k, (a, b) in iv.items()},
             "covariance": [[number(c) for c in row] for row in self.covariance],
             "correlations": [[number(c) for c in row] for row in self.correlations],
-            "bins": {"edges": self.edges.tolist(), "observed": self.observed.tolist(),
-                     "observed_weight_sq_sum": self.observed_weight_sq_sum.tolist(),
-                     "expected": self.expected.tolist(),
-                     "pulls": [number(p) for p in self.pulls]},
+            "bins": {k: [number(x) for x in v] for k, v in self.bins.items()},
             "unit": self.unit,
         }
 

@@ -13,10 +13,16 @@ What is here, and which piece to use when
   window; expected bin contents and densities from the shapes.
 * :mod:`.cost`        -- :class:`BinnedCost`, :class:`UnbinnedCost`: a Model on data, over its
   free parameters, with constraints (value, gradient, information, observed Hessian).
+* :mod:`.kernels`     -- compiled (numba) fast path of :class:`BinnedCost` for the common
+  shapes, the coarse scan and small Newton solves; the numpy path is the reference
+  (``PEAKSIFT_NUMPY_COST=1`` selects it everywhere).
+* :mod:`.derived`     -- :class:`Tie`, :class:`TiedCost`: a parameter computed from another
+  inside the cost (sigma = resolution(mass)), with the chain rule in every derivative.
 * :mod:`.joint`       -- :class:`JointCost`: several channels' costs as one (the product of
   their likelihoods) over shared free parameters, e.g. one cross-section x branching fraction.
 * :mod:`.minimize`    -- the one minimiser (damped Fisher scoring; iminuit MIGRAD as the
-  fallback), the scaled positive-definiteness test, the stacked damped Newton step.
+  fallback), the scaled positive-definiteness test, and :func:`minimize_stacked`, the driver
+  of every stacked fit (many toys or mass hypotheses at once).
 * :mod:`.starts`      -- starting values: sideband background fits and candidate peak masses
   from a coarse likelihood scan.
 
@@ -27,8 +33,19 @@ from __future__ import annotations
 
 from .constraints import CONSTRAINT_KINDS, Constraint
 from .cost import BinnedCost, UnbinnedCost
+from .derived import Tie, TiedCost
 from .joint import JointCost
-from .minimize import Minimum, covariance, damped_step, minimize, new_minuit, refine
+from .minimize import (
+    Minimum,
+    StackedMinimum,
+    covariance,
+    damped_step,
+    first_error,
+    minimize,
+    minimize_stacked,
+    new_minuit,
+    refine,
+)
 from .model import Model
 from .nuisances import NUISANCE_NAMES, SignalNuisances
 from .poisson import (
@@ -51,6 +68,9 @@ __all__ = [
     "Minimum",
     "Model",
     "SignalNuisances",
+    "StackedMinimum",
+    "Tie",
+    "TiedCost",
     "UnbinnedCost",
     "baker_cousins_chi2",
     "binned_gradient",
@@ -58,7 +78,9 @@ __all__ = [
     "binned_nll",
     "covariance",
     "damped_step",
+    "first_error",
     "minimize",
+    "minimize_stacked",
     "new_minuit",
     "refine",
     "saturated_term",

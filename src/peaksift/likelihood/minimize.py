@@ -9,8 +9,10 @@ Which function when
   done on the Hessian scaled to unit diagonal (the unscaled eigenvalue ratio of a fit with
   10^7 events is ~1e-14 although the problem is well conditioned).
 * :func:`refine` -- observed Hessian at a minimum, one Newton step, covariance.
-* :func:`damped_step` -- the Levenberg-Marquardt step for stacked problems (many toys or
-  many mass hypotheses at once; used by :mod:`peaksift.stats`).
+* :func:`minimize_stacked` -- many independent bounded problems at once (toys, mass
+  hypotheses, channels): Levenberg-Marquardt with per-problem damping, a convergence mask and
+  an iteration cap; the one driver under the stacked fits of :mod:`peaksift.stats`.
+  :func:`damped_step` is its step.
 * :func:`new_minuit` -- an ``iminuit.Minuit`` object on a cost, for MINOS-type intervals or
   for users who want it.
 """
@@ -25,8 +27,14 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Minimum", "covariance", "damped_step", "fisher_scoring", "minimize", "new_minuit",
-           "refine", "solve_stacked"]
+from .poisson import use_compiled
+
+__all__ = ["Minimum", "StackedMinimum", "covariance", "damped_step", "first_error",
+           "fisher_scoring", "minimize", "minimize_stacked", "new_minuit", "refine",
+           "solve_stacked"]
+
+#: systems up to this size are solved by the compiled :func:`.kernels.solve_small`
+_SMALL = 16
 
 #: a scaled Hessian with a smaller eigenvalue is treated as singular
 POSDEF_TOL = 1e-10
@@ -69,6 +77,14 @@ def new_minuit(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarra
 
 def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
     """-a^-1 g, solved on the unit-diagonal scaling of ``a`` (None when singular)."""
+    if a.shape[0] <= _SMALL and use_compiled():
+        # compiled for the few parameters of a fit: numpy's solve costs ~20 us of call
+        # overhead per Newton step, more than the step's arithmetic
+        from .kernels import solve_small
+
+        out = np.empty(g.size)
+        ok = solve_small(np.ascontiguousarray(a, float), np.ascontiguousarray(g, float), out)
+        return out if ok else None
     d = np.sqrt(np.abs(np.diagonal(a)))
     d = np.where(d > 0, d, 1.0)
     try:
@@ -248,3 +264,153 @@ def solve_stacked(a: np.ndarray, b: np.ndarray) -> np.ndarray:
                 except np.linalg.LinAlgError:
                     out[k] = np.linalg.lstsq(a[k], b[k], rcond=None)[0]
             return out
+
+
+@dataclass
+class StackedMinimum:
+    """What :func:`minimize_stacked` found for ``B`` problems.
+
+    ``x (B, P)`` the parameters, ``nll (B,)``, ``state`` the extra arrays the problem's
+    ``value`` returned at ``x`` (each ``(B, ...)``), ``hessian (B, S, S)`` the last Hessian
+    computed for each problem (zeros where none was), ``converged (B,)`` (the NLL stopped
+    falling at low damping, or no step at any damping lowered it: at the minimum to
+    rounding), ``stalled (B,)`` the latter kind, ``iterations`` the iterations run."""
+
+    x: np.ndarray
+    nll: np.ndarray
+    state: tuple
+    hessian: np.ndarray
+    converged: np.ndarray
+    stalled: np.ndarray
+    iterations: int
+
+
+def minimize_stacked(value: Callable, grad_hess: Callable, x0: np.ndarray,
+                     lower: np.ndarray, upper: np.ndarray, *, start: tuple | None = None,
+                     active: np.ndarray | None = None, steps: int = 60,
+                     nll_tol: float = 1e-8, step_tol: float | None = None,
+                     slack: float = 1e-9, step_columns: slice = slice(None),
+                     tries: int = 12) -> StackedMinimum:
+    """Minimise ``B`` independent bounded problems at once (Levenberg-Marquardt).
+
+    Parameters
+    ----------
+    value : callable
+        ``value(x, rows) -> (nll (R,), state)`` at trial parameters ``x (R, P)`` of problems
+        ``rows``; ``state`` is a tuple of arrays ``(R, ...)`` kept for the accepted points
+        (e.g. background fractions, so that ``grad_hess`` need not recompute them).  An
+        inadmissible point has an infinite NLL.
+    grad_hess : callable
+        ``grad_hess(x, state, rows) -> (grad (R, S), hess (R, S, S))`` at accepted points.
+    x0 : array (B, P)
+        Starting points; ``lower``, ``upper`` bounds ``(P,)`` (infinite where free).
+    start : (nll, state), optional
+        ``value(x0, all rows)`` when the caller has it already.
+    active : bool array (B,), optional
+        Problems to minimise (default all); the others keep ``x0``.
+    steps : int
+        Iteration cap (an iteration: one gradient and Hessian, up to ``tries`` damped steps).
+    nll_tol, step_tol : float
+        A problem converges on an accepted step at damping <= 1e-2 that lowers the NLL by
+        less than ``nll_tol`` or (with ``step_tol``) whose every component is below
+        ``step_tol`` times the Hessian's diagonal error ``|1/H_jj|^1/2``.
+    slack : float
+        A trial is accepted when its NLL is at most ``slack`` above the current one.
+    step_columns : slice
+        The components of the ``S``-vector step that move ``x`` (default all, ``S = P``);
+        others belong to parameters the problem profiles inside ``value``.
+
+    The damping starts at 1e-3, falls tenfold on every accepted step (to 1e-9) and rises
+    tenfold on every rejected one.  A parameter sitting on a bound with its gradient
+    pointing outward is held there for the step (the others take the Newton step of the
+    problem with it fixed), so a pinned parameter does not drag the free ones along a step
+    that clipping then cuts short.
+    """
+    x = np.array(x0, dtype=float)
+    nb = x.shape[0]
+    rows_all = np.arange(nb)
+    nll, state = value(x, rows_all) if start is None else start
+    nll = np.array(nll, dtype=float)
+    state = tuple(np.array(a) for a in state)
+    active = np.ones(nb, bool) if active is None else np.array(active, bool)
+    lam = np.full(nb, 1e-3)
+    converged = np.zeros(nb, bool)
+    stalled = np.zeros(nb, bool)
+    hess_last: np.ndarray | None = None
+    it = 0
+    for it in range(1, steps + 1):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            it -= 1
+            break
+        xi = x[idx]
+        grad, hess = grad_hess(xi, tuple(a[idx] for a in state), idx)
+        if hess_last is None:
+            hess_last = np.zeros((nb,) + hess.shape[1:])
+        hess_last[idx] = hess
+        if step_tol is not None:
+            with np.errstate(all="ignore"):
+                err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
+        grad, hess = _pin_at_bounds(xi, grad, hess, lower, upper, step_columns)
+        todo = np.ones(idx.size, bool)
+        for _try in range(tries):
+            r = np.flatnonzero(todo)
+            rows = idx[r]
+            step = damped_step(hess[r], grad[r], lam[rows])
+            trial = np.clip(xi[r] + step[:, step_columns], lower, upper)
+            tn, tstate = value(trial, rows)
+            ok = tn <= nll[rows] + slack
+            acc = rows[ok]
+            done = nll[rows] - tn < nll_tol
+            if step_tol is not None:
+                done = done | np.all(np.abs(step) < step_tol * err[r], axis=1)
+            conv = ok & done & (lam[rows] <= 1e-2)
+            x[acc], nll[acc] = trial[ok], tn[ok]
+            for a, t in zip(state, tstate):
+                a[acc] = t[ok]
+            converged[rows[conv]] = True
+            active[rows[conv]] = False
+            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
+            todo[r[ok]] = False
+            if not todo.any():
+                break
+        stuck = idx[todo]
+        converged[stuck] = True  # no descent at any damping: at the minimum to rounding
+        stalled[stuck] = True
+        active[stuck] = False
+    if hess_last is None:
+        hess_last = np.zeros((nb, 0, 0))
+    return StackedMinimum(x, nll, state, hess_last, converged, stalled, it)
+
+
+def _pin_at_bounds(x: np.ndarray, grad: np.ndarray, hess: np.ndarray, lower: np.ndarray,
+                   upper: np.ndarray, step_columns: slice) -> tuple[np.ndarray, np.ndarray]:
+    """Gradient and Hessian with the rows of parameters on a bound whose descent direction
+    leaves it replaced by a unit row and a zero gradient (their step is then 0)."""
+    gx = grad[:, step_columns]
+    pinned = ((x <= lower) & (gx > 0)) | ((x >= upper) & (gx < 0))
+    if not pinned.any():
+        return grad, hess
+    pin = np.zeros(grad.shape, bool)
+    pin[:, np.arange(grad.shape[1])[step_columns]] = pinned
+    keep = ~pin
+    hess = hess * keep[:, :, None] * keep[:, None, :]
+    i = np.arange(grad.shape[1])
+    hess[:, i, i] += pin
+    return np.where(pin, 0.0, grad), hess
+
+
+def first_error(hess: np.ndarray) -> np.ndarray:
+    """Standard error of the first parameter of stacked problems, ``sqrt((H^-1)_00)`` from
+    Hessians ``(B, P, P)`` regularised by 1e-12 of their absolute trace (a flat direction
+    elsewhere must not make the whole inverse fail); NaN where it is not positive."""
+    nb = hess.shape[0]
+    if hess.shape[1] == 0:
+        return np.full(nb, np.nan)
+    with np.errstate(all="ignore"):
+        try:
+            reg = 1e-12 * np.trace(np.abs(hess), axis1=1, axis2=2)[:, None, None]
+            cov = np.linalg.inv(hess + reg * np.eye(hess.shape[1]))
+        except np.linalg.LinAlgError:
+            return np.full(nb, np.nan)
+        return np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))

@@ -44,7 +44,17 @@ __all__ = [
     "binned_nll",
     "saturated_term",
     "unbinned_nll",
+    "use_compiled",
 ]
+
+def use_compiled() -> bool:
+    """Whether the compiled fast paths of :mod:`.kernels` (and the shapes' compiled rows)
+    are used: yes unless the environment sets ``PEAKSIFT_NUMPY_COST=1``, which selects the
+    numpy reference everywhere (for comparisons and debugging)."""
+    import os
+
+    return os.environ.get("PEAKSIFT_NUMPY_COST") != "1"
+
 
 #: expectations are floored here before a logarithm: an empty prediction in a filled bin
 #: costs ~700 per event instead of an infinity that stops every minimiser
@@ -66,7 +76,8 @@ def saturated_term(n: Any, scale: Any = None) -> np.ndarray:
     return np.sum(t - nt, axis=-1)
 
 
-def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True) -> np.ndarray:
+def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True,
+               small_terms: bool = False) -> np.ndarray:
     """Extended binned Poisson negative log-likelihood, summed over the last axis.
 
     Parameters
@@ -80,6 +91,12 @@ def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True) ->
     saturated : bool
         Subtract the saturated model's value, so that ``2 * nll`` at the minimum is the
         Baker-Cousins chi-square and differences between fits are unchanged.
+    small_terms : bool
+        Sum the terms as ``mu - n + n ln(n/mu)`` (each of order one near a fit) and add the
+        data-only part at the end: the same value, but two nearby parameter points differ
+        by the true amount to ~1e-12 instead of the rounding of ``sum n ln mu`` (~2e-8 in
+        10,000 bins of 5x10^5 events), which defeats convergence tests at 1e-9.  Costs a
+        second logarithm per bin.
 
     Returns
     -------
@@ -87,6 +104,15 @@ def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True) ->
     """
     n = np.asarray(n, float)
     mu = np.maximum(np.asarray(mu, float), MU_FLOOR)
+    if small_terms:
+        nt, s = _scaled(n, scale)
+        smu = s * mu
+        with np.errstate(divide="ignore", invalid="ignore"):
+            pos = nt > 0
+            lr = np.where(pos, nt * np.log(np.where(pos, nt, 1.0) / smu), 0.0)
+        val = np.sum(smu - nt + lr, axis=-1)
+        # + sum(nt - nt ln nt) - (saturated: that same sum), added last
+        return val if saturated else val - saturated_term(n, scale)
     if scale is None:
         val = np.sum(mu - n * np.log(mu), axis=-1)
     else:

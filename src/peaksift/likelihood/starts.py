@@ -21,7 +21,7 @@ from ..errors import PeaksiftError
 from .cost import BinnedCost
 from .minimize import damped_step, minimize
 from .model import Model
-from .poisson import binned_gradient, binned_information, binned_nll
+from .poisson import binned_gradient, binned_information, binned_nll, use_compiled
 
 __all__ = ["CANDIDATE_MARGIN", "background_start", "fit_starts", "peak_candidates", "worth_trying"]
 
@@ -71,6 +71,14 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
     # differences of NLLs only: the saturated term is left out
     nll0 = binned_nll(n, btot * g, scale, saturated=False)
     x = np.column_stack([np.full(m, 0.1 * math.sqrt(max(btot, 1.0))), np.full(m, btot)])
+    if use_compiled():
+        from .kernels import profile_two_yields
+
+        nll = np.empty(m)
+        sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), g.shape)
+        profile_two_yields(np.ascontiguousarray(n, float), np.ascontiguousarray(sc),
+                           np.ascontiguousarray(f), g, x, nll, 25)
+        return _local_maxima(x, nll, nll0, most)
     dmu = np.stack([f, np.broadcast_to(g, f.shape)], axis=1)  # (M, 2, N)
     lam = np.full(m, 1e-3)
     quiet = 0
@@ -91,6 +99,11 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
             quiet = quiet + 1 if np.all(gain < 1e-6) else 0
             if quiet >= 2:
                 break  # no mass gains any more (a coarse scan needs no more)
+    return _local_maxima(x, nll, nll0, most)
+
+
+def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int):
+    m = nll.size
     q = np.where((x[:, 0] > 0) & np.isfinite(nll), 2.0 * (nll0 - nll), 0.0)
     peaks = [i for i in range(m) if q[i] > 0
              and (i == 0 or q[i] >= q[i - 1]) and (i == m - 1 or q[i] >= q[i + 1])]

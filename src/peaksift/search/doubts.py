@@ -6,6 +6,8 @@ quoting them; the list is the ``warnings`` entry of results.json, a block of the
 summary and a section at the top of the report.
 
 * ``fit``             -- the signal-plus-background fit is invalid (its problems quoted).
+* ``sideband_fit``    -- blinded: the background fit on the sidebands is invalid or fits
+  them badly (goodness-of-fit p below :data:`GOF_P_MIN`).
 * ``calibration``     -- the calibration fit is invalid: its mass shift is not a measurement.
 * ``goodness_of_fit`` -- the fit's (or the calibration fit's) goodness-of-fit p-value is
   below :data:`GOF_P_MIN`: the model does not describe the data (e.g. a known peak inside
@@ -74,6 +76,18 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
             f"the fit at the best mass has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
             "signal-plus-background model does not describe the spectrum (a known peak in the "
             "window, or the wrong background shape); the significance and limits rest on it")
+    sb = results.get("background_fit")
+    if isinstance(sb, Mapping) and sb.get("kind") == "sideband_fit":  # blinded runs
+        if not sb.get("valid"):
+            probs = "; ".join(str(p) for p in sb.get("problems") or []) or "no reason recorded"
+            add("sideband_fit", f"the background fit on the sidebands is invalid ({probs}): "
+                                "its extrapolation under the blinded window is not a measurement")
+        p = _num(sb.get("gof_p_value"))
+        if p is not None and p < GOF_P_MIN:
+            add("sideband_fit",
+                f"the background fit on the sidebands has goodness-of-fit p = {p:.3g} "
+                f"(< {GOF_P_MIN:g}): the background function does not describe the data "
+                "around the blinded window; the expectation under it is doubtful")
 
     cal = results.get("calibration")
     if isinstance(cal, Mapping) and cal:

@@ -30,12 +30,15 @@ class _FitSettings:
     limits: Mapping[str, tuple[float, float]]
     intervals: tuple[str, ...]
     tie: Mapping[str, Any] | None
+    tied: Mapping[str, Any] | None = None  # name -> peaksift.likelihood.Tie
 
     def arguments(self) -> dict[str, Any]:
-        """``fixed=``, ``limits=``, ``constraints=``, ``intervals=`` for :func:`fit`."""
+        """``fixed=``, ``limits=``, ``constraints=``, ``intervals=``, ``tied=`` for
+        :func:`fit`."""
         return {"fixed": dict(self.fixed) or None, "limits": dict(self.limits) or None,
                 "constraints": dict(self.constraints) or None,
-                "intervals": list(self.intervals) or False}
+                "intervals": list(self.intervals) or False,
+                "tied": dict(self.tied) if self.tied else None}
 
     def background_only(self, signal: Any, start: Mapping[str, float]) -> dict[str, Any]:
         """The same for the background-only fit: the signal yield is 0, so the signal's
@@ -60,24 +63,32 @@ class _FitSettings:
 def _fit_settings(cfg: Config, signal: Any, mass: float, *, hold_mass: bool = False
                   ) -> _FitSettings:
     """``model.fix`` / ``constrain`` / ``bounds`` / ``sigma_from_resolution`` for a free fit
-    starting at ``mass`` (the resolution sigma is taken there); ``hold_mass`` fixes the mass.
+    starting at ``mass``; ``hold_mass`` fixes the mass.  ``sigma_from_resolution = "fixed"``
+    ties sigma to the resolution at the fitted mass (recomputed inside the likelihood);
+    ``"constrained"`` centres its constraint on the resolution at the starting mass.
 
     The intervals asked for (``model.intervals``) are those of the peak mass, the signal's
     width parameter and the signal yield, each only while it floats.
     """
-    from ..likelihood import Constraint
+    from ..likelihood import Constraint, Tie
 
     md = cfg.model
     fixed = dict(md.fix)
     cons = {k: Constraint(c["kind"], c["center"], c["width"]) for k, c in md.constrain.items()}
-    tie = None
+    tie, tied = None, None
     if md.sigma_from_resolution != "free":
-        s = float(md.resolution.sigma(mass))
+        res = md.resolution.resolution  # the Resolution value of [model.resolution]
+        s = float(res.sigma(mass))
         tie = {"mode": md.sigma_from_resolution, "at_mass": float(mass), "sigma": s,
                "relative_uncertainty": md.resolution_uncertainty,
-               "resolution_model": md.resolution.kind}
-        if md.sigma_from_resolution == "fixed":
-            fixed["sigma"] = s
+               "resolution_model": res.kind}
+        held = hold_mass or "mass" in fixed
+        if md.sigma_from_resolution == "fixed" and held:
+            fixed["sigma"] = float(res.sigma(fixed.get("mass", mass)))
+        elif md.sigma_from_resolution == "fixed":
+            tie["follows"] = "the fitted mass"
+            tied = {"sigma": Tie("sigma", "mass", res.sigma, res.slope, res.curvature,
+                                 description=f"the resolution at the mass ({res.describe()})")}
         else:  # Gaussian around the resolution, of relative width resolution_uncertainty
             cons["sigma"] = Constraint.gaussian(s, float(md.resolution_uncertainty) * s)
     if hold_mass:
@@ -86,9 +97,9 @@ def _fit_settings(cfg: Config, signal: Any, mass: float, *, hold_mass: bool = Fa
     if md.intervals and fixed.get("signal_yield") != 0.0:  # no signal: its shape is held too
         widths = signal.width_parameters()
         wanted = tuple(k for k in ("mass", widths[0] if widths else "", "signal_yield")
-                       if k and k not in fixed)
+                       if k and k not in fixed and k not in (tied or {}))
     return _FitSettings(fixed=fixed, constraints=cons, limits=dict(md.bounds),
-                        intervals=wanted, tie=tie)
+                        intervals=wanted, tie=tie, tied=tied)
 
 
 def _fit_start(cfg: Config, signal: Any, mass: float, settings: _FitSettings
@@ -106,7 +117,7 @@ def _fit_start(cfg: Config, signal: Any, mass: float, settings: _FitSettings
         start["width"] = max(float(res.natural_width), 0.1 * float(res.sigma(mass)))
     out = {}
     for k, v in start.items():
-        if k not in settings.fixed:
+        if k not in settings.fixed and k not in (settings.tied or {}):
             a, b = settings.limits.get(k, (-np.inf, np.inf))
             out[k] = min(max(v, a), b)
     return out
@@ -225,8 +236,8 @@ def _note_tie_drift(fr: Any, cfg: Config, settings: _FitSettings) -> Any:
     """``fr`` with a note when sigma was tied to the resolution at a starting mass where the
     resolution differs by more than ``_TIE_DRIFT`` from the one at the fitted mass."""
     tie = settings.tie
-    if fr is None or not tie or not np.isfinite(fr.peak_mass):
-        return fr
+    if fr is None or not tie or settings.tied or not np.isfinite(fr.peak_mass):
+        return fr  # a sigma tied inside the likelihood follows the fitted mass exactly
     there = float(cfg.model.resolution.sigma(fr.peak_mass))
     if abs(there - tie["sigma"]) <= _TIE_DRIFT * there:
         return fr

@@ -38,10 +38,13 @@ class SearchResult:
         The spectrum in the fit window (blinded bins emptied unless unblinded).
     collected : peaksift.execution.Collected
         Everything the read/select/pair step returned (cut flow, files, pT and rapidity).
-    background_fit, fit : FitResult
-        Background-only fit, and the signal-plus-background fit at the best hypothesis
-        with free mass and width (profile-likelihood intervals of mass, width and signal
-        yield unless ``model.intervals = false``).
+    background_fit : FitResult or SidebandFit
+        Background-only fit; while blinded, a :class:`~peaksift.search.sideband.SidebandFit`
+        on the sidebands only, extrapolated under the blinded window.
+    fit : FitResult or None
+        The signal-plus-background fit at the best hypothesis with free mass and width
+        (profile-likelihood intervals of mass, width and signal yield unless
+        ``model.intervals = false``); None while blinded.
     scan : ScanResult
         The mass scan.
     best : dict
@@ -128,6 +131,30 @@ class SearchResult:
                 f"not a discovery; see the report.</p></div>")
 
     # ------------------------------------------------------------------------ JSON
+    # Every results.json key is an attribute of the same name: the fields, and these.
+    @property
+    def peaksift_version(self) -> str:
+        """The version of peaksift that writes this result's results.json."""
+        from .. import __version__
+
+        return __version__
+
+    @property
+    def input(self) -> dict[str, Any]:
+        """The results.json ``input``: files, events read and selected, candidates, cut
+        flow and per-requirement counts."""
+        return self._input()
+
+    @property
+    def warnings(self) -> list[dict[str, Any]]:
+        """The doubtful results flagged (results.json ``warnings``)."""
+        return list(self.to_dict()["warnings"])
+
+    @property
+    def outputs(self) -> dict[str, Any] | None:
+        """Where the files went (results.json ``outputs``); None without an output folder."""
+        return self.to_dict().get("outputs")
+
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> SearchResult:
         """The SearchResult of a results.json: fits, scan, limits, best, calibration,
@@ -148,8 +175,7 @@ class SearchResult:
             outs = d.get("outputs") or {}
             return cls(
                 config=cfg, histogram=None, collected=None,
-                background_fit=FitResult.from_dict(d["background_only_fit"])
-                if d.get("background_only_fit") else None,
+                background_fit=_background_fit(d),
                 fit=FitResult.from_dict(fit) if fit.get("shapes") else None,
                 scan=ScanResult.from_dict(d["scan"]), best=dict(d["best"]),
                 limits=LimitResult.from_dict(d["limits"]) if d.get("limits") else None,
@@ -160,7 +186,7 @@ class SearchResult:
                 figures={k: Path(outs["dir"]) / "figures" / v
                          for k, v in (outs.get("figures") or {}).items()},
                 fit_settings=settings, input_record=dict(d.get("input") or {}),
-                identification=d.get("identification"))
+                identification=d.get("identification"), systematics=d.get("systematics"))
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"not a results.json written by peaksift search: {exc!r}") \
                 from None
@@ -205,8 +231,9 @@ class SearchResult:
             "config": self.config.to_dict(),
             "input": self._input(),
             "fit": fit,
-            "background_only_fit": _fit_dict(self.background_fit)
-            if self.background_fit is not None else None,
+            "background_fit": None if self.background_fit is None else
+            _plain(self.background_fit.to_dict()) if _is_sideband(self.background_fit)
+            else _fit_dict(self.background_fit),
             "scan": {**scan, **scan_extra},
             "best": _plain(dict(self.best)),
             "limits": _plain(self.limits.to_dict()) if self.limits is not None else None,
@@ -225,6 +252,26 @@ class SearchResult:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}
         return out
+
+
+def _is_sideband(fr: Any) -> bool:
+    from .sideband import SidebandFit
+
+    return isinstance(fr, SidebandFit)
+
+
+def _background_fit(d: Mapping[str, Any]) -> Any:
+    """The background fit of a results.json: a sideband fit (blinded runs) or a FitResult.
+    results.json files written before the key took the attribute's name call it
+    ``background_only_fit``: still read, so the results of earlier runs load."""
+    from ..fitting.result import FitResult
+    from .sideband import SidebandFit
+
+    b = d.get("background_fit", d.get("background_only_fit"))
+    if not b:
+        return None
+    return SidebandFit.from_dict(b) if b.get("kind") == "sideband_fit" else \
+        FitResult.from_dict(b)
 
 
 def _plain(o: Any) -> Any:

@@ -30,6 +30,7 @@ from .common import (
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
 from .identification import dedx_identification
+from .parallel import Beside, FigureWorker
 from .result import SearchResult
 from .signal import search_signal_model
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
@@ -122,6 +123,25 @@ def run_search(
 
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None) -> SearchResult:
+    # the figures are drawn beside the statistics, by a process started before the events
+    # are read (it loads matplotlib meanwhile); without an output folder none are drawn
+    drawer = (FigureWorker(stage.path / "figures", formats=cfg.output.formats,
+                           log_scale=cfg.output.log_scale) if stage is not None else None)
+    besides: list[Beside] = []
+    try:
+        return _stages(cfg, unblind=unblind, progress=progress, started=started, stage=stage,
+                       target=target, drawer=drawer, besides=besides)
+    except BaseException:  # nothing may keep writing into the discarded staging folder
+        for b in besides:
+            b.cancel()
+        if drawer is not None:
+            drawer.cancel()
+        raise
+
+
+def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
+            stage: _Staging | None, target: Path | None, drawer: FigureWorker | None,
+            besides: list[Beside]) -> SearchResult:
     from ..fitting import fit
     from ..resonances import match_known, pair_charge
     from ..stats.scan import scan
@@ -143,6 +163,16 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         hist = _blinded_copy(hist, blind_window)
         _require_sidebands(cfg, hist)
 
+    def partial(**kw: Any) -> SearchResult:  # what a figure job needs of the result
+        base: dict[str, Any] = {
+            "config": cfg, "histogram": hist, "collected": col, "background_fit": None,
+            "fit": None, "scan": None, "best": {}, "limits": None, "known_matches": (),
+            "calibration": None, "provenance": {}, "blinding": blind}
+        return SearchResult(**{**base, **kw})
+
+    if drawer is not None:
+        drawer.draw(["candidates"], partial())
+
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
     bkg = _shape(cfg.model.background, cfg.model.background_options)
@@ -158,6 +188,13 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     seed = cfg.significance.seed
 
     smodel = search_signal_model(cfg, progress=progress)
+    # the limits need nothing of what follows: they run beside it, unless toys are asked
+    # for (those run here, on the configured engine, with their progress bar)
+    limits_job = None
+    if cfg.limits.enabled and cfg.limits.method != "toys" and cfg.execution.engine == "serial":
+        limits_job = Beside(_limits, cfg, hist, scan_sig, bkg, masses, width, blind_window,
+                            False, smodel)
+        besides.append(limits_job)
     if smodel is None:
         sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
                     natural_width=width, blind=blind_window, refit=False)
@@ -180,6 +217,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                                 best_plain=best, progress=progress,
                                                 executor=_toy_executor(cfg))
         clock.lap("systematics")
+        if drawer is not None:
+            drawer.draw(["background_envelope"], partial(systematics=syst))
 
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
@@ -187,16 +226,23 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     if blind_window is None:
         fres = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
                    **settings.arguments())
-    else:  # while blinded no fit may look inside the blinded window
-        fres = None
+        bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
+                    **settings.background_only(sig_fit, start))
+    else:  # while blinded no fit may look inside the blinded window: the background
+        fres = None  # is fitted on the sidebands only, extrapolated under the window
+        from .sideband import sideband_fit
+
+        bonly = sideband_fit(hist, sig_fit, bkg, (lo, hi), blind_window)
     fres = _note_tie_drift(fres, cfg, settings)
     if syst is not None and fres is not None:  # the fitted mass with the mass scale profiled
         from .systematics import fitted_mass
 
         syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
-    bonly = fit(data, sig_fit, bkg, (lo, hi), binned=binned, start=start,
-                **settings.background_only(sig_fit, start)) if blind_window is None else None
     clock.lap("fits")
+    if drawer is not None:
+        drawer.draw(["spectrum", "pvalue_scan"],
+                    partial(background_fit=bonly, fit=fres, scan=sres, best=best,
+                            systematics=syst))
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -206,34 +252,25 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
                               charge=pair_charge(cfg.pairing.charge)))
     cal, cal_hist, cal_fit = _calibration(cfg, col)
     clock.lap("calibration")
+    if drawer is not None and cal is not None:
+        drawer.draw(["calibration"], partial(calibration=cal),
+                    calibration=(cal_hist, cal_fit))
 
-    drawing = None
-    if stage is not None:  # the figures that need no limits are drawn while they compute
-        from .. import plotting
-
-        drawing = plotting.draw_in_background(
-            SearchResult(config=cfg, histogram=hist, collected=col, background_fit=bonly,
-                         fit=fres, scan=sres, best=best, limits=None, known_matches=known,
-                         calibration=cal, provenance={}, blinding=blind, systematics=syst),
-            stage.path / "figures", formats=cfg.output.formats,
-            log_scale=cfg.output.log_scale, calibration=(cal_hist, cal_fit))
     limits = None
-    try:
-        if cfg.limits.enabled:
-            limits = _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
-                             smodel)
-            clock.lap("limits")
-            if syst is not None and smodel is None:
-                from .systematics import limits_with_systematics
+    if cfg.limits.enabled:
+        limits = (limits_job.result() if limits_job is not None else
+                  _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
+                          smodel))
+        clock.lap("limits" if limits_job is None else "limits (rest of)")
+        if syst is not None and smodel is None:
+            from .systematics import limits_with_systematics
 
-                syst = {**syst, "limits": limits_with_systematics(
-                    cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
-                    blind=blind_window)}
-                clock.lap("limits with systematics")
-    except BaseException:
-        if drawing is not None:  # nothing may keep writing into the discarded staging
-            drawing.cancel()
-        raise
+            syst = {**syst, "limits": limits_with_systematics(
+                cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
+                blind=blind_window)}
+            clock.lap("limits with systematics")
+        if drawer is not None:
+            drawer.draw(["limits"], partial(limits=limits, systematics=syst))
 
     # hashed where the footers were read (on the workers of a cluster); None when
     # input.hash_inputs is off
@@ -260,29 +297,29 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         signal_model=smodel,
         identification=ident.to_dict() if ident is not None else None,
     )
-    if stage is None:
+    if stage is None or drawer is None:
         prov["finished"] = _utc()
         return result
 
     from .. import plotting
+    from ..plotting import SEARCH_FIGURES
     from ..report import write_report, write_results_json
 
     figdir = stage.path / "figures"
-    lim_fig = ({"limits": plotting.limits_figure(result, figdir, cfg.output.formats)}
-               if limits is not None else {})
+    more = {}
     if smodel is not None:
-        lim_fig.update(zip(("signal_model_parameters", "signal_model_shapes"),
-                           smodel.plot(figdir)))
+        more.update(zip(("signal_model_parameters", "signal_model_shapes"),
+                        smodel.plot(figdir)))
     if ident is not None:
-        lim_fig["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
-                                               hypotheses=tuple(cfg.pairing.hypotheses),
-                                               band=cfg.identification.band)
-    drawn = {**(drawing.join() if drawing is not None else {}), **lim_fig}
-    order = ("spectrum", "spectrum_log", "pvalue_scan", "limits", "candidates", "calibration",
-             "dedx")
+        more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
+                                            hypotheses=tuple(cfg.pairing.hypotheses),
+                                            band=cfg.identification.band)
+    clock.lap("figures (here)")
+    drawn = {**drawer.finish(), **more}
+    order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}
-    clock.lap("figures (rest)")
+    clock.lap("figures (waiting)")
     _save_spectrum(hist, stage.path / "spectrum.json", blind)
     prov["finished"] = _utc()
     final_figs = {k: target / "figures" / Path(v).name for k, v in figs.items()}
@@ -292,8 +329,6 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     write_report(d, stage.path, figs)
     clock.lap("report")
     return result
-
-
 
 
 def _opt(**kw: Any) -> dict[str, Any]:

@@ -189,7 +189,7 @@ def fitted_mass(cfg: Config, fit_dict: dict[str, Any]) -> dict[str, Any] | None:
 
 
 def _compact(lim: dict[str, Any]) -> dict[str, Any]:
-    keys = ("mass", "observed", "expected", "expected_minus2", "expected_minus1",
+    keys = ("masses", "observed", "expected", "expected_minus2", "expected_minus1",
             "expected_plus1", "expected_plus2", "unit", "cl", "method")
     return {k: lim.get(k) for k in keys}
 

@@ -40,6 +40,26 @@ class _Background(Shape):
     kind = "background"
 
 
+def _stacked(params, edges) -> np.ndarray | None:
+    """The one parameter of a stacked call (one value per row, shape ``(B, 1)``) on 1-d
+    edges, as a contiguous ``(B,)`` array; None for any other call."""
+    p = params[0]
+    if len(params) != 1 or np.ndim(p) != 2 or np.shape(p)[1] != 1 or np.ndim(edges) != 1:
+        return None
+    return np.ascontiguousarray(np.asarray(p, float)[:, 0])
+
+
+def _rows(run, rows: int, nbins: int, grad: bool):
+    """``(fractions (B, N), derivatives (1, B, N) or None)`` from ``run(frac, grad)``, a
+    compiled row kernel of :mod:`.compiled`; None where it declines (a row near its
+    series)."""
+    frac = np.empty((rows, nbins))
+    g = np.empty((rows, nbins) if grad else (0, 0))
+    if not run(frac, g):
+        return None
+    return frac, (g[None] if grad else None)
+
+
 class ExpPoly(_Background):
     r"""Exponential of a polynomial on the window-scaled variable
     :math:`t = (x - c)/h \in [-1, 1]` (c, h: window centre and half-width):
@@ -105,7 +125,27 @@ class ExpPoly(_Background):
         series = 0.5 * (t2 - 1.0) + b * (t2 * t + 1.0) / 3.0 + b * b * (t2 * t2 - 1.0) / 8.0
         return [h * np.where(small, series, exact)]
 
+    def _stacked_rows(self, edges, params, window, grad: bool):
+        p = _stacked(params, edges) if self.order == 1 else None
+        if p is None:
+            return None
+        from .compiled import exponential_rows
+
+        lo, hi = float(window[0]), float(window[1])
+        x = np.clip(np.asarray(edges, dtype=float), lo, hi)
+        t = (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo))
+        dt = np.diff(x) * (2.0 / (hi - lo))
+        return _rows(lambda f, g: exponential_rows(t, dt, p, f, g), p.size, x.size - 1, grad)
+
+    def bin_fractions(self, edges, params, window):
+        out = self._stacked_rows(edges, params, window, False)
+        return out[0] if out is not None else super().bin_fractions(edges, params, window)
+
     def fractions_and_grad(self, edges, params, window, need=None):
+        if np.ndim(params[0]):
+            out = self._stacked_rows(edges, params, window, True)
+            if out is not None:
+                return out
         if self.order != 1 or np.ndim(params[0]) or abs(float(params[0])) < 1e-3:
             return super().fractions_and_grad(edges, params, window, need)
         b = float(params[0])
@@ -265,6 +305,10 @@ class PowerLaw(_Background):
         terms linear in q, so q is scaled by its largest value to keep steep power laws
         finite.  Near k = 1 (q nearly constant) the series of the general path is used."""
         lo, hi = float(window[0]), float(window[1])
+        if np.ndim(params[0]) and lo > 0:
+            out = self._stacked_rows(edges, params, window, True)
+            if out is not None:
+                return out
         if np.ndim(params[0]) or not lo > 0:
             return super().fractions_and_grad(edges, params, window, need)
         a = 1.0 - float(params[0])
@@ -282,9 +326,33 @@ class PowerLaw(_Background):
         return cdf[1:] - cdf[:-1], (grad[1:] - grad[:-1])[None, :]
 
 
+    def _stacked_rows(self, edges, params, window, grad: bool):
+        """Stacked parameters ``(B, 1)``: the compiled rows of :mod:`.compiled` (one
+        exponential per edge and row instead of a logarithm and ``exprel``)."""
+        lo, hi = float(window[0]), float(window[1])
+        p = _stacked(params, edges) if lo > 0 else None
+        if p is None:
+            return None
+        from .compiled import powerlaw_rows
+
+        c = 0.5 * (lo + hi)
+        lx, dlx = self._edge_logs(edges, lo, hi, c)
+        l_lo, l_hi = math.log(lo / c), math.log(hi / c)
+        return _rows(lambda f, g: powerlaw_rows(lx, dlx, p, l_lo, l_hi, f, g), p.size,
+                     lx.size - 1, grad)
+
+    def bin_fractions(self, edges, params, window):
+        out = self._stacked_rows(edges, params, window, False)
+        return out[0] if out is not None else super().bin_fractions(edges, params, window)
+
     def _log_edges(self, edges: Any, lo: float, hi: float, c: float) -> np.ndarray:
-        """ln(x/c) of the clipped edges, kept for the last edges array seen: a fit asks
-        for the same edges at every step."""
+        """ln(x/c) of the clipped edges (see :meth:`_edge_logs`)."""
+        return self._edge_logs(edges, lo, hi, c)[0]
+
+    def _edge_logs(self, edges: Any, lo: float, hi: float,
+                   c: float) -> tuple[np.ndarray, np.ndarray]:
+        """(ln(x/c), ln(x_{i+1}/x_i)) of the clipped edges, kept for the last read-only
+        edges array seen: a fit or a scan asks for the same edges at every step."""
         key = (id(edges), lo, hi)
         hit = getattr(self, "_lx", None)
         if hit is not None and hit[0] == key and hit[1] is edges:
@@ -293,9 +361,10 @@ class PowerLaw(_Background):
         if x[0] < lo or x[-1] > hi:
             x = np.clip(x, lo, hi)
         lx = np.log(x * (1.0 / c))
+        dlx = np.log1p(np.diff(x) / x[:-1])  # to full precision, for narrow bins
         if isinstance(edges, np.ndarray) and not edges.flags.writeable:
-            self._lx = (key, edges, lx)
-        return lx
+            self._lx = (key, edges, (lx, dlx))
+        return lx, dlx
 
 
 class PowerSum(_Background):

@@ -24,35 +24,49 @@ Which piece when
 
 from __future__ import annotations
 
-from .background_choice import BackgroundChoice, choose_background, spurious_signal
-from .envelope import EnvelopeResult, envelope_scan
-from .lee import binomial_error, global_from_toys, global_from_upcrossings, upcrossings
-from .limits import (
-    LimitResult,
-    cls_asymptotic,
-    expected_band_factor,
-    poisson_interval,
-    poisson_upper_limit,
-    run_toy_limit,
-    upper_limits,
-)
-from .scan import scan
-from .scan_result import ScanResult
-from .significance import (
-    asimov_counts,
-    binned_q0,
-    counting_significance,
-    log10_p,
-    log_p_from_q0,
-    log_p_from_z,
-    p_from_q0,
-    p_from_z,
-    q0_from_nll,
-    z_from_log_p,
-    z_from_p,
-    z_from_q0,
-)
-from .toys import ScanModel, ToyBatch, run_toy_batch, run_toys
+import importlib
+import sys
+import types
+from typing import Any
+
+#: public name -> the module that holds it: imported on first use, so that importing one
+#: piece (the config's work bounds, the scan) does not load scipy.stats and every other piece
+_EXPORTS: dict[str, str] = {
+    "BackgroundChoice": "background_choice",
+    "choose_background": "background_choice",
+    "spurious_signal": "background_choice",
+    "EnvelopeResult": "envelope",
+    "envelope_scan": "envelope",
+    "binomial_error": "lee",
+    "global_from_toys": "lee",
+    "global_from_upcrossings": "lee",
+    "upcrossings": "lee",
+    "LimitResult": "limits",
+    "cls_asymptotic": "limits",
+    "expected_band_factor": "limits",
+    "poisson_interval": "limits",
+    "poisson_upper_limit": "limits",
+    "run_toy_limit": "limits",
+    "upper_limits": "limits",
+    "scan": "scan",
+    "ScanResult": "scan_result",
+    "asimov_counts": "significance",
+    "binned_q0": "significance",
+    "counting_significance": "significance",
+    "log10_p": "significance",
+    "log_p_from_q0": "significance",
+    "log_p_from_z": "significance",
+    "p_from_q0": "significance",
+    "p_from_z": "significance",
+    "q0_from_nll": "significance",
+    "z_from_log_p": "significance",
+    "z_from_p": "significance",
+    "z_from_q0": "significance",
+    "ScanModel": "toys",
+    "ToyBatch": "toys",
+    "run_toy_batch": "toys",
+    "run_toys": "toys",
+}
 
 __all__ = [
     "BackgroundChoice",
@@ -90,3 +104,30 @@ __all__ = [
     "z_from_p",
     "z_from_q0",
 ]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _EXPORTS:
+        value = getattr(importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'peaksift.stats' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(__all__) | set(globals()))
+
+
+class _Package(types.ModuleType):
+    """Importing a submodule binds it on its package.  Where a public function has its
+    module's name (``scan`` in ``scan.py``), that would hide the function from every later
+    ``from peaksift.stats import scan``; the function is bound instead, as an eager
+    ``from .scan import scan`` did."""
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if isinstance(value, types.ModuleType) and _EXPORTS.get(name) == name:
+            value = getattr(value, name)
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Package

@@ -96,7 +96,8 @@ class LimitResult(FrozenValue):
 
     @property
     def mass(self) -> np.ndarray:
-        """The mass hypotheses under their results.json name (the same array as ``masses``)."""
+        """The same array as ``masses`` (an alias kept for code written when results.json
+        called the masses ``mass``)."""
         return self.masses
 
     def _summary(self) -> list[tuple[str, str]]:
@@ -138,7 +139,9 @@ class LimitResult(FrozenValue):
             return np.array([np.nan if x is None else x for x in v], float)
 
         try:
-            masses = arr("mass")
+            # results.json files written before the key took the attribute's name call the
+            # masses "mass": still read, so the results of earlier runs load
+            masses = arr("masses" if "masses" in d else "mass")
             blind = d.get("blind")
             return cls(
                 masses=masses, observed=arr("observed"), expected=arr("expected"),
@@ -166,13 +169,13 @@ class LimitResult(FrozenValue):
                 from None
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready: the search's ``limits`` keys (``mass``, ``observed``, ``expected``,
+        """JSON-ready: the search's ``limits`` keys (``masses``, ``observed``, ``expected``,
         ``expected_minus2``, ``expected_minus1``, ``expected_plus1``, ``expected_plus2``,
         ``unit``) plus ``cl``, ``method`` and details (per mass: ``methods``,
         ``background_under_signal``, ``counting_floor``, ``asymptotic_doubtful``,
         ``below_floor``, ``flags``); blinded observed entries are None."""
         return plain({
-            "mass": self.masses, "observed": self.observed, "expected": self.expected,
+            "masses": self.masses, "observed": self.observed, "expected": self.expected,
             "expected_minus2": self.expected_minus2, "expected_minus1": self.expected_minus1,
             "expected_plus1": self.expected_plus1, "expected_plus2": self.expected_plus2,
             "unit": self.unit, "cl": self.cl, "method": self.method,

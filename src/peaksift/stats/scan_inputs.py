@@ -63,7 +63,8 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
             check_plan(2, nb)  # before the histogram is allocated
         hist = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
     weight_sum = np.asarray(hist.values(), float)
-    edges = np.asarray(hist.edges, float)
+    edges = np.array(hist.edges, float)
+    edges.flags.writeable = False  # shapes keep per-edges work (logarithms) for this array
     if not (np.all(np.isfinite(weight_sum)) and np.all(weight_sum >= 0)):
         raise FitError("scan: bin contents in the window must be finite and non-negative")
     if weight_sum.sum() <= 0:
@@ -182,6 +183,12 @@ def _start_grid(start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     return np.unique(grid, axis=0)
 
 
+#: steps of the background fit from every start before the hopeless starts (NLL more than
+#: HOPELESS above the best) are dropped; the others get the remaining steps of 60
+_FIRST_STEPS = 8
+HOPELESS = 1000.0
+
+
 def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
                          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Background-only fit of the data, robust to poor starting values.
@@ -198,17 +205,28 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
     with np.errstate(all="ignore"):
         th_g, b_g, nll_g = fit_background(proto, np.broadcast_to(counts, (len(grid),
                                                                          counts.size)),
-                                          grid, steps=60)
-    nll_g = np.where(np.isfinite(nll_g), nll_g, np.inf)
+                                          grid, steps=_FIRST_STEPS)
+        # only starts still within HOPELESS of the best go on: a start far up a wall of the
+        # likelihood (a rising power law on a falling spectrum) otherwise takes every one of
+        # the 60 steps and made the background fit most of a 100-bin scan's time
+        nll_g = np.where(np.isfinite(nll_g), nll_g, np.inf)
+        go = np.flatnonzero(nll_g <= np.min(nll_g) + HOPELESS)
+        if go.size < min(2, nll_g.size):
+            go = np.argsort(nll_g)[:2]
+        th2, b2, nll2 = fit_background(proto, np.broadcast_to(counts, (go.size, counts.size)),
+                                       th_g[go], steps=60 - _FIRST_STEPS)
+        th_g[go], b_g[go], nll_g[go] = th2, b2, nll2
     order = np.argsort(nll_g)
     candidates = [(th_g[i:i + 1], b_g[i:i + 1], nll_g[i:i + 1]) for i in order[:1]]
     cost = _BackgroundCost(proto, counts)
     lower = np.concatenate([[0.0], proto.lower])
     upper = np.concatenate([[np.inf], proto.upper])
     names = ["background_yield"] + [f"theta_{k}" for k in range(proto.theta.size)]
-    for i in order[:2]:
+    for rank, i in enumerate(order[:2]):
         if not np.isfinite(nll_g[i]):
             continue
+        if rank and _same_minimum(th_g[i], nll_g[i], th_g[order[0]], nll_g[order[0]]):
+            continue  # the grid's two best starts ended in one minimum: polish it once
         x0 = np.concatenate([[b_g[i]], th_g[i]])
         try:
             mo = minimize(cost, x0, lower, upper, names)
@@ -218,6 +236,13 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
             candidates.append(fit_background(proto, counts[None, :], mo.x[None, 1:],
                                              steps=200))
     return min(candidates, key=lambda c: float(c[2][0]))
+
+
+def _same_minimum(th: np.ndarray, nll: float, th0: np.ndarray, nll0: float) -> bool:
+    """Whether two background fits ended in the same minimum (NLL within 1e-6, every
+    parameter within 1e-6 of its scale)."""
+    return bool(abs(nll - nll0) < 1e-6
+                and np.all(np.abs(th - th0) <= 1e-6 * np.maximum(np.abs(th0), 1.0)))
 
 
 class _BackgroundCost:

@@ -74,7 +74,8 @@ class ScanResult(FrozenValue):
 
     @property
     def mass(self) -> np.ndarray:
-        """The mass hypotheses under their results.json name (the same array as ``masses``)."""
+        """The same array as ``masses`` (an alias kept for code written when results.json
+        called the masses ``mass``)."""
         return self.masses
 
     # --------------------------------------------------------------- summary
@@ -92,11 +93,11 @@ class ScanResult(FrozenValue):
                 f"p_local = {b['p_local']:.3g}{blind})")
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict: the search's ``scan`` keys (``mass``, ``z_local``, ``p_local``,
+        """JSON-ready dict: the search's ``scan`` keys (``masses``, ``z_local``, ``p_local``,
         ``signal_yield``) as lists, plus errors, q0, sigma, blinding and the best point.
         Blinded entries are ``None``."""
         d = {
-            "mass": self.masses, "z_local": self.z_local, "p_local": self.p_local,
+            "masses": self.masses, "z_local": self.z_local, "p_local": self.p_local,
             "signal_yield": self.signal_yield, "signal_yield_error": self.signal_yield_error,
             "background_yield": self.background_yield, "q0": self.q0, "sigma": self.sigma,
             "z_expected": self.z_expected, "blind": None if self.blind is None else
@@ -122,7 +123,9 @@ class ScanResult(FrozenValue):
             return np.array([np.nan if v is None else v for v in d[key]], float)
 
         try:
-            masses = arr("mass")
+            # results.json files written before the key took the attribute's name call the
+            # masses "mass": still read, so the results of earlier runs load
+            masses = arr("masses" if "masses" in d else "mass")
             blinded = np.array(d.get("blinded") or [False] * masses.size, bool)
             q0 = arr("q0")
             best = d.get("best_index")

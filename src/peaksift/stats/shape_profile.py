@@ -19,8 +19,8 @@ with the constraint terms :math:`C_j` of the core (:mod:`peaksift.likelihood.nui
 Under the background-only hypothesis (``s = 0``) the signal factors sit at their centres and
 add nothing, so q0 = 2 (NLL_b - NLL) keeps the background-only fit of the plain scan.
 
-Method: damped Newton (Levenberg-Marquardt, :func:`peaksift.likelihood.damped_step`) on all
-hypotheses at once, started from the fit with the factors at 1; the Hessian is the observed
+Method: damped Newton (Levenberg-Marquardt, :func:`peaksift.likelihood.minimize_stacked`) on
+all hypotheses at once, started from the fit with the factors at 1; the Hessian is the observed
 Fisher part plus the exact yield-factor and background-curvature cross terms; the
 derivatives of the signal fractions in the factors come from the shape's own parameter
 derivatives (analytic where the shape has them) by the chain rule.  A step is taken only where the NLL does not rise.
@@ -40,7 +40,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import SignalNuisances, binned_nll, damped_step
+from ..likelihood import SignalNuisances, binned_nll, first_error, minimize_stacked
 from .toys import (
     ScanModel,
     ToyBatch,
@@ -163,16 +163,15 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
     all_rows = np.arange(nb)
     nll, _ = total(s, k, b, g, all_rows)
     d2 = bkg_second(model, theta) if kk else None
-    lam = np.full(nb, 1e-3)
-    active = np.isfinite(nll)
-    converged = np.zeros(nb, bool)
-    hess_last = np.zeros((nb, 2 + j_n + kk, 2 + j_n + kk))
-    for _ in range(steps):
-        idx = np.flatnonzero(active)
-        if idx.size == 0:
-            break
-        si, ki, bi, thi, gi = s[idx], k[idx], b[idx], theta[idx], g[idx]
-        fi, dfs = _fractions(model, signal, base_params, names, nuisances, ki, idx, True)
+    ib = 1 + j_n  # index of the background yield
+
+    def value(x, rows):
+        tg = bkg_fractions(model, x[:, ib + 1:])
+        return total(x[:, 0], x[:, 1:ib], x[:, ib], tg, rows)[0], (tg,)
+
+    def grad_hess(x, state, rows):
+        si, ki, bi, thi, gi = x[:, 0], x[:, 1:ib], x[:, ib], x[:, ib + 1:], state[0]
+        fi, dfs = _fractions(model, signal, base_params, names, nuisances, ki, rows, True)
         nu = np.maximum(si[:, None] * fi + bi[:, None] * gi, _FLOOR)
         cols = [fi[:, None, :]] + [si[:, None, None] * d[:, None, :] for d in dfs]
         cols.append(gi[:, None, :])
@@ -180,10 +179,10 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
             dg = bkg_gradients(model, thi)
             cols.append(bi[:, None, None] * dg)
         a = np.concatenate(cols, axis=1)                      # (B, P, N)
-        w = 1.0 - n[idx] / nu
+        w = 1.0 - n[rows] / nu
         grad = np.einsum("bpn,bn->bp", a, w)
-        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[idx] / nu**2)
-        _, cg, ch = cons(ki, idx)
+        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[rows] / nu**2)
+        _, cg, ch = cons(ki, rows)
         jj = np.arange(1, 1 + j_n)
         grad[:, jj] += cg
         hess[:, jj, jj] += ch
@@ -191,10 +190,9 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
             t = np.einsum("bn,bn->b", d, w)
             hess[:, 0, 1 + j] += t
             hess[:, 1 + j, 0] += t
-        ib = 1 + j_n
         if kk:
             hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
-                                                                         d2[idx], w)
+                                                                         d2[rows], w)
             cross = np.einsum("bkn,bn->bk", dg, w)
             hess[:, ib, ib + 1:] += cross
             hess[:, ib + 1:, ib] += cross
@@ -203,39 +201,16 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
             hess[:, 0, :] = 0.0
             hess[:, :, 0] = 0.0
             hess[:, 0, 0] = 1.0
-        hess_last[idx] = hess
-        todo = np.ones(idx.size, bool)
-        for _try in range(12):
-            r = np.flatnonzero(todo)
-            rows = idx[r]
-            step = damped_step(hess[r], grad[r], lam[rows])
-            ts = si[r] + step[:, 0]
-            tk = np.clip(ki[r] + step[:, 1:ib], lo, hi)
-            tb = bi[r] + step[:, ib]
-            tth = np.clip(thi[r] + step[:, ib + 1:], model.lower, model.upper)
-            tg = bkg_fractions(model, tth)
-            tn, _ = total(ts, tk, tb, tg, rows)
-            ok = tn <= nll[rows] + 1e-9
-            jr = rows[ok]
-            conv = ok & (nll[rows] - tn < tol) & (lam[rows] <= 1e-2)
-            s[jr], k[jr], b[jr], theta[jr], g[jr], nll[jr] = (ts[ok], tk[ok], tb[ok],
-                                                              tth[ok], tg[ok], tn[ok])
-            converged[rows[conv]] = True
-            active[rows[conv]] = False
-            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
-            todo[r[ok]] = False
-            if not todo.any():
-                break
-        stuck = idx[todo]
-        converged[stuck] = True  # no descent at any damping: at the minimum to rounding
-        active[stuck] = False
-    with np.errstate(all="ignore"):
-        try:
-            reg = 1e-12 * np.trace(np.abs(hess_last), axis1=1, axis2=2)[:, None, None]
-            cov = np.linalg.inv(hess_last + reg * np.eye(hess_last.shape[1]))
-            s_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
-        except np.linalg.LinAlgError:
-            s_err = np.full(nb, np.nan)
+        return grad, hess
+
+    x0 = np.concatenate([s[:, None], k, b[:, None], theta], axis=1)
+    free = np.full(1, np.inf)
+    r = minimize_stacked(value, grad_hess, x0, np.concatenate([-free, lo, -free, model.lower]),
+                         np.concatenate([free, hi, free, model.upper]), start=(nll, (g,)),
+                         active=np.isfinite(nll), steps=steps, nll_tol=tol)
+    x, nll, converged = r.x, r.nll, r.converged
+    s, k, b, theta = x[:, 0].copy(), x[:, 1:ib].copy(), x[:, ib].copy(), x[:, ib + 1:].copy()
+    s_err = first_error(r.hessian)
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll, "factors": k,
             "names": names, "converged": converged}
 

@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import binned_nll, damped_step
+from ..likelihood import binned_nll, first_error, minimize_stacked
 
 _BAND_EPS = 3e-3       # signal band: bins with f > eps * max f
 _GROUP = 16            # masses per band group in the toy scan
@@ -136,8 +136,10 @@ def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
 
 
 def _nll(n: np.ndarray, nu: np.ndarray) -> np.ndarray:
-    # the core's Poisson NLL without its saturated constant (differences are all we need)
-    return binned_nll(n, nu, saturated=False)
+    # the core's Poisson NLL without its saturated constant (differences are all we need),
+    # summed in small terms: the fits below stop on NLL changes of 1e-8 to 1e-9, below the
+    # rounding of the plain sum in 10,000 bins (they then ran to their step limit)
+    return binned_nll(n, nu, saturated=False, small_terms=True)
 
 
 # ------------------------------------------------------- background-only fit (stacked)
@@ -169,43 +171,32 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
     g, b, nll = profile_b(theta)
     if k == 0:
         return theta, b, nll
-    lam = np.full(nb, 1e-3)
-    active = np.ones(nb, bool)
     d2 = bkg_second(model, theta)
-    for _ in range(steps):
-        idx = np.flatnonzero(active)
-        if idx.size == 0:
-            break
-        th, gi, bi = theta[idx], g[idx], b[idx]
+
+    def value(th: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, tuple]:
+        gt, bt, nt = profile_b(th, rows)
+        return nt, (gt, bt)
+
+    def grad_hess(th: np.ndarray, state: tuple, rows: np.ndarray):
+        gi, bi = state
         dg = bkg_gradients(model, th)                      # (B, K, N)
         nu = np.maximum(bi[:, None] * gi, _NU_FLOOR)
         a = np.concatenate([gi[:, None, :], bi[:, None, None] * dg], axis=1)  # (B, P, N)
-        w = 1.0 - n[idx] / nu
+        w = 1.0 - n[rows] / nu
         grad = np.einsum("bpn,bn->bp", a, w)
         # exact Hessian: observed Fisher part + the curvature of the shape
-        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[idx] / nu**2)
-        hess[:, 1:, 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl", d2[idx], w)
+        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[rows] / nu**2)
+        hess[:, 1:, 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl", d2[rows], w)
         cross = np.einsum("bkn,bn->bk", dg, w)
         hess[:, 0, 1:] += cross
         hess[:, 1:, 0] += cross
-        todo = np.ones(idx.size, bool)
-        for _try in range(12):
-            r = np.flatnonzero(todo)
-            rows = idx[r]
-            step = damped_step(hess[r], grad[r], lam[rows])
-            trial = np.clip(th[r] + step[:, 1:], model.lower, model.upper)
-            gt, bt, nt = profile_b(trial, rows)
-            ok = nt <= nll[rows] + 1e-10
-            j = rows[ok]
-            conv = ok & (nll[rows] - nt < tol) & (lam[rows] <= 1e-2)
-            theta[j], g[j], b[j], nll[j] = trial[ok], gt[ok], bt[ok], nt[ok]
-            active[rows[conv]] = False
-            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
-            todo[r[ok]] = False
-            if not todo.any():
-                break
-        active[idx[todo]] = False  # no descent at any damping: at the minimum to rounding
-    return theta, b, nll
+        return grad, hess
+
+    # the yield is profiled inside ``value``: only the shape part of the step moves theta
+    r = minimize_stacked(value, grad_hess, theta, model.lower, model.upper,
+                         start=(nll, (g, b)), steps=steps, nll_tol=tol, slack=1e-10,
+                         step_columns=slice(1, None))
+    return r.x, r.state[1], r.nll
 
 
 # --------------------------------------------------- exact profile over masses (data)
@@ -252,83 +243,52 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         # start with a positive expectation everywhere
         s = np.where(np.isfinite(nll), s, 0.0)
         nll = total_nll(s, b, g)
-    active = np.ones(nb, bool)
-    converged = np.zeros(nb, bool)
     off = 0 if fixed else 1
-    lam = np.full(nb, 1e-3)
     d2 = bkg_second(model, theta) if k else None
-    for _ in range(steps):
-        idx = np.flatnonzero(active)
-        if idx.size == 0:
-            break
-        si, bi, thi, gi = s[idx], b[idx], theta[idx], g[idx]
-        nu = np.maximum(si[:, None] * f[idx] + bi[:, None] * gi, _NU_FLOOR)
+
+    def unpack(x: np.ndarray, rows: np.ndarray):
+        return (s[rows] if fixed else x[:, 0]), x[:, off], x[:, off + 1:]
+
+    def value(x: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, tuple]:
+        ts, tb, tth = unpack(x, rows)
+        tg = bkg_fractions(model, tth)
+        return total_nll(ts, tb, tg, rows), (tg,)
+
+    def grad_hess(x: np.ndarray, state: tuple, rows: np.ndarray):
+        si, bi, thi = unpack(x, rows)
+        gi = state[0]
+        nu = np.maximum(si[:, None] * f[rows] + bi[:, None] * gi, _NU_FLOOR)
         cols = [gi[:, None, :]]
         if k:
-            cols.append(bi[:, None, None] * bkg_gradients(model, thi))
+            dg = bkg_gradients(model, thi)
+            cols.append(bi[:, None, None] * dg)
         if not fixed:
-            cols.insert(0, f[idx][:, None, :])
+            cols.insert(0, f[rows][:, None, :])
         a = np.concatenate(cols, axis=1)
-        w = 1.0 - n[idx] / nu
+        w = 1.0 - n[rows] / nu
         grad = np.einsum("bpn,bn->bp", a, w)
         # exact Hessian: observed Fisher part + the curvature of the background shape
-        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[idx] / nu**2)
+        hess = np.einsum("bpn,bqn,bn->bpq", a, a, n[rows] / nu**2)
         if k:
             ib = off  # index of the background yield
             hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
-                                                                         d2[idx], w)
-            cross = np.einsum("bkn,bn->bk", cols[-1] / bi[:, None, None], w)
+                                                                         d2[rows], w)
+            cross = np.einsum("bkn,bn->bk", dg, w)
             hess[:, ib, ib + 1:] += cross
             hess[:, ib + 1:, ib] += cross
-        with np.errstate(all="ignore"):
-            err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
-        todo = np.ones(idx.size, bool)
-        for _try in range(12):
-            r = np.flatnonzero(todo)
-            rows = idx[r]
-            step = damped_step(hess[r], grad[r], lam[rows])
-            ts = si[r] if fixed else si[r] + step[:, 0]
-            tb = bi[r] + step[:, off]
-            tth = np.clip(thi[r] + step[:, off + 1:], model.lower, model.upper)
-            tg = bkg_fractions(model, tth)
-            tn = total_nll(ts, tb, tg, rows)
-            ok = tn <= nll[rows] + 1e-9
-            j = rows[ok]
-            small = np.all(np.abs(step) < tol * err[r], axis=1)
-            conv = ok & (small | (nll[rows] - tn < 1e-8)) & (lam[rows] <= 1e-2)
-            s[j], b[j], theta[j], g[j], nll[j] = ts[ok], tb[ok], tth[ok], tg[ok], tn[ok]
-            converged[rows[conv]] = True
-            active[rows[conv]] = False
-            lam[rows] = np.where(ok, np.maximum(lam[rows] * 0.1, 1e-9), lam[rows] * 10.0)
-            todo[r[ok]] = False
-            if not todo.any():
-                break
-        stuck = idx[todo]
-        converged[stuck] = True  # no descent at any damping: at the minimum to rounding
-        active[stuck] = False
+        return grad, hess
+
+    free = [] if fixed else [s[:, None]]
+    x0 = np.concatenate(free + [b[:, None], theta], axis=1)
+    unbounded = np.full(off + 1, np.inf)
+    r = minimize_stacked(value, grad_hess, x0, np.concatenate([-unbounded, model.lower]),
+                         np.concatenate([unbounded, model.upper]), start=(nll, (g,)),
+                         steps=steps, nll_tol=1e-8, step_tol=tol)
+    s, b, theta = unpack(r.x, np.arange(nb))
+    s, b, theta, g, nll, converged = s.copy(), b.copy(), theta.copy(), r.state[0], r.nll, \
+        r.converged
     # Hessian-based error of the signal yield: inverse of the exact Hessian at the minimum
-    if fixed:
-        s_err = np.full(nb, np.nan)
-    else:
-        nu = np.maximum(s[:, None] * f + b[:, None] * g, _NU_FLOOR)
-        cols = [f[:, None, :], g[:, None, :]]
-        if k:
-            dgm = bkg_gradients(model, theta)
-            cols.append(b[:, None, None] * dgm)
-        a = np.concatenate(cols, axis=1)
-        w = 1.0 - n / nu
-        h = np.einsum("bpn,bqn,bn->bpq", a, a, n / nu**2)
-        if k:
-            h[:, 2:, 2:] += b[:, None, None] * np.einsum("bkln,bn->bkl", d2, w)
-            cross = np.einsum("bkn,bn->bk", dgm, w)
-            h[:, 1, 2:] += cross
-            h[:, 2:, 1] += cross
-        with np.errstate(all="ignore"):
-            try:
-                reg = 1e-12 * np.trace(np.abs(h), axis1=1, axis2=2)[:, None, None]
-                cov = np.linalg.inv(h + reg * np.eye(h.shape[1]))
-                s_err = np.sqrt(np.where(cov[:, 0, 0] > 0, cov[:, 0, 0], np.nan))
-            except np.linalg.LinAlgError:
-                s_err = np.full(nb, np.nan)
+    s_err = (np.full(nb, np.nan) if fixed else
+             first_error(grad_hess(r.x, r.state, np.arange(nb))[1]))
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
             "converged": converged}

@@ -1,0 +1,381 @@
+"""Compiled fast path of the binned cost for the common shapes (numba, cached on disk).
+
+What is here and when it is used
+--------------------------------
+* :func:`edge_kernel` -- for a shape with a compiled CDF (``gaussian``, ``powerlaw``,
+  ``exponential`` / ``exppoly`` of order 1) an evaluator that writes the window-normalised
+  CDF at every bin edge and its derivative in each shape parameter into rows of an array;
+  None for any other shape (those keep the numpy path of :mod:`.cost`).
+* :class:`FusedBinned` -- the whole ``value_grad_info`` of a
+  :class:`~peaksift.likelihood.cost.BinnedCost` whose components all have an edge kernel:
+  the CDF rows of every component, then one pass over the bins that forms the expected
+  counts, the NLL, its gradient and the Fisher information together (no (parameters x bins)
+  Jacobian is written out).  A free fit of a Gaussian on a power law in 1,350 bins costs
+  ~0.1 ms per evaluation this way against ~0.3 ms through ~20 numpy operations.
+* :func:`profile_two_yields` -- the free fit's coarse scan of the window (two yields
+  profiled at every trial mass); :func:`solve_small` -- the minimiser's Newton steps.
+
+The numpy path (shapes' ``fractions_and_grad`` and :func:`~peaksift.likelihood.poisson.binned_nll`)
+stays the reference: the same formulae, the same floors; the edge kernels return False
+where that path switches to a series (power law near k = 1, exponential near b = 0) and the
+cost then takes the numpy path for that evaluation.  ``tests/test_likelihood_kernels.py``
+checks both against scipy's CDFs written in the test.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+from numba import njit
+
+from ..shapes import Exponential, ExpPoly, Gaussian, PowerLaw
+from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
+
+__all__ = ["FusedBinned", "edge_kernel"]
+
+#: floating-point reordering only (vectorised sums); no assumption about NaN or infinity,
+#: so a bad parameter point still gives a non-finite NLL that the minimiser rejects
+_SUMS = {"reassoc", "contract"}
+
+
+@njit(cache=True, nogil=True, fastmath=_SUMS)
+def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n, s,
+                 unit, floor, info, mu_out, jac, g, fisher):  # pragma: no cover - compiled
+    """Over the used ``bins``: expected counts from the CDF rows, the NLL without its
+    constant, the gradient and (``info``) the Fisher information over the free parameters.
+    ``value_row[k]``: CDF row of component k, ``yields[k]`` its yield and ``yield_free[k]``
+    its free index (or -1); derivative rows ``drow`` of component ``dcomp`` at free index
+    ``dfree``; ``jac`` (free parameters x used bins) is scratch.  Bin fractions are floored
+    at 0 and the expectation at ``floor`` as in the numpy path."""
+    ncomp = value_row.size
+    nd = drow.size
+    npar = g.size
+    nb = bins.size
+    contiguous = nb == cdf.shape[1] - 1  # no masked bins: plain differences
+    for j in range(nb):
+        mu_out[j] = 0.0
+    # row by row (vectorised): bin fractions of each component into mu and the jacobian
+    for k in range(ncomp):
+        r = value_row[k]
+        y = yields[k]
+        a = yield_free[k]
+        for j in range(nb):
+            i = j if contiguous else bins[j]
+            d = cdf[r, i + 1] - cdf[r, i]
+            d = max(0.0, d)
+            mu_out[j] += y * d
+            if a >= 0:
+                jac[a, j] = d
+    for q in range(nd):
+        r = drow[q]
+        a = dfree[q]
+        y = yields[dcomp[q]]
+        for j in range(nb):
+            i = j if contiguous else bins[j]
+            jac[a, j] = y * (cdf[r, i + 1] - cdf[r, i])
+    val = 0.0
+    for j in range(nb):
+        mu = mu_out[j]
+        if mu < floor:
+            mu = floor
+            mu_out[j] = mu
+        sj = 1.0 if unit else s[j]
+        val += sj * mu - n[j] * math.log(mu)
+    # residual and weight per bin, then one vectorised sum per entry
+    res = np.empty(nb)
+    w = np.empty(nb)
+    for j in range(nb):
+        sj = 1.0 if unit else s[j]
+        w[j] = sj / mu_out[j]
+        res[j] = sj - n[j] / mu_out[j]
+    for a in range(npar):
+        acc = 0.0
+        for j in range(nb):
+            acc += jac[a, j] * res[j]
+        g[a] = acc
+        if info:
+            for b in range(a + 1):
+                acc = 0.0
+                for j in range(nb):
+                    acc += w[j] * jac[a, j] * jac[b, j]
+                fisher[a, b] = acc
+                fisher[b, a] = acc
+    return val
+
+
+class _Kernel:
+    """A compiled CDF evaluator of one shape on fixed edges: ``rows`` = 1 + parameters."""
+
+    def __init__(self, func, data: tuple, rows: int) -> None:
+        self.func, self.data, self.rows = func, data, rows
+
+    def __call__(self, p: list[float], out: np.ndarray) -> bool:
+        return bool(self.func(*self.data[:1], *p, *self.data[1:], out))
+
+
+#: recent edge kernels by (shape, read-only edges array, window): the starts of one fit
+#: build several costs on the same edges (the entries hold their arrays, so ids stay valid)
+_RECENT: dict = {}
+
+
+def edge_kernel(shape: Any, edges: np.ndarray, window: tuple[float, float]) -> _Kernel | None:
+    """A compiled evaluator of ``shape``'s normalised CDF and its parameter derivatives at
+    ``edges`` (clipped to ``window``), or None when the shape has none (exact types only:
+    a subclass may change the formula)."""
+    shared = isinstance(edges, np.ndarray) and not edges.flags.writeable
+    key = (id(shape), id(edges), float(window[0]), float(window[1]))
+    hit = _RECENT.get(key) if shared else None
+    if hit is not None and hit[0] is shape and hit[1] is edges:
+        return hit[2]
+    kern = _new_edge_kernel(shape, edges, window)
+    if shared:
+        if len(_RECENT) >= 8:
+            _RECENT.pop(next(iter(_RECENT)))
+        _RECENT[key] = (shape, edges, kern)
+    return kern
+
+
+def _new_edge_kernel(shape: Any, edges: np.ndarray,
+                     window: tuple[float, float]) -> _Kernel | None:
+    lo, hi = float(window[0]), float(window[1])
+    x = np.clip(np.asarray(edges, float), lo, hi)
+    kind = type(shape)
+    if kind is Gaussian:
+        return _Kernel(gaussian_edges, (x, lo, hi), 3)
+    if kind is PowerLaw and lo > 0:
+        c = 0.5 * (lo + hi)
+        return _Kernel(powerlaw_edges, (np.log(x * (1.0 / c)), math.log(lo / c),
+                                        math.log(hi / c)), 2)
+    if kind in (ExpPoly, Exponential) and shape.order == 1:
+        t = (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo))
+        return _Kernel(exponential_edges, (t,), 2)
+    return None
+
+
+class FusedBinned:
+    """``value_grad_info`` of a binned cost whose components all have an edge kernel.
+
+    Built by :class:`~peaksift.likelihood.cost.BinnedCost` (which keeps the numpy path as
+    reference and fallback); :meth:`evaluate` returns None when a kernel declines (the
+    caller then uses the numpy path)."""
+
+    def __init__(self, kernels: list[_Kernel], plan: list, nfree: int, edges: np.ndarray,
+                 mask: np.ndarray | None, n: np.ndarray, s: np.ndarray, unit: bool,
+                 floor: float) -> None:
+        self.kernels = kernels
+        self.plan = plan  # (shape, slice, yield index, need, free rows, yield free row)
+        self.start = [0]
+        for k in kernels:
+            self.start.append(self.start[-1] + k.rows)
+        self.cdf = np.zeros((self.start[-1], edges.size))
+        self.bins = (np.arange(edges.size - 1) if mask is None else
+                     np.flatnonzero(mask)).astype(np.int64)
+        self.n, self.s, self.unit, self.floor = n, s, bool(unit), float(floor)
+        self.g = np.zeros(nfree)
+        self.fisher = np.zeros((nfree, nfree))
+        self.mu = np.zeros(self.bins.size)
+        self.jac = np.zeros((nfree, self.bins.size))
+        drow, dcomp, dfree = [], [], []
+        for k, (_, _, _, _, rows, _) in enumerate(plan):
+            for j, r in enumerate(rows):
+                if r >= 0:
+                    drow.append(int(self.start[k]) + 1 + j)
+                    dcomp.append(k)
+                    dfree.append(r)
+        self.drow = np.array(drow, np.int64)
+        self.dcomp = np.array(dcomp, np.int64)
+        self.dfree = np.array(dfree, np.int64)
+        self.value_row = np.array(self.start[:-1], np.int64)
+        self.yield_free = np.array([p[5] for p in plan], np.int64)
+        self.yields = np.empty(len(plan))
+        # per component: kernel, its arguments around the parameters, its rows of cdf
+        self.calls = [(kern.func, kern.data[:1], kern.data[1:],
+                       self.cdf[self.start[k]:self.start[k + 1]], p[1], p[2], p[5])
+                      for k, (kern, p) in enumerate(zip(kernels, plan))]
+
+    def fractions(self, shape: Any, p: list[float]):
+        """``(fractions, derivatives)`` of component ``shape`` in the used bins at its
+        parameters ``p`` (fractions floored at 0, as ``bin_fractions``), or None."""
+        for kern, plan in zip(self.kernels, self.plan):
+            if plan[0] is shape:
+                out = np.empty((kern.rows, self.cdf.shape[1]))
+                if not kern([float(q) for q in p], out):
+                    return None
+                d = out[:, 1:] - out[:, :-1]
+                if self.bins.size != d.shape[1]:
+                    d = d[:, self.bins]
+                return np.maximum(d[0], 0.0), d[1:]
+        return None
+
+    def evaluate(self, v: np.ndarray, info: bool):
+        """``(nll without constant, gradient, information or None, mu)`` at the full
+        parameter vector ``v``, or None when a kernel declines."""
+        vals = v.tolist()
+        yields = self.yields
+        for k, (func, head, tail, out, sl, iy, ry) in enumerate(self.calls):
+            y = vals[iy]
+            yields[k] = y
+            if ry < 0 and y == 0.0:  # a component fixed at zero yield contributes nothing
+                out[:] = 0.0
+                continue
+            if not func(*head, *vals[sl], *tail, out):
+                return None
+        val = poisson_pass(self.cdf, self.value_row, yields, self.yield_free, self.drow,
+                           self.dcomp, self.dfree, self.bins, self.n, self.s, self.unit,
+                           self.floor, info, self.mu, self.jac, self.g, self.fisher)
+        return (float(val), self.g.copy(), self.fisher.copy() if info else None,
+                self.mu.copy())
+
+
+#: the coarse scan treats a trial mass's signal fractions below this fraction of their
+#: largest value as 0 (its far tails): those bins then hold background only, summed in
+#: closed form, so a trial costs its peak's bins instead of the whole window
+BAND = 1e-12
+
+
+@njit(cache=True, nogil=True)
+def _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c):  # pragma: no cover
+    """sum(s mu - n s ln(s mu)) of mu = a0 f[m] + a1 g over all bins: the band [j0, j1)
+    term by term, the rest (background only) from its sums; inf when mu <= 0 anywhere."""
+    if not a1 > 0.0 and (out_g > 0.0 or out_n > 0.0):
+        return math.inf
+    val = a1 * out_g - out_c
+    if out_n > 0.0:
+        val -= out_n * math.log(a1)
+    for j in range(j0, j1):
+        mu = a0 * f[m, j] + a1 * g[j]
+        if not mu > 0.0:
+            return math.inf
+        smu = s[j] * mu
+        val += smu - n[j] * s[j] * math.log(smu)
+    return val
+
+
+@njit(cache=True, nogil=True)
+def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - compiled
+    """Profile a signal yield and a background normalisation at each trial mass: row m of
+    ``f`` holds the signal's bin fractions at mass m, ``g`` the background's; ``x (M, 2)``
+    starts and receives the yields, ``nll (M,)`` receives the NLL (saturated term left
+    out).  Damped Newton on the Fisher information (the step of
+    :func:`~peaksift.likelihood.minimize.damped_step`, solved in closed form for 2 x 2),
+    per mass until its NLL gains < 1e-6 in two steps running or ``iterations`` are done.
+    Bins outside a mass's band (see :data:`BAND`) enter through running sums."""
+    nb = n.size
+    # running sums of the background-only terms: s g, n s, n s ln(s g)
+    cg = np.zeros(nb + 1)
+    cn = np.zeros(nb + 1)
+    cc = np.zeros(nb + 1)
+    for j in range(nb):
+        ns = n[j] * s[j]
+        cg[j + 1] = cg[j] + s[j] * g[j]
+        cn[j + 1] = cn[j] + ns
+        cc[j + 1] = cc[j] + (ns * math.log(s[j] * g[j]) if ns > 0.0 else 0.0)
+    for m in range(f.shape[0]):
+        top = 0.0
+        for j in range(nb):
+            top = max(top, f[m, j])
+        j0 = 0
+        while j0 < nb and not f[m, j0] > BAND * top:
+            j0 += 1
+        j1 = nb
+        while j1 > j0 and not f[m, j1 - 1] > BAND * top:
+            j1 -= 1
+        out_g = cg[nb] - cg[j1] + cg[j0]
+        out_n = cn[nb] - cn[j1] + cn[j0]
+        out_c = cc[nb] - cc[j1] + cc[j0]
+        a0 = x[m, 0]
+        a1 = x[m, 1]
+        cur = _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c)
+        lam = 1e-3
+        quiet = 0
+        for _ in range(iterations):
+            # background-only bins: d/da1 = sum s g - n s / a1, information sum s g / a1
+            mu1 = max(1e-300, a1)
+            g0 = 0.0
+            g1 = out_g - out_n / mu1
+            h00 = 0.0
+            h01 = 0.0
+            h11 = out_g / mu1
+            for j in range(j0, j1):
+                mu = a0 * f[m, j] + a1 * g[j]
+                mu = max(mu, 1e-300)
+                r = s[j] * (1.0 - n[j] / mu)
+                w = s[j] / mu
+                g0 += f[m, j] * r
+                g1 += g[j] * r
+                h00 += w * f[m, j] * f[m, j]
+                h01 += w * f[m, j] * g[j]
+                h11 += w * g[j] * g[j]
+            floor = 1e-6 * 0.5 * (abs(h00) + abs(h11)) + 1e-300
+            d00 = h00 + lam * (h00 + floor) + 1e-14 * floor
+            d11 = h11 + lam * (h11 + floor) + 1e-14 * floor
+            det = d00 * d11 - h01 * h01
+            s0 = -(d11 * g0 - h01 * g1) / det
+            s1 = -(d00 * g1 - h01 * g0) / det
+            if not (math.isfinite(s0) and math.isfinite(s1)):
+                s0 = 0.0
+                s1 = 0.0
+            t = _nll2(n, s, f, g, m, j0, j1, a0 + s0, a1 + s1, out_g, out_n, out_c)
+            gain = 0.0
+            if t <= cur:
+                gain = cur - t
+                a0 += s0
+                a1 += s1
+                cur = t
+                lam = max(lam * 0.1, 1e-9)
+            else:
+                lam *= 10.0
+            quiet = quiet + 1 if gain < 1e-6 else 0
+            if quiet >= 2:
+                break
+        x[m, 0] = a0
+        x[m, 1] = a1
+        nll[m] = cur
+
+
+@njit(cache=True, nogil=True)
+def solve_small(a, g, out):  # pragma: no cover - compiled
+    """``out = -a^-1 g`` for a small dense ``a`` (Gaussian elimination with partial
+    pivoting on the unit-diagonal scaling of ``a``, as ``minimize._solve`` does with
+    ``numpy.linalg.solve``); False when singular or not finite."""
+    n = g.size
+    m = np.empty((n, n + 1))
+    d = np.empty(n)
+    for i in range(n):
+        v = math.sqrt(abs(a[i, i]))
+        d[i] = v if v > 0.0 else 1.0
+    for i in range(n):
+        for j in range(n):
+            m[i, j] = a[i, j] / (d[i] * d[j])
+        m[i, n] = g[i] / d[i]
+    for c in range(n):
+        p = c
+        big = abs(m[c, c])
+        for r in range(c + 1, n):
+            if abs(m[r, c]) > big:
+                big = abs(m[r, c])
+                p = r
+        if not big > 0.0:
+            return False
+        if p != c:
+            for j in range(c, n + 1):
+                t = m[c, j]
+                m[c, j] = m[p, j]
+                m[p, j] = t
+        for r in range(c + 1, n):
+            f = m[r, c] / m[c, c]
+            if f != 0.0:
+                for j in range(c, n + 1):
+                    m[r, j] -= f * m[c, j]
+    for i in range(n - 1, -1, -1):
+        acc = m[i, n]
+        for j in range(i + 1, n):
+            acc -= m[i, j] * out[j]
+        out[i] = acc / m[i, i]
+    for i in range(n):
+        out[i] = -out[i] / d[i]
+        if not math.isfinite(out[i]):
+            return False
+    return True

@@ -1,0 +1,232 @@
+"""Stages of one search that run beside each other, so a run uses the machine's cores.
+
+Which piece when
+----------------
+* :class:`Beside`       -- one function run in a forked process while this one goes on
+  (the asymptotic limits, during the global significance, the systematics and the fits);
+  :meth:`Beside.result` returns its value.
+* :class:`FigureWorker` -- a forked process, started before the events are read, that
+  imports matplotlib while they are read and draws each figure as soon as its results
+  exist (:meth:`FigureWorker.draw`); :meth:`FigureWorker.finish` returns the files.
+
+Both give exactly what the same call in this process gives: the work is deterministic and
+its inputs are fixed when it starts (a fork copies them; the figure jobs are pickled).
+Nothing is lost when a child fails: whatever it did not deliver is done again here, so a
+:class:`~peaksift.errors.PeaksiftError` surfaces with its usual message.  Where forking is
+not available or not safe (macOS, Windows; ``_processes.resolve_start_method``), on a
+single core, or with ``PEAKSIFT_INLINE=1`` in the environment, everything runs here, in
+order.  Warnings a child raises are raised again here, so a caller recording them sees
+them all.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import time
+import warnings
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+from .._processes import die_with_parent, quiet_fork, resolve_start_method, worker_start
+
+_log = logging.getLogger("peaksift.search")
+
+
+def forking() -> bool:
+    """Whether stages may run in forked processes here (see the module's guide)."""
+    return (not os.environ.get("PEAKSIFT_INLINE") and (os.cpu_count() or 1) > 1
+            and resolve_start_method("auto") == "fork")
+
+
+def _child_start(parent: int) -> None:
+    worker_start()  # Ctrl-C is the parent's to handle: it stops us
+    die_with_parent(parent)
+
+
+def _rewarn(caught: Sequence[tuple[str, type, str, int]]) -> None:
+    for message, category, filename, lineno in caught:
+        warnings.warn_explicit(message, category, filename, lineno)
+
+
+def _record(w: warnings.WarningMessage) -> tuple[str, type, str, int]:
+    return str(w.message), w.category, w.filename, w.lineno
+
+
+class Beside:
+    """``fn(*args, **kw)`` computed in a forked process from now on; :meth:`result` waits
+    for it (or computes it here when no fork was made or the child failed)."""
+
+    def __init__(self, fn: Callable[..., Any], *args: Any, **kw: Any) -> None:
+        self._call = (fn, args, kw)
+        self._proc: Any = None
+        self._conn: Any = None
+        if not forking():
+            return
+        import multiprocessing
+
+        ctx = multiprocessing.get_context("fork")
+        self._conn, child_end = ctx.Pipe(duplex=False)
+        self._proc = ctx.Process(target=_beside_child, daemon=True,
+                                 args=(child_end, os.getpid(), fn, args, kw))
+        with quiet_fork():
+            self._proc.start()
+        child_end.close()
+
+    def result(self) -> Any:
+        fn, args, kw = self._call
+        if self._proc is not None:
+            try:
+                ok, value, caught, seconds = self._conn.recv()
+            except (EOFError, OSError):  # the child died: compute here instead
+                ok, value, caught, seconds = False, None, [], 0.0
+            self._proc.join()
+            self._conn.close()
+            self._proc = None
+            if ok:
+                _log.debug("%s beside: %.2f s", getattr(fn, "__name__", "stage"), seconds)
+                _rewarn(caught)
+                return value
+        return fn(*args, **kw)  # an error here is raised with its own traceback
+
+    def cancel(self) -> None:
+        """Stop the child (the caller failed and discards the outputs)."""
+        if self._proc is not None:
+            self._proc.terminate()
+            self._proc.join()
+            self._proc = None
+
+
+def _beside_child(conn: Any, parent: int, fn: Callable[..., Any], args: tuple[Any, ...],
+                  kw: dict[str, Any]) -> None:
+    code = 1
+    try:
+        _child_start(parent)
+        t = time.perf_counter()
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            value = fn(*args, **kw)
+        conn.send((True, value, [_record(w) for w in caught], time.perf_counter() - t))
+        code = 0
+    except BaseException:  # noqa: BLE001 -- the parent computes it again and raises
+        _log.debug("stage beside failed; computed again in the parent", exc_info=True)
+    finally:
+        os._exit(code)  # no atexit handlers or buffers of the parent run twice
+
+
+class FigureWorker:
+    """Draws a search's figures in a forked process as their results arrive.
+
+    ``FigureWorker(outdir, formats=..., log_scale=...)`` forks at once; the child imports
+    matplotlib and renders a throw-away figure (fonts, mathtext) while the parent reads the
+    events.  :meth:`draw` sends it a job (figure names and the partial
+    :class:`~peaksift.search.SearchResult` they need), :meth:`finish` waits for the last
+    one and returns figure name -> PNG path.
+    """
+
+    def __init__(self, outdir: Path, **kw: Any) -> None:
+        self.outdir, self.kw = Path(outdir), kw
+        self.jobs: list[tuple[tuple[str, ...], Any, dict[str, Any]]] = []
+        self._proc: Any = None
+        if not forking():
+            return
+        import multiprocessing
+
+        ctx = multiprocessing.get_context("fork")
+        self._queue = ctx.Queue()  # a feeder thread: draw() never waits for the child
+        self._conn, child_end = ctx.Pipe(duplex=False)
+        self._proc = ctx.Process(target=_figure_child, daemon=True,
+                                 args=(self._queue, child_end, os.getpid(), self.outdir, kw))
+        with quiet_fork():
+            self._proc.start()
+        child_end.close()
+
+    def draw(self, names: Sequence[str], result: Any, **extra: Any) -> None:
+        """Draw the figures ``names`` of ``result`` (``extra``: more keywords of
+        :func:`~peaksift.plotting.search_figures`, e.g. ``calibration``)."""
+        job = (tuple(names), result, extra)
+        self.jobs.append(job)
+        if self._proc is not None:
+            self._queue.put(job)
+
+    def finish(self) -> dict[str, Path]:
+        """Wait for every figure; draw here whatever the child did not deliver."""
+        drawn: dict[str, str] = {}
+        done: set[int] = set()
+        if self._proc is not None:
+            self._queue.put(None)
+            try:
+                drawn, done, caught = self._conn.recv()
+            except (EOFError, OSError):  # the child died: everything is drawn here
+                drawn, done, caught = {}, set(), []
+            self._proc.join()
+            _rewarn(caught)
+            self._conn.close()
+            self._proc = None
+        out = {k: Path(v) for k, v in drawn.items()}
+        from .. import plotting
+
+        for i, (names, result, extra) in enumerate(self.jobs):
+            if i not in done:
+                out.update(plotting.search_figures(result, self.outdir, names=names,
+                                                   **self.kw, **extra))
+        return out
+
+    def cancel(self) -> None:
+        """Stop the child (the caller failed and discards the outputs)."""
+        if self._proc is not None:
+            self._queue.cancel_join_thread()  # nobody will read what is still queued
+            self._proc.terminate()
+            self._proc.join()
+            self._proc = None
+
+
+def _warm_up() -> None:
+    """Import the drawing stack and render one small figure with typeset text, so the
+    first real figure does not pay for loading fonts and the mathtext parser."""
+    import io
+
+    from .._style import figure_style, new_figure
+
+    fig, ax = new_figure((2.0, 1.5))
+    with figure_style():
+        ax.plot([0, 1], [0, 1])
+        ax.set_xlabel(r"$m_{\mu\mu}$ [GeV]")
+        ax.set_title(r"$Z_{local}$ = 1.00 $\sigma$")
+    fig.savefig(io.BytesIO(), format="png", dpi=50)
+
+
+def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
+                  kw: dict[str, Any]) -> None:
+    code = 1
+    drawn: dict[str, str] = {}
+    done: set[int] = set()
+    caught: list[tuple[str, type, str, int]] = []
+    try:
+        _child_start(parent)
+        from .. import plotting
+
+        _warm_up()
+        i = 0
+        while (job := queue.get()) is not None:
+            names, result, extra = job
+            try:
+                with warnings.catch_warnings(record=True) as seen:
+                    warnings.simplefilter("always")
+                    made = plotting.search_figures(result, outdir, names=names, **kw, **extra)
+                caught += [_record(w) for w in seen]
+                drawn.update({k: str(v) for k, v in made.items()})
+                done.add(i)
+            except Exception:  # noqa: BLE001 -- the parent draws it again and raises
+                _log.debug("figures %s failed; drawn again in the parent", names,
+                           exc_info=True)
+            i += 1
+        code = 0
+    except BaseException:  # noqa: BLE001 -- the parent draws what was not delivered
+        _log.debug("figure process stopped", exc_info=True)
+    finally:
+        try:
+            conn.send((drawn, done, caught))
+        finally:
+            os._exit(code)

@@ -1,0 +1,90 @@
+"""Stages run beside each other (``search.parallel``): the same outputs as one process, and
+nothing lost when a child fails.
+
+The reference is the same search run in one process (``PEAKSIFT_INLINE=1``): the forked
+stages must give identical numbers and the same files, as the execution engines must give
+the serial engine's bits (DEVELOPERS.md, "Add an execution engine").
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import pytest
+
+import peaksift
+from peaksift.errors import ConfigError
+from peaksift.search import parallel
+
+REPO = Path(__file__).resolve().parents[1]
+
+pytestmark = pytest.mark.skipif(not parallel.forking(),
+                                reason="stages run beside each other only where fork is safe")
+
+
+def _config(small_demo, systematics: bool = False):
+    """The demo search on the small demo set, quick (few toys and limit points, PNG only);
+    ``systematics``: with the demo's [systematics] (the envelope curve on the scan figure)."""
+    from peaksift.config import load_config
+
+    off = {} if systematics else {"systematics__mass_scale": 0.0,
+                                  "systematics__mass_resolution": 0.0,
+                                  "systematics__background_families": []}
+    return load_config(REPO / "demo_data" / "search.toml").with_overrides(
+        input__files=[str(p) for p in sorted(small_demo.glob("*.parquet"))],
+        significance__toys=20, limits__points=5, output__formats=["png"], **off)
+
+
+def _numbers(out: Path) -> dict:
+    d = json.loads((out / "results.json").read_text())
+    return {k: d[k] for k in ("fit", "background_fit", "scan", "best", "limits",
+                              "calibration")}
+
+
+@pytest.mark.slow  # two whole searches with systematics
+def test_forked_stages_give_the_one_process_result(small_demo, tmp_path, monkeypatch):
+    cfg = _config(small_demo, systematics=True)
+    peaksift.run_search(cfg, out=tmp_path / "beside", progress=False)
+    monkeypatch.setenv("PEAKSIFT_INLINE", "1")
+    peaksift.run_search(cfg, out=tmp_path / "inline", progress=False)
+    assert _numbers(tmp_path / "beside") == _numbers(tmp_path / "inline")
+    names = {p.name for p in (tmp_path / "beside" / "figures").iterdir()}
+    assert names == {p.name for p in (tmp_path / "inline" / "figures").iterdir()}
+    assert {"spectrum.png", "pvalue_scan.png", "limits.png", "calibration.png",
+            "background_envelope.png"} <= names
+    assert not any(n.startswith(".") for n in names)  # no listing or temporary left
+
+
+def test_a_figure_the_child_fails_to_draw_is_drawn_by_the_parent(small_demo, tmp_path,
+                                                                 monkeypatch):
+    from peaksift import plotting
+
+    parent = os.getpid()
+    real = plotting.search_figures
+
+    def fails_in_child(result, outdir, **kw):
+        if os.getpid() != parent and "limits" in kw.get("names", ()):
+            raise RuntimeError("drawing failed in the child")
+        return real(result, outdir, **kw)
+
+    monkeypatch.setattr(plotting, "search_figures", fails_in_child)
+    res = peaksift.run_search(_config(small_demo), out=tmp_path / "out", progress=False)
+    assert (tmp_path / "out" / "figures" / "limits.png").stat().st_size > 0
+    assert "limits" in res.figures
+
+
+def _refuse(x: int) -> int:
+    raise ConfigError(f"limits.points = {x}: refused as asked by the test")
+
+
+def test_an_error_beside_is_raised_here_with_its_message():
+    job = parallel.Beside(_refuse, 7)
+    with pytest.raises(ConfigError, match="limits.points = 7"):
+        job.result()
+
+
+def test_a_value_computed_beside_comes_back():
+    job = parallel.Beside(sorted, [3, 1, 2])
+    assert job.result() == [1, 2, 3]
