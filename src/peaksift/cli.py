@@ -221,9 +221,9 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
     from ._format import fixed, number
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
-    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("mass"):
+    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
         return []
-    ms = [float("inf") if m is None else float(m) for m in w["mass"]]
+    ms = [float("inf") if m is None else float(m) for m in w["masses"]]
     try:
         i = min(range(len(ms)), key=lambda j: abs(ms[j] - float(mass)))
     except (TypeError, ValueError):

@@ -198,8 +198,8 @@ def _h(s: Any) -> str:
 
 
 #: a number as the report writes it: sign, digits with thousands commas, one decimal point,
-#: an exponent; "n/a" stands in for one (a version such as 3.11.7 is not a number)
-_NUMERIC = re.compile(r"^[\u2212+\-]?(\d{1,3}(,\d{3})+|\d+)(\.\d+)?(e[+-]?\d+)?$|^n/a$")
+#: an exponent; "n/a" and "-" stand in for one (a version such as 3.11.7 is not a number)
+_NUMERIC = re.compile(r"^[\u2212+\-]?(\d{1,3}(,\d{3})+|\d+)(\.\d+)?(e[+-]?\d+)?$|^n/a$|^-$")
 
 
 def _html_table(head: Sequence[str], rows: Sequence[Sequence[str]], *,

@@ -307,6 +307,11 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Largest accepted spurious signal, as a fraction of the statistical error of "
              "the signal yield (common practice 0.2); candidates above it are flagged.",
              lo=0.0, lo_open=True),
+        _Key("spurious_uncertainty", "bool", False,
+             "Add each candidate's largest spurious signal (needs `template`) to the "
+             "statistical error of the signal yield in quadrature (Z / sqrt(1 + r^2), r the "
+             "spurious signal over the statistical error) in the scan, the envelope and "
+             "their toys (not in the limits)."),
         _Key("sqrt_s", "float", None,
              "Centre-of-mass energy (GeV) of the dijet family; default twice the window's "
              "upper edge.", lo=0.0, lo_open=True, nullable=True),

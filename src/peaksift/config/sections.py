@@ -225,6 +225,7 @@ class SystematicsConfig:
     penalty: float = 1.0
     template: str = ""
     spurious_limit: float = 0.2
+    spurious_uncertainty: bool = False
     sqrt_s: float | None = None
 
     @property
