@@ -30,7 +30,7 @@ from .common import (
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
 from .identification import dedx_identification
-from .parallel import Beside, FigureWorker
+from .parallel import Beside, FigureWorker, cpu_seconds
 from .result import SearchResult
 from .signal import search_signal_model
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
@@ -320,6 +320,10 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                             band=cfg.identification.band)
     clock.lap("figures (here)")
     drawn = {**drawer.finish(), **more}
+    # CPU seconds of each process of the run: the main line is the critical path, the
+    # others may overlap it (their sum over the cores bounds the wall time from below)
+    prov["cpu"] = {"main": round(cpu_seconds(), 2), "figures": round(drawer.cpu, 2),
+                   **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {})}
     order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}
