@@ -117,7 +117,7 @@ def test_systematics_block_with_and_without(run):
     assert any("mass scale" in p for p in lim["profiled"])
     md = (run["out"] / "report.md").read_text()
     assert "## Background model" in md and "background_envelope.png" in md
-    assert "observed, with systematics" in md
+    assert "observed, with systematics" in md and "expected, plain" in md
 
 
 def test_candidate_count_matches_the_spectrum_file(run):

@@ -278,7 +278,11 @@ def _cmd_search(args: argparse.Namespace) -> int:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars
         warnings.simplefilter("always")
-        res = run_search(_config(args), out=args.out, unblind=args.unblind, toys=args.toys,
+        from .search.combination import is_combination
+
+        # a combination config names its channels' configs: run_search reads them itself
+        config = args.config if is_combination(args.config) else _config(args)
+        res = run_search(config, out=args.out, unblind=args.unblind, toys=args.toys,
                          seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
                          share_folder=args.share_folder)
     numeric = [w for w in caught if issubclass(w.category, RuntimeWarning)]
