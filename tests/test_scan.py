@@ -105,7 +105,7 @@ def test_scan_finds_injected_peak_and_refits():
     assert r.refit is not None and r.refit.valid
     assert abs(r.refit.peak_mass - 250.0) < 3 * r.refit.peak_mass_error
     d = r.to_dict()
-    for key in ("mass", "z_local", "p_local", "signal_yield"):
+    for key in ("masses", "z_local", "p_local", "signal_yield"):
         assert len(d[key]) == 121
     json.dumps(d)  # JSON-ready
 

@@ -191,10 +191,12 @@ def fit(
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
     inner_free = np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int)
     if d.binned:
-        scale = d.hist.scaled_poisson_factors()
+        # read-only arrays shared by every start's cost: their per-bin work is kept
+        scale = _read_only(d.hist.scaled_poisson_factors())
+        edges, counts = _read_only(d.edges), _read_only(d.n)
 
         def plain_cost(v: np.ndarray) -> Any:
-            return BinnedCost(model, v, inner_free, cons_idx, d.edges, d.n, scale)
+            return BinnedCost(model, v, inner_free, cons_idx, edges, counts, scale)
     else:
         def plain_cost(v: np.ndarray) -> Any:
             return UnbinnedCost(model, v, inner_free, cons_idx, d.x, d.w)
@@ -213,8 +215,9 @@ def fit(
                        cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
                        cost.ncall, floors)
     sh = start_bins(d)
-    starts = fit_starts(model, sh.edges, sh.values(), sh.scaled_poisson_factors(), base,
-                        is_fixed, given, lower, upper, d.total, retries)
+    starts = fit_starts(model, _read_only(sh.edges), _read_only(sh.values()),
+                        _read_only(sh.scaled_poisson_factors()), base, is_fixed, given, lower,
+                        upper, d.total, retries)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
     best, tried, calls = None, [], 0
@@ -282,6 +285,15 @@ def fit(
 #: Delta(-2 ln L) by which a later start must beat an earlier valid minimum before the
 #: result says so (below it the two are the same minimum for any purpose; our choice)
 _LOWER_MINIMUM_NOTE = 0.1
+
+
+def _read_only(a: np.ndarray) -> np.ndarray:
+    """A read-only float copy of ``a``: costs built on it share their per-bin work (a
+    shape's logarithms of the edges, the compiled kernels' clipped edges, the counts'
+    saturated term)."""
+    out = np.array(a, float)
+    out.flags.writeable = False
+    return out
 
 
 #: a start whose path comes within this squared distance (in units of the best minimum's

@@ -13,6 +13,9 @@ What is here, and which piece to use when
   window; expected bin contents and densities from the shapes.
 * :mod:`.cost`        -- :class:`BinnedCost`, :class:`UnbinnedCost`: a Model on data, over its
   free parameters, with constraints (value, gradient, information, observed Hessian).
+* :mod:`.kernels`     -- compiled (numba) fast path of :class:`BinnedCost` for the common
+  shapes, the coarse scan and small Newton solves; the numpy path is the reference
+  (``PEAKSIFT_NUMPY_COST=1`` selects it everywhere).
 * :mod:`.derived`     -- :class:`Tie`, :class:`TiedCost`: a parameter computed from another
   inside the cost (sigma = resolution(mass)), with the chain rule in every derivative.
 * :mod:`.joint`       -- :class:`JointCost`: several channels' costs as one (the product of

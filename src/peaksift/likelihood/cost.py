@@ -124,25 +124,23 @@ class BinnedCost(_Cost):
                  constraints: Sequence[tuple[int, Constraint]], edges: np.ndarray,
                  n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None = None) -> None:
         super().__init__(model, full, free, constraints)
-        self.edges = np.array(edges, float)
-        self.edges.flags.writeable = False  # shapes may keep per-edges work for this array
-        self.mask = None if mask is None or np.all(mask) else np.asarray(mask, bool)
-        m = slice(None) if self.mask is None else self.mask
-        self.s = np.asarray(scale, float)[m]
-        self.unit_scale = bool(np.all(self.s == 1.0))
-        self.counts = np.asarray(n, float)[m]
-        self.n = self.counts * self.s  # effective counts
-        # constant part of the saturated form: sum(n~ ln n~ - n~) - sum(n~ ln s)
-        self._const = float(saturated_term(self.n)) - float(self.n @ np.log(self.s))
+        if isinstance(edges, np.ndarray) and edges.dtype == float and not edges.flags.writeable:
+            self.edges = edges  # shared by the caller's costs (fit's starts): no copy
+        else:
+            self.edges = np.array(edges, float)
+            self.edges.flags.writeable = False  # shapes may keep per-edges work for it
+        (self.mask, self.s, self.unit_scale, self.counts, self.n,
+         self._const) = _binned_data(n, scale, mask)
         self._plan = []
         for shape, sl, iy in model.blocks:
             rows = [self._row.get(i, -1) for i in range(sl.start, sl.stop)]
             self._plan.append((shape, sl, iy, any(r >= 0 for r in rows), rows,
                                self._row.get(iy, -1)))
 
-        self._jac = np.zeros((self.free.size, self.n.size))
         self._state: tuple | None = None
         self._fused = _fused_path(self)
+        # the numpy path's Jacobian, allocated when that path first runs
+        self._jac = np.zeros((self.free.size, self.n.size)) if self._fused is None else None
 
     def _fractions(self, shape, p, need: bool, rows):
         fast = self._fused.fractions(shape, p) if self._fused is not None else None
@@ -190,6 +188,8 @@ class BinnedCost(_Cost):
                 self._state = (x.tobytes(), mu, None)
                 val = self._add_constraints(x, val + self._const, g, fisher)
                 return val, g, fisher
+        if self._jac is None:
+            self._jac = np.zeros((self.free.size, self.n.size))
         jac = self._jac
         mu, blocks = self.expectation(x, jac)
         self._state = (x.tobytes(), mu, blocks)
@@ -277,6 +277,39 @@ class BinnedCost(_Cost):
                         hess[rk, rj] += float(r @ d2[k])
         self._constraint_hessian(x, hess)
         return 0.5 * (hess + hess.T)
+
+
+#: the derived data of recent (counts, scale, mask) arrays, with the arrays themselves (so
+#: their ids stay valid): the starts of one fit build several costs on the same data
+_RECENT: list = []
+
+
+def _frozen(a: Any) -> bool:
+    return isinstance(a, np.ndarray) and not a.flags.writeable
+
+
+def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None):
+    """(mask or None, scale, unit scale?, counts, effective counts, constant of the
+    saturated form) of the used bins; read-only arrays, kept for the last few read-only
+    inputs (the costs of one fit share them)."""
+    for entry in _RECENT:
+        if entry[0] is n and entry[1] is scale and entry[2] is mask:
+            return entry[3]
+    used = None if mask is None or np.all(mask) else np.asarray(mask, bool)
+    m = slice(None) if used is None else used
+    s = np.asarray(scale, float)[m]
+    counts = np.asarray(n, float)[m]
+    eff = counts * s  # effective counts
+    # constant part of the saturated form: sum(n~ ln n~ - n~) - sum(n~ ln s)
+    const = float(saturated_term(eff)) - float(eff @ np.log(s))
+    for a in (s, counts, eff):
+        a.flags.writeable = False
+    out = (used, s, bool(np.all(s == 1.0)), counts, eff, const)
+    # kept only for read-only inputs: an array changed in place must not find stale data
+    if all(_frozen(a) for a in (n, scale)) and (mask is None or _frozen(mask)):
+        _RECENT.insert(0, (n, scale, mask, out))
+        del _RECENT[6:]
+    return out
 
 
 def _fused_path(cost: BinnedCost) -> Any:
