@@ -14,7 +14,8 @@ checks, process exit).
 ``--no-systematics`` runs the config without its ``[systematics]`` table (a copy in a
 temporary folder, input paths made absolute).  ``--baseline SRC`` also runs another source
 tree (e.g. a ``git archive`` of main unpacked into /tmp) in alternate rounds, so the two
-are compared at the same load.  The machine's load average is printed: on a shared
+are compared at the same load; ``--inline`` also runs this tree with ``PEAKSIFT_INLINE=1``
+(every stage in one process, in order: what the stages beside each other save).  The machine's load average is printed: on a shared
 machine wall times are only comparable at similar load; CPU times are steadier.
 """
 
@@ -63,10 +64,15 @@ def main() -> None:
     ap.add_argument("--no-systematics", action="store_true")
     ap.add_argument("--baseline", default=None, metavar="SRC",
                     help="another source tree to run in alternate rounds")
+    ap.add_argument("--inline", action="store_true",
+                    help="also run this tree with every stage in one process")
     args = ap.parse_args()
-    trees = {"this tree": str(REPO / "src")}
+    here = str(REPO / "src")
+    trees: dict[str, tuple[str, dict[str, str]]] = {"this tree": (here, {})}
+    if args.inline:
+        trees["this tree, one process"] = (here, {"PEAKSIFT_INLINE": "1"})
     if args.baseline:
-        trees["baseline"] = str(Path(args.baseline).resolve())
+        trees["baseline"] = (str(Path(args.baseline).resolve()), {})
     with tempfile.TemporaryDirectory() as tmpd:
         tmp = Path(tmpd)
         config = Path(args.config).resolve()
@@ -75,11 +81,11 @@ def main() -> None:
         runs: dict[str, list[tuple[float, float, dict[str, float]]]] = {k: [] for k in trees}
         startup: dict[str, list[float]] = {k: [] for k in trees}
         for r in range(args.runs):
-            for name, src in trees.items():
-                env = {**os.environ, "PYTHONPATH": src}
+            for name, (src, extra) in trees.items():
+                env = {**os.environ, "PYTHONPATH": src, **extra}
                 startup[name].append(_run([sys.executable, "-c", "import peaksift.search"],
                                           env)[0])
-                out = tmp / f"out{r}_{len(runs[name])}_{name.replace(' ', '_')}"
+                out = tmp / f"out{r}_{len(runs[name])}_{name.replace(' ', '_').replace(',', '')}"
                 wall, cpu = _run([sys.executable, "-m", "peaksift", "search", str(config),
                                   "-q", "--out", str(out)], env)
                 timings = json.loads((out / "results.json").read_text())["provenance"][

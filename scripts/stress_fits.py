@@ -404,10 +404,15 @@ def main(argv: list[str] | None = None) -> int:
                     "remaining cells, cutting a cell's toys when its share is spent")
     ap.add_argument("--min-toys", type=int, default=10,
                     help="toys a cell runs whatever the deadline (default 10)")
-    ap.add_argument("--tables", metavar="LOG", help="only print the tables of a --log file")
+    ap.add_argument("--tables", metavar="LOG", help="only print the tables of --log files "
+                    "(comma-separated)")
+    ap.add_argument("--shuffle", type=int, metavar="SEED", help="run the cells in an order "
+                    "shuffled with this seed (spreads a time-limited run over every shape)")
     args = ap.parse_args(argv)
     if args.tables:
-        results = read_log(args.tables)
+        results = []
+        for path in args.tables.split(","):
+            results += read_log(path)
         print_tables(results)
         return 1 if any(st.raw or st.scan_raw for st in results) else 0
     warnings.simplefilter("ignore")  # data warnings of awkward toys are expected here
@@ -415,6 +420,9 @@ def main(argv: list[str] | None = None) -> int:
     results = read_log(args.log) if args.log else []
     done = {st.label for st in results}
     todo = [spec for spec in cells(patterns) if spec[0] not in done]
+    if args.shuffle is not None:
+        order = np.random.default_rng(args.shuffle).permutation(len(todo))
+        todo = [todo[i] for i in order]
     t_start = time.perf_counter()
     for i, spec in enumerate(todo):
         budget = (seconds_until(args.deadline) / (len(todo) - i) if args.deadline

@@ -16,7 +16,8 @@ from scipy import stats
 import peaksift
 from peaksift import Resolution
 from peaksift.histogram import MassHistogram
-from peaksift.stats.channels import Channel, combine, combined_limits, combined_toy_scans
+from peaksift.stats.channel_limits import combined_limits
+from peaksift.stats.channels import Channel, combine, combined_toy_scans
 
 SIGMA = 1.5
 WINDOW = (110.0, 190.0)

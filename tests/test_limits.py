@@ -169,7 +169,7 @@ def test_blinded_limits_show_expected_only(tmp_path):
     assert np.all(np.isnan(r.observed[inside])) and np.all(np.isfinite(r.observed[~inside]))
     assert np.all(np.isfinite(r.expected)) and np.all(np.isfinite(r.expected_plus2))
     d = r.to_dict()
-    for key in ("mass", "observed", "expected", "expected_minus2", "expected_minus1",
+    for key in ("masses", "observed", "expected", "expected_minus2", "expected_minus1",
                 "expected_plus1", "expected_plus2", "unit", "cl", "method"):
         assert key in d
     assert all(d["observed"][i] is None for i in np.flatnonzero(inside))

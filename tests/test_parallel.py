@@ -43,6 +43,7 @@ def _numbers(out: Path) -> dict:
                               "calibration")}
 
 
+@pytest.mark.slow  # two whole searches with systematics
 def test_forked_stages_give_the_one_process_result(small_demo, tmp_path, monkeypatch):
     cfg = _config(small_demo, systematics=True)
     peaksift.run_search(cfg, out=tmp_path / "beside", progress=False)

@@ -106,18 +106,18 @@ def test_systematics_block_with_and_without(run):
     assert set(sy["nuisance_pulls"]) == {"mass_scale", "mass_resolution"}
     assert all(abs(v) < 5 for v in sy["nuisance_pulls"].values())
     lim = sy["limits"]  # side by side: the plain limits and those with systematics
-    assert lim["without_systematics"]["mass"] == r["limits"]["mass"]
+    assert lim["without_systematics"]["masses"] == r["limits"]["masses"]
     assert lim["without_systematics"]["observed"] == r["limits"]["observed"]
     w = lim["with_systematics"]
-    assert w["mass"] == r["limits"]["mass"] and w["functions"] == env["functions"]
+    assert w["masses"] == r["limits"]["masses"] and w["functions"] == env["functions"]
     # the bands ordered (Cowan et al. 2011, sec. 4.3) and the limits positive
-    for i in range(len(w["mass"])):
+    for i in range(len(w["masses"])):
         assert 0 < w["expected_minus2"][i] <= w["expected"][i] <= w["expected_plus2"][i]
         assert w["observed"][i] > 0
     assert any("mass scale" in p for p in lim["profiled"])
     md = (run["out"] / "report.md").read_text()
     assert "## Background model" in md and "background_envelope.png" in md
-    assert "observed, with systematics" in md
+    assert "observed, with systematics" in md and "expected, plain" in md
 
 
 def test_candidate_count_matches_the_spectrum_file(run):

@@ -221,9 +221,9 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
     from ._format import fixed, number
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
-    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("mass"):
+    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
         return []
-    ms = [float("inf") if m is None else float(m) for m in w["mass"]]
+    ms = [float("inf") if m is None else float(m) for m in w["masses"]]
     try:
         i = min(range(len(ms)), key=lambda j: abs(ms[j] - float(mass)))
     except (TypeError, ValueError):
@@ -278,7 +278,11 @@ def _cmd_search(args: argparse.Namespace) -> int:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars
         warnings.simplefilter("always")
-        res = run_search(_config(args), out=args.out, unblind=args.unblind, toys=args.toys,
+        from .search.combination import is_combination
+
+        # a combination config names its channels' configs: run_search reads them itself
+        config = args.config if is_combination(args.config) else _config(args)
+        res = run_search(config, out=args.out, unblind=args.unblind, toys=args.toys,
                          seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
                          share_folder=args.share_folder)
     numeric = [w for w in caught if issubclass(w.category, RuntimeWarning)]

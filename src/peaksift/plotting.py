@@ -357,6 +357,7 @@ def _with_systematics(ax: Any, env: Any, best: Any) -> None:
 
     m = np.asarray(env["mass"], float)
     z = np.array([np.nan if v is None else v for v in env["z_local"]], float)
+    rank: dict[Any, int] = {}  # legend order: each curve followed by its best point
     with figure_style():
         for line in ax.get_lines():
             label = str(line.get_label())
@@ -364,17 +365,22 @@ def _with_systematics(ax: Any, env: Any, best: Any) -> None:
                 line.set_label("observed, no systematics")
                 line.set_linewidth(0.9)
                 line.set_alpha(0.55)
+                rank[line] = 0
             elif label.startswith("best:"):  # the mass is in the header
                 line.set_label(f"its best: $Z_{{local}}$ = {label.rpartition('= ')[2]}")
                 line.set_alpha(0.55)
-        ax.plot(m, ndtr(-z), color=COLORS["signal"], lw=1.8,
-                label="observed, with systematics", zorder=4)
+                rank[line] = 1
+        rank[ax.plot(m, ndtr(-z), color=COLORS["signal"], lw=1.8,
+                     label="observed, with systematics", zorder=4)[0]] = 2
         b = dict(best or {})
         if b.get("mass") is not None and b.get("z_local") is not None:
-            ax.plot([float(b["mass"])], [float(ndtr(-float(b["z_local"])))], ls="none",
-                    marker="o", ms=6, color=COLORS["signal"], zorder=5,
-                    label=f"its best: $Z_{{local}}$ = {fixed(b['z_local'])}")
-        ax.legend(loc="lower left", fontsize=8.5)
+            rank[ax.plot([float(b["mass"])], [float(ndtr(-float(b["z_local"])))], ls="none",
+                         marker="o", ms=6, color=COLORS["signal"], zorder=5,
+                         label=f"its best: $Z_{{local}}$ = {fixed(b['z_local'])}")[0]] = 3
+        handles, names = ax.get_legend_handles_labels()
+        keep = sorted(range(len(handles)), key=lambda i: (rank.get(handles[i], 4), i))
+        ax.legend([handles[i] for i in keep], [names[i] for i in keep], loc="lower left",
+                  fontsize=8.5)
 
 
 def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = None,
@@ -427,7 +433,31 @@ def limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence
 def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
                    labels: FigureLabels) -> Path:
     fig = result.limits.plot(run=labels.run, symbol=labels.symbol)
+    lim_s = ((getattr(result, "systematics", None) or {}).get("limits") or {})
+    if lim_s.get("with_systematics"):
+        _limits_with_systematics(fig.axes[0], lim_s["with_systematics"])
     return save(fig, outdir, "limits", formats)
+
+
+def _limits_with_systematics(ax: Any, w: Any) -> None:
+    """The limits with every systematic profiled (mass scale, resolution, background
+    function as well as L and efficiency) over the plain ones, which carry only L and
+    efficiency: a reader must not take one for the other."""
+    m = np.asarray(w["masses"], float)
+
+    def arr(key: str) -> np.ndarray:
+        return np.array([np.nan if v is None else v for v in w[key]], float)
+
+    with figure_style():
+        for line in ax.get_lines():
+            label = str(line.get_label())
+            if label in ("observed", "expected"):
+                line.set_label(f"{label}, L and \u03b5 only")
+        ax.plot(m, arr("expected"), color=COLORS["signal"], lw=1.3, ls="--",
+                label="expected, all systematics", zorder=4)
+        ax.plot(m, arr("observed"), color=COLORS["signal"], lw=1.6, marker="o", ms=3,
+                label="observed, all systematics", zorder=5)
+        ax.legend(loc="upper right", ncol=2, fontsize=8.5)
 
 
 # ------------------------------------------------------------- background envelope
@@ -447,17 +477,20 @@ def envelope_figure(systematics: Any, *, labels: FigureLabels | None = None) -> 
     with figure_style():
         greys = ("#5b6270", "#8a8f98", "#1f6f8b", "#b07a2a", "#6a4c93", "#2e7d4f")
         top = 0.0
+        # the envelope first, broad and pale, so the function it follows shows through it
+        e = np.asarray(prof["envelope"], float)
+        ax.plot(s, e, lw=5.0, color=COLORS["signal"], alpha=0.35, label="envelope",
+                solid_capstyle="butt", zorder=2)
         for k, (label, curve) in enumerate(prof["curves"].items()):
             c = np.asarray(curve, float)
-            ax.plot(s, c, lw=1.1, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
-                    color=greys[k % len(greys)], label=label)
+            ax.plot(s, c, lw=1.2, ls=_CURVE_STYLES[k % len(_CURVE_STYLES)],
+                    color=greys[k % len(greys)], label=label, zorder=3)
             top = max(top, float(np.nanmin(c)))
-        e = np.asarray(prof["envelope"], float)
-        ax.plot(s, e, lw=2.6, color=COLORS["signal"], alpha=0.85, label="envelope", zorder=4)
         ax.axhline(1.0, color=COLORS["accent"], lw=0.8, ls=":")
         ax.text(s[-1], 1.0, " 68%", va="center", ha="left", color=COLORS["accent"],
                 fontsize=9, clip_on=False)
-        ax.set_ylim(-0.3, max(6.0, min(top + 4.0, 40.0)))
+        # every curve's minimum in range, with room above it for the legend
+        ax.set_ylim(-0.3, max(6.0, min(1.35 * top + 4.0, 55.0)))
         ax.set_xlim(s[0], s[-1])
         ax.set_xlabel("signal yield [events]")
         ax.set_ylabel(r"$-2\,\Delta\ln L$ + penalty")

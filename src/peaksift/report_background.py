@@ -41,7 +41,7 @@ def _limit_blocks(lim: Any) -> list[Block]:
     if not isinstance(lim, Mapping) or not lim.get("with_systematics"):
         return []
     w, wo = lim["with_systematics"], lim["without_systematics"]
-    mass = list(w.get("mass") or [])
+    mass = list(w.get("masses") or [])
     if not mass:
         return []
     pick = sorted({round(i * (len(mass) - 1) / max(_LIMIT_ROWS - 1, 1))
@@ -56,11 +56,12 @@ def _limit_blocks(lim: Any) -> list[Block]:
     unit = w.get("unit") or ""
     cl = 100 * float(w.get("cl") or 0.95)
     out: list[Block] = [
-        ("p", (f"Upper limits at {cl:g}% CL ({unit}), asymptotic CLs, without and with "
-               "systematics; profiled with systematics: "
-               + ", ".join(lim.get("profiled") or []) + ".")),
-        ("table", ["mass [GeV]", "observed, no systematics", "observed, with systematics",
-                   "expected, no systematics", "expected, with systematics"], rows)]
+        ("p", (f"Upper limits at {cl:g}% CL ({unit}), CLs: the plain ones (the single "
+               "function of the model with the luminosity and efficiency uncertainties, as "
+               "in the Upper limits section) beside those with systematics (asymptotic), which "
+               "profile " + ", ".join(lim.get("profiled") or []) + ".")),
+        ("table", ["mass [GeV]", "observed, plain", "observed, with systematics",
+                   "expected, plain", "expected, with systematics"], rows)]
     out += [("p", f"Note: {n}.") for n in lim.get("notes") or []]
     return out
 

@@ -51,7 +51,10 @@ CAPTIONS = {
                    "profiled as an envelope, signal nuisances profiled) and the thin one is "
                    "the single-function scan without them.",
     "limits": "Upper limits at each mass hypothesis: observed, and the expected median with its "
-              "68% and 95% bands under the background-only hypothesis.",
+              "68% and 95% bands under the background-only hypothesis. With systematics, "
+              "the limits with every one profiled (mass scale, resolution, background "
+              "function, L and ε) are drawn over these, which carry the L and ε "
+              "uncertainties only.",
     "candidates": "Transverse momentum (logarithmic scale) and rapidity of the pairs, for "
                   "the candidates in the search window (stated on the figure).",
     "calibration": "Calibration fit of the standard-candle peak in its own window.",

@@ -183,11 +183,16 @@ def _check_signal_model(sm: dict[str, Any], res: Mapping[str, Any], base_dir: Pa
         raise ConfigError(f"{where}: give signal_model.files (samples) or signal_model.saved "
                           "(a previous results.json), not both")
     n = len(sm["files"])
-    if n and (len(sm["masses"]) != n or len(sm["generated"]) != n):
+    if sm["mass_column"] and sm["masses"]:
+        raise ConfigError(f"{where}: give signal_model.masses or signal_model.mass_column "
+                          "(the samples' generated masses read from a column), not both")
+    n_mass = n if sm["mass_column"] else len(sm["masses"])
+    if n and (n_mass != n or len(sm["generated"]) != n):
         raise ConfigError(
             f"{where}: signal_model.files has {n} samples but masses has "
             f"{len(sm['masses'])} and generated {len(sm['generated'])}; give one generated "
-            "mass and one number of generated events per file")
+            "mass and one number of generated events per file (or signal_model.mass_column for "
+            "the masses)")
     if n and any(g <= 0 for g in sm["generated"]):
         raise ConfigError(f"{where}: signal_model.generated must be > 0 for every sample")
     if n:

@@ -307,6 +307,11 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Largest accepted spurious signal, as a fraction of the statistical error of "
              "the signal yield (common practice 0.2); candidates above it are flagged.",
              lo=0.0, lo_open=True),
+        _Key("spurious_uncertainty", "bool", False,
+             "Add each candidate's largest spurious signal (needs `template`) to the "
+             "statistical error of the signal yield in quadrature (Z / sqrt(1 + r^2), r the "
+             "spurious signal over the statistical error) in the scan, the envelope and "
+             "their toys (not in the limits)."),
         _Key("sqrt_s", "float", None,
              "Centre-of-mass energy (GeV) of the dijet family; default twice the window's "
              "upper edge.", lo=0.0, lo_open=True, nullable=True),
@@ -331,7 +336,12 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Simulated signal samples, one file (or glob) per generated mass, in the order "
              "of `masses`; the search's own selection and pairing run on each. Empty: no "
              "signal model from samples."),
-        _Key("masses", "floats", [], "Generated mass (GeV) of each sample in `files`."),
+        _Key("masses", "floats", [],
+             "Generated mass (GeV) of each sample in `files` (or give `mass_column`)."),
+        _Key("mass_column", "str", "",
+             "A per-event column of the samples holding the generated (true) mass in GeV; "
+             "each sample's mass is then the median of that column over its events, and "
+             "`masses` is left out. Empty: the masses come from `masses`."),
         _Key("generated", "floats", [],
              "Number of generated events (or sum of generator weights) of each sample."),
         _Key("shape", "str", "crystalball",

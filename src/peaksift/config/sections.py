@@ -21,6 +21,7 @@ class SignalModelConfig:
 
     files: tuple[str, ...] = ()
     masses: tuple[float, ...] = ()
+    mass_column: str = ""
     generated: tuple[float, ...] = ()
     shape: str = "crystalball"
     order: int = 1
@@ -224,6 +225,7 @@ class SystematicsConfig:
     penalty: float = 1.0
     template: str = ""
     spurious_limit: float = 0.2
+    spurious_uncertainty: bool = False
     sqrt_s: float | None = None
 
     @property

@@ -321,7 +321,10 @@ def minimize_stacked(value: Callable, grad_hess: Callable, x0: np.ndarray,
         others belong to parameters the problem profiles inside ``value``.
 
     The damping starts at 1e-3, falls tenfold on every accepted step (to 1e-9) and rises
-    tenfold on every rejected one.
+    tenfold on every rejected one.  A parameter sitting on a bound with its gradient
+    pointing outward is held there for the step (the others take the Newton step of the
+    problem with it fixed), so a pinned parameter does not drag the free ones along a step
+    that clipping then cuts short.
     """
     x = np.array(x0, dtype=float)
     nb = x.shape[0]
@@ -348,6 +351,7 @@ def minimize_stacked(value: Callable, grad_hess: Callable, x0: np.ndarray,
         if step_tol is not None:
             with np.errstate(all="ignore"):
                 err = np.sqrt(np.abs(1.0 / np.diagonal(hess, axis1=1, axis2=2)))
+        grad, hess = _pin_at_bounds(xi, grad, hess, lower, upper, step_columns)
         todo = np.ones(idx.size, bool)
         for _try in range(tries):
             r = np.flatnonzero(todo)
@@ -377,6 +381,23 @@ def minimize_stacked(value: Callable, grad_hess: Callable, x0: np.ndarray,
     if hess_last is None:
         hess_last = np.zeros((nb, 0, 0))
     return StackedMinimum(x, nll, state, hess_last, converged, stalled, it)
+
+
+def _pin_at_bounds(x: np.ndarray, grad: np.ndarray, hess: np.ndarray, lower: np.ndarray,
+                   upper: np.ndarray, step_columns: slice) -> tuple[np.ndarray, np.ndarray]:
+    """Gradient and Hessian with the rows of parameters on a bound whose descent direction
+    leaves it replaced by a unit row and a zero gradient (their step is then 0)."""
+    gx = grad[:, step_columns]
+    pinned = ((x <= lower) & (gx > 0)) | ((x >= upper) & (gx < 0))
+    if not pinned.any():
+        return grad, hess
+    pin = np.zeros(grad.shape, bool)
+    pin[:, np.arange(grad.shape[1])[step_columns]] = pinned
+    keep = ~pin
+    hess = hess * keep[:, :, None] * keep[:, None, :]
+    i = np.arange(grad.shape[1])
+    hess[:, i, i] += pin
+    return np.where(pin, 0.0, grad), hess
 
 
 def first_error(hess: np.ndarray) -> np.ndarray:

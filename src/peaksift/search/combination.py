@@ -6,21 +6,30 @@ its own complete search (its input or selection, objects, pairing, window and bi
 background, signal model or resolution, efficiency and luminosity), run through the same
 code as ``peaksift search`` on that file alone, so each channel's numbers are exactly those
 of its own search.  The combination then fits all channels together with one sigma x B
-(:func:`peaksift.stats.channels.combine` and :func:`~peaksift.stats.channels.combined_limits`).
+(:func:`peaksift.stats.channels.combine` and
+:func:`~peaksift.stats.channel_limits.combined_limits`).
 
 .. code-block:: toml
 
     [combination]
     channels = ["dimuon.toml", "dielectron.toml"]   # relative to this file
     names = ["dimuon", "dielectron"]                 # default: the files' stems
+    shared_luminosity = true     # one luminosity (and its uncertainty) for every channel
 
     [output]
     dir = "combined_out"
 
 The first channel gives the mass grid, the significance settings (method, toys, seed,
-reference level) and the limit settings (confidence level, points); every channel needs
-``limits.luminosity`` (the same unit in all) and an efficiency (``[signal_model]`` or
-``limits.efficiency``).  Blinding is not supported in a combination yet (refused).
+reference level) and the limit settings (confidence level, points, method, toys); every
+channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
+(``[signal_model]`` or ``limits.efficiency``).  Each channel's
+``limits.luminosity_uncertainty`` and ``limits.efficiency_uncertainty`` enter the joint
+likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channels share one
+luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
+``[systematics]`` mass-scale and resolution factors are profiled in the combined scan and
+the asymptotic combined limits (not in the combination's toys); its background envelope
+stays in its own results (both said in the results and the report).  Blinding is not
+supported in a combination yet (refused).
 """
 
 from __future__ import annotations
@@ -44,7 +53,7 @@ if sys.version_info >= (3, 11):  # pragma: no cover - version switch
 else:  # pragma: no cover
     import tomli as _toml
 
-_KEYS = {"channels", "names"}
+_KEYS = {"channels", "names", "shared_luminosity"}
 
 
 def is_combination(config: Any) -> bool:
@@ -117,7 +126,8 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     nothing).  ``toys``, ``seed``, ``engine`` override every channel's settings.
     ``share_folder`` as for :func:`~peaksift.search.run_search` (the output-folder contract).
     """
-    from ..stats.channels import combine, combined_limits
+    from ..stats.channel_limits import combined_limits
+    from ..stats.channels import combine
     from .common import _scan_masses, _utc
     from .run import _search
     from .staging import _apply_overrides, _check_inputs, _staged
@@ -137,6 +147,10 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                           "configs, e.g. channels = [\"dimuon.toml\", \"dielectron.toml\"]")
     paths = [p if p.is_absolute() else base / p for p in (Path(f).expanduser() for f in files)]
     names = comb.get("names") or [p.stem for p in paths]
+    shared = comb.get("shared_luminosity", False)
+    if not isinstance(shared, bool):
+        raise ConfigError(f"{where}: combination.shared_luminosity must be true or false, got "
+                          f"{shared!r}")
     if len(names) != len(paths) or len(set(names)) != len(names):
         raise ConfigError(f"{where}: combination.names must give one distinct name per channel")
     cfgs = []
@@ -153,6 +167,10 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             raise ConfigError(f"{where}: channel {name!r} needs limits.luminosity (sigma x B "
                               "is shared by the channels through L eff)")
         cfgs.append(cfg)
+    if shared and len({c.limits.luminosity_uncertainty for c in cfgs}) > 1:
+        raise ConfigError(f"{where}: shared_luminosity = true but the channels give different "
+                          "limits.luminosity_uncertainty; one luminosity has one uncertainty "
+                          "(make them equal, or set shared_luminosity = false)")
     units = {c.limits.luminosity_unit for c in cfgs}
     if len(units) > 1:
         raise ConfigError(f"{where}: the channels give luminosities in {sorted(units)}; use "
@@ -168,7 +186,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                               target=None) for n, c in zip(names, cfgs)}
         first = cfgs[0]
         masses = _scan_masses(first)
-        channels = [_channel(n, c, results[n]) for n, c in zip(names, cfgs)]
+        channels = [_channel(n, c, results[n], shared) for n, c in zip(names, cfgs)]
         unit = first.limits.cross_section_unit
         cmb = combine(channels, masses, refit=False, unit=unit)
         sig = first.significance
@@ -178,14 +196,35 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         if first.limits.enabled:
             n = min(first.limits.points, masses.size)
             lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
-            lim = combined_limits(channels, lm, cl=first.limits.cl, unit=unit)
-        # the joint likelihood has no shape nuisances or background envelope yet: say so
-        # rather than let a reader take the combined Z for one with systematics
-        with_syst = [n for n, c in zip(names, cfgs) if c.systematics.enabled]
-        note = (f"the combination does not include the [systematics] of channel(s) "
-                f"{', '.join(with_syst)}: its numbers are without systematics (each "
-                "channel's own results show both)")
-        notes = (note,) if with_syst else ()
+            fl = first.limits
+            lim = combined_limits(channels, lm, cl=fl.cl, unit=unit, method=fl.method,
+                                  toys=fl.toys, seed=sig.seed,
+                                  toy_masses=list(fl.toy_masses) or None)
+        # the joint likelihood has the luminosity and efficiency uncertainties but no shape
+        # nuisances or background envelope yet: say so rather than let a reader take the
+        # combined Z for one with every systematic
+        notes: tuple[str, ...] = ()
+        with_shape = [n for n, c in zip(names, cfgs)
+                      if c.systematics.mass_scale or c.systematics.mass_resolution]
+        with_env = [n for n, c in zip(names, cfgs) if c.systematics.background_families]
+        if len(cfgs) == 1 and (with_shape or with_env):
+            notes += (("a combination of one channel is that channel's scan without its "
+                       "[systematics] (its own results show both)"),)
+        elif with_shape:
+            notes += ((f"the combined scan and the asymptotic combined limits profile the "
+                       f"[systematics] mass-scale and resolution factors of channel(s) "
+                       f"{', '.join(with_shape)}; the combination's toys (global significance, "
+                       "toy limits) leave them at 1"),)
+        if with_env and len(cfgs) > 1:
+            notes += ((f"the combination does not include the [systematics] background "
+                       f"envelope of "
+                       f"channel(s) {', '.join(with_env)} (each channel's own results show "
+                       "it); its numbers use each channel's configured background"),)
+        gauss = [n for n, c in zip(names, cfgs) if c.limits.constraint != "lognormal" and (
+            c.limits.luminosity_uncertainty or c.limits.efficiency_uncertainty)]
+        if gauss:
+            notes += ((f"channel(s) {', '.join(gauss)} ask for Gaussian normalisation "
+                      "constraints; the combination uses log-normal ones"),)
         res = CombinedSearchResult(channels=results, combination=cmb, best=best, limits=lim,
                                    source=source, outdir=target, notes=notes)
         if stage is not None:
@@ -193,45 +232,59 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     return res
 
 
-def _channel(name: str, cfg: Any, res: Any) -> Any:
+def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> Any:
     """The :class:`~peaksift.stats.channels.Channel` of one channel's search."""
     from ..stats.channels import Channel
     from .common import _scan_signal_name, _shape
 
     r = cfg.model.resolution
     bkg = _shape(cfg.model.background, cfg.model.background_options)
+    sy = cfg.systematics
+    norms = {"luminosity_uncertainty": float(cfg.limits.luminosity_uncertainty),
+             "efficiency_uncertainty": float(cfg.limits.efficiency_uncertainty),
+             "luminosity_group": "shared" if shared_luminosity else None,
+             "shape_nuisances": {"mass_scale": float(sy.mass_scale),
+                                 "mass_resolution": float(sy.mass_resolution)},
+             "shape_constraint": sy.constraint}
     if res.signal_model is not None:
         return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
-                       signal_model=res.signal_model, window=cfg.spectrum.window)
+                       signal_model=res.signal_model, window=cfg.spectrum.window, **norms)
     return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
                    signal=_shape(_scan_signal_name(cfg), {}), resolution=r.resolution,
                    efficiency=float(cfg.limits.efficiency), window=cfg.spectrum.window,
-                   natural_width=float(r.natural_width) if r.natural_width > 0 else None)
+                   natural_width=float(r.natural_width) if r.natural_width > 0 else None,
+                   **norms)
 
 
 def _write(res: CombinedSearchResult, stage: Path, target: Path) -> CombinedSearchResult:
     """results.json, the figures (the combined p-values; each channel's own figures in
-    ``figures/<channel>/``) and report.md into the staging directory."""
+    ``figures/<channel>/``), report.md and report.html into the staging directory."""
     import dataclasses
 
-    import matplotlib.pyplot as plt
-
     from .. import plotting
+    from .._files import atomic_write
+    from .._style import RunLabel
     from ..report import write_results_json
-    from .combination_report import render_combination_markdown
+    from .combination_report import render_combination_html, render_combination_markdown
 
     figdir = stage / "figures"
     figdir.mkdir(parents=True, exist_ok=True)
     figs: dict[str, Path] = {}
-    fig = res.combination.plot(figdir / "pvalue_combined.png",
-                               title="local p-value: channels and their combination")
-    plt.close(fig)
+    labels = {n: plotting.figure_labels(r.config) for n, r in res.channels.items()}
+    first = next(iter(labels.values())).run
+    run = RunLabel(name=first.name if first else "", sqrt_s=first.sqrt_s if first else None,
+                   luminosity=first.luminosity if first else None,
+                   channel=" + ".join(lb.run.channel for lb in labels.values()
+                                      if lb.run and lb.run.channel))
+    symbols = {lb.symbol for lb in labels.values()}
+    res.combination.plot(figdir / "pvalue_combined.png", run=run,
+                         symbol=symbols.pop() if len(symbols) == 1 else "m")
     figs["pvalue_combined"] = figdir / "pvalue_combined.png"
     for name, r in res.channels.items():
         cfg = r.config
         sub = figdir / name
         made = plotting.search_figures(r, sub, formats=("png",),
-                                       log_scale=cfg.output.log_scale)
+                                       log_scale=cfg.output.log_scale, labels=labels[name])
         if r.signal_model is not None:
             made.update(zip(("signal_model_parameters", "signal_model_shapes"),
                             r.signal_model.plot(sub)))
@@ -240,6 +293,7 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path) -> CombinedSear
     res = dataclasses.replace(res, figures=final)
     d = res.to_dict()
     write_results_json(d, stage / "results.json")
-    rel = {k: str(Path(v).relative_to(stage)) for k, v in figs.items()}
-    (stage / "report.md").write_text(render_combination_markdown(d, rel))
+    rel = {k: Path(v).relative_to(stage).as_posix() for k, v in figs.items()}
+    atomic_write(stage / "report.md", render_combination_markdown(d, rel))
+    atomic_write(stage / "report.html", render_combination_html(d, figs))
     return res

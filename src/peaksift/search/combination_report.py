@@ -1,40 +1,37 @@
-"""The combination's report sections and command-line summary, from its results.json alone.
+"""The combination's report and command-line summary, from its results.json alone.
 
-* :func:`render_combination_markdown` -- report.md of a combination: the combined result,
-  one table per channel (its best excess, significances, fitted peak, limits), the
-  combined limits, the figures, and the caution.
-* :func:`combination_summary_text`    -- the few lines ``peaksift search`` prints.
+* :func:`combination_blocks`            -- the report as blocks (the vocabulary of
+  :mod:`peaksift.report`): the caution, the combined result with its normalisation
+  nuisances, a table of the channels and one table per channel, the combined limits, the
+  figures (the combined p-values, each channel's spectrum and p-values), the notes.
+* :func:`render_combination_markdown` / :func:`render_combination_html` -- report.md and
+  the self-contained report.html.
+* :func:`combination_summary_text`      -- the few lines ``peaksift search`` prints.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from typing import Any
 
 from .._format import number, p_value
-from ..report import CAUTION
+from ..report import CAUTION, blocks_html, blocks_markdown
 
-__all__ = ["combination_summary_text", "render_combination_markdown"]
+__all__ = ["combination_blocks", "combination_summary_text", "render_combination_html",
+           "render_combination_markdown"]
 
 
 def _f(x: Any, digits: int = 3) -> str:
     return "n/a" if x is None else number(x, digits)
 
 
-def _table(head: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
-    out = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
-    out += ["| " + " | ".join(r) + " |" for r in rows]
-    return "\n".join(out)
-
-
 def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
-    """One row of the per-channel table from a channel's results.json dict."""
+    """One row of the channels table from a channel's results.json dict."""
     best = r.get("best") or {}
     fit = r.get("fit") or {}
     peak = fit.get("peak_mass") or {}
     lim = r.get("limits") or {}
-    exp = lim.get("expected") or []
-    exp = [v for v in exp if v is not None]
+    exp = [v for v in (lim.get("expected") or []) if v is not None]
     eff = (r.get("signal_model") or {}).get("points", {}).get("efficiency", {}).get("value")
     return [name, _f(best.get("mass"), 4), _f(best.get("z_local"), 3),
             p_value(best.get("p_local")), _f(best.get("z_global"), 3),
@@ -43,60 +40,119 @@ def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
             "from samples" if eff else "given"]
 
 
-def render_combination_markdown(d: Mapping[str, Any],
-                                figures: Mapping[str, str] | None = None) -> str:
-    """report.md of a combination (``d`` is its results.json)."""
+def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
+    """One channel's own table: its selection window, fit, significances, normalisation."""
+    cfg = r.get("config") or {}
+    lim_cfg = cfg.get("limits") or {}
+    best = r.get("best") or {}
+    fit = r.get("fit") or {}
+    scan = r.get("scan") or {}
+    window = scan.get("window") or []
+    rows = [["search window", f"{_f(window[0], 4)}-{_f(window[1], 4)} GeV" if window
+             else "n/a"],
+            ["signal / background model", (f"{scan.get('signal_shape', 'n/a')} / "
+             f"{scan.get('background_shape', 'n/a')}")],
+            ["best mass hypothesis", f"{_f(best.get('mass'), 5)} GeV"],
+            ["local significance", (f"{_f(best.get('z_local'))} sigma "
+             f"(p = {p_value(best.get('p_local'))})")],
+            ["global significance", f"{_f(best.get('z_global'))} sigma"]]
+    for key, label in (("peak_mass", "fitted peak mass [GeV]"),
+                       ("signal_yield", "fitted signal events")):
+        v = fit.get(key) or {}
+        if v:
+            rows.append([label, f"{_f(v.get('value'), 5)} ± {_f(v.get('error'), 2)}"])
+    rows.append(["luminosity", (f"{_f(lim_cfg.get('luminosity'))} "
+                 f"{lim_cfg.get('luminosity_unit', '')} ± "
+                 f"{_f(100 * (lim_cfg.get('luminosity_uncertainty') or 0.0), 2)}%")])
+    sm = r.get("signal_model")
+    eff = "from the signal samples (interpolated)" if sm else _f(lim_cfg.get("efficiency"))
+    rows.append(["efficiency x acceptance", (f"{eff} ± "
+                 f"{_f(100 * (lim_cfg.get('efficiency_uncertainty') or 0.0), 2)}%")])
+    if (r.get("systematics") or {}):
+        rows.append(["systematics", "in this channel's own results only"])
+    return [("h3", f"Channel {name}"), ("table", ["quantity", "value"], rows)]
+
+
+def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None = None
+                       ) -> list[Any]:
+    """The combination's report as blocks (``d`` is its results.json)."""
+    fig = dict(figures or {})
     c = d["combined"]
     g = c.get("global") or {}
     best = c.get("best") or {}
-    lines = [f"# Combined search: {', '.join(d['channel_names'])}", "",
-             f"> {CAUTION}", "",
-             "## Combination", "",
-             ("One cross-section x branching fraction shared by every channel; the likelihood "
-             "is the product of the channels' (each with its own background, signal model, "
-             "efficiency and luminosity)."), "",
-             _table(["quantity", "value"], [
-                 ["best mass hypothesis", f"{_f(best.get('mass'), 5)} GeV"],
-                 ["local significance", (f"{_f(best.get('z_local'))} sigma "
-                                        f"(p = {p_value(best.get('p_local'))})")],
-                 ["global significance", (f"{_f(g.get('z_global'))} sigma "
-                                         f"(p = {p_value(g.get('p_global'))}, "
-                                         f"{g.get('global_method', 'n/a')}; toys generate "
-                                         "every channel)")],
-                 ["fitted sigma x B at the best mass",
-                  f"{_f(best.get('cross_section'))} {c.get('unit', '')}"],
-             ]), ""]
-    lines += [f"**Note:** {n}." for n in c.get("notes") or []]
-    lines += ["", "## Channels", "",
-              _table(["channel", "best mass [GeV]", "Z local", "p local", "Z global",
-                      "fitted mass [GeV]", "expected limits", "efficiency"],
-                     [channel_rows(n, r) for n, r in d["channels"].items()]), "",
-              ("Each channel's numbers are those of its own search (its own configuration "
-              "run alone gives the same)."), ""]
+    out: list[Any] = [("h1", f"Combined search: {', '.join(d['channel_names'])}"),
+                      ("caution", CAUTION), ("h2", "Combination"),
+                      ("p", ("One cross-section x branching fraction shared by every channel; the "
+                       "likelihood is the product of the channels' (each with its own "
+                       "background, signal model, efficiency and luminosity), with the "
+                       "luminosity and efficiency uncertainties as constrained nuisances."))]
+    rows = [["best mass hypothesis", f"{_f(best.get('mass'), 5)} GeV"],
+            ["local significance", (f"{_f(best.get('z_local'))} sigma "
+             f"(p = {p_value(best.get('p_local'))})")],
+            ["global significance", (f"{_f(g.get('z_global'))} sigma "
+             f"(p = {p_value(g.get('p_global'))}, {g.get('global_method', 'n/a')}; toys "
+             "generate every channel)")],
+            ["fitted sigma x B at the best mass", (f"{_f(best.get('cross_section'))} "
+             f"{c.get('unit', '')}")]]
+    for name, v in (c.get("nuisances") or {}).items():
+        if "shift_at_best" in v:
+            rows.append([f"shape factor {name} (k - 1 at the best mass)",
+                         _f(v.get("shift_at_best"))])
+        else:
+            rows.append([f"nuisance {name} (pull at the best mass)",
+                         _f(v.get("pull_at_best"))])
+    out.append(("table", ["quantity", "value"], rows))
+    if "pvalue_combined" in fig:
+        out.append(("figure", "pvalue_combined", ("Local p-value of each channel and of their "
+                    "combination against the mass hypothesis (a local excess is not a "
+                    "discovery).")))
+    out += [("h2", "Channels"),
+            ("table", ["channel", "best mass [GeV]", "Z local", "p local", "Z global",
+                       "fitted mass [GeV]", "expected limits", "efficiency"],
+             [channel_rows(n, r) for n, r in d["channels"].items()]),
+            ("p", ("Each channel's numbers are those of its own search (its own configuration "
+             "run alone gives the same)."))]
+    for n, r in d["channels"].items():
+        out += _channel_table(n, r)
+        for key, what in (("spectrum", "mass spectrum with the fit"),
+                          ("pvalue_scan", "local p-value scan")):
+            if f"{n}/{key}" in fig:
+                out.append(("figure", f"{n}/{key}", f"Channel {n}: {what}."))
     lim = c.get("limits")
     if lim:
-        rows = []
         masses = lim["masses"]
         step = max(1, len(masses) // 12)
-        for i in range(0, len(masses), step):
-            rows.append([_f(masses[i], 4), _f(lim["observed"][i]), _f(lim["expected"][i]),
-                         f"{_f(lim['expected_minus1'][i])}-{_f(lim['expected_plus1'][i])}"])
-        lines += [(f"## Combined upper limits ({100 * lim['cl']:.0f}% CLs, asymptotic, "
-                  f"{lim['unit']})"), "",
-                  _table(["mass [GeV]", "observed", "expected", "expected ±1 sigma"], rows), ""]
-        lines += [f"- {n}" for n in lim.get("notes") or []]
-        lines += [""]
-    if figures:
-        lines += ["## Figures", ""]
-        lines += [f"![{k}]({v})" for k, v in figures.items() if v.endswith(".png")]
-        lines += [""]
+        methods = lim.get("methods") or ["asymptotic"] * len(masses)
+        rows = [[_f(masses[i], 4), _f(lim["observed"][i]), _f(lim["expected"][i]),
+                 f"{_f(lim['expected_minus1'][i])}-{_f(lim['expected_plus1'][i])}",
+                 methods[i]] for i in range(0, len(masses), step)]
+        out += [("h2", f"Combined upper limits ({100 * lim['cl']:.0f}% CLs, {lim['unit']})"),
+                ("table", ["mass [GeV]", "observed", "expected", "expected ±1 sigma",
+                           "method"], rows)]
+        if lim.get("notes"):
+            out.append(("list", list(lim["notes"])))
     notes = list(c.get("notes") or [])
     for n, r in d["channels"].items():
         notes += [f"{n}: signal model: {x}" for x in (r.get("signal_model") or {}).get("notes")
                   or []]
     if notes:
-        lines += ["## Notes", ""] + [f"- {n}" for n in notes] + [""]
-    return "\n".join(lines)
+        out += [("h2", "Notes"), ("list", notes)]
+    return out
+
+
+def render_combination_markdown(d: Mapping[str, Any],
+                                figures: Mapping[str, str] | None = None) -> str:
+    """report.md of a combination (``figures``: name -> relative PNG path)."""
+    fig = dict(figures or {})
+    return blocks_markdown(combination_blocks(d, fig), fig)
+
+
+def render_combination_html(d: Mapping[str, Any], figures: Mapping[str, Any] | None = None
+                            ) -> str:
+    """report.html of a combination, self-contained (``figures``: name -> PNG file)."""
+    fig = dict(figures or {})
+    return blocks_html(f"Combined search: {', '.join(d['channel_names'])}",
+                       combination_blocks(d, fig), fig)
 
 
 def combination_summary_text(d: Mapping[str, Any]) -> str:

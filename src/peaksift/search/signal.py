@@ -50,7 +50,9 @@ def search_signal_model(cfg: Config, *, progress: bool = False) -> Any:
     sample_cfg = dataclasses.replace(cfg, calibration=dataclasses.replace(
         cfg.calibration, particle=""))
     samples = []
-    for f, m, g in zip(sm.files, sm.masses, sm.generated):
+    masses = (tuple(sample_mass(f, sm.mass_column, where) for f in sm.files)
+              if sm.mass_column else sm.masses)
+    for f, m, g in zip(sm.files, masses, sm.generated):
         one = dataclasses.replace(sample_cfg, input=dataclasses.replace(cfg.input, files=(f,)))
         col, _, _ = _collect(one, progress=progress)
         x = np.asarray(col.window_mass, float)
@@ -64,3 +66,39 @@ def search_signal_model(cfg: Config, *, progress: bool = False) -> Any:
                             efficiency_order=sm.efficiency_order, fixed=dict(sm.fix))
     except FitError as exc:
         raise FitError(f"{where}: [signal_model]: {exc}") from None
+
+
+def sample_mass(files: str, column: str, where: str = "config") -> float:
+    """The generated mass of a signal sample: the median of the per-event ``column`` over
+    every event of ``files`` (a file or glob, Parquet or Arrow IPC; ``signal_model.mass_column``).
+    The median, not the mean: a resonance's natural width gives its true masses long
+    Breit-Wigner tails, whose mean is unstable."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from ..events import list_files
+    from ..events.formats import open_source
+
+    values = []
+    for loc in list_files(files):
+        handle = open_source(loc)
+        names = handle.schema_arrow.names
+        if column not in names:
+            raise ConfigError(f"{where}: signal_model.mass_column {column!r} is not a column of "
+                              f"{loc} (columns: {', '.join(names)}); name the per-event "
+                              "generated-mass column or give signal_model.masses")
+        if isinstance(handle, pq.ParquetFile):
+            col = handle.read(columns=[column]).column(column)
+        else:
+            col = pa.Table.from_batches(handle.batches, handle.schema_arrow).column(column)
+        try:
+            values.append(np.asarray(col.to_numpy(zero_copy_only=False), float))
+        except (TypeError, ValueError, pa.ArrowException):
+            raise ConfigError(f"{where}: signal_model.mass_column {column!r} of {loc} is not a "
+                              "number per event") from None
+    x = np.concatenate(values) if values else np.empty(0)
+    x = x[np.isfinite(x)]
+    if x.size == 0:
+        raise ConfigError(f"{where}: signal_model.mass_column {column!r} holds no finite value "
+                          f"in {files}; give signal_model.masses instead")
+    return float(np.median(x))

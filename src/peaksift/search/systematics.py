@@ -82,6 +82,11 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                              "background_choice": None, "spurious_signal": None,
                              "envelope": None, "notes": []}
     choice = None
+    ratios: dict[str, float] | None = None
+    if S.spurious_uncertainty and not (S.template and S.background_families):
+        raise ConfigError("systematics.spurious_uncertainty needs systematics.template and "
+                          "systematics.background_families (the spurious signal is measured "
+                          "on the template with each candidate); set both or turn it off")
     if S.background_families:
         try:
             choice = choose_background(hist, list(S.background_families), blind=blind,
@@ -96,6 +101,11 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                                  natural_width=natural_width)
             block["spurious_signal"] = {k: {kk: vv for kk, vv in v.items() if kk != "ratio"}
                                         for k, v in sp.items()}
+            if S.spurious_uncertainty:  # each candidate's largest, over the whole range
+                ratios = {k: float(v["max_ratio"]) for k, v in sp.items()}
+                block["notes"].append(  # no 'spurious' here: doubts.py flags those notes
+                    "each candidate's largest signal on the template, over the whole range, "
+                    "is added in quadrature to the statistical error of the signal yield")
             flagged = [k for k, v in sp.items() if v["flagged"]]
             if flagged:
                 block["notes"].append(
@@ -103,9 +113,18 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                     f"{', '.join(flagged)}")
     toys = cfg.significance.toys
     gkw = {"seed": cfg.significance.seed, "progress": progress, "executor": executor}
-    if choice is not None and S.envelope:
-        env = envelope_scan(hist, choice, signal, masses, penalty=S.penalty, sqrt_s=S.sqrt_s,
-                            nuisances=nuis, nuisance_toys=S.toy_constraints, **sig_kw)
+    single = None
+    if choice is not None and not S.envelope:  # the kept function with the best penalised NLL
+        kept = min(choice.chosen, key=lambda c: 2 * c.nll + S.penalty * c.n_parameters)
+        from ..stats.background_choice import candidate_shapes
+
+        single = candidate_shapes([kept.label], sqrt_s=S.sqrt_s)
+        block["notes"].append(f"envelope off: scanned with {kept.label} only")
+    if choice is not None and (S.envelope or ratios is not None):
+        # a single function with a spurious-signal term is an envelope of one candidate
+        env = envelope_scan(hist, choice if single is None else single, signal, masses,
+                            penalty=S.penalty, sqrt_s=S.sqrt_s, nuisances=nuis,
+                            nuisance_toys=S.toy_constraints, spurious=ratios, **sig_kw)
         method = cfg.significance.method
         if method == "upcrossings" and toys == 0:
             block["notes"].append("envelope: upcrossings need toys; 200 toys were run")
@@ -118,6 +137,7 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         block["envelope"] = {
             "functions": list(env.labels), "n_parameters": list(env.n_parameters),
             "penalty": env.penalty, "chosen_at_best": env.labels[chosen],
+            "spurious_weights": list(env.spurious),
             "null_choice": env.labels[env.null_choice],
             "z_local": env.z_local, "mass": env.masses,
             "candidate_z_local": {k: np.sqrt(np.maximum(np.asarray(v), 0.0))
@@ -130,12 +150,8 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         block["nuisance_pulls"] = _pulls(nuis, factors, j)
         obj: Any = env
     else:
-        if choice is not None:  # no envelope: the kept function with the best penalised NLL
-            kept = min(choice.chosen, key=lambda c: 2 * c.nll + S.penalty * c.n_parameters)
-            from ..stats.background_choice import candidate_shapes
-
-            bkg = candidate_shapes([kept.label], sqrt_s=S.sqrt_s)[kept.label]
-            block["notes"].append(f"envelope off: scanned with {kept.label} only")
+        if single is not None:
+            bkg = next(iter(single.values()))
         else:
             from .common import _shape
 
@@ -173,7 +189,7 @@ def fitted_mass(cfg: Config, fit_dict: dict[str, Any]) -> dict[str, Any] | None:
 
 
 def _compact(lim: dict[str, Any]) -> dict[str, Any]:
-    keys = ("mass", "observed", "expected", "expected_minus2", "expected_minus1",
+    keys = ("masses", "observed", "expected", "expected_minus2", "expected_minus1",
             "expected_plus1", "expected_plus2", "unit", "cl", "method")
     return {k: lim.get(k) for k in keys}
 
@@ -207,6 +223,8 @@ def limits_with_systematics(cfg: Config, hist: Any, signal: Any, scanned: Any,
         constraint=L.constraint, unit=L.cross_section_unit)
     plain = plain_limits.to_dict()
     notes = list(with_s.pop("notes", []))
+    if S.spurious_uncertainty:
+        notes.append("the limits leave out the template signal added to the significance")
     if plain.get("method") != "asymptotic" and any(m == "toys" for m in plain["methods"]):
         notes.append("the limits with systematics are asymptotic everywhere; the plain ones "
                      "use toys at some masses")

@@ -257,7 +257,7 @@ class Shape:
         """Derivatives of :meth:`bin_fractions` w.r.t. each parameter, stacked on axis 0.
 
         Analytic for shapes with an analytic primitive gradient (gaussian, exponential of
-        order 1, bernstein, powerlaw); central finite differences otherwise.
+        order 1, bernstein, powerlaw, crystalball); central finite differences otherwise.
         """
         return self.fractions_and_grad(edges, params, window)[1]
 

@@ -4,7 +4,7 @@ Which to use
 ------------
 * ``gaussian``     -- detector resolution dominates and tails are negligible.
 * ``crystalball``  -- double-sided Crystal Ball: Gaussian core with independent power-law
-  tails on each side (radiation, mis-measurement); analytic CDF.
+  tails on each side (radiation, mis-measurement); analytic CDF and derivatives.
 * ``breitwigner``  -- relativistic Breit-Wigner: the natural line shape when the width
   dominates the resolution; analytic CDF.
 * ``voigt``        -- non-relativistic Breit-Wigner convolved with a Gaussian resolution

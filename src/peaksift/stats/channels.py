@@ -8,8 +8,11 @@ Which piece when
 * :func:`combine`            -- the scan of the combination and of every channel:
   :class:`Combination` (``global_significance`` with toys that generate every channel,
   ``plot`` of the local p-values, ``to_dict``).
-* :func:`combined_limits`    -- asymptotic CLs limits on sigma x B of the combination and
-  per channel: :class:`CombinedLimits`.
+* :func:`signal_norms`       -- the luminosity and efficiency uncertainties of the channels
+  as normalisation nuisances of the joint likelihood (a luminosity shared by the channels
+  of one ``luminosity_group`` is one nuisance, fully correlated).
+* :func:`peaksift.stats.channel_limits.combined_limits` -- CLs limits on sigma x B of the
+  combination (asymptotic, toys at low counts) and per channel.
 
 The likelihood is the product of the channels' (:mod:`peaksift.stats.joint`): channel ``c``
 expects ``mu L_c eff_c(m)`` signal events at a hypothesis ``m``, with its own background
@@ -19,9 +22,12 @@ Cranmer, Gross, Vitells, EPJC 71 (2011) 1554, eq. 12, for the product likelihood
 One channel goes through :func:`peaksift.scan` unchanged: the combination of one channel
 *is* its scan (same numbers to the last digit), with sigma x B = yield / (L eff).
 
-Not here (said plainly): toy-based limits of the combination (the asymptotic formulae are
-used; masses with few background events are flagged as in :func:`peaksift.upper_limits`),
-and luminosity / efficiency uncertainties in the combined likelihood.
+Luminosity and efficiency uncertainties enter as constrained log-normal factors on each
+channel's signal (:mod:`peaksift.stats.joint`); in the scan they matter only through the
+channels' relative normalisation (a common factor is absorbed by sigma x B).  A channel's
+``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan and the
+asymptotic limits, not in the combination's toys.  Not here (said plainly): the channels'
+background envelopes; each channel's own results carry those.
 """
 
 from __future__ import annotations
@@ -36,21 +42,18 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
-from .cls import _BANDS, _bisect
 from .joint import profile_joint
-from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
 from .scan import scan_prepared
-from .scan_inputs import _prepare_model
+from .scan_inputs import _prepare_model, _signal_params
 from .significance import p_from_q0, z_from_q0
-from .toys import fit_background, toy_counts
+from .toys import bkg_fractions, fit_background, toy_counts
 
 __all__ = [
     "Channel",
     "Combination",
-    "CombinedLimits",
     "combine",
-    "combined_limits",
     "combined_toy_scans",
+    "signal_norms",
 ]
 
 _TOY_CHUNK = 25   # toys per joint fit stack (toys x masses rows)
@@ -74,6 +77,16 @@ class Channel:
         As in :func:`peaksift.scan`.
     efficiency : float or callable, optional
         Efficiency x acceptance (default the signal model's).
+    luminosity_uncertainty, efficiency_uncertainty : float
+        Relative uncertainties (e.g. 0.02), each a log-normal constrained nuisance of the
+        joint likelihood (0: none).
+    luminosity_group : str, optional
+        Channels with the same group share one luminosity (one nuisance, fully correlated;
+        their ``luminosity_uncertainty`` must agree); default: the channel's own.
+    shape_nuisances : mapping, optional
+        Relative sizes of the channel's signal-shape nuisances (``mass_scale``,
+        ``mass_resolution``), profiled with their constraints in the combined scan;
+        ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``).
     """
 
     name: str
@@ -88,6 +101,37 @@ class Channel:
     natural_width: Any = None
     window: tuple[float, float] | None = None
     bins: int | None = None
+    luminosity_uncertainty: float = 0.0
+    efficiency_uncertainty: float = 0.0
+    luminosity_group: str | None = None
+    shape_nuisances: Mapping[str, float] | None = None
+    shape_constraint: str = "gaussian"
+
+    def shape_spec(self, prepared: tuple, blinded: np.ndarray, *, every_mass: bool = False,
+                   repeat: int = 1) -> Any:
+        """``(signal, base_params, SignalNuisances)`` of this channel's shape factors for
+        :func:`~peaksift.stats.joint.profile_joint` (None without any): at the unblinded
+        hypotheses (``every_mass``: at all), the stack repeated ``repeat`` times."""
+        sizes = {k: float(v) for k, v in (self.shape_nuisances or {}).items() if v}
+        if not sizes:
+            return None
+        from ..likelihood import SignalNuisances
+
+        try:
+            nuis = SignalNuisances.make(sizes, {k: self.shape_constraint for k in sizes})
+        except FitError as exc:
+            raise FitError(f"channel {self.name!r}: {exc}") from None
+        if nuis.shape_active != tuple(k for k in nuis.shape_active if k in sizes) or set(
+                sizes) - set(nuis.shape_active):
+            raise FitError(f"channel {self.name!r}: shape_nuisances takes mass_scale and "
+                           f"mass_resolution, got {sorted(sizes)}")
+        _, spec, info = prepared
+        keep = np.ones(blinded.size, bool) if every_mass else ~blinded
+        base = _signal_params(info["signal"], spec.window, info["masses"][keep],
+                              info["sigma"][keep], self.natural_width, info["signal_params"])
+        base = [np.tile(np.asarray(v), (repeat,) + (1,) * (np.ndim(v) - 1)) if np.ndim(v)
+                else v for v in base]
+        return info["signal"], base, nuis
 
     def conversion(self, masses: np.ndarray) -> np.ndarray:
         """Signal events per unit of sigma x B at ``masses``: ``L eff(m)``."""
@@ -135,6 +179,46 @@ def _prepare_all(channels: Any, masses: Any, blind: Any) -> tuple:
     return chans, prepared, m_all, bl, conv
 
 
+def signal_norms(channels: Sequence[Channel]) -> tuple[np.ndarray | None, tuple[str, ...]]:
+    """The channels' normalisation nuisances: ``(a, names)`` with ``a[c, j] = ln(1 + d)``
+    the log-normal scale of nuisance ``j`` on channel ``c``'s signal (see
+    :mod:`peaksift.stats.joint`); ``(None, ())`` when no channel has an uncertainty.
+    Names: ``efficiency_<channel>`` and ``luminosity_<group>`` (group: the channel's
+    ``luminosity_group`` or its name)."""
+    chans = list(channels)
+    cols: list[np.ndarray] = []
+    names: list[str] = []
+    for c, ch in enumerate(chans):
+        for what in ("luminosity_uncertainty", "efficiency_uncertainty"):
+            d = getattr(ch, what)
+            if not (isinstance(d, (int, float)) and 0 <= d < 10):
+                raise FitError(f"channel {ch.name!r}: {what} must be a relative uncertainty "
+                               f">= 0 (e.g. 0.02), got {d!r}")
+        if ch.efficiency_uncertainty > 0:
+            col = np.zeros(len(chans))
+            col[c] = np.log1p(ch.efficiency_uncertainty)
+            cols.append(col)
+            names.append(f"efficiency_{ch.name}")
+    groups: dict[str, list[int]] = {}
+    for c, ch in enumerate(chans):
+        groups.setdefault(ch.luminosity_group or ch.name, []).append(c)
+    for g, members in groups.items():
+        ds = {float(chans[c].luminosity_uncertainty) for c in members}
+        if len(ds) > 1:
+            raise FitError(f"channels {[chans[c].name for c in members]} share the luminosity "
+                           f"group {g!r} but give different luminosity_uncertainty "
+                           f"{sorted(ds)}; one luminosity has one uncertainty")
+        d = ds.pop()
+        if d > 0:
+            col = np.zeros(len(chans))
+            col[members] = np.log1p(d)
+            cols.append(col)
+            names.append(f"luminosity_{g}")
+    if not cols:
+        return None, ()
+    return np.stack(cols, axis=1), tuple(names)
+
+
 def _check(channels: Sequence[Channel]) -> list[Channel]:
     chans = list(channels)
     if not chans:
@@ -157,6 +241,8 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     reported per channel and combined.  ``unit``: of sigma x B (``fb`` for fb^-1).
     """
     chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
+    norms, norm_names = signal_norms(chans)
+    specs = [ch.shape_spec(p, bl) for ch, p in zip(chans, prepared)]
     per = {}
     for ch, (model, spec, info), k in zip(chans, prepared, conv):
         exp_s = None if expected_cross_section is None else (
@@ -166,6 +252,10 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
                                      refit=refit)
     nm = m_all.size
     mu, mu_err = np.full(nm, np.nan), np.full(nm, np.nan)
+    shape_names = tuple(f"{nm}_{ch.name}" for ch, sp in zip(chans, specs) if sp is not None
+                        for nm in sp[2].shape_active)
+    n_fit = (0 if norms is None else norms.shape[1]) + len(shape_names)
+    nu_fit = None if n_fit == 0 else np.full((nm, n_fit), np.nan)
     q0 = np.full(nm, np.nan)
     converged = np.zeros(nm, bool)
     notes: list[str] = []
@@ -179,16 +269,26 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         notes += list(s.notes)
     elif (~bl).any():
         models = [p[0] for p in prepared]
+        mu0 = _start(list(per.values()), conv)[~bl]
+        # start: the channels' own fits combined (sigma x B) and their background yields
+        # moved along with their signal;
+        # a last step below 0.03 errors leaves q0 within ~1e-5 (Newton: the next would be
+        # ~1e-3 errors), so the fit stops there
         r = profile_joint(models, [m.counts for m in models], [m.fractions for m in models],
-                          [k[~bl] for k in conv], steps=100,
-                          mu_start=_start(list(per.values()), conv)[~bl])
+                          [k[~bl] for k in conv], steps=100, tol=3e-2,
+                          mu_start=mu0,
+                          b_start=_b_start(models, list(per.values()), conv, mu0, bl),
+                          norms=norms, shapes=specs if any(specs) else None)
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q0[~bl], mu[~bl], mu_err[~bl], converged[~bl] = q, r["mu"], r["mu_error"], r["converged"]
+        if nu_fit is not None:
+            nu_fit[~bl] = np.concatenate([r["nu"]] + [fc - 1.0 for fc in r["factors"]],
+                                         axis=1) if any(specs) else r["nu"]
         if not r["converged"].all():
             notes.append(f"{int((~r['converged']).sum())} combined hypotheses did not converge")
         if expected_cross_section is not None:
-            z_exp = _expected_z(prepared, conv, float(expected_cross_section))
+            z_exp = _expected_z(prepared, conv, float(expected_cross_section), norms)
     if bl.all():
         notes.append("every mass hypothesis is blinded")
     qsel = np.where(bl, -np.inf, np.nan_to_num(q0, nan=-np.inf))
@@ -202,7 +302,9 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         luminosity={ch.name: float(ch.luminosity) for ch in chans},
         blind=None if blind is None else (float(blind[0]), float(blind[1])), blinded=bl,
         z_expected=z_exp, expected_cross_section=expected_cross_section, unit=unit,
-        notes=tuple(notes), prepared=tuple(p[0] for p in prepared))
+        notes=tuple(notes), prepared=tuple(p[0] for p in prepared),
+        nuisances=norm_names + shape_names,
+        nuisance_values=nu_fit, norms=norms)
 
 
 def _start(scans: list, conv: list[np.ndarray]) -> np.ndarray:
@@ -219,7 +321,28 @@ def _start(scans: list, conv: list[np.ndarray]) -> np.ndarray:
     return np.where(np.isfinite(out), out, 0.0)
 
 
-def _expected_z(prepared: list, conv: list[np.ndarray], xs: float) -> np.ndarray:
+def _b_start(models: list, scans: list, conv: list[np.ndarray], mu0: np.ndarray,
+             bl: np.ndarray) -> list[np.ndarray]:
+    """Starting background yields of the joint fit: each channel's own fitted yield moved to
+    first order with its signal, from its own s_c to k_c mu0 (the slope -H_bs / H_bb of
+    the Poisson NLL at the channel's fit, shapes at the background-only fit): the joint fit
+    then starts within second order of its minimum."""
+    out = []
+    for m, sc, k in zip(models, scans, conv):
+        s = np.nan_to_num(np.asarray(sc.signal_yield, float)[~bl])
+        b = np.asarray(sc.background_yield, float)[~bl]
+        g = bkg_fractions(m, m.theta[None, :])[0]
+        with np.errstate(all="ignore"):
+            nu = np.maximum(s[:, None] * m.fractions + b[:, None] * g, 1e-300)
+            v = m.counts / nu**2
+            slope = -np.sum(v * m.fractions * g, axis=1) / np.maximum(v @ (g * g), 1e-300)
+            moved = b + slope * (k[~bl] * mu0 - s)
+        out.append(np.where(np.isfinite(moved) & (moved > 0), moved, b))
+    return out
+
+
+def _expected_z(prepared: list, conv: list[np.ndarray], xs: float, norms: Any = None
+                ) -> np.ndarray:
     """Median expected Z of the combination (Asimov: each channel's background-only fit to
     its data over all window bins plus ``xs L_c eff_c(m)`` signal events)."""
     fulls, asimov, nll0 = [], [], 0.0
@@ -232,7 +355,7 @@ def _expected_z(prepared: list, conv: list[np.ndarray], xs: float) -> np.ndarray
         fulls.append(full)
         asimov.append(a)
     r = profile_joint(fulls, asimov, [f.fractions for f in fulls], conv,
-                      mu_start=np.full(asimov[0].shape[0], xs))
+                      mu_start=np.full(asimov[0].shape[0], xs), norms=norms)
     q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
     return np.sqrt(q)
 
@@ -285,6 +408,9 @@ class Combination(FrozenValue):
     unit: str = "fb"
     notes: tuple[str, ...] = ()
     prepared: tuple = field(default=(), compare=False)
+    nuisances: tuple[str, ...] = ()
+    nuisance_values: np.ndarray | None = None   # (n_masses, J) fitted, NaN where blinded
+    norms: Any = field(default=None, compare=False)
 
     @property
     def best(self) -> dict[str, float]:
@@ -310,10 +436,21 @@ class Combination(FrozenValue):
                 "z_expected": self.z_expected,
                 "expected_cross_section": self.expected_cross_section,
                 "best": self.best, "blind": None if self.blind is None else list(self.blind),
+                "nuisances": {n: self._nuisance(j) for j, n in enumerate(self.nuisances)},
                 "notes": list(self.notes)},
             "channels": {n: {**s.to_dict(), "luminosity": self.luminosity[n],
                              "conversion": self.conversion[n]}
                          for n, s in self.channels.items()}})
+
+    def _nuisance(self, j: int) -> dict[str, Any]:
+        """A normalisation nuisance (its pull and log-normal scale per channel) or a shape
+        factor (its relative shift k - 1) at the best mass."""
+        v = (None if self.nuisance_values is None
+             else self.nuisance_values[self.best_index, j])
+        nj = 0 if self.norms is None else self.norms.shape[1]
+        if j < nj:
+            return {"pull_at_best": v, "log_scale": self.norms[:, j]}
+        return {"shift_at_best": v}
 
     def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
                             seed: int = 0, u0: float = 0.5) -> dict[str, Any]:
@@ -341,7 +478,7 @@ class Combination(FrozenValue):
         else:
             scans = combined_toy_scans(list(self.prepared),
                                        [np.asarray(k)[mask] for k in self.conversion.values()],
-                                       n, seed=seed)
+                                       n, seed=seed, norms=self.norms)
             res = (lee.global_from_toys(q_obs, scans.max(axis=1)) if method == "toys" else
                    lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps))
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
@@ -349,56 +486,22 @@ class Combination(FrozenValue):
         out.update(res)
         return plain(out)
 
-    def plot(self, path: Any = None, *, title: str | None = None) -> Any:
-        """Local p-value against mass: each channel (thin) and the combination (thick)."""
-        from .._style import COLORS, figure_style, use_headless_backend
+    def plot(self, path: Any = None, *, title: str | None = None, run: Any = None,
+             symbol: str = "m") -> Any:
+        """Local p-value against mass: each channel (thin) and the combination (thick);
+        see :func:`peaksift.stats.channel_plot.pvalue_figure` (no pyplot)."""
+        from .channel_plot import pvalue_figure
 
-        use_headless_backend()
-        import matplotlib.pyplot as plt
-
-        palette = [COLORS["total"], COLORS["signal"], COLORS["accent"], COLORS["background"]]
-        with figure_style():
-            fig, ax = plt.subplots(figsize=(7.0, 4.6))
-            m = self.masses
-            lows = []
-            for j, (name, s) in enumerate(self.channels.items()):
-                p = np.where(s.blinded, np.nan, np.maximum(s.p_local, 1e-300))
-                ax.plot(m, p, lw=1.1, color=palette[j % len(palette)], label=name)
-                lows.append(np.nanmin(p) if np.isfinite(p).any() else 0.1)
-            p = np.where(self.blinded, np.nan, np.maximum(self.p_local, 1e-300))
-            ax.plot(m, p, lw=2.0, color=COLORS["observed"], label="combined")
-            lows.append(np.nanmin(p) if np.isfinite(p).any() else 0.1)
-            lowest = max(min(min(lows), p_from_q0(9.0)) * 0.3, p_from_q0(64.0))
-            ax.set_yscale("log")
-            ax.set_ylim(lowest, 1.0)
-            ax.set_xlim(m[0], m[-1])
-            for k in range(1, 6):
-                pk = p_from_q0(float(k * k))
-                if pk < lowest:
-                    break
-                ax.axhline(pk, color=COLORS["accent"], lw=0.8, ls=":")
-                ax.text(m[-1], pk, f" {k}$\\sigma$", va="center", ha="left",
-                        color=COLORS["accent"], fontsize=9, clip_on=False)
-            if self.blind is not None:
-                ax.axvspan(self.blind[0], self.blind[1], color=COLORS["blind"], zorder=0,
-                           label="blinded", hatch="//", ec="#c9c9d2", lw=0)
-            ax.set_xlabel("mass hypothesis [GeV]")
-            ax.set_ylabel("local $p$-value")
-            ax.legend(loc="lower left")
-            ax.text(0.99, 0.02, "local p-values: a local excess is not a discovery",
-                    transform=ax.transAxes, fontsize=8.5, va="bottom", ha="right")
-            if title:
-                ax.set_title(title)
-            if path is not None:
-                fig.savefig(path)
-        return fig
+        return pvalue_figure(self, path, title=title, run=run, symbol=symbol)
 
 
 def combined_toy_scans(models: list, conv: list[np.ndarray], n_toys: int, *,
-                       seed: int = 0) -> np.ndarray:
+                       seed: int = 0, norms: Any = None) -> np.ndarray:
     """q0 scans ``(n_toys, n_masses)`` of background-only toys of every channel, each
     channel fluctuated from its background-only fit (toy ``i`` of channel ``c`` from
-    ``SeedSequence(seed, spawn_key=(c, i))``), fitted with the joint likelihood."""
+    ``SeedSequence(seed, spawn_key=(c, i))``), fitted with the joint likelihood (with the
+    normalisation nuisances ``norms`` when given; their auxiliary measurements stay at 0:
+    under the background-only hypothesis they do not change the toys)."""
     if n_toys < 1:
         raise FitError(f"toys must be a positive number of pseudo-experiments, got {n_toys}")
     nm = models[0].masses.size
@@ -416,141 +519,8 @@ def combined_toy_scans(models: list, conv: list[np.ndarray], n_toys: int, *,
             nll0 = nll0 + np.repeat(nll, nm)
         r = profile_joint(models, counts, [np.tile(m.fractions, (cnt, 1)) for m in models],
                           [np.tile(k, cnt) for k in conv], theta_start=th0, b_start=b0,
-                          steps=40)
+                          steps=40, tol=3e-2, norms=norms)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q[~np.isfinite(r["nll"]) | ~np.isfinite(nll0)] = np.nan
         out[first:first + cnt] = q.reshape(cnt, nm)
     return out
-
-
-# ------------------------------------------------------------------ limits
-@dataclass(frozen=True, repr=False, eq=False)
-class CombinedLimits(FrozenValue):
-    """Outcome of :func:`combined_limits`: the combination's CLs limits on sigma x B
-    (observed, expected median and +-1, +-2 sigma bands) and each channel's
-    :class:`~peaksift.stats.limits.LimitResult`."""
-
-    masses: np.ndarray
-    observed: np.ndarray
-    expected: np.ndarray
-    bands: np.ndarray        # (5, n_masses): -2, -1, 0, +1, +2 sigma
-    channels: Any
-    cl: float
-    unit: str
-    flags: tuple[str, ...] = ()
-    notes: tuple[str, ...] = ()
-
-    def __repr__(self) -> str:
-        return (f"CombinedLimits({', '.join(self.channels)}; {self.masses.size} masses, "
-                f"median expected {np.nanmedian(self.expected):.3g} {self.unit})")
-
-    def to_dict(self) -> dict[str, Any]:
-        return plain({
-            "combined": {"masses": self.masses, "observed": self.observed,
-                         "expected": self.expected, "expected_minus2": self.bands[0],
-                         "expected_minus1": self.bands[1], "expected_plus1": self.bands[3],
-                         "expected_plus2": self.bands[4], "cl": self.cl, "unit": self.unit,
-                         "method": "asymptotic", "flags": list(self.flags),
-                         "notes": list(self.notes)},
-            "channels": {n: r.to_dict() for n, r in self.channels.items()}})
-
-
-class _Profiled:
-    """The joint NLL at fixed sigma x B for a stack of problems, with warm starts."""
-
-    def __init__(self, models, counts, fractions, conv) -> None:
-        self.models, self.counts, self.fractions, self.conv = models, counts, fractions, conv
-        self.theta = [np.repeat(m.theta[None, :], fractions[0].shape[0], axis=0)
-                      for m in models]
-        self.b = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
-
-    def nll(self, mu: np.ndarray) -> np.ndarray:
-        r = profile_joint(self.models, self.counts, self.fractions, self.conv, mu_fixed=mu,
-                          theta_start=self.theta, b_start=self.b)
-        self.theta, self.b = r["theta"], r["b"]
-        return r["nll"]
-
-
-def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.95,
-                    blind: tuple[float, float] | None = None, unit: str = "fb",
-                    low_count_background: float = LOW_COUNT_BACKGROUND) -> CombinedLimits:
-    """Asymptotic CLs upper limits on sigma x B, combined and per channel.
-
-    The combination's q~mu (CCGV eq. 16) profiles every channel's background at each
-    sigma x B; sigma from the background-only Asimov data of every channel (CCGV eq. 32);
-    the expected bands from :func:`~peaksift.stats.limits.expected_band_factor`.  Each
-    channel's own limits come from :func:`peaksift.upper_limits` (asymptotic) with its
-    luminosity and efficiency.  A mass where the summed background under the signal is
-    below ``low_count_background`` events is flagged (the formulae misplace the bands).
-    """
-    if not 0 < cl < 1:
-        raise FitError(f"cl must be in (0, 1), got {cl!r}; e.g. cl=0.95")
-    chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
-    per = {}
-    notes = []
-    for ch, k in zip(chans, conv):
-        if not np.all(k > 0):
-            notes.append(f"channel {ch.name!r}: no limits of its own (its efficiency is 0 at "
-                         "some mass); it still enters the combination")
-            continue
-        per[ch.name] = upper_limits(
-            ch.data, ch.signal, ch.background, m_all, resolution=ch.resolution,
-            window=ch.window, natural_width=ch.natural_width, blind=blind,
-            signal_params=ch.signal_params, bins=ch.bins, signal_model=ch.signal_model,
-            cl=cl, method="asymptotic", luminosity=float(ch.luminosity),
-            efficiency=None if ch.signal_model is not None and ch.efficiency is None else (
-                lambda m, k=k, lumi=float(ch.luminosity): np.interp(m, m_all, k) / lumi),
-            unit=unit,
-            low_count_background=low_count_background)
-    alpha = 1.0 - cl
-    nm = m_all.size
-    fulls = [_full_model(*p) for p in prepared]
-    asimov = [f.expected_background for f in fulls]
-    nb5 = len(_BANDS)
-    a_stack = _Profiled(fulls, asimov, [np.tile(f.fractions, (nb5, 1)) for f in fulls],
-                        [np.tile(k, nb5) for k in conv])
-    nll_a0 = sum(float(fit_background(f, a[None, :])[2][0]) for f, a in zip(fulls, asimov))
-    target = np.repeat([expected_band_factor(n, cl) ** 2 for n in _BANDS], nm)
-    info_s = sum((k[:, None] ** 2 * f.fractions**2 / np.maximum(a, 1e-300)).sum(axis=1)
-                 for k, f, a in zip(conv, fulls, asimov))
-    scale0 = np.tile(1.0 / np.sqrt(np.maximum(info_s, 1e-300)), nb5)
-    bands = _bisect(lambda mu: 2.0 * (a_stack.nll(mu) - nll_a0) - target,
-                    1e-2 * scale0, 1e3 * scale0).reshape(nb5, nm)
-    obs = np.full(nm, np.nan)
-    keep = ~bl
-    if keep.any():
-        models = [p[0] for p in prepared]
-        ck = [k[keep] for k in conv]
-        free = profile_joint(models, [m.counts for m in models],
-                             [m.fractions for m in models], ck, steps=100)
-        mu_hat, nll_hat = free["mu"], free["nll"]
-        nll_zero = sum(m.nll_background for m in models)
-        nll_hat = np.minimum(nll_hat, nll_zero)
-        prob_o = _Profiled(models, [m.counts for m in models], [m.fractions for m in models],
-                           ck)
-        used_asimov = [m.expected_background for m in models]
-        prob_s = _Profiled(models, used_asimov, [m.fractions for m in models], ck)
-        nll_u0 = sum(float(fit_background(m, a[None, :])[2][0])
-                     for m, a in zip(models, used_asimov))
-
-        def f_obs(mu: np.ndarray) -> np.ndarray:
-            ref = np.where(mu_hat < 0, nll_zero, nll_hat)
-            q = np.where(mu_hat > mu, 0.0, np.maximum(2.0 * (prob_o.nll(mu) - ref), 0.0))
-            qa = np.maximum(2.0 * (prob_s.nll(mu) - nll_u0), 1e-300)
-            return alpha - cls_asymptotic(q, mu, mu / np.sqrt(qa))
-
-        s0 = scale0[:nm][keep]
-        lo = np.maximum(1e-2 * s0, 0.5 * np.maximum(mu_hat, 0.0))
-        obs[keep] = _bisect(f_obs, lo, 1e3 * s0 + 3.0 * np.maximum(mu_hat, 0.0))
-    # the background under the signal of the combination (CCGV eqs. 28-30, as upper_limits)
-    b_under = sum(np.asarray(r.background_under_signal) for r in per.values())
-    flags = tuple(f"{b:.3g} background events expected under the signal (< "
-                  f"{low_count_background:g}): asymptotic bands doubtful"
-                  if b < low_count_background else "" for b in b_under)
-    if any(flags):
-        notes.append(f"{sum(bool(f) for f in flags)} of {nm} masses have few background "
-                     "events under the signal; the combined limits there are asymptotic only "
-                     "(no toys for the combination yet)")
-    return CombinedLimits(masses=m_all, observed=obs, expected=bands[2], bands=bands,
-                          channels=per, cl=cl, unit=unit, flags=flags, notes=tuple(notes))
-

@@ -309,7 +309,7 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
                         f"{penalty:g} per free parameter)")
     bands = dict(zip(("expected_minus2", "expected_minus1", "expected", "expected_plus1",
                       "expected_plus2"), exp_lim))
-    return plain({"mass": m_all, "observed": obs, **bands, "unit": out_unit, "cl": cl,
+    return plain({"masses": m_all, "observed": obs, **bands, "unit": out_unit, "cl": cl,
                   "method": "asymptotic", "functions": list(labels),
                   "null_choice": labels[null], "profiled": profiled,
                   "chosen": [labels[c] if c >= 0 else None for c in chosen_at],

@@ -1,0 +1,226 @@
+"""CLs upper limits on sigma x B of a combination of channels: :func:`combined_limits`.
+
+* asymptotic (CCGV: Cowan, Cranmer, Gross, Vitells, EPJC 71 (2011) 1554): q~mu (eq. 16)
+  with every channel's background and the normalisation nuisances (luminosity,
+  efficiency: :func:`peaksift.stats.channels.signal_norms`) profiled; sigma from the
+  background-only Asimov data of every channel (eq. 32); the expected bands from
+  :func:`~peaksift.stats.limits.expected_band_factor`;
+* toys (Read, J. Phys. G 28 (2002) 2693) where the summed background under the signal is
+  below ``low_count_background`` events and ``method="auto"`` (or at ``toy_masses`` with
+  ``method="toys"``): :func:`peaksift.stats.channel_toy_limits.joint_toy_limit`, the toys
+  generating every channel;
+* each channel's own limits from :func:`peaksift.upper_limits` with its luminosity,
+  efficiency and their uncertainties (same ``method``).
+
+Returns :class:`CombinedLimits` (``to_dict()``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from .._json import plain
+from .._values import FrozenValue
+from ..errors import FitError
+from .channel_toy_limits import joint_toy_limit
+from .channels import Channel, _full_model, _prepare_all, signal_norms
+from .cls import _BANDS, _bisect
+from .joint import profile_joint
+from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
+from .toys import fit_background
+
+__all__ = ["CombinedLimits", "combined_limits"]
+
+_METHODS = ("asymptotic", "auto", "toys")
+
+
+@dataclass(frozen=True, repr=False, eq=False)
+class CombinedLimits(FrozenValue):
+    """Outcome of :func:`combined_limits`: the combination's CLs limits on sigma x B
+    (observed, expected median and +-1, +-2 sigma bands) and each channel's
+    :class:`~peaksift.stats.limits.LimitResult`."""
+
+    masses: np.ndarray
+    observed: np.ndarray
+    expected: np.ndarray
+    bands: np.ndarray        # (5, n_masses): -2, -1, 0, +1, +2 sigma
+    channels: Any
+    cl: float
+    unit: str
+    flags: tuple[str, ...] = ()
+    notes: tuple[str, ...] = ()
+    methods: tuple[str, ...] = ()    # per mass: "asymptotic" or "toys"
+    method: str = "asymptotic"
+    nuisances: tuple[str, ...] = ()
+    toys: Any = None                 # per toy mass: grid, CLs, number of toys
+
+    def __repr__(self) -> str:
+        return (f"CombinedLimits({', '.join(self.channels)}; {self.masses.size} masses, "
+                f"median expected {np.nanmedian(self.expected):.3g} {self.unit})")
+
+    def to_dict(self) -> dict[str, Any]:
+        return plain({
+            "combined": {"masses": self.masses, "observed": self.observed,
+                         "expected": self.expected, "expected_minus2": self.bands[0],
+                         "expected_minus1": self.bands[1], "expected_plus1": self.bands[3],
+                         "expected_plus2": self.bands[4], "cl": self.cl, "unit": self.unit,
+                         "method": self.method, "methods": list(self.methods),
+                         "nuisances": list(self.nuisances), "toys": self.toys or {},
+                         "flags": list(self.flags), "notes": list(self.notes)},
+            "channels": {n: r.to_dict() for n, r in self.channels.items()}})
+
+
+class _Profiled:
+    """The joint NLL at fixed sigma x B for a stack of problems, with warm starts."""
+
+    def __init__(self, models, counts, fractions, conv, norms=None, shapes=None) -> None:
+        self.models, self.counts, self.fractions, self.conv = models, counts, fractions, conv
+        self.norms, self.nu, self.shapes = norms, None, shapes
+        self.theta = [np.repeat(m.theta[None, :], fractions[0].shape[0], axis=0)
+                      for m in models]
+        self.b = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
+
+    def nll(self, mu: np.ndarray) -> np.ndarray:
+        r = profile_joint(self.models, self.counts, self.fractions, self.conv, mu_fixed=mu,
+                          theta_start=self.theta, b_start=self.b, norms=self.norms,
+                          nu_start=self.nu, shapes=self.shapes)
+        self.theta, self.b, self.nu = r["theta"], r["b"], r["nu"]
+        return r["nll"]
+
+
+def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.95,
+                    blind: tuple[float, float] | None = None, unit: str = "fb",
+                    low_count_background: float = LOW_COUNT_BACKGROUND,
+                    method: str = "auto", toys: int = 300, seed: int = 0,
+                    toy_masses: Any = None) -> CombinedLimits:
+    """CLs upper limits on sigma x B, combined and per channel (see the module guide).
+
+    ``method``: ``"asymptotic"`` (formulae everywhere; masses with fewer than
+    ``low_count_background`` background events under the signal, summed over the channels,
+    are flagged), ``"auto"`` (toys at those masses) or ``"toys"`` (toys at ``toy_masses``,
+    default three spread over the range, and at the low-count ones).  ``toys`` per
+    hypothesis and generating set; toy mass ``j`` uses the seed ``seed + j``.
+    """
+    if not 0 < cl < 1:
+        raise FitError(f"cl must be in (0, 1), got {cl!r}; e.g. cl=0.95")
+    if method not in _METHODS:
+        raise FitError(f"combined limits method must be one of {', '.join(_METHODS)}, got "
+                       f"{method!r}")
+    chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
+    norms, norm_names = signal_norms(chans)
+    nb5 = len(_BANDS)
+    # the channels' mass-scale and resolution factors, profiled in the asymptotic limits
+    sp_obs = [ch.shape_spec(p, bl) for ch, p in zip(chans, prepared)]
+    sp_exp = [ch.shape_spec(p, bl, every_mass=True, repeat=nb5)
+              for ch, p in zip(chans, prepared)]
+    sp_obs = sp_obs if any(sp_obs) else None
+    sp_exp = sp_exp if any(sp_exp) else None
+    per = {}
+    notes = []
+    for ch, k in zip(chans, conv):
+        if not np.all(k > 0):
+            notes.append(f"channel {ch.name!r}: no limits of its own (its efficiency is 0 at "
+                         "some mass); it still enters the combination")
+            continue
+        per[ch.name] = upper_limits(
+            ch.data, ch.signal, ch.background, m_all, resolution=ch.resolution,
+            window=ch.window, natural_width=ch.natural_width, blind=blind,
+            signal_params=ch.signal_params, bins=ch.bins, signal_model=ch.signal_model,
+            cl=cl, method=method, toys=toys, seed=seed, luminosity=float(ch.luminosity),
+            luminosity_uncertainty=float(ch.luminosity_uncertainty),
+            efficiency_uncertainty=float(ch.efficiency_uncertainty),
+            toy_masses=toy_masses if method == "toys" else None,
+            efficiency=None if ch.signal_model is not None and ch.efficiency is None else (
+                lambda m, k=k, lumi=float(ch.luminosity): np.interp(m, m_all, k) / lumi),
+            unit=unit,
+            low_count_background=low_count_background)
+    alpha = 1.0 - cl
+    nm = m_all.size
+    fulls = [_full_model(*p) for p in prepared]
+    asimov = [f.expected_background for f in fulls]
+    a_stack = _Profiled(fulls, asimov, [np.tile(f.fractions, (nb5, 1)) for f in fulls],
+                        [np.tile(k, nb5) for k in conv], norms, sp_exp)
+    nll_a0 = sum(float(fit_background(f, a[None, :])[2][0]) for f, a in zip(fulls, asimov))
+    target = np.repeat([expected_band_factor(n, cl) ** 2 for n in _BANDS], nm)
+    info_s = sum((k[:, None] ** 2 * f.fractions**2 / np.maximum(a, 1e-300)).sum(axis=1)
+                 for k, f, a in zip(conv, fulls, asimov))
+    scale0 = np.tile(1.0 / np.sqrt(np.maximum(info_s, 1e-300)), nb5)
+    bands = _bisect(lambda mu: 2.0 * (a_stack.nll(mu) - nll_a0) - target,
+                    1e-2 * scale0, 1e3 * scale0).reshape(nb5, nm)
+    obs = np.full(nm, np.nan)
+    keep = ~bl
+    if keep.any():
+        models = [p[0] for p in prepared]
+        ck = [k[keep] for k in conv]
+        free = profile_joint(models, [m.counts for m in models],
+                             [m.fractions for m in models], ck, steps=100, norms=norms,
+                             shapes=sp_obs)
+        mu_hat, nll_hat = free["mu"], free["nll"]
+        nll_zero = sum(m.nll_background for m in models)
+        nll_hat = np.minimum(nll_hat, nll_zero)
+        prob_o = _Profiled(models, [m.counts for m in models], [m.fractions for m in models],
+                           ck, norms, sp_obs)
+        used_asimov = [m.expected_background for m in models]
+        prob_s = _Profiled(models, used_asimov, [m.fractions for m in models], ck, norms,
+                           sp_obs)
+        nll_u0 = sum(float(fit_background(m, a[None, :])[2][0])
+                     for m, a in zip(models, used_asimov))
+
+        def f_obs(mu: np.ndarray) -> np.ndarray:
+            ref = np.where(mu_hat < 0, nll_zero, nll_hat)
+            q = np.where(mu_hat > mu, 0.0, np.maximum(2.0 * (prob_o.nll(mu) - ref), 0.0))
+            qa = np.maximum(2.0 * (prob_s.nll(mu) - nll_u0), 1e-300)
+            return alpha - cls_asymptotic(q, mu, mu / np.sqrt(qa))
+
+        s0 = scale0[:nm][keep]
+        lo = np.maximum(1e-2 * s0, 0.5 * np.maximum(mu_hat, 0.0))
+        obs[keep] = _bisect(f_obs, lo, 1e3 * s0 + 3.0 * np.maximum(mu_hat, 0.0))
+    # the background under the signal of the combination (CCGV eqs. 28-30): the counting
+    # background with the same Fisher information on sigma x B, from the Asimov data
+    f_sums = sum(k * f.fractions.sum(axis=1) for k, f in zip(conv, fulls))
+    b_under = f_sums**2 / np.maximum(info_s, 1e-300)
+    low = b_under < low_count_background
+    methods = ["asymptotic"] * nm
+    want: list[int] = []
+    if method != "asymptotic":
+        want = list(np.flatnonzero(low))
+    if method == "toys":
+        picks = (np.linspace(0, nm - 1, 3).round().astype(int) if toy_masses is None else
+                 [int(np.argmin(np.abs(m_all - float(x)))) for x in np.atleast_1d(toy_masses)])
+        want += list(picks)
+    toy_info: dict[str, Any] = {}
+    if sp_obs is not None and want:
+        notes.append("the toy-based limits leave the channels' mass-scale and resolution "
+                     "factors at 1 (the asymptotic ones profile them)")
+    for j in sorted({int(x) for x in want}):
+        if bl[j]:
+            notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
+            continue
+        row = int(np.sum(~bl[:j]))
+        one = [dataclasses.replace(p[0], masses=p[0].masses[row:row + 1],
+                                   fractions=p[0].fractions[row:row + 1]) for p in prepared]
+        res = joint_toy_limit(one, [float(k[j]) for k in conv], norms, cl, int(toys),
+                              int(seed) + j, float(obs[j]), bands[:, j].copy())
+        obs[j] = res["observed"]
+        bands[:, j] = [res["expected"][n] for n in _BANDS]
+        methods[j] = "toys"
+        toy_info[f"{m_all[j]:.6g}"] = plain({k: v for k, v in res.items()
+                                             if k not in ("observed", "expected")})
+        notes.extend(f"{m_all[j]:g}: {n}" for n in res["notes"])
+    flags = tuple(f"{b:.3g} background events expected under the signal (< "
+                  f"{low_count_background:g}): asymptotic bands doubtful"
+                  if b < low_count_background and m == "asymptotic" else ""
+                  for b, m in zip(b_under, methods))
+    if any(flags):
+        notes.append(f"{sum(bool(f) for f in flags)} of {nm} masses have few background "
+                     "events under the signal and asymptotic limits (method='auto' computes "
+                     "them with toys)")
+    return CombinedLimits(masses=m_all, observed=obs, expected=bands[2], bands=bands,
+                          channels=per, cl=cl, unit=unit, flags=flags, notes=tuple(notes),
+                          methods=tuple(methods), method=method, nuisances=norm_names,
+                          toys=toy_info)
