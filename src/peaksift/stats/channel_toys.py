@@ -26,20 +26,16 @@ import math
 from typing import Any
 
 import numpy as np
-from scipy import special
 
 from ..errors import FitError
 from .cls import _BANDS
 from .joint import profile_joint
-from .toy_limits import _crossings, _tail
+from .toy_limits import grid_start, limits_on_grid, pooled_cls
 from .toys import bkg_fractions, fit_background, toy_counts
 
 __all__ = ["combined_toy_scans", "joint_toy_limit"]
 
 _TOY_CHUNK = 25   # toys per joint fit stack (toys x masses rows)
-
-_GRID = 10
-_EXTEND = 3
 
 
 class _Set:
@@ -98,10 +94,7 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
     reach = 1.0 if norms is None else math.exp(2.0 * float(np.max(np.sqrt(
         (norms**2).sum(axis=1)))))
     floor = -math.log(alpha) / s_per_mu / reach
-    refs = np.r_[exp_asym, obs_asym]
-    refs = refs[np.isfinite(refs) & (refs > 0)]
-    lo = max(0.7 * float(refs.min()), 0.9 * floor) if refs.size else 0.9 * floor
-    hi = max(1.5 * float(refs.max()) if refs.size else 0.0, 2.0 * lo)
+    lo, hi = grid_start(floor, obs_asym, exp_asym)
     ss = np.random.SeedSequence(seed)
     rng = np.random.default_rng(ss.spawn(1)[0])
     nu_b = [np.maximum(m.expected_background, 1e-300) for m in models]
@@ -109,7 +102,6 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
     aux_b = rng.standard_normal((ntoys, nj))
     toys_b = _Set(models, n_b, conv, norms, aux_b)
     data = _Set(models, [m.counts[None, :] for m in models], conv, norms, np.zeros((1, nj)))
-    points: dict[float, tuple[float, float, np.ndarray]] = {}
 
     def evaluate(mu: float) -> tuple[float, float, np.ndarray]:
         q_obs_a, r = data.q(mu)
@@ -136,36 +128,10 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
             a_pool = np.concatenate([aux_b, aux_sb])
             llr = llr + 0.5 * (a_pool**2).sum(axis=1) - 0.5 * ((a_pool - nu_hat) ** 2).sum(
                 axis=1)
-        q_pool = np.concatenate([q_b, q_sb])
-        c = np.r_[q_obs, q_b]
-        num = _tail(q_pool, 2.0 * special.expit(llr), c)
-        den = _tail(q_pool, 2.0 * special.expit(-llr), c)
-        cls_vals = np.where(den > 0, num / np.maximum(den, 1e-300), 1.0)
-        return q_obs, float(cls_vals[0]), cls_vals[1:]
+        return (q_obs, *pooled_cls(q_obs, q_b, q_sb, llr))
 
-    levels = special.ndtr(np.array(_BANDS, float))
-    todo = list(np.geomspace(lo, hi, _GRID))
-    notes: list[str] = []
-    for attempt in range(_EXTEND + 1):
-        for mu in todo:
-            points[float(mu)] = evaluate(float(mu))
-        grid = np.array(sorted(points))
-        cls_obs = np.array([points[m][1] for m in grid])
-        cls_b = np.stack([points[m][2] for m in grid], axis=1)
-        observed = _crossings(grid, cls_obs[None, :], alpha)[0]
-        band = np.quantile(_crossings(grid, cls_b, alpha), levels, method="inverted_cdf")
-        vals = np.r_[observed, band]
-        if np.all(np.isfinite(vals)) or attempt == _EXTEND:
-            break
-        todo = []
-        if np.any(vals == -np.inf):
-            todo += list(np.geomspace(grid[0] / 2.5, grid[0], 4)[:-1])
-        if np.any(vals == np.inf):
-            todo += list(np.geomspace(grid[-1], grid[-1] * 2.5, 4)[1:])
-    if not np.all(np.isfinite(vals)):
-        notes.append(f"combined toy limit outside the grid [{grid[0]:.4g}, {grid[-1]:.4g}]: "
-                     "reported as NaN")
-    vals = np.where(np.isfinite(vals), vals, np.nan)
+    points, grid, vals, notes = limits_on_grid(evaluate, lo, hi, alpha, "combined toy limit")
+    cls_obs = np.array([points[m][1] for m in grid])
     return {"observed": float(vals[0]),
             "expected": {n: float(v) for n, v in zip(_BANDS, vals[1:])},
             "grid": grid, "cls": cls_obs, "n_toys": ntoys,

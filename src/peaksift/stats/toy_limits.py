@@ -64,6 +64,63 @@ def _crossings(grid: np.ndarray, cls_vals: np.ndarray, alpha: float) -> np.ndarr
     return out
 
 
+def grid_start(floor: float, obs_asym: float, exp_asym: np.ndarray) -> tuple[float, float]:
+    """First grid of signal values: around the asymptotic limits, never below 0.9 of the
+    counting floor (no CLs limit lies below it)."""
+    refs = np.r_[exp_asym, obs_asym]
+    refs = refs[np.isfinite(refs) & (refs > 0)]
+    lo = max(0.7 * float(refs.min()), 0.9 * floor) if refs.size else 0.9 * floor
+    hi = max(1.5 * float(refs.max()) if refs.size else 0.0, 2.0 * lo)
+    return lo, hi
+
+
+def pooled_cls(q_obs: float, q_b: np.ndarray, q_sb: np.ndarray, llr: np.ndarray
+               ) -> tuple[float, np.ndarray]:
+    """CLs of the data and of every background-only toy (each taken as the observation)
+    from the pooled toys ``[q_b, q_sb]``, weighted by the balance heuristic from ``llr``
+    = ln p_s+b - ln p_b of each pooled toy (see :func:`_toy_limit`)."""
+    q_pool = np.concatenate([q_b, q_sb])
+    c = np.r_[q_obs, q_b]
+    num = _tail(q_pool, 2.0 * special.expit(llr), c)
+    den = _tail(q_pool, 2.0 * special.expit(-llr), c)
+    cls_vals = np.where(den > 0, num / np.maximum(den, 1e-300), 1.0)
+    return float(cls_vals[0]), cls_vals[1:]
+
+
+def limits_on_grid(evaluate: Any, lo: float, hi: float, alpha: float, what: str
+                   ) -> tuple[dict[float, tuple[float, float, np.ndarray]], np.ndarray,
+                              np.ndarray, list[str]]:
+    """Observed limit and expected band where CLs falls through ``alpha`` on a grid of
+    signal values from ``lo`` to ``hi``, grown (4 points, a factor 2.5 further) where a
+    limit falls outside it.  ``evaluate(mu)`` gives ``(q_obs, CLs_obs, CLs of each
+    background-only toy)``.  Returns the evaluated points, the grid, ``[observed, band...]``
+    (NaN outside the grid, with a note naming ``what``) and the notes."""
+    levels = special.ndtr(np.array(_BANDS, float))
+    points: dict[float, tuple[float, float, np.ndarray]] = {}
+    todo = list(np.geomspace(lo, hi, _GRID))
+    notes: list[str] = []
+    for attempt in range(_EXTEND + 1):
+        for mu in todo:
+            points[float(mu)] = evaluate(float(mu))
+        grid = np.array(sorted(points))
+        cls_obs = np.array([points[m][1] for m in grid])
+        cls_b = np.stack([points[m][2] for m in grid], axis=1)
+        observed = _crossings(grid, cls_obs[None, :], alpha)[0]
+        band = np.quantile(_crossings(grid, cls_b, alpha), levels, method="inverted_cdf")
+        vals = np.r_[observed, band]
+        if np.all(np.isfinite(vals)) or attempt == _EXTEND:
+            break
+        todo = []
+        if np.any(vals == -np.inf):
+            todo += list(np.geomspace(grid[0] / 2.5, grid[0], 4)[:-1])
+        if np.any(vals == np.inf):
+            todo += list(np.geomspace(grid[-1], grid[-1] * 2.5, 4)[1:])
+    if not np.all(np.isfinite(vals)):
+        notes.append(f"{what} outside the grid [{grid[0]:.4g}, {grid[-1]:.4g}]: "
+                     "reported as NaN")
+    return points, grid, np.where(np.isfinite(vals), vals, np.nan), notes
+
+
 @dataclass(frozen=True)
 class _ToyLimitTask:
     """One mass's toy limit as a picklable unit of work (see :func:`run_toy_limit`)."""
@@ -125,10 +182,7 @@ def _toy_limit(model: ScanModel, jj: int, conv: float, delta: float, kind: str, 
     alpha = 1.0 - cl
     f = model.fractions[jj]
     floor = -math.log(alpha) / (conv * float(f.sum())) / _floor_reach(delta, kind)
-    refs = np.r_[exp_asym, obs_asym]
-    refs = refs[np.isfinite(refs) & (refs > 0)]
-    lo = max(0.7 * float(refs.min()), 0.9 * floor) if refs.size else 0.9 * floor
-    hi = max(1.5 * float(refs.max()) if refs.size else 0.0, 2.0 * lo)
+    lo, hi = grid_start(floor, obs_asym, exp_asym)
     ss = np.random.SeedSequence(seed)
     rng = np.random.default_rng(ss.spawn(1)[0])
     nu_b = np.maximum(model.expected_background, 1e-300)
@@ -136,7 +190,6 @@ def _toy_limit(model: ScanModel, jj: int, conv: float, delta: float, kind: str, 
     aux_b = rng.standard_normal(ntoys) if delta else np.zeros(ntoys)
     free_b = _unconditional(model, n_b, np.broadcast_to(f, n_b.shape))
     free_o = _unconditional(model, model.counts[None, :], f[None, :])
-    points: dict[float, tuple[float, float, np.ndarray]] = {}
 
     def evaluate(mu: float) -> tuple[float, float, np.ndarray]:
         prob = _Problem(model, model.counts, f[None, :], np.array([conv]), delta, kind,
@@ -157,37 +210,10 @@ def _toy_limit(model: ScanModel, jj: int, conv: float, delta: float, kind: str, 
         llr = n_pool @ (np.log(nu_sb) - np.log(nu_b)) - (nu_sb.sum() - nu_b.sum())
         if delta:
             llr = llr + 0.5 * a_pool**2 - 0.5 * (a_pool - t_sb) ** 2
-        q_pool = np.concatenate([q_b, q_sb])
-        c = np.r_[q_obs, q_b]
-        num = _tail(q_pool, 2.0 * special.expit(llr), c)
-        den = _tail(q_pool, 2.0 * special.expit(-llr), c)
-        cls_vals = np.where(den > 0, num / np.maximum(den, 1e-300), 1.0)
-        return q_obs, float(cls_vals[0]), cls_vals[1:]
+        return (q_obs, *pooled_cls(q_obs, q_b, q_sb, llr))
 
-    levels = special.ndtr(np.array(_BANDS, float))
-    todo = list(np.geomspace(lo, hi, _GRID))
-    notes: list[str] = []
-    for attempt in range(_EXTEND + 1):
-        for mu in todo:
-            points[float(mu)] = evaluate(float(mu))
-        grid = np.array(sorted(points))
-        cls_obs = np.array([points[m][1] for m in grid])
-        cls_b = np.stack([points[m][2] for m in grid], axis=1)
-        observed = _crossings(grid, cls_obs[None, :], alpha)[0]
-        band = np.quantile(_crossings(grid, cls_b, alpha), levels, method="inverted_cdf")
-        vals = np.r_[observed, band]
-        if np.all(np.isfinite(vals)) or attempt == _EXTEND:
-            break
-        # grow the grid where a limit fell outside it (4 points, factor 2.5 further)
-        todo = []
-        if np.any(vals == -np.inf):
-            todo += list(np.geomspace(grid[0] / 2.5, grid[0], 4)[:-1])
-        if np.any(vals == np.inf):
-            todo += list(np.geomspace(grid[-1], grid[-1] * 2.5, 4)[1:])
-    if not np.all(np.isfinite(vals)):
-        notes.append(f"toy limit outside the grid [{grid[0]:.4g}, {grid[-1]:.4g}]: "
-                     "reported as NaN")
-    vals = np.where(np.isfinite(vals), vals, np.nan)
+    points, grid, vals, notes = limits_on_grid(evaluate, lo, hi, alpha, "toy limit")
+    cls_obs = np.array([points[m][1] for m in grid])
     return {"observed": float(vals[0]),
             "expected": {n: float(v) for n, v in zip(_BANDS, vals[1:])},
             "grid": grid, "cls": cls_obs,
