@@ -29,7 +29,10 @@ Steps and where their numbers come from
 4. Free fit at the best hypothesis with ``model.signal`` (mass and width float, unless
    ``model.fix`` / ``constrain`` / ``bounds`` / ``sigma_from_resolution`` say otherwise),
    with profile-likelihood intervals of mass, width and yield: the ``fit`` section of
-   results.json (``fit.settings`` echoes what was held or constrained).
+   results.json (``fit.settings`` echoes what was held or constrained).  While blinded
+   there is no such fit; the background is fitted on the sidebands instead
+   (:func:`~peaksift.search.sideband.sideband_fit` -> :class:`SidebandFit`, the
+   results.json ``background_fit``), extrapolated under the blinded window.
 5. Limits: :func:`peaksift.upper_limits` (CLs, asymptotic or toys).
 6. Known particles: :func:`peaksift.resonances.match_known` around the fitted mass.
 """
@@ -40,7 +43,9 @@ from .demo import DEMO_CONFIG, demo_config_text, write_demo_config
 from .fit import FIT_FILES, run_fit
 from .result import SearchResult, SpectrumResult
 from .run import run_search
+from .sideband import SidebandFit
 from .spectrum import run_spectrum
 
-__all__ = ["DEMO_CONFIG", "FIT_FILES", "SearchResult", "SpectrumResult", "demo_config_text",
+__all__ = ["DEMO_CONFIG", "FIT_FILES", "SearchResult", "SidebandFit", "SpectrumResult",
+           "demo_config_text",
            "run_fit", "run_search", "run_spectrum", "write_demo_config"]

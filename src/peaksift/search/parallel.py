@@ -40,6 +40,14 @@ def forking() -> bool:
             and resolve_start_method("auto") == "fork")
 
 
+def cpu_seconds() -> float:
+    """User + system CPU time of this process so far (a forked child starts from 0)."""
+    import resource
+
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
+
+
 def _child_start(parent: int) -> None:
     worker_start()  # Ctrl-C is the parent's to handle: it stops us
     die_with_parent(parent)
@@ -62,6 +70,7 @@ class Beside:
         self._call = (fn, args, kw)
         self._proc: Any = None
         self._conn: Any = None
+        self.cpu = 0.0  # CPU seconds the child used (0 when computed here)
         if not forking():
             return
         import multiprocessing
@@ -78,7 +87,7 @@ class Beside:
         fn, args, kw = self._call
         if self._proc is not None:
             try:
-                ok, value, caught, seconds = self._conn.recv()
+                ok, value, caught, seconds, self.cpu = self._conn.recv()
             except (EOFError, OSError):  # the child died: compute here instead
                 ok, value, caught, seconds = False, None, [], 0.0
             self._proc.join()
@@ -107,7 +116,8 @@ def _beside_child(conn: Any, parent: int, fn: Callable[..., Any], args: tuple[An
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             value = fn(*args, **kw)
-        conn.send((True, value, [_record(w) for w in caught], time.perf_counter() - t))
+        conn.send((True, value, [_record(w) for w in caught], time.perf_counter() - t,
+                   cpu_seconds()))
         code = 0
     except BaseException:  # noqa: BLE001 -- the parent computes it again and raises
         _log.debug("stage beside failed; computed again in the parent", exc_info=True)
@@ -129,6 +139,7 @@ class FigureWorker:
         self.outdir, self.kw = Path(outdir), kw
         self.jobs: list[tuple[tuple[str, ...], Any, dict[str, Any]]] = []
         self._proc: Any = None
+        self.cpu = 0.0  # CPU seconds the child used
         if not forking():
             return
         import multiprocessing
@@ -157,7 +168,7 @@ class FigureWorker:
         if self._proc is not None:
             self._queue.put(None)
             try:
-                drawn, done, caught = self._conn.recv()
+                drawn, done, caught, self.cpu = self._conn.recv()
             except (EOFError, OSError):  # the child died: everything is drawn here
                 drawn, done, caught = {}, set(), []
             self._proc.join()
@@ -227,6 +238,6 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
         _log.debug("figure process stopped", exc_info=True)
     finally:
         try:
-            conn.send((drawn, done, caught))
+            conn.send((drawn, done, caught, cpu_seconds()))
         finally:
             os._exit(code)

@@ -30,7 +30,7 @@ from .common import (
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
 from .identification import dedx_identification
-from .parallel import Beside, FigureWorker
+from .parallel import Beside, FigureWorker, cpu_seconds
 from .result import SearchResult
 from .signal import search_signal_model
 from .staging import _apply_overrides, _check_inputs, _staged, _Staging, _target
@@ -188,13 +188,6 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     seed = cfg.significance.seed
 
     smodel = search_signal_model(cfg, progress=progress)
-    # the limits need nothing of what follows: they run beside it, unless toys are asked
-    # for (those run here, on the configured engine, with their progress bar)
-    limits_job = None
-    if cfg.limits.enabled and cfg.limits.method != "toys" and cfg.execution.engine == "serial":
-        limits_job = Beside(_limits, cfg, hist, scan_sig, bkg, masses, width, blind_window,
-                            False, smodel)
-        besides.append(limits_job)
     if smodel is None:
         sres = scan(hist, scan_sig, bkg, masses, resolution=res.resolution, window=(lo, hi),
                     natural_width=width, blind=blind_window, refit=False)
@@ -202,6 +195,17 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         sres = scan(hist, None, bkg, masses, window=(lo, hi), blind=blind_window,
                     refit=False, signal_model=smodel)
     clock.lap("mass scan")
+    # the limits need nothing of what follows: they run beside it, unless toys are asked
+    # for (those run here, on the configured engine, with their progress bar).  Started
+    # after the scan and with their module loaded here, so the process inherits the loaded
+    # modules and compiled kernels instead of loading them a second time.
+    limits_job = None
+    if cfg.limits.enabled and cfg.limits.method != "toys" and cfg.execution.engine == "serial":
+        from ..stats import limits as _  # noqa: F401  (loaded once, shared by the fork)
+
+        limits_job = Beside(_limits, cfg, hist, scan_sig, bkg, masses, width, blind_window,
+                            False, smodel)
+        besides.append(limits_job)
     best = dict(sres.global_significance(
         method=cfg.significance.method, toys=cfg.significance.toys, seed=seed,
         u0=cfg.significance.reference_level, progress=progress,
@@ -316,6 +320,10 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                             band=cfg.identification.band)
     clock.lap("figures (here)")
     drawn = {**drawer.finish(), **more}
+    # CPU seconds of each process of the run: the main line is the critical path, the
+    # others may overlap it (their sum over the cores bounds the wall time from below)
+    prov["cpu"] = {"main": round(cpu_seconds(), 2), "figures": round(drawer.cpu, 2),
+                   **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {})}
     order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}
