@@ -371,3 +371,25 @@ def test_fit_out_refuses_a_directory_of_other_files(tiny_data, capsys, tmp_path)
     rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", "100", "--out",
                                str(foreign / "notes.txt")])
     assert rc == 2 and "not a folder" in _one_line(err)
+
+
+def test_output_into_a_closed_pipe_is_not_a_traceback(tmp_path):
+    """`peaksift demo DIR | head -1`: the reader leaves before peaksift's last line.  As
+    Python's `signal` documentation recommends ("Note on SIGPIPE"), the command ends quietly
+    with 128 + SIGPIPE = 141 and no traceback or "Exception ignored" line; its files are
+    complete."""
+    import os
+    import subprocess
+    import sys
+
+    src = Path(__file__).resolve().parents[1] / "src"
+    r, w = os.pipe()
+    os.close(r)  # nobody will ever read: the first print fails with EPIPE
+    env = {**os.environ, "PYTHONPATH": str(src)}
+    proc = subprocess.run([sys.executable, "-m", "peaksift", "demo", str(tmp_path / "d"),
+                           "--events", "2000"], stdout=w, stderr=subprocess.PIPE, text=True,
+                          env=env, timeout=300, check=False)
+    os.close(w)
+    assert proc.returncode == 141, proc.stderr
+    assert "Traceback" not in proc.stderr and "Exception ignored" not in proc.stderr
+    assert (tmp_path / "d" / "truth.json").is_file()

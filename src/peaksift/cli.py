@@ -479,6 +479,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("peaksift: interrupted; no outputs were written", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # the reader of our output left (`peaksift ... | head`): the run's files are written;
+        # point stdout at /dev/null so the interpreter's final flush does not fail again
+        # (the recipe of Python's `signal` documentation, "Note on SIGPIPE"); 128 + SIGPIPE
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141
 
 
 if __name__ == "__main__":  # pragma: no cover
