@@ -133,18 +133,3 @@ def __getattr__(name: str) -> Any:
 
 def __dir__() -> list[str]:
     return sorted(set(__all__) | set(globals()))
-
-
-class _Package(types.ModuleType):
-    """Importing a submodule binds it on its package.  Where a public function has its
-    module's name (``scan`` in ``scan.py``), that would hide the function from every later
-    ``from peaksift.stats import scan``; the function is bound instead, as an eager
-    ``from .scan import scan`` did."""
-
-    def __setattr__(self, name: str, value: Any) -> None:
-        if isinstance(value, types.ModuleType) and _EXPORTS.get(name) == name:
-            value = getattr(value, name)
-        super().__setattr__(name, value)
-
-
-sys.modules[__name__].__class__ = _Package
