@@ -1,5 +1,5 @@
 """Toy-based combined CLs limits at low counts (peaksift.stats.channel_limits and
-.channel_toy_limits), against exact counting CLs (Read, J. Phys. G 28 (2002) 2693, eq. 5;
+.channel_toys), against exact counting CLs (Read, J. Phys. G 28 (2002) 2693, eq. 5;
 scipy.stats.poisson) of the two channels' counts summed."""
 
 from __future__ import annotations

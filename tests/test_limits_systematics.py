@@ -220,3 +220,19 @@ def test_shape_nuisances_widen_the_expected_limits():
     assert np.all(np.asarray(with_["expected"]) >= np.asarray(without["expected"]) * 0.999)
     assert np.all(np.asarray(with_["expected_plus2"])
                   >= np.asarray(without["expected_plus2"]) * 0.999)
+
+
+def test_blinded_limits_with_systematics_give_expected_only_inside():
+    """While blinded: no observed limit inside the blinded range (the data there are not
+    seen), the expected bands everywhere and ordered (Cowan et al. 2011, sec. 4.3: median
+    inside its +-2 sigma band), observed limits outside."""
+    x, w = _data()
+    masses = np.array([120.0, 150.0, 180.0])
+    nuis = SignalNuisances.make({"mass_scale": 0.01, "mass_resolution": 0.2})
+    res = systematic_limits((x, w), "gaussian", {"exppoly1": candidate_shapes(["exppoly1"])[
+        "exppoly1"]}, masses, resolution=resolution_from(None, absolute=SIGMA), window=WINDOW,
+        bins=100, nuisances=nuis, blind=(145.0, 155.0), **NORM)
+    assert res["observed"][1] is None and res["blinded"] == [False, True, False]
+    for i in range(3):
+        assert 0 < res["expected_minus2"][i] < res["expected"][i] < res["expected_plus2"][i]
+    assert res["observed"][0] > 0 and res["observed"][2] > 0

@@ -129,7 +129,9 @@ class Terminated(KeyboardInterrupt):
 @contextlib.contextmanager
 def sigterm_as_interrupt() -> Iterator[None]:
     """While inside: SIGTERM raises :class:`Terminated` in the main thread (once: a second
-    SIGTERM during the clean-up is ignored, so the clean-up can finish).  Outside the main
+    SIGTERM during the clean-up is ignored, so the clean-up can finish).  A SIGTERM that
+    arrives inside a native callback is delivered when the callback has returned (SIGALRM
+    retries it: the context owns SIGALRM while inside).  Outside the main
     thread this does nothing (Python delivers signals to the main thread only)."""
     import threading
 
@@ -138,14 +140,39 @@ def sigterm_as_interrupt() -> Iterator[None]:
         return
 
     def handler(signum: int, frame: Any) -> None:
+        if _inside_native_callback(frame):  # raised here, ctypes would print and drop it
+            signal.setitimer(signal.ITIMER_REAL, _RETRY)  # ask again once out of there
+            return
         signal.signal(signal.SIGTERM, signal.SIG_IGN)
+        signal.setitimer(signal.ITIMER_REAL, 0)
         raise Terminated
 
+    def retry(signum: int, frame: Any) -> None:
+        handler(signum, frame)
+
     old = signal.signal(signal.SIGTERM, handler)
+    old_alarm = signal.signal(signal.SIGALRM, retry)
     try:
         yield
     finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, old_alarm)
         signal.signal(signal.SIGTERM, old)
+
+
+#: seconds between two attempts to deliver a SIGTERM that arrived inside a native callback
+_RETRY = 0.05
+
+
+def _inside_native_callback(frame: Any) -> bool:
+    """True while Python code that C calls back runs -- llvmlite's hooks while numba compiles
+    a kernel (the first run of a fresh install).  An exception raised in such a callback is
+    printed by ctypes and dropped, so the run would go on as if no SIGTERM had come."""
+    while frame is not None:
+        if "llvmlite" in frame.f_code.co_filename:
+            return True
+        frame = frame.f_back
+    return False
 
 
 def arrow_threads_from_env() -> None:

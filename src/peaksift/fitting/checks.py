@@ -137,3 +137,21 @@ def tie_indices(cost: Any) -> list[tuple[int, int, Any]]:
     if not ties:
         return []
     return [(int(cost.inner.free[t]), int(cost.free[s]), tie) for t, s, tie in ties]
+
+
+#: Delta(-2 ln L) by which a later start must beat an earlier valid minimum before the
+#: result says so (below it the two are the same minimum for any purpose; our choice)
+LOWER_MINIMUM_NOTE = 0.1
+
+
+def note_lower_minimum(fr: Any, superseded: float | None) -> Any:
+    """``fr`` (a FitResult) with a note when a later start went below an earlier valid
+    minimum of NLL ``superseded`` by more than ``LOWER_MINIMUM_NOTE`` in -2 ln L."""
+    import dataclasses
+
+    gap = math.nan if superseded is None else 2.0 * (superseded - float(fr.nll))
+    if not gap > LOWER_MINIMUM_NOTE:
+        return fr
+    return dataclasses.replace(fr, notes=(*fr.notes, (
+        f"a later start found a lower minimum than an earlier valid one (-2 ln L lower by "
+        f"{gap:.3g}); the lowest is kept")))

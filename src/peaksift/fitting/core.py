@@ -10,7 +10,6 @@ made is returned flagged invalid with its reasons.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import warnings
 from collections.abc import Mapping, Sequence
@@ -40,6 +39,7 @@ from .checks import (
     as_values,
     check_fixed,
     check_support,
+    note_lower_minimum,
     tie_indices,
     tie_rows,
 )
@@ -274,17 +274,7 @@ def fit(
     fr = _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
                  problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
                  tuple(tried), calls, floors)
-    gap = math.nan if superseded is None else 2.0 * (superseded - float(fbest))
-    if gap > _LOWER_MINIMUM_NOTE:
-        fr = dataclasses.replace(fr, notes=(*fr.notes, (
-            f"a later start found a lower minimum than an earlier valid one (-2 ln L lower "
-            f"by {gap:.3g}); the lowest is kept")))
-    return fr
-
-
-#: Delta(-2 ln L) by which a later start must beat an earlier valid minimum before the
-#: result says so (below it the two are the same minimum for any purpose; our choice)
-_LOWER_MINIMUM_NOTE = 0.1
+    return note_lower_minimum(fr, superseded)
 
 
 def _read_only(a: np.ndarray) -> np.ndarray:
@@ -475,7 +465,9 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
     for i, floor in floors.items():
         # at the floor, or within one error of it: the width is not measured, the peak is a
         # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
-        if not is_fixed[i] and (vals[i] <= floor * (1.0 + 1e-3) or not err[i] < vals[i] - floor):
+        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
+        if not is_fixed[i] and (vals[i] <= floor * (1.0 + 1e-3)
+                                or (math.isfinite(err[i]) and err[i] >= vals[i] - floor)):
             problems = [*problems, (f"{names[i]} at or within one error of its floor (a "
                                     f"bound) {floor:g} {d.unit}, {_FLOOR_FRACTION:g} of the "
                                     "narrowest bin: the peak is narrower than the binning "

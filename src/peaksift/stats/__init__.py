@@ -106,6 +106,23 @@ __all__ = [
 ]
 
 
+class _Package(types.ModuleType):
+    """The import system binds a submodule as an attribute of its package on first import;
+    where a submodule shares its name with a public function (``scan``), that binding would
+    make ``from peaksift.stats import scan`` return the module once anything imported
+    ``peaksift.stats.scan``.  The function wins: such a binding is dropped (the module stays
+    in ``sys.modules``)."""
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if (isinstance(value, types.ModuleType) and name in _EXPORTS
+                and value.__name__ == f"{__name__}.{name}"):
+            return
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Package
+
+
 def __getattr__(name: str) -> Any:
     if name in _EXPORTS:
         value = getattr(importlib.import_module(f".{_EXPORTS[name]}", __name__), name)

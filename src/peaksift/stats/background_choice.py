@@ -256,9 +256,11 @@ def fit_candidate(spec: Any, used: np.ndarray, shape: Any,
         if extra_start is None:
             th, b, nll = _fit_data_background(model, counts, start)
             return th[0], float(b[0]), float(nll[0])
+        # 100 steps: on the demo the NLLs agree with 300 to 1e-10 at a third of the time
+        # (the default start's row may crawl without gaining; the embedded one converges)
         starts = np.clip(np.vstack([extra_start, start]), model.lower, model.upper)
         th, b, nll = fit_background(model, np.broadcast_to(counts, (2, counts.size)), starts,
-                                    steps=300)
+                                    steps=100)
     nll = np.where(np.isfinite(nll), nll, np.inf)
     i = int(np.argmin(nll))
     return th[i], float(b[i]), float(nll[i])

@@ -7,7 +7,7 @@
   :func:`~peaksift.stats.limits.expected_band_factor`;
 * toys (Read, J. Phys. G 28 (2002) 2693) where the summed background under the signal is
   below ``low_count_background`` events and ``method="auto"`` (or at ``toy_masses`` with
-  ``method="toys"``): :func:`peaksift.stats.channel_toy_limits.joint_toy_limit`, the toys
+  ``method="toys"``): :func:`peaksift.stats.channel_toys.joint_toy_limit`, the toys
   generating every channel;
 * each channel's own limits from :func:`peaksift.upper_limits` with its luminosity,
   efficiency and their uncertainties (same ``method``).
@@ -27,7 +27,7 @@ import numpy as np
 from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
-from .channel_toy_limits import joint_toy_limit
+from .channel_toys import joint_toy_limit
 from .channels import Channel, _full_model, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .joint import profile_joint

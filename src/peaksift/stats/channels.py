@@ -42,11 +42,12 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
+from .channel_toys import combined_toy_scans
 from .joint import profile_joint
 from .scan import scan_prepared
 from .scan_inputs import _prepare_model, _signal_params
 from .significance import p_from_q0, z_from_q0
-from .toys import bkg_fractions, fit_background, toy_counts
+from .toys import bkg_fractions, fit_background
 
 __all__ = [
     "Channel",
@@ -55,8 +56,6 @@ __all__ = [
     "combined_toy_scans",
     "signal_norms",
 ]
-
-_TOY_CHUNK = 25   # toys per joint fit stack (toys x masses rows)
 
 
 @dataclass(frozen=True)
@@ -493,34 +492,3 @@ class Combination(FrozenValue):
         from .channel_plot import pvalue_figure
 
         return pvalue_figure(self, path, title=title, run=run, symbol=symbol)
-
-
-def combined_toy_scans(models: list, conv: list[np.ndarray], n_toys: int, *,
-                       seed: int = 0, norms: Any = None) -> np.ndarray:
-    """q0 scans ``(n_toys, n_masses)`` of background-only toys of every channel, each
-    channel fluctuated from its background-only fit (toy ``i`` of channel ``c`` from
-    ``SeedSequence(seed, spawn_key=(c, i))``), fitted with the joint likelihood (with the
-    normalisation nuisances ``norms`` when given; their auxiliary measurements stay at 0:
-    under the background-only hypothesis they do not change the toys)."""
-    if n_toys < 1:
-        raise FitError(f"toys must be a positive number of pseudo-experiments, got {n_toys}")
-    nm = models[0].masses.size
-    out = np.empty((n_toys, nm))
-    roots = [np.random.SeedSequence(seed, spawn_key=(c,)) for c in range(len(models))]
-    for first in range(0, n_toys, _TOY_CHUNK):
-        cnt = min(_TOY_CHUNK, n_toys - first)
-        counts, th0, b0, nll0 = [], [], [], 0.0
-        for c, m in enumerate(models):
-            n = toy_counts(m.expected_background, roots[c], first, cnt)
-            th, b, nll = fit_background(m, n)
-            counts.append(np.repeat(n, nm, axis=0))
-            th0.append(np.repeat(th, nm, axis=0))
-            b0.append(np.repeat(b, nm))
-            nll0 = nll0 + np.repeat(nll, nm)
-        r = profile_joint(models, counts, [np.tile(m.fractions, (cnt, 1)) for m in models],
-                          [np.tile(k, cnt) for k in conv], theta_start=th0, b_start=b0,
-                          steps=40, tol=3e-2, norms=norms)
-        q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
-        q[~np.isfinite(r["nll"]) | ~np.isfinite(nll0)] = np.nan
-        out[first:first + cnt] = q.reshape(cnt, nm)
-    return out

@@ -36,6 +36,7 @@ class _Problem:
     theta: np.ndarray = None  # warm starts
     b: np.ndarray = None
     t: np.ndarray = None
+    last: np.ndarray = None   # the mu of the warm starts
 
     def __post_init__(self) -> None:
         nb = self.fractions.shape[0]
@@ -68,6 +69,18 @@ class _Problem:
     def nll(self, mu: np.ndarray) -> np.ndarray:
         """NLL profiled over background and nuisance at fixed parameter of interest ``mu``."""
         mu = np.asarray(mu, float)
+        if self.last is not None:
+            # a warm start from a mu ten times away (the bisection's far bracket end: a
+            # signal 1000 times too large) can leave the background fit in a poor place it
+            # does not leave again; start those rows afresh
+            with np.errstate(divide="ignore", invalid="ignore"):
+                far = ~(np.abs(np.log(np.maximum(mu, 1e-300)
+                                      / np.maximum(self.last, 1e-300))) <= math.log(10.0))
+            if far.any():
+                self.theta[far] = self.model.theta
+                self.b[far] = self.model.bkg_yield
+                self.t[far] = self.aux[far]
+        self.last = np.array(np.broadcast_to(mu, self.t.shape), float)
         steps = 1 if self.delta == 0 else 5
         t = self.t.copy()
         for it in range(steps):

@@ -27,7 +27,12 @@ own profile scan (:func:`peaksift.stats.scan`, signal nuisances included),
           - \min_c[2\mathrm{NLL}^{(0)}_c - q_{0,c}(m) + aN_c].
 
 Toys are generated from the background-only fit of the function the envelope chooses at
-s = 0 and each is evaluated with the same envelope (every candidate's batched toy scan).
+s = 0 and each is evaluated with the same envelope: every candidate's batched (linearised)
+toy scan, then exact fits, signal nuisances free, of the function the envelope takes at the
+toy's highest points, round after round until the toy's maximum sits at a refitted point
+(:func:`run_envelope_toy_batch`; measured against every candidate refitted at every mass
+by ``scripts/study_nuisance_refine.py``).  ``spurious=`` adds each candidate's spurious
+signal as a yield uncertainty (:func:`spurious_weights`).
 The asymptotic Z = sqrt(q0) of the envelope is an approximation (the paper's; the choice
 of function is not a continuous parameter): the toy study in ``scripts/study_envelope.py``
 measures its calibration.
