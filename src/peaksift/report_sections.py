@@ -72,7 +72,9 @@ CAPTIONS = {
 # captions that differ while the run is blinded (no fit drawn, nothing shown inside)
 BLINDED_CAPTIONS = {
     "spectrum": "Selected mass spectrum while blinded: the bins overlapping the blinded window "
-                "(hatched) are hidden, and no signal-plus-background fit or pulls are drawn "
+                "(hatched) are hidden. The background function fitted to the sidebands is "
+                "drawn solid, its extrapolation across the blinded window dashed, with the "
+                "pulls of the sideband bins beneath; no signal-plus-background fit is made "
                 "until the run is unblinded.",
     "pvalue_scan": "Local p-value of the background-only hypothesis at each mass hypothesis "
                    "outside the blinded window (none is computed inside it), with the "
