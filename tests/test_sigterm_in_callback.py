@@ -50,3 +50,31 @@ def test_sigterm_inside_a_native_callback_is_delivered_after_it(capfd):
         reached_end = True
     assert finished == [True] and not reached_end
     assert "Exception ignored" not in capfd.readouterr().err
+
+
+def _child_resets_late(delay: float) -> None:
+    time.sleep(delay)  # the window between the fork and the child's own signal set-up
+    from peaksift._processes import worker_start
+
+    worker_start()
+    time.sleep(30.0)
+
+
+def test_a_child_stopped_before_its_signal_setup_ends_by_sigterm():
+    """POSIX fork(2)/sigaction(2): a forked child inherits the parent's signal handlers and
+    signal mask.  A child stopped (SIGTERM) before it reset its handlers would run the
+    parent's Python handler and raise Terminated in its copy of the parent's stack; forked
+    under ``sigterm_held`` the signal waits until ``worker_start`` and then ends the child by
+    the default action (exit code -SIGTERM)."""
+    import multiprocessing
+
+    from peaksift._processes import quiet_fork, sigterm_held
+
+    ctx = multiprocessing.get_context("fork")
+    with sigterm_as_interrupt():
+        proc = ctx.Process(target=_child_resets_late, args=(0.5,), daemon=True)
+        with quiet_fork(), sigterm_held():
+            proc.start()
+        os.kill(proc.pid, signal.SIGTERM)  # long before the child's worker_start
+        proc.join(timeout=60)
+    assert proc.exitcode == -signal.SIGTERM

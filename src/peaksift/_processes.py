@@ -33,7 +33,7 @@ from typing import Any
 
 __all__ = ["WORKER_ENV", "Terminated", "arrow_threads_from_env", "die_with_parent",
            "process_pool", "quiet_fork", "resolve_start_method", "sigterm_as_interrupt",
-           "stop_pool", "worker_start"]
+           "sigterm_held", "stop_pool", "worker_start"]
 
 #: Environment of the worker processes we start (unless the user set these): they run one
 #: process per core, so Arrow's decoding threads and BLAS threads would only contend with
@@ -61,6 +61,25 @@ def quiet_fork() -> Iterator[None]:
         warnings.filterwarnings("ignore", message=r".*use of fork\(\) may lead to deadlocks",
                                 category=DeprecationWarning)
         yield
+
+
+@contextlib.contextmanager
+def sigterm_held() -> Iterator[None]:
+    """Around a fork whose child calls :func:`worker_start` first: SIGTERM stays pending in
+    this thread while inside, and the child starts with it blocked.  Without this, a SIGTERM
+    that reaches the child before it resets its handler (a parent stopping a child it just
+    started) runs the handler the child inherited: :class:`Terminated` is raised in the
+    child's copy of the parent's stack and the child carries on as the parent, running the
+    parent's code (seen with a search stopped by an input error right after forking its
+    figure process, inside a test session).  :func:`worker_start` unblocks it."""
+    if not hasattr(signal, "pthread_sigmask"):  # pragma: no cover - not on Windows
+        yield
+        return
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGTERM})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
 
 
 def process_pool(size: int, start_method: str = "auto",
@@ -139,16 +158,21 @@ def sigterm_as_interrupt() -> Iterator[None]:
         yield
         return
 
+    pending = [False]
+
     def handler(signum: int, frame: Any) -> None:
         if _inside_native_callback(frame):  # raised here, ctypes would print and drop it
+            pending[0] = True
             signal.setitimer(signal.ITIMER_REAL, _RETRY)  # ask again once out of there
             return
+        pending[0] = False
         signal.signal(signal.SIGTERM, signal.SIG_IGN)
         signal.setitimer(signal.ITIMER_REAL, 0)
         raise Terminated
 
     def retry(signum: int, frame: Any) -> None:
-        handler(signum, frame)
+        if pending[0]:  # only our own retry: any other SIGALRM inside is not a SIGTERM
+            handler(signum, frame)
 
     old = signal.signal(signal.SIGTERM, handler)
     old_alarm = signal.signal(signal.SIGALRM, retry)
@@ -190,6 +214,8 @@ def worker_start() -> None:
     handler a forked worker inherited from the caller; one thread per library."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if hasattr(signal, "pthread_sigmask"):  # started under sigterm_held: a pending SIGTERM
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGTERM})  # now ends us
     for k, v in WORKER_ENV.items():
         os.environ.setdefault(k, v)
     arrow_threads_from_env()

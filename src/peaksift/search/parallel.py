@@ -29,7 +29,13 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from .._processes import die_with_parent, quiet_fork, resolve_start_method, worker_start
+from .._processes import (
+    die_with_parent,
+    quiet_fork,
+    resolve_start_method,
+    sigterm_held,
+    worker_start,
+)
 
 _log = logging.getLogger("peaksift.search")
 
@@ -79,7 +85,7 @@ class Beside:
         self._conn, child_end = ctx.Pipe(duplex=False)
         self._proc = ctx.Process(target=_beside_child, daemon=True,
                                  args=(child_end, os.getpid(), fn, args, kw))
-        with quiet_fork():
+        with quiet_fork(), sigterm_held():  # the child unblocks SIGTERM in worker_start
             self._proc.start()
         child_end.close()
 
@@ -149,7 +155,7 @@ class FigureWorker:
         self._conn, child_end = ctx.Pipe(duplex=False)
         self._proc = ctx.Process(target=_figure_child, daemon=True,
                                  args=(self._queue, child_end, os.getpid(), self.outdir, kw))
-        with quiet_fork():
+        with quiet_fork(), sigterm_held():  # the child unblocks SIGTERM in worker_start
             self._proc.start()
         child_end.close()
 
