@@ -146,19 +146,27 @@ def _same(python, stored):
 
 
 def _results(search):
+    from peaksift import shapes
     from peaksift.search.common import _blinded_copy
     from peaksift.search.sideband import sideband_fit
+    from peaksift.stats.envelope import envelope_scan
 
     cfg = search.config
     sb = sideband_fit(_blinded_copy(search.histogram, (145.0, 160.0)), "gaussian",
                       cfg.model.background, cfg.spectrum.window, (145.0, 160.0))
+    # two candidates, a blinded stretch (None in the JSON) and a spurious-signal term
+    env = envelope_scan(search.histogram, {"exp": shapes.get("exppoly", order=1),
+                                           "power": shapes.get("powersum", terms=1)},
+                        "gaussian", np.linspace(120.0, 180.0, 13), window=cfg.spectrum.window,
+                        blind=(145.0, 160.0), absolute_resolution=2.0,
+                        spurious={"exp": 0.3})
     return {"fit": search.fit, "background_fit": search.background_fit,
             "scan": search.scan, "limits": search.limits, "sideband_fit": sb,
-            "search": search}
+            "envelope": env, "search": search}
 
 
 @pytest.mark.parametrize("kind", ["fit", "background_fit", "scan", "limits", "sideband_fit",
-                                  "search"])
+                                  "envelope", "search"])
 def test_json_keys_are_the_python_attribute_names(search, kind):
     """Every key results.json writes for a result is an attribute of the same name holding
     the same numbers, and the result read back from the JSON equals the one written."""
@@ -188,3 +196,18 @@ def test_results_json_of_earlier_versions_still_loads(search):
     back = SearchResult.from_dict(old)
     assert back.scan == search.scan and back.limits == search.limits
     assert back.background_fit == search.background_fit
+
+
+def test_envelope_dict_of_earlier_versions_still_loads(search):
+    """An EnvelopeResult dict written before the keys took the attribute names (``mass``,
+    ``functions``, ``spurious_weights``, the chosen functions by label) loads the same."""
+    from peaksift.stats.envelope import EnvelopeResult
+
+    env = _results(search)["envelope"]
+    d = _json(env.to_dict())
+    old = {k: v for k, v in d.items() if k not in ("masses", "labels", "spurious",
+                                                  "best_index", "best_mass")}
+    old.update(mass=d["masses"], functions=d["labels"], spurious_weights=d["spurious"],
+               chosen=[d["labels"][c] for c in d["chosen"]],
+               null_choice=d["labels"][d["null_choice"]])
+    assert EnvelopeResult.from_dict(old) == env

@@ -103,6 +103,8 @@ def test_systematics_block_with_and_without(run):
     env = sy["envelope"]
     assert set(env["functions"]) == set(sy["background_choice"]["kept"])
     assert env["chosen_at_best"] in env["functions"]
+    # the envelope's masses under the attribute's name, one per local Z
+    assert "mass" not in env and len(env["masses"]) == len(env["z_local"])
     assert set(sy["nuisance_pulls"]) == {"mass_scale", "mass_resolution"}
     assert all(abs(v) < 5 for v in sy["nuisance_pulls"].values())
     lim = sy["limits"]  # side by side: the plain limits and those with systematics
