@@ -145,24 +145,53 @@ def _same(python, stored):
     return True  # structures: their parts are checked by from_dict(to_dict(x)) == x
 
 
-def _results(search):
+@pytest.fixture(scope="module")
+def results(search):
+    """Every result type, built once."""
+    from peaksift import shapes
     from peaksift.search.common import _blinded_copy
     from peaksift.search.sideband import sideband_fit
+    from peaksift.stats.envelope import envelope_scan
 
     cfg = search.config
     sb = sideband_fit(_blinded_copy(search.histogram, (145.0, 160.0)), "gaussian",
                       cfg.model.background, cfg.spectrum.window, (145.0, 160.0))
+    # two candidates, a blinded stretch (None in the JSON) and a spurious-signal term
+    env = envelope_scan(search.histogram, {"exp": shapes.get("exppoly", order=1),
+                                           "power": shapes.get("powersum", terms=1)},
+                        "gaussian", np.linspace(120.0, 180.0, 13), window=cfg.spectrum.window,
+                        blind=(145.0, 160.0), absolute_resolution=2.0,
+                        spurious={"exp": 0.3})
     return {"fit": search.fit, "background_fit": search.background_fit,
             "scan": search.scan, "limits": search.limits, "sideband_fit": sb,
-            "search": search}
+            "envelope": env, "combination": _combination(search), "search": search}
+
+
+def _combination(search):
+    """Two channels (the demo spectrum and a half-size copy), a shared luminosity
+    uncertainty (so the nuisances are in it), blinded, with an expected cross section."""
+    from peaksift import Resolution
+    from peaksift.stats.channels import Channel, combine
+
+    h = search.histogram
+    half = MassHistogram(h.edges)
+    half.weight_sum = np.floor(np.asarray(h.weight_sum, float) / 2)
+    half.weight_sq_sum = half.weight_sum.copy()
+    chans = [Channel(n, hist, "exponential", lumi, signal="gaussian",
+                     resolution=Resolution.absolute(2.0), efficiency=0.5,
+                     window=search.config.spectrum.window, luminosity_uncertainty=0.02,
+                     luminosity_group="run")
+             for n, hist, lumi in (("a", h, 10.0), ("b", half, 5.0))]
+    return combine(chans, np.linspace(120.0, 180.0, 7), blind=(145.0, 160.0),
+                   expected_cross_section=1.0, refit=False)
 
 
 @pytest.mark.parametrize("kind", ["fit", "background_fit", "scan", "limits", "sideband_fit",
-                                  "search"])
-def test_json_keys_are_the_python_attribute_names(search, kind):
+                                  "envelope", "combination", "search"])
+def test_json_keys_are_the_python_attribute_names(results, kind):
     """Every key results.json writes for a result is an attribute of the same name holding
     the same numbers, and the result read back from the JSON equals the one written."""
-    res = _results(search)[kind]
+    res = results[kind]
     d = _json(res.to_dict())
     keys = [k for k in d if k not in ("kind", "outputs")]  # kind: a tag, not a value
     missing = [k for k in keys if not hasattr(res, k)]
@@ -188,3 +217,18 @@ def test_results_json_of_earlier_versions_still_loads(search):
     back = SearchResult.from_dict(old)
     assert back.scan == search.scan and back.limits == search.limits
     assert back.background_fit == search.background_fit
+
+
+def test_envelope_dict_of_earlier_versions_still_loads(results):
+    """An EnvelopeResult dict written before the keys took the attribute names (``mass``,
+    ``functions``, ``spurious_weights``, the chosen functions by label) loads the same."""
+    from peaksift.stats.envelope import EnvelopeResult
+
+    env = results["envelope"]
+    d = _json(env.to_dict())
+    old = {k: v for k, v in d.items() if k not in ("masses", "labels", "spurious",
+                                                  "best_index", "best_mass")}
+    old.update(mass=d["masses"], functions=d["labels"], spurious_weights=d["spurious"],
+               chosen=[d["labels"][c] for c in d["chosen"]],
+               null_choice=d["labels"][d["null_choice"]])
+    assert EnvelopeResult.from_dict(old) == env

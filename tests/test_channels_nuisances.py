@@ -181,7 +181,7 @@ def test_mass_scale_factor_of_one_channel_in_the_combined_scan():
     assert c.q0[0] == pytest.approx(2 * (m0.fval - m1.fval), abs=2e-3)
     j = c.nuisances.index("mass_scale_mumu")
     assert 1.0 + c.nuisance_values[0, j] == pytest.approx(m1.values["k"], abs=1e-3)
-    assert c.to_dict()["combined"]["nuisances"]["mass_scale_mumu"]["shift_at_best"] \
+    assert c.nuisances_at_best()["mass_scale_mumu"]["shift_at_best"] \
         == pytest.approx(m1.values["k"] - 1.0, abs=1e-3)
 
 

@@ -103,6 +103,8 @@ def test_systematics_block_with_and_without(run):
     env = sy["envelope"]
     assert set(env["functions"]) == set(sy["background_choice"]["kept"])
     assert env["chosen_at_best"] in env["functions"]
+    # the envelope's masses under the attribute's name, one per local Z
+    assert "mass" not in env and len(env["masses"]) == len(env["z_local"])
     assert set(sy["nuisance_pulls"]) == {"mass_scale", "mass_resolution"}
     assert all(abs(v) < 5 for v in sy["nuisance_pulls"].values())
     lim = sy["limits"]  # side by side: the plain limits and those with systematics
@@ -326,7 +328,11 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     assert not list(figs.glob("candidates.*"))
     md = (out / "report.md").read_text()
     assert "blinded" in md.lower() and "withheld while the run is blinded" in md
-    assert "for None degrees of freedom" not in md and "| Goodness of fit | n/a |" in md
+    # no signal-plus-background fit: the goodness of fit shown is the sideband fit's
+    bf = d["background_fit"]
+    assert bf["kind"] == "sideband_fit" and "for None degrees of freedom" not in md
+    assert (f"| Goodness of fit (background fit on the sidebands only) | "
+            f"χ² = {bf['gof_chi2']:.4g} for {bf['gof_ndf']} degrees of freedom") in md
 
     # spectrum.json: every bin overlapping the window is empty, and the file says why
     h = MassHistogram.load(out / "spectrum.json")

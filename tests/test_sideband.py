@@ -111,3 +111,34 @@ def test_sideband_fit_round_trips_through_json_under_its_attribute_names(spectru
     d = json.loads(json.dumps(sb.to_dict()))
     assert all(hasattr(sb, k) for k in d if k != "kind")
     assert SidebandFit.from_dict(d) == sb
+
+
+def test_blinded_report_shows_the_sideband_goodness_of_fit(spectrum):
+    """While blinded the report's Result table gives the sideband fit's goodness of fit,
+    labelled as such, with the numbers of results.json's ``background_fit``; the chi-square
+    also equals the Baker-Cousins chi-square of the independent fit above (within 1e-3 of
+    it, the report printing four significant digits)."""
+    import re
+
+    from peaksift.report import render_markdown
+    from peaksift.search.common import _blinded_copy
+
+    sb = sideband_fit(_blinded_copy(spectrum, BLIND), "gaussian", "powerlaw", WINDOW, BLIND)
+    bf = json.loads(json.dumps(sb.to_dict()))  # as results.json holds it
+    none = {"value": None, "error": None}
+    r = {"best": {"mass": 130.0, "z_local": 0.5, "p_local": 0.3},
+         "fit": {"valid": False, "peak_mass": none, "width": none, "signal_yield": none,
+                 "background_yield": none, "gof": {"chi2": None, "ndf": None, "p_value": None}},
+         "background_fit": bf,
+         "blinding": {"enabled": True, "window": list(BLIND), "active": True,
+                      "hidden_range": list(BLIND)}}
+    md = render_markdown(r, {})
+    row = re.search(r"\| Goodness of fit \(background fit on the sidebands only\) \| "
+                    r"χ² = ([0-9.]+) for (\d+) degrees of freedom \(p = ([0-9.e-]+)\) \|", md)
+    assert row, md[:3000]
+    assert float(row[1]) == pytest.approx(bf["gof_chi2"], rel=5e-4)
+    assert int(row[2]) == bf["gof_ndf"]
+    assert float(row[3]) == pytest.approx(bf["gof_p_value"], rel=5e-3)
+    ref = _independent_fit(spectrum)
+    assert float(row[1]) == pytest.approx(ref["chi2"], rel=1e-3) and int(row[2]) == ref["ndf"]
+    assert "| Goodness of fit | n/a |" not in md

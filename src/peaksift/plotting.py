@@ -344,19 +344,21 @@ def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[
                         f"expected for a signal of {number(s, 3)} events (the fitted size)")
     fig = scan_figure(scan, result.best, labels=labels, expected=expected)
     env = ((getattr(result, "systematics", None) or {}).get("envelope") or {})
-    if env.get("z_local") is not None and len(env["z_local"]) and env.get("mass") is not None:
-        _with_systematics(fig.axes[0], env, result.best)
+    # results.json files written before the key took EnvelopeResult's name say "mass"
+    masses = env.get("masses", env.get("mass"))
+    if env.get("z_local") is not None and len(env["z_local"]) and masses is not None:
+        _with_systematics(fig.axes[0], masses, env["z_local"], result.best)
     return save(fig, outdir, "pvalue_scan", formats)
 
 
-def _with_systematics(ax: Any, env: Any, best: Any) -> None:
+def _with_systematics(ax: Any, masses: Any, z_local: Any, best: Any) -> None:
     """The local p-value with the systematics (background function profiled as an envelope,
     signal nuisances profiled) over the scan without them: the header's numbers are on this
     curve, so it is drawn bold, its best point marked, and the single-function curve thin."""
     from scipy.special import ndtr
 
-    m = np.asarray(env["mass"], float)
-    z = np.array([np.nan if v is None else v for v in env["z_local"]], float)
+    m = np.asarray(masses, float)
+    z = np.array([np.nan if v is None else v for v in z_local], float)
     rank: dict[Any, int] = {}  # legend order: each curve followed by its best point
     with figure_style():
         for line in ax.get_lines():

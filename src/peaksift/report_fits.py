@@ -16,6 +16,7 @@ from .report_sections import (
     figure_block,
     gof_text,
     num_text,
+    sideband_gof,
     value_error,
 )
 
@@ -49,7 +50,7 @@ def section_background_fit(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list
 
 def _sideband_fit(b: Mapping[str, Any]) -> list[Block]:
     """The background fitted on the sidebands of a blinded spectrum."""
-    gof = {"chi2": b.get("gof_chi2"), "ndf": b.get("gof_ndf"), "p_value": b.get("gof_p_value")}
+    gof = sideband_gof(b)
     lo, hi = (b.get("blind") or [None, None])[:2]
     rows = [["goodness of fit (sidebands only)", gof_text(gof)],
             ["background shape", str(b.get("background_shape", "n/a"))],

@@ -192,7 +192,13 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
             ("Background yield (window)", format_pm(*value_error(fit.get("background_yield")))),
         ]
         _with_intervals(rows, fit)
-    rows.append(("Goodness of fit", gof_text(fit.get("gof") or {})))
+    bf = r.get("background_fit")
+    if bl.get("active") and isinstance(bf, Mapping) and bf.get("kind") == "sideband_fit":
+        # no signal-plus-background fit while blinded: the sideband fit's is the one there is
+        rows.append(("Goodness of fit (background fit on the sidebands only)",
+                     gof_text(sideband_gof(bf))))
+    else:
+        rows.append(("Goodness of fit", gof_text(fit.get("gof") or {})))
     if bl.get("active"):
         w = bl.get("window") or [None, None]
         hr = bl.get("hidden_range")
@@ -215,6 +221,12 @@ def gof_text(gof: Mapping[str, Any]) -> str:
     return (f"\u03c7\u00b2 = {num_text(gof.get('chi2'))} for "
             f"{'n/a' if ndf is None else ndf} degrees of freedom "
             f"(p = {p_value(gof.get('p_value'))})")
+
+
+def sideband_gof(b: Mapping[str, Any]) -> dict[str, Any]:
+    """The goodness of fit of a results.json ``background_fit`` of kind ``sideband_fit``, in
+    the form :func:`gof_text` reads."""
+    return {"chi2": b.get("gof_chi2"), "ndf": b.get("gof_ndf"), "p_value": b.get("gof_p_value")}
 
 
 def _lee_sentence(r: Mapping[str, Any]) -> str:

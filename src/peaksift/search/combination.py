@@ -99,8 +99,12 @@ class CombinedSearchResult:
         from .. import __version__
         from .._json import plain
 
-        comb = self.combination.to_dict()
-        combined = {**comb["combined"], "global": plain(dict(self.best)),
+        c = self.combination
+        comb = c.to_dict()
+        keys = ("masses", "z_local", "p_local", "q0", "cross_section", "cross_section_error",
+                "unit", "z_expected", "expected_cross_section", "best", "blind")
+        combined = {**{k: comb[k] for k in keys}, "nuisances": c.nuisances_at_best(),
+                    "global": plain(dict(self.best)),
                     "notes": list(self.notes),
                     "limits": None if self.limits is None else
                     self.limits.to_dict()["combined"]}

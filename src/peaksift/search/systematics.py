@@ -139,7 +139,7 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
             "penalty": env.penalty, "chosen_at_best": env.labels[chosen],
             "spurious_weights": list(env.spurious),
             "null_choice": env.labels[env.null_choice],
-            "z_local": env.z_local, "mass": env.masses,
+            "z_local": env.z_local, "masses": env.masses,
             "candidate_z_local": {k: np.sqrt(np.maximum(np.asarray(v), 0.0))
                                   for k, v in env.candidate_q0.items()},
             "profile": None if curves is None else {

@@ -425,21 +425,54 @@ class Combination(FrozenValue):
                 f"{self.unit})")
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready: ``combined`` (the combination's scan) and ``channels`` (each
-        channel's scan, with its luminosity and conversion)."""
+        """JSON-ready dict whose keys are the attribute names (``channels``: each channel's
+        :meth:`ScanResult.to_dict`), plus the ``best`` summary; blinded entries ``None``;
+        without the prepared models (no toys from it)."""
         return plain({
-            "combined": {
-                "masses": self.masses, "z_local": self.z_local, "p_local": self.p_local,
-                "q0": self.q0, "cross_section": self.cross_section,
-                "cross_section_error": self.cross_section_error, "unit": self.unit,
-                "z_expected": self.z_expected,
-                "expected_cross_section": self.expected_cross_section,
-                "best": self.best, "blind": None if self.blind is None else list(self.blind),
-                "nuisances": {n: self._nuisance(j) for j, n in enumerate(self.nuisances)},
-                "notes": list(self.notes)},
-            "channels": {n: {**s.to_dict(), "luminosity": self.luminosity[n],
-                             "conversion": self.conversion[n]}
-                         for n, s in self.channels.items()}})
+            "masses": self.masses, "q0": self.q0, "z_local": self.z_local,
+            "p_local": self.p_local, "cross_section": self.cross_section,
+            "cross_section_error": self.cross_section_error,
+            "converged": [bool(v) for v in self.converged], "best_index": int(self.best_index),
+            "best_mass": float(self.best_mass), "best": self.best,
+            "channels": {n: s.to_dict() for n, s in self.channels.items()},
+            "conversion": dict(self.conversion), "luminosity": dict(self.luminosity),
+            "blind": None if self.blind is None else list(self.blind),
+            "blinded": [bool(v) for v in self.blinded], "z_expected": self.z_expected,
+            "expected_cross_section": self.expected_cross_section, "unit": self.unit,
+            "notes": list(self.notes), "nuisances": list(self.nuisances),
+            "nuisance_values": self.nuisance_values, "norms": self.norms})
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> Combination:
+        """The Combination that :meth:`to_dict` wrote (without the models: no toys)."""
+        from .scan_result import ScanResult
+
+        def arr(v: Any) -> np.ndarray | None:  # None entries (blinded, NaN) back to NaN
+            return None if v is None else np.array(v, float)
+
+        try:
+            blind = d.get("blind")
+            return cls(
+                masses=arr(d["masses"]), q0=arr(d["q0"]), z_local=arr(d["z_local"]),
+                p_local=arr(d["p_local"]), cross_section=arr(d["cross_section"]),
+                cross_section_error=arr(d["cross_section_error"]),
+                converged=np.array(d["converged"], bool), best_index=int(d["best_index"]),
+                best_mass=float(d["best_mass"]),
+                channels={n: ScanResult.from_dict(v) for n, v in d["channels"].items()},
+                conversion={n: arr(v) for n, v in d["conversion"].items()},
+                luminosity={n: float(v) for n, v in d["luminosity"].items()},
+                blind=None if blind is None else (float(blind[0]), float(blind[1])),
+                blinded=np.array(d["blinded"], bool), z_expected=arr(d.get("z_expected")),
+                expected_cross_section=d.get("expected_cross_section"), unit=d["unit"],
+                notes=tuple(d.get("notes") or ()), nuisances=tuple(d.get("nuisances") or ()),
+                nuisance_values=arr(d.get("nuisance_values")), norms=arr(d.get("norms")))
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise FitError(f"Combination.from_dict: not a combination written by "
+                           f"Combination.to_dict ({exc!r})") from None
+
+    def nuisances_at_best(self) -> dict[str, Any]:
+        """Each nuisance at the best mass (results.json's ``combined.nuisances``)."""
+        return plain({n: self._nuisance(j) for j, n in enumerate(self.nuisances)})
 
     def _nuisance(self, j: int) -> dict[str, Any]:
         """A normalisation nuisance (its pull and log-normal scale per channel) or a shape

@@ -227,39 +227,55 @@ class EnvelopeResult(FrozenValue):
                 f"{self.unit}: Z_local = {b['z_local']:.2f} with {b['function']})")
 
     def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict whose keys are the attribute names (``chosen`` and
+        ``null_choice`` index ``labels``), plus the ``best`` summary; blinded entries
+        ``None``; without the scans."""
         return plain({
-            "mass": self.masses, "q0": self.q0, "z_local": self.z_local,
-            "p_local": self.p_local, "functions": list(self.labels),
+            "masses": self.masses, "q0": self.q0, "z_local": self.z_local,
+            "p_local": self.p_local, "labels": list(self.labels),
             "n_parameters": list(self.n_parameters), "penalty": self.penalty,
-            "chosen": [self.labels[int(c)] for c in self.chosen],
-            "null_choice": self.labels[self.null_choice],
+            "chosen": [int(c) for c in self.chosen], "null_choice": int(self.null_choice),
             "candidate_q0": dict(self.candidate_q0),
             "nll_background": dict(self.nll_background), "signal_yield": self.signal_yield,
-            "signal_yield_error": self.signal_yield_error, "best": self.best,
-            "spurious_weights": list(self.spurious),
+            "signal_yield_error": self.signal_yield_error, "best_index": int(self.best_index),
+            "best_mass": float(self.best_mass), "best": self.best,
+            "spurious": list(self.spurious),
             "blinded": [bool(v) for v in self.blinded], "unit": self.unit})
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> EnvelopeResult:
         """Back from :meth:`to_dict` (without the scans: no toys or curves from it)."""
-        labels = tuple(d["functions"])
-
         def arr(v: Any) -> np.ndarray:
             return np.array([np.nan if x is None else x for x in v], float)
 
-        mass = arr(d["mass"])
-        best = int(np.flatnonzero(mass == d["best"]["mass"])[0])
-        return cls(masses=mass, q0=arr(d["q0"]), z_local=arr(d["z_local"]),
-                   p_local=arr(d["p_local"]), labels=labels,
-                   n_parameters=tuple(d["n_parameters"]), penalty=float(d["penalty"]),
-                   chosen=np.array([labels.index(c) for c in d["chosen"]]),
-                   null_choice=labels.index(d["null_choice"]),
-                   candidate_q0={k: arr(v) for k, v in d["candidate_q0"].items()},
-                   nll_background=dict(d["nll_background"]),
-                   signal_yield=arr(d["signal_yield"]),
-                   signal_yield_error=arr(d["signal_yield_error"]), best_index=best,
-                   best_mass=float(mass[best]), blinded=np.array(d["blinded"], bool),
-                   unit=d["unit"], spurious=tuple(d.get("spurious_weights") or ()))
+        try:
+            # dicts written before the keys took the attribute names ("mass", "functions",
+            # "spurious_weights", the chosen functions by label) still load
+            labels = tuple(d["labels"] if "labels" in d else d["functions"])
+
+            def index(c: Any) -> int:
+                return labels.index(c) if isinstance(c, str) else int(c)
+
+            masses = arr(d["masses"] if "masses" in d else d["mass"])
+            best = d.get("best_index")
+            if best is None:
+                best = int(np.flatnonzero(masses == d["best"]["mass"])[0])
+            spurious = d["spurious"] if "spurious" in d else d.get("spurious_weights")
+            return cls(masses=masses, q0=arr(d["q0"]), z_local=arr(d["z_local"]),
+                       p_local=arr(d["p_local"]), labels=labels,
+                       n_parameters=tuple(d["n_parameters"]), penalty=float(d["penalty"]),
+                       chosen=np.array([index(c) for c in d["chosen"]], int),
+                       null_choice=index(d["null_choice"]),
+                       candidate_q0={k: arr(v) for k, v in d["candidate_q0"].items()},
+                       nll_background=dict(d["nll_background"]),
+                       signal_yield=arr(d["signal_yield"]),
+                       signal_yield_error=arr(d["signal_yield_error"]), best_index=int(best),
+                       best_mass=float(masses[int(best)]),
+                       blinded=np.array(d["blinded"], bool), unit=d["unit"],
+                       spurious=tuple(spurious or ()))
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise FitError(f"EnvelopeResult.from_dict: not an envelope result dict ({exc!r}); "
+                           "pass what EnvelopeResult.to_dict() wrote") from exc
 
     # -------------------------------------------------------------- toys
     def _models(self) -> list[ScanModel]:
