@@ -101,6 +101,17 @@ def new_figure(figsize: tuple[float, float] = (7.0, 4.6), nrows: int = 1, ncols:
     return fig, axes
 
 
+def target_axes(fig: Any = None, ax: Any = None,
+                figsize: tuple[float, float] = (7.0, 4.6)) -> tuple[Any, Any]:
+    """``(Figure, Axes)`` a result's ``plot(fig=, ax=)`` draws on: the caller's ``ax``, new
+    axes on the caller's ``fig``, or a :func:`new_figure` of ``figsize``."""
+    if ax is None:
+        if fig is None:
+            return new_figure(figsize)
+        ax = fig.subplots()
+    return ax.figure, ax
+
+
 def margins(fig: Any, *, left: float = 0.85, right: float = 0.45, top: float = 0.62,
             bottom: float = 0.62) -> None:
     """Fixed margins in inches: room for the axis labels, the sigma labels on the right of a

@@ -204,15 +204,10 @@ class LimitResult(FrozenValue):
         (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on a new Figure (made
         without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
-        from .._style import COLORS, draw_header, figure_style, new_figure, shade_blinded
+        from .._style import COLORS, draw_header, figure_style, shade_blinded, target_axes
 
         with figure_style():
-            if ax is None:
-                if fig is None:
-                    fig, ax = new_figure((7.0, 4.6))
-                else:
-                    ax = fig.subplots()
-            fig = ax.figure
+            fig, ax = target_axes(fig, ax)
             m = self.masses
             ax.fill_between(m, self.expected_minus2, self.expected_plus2, color=COLORS["band2"],
                             lw=0, label=r"expected $\pm 2\sigma$")

@@ -279,15 +279,10 @@ class ScanResult(FrozenValue):
         a new Figure (made without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
         from .._format import fixed
-        from .._style import COLORS, draw_header, figure_style, new_figure, shade_blinded
+        from .._style import COLORS, draw_header, figure_style, shade_blinded, target_axes
 
         with figure_style():
-            if ax is None:
-                if fig is None:
-                    fig, ax = new_figure((7.0, 4.6))
-                else:
-                    ax = fig.subplots()
-            fig = ax.figure
+            fig, ax = target_axes(fig, ax)
             m = self.masses
             p = np.where(self.blinded, np.nan, np.maximum(self.p_local, 1e-300))
             ax.plot(m, p, color=COLORS["observed"], label="observed")
