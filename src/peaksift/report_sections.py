@@ -178,10 +178,12 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     best = r.get("best") or {}
     fit = r.get("fit") or {}
     bl = r.get("blinding") or {}
+    # with [systematics] the headline numbers are the profiled ones: say so where they stand
+    tag = " (with systematics)" if r.get("systematics") else ""
     rows = [
         ("Best mass hypothesis", f"{fixed(best.get('mass'))} GeV"),
-        ("Local significance", significance(best, "local")),
-        ("Global significance", significance(best, "global")),
+        ("Local significance" + tag, significance(best, "local")),
+        ("Global significance" + tag, significance(best, "global")),
     ]
     if not bl.get("active"):
         rows += [
