@@ -313,19 +313,12 @@ class EnvelopeResult(FrozenValue):
         """Global significance of the envelope's best excess, from toys evaluated with the
         same envelope (``"toys"``: fraction above; ``"upcrossings"``: Gross and Vitells,
         EPJC 70 (2010) 525).  Same keys as :meth:`peaksift.stats.ScanResult.global_significance`."""
-        if method not in ("upcrossings", "toys"):
-            raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
-                           f"got {method!r}")
-        q_obs = float(self.q0[self.best_index])
-        mask = ~self.blinded
-        gaps = np.diff(np.flatnonzero(mask)) > 1
-        n = (1000 if method == "toys" else 200) if toys is None else int(toys)
-        scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress,
-                               executor=executor)
-        if method == "toys":
-            res = lee.global_from_toys(q_obs, scans.max(axis=1))
-        else:
-            res = lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps)
+        def scans(n: int) -> np.ndarray:
+            return self.toy_scans(n, seed=seed, workers=workers, progress=progress,
+                                  executor=executor)
+
+        res = lee.global_from_scan(self.q0, self.best_index, self.blinded, scans,
+                                   method=method, toys=toys, u0=u0, observed_fallback=False)
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
                "p_local": float(self.p_local[self.best_index]),
                "profiling": "discrete (envelope)"}

@@ -30,8 +30,8 @@ import numpy as np
 from ..errors import FitError
 from .significance import log10_p, log_p_from_q0, p_from_q0, z_from_log_p
 
-__all__ = ["binomial_error", "finite_scans", "global_from_toys", "global_from_upcrossings",
-           "upcrossings"]
+__all__ = ["binomial_error", "finite_scans", "global_from_scan", "global_from_toys",
+           "global_from_upcrossings", "upcrossings"]
 
 
 def upcrossings(q0: Any, level: float, *, gaps: Any = None) -> np.ndarray:
@@ -174,3 +174,32 @@ def global_from_toys(q_obs: float, max_q0: Any) -> dict[str, Any]:
         "p_global_is_upper_bound": bound,
         "p_global_bound_cl": 0.95 if bound else None,
     }
+
+
+def global_from_scan(q0: Any, best_index: int, blinded: Any, toy_scans: Any, *,
+                     method: str, toys: int | None, u0: float,
+                     observed_fallback: bool = True) -> dict[str, Any]:
+    """The global p-value of a scan's best excess, the way every scan result asks for it.
+
+    ``q0`` and ``blinded`` run over all hypotheses; ``toy_scans(n)`` gives ``(n, unblinded)``
+    background-only q0 scans.  ``"toys"`` (default 1000 toys): :func:`global_from_toys`;
+    ``"upcrossings"`` (default 200 toys): :func:`global_from_upcrossings`, counted within
+    each unblinded segment; with ``toys=0`` and ``observed_fallback`` the observed scan
+    stands in for the toys' N0.
+    """
+    if method not in ("upcrossings", "toys"):
+        raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
+                       f"got {method!r}")
+    q0 = np.asarray(q0, float)
+    q_obs = float(q0[best_index])
+    mask = ~np.asarray(blinded, bool)
+    # a blinded range splits the unblinded hypotheses into contiguous segments: no
+    # upcrossing is counted across it (the two sides are not neighbours in mass)
+    gaps = np.diff(np.flatnonzero(mask)) > 1
+    n = (1000 if method == "toys" else 200) if toys is None else int(toys)
+    if method == "toys":
+        return global_from_toys(q_obs, toy_scans(n).max(axis=1))
+    if n > 0 or not observed_fallback:
+        return global_from_upcrossings(q_obs, toy_scans(n), u0=u0, gaps=gaps)
+    return global_from_upcrossings(q_obs, q0[mask][None, :], u0=u0,
+                                   source="observed scan", gaps=gaps)

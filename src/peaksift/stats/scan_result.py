@@ -213,28 +213,12 @@ class ScanResult(FrozenValue):
         upcrossings are counted within each segment and summed (a pair of hypotheses on
         the two sides of the blinded range is not an upcrossing).
         """
-        if method not in ("upcrossings", "toys"):
-            raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
-                           f"got {method!r}")
-        q_obs = float(self.q0[self.best_index])
-        mask = ~self.blinded
-        # a blinded range splits the unblinded hypotheses into contiguous segments: no
-        # upcrossing is counted across it (the two sides are not neighbours in mass)
-        gaps = np.diff(np.flatnonzero(mask)) > 1
-        if method == "toys":
-            n = 1000 if toys is None else int(toys)
-            scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress,
-                                       executor=executor)
-            res = lee.global_from_toys(q_obs, scans.max(axis=1))
-        else:
-            n = 200 if toys is None else int(toys)
-            if n > 0:
-                scans = self.toy_scans(n, seed=seed, workers=workers, progress=progress,
-                                       executor=executor)
-                res = lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps)
-            else:
-                res = lee.global_from_upcrossings(q_obs, self.q0[mask][None, :], u0=u0,
-                                                  source="observed scan", gaps=gaps)
+        def scans(n: int) -> np.ndarray:
+            return self.toy_scans(n, seed=seed, workers=workers, progress=progress,
+                                  executor=executor)
+
+        res = lee.global_from_scan(self.q0, self.best_index, self.blinded, scans,
+                                   method=method, toys=toys, u0=u0)
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
                "p_local": float(self.p_local[self.best_index])}
         out.update(res)
