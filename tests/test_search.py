@@ -204,6 +204,18 @@ def test_summary_printed(run):
     assert str(run["out"]) in out
 
 
+def test_readme_summary_is_this_run(run):
+    """The README prints the demo's summary; it must be what the demo search prints, line
+    for line (only the output folder differs), so a change of the demo's numbers updates it."""
+    readme = (REPO_DIR / "README.md").read_text()
+    start = readme.index("```\npeaksift search: summary\n") + 4
+    block = readme[start:readme.index("```", start)].splitlines()
+    out = run["stdout"]
+    printed = out[out.index("peaksift search: summary"):].splitlines()
+    printed = [ln.replace(str(run["out"]), "/path/to/demo_out") for ln in printed]
+    assert block == printed[:len(block)] and len(printed) == len(block)
+
+
 def test_profile_likelihood_intervals_by_default(run, demo_nll):
     """The free fit's mass, width and yield intervals (MINOS-type) in results.json, the
     summary and the report; the mass interval's ends are where the profile likelihood of the
