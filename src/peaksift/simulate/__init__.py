@@ -58,12 +58,15 @@ Modules
 * ``layout`` -- objects per event turned into the stored Arrow columns;
 * ``blocks`` -- one block of events from its own random stream, :func:`generate`;
 * ``write`` -- :func:`write_demo`: Parquet files, ``truth.json``, the summary;
-* ``signal_samples`` -- :func:`generate_signal_sample`, :func:`write_signal_samples`.
+* ``signal_samples`` -- :func:`generate_signal_sample`, :func:`write_signal_samples`;
+* ``expected`` -- :func:`expected_background`, the noise-free background in the search window
+  (the demo search's background template).
 """
 
 from __future__ import annotations
 
 from .blocks import generate
+from .expected import expected_background
 from .processes import breit_wigner_pdf, continuum_pdf
 from .scenario import (
     BLOCK_EVENTS,
@@ -98,6 +101,7 @@ __all__ = [
     "Scenario",
     "breit_wigner_pdf",
     "continuum_pdf",
+    "expected_background",
     "generate",
     "generate_signal_sample",
     "write_demo",
