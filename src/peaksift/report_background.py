@@ -6,6 +6,7 @@ Built from results.json alone, like every section in :mod:`peaksift.report_secti
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
@@ -20,8 +21,12 @@ def _candidate_rows(sy: Mapping[str, Any]) -> list[list[str]]:
     rows = []
     for c in ch["candidates"]:
         spc = sp.get(c["label"])
-        spurious = "-" if not spc else (f"{spc['max_ratio']:.2f}"
-                                        + (" (flagged)" if spc["flagged"] else ""))
+        spurious = "-" if not spc else (
+            f"{math.copysign(spc['max_ratio'], spc.get('signal', 1.0)):+.2f} at "
+            f"{spc['mass']:.1f} GeV"
+            + (f"; {spc['ratio_at_best']:+.2f} at the best mass"
+               if spc.get("ratio_at_best") is not None else "")
+            + (" (flagged)" if spc["flagged"] else ""))
         status = ("kept" + (", in envelope" if c["label"] in inenv else "")) if c["chosen"] \
             else ""
         rows.append([c["label"], number(c["nll"], 8), str(c["n_parameters"]),
@@ -85,7 +90,8 @@ def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> li
                     f"{'sidebands' if ch.get('blind') else 'spectrum'} ({ch['n_bins']} bins). "
                     f"Order test: {ch['test']}; an order is kept when the next one's p-value "
                     f"is at least {ch['size']:g}. Spurious signal: the largest fitted signal on "
-                    "the background template over its statistical error.")))
+                    "the background template over its statistical error (with its sign), the "
+                    "mass where it is largest, and its value at the best mass hypothesis.")))
         out.append(("table", ["function", "NLL", "free parameters", "goodness-of-fit p",
                               "order test p", "spurious signal / stat. error", "status"],
                     _candidate_rows(sy)))

@@ -82,6 +82,7 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                              "background_choice": None, "spurious_signal": None,
                              "envelope": None, "notes": []}
     choice = None
+    sp: dict[str, dict[str, Any]] = {}
     ratios: dict[str, float] | None = None
     if S.spurious_uncertainty and not (S.template and S.background_families):
         raise ConfigError("systematics.spurious_uncertainty needs systematics.template and "
@@ -163,6 +164,10 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         block["nuisance_pulls"] = _pulls(nuis, sres.nuisance_factors, sres.best_index)
         obj = sres
     best = dict(best)
+    if sp and best.get("mass") is not None:  # each spurious signal at the best hypothesis
+        k = int(np.argmin(np.abs(np.asarray(masses, float) - float(best["mass"]))))
+        for label, v in sp.items():
+            block["spurious_signal"][label]["ratio_at_best"] = float(v["ratio"][k])
     block["with_systematics"] = best
     block["without_systematics"] = dict(best_plain)
     return block, best, obj
