@@ -77,10 +77,10 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                        ) -> list[Any]:
     """The combination's report as blocks (``d`` is its results.json)."""
     fig = dict(figures or {})
-    c = d["combined"]
-    g = c.get("global") or {}
+    c = d["combination"]
+    g = d.get("best") or {}
     best = c.get("best") or {}
-    out: list[Any] = [("h1", f"Combined search: {', '.join(d['channel_names'])}"),
+    out: list[Any] = [("h1", f"Combined search: {', '.join(d['channels'])}"),
                       ("caution", CAUTION), ("h2", "Combination"),
                       ("p", ("One cross-section x branching fraction shared by every channel; the "
                        "likelihood is the product of the channels' (each with its own "
@@ -94,7 +94,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
              "generate every channel)")],
             ["fitted sigma x B at the best mass", (f"{_f(best.get('cross_section'))} "
              f"{c.get('unit', '')}")]]
-    for name, v in (c.get("nuisances") or {}).items():
+    for name, v in (d.get("nuisances_at_best") or {}).items():
         if "shift_at_best" in v:
             rows.append([f"shape factor {name} (k - 1 at the best mass)",
                          _f(v.get("shift_at_best"))])
@@ -118,20 +118,20 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                           ("pvalue_scan", "local p-value scan")):
             if f"{n}/{key}" in fig:
                 out.append(("figure", f"{n}/{key}", f"Channel {n}: {what}."))
-    lim = c.get("limits")
-    if lim:
+    lim = d.get("limits")
+    if lim:  # every mass: the point that matters is never the one a stride skips
         masses = lim["masses"]
-        step = max(1, len(masses) // 12)
         methods = lim.get("methods") or ["asymptotic"] * len(masses)
         rows = [[_f(masses[i], 4), _f(lim["observed"][i]), _f(lim["expected"][i]),
-                 f"{_f(lim['expected_minus1'][i])}-{_f(lim['expected_plus1'][i])}",
-                 methods[i]] for i in range(0, len(masses), step)]
+                 f"{_f(lim['expected_minus1'][i])} to {_f(lim['expected_plus1'][i])}",
+                 f"{_f(lim['expected_minus2'][i])} to {_f(lim['expected_plus2'][i])}",
+                 methods[i]] for i in range(len(masses))]
         out += [("h2", f"Combined upper limits ({100 * lim['cl']:.0f}% CLs, {lim['unit']})"),
                 ("table", ["mass [GeV]", "observed", "expected", "expected ±1 sigma",
-                           "method"], rows)]
+                           "expected ±2 sigma", "method"], rows)]
         if lim.get("notes"):
             out.append(("list", list(lim["notes"])))
-    notes = list(c.get("notes") or [])
+    notes = list(d.get("notes") or [])
     for n, r in d["channels"].items():
         notes += [f"{n}: signal model: {x}" for x in (r.get("signal_model") or {}).get("notes")
                   or []]
@@ -151,16 +151,15 @@ def render_combination_html(d: Mapping[str, Any], figures: Mapping[str, Any] | N
                             ) -> str:
     """report.html of a combination, self-contained (``figures``: name -> PNG file)."""
     fig = dict(figures or {})
-    return blocks_html(f"Combined search: {', '.join(d['channel_names'])}",
+    return blocks_html(f"Combined search: {', '.join(d['channels'])}",
                        combination_blocks(d, fig), fig)
 
 
 def combination_summary_text(d: Mapping[str, Any]) -> str:
     """The command line's summary of a combination."""
-    c = d["combined"]
-    best = c.get("best") or {}
-    g = c.get("global") or {}
-    lines = ["peaksift search: combination of " + ", ".join(d["channel_names"]),
+    best = d["combination"].get("best") or {}
+    g = d.get("best") or {}
+    lines = ["peaksift search: combination of " + ", ".join(d["channels"]),
              f"  best mass hypothesis       {_f(best.get('mass'), 5)} GeV",
              f"  local significance         {_f(best.get('z_local'))} sigma",
              (f"  global significance        {_f(g.get('z_global'))} sigma "
