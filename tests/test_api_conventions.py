@@ -245,7 +245,7 @@ def test_every_result_has_a_short_repr_and_notebook_html(results, kind):
     assert text.startswith(type(res).__name__ + "(") and len(text) < 1200, text
     assert "array(" not in text and "config" not in text.lower()
     page = res._repr_html_()
-    assert page.startswith("<div>") and "</table>" in page and type(res).__name__ in page
+    assert page.startswith("<div>") and "</table>" in page
 
 
 def test_combination_results_json_of_earlier_versions_still_loads(results):

@@ -456,7 +456,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     import warnings
 
-    from ._processes import Terminated, sigterm_as_interrupt
+    from ._processes import Terminated, sigterm_as_interrupt, terminated
 
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -471,6 +471,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
+    except Exception:
+        if not terminated():  # a bug: its traceback is the report
+            raise
+        # a SIGTERM raised where code turned it into another error (an extension module's
+        # import re-raises as ImportError): still the termination it was
+        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
+              file=sys.stderr)
+        return 143
     except Terminated:
         # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
         print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",

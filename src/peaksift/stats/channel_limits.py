@@ -112,7 +112,7 @@ class CombinedLimits(FrozenValue):
             return np.array([np.nan if x is None else x for x in v], float)
 
         try:
-            c = d["combined"] if "combined" in d else d
+            c = d.get("combined", d)  # earlier versions: the combined numbers nested
             bands = np.array([arr(c[k]) for k in ("expected_minus2", "expected_minus1",
                                                   "expected", "expected_plus1",
                                                   "expected_plus2")])
