@@ -33,7 +33,7 @@ the closest valid key or value.
 
 from __future__ import annotations
 
-from .build import load_config
+from .build import load_config, output_figures
 from .reference import reference_markdown
 from .schema import SCHEMA
 from .sections import (
@@ -76,5 +76,6 @@ __all__ = [
     "SpectrumConfig",
     "SystematicsConfig",
     "load_config",
+    "output_figures",
     "reference_markdown",
 ]

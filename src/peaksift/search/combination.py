@@ -43,7 +43,7 @@ from typing import Any
 
 import numpy as np
 
-from ..config import load_config
+from ..config import load_config, output_figures
 from ..errors import ConfigError
 
 __all__ = ["CombinedSearchResult", "is_combination", "run_combination"]
@@ -316,7 +316,9 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     if len(units) > 1:
         raise ConfigError(f"{where}: the channels give luminosities in {sorted(units)}; use "
                           "one unit")
-    out_dir = raw.get("output", {}).get("dir", "combined_out") if out is None else out
+    out_cfg = raw.get("output", {})
+    figures = output_figures(out_cfg.get("figures", ["all"]), where)
+    out_dir = out_cfg.get("dir", "combined_out") if out is None else out
     target = None
     if out_dir is not False:
         t = Path(out_dir).expanduser()
@@ -369,7 +371,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         res = CombinedSearchResult(channels=results, combination=cmb, best=best, limits=lim,
                                    source=source, outdir=target, notes=notes)
         if stage is not None:
-            res = _write(res, stage.path, target)
+            res = _write(res, stage.path, target, figures)
     return res
 
 
@@ -397,9 +399,13 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
                    **norms)
 
 
-def _write(res: CombinedSearchResult, stage: Path, target: Path) -> CombinedSearchResult:
-    """results.json, the figures (the combined p-values; each channel's own figures in
-    ``figures/<channel>/``), report.md and report.html into the staging directory."""
+def _write(res: CombinedSearchResult, stage: Path, target: Path,
+           figures: tuple[str, ...] = ("all",)) -> CombinedSearchResult:
+    """results.json, the figures (the combined p-values, with ``pvalue_scan`` in the
+    combination's ``output.figures``; each channel's own figures, as its config's
+    ``output.figures`` asks, in ``figures/<channel>/``), report.md and report.html into the
+    staging directory."""
+    from .._vocabulary import FIGURES, figure_wanted
     import dataclasses
 
     from .. import plotting
@@ -418,15 +424,18 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path) -> CombinedSear
                    channel=" + ".join(lb.run.channel for lb in labels.values()
                                       if lb.run and lb.run.channel))
     symbols = {lb.symbol for lb in labels.values()}
-    res.combination.plot(figdir / "pvalue_combined.png", run=run,
-                         symbol=symbols.pop() if len(symbols) == 1 else "m")
-    figs["pvalue_combined"] = figdir / "pvalue_combined.png"
+    if figure_wanted(figures, "pvalue_scan"):
+        res.combination.plot(figdir / "pvalue_combined.png", run=run,
+                             symbol=symbols.pop() if len(symbols) == 1 else "m")
+        figs["pvalue_combined"] = figdir / "pvalue_combined.png"
     for name, r in res.channels.items():
         cfg = r.config
         sub = figdir / name
         made = plotting.search_figures(r, sub, formats=("png",),
-                                       log_scale=cfg.output.log_scale, labels=labels[name])
-        if r.signal_model is not None:
+                                       log_scale=cfg.output.log_scale, labels=labels[name],
+                                       names=[f for f in plotting.SEARCH_FIGURES
+                                              if f in FIGURES and cfg.output.draws(f)])
+        if r.signal_model is not None and cfg.output.draws("signal_model"):
             made.update(zip(("signal_model_parameters", "signal_model_shapes"),
                             r.signal_model.plot(sub)))
         figs.update({f"{name}/{k}": Path(v) for k, v in made.items()})
