@@ -405,12 +405,12 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
     combination's ``output.figures``; each channel's own figures, as its config's
     ``output.figures`` asks, in ``figures/<channel>/``), report.md and report.html into the
     staging directory."""
-    from .._vocabulary import FIGURES, figure_wanted
     import dataclasses
 
     from .. import plotting
     from .._files import atomic_write
     from .._style import RunLabel
+    from .._vocabulary import FIGURES, figure_wanted
     from ..report import write_results_json
     from .combination_report import render_combination_html, render_combination_markdown
 
