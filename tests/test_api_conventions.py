@@ -97,23 +97,29 @@ matplotlib.use("{backend}")
 before = matplotlib.get_backend()
 from matplotlib.figure import Figure
 from peaksift import FitResult, LimitResult, MassHistogram, ScanResult
+from peaksift.stats.channels import Combination
 d = json.load(open(sys.argv[1]))
 figs = [FitResult.from_dict(d["fit"]).plot(), ScanResult.from_dict(d["scan"]).plot(),
         LimitResult.from_dict(d["limits"]).plot(),
-        MassHistogram(bins=10, range=(0, 1)).fill([0.5]).plot()]
+        MassHistogram(bins=10, range=(0, 1)).fill([0.5]).plot(),
+        Combination.from_dict(json.load(open(sys.argv[2]))).plot()]
 print(json.dumps({{"figures": all(isinstance(f, Figure) for f in figs),
                   "backend": matplotlib.get_backend() == before,
                   "pyplot": "matplotlib.pyplot" in sys.modules}}))
 """
 
 
-def test_plot_returns_a_figure_and_leaves_the_backend(search, tmp_path):
+def test_plot_returns_a_figure_and_leaves_the_backend(search, results, tmp_path):
     """In a fresh interpreter with an interactive-capable backend chosen by the user, every
-    plot() returns a Figure, the backend is unchanged and pyplot is never imported."""
+    plot() (fit, scan, limits, histogram, combination) returns a Figure, the backend is
+    unchanged and pyplot is never imported."""
     res = tmp_path / "results.json"
     res.write_text(json.dumps(_json(search.to_dict())))
+    comb = tmp_path / "combination.json"
+    comb.write_text(json.dumps(_json(results["combination"].to_dict())))
     code = _PLOTS.format(backend="svg")  # a backend other than Agg, set by the "user"
-    out = subprocess.run([sys.executable, "-c", code, str(res)], capture_output=True, check=False,
+    out = subprocess.run([sys.executable, "-c", code, str(res), str(comb)],
+                         capture_output=True, check=False,
                          text=True, cwd=REPO, env={"PYTHONPATH": str(REPO / "src"),
                                                    "PATH": "/usr/bin:/bin"})
     assert out.returncode == 0, out.stderr[-2000:]
