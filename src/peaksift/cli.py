@@ -218,7 +218,7 @@ def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
 
 def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
     """The observed limit at the limit mass nearest ``mass``, with and without systematics."""
-    from ._format import fixed, number
+    from ._format import fixed
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
     if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
@@ -229,9 +229,9 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
     except (TypeError, ValueError):
         return []
 
-    def pair(d: Mapping[str, Any]) -> str:
-        return (f"{number((d.get('observed') or [None] * (i + 1))[i], 3)} observed, "
-                f"{number((d.get('expected') or [None] * (i + 1))[i], 3)} expected")
+    def pair(d: Mapping[str, Any]) -> str:  # two decimals, as the report's limit tables
+        return (f"{fixed((d.get('observed') or [None] * (i + 1))[i])} observed, "
+                f"{fixed((d.get('expected') or [None] * (i + 1))[i])} expected")
 
     return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(w)} {w.get('unit')} with "
                  f"systematics ({pair(wo)} without)")]
