@@ -12,7 +12,10 @@
 * :func:`die_with_parent`      -- in a worker: end as soon as the process that started it
   ends, however it ends (``kill -9`` included).
 * :class:`Terminated` and :func:`sigterm_as_interrupt` -- SIGTERM (what ``timeout`` and
-  batch systems send) handled like Ctrl-C: the same clean-up, then exit status 143.
+  batch systems send) handled like Ctrl-C: the same clean-up, then exit status 143;
+  :func:`terminated` says whether it came (when other code turned it into its own error).
+* :func:`sigterm_held` -- around a fork: SIGTERM waits until the child has set up its
+  signals (every pool of :func:`process_pool` forks under it).
 
 The execution engines (:mod:`peaksift.execution`) and the toy engine's ``workers=`` pool
 (:mod:`peaksift.stats.toys`) share these, so every pool peaksift starts behaves alike.  Why
