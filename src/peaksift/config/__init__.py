@@ -24,7 +24,7 @@ Sections (all optional except ``input`` and ``spectrum``)::
                     order test, the envelope, the spurious-signal template
     [calibration]   optional fit of a known standard-candle peak in its own window
     [execution]     serial / processes / dask, workers, scheduler address, chunk size
-    [output]        output directory, figure formats, log-scale spectrum, report title
+    [output]        output directory, which figures, formats, log-scale spectrum, title
 
 Validation is strict: an unknown key, a wrong type or an out-of-range value raises
 :class:`~peaksift.errors.ConfigError` naming the key path (``model.background``), the file, and
