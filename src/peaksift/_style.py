@@ -348,15 +348,3 @@ def shade_blinded(ax: Any, span: Sequence[float] | None, *, label: str | None = 
     ax.axvspan(float(span[0]), float(span[1]), facecolor=COLORS["blind"],
                edgecolor=COLORS["blind_edge"], hatch="////", linewidth=0.0, zorder=0.5,
                label=label)
-
-
-def use_headless_backend() -> None:
-    """Kept for callers that still draw through pyplot: select Agg unless a backend was
-    chosen.  New code draws with :func:`new_figure` and never switches the backend."""
-    import os
-
-    import matplotlib
-
-    if not os.environ.get("MPLBACKEND") and matplotlib.get_backend().lower() not in ("agg",):
-        with contextlib.suppress(ValueError, ImportError):  # backend locked by the caller
-            matplotlib.use("Agg")
