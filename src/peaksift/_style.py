@@ -246,9 +246,13 @@ def _points(ax: Any, x: float, y: float) -> Any:
 
 
 def text_width(text: str, size: float, weight: str = "normal") -> float:
-    """Width of ``text`` in points at font ``size`` (mathtext measured as mathtext)."""
+    """Width of ``text`` in points at font ``size`` (mathtext measured as mathtext; of its
+    widest line when it has several: mathtext has no line breaks)."""
     from matplotlib.font_manager import FontProperties
     from matplotlib.textpath import text_to_path
+
+    if "\n" in text:
+        return max(text_width(line, size, weight) for line in text.split("\n"))
 
     prop = FontProperties(size=size, weight=weight)
     ismath = text.count("$") >= 2 and text.count("$") % 2 == 0

@@ -45,7 +45,8 @@ def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
     eff = (r.get("signal_model") or {}).get("points", {}).get("efficiency", {}).get("value")
     return [name, _m(best.get("mass")), _m(best.get("z_local")),
             p_value(best.get("p_local")), _m(best.get("z_global")),
-            format_pm(peak.get("value"), peak.get("error")),
+            format_pm(peak.get("value"), peak.get("error"))
+            + ("" if fit.get("valid", True) else " (fit NOT valid)"),
             f"{_m(min(exp))}-{_m(max(exp))} {lim.get('unit', '')}" if exp else "n/a",
             "from samples" if eff else "given"]
 
@@ -72,6 +73,9 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
         v = fit.get(key) or {}
         if v:
             rows.append([label, format_pm(v.get("value"), v.get("error"))])
+    if fit and not fit.get("valid", True):
+        rows.append(["fit status", "NOT valid: " + "; ".join(str(p) for p in
+                                                       fit.get("problems") or [])])
     rows.append(["luminosity", (f"{_f(lim_cfg.get('luminosity'))} "
                  f"{_lumi_unit(lim_cfg.get('luminosity_unit'))} ± "
                  f"{_f(100 * (lim_cfg.get('luminosity_uncertainty') or 0.0), 2)}%")])
