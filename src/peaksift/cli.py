@@ -65,6 +65,22 @@ def _setup_logging(args: argparse.Namespace) -> None:
         h._peaksift_cli = True  # type: ignore[attr-defined]
         log.addHandler(h)
         log.propagate = False
+    # other libraries' logged warnings (matplotlib's, say) as one line of ours, like their
+    # warnings.warn ones, not Python's bare last-resort line
+    root = logging.getLogger()
+    if not root.handlers:
+        other = logging.StreamHandler(sys.stderr)
+        other.setLevel(logging.WARNING)
+        other.setFormatter(_OneLine())
+        root.addHandler(other)
+
+
+class _OneLine:
+    """Formats a log record as ``peaksift: warning: <message> (<logger>)`` on one line."""
+
+    def format(self, record: Any) -> str:
+        text = " ".join(record.getMessage().split())
+        return f"peaksift: {record.levelname.lower()}: {text} ({record.name})"
 
 
 def _one_line_warning(message: Any, category: type, *_: Any, **__: Any) -> str:
