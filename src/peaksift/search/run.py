@@ -124,9 +124,11 @@ def run_search(
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None) -> SearchResult:
     # the figures are drawn beside the statistics, by a process started before the events
-    # are read (it loads matplotlib meanwhile); without an output folder none are drawn
+    # are read (it loads matplotlib meanwhile); without an output folder, or with
+    # output.figures = "none", none are drawn (and no process is started)
     drawer = (FigureWorker(stage.path / "figures", formats=cfg.output.formats,
-                           log_scale=cfg.output.log_scale) if stage is not None else None)
+                           log_scale=cfg.output.log_scale)
+              if stage is not None and cfg.output.figures != ("none",) else None)
     besides: list[Beside] = []
     try:
         return _stages(cfg, unblind=unblind, progress=progress, started=started, stage=stage,
@@ -170,8 +172,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             "calibration": None, "provenance": {}, "blinding": blind}
         return SearchResult(**{**base, **kw})
 
-    if drawer is not None:
-        drawer.draw(["candidates"], partial())
+    _draw(drawer, cfg, ["candidates"], partial())
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -221,8 +222,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                                 best_plain=best, progress=progress,
                                                 executor=_toy_executor(cfg))
         clock.lap("systematics")
-        if drawer is not None:
-            drawer.draw(["background_envelope"], partial(systematics=syst))
+        _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
@@ -243,10 +243,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
         syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
     clock.lap("fits")
-    if drawer is not None:
-        drawer.draw(["spectrum", "pvalue_scan"],
-                    partial(background_fit=bonly, fit=fres, scan=sres, best=best,
-                            systematics=syst))
+    _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
+          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst))
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -256,9 +254,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                               charge=pair_charge(cfg.pairing.charge)))
     cal, cal_hist, cal_fit = _calibration(cfg, col)
     clock.lap("calibration")
-    if drawer is not None and cal is not None:
-        drawer.draw(["calibration"], partial(calibration=cal),
-                    calibration=(cal_hist, cal_fit))
+    if cal is not None:
+        _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
+              calibration=(cal_hist, cal_fit))
 
     limits = None
     if cfg.limits.enabled:
@@ -273,8 +271,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                 cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
                 blind=blind_window)}
             clock.lap("limits with systematics")
-        if drawer is not None:
-            drawer.draw(["limits"], partial(limits=limits, systematics=syst))
+        _draw(drawer, cfg, ["limits"], partial(limits=limits, systematics=syst))
 
     # hashed where the footers were read (on the workers of a cluster); None when
     # input.hash_inputs is off
@@ -301,7 +298,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         signal_model=smodel,
         identification=ident.to_dict() if ident is not None else None,
     )
-    if stage is None or drawer is None:
+    if stage is None:
         prov["finished"] = _utc()
         return result
 
@@ -311,18 +308,19 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     figdir = stage.path / "figures"
     more = {}
-    if smodel is not None:
+    if smodel is not None and cfg.output.draws("signal_model"):
         more.update(zip(("signal_model_parameters", "signal_model_shapes"),
                         smodel.plot(figdir)))
-    if ident is not None:
+    if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
                                             band=cfg.identification.band)
     clock.lap("figures (here)")
-    drawn = {**drawer.finish(), **more}
+    drawn = {**(drawer.finish() if drawer is not None else {}), **more}
     # CPU seconds of each process of the run: the main line is the critical path, the
     # others may overlap it (their sum over the cores bounds the wall time from below)
-    prov["cpu"] = {"main": round(cpu_seconds(), 2), "figures": round(drawer.cpu, 2),
+    prov["cpu"] = {"main": round(cpu_seconds(), 2),
+                   "figures": round(drawer.cpu if drawer is not None else 0.0, 2),
                    **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {})}
     order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
@@ -337,6 +335,14 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     write_report(d, stage.path, figs)
     clock.lap("report")
     return result
+
+
+def _draw(drawer: FigureWorker | None, cfg: Config, names: list[str], result: Any,
+          **extra: Any) -> None:
+    """Send the figures among ``names`` that ``output.figures`` asks for to the drawer."""
+    names = [n for n in names if cfg.output.draws(n)]
+    if drawer is not None and names:
+        drawer.draw(names, result, **extra)
 
 
 def _opt(**kw: Any) -> dict[str, Any]:
