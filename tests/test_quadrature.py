@@ -14,6 +14,7 @@ relative), bin by bin:
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -76,7 +77,7 @@ def test_bin_fractions_and_derivatives_match_quad(shape, pars, ref):
     lo_in = np.clip(EDGES, *WINDOW)
     z = _quad(log_f, *WINDOW, pars)
     want = np.array([_quad(log_f, a, b, pars) if b > a else 0.0
-                     for a, b in zip(lo_in[:-1], lo_in[1:])]) / z
+                     for a, b in itertools.pairwise(lo_in)]) / z
     frac, grad = shape.fractions_and_grad(EDGES, pars, WINDOW)
     inside = want > 0
     assert np.all(frac[~inside] == 0.0)
@@ -87,7 +88,7 @@ def test_bin_fractions_and_derivatives_match_quad(shape, pars, ref):
             return dlog(x, pars, j)
         kj = _quad(log_f, *WINDOW, pars, w) / z
         jij = np.array([_quad(log_f, a, b, pars, w) if b > a else 0.0
-                        for a, b in zip(lo_in[:-1], lo_in[1:])]) / z
+                        for a, b in itertools.pairwise(lo_in)]) / z
         d_want = jij - want * kj     # d/dp_j of (bin integral / window integral)
         assert np.max(np.abs(grad[j] - d_want)) < 1e-8 * np.max(np.abs(d_want))
 

@@ -89,8 +89,7 @@ def _segments(p, phi, w, start, grad, frac, dfrac):  # pragma: no cover - compil
             for j in range(kk):
                 s += p[b, j] * phi[j, i]
             expo[i] = s
-            if s > top:
-                top = s
+            top = max(top, s)
         seg_i = np.zeros(ns)
         seg_j = np.zeros((kk, ns))
         for s_ in range(ns):

@@ -183,7 +183,7 @@ def _free_fit(model: Any, counts: np.ndarray, sig: Any, base: list[Any],
 def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], masses: Any, *,
                       nuisances: SignalNuisances | None = None,
                       n_parameters: Mapping[str, int] | None = None, penalty: float = 1.0,
-                      resolution: Any, window: tuple[float, float] | None = None,
+                      resolution: Any = None, window: tuple[float, float] | None = None,
                       natural_width: Any = None, blind: tuple[float, float] | None = None,
                       signal_params: Mapping[str, float] | None = None, cl: float = 0.95,
                       luminosity: float | None = None, luminosity_uncertainty: float = 0.0,
@@ -192,7 +192,7 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
                       bins: int | None = None, method: str = "auto",
                       toy_masses: Sequence[float] | None = None, toys: int = 1000,
                       seed: int = 0, low_count_background: float = LOW_COUNT_BACKGROUND,
-                      executor: Any = None) -> dict[str, Any]:
+                      executor: Any = None, signal_model: Any = None) -> dict[str, Any]:
     r"""Asymptotic CLs upper limits with the signal-shape nuisances and the envelope profiled.
 
     Parameters
@@ -213,6 +213,14 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
     unit, method, toy_masses, toys, seed, low_count_background, executor :
         As in :func:`~peaksift.stats.upper_limits`; the toys profile every nuisance and
         the envelope (:mod:`peaksift.stats.toy_limits_systematics`).
+    signal_model : SignalModel, optional
+        Shape, resolution and efficiency as functions of mass from simulated samples
+        (instead of ``signal``, ``resolution`` and ``efficiency``; as in
+        :func:`~peaksift.stats.upper_limits`).  With ``luminosity`` the limits use its
+        interpolated efficiency, and the interpolation's own uncertainty (the efficiency
+        polynomial's 1-sigma band relative to its value, the largest over the limit
+        masses: one scalar, conservative elsewhere) is added in quadrature to
+        ``efficiency_uncertainty``.
 
     Returns
     -------
@@ -239,8 +247,18 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
     prepared = [_prepare_model(data, signal, backgrounds[lab], masses, resolution=resolution,
                                window=window, natural_width=natural_width, blind=blind,
                                signal_params=signal_params, bins=bins,
+                               signal_model=signal_model,
                                what="upper limits with systematics") for lab in labels]
     model0, spec, info = prepared[0]
+    signal_params = info["signal_params"]   # the signal model's functions of mass, if any
+    interpolation = 0.0
+    if signal_model is not None:
+        efficiency = signal_model.efficiency
+        if luminosity is not None:   # the polynomial's own uncertainty on the efficiency
+            m_i = np.asarray(info["masses"], float)
+            interpolation = float(np.max(signal_model.band("efficiency", m_i)
+                                         / signal_model.efficiency(m_i)))
+            efficiency_uncertainty = float(np.hypot(efficiency_uncertainty, interpolation))
     for lab, (m, _, _) in zip(labels, prepared):
         if m.used.size != model0.used.size:
             raise FitError(f"limit candidate {lab} sees different bins than {labels[0]}")
@@ -362,6 +380,9 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
                  for n in nuis.shape_active]
     if delta:
         profiled.append(f"signal normalisation ({100 * delta:.3g}%, {kind})")
+    if interpolation:
+        profiled.append(f"signal model's efficiency interpolation (up to "
+                        f"{100 * interpolation:.3g}%, inside the normalisation)")
     if len(labels) > 1:
         profiled.append(f"background function (envelope of {', '.join(labels)}, penalty "
                         f"{penalty:g} per free parameter)")
