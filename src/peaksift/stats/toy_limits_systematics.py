@@ -74,16 +74,25 @@ class _ShapeProblem(_Problem):
     centers: np.ndarray | None = None
     k: np.ndarray | None = None
 
+    def nll(self, mu: np.ndarray) -> np.ndarray:
+        # the factors start where the last fit left them, except on rows the base class
+        # starts afresh (a mu ten times away), where they start at their centres
+        if self.k is not None and self.last is not None:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                far = ~(np.abs(np.log(np.maximum(np.asarray(mu, float), 1e-300)
+                                      / np.maximum(self.last, 1e-300))) <= math.log(10.0))
+            self.k[far] = np.asarray(self.centers)[far]
+        return super().nll(mu)
+
     def _profile(self, s: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray]:
         nuis = self.nuis
         assert nuis is not None
         names = nuis.shape_active
         rows = np.arange(s.size)
         cen = self.centers
-        # the factors start at their constraints' minimum; the background where it was
         rn = profile_with_nuisances(self.model, self.counts, self.signal, self.base, nuis,
                                     start={"s": s, "b": self.b, "theta": self.theta,
-                                           "factors": cen},
+                                           "factors": cen if self.k is None else self.k},
                                     centers=cen, fixed_signal=True, tol=TOY_TOLERANCE)
         self.k = rn["factors"]
         return rn, _fractions(self.model, self.signal, self.base, names, nuis, self.k, rows)
