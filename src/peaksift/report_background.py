@@ -50,14 +50,19 @@ def _limit_blocks(lim: Any) -> list[Block]:
         v = d.get(key) or []
         return fixed(v[i], 2) if i < len(v) else "n/a"
 
-    rows = [[fixed(mass[i]), at(wo, "observed", i), at(w, "observed", i),
-             at(wo, "expected", i), at(w, "expected", i)] for i in range(len(mass))]
+    methods = list(w.get("methods") or [])
+    toy = [i < len(methods) and methods[i] == "toys" for i in range(len(mass))]
+    rows = [[fixed(mass[i]) + (" (toys)" if toy[i] else ""), at(wo, "observed", i),
+             at(w, "observed", i), at(wo, "expected", i), at(w, "expected", i)]
+            for i in range(len(mass))]
+    how = ("asymptotic" if not any(toy) else
+           f"asymptotic; at {sum(toy)} low-count masses toys with the same profiling")
     unit = w.get("unit") or ""
     cl = 100 * float(w.get("cl") or 0.95)
     out: list[Block] = [
         ("p", (f"Upper limits at {cl:g}% CL ({unit}), CLs: the plain ones (the single "
                "function of the model with the luminosity and efficiency uncertainties, as "
-               "in the Upper limits section) beside those with systematics (asymptotic), which "
+               f"in the Upper limits section) beside those with systematics ({how}), which "
                "profile " + ", ".join(lim.get("profiled") or []) + ".")),
         ("table", ["mass [GeV]", "observed, plain", "observed, with systematics",
                    "expected, plain", "expected, with systematics"], rows)]

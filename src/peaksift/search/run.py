@@ -264,12 +264,13 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                   _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
                           smodel))
         clock.lap("limits" if limits_job is None else "limits (rest of)")
-        if syst is not None and smodel is None:
+        if syst is not None:
             from .systematics import limits_with_systematics
 
             syst = {**syst, "limits": limits_with_systematics(
                 cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
-                blind=blind_window)}
+                blind=blind_window, signal_model=smodel,
+                executor=_toy_executor(cfg, "toy limits"))}
             clock.lap("limits with systematics")
         _draw(drawer, cfg, ["limits"], partial(limits=limits, systematics=syst))
 

@@ -201,11 +201,15 @@ def _compact(lim: dict[str, Any]) -> dict[str, Any]:
 
 def limits_with_systematics(cfg: Config, hist: Any, signal: Any, scanned: Any,
                             plain_limits: Any, *, natural_width: float | None,
-                            blind: Any) -> dict[str, Any]:
+                            blind: Any, signal_model: Any = None,
+                            executor: Any = None) -> dict[str, Any]:
     """The results.json ``systematics.limits`` block: the limits at the masses of the
     plain ones (``plain_limits``, a LimitResult) with the mass-scale and resolution factors
     and the same background functions as the significance (``scanned``: the envelope or
-    the single-function scan of :func:`run_systematics`) profiled, beside the plain ones."""
+    the single-function scan of :func:`run_systematics`) profiled, beside the plain ones.
+    Toys where the plain limits' method asks for them (low counts; ``limits.method``), with
+    the same profiling; with ``[signal_model]`` the model's shape, resolution and
+    efficiency (and its interpolation uncertainty)."""
     from ..stats.envelope import EnvelopeResult
     from ..stats.limits_systematics import systematic_limits
 
@@ -217,21 +221,27 @@ def limits_with_systematics(cfg: Config, hist: Any, signal: Any, scanned: Any,
         shapes = {scanned.background_shape: scanned.model.background}
         counts = None
     lum = L.luminosity
+    sm = signal_model
+    sig_kw: dict[str, Any] = (
+        {"signal_model": sm} if sm is not None else
+        {"resolution": cfg.model.resolution.resolution, "natural_width": natural_width,
+         "efficiency": L.efficiency if lum is not None else 1.0})
     with_s = systematic_limits(
-        hist, signal, shapes, np.asarray(plain_limits.masses), nuisances=_nuisances(cfg),
-        n_parameters=counts, penalty=S.penalty, resolution=cfg.model.resolution.resolution,
-        window=tuple(cfg.spectrum.window), natural_width=natural_width, blind=blind,
-        cl=L.cl, luminosity=lum,
+        hist, None if sm is not None else signal, shapes, np.asarray(plain_limits.masses),
+        nuisances=_nuisances(cfg), n_parameters=counts, penalty=S.penalty,
+        window=tuple(cfg.spectrum.window), blind=blind, cl=L.cl, luminosity=lum,
         luminosity_uncertainty=L.luminosity_uncertainty if lum is not None else 0.0,
-        efficiency=L.efficiency if lum is not None else 1.0,
         efficiency_uncertainty=L.efficiency_uncertainty if lum is not None else 0.0,
-        constraint=L.constraint, unit=L.cross_section_unit)
+        constraint=L.constraint, unit=L.cross_section_unit, method=L.method,
+        toy_masses=list(L.toy_masses) or None, toys=L.toys, seed=cfg.significance.seed,
+        executor=executor if L.method != "asymptotic" else None, **sig_kw)
     plain = plain_limits.to_dict()
     notes = list(with_s.pop("notes", []))
     if S.spurious_uncertainty:
         notes.append("the limits leave out the template signal added to the significance")
-    if plain.get("method") != "asymptotic" and any(m == "toys" for m in plain["methods"]):
-        notes.append("the limits with systematics are asymptotic everywhere; the plain ones "
-                     "use toys at some masses")
+    n_toys = sum(m == "toys" for m in with_s["methods"])
+    if n_toys:
+        notes.append(f"{n_toys} of {len(with_s['methods'])} masses with toys that profile "
+                     "the same nuisances and background functions")
     return {"with_systematics": with_s, "without_systematics": _compact(plain),
             "profiled": with_s["profiled"], "notes": notes}
