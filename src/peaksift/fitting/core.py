@@ -24,6 +24,7 @@ from ..likelihood import (
     Constraint,
     Minimum,
     Model,
+    NearMinimum,
     TiedCost,
     UnbinnedCost,
     baker_cousins_chi2,
@@ -294,13 +295,8 @@ JOIN_DISTANCE = 0.02
 JOIN_NLL = 0.05
 
 
-def _joins(xb: np.ndarray, fb: float, hess: np.ndarray):
-    def stop(x: np.ndarray, f: float) -> bool:
-        if not f <= fb + JOIN_NLL:
-            return False
-        d = x - xb
-        return float(d @ hess @ d) < JOIN_DISTANCE
-    return stop
+def _joins(xb: np.ndarray, fb: float, hess: np.ndarray) -> NearMinimum:
+    return NearMinimum(xb, fb, hess, JOIN_NLL, JOIN_DISTANCE)
 
 
 def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):

@@ -138,6 +138,7 @@ class BinnedCost(_Cost):
                                self._row.get(iy, -1)))
 
         self._state: tuple | None = None
+        self._problem: tuple | None = None  # the compiled minimiser's arrays, made on demand
         self._fused = _fused_path(self)
         # the numpy path's Jacobian, allocated when that path first runs
         self._jac = np.zeros((self.free.size, self.n.size)) if self._fused is None else None
@@ -208,6 +209,28 @@ class BinnedCost(_Cost):
         fisher = (jac * w) @ jac.T if info else None
         val = self._add_constraints(x, val, g, fisher)
         return val, g, fisher
+
+    @property
+    def constant(self) -> float:
+        """The NLL's constant (saturated form) added to the compiled pass's value."""
+        return self._const
+
+    def compiled_problem(self) -> tuple | None:
+        """The arrays of :mod:`.driver`'s compiled minimiser for this cost, or None (a
+        component without a compiled kernel, or constraint terms: the Python loop then)."""
+        if self._fused is None or self._cons:
+            return None
+        if self._problem is None:
+            from .driver import problem_of
+
+            self._problem = problem_of(self._fused) or ()
+        return self._problem or None
+
+    def note_compiled_calls(self, calls: int, x_last: np.ndarray) -> None:
+        """Book ``calls`` evaluations made by the compiled minimiser, the last at
+        ``x_last`` (its expectation is in the compiled buffers)."""
+        self.ncall += int(calls)
+        self._state = (np.asarray(x_last, float).tobytes(), self._fused.mu.copy(), None)
 
     def expected_at(self, x: np.ndarray) -> np.ndarray | None:
         """The expectation of the last evaluation if it was at ``x`` (else None)."""
