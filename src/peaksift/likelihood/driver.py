@@ -171,25 +171,31 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
 
 
 def problem_of(fused: Any) -> tuple | None:
-    """The arrays :func:`_drive` works on, built once per
-    :class:`~peaksift.likelihood.kernels.FusedBinned` (None when a kernel has no code)."""
-    codes = [_CODES.get(k.func) for k in fused.kernels]
-    if any(c is None for c in codes):
+    """The arrays :func:`_drive` works on, for one
+    :class:`~peaksift.likelihood.kernels.FusedBinned` (None when a kernel has no code); the
+    fixed ones are kept with its layout, shared by the costs of one fit's starts."""
+    lay = fused.layout
+    if lay.driver is None:
+        codes = [_CODES.get(k.func) for k in fused.kernels]
+        if any(c is None for c in codes):
+            lay.driver = ()
+        else:
+            ne = fused.cdf.shape[1]
+            edata = np.empty((len(codes), ne))
+            escal = np.zeros((len(codes), 2))
+            for k, kern in enumerate(fused.kernels):
+                edata[k] = kern.data[0]
+                escal[k, :len(kern.data) - 1] = kern.data[1:]
+            lay.driver = (np.array(codes, np.int64), edata, escal,
+                          np.array([p[1].start for p in fused.plan], np.int64),
+                          np.array(lay.start, np.int64),
+                          np.array([p[2] for p in fused.plan], np.int64))
+    if not lay.driver:
         return None
-    ne = fused.cdf.shape[1]
-    edata = np.empty((len(codes), ne))
-    escal = np.zeros((len(codes), 2))
-    for k, kern in enumerate(fused.kernels):
-        edata[k] = kern.data[0]
-        escal[k, :len(kern.data) - 1] = kern.data[1:]
-    plan = fused.plan
-    pstart = np.array([p[1].start for p in plan], np.int64)
-    yidx = np.array([p[2] for p in plan], np.int64)
-    return (np.array(codes, np.int64), edata, escal, pstart,
-            np.array(fused.start, np.int64), yidx, fused.yield_free, fused.value_row,
-            fused.drow, fused.dcomp, fused.dfree, fused.bins, np.asarray(fused.n, float),
-            np.asarray(fused.s, float), fused.unit, fused.floor, fused.cdf, fused.mu,
-            fused.jac, fused.g, fused.fisher, fused.yields)
+    return (*lay.driver, fused.yield_free, fused.value_row, fused.drow, fused.dcomp,
+            fused.dfree, fused.bins, np.asarray(fused.n, float), np.asarray(fused.s, float),
+            fused.unit, fused.floor, fused.cdf, fused.mu, fused.jac, fused.g, fused.fisher,
+            fused.yields)
 
 
 def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper: np.ndarray,
@@ -224,3 +230,194 @@ def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper:
         return None
     cost.note_compiled_calls(calls, x_last)
     return status, x_out, float(f), info_out if status == CONVERGED else None
+
+
+@njit(cache=True, nogil=True)
+def _step_within(x, h, lo, hi):  # pragma: no cover - compiled
+    """As ``cost._step_within``: a difference step and which sides stay in bounds."""
+    up = x + h <= hi
+    dn = x - h >= lo
+    if not (up or dn):
+        h = 0.5 * max(hi - x, x - lo)
+        up = x + h <= hi
+        dn = x - h >= lo
+    return h, up, dn
+
+
+@njit(cache=True, nogil=True)
+def _diff_rows(out, bins, contiguous, k, jb):  # pragma: no cover - compiled
+    i = jb if contiguous else bins[jb]
+    return out[k, i + 1] - out[k, i]
+
+
+@njit(cache=True, nogil=True)
+def _hessian(prob, full, free, x, steps, lower, upper, hess):  # pragma: no cover
+    """``BinnedCost.observed_hessian`` (the same terms, steps and bounds) into ``hess``;
+    False when a kernel declines (the caller then takes the Python path)."""
+    code, edata, escal, pstart, rstart, yidx, yfree = prob[:7]
+    bins, n, s, unit, floor, cdf = prob[11:17]
+    npar = free.size
+    nb = bins.size
+    contiguous = nb == cdf.shape[1] - 1
+    v = full.copy()
+    rowof = np.full(full.size, -1, np.int64)
+    for i in range(npar):
+        v[free[i]] = x[i]
+        rowof[free[i]] = i
+    jm = np.zeros((npar, nb))
+    m = np.zeros(nb)
+    for k in range(code.size):
+        y = v[yidx[k]]
+        ry = yfree[k]
+        if ry < 0 and y == 0.0:
+            continue
+        out = cdf[rstart[k]:rstart[k + 1]]
+        if not _component(code[k], edata[k], escal[k, 0], escal[k, 1], v, pstart[k], out):
+            return False
+        for jb in range(nb):
+            f = max(_diff_rows(out, bins, contiguous, 0, jb), 0.0)
+            for j in range(out.shape[0] - 1):
+                r = rowof[pstart[k] + j]
+                if r >= 0:
+                    jm[r, jb] = _diff_rows(out, bins, contiguous, j + 1, jb) * y
+            if ry >= 0:
+                jm[ry, jb] = f
+            m[jb] = m[jb] + y * f
+    res = np.empty(nb)
+    w = np.empty(nb)
+    for jb in range(nb):
+        mm = max(m[jb], floor)
+        res[jb] = (1.0 if unit else s[jb]) - n[jb] / mm
+        w[jb] = n[jb] / (mm * mm)
+    for a in range(npar):
+        for b in range(npar):
+            acc = 0.0
+            for jb in range(nb):
+                acc += jm[a, jb] * w[jb] * jm[b, jb]
+            hess[a, b] = acc
+    for k in range(code.size):
+        y = v[yidx[k]]
+        ry = yfree[k]
+        nrow = rstart[k + 1] - rstart[k]
+        if ry < 0 and y == 0.0:
+            continue
+        free_shape = False
+        for j in range(nrow - 1):
+            free_shape = free_shape or rowof[pstart[k] + j] >= 0
+        if not free_shape:
+            continue
+        out = cdf[rstart[k]:rstart[k + 1]]
+        if not _component(code[k], edata[k], escal[k, 0], escal[k, 1], v, pstart[k], out):
+            return False
+        base = out.copy()
+        hi_q = np.empty_like(out)
+        lo_q = np.empty_like(out)
+        for j in range(nrow - 1):
+            rj = rowof[pstart[k] + j]
+            if rj < 0:
+                continue
+            if ry >= 0:  # d2 mu / d yield d theta_j = dF/dtheta_j
+                t = 0.0
+                for jb in range(nb):
+                    t += res[jb] * _diff_rows(base, bins, contiguous, j + 1, jb)
+                hess[ry, rj] += t
+                hess[rj, ry] += t
+            p = v[pstart[k] + j]
+            h = abs(steps[rj])
+            if not (math.isfinite(h) and h > 0.0):
+                h = 1e-6 * max(abs(p), 1.0)
+            h, up, dn = _step_within(p, h, lower[rj], upper[rj])
+            vq = v.copy()
+            central = up and dn
+            if central:
+                vq[pstart[k] + j] = p + h
+                ok2 = _component(code[k], edata[k], escal[k, 0], escal[k, 1], vq, pstart[k],
+                                 hi_q)
+                vq[pstart[k] + j] = p - h
+                ok1 = _component(code[k], edata[k], escal[k, 0], escal[k, 1], vq, pstart[k],
+                                 lo_q)
+                if not (ok1 and ok2):
+                    return False
+                width = 2.0 * h
+                low = lo_q
+            else:  # one-sided next to a bound
+                vq[pstart[k] + j] = p + (h if up else -h)
+                if not _component(code[k], edata[k], escal[k, 0], escal[k, 1], vq, pstart[k],
+                                  hi_q):
+                    return False
+                width = h if up else -h
+                low = base
+            for kk in range(nrow - 1):
+                rk = rowof[pstart[k] + kk]
+                if rk < 0:
+                    continue
+                t = 0.0
+                for jb in range(nb):
+                    d2 = (y * (_diff_rows(hi_q, bins, contiguous, kk + 1, jb)
+                               - _diff_rows(low, bins, contiguous, kk + 1, jb))) / width
+                    t += res[jb] * d2
+                hess[rk, rj] += t
+    for a in range(npar):
+        for b in range(a):
+            t = 0.5 * (hess[a, b] + hess[b, a])
+            hess[a, b] = t
+            hess[b, a] = t
+    return True
+
+
+def compiled_hessian(cost: Any, x: np.ndarray, steps: np.ndarray, lower: np.ndarray,
+                     upper: np.ndarray) -> np.ndarray | None:
+    """``cost.observed_hessian`` in one compiled call, or None (the Python path then)."""
+    prob = cost.compiled_problem()
+    if prob is None:
+        return None
+    npar = int(cost.free.size)
+    hess = np.zeros((npar, npar))
+    try:
+        ok = _hessian(prob, cost.full, cost.free, np.asarray(x, float),
+                      np.asarray(steps, float), np.asarray(lower, float),
+                      np.asarray(upper, float), hess)
+    except (ArithmeticError, ValueError):
+        return None
+    return hess if ok else None
+
+
+@njit(cache=True, nogil=True)
+def _covariance(hess, tol, cov):  # pragma: no cover - compiled
+    """``minimize.covariance``: the test on the Hessian scaled to unit diagonal, then its
+    inverse, into ``cov``; False when not positive definite (or not finite)."""
+    n = hess.shape[0]
+    for v in hess.ravel():
+        if not math.isfinite(v):
+            return False
+    sc = np.empty(n)
+    for i in range(n):
+        if not hess[i, i] > 0.0:
+            return False
+        sc[i] = 1.0 / math.sqrt(hess[i, i])
+    scaled = np.empty((n, n))
+    for i in range(n):
+        for j in range(n):
+            scaled[i, j] = hess[i, j] * (sc[i] * sc[j])
+            if not math.isfinite(scaled[i, j]):
+                return False
+    if np.linalg.eigvalsh(scaled).min() <= tol:
+        return False
+    inv = np.linalg.inv(scaled)
+    for i in range(n):
+        for j in range(n):
+            cov[i, j] = inv[i, j] * (sc[i] * sc[j])
+            if not math.isfinite(cov[i, j]):
+                return False
+    return True
+
+
+def compiled_covariance(hess: np.ndarray, tol: float) -> tuple[np.ndarray, bool] | None:
+    """``minimize.covariance`` in one compiled call (None: let numpy answer)."""
+    n = hess.shape[0]
+    cov = np.empty((n, n))
+    try:
+        ok = _covariance(np.ascontiguousarray(hess, float), float(tol), cov)
+    except (ArithmeticError, ValueError, np.linalg.LinAlgError):
+        return None
+    return (cov, True) if ok else (np.full((n, n), np.nan), False)
