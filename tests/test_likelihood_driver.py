@@ -211,3 +211,20 @@ def test_numpy_reference_path_agrees(background, monkeypatch):
     assert ref.converged and fast.converged
     assert np.all(np.abs(fast.x - ref.x) < 1e-6 * fast.errors)
     assert abs(fast.fval - ref.fval) < 1e-8
+
+
+@pytest.mark.parametrize(("sigma", "window"), [(6.0, (LO, HI)), (3.0, (110.0, 200.0))])
+def test_gaussian_rows_match_scipy(sigma, window):
+    """The coarse scan's compiled Gaussian bin fractions vs the truncated normal of scipy
+    (upper tails where the window lies above the peak), to 1e-12 of the largest fraction."""
+    from peaksift.shapes.compiled import gaussian_rows
+
+    lo, hi = window
+    edges = np.linspace(lo, hi, 98)
+    masses = np.array([lo - 20.0, lo + 1.0, 0.5 * (lo + hi), hi - 0.3, hi + 5.0])
+    out = np.empty((masses.size, edges.size - 1))
+    assert gaussian_rows(edges, masses, sigma, lo, hi, out)
+    for m, row in zip(masses, out):
+        a, b = stats.norm.sf([lo, hi], m, sigma)
+        ref = -np.diff(stats.norm.sf(edges, m, sigma)) / (a - b)
+        assert np.max(np.abs(row - ref)) < 1e-12 * max(ref.max(), 1e-300) + 1e-300
