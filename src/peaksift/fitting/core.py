@@ -196,8 +196,13 @@ def fit(
         scale = _read_only(d.hist.scaled_poisson_factors())
         edges, counts = _read_only(d.edges), _read_only(d.n)
 
+        first: list = []
+
         def plain_cost(v: np.ndarray) -> Any:
-            return BinnedCost(model, v, inner_free, cons_idx, edges, counts, scale)
+            if first:  # the other starts: the first start's cost at their fixed values
+                return first[0].at_values(v)
+            first.append(BinnedCost(model, v, inner_free, cons_idx, edges, counts, scale))
+            return first[0]
     else:
         def plain_cost(v: np.ndarray) -> Any:
             return UnbinnedCost(model, v, inner_free, cons_idx, d.x, d.w)

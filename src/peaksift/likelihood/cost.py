@@ -14,6 +14,7 @@ to all of them here, once.
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Sequence
 from typing import Any
 
@@ -209,6 +210,17 @@ class BinnedCost(_Cost):
         fisher = (jac * w) @ jac.T if info else None
         val = self._add_constraints(x, val, g, fisher)
         return val, g, fisher
+
+    def at_values(self, full: np.ndarray) -> BinnedCost:
+        """The same cost (data, free parameters, constraints, every derived array shared)
+        with the fixed parameters at ``full``, fresh call count and buffers: the starts of
+        one fit differ only there."""
+        c = copy.copy(self)
+        c.full = np.asarray(full, float).copy()
+        c._last, c._state, c._problem, c.ncall = None, None, None, 0
+        c._fused = None if self._fused is None else self._fused.fresh()
+        c._jac = None if self._jac is None else np.zeros_like(self._jac)
+        return c
 
     @property
     def constant(self) -> float:

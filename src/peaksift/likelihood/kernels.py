@@ -24,6 +24,7 @@ checks both against scipy's CDFs written in the test.
 
 from __future__ import annotations
 
+import copy
 import math
 from typing import Any
 
@@ -220,17 +221,26 @@ class FusedBinned:
         self.start, self.bins = lay.start, lay.bins
         self.drow, self.dcomp, self.dfree = lay.drow, lay.dcomp, lay.dfree
         self.value_row, self.yield_free = lay.value_row, lay.yield_free
-        self.cdf = np.zeros((self.start[-1], edges.size))
         self.n, self.s, self.unit, self.floor = n, s, bool(unit), float(floor)
+        self._buffers(nfree, edges.size)
+
+    def _buffers(self, nfree: int, nedges: int) -> None:
+        self.cdf = np.zeros((self.start[-1], nedges))
         self.g = np.zeros(nfree)
         self.fisher = np.zeros((nfree, nfree))
         self.mu = np.zeros(self.bins.size)
         self.jac = np.zeros((nfree, self.bins.size))
-        self.yields = np.empty(len(plan))
+        self.yields = np.empty(len(self.plan))
         # per component: kernel, its arguments around the parameters, its rows of cdf
         self.calls = [(kern.func, kern.data[:1], kern.data[1:],
                        self.cdf[self.start[k]:self.start[k + 1]], p[1], p[2], p[5])
-                      for k, (kern, p) in enumerate(zip(kernels, plan))]
+                      for k, (kern, p) in enumerate(zip(self.kernels, self.plan))]
+
+    def fresh(self) -> FusedBinned:
+        """The same evaluator with buffers of its own (for another cost on the same data)."""
+        out = copy.copy(self)
+        out._buffers(self.g.size, self.cdf.shape[1])
+        return out
 
     def fractions(self, shape: Any, p: list[float]):
         """``(fractions, derivatives)`` of component ``shape`` in the used bins at its
