@@ -44,10 +44,11 @@ from ..errors import FitError
 from . import lee
 from .channel_toys import combined_toy_scans
 from .joint import profile_joint
+from .joint_start import joint_start
 from .scan import scan_prepared
 from .scan_inputs import _prepare_model, _signal_params
 from .significance import p_from_q0, z_from_q0
-from .toys import bkg_fractions, fit_background
+from .toys import fit_background
 
 __all__ = [
     "Channel",
@@ -242,13 +243,14 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
     norms, norm_names = signal_norms(chans)
     specs = [ch.shape_spec(p, bl) for ch, p in zip(chans, prepared)]
-    per = {}
+    per, fits = {}, []
     for ch, (model, spec, info), k in zip(chans, prepared, conv):
         exp_s = None if expected_cross_section is None else (
             lambda m, k=k: float(expected_cross_section) * np.interp(m, m_all, k))
+        fits.append({})
         per[ch.name] = scan_prepared(ch.data, model, spec, info, blind=blind,
                                      expected_signal=exp_s, natural_width=ch.natural_width,
-                                     refit=refit)
+                                     refit=refit, fits=fits[-1])
     nm = m_all.size
     mu, mu_err = np.full(nm, np.nan), np.full(nm, np.nan)
     shape_names = tuple(f"{nm}_{ch.name}" for ch, sp in zip(chans, specs) if sp is not None
@@ -268,16 +270,14 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         notes += list(s.notes)
     elif (~bl).any():
         models = [p[0] for p in prepared]
-        mu0 = _start(list(per.values()), conv)[~bl]
-        # start: the channels' own fits combined (sigma x B) and their background yields
-        # moved along with their signal;
+        # start: the channels' own fits combined to second order (joint_start);
         # a last step below 0.03 errors leaves q0 within ~1e-5 (Newton: the next would be
         # ~1e-3 errors), so the fit stops there
         r = profile_joint(models, [m.counts for m in models], [m.fractions for m in models],
                           [k[~bl] for k in conv], steps=100, tol=3e-2,
-                          mu_start=mu0,
-                          b_start=_b_start(models, list(per.values()), conv, mu0, bl),
-                          norms=norms, shapes=specs if any(specs) else None)
+                          **joint_start(models, fits, [k[~bl] for k in conv], norms),
+                          norms=norms, shapes=specs if any(specs) else None,
+                          curvature=[m.theta for m in models])
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q0[~bl], mu[~bl], mu_err[~bl], converged[~bl] = q, r["mu"], r["mu_error"], r["converged"]
@@ -304,40 +304,6 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         notes=tuple(notes), prepared=tuple(p[0] for p in prepared),
         nuisances=norm_names + shape_names,
         nuisance_values=nu_fit, norms=norms)
-
-
-def _start(scans: list, conv: list[np.ndarray]) -> np.ndarray:
-    """Starting sigma x B of the joint fit: the channels' own fitted yields over their
-    conversions, averaged with inverse-variance weights (0 where none is usable)."""
-    num, den = 0.0, 0.0
-    with np.errstate(divide="ignore", invalid="ignore"):
-        for s, k in zip(scans, conv):
-            w = np.where(k > 0, (k / np.asarray(s.signal_yield_error)) ** 2, 0.0)
-            w = np.where(np.isfinite(w), w, 0.0)
-            num = num + w * np.nan_to_num(np.asarray(s.signal_yield) / k)
-            den = den + w
-        out = np.where(den > 0, num / den, 0.0)
-    return np.where(np.isfinite(out), out, 0.0)
-
-
-def _b_start(models: list, scans: list, conv: list[np.ndarray], mu0: np.ndarray,
-             bl: np.ndarray) -> list[np.ndarray]:
-    """Starting background yields of the joint fit: each channel's own fitted yield moved to
-    first order with its signal, from its own s_c to k_c mu0 (the slope -H_bs / H_bb of
-    the Poisson NLL at the channel's fit, shapes at the background-only fit): the joint fit
-    then starts within second order of its minimum."""
-    out = []
-    for m, sc, k in zip(models, scans, conv):
-        s = np.nan_to_num(np.asarray(sc.signal_yield, float)[~bl])
-        b = np.asarray(sc.background_yield, float)[~bl]
-        g = bkg_fractions(m, m.theta[None, :])[0]
-        with np.errstate(all="ignore"):
-            nu = np.maximum(s[:, None] * m.fractions + b[:, None] * g, 1e-300)
-            v = m.counts / nu**2
-            slope = -np.sum(v * m.fractions * g, axis=1) / np.maximum(v @ (g * g), 1e-300)
-            moved = b + slope * (k[~bl] * mu0 - s)
-        out.append(np.where(np.isfinite(moved) & (moved > 0), moved, b))
-    return out
 
 
 def _expected_z(prepared: list, conv: list[np.ndarray], xs: float, norms: Any = None

@@ -53,7 +53,8 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
                   b_start: Sequence[np.ndarray] | None = None,
                   steps: int = 60, tol: float = 1e-6, norms: Any = None,
                   nu_start: Any = None, nu_aux: Any = None,
-                  shapes: Sequence[Any] | None = None) -> dict[str, Any]:
+                  shapes: Sequence[Any] | None = None,
+                  curvature: Sequence[np.ndarray] | None = None) -> dict[str, Any]:
     """Joint signal-plus-background fits of several channels for stacked hypotheses.
 
     Parameters
@@ -82,6 +83,11 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
         :class:`~peaksift.likelihood.SignalNuisances` whose shape factors (mass scale,
         resolution) are profiled with their constraints; the channel's fractions are then
         recomputed at every trial point (``fractions`` is not used for it).
+    curvature : sequence of arrays, optional
+        Per channel the background parameters ``(K,)`` at which the shape's second
+        derivatives enter the Hessian (default: each row's start); one set for all rows
+        (e.g. the background-only fit, as :func:`~peaksift.stats.toys.profile_signal`
+        takes it) costs one evaluation instead of one per row.
 
     Returns
     -------
@@ -96,11 +102,12 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
     with np.errstate(all="ignore"):
         return _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start,
                         b_start, steps, tol, a, nu_start, nu_aux,
-                        [None] * len(models) if shapes is None else list(shapes))
+                        [None] * len(models) if shapes is None else list(shapes),
+                        curvature)
 
 
 def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b_start,
-             steps, tol, a_norm, nu_start, nu_aux, specs):
+             steps, tol, a_norm, nu_start, nu_aux, specs, curvature=None):
     nc = len(models)
     f = [np.atleast_2d(np.asarray(x, float)) for x in fractions]
     nb = f[0].shape[0]
@@ -183,8 +190,10 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     if np.any(~np.isfinite(nll)) and not fixed:
         mu = np.where(np.isfinite(nll), mu, 0.0)
         nll = total(mu, nu, kap, b, g0, fr0, all_rows)
+    at = theta if curvature is None else [
+        np.broadcast_to(np.asarray(cv, float), th.shape) for cv, th in zip(curvature, theta)]
     d2 = [_per_row(bkg_second, m, th, view=True) if kc else None
-          for m, th, kc in zip(models, theta, ks)]
+          for m, th, kc in zip(models, at, ks)]
 
     def unpack(x, rows):
         mu_ = mu[rows] if fixed else x[:, 0]
