@@ -5,7 +5,9 @@ A combination config names one single-channel search config per channel; each ch
 its own complete search (its input or selection, objects, pairing, window and binning,
 background, signal model or resolution, efficiency and luminosity), run through the same
 code as ``peaksift search`` on that file alone, so each channel's numbers are exactly those
-of its own search.  The combination then fits all channels together with one sigma x B
+of its own search.  Channels that select from the same files (with the same execution
+settings) read them in one pass: each chunk is read once and every channel's selection runs
+on it (:func:`peaksift.execution.collect_shared`; the same result as the channel's own read).  The combination then fits all channels together with one sigma x B
 (:func:`peaksift.stats.channels.combine` and
 :func:`~peaksift.stats.channel_limits.combined_limits`).
 
@@ -186,8 +188,10 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         target = (t if t.is_absolute() or out is not None else base / t).resolve()
     started = _utc()
     with _staged(target, "search", share_folder) as stage:
+        shared_reads = _shared_reads(names, cfgs, progress)
         results = {n: _search(c, unblind=False, progress=progress, started=started, stage=None,
-                              target=None) for n, c in zip(names, cfgs)}
+                              target=None, collected=shared_reads.get(n))
+                   for n, c in zip(names, cfgs)}
         first = cfgs[0]
         masses = _scan_masses(first)
         channels = [_channel(n, c, results[n], shared) for n, c in zip(names, cfgs)]
@@ -234,6 +238,52 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         if stage is not None:
             res = _write(res, stage.path, target)
     return res
+
+
+def _shared_reads(names: list[str], cfgs: list[Any], progress: bool) -> dict[str, Any]:
+    """Each channel's events read and selected, one pass per group of channels that read
+    the same files alike (same files, execution and read settings): channel name ->
+    :class:`~peaksift.execution.Collected`, exactly what the channel's own read gives
+    (:func:`peaksift.execution.collect_shared`).  A channel alone on its input, or with dE/dx
+    identification (its selection needs a calibration pass first), reads in its search."""
+    from ..errors import CutError, InputError
+    from ..events import list_files
+    from ..execution import collect_shared
+    from .common import _keyed_cut_error, _keyed_input_error, _read_window, _selection
+
+    groups: dict[tuple, list[int]] = {}
+    for k, cfg in enumerate(cfgs):
+        if cfg.identification.enabled:
+            continue
+        ex, inp = cfg.execution, cfg.input
+        try:
+            files = tuple(str(f) for f in list_files(inp.files))
+        except InputError:
+            continue  # the channel's own read reports it, keyed to its config
+        key = (files, ex.engine, ex.workers, ex.address, ex.chunk_events, ex.unreadable_files,
+               ex.start_method, inp.hash_inputs, inp.strict, inp.column_pattern)
+        groups.setdefault(key, []).append(k)
+    out: dict[str, Any] = {}
+    for key, members in groups.items():
+        if len(members) < 2:
+            continue
+        sels = [_selection(cfgs[k], *_read_window(cfgs[k])) for k in members]
+        ex = cfgs[members[0]].execution
+        try:
+            cols = collect_shared(list(key[0]), sels, engine=ex.engine, workers=ex.workers,
+                                  address=ex.address or None, chunk_events=ex.chunk_events,
+                                  unreadable_files=ex.unreadable_files, progress=progress,
+                                  start_method=ex.start_method,
+                                  hash_files=cfgs[members[0]].input.hash_inputs)
+        except (CutError, InputError) as exc:
+            for k in members:  # the channel whose config key it is, when one is
+                keyed = (_keyed_cut_error if isinstance(exc, CutError)
+                         else _keyed_input_error)(cfgs[k], exc)
+                if keyed is not exc:
+                    raise type(exc)(f"channel {names[k]!r}: {keyed}") from None
+            raise
+        out.update((names[k], c) for k, c in zip(members, cols))
+    return out
 
 
 def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> Any:
