@@ -28,8 +28,8 @@ channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
 ``limits.luminosity_uncertainty`` and ``limits.efficiency_uncertainty`` enter the joint
 likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channels share one
 luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
-``[systematics]`` mass-scale and resolution factors are profiled in the combined scan and
-the asymptotic combined limits (not in the combination's toys); its background envelope
+``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
+toys and the asymptotic combined limits (not in the toy limits); its background envelope
 stays in its own results (both said in the results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
@@ -219,10 +219,10 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             notes += (("a combination of one channel is that channel's scan without its "
                        "[systematics] (its own results show both)"),)
         elif with_shape:
-            notes += ((f"the combined scan and the asymptotic combined limits profile the "
-                       f"[systematics] mass-scale and resolution factors of channel(s) "
-                       f"{', '.join(with_shape)}; the combination's toys (global significance, "
-                       "toy limits) leave them at 1"),)
+            notes += ((f"the combined scan, its toys (at each toy's highest points) and the "
+                       f"asymptotic combined limits profile the [systematics] mass-scale and "
+                       f"resolution factors of channel(s) {', '.join(with_shape)}; the "
+                       "combination's toy limits leave them at 1"),)
         if with_env and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "
                        f"envelope of "
@@ -299,7 +299,7 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
              "luminosity_group": "shared" if shared_luminosity else None,
              "shape_nuisances": {"mass_scale": float(sy.mass_scale),
                                  "mass_resolution": float(sy.mass_resolution)},
-             "shape_constraint": sy.constraint}
+             "shape_constraint": sy.constraint, "toy_constraints": sy.toy_constraints}
     if res.signal_model is not None:
         return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
                        signal_model=res.signal_model, window=cfg.spectrum.window, **norms)

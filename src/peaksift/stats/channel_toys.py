@@ -30,6 +30,7 @@ import numpy as np
 from ..errors import FitError
 from .cls import _BANDS
 from .joint import profile_joint
+from .shape_profile import NUISANCE_REFINE, top_points
 from .toy_limits import grid_start, limits_on_grid, pooled_cls
 from .toys import bkg_fractions, fit_background, toy_counts
 
@@ -139,12 +140,21 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
 
 
 def combined_toy_scans(models: list, conv: list[np.ndarray], n_toys: int, *,
-                       seed: int = 0, norms: Any = None) -> np.ndarray:
+                       seed: int = 0, norms: Any = None, shapes: Any = None,
+                       ensembles: Any = None) -> np.ndarray:
     """q0 scans ``(n_toys, n_masses)`` of background-only toys of every channel, each
     channel fluctuated from its background-only fit (toy ``i`` of channel ``c`` from
     ``SeedSequence(seed, spawn_key=(c, i))``), fitted with the joint likelihood (with the
     normalisation nuisances ``norms`` when given; their auxiliary measurements stay at 0:
-    under the background-only hypothesis they do not change the toys)."""
+    under the background-only hypothesis they do not change the toys).
+
+    ``shapes``: per channel None or ``(signal, base_params, SignalNuisances)`` at every
+    mass of the scan (:meth:`~peaksift.stats.channels.Channel.shape_spec`): the channels'
+    mass-scale and resolution factors are then profiled, as in the observed scan, at each
+    toy's ``NUISANCE_REFINE`` highest points (the single channel's method,
+    :mod:`peaksift.stats.shape_profile`); ``ensembles`` per channel ``"fixed"`` (the
+    constraints centred at 1) or ``"sampled"`` (each toy draws the centres, from
+    ``SeedSequence(seed, spawn_key=(c, i, 1))``)."""
     if n_toys < 1:
         raise FitError(f"toys must be a positive number of pseudo-experiments, got {n_toys}")
     nm = models[0].masses.size
@@ -165,5 +175,51 @@ def combined_toy_scans(models: list, conv: list[np.ndarray], n_toys: int, *,
                           steps=40, tol=3e-2, norms=norms)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q[~np.isfinite(r["nll"]) | ~np.isfinite(nll0)] = np.nan
-        out[first:first + cnt] = q.reshape(cnt, nm)
+        q = q.reshape(cnt, nm)
+        if shapes is not None and any(sp is not None for sp in shapes):
+            _refine_shapes(q, r, models, counts, conv, nll0, norms, shapes,
+                           ensembles or ["fixed"] * len(models), seed, first)
+        out[first:first + cnt] = q
     return out
+
+
+def _refine_shapes(q: np.ndarray, r: dict, models: list, counts: list, conv: list,
+                   nll0: np.ndarray, norms: Any, shapes: Any, ensembles: Any, seed: int,
+                   first: int) -> None:
+    """Each toy's highest points refitted with the channels' shape factors free and
+    constrained (centres at 1, or drawn per toy), written into ``q (toys, masses)``."""
+    nm = q.shape[1]
+    toys, cols = top_points(q, NUISANCE_REFINE)
+    if toys.size == 0:
+        return
+    rows = toys * nm + cols       # rows of the stacked (toy, mass) fits
+    specs, centers = [], []
+    for c, sp in enumerate(shapes):
+        if sp is None:
+            specs.append(None)
+            centers.append(None)
+            continue
+        sig, base, nuis = sp
+        specs.append((sig, [np.asarray(p)[cols] if np.ndim(p) else p for p in base], nuis))
+        if ensembles[c] == "sampled":
+            names = nuis.shape_active
+            cen = np.empty((rows.size, len(names)))
+            for j, t in enumerate(toys):  # the toy's own stream, apart from its counts'
+                ss = np.random.SeedSequence(seed, spawn_key=(c, first + int(t), 1))
+                cen[j] = nuis.sample_centers(names, np.random.default_rng(ss), 1)[0]
+            centers.append(cen)
+        else:
+            centers.append(None)
+    rr = profile_joint(models, [n[rows] for n in counts],
+                       [m.fractions[cols] for m in models], [k[cols] for k in conv],
+                       mu_start=r["mu"][rows], theta_start=[t[rows] for t in r["theta"]],
+                       b_start=[b[rows] for b in r["b"]], nu_start=r["nu"][rows],
+                       norms=norms, shapes=specs, shape_centers=centers, steps=40,
+                       tol=3e-2)
+    exact = np.where(rr["mu"] > 0, np.maximum(2.0 * (nll0[rows] - rr["nll"]), 0.0), 0.0)
+    # started at the fit with the factors at 1: with centres at 1 never worse (to
+    # rounding); with drawn centres the refit is the toy's q0 however it compares
+    sampled = np.array([any(ensembles[c] == "sampled" for c, sp in enumerate(shapes)
+                            if sp is not None)] * rows.size)
+    keep = np.isfinite(exact) & (sampled | (rr["nll"] <= r["nll"][rows]))
+    q[toys[keep], cols[keep]] = exact[keep]

@@ -25,9 +25,11 @@ One channel goes through :func:`peaksift.scan` unchanged: the combination of one
 Luminosity and efficiency uncertainties enter as constrained log-normal factors on each
 channel's signal (:mod:`peaksift.stats.joint`); in the scan they matter only through the
 channels' relative normalisation (a common factor is absorbed by sigma x B).  A channel's
-``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan and the
-asymptotic limits, not in the combination's toys.  Not here (said plainly): the channels'
-background envelopes; each channel's own results carry those.
+``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan, the
+asymptotic limits and the toys of the global significance (at each toy's highest points, as
+for one channel; ``toy_constraints`` chooses the ensemble); the toy limits keep them at 1.
+Not here (said plainly): the channels' background envelopes; each channel's own results
+carry those.
 """
 
 from __future__ import annotations
@@ -86,7 +88,9 @@ class Channel:
     shape_nuisances : mapping, optional
         Relative sizes of the channel's signal-shape nuisances (``mass_scale``,
         ``mass_resolution``), profiled with their constraints in the combined scan;
-        ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``).
+        ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``);
+        ``toy_constraints`` whether the combination's toys keep their constraints' centres
+        at 1 (``"fixed"``) or draw them per toy (``"sampled"``).
     """
 
     name: str
@@ -106,6 +110,7 @@ class Channel:
     luminosity_group: str | None = None
     shape_nuisances: Mapping[str, float] | None = None
     shape_constraint: str = "gaussian"
+    toy_constraints: str = "fixed"
 
     def shape_spec(self, prepared: tuple, blinded: np.ndarray, *, every_mass: bool = False,
                    repeat: int = 1) -> Any:
@@ -115,6 +120,9 @@ class Channel:
         sizes = {k: float(v) for k, v in (self.shape_nuisances or {}).items() if v}
         if not sizes:
             return None
+        if self.toy_constraints not in ("fixed", "sampled"):
+            raise FitError(f"channel {self.name!r}: toy_constraints must be 'fixed' or "
+                           f"'sampled', got {self.toy_constraints!r}")
         from ..likelihood import SignalNuisances
 
         try:
@@ -303,7 +311,8 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         z_expected=z_exp, expected_cross_section=expected_cross_section, unit=unit,
         notes=tuple(notes), prepared=tuple(p[0] for p in prepared),
         nuisances=norm_names + shape_names,
-        nuisance_values=nu_fit, norms=norms)
+        nuisance_values=nu_fit, norms=norms, shapes=tuple(specs),
+        toy_constraints=tuple(ch.toy_constraints for ch in chans))
 
 
 def _expected_z(prepared: list, conv: list[np.ndarray], xs: float, norms: Any = None
@@ -376,6 +385,9 @@ class Combination(FrozenValue):
     nuisances: tuple[str, ...] = ()
     nuisance_values: np.ndarray | None = None   # (n_masses, J) fitted, NaN where blinded
     norms: Any = field(default=None, compare=False)
+    #: per channel its shape factors for the toys (None: none), and their ensemble
+    shapes: tuple = field(default=(), compare=False)
+    toy_constraints: tuple = field(default=(), compare=False)
 
     @property
     def best(self) -> dict[str, float]:
@@ -476,7 +488,9 @@ class Combination(FrozenValue):
         else:
             scans = combined_toy_scans(list(self.prepared),
                                        [np.asarray(k)[mask] for k in self.conversion.values()],
-                                       n, seed=seed, norms=self.norms)
+                                       n, seed=seed, norms=self.norms,
+                                       shapes=self.shapes or None,
+                                       ensembles=self.toy_constraints or None)
             res = (lee.global_from_toys(q_obs, scans.max(axis=1)) if method == "toys" else
                    lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps))
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
