@@ -30,7 +30,8 @@ likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channe
 luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
 ``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
 toys and the asymptotic combined limits (not in the toy limits); its background envelope
-stays in its own results (both said in the results and the report).  Blinding is not
+(the functions its own search kept) is profiled per channel in the combined scan, not in
+the combination's toys or limits (both said in the results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
 
@@ -208,9 +209,8 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             lim = combined_limits(channels, lm, cl=fl.cl, unit=unit, method=fl.method,
                                   toys=fl.toys, seed=sig.seed,
                                   toy_masses=list(fl.toy_masses) or None)
-        # the joint likelihood has the luminosity and efficiency uncertainties but no shape
-        # nuisances or background envelope yet: say so rather than let a reader take the
-        # combined Z for one with every systematic
+        # say which systematics each combined number has, rather than let a reader take
+        # the combined Z for one with every systematic
         notes: tuple[str, ...] = ()
         with_shape = [n for n, c in zip(names, cfgs)
                       if c.systematics.mass_scale or c.systematics.mass_resolution]
@@ -223,11 +223,19 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                        f"asymptotic combined limits profile the [systematics] mass-scale and "
                        f"resolution factors of channel(s) {', '.join(with_shape)}; the "
                        "combination's toy limits leave them at 1"),)
-        if with_env and len(cfgs) > 1:
+        enveloped = [n for n in names if channels[names.index(n)].background_candidates]
+        if enveloped and len(cfgs) > 1:
+            notes += ((f"the combined scan (local significance) profiles the [systematics] "
+                       f"background envelope of channel(s) {', '.join(enveloped)} as a "
+                       "discrete choice per channel (its spurious-signal term left out); the "
+                       "combination's toys (global significance: the observed envelope q0 "
+                       "against toys of the configured functions) and its limits use each "
+                       "channel's configured background function"),)
+        left = [n for n in with_env if n not in enveloped]
+        if left and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "
-                       f"envelope of "
-                       f"channel(s) {', '.join(with_env)} (each channel's own results show "
-                       "it); its numbers use each channel's configured background"),)
+                       f"choice of channel(s) {', '.join(left)} (no envelope in their "
+                       "results); its numbers use each channel's configured background"),)
         gauss = [n for n, c in zip(names, cfgs) if c.limits.constraint != "lognormal" and (
             c.limits.luminosity_uncertainty or c.limits.efficiency_uncertainty)]
         if gauss:
@@ -294,12 +302,22 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
     r = cfg.model.resolution
     bkg = _shape(cfg.model.background, cfg.model.background_options)
     sy = cfg.systematics
+    env = (res.systematics or {}).get("envelope") if sy.background_families else None
+    cands = {}
+    if env and env.get("functions"):
+        from ..stats.background_choice import candidate_shapes
+
+        cands = {"background_candidates": candidate_shapes(list(env["functions"]),
+                                                           sqrt_s=sy.sqrt_s),
+                 "background_parameters": dict(zip(env["functions"], env["n_parameters"])),
+                 "background_penalty": float(env["penalty"])}
     norms = {"luminosity_uncertainty": float(cfg.limits.luminosity_uncertainty),
              "efficiency_uncertainty": float(cfg.limits.efficiency_uncertainty),
              "luminosity_group": "shared" if shared_luminosity else None,
              "shape_nuisances": {"mass_scale": float(sy.mass_scale),
                                  "mass_resolution": float(sy.mass_resolution)},
-             "shape_constraint": sy.constraint, "toy_constraints": sy.toy_constraints}
+             "shape_constraint": sy.constraint, "toy_constraints": sy.toy_constraints,
+             **cands}
     if res.signal_model is not None:
         return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
                        signal_model=res.signal_model, window=cfg.spectrum.window, **norms)

@@ -28,8 +28,8 @@ channels' relative normalisation (a common factor is absorbed by sigma x B).  A 
 ``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan, the
 asymptotic limits and the toys of the global significance (at each toy's highest points, as
 for one channel; ``toy_constraints`` chooses the ensemble); the toy limits keep them at 1.
-Not here (said plainly): the channels' background envelopes; each channel's own results
-carry those.
+A channel's ``background_candidates`` are profiled as a discrete choice in the combined scan
+(:mod:`peaksift.stats.channel_envelope`), not in its toys or limits.
 """
 
 from __future__ import annotations
@@ -44,6 +44,7 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
+from .channel_envelope import envelope_of_channels
 from .channel_toys import combined_toy_scans
 from .joint import profile_joint
 from .joint_start import joint_start
@@ -91,6 +92,11 @@ class Channel:
         ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``);
         ``toy_constraints`` whether the combination's toys keep their constraints' centres
         at 1 (``"fixed"``) or draw them per toy (``"sampled"``).
+    background_candidates : mapping, optional
+        Label -> background shape: the channel's function is profiled as a discrete choice
+        among them in the combined scan (:mod:`peaksift.stats.channel_envelope`), with
+        ``background_penalty`` per free parameter (``background_parameters`` label ->
+        count; default the shape's parameters and its yield).
     """
 
     name: str
@@ -111,6 +117,9 @@ class Channel:
     shape_nuisances: Mapping[str, float] | None = None
     shape_constraint: str = "gaussian"
     toy_constraints: str = "fixed"
+    background_candidates: Mapping[str, Any] | None = None
+    background_parameters: Mapping[str, int] | None = None
+    background_penalty: float = 1.0
 
     def shape_spec(self, prepared: tuple, blinded: np.ndarray, *, every_mass: bool = False,
                    repeat: int = 1) -> Any:
@@ -268,7 +277,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     q0 = np.full(nm, np.nan)
     converged = np.zeros(nm, bool)
     notes: list[str] = []
-    z_exp = None
+    z_exp = envelope = None
     if len(chans) == 1:  # one channel: its scan is the combination (same numbers)
         s = per[chans[0].name]
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -296,6 +305,14 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
             notes.append(f"{int((~r['converged']).sum())} combined hypotheses did not converge")
         if expected_cross_section is not None:
             z_exp = _expected_z(prepared, conv, float(expected_cross_section), norms)
+        env = envelope_of_channels(chans, prepared, fits, specs, conv, bl, norms,
+                                   lambda ch: _prepare(ch, m_all, blind))
+        if env is not None:   # the channels' background functions profiled
+            q0[~bl], mu[~bl], mu_err[~bl] = env["q0"], env["mu"], env["mu_error"]
+            converged[~bl] = env["converged"]
+            if nu_fit is not None:
+                nu_fit[~bl] = env["nuisances"]
+            envelope = env["entry"]
     if bl.all():
         notes.append("every mass hypothesis is blinded")
     qsel = np.where(bl, -np.inf, np.nan_to_num(q0, nan=-np.inf))
@@ -311,7 +328,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         z_expected=z_exp, expected_cross_section=expected_cross_section, unit=unit,
         notes=tuple(notes), prepared=tuple(p[0] for p in prepared),
         nuisances=norm_names + shape_names,
-        nuisance_values=nu_fit, norms=norms, shapes=tuple(specs),
+        nuisance_values=nu_fit, norms=norms, envelope=envelope, shapes=tuple(specs),
         toy_constraints=tuple(ch.toy_constraints for ch in chans))
 
 
@@ -384,6 +401,8 @@ class Combination(FrozenValue):
     prepared: tuple = field(default=(), compare=False)
     nuisances: tuple[str, ...] = ()
     nuisance_values: np.ndarray | None = None   # (n_masses, J) fitted, NaN where blinded
+    #: per channel its background functions profiled in the scan (None: none were)
+    envelope: Any = None
     norms: Any = field(default=None, compare=False)
     #: per channel its shape factors for the toys (None: none), and their ensemble
     shapes: tuple = field(default=(), compare=False)
@@ -418,7 +437,8 @@ class Combination(FrozenValue):
             "blinded": [bool(v) for v in self.blinded], "z_expected": self.z_expected,
             "expected_cross_section": self.expected_cross_section, "unit": self.unit,
             "notes": list(self.notes), "nuisances": list(self.nuisances),
-            "nuisance_values": self.nuisance_values, "norms": self.norms})
+            "nuisance_values": self.nuisance_values, "norms": self.norms,
+            "envelope": self.envelope})
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> Combination:
@@ -443,7 +463,8 @@ class Combination(FrozenValue):
                 blinded=np.array(d["blinded"], bool), z_expected=arr(d.get("z_expected")),
                 expected_cross_section=d.get("expected_cross_section"), unit=d["unit"],
                 notes=tuple(d.get("notes") or ()), nuisances=tuple(d.get("nuisances") or ()),
-                nuisance_values=arr(d.get("nuisance_values")), norms=arr(d.get("norms")))
+                nuisance_values=arr(d.get("nuisance_values")), norms=arr(d.get("norms")),
+                envelope=d.get("envelope"))
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"Combination.from_dict: not a combination written by "
                            f"Combination.to_dict ({exc!r})") from None
