@@ -105,7 +105,7 @@ class CombinedSearchResult:
         c = self.combination
         comb = c.to_dict()
         keys = ("masses", "z_local", "p_local", "q0", "cross_section", "cross_section_error",
-                "unit", "z_expected", "expected_cross_section", "best", "blind")
+                "unit", "z_expected", "expected_cross_section", "best", "blind", "envelope")
         combined = {**{k: comb[k] for k in keys}, "nuisances": c.nuisances_at_best(),
                     "global": plain(dict(self.best)),
                     "notes": list(self.notes),
