@@ -136,7 +136,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     from ..stats.channel_limits import combined_limits
     from ..stats.channels import combine
     from .common import _scan_masses, _utc
-    from .run import _search
+    from .run import _search, _toy_executor
     from .staging import _apply_overrides, _check_inputs, _staged
 
     raw, base, source = _read(config)
@@ -199,8 +199,9 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         unit = first.limits.cross_section_unit
         cmb = combine(channels, masses, refit=False, unit=unit)
         sig = first.significance
+        executor = _toy_executor(first, "combined toys")
         best = cmb.global_significance(sig.method, toys=sig.toys, seed=sig.seed,
-                                       u0=sig.reference_level)
+                                       u0=sig.reference_level, executor=executor)
         lim = None
         if first.limits.enabled:
             n = min(first.limits.points, masses.size)
@@ -208,7 +209,9 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             fl = first.limits
             lim = combined_limits(channels, lm, cl=fl.cl, unit=unit, method=fl.method,
                                   toys=fl.toys, seed=sig.seed,
-                                  toy_masses=list(fl.toy_masses) or None)
+                                  toy_masses=list(fl.toy_masses) or None,
+                                  executor=None if fl.method == "asymptotic" else
+                                  _toy_executor(first, "toy limits"))
         # say which systematics each combined number has, rather than let a reader take
         # the combined Z for one with every systematic
         notes: tuple[str, ...] = ()

@@ -484,16 +484,18 @@ class Combination(FrozenValue):
         return {"shift_at_best": v}
 
     def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
-                            seed: int = 0, u0: float = 0.5) -> dict[str, Any]:
+                            seed: int = 0, u0: float = 0.5,
+                            executor: Any = None) -> dict[str, Any]:
         """Global significance of the combination's best excess; the toys generate every
         channel from its background-only fit (each channel from its own seed stream) and
-        are scanned with the joint likelihood.  As :meth:`ScanResult.global_significance`."""
+        are scanned with the joint likelihood (their batches on ``executor`` when given).
+        As :meth:`ScanResult.global_significance`."""
         if method not in ("upcrossings", "toys"):
             raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
                            f"got {method!r}")
         if len(self.channels) == 1:
             return next(iter(self.channels.values())).global_significance(
-                method, toys=toys, seed=seed, u0=u0)
+                method, toys=toys, seed=seed, u0=u0, executor=executor)
         if not self.prepared:
             raise FitError("this Combination carries no models (rebuilt from a dict?); rerun "
                            "combine")
@@ -511,7 +513,8 @@ class Combination(FrozenValue):
                                        [np.asarray(k)[mask] for k in self.conversion.values()],
                                        n, seed=seed, norms=self.norms,
                                        shapes=self.shapes or None,
-                                       ensembles=self.toy_constraints or None)
+                                       ensembles=self.toy_constraints or None,
+                                       executor=executor)
             res = (lee.global_from_toys(q_obs, scans.max(axis=1)) if method == "toys" else
                    lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps))
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
