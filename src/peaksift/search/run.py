@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from .._jit import numba_extensions_deferred
 from ..config import Config, load_config
 from ..errors import ConfigError, FitError
 from .common import (
@@ -129,8 +130,11 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
                            log_scale=cfg.output.log_scale) if stage is not None else None)
     besides: list[Beside] = []
     try:
-        return _stages(cfg, unblind=unblind, progress=progress, started=started, stage=stage,
-                       target=target, drawer=drawer, besides=besides)
+        # only our kernels run in a search: numba's third-party extensions (awkward's,
+        # vector's: ~0.3 s) need not load at its first use here or in the stages beside
+        with numba_extensions_deferred():
+            return _stages(cfg, unblind=unblind, progress=progress, started=started,
+                           stage=stage, target=target, drawer=drawer, besides=besides)
     except BaseException:  # nothing may keep writing into the discarded staging folder
         for b in besides:
             b.cancel()
