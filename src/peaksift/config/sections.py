@@ -26,6 +26,7 @@ class SignalModelConfig:
     shape: str = "crystalball"
     order: int = 1
     efficiency_order: int = 2
+    raise_order: bool = False
     fix: Any = field(default_factory=dict)
     saved: str = ""
 
@@ -273,8 +274,15 @@ class RunConfig:
 class OutputConfig:
     dir: str = "peaksift_out"
     formats: tuple[str, ...] = ("png", "pdf")
+    figures: tuple[str, ...] = ("all",)
     log_scale: bool = False
     title: str = ""
+
+    def draws(self, name: str) -> bool:
+        """Whether ``figures`` asks for the figure ``name`` (one of ``_vocabulary.FIGURES``)."""
+        from .._vocabulary import figure_wanted
+
+        return figure_wanted(self.figures, name)
 
 
 @dataclass(frozen=True)

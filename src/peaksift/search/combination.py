@@ -5,7 +5,9 @@ A combination config names one single-channel search config per channel; each ch
 its own complete search (its input or selection, objects, pairing, window and binning,
 background, signal model or resolution, efficiency and luminosity), run through the same
 code as ``peaksift search`` on that file alone, so each channel's numbers are exactly those
-of its own search.  The combination then fits all channels together with one sigma x B
+of its own search.  Channels that select from the same files (with the same execution
+settings) read them in one pass: each chunk is read once and every channel's selection runs
+on it (:func:`peaksift.execution.collect_shared`; the same result as the channel's own read).  The combination then fits all channels together with one sigma x B
 (:func:`peaksift.stats.channels.combine` and
 :func:`~peaksift.stats.channel_limits.combined_limits`).
 
@@ -26,9 +28,10 @@ channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
 ``limits.luminosity_uncertainty`` and ``limits.efficiency_uncertainty`` enter the joint
 likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channels share one
 luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
-``[systematics]`` mass-scale and resolution factors are profiled in the combined scan and
-the asymptotic combined limits (not in the combination's toys); its background envelope
-stays in its own results (both said in the results and the report).  Blinding is not
+``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
+toys and the asymptotic combined limits (not in the toy limits); its background envelope
+(the functions its own search kept) is profiled per channel in the combined scan, not in
+the combination's toys or limits (both said in the results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
 
@@ -43,7 +46,7 @@ from typing import Any
 
 import numpy as np
 
-from ..config import load_config
+from ..config import load_config, output_figures
 from ..errors import ConfigError
 
 __all__ = ["CombinedSearchResult", "is_combination", "run_combination"]
@@ -79,11 +82,32 @@ def _read(config: Any) -> tuple[dict[str, Any], Path, str]:
                           ) from None
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False, repr=False)
 class CombinedSearchResult:
-    """Outcome of :func:`run_combination`: each channel's :class:`SearchResult`, the
-    combination's scan (:class:`~peaksift.stats.channels.Combination`), its global
-    significance and limits.  :meth:`to_dict` is ``results.json``."""
+    """Outcome of :func:`run_combination`.  :meth:`to_dict` is ``results.json``: every key
+    an attribute of the same name (``kind`` tags it as a combination).
+
+    Attributes
+    ----------
+    channels : mapping
+        Channel name -> its own :class:`~peaksift.search.SearchResult`.
+    combination : Combination
+        The combined scan (:class:`~peaksift.stats.channels.Combination`).
+    best : mapping
+        The combination's best hypothesis with its global significance.
+    limits : CombinedLimits or None
+        The combined limits (:class:`~peaksift.stats.channel_limits.CombinedLimits`).
+    source : str
+        The combination config (a path, or ``<dict>``).
+    notes : tuple of str
+        What the combined numbers leave out (e.g. a channel's [systematics]).
+    outdir, figures
+        Where the outputs went (None and empty without an output folder).
+
+    Two results are equal when their combined numbers (``combination``, ``best``,
+    ``limits``, ``notes``, ``source``) and each channel's fits, scan, limits and best
+    hypothesis are; a result read back with :meth:`from_dict` equals the one written.
+    """
 
     channels: Mapping[str, Any]
     combination: Any
@@ -92,32 +116,148 @@ class CombinedSearchResult:
     source: str
     outdir: Path | None = None
     figures: Mapping[str, Any] = field(default_factory=dict)
-    #: what the combined numbers leave out (e.g. a channel's [systematics])
     notes: tuple[str, ...] = ()
 
-    def to_dict(self) -> dict[str, Any]:
+    # ------------------------------------------------------------------------ values
+    def __eq__(self, other: object) -> bool:
+        from .._values import values_equal
+
+        if type(other) is not type(self):
+            return NotImplemented
+        if list(self.channels) != list(other.channels):
+            return False
+        mine = ("combination", "best", "limits", "notes", "source")
+        per = ("fit", "background_fit", "scan", "limits", "best")
+        return (all(values_equal(getattr(self, k), getattr(other, k)) for k in mine)
+                and all(values_equal(getattr(a, k), getattr(b, k))
+                        for a, b in zip(self.channels.values(), other.channels.values())
+                        for k in per))
+
+    __hash__ = None  # type: ignore[assignment]
+
+    # ------------------------------------------------------------------------ show
+    def _summary(self) -> list[tuple[str, str]]:
+        from .._format import fixed, significance
+
+        b = dict(self.best or {})
+        rows = [("channels", ", ".join(self.channels)),
+                ("best mass", f"{fixed(b.get('mass'))} GeV"),
+                ("local", significance(b, "local")), ("global", significance(b, "global"))]
+        if self.limits is not None:
+            rows.append(("limits", f"{self.limits.masses.size} masses, {self.limits.unit}"))
+        if self.outdir is not None:
+            rows.append(("outputs", str(self.outdir)))
+        return rows
+
+    def __repr__(self) -> str:
+        return ("CombinedSearchResult(" + "; ".join(f"{k} {v}" for k, v in self._summary())
+                + "; a local significance is not a discovery)")
+
+    def _repr_html_(self) -> str:
+        from .._values import summary_html
+
+        return summary_html("CombinedSearchResult", self._summary(),
+                            "A local significance is not a discovery; see the report.")
+
+    # ------------------------------------------------------------------------ JSON
+    @property
+    def peaksift_version(self) -> str:
+        """The version of peaksift that writes this result's results.json."""
         from .. import __version__
+
+        return __version__
+
+    @property
+    def nuisances_at_best(self) -> dict[str, Any]:
+        """Each normalisation nuisance and shape factor of the combined fit at the best
+        mass (:meth:`~peaksift.stats.channels.Combination.nuisances_at_best`)."""
+        return self.combination.nuisances_at_best()
+
+    @property
+    def outputs(self) -> dict[str, Any] | None:
+        """Where the files went (results.json ``outputs``); None without an output folder."""
+        if self.outdir is None:
+            return None
+        return {"dir": str(self.outdir),
+                "figures": {k: Path(v).relative_to(self.outdir).as_posix()
+                            if Path(v).is_relative_to(self.outdir) else Path(v).name
+                            for k, v in self.figures.items()}}
+
+    def to_dict(self) -> dict[str, Any]:
+        """The content of the combination's ``results.json``."""
         from .._json import plain
 
-        c = self.combination
-        comb = c.to_dict()
-        keys = ("masses", "z_local", "p_local", "q0", "cross_section", "cross_section_error",
-                "unit", "z_expected", "expected_cross_section", "best", "blind")
-        combined = {**{k: comb[k] for k in keys}, "nuisances": c.nuisances_at_best(),
-                    "global": plain(dict(self.best)),
-                    "notes": list(self.notes),
-                    "limits": None if self.limits is None else
-                    self.limits.to_dict()["combined"]}
-        out = {"peaksift_version": __version__, "kind": "combination",
-               "config_path": self.source, "channel_names": list(self.channels),
-               "combined": combined,
-               "channels": {n: r.to_dict() for n, r in self.channels.items()}}
+        out = {"peaksift_version": self.peaksift_version, "kind": "combination",
+               "source": self.source,
+               "channels": {n: r.to_dict() for n, r in self.channels.items()},
+               "combination": self.combination.to_dict(), "best": plain(dict(self.best)),
+               "nuisances_at_best": self.nuisances_at_best,
+               "limits": None if self.limits is None else self.limits.to_dict(),
+               "notes": list(self.notes)}
         if self.outdir is not None:
-            out["outputs"] = {"dir": str(self.outdir),
-                              "figures": {k: str(Path(v).relative_to(self.outdir))
-                                          if Path(v).is_relative_to(self.outdir)
-                                          else Path(v).name for k, v in self.figures.items()}}
+            out["outputs"] = self.outputs
         return out
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> CombinedSearchResult:
+        """The CombinedSearchResult of a combination's results.json (each channel as
+        :meth:`SearchResult.from_dict` reads it: without the event-level data).  Files of
+        earlier versions (the combined numbers under ``combined``) still load; what they
+        did not record (each channel's scan on the combined grid, the conversion to events)
+        is taken from the channels' own results and said in ``notes``."""
+        from ..errors import InputError
+        from ..stats.channel_limits import CombinedLimits
+        from ..stats.channels import Combination
+        from .result import SearchResult
+
+        try:
+            if "combined" in d:
+                d = _upgrade(d)
+            outs = d.get("outputs") or {}
+            outdir = Path(outs["dir"]) if outs.get("dir") else None
+            return cls(
+                channels={n: SearchResult.from_dict(v) for n, v in d["channels"].items()},
+                combination=Combination.from_dict(d["combination"]),
+                best=dict(d["best"]),
+                limits=CombinedLimits.from_dict(d["limits"]) if d.get("limits") else None,
+                source=str(d.get("source", "")), outdir=outdir,
+                figures={k: outdir / v for k, v in (outs.get("figures") or {}).items()}
+                if outdir is not None else {},
+                notes=tuple(d.get("notes") or ()))
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            raise InputError(f"not a results.json written by a peaksift combination: {exc!r}"
+                             ) from None
+
+
+def _upgrade(d: Mapping[str, Any]) -> dict[str, Any]:
+    """A combination results.json of the earlier layout (``config_path``, ``channel_names``,
+    the combined numbers under ``combined``) in today's keys."""
+    c = d["combined"]
+    names = list(d.get("channel_names") or d["channels"])
+    chans = {n: d["channels"][n] for n in names}
+    z = [np.nan if v is None else v for v in c["z_local"]]
+    masses = c["masses"]
+    best = c.get("best") or {}
+    i = int(np.argmin(np.abs(np.asarray(masses, float) - float(best.get("mass", masses[0])))))
+    note = ("read from a results.json of an earlier layout: each channel's scan and the "
+            "events per unit sigma x B are not recorded there (the channels' own scans are "
+            "shown)")
+    comb = {**{k: c.get(k) for k in ("masses", "q0", "z_local", "p_local", "cross_section",
+                                      "cross_section_error", "z_expected",
+                                      "expected_cross_section", "unit", "blind", "envelope")},
+            "converged": [v is not None for v in c["cross_section"]], "best_index": i,
+            "best_mass": masses[i], "channels": {n: r["scan"] for n, r in chans.items()},
+            "conversion": {}, "blinded": [not np.isfinite(v) for v in z],
+            "luminosity": {n: (r["config"].get("limits") or {}).get("luminosity")
+                           for n, r in chans.items()},
+            "notes": [note], "nuisances": list(c.get("nuisances") or ())}
+    lim = c.get("limits")
+    if lim:
+        lim = {**lim, "channels": {n: r["limits"] for n, r in chans.items() if r.get("limits")}}
+    return {"source": d.get("config_path", ""), "channels": chans, "combination": comb,
+            "best": c.get("global") or {}, "limits": lim,
+            "notes": [*(c.get("notes") or ()), note],
+            **({"outputs": d["outputs"]} if d.get("outputs") else {})}
 
 
 def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
@@ -133,7 +273,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     from ..stats.channel_limits import combined_limits
     from ..stats.channels import combine
     from .common import _scan_masses, _utc
-    from .run import _search
+    from .run import _search, _toy_executor
     from .staging import _apply_overrides, _check_inputs, _staged
 
     raw, base, source = _read(config)
@@ -179,23 +319,28 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     if len(units) > 1:
         raise ConfigError(f"{where}: the channels give luminosities in {sorted(units)}; use "
                           "one unit")
-    out_dir = raw.get("output", {}).get("dir", "combined_out") if out is None else out
+    out_cfg = raw.get("output", {})
+    figures = output_figures(out_cfg.get("figures", ["all"]), where)
+    out_dir = out_cfg.get("dir", "combined_out") if out is None else out
     target = None
     if out_dir is not False:
         t = Path(out_dir).expanduser()
         target = (t if t.is_absolute() or out is not None else base / t).resolve()
     started = _utc()
     with _staged(target, "search", share_folder) as stage:
+        shared_reads = _shared_reads(names, cfgs, progress)
         results = {n: _search(c, unblind=False, progress=progress, started=started, stage=None,
-                              target=None) for n, c in zip(names, cfgs)}
+                              target=None, collected=shared_reads.get(n))
+                   for n, c in zip(names, cfgs)}
         first = cfgs[0]
         masses = _scan_masses(first)
         channels = [_channel(n, c, results[n], shared) for n, c in zip(names, cfgs)]
         unit = first.limits.cross_section_unit
         cmb = combine(channels, masses, refit=False, unit=unit)
         sig = first.significance
+        executor = _toy_executor(first, "combined toys")
         best = cmb.global_significance(sig.method, toys=sig.toys, seed=sig.seed,
-                                       u0=sig.reference_level)
+                                       u0=sig.reference_level, executor=executor)
         lim = None
         if first.limits.enabled:
             n = min(first.limits.points, masses.size)
@@ -203,10 +348,11 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             fl = first.limits
             lim = combined_limits(channels, lm, cl=fl.cl, unit=unit, method=fl.method,
                                   toys=fl.toys, seed=sig.seed,
-                                  toy_masses=list(fl.toy_masses) or None)
-        # the joint likelihood has the luminosity and efficiency uncertainties but no shape
-        # nuisances or background envelope yet: say so rather than let a reader take the
-        # combined Z for one with every systematic
+                                  toy_masses=list(fl.toy_masses) or None,
+                                  executor=None if fl.method == "asymptotic" else
+                                  _toy_executor(first, "toy limits"))
+        # say which systematics each combined number has, rather than let a reader take
+        # the combined Z for one with every systematic
         notes: tuple[str, ...] = ()
         with_shape = [n for n, c in zip(names, cfgs)
                       if c.systematics.mass_scale or c.systematics.mass_resolution]
@@ -215,15 +361,23 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             notes += (("a combination of one channel is that channel's scan without its "
                        "[systematics] (its own results show both)"),)
         elif with_shape:
-            notes += ((f"the combined scan and the asymptotic combined limits profile the "
-                       f"[systematics] mass-scale and resolution factors of channel(s) "
-                       f"{', '.join(with_shape)}; the combination's toys (global significance, "
-                       "toy limits) leave them at 1"),)
-        if with_env and len(cfgs) > 1:
+            notes += ((f"the combined scan, its toys (at each toy's highest points) and the "
+                       f"asymptotic combined limits profile the [systematics] mass-scale and "
+                       f"resolution factors of channel(s) {', '.join(with_shape)}; the "
+                       "combination's toy limits leave them at 1"),)
+        enveloped = [n for n in names if channels[names.index(n)].background_candidates]
+        if enveloped and len(cfgs) > 1:
+            notes += ((f"the combined scan (local significance) profiles the [systematics] "
+                       f"background envelope of channel(s) {', '.join(enveloped)} as a "
+                       "discrete choice per channel (its spurious-signal term left out); the "
+                       "combination's toys (global significance: the observed envelope q0 "
+                       "against toys of the configured functions) and its limits use each "
+                       "channel's configured background function"),)
+        left = [n for n in with_env if n not in enveloped]
+        if left and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "
-                       f"envelope of "
-                       f"channel(s) {', '.join(with_env)} (each channel's own results show "
-                       "it); its numbers use each channel's configured background"),)
+                       f"choice of channel(s) {', '.join(left)} (no envelope in their "
+                       "results); its numbers use each channel's configured background"),)
         gauss = [n for n, c in zip(names, cfgs) if c.limits.constraint != "lognormal" and (
             c.limits.luminosity_uncertainty or c.limits.efficiency_uncertainty)]
         if gauss:
@@ -232,8 +386,54 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         res = CombinedSearchResult(channels=results, combination=cmb, best=best, limits=lim,
                                    source=source, outdir=target, notes=notes)
         if stage is not None:
-            res = _write(res, stage.path, target)
+            res = _write(res, stage.path, target, figures)
     return res
+
+
+def _shared_reads(names: list[str], cfgs: list[Any], progress: bool) -> dict[str, Any]:
+    """Each channel's events read and selected, one pass per group of channels that read
+    the same files alike (same files, execution and read settings): channel name ->
+    :class:`~peaksift.execution.Collected`, exactly what the channel's own read gives
+    (:func:`peaksift.execution.collect_shared`).  A channel alone on its input, or with dE/dx
+    identification (its selection needs a calibration pass first), reads in its search."""
+    from ..errors import CutError, InputError
+    from ..events import list_files
+    from ..execution import collect_shared
+    from .common import _keyed_cut_error, _keyed_input_error, _read_window, _selection
+
+    groups: dict[tuple, list[int]] = {}
+    for k, cfg in enumerate(cfgs):
+        if cfg.identification.enabled:
+            continue
+        ex, inp = cfg.execution, cfg.input
+        try:
+            files = tuple(str(f) for f in list_files(inp.files))
+        except InputError:
+            continue  # the channel's own read reports it, keyed to its config
+        key = (files, ex.engine, ex.workers, ex.address, ex.chunk_events, ex.unreadable_files,
+               ex.start_method, inp.hash_inputs, inp.strict, inp.column_pattern)
+        groups.setdefault(key, []).append(k)
+    out: dict[str, Any] = {}
+    for key, members in groups.items():
+        if len(members) < 2:
+            continue
+        sels = [_selection(cfgs[k], *_read_window(cfgs[k])) for k in members]
+        ex = cfgs[members[0]].execution
+        try:
+            cols = collect_shared(list(key[0]), sels, engine=ex.engine, workers=ex.workers,
+                                  address=ex.address or None, chunk_events=ex.chunk_events,
+                                  unreadable_files=ex.unreadable_files, progress=progress,
+                                  start_method=ex.start_method,
+                                  hash_files=cfgs[members[0]].input.hash_inputs)
+        except (CutError, InputError) as exc:
+            for k in members:  # the channel whose config key it is, when one is
+                keyed = (_keyed_cut_error if isinstance(exc, CutError)
+                         else _keyed_input_error)(cfgs[k], exc)
+                if keyed is not exc:
+                    raise type(exc)(f"channel {names[k]!r}: {keyed}") from None
+            raise
+        out.update((names[k], c) for k, c in zip(members, cols))
+    return out
 
 
 def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> Any:
@@ -244,12 +444,22 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
     r = cfg.model.resolution
     bkg = _shape(cfg.model.background, cfg.model.background_options)
     sy = cfg.systematics
+    env = (res.systematics or {}).get("envelope") if sy.background_families else None
+    cands = {}
+    if env and env.get("functions"):
+        from ..stats.background_choice import candidate_shapes
+
+        cands = {"background_candidates": candidate_shapes(list(env["functions"]),
+                                                           sqrt_s=sy.sqrt_s),
+                 "background_parameters": dict(zip(env["functions"], env["n_parameters"])),
+                 "background_penalty": float(env["penalty"])}
     norms = {"luminosity_uncertainty": float(cfg.limits.luminosity_uncertainty),
              "efficiency_uncertainty": float(cfg.limits.efficiency_uncertainty),
              "luminosity_group": "shared" if shared_luminosity else None,
              "shape_nuisances": {"mass_scale": float(sy.mass_scale),
                                  "mass_resolution": float(sy.mass_resolution)},
-             "shape_constraint": sy.constraint}
+             "shape_constraint": sy.constraint, "toy_constraints": sy.toy_constraints,
+             **cands}
     if res.signal_model is not None:
         return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
                        signal_model=res.signal_model, window=cfg.spectrum.window, **norms)
@@ -260,14 +470,18 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
                    **norms)
 
 
-def _write(res: CombinedSearchResult, stage: Path, target: Path) -> CombinedSearchResult:
-    """results.json, the figures (the combined p-values; each channel's own figures in
-    ``figures/<channel>/``), report.md and report.html into the staging directory."""
+def _write(res: CombinedSearchResult, stage: Path, target: Path,
+           figures: tuple[str, ...] = ("all",)) -> CombinedSearchResult:
+    """results.json, the figures (the combined p-values, with ``pvalue_scan`` in the
+    combination's ``output.figures``; each channel's own figures, as its config's
+    ``output.figures`` asks, in ``figures/<channel>/``), report.md and report.html into the
+    staging directory."""
     import dataclasses
 
     from .. import plotting
     from .._files import atomic_write
     from .._style import RunLabel
+    from .._vocabulary import FIGURES, figure_wanted
     from ..report import write_results_json
     from .combination_report import render_combination_html, render_combination_markdown
 
@@ -281,15 +495,18 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path) -> CombinedSear
                    channel=" + ".join(lb.run.channel for lb in labels.values()
                                       if lb.run and lb.run.channel))
     symbols = {lb.symbol for lb in labels.values()}
-    res.combination.plot(figdir / "pvalue_combined.png", run=run,
-                         symbol=symbols.pop() if len(symbols) == 1 else "m")
-    figs["pvalue_combined"] = figdir / "pvalue_combined.png"
+    if figure_wanted(figures, "pvalue_scan"):
+        res.combination.plot(figdir / "pvalue_combined.png", run=run,
+                             symbol=symbols.pop() if len(symbols) == 1 else "m")
+        figs["pvalue_combined"] = figdir / "pvalue_combined.png"
     for name, r in res.channels.items():
         cfg = r.config
         sub = figdir / name
         made = plotting.search_figures(r, sub, formats=("png",),
-                                       log_scale=cfg.output.log_scale, labels=labels[name])
-        if r.signal_model is not None:
+                                       log_scale=cfg.output.log_scale, labels=labels[name],
+                                       names=[f for f in plotting.SEARCH_FIGURES
+                                              if f in FIGURES and cfg.output.draws(f)])
+        if r.signal_model is not None and cfg.output.draws("signal_model"):
             made.update(zip(("signal_model_parameters", "signal_model_shapes"),
                             r.signal_model.plot(sub)))
         figs.update({f"{name}/{k}": Path(v) for k, v in made.items()})

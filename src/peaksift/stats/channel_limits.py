@@ -27,7 +27,7 @@ import numpy as np
 from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
-from .channel_toys import joint_toy_limit
+from .channel_toys import run_joint_toy_limit
 from .channels import Channel, _full_model, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .joint import profile_joint
@@ -59,20 +59,76 @@ class CombinedLimits(FrozenValue):
     nuisances: tuple[str, ...] = ()
     toys: Any = None                 # per toy mass: grid, CLs, number of toys
 
+    # the band edges under the names LimitResult (and results.json) give them
+    @property
+    def expected_minus2(self) -> np.ndarray:
+        return self.bands[0]
+
+    @property
+    def expected_minus1(self) -> np.ndarray:
+        return self.bands[1]
+
+    @property
+    def expected_plus1(self) -> np.ndarray:
+        return self.bands[3]
+
+    @property
+    def expected_plus2(self) -> np.ndarray:
+        return self.bands[4]
+
     def __repr__(self) -> str:
         return (f"CombinedLimits({', '.join(self.channels)}; {self.masses.size} masses, "
                 f"median expected {np.nanmedian(self.expected):.3g} {self.unit})")
 
+    def _summary(self) -> list[tuple[str, str]]:
+        obs = self.observed
+        rows = [("channels", ", ".join(self.channels)),
+                ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
+                ("limit", f"{self.cl:.0%} CL CLs ({self.method}) on sigma x B [{self.unit}]"),
+                ("expected", f"{np.nanmin(self.expected):.3g}-{np.nanmax(self.expected):.3g}")]
+        if np.isfinite(obs).any():
+            rows.append(("observed", f"{np.nanmin(obs):.3g}-{np.nanmax(obs):.3g}"))
+        return rows
+
     def to_dict(self) -> dict[str, Any]:
+        """JSON-ready, every key an attribute of the same name (``channels``: each
+        channel's :meth:`LimitResult.to_dict`)."""
         return plain({
-            "combined": {"masses": self.masses, "observed": self.observed,
-                         "expected": self.expected, "expected_minus2": self.bands[0],
-                         "expected_minus1": self.bands[1], "expected_plus1": self.bands[3],
-                         "expected_plus2": self.bands[4], "cl": self.cl, "unit": self.unit,
-                         "method": self.method, "methods": list(self.methods),
-                         "nuisances": list(self.nuisances), "toys": self.toys or {},
-                         "flags": list(self.flags), "notes": list(self.notes)},
+            "masses": self.masses, "observed": self.observed, "expected": self.expected,
+            "expected_minus2": self.bands[0], "expected_minus1": self.bands[1],
+            "expected_plus1": self.bands[3], "expected_plus2": self.bands[4], "cl": self.cl,
+            "unit": self.unit, "method": self.method, "methods": list(self.methods),
+            "nuisances": list(self.nuisances), "toys": self.toys or {},
+            "flags": list(self.flags), "notes": list(self.notes),
             "channels": {n: r.to_dict() for n, r in self.channels.items()}})
+
+    @classmethod
+    def from_dict(cls, d: Any) -> CombinedLimits:
+        """The CombinedLimits that :meth:`to_dict` wrote.  Dicts of earlier versions (the
+        combined numbers under ``combined``) still load."""
+        from .limit_result import LimitResult
+
+        def arr(v: Any) -> np.ndarray:
+            return np.array([np.nan if x is None else x for x in v], float)
+
+        try:
+            c = d.get("combined", d)  # earlier versions: the combined numbers nested
+            bands = np.array([arr(c[k]) for k in ("expected_minus2", "expected_minus1",
+                                                  "expected", "expected_plus1",
+                                                  "expected_plus2")])
+            return cls(masses=arr(c["masses"]), observed=arr(c["observed"]),
+                       expected=arr(c["expected"]), bands=bands,
+                       channels={n: LimitResult.from_dict(v)
+                                 for n, v in (d.get("channels") or {}).items()},
+                       cl=float(c["cl"]), unit=str(c["unit"]),
+                       flags=tuple(c.get("flags") or ()), notes=tuple(c.get("notes") or ()),
+                       methods=tuple(c.get("methods") or ()),
+                       method=str(c.get("method", "asymptotic")),
+                       nuisances=tuple(c.get("nuisances") or ()),
+                       toys=dict(c.get("toys") or {}))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FitError(f"not combined limits written by CombinedLimits.to_dict: {exc!r}"
+                           ) from None
 
 
 class _Profiled:
@@ -97,7 +153,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                     blind: tuple[float, float] | None = None, unit: str = "fb",
                     low_count_background: float = LOW_COUNT_BACKGROUND,
                     method: str = "auto", toys: int = 300, seed: int = 0,
-                    toy_masses: Any = None) -> CombinedLimits:
+                    toy_masses: Any = None, executor: Any = None) -> CombinedLimits:
     """CLs upper limits on sigma x B, combined and per channel (see the module guide).
 
     ``method``: ``"asymptotic"`` (formulae everywhere; masses with fewer than
@@ -105,6 +161,8 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     are flagged), ``"auto"`` (toys at those masses) or ``"toys"`` (toys at ``toy_masses``,
     default three spread over the range, and at the low-count ones).  ``toys`` per
     hypothesis and generating set; toy mass ``j`` uses the seed ``seed + j``.
+    ``executor(func, tasks) -> results in task order`` runs the toy masses (e.g. on worker
+    processes) and is handed to each channel's own limits.
     """
     if not 0 < cl < 1:
         raise FitError(f"cl must be in (0, 1), got {cl!r}; e.g. cl=0.95")
@@ -137,7 +195,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
             toy_masses=toy_masses if method == "toys" else None,
             efficiency=None if ch.signal_model is not None and ch.efficiency is None else (
                 lambda m, k=k, lumi=float(ch.luminosity): np.interp(m, m_all, k) / lumi),
-            unit=unit,
+            unit=unit, executor=executor,
             low_count_background=low_count_background)
     alpha = 1.0 - cl
     nm = m_all.size
@@ -197,6 +255,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     if sp_obs is not None and want:
         notes.append("the toy-based limits leave the channels' mass-scale and resolution "
                      "factors at 1 (the asymptotic ones profile them)")
+    todo, tasks = [], []
     for j in sorted({int(x) for x in want}):
         if bl[j]:
             notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
@@ -204,8 +263,16 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         row = int(np.sum(~bl[:j]))
         one = [dataclasses.replace(p[0], masses=p[0].masses[row:row + 1],
                                    fractions=p[0].fractions[row:row + 1]) for p in prepared]
-        res = joint_toy_limit(one, [float(k[j]) for k in conv], norms, cl, int(toys),
-                              int(seed) + j, float(obs[j]), bands[:, j].copy())
+        todo.append(j)
+        tasks.append((one, [float(k[j]) for k in conv], norms, cl, int(toys), int(seed) + j,
+                      float(obs[j]), bands[:, j].copy()))
+    # one task per mass, each seeded by its mass: the engine does not change the result
+    done = (list(executor(run_joint_toy_limit, tasks)) if executor is not None
+            and len(tasks) > 1 else [run_joint_toy_limit(t) for t in tasks])
+    if len(done) != len(tasks):
+        raise FitError(f"the toy executor returned {len(done)} results for {len(tasks)} "
+                       "toy limits")
+    for j, res in zip(todo, done):
         obs[j] = res["observed"]
         bands[:, j] = [res["expected"][n] for n in _BANDS]
         methods[j] = "toys"
