@@ -240,7 +240,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
-                                                executor=_toy_executor(cfg), scanned=scanned)
+                                                executor=_toy_executor(cfg), scanned=scanned,
+                                                signal_model=smodel)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
