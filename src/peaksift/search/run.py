@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from .._jit import numba_extensions_deferred
 from ..config import Config, load_config
 from ..errors import ConfigError, FitError
 from .common import (
@@ -127,13 +128,19 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     """The search of one config; ``collected``: its events already read and selected (a
     combination reads a shared input once for its channels), else read here."""
     # the figures are drawn beside the statistics, by a process started before the events
-    # are read (it loads matplotlib meanwhile); without an output folder none are drawn
+    # are read (it loads matplotlib meanwhile); without an output folder, or with
+    # output.figures = "none", none are drawn (and no process is started)
     drawer = (FigureWorker(stage.path / "figures", formats=cfg.output.formats,
-                           log_scale=cfg.output.log_scale) if stage is not None else None)
+                           log_scale=cfg.output.log_scale)
+              if stage is not None and cfg.output.figures != ("none",) else None)
     besides: list[Beside] = []
     try:
-        return _stages(cfg, unblind=unblind, progress=progress, started=started, stage=stage,
-                       target=target, drawer=drawer, besides=besides, collected=collected)
+        # only our kernels run in a search: numba's third-party extensions (awkward's,
+        # vector's: ~0.3 s) need not load at its first use here or in the stages beside
+        with numba_extensions_deferred():
+            return _stages(cfg, unblind=unblind, progress=progress, started=started,
+                           stage=stage, target=target, drawer=drawer, besides=besides,
+                           collected=collected)
     except BaseException:  # nothing may keep writing into the discarded staging folder
         for b in besides:
             b.cancel()
@@ -174,8 +181,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             "calibration": None, "provenance": {}, "blinding": blind}
         return SearchResult(**{**base, **kw})
 
-    if drawer is not None:
-        drawer.draw(["candidates"], partial())
+    _draw(drawer, cfg, ["candidates"], partial())
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -217,16 +223,26 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     clock.lap("global significance")
 
     syst = None
+    syst_limits_job = None
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
-        from .systematics import run_systematics
+        from .systematics import run_systematics, systematic_limits_at
+
+        def scanned(envelope: Any) -> None:
+            # the limits with systematics need the envelope, not its toys (nor the fits):
+            # they run beside those, like the plain limits
+            nonlocal syst_limits_job
+            if limits_job is not None and smodel is None:
+                syst_limits_job = Beside(systematic_limits_at, cfg, hist, scan_sig, envelope,
+                                         _limit_masses(cfg, masses), natural_width=width,
+                                         blind=blind_window)
+                besides.append(syst_limits_job)
 
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
-                                                executor=_toy_executor(cfg))
+                                                executor=_toy_executor(cfg), scanned=scanned)
         clock.lap("systematics")
-        if drawer is not None:
-            drawer.draw(["background_envelope"], partial(systematics=syst))
+        _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
@@ -247,10 +263,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
         syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
     clock.lap("fits")
-    if drawer is not None:
-        drawer.draw(["spectrum", "pvalue_scan"],
-                    partial(background_fit=bonly, fit=fres, scan=sres, best=best,
-                            systematics=syst))
+    _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
+          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst))
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -260,9 +274,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                               charge=pair_charge(cfg.pairing.charge)))
     cal, cal_hist, cal_fit = _calibration(cfg, col)
     clock.lap("calibration")
-    if drawer is not None and cal is not None:
-        drawer.draw(["calibration"], partial(calibration=cal),
-                    calibration=(cal_hist, cal_fit))
+    if cal is not None:
+        _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
+              calibration=(cal_hist, cal_fit))
 
     limits = None
     if cfg.limits.enabled:
@@ -270,15 +284,17 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                   _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
                           smodel))
         clock.lap("limits" if limits_job is None else "limits (rest of)")
-        if syst is not None and smodel is None:
+        if syst is not None:
             from .systematics import limits_with_systematics
 
             syst = {**syst, "limits": limits_with_systematics(
                 cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
-                blind=blind_window)}
-            clock.lap("limits with systematics")
-        if drawer is not None:
-            drawer.draw(["limits"], partial(limits=limits, systematics=syst))
+                blind=blind_window, signal_model=smodel,
+                executor=_toy_executor(cfg, "toy limits"),
+                computed=syst_limits_job.result() if syst_limits_job is not None else None)}
+            clock.lap("limits with systematics" if syst_limits_job is None
+                      else "limits with systematics (rest of)")
+        _draw(drawer, cfg, ["limits"], partial(limits=limits, systematics=syst))
 
     # hashed where the footers were read (on the workers of a cluster); None when
     # input.hash_inputs is off
@@ -305,7 +321,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         signal_model=smodel,
         identification=ident.to_dict() if ident is not None else None,
     )
-    if stage is None or drawer is None:
+    if stage is None:
         prov["finished"] = _utc()
         return result
 
@@ -315,19 +331,22 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     figdir = stage.path / "figures"
     more = {}
-    if smodel is not None:
+    if smodel is not None and cfg.output.draws("signal_model"):
         more.update(zip(("signal_model_parameters", "signal_model_shapes"),
                         smodel.plot(figdir)))
-    if ident is not None:
+    if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
                                             band=cfg.identification.band)
     clock.lap("figures (here)")
-    drawn = {**drawer.finish(), **more}
+    drawn = {**(drawer.finish() if drawer is not None else {}), **more}
     # CPU seconds of each process of the run: the main line is the critical path, the
     # others may overlap it (their sum over the cores bounds the wall time from below)
-    prov["cpu"] = {"main": round(cpu_seconds(), 2), "figures": round(drawer.cpu, 2),
-                   **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {})}
+    prov["cpu"] = {"main": round(cpu_seconds(), 2),
+                   "figures": round(drawer.cpu if drawer is not None else 0.0, 2),
+                   **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {}),
+                   **({"limits with systematics": round(syst_limits_job.cpu, 2)}
+                      if syst_limits_job is not None else {})}
     order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}
@@ -341,6 +360,14 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     write_report(d, stage.path, figs)
     clock.lap("report")
     return result
+
+
+def _draw(drawer: FigureWorker | None, cfg: Config, names: list[str], result: Any,
+          **extra: Any) -> None:
+    """Send the figures among ``names`` that ``output.figures`` asks for to the drawer."""
+    names = [n for n in names if cfg.output.draws(n)]
+    if drawer is not None and names:
+        drawer.draw(names, result, **extra)
 
 
 def _opt(**kw: Any) -> dict[str, Any]:
@@ -364,12 +391,17 @@ def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
                              start_method=ex.start_method)
 
 
+def _limit_masses(cfg: Config, masses: np.ndarray) -> np.ndarray:
+    """The limits' mass points: ``limits.points`` evenly over the scan's masses."""
+    n = min(cfg.limits.points, masses.size)
+    return np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
+
+
 def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
             width: float | None, blind: Any, progress: bool, smodel: Any = None) -> Any:
     from ..stats.limits import upper_limits
 
-    n = min(cfg.limits.points, masses.size)
-    lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
+    lm = _limit_masses(cfg, masses)
     L = cfg.limits
     half = (lm[-1] - lm[0]) / (2 * (lm.size - 1)) if lm.size > 1 else 0.0
     for i, m in enumerate(L.toy_masses):
