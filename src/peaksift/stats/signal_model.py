@@ -491,10 +491,12 @@ class SignalModel(FrozenValue):
                            "'signal_model' entry of a peaksift results.json") from None
 
     # ------------------------------------------------------------ figures
-    def plot(self, directory: Any, *, prefix: str = "signal_model") -> list[Any]:
+    def plot(self, directory: Any, *, prefix: str = "signal_model", run: Any = None,
+             symbol: str = "m") -> list[Any]:
         """Write ``<prefix>_parameters.png`` (each quantity against mass: points, curve,
         1-sigma band) and ``<prefix>_shapes.png`` (each sample's histogram with its fitted
-        shape, normalised, overlaid) to ``directory``; returns the paths."""
+        shape, normalised, overlaid) to ``directory``; returns the paths.  ``run``: the
+        run label above the axes; ``symbol``: the pair's mass symbol (mathtext)."""
         from pathlib import Path
 
         from .signal_model_plot import plot_parameters, plot_shapes
@@ -502,6 +504,6 @@ class SignalModel(FrozenValue):
         d = Path(directory)
         d.mkdir(parents=True, exist_ok=True)
         p1, p2 = d / f"{prefix}_parameters.png", d / f"{prefix}_shapes.png"
-        plot_parameters(self, p1)
-        plot_shapes(self, p2)
+        plot_parameters(self, p1, run=run, symbol=symbol)
+        plot_shapes(self, p2, run=run, symbol=symbol)
         return [p1, p2]
