@@ -88,3 +88,36 @@ def test_an_error_beside_is_raised_here_with_its_message():
 def test_a_value_computed_beside_comes_back():
     job = parallel.Beside(sorted, [3, 1, 2])
     assert job.result() == [1, 2, 3]
+
+
+def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, monkeypatch):
+    # Every figure is drawn exactly once, none by the main process, and (each drawing made
+    # slow, so that both drawers are busy) by two processes: the second drawer takes jobs
+    # from the same queue.  Reference: the one-process run's list of figure files.
+    import time
+
+    from peaksift import plotting
+
+    parent = os.getpid()
+    log = tmp_path / "drawn.txt"
+    real = plotting.search_figures
+
+    def slow_and_logged(result, outdir, **kw):
+        if os.getpid() != parent:
+            time.sleep(1.0)
+        with open(log, "a") as f:
+            f.write(f"{os.getpid()} {','.join(kw.get('names', ()))}\n")
+        return real(result, outdir, **kw)
+
+    monkeypatch.setattr(plotting, "search_figures", slow_and_logged)
+    peaksift.run_search(_config(small_demo), out=tmp_path / "beside", progress=False)
+    lines = [ln.split() for ln in log.read_text().splitlines()]
+    names = [n for _, n in lines]
+    assert sorted(names) == sorted(set(names)), names  # none drawn twice
+    pids = {int(p) for p, _ in lines}
+    assert parent not in pids and len(pids) == 2, lines
+    monkeypatch.setattr(plotting, "search_figures", real)
+    monkeypatch.setenv("PEAKSIFT_INLINE", "1")
+    peaksift.run_search(_config(small_demo), out=tmp_path / "inline", progress=False)
+    files = {p.name for p in (tmp_path / "inline" / "figures").iterdir()}
+    assert files == {p.name for p in (tmp_path / "beside" / "figures").iterdir()}

@@ -6,6 +6,7 @@ Built from results.json alone, like every section in :mod:`peaksift.report_secti
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
@@ -20,8 +21,12 @@ def _candidate_rows(sy: Mapping[str, Any]) -> list[list[str]]:
     rows = []
     for c in ch["candidates"]:
         spc = sp.get(c["label"])
-        spurious = "-" if not spc else (f"{spc['max_ratio']:.2f}"
-                                        + (" (flagged)" if spc["flagged"] else ""))
+        spurious = "-" if not spc else (
+            f"{math.copysign(spc['max_ratio'], spc.get('signal', 1.0)):+.2f} at "
+            f"{spc['mass']:.1f} GeV"
+            + (f"; {spc['ratio_at_best']:+.2f} at the best mass"
+               if spc.get("ratio_at_best") is not None else "")
+            + (" (flagged)" if spc["flagged"] else ""))
         status = ("kept" + (", in envelope" if c["label"] in inenv else "")) if c["chosen"] \
             else ""
         rows.append([c["label"], number(c["nll"], 8), str(c["n_parameters"]),
@@ -45,14 +50,19 @@ def _limit_blocks(lim: Any) -> list[Block]:
         v = d.get(key) or []
         return fixed(v[i], 2) if i < len(v) else "n/a"
 
-    rows = [[fixed(mass[i]), at(wo, "observed", i), at(w, "observed", i),
-             at(wo, "expected", i), at(w, "expected", i)] for i in range(len(mass))]
+    methods = list(w.get("methods") or [])
+    toy = [i < len(methods) and methods[i] == "toys" for i in range(len(mass))]
+    rows = [[fixed(mass[i]) + (" (toys)" if toy[i] else ""), at(wo, "observed", i),
+             at(w, "observed", i), at(wo, "expected", i), at(w, "expected", i)]
+            for i in range(len(mass))]
+    how = ("asymptotic" if not any(toy) else
+           f"asymptotic; at {sum(toy)} low-count masses toys with the same profiling")
     unit = w.get("unit") or ""
     cl = 100 * float(w.get("cl") or 0.95)
     out: list[Block] = [
         ("p", (f"Upper limits at {cl:g}% CL ({unit}), CLs: the plain ones (the single "
                "function of the model with the luminosity and efficiency uncertainties, as "
-               "in the Upper limits section) beside those with systematics (asymptotic), which "
+               f"in the Upper limits section) beside those with systematics ({how}), which "
                "profile " + ", ".join(lim.get("profiled") or []) + ".")),
         ("table", ["mass [GeV]", "observed, plain", "observed, with systematics",
                    "expected, plain", "expected, with systematics"], rows)]
@@ -79,7 +89,8 @@ def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> li
                     f"{'sidebands' if ch.get('blind') else 'spectrum'} ({ch['n_bins']} bins). "
                     f"Order test: {ch['test']}; an order is kept when the next one's p-value "
                     f"is at least {ch['size']:g}. Spurious signal: the largest fitted signal on "
-                    "the background template over its statistical error.")))
+                    "the background template over its statistical error (with its sign), the "
+                    "mass where it is largest, and its value at the best mass hypothesis.")))
         out.append(("table", ["function", "NLL", "free parameters", "goodness-of-fit p",
                               "order test p", "spurious signal / stat. error", "status"],
                     _candidate_rows(sy)))

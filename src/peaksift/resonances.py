@@ -98,10 +98,8 @@ def _table() -> tuple[_Entry, ...]:
     seen: set[int] = set()
     out: list[_Entry] = []
     for p in sorted(Particle.all(), key=lambda q: (abs(int(q.pdgid)), -int(q.pdgid))):
-        if not _keep(p):
-            continue
         key = abs(int(p.pdgid))
-        if key in seen:  # the antiparticle of one already listed
+        if key in seen or not _keep(p):  # seen: the antiparticle of one already listed
             continue
         seen.add(key)
         up = p.mass_upper if p.mass_upper is not None else 0.0

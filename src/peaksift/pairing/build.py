@@ -4,13 +4,12 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
-import threading
 from collections.abc import Iterator, Sequence
 from typing import Any
 
-import numba
 import numpy as np
 
+from .._jit import numba_extensions_deferred
 from ..cuts import CutLike, event_mask
 from ..energy_loss import DedxResponse, hypothesis_mass
 from ..errors import ConfigError, closest
@@ -125,51 +124,27 @@ def _check_hypotheses(hypotheses: Any, identification: Any, assignment: Any
 
 
 _KERNELS_LOADED = False  # the first kernel section of this process has run
-_FIRST_SECTION = threading.Lock()
 
 
 @contextlib.contextmanager
 def _kernels_without_extensions(first_section: bool = True) -> Iterator[None]:
-    """Let the kernels load without numba's third-party extensions, once per process.
-
-    The first numba compilation or cache load in a process runs every installed
-    ``numba_extensions`` entry point (``numba.core.entrypoints.init_all``): awkward's and
-    vector's among them, about 0.25 s here, half of numba's whole first-call cost, paid
-    again by every worker process.  The kernels take plain numpy arrays and need none of
-    those extensions.  So while the first kernel section runs, ``init_all`` is replaced by a
-    function that does nothing when called from this thread and the real thing from any
-    other thread (whose compilations may need the extensions); it is put back afterwards,
-    and the next compilation in this thread loads the extensions as usual.  numba's own
-    "initialised" flag is never touched.  Tested: a user's ``numba.njit`` function over
-    awkward arrays works after :func:`pair`, inside a callable cut of the first
-    :func:`pair` call, and in another thread during it.  Only our kernels run inside: cuts
-    and other user code are evaluated before.  Once the first section has run, or with a
-    numba whose extensions are already in, this does nothing.  ``first_section=False``
-    (the warm-up before forking) leaves the next section its turn.
+    """Let the kernels load without numba's third-party extensions, once per process
+    (:func:`peaksift._jit.numba_extensions_deferred`: awkward's and vector's numba
+    extensions cost about 0.25-0.4 s at numba's first use, paid again by every worker
+    process, and the kernels take plain numpy arrays).  Only our kernels run inside: cuts
+    and other user code are evaluated before.  Tested: a user's ``numba.njit`` function
+    over awkward arrays works after :func:`pair`, inside a callable cut of the first
+    :func:`pair` call, and in another thread during it.  Once the first section has run
+    this does nothing; ``first_section=False`` (the warm-up before forking) leaves the next
+    section its turn.
     """
     global _KERNELS_LOADED
-    eps = getattr(getattr(numba, "core", None), "entrypoints", None)
-    if (_KERNELS_LOADED or eps is None or not callable(getattr(eps, "init_all", None))
-            or getattr(eps, "_already_initialized", True) is not False):
+    if _KERNELS_LOADED:
         yield
         return
-    with _FIRST_SECTION:  # one thread's first section at a time; the others then skip
-        if _KERNELS_LOADED:
-            yield
-            return
-        real = eps.init_all
-        owner = threading.get_ident()
-
-        def init_all_but_here() -> None:
-            if threading.get_ident() != owner:
-                real()
-
-        try:
-            eps.init_all = init_all_but_here
-            yield
-            _KERNELS_LOADED = _KERNELS_LOADED or first_section
-        finally:
-            eps.init_all = real
+    with numba_extensions_deferred():
+        yield
+    _KERNELS_LOADED = _KERNELS_LOADED or first_section
 
 
 def load_kernels() -> None:

@@ -7,7 +7,10 @@ Which piece when
   :meth:`Beside.result` returns its value.
 * :class:`FigureWorker` -- a forked process, started before the events are read, that
   imports matplotlib while they are read and draws each figure as soon as its results
-  exist (:meth:`FigureWorker.draw`); :meth:`FigureWorker.finish` returns the files.
+  exist (:meth:`FigureWorker.draw`); :meth:`FigureWorker.finish` returns the files.  Once
+  matplotlib is loaded it forks a second drawer from itself (no second import), and the
+  two take the figures one at a time from one queue: the last figures of a run, which wait
+  for the statistics, are drawn on both cores.
 
 Both give exactly what the same call in this process gives: the work is deterministic and
 its inputs are fixed when it starts (a fork copies them; the figure jobs are pickled).
@@ -161,18 +164,21 @@ class FigureWorker:
 
     def draw(self, names: Sequence[str], result: Any, **extra: Any) -> None:
         """Draw the figures ``names`` of ``result`` (``extra``: more keywords of
-        :func:`~peaksift.plotting.search_figures`, e.g. ``calibration``)."""
-        job = (tuple(names), result, extra)
-        self.jobs.append(job)
-        if self._proc is not None:
-            self._queue.put(job)
+        :func:`~peaksift.plotting.search_figures`, e.g. ``calibration``); one job per
+        figure, so that the two drawers share them."""
+        for name in names:
+            job = ((name,), result, extra)
+            if self._proc is not None:
+                self._queue.put((len(self.jobs), *job))
+            self.jobs.append(job)
 
     def finish(self) -> dict[str, Path]:
         """Wait for every figure; draw here whatever the child did not deliver."""
         drawn: dict[str, str] = {}
         done: set[int] = set()
         if self._proc is not None:
-            self._queue.put(None)
+            for _ in range(_DRAWERS):  # one end mark per drawer
+                self._queue.put(None)
             try:
                 drawn, done, caught, self.cpu = self._conn.recv()
             except (EOFError, OSError):  # the child died: everything is drawn here
@@ -214,36 +220,100 @@ def _warm_up() -> None:
     fig.savefig(io.BytesIO(), format="png", dpi=50)
 
 
+#: processes drawing a search's figures: the first forks the others once matplotlib is in
+_DRAWERS = 2
+
+
+def _draw_jobs(queue: Any, outdir: Path, kw: dict[str, Any], drawn: dict[str, str],
+               done: set[int], caught: list[tuple[str, type, str, int]]) -> None:
+    """Draw jobs from ``queue`` until its end mark; a failed job is left to the parent."""
+    from .. import plotting
+
+    while (job := queue.get()) is not None:
+        i, names, result, extra = job
+        try:
+            with warnings.catch_warnings(record=True) as seen:
+                warnings.simplefilter("always")
+                made = plotting.search_figures(result, outdir, names=names, **kw, **extra)
+            caught += [_record(w) for w in seen]
+            drawn.update({k: str(v) for k, v in made.items()})
+            done.add(i)
+        except Exception:  # noqa: BLE001 -- the parent draws it again and raises
+            _log.debug("figures %s failed; drawn again in the parent", names, exc_info=True)
+
+
+def _second_drawer(queue: Any, outdir: Path, kw: dict[str, Any]) -> tuple[int, Any] | None:
+    """Fork another drawer from this one (matplotlib loaded and warmed up); returns its
+    ``(pid, connection)`` for :func:`_join_drawer`, None when the fork failed."""
+    import multiprocessing
+
+    receive, send = multiprocessing.Pipe(duplex=False)
+    me = os.getpid()
+    try:
+        with quiet_fork():
+            pid = os.fork()
+    except OSError:
+        return None
+    if pid:
+        send.close()
+        return pid, receive
+    code = 1  # the second drawer from here on: it ends in os._exit
+    drawn: dict[str, str] = {}
+    done: set[int] = set()
+    caught: list[tuple[str, type, str, int]] = []
+    try:
+        receive.close()
+        die_with_parent(me)
+        _draw_jobs(queue, outdir, kw, drawn, done, caught)
+        code = 0
+    except BaseException:  # noqa: BLE001 -- the main process draws what was not delivered
+        _log.debug("second figure process stopped", exc_info=True)
+    finally:
+        try:
+            send.send((drawn, done, caught, cpu_seconds()))
+        finally:
+            os._exit(code)
+
+
+def _join_drawer(helper: tuple[int, Any], drawn: dict[str, str], done: set[int],
+                 caught: list[tuple[str, type, str, int]]) -> float:
+    """Add what the second drawer delivered; returns its CPU seconds."""
+    pid, conn = helper
+    cpu = 0.0
+    try:
+        d, dn, cg, cpu = conn.recv()
+        drawn.update(d)
+        done.update(dn)
+        caught += cg
+    except (EOFError, OSError):  # it died: its figures are drawn in the main process
+        pass
+    conn.close()
+    os.waitpid(pid, 0)
+    return cpu
+
+
 def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
                   kw: dict[str, Any]) -> None:
     code = 1
     drawn: dict[str, str] = {}
     done: set[int] = set()
     caught: list[tuple[str, type, str, int]] = []
+    helpers: list[tuple[int, Any]] = []
     try:
         _child_start(parent)
-        from .. import plotting
+        from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up()
-        i = 0
-        while (job := queue.get()) is not None:
-            names, result, extra = job
-            try:
-                with warnings.catch_warnings(record=True) as seen:
-                    warnings.simplefilter("always")
-                    made = plotting.search_figures(result, outdir, names=names, **kw, **extra)
-                caught += [_record(w) for w in seen]
-                drawn.update({k: str(v) for k, v in made.items()})
-                done.add(i)
-            except Exception:  # noqa: BLE001 -- the parent draws it again and raises
-                _log.debug("figures %s failed; drawn again in the parent", names,
-                           exc_info=True)
-            i += 1
+        for _ in range(_DRAWERS - 1):
+            if (h := _second_drawer(queue, outdir, kw)) is not None:
+                helpers.append(h)
+        _draw_jobs(queue, outdir, kw, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the parent draws what was not delivered
         _log.debug("figure process stopped", exc_info=True)
     finally:
         try:
-            conn.send((drawn, done, caught, cpu_seconds()))
+            cpu = cpu_seconds() + sum(_join_drawer(h, drawn, done, caught) for h in helpers)
+            conn.send((drawn, done, caught, cpu))
         finally:
             os._exit(code)

@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from .._jit import numba_extensions_deferred
 from ..config import Config, load_config
 from ..errors import ConfigError, FitError
 from .common import (
@@ -122,7 +123,10 @@ def run_search(
 
 
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
-            stage: _Staging | None, target: Path | None) -> SearchResult:
+            stage: _Staging | None, target: Path | None, collected: Any = None
+            ) -> SearchResult:
+    """The search of one config; ``collected``: its events already read and selected (a
+    combination reads a shared input once for its channels), else read here."""
     # the figures are drawn beside the statistics, by a process started before the events
     # are read (it loads matplotlib meanwhile); without an output folder, or with
     # output.figures = "none", none are drawn (and no process is started)
@@ -131,8 +135,12 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
               if stage is not None and cfg.output.figures != ("none",) else None)
     besides: list[Beside] = []
     try:
-        return _stages(cfg, unblind=unblind, progress=progress, started=started, stage=stage,
-                       target=target, drawer=drawer, besides=besides)
+        # only our kernels run in a search: numba's third-party extensions (awkward's,
+        # vector's: ~0.3 s) need not load at its first use here or in the stages beside
+        with numba_extensions_deferred():
+            return _stages(cfg, unblind=unblind, progress=progress, started=started,
+                           stage=stage, target=target, drawer=drawer, besides=besides,
+                           collected=collected)
     except BaseException:  # nothing may keep writing into the discarded staging folder
         for b in besides:
             b.cancel()
@@ -143,14 +151,15 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
 def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None, drawer: FigureWorker | None,
-            besides: list[Beside]) -> SearchResult:
+            besides: list[Beside], collected: Any = None) -> SearchResult:
     from ..fitting import fit
     from ..resonances import match_known, pair_charge
     from ..stats.scan import scan
 
     clock = _Clock()
     ident = dedx_identification(cfg, progress=progress)
-    col, _, _ = _collect(cfg, progress=progress, identification=ident)
+    col = collected if collected is not None else _collect(cfg, progress=progress,
+                                                            identification=ident)[0]
     info = dict(col.engine_info)
     _log.info("read %s events from %d files in %s chunks: engine %s, %s workers",
               f"{col.events_read:,}", len(col.files_read), info.get("chunks"),
@@ -214,13 +223,24 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     clock.lap("global significance")
 
     syst = None
+    syst_limits_job = None
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
-        from .systematics import run_systematics
+        from .systematics import run_systematics, systematic_limits_at
+
+        def scanned(envelope: Any) -> None:
+            # the limits with systematics need the envelope, not its toys (nor the fits):
+            # they run beside those, like the plain limits
+            nonlocal syst_limits_job
+            if limits_job is not None and smodel is None:
+                syst_limits_job = Beside(systematic_limits_at, cfg, hist, scan_sig, envelope,
+                                         _limit_masses(cfg, masses), natural_width=width,
+                                         blind=blind_window)
+                besides.append(syst_limits_job)
 
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
-                                                executor=_toy_executor(cfg))
+                                                executor=_toy_executor(cfg), scanned=scanned)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
@@ -264,13 +284,16 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                   _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
                           smodel))
         clock.lap("limits" if limits_job is None else "limits (rest of)")
-        if syst is not None and smodel is None:
+        if syst is not None:
             from .systematics import limits_with_systematics
 
             syst = {**syst, "limits": limits_with_systematics(
                 cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
-                blind=blind_window)}
-            clock.lap("limits with systematics")
+                blind=blind_window, signal_model=smodel,
+                executor=_toy_executor(cfg, "toy limits"),
+                computed=syst_limits_job.result() if syst_limits_job is not None else None)}
+            clock.lap("limits with systematics" if syst_limits_job is None
+                      else "limits with systematics (rest of)")
         _draw(drawer, cfg, ["limits"], partial(limits=limits, systematics=syst))
 
     # hashed where the footers were read (on the workers of a cluster); None when
@@ -322,7 +345,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     # others may overlap it (their sum over the cores bounds the wall time from below)
     prov["cpu"] = {"main": round(cpu_seconds(), 2),
                    "figures": round(drawer.cpu if drawer is not None else 0.0, 2),
-                   **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {})}
+                   **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {}),
+                   **({"limits with systematics": round(syst_limits_job.cpu, 2)}
+                      if syst_limits_job is not None else {})}
     order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}
@@ -367,12 +392,17 @@ def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
                              start_method=ex.start_method)
 
 
+def _limit_masses(cfg: Config, masses: np.ndarray) -> np.ndarray:
+    """The limits' mass points: ``limits.points`` evenly over the scan's masses."""
+    n = min(cfg.limits.points, masses.size)
+    return np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
+
+
 def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
             width: float | None, blind: Any, progress: bool, smodel: Any = None) -> Any:
     from ..stats.limits import upper_limits
 
-    n = min(cfg.limits.points, masses.size)
-    lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
+    lm = _limit_masses(cfg, masses)
     L = cfg.limits
     half = (lm[-1] - lm[0]) / (2 * (lm.size - 1)) if lm.size > 1 else 0.0
     for i, m in enumerate(L.toy_masses):

@@ -20,7 +20,7 @@ from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special
+from scipy import special
 
 from ._base import Parameter, Shape
 
@@ -76,6 +76,8 @@ class _Signal(Shape):
 
         def g(x: float) -> float:
             return float(self._density(np.array(x), p, w)) - 0.5 * fmax
+
+        from scipy import optimize  # here: a search's start-up need not load it
 
         sides = []
         for sign in (-1.0, 1.0):

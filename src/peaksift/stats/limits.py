@@ -57,7 +57,7 @@ from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import special
 
 from .._json import plain
 from .._vocabulary import LIMIT_METHODS
@@ -132,6 +132,8 @@ def poisson_interval(n: Any, cl: float = 0.6827) -> tuple[np.ndarray, np.ndarray
 
     (``scipy.stats.chi2.ppf``), with :math:`\mu_{lo} = 0` for n = 0.
     """
+    from scipy import stats  # here, not at import: scipy.stats costs ~0.5 s to load
+
     n = np.asarray(n, float)
     a = 1.0 - cl
     lo = np.where(n > 0, 0.5 * stats.chi2.ppf(a / 2, 2 * np.maximum(n, 1e-300)), 0.0)
@@ -154,6 +156,8 @@ def poisson_upper_limit(n: int, cl: float = 0.95, background: float = 0.0, *,
         raise FitError(f"confidence level must be in (0, 1), got {cl!r}")
     if background < 0:
         raise FitError(f"background must be >= 0, got {background!r}")
+    from scipy import optimize, stats  # here, not at import (slow to load)
+
     alpha = 1.0 - cl
     if method == "classical":
         return float(0.5 * stats.chi2.ppf(cl, 2 * n + 2) - background)

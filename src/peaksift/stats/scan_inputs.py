@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import hashlib
 import math
+import pickle
+import threading
 import warnings
+from collections import OrderedDict
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -18,6 +22,7 @@ from ..likelihood import (
     binned_nll,
     minimize,
 )
+from ..likelihood.poisson import use_compiled
 from ..resolution import check_resolved, resolution_from
 from .bounds import check_fit_bins, check_plan, check_widths
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background
@@ -189,6 +194,30 @@ _FIRST_STEPS = 8
 HOPELESS = 1000.0
 
 
+#: background-only fits of data made in this process, by their inputs (see
+#: :func:`_fit_data_background`), the newest last; at most _FITS_KEPT
+_FITS: OrderedDict[bytes, tuple[tuple[np.ndarray, ...], list[Any]]] = OrderedDict()
+_FITS_KEPT = 32
+_FITS_LOCK = threading.Lock()
+
+
+def _fit_key(proto: ScanModel, counts: np.ndarray, start: np.ndarray) -> bytes | None:
+    """Everything the background fit's result depends on, as a digest: the shape's class
+    and options (its instance state but the integration cache), the bins, the window, the
+    bounds, the counts, the start, and the numpy-or-compiled switch; None when the shape
+    does not pickle (then the fit is not kept)."""
+    shape = proto.background
+    state = {k: v for k, v in vars(shape).items() if k != "_cache"}
+    try:
+        raw = pickle.dumps((type(shape).__module__, type(shape).__qualname__, state,
+                            proto.edges, proto.used, proto.window, proto.lower, proto.upper,
+                            proto.bin_scale, np.asarray(counts), np.asarray(start),
+                            use_compiled()), protocol=4)
+    except Exception:  # noqa: BLE001 -- any pickling failure: just fit again
+        return None
+    return hashlib.sha256(raw).digest()
+
+
 def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
                          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Background-only fit of the data, robust to poor starting values.
@@ -196,7 +225,36 @@ def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
     All starts of :func:`_start_grid` are fitted together (stacked Levenberg-Marquardt); the
     two best are refined by the likelihood core's minimiser (:func:`peaksift.likelihood.minimize`
     on :class:`_BackgroundCost`) and polished again; the lowest minimum is kept.
+
+    A search fits the same function to the same spectrum several times (its order test,
+    envelope scan, limits and limits with systematics, each from its own model): the
+    result is kept by its inputs (:func:`_fit_key`) and given again (copies; warnings
+    raised again), the same bits as fitting anew.
     """
+    key = _fit_key(proto, counts, start)
+    with _FITS_LOCK:
+        hit = _FITS.get(key) if key is not None else None
+        if hit is not None:
+            _FITS.move_to_end(key)
+    if hit is None:
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            fitted = _fit_data_background_anew(proto, counts, start)
+        hit = (tuple(np.array(a, copy=True) for a in fitted),
+               [(w.message, w.category, w.filename, w.lineno) for w in seen])
+        if key is not None:
+            with _FITS_LOCK:
+                _FITS[key] = hit
+                while len(_FITS) > _FITS_KEPT:
+                    _FITS.popitem(last=False)
+    for message, category, filename, lineno in hit[1]:
+        warnings.warn_explicit(message, category, filename, lineno)
+    th, b, nll = (np.array(a, copy=True) for a in hit[0])
+    return th, b, nll
+
+
+def _fit_data_background_anew(proto: ScanModel, counts: np.ndarray, start: np.ndarray
+                              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     if start.size == 0:
         return fit_background(proto, counts[None, :], start[None, :])
     # numerically integrated shapes cost one integration per start: fewer starts for them
