@@ -167,6 +167,7 @@ class SearchResult:
         from ..resonances import KnownMatch
         from ..stats.limit_result import LimitResult
         from ..stats.scan_result import ScanResult
+        from ..stats.signal_model import SignalModel
 
         try:
             cfg = load_config(dict(d["config"]))
@@ -186,7 +187,9 @@ class SearchResult:
                 figures={k: Path(outs["dir"]) / "figures" / v
                          for k, v in (outs.get("figures") or {}).items()},
                 fit_settings=settings, input_record=dict(d.get("input") or {}),
-                identification=d.get("identification"), systematics=d.get("systematics"))
+                identification=d.get("identification"), systematics=d.get("systematics"),
+                signal_model=SignalModel.from_dict(d["signal_model"])
+                if d.get("signal_model") else None)
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"not a results.json written by peaksift search: {exc!r}") \
                 from None
