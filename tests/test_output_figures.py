@@ -73,7 +73,8 @@ def test_a_combination_honours_the_figure_selection(demo_dir, tmp_path):
 
     ch = tmp_path / "ch.toml"
     text = (demo_dir / "search.toml").read_text().replace(
-        'files = ["events_*.parquet"]', f'files = ["{demo_dir}/events_*.parquet"]')
+        'files = ["events_*.parquet"]', f'files = ["{demo_dir}/events_*.parquet"]').replace(
+        '"background_template.json"', f'"{demo_dir}/background_template.json"')
     ch.write_text(text.replace("[output]", '[output]\nfigures = ["spectrum"]', 1))
     res = run_combination({"combination": {"channels": [str(ch)], "names": ["one"]},
                            "output": {"figures": "none"}}, out=tmp_path / "o", toys=0)
