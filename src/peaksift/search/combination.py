@@ -330,7 +330,7 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
                                               if f in FIGURES and cfg.output.draws(f)])
         if r.signal_model is not None and cfg.output.draws("signal_model"):
             made.update(zip(("signal_model_parameters", "signal_model_shapes"),
-                            r.signal_model.plot(sub, run=labels[name].run,
+                            r.signal_model.save_figures(sub, run=labels[name].run,
                                                 symbol=labels[name].symbol)))
         figs.update({f"{name}/{k}": Path(v) for k, v in made.items()})
     final = {k: target / Path(v).relative_to(stage) for k, v in figs.items()}

@@ -4,6 +4,8 @@ drawn on :func:`peaksift._style.new_figure`: no pyplot, the user's backend untou
 * :func:`plot_parameters` -- one panel per modelled quantity against mass: the per-sample
   points with errors, the fitted polynomial and its 1-sigma band.
 * :func:`plot_shapes`     -- every sample's histogram (normalised) with its fitted shape.
+
+Each returns its Figure (saved to ``path`` when given).
 """
 
 from __future__ import annotations
@@ -19,7 +21,7 @@ _LABELS = {"mass_shift": "peak shift [GeV]", "sigma": "$\\sigma$ [GeV]",
            "width": "width [GeV]", "efficiency": "efficiency $\\times$ acceptance"}
 
 
-def plot_parameters(model: Any, path: Any, *, run: Any = None, symbol: str = "m") -> Any:
+def plot_parameters(model: Any, path: Any = None, *, run: Any = None, symbol: str = "m") -> Any:
     from .._style import COLORS, figure_style, new_figure, text_width
 
     keys = list(model.quantities)
@@ -66,11 +68,12 @@ def plot_parameters(model: Any, path: Any, *, run: Any = None, symbol: str = "m"
                  "  ".join(p for p in ((run.conditions() if run else ""),
                                        "signal model from the simulated samples") if p),
                  fontsize=9.5, va="top", color=COLORS["data"])
-        fig.savefig(path)
-    return path
+        if path is not None:
+            fig.savefig(path)
+    return fig
 
 
-def plot_shapes(model: Any, path: Any, *, run: Any = None, symbol: str = "m") -> Any:
+def plot_shapes(model: Any, path: Any = None, *, run: Any = None, symbol: str = "m") -> Any:
     from matplotlib import colormaps
 
     from .. import shapes
@@ -102,5 +105,6 @@ def plot_shapes(model: Any, path: Any, *, run: Any = None, symbol: str = "m") ->
         ax.legend(loc="upper right", title="generated mass", fontsize=8)
         ax.text(0.01, 0.98, "points: simulated samples", transform=ax.transAxes, va="top",
                 fontsize=8, color=COLORS["data"])
-        fig.savefig(path)
-    return path
+        if path is not None:
+            fig.savefig(path)
+    return fig
