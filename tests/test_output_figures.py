@@ -81,3 +81,11 @@ def test_a_combination_honours_the_figure_selection(demo_dir, tmp_path):
     assert sorted(res.to_dict()["outputs"]["figures"]) == ["one/spectrum"]
     html = (tmp_path / "o" / "report.html").read_text()
     assert html.count("data:image/png;base64") == 1
+
+
+def test_the_spectrum_command_draws_only_what_is_asked_for(quick, tmp_path):
+    from peaksift.search import run_spectrum
+
+    res = run_spectrum(quick.with_overrides(output__figures=["spectrum"]), out=tmp_path / "s")
+    assert _files(tmp_path / "s") == ["figures/spectrum.png"]
+    assert sorted(res.files) == ["spectrum", "spectrum.json"]
