@@ -333,8 +333,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     more = {}
     if smodel is not None and cfg.output.draws("signal_model"):
+        lab = plotting.figure_labels(cfg)
         more.update(zip(("signal_model_parameters", "signal_model_shapes"),
-                        smodel.plot(figdir)))
+                        smodel.save_figures(figdir, run=lab.run, symbol=lab.symbol)))
     if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
