@@ -1,7 +1,8 @@
 """Regenerate the committed demo data set (demo_data/) and check what a search would see.
 
-    python scripts/make_demo_data.py             # rewrite demo_data/ (same seed -> same arrays)
-                                                 # and the signal samples in demo_data/signal/
+    python scripts/make_demo_data.py             # rewrite demo_data/ (same seed -> same arrays),
+                                                 # the signal samples in demo_data/signal/ and
+                                                 # the background template search.toml names
     python scripts/make_demo_data.py --check     # also fit the intended selection's spectrum
     python scripts/make_demo_data.py --outdir /tmp/d --events 100000 --seed 7 --check
 
@@ -31,7 +32,7 @@ import numpy as np
 REPO_DIR = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO_DIR / "src"))
 
-from peaksift import events, simulate, simulate_tracks
+from peaksift import events, search, simulate, simulate_tracks
 
 
 def _content_digest(paths: list[str]) -> str:
@@ -123,6 +124,9 @@ def main(argv: list[str] | None = None) -> int:
                                weighted=args.weighted, share_folder=True)
     print(info["summary"])
     print("content digest (arrays):", _content_digest(info["files"]))
+    config = Path(args.outdir) / "search.toml"
+    if not args.weighted and config.exists():  # the spurious-signal test's template
+        print("background template:", search.write_demo_template(config))
     if not args.weighted:  # the simulated signal samples of the combined demo search
         sig = simulate.write_signal_samples(Path(args.outdir) / "signal", seed=info["truth"]["seed"])
         for s in sig["samples"]:

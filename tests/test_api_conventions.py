@@ -97,23 +97,29 @@ matplotlib.use("{backend}")
 before = matplotlib.get_backend()
 from matplotlib.figure import Figure
 from peaksift import FitResult, LimitResult, MassHistogram, ScanResult
+from peaksift.stats.channels import Combination
 d = json.load(open(sys.argv[1]))
 figs = [FitResult.from_dict(d["fit"]).plot(), ScanResult.from_dict(d["scan"]).plot(),
         LimitResult.from_dict(d["limits"]).plot(),
-        MassHistogram(bins=10, range=(0, 1)).fill([0.5]).plot()]
+        MassHistogram(bins=10, range=(0, 1)).fill([0.5]).plot(),
+        Combination.from_dict(json.load(open(sys.argv[2]))).plot()]
 print(json.dumps({{"figures": all(isinstance(f, Figure) for f in figs),
                   "backend": matplotlib.get_backend() == before,
                   "pyplot": "matplotlib.pyplot" in sys.modules}}))
 """
 
 
-def test_plot_returns_a_figure_and_leaves_the_backend(search, tmp_path):
+def test_plot_returns_a_figure_and_leaves_the_backend(search, results, tmp_path):
     """In a fresh interpreter with an interactive-capable backend chosen by the user, every
-    plot() returns a Figure, the backend is unchanged and pyplot is never imported."""
+    plot() (fit, scan, limits, histogram, combination) returns a Figure, the backend is
+    unchanged and pyplot is never imported."""
     res = tmp_path / "results.json"
     res.write_text(json.dumps(_json(search.to_dict())))
+    comb = tmp_path / "combination.json"
+    comb.write_text(json.dumps(_json(results["combination"].to_dict())))
     code = _PLOTS.format(backend="svg")  # a backend other than Agg, set by the "user"
-    out = subprocess.run([sys.executable, "-c", code, str(res)], capture_output=True, check=False,
+    out = subprocess.run([sys.executable, "-c", code, str(res), str(comb)],
+                         capture_output=True, check=False,
                          text=True, cwd=REPO, env={"PYTHONPATH": str(REPO / "src"),
                                                    "PATH": "/usr/bin:/bin"})
     assert out.returncode == 0, out.stderr[-2000:]
@@ -135,6 +141,8 @@ def _same(python, stored):
     if isinstance(python, float) and hasattr(python, "error"):  # a Measurement
         return stored == {"value": _json(python.value), "error": _json(python.error)}
     if isinstance(python, (np.ndarray, list, tuple)) and isinstance(stored, list):
+        if any(isinstance(v, dict) for v in stored):  # results in a list: from_dict checks
+            return True
         if not all(v is None or isinstance(v, (int, float, list)) for v in stored):
             return _json(list(python)) == stored  # names, notes
         a = np.array([np.nan if v is None else v for v in np.ravel(stored)], float)
@@ -151,6 +159,7 @@ def results(search):
     from peaksift import shapes
     from peaksift.search.common import _blinded_copy
     from peaksift.search.sideband import sideband_fit
+    from peaksift.stats.background_choice import choose_background
     from peaksift.stats.envelope import envelope_scan
 
     cfg = search.config
@@ -162,9 +171,21 @@ def results(search):
                         "gaussian", np.linspace(120.0, 180.0, 13), window=cfg.spectrum.window,
                         blind=(145.0, 160.0), absolute_resolution=2.0,
                         spurious={"exp": 0.3})
+    comb, chans = _combination(search)
     return {"fit": search.fit, "background_fit": search.background_fit,
             "scan": search.scan, "limits": search.limits, "sideband_fit": sb,
-            "envelope": env, "combination": _combination(search), "search": search}
+            "envelope": env, "combination": comb,
+            "combined_limits": _combined_limits(chans), "search": search,
+            "combined_search": _combined_search(search, comb, chans),
+            "histogram": search.histogram, "signal_model": _signal_model(),
+            "background_choice": choose_background(search.histogram, {"exppoly": [1, 2]},
+                                                   window=cfg.spectrum.window)}
+
+
+def _signal_model():
+    from peaksift.search.signal import search_signal_model
+
+    return search_signal_model(peaksift.load_config(REPO / "demo_data" / "dimuon.toml"))
 
 
 def _combination(search):
@@ -183,11 +204,33 @@ def _combination(search):
                      luminosity_group="run")
              for n, hist, lumi in (("a", h, 10.0), ("b", half, 5.0))]
     return combine(chans, np.linspace(120.0, 180.0, 7), blind=(145.0, 160.0),
-                   expected_cross_section=1.0, refit=False)
+                   expected_cross_section=1.0, refit=False), chans
 
 
-@pytest.mark.parametrize("kind", ["fit", "background_fit", "scan", "limits", "sideband_fit",
-                                  "envelope", "combination", "search"])
+def _combined_limits(chans):
+    from peaksift.stats.channel_limits import combined_limits
+
+    return combined_limits(chans, np.linspace(130.0, 170.0, 3))
+
+
+def _combined_search(search, comb, chans):
+    """A combination's result as run_combination assembles it, from the parts above (two
+    channels that are the same demo search: the surface, not the numbers, is tested)."""
+    from peaksift.search.combination import CombinedSearchResult
+
+    return CombinedSearchResult(
+        channels={"a": search, "b": search}, combination=comb,
+        best=comb.global_significance("upcrossings", toys=0),
+        limits=_combined_limits(chans), source="<dict>", notes=("a note",))
+
+
+#: every result type the API convention covers (the tests below run on each)
+KINDS = ["fit", "background_fit", "scan", "limits", "sideband_fit", "envelope",
+         "combination", "combined_limits", "search", "combined_search", "signal_model",
+         "background_choice"]
+
+
+@pytest.mark.parametrize("kind", KINDS)
 def test_json_keys_are_the_python_attribute_names(results, kind):
     """Every key results.json writes for a result is an attribute of the same name holding
     the same numbers, and the result read back from the JSON equals the one written."""
@@ -204,6 +247,52 @@ def test_json_keys_are_the_python_attribute_names(results, kind):
         assert back.background_fit == res.background_fit
     else:
         assert back == res
+    if kind == "combined_search":  # the value equality is not blind: a change shows
+        import dataclasses
+
+        assert dataclasses.replace(back, best={**back.best, "z_local": 0.0}) != res
+        assert _json(back.to_dict()) == {k: v for k, v in d.items() if k != "outputs"}
+
+
+@pytest.mark.parametrize("kind", [*KINDS, "histogram"])
+def test_every_result_has_a_short_repr_and_notebook_html(results, kind):
+    """The notebook surface of every result type: a short repr (no config dump, no arrays;
+    a fit's is its parameter table) and an HTML table."""
+    res = results[kind]
+    text = repr(res)
+    assert text.startswith(type(res).__name__ + "(") and len(text) < 1200, text
+    assert "array(" not in text and "config" not in text.lower()
+    page = res._repr_html_()
+    assert page.startswith("<div>") and "</table>" in page
+
+
+def test_combination_results_json_of_earlier_versions_still_loads(results):
+    """A combination results.json written before its keys took the attribute names
+    (``config_path``, ``channel_names``, the combined numbers under ``combined``) loads:
+    the combined scan, best hypothesis and limits read the same; what the old layout did
+    not keep is said in the notes."""
+    from peaksift.search.combination import CombinedSearchResult
+
+    res = results["combined_search"]
+    d = _json(res.to_dict())
+    comb, lim = d["combination"], d["limits"]
+    keys = ("masses", "z_local", "p_local", "q0", "cross_section", "cross_section_error",
+            "unit", "z_expected", "expected_cross_section", "best", "blind")
+    old = {"peaksift_version": "0.0", "kind": "combination", "config_path": d["source"],
+           "channel_names": list(d["channels"]), "channels": d["channels"],
+           "combined": {**{k: comb[k] for k in keys}, "nuisances": d["nuisances_at_best"],
+                        "global": d["best"], "notes": d["notes"],
+                        "limits": {k: v for k, v in lim.items() if k != "channels"}}}
+    back = CombinedSearchResult.from_dict(old)
+    for name in ("masses", "z_local", "p_local", "cross_section"):
+        assert np.array_equal(getattr(back.combination, name), getattr(res.combination, name),
+                              equal_nan=True), name
+    assert back.combination.best_mass == res.combination.best_mass
+    assert back.best == res.best and back.source == res.source
+    for name in ("masses", "observed", "expected", "expected_minus2", "expected_plus2"):
+        assert np.array_equal(getattr(back.limits, name), getattr(res.limits, name),
+                              equal_nan=True), name
+    assert any("earlier layout" in n for n in back.notes)
 
 
 def test_results_json_of_earlier_versions_still_loads(search):

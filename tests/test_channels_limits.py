@@ -70,5 +70,5 @@ def test_combined_toy_limit_of_two_counting_channels_is_the_summed_counting_limi
     asym = combined_limits(chans, [m], method="asymptotic")
     assert asym.methods == ("asymptotic",) and asym.flags[0]
     assert not lim.flags[0]
-    d = lim.to_dict()["combined"]
+    d = lim.to_dict()
     assert d["methods"] == ["toys"] and d["toys"]

@@ -393,3 +393,29 @@ def test_output_into_a_closed_pipe_is_not_a_traceback(tmp_path):
     assert proc.returncode == 141, proc.stderr
     assert "Traceback" not in proc.stderr and "Exception ignored" not in proc.stderr
     assert (tmp_path / "d" / "truth.json").is_file()
+
+
+_OTHER_LOGS = """
+import argparse, logging, warnings
+from peaksift import cli
+cli._setup_logging(argparse.Namespace(quiet=False, verbose=0))
+warnings.formatwarning = cli._one_line_warning
+logging.getLogger("matplotlib.mathtext").warning("Font 'x' has no glyph\\nfor this")
+logging.getLogger("matplotlib.mathtext").info("not shown")
+warnings.warn("a library's warning")
+"""
+
+
+def test_other_libraries_warnings_print_as_one_line_of_ours():
+    """A logged warning of another library (matplotlib logs a missing glyph, it does not
+    warn) prints like a warnings.warn one: one ``peaksift: warning:`` line naming where it
+    came from, no bare last-resort line; below WARNING nothing."""
+    import subprocess
+    import sys
+
+    src = Path(__file__).resolve().parents[1] / "src"
+    out = subprocess.run([sys.executable, "-c", _OTHER_LOGS], capture_output=True, text=True,
+                         check=True, env={"PYTHONPATH": str(src), "PATH": "/usr/bin:/bin"})
+    assert out.stderr.splitlines() == [
+        "peaksift: warning: Font 'x' has no glyph for this (matplotlib.mathtext)",
+        "peaksift: warning: a library's warning (UserWarning)"]

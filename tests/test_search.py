@@ -122,6 +122,22 @@ def test_systematics_block_with_and_without(run):
     assert "observed, with systematics" in md and "expected, plain" in md
 
 
+def test_demo_background_makes_the_function_choice_visible(run):
+    """What the demo's continuum is built for (its shoulder near 145 GeV): the single power
+    law of ``[model]`` and the envelope differ by at least half a sigma in local Z at the
+    best mass, and the spurious-signal test (limit 0.2 of the statistical error, common
+    practice) flags the power law at the best mass, where the envelope's Bernstein candidate
+    spuriously fits less than half as much."""
+    sy = run["results"]["systematics"]
+    plain, with_sy = sy["without_systematics"], sy["with_systematics"]
+    assert plain["z_local"] - with_sy["z_local"] >= 0.5
+    sp = sy["spurious_signal"]
+    assert sp["powersum1"]["flagged"] and sp["powersum1"]["ratio_at_best"] > 0.2
+    bern = [f for f in sy["envelope"]["functions"] if f.startswith("bernstein")]
+    assert bern and abs(sp[bern[0]]["ratio_at_best"]) < 0.5 * sp["powersum1"]["ratio_at_best"]
+    assert "powersum1" in run["stdout"] and "spurious signal" in run["stdout"]
+
+
 def test_candidate_count_matches_the_spectrum_file(run):
     from peaksift.histogram import MassHistogram
 
@@ -202,6 +218,18 @@ def test_summary_printed(run):
                   "local significance", "global significance", "outputs"):
         assert label in out
     assert str(run["out"]) in out
+
+
+def test_readme_summary_is_this_run(run):
+    """The README prints the demo's summary; it must be what the demo search prints, line
+    for line (only the output folder differs), so a change of the demo's numbers updates it."""
+    readme = (REPO_DIR / "README.md").read_text()
+    start = readme.index("```\npeaksift search: summary\n") + 4
+    block = readme[start:readme.index("```", start)].splitlines()
+    out = run["stdout"]
+    printed = out[out.index("peaksift search: summary"):].splitlines()
+    printed = [ln.replace(str(run["out"]), "/path/to/demo_out") for ln in printed]
+    assert block == printed[:len(block)] and len(printed) == len(block)
 
 
 def test_profile_likelihood_intervals_by_default(run, demo_nll):

@@ -110,7 +110,7 @@ def test_one_channel_through_the_combination_is_the_demo_search(demo_dir):
     # the demo has [systematics]; a one-channel combination is its plain scan and says so,
     # so its global significance is the search's without systematics
     assert comb.best["z_global"] == a["systematics"]["without_systematics"]["z_global"]
-    assert any("[systematics]" in n for n in comb.to_dict()["combined"]["notes"])
+    assert any("[systematics]" in n for n in comb.to_dict()["notes"])
 
 
 def test_combination_config_is_checked(demo_dir, tmp_path):
@@ -140,11 +140,11 @@ def test_combined_demo_writes_its_report_with_every_channel(demo_dir, tmp_path):
 
     res = run_combination(demo_dir / "combined.toml", out=tmp_path / "out", toys=20)
     d = json.loads((tmp_path / "out" / "results.json").read_text())
-    nuis = d["combined"]["nuisances"]
+    nuis = d["nuisances_at_best"]
     assert set(nuis) == {"luminosity_shared", "efficiency_dimuon", "efficiency_dielectron"}
     assert nuis["luminosity_shared"]["log_scale"] == pytest.approx([math.log1p(0.02)] * 2)
     assert nuis["efficiency_dimuon"]["log_scale"] == pytest.approx([math.log1p(0.05), 0.0])
-    lim = d["combined"]["limits"]
+    lim = d["limits"]
     assert len(lim["methods"]) == len(lim["masses"]) and lim["nuisances"]
     html = (tmp_path / "out" / "report.html").read_text()
     assert "A local significance is not a discovery" in html

@@ -12,7 +12,10 @@
 * :func:`die_with_parent`      -- in a worker: end as soon as the process that started it
   ends, however it ends (``kill -9`` included).
 * :class:`Terminated` and :func:`sigterm_as_interrupt` -- SIGTERM (what ``timeout`` and
-  batch systems send) handled like Ctrl-C: the same clean-up, then exit status 143.
+  batch systems send) handled like Ctrl-C: the same clean-up, then exit status 143;
+  :func:`terminated` says whether it came (when other code turned it into its own error).
+* :func:`sigterm_held` -- around a fork: SIGTERM waits until the child has set up its
+  signals (every pool of :func:`process_pool` forks under it).
 
 The execution engines (:mod:`peaksift.execution`) and the toy engine's ``workers=`` pool
 (:mod:`peaksift.stats.toys`) share these, so every pool peaksift starts behaves alike.  Why
@@ -33,7 +36,7 @@ from typing import Any
 
 __all__ = ["WORKER_ENV", "Terminated", "arrow_threads_from_env", "die_with_parent",
            "process_pool", "quiet_fork", "resolve_start_method", "sigterm_as_interrupt",
-           "sigterm_held", "stop_pool", "worker_start"]
+           "sigterm_held", "stop_pool", "terminated", "worker_start"]
 
 #: Environment of the worker processes we start (unless the user set these): they run one
 #: process per core, so Arrow's decoding threads and BLAS threads would only contend with
@@ -71,34 +74,75 @@ def sigterm_held() -> Iterator[None]:
     started) runs the handler the child inherited: :class:`Terminated` is raised in the
     child's copy of the parent's stack and the child carries on as the parent, running the
     parent's code (seen with a search stopped by an input error right after forking its
-    figure process, inside a test session).  :func:`worker_start` unblocks it."""
+    figure process, inside a test session).  :func:`worker_start` unblocks it.
+
+    The mask covers this thread only: a SIGTERM the kernel hands to another thread (Arrow's
+    readers, a pool's manager) would still have :func:`sigterm_as_interrupt`'s handler run
+    here, in the middle of the fork's bookkeeping (a worker started but not yet recorded,
+    so not stopped).  That handler therefore only notes a SIGTERM while inside, and it is
+    raised again on the way out."""
     if not hasattr(signal, "pthread_sigmask"):  # pragma: no cover - not on Windows
         yield
         return
     old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGTERM})
+    _HELD[0] += 1
     try:
         yield
     finally:
+        _HELD[0] -= 1
         signal.pthread_sigmask(signal.SIG_SETMASK, old)
+        if _HELD[0] == 0 and _HELD[1]:
+            _HELD[1] = False
+            signal.raise_signal(signal.SIGTERM)  # the handler runs now, outside
+
+
+#: [depth of sigterm_held, whether a SIGTERM was noted inside, whether Terminated was
+#: raised]; see :func:`sigterm_held` and :func:`terminated`
+_HELD: list[Any] = [0, False, False]
+
+
+def terminated() -> bool:
+    """Whether :func:`sigterm_as_interrupt` has raised :class:`Terminated` in this process.
+    Code that turns any exception into its own (an extension module's import, which re-raises
+    a failure as ImportError) can hide it; the command line asks this before it reports a
+    raw error."""
+    return bool(_HELD[2])
 
 
 def process_pool(size: int, start_method: str = "auto",
                  initializer: Callable[..., Any] | None = None,
                  initargs: tuple[Any, ...] = ()) -> Any:
     """A process pool of ``size`` workers started with ``start_method`` (resolved with
-    :func:`resolve_start_method`).  Its processes start at the first submit: wrap that in
-    :func:`quiet_fork`."""
+    :func:`resolve_start_method`).  Its processes start at the submits: wrap the first ones
+    in :func:`quiet_fork`.  Every worker starts with :func:`worker_start` (then the caller's
+    ``initializer``), and every submit that may start one holds SIGTERM
+    (:func:`sigterm_held`), so a SIGTERM between a fork and the worker's own signal set-up
+    ends the worker instead of running the caller's handler in it."""
     import functools
-    from concurrent.futures import ProcessPoolExecutor
 
     ctx = multiprocessing.get_context(resolve_start_method(start_method))
     # every worker first ties its life to this process's, whatever the caller's initializer
     init = functools.partial(_start_worker, os.getpid(), initializer, initargs)
-    return ProcessPoolExecutor(max_workers=size, mp_context=ctx, initializer=init)
+    return _pool_class()(max_workers=size, mp_context=ctx, initializer=init)
+
+
+def _pool_class() -> type:
+    from concurrent.futures import ProcessPoolExecutor
+
+    class HeldPool(ProcessPoolExecutor):
+        """A ProcessPoolExecutor whose submits (where it forks or spawns its workers)
+        run with SIGTERM held, for the same reason as :func:`sigterm_held`'s forks."""
+
+        def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> Any:
+            with sigterm_held():
+                return super().submit(fn, *args, **kwargs)
+
+    return HeldPool
 
 
 def _start_worker(parent: int, initializer: Callable[..., Any] | None,
                   initargs: tuple[Any, ...]) -> None:
+    worker_start()  # signals first: a SIGTERM held since the fork now ends us, not earlier
     die_with_parent(parent)
     if initializer is not None:
         initializer(*initargs)
@@ -161,11 +205,15 @@ def sigterm_as_interrupt() -> Iterator[None]:
     pending = [False]
 
     def handler(signum: int, frame: Any) -> None:
+        if _HELD[0] > 0:  # inside sigterm_held: raised again on its way out
+            _HELD[1] = True
+            return
         if _inside_native_callback(frame):  # raised here, ctypes would print and drop it
             pending[0] = True
             signal.setitimer(signal.ITIMER_REAL, _RETRY)  # ask again once out of there
             return
         pending[0] = False
+        _HELD[2] = True
         signal.signal(signal.SIGTERM, signal.SIG_IGN)
         signal.setitimer(signal.ITIMER_REAL, 0)
         raise Terminated
@@ -214,6 +262,7 @@ def worker_start() -> None:
     handler a forked worker inherited from the caller; one thread per library."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    _HELD[:] = [0, False, False]  # a forked worker's copy of its parent's state is not its own
     if hasattr(signal, "pthread_sigmask"):  # started under sigterm_held: a pending SIGTERM
         signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGTERM})  # now ends us
     for k, v in WORKER_ENV.items():

@@ -246,9 +246,13 @@ def _points(ax: Any, x: float, y: float) -> Any:
 
 
 def text_width(text: str, size: float, weight: str = "normal") -> float:
-    """Width of ``text`` in points at font ``size`` (mathtext measured as mathtext)."""
+    """Width of ``text`` in points at font ``size`` (mathtext measured as mathtext; of its
+    widest line when it has several: mathtext has no line breaks)."""
     from matplotlib.font_manager import FontProperties
     from matplotlib.textpath import text_to_path
+
+    if "\n" in text:
+        return max(text_width(line, size, weight) for line in text.split("\n"))
 
     prop = FontProperties(size=size, weight=weight)
     ismath = text.count("$") >= 2 and text.count("$") % 2 == 0
@@ -348,15 +352,3 @@ def shade_blinded(ax: Any, span: Sequence[float] | None, *, label: str | None = 
     ax.axvspan(float(span[0]), float(span[1]), facecolor=COLORS["blind"],
                edgecolor=COLORS["blind_edge"], hatch="////", linewidth=0.0, zorder=0.5,
                label=label)
-
-
-def use_headless_backend() -> None:
-    """Kept for callers that still draw through pyplot: select Agg unless a backend was
-    chosen.  New code draws with :func:`new_figure` and never switches the backend."""
-    import os
-
-    import matplotlib
-
-    if not os.environ.get("MPLBACKEND") and matplotlib.get_backend().lower() not in ("agg",):
-        with contextlib.suppress(ValueError, ImportError):  # backend locked by the caller
-            matplotlib.use("Agg")

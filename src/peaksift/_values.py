@@ -17,7 +17,9 @@ A frozen dataclass that inherits :class:`FrozenValue`
 * compares equal when every field declared with ``compare=True`` (the dataclass default) is
   equal, arrays by content with NaN equal to NaN, mappings and sequences item by item;
 * has its numpy arrays made read-only and its dicts wrapped in read-only mappings on
-  creation, so a result cannot be changed through it (``res.values["mass"] = 0`` raises).
+  creation, so a result cannot be changed through it (``res.values["mass"] = 0`` raises);
+* shows in a notebook as a small table (``_repr_html_``, :func:`summary_html`) of the rows
+  its ``_summary()`` gives (by default its short ``repr``).
 """
 
 from __future__ import annotations
@@ -31,7 +33,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["FrozenValue", "Measurement", "values_equal"]
+__all__ = ["FrozenValue", "Measurement", "summary_html", "values_equal"]
 
 # A result's read-only mappings pickle as what they wrap (pickle refuses mappingproxy), so
 # results cross process boundaries: a search's stages in forked processes, engines' workers.
@@ -116,8 +118,28 @@ def _frozen(v: Any) -> Any:
     return v
 
 
+def summary_html(name: str, rows: Any, note: str = "") -> str:
+    """A result as notebook HTML: its name, a two-column table of ``(label, text)`` rows and
+    an optional closing sentence (every result's ``_repr_html_``)."""
+    import html
+
+    body = "".join(f"<tr><td>{html.escape(str(k))}</td><td>{html.escape(str(v))}</td></tr>"
+                   for k, v in rows)
+    tail = f"<p>{html.escape(note)}</p>" if note else ""
+    return f"<div><b>{html.escape(name)}</b><table>{body}</table>{tail}</div>"
+
+
 class FrozenValue:
-    """Mixin for frozen dataclasses: value equality and read-only contents."""
+    """Mixin for frozen dataclasses: value equality, read-only contents, notebook HTML."""
+
+    def _summary(self) -> list[tuple[str, str]]:
+        """``(label, text)`` rows for the notebook table; by default the short ``repr``."""
+        text = repr(self)
+        inner = text[text.find("(") + 1:-1] if text.endswith(")") else text
+        return [("summary", inner)]
+
+    def _repr_html_(self) -> str:
+        return summary_html(type(self).__name__, self._summary())
 
     def __post_init__(self) -> None:
         for f in dataclasses.fields(self):  # type: ignore[arg-type]

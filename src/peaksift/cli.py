@@ -65,6 +65,22 @@ def _setup_logging(args: argparse.Namespace) -> None:
         h._peaksift_cli = True  # type: ignore[attr-defined]
         log.addHandler(h)
         log.propagate = False
+    # other libraries' logged warnings (matplotlib's, say) as one line of ours, like their
+    # warnings.warn ones, not Python's bare last-resort line
+    root = logging.getLogger()
+    if not root.handlers:
+        other = logging.StreamHandler(sys.stderr)
+        other.setLevel(logging.WARNING)
+        other.setFormatter(_OneLine())
+        root.addHandler(other)
+
+
+class _OneLine:
+    """Formats a log record as ``peaksift: warning: <message> (<logger>)`` on one line."""
+
+    def format(self, record: Any) -> str:
+        text = " ".join(record.getMessage().split())
+        return f"peaksift: {record.levelname.lower()}: {text} ({record.name})"
 
 
 def _one_line_warning(message: Any, category: type, *_: Any, **__: Any) -> str:
@@ -218,7 +234,7 @@ def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
 
 def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
     """The observed limit at the limit mass nearest ``mass``, with and without systematics."""
-    from ._format import fixed, number
+    from ._format import fixed
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
     if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
@@ -229,9 +245,9 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
     except (TypeError, ValueError):
         return []
 
-    def pair(d: Mapping[str, Any]) -> str:
-        return (f"{number((d.get('observed') or [None] * (i + 1))[i], 3)} observed, "
-                f"{number((d.get('expected') or [None] * (i + 1))[i], 3)} expected")
+    def pair(d: Mapping[str, Any]) -> str:  # two decimals, as the report's limit tables
+        return (f"{fixed((d.get('observed') or [None] * (i + 1))[i])} observed, "
+                f"{fixed((d.get('expected') or [None] * (i + 1))[i])} expected")
 
     return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(w)} {w.get('unit')} with "
                  f"systematics ({pair(wo)} without)")]
@@ -456,7 +472,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     import warnings
 
-    from ._processes import Terminated, sigterm_as_interrupt
+    from ._processes import Terminated, sigterm_as_interrupt, terminated
 
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -471,6 +487,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
+    except Exception:
+        if not terminated():  # a bug: its traceback is the report
+            raise
+        # a SIGTERM raised where code turned it into another error (an extension module's
+        # import re-raises as ImportError): still the termination it was
+        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
+              file=sys.stderr)
+        return 143
     except Terminated:
         # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
         print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",

@@ -6,10 +6,11 @@ Built from results.json alone, like every section in :mod:`peaksift.report_secti
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
-from ._format import number
+from ._format import fixed, number, p_value
 from .report_sections import CAPTIONS, Block, figure_block
 
 
@@ -20,8 +21,12 @@ def _candidate_rows(sy: Mapping[str, Any]) -> list[list[str]]:
     rows = []
     for c in ch["candidates"]:
         spc = sp.get(c["label"])
-        spurious = "-" if not spc else (f"{spc['max_ratio']:.2f}"
-                                        + (" (flagged)" if spc["flagged"] else ""))
+        spurious = "-" if not spc else (
+            f"{math.copysign(spc['max_ratio'], spc.get('signal', 1.0)):+.2f} at "
+            f"{spc['mass']:.1f} GeV"
+            + (f"; {spc['ratio_at_best']:+.2f} at the best mass"
+               if spc.get("ratio_at_best") is not None else "")
+            + (" (flagged)" if spc["flagged"] else ""))
         status = ("kept" + (", in envelope" if c["label"] in inenv else "")) if c["chosen"] \
             else ""
         rows.append([c["label"], number(c["nll"], 8), str(c["n_parameters"]),
@@ -31,34 +36,33 @@ def _candidate_rows(sy: Mapping[str, Any]) -> list[list[str]]:
     return rows
 
 
-#: rows of the side-by-side limit table (evenly spread over the limit masses)
-_LIMIT_ROWS = 9
-
-
 def _limit_blocks(lim: Any) -> list[Block]:
-    """The upper limits with and without systematics side by side, at up to
-    ``_LIMIT_ROWS`` masses."""
+    """The upper limits with and without systematics side by side, at every mass (the one
+    that matters is never the one a stride skips), in the Upper limits table's format."""
     if not isinstance(lim, Mapping) or not lim.get("with_systematics"):
         return []
     w, wo = lim["with_systematics"], lim["without_systematics"]
     mass = list(w.get("masses") or [])
     if not mass:
         return []
-    pick = sorted({round(i * (len(mass) - 1) / max(_LIMIT_ROWS - 1, 1))
-                   for i in range(min(_LIMIT_ROWS, len(mass)))})
 
     def at(d: Mapping[str, Any], key: str, i: int) -> str:
         v = d.get(key) or []
-        return number(v[i], 4) if i < len(v) else "-"
+        return fixed(v[i], 2) if i < len(v) else "n/a"
 
-    rows = [[number(mass[i], 5), at(wo, "observed", i), at(w, "observed", i),
-             at(wo, "expected", i), at(w, "expected", i)] for i in pick]
+    methods = list(w.get("methods") or [])
+    toy = [i < len(methods) and methods[i] == "toys" for i in range(len(mass))]
+    rows = [[fixed(mass[i]) + (" (toys)" if toy[i] else ""), at(wo, "observed", i),
+             at(w, "observed", i), at(wo, "expected", i), at(w, "expected", i)]
+            for i in range(len(mass))]
+    how = ("asymptotic" if not any(toy) else
+           f"asymptotic; at {sum(toy)} low-count masses toys with the same profiling")
     unit = w.get("unit") or ""
     cl = 100 * float(w.get("cl") or 0.95)
     out: list[Block] = [
         ("p", (f"Upper limits at {cl:g}% CL ({unit}), CLs: the plain ones (the single "
                "function of the model with the luminosity and efficiency uncertainties, as "
-               "in the Upper limits section) beside those with systematics (asymptotic), which "
+               f"in the Upper limits section) beside those with systematics ({how}), which "
                "profile " + ", ".join(lim.get("profiled") or []) + ".")),
         ("table", ["mass [GeV]", "observed, plain", "observed, with systematics",
                    "expected, plain", "expected, with systematics"], rows)]
@@ -85,7 +89,8 @@ def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> li
                     f"{'sidebands' if ch.get('blind') else 'spectrum'} ({ch['n_bins']} bins). "
                     f"Order test: {ch['test']}; an order is kept when the next one's p-value "
                     f"is at least {ch['size']:g}. Spurious signal: the largest fitted signal on "
-                    "the background template over its statistical error.")))
+                    "the background template over its statistical error (with its sign), the "
+                    "mass where it is largest, and its value at the best mass hypothesis.")))
         out.append(("table", ["function", "NLL", "free parameters", "goodness-of-fit p",
                               "order test p", "spurious signal / stat. error", "status"],
                     _candidate_rows(sy)))
@@ -96,17 +101,19 @@ def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> li
                     f"free parameter; at the best mass the envelope takes "
                     f"{env['chosen_at_best']}, and without signal {env['null_choice']}.")))
     w, wo = sy.get("with_systematics") or {}, sy.get("without_systematics") or {}
-    keys = (("best mass [GeV]", "mass"), ("local Z", "z_local"), ("local p", "p_local"),
-            ("global Z", "z_global"), ("global p", "p_global"))
+    # the formats of the Result table: masses and Z with two decimals, p-values as p_value
+    keys = (("best mass [GeV]", "mass", fixed), ("local Z", "z_local", fixed),
+            ("local p", "p_local", p_value), ("global Z", "z_global", fixed),
+            ("global p", "p_global", p_value))
     out.append(("table", ["quantity", "single function, no systematics", "with systematics"],
-                [[lab, number(wo.get(k)), number(w.get(k))] for lab, k in keys]))
+                [[lab, f(wo.get(k)), f(w.get(k))] for lab, k, f in keys]))
     fm = sy.get("fitted_mass") or {}
     if fm:
-        out.append(("p", (f"Fitted mass {number(fm['value'], 6)} GeV: statistical errors "
-                    f"-{number(fm['stat_error_minus'], 3)} +{number(fm['stat_error_plus'], 3)}"
+        out.append(("p", (f"Fitted mass {fixed(fm['value'])} GeV: statistical errors "
+                    f"+{fixed(fm['stat_error_plus'])} -{fixed(fm['stat_error_minus'])}"
                     f" GeV; with the mass scale ({100 * fm['mass_scale']['size']:.3g}%, "
-                    f"{fm['mass_scale']['kind']}) profiled -{number(fm['error_minus'], 3)} "
-                    f"+{number(fm['error_plus'], 3)} GeV.")))
+                    f"{fm['mass_scale']['kind']}) profiled +{fixed(fm['error_plus'])} "
+                    f"-{fixed(fm['error_minus'])} GeV.")))
     pulls = sy.get("nuisance_pulls") or {}
     if pulls:
         out.append(("table", ["nuisance parameter", "pull at the best mass [sigma]"],

@@ -24,7 +24,7 @@ Sections (all optional except ``input`` and ``spectrum``)::
                     order test, the envelope, the spurious-signal template
     [calibration]   optional fit of a known standard-candle peak in its own window
     [execution]     serial / processes / dask, workers, scheduler address, chunk size
-    [output]        output directory, figure formats, log-scale spectrum, report title
+    [output]        output directory, which figures, formats, log-scale spectrum, title
 
 Validation is strict: an unknown key, a wrong type or an out-of-range value raises
 :class:`~peaksift.errors.ConfigError` naming the key path (``model.background``), the file, and
@@ -33,7 +33,7 @@ the closest valid key or value.
 
 from __future__ import annotations
 
-from .build import load_config
+from .build import load_config, output_figures
 from .reference import reference_markdown
 from .schema import SCHEMA
 from .sections import (
@@ -76,5 +76,6 @@ __all__ = [
     "SpectrumConfig",
     "SystematicsConfig",
     "load_config",
+    "output_figures",
     "reference_markdown",
 ]

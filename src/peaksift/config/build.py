@@ -254,6 +254,20 @@ def _check_identification(ident: dict[str, Any], own: Mapping[str, Any], pr: dic
     return two_legs
 
 
+def output_figures(value: Any, where: str) -> tuple[str, ...]:
+    """``output.figures`` checked (also for a combination's [output]): ``"all"``,
+    ``"none"`` or figure names, as a tuple."""
+    key = next(k for k in SCHEMA["output"] if k.name == "figures")
+    figs = value if isinstance(value, tuple) else _value("output.figures", key, value, where)
+    if len(figs) != 1 and {"all", "none"} & set(figs):
+        raise ConfigError(f"{where}: output.figures takes \"all\", \"none\" or a list of "
+                          "figure names, not a mix (e.g. figures = [\"spectrum\", "
+                          "\"pvalue_scan\"])")
+    if not figs:
+        raise ConfigError(f"{where}: output.figures is empty; write \"none\" for no figures")
+    return figs
+
+
 def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
            resolve_paths: bool = True) -> Config:
     where = _where(source)
@@ -300,6 +314,8 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
             "relative = 0.01 for sigma = 1% of the mass"
         )
     _check_resolution(res, sp, where)
+
+    output_figures(vals["output"]["figures"], where)
 
     pr = vals["pairing"]
     if pr["choose"] == "closest" and pr["target_mass"] is None:

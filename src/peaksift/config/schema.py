@@ -10,7 +10,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
-from .._vocabulary import LIMIT_METHODS, UNREADABLE_FILES
+from .._vocabulary import FIGURES, LIMIT_METHODS, UNREADABLE_FILES
 from ..energy_loss import HYPOTHESES, MATERIALS
 from ..resolution import RELATIVE_MAX, relative_problem
 
@@ -396,6 +396,11 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "Output directory (relative to the config file); `--out` overrides it."),
         _Key("formats", "strings", ["png", "pdf"], "Figure formats.",
              choices=("png", "pdf", "svg")),
+        _Key("figures", "strings", ["all"],
+             "Which figures to draw: `\"all\"`, `\"none\"`, or a list of "
+             + ", ".join(f"`{f}`" for f in FIGURES) + " (a figure is drawn only when the run "
+             "has its results; the report shows the ones drawn). Fewer figures, a faster run.",
+             choices=("all", "none", *FIGURES)),
         _Key("log_scale", "bool", False, "Draw the spectrum with a logarithmic y axis."),
         _Key("title", "str", "", "Report title (default: names the searched pair)."),
     ),

@@ -273,8 +273,15 @@ class RunConfig:
 class OutputConfig:
     dir: str = "peaksift_out"
     formats: tuple[str, ...] = ("png", "pdf")
+    figures: tuple[str, ...] = ("all",)
     log_scale: bool = False
     title: str = ""
+
+    def draws(self, name: str) -> bool:
+        """Whether ``figures`` asks for the figure ``name`` (one of ``_vocabulary.FIGURES``)."""
+        from .._vocabulary import figure_wanted
+
+        return figure_wanted(self.figures, name)
 
 
 @dataclass(frozen=True)

@@ -24,6 +24,7 @@ from ..likelihood import (
     Constraint,
     Minimum,
     Model,
+    NearMinimum,
     TiedCost,
     UnbinnedCost,
     baker_cousins_chi2,
@@ -195,8 +196,13 @@ def fit(
         scale = _read_only(d.hist.scaled_poisson_factors())
         edges, counts = _read_only(d.edges), _read_only(d.n)
 
+        first: list = []
+
         def plain_cost(v: np.ndarray) -> Any:
-            return BinnedCost(model, v, inner_free, cons_idx, edges, counts, scale)
+            if first:  # the other starts: the first start's cost at their fixed values
+                return first[0].at_values(v)
+            first.append(BinnedCost(model, v, inner_free, cons_idx, edges, counts, scale))
+            return first[0]
     else:
         def plain_cost(v: np.ndarray) -> Any:
             return UnbinnedCost(model, v, inner_free, cons_idx, d.x, d.w)
@@ -294,13 +300,8 @@ JOIN_DISTANCE = 0.02
 JOIN_NLL = 0.05
 
 
-def _joins(xb: np.ndarray, fb: float, hess: np.ndarray):
-    def stop(x: np.ndarray, f: float) -> bool:
-        if not f <= fb + JOIN_NLL:
-            return False
-        d = x - xb
-        return float(d @ hess @ d) < JOIN_DISTANCE
-    return stop
+def _joins(xb: np.ndarray, fb: float, hess: np.ndarray) -> NearMinimum:
+    return NearMinimum(xb, fb, hess, JOIN_NLL, JOIN_DISTANCE)
 
 
 def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):

@@ -37,6 +37,7 @@ from .derived import Tie, TiedCost
 from .joint import JointCost
 from .minimize import (
     Minimum,
+    NearMinimum,
     StackedMinimum,
     covariance,
     damped_step,
@@ -67,6 +68,7 @@ __all__ = [
     "JointCost",
     "Minimum",
     "Model",
+    "NearMinimum",
     "SignalNuisances",
     "StackedMinimum",
     "Tie",

@@ -14,6 +14,7 @@ to all of them here, once.
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Sequence
 from typing import Any
 
@@ -138,6 +139,7 @@ class BinnedCost(_Cost):
                                self._row.get(iy, -1)))
 
         self._state: tuple | None = None
+        self._problem: tuple | None = None  # the compiled minimiser's arrays, made on demand
         self._fused = _fused_path(self)
         # the numpy path's Jacobian, allocated when that path first runs
         self._jac = np.zeros((self.free.size, self.n.size)) if self._fused is None else None
@@ -209,6 +211,39 @@ class BinnedCost(_Cost):
         val = self._add_constraints(x, val, g, fisher)
         return val, g, fisher
 
+    def at_values(self, full: np.ndarray) -> BinnedCost:
+        """The same cost (data, free parameters, constraints, every derived array shared)
+        with the fixed parameters at ``full``, fresh call count and buffers: the starts of
+        one fit differ only there."""
+        c = copy.copy(self)
+        c.full = np.asarray(full, float).copy()
+        c._last, c._state, c._problem, c.ncall = None, None, None, 0
+        c._fused = None if self._fused is None else self._fused.fresh()
+        c._jac = None if self._jac is None else np.zeros_like(self._jac)
+        return c
+
+    @property
+    def constant(self) -> float:
+        """The NLL's constant (saturated form) added to the compiled pass's value."""
+        return self._const
+
+    def compiled_problem(self) -> tuple | None:
+        """The arrays of :mod:`.driver`'s compiled minimiser for this cost, or None (a
+        component without a compiled kernel, or constraint terms: the Python loop then)."""
+        if self._fused is None or self._cons:
+            return None
+        if self._problem is None:
+            from .driver import problem_of
+
+            self._problem = problem_of(self._fused) or ()
+        return self._problem or None
+
+    def note_compiled_calls(self, calls: int, x_last: np.ndarray) -> None:
+        """Book ``calls`` evaluations made by the compiled minimiser, the last at
+        ``x_last`` (its expectation is in the compiled buffers)."""
+        self.ncall += int(calls)
+        self._state = (np.asarray(x_last, float).tobytes(), self._fused.mu.copy(), None)
+
     def expected_at(self, x: np.ndarray) -> np.ndarray | None:
         """The expectation of the last evaluation if it was at ``x`` (else None)."""
         st = self._state
@@ -237,6 +272,12 @@ class BinnedCost(_Cost):
         would leave no probability in it and make the bin fractions 0/0."""
         x = np.asarray(x, float)
         lower, upper = self._free_bounds(lower, upper)
+        if self.compiled_problem() is not None:
+            from .driver import compiled_hessian
+
+            hess = compiled_hessian(self, x, steps, lower, upper)
+            if hess is not None:
+                return hess
         jac = np.zeros((self.free.size, self.n.size))
         mu, blocks = self.expectation(x, jac)
         mu = np.maximum(mu, MU_FLOOR)

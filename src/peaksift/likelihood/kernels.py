@@ -24,6 +24,7 @@ checks both against scipy's CDFs written in the test.
 
 from __future__ import annotations
 
+import copy
 import math
 from typing import Any
 
@@ -154,29 +155,18 @@ def _new_edge_kernel(shape: Any, edges: np.ndarray,
     return None
 
 
-class FusedBinned:
-    """``value_grad_info`` of a binned cost whose components all have an edge kernel.
+class _Layout:
+    """The fixed index arrays of a :class:`FusedBinned` (which rows hold which component's
+    CDF and derivatives, which bins are used): the same for every cost of one fit's starts,
+    so they are made once (see :func:`_layout`)."""
 
-    Built by :class:`~peaksift.likelihood.cost.BinnedCost` (which keeps the numpy path as
-    reference and fallback); :meth:`evaluate` returns None when a kernel declines (the
-    caller then uses the numpy path)."""
-
-    def __init__(self, kernels: list[_Kernel], plan: list, nfree: int, edges: np.ndarray,
-                 mask: np.ndarray | None, n: np.ndarray, s: np.ndarray, unit: bool,
-                 floor: float) -> None:
-        self.kernels = kernels
-        self.plan = plan  # (shape, slice, yield index, need, free rows, yield free row)
+    def __init__(self, kernels: list[_Kernel], plan: list, edges: np.ndarray,
+                 mask: np.ndarray | None) -> None:
         self.start = [0]
         for k in kernels:
             self.start.append(self.start[-1] + k.rows)
-        self.cdf = np.zeros((self.start[-1], edges.size))
         self.bins = (np.arange(edges.size - 1) if mask is None else
                      np.flatnonzero(mask)).astype(np.int64)
-        self.n, self.s, self.unit, self.floor = n, s, bool(unit), float(floor)
-        self.g = np.zeros(nfree)
-        self.fisher = np.zeros((nfree, nfree))
-        self.mu = np.zeros(self.bins.size)
-        self.jac = np.zeros((nfree, self.bins.size))
         drow, dcomp, dfree = [], [], []
         for k, (_, _, _, _, rows, _) in enumerate(plan):
             for j, r in enumerate(rows):
@@ -189,11 +179,68 @@ class FusedBinned:
         self.dfree = np.array(dfree, np.int64)
         self.value_row = np.array(self.start[:-1], np.int64)
         self.yield_free = np.array([p[5] for p in plan], np.int64)
-        self.yields = np.empty(len(plan))
+        self.driver: tuple | None = None  # the static arrays of .driver, made on demand
+
+
+#: recent layouts by the identity of their inputs (the entries hold the inputs, so the ids
+#: stay valid); a cost's own arrays (mask, counts) are read-only, so a hit is exact
+_LAYOUTS: dict = {}
+
+
+def _layout(kernels: list[_Kernel], plan: list, edges: np.ndarray,
+            mask: np.ndarray | None) -> _Layout:
+    sig = tuple((id(p[0]), p[1].start, p[1].stop, p[2], tuple(p[4]), p[5]) for p in plan)
+    key = (tuple(map(id, kernels)), sig, id(edges), id(mask))
+    hit = _LAYOUTS.get(key)
+    if (hit is not None and hit[1] is edges and hit[2] is mask
+            and all(a is b for a, b in zip(hit[0], kernels))
+            and all(a is p[0] for a, p in zip(hit[4], plan))):
+        return hit[3]
+    out = _Layout(kernels, plan, edges, mask)
+    if isinstance(edges, np.ndarray) and not edges.flags.writeable and (
+            mask is None or not mask.flags.writeable):
+        if len(_LAYOUTS) >= 8:
+            _LAYOUTS.pop(next(iter(_LAYOUTS)))
+        _LAYOUTS[key] = (list(kernels), edges, mask, out, [p[0] for p in plan])
+    return out
+
+
+class FusedBinned:
+    """``value_grad_info`` of a binned cost whose components all have an edge kernel.
+
+    Built by :class:`~peaksift.likelihood.cost.BinnedCost` (which keeps the numpy path as
+    reference and fallback); :meth:`evaluate` returns None when a kernel declines (the
+    caller then uses the numpy path)."""
+
+    def __init__(self, kernels: list[_Kernel], plan: list, nfree: int, edges: np.ndarray,
+                 mask: np.ndarray | None, n: np.ndarray, s: np.ndarray, unit: bool,
+                 floor: float) -> None:
+        self.kernels = kernels
+        self.plan = plan  # (shape, slice, yield index, need, free rows, yield free row)
+        lay = self.layout = _layout(kernels, plan, edges, mask)
+        self.start, self.bins = lay.start, lay.bins
+        self.drow, self.dcomp, self.dfree = lay.drow, lay.dcomp, lay.dfree
+        self.value_row, self.yield_free = lay.value_row, lay.yield_free
+        self.n, self.s, self.unit, self.floor = n, s, bool(unit), float(floor)
+        self._buffers(nfree, edges.size)
+
+    def _buffers(self, nfree: int, nedges: int) -> None:
+        self.cdf = np.zeros((self.start[-1], nedges))
+        self.g = np.zeros(nfree)
+        self.fisher = np.zeros((nfree, nfree))
+        self.mu = np.zeros(self.bins.size)
+        self.jac = np.zeros((nfree, self.bins.size))
+        self.yields = np.empty(len(self.plan))
         # per component: kernel, its arguments around the parameters, its rows of cdf
         self.calls = [(kern.func, kern.data[:1], kern.data[1:],
                        self.cdf[self.start[k]:self.start[k + 1]], p[1], p[2], p[5])
-                      for k, (kern, p) in enumerate(zip(kernels, plan))]
+                      for k, (kern, p) in enumerate(zip(self.kernels, self.plan))]
+
+    def fresh(self) -> FusedBinned:
+        """The same evaluator with buffers of its own (for another cost on the same data)."""
+        out = copy.copy(self)
+        out._buffers(self.g.size, self.cdf.shape[1])
+        return out
 
     def fractions(self, shape: Any, p: list[float]):
         """``(fractions, derivatives)`` of component ``shape`` in the used bins at its

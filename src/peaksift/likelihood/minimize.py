@@ -29,7 +29,7 @@ import numpy as np
 
 from .poisson import use_compiled
 
-__all__ = ["Minimum", "StackedMinimum", "covariance", "damped_step", "first_error",
+__all__ = ["Minimum", "NearMinimum", "StackedMinimum", "covariance", "damped_step", "first_error",
            "fisher_scoring", "minimize", "minimize_stacked", "new_minuit", "refine",
            "solve_stacked"]
 
@@ -94,6 +94,26 @@ def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
     return step if np.all(np.isfinite(step)) else None
 
 
+@dataclass(frozen=True)
+class NearMinimum:
+    """A ``stop`` test for :func:`minimize`: the path has joined a known minimum when its
+    NLL is at most ``nll_margin`` above ``nll`` and its squared distance from ``x`` in the
+    metric ``hessian``, ``d^T H d``, is below ``distance``.  As data (not a closure) it also
+    stops the compiled loop of :mod:`.driver`."""
+
+    x: np.ndarray
+    nll: float
+    hessian: np.ndarray
+    nll_margin: float
+    distance: float
+
+    def __call__(self, x: np.ndarray, f: float) -> bool:
+        if not f <= self.nll + self.nll_margin:
+            return False
+        d = x - self.x
+        return float(d @ self.hessian @ d) < self.distance
+
+
 class Joined(Exception):
     """Raised inside :func:`fisher_scoring` when its ``stop`` callback fires."""
 
@@ -154,6 +174,11 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     True the minimisation ends there and the :class:`Minimum` has ``joined=True`` (used by
     the free fit to abandon a start whose path has run into a minimum it already has)."""
     start = np.clip(np.asarray(start, float), lower, upper)
+    if stop is None or isinstance(stop, NearMinimum):
+        fast = _compiled(cost, start, lower, upper, edm_goal, stop)
+        if fast is not None:
+            return fast if isinstance(fast, Minimum) else _migrad(cost, start, lower, upper,
+                                                                  names)
     with np.errstate(all="ignore"):
         try:
             x, f, ok, inv = fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal,
@@ -167,6 +192,36 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     if ok:
         errs = np.sqrt(np.clip(np.diag(inv), 0, None))
         return Minimum(x, f, True, False, errs, "fisher-scoring")
+    return _migrad(cost, start, lower, upper, names)
+
+
+def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+              edm_goal: float, stop: NearMinimum | None) -> Minimum | bool | None:
+    """:func:`fisher_scoring` in one compiled call (:mod:`.driver`) where the cost allows:
+    its Minimum, False when MIGRAD must take over, None when the Python loop must run."""
+    problem = getattr(cost, "compiled_problem", None)
+    if problem is None or not use_compiled() or problem() is None:
+        return None
+    from .driver import CONVERGED, JOINED, compiled_fisher_scoring
+
+    out = compiled_fisher_scoring(cost, start, lower, upper, 60, edm_goal, stop)
+    if out is None:
+        return None
+    status, x, f, info = out
+    if status == JOINED:
+        return Minimum(x, f, False, False, np.full(x.size, np.nan), "fisher-scoring",
+                       joined=True)
+    if status != CONVERGED:
+        return False
+    inv, posdef = covariance(info)
+    if not posdef:
+        return False
+    return Minimum(x, f, True, False, np.sqrt(np.clip(np.diag(inv), 0, None)),
+                   "fisher-scoring")
+
+
+def _migrad(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+            names: list[str]) -> Minimum:
     m = new_minuit(cost, start, lower, upper, names)
     with warnings.catch_warnings(), np.errstate(all="ignore"):
         warnings.simplefilter("ignore")
@@ -181,6 +236,12 @@ def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
     """``(H^-1, positive definite)`` with the test on ``D^-1/2 H D^-1/2`` (unit diagonal):
     its eigenvalues are scale free, so a fit of 10^8 events is judged like one of 10^3."""
     n = hess.shape[0]
+    if 0 < n <= _SMALL and use_compiled():
+        from .driver import compiled_covariance
+
+        out = compiled_covariance(hess, POSDEF_TOL)
+        if out is not None:
+            return out
     bad = (np.full((n, n), np.nan), False)
     if not np.all(np.isfinite(hess)):
         return bad

@@ -39,7 +39,7 @@ Steps and where their numbers come from
 
 from __future__ import annotations
 
-from .demo import DEMO_CONFIG, demo_config_text, write_demo_config
+from .demo import DEMO_CONFIG, demo_config_text, write_demo_config, write_demo_template
 from .fit import FIT_FILES, run_fit
 from .result import SearchResult, SpectrumResult
 from .run import run_search
@@ -48,4 +48,5 @@ from .spectrum import run_spectrum
 
 __all__ = ["DEMO_CONFIG", "FIT_FILES", "SearchResult", "SidebandFit", "SpectrumResult",
            "demo_config_text",
-           "run_fit", "run_search", "run_spectrum", "write_demo_config"]
+           "run_fit", "run_search", "run_spectrum", "write_demo_config",
+           "write_demo_template"]

@@ -14,7 +14,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from .._format import number, p_value
+from .._format import fixed, format_pm, number, p_value
 from ..report import CAUTION, blocks_html, blocks_markdown
 
 __all__ = ["combination_blocks", "combination_summary_text", "render_combination_html",
@@ -25,6 +25,16 @@ def _f(x: Any, digits: int = 3) -> str:
     return "n/a" if x is None else number(x, digits)
 
 
+# the single-channel report's formats: masses, significances and limits with two decimals,
+# a value with its error rounded to the error's two digits
+def _m(x: Any) -> str:
+    return fixed(x, 2)
+
+
+def _lumi_unit(unit: Any) -> str:
+    return str(unit or "").replace("^-1", "\u207b\u00b9")
+
+
 def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
     """One row of the channels table from a channel's results.json dict."""
     best = r.get("best") or {}
@@ -33,10 +43,11 @@ def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
     lim = r.get("limits") or {}
     exp = [v for v in (lim.get("expected") or []) if v is not None]
     eff = (r.get("signal_model") or {}).get("points", {}).get("efficiency", {}).get("value")
-    return [name, _f(best.get("mass"), 4), _f(best.get("z_local"), 3),
-            p_value(best.get("p_local")), _f(best.get("z_global"), 3),
-            f"{_f(peak.get('value'), 4)} ± {_f(peak.get('error'), 2)}",
-            f"{_f(min(exp), 3)}-{_f(max(exp), 3)} {lim.get('unit', '')}" if exp else "n/a",
+    return [name, _m(best.get("mass")), _m(best.get("z_local")),
+            p_value(best.get("p_local")), _m(best.get("z_global")),
+            format_pm(peak.get("value"), peak.get("error"))
+            + ("" if fit.get("valid", True) else " (fit NOT valid)"),
+            f"{_m(min(exp))}-{_m(max(exp))} {lim.get('unit', '')}" if exp else "n/a",
             "from samples" if eff else "given"]
 
 
@@ -48,21 +59,25 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
     fit = r.get("fit") or {}
     scan = r.get("scan") or {}
     window = scan.get("window") or []
-    rows = [["search window", f"{_f(window[0], 4)}-{_f(window[1], 4)} GeV" if window
+    rows = [["search window", f"{_m(window[0])}-{_m(window[1])} GeV" if window
              else "n/a"],
             ["signal / background model", (f"{scan.get('signal_shape', 'n/a')} / "
              f"{scan.get('background_shape', 'n/a')}")],
-            ["best mass hypothesis", f"{_f(best.get('mass'), 5)} GeV"],
-            ["local significance", (f"{_f(best.get('z_local'))} sigma "
+            ["best mass hypothesis", f"{_m(best.get('mass'))} GeV"],
+            ["local significance", (f"{_m(best.get('z_local'))} σ "
              f"(p = {p_value(best.get('p_local'))})")],
-            ["global significance", f"{_f(best.get('z_global'))} sigma"]]
+            ["global significance", (f"{_m(best.get('z_global'))} σ "
+             f"(p = {p_value(best.get('p_global'))})")]]
     for key, label in (("peak_mass", "fitted peak mass [GeV]"),
                        ("signal_yield", "fitted signal events")):
         v = fit.get(key) or {}
         if v:
-            rows.append([label, f"{_f(v.get('value'), 5)} ± {_f(v.get('error'), 2)}"])
+            rows.append([label, format_pm(v.get("value"), v.get("error"))])
+    if fit and not fit.get("valid", True):
+        rows.append(["fit status", "NOT valid: " + "; ".join(str(p) for p in
+                                                       fit.get("problems") or [])])
     rows.append(["luminosity", (f"{_f(lim_cfg.get('luminosity'))} "
-                 f"{lim_cfg.get('luminosity_unit', '')} ± "
+                 f"{_lumi_unit(lim_cfg.get('luminosity_unit'))} ± "
                  f"{_f(100 * (lim_cfg.get('luminosity_uncertainty') or 0.0), 2)}%")])
     sm = r.get("signal_model")
     eff = "from the signal samples (interpolated)" if sm else _f(lim_cfg.get("efficiency"))
@@ -77,30 +92,30 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                        ) -> list[Any]:
     """The combination's report as blocks (``d`` is its results.json)."""
     fig = dict(figures or {})
-    c = d["combined"]
-    g = c.get("global") or {}
+    c = d["combination"]
+    g = d.get("best") or {}
     best = c.get("best") or {}
-    out: list[Any] = [("h1", f"Combined search: {', '.join(d['channel_names'])}"),
+    out: list[Any] = [("h1", f"Combined search: {', '.join(d['channels'])}"),
                       ("caution", CAUTION), ("h2", "Combination"),
                       ("p", ("One cross-section x branching fraction shared by every channel; the "
                        "likelihood is the product of the channels' (each with its own "
                        "background, signal model, efficiency and luminosity), with the "
                        "luminosity and efficiency uncertainties as constrained nuisances."))]
-    rows = [["best mass hypothesis", f"{_f(best.get('mass'), 5)} GeV"],
-            ["local significance", (f"{_f(best.get('z_local'))} sigma "
+    rows = [["best mass hypothesis", f"{_m(best.get('mass'))} GeV"],
+            ["local significance", (f"{_m(best.get('z_local'))} σ "
              f"(p = {p_value(best.get('p_local'))})")],
-            ["global significance", (f"{_f(g.get('z_global'))} sigma "
+            ["global significance", (f"{_m(g.get('z_global'))} σ "
              f"(p = {p_value(g.get('p_global'))}, {g.get('global_method', 'n/a')}; toys "
              "generate every channel)")],
             ["fitted sigma x B at the best mass", (f"{_f(best.get('cross_section'))} "
              f"{c.get('unit', '')}")]]
-    for name, v in (c.get("nuisances") or {}).items():
+    for name, v in (d.get("nuisances_at_best") or {}).items():
         if "shift_at_best" in v:
             rows.append([f"shape factor {name} (k - 1 at the best mass)",
-                         _f(v.get("shift_at_best"))])
+                         fixed(v.get("shift_at_best"), 3, signed=True)])
         else:
             rows.append([f"nuisance {name} (pull at the best mass)",
-                         _f(v.get("pull_at_best"))])
+                         fixed(v.get("pull_at_best"), 2, signed=True)])
     out.append(("table", ["quantity", "value"], rows))
     if "pvalue_combined" in fig:
         out.append(("figure", "pvalue_combined", ("Local p-value of each channel and of their "
@@ -118,20 +133,20 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                           ("pvalue_scan", "local p-value scan")):
             if f"{n}/{key}" in fig:
                 out.append(("figure", f"{n}/{key}", f"Channel {n}: {what}."))
-    lim = c.get("limits")
-    if lim:
+    lim = d.get("limits")
+    if lim:  # every mass: the point that matters is never the one a stride skips
         masses = lim["masses"]
-        step = max(1, len(masses) // 12)
         methods = lim.get("methods") or ["asymptotic"] * len(masses)
-        rows = [[_f(masses[i], 4), _f(lim["observed"][i]), _f(lim["expected"][i]),
-                 f"{_f(lim['expected_minus1'][i])}-{_f(lim['expected_plus1'][i])}",
-                 methods[i]] for i in range(0, len(masses), step)]
+        rows = [[_m(masses[i]), _m(lim["observed"][i]), _m(lim["expected"][i]),
+                 f"{_m(lim['expected_minus1'][i])} to {_m(lim['expected_plus1'][i])}",
+                 f"{_m(lim['expected_minus2'][i])} to {_m(lim['expected_plus2'][i])}",
+                 methods[i]] for i in range(len(masses))]
         out += [("h2", f"Combined upper limits ({100 * lim['cl']:.0f}% CLs, {lim['unit']})"),
                 ("table", ["mass [GeV]", "observed", "expected", "expected ±1 sigma",
-                           "method"], rows)]
+                           "expected ±2 sigma", "method"], rows)]
         if lim.get("notes"):
             out.append(("list", list(lim["notes"])))
-    notes = list(c.get("notes") or [])
+    notes = list(d.get("notes") or [])
     for n, r in d["channels"].items():
         notes += [f"{n}: signal model: {x}" for x in (r.get("signal_model") or {}).get("notes")
                   or []]
@@ -151,24 +166,23 @@ def render_combination_html(d: Mapping[str, Any], figures: Mapping[str, Any] | N
                             ) -> str:
     """report.html of a combination, self-contained (``figures``: name -> PNG file)."""
     fig = dict(figures or {})
-    return blocks_html(f"Combined search: {', '.join(d['channel_names'])}",
+    return blocks_html(f"Combined search: {', '.join(d['channels'])}",
                        combination_blocks(d, fig), fig)
 
 
 def combination_summary_text(d: Mapping[str, Any]) -> str:
     """The command line's summary of a combination."""
-    c = d["combined"]
-    best = c.get("best") or {}
-    g = c.get("global") or {}
-    lines = ["peaksift search: combination of " + ", ".join(d["channel_names"]),
-             f"  best mass hypothesis       {_f(best.get('mass'), 5)} GeV",
-             f"  local significance         {_f(best.get('z_local'))} sigma",
-             (f"  global significance        {_f(g.get('z_global'))} sigma "
+    best = d["combination"].get("best") or {}
+    g = d.get("best") or {}
+    lines = ["peaksift search: combination of " + ", ".join(d["channels"]),
+             f"  best mass hypothesis       {_m(best.get('mass'))} GeV",
+             f"  local significance         {_m(best.get('z_local'))} sigma",
+             (f"  global significance        {_m(g.get('z_global'))} sigma "
              f"({g.get('global_method', 'n/a')})")]
     for n, r in d["channels"].items():
         b = r.get("best") or {}
-        lines.append(f"  {n:<26} best {_f(b.get('mass'), 5)} GeV, "
-                     f"Z_local {_f(b.get('z_local'))}")
+        lines.append(f"  {n:<26} best {_m(b.get('mass'))} GeV, "
+                     f"Z_local {_m(b.get('z_local'))}")
     doubtful = [n for n, r in d["channels"].items()
                 if (r.get("signal_model") or {}).get("doubtful")]
     if doubtful:

@@ -1,4 +1,5 @@
-"""The demo search's configuration text, written next to the generated demo data."""
+"""The demo search's configuration text, written next to the generated demo data, and the
+background template its spurious-signal test reads."""
 
 from __future__ import annotations
 
@@ -56,6 +57,10 @@ efficiency_uncertainty = 0.05
 mass_scale = 0.002
 mass_resolution = 0.1
 background_families = ["powersum", "exppoly1", "bernstein"]
+# The generator's expected background in the window (written beside the data): the
+# spurious-signal test fits every candidate to it and flags a signal above 20% of the
+# statistical error (common practice).
+template = "background_template.json"
 
 [calibration]
 particle = "Z0"                # fitted in its own window; compared with the particle tables
@@ -108,4 +113,36 @@ def write_demo_config(outdir: str | os.PathLike[str]) -> Path | None:
     with staged_output(out, "demo-config", share=True, names=("search.toml",)) as stage:
         assert stage is not None
         atomic_write(stage.path / "search.toml", text)
+    write_demo_template(out / "search.toml")
     return out / "search.toml"
+
+
+def write_demo_template(config: str | os.PathLike[str]) -> Path | None:
+    """Write the background template a demo config names (``systematics.template``): the
+    generator's expected background (:func:`peaksift.simulate.expected.expected_background`)
+    in the config's bins, for the number of events and the seed of the ``truth.json``
+    beside the config.  Returns its path, or None when the config names no template or no
+    truth file is there.  Written under the output-folder contract, like the config."""
+    import json
+
+    import numpy as np
+
+    from .._output import staged_output
+    from ..config import load_config
+    from ..simulate.expected import expected_background
+
+    path = Path(config)
+    truth_file = path.parent / "truth.json"
+    cfg = load_config(path)
+    if not cfg.systematics.template or not truth_file.exists():
+        return None
+    truth = json.loads(truth_file.read_text())
+    lo, hi = cfg.spectrum.window
+    hist = expected_background(np.linspace(lo, hi, cfg.spectrum.bins + 1),
+                               n_events=int(truth["n_events"]), seed=int(truth["seed"]))
+    target = Path(cfg.systematics.template)
+    with staged_output(target.parent, "demo-template", share=True,
+                       names=(target.name,)) as stage:
+        assert stage is not None
+        hist.save(stage.path / target.name)
+    return target

@@ -125,9 +125,11 @@ def run_search(
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None) -> SearchResult:
     # the figures are drawn beside the statistics, by a process started before the events
-    # are read (it loads matplotlib meanwhile); without an output folder none are drawn
+    # are read (it loads matplotlib meanwhile); without an output folder, or with
+    # output.figures = "none", none are drawn (and no process is started)
     drawer = (FigureWorker(stage.path / "figures", formats=cfg.output.formats,
-                           log_scale=cfg.output.log_scale) if stage is not None else None)
+                           log_scale=cfg.output.log_scale)
+              if stage is not None and cfg.output.figures != ("none",) else None)
     besides: list[Beside] = []
     try:
         # only our kernels run in a search: numba's third-party extensions (awkward's,
@@ -174,8 +176,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             "calibration": None, "provenance": {}, "blinding": blind}
         return SearchResult(**{**base, **kw})
 
-    if drawer is not None:
-        drawer.draw(["candidates"], partial())
+    _draw(drawer, cfg, ["candidates"], partial())
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -228,7 +229,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             if limits_job is not None and smodel is None:
                 syst_limits_job = Beside(systematic_limits_at, cfg, hist, scan_sig, envelope,
                                          _limit_masses(cfg, masses), natural_width=width,
-                                         blind=blind_window)
+                                         blind=blind_window,
+                                         executor=_toy_executor(cfg, "toy limits"))
                 besides.append(syst_limits_job)
 
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
@@ -236,8 +238,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                                 best_plain=best, progress=progress,
                                                 executor=_toy_executor(cfg), scanned=scanned)
         clock.lap("systematics")
-        if drawer is not None:
-            drawer.draw(["background_envelope"], partial(systematics=syst))
+        _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
@@ -258,10 +259,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
         syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
     clock.lap("fits")
-    if drawer is not None:
-        drawer.draw(["spectrum", "pvalue_scan"],
-                    partial(background_fit=bonly, fit=fres, scan=sres, best=best,
-                            systematics=syst))
+    _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
+          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst))
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -271,9 +270,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                               charge=pair_charge(cfg.pairing.charge)))
     cal, cal_hist, cal_fit = _calibration(cfg, col)
     clock.lap("calibration")
-    if drawer is not None and cal is not None:
-        drawer.draw(["calibration"], partial(calibration=cal),
-                    calibration=(cal_hist, cal_fit))
+    if cal is not None:
+        _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
+              calibration=(cal_hist, cal_fit))
 
     limits = None
     if cfg.limits.enabled:
@@ -281,17 +280,17 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                   _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
                           smodel))
         clock.lap("limits" if limits_job is None else "limits (rest of)")
-        if syst is not None and smodel is None:
+        if syst is not None:
             from .systematics import limits_with_systematics
 
             syst = {**syst, "limits": limits_with_systematics(
                 cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
-                blind=blind_window,
+                blind=blind_window, signal_model=smodel,
+                executor=_toy_executor(cfg, "toy limits"),
                 computed=syst_limits_job.result() if syst_limits_job is not None else None)}
             clock.lap("limits with systematics" if syst_limits_job is None
                       else "limits with systematics (rest of)")
-        if drawer is not None:
-            drawer.draw(["limits"], partial(limits=limits, systematics=syst))
+        _draw(drawer, cfg, ["limits"], partial(limits=limits, systematics=syst))
 
     # hashed where the footers were read (on the workers of a cluster); None when
     # input.hash_inputs is off
@@ -318,7 +317,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         signal_model=smodel,
         identification=ident.to_dict() if ident is not None else None,
     )
-    if stage is None or drawer is None:
+    if stage is None:
         prov["finished"] = _utc()
         return result
 
@@ -328,18 +327,19 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     figdir = stage.path / "figures"
     more = {}
-    if smodel is not None:
+    if smodel is not None and cfg.output.draws("signal_model"):
         more.update(zip(("signal_model_parameters", "signal_model_shapes"),
                         smodel.plot(figdir)))
-    if ident is not None:
+    if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
                                             band=cfg.identification.band)
     clock.lap("figures (here)")
-    drawn = {**drawer.finish(), **more}
+    drawn = {**(drawer.finish() if drawer is not None else {}), **more}
     # CPU seconds of each process of the run: the main line is the critical path, the
     # others may overlap it (their sum over the cores bounds the wall time from below)
-    prov["cpu"] = {"main": round(cpu_seconds(), 2), "figures": round(drawer.cpu, 2),
+    prov["cpu"] = {"main": round(cpu_seconds(), 2),
+                   "figures": round(drawer.cpu if drawer is not None else 0.0, 2),
                    **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {}),
                    **({"limits with systematics": round(syst_limits_job.cpu, 2)}
                       if syst_limits_job is not None else {})}
@@ -356,6 +356,14 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     write_report(d, stage.path, figs)
     clock.lap("report")
     return result
+
+
+def _draw(drawer: FigureWorker | None, cfg: Config, names: list[str], result: Any,
+          **extra: Any) -> None:
+    """Send the figures among ``names`` that ``output.figures`` asks for to the drawer."""
+    names = [n for n in names if cfg.output.draws(n)]
+    if drawer is not None and names:
+        drawer.draw(names, result, **extra)
 
 
 def _opt(**kw: Any) -> dict[str, Any]:

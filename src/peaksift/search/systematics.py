@@ -86,6 +86,7 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                              "background_choice": None, "spurious_signal": None,
                              "envelope": None, "notes": []}
     choice = None
+    sp: dict[str, dict[str, Any]] = {}
     ratios: dict[str, float] | None = None
     if S.spurious_uncertainty and not (S.template and S.background_families):
         raise ConfigError("systematics.spurious_uncertainty needs systematics.template and "
@@ -171,6 +172,10 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         block["nuisance_pulls"] = _pulls(nuis, sres.nuisance_factors, sres.best_index)
         obj = sres
     best = dict(best)
+    if sp and best.get("mass") is not None:  # each spurious signal at the best hypothesis
+        k = int(np.argmin(np.abs(np.asarray(masses, float) - float(best["mass"]))))
+        for label, v in sp.items():
+            block["spurious_signal"][label]["ratio_at_best"] = float(v["ratio"][k])
     block["with_systematics"] = best
     block["without_systematics"] = dict(best_plain)
     return block, best, obj
@@ -204,34 +209,40 @@ def _compact(lim: dict[str, Any]) -> dict[str, Any]:
 
 def limits_with_systematics(cfg: Config, hist: Any, signal: Any, scanned: Any,
                             plain_limits: Any, *, natural_width: float | None,
-                            blind: Any, computed: dict[str, Any] | None = None
-                            ) -> dict[str, Any]:
+                            blind: Any, signal_model: Any = None, executor: Any = None,
+                            computed: dict[str, Any] | None = None) -> dict[str, Any]:
     """The results.json ``systematics.limits`` block: the limits at the masses of the
     plain ones (``plain_limits``, a LimitResult) with the mass-scale and resolution factors
     and the same background functions as the significance (``scanned``: the envelope or
     the single-function scan of :func:`run_systematics`) profiled, beside the plain ones.
-    ``computed``: :func:`systematic_limits_at` at those masses, when it ran already (the
-    search runs it beside the envelope's toys)."""
+    Toys where the plain limits' method asks for them (low counts; ``limits.method``), with
+    the same profiling; with ``[signal_model]`` the model's shape, resolution and
+    efficiency (and its interpolation uncertainty).  ``computed``:
+    :func:`systematic_limits_at` at those masses, when it ran already (the search runs it
+    beside the envelope's toys)."""
     S = cfg.systematics
     with_s = dict(computed if computed is not None else systematic_limits_at(
         cfg, hist, signal, scanned, np.asarray(plain_limits.masses),
-        natural_width=natural_width, blind=blind))
+        natural_width=natural_width, blind=blind, signal_model=signal_model,
+        executor=executor))
     plain = plain_limits.to_dict()
     notes = list(with_s.pop("notes", []))
     if S.spurious_uncertainty:
         notes.append("the limits leave out the template signal added to the significance")
-    if plain.get("method") != "asymptotic" and any(m == "toys" for m in plain["methods"]):
-        notes.append("the limits with systematics are asymptotic everywhere; the plain ones "
-                     "use toys at some masses")
+    n_toys = sum(m == "toys" for m in with_s["methods"])
+    if n_toys:
+        notes.append(f"{n_toys} of {len(with_s['methods'])} masses with toys that profile "
+                     "the same nuisances and background functions")
     return {"with_systematics": with_s, "without_systematics": _compact(plain),
             "profiled": with_s["profiled"], "notes": notes}
 
 
 def systematic_limits_at(cfg: Config, hist: Any, signal: Any, scanned: Any,
                          masses: np.ndarray, *, natural_width: float | None,
-                         blind: Any) -> dict[str, Any]:
+                         blind: Any, signal_model: Any = None,
+                         executor: Any = None) -> dict[str, Any]:
     """The limits with systematics at ``masses`` (:func:`peaksift.stats.limits_systematics.
-    systematic_limits` with the configured luminosity, efficiency and sizes, and the
+    systematic_limits` with the configured luminosity, efficiency, sizes and method, and the
     background functions of ``scanned``), before the plain limits are known."""
     from ..stats.envelope import EnvelopeResult
     from ..stats.limits_systematics import systematic_limits
@@ -244,12 +255,17 @@ def systematic_limits_at(cfg: Config, hist: Any, signal: Any, scanned: Any,
         shapes = {scanned.background_shape: scanned.model.background}
         counts = None
     lum = L.luminosity
+    sm = signal_model
+    sig_kw: dict[str, Any] = (
+        {"signal_model": sm} if sm is not None else
+        {"resolution": cfg.model.resolution.resolution, "natural_width": natural_width,
+         "efficiency": L.efficiency if lum is not None else 1.0})
     return systematic_limits(
-        hist, signal, shapes, np.asarray(masses), nuisances=_nuisances(cfg),
-        n_parameters=counts, penalty=S.penalty, resolution=cfg.model.resolution.resolution,
-        window=tuple(cfg.spectrum.window), natural_width=natural_width, blind=blind,
-        cl=L.cl, luminosity=lum,
+        hist, None if sm is not None else signal, shapes, np.asarray(masses),
+        nuisances=_nuisances(cfg), n_parameters=counts, penalty=S.penalty,
+        window=tuple(cfg.spectrum.window), blind=blind, cl=L.cl, luminosity=lum,
         luminosity_uncertainty=L.luminosity_uncertainty if lum is not None else 0.0,
-        efficiency=L.efficiency if lum is not None else 1.0,
         efficiency_uncertainty=L.efficiency_uncertainty if lum is not None else 0.0,
-        constraint=L.constraint, unit=L.cross_section_unit)
+        constraint=L.constraint, unit=L.cross_section_unit, method=L.method,
+        toy_masses=list(L.toy_masses) or None, toys=L.toys, seed=cfg.significance.seed,
+        executor=executor if L.method != "asymptotic" else None, **sig_kw)

@@ -60,6 +60,32 @@ def _rows(run, rows: int, nbins: int, grad: bool):
     return frac, (g[None] if grad else None)
 
 
+def _quadrature(shape, edges, params, window, grad: bool):
+    """Bin fractions (and derivatives) of an exponential-family shape from the compiled
+    Gauss-Legendre rule of :mod:`.quadrature`, shaped as the generic path shapes them;
+    None for calls it does not cover (2-d edges, parameters not one per row)."""
+    if np.ndim(edges) != 1:
+        return None
+    arrs = [np.asarray(v, float) for v in params]
+    if any(a.ndim > 2 or (a.ndim == 2 and a.shape[1] != 1) or a.ndim == 1 for a in arrs):
+        return None
+    stacked = any(a.ndim == 2 for a in arrs)
+    rows = max((a.shape[0] for a in arrs if a.ndim == 2), default=1)
+    p = np.stack([np.broadcast_to(a.reshape(-1), (rows,)) for a in arrs], axis=1)
+    if not np.all(np.isfinite(p)):
+        return None
+    from .quadrature import exp_family_fractions
+
+    out = exp_family_fractions(p, lambda x: shape._basis(x, window), np.asarray(edges, float),
+                               window, grad)
+    if out is None:
+        return None
+    frac, d = out
+    if not stacked:
+        return frac[0], (None if d is None else d[:, 0])
+    return frac, d
+
+
 class ExpPoly(_Background):
     r"""Exponential of a polynomial on the window-scaled variable
     :math:`t = (x - c)/h \in [-1, 1]` (c, h: window centre and half-width):
@@ -125,8 +151,15 @@ class ExpPoly(_Background):
         series = 0.5 * (t2 - 1.0) + b * (t2 * t + 1.0) / 3.0 + b * b * (t2 * t2 - 1.0) / 8.0
         return [h * np.where(small, series, exact)]
 
+    def _basis(self, x, window):
+        """The exponent's basis functions t^j (see :mod:`.quadrature`)."""
+        t = _t(x, window)
+        return np.stack([t**j for j in range(1, self.order + 1)])
+
     def _stacked_rows(self, edges, params, window, grad: bool):
-        p = _stacked(params, edges) if self.order == 1 else None
+        if self.order != 1:  # compiled Gauss-Legendre bins (the fits' and toys' hot path)
+            return _quadrature(self, edges, params, window, grad)
+        p = _stacked(params, edges)
         if p is None:
             return None
         from .compiled import exponential_rows
@@ -142,7 +175,7 @@ class ExpPoly(_Background):
         return out[0] if out is not None else super().bin_fractions(edges, params, window)
 
     def fractions_and_grad(self, edges, params, window, need=None):
-        if np.ndim(params[0]):
+        if np.ndim(params[0]) or self.order != 1:
             out = self._stacked_rows(edges, params, window, True)
             if out is not None:
                 return out
@@ -469,6 +502,33 @@ class Dijet(_Background):
         e = rs - np.geomspace(rs - lo, rs - hi, 129)
         e[0], e[-1] = lo, hi
         return e
+
+    def _basis(self, x, window):
+        """The exponent's basis functions (see :mod:`.quadrature`): ``_density`` is
+        exp(sum_j p_j basis_j)."""
+        rs = self._roots(window)
+        xc = 0.5 * (window[0] + window[1]) / rs
+        x = np.clip(np.asarray(x, float) / rs, 1e-12, 1.0 - 1e-12)
+        lx, lxc = np.log(x), math.log(xc)
+        out = [np.log1p(-x) - math.log1p(-xc), -(lx - lxc), -(lx * lx - lxc * lxc)]
+        return np.stack(out[: self.npar - 1])
+
+    def _fast(self, edges, params, window, grad):
+        """Compiled bins where the uniform panels serve (sqrt_s at least a window width
+        above it); None otherwise (the generic path's graded panels)."""
+        rs = self._roots(window)
+        if rs - window[1] < window[1] - window[0]:
+            return None
+        return _quadrature(self, edges, params, window, grad)
+
+    def bin_fractions(self, edges, params, window):
+        out = self._fast(edges, params, window, False)
+        return out[0] if out is not None else super().bin_fractions(edges, params, window)
+
+    def fractions_and_grad(self, edges, params, window, need=None):
+        out = self._fast(edges, params, window, True)
+        return out if out is not None else super().fractions_and_grad(edges, params,
+                                                                       window, need)
 
     def _density(self, x, p, window):
         rs = self._roots(window)

@@ -14,8 +14,10 @@ Every event has one hard process, drawn with the probabilities ``Scenario.fracti
 * ``z_mumu``, ``z_ee`` -- the standard candle: the Z boson with mass and width from the
   ``particle`` package (PDG tables), decaying to a muon or electron pair;
 * ``dy_mumu``, ``dy_ee`` -- a smoothly falling opposite-charge continuum with
-  :math:`dN/dm \\propto (1 - x)^a / x^b`, :math:`x = m/\\sqrt s`;
-* ``x_mumu`` -- one **invented** narrow resonance (default 152 GeV, width 1.5 GeV) decaying
+  :math:`dN/dm \\propto (1 - x)^a / x^b`, :math:`x = m/\\sqrt s`, plus a broad shoulder
+  (``Scenario.continuum_shoulder_*``, log-normal in the mass: :func:`continuum_pdf`), so that no single
+  power law describes the search window and the demo's background-function choice matters;
+* ``x_mumu`` -- one **invented** narrow resonance (default 152 GeV, width 0.6 GeV) decaying
   to a muon pair; there is no known particle at that mass;
 * ``soft`` -- no hard process, only soft and fake objects.
 
@@ -50,18 +52,22 @@ Modules
 -------
 * ``scenario`` -- constants (:data:`DEMO_SEED`, :data:`BLOCK_EVENTS`, :data:`PROCESSES`, ...),
   PDG masses, :class:`Resonance`, :class:`Scenario`, :data:`DEMO`, the intended selection;
-* ``processes`` -- Breit-Wigner density and sampling, the continuum, the parent's decay;
+* ``processes`` -- Breit-Wigner density and sampling, the continuum (:func:`continuum_pdf`),
+  the parent's decay;
 * ``detector`` -- final-state radiation, muon and electron response, isolation, fakes;
 * ``layout`` -- objects per event turned into the stored Arrow columns;
 * ``blocks`` -- one block of events from its own random stream, :func:`generate`;
 * ``write`` -- :func:`write_demo`: Parquet files, ``truth.json``, the summary;
-* ``signal_samples`` -- :func:`generate_signal_sample`, :func:`write_signal_samples`.
+* ``signal_samples`` -- :func:`generate_signal_sample`, :func:`write_signal_samples`;
+* ``expected`` -- :func:`expected_background`, the noise-free background in the search window
+  (the demo search's background template).
 """
 
 from __future__ import annotations
 
 from .blocks import generate
-from .processes import breit_wigner_pdf
+from .expected import expected_background
+from .processes import breit_wigner_pdf, continuum_pdf
 from .scenario import (
     BLOCK_EVENTS,
     DEMO,
@@ -94,6 +100,8 @@ __all__ = [
     "Resonance",
     "Scenario",
     "breit_wigner_pdf",
+    "continuum_pdf",
+    "expected_background",
     "generate",
     "generate_signal_sample",
     "write_demo",

@@ -58,7 +58,10 @@ class Scenario:
     x: Resonance = Resonance("X(152)", 152.0, 0.6, (112.0, 192.0), None)
     continuum_range: tuple[float, float] = (40.0, 600.0)
     continuum_a: float = 10.0          # (1 - x)^a
-    continuum_b: float = 3.6           # x^-b
+    continuum_b: float = 4.2           # x^-b
+    continuum_shoulder_fraction: float = 0.03  # the broad shoulder's share of the continuum
+    continuum_shoulder_mass: float = 145.0     # GeV, its mode
+    continuum_shoulder_width: float = 0.15     # relative; log-normal width ln(1 + this)
     parent_pt_shape: float = 1.3       # Gamma shape of the parent pT
     parent_pt_scale: float = 6.0       # GeV at m = m_Z, scaling as sqrt(m / m_Z)
     parent_y_sigma: float = 1.7

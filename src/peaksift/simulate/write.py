@@ -205,8 +205,8 @@ def _truth(sc: Scenario, n: int, seed: int, weighted: bool, paths: list[Path],
         "soft": "no hard process: fake leptons and soft tracks only",
         "z_mumu": "Z0 -> mu+ mu- (calibration peak)",
         "z_ee": "Z0 -> e+ e- (calibration peak)",
-        "dy_mumu": "falling opposite-charge continuum -> mu+ mu-",
-        "dy_ee": "falling opposite-charge continuum -> e+ e-",
+        "dy_mumu": "falling opposite-charge continuum with a broad shoulder -> mu+ mu-",
+        "dy_ee": "falling opposite-charge continuum with a broad shoulder -> e+ e-",
         "x_mumu": f"invented resonance {sc.x.name} -> mu+ mu-",
     }
     for p in PROCESSES:
@@ -239,8 +239,12 @@ def _truth(sc: Scenario, n: int, seed: int, weighted: bool, paths: list[Path],
         "lineshape": "relativistic Breit-Wigner f(m) ~ 1/((m^2 - M^2)^2 + M^2 Gamma^2), "
                      "truncated to mass_range",
         "continuum": {"mass_range_gev": list(sc.continuum_range),
-                      "shape": "dN/dm ~ (1 - m/sqrt_s)^a / (m/sqrt_s)^b",
-                      "a": sc.continuum_a, "b": sc.continuum_b},
+                      "shape": "dN/dm ~ (1 - f) (1 - m/sqrt_s)^a / (m/sqrt_s)^b + f shoulder(m), "
+                               "each term normalised on mass_range; shoulder: log-normal in m "
+                               "with mode m0 and log-width ln(1 + r)",
+                      "a": sc.continuum_a, "b": sc.continuum_b,
+                      "f": sc.continuum_shoulder_fraction, "m0": sc.continuum_shoulder_mass,
+                      "r": sc.continuum_shoulder_width},
         "processes": procs,
         "intended_selection": INTENDED_SELECTION,
         "columns": {

@@ -178,6 +178,11 @@ class BackgroundChoice(FrozenValue):
     def labels(self) -> tuple[str, ...]:
         return tuple(c.label for c in self.chosen)
 
+    @property
+    def kept(self) -> tuple[str, ...]:
+        """The labels of the candidates kept (results.json ``kept``; as :attr:`labels`)."""
+        return self.labels
+
     def candidate(self, label: str) -> BackgroundCandidate:
         for c in self.candidates:
             if c.label == label:

@@ -59,20 +59,76 @@ class CombinedLimits(FrozenValue):
     nuisances: tuple[str, ...] = ()
     toys: Any = None                 # per toy mass: grid, CLs, number of toys
 
+    # the band edges under the names LimitResult (and results.json) give them
+    @property
+    def expected_minus2(self) -> np.ndarray:
+        return self.bands[0]
+
+    @property
+    def expected_minus1(self) -> np.ndarray:
+        return self.bands[1]
+
+    @property
+    def expected_plus1(self) -> np.ndarray:
+        return self.bands[3]
+
+    @property
+    def expected_plus2(self) -> np.ndarray:
+        return self.bands[4]
+
     def __repr__(self) -> str:
         return (f"CombinedLimits({', '.join(self.channels)}; {self.masses.size} masses, "
                 f"median expected {np.nanmedian(self.expected):.3g} {self.unit})")
 
+    def _summary(self) -> list[tuple[str, str]]:
+        obs = self.observed
+        rows = [("channels", ", ".join(self.channels)),
+                ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
+                ("limit", f"{self.cl:.0%} CL CLs ({self.method}) on sigma x B [{self.unit}]"),
+                ("expected", f"{np.nanmin(self.expected):.3g}-{np.nanmax(self.expected):.3g}")]
+        if np.isfinite(obs).any():
+            rows.append(("observed", f"{np.nanmin(obs):.3g}-{np.nanmax(obs):.3g}"))
+        return rows
+
     def to_dict(self) -> dict[str, Any]:
+        """JSON-ready, every key an attribute of the same name (``channels``: each
+        channel's :meth:`LimitResult.to_dict`)."""
         return plain({
-            "combined": {"masses": self.masses, "observed": self.observed,
-                         "expected": self.expected, "expected_minus2": self.bands[0],
-                         "expected_minus1": self.bands[1], "expected_plus1": self.bands[3],
-                         "expected_plus2": self.bands[4], "cl": self.cl, "unit": self.unit,
-                         "method": self.method, "methods": list(self.methods),
-                         "nuisances": list(self.nuisances), "toys": self.toys or {},
-                         "flags": list(self.flags), "notes": list(self.notes)},
+            "masses": self.masses, "observed": self.observed, "expected": self.expected,
+            "expected_minus2": self.bands[0], "expected_minus1": self.bands[1],
+            "expected_plus1": self.bands[3], "expected_plus2": self.bands[4], "cl": self.cl,
+            "unit": self.unit, "method": self.method, "methods": list(self.methods),
+            "nuisances": list(self.nuisances), "toys": self.toys or {},
+            "flags": list(self.flags), "notes": list(self.notes),
             "channels": {n: r.to_dict() for n, r in self.channels.items()}})
+
+    @classmethod
+    def from_dict(cls, d: Any) -> CombinedLimits:
+        """The CombinedLimits that :meth:`to_dict` wrote.  Dicts of earlier versions (the
+        combined numbers under ``combined``) still load."""
+        from .limit_result import LimitResult
+
+        def arr(v: Any) -> np.ndarray:
+            return np.array([np.nan if x is None else x for x in v], float)
+
+        try:
+            c = d.get("combined", d)  # earlier versions: the combined numbers nested
+            bands = np.array([arr(c[k]) for k in ("expected_minus2", "expected_minus1",
+                                                  "expected", "expected_plus1",
+                                                  "expected_plus2")])
+            return cls(masses=arr(c["masses"]), observed=arr(c["observed"]),
+                       expected=arr(c["expected"]), bands=bands,
+                       channels={n: LimitResult.from_dict(v)
+                                 for n, v in (d.get("channels") or {}).items()},
+                       cl=float(c["cl"]), unit=str(c["unit"]),
+                       flags=tuple(c.get("flags") or ()), notes=tuple(c.get("notes") or ()),
+                       methods=tuple(c.get("methods") or ()),
+                       method=str(c.get("method", "asymptotic")),
+                       nuisances=tuple(c.get("nuisances") or ()),
+                       toys=dict(c.get("toys") or {}))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FitError(f"not combined limits written by CombinedLimits.to_dict: {exc!r}"
+                           ) from None
 
 
 class _Profiled:

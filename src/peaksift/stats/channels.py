@@ -424,6 +424,17 @@ class Combination(FrozenValue):
                 f"Z_local = {b['z_local']:.2f}, sigma x B = {b['cross_section']:.3g} "
                 f"{self.unit})")
 
+    def _summary(self) -> list[tuple[str, str]]:
+        b = self.best
+        rows = [("channels", ", ".join(self.channels)),
+                ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
+                ("best mass", f"{b['mass']:.2f} GeV"),
+                ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
+                ("sigma x B at best", f"{b['cross_section']:.3g} {self.unit}")]
+        if self.blind is not None:
+            rows.append(("blinded", f"{self.blind[0]:g}-{self.blind[1]:g} GeV"))
+        return rows
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict whose keys are the attribute names (``channels``: each channel's
         :meth:`ScanResult.to_dict`), plus the ``best`` summary; blinded entries ``None``;

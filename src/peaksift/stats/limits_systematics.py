@@ -28,23 +28,27 @@ envelope takes without signal, and it is evaluated with the same envelope.  With
 candidate and every shape size 0 the computation is :func:`~peaksift.stats.upper_limits`'s
 asymptotic one, to the bit.
 
-Toy-based limits (the low-count masses of ``method="auto"``) keep the plain model; these
-limits are asymptotic everywhere and say so (``method``).
+Low counts: where few background events lie under the signal the asymptotic formulae
+misplace the bands (see :mod:`peaksift.stats.limits`); there ``method="auto"`` computes the
+limits with toys that profile the same nuisances and the same envelope
+(:mod:`peaksift.stats.toy_limits_systematics`), and ``"toys"`` also at ``toy_masses``.
 """
 
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
 
 from .._json import plain
+from .._vocabulary import LIMIT_METHODS
 from ..errors import FitError
 from ..likelihood import SignalNuisances
 from .cls import _BANDS, _bisect, _Problem, _unconditional
+from .limit_result import LOW_COUNT_BACKGROUND
 from .limits import cls_asymptotic, expected_band_factor, normalisation
 from .scan_inputs import _prepare_model, _signal_params
 from .shape_profile import profile_with_nuisances
@@ -179,13 +183,16 @@ def _free_fit(model: Any, counts: np.ndarray, sig: Any, base: list[Any],
 def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], masses: Any, *,
                       nuisances: SignalNuisances | None = None,
                       n_parameters: Mapping[str, int] | None = None, penalty: float = 1.0,
-                      resolution: Any, window: tuple[float, float] | None = None,
+                      resolution: Any = None, window: tuple[float, float] | None = None,
                       natural_width: Any = None, blind: tuple[float, float] | None = None,
                       signal_params: Mapping[str, float] | None = None, cl: float = 0.95,
                       luminosity: float | None = None, luminosity_uncertainty: float = 0.0,
                       efficiency: Any = 1.0, efficiency_uncertainty: float = 0.0,
                       constraint: str = "lognormal", unit: str = "fb",
-                      bins: int | None = None) -> dict[str, Any]:
+                      bins: int | None = None, method: str = "auto",
+                      toy_masses: Sequence[float] | None = None, toys: int = 1000,
+                      seed: int = 0, low_count_background: float = LOW_COUNT_BACKGROUND,
+                      executor: Any = None, signal_model: Any = None) -> dict[str, Any]:
     r"""Asymptotic CLs upper limits with the signal-shape nuisances and the envelope profiled.
 
     Parameters
@@ -203,15 +210,25 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
     penalty : float
         Per free parameter, in units of -2 ln L (the paper's 1).
     cl, luminosity, luminosity_uncertainty, efficiency, efficiency_uncertainty, constraint,
-    unit :
-        As in :func:`~peaksift.stats.upper_limits`.
+    unit, method, toy_masses, toys, seed, low_count_background, executor :
+        As in :func:`~peaksift.stats.upper_limits`; the toys profile every nuisance and
+        the envelope (:mod:`peaksift.stats.toy_limits_systematics`).
+    signal_model : SignalModel, optional
+        Shape, resolution and efficiency as functions of mass from simulated samples
+        (instead of ``signal``, ``resolution`` and ``efficiency``; as in
+        :func:`~peaksift.stats.upper_limits`).  With ``luminosity`` the limits use its
+        interpolated efficiency, and the interpolation's own uncertainty (the efficiency
+        polynomial's 1-sigma band relative to its value, the largest over the limit
+        masses: one scalar, conservative elsewhere) is added in quadrature to
+        ``efficiency_uncertainty``.
 
     Returns
     -------
     dict (plain JSON)
         ``mass``, ``observed`` (None where blinded), ``expected`` and the bands
-        ``expected_minus2`` .. ``expected_plus2``, ``unit``, ``cl``, ``method``
-        ("asymptotic"), ``functions``, ``profiled`` (what was profiled, in words) and
+        ``expected_minus2`` .. ``expected_plus2``, ``unit``, ``cl``, ``method`` and
+        ``methods`` ("asymptotic" or "toys" per mass), ``toys`` (per toy mass: grid, CLs,
+        notes), ``background_under_signal``, ``functions``, ``profiled`` (what was profiled, in words) and
         ``chosen`` (the function the envelope takes at each observed limit).
     """
     if not 0 < cl < 1:
@@ -220,6 +237,9 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
         raise FitError("systematic_limits needs at least one background function")
     if constraint not in ("lognormal", "gaussian"):
         raise FitError(f"constraint must be 'lognormal' or 'gaussian', got {constraint!r}")
+    if method not in LIMIT_METHODS:
+        raise FitError(f"limit method must be one of {', '.join(map(repr, LIMIT_METHODS))}, "
+                       f"got {method!r}")
     if not (np.isfinite(penalty) and penalty >= 0):
         raise FitError(f"the envelope's penalty must be >= 0, got {penalty!r}")
     nuis = nuisances if nuisances is not None else SignalNuisances()
@@ -227,8 +247,18 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
     prepared = [_prepare_model(data, signal, backgrounds[lab], masses, resolution=resolution,
                                window=window, natural_width=natural_width, blind=blind,
                                signal_params=signal_params, bins=bins,
+                               signal_model=signal_model,
                                what="upper limits with systematics") for lab in labels]
     model0, spec, info = prepared[0]
+    signal_params = info["signal_params"]   # the signal model's functions of mass, if any
+    interpolation = 0.0
+    if signal_model is not None:
+        efficiency = signal_model.efficiency
+        if luminosity is not None:   # the polynomial's own uncertainty on the efficiency
+            m_i = np.asarray(info["masses"], float)
+            interpolation = float(np.max(signal_model.band("efficiency", m_i)
+                                         / signal_model.efficiency(m_i)))
+            efficiency_uncertainty = float(np.hypot(efficiency_uncertainty, interpolation))
     for lab, (m, _, _) in zip(labels, prepared):
         if m.used.size != model0.used.size:
             raise FitError(f"limit candidate {lab} sees different bins than {labels[0]}")
@@ -320,11 +350,39 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
         obs[keep] = _beyond(f_obs, _bisect(f_obs, lo, top_o), top_o, notes, "observed")
         f_obs(np.where(np.isfinite(obs[keep]), obs[keep], top_o))
         chosen_at[keep] = last["chosen"]
+    # low counts: toys with the same profiling (as upper_limits decides where)
+    b_under = (f_win.sum(axis=1) * sig_fisher) ** 2
+    want = list(m_all[b_under < low_count_background]) if method != "asymptotic" else []
+    if method == "toys":
+        want += list(np.asarray(toy_masses, float) if toy_masses is not None
+                     else m_all[np.linspace(0, nm - 1, 3).round().astype(int)])
+    methods = ["asymptotic"] * nm
+    toy_info: dict[str, Any] = {}
+    js = sorted({int(np.argmin(np.abs(m_all - m))) for m in want})
+    notes += [f"toy limits at {m_all[j]:g} skipped: blinded" for j in js if bl[j]]
+    js = [j for j in js if not bl[j]]
+    if js:
+        from .toy_limits_systematics import systematic_toy_limits
+
+        base_u = _signal_params(sig, spec.window, model0.masses, info["sigma"][keep],
+                                natural_width, signal_params)
+        done = systematic_toy_limits(js, [m for m, _, _ in prepared], pen, conv, delta, kind,
+                                     sig, base_u, nuis, cl, toys, seed, obs, exp_lim, bl,
+                                     executor)
+        for j, r in done.items():
+            obs[j] = r["observed"]
+            exp_lim[:, j] = [r["expected"][n] for n in _BANDS]
+            methods[j] = "toys"
+            toy_info[f"{m_all[j]:.6g}"] = plain(r)
+            notes.extend(f"{m_all[j]:g}: {n}" for n in r["notes"])
     profiled = ["background parameters"]
     profiled += [f"{n.replace('_', ' ')} ({100 * getattr(nuis, n):.3g}%, {nuis.kind(n)})"
                  for n in nuis.shape_active]
     if delta:
         profiled.append(f"signal normalisation ({100 * delta:.3g}%, {kind})")
+    if interpolation:
+        profiled.append(f"signal model's efficiency interpolation (up to "
+                        f"{100 * interpolation:.3g}%, inside the normalisation)")
     if len(labels) > 1:
         profiled.append(f"background function (envelope of {', '.join(labels)}, penalty "
                         f"{penalty:g} per free parameter)")
@@ -332,7 +390,9 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
                       "expected_plus2"), exp_lim))
     return plain({"masses": m_all, "observed": obs, **bands, "unit": out_unit, "cl": cl,
                   "notes": notes,
-                  "method": "asymptotic", "functions": list(labels),
+                  "method": method, "methods": methods, "toys": toy_info,
+                  "background_under_signal": b_under,
+                  "low_count_background": low_count_background, "functions": list(labels),
                   "null_choice": labels[null], "profiled": profiled,
                   "chosen": [labels[c] if c >= 0 else None for c in chosen_at],
                   "blinded": [bool(v) for v in bl]})

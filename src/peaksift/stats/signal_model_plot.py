@@ -1,4 +1,5 @@
-"""Figures of a :class:`~peaksift.stats.signal_model.SignalModel` (in the project's style).
+"""Figures of a :class:`~peaksift.stats.signal_model.SignalModel` (in the project's style,
+drawn on :func:`peaksift._style.new_figure`: no pyplot, the user's backend untouched).
 
 * :func:`plot_parameters` -- one panel per modelled quantity against mass: the per-sample
   points with errors, the fitted polynomial and its 1-sigma band.
@@ -19,19 +20,15 @@ _LABELS = {"mass_shift": "peak shift [GeV]", "sigma": "$\\sigma$ [GeV]",
 
 
 def plot_parameters(model: Any, path: Any) -> Any:
-    from .._style import COLORS, figure_style, use_headless_backend
-
-    use_headless_backend()
-    import matplotlib.pyplot as plt
+    from .._style import COLORS, figure_style, new_figure
 
     keys = list(model.quantities)
     ncol = 3 if len(keys) > 4 else 2
     nrow = math.ceil(len(keys) / ncol)
     m = np.asarray(model.sample_masses)
     grid = np.linspace(m[0], m[-1], 200)
+    fig, axes = new_figure((3.6 * ncol, 2.8 * nrow), nrow, ncol, squeeze=False, sharex=True)
     with figure_style():
-        fig, axes = plt.subplots(nrow, ncol, figsize=(3.6 * ncol, 2.8 * nrow),
-                                 squeeze=False, sharex=True)
         for ax, k in zip(axes.ravel(), keys):
             name = "mass" if k == "mass_shift" else k
             val = np.asarray(model.value(name, grid), float)
@@ -60,23 +57,20 @@ def plot_parameters(model: Any, path: Any) -> Any:
         axes.ravel()[0].legend(loc="best", fontsize=8)
         fig.tight_layout()
         fig.savefig(path)
-        plt.close(fig)
     return path
 
 
 def plot_shapes(model: Any, path: Any) -> Any:
-    from .. import shapes
-    from .._style import COLORS, figure_style, use_headless_backend
-
-    use_headless_backend()
-    import matplotlib.pyplot as plt
     from matplotlib import colormaps
+
+    from .. import shapes
+    from .._style import COLORS, figure_style, new_figure
 
     shape = shapes.get(model.shape)
     names = shape.parameter_names
     cmap = colormaps["viridis"]
+    fig, ax = new_figure((7.0, 4.6))
     with figure_style():
-        fig, ax = plt.subplots(figsize=(7.0, 4.6))
         n = len(model.histograms)
         for j, ((edges, counts), vals, win) in enumerate(zip(model.histograms,
                                                              model.fit_values, model.windows)):
@@ -99,5 +93,4 @@ def plot_shapes(model: Any, path: Any) -> Any:
         ax.text(0.01, 0.98, "points: simulated samples", transform=ax.transAxes, va="top",
                 fontsize=8, color=COLORS["data"])
         fig.savefig(path)
-        plt.close(fig)
     return path
