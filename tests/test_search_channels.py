@@ -189,3 +189,33 @@ def test_sample_masses_from_the_per_event_truth_column(dimuon, demo_dir):
         load_config(raw)
     with pytest.raises(ConfigError, match="is not a column"):
         sample_mass(cfg.signal_model.files[0], "generated_mass")
+
+
+def test_channels_on_one_input_read_it_once_with_their_own_results(demo_dir, monkeypatch):
+    """The combined demo's channels read the same files: one pass gives each channel exactly
+    what its own search reads (``search.common._collect``, the single-channel path), and
+    each chunk is read once, not once per channel."""
+    from peaksift import events
+    from peaksift.search.combination import _shared_reads
+    from peaksift.search.common import _collect
+
+    cfgs = [load_config(demo_dir / f"{n}.toml") for n in ("dimuon", "dielectron")]
+    calls = []
+    real = events.read_chunk
+
+    def counting(spec, *a, **kw):
+        calls.append(spec)
+        return real(spec, *a, **kw)
+
+    monkeypatch.setattr(events, "read_chunk", counting)
+    shared = _shared_reads(["dimuon", "dielectron"], cfgs, progress=False)
+    assert len(calls) == shared["dimuon"].engine_info["chunks"]
+    for name, cfg in zip(("dimuon", "dielectron"), cfgs):
+        own = _collect(cfg, progress=False)[0]
+        got = shared[name]
+        assert got.histogram == own.histogram
+        np.testing.assert_array_equal(got.window_mass, own.window_mass)
+        np.testing.assert_array_equal(got.window_weight, own.window_weight)
+        assert (got.cutflow, got.requirements, got.events_read) == (
+            own.cutflow, own.requirements, own.events_read)
+    assert len(calls) == 3 * shared["dimuon"].engine_info["chunks"]  # + one per channel

@@ -350,6 +350,11 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              lo=0, hi=5),
         _Key("efficiency_order", "int", 2,
              "Polynomial order in mass of the efficiency x acceptance.", lo=0, hi=5),
+        _Key("raise_order", "bool", False,
+             "Take `order` and `efficiency_order` as the lowest orders and raise each "
+             "quantity's order while its polynomial does not describe the samples (chi2 "
+             "p-value below 0.05), up to the number of samples - 2; precise samples resolve "
+             "curvature a low order misses."),
         _Key("fix", "values", {},
              "Shape parameters held at a value in every sample fit, e.g. "
              "`{ n_high = 10.0 }` for a tail the samples do not determine."),

@@ -26,6 +26,7 @@ class SignalModelConfig:
     shape: str = "crystalball"
     order: int = 1
     efficiency_order: int = 2
+    raise_order: bool = False
     fix: Any = field(default_factory=dict)
     saved: str = ""
 

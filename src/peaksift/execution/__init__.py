@@ -13,6 +13,9 @@ What is here, and which piece to use when
 * :func:`collect` -- the whole map-reduce over a dataset, on the engine you choose.  Returns
   a :class:`Collected` (spectrum, candidate masses inside the fit window, cut flow, files
   read and skipped, events read).  This is what :func:`peaksift.run_search` calls.
+* :func:`collect_shared` -- :func:`collect` of several selections on one input (the
+  channels of a combination): each chunk is read once and every selection runs on it; one
+  :class:`Collected` per selection, each exactly what :func:`collect` gives for it alone.
 * :func:`map_tasks` -- map any picklable function over a list of task descriptions with the
   same engines, results in task order (so toy batches can run on the same engines).
 
@@ -76,7 +79,8 @@ Guarantees
   :class:`~peaksift.errors.ExecutionError` naming the chunk.  ``KeyboardInterrupt`` stops
   the workers, closes what was started and propagates.
 
-Where things are: ``_chunk.py`` (the map step), ``_collect.py`` (plan, run, reduce),
+Where things are: ``_chunk.py`` (the map step), ``_shared.py`` (the map step of several
+selections on one read), ``_collect.py`` (plan, run, reduce),
 ``_engines.py`` (engine checks, dispatch, :func:`map_tasks`), ``_local.py`` (serial and
 process-pool runners, worker start, dead workers), ``_dask.py`` (the Dask engine).
 """
@@ -84,7 +88,14 @@ process-pool runners, worker start, dead workers), ``_dask.py`` (the Dask engine
 from __future__ import annotations
 
 from ._chunk import ChunkOutput, Selection, process_chunk, process_events, requirement_flow
-from ._collect import DEFAULT_CHUNK_EVENTS, Collected, SkippedFile, collect, reduce_outputs
+from ._collect import (
+    DEFAULT_CHUNK_EVENTS,
+    Collected,
+    SkippedFile,
+    collect,
+    collect_shared,
+    reduce_outputs,
+)
 from ._engines import ENGINES, START_METHODS, map_tasks
 
 __all__ = [
@@ -96,6 +107,7 @@ __all__ = [
     "Selection",
     "SkippedFile",
     "collect",
+    "collect_shared",
     "map_tasks",
     "process_chunk",
     "process_events",

@@ -317,6 +317,49 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         raise ConfigError(
             f"collect needs a peaksift.execution.Selection, got {type(selection).__name__}"
         )
+    return _collect_all(source, (selection,), _ChunkTask(selection), engine=engine,
+                        workers=workers, address=address, chunk_events=chunk_events,
+                        unreadable_files=unreadable_files, progress=progress,
+                        start_method=start_method, client=client, hash_files=hash_files)[0]
+
+
+def collect_shared(source: Any, selections: Any, *, engine: str = "serial",
+                   workers: int | None = None, address: str | None = None,
+                   chunk_events: int = DEFAULT_CHUNK_EVENTS, unreadable_files: str = "stop",
+                   progress: bool = False, start_method: str = "auto", client: Any = None,
+                   hash_files: bool = False) -> tuple[Collected, ...]:
+    """:func:`collect` of several selections on one input, each chunk read once.
+
+    Every chunk is read with the union of the selections' collections and each selection
+    runs on it (:mod:`peaksift.execution._shared`); the outputs are reduced per selection in
+    chunk order, so each :class:`Collected` holds exactly what ``collect(source, selection,
+    ...)`` gives (histograms, window masses, cut flows, files, repair warnings), on every
+    engine.  The selections must read alike (same ``fields``, ``strict``, ``masses`` and
+    ``column_pattern``).  Footers are checked for what all selections read together: a
+    file that cannot serve one of them stops the run, or with
+    ``unreadable_files="left_out"`` is left out of every selection.  ``engine_info``
+    (shared by all) says ``shared_by``: the number of selections.
+    """
+    from ._shared import _SharedChunkTask, read_selection
+
+    sels = tuple(selections) if not isinstance(selections, Selection) else (selections,)
+    read_selection(sels)  # checks them
+    return _collect_all(source, sels, _SharedChunkTask(sels), engine=engine, workers=workers,
+                        address=address, chunk_events=chunk_events,
+                        unreadable_files=unreadable_files, progress=progress,
+                        start_method=start_method, client=client, hash_files=hash_files)
+
+
+def _collect_all(source: Any, selections: tuple[Selection, ...], func: Any, *, engine: str,
+                 workers: int | None, address: str | None, chunk_events: int,
+                 unreadable_files: str, progress: bool, start_method: str, client: Any,
+                 hash_files: bool) -> tuple[Collected, ...]:
+    """The map-reduce of :func:`collect` (one selection, ``func`` a :class:`_ChunkTask`)
+    and :func:`collect_shared` (``func`` returns one output per selection)."""
+    from ._shared import read_selection
+
+    many = len(selections) > 1 or not isinstance(func, _ChunkTask)
+    selection = read_selection(selections) if many else selections[0]
     _check_engine(engine, workers, address, start_method)
     if unreadable_files not in UNREADABLE_FILES:
         raise ConfigError(f"unreadable_files must be one of {', '.join(UNREADABLE_FILES)}, got "
@@ -325,10 +368,10 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     if isinstance(chunk_events, bool) or int(chunk_events) != chunk_events or chunk_events < 1:
         raise ConfigError(f"chunk_events must be a positive integer, got {chunk_events!r}")
     if engine == "processes":
-        _check_picklable(selection, "the selection")
+        for sel in selections:
+            _check_picklable(sel, "the selection")
     t0 = time.perf_counter()
     info: dict[str, Any] = {}
-    func = _ChunkTask(selection)
     session = None
     run = None
     bar = None
@@ -341,7 +384,8 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
         n = len(specs)
         last_of_file = [i == n - 1 or _spec_file(specs[i + 1]) != _spec_file(specs[i])
                         for i in range(n)]
-        reducer = _Reducer(selection)
+        reducers = [_Reducer(sel) for sel in selections]
+        reducer = reducers[0]
         bad_file: str | None = None
         total = sum(int(getattr(s, "n_events", 0)) for s in specs)
         bar = _progress(total or n, "events" if total else "chunks",
@@ -355,13 +399,15 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
                 continue
             if not ok:
                 if leave_out and isinstance(value, InputError):
-                    reducer.drop_file()
+                    for red in reducers:
+                        red.drop_file()
                     skipped.append(SkippedFile(fname, str(value)))
                     bad_file = fname
                     continue
                 raise value
-            reducer.add(dataclasses.replace(value, index=i), last_of_file[i])
-            bar.update(value.events if total else 1)
+            for red, out in zip(reducers, value if many else (value,)):
+                red.add(dataclasses.replace(out, index=i), last_of_file[i])
+            bar.update((value[0] if many else value).events if total else 1)
     finally:
         if run is not None:
             run.close()  # stop the workers now, not when the traceback is freed
@@ -380,20 +426,30 @@ def collect(source: Any, selection: Selection, *, engine: str = "serial",
     planned = {_spec_file(s) for s in specs}
     gone = {s.path for s in skipped}
     files_read = tuple(f for f in files if f in done or (f not in planned and f not in gone))
-    if reducer.n_warn:
-        first = next(iter(reducer.warn))
-        warnings.warn(
-            f"{reducer.n_warn} of {n} chunks had input repaired while reading; first: {first}",
-            DataWarning, stacklevel=2,
-        )
     seconds = time.perf_counter() - t0
     info.update(chunks=n, chunk_events=int(chunk_events), seconds=round(seconds, 3),
-                events_per_second=(reducer.events / seconds if seconds > 0 else math.inf),
-                chunk_seconds=round(reducer.busy, 3))
-    masses = np.concatenate(reducer.masses) if reducer.masses else np.zeros(0)
-    weights = np.concatenate(reducer.weights) if reducer.weights else np.zeros(0)
+                events_per_second=(reducer.events / seconds if seconds > 0 else math.inf))
+    if many:
+        info["shared_by"] = len(selections)
     order = {f: k for k, f in enumerate(files)}
     skipped.sort(key=lambda s: order.get(s.path, len(order)))
+    for red in reducers:
+        if red.n_warn:
+            first = next(iter(red.warn))
+            warnings.warn(
+                f"{red.n_warn} of {n} chunks had input repaired while reading; first: {first}",
+                DataWarning, stacklevel=3,
+            )
+    return tuple(_collected(red, sel, files_read, skipped, hashes,
+                            {**info, "chunk_seconds": round(red.busy, 3)})
+                 for red, sel in zip(reducers, selections))
+
+
+def _collected(reducer: _Reducer, selection: Selection, files_read: tuple[str, ...],
+               skipped: list[SkippedFile], hashes: dict[str, str] | None,
+               info: dict[str, Any]) -> Collected:
+    masses = np.concatenate(reducer.masses) if reducer.masses else np.zeros(0)
+    weights = np.concatenate(reducer.weights) if reducer.weights else np.zeros(0)
     return Collected(
         histogram=reducer.hist,
         window=selection.window,

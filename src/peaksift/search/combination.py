@@ -5,7 +5,9 @@ A combination config names one single-channel search config per channel; each ch
 its own complete search (its input or selection, objects, pairing, window and binning,
 background, signal model or resolution, efficiency and luminosity), run through the same
 code as ``peaksift search`` on that file alone, so each channel's numbers are exactly those
-of its own search.  The combination then fits all channels together with one sigma x B
+of its own search.  Channels that select from the same files (with the same execution
+settings) read them in one pass: each chunk is read once and every channel's selection runs
+on it (:func:`peaksift.execution.collect_shared`; the same result as the channel's own read).  The combination then fits all channels together with one sigma x B
 (:func:`peaksift.stats.channels.combine` and
 :func:`~peaksift.stats.channel_limits.combined_limits`).
 
@@ -26,9 +28,10 @@ channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
 ``limits.luminosity_uncertainty`` and ``limits.efficiency_uncertainty`` enter the joint
 likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channels share one
 luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
-``[systematics]`` mass-scale and resolution factors are profiled in the combined scan and
-the asymptotic combined limits (not in the combination's toys); its background envelope
-stays in its own results (both said in the results and the report).  Blinding is not
+``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
+toys and the asymptotic combined limits (not in the toy limits); its background envelope
+(the functions its own search kept) is profiled per channel in the combined scan, not in
+the combination's toys or limits (both said in the results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
 
@@ -241,7 +244,7 @@ def _upgrade(d: Mapping[str, Any]) -> dict[str, Any]:
             "shown)")
     comb = {**{k: c.get(k) for k in ("masses", "q0", "z_local", "p_local", "cross_section",
                                       "cross_section_error", "z_expected",
-                                      "expected_cross_section", "unit", "blind")},
+                                      "expected_cross_section", "unit", "blind", "envelope")},
             "converged": [v is not None for v in c["cross_section"]], "best_index": i,
             "best_mass": masses[i], "channels": {n: r["scan"] for n, r in chans.items()},
             "conversion": {}, "blinded": [not np.isfinite(v) for v in z],
@@ -270,7 +273,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     from ..stats.channel_limits import combined_limits
     from ..stats.channels import combine
     from .common import _scan_masses, _utc
-    from .run import _search
+    from .run import _search, _toy_executor
     from .staging import _apply_overrides, _check_inputs, _staged
 
     raw, base, source = _read(config)
@@ -325,16 +328,19 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         target = (t if t.is_absolute() or out is not None else base / t).resolve()
     started = _utc()
     with _staged(target, "search", share_folder) as stage:
+        shared_reads = _shared_reads(names, cfgs, progress)
         results = {n: _search(c, unblind=False, progress=progress, started=started, stage=None,
-                              target=None) for n, c in zip(names, cfgs)}
+                              target=None, collected=shared_reads.get(n))
+                   for n, c in zip(names, cfgs)}
         first = cfgs[0]
         masses = _scan_masses(first)
         channels = [_channel(n, c, results[n], shared) for n, c in zip(names, cfgs)]
         unit = first.limits.cross_section_unit
         cmb = combine(channels, masses, refit=False, unit=unit)
         sig = first.significance
+        executor = _toy_executor(first, "combined toys")
         best = cmb.global_significance(sig.method, toys=sig.toys, seed=sig.seed,
-                                       u0=sig.reference_level)
+                                       u0=sig.reference_level, executor=executor)
         lim = None
         if first.limits.enabled:
             n = min(first.limits.points, masses.size)
@@ -342,10 +348,11 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             fl = first.limits
             lim = combined_limits(channels, lm, cl=fl.cl, unit=unit, method=fl.method,
                                   toys=fl.toys, seed=sig.seed,
-                                  toy_masses=list(fl.toy_masses) or None)
-        # the joint likelihood has the luminosity and efficiency uncertainties but no shape
-        # nuisances or background envelope yet: say so rather than let a reader take the
-        # combined Z for one with every systematic
+                                  toy_masses=list(fl.toy_masses) or None,
+                                  executor=None if fl.method == "asymptotic" else
+                                  _toy_executor(first, "toy limits"))
+        # say which systematics each combined number has, rather than let a reader take
+        # the combined Z for one with every systematic
         notes: tuple[str, ...] = ()
         with_shape = [n for n, c in zip(names, cfgs)
                       if c.systematics.mass_scale or c.systematics.mass_resolution]
@@ -354,15 +361,23 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             notes += (("a combination of one channel is that channel's scan without its "
                        "[systematics] (its own results show both)"),)
         elif with_shape:
-            notes += ((f"the combined scan and the asymptotic combined limits profile the "
-                       f"[systematics] mass-scale and resolution factors of channel(s) "
-                       f"{', '.join(with_shape)}; the combination's toys (global significance, "
-                       "toy limits) leave them at 1"),)
-        if with_env and len(cfgs) > 1:
+            notes += ((f"the combined scan, its toys (at each toy's highest points) and the "
+                       f"asymptotic combined limits profile the [systematics] mass-scale and "
+                       f"resolution factors of channel(s) {', '.join(with_shape)}; the "
+                       "combination's toy limits leave them at 1"),)
+        enveloped = [n for n in names if channels[names.index(n)].background_candidates]
+        if enveloped and len(cfgs) > 1:
+            notes += ((f"the combined scan (local significance) profiles the [systematics] "
+                       f"background envelope of channel(s) {', '.join(enveloped)} as a "
+                       "discrete choice per channel (its spurious-signal term left out); the "
+                       "combination's toys (global significance: the observed envelope q0 "
+                       "against toys of the configured functions) and its limits use each "
+                       "channel's configured background function"),)
+        left = [n for n in with_env if n not in enveloped]
+        if left and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "
-                       f"envelope of "
-                       f"channel(s) {', '.join(with_env)} (each channel's own results show "
-                       "it); its numbers use each channel's configured background"),)
+                       f"choice of channel(s) {', '.join(left)} (no envelope in their "
+                       "results); its numbers use each channel's configured background"),)
         gauss = [n for n, c in zip(names, cfgs) if c.limits.constraint != "lognormal" and (
             c.limits.luminosity_uncertainty or c.limits.efficiency_uncertainty)]
         if gauss:
@@ -375,6 +390,52 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     return res
 
 
+def _shared_reads(names: list[str], cfgs: list[Any], progress: bool) -> dict[str, Any]:
+    """Each channel's events read and selected, one pass per group of channels that read
+    the same files alike (same files, execution and read settings): channel name ->
+    :class:`~peaksift.execution.Collected`, exactly what the channel's own read gives
+    (:func:`peaksift.execution.collect_shared`).  A channel alone on its input, or with dE/dx
+    identification (its selection needs a calibration pass first), reads in its search."""
+    from ..errors import CutError, InputError
+    from ..events import list_files
+    from ..execution import collect_shared
+    from .common import _keyed_cut_error, _keyed_input_error, _read_window, _selection
+
+    groups: dict[tuple, list[int]] = {}
+    for k, cfg in enumerate(cfgs):
+        if cfg.identification.enabled:
+            continue
+        ex, inp = cfg.execution, cfg.input
+        try:
+            files = tuple(str(f) for f in list_files(inp.files))
+        except InputError:
+            continue  # the channel's own read reports it, keyed to its config
+        key = (files, ex.engine, ex.workers, ex.address, ex.chunk_events, ex.unreadable_files,
+               ex.start_method, inp.hash_inputs, inp.strict, inp.column_pattern)
+        groups.setdefault(key, []).append(k)
+    out: dict[str, Any] = {}
+    for key, members in groups.items():
+        if len(members) < 2:
+            continue
+        sels = [_selection(cfgs[k], *_read_window(cfgs[k])) for k in members]
+        ex = cfgs[members[0]].execution
+        try:
+            cols = collect_shared(list(key[0]), sels, engine=ex.engine, workers=ex.workers,
+                                  address=ex.address or None, chunk_events=ex.chunk_events,
+                                  unreadable_files=ex.unreadable_files, progress=progress,
+                                  start_method=ex.start_method,
+                                  hash_files=cfgs[members[0]].input.hash_inputs)
+        except (CutError, InputError) as exc:
+            for k in members:  # the channel whose config key it is, when one is
+                keyed = (_keyed_cut_error if isinstance(exc, CutError)
+                         else _keyed_input_error)(cfgs[k], exc)
+                if keyed is not exc:
+                    raise type(exc)(f"channel {names[k]!r}: {keyed}") from None
+            raise
+        out.update((names[k], c) for k, c in zip(members, cols))
+    return out
+
+
 def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> Any:
     """The :class:`~peaksift.stats.channels.Channel` of one channel's search."""
     from ..stats.channels import Channel
@@ -383,12 +444,22 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
     r = cfg.model.resolution
     bkg = _shape(cfg.model.background, cfg.model.background_options)
     sy = cfg.systematics
+    env = (res.systematics or {}).get("envelope") if sy.background_families else None
+    cands = {}
+    if env and env.get("functions"):
+        from ..stats.background_choice import candidate_shapes
+
+        cands = {"background_candidates": candidate_shapes(list(env["functions"]),
+                                                           sqrt_s=sy.sqrt_s),
+                 "background_parameters": dict(zip(env["functions"], env["n_parameters"])),
+                 "background_penalty": float(env["penalty"])}
     norms = {"luminosity_uncertainty": float(cfg.limits.luminosity_uncertainty),
              "efficiency_uncertainty": float(cfg.limits.efficiency_uncertainty),
              "luminosity_group": "shared" if shared_luminosity else None,
              "shape_nuisances": {"mass_scale": float(sy.mass_scale),
                                  "mass_resolution": float(sy.mass_resolution)},
-             "shape_constraint": sy.constraint}
+             "shape_constraint": sy.constraint, "toy_constraints": sy.toy_constraints,
+             **cands}
     if res.signal_model is not None:
         return Channel(name, res.histogram, bkg, float(cfg.limits.luminosity),
                        signal_model=res.signal_model, window=cfg.spectrum.window, **norms)

@@ -116,6 +116,13 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
         else:
             rows.append([f"nuisance {name} (pull at the best mass)",
                          fixed(v.get("pull_at_best"), 2, signed=True)])
+    env = c.get("envelope") or {}
+    if env and best.get("mass") is not None and c.get("masses"):
+        j = min(range(len(c["masses"])), key=lambda i: abs(c["masses"][i] - best["mass"]))
+        for name, e in env.items():
+            if e.get("functions"):
+                what = f"background function of {name} at the best mass (discrete profiling)"
+                rows.append([what, f"{e['chosen'][j]} (of {', '.join(e['functions'])})"])
     out.append(("table", ["quantity", "value"], rows))
     if "pvalue_combined" in fig:
         out.append(("figure", "pvalue_combined", ("Local p-value of each channel and of their "

@@ -171,6 +171,20 @@ def _selection(cfg: Config, lo: float, hi: float, nbins: int,
     )
 
 
+def _read_window(cfg: Config) -> tuple[float, float, int]:
+    """The mass range the read collects (the union of the search and calibration windows)
+    and the bins of its overview histogram."""
+    lo, hi = cfg.spectrum.window
+    ulo, uhi = lo, hi
+    if cfg.calibration.enabled and cfg.calibration.window is not None:
+        ulo = min(ulo, cfg.calibration.window[0])
+        uhi = max(uhi, cfg.calibration.window[1])
+    # the map-reduce histogram only serves as a progress/overview spectrum on the union;
+    # the analysis histograms are filled from the window masses
+    width = (hi - lo) / cfg.spectrum.bins
+    return ulo, uhi, max(1, min(100_000, int(np.ceil((uhi - ulo) / width))))
+
+
 def _collect(cfg: Config, *, progress: bool, identification: Any = None
              ) -> tuple[Any, float, float]:
     """Run the read/select/pair map-reduce once over the union of the needed windows.
@@ -180,15 +194,7 @@ def _collect(cfg: Config, *, progress: bool, identification: Any = None
     from ..execution import collect
     from .identification import dedx_identification
 
-    lo, hi = cfg.spectrum.window
-    ulo, uhi = lo, hi
-    if cfg.calibration.enabled and cfg.calibration.window is not None:
-        ulo = min(ulo, cfg.calibration.window[0])
-        uhi = max(uhi, cfg.calibration.window[1])
-    # the map-reduce histogram only serves as a progress/overview spectrum on the union;
-    # the analysis histograms are filled from the window masses below
-    width = (hi - lo) / cfg.spectrum.bins
-    nb = max(1, min(100_000, int(np.ceil((uhi - ulo) / width))))
+    ulo, uhi, nb = _read_window(cfg)
     ex = cfg.execution
     try:
         if identification is None and cfg.identification.enabled:

@@ -123,7 +123,10 @@ def run_search(
 
 
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
-            stage: _Staging | None, target: Path | None) -> SearchResult:
+            stage: _Staging | None, target: Path | None, collected: Any = None
+            ) -> SearchResult:
+    """The search of one config; ``collected``: its events already read and selected (a
+    combination reads a shared input once for its channels), else read here."""
     # the figures are drawn beside the statistics, by a process started before the events
     # are read (it loads matplotlib meanwhile); without an output folder, or with
     # output.figures = "none", none are drawn (and no process is started)
@@ -136,7 +139,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
         # vector's: ~0.3 s) need not load at its first use here or in the stages beside
         with numba_extensions_deferred():
             return _stages(cfg, unblind=unblind, progress=progress, started=started,
-                           stage=stage, target=target, drawer=drawer, besides=besides)
+                           stage=stage, target=target, drawer=drawer, besides=besides,
+                           collected=collected)
     except BaseException:  # nothing may keep writing into the discarded staging folder
         for b in besides:
             b.cancel()
@@ -147,14 +151,15 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
 def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None, drawer: FigureWorker | None,
-            besides: list[Beside]) -> SearchResult:
+            besides: list[Beside], collected: Any = None) -> SearchResult:
     from ..fitting import fit
     from ..resonances import match_known, pair_charge
     from ..stats.scan import scan
 
     clock = _Clock()
     ident = dedx_identification(cfg, progress=progress)
-    col, _, _ = _collect(cfg, progress=progress, identification=ident)
+    col = collected if collected is not None else _collect(cfg, progress=progress,
+                                                            identification=ident)[0]
     info = dict(col.engine_info)
     _log.info("read %s events from %d files in %s chunks: engine %s, %s workers",
               f"{col.events_read:,}", len(col.files_read), info.get("chunks"),

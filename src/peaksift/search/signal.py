@@ -63,7 +63,8 @@ def search_signal_model(cfg: Config, *, progress: bool = False) -> Any:
         samples.append(SignalSample(float(m), x[keep], float(g), weights=w))
     try:
         return signal_model(samples, sm.shape, order=sm.order,
-                            efficiency_order=sm.efficiency_order, fixed=dict(sm.fix))
+                            efficiency_order=sm.efficiency_order, fixed=dict(sm.fix),
+                            raise_order=sm.raise_order)
     except FitError as exc:
         raise FitError(f"{where}: [signal_model]: {exc}") from None
 

@@ -27,7 +27,7 @@ import numpy as np
 from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
-from .channel_toys import joint_toy_limit
+from .channel_toys import run_joint_toy_limit
 from .channels import Channel, _full_model, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .joint import profile_joint
@@ -153,7 +153,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                     blind: tuple[float, float] | None = None, unit: str = "fb",
                     low_count_background: float = LOW_COUNT_BACKGROUND,
                     method: str = "auto", toys: int = 300, seed: int = 0,
-                    toy_masses: Any = None) -> CombinedLimits:
+                    toy_masses: Any = None, executor: Any = None) -> CombinedLimits:
     """CLs upper limits on sigma x B, combined and per channel (see the module guide).
 
     ``method``: ``"asymptotic"`` (formulae everywhere; masses with fewer than
@@ -161,6 +161,8 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     are flagged), ``"auto"`` (toys at those masses) or ``"toys"`` (toys at ``toy_masses``,
     default three spread over the range, and at the low-count ones).  ``toys`` per
     hypothesis and generating set; toy mass ``j`` uses the seed ``seed + j``.
+    ``executor(func, tasks) -> results in task order`` runs the toy masses (e.g. on worker
+    processes) and is handed to each channel's own limits.
     """
     if not 0 < cl < 1:
         raise FitError(f"cl must be in (0, 1), got {cl!r}; e.g. cl=0.95")
@@ -193,7 +195,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
             toy_masses=toy_masses if method == "toys" else None,
             efficiency=None if ch.signal_model is not None and ch.efficiency is None else (
                 lambda m, k=k, lumi=float(ch.luminosity): np.interp(m, m_all, k) / lumi),
-            unit=unit,
+            unit=unit, executor=executor,
             low_count_background=low_count_background)
     alpha = 1.0 - cl
     nm = m_all.size
@@ -253,6 +255,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     if sp_obs is not None and want:
         notes.append("the toy-based limits leave the channels' mass-scale and resolution "
                      "factors at 1 (the asymptotic ones profile them)")
+    todo, tasks = [], []
     for j in sorted({int(x) for x in want}):
         if bl[j]:
             notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
@@ -260,8 +263,16 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         row = int(np.sum(~bl[:j]))
         one = [dataclasses.replace(p[0], masses=p[0].masses[row:row + 1],
                                    fractions=p[0].fractions[row:row + 1]) for p in prepared]
-        res = joint_toy_limit(one, [float(k[j]) for k in conv], norms, cl, int(toys),
-                              int(seed) + j, float(obs[j]), bands[:, j].copy())
+        todo.append(j)
+        tasks.append((one, [float(k[j]) for k in conv], norms, cl, int(toys), int(seed) + j,
+                      float(obs[j]), bands[:, j].copy()))
+    # one task per mass, each seeded by its mass: the engine does not change the result
+    done = (list(executor(run_joint_toy_limit, tasks)) if executor is not None
+            and len(tasks) > 1 else [run_joint_toy_limit(t) for t in tasks])
+    if len(done) != len(tasks):
+        raise FitError(f"the toy executor returned {len(done)} results for {len(tasks)} "
+                       "toy limits")
+    for j, res in zip(todo, done):
         obs[j] = res["observed"]
         bands[:, j] = [res["expected"][n] for n in _BANDS]
         methods[j] = "toys"

@@ -25,9 +25,11 @@ One channel goes through :func:`peaksift.scan` unchanged: the combination of one
 Luminosity and efficiency uncertainties enter as constrained log-normal factors on each
 channel's signal (:mod:`peaksift.stats.joint`); in the scan they matter only through the
 channels' relative normalisation (a common factor is absorbed by sigma x B).  A channel's
-``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan and the
-asymptotic limits, not in the combination's toys.  Not here (said plainly): the channels'
-background envelopes; each channel's own results carry those.
+``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan, the
+asymptotic limits and the toys of the global significance (at each toy's highest points, as
+for one channel; ``toy_constraints`` chooses the ensemble); the toy limits keep them at 1.
+A channel's ``background_candidates`` are profiled as a discrete choice in the combined scan
+(:mod:`peaksift.stats.channel_envelope`), not in its toys or limits.
 """
 
 from __future__ import annotations
@@ -42,12 +44,14 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
+from .channel_envelope import envelope_of_channels
 from .channel_toys import combined_toy_scans
 from .joint import profile_joint
+from .joint_start import joint_start
 from .scan import scan_prepared
 from .scan_inputs import _prepare_model, _signal_params
 from .significance import p_from_q0, z_from_q0
-from .toys import bkg_fractions, fit_background
+from .toys import fit_background
 
 __all__ = [
     "Channel",
@@ -85,7 +89,14 @@ class Channel:
     shape_nuisances : mapping, optional
         Relative sizes of the channel's signal-shape nuisances (``mass_scale``,
         ``mass_resolution``), profiled with their constraints in the combined scan;
-        ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``).
+        ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``);
+        ``toy_constraints`` whether the combination's toys keep their constraints' centres
+        at 1 (``"fixed"``) or draw them per toy (``"sampled"``).
+    background_candidates : mapping, optional
+        Label -> background shape: the channel's function is profiled as a discrete choice
+        among them in the combined scan (:mod:`peaksift.stats.channel_envelope`), with
+        ``background_penalty`` per free parameter (``background_parameters`` label ->
+        count; default the shape's parameters and its yield).
     """
 
     name: str
@@ -105,6 +116,10 @@ class Channel:
     luminosity_group: str | None = None
     shape_nuisances: Mapping[str, float] | None = None
     shape_constraint: str = "gaussian"
+    toy_constraints: str = "fixed"
+    background_candidates: Mapping[str, Any] | None = None
+    background_parameters: Mapping[str, int] | None = None
+    background_penalty: float = 1.0
 
     def shape_spec(self, prepared: tuple, blinded: np.ndarray, *, every_mass: bool = False,
                    repeat: int = 1) -> Any:
@@ -114,6 +129,9 @@ class Channel:
         sizes = {k: float(v) for k, v in (self.shape_nuisances or {}).items() if v}
         if not sizes:
             return None
+        if self.toy_constraints not in ("fixed", "sampled"):
+            raise FitError(f"channel {self.name!r}: toy_constraints must be 'fixed' or "
+                           f"'sampled', got {self.toy_constraints!r}")
         from ..likelihood import SignalNuisances
 
         try:
@@ -242,13 +260,14 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     chans, prepared, m_all, bl, conv = _prepare_all(channels, masses, blind)
     norms, norm_names = signal_norms(chans)
     specs = [ch.shape_spec(p, bl) for ch, p in zip(chans, prepared)]
-    per = {}
+    per, fits = {}, []
     for ch, (model, spec, info), k in zip(chans, prepared, conv):
         exp_s = None if expected_cross_section is None else (
             lambda m, k=k: float(expected_cross_section) * np.interp(m, m_all, k))
+        fits.append({})
         per[ch.name] = scan_prepared(ch.data, model, spec, info, blind=blind,
                                      expected_signal=exp_s, natural_width=ch.natural_width,
-                                     refit=refit)
+                                     refit=refit, fits=fits[-1])
     nm = m_all.size
     mu, mu_err = np.full(nm, np.nan), np.full(nm, np.nan)
     shape_names = tuple(f"{nm}_{ch.name}" for ch, sp in zip(chans, specs) if sp is not None
@@ -258,7 +277,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     q0 = np.full(nm, np.nan)
     converged = np.zeros(nm, bool)
     notes: list[str] = []
-    z_exp = None
+    z_exp = envelope = None
     if len(chans) == 1:  # one channel: its scan is the combination (same numbers)
         s = per[chans[0].name]
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -268,16 +287,14 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         notes += list(s.notes)
     elif (~bl).any():
         models = [p[0] for p in prepared]
-        mu0 = _start(list(per.values()), conv)[~bl]
-        # start: the channels' own fits combined (sigma x B) and their background yields
-        # moved along with their signal;
+        # start: the channels' own fits combined to second order (joint_start);
         # a last step below 0.03 errors leaves q0 within ~1e-5 (Newton: the next would be
         # ~1e-3 errors), so the fit stops there
         r = profile_joint(models, [m.counts for m in models], [m.fractions for m in models],
                           [k[~bl] for k in conv], steps=100, tol=3e-2,
-                          mu_start=mu0,
-                          b_start=_b_start(models, list(per.values()), conv, mu0, bl),
-                          norms=norms, shapes=specs if any(specs) else None)
+                          **joint_start(models, fits, [k[~bl] for k in conv], norms),
+                          norms=norms, shapes=specs if any(specs) else None,
+                          curvature=[m.theta for m in models])
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q0[~bl], mu[~bl], mu_err[~bl], converged[~bl] = q, r["mu"], r["mu_error"], r["converged"]
@@ -288,6 +305,14 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
             notes.append(f"{int((~r['converged']).sum())} combined hypotheses did not converge")
         if expected_cross_section is not None:
             z_exp = _expected_z(prepared, conv, float(expected_cross_section), norms)
+        env = envelope_of_channels(chans, prepared, fits, specs, conv, bl, norms,
+                                   lambda ch: _prepare(ch, m_all, blind))
+        if env is not None:   # the channels' background functions profiled
+            q0[~bl], mu[~bl], mu_err[~bl] = env["q0"], env["mu"], env["mu_error"]
+            converged[~bl] = env["converged"]
+            if nu_fit is not None:
+                nu_fit[~bl] = env["nuisances"]
+            envelope = env["entry"]
     if bl.all():
         notes.append("every mass hypothesis is blinded")
     qsel = np.where(bl, -np.inf, np.nan_to_num(q0, nan=-np.inf))
@@ -303,41 +328,8 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         z_expected=z_exp, expected_cross_section=expected_cross_section, unit=unit,
         notes=tuple(notes), prepared=tuple(p[0] for p in prepared),
         nuisances=norm_names + shape_names,
-        nuisance_values=nu_fit, norms=norms)
-
-
-def _start(scans: list, conv: list[np.ndarray]) -> np.ndarray:
-    """Starting sigma x B of the joint fit: the channels' own fitted yields over their
-    conversions, averaged with inverse-variance weights (0 where none is usable)."""
-    num, den = 0.0, 0.0
-    with np.errstate(divide="ignore", invalid="ignore"):
-        for s, k in zip(scans, conv):
-            w = np.where(k > 0, (k / np.asarray(s.signal_yield_error)) ** 2, 0.0)
-            w = np.where(np.isfinite(w), w, 0.0)
-            num = num + w * np.nan_to_num(np.asarray(s.signal_yield) / k)
-            den = den + w
-        out = np.where(den > 0, num / den, 0.0)
-    return np.where(np.isfinite(out), out, 0.0)
-
-
-def _b_start(models: list, scans: list, conv: list[np.ndarray], mu0: np.ndarray,
-             bl: np.ndarray) -> list[np.ndarray]:
-    """Starting background yields of the joint fit: each channel's own fitted yield moved to
-    first order with its signal, from its own s_c to k_c mu0 (the slope -H_bs / H_bb of
-    the Poisson NLL at the channel's fit, shapes at the background-only fit): the joint fit
-    then starts within second order of its minimum."""
-    out = []
-    for m, sc, k in zip(models, scans, conv):
-        s = np.nan_to_num(np.asarray(sc.signal_yield, float)[~bl])
-        b = np.asarray(sc.background_yield, float)[~bl]
-        g = bkg_fractions(m, m.theta[None, :])[0]
-        with np.errstate(all="ignore"):
-            nu = np.maximum(s[:, None] * m.fractions + b[:, None] * g, 1e-300)
-            v = m.counts / nu**2
-            slope = -np.sum(v * m.fractions * g, axis=1) / np.maximum(v @ (g * g), 1e-300)
-            moved = b + slope * (k[~bl] * mu0 - s)
-        out.append(np.where(np.isfinite(moved) & (moved > 0), moved, b))
-    return out
+        nuisance_values=nu_fit, norms=norms, envelope=envelope, shapes=tuple(specs),
+        toy_constraints=tuple(ch.toy_constraints for ch in chans))
 
 
 def _expected_z(prepared: list, conv: list[np.ndarray], xs: float, norms: Any = None
@@ -409,7 +401,12 @@ class Combination(FrozenValue):
     prepared: tuple = field(default=(), compare=False)
     nuisances: tuple[str, ...] = ()
     nuisance_values: np.ndarray | None = None   # (n_masses, J) fitted, NaN where blinded
+    #: per channel its background functions profiled in the scan (None: none were)
+    envelope: Any = None
     norms: Any = field(default=None, compare=False)
+    #: per channel its shape factors for the toys (None: none), and their ensemble
+    shapes: tuple = field(default=(), compare=False)
+    toy_constraints: tuple = field(default=(), compare=False)
 
     @property
     def best(self) -> dict[str, float]:
@@ -451,7 +448,8 @@ class Combination(FrozenValue):
             "blinded": [bool(v) for v in self.blinded], "z_expected": self.z_expected,
             "expected_cross_section": self.expected_cross_section, "unit": self.unit,
             "notes": list(self.notes), "nuisances": list(self.nuisances),
-            "nuisance_values": self.nuisance_values, "norms": self.norms})
+            "nuisance_values": self.nuisance_values, "norms": self.norms,
+            "envelope": self.envelope})
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> Combination:
@@ -476,7 +474,8 @@ class Combination(FrozenValue):
                 blinded=np.array(d["blinded"], bool), z_expected=arr(d.get("z_expected")),
                 expected_cross_section=d.get("expected_cross_section"), unit=d["unit"],
                 notes=tuple(d.get("notes") or ()), nuisances=tuple(d.get("nuisances") or ()),
-                nuisance_values=arr(d.get("nuisance_values")), norms=arr(d.get("norms")))
+                nuisance_values=arr(d.get("nuisance_values")), norms=arr(d.get("norms")),
+                envelope=d.get("envelope"))
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"Combination.from_dict: not a combination written by "
                            f"Combination.to_dict ({exc!r})") from None
@@ -496,16 +495,18 @@ class Combination(FrozenValue):
         return {"shift_at_best": v}
 
     def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
-                            seed: int = 0, u0: float = 0.5) -> dict[str, Any]:
+                            seed: int = 0, u0: float = 0.5,
+                            executor: Any = None) -> dict[str, Any]:
         """Global significance of the combination's best excess; the toys generate every
         channel from its background-only fit (each channel from its own seed stream) and
-        are scanned with the joint likelihood.  As :meth:`ScanResult.global_significance`."""
+        are scanned with the joint likelihood (their batches on ``executor`` when given).
+        As :meth:`ScanResult.global_significance`."""
         if method not in ("upcrossings", "toys"):
             raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
                            f"got {method!r}")
         if len(self.channels) == 1:
             return next(iter(self.channels.values())).global_significance(
-                method, toys=toys, seed=seed, u0=u0)
+                method, toys=toys, seed=seed, u0=u0, executor=executor)
         if not self.prepared:
             raise FitError("this Combination carries no models (rebuilt from a dict?); rerun "
                            "combine")
@@ -521,7 +522,10 @@ class Combination(FrozenValue):
         else:
             scans = combined_toy_scans(list(self.prepared),
                                        [np.asarray(k)[mask] for k in self.conversion.values()],
-                                       n, seed=seed, norms=self.norms)
+                                       n, seed=seed, norms=self.norms,
+                                       shapes=self.shapes or None,
+                                       ensembles=self.toy_constraints or None,
+                                       executor=executor)
             res = (lee.global_from_toys(q_obs, scans.max(axis=1)) if method == "toys" else
                    lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps))
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),

@@ -53,7 +53,9 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
                   b_start: Sequence[np.ndarray] | None = None,
                   steps: int = 60, tol: float = 1e-6, norms: Any = None,
                   nu_start: Any = None, nu_aux: Any = None,
-                  shapes: Sequence[Any] | None = None) -> dict[str, Any]:
+                  shapes: Sequence[Any] | None = None,
+                  curvature: Sequence[np.ndarray] | None = None,
+                  shape_centers: Sequence[Any] | None = None) -> dict[str, Any]:
     """Joint signal-plus-background fits of several channels for stacked hypotheses.
 
     Parameters
@@ -82,6 +84,15 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
         :class:`~peaksift.likelihood.SignalNuisances` whose shape factors (mass scale,
         resolution) are profiled with their constraints; the channel's fractions are then
         recomputed at every trial point (``fractions`` is not used for it).
+    curvature : sequence of arrays, optional
+        Per channel the background parameters ``(K,)`` at which the shape's second
+        derivatives enter the Hessian (default: each row's start); one set for all rows
+        (e.g. the background-only fit, as :func:`~peaksift.stats.toys.profile_signal`
+        takes it) costs one evaluation instead of one per row.
+    shape_centers : sequence, optional
+        Per channel None or ``(B, J_c)``: the centres of its shape factors' constraints
+        (their auxiliary measurements; default 1; toys of an unconditional ensemble draw
+        them).
 
     Returns
     -------
@@ -96,11 +107,12 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
     with np.errstate(all="ignore"):
         return _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start,
                         b_start, steps, tol, a, nu_start, nu_aux,
-                        [None] * len(models) if shapes is None else list(shapes))
+                        [None] * len(models) if shapes is None else list(shapes),
+                        curvature, shape_centers)
 
 
 def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b_start,
-             steps, tol, a_norm, nu_start, nu_aux, specs):
+             steps, tol, a_norm, nu_start, nu_aux, specs, curvature=None, centers=None):
     nc = len(models)
     f = [np.atleast_2d(np.asarray(x, float)) for x in fractions]
     nb = f[0].shape[0]
@@ -154,11 +166,13 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
                 fr.append(_take(f[c], rows, nb))
         return fr, dfr
 
-    def factor_terms(kap_):
+    def factor_terms(kap_, rows):
         val, grads, hesss = 0.0, [], []
         for c in shaped:
             kc_ = kap_[:, kfirst[c] - off - nj:][:, :len(names[c])]
-            v, gr, he = specs[c][2].constraint_terms(names[c], kc_)
+            cen = None if centers is None or centers[c] is None else np.asarray(
+                centers[c], float)[rows]
+            v, gr, he = specs[c][2].constraint_terms(names[c], kc_, cen)
             val = val + v
             grads.append(gr)
             hesss.append(he)
@@ -168,7 +182,7 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
         out = np.zeros(rows.size) if a_norm is None else 0.5 * np.sum(
             (nu_ - aux[rows]) ** 2, axis=1)
         if shaped:
-            out = out + factor_terms(kap_)[0]
+            out = out + factor_terms(kap_, rows)[0]
         for c in range(nc):
             s = np.ascontiguousarray(mu_ * k[c][rows] * _scale(a_norm, c, nu_), float)
             part = np.empty(rows.size)
@@ -183,8 +197,10 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     if np.any(~np.isfinite(nll)) and not fixed:
         mu = np.where(np.isfinite(nll), mu, 0.0)
         nll = total(mu, nu, kap, b, g0, fr0, all_rows)
+    at = theta if curvature is None else [
+        np.broadcast_to(np.asarray(cv, float), th.shape) for cv, th in zip(curvature, theta)]
     d2 = [_per_row(bkg_second, m, th, view=True) if kc else None
-          for m, th, kc in zip(models, theta, ks)]
+          for m, th, kc in zip(models, at, ks)]
 
     def unpack(x, rows):
         mu_ = mu[rows] if fixed else x[:, 0]
@@ -214,7 +230,7 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
                             state[nc:2 * nc], state[:nc], d2, rows, fixed, first, p, xnu,
                             dfr, kfirst)
         if shaped:
-            _, cg, ch = factor_terms(xkap)
+            _, cg, ch = factor_terms(xkap, rows)
             for c, gc_, hc_ in zip(shaped, cg, ch):
                 at = np.arange(kfirst[c], kfirst[c] + len(names[c]))
                 gr[:, at] += gc_

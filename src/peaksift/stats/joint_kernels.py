@@ -1,8 +1,9 @@
 """Compiled per-channel passes of the joint profile (:mod:`peaksift.stats.joint`).
 
-One pass over a channel's bins per stacked row gives every sum its Newton step needs, so the
-gradient and Hessian of ``nu_i = s f_i + b g_i(theta)`` cost one loop instead of a dozen
-numpy passes over ``(rows, bins)`` arrays:
+A compiled pass over a channel's bins per stacked row (and one more per shape parameter)
+gives every sum its Newton step needs, so the gradient and Hessian of ``nu_i = s f_i + b
+g_i(theta)`` cost a loop or two instead of a dozen numpy passes over ``(rows, bins)``
+arrays:
 
 * :func:`channel_nll`  -- ``sum_i nu_i - n_i ln nu_i`` per row (the extended binned Poisson
   NLL without its saturated constant, :func:`peaksift.likelihood.binned_nll`), ``inf`` for a
@@ -41,33 +42,68 @@ def channel_nll(n, f, g, s, b, out):  # pragma: no cover - compiled
 @njit(cache=True, nogil=True)
 def channel_sums(n, f, g, dg, d2, s, b, fs, gs, ds, dd):  # pragma: no cover - compiled
     """``fs (R, 3 + K)``: f w, f f v, f g v, f dg_k v; ``gs (R, 2 + K)``: g w, g g v,
-    g dg_k v; ``ds (R, K)``: dg_k w; ``dd (R, 2, K, K)``: dg_k dg_l v and d2_kl w."""
+    g dg_k v; ``ds (R, K)``: dg_k w; ``dd (R, 2, K, K)``: dg_k dg_l v and d2_kl w.
+
+    Local accumulators, one pass for the yields' sums (keeping w and v of every bin) and
+    one per shape parameter and pair (``dd`` is symmetric): the compiler keeps them in
+    registers, which an accumulation into the output arrays does not allow."""
     rows, bins = f.shape
     kk = dg.shape[1]
+    wv = np.empty((2, bins))
     for r in range(rows):
+        sr = s[r]
+        br = b[r]
+        a0 = 0.0
+        a1 = 0.0
+        a2 = 0.0
+        c0 = 0.0
+        c1 = 0.0
         for i in range(bins):
-            nu = max(s[r] * f[r, i] + b[r] * g[r, i], 1e-100)
-            ratio = n[r, i] / nu
-            w = 1.0 - ratio
-            v = ratio / nu
             fi = f[r, i]
             gi = g[r, i]
+            inv = 1.0 / max(sr * fi + br * gi, 1e-100)
+            ratio = n[r, i] * inv
+            w = 1.0 - ratio
+            v = ratio * inv
+            wv[0, i] = w
+            wv[1, i] = v
             fv = fi * v
-            gv = gi * v
-            fs[r, 0] += fi * w
-            fs[r, 1] += fi * fv
-            fs[r, 2] += gi * fv
-            gs[r, 0] += gi * w
-            gs[r, 1] += gi * gv
-            for k in range(kk):
+            a0 += fi * w
+            a1 += fi * fv
+            a2 += gi * fv
+            c0 += gi * w
+            c1 += gi * gi * v
+        fs[r, 0] += a0
+        fs[r, 1] += a1
+        fs[r, 2] += a2
+        gs[r, 0] += c0
+        gs[r, 1] += c1
+        for k in range(kk):
+            e0 = 0.0
+            e1 = 0.0
+            e2 = 0.0
+            for i in range(bins):
                 dk = dg[r, k, i]
-                fs[r, 3 + k] += dk * fv
-                gs[r, 2 + k] += dk * gv
-                ds[r, k] += dk * w
-                dkv = dk * v
-                for m in range(kk):
-                    dd[r, 0, k, m] += dkv * dg[r, m, i]
-                    dd[r, 1, k, m] += d2[r, k, m, i] * w
+                dv = dk * wv[1, i]
+                e0 += f[r, i] * dv
+                e1 += g[r, i] * dv
+                e2 += dk * wv[0, i]
+            fs[r, 3 + k] += e0
+            gs[r, 2 + k] += e1
+            ds[r, k] += e2
+            for m in range(k, kk):
+                h0 = 0.0
+                h1 = 0.0
+                h2 = 0.0
+                for i in range(bins):
+                    h0 += dg[r, k, i] * wv[1, i] * dg[r, m, i]
+                    h1 += d2[r, k, m, i] * wv[0, i]
+                    h2 += d2[r, m, k, i] * wv[0, i]
+                dd[r, 0, k, m] += h0
+                dd[r, 1, k, m] += h1
+                if m != k:
+                    dd[r, 0, m, k] += h0
+                    dd[r, 1, m, k] += h2
 
 
 def sums(n: np.ndarray, f: np.ndarray, g: np.ndarray, dg: np.ndarray, d2: np.ndarray,

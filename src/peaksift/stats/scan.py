@@ -141,9 +141,12 @@ def scan(
 def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, Any], *,
                   blind: Any, expected_signal: Any, natural_width: Any,
                   refit: bool, nuisances: Any = None,
-                  nuisance_toys: str = "fixed") -> ScanResult:
+                  nuisance_toys: str = "fixed", fits: dict | None = None) -> ScanResult:
     """The scan of a model prepared by :func:`_prepare_model` (the channels of a
-    combination prepare theirs once and scan them here, as :func:`scan` does)."""
+    combination prepare theirs once and scan them here, as :func:`scan` does).  ``fits``,
+    a dict, receives the profile fits at the unblinded hypotheses (``s``, ``b``, ``theta``,
+    ``hessian``: :func:`~peaksift.stats.toys.profile_signal`'s), from which a combination
+    starts its joint fit."""
     signal_params = info["signal_params"]
     m_all = info["masses"]
     bl = info["blinded_mass"]
@@ -158,6 +161,8 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         r = profile_signal(model, model.counts, model.fractions,
                            theta_start=np.repeat(model.theta[None, :], mb, axis=0),
                            b_start=np.full(mb, model.bkg_yield), steps=100)
+        if fits is not None:
+            fits.update(r)
         q0 = np.where(r["s"] > 0, np.maximum(2.0 * (model.nll_background - r["nll"]), 0.0), 0.0)
         arr["q0"][~bl] = q0
         # yields are in weighted units already (the per-bin k_i sits in the expectations)

@@ -46,10 +46,11 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 
-__all__ = ["SignalModel", "SignalSample", "fit_polynomial", "signal_model"]
+__all__ = ["ORDER_TEST_SIZE", "SignalModel", "SignalSample", "fit_polynomial", "signal_model"]
 
 _ONE_SIGMA = 0.682689492137086   # central probability of +-1 sigma
 _CLOSURE_FLAG = 3.0              # leave-one-out deviation (in errors) flagged as doubtful
+ORDER_TEST_SIZE = 0.05           # raise_order: the next order while chi2's p-value is below
 _RANGE_TOLERANCE = 1e-9          # relative: a mass this close to the range counts as inside
 _NO_BACKGROUND = {"background_yield": 0.0, "b1": 0.0}  # a signal-only fit of the core
 
@@ -185,7 +186,7 @@ def _param_points(fits: list[dict[str, Any]], masses: np.ndarray, names: Sequenc
 def signal_model(samples: Sequence[SignalSample], shape: Any = "crystalball", *,
                  order: int | Mapping[str, int] = 1, efficiency_order: int = 2,
                  fixed: Mapping[str, float] | None = None, bins: int = 200,
-                 half_width: float = 10.0) -> SignalModel:
+                 half_width: float = 10.0, raise_order: bool = False) -> SignalModel:
     """Build the signal model from simulated samples at several generated masses.
 
     Parameters
@@ -206,6 +207,12 @@ def signal_model(samples: Sequence[SignalSample], shape: Any = "crystalball", *,
     bins, half_width :
         Each sample is fitted in ``bins`` bins over its median +- ``half_width`` core
         widths (the core width is half the central 68% range of its masses).
+    raise_order : bool
+        Take ``order`` and ``efficiency_order`` as the lowest orders and raise each
+        quantity's order while its polynomial does not describe the points (chi2 p-value
+        below ``ORDER_TEST_SIZE``, ``scipy.stats.chi2.sf``), up to ``samples - 2`` (the
+        leave-one-out check keeps one point spare): precise samples resolve the curvature
+        of a resolution or the turn-on of an efficiency that a low order misses.
 
     Returns
     -------
@@ -251,6 +258,8 @@ def signal_model(samples: Sequence[SignalSample], shape: Any = "crystalball", *,
     x = (masses - centre) / half
     polys, closure = {}, {}
     for k, (y, e) in points.items():
+        if raise_order:  # the orders taken are in ``polynomials`` (not a doubt)
+            orders[k] = _raised_order(x, y, e, orders[k], masses.size - 2)
         c, cov, chi2, ndf = fit_polynomial(x, y, e, orders[k])
         polys[k] = {"order": orders[k], "coefficients": c, "covariance": cov,
                     "chi2": chi2, "ndf": ndf}
@@ -280,6 +289,19 @@ def signal_model(samples: Sequence[SignalSample], shape: Any = "crystalball", *,
         fit_values=tuple(dict(f["result"].values) for f in fits),
         fits_valid=np.array([f["result"].valid for f in fits]),
         weighted=any(s.weights is not None for s in samples), notes=tuple(notes))
+
+
+def _raised_order(x: np.ndarray, y: np.ndarray, e: np.ndarray, order: int, top: int) -> int:
+    """The lowest order from ``order`` up to ``top`` whose polynomial describes the points
+    (chi2 p-value >= ORDER_TEST_SIZE); ``top`` when none does."""
+    from scipy import stats
+
+    while order < top:
+        _, _, chi2, ndf = fit_polynomial(x, y, e, order)
+        if ndf <= 0 or stats.chi2.sf(chi2, ndf) >= ORDER_TEST_SIZE:
+            break
+        order += 1
+    return order
 
 
 def _leave_one_out(x: np.ndarray, y: np.ndarray, e: np.ndarray, order: int) -> dict[str, Any]:

@@ -213,7 +213,8 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     steps with the Fisher-type Hessian and step halving on the exact NLL.
 
     Returns a dict of ``s``, ``s_error`` (from the inverse observed Hessian), ``b``,
-    ``theta``, ``nll`` and ``converged``.
+    ``theta``, ``nll``, ``converged`` and ``hessian`` (free fits: the exact Hessian
+    ``(B, 2 + K, 2 + K)`` over ``(s, b, theta)`` at the minimum; else None).
     """
     f = np.atleast_2d(np.asarray(fractions, float))
     nb, nbin = f.shape
@@ -288,7 +289,7 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     s, b, theta, g, nll, converged = s.copy(), b.copy(), theta.copy(), r.state[0], r.nll, \
         r.converged
     # Hessian-based error of the signal yield: inverse of the exact Hessian at the minimum
-    s_err = (np.full(nb, np.nan) if fixed else
-             first_error(grad_hess(r.x, r.state, np.arange(nb))[1]))
+    hess = None if fixed else grad_hess(r.x, r.state, np.arange(nb))[1]
+    s_err = np.full(nb, np.nan) if fixed else first_error(hess)
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
-            "converged": converged}
+            "converged": converged, "hessian": hess}

@@ -1,0 +1,153 @@
+r"""Discrete profiling in a combination: each channel's choice of background function.
+
+A channel with ``background_candidates`` (:class:`~peaksift.stats.channels.Channel`) has
+its background function profiled as a discrete nuisance parameter (Dauncey, Kenzie,
+Wardle, Davies, "Handling uncertainties in background shapes: the discrete profiling
+method", JINST 10 (2015) P04015), as its own search does (:mod:`peaksift.stats.envelope`).
+In the product likelihood each channel's choice is its own discrete parameter, so the
+combination's envelope is the minimum over every assignment :math:`f = (f_1, \dots, f_C)`
+of one function per channel, with the paper's penalty :math:`a_c` per free parameter
+:math:`N_{c,f_c}` of each:
+
+.. math:: -2\ln L_{env}(\mu) = \min_f \Big[\sum_c -2\ln L_{c,f_c}(\mu)
+          + \sum_c a_c N_{c,f_c}\Big],
+
+profiled over every channel's background and the nuisances at each assignment (the joint
+fit of :mod:`peaksift.stats.joint`, one per assignment: the product of the channels'
+candidate counts).  The discovery statistic is :math:`q_0 = -2\ln L_{env}(0) -
+\min_{\mu \ge 0} -2\ln L_{env}(\mu)`: since the channels are independent under the null, its
+first term is :math:`\sum_c \min_{f_c} [2\mathrm{NLL}^{(0)}_{c,f_c} + a_c N_{c,f_c}]`.
+
+Only the scan (local significance) is profiled this way; the combination's toys and limits
+use each channel's configured function (said in the results).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+from typing import Any
+
+import numpy as np
+
+from ..errors import FitError
+from .joint import profile_joint
+from .joint_start import joint_start
+from .toys import profile_signal
+
+__all__ = ["envelope_of_channels"]
+
+
+def _candidates(ch: Any) -> list[tuple[str, Any, int]]:
+    """(label, shape, free parameters) of a channel's candidate functions (its configured
+    function alone when it has none)."""
+    cands = ch.background_candidates
+    if not cands:
+        return [("", ch.background, 0)]
+    counts = dict(ch.background_parameters or {})
+    out = []
+    for label, shape in cands.items():
+        n = counts.get(label)
+        if n is None:
+            n = len(getattr(shape, "parameters", ())) + 1   # its parameters and its yield
+        out.append((str(label), shape, int(n)))
+    return out
+
+
+def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
+                         conv: list[np.ndarray], bl: np.ndarray, norms: Any,
+                         prepare: Any) -> dict[str, Any] | None:
+    """The combined scan with the channels' background functions profiled (module guide).
+
+    ``prepared``/``fits``: each channel's model and own profile fits with its configured
+    function (reused for it when it has no candidates); ``prepare(channel)`` prepares a
+    channel with another background on the combination's masses.  None when no channel
+    has candidates; else a dict of ``q0``, ``mu``, ``mu_error``, ``converged`` (at the
+    unblinded masses), ``entry`` (the Combination's ``envelope``), ``nuisances`` (the chosen fit's normalisation nuisances and shape
+    factor shifts, as :func:`~peaksift.stats.channels.combine` lists them), ``labels`` (per
+    channel its candidates), ``chosen`` ``(masses, channels)`` (each channel's function at
+    each mass) and ``null_choice`` (at mu = 0)."""
+    if not any(ch.background_candidates for ch in chans):
+        return None
+    per: list[list[tuple[Any, dict]]] = []
+    labels, counts, penalties = [], [], []
+    for c, ch in enumerate(chans):
+        cands = _candidates(ch)
+        pen = float(ch.background_penalty)
+        if not (np.isfinite(pen) and pen >= 0):
+            raise FitError(f"channel {ch.name!r}: background_penalty must be >= 0, got "
+                           f"{ch.background_penalty!r}")
+        models = []
+        for label, shape, _ in cands:
+            if not ch.background_candidates:
+                models.append((prepared[c][0], fits[c]))
+                continue
+            model = prepare(dataclasses.replace(ch, background=shape))[0]
+            if model.used.size != prepared[c][0].used.size:
+                raise FitError(f"channel {ch.name!r}: background candidate {label} sees "
+                               "different bins than the channel's function")
+            mb = model.masses.size
+            fit = profile_signal(model, model.counts, model.fractions,
+                                 theta_start=np.repeat(model.theta[None, :], mb, axis=0),
+                                 b_start=np.full(mb, model.bkg_yield), steps=100)
+            models.append((model, fit))
+        per.append(models)
+        labels.append(tuple(lab for lab, _, _ in cands))
+        counts.append(np.array([n for _, _, n in cands], float))
+        penalties.append(pen)
+    k = [np.asarray(x)[~bl] for x in conv]
+    # the null: each channel's best penalised background-only fit, independently
+    null0 = sum(min(2.0 * m.nll_background + a * n for (m, _), n in zip(models, cnt))
+                for models, cnt, a in zip(per, counts, penalties))
+    null_choice = [int(np.argmin([2.0 * m.nll_background + a * n
+                                  for (m, _), n in zip(models, cnt)]))
+                   for models, cnt, a in zip(per, counts, penalties)]
+    best = None
+    for combo in itertools.product(*[range(len(p)) for p in per]):
+        models = [per[c][f][0] for c, f in enumerate(combo)]
+        cfits = [per[c][f][1] for c, f in enumerate(combo)]
+        r = profile_joint(models, [m.counts for m in models], [m.fractions for m in models],
+                          k, steps=100, tol=3e-2, **joint_start(models, cfits, k, norms),
+                          norms=norms, shapes=specs if any(specs) else None,
+                          curvature=[m.theta for m in models])
+        nll0 = sum(m.nll_background for m in models)
+        q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
+        pen = sum(a * cnt[f] for a, cnt, f in zip(penalties, counts, combo))
+        two_nll = np.where(np.isfinite(q), 2.0 * nll0 - q, np.inf) + pen
+        nuis = np.concatenate([r["nu"]] + [fc - 1.0 for fc in r["factors"]], axis=1)
+        if best is None:
+            best = {"two_nll": two_nll, "mu": r["mu"], "mu_error": r["mu_error"],
+                    "converged": r["converged"], "nuisances": nuis,
+                    "chosen": np.tile(np.array(combo), (two_nll.size, 1))}
+            continue
+        take = two_nll < best["two_nll"]
+        for key, val in (("two_nll", two_nll), ("mu", r["mu"]), ("mu_error", r["mu_error"]),
+                         ("converged", r["converged"])):
+            best[key] = np.where(take, val, best[key])
+        best["nuisances"] = np.where(take[:, None], nuis, best["nuisances"])
+        best["chosen"][take] = combo
+    assert best is not None
+    out = {"q0": np.maximum(null0 - best["two_nll"], 0.0), "mu": best["mu"],
+            "mu_error": best["mu_error"], "converged": best["converged"],
+            "nuisances": best["nuisances"], "labels": labels, "chosen": best["chosen"], "null_choice": null_choice,
+            "penalties": penalties, "n_parameters": [tuple(int(v) for v in c) for c in counts]}
+    out["entry"] = _entry(chans, out, bl)
+    return out
+
+
+def _entry(chans: list, env: dict, bl: np.ndarray) -> dict[str, Any]:
+    """The combination's ``envelope`` entry: per channel its candidates, penalty, free
+    parameters, the function at mu = 0 and at each mass (None where blinded)."""
+    out: dict[str, Any] = {}
+    for c, ch in enumerate(chans):
+        labs = env["labels"][c]
+        chosen: list[Any] = [None] * bl.size
+        for j, i in zip(np.flatnonzero(~bl), env["chosen"][:, c]):
+            chosen[j] = labs[int(i)] or None
+        out[ch.name] = {"functions": [lab for lab in labs if lab],
+                        "penalty": env["penalties"][c],
+                        "n_parameters": list(env["n_parameters"][c]),
+                        "null_choice": labs[env["null_choice"][c]] or None,
+                        "chosen": chosen}
+    return out
+
