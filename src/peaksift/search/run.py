@@ -234,7 +234,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             if limits_job is not None and smodel is None:
                 syst_limits_job = Beside(systematic_limits_at, cfg, hist, scan_sig, envelope,
                                          _limit_masses(cfg, masses), natural_width=width,
-                                         blind=blind_window)
+                                         blind=blind_window,
+                                         executor=_toy_executor(cfg, "toy limits"))
                 besides.append(syst_limits_job)
 
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,

@@ -250,7 +250,7 @@ def systematic_limits_at(cfg: Config, hist: Any, signal: Any, scanned: Any,
                          blind: Any, signal_model: Any = None,
                          executor: Any = None) -> dict[str, Any]:
     """The limits with systematics at ``masses`` (:func:`peaksift.stats.limits_systematics.
-    systematic_limits` with the configured luminosity, efficiency and sizes, and the
+    systematic_limits` with the configured luminosity, efficiency, sizes and method, and the
     background functions of ``scanned``), before the plain limits are known."""
     from ..stats.envelope import EnvelopeResult
     from ..stats.limits_systematics import systematic_limits
