@@ -138,8 +138,12 @@ def write_demo_template(config: str | os.PathLike[str]) -> Path | None:
         return None
     truth = json.loads(truth_file.read_text())
     lo, hi = cfg.spectrum.window
-    hist = expected_background(np.linspace(lo, hi, cfg.spectrum.bins + 1),
-                               n_events=int(truth["n_events"]), seed=int(truth["seed"]))
+    n = int(truth["n_events"])
+    # about a hundred times the data's pairs in the window whatever the size (the committed
+    # demo's 300,000 events: 10^6 decays per process); small demos stay quick
+    decays = min(1_000_000, max(10_000, -(-10 * n // 3)))
+    hist = expected_background(np.linspace(lo, hi, cfg.spectrum.bins + 1), n_events=n,
+                               seed=int(truth["seed"]), decays=decays)
     target = Path(cfg.systematics.template)
     with staged_output(target.parent, "demo-template", share=True,
                        names=(target.name,)) as stage:
