@@ -234,13 +234,15 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             if limits_job is not None and smodel is None:
                 syst_limits_job = Beside(systematic_limits_at, cfg, hist, scan_sig, envelope,
                                          _limit_masses(cfg, masses), natural_width=width,
-                                         blind=blind_window)
+                                         blind=blind_window,
+                                         executor=_toy_executor(cfg, "toy limits"))
                 besides.append(syst_limits_job)
 
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
-                                                executor=_toy_executor(cfg), scanned=scanned)
+                                                executor=_toy_executor(cfg), scanned=scanned,
+                                                signal_model=smodel)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
@@ -332,8 +334,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     more = {}
     if smodel is not None and cfg.output.draws("signal_model"):
+        lab = plotting.figure_labels(cfg)
         more.update(zip(("signal_model_parameters", "signal_model_shapes"),
-                        smodel.plot(figdir)))
+                        smodel.save_figures(figdir, run=lab.run, symbol=lab.symbol)))
     if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
