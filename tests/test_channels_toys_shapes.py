@@ -126,25 +126,31 @@ def test_zero_sizes_give_exactly_the_plain_toys():
 
 
 def test_toys_on_worker_processes_equal_the_serial_ones():
-    """Combined toys and toy limits on the execution engine's worker processes: every toy
-    has its own seed stream (and every toy-limit mass its own seed), so the numbers are
-    those of the serial run, bit for bit."""
+    """Combined toys on the execution engine's worker processes: every toy has its own seed
+    stream, so the scans are those of the serial run, bit for bit; the combined limits hand
+    their toy masses (each seeded by its mass) to the same executor."""
     import functools
 
     from peaksift.execution import map_tasks
-    from peaksift.stats.channel_limits import combined_limits
+    from peaksift.stats import channel_limits
 
     chans = _channels(DELTA)
     c = combine(chans, MASSES, refit=False)
     pool = functools.partial(map_tasks, engine="processes", workers=2)
     models = list(c.prepared)
     conv = [np.asarray(k) for k in c.conversion.values()]
-    serial = combined_toy_scans(models, conv, 60, seed=SEED, shapes=c.shapes)
-    parallel = combined_toy_scans(models, conv, 60, seed=SEED, shapes=c.shapes,
+    serial = combined_toy_scans(models, conv, 30, seed=SEED, shapes=c.shapes)
+    parallel = combined_toy_scans(models, conv, 30, seed=SEED, shapes=c.shapes,
                                   executor=pool)
     assert np.array_equal(serial, parallel, equal_nan=True)
-    kw = {"method": "toys", "toys": 40, "seed": SEED, "toy_masses": [140.0, 160.0]}
-    a = combined_limits(chans, MASSES[::4], **kw)
-    b = combined_limits(chans, MASSES[::4], executor=pool, **kw)
-    assert a.methods.count("toys") == 2
-    assert np.array_equal(a.observed, b.observed) and np.array_equal(a.bands, b.bands)
+    seen = []
+
+    def recording(func, tasks):
+        seen.append((func, [t[5] for t in tasks if isinstance(t, tuple)]))
+        return [func(t) for t in tasks]
+
+    kw = {"method": "toys", "toys": 8, "seed": SEED, "toy_masses": [140.0, 160.0]}
+    channel_limits.combined_limits(_channels(0.0), np.array([140.0, 160.0]), executor=recording,
+                                   **kw)
+    joint = [seeds for func, seeds in seen if func is channel_limits.run_joint_toy_limit]
+    assert joint == [[SEED, SEED + 1]]   # one task per toy mass, seeded by its index

@@ -30,8 +30,8 @@ likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channe
 luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
 ``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
 toys and the asymptotic combined limits (not in the toy limits); its background envelope
-(the functions its own search kept) is profiled per channel in the combined scan, not in
-the combination's toys or limits (both said in the results and the report).  Blinding is not
+(the functions its own search kept) is profiled per channel in the combined scan and its
+toys, not in the limits (both said in the results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
 
@@ -189,11 +189,10 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                        "combination's toy limits leave them at 1"),)
         enveloped = [n for n in names if channels[names.index(n)].background_candidates]
         if enveloped and len(cfgs) > 1:
-            notes += ((f"the combined scan (local significance) profiles the [systematics] "
-                       f"background envelope of channel(s) {', '.join(enveloped)} as a "
-                       "discrete choice per channel (its spurious-signal term left out); the "
-                       "combination's toys (global significance: the observed envelope q0 "
-                       "against toys of the configured functions) and its limits use each "
+            notes += ((f"the combined scan and its toys (global significance) profile the "
+                       f"[systematics] background envelope of channel(s) "
+                       f"{', '.join(enveloped)} as a discrete choice per channel (its "
+                       "spurious-signal term left out); the combined limits use each "
                        "channel's configured background function"),)
         left = [n for n in with_env if n not in enveloped]
         if left and len(cfgs) > 1:

@@ -18,14 +18,17 @@ candidate counts).  The discovery statistic is :math:`q_0 = -2\ln L_{env}(0) -
 \min_{\mu \ge 0} -2\ln L_{env}(\mu)`: since the channels are independent under the null, its
 first term is :math:`\sum_c \min_{f_c} [2\mathrm{NLL}^{(0)}_{c,f_c} + a_c N_{c,f_c}]`.
 
-Only the scan (local significance) is profiled this way; the combination's toys and limits
-use each channel's configured function (said in the results).
+The scan and the toys of the global significance (:func:`envelope_toy_scans`: every channel
+generated from the function its envelope takes at mu = 0, every assignment fitted) are
+profiled this way; the combination's limits use each channel's configured function (said
+in the results).
 """
 
 from __future__ import annotations
 
 import dataclasses
 import itertools
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -35,7 +38,7 @@ from .joint import profile_joint
 from .joint_start import joint_start
 from .toys import profile_signal
 
-__all__ = ["envelope_of_channels"]
+__all__ = ["envelope_of_channels", "envelope_toy_scans", "run_envelope_toy_scans"]
 
 
 def _candidates(ch: Any) -> list[tuple[str, Any, int]]:
@@ -133,7 +136,76 @@ def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
             "nuisances": best["nuisances"], "labels": labels, "chosen": best["chosen"], "null_choice": null_choice,
             "penalties": penalties, "n_parameters": [tuple(int(v) for v in c) for c in counts]}
     out["entry"] = _entry(chans, out, bl)
+    out["toy_models"] = (tuple(tuple(m for m, _ in models) for models in per),
+                         tuple(tuple(float(v) for v in c) for c in counts),
+                         tuple(penalties), tuple(null_choice))
     return out
+
+
+@dataclass(frozen=True)
+class _EnvelopeToys:
+    """Toys ``first .. first+count-1`` of :func:`envelope_toy_scans` (picklable)."""
+
+    candidates: tuple    # per channel its candidates' ScanModels
+    counts: tuple        # per channel its candidates' free parameters
+    penalties: tuple
+    null_choice: tuple   # per channel the candidate the toys are generated from
+    conv: tuple
+    seed: int
+    norms: Any
+    shapes: Any
+    ensembles: Any
+    first: int
+    count: int
+
+
+def envelope_toy_scans(toy_models: tuple, conv: list, n_toys: int, *, seed: int = 0,
+                       norms: Any = None, shapes: Any = None, ensembles: Any = None,
+                       executor: Any = None) -> np.ndarray:
+    """q0 scans ``(n_toys, n_masses)`` of background-only toys with the channels' background
+    functions profiled as in the observed scan: channel ``c`` generated from its
+    background-only fit with the function the envelope takes at mu = 0 (its own seed
+    stream, as :func:`~peaksift.stats.channel_toys.combined_toy_scans`), every assignment of
+    one function per channel fitted (:func:`~peaksift.stats.channel_toys.toy_q0`, shape
+    factors at each toy's highest points), and the envelope's q0 taken."""
+    from .channel_toys import _TOY_CHUNK
+
+    if n_toys < 1:
+        raise FitError(f"toys must be a positive number of pseudo-experiments, got {n_toys}")
+    cands, counts, pens, null = toy_models
+    tasks = [_EnvelopeToys(cands, counts, pens, null, tuple(conv), seed, norms,
+                           None if shapes is None else tuple(shapes),
+                           None if ensembles is None else tuple(ensembles), first,
+                           min(_TOY_CHUNK, n_toys - first))
+             for first in range(0, n_toys, _TOY_CHUNK)]
+    done = (list(executor(run_envelope_toy_scans, tasks)) if executor is not None
+            and len(tasks) > 1 else [run_envelope_toy_scans(t) for t in tasks])
+    if len(done) != len(tasks):
+        raise FitError(f"the toy executor returned {len(done)} results for {len(tasks)} "
+                       "batches of combined toys")
+    return np.concatenate(done, axis=0)
+
+
+def run_envelope_toy_scans(task: _EnvelopeToys) -> np.ndarray:
+    """The envelope q0 scans of one batch of combined toys (pure)."""
+    from .channel_toys import toy_q0
+    from .toys import toy_counts
+
+    raw = [toy_counts(task.candidates[c][f].expected_background,
+                      np.random.SeedSequence(task.seed, spawn_key=(c,)), task.first, task.count)
+           for c, f in enumerate(task.null_choice)]
+    env0 = env1 = None
+    for combo in itertools.product(*[range(len(c)) for c in task.candidates]):
+        models = [task.candidates[c][f] for c, f in enumerate(combo)]
+        q, nll0 = toy_q0(models, raw, task)
+        pen = sum(a * task.counts[c][f] for c, (a, f) in enumerate(zip(task.penalties, combo)))
+        zero = 2.0 * nll0 + pen
+        one = np.where(np.isfinite(q), zero[:, None] - q, np.inf)
+        env0 = zero if env0 is None else np.minimum(env0, zero)
+        env1 = one if env1 is None else np.minimum(env1, one)
+    assert env0 is not None and env1 is not None
+    q_env = np.maximum(env0[:, None] - env1, 0.0)
+    return np.where(np.isfinite(env1), q_env, np.nan)
 
 
 def _entry(chans: list, env: dict, bl: np.ndarray) -> dict[str, Any]:

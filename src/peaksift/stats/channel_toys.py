@@ -35,7 +35,8 @@ from .shape_profile import NUISANCE_REFINE, top_points
 from .toy_limits import grid_start, limits_on_grid, pooled_cls
 from .toys import bkg_fractions, fit_background, toy_counts
 
-__all__ = ["combined_toy_scans", "joint_toy_limit", "run_joint_toy_limit", "run_toy_scans"]
+__all__ = ["combined_toy_scans", "joint_toy_limit", "run_joint_toy_limit", "run_toy_scans",
+           "toy_q0"]
 
 _TOY_CHUNK = 25   # toys per joint fit stack (toys x masses rows)
 
@@ -196,14 +197,23 @@ class _ToyScans:
 
 def run_toy_scans(task: _ToyScans) -> np.ndarray:
     """The q0 scans ``(count, n_masses)`` of one batch of combined toys (pure)."""
-    models, conv, norms, shapes = list(task.models), list(task.conv), task.norms, task.shapes
-    first, cnt = task.first, task.count
-    nm = models[0].masses.size
+    models = list(task.models)
     roots = [np.random.SeedSequence(task.seed, spawn_key=(c,)) for c in range(len(models))]
+    raw = [toy_counts(m.expected_background, roots[c], task.first, task.count)
+           for c, m in enumerate(models)]
+    return toy_q0(models, raw, task)[0]
+
+
+def toy_q0(models: list, raw: list[np.ndarray], task: Any) -> tuple[np.ndarray, np.ndarray]:
+    """q0 ``(toys, masses)`` of toys with counts ``raw`` (per channel ``(toys, n_used)``)
+    fitted with ``models`` (one per channel), and the toys' summed background-only NLL
+    ``(toys,)``; ``task`` gives conv, norms, shapes, ensembles, seed and first."""
+    conv, norms, shapes = list(task.conv), task.norms, task.shapes
+    cnt = raw[0].shape[0]
+    nm = models[0].masses.size
     counts, th0, b0, nll0 = [], [], [], 0.0
     with np.errstate(all="ignore"):
-        for c, m in enumerate(models):
-            n = toy_counts(m.expected_background, roots[c], first, cnt)
+        for m, n in zip(models, raw):
             th, b, nll = fit_background(m, n)
             counts.append(np.repeat(n, nm, axis=0))
             th0.append(np.repeat(th, nm, axis=0))
@@ -217,8 +227,8 @@ def run_toy_scans(task: _ToyScans) -> np.ndarray:
     q = q.reshape(cnt, nm)
     if shapes is not None and any(sp is not None for sp in shapes):
         _refine_shapes(q, r, models, counts, conv, nll0, norms, list(shapes),
-                       list(task.ensembles or ["fixed"] * len(models)), task.seed, first)
-    return q
+                       list(task.ensembles or ["fixed"] * len(models)), task.seed, task.first)
+    return q, np.asarray(nll0).reshape(cnt, nm)[:, 0]
 
 
 def _refine_shapes(q: np.ndarray, r: dict, models: list, counts: list, conv: list,

@@ -29,7 +29,7 @@ channels' relative normalisation (a common factor is absorbed by sigma x B).  A 
 asymptotic limits and the toys of the global significance (at each toy's highest points, as
 for one channel; ``toy_constraints`` chooses the ensemble); the toy limits keep them at 1.
 A channel's ``background_candidates`` are profiled as a discrete choice in the combined scan
-(:mod:`peaksift.stats.channel_envelope`), not in its toys or limits.
+and its toys (:mod:`peaksift.stats.channel_envelope`), not in the limits.
 """
 
 from __future__ import annotations
@@ -44,7 +44,8 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
-from .channel_envelope import envelope_of_channels
+from .channel_envelope import envelope_of_channels, envelope_toy_scans
+from .channel_norms import signal_norms
 from .channel_toys import combined_toy_scans
 from .joint import profile_joint
 from .joint_start import joint_start
@@ -196,46 +197,6 @@ def _prepare_all(channels: Any, masses: Any, blind: Any) -> tuple:
     return chans, prepared, m_all, bl, conv
 
 
-def signal_norms(channels: Sequence[Channel]) -> tuple[np.ndarray | None, tuple[str, ...]]:
-    """The channels' normalisation nuisances: ``(a, names)`` with ``a[c, j] = ln(1 + d)``
-    the log-normal scale of nuisance ``j`` on channel ``c``'s signal (see
-    :mod:`peaksift.stats.joint`); ``(None, ())`` when no channel has an uncertainty.
-    Names: ``efficiency_<channel>`` and ``luminosity_<group>`` (group: the channel's
-    ``luminosity_group`` or its name)."""
-    chans = list(channels)
-    cols: list[np.ndarray] = []
-    names: list[str] = []
-    for c, ch in enumerate(chans):
-        for what in ("luminosity_uncertainty", "efficiency_uncertainty"):
-            d = getattr(ch, what)
-            if not (isinstance(d, (int, float)) and 0 <= d < 10):
-                raise FitError(f"channel {ch.name!r}: {what} must be a relative uncertainty "
-                               f">= 0 (e.g. 0.02), got {d!r}")
-        if ch.efficiency_uncertainty > 0:
-            col = np.zeros(len(chans))
-            col[c] = np.log1p(ch.efficiency_uncertainty)
-            cols.append(col)
-            names.append(f"efficiency_{ch.name}")
-    groups: dict[str, list[int]] = {}
-    for c, ch in enumerate(chans):
-        groups.setdefault(ch.luminosity_group or ch.name, []).append(c)
-    for g, members in groups.items():
-        ds = {float(chans[c].luminosity_uncertainty) for c in members}
-        if len(ds) > 1:
-            raise FitError(f"channels {[chans[c].name for c in members]} share the luminosity "
-                           f"group {g!r} but give different luminosity_uncertainty "
-                           f"{sorted(ds)}; one luminosity has one uncertainty")
-        d = ds.pop()
-        if d > 0:
-            col = np.zeros(len(chans))
-            col[members] = np.log1p(d)
-            cols.append(col)
-            names.append(f"luminosity_{g}")
-    if not cols:
-        return None, ()
-    return np.stack(cols, axis=1), tuple(names)
-
-
 def _check(channels: Sequence[Channel]) -> list[Channel]:
     chans = list(channels)
     if not chans:
@@ -277,7 +238,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
     q0 = np.full(nm, np.nan)
     converged = np.zeros(nm, bool)
     notes: list[str] = []
-    z_exp = envelope = None
+    z_exp = envelope = env_models = None
     if len(chans) == 1:  # one channel: its scan is the combination (same numbers)
         s = per[chans[0].name]
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -312,7 +273,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
             converged[~bl] = env["converged"]
             if nu_fit is not None:
                 nu_fit[~bl] = env["nuisances"]
-            envelope = env["entry"]
+            envelope, env_models = env["entry"], env["toy_models"]
     if bl.all():
         notes.append("every mass hypothesis is blinded")
     qsel = np.where(bl, -np.inf, np.nan_to_num(q0, nan=-np.inf))
@@ -328,7 +289,8 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         z_expected=z_exp, expected_cross_section=expected_cross_section, unit=unit,
         notes=tuple(notes), prepared=tuple(p[0] for p in prepared),
         nuisances=norm_names + shape_names,
-        nuisance_values=nu_fit, norms=norms, envelope=envelope, shapes=tuple(specs),
+        nuisance_values=nu_fit, norms=norms, envelope=envelope, envelope_models=env_models,
+        shapes=tuple(specs),
         toy_constraints=tuple(ch.toy_constraints for ch in chans))
 
 
@@ -414,6 +376,7 @@ class Combination(FrozenValue):
     #: per channel its shape factors for the toys (None: none), and their ensemble
     shapes: tuple = field(default=(), compare=False)
     toy_constraints: tuple = field(default=(), compare=False)
+    envelope_models: Any = field(default=None, compare=False)
 
     @property
     def best(self) -> dict[str, float]:
@@ -527,12 +490,12 @@ class Combination(FrozenValue):
             res = lee.global_from_upcrossings(q_obs, self.q0[mask][None, :], u0=u0,
                                               source="observed scan", gaps=gaps)
         else:
-            scans = combined_toy_scans(list(self.prepared),
-                                       [np.asarray(k)[mask] for k in self.conversion.values()],
-                                       n, seed=seed, norms=self.norms,
-                                       shapes=self.shapes or None,
-                                       ensembles=self.toy_constraints or None,
-                                       executor=executor)
+            conv = [np.asarray(k)[mask] for k in self.conversion.values()]
+            kw = {"seed": seed, "norms": self.norms, "shapes": self.shapes or None,
+                  "ensembles": self.toy_constraints or None, "executor": executor}
+            scans = (combined_toy_scans(list(self.prepared), conv, n, **kw)
+                     if self.envelope_models is None else
+                     envelope_toy_scans(self.envelope_models, conv, n, **kw))
             res = (lee.global_from_toys(q_obs, scans.max(axis=1)) if method == "toys" else
                    lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps))
         out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
