@@ -121,3 +121,51 @@ def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, mon
     peaksift.run_search(_config(small_demo), out=tmp_path / "inline", progress=False)
     files = {p.name for p in (tmp_path / "inline" / "figures").iterdir()}
     assert files == {p.name for p in (tmp_path / "beside" / "figures").iterdir()}
+
+
+_DRAWER_DIES = """
+import os, sys
+from pathlib import Path
+import peaksift
+from peaksift.config import load_config
+from peaksift.search import parallel
+
+parent = os.getpid()
+real = parallel._warm_up
+
+def dies_in_child(*args):
+    if os.getpid() != parent:
+        os._exit(3)  # the drawer dies before it reads a single job
+    real(*args)
+
+parallel._warm_up = dies_in_child
+cfg = load_config(Path(sys.argv[1]) / "demo_data" / "search.toml").with_overrides(
+    input__files=sys.argv[3:], significance__toys=20, limits__points=5,
+    output__formats=["png"], systematics__mass_scale=0.0,
+    systematics__mass_resolution=0.0, systematics__background_families=[])
+res = peaksift.run_search(cfg, out=sys.argv[2], progress=False)
+print(sorted(res.figures))
+"""
+
+
+def test_a_drawer_that_dies_at_once_leaves_the_figures_to_the_parent(small_demo, tmp_path):
+    # The figure process dies before reading any job: the parent draws every figure and the
+    # run ends (the jobs left in the queue's pipe must not hold the process at its exit).
+    # Reference: the figure files the one-process run writes (PEAKSIFT_INLINE=1).
+    import subprocess
+    import sys
+
+    script = tmp_path / "dies.py"
+    script.write_text(_DRAWER_DIES)
+    files = [str(p) for p in sorted(small_demo.glob("*.parquet"))]
+    done = subprocess.run([sys.executable, str(script), str(REPO), str(tmp_path / "out"),
+                           *files], capture_output=True, text=True, timeout=600, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    env = {**os.environ, "PEAKSIFT_INLINE": "1"}
+    done = subprocess.run([sys.executable, str(script), str(REPO), str(tmp_path / "inline"),
+                           *files], capture_output=True, text=True, timeout=600, check=False,
+                          env=env)
+    assert done.returncode == 0, done.stderr[-2000:]
+    names = {p.name for p in (tmp_path / "out" / "figures").iterdir()}
+    assert names == {p.name for p in (tmp_path / "inline" / "figures").iterdir()}
+    assert "spectrum.png" in names
