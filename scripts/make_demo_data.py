@@ -53,7 +53,8 @@ def _content_digest(paths: list[str]) -> str:
 
 def selected_masses(outdir: str | Path, truth: dict) -> np.ndarray:
     sel = truth["intended_selection"]
-    ev = events.read_events(str(outdir), sel["collection"])
+    # the event files only: the folder also holds the signal samples (other columns)
+    ev = events.read_events([str(Path(outdir) / f) for f in truth["files"]], sel["collection"])
     mu = ev[sel["collection"]]
     good = mu[(mu.pt > 20) & (abs(mu.eta) < 2.4) & (mu.isolation < 0.15)]
     pairs = ak.combinations(good, 2)

@@ -73,10 +73,19 @@ def test_a_combination_honours_the_figure_selection(demo_dir, tmp_path):
 
     ch = tmp_path / "ch.toml"
     text = (demo_dir / "search.toml").read_text().replace(
-        'files = ["events_*.parquet"]', f'files = ["{demo_dir}/events_*.parquet"]')
+        'files = ["events_*.parquet"]', f'files = ["{demo_dir}/events_*.parquet"]').replace(
+        '"background_template.json"', f'"{demo_dir}/background_template.json"')
     ch.write_text(text.replace("[output]", '[output]\nfigures = ["spectrum"]', 1))
     res = run_combination({"combination": {"channels": [str(ch)], "names": ["one"]},
                            "output": {"figures": "none"}}, out=tmp_path / "o", toys=0)
     assert sorted(res.to_dict()["outputs"]["figures"]) == ["one/spectrum"]
     html = (tmp_path / "o" / "report.html").read_text()
     assert html.count("data:image/png;base64") == 1
+
+
+def test_the_spectrum_command_draws_only_what_is_asked_for(quick, tmp_path):
+    from peaksift.search import run_spectrum
+
+    res = run_spectrum(quick.with_overrides(output__figures=["spectrum"]), out=tmp_path / "s")
+    assert _files(tmp_path / "s") == ["figures/spectrum.png"]
+    assert sorted(res.files) == ["spectrum", "spectrum.json"]

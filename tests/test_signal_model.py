@@ -124,8 +124,11 @@ def test_round_trip_through_json_gives_the_same_model(model, tmp_path):
     m = np.linspace(100, 200, 7)
     assert np.array_equal(again.sigma(m), model.sigma(m))
     assert np.array_equal(again.efficiency(m), model.efficiency(m))
-    paths = again.plot(tmp_path)
+    paths = again.save_figures(tmp_path)
     assert all(p.stat().st_size > 10_000 for p in paths)
+    from matplotlib.figure import Figure
+
+    assert isinstance(again.plot(), Figure) and isinstance(again.plot(which="shapes"), Figure)
     with pytest.raises(FitError, match="not a saved signal model"):
         SignalModel.from_dict({"shape": "gaussian"})
 

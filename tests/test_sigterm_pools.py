@@ -55,7 +55,8 @@ def config(demo_dir, tmp_path_factory):
     d = tmp_path_factory.mktemp("term")
     path = d / "search.toml"
     text = text.replace('files = ["events_*.parquet"]',
-                        f'files = ["{demo_dir}/events_*.parquet"]')
+                        f'files = ["{demo_dir}/events_*.parquet"]').replace(
+        '"background_template.json"', f'"{demo_dir}/background_template.json"')
     path.write_text(text + "\n")
     return path
 

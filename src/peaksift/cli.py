@@ -487,14 +487,6 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
-    except Exception:
-        if not terminated():  # a bug: its traceback is the report
-            raise
-        # a SIGTERM raised where code turned it into another error (an extension module's
-        # import re-raises as ImportError): still the termination it was
-        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
-              file=sys.stderr)
-        return 143
     except Terminated:
         # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
         print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
@@ -511,6 +503,14 @@ def main(argv: Sequence[str] | None = None) -> int:
 
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 141
+    except Exception:
+        if not terminated():  # a bug: its traceback is the report
+            raise
+        # a SIGTERM raised where code turned it into another error (an extension module's
+        # import re-raises as ImportError): still the termination it was
+        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
+              file=sys.stderr)
+        return 143
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -404,7 +404,8 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("figures", "strings", ["all"],
              "Which figures to draw: `\"all\"`, `\"none\"`, or a list of "
              + ", ".join(f"`{f}`" for f in FIGURES) + " (a figure is drawn only when the run "
-             "has its results; the report shows the ones drawn). Fewer figures, a faster run.",
+             "has its results; the report shows the ones drawn; `peaksift spectrum` draws its "
+             "`spectrum` and `candidates`). Fewer figures, a faster run.",
              choices=("all", "none", *FIGURES)),
         _Key("log_scale", "bool", False, "Draw the spectrum with a logarithmic y axis."),
         _Key("title", "str", "", "Report title (default: names the searched pair)."),

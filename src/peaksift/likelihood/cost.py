@@ -272,12 +272,6 @@ class BinnedCost(_Cost):
         would leave no probability in it and make the bin fractions 0/0."""
         x = np.asarray(x, float)
         lower, upper = self._free_bounds(lower, upper)
-        if self.compiled_problem() is not None:
-            from .driver import compiled_hessian
-
-            hess = compiled_hessian(self, x, steps, lower, upper)
-            if hess is not None:
-                return hess
         jac = np.zeros((self.free.size, self.n.size))
         mu, blocks = self.expectation(x, jac)
         mu = np.maximum(mu, MU_FLOOR)

@@ -236,12 +236,6 @@ def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
     """``(H^-1, positive definite)`` with the test on ``D^-1/2 H D^-1/2`` (unit diagonal):
     its eigenvalues are scale free, so a fit of 10^8 events is judged like one of 10^3."""
     n = hess.shape[0]
-    if 0 < n <= _SMALL and use_compiled():
-        from .driver import compiled_covariance
-
-        out = compiled_covariance(hess, POSDEF_TOL)
-        if out is not None:
-            return out
     bad = (np.full((n, n), np.nan), False)
     if not np.all(np.isfinite(hess)):
         return bad

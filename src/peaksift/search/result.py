@@ -15,7 +15,7 @@ from .doubts import doubts
 
 
 # ----------------------------------------------------------------------------- results
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False)
 class SpectrumResult:
     """What :func:`run_spectrum` produced: the spectrum, the collected data and the files."""
 
@@ -24,6 +24,24 @@ class SpectrumResult:
     collected: Any
     outdir: Path | None = None
     files: Mapping[str, Path] = field(default_factory=dict)
+
+    def _summary(self) -> list[tuple[str, str]]:
+        h = self.histogram
+        rows = [("window", f"{h.edges[0]:g}-{h.edges[-1]:g} GeV in {h.edges.size - 1} bins"),
+                ("entries", f"{h.total():,.0f}")]
+        if self.collected is not None:
+            rows.insert(0, ("events read", f"{int(self.collected.events_read):,}"))
+        if self.outdir is not None:
+            rows.append(("outputs", str(self.outdir)))
+        return rows
+
+    def __repr__(self) -> str:
+        return "SpectrumResult(" + "; ".join(f"{k} {v}" for k, v in self._summary()) + ")"
+
+    def _repr_html_(self) -> str:
+        from .._values import summary_html
+
+        return summary_html("SpectrumResult", self._summary())
 
 
 @dataclass(frozen=True, repr=False)
@@ -167,6 +185,7 @@ class SearchResult:
         from ..resonances import KnownMatch
         from ..stats.limit_result import LimitResult
         from ..stats.scan_result import ScanResult
+        from ..stats.signal_model import SignalModel
 
         try:
             cfg = load_config(dict(d["config"]))
@@ -186,7 +205,9 @@ class SearchResult:
                 figures={k: Path(outs["dir"]) / "figures" / v
                          for k, v in (outs.get("figures") or {}).items()},
                 fit_settings=settings, input_record=dict(d.get("input") or {}),
-                identification=d.get("identification"), systematics=d.get("systematics"))
+                identification=d.get("identification"), systematics=d.get("systematics"),
+                signal_model=SignalModel.from_dict(d["signal_model"])
+                if d.get("signal_model") else None)
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"not a results.json written by peaksift search: {exc!r}") \
                 from None

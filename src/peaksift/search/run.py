@@ -241,7 +241,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
-                                                executor=_toy_executor(cfg), scanned=scanned)
+                                                executor=_toy_executor(cfg), scanned=scanned,
+                                                signal_model=smodel)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
@@ -333,8 +334,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     figdir = stage.path / "figures"
     more = {}
     if smodel is not None and cfg.output.draws("signal_model"):
+        lab = plotting.figure_labels(cfg)
         more.update(zip(("signal_model_parameters", "signal_model_shapes"),
-                        smodel.plot(figdir)))
+                        smodel.save_figures(figdir, run=lab.run, symbol=lab.symbol)))
     if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),

@@ -54,8 +54,10 @@ def run_spectrum(
                 figs = plotting.spectrum_only(hist, stage.path / "figures",
                                               formats=cfg.output.formats,
                                               log_scale=cfg.output.log_scale, blind=blind,
-                                              title=_short_title(cfg), labels=labels)
-                if blind is None:  # pT/rapidity include the blinded window: withheld
+                                              title=_short_title(cfg), labels=labels) \
+                    if cfg.output.draws("spectrum") else {}
+                # pT/rapidity include the blinded window: withheld while blinded
+                if blind is None and cfg.output.draws("candidates"):
                     figs.update(plotting.candidates(col, stage.path / "figures",
                                                     formats=cfg.output.formats,
                                                     labels=labels))

@@ -64,14 +64,17 @@ def _template(cfg: Config, hist: Any) -> Any:
 def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                     natural_width: float | None, blind: Any, best_plain: dict[str, Any],
                     progress: bool, executor: Any,
-                    scanned: Callable[[Any], None] | None = None
+                    scanned: Callable[[Any], None] | None = None,
+                    signal_model: Any = None
                     ) -> tuple[dict[str, Any], dict[str, Any], Any]:
     """Run ``[systematics]``; returns ``(block, best with systematics, envelope or scan)``.
 
     See the module guide; the limits with systematics come after the plain limits
     (:func:`limits_with_systematics`).  ``scanned`` is called with the envelope (or the
     single-function scan) as soon as it exists, before its toys: the search starts the
-    limits with systematics then, beside the toys.
+    limits with systematics then, beside the toys.  With ``signal_model`` (``[signal_model]``)
+    the scans take the model's shape and resolution (the spurious-signal test keeps the
+    configured ones).
     """
     from ..stats.background_choice import choose_background, spurious_signal
     from ..stats.envelope import envelope_scan
@@ -82,6 +85,11 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
     nuis = _nuisances(cfg)
     sig_kw = {"resolution": res.resolution, "window": tuple(cfg.spectrum.window),
               "natural_width": natural_width, "blind": blind}
+    scan_sig, scan_kw = signal, sig_kw
+    if signal_model is not None:   # the shape and sigma(m) of the simulated samples
+        scan_sig = None
+        scan_kw = {"signal_model": signal_model, "window": tuple(cfg.spectrum.window),
+                   "blind": blind}
     block: dict[str, Any] = {"nuisances": nuis.to_dict(), "toy_constraints": S.toy_constraints,
                              "background_choice": None, "spurious_signal": None,
                              "envelope": None, "notes": []}
@@ -127,9 +135,9 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         block["notes"].append(f"envelope off: scanned with {kept.label} only")
     if choice is not None and (S.envelope or ratios is not None):
         # a single function with a spurious-signal term is an envelope of one candidate
-        env = envelope_scan(hist, choice if single is None else single, signal, masses,
+        env = envelope_scan(hist, choice if single is None else single, scan_sig, masses,
                             penalty=S.penalty, sqrt_s=S.sqrt_s, nuisances=nuis,
-                            nuisance_toys=S.toy_constraints, spurious=ratios, **sig_kw)
+                            nuisance_toys=S.toy_constraints, spurious=ratios, **scan_kw)
         if scanned is not None:
             scanned(env)
         method = cfg.significance.method
@@ -163,8 +171,8 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
             from .common import _shape
 
             bkg = _shape(cfg.model.background, cfg.model.background_options)
-        sres = scan(hist, signal, bkg, masses, refit=False, nuisances=nuis,
-                    nuisance_toys=S.toy_constraints, **sig_kw)
+        sres = scan(hist, scan_sig, bkg, masses, refit=False, nuisances=nuis,
+                    nuisance_toys=S.toy_constraints, **scan_kw)
         if scanned is not None:
             scanned(sres)
         best = sres.global_significance(method=cfg.significance.method, toys=toys,

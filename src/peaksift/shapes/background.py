@@ -60,31 +60,11 @@ def _rows(run, rows: int, nbins: int, grad: bool):
     return frac, (g[None] if grad else None)
 
 
+
 def _quadrature(shape, edges, params, window, grad: bool):
-    """Bin fractions (and derivatives) of an exponential-family shape from the compiled
-    Gauss-Legendre rule of :mod:`.quadrature`, shaped as the generic path shapes them;
-    None for calls it does not cover (2-d edges, parameters not one per row)."""
-    if np.ndim(edges) != 1:
-        return None
-    arrs = [np.asarray(v, float) for v in params]
-    if any(a.ndim > 2 or (a.ndim == 2 and a.shape[1] != 1) or a.ndim == 1 for a in arrs):
-        return None
-    stacked = any(a.ndim == 2 for a in arrs)
-    rows = max((a.shape[0] for a in arrs if a.ndim == 2), default=1)
-    p = np.stack([np.broadcast_to(a.reshape(-1), (rows,)) for a in arrs], axis=1)
-    if not np.all(np.isfinite(p)):
-        return None
-    from .quadrature import exp_family_fractions
+    from .quadrature import shape_fractions
 
-    out = exp_family_fractions(p, lambda x: shape._basis(x, window), np.asarray(edges, float),
-                               window, grad)
-    if out is None:
-        return None
-    frac, d = out
-    if not stacked:
-        return frac[0], (None if d is None else d[:, 0])
-    return frac, d
-
+    return shape_fractions(shape, edges, params, window, grad)
 
 class ExpPoly(_Background):
     r"""Exponential of a polynomial on the window-scaled variable

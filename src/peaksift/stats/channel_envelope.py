@@ -109,7 +109,8 @@ def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
         r = profile_joint(models, [m.counts for m in models], [m.fractions for m in models],
                           k, steps=100, tol=3e-2, **joint_start(models, cfits, k, norms),
                           norms=norms, shapes=specs if any(specs) else None,
-                          curvature=[m.theta for m in models])
+                          curvature=[m.theta if f.get("curvature") is None else
+                                     f["curvature"] for m, f in zip(models, cfits)])
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         pen = sum(a * cnt[f] for a, cnt, f in zip(penalties, counts, combo))

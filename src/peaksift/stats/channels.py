@@ -294,7 +294,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
                           [k[~bl] for k in conv], steps=100, tol=3e-2,
                           **joint_start(models, fits, [k[~bl] for k in conv], norms),
                           norms=norms, shapes=specs if any(specs) else None,
-                          curvature=[m.theta for m in models])
+                          curvature=[_curvature(f, m) for f, m in zip(fits, models)])
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q0[~bl], mu[~bl], mu_err[~bl], converged[~bl] = q, r["mu"], r["mu_error"], r["converged"]
@@ -330,6 +330,13 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         nuisances=norm_names + shape_names,
         nuisance_values=nu_fit, norms=norms, envelope=envelope, shapes=tuple(specs),
         toy_constraints=tuple(ch.toy_constraints for ch in chans))
+
+
+def _curvature(fit: dict, model: Any) -> Any:
+    """The background shape's second derivatives at its background-only fit, as the
+    channel's own scan computed them (else the parameters to compute them at)."""
+    d2 = fit.get("curvature")
+    return model.theta if d2 is None else d2
 
 
 def _expected_z(prepared: list, conv: list[np.ndarray], xs: float, norms: Any = None

@@ -88,7 +88,8 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
         Per channel the background parameters ``(K,)`` at which the shape's second
         derivatives enter the Hessian (default: each row's start); one set for all rows
         (e.g. the background-only fit, as :func:`~peaksift.stats.toys.profile_signal`
-        takes it) costs one evaluation instead of one per row.
+        takes it) costs one evaluation instead of one per row; or those derivatives
+        themselves, ``(B or 1, K, K, n_used)`` (``profile_signal``'s ``curvature``).
     shape_centers : sequence, optional
         Per channel None or ``(B, J_c)``: the centres of its shape factors' constraints
         (their auxiliary measurements; default 1; toys of an unconditional ensemble draw
@@ -197,10 +198,16 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     if np.any(~np.isfinite(nll)) and not fixed:
         mu = np.where(np.isfinite(nll), mu, 0.0)
         nll = total(mu, nu, kap, b, g0, fr0, all_rows)
-    at = theta if curvature is None else [
-        np.broadcast_to(np.asarray(cv, float), th.shape) for cv, th in zip(curvature, theta)]
-    d2 = [_per_row(bkg_second, m, th, view=True) if kc else None
-          for m, th, kc in zip(models, at, ks)]
+    d2 = []
+    for c, (m, th, kc) in enumerate(zip(models, theta, ks)):
+        cv = None if curvature is None else curvature[c]
+        if not kc:
+            d2.append(None)
+        elif cv is not None and np.ndim(cv) == 4:   # the second derivatives themselves
+            d2.append(np.broadcast_to(cv, (nb,) + np.shape(cv)[1:]))
+        else:
+            d2.append(_per_row(bkg_second, m, th if cv is None else np.broadcast_to(
+                np.asarray(cv, float), th.shape), view=True))
 
     def unpack(x, rows):
         mu_ = mu[rows] if fixed else x[:, 0]

@@ -513,17 +513,30 @@ class SignalModel(FrozenValue):
                            "'signal_model' entry of a peaksift results.json") from None
 
     # ------------------------------------------------------------ figures
-    def plot(self, directory: Any, *, prefix: str = "signal_model") -> list[Any]:
-        """Write ``<prefix>_parameters.png`` (each quantity against mass: points, curve,
-        1-sigma band) and ``<prefix>_shapes.png`` (each sample's histogram with its fitted
-        shape, normalised, overlaid) to ``directory``; returns the paths."""
-        from pathlib import Path
-
+    def plot(self, path: Any = None, *, which: str = "parameters", run: Any = None,
+             symbol: str = "m") -> Any:
+        """The Figure of ``which``: ``"parameters"`` (each quantity against mass: points,
+        curve, 1-sigma band) or ``"shapes"`` (each sample's histogram with its fitted shape,
+        normalised, overlaid); saved to ``path`` when given.  ``run``: the run label above
+        the axes; ``symbol``: the pair's mass symbol (mathtext).  No pyplot: the user's
+        matplotlib backend is left alone."""
         from .signal_model_plot import plot_parameters, plot_shapes
+
+        draw = {"parameters": plot_parameters, "shapes": plot_shapes}.get(which)
+        if draw is None:
+            raise FitError(f"SignalModel.plot: which must be 'parameters' or 'shapes', got "
+                           f"{which!r}")
+        return draw(self, path, run=run, symbol=symbol)
+
+    def save_figures(self, directory: Any, *, prefix: str = "signal_model", run: Any = None,
+                     symbol: str = "m") -> list[Any]:
+        """Write ``<prefix>_parameters.png`` and ``<prefix>_shapes.png`` (see :meth:`plot`)
+        to ``directory``; returns the paths."""
+        from pathlib import Path
 
         d = Path(directory)
         d.mkdir(parents=True, exist_ok=True)
-        p1, p2 = d / f"{prefix}_parameters.png", d / f"{prefix}_shapes.png"
-        plot_parameters(self, p1)
-        plot_shapes(self, p2)
-        return [p1, p2]
+        paths = [d / f"{prefix}_{w}.png" for w in ("parameters", "shapes")]
+        for w, p in zip(("parameters", "shapes"), paths):
+            self.plot(p, which=w, run=run, symbol=symbol)
+        return paths

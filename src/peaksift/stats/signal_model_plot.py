@@ -4,6 +4,8 @@ drawn on :func:`peaksift._style.new_figure`: no pyplot, the user's backend untou
 * :func:`plot_parameters` -- one panel per modelled quantity against mass: the per-sample
   points with errors, the fitted polynomial and its 1-sigma band.
 * :func:`plot_shapes`     -- every sample's histogram (normalised) with its fitted shape.
+
+Each returns its Figure (saved to ``path`` when given).
 """
 
 from __future__ import annotations
@@ -19,8 +21,8 @@ _LABELS = {"mass_shift": "peak shift [GeV]", "sigma": "$\\sigma$ [GeV]",
            "width": "width [GeV]", "efficiency": "efficiency $\\times$ acceptance"}
 
 
-def plot_parameters(model: Any, path: Any) -> Any:
-    from .._style import COLORS, figure_style, new_figure
+def plot_parameters(model: Any, path: Any = None, *, run: Any = None, symbol: str = "m") -> Any:
+    from .._style import COLORS, figure_style, new_figure, text_width
 
     keys = list(model.quantities)
     ncol = 3 if len(keys) > 4 else 2
@@ -51,20 +53,31 @@ def plot_parameters(model: Any, path: Any) -> Any:
                          f"{dev:.2f}$\\sigma$", fontsize=9)
             ax.set_ylabel(_LABELS.get(k, k))
         for ax in axes[-1]:
-            ax.set_xlabel("generated mass [GeV]")
+            ax.set_xlabel(f"generated mass ${symbol}$ [GeV]")
         for ax in axes.ravel()[len(keys):]:
             ax.set_visible(False)
         axes.ravel()[0].legend(loc="best", fontsize=8)
-        fig.tight_layout()
-        fig.savefig(path)
-    return path
+        fig.tight_layout(rect=(0.0, 0.0, 1.0, 0.93))
+        # the run label over the whole grid (each panel has its own title)
+        if run and run.name:
+            fig.text(0.01, 0.985, run.name, fontsize=9.5, fontweight="bold", va="top",
+                     color=COLORS["label"])
+        shift = ((text_width(run.name, 9.5, "bold") + 9.0) / 72.0 / fig.get_figwidth()
+                 if run and run.name else 0.0)
+        fig.text(0.01 + shift, 0.985,
+                 "  ".join(p for p in ((run.conditions() if run else ""),
+                                       "signal model from the simulated samples") if p),
+                 fontsize=9.5, va="top", color=COLORS["data"])
+        if path is not None:
+            fig.savefig(path)
+    return fig
 
 
-def plot_shapes(model: Any, path: Any) -> Any:
+def plot_shapes(model: Any, path: Any = None, *, run: Any = None, symbol: str = "m") -> Any:
     from matplotlib import colormaps
 
     from .. import shapes
-    from .._style import COLORS, figure_style, new_figure
+    from .._style import COLORS, draw_header, figure_style, new_figure
 
     shape = shapes.get(model.shape)
     names = shape.parameter_names
@@ -86,11 +99,12 @@ def plot_shapes(model: Any, path: Any) -> Any:
             p = [vals[k] for k in names]
             ax.plot(x, shape.pdf(x, p, (float(win[0]), float(win[1]))), color=col, lw=1.3,
                     label=f"{model.sample_masses[j]:g} GeV")
-        ax.set_xlabel("candidate mass [GeV]")
+        ax.set_xlabel(f"${symbol}$ [GeV]")
         ax.set_ylabel("probability density [1/GeV]")
-        ax.set_title(f"signal samples and fitted {model.shape} shapes", fontsize=10)
+        draw_header(ax, run, f"signal samples and fitted {model.shape} shapes")
         ax.legend(loc="upper right", title="generated mass", fontsize=8)
         ax.text(0.01, 0.98, "points: simulated samples", transform=ax.transAxes, va="top",
                 fontsize=8, color=COLORS["data"])
-        fig.savefig(path)
-    return path
+        if path is not None:
+            fig.savefig(path)
+    return fig

@@ -213,8 +213,10 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     steps with the Fisher-type Hessian and step halving on the exact NLL.
 
     Returns a dict of ``s``, ``s_error`` (from the inverse observed Hessian), ``b``,
-    ``theta``, ``nll``, ``converged`` and ``hessian`` (free fits: the exact Hessian
-    ``(B, 2 + K, 2 + K)`` over ``(s, b, theta)`` at the minimum; else None).
+    ``theta``, ``nll``, ``converged``, ``hessian`` (free fits: the exact Hessian
+    ``(B, 2 + K, 2 + K)`` over ``(s, b, theta)`` at the minimum; else None) and
+    ``curvature`` (the background shape's second derivatives at the start, ``(B, K, K,
+    n_used)``, that the Hessian used; None without shape parameters).
     """
     f = np.atleast_2d(np.asarray(fractions, float))
     nb, nbin = f.shape
@@ -292,4 +294,4 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     hess = None if fixed else grad_hess(r.x, r.state, np.arange(nb))[1]
     s_err = np.full(nb, np.nan) if fixed else first_error(hess)
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
-            "converged": converged, "hessian": hess}
+            "converged": converged, "hessian": hess, "curvature": d2}
