@@ -312,6 +312,12 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
              "statistical error of the signal yield in quadrature (Z / sqrt(1 + r^2), r the "
              "spurious signal over the statistical error) in the scan, the envelope and "
              "their toys (not in the limits)."),
+        _Key("toy_limits", "bool", False,
+             "Where the plain limits use toys (few background events under the signal, or "
+             "`limits.method = \"toys\"`), compute the limits with systematics with toys too, "
+             "every nuisance and the background choice profiled on each toy (costly: about "
+             "0.1-0.25 s CPU per toy and mass with shape factors and an envelope); false: "
+             "those masses keep asymptotic limits with systematics and a note says so."),
         _Key("sqrt_s", "float", None,
              "Centre-of-mass energy (GeV) of the dijet family; default twice the window's "
              "upper edge.", lo=0.0, lo_open=True, nullable=True),

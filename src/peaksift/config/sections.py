@@ -227,6 +227,7 @@ class SystematicsConfig:
     template: str = ""
     spurious_limit: float = 0.2
     spurious_uncertainty: bool = False
+    toy_limits: bool = False
     sqrt_s: float | None = None
 
     @property

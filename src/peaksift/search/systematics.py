@@ -238,6 +238,11 @@ def limits_with_systematics(cfg: Config, hist: Any, signal: Any, scanned: Any,
     if S.spurious_uncertainty:
         notes.append("the limits leave out the template signal added to the significance")
     n_toys = sum(m == "toys" for m in with_s["methods"])
+    plain_toys = sum(m == "toys" for m in plain.get("methods") or ())
+    if plain_toys and not S.toy_limits:
+        notes.append(f"the plain limits use toys at {plain_toys} masses; the limits with "
+                     "systematics are asymptotic there (their bands may be misplaced at low "
+                     "counts; systematics.toy_limits = true computes them with toys)")
     if n_toys:
         notes.append(f"{n_toys} of {len(with_s['methods'])} masses with toys that profile "
                      "the same nuisances and background functions")
@@ -274,6 +279,8 @@ def systematic_limits_at(cfg: Config, hist: Any, signal: Any, scanned: Any,
         window=tuple(cfg.spectrum.window), blind=blind, cl=L.cl, luminosity=lum,
         luminosity_uncertainty=L.luminosity_uncertainty if lum is not None else 0.0,
         efficiency_uncertainty=L.efficiency_uncertainty if lum is not None else 0.0,
-        constraint=L.constraint, unit=L.cross_section_unit, method=L.method,
+        constraint=L.constraint, unit=L.cross_section_unit,
+        # toys with every nuisance profiled cost ~10x the plain toys per mass: on request
+        method=L.method if S.toy_limits else "asymptotic",
         toy_masses=list(L.toy_masses) or None, toys=L.toys, seed=cfg.significance.seed,
-        executor=executor if L.method != "asymptotic" else None, **sig_kw)
+        executor=executor if L.method != "asymptotic" and S.toy_limits else None, **sig_kw)
