@@ -93,7 +93,8 @@ def test_a_value_computed_beside_comes_back():
 def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, monkeypatch):
     # Every figure is drawn exactly once, none by the main process, and (each drawing made
     # slow, so that both drawers are busy) by two processes: the second drawer takes jobs
-    # from the same queue.  Reference: the one-process run's list of figure files.
+    # from the same queue.  Reference: the figures plotting.search_figures lists for a run
+    # without systematics (every one but the envelope's), one PNG each.
     import time
 
     from peaksift import plotting
@@ -104,7 +105,7 @@ def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, mon
 
     def slow_and_logged(result, outdir, **kw):
         if os.getpid() != parent:
-            time.sleep(1.0)
+            time.sleep(0.5)
         with open(log, "a") as f:
             f.write(f"{os.getpid()} {','.join(kw.get('names', ()))}\n")
         return real(result, outdir, **kw)
@@ -113,11 +114,55 @@ def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, mon
     peaksift.run_search(_config(small_demo), out=tmp_path / "beside", progress=False)
     lines = [ln.split() for ln in log.read_text().splitlines()]
     names = [n for _, n in lines]
-    assert sorted(names) == sorted(set(names)), names  # none drawn twice
+    expected = set(plotting.SEARCH_FIGURES) - {"background_envelope"}
+    assert sorted(names) == sorted(expected), names  # each drawn once
     pids = {int(p) for p, _ in lines}
     assert parent not in pids and len(pids) == 2, lines
-    monkeypatch.setattr(plotting, "search_figures", real)
-    monkeypatch.setenv("PEAKSIFT_INLINE", "1")
-    peaksift.run_search(_config(small_demo), out=tmp_path / "inline", progress=False)
-    files = {p.name for p in (tmp_path / "inline" / "figures").iterdir()}
-    assert files == {p.name for p in (tmp_path / "beside" / "figures").iterdir()}
+    files = {p.name for p in (tmp_path / "beside" / "figures").iterdir()}
+    assert files == {f"{n}.png" for n in expected}
+
+
+_DRAWER_DIES = """
+import os, sys
+from pathlib import Path
+import peaksift
+from peaksift.config import load_config
+from peaksift.search import parallel
+
+parent = os.getpid()
+real = parallel._warm_up
+
+def dies_in_child(*args):
+    if os.getpid() != parent:
+        os._exit(3)  # the drawer dies before it reads a single job
+    real(*args)
+
+parallel._warm_up = dies_in_child
+cfg = load_config(Path(sys.argv[1]) / "demo_data" / "search.toml").with_overrides(
+    input__files=sys.argv[3:], significance__toys=20, limits__points=5,
+    output__formats=["png"], systematics__mass_scale=0.0,
+    systematics__mass_resolution=0.0, systematics__background_families=[])
+res = peaksift.run_search(cfg, out=sys.argv[2], progress=False)
+print(sorted(res.figures))
+"""
+
+
+def test_a_drawer_that_dies_at_once_leaves_the_figures_to_the_parent(small_demo, tmp_path):
+    # The figure process dies before reading any job: the parent draws every figure and the
+    # run ends (the jobs left in the queue's pipe must not hold the process at its exit:
+    # without the fix this run hung after printing).  Reference: the figures
+    # plotting.search_figures lists for a run without systematics, one PNG each.
+    import subprocess
+    import sys
+
+    from peaksift import plotting
+
+    script = tmp_path / "dies.py"
+    script.write_text(_DRAWER_DIES)
+    files = [str(p) for p in sorted(small_demo.glob("*.parquet"))]
+    done = subprocess.run([sys.executable, str(script), str(REPO), str(tmp_path / "out"),
+                           *files], capture_output=True, text=True, timeout=600, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    names = {p.name for p in (tmp_path / "out" / "figures").iterdir()}
+    expected = set(plotting.SEARCH_FIGURES) - {"background_envelope"}
+    assert names == {f"{n}.png" for n in expected}

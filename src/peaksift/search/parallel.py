@@ -184,6 +184,9 @@ class FigureWorker:
             except (EOFError, OSError):  # the child died: everything is drawn here
                 drawn, done, caught = {}, set(), []
             self._proc.join()
+            # a drawer that died early leaves jobs in the queue: nobody will read them, and
+            # its feeder thread must not hold this process's exit on a full pipe
+            self._queue.cancel_join_thread()
             _rewarn(caught)
             self._conn.close()
             self._proc = None
@@ -205,9 +208,11 @@ class FigureWorker:
             self._proc = None
 
 
-def _warm_up() -> None:
+def _warm_up(formats: Sequence[str] = ()) -> None:
     """Import the drawing stack and render one small figure with typeset text, so the
-    first real figure does not pay for loading fonts and the mathtext parser."""
+    first real figure does not pay for loading fonts and the mathtext parser; saved once in
+    each of ``formats`` too, so that their backends (the PDF one loads fontTools, ~0.25 s)
+    are in before the second drawer forks, not imported by each drawer."""
     import io
 
     from .._style import figure_style, new_figure
@@ -217,7 +222,8 @@ def _warm_up() -> None:
         ax.plot([0, 1], [0, 1])
         ax.set_xlabel(r"$m_{\mu\mu}$ [GeV]")
         ax.set_title(r"$Z_{local}$ = 1.00 $\sigma$")
-    fig.savefig(io.BytesIO(), format="png", dpi=50)
+    for fmt in dict.fromkeys(["png", *formats]):
+        fig.savefig(io.BytesIO(), format=fmt, dpi=50)
 
 
 #: processes drawing a search's figures: the first forks the others once matplotlib is in
@@ -303,7 +309,7 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
         _child_start(parent)
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
-        _warm_up()
+        _warm_up(kw.get("formats") or ())
         for _ in range(_DRAWERS - 1):
             if (h := _second_drawer(queue, outdir, kw)) is not None:
                 helpers.append(h)
