@@ -133,7 +133,8 @@ class _Reference:
     def _free_nll(self, f):
         return lambda s, b, p, km, kr: self._nll(self.n, f, s, b, p, km, kr, 0.0)
 
-    def limits(self, cl: float = 0.95) -> tuple[float, float]:
+    def limits(self, cl: float = 0.95, bracket: tuple[float, float] = (0.5, 200.0)
+               ) -> tuple[float, float]:
         alpha = 1 - cl
         a = self.asimov()
         a0 = self.env(a, None, background_only=True)
@@ -164,8 +165,8 @@ class _Reference:
             return clsb / clb - alpha
 
         z = st.norm.ppf(1 - alpha / 2)  # the median expected limit: q_mu,A = z^2 (CLs, N=0)
-        expected = optimize.brentq(lambda mu: qa(mu) - z * z, 0.5, 200.0, xtol=1e-4)
-        observed = optimize.brentq(cls, 0.5, 200.0, xtol=1e-4)
+        expected = optimize.brentq(lambda mu: qa(mu) - z * z, *bracket, xtol=1e-4)
+        observed = optimize.brentq(cls, *bracket, xtol=1e-4)
         return observed, expected
 
 
