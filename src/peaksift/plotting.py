@@ -285,7 +285,10 @@ def _fit_title(result: Any) -> str:
     if zg != "n/a":
         gt = "> " if best.get("z_global_is_lower_bound") else ""
         parts.append(f"$Z_{{global}}$ = {gt}{zg}")
-    return ",  ".join(parts)
+    # the same rule as the report's Result table: with [systematics] the significances are
+    # the profiled ones, not the single function's drawn below
+    tag = " (with systematics)" if getattr(result, "systematics", None) else ""
+    return ",  ".join(parts) + tag
 
 
 def _fit_figure(fr: Any, outdir: str | os.PathLike[str], name: str, formats: Sequence[str], *,
