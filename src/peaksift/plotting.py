@@ -335,16 +335,18 @@ def calibration_figure(cal: Any, fr: Any, outdir: str | os.PathLike[str],
 
 def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
                  labels: FigureLabels) -> Path:
-    """``ScanResult.plot`` with the global significance noted and, when the search has a
-    fit, the expected p-value of a signal of the fitted size."""
+    """``ScanResult.plot`` with the global significance noted and the expected p-value of
+    a signal of the size the scan fitted at its best mass."""
     expected = None
-    fit = getattr(result, "fit", None)
     scan = result.scan
-    if fit is not None and getattr(scan, "model", None) is not None:
-        s = float(fit.signal_yield[0])
+    if getattr(scan, "model", None) is not None and 0 <= scan.best_index < scan.masses.size:
+        # the scan's own yield at its best mass, with the scan's signal shape: the free
+        # fit's yield has its own width (a broad free fit can hold twice the events, and
+        # the curve then promises a significance no hypothesis of the scan could show)
+        s = float(scan.signal_yield[scan.best_index])
         if np.isfinite(s) and s > 0:
-            expected = (scan.expected_z(s),
-                        f"expected for a signal of {number(s, 3)} events (the fitted size)")
+            label = f"expected for a signal of {number(s, 3)} events (the scan's best fit)"
+            expected = (scan.expected_z(s), label)
     fig = scan_figure(scan, result.best, labels=labels, expected=expected)
     env = ((getattr(result, "systematics", None) or {}).get("envelope") or {})
     # results.json files written before the key took EnvelopeResult's name say "mass"

@@ -46,7 +46,7 @@ CAPTIONS = {
     "pvalue_scan": "Local p-value of the background-only hypothesis at each mass hypothesis, "
                    "with the whole-sigma levels (1 to 5) that fall in the axis range and the "
                    "best point marked; dashed, the median p-value expected for a signal of "
-                   "the fitted size; the global significance of the largest excess is noted. "
+                   "the size the scan fitted at its best mass; the global significance of the largest excess is noted. "
                    "With systematics, the bold curve includes them (background function "
                    "profiled as an envelope, signal nuisances profiled) and the thin one is "
                    "the single-function scan without them.",
