@@ -25,12 +25,13 @@ REPO = Path(__file__).resolve().parents[1]
 
 @pytest.fixture(scope="module")
 def search(small_demo):
-    """A quick search on the small demo set (few toys, few limit points, no calibration)."""
+    """A quick search on the small demo set (few toys, few limit points, no calibration;
+    its low counts make every limit a toy limit, of 20 toys)."""
     from peaksift.config import load_config
 
     cfg = load_config(REPO / "demo_data" / "search.toml").with_overrides(
         input__files=[str(p) for p in sorted(small_demo.glob("*.parquet"))],
-        significance__toys=20, limits__points=5, calibration__particle="",
+        significance__toys=20, limits__points=5, limits__toys=20, calibration__particle="",
         calibration__window=None)
     return peaksift.run_search(cfg, out=False, progress=False)
 
@@ -172,11 +173,12 @@ def results(search):
                         blind=(145.0, 160.0), absolute_resolution=2.0,
                         spurious={"exp": 0.3})
     comb, chans = _combination(search)
+    climits = _combined_limits(chans)
     return {"fit": search.fit, "background_fit": search.background_fit,
             "scan": search.scan, "limits": search.limits, "sideband_fit": sb,
             "envelope": env, "combination": comb,
-            "combined_limits": _combined_limits(chans), "search": search,
-            "combined_search": _combined_search(search, comb, chans),
+            "combined_limits": climits, "search": search,
+            "combined_search": _combined_search(search, comb, climits),
             "histogram": search.histogram, "signal_model": _signal_model(),
             "background_choice": choose_background(search.histogram, {"exppoly": [1, 2]},
                                                    window=cfg.spectrum.window)}
@@ -208,12 +210,16 @@ def _combination(search):
 
 
 def _combined_limits(chans):
+    """Asymptotic and toy limits in one result: toys below 3 background events under the
+    signal, at 170 GeV (and at every mass of channel b); 20 toys: the surface is tested,
+    not the numbers."""
     from peaksift.stats.channel_limits import combined_limits
 
-    return combined_limits(chans, np.linspace(130.0, 170.0, 3))
+    return combined_limits(chans, np.linspace(130.0, 170.0, 3), toys=20,
+                           low_count_background=3.0)
 
 
-def _combined_search(search, comb, chans):
+def _combined_search(search, comb, climits):
     """A combination's result as run_combination assembles it, from the parts above (two
     channels that are the same demo search: the surface, not the numbers, is tested)."""
     from peaksift.search.combination import CombinedSearchResult
@@ -221,7 +227,7 @@ def _combined_search(search, comb, chans):
     return CombinedSearchResult(
         channels={"a": search, "b": search}, combination=comb,
         best=comb.global_significance("upcrossings", toys=0),
-        limits=_combined_limits(chans), source="<dict>", notes=("a note",))
+        limits=climits, source="<dict>", notes=("a note",))
 
 
 #: every result type the API convention covers (the tests below run on each)

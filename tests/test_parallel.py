@@ -26,7 +26,9 @@ pytestmark = pytest.mark.skipif(not parallel.forking(),
 
 def _config(small_demo, systematics: bool = False):
     """The demo search on the small demo set, quick (few toys and limit points, PNG only);
-    ``systematics``: with the demo's [systematics] (the envelope curve on the scan figure)."""
+    ``systematics``: with the demo's [systematics] (the envelope curve on the scan figure).
+    The small set has few events under each signal, so the limits' ``auto`` method computes
+    every limit point with toys (20 each: the numbers are compared, not their precision)."""
     from peaksift.config import load_config
 
     off = {} if systematics else {"systematics__mass_scale": 0.0,
@@ -34,7 +36,14 @@ def _config(small_demo, systematics: bool = False):
                                   "systematics__background_families": []}
     return load_config(REPO / "demo_data" / "search.toml").with_overrides(
         input__files=[str(p) for p in sorted(small_demo.glob("*.parquet"))],
-        significance__toys=20, limits__points=5, output__formats=["png"], **off)
+        significance__toys=20, limits__points=5, limits__toys=20, output__formats=["png"],
+        **off)
+
+
+def _figures_config(small_demo):
+    """For the tests of the figure processes (what is drawn, and by whom): the asymptotic
+    limits (a quarter of the run's CPU; the toy limits beside are compared above)."""
+    return _config(small_demo).with_overrides(limits__method="asymptotic")
 
 
 def _numbers(out: Path) -> dict:
@@ -70,7 +79,8 @@ def test_a_figure_the_child_fails_to_draw_is_drawn_by_the_parent(small_demo, tmp
         return real(result, outdir, **kw)
 
     monkeypatch.setattr(plotting, "search_figures", fails_in_child)
-    res = peaksift.run_search(_config(small_demo), out=tmp_path / "out", progress=False)
+    res = peaksift.run_search(_figures_config(small_demo), out=tmp_path / "out",
+                              progress=False)
     assert (tmp_path / "out" / "figures" / "limits.png").stat().st_size > 0
     assert "limits" in res.figures
 
@@ -111,7 +121,7 @@ def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, mon
         return real(result, outdir, **kw)
 
     monkeypatch.setattr(plotting, "search_figures", slow_and_logged)
-    peaksift.run_search(_config(small_demo), out=tmp_path / "beside", progress=False)
+    peaksift.run_search(_figures_config(small_demo), out=tmp_path / "beside", progress=False)
     lines = [ln.split() for ln in log.read_text().splitlines()]
     names = [n for _, n in lines]
     expected = set(plotting.SEARCH_FIGURES) - {"background_envelope"}
@@ -140,7 +150,7 @@ def dies_in_child(*args):
 parallel._warm_up = dies_in_child
 cfg = load_config(Path(sys.argv[1]) / "demo_data" / "search.toml").with_overrides(
     input__files=sys.argv[3:], significance__toys=20, limits__points=5,
-    output__formats=["png"], systematics__mass_scale=0.0,
+    limits__method="asymptotic", output__formats=["png"], systematics__mass_scale=0.0,
     systematics__mass_resolution=0.0, systematics__background_families=[])
 res = peaksift.run_search(cfg, out=sys.argv[2], progress=False)
 print(sorted(res.figures))
