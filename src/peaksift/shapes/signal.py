@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from ._base import Parameter, Shape
+from ._base import Parameter, Shape, as_window
 
 __all__ = ["BreitWigner", "CrystalBall", "Gaussian", "Voigt"]
 
@@ -339,6 +339,43 @@ class CrystalBall(_Signal):
         g_ah = np.where(right, np.exp(-0.5 * ah * ah) + e1a - pha, zero)
         g_nh = np.where(right, e1n - phn, zero)
         return [g_m, g_s, g_al + zero, g_nl + zero, g_ah, g_nh]
+
+    def _compiled_rows(self, kernel, x, p):
+        """Rows of a compiled kernel of :mod:`.compiled` at ``x`` for scalar parameters."""
+        from . import compiled
+
+        x = np.ascontiguousarray(x, dtype=float)
+        out = np.empty((7, x.size))
+        getattr(compiled, kernel)(x, *(float(v) for v in p), out)
+        return out
+
+    def fractions_and_grad(self, edges, params, window, need=None):
+        # one parameter set (the free fit's hot path): the compiled primitive, ~15x faster
+        # than the numpy path it follows, which stays for stacked parameters
+        p = self._params(params, len(self.parameters), self.name)
+        if any(np.ndim(v) for v in p) or np.ndim(edges) != 1:
+            return super().fractions_and_grad(edges, params, window, need)
+        lo, hi = as_window(window)
+        ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
+        rows = self._compiled_rows("crystalball_primitive",
+                                   np.clip(np.asarray(edges, float), lo, hi), p)
+        inv = 1.0 / (ends[0, 1] - ends[0, 0])
+        c = (rows[0] - ends[0, 0]) * inv
+        grad = np.diff((rows[1:] - ends[1:, :1]) * inv
+                       - c * ((ends[1:, 1:] - ends[1:, :1]) * inv), axis=-1)
+        return np.maximum(np.diff(c), 0.0), grad
+
+    def pdf_and_grad(self, x, params, window, need=None):
+        p = self._params(params, len(self.parameters), self.name)
+        if any(np.ndim(v) for v in p) or np.ndim(x) != 1:
+            return super().pdf_and_grad(x, params, window, need)
+        lo, hi = as_window(window)
+        ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
+        dens = self._compiled_rows("crystalball_density", x, p)
+        z = ends[0, 1] - ends[0, 0]
+        gz = ends[1:, 1] - ends[1:, 0]
+        pdf = dens[0] / z
+        return pdf, dens[1:] / z - pdf * (gz / z)[:, None]
 
     def fwhm(self, params):
         return self._fwhm_numeric(params)
