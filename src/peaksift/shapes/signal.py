@@ -444,6 +444,34 @@ class Voigt(_Signal):
         m, s, g = p
         return special.voigt_profile(x - m, s, 0.5 * g)
 
+    @staticmethod
+    def _faddeeva(x, p):
+        """``W = w(z) / (sigma sqrt(2 pi))`` at ``z = (x - m + i gamma) / (sigma sqrt 2)``
+        (Re W is the profile), ``W1 = dW/dx`` and ``z``; ``w`` is ``scipy.special.wofz``."""
+        m, s, g = p
+        z = (np.asarray(x, float) - m + 0.5j * g) / (s * math.sqrt(2.0))
+        w = special.wofz(z)
+        c = 1.0 / (s * _SQRT2PI)
+        dw = -2.0 * z * w + 2j / math.sqrt(math.pi)  # w'(z)
+        return c * w, c * dw / (s * math.sqrt(2.0)), z, w, dw
+
+    def _primitive_grad(self, x, p, window):
+        # closed form at every x, only the primitive itself is numerical: the profile is a
+        # function of x - m (d/dm = -V); the Gaussian's width obeys the heat equation,
+        # dV/dsigma = sigma d2V/dx2, so d/dsigma of the integral is sigma V'; Re w and Im w
+        # are conjugate harmonic, dV/dgamma = -d(Im W)/dx, so d/dgamma of the integral is
+        # -Im W; gamma = width / 2
+        big_w, w1, _, _, _ = self._faddeeva(x, p)
+        s = p[1]
+        return [-big_w.real, s * w1.real, -0.5 * big_w.imag]
+
+    def _density_grad(self, x, p, window):
+        _, w1, z, w, dw = self._faddeeva(x, p)
+        s = p[1]
+        d2w = -2.0 * w - 2.0 * z * dw  # w''(z)
+        w2 = d2w / (s * _SQRT2PI * 2.0 * s * s)  # d2W/dx2
+        return [-w1.real, s * w2.real, -0.5 * w1.imag]
+
     def _panels(self, p, window):
         lo, hi = window
         m = p[0]
