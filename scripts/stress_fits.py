@@ -403,6 +403,14 @@ def _top_reasons(st: CellStats, most: int = 3) -> str:
     return "; ".join(f"{r} x{n}" for r, n in st.reasons.most_common(most))
 
 
+def _brief(r: str) -> str:
+    """A reason shortened for the tables."""
+    r = r.replace("covariance not positive definite (Hessian of the NLL not invertible)",
+                  "Hessian not pos.-def.")
+    return r.split(":")[0].replace(" or within one error of its floor (a bound)",
+                                   " its floor")
+
+
 def print_tables(results: list[CellStats]) -> None:
     print("\n| cell | toys | fits | raw exc | PeaksiftError | invalid | median CPU ms "
           "| top reasons |")
@@ -418,7 +426,7 @@ def print_tables(results: list[CellStats]) -> None:
                   key=lambda r: (list(SIGNALS).index(r.split("/")[0]),
                                  list(BACKGROUNDS).index(r.split("/")[1])))
     by = {st.label: st for st in results}
-    print("\ninvalid-fit rate % (median fit CPU ms)\n")
+    print("\ninvalid-fit rate % / median fit CPU ms / toys\n")
     print("| signal/background | " + " | ".join(cols) + " |")
     print("|---|" + "---:|" * len(cols))
     for r in rows:
@@ -426,7 +434,7 @@ def print_tables(results: list[CellStats]) -> None:
         for c in cols:
             st = by.get(f"{r}/{c}")
             cells_.append("" if st is None else
-                          f"{100 * st.invalid_rate:.0f} ({st.median_ms:.0f})")
+                          f"{100 * st.invalid_rate:.0f} / {st.median_ms:.0f} / {st.toys}")
         print(f"| {r} | " + " | ".join(cells_) + " |")
     ntoys = sorted(st.toys for st in results)
     print(f"\ntoys per cell: min {ntoys[0]}, median {ntoys[len(ntoys) // 2]}, max {ntoys[-1]}; "
@@ -445,6 +453,25 @@ def print_tables(results: list[CellStats]) -> None:
         total.update(st.reasons)
     nfit = sum(st.fits for st in results)
     ninv = sum(st.invalid for st in results)
+    print("\nmain reasons by signal and case (fits carrying each, of all fits there)\n")
+    groups: dict[str, list[CellStats]] = collections.defaultdict(list)
+    for st in results:
+        sname, _, cname, mode = st.label.split("/")
+        groups[f"{sname} / {cname} / {mode}"].append(st)
+    print("| signal / case / mode | fits | invalid | main reasons |")
+    print("|---|---:|---:|---|")
+    def order(g: str) -> tuple:
+        sname, cname, mode = g.split(" / ")
+        return list(SIGNALS).index(sname), list(CASES).index(cname), mode
+
+    for g, sts in sorted(groups.items(), key=lambda kv: order(kv[0])):
+        rc: collections.Counter = collections.Counter()
+        for st in sts:
+            rc.update(st.reasons)
+        nf = sum(st.fits for st in sts)
+        ni = sum(st.invalid for st in sts)
+        top = "; ".join(f"{_brief(r)} {n}" for r, n in rc.most_common(3))
+        print(f"| {g} | {nf} | {ni} | {top} |")
     print(f"\nall cells: {nfit} fits, {ninv} invalid ({100 * ninv / max(nfit, 1):.1f}%); "
           f"reasons (fits carrying each):")
     for r, n in total.most_common():
