@@ -290,29 +290,30 @@ def _scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window):
     from ..shapes.compiled import gaussian_rows
     from .kernels import profile_two_yields
 
-    half_bin = 0.5 * float(np.median(np.diff(edges)))
-    widths = [w for w in width * WIDTH_FACTORS if max(lo_w, half_bin) <= w <= hi_w]
-    b0 = np.maximum(np.asarray(bexp, float), 1e-12)
+    half_bin = 0.5 * (edges[-1] - edges[0]) / (edges.size - 1)  # of a mean bin
+    widths = width * WIDTH_FACTORS
+    widths = widths[(widths >= max(lo_w, half_bin)) & (widths <= hi_w)]
+    b0 = np.maximum(bexp, 1e-12)
     btot = float(b0.sum())
-    if not widths or not btot > 0:
+    k = widths.size
+    if not k or not btot > 0:
         return None
     lo, hi = float(window[0]), float(window[1])
-    x = np.clip(np.asarray(edges, float), lo, hi)
-    rows = np.empty((len(widths), x.size - 1))
+    x = np.minimum(np.maximum(edges, lo), hi)  # np.clip
+    rows = np.empty((k, x.size - 1))
     at = np.array([mass])
-    for j, w in enumerate(widths):
-        if not gaussian_rows(x, at, w, lo, hi, rows[j:j + 1]):
+    for j in range(k):
+        if not gaussian_rows(x, at, float(widths[j]), lo, hi, rows[j:j + 1]):
             return None
-    y = np.column_stack([np.full(len(widths), 0.1 * math.sqrt(max(btot, 1.0))),
-                         np.full(len(widths), btot)])
-    nll = np.empty(len(widths))
-    sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), b0.shape)
-    profile_two_yields(np.ascontiguousarray(n, float), np.ascontiguousarray(sc), rows,
-                       b0 / btot, y, nll, 25)
-    ok = (y[:, 0] > 0) & np.isfinite(nll)
-    if not ok.any():
-        return None
-    return float(widths[int(np.argmin(np.where(ok, nll, np.inf)))])
+    y = np.empty((k, 2))
+    y[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
+    y[:, 1] = btot
+    nll = np.empty(k)
+    sc = np.ones(b0.size) if scale is None else np.ascontiguousarray(scale, float)
+    profile_two_yields(np.ascontiguousarray(n, float), sc, rows, b0 / btot, y, nll, 25)
+    nll[~((y[:, 0] > 0) & np.isfinite(nll))] = np.inf
+    best = int(np.argmin(nll))
+    return float(widths[best]) if math.isfinite(nll[best]) else None
 
 
 def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is_fixed,
