@@ -62,15 +62,15 @@ def row_kernel(shape: Any, edges: np.ndarray, window: tuple[float, float]) -> tu
 @njit(cache=True, nogil=True)
 def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, g,
                 dg):  # pragma: no cover - compiled
-    """Used-bin background fractions ``g`` (and, if ``dg.size``, derivatives ``dg``) at
-    ``theta[0]``, scaled as ``toy_model.bkg_fractions``; False where the kernel declines."""
-    kbuf[0] = theta[0]
+    """Used-bin background fractions ``g`` (and, if ``dg.size``, derivatives ``dg``, with
+    ``grad`` then the kernel's full derivative rows, else an empty 2-d array) at
+    ``theta``, scaled as ``toy_model.bkg_fractions``; False where the kernel declines."""
+    kbuf[0] = theta
     want = dg.size > 0
-    gbuf = grad if want else grad[:0]
     if code == 0:
-        ok = powerlaw_rows(e1, e2, kbuf, c1, c2, frac, gbuf)
+        ok = powerlaw_rows(e1, e2, kbuf, c1, c2, frac, grad)
     else:
-        ok = exponential_rows(e1, e2, kbuf, frac, gbuf)
+        ok = exponential_rows(e1, e2, kbuf, frac, grad)
     if not ok:
         return False
     for j in range(used.size):
@@ -200,6 +200,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     kbuf = np.empty(1)
     frac = np.empty((1, nw - 1))
     grad_full = np.empty((1, nw - 1))
+    grad_none = np.empty((0, 0))
     g = np.empty(nb)
     gt = np.empty(nb)
     dg = np.empty(nb)
@@ -222,8 +223,8 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
         if not _curvature(code, e1, e2, c1, c2, used, scale, xr[off + 1], lower[off + 1],
                           upper[off + 1], kbuf, frac, grad_full, gt, dg, d2[r]):
             return r + 1
-        if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1:], kbuf, frac,
-                           grad_full, g, none):
+        if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
+                           grad_none, g, none):
             return r + 1
         s = s_fix[r] if fixed else xr[0]
         cur = _nll(nr, f[r], g, s, xr[off], satr)
@@ -238,7 +239,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
         conv = False
         for _it in range(steps):
             s = s_fix[r] if fixed else xr[0]
-            if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1:], kbuf, frac,
+            if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
                                grad_full, gt, dg):
                 return r + 1
             _grad_hess(nr, f[r], g, dg, d2[r], s, xr[off], off, grad, hess)
@@ -265,8 +266,8 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
                     trial[a] = min(max(xr[a] + step[a], lower[a]), upper[a])
                     small = small and abs(step[a]) < step_tol * err[a]
                 st = s_fix[r] if fixed else trial[0]
-                if not _background(code, e1, e2, c1, c2, used, scale, trial[off + 1:],
-                                   kbuf, frac, grad_full, gt, none):
+                if not _background(code, e1, e2, c1, c2, used, scale, trial[off + 1],
+                                   kbuf, frac, grad_none, gt, none):
                     return r + 1
                 tn = _nll(nr, f[r], gt, st, trial[off], satr)
                 ok = tn <= cur + slack
@@ -293,7 +294,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
         conv_out[r] = conv
         if not fixed:
             s = xr[0]
-            if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1:], kbuf, frac,
+            if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
                                grad_full, gt, dg):
                 return r + 1
             _grad_hess(nr, f[r], g, dg, d2[r], s, xr[off], off, grad, hess_out[r])
@@ -307,15 +308,13 @@ def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, 
     """``toy_model.bkg_second`` for one row of one parameter: central differences of the
     fractions' derivative, step 1e-5 max(|theta|, 0.1), kept inside the bounds."""
     hstep = 1e-5 * max(abs(th), 0.1)
-    tb = np.empty(1)
-    tb[0] = min(th + hstep, hi)
-    if not _background(code, e1, e2, c1, c2, used, scale, tb, kbuf, frac, grad, gt, out):
+    up = min(th + hstep, hi)
+    if not _background(code, e1, e2, c1, c2, used, scale, up, kbuf, frac, grad, gt, out):
         return False
-    up = tb[0]
-    tb[0] = max(th - hstep, lo)
-    if not _background(code, e1, e2, c1, c2, used, scale, tb, kbuf, frac, grad, gt, dg):
+    dn = max(th - hstep, lo)
+    if not _background(code, e1, e2, c1, c2, used, scale, dn, kbuf, frac, grad, gt, dg):
         return False
-    width = up - tb[0] if up > tb[0] else 1.0
+    width = up - dn if up > dn else 1.0
     for j in range(out.size):
         out[j] = (out[j] - dg[j]) / width
     return True
@@ -382,7 +381,7 @@ def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: np.ndarray,
     scale = (np.ones(e1.size - 1) if model.bin_scale is None
              else np.ascontiguousarray(model.bin_scale, float))
     s_fix = np.array(s, float) if fixed else np.zeros(nb)
-    d2 = np.empty((nb, 1, 1, nbin))
+    d2 = np.empty((nb, nbin))
     nll = np.empty(nb)
     conv = np.zeros(nb, np.bool_)
     hess = np.zeros((nb, p, p))
@@ -392,10 +391,10 @@ def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: np.ndarray,
                           np.ascontiguousarray(np.atleast_2d(n), float),
                           np.ascontiguousarray(np.atleast_1d(sat), float),
                           np.ascontiguousarray(f, float), x, s_fix, lower, upper, int(steps),
-                          12, 1e-8, float(tol), 1e-9, d2[:, 0, 0, :], nll, conv, hess, s_err)
+                          12, 1e-8, float(tol), 1e-9, d2, nll, conv, hess, s_err)
     if status:
         return None
     off = 0 if fixed else 1
     return {"s": s_fix if fixed else x[:, 0].copy(), "s_error": s_err, "b": x[:, off].copy(),
             "theta": x[:, off + 1:].copy(), "nll": nll, "converged": conv,
-            "hessian": None if fixed else hess, "curvature": d2}
+            "hessian": None if fixed else hess, "curvature": d2.reshape(nb, 1, 1, nbin)}
