@@ -31,7 +31,8 @@ luminosity nuisance (fully correlated; their uncertainties must agree).  A chann
 ``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
 toys and the asymptotic combined limits (not in the toy limits); its background envelope
 (the functions its own search kept) is profiled per channel in the combined scan and its
-toys, not in the limits (both said in the results and the report).  Blinding is not
+toys and the asymptotic combined limits (the toy limits take each channel's function at
+mu = 0; both said in the results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
 
@@ -192,8 +193,9 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             notes += ((f"the combined scan and its toys (global significance) profile the "
                        f"[systematics] background envelope of channel(s) "
                        f"{', '.join(enveloped)} as a discrete choice per channel (its "
-                       "spurious-signal term left out); the combined limits use each "
-                       "channel's configured background function"),)
+                       "spurious-signal term left out), and so do the asymptotic combined "
+                       "limits; the combination's toy limits (if any) take each channel's "
+                       "function at mu = 0"),)
         left = [n for n in with_env if n not in enveloped]
         if left and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "
