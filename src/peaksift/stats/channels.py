@@ -505,9 +505,10 @@ class Combination(FrozenValue):
         return plain(out)
 
     def plot(self, path: Any = None, *, title: str | None = None, run: Any = None,
-             symbol: str = "m") -> Any:
+             symbol: str = "m", channel_scans: Any = None) -> Any:
         """Local p-value against mass: each channel (thin) and the combination (thick);
         see :func:`peaksift.stats.channel_plot.pvalue_figure` (no pyplot)."""
         from .channel_plot import pvalue_figure
 
-        return pvalue_figure(self, path, title=title, run=run, symbol=symbol)
+        return pvalue_figure(self, path, title=title, run=run, symbol=symbol,
+                             channel_scans=channel_scans)
