@@ -301,7 +301,6 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
 
     from .. import plotting
     from .._files import atomic_write
-    from .._style import RunLabel
     from .._vocabulary import FIGURES, figure_wanted
     from ..report import write_results_json
     from .combination_report import render_combination_html, render_combination_markdown
@@ -310,15 +309,8 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
     figdir.mkdir(parents=True, exist_ok=True)
     figs: dict[str, Path] = {}
     labels = {n: plotting.figure_labels(r.config) for n, r in res.channels.items()}
-    first = next(iter(labels.values())).run
-    run = RunLabel(name=first.name if first else "", sqrt_s=first.sqrt_s if first else None,
-                   luminosity=first.luminosity if first else None,
-                   channel=" + ".join(lb.run.channel for lb in labels.values()
-                                      if lb.run and lb.run.channel))
-    symbols = {lb.symbol for lb in labels.values()}
     if figure_wanted(figures, "pvalue_scan"):
-        res.combination.plot(figdir / "pvalue_combined.png", run=run,
-                             symbol=symbols.pop() if len(symbols) == 1 else "m")
+        res.plot(figdir / "pvalue_combined.png", which="pvalue_scan")
         figs["pvalue_combined"] = figdir / "pvalue_combined.png"
     for name, r in res.channels.items():
         cfg = r.config
