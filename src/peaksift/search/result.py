@@ -277,7 +277,8 @@ class SearchResult:
                 fit=FitResult.from_dict(fit) if fit.get("shapes") else None,
                 scan=ScanResult.from_dict(d["scan"]), best=dict(d["best"]),
                 limits=LimitResult.from_dict(d["limits"]) if d.get("limits") else None,
-                known_matches=tuple(KnownMatch(**k) for k in d.get("known_matches") or ()),
+                known_matches=tuple(KnownMatch.from_dict(k)
+                                    for k in d.get("known_matches") or ()),
                 calibration=d.get("calibration"), provenance=dict(d.get("provenance") or {}),
                 blinding=dict(d.get("blinding") or {}),
                 outdir=Path(outs["dir"]) if outs.get("dir") else None,
