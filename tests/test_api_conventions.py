@@ -88,6 +88,8 @@ def test_describe_repr_is_the_inspect_text(small_demo):
     desc = peaksift.describe(small_demo)
     assert repr(desc) == str(desc) and "collections:" in repr(desc)
     assert desc._repr_html_().startswith("<pre>")
+    d = _json(desc.to_dict())
+    assert type(desc).from_dict(d) == desc and all(hasattr(desc, k) for k in d)
 
 
 _PLOTS = """
