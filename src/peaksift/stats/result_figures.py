@@ -94,7 +94,7 @@ def envelope_figure(env: Any, path: Any = None, *, run: Any = None, symbol: str 
         shade_blinded(ax, _span(m, hidden))
         ax.set_xlabel(f"${symbol or 'm'}$ hypothesis [{env.unit}]")
         ax.set_ylabel("local p-value")
-        ax.legend(loc="lower left", fontsize=8.5, ncol=2)
+        ax.legend(loc="lower left", fontsize=8.5)
         if title is None:
             title = (f"discrete profiling of {len(env.labels)} background functions (penalty "
                      f"{fixed(env.penalty)} per parameter): best with {b['function']}")
