@@ -52,8 +52,8 @@ from ._style import (
 )
 
 __all__ = ["FigureLabels", "candidates", "dedx_figure", "envelope_figure",
-           "figure_labels", "limits_figure", "save", "scan_figure", "search_figures",
-           "spectrum_only"]
+           "figure_labels", "limits_figure", "save", "scan_expectation", "scan_figure",
+           "search_figures", "spectrum_only"]
 
 
 @dataclass(frozen=True)
@@ -242,10 +242,12 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
                    formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                    calibration: tuple[Any, Any] | None = None,
                    labels: FigureLabels | None = None,
-                   names: Sequence[str] = SEARCH_FIGURES) -> dict[str, Path]:
+                   names: Sequence[str] = SEARCH_FIGURES,
+                   expected: tuple[Any, str] | None = None) -> dict[str, Path]:
     """Every figure of a search result among ``names`` (default: all) that the result has
     the results for; returns figure name -> PNG path (``spectrum`` brings ``spectrum_log``
-    with ``log_scale``)."""
+    with ``log_scale``).  ``expected``: the p-value scan's expected curve
+    (:func:`scan_expectation`), computed here when not given."""
     labels = labels or figure_labels(getattr(result, "config", None))
     out: dict[str, Path] = {}
     blind = result.blinding.get("window") if result.blinding.get("active") else None
@@ -262,7 +264,7 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
                 out[key] = _fit_figure(result.fit, outdir, key, formats, log=log, blind=blind,
                                        title=_fit_title(result), labels=labels)
         elif name == "pvalue_scan":
-            out[name] = _scan_figure(result, outdir, formats, labels)
+            out[name] = _scan_figure(result, outdir, formats, labels, expected)
         elif name == "limits" and result.limits is not None:
             out[name] = _limits_figure(result, outdir, formats, labels)
         elif name == "candidates" and blind is None:  # they include the blinded window
@@ -333,20 +335,31 @@ def calibration_figure(cal: Any, fr: Any, outdir: str | os.PathLike[str],
     return save(fig, outdir, "calibration", formats)
 
 
+def scan_expectation(scan: Any) -> tuple[np.ndarray, str] | None:
+    """The p-value scan's expected curve and its legend label: the expected local Z of a
+    signal of the size the scan fitted at its best mass (None without one).  Statistics,
+    not drawing: a search computes it where its scan's kernels are loaded and hands it to
+    the drawer (``search_figures(expected=...)``)."""
+    if getattr(scan, "model", None) is None or not 0 <= scan.best_index < scan.masses.size:
+        return None
+    # the scan's own yield at its best mass, with the scan's signal shape: the free fit's
+    # yield has its own width (a broad free fit can hold twice the events, and the curve
+    # then promises a significance no hypothesis of the scan could show)
+    s = float(scan.signal_yield[scan.best_index])
+    if not (np.isfinite(s) and s > 0):
+        return None
+    label = f"expected for a signal of {number(s, 3)} events (the scan's best fit)"
+    return np.asarray(scan.expected_z(s), float), label
+
+
 def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
-                 labels: FigureLabels) -> Path:
+                 labels: FigureLabels, expected: Any = None) -> Path:
     """``ScanResult.plot`` with the global significance noted and the expected p-value of
-    a signal of the size the scan fitted at its best mass."""
-    expected = None
+    a signal of the size the scan fitted at its best mass (``expected``: that curve and
+    label from :func:`scan_expectation`, computed here when not given)."""
     scan = result.scan
-    if getattr(scan, "model", None) is not None and 0 <= scan.best_index < scan.masses.size:
-        # the scan's own yield at its best mass, with the scan's signal shape: the free
-        # fit's yield has its own width (a broad free fit can hold twice the events, and
-        # the curve then promises a significance no hypothesis of the scan could show)
-        s = float(scan.signal_yield[scan.best_index])
-        if np.isfinite(s) and s > 0:
-            label = f"expected for a signal of {number(s, 3)} events (the scan's best fit)"
-            expected = (scan.expected_z(s), label)
+    if expected is None:
+        expected = scan_expectation(scan)
     fig = scan_figure(scan, result.best, labels=labels, expected=expected)
     env = ((getattr(result, "systematics", None) or {}).get("envelope") or {})
     # results.json files written before the key took EnvelopeResult's name say "mass"

@@ -265,8 +265,16 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
         syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
     clock.lap("fits")
+    # the p-value scan's expected curve is computed here, where the scan's kernels are
+    # loaded: in the drawer it would load numba's compiler state for it (~0.5-1 s CPU)
+    expected = None
+    if drawer is not None and cfg.output.draws("pvalue_scan"):
+        from ..plotting import scan_expectation
+
+        expected = scan_expectation(sres)
     _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
-          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst))
+          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst),
+          expected=expected)
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
