@@ -224,6 +224,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     syst = None
     syst_limits_job = None
+    syst_jobs: dict[str, Beside] = {}  # stages of [systematics] beside it, by name
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
         from .systematics import run_systematics, systematic_limits_at
 
@@ -238,11 +239,17 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                          executor=_toy_executor(cfg, "toy limits"))
                 besides.append(syst_limits_job)
 
+        def beside(fn: Any, *args: Any, **kw: Any) -> Beside:
+            job = Beside(fn, *args, **kw)
+            besides.append(job)
+            syst_jobs[getattr(fn, "__name__", "stage").replace("_", " ")] = job
+            return job
+
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
                                                 executor=_toy_executor(cfg), scanned=scanned,
-                                                signal_model=smodel)
+                                                signal_model=smodel, beside=beside)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
@@ -357,7 +364,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                    "figures": round(drawer.cpu if drawer is not None else 0.0, 2),
                    **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {}),
                    **({"limits with systematics": round(syst_limits_job.cpu, 2)}
-                      if syst_limits_job is not None else {})}
+                      if syst_limits_job is not None else {}),
+                   **{k: round(j.cpu, 2) for k, j in syst_jobs.items()}}
     order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}
