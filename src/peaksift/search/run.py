@@ -267,10 +267,14 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
         bonly = sideband_fit(hist, sig_fit, bkg, (lo, hi), blind_window)
     fres = _note_tie_drift(fres, cfg, settings)
+    mass_job = None
     if syst is not None and fres is not None:  # the fitted mass with the mass scale profiled
         from .systematics import fitted_mass
 
-        syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
+        # beside: its profile loads scipy.optimize (~0.3 s), and nothing drawn needs it
+        mass_job = Beside(fitted_mass, cfg, fres.to_dict())
+        besides.append(mass_job)
+        syst_jobs["fitted mass"] = mass_job
     clock.lap("fits")
     # the p-value scan's expected curve is computed here, where the scan's kernels are
     # loaded: in the drawer it would load numba's compiler state for it (~0.5-1 s CPU)
@@ -295,6 +299,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
               calibration=(cal_hist, cal_fit))
 
+    if mass_job is not None:
+        syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None
     if cfg.limits.enabled:
         limits = (limits_job.result() if limits_job is not None else
