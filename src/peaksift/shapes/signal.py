@@ -77,7 +77,7 @@ class _Signal(Shape):
         def g(x: float) -> float:
             return float(self._density(np.array(x), p, w)) - 0.5 * fmax
 
-        from scipy import optimize  # here: a search's start-up need not load it
+        from ._roots import brentq  # scipy's algorithm, without importing scipy.optimize
 
         sides = []
         for sign in (-1.0, 1.0):
@@ -85,7 +85,7 @@ class _Signal(Shape):
             while g(m + sign * step) > 0 and step < 1e6 * scale:
                 step *= 2.0
             a, b = sorted((m + sign * step / 2.0 if step > scale else m, m + sign * step))
-            sides.append(optimize.brentq(g, a, b, xtol=1e-12 * scale, rtol=1e-14))
+            sides.append(brentq(g, a, b, xtol=1e-12 * scale, rtol=1e-14))
         return sides[1] - sides[0]
 
     def _scale(self, p: Sequence[float]) -> float:
