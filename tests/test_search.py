@@ -25,6 +25,9 @@ TRUTH = DEMO / "truth.json"
 pytestmark = pytest.mark.skipif(not TRUTH.exists(), reason="demo data not generated")
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
+#: the demo config's [systematics] switched off, for tests that do not read them
+NO_SYSTEMATICS = {"systematics__mass_scale": 0.0, "systematics__mass_resolution": 0.0,
+                  "systematics__background_families": []}
 
 
 @pytest.fixture(scope="module")
@@ -334,10 +337,13 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     from peaksift.search import run_search
 
     b0, b1 = 140.5, 165.0  # starts mid-bin: the bin [140, 141) holds blinded events
+    # without [systematics] and PDFs: nothing below reads them (the blinded demo with
+    # systematics: tests/test_limit_doubts.py)
     cfg = load_config(CONFIG).with_overrides(blinding__enabled=True,
                                              blinding__window=[b0, b1],
                                              limits__enabled=False, calibration__particle="",
-                                             significance__toys=20, output__log_scale=True)
+                                             significance__toys=20, output__log_scale=True,
+                                             output__formats=["png"], **NO_SYSTEMATICS)
     res = run_search(cfg, out=tmp_path / "blind")
     out = tmp_path / "blind"
     d = json.loads((out / "results.json").read_text())
@@ -450,7 +456,8 @@ def test_toy_mass_outside_the_limit_scan_is_a_config_error():
 
     cfg = load_config(CONFIG).with_overrides(limits__method="toys", limits__toys=20,
                                              limits__toy_masses=(110.5,),
-                                             calibration__particle="")
+                                             calibration__particle="", significance__toys=20,
+                                             **NO_SYSTEMATICS)  # the scan's masses only
     with pytest.raises(ConfigError, match=r"limits\.toy_masses\[0\] = 110\.5 lies outside "
                                           r"the limit scan"):
         run_search(cfg, out=False)
