@@ -479,17 +479,21 @@ def print_tables(results: list[CellStats]) -> None:
 
 
 def warm_up() -> None:
-    """One untimed fit per signal and per background shape, binned and unbinned: the first
-    call of each compiled kernel loads or compiles it (~1-14 s), which would otherwise land
-    in the first toy's time of whichever cell comes first."""
-    rng = np.random.default_rng(0)
-    x = np.concatenate([WINDOW[0] + rng.exponential(60.0, 800), rng.normal(PEAK, 3.0, 200)])
-    x = x[x < WINDOW[1]]
+    """One untimed fit per signal and per background shape, binned and unbinned, on toys
+    made as the cells make them (a MassHistogram or an array): the first call of each
+    compiled kernel loads or compiles it (~1-14 s; numba compiles again for other array
+    types), which would otherwise land in the first toy's time of whichever cell comes
+    first."""
+    case = CASES["strong"]
     pairs = [(s, "exponential") for s in SIGNALS] + [("gaussian", b) for b in BACKGROUNDS]
     for sname, blabel in pairs:
-        for binned in (True, False):
+        sig, bkg = shapes.get(sname), background_shape(blabel)
+        truth = BACKGROUNDS[blabel][2]
+        s_yield = signal_yield(case, sig, bkg, truth)
+        for mode in case.modes:
+            data = make_data(case, mode, sig, bkg, truth, s_yield, np.random.default_rng(0))
             try:
-                peaksift.fit(x, sname, background_shape(blabel), WINDOW, binned=binned)
+                peaksift.fit(data, sig, bkg, WINDOW, binned=(mode == "binned"))
             except Exception:  # noqa: BLE001, S110 - the matrix itself reports failures
                 pass
 

@@ -424,7 +424,8 @@ class Voigt(_Signal):
     Gaussian of standard deviation ``sigma`` (``scipy.special.voigt_profile(x - mass,
     sigma, width / 2)``).  Numerical CDF (Gauss-Legendre on panels uniform in
     ``arctan((x - mass)/h)``, h = half the FWHM, so core and Lorentzian tails are
-    both resolved; cached per parameter set and window).
+    both resolved; cached per parameter set and window).  Its derivatives and those of the
+    density are closed-form, from the Faddeeva function ``scipy.special.wofz``.
 
     FWHM: solved numerically; the Olivero-Longbothum approximation
     :math:`f_V \approx 0.5346 f_L + \sqrt{0.2166 f_L^2 + f_G^2}` (Olivero and Longbothum,
