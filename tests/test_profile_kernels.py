@@ -82,7 +82,7 @@ def test_power_law_profile_matches_iminuit(monkeypatch, numpy_path, blind):
     h = MassHistogram(bins=300, range=WINDOW).fill(x)
     counts, edges = np.histogram(x, bins=300, range=WINDOW)
     masses = np.array([110.0, 180.0, 250.0, 270.0, 390.0])
-    res = lambda m: np.full_like(np.asarray(m, float), SIGMA)  # noqa: E731
+    res = lambda m: np.full_like(np.asarray(m, float), SIGMA)
     r = scan(h, "gaussian", "powerlaw", masses, resolution=res, refit=False, blind=blind)
     model, _, _ = _prepare_model(h, "gaussian", "powerlaw", masses, resolution=res,
                                  window=None, natural_width=None, blind=blind,
