@@ -14,10 +14,11 @@ masses x 100 bins that call overhead was ~2/3 of the scan (its cost per mass and
 that of 1,000 bins).  Here a row's iterations run without returning to Python.
 
 It returns None whenever it cannot answer as the numpy path would (another background, a
-row kernel declining a point where the numpy path switches to a series, an exactly singular
-Newton system, where numpy would take a least-squares step): the numpy path then runs, and
-stays the reference (``PEAKSIFT_NUMPY_COST=1`` selects it; ``tests/test_profile_kernels.py``
-compares both, and the scan tests check the result against iminuit fits).
+row kernel declining a point where the numpy path switches to a series, a singular or
+non-finite Newton step, where numpy would take a least-squares step or zero components): the
+numpy path then runs, and stays the reference (``PEAKSIFT_NUMPY_COST=1`` selects it).
+``tests/test_profile_kernels.py`` checks both paths against iminuit fits written in the test;
+the numbers agree with the numpy path to rounding (q0 to ~1e-9 on a 10,000-bin scan).
 """
 
 from __future__ import annotations
