@@ -246,20 +246,16 @@ def _hessian(prob, full, free, x, steps, lower, upper, hess):  # pragma: no cove
             dn = p - h >= lower[rj]
         vq = v.copy()
         r0, r1 = rstart[k], rstart[k + 1]
-        if up and dn:
-            vq[ip] = p + h
-            if not _shape_rows(prob, k, vq, hi_rows[r0:r1]):
-                return False
-            vq[ip] = p - h
-            if not _shape_rows(prob, k, vq, lo_rows[r0:r1]):
-                return False
+        central = up and dn
+        if central:
             width = 2.0 * h
         else:  # one-sided next to a bound
-            vq[ip] = p + (h if up else -h)
-            if not _shape_rows(prob, k, vq, hi_rows[r0:r1]):
-                return False
-            lo_rows[r0:r1] = cdf[r0:r1]
             width = h if up else -h
+            lo_rows[r0:r1] = cdf[r0:r1]
+        for side in range(2 if central else 1):  # one call site: one copy of the kernels
+            vq[ip] = (p + h if up else p - h) if side == 0 else p - h  # (central: up)
+            if not _shape_rows(prob, k, vq, (hi_rows if side == 0 else lo_rows)[r0:r1]):
+                return False
         for q2 in range(drow.size):  # every free shape parameter of the same component
             if dcomp[q2] != k:
                 continue

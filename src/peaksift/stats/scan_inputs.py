@@ -76,8 +76,10 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
         raise FitError(f"scan: the window ({edges[0]:g}, {edges[-1]:g}) is empty")
     scale = 1.0
     bin_scale = None
-    if not np.allclose(weight_sum, hist.variances()):
-        scale = float(weight_sum.sum() / hist.variances().sum())
+    variances = hist.variances()
+    # unweighted bins are equal exactly: np.allclose's ~50 us only for weighted ones
+    if not (np.array_equal(weight_sum, variances) or np.allclose(weight_sum, variances)):
+        scale = float(weight_sum.sum() / variances.sum())
         bin_scale = hist.scaled_poisson_factors()
         warnings.warn(
             f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
