@@ -306,22 +306,6 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
                    **norms)
 
 
-def _envelope_scans(res: CombinedSearchResult) -> dict[str, tuple]:
-    """Channel name -> (masses, local p-values) of its own background-envelope scan, for
-    the channels whose envelope the combined scan profiles (the figure draws those)."""
-    from scipy import stats
-
-    env = (res.combination.envelope or {}) if len(res.channels) > 1 else {}
-    out = {}
-    for name, r in res.channels.items():
-        block = (r.systematics or {}).get("envelope") or {}
-        if not (env.get(name) or {}).get("functions") or block.get("z_local") is None:
-            continue
-        z = np.array([np.nan if v is None else v for v in block["z_local"]], float)
-        out[name] = (np.asarray(block["masses"], float), stats.norm.sf(z))
-    return out
-
-
 def _write(res: CombinedSearchResult, stage: Path, target: Path,
            figures: tuple[str, ...] = ("all",)) -> CombinedSearchResult:
     """results.json, the figures (the combined p-values, with ``pvalue_scan`` in the
@@ -332,7 +316,6 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
 
     from .. import plotting
     from .._files import atomic_write
-    from .._style import RunLabel
     from .._vocabulary import FIGURES, figure_wanted
     from ..report import write_results_json
     from .combination_report import render_combination_html, render_combination_markdown
@@ -341,16 +324,8 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
     figdir.mkdir(parents=True, exist_ok=True)
     figs: dict[str, Path] = {}
     labels = {n: plotting.figure_labels(r.config) for n, r in res.channels.items()}
-    first = next(iter(labels.values())).run
-    run = RunLabel(name=first.name if first else "", sqrt_s=first.sqrt_s if first else None,
-                   luminosity=first.luminosity if first else None,
-                   channel=" + ".join(lb.run.channel for lb in labels.values()
-                                      if lb.run and lb.run.channel))
-    symbols = {lb.symbol for lb in labels.values()}
     if figure_wanted(figures, "pvalue_scan"):
-        res.combination.plot(figdir / "pvalue_combined.png", run=run,
-                             symbol=symbols.pop() if len(symbols) == 1 else "m",
-                             channel_scans=_envelope_scans(res))
+        res.plot(figdir / "pvalue_combined.png", which="pvalue_scan")
         figs["pvalue_combined"] = figdir / "pvalue_combined.png"
     for name, r in res.channels.items():
         cfg = r.config

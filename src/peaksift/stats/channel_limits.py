@@ -100,6 +100,16 @@ class CombinedLimits(FrozenValue):
             rows.append(("observed", f"{np.nanmin(obs):.3g}-{np.nanmax(obs):.3g}"))
         return rows
 
+    def plot(self, path: Any = None, *, run: Any = None, symbol: str | None = None,
+             log: bool = True) -> Any:
+        """The combined limits with their bands and each channel's expected limit, as a
+        matplotlib Figure drawn without pyplot (the user's backend is left alone); ``run``:
+        the run label, ``symbol``: the pair's mass symbol (mathtext); saved to ``path``
+        when given.  See :func:`peaksift.stats.result_figures.combined_limits_figure`."""
+        from .result_figures import combined_limits_figure
+
+        return combined_limits_figure(self, path, run=run, symbol=symbol, log=log)
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready, every key an attribute of the same name (``channels``: each
         channel's :meth:`LimitResult.to_dict`)."""
