@@ -41,73 +41,13 @@ from typing import Any
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import exponential_rows, powerlaw_rows
+from .joint_kernels import lu_solve, model_change, row_background, small_step
 
 __all__ = ["compiled_joint"]
 
 #: background kinds of the compiled loop: fixed shape, exponential, power law
 _KINDS = {"exponential": 1, "powerlaw": 2}
 DONE, DECLINED = 0, 1
-
-
-@njit(cache=True, nogil=True)
-def _background(kind, e1, e2, lo, hi, theta, used, scale, frac, grad, tg, tdg,
-                ):  # pragma: no cover - compiled
-    """One row's background fractions and their derivative in the used bins into ``tg``
-    and ``tdg`` (as :func:`peaksift.stats.joint._bkg_both`); False if the kernel declines."""
-    th = np.empty(1)
-    th[0] = theta
-    if kind == 1:
-        ok = exponential_rows(e1, e2, th, frac, grad)
-    else:
-        ok = powerlaw_rows(e1, e2, th, lo, hi, frac, grad)
-    if not ok:
-        return False
-    for j in range(used.size):
-        u = used[j]
-        tg[j] = frac[0, u] * scale[u]
-        tdg[j] = grad[0, u] * scale[u]
-    return True
-
-
-@njit(cache=True, nogil=True)
-def _lu_solve(a, g, out):  # pragma: no cover - compiled
-    """``out = -a^-1 g`` by Gaussian elimination with partial pivoting (LAPACK's gesv
-    algorithm); False on an exactly zero pivot (where numpy raises)."""
-    n = g.size
-    m = np.empty((n, n + 1))
-    for i in range(n):
-        for j in range(n):
-            m[i, j] = a[i, j]
-        m[i, n] = g[i]
-    for c in range(n):
-        p = c
-        big = abs(m[c, c])
-        for r in range(c + 1, n):
-            if abs(m[r, c]) > big:
-                big = abs(m[r, c])
-                p = r
-        if big == 0.0:
-            return False
-        if p != c:
-            for j in range(c, n + 1):
-                t = m[c, j]
-                m[c, j] = m[p, j]
-                m[p, j] = t
-        for r in range(c + 1, n):
-            f = m[r, c] / m[c, c]
-            for j in range(c, n + 1):
-                m[r, j] -= f * m[c, j]
-    for i in range(n - 1, -1, -1):
-        acc = m[i, n]
-        for j in range(i + 1, n):
-            acc -= m[i, j] * out[j]
-        out[i] = acc / m[i, i]
-    for i in range(n):
-        out[i] = -out[i]
-        if not math.isfinite(out[i]):
-            out[i] = 0.0
-    return True
 
 
 @njit(cache=True, nogil=True)
@@ -132,7 +72,7 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         rn = r if nc_.shape[0] > 1 else 0
         if kpar[c]:
             w0, w1 = woff[c], woff[c + 1]
-            ok = _background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
+            ok = row_background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
                              lo[c], hi[c], x[first[c] + 1], used[b0:b1], scale[w0:w1],
                              frac, grad, tg[b0:b1], tdg[b0:b1])
             if not ok:
@@ -280,32 +220,6 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
 
 
 @njit(cache=True, nogil=True)
-def _small(step, err, step_tol):  # pragma: no cover - compiled
-    """Whether every component of ``step`` is below ``step_tol`` of its error (never
-    without a tolerance, ``step_tol < 0``)."""
-    if step_tol < 0.0:
-        return False
-    for i in range(step.size):
-        if not abs(step[i]) < step_tol * err[i]:
-            return False
-    return True
-
-
-@njit(cache=True, nogil=True)
-def _model_change(trial, x, grad, hess):  # pragma: no cover - compiled
-    """``g.d + d.H.d / 2`` for the step ``d = trial - x`` actually taken (bounds clipped)."""
-    p = x.size
-    out = 0.0
-    for i in range(p):
-        di = trial[i] - x[i]
-        t = 0.0
-        for j in range(p):
-            t += hess[i, j] * (trial[j] - x[j])
-        out += di * (grad[i] + 0.5 * t)
-    return out
-
-
-@njit(cache=True, nogil=True)
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
            hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
            step_tol, nll_tol, slack, tries, predict, hess_out, converged):  # pragma: no cover
@@ -371,13 +285,13 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                     for j in range(p):
                         a[i, j] = hess[i, j]
                     a[i, i] += lam * (hess[i, i] + floor) + 1e-14 * floor
-                if not _lu_solve(a, grad, step):
+                if not lu_solve(a, grad, step):
                     return DECLINED
                 for i in range(p):
                     trial[i] = min(max(xr[i] + step[i], lower[i]), upper[i])
-                if predict and lam <= 1e-2 and _small(step, err, step_tol):
+                if predict and lam <= 1e-2 and small_step(step, err, step_tol):
                     # a last step this small: its NLL from the quadratic model (module guide)
-                    dq = _model_change(trial, xr, grad, hess)
+                    dq = model_change(trial, xr, grad, hess)
                     if dq <= 0.0:
                         xr[:] = trial
                         fr = fr + dq
@@ -390,7 +304,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 if not ok:
                     return DECLINED
                 good = tn <= fr + slack
-                done = fr - tn < nll_tol or _small(step, err, step_tol)
+                done = fr - tn < nll_tol or small_step(step, err, step_tol)
                 if good and done and lam <= 1e-2:
                     done_row = True
                 if good:
