@@ -41,73 +41,13 @@ from typing import Any
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import exponential_rows, powerlaw_rows
+from .joint_kernels import lu_solve, model_change, row_background, small_step
 
 __all__ = ["compiled_joint"]
 
 #: background kinds of the compiled loop: fixed shape, exponential, power law
 _KINDS = {"exponential": 1, "powerlaw": 2}
 DONE, DECLINED = 0, 1
-
-
-@njit(cache=True, nogil=True)
-def _background(kind, e1, e2, lo, hi, theta, used, scale, frac, grad, tg, tdg,
-                ):  # pragma: no cover - compiled
-    """One row's background fractions and their derivative in the used bins into ``tg``
-    and ``tdg`` (as :func:`peaksift.stats.joint._bkg_both`); False if the kernel declines."""
-    th = np.empty(1)
-    th[0] = theta
-    if kind == 1:
-        ok = exponential_rows(e1, e2, th, frac, grad)
-    else:
-        ok = powerlaw_rows(e1, e2, th, lo, hi, frac, grad)
-    if not ok:
-        return False
-    for j in range(used.size):
-        u = used[j]
-        tg[j] = frac[0, u] * scale[u]
-        tdg[j] = grad[0, u] * scale[u]
-    return True
-
-
-@njit(cache=True, nogil=True)
-def _lu_solve(a, g, out):  # pragma: no cover - compiled
-    """``out = -a^-1 g`` by Gaussian elimination with partial pivoting (LAPACK's gesv
-    algorithm); False on an exactly zero pivot (where numpy raises)."""
-    n = g.size
-    m = np.empty((n, n + 1))
-    for i in range(n):
-        for j in range(n):
-            m[i, j] = a[i, j]
-        m[i, n] = g[i]
-    for c in range(n):
-        p = c
-        big = abs(m[c, c])
-        for r in range(c + 1, n):
-            if abs(m[r, c]) > big:
-                big = abs(m[r, c])
-                p = r
-        if big == 0.0:
-            return False
-        if p != c:
-            for j in range(c, n + 1):
-                t = m[c, j]
-                m[c, j] = m[p, j]
-                m[p, j] = t
-        for r in range(c + 1, n):
-            f = m[r, c] / m[c, c]
-            for j in range(c, n + 1):
-                m[r, j] -= f * m[c, j]
-    for i in range(n - 1, -1, -1):
-        acc = m[i, n]
-        for j in range(i + 1, n):
-            acc -= m[i, j] * out[j]
-        out[i] = acc / m[i, i]
-    for i in range(n):
-        out[i] = -out[i]
-        if not math.isfinite(out[i]):
-            out[i] = 0.0
-    return True
 
 
 @njit(cache=True, nogil=True)
@@ -125,12 +65,14 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
             acc += d * d
         out = 0.5 * acc
     mu = mu_fixed[r] if fixed else x[0]
-    rn = r if nn.shape[0] > 1 else 0
     for c in range(nc):
         b0, b1 = boff[c], boff[c + 1]
+        fc = ff[c]
+        nc_ = nn[c]
+        rn = r if nc_.shape[0] > 1 else 0
         if kpar[c]:
             w0, w1 = woff[c], woff[c + 1]
-            ok = _background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
+            ok = row_background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
                              lo[c], hi[c], x[first[c] + 1], used[b0:b1], scale[w0:w1],
                              frac, grad, tg[b0:b1], tdg[b0:b1])
             if not ok:
@@ -149,12 +91,13 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         b = x[first[c]]
         acc = 0.0
         for i in range(b0, b1):
-            nu = s * ff[r, i] + b * tg[i]
+            nu = s * fc[r, i - b0] + b * tg[i]
             if not nu > 0.0:
                 acc = math.inf
                 break
             nu = max(nu, 1e-300)
-            acc += nu - nn[rn, i] * math.log(nu) if nn[rn, i] != 0.0 else nu
+            ni = nc_[rn, i - b0]
+            acc += nu - ni * math.log(nu) if ni != 0.0 else nu
         out = out + acc
     return out, True
 
@@ -170,13 +113,16 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
         for j in range(p):
             hess[i, j] = 0.0
     mu = mu_fixed[r] if fixed else x[0]
-    rn = r if nn.shape[0] > 1 else 0
-    rd = r if d2.shape[0] > 1 else 0
     pos = np.empty(p, np.int64)
     coef = np.empty(p)
     aj = np.empty(p)
     for c in range(nc):
         b0, b1 = boff[c], boff[c + 1]
+        fc = ff[c]
+        nc_ = nn[c]
+        dc = d2[c]
+        rn = r if nc_.shape[0] > 1 else 0
+        rd = r if dc.shape[0] > 1 else 0
         e = 1.0
         if nj:
             t = 0.0
@@ -206,10 +152,10 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
         c0 = 0.0
         c1 = 0.0
         for i in range(b0, b1):
-            fi = ff[r, i]
+            fi = fc[r, i - b0]
             gi = g[i]
             inv = 1.0 / max(s * fi + br * gi, 1e-100)
-            ratio = nn[rn, i] * inv
+            ratio = nc_[rn, i - b0] * inv
             w = 1.0 - ratio
             v = ratio * inv
             wv[0, i] = w
@@ -230,12 +176,12 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
             for i in range(b0, b1):
                 dk = dg[i]
                 dv = dk * wv[1, i]
-                e0 += ff[r, i] * dv
+                e0 += fc[r, i - b0] * dv
                 e1 += g[i] * dv
                 e2 += dk * wv[0, i]
             for i in range(b0, b1):
                 h0 += dg[i] * wv[1, i] * dg[i]
-                h1 += d2[rd, i] * wv[0, i]
+                h1 += dc[rd, i - b0] * wv[0, i]
         # the channel's block over (signal columns, b, theta), scattered into the row's
         bi = first[c]
         for q in range(nsig):
@@ -274,32 +220,6 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
 
 
 @njit(cache=True, nogil=True)
-def _small(step, err, step_tol):  # pragma: no cover - compiled
-    """Whether every component of ``step`` is below ``step_tol`` of its error (never
-    without a tolerance, ``step_tol < 0``)."""
-    if step_tol < 0.0:
-        return False
-    for i in range(step.size):
-        if not abs(step[i]) < step_tol * err[i]:
-            return False
-    return True
-
-
-@njit(cache=True, nogil=True)
-def _model_change(trial, x, grad, hess):  # pragma: no cover - compiled
-    """``g.d + d.H.d / 2`` for the step ``d = trial - x`` actually taken (bounds clipped)."""
-    p = x.size
-    out = 0.0
-    for i in range(p):
-        di = trial[i] - x[i]
-        t = 0.0
-        for j in range(p):
-            t += hess[i, j] * (trial[j] - x[j])
-        out += di * (grad[i] + 0.5 * t)
-    return out
-
-
-@njit(cache=True, nogil=True)
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
            hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
            step_tol, nll_tol, slack, tries, predict, hess_out, converged):  # pragma: no cover
@@ -308,7 +228,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
     background fractions and derivatives; ``gg`` holds the fixed backgrounds' fractions on
     entry) written in place.  Returns DONE, or DECLINED (the caller runs Python)."""
     nb, p = x.shape
-    ntot = ff.shape[1]
+    ntot = boff[-1]
     nw = 1
     for c in range(kind.size):
         nw = max(nw, woff[c + 1] - woff[c])
@@ -365,13 +285,13 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                     for j in range(p):
                         a[i, j] = hess[i, j]
                     a[i, i] += lam * (hess[i, i] + floor) + 1e-14 * floor
-                if not _lu_solve(a, grad, step):
+                if not lu_solve(a, grad, step):
                     return DECLINED
                 for i in range(p):
                     trial[i] = min(max(xr[i] + step[i], lower[i]), upper[i])
-                if predict and lam <= 1e-2 and _small(step, err, step_tol):
+                if predict and lam <= 1e-2 and small_step(step, err, step_tol):
                     # a last step this small: its NLL from the quadratic model (module guide)
-                    dq = _model_change(trial, xr, grad, hess)
+                    dq = model_change(trial, xr, grad, hess)
                     if dq <= 0.0:
                         xr[:] = trial
                         fr = fr + dq
@@ -384,7 +304,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 if not ok:
                     return DECLINED
                 good = tn <= fr + slack
-                done = fr - tn < nll_tol or _small(step, err, step_tol)
+                done = fr - tn < nll_tol or small_step(step, err, step_tol)
                 if good and done and lam <= 1e-2:
                     done_row = True
                 if good:
@@ -426,6 +346,50 @@ def _rows_of(x: np.ndarray, nb: int) -> np.ndarray:
     return np.ascontiguousarray(x[:1] if nb > 1 and x.strides[0] == 0 else x)
 
 
+#: the per-model-set arrays of the compiled loop, kept for the last few sets (a root search
+#: fits the same models tens of times); each entry holds its models so their ids stay valid
+_STATIC: dict[tuple, tuple] = {}
+
+
+def _static(models: list) -> tuple | None:
+    """(kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar) of a set of channel
+    models, or None when one has no compiled background."""
+    key = tuple(id(m) for m in models)
+    hit = _STATIC.get(key)
+    if hit is not None:
+        return hit[1]
+    kin = [_inputs(m) for m in models]
+    if any(v is None for v in kin):
+        out = None
+    else:
+        sizes = [m.used.size for m in models]
+        wsz = [m.edges.size - 1 for m in models]
+        esz = [v[1].size for v in kin]
+        out = (np.array([v[0] for v in kin], np.int64),
+               np.concatenate([[0], np.cumsum(esz)]).astype(np.int64),
+               np.concatenate([v[1] for v in kin]),
+               np.concatenate([np.r_[v[2], 0.0][:sz] for v, sz in zip(kin, esz)]),
+               np.array([v[3] for v in kin]), np.array([v[4] for v in kin]),
+               np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64),
+               np.concatenate([np.asarray(m.used, np.int64) for m in models]),
+               np.concatenate([[0], np.cumsum(wsz)]).astype(np.int64),
+               np.concatenate([np.ones(w) if m.bin_scale is None else
+                               np.asarray(m.bin_scale, float) for m, w in zip(models, wsz)]),
+               np.array([m.theta.size for m in models], np.int64))
+    if len(_STATIC) >= 8:
+        _STATIC.pop(next(iter(_STATIC)))
+    _STATIC[key] = (tuple(models), out)
+    return out
+
+
+def _frozen(x: np.ndarray) -> np.ndarray:
+    """A contiguous read-only view (a copy only when not contiguous): the channels' arrays
+    go to the compiled loop as one tuple, which numba types only when all alike."""
+    v = np.ascontiguousarray(x, float).view()
+    v.flags.writeable = False
+    return v
+
+
 def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.ndarray,
                    x0: np.ndarray, aux: np.ndarray, a_norm: Any, d2: list, fixed_g: list,
                    first: list, lower: np.ndarray, upper: np.ndarray, steps: int,
@@ -437,36 +401,25 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     fractions of a background without shape parameters); a namespace with ``x``, ``nll``,
     ``state``, ``hessian`` and ``converged``, or None when the Python loop must answer
     (module guide)."""
-    kin = [_inputs(m) for m in models]
-    if any(v is None for v in kin):
+    fixed_parts = _static(models)
+    if fixed_parts is None:
         return None
+    kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar = fixed_parts
     nb, p = x0.shape
     nc = len(models)
-    sizes = [m.used.size for m in models]
-    boff = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
-    wsz = [m.edges.size - 1 for m in models]
-    woff = np.concatenate([[0], np.cumsum(wsz)]).astype(np.int64)
-    esz = [v[1].size for v in kin]
-    eoff = np.concatenate([[0], np.cumsum(esz)]).astype(np.int64)
-    e1 = np.concatenate([v[1] for v in kin])
-    e2 = np.concatenate([np.r_[v[2], 0.0][:sz] for v, sz in zip(kin, esz)])
-    scale = np.concatenate([np.ones(w) if m.bin_scale is None else
-                            np.asarray(m.bin_scale, float) for m, w in zip(models, wsz)])
-    used = np.concatenate([np.asarray(m.used, np.int64) for m in models])
-    kpar = np.array([m.theta.size for m in models], np.int64)
+    sizes = np.diff(boff)
     shared_n = all(nb == 1 or x.strides[0] == 0 for x in n)
-    nn = np.concatenate([x[:1] if shared_n else np.broadcast_to(x, (nb, x.shape[1]))
-                         for x in n], axis=1)
-    ff = np.concatenate([np.broadcast_to(x, (nb, x.shape[1])) for x in f], axis=1)
-    gg = np.concatenate([np.zeros((nb, sz)) if g is None else np.broadcast_to(g, (nb, sz))
-                         for g, sz in zip(fixed_g, sizes)], axis=1)
-    dgg = np.zeros((nb, boff[-1]))
-    d2r = [None if v is None else v[:, 0, 0, :] for v in d2]
-    shared_d = all(v is None or nb == 1 or v.strides[0] == 0 for v in d2r)
-    rows_d = 1 if shared_d else nb
-    d2c = np.concatenate([np.zeros((rows_d, s)) if v is None else
-                          np.broadcast_to(v[:1] if shared_d else v, (rows_d, s))
-                          for v, s in zip(d2r, sizes)], axis=1)
+    nn = tuple(_frozen(x[:1] if shared_n else np.broadcast_to(x, (nb, x.shape[1])))
+               for x in n)
+    ff = tuple(_frozen(np.broadcast_to(x, (nb, x.shape[1]))) for x in f)
+    gg = np.empty((nb, boff[-1]))       # written at the start (fixed shapes: here)
+    for c, g in enumerate(fixed_g):
+        if g is not None:
+            gg[:, boff[c]:boff[c + 1]] = g
+    dgg = np.empty((nb, boff[-1]))
+    d2c = tuple(_frozen(np.zeros((1, sz)) if v is None else
+                        v[:1, 0, 0, :] if nb > 1 and v.strides[0] == 0 else v[:, 0, 0, :])
+                for v, sz in zip(d2, sizes))
     kc = np.ascontiguousarray(np.stack([np.broadcast_to(np.asarray(x, float), (nb,))
                                         for x in k]))
     nj = 0 if a_norm is None else a_norm.shape[1]
@@ -478,10 +431,8 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     conv = np.zeros(nb, bool)
     status = _drive(bool(fixed), np.ascontiguousarray(np.broadcast_to(mu, (nb,)), float),
                     0 if fixed else 1, nj, aux, an, kc, np.asarray(first, np.int64), kpar,
-                    np.array([v[0] for v in kin], np.int64), eoff, e1, e2,
-                    np.array([v[3] for v in kin]), np.array([v[4] for v in kin]), boff, used,
-                    woff, scale, np.ascontiguousarray(nn, float), np.ascontiguousarray(ff),
-                    gg, dgg, np.ascontiguousarray(d2c), x, out_nll,
+                    kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, dgg,
+                    d2c, x, out_nll,
                     np.asarray(lower, float), np.asarray(upper, float), int(steps),
                     -1.0 if step_tol is None else float(step_tol), float(nll_tol),
                     float(slack), int(tries), bool(predict), hess, conv)

@@ -11,7 +11,11 @@ arrays:
 * :func:`channel_sums` -- with ``w = 1 - n/nu`` and ``v = n/nu^2`` (``nu`` floored at
   1e-100): ``sum f w``, ``sum f f v``, ``sum f g v``, ``sum f dg_k v``, ``sum g w``,
   ``sum g g v``, ``sum g dg_k v``, ``sum dg_k w``, ``sum dg_k dg_l v`` and
-  ``sum d2_kl w``, from which :func:`peaksift.stats.joint._grad_hess` assembles the blocks.
+  ``sum d2_kl w``, from which :func:`peaksift.stats.joint._grad_hess` assembles the blocks;
+* for the compiled loop (:mod:`peaksift.stats.joint_driver`): :func:`row_background` (one
+  row's exponential or power-law fractions in the used bins), :func:`lu_solve` (a Newton
+  step), :func:`small_step` (the stopping test) and :func:`model_change` (the quadratic
+  model's NLL change).
 """
 
 from __future__ import annotations
@@ -21,7 +25,10 @@ import math
 import numpy as np
 from numba import njit
 
-__all__ = ["channel_nll", "channel_sums", "sums"]
+from ..shapes.compiled import exponential_rows, powerlaw_rows
+
+__all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "row_background",
+           "small_step", "sums"]
 
 
 @njit(cache=True, nogil=True)
@@ -114,3 +121,89 @@ def sums(n: np.ndarray, f: np.ndarray, g: np.ndarray, dg: np.ndarray, d2: np.nda
     ds, dd = np.zeros((rows, kk)), np.zeros((rows, 2, kk, kk))
     channel_sums(n, f, g, dg, d2, s, b, fs, gs, ds, dd)
     return fs, gs, ds, dd
+
+
+@njit(cache=True, nogil=True)
+def row_background(kind, e1, e2, lo, hi, theta, used, scale, frac, grad, tg, tdg,
+                ):  # pragma: no cover - compiled
+    """One row's background fractions and their derivative in the used bins into ``tg``
+    and ``tdg`` (as :func:`peaksift.stats.joint._bkg_both`); False if the kernel declines."""
+    th = np.empty(1)
+    th[0] = theta
+    if kind == 1:
+        ok = exponential_rows(e1, e2, th, frac, grad)
+    else:
+        ok = powerlaw_rows(e1, e2, th, lo, hi, frac, grad)
+    if not ok:
+        return False
+    for j in range(used.size):
+        u = used[j]
+        tg[j] = frac[0, u] * scale[u]
+        tdg[j] = grad[0, u] * scale[u]
+    return True
+
+
+@njit(cache=True, nogil=True)
+def lu_solve(a, g, out):  # pragma: no cover - compiled
+    """``out = -a^-1 g`` by Gaussian elimination with partial pivoting (LAPACK's gesv
+    algorithm); False on an exactly zero pivot (where numpy raises)."""
+    n = g.size
+    m = np.empty((n, n + 1))
+    for i in range(n):
+        for j in range(n):
+            m[i, j] = a[i, j]
+        m[i, n] = g[i]
+    for c in range(n):
+        p = c
+        big = abs(m[c, c])
+        for r in range(c + 1, n):
+            if abs(m[r, c]) > big:
+                big = abs(m[r, c])
+                p = r
+        if big == 0.0:
+            return False
+        if p != c:
+            for j in range(c, n + 1):
+                t = m[c, j]
+                m[c, j] = m[p, j]
+                m[p, j] = t
+        for r in range(c + 1, n):
+            f = m[r, c] / m[c, c]
+            for j in range(c, n + 1):
+                m[r, j] -= f * m[c, j]
+    for i in range(n - 1, -1, -1):
+        acc = m[i, n]
+        for j in range(i + 1, n):
+            acc -= m[i, j] * out[j]
+        out[i] = acc / m[i, i]
+    for i in range(n):
+        out[i] = -out[i]
+        if not math.isfinite(out[i]):
+            out[i] = 0.0
+    return True
+
+
+@njit(cache=True, nogil=True)
+def small_step(step, err, step_tol):  # pragma: no cover - compiled
+    """Whether every component of ``step`` is below ``step_tol`` of its error (never
+    without a tolerance, ``step_tol < 0``)."""
+    if step_tol < 0.0:
+        return False
+    for i in range(step.size):
+        if not abs(step[i]) < step_tol * err[i]:
+            return False
+    return True
+
+
+@njit(cache=True, nogil=True)
+def model_change(trial, x, grad, hess):  # pragma: no cover - compiled
+    """``g.d + d.H.d / 2`` for the step ``d = trial - x`` actually taken (bounds clipped)."""
+    p = x.size
+    out = 0.0
+    for i in range(p):
+        di = trial[i] - x[i]
+        t = 0.0
+        for j in range(p):
+            t += hess[i, j] * (trial[j] - x[j])
+        out += di * (grad[i] + 0.5 * t)
+    return out
