@@ -210,7 +210,7 @@ def test_rerun_replaces_exactly_its_own_files(data, capsys, tmp_path):
     (cfg_dir / "c.toml").write_text(both)
     out = tmp_path / "mine"
     assert main(["spectrum", str(cfg_dir / "c.toml"), "--out", str(out), "--quiet"]) == 0
-    assert (out / "figures" / "spectrum.pdf").exists()
+    assert (out / "figures" / "spectrum.pdf").read_bytes()[:5] == b"%PDF-"  # asked: written
     (cfg_dir / "c.toml").write_text(both.replace('["png", "pdf"]', '["png"]'))
     assert main(["spectrum", str(cfg_dir / "c.toml"), "--out", str(out), "--quiet"]) == 0
     assert not (out / "figures" / "spectrum.pdf").exists()  # ours, stale: removed

@@ -419,3 +419,25 @@ def test_other_libraries_warnings_print_as_one_line_of_ours():
     assert out.stderr.splitlines() == [
         "peaksift: warning: Font 'x' has no glyph for this (matplotlib.mathtext)",
         "peaksift: warning: a library's warning (UserWarning)"]
+
+
+def test_module_command_flushes_its_output_and_keeps_its_exit_status(tmp_path):
+    """``python -m peaksift`` ends with ``os._exit`` after its exit handlers (cli.run): what
+    it printed must still arrive whole through a pipe, and the status must be main()'s
+    (0 for a run, 2 for a user error), with the log records of -v flushed too."""
+    import os
+    import subprocess
+    import sys
+
+    src = Path(__file__).resolve().parents[1] / "src"
+    env = {**os.environ, "PYTHONPATH": str(src)}
+    ok = subprocess.run([sys.executable, "-m", "peaksift", "demo", str(tmp_path / "d"),
+                         "--events", "2000", "-v"], capture_output=True, text=True, env=env,
+                        timeout=300, check=False)
+    assert ok.returncode == 0, ok.stderr
+    assert "truth.json" in ok.stdout and ok.stdout.endswith("\n")  # the last line arrived
+    bad = subprocess.run([sys.executable, "-m", "peaksift", "search",
+                          str(tmp_path / "missing.toml")], capture_output=True, text=True,
+                         env=env, timeout=120, check=False)
+    assert bad.returncode == 2
+    assert bad.stderr.startswith("peaksift: error:") and len(bad.stderr.splitlines()) == 1

@@ -47,7 +47,7 @@ def test_minimal_config_and_defaults(tmp_path):
     assert cfg.spectrum.bins == 100
     assert cfg.pairing.charge == "opposite"
     assert cfg.execution.engine == "serial"
-    assert cfg.output.formats == ("png", "pdf")
+    assert cfg.output.formats == ("png",)  # PDF on request (docs/decisions/png-by-default.md)
     assert len(cfg.sha256) == 64
     with pytest.raises(dataclasses.FrozenInstanceError):
         cfg.spectrum.bins = 5  # type: ignore[misc]

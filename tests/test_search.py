@@ -276,7 +276,7 @@ class _Images(HTMLParser):
         self.text.append(data)
 
 
-def test_every_figure_is_a_valid_png_and_pdf(run):
+def test_every_figure_is_a_valid_png_and_only_the_asked_formats(run):
     import matplotlib
 
     matplotlib.use("Agg")
@@ -291,7 +291,8 @@ def test_every_figure_is_a_valid_png_and_pdf(run):
         img = mpimg.imread(p)
         assert img.ndim == 3 and img.shape[0] > 200 and img.shape[1] > 300
         assert float(np.std(img)) > 0.01  # not a blank canvas
-        assert p.with_suffix(".pdf").read_bytes()[:5] == b"%PDF-"
+    # the demo asks for PNG only (output.formats; PDF is opt-in: a third more drawing time)
+    assert not list((run["out"] / "figures").glob("*.pdf"))
 
 
 def test_html_report_parses_and_embeds_every_figure(run):

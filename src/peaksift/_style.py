@@ -64,6 +64,10 @@ _RC = {
     "ytick.right": True,
     "xtick.minor.visible": True,
     "ytick.minor.visible": True,
+    # one minor tick between majors on linear axes: every tick is a matplotlib object of
+    # five artists, and four per interval made ticks ~30% of a figure's drawing time
+    "xtick.minor.ndivs": 2,
+    "ytick.minor.ndivs": 2,
     "legend.frameon": False,
     "legend.fontsize": 9.5,
     "lines.linewidth": 1.6,
@@ -91,14 +95,20 @@ def new_figure(figsize: tuple[float, float] = (7.0, 4.6), nrows: int = 1, ncols:
     backend the user chose (an interactive session keeps showing its windows).  A notebook
     shows a returned Figure as usual.
     """
+    import numpy as np
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
+    from matplotlib.ticker import AutoMinorLocator
 
     with figure_style():
         fig = Figure(figsize=figsize)
         FigureCanvasAgg(fig)
         axes = fig.subplots(nrows, ncols, **subplots)
         margins(fig)
+        for ax in np.ravel(axes):  # the rc's one minor tick per interval, fixed here: a
+            # locator first asked outside the style would keep matplotlib's four
+            ax.xaxis.set_minor_locator(AutoMinorLocator(_RC["xtick.minor.ndivs"]))
+            ax.yaxis.set_minor_locator(AutoMinorLocator(_RC["ytick.minor.ndivs"]))
     return fig, axes
 
 

@@ -54,8 +54,8 @@ from ._style import (
 )
 
 __all__ = ["FigureLabels", "candidates", "candidates_figure", "dedx_figure", "envelope_figure",
-           "figure_labels", "limits_figure", "save", "scan_figure", "search_figure",
-           "search_figures", "spectrum_figure", "spectrum_only"]
+           "figure_labels", "limits_figure", "save", "scan_expectation", "scan_figure",
+           "search_figure", "search_figures", "spectrum_figure", "spectrum_only"]
 
 
 @dataclass(frozen=True)
@@ -260,10 +260,12 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
                    formats: Sequence[str] = ("png", "pdf"), log_scale: bool = False,
                    calibration: tuple[Any, Any] | None = None,
                    labels: FigureLabels | None = None,
-                   names: Sequence[str] = SEARCH_FIGURES) -> dict[str, Path]:
+                   names: Sequence[str] = SEARCH_FIGURES,
+                   expected: tuple[Any, str] | None = None) -> dict[str, Path]:
     """Every figure of a search result among ``names`` (default: all) that the result has
     the results for; returns figure name -> PNG path (``spectrum`` brings ``spectrum_log``
-    with ``log_scale``)."""
+    with ``log_scale``).  ``expected``: the p-value scan's expected curve
+    (:func:`scan_expectation`), computed here when not given."""
     labels = labels or figure_labels(getattr(result, "config", None))
     out: dict[str, Path] = {}
     for name in names:
@@ -272,7 +274,7 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
             out[name] = calibration_figure(result.calibration, calibration[1], outdir,
                                            formats, labels)
         for log in ([False, True] if name == "spectrum" and log_scale else [False]):
-            fig = search_figure(result, name, labels=labels, log=log)
+            fig = search_figure(result, name, labels=labels, log=log, expected=expected)
             if fig is not None:
                 key = f"{name}_log" if log else name
                 out[key] = save(fig, outdir, key, formats)
@@ -280,7 +282,7 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
 
 
 def search_figure(result: Any, name: str = "spectrum", *, labels: FigureLabels | None = None,
-                  log: bool = False) -> Any:
+                  log: bool = False, expected: tuple[Any, str] | None = None) -> Any:
     """The Figure ``name`` (one of :data:`SEARCH_FIGURES` but ``calibration``) of a search
     result, or None when the result has nothing to draw for it (no limits, blinded
     candidates, no envelope).  While blinded the spectrum shows the sideband fit."""
@@ -294,7 +296,7 @@ def search_figure(result: Any, name: str = "spectrum", *, labels: FigureLabels |
         return _fit_figure(result.fit, log=log, blind=blind, title=_fit_title(result),
                            labels=labels)
     if name == "pvalue_scan":
-        return _scan_figure(result, labels)
+        return _scan_figure(result, labels, expected)
     if name == "limits" and result.limits is not None:
         return _limits_figure(result, labels)
     if name == "candidates" and blind is None and result.collected is not None:
@@ -360,19 +362,30 @@ def calibration_figure(cal: Any, fr: Any, outdir: str | os.PathLike[str],
     return save(fig, outdir, "calibration", formats)
 
 
-def _scan_figure(result: Any, labels: FigureLabels) -> Any:
+def scan_expectation(scan: Any) -> tuple[np.ndarray, str] | None:
+    """The p-value scan's expected curve and its legend label: the expected local Z of a
+    signal of the size the scan fitted at its best mass (None without one).  Statistics,
+    not drawing: a search computes it where its scan's kernels are loaded and hands it to
+    the drawer (``search_figures(expected=...)``)."""
+    if getattr(scan, "model", None) is None or not 0 <= scan.best_index < scan.masses.size:
+        return None
+    # the scan's own yield at its best mass, with the scan's signal shape: the free fit's
+    # yield has its own width (a broad free fit can hold twice the events, and the curve
+    # then promises a significance no hypothesis of the scan could show)
+    s = float(scan.signal_yield[scan.best_index])
+    if not (np.isfinite(s) and s > 0):
+        return None
+    label = f"expected for a signal of {number(s, 3)} events (the scan's best fit)"
+    return np.asarray(scan.expected_z(s), float), label
+
+
+def _scan_figure(result: Any, labels: FigureLabels, expected: Any = None) -> Any:
     """``ScanResult.plot`` with the global significance noted and the expected p-value of
-    a signal of the size the scan fitted at its best mass."""
-    expected = None
+    a signal of the size the scan fitted at its best mass (``expected``: that curve and
+    label from :func:`scan_expectation`, computed here when not given)."""
     scan = result.scan
-    if getattr(scan, "model", None) is not None and 0 <= scan.best_index < scan.masses.size:
-        # the scan's own yield at its best mass, with the scan's signal shape: the free
-        # fit's yield has its own width (a broad free fit can hold twice the events, and
-        # the curve then promises a significance no hypothesis of the scan could show)
-        s = float(scan.signal_yield[scan.best_index])
-        if np.isfinite(s) and s > 0:
-            label = f"expected for a signal of {number(s, 3)} events (the scan's best fit)"
-            expected = (scan.expected_z(s), label)
+    if expected is None:
+        expected = scan_expectation(scan)
     fig = scan_figure(scan, result.best, labels=labels, expected=expected)
     env = ((getattr(result, "systematics", None) or {}).get("envelope") or {})
     # results.json files written before the key took EnvelopeResult's name say "mass"

@@ -405,7 +405,10 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
     "output": (
         _Key("dir", "str", "peaksift_out",
              "Output directory (relative to the config file); `--out` overrides it."),
-        _Key("formats", "strings", ["png", "pdf"], "Figure formats.",
+        _Key("formats", "strings", ["png"],
+             "Figure formats. PNG is always written (the reports embed it); add `\"pdf\"` "
+             "(or `\"svg\"`) for a paper: each adds about a third to the figures' drawing "
+             "time.",
              choices=("png", "pdf", "svg")),
         _Key("figures", "strings", ["all"],
              "Which figures to draw: `\"all\"`, `\"none\"`, or a list of "

@@ -274,7 +274,7 @@ class RunConfig:
 @dataclass(frozen=True)
 class OutputConfig:
     dir: str = "peaksift_out"
-    formats: tuple[str, ...] = ("png", "pdf")
+    formats: tuple[str, ...] = ("png",)
     figures: tuple[str, ...] = ("all",)
     log_scale: bool = False
     title: str = ""

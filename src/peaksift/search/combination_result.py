@@ -126,7 +126,8 @@ class CombinedSearchResult:
                                  f"{', '.join(self.channels)})")
             fig = self.channels[name].plot(which=sub, log=log)
         elif which == "pvalue_scan":
-            fig = self.combination.plot(run=labels.run, symbol=labels.symbol)
+            fig = self.combination.plot(run=labels.run, symbol=labels.symbol,
+                                        channel_scans=self.channel_envelope_scans())
         elif which == "limits" and self.limits is not None:
             fig = self.limits.plot(run=labels.run, symbol=labels.symbol)
         else:
@@ -136,6 +137,22 @@ class CombinedSearchResult:
         if path is not None:
             fig.savefig(path)
         return fig
+
+    def channel_envelope_scans(self) -> dict[str, tuple]:
+        """Channel name -> (masses, local p-values) of its own background-envelope scan,
+        for the channels whose envelope the combined scan profiles (the p-value figure
+        draws those beside the envelope-profiled combined line)."""
+        from scipy import stats
+
+        env = (self.combination.envelope or {}) if len(self.channels) > 1 else {}
+        out = {}
+        for name, r in self.channels.items():
+            block = (r.systematics or {}).get("envelope") or {}
+            if not (env.get(name) or {}).get("functions") or block.get("z_local") is None:
+                continue
+            z = np.array([np.nan if v is None else v for v in block["z_local"]], float)
+            out[name] = (np.asarray(block["masses"], float), stats.norm.sf(z))
+        return out
 
     # ------------------------------------------------------------------------ JSON
     @property

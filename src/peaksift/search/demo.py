@@ -78,7 +78,7 @@ engine = "serial"
 
 [output]
 dir = "../demo_out"
-formats = ["png", "pdf"]
+formats = ["png"]             # add "pdf" for a paper (a third more drawing time)
 log_scale = false
 """
 

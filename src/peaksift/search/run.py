@@ -224,6 +224,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
     syst = None
     syst_limits_job = None
+    syst_jobs: dict[str, Beside] = {}  # stages of [systematics] beside it, by name
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
         from .systematics import run_systematics, systematic_limits_at
 
@@ -238,11 +239,17 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                          executor=_toy_executor(cfg, "toy limits"))
                 besides.append(syst_limits_job)
 
+        def beside(fn: Any, *args: Any, **kw: Any) -> Beside:
+            job = Beside(fn, *args, **kw)
+            besides.append(job)
+            syst_jobs[getattr(fn, "__name__", "stage").replace("_", " ")] = job
+            return job
+
         syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
                                                 executor=_toy_executor(cfg), scanned=scanned,
-                                                signal_model=smodel)
+                                                signal_model=smodel, beside=beside)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
@@ -260,13 +267,25 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
 
         bonly = sideband_fit(hist, sig_fit, bkg, (lo, hi), blind_window)
     fres = _note_tie_drift(fres, cfg, settings)
+    mass_job = None
     if syst is not None and fres is not None:  # the fitted mass with the mass scale profiled
         from .systematics import fitted_mass
 
-        syst = {**syst, "fitted_mass": fitted_mass(cfg, fres.to_dict())}
+        # beside: its profile loads scipy.optimize (~0.3 s), and nothing drawn needs it
+        mass_job = Beside(fitted_mass, cfg, fres.to_dict())
+        besides.append(mass_job)
+        syst_jobs["fitted mass"] = mass_job
     clock.lap("fits")
+    # the p-value scan's expected curve is computed here, where the scan's kernels are
+    # loaded: in the drawer it would load numba's compiler state for it (~0.5-1 s CPU)
+    expected = None
+    if drawer is not None and cfg.output.draws("pvalue_scan"):
+        from ..plotting import scan_expectation
+
+        expected = scan_expectation(sres)
     _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
-          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst))
+          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst),
+          expected=expected)
 
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
@@ -280,6 +299,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
               calibration=(cal_hist, cal_fit))
 
+    if mass_job is not None:
+        syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None
     if cfg.limits.enabled:
         limits = (limits_job.result() if limits_job is not None else
@@ -349,7 +370,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                    "figures": round(drawer.cpu if drawer is not None else 0.0, 2),
                    **({"limits": round(limits_job.cpu, 2)} if limits_job is not None else {}),
                    **({"limits with systematics": round(syst_limits_job.cpu, 2)}
-                      if syst_limits_job is not None else {})}
+                      if syst_limits_job is not None else {}),
+                   **{k: round(j.cpu, 2) for k, j in syst_jobs.items()}}
     order = ("spectrum", "spectrum_log", *SEARCH_FIGURES, "dedx")
     figs = {k: drawn[k] for k in sorted(drawn, key=lambda k: (k not in order,
                                                            order.index(k) if k in order else 0))}

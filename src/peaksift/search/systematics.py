@@ -61,18 +61,44 @@ def _template(cfg: Config, hist: Any) -> Any:
     return t.restrict(cfg.spectrum.window)
 
 
+def _spurious_job(cfg: Config, hist: Any, signal: Any, masses: np.ndarray,
+                  natural_width: float | None, beside: Callable[..., Any] | None) -> Any:
+    """The spurious-signal test started beside the order test (it needs only the candidates'
+    names, not their fits to the data): ``beside(fn, *args, **kw)`` returns a job whose
+    ``result()`` is ``fn``'s value.  None when there is nothing to start (no template or
+    families, no ``beside``, or families the order test will refuse with its own message).
+    The test is then the same call as in :func:`run_systematics` (the same candidates in
+    the same order), so its numbers are the same bits."""
+    from ..stats.background_choice import candidate_shapes, spurious_signal
+
+    S = cfg.systematics
+    if beside is None or not (S.template and S.background_families):
+        return None
+    try:  # the order test fits these, in this order (and refuses what this refuses)
+        labels = list(candidate_shapes(list(S.background_families), sqrt_s=S.sqrt_s))
+        shapes_ = candidate_shapes(labels)
+    except FitError:
+        return None
+    return beside(spurious_signal, _template(cfg, hist), shapes_, signal, masses,
+                  events=float(hist.total()), edges=np.asarray(hist.edges),
+                  limit=S.spurious_limit, resolution=cfg.model.resolution.resolution,
+                  natural_width=natural_width)
+
+
 def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                     natural_width: float | None, blind: Any, best_plain: dict[str, Any],
                     progress: bool, executor: Any,
                     scanned: Callable[[Any], None] | None = None,
-                    signal_model: Any = None
+                    signal_model: Any = None, beside: Callable[..., Any] | None = None
                     ) -> tuple[dict[str, Any], dict[str, Any], Any]:
     """Run ``[systematics]``; returns ``(block, best with systematics, envelope or scan)``.
 
     See the module guide; the limits with systematics come after the plain limits
     (:func:`limits_with_systematics`).  ``scanned`` is called with the envelope (or the
     single-function scan) as soon as it exists, before its toys: the search starts the
-    limits with systematics then, beside the toys.  With ``signal_model`` (``[signal_model]``)
+    limits with systematics then, beside the toys.  ``beside(fn, *args, **kw)`` (the search's
+    :class:`~peaksift.search.parallel.Beside`) runs the spurious-signal test beside the
+    order test, the envelope and its toys.  With ``signal_model`` (``[signal_model]``)
     the scans take the model's shape and resolution (the spurious-signal test keeps the
     configured ones).
     """
@@ -100,6 +126,31 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         raise ConfigError("systematics.spurious_uncertainty needs systematics.template and "
                           "systematics.background_families (the spurious signal is measured "
                           "on the template with each candidate); set both or turn it off")
+    sp_job = _spurious_job(cfg, hist, signal, masses, natural_width, beside)
+    sp_notes: list[str] = []  # the spurious signal's notes come first in block["notes"]
+
+    def spurious(choice: Any) -> None:
+        nonlocal sp, ratios
+        if sp_job is not None:
+            sp = sp_job.result()
+        else:
+            sp = spurious_signal(_template(cfg, hist), choice, signal, masses,
+                                 events=float(hist.total()), edges=np.asarray(hist.edges),
+                                 limit=S.spurious_limit, resolution=res.resolution,
+                                 natural_width=natural_width)
+        block["spurious_signal"] = {k: {kk: vv for kk, vv in v.items() if kk != "ratio"}
+                                    for k, v in sp.items()}
+        if S.spurious_uncertainty:  # each candidate's largest, over the whole range
+            ratios = {k: float(v["max_ratio"]) for k, v in sp.items()}
+            sp_notes.append(  # no 'spurious' here: doubts.py flags those notes
+                "each candidate's largest signal on the template, over the whole range, "
+                "is added in quadrature to the statistical error of the signal yield")
+        flagged = [k for k, v in sp.items() if v["flagged"]]
+        if flagged:
+            sp_notes.append(
+                f"spurious signal above {S.spurious_limit:g} of the statistical error: "
+                f"{', '.join(flagged)}")
+
     if S.background_families:
         try:
             choice = choose_background(hist, list(S.background_families), blind=blind,
@@ -107,23 +158,10 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         except FitError as exc:
             raise FitError(f"systematics.background_families: {exc}") from None
         block["background_choice"] = choice.to_dict()
-        if S.template:
-            sp = spurious_signal(_template(cfg, hist), choice, signal, masses,
-                                 events=float(hist.total()), edges=np.asarray(hist.edges),
-                                 limit=S.spurious_limit, resolution=res.resolution,
-                                 natural_width=natural_width)
-            block["spurious_signal"] = {k: {kk: vv for kk, vv in v.items() if kk != "ratio"}
-                                        for k, v in sp.items()}
-            if S.spurious_uncertainty:  # each candidate's largest, over the whole range
-                ratios = {k: float(v["max_ratio"]) for k, v in sp.items()}
-                block["notes"].append(  # no 'spurious' here: doubts.py flags those notes
-                    "each candidate's largest signal on the template, over the whole range, "
-                    "is added in quadrature to the statistical error of the signal yield")
-            flagged = [k for k, v in sp.items() if v["flagged"]]
-            if flagged:
-                block["notes"].append(
-                    f"spurious signal above {S.spurious_limit:g} of the statistical error: "
-                    f"{', '.join(flagged)}")
+        # the envelope needs the spurious signals only to add them to its errors: else
+        # they are collected after the envelope's toys, having run beside them
+        if S.template and (S.spurious_uncertainty or sp_job is None):
+            spurious(choice)
     toys = cfg.significance.toys
     gkw = {"seed": cfg.significance.seed, "progress": progress, "executor": executor}
     single = None
@@ -179,6 +217,9 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                                         u0=cfg.significance.reference_level, **gkw)
         block["nuisance_pulls"] = _pulls(nuis, sres.nuisance_factors, sres.best_index)
         obj = sres
+    if choice is not None and S.template and block["spurious_signal"] is None:
+        spurious(choice)  # the test that ran beside the envelope
+    block["notes"][:0] = sp_notes
     best = dict(best)
     if sp and best.get("mass") is not None:  # each spurious signal at the best hypothesis
         k = int(np.argmin(np.abs(np.asarray(masses, float) - float(best["mass"]))))

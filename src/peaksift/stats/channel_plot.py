@@ -17,19 +17,30 @@ __all__ = ["pvalue_figure"]
 
 
 def pvalue_figure(comb: Any, path: Any = None, *, title: str | None = None,
-                  run: RunLabel | None = None, symbol: str = "m") -> Any:
+                  run: RunLabel | None = None, symbol: str = "m",
+                  channel_scans: Any = None) -> Any:
     """Local p-values of a :class:`~peaksift.stats.channels.Combination` (one line per
     channel and the combination); saved to ``path`` when given.  ``symbol``: the mass
     symbol of the axis (mathtext); ``run``: the run label drawn above the axes with
-    ``title`` (default: the combination's best excess) under it."""
+    ``title`` (default: the combination's best excess) under it.  ``channel_scans``:
+    channel name -> ``(masses, p_local)`` drawn instead of the channel's single-function
+    scan (its own background-envelope scan, when the combined line profiles the envelope
+    too)."""
     palette = [COLORS["total"], COLORS["signal"], COLORS["accent"], COLORS["background"]]
     fig, ax = new_figure()
     with figure_style():
         m = comb.masses
         lows = []
+        own = dict(channel_scans or {})
         for j, (name, s) in enumerate(comb.channels.items()):
-            p = np.where(s.blinded, np.nan, np.maximum(s.p_local, 1e-300))
-            ax.plot(m, p, lw=1.1, color=palette[j % len(palette)], label=name)
+            if name in own:
+                mc, pc = (np.asarray(v, float) for v in own[name])
+                p = np.maximum(pc, 1e-300)
+                ax.plot(mc, p, lw=1.1, color=palette[j % len(palette)],
+                        label=f"{name} (background envelope)")
+            else:
+                p = np.where(s.blinded, np.nan, np.maximum(s.p_local, 1e-300))
+                ax.plot(m, p, lw=1.1, color=palette[j % len(palette)], label=name)
             lows.append(np.nanmin(p) if np.isfinite(p).any() else 0.1)
         p = np.where(comb.blinded, np.nan, np.maximum(comb.p_local, 1e-300))
         ax.plot(m, p, lw=2.0, color=COLORS["observed"], label="combined")
