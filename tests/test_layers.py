@@ -46,7 +46,7 @@ LAYERS: tuple[tuple[str, frozenset[str]], ...] = (
     ("statistics", frozenset({"stats"})),
     ("pipeline", frozenset({"config", "execution"})),
     ("orchestration and output",
-     frozenset({"search", "plotting", "report", "report_sections", "report_background",
+     frozenset({"search", "plotting", "plotting_dedx", "report", "report_sections", "report_background",
                 "report_fits", "report_limits", "report_selection",
                 "simulate",
                 "simulate_tracks", "cli", "__main__"})),

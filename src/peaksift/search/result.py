@@ -115,9 +115,11 @@ class SpectrumResult:
         Figure drawn without pyplot, with the run label and the pair's mass symbol; saved to
         ``path`` when given."""
         from .. import plotting
+        from .spectrum import _short_title
 
         fig = plotting.spectrum_figure(self.histogram, log=log, labels=plotting.figure_labels(
-            self.config), blind=self.blinding["window"] if self.blinding["active"] else None)
+            self.config), blind=self.blinding["window"] if self.blinding["active"] else None,
+            title=_short_title(self.config))
         if path is not None:
             fig.savefig(path)
         return fig

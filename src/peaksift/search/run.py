@@ -348,7 +348,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         prov["finished"] = _utc()
         return result
 
-    from .. import plotting
+    from .. import plotting, plotting_dedx
     from ..plotting import SEARCH_FIGURES
     from ..report import write_report, write_results_json
 
@@ -359,7 +359,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         more.update(zip(("signal_model_parameters", "signal_model_shapes"),
                         smodel.save_figures(figdir, run=lab.run, symbol=lab.symbol)))
     if ident is not None and cfg.output.draws("dedx"):
-        more["dedx"] = plotting.dedx_figure(ident, figdir, formats=cfg.output.formats,
+        more["dedx"] = plotting_dedx.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
                                             band=cfg.identification.band)
     clock.lap("figures (here)")
