@@ -9,15 +9,15 @@ with :func:`peaksift.fit` exactly as a user would (no starting values, no hints)
 * the median fit time (CPU time of this process; run it with OPENBLAS_NUM_THREADS=1),
 
 and on the background-only and strong-peak cases also runs :func:`peaksift.scan` and
-:func:`peaksift.upper_limits` on the first toys, to catch crashes there.  It prints a
-markdown table per cell and a compact table of invalid rates.
+:func:`peaksift.upper_limits` on the first toy (``--scan-toys``), to catch crashes there.
+It prints a markdown table per cell and a compact table of invalid rates.
 
 Data are drawn with numpy from the shapes' own densities: unbinned masses by inverse-CDF
-sampling (the CDF tabulated on a fine grid), binned spectra as a multinomial draw of the bin
-fractions (the histogram of such masses, without drawing 10^7 of them).  Signal yields are
-set from the Asimov significance of the truth (Cowan, Cranmer, Gross, Vitells, EPJC 71
-(2011) 1554, eq. 97 summed over bins), so "weak" is ~2 sigma and "strong" 25 sigma whatever
-the shapes.
+sampling (the CDF tabulated on a fine grid, once per cell), binned spectra as a multinomial
+draw of the bin fractions (the histogram of such masses, without drawing 10^7 of them).
+Signal yields are set from the Asimov significance of the truth (Cowan, Cranmer, Gross,
+Vitells, EPJC 71 (2011) 1554, eq. 97 summed over bins), so "weak" is ~2 sigma and "strong"
+25 sigma whatever the shapes.
 
     python scripts/stress_fits.py                       # 100 toys per cell (hours)
     python scripts/stress_fits.py --toys 5 --cells 'gaussian/*/strong/*,*/dijet*/*/binned'
@@ -25,11 +25,16 @@ the shapes.
     python scripts/stress_fits.py --log cells.jsonl --deadline 20:50   # resumable, timed
     python scripts/stress_fits.py --tables cells.jsonl                 # tables of a log
 
-``--log`` appends one JSON line per finished cell (flushed, so a stopped run loses at most
-the cell in progress) and skips the cells already in the file, so the same command resumes.
-``--deadline HH:MM`` (UTC) gives every remaining cell an equal share of the time left and
-stops a cell's toys when its share is spent (at least ``--min-toys``); the log records how
-many toys each cell really ran.
+``--log`` appends one JSON line per finished chunk of a cell's toys (flushed, so a stopped
+run loses at most the chunk in progress) and resumes from the toys already in the file. The
+cells are brought up level by level: every cell to 1 toy (the scan/limit checks run on it),
+then 2, then every cell to ``--min-toys``, then to ``--toys``, the later levels cheapest
+cells first (CPU per toy so far). ``--deadline HH:MM`` (UTC) starts no toy after that time,
+so a time-limited run leaves every cell with at least the last level all cells reached, and
+the tables say how many toys each cell ran. Toy k of a cell depends only on the seed, the
+cell and k, so chunks add up to the same toys as one run. ``--part I/N`` runs one of N
+hash-split shares of the cells (one process per share, each with its own log; ``--tables
+a.jsonl,b.jsonl`` joins them).
 
 A cell label is ``signal/background/case/mode``; ``--cells`` takes comma-separated
 fnmatch patterns.
@@ -149,13 +154,34 @@ def signal_yield(case: Case, sig: shapes.Shape, bkg: shapes.Shape, bkg_truth: di
                                  case.background))
 
 
+def _shape_key(shape: shapes.Shape, truth: dict) -> tuple:
+    return (shape.name, tuple(shape.parameter_names), tuple(_params(shape, truth)))
+
+
+_TABLES: dict[tuple, np.ndarray] = {}
+
+
+def _cached(key: tuple, make) -> np.ndarray:
+    """A per-process table (bin probabilities, tabulated CDFs): computed once per cell, not
+    once per toy (the numerically integrated shapes spend ~0.1-0.7 s on each)."""
+    if key not in _TABLES:
+        if len(_TABLES) > 64:
+            _TABLES.clear()
+        _TABLES[key] = make()
+    return _TABLES[key]
+
+
 def inverse_cdf_sample(shape: shapes.Shape, truth: dict, n: int, rng: np.random.Generator,
                        grid: int = 40001) -> np.ndarray:
     """``n`` masses from ``shape`` on the window by inverse-CDF sampling (CDF tabulated on a
     grid of ``grid`` points, linear inside each cell)."""
     x = np.linspace(*WINDOW, grid)
-    c = np.maximum.accumulate(np.asarray(shape.cdf(x, _params(shape, truth), WINDOW), float))
-    c = (c - c[0]) / (c[-1] - c[0])
+
+    def table() -> np.ndarray:
+        c = np.maximum.accumulate(np.asarray(shape.cdf(x, _params(shape, truth), WINDOW),
+                                             float))
+        return (c - c[0]) / (c[-1] - c[0])
+    c = _cached(("cdf", grid, *_shape_key(shape, truth)), table)
     return np.interp(rng.random(n), c, x)
 
 
@@ -165,10 +191,15 @@ def make_data(case: Case, mode: str, sig: shapes.Shape, bkg: shapes.Shape, bkg_t
     if mode == "binned":
         edges = np.linspace(*WINDOW, case.bins + 1)
         tot = case.background + s_yield
-        p = (case.background * fractions(bkg, bkg_truth, edges)
-             + s_yield * fractions(sig, SIGNALS[sig.name], edges)) / tot
-        p = np.clip(p, 0.0, None)
-        p /= p.sum()
+
+        def probabilities() -> np.ndarray:
+            p = (case.background * fractions(bkg, bkg_truth, edges)
+                 + s_yield * fractions(sig, SIGNALS[sig.name], edges)) / tot
+            p = np.clip(p, 0.0, None)
+            return p / p.sum()
+        p = _cached(("bins", case.bins, case.background, s_yield,
+                     *_shape_key(bkg, bkg_truth), *_shape_key(sig, SIGNALS[sig.name])),
+                    probabilities)
         n_total = round(tot) if case.exact_total else int(rng.poisson(tot))
         counts = rng.multinomial(n_total, p).astype(float)
         if case.drop_upper_half:
@@ -246,6 +277,8 @@ class CellStats:
     times: list[float] = field(default_factory=list)
     scan_raw: list[str] = field(default_factory=list)
     scans: int = 0
+    first: int = 0      # index of this record's first toy (a cell may run in chunks)
+    cpu: float = 0.0    # CPU seconds of the whole chunk: data, fits, scans
 
     @property
     def fits(self) -> int:
@@ -259,6 +292,21 @@ class CellStats:
     def median_ms(self) -> float:
         return 1e3 * statistics.median(self.times) if self.times else math.nan
 
+    def extend(self, more: CellStats) -> None:
+        """Append a later chunk of the same cell (toys ``more.first`` on)."""
+        if more.first != self.first + self.toys:
+            raise ValueError(f"{self.label}: chunk at toy {more.first} does not follow "
+                             f"toys {self.first}..{self.first + self.toys - 1}")
+        self.toys += more.toys
+        self.raw += more.raw
+        self.user_errors += more.user_errors
+        self.invalid += more.invalid
+        self.reasons.update(more.reasons)
+        self.times += more.times
+        self.scan_raw += more.scan_raw
+        self.scans += more.scans
+        self.cpu += more.cpu
+
 
 def cells(patterns: list[str]):
     for sname in SIGNALS:
@@ -271,17 +319,20 @@ def cells(patterns: list[str]):
 
 
 def run_cell(label: str, sname: str, blabel: str, cname: str, case: Case, mode: str,
-             toys: int, seed: int, scan_toys: int, budget_s: float = math.inf,
-             min_toys: int = 1) -> CellStats:
-    st = CellStats(label)
+             toys: int, seed: int, scan_toys: int, first: int = 0,
+             stop_at: float = math.inf) -> CellStats:
+    """Toys ``first .. toys-1`` of a cell (toy k's data depend only on seed, cell and k, so
+    a cell run in chunks gives the same toys as one run); no new toy starts after the
+    ``time.monotonic()`` instant ``stop_at``."""
+    cpu0 = time.process_time()
+    st = CellStats(label, first=first)
     sig = shapes.get(sname)
     bkg = background_shape(blabel)
     bkg_truth = BACKGROUNDS[blabel][2]
     s_yield = signal_yield(case, sig, bkg, bkg_truth)
-    wall0 = time.monotonic()
-    for k in range(toys):
-        if k >= min_toys and time.monotonic() - wall0 > budget_s:
-            break  # this cell's share of the time left is spent (see --deadline)
+    for k in range(first, toys):
+        if time.monotonic() > stop_at:
+            break
         rng = np.random.default_rng([seed, zlib.crc32(label.encode()), k])
         data = make_data(case, mode, sig, bkg, bkg_truth, s_yield, rng)
         st.toys += 1
@@ -301,35 +352,42 @@ def run_cell(label: str, sname: str, blabel: str, cname: str, case: Case, mode: 
         if cname in SCAN_CASES and k < scan_toys:
             st.scans += 1
             st.scan_raw.extend(f"toy {k}: {t}" for t in scan_and_limits(data, sig, bkg))
+    st.cpu = time.process_time() - cpu0
     return st
 
 
 def to_record(st: CellStats) -> dict[str, Any]:
-    return {"cell": st.label, "toys": st.toys, "fits": st.fits, "raw": st.raw,
-            "scan_raw": st.scan_raw, "user_errors": st.user_errors, "invalid": st.invalid,
-            "reasons": dict(st.reasons), "times": st.times, "median_ms": st.median_ms,
-            "scans": st.scans}
+    return {"cell": st.label, "first": st.first, "toys": st.toys, "fits": st.fits,
+            "raw": st.raw, "scan_raw": st.scan_raw, "user_errors": st.user_errors,
+            "invalid": st.invalid, "reasons": dict(st.reasons), "times": st.times,
+            "median_ms": st.median_ms, "scans": st.scans, "cpu": st.cpu}
 
 
 def from_record(rec: dict[str, Any]) -> CellStats:
     return CellStats(rec["cell"], rec["toys"], list(rec["raw"]), list(rec["user_errors"]),
                      rec["invalid"], collections.Counter(rec["reasons"]), list(rec["times"]),
-                     list(rec["scan_raw"]), rec["scans"])
+                     list(rec["scan_raw"]), rec["scans"], rec.get("first", 0),
+                     rec.get("cpu", math.fsum(rec["times"])))
 
 
 def read_log(path: str) -> list[CellStats]:
-    """The finished cells of a ``--log`` file (a torn last line, from a stop, is skipped)."""
-    out = []
+    """The cells of a ``--log`` file, their chunks joined in toy order (a torn last line,
+    from a stop, is skipped)."""
+    by: dict[str, CellStats] = {}
     try:
         with open(path) as fh:
             for line in fh:
                 try:
-                    out.append(from_record(json.loads(line)))
+                    st = from_record(json.loads(line))
                 except (json.JSONDecodeError, KeyError):
                     continue
+                if st.label in by:
+                    by[st.label].extend(st)
+                else:
+                    by[st.label] = st
     except FileNotFoundError:
         pass
-    return out
+    return list(by.values())
 
 
 def seconds_until(hhmm: str) -> float:
@@ -343,6 +401,14 @@ def seconds_until(hhmm: str) -> float:
 
 def _top_reasons(st: CellStats, most: int = 3) -> str:
     return "; ".join(f"{r} x{n}" for r, n in st.reasons.most_common(most))
+
+
+def _brief(r: str) -> str:
+    """A reason shortened for the tables."""
+    r = r.replace("covariance not positive definite (Hessian of the NLL not invertible)",
+                  "Hessian not pos.-def.")
+    return r.split(":")[0].replace(" or within one error of its floor (a bound)",
+                                   " its floor")
 
 
 def print_tables(results: list[CellStats]) -> None:
@@ -360,7 +426,7 @@ def print_tables(results: list[CellStats]) -> None:
                   key=lambda r: (list(SIGNALS).index(r.split("/")[0]),
                                  list(BACKGROUNDS).index(r.split("/")[1])))
     by = {st.label: st for st in results}
-    print("\ninvalid-fit rate % (median fit CPU ms)\n")
+    print("\ninvalid-fit rate % / median fit CPU ms / toys\n")
     print("| signal/background | " + " | ".join(cols) + " |")
     print("|---|" + "---:|" * len(cols))
     for r in rows:
@@ -368,8 +434,12 @@ def print_tables(results: list[CellStats]) -> None:
         for c in cols:
             st = by.get(f"{r}/{c}")
             cells_.append("" if st is None else
-                          f"{100 * st.invalid_rate:.0f} ({st.median_ms:.0f})")
+                          f"{100 * st.invalid_rate:.0f} / {st.median_ms:.0f} / {st.toys}")
         print(f"| {r} | " + " | ".join(cells_) + " |")
+    ntoys = sorted(st.toys for st in results)
+    print(f"\ntoys per cell: min {ntoys[0]}, median {ntoys[len(ntoys) // 2]}, max {ntoys[-1]}; "
+          + ", ".join(f"{n} cells with {k}" for k, n in sorted(collections.Counter(ntoys).items())))
+    print(f"scan + upper_limits runs: {sum(st.scans for st in results)}")
     raw = [(st.label, t) for st in results for t in st.raw + st.scan_raw]
     print(f"\nraw exceptions: {len(raw)}")
     for label, t in raw:
@@ -383,10 +453,45 @@ def print_tables(results: list[CellStats]) -> None:
         total.update(st.reasons)
     nfit = sum(st.fits for st in results)
     ninv = sum(st.invalid for st in results)
+    print("\nmain reasons by signal and case (fits carrying each, of all fits there)\n")
+    groups: dict[str, list[CellStats]] = collections.defaultdict(list)
+    for st in results:
+        sname, _, cname, mode = st.label.split("/")
+        groups[f"{sname} / {cname} / {mode}"].append(st)
+    print("| signal / case / mode | fits | invalid | main reasons |")
+    print("|---|---:|---:|---|")
+    def order(g: str) -> tuple:
+        sname, cname, mode = g.split(" / ")
+        return list(SIGNALS).index(sname), list(CASES).index(cname), mode
+
+    for g, sts in sorted(groups.items(), key=lambda kv: order(kv[0])):
+        rc: collections.Counter = collections.Counter()
+        for st in sts:
+            rc.update(st.reasons)
+        nf = sum(st.fits for st in sts)
+        ni = sum(st.invalid for st in sts)
+        top = "; ".join(f"{_brief(r)} {n}" for r, n in rc.most_common(3))
+        print(f"| {g} | {nf} | {ni} | {top} |")
     print(f"\nall cells: {nfit} fits, {ninv} invalid ({100 * ninv / max(nfit, 1):.1f}%); "
           f"reasons (fits carrying each):")
     for r, n in total.most_common():
         print(f"  {n:6d}  {r}")
+
+
+def warm_up() -> None:
+    """One untimed fit per signal and per background shape, binned and unbinned: the first
+    call of each compiled kernel loads or compiles it (~1-14 s), which would otherwise land
+    in the first toy's time of whichever cell comes first."""
+    rng = np.random.default_rng(0)
+    x = np.concatenate([WINDOW[0] + rng.exponential(60.0, 800), rng.normal(PEAK, 3.0, 200)])
+    x = x[x < WINDOW[1]]
+    pairs = [(s, "exponential") for s in SIGNALS] + [("gaussian", b) for b in BACKGROUNDS]
+    for sname, blabel in pairs:
+        for binned in (True, False):
+            try:
+                peaksift.fit(x, sname, background_shape(blabel), WINDOW, binned=binned)
+            except Exception:  # noqa: BLE001, S110 - the matrix itself reports failures
+                pass
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -395,15 +500,19 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--cells", default="*", help="comma-separated fnmatch patterns on "
                     "'signal/background/case/mode' (default: all)")
     ap.add_argument("--seed", type=int, default=1)
-    ap.add_argument("--scan-toys", type=int, default=2,
-                    help="toys per bkg_only/strong cell also scanned and limited (default 2)")
+    ap.add_argument("--scan-toys", type=int, default=1,
+                    help="toys per bkg_only/strong cell also scanned and limited (default 1)")
     ap.add_argument("--json", help="write the per-cell statistics to this file")
     ap.add_argument("--log", help="append each finished cell as a JSON line here and skip "
                     "the cells already in it (resume)")
-    ap.add_argument("--deadline", help="HH:MM UTC: share the time left equally among the "
-                    "remaining cells, cutting a cell's toys when its share is spent")
+    ap.add_argument("--deadline", help="HH:MM UTC: start no toy after it (the cells are "
+                    "brought up level by level, see --min-toys, so every cell gets its first "
+                    "toys before any gets its last)")
     ap.add_argument("--min-toys", type=int, default=10,
-                    help="toys a cell runs whatever the deadline (default 10)")
+                    help="the middle level: every cell reaches 1 and 2 toys, then this many, then "
+                    "--toys, cheapest cells first (default 10)")
+    ap.add_argument("--part", metavar="I/N", help="run only part I of N (cells split by a "
+                    "hash of their label; one process per part, each with its own --log)")
     ap.add_argument("--tables", metavar="LOG", help="only print the tables of --log files "
                     "(comma-separated)")
     ap.add_argument("--shuffle", type=int, metavar="SEED", help="run the cells in an order "
@@ -417,26 +526,47 @@ def main(argv: list[str] | None = None) -> int:
         return 1 if any(st.raw or st.scan_raw for st in results) else 0
     warnings.simplefilter("ignore")  # data warnings of awkward toys are expected here
     patterns = [p.strip() for p in args.cells.split(",") if p.strip()]
-    results = read_log(args.log) if args.log else []
-    done = {st.label for st in results}
-    todo = [spec for spec in cells(patterns) if spec[0] not in done]
+    specs = list(cells(patterns))
+    if args.part:
+        i, n = (int(v) for v in args.part.split("/"))
+        specs = [sp for sp in specs if zlib.crc32(sp[0].encode()) % n == i]
     if args.shuffle is not None:
-        order = np.random.default_rng(args.shuffle).permutation(len(todo))
-        todo = [todo[i] for i in order]
+        order = np.random.default_rng(args.shuffle).permutation(len(specs))
+        specs = [specs[i] for i in order]
+    state = {st.label: st for st in (read_log(args.log) if args.log else [])}
+    stop_at = (time.monotonic() + seconds_until(args.deadline) if args.deadline
+               else math.inf)
+    levels = sorted({1, min(2, args.toys), min(args.min_toys, args.toys), args.toys})
+    warm_up()
     t_start = time.perf_counter()
-    for i, spec in enumerate(todo):
-        budget = (seconds_until(args.deadline) / (len(todo) - i) if args.deadline
-                  else math.inf)
-        st = run_cell(*spec, toys=args.toys, seed=args.seed, scan_toys=args.scan_toys,
-                      budget_s=budget, min_toys=min(args.min_toys, args.toys))
-        results.append(st)
-        if args.log:
-            with open(args.log, "a") as fh:
-                fh.write(json.dumps(to_record(st)) + "\n")
-        print(f"{st.label:45s} toys {st.toys:4d} fits {st.fits:4d}  "
-              f"raw {len(st.raw) + len(st.scan_raw)}  "
-              f"invalid {100 * st.invalid_rate:5.1f}%  median {st.median_ms:7.1f} ms  "
-              f"[{time.perf_counter() - t_start:.0f} s]", flush=True)
+    for lev, level in enumerate(levels):
+        todo = list(specs)
+        if lev:  # cheapest first: a deadline then cuts the fewest cells short
+            todo.sort(key=lambda sp: (state[sp[0]].cpu / max(state[sp[0]].toys, 1)
+                                      if sp[0] in state else math.inf))
+        for spec in todo:
+            have = state[spec[0]].toys if spec[0] in state else 0
+            if have >= level:
+                continue
+            if time.monotonic() > stop_at:
+                break
+            st = run_cell(*spec, toys=level, seed=args.seed, scan_toys=args.scan_toys,
+                          first=have, stop_at=stop_at)
+            if not st.toys:
+                continue
+            if args.log:
+                with open(args.log, "a") as fh:
+                    fh.write(json.dumps(to_record(st)) + "\n")
+            if spec[0] in state:
+                state[spec[0]].extend(st)
+            else:
+                state[spec[0]] = st
+            tot = state[spec[0]]
+            print(f"{st.label:45s} toys {st.first:3d}-{st.first + st.toys - 1:3d} "
+                  f"(all {tot.toys:3d})  raw {len(tot.raw) + len(tot.scan_raw)}  "
+                  f"invalid {100 * tot.invalid_rate:5.1f}%  median {tot.median_ms:7.1f} ms  "
+                  f"[{time.perf_counter() - t_start:.0f} s]", flush=True)
+    results = [state[sp[0]] for sp in cells(patterns) if sp[0] in state]
     if not results:
         print("no cell matches --cells", file=sys.stderr)
         return 2

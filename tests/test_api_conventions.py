@@ -88,43 +88,56 @@ def test_describe_repr_is_the_inspect_text(small_demo):
     desc = peaksift.describe(small_demo)
     assert repr(desc) == str(desc) and "collections:" in repr(desc)
     assert desc._repr_html_().startswith("<pre>")
+    d = _json(desc.to_dict())
+    assert type(desc).from_dict(d) == desc and all(hasattr(desc, k) for k in d)
 
 
 _PLOTS = """
-import json, sys
+import importlib, json, sys
 import matplotlib
 matplotlib.use("{backend}")
 before = matplotlib.get_backend()
 from matplotlib.figure import Figure
-from peaksift import FitResult, LimitResult, MassHistogram, ScanResult
-from peaksift.stats.channels import Combination
-d = json.load(open(sys.argv[1]))
-figs = [FitResult.from_dict(d["fit"]).plot(), ScanResult.from_dict(d["scan"]).plot(),
-        LimitResult.from_dict(d["limits"]).plot(),
-        MassHistogram(bins=10, range=(0, 1)).fill([0.5]).plot(),
-        Combination.from_dict(json.load(open(sys.argv[2]))).plot()]
-print(json.dumps({{"figures": all(isinstance(f, Figure) for f in figs),
-                  "backend": matplotlib.get_backend() == before,
+made = {{}}
+for kind, (module, name, calls, d) in json.load(open(sys.argv[1])).items():
+    res = getattr(importlib.import_module(module), name).from_dict(d)
+    for kw in calls:
+        made[f"{{kind}} {{kw}}"] = type(res.plot(**kw)).__name__
+print(json.dumps({{"figures": made, "backend": matplotlib.get_backend() == before,
                   "pyplot": "matplotlib.pyplot" in sys.modules}}))
 """
 
+#: what test_plot_returns_a_figure_and_leaves_the_backend draws of each result type
+_FIGURES = {"search": [{"which": w} for w in ("spectrum", "pvalue_scan", "limits",
+                                              "background_envelope")],
+            "signal_model": [{"which": "parameters"}, {"which": "shapes"}],
+            "combined_search": [{"which": "pvalue_scan"}, {"which": "limits"},
+                                {"which": "a/spectrum"}]}
 
-def test_plot_returns_a_figure_and_leaves_the_backend(search, results, tmp_path):
+
+def test_plot_returns_a_figure_and_leaves_the_backend(results, tmp_path):
     """In a fresh interpreter with an interactive-capable backend chosen by the user, every
-    plot() (fit, scan, limits, histogram, combination) returns a Figure, the backend is
-    unchanged and pyplot is never imported."""
-    res = tmp_path / "results.json"
-    res.write_text(json.dumps(_json(search.to_dict())))
-    comb = tmp_path / "combination.json"
-    comb.write_text(json.dumps(_json(results["combination"].to_dict())))
+    result type read back from its JSON draws each of its figures with plot(), which
+    returns a Figure; the backend is unchanged and pyplot is never imported."""
+    todo = {}
+    for kind in [*KINDS, "histogram"]:
+        res = results[kind]
+        if kind == "background_candidate":  # a row of the background choice: drawn there
+            assert not hasattr(res, "plot")
+            continue
+        todo[kind] = (type(res).__module__, type(res).__name__, _FIGURES.get(kind, [{}]),
+                      _json(res.to_dict()))
+    path = tmp_path / "results.json"
+    path.write_text(json.dumps(todo))
     code = _PLOTS.format(backend="svg")  # a backend other than Agg, set by the "user"
-    out = subprocess.run([sys.executable, "-c", code, str(res), str(comb)],
+    out = subprocess.run([sys.executable, "-c", code, str(path)],
                          capture_output=True, check=False,
                          text=True, cwd=REPO, env={"PYTHONPATH": str(REPO / "src"),
                                                    "PATH": "/usr/bin:/bin"})
     assert out.returncode == 0, out.stderr[-2000:]
     got = json.loads(out.stdout.strip().splitlines()[-1])
-    assert got == {"figures": True, "backend": True, "pyplot": False}
+    expected = {f"{k} {kw}": "Figure" for k, (_, _, calls, _) in todo.items() for kw in calls}
+    assert got == {"figures": expected, "backend": True, "pyplot": False}
 
 
 def test_window_snapping_is_reported():
@@ -158,6 +171,7 @@ def results(search):
     """Every result type, built once."""
     from peaksift import shapes
     from peaksift.search.common import _blinded_copy
+    from peaksift.search.result import SpectrumResult
     from peaksift.search.sideband import sideband_fit
     from peaksift.stats.background_choice import choose_background
     from peaksift.stats.envelope import envelope_scan
@@ -172,14 +186,18 @@ def results(search):
                         blind=(145.0, 160.0), absolute_resolution=2.0,
                         spurious={"exp": 0.3})
     comb, chans = _combination(search)
-    return {"fit": search.fit, "background_fit": search.background_fit,
+    out = {"fit": search.fit, "background_fit": search.background_fit,
             "scan": search.scan, "limits": search.limits, "sideband_fit": sb,
             "envelope": env, "combination": comb,
             "combined_limits": _combined_limits(chans), "search": search,
             "combined_search": _combined_search(search, comb, chans),
             "histogram": search.histogram, "signal_model": _signal_model(),
             "background_choice": choose_background(search.histogram, {"exppoly": [1, 2]},
-                                                   window=cfg.spectrum.window)}
+                                                   window=cfg.spectrum.window),
+            "spectrum": SpectrumResult(config=cfg, histogram=search.histogram,
+                                       collected=search.collected)}
+    out["background_candidate"] = out["background_choice"].candidates[0]
+    return out
 
 
 def _signal_model():
@@ -227,7 +245,30 @@ def _combined_search(search, comb, chans):
 #: every result type the API convention covers (the tests below run on each)
 KINDS = ["fit", "background_fit", "scan", "limits", "sideband_fit", "envelope",
          "combination", "combined_limits", "search", "combined_search", "signal_model",
-         "background_choice"]
+         "background_choice", "background_candidate", "spectrum"]
+
+
+def test_every_public_result_type_is_covered(results):
+    """The types above are every frozen result class of the package (a new one must join
+    the convention's tests): each class with ``to_dict`` among peaksift's public results."""
+    import importlib
+    import pkgutil
+
+    from peaksift._values import FrozenValue
+
+    covered = {type(results[k]) for k in [*KINDS, "histogram"]}
+    found = set()
+    for info in pkgutil.walk_packages(peaksift.__path__, "peaksift."):
+        if info.name.rsplit(".", 1)[-1].startswith("_") or "simulate" in info.name:
+            continue
+        mod = importlib.import_module(info.name)
+        for obj in vars(mod).values():
+            if (isinstance(obj, type) and obj.__module__ == mod.__name__
+                    and (obj.__name__.endswith("Result") or issubclass(
+                        obj, FrozenValue))
+                    and not obj.__name__.startswith("_")):
+                found.add(obj)
+    assert found <= covered, sorted(c.__name__ for c in found - covered)
 
 
 @pytest.mark.parametrize("kind", KINDS)

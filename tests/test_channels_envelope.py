@@ -152,3 +152,27 @@ def test_combined_toys_profile_the_background_function_too():
     assert checked >= 1
     g = c.global_significance("toys", toys=20, seed=9)
     assert g["n_toys"] == 20 and 0.0 <= g["p_global"] <= 1.0
+
+
+def test_pvalue_figure_draws_a_channels_envelope_scan_when_given():
+    """The combined p-value figure draws a channel's own background-envelope scan in place
+    of its single-function scan: the line's p-values are the envelope scan's local
+    significances as one-sided normal tail probabilities (scipy.stats.norm.sf), the other
+    channel keeps its scan."""
+    from peaksift.stats.envelope import envelope_scan
+
+    hists = _data()
+    cands = candidate_shapes(["exppoly1", "bernstein2"])
+    chans = [Channel("a", hists[0], "exponential", CONV[0] / 0.5, signal="gaussian",
+                     resolution=Resolution.absolute(SIGMA), efficiency=0.5,
+                     background_candidates=cands),
+             Channel("b", hists[1], "exponential", CONV[1] / 0.5, signal="gaussian",
+                     resolution=Resolution.absolute(SIGMA), efficiency=0.5)]
+    c = combine(chans, MASSES, refit=False)
+    env = envelope_scan(hists[0], cands, "gaussian", MASSES, absolute_resolution=SIGMA)
+    fig = c.plot(channel_scans={"a": (env.masses, stats.norm.sf(env.z_local))})
+    lines = {ln.get_label(): ln for ln in fig.axes[0].get_lines()}
+    assert set(lines) >= {"a (background envelope)", "b", "combined"}
+    assert np.allclose(lines["a (background envelope)"].get_ydata(),
+                       np.maximum(stats.norm.sf(env.z_local), 1e-300), rtol=1e-12)
+    assert np.allclose(lines["b"].get_ydata(), c.channels["b"].p_local, rtol=1e-12)

@@ -114,3 +114,21 @@ def test_stacked_parameters_give_the_same_gradient(reference):
         ref = reference[i][0]
         assert np.max(np.abs(grad[i][0] - ref)) < 1e-8 * np.max(np.abs(ref)), i
     assert np.all(np.isfinite(grad))
+
+
+@pytest.mark.parametrize("p", [TRUTH, [150.0, 4.0, 0.3, 1.3, 4.0, 150.0],
+                               [120.0, 9.0, 2.5, 40.0, 0.08, 1.05]])
+def test_one_parameter_set_values_match_the_quadrature(p):
+    """The one-parameter-set path (compiled, the free fit's) gives the bin fractions and the
+    normalised density of the definition above integrated by ``scipy.integrate.quad``
+    (1e-10 of the largest; the window's probability is computed once on each side), for
+    the reference truth, a heavy low tail with a steep high one, and a peak near the
+    window's edge with a nearly flat (n -> 1) high tail."""
+    cb = shapes.get("crystalball")
+    total = _integral(*WINDOW, p)
+    ref = np.array([_integral(a, b, p) for a, b in itertools.pairwise(EDGES)]) / total
+    frac, _ = cb.fractions_and_grad(EDGES, p, WINDOW)
+    np.testing.assert_allclose(frac, ref, rtol=0, atol=1e-10 * ref.max())
+    pdf, _ = cb.pdf_and_grad(POINTS, p, WINDOW)
+    pref = np.array([cb_density(x, p) for x in POINTS]) / total
+    np.testing.assert_allclose(pdf, pref, rtol=1e-10)

@@ -61,7 +61,7 @@ def _bkg(name, par):
 
 
 def _sig(mass):
-    cdf = st.norm(mass, SIGMA).cdf(EDGES)
+    cdf = st.norm.cdf(EDGES, mass, SIGMA)
     return np.diff(cdf) / (cdf[-1] - cdf[0])
 
 

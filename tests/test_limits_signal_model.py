@@ -94,8 +94,7 @@ def test_limits_with_the_signal_model_match_an_independent_profile(model):
     peak, sig = float(model.value("mass", mass)), float(model.sigma(mass))
 
     def shape(km, kr):
-        d = st.norm(peak * km, sig * kr)
-        cdf = d.cdf(ref_mod.EDGES)
+        cdf = st.norm.cdf(ref_mod.EDGES, peak * km, sig * kr)  # not frozen: 5 ms a call
         return np.diff(cdf) / (cdf[-1] - cdf[0])
 
     ref._sig = shape

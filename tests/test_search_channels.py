@@ -219,3 +219,31 @@ def test_channels_on_one_input_read_it_once_with_their_own_results(demo_dir, mon
         assert (got.cutflow, got.requirements, got.events_read) == (
             own.cutflow, own.requirements, own.events_read)
     assert len(calls) == 3 * shared["dimuon"].engine_info["chunks"]  # + one per channel
+
+
+def test_combination_settings_are_checked_against_the_schema():
+    """[combination.significance] and [combination.limits] take the keys of [significance]
+    and [limits] with their kinds and ranges (config.SCHEMA)."""
+    base = {"channels": ["a.toml"]}
+    with pytest.raises(ConfigError, match="unknown key combination.significance.toy"):
+        run_combination({"combination": {**base, "significance": {"toy": 5}}}, out=False)
+    with pytest.raises(ConfigError, match="combination.limits.cl"):
+        run_combination({"combination": {**base, "limits": {"cl": 1.5}}}, out=False)
+    with pytest.raises(ConfigError, match="combination.significance.method"):
+        run_combination({"combination": {**base, "significance": {"method": "guess"}}},
+                        out=False)
+
+
+def test_combination_takes_its_own_significance_and_limit_settings(demo_dir):
+    """The combination's global significance and limits follow [combination.significance]
+    and [combination.limits] (the command line's toys win), while its channel keeps the
+    settings of its own config (upcrossings, limits on)."""
+    comb = run_combination({"combination": {"channels": [str(demo_dir / "search.toml")],
+                                            "names": ["dimuon"],
+                                            "significance": {"method": "toys", "toys": 7},
+                                            "limits": {"enabled": False}}},
+                           out=False, toys=20)
+    assert comb.best["global_method"] == "toys" and comb.best["n_toys"] == 20
+    assert comb.limits is None
+    own = comb.channels["dimuon"].to_dict()
+    assert own["best"]["global_method"] == "upcrossings" and own["limits"]

@@ -51,8 +51,7 @@ def _independent_q0(n: np.ndarray, mass: float, d_scale: float, d_res: float) ->
         return np.diff(prim) / (prim[-1] - prim[0])
 
     def sig(km, kr):
-        d = st.norm(mass * km, SIGMA * kr)
-        cdf = d.cdf(EDGES)
+        cdf = st.norm.cdf(EDGES, mass * km, SIGMA * kr)  # not frozen: 5 ms a call
         return np.diff(cdf) / (cdf[-1] - cdf[0])
 
     def nll(s, km, kr, b, slope):
@@ -217,8 +216,7 @@ def test_fitted_mass_error_with_the_mass_scale_matches_an_independent_fit():
     c, h = 0.5 * (lo + hi), 0.5 * (hi - lo)
 
     def nll(big_m, k, s, sigma, b, slope):
-        d = st.norm(big_m * k, sigma)
-        cdf = d.cdf(EDGES)
+        cdf = st.norm.cdf(EDGES, big_m * k, sigma)  # not frozen: 5 ms a call
         prim = np.exp(slope * (EDGES - c) / h)
         nu = s * np.diff(cdf) / (cdf[-1] - cdf[0]) + b * np.diff(prim) / (prim[-1] - prim[0])
         if np.any(nu <= 0):

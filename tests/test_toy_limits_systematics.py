@@ -69,13 +69,19 @@ class _BruteForce:
         sk = sigma * self.k[:, None]
         norm = (stats.norm.cdf((WINDOW[1] - mass) / sk) - stats.norm.cdf((WINDOW[0] - mass) / sk))
         self.f = np.diff(stats.norm.cdf((self.e[None, :] - mass) / sk), axis=1) / norm  # (G, 3)
+        self.f_sum, self.b_sum = self.f.sum(axis=1), float(self.b.sum())
         assert lo < mass < hi
 
     def profile(self, n: np.ndarray, s: np.ndarray, c: np.ndarray):
         """min over k of the NLL at signal ``s`` per row; (value, k at the minimum)."""
-        nu = s[:, None, None] * self.f[None] + self.b
-        val = np.sum(nu - n[:, None, :] * np.log(nu), axis=2) + 0.5 * ((self.k - c[:, None])
-                                                                      / DELTA) ** 2
+        # sum_j nu_j - n_j ln nu_j with nu = s f + b: the sum of nu is s sum_j f_j + sum_j b_j
+        lognu = np.multiply.outer(s, self.f)
+        lognu += self.b
+        np.log(lognu, out=lognu)
+        val = np.multiply.outer(s, self.f_sum)
+        val += self.b_sum
+        val -= np.einsum("tgj,tj->tg", lognu, n)
+        val += 0.5 * ((self.k - c[:, None]) / DELTA) ** 2
         j = np.clip(np.argmin(val, axis=1), 1, self.k.size - 2)
         r = np.arange(n.shape[0])
         y0, y1, y2 = val[r, j - 1], val[r, j], val[r, j + 1]
@@ -91,12 +97,14 @@ class _BruteForce:
         x1, x2 = b - g * (b - a), a + g * (b - a)
         f1, f2 = self.profile(n, x1, c)[0], self.profile(n, x2, c)[0]
         for _ in range(20):   # the bracket shrinks to 1e-4 of mu
+            # golden-section search: the inner point kept is one of the next two points
             left = f1 < f2
             b = np.where(left, x2, b)
             a = np.where(left, a, x1)
-            x1n, x2n = b - g * (b - a), a + g * (b - a)
-            x1, x2 = x1n, x2n
-            f1, f2 = self.profile(n, x1, c)[0], self.profile(n, x2, c)[0]
+            x_new = np.where(left, b - g * (b - a), a + g * (b - a))
+            f_new = self.profile(n, x_new, c)[0]
+            x1, f1, x2, f2 = (np.where(left, x_new, x2), np.where(left, f_new, f2),
+                              np.where(left, x1, x_new), np.where(left, f1, f_new))
         p_mu = self.profile(n, np.full(t, mu), c)[0]
         ends = np.minimum(self.profile(n, np.zeros(t), c)[0], p_mu)
         best = np.minimum(np.minimum(f1, f2), ends)

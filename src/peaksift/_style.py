@@ -13,6 +13,7 @@ What to use when
 * :func:`value_table` -- the fitted numbers as a small aligned table (quantity, value,
   error, unit) with a caption line, under the legend.
 * :func:`shade_blinded` -- the blinded mass range, drawn the same way on every figure.
+* :func:`plain_log_ticks` -- a log y axis labelled with plain numbers (limits figures).
 
 The look: a white canvas, thin dark axes, ticks inside, a muted slate/teal/amber palette,
 the run label as a teal name followed by its conditions in grey.
@@ -350,6 +351,33 @@ def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: 
         ax.text(x0 + pad, y, line, transform=tr, fontsize=size - 0.6, ha="left",
                 va="baseline", color=COLORS["muted"], zorder=5)
         y -= row_h
+
+
+# ------------------------------------------------------------------------- log axes
+def plain_log_ticks(ax: Any) -> None:
+    """Tick labels of a log-scale y axis as plain numbers (``0.6``, ``2``, ``40``) instead
+    of powers of ten (``6 x 10^-1``), which on an axis shorter than a few decades crowd the
+    axis label off the figure.  Call after the limits are set: the intermediate ticks
+    are labelled on an axis up to 1.3 decades (2 and 5 up to 2.5 decades; none beyond)."""
+    import math
+
+    from matplotlib.ticker import FuncFormatter
+
+    lo, hi = ax.get_ylim()
+    span = math.log10(hi / lo) if lo > 0 and hi > lo else 99.0
+    keep = (2, 3, 4, 5, 6, 8) if span <= 1.3 else (2, 5) if span <= 2.5 else ()
+
+    def plain(v: float, _pos: Any = None) -> str:
+        return f"{v:g}"
+
+    def minor(v: float, _pos: Any = None) -> str:
+        if v <= 0:
+            return ""
+        lead = round(v / 10.0 ** math.floor(math.log10(v) + 1e-9), 6)
+        return plain(v) if lead in keep else ""
+
+    ax.yaxis.set_major_formatter(FuncFormatter(plain))
+    ax.yaxis.set_minor_formatter(FuncFormatter(minor))
 
 
 # ---------------------------------------------------------------------------- blinding

@@ -5,8 +5,10 @@ Which function
 * :func:`search_figures` -- every figure of a :class:`~peaksift.search.SearchResult` into a
   directory: ``spectrum`` (fit, signal component, pulls, fitted numbers; optionally also
   ``spectrum_log``), ``pvalue_scan``, ``limits``, ``candidates`` (not while blinded: its
-  histograms include the blinded window), ``calibration``.  Returns name -> PNG path.
-* :func:`spectrum_only` -- the selected spectrum without a fit (``peaksift spectrum``).
+  histograms include the blinded window), ``calibration``.  Returns name -> PNG path;
+  :func:`search_figure` returns one of them as a Figure (``SearchResult.plot``).
+* :func:`spectrum_only` -- the selected spectrum without a fit (``peaksift spectrum``);
+  :func:`spectrum_figure` its Figure.
 * :func:`candidates` -- the candidates' pT (log scale) and rapidity in the search window.
 * :func:`scan_figure` -- the p-value scan with the global significance noted; an excess
   beyond the axis floor is clipped there and its p stated (as a power of ten if need be).
@@ -51,9 +53,9 @@ from ._style import (
     shade_blinded,
 )
 
-__all__ = ["FigureLabels", "candidates", "dedx_figure", "envelope_figure",
+__all__ = ["FigureLabels", "candidates", "candidates_figure", "dedx_figure", "envelope_figure",
            "figure_labels", "limits_figure", "save", "scan_expectation", "scan_figure",
-           "search_figures", "spectrum_only"]
+           "search_figure", "search_figures", "spectrum_figure", "spectrum_only"]
 
 
 @dataclass(frozen=True)
@@ -108,14 +110,28 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
                   blind: Sequence[float] | None = None, title: str = "",
                   labels: FigureLabels | None = None,
                   background: Any = None) -> dict[str, Path]:
-    """The selected spectrum as points with Poisson-like error bars (``sqrt(weight_sq_sum)``).
+    """:func:`spectrum_figure` saved as ``spectrum`` (and ``spectrum_log`` with
+    ``log_scale``) in ``outdir``; returns name -> PNG path."""
+    out: dict[str, Path] = {}
+    for log in ([False, True] if log_scale else [False]):
+        name = "spectrum_log" if log else "spectrum"
+        out[name] = save(spectrum_figure(hist, log=log, blind=blind, title=title,
+                                         labels=labels, background=background),
+                         outdir, name, formats)
+    return out
+
+
+def spectrum_figure(hist: Any, *, log: bool = False, blind: Sequence[float] | None = None,
+                    title: str = "", labels: FigureLabels | None = None,
+                    background: Any = None) -> Any:
+    """The selected spectrum as points with Poisson-like error bars (``sqrt(weight_sq_sum)``);
+    with ``background`` (a sideband fit) the fit and its pulls.  Returns the Figure.
 
     With ``blind = (lo, hi)`` every bin overlapping that range is hidden -- the same bins the
     statistics layer leaves out (:func:`peaksift.blinding.blinded_bins`) -- the hidden bins'
     mass range is hatched, and the count stated is that of the sidebands only.
     """
     labels = labels or FigureLabels()
-    out: dict[str, Path] = {}
     h = hist
     span = None
     if blind is not None:
@@ -131,38 +147,34 @@ def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
     where = " outside the blinded window" if span is not None else ""
     count = (f"sum of weights {number(total)}{where}" if hist.is_weighted
              else f"{number(round(total))} candidates{where}")
-    for log in ([False, True] if log_scale else [False]):
-        if background is None:
-            fig, ax = new_figure((7.0, 4.6))
-            axp = None
-        else:  # the sideband fit: pulls beneath, as under every fit
-            fig, (ax, axp) = new_figure((7.0, 5.6), 2, 1, sharex=True,
-                                        gridspec_kw={"height_ratios": [3.2, 1],
-                                                     "hspace": 0.05})
-        with figure_style():
-            h.plot(ax=ax, color=COLORS["data"])
-            shade_blinded(ax, span)
-            if background is not None:
-                _draw_sideband_fit(ax, axp, background, span)
-            if log:
-                ax.set_yscale("log")
-                pos = shown[shown > 0]  # the axis range must not reveal the hidden bins
-                if pos.size:
-                    ax.set_ylim(0.5 * pos.min(), 3.0 * pos.max())
-            elif shown.size:
-                ax.set_ylim(0, 1.3 * float(np.max(shown + np.sqrt(np.abs(shown)))))
-            (axp if axp is not None else ax).set_xlabel(labels.mass_axis(hist.unit))
-            if axp is not None:
-                ax.set_xlabel("")
-                ax.set_xlim(float(hist.edges[0]), float(hist.edges[-1]))
-            ax.legend(loc="upper right")
-            note = "\n".join(p for p in (title, count) if p)
-            if "\n" in note:  # a second statement line above the axes
-                margins(fig, top=0.78)
-            draw_header(ax, labels.run, note)
-        name = "spectrum_log" if log else "spectrum"
-        out[name] = save(fig, outdir, name, formats)
-    return out
+    if background is None:
+        fig, ax = new_figure((7.0, 4.6))
+        axp = None
+    else:  # the sideband fit: pulls beneath, as under every fit
+        fig, (ax, axp) = new_figure((7.0, 5.6), 2, 1, sharex=True,
+                                    gridspec_kw={"height_ratios": [3.2, 1], "hspace": 0.05})
+    with figure_style():
+        h.plot(ax=ax, color=COLORS["data"])
+        shade_blinded(ax, span)
+        if background is not None:
+            _draw_sideband_fit(ax, axp, background, span)
+        if log:
+            ax.set_yscale("log")
+            pos = shown[shown > 0]  # the axis range must not reveal the hidden bins
+            if pos.size:
+                ax.set_ylim(0.5 * pos.min(), 3.0 * pos.max())
+        elif shown.size:
+            ax.set_ylim(0, 1.3 * float(np.max(shown + np.sqrt(np.abs(shown)))))
+        (axp if axp is not None else ax).set_xlabel(labels.mass_axis(hist.unit))
+        if axp is not None:
+            ax.set_xlabel("")
+            ax.set_xlim(float(hist.edges[0]), float(hist.edges[-1]))
+        ax.legend(loc="upper right")
+        note = "\n".join(p for p in (title, count) if p)
+        if "\n" in note:  # a second statement line above the axes
+            margins(fig, top=0.78)
+        draw_header(ax, labels.run, note)
+    return fig
 
 
 def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None) -> None:
@@ -200,6 +212,12 @@ def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None)
 def candidates(collected: Any, outdir: str | os.PathLike[str], *,
                formats: Sequence[str] = ("png", "pdf"),
                labels: FigureLabels | None = None) -> dict[str, Path]:
+    """:func:`candidates_figure` saved as ``candidates`` in ``outdir``."""
+    return {"candidates": save(candidates_figure(collected, labels), outdir, "candidates",
+                               formats)}
+
+
+def candidates_figure(collected: Any, labels: FigureLabels | None = None) -> Any:
     """Candidates' transverse momentum (log scale, so the tail shows) and rapidity, side
     by side, for the candidates in the search window (stated on the figure)."""
     labels = labels or FigureLabels()
@@ -229,7 +247,7 @@ def candidates(collected: Any, outdir: str | os.PathLike[str], *,
         draw_header(a1, labels.run, f"{number(round(n))} candidates with "
                     f"{fixed(lo, 1)} < ${labels.symbol}$ < {fixed(hi, 1)} GeV (search window)")
         fig.subplots_adjust(wspace=0.3)
-    return {"candidates": save(fig, outdir, "candidates", formats)}
+    return fig
 
 
 # --------------------------------------------------------------------------- search
@@ -250,32 +268,42 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
     (:func:`scan_expectation`), computed here when not given."""
     labels = labels or figure_labels(getattr(result, "config", None))
     out: dict[str, Path] = {}
-    blind = result.blinding.get("window") if result.blinding.get("active") else None
-    syst = getattr(result, "systematics", None) or {}
     for name in names:
-        if name == "spectrum" and result.fit is None:  # blinded: the blinded bins hidden
-            out.update(spectrum_only(result.histogram, outdir, formats=formats,
-                                     log_scale=log_scale, blind=blind,
-                                     title=_fit_title(result), labels=labels,
-                                     background=result.background_fit))
-        elif name == "spectrum":
-            for log in ([False, True] if log_scale else [False]):
-                key = "spectrum_log" if log else "spectrum"
-                out[key] = _fit_figure(result.fit, outdir, key, formats, log=log, blind=blind,
-                                       title=_fit_title(result), labels=labels)
-        elif name == "pvalue_scan":
-            out[name] = _scan_figure(result, outdir, formats, labels, expected)
-        elif name == "limits" and result.limits is not None:
-            out[name] = _limits_figure(result, outdir, formats, labels)
-        elif name == "candidates" and blind is None:  # they include the blinded window
-            out.update(candidates(result.collected, outdir, formats=formats, labels=labels))
-        elif name == "background_envelope" and (syst.get("envelope") or {}).get("profile"):
-            out[name] = save(envelope_figure(syst, labels=labels), outdir, name, formats)
-        elif (name == "calibration" and calibration is not None
-              and calibration[1] is not None and result.calibration):
+        if (name == "calibration" and calibration is not None
+                and calibration[1] is not None and result.calibration):
             out[name] = calibration_figure(result.calibration, calibration[1], outdir,
                                            formats, labels)
+        for log in ([False, True] if name == "spectrum" and log_scale else [False]):
+            fig = search_figure(result, name, labels=labels, log=log, expected=expected)
+            if fig is not None:
+                key = f"{name}_log" if log else name
+                out[key] = save(fig, outdir, key, formats)
     return out
+
+
+def search_figure(result: Any, name: str = "spectrum", *, labels: FigureLabels | None = None,
+                  log: bool = False, expected: tuple[Any, str] | None = None) -> Any:
+    """The Figure ``name`` (one of :data:`SEARCH_FIGURES` but ``calibration``) of a search
+    result, or None when the result has nothing to draw for it (no limits, blinded
+    candidates, no envelope).  While blinded the spectrum shows the sideband fit."""
+    labels = labels or figure_labels(getattr(result, "config", None))
+    blind = result.blinding.get("window") if result.blinding.get("active") else None
+    env = (getattr(result, "systematics", None) or {}).get("envelope") or {}
+    if name == "spectrum" and result.fit is None:  # blinded: the blinded bins hidden
+        return spectrum_figure(result.histogram, log=log, blind=blind, labels=labels,
+                               title=_fit_title(result), background=result.background_fit)
+    if name == "spectrum":
+        return _fit_figure(result.fit, log=log, blind=blind, title=_fit_title(result),
+                           labels=labels)
+    if name == "pvalue_scan":
+        return _scan_figure(result, labels, expected)
+    if name == "limits" and result.limits is not None:
+        return _limits_figure(result, labels)
+    if name == "candidates" and blind is None and result.collected is not None:
+        return candidates_figure(result.collected, labels)  # (they include the blinded window)
+    if name == "background_envelope" and env.get("profile"):
+        return envelope_figure(result.systematics, labels=labels)
+    return None
 
 
 def _fit_title(result: Any) -> str:
@@ -293,9 +321,8 @@ def _fit_title(result: Any) -> str:
     return ",  ".join(parts) + tag
 
 
-def _fit_figure(fr: Any, outdir: str | os.PathLike[str], name: str, formats: Sequence[str], *,
-                log: bool, blind: Sequence[float] | None, title: str,
-                labels: FigureLabels) -> Path:
+def _fit_figure(fr: Any, *, log: bool, blind: Sequence[float] | None, title: str,
+                labels: FigureLabels) -> Any:
     """``FitResult.plot`` (data, model, signal, background, pulls, numbers) plus blinding
     and log scale."""
     fig = fr.plot(run=labels.run, symbol=labels.symbol, note=title)
@@ -309,7 +336,7 @@ def _fit_figure(fr: Any, outdir: str | os.PathLike[str], name: str, formats: Seq
             ax.set_yscale("log")
             if pos.size:
                 ax.set_ylim(0.3 * pos.min(), 30.0 * pos.max())
-    return save(fig, outdir, name, formats)
+    return fig
 
 
 def calibration_figure(cal: Any, fr: Any, outdir: str | os.PathLike[str],
@@ -352,8 +379,7 @@ def scan_expectation(scan: Any) -> tuple[np.ndarray, str] | None:
     return np.asarray(scan.expected_z(s), float), label
 
 
-def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
-                 labels: FigureLabels, expected: Any = None) -> Path:
+def _scan_figure(result: Any, labels: FigureLabels, expected: Any = None) -> Any:
     """``ScanResult.plot`` with the global significance noted and the expected p-value of
     a signal of the size the scan fitted at its best mass (``expected``: that curve and
     label from :func:`scan_expectation`, computed here when not given)."""
@@ -366,7 +392,7 @@ def _scan_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[
     masses = env.get("masses", env.get("mass"))
     if env.get("z_local") is not None and len(env["z_local"]) and masses is not None:
         _with_systematics(fig.axes[0], masses, env["z_local"], result.best)
-    return save(fig, outdir, "pvalue_scan", formats)
+    return fig
 
 
 def _with_systematics(ax: Any, masses: Any, z_local: Any, best: Any) -> None:
@@ -446,17 +472,16 @@ def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = No
 def limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
                   labels: FigureLabels | None = None) -> Path:
     """The limits figure of a search result (``limits.png`` and the other formats)."""
-    return _limits_figure(result, outdir, formats,
-                          labels or figure_labels(getattr(result, "config", None)))
+    labels = labels or figure_labels(getattr(result, "config", None))
+    return save(_limits_figure(result, labels), outdir, "limits", formats)
 
 
-def _limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence[str],
-                   labels: FigureLabels) -> Path:
+def _limits_figure(result: Any, labels: FigureLabels) -> Any:
     fig = result.limits.plot(run=labels.run, symbol=labels.symbol)
     lim_s = ((getattr(result, "systematics", None) or {}).get("limits") or {})
     if lim_s.get("with_systematics"):
         _limits_with_systematics(fig.axes[0], lim_s["with_systematics"])
-    return save(fig, outdir, "limits", formats)
+    return fig
 
 
 def _limits_with_systematics(ax: Any, w: Any) -> None:

@@ -33,6 +33,8 @@ import math
 from dataclasses import asdict, dataclass
 from typing import Any
 
+from .errors import InputError
+
 __all__ = ["KnownMatch", "lookup", "match_known", "pair_charge"]
 
 
@@ -65,7 +67,22 @@ class KnownMatch:
     distance_sigma: float
 
     def to_dict(self) -> dict[str, Any]:
+        """JSON-ready, every key the attribute of the same name."""
         return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: Any) -> KnownMatch:
+        """The match :meth:`to_dict` wrote (a missing number comes back as NaN)."""
+        def num(k: str) -> float:
+            return math.nan if d.get(k) is None else float(d[k])
+
+        try:
+            return cls(name=str(d["name"]), pdgid=int(d["pdgid"]), mass=num("mass"),
+                       mass_error=num("mass_error"), width=num("width"), charge=num("charge"),
+                       distance_sigma=num("distance_sigma"))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"not a known-particle match written by KnownMatch.to_dict: "
+                             f"{exc!r}") from None
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,7 @@ the closest valid key or value.
 
 from __future__ import annotations
 
-from .build import load_config, output_figures
+from .build import load_config, output_figures, section_values
 from .reference import reference_markdown
 from .schema import SCHEMA
 from .sections import (
@@ -78,4 +78,5 @@ __all__ = [
     "load_config",
     "output_figures",
     "reference_markdown",
+    "section_values",
 ]

@@ -254,6 +254,31 @@ def _check_identification(ident: dict[str, Any], own: Mapping[str, Any], pr: dic
     return two_legs
 
 
+def section_values(name: str, raw: Any, where: str, allowed: tuple[str, ...],
+                   path: str) -> dict[str, Any]:
+    """The keys ``raw`` gives, each one of ``allowed`` of section ``name``, checked against
+    the schema (kind and range) and without defaults: the settings a combination config
+    puts over its first channel's (``path``: the table's name in messages, e.g.
+    ``combination.significance``)."""
+    if raw is None:
+        return {}
+    if not isinstance(raw, Mapping):
+        raise ConfigError(f"{where}: [{path}] must be a table, got {_type_name(raw)}")
+    keys = {k.name: k for k in SCHEMA[name] if k.name in allowed}
+    out: dict[str, Any] = {}
+    for k, v in raw.items():
+        if k not in keys:
+            hint = closest(k, list(keys))
+            raise ConfigError(f"{where}: unknown key {path}.{k}"
+                              + (f"; did you mean {path}.{hint}?" if hint else "")
+                              + f" (valid keys in [{path}]: {', '.join(keys)})")
+        val = _value(f"{path}.{k}", keys[k], v, where)
+        if val is None and not keys[k].nullable:
+            raise ConfigError(f"{where}: {path}.{k} cannot be empty ({keys[k].doc})")
+        out[k] = tuple(val) if isinstance(val, list) else val
+    return out
+
+
 def output_figures(value: Any, where: str) -> tuple[str, ...]:
     """``output.figures`` checked (also for a combination's [output]): ``"all"``,
     ``"none"`` or figure names, as a tuple."""

@@ -50,6 +50,30 @@ class Description:
 
         return f"<pre>{html.escape(str(self))}</pre>"
 
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready, every key the attribute of the same name (the multiplicities'
+        object counts as text: JSON keys are strings)."""
+        colls = {n: {**c, "multiplicity": {str(k): int(v) for k, v in c["multiplicity"].items()}}
+                 for n, c in self.collections.items()}
+        return {"files": [list(f) for f in self.files], "collections": colls,
+                "event_fields": dict(self.event_fields), "other_fields": dict(self.other_fields),
+                "n_events": int(self.n_events), "problems": list(self.problems)}
+
+    @classmethod
+    def from_dict(cls, d: Any) -> Description:
+        """The Description :meth:`to_dict` wrote."""
+        try:
+            colls = {n: {**c, "multiplicity": {int(k): int(v)
+                                               for k, v in c["multiplicity"].items()}}
+                     for n, c in d["collections"].items()}
+            return cls(files=[(str(p), int(n), int(rg), int(b)) for p, n, rg, b in d["files"]],
+                       collections=colls, event_fields=dict(d["event_fields"]),
+                       other_fields=dict(d["other_fields"]), n_events=int(d["n_events"]),
+                       problems=list(d["problems"]))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"not a file description written by Description.to_dict: "
+                             f"{exc!r}") from None
+
     def __str__(self) -> str:
         plural = "s" if len(self.files) != 1 else ""
         lines = [f"{len(self.files)} file{plural}, {self.n_events} events"]

@@ -6,6 +6,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import re
+import sys
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -411,8 +412,8 @@ def _collect_all(source: Any, selections: tuple[Selection, ...], func: Any, *, e
     finally:
         if run is not None:
             run.close()  # stop the workers now, not when the traceback is freed
-        if session is not None:
-            session.close()
+        if session is not None:  # abandoned (an exception in flight): workers end at once
+            session.close(abort=sys.exc_info()[0] is not None)
         if bar is not None:
             bar.close()
     if skipped and len(skipped) == len(files):

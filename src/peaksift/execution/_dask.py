@@ -4,14 +4,18 @@ for the call (:class:`DaskSession`), and the runner that keeps the cluster busy.
 from __future__ import annotations
 
 import contextlib
+import logging
+import os
 import queue
+import signal
+import sys
 import time
 import uuid
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from .._processes import arrow_threads_from_env, quiet_fork, resolve_start_method
+from .._processes import quiet_fork, resolve_start_method, sigterm_held, worker_start
 from ..errors import ExecutionError, PeaksiftError
 from ._local import (
     _INFLIGHT_PER_WORKER,
@@ -62,10 +66,13 @@ def require_dask() -> None:
 
 
 def _local_worker_setup() -> None:
-    """Run on every worker of a local cluster we start: a fast exit, and Arrow's thread
-    count from the environment (a forked worker inherits this process's pool size)."""
+    """Run on every worker of a local cluster we start, as its first task: the signals of
+    every worker of ours (Ctrl-C left to this process, SIGTERM at its default action and
+    unblocked: it started blocked, see :class:`DaskSession`), one thread per library
+    (Arrow's count from the environment: a forked worker inherits this process's pool
+    size), and a fast exit."""
+    worker_start()
     _install_exit_fast()
-    arrow_threads_from_env()
 
 
 def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
@@ -119,7 +126,8 @@ class DaskSession:
         require_dask()
         from distributed import Client
 
-        self.cluster = None
+        self.cluster: Any = None
+        self.client: Any = None
         self.own_client = False
         if client is None and address is None:
             client = _current_client()
@@ -144,22 +152,69 @@ class DaskSession:
                 ) from None
             self.own_client = True
         else:
-            self.cluster = _start_local_cluster(workers, method)
+            # SIGTERM held while the workers start (as around every fork of ours): forked
+            # from a thread that blocks it, each worker starts with it blocked until
+            # _local_worker_setup sets the default action, and a SIGTERM meanwhile is
+            # raised once the cluster is in hand, so that it is closed, never left half
+            # started (a stray worker, the interpreter's exit hanging on it)
+            # (a worker that a SIGTERM to the whole process group ends as it sets up makes
+            # the scheduler log a failed broadcast: the run ends anyway, quietly)
             try:
-                self.client = Client(self.cluster, set_as_default=False)
-                self.client.run(_local_worker_setup)  # our own workers only
+                with sigterm_held(), _quiet_distributed():
+                    self.cluster = _start_local_cluster(workers, method)
+                    self.client = Client(self.cluster, set_as_default=False)
+                    self.own_client = True
+                    self.client.run(_local_worker_setup)  # our own workers only
             except BaseException:
-                self.cluster.close()
+                self.close(abort=True)
                 raise
-            self.own_client = True
             info["address"] = self.cluster.scheduler_address
         _check_versions(self.client)
 
-    def close(self) -> None:
-        if self.own_client:
+    def stop_workers(self) -> None:
+        """End the worker processes of the local cluster started here at once, tasks in
+        flight included: the run is being abandoned (Ctrl-C, SIGTERM, an error).  Closing
+        the cluster politely would wait for each running task (Dask gives a worker 4 s,
+        then kills it with a warning) and let the workers log their cancelled tasks.  A
+        user's cluster is never touched."""
+        if self.cluster is None:
+            return
+        for nanny in list(getattr(self.cluster, "workers", {}).values()):
+            with contextlib.suppress(AttributeError, ProcessLookupError, TypeError):
+                nanny.close_gracefully(reason="peaksift run stopped")  # do not restart it
+                pid = nanny.pid
+                if pid:
+                    os.kill(pid, signal.SIGKILL)
+
+    def close(self, abort: bool = False) -> None:
+        """Close the client and the local cluster started here.  ``abort``: the run is
+        being abandoned; end the local workers at once (:meth:`stop_workers`) and keep
+        the shutdown's messages about them (lost workers, cancelled tasks) quiet."""
+        if not abort:
+            self._close()
+            return
+        self.stop_workers()
+        with _quiet_distributed():
+            self._close()
+
+    def _close(self) -> None:
+        if self.own_client and self.client is not None:
             self.client.close()
         if self.cluster is not None:
             self.cluster.close()
+
+
+@contextlib.contextmanager
+def _quiet_distributed() -> Any:
+    """Dask's own log messages off while inside (a local cluster starting or abandoned:
+    what it would say about lost workers and cancelled tasks is no news to the user)."""
+    log = logging.getLogger("distributed")
+    level = log.level
+    log.setLevel(logging.CRITICAL)
+    try:
+        yield
+    finally:
+        log.setLevel(level)
 
 
 def _current_client() -> Any:
@@ -276,11 +331,16 @@ def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
                 yield emit, ok, value
                 emit += 1
     finally:
+        # an exception here (an error, Ctrl-C, SIGTERM, or close() before the end) abandons
+        # the run: the local workers end first, so no cancelled task is waited for
+        abandoned = sys.exc_info()[0] is not None
+        if abandoned:
+            session.stop_workers()
         if running:
             with contextlib.suppress(OSError, RuntimeError, TimeoutError):  # scheduler gone
                 cl.cancel(list(running.values()))
         if own:
-            session.close()
+            session.close(abort=abandoned)
 
 
 def _outcome(running: dict[int, Any], i: int, n: int, describe: Callable[[int], str]

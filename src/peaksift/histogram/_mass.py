@@ -477,11 +477,13 @@ class MassHistogram:
         else:
             new = check_edges(edges)
             # nearest current edge to each new one; it must agree to rounding
-            right = np.clip(np.searchsorted(self.edges, new), 0, self.edges.size - 1)
-            left = np.clip(right - 1, 0, self.edges.size - 1)
+            top = self.edges.size - 1
+            right = np.minimum(np.searchsorted(self.edges, new), top)  # (0 at least)
+            left = np.maximum(right - 1, 0)
             closer_left = np.abs(self.edges[left] - new) < np.abs(self.edges[right] - new)
             keep = np.where(closer_left, left, right)
-            ok = np.isclose(self.edges[keep], new, rtol=1e-12, atol=1e-12)
+            # np.isclose(.., rtol=1e-12, atol=1e-12) for finite edges, without its overhead
+            ok = np.abs(self.edges[keep] - new) <= 1e-12 + 1e-12 * np.abs(new)
             if not ok.all():
                 bad = new[~ok][0]
                 raise InputError(

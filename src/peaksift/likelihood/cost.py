@@ -272,6 +272,12 @@ class BinnedCost(_Cost):
         would leave no probability in it and make the bin fractions 0/0."""
         x = np.asarray(x, float)
         lower, upper = self._free_bounds(lower, upper)
+        if self.compiled_problem() is not None:  # the same, in one compiled call
+            from .driver import compiled_observed_hessian
+
+            hess = compiled_observed_hessian(self, x, steps, lower, upper)
+            if hess is not None:
+                return hess
         jac = np.zeros((self.free.size, self.n.size))
         mu, blocks = self.expectation(x, jac)
         mu = np.maximum(mu, MU_FLOOR)

@@ -21,8 +21,12 @@ on it (:func:`peaksift.execution.collect_shared`; the same result as the channel
     [output]
     dir = "combined_out"
 
-The first channel gives the mass grid, the significance settings (method, toys, seed,
-reference level) and the limit settings (confidence level, points, method, toys); every
+The combination's global significance and limits take their settings from the
+``[combination.significance]`` (``method``, ``toys``, ``seed``, ``reference_level``) and
+``[combination.limits]`` (``enabled``, ``cl``, ``method``, ``points``, ``toys``,
+``toy_masses``) tables, each key as in a search config (same meaning, kind and range); a
+key not given there is the first channel's (``[significance]``, ``[limits]``), and
+``--toys``/``--seed`` override both.  The first channel gives the mass grid.  Every
 channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
 (``[signal_model]`` or ``limits.efficiency``).  Each channel's
 ``limits.luminosity_uncertainty`` and ``limits.efficiency_uncertainty`` enter the joint
@@ -31,12 +35,14 @@ luminosity nuisance (fully correlated; their uncertainties must agree).  A chann
 ``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
 toys and the asymptotic combined limits (not in the toy limits); its background envelope
 (the functions its own search kept) is profiled per channel in the combined scan and its
-toys, not in the limits (both said in the results and the report).  Blinding is not
+toys and the asymptotic combined limits (the toy limits take each channel's function at
+mu = 0; both said in the results and the report).  Blinding is not
 supported in a combination yet (refused).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import sys
 from collections.abc import Mapping
@@ -45,7 +51,7 @@ from typing import Any
 
 import numpy as np
 
-from ..config import load_config, output_figures
+from ..config import load_config, output_figures, section_values
 from ..errors import ConfigError
 from .combination_result import CombinedSearchResult
 
@@ -56,7 +62,10 @@ if sys.version_info >= (3, 11):  # pragma: no cover - version switch
 else:  # pragma: no cover
     import tomli as _toml
 
-_KEYS = {"channels", "names", "shared_luminosity"}
+_KEYS = {"channels", "names", "shared_luminosity", "significance", "limits"}
+#: the settings a combination may give itself (else its first channel's)
+_OWN = {"significance": ("method", "toys", "seed", "reference_level"),
+        "limits": ("enabled", "cl", "method", "points", "toys", "toy_masses")}
 
 
 def is_combination(config: Any) -> bool:
@@ -119,6 +128,11 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                           f"{shared!r}")
     if len(names) != len(paths) or len(set(names)) != len(names):
         raise ConfigError(f"{where}: combination.names must give one distinct name per channel")
+    own = {sec: section_values(sec, comb.get(sec), where, keys, f"combination.{sec}")
+           for sec, keys in _OWN.items()}
+    for key, val in (("toys", toys), ("seed", seed)):   # the command line wins
+        if val is not None:
+            own["significance"][key] = int(val)
     cfgs = []
     for name, p in zip(names, paths):
         try:
@@ -159,15 +173,15 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         channels = [_channel(n, c, results[n], shared) for n, c in zip(names, cfgs)]
         unit = first.limits.cross_section_unit
         cmb = combine(channels, masses, refit=False, unit=unit)
-        sig = first.significance
+        sig = dataclasses.replace(first.significance, **own["significance"])
         executor = _toy_executor(first, "combined toys")
         best = cmb.global_significance(sig.method, toys=sig.toys, seed=sig.seed,
                                        u0=sig.reference_level, executor=executor)
         lim = None
-        if first.limits.enabled:
-            n = min(first.limits.points, masses.size)
+        fl = dataclasses.replace(first.limits, **own["limits"])
+        if fl.enabled:
+            n = min(fl.points, masses.size)
             lm = np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
-            fl = first.limits
             lim = combined_limits(channels, lm, cl=fl.cl, unit=unit, method=fl.method,
                                   toys=fl.toys, seed=sig.seed,
                                   toy_masses=list(fl.toy_masses) or None,
@@ -192,8 +206,9 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             notes += ((f"the combined scan and its toys (global significance) profile the "
                        f"[systematics] background envelope of channel(s) "
                        f"{', '.join(enveloped)} as a discrete choice per channel (its "
-                       "spurious-signal term left out); the combined limits use each "
-                       "channel's configured background function"),)
+                       "spurious-signal term left out), and so do the asymptotic combined "
+                       "limits; the combination's toy limits (if any) take each channel's "
+                       "function at mu = 0"),)
         left = [n for n in with_env if n not in enveloped]
         if left and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "
@@ -301,7 +316,6 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
 
     from .. import plotting
     from .._files import atomic_write
-    from .._style import RunLabel
     from .._vocabulary import FIGURES, figure_wanted
     from ..report import write_results_json
     from .combination_report import render_combination_html, render_combination_markdown
@@ -310,15 +324,8 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
     figdir.mkdir(parents=True, exist_ok=True)
     figs: dict[str, Path] = {}
     labels = {n: plotting.figure_labels(r.config) for n, r in res.channels.items()}
-    first = next(iter(labels.values())).run
-    run = RunLabel(name=first.name if first else "", sqrt_s=first.sqrt_s if first else None,
-                   luminosity=first.luminosity if first else None,
-                   channel=" + ".join(lb.run.channel for lb in labels.values()
-                                      if lb.run and lb.run.channel))
-    symbols = {lb.symbol for lb in labels.values()}
     if figure_wanted(figures, "pvalue_scan"):
-        res.combination.plot(figdir / "pvalue_combined.png", run=run,
-                             symbol=symbols.pop() if len(symbols) == 1 else "m")
+        res.plot(figdir / "pvalue_combined.png", which="pvalue_scan")
         figs["pvalue_combined"] = figdir / "pvalue_combined.png"
     for name, r in res.channels.items():
         cfg = r.config

@@ -91,6 +91,69 @@ class CombinedSearchResult:
         return summary_html("CombinedSearchResult", self._summary(),
                             "A local significance is not a discovery; see the report.")
 
+    # ------------------------------------------------------------------------ figures
+    def figure_labels(self) -> Any:
+        """The run label and mass symbol of the combination's own figures
+        (:class:`peaksift.plotting.FigureLabels`): the first channel's run name, sqrt(s)
+        and luminosity with every channel's final state; the channels' mass symbol when
+        they share one, else plain m."""
+        from .. import plotting
+        from .._style import RunLabel
+
+        labels = [plotting.figure_labels(r.config) for r in self.channels.values()]
+        first = labels[0].run if labels else None
+        run = RunLabel(name=first.name if first else "", sqrt_s=first.sqrt_s if first else None,
+                       luminosity=first.luminosity if first else None,
+                       channel=" + ".join(lb.run.channel for lb in labels
+                                          if lb.run and lb.run.channel))
+        symbols = {lb.symbol for lb in labels}
+        return plotting.FigureLabels(run, symbols.pop() if len(symbols) == 1 else "m")
+
+    def plot(self, path: Any = None, *, which: str = "pvalue_scan", log: bool = False) -> Any:
+        """A figure of the combination as a matplotlib Figure drawn without pyplot (the
+        user's backend is left alone): ``which`` is ``"pvalue_scan"`` (each channel's and
+        the combined local p-value), ``"limits"`` (the combined limits and each channel's
+        expected one) or ``"<channel>/<figure>"``, a channel's own figure
+        (:meth:`SearchResult.plot`, e.g. ``"mumu/spectrum"``).  Saved to ``path`` when
+        given."""
+        from ..errors import InputError
+
+        labels = self.figure_labels()
+        name, _, sub = which.partition("/")
+        if sub:
+            if name not in self.channels:
+                raise InputError(f"CombinedSearchResult.plot: no channel {name!r} (channels: "
+                                 f"{', '.join(self.channels)})")
+            fig = self.channels[name].plot(which=sub, log=log)
+        elif which == "pvalue_scan":
+            fig = self.combination.plot(run=labels.run, symbol=labels.symbol,
+                                        channel_scans=self.channel_envelope_scans())
+        elif which == "limits" and self.limits is not None:
+            fig = self.limits.plot(run=labels.run, symbol=labels.symbol)
+        else:
+            why = "no combined limits" if which == "limits" else "no such figure"
+            raise InputError(f"CombinedSearchResult.plot: {which!r}: {why} (figures: "
+                             "pvalue_scan, limits, <channel>/<figure>)")
+        if path is not None:
+            fig.savefig(path)
+        return fig
+
+    def channel_envelope_scans(self) -> dict[str, tuple]:
+        """Channel name -> (masses, local p-values) of its own background-envelope scan,
+        for the channels whose envelope the combined scan profiles (the p-value figure
+        draws those beside the envelope-profiled combined line)."""
+        from scipy import stats
+
+        env = (self.combination.envelope or {}) if len(self.channels) > 1 else {}
+        out = {}
+        for name, r in self.channels.items():
+            block = (r.systematics or {}).get("envelope") or {}
+            if not (env.get(name) or {}).get("functions") or block.get("z_local") is None:
+                continue
+            z = np.array([np.nan if v is None else v for v in block["z_local"]], float)
+            out[name] = (np.asarray(block["masses"], float), stats.norm.sf(z))
+        return out
+
     # ------------------------------------------------------------------------ JSON
     @property
     def peaksift_version(self) -> str:

@@ -15,22 +15,29 @@ from .doubts import doubts
 
 
 # ----------------------------------------------------------------------------- results
-@dataclass(frozen=True, repr=False)
+@dataclass(frozen=True, repr=False, eq=False)
 class SpectrumResult:
-    """What :func:`run_spectrum` produced: the spectrum, the collected data and the files."""
+    """What :func:`run_spectrum` produced: the spectrum, the collected data and the files.
+
+    :meth:`to_dict` names every key as the attribute holding it (``input``, ``histogram``,
+    ``blinding``, ...); :meth:`from_dict` reads it back without the event-level data
+    (``collected`` None, ``input_record`` keeping the counts).  Two results are equal when
+    their spectra, configurations (as written) and input counts are."""
 
     config: Config
     histogram: Any
     collected: Any
     outdir: Path | None = None
     files: Mapping[str, Path] = field(default_factory=dict)
+    input_record: Mapping[str, Any] | None = None
 
     def _summary(self) -> list[tuple[str, str]]:
         h = self.histogram
         rows = [("window", f"{h.edges[0]:g}-{h.edges[-1]:g} GeV in {h.edges.size - 1} bins"),
                 ("entries", f"{h.total():,.0f}")]
-        if self.collected is not None:
-            rows.insert(0, ("events read", f"{int(self.collected.events_read):,}"))
+        read = self.input.get("events_read")
+        if read is not None:
+            rows.insert(0, ("events read", f"{int(read):,}"))
         if self.outdir is not None:
             rows.append(("outputs", str(self.outdir)))
         return rows
@@ -42,6 +49,78 @@ class SpectrumResult:
         from .._values import summary_html
 
         return summary_html("SpectrumResult", self._summary())
+
+    def __eq__(self, other: object) -> bool:
+        if type(other) is not type(self):
+            return NotImplemented
+        return (self.histogram == other.histogram
+                and self.config.to_dict() == other.config.to_dict()
+                and _plain(self.input) == _plain(other.input))
+
+    __hash__ = None  # type: ignore[assignment]
+
+    @property
+    def peaksift_version(self) -> str:
+        from .. import __version__
+
+        return __version__
+
+    @property
+    def blinding(self) -> dict[str, Any]:
+        """As results.json's ``blinding`` (``peaksift spectrum`` always hides the window)."""
+        from .common import _blinding
+
+        return _blinding(self.config, unblind=False)
+
+    @property
+    def input(self) -> dict[str, Any]:
+        """Files, events read and selected, candidates, cut flow (as results.json's)."""
+        if self.collected is None:
+            return _plain(dict(self.input_record or {}))
+        return _input_record(self.collected, self.histogram, self.config, self.blinding)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The spectrum's record: config, input counts, the histogram (``spectrum.json``'s
+        MassHistogram format, blinded bins emptied) and the blinding."""
+        out = {"peaksift_version": self.peaksift_version, "kind": "spectrum",
+               "config": self.config.to_dict(), "input": self.input,
+               "histogram": self.histogram.to_dict(), "blinding": self.blinding}
+        if self.outdir is not None:
+            out["outputs"] = {"dir": str(self.outdir),
+                              "files": {k: Path(v).name for k, v in self.files.items()}}
+        return out
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> SpectrumResult:
+        """The SpectrumResult :meth:`to_dict` wrote (without the event-level data)."""
+        from ..config import load_config
+        from ..errors import InputError
+        from ..histogram import MassHistogram
+
+        try:
+            outs = d.get("outputs") or {}
+            outdir = Path(outs["dir"]) if outs.get("dir") else None
+            return cls(config=load_config(dict(d["config"])),
+                       histogram=MassHistogram.from_dict(dict(d["histogram"])), collected=None,
+                       outdir=outdir, input_record=dict(d.get("input") or {}),
+                       files={k: outdir / ("" if k.endswith(".json") else "figures") / v
+                              for k, v in (outs.get("files") or {}).items()}
+                       if outdir is not None else {})
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"not a spectrum record written by SpectrumResult.to_dict: "
+                             f"{exc!r}") from None
+
+    def plot(self, path: Any = None, *, log: bool = False) -> Any:
+        """The spectrum figure (``peaksift spectrum``'s, blinded bins hidden) as a matplotlib
+        Figure drawn without pyplot, with the run label and the pair's mass symbol; saved to
+        ``path`` when given."""
+        from .. import plotting
+
+        fig = plotting.spectrum_figure(self.histogram, log=log, labels=plotting.figure_labels(
+            self.config), blind=self.blinding["window"] if self.blinding["active"] else None)
+        if path is not None:
+            fig.savefig(path)
+        return fig
 
 
 @dataclass(frozen=True, repr=False)
@@ -198,7 +277,8 @@ class SearchResult:
                 fit=FitResult.from_dict(fit) if fit.get("shapes") else None,
                 scan=ScanResult.from_dict(d["scan"]), best=dict(d["best"]),
                 limits=LimitResult.from_dict(d["limits"]) if d.get("limits") else None,
-                known_matches=tuple(KnownMatch(**k) for k in d.get("known_matches") or ()),
+                known_matches=tuple(KnownMatch.from_dict(k)
+                                    for k in d.get("known_matches") or ()),
                 calibration=d.get("calibration"), provenance=dict(d.get("provenance") or {}),
                 blinding=dict(d.get("blinding") or {}),
                 outdir=Path(outs["dir"]) if outs.get("dir") else None,
@@ -216,20 +296,40 @@ class SearchResult:
         """The results.json ``input``: from the collected data, or as recorded."""
         if self.collected is None:  # read back with from_dict
             return _plain(dict(self.input_record or {}))
-        col = self.collected
-        cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
-        return {
-            "files": list(col.files_read),
-            "files_skipped": [s.to_dict() for s in col.files_skipped],
-            "events_read": int(col.events_read),
-            "events_selected": _events_selected(cutflow),
-            "candidates": _in_window(col, self.config, _hidden(self.blinding)),
-            "candidates_all_masses": int(col.candidates),
-            "sum_of_weights": float(self.histogram.total()),
-            "cutflow": cutflow,
-            "requirements": {str(k): int(v) for k, v in
-                             dict(getattr(col, "requirements", {}) or {}).items()},
-        }
+        return _input_record(self.collected, self.histogram, self.config, self.blinding)
+
+    # ------------------------------------------------------------------------ figures
+    def plot(self, path: Any = None, *, which: str = "spectrum", log: bool = False) -> Any:
+        """One figure of the search as a matplotlib Figure, drawn without pyplot (the
+        user's backend is left alone) exactly as the run writes it: ``which`` is
+        ``"spectrum"`` (the fit with pulls and numbers; while blinded the sideband fit),
+        ``"pvalue_scan"``, ``"limits"``, ``"candidates"`` or ``"background_envelope"``.
+        Saved to ``path`` when given.  A result read back with :meth:`from_dict` has no
+        event-level data: its blinded spectrum is the sideband fit's own figure and it has
+        no candidates figure."""
+        from .. import plotting
+        from ..errors import InputError, closest
+
+        names = [n for n in plotting.SEARCH_FIGURES if n != "calibration"]
+        if which not in names:
+            hint = closest(which, names)
+            raise InputError(f"SearchResult.plot: no figure {which!r}"
+                             + (f"; did you mean {hint!r}?" if hint else "")
+                             + f" (figures: {', '.join(names)})")
+        labels = plotting.figure_labels(self.config)
+        if which == "spectrum" and self.fit is None and self.histogram is None:
+            fig = self.background_fit.plot(run=labels.run, symbol=labels.symbol, log=log)
+        else:
+            fig = plotting.search_figure(self, which, labels=labels, log=log)
+        if fig is None:
+            why = ("no event-level data (read back from results.json)"
+                   if which == "candidates" and self.collected is None else
+                   "blinded (it shows the blinded window)" if which == "candidates" else
+                   "no results for it")
+            raise InputError(f"SearchResult.plot: this result has no {which!r} figure: {why}")
+        if path is not None:
+            fig.savefig(path)
+        return fig
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""
@@ -273,6 +373,26 @@ class SearchResult:
             out["outputs"] = {"dir": str(self.outdir),
                               "figures": {k: Path(v).name for k, v in self.figures.items()}}
         return out
+
+
+def _input_record(col: Any, hist: Any, cfg: Config, blinding: Mapping[str, Any]
+                  ) -> dict[str, Any]:
+    """The results.json ``input`` from the collected data: files, events read and
+    selected, candidates in the window (the sidebands' while blinded), the cut flow and
+    the per-requirement counts."""
+    cutflow = {str(k): int(v) for k, v in dict(col.cutflow).items()}
+    return {
+        "files": list(col.files_read),
+        "files_skipped": [s.to_dict() for s in col.files_skipped],
+        "events_read": int(col.events_read),
+        "events_selected": _events_selected(cutflow),
+        "candidates": _in_window(col, cfg, _hidden(blinding)),
+        "candidates_all_masses": int(col.candidates),
+        "sum_of_weights": float(hist.total()),
+        "cutflow": cutflow,
+        "requirements": {str(k): int(v) for k, v in
+                         dict(getattr(col, "requirements", {}) or {}).items()},
+    }
 
 
 def _is_sideband(fr: Any) -> bool:

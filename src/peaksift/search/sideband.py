@@ -68,6 +68,31 @@ class SidebandFit(FrozenValue):
                 f"blinded bins; chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
                 f"p = {self.gof_p_value:.3g}{'' if self.valid else '; NOT VALID'})")
 
+    def plot(self, path: Any = None, *, run: Any = None, symbol: str | None = None,
+             note: str | None = None, log: bool = False) -> Any:
+        """The sidebands' data (the blinded bins hidden and hatched), the background fitted
+        to them (dashed where extrapolated under the blinded window) and the pulls beneath,
+        as a matplotlib Figure drawn without pyplot (the user's backend is left alone).
+        ``run``: the run label; ``symbol``: the pair's mass symbol (mathtext); ``note``:
+        the line above the axes (default: the background expected in the blinded bins);
+        saved to ``path`` when given.  The data's error bars are sqrt(n) (the fit keeps the
+        counts, not the variances of a weighted spectrum)."""
+        from .. import plotting
+        from ..histogram import MassHistogram
+
+        h = MassHistogram(self.edges, unit=self.unit)
+        h.weight_sum = np.nan_to_num(np.asarray(self.observed, float))
+        h.weight_sq_sum = h.weight_sum.copy()
+        if note is None:
+            note = (f"blinded {self.blind[0]:g}-{self.blind[1]:g} {self.unit}: "
+                    f"{self.blinded_yield} background events expected inside")
+        fig = plotting.spectrum_figure(h, log=log, blind=self.blind, title=note,
+                                       labels=plotting.FigureLabels(run, symbol or "m"),
+                                       background=self)
+        if path is not None:
+            fig.savefig(path)
+        return fig
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready, every key the attribute of the same name (``kind`` says what it is)."""
         from .._json import plain

@@ -144,11 +144,20 @@ class ExpPoly(_Background):
             return None
         from .compiled import exponential_rows
 
+        _, t, dt, _, _ = self.row_inputs(edges, window)
+        return _rows(lambda f, g: exponential_rows(t, dt, p, f, g), p.size, t.size - 1, grad)
+
+    def row_inputs(self, edges: Any, window: tuple[float, float]) -> tuple | None:
+        """``("exponential", t, dt, 0, 0)``: the clipped edges in the window-scaled variable
+        and the bin widths in it, the inputs of :func:`.compiled.exponential_rows` for
+        stacked slopes (None for order > 1 or edges that are not 1-d)."""
+        if self.order != 1 or np.ndim(edges) != 1:
+            return None
         lo, hi = float(window[0]), float(window[1])
         x = np.clip(np.asarray(edges, dtype=float), lo, hi)
         t = (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo))
         dt = np.diff(x) * (2.0 / (hi - lo))
-        return _rows(lambda f, g: exponential_rows(t, dt, p, f, g), p.size, x.size - 1, grad)
+        return "exponential", t, dt, 0.0, 0.0
 
     def bin_fractions(self, edges, params, window):
         out = self._stacked_rows(edges, params, window, False)
@@ -342,17 +351,26 @@ class PowerLaw(_Background):
     def _stacked_rows(self, edges, params, window, grad: bool):
         """Stacked parameters ``(B, 1)``: the compiled rows of :mod:`.compiled` (one
         exponential per edge and row instead of a logarithm and ``exprel``)."""
-        lo, hi = float(window[0]), float(window[1])
+        lo = float(window[0])
         p = _stacked(params, edges) if lo > 0 else None
         if p is None:
             return None
         from .compiled import powerlaw_rows
 
-        c = 0.5 * (lo + hi)
-        lx, dlx = self._edge_logs(edges, lo, hi, c)
-        l_lo, l_hi = math.log(lo / c), math.log(hi / c)
+        _, lx, dlx, l_lo, l_hi = self.row_inputs(edges, window)
         return _rows(lambda f, g: powerlaw_rows(lx, dlx, p, l_lo, l_hi, f, g), p.size,
                      lx.size - 1, grad)
+
+    def row_inputs(self, edges: Any, window: tuple[float, float]) -> tuple | None:
+        """``("powerlaw", ln(x/c), ln(x_{i+1}/x_i), ln(lo/c), ln(hi/c))`` of the clipped
+        edges (c the window's centre), the inputs of :func:`.compiled.powerlaw_rows` for
+        stacked powers (None for a window reaching 0 or edges that are not 1-d)."""
+        lo, hi = float(window[0]), float(window[1])
+        if not lo > 0 or np.ndim(edges) != 1:
+            return None
+        c = 0.5 * (lo + hi)
+        lx, dlx = self._edge_logs(edges, lo, hi, c)
+        return "powerlaw", lx, dlx, math.log(lo / c), math.log(hi / c)
 
     def bin_fractions(self, edges, params, window):
         out = self._stacked_rows(edges, params, window, False)

@@ -10,6 +10,10 @@ What is here and who uses it
   row (the scan's and the toys' background, through ``PowerLaw`` / ``ExpPoly``).
 * ``gaussian_rows`` -- bin fractions of a Gaussian at many trial masses (the free fit's
   coarse scan of the window for starting masses, :mod:`peaksift.likelihood.starts`).
+* ``crystalball_primitive``, ``crystalball_density`` -- one parameter set: the Crystal
+  Ball's primitive and its density at every edge or mass, each with its derivatives in the
+  six parameters (``CrystalBall.fractions_and_grad`` / ``pdf_and_grad``, the free fit's
+  binned and unbinned hot paths).
 
 The formulae are those of the shapes' numpy fast paths (``fractions_and_grad`` in
 :mod:`.signal` and :mod:`.background`), which stay the reference; a kernel returns False
@@ -24,8 +28,9 @@ import math
 
 from numba import njit
 
-__all__ = ["exponential_edges", "exponential_rows", "gaussian_edges", "gaussian_rows",
-           "powerlaw_edges", "powerlaw_rows"]
+__all__ = ["crystalball_density", "crystalball_primitive", "exponential_edges",
+           "exponential_rows", "gaussian_edges", "gaussian_rows", "powerlaw_edges",
+           "powerlaw_rows"]
 
 _INV_SQRT2PI = 1.0 / math.sqrt(2.0 * math.pi)
 _SQRT1_2 = 1.0 / math.sqrt(2.0)
@@ -232,3 +237,95 @@ def exponential_rows(t, dt, bs, frac, grad):  # pragma: no cover - compiled
                     grad[r, i - 1] = db - d_prev
                 d_prev = db
     return True
+
+
+# ------------------------------------------------------------------ Crystal Ball
+# The formulae of CrystalBall._tail_grads, _edge_grads, _primitive(_grad) and
+# _density(_grad) in :mod:`.signal` (the numpy reference), one mass at a time.
+_SQRT2PI = math.sqrt(2.0 * math.pi)
+
+
+@njit(cache=True, nogil=True)
+def _cb_tail(t, a, n):  # pragma: no cover - compiled
+    """One tail at outward distance ``t``: (L, q + t, dlnL/da, dlnL/dn, P, dP/da, dP/dn)."""
+    q = n / a
+    qt = max(q + t, 1e-300)
+    r = q / qt
+    lr = math.log(r)
+    lv = math.exp(n * lr - 0.5 * a * a)
+    dl_a = -n / a + n * (n / (a * a) + 1.0) / qt - a
+    dl_n = lr + 1.0 - r
+    pv = lv * qt / (n - 1.0)
+    dp_a = lv * (dl_a * qt - n / (a * a) - 1.0) / (n - 1.0)
+    dp_n = lv * (dl_n * qt + 1.0 / a) / (n - 1.0) - pv / (n - 1.0)
+    return lv, qt, dl_a, dl_n, pv, dp_a, dp_n
+
+
+@njit(cache=True, nogil=True)
+def crystalball_primitive(x, m, s, al, nl, ah, nh, out):  # pragma: no cover - compiled
+    """Rows of ``out (7, x.size)``: the Crystal Ball's primitive in units of z (as
+    ``CrystalBall._primitive``) and its derivatives in m, sigma, alpha_low, n_low,
+    alpha_high, n_high (as ``_primitive_grad``)."""
+    el, eh = math.exp(-0.5 * al * al), math.exp(-0.5 * ah * ah)
+    ql, qh = nl / al, nh / ah
+    pl0 = el * ql / (nl - 1.0)
+    th0 = eh * qh / (nh - 1.0)
+    ndtr_lo = 0.5 * math.erfc(al * _SQRT1_2)  # Phi(-alpha_low)
+    total_core = pl0 + _SQRT2PI * (0.5 * math.erfc(-ah * _SQRT1_2) - ndtr_lo)
+    e0a = el * (-al * ql - nl / (al * al)) / (nl - 1.0)
+    e0n = el * (1.0 / (al * (nl - 1.0)) - ql / (nl - 1.0) ** 2)
+    e1a = eh * (-ah * qh - nh / (ah * ah)) / (nh - 1.0)
+    e1n = eh * (1.0 / (ah * (nh - 1.0)) - qh / (nh - 1.0) ** 2)
+    for i in range(x.size):
+        z = (x[i] - m) / s
+        if z < -al:
+            lv, _, _, _, pv, pa, pn = _cb_tail(-z - al, al, nl)
+            out[0, i] = pv
+            dens, g_al, g_nl, g_ah, g_nh = lv, pa, pn, 0.0, 0.0
+        elif z > ah:
+            lv, _, _, _, pv, pa, pn = _cb_tail(z - ah, ah, nh)
+            out[0, i] = total_core + th0 - pv
+            dens, g_al, g_nl, g_ah, g_nh = lv, e0a + el, e0n, eh + e1a - pa, e1n - pn
+        else:
+            out[0, i] = pl0 + _SQRT2PI * (0.5 * math.erfc(-z * _SQRT1_2) - ndtr_lo)
+            dens, g_al, g_nl, g_ah, g_nh = math.exp(-0.5 * z * z), e0a + el, e0n, 0.0, 0.0
+        out[1, i] = -dens / s
+        out[2, i] = -dens * z / s
+        out[3, i] = g_al
+        out[4, i] = g_nl
+        out[5, i] = g_ah
+        out[6, i] = g_nh
+
+
+@njit(cache=True, nogil=True)
+def crystalball_density(x, m, s, al, nl, ah, nh, out):  # pragma: no cover - compiled
+    """Rows of ``out (7, x.size)``: the unnormalised density (as ``CrystalBall._density``)
+    and its derivatives in the six parameters (as ``_density_grad``)."""
+    for i in range(x.size):
+        z = (x[i] - m) / s
+        g_al = g_nl = g_ah = g_nh = 0.0
+        if z < -al:
+            lv, qt, la, ln, _, _, _ = _cb_tail(-z - al, al, nl)
+            d = lv / s
+            k = nl / qt
+            g_m = -d * k / s
+            g_s = d * (-z * k - 1.0) / s
+            g_al, g_nl = d * la, d * ln
+        elif z > ah:
+            lv, qt, la, ln, _, _, _ = _cb_tail(z - ah, ah, nh)
+            d = lv / s
+            k = nh / qt
+            g_m = d * k / s
+            g_s = d * (z * k - 1.0) / s
+            g_ah, g_nh = d * la, d * ln
+        else:
+            d = math.exp(-0.5 * z * z) / s
+            g_m = d * z / s
+            g_s = d * (z * z - 1.0) / s
+        out[0, i] = d
+        out[1, i] = g_m
+        out[2, i] = g_s
+        out[3, i] = g_al
+        out[4, i] = g_nl
+        out[5, i] = g_ah
+        out[6, i] = g_nh

@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from ._base import Parameter, Shape
+from ._base import Parameter, Shape, as_window
 
 __all__ = ["BreitWigner", "CrystalBall", "Gaussian", "Voigt"]
 
@@ -340,6 +340,43 @@ class CrystalBall(_Signal):
         g_nh = np.where(right, e1n - phn, zero)
         return [g_m, g_s, g_al + zero, g_nl + zero, g_ah, g_nh]
 
+    def _compiled_rows(self, kernel, x, p):
+        """Rows of a compiled kernel of :mod:`.compiled` at ``x`` for scalar parameters."""
+        from . import compiled
+
+        x = np.ascontiguousarray(x, dtype=float)
+        out = np.empty((7, x.size))
+        getattr(compiled, kernel)(x, *(float(v) for v in p), out)
+        return out
+
+    def fractions_and_grad(self, edges, params, window, need=None):
+        # one parameter set (the free fit's hot path): the compiled primitive, ~15x faster
+        # than the numpy path it follows, which stays for stacked parameters
+        p = self._params(params, len(self.parameters), self.name)
+        if any(np.ndim(v) for v in p) or np.ndim(edges) != 1:
+            return super().fractions_and_grad(edges, params, window, need)
+        lo, hi = as_window(window)
+        ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
+        rows = self._compiled_rows("crystalball_primitive",
+                                   np.clip(np.asarray(edges, float), lo, hi), p)
+        inv = 1.0 / (ends[0, 1] - ends[0, 0])
+        c = (rows[0] - ends[0, 0]) * inv
+        grad = np.diff((rows[1:] - ends[1:, :1]) * inv
+                       - c * ((ends[1:, 1:] - ends[1:, :1]) * inv), axis=-1)
+        return np.maximum(np.diff(c), 0.0), grad
+
+    def pdf_and_grad(self, x, params, window, need=None):
+        p = self._params(params, len(self.parameters), self.name)
+        if any(np.ndim(v) for v in p) or np.ndim(x) != 1:
+            return super().pdf_and_grad(x, params, window, need)
+        lo, hi = as_window(window)
+        ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
+        dens = self._compiled_rows("crystalball_density", x, p)
+        z = ends[0, 1] - ends[0, 0]
+        gz = ends[1:, 1] - ends[1:, 0]
+        pdf = dens[0] / z
+        return pdf, dens[1:] / z - pdf * (gz / z)[:, None]
+
     def fwhm(self, params):
         return self._fwhm_numeric(params)
 
@@ -406,6 +443,34 @@ class Voigt(_Signal):
     def _density(self, x, p, window):
         m, s, g = p
         return special.voigt_profile(x - m, s, 0.5 * g)
+
+    @staticmethod
+    def _faddeeva(x, p):
+        """``W = w(z) / (sigma sqrt(2 pi))`` at ``z = (x - m + i gamma) / (sigma sqrt 2)``
+        (Re W is the profile), ``W1 = dW/dx`` and ``z``; ``w`` is ``scipy.special.wofz``."""
+        m, s, g = p
+        z = (np.asarray(x, float) - m + 0.5j * g) / (s * math.sqrt(2.0))
+        w = special.wofz(z)
+        c = 1.0 / (s * _SQRT2PI)
+        dw = -2.0 * z * w + 2j / math.sqrt(math.pi)  # w'(z)
+        return c * w, c * dw / (s * math.sqrt(2.0)), z, w, dw
+
+    def _primitive_grad(self, x, p, window):
+        # closed form at every x, only the primitive itself is numerical: the profile is a
+        # function of x - m (d/dm = -V); the Gaussian's width obeys the heat equation,
+        # dV/dsigma = sigma d2V/dx2, so d/dsigma of the integral is sigma V'; Re w and Im w
+        # are conjugate harmonic, dV/dgamma = -d(Im W)/dx, so d/dgamma of the integral is
+        # -Im W; gamma = width / 2
+        big_w, w1, _, _, _ = self._faddeeva(x, p)
+        s = p[1]
+        return [-big_w.real, s * w1.real, -0.5 * big_w.imag]
+
+    def _density_grad(self, x, p, window):
+        _, w1, z, w, dw = self._faddeeva(x, p)
+        s = p[1]
+        d2w = -2.0 * w - 2.0 * z * dw  # w''(z)
+        w2 = d2w / (s * _SQRT2PI * 2.0 * s * s)  # d2W/dx2
+        return [-w1.real, s * w2.real, -0.5 * w1.imag]
 
     def _panels(self, p, window):
         lo, hi = window

@@ -37,6 +37,7 @@ Goodness of fit: the Baker-Cousins likelihood-ratio chi-square (Baker and Cousin
 from __future__ import annotations
 
 import itertools
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -155,7 +156,26 @@ class BackgroundCandidate(FrozenValue):
                 f"{self.n_parameters} parameters, GOF p {self.gof_p_value:.3g})")
 
     def to_dict(self) -> dict[str, Any]:
+        """JSON-ready, every key the attribute of the same name."""
         return plain({f: getattr(self, f) for f in self.__dataclass_fields__})
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> BackgroundCandidate:
+        """The candidate :meth:`to_dict` wrote (a non-finite number comes back as NaN)."""
+        try:
+            num = {k: math.nan if d[k] is None else float(d[k])
+                   for k in ("nll", "chi2", "gof_p_value", "background_yield")}
+            opt = {k: None if d.get(k) is None else float(d[k])
+                   for k in ("order_statistic", "order_p_value")}
+            return cls(label=str(d["label"]), family=str(d["family"]), order=int(d["order"]),
+                       n_parameters=int(d["n_parameters"]), ndf=int(d["ndf"]),
+                       parameters={k: math.nan if v is None else float(v)
+                                   for k, v in dict(d["parameters"]).items()},
+                       chosen=bool(d.get("chosen", False)), note=str(d.get("note", "")),
+                       **num, **opt)
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FitError(f"not a background candidate written by BackgroundCandidate."
+                           f"to_dict: {exc!r}") from None
 
 
 @dataclass(frozen=True, repr=False, eq=False)
@@ -203,10 +223,24 @@ class BackgroundChoice(FrozenValue):
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> BackgroundChoice:
-        cands = tuple(BackgroundCandidate(**c) for c in d["candidates"])
-        return cls(cands, float(d["size"]), tuple(d["window"]),
-                   None if d["blind"] is None else tuple(d["blind"]), int(d["n_bins"]),
-                   str(d["test"]))
+        """The choice :meth:`to_dict` wrote."""
+        try:
+            cands = tuple(BackgroundCandidate.from_dict(c) for c in d["candidates"])
+            return cls(cands, float(d["size"]), tuple(float(v) for v in d["window"]),
+                       None if d["blind"] is None else tuple(float(v) for v in d["blind"]),
+                       int(d["n_bins"]), str(d["test"]))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FitError(f"not a background choice written by BackgroundChoice.to_dict: "
+                           f"{exc!r}") from None
+
+    def plot(self, path: Any = None, *, run: Any = None) -> Any:
+        """Each candidate's goodness of fit and the order test between consecutive
+        orders, as a matplotlib Figure drawn without pyplot (the user's backend is left
+        alone); ``run``: the run label; saved to ``path`` when given.  See
+        :func:`peaksift.stats.result_figures.background_choice_figure`."""
+        from .result_figures import background_choice_figure
+
+        return background_choice_figure(self, path, run=run)
 
 
 # --------------------------------------------------------------- fitting

@@ -20,8 +20,9 @@ first term is :math:`\sum_c \min_{f_c} [2\mathrm{NLL}^{(0)}_{c,f_c} + a_c N_{c,f
 
 The scan and the toys of the global significance (:func:`envelope_toy_scans`: every channel
 generated from the function its envelope takes at mu = 0, every assignment fitted) are
-profiled this way; the combination's limits use each channel's configured function (said
-in the results).
+profiled this way, and so are the asymptotic combined limits
+(:func:`peaksift.stats.channel_limits.combined_limits`, with :func:`channel_candidates` and
+:func:`null_choice`; their toy limits generate and fit the function at mu = 0).
 """
 
 from __future__ import annotations
@@ -38,7 +39,8 @@ from .joint import profile_joint
 from .joint_start import joint_start
 from .toys import profile_signal
 
-__all__ = ["envelope_of_channels", "envelope_toy_scans", "run_envelope_toy_scans"]
+__all__ = ["channel_candidates", "envelope_of_channels", "envelope_toy_scans", "null_choice",
+           "run_envelope_toy_scans"]
 
 
 def _candidates(ch: Any) -> list[tuple[str, Any, int]]:
@@ -57,6 +59,43 @@ def _candidates(ch: Any) -> list[tuple[str, Any, int]]:
     return out
 
 
+def channel_candidates(chans: list, prepared: list, prepare: Any) -> tuple:
+    """Each channel's candidate functions prepared on the combination's masses: ``(triples,
+    labels, counts, penalties)`` -- per channel the ``(model, spectrum, info)`` of each
+    candidate (its own ``prepared`` entry when it has none), their labels (``""`` for the
+    configured function), free-parameter counts and the channel's penalty per parameter.
+    ``prepare(channel)`` prepares a channel with another background."""
+    triples, labels, counts, penalties = [], [], [], []
+    for c, ch in enumerate(chans):
+        cands = _candidates(ch)
+        pen = float(ch.background_penalty)
+        if not (np.isfinite(pen) and pen >= 0):
+            raise FitError(f"channel {ch.name!r}: background_penalty must be >= 0, got "
+                           f"{ch.background_penalty!r}")
+        mine = []
+        for label, shape, _ in cands:
+            if not ch.background_candidates:
+                mine.append(prepared[c])
+                continue
+            trip = prepare(dataclasses.replace(ch, background=shape))
+            if trip[0].used.size != prepared[c][0].used.size:
+                raise FitError(f"channel {ch.name!r}: background candidate {label} sees "
+                               "different bins than the channel's function")
+            mine.append(trip)
+        triples.append(mine)
+        labels.append(tuple(lab for lab, _, _ in cands))
+        counts.append(np.array([n for _, _, n in cands], float))
+        penalties.append(pen)
+    return triples, labels, counts, penalties
+
+
+def null_choice(models: list, counts: list, penalties: list) -> list[int]:
+    """Per channel the candidate of the best penalised background-only fit to its data
+    (the envelope at mu = 0: the channels are independent there)."""
+    return [int(np.argmin([2.0 * m.nll_background + a * n for m, n in zip(ms, cnt)]))
+            for ms, cnt, a in zip(models, counts, penalties)]
+
+
 def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
                          conv: list[np.ndarray], bl: np.ndarray, norms: Any,
                          prepare: Any) -> dict[str, Any] | None:
@@ -72,39 +111,25 @@ def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
     each mass) and ``null_choice`` (at mu = 0)."""
     if not any(ch.background_candidates for ch in chans):
         return None
+    triples, labels, counts, penalties = channel_candidates(chans, prepared, prepare)
     per: list[list[tuple[Any, dict]]] = []
-    labels, counts, penalties = [], [], []
     for c, ch in enumerate(chans):
-        cands = _candidates(ch)
-        pen = float(ch.background_penalty)
-        if not (np.isfinite(pen) and pen >= 0):
-            raise FitError(f"channel {ch.name!r}: background_penalty must be >= 0, got "
-                           f"{ch.background_penalty!r}")
         models = []
-        for label, shape, _ in cands:
+        for model, _, _ in triples[c]:
             if not ch.background_candidates:
-                models.append((prepared[c][0], fits[c]))
+                models.append((model, fits[c]))
                 continue
-            model = prepare(dataclasses.replace(ch, background=shape))[0]
-            if model.used.size != prepared[c][0].used.size:
-                raise FitError(f"channel {ch.name!r}: background candidate {label} sees "
-                               "different bins than the channel's function")
             mb = model.masses.size
             fit = profile_signal(model, model.counts, model.fractions,
                                  theta_start=np.repeat(model.theta[None, :], mb, axis=0),
                                  b_start=np.full(mb, model.bkg_yield), steps=100)
             models.append((model, fit))
         per.append(models)
-        labels.append(tuple(lab for lab, _, _ in cands))
-        counts.append(np.array([n for _, _, n in cands], float))
-        penalties.append(pen)
     k = [np.asarray(x)[~bl] for x in conv]
     # the null: each channel's best penalised background-only fit, independently
     null0 = sum(min(2.0 * m.nll_background + a * n for (m, _), n in zip(models, cnt))
                 for models, cnt, a in zip(per, counts, penalties))
-    null_choice = [int(np.argmin([2.0 * m.nll_background + a * n
-                                  for (m, _), n in zip(models, cnt)]))
-                   for models, cnt, a in zip(per, counts, penalties)]
+    nulls = null_choice([[m for m, _ in models] for models in per], counts, penalties)
     best = None
     for combo in itertools.product(*[range(len(p)) for p in per]):
         models = [per[c][f][0] for c, f in enumerate(combo)]
@@ -133,12 +158,12 @@ def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
     assert best is not None
     out = {"q0": np.maximum(null0 - best["two_nll"], 0.0), "mu": best["mu"],
             "mu_error": best["mu_error"], "converged": best["converged"],
-            "nuisances": best["nuisances"], "labels": labels, "chosen": best["chosen"], "null_choice": null_choice,
+            "nuisances": best["nuisances"], "labels": labels, "chosen": best["chosen"], "null_choice": nulls,
             "penalties": penalties, "n_parameters": [tuple(int(v) for v in c) for c in counts]}
     out["entry"] = _entry(chans, out, bl)
     out["toy_models"] = (tuple(tuple(m for m, _ in models) for models in per),
                          tuple(tuple(float(v) for v in c) for c in counts),
-                         tuple(penalties), tuple(null_choice))
+                         tuple(penalties), tuple(nulls))
     return out
 
 

@@ -4,11 +4,16 @@
   with every channel's background and the normalisation nuisances (luminosity,
   efficiency: :func:`peaksift.stats.channels.signal_norms`) profiled; sigma from the
   background-only Asimov data of every channel (eq. 32); the expected bands from
-  :func:`~peaksift.stats.limits.expected_band_factor`;
+  :func:`~peaksift.stats.limits.expected_band_factor`.  A channel's
+  ``background_candidates`` are profiled as a discrete choice, as in the combined scan
+  (:mod:`peaksift.stats.channel_envelope`; Dauncey, Kenzie, Wardle, Davies, JINST 10 (2015)
+  P04015): every ``2 NLL`` above is the minimum over the assignments of one function per
+  channel of ``2 NLL + sum_c a_c N_c``, and the Asimov data of a channel come from the
+  function its envelope takes at mu = 0 on the data;
 * toys (Read, J. Phys. G 28 (2002) 2693) where the summed background under the signal is
   below ``low_count_background`` events and ``method="auto"`` (or at ``toy_masses`` with
   ``method="toys"``): :func:`peaksift.stats.channel_toys.joint_toy_limit`, the toys
-  generating every channel;
+  generating every channel (with its envelope's function at mu = 0, not profiled);
 * each channel's own limits from :func:`peaksift.upper_limits` with its luminosity,
   efficiency and their uncertainties (same ``method``).
 
@@ -18,6 +23,7 @@ Returns :class:`CombinedLimits` (``to_dict()``).
 from __future__ import annotations
 
 import dataclasses
+import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -27,8 +33,9 @@ import numpy as np
 from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
+from .channel_envelope import channel_candidates, null_choice
 from .channel_toys import run_joint_toy_limit
-from .channels import Channel, _full_model, _prepare_all, signal_norms
+from .channels import Channel, _full_model, _prepare, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .joint import profile_joint
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
@@ -58,6 +65,9 @@ class CombinedLimits(FrozenValue):
     method: str = "asymptotic"
     nuisances: tuple[str, ...] = ()
     toys: Any = None                 # per toy mass: grid, CLs, number of toys
+    #: per channel with background candidates: the functions profiled, their penalty and
+    #: free parameters, and the one the Asimov data and the toys take (None: no envelope)
+    envelope: Any = None
 
     # the band edges under the names LimitResult (and results.json) give them
     @property
@@ -90,6 +100,16 @@ class CombinedLimits(FrozenValue):
             rows.append(("observed", f"{np.nanmin(obs):.3g}-{np.nanmax(obs):.3g}"))
         return rows
 
+    def plot(self, path: Any = None, *, run: Any = None, symbol: str | None = None,
+             log: bool = True) -> Any:
+        """The combined limits with their bands and each channel's expected limit, as a
+        matplotlib Figure drawn without pyplot (the user's backend is left alone); ``run``:
+        the run label, ``symbol``: the pair's mass symbol (mathtext); saved to ``path``
+        when given.  See :func:`peaksift.stats.result_figures.combined_limits_figure`."""
+        from .result_figures import combined_limits_figure
+
+        return combined_limits_figure(self, path, run=run, symbol=symbol, log=log)
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready, every key an attribute of the same name (``channels``: each
         channel's :meth:`LimitResult.to_dict`)."""
@@ -100,7 +120,8 @@ class CombinedLimits(FrozenValue):
             "unit": self.unit, "method": self.method, "methods": list(self.methods),
             "nuisances": list(self.nuisances), "toys": self.toys or {},
             "flags": list(self.flags), "notes": list(self.notes),
-            "channels": {n: r.to_dict() for n, r in self.channels.items()}})
+            "channels": {n: r.to_dict() for n, r in self.channels.items()},
+            "envelope": self.envelope})
 
     @classmethod
     def from_dict(cls, d: Any) -> CombinedLimits:
@@ -125,28 +146,70 @@ class CombinedLimits(FrozenValue):
                        methods=tuple(c.get("methods") or ()),
                        method=str(c.get("method", "asymptotic")),
                        nuisances=tuple(c.get("nuisances") or ()),
-                       toys=dict(c.get("toys") or {}))
+                       toys=dict(c.get("toys") or {}), envelope=d.get("envelope"))
         except (KeyError, TypeError, ValueError) as exc:
             raise FitError(f"not combined limits written by CombinedLimits.to_dict: {exc!r}"
                            ) from None
 
 
 class _Profiled:
-    """The joint NLL at fixed sigma x B for a stack of problems, with warm starts."""
+    """The joint NLL at fixed sigma x B for a stack of problems, with warm starts.
+
+    A warm start from a far-away sigma x B (a root search's first bracket) can leave a
+    flexible background (a Bernstein polynomial with a coefficient at 0) where the fit
+    does not recover: a fit that ends above the NLL of the background-only fits' point at
+    this sigma x B is redone from there (never the case otherwise)."""
 
     def __init__(self, models, counts, fractions, conv, norms=None, shapes=None) -> None:
         self.models, self.counts, self.fractions, self.conv = models, counts, fractions, conv
         self.norms, self.nu, self.shapes = norms, None, shapes
-        self.theta = [np.repeat(m.theta[None, :], fractions[0].shape[0], axis=0)
-                      for m in models]
-        self.b = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
+        self.theta0 = [np.repeat(m.theta[None, :], fractions[0].shape[0], axis=0)
+                       for m in models]
+        self.b0 = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
+        self.theta, self.b = self.theta0, self.b0
+
+    def _fit(self, mu: np.ndarray, theta: list, b: list, nu: Any, steps: int = 60) -> dict:
+        return profile_joint(self.models, self.counts, self.fractions, self.conv,
+                             mu_fixed=mu, theta_start=theta, b_start=b, norms=self.norms,
+                             nu_start=nu, shapes=self.shapes, steps=steps)
 
     def nll(self, mu: np.ndarray) -> np.ndarray:
-        r = profile_joint(self.models, self.counts, self.fractions, self.conv, mu_fixed=mu,
-                          theta_start=self.theta, b_start=self.b, norms=self.norms,
-                          nu_start=self.nu, shapes=self.shapes)
+        r = self._fit(mu, self.theta, self.b, self.nu)
+        cold = self._fit(mu, self.theta0, self.b0, None, steps=0)["nll"]
+        bad = ~(r["nll"] <= cold) & np.isfinite(cold)
+        if bad.any():
+            r2 = self._fit(mu, self.theta0, self.b0, None)
+            better = bad & (r2["nll"] < r["nll"])
+            for key in ("theta", "b"):
+                r[key] = [np.where(better.reshape((-1,) + (1,) * (v.ndim - 1)), v2, v)
+                          for v, v2 in zip(r[key], r2[key])]
+            r["nu"] = np.where(better[:, None], r2["nu"], r["nu"])
+            r["nll"] = np.where(better, r2["nll"], r["nll"])
         self.theta, self.b, self.nu = r["theta"], r["b"], r["nu"]
         return r["nll"]
+
+
+class _Envelope:
+    """Twice the joint NLL at fixed sigma x B profiled over the channels' background
+    functions: the minimum over the assignments (one :class:`_Profiled` each) of ``2 NLL +
+    penalty`` (Dauncey et al. 2015); with one assignment and no penalty exactly ``2 NLL``."""
+
+    def __init__(self, problems: list, penalties: list) -> None:
+        self.problems, self.penalties = problems, penalties
+
+    def two_nll(self, mu: np.ndarray) -> np.ndarray:
+        out = None
+        for prob, pen in zip(self.problems, self.penalties):
+            v = 2.0 * prob.nll(mu) + pen
+            out = v if out is None else np.minimum(out, v)
+        return out
+
+
+def _null_two_nll(nll0: list, counts: list, penalties: list) -> float:
+    """The envelope's ``2 NLL`` at mu = 0: per channel its best penalised background-only
+    fit (``nll0[c][f]`` of candidate f), summed (the channels are independent there)."""
+    return sum(min(2.0 * v + a * n for v, n in zip(vals, cnt))
+               for vals, cnt, a in zip(nll0, counts, penalties))
 
 
 def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.95,
@@ -197,42 +260,69 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                 lambda m, k=k, lumi=float(ch.luminosity): np.interp(m, m_all, k) / lumi),
             unit=unit, executor=executor,
             low_count_background=low_count_background)
+    # every channel's background functions (its configured one alone without candidates),
+    # profiled as a discrete choice: the assignments of one function per channel
+    triples, labels, counts, penalties = channel_candidates(
+        chans, prepared, lambda ch: _prepare(ch, m_all, blind))
+    null = null_choice([[t[0] for t in tr] for tr in triples], counts, penalties)
+    envelope = {ch.name: {"functions": list(labels[c]), "penalty": penalties[c],
+                          "n_parameters": [int(v) for v in counts[c]],
+                          "null_choice": labels[c][null[c]]}
+                for c, ch in enumerate(chans) if ch.background_candidates} or None
+    combos = list(itertools.product(*[range(len(tr)) for tr in triples]))
+    pens = [sum(a * cnt[f] for a, cnt, f in zip(penalties, counts, combo)) for combo in combos]
     alpha = 1.0 - cl
     nm = m_all.size
-    fulls = [_full_model(*p) for p in prepared]
+    # the background-only Asimov data: each channel's envelope function at mu = 0
+    fulls_all = [[_full_model(*t) for t in tr] for tr in triples]
+    fulls = [fulls_all[c][null[c]] for c in range(len(chans))]
     asimov = [f.expected_background for f in fulls]
-    a_stack = _Profiled(fulls, asimov, [np.tile(f.fractions, (nb5, 1)) for f in fulls],
-                        [np.tile(k, nb5) for k in conv], norms, sp_exp)
-    nll_a0 = sum(float(fit_background(f, a[None, :])[2][0]) for f, a in zip(fulls, asimov))
+    a_stack = _Envelope([_Profiled([fulls_all[c][f] for c, f in enumerate(combo)], asimov,
+                                   [np.tile(fulls_all[c][f].fractions, (nb5, 1))
+                                    for c, f in enumerate(combo)],
+                                   [np.tile(k, nb5) for k in conv], norms, sp_exp)
+                         for combo in combos], pens)
+    env_a0 = _null_two_nll([[float(fit_background(f, a[None, :])[2][0]) for f in fa]
+                            for fa, a in zip(fulls_all, asimov)], counts, penalties)
     target = np.repeat([expected_band_factor(n, cl) ** 2 for n in _BANDS], nm)
     info_s = sum((k[:, None] ** 2 * f.fractions**2 / np.maximum(a, 1e-300)).sum(axis=1)
                  for k, f, a in zip(conv, fulls, asimov))
     scale0 = np.tile(1.0 / np.sqrt(np.maximum(info_s, 1e-300)), nb5)
-    bands = _bisect(lambda mu: 2.0 * (a_stack.nll(mu) - nll_a0) - target,
+    bands = _bisect(lambda mu: a_stack.two_nll(mu) - env_a0 - target,
                     1e-2 * scale0, 1e3 * scale0).reshape(nb5, nm)
     obs = np.full(nm, np.nan)
     keep = ~bl
     if keep.any():
-        models = [p[0] for p in prepared]
         ck = [k[keep] for k in conv]
-        free = profile_joint(models, [m.counts for m in models],
-                             [m.fractions for m in models], ck, steps=100, norms=norms,
-                             shapes=sp_obs)
-        mu_hat, nll_hat = free["mu"], free["nll"]
-        nll_zero = sum(m.nll_background for m in models)
-        nll_hat = np.minimum(nll_hat, nll_zero)
-        prob_o = _Profiled(models, [m.counts for m in models], [m.fractions for m in models],
-                           ck, norms, sp_obs)
-        used_asimov = [m.expected_background for m in models]
-        prob_s = _Profiled(models, used_asimov, [m.fractions for m in models], ck, norms,
-                           sp_obs)
-        nll_u0 = sum(float(fit_background(m, a[None, :])[2][0])
-                     for m, a in zip(models, used_asimov))
+        used_asimov = [triples[c][null[c]][0].expected_background for c in range(len(chans))]
+        hat = env_zero = None
+        probs_o, probs_s = [], []
+        for combo, pen in zip(combos, pens):
+            models = [triples[c][f][0] for c, f in enumerate(combo)]
+            free = profile_joint(models, [m.counts for m in models],
+                                 [m.fractions for m in models], ck, steps=100, norms=norms,
+                                 shapes=sp_obs)
+            nll_zero = sum(m.nll_background for m in models)
+            two_hat = 2.0 * np.minimum(free["nll"], nll_zero) + pen
+            two_zero = 2.0 * nll_zero + pen
+            if hat is None or env_zero is None:
+                hat, mu_hat, env_zero = two_hat, free["mu"], two_zero
+            else:
+                mu_hat = np.where(two_hat < hat, free["mu"], mu_hat)
+                hat = np.minimum(hat, two_hat)
+                env_zero = min(env_zero, two_zero)
+            probs_o.append(_Profiled(models, [m.counts for m in models],
+                                     [m.fractions for m in models], ck, norms, sp_obs))
+            probs_s.append(_Profiled(models, used_asimov, [m.fractions for m in models], ck,
+                                     norms, sp_obs))
+        prob_o, prob_s = _Envelope(probs_o, pens), _Envelope(probs_s, pens)
+        env_u0 = _null_two_nll([[float(fit_background(t[0], a[None, :])[2][0]) for t in tr]
+                                for tr, a in zip(triples, used_asimov)], counts, penalties)
 
         def f_obs(mu: np.ndarray) -> np.ndarray:
-            ref = np.where(mu_hat < 0, nll_zero, nll_hat)
-            q = np.where(mu_hat > mu, 0.0, np.maximum(2.0 * (prob_o.nll(mu) - ref), 0.0))
-            qa = np.maximum(2.0 * (prob_s.nll(mu) - nll_u0), 1e-300)
+            ref = np.where(mu_hat < 0, env_zero, hat)
+            q = np.where(mu_hat > mu, 0.0, np.maximum(prob_o.two_nll(mu) - ref, 0.0))
+            qa = np.maximum(prob_s.two_nll(mu) - env_u0, 1e-300)
             return alpha - cls_asymptotic(q, mu, mu / np.sqrt(qa))
 
         s0 = scale0[:nm][keep]
@@ -252,6 +342,10 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                  [int(np.argmin(np.abs(m_all - float(x)))) for x in np.atleast_1d(toy_masses)])
         want += list(picks)
     toy_info: dict[str, Any] = {}
+    if envelope and want:
+        notes.append("the toy-based limits generate and fit each channel with the background "
+                     "function its envelope takes at mu = 0 (the asymptotic ones profile the "
+                     "choice)")
     if sp_obs is not None and want:
         notes.append("the toy-based limits leave the channels' mass-scale and resolution "
                      "factors at 1 (the asymptotic ones profile them)")
@@ -261,8 +355,9 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
             notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
             continue
         row = int(np.sum(~bl[:j]))
-        one = [dataclasses.replace(p[0], masses=p[0].masses[row:row + 1],
-                                   fractions=p[0].fractions[row:row + 1]) for p in prepared]
+        one = [dataclasses.replace(m, masses=m.masses[row:row + 1],
+                                   fractions=m.fractions[row:row + 1])
+               for m in (triples[c][null[c]][0] for c in range(len(chans)))]
         todo.append(j)
         tasks.append((one, [float(k[j]) for k in conv], norms, cl, int(toys), int(seed) + j,
                       float(obs[j]), bands[:, j].copy()))
@@ -290,4 +385,4 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     return CombinedLimits(masses=m_all, observed=obs, expected=bands[2], bands=bands,
                           channels=per, cl=cl, unit=unit, flags=flags, notes=tuple(notes),
                           methods=tuple(methods), method=method, nuisances=norm_names,
-                          toys=toy_info)
+                          toys=toy_info, envelope=envelope)

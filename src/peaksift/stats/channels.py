@@ -28,8 +28,9 @@ channels' relative normalisation (a common factor is absorbed by sigma x B).  A 
 ``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan, the
 asymptotic limits and the toys of the global significance (at each toy's highest points, as
 for one channel; ``toy_constraints`` chooses the ensemble); the toy limits keep them at 1.
-A channel's ``background_candidates`` are profiled as a discrete choice in the combined scan
-and its toys (:mod:`peaksift.stats.channel_envelope`), not in the limits.
+A channel's ``background_candidates`` are profiled as a discrete choice in the combined scan,
+its toys and the asymptotic combined limits (:mod:`peaksift.stats.channel_envelope`); the
+toy limits take the function its envelope chooses at mu = 0.
 """
 
 from __future__ import annotations
@@ -504,9 +505,10 @@ class Combination(FrozenValue):
         return plain(out)
 
     def plot(self, path: Any = None, *, title: str | None = None, run: Any = None,
-             symbol: str = "m") -> Any:
+             symbol: str = "m", channel_scans: Any = None) -> Any:
         """Local p-value against mass: each channel (thin) and the combination (thick);
         see :func:`peaksift.stats.channel_plot.pvalue_figure` (no pyplot)."""
         from .channel_plot import pvalue_figure
 
-        return pvalue_figure(self, path, title=title, run=run, symbol=symbol)
+        return pvalue_figure(self, path, title=title, run=run, symbol=symbol,
+                             channel_scans=channel_scans)

@@ -277,6 +277,17 @@ class EnvelopeResult(FrozenValue):
             raise FitError(f"EnvelopeResult.from_dict: not an envelope result dict ({exc!r}); "
                            "pass what EnvelopeResult.to_dict() wrote") from exc
 
+    def plot(self, path: Any = None, *, run: Any = None, symbol: str | None = None,
+             title: str | None = None) -> Any:
+        """Local p-value of the envelope and of each candidate function alone against the
+        mass hypothesis, as a matplotlib Figure drawn without pyplot (the user's backend is
+        left alone); ``run``: the run label, ``symbol``: the pair's mass symbol (mathtext);
+        saved to ``path`` when given.  See
+        :func:`peaksift.stats.result_figures.envelope_figure`."""
+        from .result_figures import envelope_figure
+
+        return envelope_figure(self, path, run=run, symbol=symbol, title=title)
+
     # -------------------------------------------------------------- toys
     def _models(self) -> list[ScanModel]:
         if not self.scans or any(s.model is None for s in self.scans):

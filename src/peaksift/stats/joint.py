@@ -37,6 +37,8 @@ from typing import Any
 import numpy as np
 
 from ..likelihood import first_error, minimize_stacked
+from ..likelihood.poisson import use_compiled
+from .joint_driver import compiled_joint
 from .joint_kernels import channel_nll, sums
 from .shape_profile import _fractions
 from .toys import ScanModel, bkg_fractions, bkg_second
@@ -145,11 +147,36 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     for kc in ks:
         first.append(p)
         p += 1 + kc
-    # fractions and their gradients together: a trial's gradients are the next Newton
-    # step's, so each accepted point costs one shape evaluation per channel
-    gd = [_per_row(_bkg_both, m, th) for m, th in zip(models, theta)]
-    g0 = [x[0] for x in gd]
-    dg0 = [x[1] for x in gd]
+    d2 = []
+    for c, (m, th, kc) in enumerate(zip(models, theta, ks)):
+        cv = None if curvature is None else curvature[c]
+        if not kc:
+            d2.append(None)
+        elif cv is not None and np.ndim(cv) == 4:   # the second derivatives themselves
+            d2.append(np.broadcast_to(cv, (nb,) + np.shape(cv)[1:]))
+        else:
+            d2.append(_per_row(bkg_second, m, th if cv is None else np.broadcast_to(
+                np.asarray(cv, float), th.shape), view=True))
+
+    def unpack(x, rows):
+        mu_ = mu[rows] if fixed else x[:, 0]
+        return (mu_, x[:, off:off + nj], x[:, off + nj:off + nj + nk],
+                [x[:, j] for j in first], [x[:, j + 1:j + 1 + kc] for j, kc in zip(first, ks)])
+
+    # a normalisation nuisance beyond 10 sigma is no fit (and exp() stays finite)
+    klo = [specs[c][2].bounds(nm)[0] for c in shaped for nm in names[c]]
+    khi = [specs[c][2].bounds(nm)[1] for c in shaped for nm in names[c]]
+    lower = np.concatenate([np.full(off, -np.inf), np.full(nj, -10.0), klo]
+                           + [np.r_[-np.inf, m.lower] for m in models])
+    upper = np.concatenate([np.full(off, np.inf), np.full(nj, 10.0), khi]
+                           + [np.r_[np.inf, m.upper] for m in models])
+    g0: list = []   # per channel its background fractions and derivatives at the start
+    dg0: list = []
+
+    def pack(mu_):
+        free = [] if fixed else [mu_[:, None]]
+        return np.concatenate(free + [nu, kap] + [a for c in range(nc)
+                                                  for a in (b[c][:, None], theta[c])], axis=1)
 
     def signal_fractions(kap_, rows):
         """Per channel the signal fractions of ``rows`` and, for the shaped channels,
@@ -192,28 +219,6 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
             out = out + part
         return out
 
-    all_rows = np.arange(nb)
-    fr0, dfr0 = signal_fractions(kap, all_rows)
-    nll = total(mu, nu, kap, b, g0, fr0, all_rows)
-    if np.any(~np.isfinite(nll)) and not fixed:
-        mu = np.where(np.isfinite(nll), mu, 0.0)
-        nll = total(mu, nu, kap, b, g0, fr0, all_rows)
-    d2 = []
-    for c, (m, th, kc) in enumerate(zip(models, theta, ks)):
-        cv = None if curvature is None else curvature[c]
-        if not kc:
-            d2.append(None)
-        elif cv is not None and np.ndim(cv) == 4:   # the second derivatives themselves
-            d2.append(np.broadcast_to(cv, (nb,) + np.shape(cv)[1:]))
-        else:
-            d2.append(_per_row(bkg_second, m, th if cv is None else np.broadcast_to(
-                np.asarray(cv, float), th.shape), view=True))
-
-    def unpack(x, rows):
-        mu_ = mu[rows] if fixed else x[:, 0]
-        return (mu_, x[:, off:off + nj], x[:, off + nj:off + nj + nk],
-                [x[:, j] for j in first], [x[:, j + 1:j + 1 + kc] for j, kc in zip(first, ks)])
-
     ns = len(shaped)
 
     def value(x, rows):
@@ -244,19 +249,33 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
                 he[:, at, at] += hc_
         return gr, he
 
-    free = [] if fixed else [mu[:, None]]
-    x0 = np.concatenate(free + [nu, kap] + [a for c in range(nc) for a in (b[c][:, None],
-                                                                            theta[c])], axis=1)
-    # a normalisation nuisance beyond 10 sigma is no fit (and exp() stays finite)
-    klo = [specs[c][2].bounds(nm)[0] for c in shaped for nm in names[c]]
-    khi = [specs[c][2].bounds(nm)[1] for c in shaped for nm in names[c]]
-    lower = np.concatenate([np.full(off, -np.inf), np.full(nj, -10.0), klo]
-                           + [np.r_[-np.inf, m.lower] for m in models])
-    upper = np.concatenate([np.full(off, np.inf), np.full(nj, 10.0), khi]
-                           + [np.r_[np.inf, m.upper] for m in models])
-    start_state = (tuple(g0) + tuple(dg0) + tuple(fr0[c] for c in shaped) + tuple(dfr0))
-    r = minimize_stacked(value, grad_hess, x0, lower, upper, start=(nll, start_state),
-                         steps=steps, nll_tol=1e-8, step_tol=tol)
+    def python_loop(mu):
+        """The Python loop of :func:`~peaksift.likelihood.minimize_stacked` (the reference)."""
+        # fractions and their gradients together: a trial's gradients are the next Newton
+        # step's, so each accepted point costs one shape evaluation per channel
+        gd = [_per_row(_bkg_both, m, th) for m, th in zip(models, theta)]
+        g0[:] = [x[0] for x in gd]
+        dg0[:] = [x[1] for x in gd]
+        fr0, dfr0 = signal_fractions(kap, all_rows)
+        nll = total(mu, nu, kap, b, g0, fr0, all_rows)
+        if np.any(~np.isfinite(nll)) and not fixed:
+            mu = np.where(np.isfinite(nll), mu, 0.0)
+            nll = total(mu, nu, kap, b, g0, fr0, all_rows)
+        x0 = pack(mu)
+        start_state = (tuple(g0) + tuple(dg0) + tuple(fr0[c] for c in shaped) + tuple(dfr0))
+        return minimize_stacked(value, grad_hess, x0, lower, upper, start=(nll, start_state),
+                                steps=steps, nll_tol=1e-8, step_tol=tol)
+
+    all_rows = np.arange(nb)
+    # the same loop compiled when every channel allows it (joint_driver), else in Python
+    r = None
+    if not shaped and steps > 0 and use_compiled():
+        r = compiled_joint(models, n, f, k, fixed, mu, pack(mu), aux, a_norm, d2,
+                           [None if kc else _per_row(bkg_fractions, m, th)
+                            for m, th, kc in zip(models, theta, ks)],
+                           first, lower, upper, steps, tol)
+    if r is None:
+        r = python_loop(mu)
     mu, nu, kap, b, theta = unpack(r.x, all_rows)
     mu, nu, kap = mu.copy(), nu.copy(), kap.copy()
     b, theta = [v.copy() for v in b], [v.copy() for v in theta]

@@ -204,7 +204,14 @@ class LimitResult(FrozenValue):
         (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on a new Figure (made
         without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
-        from .._style import COLORS, draw_header, figure_style, shade_blinded, target_axes
+        from .._style import (
+            COLORS,
+            draw_header,
+            figure_style,
+            plain_log_ticks,
+            shade_blinded,
+            target_axes,
+        )
 
         with figure_style():
             fig, ax = target_axes(fig, ax)
@@ -224,6 +231,7 @@ class LimitResult(FrozenValue):
             if log:
                 ax.set_yscale("log")
                 ax.set_ylim(bottom / 1.25, top * 2.2)  # room for the legend above the bands
+                plain_log_ticks(ax)
             else:
                 ax.set_ylim(0.0, top * 1.35)
             ax.set_xlim(m[0], m[-1])

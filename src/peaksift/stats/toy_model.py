@@ -8,7 +8,8 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import binned_nll, first_error, minimize_stacked
+from ..likelihood import binned_nll, first_error, minimize_stacked, saturated_term
+from ..likelihood.poisson import use_compiled
 
 _BAND_EPS = 3e-3       # signal band: bins with f > eps * max f
 _GROUP = 16            # masses per band group in the toy scan
@@ -233,6 +234,16 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         s = np.array(np.broadcast_to(s_start, (nb,)), dtype=float)
     else:
         s = np.zeros(nb)
+    if k == 1 and use_compiled():
+        # the same fit row by row in one compiled call (stats/profile_kernels.py), where
+        # the background has a compiled row kernel; None: the numpy path below answers
+        from .profile_kernels import compiled_profile
+
+        shared = n.strides[0] == 0
+        out = compiled_profile(model, n[0] if shared else n, f, s, b, theta, fixed,
+                               saturated_term(n[:1] if shared else n), steps, tol)
+        if out is not None:
+            return out
     g = bkg_fractions(model, theta)
 
     def total_nll(s_, b_, g_, rows=slice(None)):
