@@ -92,6 +92,11 @@ class Beside:
             self._proc.start()
         child_end.close()
 
+    def ready(self) -> bool:
+        """Whether the child has delivered (or died): :meth:`result` would not wait for it.
+        False when no child was forked (the value is then computed by :meth:`result`)."""
+        return self._proc is not None and bool(self._conn.poll())
+
     def result(self) -> Any:
         fn, args, kw = self._call
         if self._proc is not None:

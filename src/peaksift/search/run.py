@@ -275,7 +275,6 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         mass_job = Beside(fitted_mass, cfg, fres.to_dict())
         besides.append(mass_job)
         syst_jobs["fitted mass"] = mass_job
-    clock.lap("fits")
     # the p-value scan's expected curve is computed here, where the scan's kernels are
     # loaded: in the drawer it would load numba's compiler state for it (~0.5-1 s CPU)
     expected = None
@@ -286,7 +285,36 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
           partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst),
           expected=expected)
+    clock.lap("fits")
 
+    def limits_stage() -> tuple[Any, dict[str, Any] | None]:
+        """The limits (and those with systematics) collected, their figure sent to the
+        drawer; returns ``(limits, the systematics block's "limits" or None)``."""
+        lim = (limits_job.result() if limits_job is not None else
+               _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
+                       smodel))
+        clock.lap("limits" if limits_job is None else "limits (rest of)")
+        block = None
+        if syst is not None:
+            from .systematics import limits_with_systematics
+
+            block = limits_with_systematics(
+                cfg, hist, scan_sig, syst_scan, lim, natural_width=width,
+                blind=blind_window, signal_model=smodel,
+                executor=_toy_executor(cfg, "toy limits"),
+                computed=syst_limits_job.result() if syst_limits_job is not None else None)
+            clock.lap("limits with systematics" if syst_limits_job is None
+                      else "limits with systematics (rest of)")
+        _draw(drawer, cfg, ["limits"], partial(
+            limits=lim, systematics=syst if block is None else {**syst, "limits": block}))
+        return lim, block
+
+    # limits computed beside and delivered already: collected now, so that their figure is
+    # drawn while the calibration is fitted here, not after it
+    early = None
+    if (cfg.limits.enabled and limits_job is not None and limits_job.ready()
+            and (syst is None or (syst_limits_job is not None and syst_limits_job.ready()))):
+        early = limits_stage()
     peak = (fres.to_dict().get("peak_mass") or {}) if fres is not None else {}
     m_fit = peak.get("value") or m_best
     m_err = peak.get("error") or 0.0
@@ -303,21 +331,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None
     if cfg.limits.enabled:
-        limits = (limits_job.result() if limits_job is not None else
-                  _limits(cfg, hist, scan_sig, bkg, masses, width, blind_window, progress,
-                          smodel))
-        clock.lap("limits" if limits_job is None else "limits (rest of)")
-        if syst is not None:
-            from .systematics import limits_with_systematics
-
-            syst = {**syst, "limits": limits_with_systematics(
-                cfg, hist, scan_sig, syst_scan, limits, natural_width=width,
-                blind=blind_window, signal_model=smodel,
-                executor=_toy_executor(cfg, "toy limits"),
-                computed=syst_limits_job.result() if syst_limits_job is not None else None)}
-            clock.lap("limits with systematics" if syst_limits_job is None
-                      else "limits with systematics (rest of)")
-        _draw(drawer, cfg, ["limits"], partial(limits=limits, systematics=syst))
+        limits, block = early or limits_stage()
+        if block is not None:  # after the fitted mass, as results.json has always had it
+            syst = {**syst, "limits": block}
 
     # hashed where the footers were read (on the workers of a cluster); None when
     # input.hash_inputs is off
