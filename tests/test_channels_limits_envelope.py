@@ -139,10 +139,10 @@ def _reference(hists):
         q = 0.0 if mu_hat > mu else max(_envelope(ns, mu, fs)[0] - den, 0.0)
         return _cls(q, qa(mu)) - 0.05
 
-    obs = optimize.brentq(f_obs, 2.0, 100.0, xtol=1e-4)
+    obs = optimize.brentq(f_obs, 3.0, 30.0, xtol=1e-3)
     # median expected: q_mu,A = Phi^-1(1 - alpha/2)^2 (CLs on the Asimov data)
     z = stats.norm.ppf(1 - 0.05 / 2)
-    exp = optimize.brentq(lambda mu: qa(mu) - z * z, 0.5, 100.0, xtol=1e-4)
+    exp = optimize.brentq(lambda mu: qa(mu) - z * z, 2.0, 30.0, xtol=1e-3)
     return obs, exp
 
 

@@ -100,8 +100,10 @@ def test_one_channel_through_the_combination_is_the_demo_search(demo_dir):
     """The demo search through the combination's path: its channel is the search itself
     (every results.json number equal) and the combined scan is its scan to the last digit."""
     alone = run_search(demo_dir / "search.toml", out=False, toys=20)
+    # [combination.limits] is the combination's own: its limits off, its channel's kept
     comb = run_combination({"combination": {"channels": [str(demo_dir / "search.toml")],
-                                            "names": ["dimuon"]}}, out=False, toys=20)
+                                            "names": ["dimuon"],
+                                            "limits": {"enabled": False}}}, out=False, toys=20)
     a = alone.to_dict()
     c = comb.channels["dimuon"].to_dict()
     for key in ("scan", "best", "fit", "limits", "calibration"):
@@ -111,6 +113,7 @@ def test_one_channel_through_the_combination_is_the_demo_search(demo_dir):
     # so its global significance is the search's without systematics
     assert comb.best["z_global"] == a["systematics"]["without_systematics"]["z_global"]
     assert any("[systematics]" in n for n in comb.to_dict()["notes"])
+    assert comb.limits is None and a["limits"]
 
 
 def test_combination_config_is_checked(demo_dir, tmp_path):
@@ -233,17 +236,3 @@ def test_combination_settings_are_checked_against_the_schema():
         run_combination({"combination": {**base, "significance": {"method": "guess"}}},
                         out=False)
 
-
-def test_combination_takes_its_own_significance_and_limit_settings(demo_dir):
-    """The combination's global significance and limits follow [combination.significance]
-    and [combination.limits] (the command line's toys win), while its channel keeps the
-    settings of its own config (upcrossings, limits on)."""
-    comb = run_combination({"combination": {"channels": [str(demo_dir / "search.toml")],
-                                            "names": ["dimuon"],
-                                            "significance": {"method": "toys", "toys": 7},
-                                            "limits": {"enabled": False}}},
-                           out=False, toys=20)
-    assert comb.best["global_method"] == "toys" and comb.best["n_toys"] == 20
-    assert comb.limits is None
-    own = comb.channels["dimuon"].to_dict()
-    assert own["best"]["global_method"] == "upcrossings" and own["limits"]
