@@ -20,8 +20,9 @@ from typing import Any
 
 from ..errors import FitError
 from ._base import Parameter, Shape, as_window
-from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, PowerSum, TurnOn
+from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, PowerSum
 from .signal import BreitWigner, CrystalBall, Gaussian, Voigt
+from .turnon import TurnOn
 
 __all__ = [
     "Bernstein",

@@ -10,7 +10,8 @@ Which to use
 * ``dijet``     -- p0 (1-x)^p1 / x^(p2 + p3 ln x), x = m / sqrt_s (``npar=2..4``):
   the smoothly falling family of published dijet resonance searches
   (e.g. Phys. Rev. D 79 (2009) 112002).
-* ``turnon``    -- a Gaussian-CDF trigger turn-on times an exponential fall.
+* ``turnon``    -- a Gaussian-CDF trigger turn-on times an exponential fall
+  (:mod:`peaksift.shapes.turnon`).
 
 Background parameter names never collide with signal names: ``b1..b3`` (exppoly),
 ``c1..cn`` (bernstein), ``power`` (and ``power_j``/``weight_j``, powersum), ``p1..p3`` (dijet), ``threshold``/``resolution``/``slope``
@@ -28,7 +29,7 @@ from scipy import special
 from ..errors import FitError
 from ._base import Parameter, Shape
 
-__all__ = ["Bernstein", "Dijet", "ExpPoly", "Exponential", "PowerLaw", "PowerSum", "TurnOn"]
+__all__ = ["Bernstein", "Dijet", "ExpPoly", "Exponential", "PowerLaw", "PowerSum"]
 
 
 def _t(x, window):
@@ -541,69 +542,3 @@ class Dijet(_Background):
 
     def __repr__(self) -> str:
         return f"<background shape 'dijet' npar={self.npar} sqrt_s={self.sqrt_s}>"
-
-
-class TurnOn(_Background):
-    r"""Trigger turn-on times an exponential fall:
-
-    .. math:: f(x) \propto \Phi\left(\frac{x - x_0}{r}\right) e^{-k (x - c)}
-
-    parameters ``threshold`` (x0, GeV), ``resolution`` (r, GeV) and ``slope`` (k, 1/GeV;
-    c = window centre).  Analytic CDF by parts, with
-    :math:`\int \phi((x-x_0)/r)\, e^{-kx} dx/r = e^{-k x_0 + k^2 r^2/2}\,\Phi((x-x_0)/r + k r)`,
-    taken as the integral from x to infinity (both terms positive, so nothing cancels even
-    when the turn-on sits far outside the window or the fall is steep):
-
-    .. math:: S(x) = \int_x^\infty f = \frac{1}{k}\left[e^{-k(x_0 - c) + k^2r^2/2}\,
-              \Phi(-(u + kr)) + e^{-k(x-c)}\Phi(u)\right], \quad u = (x-x_0)/r,
-
-    the first term evaluated as :math:`e^{-k(x-c) - u^2/2}\,\mathrm{erfcx}((u+kr)/\sqrt2)/2`
-    for :math:`u + kr > 0` and with ``scipy.special.log_ndtr`` otherwise; the CDF is
-    :math:`(S(lo) - S(x)) / (S(lo) - S(hi))`.
-    """
-
-    name = "turnon"
-    parameters = (
-        Parameter("threshold", math.nan, unit="GeV"),
-        Parameter("resolution", math.nan, unit="GeV"),
-        Parameter("slope", math.nan, 1e-6, math.inf, unit="1/GeV"),
-    )
-
-    def parameters_for(self, window):
-        """Threshold in the window (start at 15 %), resolution in [1e-3, 1] x window width
-        (start 5 %), slope in [1e-6, 100/width] (start 3/width)."""
-        lo, hi = window
-        w = hi - lo
-        d = {"threshold": (lo + 0.15 * w, lo - 0.5 * w, hi),
-             "resolution": (0.05 * w, 1e-3 * w, w),
-             "slope": (3.0 / w, 1e-6 / w, 100.0 / w)}
-        out = []
-        for p in self.parameters:
-            s, a, b = d[p.name]
-            out.append(Parameter(p.name, p.start if math.isfinite(p.start) else s, a, b, p.unit))
-        return tuple(out)
-
-    def _difference_scales(self, p):
-        # the threshold moves the turn-on across its resolution
-        scales = super()._difference_scales(p)
-        scales[0] = np.abs(p[1])
-        return scales
-
-    def _density(self, x, p, window):
-        t, r, k = p
-        c = 0.5 * (window[0] + window[1])
-        return special.ndtr((x - t) / r) * np.exp(-k * (x - c))
-
-    def _primitive(self, x, p, window):
-        # -S(x), S = integral from x to infinity (see the class docstring)
-        t, r, k = p
-        c = 0.5 * (window[0] + window[1])
-        u = (x - t) / r
-        q = k * r
-        v = u + q
-        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
-            upper = 0.5 * special.erfcx(v * (1.0 / math.sqrt(2.0))) * np.exp(-k * (x - c)
-                                                                                - 0.5 * u * u)
-            lower = np.exp(-k * (t - c) + 0.5 * q * q + special.log_ndtr(-v))
-            first = np.where(v > 0, upper, lower)
-        return -(first + np.exp(-k * (x - c)) * special.ndtr(u)) / k
