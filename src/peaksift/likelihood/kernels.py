@@ -50,7 +50,8 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
     ``value_row[k]``: CDF row of component k, ``yields[k]`` its yield and ``yield_free[k]``
     its free index (or -1); derivative rows ``drow`` of component ``dcomp`` at free index
     ``dfree``; ``jac`` (free parameters x used bins) is scratch.  Bin fractions are floored
-    at 0 and the expectation at ``floor`` as in the numpy path."""
+    at 0 and the expectation at ``floor`` as in the numpy path; a negative expectation
+    returns an infinite NLL (the rest of the outputs then unset)."""
     ncomp = value_row.size
     nd = drow.size
     npar = g.size
@@ -81,6 +82,11 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
     for j in range(nb):
         mu = mu_out[j]
         if mu < floor:
+            if mu < 0.0:
+                # a negative Poisson mean (a negative yield deeper than the background under
+                # it) is outside the model: rejected, not floored -- floored, an empty bin
+                # would let a negative peak dig on at no cost
+                return math.inf
             mu = floor
             mu_out[j] = mu
         sj = 1.0 if unit else s[j]
