@@ -211,14 +211,14 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
                     break
         for i in taken:
             j = int(rows[i % rows.size])
+            best.append((float(pos[i]), float(w[i]), float(y[i]), float(g[i])))
             if sign < 0 and nn[j] == 0 and pos[i] == centre[i % rows.size]:
-                # an empty bin: its lowest point is an expectation of 0 there, on the
-                # model's edge, which a minimiser approaches slowly from a wider peak (one
-                # stopped at 0.3 bin, 0.6 above it): start with all the dip inside the bin
+                # an empty bin: a dip's lowest point may be an expectation of 0 there, on
+                # the model's edge, which a minimiser reaches slowly from a wider peak (one
+                # stopped at 0.3 bin, 0.6 above it) -- or one reaching into the next bin
+                # (from all inside the bin, 0.4 above it): both are started
                 best.append((float(pos[i]), 0.1 * float(width[i % rows.size]),
                              -0.98 * float(bb[j]), float(g[i])))
-            else:
-                best.append((float(pos[i]), float(w[i]), float(y[i]), float(g[i])))
     return sorted(best, key=lambda t: -t[3])
 
 
