@@ -146,6 +146,11 @@ _STENCIL = 3
 #: few units, most where the bins hold few events (an empty bin in a steep tail that gained
 #: 3.8 less than the best deficit with the background held ended 2.2 below it)
 NARROW_SPREAD = 6.0
+#: a narrow candidate is minimised only when its gain (background held) comes within this
+#: of the coarse scan's best gain: held or not, a peak narrower than a bin gains about the
+#: same (its bins are few), so unlike the coarse scan's candidates it needs no wide margin
+#: -- on a strong peak the narrow peak on top of it (gain 318 against 369) is not minimised
+NARROW_MARGIN = 2.0 * NARROW_SPREAD
 
 
 def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None,
@@ -156,8 +161,9 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
     :data:`NARROW_WIDTHS` bins at every bin centre and bin edge, its yield profiled on the
     background expectation ``background`` held fixed (a few Newton steps on the bins within
     :data:`_STENCIL` of it).  Returns ``[(mass, width, yield, gain in -2 ln L)]``, the larger
-    gain first; a position whose nearby bins' Poisson deviances add up to less than
-    :func:`worth_trying` against ``q_best`` (they bound the gain) is not evaluated."""
+    gain first; only gains within :data:`NARROW_MARGIN` of ``q_best``, and a position
+    whose nearby bins' Poisson deviances (they bound its gain) fall short of that is not
+    evaluated."""
     from scipy.special import ndtr
 
     e = np.asarray(edges, float)
@@ -177,8 +183,7 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
     spd = np.concatenate([np.zeros(k), sc, np.zeros(k)])
     cdev = np.concatenate([[0.0], np.cumsum(np.concatenate([np.zeros(k), dev, np.zeros(k)]))])
     bound = cdev[2 * k + 1:] - cdev[:nb]  # deviances of bins j-k .. j+k
-    # worth_trying(bound, q_best), vectorised
-    rows = np.flatnonzero((bound > 0) & (bound >= q_best - max(CANDIDATE_MARGIN, 0.5 * q_best)))
+    rows = np.flatnonzero((bound > 0) & (bound >= q_best - NARROW_MARGIN))
     if rows.size == 0:
         return []
     width = np.diff(e)[rows]
@@ -203,7 +208,8 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
         order = np.argsort(-g, kind="stable")
         taken: list[int] = []
         for i in order[:8 * k_most]:
-            if g[i] <= 0 or (taken and g[i] < g[taken[0]] - NARROW_SPREAD):
+            if (g[i] <= 0 or g[i] < q_best - NARROW_MARGIN
+                    or (taken and g[i] < g[taken[0]] - NARROW_SPREAD)):
                 break
             if all(abs(pos[i] - pos[t]) > 2.0 * (w[i] + w[t]) for t in taken):
                 taken.append(int(i))
@@ -257,7 +263,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     tried only while no valid fit is found), then the scan's deepest dips (a negative yield)
     and, given ``fine`` (the data's own ``(edges, counts, scaled-Poisson factors)`` in a
     binned fit), a peak narrower than a bin on the bins most above and below the background
-    (:func:`narrow_candidates`; essential, when their gains are :func:`worth_trying`).  Given
+    (:func:`narrow_candidates`; essential, when their gains can win).  Given
     ``near`` (the full vector of the best minimum so far), an other-width start is that
     minimum with its free widths scaled.  ``given`` holds the parameters whose starts (or
     fixed values) the caller set; a given mass is not scanned (no dips, no spikes).
@@ -363,8 +369,7 @@ def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fin
 
 def _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative):
     """Starts of a peak about as narrow as a bin on the data's own bins
-    (:func:`narrow_candidates`), each whose gain is :func:`worth_trying` against the best
-    candidate of the coarse scan."""
+    (:func:`narrow_candidates`, against the best candidate of the coarse scan)."""
     fe, fn, fsc = fine
     bshape, bsl, biy = model.blocks[-1]
     try:
@@ -374,8 +379,8 @@ def _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative):
         return []
     return [(mass, 1.0, True, False,
              {"sign": math.copysign(1.0, amount), "narrow": width, "amount": amount})
-            for mass, width, amount, gain in found
-            if worth_trying(gain, q_top) and (amount > 0 or negative)
+            for mass, width, amount, _ in found
+            if (amount > 0 or negative)
             and lower[i_m] <= mass <= upper[i_m]]
 
 
