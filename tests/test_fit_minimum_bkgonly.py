@@ -13,12 +13,13 @@ negative yield may only dig as deep as the background under it) and infinite els
 Gaussian's bin integrals from ``scipy.special.ndtr`` truncated to the window; the backgrounds'
 bin integrals from their closed-form CDFs (exponential, power law, dijet with one exponent)
 or ``scipy.stats.beta.cdf`` (Bernstein basis, see :func:`bernstein_basis_integrals`).  It is
-minimised by iminuit's MIGRAD from many starts: at every width of a grid from the fit's
-width floor to half the window (masses at bin centres, spaced by at most half a width), the
+minimised by iminuit's MIGRAD from many starts: at each of 8 widths from the fit's width
+floor to half the window (masses at bin centres, spaced by at most half a width), the
 signal and background yields are profiled with the background's shape from a
-background-only fit, and MIGRAD (all parameters free) starts at the best grid point with a
-positive and the best with a negative signal yield for every width, and at peaksift's own
-minimum; the lowest minimum wins.  Same parameter space as the fit: the bounds are the
+background-only fit; MIGRAD (all parameters free) starts at the best grid point with a
+positive and the best with a negative signal yield for every width (those within
+``GRID_MARGIN`` of the best grid point), and at peaksift's own minimum; the lowest minimum
+wins.  Same parameter space as the fit: the bounds are the
 result's ``bounds``.
 
 Tolerance: no toy may have peaksift's minimum above the independent one by more than
@@ -47,6 +48,11 @@ EVENTS = 5000.0
 SQRT_S = 1000.0  # the dijet family's sqrt(s)
 #: a peaksift minimum may lie above the independent one by at most this in -2 ln L
 DELTA_CHI2 = 0.1
+#: grid starts whose profiled NLL (background shape held) is within this of the best
+#: grid point's are minimised by MIGRAD (an NLL difference, so 10 in -2 ln L)
+GRID_MARGIN = 5.0
+#: toys per background
+TOYS = 12
 
 #: background label -> (peaksift shape, truth of the toys, generic MIGRAD start)
 BACKGROUNDS = {
@@ -202,7 +208,7 @@ def independent_minimum(label: str, n: np.ndarray, bounds: dict[str, tuple[float
     pb = dict(zip(bonly.parameters, bonly.values))
     g = background_fractions(label, pb)
     s_lo, s_hi = bounds["sigma"]
-    starts = [dict(ours)]
+    grid = []  # (profiled NLL, start)
     for width in np.geomspace(s_lo, s_hi, 8):
         step = max(1, round(0.5 * width / (EDGES[1] - EDGES[0])))
         masses = CENTRES[::step]
@@ -211,9 +217,13 @@ def independent_minimum(label: str, n: np.ndarray, bounds: dict[str, tuple[float
             ok = np.isfinite(val) & (sign * s > 0)
             if ok.any():
                 i = int(np.flatnonzero(ok)[np.argmin(val[ok])])
-                starts.append({**pb, "mass": float(masses[i]), "sigma": float(width),
-                               "signal_yield": float(s[i]),
-                               "background_yield": max(total - float(s[i]), 1.0)})
+                grid.append((float(val[i]), {**pb, "mass": float(masses[i]),
+                                             "sigma": float(width), "signal_yield": float(s[i]),
+                                             "background_yield": max(total - float(s[i]), 1.0)}))
+    # MIGRAD from every grid start within GRID_MARGIN of the best one (the refit of the
+    # background shape gains a few units at most), and from peaksift's minimum
+    top = min(v for v, _ in grid)
+    starts = [dict(ours)] + [st for v, st in grid if v <= top + GRID_MARGIN]
     best = (math.inf, {})
     for st in starts:
         st = {k: float(np.clip(v, *bounds[k])) for k, v in st.items()}
@@ -248,10 +258,10 @@ def check_toy(label: str, seed: int) -> dict:
 
 @pytest.mark.parametrize("label", ["exponential", "powerlaw", "bernstein2"])
 def test_background_only_minimum_is_the_lowest(label):
-    """15 background-only toys per background (5,000 events, 200 bins): peaksift's minimum is
+    """12 background-only toys per background (5,000 events, 200 bins): peaksift's minimum is
     never above the independent multi-start minimum by more than Delta(-2 ln L) = 0.1
     (Baker and Cousins 1984 NLL written here; iminuit MIGRAD)."""
-    worse = [c for c in (check_toy(label, seed) for seed in range(15))
+    worse = [c for c in (check_toy(label, seed) for seed in range(TOYS))
              if c["delta_chi2"] > DELTA_CHI2]
     assert not worse, "\n".join(
         f"toy {c['seed']}: peaksift above the independent minimum by "

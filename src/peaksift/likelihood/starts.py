@@ -155,7 +155,7 @@ NARROW_MARGIN = 2.0 * NARROW_SPREAD
 
 def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None,
                       background: np.ndarray, q_best: float = 0.0,
-                      most: tuple[int, int] = (1, 2)) -> list[tuple[float, float, float, float]]:
+                      most: tuple[int, int] = (1, 3)) -> list[tuple[float, float, float, float]]:
     """The best ``most[0]`` separated narrow peaks above and ``most[1]`` below the
     background (those within :data:`NARROW_SPREAD` of the best of their sign): a Gaussian of
     :data:`NARROW_WIDTHS` bins at every bin centre and bin edge, its yield profiled on the
