@@ -426,7 +426,11 @@ def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width,
     if not masses:  # no excess anywhere: start at the largest bin excess
         c = 0.5 * (edges[1:] + edges[:-1])
         masses = [float(np.clip(c[int(np.argmax(n - bexp))], lo, hi))]
-    down = [float(grid[i]) for i, q in lows if worth_trying(q, q_top)]
+    # a dip is minimised only near the best gain, as a narrow candidate: a negative peak
+    # as wide as the start width gains little more than the scan says, and the narrow
+    # ones are the narrow candidates' (on 5 sigma toys every dip would be minimised
+    # under worth_trying's margin, never winning)
+    down = [float(grid[i]) for i, q in lows if q >= q_top - NARROW_MARGIN]
     if len(down) == 2 and abs(down[0] - down[1]) <= 3 * width:
         down = down[:1]
     return masses, down, q_top
