@@ -468,6 +468,7 @@ def test_spectrum_figure_hides_the_bins_the_statistics_leave_out(monkeypatch, tm
     including a bin whose centre lies on the range's edge."""
     from peaksift import plotting
     from peaksift.histogram import MassHistogram
+    from peaksift.plotting import spectrum
 
     h = MassHistogram(bins=90, range=(110.0, 200.0))
     h.fill(np.repeat(h.centers, 3))
@@ -480,7 +481,7 @@ def test_spectrum_figure_hides_the_bins_the_statistics_leave_out(monkeypatch, tm
                 drawn.append((x, y))
         return tmp_path / f"{name}.png"
 
-    monkeypatch.setattr(plotting, "save", keep)
+    monkeypatch.setattr(spectrum, "save", keep)
     plotting.spectrum_only(h, tmp_path, blind=(140.5, 165.0))
     assert drawn
     x, y = drawn[0]
