@@ -282,12 +282,12 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
     sy = cfg.systematics
     env = (res.systematics or {}).get("envelope") if sy.background_families else None
     cands = {}
-    if env and env.get("functions"):
+    if env and env.get("labels"):
         from ..stats.background_choice import candidate_shapes
 
-        cands = {"background_candidates": candidate_shapes(list(env["functions"]),
+        cands = {"background_candidates": candidate_shapes(list(env["labels"]),
                                                            sqrt_s=sy.sqrt_s),
-                 "background_parameters": dict(zip(env["functions"], env["n_parameters"])),
+                 "background_parameters": dict(zip(env["labels"], env["n_parameters"])),
                  "background_penalty": float(env["penalty"])}
     norms = {"luminosity_uncertainty": float(cfg.limits.luminosity_uncertainty),
              "efficiency_uncertainty": float(cfg.limits.efficiency_uncertainty),

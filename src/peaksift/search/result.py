@@ -287,7 +287,8 @@ class SearchResult:
                 figures={k: Path(outs["dir"]) / "figures" / v
                          for k, v in (outs.get("figures") or {}).items()},
                 fit_settings=settings, input_record=dict(d.get("input") or {}),
-                identification=d.get("identification"), systematics=d.get("systematics"),
+                identification=d.get("identification"),
+                systematics=_systematics(d.get("systematics")),
                 signal_model=SignalModel.from_dict(d["signal_model"])
                 if d.get("signal_model") else None)
         except (KeyError, TypeError, ValueError) as exc:
@@ -415,6 +416,24 @@ def _background_fit(d: Mapping[str, Any]) -> Any:
         return None
     return SidebandFit.from_dict(b) if b.get("kind") == "sideband_fit" else \
         FitResult.from_dict(b)
+
+
+def _systematics(sy: Mapping[str, Any] | None) -> Mapping[str, Any] | None:
+    """The results.json ``systematics`` block, its envelope in EnvelopeResult's format.
+    Files written before the envelope took that format (``functions``, ``chosen_at_best``,
+    ``spurious_weights``, ``null_choice`` by label) are read with those keys renamed, so the
+    report and the summary read one format; what they did not keep stays absent."""
+    env = (sy or {}).get("envelope")
+    if not env or "labels" in env or "functions" not in env:
+        return sy
+    new = {k: v for k, v in env.items() if k not in (
+        "functions", "chosen_at_best", "spurious_weights", "candidate_z_local")}
+    labels = list(env["functions"])
+    new.update(labels=labels, spurious=list(env.get("spurious_weights") or ()),
+               best={"function": env.get("chosen_at_best")})
+    if isinstance(env.get("null_choice"), str) and env["null_choice"] in labels:
+        new["null_choice"] = labels.index(env["null_choice"])
+    return {**sy, "envelope": new}
 
 
 def _plain(o: Any) -> Any:
