@@ -125,6 +125,30 @@ def test_systematics_block_with_and_without(run):
     assert "observed, with systematics" in md and "expected, plain" in md
 
 
+def test_calibration_figure_from_the_results_json(run):
+    """The calibration fit is kept in results.json (``calibration.fit``) and read back: its
+    peak mass is the calibration's fitted mass, and SearchResult.plot draws the calibration
+    figure from it (fit panel and pulls, the pair's mass symbol on the mass axis, the
+    fitted and tabulated masses marked)."""
+
+    from matplotlib.figure import Figure
+
+    from peaksift.fitting.result import FitResult
+    from peaksift.search.result import SearchResult
+
+    cal = run["results"]["calibration"]
+    fr = FitResult.from_dict(cal["fit"])
+    assert fr.peak_mass.value == cal["fitted_mass"]["value"]
+    assert fr.peak_mass.error == cal["fitted_mass"]["error"]
+    fig = SearchResult.from_dict(run["results"]).plot(which="calibration")
+    assert isinstance(fig, Figure) and len(fig.axes) == 2
+    top, pulls = fig.axes
+    assert top.get_ylabel().startswith("candidates / ") and pulls.get_ylabel() == "pull"
+    assert pulls.get_xlabel() == r"$m_{\mu\mu}$ [GeV]"
+    names = top.get_legend_handles_labels()[1]
+    assert "fitted mass" in names and "mass in the tables" in names
+
+
 def test_envelope_of_results_json_loads_as_an_envelope_result(run):
     """The demo's results.json writes the envelope in EnvelopeResult's own format: from_dict
     reads it, writes the same keys back (the figure's ``profile`` aside) and equals its own

@@ -37,9 +37,14 @@ from .labels import FigureLabels, figure_labels, save
 from .limits import limits_figure
 from .scan import scan_expectation, scan_figure
 from .search import SEARCH_FIGURES, search_figure, search_figures
-from .spectrum import calibration_figure, spectrum_figure, spectrum_only
+from .spectrum import (
+    calibration_figure,
+    calibration_fit_figure,
+    spectrum_figure,
+    spectrum_only,
+)
 
-__all__ = ["SEARCH_FIGURES", "FigureLabels", "calibration_figure", "candidates",
+__all__ = ["SEARCH_FIGURES", "FigureLabels", "calibration_figure", "calibration_fit_figure", "candidates",
            "candidates_figure", "envelope_figure", "figure_labels", "limits_figure", "save",
            "scan_expectation", "scan_figure", "search_figure", "search_figures",
            "spectrum_figure", "spectrum_only"]

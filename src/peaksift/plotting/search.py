@@ -14,7 +14,12 @@ from .envelope import envelope_figure
 from .labels import FigureLabels, figure_labels, save
 from .limits import _limits_figure
 from .scan import _scan_figure
-from .spectrum import _fit_figure, calibration_figure, spectrum_figure
+from .spectrum import (
+    _fit_figure,
+    calibration_figure,
+    calibration_fit_figure,
+    spectrum_figure,
+)
 
 __all__ = ["SEARCH_FIGURES", "search_figure", "search_figures"]
 
@@ -41,6 +46,7 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
                 and calibration[1] is not None and result.calibration):
             out[name] = calibration_figure(result.calibration, calibration[1], outdir,
                                            formats, labels)
+            continue  # (the fit in hand, not read back from the result's dict)
         for log in ([False, True] if name == "spectrum" and log_scale else [False]):
             fig = search_figure(result, name, labels=labels, log=log, expected=expected)
             if fig is not None:
@@ -51,9 +57,10 @@ def search_figures(result: Any, outdir: str | os.PathLike[str], *,
 
 def search_figure(result: Any, name: str = "spectrum", *, labels: FigureLabels | None = None,
                   log: bool = False, expected: tuple[Any, str] | None = None) -> Any:
-    """The Figure ``name`` (one of :data:`SEARCH_FIGURES` but ``calibration``) of a search
-    result, or None when the result has nothing to draw for it (no limits, blinded
-    candidates, no envelope).  While blinded the spectrum shows the sideband fit."""
+    """The Figure ``name`` (one of :data:`SEARCH_FIGURES`) of a search result, or None when
+    the result has nothing to draw for it (no limits, blinded candidates, no envelope, no
+    calibration).  While blinded the spectrum shows the sideband fit; the calibration
+    figure is drawn from the fit the result keeps (``calibration["fit"]``)."""
     labels = labels or figure_labels(getattr(result, "config", None))
     blind = result.blinding.get("window") if result.blinding.get("active") else None
     env = (getattr(result, "systematics", None) or {}).get("envelope") or {}
@@ -71,6 +78,11 @@ def search_figure(result: Any, name: str = "spectrum", *, labels: FigureLabels |
         return candidates_figure(result.collected, labels)  # (they include the blinded window)
     if name == "background_envelope" and env.get("profile"):
         return envelope_figure(result.systematics, labels=labels)
+    cal = getattr(result, "calibration", None) or {}
+    if name == "calibration" and cal.get("fit"):
+        from ..fitting.result import FitResult
+
+        return calibration_fit_figure(cal, FitResult.from_dict(cal["fit"]), labels)
     return None
 
 

@@ -24,7 +24,7 @@ from .._style import (
 )
 from .labels import FigureLabels, save
 
-__all__ = ["calibration_figure", "spectrum_figure", "spectrum_only"]
+__all__ = ["calibration_figure", "calibration_fit_figure", "spectrum_figure", "spectrum_only"]
 
 
 def spectrum_only(hist: Any, outdir: str | os.PathLike[str], *,
@@ -150,8 +150,14 @@ def _fit_figure(fr: Any, *, log: bool, blind: Sequence[float] | None, title: str
 
 def calibration_figure(cal: Any, fr: Any, outdir: str | os.PathLike[str],
                        formats: Sequence[str], labels: FigureLabels) -> Path:
-    """The calibration peak's fit with the fitted mass (solid) and the tables' mass
-    (dash-dotted) drawn, and the shift between them stated above the axes."""
+    """:func:`calibration_fit_figure` saved as ``calibration`` in ``outdir``."""
+    return save(calibration_fit_figure(cal, fr, labels), outdir, "calibration", formats)
+
+
+def calibration_fit_figure(cal: Any, fr: Any, labels: FigureLabels) -> Any:
+    """The calibration peak's fit ``fr`` (a FitResult) with the fitted mass (solid) and the
+    tables' mass (dash-dotted) drawn, and the shift between them stated above the axes
+    (``cal``: results.json's ``calibration``)."""
     name = particle_tex(cal.get("particle"))
     fm, fe = cal.get("fitted_mass") or {}, None
     if isinstance(fm, dict):
@@ -167,5 +173,4 @@ def calibration_figure(cal: Any, fr: Any, outdir: str | os.PathLike[str],
         marks.append((float(fm), "fitted mass", COLORS["mark"], "-"))
     if fixed(ref) != "n/a":
         marks.append((float(ref), "mass in the tables", COLORS["accent"], "-."))
-    fig = fit_figure(fr, run=labels.run, symbol=labels.symbol, note=note, marks=marks)
-    return save(fig, outdir, "calibration", formats)
+    return fit_figure(fr, run=labels.run, symbol=labels.symbol, note=note, marks=marks)

@@ -153,7 +153,8 @@ class SearchResult:
     known_matches : tuple of KnownMatch
         Known particles near the fitted peak, nearest first.
     calibration : dict or None
-        The calibration check (fitted vs tabulated mass) when configured.
+        The calibration check (fitted vs tabulated mass) when configured; its ``fit`` is
+        the calibration fit (``FitResult.to_dict``), which ``plot(which="calibration")`` draws.
     provenance : dict
         Inputs with sha256, config sha256, seed, versions, start and finish times.
     outdir : Path or None
@@ -306,14 +307,15 @@ class SearchResult:
         """One figure of the search as a matplotlib Figure, drawn without pyplot (the
         user's backend is left alone) exactly as the run writes it: ``which`` is
         ``"spectrum"`` (the fit with pulls and numbers; while blinded the sideband fit),
-        ``"pvalue_scan"``, ``"limits"``, ``"candidates"`` or ``"background_envelope"``.
+        ``"pvalue_scan"``, ``"limits"``, ``"candidates"``, ``"background_envelope"`` or
+        ``"calibration"`` (the calibration peak's fit, which the result keeps).
         Saved to ``path`` when given.  A result read back with :meth:`from_dict` has no
         event-level data: its blinded spectrum is the sideband fit's own figure and it has
         no candidates figure."""
         from .. import plotting
         from ..errors import InputError, closest
 
-        names = [n for n in plotting.SEARCH_FIGURES if n != "calibration"]
+        names = list(plotting.SEARCH_FIGURES)
         if which not in names:
             hint = closest(which, names)
             raise InputError(f"SearchResult.plot: no figure {which!r}"
@@ -328,6 +330,8 @@ class SearchResult:
             why = ("no event-level data (read back from results.json)"
                    if which == "candidates" and self.collected is None else
                    "blinded (it shows the blinded window)" if which == "candidates" else
+                   "no calibration fit (none configured, or a results.json written before "
+                   "the result kept it)" if which == "calibration" else
                    "no results for it")
             raise InputError(f"SearchResult.plot: this result has no {which!r} figure: {why}")
         if path is not None:

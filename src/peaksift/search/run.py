@@ -523,6 +523,7 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "problems": list(d.get("problems") or []),
         "gof": d.get("gof"),
         "fitted_mass": {"value": m, "error": e},
+        "fit": d,  # the whole fit (FitResult.to_dict): SearchResult.plot draws it
         "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),
         "shift": m - ref.mass,
