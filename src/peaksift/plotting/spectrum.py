@@ -23,6 +23,7 @@ from .._style import (
     shade_blinded,
 )
 from .labels import FigureLabels, save
+from .legend import place_legend
 
 __all__ = ["calibration_figure", "calibration_fit_figure", "spectrum_figure", "spectrum_only"]
 
@@ -77,9 +78,15 @@ def spectrum_figure(hist: Any, *, log: bool = False, blind: Sequence[float] | No
                                     gridspec_kw={"height_ratios": [3.2, 1], "hspace": 0.05})
     with figure_style():
         h.plot(ax=ax, color=COLORS["data"])
+        # what the legend must not cover: the points with their error bars (as h.plot
+        # draws them: per GeV for variable bins) and the sideband fit's curve
+        per = 1.0 if h.is_regular else 1.0 / h.widths
+        y, err = h.weight_sum * per, np.sqrt(h.weight_sq_sum) * per
+        keep = (h.centers, y - err, y + err)
         shade_blinded(ax, span)
         if background is not None:
-            _draw_sideband_fit(ax, axp, background, span)
+            cx, cy = _draw_sideband_fit(ax, axp, background, span)
+            keep = tuple(np.r_[a, b] for a, b in zip(keep, (cx, cy, cy)))
         if log:
             ax.set_yscale("log")
             pos = shown[shown > 0]  # the axis range must not reveal the hidden bins
@@ -91,18 +98,20 @@ def spectrum_figure(hist: Any, *, log: bool = False, blind: Sequence[float] | No
         if axp is not None:
             ax.set_xlabel("")
             ax.set_xlim(float(hist.edges[0]), float(hist.edges[-1]))
-        ax.legend(loc="upper right")
         note = "\n".join(p for p in (title, count) if p)
         if "\n" in note:  # a second statement line above the axes
             margins(fig, top=0.78)
         draw_header(ax, labels.run, note)
+        place_legend(ax, *keep, log=log)  # last: on the final axes
     return fig
 
 
-def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None) -> None:
+def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None
+                       ) -> tuple[np.ndarray, np.ndarray]:
     """The background fitted on the sidebands (``search.sideband.SidebandFit``): solid
     where it was fitted, dashed across the blinded window where it is extrapolated, its
-    goodness of fit in the legend; the pulls of the sideband bins beneath."""
+    goodness of fit in the legend; the pulls of the sideband bins beneath.  Returns the
+    curve drawn (bin centres, values)."""
     e = np.asarray(sb.edges, float)
     c = 0.5 * (e[1:] + e[:-1])
     bw = np.diff(e)
@@ -128,6 +137,7 @@ def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None)
         else 3.5
     axp.set_ylim(-lim, lim)
     axp.set_ylabel("pull")
+    return c, y
 
 
 def _fit_figure(fr: Any, *, log: bool, blind: Sequence[float] | None, title: str,
