@@ -11,6 +11,7 @@ import numpy as np
 from .._format import fixed, number
 from .._style import COLORS, draw_header, figure_style, new_figure
 from .labels import FigureLabels
+from .legend import place_legend
 
 __all__ = ["envelope_figure"]
 
@@ -51,5 +52,10 @@ def envelope_figure(systematics: Any, *, labels: FigureLabels | None = None) -> 
         draw_header(ax, labels.run, f"discrete profiling at {number(prof['mass'])} GeV: "
                     f"{len(prof['curves'])} functions, penalty {fixed(env['penalty'], 2)} per "
                     "parameter")
-        ax.legend(loc="upper center", fontsize=8.5, ncol=min(3, len(prof["curves"]) + 1))
+        # the legend where no curve runs: the curves sampled finely enough that none passes
+        # between two samples across the legend's box
+        fine = np.linspace(s[0], s[-1], 600)
+        ys = [np.interp(fine, s, np.asarray(c, float)) for c in (e, *prof["curves"].values())]
+        place_legend(ax, np.tile(fine, len(ys)), np.concatenate(ys), fontsize=8.5,
+                     ncol=min(3, len(prof["curves"]) + 1))
     return fig
