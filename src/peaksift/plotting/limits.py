@@ -12,6 +12,7 @@ import numpy as np
 
 from .._style import COLORS, figure_style
 from .labels import FigureLabels, figure_labels, save
+from .legend import place_legend
 
 __all__ = ["limits_figure"]
 
@@ -26,9 +27,36 @@ def limits_figure(result: Any, outdir: str | os.PathLike[str], formats: Sequence
 def _limits_figure(result: Any, labels: FigureLabels) -> Any:
     fig = result.limits.plot(run=labels.run, symbol=labels.symbol)
     lim_s = ((getattr(result, "systematics", None) or {}).get("limits") or {})
-    if lim_s.get("with_systematics"):
-        _limits_with_systematics(fig.axes[0], lim_s["with_systematics"])
+    w = lim_s.get("with_systematics")
+    if w:
+        _limits_with_systematics(fig.axes[0], w)
+    lim = result.limits
+    curves = [lim.observed, lim.expected]
+    if w:
+        curves += [[np.nan if v is None else v for v in w[k]] for k in ("observed", "expected")]
+    _legend_clear(fig.axes[0], np.asarray(lim.masses, float), curves,
+                  (lim.expected_minus2, lim.expected_plus2), fontsize=8.5 if w else None)
     return fig
+
+
+def _legend_clear(ax: Any, m: np.ndarray, curves: Any, band: Any,
+                  fontsize: float | None) -> None:
+    """The legend where it covers no limit curve and no part of the ±2 sigma band, both
+    sampled finely along the mass axis (straight between points on the log axis, as
+    drawn)."""
+    fine = np.linspace(m[0], m[-1], 400)
+
+    def on(v: Any) -> np.ndarray:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.exp(np.interp(fine, m, np.log(np.asarray(v, float))))
+
+    xs = [fine] + [fine] * len(curves)
+    lo = [on(band[0])] + [on(c) for c in curves]
+    hi = [on(band[1])] + [on(c) for c in curves]
+    kw = {"ncol": 2} | ({"fontsize": fontsize} if fontsize else {})
+    with figure_style():
+        place_legend(ax, np.concatenate(xs), np.concatenate(lo), np.concatenate(hi),
+                     log=ax.get_yscale() == "log", **kw)
 
 
 def _limits_with_systematics(ax: Any, w: Any) -> None:
@@ -49,4 +77,3 @@ def _limits_with_systematics(ax: Any, w: Any) -> None:
                 label="expected, all systematics", zorder=4)
         ax.plot(m, arr("observed"), color=COLORS["signal"], lw=1.6, marker="o", ms=3,
                 label="observed, all systematics", zorder=5)
-        ax.legend(loc="upper right", ncol=2, fontsize=8.5)
