@@ -125,8 +125,9 @@ def interrupt_held() -> Iterator[None]:
     try:
         yield
     finally:
-        if main:
-            signal.signal(signal.SIGINT, old_handler)
+        if main:  # (None: a handler not set from Python; Python's own is the nearest)
+            signal.signal(signal.SIGINT, signal.default_int_handler if old_handler is None
+                          else old_handler)
         # a SIGINT pending on this thread (or the process) is delivered here, to the handler
         # the caller had; one noted by an older thread is raised again the same way
         signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)
