@@ -236,3 +236,47 @@ def test_combination_settings_are_checked_against_the_schema():
         run_combination({"combination": {**base, "significance": {"method": "guess"}}},
                         out=False)
 
+
+
+def _plain_channel(demo_dir, tmp_path) -> str:
+    """The demo search without [systematics] and [calibration] (a cheaper channel), its
+    input named by absolute path; written to ``tmp_path``."""
+    keep, skip = [], False
+    for line in (demo_dir / "search.toml").read_text().splitlines():
+        if line.startswith("["):
+            skip = line.strip() in ("[systematics]", "[calibration]")
+        if not skip:
+            keep.append(line)
+    text = "\n".join(keep).replace('files = ["events_*.parquet"]',
+                                   f'files = ["{demo_dir}/events_*.parquet"]')
+    path = tmp_path / "plain.toml"
+    path.write_text(text + "\n")
+    return str(path)
+
+
+def test_combination_significance_settings_change_the_global_significance(demo_dir,
+                                                                          tmp_path):
+    """[combination.significance] is what the combined global significance uses, not the
+    channel's [significance] (upcrossings, 100 toys): with method = "toys", toys = 30 and
+    its own seed the combination counts 30 background-only toys.  Outside reference: the
+    toy p-value is the binomial frequency k / n with its standard error sqrt(p (1 - p) / n)
+    (common practice; tolerance 1e-12), floored at the local p-value; the channel's own
+    result keeps the channel's method."""
+    channel = _plain_channel(demo_dir, tmp_path)
+    comb = run_combination({"combination": {
+        "channels": [channel], "names": ["dimuon"], "limits": {"enabled": False},
+        "significance": {"method": "toys", "toys": 30, "seed": 5}}}, out=False)
+    best, own = comb.best, comb.channels["dimuon"].to_dict()["best"]
+    assert own["global_method"] != "toys"
+    assert best["global_method"] == "toys" and best["n_toys"] + best["n_failed_toys"] == 30
+    n, k = best["n_toys"], best["n_toys_above"]
+    if k:
+        p = k / n
+        assert best["p_global"] == pytest.approx(max(p, best["p_local"]), rel=1e-12)
+        assert best["p_global_error"] == pytest.approx(np.sqrt(p * (1 - p) / n), rel=1e-12)
+    else:  # no toy above: the 95% upper bound 1 - 0.05^(1/n) (Clopper-Pearson, k = 0)
+        assert best["p_global"] == pytest.approx(max(1 - 0.05 ** (1 / n), best["p_local"]),
+                                                 rel=1e-12)
+    # and they are the toys of the combination's seed (5), not of the channel's
+    direct = comb.combination.global_significance("toys", toys=30, seed=5)
+    assert direct["n_toys_above"] == k and direct["p_global"] == best["p_global"]
