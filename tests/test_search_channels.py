@@ -280,3 +280,31 @@ def test_combination_significance_settings_change_the_global_significance(demo_d
     # and they are the toys of the combination's seed (5), not of the channel's
     direct = comb.combination.global_significance("toys", toys=30, seed=5)
     assert direct["n_toys_above"] == k and direct["p_global"] == best["p_global"]
+
+
+def test_combined_grid_covers_the_common_range_with_the_finest_step(demo_dir):
+    """The combined scan's hypotheses: the demo's dimuon and dielectron channels both scan
+    120-190 GeV; each step is the smaller of the two channels' half resolutions at that mass,
+    their config tables interpolated linearly here with numpy.interp (the outside reference;
+    tolerance 1e-9 GeV) -- the dielectron's, finer, everywhere here, where the first
+    channel's own grid would be coarser.  One channel keeps its own grid; channels whose
+    scans do not overlap are refused."""
+    import tomllib
+
+    from peaksift.search.combination import combined_masses
+    from peaksift.search.common import _scan_masses
+
+    cfgs = [load_config(demo_dir / f"{n}.toml") for n in ("dimuon", "dielectron")]
+    tables = [np.array(tomllib.loads((demo_dir / f"{n}.toml").read_text())["model"]
+                       ["resolution"]["table"]) for n in ("dimuon", "dielectron")]
+    grid = combined_masses(cfgs)
+    assert grid[0] == 120.0 and grid[-1] == pytest.approx(190.0, abs=1e-9)
+    half = np.min([0.5 * np.interp(grid[:-1], t[:, 0], t[:, 1]) for t in tables], axis=0)
+    np.testing.assert_allclose(np.diff(grid)[:-1], half[:-1], rtol=0, atol=1e-9)
+    assert 0 < grid[-1] - grid[-2] <= half[-1] + 1e-9
+    assert grid.size > _scan_masses(cfgs[0]).size
+    assert np.array_equal(combined_masses(cfgs[:1]), _scan_masses(cfgs[0]))
+    apart = dataclasses.replace(cfgs[1], scan=dataclasses.replace(cfgs[1].scan, start=191.0,
+                                                                   stop=195.0))
+    with pytest.raises(ConfigError, match="no common part"):
+        combined_masses([cfgs[0], apart])
