@@ -104,7 +104,7 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
 
 @njit(cache=True, nogil=True)
 def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff, nn, ff,
-               g, dg, d2, wv, grad, hess, pos, coef, aj):  # pragma: no cover - compiled
+               g, dg, d2, grad, hess, pos, coef, aj):  # pragma: no cover - compiled
     """Gradient and exact Hessian of row ``r`` at ``x`` (as the Python ``_grad_hess``);
     ``pos``, ``coef``, ``aj``: work buffers of ``x.size``."""
     nc = kpar.size
@@ -143,12 +143,18 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
                 aj[na] = a_norm[c, j]
                 nsig += 1
                 na += 1
-        # the sums of channel_sums, in its order
+        # the sums of channel_sums, each in its order, in one pass over the bins
+        kq = kpar[c]
         a0 = 0.0
         a1 = 0.0
         a2 = 0.0
         c0 = 0.0
         c1 = 0.0
+        e0 = 0.0
+        e1 = 0.0
+        e2 = 0.0
+        h0 = 0.0
+        h1 = 0.0
         for i in range(b0, b1):
             fi = fc[r, i - b0]
             gi = g[i]
@@ -156,30 +162,20 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
             ratio = nc_[rn, i - b0] * inv
             w = 1.0 - ratio
             v = ratio * inv
-            wv[0, i] = w
-            wv[1, i] = v
             fv = fi * v
             a0 += fi * w
             a1 += fi * fv
             a2 += gi * fv
             c0 += gi * w
             c1 += gi * gi * v
-        kq = kpar[c]
-        e0 = 0.0
-        e1 = 0.0
-        e2 = 0.0
-        h0 = 0.0
-        h1 = 0.0
-        if kq:
-            for i in range(b0, b1):
+            if kq:
                 dk = dg[i]
-                dv = dk * wv[1, i]
-                e0 += fc[r, i - b0] * dv
-                e1 += g[i] * dv
-                e2 += dk * wv[0, i]
-            for i in range(b0, b1):
-                h0 += dg[i] * wv[1, i] * dg[i]
-                h1 += dc[rd, i - b0] * wv[0, i]
+                dv = dk * v
+                e0 += fi * dv
+                e1 += gi * dv
+                e2 += dk * w
+                h0 += dk * v * dk
+                h1 += dc[rd, i - b0] * w
         # the channel's block over (signal columns, b, theta), scattered into the row's
         bi = first[c]
         for q in range(nsig):
@@ -235,7 +231,6 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
     gbuf = np.empty((1, nw))
     tg = np.empty(ntot)
     tdg = np.empty(ntot)
-    wv = np.empty((2, ntot))
     grad = np.empty(p)
     hess = np.empty((p, p))
     err = np.empty(p)
@@ -265,7 +260,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         lam = 1e-3
         for _it in range(steps):
             _grad_hess(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff,
-                       nn, ff, g, dg, d2, wv, grad, hess, pos, coef, aj)
+                       nn, ff, g, dg, d2, grad, hess, pos, coef, aj)
             hess_out[r] = hess
             for i in range(p):
                 err[i] = math.sqrt(abs(1.0 / hess[i, i]))
