@@ -25,7 +25,7 @@ import pytest
 from scipy import integrate, special
 
 from peaksift import shapes
-from peaksift.shapes._base import Shape
+from peaksift.shapes import Shape
 
 WINDOW = (110.0, 200.0)
 EDGES = np.linspace(100.0, 200.0, 41)   # 2.5 GeV bins; the first 4 lie below the window
