@@ -33,7 +33,7 @@ import numpy as np
 from numba import njit
 
 from ..shapes import Exponential, ExpPoly, Gaussian, PowerLaw
-from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
+from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges, vlog
 
 __all__ = ["FusedBinned", "edge_kernel"]
 
@@ -42,7 +42,7 @@ __all__ = ["FusedBinned", "edge_kernel"]
 _SUMS = {"reassoc", "contract"}
 
 
-@njit(cache=True, nogil=True, fastmath=_SUMS)
+@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
 def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n, s,
                  unit, floor, info, mu_out, jac, g, fisher):  # pragma: no cover - compiled
     """Over the used ``bins``: expected counts from the CDF rows, the NLL without its
@@ -78,13 +78,14 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
             i = j if contiguous else bins[j]
             jac[a, j] = y * (cdf[r, i + 1] - cdf[r, i])
     val = 0.0
+    # (numpy's error model: no zero-division checks, so the loops below vectorise; every
+    # divisor is an expectation, floored above 0 here or NaN)
     for j in range(nb):
         mu = mu_out[j]
-        if mu < floor:
-            mu = floor
-            mu_out[j] = mu
+        mu = floor if mu < floor else mu  # noqa: FURB136 (max() may drop a NaN)
+        mu_out[j] = mu
         sj = 1.0 if unit else s[j]
-        val += sj * mu - n[j] * math.log(mu)
+        val += sj * mu - n[j] * vlog(mu)  # vlog: this loop vectorises
     # residual and weight per bin, then one vectorised sum per entry
     res = np.empty(nb)
     w = np.empty(nb)
