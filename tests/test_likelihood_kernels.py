@@ -45,8 +45,9 @@ def _exp_cdf(x, b, lo, hi):
 
 
 @pytest.mark.parametrize(("name", "params", "window", "ref"), [
-    ("gaussian", [150.0, 4.0], (100.0, 300.0), _gauss_cdf),
+    ("gaussian", [150.0, 4.0], (100.0, 300.0), _gauss_cdf),  # far tail (> 12 sigma) cut
     ("gaussian", [90.0, 3.0], (110.0, 200.0), _gauss_cdf),  # window above the peak
+    ("gaussian", [90.0, 1.5], (110.0, 200.0), _gauss_cdf),  # 13 sigma above: no tail cut
     ("powerlaw", [4.0], (100.0, 1450.0), _power_cdf),
     ("powerlaw", [-1.5], (20.0, 60.0), _power_cdf),
     ("exponential", [-2.0], (100.0, 300.0), _exp_cdf),
