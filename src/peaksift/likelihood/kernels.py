@@ -304,7 +304,7 @@ def _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c):  # pragma: no cov
     return math.inf if bad else val + band
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
 def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - compiled
     """Profile a signal yield and a background normalisation at each trial mass: row m of
     ``f`` holds the signal's bin fractions at mass m, ``g`` the background's; ``x (M, 2)``
