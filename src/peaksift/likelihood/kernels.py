@@ -59,24 +59,38 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
     for j in range(nb):
         mu_out[j] = 0.0
     # row by row (vectorised): bin fractions of each component into mu and the jacobian
+    # (contiguous bins in loops of their own, on row views: those vectorise)
     for k in range(ncomp):
-        r = value_row[k]
+        row = cdf[value_row[k]]
         y = yields[k]
         a = yield_free[k]
-        for j in range(nb):
-            i = j if contiguous else bins[j]
-            d = cdf[r, i + 1] - cdf[r, i]
-            d = max(0.0, d)
-            mu_out[j] += y * d
-            if a >= 0:
-                jac[a, j] = d
+        if contiguous and a >= 0:
+            ja = jac[a]
+            for j in range(nb):
+                d = max(0.0, row[j + 1] - row[j])
+                mu_out[j] += y * d
+                ja[j] = d
+        elif contiguous:
+            for j in range(nb):
+                mu_out[j] += y * max(0.0, row[j + 1] - row[j])
+        else:
+            for j in range(nb):
+                i = bins[j]
+                d = max(0.0, row[i + 1] - row[i])
+                mu_out[j] += y * d
+                if a >= 0:
+                    jac[a, j] = d
     for q in range(nd):
-        r = drow[q]
-        a = dfree[q]
+        row = cdf[drow[q]]
+        ja = jac[dfree[q]]
         y = yields[dcomp[q]]
-        for j in range(nb):
-            i = j if contiguous else bins[j]
-            jac[a, j] = y * (cdf[r, i + 1] - cdf[r, i])
+        if contiguous:
+            for j in range(nb):
+                ja[j] = y * (row[j + 1] - row[j])
+        else:
+            for j in range(nb):
+                i = bins[j]
+                ja[j] = y * (row[i + 1] - row[i])
     val = 0.0
     # (numpy's error model: no zero-division checks, so the loops below vectorise; every
     # divisor is an expectation, floored above 0 here or NaN)
@@ -91,18 +105,21 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
     w = np.empty(nb)
     for j in range(nb):
         sj = 1.0 if unit else s[j]
-        w[j] = sj / mu_out[j]
-        res[j] = sj - n[j] / mu_out[j]
+        inv = 1.0 / mu_out[j]  # one division per bin
+        w[j] = sj * inv
+        res[j] = sj - n[j] * inv
     for a in range(npar):
+        ja = jac[a]
         acc = 0.0
         for j in range(nb):
-            acc += jac[a, j] * res[j]
+            acc += ja[j] * res[j]
         g[a] = acc
         if info:
             for b in range(a + 1):
+                jb = jac[b]
                 acc = 0.0
                 for j in range(nb):
-                    acc += w[j] * jac[a, j] * jac[b, j]
+                    acc += w[j] * ja[j] * jb[j]
                 fisher[a, b] = acc
                 fisher[b, a] = acc
     return val
