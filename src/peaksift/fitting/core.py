@@ -223,7 +223,8 @@ def fit(
     sh = start_bins(d)
     starts = fit_starts(model, _read_only(sh.edges), _read_only(sh.values()),
                         _read_only(sh.scaled_poisson_factors()), base, is_fixed, given, lower,
-                        upper, d.total, retries)
+                        upper, d.total, retries,
+                        fine=(edges, counts, scale) if d.binned else None)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
     best, tried, calls = None, [], 0

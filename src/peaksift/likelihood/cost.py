@@ -15,6 +15,7 @@ to all of them here, once.
 from __future__ import annotations
 
 import copy
+import math
 from collections.abc import Sequence
 from typing import Any
 
@@ -195,6 +196,9 @@ class BinnedCost(_Cost):
         jac = self._jac
         mu, blocks = self.expectation(x, jac)
         self._state = (x.tobytes(), mu, blocks)
+        if mu.min(initial=0.0) < 0.0:  # a negative Poisson mean: outside the model
+            k = self.free.size
+            return math.inf, np.zeros(k), np.zeros((k, k)) if info else None
         mu = np.maximum(mu, MU_FLOOR)
         n, s = self.n, self.s
         # binned_nll in effective counts, with its constant precomputed (this is the hot path)

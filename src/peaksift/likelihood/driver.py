@@ -200,8 +200,9 @@ def _hessian(prob, full, free, x, steps, lower, upper, hess):  # pragma: no cove
             continue
         if not _shape_rows(prob, k, v, out):
             return False
-    poisson_pass(cdf, value_row, yields, yfree, drow, dcomp, dfree, bins, n, s, unit, floor,
-                 False, mu, jac, g, fisher)
+    if not math.isfinite(poisson_pass(cdf, value_row, yields, yfree, drow, dcomp, dfree, bins,
+                                      n, s, unit, floor, False, mu, jac, g, fisher)):
+        return False  # a negative expectation: outside the model
     npar = free.size
     nb = bins.size
     contiguous = nb == cdf.shape[1] - 1

@@ -50,7 +50,8 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
     ``value_row[k]``: CDF row of component k, ``yields[k]`` its yield and ``yield_free[k]``
     its free index (or -1); derivative rows ``drow`` of component ``dcomp`` at free index
     ``dfree``; ``jac`` (free parameters x used bins) is scratch.  Bin fractions are floored
-    at 0 and the expectation at ``floor`` as in the numpy path."""
+    at 0 and the expectation at ``floor`` as in the numpy path; a negative expectation
+    returns an infinite NLL (the rest of the outputs then unset)."""
     ncomp = value_row.size
     nd = drow.size
     npar = g.size
@@ -92,14 +93,21 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
                 i = bins[j]
                 ja[j] = y * (row[i + 1] - row[i])
     val = 0.0
+    lowest = 0.0
     # (numpy's error model: no zero-division checks, so the loops below vectorise; every
     # divisor is an expectation, floored above 0 here or NaN)
     for j in range(nb):
         mu = mu_out[j]
+        # a negative Poisson mean (a negative yield deeper than the background under it) is
+        # outside the model: rejected after the loop, not floored -- floored, an empty bin
+        # would let a negative peak dig on at no cost (a select, so the loop vectorises)
+        lowest = mu if mu < lowest else lowest
         mu = floor if mu < floor else mu  # noqa: FURB136 (max() may drop a NaN)
         mu_out[j] = mu
         sj = 1.0 if unit else s[j]
         val += sj * mu - n[j] * vlog(mu)  # vlog: this loop vectorises
+    if lowest < 0.0:
+        return math.inf
     # residual and weight per bin, then one vectorised sum per entry
     res = np.empty(nb)
     w = np.empty(nb)

@@ -5,9 +5,13 @@ likelihood scan of the window.
 local maxima of a coarse profile-likelihood scan (signal and background yields profiled at
 each mass on at most 100 bins, the background shape from a background-only fit), so a fit
 starts at every plausible peak, not only at the largest excess; :func:`peaksift.fitting.fit`
-then keeps the lowest minimum.  A local maximum far below the best one (see
-:func:`worth_trying`) is not a candidate: in practice it is never the lowest minimum, and minimising
-it cost most of a fit's time on strong peaks.
+then keeps the lowest minimum.  The same scan's deepest dips are candidates too (a negative
+signal yield, which the fit's bounds allow), and so, in a binned fit, are the data's most
+significant single bins above and below the background, with a peak narrower than a bin
+(:func:`narrow_candidates`): on background-only spectra these are often the lowest minimum, and a
+fit that never starts there reports a higher one.  A candidate far below the best one (see
+:func:`worth_trying`) is not minimised: in practice it is never the lowest minimum, and
+minimising it cost most of a fit's time on strong peaks.
 """
 
 from __future__ import annotations
@@ -24,7 +28,14 @@ from .minimize import damped_step, minimize
 from .model import Model
 from .poisson import binned_gradient, binned_information, binned_nll, use_compiled
 
-__all__ = ["CANDIDATE_MARGIN", "background_start", "fit_starts", "peak_candidates", "worth_trying"]
+__all__ = [
+    "CANDIDATE_MARGIN",
+    "background_start",
+    "fit_starts",
+    "narrow_candidates",
+    "peak_candidates",
+    "worth_trying",
+]
 
 #: numerical failures a helper fit may meet; a failed helper fit only costs a worse start
 _NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError, PeaksiftError)
@@ -60,15 +71,21 @@ def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.n
 
 
 def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarray, background: np.ndarray,
-                    most: int = 3) -> list[tuple[int, float]]:
+                    most: int = 3, sign: float = 1.0) -> list[tuple[int, float]]:
     """Local maxima of a coarse profile-likelihood scan, best first.
 
     ``signal_fractions (M, N)`` are the signal's bin fractions at M trial masses,
     ``background (N,)`` the background expectation.  At each mass the signal yield and the
     background normalisation are profiled (a few stacked damped Newton steps on
     :func:`~peaksift.likelihood.poisson.binned_nll`); returns ``[(mass index, 2 dNLL)]`` for
-    up to ``most`` separated local maxima with a positive signal.
+    up to ``most`` separated local maxima with a positive signal (``sign=-1``: a negative
+    one, the dips).
     """
+    return _local_maxima(*_coarse_profile(n, scale, signal_fractions, background), most, sign)
+
+
+def _coarse_profile(n, scale, signal_fractions, background):
+    """(profiled yields (M, 2), NLL (M,), background-only NLL) of :func:`peak_candidates`."""
     f = np.asarray(signal_fractions, float)
     b0 = np.maximum(np.asarray(background, float), 1e-12)
     m = f.shape[0]
@@ -84,7 +101,7 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
         sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), g.shape)
         profile_two_yields(np.ascontiguousarray(n, float), np.ascontiguousarray(sc),
                            np.ascontiguousarray(f), g, x, nll, 25)
-        return _local_maxima(x, nll, nll0, most)
+        return x, nll, nll0
     dmu = np.stack([f, np.broadcast_to(g, f.shape)], axis=1)  # (M, 2, N)
     lam = np.full(m, 1e-3)
     quiet = 0
@@ -105,11 +122,11 @@ def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarr
             quiet = quiet + 1 if np.all(gain < 1e-6) else 0
             if quiet >= 2:
                 break  # no mass gains any more (a coarse scan needs no more)
-    return _local_maxima(x, nll, nll0, most)
+    return x, nll, nll0
 
 
-def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int):
-    q = np.where((x[:, 0] > 0) & np.isfinite(nll), 2.0 * (nll0 - nll), 0.0)
+def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int, sign: float = 1.0):
+    q = np.where((sign * x[:, 0] > 0) & np.isfinite(nll), 2.0 * (nll0 - nll), 0.0)
     # q[i] > 0, not below either neighbour (the ends compare with their one neighbour)
     pad = np.concatenate([[-np.inf], q, [-np.inf]])
     peaks = np.flatnonzero((q > 0) & (q >= pad[:-2]) & (q >= pad[2:]))
@@ -117,23 +134,145 @@ def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int):
     return [(int(i), float(q[i])) for i in peaks[:most]]
 
 
+#: the narrow peaks a binned fit also starts from: these widths in units of the local bin
+#: (a Gaussian of 0.3 bin centred in a bin keeps 90 % inside it, so the fit can still narrow
+#: it down to one bin or shift it to split between two; 1.2 bins spreads over about three),
+#: centred on every bin and on every edge between two bins
+NARROW_WIDTHS = (0.3, 0.6, 1.2)
+#: bins on each side of a narrow peak's bin that its fractions are computed on
+_STENCIL = 3
+#: narrow candidates of one sign are minimised while their gain (background held) trails
+#: the best one's by at most this in -2 ln L: the free fit's refit of the background adds a
+#: few units, most where the bins hold few events (an empty bin in a steep tail that gained
+#: 3.8 less than the best deficit with the background held ended 2.2 below it)
+NARROW_SPREAD = 6.0
+#: a narrow candidate is minimised only when its gain (background held) comes within this
+#: of the coarse scan's best gain: held or not, a peak narrower than a bin gains about the
+#: same (its bins are few), so unlike the coarse scan's candidates it needs no wide margin
+#: -- on a strong peak the narrow peak on top of it (gain 318 against 369) is not minimised
+NARROW_MARGIN = 2.0 * NARROW_SPREAD
+
+
+def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None,
+                      background: np.ndarray, q_best: float = 0.0,
+                      most: tuple[int, int] = (1, 3)) -> list[tuple[float, float, float, float]]:
+    """The best ``most[0]`` separated narrow peaks above and ``most[1]`` below the
+    background (those within :data:`NARROW_SPREAD` of the best of their sign): a Gaussian of
+    :data:`NARROW_WIDTHS` bins at every bin centre and bin edge, its yield profiled on the
+    background expectation ``background`` held fixed (a few Newton steps on the bins within
+    :data:`_STENCIL` of it).  Returns ``[(mass, width, yield, gain in -2 ln L)]``, the larger
+    gain first; only gains within :data:`NARROW_MARGIN` of ``q_best``, and a position
+    whose nearby bins' Poisson deviances (they bound its gain) fall short of that is not
+    evaluated."""
+    from scipy.special import ndtr
+
+    e = np.asarray(edges, float)
+    nb = e.size - 1
+    sc = np.ones(nb) if scale is None else np.broadcast_to(np.asarray(scale, float), (nb,))
+    nn = np.asarray(n, float)
+    bb = np.maximum(np.asarray(background, float), 1e-300)
+    k = _STENCIL
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dev = 2.0 * sc * (bb - nn + np.where(nn > 0, nn * np.log(np.where(nn > 0, nn, 1.0) / bb),
+                                            0.0))
+    dev = np.where(np.isfinite(dev), dev, 0.0)
+    # padding: k empty bins of zero width on each side
+    ep = np.concatenate([np.full(k, e[0]), e, np.full(k, e[-1])])
+    npd = np.concatenate([np.zeros(k), nn, np.zeros(k)])
+    bpd = np.concatenate([np.ones(k), bb, np.ones(k)])
+    spd = np.concatenate([np.zeros(k), sc, np.zeros(k)])
+    cdev = np.concatenate([[0.0], np.cumsum(np.concatenate([np.zeros(k), dev, np.zeros(k)]))])
+    bound = cdev[2 * k + 1:] - cdev[:nb]  # deviances of bins j-k .. j+k
+    rows = np.flatnonzero((bound > 0) & (bound >= q_best - NARROW_MARGIN))
+    if rows.size == 0:
+        return []
+    width = np.diff(e)[rows]
+    sel = rows[:, None] + np.arange(2 * k + 1)  # padded bins j-k .. j+k
+    xe = ep[rows[:, None] + np.arange(2 * k + 2)]
+    n_r, b_r, s_r = npd[sel], bpd[sel], spd[sel]
+    centre = 0.5 * (e[rows] + e[rows + 1])
+    out = []
+    for pos in (centre, e[rows]):  # centred in bin j, and on its lower edge
+        for f_w in NARROW_WIDTHS:
+            w = f_w * width
+            f = np.diff(ndtr((xe - pos[:, None]) / w[:, None]), axis=1)
+            y, gain = _profile_one_yield(n_r, b_r, s_r, f)
+            out.append((pos, w, y, gain))
+    pos = np.concatenate([o[0] for o in out])
+    w = np.concatenate([o[1] for o in out])
+    y = np.concatenate([o[2] for o in out])
+    gain = np.concatenate([o[3] for o in out])
+    best = []
+    for sign, k_most in zip((1.0, -1.0), most):
+        g = np.where((sign * y > 0) & (pos >= e[0]) & (pos <= e[-1]), gain, -1.0)
+        order = np.argsort(-g, kind="stable")
+        taken: list[int] = []
+        for i in order[:8 * k_most]:
+            if (g[i] <= 0 or g[i] < q_best - NARROW_MARGIN
+                    or (taken and g[i] < g[taken[0]] - NARROW_SPREAD)):
+                break
+            if all(abs(pos[i] - pos[t]) > 2.0 * (w[i] + w[t]) for t in taken):
+                taken.append(int(i))
+                if len(taken) == k_most:
+                    break
+        for i in taken:
+            j = int(rows[i % rows.size])
+            best.append((float(pos[i]), float(w[i]), float(y[i]), float(g[i])))
+            if sign < 0 and nn[j] == 0 and pos[i] == centre[i % rows.size]:
+                # an empty bin: a dip's lowest point may be an expectation of 0 there, on
+                # the model's edge, which a minimiser reaches slowly from a wider peak (one
+                # stopped at 0.3 bin, 0.6 above it) -- or one reaching into the next bin
+                # (from all inside the bin, 0.4 above it): both are started
+                best.append((float(pos[i]), 0.1 * float(width[i % rows.size]),
+                             -0.98 * float(bb[j]), float(g[i])))
+    return sorted(best, key=lambda t: -t[3])
+
+
+def _profile_one_yield(n, b, s, f, steps: int = 8):
+    """(yield, gain 2 dNLL) of ``b + y f`` against ``b`` per row, the yield by Newton steps
+    on the Fisher information, each step halved while any bin's expectation would drop below
+    1 % of its background (an empty bin's optimum is an expectation of 0)."""
+    y = np.zeros(n.shape[0])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for _ in range(steps):
+            mu = b + y[:, None] * f
+            grad = (s * f * (1.0 - n / mu)).sum(1)
+            info = (s * f * f / mu).sum(1)
+            step = np.where(info > 0, -grad / info, 0.0)
+            for _ in range(30):
+                low = (b + (y + step)[:, None] * f < 0.01 * b).any(1)
+                if not low.any():
+                    break
+                step = np.where(low, 0.5 * step, step)
+            y = np.where(np.isfinite(step), y + step, y)
+        mu = b + y[:, None] * f
+        lr = np.where(n > 0, n * np.log(mu / b), 0.0)
+        gain = 2.0 * (s * (lr - (mu - b))).sum(1)
+    return y, np.where(np.isfinite(gain), gain, 0.0)
+
+
 def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
                base: np.ndarray, is_fixed: np.ndarray, given: dict[str, float],
                lower: np.ndarray, upper: np.ndarray, total: float,
-               retries: int) -> Iterator[tuple[bool, Callable[[], np.ndarray]]]:
+               retries: int, fine: tuple | None = None,
+               ) -> Iterator[tuple[bool, Callable[[], np.ndarray]]]:
     """Starting points, best first, as ``(essential, make)`` with ``make(near=None)`` giving
     the full parameter vector: background from the sidebands of each candidate peak, the peak
     at each local maximum of the coarse likelihood scan (essential: every one is minimised),
-    then other widths at the best candidate (essential too when a width is free to vary, else
-    tried only while no valid fit is found).  Given ``near`` (the full vector of the best
-    minimum so far), an other-width start is that minimum with its free widths scaled.  ``given`` holds the parameters whose starts
-    (or fixed values) the caller set.
+    other widths at the best candidate (essential too when a width is free to vary, else
+    tried only while no valid fit is found), then the scan's deepest dips (a negative yield)
+    and, given ``fine`` (the data's own ``(edges, counts, scaled-Poisson factors)`` in a
+    binned fit), a peak narrower than a bin on the bins most above and below the background
+    (:func:`narrow_candidates`; essential, when their gains can win).  Given
+    ``near`` (the full vector of the best minimum so far), an other-width start is that
+    minimum with its free widths scaled.  ``given`` holds the parameters whose starts (or
+    fixed values) the caller set; a given mass is not scanned (no dips, no spikes).
 
     Lazy: the coarse scan runs at the first step and each start (a sideband fit) only when
     ``make`` is called, so the other widths cost nothing once a valid minimum is found.
     """
     with np.errstate(all="ignore"):
-        first = _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper)
+        first = _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine)
     if first is None:  # no free signal: the background-only start (and the given one)
         def background_only(near: np.ndarray | None = None) -> np.ndarray:
             with np.errstate(all="ignore"):
@@ -145,27 +284,32 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
         if retries > 0:
             yield False, lambda near=None: np.where(is_fixed, base, np.clip(base, lower, upper))
         return
-    vb, c, masses, i_m, i_s, bkg_given = first
+    vb, c, masses, i_m, i_s, bkg_given, others = first
     names = model.parameter_names
-    candidates = [(mm, 1.0, True, True) for mm in masses]
+    plain: dict = {}
+    candidates = [(mm, 1.0, True, True, plain) for mm in masses]
     if names[i_m] in given and not bkg_given:
         # a mass given (or held): no scan to offer other peaks, so the background is also
         # started from the whole window, not only from the sidebands of that mass (a held
         # mass stopped 1.1 above the lowest NLL from the sideband start alone)
-        candidates.append((masses[0], 1.0, True, False))
+        candidates.append((masses[0], 1.0, True, False, plain))
     # A free width can have several minima around one excess (a narrow and a wide solution;
     # on 5 sigma toys 0.5 % of fits from one width stopped up to 0.49 in -2 ln L above the
     # lower one), so the other widths are minimised too whenever a width can vary (its
     # start given or not).
     free_widths = [i for i in i_s if not is_fixed[i]]
     vary = bool(free_widths)
-    candidates += [(masses[0], f, vary, True) for f in (0.4, 2.5, 1.5)[:retries]]
+    widths = [(masses[0], f, vary, True, plain) for f in (0.4, 2.5, 1.5)[:retries]]
+    # the dips and spikes come after the other widths when those are essential (so those
+    # scale the best peak's minimum, as without them), before them when they are not (the
+    # fit stops at the first inessential start once it has a valid minimum)
+    candidates += (widths + others) if vary else (others + widths)
     sl0 = model.blocks[0][1]
     other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
                    and names[i] not in given]
-    for mm, factor, essential, sideband in candidates:
+    for mm, factor, essential, sideband, extra in candidates:
         def make(near: np.ndarray | None = None, mm: float = mm, factor: float = factor,
-                 sideband: bool = sideband) -> np.ndarray:
+                 sideband: bool = sideband, extra: dict = extra) -> np.ndarray:
             if near is not None and factor != 1.0 and free_widths:
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
@@ -178,7 +322,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
             with np.errstate(all="ignore"):
                 return _one_start(model, edges, n, scale, base, vb, c, mm, factor, i_m, i_s,
                                   given, is_fixed, lower, upper, total,
-                                  bkg_given or not sideband)
+                                  bkg_given or not sideband, **extra)
 
         yield essential, make
 
@@ -193,8 +337,9 @@ def _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, up
         return base.copy()
 
 
-def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper):
-    """Background-only start and the candidate peak masses (None without a free signal)."""
+def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine):
+    """Background-only start, the candidate peak masses and the further candidates (dips,
+    spikes) as ``fit_starts`` lists them (None without a free signal)."""
     names = model.parameter_names
     blocks = model.blocks
     yields = [iy for _, _, iy in blocks]
@@ -205,16 +350,38 @@ def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper):
     vb = _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper)
     c = 0.5 * (edges[1:] + edges[:-1])
     bexp = bshape.bin_fractions(edges, list(vb[bsl]), model.window) * vb[biy]
-    shape, sl, _ = blocks[0]
+    shape, sl, iy = blocks[0]
     i_m = sl.start + shape.parameter_names.index("mass")
     i_s = [sl.start + shape.parameter_names.index(k) for k in shape.width_parameters()]
     width = max(float(base[i_s[-1]]) if i_s else (edges[-1] - edges[0]) / 40,
                 float(np.median(np.diff(edges))))
     if names[i_m] in given:
-        masses = [float(base[i_m])]
-    else:
-        masses = _scan_masses(model, edges, n, scale, base, bexp, i_m, lower, upper, width)
-    return vb, c, masses, i_m, i_s, bkg_given
+        return vb, c, [float(base[i_m])], i_m, i_s, bkg_given, []
+    # a negative yield only where its bounds allow one and the caller did not set it
+    negative = bool(lower[iy] < 0) and names[iy] not in given
+    masses, dips, q_top = _scan_masses(model, edges, n, scale, base, bexp, i_m, lower, upper,
+                                       width, dips=negative)
+    others = [(mm, 1.0, True, True, {"sign": -1.0}) for mm in dips]
+    if fine is not None and any(not is_fixed[i] for i in i_s):
+        others += _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative)
+    return vb, c, masses, i_m, i_s, bkg_given, others
+
+
+def _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative):
+    """Starts of a peak about as narrow as a bin on the data's own bins
+    (:func:`narrow_candidates`, against the best candidate of the coarse scan)."""
+    fe, fn, fsc = fine
+    bshape, bsl, biy = model.blocks[-1]
+    try:
+        b = bshape.bin_fractions(fe, list(vb[bsl]), model.window) * vb[biy]
+        found = narrow_candidates(fe, fn, fsc, b, q_top)
+    except _NUMERIC:
+        return []
+    return [(mass, 1.0, True, False,
+             {"sign": math.copysign(1.0, amount), "narrow": width, "amount": amount})
+            for mass, width, amount, _ in found
+            if (amount > 0 or negative)
+            and lower[i_m] <= mass <= upper[i_m]]
 
 
 #: a candidate peak whose coarse-scan gain 2 dNLL trails the best one's by more than
@@ -229,7 +396,10 @@ def worth_trying(q: float, q_best: float) -> bool:
     return q_best - q <= max(CANDIDATE_MARGIN, 0.5 * q_best)
 
 
-def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width) -> list[float]:
+def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width,
+                 dips: bool = False) -> tuple[list[float], list[float], float]:
+    """(peak masses, dip masses, the best gain 2 dNLL of either) of the coarse scan: the
+    separated local maxima worth trying; the two deepest dips only when ``dips``."""
     shape, sl, _ = model.blocks[0]
     lo = max(edges[0], lower[i_m])
     hi = min(edges[-1], upper[i_m])
@@ -242,9 +412,12 @@ def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width) -> l
         if fr is None:
             fr = np.broadcast_to(shape.bin_fractions(edges, p, model.window),
                                  (grid.size, edges.size - 1))
-        peaks = peak_candidates(n, scale, fr, bexp)
+        profile = _coarse_profile(n, scale, fr, bexp)
+        peaks = _local_maxima(*profile, 3)
+        lows = _local_maxima(*profile, 2, -1.0) if dips else []
     except _NUMERIC:
-        peaks = []
+        peaks, lows = [], []
+    q_top = max([q for _, q in peaks + lows], default=0.0)
     masses: list[float] = []
     for i, q in peaks:
         if (all(abs(grid[i] - mm) > 3 * width for mm in masses)
@@ -253,7 +426,14 @@ def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width) -> l
     if not masses:  # no excess anywhere: start at the largest bin excess
         c = 0.5 * (edges[1:] + edges[:-1])
         masses = [float(np.clip(c[int(np.argmax(n - bexp))], lo, hi))]
-    return masses
+    # a dip is minimised only near the best gain, as a narrow candidate: a negative peak
+    # as wide as the start width gains little more than the scan says, and the narrow
+    # ones are the narrow candidates' (on 5 sigma toys every dip would be minimised
+    # under worth_trying's margin, never winning)
+    down = [float(grid[i]) for i, q in lows if q >= q_top - NARROW_MARGIN]
+    if len(down) == 2 and abs(down[0] - down[1]) <= 3 * width:
+        down = down[:1]
+    return masses, down, q_top
 
 
 def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:
@@ -280,11 +460,11 @@ def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:
 WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
 
 
-def _scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window):
+def _scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0):
     """The width among ``width * WIDTH_FACTORS`` (inside ``[lo_w, hi_w]``) with the lowest
     profile NLL of a Gaussian at ``mass`` on the background expectation ``bexp`` (signal
     and background yields profiled, :func:`.kernels.profile_two_yields`); None for other
-    shapes, without the compiled path, or without a positive signal anywhere."""
+    shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere."""
     if type(shape) is not Gaussian or not use_compiled():
         return None
     from ..shapes.compiled import gaussian_rows
@@ -311,13 +491,16 @@ def _scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window):
     nll = np.empty(k)
     sc = np.ones(b0.size) if scale is None else np.ascontiguousarray(scale, float)
     profile_two_yields(np.ascontiguousarray(n, float), sc, rows, b0 / btot, y, nll, 25)
-    nll[~((y[:, 0] > 0) & np.isfinite(nll))] = np.inf
+    nll[~((sign * y[:, 0] > 0) & np.isfinite(nll))] = np.inf
     best = int(np.argmin(nll))
     return float(widths[best]) if math.isfinite(nll[best]) else None
 
 
 def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is_fixed,
-               lower, upper, total, bkg_given):
+               lower, upper, total, bkg_given, sign=1.0, narrow=None, amount=None):
+    """One start at mass ``mm``: widths ``factor`` times their starts (or ``narrow``), the
+    background from the sidebands (unless ``bkg_given``), the yield from the excess
+    (``sign`` -1: the deficit) or ``amount``."""
     names = model.parameter_names
     shape, sl, iy = model.blocks[0]
     bshape, bsl, biy = model.blocks[-1]
@@ -325,7 +508,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     s[i_m] = _clip(mm, lower[i_m], upper[i_m])
     for i in i_s:
         if not is_fixed[i]:
-            s[i] = _clip(v[i] * factor, lower[i], upper[i])
+            s[i] = _clip(v[i] * factor if narrow is None else narrow, lower[i], upper[i])
     # sideband background: exclude +-3 widths around the candidate peak
     hw = 3.0 * max((s[i] for i in i_s), default=(edges[-1] - edges[0]) / 40)
     mask = np.abs(c - s[i_m]) > hw
@@ -338,10 +521,10 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
             pass
     bfr = bshape.bin_fractions(edges, list(s[bsl]), model.window) * s[biy]
     sel = ~mask
-    resid = np.clip(n[sel] - bfr[sel], 0.0, None)
+    resid = np.clip(sign * (n[sel] - bfr[sel]), 0.0, None)
     i_sig = sl.start + shape.parameter_names.index("sigma") if (
         "sigma" in shape.parameter_names and shape.name in ("gaussian", "crystalball")) else None
-    if (i_sig is not None and factor == 1.0 and names[i_sig] not in given
+    if (i_sig is not None and factor == 1.0 and narrow is None and names[i_sig] not in given
             and resid.sum() > 0):
         # a Gaussian's width from a coarse likelihood scan of widths at the candidate mass
         # (a start near the minimum saves the Newton steps a poor one is rejected on: on a
@@ -349,15 +532,25 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         # second moment of the excess (truncated at +-3 start widths, so it errs low;
         # bounded to a factor 2 of the start)
         w = _scan_width(shape, edges, n, scale, bfr, float(s[i_m]), float(s[i_sig]),
-                        lower[i_sig], upper[i_sig], model.window)
+                        lower[i_sig], upper[i_sig], model.window, sign)
         if w is None:
             d2 = float(resid @ (c[sel] - s[i_m]) ** 2 / resid.sum())
             w = _clip(math.sqrt(max(d2, 1e-12)), 0.5 * s[i_sig], 2.0 * s[i_sig])
         s[i_sig] = w
     if names[iy] not in given:
-        excess = float(np.sum(n[sel] - bfr[sel]))
-        s[iy] = _clip(max(excess, 0.05 * math.sqrt(max(total, 1.0)) + 1.0),
-                        lower[iy], upper[iy])
+        floor = 0.05 * math.sqrt(max(total, 1.0)) + 1.0
+        if amount is not None:
+            y = amount
+        elif sign > 0:
+            y = max(float(np.sum(n[sel] - bfr[sel])), floor)
+        else:
+            y = min(float(np.sum(n[sel] - bfr[sel])), -floor)
+            # a deficit no deeper than 90 % of the background under it anywhere, so that
+            # every bin's expectation stays positive at the start
+            f = shape.bin_fractions(edges, list(s[sl]), model.window)
+            room = np.divide(bfr, f, out=np.full_like(bfr, np.inf), where=f > 1e-12)
+            y = max(y, -0.9 * float(np.min(room)))
+        s[iy] = _clip(y, lower[iy], upper[iy])
         if names[biy] not in given:
             s[biy] = _clip(max(total - s[iy], 1.0), lower[biy], upper[biy])
     # later signal components: small positive yield at their given start
@@ -367,6 +560,6 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     s = np.minimum(np.maximum(s, lower), upper)
     for k in given:  # given starts and fixed values are used as given (but other widths)
         i = names.index(k)
-        if not (factor != 1.0 and i in i_s and not is_fixed[i]):
+        if not ((factor != 1.0 or narrow is not None) and i in i_s and not is_fixed[i]):
             s[i] = v[i]
     return s
