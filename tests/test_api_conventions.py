@@ -122,9 +122,6 @@ def test_plot_returns_a_figure_and_leaves_the_backend(results, tmp_path):
     todo = {}
     for kind in [*KINDS, "histogram"]:
         res = results[kind]
-        if kind == "background_candidate":  # a row of the background choice: drawn there
-            assert not hasattr(res, "plot")
-            continue
         todo[kind] = (type(res).__module__, type(res).__name__, _FIGURES.get(kind, [{}]),
                       _json(res.to_dict()))
     path = tmp_path / "results.json"
@@ -138,6 +135,28 @@ def test_plot_returns_a_figure_and_leaves_the_backend(results, tmp_path):
     got = json.loads(out.stdout.strip().splitlines()[-1])
     expected = {f"{k} {kw}": "Figure" for k, (_, _, calls, _) in todo.items() for kw in calls}
     assert got == {"figures": expected, "backend": True, "pyplot": False}
+
+
+def test_background_candidate_figure(results):
+    """A background candidate read back from its JSON draws its fit: the spectrum with the
+    fit and the pulls beneath, the mass axis named with the pair's symbol; the pulls it
+    draws are (n - mu)/sqrt(mu) of its kept counts (computed here), and its fitted counts
+    sum to the observed ones (the extended Poisson fit's normalisation condition,
+    d NLL / d b = 0; to 1e-6)."""
+    from peaksift.stats.background_choice import BackgroundCandidate
+
+    cand = results["background_candidate"]
+    back = BackgroundCandidate.from_dict(_json(cand.to_dict()))
+    assert back == cand
+    n, mu = np.asarray(back.observed), np.asarray(back.expected)
+    assert np.sum(mu) == pytest.approx(np.sum(n), rel=1e-6)
+    fig = back.plot(symbol=r"m_{\mu\mu}")
+    top, pulls = fig.axes
+    assert top.get_ylabel() == "candidates / 1 GeV" and pulls.get_ylabel() == "pull"
+    assert pulls.get_xlabel() == r"$m_{\mu\mu}$ [GeV]"
+    drawn = pulls.patches[0].get_path().vertices[:, 1]  # the stairs of the pulls
+    assert np.allclose(sorted(set(np.round(drawn, 9))),
+                       sorted(set(np.round(np.r_[0.0, (n - mu) / np.sqrt(mu)], 9))))
 
 
 def test_window_snapping_is_reported():

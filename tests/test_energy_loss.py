@@ -173,3 +173,28 @@ def test_bad_inputs_are_one_line_errors_naming_the_choices():
     with pytest.raises(InputError, match="no field 'dedx'"):
         el.DedxResponse().deviation_of("kaon", {"pt": [1.0], "eta": [0.0]}.__getitem__)
     assert issubclass(ConfigError, PeaksiftError)
+
+
+@pytest.mark.parametrize("which", ["built-in mixture", "built-in element", "own material",
+                                   "own mixture with samples"])
+def test_response_from_dict_gives_it_back(which):
+    """DedxResponse.from_dict(to_dict()) == the response, through JSON, for a built-in
+    material, an own material (its constants written out) and an own mixture with the
+    sample-dependent resolution; the expected dE/dx of the copy equals the original's."""
+    import json
+
+    mine = el.Material("my_argon", 0.45059, 188.0, 1.662e-3, 11.9480, 1.7635, 4.4855,
+                       0.19714, 2.9618, 0.0)
+    resp = {"built-in mixture": el.DedxResponse(),
+            "built-in element": el.DedxResponse("silicon", scale=1.3, resolution=0.05),
+            "own material": el.DedxResponse(mine, scale=2.0),
+            "own mixture with samples": el.DedxResponse(
+                el.mixture("my_mix", [(mine, 80.0), ("co2_gas", 20.0)]), field="dedx_trunc",
+                samples_field="n_hits", reference_samples=40.0, samples_exponent=0.5)}[which]
+    d = json.loads(json.dumps(resp.to_dict()))
+    back = el.DedxResponse.from_dict(d)
+    assert back == resp
+    p = np.array([0.3, 1.0, 5.0])
+    assert np.array_equal(back.expected(p, 0.13957), resp.expected(p, 0.13957))
+    with pytest.raises(ConfigError, match="not a response"):
+        el.DedxResponse.from_dict({"material": "silicon"})

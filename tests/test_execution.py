@@ -609,3 +609,34 @@ def test_submit_to_a_broken_pool_fails_at_the_result_not_at_the_submit():
             fut.result(timeout=5)
     finally:
         pool.shutdown(wait=True)
+
+
+def test_ctrl_c_inside_interrupt_held_comes_after_the_block():
+    """A SIGINT sent inside ``interrupt_held`` (the Dask cluster's start-up) is not raised
+    there; it reaches the caller's handler once on the way out, the handler restored; a
+    thread started inside inherits the block (POSIX pthread_sigmask(3): a new thread
+    inherits its creator's signal mask)."""
+    import threading
+
+    from peaksift._processes import interrupt_held
+
+    hits, masks = [], []
+    old = signal.signal(signal.SIGINT, lambda signum, frame: hits.append(signum))
+    try:
+        with interrupt_held():
+            os.kill(os.getpid(), signal.SIGINT)
+            time.sleep(0.05)  # a pending handler would run here
+            inside = list(hits)
+            t = threading.Thread(
+                target=lambda: masks.append(signal.pthread_sigmask(signal.SIG_BLOCK, [])))
+            t.start()
+            t.join()
+        assert inside == [] and hits == [signal.SIGINT]
+        assert signal.SIGINT in masks[0]
+        assert signal.SIGINT not in signal.pthread_sigmask(signal.SIG_BLOCK, [])
+        with pytest.raises(KeyboardInterrupt):  # Python's own handler: Ctrl-C as usual
+            signal.signal(signal.SIGINT, signal.default_int_handler)
+            with interrupt_held():
+                os.kill(os.getpid(), signal.SIGINT)
+    finally:
+        signal.signal(signal.SIGINT, old)

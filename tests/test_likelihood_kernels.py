@@ -45,8 +45,9 @@ def _exp_cdf(x, b, lo, hi):
 
 
 @pytest.mark.parametrize(("name", "params", "window", "ref"), [
-    ("gaussian", [150.0, 4.0], (100.0, 300.0), _gauss_cdf),
+    ("gaussian", [150.0, 4.0], (100.0, 300.0), _gauss_cdf),  # far tail (> 12 sigma) cut
     ("gaussian", [90.0, 3.0], (110.0, 200.0), _gauss_cdf),  # window above the peak
+    ("gaussian", [90.0, 1.5], (110.0, 200.0), _gauss_cdf),  # 13 sigma above: no tail cut
     ("powerlaw", [4.0], (100.0, 1450.0), _power_cdf),
     ("powerlaw", [-1.5], (20.0, 60.0), _power_cdf),
     ("exponential", [-2.0], (100.0, 300.0), _exp_cdf),
@@ -220,3 +221,39 @@ def test_small_solve_matches_lapack():
         assert solve_small(a, g, out)
         np.testing.assert_allclose(out, -np.linalg.solve(a, g), rtol=1e-10)
     assert not solve_small(np.zeros((3, 3)), np.ones(3), np.empty(3))
+
+
+def test_vectorising_exp_and_log_match_numpy():
+    """shapes.compiled.vexp / vlog (the fit's edge kernels and Poisson pass) against
+    numpy's exp and log (outside reference: the C library's / numpy's own), within 2 ulp
+    relative on normal results, and the special values (0, subnormals, inf, NaN) equal."""
+    from numba import njit
+
+    from peaksift.shapes.compiled import vexp, vlog
+
+    @njit(error_model="numpy")
+    def run(x, out_e, y, out_l):
+        for i in range(x.size):
+            out_e[i] = vexp(x[i])
+        for i in range(y.size):
+            out_l[i] = vlog(y[i])
+
+    rng = np.random.default_rng(11)
+    specials = [np.nan, np.inf, -np.inf, 0.0, -745.2, -745.1, -744.0, -720.0, 709.7, 709.8]
+    x = np.concatenate([rng.uniform(-760, 720, 50_000), rng.uniform(-2, 2, 50_000), specials])
+    y = np.concatenate([np.exp(rng.uniform(-744, 709, 50_000)), rng.uniform(0.5, 2, 50_000),
+                        [0.0, -1.0, np.nan, np.inf, 5e-324, 1e-310, 1.0, 2.0]])
+    out_e, out_l = np.empty_like(x), np.empty_like(y)
+    run(x, out_e, y, out_l)
+    with np.errstate(all="ignore"):
+        ref_e, ref_l = np.exp(x), np.log(y)
+    normal = np.isfinite(ref_e) & (ref_e > 2.3e-308)
+    assert np.max(np.abs(out_e[normal] / ref_e[normal] - 1.0)) < 2 * 2.3e-16
+    sub = ~normal
+    np.testing.assert_array_equal(np.isnan(out_e[sub]), np.isnan(ref_e[sub]))
+    tiny = np.isfinite(ref_e) & ~normal  # 0 and subnormals: within 2 units of the last place
+    assert np.max(np.abs(out_e[tiny] - ref_e[tiny])) <= 1e-323
+    np.testing.assert_array_equal(out_e[np.isinf(ref_e)], ref_e[np.isinf(ref_e)])
+    fin = np.isfinite(ref_l) & (ref_l != 0)
+    assert np.max(np.abs(out_l[fin] / ref_l[fin] - 1.0)) < 2 * 2.3e-16
+    np.testing.assert_array_equal(out_l[~fin], ref_l[~fin])

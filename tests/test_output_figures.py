@@ -95,3 +95,37 @@ def test_the_spectrum_command_draws_only_what_is_asked_for(quick, tmp_path):
     res = run_spectrum(quick.with_overrides(output__figures=["spectrum"]), out=tmp_path / "s")
     assert _files(tmp_path / "s") == ["figures/spectrum.png"]
     assert sorted(res.files) == ["spectrum", "spectrum.json"]
+
+
+@pytest.mark.parametrize("shape", ["rising", "flat", "falling"])
+@pytest.mark.parametrize("log", [False, True])
+def test_the_blinded_spectrum_legend_covers_no_data_point(shape, log):
+    """The blinded spectrum's legend (with the sideband fit: four rows) touches none of the
+    drawn points or error bars, whatever the spectrum's shape (a rising one fills the upper
+    right, where the legend used to go): every errorbar segment, read back from the axes in display coordinates, lies
+    outside the legend's box (measured on the figure's renderer)."""
+    import numpy as np
+
+    from peaksift import plotting, shapes
+    from peaksift.histogram import MassHistogram
+    from peaksift.search.sideband import sideband_fit
+
+    rng = np.random.default_rng(7)
+    m = {"rising": 200.0 - rng.exponential(40.0, 20000),
+         "flat": rng.uniform(110.0, 200.0, 9000),
+         "falling": 110.0 + rng.exponential(30.0, 3000)}[shape]
+    h = MassHistogram(bins=90, range=(110.0, 200.0)).fill(m)
+    blind = (140.5, 160.0)
+    fit = sideband_fit(h, "gaussian", shapes.get("bernstein", degree=3), (110.0, 200.0),
+                       blind)  # four legend rows
+    fig = plotting.spectrum_figure(h, blind=blind, log=log, title="a note", background=fit)
+    ax = fig.axes[0]
+    box = ax.get_legend().get_window_extent(fig.canvas.get_renderer())
+    (bars,) = [c for c in ax.containers if hasattr(c, "has_yerr")]
+    seg = np.array([s for s in bars.lines[2][0].get_segments() if len(s) == 2], float)
+    lo, hi = (ax.transData.transform(seg[:, k]) for k in (0, 1))  # (x, y) of both ends
+    ok = np.isfinite(lo).all(axis=1) & np.isfinite(hi).all(axis=1)
+    touch = ((lo[:, 0] >= box.x0) & (lo[:, 0] <= box.x1)
+             & (np.maximum(lo[:, 1], hi[:, 1]) >= box.y0)
+             & (np.minimum(lo[:, 1], hi[:, 1]) <= box.y1))
+    assert ok.sum() > 40 and not np.any(touch[ok])

@@ -118,7 +118,7 @@ def test_markdown_has_tables_caution_and_figure_links(tmp_path):
 def test_format_pm_rounds_error_to_two_digits():
     # two significant digits on the error, value to the same decimal (common practice)
     assert format_pm(155.234, 0.3149, "GeV") == "155.23 ± 0.31 GeV"
-    assert format_pm(1234.5, 56.0) == "1234 ± 56"
+    assert format_pm(1234.5, 56.0) == "1,234 ± 56"  # thousands marked as in number(1234)
     assert format_pm(1.0, None) == "1"
 
 

@@ -104,8 +104,8 @@ def test_systematics_block_with_and_without(run):
     assert r["best"] == sy["with_systematics"]
     assert sy["with_systematics"]["z_local"] != sy["without_systematics"]["z_local"]
     env = sy["envelope"]
-    assert set(env["functions"]) == set(sy["background_choice"]["kept"])
-    assert env["chosen_at_best"] in env["functions"]
+    assert set(env["labels"]) == set(sy["background_choice"]["kept"])
+    assert env["best"]["function"] in env["labels"]
     # the envelope's masses under the attribute's name, one per local Z
     assert "mass" not in env and len(env["masses"]) == len(env["z_local"])
     assert set(sy["nuisance_pulls"]) == {"mass_scale", "mass_resolution"}
@@ -114,7 +114,7 @@ def test_systematics_block_with_and_without(run):
     assert lim["without_systematics"]["masses"] == r["limits"]["masses"]
     assert lim["without_systematics"]["observed"] == r["limits"]["observed"]
     w = lim["with_systematics"]
-    assert w["masses"] == r["limits"]["masses"] and w["functions"] == env["functions"]
+    assert w["masses"] == r["limits"]["masses"] and w["functions"] == env["labels"]
     # the bands ordered (Cowan et al. 2011, sec. 4.3) and the limits positive
     for i in range(len(w["masses"])):
         assert 0 < w["expected_minus2"][i] <= w["expected"][i] <= w["expected_plus2"][i]
@@ -123,6 +123,69 @@ def test_systematics_block_with_and_without(run):
     md = (run["out"] / "report.md").read_text()
     assert "## Background model" in md and "background_envelope.png" in md
     assert "observed, with systematics" in md and "expected, plain" in md
+
+
+def test_calibration_figure_from_the_results_json(run):
+    """The calibration fit is kept in results.json (``calibration.fit``) and read back: its
+    peak mass is the calibration's fitted mass, and SearchResult.plot draws the calibration
+    figure from it (fit panel and pulls, the pair's mass symbol on the mass axis, the
+    fitted and tabulated masses marked)."""
+
+    from matplotlib.figure import Figure
+
+    from peaksift.fitting.result import FitResult
+    from peaksift.search.result import SearchResult
+
+    cal = run["results"]["calibration"]
+    fr = FitResult.from_dict(cal["fit"])
+    assert fr.peak_mass.value == cal["fitted_mass"]["value"]
+    assert fr.peak_mass.error == cal["fitted_mass"]["error"]
+    fig = SearchResult.from_dict(run["results"]).plot(which="calibration")
+    assert isinstance(fig, Figure) and len(fig.axes) == 2
+    top, pulls = fig.axes
+    assert top.get_ylabel().startswith("candidates / ") and pulls.get_ylabel() == "pull"
+    assert pulls.get_xlabel() == r"$m_{\mu\mu}$ [GeV]"
+    names = top.get_legend_handles_labels()[1]
+    assert "fitted mass" in names and "mass in the tables" in names
+
+
+def test_envelope_of_results_json_loads_as_an_envelope_result(run):
+    """The demo's results.json writes the envelope in EnvelopeResult's own format: from_dict
+    reads it, writes the same keys back (the figure's ``profile`` aside) and equals its own
+    round trip; its numbers agree with scipy: p_local = norm.sf(z_local) and z_local =
+    sqrt(q0) (Cowan et al., EPJC 71 (2011) 1554, eq. 53; to 1e-9), and the summary reads
+    the function chosen at the best mass from it."""
+    from scipy import stats
+
+    from peaksift.stats.envelope import EnvelopeResult
+
+    stored = run["results"]["systematics"]["envelope"]
+    env = EnvelopeResult.from_dict(stored)
+    again = json.loads(json.dumps(env.to_dict()))
+    assert again == {k: v for k, v in stored.items() if k != "profile"}
+    assert EnvelopeResult.from_dict(again) == env
+    ok = ~env.blinded
+    assert np.allclose(env.p_local[ok], stats.norm.sf(env.z_local[ok]), rtol=1e-9, atol=0)
+    assert np.allclose(env.z_local[ok], np.sqrt(env.q0[ok]), rtol=1e-9, atol=1e-12)
+    assert env.best["function"] in env.labels and env.best["function"] in run["stdout"]
+
+
+def test_results_json_with_the_earlier_envelope_layout_still_loads(run):
+    """A results.json written before the envelope took EnvelopeResult's format (functions,
+    chosen_at_best, spurious_weights, null_choice by label) loads, the envelope's keys
+    renamed, so the report and the summary read one format."""
+    from peaksift.search.result import SearchResult
+
+    d = json.loads(json.dumps(run["results"]))
+    env = d["systematics"]["envelope"]
+    old = {k: v for k, v in env.items() if k not in ("labels", "spurious", "best")}
+    old.update(functions=env["labels"], chosen_at_best=env["best"]["function"],
+               spurious_weights=env["spurious"], null_choice=env["labels"][env["null_choice"]])
+    d["systematics"]["envelope"] = old
+    back = SearchResult.from_dict(d).systematics["envelope"]
+    assert back["labels"] == env["labels"] and back["null_choice"] == env["null_choice"]
+    assert back["best"]["function"] == env["best"]["function"]
+    assert back["spurious"] == env["spurious"]
 
 
 def test_demo_background_makes_the_function_choice_visible(run):
@@ -136,7 +199,7 @@ def test_demo_background_makes_the_function_choice_visible(run):
     assert plain["z_local"] - with_sy["z_local"] >= 0.5
     sp = sy["spurious_signal"]
     assert sp["powersum1"]["flagged"] and sp["powersum1"]["ratio_at_best"] > 0.2
-    bern = [f for f in sy["envelope"]["functions"] if f.startswith("bernstein")]
+    bern = [f for f in sy["envelope"]["labels"] if f.startswith("bernstein")]
     assert bern and abs(sp[bern[0]]["ratio_at_best"]) < 0.5 * sp["powersum1"]["ratio_at_best"]
     assert "powersum1" in run["stdout"] and "spurious signal" in run["stdout"]
 
@@ -468,6 +531,7 @@ def test_spectrum_figure_hides_the_bins_the_statistics_leave_out(monkeypatch, tm
     including a bin whose centre lies on the range's edge."""
     from peaksift import plotting
     from peaksift.histogram import MassHistogram
+    from peaksift.plotting import spectrum
 
     h = MassHistogram(bins=90, range=(110.0, 200.0))
     h.fill(np.repeat(h.centers, 3))
@@ -480,7 +544,7 @@ def test_spectrum_figure_hides_the_bins_the_statistics_leave_out(monkeypatch, tm
                 drawn.append((x, y))
         return tmp_path / f"{name}.png"
 
-    monkeypatch.setattr(plotting, "save", keep)
+    monkeypatch.setattr(spectrum, "save", keep)
     plotting.spectrum_only(h, tmp_path, blind=(140.5, 165.0))
     assert drawn
     x, y = drawn[0]

@@ -236,3 +236,75 @@ def test_combination_settings_are_checked_against_the_schema():
         run_combination({"combination": {**base, "significance": {"method": "guess"}}},
                         out=False)
 
+
+
+def _plain_channel(demo_dir, tmp_path) -> str:
+    """The demo search without [systematics] and [calibration] (a cheaper channel), its
+    input named by absolute path; written to ``tmp_path``."""
+    keep, skip = [], False
+    for line in (demo_dir / "search.toml").read_text().splitlines():
+        if line.startswith("["):
+            skip = line.strip() in ("[systematics]", "[calibration]")
+        if not skip:
+            keep.append(line)
+    text = "\n".join(keep).replace('files = ["events_*.parquet"]',
+                                   f'files = ["{demo_dir}/events_*.parquet"]')
+    path = tmp_path / "plain.toml"
+    path.write_text(text + "\n")
+    return str(path)
+
+
+def test_combination_significance_settings_change_the_global_significance(demo_dir,
+                                                                          tmp_path):
+    """[combination.significance] is what the combined global significance uses, not the
+    channel's [significance] (upcrossings, 100 toys): with method = "toys", toys = 30 and
+    its own seed the combination counts 30 background-only toys.  Outside reference: the
+    toy p-value is the binomial frequency k / n with its standard error sqrt(p (1 - p) / n)
+    (common practice; tolerance 1e-12), floored at the local p-value; the channel's own
+    result keeps the channel's method."""
+    channel = _plain_channel(demo_dir, tmp_path)
+    comb = run_combination({"combination": {
+        "channels": [channel], "names": ["dimuon"], "limits": {"enabled": False},
+        "significance": {"method": "toys", "toys": 30, "seed": 5}}}, out=False)
+    best, own = comb.best, comb.channels["dimuon"].to_dict()["best"]
+    assert own["global_method"] != "toys"
+    assert best["global_method"] == "toys" and best["n_toys"] + best["n_failed_toys"] == 30
+    n, k = best["n_toys"], best["n_toys_above"]
+    if k:
+        p = k / n
+        assert best["p_global"] == pytest.approx(max(p, best["p_local"]), rel=1e-12)
+        assert best["p_global_error"] == pytest.approx(np.sqrt(p * (1 - p) / n), rel=1e-12)
+    else:  # no toy above: the 95% upper bound 1 - 0.05^(1/n) (Clopper-Pearson, k = 0)
+        assert best["p_global"] == pytest.approx(max(1 - 0.05 ** (1 / n), best["p_local"]),
+                                                 rel=1e-12)
+    # and they are the toys of the combination's seed (5), not of the channel's
+    direct = comb.combination.global_significance("toys", toys=30, seed=5)
+    assert direct["n_toys_above"] == k and direct["p_global"] == best["p_global"]
+
+
+def test_combined_grid_covers_the_common_range_with_the_finest_step(demo_dir):
+    """The combined scan's hypotheses: the demo's dimuon and dielectron channels both scan
+    120-190 GeV; each step is the smaller of the two channels' half resolutions at that mass,
+    their config tables interpolated linearly here with numpy.interp (the outside reference;
+    tolerance 1e-9 GeV) -- the dielectron's, finer, everywhere here, where the first
+    channel's own grid would be coarser.  One channel keeps its own grid; channels whose
+    scans do not overlap are refused."""
+    import tomllib
+
+    from peaksift.search.combination import combined_masses
+    from peaksift.search.common import _scan_masses
+
+    cfgs = [load_config(demo_dir / f"{n}.toml") for n in ("dimuon", "dielectron")]
+    tables = [np.array(tomllib.loads((demo_dir / f"{n}.toml").read_text())["model"]
+                       ["resolution"]["table"]) for n in ("dimuon", "dielectron")]
+    grid = combined_masses(cfgs)
+    assert grid[0] == 120.0 and grid[-1] == pytest.approx(190.0, abs=1e-9)
+    half = np.min([0.5 * np.interp(grid[:-1], t[:, 0], t[:, 1]) for t in tables], axis=0)
+    np.testing.assert_allclose(np.diff(grid)[:-1], half[:-1], rtol=0, atol=1e-9)
+    assert 0 < grid[-1] - grid[-2] <= half[-1] + 1e-9
+    assert grid.size > _scan_masses(cfgs[0]).size
+    assert np.array_equal(combined_masses(cfgs[:1]), _scan_masses(cfgs[0]))
+    apart = dataclasses.replace(cfgs[1], scan=dataclasses.replace(cfgs[1].scan, start=191.0,
+                                                                   stop=195.0))
+    with pytest.raises(ConfigError, match="no common part"):
+        combined_masses([cfgs[0], apart])

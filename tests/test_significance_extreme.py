@@ -271,7 +271,8 @@ def _poison(o, bad):
 @pytest.mark.parametrize("bad", [None, math.nan, math.inf, -math.inf])
 def test_no_output_path_fails_on_missing_or_non_finite_numbers(huge, bad):
     from peaksift.cli import _summary_text
-    from peaksift.plotting import _fit_title, scan_figure
+    from peaksift.plotting import scan_figure
+    from peaksift.plotting.search import _fit_title
     from peaksift.report import render_html, render_markdown
 
     r = _poison(huge["results"], bad)

@@ -1,7 +1,8 @@
-"""SIGTERM and the Dask engine's local cluster: ``peaksift spectrum --engine dask`` stopped
-while the cluster starts or while its workers run chunks ends with exit status 143, one
-line on stderr (no traceback, none of the cluster's shutdown chatter), no process of the
-run left and nothing half-written in the output folder.
+"""SIGTERM and Ctrl-C and the Dask engine's local cluster: ``peaksift spectrum --engine
+dask`` stopped while the cluster starts or while its workers run chunks ends with exit
+status 143 (SIGTERM) or 130 (Ctrl-C), one line on stderr (no traceback, none of the
+cluster's shutdown chatter), no process of the run left and nothing half-written in the
+output folder.
 
 The moments are made certain, not hoped for: a worker process waits 1 s between its fork
 and its start (the window before its own signal set-up), or each chunk a worker takes
@@ -27,7 +28,8 @@ import pytest
 pytest.importorskip("distributed", reason="the Dask engine needs the 'distributed' extra")
 
 REPO = Path(__file__).resolve().parents[1]
-LINE = "peaksift: terminated (SIGTERM); the run's unfinished outputs were removed"
+LINE = {signal.SIGTERM: "peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
+        signal.SIGINT: "peaksift: interrupted; no outputs were written"}
 
 pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
 
@@ -87,11 +89,15 @@ def _wait(pred, timeout: float, step: float = 0.02) -> bool:
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("moment", ["starting", "working"])
-def test_sigterm_leaves_no_dask_worker_and_no_partial_output(small_demo, tmp_path, moment):
-    """``starting``: SIGTERM to the whole process group (as batch systems send it) while a
-    worker of the cluster is between its fork and its signal set-up; ``working``: SIGTERM
-    to peaksift alone while both workers are inside a chunk."""
+@pytest.mark.parametrize(("moment", "sig"), [("starting", signal.SIGTERM),
+                                             ("starting", signal.SIGINT),
+                                             ("working", signal.SIGTERM)])
+def test_sigterm_leaves_no_dask_worker_and_no_partial_output(small_demo, tmp_path, moment,
+                                                             sig):
+    """``starting``: SIGTERM (as batch systems send it) or SIGINT (Ctrl-C at a terminal) to
+    the whole process group while a worker of the cluster is between its fork and its
+    signal set-up; ``working``: SIGTERM to peaksift alone while both workers are inside a
+    chunk."""
     config = tmp_path / "spectrum.toml"
     config.write_text(f"""
 [input]
@@ -127,9 +133,9 @@ chunk_events = 3000
         assert proc.poll() is None and workers <= set(_session(proc.pid))
         t0 = time.monotonic()
         if moment == "starting":
-            os.killpg(proc.pid, signal.SIGTERM)
+            os.killpg(proc.pid, sig)
         else:
-            proc.send_signal(signal.SIGTERM)
+            proc.send_signal(sig)
         _, err = proc.communicate(timeout=60)
         stopped = time.monotonic() - t0
     finally:
@@ -137,8 +143,8 @@ chunk_events = 3000
             os.killpg(proc.pid, signal.SIGKILL)
             proc.communicate()
     assert _wait(lambda: not _session(proc.pid), 10.0), _session(proc.pid)
-    assert proc.returncode == 128 + signal.SIGTERM, err
-    assert [x for x in err.splitlines() if x.strip()] == [LINE], err
+    assert proc.returncode == 128 + sig, err  # the shell's convention (sh(1))
+    assert [x for x in err.splitlines() if x.strip()] == [LINE[sig]], err
     if moment == "working":  # without waiting for the chunks in flight (a polite close
         assert stopped < 3.9, f"{stopped:.1f} s from SIGTERM to exit"  # takes 0.8 x 5 s)
     assert not out.exists() or not [p for p in out.rglob("*") if p.is_file()]

@@ -8,8 +8,9 @@ numpy scalars, strings -- and returns text; a missing or non-finite number is ``
 * :func:`as_finite`     -- a finite float or None (the test every other function makes).
 * :func:`number`        -- a plain number (4 significant digits; ints with a thousands mark).
 * :func:`fixed`         -- a fixed number of decimals (masses, Z).
-* :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits
-  (:func:`pm_parts`: the same as two texts, for aligned tables).
+* :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits,
+  thousands marked like the counts' (:func:`pm_parts`: the same as two texts, for aligned
+  tables).
 * :func:`format_interval` -- ``value +upper -lower`` for a profile-likelihood interval.
 * :func:`p_value`       -- a p-value; below the smallest normal double (2.2e-308), where the
   float is 0, it is written as a power of ten from its ``log10_p``: ``10^-2173.9``.
@@ -84,7 +85,8 @@ def format_pm(value: Any, error: Any, unit: str = "") -> str:
     if e is None or e <= 0:
         return f"{number(v)}{u}"
     dec = max(0, 1 - math.floor(math.log10(e)))
-    return f"{v:.{dec}f} \u00b1 {e:.{dec}f}{u}"
+    # thousands marked as in number()'s counts: 1,053 ± 32 beside 1,053 candidates
+    return f"{v:,.{dec}f} \u00b1 {e:,.{dec}f}{u}"
 
 
 def pm_parts(value: Any, error: Any) -> tuple[str, str]:
@@ -155,6 +157,6 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "") -> str:
 
     def side(x: Any) -> str:
         f = as_finite(x)
-        return NA if f is None else f"{abs(f):.{dec}f}"
+        return NA if f is None else f"{abs(f):,.{dec}f}"
 
-    return f"{v:.{dec}f} +{side(upper)} -{side(lower)}{u}"
+    return f"{v:,.{dec}f} +{side(upper)} -{side(lower)}{u}"

@@ -16,6 +16,9 @@
   :func:`terminated` says whether it came (when other code turned it into its own error).
 * :func:`sigterm_held` -- around a fork: SIGTERM waits until the child has set up its
   signals (every pool of :func:`process_pool` forks under it).
+* :func:`interrupt_held` -- around a start-up that forks in threads of its own (a local
+  Dask cluster): Ctrl-C waits until the start-up is over, so the caller can close what
+  started, and the children never see it.
 
 The execution engines (:mod:`peaksift.execution`) and the toy engine's ``workers=`` pool
 (:mod:`peaksift.stats.toys`) share these, so every pool peaksift starts behaves alike.  Why
@@ -35,7 +38,8 @@ from collections.abc import Callable, Iterator
 from typing import Any
 
 __all__ = ["WORKER_ENV", "Terminated", "arrow_threads_from_env", "die_with_parent",
-           "process_pool", "quiet_fork", "resolve_start_method", "sigterm_as_interrupt",
+           "interrupt_held", "process_pool", "quiet_fork", "resolve_start_method",
+           "sigterm_as_interrupt",
            "sigterm_held", "stop_pool", "terminated", "worker_start"]
 
 #: Environment of the worker processes we start (unless the user set these): they run one
@@ -94,6 +98,41 @@ def sigterm_held() -> Iterator[None]:
         if _HELD[0] == 0 and _HELD[1]:
             _HELD[1] = False
             signal.raise_signal(signal.SIGTERM)  # the handler runs now, outside
+
+
+@contextlib.contextmanager
+def interrupt_held() -> Iterator[None]:
+    """Ctrl-C held while inside, raised on the way out (by the handler the caller had).
+
+    For a start-up that forks worker processes from threads it makes itself (a local Dask
+    cluster): a KeyboardInterrupt raised in the middle would leave workers started but not
+    yet recorded, so nothing would stop them.  Ctrl-C reaches the whole process group, so
+    the children are protected too: SIGINT is blocked in this thread, and the threads made
+    inside (and the processes they fork or spawn: the mask survives ``exec``) inherit the
+    block until :func:`worker_start` ignores and unblocks it.  A SIGINT the kernel hands to
+    an older thread runs this context's handler, which only notes it.  Outside the main
+    thread only the mask is set (Python runs handlers in the main thread only)."""
+    import threading
+
+    if not hasattr(signal, "pthread_sigmask"):  # pragma: no cover - not on Windows
+        yield
+        return
+    noted: list[bool] = []
+    main = threading.current_thread() is threading.main_thread()
+    old_handler = signal.signal(signal.SIGINT, lambda signum, frame: noted.append(True)) \
+        if main else None
+    old_mask = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        yield
+    finally:
+        if main:  # (None: a handler not set from Python; Python's own is the nearest)
+            signal.signal(signal.SIGINT, signal.default_int_handler if old_handler is None
+                          else old_handler)
+        # a SIGINT pending on this thread (or the process) is delivered here, to the handler
+        # the caller had; one noted by an older thread is raised again the same way
+        signal.pthread_sigmask(signal.SIG_SETMASK, old_mask)
+        if noted:
+            signal.raise_signal(signal.SIGINT)
 
 
 #: [depth of sigterm_held, whether a SIGTERM was noted inside, whether Terminated was
@@ -264,7 +303,8 @@ def worker_start() -> None:
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
     _HELD[:] = [0, False, False]  # a forked worker's copy of its parent's state is not its own
     if hasattr(signal, "pthread_sigmask"):  # started under sigterm_held: a pending SIGTERM
-        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGTERM})  # now ends us
+        # now ends us; started under interrupt_held: a pending SIGINT is now ignored
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGTERM, signal.SIGINT})
     for k, v in WORKER_ENV.items():
         os.environ.setdefault(k, v)
     arrow_threads_from_env()

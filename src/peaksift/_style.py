@@ -96,13 +96,12 @@ def new_figure(figsize: tuple[float, float] = (7.0, 4.6), nrows: int = 1, ncols:
     shows a returned Figure as usual.
     """
     import numpy as np
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
     from matplotlib.ticker import AutoMinorLocator
 
     with figure_style():
         fig = Figure(figsize=figsize)
-        FigureCanvasAgg(fig)
+        _canvas_class()(fig)
         axes = fig.subplots(nrows, ncols, **subplots)
         margins(fig)
         for ax in np.ravel(axes):  # the rc's one minor tick per interval, fixed here: a
@@ -110,6 +109,31 @@ def new_figure(figsize: tuple[float, float] = (7.0, 4.6), nrows: int = 1, ncols:
             ax.xaxis.set_minor_locator(AutoMinorLocator(_RC["xtick.minor.ndivs"]))
             ax.yaxis.set_minor_locator(AutoMinorLocator(_RC["ytick.minor.ndivs"]))
     return fig, axes
+
+
+_CANVAS: list[Any] = []  # the canvas class, made at the first figure (matplotlib loaded)
+_MATH: list[Any] = []    # the process's one mathtext parser, shared by every renderer
+
+
+def _canvas_class() -> Any:
+    """An Agg canvas whose renderers share one mathtext parser (and so its cache of parsed
+    expressions): matplotlib gives every renderer a parser of its own, so the run label,
+    the mass axis and the log-axis labels were typeset again for every figure (a fifth of
+    a figure's drawing time).  The parser is the first renderer's own, of whatever kind
+    this matplotlib uses; what it returns for an expression is the same each time."""
+    if not _CANVAS:
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+        class _SharedMathCanvas(FigureCanvasAgg):
+            def get_renderer(self) -> Any:
+                r = super().get_renderer()
+                if not _MATH:
+                    _MATH.append(r.mathtext_parser)
+                r.mathtext_parser = _MATH[0]
+                return r
+
+        _CANVAS.append(_SharedMathCanvas)
+    return _CANVAS[0]
 
 
 def target_axes(fig: Any = None, ax: Any = None,

@@ -182,8 +182,8 @@ def _summary_text(d: Mapping[str, Any]) -> str:
             f"local {significance(plain_best, 'local', sigma='sigma')}, global "
             f"{significance(plain_best, 'global', sigma='sigma')}")))
         if env:
-            lines.append(_row("background envelope", ", ".join(env.get("functions") or [])
-                              + f" (at the best mass: {env.get('chosen_at_best')})"))
+            lines.append(_row("background envelope", ", ".join(env.get("labels") or [])
+                              + f" (at the best mass: {part(env, 'best').get('function')})"))
         lines += _limit_lines(part(syst, "limits"), best.get("mass"))
     if not fit.get("valid") and not blinded:
         lines.append(_row("fit status", "INVALID: " + "; ".join(

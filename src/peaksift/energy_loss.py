@@ -143,6 +143,24 @@ class Material:
     delta0: float = 0.0
     components: tuple[tuple[Material, float], ...] = dataclasses.field(default=(), repr=False)
 
+    def to_dict(self) -> dict[str, Any]:
+        """Every constant by its attribute name; a mixture's components as
+        ``[material dict, mass fraction]`` pairs."""
+        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+        out["components"] = [[m.to_dict(), w] for m, w in self.components]
+        return out
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> Material:
+        """The material :meth:`to_dict` wrote."""
+        try:
+            parts = tuple((cls.from_dict(m), float(w)) for m, w in d.get("components") or ())
+            return cls(**{**{k: v for k, v in d.items() if k != "components"},
+                          "components": parts})
+        except (AttributeError, TypeError, ValueError) as exc:
+            raise ConfigError(f"Material.from_dict: not a material written by "
+                              f"Material.to_dict ({exc!r})") from None
+
     def __post_init__(self) -> None:
         if self.components:
             return
@@ -431,11 +449,27 @@ class DedxResponse:
         return out
 
     def to_dict(self) -> dict[str, Any]:
-        return {"material": self.material.name, "scale": self.scale,
+        """JSON-ready; the material by name when it is the built-in one of that name, else
+        with every constant (:meth:`Material.to_dict`), so :meth:`from_dict` gives it back."""
+        m = self.material
+        builtin = m.name in MATERIALS and material(m.name) == m
+        return {"material": m.name if builtin else m.to_dict(), "scale": self.scale,
                 "resolution": self.resolution, "field": self.field,
                 "samples_field": self.samples_field,
                 "reference_samples": self.reference_samples,
                 "samples_exponent": self.samples_exponent}
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> DedxResponse:
+        """The response :meth:`to_dict` wrote."""
+        try:
+            mat = d["material"]
+            return cls(material(mat) if isinstance(mat, str) else Material.from_dict(mat),
+                       **{k: d[k] for k in ("scale", "resolution", "field", "samples_field",
+                                            "reference_samples", "samples_exponent")})
+        except (KeyError, TypeError) as exc:
+            raise ConfigError(f"DedxResponse.from_dict: not a response written by "
+                              f"DedxResponse.to_dict ({exc!r})") from None
 
 
 @numba.njit(cache=True, nogil=True)

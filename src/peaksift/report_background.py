@@ -16,7 +16,7 @@ from .report_sections import CAPTIONS, Block, figure_block
 
 def _candidate_rows(sy: Mapping[str, Any]) -> list[list[str]]:
     ch = sy["background_choice"]
-    inenv = set((sy.get("envelope") or {}).get("functions") or [])
+    inenv = set((sy.get("envelope") or {}).get("labels") or [])
     sp = sy.get("spurious_signal") or {}
     rows = []
     for c in ch["candidates"]:
@@ -97,9 +97,10 @@ def section_background_model(r: Mapping[str, Any], fig: Mapping[str, Any]) -> li
     env = sy.get("envelope") or {}
     if env:
         out.append(("p", (f"Discrete profiling (Dauncey et al., JINST 10 (2015) P04015) over "
-                    f"{', '.join(env['functions'])} with a penalty of {env['penalty']:g} per "
+                    f"{', '.join(env['labels'])} with a penalty of {env['penalty']:g} per "
                     f"free parameter; at the best mass the envelope takes "
-                    f"{env['chosen_at_best']}, and without signal {env['null_choice']}.")))
+                    f"{env['best']['function']}, and without signal "
+                    f"{env['labels'][env['null_choice']]}.")))
     w, wo = sy.get("with_systematics") or {}, sy.get("without_systematics") or {}
     # the formats of the Result table: masses and Z with two decimals, p-values as p_value
     keys = (("best mass [GeV]", "mass", fixed), ("local Z", "z_local", fixed),

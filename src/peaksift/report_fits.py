@@ -140,7 +140,9 @@ def _identification_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
         return None
     resp = d.get("response") or {}
     pr = ((r.get("config") or {}).get("pairing") or {})
-    rows = [("material (Bethe curve)", str(resp.get("material"))),
+    mat = resp.get("material")  # a built-in's name, or an own material's constants
+    rows = [("material (Bethe curve)", str(mat.get("name") if isinstance(mat, Mapping)
+                                           else mat)),
             ("measured field", str(resp.get("field"))),
             ("relative resolution", num_text(resp.get("resolution")))]
     if resp.get("samples_field"):

@@ -308,6 +308,32 @@ class Resolution:
             return {"kind": "table", "table": [list(r) for r in self.points]}  # type: ignore[union-attr]
         return {"kind": "function", "function": self._func_name()}
 
+    @classmethod
+    def from_dict(cls, d: Any, *, function: Callable[..., Any] | None = None) -> Resolution:
+        """The Resolution :meth:`to_dict` wrote.  A ``function`` resolution is stored by its
+        name only (code is not data): give the callable as ``function=``; its name must be
+        the stored one, so that a result is not read back with another sigma(m)."""
+        try:
+            kind = d["kind"]
+            if kind in ("relative", "absolute"):
+                return cls(kind, value=float(d[kind]))
+            if kind == "table":
+                return cls.table(d["table"])
+            if kind != "function":
+                raise ValueError(f"kind {kind!r}")
+            name = str(d["function"])
+        except (KeyError, TypeError, ValueError) as exc:
+            raise FitError(f"Resolution.from_dict: not a resolution written by "
+                           f"Resolution.to_dict ({exc!r})") from None
+        if function is None:
+            raise FitError(f"this resolution is the function {name}(m), stored by name only; "
+                           f"pass it: Resolution.from_dict(d, function={name})")
+        res = cls.function(function)
+        if res._func_name() != name:
+            raise FitError(f"Resolution.from_dict: the function given is "
+                           f"{res._func_name()}, the stored one {name}; pass {name}")
+        return res
+
     def __repr__(self) -> str:
         if self.kind in ("relative", "absolute"):
             return f"Resolution.{self.kind}({self.value!r})"

@@ -15,7 +15,13 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from .._processes import quiet_fork, resolve_start_method, sigterm_held, worker_start
+from .._processes import (
+    interrupt_held,
+    quiet_fork,
+    resolve_start_method,
+    sigterm_held,
+    worker_start,
+)
 from ..errors import ExecutionError, PeaksiftError
 from ._local import (
     _INFLIGHT_PER_WORKER,
@@ -159,8 +165,11 @@ class DaskSession:
             # started (a stray worker, the interpreter's exit hanging on it)
             # (a worker that a SIGTERM to the whole process group ends as it sets up makes
             # the scheduler log a failed broadcast: the run ends anyway, quietly)
+            # Ctrl-C likewise (interrupt_held): it reaches the whole process group, and a
+            # worker between its fork and _local_worker_setup would print a traceback, a
+            # KeyboardInterrupt inside LocalCluster's start-up leave workers nothing stops
             try:
-                with sigterm_held(), _quiet_distributed():
+                with interrupt_held(), sigterm_held(), _quiet_distributed():
                     self.cluster = _start_local_cluster(workers, method)
                     self.client = Client(self.cluster, set_as_default=False)
                     self.own_client = True

@@ -480,7 +480,10 @@ def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, c
     if mu is None:
         mu = model.expected(ge, vals)
     gsc = d.hist.scaled_poisson_factors()
-    chi2 = float(baker_cousins_chi2(gn, mu, gsc))
+    # a binned fit's NLL is the saturated form over these very bins: twice it is the
+    # chi-square (no second pass of logarithms); constraint terms would be in it
+    chi2 = (2.0 * float(fbest) if d.binned and not cons and math.isfinite(fbest) else
+            float(baker_cousins_chi2(gn, mu, gsc)))
     ndf = int(gn.size - free_idx.size)
     pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
     with np.errstate(invalid="ignore", divide="ignore"):

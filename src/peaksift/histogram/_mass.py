@@ -33,7 +33,9 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from ..errors import InputError
+from ._display import html_table, plot
 from ._protocol import MassAxis, from_counts, from_protocol, speaks_protocol
+from ._regroup import rebin, restrict
 from ._storage import from_dict, load, save, to_dict
 from .binning import bin_index, check_edges, is_regular
 
@@ -354,33 +356,7 @@ class MassHistogram:
             ``window`` is not two finite numbers with lo < hi, or no bin lies completely
             inside it (the message names the nearest edges to choose).
         """
-        try:
-            lo, hi = (float(v) for v in window)
-        except (TypeError, ValueError):
-            raise InputError(f"window must be two numbers (lo, hi) in {self.unit}, got "
-                             f"{window!r:.80}") from None
-        if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
-            raise InputError(f"window must be finite with lo < hi, got ({lo!r}, {hi!r})")
-        e = self.edges
-        tol = 1e-9 * (self.hi - self.lo)
-        keep = np.flatnonzero((e[:-1] >= lo - tol) & (e[1:] <= hi + tol))
-        if keep.size == 0:
-            i = int(np.clip(np.searchsorted(e, lo, side="left"), 0, self.nbins - 1))
-            raise InputError(
-                f"window ({lo:g}, {hi:g}) contains no complete bin of the histogram ({self.nbins} "
-                f"bins on [{self.lo:g}, {self.hi:g}] {self.unit}); choose a window spanning "
-                f"at least one whole bin, e.g. ({e[i]:g}, {e[i + 1]:g}), or refill the masses "
-                "with finer bins")
-        i0, i1 = int(keep[0]), int(keep[-1]) + 1
-        h = MassHistogram(e[i0 : i1 + 1], unit=self.unit, label=self.label)
-        h._values = self._values[i0:i1].copy()
-        h._variances = self._variances[i0:i1].copy()
-        h.underflow = self.underflow + float(self._values[:i0].sum())
-        h.underflow_variance = self.underflow_variance + float(self._variances[:i0].sum())
-        h.overflow = self.overflow + float(self._values[i1:].sum())
-        h.overflow_variance = self.overflow_variance + float(self._variances[i1:].sum())
-        h.n_nan = self.n_nan
-        return h
+        return restrict(MassHistogram, self, window)
 
     def scaled_poisson_factors(self) -> np.ndarray:
         """The scaled-Poisson factor of every bin, ``s_i = values_i / variances_i``.
@@ -462,47 +438,7 @@ class MassHistogram:
         Contents outside new ``edges`` (when they do not span the old range) move to the
         under/overflow, so no weight is lost.
         """
-        if (factor is None) == (edges is None):
-            raise InputError("rebin needs exactly one of factor=N or edges=[...]")
-        if factor is not None:
-            if int(factor) != factor or factor < 1:
-                raise InputError(f"rebin factor must be a positive integer, got {factor!r}")
-            factor = int(factor)
-            if self.nbins % factor:
-                raise InputError(
-                    f"rebin factor {factor} does not divide the {self.nbins} bins; "
-                    "choose a divisor or pass edges=[...]"
-                )
-            keep = np.arange(0, self.nbins + 1, factor)
-        else:
-            new = check_edges(edges)
-            # nearest current edge to each new one; it must agree to rounding
-            top = self.edges.size - 1
-            right = np.minimum(np.searchsorted(self.edges, new), top)  # (0 at least)
-            left = np.maximum(right - 1, 0)
-            closer_left = np.abs(self.edges[left] - new) < np.abs(self.edges[right] - new)
-            keep = np.where(closer_left, left, right)
-            # np.isclose(.., rtol=1e-12, atol=1e-12) for finite edges, without its overhead
-            ok = np.abs(self.edges[keep] - new) <= 1e-12 + 1e-12 * np.abs(new)
-            if not ok.all():
-                bad = new[~ok][0]
-                raise InputError(
-                    f"rebin edge {float(bad)!r} is not one of the current edges; new edges must be a "
-                    "subset of the old ones"
-                )
-        h = MassHistogram(self.edges[keep], unit=self.unit, label=self.label)
-        # exact per-group sums; reduceat's last group runs to the array end, so redo it
-        starts = keep[:-1]
-        h._values = np.add.reduceat(self._values, starts)
-        h._variances = np.add.reduceat(self._variances, starts)
-        h._values[-1] = self._values[keep[-2] : keep[-1]].sum()
-        h._variances[-1] = self._variances[keep[-2] : keep[-1]].sum()
-        h.underflow = self.underflow + float(self._values[: keep[0]].sum())
-        h.underflow_variance = self.underflow_variance + float(self._variances[: keep[0]].sum())
-        h.overflow = self.overflow + float(self._values[keep[-1] :].sum())
-        h.overflow_variance = self.overflow_variance + float(self._variances[keep[-1] :].sum())
-        h.n_nan = self.n_nan
-        return h
+        return rebin(MassHistogram, self, factor, edges)
 
     # -------------------------------------------------------------- save/load
     def to_dict(self) -> dict[str, Any]:
@@ -538,29 +474,7 @@ class MassHistogram:
         With ``density=True`` (and always for variable bins) the contents are divided by
         the bin width (candidates per GeV).  Drawn in the peaksift figure style.
         """
-        from .._style import COLORS, figure_style, new_figure
-
-        if ax is None:
-            _, ax = new_figure((7, 4.5))
-        scale = 1.0 / self.widths if (density or not self._regular) else 1.0
-        y = self._values * scale
-        yerr = self.errors * scale
-        kwargs.setdefault("fmt", "o")
-        kwargs.setdefault("ms", 3)
-        kwargs.setdefault("color", COLORS["data"])
-        kwargs.setdefault("elinewidth", 0.9)
-        kwargs.setdefault("label", "data")
-        with figure_style():
-            ax.errorbar(self.centers, y, yerr=yerr,
-                        xerr=0.5 * self.widths if self.nbins < 80 else None, **kwargs)
-        ax.set_xlabel(f"${self.label}$ [{self.unit}]" if self.label.isalpha() else
-                      f"{self.label} [{self.unit}]")
-        if density or not self._regular:
-            ax.set_ylabel(f"candidates / {self.unit}")
-        else:
-            ax.set_ylabel(f"candidates / {self.widths[0]:.3g} {self.unit}")
-        ax.set_xlim(self.lo, self.hi)
-        return ax.figure
+        return plot(self, ax, density, kwargs)
 
     # ------------------------------------------------------------------- repr
     def __repr__(self) -> str:
@@ -572,13 +486,4 @@ class MassHistogram:
         )
 
     def _repr_html_(self) -> str:
-        import html
-
-        kind = "regular" if self._regular else "variable"
-        rows = (("bins", f"{self.nbins} {kind} on [{self.lo:g}, {self.hi:g}] {self.unit}"),
-                ("sum of weights", f"{self.total():.6g}"),
-                ("weighted", "yes" if self.is_weighted else "no"),
-                ("underflow / overflow", f"{self.underflow:.6g} / {self.overflow:.6g}"))
-        cells = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
-                        for k, v in rows)
-        return f"<div><b>MassHistogram</b><table>{cells}</table></div>"
+        return html_table(self)

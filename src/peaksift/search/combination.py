@@ -26,7 +26,11 @@ The combination's global significance and limits take their settings from the
 ``[combination.limits]`` (``enabled``, ``cl``, ``method``, ``points``, ``toys``,
 ``toy_masses``) tables, each key as in a search config (same meaning, kind and range); a
 key not given there is the first channel's (``[significance]``, ``[limits]``), and
-``--toys``/``--seed`` override both.  The first channel gives the mass grid.  Every
+``--toys``/``--seed`` override both.  The mass grid covers the range every channel scans
+(from the highest first hypothesis to the lowest last one: each hypothesis is in every
+channel's likelihood) with, at each mass, the finest of the channels' steps (a channel
+without ``scan.step``/``scan.points`` steps half its resolution, as a search does); channels
+with one grid keep it exactly (one channel: its search's grid).  Every
 channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
 (``[signal_model]`` or ``limits.efficiency``).  Each channel's
 ``limits.luminosity_uncertainty`` and ``limits.efficiency_uncertainty`` enter the joint
@@ -103,7 +107,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     """
     from ..stats.channel_limits import combined_limits
     from ..stats.channels import combine
-    from .common import _scan_masses, _utc
+    from .common import _utc
     from .run import _search, _toy_executor
     from .staging import _apply_overrides, _check_inputs, _staged
 
@@ -169,7 +173,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                               target=None, collected=shared_reads.get(n))
                    for n, c in zip(names, cfgs)}
         first = cfgs[0]
-        masses = _scan_masses(first)
+        masses = combined_masses(cfgs, where)
         channels = [_channel(n, c, results[n], shared) for n, c in zip(names, cfgs)]
         unit = first.limits.cross_section_unit
         cmb = combine(channels, masses, refit=False, unit=unit)
@@ -224,6 +228,44 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
         if stage is not None:
             res = _write(res, stage.path, target, figures)
     return res
+
+
+def combined_masses(cfgs: list[Any], where: str = "combination") -> np.ndarray:
+    """The combined scan's hypotheses (module guide): every channel's own grid
+    (:func:`~peaksift.search.common._scan_masses`) when they are one; else from the highest
+    first hypothesis to the lowest last one, each step the smallest of the channels' steps
+    at that mass (``scan.step``, the spacing of ``scan.points``, or half the resolution)."""
+    from .common import _MAX_DEFAULT_HYPOTHESES, _scan_masses
+
+    grids = [_scan_masses(c) for c in cfgs]
+    if all(g.shape == grids[0].shape and np.array_equal(g, grids[0]) for g in grids[1:]):
+        return grids[0]
+    lo, hi = max(float(g[0]) for g in grids), min(float(g[-1]) for g in grids)
+    if not hi > lo:
+        ranges = ", ".join(f"{g[0]:g}-{g[-1]:g}" for g in grids)
+        raise ConfigError(f"{where}: the channels' scan ranges ({ranges} GeV) have no common "
+                          "part; a combined hypothesis must lie in every channel's scan "
+                          "(set scan.start and scan.stop)")
+
+    def step(cfg: Any, g: np.ndarray) -> Any:
+        if cfg.scan.points is not None:
+            return lambda m: (float(g[-1]) - float(g[0])) / (cfg.scan.points - 1)
+        if cfg.scan.step is not None:
+            return lambda m: float(cfg.scan.step)
+        return lambda m: 0.5 * float(cfg.model.resolution.sigma(m))
+
+    steps = [step(c, g) for c, g in zip(cfgs, grids)]
+    grid = [lo]
+    while grid[-1] < hi:
+        if len(grid) > _MAX_DEFAULT_HYPOTHESES:
+            raise ConfigError(f"{where}: the combined grid would hold more than "
+                              f"{_MAX_DEFAULT_HYPOTHESES} hypotheses; set scan.step or "
+                              "scan.points in the channels")
+        grid.append(grid[-1] + min(f(grid[-1]) for f in steps))
+    grid[-1] = min(grid[-1], hi)
+    if len(grid) > 1 and grid[-1] - grid[-2] < 1e-9:
+        grid.pop()
+    return np.asarray(grid)
 
 
 def _shared_reads(names: list[str], cfgs: list[Any], progress: bool) -> dict[str, Any]:
@@ -282,12 +324,12 @@ def _channel(name: str, cfg: Any, res: Any, shared_luminosity: bool = False) -> 
     sy = cfg.systematics
     env = (res.systematics or {}).get("envelope") if sy.background_families else None
     cands = {}
-    if env and env.get("functions"):
+    if env and env.get("labels"):
         from ..stats.background_choice import candidate_shapes
 
-        cands = {"background_candidates": candidate_shapes(list(env["functions"]),
+        cands = {"background_candidates": candidate_shapes(list(env["labels"]),
                                                            sqrt_s=sy.sqrt_s),
-                 "background_parameters": dict(zip(env["functions"], env["n_parameters"])),
+                 "background_parameters": dict(zip(env["labels"], env["n_parameters"])),
                  "background_penalty": float(env["penalty"])}
     norms = {"luminosity_uncertainty": float(cfg.limits.luminosity_uncertainty),
              "efficiency_uncertainty": float(cfg.limits.efficiency_uncertainty),

@@ -153,7 +153,8 @@ class SearchResult:
     known_matches : tuple of KnownMatch
         Known particles near the fitted peak, nearest first.
     calibration : dict or None
-        The calibration check (fitted vs tabulated mass) when configured.
+        The calibration check (fitted vs tabulated mass) when configured; its ``fit`` is
+        the calibration fit (``FitResult.to_dict``), which ``plot(which="calibration")`` draws.
     provenance : dict
         Inputs with sha256, config sha256, seed, versions, start and finish times.
     outdir : Path or None
@@ -287,7 +288,8 @@ class SearchResult:
                 figures={k: Path(outs["dir"]) / "figures" / v
                          for k, v in (outs.get("figures") or {}).items()},
                 fit_settings=settings, input_record=dict(d.get("input") or {}),
-                identification=d.get("identification"), systematics=d.get("systematics"),
+                identification=d.get("identification"),
+                systematics=_systematics(d.get("systematics")),
                 signal_model=SignalModel.from_dict(d["signal_model"])
                 if d.get("signal_model") else None)
         except (KeyError, TypeError, ValueError) as exc:
@@ -305,14 +307,15 @@ class SearchResult:
         """One figure of the search as a matplotlib Figure, drawn without pyplot (the
         user's backend is left alone) exactly as the run writes it: ``which`` is
         ``"spectrum"`` (the fit with pulls and numbers; while blinded the sideband fit),
-        ``"pvalue_scan"``, ``"limits"``, ``"candidates"`` or ``"background_envelope"``.
+        ``"pvalue_scan"``, ``"limits"``, ``"candidates"``, ``"background_envelope"`` or
+        ``"calibration"`` (the calibration peak's fit, which the result keeps).
         Saved to ``path`` when given.  A result read back with :meth:`from_dict` has no
         event-level data: its blinded spectrum is the sideband fit's own figure and it has
         no candidates figure."""
         from .. import plotting
         from ..errors import InputError, closest
 
-        names = [n for n in plotting.SEARCH_FIGURES if n != "calibration"]
+        names = list(plotting.SEARCH_FIGURES)
         if which not in names:
             hint = closest(which, names)
             raise InputError(f"SearchResult.plot: no figure {which!r}"
@@ -327,6 +330,8 @@ class SearchResult:
             why = ("no event-level data (read back from results.json)"
                    if which == "candidates" and self.collected is None else
                    "blinded (it shows the blinded window)" if which == "candidates" else
+                   "no calibration fit (none configured, or a results.json written before "
+                   "the result kept it)" if which == "calibration" else
                    "no results for it")
             raise InputError(f"SearchResult.plot: this result has no {which!r} figure: {why}")
         if path is not None:
@@ -415,6 +420,24 @@ def _background_fit(d: Mapping[str, Any]) -> Any:
         return None
     return SidebandFit.from_dict(b) if b.get("kind") == "sideband_fit" else \
         FitResult.from_dict(b)
+
+
+def _systematics(sy: Mapping[str, Any] | None) -> Mapping[str, Any] | None:
+    """The results.json ``systematics`` block, its envelope in EnvelopeResult's format.
+    Files written before the envelope took that format (``functions``, ``chosen_at_best``,
+    ``spurious_weights``, ``null_choice`` by label) are read with those keys renamed, so the
+    report and the summary read one format; what they did not keep stays absent."""
+    env = (sy or {}).get("envelope")
+    if not env or "labels" in env or "functions" not in env:
+        return sy
+    new = {k: v for k, v in env.items() if k not in (
+        "functions", "chosen_at_best", "spurious_weights", "candidate_z_local")}
+    labels = list(env["functions"])
+    new.update(labels=labels, spurious=list(env.get("spurious_weights") or ()),
+               best={"function": env.get("chosen_at_best")})
+    if isinstance(env.get("null_choice"), str) and env["null_choice"] in labels:
+        new["null_choice"] = labels.index(env["null_choice"])
+    return {**sy, "envelope": new}
 
 
 def _plain(o: Any) -> Any:

@@ -130,9 +130,12 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     # the figures are drawn beside the statistics, by a process started before the events
     # are read (it loads matplotlib meanwhile); without an output folder, or with
     # output.figures = "none", none are drawn (and no process is started)
-    drawer = (FigureWorker(stage.path / "figures", formats=cfg.output.formats,
-                           log_scale=cfg.output.log_scale)
-              if stage is not None and cfg.output.figures != ("none",) else None)
+    drawer = None
+    if stage is not None and cfg.output.figures != ("none",):
+        from ..plotting import figure_labels  # (no matplotlib: that loads in the drawer)
+
+        drawer = FigureWorker(stage.path / "figures", formats=cfg.output.formats,
+                              log_scale=cfg.output.log_scale, labels=figure_labels(cfg))
     besides: list[Beside] = []
     try:
         # only our kernels run in a search: numba's third-party extensions (awkward's,
@@ -523,6 +526,7 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "problems": list(d.get("problems") or []),
         "gof": d.get("gof"),
         "fitted_mass": {"value": m, "error": e},
+        "fit": d,  # the whole fit (FitResult.to_dict): SearchResult.plot draws it
         "fitted_resolution": _value_error(d, "sigma"),
         "signal_yield": d.get("signal_yield"),
         "shift": m - ref.mass,

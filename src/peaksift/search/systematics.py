@@ -187,14 +187,10 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         j = env.best_index
         chosen = int(env.chosen[j])
         curves = env.profile_curves() if not env.blinded[j] else None
+        # EnvelopeResult's own dict (EnvelopeResult.from_dict reads it back), and the
+        # curves of the envelope figure at the best mass
         block["envelope"] = {
-            "functions": list(env.labels), "n_parameters": list(env.n_parameters),
-            "penalty": env.penalty, "chosen_at_best": env.labels[chosen],
-            "spurious_weights": list(env.spurious),
-            "null_choice": env.labels[env.null_choice],
-            "z_local": env.z_local, "masses": env.masses,
-            "candidate_z_local": {k: np.sqrt(np.maximum(np.asarray(v), 0.0))
-                                  for k, v in env.candidate_q0.items()},
+            **env.to_dict(),
             "profile": None if curves is None else {
                 "mass": curves["mass"], "signal_yield": curves["signal_yield"],
                 "curves": curves["curves"], "envelope": curves["envelope"]},

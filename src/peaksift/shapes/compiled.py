@@ -26,11 +26,94 @@ from __future__ import annotations
 
 import math
 
-from numba import njit
+import numpy as np
+from llvmlite import ir
+from numba import njit, types
+from numba.extending import intrinsic
 
 __all__ = ["crystalball_density", "crystalball_primitive", "exponential_edges",
            "exponential_rows", "gaussian_edges", "gaussian_rows", "powerlaw_edges",
-           "powerlaw_rows"]
+           "powerlaw_rows", "vexp", "vlog"]
+
+
+# ------------------------------------------------------- exp and log that vectorise
+# numba's math.exp / math.log are calls into the C library, one element at a time (~20 ns
+# each here); a loop over a fit's 1,351 edges spends most of an evaluation in them.  These
+# are plain arithmetic and bit operations, so LLVM vectorises the loops that use them
+# (4 doubles per instruction): ~3x faster, within 2 ulp of the library (tested in
+# tests/test_likelihood_kernels.py against numpy).  Used by the fit's edge kernels and
+# Poisson pass only; the scan's and toys' stacked rows keep the library functions.
+
+
+@intrinsic
+def _bits_to_float(typingctx, v):  # pragma: no cover - compile time
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], ir.DoubleType())
+    return types.float64(types.int64), codegen
+
+
+@intrinsic
+def _float_to_bits(typingctx, v):  # pragma: no cover - compile time
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], ir.IntType(64))
+    return types.int64(types.float64), codegen
+
+
+_LOG2E = 1.4426950408889634
+_LN2_HI = 6.93147180369123816490e-01  # ln 2 split in two (fdlibm): exact k * _LN2_HI
+_LN2_LO = 1.90821492927058770002e-10
+
+
+@njit(inline="always", error_model="numpy")
+def vexp(x):  # pragma: no cover - compiled
+    """exp(x): x = k ln2 + r, |r| <= ln2/2, exp(r) by its Taylor series to r^13 (error
+    < 1e-17), times 2^k built from the exponent bits in two halves (so results down to the
+    subnormals and up to overflow come out right); inf, 0 and NaN as the library."""
+    xc = min(max(x, -746.0), 710.0)
+    k = math.floor(xc * _LOG2E + 0.5)
+    r = xc - k * _LN2_HI - k * _LN2_LO
+    p = 1.0 + r * (1.0 + r * (0.5 + r * (1.0 / 6 + r * (1.0 / 24 + r * (
+        1.0 / 120 + r * (1.0 / 720 + r * (1.0 / 5040 + r * (1.0 / 40320 + r * (
+            1.0 / 362880 + r * (1.0 / 3628800 + r * (1.0 / 39916800 + r * (
+                1.0 / 479001600 + r * (1.0 / 6227020800)))))))))))))
+    ki = np.int64(k)
+    h = ki >> 1
+    out = p * _bits_to_float((h + 1023) << 52) * _bits_to_float((ki - h + 1023) << 52)
+    return x if math.isnan(x) else out
+
+
+_SQRT2 = 1.4142135623730951
+# fdlibm's e_log.c polynomial for ln((1+s)/(1-s)) = 2s + s R(s^2)
+_LG1, _LG2 = 6.666666666666735130e-01, 3.999999999940941908e-01
+_LG3, _LG4 = 2.857142874366239149e-01, 2.222219843214978396e-01
+_LG5, _LG6 = 1.818357216161805012e-01, 1.531383769920937332e-01
+_LG7 = 1.479819860511658591e-01
+_TINY = 2.2250738585072014e-308  # smallest normal double
+
+
+@njit(inline="always", error_model="numpy")
+def vlog(x):  # pragma: no cover - compiled
+    """ln(x) by fdlibm's method (x = 2^e m, m in [sqrt(1/2), sqrt 2), ln m from
+    s = (m-1)/(m+1)); subnormals scaled first; 0 -> -inf, negative -> NaN, inf, NaN as
+    the library."""
+    sub = x < _TINY
+    xs = x * 18014398509481984.0 if sub else x  # 2^54
+    b = _float_to_bits(xs)
+    e = (b >> 52) - (1023 + 54 if sub else 1023)
+    m = _bits_to_float((b & 0x000FFFFFFFFFFFFF) | 0x3FF0000000000000)  # [1, 2)
+    big = m > _SQRT2
+    m = 0.5 * m if big else m
+    dk = float(e + 1 if big else e)
+    f = m - 1.0
+    s = f / (2.0 + f)
+    z = s * s
+    w = z * z
+    r = w * (_LG2 + w * (_LG4 + w * _LG6)) + z * (_LG1 + w * (_LG3 + w * (_LG5 + w * _LG7)))
+    hfsq = 0.5 * f * f
+    out = dk * _LN2_HI - ((hfsq - (s * (hfsq + r) + dk * _LN2_LO)) - f)
+    if x > 0.0:
+        return out if x < math.inf else x
+    return -math.inf if x == 0.0 else math.nan
 
 _INV_SQRT2PI = 1.0 / math.sqrt(2.0 * math.pi)
 _SQRT1_2 = 1.0 / math.sqrt(2.0)
@@ -43,11 +126,23 @@ _CUT = 40.0
 _ONE = 8.5
 
 
+#: |z| beyond which the far tail Phi(-|z|) < 1.8e-33 is taken as 0 when the window holds
+#: more than _HELD of the peak (so the CDF moves by < 2e-23 of its range): an erfc per edge
+#: saved on the far side of a peak (most edges of a narrow peak in a wide window)
+_TAIL = 12.0
+_HELD = 1e-10
+
+
 @njit(cache=True, nogil=True)
-def _primitive(z, upper):  # pragma: no cover - compiled
-    """Phi(z), or -Phi(-z) (the upper tail) when the window lies above the peak."""
+def _primitive(z, upper, tail):  # pragma: no cover - compiled
+    """Phi(z), or -Phi(-z) (the upper tail) when the window lies above the peak; the far
+    tail beyond ``tail`` standard deviations taken as 0."""
     if upper:
+        if z > tail:
+            return 0.0
         return -1.0 if z < -_ONE else -0.5 * math.erfc(z * _SQRT1_2)
+    if z < -tail:
+        return 0.0
     return 1.0 if z > _ONE else 0.5 * math.erfc(-z * _SQRT1_2)
 
 
@@ -70,20 +165,40 @@ def gaussian_edges(x, m, s, lo, hi, out):  # pragma: no cover - compiled
     if not norm > 0.0:
         return False
     inv = 1.0 / norm
+    tail = _TAIL if norm > _HELD else _CUT
     am = (fl - fh) * inv
     asg = (fl * zl - fh * zh) * inv
-    for i in range(x.size):
+    ne = x.size
+    # edges beyond 40 sigma (x is sorted): density 0, CDF 0 or 1, rows constant there
+    i0 = min(np.searchsorted(x, m - _CUT * s), ne)
+    i1 = max(min(np.searchsorted(x, m + _CUT * s, side="right"), ne), i0)
+    for i, prim in ((0, -1.0 if upper else 0.0), (i1, 0.0 if upper else 1.0)):
+        c = (prim - pl) * inv
+        r1 = fl * inv - c * am
+        r2 = fl * zl * inv - c * asg
+        for j in range(i, i0 if i == 0 else ne):
+            out[0, j] = c
+            out[1, j] = r1
+            out[2, j] = r2
+    # within them: the densities first, in a loop that vectorises (vexp); then the CDF,
+    # whose erfc is a library call per edge (one per edge, not two per bin)
+    fs = out[1]
+    for i in range(i0, i1):
+        z = (x[i] - m) * inv_s
+        q = -0.5 * z * z
+        # every lane computes vexp: an argument clamped above the subnormals (whose
+        # arithmetic is ~100x slower) and the result selected (below 3e-308: 0)
+        fs[i] = vexp(max(q, -708.0)) * _INV_SQRT2PI * inv_s if q >= -708.0 else 0.0
+    for i in range(i0, i1):
         z = (x[i] - m) * inv_s
         if z < -_CUT:
             prim = -1.0 if upper else 0.0
-            f = 0.0
         elif z > _CUT:
             prim = 0.0 if upper else 1.0
-            f = 0.0
         else:
-            prim = _primitive(z, upper)
-            f = math.exp(-0.5 * z * z) * _INV_SQRT2PI * inv_s
+            prim = _primitive(z, upper, tail)
         c = (prim - pl) * inv
+        f = fs[i]
         out[0, i] = c
         out[1, i] = (fl - f) * inv - c * am
         out[2, i] = (fl * zl - f * z) * inv - c * asg
@@ -112,6 +227,7 @@ def gaussian_rows(x, ms, s, lo, hi, frac):  # pragma: no cover - compiled
         if not norm > 0.0:
             return False
         inv = 1.0 / norm
+        tail = _TAIL if norm > _HELD else _CUT
         c_prev = 0.0
         for i in range(ne):
             z = (x[i] - m) * inv_s
@@ -120,7 +236,7 @@ def gaussian_rows(x, ms, s, lo, hi, frac):  # pragma: no cover - compiled
             elif z > _CUT:
                 prim = 0.0 if upper else 1.0
             else:
-                prim = _primitive(z, upper)
+                prim = _primitive(z, upper, tail)
             c = (prim - pl) * inv
             if i > 0:
                 frac[b, i - 1] = max(0.0, c - c_prev)
@@ -142,7 +258,7 @@ def powerlaw_edges(lx, k, l_lo, l_hi, out):  # pragma: no cover - compiled
     span = l_hi * q_hi - l_lo * q_lo
     base = l_lo * q_lo
     for i in range(lx.size):
-        q = math.exp(a * lx[i] - top)
+        q = vexp(a * lx[i] - top)
         c = (q - q_lo) * inv
         out[0, i] = c
         out[1, i] = ((base - lx[i] * q) + c * span) * inv
@@ -164,7 +280,7 @@ def exponential_edges(t, b, out):  # pragma: no cover - compiled
     ghi = ep * (ib - ib2) + g0
     scale = inv_z * ib
     for i in range(t.size):
-        e = math.exp(b * t[i])
+        e = vexp(b * t[i])
         c = (e - em) * scale
         out[0, i] = c
         out[1, i] = (e * (t[i] * ib - ib2) + g0 - c * ghi) * inv_z

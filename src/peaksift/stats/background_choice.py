@@ -37,19 +37,16 @@ Goodness of fit: the Baker-Cousins likelihood-ratio chi-square (Baker and Cousin
 from __future__ import annotations
 
 import itertools
-import math
 from collections.abc import Mapping
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from scipy import special
 
-from .._json import plain
-from .._values import FrozenValue
 from ..blinding import blinded_bins
 from ..errors import FitError
 from ..likelihood import saturated_term
+from .background_result import BackgroundCandidate, BackgroundChoice
 
 __all__ = ["FAMILIES", "BackgroundCandidate", "BackgroundChoice", "candidate_shapes",
            "choose_background", "fit_candidate", "order_test", "spurious_signal",
@@ -125,124 +122,6 @@ def _embed(fam: str, theta: np.ndarray) -> np.ndarray:
     return np.concatenate([theta, [0.0]])
 
 
-# ------------------------------------------------------------------ results
-@dataclass(frozen=True, repr=False, eq=False)
-class BackgroundCandidate(FrozenValue):
-    """One candidate function's background-only fit to the data.
-
-    ``n_parameters`` counts every free parameter (shape parameters and the yield);
-    ``order_p_value`` is the order test's p-value against the next order of its family
-    (None for the highest order); ``spurious`` the largest |fitted signal| / stat. error
-    on the template (None until :func:`spurious_signal` ran)."""
-
-    label: str
-    family: str
-    order: int
-    n_parameters: int
-    nll: float
-    chi2: float
-    ndf: int
-    gof_p_value: float
-    parameters: dict
-    background_yield: float
-    order_statistic: float | None = None
-    order_p_value: float | None = None
-    chosen: bool = False
-    note: str = ""
-
-    def __repr__(self) -> str:
-        tag = " (kept)" if self.chosen else ""
-        return (f"BackgroundCandidate({self.label}{tag}: NLL {self.nll:.2f}, "
-                f"{self.n_parameters} parameters, GOF p {self.gof_p_value:.3g})")
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready, every key the attribute of the same name."""
-        return plain({f: getattr(self, f) for f in self.__dataclass_fields__})
-
-    @classmethod
-    def from_dict(cls, d: Mapping[str, Any]) -> BackgroundCandidate:
-        """The candidate :meth:`to_dict` wrote (a non-finite number comes back as NaN)."""
-        try:
-            num = {k: math.nan if d[k] is None else float(d[k])
-                   for k in ("nll", "chi2", "gof_p_value", "background_yield")}
-            opt = {k: None if d.get(k) is None else float(d[k])
-                   for k in ("order_statistic", "order_p_value")}
-            return cls(label=str(d["label"]), family=str(d["family"]), order=int(d["order"]),
-                       n_parameters=int(d["n_parameters"]), ndf=int(d["ndf"]),
-                       parameters={k: math.nan if v is None else float(v)
-                                   for k, v in dict(d["parameters"]).items()},
-                       chosen=bool(d.get("chosen", False)), note=str(d.get("note", "")),
-                       **num, **opt)
-        except (KeyError, TypeError, ValueError) as exc:
-            raise FitError(f"not a background candidate written by BackgroundCandidate."
-                           f"to_dict: {exc!r}") from None
-
-
-@dataclass(frozen=True, repr=False, eq=False)
-class BackgroundChoice(FrozenValue):
-    """Every candidate's fit, the order test per family and the candidates kept."""
-
-    candidates: tuple
-    size: float
-    window: tuple[float, float]
-    blind: tuple[float, float] | None
-    n_bins: int
-    test: str = ("likelihood ratio 2(NLL_n - NLL_n+1) between consecutive orders; "
-                 "p-value from chi-square with the difference in free parameters (Wilks)")
-
-    @property
-    def chosen(self) -> tuple[BackgroundCandidate, ...]:
-        return tuple(c for c in self.candidates if c.chosen)
-
-    @property
-    def labels(self) -> tuple[str, ...]:
-        return tuple(c.label for c in self.chosen)
-
-    @property
-    def kept(self) -> tuple[str, ...]:
-        """The labels of the candidates kept (results.json ``kept``; as :attr:`labels`)."""
-        return self.labels
-
-    def candidate(self, label: str) -> BackgroundCandidate:
-        for c in self.candidates:
-            if c.label == label:
-                return c
-        raise FitError(f"no background candidate {label!r}; have "
-                       f"{', '.join(c.label for c in self.candidates)}")
-
-    def __repr__(self) -> str:
-        return (f"BackgroundChoice({len(self.candidates)} candidates, kept "
-                f"{', '.join(self.labels)}; order test size {self.size:g})")
-
-    def to_dict(self) -> dict[str, Any]:
-        return plain({"candidates": [c.to_dict() for c in self.candidates],
-                      "kept": list(self.labels), "size": self.size,
-                      "window": list(self.window),
-                      "blind": None if self.blind is None else list(self.blind),
-                      "n_bins": self.n_bins, "test": self.test})
-
-    @classmethod
-    def from_dict(cls, d: Mapping[str, Any]) -> BackgroundChoice:
-        """The choice :meth:`to_dict` wrote."""
-        try:
-            cands = tuple(BackgroundCandidate.from_dict(c) for c in d["candidates"])
-            return cls(cands, float(d["size"]), tuple(float(v) for v in d["window"]),
-                       None if d["blind"] is None else tuple(float(v) for v in d["blind"]),
-                       int(d["n_bins"]), str(d["test"]))
-        except (KeyError, TypeError, ValueError) as exc:
-            raise FitError(f"not a background choice written by BackgroundChoice.to_dict: "
-                           f"{exc!r}") from None
-
-    def plot(self, path: Any = None, *, run: Any = None) -> Any:
-        """Each candidate's goodness of fit and the order test between consecutive
-        orders, as a matplotlib Figure drawn without pyplot (the user's backend is left
-        alone); ``run``: the run label; saved to ``path`` when given.  See
-        :func:`peaksift.stats.result_figures.background_choice_figure`."""
-        from .result_figures import background_choice_figure
-
-        return background_choice_figure(self, path, run=run)
-
-
 # --------------------------------------------------------------- fitting
 def chi2_sf(x: Any, dof: int) -> Any:
     """The chi-square survival function, ``scipy.stats.chi2.sf(x, dof)`` to the bit (the
@@ -282,6 +161,18 @@ def _background_model(spec: Any, used: np.ndarray, shape: Any):
                       lower=lower, upper=upper, masses=np.empty(0),
                       fractions=np.empty((0, used.size)), bin_scale=spec.bin_scale)
     return model, start
+
+
+def _expected_counts(spec: Any, shape: Any, theta: np.ndarray, b: float) -> np.ndarray:
+    """A candidate's fitted counts in every bin of the window (the shape is normalised on
+    the whole window, ``b`` its yield there; in effective counts for a weighted spectrum,
+    as the likelihood compares them: :func:`.toy_model.bkg_fractions` on every bin)."""
+    nb = spec.edges.size - 1
+    g = shape.bin_fractions(spec.edges, [np.array([[t]]) for t in theta], spec.window)
+    g = np.broadcast_to(g, (1, nb))[0]
+    if spec.bin_scale is not None:
+        g = g * spec.bin_scale
+    return float(b) * g
 
 
 def fit_candidate(spec: Any, used: np.ndarray, shape: Any,
@@ -349,6 +240,8 @@ def choose_background(data: Any, families: Any = None, *, window: Any = None,
         fam, order = _parse(label)
         by_family.setdefault(fam, []).append((order, label, shape))
     out: list[BackgroundCandidate] = []
+    # what each candidate keeps for its figure: the blinded bins' counts are never kept
+    observed = np.where(blinded, np.nan, spec.counts)
     for fam, items in by_family.items():
         items.sort()
         fits = []
@@ -392,7 +285,10 @@ def choose_background(data: Any, families: Any = None, *, window: Any = None,
                 gof_p_value=float(chi2_sf(f["chi2"], max(f["ndf"], 1))),
                 parameters=dict(zip(shape.parameter_names, map(float, f["theta"]))),
                 background_yield=f["b"], order_statistic=f.get("lam"),
-                order_p_value=f.get("p"), chosen=f is keep, note=note))
+                order_p_value=f.get("p"), chosen=f is keep, note=note,
+                edges=np.asarray(spec.edges, float), observed=observed,
+                expected=_expected_counts(spec, shape, f["theta"], f["b"]), blinded=blinded,
+                weighted=spec.bin_scale is not None))
     return BackgroundChoice(tuple(out), float(size), spec.window,
                             None if blind is None else (float(blind[0]), float(blind[1])),
                             int(used.size))

@@ -183,7 +183,8 @@ def _prepare(ch: Channel, masses: Any, blind: Any) -> tuple[Any, Any, dict[str, 
 
 
 def _prepare_all(channels: Any, masses: Any, blind: Any) -> tuple:
-    """Every channel checked and prepared on the first channel's grid of masses: (channels,
+    """Every channel checked and prepared on one grid of masses (given, or spread over the
+    first channel's window when a number): (channels,
     their (model, spectrum, info), the masses, the blinded-mass mask, the sigma x B to
     signal-yield conversion of each channel at those masses)."""
     chans = _check(channels)

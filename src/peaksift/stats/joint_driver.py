@@ -53,7 +53,7 @@ DONE, DECLINED = 0, 1
 @njit(cache=True, nogil=True)
 def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2,
            lo, hi, boff, used, woff, scale, nn, ff, gg, tg, tdg, frac,
-           grad):  # pragma: no cover - compiled
+           grad, direct, th):  # pragma: no cover - compiled
     """The summed NLL of row ``r`` at ``x`` (as the Python ``total``), the background
     fractions and derivatives there into ``tg``/``tdg``; (nll, ok)."""
     nc = kind.size
@@ -74,7 +74,7 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
             w0, w1 = woff[c], woff[c + 1]
             ok = row_background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
                              lo[c], hi[c], x[first[c] + 1], used[b0:b1], scale[w0:w1],
-                             frac, grad, tg[b0:b1], tdg[b0:b1])
+                             frac, grad, tg[b0:b1], tdg[b0:b1], direct[c], th)
             if not ok:
                 return 0.0, False
         else:
@@ -104,8 +104,9 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
 
 @njit(cache=True, nogil=True)
 def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff, nn, ff,
-               g, dg, d2, wv, grad, hess):  # pragma: no cover - compiled
-    """Gradient and exact Hessian of row ``r`` at ``x`` (as the Python ``_grad_hess``)."""
+               g, dg, d2, grad, hess, pos, coef, aj):  # pragma: no cover - compiled
+    """Gradient and exact Hessian of row ``r`` at ``x`` (as the Python ``_grad_hess``);
+    ``pos``, ``coef``, ``aj``: work buffers of ``x.size``."""
     nc = kpar.size
     p = x.size
     for i in range(p):
@@ -113,9 +114,6 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
         for j in range(p):
             hess[i, j] = 0.0
     mu = mu_fixed[r] if fixed else x[0]
-    pos = np.empty(p, np.int64)
-    coef = np.empty(p)
-    aj = np.empty(p)
     for c in range(nc):
         b0, b1 = boff[c], boff[c + 1]
         fc = ff[c]
@@ -145,12 +143,18 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
                 aj[na] = a_norm[c, j]
                 nsig += 1
                 na += 1
-        # the sums of channel_sums, in its order
+        # the sums of channel_sums, each in its order, in one pass over the bins
+        kq = kpar[c]
         a0 = 0.0
         a1 = 0.0
         a2 = 0.0
         c0 = 0.0
         c1 = 0.0
+        e0 = 0.0
+        e1 = 0.0
+        e2 = 0.0
+        h0 = 0.0
+        h1 = 0.0
         for i in range(b0, b1):
             fi = fc[r, i - b0]
             gi = g[i]
@@ -158,30 +162,20 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
             ratio = nc_[rn, i - b0] * inv
             w = 1.0 - ratio
             v = ratio * inv
-            wv[0, i] = w
-            wv[1, i] = v
             fv = fi * v
             a0 += fi * w
             a1 += fi * fv
             a2 += gi * fv
             c0 += gi * w
             c1 += gi * gi * v
-        kq = kpar[c]
-        e0 = 0.0
-        e1 = 0.0
-        e2 = 0.0
-        h0 = 0.0
-        h1 = 0.0
-        if kq:
-            for i in range(b0, b1):
+            if kq:
                 dk = dg[i]
-                dv = dk * wv[1, i]
-                e0 += fc[r, i - b0] * dv
-                e1 += g[i] * dv
-                e2 += dk * wv[0, i]
-            for i in range(b0, b1):
-                h0 += dg[i] * wv[1, i] * dg[i]
-                h1 += dc[rd, i - b0] * wv[0, i]
+                dv = dk * v
+                e0 += fi * dv
+                e1 += gi * dv
+                e2 += dk * w
+                h0 += dk * v * dk
+                h1 += dc[rd, i - b0] * w
         # the channel's block over (signal columns, b, theta), scattered into the row's
         bi = first[c]
         for q in range(nsig):
@@ -222,7 +216,8 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
 @njit(cache=True, nogil=True)
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
            hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
-           step_tol, nll_tol, slack, tries, predict, hess_out, converged):  # pragma: no cover
+           step_tol, nll_tol, slack, tries, predict, hess_out, converged,
+           direct):  # pragma: no cover
     """The loop of :func:`peaksift.likelihood.minimize_stacked` on every row of the joint
     problem from ``x`` (its start); ``x``, ``nll`` and ``gg``/``dgg`` (the state:
     background fractions and derivatives; ``gg`` holds the fixed backgrounds' fractions on
@@ -236,25 +231,28 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
     gbuf = np.empty((1, nw))
     tg = np.empty(ntot)
     tdg = np.empty(ntot)
-    wv = np.empty((2, ntot))
     grad = np.empty(p)
     hess = np.empty((p, p))
     err = np.empty(p)
     a = np.empty((p, p))
     step = np.empty(p)
     trial = np.empty(p)
+    th = np.empty(1)
+    pos = np.empty(p, np.int64)
+    coef = np.empty(p)
+    aj = np.empty(p)
     for r in range(nb):
         xr = x[r].copy()
         # the start (as the Python loop's caller: a free fit whose start has no finite
         # NLL starts at mu = 0 instead)
         fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind,
                         eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, tg, tdg,
-                        frac, gbuf)
+                        frac, gbuf, direct, th)
         if ok and not fixed and not math.isfinite(fr):
             xr[0] = 0.0
             fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
                             kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg,
-                            tg, tdg, frac, gbuf)
+                            tg, tdg, frac, gbuf, direct, th)
         if not ok:
             return DECLINED
         g = tg.copy()
@@ -262,7 +260,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         lam = 1e-3
         for _it in range(steps):
             _grad_hess(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff,
-                       nn, ff, g, dg, d2, wv, grad, hess)
+                       nn, ff, g, dg, d2, grad, hess, pos, coef, aj)
             hess_out[r] = hess
             for i in range(p):
                 err[i] = math.sqrt(abs(1.0 / hess[i, i]))
@@ -300,7 +298,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                         break
                 tn, ok = _value(trial, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first,
                                 kpar, kind, eoff, e1, e2, lo, hi, boff, used, woff, scale,
-                                nn, ff, gg, tg, tdg, frac, gbuf)
+                                nn, ff, gg, tg, tdg, frac, gbuf, direct, th)
                 if not ok:
                     return DECLINED
                 good = tn <= fr + slack
@@ -352,8 +350,8 @@ _STATIC: dict[tuple, tuple] = {}
 
 
 def _static(models: list) -> tuple | None:
-    """(kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar) of a set of channel
-    models, or None when one has no compiled background."""
+    """(kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar, direct) of a set of
+    channel models, or None when one has no compiled background."""
     key = tuple(id(m) for m in models)
     hit = _STATIC.get(key)
     if hit is not None:
@@ -375,7 +373,10 @@ def _static(models: list) -> tuple | None:
                np.concatenate([[0], np.cumsum(wsz)]).astype(np.int64),
                np.concatenate([np.ones(w) if m.bin_scale is None else
                                np.asarray(m.bin_scale, float) for m, w in zip(models, wsz)]),
-               np.array([m.theta.size for m in models], np.int64))
+               np.array([m.theta.size for m in models], np.int64),
+               # every bin used and unweighted: the row kernel writes the fractions itself
+               np.array([m.used.size == w and m.bin_scale is None
+                         for m, w in zip(models, wsz)], np.bool_))
     if len(_STATIC) >= 8:
         _STATIC.pop(next(iter(_STATIC)))
     _STATIC[key] = (tuple(models), out)
@@ -404,7 +405,7 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     fixed_parts = _static(models)
     if fixed_parts is None:
         return None
-    kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar = fixed_parts
+    kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar, direct = fixed_parts
     nb, p = x0.shape
     nc = len(models)
     sizes = np.diff(boff)
@@ -435,7 +436,7 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
                     d2c, x, out_nll,
                     np.asarray(lower, float), np.asarray(upper, float), int(steps),
                     -1.0 if step_tol is None else float(step_tol), float(nll_tol),
-                    float(slack), int(tries), bool(predict), hess, conv)
+                    float(slack), int(tries), bool(predict), hess, conv, direct)
     if status != DONE:
         return None
     spans = list(itertools.pairwise(boff))

@@ -124,22 +124,30 @@ def sums(n: np.ndarray, f: np.ndarray, g: np.ndarray, dg: np.ndarray, d2: np.nda
 
 
 @njit(cache=True, nogil=True)
-def row_background(kind, e1, e2, lo, hi, theta, used, scale, frac, grad, tg, tdg,
-                ):  # pragma: no cover - compiled
+def row_background(kind, e1, e2, lo, hi, theta, used, scale, frac, grad, tg, tdg, direct,
+                   th):  # pragma: no cover - compiled
     """One row's background fractions and their derivative in the used bins into ``tg``
-    and ``tdg`` (as :func:`peaksift.stats.joint._bkg_both`); False if the kernel declines."""
-    th = np.empty(1)
+    and ``tdg`` (as :func:`peaksift.stats.joint._bkg_both`); False if the kernel declines.
+    ``direct``: every bin used and unweighted, so the kernel writes ``tg`` and ``tdg``
+    itself (no copy through ``frac``; the same numbers).  ``th``: a buffer of one."""
     th[0] = theta
-    if kind == 1:
-        ok = exponential_rows(e1, e2, th, frac, grad)
+    if direct:
+        out = tg.reshape((1, tg.size))
+        drv = tdg.reshape((1, tdg.size))
     else:
-        ok = powerlaw_rows(e1, e2, th, lo, hi, frac, grad)
+        out = frac
+        drv = grad
+    if kind == 1:
+        ok = exponential_rows(e1, e2, th, out, drv)
+    else:
+        ok = powerlaw_rows(e1, e2, th, lo, hi, out, drv)
     if not ok:
         return False
-    for j in range(used.size):
-        u = used[j]
-        tg[j] = frac[0, u] * scale[u]
-        tdg[j] = grad[0, u] * scale[u]
+    if not direct:
+        for j in range(used.size):
+            u = used[j]
+            tg[j] = frac[0, u] * scale[u]
+            tdg[j] = grad[0, u] * scale[u]
     return True
 
 

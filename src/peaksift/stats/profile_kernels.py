@@ -66,20 +66,29 @@ def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, g,
                 dg):  # pragma: no cover - compiled
     """Used-bin background fractions ``g`` (and, if ``dg.size``, derivatives ``dg``, with
     ``grad`` then the kernel's full derivative rows, else an empty 2-d array) at
-    ``theta``, scaled as ``toy_model.bkg_fractions``; False where the kernel declines."""
+    ``theta``, scaled as ``toy_model.bkg_fractions`` (``scale`` empty: unweighted); False
+    where the kernel declines.  Every bin used and no scale: the kernel writes ``g`` and
+    ``dg`` itself (no copy through ``frac``; the same numbers)."""
     kbuf[0] = theta
     want = dg.size > 0
+    direct = used.size == frac.shape[1] and scale.size == 0
+    out = g.reshape((1, g.size)) if direct else frac
+    drv = dg.reshape((1, dg.size)) if (direct and want) else grad
     if code == 0:
-        ok = powerlaw_rows(e1, e2, kbuf, c1, c2, frac, grad)
+        ok = powerlaw_rows(e1, e2, kbuf, c1, c2, out, drv)
     else:
-        ok = exponential_rows(e1, e2, kbuf, frac, grad)
+        ok = exponential_rows(e1, e2, kbuf, out, drv)
     if not ok:
         return False
+    if direct:
+        return True
+    unit = scale.size == 0
     for j in range(used.size):
         i = used[j]
-        g[j] = frac[0, i] * scale[i]
+        sc = 1.0 if unit else scale[i]
+        g[j] = frac[0, i] * sc
         if want:
-            dg[j] = grad[0, i] * scale[i]
+            dg[j] = grad[0, i] * sc
     return True
 
 
@@ -105,35 +114,47 @@ def _nll(n, f, g, s, b, sat):  # pragma: no cover - compiled
 @njit(cache=True, nogil=True)
 def _grad_hess(n, f, g, dg, d2, s, b, off, grad, hess):  # pragma: no cover - compiled
     """``profile_signal``'s ``grad_hess`` for one row (one background parameter): the
-    gradient and exact Hessian over ``(s, b, theta)`` (``off`` = 1) or ``(b, theta)``."""
-    p = grad.size
-    for a in range(p):
-        grad[a] = 0.0
-        for c in range(p):
-            hess[a, c] = 0.0
+    gradient and exact Hessian over ``(s, b, theta)`` (``off`` = 1) or ``(b, theta)``.
+    Sums in registers, in the order of the loop ``grad[a] += col[a] w``, ``hess[a, c] +=
+    col[a] col[c] v`` over the columns ``(f, g, b dg)``."""
+    gs = gb = gt = 0.0
+    hss = hbs = hbb = hts = htb = htt = 0.0
     curv = 0.0
     cross = 0.0
-    col = np.empty(3)
     for j in range(n.size):
         nu = s * f[j] + b * g[j]
         if not math.isnan(nu):  # np.maximum keeps a NaN
             nu = max(NU_FLOOR, nu)
         w = 1.0 - n[j] / nu
         v = n[j] / (nu * nu)
+        cb = g[j]
+        ct = b * dg[j]
         if off:
-            col[0] = f[j]
-        col[off] = g[j]
-        col[off + 1] = b * dg[j]
-        for a in range(p):
-            grad[a] += col[a] * w
-            for c in range(a + 1):
-                hess[a, c] += col[a] * col[c] * v
+            cs = f[j]
+            gs += cs * w
+            hss += cs * cs * v
+            hbs += cb * cs * v
+            hts += ct * cs * v
+        gb += cb * w
+        hbb += cb * cb * v
+        gt += ct * w
+        htb += ct * cb * v
+        htt += ct * ct * v
         curv += d2[j] * w
         cross += dg[j] * w
-    for a in range(p):
-        for c in range(a):
-            hess[c, a] = hess[a, c]
-    hess[off + 1, off + 1] += b * curv
+    if off:
+        grad[0] = gs
+        hess[0, 0] = hss
+        hess[1, 0] = hbs
+        hess[0, 1] = hbs
+        hess[2, 0] = hts
+        hess[0, 2] = hts
+    grad[off] = gb
+    grad[off + 1] = gt
+    hess[off, off] = hbb
+    hess[off + 1, off] = htb
+    hess[off, off + 1] = htb
+    hess[off + 1, off + 1] = htt + b * curv
     hess[off, off + 1] += cross
     hess[off + 1, off] += cross
 
@@ -331,7 +352,7 @@ def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: np.ndarray,
     inf = np.full(p - 1, np.inf)
     lower = np.concatenate([-inf, model.lower]).astype(float)
     upper = np.concatenate([inf, model.upper]).astype(float)
-    scale = (np.ones(e1.size - 1) if model.bin_scale is None
+    scale = (np.empty(0) if model.bin_scale is None
              else np.ascontiguousarray(model.bin_scale, float))
     s_fix = np.array(s, float) if fixed else np.zeros(nb)
     d2 = np.empty((nb, nbin))

@@ -8,6 +8,8 @@ figure is made with :func:`peaksift._style.new_figure`, the user's backend is le
   observed and expected limits with their bands, and each channel's expected limit.
 * :func:`background_choice_figure` -- :meth:`BackgroundChoice.plot`: each candidate
   function's goodness of fit and the order test between consecutive orders.
+* :func:`background_candidate_figure` -- :meth:`BackgroundCandidate.plot`: one candidate's
+  background-only fit over the spectrum, the pulls beneath.
 
 Every figure takes the run label (``run``, a :class:`peaksift._style.RunLabel`) and the
 pair's mass symbol (``symbol``, mathtext) where the result itself does not know them.
@@ -30,7 +32,8 @@ from .._style import (
 )
 from .significance import p_from_q0
 
-__all__ = ["background_choice_figure", "combined_limits_figure", "envelope_figure"]
+__all__ = ["background_candidate_figure", "background_choice_figure",
+           "combined_limits_figure", "envelope_figure"]
 
 #: candidate functions and channels, one colour and line style each
 _PALETTE = (COLORS["total"], COLORS["accent"], COLORS["mark"], COLORS["background"],
@@ -208,6 +211,67 @@ def background_choice_figure(choice: Any, path: Any = None, *, run: Any = None) 
         if min(ps, default=1.0) <= floor:
             note += f";  p-values below {p_value(floor)} drawn at it"
         draw_header(a1, run, note)
+    if path is not None:
+        fig.savefig(path)
+    return fig
+
+
+def background_candidate_figure(cand: Any, path: Any = None, *, run: Any = None,
+                                symbol: str | None = None) -> Any:
+    """The spectrum (points with central 68% Poisson intervals, Garwood, Biometrika 28
+    (1936) 437; the blinded bins hidden and hatched), one candidate's background-only fit
+    (solid where fitted, dashed across the blinded window where extrapolated, its goodness
+    of fit in the legend) and the pulls (n - mu)/sqrt(mu) beneath."""
+    from scipy.special import gammaincinv
+
+    pulls = cand.pulls  # (refuses a candidate without its spectrum, in a PeaksiftError)
+    e = np.asarray(cand.edges, float)
+    c, bw = 0.5 * (e[1:] + e[:-1]), np.diff(e)
+    ref = float(np.median(bw))
+    hid = np.asarray(cand.blinded, bool)
+    n = np.asarray(cand.observed, float)
+    with np.errstate(invalid="ignore"):
+        lower = np.where(n > 0, gammaincinv(np.maximum(n, 1e-300), 0.15865), 0.0)
+        upper = gammaincinv(n + 1.0, 0.84135)
+    scale = ref / bw
+    mu = np.asarray(cand.expected, float) * scale
+    # the dashed part reaches one bin into each sideband, so the two parts join
+    near = hid | np.r_[hid[1:], False] | np.r_[False, hid[:-1]]
+    span = (float(e[:-1][hid].min()), float(e[1:][hid].max())) if hid.any() else None
+    grid = {"height_ratios": [3.2, 1], "hspace": 0.05}
+    fig, (ax, axp) = new_figure((7.0, 5.6), 2, 1, sharex=True, gridspec_kw=grid)
+    with figure_style():
+        ax.errorbar(c, n * scale, yerr=[(n - lower) * scale, (upper - n) * scale], fmt="o",
+                    ms=2.8, lw=0.9, color=COLORS["data"], label="data", zorder=3)
+        gof = (f"$\\chi^2$/ndf = {fixed(cand.chi2, 1)}/{cand.ndf}, "
+               f"p = {p_value(cand.gof_p_value)}")
+        ax.plot(c, np.where(hid, np.nan, mu), color=COLORS["total"], lw=1.4,
+                label=f"{cand.label}, background only ({gof})")
+        if hid.any():
+            ax.plot(c, np.where(near, mu, np.nan), color=COLORS["total"], lw=1.4, ls="--",
+                    label="its extrapolation (blinded)")
+        shade_blinded(ax, span)
+        shown = np.concatenate([(upper * scale)[~hid], mu])
+        ax.set_ylim(0, 1.45 * float(np.nanmax(shown)))
+        what = "effective counts" if cand.weighted else "candidates"
+        ax.set_ylabel(f"{what} / {number(ref, 3)} GeV")
+        ax.legend(loc="upper right", fontsize=8.5)
+        axp.axhline(0, color=COLORS["background"], lw=0.8)
+        for lvl in (-2, 2):
+            axp.axhline(lvl, color=COLORS["background"], lw=0.6, ls=":")
+        axp.stairs(np.where(np.isfinite(pulls), pulls, 0.0), e, baseline=0.0, fill=True,
+                   color=COLORS["total"], alpha=0.75, lw=0)
+        shade_blinded(axp, span, label=None)
+        big = float(np.nanmax(np.abs(pulls))) if np.any(np.isfinite(pulls)) else 0.0
+        axp.set_ylim(-max(3.5, 1.1 * big), max(3.5, 1.1 * big))
+        axp.set_ylabel("pull")
+        axp.set_xlabel(f"${symbol or 'm'}$ [GeV]")
+        axp.set_xlim(e[0], e[-1])
+        kept = "kept" if cand.chosen else "not kept"
+        where = "its sidebands" if span is not None else "the spectrum"
+        draw_header(ax, run, f"background candidate {cand.label} ({cand.n_parameters} free "
+                    f"parameters, {kept}) fitted to {where}, {fixed(e[0], 1)}-"
+                    f"{fixed(e[-1], 1)} GeV")
     if path is not None:
         fig.savefig(path)
     return fig

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import math
 import pickle
@@ -203,21 +204,39 @@ _FITS_KEPT = 32
 _FITS_LOCK = threading.Lock()
 
 
+#: shape attributes that only cache work (the integration cache, the power law's edge logs)
+_SHAPE_CACHES = ("_cache", "_lx")
+
+
 def _fit_key(proto: ScanModel, counts: np.ndarray, start: np.ndarray) -> bytes | None:
     """Everything the background fit's result depends on, as a digest: the shape's class
-    and options (its instance state but the integration cache), the bins, the window, the
-    bounds, the counts, the start, and the numpy-or-compiled switch; None when the shape
-    does not pickle (then the fit is not kept)."""
+    and options (its instance state but its caches), the bins, the window, the bounds, the
+    counts, the start, and the numpy-or-compiled switch; None when the shape does not
+    pickle (then the fit is not kept).
+
+    Only the small parts are pickled; the arrays go into the digest as their raw bytes
+    (with dtype and shape).  The caches stay out: pickling the power law's edge logarithms
+    cost ~0.1 ms a scan, and they made the key depend on the edges last seen.  Every bin
+    used (no blinding) is written as the count alone."""
     shape = proto.background
-    state = {k: v for k, v in vars(shape).items() if k != "_cache"}
+    state = {k: v for k, v in vars(shape).items() if k not in _SHAPE_CACHES}
+    used = proto.used
+    every_bin = used.size == proto.edges.size - 1  # strictly increasing: then 0..n-1
     try:
-        raw = pickle.dumps((type(shape).__module__, type(shape).__qualname__, state,
-                            proto.edges, proto.used, proto.window, proto.lower, proto.upper,
-                            proto.bin_scale, np.asarray(counts), np.asarray(start),
-                            use_compiled()), protocol=4)
+        head = pickle.dumps((type(shape).__module__, type(shape).__qualname__, state,
+                             proto.window, every_bin, use_compiled()), protocol=4)
     except Exception:  # noqa: BLE001 -- any pickling failure: just fit again
         return None
-    return hashlib.sha256(raw).digest()
+    digest = hashlib.sha256(head)
+    for a in (proto.edges, None if every_bin else used, proto.lower, proto.upper,
+              proto.bin_scale, counts, start):
+        if a is None:
+            digest.update(b"-")
+            continue
+        a = np.ascontiguousarray(a)
+        digest.update(f"{a.dtype.str}{a.shape}".encode())
+        digest.update(a.data)
+    return digest.digest()
 
 
 def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray
@@ -411,7 +430,13 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
     fr_all = np.broadcast_to(fr_all, (m_arr.size, spec.edges.size - 1))
     if spec.bin_scale is not None:
         fr_all = fr_all * spec.bin_scale   # expectations in effective counts, bin by bin
-    fractions = np.ascontiguousarray(fr_all[:, used])
+    fr_all = np.ascontiguousarray(fr_all)
+    # (masses x bins) arrays are a 10,000-bin scan's largest: copied only where blinding
+    # drops bins or masses (each copy cost ~2% of such a scan)
+    fractions = fr_all if used.size == fr_all.shape[1] else fr_all[:, used]
+    open_masses, open_fractions = m_arr, fractions
+    if blinded_mass.any():
+        open_masses, open_fractions = m_arr[~blinded_mass], fractions[~blinded_mass]
     start, lower, upper = _background_start(bkg, spec.window)
     if background_start:
         names = bkg.parameter_names
@@ -421,16 +446,13 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
     counts = spec.counts[used]
     proto = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
                       background=bkg, theta=start, bkg_yield=float(counts.sum()),
-                      lower=lower, upper=upper, masses=m_arr[~blinded_mass],
-                      fractions=fractions[~blinded_mass], bin_scale=spec.bin_scale)
+                      lower=lower, upper=upper, masses=open_masses,
+                      fractions=open_fractions, bin_scale=spec.bin_scale)
     theta, b, nll0 = _fit_data_background(proto, counts, start)
-    model = ScanModel(edges=spec.edges, used=used, window=spec.window, counts=counts,
-                      background=bkg, theta=theta[0], bkg_yield=float(b[0]),
-                      lower=lower, upper=upper, masses=m_arr[~blinded_mass],
-                      fractions=fractions[~blinded_mass], nll_background=float(nll0[0]),
-                      bin_scale=spec.bin_scale)
+    model = dataclasses.replace(proto, theta=theta[0], bkg_yield=float(b[0]),
+                                nll_background=float(nll0[0]))
     info = {"signal": sig, "background": bkg, "sigma": sigma, "masses": m_arr,
             "signal_params": signal_params,
-            "blinded_mass": blinded_mass, "window_fractions": np.ascontiguousarray(fr_all),
+            "blinded_mass": blinded_mass, "window_fractions": fr_all,
             "blinded_bins": blinded}
     return model, spec, info

@@ -1,0 +1,55 @@
+"""Where a legend goes: :func:`place_legend` puts it in the first place, in a fixed order of
+preference, where it covers none of the points and error bars given, raising the y axis
+when no place is free.  Measured on the figure's own renderer, after the axis ranges and
+margins are final."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+__all__ = ["place_legend"]
+
+#: the places tried, in order (upper right first: where a falling spectrum leaves room)
+_PLACES = ("upper right", "upper left", "upper center", "lower left", "lower right",
+           "lower center", "center right", "center left")
+#: a point this close to the legend's box (points, about a marker's radius) touches it
+_PAD = 3.0
+
+
+def _covered(ax: Any, legend: Any, x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> int:
+    """How many of the vertical segments (x, lo..hi) the legend's box touches."""
+    renderer = ax.figure.canvas.get_renderer()
+    box = legend.get_window_extent(renderer)
+    pad = _PAD * ax.figure.dpi / 72.0
+    a = ax.transData.transform(np.c_[x, lo])
+    b = ax.transData.transform(np.c_[x, hi])
+    inside_x = (a[:, 0] >= box.x0 - pad) & (a[:, 0] <= box.x1 + pad)
+    bottom, top = np.minimum(a[:, 1], b[:, 1]), np.maximum(a[:, 1], b[:, 1])
+    inside_y = (top >= box.y0 - pad) & (bottom <= box.y1 + pad)
+    return int(np.count_nonzero(inside_x & inside_y))
+
+
+def place_legend(ax: Any, x: Any, lo: Any, hi: Any | None = None, *, log: bool = False,
+                 **kwargs: Any) -> Any:
+    """The legend of ``ax`` in the first of :data:`_PLACES` where it touches none of the
+    segments from ``(x, lo)`` to ``(x, hi)`` (data points with their error bars; ``hi``
+    omitted: points, e.g. a curve's samples).  When every place is taken the y axis is
+    raised (by 30% of its span, or a factor 3 on a log axis) until the upper right is
+    free.  Returns the Legend."""
+    x, lo = np.asarray(x, float), np.asarray(lo, float)
+    hi = lo if hi is None else np.asarray(hi, float)
+    ok = np.isfinite(x) & np.isfinite(lo) & np.isfinite(hi)
+    x, lo, hi = x[ok], lo[ok], hi[ok]
+    for place in _PLACES:
+        leg = ax.legend(loc=place, **kwargs)
+        if _covered(ax, leg, x, lo, hi) == 0:
+            return leg
+    for _ in range(12):
+        y0, y1 = ax.get_ylim()
+        ax.set_ylim(y0, y1 * 3.0 if log else y1 + 0.3 * (y1 - y0))
+        leg = ax.legend(loc=_PLACES[0], **kwargs)
+        if _covered(ax, leg, x, lo, hi) == 0:
+            break
+    return leg
