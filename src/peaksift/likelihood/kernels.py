@@ -101,7 +101,7 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
         # a negative Poisson mean (a negative yield deeper than the background under it) is
         # outside the model: rejected after the loop, not floored -- floored, an empty bin
         # would let a negative peak dig on at no cost (a select, so the loop vectorises)
-        lowest = mu if mu < lowest else lowest
+        lowest = mu if mu < lowest else lowest  # noqa: FURB136 (as below)
         mu = floor if mu < floor else mu  # noqa: FURB136 (max() may drop a NaN)
         mu_out[j] = mu
         sj = 1.0 if unit else s[j]
