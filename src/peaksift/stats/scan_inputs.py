@@ -204,8 +204,9 @@ _FITS_KEPT = 32
 _FITS_LOCK = threading.Lock()
 
 
-#: shape attributes that only cache work (the integration cache, the power law's edge logs)
-_SHAPE_CACHES = ("_cache", "_lx")
+#: shape attributes that only cache work (the integration cache, the power law's edge logs,
+#: the per-edges terms of the compiled Bernstein and power-sum rows)
+_SHAPE_CACHES = ("_cache", "_lx", "_edge_terms")
 
 
 def _fit_key(proto: ScanModel, counts: np.ndarray, start: np.ndarray) -> bytes | None:
@@ -215,8 +216,9 @@ def _fit_key(proto: ScanModel, counts: np.ndarray, start: np.ndarray) -> bytes |
     pickle (then the fit is not kept).
 
     Only the small parts are pickled; the arrays go into the digest as their raw bytes
-    (with dtype and shape).  The caches stay out: pickling the power law's edge logarithms
-    cost ~0.1 ms a scan, and they made the key depend on the edges last seen.  Every bin
+    (with dtype and shape).  The caches (``_SHAPE_CACHES``) stay out: pickling the power
+    law's edge logarithms cost ~0.1 ms a scan, and they made the key depend on the edges
+    last seen.  Every bin
     used (no blinding) is written as the count alone."""
     shape = proto.background
     state = {k: v for k, v in vars(shape).items() if k not in _SHAPE_CACHES}
