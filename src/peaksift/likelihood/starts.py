@@ -232,6 +232,13 @@ def _profile_one_yield(n, b, s, f, steps: int = 8):
     """(yield, gain 2 dNLL) of ``b + y f`` against ``b`` per row, the yield by Newton steps
     on the Fisher information, each step halved while any bin's expectation would drop below
     1 % of its background (an empty bin's optimum is an expectation of 0)."""
+    if use_compiled():  # the same steps row by row, compiled (~2 ms of numpy per fit)
+        from .kernels import profile_one_yield
+
+        y, gain = np.empty(n.shape[0]), np.empty(n.shape[0])
+        profile_one_yield(*(np.ascontiguousarray(a, float) for a in (n, b, s, f)), steps, y,
+                          gain)  # (rows, bins) each
+        return y, gain
     y = np.zeros(n.shape[0])
     with np.errstate(divide="ignore", invalid="ignore"):
         for _ in range(steps):
