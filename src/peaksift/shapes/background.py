@@ -41,6 +41,24 @@ class _Background(Shape):
     kind = "background"
 
 
+class _CompiledRows(_Background):
+    """A background whose bin fractions (and their derivatives) come from a compiled kernel,
+    ``_compiled(edges, params, window, grad)`` -> ``(fractions, derivatives)`` or None where
+    the kernel declines; then the generic path of :class:`Shape` answers."""
+
+    def _compiled(self, edges, params, window, grad: bool):
+        return None
+
+    def bin_fractions(self, edges, params, window):
+        out = self._compiled(edges, params, window, False)
+        return out[0] if out is not None else super().bin_fractions(edges, params, window)
+
+    def fractions_and_grad(self, edges, params, window, need=None):
+        out = self._compiled(edges, params, window, True)
+        return out if out is not None else super().fractions_and_grad(edges, params,
+                                                                       window, need)
+
+
 def _stacked(params, edges) -> np.ndarray | None:
     """The one parameter of a stacked call (one value per row, shape ``(B, 1)``) on 1-d
     edges, as a contiguous ``(B,)`` array; None for any other call."""
@@ -216,7 +234,7 @@ class Exponential(ExpPoly):
         super().__init__(order=1, **options)
 
 
-class Bernstein(_Background):
+class Bernstein(_CompiledRows):
     r"""Bernstein polynomial of degree n on the window, non-negative by construction:
 
     .. math:: f(x) \propto \sum_{i=0}^{n} \beta_i \binom{n}{i} u^i (1-u)^{n-i},
@@ -281,15 +299,6 @@ class Bernstein(_Background):
         from .falling_rows import bernstein_fractions
 
         return bernstein_fractions(self, edges, params, window, grad)
-
-    def bin_fractions(self, edges, params, window):
-        out = self._compiled(edges, params, window, False)
-        return out[0] if out is not None else super().bin_fractions(edges, params, window)
-
-    def fractions_and_grad(self, edges, params, window, need=None):
-        out = self._compiled(edges, params, window, True)
-        return out if out is not None else super().fractions_and_grad(edges, params,
-                                                                       window, need)
 
     def __repr__(self) -> str:
         return f"<background shape 'bernstein' degree={self.degree}>"
@@ -414,7 +423,7 @@ class PowerLaw(_Background):
         return lx, dlx
 
 
-class PowerSum(_Background):
+class PowerSum(_CompiledRows):
     r"""Sum of power laws, the "power law of n terms":
 
     .. math:: f(x) \propto (x/c)^{-k_1} + \sum_{j=2}^{n} w_j^2\,(x/c)^{-k_j}
@@ -471,15 +480,6 @@ class PowerSum(_Background):
         from .falling_rows import powersum_fractions
 
         return powersum_fractions(self, edges, params, window, grad)
-
-    def bin_fractions(self, edges, params, window):
-        out = self._compiled(edges, params, window, False)
-        return out[0] if out is not None else super().bin_fractions(edges, params, window)
-
-    def fractions_and_grad(self, edges, params, window, need=None):
-        out = self._compiled(edges, params, window, True)
-        return out if out is not None else super().fractions_and_grad(edges, params,
-                                                                       window, need)
 
     def __repr__(self) -> str:
         return f"<background shape 'powersum' terms={self.terms}>"
