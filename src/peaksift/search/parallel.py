@@ -213,22 +213,18 @@ class FigureWorker:
             self._proc = None
 
 
-def _warm_up(formats: Sequence[str] = (), labels: Any = None) -> None:
+def _warm_up(formats: Sequence[str] = ()) -> None:
     """Import the drawing stack and render one small figure with typeset text, so the
     first real figure does not pay for loading fonts and the mathtext parser; saved once in
     each of ``formats`` too, so that their backends (the PDF one loads fontTools, ~0.25 s)
     are in before the second drawer forks, not imported by each drawer.
 
-    With ``labels`` (the run's :class:`~peaksift.plotting.FigureLabels`) the expressions
-    most figures of the run typeset -- the run label, the mass axis, the powers of ten of a
-    log axis, the fitted quantities' symbols, the sigma levels of the p-value scan -- are
-    typeset here, in the process's one parser (``_style``), at the size and resolution the
-    figures use them: while the events are read instead of in every figure."""
+    The run's own expressions are not typeset here in advance: laid out in this shared
+    parser at the figures' resolution, some were later drawn with overlapping glyphs (a
+    tick label "60" as a "6" over a "0"), and the time it saved was within the noise."""
     import io
 
-    import matplotlib as mpl
-
-    from .._style import draw_header, figure_style, new_figure, value_table
+    from .._style import figure_style, new_figure
 
     fig, ax = new_figure((2.0, 1.5))
     with figure_style():
@@ -237,23 +233,6 @@ def _warm_up(formats: Sequence[str] = (), labels: Any = None) -> None:
         ax.set_title(r"$Z_{local}$ = 1.00 $\sigma$")
     for fmt in dict.fromkeys(["png", *formats]):
         fig.savefig(io.BytesIO(), format=fmt, dpi=50)
-    if labels is None:
-        return
-    fig, ax = new_figure((2.0, 1.5))
-    with figure_style():
-        fig.set_dpi(mpl.rcParams["savefig.dpi"])  # the figures' files are typeset at this
-        draw_header(ax, labels.run, "x")
-        texts = [ax.set_xlabel(labels.mass_axis()),
-                 ax.set_ylabel(f"${labels.symbol}$ hypothesis [GeV]")]
-        for k in range(-9, 4):  # a log axis's labels (LogFormatterSciNotation)
-            texts.append(ax.text(0.5, 0.5, f"$\\mathdefault{{10^{{{k}}}}}$",
-                                 fontsize=mpl.rcParams["font.size"]))
-        texts += [ax.text(0.5, 0.5, f" {k}$\\sigma$", fontsize=9) for k in range(1, 6)]
-        value_table(ax, [(n, "1", "\u00b1 1", "") for n in
-                         (r"$N_{sig}$", r"$N_{bkg}$", r"$\sigma$", r"$\Gamma$")])
-        renderer = fig.canvas.get_renderer()
-        for t in {*texts, *ax.texts}:  # laid out (typeset), not drawn
-            t.get_window_extent(renderer)
 
 
 #: processes drawing a search's figures: the first forks the others once matplotlib is in
@@ -339,7 +318,7 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
         _child_start(parent)
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
-        _warm_up(kw.get("formats") or (), kw.get("labels"))
+        _warm_up(kw.get("formats") or ())
         for _ in range(_DRAWERS - 1):
             if (h := _second_drawer(queue, outdir, kw)) is not None:
                 helpers.append(h)
