@@ -179,7 +179,7 @@ def test_scale_fit_on_the_demo_band_matches_the_pure_pion_mle(demo_tracks):
     _, cols = demo_tracks
     fit = _calibrated(cols)
     want = _pure_pion_scale(cols)
-    assert abs(fit.scale - want) < 4 * fit.scale_error + 0.003 * want
+    assert abs(fit.scale - want) < 4 * fit.scale.error + 0.003 * want
 
 
 @pytest.mark.parametrize("species,code,p_range,neighbours", [

@@ -54,18 +54,20 @@ import functools
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, ClassVar
 
 import numba
 import numpy as np
 from numpy.typing import ArrayLike
 
+from ._values import FrozenValue, Measurement
 from .errors import ConfigError, InputError, closest
 
 __all__ = [
     "HYPOTHESES",
     "K_BETHE",
     "MATERIALS",
+    "DedxFit",
     "DedxResponse",
     "Material",
     "density_correction",
@@ -495,16 +497,42 @@ def _deviation_kernel(pt, eta, meas, samples, with_n, mass, g0, inv_dg, table, r
         out[k] = (np.float64(meas[k]) - e) / (rel * e)
 
 
-@dataclass(frozen=True)
-class DedxFit:
-    """Result of :func:`fit_dedx_response`: the fitted scale and resolution with errors."""
+@dataclass(frozen=True, eq=False)
+class DedxFit(FrozenValue):
+    """Result of :func:`fit_dedx_response`: the fitted scale and relative resolution (each a
+    :class:`~peaksift._values.Measurement`, value ± error; the resolution's error is 0 when
+    it was not fitted), the tracks the fit kept and the response with both put in.  Every
+    attribute is a key of :meth:`to_dict` (``method``: how it was fitted, for the record)."""
 
-    scale: float
-    scale_error: float
-    resolution: float
-    resolution_error: float
-    n_tracks: int
+    scale: Measurement
+    resolution: Measurement
+    tracks_used: int
     response: DedxResponse
+    method: ClassVar[str] = ("Gaussian maximum likelihood of measured / Bethe mean, iterated "
+                             "3-sigma clip")
+
+    def __repr__(self) -> str:
+        fitted = f"{self.resolution}" if self.resolution.error > 0 else (
+            f"{float(self.resolution):.3g} (given)")
+        return (f"DedxFit(scale {self.scale}, resolution {fitted}, "
+                f"{self.tracks_used} tracks)")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready: ``scale`` and ``resolution`` as ``{"value", "error"}``."""
+        return {"scale": self.scale.to_dict(), "resolution": self.resolution.to_dict(),
+                "tracks_used": int(self.tracks_used), "response": self.response.to_dict(),
+                "method": self.method}
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> DedxFit:
+        """The fit :meth:`to_dict` wrote."""
+        try:
+            return cls(*(Measurement(d[k]["value"], d[k]["error"])
+                         for k in ("scale", "resolution")),
+                       int(d["tracks_used"]), DedxResponse.from_dict(d["response"]))
+        except (KeyError, TypeError) as exc:
+            raise ConfigError(f"DedxFit.from_dict: not a fit written by DedxFit.to_dict "
+                              f"({exc!r})") from None
 
 
 def fit_dedx_response(momentum: ArrayLike, measured: ArrayLike, response: DedxResponse, *,
@@ -575,5 +603,5 @@ def fit_dedx_response(momentum: ArrayLike, measured: ArrayLike, response: DedxRe
         r = response.resolution
     n = int(np.count_nonzero(keep))
     fitted = dataclasses.replace(response, scale=s, resolution=r)
-    return DedxFit(s, r * s / math.sqrt(float(np.sum(1.0 / w[keep] ** 2))), r,
-                   r / math.sqrt(2 * n) if fit_resolution else 0.0, n, fitted)
+    return DedxFit(Measurement(s, r * s / math.sqrt(float(np.sum(1.0 / w[keep] ** 2)))),
+                   Measurement(r, r / math.sqrt(2 * n) if fit_resolution else 0.0), n, fitted)
