@@ -307,6 +307,16 @@ def test_hadron_search_reports_the_identification(tmp_path, demo_tracks):
     md = (tmp_path / "out" / "report.md").read_text()
     assert "## Particle identification (dE/dx)" in md and "figures/dedx.png" in md
     assert d["config"]["pairing"]["hypotheses"] == ["kaon"]
+    # results.json keeps the whole record: read back, it draws the run's figure again, pixel
+    # for pixel at the run's resolution (matplotlib's PNG reader)
+    import matplotlib.image as mpimg
+
+    from peaksift import SearchResult
+
+    again = tmp_path / "again.png"
+    SearchResult.from_dict(d).plot(which="dedx").savefig(again, dpi=150)
+    drawn = mpimg.imread(tmp_path / "out" / "figures" / "dedx.png")
+    assert np.array_equal(mpimg.imread(again), drawn)
 
 
 def _config_dict(**sections):
