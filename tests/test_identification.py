@@ -319,6 +319,19 @@ def test_hadron_search_reports_the_identification(tmp_path, demo_tracks):
     assert np.array_equal(mpimg.imread(again), drawn)
 
 
+def test_identified_pairs_are_named_by_their_mass_hypothesis():
+    """The hadron demo pairs tracks identified as kaons: its figures name the pair by the
+    hypothesis (m_KK, K+K-: the particle tables' symbol K for the charged kaon), not by the
+    collection ("track"); without hypotheses the collection names it."""
+    from peaksift import load_config
+    from peaksift.plotting import figure_labels
+
+    lab = figure_labels(load_config(HADRON_CONFIG))
+    assert lab.symbol == "m_{KK}" and lab.run.channel == "$K^+K^-$"
+    plain = figure_labels(load_config(_config_dict()))
+    assert plain.symbol == "m_{tt}"
+
+
 def _config_dict(**sections):
     base = {"input": {"files": [str(TRACKS / "tracks_000.parquet")]},
             "objects": {"collection": "track"},

@@ -196,7 +196,7 @@ _OBJECT_SYMBOLS = {
     "muon": r"\mu", "mu": r"\mu", "electron": "e", "ele": "e", "e": "e", "positron": "e",
     "kaon": "K", "k": "K", "pion": r"\pi", "pi": r"\pi", "proton": "p", "p": "p",
     "photon": r"\gamma", "gamma": r"\gamma", "tau": r"\tau", "lepton": r"\ell",
-    "track": "t", "jet": "j", "b_jet": "b", "bjet": "b",
+    "track": "t", "jet": "j", "b_jet": "b", "bjet": "b", "deuteron": "d",
 }
 
 
