@@ -10,12 +10,12 @@ import numpy as np
 
 from ..errors import FitError
 from ._base import Parameter
-from .background_base import _Background, _quadrature
+from .background_base import _CompiledRows, _quadrature
 
 __all__ = ["Dijet"]
 
 
-class Dijet(_Background):
+class Dijet(_CompiledRows):
     r"""The smoothly falling family of dijet searches (e.g. Phys. Rev. D 79 (2009) 112002):
 
     .. math:: f(x) = p_0 \frac{(1-x)^{p_1}}{x^{p_2 + p_3 \ln x}}, \qquad x = m/\sqrt{s}
@@ -68,22 +68,13 @@ class Dijet(_Background):
         out = [np.log1p(-x) - math.log1p(-xc), -(lx - lxc), -(lx * lx - lxc * lxc)]
         return np.stack(out[: self.npar - 1])
 
-    def _fast(self, edges, params, window, grad):
+    def _compiled(self, edges, params, window, grad):
         """Compiled bins where the uniform panels serve (sqrt_s at least a window width
         above it); None otherwise (the generic path's graded panels)."""
         rs = self._roots(window)
         if rs - window[1] < window[1] - window[0]:
             return None
         return _quadrature(self, edges, params, window, grad)
-
-    def bin_fractions(self, edges, params, window):
-        out = self._fast(edges, params, window, False)
-        return out[0] if out is not None else super().bin_fractions(edges, params, window)
-
-    def fractions_and_grad(self, edges, params, window, need=None):
-        out = self._fast(edges, params, window, True)
-        return out if out is not None else super().fractions_and_grad(edges, params,
-                                                                       window, need)
 
     def _density(self, x, p, window):
         rs = self._roots(window)
