@@ -185,6 +185,13 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         return SearchResult(**{**base, **kw})
 
     _draw(drawer, cfg, ["candidates"], partial())
+    # the calibration needs only the events: fitted first, so that its figure is drawn
+    # while the statistics run instead of after them
+    cal, cal_hist, cal_fit = _calibration(cfg, col)
+    clock.lap("calibration")
+    if cal is not None:
+        _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
+              calibration=(cal_hist, cal_fit))
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -313,7 +320,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         return lim, block
 
     # limits computed beside and delivered already: collected now, so that their figure is
-    # drawn while the calibration is fitted here, not after it
+    # drawn while the known particles are matched and the fitted mass collected
     early = None
     if (cfg.limits.enabled and limits_job is not None and limits_job.ready()
             and (syst is None or (syst_limits_job is not None and syst_limits_job.ready()))):
@@ -324,12 +331,6 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     known = tuple(match_known(float(m_fit), error=float(m_err),
                               resolution=float(sigma_fn(float(m_fit))),
                               charge=pair_charge(cfg.pairing.charge)))
-    cal, cal_hist, cal_fit = _calibration(cfg, col)
-    clock.lap("calibration")
-    if cal is not None:
-        _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
-              calibration=(cal_hist, cal_fit))
-
     if mass_job is not None:
         syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None
