@@ -64,3 +64,14 @@ def test_minor_tick_marks_match_matplotlibs_ticks(kind):
             assert "draw" not in vars(axis)
             assert type(axis.get_minor_locator()).__name__ != "NullLocator"
     assert np.array_equal(_pixels(ours), a)  # drawn again: the same
+
+
+def test_figure_pickles_like_a_matplotlib_figure():
+    # matplotlib figures pickle (source: matplotlib's Figure.__getstate__/__setstate__); ours
+    # must too, and draw the same pixels after the round trip
+    import pickle
+
+    fig = _build("log8")
+    again = pickle.loads(pickle.dumps(fig))
+    assert isinstance(again, Figure)
+    assert np.array_equal(_pixels(again), _pixels(fig))

@@ -161,6 +161,7 @@ def _figure_class() -> Any:
 
         # found by pickle under this module's name (see __getattr__ below)
         QuickMinorTicksFigure.__module__ = __name__
+        QuickMinorTicksFigure.__qualname__ = "QuickMinorTicksFigure"
         _FIGURE.append(QuickMinorTicksFigure)
     return _FIGURE[0]
 
