@@ -3,7 +3,9 @@
 What to use when
 ----------------
 * :func:`new_figure` -- a Figure with its axes, made without pyplot: the user's matplotlib
-  backend is never switched, the figure saves to any format and shows in a notebook.
+  backend is never switched, the figure saves to any format and shows in a notebook; its
+  unlabelled minor ticks are drawn as plain tick marks (the same pixels, a fraction of the
+  cost: :func:`_figure_class`).
 * :func:`figure_style` -- context manager with the rc settings; wrap any drawing in it.
 * :func:`mass_symbol` / :func:`mass_label` -- the pair's mass symbol (``m_{\\mu\\mu}``,
   ``m_{ee}``, ``m_{KK}``) from the collection names; every mass axis is labelled with it.
