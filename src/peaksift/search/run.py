@@ -263,6 +263,17 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
+    # the p-value scan needs the scan and the best hypothesis only: drawn while the fits run.
+    # Its expected curve is computed here, where the scan's kernels are loaded: in the
+    # drawer it would load numba's compiler state for it (~0.5-1 s CPU)
+    expected = None
+    if drawer is not None and cfg.output.draws("pvalue_scan"):
+        from ..plotting import scan_expectation
+
+        expected = scan_expectation(sres)
+    _draw(drawer, cfg, ["pvalue_scan"], partial(scan=sres, best=best, systematics=syst),
+          expected=expected)
+
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
     start = _fit_start(cfg, sig_fit, m_best, settings)
@@ -285,16 +296,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         mass_job = Beside(fitted_mass, cfg, fres.to_dict())
         besides.append(mass_job)
         syst_jobs["fitted mass"] = mass_job
-    # the p-value scan's expected curve is computed here, where the scan's kernels are
-    # loaded: in the drawer it would load numba's compiler state for it (~0.5-1 s CPU)
-    expected = None
-    if drawer is not None and cfg.output.draws("pvalue_scan"):
-        from ..plotting import scan_expectation
-
-        expected = scan_expectation(sres)
-    _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
-          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst),
-          expected=expected)
+    _draw(drawer, cfg, ["spectrum"],
+          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst))
     clock.lap("fits")
 
     def limits_stage() -> tuple[Any, dict[str, Any] | None]:
