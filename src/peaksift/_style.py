@@ -146,9 +146,10 @@ def _figure_class() -> Any:
     positions, in the style and in the drawing order the ticks would have: the pixels are
     the same.  Minor ticks with labels or grid lines are left to matplotlib."""
     if not _FIGURE:
-        from matplotlib.figure import Figure
+        import matplotlib.figure
 
-        class QuickMinorTicksFigure(Figure):
+        # named Figure too: a user sees the Figure they expect (type name, repr)
+        class Figure(matplotlib.figure.Figure):
             def draw(self, renderer: Any) -> None:
                 # every axis's marks first: shared axes share one locator, which the
                 # swap sets aside for the draw
@@ -162,14 +163,14 @@ def _figure_class() -> Any:
                         u()
 
         # found by pickle under this module's name (see __getattr__ below)
-        QuickMinorTicksFigure.__module__ = __name__
-        QuickMinorTicksFigure.__qualname__ = "QuickMinorTicksFigure"
-        _FIGURE.append(QuickMinorTicksFigure)
+        Figure.__module__ = __name__
+        Figure.__qualname__ = "Figure"
+        _FIGURE.append(Figure)
     return _FIGURE[0]
 
 
 def __getattr__(name: str) -> Any:  # a pickled figure of ours finds its class here
-    if name == "QuickMinorTicksFigure":
+    if name == "Figure":
         return _figure_class()
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
