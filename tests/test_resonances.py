@@ -97,3 +97,41 @@ def test_lookup_by_name_and_suggestion():
     assert lookup("Z0").pdgid == 23
     with pytest.raises(ConfigError, match="did you mean 'Z0'"):
         lookup("Z")
+
+
+def test_table_read_from_the_particle_file_equals_the_packages_loader():
+    # source: the `particle` package's own loader (Particle.all(), its default tables with the
+    # nuclei), filtered here by the module guide's rules; peaksift reads only the particle
+    # file, into a class of its own, and must neither load nor change Particle's table.
+    # A fresh interpreter, so that no earlier test has loaded the class-wide table.
+    import subprocess
+    import sys
+
+    code = r"""
+import json
+from particle import Particle, PDGID
+from particle.particle.enums import Status
+from peaksift.resonances import _table
+ours = [(e.name, e.pdgid, e.mass, e.mass_error, e.width, e.charge) for e in _table()]
+untouched = not Particle.table_loaded()
+ref, seen = [], set()
+for p in sorted(Particle.all(), key=lambda q: (abs(int(q.pdgid)), -int(q.pdgid))):
+    pid = PDGID(int(p.pdgid))
+    if abs(int(pid)) in seen or p.mass is None or not pid.is_valid:
+        continue
+    if pid.is_nucleus or pid.is_quark or pid.is_diquark or pid.is_generator_specific:
+        continue
+    if pid.is_technicolor or p.status in (Status.Further, Status.NotInPDT):
+        continue
+    seen.add(abs(int(pid)))
+    up = p.mass_upper or 0.0
+    lo = p.mass_lower if p.mass_lower is not None else up
+    ref.append((p.name, int(pid), p.mass / 1e3, 0.5 * (up + lo) / 1e3,
+                (p.width or 0.0) / 1e3, float(p.charge or 0.0)))
+print(json.dumps({"untouched": untouched, "same": ours == ref, "n": len(ours)}))
+"""
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    got = __import__("json").loads(out.stdout)
+    assert got["untouched"], "building the table loaded or changed Particle's own table"
+    assert got["same"] and got["n"] > 200  # exact equality: the same file, the same floats

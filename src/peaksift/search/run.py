@@ -185,6 +185,13 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         return SearchResult(**{**base, **kw})
 
     _draw(drawer, cfg, ["candidates"], partial())
+    # the calibration needs only the events: fitted first, so that its figure is drawn
+    # while the statistics run instead of after them
+    cal, cal_hist, cal_fit = _calibration(cfg, col)
+    clock.lap("calibration")
+    if cal is not None:
+        _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
+              calibration=(cal_hist, cal_fit))
 
     res = cfg.model.resolution
     sig_fit = _shape(cfg.model.signal, cfg.model.signal_options)
@@ -256,6 +263,17 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
+    # the p-value scan needs the scan and the best hypothesis only: drawn while the fits run.
+    # Its expected curve is computed here, where the scan's kernels are loaded: in the
+    # drawer it would load numba's compiler state for it (~0.5-1 s CPU)
+    expected = None
+    if drawer is not None and cfg.output.draws("pvalue_scan"):
+        from ..plotting import scan_expectation
+
+        expected = scan_expectation(sres)
+    _draw(drawer, cfg, ["pvalue_scan"], partial(scan=sres, best=best, systematics=syst),
+          expected=expected)
+
     m_best = float(best["mass"])
     settings = _fit_settings(cfg, sig_fit, m_best)
     start = _fit_start(cfg, sig_fit, m_best, settings)
@@ -278,16 +296,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         mass_job = Beside(fitted_mass, cfg, fres.to_dict())
         besides.append(mass_job)
         syst_jobs["fitted mass"] = mass_job
-    # the p-value scan's expected curve is computed here, where the scan's kernels are
-    # loaded: in the drawer it would load numba's compiler state for it (~0.5-1 s CPU)
-    expected = None
-    if drawer is not None and cfg.output.draws("pvalue_scan"):
-        from ..plotting import scan_expectation
-
-        expected = scan_expectation(sres)
-    _draw(drawer, cfg, ["spectrum", "pvalue_scan"],
-          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst),
-          expected=expected)
+    _draw(drawer, cfg, ["spectrum"],
+          partial(background_fit=bonly, fit=fres, scan=sres, best=best, systematics=syst))
     clock.lap("fits")
 
     def limits_stage() -> tuple[Any, dict[str, Any] | None]:
@@ -313,7 +323,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         return lim, block
 
     # limits computed beside and delivered already: collected now, so that their figure is
-    # drawn while the calibration is fitted here, not after it
+    # drawn while the known particles are matched and the fitted mass collected
     early = None
     if (cfg.limits.enabled and limits_job is not None and limits_job.ready()
             and (syst is None or (syst_limits_job is not None and syst_limits_job.ready()))):
@@ -324,12 +334,6 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     known = tuple(match_known(float(m_fit), error=float(m_err),
                               resolution=float(sigma_fn(float(m_fit))),
                               charge=pair_charge(cfg.pairing.charge)))
-    cal, cal_hist, cal_fit = _calibration(cfg, col)
-    clock.lap("calibration")
-    if cal is not None:
-        _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
-              calibration=(cal_hist, cal_fit))
-
     if mass_job is not None:
         syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None
