@@ -52,10 +52,15 @@ DONE, DECLINED = 0, 1
 
 @njit(cache=True, nogil=True)
 def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2,
-           lo, hi, boff, used, woff, scale, nn, ff, gg, tg, tdg, frac,
-           grad, direct, th):  # pragma: no cover - compiled
+           lo, hi, boff, used, woff, scale, nn, ff, gg, d2, tg, tdg, frac, grad, direct, th,
+           sm):  # pragma: no cover - compiled
     """The summed NLL of row ``r`` at ``x`` (as the Python ``total``), the background
-    fractions and derivatives there into ``tg``/``tdg``; (nll, ok)."""
+    fractions and derivatives there into ``tg``/``tdg``, and in the same pass over the bins
+    each channel's sums for the gradient and Hessian there into ``sm (channels, 10)``
+    (:func:`_grad_hess` assembles them; each sum in the order of
+    :func:`peaksift.stats.joint_kernels.channel_sums`); (nll, ok).  One pass instead of a
+    pass for the NLL and one for the sums: most rows end after one evaluation (module
+    guide), whose sums the next Newton step needs."""
     nc = kind.size
     out = 0.0
     if nj:
@@ -69,12 +74,15 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         b0, b1 = boff[c], boff[c + 1]
         fc = ff[c]
         nc_ = nn[c]
+        dc = d2[c]
         rn = r if nc_.shape[0] > 1 else 0
-        if kpar[c]:
+        rd = r if dc.shape[0] > 1 else 0
+        kq = kpar[c]
+        if kq:
             w0, w1 = woff[c], woff[c + 1]
             ok = row_background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
-                             lo[c], hi[c], x[first[c] + 1], used[b0:b1], scale[w0:w1],
-                             frac, grad, tg[b0:b1], tdg[b0:b1], direct[c], th)
+                                lo[c], hi[c], x[first[c] + 1], used[b0:b1], scale[w0:w1],
+                                frac, grad, tg[b0:b1], tdg[b0:b1], direct[c], th)
             if not ok:
                 return 0.0, False
         else:
@@ -88,25 +96,69 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
                 t += x[off + j] * a_norm[c, j]
             e = math.exp(t)
         s = mu * kc[c, r] * e
+        s2 = mu * (kc[c, r] * e)     # the gradient's signal (as _grad_hess forms it)
         b = x[first[c]]
         acc = 0.0
+        bad = False
+        a0 = 0.0
+        a1 = 0.0
+        a2 = 0.0
+        c0 = 0.0
+        c1 = 0.0
+        q0 = 0.0
+        q1 = 0.0
+        q2 = 0.0
+        h0 = 0.0
+        h1 = 0.0
         for i in range(b0, b1):
-            nu = s * fc[r, i - b0] + b * tg[i]
-            if not nu > 0.0:
-                acc = math.inf
-                break
-            nu = max(nu, 1e-300)
+            fi = fc[r, i - b0]
+            gi = tg[i]
             ni = nc_[rn, i - b0]
-            acc += nu - ni * math.log(nu) if ni != 0.0 else nu
-        out = out + acc
+            nu = s * fi + b * gi
+            if not bad:
+                if not nu > 0.0:
+                    bad = True
+                else:
+                    nu1 = max(nu, 1e-300)
+                    acc += nu1 - ni * math.log(nu1) if ni != 0.0 else nu1
+            inv = 1.0 / max(s2 * fi + b * gi, 1e-100)
+            ratio = ni * inv
+            w = 1.0 - ratio
+            v = ratio * inv
+            fv = fi * v
+            a0 += fi * w
+            a1 += fi * fv
+            a2 += gi * fv
+            c0 += gi * w
+            c1 += gi * gi * v
+            if kq:
+                dk = tdg[i]
+                dv = dk * v
+                q0 += fi * dv
+                q1 += gi * dv
+                q2 += dk * w
+                h0 += dk * v * dk
+                h1 += dc[rd, i - b0] * w
+        sm[c, 0] = a0
+        sm[c, 1] = a1
+        sm[c, 2] = a2
+        sm[c, 3] = c0
+        sm[c, 4] = c1
+        sm[c, 5] = q0
+        sm[c, 6] = q1
+        sm[c, 7] = q2
+        sm[c, 8] = h0
+        sm[c, 9] = h1
+        out = out + (math.inf if bad else acc)
     return out, True
 
 
 @njit(cache=True, nogil=True)
-def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff, nn, ff,
-               g, dg, d2, grad, hess, pos, coef, aj):  # pragma: no cover - compiled
-    """Gradient and exact Hessian of row ``r`` at ``x`` (as the Python ``_grad_hess``);
-    ``pos``, ``coef``, ``aj``: work buffers of ``x.size``."""
+def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm, grad, hess,
+               pos, coef, aj):  # pragma: no cover - compiled
+    """Gradient and exact Hessian of row ``r`` at ``x`` (as the Python ``_grad_hess``) from
+    the channels' sums ``sm`` that :func:`_value` left there; ``pos``, ``coef``, ``aj``:
+    work buffers of ``x.size``."""
     nc = kpar.size
     p = x.size
     for i in range(p):
@@ -115,12 +167,6 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
             hess[i, j] = 0.0
     mu = mu_fixed[r] if fixed else x[0]
     for c in range(nc):
-        b0, b1 = boff[c], boff[c + 1]
-        fc = ff[c]
-        nc_ = nn[c]
-        dc = d2[c]
-        rn = r if nc_.shape[0] > 1 else 0
-        rd = r if dc.shape[0] > 1 else 0
         e = 1.0
         if nj:
             t = 0.0
@@ -143,39 +189,9 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
                 aj[na] = a_norm[c, j]
                 nsig += 1
                 na += 1
-        # the sums of channel_sums, each in its order, in one pass over the bins
         kq = kpar[c]
-        a0 = 0.0
-        a1 = 0.0
-        a2 = 0.0
-        c0 = 0.0
-        c1 = 0.0
-        e0 = 0.0
-        e1 = 0.0
-        e2 = 0.0
-        h0 = 0.0
-        h1 = 0.0
-        for i in range(b0, b1):
-            fi = fc[r, i - b0]
-            gi = g[i]
-            inv = 1.0 / max(s * fi + br * gi, 1e-100)
-            ratio = nc_[rn, i - b0] * inv
-            w = 1.0 - ratio
-            v = ratio * inv
-            fv = fi * v
-            a0 += fi * w
-            a1 += fi * fv
-            a2 += gi * fv
-            c0 += gi * w
-            c1 += gi * gi * v
-            if kq:
-                dk = dg[i]
-                dv = dk * v
-                e0 += fi * dv
-                e1 += gi * dv
-                e2 += dk * w
-                h0 += dk * v * dk
-                h1 += dc[rd, i - b0] * w
+        a0, a1, a2, c0, c1 = sm[c, 0], sm[c, 1], sm[c, 2], sm[c, 3], sm[c, 4]
+        e0, e1, e2, h0, h1 = sm[c, 5], sm[c, 6], sm[c, 7], sm[c, 8], sm[c, 9]
         # the channel's block over (signal columns, b, theta), scattered into the row's
         bi = first[c]
         for q in range(nsig):
@@ -229,8 +245,11 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         nw = max(nw, woff[c + 1] - woff[c])
     frac = np.empty((1, nw))
     gbuf = np.empty((1, nw))
-    tg = np.empty(ntot)
-    tdg = np.empty(ntot)
+    # the current point's and a trial's fractions, derivatives and sums: an accepted trial
+    # becomes the current point by swapping the index ``cur``, no copy
+    gb = np.empty((2, ntot))
+    dgb = np.empty((2, ntot))
+    sm = np.empty((2, kind.size, 10))
     grad = np.empty(p)
     hess = np.empty((p, p))
     err = np.empty(p)
@@ -243,24 +262,23 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
     aj = np.empty(p)
     for r in range(nb):
         xr = x[r].copy()
+        cur = 0
         # the start (as the Python loop's caller: a free fit whose start has no finite
         # NLL starts at mu = 0 instead)
         fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind,
-                        eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, tg, tdg,
-                        frac, gbuf, direct, th)
+                        eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, d2,
+                        gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur])
         if ok and not fixed and not math.isfinite(fr):
             xr[0] = 0.0
             fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
                             kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg,
-                            tg, tdg, frac, gbuf, direct, th)
+                            d2, gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur])
         if not ok:
             return DECLINED
-        g = tg.copy()
-        dg = tdg.copy()
         lam = 1e-3
         for _it in range(steps):
-            _grad_hess(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff,
-                       nn, ff, g, dg, d2, grad, hess, pos, coef, aj)
+            _grad_hess(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
+                       sm[cur], grad, hess, pos, coef, aj)
             hess_out[r] = hess
             for i in range(p):
                 err[i] = math.sqrt(abs(1.0 / hess[i, i]))
@@ -296,9 +314,11 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                         done_row = True
                         accepted = True
                         break
+                nxt = 1 - cur
                 tn, ok = _value(trial, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first,
                                 kpar, kind, eoff, e1, e2, lo, hi, boff, used, woff, scale,
-                                nn, ff, gg, tg, tdg, frac, gbuf, direct, th)
+                                nn, ff, gg, d2, gb[nxt], dgb[nxt], frac, gbuf, direct, th,
+                                sm[nxt])
                 if not ok:
                     return DECLINED
                 good = tn <= fr + slack
@@ -308,8 +328,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 if good:
                     xr[:] = trial
                     fr = tn
-                    g[:] = tg
-                    dg[:] = tdg
+                    cur = nxt
                     lam = max(lam * 0.1, 1e-9)
                     accepted = True
                     break
@@ -319,8 +338,8 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 break
         x[r] = xr
         nll[r] = fr
-        gg[r] = g
-        dgg[r] = dg
+        gg[r] = gb[cur]
+        dgg[r] = dgb[cur]
     return DONE
 
 
