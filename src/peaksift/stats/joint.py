@@ -292,7 +292,14 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
                                 + [a for c in range(nc) for a in (b[c][redo, None],
                                                                   theta[c][redo])], axis=1)
             h[redo] = grad_hess(xr, tuple(a[redo] for a in r.state), redo)[1]
-        mu_err = first_error(h)
+        # the compiled loop inverts each row's Hessian as it ends (joint_driver)
+        done = getattr(r, "first_error", None)
+        if done is None:
+            mu_err = first_error(h)
+        else:
+            mu_err = np.array(done)
+            if redo.size:
+                mu_err[redo] = first_error(h[redo])
     factors = [kap[:, kfirst[c] - off - nj:][:, :len(names[c])] for c in range(nc)]
     return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nu": nu, "nll": r.nll,
             "factors": factors, "converged": r.converged}

@@ -230,10 +230,32 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm,
 
 
 @njit(cache=True, nogil=True)
+def _first_error(hess, a, rhs, col):  # pragma: no cover - compiled
+    """:func:`peaksift.likelihood.first_error` of one row: ``sqrt((H + 1e-12 tr|H| I)^-1_00)``
+    by :func:`~peaksift.stats.joint_kernels.lu_solve` (``a``, ``rhs``, ``col``: work
+    buffers); NaN where it is not positive or the system is singular."""
+    p = hess.shape[0]
+    tr = 0.0
+    for i in range(p):
+        tr += abs(hess[i, i])
+    reg = 1e-12 * tr
+    for i in range(p):
+        for j in range(p):
+            a[i, j] = hess[i, j]
+        a[i, i] += reg
+        rhs[i] = 0.0
+    rhs[0] = -1.0   # lu_solve gives -a^-1 rhs
+    if not lu_solve(a, rhs, col):
+        return math.nan
+    v = col[0]
+    return math.sqrt(v) if v > 0.0 else math.nan
+
+
+@njit(cache=True, nogil=True)
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
            hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
            step_tol, nll_tol, slack, tries, predict, hess_out, converged,
-           direct):  # pragma: no cover
+           direct, first_err):  # pragma: no cover
     """The loop of :func:`peaksift.likelihood.minimize_stacked` on every row of the joint
     problem from ``x`` (its start); ``x``, ``nll`` and ``gg``/``dgg`` (the state:
     background fractions and derivatives; ``gg`` holds the fixed backgrounds' fractions on
@@ -340,6 +362,8 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         nll[r] = fr
         gg[r] = gb[cur]
         dgg[r] = dgb[cur]
+        if not fixed and steps > 0:
+            first_err[r] = _first_error(hess_out[r], a, grad, step)
     return DONE
 
 
@@ -449,17 +473,19 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     out_nll = np.empty(nb)
     hess = np.zeros((nb, p, p))
     conv = np.zeros(nb, bool)
+    err = np.full(nb, np.nan)
     status = _drive(bool(fixed), np.ascontiguousarray(np.broadcast_to(mu, (nb,)), float),
                     0 if fixed else 1, nj, aux, an, kc, np.asarray(first, np.int64), kpar,
                     kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, dgg,
                     d2c, x, out_nll,
                     np.asarray(lower, float), np.asarray(upper, float), int(steps),
                     -1.0 if step_tol is None else float(step_tol), float(nll_tol),
-                    float(slack), int(tries), bool(predict), hess, conv, direct)
+                    float(slack), int(tries), bool(predict), hess, conv, direct, err)
     if status != DONE:
         return None
     spans = list(itertools.pairwise(boff))
     state = tuple(gg[:, a:b] for a, b in spans) + tuple(
         dgg[:, a:b][:, None, :] if kq else np.zeros((nb, 0, b - a))
         for (a, b), kq in zip(spans, kpar))
-    return SimpleNamespace(x=x, nll=out_nll, state=state, hessian=hess, converged=conv)
+    return SimpleNamespace(x=x, nll=out_nll, state=state, hessian=hess, converged=conv,
+                           first_error=err)
