@@ -22,7 +22,11 @@ q0 on the benchmark's two channels, where the 0.03-error stopping rule itself le
 Each accepted point otherwise costs one background evaluation and one pass of logarithms
 per channel, which is the fit's time (the Python glue was ~40% of it); most hypotheses
 started from :func:`peaksift.stats.joint_start.joint_start` end on their first step, so
-this removes ~45% of the evaluations (``docs/decisions/compiled-joint-loop.md``).
+this removes ~45% of the evaluations (``docs/decisions/compiled-joint-loop.md``).  An
+evaluation gives the NLL and the next step's sums in one pass over the bins, its logarithms
+from :func:`peaksift.shapes.compiled.vlog` (within 1 ulp of the library's, so the NLL
+differs from the Python loop's by rounding), and each row's error on the parameter of
+interest is inverted here as the row ends.
 
 It returns None whenever it cannot answer as the Python loop would (another background
 shape, a shape factor, a row kernel declining a trial point near its series, a singular
@@ -41,6 +45,7 @@ from typing import Any
 import numpy as np
 from numba import njit
 
+from ..shapes.compiled import vlog
 from .joint_kernels import lu_solve, model_change, row_background, small_step
 
 __all__ = ["compiled_joint"]
@@ -50,17 +55,20 @@ _KINDS = {"exponential": 1, "powerlaw": 2}
 DONE, DECLINED = 0, 1
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2,
            lo, hi, boff, used, woff, scale, nn, ff, gg, d2, tg, tdg, frac, grad, direct, th,
-           sm):  # pragma: no cover - compiled
+           sm, lb):  # pragma: no cover - compiled
     """The summed NLL of row ``r`` at ``x`` (as the Python ``total``), the background
     fractions and derivatives there into ``tg``/``tdg``, and in the same pass over the bins
     each channel's sums for the gradient and Hessian there into ``sm (channels, 10)``
     (:func:`_grad_hess` assembles them; each sum in the order of
-    :func:`peaksift.stats.joint_kernels.channel_sums`); (nll, ok).  One pass instead of a
-    pass for the NLL and one for the sums: most rows end after one evaluation (module
-    guide), whose sums the next Newton step needs."""
+    :func:`peaksift.stats.joint_kernels.channel_sums`); (nll, ok).  One evaluation instead
+    of a pass for the NLL and one for the sums: most rows end after one evaluation (module
+    guide), whose sums the next Newton step needs.  ``lb (3, bins)``: work rows for the
+    expectations, their logarithms (:func:`peaksift.shapes.compiled.vlog`, within 1 ulp of
+    the library's) and inverses, computed in a loop that vectorises (the library's
+    logarithm, one call per bin, was a third of the joint fit's time)."""
     nc = kind.size
     out = 0.0
     if nj:
@@ -110,18 +118,26 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         q2 = 0.0
         h0 = 0.0
         h1 = 0.0
+        fr_ = fc[r]
+        # the expectations, their logarithms and inverses first, in a loop that vectorises
+        # (vlog: within 1 ulp of the library's log); then the sums in their order
+        for j in range(b1 - b0):
+            nu = s * fr_[j] + b * tg[b0 + j]
+            lb[0, j] = nu
+            lb[1, j] = vlog(nu if nu > 1e-300 else 1e-300)
+            lb[2, j] = 1.0 / max(s2 * fr_[j] + b * tg[b0 + j], 1e-100)
         for i in range(b0, b1):
-            fi = fc[r, i - b0]
+            fi = fr_[i - b0]
             gi = tg[i]
             ni = nc_[rn, i - b0]
-            nu = s * fi + b * gi
+            nu = lb[0, i - b0]
             if not bad:
                 if not nu > 0.0:
                     bad = True
                 else:
                     nu1 = max(nu, 1e-300)
-                    acc += nu1 - ni * math.log(nu1) if ni != 0.0 else nu1
-            inv = 1.0 / max(s2 * fi + b * gi, 1e-100)
+                    acc += nu1 - ni * lb[1, i - b0] if ni != 0.0 else nu1
+            inv = lb[2, i - b0]
             ratio = ni * inv
             w = 1.0 - ratio
             v = ratio * inv
@@ -272,6 +288,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
     gb = np.empty((2, ntot))
     dgb = np.empty((2, ntot))
     sm = np.empty((2, kind.size, 10))
+    lb = np.empty((3, nw))
     grad = np.empty(p)
     hess = np.empty((p, p))
     err = np.empty(p)
@@ -289,12 +306,12 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         # NLL starts at mu = 0 instead)
         fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind,
                         eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, d2,
-                        gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur])
+                        gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb)
         if ok and not fixed and not math.isfinite(fr):
             xr[0] = 0.0
             fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
                             kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg,
-                            d2, gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur])
+                            d2, gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb)
         if not ok:
             return DECLINED
         lam = 1e-3
@@ -340,7 +357,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 tn, ok = _value(trial, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first,
                                 kpar, kind, eoff, e1, e2, lo, hi, boff, used, woff, scale,
                                 nn, ff, gg, d2, gb[nxt], dgb[nxt], frac, gbuf, direct, th,
-                                sm[nxt])
+                                sm[nxt], lb)
                 if not ok:
                     return DECLINED
                 good = tn <= fr + slack
