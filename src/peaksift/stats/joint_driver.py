@@ -124,7 +124,7 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         for j in range(b1 - b0):
             nu = s * fr_[j] + b * tg[b0 + j]
             lb[0, j] = nu
-            lb[1, j] = vlog(nu if nu > 1e-300 else 1e-300)
+            lb[1, j] = vlog(max(1e-300, nu))
             lb[2, j] = 1.0 / max(s2 * fr_[j] + b * tg[b0 + j], 1e-100)
         for i in range(b0, b1):
             fi = fr_[i - b0]
