@@ -404,18 +404,27 @@ def _rows_of(x: np.ndarray, nb: int) -> np.ndarray:
     return np.ascontiguousarray(x[:1] if nb > 1 and x.strides[0] == 0 else x)
 
 
-#: the per-model-set arrays of the compiled loop, kept for the last few sets (a root search
-#: fits the same models tens of times); each entry holds its models so their ids stay valid
-_STATIC: dict[tuple, tuple] = {}
+#: the per-model-set arrays of the compiled loop, kept for the last few sets by what they
+#: are made of (a root search fits the same models tens of times; a combination's scan,
+#: its limits and a repeated combine make new models of the same channels)
+_STATIC: dict[tuple, tuple | None] = {}
+
+
+def _static_key(models: list) -> tuple:
+    """Everything :func:`_static`'s arrays depend on: per model its background's class and
+    order, its number of shape parameters, window, bin edges, used bins and bin scales."""
+    return tuple((type(m.background), getattr(m.background, "order", None), m.theta.size,
+                  tuple(m.window), m.edges.dtype.str, m.edges.tobytes(), m.used.dtype.str,
+                  m.used.tobytes(), None if m.bin_scale is None
+                  else np.asarray(m.bin_scale, float).tobytes()) for m in models)
 
 
 def _static(models: list) -> tuple | None:
     """(kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar, direct) of a set of
     channel models, or None when one has no compiled background."""
-    key = tuple(id(m) for m in models)
-    hit = _STATIC.get(key)
-    if hit is not None:
-        return hit[1]
+    key = _static_key(models)
+    if key in _STATIC:
+        return _STATIC[key]
     kin = [_inputs(m) for m in models]
     if any(v is None for v in kin):
         out = None
@@ -439,7 +448,7 @@ def _static(models: list) -> tuple | None:
                          for m, w in zip(models, wsz)], np.bool_))
     if len(_STATIC) >= 8:
         _STATIC.pop(next(iter(_STATIC)))
-    _STATIC[key] = (tuple(models), out)
+    _STATIC[key] = out
     return out
 
 
