@@ -167,9 +167,9 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     klo = [specs[c][2].bounds(nm)[0] for c in shaped for nm in names[c]]
     khi = [specs[c][2].bounds(nm)[1] for c in shaped for nm in names[c]]
     lower = np.concatenate([np.full(off, -np.inf), np.full(nj, -10.0), klo]
-                           + [np.r_[-np.inf, m.lower] for m in models])
+                           + [a for m in models for a in ([-np.inf], m.lower)])
     upper = np.concatenate([np.full(off, np.inf), np.full(nj, 10.0), khi]
-                           + [np.r_[np.inf, m.upper] for m in models])
+                           + [a for m in models for a in ([np.inf], m.upper)])
     g0: list = []   # per channel its background fractions and derivatives at the start
     dg0: list = []
 
