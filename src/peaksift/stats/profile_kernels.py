@@ -61,7 +61,7 @@ def row_kernel(shape: Any, edges: np.ndarray, window: tuple[float, float]) -> tu
     return None
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True)
 def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, g,
                 dg):  # pragma: no cover - compiled
     """Used-bin background fractions ``g`` (and, if ``dg.size``, derivatives ``dg``, with
@@ -92,7 +92,7 @@ def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, g,
     return True
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True)
 def _nll(n, f, g, s, b, sat):  # pragma: no cover - compiled
     """``binned_nll(n, s f + b g, saturated=False, small_terms=True)``; inf where an
     expectation is not positive (``profile_signal``'s rule)."""
@@ -111,7 +111,7 @@ def _nll(n, f, g, s, b, sat):  # pragma: no cover - compiled
     return val - sat
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True)
 def _grad_hess(n, f, g, dg, d2, s, b, off, grad, hess):  # pragma: no cover - compiled
     """``profile_signal``'s ``grad_hess`` for one row (one background parameter): the
     gradient and exact Hessian over ``(s, b, theta)`` (``off`` = 1) or ``(b, theta)``.
@@ -159,7 +159,7 @@ def _grad_hess(n, f, g, dg, d2, s, b, off, grad, hess):  # pragma: no cover - co
     hess[off + 1, off] += cross
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True)
 def _damped_step(hess, grad, lam, h, step):  # pragma: no cover - compiled
     """``minimize.damped_step`` (after ``_pin_at_bounds``) for one row, solved by
     :func:`peaksift.likelihood.kernels.solve_small`; False when the system is singular or
