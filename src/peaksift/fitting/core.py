@@ -181,7 +181,7 @@ def fit(
     for i, floor in floors.items():  # a start below the floor begins at it
         if not is_fixed[i]:
             base[i] = max(base[i], floor)
-    check_support(model, base)
+    check_support(model, base, is_fixed)
     free_idx = np.flatnonzero(~is_fixed)
     nfree = int(free_idx.size)
     n_entries = (float(np.sum(d.n)) if d.binned and not d.weighted else
@@ -241,6 +241,8 @@ def fit(
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
         s0 = make_start(None if near is None else near[0])
+        if s0 is None:  # a start the best minimum so far makes pointless
+            continue
         cost = make_cost(s0)
         try:
             mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names,

@@ -27,6 +27,7 @@ from .cost import BinnedCost
 from .minimize import damped_step, minimize
 from .model import Model
 from .poisson import binned_gradient, binned_information, binned_nll, use_compiled
+from .start_widths import other_widths, scan_width
 
 __all__ = [
     "CANDIDATE_MARGIN",
@@ -303,28 +304,43 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     # A free width can have several minima around one excess (a narrow and a wide solution;
     # on 5 sigma toys 0.5 % of fits from one width stopped up to 0.49 in -2 ln L above the
     # lower one), so the other widths are minimised too whenever a width can vary (its
-    # start given or not).
+    # start given or not) -- in a binned fit of a Gaussian only where the profile over the
+    # width says another minimum can be (:func:`.start_widths.other_widths`)
     free_widths = [i for i in i_s if not is_fixed[i]]
     vary = bool(free_widths)
-    widths = [(masses[0], f, vary, True, plain) for f in (0.4, 2.5, 1.5)[:retries]]
+    widths = [(masses[0], f, vary, True, plain, k)
+              for k, f in enumerate((0.4, 2.5, 1.5)[:retries])]
     # the dips and spikes come after the other widths when those are essential (so those
     # scale the best peak's minimum, as without them), before them when they are not (the
     # fit stops at the first inessential start once it has a valid minimum)
+    candidates = [(*c, -1) for c in candidates]
+    others = [(*c, -1) for c in others]
     candidates += (widths + others) if vary else (others + widths)
     sl0 = model.blocks[0][1]
     other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
                    and names[i] not in given]
-    for mm, factor, essential, sideband, extra in candidates:
+    profile = _WidthProfile(model, fine, i_m, free_widths, is_fixed, lower, upper, retries)
+    for mm, factor, essential, sideband, extra, rank in candidates:
         def make(near: np.ndarray | None = None, mm: float = mm, factor: float = factor,
-                 sideband: bool = sideband, extra: dict = extra) -> np.ndarray:
+                 sideband: bool = sideband, extra: dict = extra,
+                 rank: int = rank) -> np.ndarray | None:
             if near is not None and factor != 1.0 and free_widths:
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
+                found = profile(near) if rank >= 0 else None
+                if found is not None:  # only where the width's profile has a minimum
+                    if rank >= len(found):
+                        return None
+                    factor = found[rank][0]
                 s = np.asarray(near, float).copy()
                 for i in free_widths:
                     s[i] = _clip(s[i] * factor, lower[i], upper[i])
                 for i in other_shape:  # tails etc. from their own starts, as a fresh start
                     s[i] = _clip(base[i], lower[i], upper[i])
+                if found is not None:  # the yields profiled at that width
+                    iy, biy = model.blocks[0][2], model.blocks[-1][2]
+                    s[iy] = _clip(found[rank][1], lower[iy], upper[iy])
+                    s[biy] = _clip(s[biy] * found[rank][2], lower[biy], upper[biy])
                 return s
             with np.errstate(all="ignore"):
                 return _one_start(model, edges, n, scale, base, vb, c, mm, factor, i_m, i_s,
@@ -332,6 +348,40 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                                   bkg_given or not sideband, **extra)
 
         yield essential, make
+
+
+class _WidthProfile:
+    """``profile(near)``: :func:`.start_widths.other_widths` at the minimum ``near`` (a full
+    vector) on the data's own bins, computed once per minimum; None where it does not
+    apply (an unbinned fit, several signals, a width other than one Gaussian sigma, a
+    yield held), and the other widths are then minimised from as they are."""
+
+    def __init__(self, model, fine, i_m, free_widths, is_fixed, lower, upper, most):
+        blocks = model.blocks
+        shape, sl, iy = blocks[0]
+        ok = (fine is not None and len(blocks) == 2 and len(free_widths) == 1
+              and free_widths[0] == sl.start + shape.parameter_names.index("sigma")
+              and not is_fixed[i_m] and not is_fixed[iy] and not is_fixed[blocks[-1][2]])
+        self._args = (model, fine, i_m, free_widths[0], lower, upper, most) if ok else None
+        self._seen: dict = {}
+
+    def __call__(self, near: np.ndarray):
+        if self._args is None:
+            return None
+        key = np.asarray(near, float).tobytes()
+        if key not in self._seen:
+            model, (fe, fn, fsc), i_m, i_w, lower, upper, most = self._args
+            shape, _, iy = model.blocks[0]
+            bshape, bsl, biy = model.blocks[-1]
+            try:
+                with np.errstate(all="ignore"):
+                    bexp = bshape.bin_fractions(fe, list(near[bsl]), model.window) * near[biy]
+                    self._seen[key] = other_widths(
+                        shape, fe, fn, fsc, bexp, float(near[i_m]), float(near[i_w]),
+                        float(near[iy]), lower[i_w], upper[i_w], model.window, most)
+            except _NUMERIC:
+                self._seen[key] = None
+        return self._seen[key]
 
 
 def _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper):
@@ -468,48 +518,6 @@ def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:
     return out
 
 
-#: the widths the start of a Gaussian peak is chosen among: its start width times these
-#: (steps of sqrt 2 from 1/16 to 2), those below half a bin of the coarse histogram left
-#: out (its bins cannot tell them apart: the narrowest would win on a bin's fluctuation)
-WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
-
-
-def _scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0):
-    """The width among ``width * WIDTH_FACTORS`` (inside ``[lo_w, hi_w]``) with the lowest
-    profile NLL of a Gaussian at ``mass`` on the background expectation ``bexp`` (signal
-    and background yields profiled, :func:`.kernels.profile_two_yields`); None for other
-    shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere."""
-    if type(shape) is not Gaussian or not use_compiled():
-        return None
-    from ..shapes.compiled import gaussian_rows
-    from .kernels import profile_two_yields
-
-    half_bin = 0.5 * (edges[-1] - edges[0]) / (edges.size - 1)  # of a mean bin
-    widths = width * WIDTH_FACTORS
-    widths = widths[(widths >= max(lo_w, half_bin)) & (widths <= hi_w)]
-    b0 = np.maximum(bexp, 1e-12)
-    btot = float(b0.sum())
-    k = widths.size
-    if not k or not btot > 0:
-        return None
-    lo, hi = float(window[0]), float(window[1])
-    x = np.minimum(np.maximum(edges, lo), hi)  # np.clip
-    rows = np.empty((k, x.size - 1))
-    at = np.array([mass])
-    for j in range(k):
-        if not gaussian_rows(x, at, float(widths[j]), lo, hi, rows[j:j + 1]):
-            return None
-    y = np.empty((k, 2))
-    y[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
-    y[:, 1] = btot
-    nll = np.empty(k)
-    sc = np.ones(b0.size) if scale is None else np.ascontiguousarray(scale, float)
-    profile_two_yields(np.ascontiguousarray(n, float), sc, rows, b0 / btot, y, nll, 25)
-    nll[~((sign * y[:, 0] > 0) & np.isfinite(nll))] = np.inf
-    best = int(np.argmin(nll))
-    return float(widths[best]) if math.isfinite(nll[best]) else None
-
-
 def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is_fixed,
                lower, upper, total, bkg_given, sign=1.0, narrow=None, amount=None):
     """One start at mass ``mm``: widths ``factor`` times their starts (or ``narrow``), the
@@ -545,7 +553,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         # power law of 1,350 bins 4 of the first start's 10 evaluations); else from the
         # second moment of the excess (truncated at +-3 start widths, so it errs low;
         # bounded to a factor 2 of the start)
-        w = _scan_width(shape, edges, n, scale, bfr, float(s[i_m]), float(s[i_sig]),
+        w = scan_width(shape, edges, n, scale, bfr, float(s[i_m]), float(s[i_sig]),
                         lower[i_sig], upper[i_sig], model.window, sign)
         if w is None:
             d2 = float(resid @ (c[sel] - s[i_m]) ** 2 / resid.sum())
