@@ -34,9 +34,9 @@ __all__ = ["OTHER_FACTORS", "WIDTH_FACTORS", "other_widths", "scan_width"]
 WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
 
 #: the widths, as factors of the best minimum's, at which :func:`other_widths` profiles:
-#: steps of 2^(1/4) from ~0.35 to ~2.8, around the other start widths 0.4, 1.5 and 2.5
+#: steps of 2^(1/3) from 0.4 to 2.5, the range of the other start widths (0.4, 1.5, 2.5)
 #: that a fit minimises from without this test
-OTHER_FACTORS = 2.0 ** (np.arange(-6, 7) / 4)
+OTHER_FACTORS = 2.0 ** (np.arange(-4, 5) / 3)
 
 
 #: the signal rows of :func:`_profiled` are computed on the edges within this many of the
