@@ -181,7 +181,8 @@ def fit(
     too_few = n_entries < nfree
 
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
-    inner_free = np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int)
+    inner_free = (np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int) if live
+                  else free_idx)  # flatnonzero's: sorted already
     if d.binned:
         # read-only arrays shared by every start's cost: their per-bin work is kept
         scale = _read_only(d.hist.scaled_poisson_factors())

@@ -63,7 +63,7 @@ def _distance_to_bound(x: float, lo: float, hi: float) -> tuple[float, float]:
 
 
 def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost, problems,
-            xbest, fbest, free_cov, posdef, intervals, tried, calls, floors) -> FitResult:
+              xbest, fbest, free_cov, posdef, intervals, tried, calls, floors) -> FitResult:
     npar = len(names)
     vals = base.copy()
     vals[free_idx] = xbest

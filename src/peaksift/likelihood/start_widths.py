@@ -34,9 +34,10 @@ __all__ = ["OTHER_FACTORS", "WIDTH_FACTORS", "other_widths", "scan_width"]
 WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
 
 #: the widths, as factors of the best minimum's, at which :func:`other_widths` profiles:
-#: steps of 2^(1/3) from 0.4 to 2.5, the range of the other start widths (0.4, 1.5, 2.5)
-#: that a fit minimises from without this test
-OTHER_FACTORS = 2.0 ** (np.arange(-4, 5) / 3)
+#: steps of sqrt 2 from 1/8 to 8 (a 5 sigma peak's minimum can be a spike of a seventh of
+#: its width on top of it; blind starts at 0.4, 1.5 and 2.5 times the width reached it
+#: only by the path a start at 0.4 happened to take)
+OTHER_FACTORS = 2.0 ** (np.arange(-6, 7) / 2)
 
 
 #: the signal rows of :func:`_profiled` are computed on the edges within this many of the
@@ -58,17 +59,17 @@ def _profiled(edges, n, scale, bexp, mass, widths, window, y0):
     if not k or not btot > 0:
         return None
     lo, hi = float(window[0]), float(window[1])
-    reach = _BAND_SIGMAS * float(widths.max())
-    i0 = max(int(np.searchsorted(edges, mass - reach)) - 1, 0)
-    i1 = min(int(np.searchsorted(edges, mass + reach)) + 1, edges.size - 1)
-    x = np.minimum(np.maximum(edges[i0:i1 + 1], lo), hi)  # np.clip
-    band = np.empty((k, x.size - 1))
+    x = np.minimum(np.maximum(edges, lo), hi)  # np.clip
+    reach = _BAND_SIGMAS * widths
+    i0 = np.maximum(np.searchsorted(x, mass - reach) - 1, 0)
+    i1 = np.minimum(np.searchsorted(x, mass + reach) + 1, x.size - 1)
+    rows = np.zeros((k, x.size - 1))
     at = np.array([mass])
-    for j in range(k):
-        if not gaussian_rows(x, at, float(widths[j]), lo, hi, band[j:j + 1]):
+    for j in range(k):  # each row on its own band of edges
+        band = np.empty((1, int(i1[j] - i0[j])))
+        if not gaussian_rows(x[i0[j]:i1[j] + 1], at, float(widths[j]), lo, hi, band):
             return None
-    rows = np.zeros((k, edges.size - 1))
-    rows[:, i0:i1] = band
+        rows[j, i0[j]:i1[j]] = band[0]
     y = np.empty((k, 2))
     y[:, 0] = y0[0]
     y[:, 1] = btot if y0[1] is None else y0[1]
@@ -78,11 +79,13 @@ def _profiled(edges, n, scale, bexp, mass, widths, window, y0):
     return y, nll, btot
 
 
-def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0):
+def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0,
+               yields=False):
     """The width among ``width * WIDTH_FACTORS`` (inside ``[lo_w, hi_w]``) with the lowest
     profile NLL of a Gaussian at ``mass`` on the background expectation ``bexp`` (signal
     and background yields profiled, :func:`.kernels.profile_two_yields`); None for other
-    shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere."""
+    shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere.
+    With ``yields``: ``(width, signal yield, background in the bins)`` there."""
     if type(shape) is not Gaussian or not use_compiled():
         return None
     half_bin = 0.5 * (edges[-1] - edges[0]) / (edges.size - 1)  # of a mean bin
@@ -96,7 +99,10 @@ def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, si
     y, nll, _ = out
     nll[~((sign * y[:, 0] > 0) & np.isfinite(nll))] = np.inf
     best = int(np.argmin(nll))
-    return float(widths[best]) if math.isfinite(nll[best]) else None
+    if not math.isfinite(nll[best]):
+        return None
+    return (float(widths[best]), float(y[best, 0]), float(y[best, 1])) if yields else float(
+        widths[best])
 
 
 def other_widths(shape, edges, n, scale, bexp, mass, width, signal_yield, lo_w, hi_w,
