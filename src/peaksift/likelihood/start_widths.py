@@ -79,13 +79,11 @@ def _profiled(edges, n, scale, bexp, mass, widths, window, y0):
     return y, nll, btot
 
 
-def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0,
-               yields=False):
+def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0):
     """The width among ``width * WIDTH_FACTORS`` (inside ``[lo_w, hi_w]``) with the lowest
     profile NLL of a Gaussian at ``mass`` on the background expectation ``bexp`` (signal
     and background yields profiled, :func:`.kernels.profile_two_yields`); None for other
-    shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere.
-    With ``yields``: ``(width, signal yield, background in the bins)`` there."""
+    shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere."""
     if type(shape) is not Gaussian or not use_compiled():
         return None
     half_bin = 0.5 * (edges[-1] - edges[0]) / (edges.size - 1)  # of a mean bin
@@ -99,10 +97,7 @@ def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, si
     y, nll, _ = out
     nll[~((sign * y[:, 0] > 0) & np.isfinite(nll))] = np.inf
     best = int(np.argmin(nll))
-    if not math.isfinite(nll[best]):
-        return None
-    return (float(widths[best]), float(y[best, 0]), float(y[best, 1])) if yields else float(
-        widths[best])
+    return float(widths[best]) if math.isfinite(nll[best]) else None
 
 
 def other_widths(shape, edges, n, scale, bexp, mass, width, signal_yield, lo_w, hi_w,

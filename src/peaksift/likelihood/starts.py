@@ -1,5 +1,5 @@
-"""Starting values for fits: the background from a background-only fit, peak masses from a
-coarse likelihood scan of the window.
+"""Starting values for fits: the background from the sidebands, peak masses from a coarse
+likelihood scan of the window.
 
 :func:`fit_starts` yields starting points lazily, best first.  The candidate masses are the
 local maxima of a coarse profile-likelihood scan (signal and background yields profiled at
@@ -161,9 +161,8 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                retries: int, fine: tuple | None = None,
                ) -> Iterator[tuple[bool, Callable[[], np.ndarray]]]:
     """Starting points, best first, as ``(essential, make)`` with ``make(near=None)`` giving
-    the full parameter vector: the peak at each local maximum of the coarse likelihood scan
-    (essential: every one is minimised) on the window's background-only fit, its width and
-    yields profiled there (a given mass: from the sidebands' background fit too),
+    the full parameter vector: background from the sidebands of each candidate peak, the peak
+    at each local maximum of the coarse likelihood scan (essential: every one is minimised),
     other widths at the best candidate (essential too when a width is free to vary, else
     tried only while no valid fit is found), then the scan's deepest dips (a negative yield)
     and, given ``fine`` (the data's own ``(edges, counts, scaled-Poisson factors)`` in a
@@ -192,11 +191,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     vb, c, masses, i_m, i_s, bkg_given, others = first
     names = model.parameter_names
     plain: dict = {}
-    # A free mass's candidates start on the window's background-only fit that the coarse
-    # scan used, the width and both yields profiled at the candidate (on a power law of
-    # 1,350 bins the sidebands' own background fit took ~0.2 of ~3.5 ms and saved no
-    # evaluation; 2,000 toys reach the same minima without it)
-    candidates = [(mm, 1.0, True, names[i_m] in given, plain) for mm in masses]
+    candidates = [(mm, 1.0, True, True, plain) for mm in masses]
     if names[i_m] in given and not bkg_given:
         # a mass given (or held): no scan to offer other peaks, so the background is also
         # started from the whole window, not only from the sidebands of that mass (a held
@@ -420,9 +415,8 @@ def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:
 def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is_fixed,
                lower, upper, total, bkg_given, sign=1.0, narrow=None, amount=None):
     """One start at mass ``mm``: widths ``factor`` times their starts (or ``narrow``), the
-    background from the sidebands (unless ``bkg_given``: ``vb``'s), the yield from the excess
-    (``sign`` -1: the deficit) or ``amount`` -- on ``vb``'s background, a Gaussian's width and
-    both yields from the profile over its width (:func:`.start_widths.scan_width`)."""
+    background from the sidebands (unless ``bkg_given``), the yield from the excess
+    (``sign`` -1: the deficit) or ``amount``."""
     names = model.parameter_names
     shape, sl, iy = model.blocks[0]
     bsl, biy = model.blocks[-1][1:]
@@ -444,7 +438,6 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     bfr = background_counts(model, edges, s)
     sel = ~mask
     resid = np.clip(sign * (n[sel] - bfr[sel]), 0.0, None)
-    profiled = None  # (signal yield, background) profiled at the start's width and mass
     i_sig = sl.start + shape.parameter_names.index("sigma") if (
         "sigma" in shape.parameter_names and shape.name in ("gaussian", "crystalball")) else None
     if (i_sig is not None and factor == 1.0 and narrow is None and names[i_sig] not in given
@@ -455,9 +448,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         # second moment of the excess (truncated at +-3 start widths, so it errs low;
         # bounded to a factor 2 of the start)
         w = scan_width(shape, edges, n, scale, bfr, float(s[i_m]), float(s[i_sig]),
-                       lower[i_sig], upper[i_sig], model.window, sign, yields=True)
-        if w is not None:
-            w, profiled = w[0], w[1:]
+                       lower[i_sig], upper[i_sig], model.window, sign)
         if w is None:
             d2 = float(resid @ (c[sel] - s[i_m]) ** 2 / resid.sum())
             w = _clip(math.sqrt(max(d2, 1e-12)), 0.5 * s[i_sig], 2.0 * s[i_sig])
@@ -466,8 +457,6 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         floor = 0.05 * math.sqrt(max(total, 1.0)) + 1.0
         if amount is not None:
             y = amount
-        elif profiled is not None and bkg_given:
-            y = profiled[0]
         elif sign > 0:
             y = max(float(np.sum(n[sel] - bfr[sel])), floor)
         else:
@@ -479,8 +468,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
             y = max(y, -0.9 * float(np.min(room)))
         s[iy] = _clip(y, lower[iy], upper[iy])
         if names[biy] not in given:
-            b = profiled[1] if profiled is not None and bkg_given else total - s[iy]
-            s[biy] = _clip(max(b, 1.0), lower[biy], upper[biy])
+            s[biy] = _clip(max(total - s[iy], 1.0), lower[biy], upper[biy])
     # later signal components: small positive yield at their given start
     for _, _, iy2 in model.blocks[1:-1]:
         if names[iy2] not in given:
