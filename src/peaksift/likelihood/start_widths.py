@@ -40,9 +40,9 @@ WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
 OTHER_FACTORS = 2.0 ** (np.arange(-6, 7) / 2)
 
 
-#: the signal rows of :func:`_profiled` are computed on the edges within this many of the
-#: widest width of the mass (beyond, a Gaussian's bin fractions are below 1e-22: held 0)
-_BAND_SIGMAS = 10.0
+#: each signal row of :func:`_profiled` is computed on the edges within this many of its
+#: width from the mass (beyond, a Gaussian holds < 3e-12 of its yield: held 0)
+_BAND_SIGMAS = 7.0
 
 
 def _profiled(edges, n, scale, bexp, mass, widths, window, y0):
