@@ -255,7 +255,8 @@ class _WidthProfile:
     def __init__(self, model, fine, i_m, free_widths, is_fixed, lower, upper, most):
         blocks = model.blocks
         shape, sl, iy = blocks[0]
-        ok = (fine is not None and len(blocks) == 2 and len(free_widths) == 1
+        ok = (fine is not None and len(blocks) == 2 and type(shape) is Gaussian
+              and len(free_widths) == 1
               and free_widths[0] == sl.start + shape.parameter_names.index("sigma")
               and not is_fixed[i_m] and not is_fixed[iy] and not is_fixed[blocks[-1][2]])
         self._args = (model, fine, i_m, free_widths[0], lower, upper, most) if ok else None
