@@ -372,10 +372,11 @@ def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None):
     counts = np.asarray(n, float)[m]
     eff = counts * s  # effective counts
     # constant part of the saturated form: sum(n~ ln n~ - n~) - sum(n~ ln s)
-    const = float(saturated_term(eff)) - float(eff @ np.log(s))
+    unit = bool(np.all(s == 1.0))
+    const = float(saturated_term(eff)) - (0.0 if unit else float(eff @ np.log(s)))
     for a in (s, counts, eff):
         a.flags.writeable = False
-    out = (used, s, bool(np.all(s == 1.0)), counts, eff, const)
+    out = (used, s, unit, counts, eff, const)
     # kept only for read-only inputs: an array changed in place must not find stale data
     if all(_frozen(a) for a in (n, scale)) and (mask is None or _frozen(mask)):
         _RECENT.insert(0, (n, scale, mask, out))
