@@ -4,7 +4,8 @@ Which function when
 -------------------
 * :func:`minimize` -- one problem: damped Fisher scoring on ``cost.value_grad_info`` (held
   at bounds, cut at the wall ``mu >= 0``: :func:`fisher_scoring`); when it does not
-  converge, iminuit's MIGRAD (strategy 0, analytic gradient) from where it stopped.
+  converge, iminuit's MIGRAD (strategy 0, analytic gradient), from where it stopped on
+  binned costs with empty bins.
   Returns a :class:`Minimum`.
 * :func:`covariance` -- ``H^-1`` from an observed Hessian, with the positive-definiteness test
   done on the Hessian scaled to unit diagonal (the unscaled eigenvalue ratio of a fit with
@@ -231,8 +232,8 @@ def _promise(g: np.ndarray, step: np.ndarray, a: np.ndarray) -> float:
 def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
              names: list[str], edm_goal: float = 1e-7,
              stop: Callable[[np.ndarray, float], bool] | None = None) -> Minimum:
-    """Fisher scoring first (few calls), MIGRAD from where it stopped when it does not
-    converge.
+    """Fisher scoring first (few calls), MIGRAD when it does not converge (from where it
+    stopped on binned costs with empty bins, see :func:`_goes_on`).
 
     ``stop(x, f)`` (optional) is asked at every point Fisher scoring accepts; when it says
     True the minimisation ends there and the :class:`Minimum` has ``joined=True`` (used by
@@ -241,8 +242,8 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     if stop is None or isinstance(stop, NearMinimum):
         fast = _compiled(cost, start, lower, upper, edm_goal, stop)
         if fast is not None:
-            return fast if isinstance(fast, Minimum) else _migrad(cost, fast, lower, upper,
-                                                                  names)
+            return fast if isinstance(fast, Minimum) else _migrad(
+                cost, fast if _goes_on(cost) else start, lower, upper, names)
     with np.errstate(all="ignore"):
         try:
             x, f, ok, inv = fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal,
@@ -256,10 +257,18 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     if ok:
         errs = np.sqrt(np.clip(np.diag(inv), 0, None))
         return Minimum(x, f, True, False, errs, "fisher-scoring")
-    # MIGRAD from where Fisher scoring stopped (a stall, or a singular information at a flat
-    # direction or on the wall mu >= 0): from the start it redid the way there, 400-1,700
-    # calls on background-only fits
-    return _migrad(cost, start if inv is _FAILED else x, lower, upper, names)
+    return _migrad(cost, x if inv is not _FAILED and _goes_on(cost) else start, lower, upper,
+                   names)
+
+
+def _goes_on(cost: Any) -> bool:
+    """Whether MIGRAD starts where Fisher scoring stopped rather than at the start: on binned
+    costs with empty bins, where Fisher scoring stops at the wall mu >= 0 or at the flat
+    directions of a narrow dip (from the start MIGRAD redid the way there, 400-1,700 calls
+    on background-only fits).  Elsewhere from the start, as before: on an unbinned Crystal
+    Ball fit of a Gaussian peak the tails' flat directions took MIGRAD from Fisher
+    scoring's end to a minimum 0.005 higher, at a bound."""
+    return bool(getattr(cost, "has_empty_bins", False))
 
 
 def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
