@@ -8,7 +8,7 @@ set, finite-difference derivatives), in one process, interleaved, best of ``--ro
 2. an end-to-end ``systematic_limits`` (mass scale 1%, resolution 10%, luminosity and
    efficiency) at 5 masses with an exppoly2 + dijet3 envelope, 100 bins.
 
-The generic path is forced by making :func:`peaksift.shapes.background._quadrature`
+The generic path is forced by making :func:`peaksift.shapes.quadrature.shape_fractions`
 decline (it then returns None, as for calls it does not cover).
 
     python scripts/bench_quadrature.py [--rounds 3]
@@ -23,7 +23,7 @@ import time
 import numpy as np
 
 from peaksift import shapes
-from peaksift.shapes import background as bg
+from peaksift.shapes import quadrature as bg
 
 WINDOW = (300.0, 800.0)
 
@@ -66,7 +66,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rounds", type=int, default=3)
     a = ap.parse_args()
-    fast = bg._quadrature
+    fast = bg.shape_fractions
     cases = {"exppoly2": (shapes.get("exppoly", order=2), [-3.0, 0.5]),
              "exppoly3": (shapes.get("exppoly", order=3), [-5.0, 1.0, -0.7]),
              "dijet4": (shapes.get("dijet", npar=4, sqrt_s=13000.0), [10.0, 5.0, 0.1])}
@@ -76,22 +76,22 @@ def main() -> None:
         new, old = [], []
         for rnd in range(a.rounds):
             new.append(_time(_fractions(shape, pars, 2 * rnd)))
-            bg._quadrature = lambda *args: None
+            bg.shape_fractions = lambda *args: None
             try:
                 old.append(_time(_fractions(shape, pars, 2 * rnd + 1)))
             finally:
-                bg._quadrature = fast
+                bg.shape_fractions = fast
         print(f"{name:9s} fractions+grad 200x500: compiled {min(new) * 1e3:8.1f} ms, "
               f"generic {min(old) * 1e3:8.1f} ms, ratio {min(old) / min(new):6.1f}")
     run = _limits()
     new, old = [], []
     for _ in range(a.rounds):
         new.append(_time(run))
-        bg._quadrature = lambda *args: None
+        bg.shape_fractions = lambda *args: None
         try:
             old.append(_time(run))
         finally:
-            bg._quadrature = fast
+            bg.shape_fractions = fast
     print(f"systematic_limits exppoly2+dijet3, 5 masses: compiled {min(new):.2f} s, "
           f"generic {min(old):.2f} s, ratio {min(old) / min(new):.1f} "
           f"(medians {np.median(new):.2f} / {np.median(old):.2f} s)")

@@ -28,8 +28,8 @@ Vitells, EPJC 71 (2011) 1554, eq. 97 summed over bins), so "weak" is ~2 sigma an
 ``--log`` appends one JSON line per finished chunk of a cell's toys (flushed, so a stopped
 run loses at most the chunk in progress) and resumes from the toys already in the file. The
 cells are brought up level by level: every cell to 1 toy (the scan/limit checks run on it),
-then 2, then every cell to ``--min-toys``, then to ``--toys``, the later levels cheapest
-cells first (CPU per toy so far). ``--deadline HH:MM`` (UTC) starts no toy after that time,
+then 2, 5, ``--min-toys``, 20, 50 and ``--toys``, the later levels cheapest cells first (CPU
+per toy so far). ``--deadline HH:MM`` (UTC) starts no toy after that time,
 so a time-limited run leaves every cell with at least the last level all cells reached, and
 the tables say how many toys each cell ran. Toy k of a cell depends only on the seed, the
 cell and k, so chunks add up to the same toys as one run. ``--part I/N`` runs one of N
@@ -513,8 +513,8 @@ def main(argv: list[str] | None = None) -> int:
                     "brought up level by level, see --min-toys, so every cell gets its first "
                     "toys before any gets its last)")
     ap.add_argument("--min-toys", type=int, default=10,
-                    help="the middle level: every cell reaches 1 and 2 toys, then this many, then "
-                    "--toys, cheapest cells first (default 10)")
+                    help="an extra level: every cell reaches 1, 2, 5, this many, 20, 50, then "
+                    "--toys, cheapest cells first within a level (default 10)")
     ap.add_argument("--part", metavar="I/N", help="run only part I of N (cells split by a "
                     "hash of their label; one process per part, each with its own --log)")
     ap.add_argument("--tables", metavar="LOG", help="only print the tables of --log files "
@@ -540,7 +540,9 @@ def main(argv: list[str] | None = None) -> int:
     state = {st.label: st for st in (read_log(args.log) if args.log else [])}
     stop_at = (time.monotonic() + seconds_until(args.deadline) if args.deadline
                else math.inf)
-    levels = sorted({1, min(2, args.toys), min(args.min_toys, args.toys), args.toys})
+    # rounds that double, so a deadline leaves every cell within a factor ~2 of the others
+    levels = sorted({n for n in (1, 2, 5, args.min_toys, 20, 50, args.toys)
+                     if n <= args.toys})
     warm_up()
     t_start = time.perf_counter()
     for lev, level in enumerate(levels):

@@ -103,19 +103,38 @@ def test_combined_scan_profiles_a_channels_background_function():
              Channel("b", hists[1], "exponential", CONV[1] / 0.5, signal="gaussian",
                      resolution=Resolution.absolute(SIGMA), efficiency=0.5)]
     c = combine(chans, MASSES, refit=False)
-    assert c.envelope["a"]["functions"] == ["exppoly1", "bernstein2"]
-    assert c.envelope["a"]["n_parameters"] == [2, 3]
-    assert c.envelope["b"]["functions"] == []
+    labels = ["exppoly1", "bernstein2"]
+    assert c.envelope["a"]["labels"] == labels and c.envelope["a"]["n_parameters"] == [2, 3]
+    assert "b" not in c.envelope  # no candidates: no choice
     plain = combine([Channel(**{**chans[0].__dict__, "background_candidates": None}),
                      chans[1]], MASSES, refit=False)
     for j, m in enumerate(MASSES):
         q_ref, chosen = _reference([np.asarray(h.weight_sum) for h in hists], m)
         # tolerance: the joint fits stop at steps below 0.03 errors (q0 within ~1e-4)
         assert c.q0[j] == pytest.approx(q_ref, abs=2e-3), m
-        assert c.envelope["a"]["chosen"][j] == chosen
+        assert labels[c.envelope["a"]["chosen"][j]] == chosen
     # the choice matters here: a background with curvature is not an exponential
     assert np.any(np.abs(c.q0 - plain.q0) > 0.05)
     assert c.to_dict()["envelope"] == c.envelope
+    # one layout with a single search's envelope: the same keys for the same facts
+    from peaksift.stats.envelope import envelope_scan
+
+    single = envelope_scan(hists[0], cands, "gaussian", MASSES,
+                           absolute_resolution=SIGMA).to_dict()
+    assert {k: single[k] for k in c.envelope["a"]} == {
+        **c.envelope["a"], "chosen": single["chosen"], "null_choice": single["null_choice"]}
+    # a file of the earlier layout (functions; choices by label; a channel without
+    # candidates listed with none) reads back the same
+    from peaksift.stats.channels import Combination
+
+    d = c.to_dict()
+    e = d["envelope"]["a"]
+    old = {"a": {"functions": labels, "penalty": e["penalty"], "n_parameters": [2, 3],
+                 "null_choice": labels[e["null_choice"]],
+                 "chosen": [None if i is None else labels[i] for i in e["chosen"]]},
+           "b": {"functions": [], "penalty": 1.0, "n_parameters": [0], "null_choice": None,
+                 "chosen": [None] * len(MASSES)}}
+    assert Combination.from_dict({**d, "envelope": old}).envelope == c.envelope
 
 
 def test_combined_toys_profile_the_background_function_too():

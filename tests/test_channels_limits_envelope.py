@@ -166,7 +166,7 @@ def test_combined_limits_profile_a_channels_background_function():
     obs, exp = _reference(hists)
     assert lim.observed[0] == pytest.approx(obs, rel=0.01)
     assert lim.expected[0] == pytest.approx(exp, rel=0.01)
-    assert lim.envelope["a"]["functions"] == ["exppoly1", "bernstein2"]
+    assert lim.envelope["a"]["labels"] == ["exppoly1", "bernstein2"]
     assert lim.envelope["a"]["n_parameters"] == [2, 3]
     assert "b" not in lim.envelope
     plain = combined_limits(_channels(hists, None), [MASS], method="asymptotic")

@@ -157,7 +157,7 @@ def test_scale_and_resolution_fit_match_the_normal_mle():
     mu, sd = stats.norm.fit(d / b)
     assert fit.scale == pytest.approx(mu, rel=1e-10)
     assert fit.resolution == pytest.approx(sd / mu, rel=1e-10)
-    assert abs(fit.scale - 2.7) < 4 * fit.scale_error
+    assert abs(fit.scale - 2.7) < 4 * fit.scale.error
     assert fit.response.scale == fit.scale
 
 

@@ -179,7 +179,7 @@ def test_scale_fit_on_the_demo_band_matches_the_pure_pion_mle(demo_tracks):
     _, cols = demo_tracks
     fit = _calibrated(cols)
     want = _pure_pion_scale(cols)
-    assert abs(fit.scale - want) < 4 * fit.scale_error + 0.003 * want
+    assert abs(fit.scale - want) < 4 * fit.scale.error + 0.003 * want
 
 
 @pytest.mark.parametrize("species,code,p_range,neighbours", [
@@ -307,6 +307,29 @@ def test_hadron_search_reports_the_identification(tmp_path, demo_tracks):
     md = (tmp_path / "out" / "report.md").read_text()
     assert "## Particle identification (dE/dx)" in md and "figures/dedx.png" in md
     assert d["config"]["pairing"]["hypotheses"] == ["kaon"]
+    # results.json keeps the whole record: read back, it draws the run's figure again, pixel
+    # for pixel at the run's resolution (matplotlib's PNG reader)
+    import matplotlib.image as mpimg
+
+    from peaksift import SearchResult
+
+    again = tmp_path / "again.png"
+    SearchResult.from_dict(d).plot(which="dedx").savefig(again, dpi=150)
+    drawn = mpimg.imread(tmp_path / "out" / "figures" / "dedx.png")
+    assert np.array_equal(mpimg.imread(again), drawn)
+
+
+def test_identified_pairs_are_named_by_their_mass_hypothesis():
+    """The hadron demo pairs tracks identified as kaons: its figures name the pair by the
+    hypothesis (m_KK, K+K-: the particle tables' symbol K for the charged kaon), not by the
+    collection ("track"); without hypotheses the collection names it."""
+    from peaksift import load_config
+    from peaksift.plotting import figure_labels
+
+    lab = figure_labels(load_config(HADRON_CONFIG))
+    assert lab.symbol == "m_{KK}" and lab.run.channel == "$K^+K^-$"
+    plain = figure_labels(load_config(_config_dict()))
+    assert plain.symbol == "m_{tt}"
 
 
 def _config_dict(**sections):

@@ -130,6 +130,16 @@ def test_asymptotic_and_toy_limits_agree_at_moderate_counts():
     assert t.expected_plus1[0] == pytest.approx(r.expected_plus1[0], rel=0.15)
 
 
+def test_toy_limits_without_toys_is_a_clear_error():
+    """Where toy-based limits are asked for (method "toys") but no toys are given, the
+    error says so and how to fix it, instead of failing inside the toys (no outside
+    number: the surface of the call)."""
+    h = _spectrum(n_bkg=3000, bins=150)
+    with pytest.raises(FitError, match=r"toys=0; pass toys >= 100, or method='asymptotic'"):
+        upper_limits(h, "gaussian", "exponential", [250.0], relative_resolution=0.01,
+                     method="toys", toy_masses=[250.0], toys=0)
+
+
 def test_cross_section_conversion_and_nuisances():
     """sigma x B = s / (L eff) (common practice).  Without uncertainties the limits convert
     exactly; constrained luminosity and efficiency uncertainties weaken them, more for a

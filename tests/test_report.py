@@ -115,6 +115,24 @@ def test_markdown_has_tables_caution_and_figure_links(tmp_path):
     assert "| events | 1,000 |" in md  # one number format: the command line's
 
 
+def test_results_json_reads_back_with_lists_on_one_line(tmp_path):
+    """results.json parses (Python's json module, the standard's reader) to the values
+    written, NaN as null; a list of numbers takes one line, a 2-d one a line a row."""
+    d = {"scan": {"masses": np.linspace(120.0, 180.0, 61), "z": [1.5, float("nan"), None]},
+         "counts": np.arange(12.0).reshape(3, 4), "fits": [{"a": 1}, {"b": [2, 3]}],
+         "empty": {}, "none": [], "name": "m\u03bc\u03bc"}
+    path = write_results_json(d, tmp_path / "results.json")
+    text = path.read_text()
+    back = json.loads(text)
+    assert back["scan"]["masses"] == pytest.approx(list(np.linspace(120.0, 180.0, 61)),
+                                                   rel=1e-15)
+    assert back["scan"]["z"] == [1.5, None, None]
+    assert back["counts"] == [[0, 1, 2, 3], [4, 5, 6, 7], [8, 9, 10, 11]]
+    assert back["fits"] == [{"a": 1}, {"b": [2, 3]}] and back["empty"] == {}
+    assert back["none"] == [] and back["name"] == "m\u03bc\u03bc"
+    assert len(text.splitlines()) < 30
+
+
 def test_format_pm_rounds_error_to_two_digits():
     # two significant digits on the error, value to the same decimal (common practice)
     assert format_pm(155.234, 0.3149, "GeV") == "155.23 ± 0.31 GeV"

@@ -5,7 +5,8 @@ cluster's shutdown chatter), no process of the run left and nothing half-written
 output folder.
 
 The moments are made certain, not hoped for: a worker process waits 1 s between its fork
-and its start (the window before its own signal set-up), or each chunk a worker takes
+and its start (the window before its own signal set-up), a spawned worker's interpreter
+waits 1 s in its start-up (a ``sitecustomize`` on its path), or each chunk a worker takes
 waits (the case where closing the cluster politely would wait for the task: Dask's nanny
 gives a worker 0.8 x 5 s to finish, then kills it with a warning).
 
@@ -56,7 +57,7 @@ def slow_start(self):
     return run(self)
 if sys.argv[1] == "starting":
     mp.BaseProcess.run = slow_start
-else:
+elif sys.argv[1] == "working":
     chunk.process_chunk = waiting
 from peaksift.cli import main
 sys.exit(main(sys.argv[2:]))
@@ -88,16 +89,28 @@ def _wait(pred, timeout: float, step: float = 0.02) -> bool:
     return False
 
 
+#: ``spawning``: a spawned worker's interpreter leaves its mark and waits 1 s while it starts
+#: (in ``site``, before any of Dask's or peaksift's code runs in it)
+_SPAWNING = """
+import os, sys, time
+if os.environ.get("MARKS") and "--multiprocessing-fork" in sys.argv:
+    open(os.path.join(os.environ["MARKS"], str(os.getpid())), "w").close()
+    time.sleep(1.0)
+"""
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize(("moment", "sig"), [("starting", signal.SIGTERM),
                                              ("starting", signal.SIGINT),
+                                             ("spawning", signal.SIGINT),
                                              ("working", signal.SIGTERM)])
 def test_sigterm_leaves_no_dask_worker_and_no_partial_output(small_demo, tmp_path, moment,
                                                              sig):
     """``starting``: SIGTERM (as batch systems send it) or SIGINT (Ctrl-C at a terminal) to
     the whole process group while a worker of the cluster is between its fork and its
-    signal set-up; ``working``: SIGTERM to peaksift alone while both workers are inside a
-    chunk."""
+    signal set-up; ``spawning``: Ctrl-C while a spawned worker's interpreter starts (no
+    traceback from it: it starts with SIGINT blocked); ``working``: SIGTERM to peaksift
+    alone while both workers are inside a chunk."""
     config = tmp_path / "spectrum.toml"
     config.write_text(f"""
 [input]
@@ -115,24 +128,27 @@ relative = 0.01
 [execution]
 engine = "dask"
 workers = 2
-start_method = "fork"
+start_method = "{'spawn' if moment == 'spawning' else 'fork'}"
 chunk_events = 3000
 """)
-    out, marks = tmp_path / "out", tmp_path / "marks"
+    out, marks, site = tmp_path / "out", tmp_path / "marks", tmp_path / "site"
     marks.mkdir()
-    env = {**os.environ, "PYTHONPATH": str(REPO / "src"), "MARKS": str(marks)}
+    site.mkdir()
+    (site / "sitecustomize.py").write_text(_SPAWNING)
+    path = str(REPO / "src") + (os.pathsep + str(site) if moment == "spawning" else "")
+    env = {**os.environ, "PYTHONPATH": path, "MARKS": str(marks)}
     proc = subprocess.Popen([sys.executable, "-c", _WAITING, moment, "spectrum", str(config),
                              "--out", str(out), "--quiet"], env=env, stderr=subprocess.PIPE,
                             text=True, start_new_session=True, cwd=tmp_path)
     try:
         # a worker in its start-up window, or both inside a chunk
-        want = 1 if moment == "starting" else 2
+        want = 2 if moment == "working" else 1
         assert _wait(lambda: len(list(marks.iterdir())) >= want or proc.poll() is not None,
                      120, 0.002)
         workers = {int(p.name) for p in marks.iterdir()}
         assert proc.poll() is None and workers <= set(_session(proc.pid))
         t0 = time.monotonic()
-        if moment == "starting":
+        if moment != "working":
             os.killpg(proc.pid, sig)
         else:
             proc.send_signal(sig)

@@ -165,18 +165,17 @@ def _hand_binned_nll(n, edges, window):
 
 def test_far_weaker_candidates_skipped_without_losing_the_minimum():
     """A 25 sigma peak and a 3 sigma bump: the fit minimises only the strong candidate (the
-    weak one trails by far more than the margin; the strong one from its start width and the
-    three other widths, as for every free width) and still reaches the minimum of an
-    independent iminuit fit of a hand-written cost started at the truth (NLL within 1e-4,
-    mass within 0.01 of its error)."""
+    weak one trails by far more than the margin; the strong one from its start width only:
+    the profile over the width at its minimum has no other minimum, so no other width is
+    tried) and still reaches the minimum of an independent iminuit fit of a hand-written
+    cost started at the truth (NLL within 1e-4, mass within 0.01 of its error)."""
     rng = np.random.default_rng(8)
     window = (100.0, 300.0)
     x = np.concatenate([100.0 + rng.exponential(60.0, 40_000), rng.normal(170.0, 3.0, 1500),
                         rng.normal(250.0, 3.0, 90)])
     h = MassHistogram(bins=200, range=window).fill(x)
     r = peaksift.fit(h, "gaussian", "exponential", window)
-    assert r.valid and r.starts_tried == 4
-    assert all(abs(f - r.nll) < 50 for f in r.starts_nll)  # all four at the strong peak
+    assert r.valid and r.starts_tried == 1
     cost = _hand_binned_nll(h.weight_sum, np.asarray(h.edges), window)
     ntot = float(h.weight_sum.sum())
     m = Minuit(cost, mass=170.0, sigma=3.0, ns=1500.0, b1=-100.0 / 60.0, nb=ntot - 1500.0)

@@ -3,11 +3,14 @@
 Base layer (no peaksift imports).  JSON has no NaN or infinity and no numpy types:
 :func:`plain` turns numpy scalars and arrays into Python numbers and lists, non-finite floats
 into ``None``, tuples and sets into lists, paths into strings, mappings into dicts, all the
-way down; :func:`finite` does the same for one number.
+way down; :func:`finite` does the same for one number.  :func:`dumps` writes such a value
+as indented JSON with each list of plain values on one line (a scan's masses, a histogram's
+counts: one line each, not one line a number).
 """
 
 from __future__ import annotations
 
+import json
 import math
 import os
 from collections.abc import Mapping
@@ -15,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["finite", "plain"]
+__all__ = ["dumps", "finite", "plain"]
 
 
 def finite(x: Any) -> float | None:
@@ -48,3 +51,18 @@ def plain(o: Any) -> Any:
     if hasattr(o, "to_dict"):
         return plain(o.to_dict())
     raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def dumps(o: Any, indent: int = 2, _level: int = 0) -> str:
+    """``json.dumps(o, indent=indent)`` (``o`` already :func:`plain`), except that a list
+    holding no dict or list is written on one line; NaN and infinity are refused."""
+    if isinstance(o, dict) and o:
+        pad = " " * (indent * (_level + 1))
+        items = (f"{pad}{json.dumps(k)}: {dumps(v, indent, _level + 1)}" for k, v in o.items())
+        return "{\n" + ",\n".join(items) + "\n" + " " * (indent * _level) + "}"
+    if isinstance(o, list) and any(isinstance(v, (dict, list)) for v in o):
+        pad = " " * (indent * (_level + 1))
+        items = (pad + dumps(v, indent, _level + 1) for v in o)
+        return "[\n" + ",\n".join(items) + "\n" + " " * (indent * _level) + "]"
+    return json.dumps(o, allow_nan=False)
+

@@ -80,13 +80,35 @@ _RC = {
 _TABLE_FONT = 8.8
 
 
+# rc keys of the user's session rather than of a figure's look: left as the user has them
+_SESSION_KEYS = ("backend", "interactive", "toolbar", "timezone", "webagg.", "tk.", "macosx.",
+                 "keymap.", "savefig.directory", "figure.raise_window", "figure.hooks",
+                 "figure.max_open_warning", "animation.", "pdf.", "ps.", "svg.", "pgf.")
+_STYLE: list[dict[str, Any]] = []  # matplotlib's own defaults with _RC over them
+_DEPTH = [0]  # figure_style blocks open: an inner one has nothing to set
+
+
 @contextlib.contextmanager
 def figure_style() -> Iterator[None]:
-    """Apply the peaksift rc settings for the duration of a ``with`` block."""
+    """Apply the peaksift rc settings for the duration of a ``with`` block: matplotlib's
+    own defaults with ours over them, so a user's rcParams or matplotlibrc (a serif font,
+    ``mathtext.fontset``, a dark theme) do not reach our figures; the user's rcParams are
+    restored on leaving, and session keys (backend, PDF font type, ...) are not touched."""
     import matplotlib as mpl
 
-    with mpl.rc_context(_RC):
+    if _DEPTH[0]:
         yield
+        return
+    if not _STYLE:
+        _STYLE.append({**{k: v for k, v in mpl.rcParamsDefault.items()
+                          if not k.startswith(_SESSION_KEYS)}, **_RC})
+    rc = mpl.rcParams  # only what differs is set: each key set is validated (~5 us)
+    with mpl.rc_context({k: v for k, v in _STYLE[0].items() if rc[k] != v}):
+        _DEPTH[0] += 1
+        try:
+            yield
+        finally:
+            _DEPTH[0] -= 1
 
 
 def new_figure(figsize: tuple[float, float] = (7.0, 4.6), nrows: int = 1, ncols: int = 1,
@@ -127,6 +149,17 @@ def _canvas_class() -> Any:
         from matplotlib.backends.backend_agg import FigureCanvasAgg
 
         class _SharedMathCanvas(FigureCanvasAgg):
+            # drawn and saved in our style however the figure is saved (fig.savefig by the
+            # user, a notebook's display): text and math are laid out with the rc settings
+            # in force when they are drawn, which are the user's outside figure_style
+            def draw(self) -> None:
+                with figure_style():
+                    super().draw()
+
+            def print_figure(self, *args: Any, **kwargs: Any) -> Any:
+                with figure_style():
+                    return super().print_figure(*args, **kwargs)
+
             def get_renderer(self) -> Any:
                 r = super().get_renderer()
                 if not _MATH:
@@ -261,7 +294,7 @@ _OBJECT_SYMBOLS = {
     "muon": r"\mu", "mu": r"\mu", "electron": "e", "ele": "e", "e": "e", "positron": "e",
     "kaon": "K", "k": "K", "pion": r"\pi", "pi": r"\pi", "proton": "p", "p": "p",
     "photon": r"\gamma", "gamma": r"\gamma", "tau": r"\tau", "lepton": r"\ell",
-    "track": "t", "jet": "j", "b_jet": "b", "bjet": "b",
+    "track": "t", "jet": "j", "b_jet": "b", "bjet": "b", "deuteron": "d",
 }
 
 

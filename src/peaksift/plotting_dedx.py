@@ -15,7 +15,7 @@ import numpy as np
 from ._style import COLORS, draw_header, figure_style, margins, new_figure
 from .plotting import save
 
-__all__ = ["dedx_figure"]
+__all__ = ["dedx_figure", "draw_dedx"]
 
 # one colour per mass hypothesis, from the peaksift palette (deuteron: a muted plum)
 _HYPOTHESIS_COLORS = {"pion": COLORS["total"], "kaon": COLORS["signal"],
@@ -26,6 +26,11 @@ _HYPOTHESIS_COLORS = {"pion": COLORS["total"], "kaon": COLORS["signal"],
 def dedx_figure(outcome: Any, outdir: str | os.PathLike[str], *,
                 formats: Sequence[str] = ("png", "pdf"), hypotheses: Sequence[str] = (),
                 band: float = 3.0) -> Path:
+    """:func:`draw_dedx` saved as ``dedx`` in ``outdir``."""
+    return save(draw_dedx(outcome, hypotheses=hypotheses, band=band), outdir, "dedx", formats)
+
+
+def draw_dedx(outcome: Any, *, hypotheses: Sequence[str] = (), band: float = 3.0) -> Any:
     """dE/dx against momentum: the tracks' density (log momentum axis), the expected curve of
     every mass hypothesis, and the ±``band`` sigma selection band of the pairing hypotheses.
 
@@ -76,4 +81,4 @@ def dedx_figure(outcome: Any, outdir: str | os.PathLike[str], *,
         ax.legend(loc="upper right", ncol=1)
         draw_header(ax, None, (f"{r.material.name}: scale {r.scale:.4g}, "
                                f"\u03c3/\u27e8dE/dx\u27e9 {r.resolution:.3g}"))
-    return save(fig, outdir, "dedx", formats)
+    return fig

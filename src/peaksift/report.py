@@ -27,7 +27,6 @@ from __future__ import annotations
 
 import base64
 import html
-import json
 import os
 import re
 from collections.abc import Mapping, Sequence
@@ -36,7 +35,7 @@ from typing import Any
 
 from ._files import atomic_write
 from ._format import format_interval, format_pm, number
-from ._json import plain
+from ._json import dumps, plain
 from .report_background import section_background_model
 from .report_fits import section_background_fit, section_calibration, section_identification
 from .report_limits import section_limits
@@ -77,8 +76,9 @@ _CAPTIONS, _BLINDED_CAPTIONS = CAPTIONS, BLINDED_CAPTIONS
 
 # ------------------------------------------------------------------------------- writing
 def write_results_json(results: Mapping[str, Any], path: str | os.PathLike[str]) -> Path:
-    """Write the results dictionary as indented JSON, atomically; NaN/inf become ``null``."""
-    text = json.dumps(plain(results), indent=2, allow_nan=False)
+    """Write the results dictionary as indented JSON (a list of numbers on one line),
+    atomically; NaN/inf become ``null``."""
+    text = dumps(plain(results))
     return atomic_write(path, text + "\n")
 
 

@@ -155,7 +155,7 @@ def _identification_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
         rows.append(("scale (fitted)", (f"{num_text(sc.get('value'), 5)} ± "
                      f"{num_text(sc.get('error'), 2)} on {num_text(fit.get('tracks_used'))} tracks")))
         rs = fit.get("resolution")
-        if rs:
+        if rs and rs.get("error"):  # given, not fitted: error 0 (None in earlier files)
             rows.append(("resolution (fitted)", (f"{num_text(rs.get('value'))} ± "
                          f"{num_text(rs.get('error'), 2)}")))
     else:

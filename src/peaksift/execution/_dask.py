@@ -168,6 +168,16 @@ class DaskSession:
             # Ctrl-C likewise (interrupt_held): it reaches the whole process group, and a
             # worker between its fork and _local_worker_setup would print a traceback, a
             # KeyboardInterrupt inside LocalCluster's start-up leave workers nothing stops
+            # Spawned workers: multiprocessing's resource tracker, started with the first
+            # spawned process, unblocks SIGINT and SIGTERM in the thread that starts it
+            # (Dask's event loop) once it is up, so the workers spawned after it would start
+            # without the block and print a KeyboardInterrupt from their start-up; started
+            # here first, it leaves the block alone
+            method = _local_cluster_method(method, workers)
+            if method != "fork":
+                from multiprocessing import resource_tracker
+
+                resource_tracker.ensure_running()
             try:
                 with interrupt_held(), sigterm_held(), _quiet_distributed():
                     self.cluster = _start_local_cluster(workers, method)

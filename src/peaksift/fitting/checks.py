@@ -83,12 +83,18 @@ def check_fixed(model: Model, fixed: Mapping[str, float]) -> None:
                                f"{shape.name} shape ({lo} to {par.upper:g}); fix it inside")
 
 
-def check_support(model: Model, values: np.ndarray) -> None:
-    """Every component with all its shape parameters fixed must put probability into the
-    window (a peak fixed far outside it has none: its bin fractions are 0/0)."""
+def check_support(model: Model, values: np.ndarray, is_fixed: np.ndarray | None = None) -> None:
+    """Every component with a shape parameter fixed (all of them, without ``is_fixed``)
+    must put probability into the window at ``values`` (a peak fixed far outside it has
+    none: its bin fractions are 0/0).  A component whose shape parameters all float and
+    start inside the model's window-aware bounds has probability in the window: not
+    evaluated (its fractions cost ~0.05 ms of a ~2 ms fit)."""
     edges = np.array(model.window, float)
     names = model.parameter_names
     for shape, sl, _ in model.blocks:
+        if is_fixed is not None and not any(is_fixed[sl]) and all(
+                p.lower <= v <= p.upper for p, v in zip(model.parameters[sl], values[sl])):
+            continue
         p = [float(v) for v in values[sl]]
         with np.errstate(all="ignore"):
             try:

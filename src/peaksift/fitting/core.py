@@ -11,12 +11,10 @@ made is returned flagged invalid with its reasons.
 from __future__ import annotations
 
 import math
-import warnings
 from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
-from scipy import special
 
 from ..errors import FitError, closest
 from ..likelihood import (
@@ -27,13 +25,10 @@ from ..likelihood import (
     NearMinimum,
     TiedCost,
     UnbinnedCost,
-    baker_cousins_chi2,
     minimize,
-    new_minuit,
     refine,
 )
 from ..likelihood.starts import fit_starts
-from ..shapes import Shape
 from .checks import (
     as_limits,
     as_retries,
@@ -41,20 +36,16 @@ from .checks import (
     check_fixed,
     check_support,
     note_lower_minimum,
-    tie_indices,
     tie_rows,
 )
-from .data import FitData, gof_binning, prepare, start_bins
+from .data import FitData, prepare, start_bins
+from .outcome import FLOOR_FRACTION, problems_at, result_of
 from .result import FitResult
 
 __all__ = ["fit"]
 
 #: numerical failures of one start: that start is given up, the others still count
 _NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError)
-#: below this signal yield / error the 68 % intervals of a free peak under-cover: on ~5 sigma
-#: toys the symmetric errors and the profile-likelihood intervals alike, 61-64 % for mass and
-#: yield (tests/test_fit_toys.py, scripts/study_fit_toys.py)
-_UNDERCOVER_Z = 6.0
 
 
 def fit(
@@ -181,7 +172,7 @@ def fit(
     for i, floor in floors.items():  # a start below the floor begins at it
         if not is_fixed[i]:
             base[i] = max(base[i], floor)
-    check_support(model, base)
+    check_support(model, base, is_fixed)
     free_idx = np.flatnonzero(~is_fixed)
     nfree = int(free_idx.size)
     n_entries = (float(np.sum(d.n)) if d.binned and not d.weighted else
@@ -190,7 +181,8 @@ def fit(
     too_few = n_entries < nfree
 
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
-    inner_free = np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int)
+    inner_free = (np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int) if live
+                  else free_idx)  # flatnonzero's: sorted already
     if d.binned:
         # read-only arrays shared by every start's cost: their per-bin work is kept
         scale = _read_only(d.hist.scaled_poisson_factors())
@@ -217,7 +209,7 @@ def fit(
         cost = make_cost(base)
         f = float(cost.value_grad_info(np.empty(0), info=False)[0])
         mo = Minimum(np.empty(0), f, True, False, np.empty(0), "none (every parameter fixed)")
-        return _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
+        return result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                        cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
                        cost.ncall, floors)
     sh = start_bins(d)
@@ -241,6 +233,8 @@ def fit(
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
         s0 = make_start(None if near is None else near[0])
+        if s0 is None:  # a start the best minimum so far makes pointless
+            continue
         cost = make_cost(s0)
         try:
             mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names,
@@ -264,7 +258,7 @@ def fit(
             continue
         calls += cost.ncall
         tried.append(float(f))
-        problems = _problems(mo, x, posdef, lo_f, hi_f, free_names)
+        problems = problems_at(mo, x, posdef, lo_f, hi_f, free_names)
         if not math.isfinite(f):
             problems.append("negative log-likelihood not finite at the minimum")
         if best is None or (math.isfinite(f) and f < best[0] - 1e-9):
@@ -278,7 +272,7 @@ def fit(
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:
         free_cov = np.full((nfree, nfree), np.nan)
-    fr = _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
+    fr = result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
                  problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
                  tuple(tried), calls, floors)
     return note_lower_minimum(fr, superseded)
@@ -324,20 +318,16 @@ def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):
     return lower, upper
 
 
-#: a binned fit's Gaussian sigma is kept above this fraction of the narrowest bin: below it
-#: the peak fits inside one bin and the likelihood cannot tell its width, so a free sigma
-#: could collapse into a one-bin spike on any upward fluctuation
-_FLOOR_FRACTION = 0.1
 
 
 def _width_floors(model: Model, d: FitData, lower: np.ndarray, upper: np.ndarray,
                   limits: Mapping[str, tuple[float, float]]) -> dict[int, float]:
     """Raise the lower bound of every signal's ``sigma`` in a binned fit to
-    ``_FLOOR_FRACTION`` of the narrowest bin (unless the caller set its limits); returns
+    ``FLOOR_FRACTION`` of the narrowest bin (unless the caller set its limits); returns
     ``{index: floor}`` of the bounds raised."""
     if not d.binned:
         return {}
-    floor = _FLOOR_FRACTION * float(np.min(np.diff(d.edges)))
+    floor = FLOOR_FRACTION * float(np.min(np.diff(d.edges)))
     out = {}
     for shape, sl, _ in model.blocks[:-1]:
         if "sigma" not in shape.parameter_names:
@@ -383,213 +373,3 @@ def _base_values(model: Model, d: FitData, start: dict, fixed: dict, lower: np.n
     if not math.isfinite(base[yields[-1]]):
         base[yields[-1]] = d.total
     return base, is_fixed
-
-
-def _problems(mo: Minimum, x: np.ndarray, posdef: bool, lower: np.ndarray, upper: np.ndarray,
-              names: list[str]) -> list[str]:
-    out = []
-    if not mo.converged:
-        out.append("minimiser did not converge" + (" (call limit reached)"
-                                                  if mo.call_limit else ""))
-    for i, name in enumerate(names):
-        if _distance_to_bound(x[i], lower[i], upper[i])[0] <= _bound_tolerance(
-                x[i], lower[i], upper[i]):
-            out.append(f"{name} at a bound ({x[i]:.6g})")
-    if not posdef:
-        out.append("covariance not positive definite (Hessian of the NLL not invertible)")
-    return out
-
-
-def _bound_tolerance(x: float, lo: float, hi: float) -> float:
-    span = hi - lo
-    return 1e-4 * span if math.isfinite(span) else 1e-8 * max(abs(x), 1.0)
-
-
-def _distance_to_bound(x: float, lo: float, hi: float) -> tuple[float, float]:
-    """(distance to the nearer finite bound, that bound)."""
-    dl = x - lo if math.isfinite(lo) else math.inf
-    du = hi - x if math.isfinite(hi) else math.inf
-    return (dl, lo) if dl <= du else (du, hi)
-
-
-def _result(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost, problems,
-            xbest, fbest, free_cov, posdef, intervals, tried, calls, floors) -> FitResult:
-    npar = len(names)
-    vals = base.copy()
-    vals[free_idx] = xbest
-    ties = tie_indices(cost)
-    for i_t, i_s, tie in ties:
-        vals[i_t] = tie.func(float(vals[i_s]))
-    treatment = "none (unweighted)"
-    if d.weighted:
-        if d.binned:
-            treatment = ("scaled Poisson bins (Bohm and Zech 2014): errors from the Hessian "
-                         "of the effective-count likelihood")
-        else:
-            treatment = "sandwich covariance H^-1 D H^-1 (Langenbruch 2022)"
-            if posdef:
-                free_cov = free_cov @ cost.score_outer(xbest) @ free_cov
-    cov = np.zeros((npar, npar))
-    cov[np.ix_(free_idx, free_idx)] = free_cov
-    for i_t, i_s, tie in ties:  # a tied parameter's errors follow its source's
-        k = tie.slope(float(vals[i_s]))
-        cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]
-        cov[i_t, i_t] = k * k * cov[i_s, i_s]
-    err = np.sqrt(np.clip(np.diag(cov), 0, None))
-    err[~np.isfinite(np.diag(cov))] = np.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        corr = cov / np.outer(err, err)
-    corr[~np.isfinite(corr)] = 0.0
-    np.fill_diagonal(corr, np.where(err > 0, 1.0, 0.0))
-    notes: list[str] = [d.note] if d.note else []
-    notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
-              f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
-              f"{names[i_s]}'s)" for i_t, i_s, tie in ties]
-    for k, i in enumerate(free_idx):
-        dist, bnd = _distance_to_bound(xbest[k], lower[i], upper[i])
-        if (math.isfinite(dist) and dist > _bound_tolerance(xbest[k], lower[i], upper[i])
-                and math.isfinite(err[i]) and dist < err[i]):
-            notes.append(f"{names[i]} lies within one standard error of its bound {bnd:g}: "
-                         "its symmetric error is not meaningful, use the interval")
-    ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
-                       upper, problems, notes)
-    sig0, sl0, iy0 = model.blocks[0]
-    p0 = list(vals[sl0])
-    i_m = sl0.start + sig0.parameter_names.index("mass")
-    wpars = sig0.width_parameters()
-    wname = wpars[0] if wpars else ""
-    i_w = sl0.start + sig0.parameter_names.index(wname) if wname else None
-    if (not is_fixed[iy0] and (i_w is not None and not is_fixed[i_w])
-            and err[iy0] > 0 and abs(vals[iy0]) / err[iy0] < _UNDERCOVER_Z):
-        notes.append("free mass and width at a modest significance: the 68 % intervals "
-                     "under-cover, symmetric errors and profile-likelihood intervals alike "
-                     "(61-64 % for mass and yield on ~5 sigma toys)")
-    for i, floor in floors.items():
-        # at the floor, or within one error of it: the width is not measured, the peak is a
-        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
-        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
-        if not is_fixed[i] and (vals[i] <= floor * (1.0 + 1e-3)
-                                or (math.isfinite(err[i]) and err[i] >= vals[i] - floor)):
-            problems = [*problems, (f"{names[i]} at or within one error of its floor (a "
-                                    f"bound) {floor:g} {d.unit}, {_FLOOR_FRACTION:g} of the "
-                                    "narrowest bin: the peak is narrower than the binning "
-                                    "resolves; use finer bins or an unbinned fit")]
-    fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
-    ge, gn, gn2 = gof_binning(d)
-    mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
-    if mu is None:
-        mu = model.expected(ge, vals)
-    gsc = d.hist.scaled_poisson_factors()
-    # a binned fit's NLL is the saturated form over these very bins: twice it is the
-    # chi-square (no second pass of logarithms); constraint terms would be in it
-    chi2 = (2.0 * float(fbest) if d.binned and not cons and math.isfinite(fbest) else
-            float(baker_cousins_chi2(gn, mu, gsc)))
-    ndf = int(gn.size - free_idx.size)
-    pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
-    flags = {
-        "converged": bool(mo is not None and mo.converged),
-        "at_bound": any("bound" in p for p in problems),
-        "near_bound": any("of its bound" in n for n in notes),
-        "posdef_covariance": bool(posdef),
-    }
-    return FitResult(
-        parameters=tuple(names), values=dict(zip(names, map(float, vals))),
-        errors=dict(zip(names, map(float, err))),
-        fixed=tuple(n for n, f in zip(names, is_fixed) if f),
-        covariance=cov, correlations=corr, intervals=ivals, nll=float(fbest),
-        valid=not problems, problems=tuple(problems), notes=tuple(notes), flags=flags,
-        binned=d.binned, binned_reason=d.reason, weighted=d.weighted,
-        weight_treatment=treatment, window=d.window, n_events=d.total,
-        peak_mass=float(sig0.location(p0)), peak_mass_error=float(err[i_m]),
-        peak_width=float(vals[i_w]) if i_w is not None else math.nan,
-        peak_width_error=float(err[i_w]) if i_w is not None else math.nan,
-        width_parameter=wname, fwhm=fw, fwhm_error=fw_err,
-        gof_chi2=chi2, gof_ndf=ndf, gof_p_value=pval, gof_note=_gof_note(d, cons, is_fixed,
-                                                                          names),
-        edges=np.asarray(ge), observed=np.asarray(gn), observed_weight_sq_sum=np.asarray(gn2),
-        expected=np.asarray(mu), pulls=np.asarray(pulls),
-        bounds={n: (float(lower[i]), float(upper[i])) for i, n in enumerate(names)},
-        constraints=cons, model=model, starts_tried=len(tried), starts_nll=tried,
-        n_calls=calls, unit=d.unit, minimizer="none" if mo is None else mo.method, cost=cost,
-    )
-
-
-def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
-               problems, notes):
-    if not which:
-        return None
-    if problems:
-        notes.append("profile-likelihood intervals not made: the fit is not valid")
-        return None
-    wanted = ([names[i] for i in free_idx] if which is True else
-              [which] if isinstance(which, str) else list(which))
-    for k in wanted:
-        if k not in names or is_fixed[names.index(k)]:
-            raise FitError(f"intervals: {k!r} is not a free parameter")
-    free_names = [names[i] for i in free_idx]
-    lo_f, hi_f = lower[free_idx], upper[free_idx]
-    out = {}
-    with warnings.catch_warnings(), np.errstate(all="ignore"):
-        warnings.simplefilter("ignore")
-        try:
-            m = new_minuit(cost, xbest, lo_f, hi_f, free_names, err[free_idx])
-            # strategy 1: with new_minuit's strategy 0, MINOS stops early on the flat,
-            # non-parabolic profiles of ~5 sigma peaks and can call a wrong end valid (a mass
-            # end at 2 dNLL = 0.5 instead of 1 on a toy)
-            m.strategy = 1
-            m.migrad()
-        except _NUMERIC + (RuntimeError,):
-            notes.append("profile-likelihood intervals failed (iminuit could not restart)")
-            return None
-        for k in wanted:
-            try:
-                m.minos(k)
-                me = m.merrors[k]
-                out[k] = (float(me.lower), float(me.upper))
-                if not me.is_valid:
-                    notes.append(f"profile-likelihood interval of {k} is not valid "
-                                 f"({'lower' if not me.lower_valid else 'upper'} side)")
-            except _NUMERIC + (RuntimeError,):
-                notes.append(f"profile-likelihood interval of {k} could not be made")
-    return out
-
-
-def _gof_note(d: FitData, cons: dict, is_fixed: np.ndarray, names: list[str]) -> str:
-    if d.binned:
-        note = ("saturated-model (Baker-Cousins) chi-square of the fitted bins, "
-                "asymptotically chi-square(ndf)")
-    else:
-        note = ("approximate: parameters fitted unbinned, the masses then binned for the "
-                "chi-square, which lies between chi-square(ndf) and chi-square(bins - 1) "
-                "(Chernoff-Lehmann), so the p-value is somewhat too small")
-    if d.weighted:
-        note += "; weighted bins as scaled-Poisson effective counts"
-    n_con = sum(1 for k in cons if not is_fixed[names.index(k)])
-    if n_con:
-        note += (f"; {n_con} constrained parameter{'s' if n_con > 1 else ''} "
-                 "counted as free in ndf")
-    return note
-
-
-def _fwhm_with_error(shape: Shape, p: list[float], cov: np.ndarray) -> tuple[float, float]:
-    try:
-        f0 = shape.fwhm(p)
-    except (FitError, ValueError, ArithmeticError):
-        return math.nan, math.nan
-    if not np.all(np.isfinite(cov)):
-        return float(f0), math.nan
-    grad = np.zeros(len(p))
-    try:
-        for i in range(len(p)):
-            if cov[i, i] <= 0:
-                continue
-            h = 1e-4 * math.sqrt(cov[i, i])
-            q1, q2 = list(p), list(p)
-            q1[i] += h
-            q2[i] -= h
-            grad[i] = (shape.fwhm(q1) - shape.fwhm(q2)) / (2 * h)
-    except (FitError, ValueError, ArithmeticError):
-        return float(f0), math.nan
-    return float(f0), float(math.sqrt(max(grad @ cov @ grad, 0.0)))

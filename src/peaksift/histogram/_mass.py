@@ -118,6 +118,25 @@ class MassHistogram:
         self.label = str(label)
         self._regular = is_regular(self.edges)
 
+    @classmethod
+    def _on_checked_edges(cls, edges: np.ndarray, unit: str, label: str,
+                          regular: bool | None = None) -> MassHistogram:
+        """An empty histogram on ``edges`` taken from a checked histogram's (a run or a
+        subset of them, still increasing and finite): the checks of ``__init__`` skipped
+        (restricting and rebinning run in every fit)."""
+        h = cls.__new__(cls)
+        e = np.array(edges, dtype=float)
+        e.setflags(write=False)
+        h.edges = e
+        h._values = np.zeros(e.size - 1)
+        h._variances = np.zeros(e.size - 1)
+        h.underflow = h.overflow = h.underflow_variance = h.overflow_variance = 0.0
+        h.n_nan = 0
+        h.unit = str(unit)
+        h.label = str(label)
+        h._regular = is_regular(e) if regular is None else bool(regular)
+        return h
+
     # ------------------------------------------------------------------ basics
     @property
     def nbins(self) -> int:

@@ -32,7 +32,9 @@ def restrict(cls: Any, hist: Any, window: tuple[float, float]) -> Any:
             f"at least one whole bin, e.g. ({e[i]:g}, {e[i + 1]:g}), or refill the masses "
             "with finer bins")
     i0, i1 = int(keep[0]), int(keep[-1]) + 1
-    h = cls(e[i0 : i1 + 1], unit=hist.unit, label=hist.label)
+    # a run of checked edges: still valid (and regular when they were)
+    h = cls._on_checked_edges(e[i0 : i1 + 1], hist.unit, hist.label,
+                              True if hist.is_regular else None)
     h._values = hist._values[i0:i1].copy()
     h._variances = hist._variances[i0:i1].copy()
     h.underflow = hist.underflow + float(hist._values[:i0].sum())
@@ -73,7 +75,8 @@ def rebin(cls: Any, hist: Any, factor: int | None, edges: Any) -> Any:
                 f"rebin edge {float(bad)!r} is not one of the current edges; new edges must be a "
                 "subset of the old ones"
             )
-    h = cls(hist.edges[keep], unit=hist.unit, label=hist.label)
+    # a subset of checked edges (keep increases strictly: the new edges were checked)
+    h = cls._on_checked_edges(hist.edges[keep], hist.unit, hist.label)
     # exact per-group sums; reduceat's last group runs to the array end, so redo it
     starts = keep[:-1]
     h._values = np.add.reduceat(hist._values, starts)

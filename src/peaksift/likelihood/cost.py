@@ -23,7 +23,7 @@ import numpy as np
 
 from .constraints import Constraint
 from .model import Model
-from .poisson import MU_FLOOR, saturated_term, unbinned_nll, use_compiled
+from .poisson import MU_FLOOR, WALL_MU, saturated_term, unbinned_nll, use_compiled
 
 __all__ = ["BinnedCost", "UnbinnedCost"]
 
@@ -140,6 +140,7 @@ class BinnedCost(_Cost):
                                self._row.get(iy, -1)))
 
         self._state: tuple | None = None
+        self._empty: np.ndarray | None = None  # the used bins without entries
         self._problem: tuple | None = None  # the compiled minimiser's arrays, made on demand
         self._fused = _fused_path(self)
         # the numpy path's Jacobian, allocated when that path first runs
@@ -248,6 +249,31 @@ class BinnedCost(_Cost):
         self.ncall += int(calls)
         self._state = (np.asarray(x_last, float).tobytes(), self._fused.mu.copy(), None)
 
+    def wall_terms(self, x: np.ndarray) -> tuple | None:
+        """At the last evaluation, made at ``x``: ``(information with the empty bins left
+        out, expectation, Jacobian)`` for the minimiser's step near the wall ``mu >= 0``
+        (see :func:`.minimize.fisher_scoring`), or None when no used bin is empty.
+
+        An empty bin's term ``s mu`` is linear in ``mu``: its curvature is 0, not the
+        information ``s / mu`` that grows without bound at the wall.  A bin already at the
+        wall (``mu < WALL_MU``) keeps its information, so that the step slides along the
+        wall instead of being cut short by it."""
+        if self._empty is None:
+            self._empty = self.n == 0.0
+        if not self._empty.any():
+            return None
+        st = self._state
+        if st is None or st[0] != np.asarray(x, float).tobytes():
+            return None
+        jac = self._jac if st[2] is not None else self._fused.jac
+        mu = np.maximum(np.asarray(st[1], float), MU_FLOOR)
+        full = ~self._empty | (mu < WALL_MU)
+        w = (1.0 if self.unit_scale else self.s[full]) / mu[full]
+        jf = jac[:, full]
+        info = (jf * w) @ jf.T
+        self._add_constraints(np.asarray(x, float), 0.0, np.zeros(self.free.size), info)
+        return info, mu, jac.copy()
+
     def expected_at(self, x: np.ndarray) -> np.ndarray | None:
         """The expectation of the last evaluation if it was at ``x`` (else None)."""
         st = self._state
@@ -346,10 +372,11 @@ def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None):
     counts = np.asarray(n, float)[m]
     eff = counts * s  # effective counts
     # constant part of the saturated form: sum(n~ ln n~ - n~) - sum(n~ ln s)
-    const = float(saturated_term(eff)) - float(eff @ np.log(s))
+    unit = bool(np.all(s == 1.0))
+    const = float(saturated_term(eff)) - (0.0 if unit else float(eff @ np.log(s)))
     for a in (s, counts, eff):
         a.flags.writeable = False
-    out = (used, s, bool(np.all(s == 1.0)), counts, eff, const)
+    out = (used, s, unit, counts, eff, const)
     # kept only for read-only inputs: an array changed in place must not find stale data
     if all(_frozen(a) for a in (n, scale)) and (mask is None or _frozen(mask)):
         _RECENT.insert(0, (n, scale, mask, out))

@@ -32,6 +32,7 @@ from numba import njit
 
 from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
 from .kernels import poisson_pass, solve_small
+from .poisson import WALL_FRACTION, WALL_MU
 
 __all__ = ["compiled_fisher_scoring", "compiled_observed_hessian", "problem_of"]
 
@@ -84,14 +85,59 @@ def _finite_sum(a):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
+def _wall_info(prob, info, b, mu_x, jac_x):  # pragma: no cover - compiled
+    """:meth:`.cost.BinnedCost.wall_terms` from the buffers of the point just evaluated:
+    ``b`` the information without the empty bins not yet at the wall, ``mu_x``, ``jac_x``
+    copies of the expectation and the Jacobian."""
+    n, s, unit, mu, jac = prob[12], prob[13], prob[14], prob[17], prob[18]
+    npar = b.shape[0]
+    b[:, :] = info
+    for j in range(mu.size):
+        mu_x[j] = mu[j]
+        if n[j] == 0.0 and mu[j] >= WALL_MU:
+            w = (1.0 if unit else s[j]) / mu[j]
+            for a in range(npar):
+                for c in range(npar):
+                    b[a, c] -= w * jac[a, j] * jac[c, j]
+    jac_x[:, :] = jac
+
+
+@njit(cache=True, nogil=True)
+def _system(m, lam, held, out):  # pragma: no cover - compiled
+    """``m + lam diag(m)`` with held parameters' rows and columns the identity's."""
+    npar = m.shape[0]
+    for i in range(npar):
+        for j in range(npar):
+            out[i, j] = 0.0 if held[i] or held[j] else m[i, j]
+        out[i, i] = 1.0 if held[i] else m[i, i] + lam * m[i, i]
+
+
+@njit(cache=True, nogil=True)
+def _to_wall(mu, jac, step):  # pragma: no cover - compiled
+    """:func:`.minimize.to_wall`: 1, or WALL_FRACTION of the way to the first linearised
+    zero."""
+    r = math.inf
+    for j in range(mu.size):
+        d = 0.0
+        for a in range(step.size):
+            d += step[a] * jac[a, j]
+        if d < 0.0:
+            r = min(r, mu[j] / -d)
+    return 1.0 if r >= 1.0 else WALL_FRACTION * r
+
+
+@njit(cache=True, nogil=True)
 def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, xb, fb, hb,
            join_nll, join_distance, x_out, info_out, x_last):  # pragma: no cover - compiled
-    """The loop of :func:`.minimize.fisher_scoring`; returns ``(status, f, calls)`` with
-    the point in ``x_out``, its information in ``info_out`` and the last point evaluated in
-    ``x_last`` (the problem's ``mu`` buffer holds the expectation there)."""
+    """The loop of :func:`.minimize.fisher_scoring` (parameters held at bounds, the step
+    near the wall ``mu >= 0``); returns ``(status, f, calls)`` with the point in ``x_out``,
+    its information in ``info_out`` and the last point evaluated in ``x_last`` (the
+    problem's ``mu`` buffer holds the expectation there)."""
     g_buf = prob[19]
     i_buf = prob[20]
+    n = prob[12]
     npar = x0.size
+    nb = n.size
     x = np.empty(npar)
     for i in range(npar):
         x[i] = min(max(x0[i], lower[i]), upper[i])
@@ -106,12 +152,26 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
     x_out[:] = x
     if not (math.isfinite(f) and _finite_sum(g) and _finite_sum(info)):
         return NOT_CONVERGED, f, calls
+    has_empty = False
+    for j in range(nb):
+        if n[j] == 0.0:
+            has_empty = True
+            break
+    b = np.empty((npar, npar))
+    mu_x = np.empty(nb if has_empty else 0)
+    jac_x = np.empty((npar, nb if has_empty else 0))
+    if has_empty:
+        _wall_info(prob, info, b, mu_x, jac_x)
     lam = 0.0
     stalled = 0
     a = np.empty((npar, npar))
+    a2 = np.empty((npar, npar))
     step = np.empty(npar)
+    near = np.empty(npar)
     xn = np.empty(npar)
     d = np.empty(npar)
+    gr = np.empty(npar)
+    held = np.zeros(npar, np.bool_)
     for _ in range(max_iter):
         if join and f <= fb + join_nll:
             for i in range(npar):
@@ -125,27 +185,43 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
             if q < join_distance:
                 x_out[:] = x
                 return JOINED, f, calls
+        for i in range(npar):
+            held[i] = (x[i] <= lower[i] and g[i] > 0.0) or (x[i] >= upper[i] and g[i] < 0.0)
+            gr[i] = 0.0 if held[i] else g[i]
         accepted = False
         for _t in range(14):
-            for i in range(npar):
-                for j in range(npar):
-                    a[i, j] = info[i, j]
-                if lam != 0.0:
-                    a[i, i] = info[i, i] + lam * info[i, i]
-            if not solve_small(a, g, step):
+            _system(info, lam, held, a)
+            if not solve_small(a, gr, step):
                 if lam == 0.0:
                     lam = 1e-3
                     continue
                 x_out[:] = x
                 return NOT_CONVERGED, f, calls
+            use_near = False
+            if has_empty:
+                _system(b, lam, held, a2)
+                if solve_small(a2, gr, near):
+                    alpha = _to_wall(mu_x, jac_x, near)
+                    for i in range(npar):
+                        near[i] *= alpha
+                    use_near = True
             if lam == 0.0:
                 edm = 0.0
                 for i in range(npar):
-                    edm += g[i] * step[i]
-                if -0.5 * edm < edm_goal:
+                    edm += gr[i] * step[i]
+                promise = 0.0
+                if use_near:  # -g.s - s.A.s / 2 of the step cut at the wall
+                    for i in range(npar):
+                        t = 0.0
+                        for j in range(npar):
+                            t += a2[i, j] * near[j]
+                        promise -= gr[i] * near[i] + 0.5 * near[i] * t
+                if -0.5 * edm < edm_goal and promise < edm_goal:
                     x_out[:] = x
                     info_out[:, :] = info
                     return CONVERGED, f, calls
+            if use_near:
+                step[:] = near
             for i in range(npar):
                 xn[i] = min(max(x[i] + step[i], lower[i]), upper[i])
             x_last[:] = xn
@@ -161,6 +237,8 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
                 f = fn
                 g[:] = g_buf
                 info[:, :] = i_buf
+                if has_empty:
+                    _wall_info(prob, info, b, mu_x, jac_x)
                 lam = 0.0 if lam <= 1e-3 else lam / 10.0
                 accepted = True
                 break

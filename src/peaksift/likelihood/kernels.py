@@ -516,7 +516,7 @@ def covariance_small(hess, tol, out):  # pragma: no cover - compiled
 
 @njit(cache=True, nogil=True, error_model="numpy")
 def profile_one_yield(n, b, s, f, steps, y_out, gain_out):  # pragma: no cover - compiled
-    """:func:`.starts._profile_one_yield` row by row (the narrow candidates' yields): per
+    """:func:`.narrow._profile_one_yield` row by row (the narrow candidates' yields): per
     row of ``f (R, K)``, ``steps`` Newton steps of the yield of ``b + y f`` on the Fisher
     information, each step halved (at most 30 times) while a bin's expectation would drop
     below 1 % of its background; then the gain 2 dNLL against ``b``.  The same arithmetic

@@ -89,8 +89,10 @@ class SignalNuisances:
         if unknown:
             raise FitError(f"unknown signal nuisance {min(unknown)!r}; use one of "
                            f"{', '.join(NUISANCE_NAMES)}")
+        # the default kind is left out, so that equal settings are equal values
         return cls(**{k: float(v) for k, v in sizes.items()},
-                   kinds=tuple(sorted((kinds or {}).items())))
+                   kinds=tuple(sorted((k, v) for k, v in (kinds or {}).items()
+                                      if v != "gaussian")))
 
     # ---------------------------------------------------------------- layout
     def kind(self, name: str) -> str:

@@ -38,6 +38,8 @@ import numpy as np
 
 __all__ = [
     "MU_FLOOR",
+    "WALL_FRACTION",
+    "WALL_MU",
     "baker_cousins_chi2",
     "binned_gradient",
     "binned_information",
@@ -59,6 +61,16 @@ def use_compiled() -> bool:
 #: expectations are floored here before a logarithm: an empty prediction in a filled bin
 #: costs ~700 per event instead of an infinity that stops every minimiser
 MU_FLOOR = 1e-300
+
+#: an empty bin whose expectation is below this sits at the wall ``mu >= 0`` (a minimum
+#: pressed there is closer to it than the minimiser's EDM goal of 1e-7 in NLL); see
+#: :func:`.minimize.fisher_scoring`
+WALL_MU = 1e-8
+
+#: a step that would cross the wall is cut to this fraction of the way there (fraction to
+#: the boundary): each such step takes the bin 100x closer, so the EDM, which falls with
+#: the bin's expectation, meets its goal in a few steps
+WALL_FRACTION = 0.99
 
 
 def _scaled(n: np.ndarray, scale: Any) -> tuple[np.ndarray, Any]:

@@ -26,10 +26,13 @@ from ..shapes import Gaussian
 from .cost import BinnedCost
 from .minimize import damped_step, minimize
 from .model import Model
+from .narrow import NARROW_MARGIN, narrow_candidates
 from .poisson import binned_gradient, binned_information, binned_nll, use_compiled
+from .start_widths import other_widths, scan_width
 
 __all__ = [
     "CANDIDATE_MARGIN",
+    "background_counts",
     "background_start",
     "fit_starts",
     "narrow_candidates",
@@ -68,6 +71,24 @@ def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.n
     out = v.copy()
     out[free] = mo.x
     return out
+
+
+def background_counts(model: Model, edges: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """The background's expected counts in the bins ``edges`` at the full parameter vector
+    ``v``: from its compiled edge kernel where it has one (cached per read-only edges
+    array; ~5x faster than ``bin_fractions`` in numpy, equal within a few ulp), else
+    ``bin_fractions``."""
+    bshape, bsl, biy = model.blocks[-1]
+    p = [float(q) for q in v[bsl]]
+    if use_compiled():
+        from .kernels import edge_kernel
+
+        kern = edge_kernel(bshape, edges, model.window)
+        if kern is not None:
+            out = np.empty((kern.rows, edges.size))
+            if kern(p, out):
+                return np.maximum(out[0, 1:] - out[0, :-1], 0.0) * float(v[biy])
+    return bshape.bin_fractions(edges, p, model.window) * v[biy]
 
 
 def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarray, background: np.ndarray,
@@ -134,130 +155,6 @@ def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int, sign: 
     return [(int(i), float(q[i])) for i in peaks[:most]]
 
 
-#: the narrow peaks a binned fit also starts from: these widths in units of the local bin
-#: (a Gaussian of 0.3 bin centred in a bin keeps 90 % inside it, so the fit can still narrow
-#: it down to one bin or shift it to split between two; 1.2 bins spreads over about three),
-#: centred on every bin and on every edge between two bins
-NARROW_WIDTHS = (0.3, 0.6, 1.2)
-#: bins on each side of a narrow peak's bin that its fractions are computed on
-_STENCIL = 3
-#: narrow candidates of one sign are minimised while their gain (background held) trails
-#: the best one's by at most this in -2 ln L: the free fit's refit of the background adds a
-#: few units, most where the bins hold few events (an empty bin in a steep tail that gained
-#: 3.8 less than the best deficit with the background held ended 2.2 below it)
-NARROW_SPREAD = 6.0
-#: a narrow candidate is minimised only when its gain (background held) comes within this
-#: of the coarse scan's best gain: held or not, a peak narrower than a bin gains about the
-#: same (its bins are few), so unlike the coarse scan's candidates it needs no wide margin
-#: -- on a strong peak the narrow peak on top of it (gain 318 against 369) is not minimised
-NARROW_MARGIN = 2.0 * NARROW_SPREAD
-
-
-def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None,
-                      background: np.ndarray, q_best: float = 0.0,
-                      most: tuple[int, int] = (1, 3),
-                      exclude: tuple[tuple[float, float], ...] = (),
-                      ) -> list[tuple[float, float, float, float]]:
-    """The best ``most[0]`` separated narrow peaks above and ``most[1]`` below the
-    background (those within :data:`NARROW_SPREAD` of the best of their sign): a Gaussian of
-    :data:`NARROW_WIDTHS` bins at every bin centre and bin edge, its yield profiled on the
-    background expectation ``background`` held fixed (a few Newton steps on the bins within
-    :data:`_STENCIL` of it).  Returns ``[(mass, width, yield, gain in -2 ln L)]``, the larger
-    gain first; only gains within :data:`NARROW_MARGIN` of ``q_best``, and a position
-    whose nearby bins' Poisson deviances (they bound its gain) fall short of that is not
-    evaluated; nor is one inside an ``exclude`` interval (``(lo, hi)`` masses)."""
-    from scipy.special import ndtr
-
-    e = np.asarray(edges, float)
-    nb = e.size - 1
-    sc = np.ones(nb) if scale is None else np.broadcast_to(np.asarray(scale, float), (nb,))
-    nn = np.asarray(n, float)
-    bb = np.maximum(np.asarray(background, float), 1e-300)
-    k = _STENCIL
-    with np.errstate(divide="ignore", invalid="ignore"):
-        dev = 2.0 * sc * (bb - nn + np.where(nn > 0, nn * np.log(np.where(nn > 0, nn, 1.0) / bb),
-                                            0.0))
-    dev = np.where(np.isfinite(dev), dev, 0.0)
-    # padding: k empty bins of zero width on each side
-    ep = np.concatenate([np.full(k, e[0]), e, np.full(k, e[-1])])
-    npd = np.concatenate([np.zeros(k), nn, np.zeros(k)])
-    bpd = np.concatenate([np.ones(k), bb, np.ones(k)])
-    spd = np.concatenate([np.zeros(k), sc, np.zeros(k)])
-    cdev = np.concatenate([[0.0], np.cumsum(np.concatenate([np.zeros(k), dev, np.zeros(k)]))])
-    bound = cdev[2 * k + 1:] - cdev[:nb]  # deviances of bins j-k .. j+k
-    keep = (bound > 0) & (bound >= q_best - NARROW_MARGIN)
-    for lo, hi in exclude:
-        keep &= (e[1:] <= lo) | (e[:-1] >= hi)
-    rows = np.flatnonzero(keep)
-    if rows.size == 0:
-        return []
-    width = np.diff(e)[rows]
-    centre = 0.5 * (e[rows] + e[rows + 1])
-    # every (position, width) variant of every row in one stack: (variants x rows) rows
-    var = len(NARROW_WIDTHS)
-    pos = np.concatenate([centre] * var + [e[rows]] * var)  # centred in bin j, on its edge
-    w = np.concatenate([f_w * width for f_w in NARROW_WIDTHS] * 2)
-    tile = np.tile(rows, 2 * var)
-    sel = tile[:, None] + np.arange(2 * k + 1)  # padded bins j-k .. j+k
-    xe = ep[tile[:, None] + np.arange(2 * k + 2)]
-    f = np.diff(ndtr((xe - pos[:, None]) / w[:, None]), axis=1)
-    y, gain = _profile_one_yield(npd[sel], bpd[sel], spd[sel], f)
-    best = []
-    for sign, k_most in zip((1.0, -1.0), most):
-        g = np.where((sign * y > 0) & (pos >= e[0]) & (pos <= e[-1]), gain, -1.0)
-        order = np.argsort(-g, kind="stable")
-        taken: list[int] = []
-        for i in order[:8 * k_most]:
-            if (g[i] <= 0 or g[i] < q_best - NARROW_MARGIN
-                    or (taken and g[i] < g[taken[0]] - NARROW_SPREAD)):
-                break
-            if all(abs(pos[i] - pos[t]) > 2.0 * (w[i] + w[t]) for t in taken):
-                taken.append(int(i))
-                if len(taken) == k_most:
-                    break
-        for i in taken:
-            j = int(rows[i % rows.size])
-            best.append((float(pos[i]), float(w[i]), float(y[i]), float(g[i])))
-            if sign < 0 and nn[j] == 0 and pos[i] == centre[i % rows.size]:
-                # an empty bin: a dip's lowest point may be an expectation of 0 there, on
-                # the model's edge, which a minimiser reaches slowly from a wider peak (one
-                # stopped at 0.3 bin, 0.6 above it) -- or one reaching into the next bin
-                # (from all inside the bin, 0.4 above it): both are started
-                best.append((float(pos[i]), 0.1 * float(width[i % rows.size]),
-                             -0.98 * float(bb[j]), float(g[i])))
-    return sorted(best, key=lambda t: -t[3])
-
-
-def _profile_one_yield(n, b, s, f, steps: int = 8):
-    """(yield, gain 2 dNLL) of ``b + y f`` against ``b`` per row, the yield by Newton steps
-    on the Fisher information, each step halved while any bin's expectation would drop below
-    1 % of its background (an empty bin's optimum is an expectation of 0)."""
-    if use_compiled():  # the same steps row by row, compiled (~2 ms of numpy per fit)
-        from .kernels import profile_one_yield
-
-        y, gain = np.empty(n.shape[0]), np.empty(n.shape[0])
-        profile_one_yield(*(np.ascontiguousarray(a, float) for a in (n, b, s, f)), steps, y,
-                          gain)  # (rows, bins) each
-        return y, gain
-    y = np.zeros(n.shape[0])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        for _ in range(steps):
-            mu = b + y[:, None] * f
-            grad = (s * f * (1.0 - n / mu)).sum(1)
-            info = (s * f * f / mu).sum(1)
-            step = np.where(info > 0, -grad / info, 0.0)
-            for _ in range(30):
-                low = (b + (y + step)[:, None] * f < 0.01 * b).any(1)
-                if not low.any():
-                    break
-                step = np.where(low, 0.5 * step, step)
-            y = np.where(np.isfinite(step), y + step, y)
-        mu = b + y[:, None] * f
-        lr = np.where(n > 0, n * np.log(mu / b), 0.0)
-        gain = 2.0 * (s * (lr - (mu - b))).sum(1)
-    return y, np.where(np.isfinite(gain), gain, 0.0)
-
-
 def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
                base: np.ndarray, is_fixed: np.ndarray, given: dict[str, float],
                lower: np.ndarray, upper: np.ndarray, total: float,
@@ -275,8 +172,8 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     minimum with its free widths scaled.  ``given`` holds the parameters whose starts (or
     fixed values) the caller set; a given mass is not scanned (no dips, no spikes).
 
-    Lazy: the coarse scan runs at the first step and each start (a sideband fit) only when
-    ``make`` is called, so the other widths cost nothing once a valid minimum is found.
+    Lazy: the coarse scan runs at the first step and each start only when ``make`` is
+    called, so the other widths cost nothing once a valid minimum is found.
     """
     with np.errstate(all="ignore"):
         first = _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine)
@@ -303,28 +200,43 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     # A free width can have several minima around one excess (a narrow and a wide solution;
     # on 5 sigma toys 0.5 % of fits from one width stopped up to 0.49 in -2 ln L above the
     # lower one), so the other widths are minimised too whenever a width can vary (its
-    # start given or not).
+    # start given or not) -- in a binned fit of a Gaussian only where the profile over the
+    # width says another minimum can be (:func:`.start_widths.other_widths`)
     free_widths = [i for i in i_s if not is_fixed[i]]
     vary = bool(free_widths)
-    widths = [(masses[0], f, vary, True, plain) for f in (0.4, 2.5, 1.5)[:retries]]
+    widths = [(masses[0], f, vary, True, plain, k)
+              for k, f in enumerate((0.4, 2.5, 1.5)[:retries])]
     # the dips and spikes come after the other widths when those are essential (so those
     # scale the best peak's minimum, as without them), before them when they are not (the
     # fit stops at the first inessential start once it has a valid minimum)
+    candidates = [(*c, -1) for c in candidates]
+    others = [(*c, -1) for c in others]
     candidates += (widths + others) if vary else (others + widths)
     sl0 = model.blocks[0][1]
     other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
                    and names[i] not in given]
-    for mm, factor, essential, sideband, extra in candidates:
+    profile = _WidthProfile(model, fine, i_m, free_widths, is_fixed, lower, upper, retries)
+    for mm, factor, essential, sideband, extra, rank in candidates:
         def make(near: np.ndarray | None = None, mm: float = mm, factor: float = factor,
-                 sideband: bool = sideband, extra: dict = extra) -> np.ndarray:
+                 sideband: bool = sideband, extra: dict = extra,
+                 rank: int = rank) -> np.ndarray | None:
             if near is not None and factor != 1.0 and free_widths:
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
+                found = profile(near) if rank >= 0 else None
+                if found is not None:  # only where the width's profile has a minimum
+                    if rank >= len(found):
+                        return None
+                    factor = found[rank][0]
                 s = np.asarray(near, float).copy()
                 for i in free_widths:
                     s[i] = _clip(s[i] * factor, lower[i], upper[i])
                 for i in other_shape:  # tails etc. from their own starts, as a fresh start
                     s[i] = _clip(base[i], lower[i], upper[i])
+                if found is not None:  # the yields profiled at that width
+                    iy, biy = model.blocks[0][2], model.blocks[-1][2]
+                    s[iy] = _clip(found[rank][1], lower[iy], upper[iy])
+                    s[biy] = _clip(s[biy] * found[rank][2], lower[biy], upper[biy])
                 return s
             with np.errstate(all="ignore"):
                 return _one_start(model, edges, n, scale, base, vb, c, mm, factor, i_m, i_s,
@@ -332,6 +244,40 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                                   bkg_given or not sideband, **extra)
 
         yield essential, make
+
+
+class _WidthProfile:
+    """``profile(near)``: :func:`.start_widths.other_widths` at the minimum ``near`` (a full
+    vector) on the data's own bins, computed once per minimum; None where it does not
+    apply (an unbinned fit, several signals, a width other than one Gaussian sigma, a
+    yield held), and the other widths are then minimised from as they are."""
+
+    def __init__(self, model, fine, i_m, free_widths, is_fixed, lower, upper, most):
+        blocks = model.blocks
+        shape, sl, iy = blocks[0]
+        ok = (fine is not None and len(blocks) == 2 and type(shape) is Gaussian
+              and len(free_widths) == 1
+              and free_widths[0] == sl.start + shape.parameter_names.index("sigma")
+              and not is_fixed[i_m] and not is_fixed[iy] and not is_fixed[blocks[-1][2]])
+        self._args = (model, fine, i_m, free_widths[0], lower, upper, most) if ok else None
+        self._seen: dict = {}
+
+    def __call__(self, near: np.ndarray):
+        if self._args is None:
+            return None
+        key = np.asarray(near, float).tobytes()
+        if key not in self._seen:
+            model, (fe, fn, fsc), i_m, i_w, lower, upper, most = self._args
+            shape, _, iy = model.blocks[0]
+            try:
+                with np.errstate(all="ignore"):
+                    bexp = background_counts(model, fe, near)
+                    self._seen[key] = other_widths(
+                        shape, fe, fn, fsc, bexp, float(near[i_m]), float(near[i_w]),
+                        float(near[iy]), lower[i_w], upper[i_w], model.window, most)
+            except _NUMERIC:
+                self._seen[key] = None
+        return self._seen[key]
 
 
 def _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper):
@@ -352,11 +298,11 @@ def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fin
     yields = [iy for _, _, iy in blocks]
     if not any(not is_fixed[iy] for iy in yields[:-1]):
         return None
-    bshape, bsl, biy = blocks[-1]
+    bsl = blocks[-1][1]
     bkg_given = all(k in given for k in names[bsl])
     vb = _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper)
     c = 0.5 * (edges[1:] + edges[:-1])
-    bexp = bshape.bin_fractions(edges, list(vb[bsl]), model.window) * vb[biy]
+    bexp = background_counts(model, edges, vb)
     shape, sl, iy = blocks[0]
     i_m = sl.start + shape.parameter_names.index("mass")
     i_s = [sl.start + shape.parameter_names.index(k) for k in shape.width_parameters()]
@@ -383,11 +329,10 @@ def _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative, masses, w
     other start widths cover a narrower solution there (on a power law of 1,350 bins they
     were most of the narrow scan's cost, 0.75 of ~7 ms)."""
     fe, fn, fsc = fine
-    bshape, bsl, biy = model.blocks[-1]
     near = tuple((mm - 3 * width, mm + 3 * width) for mm in masses) if (
         q_top > CANDIDATE_MARGIN) else ()
     try:
-        b = bshape.bin_fractions(fe, list(vb[bsl]), model.window) * vb[biy]
+        b = background_counts(model, fe, vb)
         found = narrow_candidates(fe, fn, fsc, b, q_top, exclude=near)
     except _NUMERIC:
         return []
@@ -468,48 +413,6 @@ def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:
     return out
 
 
-#: the widths the start of a Gaussian peak is chosen among: its start width times these
-#: (steps of sqrt 2 from 1/16 to 2), those below half a bin of the coarse histogram left
-#: out (its bins cannot tell them apart: the narrowest would win on a bin's fluctuation)
-WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
-
-
-def _scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0):
-    """The width among ``width * WIDTH_FACTORS`` (inside ``[lo_w, hi_w]``) with the lowest
-    profile NLL of a Gaussian at ``mass`` on the background expectation ``bexp`` (signal
-    and background yields profiled, :func:`.kernels.profile_two_yields`); None for other
-    shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere."""
-    if type(shape) is not Gaussian or not use_compiled():
-        return None
-    from ..shapes.compiled import gaussian_rows
-    from .kernels import profile_two_yields
-
-    half_bin = 0.5 * (edges[-1] - edges[0]) / (edges.size - 1)  # of a mean bin
-    widths = width * WIDTH_FACTORS
-    widths = widths[(widths >= max(lo_w, half_bin)) & (widths <= hi_w)]
-    b0 = np.maximum(bexp, 1e-12)
-    btot = float(b0.sum())
-    k = widths.size
-    if not k or not btot > 0:
-        return None
-    lo, hi = float(window[0]), float(window[1])
-    x = np.minimum(np.maximum(edges, lo), hi)  # np.clip
-    rows = np.empty((k, x.size - 1))
-    at = np.array([mass])
-    for j in range(k):
-        if not gaussian_rows(x, at, float(widths[j]), lo, hi, rows[j:j + 1]):
-            return None
-    y = np.empty((k, 2))
-    y[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
-    y[:, 1] = btot
-    nll = np.empty(k)
-    sc = np.ones(b0.size) if scale is None else np.ascontiguousarray(scale, float)
-    profile_two_yields(np.ascontiguousarray(n, float), sc, rows, b0 / btot, y, nll, 25)
-    nll[~((sign * y[:, 0] > 0) & np.isfinite(nll))] = np.inf
-    best = int(np.argmin(nll))
-    return float(widths[best]) if math.isfinite(nll[best]) else None
-
-
 def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is_fixed,
                lower, upper, total, bkg_given, sign=1.0, narrow=None, amount=None):
     """One start at mass ``mm``: widths ``factor`` times their starts (or ``narrow``), the
@@ -517,7 +420,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     (``sign`` -1: the deficit) or ``amount``."""
     names = model.parameter_names
     shape, sl, iy = model.blocks[0]
-    bshape, bsl, biy = model.blocks[-1]
+    bsl, biy = model.blocks[-1][1:]
     s = vb.copy()
     s[i_m] = _clip(mm, lower[i_m], upper[i_m])
     for i in i_s:
@@ -533,7 +436,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
             s[biy] = sb[biy]
         except _NUMERIC:
             pass
-    bfr = bshape.bin_fractions(edges, list(s[bsl]), model.window) * s[biy]
+    bfr = background_counts(model, edges, s)
     sel = ~mask
     resid = np.clip(sign * (n[sel] - bfr[sel]), 0.0, None)
     i_sig = sl.start + shape.parameter_names.index("sigma") if (
@@ -545,8 +448,8 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         # power law of 1,350 bins 4 of the first start's 10 evaluations); else from the
         # second moment of the excess (truncated at +-3 start widths, so it errs low;
         # bounded to a factor 2 of the start)
-        w = _scan_width(shape, edges, n, scale, bfr, float(s[i_m]), float(s[i_sig]),
-                        lower[i_sig], upper[i_sig], model.window, sign)
+        w = scan_width(shape, edges, n, scale, bfr, float(s[i_m]), float(s[i_sig]),
+                       lower[i_sig], upper[i_sig], model.window, sign)
         if w is None:
             d2 = float(resid @ (c[sel] - s[i_m]) ** 2 / resid.sum())
             w = _clip(math.sqrt(max(d2, 1e-12)), 0.5 * s[i_sig], 2.0 * s[i_sig])

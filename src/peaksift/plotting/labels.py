@@ -28,13 +28,18 @@ class FigureLabels:
 
 def figure_labels(cfg: Any) -> FigureLabels:
     """:class:`FigureLabels` from a validated configuration: the ``[run]`` keys (name,
-    sqrt_s, channel; the luminosity is ``limits.luminosity``), the collections and the
-    pairing's charge (the channel when ``run.channel`` is not set)."""
+    sqrt_s, channel; the luminosity is ``limits.luminosity``), the collections -- or the
+    legs' mass hypotheses when the pairing has them (identified tracks: ``m_{KK}``, not the
+    tracks' ``m_{tt}``) -- and the pairing's charge (the channel when ``run.channel`` is not
+    set)."""
     if cfg is None:
         return FigureLabels()
     ob, pr = getattr(cfg, "objects", None), getattr(cfg, "pairing", None)
     first = getattr(ob, "collection", None)
     second = getattr(ob, "second_collection", None)
+    hyp = list(getattr(pr, "hypotheses", None) or ())
+    if hyp:
+        first, second = hyp[0], hyp[-1]
     charge = getattr(pr, "charge", None)
     run_cfg = getattr(cfg, "run", None)
     lim = getattr(cfg, "limits", None)

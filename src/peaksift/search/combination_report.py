@@ -16,6 +16,7 @@ from typing import Any
 
 from .._format import fixed, format_pm, number, p_value
 from ..report import CAUTION, blocks_html, blocks_markdown
+from ..stats.envelope_choice import read_channel_entries
 
 __all__ = ["combination_blocks", "combination_summary_text", "render_combination_html",
            "render_combination_markdown"]
@@ -116,13 +117,14 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
         else:
             rows.append([f"nuisance {name} (pull at the best mass)",
                          fixed(v.get("pull_at_best"), 2, signed=True)])
-    env = c.get("envelope") or {}
+    env = read_channel_entries(c.get("envelope")) or {}  # files of earlier layouts too
     if env and best.get("mass") is not None and c.get("masses"):
         j = min(range(len(c["masses"])), key=lambda i: abs(c["masses"][i] - best["mass"]))
         for name, e in env.items():
-            if e.get("functions"):
+            if e.get("chosen") and e["chosen"][j] is not None:
                 what = f"background function of {name} at the best mass (discrete profiling)"
-                rows.append([what, f"{e['chosen'][j]} (of {', '.join(e['functions'])})"])
+                rows.append([what, (f"{e['labels'][e['chosen'][j]]} (of "
+                                    f"{', '.join(e['labels'])})")])
     out.append(("table", ["quantity", "value"], rows))
     if "pvalue_combined" in fig:
         out.append(("figure", "pvalue_combined", ("Local p-value of each channel and of their "

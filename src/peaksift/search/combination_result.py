@@ -148,7 +148,7 @@ class CombinedSearchResult:
         out = {}
         for name, r in self.channels.items():
             block = (r.systematics or {}).get("envelope") or {}
-            if not (env.get(name) or {}).get("functions") or block.get("z_local") is None:
+            if name not in env or block.get("z_local") is None:
                 continue
             z = np.array([np.nan if v is None else v for v in block["z_local"]], float)
             out[name] = (np.asarray(block["masses"], float), stats.norm.sf(z))

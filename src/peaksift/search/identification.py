@@ -11,47 +11,81 @@ curve's scale (and, with ``fit_resolution``, the resolution) on the tracks of
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from .._values import FrozenValue
 from ..config import Config
 from ..errors import InputError
+
+if TYPE_CHECKING:  # energy_loss compiles kernels: imported when identification runs
+    from ..energy_loss import DedxFit, DedxResponse
 
 #: momentum axis of the figure's density, GeV (log-spaced)
 P_EDGES = np.geomspace(0.05, 20.0, 121)
 
 
-@dataclass(frozen=True)
-class DedxOutcome:
-    """The identification a search ran with: response, calibration fit and the density."""
+@dataclass(frozen=True, eq=False, repr=False)
+class DedxOutcome(FrozenValue):
+    """The identification a search ran with (results.json ``identification``): the response
+    the pairing used, the calibration fit that gave it (None when ``identification.scale``
+    was given), the number of tracks read, and the tracks' dE/dx-against-momentum density
+    (``counts[i, j]`` between ``p_edges[i:i+2]`` GeV and ``dedx_edges[j:j+2]``) that
+    :meth:`plot` draws.  Every attribute is a key of :meth:`to_dict`."""
 
-    response: Any
-    fit: Any
+    response: DedxResponse
+    calibration_fit: DedxFit | None
+    tracks_read: int
     p_edges: np.ndarray
     dedx_edges: np.ndarray
     counts: np.ndarray
-    tracks: int
+
+    def __repr__(self) -> str:
+        r, f = self.response, self.calibration_fit
+        scale = f"scale {f.scale} (fitted)" if f is not None else f"scale {r.scale:.5g} (given)"
+        return (f"DedxOutcome({r.material.name}, field {r.field!r}, {scale}, resolution "
+                f"{r.resolution:.3g}; {self.tracks_read} tracks read)")
+
+    def plot(self, path: Any = None, *, hypotheses: Sequence[str] = (),
+             band: float = 3.0) -> Any:
+        """The tracks' dE/dx against momentum with every hypothesis's expected curve and the
+        ±``band`` sigma band of ``hypotheses`` (the pairing's), as a matplotlib Figure drawn
+        without pyplot; saved to ``path`` when given."""
+        from ..plotting_dedx import draw_dedx
+
+        fig = draw_dedx(self, hypotheses=hypotheses, band=band)
+        if path is not None:
+            fig.savefig(path)
+        return fig
 
     def to_dict(self) -> dict[str, Any]:
-        r = self.response
-        out: dict[str, Any] = {"response": r.to_dict(), "tracks_read": int(self.tracks),
-                               "material_z_over_a": r.material.z_over_a,
-                               "material_mean_excitation_ev": r.material.mean_excitation_ev}
-        if self.fit is not None:
-            f = self.fit
-            out["calibration_fit"] = {
-                "scale": {"value": f.scale, "error": f.scale_error},
-                "resolution": {"value": f.resolution, "error": f.resolution_error}
-                if f.resolution_error > 0 else None,
-                "tracks_used": int(f.n_tracks),
-                "method": "Gaussian maximum likelihood of measured / Bethe mean, iterated "
-                          "3-sigma clip",
-            }
-        else:
-            out["calibration_fit"] = None
-        return out
+        """JSON-ready; the density's counts as whole numbers (track counts)."""
+        fit = self.calibration_fit
+        return {"response": self.response.to_dict(),
+                "calibration_fit": fit.to_dict() if fit is not None else None,
+                "tracks_read": int(self.tracks_read),
+                "p_edges": np.asarray(self.p_edges, float).tolist(),
+                "dedx_edges": np.asarray(self.dedx_edges, float).tolist(),
+                "counts": np.rint(self.counts).astype(np.int64).tolist()}
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> DedxOutcome:
+        """The outcome :meth:`to_dict` wrote."""
+        from ..energy_loss import DedxFit, DedxResponse
+
+        try:
+            fit = d["calibration_fit"]
+            return cls(DedxResponse.from_dict(d["response"]),
+                       DedxFit.from_dict(fit) if fit is not None else None,
+                       int(d["tracks_read"]),
+                       *(np.asarray(d[k], float) for k in ("p_edges", "dedx_edges", "counts")))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"DedxOutcome.from_dict: not an identification written by "
+                             f"DedxOutcome.to_dict (results.json 'identification'; {exc!r})"
+                             ) from None
 
 
 def dedx_identification(cfg: Config, *, progress: bool = False) -> DedxOutcome | None:
@@ -115,7 +149,7 @@ def dedx_identification(cfg: Config, *, progress: bool = False) -> DedxOutcome |
     if counts is None or d_edges is None:
         d_edges = np.linspace(0.0, 1.0, 2)
         counts = np.zeros((P_EDGES.size - 1, 1))
-    return DedxOutcome(response, fit, P_EDGES, d_edges, counts, tracks)
+    return DedxOutcome(response, fit, tracks, P_EDGES, d_edges, counts)
 
 
 def _chunks(cfg: Config, coll: str, fields: list[str], iter_events: Any) -> Any:

@@ -307,22 +307,26 @@ class SearchResult:
         """One figure of the search as a matplotlib Figure, drawn without pyplot (the
         user's backend is left alone) exactly as the run writes it: ``which`` is
         ``"spectrum"`` (the fit with pulls and numbers; while blinded the sideband fit),
-        ``"pvalue_scan"``, ``"limits"``, ``"candidates"``, ``"background_envelope"`` or
-        ``"calibration"`` (the calibration peak's fit, which the result keeps).
+        ``"pvalue_scan"``, ``"limits"``, ``"candidates"``, ``"background_envelope"``,
+        ``"calibration"`` (the calibration peak's fit, which the result keeps) or ``"dedx"``
+        (the dE/dx identification, :meth:`DedxOutcome.plot
+        <peaksift.search.identification.DedxOutcome.plot>`).
         Saved to ``path`` when given.  A result read back with :meth:`from_dict` has no
         event-level data: its blinded spectrum is the sideband fit's own figure and it has
         no candidates figure."""
         from .. import plotting
         from ..errors import InputError, closest
 
-        names = list(plotting.SEARCH_FIGURES)
+        names = [*plotting.SEARCH_FIGURES, "dedx"]
         if which not in names:
             hint = closest(which, names)
             raise InputError(f"SearchResult.plot: no figure {which!r}"
                              + (f"; did you mean {hint!r}?" if hint else "")
                              + f" (figures: {', '.join(names)})")
         labels = plotting.figure_labels(self.config)
-        if which == "spectrum" and self.fit is None and self.histogram is None:
+        if which == "dedx":
+            fig = self._dedx_figure()
+        elif which == "spectrum" and self.fit is None and self.histogram is None:
             fig = self.background_fit.plot(run=labels.run, symbol=labels.symbol, log=log)
         else:
             fig = plotting.search_figure(self, which, labels=labels, log=log)
@@ -332,11 +336,23 @@ class SearchResult:
                    "blinded (it shows the blinded window)" if which == "candidates" else
                    "no calibration fit (none configured, or a results.json written before "
                    "the result kept it)" if which == "calibration" else
+                   "no identification (none configured, or a results.json written before "
+                   "the result kept its density)" if which == "dedx" else
                    "no results for it")
             raise InputError(f"SearchResult.plot: this result has no {which!r} figure: {why}")
         if path is not None:
             fig.savefig(path)
         return fig
+
+    def _dedx_figure(self) -> Any:
+        """The identification figure from the record results.json keeps (None without)."""
+        from .identification import DedxOutcome
+
+        d = self.identification
+        if not d or "counts" not in d:
+            return None
+        return DedxOutcome.from_dict(d).plot(hypotheses=tuple(self.config.pairing.hypotheses),
+                                             band=self.config.identification.band)
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""

@@ -1,7 +1,7 @@
 """The trigger turn-on background: a Gaussian-CDF turn-on times an exponential fall.
 
 Its own module because its CDF (integration by parts, kept free of cancellation far from
-the turn-on) is a concept of its own; the falling families are in
+the turn-on) is a concept of its own; the falling families are listed in
 :mod:`peaksift.shapes.background`.
 """
 
@@ -13,7 +13,7 @@ import numpy as np
 from scipy import special
 
 from ._base import Parameter
-from .background import _Background
+from .background_base import _Background
 
 __all__ = ["TurnOn"]
 

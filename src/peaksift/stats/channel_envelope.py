@@ -35,6 +35,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import FitError
+from .envelope_choice import choice_entry
 from .joint import profile_joint
 from .joint_start import joint_start
 from .toys import profile_signal
@@ -234,18 +235,16 @@ def run_envelope_toy_scans(task: _EnvelopeToys) -> np.ndarray:
 
 
 def _entry(chans: list, env: dict, bl: np.ndarray) -> dict[str, Any]:
-    """The combination's ``envelope`` entry: per channel its candidates, penalty, free
-    parameters, the function at mu = 0 and at each mass (None where blinded)."""
+    """The combination's ``envelope`` entry: per channel with candidates its choice
+    (:func:`~peaksift.stats.envelope_choice.choice_entry`), the function at each mass None
+    where blinded."""
     out: dict[str, Any] = {}
     for c, ch in enumerate(chans):
-        labs = env["labels"][c]
+        if not ch.background_candidates:
+            continue
         chosen: list[Any] = [None] * bl.size
         for j, i in zip(np.flatnonzero(~bl), env["chosen"][:, c]):
-            chosen[j] = labs[int(i)] or None
-        out[ch.name] = {"functions": [lab for lab in labs if lab],
-                        "penalty": env["penalties"][c],
-                        "n_parameters": list(env["n_parameters"][c]),
-                        "null_choice": labs[env["null_choice"][c]] or None,
-                        "chosen": chosen}
+            chosen[j] = int(i)
+        out[ch.name] = choice_entry(env["labels"][c], env["n_parameters"][c],
+                                    env["penalties"][c], env["null_choice"][c], chosen)
     return out
-

@@ -37,6 +37,7 @@ from .channel_envelope import channel_candidates, null_choice
 from .channel_toys import run_joint_toy_limit
 from .channels import Channel, _full_model, _prepare, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
+from .envelope_choice import choice_entry, read_channel_entries
 from .joint import profile_joint
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
 from .toys import fit_background
@@ -146,7 +147,8 @@ class CombinedLimits(FrozenValue):
                        methods=tuple(c.get("methods") or ()),
                        method=str(c.get("method", "asymptotic")),
                        nuisances=tuple(c.get("nuisances") or ()),
-                       toys=dict(c.get("toys") or {}), envelope=d.get("envelope"))
+                       toys=dict(c.get("toys") or {}),
+                       envelope=read_channel_entries(d.get("envelope")))
         except (KeyError, TypeError, ValueError) as exc:
             raise FitError(f"not combined limits written by CombinedLimits.to_dict: {exc!r}"
                            ) from None
@@ -265,9 +267,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     triples, labels, counts, penalties = channel_candidates(
         chans, prepared, lambda ch: _prepare(ch, m_all, blind))
     null = null_choice([[t[0] for t in tr] for tr in triples], counts, penalties)
-    envelope = {ch.name: {"functions": list(labels[c]), "penalty": penalties[c],
-                          "n_parameters": [int(v) for v in counts[c]],
-                          "null_choice": labels[c][null[c]]}
+    envelope = {ch.name: choice_entry(labels[c], counts[c], penalties[c], null[c])
                 for c, ch in enumerate(chans) if ch.background_candidates} or None
     combos = list(itertools.product(*[range(len(tr)) for tr in triples]))
     pens = [sum(a * cnt[f] for a, cnt, f in zip(penalties, counts, combo)) for combo in combos]

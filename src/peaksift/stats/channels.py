@@ -48,6 +48,7 @@ from . import lee
 from .channel_envelope import envelope_of_channels, envelope_toy_scans
 from .channel_norms import signal_norms
 from .channel_toys import combined_toy_scans
+from .envelope_choice import read_channel_entries
 from .joint import profile_joint
 from .joint_start import joint_start
 from .scan import scan_prepared
@@ -447,7 +448,7 @@ class Combination(FrozenValue):
                 expected_cross_section=d.get("expected_cross_section"), unit=d["unit"],
                 notes=tuple(d.get("notes") or ()), nuisances=tuple(d.get("nuisances") or ()),
                 nuisance_values=arr(d.get("nuisance_values")), norms=arr(d.get("norms")),
-                envelope=d.get("envelope"))
+                envelope=read_channel_entries(d.get("envelope")))
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"Combination.from_dict: not a combination written by "
                            f"Combination.to_dict ({exc!r})") from None

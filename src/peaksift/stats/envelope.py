@@ -51,6 +51,7 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
+from .envelope_choice import choice_entry, read_choice_entry
 from .shape_profile import NUISANCE_REFINE, refine_toy_points, top_points
 from .significance import p_from_q0, z_from_q0
 from .toys import (
@@ -232,9 +233,9 @@ class EnvelopeResult(FrozenValue):
         ``None``; without the scans."""
         return plain({
             "masses": self.masses, "q0": self.q0, "z_local": self.z_local,
-            "p_local": self.p_local, "labels": list(self.labels),
-            "n_parameters": list(self.n_parameters), "penalty": self.penalty,
-            "chosen": [int(c) for c in self.chosen], "null_choice": int(self.null_choice),
+            "p_local": self.p_local,
+            **choice_entry(self.labels, self.n_parameters, self.penalty, self.null_choice,
+                           self.chosen),
             "candidate_q0": dict(self.candidate_q0),
             "nll_background": dict(self.nll_background), "signal_yield": self.signal_yield,
             "signal_yield_error": self.signal_yield_error, "best_index": int(self.best_index),
@@ -251,21 +252,17 @@ class EnvelopeResult(FrozenValue):
         try:
             # dicts written before the keys took the attribute names ("mass", "functions",
             # "spurious_weights", the chosen functions by label) still load
-            labels = tuple(d["labels"] if "labels" in d else d["functions"])
-
-            def index(c: Any) -> int:
-                return labels.index(c) if isinstance(c, str) else int(c)
-
+            choice = read_choice_entry(d)
             masses = arr(d["masses"] if "masses" in d else d["mass"])
             best = d.get("best_index")
             if best is None:
                 best = int(np.flatnonzero(masses == d["best"]["mass"])[0])
             spurious = d["spurious"] if "spurious" in d else d.get("spurious_weights")
             return cls(masses=masses, q0=arr(d["q0"]), z_local=arr(d["z_local"]),
-                       p_local=arr(d["p_local"]), labels=labels,
-                       n_parameters=tuple(d["n_parameters"]), penalty=float(d["penalty"]),
-                       chosen=np.array([index(c) for c in d["chosen"]], int),
-                       null_choice=index(d["null_choice"]),
+                       p_local=arr(d["p_local"]), labels=tuple(choice["labels"]),
+                       n_parameters=tuple(choice["n_parameters"]), penalty=choice["penalty"],
+                       chosen=np.array(choice["chosen"], int),
+                       null_choice=choice["null_choice"],
                        candidate_q0={k: arr(v) for k, v in d["candidate_q0"].items()},
                        nll_background=dict(d["nll_background"]),
                        signal_yield=arr(d["signal_yield"]),

@@ -167,9 +167,9 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
     klo = [specs[c][2].bounds(nm)[0] for c in shaped for nm in names[c]]
     khi = [specs[c][2].bounds(nm)[1] for c in shaped for nm in names[c]]
     lower = np.concatenate([np.full(off, -np.inf), np.full(nj, -10.0), klo]
-                           + [np.r_[-np.inf, m.lower] for m in models])
+                           + [a for m in models for a in ([-np.inf], m.lower)])
     upper = np.concatenate([np.full(off, np.inf), np.full(nj, 10.0), khi]
-                           + [np.r_[np.inf, m.upper] for m in models])
+                           + [a for m in models for a in ([np.inf], m.upper)])
     g0: list = []   # per channel its background fractions and derivatives at the start
     dg0: list = []
 
@@ -292,7 +292,14 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
                                 + [a for c in range(nc) for a in (b[c][redo, None],
                                                                   theta[c][redo])], axis=1)
             h[redo] = grad_hess(xr, tuple(a[redo] for a in r.state), redo)[1]
-        mu_err = first_error(h)
+        # the compiled loop inverts each row's Hessian as it ends (joint_driver)
+        done = getattr(r, "first_error", None)
+        if done is None:
+            mu_err = first_error(h)
+        else:
+            mu_err = np.array(done)
+            if redo.size:
+                mu_err[redo] = first_error(h[redo])
     factors = [kap[:, kfirst[c] - off - nj:][:, :len(names[c])] for c in range(nc)]
     return {"mu": mu, "mu_error": mu_err, "b": b, "theta": theta, "nu": nu, "nll": r.nll,
             "factors": factors, "converged": r.converged}

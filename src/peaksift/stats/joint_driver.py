@@ -22,7 +22,11 @@ q0 on the benchmark's two channels, where the 0.03-error stopping rule itself le
 Each accepted point otherwise costs one background evaluation and one pass of logarithms
 per channel, which is the fit's time (the Python glue was ~40% of it); most hypotheses
 started from :func:`peaksift.stats.joint_start.joint_start` end on their first step, so
-this removes ~45% of the evaluations (``docs/decisions/compiled-joint-loop.md``).
+this removes ~45% of the evaluations (``docs/decisions/compiled-joint-loop.md``).  An
+evaluation gives the NLL and the next step's sums in one pass over the bins, its logarithms
+from :func:`peaksift.shapes.compiled.vlog` (within 1 ulp of the library's, so the NLL
+differs from the Python loop's by rounding), and each row's error on the parameter of
+interest is inverted here as the row ends.
 
 It returns None whenever it cannot answer as the Python loop would (another background
 shape, a shape factor, a row kernel declining a trial point near its series, a singular
@@ -41,6 +45,7 @@ from typing import Any
 import numpy as np
 from numba import njit
 
+from ..shapes.compiled import vlog
 from .joint_kernels import lu_solve, model_change, row_background, small_step
 
 __all__ = ["compiled_joint"]
@@ -50,12 +55,20 @@ _KINDS = {"exponential": 1, "powerlaw": 2}
 DONE, DECLINED = 0, 1
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2,
-           lo, hi, boff, used, woff, scale, nn, ff, gg, tg, tdg, frac,
-           grad, direct, th):  # pragma: no cover - compiled
+           lo, hi, boff, used, woff, scale, nn, ff, gg, d2, tg, tdg, frac, grad, direct, th,
+           sm, lb):  # pragma: no cover - compiled
     """The summed NLL of row ``r`` at ``x`` (as the Python ``total``), the background
-    fractions and derivatives there into ``tg``/``tdg``; (nll, ok)."""
+    fractions and derivatives there into ``tg``/``tdg``, and in the same pass over the bins
+    each channel's sums for the gradient and Hessian there into ``sm (channels, 10)``
+    (:func:`_grad_hess` assembles them; each sum in the order of
+    :func:`peaksift.stats.joint_kernels.channel_sums`); (nll, ok).  One evaluation instead
+    of a pass for the NLL and one for the sums: most rows end after one evaluation (module
+    guide), whose sums the next Newton step needs.  ``lb (3, bins)``: work rows for the
+    expectations, their logarithms (:func:`peaksift.shapes.compiled.vlog`, within 1 ulp of
+    the library's) and inverses, computed in a loop that vectorises (the library's
+    logarithm, one call per bin, was a third of the joint fit's time)."""
     nc = kind.size
     out = 0.0
     if nj:
@@ -69,12 +82,15 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         b0, b1 = boff[c], boff[c + 1]
         fc = ff[c]
         nc_ = nn[c]
+        dc = d2[c]
         rn = r if nc_.shape[0] > 1 else 0
-        if kpar[c]:
+        rd = r if dc.shape[0] > 1 else 0
+        kq = kpar[c]
+        if kq:
             w0, w1 = woff[c], woff[c + 1]
             ok = row_background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
-                             lo[c], hi[c], x[first[c] + 1], used[b0:b1], scale[w0:w1],
-                             frac, grad, tg[b0:b1], tdg[b0:b1], direct[c], th)
+                                lo[c], hi[c], x[first[c] + 1], used[b0:b1], scale[w0:w1],
+                                frac, grad, tg[b0:b1], tdg[b0:b1], direct[c], th)
             if not ok:
                 return 0.0, False
         else:
@@ -88,25 +104,77 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
                 t += x[off + j] * a_norm[c, j]
             e = math.exp(t)
         s = mu * kc[c, r] * e
+        s2 = mu * (kc[c, r] * e)     # the gradient's signal (as _grad_hess forms it)
         b = x[first[c]]
         acc = 0.0
+        bad = False
+        a0 = 0.0
+        a1 = 0.0
+        a2 = 0.0
+        c0 = 0.0
+        c1 = 0.0
+        q0 = 0.0
+        q1 = 0.0
+        q2 = 0.0
+        h0 = 0.0
+        h1 = 0.0
+        fr_ = fc[r]
+        # the expectations, their logarithms and inverses first, in a loop that vectorises
+        # (vlog: within 1 ulp of the library's log); then the sums in their order
+        for j in range(b1 - b0):
+            nu = s * fr_[j] + b * tg[b0 + j]
+            lb[0, j] = nu
+            lb[1, j] = vlog(max(1e-300, nu))
+            lb[2, j] = 1.0 / max(s2 * fr_[j] + b * tg[b0 + j], 1e-100)
         for i in range(b0, b1):
-            nu = s * fc[r, i - b0] + b * tg[i]
-            if not nu > 0.0:
-                acc = math.inf
-                break
-            nu = max(nu, 1e-300)
+            fi = fr_[i - b0]
+            gi = tg[i]
             ni = nc_[rn, i - b0]
-            acc += nu - ni * math.log(nu) if ni != 0.0 else nu
-        out = out + acc
+            nu = lb[0, i - b0]
+            if not bad:
+                if not nu > 0.0:
+                    bad = True
+                else:
+                    nu1 = max(nu, 1e-300)
+                    acc += nu1 - ni * lb[1, i - b0] if ni != 0.0 else nu1
+            inv = lb[2, i - b0]
+            ratio = ni * inv
+            w = 1.0 - ratio
+            v = ratio * inv
+            fv = fi * v
+            a0 += fi * w
+            a1 += fi * fv
+            a2 += gi * fv
+            c0 += gi * w
+            c1 += gi * gi * v
+            if kq:
+                dk = tdg[i]
+                dv = dk * v
+                q0 += fi * dv
+                q1 += gi * dv
+                q2 += dk * w
+                h0 += dk * v * dk
+                h1 += dc[rd, i - b0] * w
+        sm[c, 0] = a0
+        sm[c, 1] = a1
+        sm[c, 2] = a2
+        sm[c, 3] = c0
+        sm[c, 4] = c1
+        sm[c, 5] = q0
+        sm[c, 6] = q1
+        sm[c, 7] = q2
+        sm[c, 8] = h0
+        sm[c, 9] = h1
+        out = out + (math.inf if bad else acc)
     return out, True
 
 
 @njit(cache=True, nogil=True)
-def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff, nn, ff,
-               g, dg, d2, grad, hess, pos, coef, aj):  # pragma: no cover - compiled
-    """Gradient and exact Hessian of row ``r`` at ``x`` (as the Python ``_grad_hess``);
-    ``pos``, ``coef``, ``aj``: work buffers of ``x.size``."""
+def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm, grad, hess,
+               pos, coef, aj):  # pragma: no cover - compiled
+    """Gradient and exact Hessian of row ``r`` at ``x`` (as the Python ``_grad_hess``) from
+    the channels' sums ``sm`` that :func:`_value` left there; ``pos``, ``coef``, ``aj``:
+    work buffers of ``x.size``."""
     nc = kpar.size
     p = x.size
     for i in range(p):
@@ -115,12 +183,6 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
             hess[i, j] = 0.0
     mu = mu_fixed[r] if fixed else x[0]
     for c in range(nc):
-        b0, b1 = boff[c], boff[c + 1]
-        fc = ff[c]
-        nc_ = nn[c]
-        dc = d2[c]
-        rn = r if nc_.shape[0] > 1 else 0
-        rd = r if dc.shape[0] > 1 else 0
         e = 1.0
         if nj:
             t = 0.0
@@ -143,39 +205,9 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
                 aj[na] = a_norm[c, j]
                 nsig += 1
                 na += 1
-        # the sums of channel_sums, each in its order, in one pass over the bins
         kq = kpar[c]
-        a0 = 0.0
-        a1 = 0.0
-        a2 = 0.0
-        c0 = 0.0
-        c1 = 0.0
-        e0 = 0.0
-        e1 = 0.0
-        e2 = 0.0
-        h0 = 0.0
-        h1 = 0.0
-        for i in range(b0, b1):
-            fi = fc[r, i - b0]
-            gi = g[i]
-            inv = 1.0 / max(s * fi + br * gi, 1e-100)
-            ratio = nc_[rn, i - b0] * inv
-            w = 1.0 - ratio
-            v = ratio * inv
-            fv = fi * v
-            a0 += fi * w
-            a1 += fi * fv
-            a2 += gi * fv
-            c0 += gi * w
-            c1 += gi * gi * v
-            if kq:
-                dk = dg[i]
-                dv = dk * v
-                e0 += fi * dv
-                e1 += gi * dv
-                e2 += dk * w
-                h0 += dk * v * dk
-                h1 += dc[rd, i - b0] * w
+        a0, a1, a2, c0, c1 = sm[c, 0], sm[c, 1], sm[c, 2], sm[c, 3], sm[c, 4]
+        e0, e1, e2, h0, h1 = sm[c, 5], sm[c, 6], sm[c, 7], sm[c, 8], sm[c, 9]
         # the channel's block over (signal columns, b, theta), scattered into the row's
         bi = first[c]
         for q in range(nsig):
@@ -214,10 +246,32 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, bof
 
 
 @njit(cache=True, nogil=True)
+def _first_error(hess, a, rhs, col):  # pragma: no cover - compiled
+    """:func:`peaksift.likelihood.first_error` of one row: ``sqrt((H + 1e-12 tr|H| I)^-1_00)``
+    by :func:`~peaksift.stats.joint_kernels.lu_solve` (``a``, ``rhs``, ``col``: work
+    buffers); NaN where it is not positive or the system is singular."""
+    p = hess.shape[0]
+    tr = 0.0
+    for i in range(p):
+        tr += abs(hess[i, i])
+    reg = 1e-12 * tr
+    for i in range(p):
+        for j in range(p):
+            a[i, j] = hess[i, j]
+        a[i, i] += reg
+        rhs[i] = 0.0
+    rhs[0] = -1.0   # lu_solve gives -a^-1 rhs
+    if not lu_solve(a, rhs, col):
+        return math.nan
+    v = col[0]
+    return math.sqrt(v) if v > 0.0 else math.nan
+
+
+@njit(cache=True, nogil=True)
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
            hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
            step_tol, nll_tol, slack, tries, predict, hess_out, converged,
-           direct):  # pragma: no cover
+           direct, first_err):  # pragma: no cover
     """The loop of :func:`peaksift.likelihood.minimize_stacked` on every row of the joint
     problem from ``x`` (its start); ``x``, ``nll`` and ``gg``/``dgg`` (the state:
     background fractions and derivatives; ``gg`` holds the fixed backgrounds' fractions on
@@ -229,8 +283,12 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         nw = max(nw, woff[c + 1] - woff[c])
     frac = np.empty((1, nw))
     gbuf = np.empty((1, nw))
-    tg = np.empty(ntot)
-    tdg = np.empty(ntot)
+    # the current point's and a trial's fractions, derivatives and sums: an accepted trial
+    # becomes the current point by swapping the index ``cur``, no copy
+    gb = np.empty((2, ntot))
+    dgb = np.empty((2, ntot))
+    sm = np.empty((2, kind.size, 10))
+    lb = np.empty((3, nw))
     grad = np.empty(p)
     hess = np.empty((p, p))
     err = np.empty(p)
@@ -243,24 +301,23 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
     aj = np.empty(p)
     for r in range(nb):
         xr = x[r].copy()
+        cur = 0
         # the start (as the Python loop's caller: a free fit whose start has no finite
         # NLL starts at mu = 0 instead)
         fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind,
-                        eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, tg, tdg,
-                        frac, gbuf, direct, th)
+                        eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, d2,
+                        gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb)
         if ok and not fixed and not math.isfinite(fr):
             xr[0] = 0.0
             fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
                             kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg,
-                            tg, tdg, frac, gbuf, direct, th)
+                            d2, gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb)
         if not ok:
             return DECLINED
-        g = tg.copy()
-        dg = tdg.copy()
         lam = 1e-3
         for _it in range(steps):
-            _grad_hess(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, boff,
-                       nn, ff, g, dg, d2, grad, hess, pos, coef, aj)
+            _grad_hess(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
+                       sm[cur], grad, hess, pos, coef, aj)
             hess_out[r] = hess
             for i in range(p):
                 err[i] = math.sqrt(abs(1.0 / hess[i, i]))
@@ -296,9 +353,11 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                         done_row = True
                         accepted = True
                         break
+                nxt = 1 - cur
                 tn, ok = _value(trial, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first,
                                 kpar, kind, eoff, e1, e2, lo, hi, boff, used, woff, scale,
-                                nn, ff, gg, tg, tdg, frac, gbuf, direct, th)
+                                nn, ff, gg, d2, gb[nxt], dgb[nxt], frac, gbuf, direct, th,
+                                sm[nxt], lb)
                 if not ok:
                     return DECLINED
                 good = tn <= fr + slack
@@ -308,8 +367,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 if good:
                     xr[:] = trial
                     fr = tn
-                    g[:] = tg
-                    dg[:] = tdg
+                    cur = nxt
                     lam = max(lam * 0.1, 1e-9)
                     accepted = True
                     break
@@ -319,8 +377,10 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 break
         x[r] = xr
         nll[r] = fr
-        gg[r] = g
-        dgg[r] = dg
+        gg[r] = gb[cur]
+        dgg[r] = dgb[cur]
+        if not fixed and steps > 0:
+            first_err[r] = _first_error(hess_out[r], a, grad, step)
     return DONE
 
 
@@ -344,18 +404,27 @@ def _rows_of(x: np.ndarray, nb: int) -> np.ndarray:
     return np.ascontiguousarray(x[:1] if nb > 1 and x.strides[0] == 0 else x)
 
 
-#: the per-model-set arrays of the compiled loop, kept for the last few sets (a root search
-#: fits the same models tens of times); each entry holds its models so their ids stay valid
-_STATIC: dict[tuple, tuple] = {}
+#: the per-model-set arrays of the compiled loop, kept for the last few sets by what they
+#: are made of (a root search fits the same models tens of times; a combination's scan,
+#: its limits and a repeated combine make new models of the same channels)
+_STATIC: dict[tuple, tuple | None] = {}
+
+
+def _static_key(models: list) -> tuple:
+    """Everything :func:`_static`'s arrays depend on: per model its background's class and
+    order, its number of shape parameters, window, bin edges, used bins and bin scales."""
+    return tuple((type(m.background), getattr(m.background, "order", None), m.theta.size,
+                  tuple(m.window), m.edges.dtype.str, m.edges.tobytes(), m.used.dtype.str,
+                  m.used.tobytes(), None if m.bin_scale is None
+                  else np.asarray(m.bin_scale, float).tobytes()) for m in models)
 
 
 def _static(models: list) -> tuple | None:
     """(kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, kpar, direct) of a set of
     channel models, or None when one has no compiled background."""
-    key = tuple(id(m) for m in models)
-    hit = _STATIC.get(key)
-    if hit is not None:
-        return hit[1]
+    key = _static_key(models)
+    if key in _STATIC:
+        return _STATIC[key]
     kin = [_inputs(m) for m in models]
     if any(v is None for v in kin):
         out = None
@@ -379,7 +448,7 @@ def _static(models: list) -> tuple | None:
                          for m, w in zip(models, wsz)], np.bool_))
     if len(_STATIC) >= 8:
         _STATIC.pop(next(iter(_STATIC)))
-    _STATIC[key] = (tuple(models), out)
+    _STATIC[key] = out
     return out
 
 
@@ -430,17 +499,19 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     out_nll = np.empty(nb)
     hess = np.zeros((nb, p, p))
     conv = np.zeros(nb, bool)
+    err = np.full(nb, np.nan)
     status = _drive(bool(fixed), np.ascontiguousarray(np.broadcast_to(mu, (nb,)), float),
                     0 if fixed else 1, nj, aux, an, kc, np.asarray(first, np.int64), kpar,
                     kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, dgg,
                     d2c, x, out_nll,
                     np.asarray(lower, float), np.asarray(upper, float), int(steps),
                     -1.0 if step_tol is None else float(step_tol), float(nll_tol),
-                    float(slack), int(tries), bool(predict), hess, conv, direct)
+                    float(slack), int(tries), bool(predict), hess, conv, direct, err)
     if status != DONE:
         return None
     spans = list(itertools.pairwise(boff))
     state = tuple(gg[:, a:b] for a, b in spans) + tuple(
         dgg[:, a:b][:, None, :] if kq else np.zeros((nb, 0, b - a))
         for (a, b), kq in zip(spans, kpar))
-    return SimpleNamespace(x=x, nll=out_nll, state=state, hessian=hess, converged=conv)
+    return SimpleNamespace(x=x, nll=out_nll, state=state, hessian=hess, converged=conv,
+                           first_error=err)

@@ -349,6 +349,11 @@ def upper_limits(
                      else m_all[np.linspace(0, nm - 1, 3).round().astype(int)])
     methods = ["asymptotic"] * nm
     toy_info: dict[str, Any] = {}
+    if want and not int(toys) >= 1:
+        raise FitError(f"toy-based limits are needed at {len(want)} mass(es) (below "
+                       f"low_count_background = {low_count_background:g} background events "
+                       f"under the signal, or method={method!r}) but toys={toys!r}; pass "
+                       "toys >= 100, or method='asymptotic' (those masses are then flagged)")
     if want:
         _toy_limits(want, m_all, bl, model, conv_eff, delta, kind or "lognormal", cl, toys,
                     seed, obs, exp_lim, methods, toy_info, notes, progress, executor)
