@@ -216,7 +216,9 @@ def _minor_marks(ax: Any, axis: Any) -> Any:
     from matplotlib.ticker import NullLocator
 
     locator = axis.get_minor_locator()
-    if isinstance(locator, NullLocator) or not (ax.axison and axis.get_visible()):
+    if ax.name != "rectilinear" or isinstance(locator, NullLocator):
+        return None  # (a polar axis turns each tick's marker: left to matplotlib)
+    if not (ax.axison and axis.get_visible()):
         return None
     locs = np.asarray(axis.get_minorticklocs(), dtype=float)
     if locs.size == 0 or any(axis.minor.formatter.format_ticks(locs)):
