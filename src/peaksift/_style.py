@@ -489,7 +489,10 @@ def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: 
     cols = list(zip(*rows))
     widths = [max(text_width(c, size) for c in col) if any(col) else 0.0 for col in cols]
     inner = sum(widths) + gap * (len(widths) - 1)
-    cap_w = text_width(caption, size - 0.6) if caption else 0.0
+    # a long plain-text line renders up to ~4% wider on the Agg canvas (hinting) than its
+    # path measures (mathtext measures true)
+    cap_w = max((text_width(c, size - 0.6) * (1.0 if "$" in c else 1.04)
+                 for c in caption.split("\n")), default=0.0) if caption else 0.0
     title_w = text_width(title, size, "bold") if title else 0.0
     inner = max(inner, cap_w, title_w)
     height = value_table_height(len(rows), caption=caption, title=title)
