@@ -140,10 +140,9 @@ def _segments_touching(fig, ax, artist):
     (bars,) = [c for c in ax.containers if hasattr(c, "has_yerr")]
     seg = np.array([s for s in bars.lines[2][0].get_segments() if len(s) == 2], float)
     curves = [ln.get_xydata() for ln in ax.get_lines() if len(ln.get_xdata()) > 50]
-    pts = np.concatenate([seg[:, 0], seg[:, 1], *curves])  # both ends of a bar ...
+    # both ends of each error bar; a curve's samples as segments of no length
     lo = ax.transData.transform(np.concatenate([seg[:, 0], *curves]))
-    hi = ax.transData.transform(np.concatenate([seg[:, 1], *curves]))  # ... a curve: lo = hi
-    assert pts.shape[0] == lo.shape[0] + seg.shape[0]
+    hi = ax.transData.transform(np.concatenate([seg[:, 1], *curves]))
     touch = ((lo[:, 0] >= box.x0) & (lo[:, 0] <= box.x1)
              & (np.maximum(lo[:, 1], hi[:, 1]) >= box.y0)
              & (np.minimum(lo[:, 1], hi[:, 1]) <= box.y1))
