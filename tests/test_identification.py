@@ -303,6 +303,16 @@ def test_hadron_search_reports_the_identification(tmp_path, demo_tracks):
     assert abs(fit["value"] - want) < 4 * fit["error"] + 0.003 * want  # as above
     cal = d["calibration"]
     assert cal["particle"] == "phi(1020)" and abs(cal["shift_sigma"]) < 2
+    # the free fit, its Voigt sigma constrained to the resolution model, is valid and measures
+    # the natural width: within 3 standard errors of the phi(1020)'s tabulated width (the
+    # particle package's PDG tables, 4.249 MeV; the demo generated that width)
+    from particle import Particle
+
+    free = d["fit"]
+    width = free["parameters"]["width"]
+    assert free["valid"] and free["settings"]["sigma_from_resolution"]["mode"] == "constrained"
+    pdg = Particle.from_name("phi(1020)").width / 1000.0  # MeV -> GeV
+    assert 0 < width["error"] < 0.001 and abs(width["value"] - pdg) < 3 * width["error"]
     assert "dedx" in res.figures and (tmp_path / "out" / "figures" / "dedx.png").is_file()
     md = (tmp_path / "out" / "report.md").read_text()
     assert "## Particle identification (dE/dx)" in md and "figures/dedx.png" in md

@@ -129,3 +129,54 @@ def test_the_blinded_spectrum_legend_covers_no_data_point(shape, log):
              & (np.maximum(lo[:, 1], hi[:, 1]) >= box.y0)
              & (np.minimum(lo[:, 1], hi[:, 1]) <= box.y1))
     assert ok.sum() > 40 and not np.any(touch[ok])
+
+
+def _segments_touching(fig, ax, artist):
+    """How many of the drawn error bars and curve samples (read back from the axes, in
+    display coordinates) lie in ``artist``'s box, measured on the figure's renderer."""
+    import numpy as np
+
+    box = artist.get_window_extent(fig.canvas.get_renderer())
+    (bars,) = [c for c in ax.containers if hasattr(c, "has_yerr")]
+    seg = np.array([s for s in bars.lines[2][0].get_segments() if len(s) == 2], float)
+    curves = [ln.get_xydata() for ln in ax.get_lines() if len(ln.get_xdata()) > 50]
+    # both ends of each error bar; a curve's samples as segments of no length
+    lo = ax.transData.transform(np.concatenate([seg[:, 0], *curves]))
+    hi = ax.transData.transform(np.concatenate([seg[:, 1], *curves]))
+    touch = ((lo[:, 0] >= box.x0) & (lo[:, 0] <= box.x1)
+             & (np.maximum(lo[:, 1], hi[:, 1]) >= box.y0)
+             & (np.minimum(lo[:, 1], hi[:, 1]) <= box.y1))
+    return int(np.count_nonzero(touch)), seg.shape[0]
+
+
+@pytest.mark.parametrize("peak", [125.0, 152.5, 185.0])
+def test_the_fit_values_table_covers_no_data_point_or_curve(peak):
+    """The fit figure's table of fitted numbers (and its legend) touch none of the error bars
+    and none of the drawn curves' samples, wherever a tall peak sits (on the left as the
+    hadron demo's phi(1020), in the middle, or under the legend on the right); the peak
+    here is narrower than the bins, so the fit is not valid and its reason sits in the
+    table too: each of its text lines lies inside the table's box, none cut off.  Read back
+    from the axes in display coordinates (common practice: matplotlib's window extents)."""
+    import numpy as np
+    from matplotlib.patches import FancyBboxPatch
+
+    from peaksift import MassHistogram
+
+    rng = np.random.default_rng(3)
+    h = MassHistogram(bins=90, range=(110.0, 200.0)).fill(
+        np.r_[110 + rng.exponential(30.0, 3000), np.full(300, peak)])
+    fit = peaksift.fit(h, "gaussian", "exponential", start={"mass": peak, "sigma": 2.0})
+    assert not fit.valid  # a spike inside one bin: sigma at its floor
+    fig = fit.plot()
+    ax = fig.axes[0]
+    (table,) = [p for p in ax.patches if isinstance(p, FancyBboxPatch)]
+    for artist in (table, ax.get_legend()):
+        touching, bars = _segments_touching(fig, ax, artist)
+        assert bars == 90 and touching == 0
+    renderer = fig.canvas.get_renderer()
+    box = table.get_window_extent(renderer)
+    lines = [t for t in ax.texts if "not valid" in t.get_text() or "floor" in t.get_text()]
+    assert lines and "sigma" in lines[0].get_text() and "floor" in lines[-1].get_text()
+    for t in lines:
+        e = t.get_window_extent(renderer)
+        assert box.x0 <= e.x0 and e.x1 <= box.x1 and box.y0 <= e.y0 and e.y1 <= box.y1

@@ -1,5 +1,6 @@
 """The fit figure: data with Poisson error bars, the model, its components, pulls beneath,
-and the fitted numbers as a small table under the legend.
+and the fitted numbers as a small table under the legend (or beside it; neither covers a
+point, an error bar or a curve: the y axis is raised when no corner is free).
 
 :func:`fit_figure` draws on a new Figure made without pyplot (or on one you pass), so the
 user's matplotlib backend is never touched.  :func:`parameter_rows` gives the table's rows
@@ -60,33 +61,45 @@ def gof_caption(result: FitResult) -> str:
             f"p = {p_value(result.gof_p_value)}")
 
 
-def _table_corner(ax: Any, legend: Any, table_h: float, x: np.ndarray, y_top: np.ndarray,
-                  top: float) -> str:
-    """Where the value table goes: under the legend (upper right) when the data there stay
-    below it, else the upper left when free there, else under the legend with the y axis
-    raised until the data clear it."""
-    renderer = ax.figure.canvas.get_renderer()
-    box = ax.get_window_extent(renderer)
-    to_pt = 72.0 / ax.figure.dpi
-    ax_h = box.height * to_pt
-    leg_h = (box.y1 - legend.get_window_extent(renderer).y0) * to_pt
-    lo, hi = ax.get_xlim()
-    ymax = ax.get_ylim()[1]
-    span = 0.42 * (hi - lo)  # about the table's width
+def invalid_caption(problems: Any, width: int = 52) -> str:
+    """The reasons a fit is not valid, short enough to read whole in the value table: each
+    reason up to its remedy (the text after a colon), without its parentheses and its
+    second clause (the full text is in the summary, the report and results.json), wrapped
+    at ``width`` characters."""
+    import re
+    import textwrap
 
-    def highest(sel: np.ndarray) -> float:
-        return float(np.max(y_top[sel])) / ymax if np.any(sel) else 0.0
+    short = []
+    for p in problems:
+        reason = re.sub(r"\s*\([^)]*\)", "", str(p).split(":")[0]).split(", ")[0].strip()
+        short.append(reason or str(p))
+    return "\n".join(textwrap.wrap("fit not valid: " + "; ".join(short), width))
 
-    right = highest(x >= hi - span)
-    left = highest(x <= lo + span)
-    if right < 1.0 - (leg_h + table_h + 8.0) / ax_h:
-        return "right"
-    if left < 1.0 - (table_h + 12.0) / ax_h:
-        return "left"
-    free = 1.0 - (leg_h + table_h + 8.0) / ax_h
-    if free > 0.2:
-        ax.set_ylim(0.0, ymax * right / free * 1.05)
-    return "right"
+
+def _place_table(ax: Any, legend: Any, draw: Any, keep: tuple[np.ndarray, ...]) -> None:
+    """The value table where neither it nor the legend covers a point, an error bar or a
+    curve (``keep``: segments for :func:`peaksift._style.touched`): under the legend
+    (upper right), else the upper left corner; when neither is free, under the legend with
+    the y axis raised (by 10% of its span a step) until both clear everything.
+    ``draw(corner)`` draws the table there and returns its artists."""
+    from .._style import touched
+
+    def clear(arts: list[Any]) -> bool:
+        return (touched(ax, legend, *keep) == 0
+                and (not arts or touched(ax, arts[0], *keep) == 0))
+
+    for corner in ("right", "left"):
+        arts = draw(corner)
+        if clear(arts):
+            return
+        for a in arts:
+            a.remove()
+    arts = draw("right")
+    for _ in range(60):
+        if clear(arts):
+            return
+        y0, y1 = ax.get_ylim()
+        ax.set_ylim(y0, y1 + 0.1 * (y1 - y0))
 
 
 def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
@@ -116,7 +129,6 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
         figure_style,
         new_figure,
         value_table,
-        value_table_height,
     )
 
     e, n = result.edges, result.observed
@@ -161,15 +173,21 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
         leg = a1.legend(loc="upper right")
         caption = gof_caption(result)
         if not result.valid:
-            caption += "\nFIT NOT VALID: " + "; ".join(result.problems)[:60]
+            caption += "\n" + invalid_caption(result.problems)
         shapes = " + ".join(s.name for s in result.model.signals)
         rows = parameter_rows(result)
         title_t = f"fit: {shapes} + {result.model.background.name}"
-        h_table = value_table_height(len(rows), caption=caption, title=title_t)
-        corner = _table_corner(a1, leg, h_table, c, (n + hi_err) * scale_n, top)
-        value_table(a1, rows, caption=caption, below=leg if corner == "right" else None,
-                    corner=corner, title=title_t)
         draw_header(a1, run, note or title or "")
+        # what neither the legend nor the table may cover: the points with their error
+        # bars and every curve drawn (its samples)
+        curves = [total, *comps.values()]
+        drawn = np.concatenate([v * ref_bw for v in curves])
+        keep = (np.concatenate([c, np.tile(xs, len(curves))]),
+                np.concatenate([(n - lo_err) * scale_n, drawn]),
+                np.concatenate([(n + hi_err) * scale_n, drawn]))
+        _place_table(a1, leg, lambda corner: value_table(
+            a1, rows, caption=caption, below=leg if corner == "right" else None,
+            corner=corner, title=title_t), keep)
         a2.axhline(0, color=COLORS["background"], lw=0.8)
         for lvl in (-2, 2):
             a2.axhline(lvl, color=COLORS["background"], lw=0.6, ls=":")

@@ -9,26 +9,13 @@ from typing import Any
 
 import numpy as np
 
+from .._style import touched
+
 __all__ = ["place_legend"]
 
 #: the places tried, in order (upper right first: where a falling spectrum leaves room)
 _PLACES = ("upper right", "upper left", "upper center", "lower left", "lower right",
            "lower center", "center right", "center left")
-#: a point this close to the legend's box (points, about a marker's radius) touches it
-_PAD = 3.0
-
-
-def _covered(ax: Any, legend: Any, x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> int:
-    """How many of the vertical segments (x, lo..hi) the legend's box touches."""
-    renderer = ax.figure.canvas.get_renderer()
-    box = legend.get_window_extent(renderer)
-    pad = _PAD * ax.figure.dpi / 72.0
-    a = ax.transData.transform(np.c_[x, lo])
-    b = ax.transData.transform(np.c_[x, hi])
-    inside_x = (a[:, 0] >= box.x0 - pad) & (a[:, 0] <= box.x1 + pad)
-    bottom, top = np.minimum(a[:, 1], b[:, 1]), np.maximum(a[:, 1], b[:, 1])
-    inside_y = (top >= box.y0 - pad) & (bottom <= box.y1 + pad)
-    return int(np.count_nonzero(inside_x & inside_y))
 
 
 def place_legend(ax: Any, x: Any, lo: Any, hi: Any | None = None, *, log: bool = False,
@@ -44,12 +31,12 @@ def place_legend(ax: Any, x: Any, lo: Any, hi: Any | None = None, *, log: bool =
     x, lo, hi = x[ok], lo[ok], hi[ok]
     for place in _PLACES:
         leg = ax.legend(loc=place, **kwargs)
-        if _covered(ax, leg, x, lo, hi) == 0:
+        if touched(ax, leg, x, lo, hi) == 0:
             return leg
     for _ in range(12):
         y0, y1 = ax.get_ylim()
         ax.set_ylim(y0, y1 * 3.0 if log else y1 + 0.3 * (y1 - y0))
         leg = ax.legend(loc=_PLACES[0], **kwargs)
-        if _covered(ax, leg, x, lo, hi) == 0:
+        if touched(ax, leg, x, lo, hi) == 0:
             break
     return leg
