@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, number
+from .._format import number
 from .._style import COLORS, draw_header, figure_style, new_figure
 from .labels import FigureLabels, save
 
@@ -53,6 +53,6 @@ def candidates_figure(collected: Any, labels: FigureLabels | None = None) -> Any
                 ax.set_ylim(0, 1.2 * float(max(h.weight_sum.max(), 1.0)))
                 ax.set_xlim(e[0], e[-1])
         draw_header(a1, labels.run, f"{number(round(n))} candidates with "
-                    f"{fixed(lo, 1)} < ${labels.symbol}$ < {fixed(hi, 1)} GeV (search window)")
+                    f"{lo:g} < ${labels.symbol}$ < {hi:g} GeV (search window)")
         fig.subplots_adjust(wspace=0.3)
     return fig

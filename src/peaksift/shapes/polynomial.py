@@ -204,27 +204,27 @@ class Bernstein(_CompiledRows):
         n = self.degree
         return [(hi - lo) * special.betainc(i + 1, n - i + 1, u) / (n + 1) for i in range(n + 1)]
 
-    def _density(self, x, p, window):
-        b = self._basis(x, window)
+    def _sum(self, b, p):
+        """The polynomial on basis ``b`` (the basis polynomials or their integrals)."""
         out = b[0]
         for i in range(1, self.degree + 1):
             out = out + p[i - 1] ** 2 * b[i]
         return out
+
+    def _sum_grad(self, b, p):
+        return [2.0 * p[i - 1] * b[i] for i in range(1, self.degree + 1)]
+
+    def _density(self, x, p, window):
+        return self._sum(self._basis(x, window), p)
 
     def _primitive(self, x, p, window):
-        b = self._ibasis(x, window)
-        out = b[0]
-        for i in range(1, self.degree + 1):
-            out = out + p[i - 1] ** 2 * b[i]
-        return out
+        return self._sum(self._ibasis(x, window), p)
 
     def _density_grad(self, x, p, window):
-        b = self._basis(x, window)
-        return [2.0 * p[i - 1] * b[i] for i in range(1, self.degree + 1)]
+        return self._sum_grad(self._basis(x, window), p)
 
     def _primitive_grad(self, x, p, window):
-        b = self._ibasis(x, window)
-        return [2.0 * p[i - 1] * b[i] for i in range(1, self.degree + 1)]
+        return self._sum_grad(self._ibasis(x, window), p)
 
     def _compiled(self, edges, params, window, grad: bool):
         from .falling_rows import bernstein_fractions

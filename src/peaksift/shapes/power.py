@@ -172,21 +172,21 @@ class PowerSum(_CompiledRows):
     def _primitive(self, x, p, window):
         return sum(w * _POWER._primitive(x, [k], window) for k, w in self._split(p))
 
-    def _density_grad(self, x, p, window):
+    def _terms_grad(self, x, p, window, value, grad):
+        """Derivatives of the sum of the terms' ``value`` (their density or primitive),
+        ``grad`` the term's own derivative, in parameter order (power_j, weight_j)."""
         out = []
         for j, (k, w) in enumerate(self._split(p)):
-            out.append(w * _POWER._density_grad(x, [k], window)[0])
+            out.append(w * grad(x, [k], window)[0])
             if j:
-                out.append(2.0 * p[2 * j] * _POWER._density(x, [k], window))
+                out.append(2.0 * p[2 * j] * value(x, [k], window))
         return out
 
+    def _density_grad(self, x, p, window):
+        return self._terms_grad(x, p, window, _POWER._density, _POWER._density_grad)
+
     def _primitive_grad(self, x, p, window):
-        out = []
-        for j, (k, w) in enumerate(self._split(p)):
-            out.append(w * _POWER._primitive_grad(x, [k], window)[0])
-            if j:
-                out.append(2.0 * p[2 * j] * _POWER._primitive(x, [k], window))
-        return out
+        return self._terms_grad(x, p, window, _POWER._primitive, _POWER._primitive_grad)
 
     def _compiled(self, edges, params, window, grad: bool):
         from .falling_rows import powersum_fractions
