@@ -39,7 +39,12 @@ pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="re
 #: ``starting``, each worker process instead leaves its mark and waits 1 s before it runs
 #: anything of Dask's: the window between a fork and the worker's own signal set-up
 _WAITING = """
-import os, sys, time
+import os, signal, sys, time
+# started as a shell starts a foreground job, whatever this test process holds: SIGINT and
+# SIGTERM unblocked (a mask survives fork and exec) and handled by Python's defaults
+signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT, signal.SIGTERM})
+signal.signal(signal.SIGINT, signal.default_int_handler)
+signal.signal(signal.SIGTERM, signal.SIG_DFL)
 import multiprocessing.process as mp
 import peaksift.execution._chunk as chunk
 mark = lambda: open(os.path.join(os.environ["MARKS"], str(os.getpid())), "w").close()
