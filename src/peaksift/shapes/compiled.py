@@ -9,7 +9,9 @@ What is here and who uses it
   hypothesis or toy): bin fractions and their derivatives, one exponential per edge and
   row (the scan's and the toys' background, through ``PowerLaw`` / ``ExpPoly``).
 * ``gaussian_rows`` -- bin fractions of a Gaussian at many trial masses (the free fit's
-  coarse scan of the window for starting masses, :mod:`peaksift.likelihood.starts`).
+  coarse scan of the window for starting masses, :mod:`peaksift.likelihood.starts`);
+  ``gaussian_width_rows`` the same at one mass for many widths, each on its own band of
+  edges (the width profile of :mod:`peaksift.likelihood.start_widths`).
 * ``crystalball_primitive``, ``crystalball_density`` -- one parameter set: the Crystal
   Ball's primitive and its density at every edge or mass, each with its derivatives in the
   six parameters (``CrystalBall.fractions_and_grad`` / ``pdf_and_grad``, the free fit's
@@ -32,7 +34,8 @@ from numba import njit, types
 from numba.extending import intrinsic
 
 __all__ = ["crystalball_density", "crystalball_primitive", "exponential_edges",
-           "exponential_rows", "gaussian_edges", "gaussian_rows", "powerlaw_edges",
+           "exponential_rows", "gaussian_edges", "gaussian_rows", "gaussian_width_rows",
+           "powerlaw_edges",
            "powerlaw_rows", "vexp", "vlog"]
 
 
@@ -241,6 +244,24 @@ def gaussian_rows(x, ms, s, lo, hi, frac):  # pragma: no cover - compiled
             if i > 0:
                 frac[b, i - 1] = max(0.0, c - c_prev)
             c_prev = c
+    return True
+
+
+@njit(cache=True, nogil=True)
+def gaussian_width_rows(x, m, widths, i0, i1, lo, hi, frac):  # pragma: no cover - compiled
+    """Row ``j`` of ``frac (K, E-1)``: the bin fractions of :func:`gaussian_rows` for one
+    mass ``m`` and width ``widths[j]``, on the edges ``x[i0[j]:i1[j] + 1]`` only (its band;
+    the rest of the row is set to 0).  One call instead of one per width (the width
+    profile of a start, :mod:`peaksift.likelihood.start_widths`)."""
+    at = np.empty(1)
+    at[0] = m
+    for j in range(widths.size):
+        a, b = i0[j], i1[j]
+        band = np.empty((1, b - a))
+        if not gaussian_rows(x[a:b + 1], at, widths[j], lo, hi, band):
+            return False
+        for i in range(frac.shape[1]):
+            frac[j, i] = band[0, i - a] if a <= i < b else 0.0
     return True
 
 
