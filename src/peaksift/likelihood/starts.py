@@ -114,7 +114,9 @@ def _coarse_profile(n, scale, signal_fractions, background):
     g = b0 / btot
     # differences of NLLs only: the saturated term is left out
     nll0 = binned_nll(n, btot * g, scale, saturated=False)
-    x = np.column_stack([np.full(m, 0.1 * math.sqrt(max(btot, 1.0))), np.full(m, btot)])
+    x = np.empty((m, 2))
+    x[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
+    x[:, 1] = btot
     if use_compiled():
         from .kernels import profile_two_yields
 
