@@ -121,7 +121,7 @@ def _frozen(v: Any) -> Any:
 
 #: values :func:`_frozen` leaves as they are (checked by type first: a fit's result holds
 #: dicts of many floats)
-_PLAIN = frozenset({float, int, str, bool, type(None)})
+_PLAIN = frozenset({float, int, str, bool, tuple, type(None), Measurement})
 
 
 def _field_names(cls: type) -> tuple[str, ...]:
