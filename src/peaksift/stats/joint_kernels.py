@@ -11,7 +11,8 @@ arrays:
 * :func:`channel_sums` -- with ``w = 1 - n/nu`` and ``v = n/nu^2`` (``nu`` floored at
   1e-100): ``sum f w``, ``sum f f v``, ``sum f g v``, ``sum f dg_k v``, ``sum g w``,
   ``sum g g v``, ``sum g dg_k v``, ``sum dg_k w``, ``sum dg_k dg_l v`` and
-  ``sum d2_kl w``, from which :func:`peaksift.stats.joint._grad_hess` assembles the blocks;
+  ``sum d2_kl w``, from which :func:`peaksift.stats.joint._grad_hess` assembles the blocks
+  (one bin's yield terms in :func:`yield_sums`, shared with the compiled loop);
 * for the compiled loop (:mod:`peaksift.stats.joint_driver`): :func:`row_background` (one
   row's exponential or power-law fractions in the used bins), :func:`lu_solve` (a Newton
   step), :func:`small_step` (the stopping test) and :func:`model_change` (the quadratic
@@ -28,7 +29,7 @@ from numba import njit
 from ..shapes.compiled import exponential_rows, powerlaw_rows
 
 __all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "row_background",
-           "small_step", "sums"]
+           "small_step", "sums", "yield_sums"]
 
 
 @njit(cache=True, nogil=True)
@@ -44,6 +45,20 @@ def channel_nll(n, f, g, s, b, out):  # pragma: no cover - compiled
             nu = max(nu, 1e-300)
             acc += nu - n[r, i] * math.log(nu) if n[r, i] != 0.0 else nu
         out[r] = acc
+
+
+@njit(inline="always")
+def yield_sums(fi, gi, ni, inv, a0, a1, a2, c0, c1):  # pragma: no cover - compiled
+    """One bin's terms of the yields' sums: from ``inv = 1/nu`` (``nu`` floored by the
+    caller) ``w = 1 - n/nu`` and ``v = n/nu^2``, and ``f w``, ``f f v``, ``f g v``, ``g w``,
+    ``g g v`` added to the running sums; returns ``(w, v, a0, a1, a2, c0, c1)``.  One
+    definition for :func:`channel_sums` and the compiled joint loop, inlined (numba IR) so
+    that the sums stay in registers."""
+    ratio = ni * inv
+    w = 1.0 - ratio
+    v = ratio * inv
+    fv = fi * v
+    return w, v, a0 + fi * w, a1 + fi * fv, a2 + gi * fv, c0 + gi * w, c1 + gi * gi * v
 
 
 @njit(cache=True, nogil=True)
@@ -69,17 +84,9 @@ def channel_sums(n, f, g, dg, d2, s, b, fs, gs, ds, dd):  # pragma: no cover - c
             fi = f[r, i]
             gi = g[r, i]
             inv = 1.0 / max(sr * fi + br * gi, 1e-100)
-            ratio = n[r, i] * inv
-            w = 1.0 - ratio
-            v = ratio * inv
+            w, v, a0, a1, a2, c0, c1 = yield_sums(fi, gi, n[r, i], inv, a0, a1, a2, c0, c1)
             wv[0, i] = w
             wv[1, i] = v
-            fv = fi * v
-            a0 += fi * w
-            a1 += fi * fv
-            a2 += gi * fv
-            c0 += gi * w
-            c1 += gi * gi * v
         fs[r, 0] += a0
         fs[r, 1] += a1
         fs[r, 2] += a2
