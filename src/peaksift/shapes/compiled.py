@@ -326,9 +326,20 @@ def powerlaw_rows(lx, dlx, k, l_lo, l_hi, frac, grad):  # pragma: no cover - com
 def exponential_rows(t, dt, bs, frac, grad):  # pragma: no cover - compiled
     """Bin fractions (floored at 0) and d/db1 (if ``grad.size``) of exp(b1 t) for every
     row's ``bs[b]``; False if a row has |b1| < 1e-3.  Fractions as
-    ``e^{b t_i} expm1(b dt_i) / Z`` (full relative precision, as for the power law)."""
+    ``e^{b t_i} expm1(b dt_i) / Z`` (full relative precision, as for the power law).
+
+    The edges' exponentials first, in a loop that vectorises (:func:`vexp`, within 1 ulp
+    of the library's); then ``expm1(b dt_i)`` only where a bin's width differs from the
+    previous bin's (equal widths, the usual binning: one call, the same numbers).  The two
+    library calls per edge were ~70% of a joint fit's time and most of a scan's."""
     ne = t.size
     want = grad.size > 0
+    ev = np.empty(ne)
+    uniform = True   # every bin as wide as the first: the fractions' loop vectorises
+    for i in range(1, ne - 1):
+        if dt[i] != dt[0]:
+            uniform = False
+            break
     for r in range(bs.size):
         b = bs[r]
         if abs(b) < 1e-3:
@@ -341,12 +352,24 @@ def exponential_rows(t, dt, bs, frac, grad):  # pragma: no cover - compiled
         g0 = em * (ib + ib2)
         ghi = ep * (ib - ib2) + g0
         scale = inv_z * ib
-        d_prev = 0.0
         for i in range(ne):
-            e = math.exp(b * t[i])
-            if i + 1 < ne:
-                frac[r, i] = max(0.0, e * math.expm1(b * dt[i]) * scale)
-            if want:
+            ev[i] = vexp(b * t[i])
+        if uniform:
+            m1 = math.expm1(b * dt[0])
+            for i in range(ne - 1):
+                frac[r, i] = max(0.0, ev[i] * m1 * scale)
+        else:
+            d_last = math.nan
+            m1 = 0.0
+            for i in range(ne - 1):
+                if dt[i] != d_last:
+                    d_last = dt[i]
+                    m1 = math.expm1(b * d_last)
+                frac[r, i] = max(0.0, ev[i] * m1 * scale)
+        if want:
+            d_prev = 0.0
+            for i in range(ne):
+                e = ev[i]
                 c = (e - em) * scale
                 db = (e * (t[i] * ib - ib2) + g0 - c * ghi) * inv_z
                 if i > 0:
