@@ -9,7 +9,9 @@ What is here and who uses it
   hypothesis or toy): bin fractions and their derivatives, one exponential per edge and
   row (the scan's and the toys' background, through ``PowerLaw`` / ``ExpPoly``).
 * ``gaussian_rows`` -- bin fractions of a Gaussian at many trial masses (the free fit's
-  coarse scan of the window for starting masses, :mod:`peaksift.likelihood.starts`).
+  coarse scan of the window for starting masses, :mod:`peaksift.likelihood.starts`);
+  ``gaussian_rows_widths`` with a width per mass (the scan's signal fractions,
+  :mod:`peaksift.stats.scan_inputs`).
 * ``crystalball_primitive``, ``crystalball_density`` -- one parameter set: the Crystal
   Ball's primitive and its density at every edge or mass, each with its derivatives in the
   six parameters (``CrystalBall.fractions_and_grad`` / ``pdf_and_grad``, the free fit's
@@ -32,8 +34,8 @@ from numba import njit, types
 from numba.extending import intrinsic
 
 __all__ = ["crystalball_density", "crystalball_primitive", "exponential_edges",
-           "exponential_rows", "gaussian_edges", "gaussian_rows", "powerlaw_edges",
-           "powerlaw_rows", "vexp", "vlog"]
+           "exponential_rows", "gaussian_edges", "gaussian_rows", "gaussian_rows_widths",
+           "powerlaw_edges", "powerlaw_rows", "vexp", "vlog"]
 
 
 # ------------------------------------------------------- exp and log that vectorise
@@ -205,42 +207,60 @@ def gaussian_edges(x, m, s, lo, hi, out):  # pragma: no cover - compiled
     return True
 
 
+@njit(inline="always")
+def _gaussian_row(x, m, s, lo, hi, frac, b):  # pragma: no cover - compiled
+    """Row ``b`` of :func:`gaussian_rows`: mass ``m``, width ``s``; False when the window
+    holds none of the peak."""
+    ne = x.size
+    inv_s = 1.0 / s
+    zl = (lo - m) * inv_s
+    zh = (hi - m) * inv_s
+    upper = zl > 0.0
+    if upper:
+        pl = -0.5 * math.erfc(zl * _SQRT1_2)
+        ph = -0.5 * math.erfc(zh * _SQRT1_2)
+    else:
+        pl = 0.5 * math.erfc(-zl * _SQRT1_2)
+        ph = 0.5 * math.erfc(-zh * _SQRT1_2)
+    norm = ph - pl
+    if not norm > 0.0:
+        return False
+    inv = 1.0 / norm
+    tail = _TAIL if norm > _HELD else _CUT
+    c_prev = 0.0
+    for i in range(ne):
+        z = (x[i] - m) * inv_s
+        if z < -_CUT:
+            prim = -1.0 if upper else 0.0
+        elif z > _CUT:
+            prim = 0.0 if upper else 1.0
+        else:
+            prim = _primitive(z, upper, tail)
+        c = (prim - pl) * inv
+        if i > 0:
+            frac[b, i - 1] = max(0.0, c - c_prev)
+        c_prev = c
+    return True
+
+
 @njit(cache=True, nogil=True)
 def gaussian_rows(x, ms, s, lo, hi, frac):  # pragma: no cover - compiled
     """Bin fractions ``frac (B, E-1)`` (floored at 0) of the Gaussian of width ``s``
     normalised on [lo, hi] at every mass ``ms[b]``: the CDF of :func:`gaussian_edges`
     differenced, the edges beyond 40 sigma on either side taken as exactly 0 or 1."""
-    ne = x.size
-    inv_s = 1.0 / s
     for b in range(ms.size):
-        m = ms[b]
-        zl = (lo - m) * inv_s
-        zh = (hi - m) * inv_s
-        upper = zl > 0.0
-        if upper:
-            pl = -0.5 * math.erfc(zl * _SQRT1_2)
-            ph = -0.5 * math.erfc(zh * _SQRT1_2)
-        else:
-            pl = 0.5 * math.erfc(-zl * _SQRT1_2)
-            ph = 0.5 * math.erfc(-zh * _SQRT1_2)
-        norm = ph - pl
-        if not norm > 0.0:
+        if not _gaussian_row(x, ms[b], s, lo, hi, frac, b):
             return False
-        inv = 1.0 / norm
-        tail = _TAIL if norm > _HELD else _CUT
-        c_prev = 0.0
-        for i in range(ne):
-            z = (x[i] - m) * inv_s
-            if z < -_CUT:
-                prim = -1.0 if upper else 0.0
-            elif z > _CUT:
-                prim = 0.0 if upper else 1.0
-            else:
-                prim = _primitive(z, upper, tail)
-            c = (prim - pl) * inv
-            if i > 0:
-                frac[b, i - 1] = max(0.0, c - c_prev)
-            c_prev = c
+    return True
+
+
+@njit(cache=True, nogil=True)
+def gaussian_rows_widths(x, ms, ss, lo, hi, frac):  # pragma: no cover - compiled
+    """:func:`gaussian_rows` with a width per row, ``ss[b]`` (a scan's sigma(m)): no
+    library call beyond the far tails, where most of a wide window's edges lie."""
+    for b in range(ms.size):
+        if not _gaussian_row(x, ms[b], ss[b], lo, hi, frac, b):
+            return False
     return True
 
 

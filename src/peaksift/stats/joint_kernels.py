@@ -16,7 +16,10 @@ arrays:
 * for the compiled loop (:mod:`peaksift.stats.joint_driver`): :func:`row_background` (one
   row's exponential or power-law fractions in the used bins), :func:`lu_solve` (a Newton
   step), :func:`small_step` (the stopping test) and :func:`model_change` (the quadratic
-  model's NLL change).
+  model's NLL change);
+* :func:`quadratic_rows` -- each hypothesis's profiled curvature in the signal yield and
+  the slope of the nuisances along it, from a channel's Hessians
+  (:mod:`peaksift.stats.joint_start`).
 """
 
 from __future__ import annotations
@@ -28,8 +31,8 @@ from numba import njit
 
 from ..shapes.compiled import exponential_rows, powerlaw_rows
 
-__all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "row_background",
-           "small_step", "sums", "yield_sums"]
+__all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "quadratic_rows",
+           "row_background", "small_step", "sums", "yield_sums"]
 
 
 @njit(cache=True, nogil=True)
@@ -222,3 +225,63 @@ def model_change(trial, x, grad, hess):  # pragma: no cover - compiled
             t += hess[i, j] * (trial[j] - x[j])
         out += di * (grad[i] + 0.5 * t)
     return out
+
+
+@njit(cache=True, nogil=True)
+def quadratic_rows(h, w, slope, ok):  # pragma: no cover - compiled
+    """Per row of ``h (B, P, P)`` (a Hessian over ``(s, eta)``) where ``ok`` is set: the
+    slope ``-H_ee^-1 H_es`` of ``eta`` along ``s`` into ``slope (B, P-1)`` and the profiled
+    curvature ``H_ss + H_se . slope`` (the Schur complement) into ``w``; ``ok`` cleared
+    where ``H_ee`` is singular or the results are not finite and positive.  Gaussian
+    elimination with partial pivoting on a copy (LAPACK's gesv algorithm, as numpy's
+    ``solve``; the last digits may differ: a start only)."""
+    rows, p = h.shape[0], h.shape[1]
+    q = p - 1
+    m = np.empty((q, q + 1))
+    x = np.empty(q)
+    for r in range(rows):
+        if not ok[r]:
+            continue
+        for i in range(q):
+            for j in range(q):
+                m[i, j] = h[r, 1 + i, 1 + j]
+            m[i, q] = h[r, 1 + i, 0]
+        good = True
+        for c in range(q):
+            piv = c
+            big = abs(m[c, c])
+            for i in range(c + 1, q):
+                if abs(m[i, c]) > big:
+                    big = abs(m[i, c])
+                    piv = i
+            if big == 0.0:
+                good = False
+                break
+            if piv != c:
+                for j in range(c, q + 1):
+                    t = m[c, j]
+                    m[c, j] = m[piv, j]
+                    m[piv, j] = t
+            for i in range(c + 1, q):
+                f = m[i, c] / m[c, c]
+                for j in range(c, q + 1):
+                    m[i, j] -= f * m[c, j]
+        if good:
+            for i in range(q - 1, -1, -1):
+                acc = m[i, q]
+                for j in range(i + 1, q):
+                    acc -= m[i, j] * x[j]
+                x[i] = acc / m[i, i]
+            acc = 0.0
+            for i in range(q):
+                slope[r, i] = -x[i]
+                good = good and math.isfinite(x[i])
+                acc += h[r, 0, 1 + i] * slope[r, i]
+            acc = h[r, 0, 0] + acc
+            w[r] = acc
+            good = good and math.isfinite(acc) and acc > 0.0
+        if not good:
+            ok[r] = False
+            w[r] = 0.0
+            for i in range(q):
+                slope[r, i] = 0.0
