@@ -136,11 +136,15 @@ def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
     return 0.5 * (out + out.transpose(0, 2, 1, 3))
 
 
-def _nll(n: np.ndarray, nu: np.ndarray) -> np.ndarray:
+def _nll(n: np.ndarray, nu: np.ndarray, sat: np.ndarray | None = None) -> np.ndarray:
     # the core's Poisson NLL without its saturated constant (differences are all we need),
     # summed in small terms: the fits below stop on NLL changes of 1e-8 to 1e-9, below the
-    # rounding of the plain sum in 10,000 bins (they then ran to their step limit)
-    return binned_nll(n, nu, saturated=False, small_terms=True)
+    # rounding of the plain sum in 10,000 bins (they then ran to their step limit).
+    # ``sat``: saturated_term(n) of these rows, which a fit computes once for its counts
+    # (half the cost of each evaluation otherwise); the same bits either way
+    if sat is None:
+        return binned_nll(n, nu, saturated=False, small_terms=True)
+    return binned_nll(n, nu, saturated=True, small_terms=True) - sat
 
 
 # ------------------------------------------------------- background-only fit (stacked)
@@ -161,12 +165,13 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
     theta = np.array(np.broadcast_to(model.theta if theta0 is None else theta0, (nb, k)),
                      dtype=float)
     ntot = n.sum(axis=1)
+    sat = saturated_term(n)
 
     def profile_b(th: np.ndarray, rows: Any = slice(None)) -> tuple[np.ndarray, np.ndarray,
                                                                    np.ndarray]:
         g = bkg_fractions(model, th)
         b = ntot[rows] / np.maximum(g.sum(axis=1), 1e-300)
-        val = _nll(n[rows], b[:, None] * g)
+        val = _nll(n[rows], b[:, None] * g, sat[rows])
         return g, b, np.where(np.all(g > 0, axis=1) | (n[rows] == 0).all(axis=1), val, np.inf)
 
     g, b, nll = profile_b(theta)
@@ -245,11 +250,13 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         if out is not None:
             return out
     g = bkg_fractions(model, theta)
+    sat = np.broadcast_to(saturated_term(n[:1]), (nb,)) if n.strides[0] == 0 else \
+        saturated_term(n)
 
     def total_nll(s_, b_, g_, rows=slice(None)):
         nu = s_[:, None] * f[rows] + b_[:, None] * g_
         bad = np.any(nu <= 0, axis=1)
-        val = _nll(n[rows], nu)
+        val = _nll(n[rows], nu, sat[rows])
         return np.where(bad, np.inf, val)
 
     nll = total_nll(s, b, g)
