@@ -95,11 +95,16 @@ class ScanModel:
         return self.bkg_yield * bkg_fractions(self, self.theta[None, :])[0]
 
 
+# The fits below call these two at every step, mostly for a few rows: numpy's
+# ``broadcast_to`` and ``moveaxis`` cost more than a compiled shape's kernel there, so
+# they run only where the shape's answer needs them (the values are the same copies).
 def bkg_fractions(model: ScanModel, theta: np.ndarray) -> np.ndarray:
     """Background bin fractions in the used bins for stacked parameters ``theta (B, K)``."""
     params = [theta[:, k : k + 1] for k in range(theta.shape[1])]
-    g = model.background.bin_fractions(model.edges, params, model.window)
-    g = np.broadcast_to(g, (theta.shape[0], model.edges.size - 1))
+    g = np.asarray(model.background.bin_fractions(model.edges, params, model.window))
+    full = (theta.shape[0], model.edges.size - 1)
+    if g.shape != full:
+        g = np.broadcast_to(g, full)
     if model.bin_scale is not None:
         g = g * model.bin_scale
     return np.ascontiguousarray(g[:, model.used])
@@ -108,11 +113,13 @@ def bkg_fractions(model: ScanModel, theta: np.ndarray) -> np.ndarray:
 def bkg_gradients(model: ScanModel, theta: np.ndarray) -> np.ndarray:
     """Derivatives of the used-bin background fractions, ``(B, K, n_used)``."""
     params = [theta[:, k : k + 1] for k in range(theta.shape[1])]
-    dg = model.background.grad_bin_fractions(model.edges, params, model.window)
-    dg = np.broadcast_to(dg, (theta.shape[1], theta.shape[0], model.edges.size - 1))
+    dg = np.asarray(model.background.grad_bin_fractions(model.edges, params, model.window))
+    full = (theta.shape[1], theta.shape[0], model.edges.size - 1)
+    if dg.shape != full:
+        dg = np.broadcast_to(dg, full)
     if model.bin_scale is not None:
         dg = dg * model.bin_scale
-    return np.ascontiguousarray(np.moveaxis(dg[:, :, model.used], 0, 1))
+    return np.ascontiguousarray(dg[:, :, model.used].transpose(1, 0, 2))
 
 
 def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
