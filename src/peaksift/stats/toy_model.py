@@ -129,8 +129,13 @@ def bkg_second(model: ScanModel, theta: np.ndarray) -> np.ndarray:
     kept inside the bounds; symmetrised.  This is the curvature a Fisher-type Hessian
     leaves out, needed e.g. where a squared coefficient sits at 0.  The fits compute it
     once at their starting point and reuse it (it only steers the Newton steps).
+
+    Rows that all start from one point (a scan's masses, a toy batch, a limit's grid)
+    share one computation, copied to every row: each row's value is its own either way.
     """
     nb, k = theta.shape
+    if nb > 1 and k and bool(np.all(theta == theta[:1])):
+        return np.repeat(bkg_second(model, theta[:1]), nb, axis=0)
     out = np.empty((nb, k, k, model.used.size))
     for j in range(k):
         h = 1e-5 * np.maximum(np.abs(theta[:, j]), 0.1)
