@@ -141,10 +141,18 @@ class _Curve:
         """The spline at yields ``s (B, T)`` (one row per hypothesis)."""
         rows = np.arange(s.shape[0]) % self.s_max.size  # stacked copies share the curve
         x = np.clip(s / self.s_max[rows, None], 0.0, 1.0)  # the limits' brackets stay inside
-        i = np.clip(np.searchsorted(self.u, x) - 1, 0, self.u.size - 2)
+        g = self.u.size - 1
+        # the piece of each point: searchsorted(u, x) - 1 in closed form, exact because the
+        # knots are k / g with g a power of two (x g is exact); else searchsorted (slower)
+        i = (np.ceil(x * g).astype(np.intp) - 1 if g & (g - 1) == 0
+             else np.searchsorted(self.u, x) - 1)
+        i = np.minimum(np.maximum(i, 0), g - 1)
         dx = x - self.u[i]
-        c = self.coef[:, i, rows[:, None]]   # (4, B, T)
-        return ((c[0] * dx + c[1]) * dx + c[2]) * dx + c[3]
+        # the coefficients of each point's piece: one flat gather per power (a broadcast
+        # fancy index of the (4, pieces, hypotheses) table cost most of the limits' search)
+        flat = i * self.s_max.size + rows[:, None]
+        c0, c1, c2, c3 = (self.coef[j].ravel().take(flat) for j in range(4))
+        return ((c0 * dx + c1) * dx + c2) * dx + c3
 
     def nll(self, mu: np.ndarray) -> np.ndarray:
         """NLL at ``mu`` profiled over everything, the normalisation nuisance included."""
