@@ -7,12 +7,10 @@ Which piece when
   :meth:`Beside.result` returns its value.
 * :class:`FigureWorker` -- a forked process, started before the inputs are checked and
   read, that imports matplotlib meanwhile and draws each figure as soon as its results
-  exist (:meth:`FigureWorker.draw`); :meth:`FigureWorker.finish` returns the files.  When
-  figures wait while it draws, it forks a second drawer from itself, and the two take the
-  figures one at a time from one queue: the last figures of a run, which wait for the
-  statistics, are drawn on both cores.  Forked after a figure is drawn, the second drawer
-  starts with the first one's fonts, glyphs, typeset text and tick labels loaded (no
-  second import, and no second first figure: ~0.3 s of CPU each).
+  exist (:meth:`FigureWorker.draw`); :meth:`FigureWorker.finish` returns the files.  Once
+  matplotlib is loaded it forks a second drawer from itself (no second import), and the
+  two take the figures one at a time from one queue: the last figures of a run, which wait
+  for the statistics, are drawn on both cores.
 
 Both give exactly what the same call in this process gives: the work is deterministic and
 its inputs are fixed when it starts (a fork copies them; the figure jobs are pickled).
@@ -175,8 +173,6 @@ class FigureWorker:
         """Draw the figures ``names`` of ``result`` (``extra``: more keywords of
         :func:`~peaksift.plotting.search_figures`, e.g. ``calibration``); one job per
         figure, so that the two drawers share them."""
-        if self.outdir is None:
-            raise ValueError("FigureWorker.outdir is not set")  # a bug of the caller
         for name in names:
             job = ((name,), result, extra)
             if self._proc is not None:
@@ -206,8 +202,7 @@ class FigureWorker:
 
         for i, (names, result, extra) in enumerate(self.jobs):
             if i not in done:
-                out.update(plotting.search_figures(result, self.outdir,  # type: ignore[arg-type]
-                                                   names=names,
+                out.update(plotting.search_figures(result, self.outdir, names=names,
                                                    **self.kw, **extra))
         return out
 
@@ -247,10 +242,8 @@ _DRAWERS = 2
 
 
 def _draw_jobs(queue: Any, kw: dict[str, Any], drawn: dict[str, str], done: set[int],
-               caught: list[tuple[str, type, str, int]],
-               after: Callable[[], None] | None = None) -> None:
-    """Draw jobs from ``queue`` until its end mark; a failed job is left to the parent.
-    ``after`` is called after each job (the first drawer forks its helper there)."""
+               caught: list[tuple[str, type, str, int]]) -> None:
+    """Draw jobs from ``queue`` until its end mark; a failed job is left to the parent."""
     from .. import plotting
 
     while (job := queue.get()) is not None:
@@ -264,12 +257,10 @@ def _draw_jobs(queue: Any, kw: dict[str, Any], drawn: dict[str, str], done: set[
             done.add(i)
         except Exception:  # noqa: BLE001 -- the parent draws it again and raises
             _log.debug("figures %s failed; drawn again in the parent", names, exc_info=True)
-        if after is not None:
-            after()
 
 
 def _second_drawer(queue: Any, kw: dict[str, Any]) -> tuple[int, Any] | None:
-    """Fork another drawer from this one (matplotlib loaded, a figure drawn); returns its
+    """Fork another drawer from this one (matplotlib loaded and warmed up); returns its
     ``(pid, connection)`` for :func:`_join_drawer`, None when the fork failed."""
     import multiprocessing
 
@@ -329,15 +320,10 @@ def _figure_child(queue: Any, conn: Any, parent: int, kw: dict[str, Any]) -> Non
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up(kw.get("formats") or ())
-
-        def helper_when_jobs_wait() -> None:
-            # forked once a figure is drawn here and another waits: it inherits every
-            # cache of this drawer; while nothing waits it would only be one more process
-            if (len(helpers) < _DRAWERS - 1 and not queue.empty()
-                    and (h := _second_drawer(queue, kw)) is not None):
+        for _ in range(_DRAWERS - 1):
+            if (h := _second_drawer(queue, kw)) is not None:
                 helpers.append(h)
-
-        _draw_jobs(queue, kw, drawn, done, caught, helper_when_jobs_wait)
+        _draw_jobs(queue, kw, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the parent draws what was not delivered
         _log.debug("figure process stopped", exc_info=True)
