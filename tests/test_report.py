@@ -140,6 +140,19 @@ def test_format_pm_rounds_error_to_two_digits():
     assert format_pm(1.0, None) == "1"
 
 
+def test_fit_settings_use_the_one_value_error_format():
+    # the summary's and report's "fit settings": a constraint's centre and width formatted
+    # as every value ± error (two digits on the error, common practice), with its unit
+    from peaksift.report_sections import fit_settings_text
+
+    st = {"sigma_from_resolution": {"at_mass": 1.0194},
+          "constraints": {"sigma": {"center": 3.0e-4, "width": 6.0e-5, "kind": "gaussian"},
+                          "width": {"center": 4.249e-3, "width": 0.1, "kind": "lognormal"}}}
+    assert fit_settings_text(st) == (
+        "sigma constrained to the resolution model, 0.000300 ± 0.000060 GeV (Gaussian); "
+        "width constrained to 0.004249 GeV within a relative 0.1 (log-normal)")
+
+
 def test_results_json_atomic_and_nan_free(tmp_path):
     r = _results()
     r["fit"]["gof"]["p_value"] = float("nan")

@@ -156,7 +156,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None, drawer: FigureWorker | None,
             besides: list[Beside], collected: Any = None) -> SearchResult:
     from ..fitting import fit
-    from ..resonances import match_known, pair_charge
+    from ..resonances import fitted_widths, match_known, pair_charge
     from ..stats.scan import scan
 
     clock = _Clock()
@@ -333,7 +333,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     m_err = peak.get("error") or 0.0
     known = tuple(match_known(float(m_fit), error=float(m_err),
                               resolution=float(sigma_fn(float(m_fit))),
-                              charge=pair_charge(cfg.pairing.charge)))
+                              charge=pair_charge(cfg.pairing.charge),
+                              **fitted_widths(fres.to_dict().get("parameters") or {}
+                                              if fres is not None else {})))
     if mass_job is not None:
         syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None
@@ -538,12 +540,13 @@ def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any
         "shift_sigma": (m - ref.mass) / np.hypot(e, ref.mass_error) if e > 0 else None,
         "source": "particle package (PDG tables)",
     }
-    from ..resonances import match_known, pair_charge
+    from ..resonances import fitted_widths, match_known, pair_charge
 
     res_sigma = _sigma_near(cfg, m) if np.isfinite(m) else 0.0
     out["known_matches"] = [k.to_dict() for k in match_known(
         m, error=e if np.isfinite(e) else 0.0, resolution=res_sigma,
-        charge=pair_charge(cfg.pairing.charge))] if np.isfinite(m) else []
+        charge=pair_charge(cfg.pairing.charge),
+        **fitted_widths(d.get("parameters") or {}))] if np.isfinite(m) else []
     return out, h, fr
 
 
