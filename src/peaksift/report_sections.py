@@ -27,6 +27,7 @@ from ._format import (
     fixed,
     format_interval,
     format_pm,
+    mass_text,
     number,
     p_value,
     significance,
@@ -189,7 +190,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     # with [systematics] the headline numbers are the profiled ones: say so where they stand
     tag = " (with systematics)" if r.get("systematics") else ""
     rows = [
-        ("Best mass hypothesis", f"{fixed(best.get('mass'))} GeV"),
+        ("Best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"),
         ("Local significance" + tag, significance(best, "local")),
         ("Global significance" + tag, significance(best, "global")),
     ]
