@@ -268,19 +268,18 @@ def gaussian_rows_widths(x, ms, ss, lo, hi, frac):  # pragma: no cover - compile
 
 @njit(cache=True, nogil=True)
 def gaussian_width_rows(x, m, widths, i0, i1, lo, hi, frac):  # pragma: no cover - compiled
-    """Row ``j`` of ``frac (K, E-1)``: the bin fractions of :func:`gaussian_rows` for one
-    mass ``m`` and width ``widths[j]``, on the edges ``x[i0[j]:i1[j] + 1]`` only (its band;
-    the rest of the row is set to 0).  One call instead of one per width (the width
-    profile of a start, :mod:`peaksift.likelihood.start_widths`)."""
-    at = np.empty(1)
-    at[0] = m
+    """Row ``j`` of ``frac (K, E-1)``: the bin fractions of :func:`gaussian_rows` (its
+    row, :func:`_gaussian_row`) for one mass ``m`` and width ``widths[j]``, on the edges
+    ``x[i0[j]:i1[j] + 1]`` only (its band; the rest of the row is set to 0).  One call
+    instead of one per width (the width profile of :mod:`peaksift.likelihood.start_widths`)."""
     for j in range(widths.size):
         a, b = i0[j], i1[j]
-        band = np.empty((1, b - a))
-        if not gaussian_rows(x[a:b + 1], at, widths[j], lo, hi, band):
+        for i in range(a):
+            frac[j, i] = 0.0
+        for i in range(b, frac.shape[1]):
+            frac[j, i] = 0.0
+        if not _gaussian_row(x[a:b + 1], m, widths[j], lo, hi, frac[:, a:b], j):
             return False
-        for i in range(frac.shape[1]):
-            frac[j, i] = band[0, i - a] if a <= i < b else 0.0
     return True
 
 
