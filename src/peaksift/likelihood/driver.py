@@ -53,12 +53,14 @@ def _component(code, e, a, b, v, p0, out):  # pragma: no cover - compiled
     return exponential_edges(e, v[p0], out)
 
 
-@njit(cache=True, nogil=True)
-def _evaluate(prob, full, free, x, info):  # pragma: no cover - compiled
-    """(NLL without constant, ok) at free values ``x`` into the problem's buffers, as
-    ``FusedBinned.evaluate``; ok is False when a kernel declines."""
-    (code, edata, escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree, bins,
-     n, s, unit, floor, cdf, mu, jac, g, fisher, yields) = prob
+@njit(inline="always")
+def _fill(prob, full, free, x):  # pragma: no cover - compiled
+    """``(v, ok)``: the full parameters ``v`` at free values ``x``, each component's yield
+    and CDF rows at them in the problem's buffers (a component held at yield 0: rows 0);
+    ok is False when a kernel declines.  The set-up of :func:`_evaluate` and
+    :func:`_hessian`."""
+    code, edata, escal, pstart, rstart, yidx, yfree = prob[:7]
+    cdf, yields = prob[16], prob[21]
     v = full.copy()
     for i in range(free.size):
         v[free[i]] = x[i]
@@ -70,7 +72,19 @@ def _evaluate(prob, full, free, x, info):  # pragma: no cover - compiled
             out[:] = 0.0
             continue
         if not _component(code[k], edata[k], escal[k, 0], escal[k, 1], v, pstart[k], out):
-            return 0.0, False
+            return v, False
+    return v, True
+
+
+@njit(cache=True, nogil=True)
+def _evaluate(prob, full, free, x, info):  # pragma: no cover - compiled
+    """(NLL without constant, ok) at free values ``x`` into the problem's buffers, as
+    ``FusedBinned.evaluate``; ok is False when a kernel declines."""
+    (_code, _edata, _escal, _pstart, _rstart, _yidx, yfree, value_row, drow, dcomp, dfree,
+     bins, n, s, unit, floor, cdf, mu, jac, g, fisher, yields) = prob
+    _, ok = _fill(prob, full, free, x)
+    if not ok:
+        return 0.0, False
     val = poisson_pass(cdf, value_row, yields, yfree, drow, dcomp, dfree, bins, n, s, unit,
                        floor, info, mu, jac, g, fisher)
     return val, True
@@ -264,20 +278,11 @@ def _shape_rows(prob, k, v, out):  # pragma: no cover - compiled
 def _hessian(prob, full, free, x, steps, lower, upper, hess):  # pragma: no cover - compiled
     """The observed Hessian of :meth:`.cost.BinnedCost.observed_hessian` into ``hess``;
     False where a kernel declines (the Python path then answers)."""
-    (code, _edata, _escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree, bins,
+    (_code, _edata, _escal, pstart, rstart, _yidx, yfree, value_row, drow, dcomp, dfree, bins,
      n, s, unit, floor, cdf, mu, jac, g, fisher, yields) = prob
-    v = full.copy()
-    for i in range(free.size):
-        v[free[i]] = x[i]
-    for k in range(code.size):
-        y = v[yidx[k]]
-        yields[k] = y
-        out = cdf[rstart[k]:rstart[k + 1]]
-        if yfree[k] < 0 and y == 0.0:
-            out[:] = 0.0
-            continue
-        if not _shape_rows(prob, k, v, out):
-            return False
+    v, ok = _fill(prob, full, free, x)
+    if not ok:
+        return False
     if not math.isfinite(poisson_pass(cdf, value_row, yields, yfree, drow, dcomp, dfree, bins,
                                       n, s, unit, floor, False, mu, jac, g, fisher)):
         return False  # a negative expectation: outside the model
