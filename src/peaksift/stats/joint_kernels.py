@@ -29,6 +29,7 @@ import math
 import numpy as np
 from numba import njit
 
+from ..likelihood.kernels import solve_small
 from ..shapes.compiled import exponential_rows, powerlaw_rows
 
 __all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "quadratic_rows",
@@ -232,54 +233,30 @@ def quadratic_rows(h, w, slope, ok):  # pragma: no cover - compiled
     """Per row of ``h (B, P, P)`` (a Hessian over ``(s, eta)``) where ``ok`` is set: the
     slope ``-H_ee^-1 H_es`` of ``eta`` along ``s`` into ``slope (B, P-1)`` and the profiled
     curvature ``H_ss + H_se . slope`` (the Schur complement) into ``w``; ``ok`` cleared
-    where ``H_ee`` is singular or the results are not finite and positive.  Gaussian
-    elimination with partial pivoting on a copy (LAPACK's gesv algorithm, as numpy's
-    ``solve``; the last digits may differ: a start only)."""
+    where ``H_ee`` is singular or the results are not finite and positive.  The solve is
+    :func:`peaksift.likelihood.kernels.solve_small` (numpy's ``solve`` before: the last
+    digits may differ, and this is a start only)."""
     rows, p = h.shape[0], h.shape[1]
     q = p - 1
-    m = np.empty((q, q + 1))
+    a = np.empty((q, q))
+    g = np.empty(q)
     x = np.empty(q)
     for r in range(rows):
         if not ok[r]:
             continue
         for i in range(q):
             for j in range(q):
-                m[i, j] = h[r, 1 + i, 1 + j]
-            m[i, q] = h[r, 1 + i, 0]
-        good = True
-        for c in range(q):
-            piv = c
-            big = abs(m[c, c])
-            for i in range(c + 1, q):
-                if abs(m[i, c]) > big:
-                    big = abs(m[i, c])
-                    piv = i
-            if big == 0.0:
-                good = False
-                break
-            if piv != c:
-                for j in range(c, q + 1):
-                    t = m[c, j]
-                    m[c, j] = m[piv, j]
-                    m[piv, j] = t
-            for i in range(c + 1, q):
-                f = m[i, c] / m[c, c]
-                for j in range(c, q + 1):
-                    m[i, j] -= f * m[c, j]
+                a[i, j] = h[r, 1 + i, 1 + j]
+            g[i] = h[r, 1 + i, 0]
+        good = solve_small(a, g, x)   # x = -H_ee^-1 H_es, the slope
         if good:
-            for i in range(q - 1, -1, -1):
-                acc = m[i, q]
-                for j in range(i + 1, q):
-                    acc -= m[i, j] * x[j]
-                x[i] = acc / m[i, i]
             acc = 0.0
             for i in range(q):
-                slope[r, i] = -x[i]
-                good = good and math.isfinite(x[i])
-                acc += h[r, 0, 1 + i] * slope[r, i]
+                slope[r, i] = x[i]
+                acc += h[r, 0, 1 + i] * x[i]
             acc = h[r, 0, 0] + acc
             w[r] = acc
-            good = good and math.isfinite(acc) and acc > 0.0
+            good = math.isfinite(acc) and acc > 0.0
         if not good:
             ok[r] = False
             w[r] = 0.0
