@@ -235,6 +235,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     syst = None
     syst_limits_job = None
     syst_jobs: dict[str, Beside] = {}  # stages of [systematics] beside it, by name
+    syst_pending: list[Any] = []  # what they still add to the block, collected after the fits
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
         from .systematics import run_systematics, systematic_limits_at
 
@@ -259,7 +260,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                                                 natural_width=width, blind=blind_window,
                                                 best_plain=best, progress=progress,
                                                 executor=_toy_executor(cfg), scanned=scanned,
-                                                signal_model=smodel, beside=beside)
+                                                signal_model=smodel, beside=beside,
+                                                pending=syst_pending)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
@@ -334,6 +336,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     known = tuple(match_known(float(m_fit), error=float(m_err),
                               resolution=float(sigma_fn(float(m_fit))),
                               charge=pair_charge(cfg.pairing.charge)))
+    for finish in syst_pending:  # the spurious-signal test, beside until now
+        syst = finish(syst)
     if mass_job is not None:
         syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None
