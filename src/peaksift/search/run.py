@@ -13,7 +13,8 @@ import numpy as np
 
 from .._jit import numba_extensions_deferred
 from ..config import Config, load_config
-from ..errors import ConfigError, FitError
+from ..errors import ConfigError
+from .calibration import calibrate
 from .common import (
     _blinded_copy,
     _blinding,
@@ -112,30 +113,46 @@ def run_search(
                                share_folder=share_folder)  # type: ignore[return-value]
     started = _utc()
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
-    _check_inputs(cfg)
     target = _target(cfg, out)
-    with _staged(target, "search", share_folder) as stage:
-        res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
-                      stage=stage, target=target)
+    # the drawer loads matplotlib while the inputs are checked and read (its folder is
+    # named once staged); stopped if the run fails before the search starts
+    drawer = _figure_worker(cfg) if target is not None else None
+    try:
+        _check_inputs(cfg)
+        with _staged(target, "search", share_folder) as stage:
+            res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
+                          stage=stage, target=target, drawer=drawer)
+    except BaseException:
+        if drawer is not None:
+            drawer.cancel()
+        raise
     return res
 
 
+def _figure_worker(cfg: Config) -> FigureWorker | None:
+    """The process that draws a run's figures beside the statistics, or None with
+    ``output.figures = "none"`` (no process is started)."""
+    if cfg.output.figures == ("none",):
+        return None
+    from ..plotting import figure_labels  # (no matplotlib: that loads in the drawer)
+
+    return FigureWorker(None, formats=cfg.output.formats, log_scale=cfg.output.log_scale,
+                        labels=figure_labels(cfg))
 
 
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
-            stage: _Staging | None, target: Path | None, collected: Any = None
-            ) -> SearchResult:
+            stage: _Staging | None, target: Path | None, collected: Any = None,
+            drawer: FigureWorker | None = None) -> SearchResult:
     """The search of one config; ``collected``: its events already read and selected (a
-    combination reads a shared input once for its channels), else read here."""
-    # the figures are drawn beside the statistics, by a process started before the events
-    # are read (it loads matplotlib meanwhile); without an output folder, or with
-    # output.figures = "none", none are drawn (and no process is started)
-    drawer = None
-    if stage is not None and cfg.output.figures != ("none",):
-        from ..plotting import figure_labels  # (no matplotlib: that loads in the drawer)
-
-        drawer = FigureWorker(stage.path / "figures", formats=cfg.output.formats,
-                              log_scale=cfg.output.log_scale, labels=figure_labels(cfg))
+    combination reads a shared input once for its channels), else read here; ``drawer``:
+    its figure process when already started (else started here when an output folder is
+    written)."""
+    if stage is None:  # nothing written: no figures
+        drawer = None
+    elif drawer is None:
+        drawer = _figure_worker(cfg)
+    if drawer is not None:
+        drawer.outdir = stage.path / "figures"  # type: ignore[union-attr]
     besides: list[Beside] = []
     try:
         # only our kernels run in a search: numba's third-party extensions (awkward's,
@@ -156,7 +173,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None, drawer: FigureWorker | None,
             besides: list[Beside], collected: Any = None) -> SearchResult:
     from ..fitting import fit
-    from ..resonances import match_known, pair_charge
+    from ..resonances import fitted_widths, match_known, pair_charge
     from ..stats.scan import scan
 
     clock = _Clock()
@@ -187,7 +204,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     _draw(drawer, cfg, ["candidates"], partial())
     # the calibration needs only the events: fitted first, so that its figure is drawn
     # while the statistics run instead of after them
-    cal, cal_hist, cal_fit = _calibration(cfg, col)
+    cal, cal_hist, cal_fit = calibrate(cfg, col)
     clock.lap("calibration")
     if cal is not None:
         _draw(drawer, cfg, ["calibration"], partial(calibration=cal),
@@ -335,7 +352,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     m_err = peak.get("error") or 0.0
     known = tuple(match_known(float(m_fit), error=float(m_err),
                               resolution=float(sigma_fn(float(m_fit))),
-                              charge=pair_charge(cfg.pairing.charge)))
+                              charge=pair_charge(cfg.pairing.charge),
+                              **fitted_widths(fres.to_dict().get("parameters") or {}
+                                              if fres is not None else {})))
     for finish in syst_pending:  # the spurious-signal test, beside until now
         syst = finish(syst)
     if mass_job is not None:
@@ -481,82 +500,3 @@ def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
         constraint=L.constraint, progress=progress,
         executor=_toy_executor(cfg, "toy limits") if L.method != "asymptotic" else None,
     )
-
-
-def _sigma_near(cfg: Config, mass: float) -> float:
-    """sigma at ``mass``, or at the nearest row of a resolution table that stops short of it:
-    for the calibration peak, whose window may lie beyond the table (which must cover only
-    the search window), where sigma is a fit's starting value or a matching tolerance."""
-    r = cfg.model.resolution.resolution
-    m = float(mass) if r.mass_range is None else float(np.clip(mass, *r.mass_range))
-    return float(r.sigma(m))
-
-
-def _calibration(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any]:
-    c = cfg.calibration
-    if not c.enabled:
-        return None, None, None
-    from ..fitting import fit
-    from ..resonances import lookup
-
-    ref = lookup(c.particle)
-    lo, hi = c.window
-    h = _fill(col, cfg, lo, hi, c.bins)
-    sig = _shape(c.signal, c.signal_options)
-    bkg = _shape(c.background, c.background_options)
-    names = [p.name for p in sig.parameters]
-    start: dict[str, float] = {"mass": ref.mass}
-    fixed: dict[str, float] = {}
-    if "sigma" in names:
-        start["sigma"] = _sigma_near(cfg, ref.mass)
-    if "width" in names:
-        start["width"] = ref.width
-        if c.fix_width:
-            fixed["width"] = ref.width
-    try:
-        fr = fit(h, sig, bkg, (lo, hi), start=start, fixed=fixed or None)
-    except FitError as exc:
-        raise FitError(f"calibration fit of {c.particle} in [{lo:g}, {hi:g}] GeV: {exc}") from None
-    d = fr.to_dict()
-    pm = d.get("peak_mass") or {}
-    m, e = float(pm.get("value", np.nan)), float(pm.get("error") or np.nan)
-    out = {
-        "particle": ref.name,
-        "pdgid": ref.pdgid,
-        "table_mass": ref.mass,
-        "table_mass_error": ref.mass_error,
-        "table_width": ref.width,
-        "window": [lo, hi],
-        "signal_shape": c.signal,
-        "background_shape": c.background,
-        "width_fixed_to_table": bool(fixed),
-        "valid": bool(d.get("valid")),
-        "problems": list(d.get("problems") or []),
-        "gof": d.get("gof"),
-        "fitted_mass": {"value": m, "error": e},
-        "fit": d,  # the whole fit (FitResult.to_dict): SearchResult.plot draws it
-        "fitted_resolution": _value_error(d, "sigma"),
-        "signal_yield": d.get("signal_yield"),
-        "shift": m - ref.mass,
-        "shift_relative_permille": 1000.0 * (m - ref.mass) / ref.mass,
-        "shift_sigma": (m - ref.mass) / np.hypot(e, ref.mass_error) if e > 0 else None,
-        "source": "particle package (PDG tables)",
-    }
-    from ..resonances import match_known, pair_charge
-
-    res_sigma = _sigma_near(cfg, m) if np.isfinite(m) else 0.0
-    out["known_matches"] = [k.to_dict() for k in match_known(
-        m, error=e if np.isfinite(e) else 0.0, resolution=res_sigma,
-        charge=pair_charge(cfg.pairing.charge))] if np.isfinite(m) else []
-    return out, h, fr
-
-
-def _value_error(d: Mapping[str, Any], name: str) -> dict[str, Any] | None:
-    """``{"value", "error"}`` of a fit parameter from ``FitResult.to_dict()``."""
-    p = (d.get("parameters") or {}).get(name)
-    if not isinstance(p, Mapping):
-        return None
-    return {"value": p.get("value"), "error": p.get("error")}
-
-
-# ---------------------------------------------------------------------------- spectrum
