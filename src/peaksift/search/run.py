@@ -273,12 +273,10 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             syst_jobs[getattr(fn, "__name__", "stage").replace("_", " ")] = job
             return job
 
-        syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
-                                                natural_width=width, blind=blind_window,
-                                                best_plain=best, progress=progress,
-                                                executor=_toy_executor(cfg), scanned=scanned,
-                                                signal_model=smodel, beside=beside,
-                                                pending=syst_pending)
+        syst, best, syst_scan = run_systematics(
+            cfg, hist, scan_sig, masses, natural_width=width, blind=blind_window,
+            best_plain=best, progress=progress, executor=_toy_executor(cfg),
+            scanned=scanned, signal_model=smodel, beside=beside, pending=syst_pending)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
