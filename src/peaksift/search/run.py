@@ -252,6 +252,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     syst = None
     syst_limits_job = None
     syst_jobs: dict[str, Beside] = {}  # stages of [systematics] beside it, by name
+    syst_pending: list[Any] = []  # what they still add to the block, collected after the fits
     if cfg.systematics.enabled:  # the numbers without systematics stay in the block
         from .systematics import run_systematics, systematic_limits_at
 
@@ -272,11 +273,10 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             syst_jobs[getattr(fn, "__name__", "stage").replace("_", " ")] = job
             return job
 
-        syst, best, syst_scan = run_systematics(cfg, hist, scan_sig, masses,
-                                                natural_width=width, blind=blind_window,
-                                                best_plain=best, progress=progress,
-                                                executor=_toy_executor(cfg), scanned=scanned,
-                                                signal_model=smodel, beside=beside)
+        syst, best, syst_scan = run_systematics(
+            cfg, hist, scan_sig, masses, natural_width=width, blind=blind_window,
+            best_plain=best, progress=progress, executor=_toy_executor(cfg),
+            scanned=scanned, signal_model=smodel, beside=beside, pending=syst_pending)
         clock.lap("systematics")
         _draw(drawer, cfg, ["background_envelope"], partial(systematics=syst))
 
@@ -353,6 +353,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
                               charge=pair_charge(cfg.pairing.charge),
                               **fitted_widths(fres.to_dict().get("parameters") or {}
                                               if fres is not None else {})))
+    for finish in syst_pending:  # the spurious-signal test, beside until now
+        syst = finish(syst)
     if mass_job is not None:
         syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None

@@ -85,11 +85,34 @@ def _spurious_job(cfg: Config, hist: Any, signal: Any, masses: np.ndarray,
                   natural_width=natural_width)
 
 
+def _with_spurious(block: dict[str, Any], sp: dict[str, dict[str, Any]], cfg: Config,
+                   masses: np.ndarray, best: dict[str, Any]) -> dict[str, Any]:
+    """``block`` with the spurious-signal results ``sp`` of :func:`spurious_signal` (the
+    ratio at ``best``'s mass beside each candidate's largest) and their notes first; a new
+    dict, ``block`` untouched (a figure job may be pickling it)."""
+    S = cfg.systematics
+    out = {k: {kk: vv for kk, vv in v.items() if kk != "ratio"} for k, v in sp.items()}
+    notes: list[str] = []
+    if S.spurious_uncertainty:  # no 'spurious' here: doubts.py flags those notes
+        notes.append("each candidate's largest signal on the template, over the whole range, "
+                     "is added in quadrature to the statistical error of the signal yield")
+    flagged = [k for k, v in sp.items() if v["flagged"]]
+    if flagged:
+        notes.append(f"spurious signal above {S.spurious_limit:g} of the statistical error: "
+                     f"{', '.join(flagged)}")
+    if sp and best.get("mass") is not None:  # each spurious signal at the best hypothesis
+        k = int(np.argmin(np.abs(np.asarray(masses, float) - float(best["mass"]))))
+        for label, v in sp.items():
+            out[label]["ratio_at_best"] = float(v["ratio"][k])
+    return {**block, "spurious_signal": out, "notes": notes + list(block["notes"])}
+
+
 def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                     natural_width: float | None, blind: Any, best_plain: dict[str, Any],
                     progress: bool, executor: Any,
                     scanned: Callable[[Any], None] | None = None,
-                    signal_model: Any = None, beside: Callable[..., Any] | None = None
+                    signal_model: Any = None, beside: Callable[..., Any] | None = None,
+                    pending: list[Callable[[dict[str, Any]], dict[str, Any]]] | None = None
                     ) -> tuple[dict[str, Any], dict[str, Any], Any]:
     """Run ``[systematics]``; returns ``(block, best with systematics, envelope or scan)``.
 
@@ -100,7 +123,9 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
     :class:`~peaksift.search.parallel.Beside`) runs the spurious-signal test beside the
     order test, the envelope and its toys.  With ``signal_model`` (``[signal_model]``)
     the scans take the model's shape and resolution (the spurious-signal test keeps the
-    configured ones).
+    configured ones).  With ``pending`` (a list), a spurious-signal test still running
+    beside is not waited for: ``pending`` receives ``finish(block) -> block`` that waits
+    and adds its results (nothing else here needs them), so the search fits meanwhile.
     """
     from ..stats.background_choice import choose_background, spurious_signal
     from ..stats.envelope import envelope_scan
@@ -120,37 +145,13 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                              "background_choice": None, "spurious_signal": None,
                              "envelope": None, "notes": []}
     choice = None
-    sp: dict[str, dict[str, Any]] = {}
+    sp: dict[str, dict[str, Any]] | None = None
     ratios: dict[str, float] | None = None
     if S.spurious_uncertainty and not (S.template and S.background_families):
         raise ConfigError("systematics.spurious_uncertainty needs systematics.template and "
                           "systematics.background_families (the spurious signal is measured "
                           "on the template with each candidate); set both or turn it off")
     sp_job = _spurious_job(cfg, hist, signal, masses, natural_width, beside)
-    sp_notes: list[str] = []  # the spurious signal's notes come first in block["notes"]
-
-    def spurious(choice: Any) -> None:
-        nonlocal sp, ratios
-        if sp_job is not None:
-            sp = sp_job.result()
-        else:
-            sp = spurious_signal(_template(cfg, hist), choice, signal, masses,
-                                 events=float(hist.total()), edges=np.asarray(hist.edges),
-                                 limit=S.spurious_limit, resolution=res.resolution,
-                                 natural_width=natural_width)
-        block["spurious_signal"] = {k: {kk: vv for kk, vv in v.items() if kk != "ratio"}
-                                    for k, v in sp.items()}
-        if S.spurious_uncertainty:  # each candidate's largest, over the whole range
-            ratios = {k: float(v["max_ratio"]) for k, v in sp.items()}
-            sp_notes.append(  # no 'spurious' here: doubts.py flags those notes
-                "each candidate's largest signal on the template, over the whole range, "
-                "is added in quadrature to the statistical error of the signal yield")
-        flagged = [k for k, v in sp.items() if v["flagged"]]
-        if flagged:
-            sp_notes.append(
-                f"spurious signal above {S.spurious_limit:g} of the statistical error: "
-                f"{', '.join(flagged)}")
-
     if S.background_families:
         try:
             choice = choose_background(hist, list(S.background_families), blind=blind,
@@ -159,9 +160,14 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
             raise FitError(f"systematics.background_families: {exc}") from None
         block["background_choice"] = choice.to_dict()
         # the envelope needs the spurious signals only to add them to its errors: else
-        # they are collected after the envelope's toys, having run beside them
+        # they are collected after the envelope's toys (or later), having run beside them
         if S.template and (S.spurious_uncertainty or sp_job is None):
-            spurious(choice)
+            sp = (sp_job.result() if sp_job is not None else spurious_signal(
+                _template(cfg, hist), choice, signal, masses, events=float(hist.total()),
+                edges=np.asarray(hist.edges), limit=S.spurious_limit,
+                resolution=res.resolution, natural_width=natural_width))
+            if S.spurious_uncertainty:  # each candidate's largest, over the whole range
+                ratios = {k: float(v["max_ratio"]) for k, v in sp.items()}
     toys = cfg.significance.toys
     gkw = {"seed": cfg.significance.seed, "progress": progress, "executor": executor}
     single = None
@@ -213,16 +219,17 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                                         u0=cfg.significance.reference_level, **gkw)
         block["nuisance_pulls"] = _pulls(nuis, sres.nuisance_factors, sres.best_index)
         obj = sres
-    if choice is not None and S.template and block["spurious_signal"] is None:
-        spurious(choice)  # the test that ran beside the envelope
-    block["notes"][:0] = sp_notes
     best = dict(best)
-    if sp and best.get("mass") is not None:  # each spurious signal at the best hypothesis
-        k = int(np.argmin(np.abs(np.asarray(masses, float) - float(best["mass"]))))
-        for label, v in sp.items():
-            block["spurious_signal"][label]["ratio_at_best"] = float(v["ratio"][k])
     block["with_systematics"] = best
     block["without_systematics"] = dict(best_plain)
+    if choice is not None and S.template and sp is None:  # the test that ran beside
+        job = sp_job
+        if pending is not None:
+            pending.append(lambda blk: _with_spurious(blk, job.result(), cfg, masses, best))
+            return block, best, obj
+        sp = job.result()
+    if sp is not None:
+        block = _with_spurious(block, sp, cfg, masses, best)
     return block, best, obj
 
 
