@@ -81,7 +81,8 @@ print(json.dumps({
 """
 
 _ORDER_SCRIPT = _COMMON + r"""
-from peaksift._style import draw_header, figure_style, new_figure, value_table
+from peaksift._style import draw_header, figure_style, new_figure
+from peaksift._value_table import value_table
 
 
 def others():

@@ -12,9 +12,8 @@ What to use when
 * :func:`particle_tex` -- a particle name from the tables typeset (``Z0`` -> ``Z^0``).
 * :class:`RunLabel` and :func:`draw_header` -- the run label (name, sqrt(s), integrated
   luminosity, channel) above the axes, and the figure's own statement under it.
-* :func:`value_table` -- the fitted numbers as a small aligned table (quantity, value,
-  error, unit) with a caption line, under the legend; :func:`touched` -- how many data
-  points, error bars or curve samples a legend or table covers (where either may go).
+* the fitted numbers' table and the test of where a box may go are in
+  :mod:`peaksift._value_table`.
 * :func:`shade_blinded` -- the blinded mass range, drawn the same way on every figure.
 * :func:`plain_log_ticks` -- a log y axis labelled with plain numbers (limits figures).
 
@@ -78,7 +77,6 @@ _RC = {
     "hatch.linewidth": 0.6,
 }
 
-_TABLE_FONT = 8.8
 
 
 # rc keys of the user's session rather than of a figure's look: left as the user has them
@@ -403,7 +401,7 @@ class RunLabel:
                     or self.channel)
 
 
-def _points(ax: Any, x: float, y: float) -> Any:
+def points_at(ax: Any, x: float, y: float) -> Any:
     """A transform in points whose origin is the axes point ``(x, y)`` (axes fraction)."""
     from matplotlib import transforms
 
@@ -433,104 +431,19 @@ def draw_header(ax: Any, run: RunLabel | None = None, note: str = "") -> None:
     size = 9.5
     y = 4.0 if note else 3.0
     if note:
-        ax.text(0.0, 4.0, note, transform=_points(ax, 0.0, 1.0), fontsize=8.8,
+        ax.text(0.0, 4.0, note, transform=points_at(ax, 0.0, 1.0), fontsize=8.8,
                 color=COLORS["muted"], va="bottom", ha="left")
         y = 4.0 + 8.8 * 1.45 * (note.count("\n") + 1)
     if run:
         x = 0.0
         if run.name:
-            ax.text(0.0, y, run.name, transform=_points(ax, 0.0, 1.0), fontsize=size,
+            ax.text(0.0, y, run.name, transform=points_at(ax, 0.0, 1.0), fontsize=size,
                     fontweight="bold", color=COLORS["label"], va="bottom", ha="left")
             x = text_width(run.name, size, "bold") + 9.0
         cond = run.conditions()
         if cond:
-            ax.text(x, y, cond, transform=_points(ax, 0.0, 1.0), fontsize=size,
+            ax.text(x, y, cond, transform=points_at(ax, 0.0, 1.0), fontsize=size,
                     color=COLORS["data"], va="bottom", ha="left")
-
-
-# ------------------------------------------------------------------------ value table
-def value_table_height(n_rows: int, *, caption: str = "", title: str = "") -> float:
-    """Height in points of :func:`value_table` with ``n_rows`` rows."""
-    lines = n_rows + (caption.count("\n") + 1 if caption else 0) + (1 if title else 0)
-    return lines * _TABLE_FONT * 1.55 + 8.0
-
-
-def touched(ax: Any, artist: Any, x: Any, lo: Any, hi: Any, pad: float = 3.0) -> int:
-    """How many of the vertical segments ``(x, lo)``-``(x, hi)`` in data coordinates (points
-    with their error bars; ``lo = hi`` for a curve's samples) come within ``pad`` points
-    (about a marker's radius) of ``artist``'s box (a legend, a table's patch), measured on
-    the figure's renderer with the axes as they are now."""
-    import numpy as np
-
-    box = artist.get_window_extent(ax.figure.canvas.get_renderer())
-    pad *= ax.figure.dpi / 72.0
-    a = ax.transData.transform(np.c_[x, lo])
-    b = ax.transData.transform(np.c_[x, hi])
-    ok = np.isfinite(a).all(axis=1) & np.isfinite(b).all(axis=1)
-    inside_x = (a[:, 0] >= box.x0 - pad) & (a[:, 0] <= box.x1 + pad)
-    bottom, top = np.minimum(a[:, 1], b[:, 1]), np.maximum(a[:, 1], b[:, 1])
-    inside_y = (top >= box.y0 - pad) & (bottom <= box.y1 + pad)
-    return int(np.count_nonzero(ok & inside_x & inside_y))
-
-
-def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: str = "",
-                below: Any = None, corner: str = "right", title: str = "") -> list[Any]:
-    """Fitted numbers as a small table: quantity | value | ± error | unit, aligned on the
-    ± sign, with an optional ``title`` row and a ``caption`` line (goodness of fit) under it.
-
-    Placed in the upper ``corner`` ("right" or "left") of ``ax``, below the legend
-    ``below`` when given (measured on the figure's renderer).  Returns its artists, the
-    box first (what :func:`touched` measures; remove them all to place it elsewhere).
-    """
-    from matplotlib.patches import FancyBboxPatch
-
-    if not rows:
-        return []
-    size = _TABLE_FONT
-    pad, gap, row_h = 5.0, 5.0, size * 1.55
-    cols = list(zip(*rows))
-    widths = [max(text_width(c, size) for c in col) if any(col) else 0.0 for col in cols]
-    inner = sum(widths) + gap * (len(widths) - 1)
-    # a long plain-text line renders up to ~4% wider on the Agg canvas (hinting) than its
-    # path measures (mathtext measures true)
-    cap_w = max((text_width(c, size - 0.6) * (1.0 if "$" in c else 1.04)
-                 for c in caption.split("\n")), default=0.0) if caption else 0.0
-    title_w = text_width(title, size, "bold") if title else 0.0
-    inner = max(inner, cap_w, title_w)
-    height = value_table_height(len(rows), caption=caption, title=title)
-    top = -6.0  # points below the axes' top
-    if below is not None:
-        renderer = ax.figure.canvas.get_renderer()
-        bb = below.get_window_extent(renderer)
-        ax_top = ax.get_window_extent(renderer).y1
-        top = -(ax_top - bb.y0) * 72.0 / ax.figure.dpi - 2.0
-    x0 = -8.0 - inner - 2 * pad if corner == "right" else 8.0
-    ax_x = 1.0 if corner == "right" else 0.0
-    tr = _points(ax, ax_x, 1.0)
-    out = [ax.add_patch(FancyBboxPatch((x0, top - height), inner + 2 * pad, height,
-                                       boxstyle="round,pad=0,rounding_size=3", transform=tr,
-                                       facecolor=COLORS["table"], edgecolor="#d3d7dc",
-                                       lw=0.6, zorder=4, clip_on=False))]
-    y = top - pad - size
-    if title:
-        out.append(ax.text(x0 + pad, y, title, transform=tr, fontsize=size,
-                           fontweight="bold", color=COLORS["label"], va="baseline",
-                           ha="left", zorder=5))
-        y -= row_h
-    for row in rows:
-        x = x0 + pad
-        for j, (cell, w) in enumerate(zip(row, widths)):
-            right = j == 1  # the value column ends at the ± sign
-            out.append(ax.text(x + w if right else x, y, cell, transform=tr, fontsize=size,
-                               ha="right" if right else "left", va="baseline", zorder=5,
-                               color=COLORS["data"] if j else COLORS["muted"]))
-            x += w + (2.5 if j == 1 else gap)
-        y -= row_h
-    for line in caption.split("\n") if caption else ():
-        out.append(ax.text(x0 + pad, y, line, transform=tr, fontsize=size - 0.6, ha="left",
-                           va="baseline", color=COLORS["muted"], zorder=5))
-        y -= row_h
-    return out
 
 
 # ------------------------------------------------------------------------- log axes

@@ -78,11 +78,11 @@ def invalid_caption(problems: Any, width: int = 52) -> str:
 
 def _place_table(ax: Any, legend: Any, draw: Any, keep: tuple[np.ndarray, ...]) -> None:
     """The value table where neither it nor the legend covers a point, an error bar or a
-    curve (``keep``: segments for :func:`peaksift._style.touched`): under the legend
+    curve (``keep``: segments for :func:`peaksift._value_table.touched`): under the legend
     (upper right), else the upper left corner; when neither is free, under the legend with
     the y axis raised (by 10% of its span a step) until both clear everything.
     ``draw(corner)`` draws the table there and returns its artists."""
-    from .._style import touched
+    from .._value_table import touched
 
     def clear(arts: list[Any]) -> bool:
         return (touched(ax, legend, *keep) == 0
@@ -125,13 +125,8 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     """
     from scipy.special import gammaincinv
 
-    from .._style import (
-        COLORS,
-        draw_header,
-        figure_style,
-        new_figure,
-        value_table,
-    )
+    from .._style import COLORS, draw_header, figure_style, new_figure
+    from .._value_table import value_table
 
     e, n = result.edges, result.observed
     c = 0.5 * (e[1:] + e[:-1])

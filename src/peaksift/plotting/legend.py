@@ -9,7 +9,7 @@ from typing import Any
 
 import numpy as np
 
-from .._style import touched
+from .._value_table import touched
 
 __all__ = ["place_legend"]
 
