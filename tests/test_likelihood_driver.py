@@ -159,6 +159,28 @@ def test_numpy_reference_path_agrees(background, monkeypatch):
     assert abs(fast.fval - ref.fval) < 1e-8
 
 
+def test_gaussian_width_rows_match_scipy():
+    """The width profile's compiled rows (one mass, many widths, each on its band of edges)
+    vs the truncated normal of scipy: within the band to 1e-12 of the largest fraction, 0
+    outside it (beyond 7 widths the normal holds < 3e-12 of its mass)."""
+    from peaksift.shapes.compiled import gaussian_width_rows
+
+    lo, hi, m = 100.0, 400.0, 180.0
+    edges = np.linspace(lo, hi, 301)
+    widths = 4.0 * 2.0 ** (np.arange(-6, 7) / 2)
+    i0 = np.maximum(np.searchsorted(edges, m - 7 * widths) - 1, 0).astype(np.int64)
+    i1 = np.minimum(np.searchsorted(edges, m + 7 * widths) + 1, edges.size - 1).astype(
+        np.int64)
+    out = np.full((widths.size, edges.size - 1), np.nan)
+    assert gaussian_width_rows(edges, m, widths, i0, i1, lo, hi, out)
+    for w, a, b, row in zip(widths, i0, i1, out):
+        pa, pb = stats.norm.cdf([lo, hi], m, w)
+        ref = np.diff(stats.norm.cdf(edges, m, w)) / (pb - pa)
+        assert np.max(np.abs(row[a:b] - ref[a:b])) < 1e-12 * ref.max()
+        assert np.all(row[:a] == 0.0) and np.all(row[b:] == 0.0)
+        assert ref[:a].sum() + ref[b:].sum() < 3e-12
+
+
 @pytest.mark.parametrize(("sigma", "window"), [(6.0, (LO, HI)), (3.0, (110.0, 200.0))])
 def test_gaussian_rows_match_scipy(sigma, window):
     """The coarse scan's compiled Gaussian bin fractions vs the truncated normal of scipy

@@ -236,3 +236,28 @@ def test_blinded_limits_with_systematics_give_expected_only_inside():
     for i in range(3):
         assert 0 < res["expected_minus2"][i] < res["expected"][i] < res["expected_plus2"][i]
     assert res["observed"][0] > 0 and res["observed"][2] > 0
+
+
+@pytest.mark.parametrize("n", [4, 5, 17, 30])
+def test_profile_spline_is_the_not_a_knot_cubic_spline(n):
+    """The curves' spline (written out, without scipy.interpolate) against
+    ``scipy.interpolate.CubicSpline`` (not-a-knot ends, its default): coefficients and
+    values between the knots to 1e-12 relative, on even and uneven knots."""
+    from scipy.interpolate import CubicSpline
+
+    from peaksift.stats.limits_systematics import _spline_coefficients
+
+    rng = np.random.default_rng(n)
+    for x in (np.linspace(0.0, 1.0, n), np.cumsum(rng.uniform(0.5, 1.5, n))):
+        y = rng.normal(size=(n, 3)) + 40.0 * (x[:, None] - x.mean()) ** 2
+        ref = CubicSpline(x, y)
+        c = _spline_coefficients(x, y)
+        assert c.shape == ref.c.shape
+        np.testing.assert_allclose(c, ref.c, rtol=1e-12, atol=1e-12 * np.abs(ref.c).max())
+        t = np.linspace(x[0], x[-1], 97)
+        i = np.clip(np.searchsorted(x, t) - 1, 0, n - 2)
+        d = (t - x[i])[:, None]
+        k = np.arange(3)[None, :]
+        mine = ((c[0][i[:, None], k] * d + c[1][i[:, None], k]) * d
+                + c[2][i[:, None], k]) * d + c[3][i[:, None], k]
+        np.testing.assert_allclose(mine, ref(t), rtol=1e-12, atol=1e-12 * np.abs(y).max())

@@ -140,6 +140,30 @@ def test_format_pm_rounds_error_to_two_digits():
     assert format_pm(1.0, None) == "1"
 
 
+def test_masses_keep_five_significant_digits_below_10_gev():
+    # a hypothesis at the phi(1020) (1.0194 GeV) must not read "1.02": two decimals from
+    # 10 GeV up, five significant digits below (common practice for quoting masses)
+    from peaksift._format import mass_text
+
+    assert mass_text(152.6243) == "152.62"
+    assert mass_text(1.019411) == "1.0194"
+    assert mass_text(0.497611) == "0.49761"
+    assert mass_text(float("nan")) == "n/a"
+
+
+def test_fit_settings_use_the_one_value_error_format():
+    # the summary's and report's "fit settings": a constraint's centre and width formatted
+    # as every value ± error (two digits on the error, common practice), with its unit
+    from peaksift.report_sections import fit_settings_text
+
+    st = {"sigma_from_resolution": {"at_mass": 1.0194},
+          "constraints": {"sigma": {"center": 3.0e-4, "width": 6.0e-5, "kind": "gaussian"},
+                          "width": {"center": 4.249e-3, "width": 0.1, "kind": "lognormal"}}}
+    assert fit_settings_text(st) == (
+        "sigma constrained to the resolution model, 0.000300 ± 0.000060 GeV (Gaussian); "
+        "width constrained to 0.004249 GeV within a relative 0.1 (log-normal)")
+
+
 def test_results_json_atomic_and_nan_free(tmp_path):
     r = _results()
     r["fit"]["gof"]["p_value"] = float("nan")

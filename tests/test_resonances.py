@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 import pytest
 
 from peaksift.errors import ConfigError
-from peaksift.resonances import lookup, match_known, pair_charge
+from peaksift.resonances import fitted_widths, lookup, match_known, pair_charge
 
 particle = pytest.importorskip("particle")
 Particle = particle.Particle
@@ -135,3 +136,59 @@ print(json.dumps({"untouched": untouched, "same": ours == ref, "n": len(ours)}))
     got = __import__("json").loads(out.stdout)
     assert got["untouched"], "building the table loaded or changed Particle's own table"
     assert got["same"] and got["n"] > 200  # exact equality: the same file, the same floats
+
+
+def test_a_measured_width_keeps_only_states_of_that_width():
+    # The phi(1020) as the hadron demo measures it (Voigt, width 4.36 +- 0.22 MeV).  Source:
+    # the particle package: phi(1020) width 4.249 +- 0.013 MeV; f(0)(980), 60 +- 50 MeV, sits
+    # within its width of the same mass, so the mass rule alone keeps it.
+    phi, f0 = Particle.from_name("phi(1020)"), Particle.from_name("f(0)(980)")
+    m, dm = phi.mass / 1000.0, 0.067e-3
+    by_mass = [k.name for k in match_known(m, error=dm, resolution=0.3e-3, charge=0)]
+    assert phi.name in by_mass and f0.name in by_mass
+    by_width = match_known(m, error=dm, resolution=0.3e-3, charge=0, width=(4.36e-3, 0.22e-3))
+    assert [k.name for k in by_width] == [phi.name]
+    # a state whose table range [G - dG-, G + dG+] misses the fit's 3-sigma interval is out
+    for k in match_known(m, error=dm, resolution=0.3e-3, charge=0, width=(20e-3, 1e-3)):
+        p = Particle.from_pdgid(k.pdgid)
+        low, high = (p.width - p.width_lower) / 1e3, (p.width + p.width_upper) / 1e3
+        assert low <= 23e-3 and high >= 17e-3
+
+
+def test_a_narrow_gaussian_peak_is_not_a_broad_state():
+    # Z0 (particle package): width 2.4955 GeV.  A Gaussian of sigma 2.0 GeV at its mass is a
+    # Z seen with 2 GeV resolution; one of sigma 0.1 +- 0.01 GeV (FWHM 0.31 GeV, twice 0.61)
+    # cannot be a state 2.5 GeV wide.
+    z = _z()
+    m = z.mass / 1000.0
+    assert "Z0" in [k.name for k in match_known(m, error=0.05, charge=0, sigma=(2.0, 0.05))]
+    assert "Z0" not in [k.name for k in match_known(m, error=0.05, charge=0, sigma=(0.1, 0.01))]
+
+
+def test_a_gaussian_fitted_to_a_breit_wigner_still_matches_its_state():
+    # A narrow Breit-Wigner (the phi(1020)'s table mass and width, particle package) smeared
+    # by a 0.3 MeV Gaussian resolution over a flat background, fitted with peaksift's Gaussian:
+    # the fitted sigma must not exclude the phi (the width rule's factor 2 margin).
+    import peaksift
+
+    phi = Particle.from_name("phi(1020)")
+    m0, gamma = phi.mass / 1000.0, phi.width / 1000.0
+    rng = np.random.default_rng(11)
+    sig = m0 + 0.5 * gamma * rng.standard_cauchy(6000) + rng.normal(0.0, 0.3e-3, 6000)
+    masses = np.concatenate([sig, rng.uniform(1.0, 1.04, 4000)])
+    masses = masses[(masses > 1.0) & (masses < 1.04)]
+    fr = peaksift.fit(masses, window=(1.0, 1.04), bins=80, signal="gaussian",
+                      background="bernstein")
+    s = fr.to_dict()["parameters"]["sigma"]
+    out = match_known(s_mass := fr.to_dict()["parameters"]["mass"]["value"],
+                      error=fr.to_dict()["parameters"]["mass"]["error"], resolution=0.3e-3,
+                      charge=0, **fitted_widths(fr.to_dict()["parameters"]))
+    assert abs(s_mass - m0) < 0.5e-3
+    assert 2.3548 * s["value"] < 1.5 * gamma  # the fit really is about the peak's width
+    assert phi.name in [k.name for k in out]
+
+
+def test_fitted_widths_leaves_fixed_parameters_out():
+    params = {"width": {"value": 4e-3, "error": 0.0, "fixed": True},
+              "sigma": {"value": 3e-4, "error": 6e-5, "fixed": False}}
+    assert fitted_widths(params) == {"sigma": (3e-4, 6e-5)}

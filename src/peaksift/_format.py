@@ -7,7 +7,9 @@ numpy scalars, strings -- and returns text; a missing or non-finite number is ``
 
 * :func:`as_finite`     -- a finite float or None (the test every other function makes).
 * :func:`number`        -- a plain number (4 significant digits; ints with a thousands mark).
-* :func:`fixed`         -- a fixed number of decimals (masses, Z).
+* :func:`fixed`         -- a fixed number of decimals (Z, shifts).
+* :func:`mass_text`     -- a mass: two decimals from 10 up, five significant digits below
+  (a hypothesis at 1.0194 GeV, not 1.02).
 * :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits,
   thousands marked like the counts' (:func:`pm_parts`: the same as two texts, for aligned
   tables).
@@ -27,8 +29,8 @@ from typing import Any
 
 from ._json import finite
 
-__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "number", "p_value", "pm_parts",
-           "significance"]
+__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "mass_text", "number",
+           "p_value", "pm_parts", "significance"]
 
 #: what every function prints for a missing or non-finite number
 NA = "n/a"
@@ -69,6 +71,16 @@ def fixed(x: Any, decimals: int = 2, *, signed: bool = False) -> str:
     if v is None:
         return NA
     return f"{v:+.{decimals}f}" if signed else f"{v:.{decimals}f}"
+
+
+def mass_text(x: Any) -> str:
+    """A mass (a hypothesis, a best point): two decimals from 10 up (152.62), five significant
+    digits below (1.0194, 0.49761), at most six decimals, or ``"n/a"``."""
+    v = as_finite(x)
+    if v is None:
+        return NA
+    lead = math.floor(math.log10(abs(v))) if v != 0 else 0
+    return fixed(v, 2 if lead >= 1 else min(6, 4 - lead))
 
 
 def format_pm(value: Any, error: Any, unit: str = "") -> str:

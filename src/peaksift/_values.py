@@ -114,8 +114,24 @@ def _frozen(v: Any) -> Any:
         v.flags.writeable = False
         return v
     if isinstance(v, dict):
-        return MappingProxyType({k: _frozen(x) for k, x in v.items()})
+        return MappingProxyType({k: x if type(x) in _PLAIN else _frozen(x)
+                                 for k, x in v.items()})
     return v
+
+
+#: values :func:`_frozen` leaves as they are (checked by type first: a fit's result holds
+#: dicts of many floats)
+_PLAIN = frozenset({float, int, str, bool, tuple, type(None), Measurement})
+
+
+def _field_names(cls: type) -> tuple[str, ...]:
+    """The dataclass fields of ``cls`` by name, looked up once per class (``fields()``
+    builds its tuple anew on every call)."""
+    names = cls.__dict__.get("_frozen_fields")
+    if names is None:
+        names = tuple(f.name for f in dataclasses.fields(cls))  # type: ignore[arg-type]
+        type.__setattr__(cls, "_frozen_fields", names)
+    return names
 
 
 def summary_html(name: str, rows: Any, note: str = "") -> str:
@@ -142,8 +158,10 @@ class FrozenValue:
         return summary_html(type(self).__name__, self._summary())
 
     def __post_init__(self) -> None:
-        for f in dataclasses.fields(self):  # type: ignore[arg-type]
-            object.__setattr__(self, f.name, _frozen(getattr(self, f.name)))
+        for name in _field_names(type(self)):
+            v = getattr(self, name)
+            if type(v) not in _PLAIN:
+                object.__setattr__(self, name, _frozen(v))
 
     def __eq__(self, other: object) -> bool:
         if type(other) is not type(self):

@@ -137,7 +137,7 @@ def _summary(result: object) -> str:
 def _summary_text(d: Mapping[str, Any]) -> str:
     """:func:`_summary` from the results dictionary; every number goes through
     :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
-    from ._format import fixed, format_pm, number, p_value, significance
+    from ._format import fixed, format_pm, mass_text, number, p_value, significance
 
     def part(m: Any, key: str) -> Mapping[str, Any]:
         v = m.get(key) if isinstance(m, Mapping) else None
@@ -150,7 +150,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
              _row("events read", number(inp.get("events_read"))),
              _row("candidates in sidebands" if blinded else "candidates in window",
                   number(inp.get("candidates"))),
-             _row("best mass hypothesis", f"{fixed(best.get('mass'))} GeV")]
+             _row("best mass hypothesis", f"{mass_text(best.get('mass'))} GeV")]
     if blinded:  # intended: no fit inside the blinded window, which is not a failure
         lines.append(_row("signal fit", "not made: the run is blinded as configured "
                                         "(--unblind to fit)"))

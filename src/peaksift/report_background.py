@@ -10,7 +10,7 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
-from ._format import fixed, number, p_value
+from ._format import fixed, mass_text, number, p_value
 from .report_sections import CAPTIONS, Block, figure_block
 
 
@@ -52,7 +52,7 @@ def _limit_blocks(lim: Any) -> list[Block]:
 
     methods = list(w.get("methods") or [])
     toy = [i < len(methods) and methods[i] == "toys" for i in range(len(mass))]
-    rows = [[fixed(mass[i]) + (" (toys)" if toy[i] else ""), at(wo, "observed", i),
+    rows = [[mass_text(mass[i]) + (" (toys)" if toy[i] else ""), at(wo, "observed", i),
              at(w, "observed", i), at(wo, "expected", i), at(w, "expected", i)]
             for i in range(len(mass))]
     how = ("asymptotic" if not any(toy) else

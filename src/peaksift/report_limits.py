@@ -10,7 +10,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from ._format import as_finite, fixed
+from ._format import as_finite, fixed, mass_text
 from .report_sections import Block, caption_for, figure_block, num_text
 
 
@@ -34,7 +34,7 @@ def _limit_rows(r: Mapping[str, Any]) -> tuple[list[str], list[list[str]]]:
         def g(k: str, i: int = i) -> str:  # one precision down the whole table
             v = lim.get(k) or []
             return fixed(v[i], 2) if i < len(v) else "n/a"
-        rows.append([fixed(m[i]), g("observed"), g("expected"), g("expected_minus2"),
+        rows.append([mass_text(m[i]), g("observed"), g("expected"), g("expected_minus2"),
                      g("expected_minus1"), g("expected_plus1"), g("expected_plus2"),
                      _limit_method(lim, i)])
     return head, rows

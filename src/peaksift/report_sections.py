@@ -27,6 +27,7 @@ from ._format import (
     fixed,
     format_interval,
     format_pm,
+    mass_text,
     number,
     p_value,
     significance,
@@ -138,6 +139,10 @@ def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None
         rows.insert(at + 1, ("Fit settings", text))
 
 
+#: the signal parameters measured in GeV (the others are yields, shape numbers, fractions)
+_MASS_LIKE = ("mass", "sigma", "width")
+
+
 def fit_settings_text(st: Mapping[str, Any]) -> str:
     """What ``fit.settings`` held, constrained or bounded, in words."""
     tie = st.get("sigma_from_resolution") or {}
@@ -148,9 +153,13 @@ def fit_settings_text(st: Mapping[str, Any]) -> str:
                      else f"{k} fixed at {num_text(v, 6)}")
     for k, c in (st.get("constraints") or {}).items():
         src = "the resolution model, " if tie and k == "sigma" else ""
-        rel = " (relative, log-normal)" if c.get("kind") == "lognormal" else " (Gaussian)"
-        parts.append(f"{k} constrained to {src}{num_text(c.get('center'))} \u00b1 "
-                     f"{num_text(c.get('width'), 3)}{rel}")
+        unit = "GeV" if k in _MASS_LIKE else ""
+        if c.get("kind") == "lognormal":  # its width is relative: a fraction, no unit
+            text = (f"{num_text(c.get('center'))}{' ' + unit if unit else ''} within a relative "
+                    f"{num_text(c.get('width'), 3)} (log-normal)")
+        else:  # value ± error as everywhere else (PDG rounding, one format)
+            text = f"{format_pm(c.get('center'), c.get('width'), unit)} (Gaussian)"
+        parts.append(f"{k} constrained to {src}{text}")
     for k, (a, b) in (st.get("bounds") or {}).items():
         parts.append(f"{k} bounded to [{num_text(a)}, {num_text(b)}]")
     return "; ".join(parts)
@@ -181,7 +190,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     # with [systematics] the headline numbers are the profiled ones: say so where they stand
     tag = " (with systematics)" if r.get("systematics") else ""
     rows = [
-        ("Best mass hypothesis", f"{fixed(best.get('mass'))} GeV"),
+        ("Best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"),
         ("Local significance" + tag, significance(best, "local")),
         ("Global significance" + tag, significance(best, "global")),
     ]

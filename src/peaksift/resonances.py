@@ -15,6 +15,21 @@ peak at :math:`m` with fit error :math:`\\sigma_{fit}` and detector resolution
     d = \\frac{|m - M|}{\\sqrt{\\sigma_{fit}^2 + \\sigma_{res}^2 + (\\Gamma/2)^2 + \\delta M^2}}
     \\le n_\\sigma \\quad (\\text{default } 3),
 
+its width fits the peak's, when the fit measured one (so that a peak a few MeV wide is not
+matched to a state hundreds of MeV wide that happens to be centred near it):
+
+* a fitted natural width :math:`\\Gamma_{fit} \\pm \\delta\\Gamma_{fit}` (Breit-Wigner, Voigt): the
+  tables' width range :math:`[\\Gamma - \\delta\\Gamma_-, \\Gamma + \\delta\\Gamma_+]` must overlap the
+  fit's interval :math:`\\Gamma_{fit} \\pm n_\\sigma \\delta\\Gamma_{fit}` (for broad states the tables'
+  errors are the range of the estimates, e.g. 100-800 MeV, not Gaussian errors to be scaled);
+* a fitted Gaussian width :math:`\\sigma_{fit} \\pm \\delta\\sigma_{fit}` (no natural width in the
+  fit) bounds the state's full width from above, since a resonance cannot make a peak much
+  narrower than itself: :math:`\\Gamma - \\delta\\Gamma_- \\le 2 \\cdot 2\\sqrt{2\\ln 2}\\,
+  (\\sigma_{fit} + n_\\sigma\\,\\delta\\sigma_{fit})`.  A Gaussian (plus a linear background)
+  fitted to a Breit-Wigner comes out with 0.95-1.3 times its FWHM for windows of 1.5-10
+  times Γ (least squares, checked numerically), and a Gaussian matching the Breit-Wigner's
+  curvature at the top with 0.83 times: the factor 2 keeps every true match in;
+
 and its electric charge fits the pair: a neutral state for an opposite-charge pair, charge
 :math:`\\pm 2` for a same-sign pair, any charge when the pair charge is not known.  The natural
 width enters as the half width at half maximum, :math:`\\Gamma/2`, the Breit-Wigner's
@@ -35,7 +50,7 @@ from typing import Any
 
 from .errors import InputError
 
-__all__ = ["KnownMatch", "lookup", "match_known", "pair_charge"]
+__all__ = ["KnownMatch", "fitted_widths", "lookup", "match_known", "pair_charge"]
 
 
 @dataclass(frozen=True)
@@ -92,6 +107,8 @@ class _Entry:
     mass: float
     mass_error: float
     width: float
+    width_low: float   # the tables' width range, GeV (both ``width`` when no errors)
+    width_high: float
     charge: float
 
 
@@ -151,6 +168,8 @@ def _table() -> tuple[_Entry, ...]:
                 mass=float(p.mass) / 1000.0,  # the tables use MeV
                 mass_error=0.5 * (float(up) + float(lo)) / 1000.0,
                 width=(float(p.width) / 1000.0) if p.width is not None else 0.0,
+                width_low=(float(p.width or 0.0) - float(p.width_lower or 0.0)) / 1000.0,
+                width_high=(float(p.width or 0.0) + float(p.width_upper or 0.0)) / 1000.0,
                 charge=float(p.charge) if p.charge is not None else 0.0,
             )
         )
@@ -194,6 +213,8 @@ def match_known(
     resolution: float = 0.0,
     charge: int | None = 0,
     n_sigma: float = 3.0,
+    width: tuple[float, float] | None = None,
+    sigma: tuple[float, float] | None = None,
 ) -> list[KnownMatch]:
     """Known particles compatible with a peak at ``mass`` GeV, nearest first.
 
@@ -210,6 +231,11 @@ def match_known(
         same-sign pairs, None for any charge.
     n_sigma : float
         Matching distance in combined standard deviations (module guide).
+    width : (float, float) or None
+        The peak's fitted natural width and its error, GeV, when the fit measured one.
+    sigma : (float, float) or None
+        The peak's fitted Gaussian width and its error, GeV, when the fit has no natural
+        width (ignored when ``width`` is given).
 
     Returns
     -------
@@ -228,7 +254,38 @@ def match_known(
         if s2 <= 0:
             continue
         d = abs(m - e.mass) / math.sqrt(s2)
-        if d <= n_sigma:
+        if d <= n_sigma and _widths_agree(e, width, sigma, n_sigma):
             out.append(KnownMatch(e.name, e.pdgid, e.mass, e.mass_error, e.width, e.charge, d))
     out.sort(key=lambda k: (k.distance_sigma, k.pdgid))
+    return out
+
+
+#: full width at half maximum of a Gaussian over its standard deviation
+_FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
+
+
+def _widths_agree(e: _Entry, width: tuple[float, float] | None,
+                  sigma: tuple[float, float] | None, n_sigma: float) -> bool:
+    """The module guide's width rule (True when the fit measured no width)."""
+    if width is not None and all(math.isfinite(float(v)) for v in width):
+        reach = n_sigma * abs(float(width[1]))
+        return e.width_low <= float(width[0]) + reach and e.width_high >= float(width[0]) - reach
+    if sigma is not None and all(math.isfinite(float(v)) for v in sigma):
+        return e.width_low <= 2.0 * _FWHM_PER_SIGMA * (abs(float(sigma[0]))
+                                                       + n_sigma * abs(float(sigma[1])))
+    return True
+
+
+def fitted_widths(parameters: Any) -> dict[str, tuple[float, float]]:
+    """``width=`` / ``sigma=`` for :func:`match_known` from a fit's parameters as results.json
+    lists them (``{"width": {"value", "error", "fixed"}, ...}``): a parameter held fixed
+    measured nothing and is left out."""
+    out: dict[str, tuple[float, float]] = {}
+    for name in ("width", "sigma"):
+        p = parameters.get(name) if hasattr(parameters, "get") else None
+        if not hasattr(p, "get") or p.get("fixed"):
+            continue
+        v, err = p.get("value"), p.get("error")
+        if isinstance(v, (int, float)) and isinstance(err, (int, float)) and err > 0:
+            out[name] = (float(v), float(err))
     return out

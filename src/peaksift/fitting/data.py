@@ -50,7 +50,8 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
             raise FitError("an unbinned fit needs the masses themselves, not a histogram; "
                            "pass the array of masses or use binned=True")
         try:
-            h = spec if window is None else spec.restrict(as_window(window))
+            h = spec if window is None or _covers(spec, window) else spec.restrict(
+                as_window(window))
         except InputError as exc:
             raise FitError(f"fit window: {exc}") from None
         n, n2 = h.values(), h.variances()
@@ -119,6 +120,18 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
     nb = int(np.clip(x.size // 20, 5, 100))
     gof = MassHistogram.from_masses(x, w, bins=nb, range=(lo, hi))
     return FitData(False, reason, weighted, None, None, None, x, w, (lo, hi), total, "GeV", gof)
+
+
+def _covers(h: Any, window: Any) -> bool:
+    """Whether ``window`` holds every bin of ``h`` (``restrict`` would keep them all: the
+    histogram is then fitted as it is, without a copy); False for anything ``restrict``
+    must look at (and judge)."""
+    try:
+        lo, hi = as_window(window)
+    except InputError:
+        return False
+    tol = 1e-9 * (h.hi - h.lo)  # restrict's
+    return lo - tol <= h.edges[0] and h.edges[-1] <= hi + tol
 
 
 def _edges(bins: Any, lo: float, hi: float) -> np.ndarray:

@@ -98,13 +98,14 @@ def _place_table(ax: Any, legend: Any, draw: Any, keep: tuple[np.ndarray, ...]) 
     for _ in range(60):
         if clear(arts):
             return
-        y0, y1 = ax.get_ylim()
-        ax.set_ylim(y0, y1 + 0.1 * (y1 - y0))
+        y0, y1 = ax.get_ylim()  # a tenth of the span, on the axis as it is drawn
+        ax.set_ylim(y0, y1 * (y1 / y0) ** 0.1 if ax.get_yscale() == "log"
+                    else y1 + 0.1 * (y1 - y0))
 
 
 def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
                fig: Any = None, run: Any = None, symbol: str | None = None,
-               note: str = "", marks: Any = ()) -> Any:
+               note: str = "", marks: Any = (), log: bool = False) -> Any:
     """Data with Poisson error bars, total model, signal and (dashed) background, a pulls
     panel underneath and the fitted numbers in a table.  Returns the matplotlib Figure
     (saved to ``path`` if given).
@@ -114,6 +115,7 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     statement under it.  ``symbol``: mathtext of the mass (default ``m``), e.g.
     ``m_{\\mu\\mu}``.  ``marks``: ``(mass, label, colour, linestyle)`` vertical lines drawn
     on both panels and named in the legend (the calibration's fitted and tabulated masses).
+    ``log``: a logarithmic count axis (set before the legend and the table are placed).
 
     Unweighted counts get central 68.3 % Garwood intervals
     (``chi2.ppf(0.1587, 2n)/2``, ``chi2.ppf(0.8413, 2n+2)/2``; Garwood, Biometrika 28
@@ -165,7 +167,15 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
                         label=k.replace("_", " "))
         a1.set_ylabel(f"candidates / {number(ref_bw, 3)} {result.unit}")
         top = max(float(np.max((n + hi_err) * scale_n)), float(np.max(total * ref_bw)))
-        a1.set_ylim(0, 1.6 * top)  # headroom for the legend and the table, once
+        floor = 0.0
+        if log:  # from a third of the smallest count, a quarter of the decades above the
+            # top: the table's placement raises it further only as far as the boxes need
+            pos = (n * scale_n)[n > 0]
+            floor = 0.3 * float(pos.min()) if pos.size else 0.1
+            a1.set_yscale("log")
+            a1.set_ylim(floor, top * max(top / floor, 10.0) ** 0.25)
+        else:
+            a1.set_ylim(0, 1.6 * top)  # headroom for the legend and the table, once
         for x, label, color, ls in marks:
             for a in (a1, a2):
                 a.axvline(float(x), color=color, lw=1.0, ls=ls, zorder=1,
@@ -182,9 +192,9 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
         # bars and every curve drawn (its samples)
         curves = [total, *comps.values()]
         drawn = np.concatenate([v * ref_bw for v in curves])
-        keep = (np.concatenate([c, np.tile(xs, len(curves))]),
-                np.concatenate([(n - lo_err) * scale_n, drawn]),
-                np.concatenate([(n + hi_err) * scale_n, drawn]))
+        keep = (np.concatenate([c, np.tile(xs, len(curves))]),  # (a log axis: from its floor)
+                np.maximum(np.concatenate([(n - lo_err) * scale_n, drawn]), floor),
+                np.maximum(np.concatenate([(n + hi_err) * scale_n, drawn]), floor))
         _place_table(a1, leg, lambda corner: value_table(
             a1, rows, caption=caption, below=leg if corner == "right" else None,
             corner=corner, title=title_t), keep)

@@ -79,8 +79,11 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
             treatment = "sandwich covariance H^-1 D H^-1 (Langenbruch 2022)"
             if posdef:
                 free_cov = free_cov @ cost.score_outer(xbest) @ free_cov
-    cov = np.zeros((npar, npar))
-    cov[np.ix_(free_idx, free_idx)] = free_cov
+    if free_idx.size == npar:  # every parameter free (free_idx is sorted): no scatter
+        cov = np.array(free_cov, float)
+    else:
+        cov = np.zeros((npar, npar))
+        cov[np.ix_(free_idx, free_idx)] = free_cov
     for i_t, i_s, tie in ties:  # a tied parameter's errors follow its source's
         k = tie.slope(float(vals[i_s]))
         cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]

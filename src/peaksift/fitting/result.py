@@ -372,14 +372,16 @@ class FitResult(FrozenValue):
                 f"{self.unit}</p></div>")
 
     def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
-             run: Any = None, symbol: str | None = None, note: str = "") -> Any:
+             run: Any = None, symbol: str | None = None, note: str = "",
+             log: bool = False) -> Any:
         """Data, total model, signal and background, with pulls underneath and the fitted
         numbers in a table; returns a matplotlib Figure drawn without pyplot (the user's
         backend is left alone).  ``fig``: draw on this empty Figure instead; ``run``: a
-        run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``).  See
+        run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``); ``log``: a
+        logarithmic count axis.  See
         :func:`peaksift.fitting.figure.fit_figure`."""
         from .figure import fit_figure
 
         return fit_figure(self, path, title=title, fig=fig, run=run, symbol=symbol,
-                          note=note)
+                          note=note, log=log)
 

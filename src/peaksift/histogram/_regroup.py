@@ -45,6 +45,20 @@ def restrict(cls: Any, hist: Any, window: tuple[float, float]) -> Any:
     return h
 
 
+def _subset(old: np.ndarray, edges: Any) -> np.ndarray | None:
+    """The indices of ``edges`` among ``old`` when ``edges`` is a float array of current
+    edges, each exactly one of them and increasing (a fit's coarser start bins); None for
+    anything else, which the checked path then judges."""
+    if not (isinstance(edges, np.ndarray) and edges.dtype == float and edges.ndim == 1
+            and edges.size >= 2):
+        return None
+    idx = np.searchsorted(old, edges)
+    if idx[-1] >= old.size or not (old[idx] == edges).all() or not (
+            idx[1:] > idx[:-1]).all():
+        return None
+    return idx
+
+
 def rebin(cls: Any, hist: Any, factor: int | None, edges: Any) -> Any:
     """``MassHistogram.rebin``: bins merged by ``factor`` or onto ``edges`` (a ``cls``)."""
     if (factor is None) == (edges is None):
@@ -60,6 +74,8 @@ def rebin(cls: Any, hist: Any, factor: int | None, edges: Any) -> Any:
             )
         keep = np.arange(0, hist.nbins + 1, factor)
     else:
+        keep = _subset(hist.edges, edges)
+    if keep is None:
         new = check_edges(edges)
         # nearest current edge to each new one; it must agree to rounding
         top = hist.edges.size - 1

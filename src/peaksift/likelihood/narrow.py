@@ -48,8 +48,6 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
     gain first; only gains within :data:`NARROW_MARGIN` of ``q_best``, and a position
     whose nearby bins' Poisson deviances (they bound its gain) fall short of that is not
     evaluated; nor is one inside an ``exclude`` interval (``(lo, hi)`` masses)."""
-    from scipy.special import ndtr
-
     e = np.asarray(edges, float)
     nb = e.size - 1
     sc = np.ones(nb) if scale is None else np.broadcast_to(np.asarray(scale, float), (nb,))
@@ -60,19 +58,23 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
         dev = 2.0 * sc * (bb - nn + np.where(nn > 0, nn * np.log(np.where(nn > 0, nn, 1.0) / bb),
                                             0.0))
     dev = np.where(np.isfinite(dev), dev, 0.0)
-    # padding: k empty bins of zero width on each side
-    ep = np.concatenate([np.full(k, e[0]), e, np.full(k, e[-1])])
-    npd = np.concatenate([np.zeros(k), nn, np.zeros(k)])
-    bpd = np.concatenate([np.ones(k), bb, np.ones(k)])
-    spd = np.concatenate([np.zeros(k), sc, np.zeros(k)])
-    cdev = np.concatenate([[0.0], np.cumsum(np.concatenate([np.zeros(k), dev, np.zeros(k)]))])
+    # k empty bins on each side (the padding below): their deviance is 0
+    cdev = np.concatenate([np.zeros(k + 1), np.cumsum(dev), np.full(k, 0.0)])
+    cdev[nb + k + 1:] = cdev[nb + k]
     bound = cdev[2 * k + 1:] - cdev[:nb]  # deviances of bins j-k .. j+k
     keep = (bound > 0) & (bound >= q_best - NARROW_MARGIN)
     for lo, hi in exclude:
         keep &= (e[1:] <= lo) | (e[:-1] >= hi)
     rows = np.flatnonzero(keep)
-    if rows.size == 0:
+    if rows.size == 0:  # (on a clear peak, usually: nothing near the best gain)
         return []
+    from scipy.special import ndtr
+
+    # padding: k empty bins of zero width on each side
+    ep = np.concatenate([np.full(k, e[0]), e, np.full(k, e[-1])])
+    npd = np.concatenate([np.zeros(k), nn, np.zeros(k)])
+    bpd = np.concatenate([np.ones(k), bb, np.ones(k)])
+    spd = np.concatenate([np.zeros(k), sc, np.zeros(k)])
     width = np.diff(e)[rows]
     centre = 0.5 * (e[rows] + e[rows + 1])
     # every (position, width) variant of every row in one stack: (variants x rows) rows

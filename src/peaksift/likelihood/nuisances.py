@@ -204,7 +204,7 @@ class SignalNuisances:
         to first order (the errors of :math:`m/k` added in quadrature).  Without a mass
         scale the errors come back unchanged.  Returns ``(error_minus, error_plus)``.
         """
-        from scipy import optimize
+        from ..shapes.roots import bounded_minimum, brentq  # scipy's, without its import
 
         em, ep = float(error_minus), float(error_plus)
         if not self.mass_scale > 0:
@@ -220,12 +220,11 @@ class SignalNuisances:
                 d = mass * k - value
                 return 0.5 * (d / (ep if d > 0 else em)) ** 2 + float(con.nll(k))
 
-            return float(optimize.minimize_scalar(f, bounds=(lo_k, hi_k), method="bounded",
-                                                  options={"xatol": 1e-10}).fun)
+            return bounded_minimum(f, lo_k, hi_k, xatol=1e-10)[1]
 
         reach = 10.0 * (max(em, ep) + abs(value) * self.mass_scale)
-        lower = optimize.brentq(lambda m: profile(m) - 0.5, value - reach, value, xtol=1e-9)
-        upper = optimize.brentq(lambda m: profile(m) - 0.5, value, value + reach, xtol=1e-9)
+        lower = brentq(lambda m: profile(m) - 0.5, value - reach, value, xtol=1e-9)
+        upper = brentq(lambda m: profile(m) - 0.5, value, value + reach, xtol=1e-9)
         return value - lower, upper - value
 
     def yield_uncertainty(self) -> tuple[float, float]:

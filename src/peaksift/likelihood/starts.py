@@ -114,7 +114,9 @@ def _coarse_profile(n, scale, signal_fractions, background):
     g = b0 / btot
     # differences of NLLs only: the saturated term is left out
     nll0 = binned_nll(n, btot * g, scale, saturated=False)
-    x = np.column_stack([np.full(m, 0.1 * math.sqrt(max(btot, 1.0))), np.full(m, btot)])
+    x = np.empty((m, 2))
+    x[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
+    x[:, 1] = btot
     if use_compiled():
         from .kernels import profile_two_yields
 
@@ -280,6 +282,14 @@ class _WidthProfile:
         return self._seen[key]
 
 
+def _median_bin(edges: np.ndarray) -> float:
+    """``np.median(np.diff(edges))`` (the same number: the middle width, or the mean of the
+    two middle ones) from one sort, without ``median``'s ~30 us of dispatch."""
+    d = np.sort(np.diff(edges))
+    k = d.size // 2
+    return float(d[k]) if d.size % 2 else float((d[k - 1] + d[k]) / 2.0)
+
+
 def _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper):
     if all(k in given for k in model.parameter_names[model.blocks[-1][1]]):
         return base.copy()
@@ -307,7 +317,7 @@ def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fin
     i_m = sl.start + shape.parameter_names.index("mass")
     i_s = [sl.start + shape.parameter_names.index(k) for k in shape.width_parameters()]
     width = max(float(base[i_s[-1]]) if i_s else (edges[-1] - edges[0]) / 40,
-                float(np.median(np.diff(edges))))
+                _median_bin(edges))
     if names[i_m] in given:
         return vb, c, [float(base[i_m])], i_m, i_s, bkg_given, []
     # a negative yield only where its bounds allow one and the caller did not set it

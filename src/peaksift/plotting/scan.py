@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, number, p_value
+from .._format import fixed, mass_text, number, p_value
 from .._style import COLORS, figure_style
 from .labels import FigureLabels
 
@@ -99,7 +99,7 @@ def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = No
     if b:
         unit = getattr(sres, "unit", "GeV")
         gt = "> " if b.get("z_global_is_lower_bound") else ""
-        note = (f"best {fixed(b.get('mass'))} {unit}:  $Z_{{local}}$ = "
+        note = (f"best {mass_text(b.get('mass'))} {unit}:  $Z_{{local}}$ = "
                 f"{fixed(b.get('z_local'))},  $Z_{{global}}$ = {gt}{fixed(b.get('z_global'))} "
                 f"({b.get('global_method') or 'n/a'})")
     fig = sres.plot(run=labels.run, symbol=labels.symbol, expected=expected, title=note)

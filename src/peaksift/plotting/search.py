@@ -8,7 +8,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-from .._format import fixed
+from .._format import fixed, mass_text
 from .candidates import candidates_figure
 from .envelope import envelope_figure
 from .labels import FigureLabels, figure_labels, save
@@ -89,7 +89,7 @@ def search_figure(result: Any, name: str = "spectrum", *, labels: FigureLabels |
 def _fit_title(result: Any) -> str:
     best = result.best
     zl, zg = fixed(best.get("z_local")), fixed(best.get("z_global"))
-    parts = [f"best hypothesis {fixed(best.get('mass'))} GeV"]
+    parts = [f"best hypothesis {mass_text(best.get('mass'))} GeV"]
     if zl != "n/a":
         parts.append(f"$Z_{{local}}$ = {zl}")
     if zg != "n/a":

@@ -144,17 +144,11 @@ def _fit_figure(fr: Any, *, log: bool, blind: Sequence[float] | None, title: str
                 labels: FigureLabels) -> Any:
     """``FitResult.plot`` (data, model, signal, background, pulls, numbers) plus blinding
     and log scale."""
-    fig = fr.plot(run=labels.run, symbol=labels.symbol, note=title)
+    fig = fr.plot(run=labels.run, symbol=labels.symbol, note=title, log=log)
     ax, axp = fig.axes[0], fig.axes[1]
     with figure_style():
         shade_blinded(ax, blind)
         shade_blinded(axp, blind, label=None)
-        n = np.asarray(fr.observed, dtype=float)
-        if log:
-            pos = n[n > 0]
-            ax.set_yscale("log")
-            if pos.size:
-                ax.set_ylim(0.3 * pos.min(), 30.0 * pos.max())
     return fig
 
 

@@ -77,12 +77,13 @@ def calibrate(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any]:
         "shift_sigma": (m - ref.mass) / np.hypot(e, ref.mass_error) if e > 0 else None,
         "source": "particle package (PDG tables)",
     }
-    from ..resonances import match_known, pair_charge
+    from ..resonances import fitted_widths, match_known, pair_charge
 
     res_sigma = _sigma_near(cfg, m) if np.isfinite(m) else 0.0
     out["known_matches"] = [k.to_dict() for k in match_known(
         m, error=e if np.isfinite(e) else 0.0, resolution=res_sigma,
-        charge=pair_charge(cfg.pairing.charge))] if np.isfinite(m) else []
+        charge=pair_charge(cfg.pairing.charge),
+        **fitted_widths(d.get("parameters") or {}))] if np.isfinite(m) else []
     return out, h, fr
 
 

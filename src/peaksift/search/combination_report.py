@@ -14,7 +14,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from .._format import fixed, format_pm, number, p_value
+from .._format import fixed, format_pm, mass_text, number, p_value
 from ..report import CAUTION, blocks_html, blocks_markdown
 from ..stats.envelope_choice import read_channel_entries
 
@@ -44,7 +44,7 @@ def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
     lim = r.get("limits") or {}
     exp = [v for v in (lim.get("expected") or []) if v is not None]
     eff = (r.get("signal_model") or {}).get("points", {}).get("efficiency", {}).get("value")
-    return [name, _m(best.get("mass")), _m(best.get("z_local")),
+    return [name, mass_text(best.get("mass")), _m(best.get("z_local")),
             p_value(best.get("p_local")), _m(best.get("z_global")),
             format_pm(peak.get("value"), peak.get("error"))
             + ("" if fit.get("valid", True) else " (fit NOT valid)"),
@@ -64,7 +64,7 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
              else "n/a"],
             ["signal / background model", (f"{scan.get('signal_shape', 'n/a')} / "
              f"{scan.get('background_shape', 'n/a')}")],
-            ["best mass hypothesis", f"{_m(best.get('mass'))} GeV"],
+            ["best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"],
             ["local significance", (f"{_m(best.get('z_local'))} σ "
              f"(p = {p_value(best.get('p_local'))})")],
             ["global significance", (f"{_m(best.get('z_global'))} σ "
@@ -102,7 +102,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                        "likelihood is the product of the channels' (each with its own "
                        "background, signal model, efficiency and luminosity), with the "
                        "luminosity and efficiency uncertainties as constrained nuisances."))]
-    rows = [["best mass hypothesis", f"{_m(best.get('mass'))} GeV"],
+    rows = [["best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"],
             ["local significance", (f"{_m(best.get('z_local'))} σ "
              f"(p = {p_value(best.get('p_local'))})")],
             ["global significance", (f"{_m(g.get('z_global'))} σ "
@@ -146,7 +146,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
     if lim:  # every mass: the point that matters is never the one a stride skips
         masses = lim["masses"]
         methods = lim.get("methods") or ["asymptotic"] * len(masses)
-        rows = [[_m(masses[i]), _m(lim["observed"][i]), _m(lim["expected"][i]),
+        rows = [[mass_text(masses[i]), _m(lim["observed"][i]), _m(lim["expected"][i]),
                  f"{_m(lim['expected_minus1'][i])} to {_m(lim['expected_plus1'][i])}",
                  f"{_m(lim['expected_minus2'][i])} to {_m(lim['expected_plus2'][i])}",
                  methods[i]] for i in range(len(masses))]
@@ -184,13 +184,13 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
     best = d["combination"].get("best") or {}
     g = d.get("best") or {}
     lines = ["peaksift search: combination of " + ", ".join(d["channels"]),
-             f"  best mass hypothesis       {_m(best.get('mass'))} GeV",
+             f"  best mass hypothesis       {mass_text(best.get('mass'))} GeV",
              f"  local significance         {_m(best.get('z_local'))} sigma",
              (f"  global significance        {_m(g.get('z_global'))} sigma "
              f"({g.get('global_method', 'n/a')})")]
     for n, r in d["channels"].items():
         b = r.get("best") or {}
-        lines.append(f"  {n:<26} best {_m(b.get('mass'))} GeV, "
+        lines.append(f"  {n:<26} best {mass_text(b.get('mass'))} GeV, "
                      f"Z_local {_m(b.get('z_local'))}")
     doubtful = [n for n, r in d["channels"].items()
                 if (r.get("signal_model") or {}).get("doubtful")]

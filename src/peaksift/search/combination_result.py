@@ -69,11 +69,11 @@ class CombinedSearchResult:
 
     # ------------------------------------------------------------------------ show
     def _summary(self) -> list[tuple[str, str]]:
-        from .._format import fixed, significance
+        from .._format import mass_text, significance
 
         b = dict(self.best or {})
         rows = [("channels", ", ".join(self.channels)),
-                ("best mass", f"{fixed(b.get('mass'))} GeV"),
+                ("best mass", f"{mass_text(b.get('mass'))} GeV"),
                 ("local", significance(b, "local")), ("global", significance(b, "global"))]
         if self.limits is not None:
             rows.append(("limits", f"{self.limits.masses.size} masses, {self.limits.unit}"))

@@ -201,10 +201,10 @@ class SearchResult:
 
     # ------------------------------------------------------------------------ show
     def _summary(self) -> list[tuple[str, str]]:
-        from .._format import fixed, significance
+        from .._format import mass_text, significance
 
         b = dict(self.best or {})
-        rows = [("best mass", f"{fixed(b.get('mass'))} GeV"),
+        rows = [("best mass", f"{mass_text(b.get('mass'))} GeV"),
                 ("local", significance(b, "local")),
                 ("global", significance(b, "global"))]
         if self.fit is not None:

@@ -173,7 +173,7 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
             stage: _Staging | None, target: Path | None, drawer: FigureWorker | None,
             besides: list[Beside], collected: Any = None) -> SearchResult:
     from ..fitting import fit
-    from ..resonances import match_known, pair_charge
+    from ..resonances import fitted_widths, match_known, pair_charge
     from ..stats.scan import scan
 
     clock = _Clock()
@@ -350,7 +350,9 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     m_err = peak.get("error") or 0.0
     known = tuple(match_known(float(m_fit), error=float(m_err),
                               resolution=float(sigma_fn(float(m_fit))),
-                              charge=pair_charge(cfg.pairing.charge)))
+                              charge=pair_charge(cfg.pairing.charge),
+                              **fitted_widths(fres.to_dict().get("parameters") or {}
+                                              if fres is not None else {})))
     if mass_job is not None:
         syst = {**syst, "fitted_mass": mass_job.result()}
     limits = None

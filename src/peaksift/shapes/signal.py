@@ -77,7 +77,7 @@ class _Signal(Shape):
         def g(x: float) -> float:
             return float(self._density(np.array(x), p, w)) - 0.5 * fmax
 
-        from ._roots import brentq  # scipy's algorithm, without importing scipy.optimize
+        from .roots import brentq  # scipy's algorithm, without importing scipy.optimize
 
         sides = []
         for sign in (-1.0, 1.0):

@@ -9,7 +9,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed
+from .._format import fixed, mass_text
 from .._style import COLORS, RunLabel, draw_header, figure_style, new_figure, shade_blinded
 from .significance import p_from_q0
 
@@ -64,7 +64,7 @@ def pvalue_figure(comb: Any, path: Any = None, *, title: str | None = None,
                 transform=ax.transAxes, fontsize=8.5, va="bottom", ha="right")
         if title is None:
             b = comb.best
-            title = (f"combined: best {fixed(b['mass'])} GeV, $Z_{{local}}$ = "
+            title = (f"combined: best {mass_text(b['mass'])} GeV, $Z_{{local}}$ = "
                      f"{fixed(b['z_local'])}" if np.isfinite(b["z_local"])
                      else "combined local p-values")
         draw_header(ax, run, title)

@@ -59,8 +59,8 @@ from .toys import (
     ToyBatch,
     fit_background,
     profile_signal,
-    run_toy_batch,
     run_toys,
+    scan_toy_counts,
     toy_counts,
 )
 
@@ -138,9 +138,10 @@ def run_envelope_toy_batch(spec: EnvelopeToyBatch) -> np.ndarray:
     units, fits = [], []
     for c, model in enumerate(spec.models):
         units.append(ToyBatch(model, spec.seed, spec.first, spec.count, spec.expected))
-        q[:, c] = run_toy_batch(units[-1])
         with np.errstate(all="ignore"):
             fits.append(fit_background(model, n))
+        # run_toy_batch's scans of these counts, from the fits just made (not again)
+        q[:, c] = scan_toy_counts(model, n, fits[-1])
         nll0[:, c] = fits[-1][2]
     k = np.asarray(spec.n_parameters, float)
     # Exact fits (signal nuisances free) of the function the envelope takes at its highest

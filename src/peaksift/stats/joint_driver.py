@@ -46,7 +46,7 @@ import numpy as np
 from numba import njit
 
 from ..shapes.compiled import vlog
-from .joint_kernels import lu_solve, model_change, row_background, small_step
+from .joint_kernels import lu_solve, model_change, row_background, small_step, yield_sums
 
 __all__ = ["compiled_joint"]
 
@@ -137,16 +137,8 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
                 else:
                     nu1 = max(nu, 1e-300)
                     acc += nu1 - ni * lb[1, i - b0] if ni != 0.0 else nu1
-            inv = lb[2, i - b0]
-            ratio = ni * inv
-            w = 1.0 - ratio
-            v = ratio * inv
-            fv = fi * v
-            a0 += fi * w
-            a1 += fi * fv
-            a2 += gi * fv
-            c0 += gi * w
-            c1 += gi * gi * v
+            w, v, a0, a1, a2, c0, c1 = yield_sums(fi, gi, ni, lb[2, i - b0], a0, a1, a2, c0,
+                                                  c1)
             if kq:
                 dk = tdg[i]
                 dv = dk * v

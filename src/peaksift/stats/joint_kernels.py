@@ -11,11 +11,15 @@ arrays:
 * :func:`channel_sums` -- with ``w = 1 - n/nu`` and ``v = n/nu^2`` (``nu`` floored at
   1e-100): ``sum f w``, ``sum f f v``, ``sum f g v``, ``sum f dg_k v``, ``sum g w``,
   ``sum g g v``, ``sum g dg_k v``, ``sum dg_k w``, ``sum dg_k dg_l v`` and
-  ``sum d2_kl w``, from which :func:`peaksift.stats.joint._grad_hess` assembles the blocks;
+  ``sum d2_kl w``, from which :func:`peaksift.stats.joint._grad_hess` assembles the blocks
+  (one bin's yield terms in :func:`yield_sums`, shared with the compiled loop);
 * for the compiled loop (:mod:`peaksift.stats.joint_driver`): :func:`row_background` (one
   row's exponential or power-law fractions in the used bins), :func:`lu_solve` (a Newton
   step), :func:`small_step` (the stopping test) and :func:`model_change` (the quadratic
-  model's NLL change).
+  model's NLL change);
+* :func:`quadratic_rows` -- each hypothesis's profiled curvature in the signal yield and
+  the slope of the nuisances along it, from a channel's Hessians
+  (:mod:`peaksift.stats.joint_start`).
 """
 
 from __future__ import annotations
@@ -27,8 +31,8 @@ from numba import njit
 
 from ..shapes.compiled import exponential_rows, powerlaw_rows
 
-__all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "row_background",
-           "small_step", "sums"]
+__all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "quadratic_rows",
+           "row_background", "small_step", "sums", "yield_sums"]
 
 
 @njit(cache=True, nogil=True)
@@ -44,6 +48,20 @@ def channel_nll(n, f, g, s, b, out):  # pragma: no cover - compiled
             nu = max(nu, 1e-300)
             acc += nu - n[r, i] * math.log(nu) if n[r, i] != 0.0 else nu
         out[r] = acc
+
+
+@njit(inline="always")
+def yield_sums(fi, gi, ni, inv, a0, a1, a2, c0, c1):  # pragma: no cover - compiled
+    """One bin's terms of the yields' sums: from ``inv = 1/nu`` (``nu`` floored by the
+    caller) ``w = 1 - n/nu`` and ``v = n/nu^2``, and ``f w``, ``f f v``, ``f g v``, ``g w``,
+    ``g g v`` added to the running sums; returns ``(w, v, a0, a1, a2, c0, c1)``.  One
+    definition for :func:`channel_sums` and the compiled joint loop, inlined (numba IR) so
+    that the sums stay in registers."""
+    ratio = ni * inv
+    w = 1.0 - ratio
+    v = ratio * inv
+    fv = fi * v
+    return w, v, a0 + fi * w, a1 + fi * fv, a2 + gi * fv, c0 + gi * w, c1 + gi * gi * v
 
 
 @njit(cache=True, nogil=True)
@@ -69,17 +87,9 @@ def channel_sums(n, f, g, dg, d2, s, b, fs, gs, ds, dd):  # pragma: no cover - c
             fi = f[r, i]
             gi = g[r, i]
             inv = 1.0 / max(sr * fi + br * gi, 1e-100)
-            ratio = n[r, i] * inv
-            w = 1.0 - ratio
-            v = ratio * inv
+            w, v, a0, a1, a2, c0, c1 = yield_sums(fi, gi, n[r, i], inv, a0, a1, a2, c0, c1)
             wv[0, i] = w
             wv[1, i] = v
-            fv = fi * v
-            a0 += fi * w
-            a1 += fi * fv
-            a2 += gi * fv
-            c0 += gi * w
-            c1 += gi * gi * v
         fs[r, 0] += a0
         fs[r, 1] += a1
         fs[r, 2] += a2
@@ -215,3 +225,63 @@ def model_change(trial, x, grad, hess):  # pragma: no cover - compiled
             t += hess[i, j] * (trial[j] - x[j])
         out += di * (grad[i] + 0.5 * t)
     return out
+
+
+@njit(cache=True, nogil=True)
+def quadratic_rows(h, w, slope, ok):  # pragma: no cover - compiled
+    """Per row of ``h (B, P, P)`` (a Hessian over ``(s, eta)``) where ``ok`` is set: the
+    slope ``-H_ee^-1 H_es`` of ``eta`` along ``s`` into ``slope (B, P-1)`` and the profiled
+    curvature ``H_ss + H_se . slope`` (the Schur complement) into ``w``; ``ok`` cleared
+    where ``H_ee`` is singular or the results are not finite and positive.  Gaussian
+    elimination with partial pivoting on a copy (LAPACK's gesv algorithm, as numpy's
+    ``solve``; the last digits may differ: a start only)."""
+    rows, p = h.shape[0], h.shape[1]
+    q = p - 1
+    m = np.empty((q, q + 1))
+    x = np.empty(q)
+    for r in range(rows):
+        if not ok[r]:
+            continue
+        for i in range(q):
+            for j in range(q):
+                m[i, j] = h[r, 1 + i, 1 + j]
+            m[i, q] = h[r, 1 + i, 0]
+        good = True
+        for c in range(q):
+            piv = c
+            big = abs(m[c, c])
+            for i in range(c + 1, q):
+                if abs(m[i, c]) > big:
+                    big = abs(m[i, c])
+                    piv = i
+            if big == 0.0:
+                good = False
+                break
+            if piv != c:
+                for j in range(c, q + 1):
+                    t = m[c, j]
+                    m[c, j] = m[piv, j]
+                    m[piv, j] = t
+            for i in range(c + 1, q):
+                f = m[i, c] / m[c, c]
+                for j in range(c, q + 1):
+                    m[i, j] -= f * m[c, j]
+        if good:
+            for i in range(q - 1, -1, -1):
+                acc = m[i, q]
+                for j in range(i + 1, q):
+                    acc -= m[i, j] * x[j]
+                x[i] = acc / m[i, i]
+            acc = 0.0
+            for i in range(q):
+                slope[r, i] = -x[i]
+                good = good and math.isfinite(x[i])
+                acc += h[r, 0, 1 + i] * slope[r, i]
+            acc = h[r, 0, 0] + acc
+            w[r] = acc
+            good = good and math.isfinite(acc) and acc > 0.0
+        if not good:
+            ok[r] = False
+            w[r] = 0.0
+            for i in range(q):
+                slope[r, i] = 0.0

@@ -27,6 +27,8 @@ from typing import Any
 
 import numpy as np
 
+from .joint_kernels import quadratic_rows
+
 __all__ = ["joint_start"]
 
 _GAUSS_NEWTON = 6   # iterations of the small (mu, nu) problem when there are norms
@@ -87,27 +89,15 @@ def _channel_quadratic(model: Any, fit: dict, k: np.ndarray) -> tuple:
     s = np.asarray(fit["s"], float)
     eta = np.concatenate([np.asarray(fit["b"], float)[:, None],
                           np.asarray(fit["theta"], float).reshape(s.size, -1)], axis=1)
-    h = np.asarray(fit["hessian"], float)
-    nb, p = s.size, h.shape[1]
+    h = np.ascontiguousarray(fit["hessian"], float)
+    nb = s.size
     w = np.zeros(nb)
-    slope = np.zeros((nb, p - 1))
-    ok = np.all(np.isfinite(h), axis=(1, 2)) & np.isfinite(s) & np.all(np.isfinite(eta),
-                                                                          axis=1)
-    if ok.any():
-        hk = h[ok]
-        with np.errstate(all="ignore"):
-            try:
-                slope_ok = -np.linalg.solve(hk[:, 1:, 1:], hk[:, 1:, :1])[..., 0]
-                # the profiled curvature in s: H_ss - H_se H_ee^-1 H_es (Schur complement)
-                w_ok = hk[:, 0, 0] + np.einsum("bj,bj->b", hk[:, 0, 1:], slope_ok)
-            except np.linalg.LinAlgError:
-                slope_ok = np.full((hk.shape[0], p - 1), np.nan)
-                w_ok = np.full(hk.shape[0], np.nan)
-        good = np.isfinite(w_ok) & (w_ok > 0) & np.all(np.isfinite(slope_ok), axis=1)
-        idx = np.flatnonzero(ok)
-        ok[idx[~good]] = False
-        w[idx[good]] = w_ok[good]
-        slope[idx[good]] = slope_ok[good]
+    slope = np.zeros((nb, h.shape[1] - 1))
+    ok = np.isfinite(s) & np.all(np.isfinite(eta), axis=1) & np.all(np.isfinite(h),
+                                                                      axis=(1, 2))
+    # per row: the slope -H_ee^-1 H_es and the profiled curvature in s,
+    # H_ss - H_se H_ee^-1 H_es (Schur complement); ok cleared where unusable
+    quadratic_rows(h, w, slope, ok)
     ok &= k > 0
     w = np.where(ok, w, 0.0)
     return w, np.where(ok, s, 0.0), eta, slope, ok

@@ -69,6 +69,39 @@ _TOL = 1e-6
 _T_RANGE = 5.0
 
 
+def _spline_coefficients(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Piecewise-cubic coefficients ``(4, n - 1, m)`` of the not-a-knot cubic spline through
+    ``(x, y[:, j])`` for every column ``j`` (the piece on ``[x_i, x_{i+1}]`` is
+    ``((c0 dx + c1) dx + c2) dx + c3`` with ``dx = t - x_i``), for ``n >= 4`` knots.
+
+    The slopes at the knots solve the tridiagonal system of C2 continuity with the
+    not-a-knot ends (third derivative continuous at the second and the last-but-one
+    knot; de Boor, A Practical Guide to Splines, 1978, ch. IV), written as
+    ``scipy.interpolate.CubicSpline`` writes it, so the coefficients are its own to
+    rounding (a test compares them): written out because importing ``scipy.interpolate``
+    cost the limits with systematics ~0.3 s, more than their whole spline work."""
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    n = x.size
+    dx = np.diff(x)
+    slope = np.diff(y, axis=0) / dx[:, None]
+    a = np.zeros((n, n))
+    rhs = np.empty_like(y)
+    i = np.arange(1, n - 1)
+    a[i, i - 1] = dx[1:]
+    a[i, i] = 2.0 * (dx[:-1] + dx[1:])
+    a[i, i + 1] = dx[:-1]
+    rhs[1:-1] = 3.0 * (dx[1:, None] * slope[:-1] + dx[:-1, None] * slope[1:])
+    d0, d1 = x[2] - x[0], x[-1] - x[-3]
+    a[0, 0], a[0, 1] = dx[1], d0
+    rhs[0] = ((dx[0] + 2.0 * d0) * dx[1] * slope[0] + dx[0] ** 2 * slope[1]) / d0
+    a[-1, -2], a[-1, -1] = d1, dx[-2]
+    rhs[-1] = (dx[-1] ** 2 * slope[-2] + (2.0 * d1 + dx[-1]) * dx[-2] * slope[-1]) / d1
+    s = np.linalg.solve(a, rhs)
+    t = (s[:-1] + s[1:] - 2.0 * slope) / dx[:, None]
+    return np.stack([t / dx[:, None], (slope - s[:-1]) / dx[:, None] - t, s[:-1], y[:-1]])
+
+
 class _Curve:
     """The NLL profiled over the background and the shape factors at fixed signal yields,
     on a grid ``s = s_max u`` per hypothesis (one stacked fit of every grid point), a cubic
@@ -83,8 +116,6 @@ class _Curve:
     def __init__(self, model: Any, counts: np.ndarray, fractions: np.ndarray,
                  conv: np.ndarray, delta: float, kind: str, sig: Any, base: list[Any],
                  nuis: SignalNuisances, s_max: np.ndarray) -> None:
-        from scipy.interpolate import CubicSpline
-
         from .toys import profile_signal
 
         nb = fractions.shape[0]
@@ -104,16 +135,24 @@ class _Curve:
         rn = profile_with_nuisances(model, n, sig, base_rep, nuis, start=start,
                                     fixed_signal=True, tol=_TOL)
         prof = np.fmin(rn["nll"], r["nll"]).reshape(nb, _GRID)
-        self.spline = CubicSpline(self.u, prof.T)  # coefficients (4, _GRID - 1, nb)
+        self.coef = _spline_coefficients(self.u, prof.T)  # (4, _GRID - 1, nb)
 
     def _at(self, s: np.ndarray) -> np.ndarray:
         """The spline at yields ``s (B, T)`` (one row per hypothesis)."""
         rows = np.arange(s.shape[0]) % self.s_max.size  # stacked copies share the curve
         x = np.clip(s / self.s_max[rows, None], 0.0, 1.0)  # the limits' brackets stay inside
-        i = np.clip(np.searchsorted(self.u, x) - 1, 0, self.u.size - 2)
+        g = self.u.size - 1
+        # the piece of each point: searchsorted(u, x) - 1 in closed form, exact because the
+        # knots are k / g with g a power of two (x g is exact); else searchsorted (slower)
+        i = (np.ceil(x * g).astype(np.intp) - 1 if g & (g - 1) == 0
+             else np.searchsorted(self.u, x) - 1)
+        i = np.minimum(np.maximum(i, 0), g - 1)
         dx = x - self.u[i]
-        c = self.spline.c[:, i, rows[:, None]]   # (4, B, T)
-        return ((c[0] * dx + c[1]) * dx + c[2]) * dx + c[3]
+        # the coefficients of each point's piece: one flat gather per power (a broadcast
+        # fancy index of the (4, pieces, hypotheses) table cost most of the limits' search)
+        flat = i * self.s_max.size + rows[:, None]
+        c0, c1, c2, c3 = (self.coef[j].ravel().take(flat) for j in range(4))
+        return ((c0 * dx + c1) * dx + c2) * dx + c3
 
     def nll(self, mu: np.ndarray) -> np.ndarray:
         """NLL at ``mu`` profiled over everything, the normalisation nuisance included."""

@@ -184,7 +184,9 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     """Fit every row of ``f (B, N)``: ``x (B, P)`` holds ``(s, b, theta)`` (``P`` = 3) or,
     with the signal fixed at ``s_fix`` (``P`` = 2), ``(b, theta)``; ``n`` and ``sat`` have
     one row or B.  Returns 0 when done, else 1 + the row where the numpy path must answer.
-    ``d2 (B, N)`` receives the background's curvature at the start (``bkg_second``),
+    ``d2 (B, N)`` receives the background's curvature at the start (``bkg_second``); with
+    one row (every row starts at the same theta, as a scan's hypotheses do) it is computed
+    once, at the first row, and serves all: it depends on theta alone.
     ``hess_out (B, P, P)`` the exact Hessian at each minimum and ``s_err`` the signal
     yield's error from it (``minimize.first_error``)."""
     nrow, nb = f.shape
@@ -210,13 +212,16 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     step = np.empty(p)
     xr = np.empty(p)
     trial = np.empty(p)
+    shared_d2 = d2.shape[0] == 1
     for r in range(nrow):
         nr = n[r] if n.shape[0] > 1 else n[0]
         satr = sat[r] if sat.size > 1 else sat[0]
+        d2r = d2[0] if shared_d2 else d2[r]
         for a in range(p):
             xr[a] = x[r, a]
-        if not _curvature(code, e1, e2, c1, c2, used, scale, xr[off + 1], lower[off + 1],
-                          upper[off + 1], kbuf, frac, grad_full, gt, dg, d2[r]):
+        if (r == 0 or not shared_d2) and not _curvature(
+                code, e1, e2, c1, c2, used, scale, xr[off + 1], lower[off + 1],
+                upper[off + 1], kbuf, frac, grad_full, gt, dg, d2r):
             return r + 1
         if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
                            grad_none, g, none):
@@ -237,7 +242,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
             if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
                                grad_full, gt, dg):
                 return r + 1
-            _grad_hess(nr, f[r], g, dg, d2[r], s, xr[off], off, grad, hess)
+            _grad_hess(nr, f[r], g, dg, d2r, s, xr[off], off, grad, hess)
             for a in range(p):
                 err[a] = math.sqrt(abs(1.0 / hess[a, a])) if hess[a, a] != 0.0 else math.inf
             # _pin_at_bounds: a parameter on a bound whose descent leaves it holds still
@@ -292,7 +297,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
             if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
                                grad_full, gt, dg):
                 return r + 1
-            _grad_hess(nr, f[r], g, dg, d2[r], s, xr[off], off, grad, hess_out[r])
+            _grad_hess(nr, f[r], g, dg, d2r, s, xr[off], off, grad, hess_out[r])
             s_err[r] = _first_error(hess_out[r], h, step)
     return 0
 
@@ -355,7 +360,9 @@ def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: np.ndarray,
     scale = (np.empty(0) if model.bin_scale is None
              else np.ascontiguousarray(model.bin_scale, float))
     s_fix = np.array(s, float) if fixed else np.zeros(nb)
-    d2 = np.empty((nb, nbin))
+    # every row from one theta (a scan's start): one curvature for all (profile_rows)
+    one_start = nb > 1 and bool(np.all(theta[:, 0] == theta[0, 0]))
+    d2 = np.empty((1 if one_start else nb, nbin))
     nll = np.empty(nb)
     conv = np.zeros(nb, np.bool_)
     hess = np.zeros((nb, p, p))
@@ -371,4 +378,5 @@ def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: np.ndarray,
     off = 0 if fixed else 1
     return {"s": s_fix if fixed else x[:, 0].copy(), "s_error": s_err, "b": x[:, off].copy(),
             "theta": x[:, off + 1:].copy(), "nll": nll, "converged": conv,
-            "hessian": None if fixed else hess, "curvature": d2.reshape(nb, 1, 1, nbin)}
+            "hessian": None if fixed else hess,
+            "curvature": np.broadcast_to(d2.reshape(-1, 1, 1, nbin), (nb, 1, 1, nbin))}

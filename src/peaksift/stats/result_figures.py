@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, number, p_value
+from .._format import fixed, mass_text, number, p_value
 from .._style import (
     COLORS,
     draw_header,
@@ -92,7 +92,7 @@ def envelope_figure(env: Any, path: Any = None, *, run: Any = None, symbol: str 
         if ok.any():
             ax.plot([b["mass"]], [max(b["p_local"], lowest)], marker="o", ms=8, mfc="none",
                     mec=COLORS["signal"], mew=1.5, ls="none", zorder=5,
-                    label=f"best: {fixed(b['mass'])} {env.unit}, $Z_{{local}}$ = "
+                    label=f"best: {mass_text(b['mass'])} {env.unit}, $Z_{{local}}$ = "
                           f"{fixed(b['z_local'])}")
         shade_blinded(ax, _span(m, hidden))
         ax.set_xlabel(f"${symbol or 'm'}$ hypothesis [{env.unit}]")

@@ -262,7 +262,7 @@ class ScanResult(FrozenValue):
         is the mass symbol (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on
         a new Figure (made without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
-        from .._format import fixed
+        from .._format import fixed, mass_text
         from .._style import COLORS, draw_header, figure_style, shade_blinded, target_axes
 
         with figure_style():
@@ -306,7 +306,7 @@ class ScanResult(FrozenValue):
             ax.set_ylabel("local p-value")
             note = title or ""
             if global_result is not None and global_result.get("z_global") is not None:
-                note = (f"best {fixed(global_result['mass'])} {self.unit}:  "
+                note = (f"best {mass_text(global_result['mass'])} {self.unit}:  "
                         f"$Z_{{local}}$ = {fixed(global_result['z_local'])},  "
                         f"$Z_{{global}}$ = {fixed(global_result['z_global'])} "
                         f"({global_result['global_method']})")

@@ -117,7 +117,7 @@ def _solve_packed(h: np.ndarray, g: np.ndarray, kidx: dict) -> np.ndarray:
 @_quiet
 def scan_toys_linear(model: ScanModel, n: np.ndarray,
                      directions: np.ndarray | None = None, *,
-                     refine: int = _REFINE) -> np.ndarray:
+                     refine: int = _REFINE, background: tuple | None = None) -> np.ndarray:
     r"""q0 at every mass for stacked background-only toys ``n (T, n_used)`` (fast engine).
 
     See the module guide for the method and its approximations.  The background is
@@ -126,11 +126,13 @@ def scan_toys_linear(model: ScanModel, n: np.ndarray,
     background-only fit for every toy (they differ from a toy's own by terms of the order of
     the background parameters' statistical error, a second-order effect on q0; measured
     < 0.01 in Z).  All sums become batched matrix products over a ``(mass, bin, toy)`` layout.
+    ``background``: the toys' background-only fits ``(theta, b, nll)``
+    (:func:`.toy_model.fit_background` of ``n``) when the caller has them.
     Returns ``(T, n_masses)``.
     """
     n = np.atleast_2d(np.asarray(n, float))
     t = n.shape[0]
-    theta, b, nll_b = fit_background(model, n)
+    theta, b, nll_b = fit_background(model, n) if background is None else background
     b0 = np.maximum(b[:, None] * bkg_fractions(model, theta), _NU_FLOOR)  # (T, N)
     d = _background_directions(model) if directions is None else directions  # (N, Q)
     q = d.shape[1]

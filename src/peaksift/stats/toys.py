@@ -68,7 +68,8 @@ from .toy_scan import scan_toys_linear
 # the model and the two scans live in toy_model / toy_scan; this module is the toy engine's
 # one import place for its users
 __all__ = ["ScanModel", "ToyBatch", "bkg_fractions", "bkg_gradients", "bkg_second",
-           "fit_background", "profile_signal", "run_toy_batch", "run_toys", "scan_toys_linear",
+           "fit_background", "profile_signal", "run_toy_batch", "run_toys", "scan_toy_counts",
+           "scan_toys_linear",
            "toy_counts"]
 
 
@@ -111,11 +112,18 @@ def run_toy_batch(spec: ToyBatch) -> np.ndarray:
     A pure top-level function of a picklable argument, for any execution engine.
     """
     expected = spec.model.expected_background if spec.expected is None else spec.expected
-    out = np.empty((spec.count, spec.model.masses.size))
-    for start in range(0, spec.count, _SUB_BATCH):
-        c = min(_SUB_BATCH, spec.count - start)
-        n = toy_counts(expected, spec.seed, spec.first + start, c)
-        out[start : start + c] = scan_toys_linear(spec.model, n)
+    return scan_toy_counts(spec.model, toy_counts(expected, spec.seed, spec.first, spec.count))
+
+
+def scan_toy_counts(model: ScanModel, n: np.ndarray, fits: tuple | None = None) -> np.ndarray:
+    """The linearised q0 scans ``(T, n_masses)`` of toys with counts ``n (T, n_used)``, in
+    sub-batches of ``_SUB_BATCH`` toys (memory); ``fits``: their background-only fits
+    ``(theta, b, nll)`` when the caller has them (the envelope's toys need them too)."""
+    out = np.empty((n.shape[0], model.masses.size))
+    for start in range(0, n.shape[0], _SUB_BATCH):
+        rows = slice(start, start + _SUB_BATCH)
+        out[rows] = scan_toys_linear(model, n[rows], background=None if fits is None
+                                     else tuple(a[rows] for a in fits))
     return out
 
 
