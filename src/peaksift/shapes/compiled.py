@@ -12,7 +12,7 @@ What is here and who uses it
   coarse scan of the window for starting masses, :mod:`peaksift.likelihood.starts`);
   ``gaussian_width_rows`` the same at one mass for many widths, each on its own band of
   edges (the width profile of :mod:`peaksift.likelihood.start_widths`);
-  ``gaussian_rows_widths`` with a width per mass (the scan's signal fractions,
+  ``gaussian_scan_rows`` with a width per mass (the scan's signal fractions,
   :mod:`peaksift.stats.scan_inputs`).
 * ``crystalball_primitive``, ``crystalball_density`` -- one parameter set: the Crystal
   Ball's primitive and its density at every edge or mass, each with its derivatives in the
@@ -36,7 +36,7 @@ from numba import njit, types
 from numba.extending import intrinsic
 
 __all__ = ["crystalball_density", "crystalball_primitive", "exponential_edges",
-           "exponential_rows", "gaussian_edges", "gaussian_rows", "gaussian_rows_widths",
+           "exponential_rows", "gaussian_edges", "gaussian_rows", "gaussian_scan_rows",
            "gaussian_width_rows", "powerlaw_edges", "powerlaw_rows", "vexp", "vlog"]
 
 
@@ -257,7 +257,7 @@ def gaussian_rows(x, ms, s, lo, hi, frac):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def gaussian_rows_widths(x, ms, ss, lo, hi, frac):  # pragma: no cover - compiled
+def gaussian_scan_rows(x, ms, ss, lo, hi, frac):  # pragma: no cover - compiled
     """:func:`gaussian_rows` with a width per row, ``ss[b]`` (a scan's sigma(m)): no
     library call beyond the far tails, where most of a wide window's edges lie."""
     for b in range(ms.size):

@@ -311,8 +311,10 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
             _grad_hess(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
                        sm[cur], grad, hess, pos, coef, aj)
             hess_out[r] = hess
+            # numpy's 1/0 = inf (a parameter the data do not constrain: a signal whose
+            # bins hold no event, its fractions elsewhere exactly 0)
             for i in range(p):
-                err[i] = math.sqrt(abs(1.0 / hess[i, i]))
+                err[i] = math.sqrt(abs(1.0 / hess[i, i])) if hess[i, i] != 0.0 else math.inf
             # a parameter on a bound whose descent leaves it is held there (_pin_at_bounds)
             for i in range(p):
                 if (xr[i] <= lower[i] and grad[i] > 0) or (xr[i] >= upper[i] and grad[i] < 0):

@@ -130,18 +130,18 @@ def _signal_params(shape: Any, window: tuple[float, float], masses: np.ndarray,
 def _signal_fractions(shape: Any, edges: np.ndarray, params: list[Any],
                       window: tuple[float, float], count: int) -> np.ndarray:
     """The signal's bin fractions at every hypothesis: a Gaussian's from one compiled pass
-    (:func:`peaksift.shapes.compiled.gaussian_rows_widths`; the edges in its far tails,
+    (:func:`peaksift.shapes.compiled.gaussian_scan_rows`; the edges in its far tails,
     most of a wide window's, cost no library call: ~10x less than the numpy path, the same
     fractions to rounding), another shape's from its ``bin_fractions``."""
     from ..shapes import Gaussian
 
     if type(shape) is Gaussian and use_compiled():
-        from ..shapes.compiled import gaussian_rows_widths
+        from ..shapes.compiled import gaussian_scan_rows
 
         m, s = (np.ascontiguousarray(np.broadcast_to(np.ravel(p), (count,)), float)
                 for p in params)
         out = np.empty((count, edges.size - 1))
-        if gaussian_rows_widths(edges, m, s, float(window[0]), float(window[1]), out):
+        if gaussian_scan_rows(edges, m, s, float(window[0]), float(window[1]), out):
             return out
     return np.asarray(shape.bin_fractions(edges, params, window), float)
 
