@@ -5,8 +5,8 @@ Which piece when
 * :class:`Beside`       -- one function run in a forked process while this one goes on
   (the asymptotic limits, during the global significance, the systematics and the fits);
   :meth:`Beside.result` returns its value.
-* :class:`FigureWorker` -- a forked process, started before the inputs are checked and
-  read, that imports matplotlib meanwhile and draws each figure as soon as its results
+* :class:`FigureWorker` -- a forked process, started before the events are read, that
+  imports matplotlib while they are read and draws each figure as soon as its results
   exist (:meth:`FigureWorker.draw`); :meth:`FigureWorker.finish` returns the files.  Once
   matplotlib is loaded it forks a second drawer from itself (no second import), and the
   two take the figures one at a time from one queue: the last figures of a run, which wait
@@ -143,16 +143,14 @@ class FigureWorker:
     """Draws a search's figures in a forked process as their results arrive.
 
     ``FigureWorker(outdir, formats=..., log_scale=...)`` forks at once; the child imports
-    matplotlib and renders a throw-away figure (fonts, mathtext) while the parent checks
-    and reads the inputs.  ``outdir`` may be None at first (the output folder is staged
-    after the input checks): set :attr:`outdir` before the first :meth:`draw`, which sends
-    the child a job (figure names and the partial :class:`~peaksift.search.SearchResult`
-    they need, and the folder); :meth:`finish` waits for the last one and returns figure
-    name -> PNG path.
+    matplotlib and renders a throw-away figure (fonts, mathtext) while the parent reads the
+    events.  :meth:`draw` sends it a job (figure names and the partial
+    :class:`~peaksift.search.SearchResult` they need), :meth:`finish` waits for the last
+    one and returns figure name -> PNG path.
     """
 
-    def __init__(self, outdir: Path | None, **kw: Any) -> None:
-        self.outdir, self.kw = (Path(outdir) if outdir is not None else None), kw
+    def __init__(self, outdir: Path, **kw: Any) -> None:
+        self.outdir, self.kw = Path(outdir), kw
         self.jobs: list[tuple[tuple[str, ...], Any, dict[str, Any]]] = []
         self._proc: Any = None
         self.cpu = 0.0  # CPU seconds the child used
@@ -164,7 +162,7 @@ class FigureWorker:
         self._queue = ctx.Queue()  # a feeder thread: draw() never waits for the child
         self._conn, child_end = ctx.Pipe(duplex=False)
         self._proc = ctx.Process(target=_figure_child, daemon=True,
-                                 args=(self._queue, child_end, os.getpid(), kw))
+                                 args=(self._queue, child_end, os.getpid(), self.outdir, kw))
         with quiet_fork(), sigterm_held():  # the child unblocks SIGTERM in worker_start
             self._proc.start()
         child_end.close()
@@ -176,7 +174,7 @@ class FigureWorker:
         for name in names:
             job = ((name,), result, extra)
             if self._proc is not None:
-                self._queue.put((len(self.jobs), self.outdir, *job))
+                self._queue.put((len(self.jobs), *job))
             self.jobs.append(job)
 
     def finish(self) -> dict[str, Path]:
@@ -223,7 +221,13 @@ def _warm_up(formats: Sequence[str] = ()) -> None:
 
     The run's own expressions are not typeset here in advance: laid out in this shared
     parser at the figures' resolution, some were later drawn with overlapping glyphs (a
-    tick label "60" as a "6" over a "0"), and the time it saved was within the noise."""
+    tick label "60" as a "6" over a "0"), and the time it saved was within the noise.
+    Nor is text measured as a path here (``_style.text_width``, the value tables): a path
+    layout of typeset text keeps its FreeType fonts in matplotlib's cache, a forked drawer
+    would share their file offsets with this one, and two drawers reading glyphs at once
+    could read each other's (matplotlib reopens only the fonts of its font cache in a
+    forked child).  A second drawer forked after a drawn figure lost one in a loaded test
+    run (it was drawn again by the parent)."""
     import io
 
     from .._style import figure_style, new_figure
@@ -241,13 +245,13 @@ def _warm_up(formats: Sequence[str] = ()) -> None:
 _DRAWERS = 2
 
 
-def _draw_jobs(queue: Any, kw: dict[str, Any], drawn: dict[str, str], done: set[int],
-               caught: list[tuple[str, type, str, int]]) -> None:
+def _draw_jobs(queue: Any, outdir: Path, kw: dict[str, Any], drawn: dict[str, str],
+               done: set[int], caught: list[tuple[str, type, str, int]]) -> None:
     """Draw jobs from ``queue`` until its end mark; a failed job is left to the parent."""
     from .. import plotting
 
     while (job := queue.get()) is not None:
-        i, outdir, names, result, extra = job
+        i, names, result, extra = job
         try:
             with warnings.catch_warnings(record=True) as seen:
                 warnings.simplefilter("always")
@@ -259,7 +263,7 @@ def _draw_jobs(queue: Any, kw: dict[str, Any], drawn: dict[str, str], done: set[
             _log.debug("figures %s failed; drawn again in the parent", names, exc_info=True)
 
 
-def _second_drawer(queue: Any, kw: dict[str, Any]) -> tuple[int, Any] | None:
+def _second_drawer(queue: Any, outdir: Path, kw: dict[str, Any]) -> tuple[int, Any] | None:
     """Fork another drawer from this one (matplotlib loaded and warmed up); returns its
     ``(pid, connection)`` for :func:`_join_drawer`, None when the fork failed."""
     import multiprocessing
@@ -281,7 +285,7 @@ def _second_drawer(queue: Any, kw: dict[str, Any]) -> tuple[int, Any] | None:
     try:
         receive.close()
         die_with_parent(me)
-        _draw_jobs(queue, kw, drawn, done, caught)
+        _draw_jobs(queue, outdir, kw, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the main process draws what was not delivered
         _log.debug("second figure process stopped", exc_info=True)
@@ -309,7 +313,8 @@ def _join_drawer(helper: tuple[int, Any], drawn: dict[str, str], done: set[int],
     return cpu
 
 
-def _figure_child(queue: Any, conn: Any, parent: int, kw: dict[str, Any]) -> None:
+def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
+                  kw: dict[str, Any]) -> None:
     code = 1
     drawn: dict[str, str] = {}
     done: set[int] = set()
@@ -321,9 +326,9 @@ def _figure_child(queue: Any, conn: Any, parent: int, kw: dict[str, Any]) -> Non
 
         _warm_up(kw.get("formats") or ())
         for _ in range(_DRAWERS - 1):
-            if (h := _second_drawer(queue, kw)) is not None:
+            if (h := _second_drawer(queue, outdir, kw)) is not None:
                 helpers.append(h)
-        _draw_jobs(queue, kw, drawn, done, caught)
+        _draw_jobs(queue, outdir, kw, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the parent draws what was not delivered
         _log.debug("figure process stopped", exc_info=True)

@@ -113,46 +113,30 @@ def run_search(
                                share_folder=share_folder)  # type: ignore[return-value]
     started = _utc()
     cfg = _apply_overrides(load_config(config), toys=toys, seed=seed, engine=engine)
+    _check_inputs(cfg)
     target = _target(cfg, out)
-    # the drawer loads matplotlib while the inputs are checked and read (its folder is
-    # named once staged); stopped if the run fails before the search starts
-    drawer = _figure_worker(cfg) if target is not None else None
-    try:
-        _check_inputs(cfg)
-        with _staged(target, "search", share_folder) as stage:
-            res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
-                          stage=stage, target=target, drawer=drawer)
-    except BaseException:
-        if drawer is not None:
-            drawer.cancel()
-        raise
+    with _staged(target, "search", share_folder) as stage:
+        res = _search(cfg, unblind=bool(unblind), progress=progress, started=started,
+                      stage=stage, target=target)
     return res
 
 
-def _figure_worker(cfg: Config) -> FigureWorker | None:
-    """The process that draws a run's figures beside the statistics, or None with
-    ``output.figures = "none"`` (no process is started)."""
-    if cfg.output.figures == ("none",):
-        return None
-    from ..plotting import figure_labels  # (no matplotlib: that loads in the drawer)
-
-    return FigureWorker(None, formats=cfg.output.formats, log_scale=cfg.output.log_scale,
-                        labels=figure_labels(cfg))
-
-
 def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
-            stage: _Staging | None, target: Path | None, collected: Any = None,
-            drawer: FigureWorker | None = None) -> SearchResult:
+            stage: _Staging | None, target: Path | None, collected: Any = None
+            ) -> SearchResult:
     """The search of one config; ``collected``: its events already read and selected (a
-    combination reads a shared input once for its channels), else read here; ``drawer``:
-    its figure process when already started (else started here when an output folder is
-    written)."""
-    if stage is None:  # nothing written: no figures
-        drawer = None
-    elif drawer is None:
-        drawer = _figure_worker(cfg)
-    if drawer is not None:
-        drawer.outdir = stage.path / "figures"  # type: ignore[union-attr]
+    combination reads a shared input once for its channels), else read here."""
+    # the figures are drawn beside the statistics, by a process started before the events
+    # are read (it loads matplotlib meanwhile); without an output folder, or with
+    # output.figures = "none", none are drawn (and no process is started).  Not before the
+    # input checks: they load the events' modules (awkward, vector, pyarrow), which the
+    # drawers would otherwise each import to unpickle their first job (~0.6 s of CPU)
+    drawer = None
+    if stage is not None and cfg.output.figures != ("none",):
+        from ..plotting import figure_labels  # (no matplotlib: that loads in the drawer)
+
+        drawer = FigureWorker(stage.path / "figures", formats=cfg.output.formats,
+                              log_scale=cfg.output.log_scale, labels=figure_labels(cfg))
     besides: list[Beside] = []
     try:
         # only our kernels run in a search: numba's third-party extensions (awkward's,
