@@ -150,15 +150,17 @@ def _primitive(z, upper, tail):  # pragma: no cover - compiled
     return 1.0 if z > _ONE else 0.5 * math.erfc(-z * _SQRT1_2)
 
 
-@njit(cache=True, nogil=True)
-def gaussian_edges(x, m, s, lo, hi, out):  # pragma: no cover - compiled
-    """Rows of ``out``: C(x), dC/dm, dC/dsigma of the Gaussian normalised on [lo, hi]."""
+@njit(inline="always")
+def _window(m, s, lo, hi):  # pragma: no cover - compiled
+    """The Gaussian's normalisation on the window [lo, hi], shared by every kernel here:
+    ``(1/s, z at lo, z at hi, upper, primitive at lo, norm, tail)``.  ``upper``: the window
+    lies above the peak, so the primitive is taken as -Phi(-z), whose upper tail keeps every
+    digit; ``norm``: the primitive's rise over the window (not > 0: no peak in it);
+    ``tail``: beyond how many standard deviations the far tail counts as 0."""
     inv_s = 1.0 / s
     zl = (lo - m) * inv_s
     zh = (hi - m) * inv_s
-    fl = math.exp(-0.5 * zl * zl) * _INV_SQRT2PI * inv_s
-    fh = math.exp(-0.5 * zh * zh) * _INV_SQRT2PI * inv_s
-    upper = zl > 0.0  # window above the peak: the upper tail keeps every digit
+    upper = zl > 0.0
     if upper:
         pl = -0.5 * math.erfc(zl * _SQRT1_2)
         ph = -0.5 * math.erfc(zh * _SQRT1_2)
@@ -166,10 +168,18 @@ def gaussian_edges(x, m, s, lo, hi, out):  # pragma: no cover - compiled
         pl = 0.5 * math.erfc(-zl * _SQRT1_2)
         ph = 0.5 * math.erfc(-zh * _SQRT1_2)
     norm = ph - pl
+    return inv_s, zl, zh, upper, pl, norm, _TAIL if norm > _HELD else _CUT
+
+
+@njit(cache=True, nogil=True)
+def gaussian_edges(x, m, s, lo, hi, out):  # pragma: no cover - compiled
+    """Rows of ``out``: C(x), dC/dm, dC/dsigma of the Gaussian normalised on [lo, hi]."""
+    inv_s, zl, zh, upper, pl, norm, tail = _window(m, s, lo, hi)
     if not norm > 0.0:
         return False
     inv = 1.0 / norm
-    tail = _TAIL if norm > _HELD else _CUT
+    fl = math.exp(-0.5 * zl * zl) * _INV_SQRT2PI * inv_s
+    fh = math.exp(-0.5 * zh * zh) * _INV_SQRT2PI * inv_s
     am = (fl - fh) * inv
     asg = (fl * zl - fh * zh) * inv
     ne = x.size
@@ -214,21 +224,10 @@ def _gaussian_row(x, m, s, lo, hi, frac, b):  # pragma: no cover - compiled
     """Row ``b`` of :func:`gaussian_rows`: mass ``m``, width ``s``; False when the window
     holds none of the peak."""
     ne = x.size
-    inv_s = 1.0 / s
-    zl = (lo - m) * inv_s
-    zh = (hi - m) * inv_s
-    upper = zl > 0.0
-    if upper:
-        pl = -0.5 * math.erfc(zl * _SQRT1_2)
-        ph = -0.5 * math.erfc(zh * _SQRT1_2)
-    else:
-        pl = 0.5 * math.erfc(-zl * _SQRT1_2)
-        ph = 0.5 * math.erfc(-zh * _SQRT1_2)
-    norm = ph - pl
+    inv_s, _zl, _zh, upper, pl, norm, tail = _window(m, s, lo, hi)
     if not norm > 0.0:
         return False
     inv = 1.0 / norm
-    tail = _TAIL if norm > _HELD else _CUT
     c_prev = 0.0
     for i in range(ne):
         z = (x[i] - m) * inv_s
