@@ -100,6 +100,39 @@ def test_a_value_computed_beside_comes_back():
     assert job.result() == [1, 2, 3]
 
 
+def test_drawers_do_not_reuse_the_parents_typeset_text(small_demo, tmp_path, monkeypatch):
+    # matplotlib's FreeType fonts are not fork-safe (matplotlib.font_manager's own note; it
+    # empties only its font cache in a forked child): text typeset before the fork (here
+    # measured as a path, as the value tables do) keeps glyphs of fonts whose file offset
+    # every forked drawer would share.  A drawer typesetting the same text must parse it
+    # anew (a cache miss), however much the parent drew before the search.
+    from matplotlib.mathtext import MathTextParser
+
+    from peaksift import plotting
+    from peaksift._style import text_width
+
+    text = r"$N_{sig}^{parent}$ typeset before the search"
+    text_width(text, 8.8)
+    parent = os.getpid()
+    log = tmp_path / "inherited.txt"
+    real = plotting.search_figures
+
+    def logged(result, outdir, **kw):
+        if os.getpid() != parent:
+            hits = MathTextParser._parse_cached.cache_info().hits
+            text_width(text, 8.8)
+            with open(log, "a") as f:
+                f.write(f"{MathTextParser._parse_cached.cache_info().hits - hits}\n")
+        return real(result, outdir, **kw)
+
+    monkeypatch.setattr(plotting, "search_figures", logged)
+    text_width(text, 8.8)  # in this process the text is cached: a hit
+    peaksift.run_search(_figures_config(small_demo), out=tmp_path / "out", progress=False)
+    reused = [int(x) for x in log.read_text().split()]
+    # each drawer's first job misses (parses anew); later jobs of a drawer hit its own entry
+    assert reused and reused.count(0) >= 1 and len(reused) == 5, reused
+
+
 def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, monkeypatch):
     # Every figure is drawn exactly once, none by the main process, and (each drawing made
     # slow, so that both drawers are busy) by two processes: the second drawer takes jobs
@@ -125,7 +158,7 @@ def test_two_drawers_share_the_figures_each_drawn_once(small_demo, tmp_path, mon
     lines = [ln.split() for ln in log.read_text().splitlines()]
     names = [n for _, n in lines]
     expected = set(plotting.SEARCH_FIGURES) - {"background_envelope"}
-    assert sorted(names) == sorted(expected), names  # each drawn once
+    assert sorted(names) == sorted(expected), lines  # each drawn once
     pids = {int(p) for p, _ in lines}
     assert parent not in pids and len(pids) == 2, lines
     files = {p.name for p in (tmp_path / "beside" / "figures").iterdir()}

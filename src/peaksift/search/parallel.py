@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import logging
 import os
+import sys
 import time
 import warnings
 from collections.abc import Callable, Sequence
@@ -60,6 +61,20 @@ def cpu_seconds() -> float:
 def _child_start(parent: int) -> None:
     worker_start()  # Ctrl-C is the parent's to handle: it stops us
     die_with_parent(parent)
+    _own_fonts()
+
+
+def _own_fonts() -> None:
+    """Forget the typeset text a fork brought along.  matplotlib's FreeType fonts are not
+    fork-safe (its ``font_manager`` says so, and empties its font cache in a forked child),
+    but its cache of parsed mathtext keeps glyphs of fonts opened before the fork, whose
+    file offset the parent and every other forked drawer share: two drawers typesetting the
+    same text at once could read each other's glyph bytes.  A process that drew before the
+    search (a notebook, a test session) has filled that cache."""
+    mathtext = sys.modules.get("matplotlib.mathtext")  # (not loaded: nothing to forget)
+    cache = getattr(getattr(mathtext, "MathTextParser", None), "_parse_cached", None)
+    if hasattr(cache, "cache_clear"):
+        cache.cache_clear()
 
 
 def _rewarn(caught: Sequence[tuple[str, type, str, int]]) -> None:
@@ -285,6 +300,7 @@ def _second_drawer(queue: Any, outdir: Path, kw: dict[str, Any]) -> tuple[int, A
     try:
         receive.close()
         die_with_parent(me)
+        _own_fonts()
         _draw_jobs(queue, outdir, kw, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the main process draws what was not delivered
