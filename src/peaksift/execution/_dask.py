@@ -16,6 +16,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from .._processes import (
+    die_with_parent,
     interrupt_held,
     quiet_fork,
     resolve_start_method,
@@ -76,8 +77,14 @@ def _local_worker_setup() -> None:
     every worker of ours (Ctrl-C left to this process, SIGTERM at its default action and
     unblocked: it started blocked, see :class:`DaskSession`), one thread per library
     (Arrow's count from the environment: a forked worker inherits this process's pool
-    size), and a fast exit."""
+    size), a fast exit, and an end with this process however it ends: the nannies of a
+    local cluster live in this process, and a worker whose parent was killed waited on
+    distributed's own time-outs, several seconds (forked workers hold each other's
+    parent-alive pipes open, so none sees its pipe close)."""
+    import os
+
     worker_start()
+    die_with_parent(os.getppid())
     _install_exit_fast()
 
 
