@@ -151,6 +151,16 @@ def _primitive(z, upper, tail):  # pragma: no cover - compiled
 
 
 @njit(inline="always")
+def _edge_primitive(z, upper, tail):  # pragma: no cover - compiled
+    """:func:`_primitive` at an edge, its constant value beyond 40 standard deviations."""
+    if z < -_CUT:
+        return -1.0 if upper else 0.0
+    if z > _CUT:
+        return 0.0 if upper else 1.0
+    return _primitive(z, upper, tail)
+
+
+@njit(inline="always")
 def _window(m, s, lo, hi):  # pragma: no cover - compiled
     """The Gaussian's normalisation on the window [lo, hi], shared by every kernel here:
     ``(1/s, z at lo, z at hi, upper, primitive at lo, norm, tail)``.  ``upper``: the window
@@ -205,12 +215,7 @@ def gaussian_edges(x, m, s, lo, hi, out):  # pragma: no cover - compiled
         fs[i] = vexp(max(q, -708.0)) * _INV_SQRT2PI * inv_s if q >= -708.0 else 0.0
     for i in range(i0, i1):
         z = (x[i] - m) * inv_s
-        if z < -_CUT:
-            prim = -1.0 if upper else 0.0
-        elif z > _CUT:
-            prim = 0.0 if upper else 1.0
-        else:
-            prim = _primitive(z, upper, tail)
+        prim = _edge_primitive(z, upper, tail)
         c = (prim - pl) * inv
         f = fs[i]
         out[0, i] = c
@@ -231,12 +236,7 @@ def _gaussian_row(x, m, s, lo, hi, frac, b):  # pragma: no cover - compiled
     c_prev = 0.0
     for i in range(ne):
         z = (x[i] - m) * inv_s
-        if z < -_CUT:
-            prim = -1.0 if upper else 0.0
-        elif z > _CUT:
-            prim = 0.0 if upper else 1.0
-        else:
-            prim = _primitive(z, upper, tail)
+        prim = _edge_primitive(z, upper, tail)
         c = (prim - pl) * inv
         if i > 0:
             frac[b, i - 1] = max(0.0, c - c_prev)
