@@ -237,8 +237,10 @@ def fit(
             continue
         cost = make_cost(s0)
         try:
+            # beat: a later start that stalls above the best minimum so far cannot win
             mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names,
-                          stop=None if near is None else _joins(*near[1:]))
+                          stop=None if near is None else _joins(*near[1:]),
+                          beat=None if best is None else best[0])
             if mo.joined:  # on its way into the best minimum: nothing new to learn
                 tried.append(float(mo.fval))
                 calls += cost.ncall

@@ -16,7 +16,8 @@ Which function when
   an iteration cap; the one driver under the stacked fits of :mod:`peaksift.stats`.
   :func:`damped_step` is its step.
 * :func:`new_minuit` -- an ``iminuit.Minuit`` object on a cost, for MINOS-type intervals or
-  for users who want it.
+  for users who want it (:mod:`.migrad`, with the watched fallback; :class:`Minimum` and
+  :class:`NearMinimum` live in :mod:`.minimum`).
 """
 
 from __future__ import annotations
@@ -29,6 +30,8 @@ from typing import Any
 
 import numpy as np
 
+from .migrad import migrad, new_minuit
+from .minimum import Minimum, NearMinimum
 from .poisson import WALL_FRACTION, use_compiled
 
 __all__ = ["Minimum", "NearMinimum", "StackedMinimum", "covariance", "damped_step", "first_error",
@@ -40,41 +43,6 @@ _SMALL = 16
 
 #: a scaled Hessian with a smaller eigenvalue is treated as singular
 POSDEF_TOL = 1e-10
-
-
-@dataclass
-class Minimum:
-    """What a minimisation found (free parameters only)."""
-
-    x: np.ndarray
-    fval: float
-    converged: bool
-    call_limit: bool
-    errors: np.ndarray
-    method: str
-    minuit: Any = None  # the Minuit object when MIGRAD ran
-    #: stopped early because ``stop`` said the path had joined a minimum found before
-    joined: bool = False
-
-
-def new_minuit(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-               names: list[str], steps: np.ndarray | None = None) -> Any:
-    """An ``iminuit.Minuit`` on ``cost`` (errordef 0.5, analytic gradient, bounds)."""
-    from iminuit import Minuit
-
-    m = Minuit(cost, *np.asarray(start, float), grad=cost.grad, name=names)
-    m.strategy = 0
-    m.print_level = 0
-    for i, n in enumerate(names):
-        lo = None if not math.isfinite(lower[i]) else float(lower[i])
-        hi = None if not math.isfinite(upper[i]) else float(upper[i])
-        m.limits[n] = (lo, hi)
-        if steps is not None and math.isfinite(steps[i]) and steps[i] > 0:
-            m.errors[n] = float(steps[i])
-        else:
-            span = upper[i] - lower[i] if math.isfinite(upper[i] - lower[i]) else abs(start[i])
-            m.errors[n] = max(abs(start[i]) * 0.05, 1e-3 * span, 1e-6)
-    return m
 
 
 def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
@@ -94,26 +62,6 @@ def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
     except np.linalg.LinAlgError:
         return None
     return step if np.all(np.isfinite(step)) else None
-
-
-@dataclass(frozen=True)
-class NearMinimum:
-    """A ``stop`` test for :func:`minimize`: the path has joined a known minimum when its
-    NLL is at most ``nll_margin`` above ``nll`` and its squared distance from ``x`` in the
-    metric ``hessian``, ``d^T H d``, is below ``distance``.  As data (not a closure) it also
-    stops the compiled loop of :mod:`.driver`."""
-
-    x: np.ndarray
-    nll: float
-    hessian: np.ndarray
-    nll_margin: float
-    distance: float
-
-    def __call__(self, x: np.ndarray, f: float) -> bool:
-        if not f <= self.nll + self.nll_margin:
-            return False
-        d = x - self.x
-        return float(d @ self.hessian @ d) < self.distance
 
 
 #: an exception inside Fisher scoring: MIGRAD starts afresh
@@ -231,19 +179,22 @@ def _promise(g: np.ndarray, step: np.ndarray, a: np.ndarray) -> float:
 
 def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
              names: list[str], edm_goal: float = 1e-7,
-             stop: Callable[[np.ndarray, float], bool] | None = None) -> Minimum:
+             stop: Callable[[np.ndarray, float], bool] | None = None,
+             beat: float | None = None) -> Minimum:
     """Fisher scoring first (few calls), MIGRAD when it does not converge (from where it
     stopped on binned costs with empty bins, see :func:`_goes_on`).
 
-    ``stop(x, f)`` (optional) is asked at every point Fisher scoring accepts; when it says
-    True the minimisation ends there and the :class:`Minimum` has ``joined=True`` (used by
-    the free fit to abandon a start whose path has run into a minimum it already has)."""
+    ``stop(x, f)`` (optional) is asked at every point Fisher scoring accepts (and MIGRAD
+    evaluates); when it says True the minimisation ends there and the :class:`Minimum` has
+    ``joined=True`` (used by the free fit to abandon a start whose path has run into a
+    minimum it already has).  ``beat`` (optional), the NLL of the best minimum the caller
+    has, lets a MIGRAD run that stalls above it stop early (:mod:`.migrad`)."""
     start = np.minimum(np.maximum(np.asarray(start, float), lower), upper)  # np.clip
     if stop is None or isinstance(stop, NearMinimum):
         fast = _compiled(cost, start, lower, upper, edm_goal, stop)
         if fast is not None:
-            return fast if isinstance(fast, Minimum) else _migrad(
-                cost, fast if _goes_on(cost) else start, lower, upper, names)
+            return fast if isinstance(fast, Minimum) else migrad(
+                cost, fast if _goes_on(cost) else start, lower, upper, names, beat, stop)
     with np.errstate(all="ignore"):
         try:
             x, f, ok, inv = fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal,
@@ -257,8 +208,8 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     if ok:
         errs = np.sqrt(np.clip(np.diag(inv), 0, None))
         return Minimum(x, f, True, False, errs, "fisher-scoring")
-    return _migrad(cost, x if inv is not _FAILED and _goes_on(cost) else start, lower, upper,
-                   names)
+    return migrad(cost, x if inv is not _FAILED and _goes_on(cost) else start, lower, upper,
+                  names, beat, stop)
 
 
 def _goes_on(cost: Any) -> bool:
@@ -295,18 +246,6 @@ def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray
         return x
     return Minimum(x, f, True, False, np.sqrt(np.clip(np.diag(inv), 0, None)),
                    "fisher-scoring")
-
-
-def _migrad(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-            names: list[str]) -> Minimum:
-    m = new_minuit(cost, start, lower, upper, names)
-    with warnings.catch_warnings(), np.errstate(all="ignore"):
-        warnings.simplefilter("ignore")
-        m.migrad(ncall=20000)
-    fm = m.fmin
-    return Minimum(np.asarray(m.values, float), float(m.fval), bool(fm.is_valid),
-                   bool(fm.has_reached_call_limit), np.asarray(m.errors, float),
-                   "iminuit-migrad", m)
 
 
 def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
