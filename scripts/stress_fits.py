@@ -32,7 +32,7 @@ then 2, 5, ``--min-toys``, 20, 50 and ``--toys``, the later levels cheapest cell
 per toy so far). ``--deadline HH:MM`` (UTC) starts no toy after that time,
 so a time-limited run leaves every cell with at least the last level all cells reached, and
 the tables say how many toys each cell ran. Toy k of a cell depends only on the seed, the
-cell and k, so chunks add up to the same toys as one run. ``--part I/N`` runs one of N
+cell and k, so chunks add up to the same toys as one run. ``--part I/N`` (I = 1..N) runs one of N
 hash-split shares of the cells (one process per share, each with its own log; ``--tables
 a.jsonl,b.jsonl`` joins them).
 
@@ -498,6 +498,19 @@ def warm_up() -> None:
                 pass
 
 
+def _part(text: str) -> tuple[int, int]:
+    """``--part I/N`` as (I, N), I counted from 1 (part I takes the cells whose label hash
+    is I - 1 modulo N); exits with a message for anything else."""
+    try:
+        i, n = (int(v) for v in text.split("/"))
+    except ValueError:
+        sys.exit(f"--part {text!r}: expected I/N with whole numbers, e.g. --part 1/2")
+    if n < 1 or not 1 <= i <= n:
+        sys.exit(f"--part {text!r}: I must be between 1 and N (N >= 1), e.g. --part 1/{max(n, 1)} "
+                 f"... --part {max(n, 1)}/{max(n, 1)}")
+    return i, n
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--toys", type=int, default=100, help="toys per cell (default 100)")
@@ -515,8 +528,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--min-toys", type=int, default=10,
                     help="an extra level: every cell reaches 1, 2, 5, this many, 20, 50, then "
                     "--toys, cheapest cells first within a level (default 10)")
-    ap.add_argument("--part", metavar="I/N", help="run only part I of N (cells split by a "
-                    "hash of their label; one process per part, each with its own --log)")
+    ap.add_argument("--part", metavar="I/N", help="run only part I of N, I = 1..N (cells split "
+                    "by a hash of their label; one process per part, each with its own --log)")
     ap.add_argument("--tables", metavar="LOG", help="only print the tables of --log files "
                     "(comma-separated)")
     ap.add_argument("--shuffle", type=int, metavar="SEED", help="run the cells in an order "
@@ -532,8 +545,8 @@ def main(argv: list[str] | None = None) -> int:
     patterns = [p.strip() for p in args.cells.split(",") if p.strip()]
     specs = list(cells(patterns))
     if args.part:
-        i, n = (int(v) for v in args.part.split("/"))
-        specs = [sp for sp in specs if zlib.crc32(sp[0].encode()) % n == i]
+        i, n = _part(args.part)
+        specs = [sp for sp in specs if zlib.crc32(sp[0].encode()) % n == i - 1]
     if args.shuffle is not None:
         order = np.random.default_rng(args.shuffle).permutation(len(specs))
         specs = [specs[i] for i in order]
