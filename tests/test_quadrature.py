@@ -102,3 +102,30 @@ def test_stacked_rows_equal_single_sets(shape, pars, ref):
     for i in range(3):
         f1, g1 = shape.fractions_and_grad(EDGES, list(rows[i]), WINDOW)
         assert np.array_equal(frac[i], f1) and np.array_equal(grad[:, i], g1)
+
+
+MASSES = np.array([250.0, 300.0, 301.7, 377.0, 512.5, 640.0, 799.0, 800.0, 820.0])
+
+
+@pytest.mark.parametrize("shape,pars,ref", CASES, ids=lambda c: str(c)[:30])
+def test_density_and_derivatives_match_quad(shape, pars, ref):
+    """The unbinned fit's density (window rule of :mod:`peaksift.shapes.quadrature`):
+    f(x) / integral of f over the window (quad, as above), 1e-10 relative; its derivatives
+    f(x) (d ln f/d p_j (x) - K_j), K_j the window integral of (d ln f/d p_j) f over that of
+    f (quad, the shape's formula written out above), 1e-8 of the largest; 0 outside the
+    window (the first and last masses)."""
+    log_f, dlog = ref
+    top = max(log_f(x, pars) for x in np.linspace(*WINDOW, 201))
+    z = _quad(log_f, *WINDOW, pars)
+    inside = (MASSES >= WINDOW[0]) & (MASSES <= WINDOW[1])
+    want = np.array([math.exp(log_f(x, pars) - top) / z if ok else 0.0
+                     for x, ok in zip(MASSES, inside)])
+    pdf, grad = shape.pdf_and_grad(MASSES, pars, WINDOW)
+    assert np.all(pdf[~inside] == 0.0) and np.all(grad[:, ~inside] == 0.0)
+    assert np.max(np.abs(pdf[inside] / want[inside] - 1.0)) < 1e-10
+    assert np.max(np.abs(shape.pdf(MASSES, pars, WINDOW)[inside] / want[inside] - 1.0)) < 1e-10
+    for j in range(len(pars)):
+        kj = _quad(log_f, *WINDOW, pars, lambda x, j=j: dlog(x, pars, j)) / z
+        d_want = np.array([w * (dlog(x, pars, j) - kj) if ok else 0.0
+                           for x, w, ok in zip(MASSES, want, inside)])
+        assert np.max(np.abs(grad[j] - d_want)) < 1e-8 * np.max(np.abs(d_want))

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._base import Shape
+from ._base import Shape, as_window
 
 
 def _t(x, window):
@@ -61,3 +61,31 @@ def _quadrature(shape, edges, params, window, grad: bool):
     from .quadrature import shape_fractions
 
     return shape_fractions(shape, edges, params, window, grad)
+
+
+class _ExpFamily:
+    """The density of an exponential-family shape (``_basis``, see :mod:`.quadrature`) from
+    the compiled module's window rule, with exact derivatives, where ``_uniform_rule``
+    allows (the generic table and its finite differences otherwise): what an unbinned fit
+    evaluates at every step.  Mixed in before the shape's base class."""
+
+    def _uniform_rule(self, window) -> bool:
+        return True
+
+    def _exp_pdf(self, x, params, window, grad: bool):
+        if len(params) != len(self.parameters):
+            return None  # the generic path says what is wrong
+        window = as_window(window)
+        if not self._uniform_rule(window):
+            return None
+        from .quadrature import exp_family_pdf
+
+        return exp_family_pdf(self, x, params, window, grad)
+
+    def pdf(self, x, params, window):
+        out = self._exp_pdf(x, params, window, False) if np.ndim(x) == 1 else None
+        return out[0] if out is not None else super().pdf(x, params, window)
+
+    def pdf_and_grad(self, x, params, window, need=None):
+        out = self._exp_pdf(x, params, window, True)
+        return out if out is not None else super().pdf_and_grad(x, params, window, need)

@@ -10,12 +10,12 @@ import numpy as np
 
 from ..errors import FitError
 from ._base import Parameter
-from .background_base import _CompiledRows, _quadrature
+from .background_base import _CompiledRows, _ExpFamily, _quadrature
 
 __all__ = ["Dijet"]
 
 
-class Dijet(_CompiledRows):
+class Dijet(_ExpFamily, _CompiledRows):
     r"""The smoothly falling family of dijet searches (e.g. Phys. Rev. D 79 (2009) 112002):
 
     .. math:: f(x) = p_0 \frac{(1-x)^{p_1}}{x^{p_2 + p_3 \ln x}}, \qquad x = m/\sqrt{s}
@@ -68,11 +68,14 @@ class Dijet(_CompiledRows):
         out = [np.log1p(-x) - math.log1p(-xc), -(lx - lxc), -(lx * lx - lxc * lxc)]
         return np.stack(out[: self.npar - 1])
 
+    def _uniform_rule(self, window):
+        """Whether the uniform panels serve (sqrt_s at least a window width above it; else
+        the generic path's graded panels)."""
+        return self._roots(window) - window[1] >= window[1] - window[0]
+
     def _compiled(self, edges, params, window, grad):
-        """Compiled bins where the uniform panels serve (sqrt_s at least a window width
-        above it); None otherwise (the generic path's graded panels)."""
-        rs = self._roots(window)
-        if rs - window[1] < window[1] - window[0]:
+        """Compiled bins where the uniform panels serve; None otherwise."""
+        if not self._uniform_rule(window):
             return None
         return _quadrature(self, edges, params, window, grad)
 

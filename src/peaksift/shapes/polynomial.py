@@ -12,12 +12,20 @@ from scipy import special
 
 from ..errors import FitError
 from ._base import Parameter
-from .background_base import _Background, _CompiledRows, _quadrature, _rows, _stacked, _t
+from .background_base import (
+    _Background,
+    _CompiledRows,
+    _ExpFamily,
+    _quadrature,
+    _rows,
+    _stacked,
+    _t,
+)
 
 __all__ = ["Bernstein", "ExpPoly", "Exponential"]
 
 
-class ExpPoly(_Background):
+class ExpPoly(_ExpFamily, _Background):
     r"""Exponential of a polynomial on the window-scaled variable
     :math:`t = (x - c)/h \in [-1, 1]` (c, h: window centre and half-width):
 
@@ -81,6 +89,9 @@ class ExpPoly(_Background):
         t2 = t * t
         series = 0.5 * (t2 - 1.0) + b * (t2 * t + 1.0) / 3.0 + b * b * (t2 * t2 - 1.0) / 8.0
         return [h * np.where(small, series, exact)]
+
+    def _uniform_rule(self, window):
+        return self.order != 1  # order 1: closed form
 
     def _basis(self, x, window):
         """The exponent's basis functions t^j (see :mod:`.quadrature`)."""
