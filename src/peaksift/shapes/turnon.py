@@ -15,6 +15,12 @@ from scipy import special
 from ._base import Parameter
 from .background_base import _Background
 
+_INV_SQRT2PI = 1.0 / math.sqrt(2.0 * math.pi)
+
+
+def _phi(u):
+    return _INV_SQRT2PI * np.exp(-0.5 * u * u)
+
 __all__ = ["TurnOn"]
 
 
@@ -58,7 +64,7 @@ class TurnOn(_Background):
             out.append(Parameter(p.name, p.start if math.isfinite(p.start) else s, a, b, p.unit))
         return tuple(out)
 
-    def _difference_scales(self, p):
+    def _difference_scales(self, p):  # (finite differences: stacked parameter sets only)
         # the threshold moves the turn-on across its resolution
         scales = super()._difference_scales(p)
         scales[0] = np.abs(p[1])
@@ -74,11 +80,45 @@ class TurnOn(_Background):
         t, r, k = p
         c = 0.5 * (window[0] + window[1])
         u = (x - t) / r
+        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+            first = self._first(x, p, window)
+        return -(first + np.exp(-k * (x - c)) * special.ndtr(u)) / k
+
+    @staticmethod
+    def _first(x, p, window):
+        """The first term of S (class docstring), free of cancellation on both sides."""
+        t, r, k = p
+        c = 0.5 * (window[0] + window[1])
+        u = (x - t) / r
         q = k * r
         v = u + q
+        upper = 0.5 * special.erfcx(v * (1.0 / math.sqrt(2.0))) * np.exp(-k * (x - c)
+                                                                            - 0.5 * u * u)
+        lower = np.exp(-k * (t - c) + 0.5 * q * q + special.log_ndtr(-v))
+        return np.where(v > 0, upper, lower)
+
+    def _density_grad(self, x, p, window):
+        # d/dt and d/dr through Phi(u), u = (x - t)/r; d/dk through the exponential
+        t, r, k = p
+        c = 0.5 * (window[0] + window[1])
+        u = (x - t) / r
+        e = np.exp(-k * (x - c))
+        pe = _phi(u) * e
+        return [-pe / r, -pe * u / r, -(x - c) * special.ndtr(u) * e]
+
+    def _primitive_grad(self, x, p, window):
+        # -dS/d(t, r, k) with S = (A + E Phi(u)) / k, A the first term of _primitive, E =
+        # e^{-k(x-c)}: dS/dt = -A, dS/dr = -(phi(u) E - k r A) (by parts, u phi = -phi'),
+        # dS/dk = -S/k + (A (k r^2 - (t - c)) - r phi(u) E - (x - c) E Phi(u)) / k (using
+        # e^{-k(t-c) + k^2 r^2/2} phi(u + k r) = phi(u) E)
+        t, r, k = p
+        c = 0.5 * (window[0] + window[1])
+        u = (x - t) / r
         with np.errstate(over="ignore", invalid="ignore", under="ignore"):
-            upper = 0.5 * special.erfcx(v * (1.0 / math.sqrt(2.0))) * np.exp(-k * (x - c)
-                                                                                - 0.5 * u * u)
-            lower = np.exp(-k * (t - c) + 0.5 * q * q + special.log_ndtr(-v))
-            first = np.where(v > 0, upper, lower)
-        return -(first + np.exp(-k * (x - c)) * special.ndtr(u)) / k
+            a = self._first(x, p, window)
+            e = np.exp(-k * (x - c))
+            pe = _phi(u) * e
+            ee = e * special.ndtr(u)
+            s = (a + ee) / k
+            ds_k = -s / k + (a * (k * r * r - (t - c)) - r * pe - (x - c) * ee) / k
+        return [a, pe - k * r * a, -ds_k]
