@@ -414,6 +414,26 @@ class BreitWigner(_Signal):
         val = (np.log(x - a) - np.log(x + a)) / (2.0 * a)
         return val.imag / (np.real(m) * g)
 
+    def _density_grad(self, x, p, window):
+        m, g = p
+        d = self._density(x, p, window)
+        d2 = d * d
+        return [-d2 * (2.0 * m * g * g - 4.0 * m * (x * x - m * m)), -d2 * (2.0 * m * m * g)]
+
+    def _primitive_grad(self, x, p, window):
+        # P = Im[L/(2a)] / (m g), L = ln(x - a) - ln(x + a), a^2 = m^2 + i m g:
+        # d(L/2a)/da = -x / (a (x^2 - a^2)) - L / (2 a^2), da/dm = (2m + i g)/(2a),
+        # da/dg = i m / (2a); then the quotient rule for 1/(m g)
+        m, g = p
+        mc = np.asarray(m, dtype=complex)
+        a = np.sqrt(mc * mc + 1j * mc * g)
+        lg = np.log(x - a) - np.log(x + a)
+        dq = -x / (a * (x * x - a * a)) - lg / (2.0 * a * a)
+        prim = (lg / (2.0 * a)).imag / (m * g)
+        dm = (dq * (2.0 * mc + 1j * g) / (2.0 * a)).imag / (m * g) - prim / m
+        dg = (dq * (1j * mc) / (2.0 * a)).imag / (m * g) - prim / g
+        return [dm, dg]
+
     def fwhm(self, params):
         m, g = float(params[0]), float(params[1])
         return math.sqrt(m * m + m * g) - math.sqrt(max(m * m - m * g, 0.0))
