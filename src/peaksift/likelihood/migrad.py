@@ -19,7 +19,10 @@ minimum found by another start.  :class:`_Watch` sits between MIGRAD and the cos
   4e-4 above a point it had seen);
 * given ``beat`` (the NLL of the best minimum the caller has), a run whose lowest NLL has
   not fallen by ``STALL_GAIN`` in ``STALL_CALLS`` calls while it is still more than
-  ``STALL_MARGIN`` above ``beat`` is stopped: it cannot become the lowest minimum;
+  ``STALL_MARGIN`` above ``beat`` is stopped: it cannot become the lowest minimum; so is a
+  run whose lowest NLL has not moved at all (by ``STUCK_GAIN``) in ``STUCK_CALLS`` calls
+  while more than ``STUCK_MARGIN`` above ``beat`` (a run stuck 0.048 above the best
+  minimum took 21,000 calls, 23 s, to end where it was after 91);
 * given ``stop`` (a :class:`.minimum.NearMinimum`), a run whose path joins the best
   minimum is stopped as Fisher scoring's is (``joined``).
 
@@ -38,13 +41,18 @@ import numpy as np
 
 from .minimum import Minimum
 
-__all__ = ["STALL_CALLS", "STALL_GAIN", "STALL_MARGIN", "migrad", "new_minuit"]
+__all__ = ["STALL_CALLS", "STALL_GAIN", "STALL_MARGIN", "STUCK_CALLS", "STUCK_GAIN",
+           "STUCK_MARGIN", "migrad", "new_minuit"]
 
 #: calls without a gain of STALL_GAIN in the run's lowest NLL after which a run still
 #: STALL_MARGIN above the best minimum is stopped
 STALL_CALLS = 300
 STALL_GAIN = 0.01
 STALL_MARGIN = 0.05
+#: the same for a run that does not move at all
+STUCK_CALLS = 2000
+STUCK_GAIN = 1e-6
+STUCK_MARGIN = 1e-3
 #: MIGRAD's own call limit
 CALL_LIMIT = 20000
 
@@ -91,6 +99,8 @@ class _Watch:
         self.best_x: np.ndarray | None = None
         self.mark = math.inf  # the lowest NLL when it last fell by STALL_GAIN
         self.since = 0  # calls since then
+        self.moved = math.inf  # the same for STUCK_GAIN
+        self.still = 0
 
     def __call__(self, *x: float) -> float:
         f = self.cost(*x)
@@ -100,9 +110,14 @@ class _Watch:
             self.mark, self.since = self.best_f, 0
         else:
             self.since += 1
+        if self.best_f < self.moved - STUCK_GAIN:
+            self.moved, self.still = self.best_f, 0
+        else:
+            self.still += 1
         if self.stop is not None and f < 1e299 and self.stop(np.asarray(x, float), f):
             raise _Stop(True)
-        if self.since >= STALL_CALLS and self.best_f > self.beat + STALL_MARGIN:
+        if ((self.since >= STALL_CALLS and self.best_f > self.beat + STALL_MARGIN)
+                or (self.still >= STUCK_CALLS and self.best_f > self.beat + STUCK_MARGIN)):
             raise _Stop(False)
         return f
 
