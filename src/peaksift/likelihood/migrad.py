@@ -46,7 +46,7 @@ __all__ = ["STALL_CALLS", "STALL_GAIN", "STALL_MARGIN", "STUCK_CALLS", "STUCK_GA
 
 #: calls without a gain of STALL_GAIN in the run's lowest NLL after which a run still
 #: STALL_MARGIN above the best minimum is stopped
-STALL_CALLS = 300
+STALL_CALLS = 1000
 STALL_GAIN = 0.01
 STALL_MARGIN = 0.05
 #: the same for a run that does not move at all
