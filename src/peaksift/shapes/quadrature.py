@@ -187,6 +187,24 @@ def _window_rule(shape, window) -> tuple[np.ndarray, np.ndarray]:
     return hit
 
 
+def _event_basis(shape, x: np.ndarray, window) -> np.ndarray:
+    """The basis at the masses ``x``, kept on the shape for the last few mass arrays (an
+    unbinned fit asks for the same masses at every step; the logarithms of the dijet basis
+    were half of an evaluation).  Found by value (``array_equal``), never by identity, so
+    an array changed in place or a new one at the same address cannot find a stale
+    basis."""
+    memo = shape.__dict__.setdefault("_event_bases", [])
+    key = (float(window[0]), float(window[1]), x.size)
+    for k, xs, px in memo:
+        if k == key and np.array_equal(xs, x):
+            return px
+    px = np.asarray(shape._basis(x, window), float).reshape(-1, x.size)
+    px.flags.writeable = False
+    memo.insert(0, (key, x.copy(), px))
+    del memo[4:]
+    return px
+
+
 def exp_family_pdf(shape, x, params, window, grad: bool):
     r"""The window-normalised density of an exponential-family shape at masses ``x`` (1-d,
     scalar parameters) and, with ``grad``, its exact parameter derivatives
@@ -212,7 +230,7 @@ def exp_family_pdf(shape, x, params, window, grad: bool):
         return None
     x = np.asarray(x, float)
     lo, hi = float(window[0]), float(window[1])
-    px = np.asarray(shape._basis(x, window), float).reshape(-1, x.size)
+    px = _event_basis(shape, x, window)
     pdf = np.exp(p @ px - top) * (1.0 / z)
     inside = (x >= lo) & (x <= hi)
     if not inside.all():
