@@ -286,9 +286,16 @@ def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
     return cov, True
 
 
+#: MIGRAD's EDM goal at strategy 0 and errordef 0.5 (0.002 x tolerance 0.1 x errordef)
+EDM_MIGRAD = 1e-4
+
+
 def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
     """Observed Hessian at the minimum found, one Newton step to refine a MIGRAD minimum,
-    and the covariance ``H^-1`` (errordef 0.5).
+    and the covariance ``H^-1`` (errordef 0.5).  A MIGRAD minimum that MIGRAD left
+    unconverged (not at its call limit) is marked converged (``mo.converged``) when the
+    Hessian is positive definite and the EDM it gives, held at the bounds, is below
+    ``EDM_MIGRAD``.
 
     Returns ``(x, nll, covariance, positive_definite)``.
     """
@@ -307,8 +314,17 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
             warnings.simplefilter("ignore")
             x1 = np.clip(x0 - cov @ cost.grad(*x0), lower, upper)
             f1 = cost(*x1)
-        if np.isfinite(f1) and f1 < f0:
-            x0, f0 = x1, f1
+            if np.isfinite(f1) and f1 < f0:
+                x0, f0 = x1, f1
+            if not mo.converged and not mo.call_limit:
+                g = cost.grad(*x0)
+                g = np.where(held_at_bounds(x0, g, lower, upper), 0.0, g)
+                edm = 0.5 * float(g @ cov @ g)
+                # MIGRAD's verdict depends on its path to the last ~1e-4 (the same start
+                # converged or not as a gradient's last digits changed); a point where the
+                # observed Hessian is positive definite and promises less than MIGRAD's own
+                # goal (strategy 0, errordef 0.5) is a minimum
+                mo.converged = bool(math.isfinite(edm) and edm < EDM_MIGRAD)
     return x0, f0, cov, posdef
 
 
