@@ -291,8 +291,9 @@ EDM_MIGRAD = 1e-4
 
 
 def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
-    """Observed Hessian at the minimum found, one Newton step to refine a MIGRAD minimum,
-    and the covariance ``H^-1`` (errordef 0.5).  A MIGRAD minimum that MIGRAD left
+    """Observed Hessian at the minimum found, a MIGRAD minimum polished (:func:`_polish`)
+    and refined by one Newton step, and the covariance ``H^-1`` (errordef 0.5).  A MIGRAD
+    minimum that MIGRAD left
     unconverged (not at its call limit) is marked converged (``mo.converged``) when the
     Hessian is positive definite and the EDM it gives, held at the bounds, is below
     ``EDM_MIGRAD``.
@@ -301,6 +302,8 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
     """
     x0 = np.asarray(mo.x, float)
     f0 = mo.fval
+    if mo.method == "iminuit-migrad" and math.isfinite(f0):
+        x0, f0 = _polish(cost, x0, f0, lower, upper)
     errs = np.asarray(mo.errors, float)
     h = np.where(np.isfinite(errs) & (errs > 0), 1e-3 * errs, 1e-6 * np.maximum(np.abs(x0), 1.0))
     try:
@@ -326,6 +329,32 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
                 # goal (strategy 0, errordef 0.5) is a minimum
                 mo.converged = bool(math.isfinite(edm) and edm < EDM_MIGRAD)
     return x0, f0, cov, posdef
+
+
+#: Fisher-scoring iterations that polish a MIGRAD minimum, and the least NLL gain kept
+POLISH_STEPS = 20
+POLISH_GAIN = 1e-7
+
+
+def _polish(cost: Any, x0: np.ndarray, f0: float, lower: np.ndarray,
+            upper: np.ndarray) -> tuple[np.ndarray, float]:
+    """A MIGRAD minimum polished by a few Fisher-scoring steps, kept when they lower the NLL
+    by more than ``POLISH_GAIN``.
+
+    MIGRAD (strategy 0) stops at EDM ~1e-4; where the minimum lies in a flat valley (tails
+    at their bounds, a width at its floor) the NLL it stops at depends on its path: exact
+    derivatives of the turn-on instead of differenced ones left one fit 1.5e-5 higher.
+    Fisher scoring from there (held at the bounds, EDM goal 1e-7) takes it down.  A smaller
+    gain is left alone: along a valley flat to 1e-7 the point would only wander (onto a
+    bound, say) for nothing the NLL can tell."""
+    with np.errstate(all="ignore"):
+        try:
+            x1, f1, _, _ = fisher_scoring(cost, x0, lower, upper, max_iter=POLISH_STEPS)
+        except (ArithmeticError, np.linalg.LinAlgError, ValueError):
+            return x0, f0
+    if math.isfinite(f1) and f1 < f0 - POLISH_GAIN:
+        return np.asarray(x1, float), float(f1)
+    return x0, f0
 
 
 def damped_step(hess: np.ndarray, grad: np.ndarray, lam: np.ndarray) -> np.ndarray:
