@@ -80,19 +80,19 @@ def _run(watch: mg._Watch, calls: int) -> int:
 
 def test_stuck_run_above_the_best_stops_below_it_does_not():
     flat = _Sequence(lambda k: 10.0)
-    above = mg._Watch(flat, 10.0 - 2 * mg.STUCK_MARGIN, None)
+    above = mg._Watch(flat, 10.0 - 2 * mg.STUCK_MARGIN)
     assert _run(above, 3 * mg.STUCK_CALLS) == mg.STUCK_CALLS + 1
     assert above.best_f == 10.0
-    below = mg._Watch(_Sequence(lambda k: 10.0), 10.5, None)
+    below = mg._Watch(_Sequence(lambda k: 10.0), 10.5)
     assert _run(below, 3 * mg.STUCK_CALLS) == 0
-    unknown = mg._Watch(_Sequence(lambda k: 10.0), None, None)
+    unknown = mg._Watch(_Sequence(lambda k: 10.0), None)
     assert _run(unknown, 3 * mg.STUCK_CALLS) == 0
 
 
 def test_a_run_that_keeps_falling_is_not_stopped():
     # falls by twice STALL_GAIN every STALL_CALLS / 2 calls: never stalled, never stuck
     step = 2.0 * mg.STALL_GAIN / (mg.STALL_CALLS / 2)
-    falling = mg._Watch(_Sequence(lambda k: 100.0 - step * k), 0.0, None)
+    falling = mg._Watch(_Sequence(lambda k: 100.0 - step * k), 0.0)
     assert _run(falling, 4 * mg.STALL_CALLS) == 0
 
 
@@ -101,7 +101,7 @@ def test_stalled_run_stops_after_stall_calls_and_keeps_its_lowest_point():
     gain = 0.5 * mg.STALL_GAIN / mg.STALL_CALLS
     assert 2 * gain > mg.STUCK_GAIN
     seq = _Sequence(lambda k: 50.0 - gain * k if k % 2 else math.inf)
-    watch = mg._Watch(seq, 10.0, None)
+    watch = mg._Watch(seq, 10.0)
     stopped = _run(watch, 3 * mg.STALL_CALLS)
     assert stopped == mg.STALL_CALLS + 1
     last_odd = stopped if stopped % 2 else stopped - 1

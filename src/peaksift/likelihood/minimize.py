@@ -184,8 +184,7 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     """Fisher scoring first (few calls), MIGRAD when it does not converge (from where it
     stopped on binned costs with empty bins, see :func:`_goes_on`).
 
-    ``stop(x, f)`` (optional) is asked at every point Fisher scoring accepts (and MIGRAD
-    evaluates); when it says True the minimisation ends there and the :class:`Minimum` has
+    ``stop(x, f)`` (optional) is asked at every point Fisher scoring accepts; when it says True the minimisation ends there and the :class:`Minimum` has
     ``joined=True`` (used by the free fit to abandon a start whose path has run into a
     minimum it already has).  ``beat`` (optional), the NLL of the best minimum the caller
     has, lets a MIGRAD run that stalls above it stop early (:mod:`.migrad`)."""
@@ -194,7 +193,7 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
         fast = _compiled(cost, start, lower, upper, edm_goal, stop)
         if fast is not None:
             return fast if isinstance(fast, Minimum) else migrad(
-                cost, fast if _goes_on(cost) else start, lower, upper, names, beat, stop)
+                cost, fast if _goes_on(cost) else start, lower, upper, names, beat)
     with np.errstate(all="ignore"):
         try:
             x, f, ok, inv = fisher_scoring(cost, start, lower, upper, edm_goal=edm_goal,
@@ -209,7 +208,7 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
         errs = np.sqrt(np.clip(np.diag(inv), 0, None))
         return Minimum(x, f, True, False, errs, "fisher-scoring")
     return migrad(cost, x if inv is not _FAILED and _goes_on(cost) else start, lower, upper,
-                  names, beat, stop)
+                  names, beat)
 
 
 def _goes_on(cost: Any) -> bool:
