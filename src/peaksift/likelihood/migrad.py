@@ -116,11 +116,14 @@ class _Watch:
 
 
 def migrad(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-           names: list[str], beat: float | None = None) -> Minimum:
+           names: list[str], beat: float | None = None, tol: float = 0.1,
+           steps: np.ndarray | None = None) -> Minimum:
     """MIGRAD from ``start`` on the watched cost (module guide): ``beat`` the NLL of the best
-    minimum the caller has (None: never stopped)."""
+    minimum the caller has (None: never stopped); ``tol`` iminuit's tolerance (EDM goal
+    0.002 tol errordef); ``steps`` initial step sizes (see :func:`new_minuit`)."""
     watch = _Watch(cost, beat)
-    m = new_minuit(watch, start, lower, upper, names)
+    m = new_minuit(watch, start, lower, upper, names, steps)
+    m.tol = tol
     nan = np.full(len(names), np.nan)
     with warnings.catch_warnings(), np.errstate(all="ignore"):
         warnings.simplefilter("ignore")

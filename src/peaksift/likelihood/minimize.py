@@ -302,7 +302,7 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
     x0 = np.asarray(mo.x, float)
     f0 = mo.fval
     if mo.method == "iminuit-migrad" and math.isfinite(f0):
-        x0, f0 = _polish(cost, x0, f0, lower, upper)
+        x0, f0 = _polish(cost, x0, f0, lower, upper, np.asarray(mo.errors, float))
     errs = np.asarray(mo.errors, float)
     h = np.where(np.isfinite(errs) & (errs > 0), 1e-3 * errs, 1e-6 * np.maximum(np.abs(x0), 1.0))
     try:
@@ -333,26 +333,36 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
 #: Fisher-scoring iterations that polish a MIGRAD minimum, and the least NLL gain kept
 POLISH_STEPS = 20
 POLISH_GAIN = 1e-7
+#: iminuit's tolerance for the polishing MIGRAD run (EDM goal 1e-6 at errordef 0.5)
+POLISH_TOL = 1e-3
 
 
-def _polish(cost: Any, x0: np.ndarray, f0: float, lower: np.ndarray,
-            upper: np.ndarray) -> tuple[np.ndarray, float]:
+def _polish(cost: Any, x0: np.ndarray, f0: float, lower: np.ndarray, upper: np.ndarray,
+            errors: np.ndarray) -> tuple[np.ndarray, float]:
     """A MIGRAD minimum polished by a few Fisher-scoring steps, kept when they lower the NLL
     by more than ``POLISH_GAIN``.
 
     MIGRAD (strategy 0) stops at EDM ~1e-4; where the minimum lies in a flat valley (tails
     at their bounds, a width at its floor) the NLL it stops at depends on its path: exact
     derivatives of the turn-on instead of differenced ones left one fit 1.5e-5 higher.
-    Fisher scoring from there (held at the bounds, EDM goal 1e-7) takes it down.  A smaller
+    Fisher scoring from there (held at the bounds, EDM goal 1e-7) takes it down, else a
+    second MIGRAD run from there with an EDM goal of 1e-6.  A smaller
     gain is left alone: along a valley flat to 1e-7 the point would only wander (onto a
     bound, say) for nothing the NLL can tell."""
     with np.errstate(all="ignore"):
         try:
             x1, f1, _, _ = fisher_scoring(cost, x0, lower, upper, max_iter=POLISH_STEPS)
         except (ArithmeticError, np.linalg.LinAlgError, ValueError):
-            return x0, f0
+            x1, f1 = x0, f0
     if math.isfinite(f1) and f1 < f0 - POLISH_GAIN:
         return np.asarray(x1, float), float(f1)
+    # Fisher scoring could not go on (the information singular along the flat directions):
+    # MIGRAD again from the minimum with a 100 times tighter EDM goal
+    names = [f"p{i}" for i in range(x0.size)]
+    steps = np.where(np.isfinite(errors) & (errors > 0), errors, np.nan)
+    mo = migrad(cost, x0, lower, upper, names, tol=POLISH_TOL, steps=steps)
+    if math.isfinite(mo.fval) and mo.fval < f0 - POLISH_GAIN:
+        return np.asarray(mo.x, float), float(mo.fval)
     return x0, f0
 
 
