@@ -88,7 +88,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         k = tie.slope(float(vals[i_s]))
         cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]
         cov[i_t, i_t] = k * k * cov[i_s, i_s]
-    err = np.sqrt(np.clip(np.diag(cov), 0, None))
+    err = np.sqrt(np.maximum(np.diag(cov), 0.0))  # np.clip(.., 0, None), without its wrapper
     err[~np.isfinite(np.diag(cov))] = np.nan
     with np.errstate(invalid="ignore", divide="ignore"):
         corr = cov / np.outer(err, err)
@@ -231,7 +231,7 @@ def _fwhm_with_error(shape: Shape, p: list[float], cov: np.ndarray) -> tuple[flo
         f0 = shape.fwhm(p)
     except (FitError, ValueError, ArithmeticError):
         return math.nan, math.nan
-    if not np.all(np.isfinite(cov)):
+    if not np.isfinite(cov).all():
         return float(f0), math.nan
     grad = np.zeros(len(p))
     try:

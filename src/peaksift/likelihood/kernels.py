@@ -192,8 +192,7 @@ class _Layout:
         self.start = [0]
         for k in kernels:
             self.start.append(self.start[-1] + k.rows)
-        self.bins = (np.arange(edges.size - 1) if mask is None else
-                     np.flatnonzero(mask)).astype(np.int64)
+        self.bins = _used_bins(edges.size - 1, mask)
         drow, dcomp, dfree = [], [], []
         for k, (_, _, _, _, rows, _) in enumerate(plan):
             for j, r in enumerate(rows):
@@ -207,6 +206,11 @@ class _Layout:
         self.value_row = np.array(self.start[:-1], np.int64)
         self.yield_free = np.array([p[5] for p in plan], np.int64)
         self.driver: tuple | None = None  # the static arrays of .driver, made on demand
+
+
+def _used_bins(nbins: int, mask: np.ndarray | None) -> np.ndarray:
+    """The indices of the used bins (all without a mask)."""
+    return (np.arange(nbins) if mask is None else np.flatnonzero(mask)).astype(np.int64)
 
 
 #: recent layouts by the identity of their inputs (the entries hold the inputs, so the ids
@@ -266,6 +270,18 @@ class FusedBinned:
     def fresh(self) -> FusedBinned:
         """The same evaluator with buffers of its own (for another cost on the same data)."""
         out = copy.copy(self)
+        out._buffers(self.g.size, self.cdf.shape[1])
+        return out
+
+    def on_bins(self, mask: np.ndarray | None, n: np.ndarray, s: np.ndarray,
+                unit: bool) -> FusedBinned:
+        """The same evaluator on the bins ``mask`` selects (``n``, ``s``: their effective
+        counts and factors), with buffers of its own; the layout's other arrays and the
+        compiled problem's static ones (which do not depend on the bins) are shared."""
+        out = copy.copy(self)
+        lay = out.layout = copy.copy(self.layout)
+        lay.bins = out.bins = _used_bins(self.cdf.shape[1] - 1, mask)
+        out.n, out.s, out.unit = n, s, bool(unit)
         out._buffers(self.g.size, self.cdf.shape[1])
         return out
 

@@ -58,6 +58,12 @@ def use_compiled() -> bool:
     return os.environ.get("PEAKSIFT_NUMPY_COST") != "1"
 
 
+#: the modules of the compiled paths, imported at their first use
+#: (:func:`peaksift._jit.compiled_module`): importing the likelihood loads no numba
+KERNELS_MODULE = "peaksift.likelihood.kernels"
+DRIVER_MODULE = "peaksift.likelihood.driver"
+SHAPE_ROWS_MODULE = "peaksift.shapes.compiled"
+
 #: expectations are floored here before a logarithm: an empty prediction in a filled bin
 #: costs ~700 per event instead of an infinity that stops every minimiser
 MU_FLOOR = 1e-300
