@@ -89,7 +89,8 @@ def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
         # compiled for the few parameters of a fit: numpy's solve costs ~20 us of call
         # overhead per Newton step, more than the step's arithmetic
         out = np.empty(g.size)
-        ok = compiled_module(KERNELS_MODULE).solve_small(np.ascontiguousarray(a, float), np.ascontiguousarray(g, float), out)
+        ok = compiled_module(KERNELS_MODULE).solve_small(
+            np.ascontiguousarray(a, float), np.ascontiguousarray(g, float), out)
         return out if ok else None
     d = np.sqrt(np.abs(np.diagonal(a)))
     d = np.where(d > 0, d, 1.0)
@@ -281,7 +282,8 @@ def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray
     its Minimum, the point where MIGRAD must take over, None when the Python loop must
     run."""
     problem = getattr(cost, "compiled_problem", None)
-    if problem is None or not use_compiled() or problem() is None:
+    # (a cost has a compiled problem only when it was made with the compiled path on)
+    if problem is None or problem() is None:
         return None
     drv = compiled_module(DRIVER_MODULE)
     out = drv.compiled_fisher_scoring(cost, start, lower, upper, 60, edm_goal, stop)
@@ -320,7 +322,8 @@ def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
         # compiled for a fit's few parameters (~60 us of numpy calls less per minimum);
         # the same tests, the eigenvalue one by a Cholesky factor
         out = np.empty((n, n))
-        if compiled_module(KERNELS_MODULE).covariance_small(np.ascontiguousarray(hess, float), POSDEF_TOL, out):
+        covariance_small = compiled_module(KERNELS_MODULE).covariance_small
+        if covariance_small(np.ascontiguousarray(hess, float), POSDEF_TOL, out):
             return out, True
         return np.full((n, n), np.nan), False
     bad = (np.full((n, n), np.nan), False)
