@@ -147,7 +147,11 @@ def _coarse_profile(n, scale, signal_fractions, background):
     if use_compiled():
         profile_two_yields = compiled_module(KERNELS_MODULE).profile_two_yields
         nll = np.empty(m)
-        sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), g.shape)
+        if (isinstance(scale, np.ndarray) and scale.dtype == float and scale.shape == g.shape
+                and scale.flags.c_contiguous and not scale.flags.writeable):
+            sc = scale  # what the broadcast below gives (a fit's read-only factors)
+        else:
+            sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), g.shape)
         profile_two_yields(np.ascontiguousarray(n, float), np.ascontiguousarray(sc),
                            np.ascontiguousarray(f), g, x, nll, 25)
         return x, nll, nll0
