@@ -30,7 +30,6 @@ import numpy as np
 from numba import njit
 
 from ..likelihood.kernels import solve_small
-from ..shapes import Exponential, ExpPoly, PowerLaw
 from ..shapes.compiled import exponential_rows, powerlaw_rows
 
 __all__ = ["compiled_profile", "row_kernel"]
@@ -41,24 +40,20 @@ NU_FLOOR = 1e-100
 MU_FLOOR = 1e-300
 
 
+#: the row kernels by the name a shape's ``row_inputs`` gives (:mod:`peaksift.shapes.compiled`)
+_CODES = {"powerlaw": 0, "exponential": 1}
+
+
 def row_kernel(shape: Any, edges: np.ndarray, window: tuple[float, float]) -> tuple | None:
     """``(code, e1, e2, c1, c2)`` of the compiled row kernel of a one-parameter background
-    on ``edges`` (the arrays the shape's own stacked path passes it), or None."""
-    lo, hi = float(window[0]), float(window[1])
-    x = np.asarray(edges, dtype=float)
-    if x[0] < lo or x[-1] > hi:
-        x = np.clip(x, lo, hi)
-    kind = type(shape)
-    if kind is PowerLaw and lo > 0:
-        c = 0.5 * (lo + hi)
-        lx = np.log(x * (1.0 / c))
-        dlx = np.log1p(np.diff(x) / x[:-1])
-        return 0, lx, dlx, math.log(lo / c), math.log(hi / c)
-    if kind in (ExpPoly, Exponential) and shape.order == 1:
-        t = (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo))
-        dt = np.diff(x) * (2.0 / (hi - lo))
-        return 1, t, dt, 0.0, 0.0
-    return None
+    on ``edges``: the shape's own ``row_inputs`` (the arrays its stacked path passes the
+    kernel, kept by the power law for a read-only edges array), or None."""
+    row = getattr(shape, "row_inputs", None)
+    ri = None if row is None else row(edges, window)
+    if ri is None or ri[0] not in _CODES:
+        return None
+    name, e1, e2, c1, c2 = ri
+    return _CODES[name], e1, e2, c1, c2
 
 
 @njit(cache=True, nogil=True)
@@ -197,11 +192,9 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     kbuf = np.empty(1)
     frac = np.empty((1, nw - 1))
     grad_full = np.empty((1, nw - 1))
-    grad_none = np.empty((0, 0))
     g = np.empty(nb)
     gt = np.empty(nb)
     dg = np.empty(nb)
-    none = np.empty(0)
     grad = np.empty(p)
     hess = np.empty((p, p))
     hp = np.empty((p, p))
@@ -212,6 +205,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     step = np.empty(p)
     xr = np.empty(p)
     trial = np.empty(p)
+    dgt = np.empty(nb)
     shared_d2 = d2.shape[0] == 1
     for r in range(nrow):
         nr = n[r] if n.shape[0] > 1 else n[0]
@@ -223,8 +217,12 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
                 code, e1, e2, c1, c2, used, scale, xr[off + 1], lower[off + 1],
                 upper[off + 1], kbuf, frac, grad_full, gt, dg, d2r):
             return r + 1
+        # the current point's fractions and derivatives (g, dg), and a trial's (gt, dgt):
+        # an accepted trial's become the current ones by a swap, so each point costs one
+        # evaluation of the background (it cost two: the trial's fractions, then its
+        # derivatives again at the next step)
         if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
-                           grad_none, g, none):
+                           grad_full, g, dg):
             return r + 1
         s = s_fix[r] if fixed else xr[0]
         cur = _nll(nr, f[r], g, s, xr[off], satr)
@@ -239,9 +237,6 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
         conv = False
         for _it in range(steps):
             s = s_fix[r] if fixed else xr[0]
-            if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
-                               grad_full, gt, dg):
-                return r + 1
             _grad_hess(nr, f[r], g, dg, d2r, s, xr[off], off, grad, hess)
             for a in range(p):
                 err[a] = math.sqrt(abs(1.0 / hess[a, a])) if hess[a, a] != 0.0 else math.inf
@@ -267,7 +262,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
                     small = small and abs(step[a]) < step_tol * err[a]
                 st = s_fix[r] if fixed else trial[0]
                 if not _background(code, e1, e2, c1, c2, used, scale, trial[off + 1],
-                                   kbuf, frac, grad_none, gt, none):
+                                   kbuf, frac, grad_full, gt, dgt):
                     return r + 1
                 tn = _nll(nr, f[r], gt, st, trial[off], satr)
                 ok = tn <= cur + slack
@@ -276,8 +271,8 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
                     for a in range(p):
                         xr[a] = trial[a]
                     cur = tn
-                    for j in range(nb):
-                        g[j] = gt[j]
+                    g, gt = gt, g
+                    dg, dgt = dgt, dg
                     if done and lam <= 1e-2:
                         conv = True
                     lam = max(lam * 0.1, 1e-9)
@@ -293,11 +288,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
         nll_out[r] = cur
         conv_out[r] = conv
         if not fixed:
-            s = xr[0]
-            if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
-                               grad_full, gt, dg):
-                return r + 1
-            _grad_hess(nr, f[r], g, dg, d2r, s, xr[off], off, grad, hess_out[r])
+            _grad_hess(nr, f[r], g, dg, d2r, xr[0], xr[off], off, grad, hess_out[r])
             s_err[r] = _first_error(hess_out[r], h, step)
     return 0
 
