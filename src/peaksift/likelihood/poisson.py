@@ -83,9 +83,11 @@ def _scaled(n: np.ndarray, scale: Any) -> tuple[np.ndarray, Any]:
 def saturated_term(n: Any, scale: Any = None) -> np.ndarray:
     r""":math:`\sum_i \tilde n_i \ln \tilde n_i - \tilde n_i` over the last axis (0 ln 0 = 0)."""
     nt, _ = _scaled(np.asarray(n, float), scale)
+    if nt.size and nt.min() > 0:  # every bin filled: the same terms without the guards
+        return (nt * np.log(nt) - nt).sum(axis=-1)
     with np.errstate(divide="ignore", invalid="ignore"):
         t = np.where(nt > 0, nt * np.log(np.where(nt > 0, nt, 1.0)), 0.0)
-    return np.sum(t - nt, axis=-1)
+    return (t - nt).sum(axis=-1)
 
 
 def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True,
