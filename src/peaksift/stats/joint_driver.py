@@ -30,7 +30,9 @@ interest is inverted here as the row ends.
 
 It returns None whenever it cannot answer as the Python loop would (another background
 shape, a shape factor, a row kernel declining a trial point near its series, a singular
-Newton system that the Python loop would solve by least squares): the caller then runs the
+Newton system or a step that is not finite, which the Python loop would solve by least
+squares or zero; the system is solved as every compiled fit's,
+:func:`peaksift.likelihood.kernels.solve_small`): the caller then runs the
 Python loop, which stays the reference.  ``tests/test_joint_driver.py`` checks both paths
 against iminuit fits written in the test, and against each other.
 """
@@ -46,7 +48,8 @@ import numpy as np
 from numba import njit
 
 from ..shapes.compiled import vlog
-from .joint_kernels import lu_solve, model_change, row_background, small_step, yield_sums
+from ..likelihood.kernels import solve_small
+from .joint_kernels import model_change, row_background, small_step, yield_sums
 
 __all__ = ["compiled_joint"]
 
@@ -240,7 +243,7 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm,
 @njit(cache=True, nogil=True)
 def _first_error(hess, a, rhs, col):  # pragma: no cover - compiled
     """:func:`peaksift.likelihood.first_error` of one row: ``sqrt((H + 1e-12 tr|H| I)^-1_00)``
-    by :func:`~peaksift.stats.joint_kernels.lu_solve` (``a``, ``rhs``, ``col``: work
+    by :func:`peaksift.likelihood.kernels.solve_small` (``a``, ``rhs``, ``col``: work
     buffers); NaN where it is not positive or the system is singular."""
     p = hess.shape[0]
     tr = 0.0
@@ -252,8 +255,8 @@ def _first_error(hess, a, rhs, col):  # pragma: no cover - compiled
             a[i, j] = hess[i, j]
         a[i, i] += reg
         rhs[i] = 0.0
-    rhs[0] = -1.0   # lu_solve gives -a^-1 rhs
-    if not lu_solve(a, rhs, col):
+    rhs[0] = -1.0   # solve_small gives -a^-1 rhs
+    if not solve_small(a, rhs, col):
         return math.nan
     v = col[0]
     return math.sqrt(v) if v > 0.0 else math.nan
@@ -334,7 +337,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                     for j in range(p):
                         a[i, j] = hess[i, j]
                     a[i, i] += lam * (hess[i, i] + floor) + 1e-14 * floor
-                if not lu_solve(a, grad, step):
+                if not solve_small(a, grad, step):
                     return DECLINED
                 for i in range(p):
                     trial[i] = min(max(xr[i] + step[i], lower[i]), upper[i])
