@@ -32,7 +32,7 @@ from numba import njit
 from ..likelihood.kernels import solve_small
 from ..shapes.compiled import exponential_rows, powerlaw_rows, vlog
 
-__all__ = ["compiled_profile", "row_kernel"]
+__all__ = ["compiled_profile", "first_error", "row_kernel"]
 
 #: :func:`peaksift.stats.toy_model` floors expectations here in its gradients and Hessians
 NU_FLOOR = 1e-100
@@ -321,7 +321,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
         conv_out[r] = conv
         if not fixed:
             _grad_hess(nr, f[r], g, dg, d2r, xr[0], xr[off], off, grad, hess_out[r])
-            s_err[r] = _first_error(hess_out[r], h, step)
+            s_err[r] = first_error(hess_out[r], h, gp, step)
     return 0
 
 
@@ -344,21 +344,23 @@ def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, 
 
 
 @njit(cache=True, nogil=True)
-def _first_error(hess, h, col):  # pragma: no cover - compiled
-    """``minimize.first_error`` for one row: ``sqrt((H + 1e-12 tr|H| I)^-1_00)``, NaN where
-    it is not positive or the system is singular."""
+def first_error(hess, a, rhs, col):  # pragma: no cover - compiled
+    """:func:`peaksift.likelihood.first_error` of one row: ``sqrt((H + 1e-12 tr|H| I)^-1_00)``
+    by :func:`peaksift.likelihood.kernels.solve_small` (``a``, ``rhs``, ``col``: work
+    buffers); NaN where it is not positive or the system is singular.  This kernel's and
+    the joint loop's (:mod:`peaksift.stats.joint_driver`)."""
     p = hess.shape[0]
     tr = 0.0
-    for a in range(p):
-        tr += abs(hess[a, a])
+    for i in range(p):
+        tr += abs(hess[i, i])
     reg = 1e-12 * tr
-    unit = np.zeros(p)
-    unit[0] = -1.0  # solve_small gives -h^-1 rhs
-    for a in range(p):
-        for c in range(p):
-            h[a, c] = hess[a, c]
-        h[a, a] += reg
-    if not solve_small(h, unit, col):
+    for i in range(p):
+        for j in range(p):
+            a[i, j] = hess[i, j]
+        a[i, i] += reg
+        rhs[i] = 0.0
+    rhs[0] = -1.0   # solve_small gives -a^-1 rhs
+    if not solve_small(a, rhs, col):
         return math.nan
     v = col[0]
     return math.sqrt(v) if v > 0.0 else math.nan
