@@ -68,8 +68,8 @@ def row_kernel(shape: Any, edges: np.ndarray, window: tuple[float, float]) -> tu
     out = None
     if ri is not None and ri[0] in _CODES:
         name, e1, e2, c1, c2 = ri
-        out = (_CODES[name], np.ascontiguousarray(e1, float), np.ascontiguousarray(e2, float),
-               float(c1), float(c2))
+        # copies, read-only: kept here, and the shape's own (cached) arrays stay as they were
+        out = (_CODES[name], np.array(e1, float), np.array(e2, float), float(c1), float(c2))
         for a in out[1:3]:
             a.flags.writeable = False
     if len(_ROWS) >= 8:
