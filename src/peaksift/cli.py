@@ -290,6 +290,8 @@ def _cmd_search(args: argparse.Namespace) -> int:
 
     from .search import run_search
 
+    _imports_done()
+
     with warnings.catch_warnings(record=True) as caught:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars
@@ -320,6 +322,8 @@ def _cmd_search(args: argparse.Namespace) -> int:
 def _cmd_spectrum(args: argparse.Namespace) -> int:
     from .search import run_spectrum
 
+    _imports_done()
+
     res = run_spectrum(_config(args), out=args.out, engine=args.engine,
                        progress=_progress_wanted(args), share_folder=args.share_folder)
     h = res.histogram
@@ -336,6 +340,8 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
 def _cmd_fit(args: argparse.Namespace) -> int:
     from ._format import format_interval
     from .search import FIT_FILES, run_fit
+
+    _imports_done()
 
     fr = run_fit(_config(args), args.mass, hold_mass=args.hold_mass, out=args.out,
                  engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args),
@@ -476,6 +482,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.command not in ("search", "spectrum", "fit"):  # (these import a lot first)
+        _imports_done()
     _setup_logging(args)
     warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
     try:
@@ -513,15 +521,42 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 143
 
 
+#: True while the console command runs with the cyclic garbage collector off (see run())
+_COLLECTOR_DEFERRED = [False]
+
+
+def _imports_done() -> None:
+    """After a command's imports: the collector back on, with what was imported frozen
+    (:func:`gc.freeze`), so that its collections never walk the modules again.  Does
+    nothing unless :func:`run` turned it off (a call of :func:`main` from Python)."""
+    if _COLLECTOR_DEFERRED[0]:
+        import gc
+
+        _COLLECTOR_DEFERRED[0] = False
+        gc.freeze()
+        gc.enable()
+
+
 def run() -> None:
     """The ``peaksift`` console command and ``python -m peaksift``: :func:`main`, then the
     process ends at once with its exit status.
+
+    The cyclic garbage collector is off while the command imports its modules (numba, scipy,
+    the statistics: ~1 s of CPU that makes hundreds of thousands of objects and no garbage
+    worth collecting) and on again, with the imported objects frozen, before any data is
+    read (:func:`_imports_done`): its full collections walked the growing heap again and
+    again, ~10% of the start-up's CPU.
 
     The exit handlers run as at any exit (logging, multiprocessing, temporary folders) and
     the output streams are flushed; what is skipped is the interpreter's teardown of every
     module and object, which after a search (numba's compiled kernels, the JIT behind them)
     took ~0.5 s on idle cores and over 1 s on loaded ones, after every output was written.
     Calls of :func:`main` from Python (tests, notebooks) return as before."""
+    import gc
+
+    if gc.isenabled():
+        gc.disable()
+        _COLLECTOR_DEFERRED[0] = True
     rc = main()
     import atexit
     import os
