@@ -338,9 +338,19 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
     helpers: list[tuple[int, Any]] = []
     try:
         _child_start(parent)
+        import gc
+
+        # matplotlib's import and the warm-up make ~0.2 million objects and no garbage worth
+        # a collection: the collector waits until they are in, then leaves them frozen
+        # (this process's own heap; the second drawer inherits it so)
+        paused = gc.isenabled()
+        gc.disable()
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up(kw.get("formats") or ())
+        if paused:
+            gc.freeze()
+            gc.enable()
         for _ in range(_DRAWERS - 1):
             if (h := _second_drawer(queue, outdir, kw)) is not None:
                 helpers.append(h)
