@@ -290,8 +290,6 @@ def _cmd_search(args: argparse.Namespace) -> int:
 
     from .search import run_search
 
-    _imports_done()
-
     with warnings.catch_warnings(record=True) as caught:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars
@@ -300,6 +298,9 @@ def _cmd_search(args: argparse.Namespace) -> int:
 
         # a combination config names its channels' configs: run_search reads them itself
         config = args.config if is_combination(args.config) else _config(args)
+        from . import events  # noqa: F401  (awkward, pyarrow: every search reads events)
+
+        _imports_done()  # (after the config: its check imports scipy.special, the particles)
         res = run_search(config, out=args.out, unblind=args.unblind, toys=args.toys,
                          seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
                          share_folder=args.share_folder)
