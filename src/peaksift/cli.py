@@ -536,6 +536,8 @@ def _imports_done() -> None:
         _COLLECTOR_DEFERRED[0] = False
         gc.freeze()
         gc.enable()
+        young, *older = gc.get_threshold()  # the youngest generation collected every
+        gc.set_threshold(max(young, 10_000), *older)  # 10,000 allocations, not 700
 
 
 def run() -> None:
