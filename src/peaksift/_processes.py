@@ -3,7 +3,7 @@
 * :func:`resolve_start_method` -- ``"auto"`` to ``"fork"`` (Linux) or ``"spawn"``.
 * :func:`quiet_fork`           -- around our own forks: Python 3.12+ warns at every fork of
   a process that holds threads; the child starts with the heap it inherits frozen for its
-  garbage collector (:func:`gc.freeze`), this process's own is left as it was.
+  garbage collector.
 * :func:`process_pool`         -- a :class:`concurrent.futures.ProcessPoolExecutor` started
   with the resolved method.
 * :func:`worker_start`         -- the first step in every pool worker we start: signals,
@@ -64,29 +64,14 @@ def resolve_start_method(start_method: str = "auto") -> str:
 def quiet_fork() -> Iterator[None]:
     """Silence Python's warning about forking a process that holds threads, for forks whose
     children run only peaksift's own work (its libraries re-create their thread pools after
-    a fork or use none).
+    a fork or use none).  A child forked inside starts with the heap it inherits frozen for
+    its garbage collector (:func:`peaksift._collector.frozen_for_fork`)."""
+    from ._collector import frozen_for_fork
 
-    A child forked inside starts with every object it inherits in the collector's permanent
-    generation (:func:`gc.freeze`, as Python's documentation recommends before a fork): its
-    collections walk only what it makes itself, so they neither cost the time of walking the
-    parent's heap nor write to its pages (each page written is copied for the child).  This
-    process's heap is unfrozen as soon as the fork is made (constant time: its objects join
-    the oldest generation), so its collector still frees all it did; a heap someone else
-    froze is left alone."""
-    import gc
-
-    me = os.getpid()
-    freeze = gc.isenabled() and gc.get_freeze_count() == 0
-    if freeze:
-        gc.freeze()
-    try:
-        with warnings.catch_warnings():
-            warnings.filterwarnings("ignore", message=r".*use of fork\(\) may lead to deadlocks",
-                                    category=DeprecationWarning)
-            yield
-    finally:
-        if freeze and os.getpid() == me:  # (a child of os.fork() leaves the block too)
-            gc.unfreeze()
+    with frozen_for_fork(), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=r".*use of fork\(\) may lead to deadlocks",
+                                category=DeprecationWarning)
+        yield
 
 
 @contextlib.contextmanager

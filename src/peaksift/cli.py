@@ -522,44 +522,35 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 143
 
 
-#: True while the console command runs with the cyclic garbage collector off (see run())
-_COLLECTOR_DEFERRED = [False]
+#: True while the console command runs with the garbage collector paused (see run())
+_COLLECTOR_PAUSED = [False]
 
 
 def _imports_done() -> None:
-    """After a command's imports: the collector back on, with what was imported frozen
-    (:func:`gc.freeze`), so that its collections never walk the modules again.  Does
-    nothing unless :func:`run` turned it off (a call of :func:`main` from Python)."""
-    if _COLLECTOR_DEFERRED[0]:
-        import gc
+    """After a command's imports: the collector on again, what was imported frozen
+    (:func:`peaksift._collector.settle`); nothing unless :func:`run` paused it."""
+    if _COLLECTOR_PAUSED[0]:
+        from ._collector import settle
 
-        _COLLECTOR_DEFERRED[0] = False
-        gc.freeze()
-        gc.enable()
-        young, *older = gc.get_threshold()  # the youngest generation collected every
-        gc.set_threshold(max(young, 10_000), *older)  # 10,000 allocations, not 700
+        _COLLECTOR_PAUSED[0] = False
+        settle()
 
 
 def run() -> None:
     """The ``peaksift`` console command and ``python -m peaksift``: :func:`main`, then the
     process ends at once with its exit status.
 
-    The cyclic garbage collector is off while the command imports its modules (numba, scipy,
-    the statistics: ~1 s of CPU that makes hundreds of thousands of objects and no garbage
-    worth collecting) and on again, with the imported objects frozen, before any data is
-    read (:func:`_imports_done`): its full collections walked the growing heap again and
-    again, ~10% of the start-up's CPU.
+    The garbage collector is paused while the command imports (:mod:`peaksift._collector`)
+    and on again, what was imported frozen, before any data is read (:func:`_imports_done`).
 
     The exit handlers run as at any exit (logging, multiprocessing, temporary folders) and
     the output streams are flushed; what is skipped is the interpreter's teardown of every
     module and object, which after a search (numba's compiled kernels, the JIT behind them)
     took ~0.5 s on idle cores and over 1 s on loaded ones, after every output was written.
     Calls of :func:`main` from Python (tests, notebooks) return as before."""
-    import gc
+    from ._collector import pause
 
-    if gc.isenabled():
-        gc.disable()
-        _COLLECTOR_DEFERRED[0] = True
+    _COLLECTOR_PAUSED[0] = pause()
     rc = main()
     import atexit
     import os

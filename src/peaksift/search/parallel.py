@@ -338,24 +338,17 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
     helpers: list[tuple[int, Any]] = []
     try:
         _child_start(parent)
-        import gc
+        from .._collector import pause, settle
 
         # matplotlib's import and the warm-up make ~0.2 million objects and no garbage worth
-        # a collection: the collector waits until they are in, then leaves them frozen
-        # (this process's own heap; the second drawer inherits it so)
-        paused = gc.isenabled()
-        gc.disable()
+        # a collection: the collector waits until they are in, then they are frozen (the
+        # second drawer inherits them so)
+        paused = pause()
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up(kw.get("formats") or ())
         if paused:
-            gc.freeze()
-            gc.enable()
-        # a figure leaves thousands of objects in reference cycles (artists and their
-        # figure): the youngest generation collected every 10,000 allocations rather than
-        # 700 spends a third as long in the collector (~0.1 s of the demo's drawing)
-        young, *older = gc.get_threshold()
-        gc.set_threshold(max(young, 10_000), *older)
+            settle()
         for _ in range(_DRAWERS - 1):
             if (h := _second_drawer(queue, outdir, kw)) is not None:
                 helpers.append(h)
