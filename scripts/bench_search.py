@@ -75,8 +75,15 @@ def _print(name: str, rs: list[tuple[float, float, dict[str, float], dict[str, f
            imports: list[float]) -> None:
     walls = [w for w, _, _, _ in rs]
     best = min(rs, key=lambda x: x[0])
+    cpus_all = [c for _, c, _, _ in rs]
     print(f"{name}: end to end best {best[0]:.2f} s, median {statistics.median(walls):.2f} s "
-          f"(of {len(rs)}); CPU of the best run {best[1]:.2f} s (all processes)")
+          f"(of {len(rs)}); CPU of the best run {best[1]:.2f} s (all processes); CPU of "
+          f"all runs best {min(cpus_all):.2f} s, median {statistics.median(cpus_all):.2f} s")
+    if len(rs) > 1 and all(r[3] for r in rs):  # each process's least and median CPU
+        procs = list(dict.fromkeys(k for r in rs for k in r[3]))
+        print("  CPU by process over the runs (least / median): " + ", ".join(
+            f"{k} {min(r[3].get(k, 0.0) for r in rs):.2f} / "
+            f"{statistics.median(r[3].get(k, 0.0) for r in rs):.2f} s" for k in procs))
     t = best[2]
     row = {"imports": min(imports)}
     row.update({g: sum(t.get(k, 0.0) for k in keys) for g, keys in GROUPS.items()})

@@ -2,7 +2,8 @@
 
 * :func:`resolve_start_method` -- ``"auto"`` to ``"fork"`` (Linux) or ``"spawn"``.
 * :func:`quiet_fork`           -- around our own forks: Python 3.12+ warns at every fork of
-  a process that holds threads.
+  a process that holds threads; the child starts with the heap it inherits frozen for its
+  garbage collector.
 * :func:`process_pool`         -- a :class:`concurrent.futures.ProcessPoolExecutor` started
   with the resolved method.
 * :func:`worker_start`         -- the first step in every pool worker we start: signals,
@@ -63,8 +64,11 @@ def resolve_start_method(start_method: str = "auto") -> str:
 def quiet_fork() -> Iterator[None]:
     """Silence Python's warning about forking a process that holds threads, for forks whose
     children run only peaksift's own work (its libraries re-create their thread pools after
-    a fork or use none)."""
-    with warnings.catch_warnings():
+    a fork or use none).  A child forked inside starts with the heap it inherits frozen for
+    its garbage collector (:func:`peaksift._collector.frozen_for_fork`)."""
+    from ._collector import frozen_for_fork
+
+    with frozen_for_fork(), warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=r".*use of fork\(\) may lead to deadlocks",
                                 category=DeprecationWarning)
         yield

@@ -159,6 +159,17 @@ def _canvas_class() -> Any:
                 with figure_style():
                     return super().print_figure(*args, **kwargs)
 
+            def print_png(self, filename_or_obj: Any, **kwargs: Any) -> None:
+                # print_figure passes every writer its options for other formats too
+                # (matplotlib's own writers drop those they do not take)
+                if set(kwargs) - _OTHER_FORMATS_OPTIONS or kwargs.get("metadata") \
+                        or kwargs.get("pil_kwargs"):
+                    mine = {k: v for k, v in kwargs.items() if k not in _OTHER_FORMATS_OPTIONS}
+                    return super().print_png(filename_or_obj, **mine)
+                super().draw()
+                _write_png(self, filename_or_obj)
+                return None
+
             def get_renderer(self) -> Any:
                 r = super().get_renderer()
                 if not _MATH:
@@ -168,6 +179,27 @@ def _canvas_class() -> Any:
 
         _CANVAS.append(_SharedMathCanvas)
     return _CANVAS[0]
+
+
+#: what matplotlib's print_figure passes to every format's writer (Agg's PNG writer takes none)
+_OTHER_FORMATS_OPTIONS = {"dpi", "facecolor", "edgecolor", "orientation", "bbox_inches_restore"}
+
+
+def _write_png(canvas: Any, filename_or_obj: Any) -> None:
+    """The drawn canvas as a PNG, as matplotlib writes it (its Software note, the dpi), but
+    without the alpha channel when every pixel is opaque (our white canvas): the same
+    pixels, ~10% smaller and ~20% faster to encode.  A transparent figure keeps it."""
+    import matplotlib as mpl
+    import numpy as np
+    from PIL import Image, PngImagePlugin
+
+    rgba = np.asarray(canvas.buffer_rgba())
+    opaque = bool(np.all(rgba[..., 3] == 255))
+    image = Image.fromarray(np.ascontiguousarray(rgba[..., :3]) if opaque else rgba)
+    info = PngImagePlugin.PngInfo()
+    info.add_text("Software", f"Matplotlib version{mpl.__version__}, https://matplotlib.org/")
+    dpi = canvas.figure.dpi
+    image.save(filename_or_obj, format="png", pnginfo=info, dpi=(dpi, dpi))
 
 
 def _figure_class() -> Any:

@@ -298,6 +298,9 @@ def _cmd_search(args: argparse.Namespace) -> int:
 
         # a combination config names its channels' configs: run_search reads them itself
         config = args.config if is_combination(args.config) else _config(args)
+        from . import events  # noqa: F401  (awkward, pyarrow: every search reads events)
+
+        _imports_done()  # (after the config: its check imports scipy.special, the particles)
         res = run_search(config, out=args.out, unblind=args.unblind, toys=args.toys,
                          seed=args.seed, engine=args.engine, progress=_progress_wanted(args),
                          share_folder=args.share_folder)
@@ -320,6 +323,8 @@ def _cmd_search(args: argparse.Namespace) -> int:
 def _cmd_spectrum(args: argparse.Namespace) -> int:
     from .search import run_spectrum
 
+    _imports_done()
+
     res = run_spectrum(_config(args), out=args.out, engine=args.engine,
                        progress=_progress_wanted(args), share_folder=args.share_folder)
     h = res.histogram
@@ -336,6 +341,8 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
 def _cmd_fit(args: argparse.Namespace) -> int:
     from ._format import format_interval
     from .search import FIT_FILES, run_fit
+
+    _imports_done()
 
     fr = run_fit(_config(args), args.mass, hold_mass=args.hold_mass, out=args.out,
                  engine=args.engine, unblind=args.unblind, progress=_progress_wanted(args),
@@ -476,6 +483,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.command not in ("search", "spectrum", "fit"):  # (these import a lot first)
+        _imports_done()
     _setup_logging(args)
     warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
     try:
@@ -513,15 +522,35 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 143
 
 
+#: True while the console command runs with the garbage collector paused (see run())
+_COLLECTOR_PAUSED = [False]
+
+
+def _imports_done() -> None:
+    """After a command's imports: the collector on again, what was imported frozen
+    (:func:`peaksift._collector.settle`); nothing unless :func:`run` paused it."""
+    if _COLLECTOR_PAUSED[0]:
+        from ._collector import settle
+
+        _COLLECTOR_PAUSED[0] = False
+        settle()
+
+
 def run() -> None:
     """The ``peaksift`` console command and ``python -m peaksift``: :func:`main`, then the
     process ends at once with its exit status.
+
+    The garbage collector is paused while the command imports (:mod:`peaksift._collector`)
+    and on again, what was imported frozen, before any data is read (:func:`_imports_done`).
 
     The exit handlers run as at any exit (logging, multiprocessing, temporary folders) and
     the output streams are flushed; what is skipped is the interpreter's teardown of every
     module and object, which after a search (numba's compiled kernels, the JIT behind them)
     took ~0.5 s on idle cores and over 1 s on loaded ones, after every output was written.
     Calls of :func:`main` from Python (tests, notebooks) return as before."""
+    from ._collector import pause
+
+    _COLLECTOR_PAUSED[0] = pause()
     rc = main()
     import atexit
     import os

@@ -276,7 +276,7 @@ def fit(
         free_cov = np.full((nfree, nfree), np.nan)
     fr = result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
                  problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
-                 tuple(tried), calls, floors)
+                 tuple(tried), calls, floors, scale if d.binned else None)
     return note_lower_minimum(fr, superseded)
 
 

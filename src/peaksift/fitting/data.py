@@ -55,9 +55,9 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
         except InputError as exc:
             raise FitError(f"fit window: {exc}") from None
         n, n2 = h.values(), h.variances()
-        if not (np.all(np.isfinite(n)) and np.all(np.isfinite(n2))):
+        if not (np.isfinite(n).all() and np.isfinite(n2).all()):
             raise FitError("the histogram has non-finite bin contents in the fit window")
-        if np.any(n < 0):
+        if (n < 0).any():
             k = int(np.flatnonzero(n < 0)[0])
             raise FitError(f"the histogram has a negative sum of weights ({n[k]:g}) in the bin "
                            f"{h.edges[k]:g}-{h.edges[k + 1]:g} GeV: a Poisson likelihood needs "

@@ -63,7 +63,10 @@ def _distance_to_bound(x: float, lo: float, hi: float) -> tuple[float, float]:
 
 
 def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost, problems,
-              xbest, fbest, free_cov, posdef, intervals, tried, calls, floors) -> FitResult:
+              xbest, fbest, free_cov, posdef, intervals, tried, calls, floors,
+              gof_scale=None) -> FitResult:
+    """The FitResult of the minimum ``xbest`` (``gof_scale``: the scaled-Poisson factors of
+    the goodness-of-fit bins, when the caller has them)."""
     npar = len(names)
     vals = base.copy()
     vals[free_idx] = xbest
@@ -88,20 +91,23 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         k = tie.slope(float(vals[i_s]))
         cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]
         cov[i_t, i_t] = k * k * cov[i_s, i_s]
-    err = np.sqrt(np.clip(np.diag(cov), 0, None))
-    err[~np.isfinite(np.diag(cov))] = np.nan
+    diag = np.diag(cov)
+    err = np.sqrt(np.maximum(diag, 0.0))  # np.clip(.., 0, None), without its wrapper
+    err[~np.isfinite(diag)] = np.nan
     with np.errstate(invalid="ignore", divide="ignore"):
         corr = cov / np.outer(err, err)
     corr[~np.isfinite(corr)] = 0.0
-    np.fill_diagonal(corr, np.where(err > 0, 1.0, 0.0))
+    corr.flat[:: npar + 1] = np.where(err > 0, 1.0, 0.0)  # np.fill_diagonal's assignment
     notes: list[str] = [d.note] if d.note else []
     notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
               f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
               f"{names[i_s]}'s)" for i_t, i_s, tie in ties]
-    for k, i in enumerate(free_idx):
-        dist, bnd = _distance_to_bound(xbest[k], lower[i], upper[i])
-        if (math.isfinite(dist) and dist > _bound_tolerance(xbest[k], lower[i], upper[i])
-                and math.isfinite(err[i]) and dist < err[i]):
+    # as Python floats (the same values): arithmetic on numpy scalars costs ~10x more
+    xs, los, his, errs = xbest.tolist(), lower.tolist(), upper.tolist(), err.tolist()
+    for k, i in enumerate(free_idx.tolist()):
+        dist, bnd = _distance_to_bound(xs[k], los[i], his[i])
+        if (math.isfinite(dist) and dist > _bound_tolerance(xs[k], los[i], his[i])
+                and math.isfinite(errs[i]) and dist < errs[i]):
             notes.append(f"{names[i]} lies within one standard error of its bound {bnd:g}: "
                          "its symmetric error is not meaningful, use the interval")
     ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
@@ -132,7 +138,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:
         mu = model.expected(ge, vals)
-    gsc = d.hist.scaled_poisson_factors()
+    gsc = d.hist.scaled_poisson_factors() if gof_scale is None else gof_scale
     # a binned fit's NLL is the saturated form over these very bins: twice it is the
     # chi-square (no second pass of logarithms); constraint terms would be in it
     chi2 = (2.0 * float(fbest) if d.binned and not cons and math.isfinite(fbest) else
@@ -150,7 +156,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
     return FitResult(
         parameters=tuple(names), values=dict(zip(names, map(float, vals))),
         errors=dict(zip(names, map(float, err))),
-        fixed=tuple(n for n, f in zip(names, is_fixed) if f),
+        fixed=tuple(names[i] for i in np.flatnonzero(is_fixed).tolist()),
         covariance=cov, correlations=corr, intervals=ivals, nll=float(fbest),
         valid=not problems, problems=tuple(problems), notes=tuple(notes), flags=flags,
         binned=d.binned, binned_reason=d.reason, weighted=d.weighted,
@@ -163,7 +169,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                                                                           names),
         edges=np.asarray(ge), observed=np.asarray(gn), observed_weight_sq_sum=np.asarray(gn2),
         expected=np.asarray(mu), pulls=np.asarray(pulls),
-        bounds={n: (float(lower[i]), float(upper[i])) for i, n in enumerate(names)},
+        bounds={n: (los[i], his[i]) for i, n in enumerate(names)},
         constraints=cons, model=model, starts_tried=len(tried), starts_nll=tried,
         n_calls=calls, unit=d.unit, minimizer="none" if mo is None else mo.method, cost=cost,
     )
@@ -231,7 +237,7 @@ def _fwhm_with_error(shape: Shape, p: list[float], cov: np.ndarray) -> tuple[flo
         f0 = shape.fwhm(p)
     except (FitError, ValueError, ArithmeticError):
         return math.nan, math.nan
-    if not np.all(np.isfinite(cov)):
+    if not np.isfinite(cov).all():
         return float(f0), math.nan
     grad = np.zeros(len(p))
     try:

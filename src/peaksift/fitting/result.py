@@ -135,17 +135,17 @@ class FitResult(FrozenValue):
     cost: Any = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
+        d = self.__dict__  # (what object.__setattr__ writes, without its call)
         for name in ("covariance", "correlations", "edges", "observed", "observed_weight_sq_sum",
                      "expected", "pulls"):
-            object.__setattr__(self, name, np.array(getattr(self, name), float))
+            d[name] = np.array(d[name], float)
         for name in ("values", "errors", "flags", "bounds", "constraints"):
-            object.__setattr__(self, name, dict(getattr(self, name) or {}))
+            d[name] = dict(d[name] or {})
         if self.intervals is not None:
-            object.__setattr__(self, "intervals", dict(self.intervals))
+            d["intervals"] = dict(self.intervals)
         # one convention for a number with its error (peaksift._values.Measurement)
         for name in ("peak_mass", "peak_width", "fwhm"):
-            object.__setattr__(self, name, Measurement(getattr(self, name),
-                                                       getattr(self, f"{name}_error")))
+            d[name] = Measurement(d[name], d[f"{name}_error"])
         super().__post_init__()
 
     # ---------------------------------------------------------------- summary

@@ -67,7 +67,7 @@ def is_regular(edges: np.ndarray) -> bool:
     w = np.diff(edges)
     # np.allclose(w, w[0], rtol=1e-12, atol=0) for finite edges, without its ~0.1 ms of
     # generality (every restricted or rebinned histogram asks, e.g. twice per fit)
-    return bool(np.all(np.abs(w - w[0]) <= 1e-12 * abs(w[0])))
+    return bool((np.abs(w - w[0]) <= 1e-12 * abs(w[0])).all())
 
 
 def regular_index(edges: np.ndarray, values: np.ndarray) -> np.ndarray:

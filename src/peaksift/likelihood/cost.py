@@ -21,9 +21,18 @@ from typing import Any
 
 import numpy as np
 
+from .._jit import compiled_module
 from .constraints import Constraint
 from .model import Model
-from .poisson import MU_FLOOR, WALL_MU, saturated_term, unbinned_nll, use_compiled
+from .poisson import (
+    DRIVER_MODULE,
+    KERNELS_MODULE,
+    MU_FLOOR,
+    WALL_MU,
+    saturated_term,
+    unbinned_nll,
+    use_compiled,
+)
 
 __all__ = ["BinnedCost", "UnbinnedCost"]
 
@@ -131,6 +140,7 @@ class BinnedCost(_Cost):
         else:
             self.edges = np.array(edges, float)
             self.edges.flags.writeable = False  # shapes may keep per-edges work for it
+        self._data = (n, scale)  # as given: :meth:`with_mask` selects other bins of them
         (self.mask, self.s, self.unit_scale, self.counts, self.n,
          self._const) = _binned_data(n, scale, mask)
         self._plan = []
@@ -227,6 +237,19 @@ class BinnedCost(_Cost):
         c._jac = None if self._jac is None else np.zeros_like(self._jac)
         return c
 
+    def with_mask(self, mask: np.ndarray | None, full: np.ndarray) -> BinnedCost:
+        """:meth:`at_values` on the bins ``mask`` selects of the same data (the sidebands
+        of a background fit): the same numbers as a new cost with that mask, without making
+        its kernels, layout and compiled arrays again."""
+        c = copy.copy(self)
+        c.full = np.asarray(full, float).copy()
+        c._last, c._state, c._problem, c._empty, c.ncall = None, None, None, None, 0
+        (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(*self._data, mask)
+        c._fused = (None if self._fused is None else
+                    self._fused.on_bins(c.mask, c.n, c.s, c.unit_scale))
+        c._jac = np.zeros((c.free.size, c.n.size)) if c._fused is None else None
+        return c
+
     @property
     def constant(self) -> float:
         """The NLL's constant (saturated form) added to the compiled pass's value."""
@@ -238,9 +261,7 @@ class BinnedCost(_Cost):
         if self._fused is None or self._cons:
             return None
         if self._problem is None:
-            from .driver import problem_of
-
-            self._problem = problem_of(self._fused) or ()
+            self._problem = compiled_module(DRIVER_MODULE).problem_of(self._fused) or ()
         return self._problem or None
 
     def note_compiled_calls(self, calls: int, x_last: np.ndarray) -> None:
@@ -308,9 +329,8 @@ class BinnedCost(_Cost):
         x = np.asarray(x, float)
         lower, upper = self._free_bounds(lower, upper)
         if self.compiled_problem() is not None:  # the same, in one compiled call
-            from .driver import compiled_observed_hessian
-
-            hess = compiled_observed_hessian(self, x, steps, lower, upper)
+            hess = compiled_module(DRIVER_MODULE).compiled_observed_hessian(self, x, steps, lower,
+                                                                      upper)
             if hess is not None:
                 return hess
         jac = np.zeros((self.free.size, self.n.size))
@@ -371,13 +391,13 @@ def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None):
     for entry in _RECENT:
         if entry[0] is n and entry[1] is scale and entry[2] is mask:
             return entry[3]
-    used = None if mask is None or np.all(mask) else np.asarray(mask, bool)
+    used = None if mask is None or np.asarray(mask).all() else np.asarray(mask, bool)
     m = slice(None) if used is None else used
     s = np.asarray(scale, float)[m]
     counts = np.asarray(n, float)[m]
     eff = counts * s  # effective counts
     # constant part of the saturated form: sum(n~ ln n~ - n~) - sum(n~ ln s)
-    unit = bool(np.all(s == 1.0))
+    unit = bool((s == 1.0).all())
     const = float(saturated_term(eff)) - (0.0 if unit else float(eff @ np.log(s)))
     for a in (s, counts, eff):
         a.flags.writeable = False
@@ -394,13 +414,12 @@ def _fused_path(cost: BinnedCost) -> Any:
     edge kernel (else None: the numpy path); see :func:`.poisson.use_compiled`."""
     if not use_compiled():
         return None
-    from .kernels import FusedBinned, edge_kernel
-
-    kernels = [edge_kernel(shape, cost.edges, cost.model.window) for shape, _, _ in
+    kern = compiled_module(KERNELS_MODULE)
+    kernels = [kern.edge_kernel(shape, cost.edges, cost.model.window) for shape, _, _ in
                cost.model.blocks]
     if any(k is None for k in kernels):
         return None
-    return FusedBinned(kernels, cost._plan, cost.free.size, cost.edges, cost.mask, cost.n,
+    return kern.FusedBinned(kernels, cost._plan, cost.free.size, cost.edges, cost.mask, cost.n,
                        cost.s, cost.unit_scale, MU_FLOOR)
 
 

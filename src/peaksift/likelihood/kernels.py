@@ -184,16 +184,17 @@ def _new_edge_kernel(shape: Any, edges: np.ndarray,
 
 class _Layout:
     """The fixed index arrays of a :class:`FusedBinned` (which rows hold which component's
-    CDF and derivatives, which bins are used): the same for every cost of one fit's starts,
-    so they are made once (see :func:`_layout`)."""
+    CDF and derivatives, which bins are used): made once per cost and shared by the costs
+    made from it (:meth:`FusedBinned.fresh`; :meth:`FusedBinned.on_bins` replaces the bins
+    only).  (A cache of layouts by their inputs' identities found nothing since the fit's
+    costs are made from one another, and cost ~20 us a cost to look in.)"""
 
     def __init__(self, kernels: list[_Kernel], plan: list, edges: np.ndarray,
                  mask: np.ndarray | None) -> None:
         self.start = [0]
         for k in kernels:
             self.start.append(self.start[-1] + k.rows)
-        self.bins = (np.arange(edges.size - 1) if mask is None else
-                     np.flatnonzero(mask)).astype(np.int64)
+        self.bins = _used_bins(edges.size - 1, mask)
         drow, dcomp, dfree = [], [], []
         for k, (_, _, _, _, rows, _) in enumerate(plan):
             for j, r in enumerate(rows):
@@ -209,27 +210,11 @@ class _Layout:
         self.driver: tuple | None = None  # the static arrays of .driver, made on demand
 
 
-#: recent layouts by the identity of their inputs (the entries hold the inputs, so the ids
-#: stay valid); a cost's own arrays (mask, counts) are read-only, so a hit is exact
-_LAYOUTS: dict = {}
-
-
-def _layout(kernels: list[_Kernel], plan: list, edges: np.ndarray,
-            mask: np.ndarray | None) -> _Layout:
-    sig = tuple((id(p[0]), p[1].start, p[1].stop, p[2], tuple(p[4]), p[5]) for p in plan)
-    key = (tuple(map(id, kernels)), sig, id(edges), id(mask))
-    hit = _LAYOUTS.get(key)
-    if (hit is not None and hit[1] is edges and hit[2] is mask
-            and all(a is b for a, b in zip(hit[0], kernels))
-            and all(a is p[0] for a, p in zip(hit[4], plan))):
-        return hit[3]
-    out = _Layout(kernels, plan, edges, mask)
-    if isinstance(edges, np.ndarray) and not edges.flags.writeable and (
-            mask is None or not mask.flags.writeable):
-        if len(_LAYOUTS) >= 8:
-            _LAYOUTS.pop(next(iter(_LAYOUTS)))
-        _LAYOUTS[key] = (list(kernels), edges, mask, out, [p[0] for p in plan])
-    return out
+def _used_bins(nbins: int, mask: np.ndarray | None) -> np.ndarray:
+    """The indices of the used bins (all without a mask)."""
+    if mask is None:
+        return np.arange(nbins, dtype=np.int64)
+    return np.flatnonzero(mask).astype(np.int64, copy=False)
 
 
 class FusedBinned:
@@ -244,7 +229,7 @@ class FusedBinned:
                  floor: float) -> None:
         self.kernels = kernels
         self.plan = plan  # (shape, slice, yield index, need, free rows, yield free row)
-        lay = self.layout = _layout(kernels, plan, edges, mask)
+        lay = self.layout = _Layout(kernels, plan, edges, mask)
         self.start, self.bins = lay.start, lay.bins
         self.drow, self.dcomp, self.dfree = lay.drow, lay.dcomp, lay.dfree
         self.value_row, self.yield_free = lay.value_row, lay.yield_free
@@ -266,6 +251,18 @@ class FusedBinned:
     def fresh(self) -> FusedBinned:
         """The same evaluator with buffers of its own (for another cost on the same data)."""
         out = copy.copy(self)
+        out._buffers(self.g.size, self.cdf.shape[1])
+        return out
+
+    def on_bins(self, mask: np.ndarray | None, n: np.ndarray, s: np.ndarray,
+                unit: bool) -> FusedBinned:
+        """The same evaluator on the bins ``mask`` selects (``n``, ``s``: their effective
+        counts and factors), with buffers of its own; the layout's other arrays and the
+        compiled problem's static ones (which do not depend on the bins) are shared."""
+        out = copy.copy(self)
+        lay = out.layout = copy.copy(self.layout)
+        lay.bins = out.bins = _used_bins(self.cdf.shape[1] - 1, mask)
+        out.n, out.s, out.unit = n, s, bool(unit)
         out._buffers(self.g.size, self.cdf.shape[1])
         return out
 

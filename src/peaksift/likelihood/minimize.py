@@ -30,9 +30,15 @@ from typing import Any
 
 import numpy as np
 
+from .._jit import compiled_module
 from .migrad import migrad, new_minuit
 from .minimum import Minimum, NearMinimum
-from .poisson import WALL_FRACTION, use_compiled
+from .poisson import (
+    DRIVER_MODULE,
+    KERNELS_MODULE,
+    WALL_FRACTION,
+    use_compiled,
+)
 
 __all__ = ["Minimum", "NearMinimum", "StackedMinimum", "covariance", "damped_step", "first_error",
            "fisher_scoring", "held_at_bounds", "minimize", "minimize_stacked", "new_minuit",
@@ -50,10 +56,9 @@ def _solve(a: np.ndarray, g: np.ndarray) -> np.ndarray | None:
     if a.shape[0] <= _SMALL and use_compiled():
         # compiled for the few parameters of a fit: numpy's solve costs ~20 us of call
         # overhead per Newton step, more than the step's arithmetic
-        from .kernels import solve_small
-
         out = np.empty(g.size)
-        ok = solve_small(np.ascontiguousarray(a, float), np.ascontiguousarray(g, float), out)
+        ok = compiled_module(KERNELS_MODULE).solve_small(
+            np.ascontiguousarray(a, float), np.ascontiguousarray(g, float), out)
         return out if ok else None
     d = np.sqrt(np.abs(np.diagonal(a)))
     d = np.where(d > 0, d, 1.0)
@@ -205,7 +210,7 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
         except (ArithmeticError, np.linalg.LinAlgError, ValueError):
             ok, inv = False, _FAILED
     if ok:
-        errs = np.sqrt(np.clip(np.diag(inv), 0, None))
+        errs = np.sqrt(np.maximum(np.diag(inv), 0.0))  # np.clip(.., 0, None)
         return Minimum(x, f, True, False, errs, "fisher-scoring")
     return migrad(cost, x if inv is not _FAILED and _goes_on(cost) else start, lower, upper,
                   names, beat)
@@ -227,23 +232,23 @@ def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray
     its Minimum, the point where MIGRAD must take over, None when the Python loop must
     run."""
     problem = getattr(cost, "compiled_problem", None)
-    if problem is None or not use_compiled() or problem() is None:
+    # (a cost has a compiled problem only when it was made with the compiled path on)
+    if problem is None or problem() is None:
         return None
-    from .driver import CONVERGED, JOINED, compiled_fisher_scoring
-
-    out = compiled_fisher_scoring(cost, start, lower, upper, 60, edm_goal, stop)
+    drv = compiled_module(DRIVER_MODULE)
+    out = drv.compiled_fisher_scoring(cost, start, lower, upper, 60, edm_goal, stop)
     if out is None:
         return None
     status, x, f, info = out
-    if status == JOINED:
+    if status == drv.JOINED:
         return Minimum(x, f, False, False, np.full(x.size, np.nan), "fisher-scoring",
                        joined=True)
-    if status != CONVERGED:
+    if status != drv.CONVERGED:
         return x  # where MIGRAD goes on (see minimize)
     inv, posdef = covariance(info)
     if not posdef:
         return x
-    return Minimum(x, f, True, False, np.sqrt(np.clip(np.diag(inv), 0, None)),
+    return Minimum(x, f, True, False, np.sqrt(np.maximum(np.diag(inv), 0.0)),
                    "fisher-scoring")
 
 
@@ -254,9 +259,8 @@ def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
     if 0 < n <= _SMALL and use_compiled():
         # compiled for a fit's few parameters (~60 us of numpy calls less per minimum);
         # the same tests, the eigenvalue one by a Cholesky factor
-        from .kernels import covariance_small
-
         out = np.empty((n, n))
+        covariance_small = compiled_module(KERNELS_MODULE).covariance_small
         if covariance_small(np.ascontiguousarray(hess, float), POSDEF_TOL, out):
             return out, True
         return np.full((n, n), np.nan), False

@@ -11,7 +11,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .poisson import use_compiled
+from .._jit import compiled_module
+from .poisson import KERNELS_MODULE, use_compiled
 
 __all__ = ["NARROW_MARGIN", "NARROW_SPREAD", "NARROW_WIDTHS", "narrow_candidates"]
 
@@ -117,8 +118,7 @@ def _profile_one_yield(n, b, s, f, steps: int = 8):
     on the Fisher information, each step halved while any bin's expectation would drop below
     1 % of its background (an empty bin's optimum is an expectation of 0)."""
     if use_compiled():  # the same steps row by row, compiled (~2 ms of numpy per fit)
-        from .kernels import profile_one_yield
-
+        profile_one_yield = compiled_module(KERNELS_MODULE).profile_one_yield
         y, gain = np.empty(n.shape[0]), np.empty(n.shape[0])
         profile_one_yield(*(np.ascontiguousarray(a, float) for a in (n, b, s, f)), steps, y,
                           gain)  # (rows, bins) each

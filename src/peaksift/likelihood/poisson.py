@@ -58,6 +58,12 @@ def use_compiled() -> bool:
     return os.environ.get("PEAKSIFT_NUMPY_COST") != "1"
 
 
+#: the modules of the compiled paths, imported at their first use
+#: (:func:`peaksift._jit.compiled_module`): importing the likelihood loads no numba
+KERNELS_MODULE = "peaksift.likelihood.kernels"
+DRIVER_MODULE = "peaksift.likelihood.driver"
+SHAPE_ROWS_MODULE = "peaksift.shapes.compiled"
+
 #: expectations are floored here before a logarithm: an empty prediction in a filled bin
 #: costs ~700 per event instead of an infinity that stops every minimiser
 MU_FLOOR = 1e-300
@@ -83,8 +89,9 @@ def _scaled(n: np.ndarray, scale: Any) -> tuple[np.ndarray, Any]:
 def saturated_term(n: Any, scale: Any = None) -> np.ndarray:
     r""":math:`\sum_i \tilde n_i \ln \tilde n_i - \tilde n_i` over the last axis (0 ln 0 = 0)."""
     nt, _ = _scaled(np.asarray(n, float), scale)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        t = np.where(nt > 0, nt * np.log(np.where(nt > 0, nt, 1.0)), 0.0)
+    # the logarithm of 1 where nt <= 0: its product with nt is 0 (-0 for a negative nt,
+    # the same difference below), as the 0 the rule asks for, without a second select
+    t = nt * np.log(np.where(nt > 0, nt, 1.0))
     return np.sum(t - nt, axis=-1)
 
 

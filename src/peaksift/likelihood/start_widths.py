@@ -23,8 +23,9 @@ import math
 
 import numpy as np
 
+from .._jit import compiled_module
 from ..shapes import Gaussian
-from .poisson import use_compiled
+from .poisson import KERNELS_MODULE, SHAPE_ROWS_MODULE, use_compiled
 
 __all__ = ["OTHER_FACTORS", "WIDTH_FACTORS", "other_widths", "scan_width"]
 
@@ -50,9 +51,8 @@ def _profiled(edges, n, scale, bexp, mass, widths, window, y0):
     width on the background expectation ``bexp``, signal yield and background
     normalisation profiled from ``y0`` (signal yield, background total or None); None where
     the rows cannot be made."""
-    from ..shapes.compiled import gaussian_width_rows
-    from .kernels import profile_two_yields
-
+    gaussian_width_rows = compiled_module(SHAPE_ROWS_MODULE).gaussian_width_rows
+    profile_two_yields = compiled_module(KERNELS_MODULE).profile_two_yields
     b0 = np.maximum(bexp, 1e-12)
     btot = float(b0.sum())
     k = widths.size

@@ -21,13 +21,21 @@ from collections.abc import Callable, Iterator
 
 import numpy as np
 
+from .._jit import compiled_module
 from ..errors import PeaksiftError
 from ..shapes import Gaussian
 from .cost import BinnedCost
 from .minimize import damped_step, minimize
 from .model import Model
 from .narrow import NARROW_MARGIN, narrow_candidates
-from .poisson import binned_gradient, binned_information, binned_nll, use_compiled
+from .poisson import (
+    KERNELS_MODULE,
+    SHAPE_ROWS_MODULE,
+    binned_gradient,
+    binned_information,
+    binned_nll,
+    use_compiled,
+)
 from .start_widths import other_widths, scan_width
 
 __all__ = [
@@ -64,13 +72,34 @@ def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.n
     m = mask if mask is not None else np.ones(n.size, bool)
     if not is_fixed[biy]:
         v[biy] = max(float(n[m].sum()), 1.0)
-    cost = BinnedCost(model, v, free, [], edges, n, scale, mask)
+    cost = _background_cost(model, v, free, edges, n, scale, mask)
     lo, hi = lower[free].copy(), upper[free].copy()
     mo = minimize(cost, np.minimum(np.maximum(v[free], lo), hi), lo, hi,
                   [model.parameter_names[i] for i in free], edm_goal=1e-2)
     out = v.copy()
     out[free] = mo.x
     return out
+
+
+#: the background-only cost of recent (model, free parameters, read-only data): one fit
+#: fits the background of the whole window and then of each candidate's sidebands, on
+#: the same data and kernels (the entries hold their inputs, so the ids stay valid)
+_BACKGROUND_COSTS: list = []
+
+
+def _background_cost(model, v, free, edges, n, scale, mask) -> BinnedCost:
+    """``BinnedCost(model, v, free, [], edges, n, scale, mask)``, from a recent one on the
+    same read-only data where there is one (:meth:`.cost.BinnedCost.with_mask`)."""
+    inputs = (model, edges, n, scale)
+    key = tuple(free.tolist())
+    for entry in _BACKGROUND_COSTS:
+        if entry[1] == key and all(a is b for a, b in zip(entry[0], inputs)):
+            return entry[2].with_mask(mask, v)
+    cost = BinnedCost(model, v, free, [], edges, n, scale, mask)
+    if all(isinstance(a, np.ndarray) and not a.flags.writeable for a in inputs[1:]):
+        _BACKGROUND_COSTS.insert(0, (inputs, key, cost))
+        del _BACKGROUND_COSTS[4:]
+    return cost
 
 
 def background_counts(model: Model, edges: np.ndarray, v: np.ndarray) -> np.ndarray:
@@ -81,9 +110,7 @@ def background_counts(model: Model, edges: np.ndarray, v: np.ndarray) -> np.ndar
     bshape, bsl, biy = model.blocks[-1]
     p = [float(q) for q in v[bsl]]
     if use_compiled():
-        from .kernels import edge_kernel
-
-        kern = edge_kernel(bshape, edges, model.window)
+        kern = compiled_module(KERNELS_MODULE).edge_kernel(bshape, edges, model.window)
         if kern is not None:
             out = np.empty((kern.rows, edges.size))
             if kern(p, out):
@@ -118,10 +145,13 @@ def _coarse_profile(n, scale, signal_fractions, background):
     x[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
     x[:, 1] = btot
     if use_compiled():
-        from .kernels import profile_two_yields
-
+        profile_two_yields = compiled_module(KERNELS_MODULE).profile_two_yields
         nll = np.empty(m)
-        sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), g.shape)
+        if (isinstance(scale, np.ndarray) and scale.dtype == float and scale.shape == g.shape
+                and scale.flags.c_contiguous and not scale.flags.writeable):
+            sc = scale  # what the broadcast below gives (a fit's read-only factors)
+        else:
+            sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), g.shape)
         profile_two_yields(np.ascontiguousarray(n, float), np.ascontiguousarray(sc),
                            np.ascontiguousarray(f), g, x, nll, 25)
         return x, nll, nll0
@@ -411,8 +441,7 @@ def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:
     for other shapes."""
     if type(shape) is not Gaussian or not use_compiled():
         return None
-    from ..shapes.compiled import gaussian_rows
-
+    gaussian_rows = compiled_module(SHAPE_ROWS_MODULE).gaussian_rows
     sigma = float(p[shape.parameter_names.index("sigma")])
     lo, hi = float(window[0]), float(window[1])
     x = np.clip(np.asarray(edges, float), lo, hi)
@@ -448,7 +477,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
             pass
     bfr = background_counts(model, edges, s)
     sel = ~mask
-    resid = np.clip(sign * (n[sel] - bfr[sel]), 0.0, None)
+    resid = np.maximum(sign * (n[sel] - bfr[sel]), 0.0)  # np.clip(.., 0, None)
     i_sig = sl.start + shape.parameter_names.index("sigma") if (
         "sigma" in shape.parameter_names and shape.name in ("gaussian", "crystalball")) else None
     if (i_sig is not None and factor == 1.0 and narrow is None and names[i_sig] not in given

@@ -338,9 +338,17 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
     helpers: list[tuple[int, Any]] = []
     try:
         _child_start(parent)
+        from .._collector import pause, settle
+
+        # matplotlib's import and the warm-up make ~0.2 million objects and no garbage worth
+        # a collection: the collector waits until they are in, then they are frozen (the
+        # second drawer inherits them so)
+        paused = pause()
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up(kw.get("formats") or ())
+        if paused:
+            settle()
         for _ in range(_DRAWERS - 1):
             if (h := _second_drawer(queue, outdir, kw)) is not None:
                 helpers.append(h)

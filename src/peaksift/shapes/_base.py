@@ -117,7 +117,13 @@ class Shape:
     # ------------------------------------------------------------ description
     @property
     def parameter_names(self) -> tuple[str, ...]:
-        return tuple(p.name for p in self.parameters)
+        # made once per parameters tuple (a fit asks ~15 times): kept beside the tuple it
+        # was made from, so a shape whose parameters are replaced gets its new names
+        pars = self.parameters
+        memo = self.__dict__.get("_names_of")
+        if memo is None or memo[0] is not pars:
+            memo = self.__dict__["_names_of"] = (pars, tuple(p.name for p in pars))
+        return memo[1]
 
     def parameters_for(self, window: tuple[float, float]) -> tuple[Parameter, ...]:
         """Parameters with starts and bounds made concrete for ``window``."""

@@ -30,7 +30,9 @@ interest is inverted here as the row ends.
 
 It returns None whenever it cannot answer as the Python loop would (another background
 shape, a shape factor, a row kernel declining a trial point near its series, a singular
-Newton system that the Python loop would solve by least squares): the caller then runs the
+Newton system or a step that is not finite, which the Python loop would solve by least
+squares or zero; the system is solved as every compiled fit's,
+:func:`peaksift.likelihood.kernels.solve_small`): the caller then runs the
 Python loop, which stays the reference.  ``tests/test_joint_driver.py`` checks both paths
 against iminuit fits written in the test, and against each other.
 """
@@ -45,8 +47,10 @@ from typing import Any
 import numpy as np
 from numba import njit
 
+from ..likelihood.kernels import solve_small
 from ..shapes.compiled import vlog
-from .joint_kernels import lu_solve, model_change, row_background, small_step, yield_sums
+from .joint_kernels import model_change, row_background, small_step, yield_sums
+from .profile_kernels import first_error
 
 __all__ = ["compiled_joint"]
 
@@ -238,28 +242,6 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm,
 
 
 @njit(cache=True, nogil=True)
-def _first_error(hess, a, rhs, col):  # pragma: no cover - compiled
-    """:func:`peaksift.likelihood.first_error` of one row: ``sqrt((H + 1e-12 tr|H| I)^-1_00)``
-    by :func:`~peaksift.stats.joint_kernels.lu_solve` (``a``, ``rhs``, ``col``: work
-    buffers); NaN where it is not positive or the system is singular."""
-    p = hess.shape[0]
-    tr = 0.0
-    for i in range(p):
-        tr += abs(hess[i, i])
-    reg = 1e-12 * tr
-    for i in range(p):
-        for j in range(p):
-            a[i, j] = hess[i, j]
-        a[i, i] += reg
-        rhs[i] = 0.0
-    rhs[0] = -1.0   # lu_solve gives -a^-1 rhs
-    if not lu_solve(a, rhs, col):
-        return math.nan
-    v = col[0]
-    return math.sqrt(v) if v > 0.0 else math.nan
-
-
-@njit(cache=True, nogil=True)
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
            hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
            step_tol, nll_tol, slack, tries, predict, hess_out, converged,
@@ -334,7 +316,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                     for j in range(p):
                         a[i, j] = hess[i, j]
                     a[i, i] += lam * (hess[i, i] + floor) + 1e-14 * floor
-                if not lu_solve(a, grad, step):
+                if not solve_small(a, grad, step):
                     return DECLINED
                 for i in range(p):
                     trial[i] = min(max(xr[i] + step[i], lower[i]), upper[i])
@@ -374,7 +356,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         gg[r] = gb[cur]
         dgg[r] = dgb[cur]
         if not fixed and steps > 0:
-            first_err[r] = _first_error(hess_out[r], a, grad, step)
+            first_err[r] = first_error(hess_out[r], a, grad, step)
     return DONE
 
 

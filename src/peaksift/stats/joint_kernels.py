@@ -14,9 +14,10 @@ arrays:
   ``sum d2_kl w``, from which :func:`peaksift.stats.joint._grad_hess` assembles the blocks
   (one bin's yield terms in :func:`yield_sums`, shared with the compiled loop);
 * for the compiled loop (:mod:`peaksift.stats.joint_driver`): :func:`row_background` (one
-  row's exponential or power-law fractions in the used bins), :func:`lu_solve` (a Newton
-  step), :func:`small_step` (the stopping test) and :func:`model_change` (the quadratic
-  model's NLL change);
+  row's exponential or power-law fractions in the used bins), :func:`small_step` (the
+  stopping test) and :func:`model_change` (the quadratic model's NLL change); its Newton
+  steps are solved by :func:`peaksift.likelihood.kernels.solve_small`, as every compiled
+  fit's;
 * :func:`quadratic_rows` -- each hypothesis's profiled curvature in the signal yield and
   the slope of the nuisances along it, from a channel's Hessians
   (:mod:`peaksift.stats.joint_start`).
@@ -32,7 +33,7 @@ from numba import njit
 from ..likelihood.kernels import solve_small
 from ..shapes.compiled import exponential_rows, powerlaw_rows
 
-__all__ = ["channel_nll", "channel_sums", "lu_solve", "model_change", "quadratic_rows",
+__all__ = ["channel_nll", "channel_sums", "model_change", "quadratic_rows",
            "row_background", "small_step", "sums", "yield_sums"]
 
 
@@ -159,46 +160,6 @@ def row_background(kind, e1, e2, lo, hi, theta, used, scale, frac, grad, tg, tdg
             u = used[j]
             tg[j] = frac[0, u] * scale[u]
             tdg[j] = grad[0, u] * scale[u]
-    return True
-
-
-@njit(cache=True, nogil=True)
-def lu_solve(a, g, out):  # pragma: no cover - compiled
-    """``out = -a^-1 g`` by Gaussian elimination with partial pivoting (LAPACK's gesv
-    algorithm); False on an exactly zero pivot (where numpy raises)."""
-    n = g.size
-    m = np.empty((n, n + 1))
-    for i in range(n):
-        for j in range(n):
-            m[i, j] = a[i, j]
-        m[i, n] = g[i]
-    for c in range(n):
-        p = c
-        big = abs(m[c, c])
-        for r in range(c + 1, n):
-            if abs(m[r, c]) > big:
-                big = abs(m[r, c])
-                p = r
-        if big == 0.0:
-            return False
-        if p != c:
-            for j in range(c, n + 1):
-                t = m[c, j]
-                m[c, j] = m[p, j]
-                m[p, j] = t
-        for r in range(c + 1, n):
-            f = m[r, c] / m[c, c]
-            for j in range(c, n + 1):
-                m[r, j] -= f * m[c, j]
-    for i in range(n - 1, -1, -1):
-        acc = m[i, n]
-        for j in range(i + 1, n):
-            acc -= m[i, j] * out[j]
-        out[i] = acc / m[i, i]
-    for i in range(n):
-        out[i] = -out[i]
-        if not math.isfinite(out[i]):
-            out[i] = 0.0
     return True
 
 
