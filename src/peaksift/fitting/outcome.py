@@ -15,6 +15,7 @@ from scipy import special
 
 from ..errors import FitError
 from ..likelihood import Minimum, baker_cousins_chi2, new_minuit
+from ..likelihood.minimum import bound_tolerance, distance_to_bound
 from ..shapes import Shape
 from .checks import tie_indices
 from .data import FitData, gof_binning
@@ -42,24 +43,12 @@ def problems_at(mo: Minimum, x: np.ndarray, posdef: bool, lower: np.ndarray, upp
         out.append("minimiser did not converge" + (" (call limit reached)"
                                                   if mo.call_limit else ""))
     for i, name in enumerate(names):
-        if _distance_to_bound(x[i], lower[i], upper[i])[0] <= _bound_tolerance(
+        if distance_to_bound(x[i], lower[i], upper[i])[0] <= bound_tolerance(
                 x[i], lower[i], upper[i]):
             out.append(f"{name} at a bound ({x[i]:.6g})")
     if not posdef:
         out.append("covariance not positive definite (Hessian of the NLL not invertible)")
     return out
-
-
-def _bound_tolerance(x: float, lo: float, hi: float) -> float:
-    span = hi - lo
-    return 1e-4 * span if math.isfinite(span) else 1e-8 * max(abs(x), 1.0)
-
-
-def _distance_to_bound(x: float, lo: float, hi: float) -> tuple[float, float]:
-    """(distance to the nearer finite bound, that bound)."""
-    dl = x - lo if math.isfinite(lo) else math.inf
-    du = hi - x if math.isfinite(hi) else math.inf
-    return (dl, lo) if dl <= du else (du, hi)
 
 
 def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost, problems,
@@ -105,8 +94,8 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
     # as Python floats (the same values): arithmetic on numpy scalars costs ~10x more
     xs, los, his, errs = xbest.tolist(), lower.tolist(), upper.tolist(), err.tolist()
     for k, i in enumerate(free_idx.tolist()):
-        dist, bnd = _distance_to_bound(xs[k], los[i], his[i])
-        if (math.isfinite(dist) and dist > _bound_tolerance(xs[k], los[i], his[i])
+        dist, bnd = distance_to_bound(xs[k], los[i], his[i])
+        if (math.isfinite(dist) and dist > bound_tolerance(xs[k], los[i], his[i])
                 and math.isfinite(errs[i]) and dist < errs[i]):
             notes.append(f"{names[i]} lies within one standard error of its bound {bnd:g}: "
                          "its symmetric error is not meaningful, use the interval")

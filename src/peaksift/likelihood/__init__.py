@@ -22,7 +22,9 @@ What is here, and which piece to use when
   their likelihoods) over shared free parameters, e.g. one cross-section x branching fraction.
 * :mod:`.minimize`    -- the one minimiser (damped Fisher scoring; iminuit MIGRAD as the
   fallback), the scaled positive-definiteness test, and :func:`minimize_stacked`, the driver
-  of every stacked fit (many toys or mass hypotheses at once).
+  of every stacked fit (many toys or mass hypotheses at once); :mod:`.migrad` the watched
+  MIGRAD fallback, :mod:`.minimum` what a minimisation found, :mod:`.refine` a minimum's
+  polish, Hessian and covariance.
 * :mod:`.starts`      -- starting values: sideband background fits and candidate peak masses
   from a coarse likelihood scan.
 
@@ -45,7 +47,6 @@ from .minimize import (
     minimize,
     minimize_stacked,
     new_minuit,
-    refine,
 )
 from .model import Model
 from .nuisances import NUISANCE_NAMES, SignalNuisances
@@ -58,6 +59,7 @@ from .poisson import (
     saturated_term,
     unbinned_nll,
 )
+from .refine import refine
 
 __all__ = [
     "CONSTRAINT_KINDS",

@@ -10,7 +10,7 @@ Which function when
 * :func:`covariance` -- ``H^-1`` from an observed Hessian, with the positive-definiteness test
   done on the Hessian scaled to unit diagonal (the unscaled eigenvalue ratio of a fit with
   10^7 events is ~1e-14 although the problem is well conditioned).
-* :func:`refine` -- observed Hessian at a minimum, one Newton step, covariance.
+* :func:`refine` (:mod:`.refine`) -- observed Hessian at a minimum, polish, covariance.
 * :func:`minimize_stacked` -- many independent bounded problems at once (toys, mass
   hypotheses, channels): Levenberg-Marquardt with per-problem damping, a convergence mask and
   an iteration cap; the one driver under the stacked fits of :mod:`peaksift.stats`.
@@ -23,7 +23,6 @@ Which function when
 from __future__ import annotations
 
 import math
-import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -42,7 +41,7 @@ from .poisson import (
 
 __all__ = ["Minimum", "NearMinimum", "StackedMinimum", "covariance", "damped_step", "first_error",
            "fisher_scoring", "held_at_bounds", "minimize", "minimize_stacked", "new_minuit",
-           "refine", "solve_stacked", "to_wall"]
+           "solve_stacked", "to_wall"]
 
 #: systems up to this size are solved by the compiled :func:`.kernels.solve_small`
 _SMALL = 16
@@ -287,87 +286,6 @@ def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:
     if not np.all(np.isfinite(cov)):
         return bad
     return cov, True
-
-
-#: MIGRAD's EDM goal at strategy 0 and errordef 0.5 (0.002 x tolerance 0.1 x errordef)
-EDM_MIGRAD = 1e-4
-
-
-def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
-    """Observed Hessian at the minimum found, a MIGRAD minimum polished (:func:`_polish`)
-    and refined by one Newton step, and the covariance ``H^-1`` (errordef 0.5).  A MIGRAD
-    minimum that MIGRAD left
-    unconverged (not at its call limit) is marked converged (``mo.converged``) when the
-    Hessian is positive definite and the EDM it gives, held at the bounds, is below
-    ``EDM_MIGRAD``.
-
-    Returns ``(x, nll, covariance, positive_definite)``.
-    """
-    x0 = np.asarray(mo.x, float)
-    f0 = mo.fval
-    if mo.method == "iminuit-migrad" and math.isfinite(f0):
-        x0, f0 = _polish(cost, x0, f0, lower, upper, np.asarray(mo.errors, float))
-    errs = np.asarray(mo.errors, float)
-    h = np.where(np.isfinite(errs) & (errs > 0), 1e-3 * errs, 1e-6 * np.maximum(np.abs(x0), 1.0))
-    try:
-        with np.errstate(all="ignore"):
-            hess = cost.observed_hessian(x0, h, lower, upper)
-    except (ArithmeticError, np.linalg.LinAlgError, ValueError):
-        return x0, f0, np.full((x0.size, x0.size), np.nan), False
-    cov, posdef = covariance(hess)
-    if posdef and mo.method == "iminuit-migrad":  # one Newton step refines MIGRAD's minimum
-        with np.errstate(all="ignore"), warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            x1 = np.clip(x0 - cov @ cost.grad(*x0), lower, upper)
-            f1 = cost(*x1)
-            if np.isfinite(f1) and f1 < f0:
-                x0, f0 = x1, f1
-            if not mo.converged and not mo.call_limit:
-                g = cost.grad(*x0)
-                g = np.where(held_at_bounds(x0, g, lower, upper), 0.0, g)
-                edm = 0.5 * float(g @ cov @ g)
-                # MIGRAD's verdict depends on its path to the last ~1e-4 (the same start
-                # converged or not as a gradient's last digits changed); a point where the
-                # observed Hessian is positive definite and promises less than MIGRAD's own
-                # goal (strategy 0, errordef 0.5) is a minimum
-                mo.converged = bool(math.isfinite(edm) and edm < EDM_MIGRAD)
-    return x0, f0, cov, posdef
-
-
-#: Fisher-scoring iterations that polish a MIGRAD minimum, and the least NLL gain kept
-POLISH_STEPS = 20
-POLISH_GAIN = 1e-7
-#: iminuit's tolerance for the polishing MIGRAD run (EDM goal 1e-6 at errordef 0.5)
-POLISH_TOL = 1e-3
-
-
-def _polish(cost: Any, x0: np.ndarray, f0: float, lower: np.ndarray, upper: np.ndarray,
-            errors: np.ndarray) -> tuple[np.ndarray, float]:
-    """A MIGRAD minimum polished by a few Fisher-scoring steps, kept when they lower the NLL
-    by more than ``POLISH_GAIN``.
-
-    MIGRAD (strategy 0) stops at EDM ~1e-4; where the minimum lies in a flat valley (tails
-    at their bounds, a width at its floor) the NLL it stops at depends on its path: exact
-    derivatives of the turn-on instead of differenced ones left one fit 1.5e-5 higher.
-    Fisher scoring from there (held at the bounds, EDM goal 1e-7) takes it down, else a
-    second MIGRAD run from there with an EDM goal of 1e-6.  A smaller
-    gain is left alone: along a valley flat to 1e-7 the point would only wander (onto a
-    bound, say) for nothing the NLL can tell."""
-    with np.errstate(all="ignore"):
-        try:
-            x1, f1, _, _ = fisher_scoring(cost, x0, lower, upper, max_iter=POLISH_STEPS)
-        except (ArithmeticError, np.linalg.LinAlgError, ValueError):
-            x1, f1 = x0, f0
-    if math.isfinite(f1) and f1 < f0 - POLISH_GAIN:
-        return np.asarray(x1, float), float(f1)
-    # Fisher scoring could not go on (the information singular along the flat directions):
-    # MIGRAD again from the minimum with a 100 times tighter EDM goal
-    names = [f"p{i}" for i in range(x0.size)]
-    steps = np.where(np.isfinite(errors) & (errors > 0), errors, np.nan)
-    mo = migrad(cost, x0, lower, upper, names, tol=POLISH_TOL, steps=steps)
-    if math.isfinite(mo.fval) and mo.fval < f0 - POLISH_GAIN:
-        return np.asarray(mo.x, float), float(mo.fval)
-    return x0, f0
 
 
 def damped_step(hess: np.ndarray, grad: np.ndarray, lam: np.ndarray) -> np.ndarray:

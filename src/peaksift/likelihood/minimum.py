@@ -4,16 +4,20 @@
   by Fisher scoring or by iminuit's MIGRAD (:mod:`.migrad`).
 * :class:`NearMinimum` -- a ``stop`` test: the path of a later start has run into the best
   minimum found so far, so it has nothing new to find (the free fit then abandons it).
+* :func:`bound_tolerance`, :func:`distance_to_bound` -- when a parameter counts as "at a
+  bound" (the free fit's verdict, and the polish of :func:`.minimize.refine`, which must not
+  change it for nothing).
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-__all__ = ["Minimum", "NearMinimum"]
+__all__ = ["Minimum", "NearMinimum", "at_bounds", "bound_tolerance", "distance_to_bound"]
 
 
 @dataclass
@@ -49,3 +53,24 @@ class NearMinimum:
             return False
         d = x - self.x
         return float(d @ self.hessian @ d) < self.distance
+
+
+def bound_tolerance(x: float, lo: float, hi: float) -> float:
+    """How close to a bound a value counts as on it: 1e-4 of a finite range, else 1e-8 of
+    the value (at least 1e-8)."""
+    span = hi - lo
+    return 1e-4 * span if math.isfinite(span) else 1e-8 * max(abs(x), 1.0)
+
+
+def distance_to_bound(x: float, lo: float, hi: float) -> tuple[float, float]:
+    """(distance to the nearer finite bound, that bound)."""
+    dl = x - lo if math.isfinite(lo) else math.inf
+    du = hi - x if math.isfinite(hi) else math.inf
+    return (dl, lo) if dl <= du else (du, hi)
+
+
+def at_bounds(x: np.ndarray, lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
+    """Which parameters are at a bound (within :func:`bound_tolerance`)."""
+    return np.array([distance_to_bound(float(v), float(a), float(b))[0]
+                     <= bound_tolerance(float(v), float(a), float(b))
+                     for v, a, b in zip(x, lower, upper)], bool)
