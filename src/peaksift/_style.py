@@ -226,6 +226,13 @@ def _figure_class() -> Any:
                     for u in reversed(undo):
                         u()
 
+            def __setstate__(self, state: Any) -> None:
+                # matplotlib gives an unpickled figure its base canvas; ours writes the
+                # same PNG as before the round trip (its RGB file of an opaque figure)
+                super().__setstate__(state)
+                if type(self.canvas).__name__ == "FigureCanvasBase":
+                    _canvas_class()(self)
+
         # found by pickle under this module's name (see __getattr__ below)
         Figure.__module__ = __name__
         Figure.__qualname__ = "Figure"

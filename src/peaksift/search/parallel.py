@@ -301,6 +301,8 @@ def _second_drawer(queue: Any, outdir: Path, kw: dict[str, Any]) -> tuple[int, A
         receive.close()
         die_with_parent(me)
         _own_fonts()
+        if queue.empty():  # its own fonts opened and its parser's first layouts made
+            _warm_up()  # while the events are still read, not in its first figure (~0.07 s)
         _draw_jobs(queue, outdir, kw, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the main process draws what was not delivered
