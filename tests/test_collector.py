@@ -3,7 +3,8 @@ starts with the heap it inherits frozen, the parent's is unfrozen at once, and a
 collector set by someone else is left as it was.  The reference is Python's documented
 ``gc`` behaviour (``gc.freeze``: objects moved to a permanent generation that collections
 ignore; ``gc.get_freeze_count``: how many; Python docs, "gc -- Garbage Collector
-interface", 3.7+).  Exact counts, no tolerance."""
+interface", 3.7+).  Counts are exact except where frozen objects may be freed meanwhile
+(a frozen object whose last reference goes is deallocated and leaves the count)."""
 
 from __future__ import annotations
 
@@ -48,7 +49,9 @@ def test_a_heap_frozen_by_someone_else_and_a_collector_turned_off_are_left_alone
     try:
         before = gc.get_freeze_count()
         child, parent = _fork_and_report()
-        assert parent == before  # not unfrozen by us
+        # not unfrozen by us (that gives 0) nor frozen again; a frozen object freed in
+        # between leaves the count (CI saw 2 fewer), hence the small slack below it
+        assert before - 100 < parent <= before
         assert before - 100 < child <= before  # (a few freed in the child as it starts)
     finally:
         gc.unfreeze()
