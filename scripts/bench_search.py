@@ -3,18 +3,21 @@
     python scripts/bench_search.py [--runs 3] [--config demo_data/search.toml]
                                    [--variant both|with|without] [--baseline SRC] [--inline]
 
-Each run is a fresh ``python -m peaksift search CONFIG -q`` (imports included, as a user
-sees it).  By default both variants run, in alternate rounds: the config as it is and
-without its ``[systematics]`` table (a copy in a temporary folder, input paths made
-absolute: the demo as it was when issue 17 set its 2.5 s target).  Printed per variant
-and tree: best and median wall time, the CPU time of the run and of every process it
-started (figures and limits run in processes of their own, beside the statistics), and
-the stage split of the best run from its ``provenance.timings``, grouped as imports,
-read/pair, scan, toys (global significance), systematics, fit (the fits and the
-calibration), limits (the wait for the limits beside), figures (the wait for the last
-figure), report.  "imports" is ``import peaksift.search`` alone, timed in its own
-process (what the command imports before the config is read); "other" is the rest of the
-wall time outside the stages (config, input checks, process exit).
+Each run is a fresh ``python -m peaksift search CONFIG -v`` (imports included, as a user
+sees it; ``-v`` for its stage lines, which give the main process's CPU time by stage). By
+default both variants run, in alternate rounds: the config as it is and without its
+``[systematics]`` table (a copy in a temporary folder, input paths made absolute: the demo
+as it was when issue 17 set its 2.5 s target). Printed per variant and tree: best and
+median wall time, the CPU time of the run and of every process it started (figures and
+limits run in processes of their own, beside the statistics), and the stage split of the
+best run from its ``provenance.timings``, grouped as imports, read/pair, scan, toys (global
+significance), systematics, fit (the fits and the calibration), limits (the wait for the
+limits beside), figures (the wait for the last figure), report; then the main process's CPU
+seconds by stage (least and median over the runs; "start-up" is everything before the first
+stage: imports, config, input checks, the figure process's fork), where the tree's log
+gives them. "imports" is ``import peaksift.search`` alone, timed in its own process (what
+the command imports before the config is read); "other" is the rest of the wall time
+outside the stages (config, input checks, process exit).
 
 ``--baseline SRC`` also runs another source tree (e.g. a ``git archive`` of main unpacked
 into /tmp) in alternate rounds, so the two are compared at the same load; ``--inline``
@@ -41,14 +44,19 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parents[1]
 
 
-def _run(cmd: list[str], env: dict[str, str]) -> tuple[float, float]:
-    """Wall and CPU seconds (user + system, children included) of one command."""
+def _run(cmd: list[str], env: dict[str, str]) -> tuple[float, float, dict[str, float]]:
+    """Wall and CPU seconds (user + system, children included) of one command, and the main
+    process's CPU seconds by stage from its ``-v`` log lines (``start-up``: before the first
+    stage; empty for a tree whose log does not give them)."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t = time.perf_counter()
-    subprocess.run(cmd, check=True, env=env, cwd=REPO, stdout=subprocess.DEVNULL)
+    done = subprocess.run(cmd, check=True, env=env, cwd=REPO, stdout=subprocess.DEVNULL,
+                          stderr=subprocess.PIPE, text=True)
     wall = time.perf_counter() - t
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
-    return wall, (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    stages = {m.group(1).strip(): float(m.group(2)) for m in re.finditer(
+        r"(?m)^peaksift: (.+?)\s+(?:[0-9.]+ s )?\s*\(CPU\s+([0-9.]+) s\)$", done.stderr)}
+    return wall, (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime), stages
 
 
 def _without_systematics(config: Path, tmp: Path) -> Path:
@@ -72,7 +80,7 @@ GROUPS = {"read/pair": ("read and select",), "scan": ("mass scan",),
 
 
 def _print(name: str, rs: list[tuple[float, float, dict[str, float], dict[str, float]]],
-           imports: list[float]) -> None:
+           imports: list[float], stage_cpu: list[dict[str, float]]) -> None:
     walls = [w for w, _, _, _ in rs]
     best = min(rs, key=lambda x: x[0])
     cpus_all = [c for _, c, _, _ in rs]
@@ -91,6 +99,12 @@ def _print(name: str, rs: list[tuple[float, float, dict[str, float], dict[str, f
     row.update({k: t[k] for k in unknown})
     row["other"] = best[0] - sum(row.values())
     print("  " + "  ".join(f"{k} {v:.2f}" for k, v in row.items()) + "  (s)")
+    if any(stage_cpu):  # the main line's CPU by stage: least and median over the runs
+        keys = list(dict.fromkeys(k for s in stage_cpu for k in s))
+        print("  main process CPU by stage (least / median): " + ", ".join(
+            f"{k} {min(s.get(k, 0.0) for s in stage_cpu):.2f} / "
+            f"{statistics.median(s.get(k, 0.0) for s in stage_cpu):.2f}" for k in keys)
+            + " s")
     if best[3]:  # CPU per process: what the wall time would be on idle cores
         cpus = best[3]
         total = sum(cpus.values())
@@ -132,6 +146,7 @@ def main() -> None:
         runs: dict[tuple[str, str], list[tuple[float, float, dict[str, float],
                                                dict[str, float]]]] = {k: [] for k in keys}
         imports: dict[str, list[float]] = {t: [] for t in trees}
+        stage_cpu: dict[tuple[str, str], list[dict[str, float]]] = {k: [] for k in keys}
         for r in range(args.runs):
             for v, name in keys:
                 src, extra = trees[name]
@@ -139,14 +154,15 @@ def main() -> None:
                 imports[name].append(_run([sys.executable, "-c", "import peaksift.search"],
                                           env)[0])
                 out = tmp / f"out{r}_{len(runs[v, name])}_{abs(hash((v, name)))}"
-                wall, cpu = _run([sys.executable, "-m", "peaksift", "search",
-                                  str(configs[v]), "-q", "--out", str(out)], env)
+                wall, cpu, stages = _run([sys.executable, "-m", "peaksift", "search",
+                                          str(configs[v]), "-v", "--out", str(out)], env)
+                stage_cpu[v, name].append(stages)
                 prov = json.loads((out / "results.json").read_text())["provenance"]
                 runs[v, name].append((wall, cpu, prov["timings"], prov.get("cpu") or {}))
     print(f"load average {load0:.1f} before, {os.getloadavg()[0]:.1f} after, on "
           f"{os.cpu_count()} cores; {args.runs} rounds")
     for (v, name), rs in runs.items():
-        _print(f"{v}, {name}", rs, imports[name])
+        _print(f"{v}, {name}", rs, imports[name], stage_cpu[v, name])
 
 
 if __name__ == "__main__":

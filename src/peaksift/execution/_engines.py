@@ -91,10 +91,9 @@ def _open_dask_session(func: Any, workers: int | None, address: str | None, clie
 
 
 def _progress(total: int, desc: str, unit: str, enabled: bool) -> Any:
-    from tqdm.auto import tqdm
+    from .._progress import bar
 
-    return tqdm(total=total, desc=desc, unit=unit, disable=not enabled, unit_scale=True,
-                leave=False)
+    return bar(total, shown=enabled, desc=desc, unit=unit, unit_scale=True, leave=False)
 
 
 def map_tasks(func: Callable[[Any], Any], specs: Sequence[Any], *, engine: str = "serial",

@@ -42,17 +42,22 @@ _log = logging.getLogger("peaksift.search")
 
 class _Clock:
     """Wall time of each stage of a search: logged (``peaksift -v``) and kept in the
-    provenance (``timings``, seconds)."""
+    provenance (``timings``, seconds).  The log also gives this process's CPU time of each
+    stage, and of everything before the first (imports, config, input checks): the stages
+    beside run in other processes, so the main line's CPU time is its share of the critical
+    path (``scripts/bench_search.py`` reads these lines)."""
 
     def __init__(self) -> None:
         self.t = time.perf_counter()
+        self.cpu = cpu_seconds()
         self.stages: dict[str, float] = {}
+        _log.info("%-22s %6s   (CPU %5.2f s)", "start-up", "", self.cpu)
 
     def lap(self, name: str) -> None:
-        now = time.perf_counter()
+        now, cpu = time.perf_counter(), cpu_seconds()
         self.stages[name] = round(now - self.t, 3)
-        _log.info("%-22s %6.2f s", name, now - self.t)
-        self.t = now
+        _log.info("%-22s %6.2f s (CPU %5.2f s)", name, now - self.t, cpu - self.cpu)
+        self.t, self.cpu = now, cpu
 
 
 def run_search(

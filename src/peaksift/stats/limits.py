@@ -422,8 +422,7 @@ def _toy_limits(want: list[float], m_all: np.ndarray, bl: np.ndarray, model: Sca
                 toy_info: dict[str, Any], notes: list[str], progress: bool | None,
                 executor: Any) -> None:
     """Toy-based limits at the scan masses nearest ``want`` (in place)."""
-    from tqdm.auto import tqdm
-
+    from .._progress import bar as progress_bar
     from .toys import _progress_enabled
 
     keep = ~bl
@@ -444,9 +443,15 @@ def _toy_limits(want: list[float], m_all: np.ndarray, bl: np.ndarray, model: Sca
             raise FitError(f"the toy executor returned {len(results)} results for "
                            f"{len(tasks)} toy-limit masses")
     else:
-        results = [run_toy_limit(t) for t in tqdm(
-            tasks, desc="toy limits", unit="mass", leave=False,
-            disable=not _progress_enabled(progress))]
+        bar = progress_bar(len(tasks), shown=_progress_enabled(progress), desc="toy limits",
+                           unit="mass", leave=False)
+        results = []
+        try:
+            for t in tasks:
+                results.append(run_toy_limit(t))
+                bar.update(1)
+        finally:
+            bar.close()
     for j, res in zip(where, results):
         obs[j] = res["observed"]
         exp_lim[:, j] = [res["expected"][n] for n in _BANDS]

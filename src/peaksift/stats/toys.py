@@ -172,9 +172,9 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
     specs = [ToyBatch(model, int(seed), i, min(batch, n_toys - i), expected)
              for i in range(0, n_toys, batch)]
     show = _progress_enabled(progress)
-    from tqdm.auto import tqdm
+    from .._progress import bar as progress_bar
 
-    bar = tqdm(total=n_toys, desc="toys", unit="toy", disable=not show, leave=False)
+    bar = progress_bar(n_toys, shown=show, desc="toys", unit="toy", leave=False)
     results: list[np.ndarray] = []
     try:
         if executor is not None:
