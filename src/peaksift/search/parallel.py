@@ -256,6 +256,17 @@ def _warm_up(formats: Sequence[str] = ()) -> None:
         fig.savefig(io.BytesIO(), format=fmt, dpi=50)
 
 
+def _job_modules() -> None:
+    """Import what a figure job needs beyond what the search had loaded when the figure
+    process forked: the modules of the results it carries (unpickling a job imports them:
+    the events' summary, the histogram, the fit, scan and limit results) and the fit
+    figure's.  Done once, before the second drawer forks, instead of by each drawer at its
+    first job (~0.1 s of CPU each)."""
+    from .. import execution, histogram  # noqa: F401  (the collected events, MassHistogram)
+    from ..fitting import figure, result  # noqa: F401
+    from ..stats import limit_result, scan_result  # noqa: F401
+
+
 #: processes drawing a search's figures: the first forks the others once matplotlib is in
 _DRAWERS = 2
 
@@ -349,6 +360,7 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up(kw.get("formats") or ())
+        _job_modules()
         if paused:
             settle()
         for _ in range(_DRAWERS - 1):
