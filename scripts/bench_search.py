@@ -108,9 +108,15 @@ def _print(name: str, rs: list[tuple[float, float, dict[str, float], dict[str, f
     if best[3]:  # CPU per process: what the wall time would be on idle cores
         cpus = best[3]
         total = sum(cpus.values())
-        bound = max(cpus.get("main", 0.0), total / (os.cpu_count() or 1))
+        n = os.cpu_count() or 1
+        bound = max(cpus.get("main", 0.0), total / n)
+        # until the figure process forks only the main line runs (its start-up S); then
+        # every process shares the cores: about S + (total - S) / n on idle cores
+        start = stage_cpu[rs.index(best)].get("start-up") if stage_cpu else None
+        model = (f", about {start + (total - start) / n:.2f} s (start-up {start:.2f} s alone, "
+                 "the rest shared)" if start is not None else "")
         print("  CPU by process: " + ", ".join(f"{k} {v:.2f} s" for k, v in cpus.items())
-              + f"; on {os.cpu_count()} idle cores no sooner than {bound:.2f} s")
+              + f"; on {n} idle cores no sooner than {bound:.2f} s{model}")
 
 
 def main() -> None:
