@@ -39,7 +39,6 @@ against iminuit fits written in the test, and against each other.
 
 from __future__ import annotations
 
-import itertools
 import math
 from types import SimpleNamespace
 from typing import Any
@@ -50,6 +49,7 @@ from numba import njit
 from ..likelihood.kernels import solve_small
 from ..shapes.compiled import vlog
 from .joint_kernels import model_change, row_background, small_step, yield_sums
+from .joint_spans import span_channel, span_tables
 from .profile_kernels import first_error
 
 __all__ = ["compiled_joint"]
@@ -62,7 +62,7 @@ DONE, DECLINED = 0, 1
 @njit(cache=True, nogil=True, error_model="numpy")
 def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2,
            lo, hi, boff, used, woff, scale, nn, ff, gg, d2, tg, tdg, frac, grad, direct, th,
-           sm, lb):  # pragma: no cover - compiled
+           sm, lb, fast, spans, pre, theta_ref):  # pragma: no cover - compiled
     """The summed NLL of row ``r`` at ``x`` (as the Python ``total``), the background
     fractions and derivatives there into ``tg``/``tdg``, and in the same pass over the bins
     each channel's sums for the gradient and Hessian there into ``sm (channels, 10)``
@@ -90,6 +90,24 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         rn = r if nc_.shape[0] > 1 else 0
         rd = r if dc.shape[0] > 1 else 0
         kq = kpar[c]
+        e = 1.0
+        if nj:
+            t = 0.0
+            for j in range(nj):
+                t += x[off + j] * a_norm[c, j]
+            e = math.exp(t)
+        s = mu * kc[c, r] * e
+        s2 = mu * (kc[c, r] * e)     # the gradient's signal (as _grad_hess forms it)
+        b = x[first[c]]
+        if fast[c]:   # an exponential: bin by bin only in the signal's span (joint_spans)
+            done, part = span_channel(
+                e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1], x[first[c] + 1],
+                theta_ref[c], s, s2, b, fc[r], nc_[0], dc[0], spans[c, r, 0],
+                spans[c, r, 1], pre[:, boff[c] + c:boff[c + 1] + c + 1],
+                tg[b0:b1], tdg[b0:b1], lb, sm[c])
+            if done:
+                out = out + part
+                continue
         if kq:
             w0, w1 = woff[c], woff[c + 1]
             ok = row_background(kind[c], e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1],
@@ -101,15 +119,6 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
             for i in range(b0, b1):
                 tg[i] = gg[r, i]
                 tdg[i] = 0.0
-        e = 1.0
-        if nj:
-            t = 0.0
-            for j in range(nj):
-                t += x[off + j] * a_norm[c, j]
-            e = math.exp(t)
-        s = mu * kc[c, r] * e
-        s2 = mu * (kc[c, r] * e)     # the gradient's signal (as _grad_hess forms it)
-        b = x[first[c]]
         acc = 0.0
         bad = False
         a0 = 0.0
@@ -245,7 +254,7 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm,
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
            hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
            step_tol, nll_tol, slack, tries, predict, hess_out, converged,
-           direct, first_err):  # pragma: no cover
+           direct, first_err, fast, spans, pre, theta_ref):  # pragma: no cover
     """The loop of :func:`peaksift.likelihood.minimize_stacked` on every row of the joint
     problem from ``x`` (its start); ``x``, ``nll`` and ``gg``/``dgg`` (the state:
     background fractions and derivatives; ``gg`` holds the fixed backgrounds' fractions on
@@ -280,12 +289,14 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
         # NLL starts at mu = 0 instead)
         fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind,
                         eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, d2,
-                        gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb)
+                        gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb, fast,
+                        spans, pre, theta_ref)
         if ok and not fixed and not math.isfinite(fr):
             xr[0] = 0.0
             fr, ok = _value(xr, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar,
                             kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg,
-                            d2, gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb)
+                            d2, gb[cur], dgb[cur], frac, gbuf, direct, th, sm[cur], lb, fast,
+                            spans, pre, theta_ref)
         if not ok:
             return DECLINED
         lam = 1e-3
@@ -333,7 +344,7 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 tn, ok = _value(trial, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first,
                                 kpar, kind, eoff, e1, e2, lo, hi, boff, used, woff, scale,
                                 nn, ff, gg, d2, gb[nxt], dgb[nxt], frac, gbuf, direct, th,
-                                sm[nxt], lb)
+                                sm[nxt], lb, fast, spans, pre, theta_ref)
                 if not ok:
                     return DECLINED
                 good = tn <= fr + slack
@@ -471,6 +482,8 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     nj = 0 if a_norm is None else a_norm.shape[1]
     an = np.zeros((nc, 0)) if a_norm is None else np.ascontiguousarray(a_norm, float)
     aux = np.ascontiguousarray(np.broadcast_to(aux, (nb, nj)), float)
+    theta_ref = np.array([float(m.theta[0]) if m.theta.size == 1 else 0.0 for m in models])
+    spans = span_tables(kind, kpar, direct, e1, e2, eoff, boff, nn, ff, d2c, theta_ref)
     x = np.array(x0, float)
     out_nll = np.empty(nb)
     hess = np.zeros((nb, p, p))
@@ -482,12 +495,10 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
                     d2c, x, out_nll,
                     np.asarray(lower, float), np.asarray(upper, float), int(steps),
                     -1.0 if step_tol is None else float(step_tol), float(nll_tol),
-                    float(slack), int(tries), bool(predict), hess, conv, direct, err)
+                    float(slack), int(tries), bool(predict), hess, conv, direct, err,
+                    *spans, theta_ref)
     if status != DONE:
         return None
-    spans = list(itertools.pairwise(boff))
-    state = tuple(gg[:, a:b] for a, b in spans) + tuple(
-        dgg[:, a:b][:, None, :] if kq else np.zeros((nb, 0, b - a))
-        for (a, b), kq in zip(spans, kpar))
-    return SimpleNamespace(x=x, nll=out_nll, state=state, hessian=hess, converged=conv,
+    # no state: the closed form leaves the fractions outside a span unwritten
+    return SimpleNamespace(x=x, nll=out_nll, state=None, hessian=hess, converged=conv,
                            first_error=err)
