@@ -117,7 +117,7 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
                 return 0.0, False
         else:
             for i in range(b0, b1):
-                tg[i] = gg[r, i]
+                tg[i] = gg[r if gg.shape[0] > 1 else 0, i]
                 tdg[i] = 0.0
         acc = 0.0
         bad = False
@@ -252,13 +252,12 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm,
 
 @njit(cache=True, nogil=True)
 def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2, lo,
-           hi, boff, used, woff, scale, nn, ff, gg, dgg, d2, x, nll, lower, upper, steps,
+           hi, boff, used, woff, scale, nn, ff, gg, d2, x, nll, lower, upper, steps,
            step_tol, nll_tol, slack, tries, predict, hess_out, converged,
            direct, first_err, fast, spans, pre, theta_ref):  # pragma: no cover
     """The loop of :func:`peaksift.likelihood.minimize_stacked` on every row of the joint
-    problem from ``x`` (its start); ``x``, ``nll`` and ``gg``/``dgg`` (the state:
-    background fractions and derivatives; ``gg`` holds the fixed backgrounds' fractions on
-    entry) written in place.  Returns DONE, or DECLINED (the caller runs Python)."""
+    problem from ``x`` (its start); ``x`` and ``nll`` written in place (``gg``: the fixed
+    backgrounds' fractions).  Returns DONE, or DECLINED (the caller runs Python)."""
     nb, p = x.shape
     ntot = boff[-1]
     nw = 1
@@ -364,8 +363,6 @@ def _drive(fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e
                 break
         x[r] = xr
         nll[r] = fr
-        gg[r] = gb[cur]
-        dgg[r] = dgb[cur]
         if not fixed and steps > 0:
             first_err[r] = first_error(hess_out[r], a, grad, step)
     return DONE
@@ -469,11 +466,11 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     nn = tuple(_frozen(x[:1] if shared_n else np.broadcast_to(x, (nb, x.shape[1])))
                for x in n)
     ff = tuple(_frozen(np.broadcast_to(x, (nb, x.shape[1]))) for x in f)
-    gg = np.empty((nb, boff[-1]))       # written at the start (fixed shapes: here)
+    # the fixed backgrounds' fractions (a row for all when there is none)
+    gg = np.zeros((nb if any(g is not None for g in fixed_g) else 1, boff[-1]))
     for c, g in enumerate(fixed_g):
         if g is not None:
             gg[:, boff[c]:boff[c + 1]] = g
-    dgg = np.empty((nb, boff[-1]))
     d2c = tuple(_frozen(np.zeros((1, sz)) if v is None else
                         v[:1, 0, 0, :] if nb > 1 and v.strides[0] == 0 else v[:, 0, 0, :])
                 for v, sz in zip(d2, sizes))
@@ -491,7 +488,7 @@ def compiled_joint(models: list, n: list, f: list, k: list, fixed: bool, mu: np.
     err = np.full(nb, np.nan)
     status = _drive(bool(fixed), np.ascontiguousarray(np.broadcast_to(mu, (nb,)), float),
                     0 if fixed else 1, nj, aux, an, kc, np.asarray(first, np.int64), kpar,
-                    kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg, dgg,
+                    kind, eoff, e1, e2, lo, hi, boff, used, woff, scale, nn, ff, gg,
                     d2c, x, out_nll,
                     np.asarray(lower, float), np.asarray(upper, float), int(steps),
                     -1.0 if step_tol is None else float(step_tol), float(nll_tol),
