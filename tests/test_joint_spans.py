@@ -50,8 +50,8 @@ def _kernel(n, f, d2, s, b, theta, theta_ref):
     row_spans(f[None, :], 1e-22, spans)
     tg, tdg = np.zeros(f.size), np.zeros(f.size)
     lb, sm = np.zeros((3, f.size)), np.zeros(10)
-    done, nll = span_channel(T, DT, theta, theta_ref, s, s, b, f, n, d2, spans[0, 0],
-                             spans[0, 1], pre, tg, tdg, lb, sm)
+    done, nll = span_channel(T, DT, 0, theta, theta_ref, s, s, b, f, n, d2, spans[0, 0],
+                             spans[0, 1], pre, 0, tg, tdg, 0, lb, sm)
     return done, nll, sm, spans[0]
 
 

@@ -103,10 +103,9 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         b = x[first[c]]
         if fast[c]:   # an exponential: bin by bin only in the signal's span (joint_spans)
             done, part = span_channel(
-                e1[eoff[c]:eoff[c + 1]], e2[eoff[c]:eoff[c + 1] - 1], x[first[c] + 1],
-                theta_ref[c], s, s2, b, fc[r], nc_[0], dc[0], spans[c, r, 0],
-                spans[c, r, 1], pre[:, boff[c] + c:boff[c + 1] + c + 1],
-                tg[b0:b1], tdg[b0:b1], lb, sm[c])
+                e1, e2, eoff[c], x[first[c] + 1], theta_ref[c], s, s2, b, fc[r], nc_[0],
+                dc[0], spans[c, r, 0], spans[c, r, 1], pre, boff[c] + c, tg, tdg, b0, lb,
+                sm[c])
             if done:
                 out = out + part
                 continue

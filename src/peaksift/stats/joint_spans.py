@@ -129,14 +129,18 @@ def row_spans(f, cut, spans):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def span_channel(t, dt, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre, tg,
-                 tdg, lb, sm):  # pragma: no cover - compiled
+def span_channel(e1, e2, eo, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre, po, tg,
+                 tdg, bo, lb, sm):  # pragma: no cover - compiled
     """One exponential channel's NLL and its ten sums (``sm``, as the joint loop's
     ``_value`` leaves them) at one trial point, the span ``[i0, i1)`` bin by bin and the
-    rest in closed form; ``tg``/``tdg`` written in the span only.  Returns ``(done,
-    nll)``: ``done`` False (nothing written) where the closed form does not apply at this
-    point (the caller then evaluates every bin)."""
+    rest in closed form; ``tg``/``tdg`` written in the span only.  The channel's edges
+    ``t``, widths ``dt``, prefix moments and fractions start at offsets ``eo`` (in ``e1``,
+    ``e2``), ``po`` (columns of ``pre``) and ``bo`` (in ``tg``, ``tdg``): whole arrays, not
+    slices, so that the loops vectorise.  Returns ``(done, nll)``: ``done`` False (nothing
+    written) where the closed form does not apply at this point (the caller then evaluates
+    every bin)."""
     nbin = fr_.size
+    t0, tn, dt0 = e1[eo], e1[eo + nbin], e2[eo]   # the first and last edges, the width
     if i1 <= i0 or not b > 0.0 or abs(theta) < 1e-3 or abs(theta - theta_ref) > _MAX_SHIFT:
         return False, 0.0
     # the background's constants as exponential_rows forms them
@@ -148,9 +152,9 @@ def span_channel(t, dt, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre, tg,
     g0 = em * (ib + ib2)
     ghi = ep * (ib - ib2) + g0
     scale = inv_z * ib
-    m1 = math.expm1(theta * dt[0])
-    e_first = math.exp(theta * t[0])
-    e_last = math.exp(theta * t[nbin])
+    m1 = math.expm1(theta * dt0)
+    e_first = math.exp(theta * t0)
+    e_last = math.exp(theta * tn)
     # the smallest bin's fraction (g_i grows or falls with i; t_{n-1} = t_n - dt)
     gmin = min(e_first, e_last / (m1 + 1.0)) * m1 * scale
     if not (gmin > 0.0 and max(abs(s), abs(s2)) * _SPAN_CUT <= _NEGLECT * b * gmin):
@@ -158,38 +162,38 @@ def span_channel(t, dt, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre, tg,
     # the span's edges, fractions and derivatives: exponential_rows' numbers
     ns = i1 - i0
     for j in range(ns + 1):
-        lb[0, j] = vexp(theta * t[i0 + j])
+        lb[0, j] = vexp(theta * e1[eo + i0 + j])
     d_last = math.nan
     mi = 0.0
     d_prev = 0.0
     for j in range(ns + 1):
         e = lb[0, j]
         c = (e - em) * scale
-        db = (e * (t[i0 + j] * ib - ib2) + g0 - c * ghi) * inv_z
+        db = (e * (e1[eo + i0 + j] * ib - ib2) + g0 - c * ghi) * inv_z
         if j > 0:
-            tdg[i0 + j - 1] = db - d_prev
+            tdg[bo + i0 + j - 1] = db - d_prev
         d_prev = db
         if j < ns:
-            if dt[i0 + j] != d_last:
-                d_last = dt[i0 + j]
+            if e2[eo + i0 + j] != d_last:
+                d_last = e2[eo + i0 + j]
                 mi = math.expm1(theta * d_last)
-            tg[i0 + j] = max(0.0, e * mi * scale)
+            tg[bo + i0 + j] = max(0.0, e * mi * scale)
     e_lo = lb[0, 0]
     e_hi = lb[0, ns]
     # the span bin by bin, as the joint loop's _value
     for j in range(ns):
         i = i0 + j
-        nu = s * fr_[i] + b * tg[i]
+        nu = s * fr_[i] + b * tg[bo + i]
         lb[0, j] = nu
         lb[1, j] = vlog(max(1e-300, nu))
-        lb[2, j] = 1.0 / max(s2 * fr_[i] + b * tg[i], 1e-100)
+        lb[2, j] = 1.0 / max(s2 * fr_[i] + b * tg[bo + i], 1e-100)
     acc = 0.0
     bad = False
     a0 = a1 = a2 = c0 = c1 = q0 = q1 = q2 = h0 = h1 = 0.0
     for j in range(ns):
         i = i0 + j
         fi = fr_[i]
-        gi = tg[i]
+        gi = tg[bo + i]
         ni = n[i]
         nu = lb[0, j]
         if not bad:
@@ -199,7 +203,7 @@ def span_channel(t, dt, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre, tg,
                 nu1 = max(nu, 1e-300)
                 acc += nu1 - ni * lb[1, j] if ni != 0.0 else nu1
         w, v, a0, a1, a2, c0, c1 = yield_sums(fi, gi, ni, lb[2, j], a0, a1, a2, c0, c1)
-        dk = tdg[i]
+        dk = tdg[bo + i]
         dv = dk * v
         q0 += fi * dv
         q1 += gi * dv
@@ -207,16 +211,16 @@ def span_channel(t, dt, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre, tg,
         h0 += dk * v * dk
         h1 += d2[i] * w
     # the bins outside the span: their moments below i0 and from i1 on (prefix sums)
-    cnt = pre[0, i0] + (pre[0, nbin] - pre[0, i1])
-    tt = pre[1, i0] + (pre[1, nbin] - pre[1, i1])
-    tt2 = pre[2, i0] + (pre[2, nbin] - pre[2, i1])
-    dd = pre[3, i0] + (pre[3, nbin] - pre[3, i1])
+    cnt = pre[0, po + i0] + (pre[0, po + nbin] - pre[0, po + i1])
+    tt = pre[1, po + i0] + (pre[1, po + nbin] - pre[1, po + i1])
+    tt2 = pre[2, po + i0] + (pre[2, po + nbin] - pre[2, po + i1])
+    dd = pre[3, po + i0] + (pre[3, po + nbin] - pre[3, po + i1])
     # sum g outside the span (it telescopes to the edges' exponentials) and d/d theta
     out_e = (e_lo - e_first) + (e_last - e_hi)
     big = scale * out_e
     dbig = -(ep + em) * scale * scale * out_e + scale * (
-        (t[i0] * e_lo - t[0] * e_first) + (t[nbin] * e_last - t[i1] * e_hi))
-    lam = dt[0] * (m1 + 1.0) / m1 - (ep + em) * scale   # d ln g_i / d theta - t_i
+        (e1[eo + i0] * e_lo - t0 * e_first) + (tn * e_last - e1[eo + i1] * e_hi))
+    lam = dt0 * (m1 + 1.0) / m1 - (ep + em) * scale   # d ln g_i / d theta - t_i
     ib_ = 1.0 / b
     tl = tt + lam * cnt                              # sum n d ln g / d theta outside
     # sum n d2 / g outside: e^{-theta t} = e^{-theta_ref t} e^{-(theta - theta_ref) t}
@@ -224,7 +228,7 @@ def span_channel(t, dt, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre, tg,
     ser = 0.0
     fac = 1.0
     for k in range(_TERMS):
-        ser += fac * (pre[4 + k, i0] + (pre[4 + k, nbin] - pre[4 + k, i1]))
+        ser += fac * (pre[4 + k, po + i0] + (pre[4 + k, po + nbin] - pre[4 + k, po + i1]))
         fac = fac * sh / (k + 1)
     lnb = math.log(b)
     outside = b * big - cnt * lnb - (theta * tt + cnt * math.log(m1 * scale))
