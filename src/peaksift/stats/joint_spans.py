@@ -216,10 +216,14 @@ def span_channel(e1, e2, eo, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre
     tt2 = pre[2, po + i0] + (pre[2, po + nbin] - pre[2, po + i1])
     dd = pre[3, po + i0] + (pre[3, po + nbin] - pre[3, po + i1])
     # sum g outside the span (it telescopes to the edges' exponentials) and d/d theta
-    out_e = (e_lo - e_first) + (e_last - e_hi)
+    # (an empty side adds nothing: e_lo is vexp's, e_first the library's exponential)
+    below = e_lo - e_first if i0 > 0 else 0.0
+    above = e_last - e_hi if i1 < nbin else 0.0
+    out_e = below + above
     big = scale * out_e
     dbig = -(ep + em) * scale * scale * out_e + scale * (
-        (e1[eo + i0] * e_lo - t0 * e_first) + (tn * e_last - e1[eo + i1] * e_hi))
+        (e1[eo + i0] * e_lo - t0 * e_first if i0 > 0 else 0.0)
+        + (tn * e_last - e1[eo + i1] * e_hi if i1 < nbin else 0.0))
     lam = dt0 * (m1 + 1.0) / m1 - (ep + em) * scale   # d ln g_i / d theta - t_i
     ib_ = 1.0 / b
     tl = tt + lam * cnt                              # sum n d ln g / d theta outside
