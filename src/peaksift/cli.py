@@ -286,6 +286,19 @@ def _fit_lines(lines: list[str], fit: dict) -> None:
 
 
 def _cmd_search(args: argparse.Namespace) -> int:
+    # the figure process first, before the search's modules load: it loads matplotlib and
+    # the result modules on the second core meanwhile (the next search adopts it; stopped
+    # below when none did: a config error, no figures, a combination's later channels)
+    from .search.parallel import FigureWorker
+
+    FigureWorker.early()
+    try:
+        return _search_command(args)
+    finally:
+        FigureWorker.discard_early()
+
+
+def _search_command(args: argparse.Namespace) -> int:
     import warnings
 
     from .search import run_search

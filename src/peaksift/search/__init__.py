@@ -39,14 +39,30 @@ Steps and where their numbers come from
 
 from __future__ import annotations
 
-from .demo import DEMO_CONFIG, demo_config_text, write_demo_config, write_demo_template
-from .fit import FIT_FILES, run_fit
-from .result import SearchResult, SpectrumResult
-from .run import run_search
-from .sideband import SidebandFit
-from .spectrum import run_spectrum
+import importlib
+from typing import Any
+
+# loaded on first use: importing this package (or its light `parallel` module, which the
+# command forks the figure process from before anything heavy is loaded) loads none of
+# the statistics, the config or the events' modules
+_EXPORTS = {"DEMO_CONFIG": "demo", "demo_config_text": "demo", "write_demo_config": "demo",
+            "write_demo_template": "demo", "FIT_FILES": "fit", "run_fit": "fit",
+            "SearchResult": "result", "SpectrumResult": "result", "run_search": "run",
+            "SidebandFit": "sideband", "run_spectrum": "spectrum"}
 
 __all__ = ["DEMO_CONFIG", "FIT_FILES", "SearchResult", "SidebandFit", "SpectrumResult",
            "demo_config_text",
            "run_fit", "run_search", "run_spectrum", "write_demo_config",
            "write_demo_template"]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _EXPORTS:
+        value = getattr(importlib.import_module(f"{__name__}.{_EXPORTS[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(__all__) | set(globals()))

@@ -164,8 +164,8 @@ class FigureWorker:
     one and returns figure name -> PNG path.
     """
 
-    def __init__(self, outdir: Path, **kw: Any) -> None:
-        self.outdir, self.kw = Path(outdir), kw
+    def __init__(self, outdir: Path | None, **kw: Any) -> None:
+        self.outdir, self.kw = (Path(outdir) if outdir is not None else None), kw
         self.jobs: list[tuple[tuple[str, ...], Any, dict[str, Any]]] = []
         self._proc: Any = None
         self.cpu = 0.0  # CPU seconds the child used
@@ -177,19 +177,48 @@ class FigureWorker:
         self._queue = ctx.Queue()  # a feeder thread: draw() never waits for the child
         self._conn, child_end = ctx.Pipe(duplex=False)
         self._proc = ctx.Process(target=_figure_child, daemon=True,
-                                 args=(self._queue, child_end, os.getpid(), self.outdir, kw))
+                                 args=(self._queue, child_end, os.getpid(),
+                                       tuple(kw.get("formats") or ())))
         with quiet_fork(), sigterm_held():  # the child unblocks SIGTERM in worker_start
             self._proc.start()
         child_end.close()
 
+    @classmethod
+    def early(cls) -> FigureWorker | None:
+        """Fork the figure process now, before the run's folder and options are known (the
+        command does so first thing: the process loads matplotlib and the result modules
+        while the main line loads its own); the next :meth:`adopt` takes it.  None where
+        stages are not forked."""
+        if not forking() or _EARLY:
+            return None
+        _EARLY.append(cls(None))
+        return _EARLY[0]
+
+    @classmethod
+    def adopt(cls, outdir: Path, **kw: Any) -> FigureWorker:
+        """The worker :meth:`early` forked, now drawing into ``outdir`` with ``kw``; else a
+        new one forked now."""
+        if _EARLY:
+            worker = _EARLY.pop()
+            worker.outdir, worker.kw = Path(outdir), kw
+            return worker
+        return cls(outdir, **kw)
+
+    @classmethod
+    def discard_early(cls) -> None:
+        """Stop the worker :meth:`early` forked if no search adopted it."""
+        while _EARLY:
+            _EARLY.pop().cancel()
+
     def draw(self, names: Sequence[str], result: Any, **extra: Any) -> None:
         """Draw the figures ``names`` of ``result`` (``extra``: more keywords of
         :func:`~peaksift.plotting.search_figures`, e.g. ``calibration``); one job per
-        figure, so that the two drawers share them."""
+        figure, so that the two drawers share them.  ``result`` is pickled: the figure
+        process has the modules of the results it carries, not the search's."""
         for name in names:
             job = ((name,), result, extra)
             if self._proc is not None:
-                self._queue.put((len(self.jobs), *job))
+                self._queue.put((len(self.jobs), *job, self.outdir, self.kw))
             self.jobs.append(job)
 
     def finish(self) -> dict[str, Path]:
@@ -257,27 +286,32 @@ def _warm_up(formats: Sequence[str] = ()) -> None:
 
 
 def _job_modules() -> None:
-    """Import what a figure job needs beyond what the search had loaded when the figure
-    process forked: the modules of the results it carries (unpickling a job imports them:
-    the events' summary, the histogram, the fit, scan and limit results) and the fit
-    figure's.  Done once, before the second drawer forks, instead of by each drawer at its
-    first job (~0.1 s of CPU each)."""
-    from .. import execution, histogram  # noqa: F401  (the collected events, MassHistogram)
+    """Import what a figure job needs: the modules of the results it carries (unpickling a
+    job imports them: the histogram, the fit, scan and limit results; none of them loads
+    the config or the events' modules) and the fit figure's, with the compiled shapes the
+    fit curves use (numba).  Done once, before the second drawer forks, instead of by each
+    drawer at its first job."""
+    from .. import histogram  # noqa: F401
     from ..fitting import figure, result  # noqa: F401
+    from ..likelihood import kernels  # noqa: F401  (numba: a fit's curves use its kernels)
+    from ..shapes import compiled  # noqa: F401
     from ..stats import limit_result, scan_result  # noqa: F401
+
+
+_EARLY: list[FigureWorker] = []  # the worker FigureWorker.early forked, until adopted
 
 
 #: processes drawing a search's figures: the first forks the others once matplotlib is in
 _DRAWERS = 2
 
 
-def _draw_jobs(queue: Any, outdir: Path, kw: dict[str, Any], drawn: dict[str, str],
-               done: set[int], caught: list[tuple[str, type, str, int]]) -> None:
+def _draw_jobs(queue: Any, drawn: dict[str, str], done: set[int],
+               caught: list[tuple[str, type, str, int]]) -> None:
     """Draw jobs from ``queue`` until its end mark; a failed job is left to the parent."""
     from .. import plotting
 
     while (job := queue.get()) is not None:
-        i, names, result, extra = job
+        i, names, result, extra, outdir, kw = job
         try:
             with warnings.catch_warnings(record=True) as seen:
                 warnings.simplefilter("always")
@@ -289,7 +323,7 @@ def _draw_jobs(queue: Any, outdir: Path, kw: dict[str, Any], drawn: dict[str, st
             _log.debug("figures %s failed; drawn again in the parent", names, exc_info=True)
 
 
-def _second_drawer(queue: Any, outdir: Path, kw: dict[str, Any]) -> tuple[int, Any] | None:
+def _second_drawer(queue: Any) -> tuple[int, Any] | None:
     """Fork another drawer from this one (matplotlib loaded and warmed up); returns its
     ``(pid, connection)`` for :func:`_join_drawer`, None when the fork failed."""
     import multiprocessing
@@ -314,7 +348,7 @@ def _second_drawer(queue: Any, outdir: Path, kw: dict[str, Any]) -> tuple[int, A
         _own_fonts()
         if queue.empty():  # its own fonts opened and its parser's first layouts made
             _warm_up()  # while the events are still read, not in its first figure (~0.07 s)
-        _draw_jobs(queue, outdir, kw, drawn, done, caught)
+        _draw_jobs(queue, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the main process draws what was not delivered
         _log.debug("second figure process stopped", exc_info=True)
@@ -342,8 +376,7 @@ def _join_drawer(helper: tuple[int, Any], drawn: dict[str, str], done: set[int],
     return cpu
 
 
-def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
-                  kw: dict[str, Any]) -> None:
+def _figure_child(queue: Any, conn: Any, parent: int, formats: Sequence[str]) -> None:
     code = 1
     drawn: dict[str, str] = {}
     done: set[int] = set()
@@ -356,17 +389,16 @@ def _figure_child(queue: Any, conn: Any, parent: int, outdir: Path,
         # matplotlib's import and the warm-up make ~0.2 million objects and no garbage worth
         # a collection: the collector waits until they are in, then they are frozen (the
         # second drawer inherits them so)
-        paused = pause()
+        pause()  # (already off in a worker forked at the command's start)
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
-        _warm_up(kw.get("formats") or ())
+        _warm_up(formats)  # (an early worker does not know them: PNG only)
         _job_modules()
-        if paused:
-            settle()
+        settle()  # on again in this process of ours, its imports frozen
         for _ in range(_DRAWERS - 1):
-            if (h := _second_drawer(queue, outdir, kw)) is not None:
+            if (h := _second_drawer(queue)) is not None:
                 helpers.append(h)
-        _draw_jobs(queue, outdir, kw, drawn, done, caught)
+        _draw_jobs(queue, drawn, done, caught)
         code = 0
     except BaseException:  # noqa: BLE001 -- the parent draws what was not delivered
         _log.debug("figure process stopped", exc_info=True)

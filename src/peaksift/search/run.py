@@ -7,6 +7,7 @@ import os
 import time
 from collections.abc import Mapping
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
@@ -146,8 +147,8 @@ def _search(cfg: Config, *, unblind: bool, progress: bool, started: str,
     if stage is not None and cfg.output.figures != ("none",):
         from ..plotting import figure_labels  # (no matplotlib: that loads in the drawer)
 
-        drawer = FigureWorker(stage.path / "figures", formats=cfg.output.formats,
-                              log_scale=cfg.output.log_scale, labels=figure_labels(cfg))
+        drawer = FigureWorker.adopt(stage.path / "figures", formats=cfg.output.formats,
+                                    log_scale=cfg.output.log_scale, labels=figure_labels(cfg))
     besides: list[Beside] = []
     try:
         # only our kernels run in a search: numba's third-party extensions (awkward's,
@@ -189,12 +190,20 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
         hist = _blinded_copy(hist, blind_window)
         _require_sidebands(cfg, hist)
 
-    def partial(**kw: Any) -> SearchResult:  # what a figure job needs of the result
+    # what a figure job needs of the result, as plain attributes: unpickled in the figure
+    # process, a SearchResult (with its config and the collected events) would load the
+    # search's, the config's and the events' modules there (numba, awkward, pyarrow)
+    events = SimpleNamespace(pt_histogram=col.pt_histogram,
+                             rapidity_histogram=col.rapidity_histogram,
+                             summary_window=getattr(col, "summary_window", None),
+                             window=col.window)
+
+    def partial(**kw: Any) -> SimpleNamespace:
         base: dict[str, Any] = {
-            "config": cfg, "histogram": hist, "collected": col, "background_fit": None,
-            "fit": None, "scan": None, "best": {}, "limits": None, "known_matches": (),
-            "calibration": None, "provenance": {}, "blinding": blind}
-        return SearchResult(**{**base, **kw})
+            "config": None, "histogram": hist, "collected": events, "background_fit": None,
+            "fit": None, "scan": None, "best": {}, "limits": None, "calibration": None,
+            "blinding": blind, "systematics": None}
+        return SimpleNamespace(**{**base, **kw})
 
     _draw(drawer, cfg, ["candidates"], partial())
     # the calibration needs only the events: fitted first, so that its figure is drawn
