@@ -24,8 +24,7 @@ import numpy as np
 from .._jit import compiled_module
 from ..errors import PeaksiftError
 from ..shapes import Gaussian
-from .cost import BinnedCost
-from .minimize import damped_step, minimize
+from .minimize import damped_step
 from .model import Model
 from .narrow import NARROW_MARGIN, narrow_candidates
 from .poisson import (
@@ -36,6 +35,7 @@ from .poisson import (
     binned_nll,
     use_compiled,
 )
+from .start_background import background_counts, background_start
 from .start_widths import other_widths, scan_width
 
 __all__ = [
@@ -55,67 +55,6 @@ _NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError, PeaksiftError)
 def _clip(x: float, lo: float, hi: float) -> float:
     """``np.clip`` of one number (a NaN stays NaN), without its ~5 us of call overhead."""
     return min(max(x, lo), hi)
-
-
-def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
-                     mask: np.ndarray | None, bstart: np.ndarray, is_fixed: np.ndarray,
-                     lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
-    """Background-only binned fit (on ``mask`` bins; fixed background parameters stay
-    fixed) -> full parameter vector with every signal yield at 0."""
-    v = bstart.copy()
-    for _, _, iy in model.blocks[:-1]:
-        v[iy] = 0.0
-    _, bsl, biy = model.blocks[-1]
-    free = np.array([i for i in [*range(bsl.start, bsl.stop), biy] if not is_fixed[i]], int)
-    if free.size == 0:
-        return v
-    m = mask if mask is not None else np.ones(n.size, bool)
-    if not is_fixed[biy]:
-        v[biy] = max(float(n[m].sum()), 1.0)
-    cost = _background_cost(model, v, free, edges, n, scale, mask)
-    lo, hi = lower[free].copy(), upper[free].copy()
-    mo = minimize(cost, np.minimum(np.maximum(v[free], lo), hi), lo, hi,
-                  [model.parameter_names[i] for i in free], edm_goal=1e-2)
-    out = v.copy()
-    out[free] = mo.x
-    return out
-
-
-#: the background-only cost of recent (model, free parameters, read-only data): one fit
-#: fits the background of the whole window and then of each candidate's sidebands, on
-#: the same data and kernels (the entries hold their inputs, so the ids stay valid)
-_BACKGROUND_COSTS: list = []
-
-
-def _background_cost(model, v, free, edges, n, scale, mask) -> BinnedCost:
-    """``BinnedCost(model, v, free, [], edges, n, scale, mask)``, from a recent one on the
-    same read-only data where there is one (:meth:`.cost.BinnedCost.with_mask`)."""
-    inputs = (model, edges, n, scale)
-    key = tuple(free.tolist())
-    for entry in _BACKGROUND_COSTS:
-        if entry[1] == key and all(a is b for a, b in zip(entry[0], inputs)):
-            return entry[2].with_mask(mask, v)
-    cost = BinnedCost(model, v, free, [], edges, n, scale, mask)
-    if all(isinstance(a, np.ndarray) and not a.flags.writeable for a in inputs[1:]):
-        _BACKGROUND_COSTS.insert(0, (inputs, key, cost))
-        del _BACKGROUND_COSTS[4:]
-    return cost
-
-
-def background_counts(model: Model, edges: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """The background's expected counts in the bins ``edges`` at the full parameter vector
-    ``v``: from its compiled edge kernel where it has one (cached per read-only edges
-    array; ~5x faster than ``bin_fractions`` in numpy, equal within a few ulp), else
-    ``bin_fractions``."""
-    bshape, bsl, biy = model.blocks[-1]
-    p = [float(q) for q in v[bsl]]
-    if use_compiled():
-        kern = compiled_module(KERNELS_MODULE).edge_kernel(bshape, edges, model.window)
-        if kern is not None:
-            out = np.empty((kern.rows, edges.size))
-            if kern(p, out):
-                return np.maximum(out[0, 1:] - out[0, :-1], 0.0) * float(v[biy])
-    return bshape.bin_fractions(edges, p, model.window) * v[biy]
 
 
 def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarray, background: np.ndarray,
