@@ -32,6 +32,15 @@ def _data(seed: int):
     return edges, n, g
 
 
+def _profile_cost(f, g, n):
+    def cost(a, b):
+        mu = a * f + b * g
+        if np.any(mu <= 0):
+            return 1e300
+        return float(np.sum(mu - n * np.log(mu)))
+    return cost
+
+
 @pytest.mark.parametrize("seed", [3, 4])
 def test_profile_widths_against_scipy_and_iminuit(seed):
     edges, n, g = _data(seed)
@@ -50,14 +59,7 @@ def test_profile_widths_against_scipy_and_iminuit(seed):
         np.testing.assert_allclose(rows[j][inside], f[inside], rtol=0, atol=1e-12)
         assert np.all(rows[j][np.abs(c - mass) > BAND * w + 2.0] == 0.0)
 
-        fj = rows[j]
-
-        def cost(a, b, fj=fj):
-            mu = a * fj + b * g
-            if np.any(mu <= 0):
-                return 1e300
-            return float(np.sum(mu - n * np.log(mu)))
-        m = Minuit(cost, a=y0, b=y1)
+        m = Minuit(_profile_cost(rows[j], g, n), a=y0, b=y1)
         m.errordef = 0.5
         m.strategy, m.tol = 2, 1e-7
         m.migrad()
