@@ -5,6 +5,9 @@
   (:func:`peaksift.shapes.compiled.gaussian_width_rows`) and both yields profiled
   (:func:`.kernels.profile_two_yields`).  The same operations in the same order as the
   numpy glue it replaces (~10 numpy calls), so the same numbers.
+* :func:`coarse_scan` -- the coarse likelihood scan of the window for candidate masses
+  (:mod:`.starts`): the Gaussian's rows at every trial mass and both yields profiled;
+  :func:`local_maxima` -- its separated local maxima, best first.
 
 Imported on first use (:func:`peaksift._jit.compiled_module`): importing the likelihood
 loads no numba.  ``tests/test_likelihood_start_kernels.py`` checks it against scipy's
@@ -13,13 +16,15 @@ normal CDF and an iminuit fit written in the test.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import gaussian_width_rows
+from ..shapes.compiled import gaussian_rows, gaussian_width_rows
 from .kernels import profile_two_yields
 
-__all__ = ["profile_widths"]
+__all__ = ["coarse_scan", "local_maxima", "profile_widths"]
 
 
 @njit(cache=True, nogil=True)
@@ -48,3 +53,53 @@ def profile_widths(edges, lo, hi, n, s, g, mass, widths, band, y0, y1, rows, y,
         y[j, 1] = y1
     profile_two_yields(n, s, rows, g, y, nll, 25)
     return True
+
+
+@njit(cache=True, nogil=True)
+def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cover - compiled
+    """The coarse likelihood scan of the window: a Gaussian of width ``sigma`` at every
+    trial mass ``grid[m]`` (:func:`peaksift.shapes.compiled.gaussian_rows` on the
+    window-clipped edges) on the background fractions ``g``, its yield and the background
+    total profiled from ``x (M, 2)`` (:func:`.kernels.profile_two_yields`): yields into
+    ``x``, NLLs into ``nll (M,)``.  False when a row cannot be made."""
+    ne = edges.size
+    e = np.empty(ne)
+    for i in range(ne):
+        e[i] = min(max(edges[i], lo), hi)
+    frac = np.empty((grid.size, ne - 1))
+    if not gaussian_rows(e, grid, sigma, lo, hi, frac):
+        return False
+    profile_two_yields(n, s, frac, g, x, nll, 25)
+    return True
+
+
+@njit(cache=True, nogil=True)
+def local_maxima(signal, nll, nll0, most, sign, index, gain):  # pragma: no cover - compiled
+    """The separated local maxima of the coarse scan's gain ``q = 2 (nll0 - nll)`` (0 where
+    the yield ``signal`` has not the sign ``sign`` or the NLL is not finite): positive, not
+    below either neighbour (the ends compare with their one neighbour), the largest first
+    (ties in index order); up to ``most`` of them into ``index`` and ``gain``, their number
+    returned."""
+    m = nll.size
+    q = np.empty(m)
+    for i in range(m):
+        ok = sign * signal[i] > 0.0 and math.isfinite(nll[i])
+        q[i] = 2.0 * (nll0 - nll[i]) if ok else 0.0
+    peaks = np.empty(m, np.int64)
+    k = 0
+    for i in range(m):
+        left = q[i - 1] if i > 0 else -math.inf
+        right = q[i + 1] if i + 1 < m else -math.inf
+        if q[i] > 0.0 and q[i] >= left and q[i] >= right:
+            # insertion into the list ordered by decreasing q, after its equals (stable)
+            j = k
+            while j > 0 and q[peaks[j - 1]] < q[i]:
+                peaks[j] = peaks[j - 1]
+                j -= 1
+            peaks[j] = i
+            k += 1
+    k = min(k, most)
+    for j in range(k):
+        index[j] = peaks[j]
+        gain[j] = q[peaks[j]]
+    return k
