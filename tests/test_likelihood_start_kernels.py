@@ -1,5 +1,5 @@
-"""The compiled width profile of :mod:`peaksift.likelihood.start_kernels` against outside
-references.
+"""The compiled steps of the start finding (:mod:`peaksift.likelihood.start_kernels`: width
+profile, coarse scan, local maxima, narrow rows) against outside references.
 
 Sources: the bin fractions of a normal distribution truncated to the window, from
 ``scipy.stats.norm.cdf`` (to 1e-12 absolute inside each width's band of 7 widths, exactly
@@ -16,7 +16,12 @@ import pytest
 from iminuit import Minuit
 from scipy import stats
 
-from peaksift.likelihood.start_kernels import coarse_scan, local_maxima, profile_widths
+from peaksift.likelihood.start_kernels import (
+    coarse_scan,
+    local_maxima,
+    narrow_rows,
+    profile_widths,
+)
 
 LO, HI = 100.0, 300.0
 BAND = 7.0
@@ -123,3 +128,34 @@ def test_local_maxima_against_their_definition(seed, sign):
     k = local_maxima(signal, nll, nll0, 3, sign, index, gain)
     assert index[:k].tolist() == expected
     assert gain[:k].tolist() == [q[i] for i in expected]
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_narrow_rows_against_poisson_deviances(seed):
+    """Bins whose 7-bin neighbourhood holds a Poisson deviance 2 s (b - n + n ln(n/b))
+    (Baker and Cousins 1984, eq. 11 per bin; ``scipy.special.xlogy`` for n ln n/b) above a
+    threshold, outside the excluded mass intervals: the rule written out here."""
+    from scipy.special import xlogy
+
+    rng = np.random.default_rng(seed)
+    nb, k = 300, 3
+    e = np.linspace(0.0, 300.0, nb + 1)
+    b = rng.uniform(0.2, 20.0, nb)
+    n = rng.poisson(b).astype(float)
+    n[rng.integers(0, nb, 5)] += 25.0  # a few spikes
+    s = rng.uniform(0.5, 1.5, nb)
+    dev = 2.0 * s * (b - n + xlogy(n, n / b))
+    least = float(np.quantile(dev, 0.9))
+    exclude = np.array([[40.0, 60.0], [200.5, 230.0]])
+    expected = [j for j in range(nb)
+                if 0 < dev[max(j - k, 0):j + k + 1].sum()
+                and dev[max(j - k, 0):j + k + 1].sum() >= least * (1 + 1e-12)
+                and all(e[j + 1] <= lo or e[j] >= hi for lo, hi in exclude)]
+    rows = np.empty(nb, np.int64)
+    m = narrow_rows(e, n, b, s, k, least, exclude, rows)
+    got = rows[:m].tolist()
+    # equal but for a bin whose sum lies within rounding (1e-12) of the threshold
+    near = {j for j in range(nb) if abs(dev[max(j - k, 0):j + k + 1].sum() - least)
+            <= 1e-12 * least}
+    assert set(got) - near == set(expected) - near
+    assert got == sorted(got)

@@ -21,12 +21,12 @@ from .minimize import damped_step
 from .poisson import (
     KERNELS_MODULE,
     SHAPE_ROWS_MODULE,
+    START_KERNELS_MODULE,
     binned_gradient,
     binned_information,
     binned_nll,
     use_compiled,
 )
-from .start_widths import START_KERNELS_MODULE
 
 __all__ = ["coarse_gains", "peak_candidates"]
 

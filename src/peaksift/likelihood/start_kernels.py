@@ -8,6 +8,8 @@
 * :func:`coarse_scan` -- the coarse likelihood scan of the window for candidate masses
   (:mod:`.starts`): the Gaussian's rows at every trial mass and both yields profiled;
   :func:`local_maxima` -- its separated local maxima, best first.
+* :func:`narrow_rows` -- the bins where a peak narrower than a bin could gain enough to be
+  a start (:func:`.narrow.narrow_candidates`'s bound from the bins' Poisson deviances).
 
 Imported on first use (:func:`peaksift._jit.compiled_module`): importing the likelihood
 loads no numba.  ``tests/test_likelihood_start_kernels.py`` checks it against scipy's
@@ -24,7 +26,7 @@ from numba import njit
 from ..shapes.compiled import gaussian_rows, gaussian_width_rows
 from .kernels import profile_two_yields
 
-__all__ = ["coarse_scan", "local_maxima", "profile_widths"]
+__all__ = ["coarse_scan", "local_maxima", "narrow_rows", "profile_widths"]
 
 
 @njit(cache=True, nogil=True)
@@ -103,3 +105,35 @@ def local_maxima(signal, nll, nll0, most, sign, index, gain):  # pragma: no cove
         index[j] = peaks[j]
         gain[j] = q[peaks[j]]
     return k
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def narrow_rows(e, n, b, s, k, least, exclude, rows):  # pragma: no cover - compiled
+    """The bins ``j`` whose ``2k + 1`` bins around them (bins beyond the ends count 0) hold
+    a Poisson deviance ``2 s (b - n + n ln(n / b))`` (0 where not finite) above 0 and at
+    least ``least``, and which lie outside every ``exclude[i] = (lo, hi)`` mass interval:
+    into ``rows``, their number returned."""
+    nb = n.size
+    cdev = np.zeros(nb + 2 * k + 1)
+    acc = 0.0
+    for j in range(nb):  # the running sum in bin order, as numpy's cumsum
+        t = n[j] * math.log(n[j] / b[j]) if n[j] > 0.0 else 0.0
+        d = 2.0 * s[j] * (b[j] - n[j] + t)
+        acc += d if math.isfinite(d) else 0.0
+        cdev[k + 1 + j] = acc
+    for i in range(nb + k + 1, nb + 2 * k + 1):
+        cdev[i] = acc
+    m = 0
+    for j in range(nb):
+        bound = cdev[j + 2 * k + 1] - cdev[j]
+        if not (bound > 0.0 and bound >= least):
+            continue
+        outside = True
+        for i in range(exclude.shape[0]):
+            if not (e[j + 1] <= exclude[i, 0] or e[j] >= exclude[i, 1]):
+                outside = False
+                break
+        if outside:
+            rows[m] = j
+            m += 1
+    return m

@@ -25,10 +25,7 @@ import numpy as np
 
 from .._jit import compiled_module
 from ..shapes import Gaussian
-from .poisson import use_compiled
-
-#: the compiled steps of the start finding, imported at their first use
-START_KERNELS_MODULE = "peaksift.likelihood.start_kernels"
+from .poisson import START_KERNELS_MODULE, use_compiled
 
 __all__ = ["OTHER_FACTORS", "WIDTH_FACTORS", "other_widths", "scan_width"]
 
