@@ -2,14 +2,15 @@
 
 * :func:`background_start` -- a background-only binned fit (of the whole window, or of the
   sidebands of a candidate peak given a bin mask) -> the full parameter vector with every
-  signal yield at 0.  Where the background has a compiled edge kernel it runs
+  signal yield at 0.  Where every component has a compiled edge kernel it runs
   :mod:`.driver`'s compiled Fisher scoring on arrays made here directly
   (:class:`_BackgroundFit`): the same loop on the same numbers as through a
   :class:`~.cost.BinnedCost` and :func:`.minimize.minimize` (a background-only cost's signal
   rows are zero and skipped there), without building a cost, its kernels' layout and a
   :class:`~.minimum.Minimum` around it -- ~0.2 ms of Python per fit of 100 bins, against
   ~0.03 ms of arithmetic.  Whenever that loop does not converge to a positive-definite
-  minimum (or the compiled path is off) the general path answers, as before.
+  minimum (or the compiled path is off) the general path answers, as before (running the
+  same loop again first: rare, and the result is then exactly the general path's).
 * :func:`background_counts` -- the background's expected counts in given bins.
 """
 
