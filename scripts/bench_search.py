@@ -15,9 +15,10 @@ significance), systematics, fit (the fits and the calibration), limits (the wait
 limits beside), figures (the wait for the last figure), report; then the main process's CPU
 seconds by stage (least and median over the runs; "start-up" is everything before the first
 stage: imports, config, input checks, the figure process's fork), where the tree's log
-gives them. "imports" is ``import peaksift.search`` alone, timed in its own process (what
-the command imports before the config is read); "other" is the rest of the wall time
-outside the stages (config, input checks, process exit).
+gives them. "imports" is ``from peaksift.search import run_search`` alone, timed in its own
+process (what the command imports before the config is read; ``peaksift.search`` alone
+loads its submodules on first use); "other" is the rest of the wall time outside the stages
+(config, input checks, process exit).
 
 ``--baseline SRC`` also runs another source tree (e.g. a ``git archive`` of main unpacked
 into /tmp) in alternate rounds, so the two are compared at the same load; ``--inline``
@@ -157,8 +158,8 @@ def main() -> None:
             for v, name in keys:
                 src, extra = trees[name]
                 env = {**os.environ, "PYTHONPATH": src, **extra}
-                imports[name].append(_run([sys.executable, "-c", "import peaksift.search"],
-                                          env)[0])
+                imports[name].append(_run([sys.executable, "-c",
+                                           "from peaksift.search import run_search"], env)[0])
                 out = tmp / f"out{r}_{len(runs[v, name])}_{abs(hash((v, name)))}"
                 wall, cpu, stages = _run([sys.executable, "-m", "peaksift", "search",
                                           str(configs[v]), "-v", "--out", str(out)], env)
