@@ -188,8 +188,10 @@ class FigureWorker:
         """Fork the figure process now, before the run's folder and options are known (the
         command does so first thing: the process loads matplotlib and the result modules
         while the main line loads its own); the next :meth:`adopt` takes it.  None where
-        stages are not forked."""
-        if not forking() or _EARLY:
+        stages are not forked, and on a busy machine: the early process imports again much
+        of what the main line imports, which costs nothing only while a core would idle
+        (on a loaded machine the search forks it after its own imports, as it used to)."""
+        if not forking() or _EARLY or os.getloadavg()[0] > (os.cpu_count() or 1):
             return None
         _EARLY.append(cls(None))
         return _EARLY[0]
