@@ -63,6 +63,8 @@ class _Cost:
         # constraints on free parameters, by row of the free vector
         self._cons = [(row[int(i)], c) for i, c in constraints if int(i) in row]
         self._last: tuple[bytes, float, np.ndarray] | None = None
+        # the last value-only evaluation: (key, value, expectation or None)
+        self._last_value: tuple[bytes, float, Any] | None = None
         self.ncall = 0
 
     def _free_bounds(self, lower: Any, upper: Any) -> tuple[np.ndarray, np.ndarray]:
@@ -109,13 +111,32 @@ class _Cost:
         if self._last is not None and self._last[0] == key:
             return self._last[1], self._last[2]
         val, g, _ = self.value_grad_info(np.asarray(x, dtype=float), info=False)
+        if self._last_value is not None and self._last_value[0] == key:
+            self.ncall -= 1  # the point's value was counted already: one call a point
         if not np.isfinite(val) or not np.all(np.isfinite(g)):
             val, g = 1e300, np.zeros_like(g)
         self._last = (key, val, g)
         return val, g
 
+    def value_only(self, x: np.ndarray) -> tuple[float, Any] | None:
+        """``(NLL, expectation or None)`` at ``x`` without the gradient, the same value
+        :meth:`value_grad_info` gives; None where this cost has no cheaper way."""
+        return None
+
     def __call__(self, *x: float) -> float:
-        return self._eval(x)[0]
+        # MIGRAD asks for the value alone at most points (its line searches; ~94% of its
+        # calls in slow Crystal Ball fits): the gradient only where it asks for it
+        key = np.asarray(x, dtype=float).tobytes()
+        if self._last is not None and self._last[0] == key:
+            return self._last[1]
+        if self._last_value is not None and self._last_value[0] == key:
+            return self._last_value[1]
+        out = self.value_only(np.asarray(x, dtype=float))
+        if out is None:
+            return self._eval(x)[0]
+        val = out[0] if np.isfinite(out[0]) else 1e300
+        self._last_value = (key, val, out[1])
+        return val
 
     def grad(self, *x: float) -> np.ndarray:
         return self._eval(x)[1]
@@ -232,7 +253,7 @@ class BinnedCost(_Cost):
         one fit differ only there."""
         c = copy.copy(self)
         c.full = np.asarray(full, float).copy()
-        c._last, c._state, c._problem, c.ncall = None, None, None, 0
+        c._last, c._last_value, c._state, c._problem, c.ncall = None, None, None, None, 0
         c._fused = None if self._fused is None else self._fused.fresh()
         c._jac = None if self._jac is None else np.zeros_like(self._jac)
         return c
@@ -243,7 +264,8 @@ class BinnedCost(_Cost):
         its kernels, layout and compiled arrays again."""
         c = copy.copy(self)
         c.full = np.asarray(full, float).copy()
-        c._last, c._state, c._problem, c._empty, c.ncall = None, None, None, None, 0
+        c._last, c._last_value, c._state, c._problem, c._empty = None, None, None, None, None
+        c.ncall = 0
         (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(*self._data, mask)
         c._fused = (None if self._fused is None else
                     self._fused.on_bins(c.mask, c.n, c.s, c.unit_scale))
@@ -301,11 +323,53 @@ class BinnedCost(_Cost):
         return info, mu, jac.copy()
 
     def expected_at(self, x: np.ndarray) -> np.ndarray | None:
-        """The expectation of the last evaluation if it was at ``x`` (else None)."""
+        """The expectation of the last evaluation (or value-only one) if it was at ``x``
+        (else None)."""
+        key = np.asarray(x, float).tobytes()
         st = self._state
-        if st is not None and st[0] == np.asarray(x, float).tobytes():
+        if st is not None and st[0] == key:
             return np.asarray(st[1])
+        lv = self._last_value
+        if lv is not None and lv[0] == key and lv[2] is not None:
+            return np.asarray(lv[2])
         return None
+
+    def value_only(self, x: np.ndarray) -> tuple[float, Any] | None:
+        """:meth:`value_grad_info`'s value without the gradient, from the same fractions
+        (:meth:`peaksift.shapes.Shape.fit_fractions`) summed in the same order: the same
+        bits, so MIGRAD's path is the same.  None on the compiled path (its one pass gives
+        the gradient almost for free)."""
+        if self._fused is not None:
+            return None
+        self.ncall += 1
+        x = np.asarray(x, float)
+        v = self.expand(x)
+        mu = None
+        window = self.model.window
+        for shape, sl, iy, need, rows, ry in self._plan:
+            y = float(v[iy])
+            if ry < 0 and y == 0.0:  # as in expectation()
+                continue
+            p = [float(q) for q in v[sl]]
+            f = (shape.fit_fractions(self.edges, p, window) if need
+                 else shape.bin_fractions(self.edges, p, window))
+            if self.mask is not None:
+                f = f[self.mask]
+            mu = y * f if mu is None else mu + y * f
+        if mu is None:
+            mu = np.zeros(self.n.size)
+        if mu.min(initial=0.0) < 0.0:
+            return math.inf, mu
+        expected = mu
+        mu = np.maximum(mu, MU_FLOOR)
+        n, s = self.n, self.s
+        if self.unit_scale:
+            val = float(mu.sum() - n @ np.log(mu)) + self._const
+        else:
+            val = float(s @ mu - n @ np.log(mu)) + self._const
+        for k, c in self._cons:  # as _add_constraints adds them
+            val += float(c.nll(x[k]))
+        return val, expected
 
     def _grad_all_bins(self, shape, q, need):
         """Derivatives of ``shape``'s fractions in the used bins at parameters ``q``."""

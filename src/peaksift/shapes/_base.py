@@ -308,6 +308,16 @@ class Shape:
         frac = np.maximum(np.diff(c, axis=-1), 0.0)  # as in bin_fractions
         return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
 
+    def fit_fractions(self, edges: Any, params: Sequence[Any],
+                      window: tuple[float, float]) -> np.ndarray:
+        """The bin fractions :meth:`fractions_and_grad` gives (the same numbers), for a
+        caller that needs no derivatives: a binned fit's value-only evaluations (MIGRAD's
+        line searches, :meth:`peaksift.likelihood.BinnedCost.value_only`).  By default
+        that method itself, derivatives by finite differences skipped; a shape whose
+        analytic derivatives cost extra work overrides it."""
+        return self.fractions_and_grad(edges, params, window,
+                                       [False] * len(self.parameters))[0]
+
     def pdf_and_grad(self, x: np.ndarray, params: Sequence[float],
                      window: tuple[float, float],
                      need: Sequence[bool] | None = None) -> tuple[np.ndarray, np.ndarray]:
