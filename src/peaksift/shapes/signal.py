@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from ._base import Parameter, Shape, as_window
+from ._base import Parameter, Shape, _scalar, as_window
 
 __all__ = ["BreitWigner", "CrystalBall", "Gaussian", "Voigt"]
 
@@ -363,7 +363,7 @@ class CrystalBall(_Signal):
         # one parameter set (the free fit's hot path): the compiled primitive, ~15x faster
         # than the numpy path it follows, which stays for stacked parameters
         p = self._params(params, len(self.parameters), self.name)
-        if any(np.ndim(v) for v in p) or np.ndim(edges) != 1:
+        if not all(_scalar(v) for v in p) or np.ndim(edges) != 1:
             return super().fractions_and_grad(edges, params, window, need)
         ends, rows, inv, c = self._primitive_rows(edges, p, window)
         grad = np.diff((rows[1:] - ends[1:, :1]) * inv
@@ -373,13 +373,13 @@ class CrystalBall(_Signal):
     def fit_fractions(self, edges, params, window):
         # the fractions of fractions_and_grad, without its six rows of derivatives
         p = self._params(params, len(self.parameters), self.name)
-        if any(np.ndim(v) for v in p) or np.ndim(edges) != 1:
+        if not all(_scalar(v) for v in p) or np.ndim(edges) != 1:
             return super().fit_fractions(edges, params, window)
         return np.maximum(np.diff(self._primitive_rows(edges, p, window)[3]), 0.0)
 
     def pdf_and_grad(self, x, params, window, need=None):
         p = self._params(params, len(self.parameters), self.name)
-        if any(np.ndim(v) for v in p) or np.ndim(x) != 1:
+        if not all(_scalar(v) for v in p) or np.ndim(x) != 1:
             return super().pdf_and_grad(x, params, window, need)
         lo, hi = as_window(window)
         ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
@@ -509,7 +509,7 @@ class Voigt(_Signal):
         # one Faddeeva evaluation for the density and its derivatives (the generic path
         # evaluates the profile twice and the Faddeeva function once)
         p = self._params(params, len(self.parameters), self.name)
-        if any(np.ndim(v) for v in p) or np.ndim(x) != 1:
+        if not all(_scalar(v) for v in p) or np.ndim(x) != 1:
             return super().pdf_and_grad(x, params, window, need)
         w = as_window(window)
         ends = np.array(w)
