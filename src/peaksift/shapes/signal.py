@@ -354,8 +354,9 @@ class CrystalBall(_Signal):
         window's ends and at ``edges``, and the normalised CDF at ``edges``."""
         lo, hi = as_window(window)
         ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
-        rows = self._compiled_rows("crystalball_primitive",
-                                   np.clip(np.asarray(edges, float), lo, hi), p)
+        # np.clip's numbers without its wrapper (~15 us, a value-only call's sixth)
+        x = np.minimum(np.maximum(np.asarray(edges, float), lo), hi)
+        rows = self._compiled_rows("crystalball_primitive", x, p)
         inv = 1.0 / (ends[0, 1] - ends[0, 0])
         return ends, rows, inv, (rows[0] - ends[0, 0]) * inv
 
