@@ -106,8 +106,9 @@ class _Cost:
         for k, c in self._cons:
             hess[k, k] += float(c.hessian(x[k]))
 
-    def _eval(self, x: Sequence[float]) -> tuple[float, np.ndarray]:
-        key = np.asarray(x, dtype=float).tobytes()
+    def _eval(self, x: Sequence[float], key: bytes | None = None) -> tuple[float, np.ndarray]:
+        if key is None:
+            key = np.asarray(x, dtype=float).tobytes()
         if self._last is not None and self._last[0] == key:
             return self._last[1], self._last[2]
         val, g, _ = self.value_grad_info(np.asarray(x, dtype=float), info=False)
@@ -133,7 +134,7 @@ class _Cost:
             return self._last_value[1]
         out = self.value_only(np.asarray(x, dtype=float))
         if out is None:
-            return self._eval(x)[0]
+            return self._eval(x, key)[0]
         val = out[0] if np.isfinite(out[0]) else 1e300
         self._last_value = (key, val, out[1])
         return val
