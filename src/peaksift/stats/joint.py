@@ -291,7 +291,12 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
             xr = np.concatenate(([] if fixed else [mu[redo, None]]) + [nu[redo], kap[redo]]
                                 + [a for c in range(nc) for a in (b[c][redo, None],
                                                                   theta[c][redo])], axis=1)
-            h[redo] = grad_hess(xr, tuple(a[redo] for a in r.state), redo)[1]
+            if r.state is None:   # the compiled loop keeps none: the backgrounds here
+                both = [_bkg_both(m, th[redo]) for m, th in zip(models, theta)]
+                st = tuple(v[0] for v in both) + tuple(v[1] for v in both)
+            else:
+                st = tuple(a[redo] for a in r.state)
+            h[redo] = grad_hess(xr, st, redo)[1]
         # the compiled loop inverts each row's Hessian as it ends (joint_driver)
         done = getattr(r, "first_error", None)
         if done is None:

@@ -19,8 +19,9 @@ arrays:
   steps are solved by :func:`peaksift.likelihood.kernels.solve_small`, as every compiled
   fit's;
 * :func:`quadratic_rows` -- each hypothesis's profiled curvature in the signal yield and
-  the slope of the nuisances along it, from a channel's Hessians
-  (:mod:`peaksift.stats.joint_start`).
+  the slope of the nuisances along it, from a channel's Hessians (with the checks of its
+  fit's usability: :func:`channel_quadratic`), and :func:`moved_starts` -- the nuisances moved along that slope to the joint start
+  (:mod:`peaksift.stats.joint_start`: two calls per channel instead of ~30 numpy calls).
 """
 
 from __future__ import annotations
@@ -33,7 +34,7 @@ from numba import njit
 from ..likelihood.kernels import solve_small
 from ..shapes.compiled import exponential_rows, powerlaw_rows
 
-__all__ = ["channel_nll", "channel_sums", "model_change", "quadratic_rows",
+__all__ = ["channel_nll", "channel_quadratic", "channel_sums", "model_change", "moved_starts", "quadratic_rows",
            "row_background", "small_step", "sums", "yield_sums"]
 
 
@@ -223,3 +224,50 @@ def quadratic_rows(h, w, slope, ok):  # pragma: no cover - compiled
             w[r] = 0.0
             for i in range(q):
                 slope[r, i] = 0.0
+
+
+@njit(cache=True, nogil=True)
+def moved_starts(eta, slope, ds, ok, lower, upper, bkg_yield, theta0, b_out,
+                 th_out):  # pragma: no cover - compiled
+    """Per row of ``eta (B, 1 + K)`` (a channel's fitted background yield and shape) moved
+    by ``slope * ds`` to ``b_out (B,)`` and ``th_out (B, K)`` (the shape clipped to
+    ``[lower, upper]``), where ``ok`` and the moved values are finite with a positive
+    yield; elsewhere the background-only fit ``bkg_yield``, ``theta0``.  The numbers of
+    ``eta + slope * ds[:, None]`` and ``np.clip``."""
+    rows, p = eta.shape
+    for r in range(rows):
+        good = ok[r]
+        y = eta[r, 0] + slope[r, 0] * ds[r]
+        good = good and math.isfinite(y) and y > 0.0
+        for j in range(1, p):
+            v = eta[r, j] + slope[r, j] * ds[r]
+            good = good and math.isfinite(v)
+            th_out[r, j - 1] = min(max(v, lower[j - 1]), upper[j - 1])
+        if good:
+            b_out[r] = y
+        else:
+            b_out[r] = bkg_yield
+            for j in range(1, p):
+                th_out[r, j - 1] = theta0[j - 1]
+
+
+@njit(cache=True, nogil=True)
+def channel_quadratic(s, eta, h, k, w, slope, ok, sh):  # pragma: no cover - compiled
+    """:func:`quadratic_rows` of one channel's fits (``s (B,)``, ``eta (B, 1 + K)``, ``h
+    (B, 2 + K, 2 + K)``) on the rows where all of them are finite and ``k > 0``, into
+    ``w``, ``slope`` and ``ok``; ``w`` 0 and ``sh`` (the fitted yield) 0 elsewhere."""
+    rows = s.size
+    for r in range(rows):
+        good = math.isfinite(s[r])
+        for j in range(eta.shape[1]):
+            good = good and math.isfinite(eta[r, j])
+        for i in range(h.shape[1]):
+            for j in range(h.shape[2]):
+                good = good and math.isfinite(h[r, i, j])
+        ok[r] = good
+    quadratic_rows(h, w, slope, ok)
+    for r in range(rows):
+        ok[r] = ok[r] and k[r] > 0.0
+        if not ok[r]:
+            w[r] = 0.0
+        sh[r] = s[r] if ok[r] else 0.0

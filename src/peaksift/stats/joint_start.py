@@ -27,7 +27,7 @@ from typing import Any
 
 import numpy as np
 
-from .joint_kernels import quadratic_rows
+from .joint_kernels import channel_quadratic, moved_starts
 
 __all__ = ["joint_start"]
 
@@ -74,11 +74,12 @@ def joint_start(models: Sequence[Any], fits: Sequence[dict], conv: Sequence[np.n
         b_start, th_start = [], []
         for c, (m, p) in enumerate(zip(models, parts)):
             ds = mu * k[c] * scale[c] - sh[c]
-            eta = p[2] + p[3] * ds[:, None]          # (b, theta) moved along with s
-            ok = p[4] & np.all(np.isfinite(eta), axis=1) & (eta[:, 0] > 0)
-            th = np.clip(eta[:, 1:], m.lower, m.upper)
-            b_start.append(np.where(ok, eta[:, 0], m.bkg_yield))
-            th_start.append(np.where(ok[:, None], th, m.theta[None, :]))
+            # (b, theta) moved along with s; the background-only fit where unusable
+            b_start.append(np.empty(nb))
+            th_start.append(np.empty((nb, m.theta.size)))
+            moved_starts(p[2], p[3], ds, p[4], np.asarray(m.lower, float),
+                         np.asarray(m.upper, float), float(m.bkg_yield),
+                         np.asarray(m.theta, float), b_start[-1], th_start[-1])
     return {"mu_start": mu, "nu_start": nu, "b_start": b_start, "theta_start": th_start}
 
 
@@ -86,21 +87,18 @@ def _channel_quadratic(model: Any, fit: dict, k: np.ndarray) -> tuple:
     """``(w, s_hat, eta_hat, slope, ok)`` of one channel: the inverse profiled variance of
     its yield (0 where unusable), its fitted yield, its fitted ``(b, theta)``, their slope
     ``-H_ee^-1 H_es`` along the yield, and where all of that is usable."""
-    s = np.asarray(fit["s"], float)
+    s = np.ascontiguousarray(fit["s"], float)
     eta = np.concatenate([np.asarray(fit["b"], float)[:, None],
                           np.asarray(fit["theta"], float).reshape(s.size, -1)], axis=1)
     h = np.ascontiguousarray(fit["hessian"], float)
     nb = s.size
-    w = np.zeros(nb)
+    w, sh = np.zeros(nb), np.empty(nb)
     slope = np.zeros((nb, h.shape[1] - 1))
-    ok = np.isfinite(s) & np.all(np.isfinite(eta), axis=1) & np.all(np.isfinite(h),
-                                                                      axis=(1, 2))
+    ok = np.empty(nb, np.bool_)
     # per row: the slope -H_ee^-1 H_es and the profiled curvature in s,
-    # H_ss - H_se H_ee^-1 H_es (Schur complement); ok cleared where unusable
-    quadratic_rows(h, w, slope, ok)
-    ok &= k > 0
-    w = np.where(ok, w, 0.0)
-    return w, np.where(ok, s, 0.0), eta, slope, ok
+    # H_ss - H_se H_ee^-1 H_es (Schur complement), where the fit is usable
+    channel_quadratic(s, eta, h, np.ascontiguousarray(k, float), w, slope, ok, sh)
+    return w, sh, eta, slope, ok
 
 
 def _with_norms(mu: np.ndarray, w: list, sh: list, k: list, a: np.ndarray) -> tuple:
