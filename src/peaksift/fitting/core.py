@@ -227,7 +227,8 @@ def fit(
                "parameters (widen the window or fix parameters)")
         best = (math.inf, None, cost, [why], s0[free_idx], cost(*s0[free_idx]), None, False)
         starts = iter(())
-    near = None  # (full vector, free x, nll, observed Hessian) of the best minimum so far
+    # [full vector, free x, nll, covariance, observed Hessian or None] of the best minimum
+    near = None
     superseded = None  # NLL of the first valid minimum a later start went below
     for essential, make_start in starts:
         if not essential and best is not None and not best[3]:
@@ -239,7 +240,7 @@ def fit(
         try:
             # beat: a later start that stalls above the best minimum so far cannot win
             mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names,
-                          stop=None if near is None else _joins(*near[1:]),
+                          stop=None if near is None else _joins(near),
                           beat=None if best is None else best[0])
             if mo.joined:  # on its way into the best minimum: nothing new to learn
                 tried.append(float(mo.fval))
@@ -270,7 +271,7 @@ def fit(
             if posdef and math.isfinite(f):
                 full = s0.copy()
                 full[free_idx] = x
-                near = (full, np.asarray(x, float), float(f), np.linalg.inv(cov))
+                near = [full, np.asarray(x, float), float(f), cov, None]
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:
         free_cov = np.full((nfree, nfree), np.nan)
@@ -297,8 +298,10 @@ JOIN_DISTANCE = 0.02
 JOIN_NLL = 0.05
 
 
-def _joins(xb: np.ndarray, fb: float, hess: np.ndarray) -> NearMinimum:
-    return NearMinimum(xb, fb, hess, JOIN_NLL, JOIN_DISTANCE)
+def _joins(near: list) -> NearMinimum:
+    if near[4] is None:  # the Hessian when a later start needs it (most fits minimise none)
+        near[4] = np.linalg.inv(near[3])
+    return NearMinimum(near[1], near[2], near[4], JOIN_NLL, JOIN_DISTANCE)
 
 
 def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):

@@ -63,6 +63,7 @@ def use_compiled() -> bool:
 KERNELS_MODULE = "peaksift.likelihood.kernels"
 DRIVER_MODULE = "peaksift.likelihood.driver"
 SHAPE_ROWS_MODULE = "peaksift.shapes.compiled"
+START_KERNELS_MODULE = "peaksift.likelihood.start_kernels"
 
 #: expectations are floored here before a logarithm: an empty prediction in a filled bin
 #: costs ~700 per event instead of an infinity that stops every minimiser

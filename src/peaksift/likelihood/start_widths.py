@@ -25,7 +25,7 @@ import numpy as np
 
 from .._jit import compiled_module
 from ..shapes import Gaussian
-from .poisson import KERNELS_MODULE, SHAPE_ROWS_MODULE, use_compiled
+from .poisson import START_KERNELS_MODULE, use_compiled
 
 __all__ = ["OTHER_FACTORS", "WIDTH_FACTORS", "other_widths", "scan_width"]
 
@@ -39,6 +39,7 @@ WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
 #: its width on top of it; blind starts at 0.4, 1.5 and 2.5 times the width reached it
 #: only by the path a start at 0.4 happened to take)
 OTHER_FACTORS = 2.0 ** (np.arange(-6, 7) / 2)
+_OTHER_FACTORS = OTHER_FACTORS.tolist()
 
 
 #: each signal row of :func:`_profiled` is computed on the edges within this many of its
@@ -50,30 +51,23 @@ def _profiled(edges, n, scale, bexp, mass, widths, window, y0):
     """``(yields (K, 2), NLL (K,), background total)`` of a Gaussian at ``mass`` of each
     width on the background expectation ``bexp``, signal yield and background
     normalisation profiled from ``y0`` (signal yield, background total or None); None where
-    the rows cannot be made."""
-    gaussian_width_rows = compiled_module(SHAPE_ROWS_MODULE).gaussian_width_rows
-    profile_two_yields = compiled_module(KERNELS_MODULE).profile_two_yields
+    the rows cannot be made.  (Each row on its own band of edges, in one compiled call:
+    :func:`.start_kernels.profile_widths`.)"""
     b0 = np.maximum(bexp, 1e-12)
     btot = float(b0.sum())
     k = widths.size
     if not k or not btot > 0:
         return None
-    lo, hi = float(window[0]), float(window[1])
-    x = np.minimum(np.maximum(edges, lo), hi)  # np.clip
-    reach = _BAND_SIGMAS * widths
-    i0 = np.maximum(np.searchsorted(x, mass - reach) - 1, 0)
-    i1 = np.minimum(np.searchsorted(x, mass + reach) + 1, x.size - 1)
-    rows = np.empty((k, x.size - 1))
-    # each row on its own band of edges, in one compiled call
-    if not gaussian_width_rows(x, float(mass), np.ascontiguousarray(widths, float),
-                               i0.astype(np.int64), i1.astype(np.int64), lo, hi, rows):
-        return None
+    rows = np.empty((k, edges.size - 1))
     y = np.empty((k, 2))
-    y[:, 0] = y0[0]
-    y[:, 1] = btot if y0[1] is None else y0[1]
     nll = np.empty(k)
     sc = np.ones(b0.size) if scale is None else np.ascontiguousarray(scale, float)
-    profile_two_yields(np.ascontiguousarray(n, float), sc, rows, b0 / btot, y, nll, 25)
+    if not compiled_module(START_KERNELS_MODULE).profile_widths(
+            np.ascontiguousarray(edges, float), float(window[0]), float(window[1]),
+            np.ascontiguousarray(n, float), sc, b0 / btot, float(mass),
+            np.ascontiguousarray(widths, float), _BAND_SIGMAS, float(y0[0]),
+            btot if y0[1] is None else float(y0[1]), rows, y, nll):
+        return None
     return y, nll, btot
 
 
@@ -93,9 +87,11 @@ def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, si
     if out is None:
         return None
     y, nll, _ = out
-    nll[~((sign * y[:, 0] > 0) & np.isfinite(nll))] = np.inf
-    best = int(np.argmin(nll))
-    return float(widths[best]) if math.isfinite(nll[best]) else None
+    # (on the few widths as Python floats: numpy's calls cost more than the work here)
+    q = [v if sign * a > 0 and math.isfinite(v) else math.inf
+         for a, v in zip(y[:, 0].tolist(), nll.tolist())]
+    best = min(range(len(q)), key=q.__getitem__)  # the first lowest, as np.argmin
+    return float(widths[best]) if math.isfinite(q[best]) else None
 
 
 def other_widths(shape, edges, n, scale, bexp, mass, width, signal_yield, lo_w, hi_w,
@@ -112,24 +108,28 @@ def other_widths(shape, edges, n, scale, bexp, mass, width, signal_yield, lo_w, 
     compiled path."""
     if type(shape) is not Gaussian or not use_compiled() or most <= 0:
         return None
-    factors = OTHER_FACTORS[(width * OTHER_FACTORS >= lo_w) & (width * OTHER_FACTORS <= hi_w)]
-    if factors.size < 2 or not np.any(factors == 1.0):
+    factors = [f for f in _OTHER_FACTORS if lo_w <= width * f <= hi_w]
+    if len(factors) < 2 or 1.0 not in factors:
         return None
-    out = _profiled(edges, n, scale, bexp, mass, width * factors, window,
-                    (signal_yield, None))
+    out = _profiled(edges, n, scale, bexp, mass, np.array([width * f for f in factors]),
+                    window, (signal_yield, None))
     if out is None:
         return None
     y, nll, btot = out
-    q = np.where(np.isfinite(nll), nll, np.inf)
-    own = int(np.flatnonzero(factors == 1.0)[0])
+    # (on the few widths as Python floats: numpy's calls cost more than the work here)
+    q = [v if math.isfinite(v) else math.inf for v in nll.tolist()]
+    last = len(q) - 1
+    own = factors.index(1.0)
     while True:  # descend from the best minimum's own width: the basin it lies in
-        left = q[own - 1] if own > 0 else np.inf
-        right = q[own + 1] if own + 1 < q.size else np.inf
+        left = q[own - 1] if own > 0 else math.inf
+        right = q[own + 1] if own < last else math.inf
         if min(left, right) >= q[own]:
             break
         own = own - 1 if left < right else own + 1
-    pad = np.concatenate([[np.inf], q, [np.inf]])
-    lows = np.flatnonzero(np.isfinite(q) & (q < pad[:-2]) & (q <= pad[2:]))
-    lows = [int(i) for i in lows[np.argsort(q[lows], kind="stable")] if i != own]
-    return [(float(factors[i]), float(y[i, 0]), float(y[i, 1]) / btot)
-            for i in lows[:most]]
+    # the local minima (an end compares with its one neighbour), the lowest first
+    lows = [i for i in range(len(q)) if math.isfinite(q[i])
+            and q[i] < (q[i - 1] if i > 0 else math.inf)
+            and q[i] <= (q[i + 1] if i < last else math.inf)]
+    lows = [i for i in sorted(lows, key=q.__getitem__) if i != own]  # stable, as argsort's
+    ys = y.tolist()
+    return [(factors[i], ys[i][0], ys[i][1] / btot) for i in lows[:most]]

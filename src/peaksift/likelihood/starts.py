@@ -11,7 +11,9 @@ significant single bins above and below the background, with a peak narrower tha
 (:func:`narrow_candidates`): on background-only spectra these are often the lowest minimum, and a
 fit that never starts there reports a higher one.  A candidate far below the best one (see
 :func:`worth_trying`) is not minimised: in practice it is never the lowest minimum, and
-minimising it cost most of a fit's time on strong peaks.
+minimising it cost most of a fit's time on strong peaks.  The coarse scan lives in
+:mod:`.coarse_scan`, the background fits in :mod:`.start_background`, the start widths in
+:mod:`.start_widths`; their compiled steps in :mod:`.start_kernels`.
 """
 
 from __future__ import annotations
@@ -21,21 +23,12 @@ from collections.abc import Callable, Iterator
 
 import numpy as np
 
-from .._jit import compiled_module
 from ..errors import PeaksiftError
 from ..shapes import Gaussian
-from .cost import BinnedCost
-from .minimize import damped_step, minimize
+from .coarse_scan import coarse_gains, peak_candidates
 from .model import Model
 from .narrow import NARROW_MARGIN, narrow_candidates
-from .poisson import (
-    KERNELS_MODULE,
-    SHAPE_ROWS_MODULE,
-    binned_gradient,
-    binned_information,
-    binned_nll,
-    use_compiled,
-)
+from .start_background import background_counts, background_start
 from .start_widths import other_widths, scan_width
 
 __all__ = [
@@ -55,136 +48,6 @@ _NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError, PeaksiftError)
 def _clip(x: float, lo: float, hi: float) -> float:
     """``np.clip`` of one number (a NaN stays NaN), without its ~5 us of call overhead."""
     return min(max(x, lo), hi)
-
-
-def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
-                     mask: np.ndarray | None, bstart: np.ndarray, is_fixed: np.ndarray,
-                     lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
-    """Background-only binned fit (on ``mask`` bins; fixed background parameters stay
-    fixed) -> full parameter vector with every signal yield at 0."""
-    v = bstart.copy()
-    for _, _, iy in model.blocks[:-1]:
-        v[iy] = 0.0
-    _, bsl, biy = model.blocks[-1]
-    free = np.array([i for i in [*range(bsl.start, bsl.stop), biy] if not is_fixed[i]], int)
-    if free.size == 0:
-        return v
-    m = mask if mask is not None else np.ones(n.size, bool)
-    if not is_fixed[biy]:
-        v[biy] = max(float(n[m].sum()), 1.0)
-    cost = _background_cost(model, v, free, edges, n, scale, mask)
-    lo, hi = lower[free].copy(), upper[free].copy()
-    mo = minimize(cost, np.minimum(np.maximum(v[free], lo), hi), lo, hi,
-                  [model.parameter_names[i] for i in free], edm_goal=1e-2)
-    out = v.copy()
-    out[free] = mo.x
-    return out
-
-
-#: the background-only cost of recent (model, free parameters, read-only data): one fit
-#: fits the background of the whole window and then of each candidate's sidebands, on
-#: the same data and kernels (the entries hold their inputs, so the ids stay valid)
-_BACKGROUND_COSTS: list = []
-
-
-def _background_cost(model, v, free, edges, n, scale, mask) -> BinnedCost:
-    """``BinnedCost(model, v, free, [], edges, n, scale, mask)``, from a recent one on the
-    same read-only data where there is one (:meth:`.cost.BinnedCost.with_mask`)."""
-    inputs = (model, edges, n, scale)
-    key = tuple(free.tolist())
-    for entry in _BACKGROUND_COSTS:
-        if entry[1] == key and all(a is b for a, b in zip(entry[0], inputs)):
-            return entry[2].with_mask(mask, v)
-    cost = BinnedCost(model, v, free, [], edges, n, scale, mask)
-    if all(isinstance(a, np.ndarray) and not a.flags.writeable for a in inputs[1:]):
-        _BACKGROUND_COSTS.insert(0, (inputs, key, cost))
-        del _BACKGROUND_COSTS[4:]
-    return cost
-
-
-def background_counts(model: Model, edges: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """The background's expected counts in the bins ``edges`` at the full parameter vector
-    ``v``: from its compiled edge kernel where it has one (cached per read-only edges
-    array; ~5x faster than ``bin_fractions`` in numpy, equal within a few ulp), else
-    ``bin_fractions``."""
-    bshape, bsl, biy = model.blocks[-1]
-    p = [float(q) for q in v[bsl]]
-    if use_compiled():
-        kern = compiled_module(KERNELS_MODULE).edge_kernel(bshape, edges, model.window)
-        if kern is not None:
-            out = np.empty((kern.rows, edges.size))
-            if kern(p, out):
-                return np.maximum(out[0, 1:] - out[0, :-1], 0.0) * float(v[biy])
-    return bshape.bin_fractions(edges, p, model.window) * v[biy]
-
-
-def peak_candidates(n: np.ndarray, scale: np.ndarray, signal_fractions: np.ndarray, background: np.ndarray,
-                    most: int = 3, sign: float = 1.0) -> list[tuple[int, float]]:
-    """Local maxima of a coarse profile-likelihood scan, best first.
-
-    ``signal_fractions (M, N)`` are the signal's bin fractions at M trial masses,
-    ``background (N,)`` the background expectation.  At each mass the signal yield and the
-    background normalisation are profiled (a few stacked damped Newton steps on
-    :func:`~peaksift.likelihood.poisson.binned_nll`); returns ``[(mass index, 2 dNLL)]`` for
-    up to ``most`` separated local maxima with a positive signal (``sign=-1``: a negative
-    one, the dips).
-    """
-    return _local_maxima(*_coarse_profile(n, scale, signal_fractions, background), most, sign)
-
-
-def _coarse_profile(n, scale, signal_fractions, background):
-    """(profiled yields (M, 2), NLL (M,), background-only NLL) of :func:`peak_candidates`."""
-    f = np.asarray(signal_fractions, float)
-    b0 = np.maximum(np.asarray(background, float), 1e-12)
-    m = f.shape[0]
-    btot = float(b0.sum())
-    g = b0 / btot
-    # differences of NLLs only: the saturated term is left out
-    nll0 = binned_nll(n, btot * g, scale, saturated=False)
-    x = np.empty((m, 2))
-    x[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
-    x[:, 1] = btot
-    if use_compiled():
-        profile_two_yields = compiled_module(KERNELS_MODULE).profile_two_yields
-        nll = np.empty(m)
-        if (isinstance(scale, np.ndarray) and scale.dtype == float and scale.shape == g.shape
-                and scale.flags.c_contiguous and not scale.flags.writeable):
-            sc = scale  # what the broadcast below gives (a fit's read-only factors)
-        else:
-            sc = np.broadcast_to(np.asarray(1.0 if scale is None else scale, float), g.shape)
-        profile_two_yields(np.ascontiguousarray(n, float), np.ascontiguousarray(sc),
-                           np.ascontiguousarray(f), g, x, nll, 25)
-        return x, nll, nll0
-    dmu = np.stack([f, np.broadcast_to(g, f.shape)], axis=1)  # (M, 2, N)
-    lam = np.full(m, 1e-3)
-    quiet = 0
-    with np.errstate(all="ignore"):
-        nll = binned_nll(n, x[:, :1] * f + x[:, 1:] * g, scale, saturated=False)
-        for _ in range(25):
-            mu = x[:, :1] * f + x[:, 1:] * g
-            grad = binned_gradient(n, mu, dmu, scale)
-            info = binned_information(mu, dmu, scale)
-            trial = x + damped_step(info, grad, lam)
-            mu_t = trial[:, :1] * f + trial[:, 1:] * g
-            ok = np.all(mu_t > 0, axis=1)
-            nt = np.where(ok, binned_nll(n, mu_t, scale, saturated=False), np.inf)
-            better = nt <= nll
-            gain = np.where(better, nll - nt, 0.0)
-            x[better], nll[better] = trial[better], nt[better]
-            lam = np.where(better, np.maximum(lam * 0.1, 1e-9), lam * 10.0)
-            quiet = quiet + 1 if np.all(gain < 1e-6) else 0
-            if quiet >= 2:
-                break  # no mass gains any more (a coarse scan needs no more)
-    return x, nll, nll0
-
-
-def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int, sign: float = 1.0):
-    q = np.where((sign * x[:, 0] > 0) & np.isfinite(nll), 2.0 * (nll0 - nll), 0.0)
-    # q[i] > 0, not below either neighbour (the ends compare with their one neighbour)
-    pad = np.concatenate([[-np.inf], q, [-np.inf]])
-    peaks = np.flatnonzero((q > 0) & (q >= pad[:-2]) & (q >= pad[2:]))
-    peaks = peaks[np.argsort(-q[peaks], kind="stable")]
-    return [(int(i), float(q[i])) for i in peaks[:most]]
 
 
 def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
@@ -407,13 +270,8 @@ def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width,
     p: list = [float(q) for q in v[sl]]
     p[shape.parameter_names.index("mass")] = grid[:, None]  # every trial mass in one call
     try:
-        fr = _compiled_fractions(shape, edges, grid, p, model.window)
-        if fr is None:
-            fr = np.broadcast_to(shape.bin_fractions(edges, p, model.window),
-                                 (grid.size, edges.size - 1))
-        profile = _coarse_profile(n, scale, fr, bexp)
-        peaks = _local_maxima(*profile, 3)
-        lows = _local_maxima(*profile, 2, -1.0) if dips else []
+        peaks, lows = coarse_gains(shape, edges, n, scale, grid, p, model.window, bexp,
+                                   dips)
     except _NUMERIC:
         peaks, lows = [], []
     q_top = max([q for _, q in peaks + lows], default=0.0)
@@ -433,23 +291,6 @@ def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width,
     if len(down) == 2 and abs(down[0] - down[1]) <= 3 * width:
         down = down[:1]
     return masses, down, q_top
-
-
-def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:
-    """The coarse scan's Gaussian bin fractions at every trial mass in one compiled call
-    (:func:`peaksift.shapes.compiled.gaussian_rows`; the numpy path costs ~15x more); None
-    for other shapes."""
-    if type(shape) is not Gaussian or not use_compiled():
-        return None
-    gaussian_rows = compiled_module(SHAPE_ROWS_MODULE).gaussian_rows
-    sigma = float(p[shape.parameter_names.index("sigma")])
-    lo, hi = float(window[0]), float(window[1])
-    x = np.clip(np.asarray(edges, float), lo, hi)
-    out = np.empty((grid.size, x.size - 1))
-    if not (sigma > 0 and gaussian_rows(x, np.ascontiguousarray(grid, float), sigma, lo, hi,
-                                        out)):
-        return None
-    return out
 
 
 def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is_fixed,

@@ -1,0 +1,139 @@
+"""Compiled (numba, cached on disk) steps of a free fit's start finding.
+
+* :func:`profile_widths` -- the width profile of :mod:`.start_widths` in one call: the
+  window-clipped edges, each width's band of edges, the Gaussian's rows there
+  (:func:`peaksift.shapes.compiled.gaussian_width_rows`) and both yields profiled
+  (:func:`.kernels.profile_two_yields`).  The same operations in the same order as the
+  numpy glue it replaces (~10 numpy calls), so the same numbers.
+* :func:`coarse_scan` -- the coarse likelihood scan of the window for candidate masses
+  (:mod:`.starts`): the Gaussian's rows at every trial mass and both yields profiled;
+  :func:`local_maxima` -- its separated local maxima, best first.
+* :func:`narrow_rows` -- the bins where a peak narrower than a bin could gain enough to be
+  a start (:func:`.narrow.narrow_candidates`'s bound from the bins' Poisson deviances).
+
+Imported on first use (:func:`peaksift._jit.compiled_module`): importing the likelihood
+loads no numba.  ``tests/test_likelihood_start_kernels.py`` checks it against scipy's
+normal CDF and an iminuit fit written in the test.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+from ..shapes.compiled import gaussian_rows, gaussian_width_rows
+from .kernels import profile_two_yields
+
+__all__ = ["coarse_scan", "local_maxima", "narrow_rows", "profile_widths"]
+
+
+@njit(cache=True, nogil=True)
+def profile_widths(edges, lo, hi, n, s, g, mass, widths, band, y0, y1, rows, y,
+                   nll):  # pragma: no cover - compiled
+    """A Gaussian at ``mass`` of each width ``widths[j]`` (rows of ``rows (K, E-1)``, on
+    the edges within ``band`` widths of the mass, the rest 0) on the background fractions
+    ``g``, its yield and the background total profiled from ``(y0, y1)``: yields into ``y
+    (K, 2)``, NLLs (saturated term left out) into ``nll (K,)``.  False when a row cannot be
+    made (no probability in the window)."""
+    ne = edges.size
+    x = np.empty(ne)
+    for i in range(ne):
+        x[i] = min(max(edges[i], lo), hi)
+    k = widths.size
+    i0 = np.empty(k, np.int64)
+    i1 = np.empty(k, np.int64)
+    for j in range(k):
+        reach = band * widths[j]
+        i0[j] = max(np.searchsorted(x, mass - reach) - 1, 0)
+        i1[j] = min(np.searchsorted(x, mass + reach) + 1, ne - 1)
+    if not gaussian_width_rows(x, mass, widths, i0, i1, lo, hi, rows):
+        return False
+    for j in range(k):
+        y[j, 0] = y0
+        y[j, 1] = y1
+    profile_two_yields(n, s, rows, g, y, nll, 25)
+    return True
+
+
+@njit(cache=True, nogil=True)
+def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cover - compiled
+    """The coarse likelihood scan of the window: a Gaussian of width ``sigma`` at every
+    trial mass ``grid[m]`` (:func:`peaksift.shapes.compiled.gaussian_rows` on the
+    window-clipped edges) on the background fractions ``g``, its yield and the background
+    total profiled from ``x (M, 2)`` (:func:`.kernels.profile_two_yields`): yields into
+    ``x``, NLLs into ``nll (M,)``.  False when a row cannot be made."""
+    ne = edges.size
+    e = np.empty(ne)
+    for i in range(ne):
+        e[i] = min(max(edges[i], lo), hi)
+    frac = np.empty((grid.size, ne - 1))
+    if not gaussian_rows(e, grid, sigma, lo, hi, frac):
+        return False
+    profile_two_yields(n, s, frac, g, x, nll, 25)
+    return True
+
+
+@njit(cache=True, nogil=True)
+def local_maxima(signal, nll, nll0, most, sign, index, gain):  # pragma: no cover - compiled
+    """The separated local maxima of the coarse scan's gain ``q = 2 (nll0 - nll)`` (0 where
+    the yield ``signal`` has not the sign ``sign`` or the NLL is not finite): positive, not
+    below either neighbour (the ends compare with their one neighbour), the largest first
+    (ties in index order); up to ``most`` of them into ``index`` and ``gain``, their number
+    returned."""
+    m = nll.size
+    q = np.empty(m)
+    for i in range(m):
+        ok = sign * signal[i] > 0.0 and math.isfinite(nll[i])
+        q[i] = 2.0 * (nll0 - nll[i]) if ok else 0.0
+    peaks = np.empty(m, np.int64)
+    k = 0
+    for i in range(m):
+        left = q[i - 1] if i > 0 else -math.inf
+        right = q[i + 1] if i + 1 < m else -math.inf
+        if q[i] > 0.0 and q[i] >= left and q[i] >= right:
+            # insertion into the list ordered by decreasing q, after its equals (stable)
+            j = k
+            while j > 0 and q[peaks[j - 1]] < q[i]:
+                peaks[j] = peaks[j - 1]
+                j -= 1
+            peaks[j] = i
+            k += 1
+    k = min(k, most)
+    for j in range(k):
+        index[j] = peaks[j]
+        gain[j] = q[peaks[j]]
+    return k
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def narrow_rows(e, n, b, s, k, least, exclude, rows):  # pragma: no cover - compiled
+    """The bins ``j`` whose ``2k + 1`` bins around them (bins beyond the ends count 0) hold
+    a Poisson deviance ``2 s (b - n + n ln(n / b))`` (0 where not finite) above 0 and at
+    least ``least``, and which lie outside every ``exclude[i] = (lo, hi)`` mass interval:
+    into ``rows``, their number returned."""
+    nb = n.size
+    cdev = np.zeros(nb + 2 * k + 1)
+    acc = 0.0
+    for j in range(nb):  # the running sum in bin order, as numpy's cumsum
+        t = n[j] * math.log(n[j] / b[j]) if n[j] > 0.0 else 0.0
+        d = 2.0 * s[j] * (b[j] - n[j] + t)
+        acc += d if math.isfinite(d) else 0.0
+        cdev[k + 1 + j] = acc
+    for i in range(nb + k + 1, nb + 2 * k + 1):
+        cdev[i] = acc
+    m = 0
+    for j in range(nb):
+        bound = cdev[j + 2 * k + 1] - cdev[j]
+        if not (bound > 0.0 and bound >= least):
+            continue
+        outside = True
+        for i in range(exclude.shape[0]):
+            if not (e[j + 1] <= exclude[i, 0] or e[j] >= exclude[i, 1]):
+                outside = False
+                break
+        if outside:
+            rows[m] = j
+            m += 1
+    return m
