@@ -97,6 +97,31 @@ def test_scan_q0_matches_a_raw_iminuit_cost():
     assert r.q0[3] > 9.0 and seen_zero  # the peak is seen, and a deficit gives q0 = 0
 
 
+def test_a_window_scanned_again_matches_iminuit_each_time():
+    """A scan keeps its per-window work (hypotheses, sigma, signal fractions:
+    ``stats/scan_plan.py``) for the next scan of the same window.  Each of three scans of one
+    window -- the first, one after the caller overwrote its masses array in place, and one
+    of other counts at those masses -- gives the q0 and signal yield of the binned NLL
+    written out in this test and minimised by iminuit (Cowan et al. 2011 eq. 12; the
+    tolerances of test_scan_q0_matches_a_raw_iminuit_cost)."""
+    sigma = 2.5
+    masses = np.array([180.0, 250.0, 320.0])
+    for seed, new_masses in ((5, None), (5, [150.0, 251.0, 300.0]), (8, None)):
+        rng = np.random.default_rng(seed)
+        x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 20_000),
+                            rng.normal(250.0, sigma, 120)])
+        h = MassHistogram(bins=300, range=WINDOW).fill(x)
+        counts, edges = np.histogram(x, bins=300, range=WINDOW)
+        if new_masses is not None:
+            masses[:] = new_masses  # the array the last scan was given, changed in place
+        r = scan(h, "gaussian", "exponential", masses, absolute_resolution=sigma, refit=False)
+        np.testing.assert_array_equal(r.masses, masses)
+        for j, m in enumerate(masses):
+            q0, s_hat, s_err = _iminuit_q0(edges, counts, m, sigma)
+            assert abs(r.q0[j] - q0) < 0.02 + 1e-3 * q0, (seed, m, r.q0[j], q0)
+            assert abs(r.signal_yield[j] - s_hat) < 0.01 * s_err, (seed, m)
+
+
 def test_scan_finds_injected_peak_and_refits():
     h = _spectrum(n_sig=250)
     r = scan(h, "gaussian", "exponential", 121, relative_resolution=0.01)

@@ -11,8 +11,9 @@ What is here, and which piece to use when
   luminosity and efficiency factors with their constraints (absent at size 0).
 * :mod:`.model`       -- :class:`Model`: signal component(s) + background with yields on a
   window; expected bin contents and densities from the shapes.
-* :mod:`.cost`        -- :class:`BinnedCost`, :class:`UnbinnedCost`: a Model on data, over its
-  free parameters, with constraints (value, gradient, information, observed Hessian).
+* :mod:`.cost`        -- :class:`BinnedCost` (and :mod:`.unbinned_cost`, :class:`UnbinnedCost`):
+  a Model on data, over its free parameters, with constraints (value, gradient,
+  information, observed Hessian; the value alone for MIGRAD where that is cheaper).
 * :mod:`.kernels`     -- compiled (numba) fast path of :class:`BinnedCost` for the common
   shapes, the coarse scan and small Newton solves; the numpy path is the reference
   (``PEAKSIFT_NUMPY_COST=1`` selects it everywhere).
@@ -34,7 +35,7 @@ What is here, and which piece to use when
 from __future__ import annotations
 
 from .constraints import CONSTRAINT_KINDS, Constraint
-from .cost import BinnedCost, UnbinnedCost
+from .cost import BinnedCost
 from .derived import Tie, TiedCost
 from .joint import JointCost
 from .minimize import (
@@ -60,6 +61,7 @@ from .poisson import (
     unbinned_nll,
 )
 from .refine import refine
+from .unbinned_cost import UnbinnedCost
 
 __all__ = [
     "CONSTRAINT_KINDS",

@@ -2,8 +2,8 @@
 
 * :class:`BinnedCost`   -- :func:`~peaksift.likelihood.poisson.binned_nll` of a spectrum
   (saturated form, scaled Poisson for weighted bins, optional bin mask for blinding).
-* :class:`UnbinnedCost` -- :func:`~peaksift.likelihood.poisson.unbinned_nll` of the masses,
-  in chunks so temporaries stay in cache.
+* :class:`~.unbinned_cost.UnbinnedCost` (its own module) -- :func:`~peaksift.likelihood.poisson.unbinned_nll`
+  of the masses, in chunks so temporaries stay in cache.
 
 Both answer the same questions: ``cost(*x)`` and ``cost.grad(*x)`` (iminuit's protocol,
 ``errordef = 0.5``), ``value_grad_info(x)`` (value, gradient, information: what the
@@ -30,11 +30,10 @@ from .poisson import (
     MU_FLOOR,
     WALL_MU,
     saturated_term,
-    unbinned_nll,
     use_compiled,
 )
 
-__all__ = ["BinnedCost", "UnbinnedCost"]
+__all__ = ["BinnedCost"]
 
 
 def _step_within(x: float, h: float, lo: float, hi: float) -> tuple[float, bool, bool]:
@@ -63,6 +62,8 @@ class _Cost:
         # constraints on free parameters, by row of the free vector
         self._cons = [(row[int(i)], c) for i, c in constraints if int(i) in row]
         self._last: tuple[bytes, float, np.ndarray] | None = None
+        # the last value-only evaluation: (key, value, expectation or None)
+        self._last_value: tuple[bytes, float, Any] | None = None
         self.ncall = 0
 
     def _free_bounds(self, lower: Any, upper: Any) -> tuple[np.ndarray, np.ndarray]:
@@ -104,18 +105,38 @@ class _Cost:
         for k, c in self._cons:
             hess[k, k] += float(c.hessian(x[k]))
 
-    def _eval(self, x: Sequence[float]) -> tuple[float, np.ndarray]:
-        key = np.asarray(x, dtype=float).tobytes()
+    def _eval(self, x: Sequence[float], key: bytes | None = None) -> tuple[float, np.ndarray]:
+        if key is None:
+            key = np.asarray(x, dtype=float).tobytes()
         if self._last is not None and self._last[0] == key:
             return self._last[1], self._last[2]
         val, g, _ = self.value_grad_info(np.asarray(x, dtype=float), info=False)
+        if self._last_value is not None and self._last_value[0] == key:
+            self.ncall -= 1  # the point's value was counted already: one call a point
         if not np.isfinite(val) or not np.all(np.isfinite(g)):
             val, g = 1e300, np.zeros_like(g)
         self._last = (key, val, g)
         return val, g
 
+    def value_only(self, x: np.ndarray) -> tuple[float, Any] | None:
+        """``(NLL, expectation or None)`` at ``x`` without the gradient, the same value
+        :meth:`value_grad_info` gives; None where this cost has no cheaper way."""
+        return None
+
     def __call__(self, *x: float) -> float:
-        return self._eval(x)[0]
+        # MIGRAD asks for the value alone at most points (its line searches; ~94% of its
+        # calls in slow Crystal Ball fits): the gradient only where it asks for it
+        key = np.asarray(x, dtype=float).tobytes()
+        if self._last is not None and self._last[0] == key:
+            return self._last[1]
+        if self._last_value is not None and self._last_value[0] == key:
+            return self._last_value[1]
+        out = self.value_only(np.asarray(x, dtype=float))
+        if out is None:
+            return self._eval(x, key)[0]
+        val = out[0] if np.isfinite(out[0]) else 1e300
+        self._last_value = (key, val, out[1])
+        return val
 
     def grad(self, *x: float) -> np.ndarray:
         return self._eval(x)[1]
@@ -232,7 +253,7 @@ class BinnedCost(_Cost):
         one fit differ only there."""
         c = copy.copy(self)
         c.full = np.asarray(full, float).copy()
-        c._last, c._state, c._problem, c.ncall = None, None, None, 0
+        c._last, c._last_value, c._state, c._problem, c.ncall = None, None, None, None, 0
         c._fused = None if self._fused is None else self._fused.fresh()
         c._jac = None if self._jac is None else np.zeros_like(self._jac)
         return c
@@ -243,7 +264,8 @@ class BinnedCost(_Cost):
         its kernels, layout and compiled arrays again."""
         c = copy.copy(self)
         c.full = np.asarray(full, float).copy()
-        c._last, c._state, c._problem, c._empty, c.ncall = None, None, None, None, 0
+        c._last, c._last_value, c._state, c._problem, c._empty = None, None, None, None, None
+        c.ncall = 0
         (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(*self._data, mask)
         c._fused = (None if self._fused is None else
                     self._fused.on_bins(c.mask, c.n, c.s, c.unit_scale))
@@ -301,11 +323,53 @@ class BinnedCost(_Cost):
         return info, mu, jac.copy()
 
     def expected_at(self, x: np.ndarray) -> np.ndarray | None:
-        """The expectation of the last evaluation if it was at ``x`` (else None)."""
+        """The expectation of the last evaluation (or value-only one) if it was at ``x``
+        (else None)."""
+        key = np.asarray(x, float).tobytes()
         st = self._state
-        if st is not None and st[0] == np.asarray(x, float).tobytes():
+        if st is not None and st[0] == key:
             return np.asarray(st[1])
+        lv = self._last_value
+        if lv is not None and lv[0] == key and lv[2] is not None:
+            return np.asarray(lv[2])
         return None
+
+    def value_only(self, x: np.ndarray) -> tuple[float, Any] | None:
+        """:meth:`value_grad_info`'s value without the gradient, from the same fractions
+        (:meth:`peaksift.shapes.Shape.fit_fractions`) summed in the same order: the same
+        bits, so MIGRAD's path is the same.  None on the compiled path (its one pass gives
+        the gradient almost for free)."""
+        if self._fused is not None:
+            return None
+        self.ncall += 1
+        x = np.asarray(x, float)
+        v = self.expand(x)
+        mu = None
+        window = self.model.window
+        for shape, sl, iy, need, rows, ry in self._plan:
+            y = float(v[iy])
+            if ry < 0 and y == 0.0:  # as in expectation()
+                continue
+            p = [float(q) for q in v[sl]]
+            f = (shape.fit_fractions(self.edges, p, window) if need
+                 else shape.bin_fractions(self.edges, p, window))
+            if self.mask is not None:
+                f = f[self.mask]
+            mu = y * f if mu is None else mu + y * f
+        if mu is None:
+            mu = np.zeros(self.n.size)
+        if mu.min(initial=0.0) < 0.0:
+            return math.inf, mu
+        expected = mu
+        mu = np.maximum(mu, MU_FLOOR)
+        n, s = self.n, self.s
+        if self.unit_scale:
+            val = float(mu.sum() - n @ np.log(mu)) + self._const
+        else:
+            val = float(s @ mu - n @ np.log(mu)) + self._const
+        for k, c in self._cons:  # as _add_constraints adds them
+            val += float(c.nll(x[k]))
+        return val, expected
 
     def _grad_all_bins(self, shape, q, need):
         """Derivatives of ``shape``'s fractions in the used bins at parameters ``q``."""
@@ -421,142 +485,3 @@ def _fused_path(cost: BinnedCost) -> Any:
         return None
     return kern.FusedBinned(kernels, cost._plan, cost.free.size, cost.edges, cost.mask, cost.n,
                        cost.s, cost.unit_scale, MU_FLOOR)
-
-
-class UnbinnedCost(_Cost):
-    """Extended unbinned NLL of masses ``x`` (weights ``w`` or None), evaluated in chunks of
-    ``CHUNK`` masses (several times faster than whole-array expressions for 1M masses)."""
-
-    CHUNK = 32768
-
-    def __init__(self, model: Model, full: np.ndarray, free: np.ndarray,
-                 constraints: Sequence[tuple[int, Constraint]], x: np.ndarray,
-                 w: np.ndarray | None) -> None:
-        super().__init__(model, full, free, constraints)
-        self.x = np.asarray(x, float)
-        self.w = None if w is None else np.asarray(w, float)
-        fr = set(self.free.tolist())
-        self._need = [any(i in fr for i in range(sl.start, sl.stop)) for _, sl, _ in model.blocks]
-        self._flags = [[i in fr for i in range(sl.start, sl.stop)] for _, sl, _ in model.blocks]
-        self._yields = [iy for _, _, iy in model.blocks]
-        # (yield index, mass index) of components with a mass: their peak is where a
-        # negative yield makes the density lowest
-        self._peaks = [(iy, sl.start + list(shape.parameter_names).index("mass"))
-                       for shape, sl, iy in model.blocks if "mass" in shape.parameter_names]
-
-    def _negative_density(self, v: np.ndarray) -> bool:
-        """Whether the density is negative at the peak of a component with a negative yield:
-        outside the model, like a negative expected count of a binned fit (checked only at
-        the events, a narrow negative peak between them lowered the NLL without bound, and
-        a background-only fit ran its yield to the bound in ~40,000 MIGRAD calls)."""
-        lo, hi = self.model.window
-        for iy, im in self._peaks:
-            if v[iy] < 0.0:
-                at = np.array([min(max(float(v[im]), lo), hi)])
-                total = sum(float(v[jy]) * float(shape.pdf(at, [float(q) for q in v[sl]],
-                                                           self.model.window)[0])
-                            for shape, sl, jy in self.model.blocks)
-                if not total >= 0.0:
-                    return True
-        return False
-
-    def _chunks(self):
-        n = self.x.size
-        for a in range(0, n, self.CHUNK):
-            b = min(a + self.CHUNK, n)
-            yield self.x[a:b], None if self.w is None else self.w[a:b]
-
-    def per_event(self, v: np.ndarray, x: np.ndarray):
-        """Density mu(x) and, per parameter, (factor, d density) for the chunk ``x``."""
-        model = self.model
-        mu = None
-        dens: list[Any] = [None] * v.size
-        for (shape, sl, iy), need, flags in zip(model.blocks, self._need, self._flags):
-            p = [float(q) for q in v[sl]]
-            y = float(v[iy])
-            if need:
-                f, g = shape.pdf_and_grad(x, p, model.window, flags)
-                for j, i in enumerate(range(sl.start, sl.stop)):
-                    dens[i] = (y, g[j])
-            else:
-                f = shape.pdf(x, p, model.window)
-            mu = y * f if mu is None else mu + y * f
-            dens[iy] = (1.0, f)
-        return mu, dens
-
-    def _scores(self, dens, inv):
-        if not self.free.size:  # every parameter fixed: no scores
-            return np.zeros((0, inv.size))
-        return np.array([np.zeros_like(inv) if dens[i] is None else (dens[i][0] * inv) * dens[i][1]
-                         for i in self.free])
-
-    def value_grad_info(self, x: np.ndarray, info: bool = True):
-        """NLL, gradient and the outer-product (BHHH) information sum_j w_j s_j s_j^T,
-        s_j = grad ln mu(x_j), over the free parameters at ``x``."""
-        self.ncall += 1
-        x = np.asarray(x, float)
-        v = self.expand(x)
-        if self._peaks and self._negative_density(v):
-            k = self.free.size
-            return math.inf, np.zeros(k), np.zeros((k, k)) if info else None
-        val = float(sum(v[iy] for iy in self._yields))
-        g = np.zeros(v.size)
-        g[self._yields] = 1.0
-        g = g[self.free]
-        fisher = np.zeros((self.free.size, self.free.size))
-        with np.errstate(over="ignore", invalid="ignore"):
-            for xc, w in self._chunks():
-                mu, dens = self.per_event(v, xc)
-                np.maximum(mu, MU_FLOOR, out=mu)
-                val += float(unbinned_nll(0.0, mu, w))
-                sc = self._scores(dens, 1.0 / mu)
-                if w is None:
-                    g -= sc.sum(axis=1)
-                    if info:
-                        fisher += sc @ sc.T
-                else:
-                    g -= sc @ w
-                    if info:
-                        fisher += (sc * w) @ sc.T
-        val = self._add_constraints(x, val, g, fisher if info else None)
-        return val, g, (fisher if info else None)
-
-    def observed_hessian(self, x: np.ndarray, steps: np.ndarray, lower: Any = None,
-                upper: Any = None) -> np.ndarray:
-        """Observed Hessian by differences of the analytic gradient (central where the
-        bounds ``lower``/``upper`` of the free parameters allow; callers pass steps of ~1e-3
-        of each parameter's error)."""
-        x = np.asarray(x, float)
-        n = x.size
-        lower, upper = self._free_bounds(lower, upper)
-        hess = np.empty((n, n))
-        for i in range(n):
-            h = abs(float(steps[i]))
-            if not (np.isfinite(h) and h > 0):
-                h = 1e-6 * max(abs(x[i]), 1.0)
-            hi, lo = x.copy(), x.copy()
-            h, up, dn = _step_within(x[i], h, lower[i], upper[i])
-            if up and dn:
-                hi[i] += h
-                lo[i] -= h
-                width = 2 * h
-            elif up:
-                hi[i] += h
-                width = h
-            else:
-                lo[i] -= h
-                width = h
-            hess[:, i] = (self.value_grad_info(hi, info=False)[1]
-                          - self.value_grad_info(lo, info=False)[1]) / width
-        return 0.5 * (hess + hess.T)
-
-    def score_outer(self, x: np.ndarray) -> np.ndarray:
-        """D = sum_j w_j^2 grad(ln mu_j) grad(ln mu_j)^T over the free parameters (for the
-        sandwich covariance of weighted unbinned fits)."""
-        v = self.expand(x)
-        d = np.zeros((self.free.size, self.free.size))
-        for xc, w in self._chunks():
-            mu, dens = self.per_event(v, xc)
-            sc = self._scores(dens, (1.0 if w is None else w) / np.maximum(mu, MU_FLOOR))
-            d += sc @ sc.T
-        return d

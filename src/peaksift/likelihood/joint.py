@@ -1,7 +1,7 @@
 """Several channels' costs as one: :class:`JointCost`, the product of their likelihoods.
 
 Each channel has its own :class:`~peaksift.likelihood.cost.BinnedCost` or
-:class:`~peaksift.likelihood.cost.UnbinnedCost` (its model, data and constraints).  The joint
+:class:`~peaksift.likelihood.unbinned_cost.UnbinnedCost` (its model, data and constraints).  The joint
 cost has its own free parameters ``X`` (e.g. the shared cross-section x branching fraction,
 then every channel's background parameters); channel ``c`` sees its free vector as a linear
 map ``x_c = A_c X`` (a signal yield ``L_c eff_c sigmaB`` is a row with ``L_c eff_c`` in the

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._base import as_window
+from ._base import _scalar, as_window
 
 __all__ = ["bernstein_fractions", "powersum_fractions"]
 
@@ -25,7 +25,7 @@ def _row_params(params, n: int):
     arrays of one B; None for any other call (the generic path takes it)."""
     if len(params) != n or n == 0:
         return None
-    if all(np.ndim(v) == 0 for v in params):
+    if all(_scalar(v) for v in params):
         return np.array([[float(v) for v in params]]), False
     first = np.shape(params[0])
     if len(first) != 2 or first[1] != 1 or any(np.shape(v) != first for v in params):

@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from ._base import Parameter, Shape, as_window
+from ._base import Parameter, Shape, _scalar, as_window
 
 __all__ = ["BreitWigner", "CrystalBall", "Gaussian", "Voigt"]
 
@@ -349,25 +349,38 @@ class CrystalBall(_Signal):
         getattr(compiled, kernel)(x, *(float(v) for v in p), out)
         return out
 
+    def _primitive_rows(self, edges, p, window):
+        """``(ends, rows, 1/Z, CDF)``: the compiled primitive and its derivatives at the
+        window's ends and at ``edges``, and the normalised CDF at ``edges``."""
+        lo, hi = as_window(window)
+        ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
+        # np.clip's numbers without its wrapper (~15 us, a value-only call's sixth)
+        x = np.minimum(np.maximum(np.asarray(edges, float), lo), hi)
+        rows = self._compiled_rows("crystalball_primitive", x, p)
+        inv = 1.0 / (ends[0, 1] - ends[0, 0])
+        return ends, rows, inv, (rows[0] - ends[0, 0]) * inv
+
     def fractions_and_grad(self, edges, params, window, need=None):
         # one parameter set (the free fit's hot path): the compiled primitive, ~15x faster
         # than the numpy path it follows, which stays for stacked parameters
         p = self._params(params, len(self.parameters), self.name)
-        if any(np.ndim(v) for v in p) or np.ndim(edges) != 1:
+        if not all(_scalar(v) for v in p) or np.ndim(edges) != 1:
             return super().fractions_and_grad(edges, params, window, need)
-        lo, hi = as_window(window)
-        ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
-        rows = self._compiled_rows("crystalball_primitive",
-                                   np.clip(np.asarray(edges, float), lo, hi), p)
-        inv = 1.0 / (ends[0, 1] - ends[0, 0])
-        c = (rows[0] - ends[0, 0]) * inv
+        ends, rows, inv, c = self._primitive_rows(edges, p, window)
         grad = np.diff((rows[1:] - ends[1:, :1]) * inv
                        - c * ((ends[1:, 1:] - ends[1:, :1]) * inv), axis=-1)
         return np.maximum(np.diff(c), 0.0), grad
 
+    def fit_fractions(self, edges, params, window):
+        # the fractions of fractions_and_grad, without its six rows of derivatives
+        p = self._params(params, len(self.parameters), self.name)
+        if not all(_scalar(v) for v in p) or np.ndim(edges) != 1:
+            return super().fit_fractions(edges, params, window)
+        return np.maximum(np.diff(self._primitive_rows(edges, p, window)[3]), 0.0)
+
     def pdf_and_grad(self, x, params, window, need=None):
         p = self._params(params, len(self.parameters), self.name)
-        if any(np.ndim(v) for v in p) or np.ndim(x) != 1:
+        if not all(_scalar(v) for v in p) or np.ndim(x) != 1:
             return super().pdf_and_grad(x, params, window, need)
         lo, hi = as_window(window)
         ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
@@ -497,7 +510,7 @@ class Voigt(_Signal):
         # one Faddeeva evaluation for the density and its derivatives (the generic path
         # evaluates the profile twice and the Faddeeva function once)
         p = self._params(params, len(self.parameters), self.name)
-        if any(np.ndim(v) for v in p) or np.ndim(x) != 1:
+        if not all(_scalar(v) for v in p) or np.ndim(x) != 1:
             return super().pdf_and_grad(x, params, window, need)
         w = as_window(window)
         ends = np.array(w)

@@ -236,7 +236,9 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     ``curvature`` (the background shape's second derivatives at the start, ``(B, K, K,
     n_used)``, that the Hessian used; None without shape parameters).
     """
-    f = np.atleast_2d(np.asarray(fractions, float))
+    f = fractions
+    if not (type(f) is np.ndarray and f.ndim == 2 and f.dtype == np.float64):
+        f = np.atleast_2d(np.asarray(fractions, float))  # (the same array when it is one)
     nb, nbin = f.shape
     n = np.broadcast_to(np.asarray(n, float), (nb, nbin))
     k = model.theta.size
