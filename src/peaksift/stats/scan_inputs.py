@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import math
 import pickle
 import threading
@@ -24,7 +23,7 @@ from ..likelihood import (
 from ..likelihood.poisson import use_compiled
 from ..resolution import resolution_from
 from .bounds import check_plan
-from .scan_plan import _signal_params, window_plan  # noqa: F401 -- _signal_params: imported from here by scan, channels, limits_systematics
+from .scan_plan import _signal_params, input_digest, window_plan  # noqa: F401 -- _signal_params: imported from here by scan, channels, limits_systematics
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background
 
 
@@ -196,16 +195,8 @@ def _fit_key(proto: ScanModel, counts: np.ndarray, start: np.ndarray) -> bytes |
                              proto.window, every_bin, use_compiled()), protocol=4)
     except Exception:  # noqa: BLE001 -- any pickling failure: just fit again
         return None
-    digest = hashlib.sha256(head)
-    for a in (proto.edges, None if every_bin else used, proto.lower, proto.upper,
-              proto.bin_scale, counts, start):
-        if a is None:
-            digest.update(b"-")
-            continue
-        a = np.ascontiguousarray(a)
-        digest.update(f"{a.dtype.str}{a.shape}".encode())
-        digest.update(a.data)
-    return digest.digest()
+    return input_digest(head, (proto.edges, None if every_bin else used, proto.lower,
+                               proto.upper, proto.bin_scale, counts, start))
 
 
 def _fit_data_background(proto: ScanModel, counts: np.ndarray, start: np.ndarray

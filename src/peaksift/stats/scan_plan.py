@@ -74,8 +74,14 @@ def _plan_key(sig: Any, n_background: int, spec: Any, masses: Any, m_arr: Any,
                             protocol=4)
     except Exception:  # noqa: BLE001 -- any pickling failure: just build the plan again
         return None
+    return input_digest(head, (spec.edges, spec.bin_scale, m_arr))
+
+
+def input_digest(head: bytes, arrays: Any) -> bytes:
+    """SHA-256 of ``head`` (the pickled small inputs) and of each array's dtype, shape and
+    raw bytes, a ``-`` for each None: the key of a result kept by its inputs."""
     digest = hashlib.sha256(head)
-    for a in (spec.edges, spec.bin_scale, m_arr):
+    for a in arrays:
         if a is None:
             digest.update(b"-")
             continue
