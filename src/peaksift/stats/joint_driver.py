@@ -61,6 +61,18 @@ _KINDS = {"exponential": 1, "powerlaw": 2}
 DONE, DECLINED = 0, 1
 
 
+@njit(cache=True, nogil=True)
+def _norm_factor(x, off, nj, a_norm, c):
+    """Channel ``c``'s signal factor from the normalisation nuisances: exp(sum_j x_j a_cj)."""
+    e = 1.0
+    if nj:
+        t = 0.0
+        for j in range(nj):
+            t += x[off + j] * a_norm[c, j]
+        e = math.exp(t)
+    return e
+
+
 @njit(cache=True, nogil=True, error_model="numpy")
 def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, eoff, e1, e2,
            lo, hi, boff, used, woff, scale, nn, ff, gg, d2, tg, tdg, frac, grad, direct, th,
@@ -92,12 +104,7 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
         rn = r if nc_.shape[0] > 1 else 0
         rd = r if dc.shape[0] > 1 else 0
         kq = kpar[c]
-        e = 1.0
-        if nj:
-            t = 0.0
-            for j in range(nj):
-                t += x[off + j] * a_norm[c, j]
-            e = math.exp(t)
+        e = _norm_factor(x, off, nj, a_norm, c)
         s = mu * kc[c, r] * e
         s2 = mu * (kc[c, r] * e)     # the gradient's signal (as _grad_hess forms it)
         b = x[first[c]]
@@ -180,12 +187,7 @@ def _grad_hess(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, sm,
             hess[i, j] = 0.0
     mu = mu_fixed[r] if fixed else x[0]
     for c in range(nc):
-        e = 1.0
-        if nj:
-            t = 0.0
-            for j in range(nj):
-                t += x[off + j] * a_norm[c, j]
-            e = math.exp(t)
+        e = _norm_factor(x, off, nj, a_norm, c)
         kk = kc[c, r] * e
         s = mu * kk
         br = x[first[c]]
