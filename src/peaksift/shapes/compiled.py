@@ -304,11 +304,10 @@ def powerlaw_edges(lx, k, l_lo, l_hi, out):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def exponential_edges(t, b, out):  # pragma: no cover - compiled
-    """Rows: C, dC/db1 of exp(b1 t), t in [-1, 1] across the window (the formulae of
-    ``ExpPoly.fractions_and_grad``); False for |b1| < 1e-3, where that path uses a series."""
-    if abs(b) < 1e-3:
-        return False
+def exponential_constants(b):  # pragma: no cover - compiled
+    """The constants of exp(b t) on t in [-1, 1] that its bin fractions and their b
+    derivative use (the formulae of ``ExpPoly.fractions_and_grad``): e^{-b}, e^b, 1/b, 1/b^2,
+    g0, g_hi, b / (e^b - e^{-b}) and the fractions' scale."""
     em = math.exp(-b)
     ep = math.exp(b)
     inv_z = b / (ep - em)
@@ -317,6 +316,16 @@ def exponential_edges(t, b, out):  # pragma: no cover - compiled
     g0 = em * (ib + ib2)
     ghi = ep * (ib - ib2) + g0
     scale = inv_z * ib
+    return em, ep, ib, ib2, g0, ghi, inv_z, scale
+
+
+@njit(cache=True, nogil=True)
+def exponential_edges(t, b, out):  # pragma: no cover - compiled
+    """Rows: C, dC/db1 of exp(b1 t), t in [-1, 1] across the window (the formulae of
+    ``ExpPoly.fractions_and_grad``); False for |b1| < 1e-3, where that path uses a series."""
+    if abs(b) < 1e-3:
+        return False
+    em, _, ib, ib2, g0, ghi, inv_z, scale = exponential_constants(b)
     for i in range(t.size):
         e = vexp(b * t[i])
         c = (e - em) * scale
@@ -382,14 +391,7 @@ def exponential_rows(t, dt, bs, frac, grad):  # pragma: no cover - compiled
         b = bs[r]
         if abs(b) < 1e-3:
             return False
-        em = math.exp(-b)
-        ep = math.exp(b)
-        inv_z = b / (ep - em)
-        ib = 1.0 / b
-        ib2 = ib * ib
-        g0 = em * (ib + ib2)
-        ghi = ep * (ib - ib2) + g0
-        scale = inv_z * ib
+        em, _, ib, ib2, g0, ghi, inv_z, scale = exponential_constants(b)
         for i in range(ne):
             ev[i] = vexp(b * t[i])
         if uniform:

@@ -38,7 +38,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import vexp, vlog
+from ..shapes.compiled import exponential_constants, vexp, vlog
 from .joint_kernels import yield_sums
 
 __all__ = ["prefix_moments", "row_spans", "span_channel", "span_tables"]
@@ -144,14 +144,7 @@ def span_channel(e1, e2, eo, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre
     if i1 <= i0 or not b > 0.0 or abs(theta) < 1e-3 or abs(theta - theta_ref) > _MAX_SHIFT:
         return False, 0.0
     # the background's constants as exponential_rows forms them
-    em = math.exp(-theta)
-    ep = math.exp(theta)
-    inv_z = theta / (ep - em)
-    ib = 1.0 / theta
-    ib2 = ib * ib
-    g0 = em * (ib + ib2)
-    ghi = ep * (ib - ib2) + g0
-    scale = inv_z * ib
+    em, ep, ib, ib2, g0, ghi, inv_z, scale = exponential_constants(theta)
     m1 = math.expm1(theta * dt0)
     e_first = math.exp(theta * t0)
     e_last = math.exp(theta * tn)
