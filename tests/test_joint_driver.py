@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from iminuit import Minuit
+from joint_reference import q0_from_two_fits
 from scipy import stats
 
 from peaksift import Resolution
@@ -70,21 +70,8 @@ def _reference_q0(hists, mass):
 
     start = {"mu": 10.0, "b1": ns[0].sum(), "s1": -0.02, "b2": ns[1].sum(), "k2": 4.0,
              "nl": 0.0, "ne1": 0.0, "ne2": 0.0}
-    fits = []
-    for free in (True, False):
-        m = Minuit(nll, **{**start, "mu": 10.0 if free else 0.0})
-        m.errordef, m.strategy = 0.5, 2
-        m.fixed["mu"] = not free
-        if not free:
-            for name in ("nl", "ne1", "ne2"):   # no signal: the norms have nothing to scale
-                m.fixed[name] = True
-        m.migrad()
-        m.migrad()
-        assert m.valid
-        fits.append(m)
-    mu = fits[0].values["mu"]
-    # q0 = 0 where the fitted signal is negative (Cowan et al. 2011, eq. 12)
-    return (2.0 * (fits[1].fval - fits[0].fval) if mu > 0 else 0.0), mu
+    # nuisances fixed with the signal at 0: the norms have nothing to scale
+    return q0_from_two_fits(nll, start, fixed_in_null=("nl", "ne1", "ne2"))
 
 
 @pytest.fixture(scope="module")

@@ -8,9 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from joint_reference import background, bin_sums, closed_form, dbackground
 from scipy import stats
-
-from peaksift.stats.joint_spans import _MOMENTS, prefix_moments, row_spans, span_channel
 
 LO, HI = 100.0, 300.0
 EDGES = np.linspace(LO, HI, 401)
@@ -18,41 +17,9 @@ T = (EDGES - 0.5 * (LO + HI)) * (2.0 / (HI - LO))   # the window-scaled edges
 DT = np.diff(EDGES) * (2.0 / (HI - LO))
 
 
-def _background(theta):
-    """Bin fractions of e^{theta t} on [-1, 1] (complex theta allowed)."""
-    e = np.exp(theta * T)
-    return np.diff(e) / (np.exp(theta) - np.exp(-theta))
-
-
-def _dbackground(theta, h=1e-20):
-    return _background(theta + 1j * h).imag / h   # complex step: exact to rounding
-
-
 def _signal(mass, sigma):
     c = stats.norm.cdf(EDGES, mass, sigma)
     return np.diff(c) / (c[-1] - c[0])
-
-
-def _reference(n, f, d2, s, b, theta):
-    g, dg = _background(theta), _dbackground(theta)
-    nu = s * f + b * g
-    w, v = 1.0 - n / nu, n / nu ** 2
-    terms = [f * w, f * f * v, f * g * v, g * w, g * g * v, f * dg * v, g * dg * v, dg * w,
-             dg * dg * v, d2 * w]
-    nll = nu - np.where(n > 0, n * np.log(nu), 0.0)
-    return nll, terms
-
-
-def _kernel(n, f, d2, s, b, theta, theta_ref):
-    pre = np.zeros((_MOMENTS, T.size))
-    prefix_moments(T, n, d2, theta_ref, pre)
-    spans = np.zeros((1, 2), np.int64)
-    row_spans(f[None, :], 1e-22, spans)
-    tg, tdg = np.zeros(f.size), np.zeros(f.size)
-    lb, sm = np.zeros((3, f.size)), np.zeros(10)
-    done, nll = span_channel(T, DT, 0, theta, theta_ref, s, s, b, f, n, d2, spans[0, 0],
-                             spans[0, 1], pre, 0, tg, tdg, 0, lb, sm)
-    return done, nll, sm, spans[0]
 
 
 @pytest.mark.parametrize("mass, s, shift", [(180.0, 250.0, 0.004), (120.0, -30.0, -0.2),
@@ -64,16 +31,16 @@ def test_closed_form_matches_the_bin_sums(mass, s, shift):
     rng = np.random.default_rng(7)
     theta_ref = -1.67
     b = 60_000.0
-    g0 = _background(theta_ref)
+    g0 = background(T, theta_ref)
     f = _signal(mass, 0.01 * mass)
     n = rng.poisson(b * g0 + 200.0 * f).astype(float)
     h = 1e-4   # the curvature held at theta_ref, by central differences
-    d2 = (_dbackground(theta_ref + h) - _dbackground(theta_ref - h)) / (2 * h)
+    d2 = (dbackground(T, theta_ref + h) - dbackground(T, theta_ref - h)) / (2 * h)
     theta = theta_ref + shift
-    done, nll, sm, span = _kernel(n, f, d2, s, b, theta, theta_ref)
+    done, nll, sm, span = closed_form(T, DT, n, f, d2, s, b, theta, theta_ref)
     assert done
     assert 0 < span[1] - span[0] < 0.4 * f.size   # most bins are in closed form
-    ref_nll, terms = _reference(n, f, d2, s, b, theta)
+    ref_nll, terms = bin_sums(T, n, f, d2, s, b, theta)
     assert nll == pytest.approx(ref_nll.sum(), rel=0, abs=1e-13 * np.abs(ref_nll).sum())
     for k, term in enumerate(terms):
         assert sm[k] == pytest.approx(term.sum(), rel=0, abs=1e-12 * np.abs(term).sum()), k
@@ -86,7 +53,7 @@ def test_declines_where_the_signal_outside_its_span_matters():
     f = _signal(180.0, 1.8)
     n = np.full(f.size, 100.0)
     d2 = np.zeros(f.size)
-    assert _kernel(n, f, d2, 250.0, 60_000.0, theta_ref, theta_ref)[0]
-    assert not _kernel(n, f, d2, 1e20, 60_000.0, theta_ref, theta_ref)[0]
-    assert not _kernel(n, f, d2, 250.0, 60_000.0, theta_ref + 0.6, theta_ref)[0]
-    assert not _kernel(n, f, d2, 250.0, -5.0, theta_ref, theta_ref)[0]
+    assert closed_form(T, DT, n, f, d2, 250.0, 60_000.0, theta_ref, theta_ref)[0]
+    assert not closed_form(T, DT, n, f, d2, 1e20, 60_000.0, theta_ref, theta_ref)[0]
+    assert not closed_form(T, DT, n, f, d2, 250.0, 60_000.0, theta_ref + 0.6, theta_ref)[0]
+    assert not closed_form(T, DT, n, f, d2, 250.0, -5.0, theta_ref, theta_ref)[0]

@@ -10,9 +10,11 @@ window-scaled variable).  Hypotheses at an injected peak, off it, and at a secon
 
 from __future__ import annotations
 
+import contextlib
+
 import numpy as np
 import pytest
-from iminuit import Minuit
+from joint_reference import q0_from_two_fits
 from scipy import stats
 
 from peaksift import Resolution
@@ -63,42 +65,36 @@ def _reference(hists, mass):
             out += float(np.sum(m - n * np.log(m)))
         return out
 
-    fits = []
-    for free in (True, False):
-        m = Minuit(nll, mu=10.0 if free else 0.0, b1=ns[0].sum(), s1=-0.025,
-                   b2=ns[1].sum(), s2=-0.08)
-        m.errordef, m.strategy = 0.5, 2
-        m.fixed["mu"] = not free
-        m.migrad()
-        m.migrad()
-        assert m.valid
-        fits.append(m)
-    mu = fits[0].values["mu"]
-    return (2.0 * (fits[1].fval - fits[0].fval) if mu > 0 else 0.0), mu
+    return q0_from_two_fits(nll, {"b1": ns[0].sum(), "s1": -0.025, "b2": ns[1].sum(),
+                                  "s2": -0.08})
+
+
+@contextlib.contextmanager
+def _span_tables(seen: list, bin_by_bin: bool = False):
+    """Record each call's per-channel closed-form flags in ``seen``; with ``bin_by_bin``
+    hand the loop flags that send every channel bin by bin (the reference path)."""
+    keep = joint_driver.span_tables
+
+    def wrapped(*args):
+        fast, spans, pre = keep(*args)
+        seen.append(fast.copy())
+        return (np.zeros_like(fast) if bin_by_bin else fast), spans, pre
+
+    joint_driver.span_tables = wrapped
+    try:
+        yield
+    finally:
+        joint_driver.span_tables = keep
 
 
 @pytest.fixture(scope="module")
 def results():
     hists = _data()
     seen = []
-    keep = joint_driver.span_tables
-
-    def record(*args):
-        out = keep(*args)
-        seen.append(out[0].copy())
-        return out
-
-    def bin_by_bin(*args):
-        fast, spans, pre = keep(*args)
-        return np.zeros_like(fast), spans, pre
-
-    try:
-        joint_driver.span_tables = record
+    with _span_tables(seen):
         fast = combine(_channels(hists), MASSES, refit=False)
-        joint_driver.span_tables = bin_by_bin
+    with _span_tables([], bin_by_bin=True):
         slow = combine(_channels(hists), MASSES, refit=False)
-    finally:
-        joint_driver.span_tables = keep
     return hists, fast, slow, seen
 
 
@@ -141,19 +137,10 @@ def test_closed_form_declines_on_weighted_and_blinded_spectra():
     x = x[x < 190.0]
     weighted = MassHistogram.from_masses(x, rng.uniform(0.5, 1.5, x.size), edges=EDGES[0])
     seen = []
-    keep = joint_driver.span_tables
-
-    def record(*args):
-        out = keep(*args)
-        seen.append(out[0].tolist())
-        return out
-
-    try:
-        joint_driver.span_tables = record
+    with _span_tables(seen):
         combine(_channels([weighted, hists[1]]), MASSES[:2], refit=False)
-        assert seen and all(s == [False, True] for s in seen)
-        seen.clear()
+    assert seen and all(s.tolist() == [False, True] for s in seen)
+    seen.clear()
+    with _span_tables(seen):
         combine(_channels(hists), MASSES[:2], refit=False, blind=(145.0, 155.0))
-        assert seen and all(s == [False, False] for s in seen)
-    finally:
-        joint_driver.span_tables = keep
+    assert seen and all(s.tolist() == [False, False] for s in seen)

@@ -13,9 +13,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from joint_reference import background, bin_sums, closed_form, dbackground
 from scipy import stats
-
-from peaksift.stats.joint_spans import _MOMENTS, prefix_moments, row_spans, span_channel
 
 WINDOW = (100.0, 300.0)
 
@@ -27,40 +26,9 @@ def _scaled(edges):
     return (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo)), np.diff(x) * (2.0 / (hi - lo))
 
 
-def _background(t, theta):
-    """Bin fractions of e^{theta t} normalised on t in [-1, 1] (complex theta allowed)."""
-    return np.diff(np.exp(theta * t)) / (np.exp(theta) - np.exp(-theta))
-
-
-def _dbackground(t, theta, h=1e-20):
-    return _background(t, theta + 1j * h).imag / h   # complex step: exact to rounding
-
-
-def _reference(t, n, f, d2, s, b, theta):
-    """The NLL per bin and the ten Newton sums' terms (w = 1 - n/nu, v = n/nu^2)."""
-    g, dg = _background(t, theta), _dbackground(t, theta)
-    nu = s * f + b * g
-    w, v = 1.0 - n / nu, n / nu ** 2
-    terms = [f * w, f * f * v, f * g * v, g * w, g * g * v, f * dg * v, g * dg * v, dg * w,
-             dg * dg * v, d2 * w]
-    return nu - np.where(n > 0, n * np.log(nu), 0.0), terms
-
-
-def _kernel(t, dt, n, f, d2, s, b, theta, theta_ref):
-    pre = np.zeros((_MOMENTS, t.size))
-    prefix_moments(t, n, d2, theta_ref, pre)
-    spans = np.zeros((1, 2), np.int64)
-    row_spans(f[None, :], 1e-22, spans)
-    tg, tdg = np.zeros(f.size), np.zeros(f.size)
-    lb, sm = np.zeros((3, f.size)), np.zeros(10)
-    done, nll = span_channel(t, np.r_[dt, 0.0], 0, theta, theta_ref, s, s, b, f, n, d2,
-                             spans[0, 0], spans[0, 1], pre, 0, tg, tdg, 0, lb, sm)
-    return done, nll, sm, spans[0]
-
-
 def _case(edges, theta_ref, shift, b, mass, sigma, s, counts="poisson"):
     t, dt = _scaled(edges)
-    g0 = _background(t, theta_ref)
+    g0 = background(t, theta_ref)
     c = stats.norm.cdf(edges, mass, sigma)
     f = np.diff(c) / (c[-1] - c[0])
     if counts == "poisson":
@@ -71,8 +39,9 @@ def _case(edges, theta_ref, shift, b, mass, sigma, s, counts="poisson"):
     else:                       # events only in the signal's span
         n = np.where(f > 1e-22, 100.0, 0.0)
     h = 1e-4   # the curvature held at theta_ref, by central differences
-    d2 = (_dbackground(t, theta_ref + h) - _dbackground(t, theta_ref - h)) / (2 * h)
-    return t, dt, n, f, d2, s, b, theta_ref + shift, theta_ref
+    d2 = (dbackground(t, theta_ref + h) - dbackground(t, theta_ref - h)) / (2 * h)
+    # the widths as span_tables hands them to the kernel (one per edge, the last 0)
+    return t, np.r_[dt, 0.0], n, f, d2, s, b, theta_ref + shift, theta_ref
 
 
 E401 = np.linspace(*WINDOW, 401)
@@ -101,10 +70,10 @@ def test_closed_form_at_the_edges_of_its_domain(name):
     1e-12 of its summed magnitude (rounding of <= 2000 terms and of the closed forms;
     ~1e-13 seen at the steepest slopes) of the sums written out bin by bin."""
     args = _case(*CASES[name])
-    done, nll, sm, span = _kernel(*args)
+    done, nll, sm, span = closed_form(*args)
     assert done, name
     assert span[1] > span[0]
-    ref_nll, terms = _reference(args[0], *args[2:8])
+    ref_nll, terms = bin_sums(args[0], *args[2:8])
     assert nll == pytest.approx(ref_nll.sum(), rel=0, abs=1e-13 * np.abs(ref_nll).sum())
     for k, term in enumerate(terms):
         assert sm[k] == pytest.approx(term.sum(), rel=0, abs=1e-12 * np.abs(term).sum()), k
@@ -121,12 +90,12 @@ def test_closed_form_near_a_flat_background(theta):
     gradient sum (index 7) within 1e-5 of its statistical scale sqrt(sum dg^2 n/nu^2) (the
     fit stops at steps of 0.03 errors; ~7e-7 seen, ~4e-8 bin by bin)."""
     args = _case(E401, theta, 0.0, 1e8, 180.0, 1.8, 250.0)
-    done, nll, sm, _ = _kernel(*args)
+    done, nll, sm, _ = closed_form(*args)
     assert done
     t, n, f, d2, s, b, th = args[0], *args[2:8]
-    ref_nll, terms = _reference(t, n, f, d2, s, b, th)
+    ref_nll, terms = bin_sums(t, n, f, d2, s, b, th)
     assert nll == pytest.approx(ref_nll.sum(), rel=0, abs=1e-13 * np.abs(ref_nll).sum())
-    g, dg = _background(t, th), _dbackground(t, th)
+    g, dg = background(t, th), dbackground(t, th)
     big = 1.0 + n / (s * f + b * g)
     size = [f * big, f * f, f * g, g * big, g * g, f * dg, g * dg, dg * big, dg * dg, d2 * big]
     for k, term in enumerate(terms):
