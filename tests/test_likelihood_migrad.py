@@ -10,9 +10,6 @@
   ``STALL_CALLS`` calls within ``FAR_MARGIN`` of ``beat``, after ``FAR_CALLS`` beyond it,
   and a run far above that stalls for fewer calls and then falls goes on; the lowest point
   seen is what a stopped run reports.
-* A run that crawls (``RESTART_GAIN`` in ``RESTART_CALLS`` calls) near or below ``beat``
-  restarts from its lowest point, far above it does not; a run restarted ``RESTARTS``
-  times still ends at scipy's minimum (1e-6 in the value, 1e-3 in the parameters).
 """
 
 from __future__ import annotations
@@ -128,50 +125,3 @@ def test_far_above_the_best_a_stall_ends_sooner():
     assert _run(wins, 3 * mg.STALL_CALLS) == 0
     assert wins.best_f == pytest.approx(50.0 - 0.5 * 3 * mg.STALL_CALLS)
 
-
-def _run_restart(watch: mg._Watch, calls: int) -> int:
-    """Like :func:`_run`, for the restart: the call on which it was asked (0: never)."""
-    for k in range(1, calls + 1):
-        try:
-            watch(0.0)
-        except mg._Restart:
-            return k
-    return 0
-
-
-def test_a_crawling_run_restarts_near_or_below_the_best_only():
-    gain = 0.5 * mg.RESTART_GAIN / mg.RESTART_CALLS  # crawling
-    crawl = (lambda k: 10.0 - gain * k)
-    assert _run_restart(mg._Watch(_Sequence(crawl), None, restart=True),
-                        3 * mg.RESTART_CALLS) == mg.RESTART_CALLS + 1
-    assert _run_restart(mg._Watch(_Sequence(crawl), 10.0, restart=True),
-                        3 * mg.RESTART_CALLS) == mg.RESTART_CALLS + 1
-    assert _run_restart(mg._Watch(_Sequence(crawl), None, restart=False),
-                        3 * mg.RESTART_CALLS) == 0
-    far = mg._Watch(_Sequence(crawl), 10.0 - 2 * mg.STALL_MARGIN, restart=True)
-    assert _run_restart(far, 3 * mg.RESTART_CALLS) == 0
-
-
-def test_a_restarted_run_ends_at_the_minimum_scipy_finds(monkeypatch):
-    # every run "crawls" after 5 calls: it restarts RESTARTS times from its lowest point
-    monkeypatch.setattr(mg, "RESTART_CALLS", 5)
-    monkeypatch.setattr(mg, "RESTART_GAIN", 1e9)
-    starts = []
-    real = mg.new_minuit
-
-    def counted(cost, start, *args, **kw):
-        starts.append(np.array(start, float))
-        return real(cost, start, *args, **kw)
-
-    monkeypatch.setattr(mg, "new_minuit", counted)
-    cost = _Smooth()
-    lo, hi = np.full(3, -2.0), np.full(3, 2.0)
-    start = np.array([0.1, 0.1, 0.1])
-    mo = mg.migrad(cost, start, lo, hi, ["a", "b", "c"])
-    assert len(starts) == mg.RESTARTS + 1
-    assert cost(*starts[-1]) < cost(*starts[0])  # from the lowest point so far
-    ref = optimize.minimize(lambda v: cost(*v), start, jac=lambda v: cost.grad(*v),
-                            bounds=list(zip(lo, hi)), method="L-BFGS-B",
-                            options={"ftol": 1e-15, "gtol": 1e-12})
-    assert abs(mo.fval - ref.fun) < 1e-6
-    assert np.max(np.abs(mo.x - ref.x)) < 1e-3

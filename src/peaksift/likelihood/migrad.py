@@ -28,21 +28,14 @@ minimum found by another start.  :class:`_Watch` sits between MIGRAD and the cos
   1.3-39 NLL units above the best minimum took 48 % of all MIGRAD calls, stopped only after
   1,000 calls without a gain; the longest stall of a run that went on to win was 197
   calls, then a fall of 404 units, on a half-empty window).
-A run at or below ``beat`` (or within ``STALL_MARGIN`` of it) is never stopped.
+A run at or below ``beat`` is never stopped.  Not done: restarting a run that crawls near
+or below ``beat`` (< 1e-4 in 300 calls) from its lowest point cut a Crystal Ball fit's
+21,700-call crawl to its call limit and lowered 4 of 50 slow fits' minima, but on a
+half-empty window (an unbinned exppoly3 whose NLL falls for thousands of calls) it left one
+fit 4.9 units higher: a crawl there can end in a fall.
 Nor is a run stopped when its path comes near the best minimum (Fisher scoring's
 ``joined``): in flat valleys such runs went on to a point up to 4e-5 lower, and stopping
 them saved nothing (they had reached the minimum's neighbourhood at the end).
-
-A run that crawls -- its lowest NLL has not fallen by ``RESTART_GAIN`` in ``RESTART_CALLS``
-calls while it is still within ``STALL_MARGIN`` of ``beat`` or has none -- starts afresh
-from its lowest point, with new step sizes and a new approximation of the Hessian, at most
-``RESTARTS`` times (within ``CALL_LIMIT`` calls in all); not the polishing run of
-:mod:`.refine` (restarted, such runs left a half-empty window's minimum for points up to
-750 units lower on other bounds, which the polish may not keep, and took 3 times longer).  Along the flat directions of a
-Crystal Ball's tails a winning run of an unbinned weak-signal fit reached its valley after
-~400 calls and then crawled 21,700 calls to its call limit for 0.002 in NLL (7 of an 8 s
-fit, flagged "did not converge"); restarted (a fresh approximation of the Hessian) it
-reached 0.011 lower in ~600 calls.
 """
 
 from __future__ import annotations
@@ -55,9 +48,8 @@ import numpy as np
 
 from .minimum import Minimum
 
-__all__ = ["CALL_LIMIT", "FAR_CALLS", "FAR_MARGIN", "RESTARTS", "RESTART_CALLS", "RESTART_GAIN",
-           "STALL_CALLS", "STALL_GAIN", "STALL_MARGIN", "STUCK_CALLS", "STUCK_GAIN",
-           "STUCK_MARGIN", "migrad", "new_minuit"]
+__all__ = ["FAR_CALLS", "FAR_MARGIN", "STALL_CALLS", "STALL_GAIN", "STALL_MARGIN", "STUCK_CALLS",
+           "STUCK_GAIN", "STUCK_MARGIN", "migrad", "new_minuit"]
 
 #: calls without a gain of STALL_GAIN in the run's lowest NLL after which a run still
 #: STALL_MARGIN above the best minimum is stopped
@@ -71,13 +63,8 @@ FAR_MARGIN = 1.0
 STUCK_CALLS = 2000
 STUCK_GAIN = 1e-6
 STUCK_MARGIN = 1e-3
-#: MIGRAD's own call limit (over a run and its restarts)
+#: MIGRAD's own call limit
 CALL_LIMIT = 20000
-#: a run whose lowest NLL has not fallen by RESTART_GAIN in RESTART_CALLS calls starts
-#: afresh from its lowest point, at most RESTARTS times
-RESTART_CALLS = 300
-RESTART_GAIN = 1e-4
-RESTARTS = 2
 
 
 def new_minuit(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
@@ -104,20 +91,12 @@ class _Stop(Exception):
     """Raised from inside MIGRAD's call of the cost: the run ends (see :class:`_Watch`)."""
 
 
-class _Restart(Exception):
-    """Raised from inside MIGRAD's call of the cost: the run crawls, start it afresh."""
-
-
 class _Watch:
     """The cost as MIGRAD sees it: the same values and gradient, the lowest point seen,
     and the stops of the module guide."""
 
-    def __init__(self, cost: Any, beat: float | None, restart: bool = False) -> None:
+    def __init__(self, cost: Any, beat: float | None) -> None:
         self.cost = cost
-        self.restart = restart
-        self.slow = math.inf  # the same for RESTART_GAIN
-        self.crawl = 0
-        self.calls = 0
         self.errordef = cost.errordef
         self.beat = math.inf if beat is None or not math.isfinite(beat) else float(beat)
         self.best_f = math.inf
@@ -129,7 +108,6 @@ class _Watch:
 
     def __call__(self, *x: float) -> float:
         f = self.cost(*x)
-        self.calls += 1
         if f < self.best_f and f < 1e299:  # (1e300 is the cost's infinity: never the best)
             self.best_f, self.best_x = f, np.array(x, float)
         if self.best_f < self.mark - STALL_GAIN:
@@ -144,13 +122,6 @@ class _Watch:
                 or (self.since >= FAR_CALLS and self.best_f > self.beat + FAR_MARGIN)
                 or (self.still >= STUCK_CALLS and self.best_f > self.beat + STUCK_MARGIN)):
             raise _Stop
-        if self.best_f < self.slow - RESTART_GAIN:
-            self.slow, self.crawl = self.best_f, 0
-        else:
-            self.crawl += 1
-        if (self.restart and self.crawl >= RESTART_CALLS and self.best_x is not None
-                and self.best_f <= self.beat + STALL_MARGIN):
-            raise _Restart
         return f
 
     def grad(self, *x: float) -> np.ndarray:
@@ -159,28 +130,21 @@ class _Watch:
 
 def migrad(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
            names: list[str], beat: float | None = None, tol: float = 0.1,
-           steps: np.ndarray | None = None, restarts: int = RESTARTS) -> Minimum:
+           steps: np.ndarray | None = None) -> Minimum:
     """MIGRAD from ``start`` on the watched cost (module guide): ``beat`` the NLL of the best
     minimum the caller has (None: never stopped); ``tol`` iminuit's tolerance (EDM goal
-    0.002 tol errordef); ``steps`` initial step sizes (see :func:`new_minuit`);
-    ``restarts`` the most restarts of a crawling run (module guide)."""
+    0.002 tol errordef); ``steps`` initial step sizes (see :func:`new_minuit`)."""
+    watch = _Watch(cost, beat)
+    m = new_minuit(watch, start, lower, upper, names, steps)
+    m.tol = tol
     nan = np.full(len(names), np.nan)
-    used = 0
-    for attempt in range(restarts + 1):
-        watch = _Watch(cost, beat, restart=attempt < restarts)
-        m = new_minuit(watch, start, lower, upper, names, steps)
-        m.tol = tol
-        with warnings.catch_warnings(), np.errstate(all="ignore"):
-            warnings.simplefilter("ignore")
-            try:
-                m.migrad(ncall=max(CALL_LIMIT - used, 1))
-                break
-            except _Stop:
-                x = watch.best_x if watch.best_x is not None else np.asarray(start, float)
-                return Minimum(x, watch.best_f, False, False, nan, "iminuit-migrad")
-            except _Restart:
-                used += watch.calls
-                start = watch.best_x
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore")
+        try:
+            m.migrad(ncall=CALL_LIMIT)
+        except _Stop:
+            x = watch.best_x if watch.best_x is not None else np.asarray(start, float)
+            return Minimum(x, watch.best_f, False, False, nan, "iminuit-migrad")
     fm = m.fmin
     x, f = np.asarray(m.values, float), float(m.fval)
     if not fm.is_valid and watch.best_x is not None and watch.best_f < f:

@@ -101,7 +101,7 @@ def _polish(cost: Any, x0: np.ndarray, f0: float, lower: np.ndarray, upper: np.n
     # MIGRAD again from the minimum with a 100 times tighter EDM goal
     names = [f"p{i}" for i in range(x0.size)]
     steps = np.where(np.isfinite(errors) & (errors > 0), errors, np.nan)
-    mo = migrad(cost, x0, lower, upper, names, tol=POLISH_TOL, steps=steps, restarts=0)
+    mo = migrad(cost, x0, lower, upper, names, tol=POLISH_TOL, steps=steps)
     if better(mo.x, mo.fval):
         return np.asarray(mo.x, float), float(mo.fval)
     return x0, f0
