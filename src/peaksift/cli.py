@@ -37,8 +37,10 @@ Handler = Callable[[argparse.Namespace], int]
 
 def _config(args: argparse.Namespace) -> Any:
     """The validated config with the command line's execution overrides applied."""
+    from ._lean_imports import scipy_special
     from .config import load_config
 
+    scipy_special()  # (before the config's checks import it the long way)
     cfg = load_config(args.config)
     ov: dict[str, Any] = {}
     if getattr(args, "workers", None) is not None:
@@ -301,8 +303,10 @@ def _cmd_search(args: argparse.Namespace) -> int:
 def _search_command(args: argparse.Namespace) -> int:
     import warnings
 
+    from ._lean_imports import scipy_special
     from .search import run_search
 
+    scipy_special()  # (a combination's channels load their configs in run_search)
     with warnings.catch_warnings(record=True) as caught:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars

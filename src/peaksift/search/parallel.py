@@ -33,6 +33,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
+from .._lean_imports import scipy_special
 from .._processes import (
     die_with_parent,
     quiet_fork,
@@ -392,6 +393,7 @@ def _figure_child(queue: Any, conn: Any, parent: int, formats: Sequence[str]) ->
         # a collection: the collector waits until they are in, then they are frozen (the
         # second drawer inherits them so)
         pause()  # (already off in a worker forked at the command's start)
+        scipy_special()  # (the result modules' and the fit figure's, the short way)
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up(formats)  # (an early worker does not know them: PNG only)
