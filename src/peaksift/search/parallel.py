@@ -291,13 +291,11 @@ def _warm_up(formats: Sequence[str] = ()) -> None:
 def _job_modules() -> None:
     """Import what a figure job needs: the modules of the results it carries (unpickling a
     job imports them: the histogram, the fit, scan and limit results; none of them loads
-    the config or the events' modules) and the fit figure's, with the compiled shapes the
-    fit curves use (numba).  Done once, before the second drawer forks, instead of by each
-    drawer at its first job."""
+    the config, the events' modules or numba: a job's fit results come without their cost
+    functions, ``search.run._drawn``) and the fit figure's.  Done once, before the second
+    drawer forks, instead of by each drawer at its first job."""
     from .. import histogram  # noqa: F401
     from ..fitting import figure, result  # noqa: F401
-    from ..likelihood import kernels  # noqa: F401  (numba: a fit's curves use its kernels)
-    from ..shapes import compiled  # noqa: F401
     from ..stats import limit_result, scan_result  # noqa: F401
 
 
