@@ -37,10 +37,8 @@ Handler = Callable[[argparse.Namespace], int]
 
 def _config(args: argparse.Namespace) -> Any:
     """The validated config with the command line's execution overrides applied."""
-    from ._lean_imports import scipy_special
     from .config import load_config
 
-    scipy_special()  # (before the config's checks import it the long way)
     cfg = load_config(args.config)
     ov: dict[str, Any] = {}
     if getattr(args, "workers", None) is not None:
@@ -303,10 +301,8 @@ def _cmd_search(args: argparse.Namespace) -> int:
 def _search_command(args: argparse.Namespace) -> int:
     import warnings
 
-    from ._lean_imports import scipy_special
     from .search import run_search
 
-    scipy_special()  # (a combination's channels load their configs in run_search)
     with warnings.catch_warnings(record=True) as caught:
         # numpy's floating-point notices from the statistics layer are counted, not
         # printed one by one in the middle of the progress bars
@@ -502,6 +498,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.command not in ("search", "spectrum", "fit"):  # (these import a lot first)
         _imports_done()
+    else:  # before their modules and configs import it the long way
+        from ._lean_imports import scipy_special
+
+        scipy_special()
     _setup_logging(args)
     warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
     try:

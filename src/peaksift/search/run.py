@@ -16,7 +16,6 @@ import numpy as np
 from .._jit import numba_extensions_deferred
 from ..config import Config, load_config
 from ..errors import ConfigError
-from ..fitting.result import FitResult
 from .calibration import calibrate
 from .common import (
     _blinded_copy,
@@ -453,6 +452,8 @@ def _drawn(value: Any) -> Any:
     """A FitResult as a figure job carries it: without its cost function (what
     ``to_minuit`` needs, never a figure), whose compiled kernels would load numba in the
     figure process to unpickle it (~0.35 s of CPU); anything else as it is."""
+    from ..fitting.result import FitResult
+
     if isinstance(value, FitResult) and value.cost is not None:
         return dataclasses.replace(value, cost=None)
     return value
