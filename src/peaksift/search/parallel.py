@@ -194,6 +194,7 @@ class FigureWorker:
         (on a loaded machine the search forks it after its own imports, as it used to)."""
         if not forking() or _EARLY or os.getloadavg()[0] > (os.cpu_count() or 1):
             return None
+        _job_modules()  # (the search imports them too: the process inherits them instead)
         _EARLY.append(cls(None))
         return _EARLY[0]
 
