@@ -23,10 +23,14 @@ import math
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import gaussian_rows, gaussian_width_rows
+from ..shapes.compiled import gaussian_width_rows
 from .kernels import profile_two_yields
 
-__all__ = ["coarse_scan", "local_maxima", "narrow_rows", "profile_widths"]
+__all__ = ["SCAN_BAND", "coarse_scan", "local_maxima", "narrow_rows", "profile_widths"]
+
+#: the coarse scan's rows are computed within this many widths of their mass (beyond, a
+#: bin holds < exp(-SCAN_BAND^2 / 2) ~ 3e-18 of the row's peak bin: below the profile's BAND)
+SCAN_BAND = 9.0
 
 
 @njit(cache=True, nogil=True)
@@ -60,8 +64,8 @@ def profile_widths(edges, lo, hi, n, s, g, mass, widths, band, y0, y1, rows, y,
 @njit(cache=True, nogil=True)
 def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cover - compiled
     """The coarse likelihood scan of the window: a Gaussian of width ``sigma`` at every
-    trial mass ``grid[m]`` (:func:`peaksift.shapes.compiled.gaussian_rows` on the
-    window-clipped edges) on the background fractions ``g``, its yield and the background
+    trial mass ``grid[m]`` (the rows of :func:`peaksift.shapes.compiled.gaussian_rows` on
+    the window-clipped edges, each within :data:`SCAN_BAND` widths) on the background fractions ``g``, its yield and the background
     total profiled from ``x (M, 2)`` (:func:`.kernels.profile_two_yields`): yields into
     ``x``, NLLs into ``nll (M,)``.  False when a row cannot be made."""
     ne = edges.size
@@ -69,8 +73,19 @@ def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cove
     for i in range(ne):
         e[i] = min(max(edges[i], lo), hi)
     frac = np.empty((grid.size, ne - 1))
-    if not gaussian_rows(e, grid, sigma, lo, hi, frac):
-        return False
+    # each row only on the edges within SCAN_BAND widths of its mass, the rest 0: the
+    # profile uses a row only where it exceeds BAND (1e-12) of its peak, which a bin
+    # beyond 7.5 widths never does, and a row's fractions are computed edge by edge, so
+    # the numbers are those of the whole row (gaussian_rows)
+    width = np.empty(1)
+    width[0] = sigma
+    i0 = np.empty(1, np.int64)
+    i1 = np.empty(1, np.int64)
+    for b in range(grid.size):
+        i0[0] = max(np.searchsorted(e, grid[b] - SCAN_BAND * sigma) - 1, 0)
+        i1[0] = min(np.searchsorted(e, grid[b] + SCAN_BAND * sigma) + 1, ne - 1)
+        if not gaussian_width_rows(e, grid[b], width, i0, i1, lo, hi, frac[b:b + 1]):
+            return False
     profile_two_yields(n, s, frac, g, x, nll, 25)
     return True
 
