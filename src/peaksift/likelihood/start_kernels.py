@@ -10,6 +10,11 @@
   :func:`local_maxima` -- its separated local maxima, best first.
 * :func:`narrow_rows` -- the bins where a peak narrower than a bin could gain enough to be
   a start (:func:`.narrow.narrow_candidates`'s bound from the bins' Poisson deviances).
+* :func:`background_fit` -- a background-only start fit (:mod:`.start_background`) in one
+  call: the used bins' effective counts and the saturated constant
+  (:func:`.cost._binned_data`'s), the problem's buffers, :func:`.driver._drive` and the
+  positive-definiteness test of :func:`.minimize.covariance`.  The constant is summed in
+  bin order (numpy sums pairwise): it moves the NLL by rounding only.
 
 Imported on first use (:func:`peaksift._jit.compiled_module`): importing the likelihood
 loads no numba.  ``tests/test_likelihood_start_kernels.py`` checks it against scipy's
@@ -24,9 +29,11 @@ import numpy as np
 from numba import njit
 
 from ..shapes.compiled import gaussian_width_rows
-from .kernels import profile_two_yields
+from .driver import CONVERGED, _drive
+from .kernels import covariance_small, profile_two_yields
 
-__all__ = ["SCAN_BAND", "coarse_scan", "local_maxima", "narrow_rows", "profile_widths"]
+__all__ = ["SCAN_BAND", "background_fit", "coarse_scan", "local_maxima", "narrow_rows",
+           "profile_widths"]
 
 #: the coarse scan's rows are computed within this many widths of their mass (beyond, a
 #: bin holds < exp(-SCAN_BAND^2 / 2) ~ 3e-18 of the row's peak bin: below the profile's BAND)
@@ -152,3 +159,56 @@ def narrow_rows(e, n, b, s, k, least, exclude, rows):  # pragma: no cover - comp
             rows[m] = j
             m += 1
     return m
+
+
+@njit(cache=True, nogil=True)
+def background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_iter, edm_goal,
+                   floor, posdef_tol, x_out):  # pragma: no cover - compiled
+    """Fisher scoring (:func:`.driver._drive`) of a background-only binned cost from
+    ``x0`` on the bins ``mask`` selects (empty: every bin), ``static`` the problem's fixed
+    arrays (:class:`.start_background._BackgroundFit`): True with the minimum in ``x_out``
+    when it converged to a point whose information is positive definite (scaled, above
+    ``posdef_tol``), else False (the caller's general path then answers)."""
+    (code, edata, escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree, rows,
+     nedges) = static
+    nall = n.size
+    m = nall
+    if mask.size:
+        m = 0
+        for j in range(nall):
+            if mask[j]:
+                m += 1
+    bins = np.empty(m, np.int64)
+    k = 0
+    for j in range(nall):
+        if mask.size == 0 or mask[j]:
+            bins[k] = j
+            k += 1
+    s = np.empty(m)
+    eff = np.empty(m)
+    unit = True
+    for i in range(m):
+        s[i] = scale[bins[i]]
+        eff[i] = n[bins[i]] * s[i]
+        unit = unit and s[i] == 1.0
+    # the saturated constant sum(n~ ln n~ - n~) - sum(n~ ln s), as _binned_data's
+    const = 0.0
+    for i in range(m):
+        t = eff[i]
+        const += t * math.log(t if t > 0.0 else 1.0) - t
+    if not unit:
+        c2 = 0.0
+        for i in range(m):
+            c2 += eff[i] * math.log(s[i])
+        const -= c2
+    npar = x0.size
+    prob = (code, edata, escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree,
+            bins, eff, s, unit, floor, np.zeros((rows, nedges)), np.zeros(m),
+            np.zeros((npar, m)), np.zeros(npar), np.zeros((npar, npar)), np.empty(1))
+    info = np.empty((npar, npar))
+    x_last = np.empty(npar)
+    status, _, _ = _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal,
+                          False, x_out, 0.0, info, 0.0, 0.0, x_out, info, x_last)
+    if status != CONVERGED:
+        return False
+    return covariance_small(info, posdef_tol, np.empty((npar, npar)))
