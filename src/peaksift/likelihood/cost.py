@@ -59,6 +59,7 @@ class _Cost:
         self.free = np.asarray(free, int)
         row = {int(i): k for k, i in enumerate(self.free)}
         self._row = row
+        self._domain: tuple[np.ndarray, np.ndarray] | None = None  # see _shape_domain
         # constraints on free parameters, by row of the free vector
         self._cons = [(row[int(i)], c) for i, c in constraints if int(i) in row]
         self._last: tuple[bytes, float, np.ndarray] | None = None
@@ -78,14 +79,19 @@ class _Cost:
         return np.maximum(lo, own[0]), np.minimum(hi, own[1])
 
     def _shape_domain(self) -> tuple[np.ndarray, np.ndarray]:
-        lo = np.full(self.free.size, -np.inf)
-        hi = np.full(self.free.size, np.inf)
-        for shape, sl, _ in self.model.blocks:
-            for j, i in enumerate(range(sl.start, sl.stop)):
-                k = self._row.get(i)
-                if k is not None:
-                    lo[k], hi[k] = shape.parameters[j].lower, shape.parameters[j].upper
-        return lo, hi
+        # made once per cost (the model and the free parameters do not change; the costs
+        # copied from it share it): the observed Hessian asks at every minimum
+        if self._domain is None:
+            lo = np.full(self.free.size, -np.inf)
+            hi = np.full(self.free.size, np.inf)
+            for shape, sl, _ in self.model.blocks:
+                for j, i in enumerate(range(sl.start, sl.stop)):
+                    k = self._row.get(i)
+                    if k is not None:
+                        lo[k], hi[k] = shape.parameters[j].lower, shape.parameters[j].upper
+            lo.flags.writeable = hi.flags.writeable = False
+            self._domain = (lo, hi)
+        return self._domain
 
     def expand(self, x: Sequence[float]) -> np.ndarray:
         v = self.full.copy()
