@@ -19,7 +19,6 @@ from .._jit import compiled_module
 from ..shapes import Gaussian
 from .minimize import damped_step
 from .poisson import (
-    KERNELS_MODULE,
     SHAPE_ROWS_MODULE,
     START_KERNELS_MODULE,
     binned_gradient,
@@ -73,7 +72,7 @@ def _coarse_profile(n, scale, signal_fractions, background):
     x[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
     x[:, 1] = btot
     if use_compiled():
-        profile_two_yields = compiled_module(KERNELS_MODULE).profile_two_yields
+        profile_two_yields = compiled_module(START_KERNELS_MODULE).profile_two_yields
         nll = np.empty(m)
         if (isinstance(scale, np.ndarray) and scale.dtype == float and scale.shape == g.shape
                 and scale.flags.c_contiguous and not scale.flags.writeable):

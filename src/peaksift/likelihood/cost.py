@@ -59,6 +59,7 @@ class _Cost:
         self.free = np.asarray(free, int)
         row = {int(i): k for k, i in enumerate(self.free)}
         self._row = row
+        self._domain: tuple[np.ndarray, np.ndarray] | None = None  # see _shape_domain
         # constraints on free parameters, by row of the free vector
         self._cons = [(row[int(i)], c) for i, c in constraints if int(i) in row]
         self._last: tuple[bytes, float, np.ndarray] | None = None
@@ -78,14 +79,19 @@ class _Cost:
         return np.maximum(lo, own[0]), np.minimum(hi, own[1])
 
     def _shape_domain(self) -> tuple[np.ndarray, np.ndarray]:
-        lo = np.full(self.free.size, -np.inf)
-        hi = np.full(self.free.size, np.inf)
-        for shape, sl, _ in self.model.blocks:
-            for j, i in enumerate(range(sl.start, sl.stop)):
-                k = self._row.get(i)
-                if k is not None:
-                    lo[k], hi[k] = shape.parameters[j].lower, shape.parameters[j].upper
-        return lo, hi
+        # made once per cost (the model and the free parameters do not change; the costs
+        # copied from it share it): the observed Hessian asks at every minimum
+        if self._domain is None:
+            lo = np.full(self.free.size, -np.inf)
+            hi = np.full(self.free.size, np.inf)
+            for shape, sl, _ in self.model.blocks:
+                for j, i in enumerate(range(sl.start, sl.stop)):
+                    k = self._row.get(i)
+                    if k is not None:
+                        lo[k], hi[k] = shape.parameters[j].lower, shape.parameters[j].upper
+            lo.flags.writeable = hi.flags.writeable = False
+            self._domain = (lo, hi)
+        return self._domain
 
     def expand(self, x: Sequence[float]) -> np.ndarray:
         v = self.full.copy()
@@ -171,6 +177,7 @@ class BinnedCost(_Cost):
                                self._row.get(iy, -1)))
 
         self._state: tuple | None = None
+        self._buffers_at: bytes | None = None  # see buffers_hold
         self._empty: np.ndarray | None = None  # the used bins without entries
         self._problem: tuple | None = None  # the compiled minimiser's arrays, made on demand
         self._fused = _fused_path(self)
@@ -217,6 +224,7 @@ class BinnedCost(_Cost):
         self.ncall += 1
         x = np.asarray(x, float)
         if self._fused is not None:
+            self._buffers_at = None
             out = self._fused.evaluate(self.expand(x), info)
             if out is not None:
                 val, g, fisher, mu = out
@@ -254,6 +262,7 @@ class BinnedCost(_Cost):
         c = copy.copy(self)
         c.full = np.asarray(full, float).copy()
         c._last, c._last_value, c._state, c._problem, c.ncall = None, None, None, None, 0
+        c._buffers_at = None
         c._fused = None if self._fused is None else self._fused.fresh()
         c._jac = None if self._jac is None else np.zeros_like(self._jac)
         return c
@@ -265,7 +274,7 @@ class BinnedCost(_Cost):
         c = copy.copy(self)
         c.full = np.asarray(full, float).copy()
         c._last, c._last_value, c._state, c._problem, c._empty = None, None, None, None, None
-        c.ncall = 0
+        c.ncall, c._buffers_at = 0, None
         (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(*self._data, mask)
         c._fused = (None if self._fused is None else
                     self._fused.on_bins(c.mask, c.n, c.s, c.unit_scale))
@@ -290,7 +299,20 @@ class BinnedCost(_Cost):
         """Book ``calls`` evaluations made by the compiled minimiser, the last at
         ``x_last`` (its expectation is in the compiled buffers)."""
         self.ncall += int(calls)
-        self._state = (np.asarray(x_last, float).tobytes(), self._fused.mu.copy(), None)
+        key = np.asarray(x_last, float).tobytes()
+        self._state = (key, self._fused.mu.copy(), None)
+        self._buffers_at = key
+
+    def buffers_changed(self) -> None:
+        """Called before anything writes the compiled buffers (see :meth:`buffers_hold`)."""
+        self._buffers_at = None
+
+    def buffers_hold(self, x: np.ndarray) -> bool:
+        """Whether the compiled buffers (CDF rows, yields, expectation, Jacobian) hold the
+        compiled minimiser's complete evaluation at ``x``, its last point: the observed
+        Hessian there need not evaluate it again."""
+        return self._buffers_at is not None and self._buffers_at == np.asarray(
+            x, float).tobytes()
 
     @property
     def has_empty_bins(self) -> bool:

@@ -277,17 +277,25 @@ def _shape_rows(prob, k, v, out):  # pragma: no cover - compiled
 #: the Hessian's sums over bins may be reordered (vectorised): its last digits move, ~1e-16
 #: of each entry, nothing an error reports (every divisor is an expectation floored > 0)
 @njit(cache=True, nogil=True, fastmath={"reassoc", "contract"}, error_model="numpy")
-def _hessian(prob, full, free, x, steps, lower, upper, hess):  # pragma: no cover - compiled
+def _hessian(prob, full, free, x, steps, lower, upper, hess,
+             evaluated):  # pragma: no cover - compiled
     """The observed Hessian of :meth:`.cost.BinnedCost.observed_hessian` into ``hess``;
-    False where a kernel declines (the Python path then answers)."""
+    False where a kernel declines (the Python path then answers).  ``evaluated``: the
+    problem's buffers hold the evaluation at ``x`` already (the minimiser's last point),
+    which is then not made again (the same numbers)."""
     (_code, _edata, _escal, pstart, rstart, _yidx, yfree, value_row, drow, dcomp, dfree, bins,
      n, s, unit, floor, cdf, mu, jac, g, fisher, yields) = prob
-    v, ok = _fill(prob, full, free, x)
-    if not ok:
-        return False
-    if not math.isfinite(poisson_pass(cdf, value_row, yields, yfree, drow, dcomp, dfree, bins,
-                                      n, s, unit, floor, False, mu, jac, g, fisher)):
-        return False  # a negative expectation: outside the model
+    if evaluated:
+        v = full.copy()
+        for i in range(free.size):
+            v[free[i]] = x[i]
+    else:
+        v, ok = _fill(prob, full, free, x)
+        if not ok:
+            return False
+        if not math.isfinite(poisson_pass(cdf, value_row, yields, yfree, drow, dcomp, dfree,
+                                          bins, n, s, unit, floor, False, mu, jac, g, fisher)):
+            return False  # a negative expectation: outside the model
     npar = free.size
     nb = bins.size
     contiguous = nb == cdf.shape[1] - 1
@@ -374,10 +382,12 @@ def compiled_observed_hessian(cost: Any, x: np.ndarray, steps: np.ndarray,
         return None
     npar = int(cost.free.size)
     hess = np.empty((npar, npar))
+    x = np.asarray(x, float)
+    evaluated = cost.buffers_hold(x)
+    cost.buffers_changed()
     try:
-        ok = _hessian(prob, cost.full, cost.free, np.asarray(x, float),
-                      np.asarray(steps, float), np.asarray(lower, float),
-                      np.asarray(upper, float), hess)
+        ok = _hessian(prob, cost.full, cost.free, x, np.asarray(steps, float),
+                      np.asarray(lower, float), np.asarray(upper, float), hess, evaluated)
     except (ArithmeticError, ValueError):
         return None
     return hess if ok else None
@@ -432,6 +442,7 @@ def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper:
         join, xb, fb = True, np.asarray(near.x, float), float(near.nll)
         hb, jn, jd = np.asarray(near.hessian, float), float(near.nll_margin), float(
             near.distance)
+    cost.buffers_changed()
     try:
         status, f, calls = _drive(prob, cost.full, cost.free, float(cost.constant),
                                   np.asarray(x0, float), np.asarray(lower, float),

@@ -12,8 +12,7 @@ What is here and when it is used
   counts, the NLL, its gradient and the Fisher information together (no (parameters x bins)
   Jacobian is written out).  A free fit of a Gaussian on a power law in 1,350 bins costs
   ~0.1 ms per evaluation this way against ~0.3 ms through ~20 numpy operations.
-* :func:`profile_two_yields` -- the free fit's coarse scan of the window (two yields
-  profiled at every trial mass); :func:`solve_small` -- the minimiser's Newton steps;
+* :func:`solve_small` -- the minimiser's Newton steps;
   :func:`covariance_small` -- :func:`.minimize.covariance` for a few parameters.
 
 The numpy path (shapes' ``fractions_and_grad`` and :func:`~peaksift.likelihood.poisson.binned_nll`)
@@ -298,114 +297,6 @@ class FusedBinned:
                            self.floor, info, self.mu, self.jac, self.g, self.fisher)
         return (float(val), self.g.copy(), self.fisher.copy() if info else None,
                 self.mu.copy())
-
-
-#: the coarse scan treats a trial mass's signal fractions below this fraction of their
-#: largest value as 0 (its far tails): those bins then hold background only, summed in
-#: closed form, so a trial costs its peak's bins instead of the whole window
-BAND = 1e-12
-
-
-@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
-def _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c):  # pragma: no cover
-    """sum(s mu - n s ln(s mu)) of mu = a0 f[m] + a1 g over all bins: the band [j0, j1)
-    term by term, the rest (background only) from its sums; inf when mu <= 0 anywhere.
-    (No early exit and vlog: the band's loop vectorises.)"""
-    if not a1 > 0.0 and (out_g > 0.0 or out_n > 0.0):
-        return math.inf
-    val = a1 * out_g - out_c
-    if out_n > 0.0:
-        val -= out_n * math.log(a1)
-    bad = 0
-    band = 0.0
-    for j in range(j0, j1):
-        mu = a0 * f[m, j] + a1 * g[j]
-        bad += 0 if mu > 0.0 else 1
-        smu = s[j] * mu
-        band += smu - n[j] * s[j] * vlog(smu)
-    return math.inf if bad else val + band
-
-
-@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
-def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - compiled
-    """Profile a signal yield and a background normalisation at each trial mass: row m of
-    ``f`` holds the signal's bin fractions at mass m, ``g`` the background's; ``x (M, 2)``
-    starts and receives the yields, ``nll (M,)`` receives the NLL (saturated term left
-    out).  Damped Newton on the Fisher information (the step of
-    :func:`~peaksift.likelihood.minimize.damped_step`, solved in closed form for 2 x 2),
-    per mass until its NLL gains < 1e-6 in two steps running or ``iterations`` are done.
-    Bins outside a mass's band (see :data:`BAND`) enter through running sums."""
-    nb = n.size
-    # running sums of the background-only terms: s g, n s, n s ln(s g)
-    cg = np.zeros(nb + 1)
-    cn = np.zeros(nb + 1)
-    cc = np.zeros(nb + 1)
-    for j in range(nb):
-        ns = n[j] * s[j]
-        cg[j + 1] = cg[j] + s[j] * g[j]
-        cn[j + 1] = cn[j] + ns
-        cc[j + 1] = cc[j] + (ns * math.log(s[j] * g[j]) if ns > 0.0 else 0.0)
-    for m in range(f.shape[0]):
-        top = 0.0
-        for j in range(nb):
-            top = max(top, f[m, j])
-        j0 = 0
-        while j0 < nb and not f[m, j0] > BAND * top:
-            j0 += 1
-        j1 = nb
-        while j1 > j0 and not f[m, j1 - 1] > BAND * top:
-            j1 -= 1
-        out_g = cg[nb] - cg[j1] + cg[j0]
-        out_n = cn[nb] - cn[j1] + cn[j0]
-        out_c = cc[nb] - cc[j1] + cc[j0]
-        a0 = x[m, 0]
-        a1 = x[m, 1]
-        cur = _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c)
-        lam = 1e-3
-        quiet = 0
-        for _ in range(iterations):
-            # background-only bins: d/da1 = sum s g - n s / a1, information sum s g / a1
-            mu1 = max(1e-300, a1)
-            g0 = 0.0
-            g1 = out_g - out_n / mu1
-            h00 = 0.0
-            h01 = 0.0
-            h11 = out_g / mu1
-            for j in range(j0, j1):
-                mu = a0 * f[m, j] + a1 * g[j]
-                mu = max(mu, 1e-300)
-                r = s[j] * (1.0 - n[j] / mu)
-                w = s[j] / mu
-                g0 += f[m, j] * r
-                g1 += g[j] * r
-                h00 += w * f[m, j] * f[m, j]
-                h01 += w * f[m, j] * g[j]
-                h11 += w * g[j] * g[j]
-            floor = 1e-6 * 0.5 * (abs(h00) + abs(h11)) + 1e-300
-            d00 = h00 + lam * (h00 + floor) + 1e-14 * floor
-            d11 = h11 + lam * (h11 + floor) + 1e-14 * floor
-            det = d00 * d11 - h01 * h01
-            s0 = -(d11 * g0 - h01 * g1) / det
-            s1 = -(d00 * g1 - h01 * g0) / det
-            if not (math.isfinite(s0) and math.isfinite(s1)):
-                s0 = 0.0
-                s1 = 0.0
-            t = _nll2(n, s, f, g, m, j0, j1, a0 + s0, a1 + s1, out_g, out_n, out_c)
-            gain = 0.0
-            if t <= cur:
-                gain = cur - t
-                a0 += s0
-                a1 += s1
-                cur = t
-                lam = max(lam * 0.1, 1e-9)
-            else:
-                lam *= 10.0
-            quiet = quiet + 1 if gain < 1e-6 else 0
-            if quiet >= 2:
-                break
-        x[m, 0] = a0
-        x[m, 1] = a1
-        nll[m] = cur
 
 
 @njit(cache=True, nogil=True)

@@ -3,12 +3,13 @@
 * :func:`background_start` -- a background-only binned fit (of the whole window, or of the
   sidebands of a candidate peak given a bin mask) -> the full parameter vector with every
   signal yield at 0.  Where every component has a compiled edge kernel it runs
-  :mod:`.driver`'s compiled Fisher scoring on arrays made here directly
-  (:class:`_BackgroundFit`): the same loop on the same numbers as through a
-  :class:`~.cost.BinnedCost` and :func:`.minimize.minimize` (a background-only cost's signal
-  rows are zero and skipped there), without building a cost, its kernels' layout and a
-  :class:`~.minimum.Minimum` around it -- ~0.2 ms of Python per fit of 100 bins, against
-  ~0.03 ms of arithmetic.  Whenever that loop does not converge to a positive-definite
+  :mod:`.driver`'s compiled Fisher scoring in one compiled call
+  (:func:`.start_kernels.background_fit` on :class:`_BackgroundFit`'s arrays): the same loop
+  as through a :class:`~.cost.BinnedCost` and :func:`.minimize.minimize` (a background-only
+  cost's signal rows are zero and skipped there; its saturated constant summed in bin
+  order, so the NLL by rounding), without building a cost, its kernels' layout, the used
+  bins' arrays and a :class:`~.minimum.Minimum` around it -- ~0.2 ms of Python per fit of
+  100 bins, against ~0.03 ms of arithmetic.  Whenever that loop does not converge to a positive-definite
   minimum (or the compiled path is off) the general path answers, as before (running the
   same loop again first: rare, and the result is then exactly the general path's).
 * :func:`background_counts` -- the background's expected counts in given bins.
@@ -19,10 +20,10 @@ from __future__ import annotations
 import numpy as np
 
 from .._jit import compiled_module
-from .cost import BinnedCost, _binned_data
-from .minimize import covariance, minimize
+from .cost import BinnedCost
+from .minimize import POSDEF_TOL, minimize
 from .model import Model
-from .poisson import DRIVER_MODULE, KERNELS_MODULE, MU_FLOOR, use_compiled
+from .poisson import DRIVER_MODULE, KERNELS_MODULE, MU_FLOOR, START_KERNELS_MODULE, use_compiled
 
 __all__ = ["background_counts", "background_start"]
 
@@ -126,27 +127,20 @@ class _BackgroundFit:
         """The free values at the minimum from ``x0`` (full vector ``v``), or None when the
         compiled loop does not end at a positive-definite converged minimum (the general
         path then answers, as it would have from the start)."""
-        (code, edata, escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree,
-         rows, nedges) = self.static
-        used, s, unit, _counts, eff, const = _binned_data(*self._data, mask)
-        bins = (np.arange(nedges - 1, dtype=np.int64) if used is None else
-                np.flatnonzero(used).astype(np.int64, copy=False))
-        k = self.nfree
-        prob = (code, edata, escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree,
-                bins, np.asarray(eff, float), np.asarray(s, float), bool(unit), MU_FLOOR,
-                np.zeros((rows, nedges)), np.zeros(bins.size), np.zeros((k, bins.size)),
-                np.zeros(k), np.zeros((k, k)), np.empty(1))
-        drv = compiled_module(DRIVER_MODULE)
-        x_out, info_out, x_last = np.empty(k), np.empty((k, k)), np.empty(k)
+        x_out = np.empty(self.nfree)
+        n, scale = self._data
         try:
-            status, _, _ = drv._drive(prob, np.asarray(v, float), self.free, float(const), x0,
-                                     lo, hi, _MAX_ITER, _EDM_GOAL, False, x_out, 0.0, info_out,
-                                     0.0, 0.0, x_out, info_out, x_last)
+            ok = compiled_module(START_KERNELS_MODULE).background_fit(
+                self.static, n, scale, _NO_MASK if mask is None else mask,
+                np.asarray(v, float), self.free, x0, lo, hi, _MAX_ITER, _EDM_GOAL, MU_FLOOR,
+                POSDEF_TOL, x_out)
         except (ArithmeticError, ValueError):
             return None
-        if status != drv.CONVERGED or not covariance(info_out)[1]:
-            return None
-        return x_out
+        return x_out if ok else None
+
+
+#: every bin (:func:`.start_kernels.background_fit`)
+_NO_MASK = np.zeros(0, bool)
 
 
 #: the background-only cost of recent (model, free parameters, read-only data): one fit

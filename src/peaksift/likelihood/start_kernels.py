@@ -3,13 +3,21 @@
 * :func:`profile_widths` -- the width profile of :mod:`.start_widths` in one call: the
   window-clipped edges, each width's band of edges, the Gaussian's rows there
   (:func:`peaksift.shapes.compiled.gaussian_width_rows`) and both yields profiled
-  (:func:`.kernels.profile_two_yields`).  The same operations in the same order as the
+  (:func:`profile_two_yields`).  The same operations in the same order as the
   numpy glue it replaces (~10 numpy calls), so the same numbers.
 * :func:`coarse_scan` -- the coarse likelihood scan of the window for candidate masses
   (:mod:`.starts`): the Gaussian's rows at every trial mass and both yields profiled;
   :func:`local_maxima` -- its separated local maxima, best first.
+* :func:`profile_two_yields` -- under both: at each row of signal fractions, the signal
+  yield and the background normalisation profiled (the coarse scan's numpy reference in
+  :mod:`.coarse_scan` uses it too).
 * :func:`narrow_rows` -- the bins where a peak narrower than a bin could gain enough to be
   a start (:func:`.narrow.narrow_candidates`'s bound from the bins' Poisson deviances).
+* :func:`background_fit` -- a background-only start fit (:mod:`.start_background`) in one
+  call: the used bins' effective counts and the saturated constant
+  (:func:`.cost._binned_data`'s), the problem's buffers, :func:`.driver._drive` and the
+  positive-definiteness test of :func:`.minimize.covariance`.  The constant is summed in
+  bin order (numpy sums pairwise): it moves the NLL by rounding only.
 
 Imported on first use (:func:`peaksift._jit.compiled_module`): importing the likelihood
 loads no numba.  ``tests/test_likelihood_start_kernels.py`` checks it against scipy's
@@ -23,10 +31,131 @@ import math
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import gaussian_rows, gaussian_width_rows
-from .kernels import profile_two_yields
+from ..shapes.compiled import gaussian_width_rows, vlog
+from .driver import CONVERGED, _drive
+from .kernels import _SUMS, covariance_small
 
-__all__ = ["coarse_scan", "local_maxima", "narrow_rows", "profile_widths"]
+__all__ = ["BAND", "SCAN_BAND", "background_fit", "coarse_scan", "local_maxima", "narrow_rows",
+           "profile_two_yields", "profile_widths"]
+
+#: the coarse scan's rows are computed within this many widths of their mass (beyond, a
+#: bin holds < exp(-SCAN_BAND^2 / 2) ~ 3e-18 of the row's peak bin: below the profile's BAND)
+SCAN_BAND = 9.0
+
+
+#: the coarse scan treats a trial mass's signal fractions below this fraction of their
+#: largest value as 0 (its far tails): those bins then hold background only, summed in
+#: closed form, so a trial costs its peak's bins instead of the whole window
+BAND = 1e-12
+
+
+@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
+def _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c):  # pragma: no cover
+    """sum(s mu - n s ln(s mu)) of mu = a0 f[m] + a1 g over all bins: the band [j0, j1)
+    term by term, the rest (background only) from its sums; inf when mu <= 0 anywhere.
+    (No early exit and vlog: the band's loop vectorises.)"""
+    if not a1 > 0.0 and (out_g > 0.0 or out_n > 0.0):
+        return math.inf
+    val = a1 * out_g - out_c
+    if out_n > 0.0:
+        val -= out_n * math.log(a1)
+    bad = 0
+    band = 0.0
+    for j in range(j0, j1):
+        mu = a0 * f[m, j] + a1 * g[j]
+        bad += 0 if mu > 0.0 else 1
+        smu = s[j] * mu
+        band += smu - n[j] * s[j] * vlog(smu)
+    return math.inf if bad else val + band
+
+
+@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
+def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - compiled
+    """Profile a signal yield and a background normalisation at each trial mass: row m of
+    ``f`` holds the signal's bin fractions at mass m, ``g`` the background's; ``x (M, 2)``
+    starts and receives the yields, ``nll (M,)`` receives the NLL (saturated term left
+    out).  Damped Newton on the Fisher information (the step of
+    :func:`~peaksift.likelihood.minimize.damped_step`, solved in closed form for 2 x 2),
+    per mass until its NLL gains < 1e-6 in two steps running or ``iterations`` are done.
+    Bins outside a mass's band (see :data:`BAND`) enter through running sums."""
+    nb = n.size
+    # running sums of the background-only terms: s g, n s, n s ln(s g)
+    cg = np.zeros(nb + 1)
+    cn = np.zeros(nb + 1)
+    cc = np.zeros(nb + 1)
+    for j in range(nb):
+        ns = n[j] * s[j]
+        cg[j + 1] = cg[j] + s[j] * g[j]
+        cn[j + 1] = cn[j] + ns
+        cc[j + 1] = cc[j] + (ns * math.log(s[j] * g[j]) if ns > 0.0 else 0.0)
+    for m in range(f.shape[0]):
+        a0, a1, cur = _profile_row(n, s, f, g, m, cg, cn, cc, x[m, 0], x[m, 1], iterations)
+        x[m, 0] = a0
+        x[m, 1] = a1
+        nll[m] = cur
+
+
+@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
+def _profile_row(n, s, f, g, m, cg, cn, cc, a0, a1, iterations):  # pragma: no cover
+    """Row ``m`` of :func:`profile_two_yields` from the yields ``(a0, a1)``: the profiled
+    yields and the NLL."""
+    nb = n.size
+    top = 0.0
+    for j in range(nb):
+        top = max(top, f[m, j])
+    j0 = 0
+    while j0 < nb and not f[m, j0] > BAND * top:
+        j0 += 1
+    j1 = nb
+    while j1 > j0 and not f[m, j1 - 1] > BAND * top:
+        j1 -= 1
+    out_g = cg[nb] - cg[j1] + cg[j0]
+    out_n = cn[nb] - cn[j1] + cn[j0]
+    out_c = cc[nb] - cc[j1] + cc[j0]
+    cur = _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c)
+    lam = 1e-3
+    quiet = 0
+    for _ in range(iterations):
+        # background-only bins: d/da1 = sum s g - n s / a1, information sum s g / a1
+        mu1 = max(1e-300, a1)
+        g0 = 0.0
+        g1 = out_g - out_n / mu1
+        h00 = 0.0
+        h01 = 0.0
+        h11 = out_g / mu1
+        for j in range(j0, j1):
+            mu = a0 * f[m, j] + a1 * g[j]
+            mu = max(mu, 1e-300)
+            r = s[j] * (1.0 - n[j] / mu)
+            w = s[j] / mu
+            g0 += f[m, j] * r
+            g1 += g[j] * r
+            h00 += w * f[m, j] * f[m, j]
+            h01 += w * f[m, j] * g[j]
+            h11 += w * g[j] * g[j]
+        floor = 1e-6 * 0.5 * (abs(h00) + abs(h11)) + 1e-300
+        d00 = h00 + lam * (h00 + floor) + 1e-14 * floor
+        d11 = h11 + lam * (h11 + floor) + 1e-14 * floor
+        det = d00 * d11 - h01 * h01
+        s0 = -(d11 * g0 - h01 * g1) / det
+        s1 = -(d00 * g1 - h01 * g0) / det
+        if not (math.isfinite(s0) and math.isfinite(s1)):
+            s0 = 0.0
+            s1 = 0.0
+        t = _nll2(n, s, f, g, m, j0, j1, a0 + s0, a1 + s1, out_g, out_n, out_c)
+        gain = 0.0
+        if t <= cur:
+            gain = cur - t
+            a0 += s0
+            a1 += s1
+            cur = t
+            lam = max(lam * 0.1, 1e-9)
+        else:
+            lam *= 10.0
+        quiet = quiet + 1 if gain < 1e-6 else 0
+        if quiet >= 2:
+            break
+    return a0, a1, cur
 
 
 @njit(cache=True, nogil=True)
@@ -60,17 +189,28 @@ def profile_widths(edges, lo, hi, n, s, g, mass, widths, band, y0, y1, rows, y,
 @njit(cache=True, nogil=True)
 def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cover - compiled
     """The coarse likelihood scan of the window: a Gaussian of width ``sigma`` at every
-    trial mass ``grid[m]`` (:func:`peaksift.shapes.compiled.gaussian_rows` on the
-    window-clipped edges) on the background fractions ``g``, its yield and the background
-    total profiled from ``x (M, 2)`` (:func:`.kernels.profile_two_yields`): yields into
+    trial mass ``grid[m]`` (the rows of :func:`peaksift.shapes.compiled.gaussian_rows` on
+    the window-clipped edges, each within :data:`SCAN_BAND` widths) on the background fractions ``g``, its yield and the background
+    total profiled from ``x (M, 2)`` (:func:`profile_two_yields`): yields into
     ``x``, NLLs into ``nll (M,)``.  False when a row cannot be made."""
     ne = edges.size
     e = np.empty(ne)
     for i in range(ne):
         e[i] = min(max(edges[i], lo), hi)
     frac = np.empty((grid.size, ne - 1))
-    if not gaussian_rows(e, grid, sigma, lo, hi, frac):
-        return False
+    # each row only on the edges within SCAN_BAND widths of its mass, the rest 0: the
+    # profile uses a row only where it exceeds BAND (1e-12) of its peak, which a bin
+    # beyond 7.5 widths never does, and a row's fractions are computed edge by edge, so
+    # the numbers are those of the whole row (gaussian_rows)
+    width = np.empty(1)
+    width[0] = sigma
+    i0 = np.empty(1, np.int64)
+    i1 = np.empty(1, np.int64)
+    for b in range(grid.size):
+        i0[0] = max(np.searchsorted(e, grid[b] - SCAN_BAND * sigma) - 1, 0)
+        i1[0] = min(np.searchsorted(e, grid[b] + SCAN_BAND * sigma) + 1, ne - 1)
+        if not gaussian_width_rows(e, grid[b], width, i0, i1, lo, hi, frac[b:b + 1]):
+            return False
     profile_two_yields(n, s, frac, g, x, nll, 25)
     return True
 
@@ -137,3 +277,56 @@ def narrow_rows(e, n, b, s, k, least, exclude, rows):  # pragma: no cover - comp
             rows[m] = j
             m += 1
     return m
+
+
+@njit(cache=True, nogil=True)
+def background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_iter, edm_goal,
+                   floor, posdef_tol, x_out):  # pragma: no cover - compiled
+    """Fisher scoring (:func:`.driver._drive`) of a background-only binned cost from
+    ``x0`` on the bins ``mask`` selects (empty: every bin), ``static`` the problem's fixed
+    arrays (:class:`.start_background._BackgroundFit`): True with the minimum in ``x_out``
+    when it converged to a point whose information is positive definite (scaled, above
+    ``posdef_tol``), else False (the caller's general path then answers)."""
+    (code, edata, escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree, rows,
+     nedges) = static
+    nall = n.size
+    m = nall
+    if mask.size:
+        m = 0
+        for j in range(nall):
+            if mask[j]:
+                m += 1
+    bins = np.empty(m, np.int64)
+    k = 0
+    for j in range(nall):
+        if mask.size == 0 or mask[j]:
+            bins[k] = j
+            k += 1
+    s = np.empty(m)
+    eff = np.empty(m)
+    unit = True
+    for i in range(m):
+        s[i] = scale[bins[i]]
+        eff[i] = n[bins[i]] * s[i]
+        unit = unit and s[i] == 1.0
+    # the saturated constant sum(n~ ln n~ - n~) - sum(n~ ln s), as _binned_data's
+    const = 0.0
+    for i in range(m):
+        t = eff[i]
+        const += t * math.log(t if t > 0.0 else 1.0) - t
+    if not unit:
+        c2 = 0.0
+        for i in range(m):
+            c2 += eff[i] * math.log(s[i])
+        const -= c2
+    npar = x0.size
+    prob = (code, edata, escal, pstart, rstart, yidx, yfree, value_row, drow, dcomp, dfree,
+            bins, eff, s, unit, floor, np.zeros((rows, nedges)), np.zeros(m),
+            np.zeros((npar, m)), np.zeros(npar), np.zeros((npar, npar)), np.empty(1))
+    info = np.empty((npar, npar))
+    x_last = np.empty(npar)
+    status, _, _ = _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal,
+                          False, x_out, 0.0, info, 0.0, 0.0, x_out, info, x_last)
+    if status != CONVERGED:
+        return False
+    return covariance_small(info, posdef_tol, np.empty((npar, npar)))

@@ -2,7 +2,7 @@
 
 Two questions of :func:`~peaksift.likelihood.starts.fit_starts`, answered for a Gaussian
 signal on compiled rows (:func:`peaksift.shapes.compiled.gaussian_rows`) with the signal and
-background yields profiled (:func:`.kernels.profile_two_yields`), the mass and the
+background yields profiled (:func:`.start_kernels.profile_two_yields`), the mass and the
 background's shape held:
 
 * :func:`scan_width` -- which width a fresh start at a candidate mass should take (the lowest
@@ -74,7 +74,7 @@ def _profiled(edges, n, scale, bexp, mass, widths, window, y0):
 def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, sign=1.0):
     """The width among ``width * WIDTH_FACTORS`` (inside ``[lo_w, hi_w]``) with the lowest
     profile NLL of a Gaussian at ``mass`` on the background expectation ``bexp`` (signal
-    and background yields profiled, :func:`.kernels.profile_two_yields`); None for other
+    and background yields profiled, :func:`.start_kernels.profile_two_yields`); None for other
     shapes, without the compiled path, or without a signal of the sign ``sign`` anywhere."""
     if type(shape) is not Gaussian or not use_compiled():
         return None
