@@ -79,50 +79,49 @@ def row_kernel(shape: Any, edges: np.ndarray, window: tuple[float, float]) -> tu
 
 
 @njit(cache=True, nogil=True)
-def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, g,
-                dg):  # pragma: no cover - compiled
-    """Used-bin background fractions ``g`` (and, if ``dg.size``, derivatives ``dg``, with
-    ``grad`` then the kernel's full derivative rows, else an empty 2-d array) at
-    ``theta``, scaled as ``toy_model.bkg_fractions`` (``scale`` empty: unweighted); False
-    where the kernel declines.  Every bin used and no scale: the kernel writes ``g`` and
-    ``dg`` itself (no copy through ``frac``; the same numbers)."""
+def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, gs, dgs,
+                slot):  # pragma: no cover - compiled
+    """Used-bin background fractions ``gs[slot]`` and derivatives ``dgs[slot]`` at
+    ``theta``, scaled as ``toy_model.bkg_fractions`` (``scale`` empty: unweighted), from
+    the row kernel's full rows ``frac``, ``grad`` ``(1, E-1)``; False where the kernel
+    declines.  Rows by index, no array views: each view cost two atomic reference counts,
+    a tenth of a 100-bin scan."""
     kbuf[0] = theta
-    want = dg.size > 0
-    direct = used.size == frac.shape[1] and scale.size == 0
-    out = g.reshape((1, g.size)) if direct else frac
-    drv = dg.reshape((1, dg.size)) if (direct and want) else grad
     if code == 0:
-        ok = powerlaw_rows(e1, e2, kbuf, c1, c2, out, drv)
+        ok = powerlaw_rows(e1, e2, kbuf, c1, c2, frac, grad)
     else:
-        ok = exponential_rows(e1, e2, kbuf, out, drv)
+        ok = exponential_rows(e1, e2, kbuf, frac, grad)
     if not ok:
         return False
-    if direct:
+    nb = gs.shape[1]
+    if used.size == frac.shape[1] and scale.size == 0:
+        for j in range(nb):
+            gs[slot, j] = frac[0, j]
+            dgs[slot, j] = grad[0, j]
         return True
     unit = scale.size == 0
-    for j in range(used.size):
+    for j in range(nb):
         i = used[j]
         sc = 1.0 if unit else scale[i]
-        g[j] = frac[0, i] * sc
-        if want:
-            dg[j] = grad[0, i] * sc
+        gs[slot, j] = frac[0, i] * sc
+        dgs[slot, j] = grad[0, i] * sc
     return True
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def _nll(n, f, g, s, b, sat, lb):  # pragma: no cover - compiled
-    """``binned_nll(n, s f + b g, saturated=False, small_terms=True)``; inf where an
-    expectation is not positive (``profile_signal``'s rule).  ``lb (2, N)``: work rows for
-    the expectations and the logarithms ``ln(n/mu)``, computed first in a loop that
-    vectorises (:func:`peaksift.shapes.compiled.vlog`, within 1 ulp of the library's): the
-    library's logarithm, one call per filled bin, made a bin's cost depend on whether it
-    held an event (a 10,000-bin scan, half its bins empty, cost 0.85x a 1,000-bin one per
-    bin)."""
-    nb = n.size
+def _nll(n, nrow, f, r, gs, slot, s, b, sat, lb):  # pragma: no cover - compiled
+    """``binned_nll(n[nrow], s f[r] + b gs[slot], saturated=False, small_terms=True)``;
+    inf where an expectation is not positive (``profile_signal``'s rule).  ``lb (2, N)``:
+    work rows for the expectations and the logarithms ``ln(n/mu)``, computed first in a
+    loop that vectorises (:func:`peaksift.shapes.compiled.vlog`, within 1 ulp of the
+    library's): the library's logarithm, one call per filled bin, made a bin's cost
+    depend on whether it held an event (a 10,000-bin scan, half its bins empty, cost
+    0.85x a 1,000-bin one per bin)."""
+    nb = f.shape[1]
     for j in range(nb):
-        nu = s * f[j] + b * g[j]
+        nu = s * f[r, j] + b * gs[slot, j]
         lb[0, j] = nu
-        lb[1, j] = vlog(max(n[j], MU_FLOOR) / max(MU_FLOOR, nu))
+        lb[1, j] = vlog(max(n[nrow, j], MU_FLOOR) / max(MU_FLOOR, nu))
     val = 0.0
     for j in range(nb):
         nu = lb[0, j]
@@ -130,34 +129,39 @@ def _nll(n, f, g, s, b, sat, lb):  # pragma: no cover - compiled
             return math.inf
         if math.isnan(nu):
             return math.nan
-        t = max(MU_FLOOR, nu) - n[j]
-        if n[j] > 0.0:
-            t += n[j] * lb[1, j]
+        nj = n[nrow, j]
+        t = max(MU_FLOOR, nu) - nj
+        if nj > 0.0:
+            t += nj * lb[1, j]
         val += t
     return val - sat
 
 
 @njit(cache=True, nogil=True)
-def _grad_hess(n, f, g, dg, d2, s, b, off, grad, hess):  # pragma: no cover - compiled
+def _grad_hess(n, nrow, f, r, gs, dgs, slot, d2, d2row, s, b, off, grad,
+               hess):  # pragma: no cover - compiled
     """``profile_signal``'s ``grad_hess`` for one row (one background parameter): the
     gradient and exact Hessian over ``(s, b, theta)`` (``off`` = 1) or ``(b, theta)``.
     Sums in registers, in the order of the loop ``grad[a] += col[a] w``, ``hess[a, c] +=
     col[a] col[c] v`` over the columns ``(f, g, b dg)``."""
-    gs = gb = gt = 0.0
+    gs_ = gb = gt = 0.0
     hss = hbs = hbb = hts = htb = htt = 0.0
     curv = 0.0
     cross = 0.0
-    for j in range(n.size):
-        nu = s * f[j] + b * g[j]
+    for j in range(f.shape[1]):
+        nj = n[nrow, j]
+        gj = gs[slot, j]
+        dgj = dgs[slot, j]
+        nu = s * f[r, j] + b * gj
         if not math.isnan(nu):  # np.maximum keeps a NaN
             nu = max(NU_FLOOR, nu)
-        w = 1.0 - n[j] / nu
-        v = n[j] / (nu * nu)
-        cb = g[j]
-        ct = b * dg[j]
+        w = 1.0 - nj / nu
+        v = nj / (nu * nu)
+        cb = gj
+        ct = b * dgj
         if off:
-            cs = f[j]
-            gs += cs * w
+            cs = f[r, j]
+            gs_ += cs * w
             hss += cs * cs * v
             hbs += cb * cs * v
             hts += ct * cs * v
@@ -166,10 +170,10 @@ def _grad_hess(n, f, g, dg, d2, s, b, off, grad, hess):  # pragma: no cover - co
         gt += ct * w
         htb += ct * cb * v
         htt += ct * ct * v
-        curv += d2[j] * w
-        cross += dg[j] * w
+        curv += d2[d2row, j] * w
+        cross += dgj * w
     if off:
-        grad[0] = gs
+        grad[0] = gs_
         hess[0, 0] = hss
         hess[1, 0] = hbs
         hess[0, 1] = hbs
@@ -203,6 +207,11 @@ def _damped_step(hess, grad, lam, h, step):  # pragma: no cover - compiled
     return solve_small(h, grad, step)
 
 
+#: the rows of profile_rows' fraction buffers: the current point and a trial alternate in
+#: rows 0 and 1 (an accepted trial's row becomes the current one), row 2 holds the start
+_START = 2
+
+
 @njit(cache=True, nogil=True)
 def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
                  steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
@@ -215,7 +224,8 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     once, at the first row, and serves all: it depends on theta alone (so do the start's
     fractions and derivatives, likewise computed once).
     ``hess_out (B, P, P)`` the exact Hessian at each minimum and ``s_err`` the signal
-    yield's error from it (``minimize.first_error``)."""
+    yield's error from it (``minimize.first_error``).
+    Arrays are indexed by row, never sliced: a view costs two atomic reference counts."""
     nrow, nb = f.shape
     p = x.shape[1]
     off = 1 if p == 3 else 0
@@ -224,9 +234,11 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     kbuf = np.empty(1)
     frac = np.empty((1, nw - 1))
     grad_full = np.empty((1, nw - 1))
-    g = np.empty(nb)
-    gt = np.empty(nb)
-    dg = np.empty(nb)
+    # fractions and derivatives of the current point, a trial and the start (_START); an
+    # accepted trial's row becomes the current one, so each point costs one evaluation of
+    # the background (it cost two: the trial's fractions, then its derivatives again)
+    gs = np.empty((3, nb))
+    dgs = np.empty((3, nb))
     grad = np.empty(p)
     hess = np.empty((p, p))
     hp = np.empty((p, p))
@@ -237,53 +249,40 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     step = np.empty(p)
     xr = np.empty(p)
     trial = np.empty(p)
-    dgt = np.empty(nb)
     lb = np.empty((2, nb))
     shared_d2 = d2.shape[0] == 1
-    g0 = np.empty(nb if shared_d2 else 0)
-    dg0 = np.empty(nb if shared_d2 else 0)
+    many_n = n.shape[0] > 1
     for r in range(nrow):
-        nr = n[r] if n.shape[0] > 1 else n[0]
+        nr = r if many_n else 0
         satr = sat[r] if sat.size > 1 else sat[0]
-        d2r = d2[0] if shared_d2 else d2[r]
+        d2r = 0 if shared_d2 else r
         for a in range(p):
             xr[a] = x[r, a]
         if (r == 0 or not shared_d2) and not _curvature(
                 code, e1, e2, c1, c2, used, scale, xr[off + 1], lower[off + 1],
-                upper[off + 1], kbuf, frac, grad_full, gt, dg, d2r):
+                upper[off + 1], kbuf, frac, grad_full, gs, dgs, d2, d2r):
             return r + 1
-        # the current point's fractions and derivatives (g, dg), and a trial's (gt, dgt):
-        # an accepted trial's become the current ones by a swap, so each point costs one
-        # evaluation of the background (it cost two: the trial's fractions, then its
-        # derivatives again at the next step)
-        if shared_d2 and r > 0:
-            # every row starts at one theta: its fractions and derivatives are the first
-            # row's (one of a row's ~6 evaluations of the background saved; the same bits)
-            for j in range(nb):
-                g[j] = g0[j]
-                dg[j] = dg0[j]
-        else:
-            if not _background(code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac,
-                               grad_full, g, dg):
-                return r + 1
-            if shared_d2:
-                for j in range(nb):
-                    g0[j] = g[j]
-                    dg0[j] = dg[j]
+        # every row from one theta (a scan's start): its fractions and derivatives are the
+        # first row's (one of a row's ~6 evaluations of the background saved; the same bits)
+        if (r == 0 or not shared_d2) and not _background(
+                code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac, grad_full,
+                gs, dgs, _START):
+            return r + 1
+        ci = _START
         s = s_fix[r] if fixed else xr[0]
-        cur = _nll(nr, f[r], g, s, xr[off], satr, lb)
+        cur = _nll(n, nr, f, r, gs, ci, s, xr[off], satr, lb)
         if not math.isfinite(cur):  # start with a positive expectation everywhere
             s = 0.0
             if fixed:
                 s_fix[r] = 0.0
             else:
                 xr[0] = 0.0
-            cur = _nll(nr, f[r], g, s, xr[off], satr, lb)
+            cur = _nll(n, nr, f, r, gs, ci, s, xr[off], satr, lb)
         lam = 1e-3
         conv = False
         for _it in range(steps):
             s = s_fix[r] if fixed else xr[0]
-            _grad_hess(nr, f[r], g, dg, d2r, s, xr[off], off, grad, hess)
+            _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, s, xr[off], off, grad, hess)
             for a in range(p):
                 err[a] = math.sqrt(abs(1.0 / hess[a, a])) if hess[a, a] != 0.0 else math.inf
             # _pin_at_bounds: a parameter on a bound whose descent leaves it holds still
@@ -299,6 +298,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
                 if anypin and pin[a]:
                     hp[a, a] += 1.0
             accepted = False
+            ti = 1 if ci == 0 else 0
             for _t in range(tries):
                 if not _damped_step(hp, gp, lam, h, step):
                     return r + 1
@@ -308,17 +308,16 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
                     small = small and abs(step[a]) < step_tol * err[a]
                 st = s_fix[r] if fixed else trial[0]
                 if not _background(code, e1, e2, c1, c2, used, scale, trial[off + 1],
-                                   kbuf, frac, grad_full, gt, dgt):
+                                   kbuf, frac, grad_full, gs, dgs, ti):
                     return r + 1
-                tn = _nll(nr, f[r], gt, st, trial[off], satr, lb)
+                tn = _nll(n, nr, f, r, gs, ti, st, trial[off], satr, lb)
                 ok = tn <= cur + slack
                 done = (cur - tn < nll_tol) or small
                 if ok:
                     for a in range(p):
                         xr[a] = trial[a]
                     cur = tn
-                    g, gt = gt, g
-                    dg, dgt = dgt, dg
+                    ci = ti
                     if done and lam <= 1e-2:
                         conv = True
                     lam = max(lam * 0.1, 1e-9)
@@ -334,26 +333,30 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
         nll_out[r] = cur
         conv_out[r] = conv
         if not fixed:
-            _grad_hess(nr, f[r], g, dg, d2r, xr[0], xr[off], off, grad, hess_out[r])
-            s_err[r] = first_error(hess_out[r], h, gp, step)
+            _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, xr[0], xr[off], off, grad, hess)
+            for a in range(p):
+                for c in range(p):
+                    hess_out[r, a, c] = hess[a, c]
+            s_err[r] = first_error(hess, h, gp, step)
     return 0
 
 
 @njit(cache=True, nogil=True)
-def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, gt, dg,
-               out):  # pragma: no cover - compiled
-    """``toy_model.bkg_second`` for one row of one parameter: central differences of the
-    fractions' derivative, step 1e-5 max(|theta|, 0.1), kept inside the bounds."""
+def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, gs, dgs,
+               out, row):  # pragma: no cover - compiled
+    """``toy_model.bkg_second`` for one row of one parameter into ``out[row]``: central
+    differences of the fractions' derivative, step 1e-5 max(|theta|, 0.1), kept inside
+    the bounds (rows 0 and 1 of ``gs``, ``dgs`` as work rows)."""
     hstep = 1e-5 * max(abs(th), 0.1)
     up = min(th + hstep, hi)
-    if not _background(code, e1, e2, c1, c2, used, scale, up, kbuf, frac, grad, gt, out):
+    if not _background(code, e1, e2, c1, c2, used, scale, up, kbuf, frac, grad, gs, dgs, 0):
         return False
     dn = max(th - hstep, lo)
-    if not _background(code, e1, e2, c1, c2, used, scale, dn, kbuf, frac, grad, gt, dg):
+    if not _background(code, e1, e2, c1, c2, used, scale, dn, kbuf, frac, grad, gs, dgs, 1):
         return False
     width = up - dn if up > dn else 1.0
-    for j in range(out.size):
-        out[j] = (out[j] - dg[j]) / width
+    for j in range(out.shape[1]):
+        out[row, j] = (dgs[0, j] - dgs[1, j]) / width
     return True
 
 
@@ -380,14 +383,15 @@ def first_error(hess, a, rhs, col):  # pragma: no cover - compiled
     return math.sqrt(v) if v > 0.0 else math.nan
 
 
-def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: np.ndarray,
-                     b: np.ndarray, theta: np.ndarray, fixed: bool, sat: np.ndarray,
-                     steps: int, tol: float) -> dict | None:
+def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: Any, b: Any,
+                     theta: np.ndarray, fixed: bool, sat: np.ndarray, steps: int,
+                     tol: float) -> dict | None:
     """``profile_signal``'s result for every row from one compiled call, or None (the
-    numpy path must run).  ``n`` is ``(N,)`` or ``(B, N)``; ``sat`` the rows' saturated
-    terms."""
+    numpy path must run).  ``n`` is ``(N,)`` or ``(B, N)``; ``s``, ``b`` a value per row or
+    one for all; ``theta`` ``(B, 1)``, or ``(1,)``: one start for every row; ``sat`` the
+    rows' saturated terms."""
     rk = row_kernel(model.background, model.edges, model.window)
-    if rk is None or theta.shape[1] != 1:
+    if rk is None or theta.shape[-1] != 1:
         return None
     code, e1, e2, c1, c2 = rk
     nb, nbin = f.shape
@@ -397,14 +401,18 @@ def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: np.ndarray,
     if not fixed:
         x[:, 0] = s
     x[:, off] = b
-    x[:, off + 1] = theta[:, 0]
+    # every row from one theta (a scan's start): one curvature for all (profile_rows)
+    if theta.ndim == 1:
+        x[:, off + 1] = theta[0]
+        one_start = nb > 1 and bool(theta[0] == theta[0])  # (not NaN, as below)
+    else:
+        x[:, off + 1] = theta[:, 0]
+        one_start = nb > 1 and bool((theta[:, 0] == theta[0, 0]).all())
     lower = np.array((-math.inf,) * (p - 1) + (float(model.lower[0]),))
     upper = np.array((math.inf,) * (p - 1) + (float(model.upper[0]),))
     scale = (np.empty(0) if model.bin_scale is None
              else np.ascontiguousarray(model.bin_scale, float))
     s_fix = np.array(s, float) if fixed else np.zeros(nb)
-    # every row from one theta (a scan's start): one curvature for all (profile_rows)
-    one_start = nb > 1 and bool((theta[:, 0] == theta[0, 0]).all())
     d2 = np.empty((1 if one_start else nb, nbin))
     nll = np.empty(nb)
     conv = np.zeros(nb, np.bool_)
