@@ -20,6 +20,9 @@ process (what the command imports before the config is read; ``peaksift.search``
 loads its submodules on first use); "other" is the rest of the wall time outside the stages
 (config, input checks, process exit).
 
+``--as-if-idle`` runs the command with the load average reported as 0, so the figure process
+is forked first thing as on an idle machine (``FigureWorker.early`` skips that early fork
+on a busy one): on a shared machine, the per-process CPU of the idle machine's layout.
 ``--baseline SRC`` also runs another source tree (e.g. a ``git archive`` of main unpacked
 into /tmp) in alternate rounds, so the two are compared at the same load; ``--inline``
 also runs this tree with ``PEAKSIFT_INLINE=1`` (every stage in one process, in order:
@@ -120,6 +123,11 @@ def _print(name: str, rs: list[tuple[float, float, dict[str, float], dict[str, f
               + f"; on {n} idle cores no sooner than {bound:.2f} s{model}")
 
 
+#: ``python -m peaksift`` with the load average reported as 0 (``--as-if-idle``)
+_IDLE = ("import os; os.getloadavg = lambda: (0.0, 0.0, 0.0); "
+         "from peaksift.cli import run; run()")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=3)
@@ -132,6 +140,9 @@ def main() -> None:
                     help="another source tree to run in alternate rounds")
     ap.add_argument("--inline", action="store_true",
                     help="also run this tree with every stage in one process")
+    ap.add_argument("--as-if-idle", action="store_true",
+                    help="report a zero load average to the command: the early figure fork "
+                         "is made as on an idle machine")
     args = ap.parse_args()
     variant = "without" if args.no_systematics else args.variant
     here = str(REPO / "src")
@@ -161,13 +172,16 @@ def main() -> None:
                 imports[name].append(_run([sys.executable, "-c",
                                            "from peaksift.search import run_search"], env)[0])
                 out = tmp / f"out{r}_{len(runs[v, name])}_{abs(hash((v, name)))}"
-                wall, cpu, stages = _run([sys.executable, "-m", "peaksift", "search",
-                                          str(configs[v]), "-v", "--out", str(out)], env)
+                command = ([sys.executable, "-c", _IDLE] if args.as_if_idle
+                           else [sys.executable, "-m", "peaksift"])
+                wall, cpu, stages = _run([*command, "search", str(configs[v]), "-v",
+                                          "--out", str(out)], env)
                 stage_cpu[v, name].append(stages)
                 prov = json.loads((out / "results.json").read_text())["provenance"]
                 runs[v, name].append((wall, cpu, prov["timings"], prov.get("cpu") or {}))
     print(f"load average {load0:.1f} before, {os.getloadavg()[0]:.1f} after, on "
-          f"{os.cpu_count()} cores; {args.runs} rounds")
+          f"{os.cpu_count()} cores; {args.runs} rounds"
+          + ("; the early figure fork forced (--as-if-idle)" if args.as_if_idle else ""))
     for (v, name), rs in runs.items():
         _print(f"{v}, {name}", rs, imports[name], stage_cpu[v, name])
 

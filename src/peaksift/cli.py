@@ -498,6 +498,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.command not in ("search", "spectrum", "fit"):  # (these import a lot first)
         _imports_done()
+    else:  # before their modules and configs import it the long way
+        from ._lean_imports import scipy_special
+
+        scipy_special()
     _setup_logging(args)
     warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
     try:

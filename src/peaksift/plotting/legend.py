@@ -29,14 +29,17 @@ def place_legend(ax: Any, x: Any, lo: Any, hi: Any | None = None, *, log: bool =
     hi = lo if hi is None else np.asarray(hi, float)
     ok = np.isfinite(x) & np.isfinite(lo) & np.isfinite(hi)
     x, lo, hi = x[ok], lo[ok], hi[ok]
+    # one legend, moved from place to place: its entries are laid out once (a new legend
+    # per place made and measured them again, ~10 ms a try)
+    leg = ax.legend(loc=_PLACES[0], **kwargs)
     for place in _PLACES:
-        leg = ax.legend(loc=place, **kwargs)
+        leg.set_loc(place)
         if touched(ax, leg, x, lo, hi) == 0:
             return leg
+    leg.set_loc(_PLACES[0])
     for _ in range(12):
         y0, y1 = ax.get_ylim()
         ax.set_ylim(y0, y1 * 3.0 if log else y1 + 0.3 * (y1 - y0))
-        leg = ax.legend(loc=_PLACES[0], **kwargs)
         if touched(ax, leg, x, lo, hi) == 0:
             break
     return leg

@@ -33,6 +33,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
+from .._lean_imports import scipy_special
 from .._processes import (
     die_with_parent,
     quiet_fork,
@@ -193,6 +194,7 @@ class FigureWorker:
         (on a loaded machine the search forks it after its own imports, as it used to)."""
         if not forking() or _EARLY or os.getloadavg()[0] > (os.cpu_count() or 1):
             return None
+        _job_modules()  # (the search imports them too: the process inherits them instead)
         _EARLY.append(cls(None))
         return _EARLY[0]
 
@@ -290,13 +292,11 @@ def _warm_up(formats: Sequence[str] = ()) -> None:
 def _job_modules() -> None:
     """Import what a figure job needs: the modules of the results it carries (unpickling a
     job imports them: the histogram, the fit, scan and limit results; none of them loads
-    the config or the events' modules) and the fit figure's, with the compiled shapes the
-    fit curves use (numba).  Done once, before the second drawer forks, instead of by each
-    drawer at its first job."""
+    the config, the events' modules or numba: a job's fit results come without their cost
+    functions, ``search.run._drawn``) and the fit figure's.  Done once, before the second
+    drawer forks, instead of by each drawer at its first job."""
     from .. import histogram  # noqa: F401
     from ..fitting import figure, result  # noqa: F401
-    from ..likelihood import kernels  # noqa: F401  (numba: a fit's curves use its kernels)
-    from ..shapes import compiled  # noqa: F401
     from ..stats import limit_result, scan_result  # noqa: F401
 
 
@@ -392,6 +392,7 @@ def _figure_child(queue: Any, conn: Any, parent: int, formats: Sequence[str]) ->
         # a collection: the collector waits until they are in, then they are frozen (the
         # second drawer inherits them so)
         pause()  # (already off in a worker forked at the command's start)
+        scipy_special()  # (the result modules' and the fit figure's, the short way)
         from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
         _warm_up(formats)  # (an early worker does not know them: PNG only)

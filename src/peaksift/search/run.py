@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import os
 import time
@@ -440,7 +441,22 @@ def _draw(drawer: FigureWorker | None, cfg: Config, names: list[str], result: An
     """Send the figures among ``names`` that ``output.figures`` asks for to the drawer."""
     names = [n for n in names if cfg.output.draws(n)]
     if drawer is not None and names:
+        for k, v in vars(result).items():
+            setattr(result, k, _drawn(v))
+        extra = {k: tuple(_drawn(x) for x in v) if isinstance(v, tuple) else _drawn(v)
+                 for k, v in extra.items()}
         drawer.draw(names, result, **extra)
+
+
+def _drawn(value: Any) -> Any:
+    """A FitResult as a figure job carries it: without its cost function (what
+    ``to_minuit`` needs, never a figure), whose compiled kernels would load numba in the
+    figure process to unpickle it (~0.35 s of CPU); anything else as it is."""
+    from ..fitting.result import FitResult
+
+    if isinstance(value, FitResult) and value.cost is not None:
+        return dataclasses.replace(value, cost=None)
+    return value
 
 
 def _opt(**kw: Any) -> dict[str, Any]:
