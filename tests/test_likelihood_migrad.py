@@ -6,8 +6,10 @@
 * The stops, against the rule stated in the module guide (constants from the module): a run
   whose lowest NLL does not move stops after ``STUCK_CALLS`` calls when it is more than
   ``STUCK_MARGIN`` above ``beat``, never when it is below; a run still falling by more than
-  ``STALL_GAIN`` per ``STALL_CALLS`` calls is not stopped; the lowest point seen is what a
-  stopped run reports.
+  ``STALL_GAIN`` per ``STALL_CALLS`` calls is not stopped; a stalled run stops after
+  ``STALL_CALLS`` calls within ``FAR_MARGIN`` of ``beat``, after ``FAR_CALLS`` beyond it,
+  and a run far above that stalls for fewer calls and then falls goes on; the lowest point
+  seen is what a stopped run reports.
 """
 
 from __future__ import annotations
@@ -97,12 +99,29 @@ def test_a_run_that_keeps_falling_is_not_stopped():
 
 
 def test_stalled_run_stops_after_stall_calls_and_keeps_its_lowest_point():
-    # a small gain (below STALL_GAIN, above STUCK_GAIN) on every call, far above the best
+    # a small gain (below STALL_GAIN, above STUCK_GAIN) on every call, above the best by
+    # more than STALL_MARGIN (after FAR_CALLS) but less than FAR_MARGIN
     gain = 0.5 * mg.STALL_GAIN / mg.STALL_CALLS
     assert 2 * gain > mg.STUCK_GAIN
     seq = _Sequence(lambda k: 50.0 - gain * k if k % 2 else math.inf)
-    watch = mg._Watch(seq, 10.0)
+    beat = 50.0 - 0.5 * mg.FAR_MARGIN
+    assert 50.0 - gain * 3 * mg.STALL_CALLS > beat + mg.STALL_MARGIN
+    watch = mg._Watch(seq, beat)
     stopped = _run(watch, 3 * mg.STALL_CALLS)
     assert stopped == mg.STALL_CALLS + 1
     last_odd = stopped if stopped % 2 else stopped - 1
     assert watch.best_f == pytest.approx(50.0 - gain * last_odd, abs=1e-12)
+
+
+def test_far_above_the_best_a_stall_ends_sooner():
+    assert mg.FAR_CALLS < mg.STALL_CALLS
+    gain = 0.5 * mg.STALL_GAIN / mg.STALL_CALLS  # stalled: below STALL_GAIN per stall
+    far = mg._Watch(_Sequence(lambda k: 50.0 - gain * k), 50.0 - 2.0 * mg.FAR_MARGIN)
+    assert _run(far, 3 * mg.STALL_CALLS) == mg.FAR_CALLS + 1
+    # a plateau just shorter than FAR_CALLS, then a fall of 100 units below the best: the
+    # run goes on to its minimum (such runs won on half-empty windows, see the module guide)
+    wins = mg._Watch(_Sequence(lambda k: 50.0 if k < mg.FAR_CALLS else 50.0 - 0.5 * k),
+                     40.0)
+    assert _run(wins, 3 * mg.STALL_CALLS) == 0
+    assert wins.best_f == pytest.approx(50.0 - 0.5 * 3 * mg.STALL_CALLS)
+
