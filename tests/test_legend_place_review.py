@@ -1,14 +1,13 @@
 """``peaksift.plotting.legend.place_legend`` within the matplotlib versions pyproject.toml
 accepts.  ``Legend.set_loc`` is new in matplotlib 3.8 (its docstring: "versionadded::
 3.8"); pyproject.toml accepts matplotlib >= 3.7, so the legend must also be placed where
-a Legend has no ``set_loc`` (simulated by hiding it)."""
+a Legend has no ``set_loc`` (simulated: the axes hand out legends that hide it)."""
 
 from __future__ import annotations
 
 import re
 from pathlib import Path
 
-import matplotlib.legend
 import numpy as np
 
 from peaksift._style import new_figure
@@ -42,9 +41,22 @@ def test_legend_placed_without_set_loc(monkeypatch):
     assert want[0] < 0.5  # (left half: the upper right is taken)
     if _floor() >= (3, 8):
         return  # (the floor no longer accepts a matplotlib without set_loc)
-    monkeypatch.delattr(matplotlib.legend.Legend, "set_loc")
     fig, ax, x, y = _axes_with_points_upper_right()
+    made = ax.legend
+    monkeypatch.setattr(ax, "legend", lambda *a, **k: _WithoutSetLoc(made(*a, **k)))
     assert _where(fig, place_legend(ax, x, y)) == want
+
+
+class _WithoutSetLoc:
+    """A Legend as matplotlib 3.7 has it: no ``set_loc``."""
+
+    def __init__(self, leg):
+        self._leg = leg
+
+    def __getattr__(self, name):
+        if name == "set_loc":
+            raise AttributeError(name)
+        return getattr(self._leg, name)
 
 
 def _where(fig, leg) -> tuple[float, float]:
