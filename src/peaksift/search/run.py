@@ -441,8 +441,7 @@ def _draw(drawer: FigureWorker | None, cfg: Config, names: list[str], result: An
     """Send the figures among ``names`` that ``output.figures`` asks for to the drawer."""
     names = [n for n in names if cfg.output.draws(n)]
     if drawer is not None and names:
-        for k, v in vars(result).items():
-            setattr(result, k, _drawn(v))
+        result = SimpleNamespace(**{k: _drawn(v) for k, v in vars(result).items()})
         extra = {k: tuple(_drawn(x) for x in v) if isinstance(v, tuple) else _drawn(v)
                  for k, v in extra.items()}
         drawer.draw(names, result, **extra)
