@@ -1,4 +1,4 @@
-"""``peaksift._style.png_bytes`` and the figure canvas's PNG writer, against independent
+"""``peaksift._png.png_bytes`` and the figure canvas's PNG writer, against independent
 decoders and the PNG specification (W3C, Portable Network Graphics, 2nd edition, 2003:
 signature 5.2, chunk layout and CRC-32 5.3, IHDR 11.2.2, pHYs 11.3.5.3, tEXt 11.3.4.3).
 
@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from peaksift._style import new_figure, png_bytes
+from peaksift._png import png_bytes
+from peaksift._style import new_figure
 
 
 def _chunks(data: bytes) -> list[tuple[bytes, bytes]]:
