@@ -41,6 +41,7 @@ import peaksift._lean_imports as li
 # and our pyproject both accept): the list must not invent it
 li._LAZY = li._LAZY + ("no_such_submodule",)
 li.scipy_special()
+import numpy as np
 import scipy._lib._array_api as aa
 xp = aa.np_compat
 out = {"np": hasattr(np, "no_such_submodule"), "xp": hasattr(xp, "no_such_submodule")}
@@ -65,6 +66,7 @@ def test_a_submodule_numpy_lacks_is_not_invented():
 _BEFORE = r"""
 import json, sys, warnings, pickle
 import numpy.ma, numpy.polynomial
+import numpy as np
 ma_before, poly_before = np.ma, np.polynomial
 from peaksift._lean_imports import scipy_special, _OnFirstUse
 special = scipy_special()
