@@ -12,11 +12,14 @@ is imported, each of them not loaded yet stands as a numpy attribute that loads 
 module on its first attribute access (so the shim's copy of it still works); afterwards the
 attributes are taken away again and numpy's own lazy loading answers as before.  Nothing
 changes for a module that is loaded already, or when scipy.special is imported already.
+A listed name this numpy does not have (``numpy.strings`` before numpy 2.0) gets no
+stand-in: the shim would copy it, and every attribute asked of it would fail.
 """
 
 from __future__ import annotations
 
 import importlib
+import importlib.util
 import sys
 import types
 
@@ -45,7 +48,8 @@ def scipy_special() -> types.ModuleType:
     names = vars(np)
     standing: dict[str, types.ModuleType] = {}
     for name in _LAZY:
-        if f"numpy.{name}" not in sys.modules and name not in names:
+        if f"numpy.{name}" not in sys.modules and name not in names \
+                and importlib.util.find_spec(f"numpy.{name}") is not None:
             standing[name] = _OnFirstUse(f"numpy.{name}")
             setattr(np, name, standing[name])
     try:

@@ -33,13 +33,22 @@ def place_legend(ax: Any, x: Any, lo: Any, hi: Any | None = None, *, log: bool =
     # per place made and measured them again, ~10 ms a try)
     leg = ax.legend(loc=_PLACES[0], **kwargs)
     for place in _PLACES:
-        leg.set_loc(place)
+        leg = _moved(ax, leg, place, kwargs)
         if touched(ax, leg, x, lo, hi) == 0:
             return leg
-    leg.set_loc(_PLACES[0])
+    leg = _moved(ax, leg, _PLACES[0], kwargs)
     for _ in range(12):
         y0, y1 = ax.get_ylim()
         ax.set_ylim(y0, y1 * 3.0 if log else y1 + 0.3 * (y1 - y0))
         if touched(ax, leg, x, lo, hi) == 0:
             break
     return leg
+
+
+def _moved(ax: Any, leg: Any, place: str, kwargs: dict[str, Any]) -> Any:
+    """``leg`` moved to ``place`` (``Legend.set_loc`` is new in matplotlib 3.8; before it,
+    a new legend is made there)."""
+    if hasattr(leg, "set_loc"):
+        leg.set_loc(place)
+        return leg
+    return ax.legend(loc=place, **kwargs)
