@@ -13,11 +13,11 @@ import numpy as np
 from peaksift._style import new_figure
 from peaksift.plotting.legend import place_legend
 
-ROOT = Path(__file__).resolve().parents[1]
+REPO_DIR = Path(__file__).resolve().parents[1]
 
 
 def _floor() -> tuple[int, int]:
-    text = (ROOT / "pyproject.toml").read_text()
+    text = (REPO_DIR / "pyproject.toml").read_text()
     major, minor = re.search(r'"matplotlib>=(\d+)\.(\d+)', text).groups()
     return int(major), int(minor)
 
