@@ -5,6 +5,8 @@ only ``test_*.py``).
   iminuit (MIGRAD, strategy 2) with the signal free and fixed at 0 (Cowan, Cranmer, Gross
   and Vitells, Eur. Phys. J. C 71 (2011) 1554, eq. 12: q0 = 0 where the fitted signal is
   negative).
+- :func:`assert_matches_iminuit`: a combination's q0 and sigma x B at every mass against
+  such a reference, and the injected peak seen.
 - the extended binned Poisson NLL and the joint loop's ten Newton sums for an exponential
   channel, bin by bin with numpy: the exponential's bin fractions from its CDF on the
   window (common practice), their slope derivative by complex step (Squire and Trapp,
@@ -15,6 +17,7 @@ only ``test_*.py``).
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from iminuit import Minuit
 
 from peaksift.stats.joint_spans import _MOMENTS, prefix_moments, row_spans, span_channel
@@ -69,3 +72,18 @@ def closed_form(t, dt, n, f, d2, s, b, theta, theta_ref):
     done, nll = span_channel(t, dt, 0, theta, theta_ref, s, s, b, f, n, d2, spans[0, 0],
                              spans[0, 1], pre, 0, tg, tdg, 0, lb, sm)
     return done, nll, sm, spans[0]
+
+
+def assert_matches_iminuit(result, masses, reference, *, yield_errors: float,
+                           peak_q0: float) -> None:
+    """``result`` (a combination) converged, its q0 within 2e-3 absolute and its sigma x B
+    within ``yield_errors`` of its error of ``reference(m) -> (q0, sigma x B)`` at every
+    mass, and q0 above ``peak_q0`` at the second mass, where the tests inject a peak (so
+    the check is not made at q0 = 0 only)."""
+    assert result.converged.all()
+    for j, m in enumerate(masses):
+        q_ref, mu_ref = reference(m)
+        assert result.q0[j] == pytest.approx(q_ref, abs=2e-3), m
+        assert result.cross_section[j] == pytest.approx(
+            mu_ref, abs=yield_errors * result.cross_section_error[j]), m
+    assert result.q0[1] > peak_q0

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from joint_reference import q0_from_two_fits
+from joint_reference import assert_matches_iminuit, q0_from_two_fits
 from scipy import stats
 
 from peaksift import Resolution
@@ -92,12 +92,8 @@ def test_compiled_joint_fit_matches_iminuit(scans):
     """q0 within 2e-3 absolute and sigma x B within 0.01 of its error of iminuit's (the
     joint fit stops at steps below 0.03 errors; MIGRAD at its EDM goal)."""
     hists, masses, c, _ = scans
-    assert c.converged.all()
-    for j, m in enumerate(masses):
-        q_ref, mu_ref = _reference_q0(hists, m)
-        assert c.q0[j] == pytest.approx(q_ref, abs=2e-3), m
-        assert c.cross_section[j] == pytest.approx(mu_ref, abs=0.01 * c.cross_section_error[j])
-    assert c.q0[1] > 4.0   # the injected peak is seen: the check is not at q0 = 0
+    assert_matches_iminuit(c, masses, lambda m: _reference_q0(hists, m), yield_errors=0.01,
+                           peak_q0=4.0)
 
 
 def test_compiled_joint_fit_matches_the_python_loop(scans):
