@@ -24,6 +24,7 @@ from ..likelihood.poisson import use_compiled
 from ..resolution import resolution_from
 from .bounds import check_plan
 from .scan_plan import _signal_params, input_digest, window_plan  # noqa: F401 -- _signal_params: imported from here by scan, channels, limits_systematics
+from .scan_prepared import keep_prepared, kept_prepared, prepared_key
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background
 
 
@@ -319,6 +320,35 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    background_start: Mapping[str, float] | None = None,
                    signal_model: Any = None, what: str = "scan"
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
+    """The model, spectrum and plan of a scan (:func:`_prepare_model_anew`), kept by their
+    inputs where those are plain values (:func:`.scan_prepared.prepared_key`) and given
+    again as :func:`.scan_prepared.handed_out` copies: the same numbers, warnings raised
+    again."""
+    key = prepared_key(data, signal, background, masses, resolution, relative_resolution,
+                       absolute_resolution, window, natural_width, blind, signal_params,
+                       bins, background_start, signal_model, what)
+    hit = kept_prepared(key)
+    if hit is not None:
+        return hit
+    args = {"resolution": resolution, "relative_resolution": relative_resolution,
+            "absolute_resolution": absolute_resolution, "window": window,
+            "natural_width": natural_width, "blind": blind, "signal_params": signal_params,
+            "bins": bins, "background_start": background_start,
+            "signal_model": signal_model, "what": what}
+    if key is None:
+        return _prepare_model_anew(data, signal, background, masses, **args)
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        prepared = _prepare_model_anew(data, signal, background, masses, **args)
+    return keep_prepared(key, prepared, seen)
+
+
+def _prepare_model_anew(data: Any, signal: Any, background: Any, masses: Any, *,
+                        resolution: Any, relative_resolution: Any, absolute_resolution: Any,
+                        window: Any, natural_width: Any, blind: Any, signal_params: Any,
+                        bins: Any, background_start: Mapping[str, float] | None,
+                        signal_model: Any, what: str
+                        ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     from .. import shapes
     from ..histogram import MassHistogram, as_spectrum
 
