@@ -242,13 +242,12 @@ def _spectrum_saturated(n: np.ndarray) -> np.ndarray:
 
 
 def _compiled() -> Any:
-    """:func:`peaksift.stats.profile_kernels.compiled_profile`, imported on first use
-    (numba loads then) and kept: an import statement in the scan's path cost ~10 us with
-    cold caches."""
+    """:mod:`peaksift.stats.profile_kernels`, imported on first use (numba loads then) and
+    kept: an import statement in the scan's path cost ~10 us with cold caches."""
     if not _KERNEL:
-        from .profile_kernels import compiled_profile
+        from . import profile_kernels
 
-        _KERNEL.append(compiled_profile)
+        _KERNEL.append(profile_kernels)
     return _KERNEL[0]
 
 
@@ -285,8 +284,8 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
         # of a 100-bin scan); the same values
         # (outside _quiet's errstate, ~10 us with cold caches: no numpy arithmetic here
         # but the saturated term, computed under it)
-        out = _compiled()(model, n, f, 0.0, model.bkg_yield, model.theta, False,
-                          _spectrum_saturated(n), steps, tol)
+        out = _compiled().compiled_scan_profile(model, n, f, _spectrum_saturated(n), steps,
+                                                tol)
         if out is not None:
             return out
     return _profile_stacked(model, n, f, s_fixed, s_start, theta_start, b_start, steps, tol)
@@ -316,7 +315,7 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
         # the same fit row by row in one compiled call (stats/profile_kernels.py), where
         # the background has a compiled row kernel; None: the numpy path below answers
         shared = n.strides[0] == 0
-        out = _compiled()(model, n[0] if shared else n, f, s, b, theta, fixed,
+        out = _compiled().compiled_profile(model, n[0] if shared else n, f, s, b, theta, fixed,
                                saturated_term(n[:1] if shared else n), steps, tol)
         if out is not None:
             return out
