@@ -87,11 +87,16 @@ def prepared_key(data: Any, signal: Any, background: Any, masses: Any, resolutio
                                            and resolution.func is None))):
         return None
     if type(masses) is np.ndarray:
-        hyp: Any = (masses.dtype.str, masses.shape, masses.tobytes())
+        count = masses.size
+        hyp: Any = None
     elif type(masses) is int:
-        hyp = masses
+        count = hyp = masses
     else:
         return None
+    if count * (data.edges.size - 1) > _CELLS_KEPT:
+        return None   # would not be kept: no key (a 10,000-bin one hashed ~0.2 ms of bytes)
+    if hyp is None:
+        hyp = (masses.dtype.str, masses.shape, masses.tobytes())
     values = data.values()
     counts = values.tobytes()
     if values.dtype != np.float64 or counts != data.variances().tobytes():
