@@ -332,7 +332,7 @@ def _width_floors(model: Model, d: FitData, lower: np.ndarray, upper: np.ndarray
     ``{index: floor}`` of the bounds raised."""
     if not d.binned:
         return {}
-    floor = FLOOR_FRACTION * float(np.min(np.diff(d.edges)))
+    floor = FLOOR_FRACTION * float(np.diff(d.edges).min())  # (np.min's wrapper: ~10 us)
     out = {}
     for shape, sl, _ in model.blocks[:-1]:
         if "sigma" not in shape.parameter_names:
