@@ -318,15 +318,19 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    absolute_resolution: Any = None, window: Any, natural_width: Any,
                    blind: Any, signal_params: Any, bins: Any,
                    background_start: Mapping[str, float] | None = None,
-                   signal_model: Any = None, what: str = "scan"
+                   signal_model: Any = None, what: str = "scan",
+                   background_fit: Callable[..., Any] | None = None
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     """The model, spectrum and plan of a scan (:func:`_prepare_model_anew`), kept by their
     inputs where those are plain values (:func:`.scan_prepared.prepared_key`) and given
     again as :func:`.scan_prepared.handed_out` copies: the same numbers, warnings raised
-    again."""
-    key = prepared_key(data, signal, background, masses, resolution, relative_resolution,
-                       absolute_resolution, window, natural_width, blind, signal_params,
-                       bins, background_start, signal_model, what)
+    again.  The background-only fit is :func:`_fit_data_background`'s, or
+    ``background_fit(proto, counts, start) -> (theta (1, K), b (1,), nll (1,))`` (the
+    spurious-signal test's nested fits; then nothing is kept)."""
+    key = None if background_fit is not None else prepared_key(
+        data, signal, background, masses, resolution, relative_resolution,
+        absolute_resolution, window, natural_width, blind, signal_params, bins,
+        background_start, signal_model, what)
     hit = kept_prepared(key)
     if hit is not None:
         return hit
@@ -334,7 +338,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
             "absolute_resolution": absolute_resolution, "window": window,
             "natural_width": natural_width, "blind": blind, "signal_params": signal_params,
             "bins": bins, "background_start": background_start,
-            "signal_model": signal_model, "what": what}
+            "signal_model": signal_model, "what": what, "background_fit": background_fit}
     if key is None:
         return _prepare_model_anew(data, signal, background, masses, **args)
     with warnings.catch_warnings(record=True) as seen:
@@ -347,8 +351,11 @@ def _prepare_model_anew(data: Any, signal: Any, background: Any, masses: Any, *,
                         resolution: Any, relative_resolution: Any, absolute_resolution: Any,
                         window: Any, natural_width: Any, blind: Any, signal_params: Any,
                         bins: Any, background_start: Mapping[str, float] | None,
-                        signal_model: Any, what: str
+                        signal_model: Any, what: str,
+                        background_fit: Callable[..., Any] | None
                         ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
+    """The scan's model, its spectrum and what the scan needs besides (see
+    :func:`_prepare_model`)."""
     from .. import shapes
     from ..histogram import MassHistogram, as_spectrum
 
@@ -401,7 +408,7 @@ def _prepare_model_anew(data: Any, signal: Any, background: Any, masses: Any, *,
                       background=bkg, theta=start, bkg_yield=float(counts.sum()),
                       lower=lower, upper=upper, masses=plan.open_masses,
                       fractions=plan.open_fractions, bin_scale=spec.bin_scale)
-    theta, b, nll0 = _fit_data_background(proto, counts, start)
+    theta, b, nll0 = (background_fit or _fit_data_background)(proto, counts, start)
     # the prototype with the fit's values (what dataclasses.replace makes, ~10 us sooner)
     model = ScanModel(edges=proto.edges, used=used, window=proto.window, counts=counts,
                       background=bkg, theta=theta[0], bkg_yield=float(b[0]), lower=lower,
