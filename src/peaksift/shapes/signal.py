@@ -434,6 +434,12 @@ class BreitWigner(_Signal):
         return [-d2 * (2.0 * m * g * g - 4.0 * m * (x * x - m * m)), -d2 * (2.0 * m * m * g)]
 
     def _primitive_grad(self, x, p, window):
+        return self._primitive_and_grad(x, p)[1]
+
+    @staticmethod
+    def _primitive_and_grad(x, p):
+        """The primitive and its derivatives from one pair of complex logarithms (the
+        primitive's numbers are those of :meth:`_primitive`: the same operations)."""
         # P = Im[L/(2a)] / (m g), L = ln(x - a) - ln(x + a), a^2 = m^2 + i m g:
         # d(L/2a)/da = -x / (a (x^2 - a^2)) - L / (2 a^2), da/dm = (2m + i g)/(2a),
         # da/dg = i m / (2a); then the quotient rule for 1/(m g)
@@ -445,7 +451,35 @@ class BreitWigner(_Signal):
         prim = (lg / (2.0 * a)).imag / (m * g)
         dm = (dq * (2.0 * mc + 1j * g) / (2.0 * a)).imag / (m * g) - prim / m
         dg = (dq * (1j * mc) / (2.0 * a)).imag / (m * g) - prim / g
-        return [dm, dg]
+        return prim, [dm, dg]
+
+    def fractions_and_grad(self, edges, params, window, need=None):
+        # Shape.fractions_and_grad's operations for one parameter set, the primitive and
+        # its derivatives at each point from one pair of logarithms (there: two)
+        p = self._params(params, 2, self.name)
+        if not all(_scalar(v) for v in p) or np.ndim(edges) != 1:
+            return super().fractions_and_grad(edges, params, window, need)
+        lo, hi = as_window(window)
+        pe, ge = self._primitive_and_grad(np.array([lo, hi]), p)
+        px, gx = self._primitive_and_grad(np.clip(np.asarray(edges, float), lo, hi), p)
+        plo, phi = pe[0], pe[1]
+        inv = 1.0 / (phi - plo)
+        c = (px - plo) * inv
+        out = [np.diff((gc - g[0]) * inv - c * ((g[1] - g[0]) * inv), axis=-1)
+               for g, gc in zip(ge, gx)]
+        frac = np.maximum(np.diff(c, axis=-1), 0.0)
+        return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
+
+    def fit_fractions(self, edges, params, window):
+        # the fractions above without the derivatives (the same numbers)
+        p = self._params(params, 2, self.name)
+        if not all(_scalar(v) for v in p) or np.ndim(edges) != 1:
+            return super().fit_fractions(edges, params, window)
+        lo, hi = as_window(window)
+        pe = self._primitive(np.array([lo, hi]), p, (lo, hi))
+        px = self._primitive(np.clip(np.asarray(edges, float), lo, hi), p, (lo, hi))
+        c = (px - pe[0]) * (1.0 / (pe[1] - pe[0]))
+        return np.maximum(np.diff(c, axis=-1), 0.0)
 
     def fwhm(self, params):
         m, g = float(params[0]), float(params[1])
