@@ -390,6 +390,17 @@ class CrystalBall(_Signal):
         pdf = dens[0] / z
         return pdf, dens[1:] / z - pdf * (gz / z)[:, None]
 
+    def pdf_near(self, x, params, window):
+        # the compiled density and normalisation (pdf_and_grad's), ~10x faster than the
+        # numpy path for one mass
+        p = self._params(params, len(self.parameters), self.name)
+        if not all(_scalar(v) for v in p) or np.ndim(x) != 1:
+            return super().pdf_near(x, params, window)
+        lo, hi = as_window(window)
+        ends = self._compiled_rows("crystalball_primitive", np.array([lo, hi]), p)
+        dens = self._compiled_rows("crystalball_density", x, p)
+        return dens[0] / (ends[0, 1] - ends[0, 0])
+
     def fwhm(self, params):
         return self._fwhm_numeric(params)
 
