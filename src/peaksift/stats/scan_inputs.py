@@ -317,8 +317,12 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    absolute_resolution: Any = None, window: Any, natural_width: Any,
                    blind: Any, signal_params: Any, bins: Any,
                    background_start: Mapping[str, float] | None = None,
-                   signal_model: Any = None, what: str = "scan"
+                   signal_model: Any = None, what: str = "scan",
+                   background_fit: Callable[..., Any] | None = None
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
+    """The scan's model, its spectrum and what the scan needs besides.  The background-only
+    fit is :func:`_fit_data_background`'s, or ``background_fit(proto, counts, start) ->
+    (theta (1, K), b (1,), nll (1,))`` (the spurious-signal test's nested fits)."""
     from .. import shapes
     from ..histogram import MassHistogram, as_spectrum
 
@@ -371,7 +375,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                       background=bkg, theta=start, bkg_yield=float(counts.sum()),
                       lower=lower, upper=upper, masses=plan.open_masses,
                       fractions=plan.open_fractions, bin_scale=spec.bin_scale)
-    theta, b, nll0 = _fit_data_background(proto, counts, start)
+    theta, b, nll0 = (background_fit or _fit_data_background)(proto, counts, start)
     # the prototype with the fit's values (what dataclasses.replace makes, ~10 us sooner)
     model = ScanModel(edges=proto.edges, used=used, window=proto.window, counts=counts,
                       background=bkg, theta=theta[0], bkg_yield=float(b[0]), lower=lower,
