@@ -58,12 +58,54 @@ def scipy_special() -> types.ModuleType:
             standing[name] = _OnFirstUse(f"numpy.{name}")
             setattr(np, name, standing[name])
     try:
-        import scipy.special
+        with _scipy_docs_as_they_are():
+            import scipy.special
     finally:
         for name, stand_in in standing.items():
             if names.get(name) is stand_in:  # (a real import meanwhile replaced it)
                 delattr(np, name)
     return scipy.special
+
+
+class _DocAsIs:
+    """In place of scipy's ``FunctionDoc`` for ``xp_capabilities``: the function's docstring
+    as it is, and nowhere to add a note."""
+
+    def __init__(self, func: object) -> None:
+        self._doc = getattr(func, "__doc__", None) or ""
+        if type(func).__name__ == "ufunc":  # numpy's generated signature line first: the
+            self._doc = self._doc.split("\n\n", 1)[-1]  # docstring is what follows it
+        self._notes: list[str] = []
+
+    def __getitem__(self, section: str) -> list[str]:
+        return self._notes
+
+    def __str__(self) -> str:  # (its first line, the signature, is dropped by the caller)
+        return "\n" + self._doc
+
+
+@contextlib.contextmanager
+def _scipy_docs_as_they_are() -> Iterator[None]:
+    """Inside the block, scipy's ``xp_capabilities`` decorator leaves the docstrings of the
+    functions it marks as they are.  Why: at the import of ``scipy.special`` it parses the
+    numpydoc docstring of each of its ~100 functions and writes it out again with a table
+    of the array libraries each supports (~30-40 ms of CPU): text only ``help()`` shows.
+    Its table of capabilities (what scipy's own tests read) is filled as before, and the
+    functions are the same objects.  Nothing changes on a scipy without that decorator."""
+    try:
+        import scipy._lib._array_api as array_api
+    except ImportError:  # (another scipy)
+        yield
+        return
+    own = getattr(array_api, "FunctionDoc", None)
+    if own is None or not hasattr(array_api, "xp_capabilities"):
+        yield
+        return
+    array_api.FunctionDoc = _DocAsIs
+    try:
+        yield
+    finally:
+        array_api.FunctionDoc = own
 
 
 @contextlib.contextmanager
