@@ -22,6 +22,8 @@ from iminuit import Minuit
 from scipy import stats
 
 from peaksift.likelihood.start_kernels import (
+    SCAN_BAND,
+    coarse_rows,
     coarse_scan,
     local_maxima,
     narrow_rows,
@@ -110,6 +112,27 @@ def test_coarse_scan_against_scipy_and_iminuit():
         mi.hesse()
         assert abs(nll[m] - mi.fval) < 1e-6, (mass, nll[m], mi.fval)
         assert abs(x[m, 0] - mi.values["a"]) < 1e-3 * mi.errors["a"]
+
+
+def test_coarse_rows_against_scipy():
+    """The coarse scan's rows (kept per binning by the fit) against scipy's normal CDF
+    truncated to the window: within 1e-12 absolute inside each mass's band of SCAN_BAND
+    widths, exactly 0 beyond it; edges outside the window are clipped to it."""
+    edges = np.concatenate([[LO - 20.0], np.linspace(LO, HI, 101), [HI + 20.0]])
+    grid = np.linspace(105.0, 295.0, 12)
+    sigma = 3.5
+    frac = np.full((grid.size, edges.size - 1), np.nan)
+    assert coarse_rows(edges, LO, HI, grid, sigma, frac)
+    e = np.clip(edges, LO, HI)
+    c = 0.5 * (e[1:] + e[:-1])
+    for m, mass in enumerate(grid):
+        norm = stats.norm(mass, sigma)
+        f = np.diff(norm.cdf(e)) / (norm.cdf(HI) - norm.cdf(LO))
+        inside = (e[1:] > mass - SCAN_BAND * sigma) & (e[:-1] < mass + SCAN_BAND * sigma)
+        np.testing.assert_allclose(frac[m][inside], f[inside], rtol=0, atol=1e-12)
+        assert np.all(frac[m][np.abs(c - mass) > SCAN_BAND * sigma + 4.0] == 0.0)
+    assert not coarse_rows(edges, LO, HI, np.array([HI + 1000.0]), 1.0,
+                           np.empty((1, edges.size - 1)))
 
 
 @pytest.mark.parametrize("seed", range(6))

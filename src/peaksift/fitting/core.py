@@ -212,10 +212,9 @@ def fit(
         return result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                        cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
                        cost.ncall, floors)
-    sh = start_bins(d)
-    starts = fit_starts(model, _read_only(sh.edges), _read_only(sh.values()),
-                        _read_only(sh.scaled_poisson_factors()), base, is_fixed, given, lower,
-                        upper, d.total, retries,
+    se, sn, ssc = start_bins(d)
+    starts = fit_starts(model, _read_only(se), _read_only(sn), _read_only(ssc), base,
+                        is_fixed, given, lower, upper, d.total, retries,
                         fine=(edges, counts, scale) if d.binned else None)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
     free_names = [names[i] for i in free_idx]
@@ -332,7 +331,7 @@ def _width_floors(model: Model, d: FitData, lower: np.ndarray, upper: np.ndarray
     ``{index: floor}`` of the bounds raised."""
     if not d.binned:
         return {}
-    floor = FLOOR_FRACTION * float(np.min(np.diff(d.edges)))
+    floor = FLOOR_FRACTION * float(np.diff(d.edges).min())  # (np.min's wrapper: ~10 us)
     out = {}
     for shape, sl, _ in model.blocks[:-1]:
         if "sigma" not in shape.parameter_names:

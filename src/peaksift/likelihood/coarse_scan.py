@@ -12,6 +12,8 @@ steps (the reference, the same numbers).
 from __future__ import annotations
 
 import math
+import threading
+from collections import OrderedDict
 
 import numpy as np
 
@@ -116,7 +118,8 @@ def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int, sign: 
 
 def _compiled_scan(shape, edges, n, scale, grid, p, window, bexp, dips):
     """``(peaks, dips)`` of the coarse scan of a Gaussian, as :func:`_local_maxima` lists
-    them, from one compiled scan (:func:`.start_kernels.coarse_scan`) and compiled local
+    them, from the compiled rows (:func:`.start_kernels.coarse_rows`, kept per binning by
+    :func:`_scan_rows`), one compiled profile of them and compiled local
     maxima: the same steps as :func:`_compiled_fractions`, :func:`_coarse_profile` and
     :func:`_local_maxima` (the same numbers) without their ~15 numpy calls; None where
     those must answer (another shape, the compiled path off, no row)."""
@@ -141,16 +144,48 @@ def _compiled_scan(shape, edges, n, scale, grid, p, window, bexp, dips):
         sc = np.ascontiguousarray(np.broadcast_to(
             np.asarray(1.0 if scale is None else scale, float), g.shape))
     kern = compiled_module(START_KERNELS_MODULE)
-    if not kern.coarse_scan(np.ascontiguousarray(edges, float), float(window[0]),
-                            float(window[1]), np.ascontiguousarray(grid, float), sigma,
-                            np.ascontiguousarray(n, float), sc, g, x, nll):
+    frac = _scan_rows(kern, np.ascontiguousarray(edges, float), float(window[0]),
+                      float(window[1]), np.ascontiguousarray(grid, float), sigma)
+    if frac is None:
         return None
+    kern.profile_two_yields(np.ascontiguousarray(n, float), sc, frac, g, x, nll, 25)
     index, gain = np.empty(3, np.int64), np.empty(3)
     found = []
     for sign, most in ((1.0, 3), (-1.0, 2)) if dips else ((1.0, 3),):
         k = kern.local_maxima(x[:, 0], nll, nll0, most, sign, index, gain)
         found.append(list(zip(index[:k].tolist(), gain[:k].tolist())))
     return found[0], (found[1] if dips else [])
+
+
+#: the coarse scan's rows by binning, window, trial masses and width, newest last: they do
+#: not depend on the counts, and a window fitted again (toys, a search's stages, the same
+#: histogram refitted) needs the same rows (~50 of a scan's ~140 us on 97 bins x 80 masses)
+_ROWS: OrderedDict[bytes, np.ndarray] = OrderedDict()
+_ROWS_KEPT = 8
+#: rows kept only up to this many cells (a scan of 400 masses x 100 bins has 40,000)
+_ROWS_CELLS = 50_000
+_ROWS_LOCK = threading.Lock()
+
+
+def _scan_rows(kern, edges, lo, hi, grid, sigma):
+    """:func:`.start_kernels.coarse_rows` of these inputs, kept per key (the same
+    numbers); None where a row cannot be made."""
+    key = b"".join((edges.tobytes(), grid.tobytes(),
+                    np.array([lo, hi, sigma, edges.size, grid.size], float).tobytes()))
+    with _ROWS_LOCK:
+        frac = _ROWS.get(key)
+        if frac is not None:
+            _ROWS.move_to_end(key)
+            return frac
+    frac = np.empty((grid.size, edges.size - 1))
+    if not kern.coarse_rows(edges, lo, hi, grid, sigma, frac):
+        return None
+    if frac.size <= _ROWS_CELLS:
+        with _ROWS_LOCK:
+            _ROWS[key] = frac
+            while len(_ROWS) > _ROWS_KEPT:
+                _ROWS.popitem(last=False)
+    return frac
 
 
 def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:

@@ -51,7 +51,13 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
     evaluated; nor is one inside an ``exclude`` interval (``(lo, hi)`` masses)."""
     e = np.asarray(edges, float)
     nb = e.size - 1
-    sc = np.ones(nb) if scale is None else np.broadcast_to(np.asarray(scale, float), (nb,))
+    if scale is None:
+        sc = np.ones(nb)
+    elif (isinstance(scale, np.ndarray) and scale.dtype == float and scale.shape == (nb,)
+          and scale.flags.c_contiguous):
+        sc = scale  # what the broadcast below gives (a fit's own factors), without its call
+    else:
+        sc = np.broadcast_to(np.asarray(scale, float), (nb,))
     nn = np.asarray(n, float)
     bb = np.maximum(np.asarray(background, float), 1e-300)
     k = _STENCIL

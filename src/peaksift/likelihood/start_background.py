@@ -17,6 +17,9 @@
 
 from __future__ import annotations
 
+import threading
+from collections import OrderedDict
+
 import numpy as np
 
 from .._jit import compiled_module
@@ -98,6 +101,28 @@ class _BackgroundFit:
     @classmethod
     def make(cls, model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
              free: np.ndarray) -> _BackgroundFit | None:
+        # the static arrays depend on the components' kinds, the parameter layout, the
+        # window, the free parameters and the edges, not on the counts: kept by those, so
+        # the next fit of the same binning (toys, a refit) skips their ~40 us
+        key = (tuple((type(shape), getattr(shape, "order", None), sl.start, sl.stop, iy)
+                     for shape, sl, iy in model.blocks),
+               float(model.window[0]), float(model.window[1]), tuple(free.tolist()),
+               np.asarray(edges, float).tobytes())
+        with _STATIC_LOCK:
+            hit = _STATIC.get(key, _MISSING)
+            if hit is not _MISSING:
+                _STATIC.move_to_end(key)
+        if hit is _MISSING:
+            hit = cls._static(model, edges, free)
+            with _STATIC_LOCK:
+                _STATIC[key] = hit
+                while len(_STATIC) > _STATIC_KEPT:
+                    _STATIC.popitem(last=False)
+        return None if hit is None else cls(hit, free, n, scale, free.size)
+
+    @staticmethod
+    def _static(model: Model, edges: np.ndarray, free: np.ndarray) -> tuple | None:
+        """The problem's fixed arrays (None: a component without a compiled kernel)."""
         kernels, drv = compiled_module(KERNELS_MODULE), compiled_module(DRIVER_MODULE)
         codes = [None if k is None else drv._CODES.get(k.func) for k in
                  (kernels.edge_kernel(shape, edges, model.window) for shape, _, _ in
@@ -120,7 +145,7 @@ class _BackgroundFit:
                   np.zeros(len(drow), np.int64),
                   np.array([row[i] for i in range(bsl.start, bsl.stop) if i in row], np.int64),
                   kern.rows, edges.size)
-        return cls(static, free, n, scale, free.size)
+        return static
 
     def minimum(self, v: np.ndarray, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
                 mask: np.ndarray | None) -> np.ndarray | None:
@@ -138,6 +163,13 @@ class _BackgroundFit:
             return None
         return x_out if ok else None
 
+
+#: the static arrays of :class:`_BackgroundFit` by what they are made of (see ``make``),
+#: newest last; None kept too (no compiled kernel for a component)
+_STATIC: OrderedDict = OrderedDict()
+_STATIC_KEPT = 8
+_STATIC_LOCK = threading.Lock()
+_MISSING = object()
 
 #: every bin (:func:`.start_kernels.background_fit`)
 _NO_MASK = np.zeros(0, bool)

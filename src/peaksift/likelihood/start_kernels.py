@@ -35,8 +35,8 @@ from ..shapes.compiled import gaussian_width_rows, vlog
 from .driver import CONVERGED, _drive
 from .kernels import _SUMS, covariance_small
 
-__all__ = ["BAND", "SCAN_BAND", "background_fit", "coarse_scan", "local_maxima", "narrow_rows",
-           "profile_two_yields", "profile_widths"]
+__all__ = ["BAND", "SCAN_BAND", "background_fit", "coarse_rows", "coarse_scan", "local_maxima",
+           "narrow_rows", "profile_two_yields", "profile_widths"]
 
 #: the coarse scan's rows are computed within this many widths of their mass (beyond, a
 #: bin holds < exp(-SCAN_BAND^2 / 2) ~ 3e-18 of the row's peak bin: below the profile's BAND)
@@ -187,17 +187,16 @@ def profile_widths(edges, lo, hi, n, s, g, mass, widths, band, y0, y1, rows, y,
 
 
 @njit(cache=True, nogil=True)
-def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cover - compiled
-    """The coarse likelihood scan of the window: a Gaussian of width ``sigma`` at every
-    trial mass ``grid[m]`` (the rows of :func:`peaksift.shapes.compiled.gaussian_rows` on
-    the window-clipped edges, each within :data:`SCAN_BAND` widths) on the background fractions ``g``, its yield and the background
-    total profiled from ``x (M, 2)`` (:func:`profile_two_yields`): yields into
-    ``x``, NLLs into ``nll (M,)``.  False when a row cannot be made."""
+def coarse_rows(edges, lo, hi, grid, sigma, frac):  # pragma: no cover - compiled
+    """The coarse scan's signal rows: a Gaussian of width ``sigma`` at every trial mass
+    ``grid[m]`` (the rows of :func:`peaksift.shapes.compiled.gaussian_rows` on the
+    window-clipped edges, each within :data:`SCAN_BAND` widths, the rest 0) into ``frac
+    (M, E-1)``.  They do not depend on the counts (:mod:`.coarse_scan` keeps them per
+    binning).  False when a row cannot be made."""
     ne = edges.size
     e = np.empty(ne)
     for i in range(ne):
         e[i] = min(max(edges[i], lo), hi)
-    frac = np.empty((grid.size, ne - 1))
     # each row only on the edges within SCAN_BAND widths of its mass, the rest 0: the
     # profile uses a row only where it exceeds BAND (1e-12) of its peak, which a bin
     # beyond 7.5 widths never does, and a row's fractions are computed edge by edge, so
@@ -211,6 +210,18 @@ def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cove
         i1[0] = min(np.searchsorted(e, grid[b] + SCAN_BAND * sigma) + 1, ne - 1)
         if not gaussian_width_rows(e, grid[b], width, i0, i1, lo, hi, frac[b:b + 1]):
             return False
+    return True
+
+
+@njit(cache=True, nogil=True)
+def coarse_scan(edges, lo, hi, grid, sigma, n, s, g, x, nll):  # pragma: no cover - compiled
+    """The coarse likelihood scan of the window: the rows of :func:`coarse_rows` on the
+    background fractions ``g``, the yield and the background total profiled from ``x (M,
+    2)`` (:func:`profile_two_yields`): yields into ``x``, NLLs into ``nll (M,)``.  False
+    when a row cannot be made."""
+    frac = np.empty((grid.size, edges.size - 1))
+    if not coarse_rows(edges, lo, hi, grid, sigma, frac):
+        return False
     profile_two_yields(n, s, frac, g, x, nll, 25)
     return True
 
