@@ -33,7 +33,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from .._lean_imports import scipy_special
+from .._lean_imports import matplotlib_without_set_docs, scipy_special
 from .._processes import (
     die_with_parent,
     quiet_fork,
@@ -393,10 +393,11 @@ def _figure_child(queue: Any, conn: Any, parent: int, formats: Sequence[str]) ->
         # second drawer inherits them so)
         pause()  # (already off in a worker forked at the command's start)
         scipy_special()  # (the result modules' and the fit figure's, the short way)
-        from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
+        with matplotlib_without_set_docs():  # (~0.1 s of docstrings nobody reads here)
+            from .. import plotting  # noqa: F401  (loaded before the second drawer forks)
 
-        _warm_up(formats)  # (an early worker does not know them: PNG only)
-        _job_modules()
+            _warm_up(formats)  # (an early worker does not know them: PNG only)
+            _job_modules()
         settle()  # on again in this process of ours, its imports frozen
         for _ in range(_DRAWERS - 1):
             if (h := _second_drawer(queue)) is not None:
