@@ -13,7 +13,12 @@ from .cost import _Cost, _step_within
 from .model import Model
 from .poisson import MU_FLOOR, unbinned_nll
 
-__all__ = ["UnbinnedCost"]
+__all__ = ["NEAR_MARGIN", "UnbinnedCost"]
+
+#: the peak check's sum from the compiled densities decides its sign alone when it is more
+#: than this fraction of the sum of its terms' sizes away from 0 (they agree with pdf's to
+#: ~1e-12 relative)
+NEAR_MARGIN = 1e-9
 
 
 class UnbinnedCost(_Cost):
@@ -46,6 +51,19 @@ class UnbinnedCost(_Cost):
         for iy, im in self._peaks:
             if v[iy] < 0.0:
                 at = np.array([min(max(float(v[im]), lo), hi)])
+                # first from the shapes' compiled densities (pdf_near, within ~1e-12 of
+                # pdf): a sum clearly of one sign (beyond 1e-9 of the sum of the terms'
+                # sizes) has that sign with pdf's numbers too; only a sum near 0 (or not
+                # a number) is made again from pdf, so the answer is pdf's, ~3x sooner
+                terms = [float(v[jy]) * float(shape.pdf_near(
+                    at, [float(q) for q in v[sl]], self.model.window)[0])
+                    for shape, sl, jy in self.model.blocks]
+                total = sum(terms)
+                margin = NEAR_MARGIN * sum(abs(t) for t in terms)
+                if total > margin:
+                    continue
+                if total < -margin:
+                    return True
                 total = sum(float(v[jy]) * float(shape.pdf(at, [float(q) for q in v[sl]],
                                                            self.model.window)[0])
                             for shape, sl, jy in self.model.blocks)

@@ -21,8 +21,9 @@ from typing import Any
 from ..errors import FitError
 from ._base import Parameter, Shape, as_window
 from .background import Bernstein, Dijet, Exponential, ExpPoly, PowerLaw, PowerSum
-from .signal import BreitWigner, CrystalBall, Gaussian, Voigt
+from .signal import BreitWigner, CrystalBall, Gaussian
 from .turnon import TurnOn
+from .voigt import Voigt
 
 __all__ = [
     "Bernstein",

@@ -333,6 +333,14 @@ class Shape:
         ``need`` as in :meth:`fractions_and_grad`."""
         return self.pdf(x, params, window), self.grad_pdf(x, params, window, need)
 
+    def pdf_near(self, x: np.ndarray, params: Sequence[float],
+                 window: tuple[float, float]) -> np.ndarray:
+        """:meth:`pdf` at a few masses inside the window for scalar parameters, from the
+        compiled path where the shape has one: equal to ``pdf`` to ~1e-12 relative, not
+        to the bit, so only for checks that do not depend on the last digits (the
+        unbinned cost's sign check at a peak).  By default ``pdf`` itself."""
+        return self.pdf(x, params, window)
+
     # ----------------------------------------------------- peak description
     def location(self, params: Sequence[Any]) -> float:
         """Peak location (signal shapes: the ``mass`` parameter)."""

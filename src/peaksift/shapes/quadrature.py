@@ -136,6 +136,11 @@ def exp_family_fractions(params: np.ndarray, basis, edges: np.ndarray,
     """
     x, w, start, _ = panel_nodes(edges, window)
     phi = np.ascontiguousarray(np.asarray(basis(x), float).reshape(-1, x.size))
+    return _fractions(params, phi, w, start, grad)
+
+
+def _fractions(params, phi, w, start, grad: bool):
+    """:func:`exp_family_fractions` from the rule's basis values and weights."""
     p = np.ascontiguousarray(np.asarray(params, float).reshape(-1, phi.shape[0]))
     nb, kk = p.shape
     nbins = start.size - 3
@@ -160,8 +165,7 @@ def shape_fractions(shape, edges, params, window, grad: bool):
     p = np.stack([np.broadcast_to(a.reshape(-1), (rows,)) for a in arrs], axis=1)
     if not np.all(np.isfinite(p)):
         return None
-    out = exp_family_fractions(p, lambda x: shape._basis(x, window), np.asarray(edges, float),
-                               window, grad)
+    out = _fractions(p, *_edge_rule(shape, np.asarray(edges, float), window), grad)
     if out is None:
         return None
     frac, d = out
@@ -169,6 +173,27 @@ def shape_fractions(shape, edges, params, window, grad: bool):
         return frac[0], (None if d is None else d[:, 0])
     return frac, d
 
+
+
+def _edge_rule(shape, edges: np.ndarray, window) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The basis at the nodes of :func:`panel_nodes` for ``edges``, the weights and the
+    segment starts, kept on the shape for the last few edge arrays (a fit asks for the
+    same edges at every step; the nodes and the basis were a fifth of a binned
+    Crystal Ball on exppoly fit).  Found by value, never by identity, as
+    :func:`_event_basis`."""
+    memo = shape.__dict__.setdefault("_edge_rules", [])
+    key = (float(window[0]), float(window[1]), edges.shape)
+    for k, es, rule in memo:
+        if k == key and np.array_equal(es, edges):
+            return rule
+    x, w, start, _ = panel_nodes(edges, window)
+    phi = np.ascontiguousarray(np.asarray(shape._basis(x, window), float).reshape(-1, x.size))
+    for a in (phi, w, start):
+        a.flags.writeable = False
+    rule = (phi, w, start)
+    memo.insert(0, (key, edges.copy(), rule))
+    del memo[4:]
+    return rule
 
 
 def _window_rule(shape, window) -> tuple[np.ndarray, np.ndarray]:
@@ -193,6 +218,11 @@ def _event_basis(shape, x: np.ndarray, window) -> np.ndarray:
     were half of an evaluation).  Found by value (``array_equal``), never by identity, so
     an array changed in place or a new one at the same address cannot find a stale
     basis."""
+    if x.size <= 16:
+        # a few masses (the unbinned cost's check of the density at a peak, each step at a
+        # new mass) are not kept: they pushed the events' basis out of the memo, which
+        # was then made again at every step of a fit with a negative signal yield
+        return np.asarray(shape._basis(x, window), float).reshape(-1, x.size)
     memo = shape.__dict__.setdefault("_event_bases", [])
     key = (float(window[0]), float(window[1]), x.size)
     for k, xs, px in memo:
