@@ -27,17 +27,36 @@ import math
 from typing import Any
 
 import numpy as np
-from numba import njit
+from numba import njit, types
+from numba.extending import intrinsic
+from numba.np.arrayobj import make_array, populate_array
 
-from ..likelihood.kernels import solve_small
+from ..likelihood.kernels import solve_small, solve_small_into
 from ..shapes.compiled import exponential_rows, powerlaw_rows, vlog
 
-__all__ = ["compiled_profile", "first_error", "row_kernel"]
+__all__ = ["compiled_profile", "compiled_scan_profile", "first_error", "row_kernel"]
 
 #: :func:`peaksift.stats.toy_model` floors expectations here in its gradients and Hessians
 NU_FLOOR = 1e-100
 #: and here before a logarithm (:data:`peaksift.likelihood.MU_FLOOR`)
 MU_FLOOR = 1e-300
+
+
+@intrinsic
+def borrowed(typingctx, arr):  # pragma: no cover - compile time
+    """The array ``arr`` without its reference count (a null meminfo): numba then passes
+    it to a compiled function without the two locked instructions per array and call.
+    Valid only while ``arr`` itself is alive (an argument of the caller)."""
+    if not isinstance(arr, types.Array):
+        return None
+
+    def codegen(context, builder, sig, args):
+        src = make_array(sig.args[0])(context, builder, value=args[0])
+        out = make_array(sig.return_type)(context, builder)
+        populate_array(out, data=src.data, shape=src.shape, strides=src.strides,
+                       itemsize=src.itemsize, meminfo=None)
+        return out._getvalue()
+    return arr(arr), codegen
 
 
 #: the row kernels by the name a shape's ``row_inputs`` gives (:mod:`peaksift.shapes.compiled`)
@@ -190,7 +209,7 @@ def _grad_hess(n, nrow, f, r, gs, dgs, slot, d2, d2row, s, b, off, grad,
 
 
 @njit(cache=True, nogil=True)
-def _damped_step(hess, grad, lam, h, step):  # pragma: no cover - compiled
+def _damped_step(hess, grad, lam, h, step, sm, sd):  # pragma: no cover - compiled
     """``minimize.damped_step`` (after ``_pin_at_bounds``) for one row, solved by
     :func:`peaksift.likelihood.kernels.solve_small`; False when the system is singular or
     the step not finite (numpy then takes a least-squares step or zeroes components: the
@@ -204,7 +223,7 @@ def _damped_step(hess, grad, lam, h, step):  # pragma: no cover - compiled
         for c in range(p):
             h[a, c] = hess[a, c]
         h[a, a] += lam * (hess[a, a] + floor) + 1e-14 * floor
-    return solve_small(h, grad, step)
+    return solve_small_into(h, grad, step, sm, sd)
 
 
 #: the rows of profile_rows' fraction buffers: the current point and a trial alternate in
@@ -225,31 +244,61 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     fractions and derivatives, likewise computed once).
     ``hess_out (B, P, P)`` the exact Hessian at each minimum and ``s_err`` the signal
     yield's error from it (``minimize.first_error``).
-    Arrays are indexed by row, never sliced: a view costs two atomic reference counts."""
-    nrow, nb = f.shape
+    Arrays are indexed by row, never sliced: a view costs two atomic reference counts.
+    The work buffers are made here, once, and :func:`_rows` fits with them."""
+    nb = f.shape[1]
+    p = x.shape[1]
+    nw = e1.size
+    # gs, dgs: fractions and derivatives of the current point, a trial and the start
+    # (_START); an accepted trial's row becomes the current one, so each point costs one
+    # evaluation of the background (it cost two: the trial's fractions, then its
+    # derivatives again).  mats, vecs: the (P, P) and (P,) work of a Newton step
+    return _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
+                 steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
+                 s_err, np.empty(1), np.empty((1, nw - 1)), np.empty((1, nw - 1)),
+                 np.empty((3, nb)), np.empty((3, nb)), np.empty((2, nb)),
+                 np.empty((8, p, p)), np.empty((8, p)), np.zeros(p, np.bool_),
+                 np.empty((p, p + 1)))
+
+
+@njit(cache=True, nogil=True)
+def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
+          steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
+          s_err, kbuf, frac, grad_full, gs, dgs, lb, mats, vecs, pin,
+          sm):  # pragma: no cover - compiled
+    """:func:`profile_rows` with its work buffers.  Every array the Newton loop hands to
+    a compiled helper is :func:`borrowed` first: each helper call took and gave back a
+    reference per array argument, two locked instructions each, ~60 per iteration (with
+    the two allocations of each solve, ~0.4 us of a row's ~1.4 us fixed cost)."""
+    e1 = borrowed(e1)
+    e2 = borrowed(e2)
+    used = borrowed(used)
+    scale = borrowed(scale)
+    n = borrowed(n)
+    f = borrowed(f)
+    d2 = borrowed(d2)
+    kbuf = borrowed(kbuf)
+    frac = borrowed(frac)
+    grad_full = borrowed(grad_full)
+    gs = borrowed(gs)
+    dgs = borrowed(dgs)
+    lb = borrowed(lb)
+    pin = borrowed(pin)
+    sm = borrowed(sm)
+    hess = borrowed(mats[0])
+    hp = borrowed(mats[1])
+    h = borrowed(mats[2])
+    grad = borrowed(vecs[0])
+    gp = borrowed(vecs[1])
+    err = borrowed(vecs[2])
+    step = borrowed(vecs[3])
+    xr = borrowed(vecs[4])
+    trial = borrowed(vecs[5])
+    sd = borrowed(vecs[6])
+    nrow = f.shape[0]
     p = x.shape[1]
     off = 1 if p == 3 else 0
     fixed = off == 0
-    nw = e1.size
-    kbuf = np.empty(1)
-    frac = np.empty((1, nw - 1))
-    grad_full = np.empty((1, nw - 1))
-    # fractions and derivatives of the current point, a trial and the start (_START); an
-    # accepted trial's row becomes the current one, so each point costs one evaluation of
-    # the background (it cost two: the trial's fractions, then its derivatives again)
-    gs = np.empty((3, nb))
-    dgs = np.empty((3, nb))
-    grad = np.empty(p)
-    hess = np.empty((p, p))
-    hp = np.empty((p, p))
-    gp = np.empty(p)
-    err = np.empty(p)
-    pin = np.zeros(p, np.bool_)
-    h = np.empty((p, p))
-    step = np.empty(p)
-    xr = np.empty(p)
-    trial = np.empty(p)
-    lb = np.empty((2, nb))
     shared_d2 = d2.shape[0] == 1
     many_n = n.shape[0] > 1
     for r in range(nrow):
@@ -300,7 +349,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
             accepted = False
             ti = 1 if ci == 0 else 0
             for _t in range(tries):
-                if not _damped_step(hp, gp, lam, h, step):
+                if not _damped_step(hp, gp, lam, h, step, sm, sd):
                     return r + 1
                 small = True
                 for a in range(p):
@@ -383,6 +432,68 @@ def first_error(hess, a, rhs, col):  # pragma: no cover - compiled
     return math.sqrt(v) if v > 0.0 else math.nan
 
 
+@njit(cache=True, nogil=True)
+def scan_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, b0, th0, lo, hi, steps,
+              tol):  # pragma: no cover - compiled
+    """:func:`profile_rows` for a scan (every row from ``s = 0``, ``b = b0``, ``theta =
+    th0``, the signal free) with the inputs and outputs :func:`compiled_profile` makes,
+    made here: ``(status, s, s_error, b, theta, nll, converged, hessian, d2)``.  A
+    100-bin scan's ~20 numpy calls around the kernel cost ~40 us with cold caches."""
+    nb, nbin = f.shape
+    x = np.empty((nb, 3))
+    for r in range(nb):
+        x[r, 0] = 0.0
+        x[r, 1] = b0
+        x[r, 2] = th0
+    one_start = nb > 1 and not math.isnan(th0)
+    lower = np.array((-math.inf, -math.inf, lo))
+    upper = np.array((math.inf, math.inf, hi))
+    d2 = np.empty((1 if one_start else nb, nbin))
+    nll = np.empty(nb)
+    conv = np.zeros(nb, np.bool_)
+    hess = np.zeros((nb, 3, 3))
+    s_err = np.full(nb, np.nan)
+    status = profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, np.zeros(nb),
+                          lower, upper, steps, 12, 1e-8, tol, 1e-9, d2, nll, conv, hess,
+                          s_err)
+    return (status, x[:, 0].copy(), s_err, x[:, 1].copy(), x[:, 2:].copy(), nll, conv,
+            hess, d2)
+
+
+def compiled_scan_profile(model: Any, n: np.ndarray, f: np.ndarray, sat: Any, steps: int,
+                          tol: float) -> dict | None:
+    """:func:`compiled_profile` of a scan's call (one spectrum ``n (N,)``, float64, every
+    row from the background-only fit, the signal free) through :func:`scan_rows`: the same
+    numbers, or None (the numpy path must run)."""
+    rk = row_kernel(model.background, model.edges, model.window)
+    theta = model.theta
+    if rk is None or theta.shape != (1,):
+        return None
+    code, e1, e2, c1, c2 = rk
+    scale = (_EMPTY if model.bin_scale is None
+             else np.ascontiguousarray(model.bin_scale, float))
+    out = scan_rows(code, e1, e2, c1, c2, np.ascontiguousarray(model.used, np.int64), scale,
+                    np.ascontiguousarray(n.reshape(1, -1)), np.ascontiguousarray(sat, float),
+                    np.ascontiguousarray(f), float(model.bkg_yield), float(theta[0]),
+                    float(model.lower[0]), float(model.upper[0]), int(steps), float(tol))
+    status, s, s_err, b, th, nll, conv, hess, d2 = out
+    if status:
+        return None
+    nb, nbin = f.shape
+    one_start = nb > 1 and bool(theta[0] == theta[0])  # (not NaN: scan_rows' rule)
+    # d2 as (B, 1, 1, N) rows, one shared by all with a zero stride (compiled_profile's)
+    curvature = np.ndarray((nb, 1, 1, nbin), float, d2, 0,
+                           (0 if one_start else d2.strides[0], 0, 0, d2.strides[1]))
+    curvature.flags.writeable = False
+    return {"s": s, "s_error": s_err, "b": b, "theta": th, "nll": nll, "converged": conv,
+            "hessian": hess, "curvature": curvature}
+
+
+#: the unweighted scale, no element (writable, as the kernels were specialised on; with
+#: no element nothing is ever written into it)
+_EMPTY = np.empty(0)
+
+
 def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: Any, b: Any,
                      theta: np.ndarray, fixed: bool, sat: np.ndarray, steps: int,
                      tol: float) -> dict | None:
@@ -420,8 +531,8 @@ def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: Any, b: Any,
     s_err = np.full(nb, np.nan)
     status = profile_rows(code, e1, e2, c1, c2,
                           np.ascontiguousarray(model.used, np.int64), scale,
-                          np.ascontiguousarray(np.atleast_2d(n), float),
-                          np.ascontiguousarray(np.atleast_1d(sat), float),
+                          np.ascontiguousarray(n if n.ndim == 2 else n.reshape(1, -1), float),
+                          np.ascontiguousarray(sat, float),   # (at least 1-d)
                           np.ascontiguousarray(f, float), x, s_fix, lower, upper, int(steps),
                           12, 1e-8, float(tol), 1e-9, d2, nll, conv, hess, s_err)
     if status:

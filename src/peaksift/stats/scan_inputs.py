@@ -24,6 +24,7 @@ from ..likelihood.poisson import use_compiled
 from ..resolution import resolution_from
 from .bounds import check_plan
 from .scan_plan import _signal_params, input_digest, window_plan  # noqa: F401 -- _signal_params: imported from here by scan, channels, limits_systematics
+from .scan_prepared import keep_prepared, kept_prepared, prepared_key
 from .toys import ScanModel, bkg_fractions, bkg_gradients, fit_background
 
 
@@ -320,9 +321,41 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    signal_model: Any = None, what: str = "scan",
                    background_fit: Callable[..., Any] | None = None
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
-    """The scan's model, its spectrum and what the scan needs besides.  The background-only
-    fit is :func:`_fit_data_background`'s, or ``background_fit(proto, counts, start) ->
-    (theta (1, K), b (1,), nll (1,))`` (the spurious-signal test's nested fits)."""
+    """The model, spectrum and plan of a scan (:func:`_prepare_model_anew`), kept by their
+    inputs where those are plain values (:func:`.scan_prepared.prepared_key`) and given
+    again as :func:`.scan_prepared.handed_out` copies: the same numbers, warnings raised
+    again.  The background-only fit is :func:`_fit_data_background`'s, or
+    ``background_fit(proto, counts, start) -> (theta (1, K), b (1,), nll (1,))`` (the
+    spurious-signal test's nested fits; then nothing is kept)."""
+    key = None if background_fit is not None else prepared_key(
+        data, signal, background, masses, resolution, relative_resolution,
+        absolute_resolution, window, natural_width, blind, signal_params, bins,
+        background_start, signal_model, what)
+    hit = kept_prepared(key)
+    if hit is not None:
+        return hit
+    args = {"resolution": resolution, "relative_resolution": relative_resolution,
+            "absolute_resolution": absolute_resolution, "window": window,
+            "natural_width": natural_width, "blind": blind, "signal_params": signal_params,
+            "bins": bins, "background_start": background_start,
+            "signal_model": signal_model, "what": what, "background_fit": background_fit}
+    if key is None:
+        return _prepare_model_anew(data, signal, background, masses, **args)
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        prepared = _prepare_model_anew(data, signal, background, masses, **args)
+    return keep_prepared(key, prepared, seen)
+
+
+def _prepare_model_anew(data: Any, signal: Any, background: Any, masses: Any, *,
+                        resolution: Any, relative_resolution: Any, absolute_resolution: Any,
+                        window: Any, natural_width: Any, blind: Any, signal_params: Any,
+                        bins: Any, background_start: Mapping[str, float] | None,
+                        signal_model: Any, what: str,
+                        background_fit: Callable[..., Any] | None
+                        ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
+    """The scan's model, its spectrum and what the scan needs besides (see
+    :func:`_prepare_model`)."""
     from .. import shapes
     from ..histogram import MassHistogram, as_spectrum
 

@@ -231,7 +231,42 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
 
 
 # --------------------------------------------------- exact profile over masses (data)
-@_quiet
+#: numpy's float64 (a singleton: ``dtype is`` tests what ``dtype == np.float64`` does for
+#: the arrays made here, without the comparison's conversion)
+_F8 = np.dtype(np.float64)
+
+#: saturated terms of the spectra profiled lately, by their counts' bytes, the newest
+#: last: a window scanned again asks for the same one (with cold caches its six numpy
+#: calls were ~28 us of a 100-bin scan)
+_SATURATED: dict[bytes, np.ndarray] = {}
+
+
+def _spectrum_saturated(n: np.ndarray) -> np.ndarray:
+    """:func:`saturated_term` of one spectrum ``n (N,)`` (float64), kept by its bytes."""
+    key = n.tobytes()
+    sat = _SATURATED.get(key)
+    if sat is None:
+        with np.errstate(all="ignore"):
+            sat = saturated_term(n)
+        if len(_SATURATED) >= 8:
+            _SATURATED.pop(next(iter(_SATURATED)), None)
+        _SATURATED[key] = sat
+    return sat
+
+
+def _compiled() -> Any:
+    """:mod:`peaksift.stats.profile_kernels`, imported on first use (numba loads then) and
+    kept: an import statement in the scan's path cost ~10 us with cold caches."""
+    if not _KERNEL:
+        from . import profile_kernels
+
+        _KERNEL.append(profile_kernels)
+    return _KERNEL[0]
+
+
+_KERNEL: list[Any] = []
+
+
 def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
                    s_fixed: np.ndarray | None = None, s_start: np.ndarray | None = None,
                    theta_start: np.ndarray | None = None, b_start: np.ndarray | None = None,
@@ -250,22 +285,33 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     n_used)``, that the Hessian used; None without shape parameters).
     """
     f = fractions
-    if not (type(f) is np.ndarray and f.ndim == 2 and f.dtype == np.float64):
+    if not (type(f) is np.ndarray and f.ndim == 2 and f.dtype is _F8):
         f = np.atleast_2d(np.asarray(fractions, float))  # (the same array when it is one)
-    nb, nbin = f.shape
+    nbin = f.shape[1]
     k = model.theta.size
     if (k == 1 and s_fixed is None and s_start is None and theta_start is None
             and b_start is None and type(n) is np.ndarray and n.shape == (nbin,)
-            and n.dtype == np.float64 and use_compiled()):
+            and n.dtype is _F8 and use_compiled()):
         # a scan's call (one spectrum, every row from the background-only fit): the
         # compiled fit's inputs made directly, without the stacked copies below (~30 us
         # of a 100-bin scan); the same values
-        from .profile_kernels import compiled_profile
-
-        out = compiled_profile(model, n, f, 0.0, model.bkg_yield, model.theta, False,
-                               saturated_term(n), steps, tol)
+        # (outside _quiet's errstate, ~10 us with cold caches: no numpy arithmetic here
+        # but the saturated term, computed under it)
+        out = _compiled().compiled_scan_profile(model, n, f, _spectrum_saturated(n), steps,
+                                                tol)
         if out is not None:
             return out
+    return _profile_stacked(model, n, f, s_fixed, s_start, theta_start, b_start, steps, tol)
+
+
+@_quiet
+def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_start: Any,
+                     theta_start: Any, b_start: Any, steps: int,
+                     tol: float) -> dict[str, np.ndarray]:
+    """:func:`profile_signal` but for the scan's compiled call: the rows stacked, compiled
+    where the background has a row kernel, else numpy."""
+    nb, nbin = f.shape
+    k = model.theta.size
     n = np.broadcast_to(np.asarray(n, float), (nb, nbin))
     theta = np.array(np.broadcast_to(model.theta if theta_start is None else theta_start,
                                      (nb, k)), dtype=float)
@@ -281,10 +327,8 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     if k == 1 and use_compiled():
         # the same fit row by row in one compiled call (stats/profile_kernels.py), where
         # the background has a compiled row kernel; None: the numpy path below answers
-        from .profile_kernels import compiled_profile
-
         shared = n.strides[0] == 0
-        out = compiled_profile(model, n[0] if shared else n, f, s, b, theta, fixed,
+        out = _compiled().compiled_profile(model, n[0] if shared else n, f, s, b, theta, fixed,
                                saturated_term(n[:1] if shared else n), steps, tol)
         if out is not None:
             return out

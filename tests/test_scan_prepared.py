@@ -1,0 +1,55 @@
+"""A scan's prepared model kept by its inputs (``stats/scan_prepared.py``): scans of one
+window again, after the caller changed the histogram or a result in place, against iminuit
+fits of a binned Poisson NLL written out in test_scan.py."""
+
+from __future__ import annotations
+
+import numpy as np
+from test_scan import WINDOW, _iminuit_q0
+
+from peaksift import MassHistogram
+from peaksift.stats import scan
+
+SIGMA = 2.5
+MASSES = np.array([180.0, 250.0, 320.0])
+
+
+def _check(r, counts, edges, what):
+    """q0 and the signal yield of each hypothesis equal iminuit's (Cowan et al. 2011 eq.
+    12), to test_scan's tolerances: |dq0| < 0.02 + 1e-3 q0, |ds| < 0.01 sigma_s."""
+    for j, m in enumerate(MASSES):
+        q0, s_hat, s_err = _iminuit_q0(edges, counts, m, SIGMA)
+        assert abs(r.q0[j] - q0) < 0.02 + 1e-3 * q0, (what, m, r.q0[j], q0)
+        assert abs(r.signal_yield[j] - s_hat) < 0.01 * s_err, (what, m)
+
+
+def test_a_kept_preparation_follows_the_histogram_and_is_not_shared():
+    """Scanned twice (the second from the kept preparation), then after the caller wrote
+    into the first result's model and into the histogram's own bins: each scan gives
+    iminuit's q0 and yield for the counts the histogram holds then; the results' arrays
+    are their own (writing into one scan's model leaves the next scan's as it was)."""
+    rng = np.random.default_rng(21)
+    x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 20_000),
+                        rng.normal(250.0, SIGMA, 120)])
+    h = MassHistogram(bins=300, range=WINDOW).fill(x)
+    counts, edges = np.histogram(x, bins=300, range=WINDOW)
+    first = scan(h, "gaussian", "exponential", MASSES, absolute_resolution=SIGMA, refit=False)
+    _check(first, counts, edges, "first")
+    theta = first.model.theta.copy()
+    first.model.counts[:] = 0.0      # the caller's writes into a result's model
+    first.model.theta[:] = 1.0
+    again = scan(h, "gaussian", "exponential", MASSES, absolute_resolution=SIGMA,
+                 refit=False)
+    _check(again, counts, edges, "again")
+    np.testing.assert_array_equal(again.model.counts, counts)
+    np.testing.assert_array_equal(again.model.theta, theta)
+    assert again.model.counts is not first.model.counts
+    # 40 more events in the bins of 248-252 GeV, written into the histogram's own array
+    sel = (edges[:-1] >= 248.0) & (edges[1:] <= 252.0)
+    h.values()[sel] += 10.0
+    h.variances()[sel] += 10.0
+    counts = counts + np.where(sel, 10, 0)
+    changed = scan(h, "gaussian", "exponential", MASSES, absolute_resolution=SIGMA,
+                   refit=False)
+    _check(changed, counts, edges, "changed")
+    assert changed.q0[1] > again.q0[1] + 1.0
