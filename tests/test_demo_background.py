@@ -249,8 +249,8 @@ def _spurious_bernstein(expected, edges, events, mass, sigma, degree):
 
 
 def test_nested_bernstein_template_fits_give_an_independent_fits_spurious_signal(demo):
-    """The spurious signal of bernstein4, whose template fit starts from bernstein3's
-    (itself from bernstein2's), as the order test fits the data: its ratio s / sigma_stat
+    """The spurious signal of bernstein4 (fitted after bernstein2 and bernstein3 of the same
+    template; its template fit is the scan's multi-start one): its ratio s / sigma_stat
     at the masses of its largest value, of the injected resonance and between agrees with
     an independent iminuit fit of the same model to 0.01 (they differ by < 0.002)."""
     from peaksift.histogram import MassHistogram
