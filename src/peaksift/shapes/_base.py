@@ -27,6 +27,7 @@ the shapes shipped here (checked against ``scipy.integrate.quad`` in the tests).
 
 from __future__ import annotations
 
+import contextlib
 import math
 from collections import OrderedDict
 from collections.abc import Sequence
@@ -170,7 +171,8 @@ class Shape:
         key = (p, window)
         hit = self._cache.get(key)
         if hit is not None:
-            self._cache.move_to_end(key)
+            with contextlib.suppress(KeyError):  # (another thread may have dropped it)
+                self._cache.move_to_end(key)
             return hit
         e = self._panels(p, window)
         a, b = e[:-1], e[1:]
@@ -181,7 +183,8 @@ class Shape:
         cum = np.concatenate([[0.0], np.cumsum(panel)])
         self._cache[key] = (e, cum)
         if len(self._cache) > _CACHE_SIZE:
-            self._cache.popitem(last=False)
+            with contextlib.suppress(KeyError):  # (emptied by another thread meanwhile)
+                self._cache.popitem(last=False)
         return e, cum
 
     def _numeric_primitive_scalar(self, x: np.ndarray, p: tuple[float, ...],

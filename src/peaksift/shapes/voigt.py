@@ -22,6 +22,7 @@ where the binned fits' minima stayed within 1e-7 (``docs/performance.md``, 2026-
 
 from __future__ import annotations
 
+import contextlib
 import math
 from collections import OrderedDict
 from collections.abc import Sequence
@@ -90,9 +91,11 @@ class Voigt(_Signal):
             panel = half * (voigt_density(nodes, *p) @ _GL_WEIGHTS)
             hit = cache[key] = (e, np.concatenate([[0.0], np.cumsum(panel)]))
             if len(cache) > _CACHE_SIZE:
-                cache.popitem(last=False)
+                with contextlib.suppress(KeyError):  # (another thread's fit: the table
+                    cache.popitem(last=False)  # is shared, its order only advisory)
         else:
-            cache.move_to_end(key)
+            with contextlib.suppress(KeyError):
+                cache.move_to_end(key)
         return voigt_partial(x, hit[0], hit[1], *p)
 
     @staticmethod

@@ -62,10 +62,11 @@ _GRID = 17
 #: the curve reaches this many Fisher standard deviations of the signal yield (plus 3 times
 #: a fitted signal): beyond every limit's +2 sigma band with room for the nuisances
 _REACH = 10.0
-#: the grid's fits stop when a step gains less than this in NLL: on the demo the limits
-#: move by 1.3e-7 relative against 1e-6 (7e-9 at 1e-6 against 1e-8), a thousandth of the
-#: spline's own 2e-4, and the limits with systematics take 0.29 s of CPU instead of 0.33 s
-_TOL = 1e-4
+#: the grid's fits stop when a step gains less than this in NLL: at 1e-4 the limits moved
+#: by up to 4e-3 relative on narrow peaks with a 5-10% mass scale (1.3e-7 on the demo); at
+#: 1e-5 by at most 4.6e-5 there, a fifth of the spline's own 2e-4 (docs/performance.md,
+#: 2026-12-04)
+_TOL = 1e-5
 #: the normalisation nuisance is profiled over [-_T_RANGE, _T_RANGE] (unit constraint)
 _T_RANGE = 5.0
 
