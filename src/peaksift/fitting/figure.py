@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, number, p_value, pm_parts
+from .._format import fixed, format_interval, number, p_value, pm_parts
 from .result import FitResult
 
 __all__ = ["fit_figure", "parameter_rows"]
@@ -32,7 +32,9 @@ def parameter_rows(result: FitResult, *, background: bool = False
                    ) -> list[tuple[str, str, str, str]]:
     """``(symbol, value, ± error, unit)`` for the signal parameters, the signal yield and
     the background yield (``background=True``: the background shape's parameters too).
-    Fixed parameters say "fixed" in the error column."""
+    Fixed parameters say "fixed" in the error column; a parameter with a profile-likelihood
+    interval shows it (``+0.50 -0.55``, as the summary and the report do) instead of its
+    symmetric HESSE error, so the figure and the tables quote the same numbers."""
     sig_names: list[str] = []
     for s in result.model.signals:
         sig_names += [p.name for p in s.parameters]
@@ -41,11 +43,15 @@ def parameter_rows(result: FitResult, *, background: bool = False
              or n.split("_")[0] in sig_names or background]
     order = {n: i for i, n in enumerate(("mass", "sigma", "width"))}
     names.sort(key=lambda n: (order.get(n, 3), n in ("signal_yield", "background_yield")))
+    intervals = dict(result.intervals or {})
     rows = []
     for n in names:
         sym, mass_unit = _SYMBOLS.get(n, (n.replace("_", " "), False))
         if n in result.fixed:
             v, e = number(result.values[n]), "(fixed)"
+        elif n in intervals and (text := format_interval(result.values[n], *intervals[n])) \
+                and " +" in text:
+            v, _, e = text.partition(" ")
         else:
             v, e = pm_parts(result.values[n], result.errors[n])
             e = f"\u00b1 {e}" if e else ""
