@@ -16,11 +16,11 @@ above powersum1; bernstein3 of the blinded one 0.013 above; powersum3 of the wei
 
 from __future__ import annotations
 
-import itertools
 import warnings
 
 import numpy as np
 import pytest
+from background_reference import assert_orders_nested
 from scipy import optimize
 
 from peaksift.histogram import MassHistogram
@@ -92,10 +92,4 @@ def test_order_test_fits_reach_an_independent_minimum_and_nest(state, name):
                                                              "maxiter": 20000}).fun
                    for x0 in starts)
         assert nll(fitted) <= best + 1e-6, (cand.label, nll(fitted) - best)
-    by_family: dict[str, list] = {}
-    for cand in choice.candidates:
-        by_family.setdefault(cand.family, []).append(cand)
-    for cands in by_family.values():
-        cands.sort(key=lambda x: x.order)
-        for low, high in itertools.pairwise(cands):
-            assert high.nll <= low.nll + 1e-8, (low.label, high.label, high.nll - low.nll)
+    assert_orders_nested(choice, 1e-8)

@@ -10,13 +10,13 @@ P04015).  The power law's spurious signal is computed here by an independent imi
 
 from __future__ import annotations
 
-import itertools
 import json
 import sys
 
 import awkward as ak
 import numpy as np
 import pytest
+from background_reference import assert_orders_nested, bernstein_gaussian_nll
 from scipy import stats
 
 from peaksift import events
@@ -201,13 +201,7 @@ def test_order_test_fits_reach_the_minimum_an_independent_minimiser_finds(demo):
                                               "maxiter": 20000}).fun
                    for x0 in (fitted, default))
         assert cand.nll <= best + 1e-6, (cand.label, cand.nll, best)
-    by_family: dict[str, list] = {}
-    for cand in choice.candidates:
-        by_family.setdefault(cand.family, []).append(cand)
-    for cands in by_family.values():
-        cands.sort(key=lambda c: c.order)
-        for low, high in itertools.pairwise(cands):
-            assert high.nll <= low.nll + 1e-8, (low.label, low.nll, high.label, high.nll)
+    assert_orders_nested(choice, 1e-8)
 
 
 def _spurious_bernstein(expected, edges, events, mass, sigma, degree):
@@ -217,26 +211,9 @@ def _spurious_bernstein(expected, edges, events, mass, sigma, degree):
     normalised on the window) plus a Gaussian of fixed mass and width to the template
     scaled to ``events`` events."""
     from iminuit import Minuit
-    from scipy.special import comb
 
     n = expected * events / expected.sum()
-    lo, hi = edges[0], edges[-1]
-    xg, wg = np.polynomial.legendre.leggauss(8)
-    a, b = edges[:-1], edges[1:]
-    pts = (0.5 * (a + b)[:, None] + 0.5 * (b - a)[:, None] * xg[None, :] - lo) / (hi - lo)
-    k = np.arange(degree + 1)
-    basis = comb(degree, k)[None, None, :] * pts[..., None] ** k * (1 - pts[..., None]) ** (
-        degree - k)
-    per_bin = np.einsum("bgk,g->bk", basis, wg) * 0.5 * (b - a)[:, None]   # (bins, k)
-    z = stats.norm.cdf(edges, mass, sigma)
-    g_frac = np.diff(z) / (z[-1] - z[0])
-
-    def nll(s, nb, *beta):
-        shape = per_bin @ np.concatenate([[1.0], beta])
-        mu = np.maximum(nb * shape / shape.sum() + s * g_frac, 1e-12)
-        return float(np.sum(mu - n * np.log(mu)))
-
-    names = ["s", "nb"] + [f"beta{j}" for j in range(1, degree + 1)]
+    nll, names = bernstein_gaussian_nll(n, edges, degree, mass, sigma)
     m = Minuit(nll, 0.0, n.sum(), *np.full(degree, 0.5), name=names)
     m.errordef = Minuit.LIKELIHOOD
     for nm in names[2:]:

@@ -15,9 +15,8 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
+from background_reference import bernstein_gaussian_nll
 from iminuit import Minuit
-from scipy import stats
-from scipy.special import comb
 
 from peaksift.histogram import MassHistogram
 from peaksift.resolution import resolution_from
@@ -43,23 +42,7 @@ def _reference_ratio(expected: np.ndarray, mass: float) -> float:
     window) plus a Gaussian of fixed mass and width, fitted to the template scaled to
     EVENTS; the lowest of twelve MIGRAD minima."""
     n = expected * EVENTS / expected.sum()
-    lo, hi = EDGES[0], EDGES[-1]
-    xg, wg = np.polynomial.legendre.leggauss(8)
-    a, b = EDGES[:-1], EDGES[1:]
-    pts = (0.5 * (a + b)[:, None] + 0.5 * (b - a)[:, None] * xg[None, :] - lo) / (hi - lo)
-    k = np.arange(DEGREE + 1)
-    basis = comb(DEGREE, k)[None, None, :] * pts[..., None] ** k * (
-        1 - pts[..., None]) ** (DEGREE - k)
-    per_bin = np.einsum("bgk,g->bk", basis, wg) * 0.5 * (b - a)[:, None]
-    z = stats.norm.cdf(EDGES, mass, SIGMA)
-    gf = np.diff(z) / (z[-1] - z[0])
-
-    def nll(s, nb, *beta):
-        sh = per_bin @ np.concatenate([[1.0], beta])
-        mu = np.maximum(nb * sh / sh.sum() + s * gf, 1e-12)
-        return float(np.sum(mu - n * np.log(mu)))
-
-    names = ["s", "nb"] + [f"beta{j}" for j in range(1, DEGREE + 1)]
+    nll, names = bernstein_gaussian_nll(n, EDGES, DEGREE, mass, SIGMA)
     rs = np.random.RandomState(1)
     best = (np.inf, np.nan)
     for t in range(12):

@@ -408,6 +408,18 @@ class CrystalBall(_Signal):
         return p[1]
 
 
+def _fractions_from_primitive(pe, ge, px, gx):
+    """Bin fractions of the window and their parameter derivatives from the primitive
+    ``pe``/``px`` and its gradients ``ge``/``gx`` at the window's ends and at the edges."""
+    plo, phi = pe[0], pe[1]
+    inv = 1.0 / (phi - plo)
+    c = (px - plo) * inv
+    out = [np.diff((gc - g[0]) * inv - c * ((g[1] - g[0]) * inv), axis=-1)
+           for g, gc in zip(ge, gx)]
+    frac = np.maximum(np.diff(c, axis=-1), 0.0)
+    return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
+
+
 class BreitWigner(_Signal):
     r"""Relativistic Breit-Wigner (fixed width), PDG Review of Particle Physics,
     "Resonances" review:
@@ -473,13 +485,7 @@ class BreitWigner(_Signal):
         lo, hi = as_window(window)
         pe, ge = self._primitive_and_grad(np.array([lo, hi]), p)
         px, gx = self._primitive_and_grad(np.clip(np.asarray(edges, float), lo, hi), p)
-        plo, phi = pe[0], pe[1]
-        inv = 1.0 / (phi - plo)
-        c = (px - plo) * inv
-        out = [np.diff((gc - g[0]) * inv - c * ((g[1] - g[0]) * inv), axis=-1)
-               for g, gc in zip(ge, gx)]
-        frac = np.maximum(np.diff(c, axis=-1), 0.0)
-        return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
+        return _fractions_from_primitive(pe, ge, px, gx)
 
     def fit_fractions(self, edges, params, window):
         # the fractions above without the derivatives (the same numbers)

@@ -32,7 +32,7 @@ import numpy as np
 from scipy import special
 
 from ._base import _CACHE_SIZE, _GL_NODES, _GL_WEIGHTS, Parameter, _scalar, as_window
-from .signal import _NAN, _SQRT2PI, _Signal
+from .signal import _NAN, _SQRT2PI, _fractions_from_primitive, _Signal
 
 __all__ = ["Voigt"]
 
@@ -156,16 +156,10 @@ class Voigt(_Signal):
             return super().fractions_and_grad(edges, params, window, need)
         p, w, ends, x = call
         pe = self._compiled_prim(ends, p, w)
-        plo, phi = pe[0], pe[1]
         ge = self._primitive_grad_of(self._faddeeva(ends, p, True), p)
         px = self._compiled_prim(x, p, w)
         gx = self._primitive_grad_of(self._faddeeva(x, p, True), p)
-        inv = 1.0 / (phi - plo)
-        c = (px - plo) * inv
-        out = [np.diff((gc - g[0]) * inv - c * ((g[1] - g[0]) * inv), axis=-1)
-               for g, gc in zip(ge, gx)]
-        frac = np.maximum(np.diff(c, axis=-1), 0.0)
-        return frac, np.array(np.broadcast_arrays(frac, *out)[1:])
+        return _fractions_from_primitive(pe, ge, px, gx)
 
     def fit_fractions(self, edges, params, window):
         # the fractions above (the same operations, so the same numbers) without the
