@@ -12,12 +12,11 @@ steps (the reference, the same numbers).
 from __future__ import annotations
 
 import math
-import threading
-from collections import OrderedDict
 
 import numpy as np
 
 from .._jit import compiled_module
+from .._kept import Kept
 from ..shapes import Gaussian
 from .minimize import damped_step
 from .poisson import (
@@ -160,11 +159,9 @@ def _compiled_scan(shape, edges, n, scale, grid, p, window, bexp, dips):
 #: the coarse scan's rows by binning, window, trial masses and width, newest last: they do
 #: not depend on the counts, and a window fitted again (toys, a search's stages, the same
 #: histogram refitted) needs the same rows (~50 of a scan's ~140 us on 97 bins x 80 masses)
-_ROWS: OrderedDict[bytes, np.ndarray] = OrderedDict()
-_ROWS_KEPT = 8
+_ROWS = Kept(8)
 #: rows kept only up to this many cells (a scan of 400 masses x 100 bins has 40,000)
 _ROWS_CELLS = 50_000
-_ROWS_LOCK = threading.Lock()
 
 
 def _scan_rows(kern, edges, lo, hi, grid, sigma):
@@ -172,20 +169,13 @@ def _scan_rows(kern, edges, lo, hi, grid, sigma):
     numbers); None where a row cannot be made."""
     key = b"".join((edges.tobytes(), grid.tobytes(),
                     np.array([lo, hi, sigma, edges.size, grid.size], float).tobytes()))
-    with _ROWS_LOCK:
-        frac = _ROWS.get(key)
-        if frac is not None:
-            _ROWS.move_to_end(key)
-            return frac
+    frac = _ROWS.get(key)
+    if frac is not None:
+        return frac
     frac = np.empty((grid.size, edges.size - 1))
     if not kern.coarse_rows(edges, lo, hi, grid, sigma, frac):
         return None
-    if frac.size <= _ROWS_CELLS:
-        with _ROWS_LOCK:
-            _ROWS[key] = frac
-            while len(_ROWS) > _ROWS_KEPT:
-                _ROWS.popitem(last=False)
-    return frac
+    return _ROWS.put(key, frac) if frac.size <= _ROWS_CELLS else frac
 
 
 def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:

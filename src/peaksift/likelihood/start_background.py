@@ -17,12 +17,10 @@
 
 from __future__ import annotations
 
-import threading
-from collections import OrderedDict
-
 import numpy as np
 
 from .._jit import compiled_module
+from .._kept import Kept
 from .cost import BinnedCost
 from .minimize import POSDEF_TOL, minimize
 from .model import Model
@@ -108,16 +106,9 @@ class _BackgroundFit:
                      for shape, sl, iy in model.blocks),
                float(model.window[0]), float(model.window[1]), tuple(free.tolist()),
                np.asarray(edges, float).tobytes())
-        with _STATIC_LOCK:
-            hit = _STATIC.get(key, _MISSING)
-            if hit is not _MISSING:
-                _STATIC.move_to_end(key)
+        hit = _STATIC.get(key, _MISSING)
         if hit is _MISSING:
-            hit = cls._static(model, edges, free)
-            with _STATIC_LOCK:
-                _STATIC[key] = hit
-                while len(_STATIC) > _STATIC_KEPT:
-                    _STATIC.popitem(last=False)
+            hit = _STATIC.put(key, cls._static(model, edges, free))
         return None if hit is None else cls(hit, free, n, scale, free.size)
 
     @staticmethod
@@ -166,9 +157,7 @@ class _BackgroundFit:
 
 #: the static arrays of :class:`_BackgroundFit` by what they are made of (see ``make``),
 #: newest last; None kept too (no compiled kernel for a component)
-_STATIC: OrderedDict = OrderedDict()
-_STATIC_KEPT = 8
-_STATIC_LOCK = threading.Lock()
+_STATIC = Kept(8)
 _MISSING = object()
 
 #: every bin (:func:`.start_kernels.background_fit`)
