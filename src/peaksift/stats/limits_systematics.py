@@ -28,6 +28,12 @@ envelope takes without signal, and it is evaluated with the same envelope.  With
 candidate and every shape size 0 the computation is :func:`~peaksift.stats.upper_limits`'s
 asymptotic one, to the bit.
 
+A mass scale whose three standard deviations move the peak further than its width gives
+the profile in :math:`k_m` a well at every upward fluctuation within reach; the profile
+likelihood is the lowest well, which :func:`.scale_scan.profile_global` finds by a scan of
+:math:`k_m` (the unconditional fit and every point of the curves), and the result's
+``notes`` name the masses whose limits took a well away from the nearest one.
+
 Low counts: where few background events lie under the signal the asymptotic formulae
 misplace the bands (see :mod:`peaksift.stats.limits`); there ``method="auto"`` computes the
 limits with toys that profile the same nuisances and the same envelope

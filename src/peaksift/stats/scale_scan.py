@@ -22,8 +22,8 @@ width 0.5 GeV at 150 GeV with a 1-10 % mass scale, ``docs/decisions/mass-scale-s
 
 Method: on each such hypothesis the NLL is evaluated on a grid of :math:`k_m` over its
 whole range (steps of half the peak's width in mass), the other parameters held at the
-centre start's fit (with a free signal, its yield at the one-step optimum of each grid
-point); the ``_STARTS`` lowest wells away from the centre fit's own are refitted with
+centre start's fit and the other factors' shapes at their centres (with a free signal, its
+yield at the one-step optimum of each grid point); the ``_STARTS`` lowest wells away from the centre fit's own are refitted with
 every parameter free, and the lowest fit of each hypothesis is kept.  Where
 :math:`3\,\delta m < w` a second well lies more than 18 units of NLL up the constraint
 (a shift of two widths is six standard deviations), so the scan is skipped: those
@@ -99,20 +99,30 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     g = grid.size
     k_out = np.full((rows.size, _STARTS, len(names)), np.nan)
     s_out = np.full((rows.size, _STARTS), np.nan)
+    # the grid's signal fractions depend on the hypothesis and k_m only (the other
+    # factors at their centres here): once per distinct hypothesis, shared by its rows
+    cols = np.stack([np.broadcast_to(np.asarray(p, float).reshape(-1), (nb,))
+                     for p in base], axis=1)[rows]
+    inv = np.unique(cols, axis=0, return_inverse=True)[1]
+    inv = inv.reshape(-1)
+    first = rows[np.unique(inv, return_index=True)[1]]   # a row of each hypothesis
+    k = np.ones((first.size * g, len(names)))
+    k[:, jm] = np.tile(grid, first.size)
+    with np.errstate(all="ignore"):
+        f_all = _fractions(model, signal, base, names, nuisances, k,
+                           np.repeat(first, g)).reshape(first.size, g, -1)
     per = max(1, _CHUNK // (g * model.used.size))
     for c0 in range(0, rows.size, per):
         r = rows[c0:c0 + per]
         loc = np.arange(c0, c0 + r.size)
-        k = np.repeat(fit["factors"][r], g, axis=0)
-        k[:, jm] = np.tile(grid, r.size)
-        rep = np.repeat(r, g)
         with np.errstate(all="ignore"):
-            f = _fractions(model, signal, base, names, nuisances, k, rep)
+            f = f_all[inv[loc]]
             nu_b = (fit["b"][r, None] * bkg_fractions(model, fit["theta"][r]))[:, None, :]
-            f = f.reshape(r.size, g, -1)
             nr = n[r][:, None, :]
+            kg = np.repeat(fit["factors"][r], g, axis=0)
+            kg[:, jm] = np.tile(grid, r.size)
             cen = None if centers is None else np.repeat(centers[r], g, axis=0)
-            cons = nuisances.constraint_terms(names, k, cen)[0].reshape(r.size, g)
+            cons = nuisances.constraint_terms(names, kg, cen)[0].reshape(r.size, g)
             if fixed_signal:
                 s = np.broadcast_to(fit["s"][r, None], (r.size, g))
                 val = binned_nll(nr, s[..., None] * f + nu_b, saturated=False) + cons

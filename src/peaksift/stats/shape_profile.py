@@ -196,8 +196,6 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
             t = np.einsum("bn,bn->b", d, w)
             hess[:, 0, 1 + j] += t
             hess[:, 1 + j, 0] += t
-        if exact:
-            hess = _with_factor_curvature(hess, si, ki, w, dfs, rows)
         if kk:
             hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
                                                                          d2[rows], w)
@@ -209,6 +207,8 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
             hess[:, 0, :] = 0.0
             hess[:, :, 0] = 0.0
             hess[:, 0, 0] = 1.0
+        if exact:  # last: the definiteness is that of the problem solved (s fixed or free)
+            hess = _with_factor_curvature(hess, si, ki, w, dfs, rows)
         return grad, hess
 
     def _with_factor_curvature(hess, si, ki, w, dfs, rows):
@@ -225,8 +225,10 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
                 out[:, 1 + j, 1 + m] += 0.5 * t
                 out[:, 1 + m, 1 + j] += 0.5 * t
         # the Fisher form where the exact Hessian is not positive definite (far from a
-        # minimum, or between two): its steps always descend
-        ok = np.linalg.eigvalsh(out).min(axis=1) > 0
+        # minimum, or between two): its steps always descend.  Checked on the Hessian
+        # scaled to a unit diagonal: the yields' and the factors' scales differ by 1e10
+        d = 1.0 / np.sqrt(np.abs(np.diagonal(out, axis1=1, axis2=2)) + 1e-300)
+        ok = np.linalg.eigvalsh(out * d[:, :, None] * d[:, None, :]).min(axis=1) > 0
         return np.where(ok[:, None, None], out, hess)
 
     x0 = np.concatenate([s[:, None], k, b[:, None], theta], axis=1)
