@@ -83,10 +83,6 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
     diag = np.diag(cov)
     err = np.sqrt(np.maximum(diag, 0.0))  # np.clip(.., 0, None), without its wrapper
     err[~np.isfinite(diag)] = np.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        corr = cov / np.outer(err, err)
-    corr[~np.isfinite(corr)] = 0.0
-    corr.flat[:: npar + 1] = np.where(err > 0, 1.0, 0.0)  # np.fill_diagonal's assignment
     notes: list[str] = [d.note] if d.note else []
     notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
               f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
@@ -122,46 +118,55 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                                     f"bound) {floor:g} {d.unit}, {FLOOR_FRACTION:g} of the "
                                     "narrowest bin: the peak is narrower than the binning "
                                     "resolves; use finer bins or an unbinned fit")]
-    fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
-    ge, gn, gn2 = gof_binning(d)
+    ge, gn, gn2 = (a.copy() if a.flags.writeable else a for a in gof_binning(d))
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:
         mu = model.expected(ge, vals)
     gsc = d.hist.scaled_poisson_factors() if gof_scale is None else gof_scale
-    # a binned fit's NLL is the saturated form over these very bins: twice it is the
-    # chi-square (no second pass of logarithms); constraint terms would be in it
-    chi2 = (2.0 * float(fbest) if d.binned and not cons and math.isfinite(fbest) else
-            float(baker_cousins_chi2(gn, mu, gsc)))
-    ndf = int(gn.size - free_idx.size)
-    pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
     flags = {
         "converged": bool(mo is not None and mo.converged),
         "at_bound": any("bound" in p for p in problems),
         "near_bound": any("of its bound" in n for n in notes),
         "posdef_covariance": bool(posdef),
     }
-    return FitResult(
-        parameters=tuple(names), values=dict(zip(names, map(float, vals))),
-        errors=dict(zip(names, map(float, err))),
-        fixed=tuple(names[i] for i in np.flatnonzero(is_fixed).tolist()),
-        covariance=cov, correlations=corr, intervals=ivals, nll=float(fbest),
-        valid=not problems, problems=tuple(problems), notes=tuple(notes), flags=flags,
-        binned=d.binned, binned_reason=d.reason, weighted=d.weighted,
-        weight_treatment=treatment, window=d.window, n_events=d.total,
-        peak_mass=float(sig0.location(p0)), peak_mass_error=float(err[i_m]),
-        peak_width=float(vals[i_w]) if i_w is not None else math.nan,
-        peak_width_error=float(err[i_w]) if i_w is not None else math.nan,
-        width_parameter=wname, fwhm=fw, fwhm_error=fw_err,
-        gof_chi2=chi2, gof_ndf=ndf, gof_p_value=pval, gof_note=_gof_note(d, cons, is_fixed,
-                                                                          names),
-        edges=np.asarray(ge), observed=np.asarray(gn), observed_weight_sq_sum=np.asarray(gn2),
-        expected=np.asarray(mu), pulls=np.asarray(pulls),
-        bounds={n: (los[i], his[i]) for i, n in enumerate(names)},
-        constraints=cons, model=model, starts_tried=len(tried), starts_nll=tried,
-        n_calls=calls, unit=d.unit, minimizer="none" if mo is None else mo.method, cost=cost,
-    )
+    ndf = int(gn.size - free_idx.size)
+
+    def later() -> dict:
+        """The fields read less often than made (a toy study reads none): correlations,
+        FWHM, goodness of fit, the bins of the figure.  From values nothing changes."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            corr = cov / np.outer(err, err)
+        corr[~np.isfinite(corr)] = 0.0
+        corr.flat[:: npar + 1] = np.where(err > 0, 1.0, 0.0)  # np.fill_diagonal's assignment
+        fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
+        # a binned fit's NLL is the saturated form over these very bins: twice it is the
+        # chi-square (no second pass of logarithms); constraint terms would be in it
+        chi2 = (2.0 * float(fbest) if d.binned and not cons and math.isfinite(fbest) else
+                float(baker_cousins_chi2(gn, mu, gsc)))
+        pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
+        with np.errstate(invalid="ignore", divide="ignore"):
+            pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
+        return {"correlations": corr, "fwhm": fw, "fwhm_error": fw_err, "gof_chi2": chi2,
+                "gof_p_value": pval, "gof_note": gof_note, "edges": ge, "observed": gn,
+                "observed_weight_sq_sum": gn2, "expected": mu, "pulls": pulls}
+
+    gof_note = _gof_note(d, cons, is_fixed, names)
+    return FitResult._in_parts({
+        "parameters": tuple(names), "values": dict(zip(names, vals.tolist())),
+        "errors": dict(zip(names, err.tolist())),
+        "fixed": tuple(names[i] for i in np.flatnonzero(is_fixed).tolist()),
+        "covariance": cov, "intervals": ivals, "nll": float(fbest), "valid": not problems,
+        "problems": tuple(problems), "notes": tuple(notes), "flags": flags,
+        "binned": d.binned, "binned_reason": d.reason, "weighted": d.weighted,
+        "weight_treatment": treatment, "window": d.window, "n_events": d.total,
+        "peak_mass": float(sig0.location(p0)), "peak_mass_error": float(err[i_m]),
+        "peak_width": float(vals[i_w]) if i_w is not None else math.nan,
+        "peak_width_error": float(err[i_w]) if i_w is not None else math.nan,
+        "width_parameter": wname, "gof_ndf": ndf,
+        "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
+        "constraints": cons, "model": model, "starts_tried": len(tried), "starts_nll": tried,
+        "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
+        "cost": cost}, later)
 
 
 def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
