@@ -37,7 +37,9 @@ class FitData:
     window: tuple[float, float]
     total: float
     unit: str
-    hist: Any = None  # MassHistogram: the fitted bins, or the goodness-of-fit bins (unbinned)
+    # MassHistogram: the fitted bins, or the goodness-of-fit bins (unbinned); None in a
+    # kept setup (:mod:`.setup`), whose arrays above are its own
+    hist: Any = None
     note: str = ""  # said in the result's notes (a window snapped to the histogram's bins)
 
 
@@ -164,7 +166,9 @@ def _edges(bins: Any, lo: float, hi: float) -> np.ndarray:
 
 def gof_binning(d: FitData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Edges, sums of weights and of squared weights of the goodness-of-fit bins: the fit's
-    own bins, or for unbinned data 5-100 equal bins of ~20 masses."""
+    own bins (the histogram's arrays), or for unbinned data 5-100 equal bins of ~20 masses."""
+    if d.binned:
+        return d.edges, d.n, d.n2
     return d.hist.edges, d.hist.values(), d.hist.variances()
 
 
