@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from typing import Any
 
 import numpy as np
 from scipy import special
@@ -124,17 +125,19 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
     if mu is None:
         mu = model.expected(ge, vals)
     gsc = d.hist.scaled_poisson_factors() if gof_scale is None else gof_scale
-    flags = {
-        "converged": bool(mo is not None and mo.converged),
-        "at_bound": any("bound" in p for p in problems),
-        "near_bound": any("of its bound" in n for n in notes),
-        "posdef_covariance": bool(posdef),
-    }
     ndf = int(gn.size - free_idx.size)
+    problems, notes = tuple(problems), tuple(notes)
 
     def later() -> dict:
-        """The fields read less often than made (a toy study reads none): correlations,
-        FWHM, goodness of fit, the bins of the figure.  From values nothing changes."""
+        """The fields read less often than made (a toy study reads none): covariance and
+        correlations, FWHM, goodness of fit, the bins of the figure, bounds, flags.  From
+        values nothing changes."""
+        flags = {
+            "converged": bool(mo is not None and mo.converged),
+            "at_bound": any("bound" in p for p in problems),
+            "near_bound": any("of its bound" in n for n in notes),
+            "posdef_covariance": bool(posdef),
+        }
         with np.errstate(invalid="ignore", divide="ignore"):
             corr = cov / np.outer(err, err)
         corr[~np.isfinite(corr)] = 0.0
@@ -147,25 +150,25 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
         with np.errstate(invalid="ignore", divide="ignore"):
             pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
-        return {"correlations": corr, "fwhm": fw, "fwhm_error": fw_err, "gof_chi2": chi2,
-                "gof_p_value": pval, "gof_note": gof_note, "edges": ge, "observed": gn,
-                "observed_weight_sq_sum": gn2, "expected": mu, "pulls": pulls}
+        return {"covariance": cov, "correlations": corr, "fwhm": fw, "fwhm_error": fw_err,
+                "gof_chi2": chi2, "gof_p_value": pval,
+                "gof_note": _gof_note(d, cons, held, names), "edges": ge, "observed": gn,
+                "observed_weight_sq_sum": gn2, "expected": mu, "pulls": pulls,
+                "flags": flags, "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
+                "constraints": cons}
 
-    gof_note = _gof_note(d, cons, is_fixed, names)
     return FitResult._in_parts({
         "parameters": tuple(names), "values": dict(zip(names, vs)),
         "errors": dict(zip(names, errs)),
         "fixed": tuple(n for n, h in zip(names, held) if h),
-        "covariance": cov, "intervals": ivals, "nll": float(fbest), "valid": not problems,
-        "problems": tuple(problems), "notes": tuple(notes), "flags": flags,
+        "intervals": ivals, "nll": float(fbest), "valid": not problems,
+        "problems": problems, "notes": notes,
         "binned": d.binned, "binned_reason": d.reason, "weighted": d.weighted,
         "weight_treatment": treatment, "window": d.window, "n_events": d.total,
         "peak_mass": float(sig0.location(p0)), "peak_mass_error": errs[i_m],
         "peak_width": vs[i_w] if i_w is not None else math.nan,
         "peak_width_error": errs[i_w] if i_w is not None else math.nan,
-        "width_parameter": wname, "gof_ndf": ndf,
-        "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
-        "constraints": cons, "model": model, "starts_tried": len(tried), "starts_nll": tried,
+        "width_parameter": wname, "gof_ndf": ndf, "model": model, "starts_tried": len(tried), "starts_nll": tried,
         "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
         "cost": cost}, later)
 
@@ -210,7 +213,7 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
     return out
 
 
-def _gof_note(d: FitData, cons: dict, is_fixed: np.ndarray, names: list[str]) -> str:
+def _gof_note(d: FitData, cons: dict, is_fixed: Any, names: list[str]) -> str:
     if d.binned:
         note = ("saturated-model (Baker-Cousins) chi-square of the fitted bins, "
                 "asymptotically chi-square(ndf)")
