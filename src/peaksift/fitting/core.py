@@ -145,7 +145,7 @@ def fit(
                         is_fixed, given, lower, upper, d.total, retries,
                         fine=(edges, counts, scale) if d.binned else None)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
-    free_names = [names[i] for i in free_idx]
+    free_names = [names[i] for i in free_idx.tolist()]
     best, tried, calls = None, [], 0
     if too_few:  # nothing to minimise: the result at the starting values, flagged invalid
         s0 = next(iter(starts))[1]()

@@ -77,7 +77,8 @@ class _Cost:
     def _free_bounds(self, lower: Any, upper: Any) -> tuple[np.ndarray, np.ndarray]:
         """Bounds of the free parameters: as given, else the model's (window-aware) ones,
         never wider than a shape's own domain."""
-        pars = [self.model.parameters[i] for i in self.free]
+        pars = ([self.model.parameters[i] for i in self.free.tolist()]
+                if lower is None or upper is None else ())
         own = self._shape_domain()
         lo = np.array([p.lower for p in pars], float) if lower is None else np.asarray(lower,
                                                                                       float)
@@ -266,6 +267,7 @@ class BinnedCost(_Cost):
         """The same cost (data, free parameters, constraints, every derived array shared)
         with the fixed parameters at ``full``, fresh call count and buffers: the starts of
         one fit differ only there."""
+        self._shape_domain()  # made once here, shared by the copies (each asks once)
         c = _shallow_copy(self)
         c.full = np.asarray(full, float).copy()
         c._last, c._last_value, c._state, c._problem, c.ncall = None, None, None, None, 0

@@ -249,7 +249,8 @@ class FusedBinned:
 
     def fresh(self) -> FusedBinned:
         """The same evaluator with buffers of its own (for another cost on the same data)."""
-        out = copy.copy(self)
+        out = object.__new__(type(self))  # copy.copy's result, without its ~7 us of dispatch
+        out.__dict__.update(self.__dict__)
         out._buffers(self.g.size, self.cdf.shape[1])
         return out
 
