@@ -188,6 +188,7 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
            data.underflow_variance, data.overflow_variance, data.edges.size)
     content = (data.edges.tobytes(), data.values().tobytes(), data.variances().tobytes())
     entries = _SETUPS.get(key)
+    same_bins = None  # a kept setup of other contents in the same bins
     if entries is not None:
         for have, su in entries:
             if have == content:
@@ -195,8 +196,12 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
                 if su.d.note:  # as prepare says it
                     _log.info(su.d.note)
                 return su
+            if same_bins is None and have[0] == content[0]:
+                same_bins = su
     su = setup_of(data, signal, background, window, None, binned, bins, None, None, None,
                   None, None, retries)
+    if same_bins is not None:
+        _share_bins(su, same_bins)
     # the kept data: private read-only arrays (the caller's histogram may change), no
     # reference to the caller's histogram
     d = copy.copy(su.d)
@@ -209,6 +214,20 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
     entries = [] if entries is None else [e for e in entries if e[0] != content]
     _SETUPS.put(key, [(content, su), *entries][:_PER_KEY])
     return su
+
+
+def _share_bins(su: Setup, other: Setup) -> None:
+    """``su``'s first cost made from ``other``'s, a kept setup of the same model, free
+    parameters and bins (its edge kernels, layout and compiled arrays shared), the edges
+    the same array (their per-edges work is kept by it)."""
+    edges, counts, scale = su.binned_arrays
+    # (the caller found the same edges)
+    if (not other.first_cost or other.model is not su.model or su.cons_idx or su.live
+            or other.inner_free.tolist() != su.inner_free.tolist()):
+        return
+    edges = other.binned_arrays[0]
+    su.binned_arrays = (edges, counts, scale)
+    su.first_cost.append(other.first_cost[0].with_counts(counts, scale, su.base))
 
 
 def _mass_histogram() -> type:

@@ -280,11 +280,22 @@ class BinnedCost(_Cost):
         """:meth:`at_values` on the bins ``mask`` selects of the same data (the sidebands
         of a background fit): the same numbers as a new cost with that mask, without making
         its kernels, layout and compiled arrays again."""
+        return self._on_data(*self._data, mask, full)
+
+    def with_counts(self, n: np.ndarray, scale: np.ndarray, full: np.ndarray) -> BinnedCost:
+        """:meth:`at_values` on other counts ``n`` (scaled-Poisson factors ``scale``) in the
+        same bins (another histogram of the same binning): the same numbers as a new cost on
+        them, without making its kernels, layout and compiled arrays again."""
+        return self._on_data(n, scale, self.mask, full)
+
+    def _on_data(self, n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None,
+                 full: np.ndarray) -> BinnedCost:
         c = _shallow_copy(self)
         c.full = np.asarray(full, float).copy()
         c._last, c._last_value, c._state, c._problem, c._empty = None, None, None, None, None
         c.ncall, c._buffers_at = 0, None
-        (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(*self._data, mask)
+        c._data = (n, scale)
+        (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(n, scale, mask)
         c._fused = (None if self._fused is None else
                     self._fused.on_bins(c.mask, c.n, c.s, c.unit_scale))
         c._jac = np.zeros((c.free.size, c.n.size)) if c._fused is None else None
