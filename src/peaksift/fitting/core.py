@@ -21,7 +21,8 @@ from ..likelihood.starts import fit_starts
 from .checks import note_lower_minimum
 from .outcome import problems_at, result_of
 from .result import FitResult
-from .setup import kept_setup, setup_of
+from .setup import setup_of
+from .setup_kept import kept_setup
 
 __all__ = ["fit"]
 

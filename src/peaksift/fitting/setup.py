@@ -1,22 +1,16 @@
-"""What a free fit fixes before it minimises, and that part kept for the next fit of the
-same data.
+"""What a free fit fixes before it minimises.
 
 :func:`setup_of` checks the arguments of :func:`peaksift.fit` and makes the
 :class:`Setup`: the data in the window, the model, the bounds, the starting values, which
 parameters float, the binned arrays every start's cost shares, and the bins the starting
-values are found on.  It depends only on the arguments, so :func:`kept_setup` keeps it for
-the common call -- a MassHistogram, the shapes by name, nothing held, started, bounded,
-constrained or tied -- found again by the histogram's content (every bin's sums, the
-edges, the flows, the unit), the shapes' names and the window: a refit of the same
-histogram (a search's stages, the benchmark) skips it, with the first start's cost made
-once.  A histogram changed in place has other contents and gets a setup of its own; each
-fit gets its own copies of the arrays it may change (:meth:`Setup.for_fit`); the model and
-the read-only arrays are shared (nothing changes them).
+values are found on.  It depends only on the arguments, so :mod:`.setup_kept` keeps it
+for the common call.  Models of shapes given by name are kept (:func:`_model`): the
+shapes' own per-edges work is then kept with them.  :meth:`Setup.for_fit` gives a fit its
+own copies of what it may change; :meth:`Setup.cost_at` makes the starts' costs.
 """
 
 from __future__ import annotations
 
-import copy
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -28,10 +22,10 @@ from .._kept import Kept
 from ..errors import FitError, closest
 from ..likelihood import BinnedCost, Constraint, Model, TiedCost, UnbinnedCost
 from .checks import as_limits, as_retries, as_values, check_fixed, check_support, tie_rows
-from .data import FitData, _log, prepare, start_bins
+from .data import FitData, prepare, start_bins
 from .outcome import FLOOR_FRACTION
 
-__all__ = ["Setup", "kept_setup", "setup_of"]
+__all__ = ["Setup", "entries", "read_only", "setup_of", "yield_bounds", "yield_starts"]
 
 
 @dataclass
@@ -137,9 +131,7 @@ def setup_of(data: Any, signal: Any, background: Any, window: Any, weights: Any,
             base[i] = max(base[i], floor)
     check_support(model, base, is_fixed)
     free_idx = np.flatnonzero(~is_fixed)
-    n_entries = (float(np.sum(d.n)) if d.binned and not d.weighted else
-                 float(np.sum(d.n**2 / np.where(d.n2 > 0, d.n2, 1))) if d.binned else
-                 float(d.x.size))
+    n_entries = entries(d)
     cons_idx = [(names.index(k), c) for k, c in cons.items()]
     inner_free = (np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int) if live
                   else free_idx)  # flatnonzero's: sorted already
@@ -151,6 +143,13 @@ def setup_of(data: Any, signal: Any, background: Any, window: Any, weights: Any,
                  {**start, **fixed}, free_idx, inner_free, n_entries, binned_arrays, starts)
 
 
+def entries(d: FitData) -> float:
+    """The number of entries in the window (weighted bins: effective entries)."""
+    return (float(np.sum(d.n)) if d.binned and not d.weighted else
+            float(np.sum(d.n**2 / np.where(d.n2 > 0, d.n2, 1))) if d.binned else
+            float(d.x.size))
+
+
 def read_only(a: np.ndarray) -> np.ndarray:
     """A read-only float copy of ``a``: costs built on it share their per-bin work (a
     shape's logarithms of the edges, the compiled kernels' clipped edges, the counts'
@@ -160,88 +159,9 @@ def read_only(a: np.ndarray) -> np.ndarray:
     return out
 
 
-# ------------------------------------------------------------------ kept setups
-#: setups by (signal, background, window, binned, unit, flows, number of bins): each a
-#: list of the last few, found by the bins' contents (a toy study's each new)
-_SETUPS = Kept(8)
-_PER_KEY = 3
 #: models by (signal, background, window) of shapes given by name (their shapes' own
 #: per-edges work is then kept too)
 _MODELS = Kept(16)
-
-
-def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any,
-               bins: Any, retries: Any) -> Setup | None:
-    """The setup of the common call (a MassHistogram, shapes by name; the caller checks
-    that nothing is held, started, bounded, constrained or tied), kept by the histogram's
-    content; None for any other call (its setup is made by :func:`setup_of`)."""
-    if (type(data) is not _mass_histogram() or type(signal) is not str
-            or type(background) is not str or binned is False):
-        return None
-    try:
-        win = None if window is None else (float(window[0]), float(window[1]))
-    except (TypeError, ValueError, IndexError, KeyError):
-        return None  # setup_of says what is wrong with it
-    if win is not None and len(window) != 2:
-        return None
-    key = (signal, background, win, binned, data.unit, data.underflow, data.overflow,
-           data.underflow_variance, data.overflow_variance, data.edges.size)
-    content = (data.edges.tobytes(), data.values().tobytes(), data.variances().tobytes())
-    entries = _SETUPS.get(key)
-    same_bins = None  # a kept setup of other contents in the same bins
-    if entries is not None:
-        for have, su in entries:
-            if have == content:
-                as_retries(retries)
-                if su.d.note:  # as prepare says it
-                    _log.info(su.d.note)
-                return su
-            if same_bins is None and have[0] == content[0]:
-                same_bins = su
-    su = setup_of(data, signal, background, window, None, binned, bins, None, None, None,
-                  None, None, retries)
-    if same_bins is not None:
-        _share_bins(su, same_bins)
-    # the kept data: private read-only arrays (the caller's histogram may change), no
-    # reference to the caller's histogram
-    d = copy.copy(su.d)
-    d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
-    d.n2 = read_only(d.n2)
-    d.hist = None
-    su.d, su.kept = d, True
-    for a in (su.base, su.is_fixed, su.lower, su.upper):
-        a.flags.writeable = False  # handed out as copies (Setup.for_fit)
-    entries = [] if entries is None else [e for e in entries if e[0] != content]
-    _SETUPS.put(key, [(content, su), *entries][:_PER_KEY])
-    return su
-
-
-def _share_bins(su: Setup, other: Setup) -> None:
-    """``su``'s first cost made from ``other``'s, a kept setup of the same model, free
-    parameters and bins (its edge kernels, layout and compiled arrays shared), the edges
-    the same array (their per-edges work is kept by it)."""
-    edges, counts, scale = su.binned_arrays
-    # (the caller found the same edges)
-    if (not other.first_cost or other.model is not su.model or su.cons_idx or su.live
-            or other.inner_free.tolist() != su.inner_free.tolist()):
-        return
-    edges = other.binned_arrays[0]
-    su.binned_arrays = (edges, counts, scale)
-    su.first_cost.append(other.first_cost[0].with_counts(counts, scale, su.base))
-
-
-def _mass_histogram() -> type:
-    """The MassHistogram class, imported at the first fit (importing the fitting package
-    loads no histogram code)."""
-    global _MASS_HISTOGRAM
-    if _MASS_HISTOGRAM is None:
-        from ..histogram import MassHistogram
-
-        _MASS_HISTOGRAM = MassHistogram
-    return _MASS_HISTOGRAM
-
-
-_MASS_HISTOGRAM: type | None = None
 
 
 def _model(signal: Any, background: Any, window: tuple[float, float]) -> Model:
@@ -260,11 +180,7 @@ def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):
     names = model.parameter_names
     lower = np.array([p.lower for p in model.parameters], float)
     upper = np.array([p.upper for p in model.parameters], float)
-    tot = max(total, 1.0)
-    yields = [iy for _, _, iy in model.blocks]
-    for iy in yields[:-1]:
-        lower[iy], upper[iy] = -0.5 * tot - 10.0, 5.0 * tot + 10.0
-    lower[yields[-1]], upper[yields[-1]] = 0.0, 5.0 * tot + 10.0
+    yield_bounds(model, total, lower, upper)
     for k, (a, b) in limits.items():
         i = names.index(k)
         lower[i], upper[i] = float(a), float(b)
@@ -273,6 +189,15 @@ def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):
             raise FitError(f"inconsistent bounds for {k!r}: lower {lower[i]:g} is not below "
                            f"upper {upper[i]:g}; fix limits={{{k!r}: (lo, hi)}}")
     return lower, upper
+
+
+def yield_bounds(model: Model, total: float, lower: np.ndarray, upper: np.ndarray) -> None:
+    """The yields' bounds for ``total`` events in the window, into ``lower``/``upper``."""
+    tot = max(total, 1.0)
+    yields = [iy for _, _, iy in model.blocks]
+    for iy in yields[:-1]:
+        lower[iy], upper[iy] = -0.5 * tot - 10.0, 5.0 * tot + 10.0
+    lower[yields[-1]], upper[yields[-1]] = 0.0, 5.0 * tot + 10.0
 
 
 def _width_floors(model: Model, d: FitData, lower: np.ndarray, upper: np.ndarray,
@@ -322,9 +247,16 @@ def _base_values(model: Model, d: FitData, start: dict, fixed: dict, lower: np.n
     base = np.clip(base, lower, upper)
     for k, v in fixed.items():  # fixed values are used as given, even outside the bounds
         base[names.index(k)] = float(v)
+    yield_starts(model, d.total, base)
+    return base, is_fixed
+
+
+def yield_starts(model: Model, total: float, base: np.ndarray) -> None:
+    """Yields not given start at 0 (signals) and at ``total`` (the background), in
+    ``base`` (a yield not given is NaN there)."""
+    yields = [iy for _, _, iy in model.blocks]
     for iy in yields[:-1]:
         if not math.isfinite(base[iy]):
             base[iy] = 0.0
     if not math.isfinite(base[yields[-1]]):
-        base[yields[-1]] = d.total
-    return base, is_fixed
+        base[yields[-1]] = total
