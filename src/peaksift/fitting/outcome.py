@@ -84,32 +84,39 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
     diag = cov.diagonal()  # (np.diag's wrapper: ~2 us)
     err = np.sqrt(np.maximum(diag, 0.0))  # np.clip(.., 0, None), without its wrapper
     err[~np.isfinite(diag)] = np.nan
-    notes: list[str] = [d.note] if d.note else []
-    notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
-              f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
-              f"{names[i_s]}'s)" for i_t, i_s, tie in ties]
     # as Python floats (the same values): arithmetic on numpy scalars costs ~10x more
     xs, los, his, errs = xbest.tolist(), lower.tolist(), upper.tolist(), err.tolist()
     vs, held = vals.tolist(), is_fixed.tolist()
-    for k, i in enumerate(free_idx.tolist()):
-        dist, bnd = distance_to_bound(xs[k], los[i], his[i])
-        if (math.isfinite(dist) and dist > bound_tolerance(xs[k], los[i], his[i])
-                and math.isfinite(errs[i]) and dist < errs[i]):
-            notes.append(f"{names[i]} lies within one standard error of its bound {bnd:g}: "
-                         "its symmetric error is not meaningful, use the interval")
+    asked: list[str] = []  # the intervals' notes (made now, when they are asked for)
     ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
-                       upper, problems, notes)
+                       upper, problems, asked)
     sig0, sl0, iy0 = model.blocks[0]
     p0 = vs[sl0]
     i_m = sl0.start + sig0.parameter_names.index("mass")
     wpars = sig0.width_parameters()
     wname = wpars[0] if wpars else ""
     i_w = sl0.start + sig0.parameter_names.index(wname) if wname else None
-    if (not held[iy0] and (i_w is not None and not held[i_w])
-            and errs[iy0] > 0 and abs(vs[iy0]) / errs[iy0] < _UNDERCOVER_Z):
-        notes.append("free mass and width at a modest significance: the 68 % intervals "
-                     "under-cover, symmetric errors and profile-likelihood intervals alike "
-                     "(61-64 % for mass and yield on ~5 sigma toys)")
+
+    def notes_of() -> tuple[str, ...]:
+        notes: list[str] = [d.note] if d.note else []
+        notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
+                  f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
+                  f"{names[i_s]}'s)" for i_t, i_s, tie in ties]
+        for k, i in enumerate(free_idx.tolist()):
+            dist, bnd = distance_to_bound(xs[k], los[i], his[i])
+            if (math.isfinite(dist) and dist > bound_tolerance(xs[k], los[i], his[i])
+                    and math.isfinite(errs[i]) and dist < errs[i]):
+                notes.append(f"{names[i]} lies within one standard error of its bound "
+                             f"{bnd:g}: its symmetric error is not meaningful, use the "
+                             "interval")
+        notes += asked
+        if (not held[iy0] and (i_w is not None and not held[i_w])
+                and errs[iy0] > 0 and abs(vs[iy0]) / errs[iy0] < _UNDERCOVER_Z):
+            notes.append("free mass and width at a modest significance: the 68 % intervals "
+                         "under-cover, symmetric errors and profile-likelihood intervals "
+                         "alike (61-64 % for mass and yield on ~5 sigma toys)")
+        return tuple(notes)
+
     for i, floor in floors.items():
         # at the floor, or within one error of it: the width is not measured, the peak is a
         # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
@@ -126,12 +133,13 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         mu = model.expected(ge, vals)
     gsc = d.hist.scaled_poisson_factors() if gof_scale is None else gof_scale
     ndf = int(gn.size - free_idx.size)
-    problems, notes = tuple(problems), tuple(notes)
+    problems = tuple(problems)
 
     def later() -> dict:
-        """The fields read less often than made (a toy study reads none): covariance and
-        correlations, FWHM, goodness of fit, the bins of the figure, bounds, flags.  From
-        values nothing changes."""
+        """The fields read less often than made (a toy study reads none): notes, covariance
+        and correlations, FWHM, goodness of fit, the bins of the figure, bounds, flags.
+        From values nothing changes."""
+        notes = notes_of()
         flags = {
             "converged": bool(mo is not None and mo.converged),
             "at_bound": any("bound" in p for p in problems),
@@ -155,21 +163,21 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                 "gof_note": _gof_note(d, cons, held, names), "edges": ge, "observed": gn,
                 "observed_weight_sq_sum": gn2, "expected": mu, "pulls": pulls,
                 "flags": flags, "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
-                "constraints": cons}
+                "constraints": cons, "notes": notes}
 
     return FitResult._in_parts({
         "parameters": tuple(names), "values": dict(zip(names, vs)),
         "errors": dict(zip(names, errs)),
         "fixed": tuple(n for n, h in zip(names, held) if h),
         "intervals": ivals, "nll": float(fbest), "valid": not problems,
-        "problems": problems, "notes": notes,
+        "problems": problems,
         "binned": d.binned, "binned_reason": d.reason, "weighted": d.weighted,
         "weight_treatment": treatment, "window": d.window, "n_events": d.total,
         "peak_mass": float(sig0.location(p0)), "peak_mass_error": errs[i_m],
         "peak_width": vs[i_w] if i_w is not None else math.nan,
         "peak_width_error": errs[i_w] if i_w is not None else math.nan,
-        "width_parameter": wname, "gof_ndf": ndf, "model": model, "starts_tried": len(tried), "starts_nll": tried,
-        "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
+        "width_parameter": wname, "gof_ndf": ndf, "model": model,
+        "starts_tried": len(tried), "starts_nll": tried, "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
         "cost": cost}, later)
 
 
