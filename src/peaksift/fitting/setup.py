@@ -145,7 +145,8 @@ def setup_of(data: Any, signal: Any, background: Any, window: Any, weights: Any,
 
 def entries(d: FitData) -> float:
     """The number of entries in the window (weighted bins: effective entries)."""
-    return (float(np.sum(d.n)) if d.binned and not d.weighted else
+    # (binned: prepare's total is the same sum of the same array)
+    return (d.total if d.binned and not d.weighted else
             float(np.sum(d.n**2 / np.where(d.n2 > 0, d.n2, 1))) if d.binned else
             float(d.x.size))
 

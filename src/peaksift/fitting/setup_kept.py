@@ -17,7 +17,6 @@ copies of what it may change (:meth:`~.setup.Setup.for_fit`).
 
 from __future__ import annotations
 
-import copy
 from typing import Any
 
 import numpy as np
@@ -70,7 +69,8 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
                       None, None, None, retries)
     # the kept data: private read-only arrays (the caller's histogram may change), no
     # reference to the caller's histogram
-    d = copy.copy(su.d)
+    d = object.__new__(type(su.d))  # copy.copy's, without its ~5 us of dispatch
+    d.__dict__.update(su.d.__dict__)
     d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
     d.n2 = read_only(d.n2)
     d.hist = None
