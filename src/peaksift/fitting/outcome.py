@@ -43,10 +43,12 @@ def problems_at(mo: Minimum, x: np.ndarray, posdef: bool, lower: np.ndarray, upp
     if not mo.converged:
         out.append("minimiser did not converge" + (" (call limit reached)"
                                                   if mo.call_limit else ""))
+    # as Python floats (the same values, ~10x cheaper arithmetic than numpy scalars')
+    xs, los, his = np.asarray(x, float).tolist(), lower.tolist(), upper.tolist()
     for i, name in enumerate(names):
-        if distance_to_bound(x[i], lower[i], upper[i])[0] <= bound_tolerance(
-                x[i], lower[i], upper[i]):
-            out.append(f"{name} at a bound ({x[i]:.6g})")
+        if distance_to_bound(xs[i], los[i], his[i])[0] <= bound_tolerance(
+                xs[i], los[i], his[i]):
+            out.append(f"{name} at a bound ({xs[i]:.6g})")
     if not posdef:
         out.append("covariance not positive definite (Hessian of the NLL not invertible)")
     return out
