@@ -185,6 +185,8 @@ def _damped_step(hess, grad, lam, h, step, sm, sd):  # pragma: no cover - compil
         for c in range(p):
             h[a, c] = hess[a, c]
         h[a, a] += lam * (hess[a, a] + floor) + 1e-14 * floor
+    if p == 3:
+        return _solve3_into(h, grad, step, sm, sd)
     return solve_small_into(h, grad, step, sm, sd)
 
 
@@ -252,7 +254,6 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
     h = borrowed(mats[2])
     grad = borrowed(vecs[0])
     gp = borrowed(vecs[1])
-    err = borrowed(vecs[2])
     step = borrowed(vecs[3])
     xr = borrowed(vecs[4])
     trial = borrowed(vecs[5])
@@ -294,8 +295,6 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
         for _it in range(steps):
             s = s_fix[r] if fixed else xr[0]
             _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, s, xr[off], off, grad, hess)
-            for a in range(p):
-                err[a] = math.sqrt(abs(1.0 / hess[a, a])) if hess[a, a] != 0.0 else math.inf
             # _pin_at_bounds: a parameter on a bound whose descent leaves it holds still
             anypin = False
             for a in range(p):
@@ -313,24 +312,23 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
             for _t in range(tries):
                 if not _damped_step(hp, gp, lam, h, step, sm, sd):
                     return r + 1
-                small = True
                 for a in range(p):
                     trial[a] = min(max(xr[a] + step[a], lower[a]), upper[a])
-                    small = small and abs(step[a]) < step_tol * err[a]
                 st = s_fix[r] if fixed else trial[0]
                 if not _background(code, e1, e2, c1, c2, used, scale, trial[off + 1],
                                    kbuf, frac, grad_full, gs, dgs, ti):
                     return r + 1
                 tn = _nll(n, nr, f, r, gs, ti, st, trial[off], satr, lb)
-                ok = tn <= cur + slack
-                done = (cur - tn < nll_tol) or small
-                if ok:
+                if tn <= cur + slack:
+                    # converged: the NLL's gain below nll_tol or every step below step_tol
+                    # of its error sqrt|1/H_aa| (the step test only where it decides)
+                    if lam <= 1e-2 and (cur - tn < nll_tol
+                                        or _small(step, hess, step_tol, p)):
+                        conv = True
                     for a in range(p):
                         xr[a] = trial[a]
                     cur = tn
                     ci = ti
-                    if done and lam <= 1e-2:
-                        conv = True
                     lam = max(lam * 0.1, 1e-9)
                     accepted = True
                     break
@@ -348,8 +346,21 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
             for a in range(p):
                 for c in range(p):
                     hess_out[r, a, c] = hess[a, c]
-            s_err[r] = first_error(hess, h, gp, step)
+            s_err[r] = first_error_into(hess, h, gp, step, sm, sd)
     return 0
+
+
+@njit(cache=True, nogil=True)
+def _small(step, hess, step_tol, p):  # pragma: no cover - compiled
+    """Whether every component of the step is below ``step_tol`` times its error
+    ``sqrt|1/H_aa|`` (inf where H_aa = 0): computed only where the NLL's gain does not
+    decide already (it was computed, with the errors, at every iteration: three divisions
+    and square roots, a tenth of a row's fixed cost)."""
+    for a in range(p):
+        e = math.sqrt(abs(1.0 / hess[a, a])) if hess[a, a] != 0.0 else math.inf
+        if not abs(step[a]) < step_tol * e:
+            return False
+    return True
 
 
 @njit(cache=True, nogil=True)
@@ -369,6 +380,73 @@ def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, 
     for j in range(out.shape[1]):
         out[row, j] = (dgs[0, j] - dgs[1, j]) / width
     return True
+
+
+@njit(cache=True, nogil=True)
+def _solve3_into(a, g, out, m, d):  # pragma: no cover - compiled
+    """:func:`peaksift.likelihood.kernels.solve_small_into` of a 3 x 3 system: the same
+    operations in the same order (the same bits), its loops' bounds known, so the compiler
+    unrolls them (a scan's rows solve ~6 of these each)."""
+    n = 3
+    for i in range(n):
+        v = math.sqrt(abs(a[i, i]))
+        d[i] = v if v > 0.0 else 1.0
+    for i in range(n):
+        for j in range(n):
+            m[i, j] = a[i, j] / (d[i] * d[j])
+        m[i, n] = g[i] / d[i]
+    for c in range(n):
+        p = c
+        big = abs(m[c, c])
+        for r in range(c + 1, n):
+            if abs(m[r, c]) > big:
+                big = abs(m[r, c])
+                p = r
+        if not big > 0.0:
+            return False
+        if p != c:
+            for j in range(c, n + 1):
+                t = m[c, j]
+                m[c, j] = m[p, j]
+                m[p, j] = t
+        for r in range(c + 1, n):
+            f = m[r, c] / m[c, c]
+            if f != 0.0:
+                for j in range(c, n + 1):
+                    m[r, j] -= f * m[c, j]
+    for i in range(n - 1, -1, -1):
+        acc = m[i, n]
+        for j in range(i + 1, n):
+            acc -= m[i, j] * out[j]
+        out[i] = acc / m[i, i]
+    for i in range(n):
+        out[i] = -out[i] / d[i]
+        if not math.isfinite(out[i]):
+            return False
+    return True
+
+
+@njit(cache=True, nogil=True)
+def first_error_into(hess, a, rhs, col, m, d):  # pragma: no cover - compiled
+    """:func:`first_error` with the solve's work buffers ``m (p, p + 1)``, ``d (p,)`` (it
+    allocated two arrays a row)."""
+    p = hess.shape[0]
+    tr = 0.0
+    for i in range(p):
+        tr += abs(hess[i, i])
+    reg = 1e-12 * tr
+    for i in range(p):
+        for j in range(p):
+            a[i, j] = hess[i, j]
+        a[i, i] += reg
+        rhs[i] = 0.0
+    rhs[0] = -1.0   # the solve gives -a^-1 rhs
+    ok = (_solve3_into(a, rhs, col, m, d) if p == 3
+          else solve_small_into(a, rhs, col, m, d))
+    if not ok:
+        return math.nan
+    v = col[0]
+    return math.sqrt(v) if v > 0.0 else math.nan
 
 
 @njit(cache=True, nogil=True)

@@ -36,7 +36,7 @@ from ..likelihood import (
 )
 from ..likelihood.poisson import use_compiled
 from .scan_inputs import _prepare_model, _signal_params, _Spectrum
-from .scan_result import ScanResult
+from .scan_result import ScanResult, fresh_result
 from .shape_profile import profile_with_nuisances, with_nuisances
 from .significance import p_from_q0, z_from_q0
 from .toy_model import _compiled, _spectrum_saturated
@@ -233,15 +233,25 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         fit_result = _refit(data, info, spec, best, signal_params, natural_width, notes)
     elif refit and blind is not None:
         notes.append("no free refit while blinded")
-    return ScanResult(
-        masses=m_all, sigma=info["sigma"], q0=arr["q0"], z_local=z, p_local=p,
-        signal_yield=arr["s"], signal_yield_error=arr["se"], background_yield=arr["b"],
-        converged=conv, best_index=best, best_mass=float(m_all[best]), refit=fit_result,
-        window=spec.window, blind=None if blind is None else (float(blind[0]), float(blind[1])),
-        blinded=bl, signal_shape=info["signal"].name, background_shape=info["background"].name,
-        weight_scale=spec.scale, z_expected=z_exp, notes=tuple(notes), unit=spec.unit,
-        model=model, nuisances=None if nuis is _NO_NUISANCES or nuis.none else nuis.to_dict(),
-        nuisance_factors=factors or None)
+    values = {
+        "masses": m_all, "sigma": info["sigma"], "q0": arr["q0"], "z_local": z, "p_local": p,
+        "signal_yield": arr["s"], "signal_yield_error": arr["se"],
+        "background_yield": arr["b"], "converged": conv, "best_index": best,
+        "best_mass": float(m_all[best]), "refit": fit_result, "window": spec.window,
+        "blind": None if blind is None else (float(blind[0]), float(blind[1])),
+        "blinded": bl, "signal_shape": info["signal"].name,
+        "background_shape": info["background"].name, "weight_scale": spec.scale,
+        "z_expected": z_exp, "notes": tuple(notes), "unit": spec.unit, "model": model,
+        "nuisances": None if nuis is _NO_NUISANCES or nuis.none else nuis.to_dict(),
+        "nuisance_factors": factors or None}
+    if table is not None:   # its arrays and those made from them: the result's alone
+        return fresh_result(values, _OWN)
+    return ScanResult(**values)
+
+
+#: the result's arrays a scan from :func:`_scan_table` made for it alone
+_OWN = frozenset({"q0", "z_local", "p_local", "signal_yield", "signal_yield_error",
+                  "background_yield", "converged"})
 
 
 def _significances(q0: np.ndarray, every: bool, bl: np.ndarray
