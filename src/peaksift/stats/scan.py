@@ -164,7 +164,7 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
     else:
         nuis = _nuisances(nuisances, nuisance_toys)
         shape_active = nuis.shape_active
-    factors = {name: np.full(nm, np.nan) for name in shape_active}
+    factors = {name: np.full(nm, np.nan) for name in shape_active} if shape_active else {}
     mb = model.masses.size
     # every hypothesis open (no blinding): the fits' arrays are the result's, no copies
     # into NaN-filled ones (a 100-bin scan's ~40 numpy calls were a third of its time)

@@ -335,16 +335,17 @@ def fresh_result(values: dict[str, Any], own: frozenset[str]) -> ScanResult:
     view, so the caller's stay writable); the frozen dataclass's ``__init__`` (a
     ``object.__setattr__`` per field) skipped.  The construction cost ~20 us of a 100-bin
     scan with cold caches.  A mapping among the values: the usual construction."""
-    if values.keys() != _FIELDS or any(type(v) is dict or (isinstance(v, np.ndarray) and type(v)
-                                                           is not np.ndarray)
-                                       for v in values.values()):
+    if values.keys() != _FIELDS:
         return ScanResult(**values)
     obj = object.__new__(ScanResult)
     d = obj.__dict__
     d.update(values)
     for name, v in values.items():
-        if type(v) is np.ndarray:
+        t = type(v)
+        if t is np.ndarray:
             if name not in own:
                 v = d[name] = v.view()
             v.flags.writeable = False
+        elif t is dict or isinstance(v, np.ndarray):
+            return ScanResult(**values)   # (an array made read-only above stays so: no matter)
     return obj
