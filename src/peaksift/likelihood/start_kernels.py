@@ -337,7 +337,8 @@ def background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_ite
     info = np.empty((npar, npar))
     x_last = np.empty(npar)
     status, _, _ = _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal,
-                          False, x_out, 0.0, info, 0.0, 0.0, x_out, info, x_last)
+                          False, x_out, 0.0, info, 0.0, 0.0, x_out, info, np.empty(npar),
+                          x_last)
     if status != CONVERGED:
         return False
     return covariance_small(info, posdef_tol, np.empty((npar, npar)))
