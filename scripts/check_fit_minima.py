@@ -139,6 +139,16 @@ GROUPS = {"gauss_exp_z0": 100, "gauss_exp_z2": 100, "gauss_exp_z5": 100, "gauss_
           "weighted_unbinned": 40, "weighted_binned": 40}
 
 
+def _load(path: str) -> dict:
+    with open(path) as f:
+        return json.load(f)
+
+
+def _save(obj: dict, path: str) -> None:
+    with open(path, "w") as f:
+        json.dump(obj, f)
+
+
 def hash_group(group: str) -> int:
     return sum((k + 1) * ord(c) for k, c in enumerate(group))
 
@@ -150,7 +160,7 @@ def _record(r) -> dict:
 
 
 def run(out: str, perturb: str | None, only: list[str] | None) -> None:
-    base = json.load(open(perturb)) if perturb else None
+    base = _load(perturb) if perturb else None
     recs = {}
     for group, count in GROUPS.items():
         if only and group not in only:
@@ -169,7 +179,7 @@ def run(out: str, perturb: str | None, only: list[str] | None) -> None:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 recs[key] = _record(peaksift.fit(data, **kw))
-    json.dump(recs, open(out, "w"))
+    _save(recs, out)
     print(f"{len(recs)} fits -> {out}")
 
 
@@ -217,7 +227,7 @@ def _reference_nll(data, kw, free, fixed_vals):
 def reference(fits: str, out: str) -> None:
     from iminuit import Minuit
 
-    base = json.load(open(fits))
+    base = _load(fits)
     refs = {}
     for key, b in base.items():
         if not b["valid"]:
@@ -266,7 +276,7 @@ def reference(fits: str, out: str) -> None:
         refs[key] = {"values": dict(zip(free, x.tolist())), "errors": dict(zip(free, err.tolist())),
                      "nll": f, "valid": bool(m.valid)}
         print(key, end=" ", flush=True) if len(refs) % 100 == 0 else None
-    json.dump(refs, open(out, "w"))
+    _save(refs, out)
     print(f"\n{len(refs)} references -> {out}")
 
 
@@ -276,7 +286,7 @@ def _dev(rec, ref):
 
 
 def compare(old: str, new: str, ref: str) -> None:
-    a, b, r = (json.load(open(p)) for p in (old, new, ref))
+    a, b, r = (_load(p) for p in (old, new, ref))
     print(f"{'group':18s} {'fits':>5s} {'valid':>5s} {'max dev old':>12s} {'max dev new':>12s} "
           f"{'new<=old':>8s} {'dNLL min':>10s} {'dNLL max':>10s} {'err rel':>9s} verdicts")
     allkeys = [k for k in a if k in b]
