@@ -19,7 +19,10 @@ A frozen dataclass that inherits :class:`FrozenValue`
 * has its numpy arrays made read-only and its dicts wrapped in read-only mappings on
   creation, so a result cannot be changed through it (``res.values["mass"] = 0`` raises);
 * shows in a notebook as a small table (``_repr_html_``, :func:`summary_html`) of the rows
-  its ``_summary()`` gives (by default its short ``repr``).
+  its ``_summary()`` gives (by default its short ``repr``);
+* may be made with some fields deferred (:meth:`FrozenValue._deferred`): computed at the
+  first access of any of them (``==``, pickling, ``repr`` and ``dataclasses.replace``
+  read them too), frozen like the others, so the value is the same whenever it is read.
 """
 
 from __future__ import annotations
@@ -27,7 +30,7 @@ from __future__ import annotations
 import copyreg
 import dataclasses
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from types import MappingProxyType
 from typing import Any
 
@@ -165,6 +168,44 @@ class FrozenValue:
             v = d[name]
             if type(v) not in _PLAIN:
                 d[name] = _frozen(v)
+
+    @classmethod
+    def _deferred(cls, now: dict[str, Any], later: Callable[[], dict[str, Any]]) -> Any:
+        """An instance with the fields ``now`` and the other fields from ``later()``, called
+        once, at the first access of any of them; both frozen as ``__post_init__`` freezes
+        (the caller gives the values in the form ``__init__`` would leave them).  For parts
+        of a result that cost more than they are read (a fit's figure arrays in a toy
+        study): ``later`` must compute from values that nothing changes afterwards."""
+        obj = object.__new__(cls)
+        d = obj.__dict__
+        for name, v in now.items():
+            d[name] = v if type(v) in _PLAIN else _frozen(v)
+        d["_later"] = later
+        return obj
+
+    def __getattr__(self, name: str) -> Any:
+        # called only for a name not found: a deferred field not computed yet (else none)
+        d = self.__dict__
+        if "_later" in d and not name.startswith("__"):
+            self._complete()
+            if name in d:
+                return d[name]
+        raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
+
+    def _complete(self) -> None:
+        """Compute the deferred fields, if any are left (two threads may both compute them:
+        the same values; the fields are in place before the marker goes)."""
+        d = self.__dict__
+        later = d.get("_later")
+        if later is None:
+            return
+        for name, v in later().items():
+            d[name] = v if type(v) in _PLAIN else _frozen(v)
+        d.pop("_later", None)
+
+    def __getstate__(self) -> dict[str, Any]:
+        self._complete()  # a pickle holds values, never the function deferring them
+        return self.__dict__
 
     def __eq__(self, other: object) -> bool:
         if type(other) is not type(self):

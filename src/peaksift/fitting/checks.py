@@ -56,6 +56,8 @@ def as_limits(limits: Any) -> dict[str, tuple[float, float]]:
 
 
 def as_retries(retries: Any) -> int:
+    if type(retries) is int and retries >= 0:  # the common case, without the ABC's check
+        return retries
     if (isinstance(retries, bool) or not isinstance(retries, numbers.Integral)
             or retries < 0):
         raise FitError(f"retries must be a non-negative integer, got {retries!r}")

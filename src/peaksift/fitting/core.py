@@ -16,31 +16,13 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import FitError, closest
-from ..likelihood import (
-    BinnedCost,
-    Constraint,
-    Minimum,
-    Model,
-    NearMinimum,
-    TiedCost,
-    UnbinnedCost,
-    minimize,
-    refine,
-)
+from ..likelihood import Minimum, NearMinimum, minimize, refine
 from ..likelihood.starts import fit_starts
-from .checks import (
-    as_limits,
-    as_retries,
-    as_values,
-    check_fixed,
-    check_support,
-    note_lower_minimum,
-    tie_rows,
-)
-from .data import FitData, prepare, start_bins
-from .outcome import FLOOR_FRACTION, problems_at, result_of
+from .checks import note_lower_minimum
+from .outcome import problems_at, result_of
 from .result import FitResult
+from .setup import setup_of
+from .setup_kept import kept_setup
 
 __all__ = ["fit"]
 
@@ -133,91 +115,38 @@ def fit(
     """
     if minos is not None:
         intervals = minos
-    d = prepare(data, weights, window, binned, bins)
-    model = Model(signal, background, d.window)
-    names = list(model.parameter_names)
-    fixed = as_values("fixed", fixed)
-    start = as_values("start", start)
-    limits = as_limits(limits)
-    retries = as_retries(retries)
-    cons = {k: Constraint.coerce(c, k) for k, c in dict(constraints or {}).items()}
-    for label, dct in (("fixed", fixed), ("start", start), ("limits", limits),
-                       ("constraints", cons)):
-        for k in dct:
-            if k not in names:
-                hint = closest(k, names)
-                raise FitError(f"{label}: unknown parameter {k!r}"
-                               f"{f' (did you mean {hint!r}?)' if hint else ''}; "
-                               f"parameters are {', '.join(names)}")
-    if d.total <= 0:
-        raise FitError(f"the fit window {d.window} holds no events (sum of weights "
-                       f"{d.total:g}); widen the window or check the selection")
-    lower, upper = _bounds(model, d.total, limits)
-    for k, c in cons.items():
-        if c.kind == "lognormal" and lower[names.index(k)] < 0:
-            raise FitError(f"constraints: a log-normal constraint on {k!r} needs a parameter "
-                           f"that cannot be negative, but {k} may range down to "
-                           f"{lower[names.index(k)]:g}; use a Gaussian constraint, or set "
-                           f"limits={{{k!r}: (0, ...)}}")
-    check_fixed(model, fixed)
-    base, is_fixed = _base_values(model, d, start, fixed, lower, upper)
-    # a tied parameter is held in the bookkeeping and recomputed inside the cost ("live")
-    # while its source floats; with the source held it is simply held at func(source)
-    ties = tie_rows(tied, names, fixed, cons)
-    live = [(i_t, i_s, tie) for i_t, i_s, tie in ties if not is_fixed[i_s]]
-    for i_t, i_s, tie in ties:
-        is_fixed[i_t] = True
-        base[i_t] = tie.func(float(base[i_s]))
-    floors = _width_floors(model, d, lower, upper, limits)
-    for i, floor in floors.items():  # a start below the floor begins at it
-        if not is_fixed[i]:
-            base[i] = max(base[i], floor)
-    check_support(model, base, is_fixed)
-    free_idx = np.flatnonzero(~is_fixed)
-    nfree = int(free_idx.size)
-    n_entries = (float(np.sum(d.n)) if d.binned and not d.weighted else
-                 float(np.sum(d.n**2 / np.where(d.n2 > 0, d.n2, 1))) if d.binned else
-                 float(d.x.size))
-    too_few = n_entries < nfree
-
-    cons_idx = [(names.index(k), c) for k, c in cons.items()]
-    inner_free = (np.union1d(free_idx, [i_t for i_t, _, _ in live]).astype(int) if live
-                  else free_idx)  # flatnonzero's: sorted already
-    if d.binned:
-        # read-only arrays shared by every start's cost: their per-bin work is kept
-        scale = _read_only(d.hist.scaled_poisson_factors())
-        edges, counts = _read_only(d.edges), _read_only(d.n)
-
-        first: list = []
-
-        def plain_cost(v: np.ndarray) -> Any:
-            if first:  # the other starts: the first start's cost at their fixed values
-                return first[0].at_values(v)
-            first.append(BinnedCost(model, v, inner_free, cons_idx, edges, counts, scale))
-            return first[0]
+    su = None
+    if (start is None and fixed is None and limits is None and constraints is None
+            and tied is None and weights is None):
+        su = kept_setup(data, signal, background, window, binned, bins, retries)
+    if su is None:
+        su = setup_of(data, signal, background, window, weights, binned, bins, start, fixed,
+                      limits, constraints, tied, retries)
     else:
-        def plain_cost(v: np.ndarray) -> Any:
-            return UnbinnedCost(model, v, inner_free, cons_idx, d.x, d.w)
-
-    def make_cost(v: np.ndarray) -> Any:
-        if not live:
-            return plain_cost(v)
-        row = {int(i): k for k, i in enumerate(inner_free)}
-        return TiedCost(plain_cost(v), [(row[i_t], row[i_s], t) for i_t, i_s, t in live])
-    given = {**start, **fixed}
+        su = su.for_fit()
+    retries = int(retries)
+    d, model, names, lower, upper = su.d, su.model, su.names, su.lower, su.upper
+    base, is_fixed, floors, cons, free_idx = su.base, su.is_fixed, su.floors, su.cons, su.free_idx
+    nfree = int(free_idx.size)
+    n_entries = su.n_entries
+    too_few = n_entries < nfree
+    make_cost = su.cost_at
+    if d.binned:
+        edges, counts, scale = su.binned_arrays
+    given = su.given
     if nfree == 0:  # nothing to minimise: the likelihood at the given values
         cost = make_cost(base)
         f = float(cost.value_grad_info(np.empty(0), info=False)[0])
         mo = Minimum(np.empty(0), f, True, False, np.empty(0), "none (every parameter fixed)")
         return result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                        cost, [], np.empty(0), f, np.zeros((0, 0)), True, intervals, (f,),
-                       cost.ncall, floors)
-    se, sn, ssc = start_bins(d)
-    starts = fit_starts(model, _read_only(se), _read_only(sn), _read_only(ssc), base,
+                       cost.ncall, floors, scale if d.binned else None)
+    se, sn, ssc = su.start_arrays
+    starts = fit_starts(model, se, sn, ssc, base,
                         is_fixed, given, lower, upper, d.total, retries,
                         fine=(edges, counts, scale) if d.binned else None)
     lo_f, hi_f = lower[free_idx], upper[free_idx]
-    free_names = [names[i] for i in free_idx]
+    free_names = [names[i] for i in free_idx.tolist()]
     best, tried, calls = None, [], 0
     if too_few:  # nothing to minimise: the result at the starting values, flagged invalid
         s0 = next(iter(starts))[1]()
@@ -280,15 +209,6 @@ def fit(
     return note_lower_minimum(fr, superseded)
 
 
-def _read_only(a: np.ndarray) -> np.ndarray:
-    """A read-only float copy of ``a``: costs built on it share their per-bin work (a
-    shape's logarithms of the edges, the compiled kernels' clipped edges, the counts'
-    saturated term)."""
-    out = np.array(a, float)
-    out.flags.writeable = False
-    return out
-
-
 #: a start whose path comes within this squared distance (in units of the best minimum's
 #: errors, d^T H d) of the best minimum, no more than JOIN_NLL above it, is following that
 #: minimum: two minima that close would differ in NLL by less than ~0.01, below anything the
@@ -301,79 +221,3 @@ def _joins(near: list) -> NearMinimum:
     if near[4] is None:  # the Hessian when a later start needs it (most fits minimise none)
         near[4] = np.linalg.inv(near[3])
     return NearMinimum(near[1], near[2], near[4], JOIN_NLL, JOIN_DISTANCE)
-
-
-def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):
-    names = model.parameter_names
-    lower = np.array([p.lower for p in model.parameters], float)
-    upper = np.array([p.upper for p in model.parameters], float)
-    tot = max(total, 1.0)
-    yields = [iy for _, _, iy in model.blocks]
-    for iy in yields[:-1]:
-        lower[iy], upper[iy] = -0.5 * tot - 10.0, 5.0 * tot + 10.0
-    lower[yields[-1]], upper[yields[-1]] = 0.0, 5.0 * tot + 10.0
-    for k, (a, b) in limits.items():
-        i = names.index(k)
-        lower[i], upper[i] = float(a), float(b)
-    for i, k in enumerate(names):
-        if not lower[i] < upper[i]:
-            raise FitError(f"inconsistent bounds for {k!r}: lower {lower[i]:g} is not below "
-                           f"upper {upper[i]:g}; fix limits={{{k!r}: (lo, hi)}}")
-    return lower, upper
-
-
-
-
-def _width_floors(model: Model, d: FitData, lower: np.ndarray, upper: np.ndarray,
-                  limits: Mapping[str, tuple[float, float]]) -> dict[int, float]:
-    """Raise the lower bound of every signal's ``sigma`` in a binned fit to
-    ``FLOOR_FRACTION`` of the narrowest bin (unless the caller set its limits); returns
-    ``{index: floor}`` of the bounds raised."""
-    if not d.binned:
-        return {}
-    floor = FLOOR_FRACTION * float(np.diff(d.edges).min())  # (np.min's wrapper: ~10 us)
-    out = {}
-    for shape, sl, _ in model.blocks[:-1]:
-        if "sigma" not in shape.parameter_names:
-            continue
-        i = sl.start + shape.parameter_names.index("sigma")
-        name = model.parameter_names[i]
-        if name in limits or not lower[i] < floor < upper[i]:
-            continue
-        lower[i] = floor
-        out[i] = floor
-    return out
-
-
-def _base_values(model: Model, d: FitData, start: dict, fixed: dict, lower: np.ndarray,
-                 upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    names = list(model.parameter_names)
-    for k, v in {**start, **fixed}.items():
-        i = names.index(k)
-        if not math.isfinite(float(v)):
-            raise FitError(f"value for {k!r} is not finite ({v!r})")
-        if k in start and not lower[i] <= float(v) <= upper[i]:
-            raise FitError(f"start value {k}={v:g} is outside its bounds "
-                           f"[{lower[i]:g}, {upper[i]:g}]; change the start or limits={{...}}")
-    is_fixed = np.zeros(len(names), bool)
-    for k in fixed:
-        is_fixed[names.index(k)] = True
-    for _, sl, iy in model.blocks[:-1]:
-        if names[iy] in fixed and float(fixed[names[iy]]) == 0.0:
-            is_fixed[sl] = True
-    yields = [iy for _, _, iy in model.blocks]
-    base = np.array([p.start for p in model.parameters], float)
-    for i in range(len(names)):
-        if not math.isfinite(base[i]) and i not in yields:
-            base[i] = 0.5 * (lower[i] + upper[i])
-    for k, v in start.items():
-        base[names.index(k)] = float(v)
-    base = np.clip(base, lower, upper)
-    for k, v in fixed.items():  # fixed values are used as given, even outside the bounds
-        base[names.index(k)] = float(v)
-    for iy in yields[:-1]:
-        if not math.isfinite(base[iy]):
-            base[iy] = 0.0
-    if not math.isfinite(base[yields[-1]]):
-        base[yields[-1]] = d.total
-    return base, is_fixed

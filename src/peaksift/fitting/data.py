@@ -37,7 +37,9 @@ class FitData:
     window: tuple[float, float]
     total: float
     unit: str
-    hist: Any = None  # MassHistogram: the fitted bins, or the goodness-of-fit bins (unbinned)
+    # MassHistogram: the fitted bins, or the goodness-of-fit bins (unbinned); None in a
+    # kept setup (:mod:`.setup`), whose arrays above are its own
+    hist: Any = None
     note: str = ""  # said in the result's notes (a window snapped to the histogram's bins)
 
 
@@ -55,7 +57,11 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
         except InputError as exc:
             raise FitError(f"fit window: {exc}") from None
         n, n2 = h.values(), h.variances()
-        if not (np.isfinite(n).all() and np.isfinite(n2).all()):
+        total = float(n.sum())
+        # a finite sum has no NaN or infinity among its terms: the element test only when
+        # the sums are not finite (an overflowing sum of finite numbers passes it)
+        if not (math.isfinite(total) and math.isfinite(float(n2.sum()))) and not (
+                np.isfinite(n).all() and np.isfinite(n2).all()):
             raise FitError("the histogram has non-finite bin contents in the fit window")
         if (n < 0).any():
             k = int(np.flatnonzero(n < 0)[0])
@@ -70,7 +76,7 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
                         f"lying completely inside it: {h.lo:g}-{h.hi:g} {h.unit}")
                 _log.info(note)
         return FitData(True, "data is a histogram", bool(h.is_weighted), h.edges, n, n2, None,
-                       None, (h.lo, h.hi), float(n.sum()), h.unit, h, note)
+                       None, (h.lo, h.hi), total, h.unit, h, note)
     x, w = spec
     bad = ~np.isfinite(x)
     if bad.any():
@@ -164,7 +170,9 @@ def _edges(bins: Any, lo: float, hi: float) -> np.ndarray:
 
 def gof_binning(d: FitData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Edges, sums of weights and of squared weights of the goodness-of-fit bins: the fit's
-    own bins, or for unbinned data 5-100 equal bins of ~20 masses."""
+    own bins (the histogram's arrays), or for unbinned data 5-100 equal bins of ~20 masses."""
+    if d.binned:
+        return d.edges, d.n, d.n2
     return d.hist.edges, d.hist.values(), d.hist.variances()
 
 
@@ -177,16 +185,17 @@ def start_bins(d: FitData, most: int = 100) -> tuple[np.ndarray, np.ndarray, np.
     if k <= 1:
         return h.edges, h.values(), h.scaled_poisson_factors()
     n, n2 = h.values(), h.variances()
-    if not np.array_equal(n, n2):  # weighted: the histogram's own rebinning and factors
+    if not bool((n == n2).all()):  # weighted (np.array_equal's test, same shapes here)
         e = h.edges[::k]
         r = h.rebin(edges=e if e[-1] == h.edges[-1] else np.append(e, h.edges[-1]))
         return r.edges, r.values(), r.scaled_poisson_factors()
     # unweighted: MassHistogram.rebin's sums (reduceat, its last group summed anew) without
     # a histogram (its edge checks were ~40 us of a fit), and factors of 1, as that
     # histogram's scaled_poisson_factors gives for equal sums and squared sums
-    keep = np.arange(0, h.nbins + 1, k)
+    keep = list(range(0, h.nbins + 1, k))  # (np.arange and np.append: ~5 us more)
     if keep[-1] != h.nbins:
-        keep = np.append(keep, h.nbins)
+        keep.append(h.nbins)
+    keep = np.array(keep)
     v = np.add.reduceat(n, keep[:-1])
     v[-1] = n[keep[-2]:keep[-1]].sum()
     return h.edges[keep], v, np.ones_like(v)

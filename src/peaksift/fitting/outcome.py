@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from typing import Any
 
 import numpy as np
 from scipy import special
@@ -42,10 +43,12 @@ def problems_at(mo: Minimum, x: np.ndarray, posdef: bool, lower: np.ndarray, upp
     if not mo.converged:
         out.append("minimiser did not converge" + (" (call limit reached)"
                                                   if mo.call_limit else ""))
+    # as Python floats (the same values, ~10x cheaper arithmetic than numpy scalars')
+    xs, los, his = np.asarray(x, float).tolist(), lower.tolist(), upper.tolist()
     for i, name in enumerate(names):
-        if distance_to_bound(x[i], lower[i], upper[i])[0] <= bound_tolerance(
-                x[i], lower[i], upper[i]):
-            out.append(f"{name} at a bound ({x[i]:.6g})")
+        if distance_to_bound(xs[i], los[i], his[i])[0] <= bound_tolerance(
+                xs[i], los[i], his[i]):
+            out.append(f"{name} at a bound ({xs[i]:.6g})")
     if not posdef:
         out.append("covariance not positive definite (Hessian of the NLL not invertible)")
     return out
@@ -80,88 +83,104 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         k = tie.slope(float(vals[i_s]))
         cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]
         cov[i_t, i_t] = k * k * cov[i_s, i_s]
-    diag = np.diag(cov)
+    diag = cov.diagonal()  # (np.diag's wrapper: ~2 us)
     err = np.sqrt(np.maximum(diag, 0.0))  # np.clip(.., 0, None), without its wrapper
     err[~np.isfinite(diag)] = np.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        corr = cov / np.outer(err, err)
-    corr[~np.isfinite(corr)] = 0.0
-    corr.flat[:: npar + 1] = np.where(err > 0, 1.0, 0.0)  # np.fill_diagonal's assignment
-    notes: list[str] = [d.note] if d.note else []
-    notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
-              f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
-              f"{names[i_s]}'s)" for i_t, i_s, tie in ties]
     # as Python floats (the same values): arithmetic on numpy scalars costs ~10x more
     xs, los, his, errs = xbest.tolist(), lower.tolist(), upper.tolist(), err.tolist()
-    for k, i in enumerate(free_idx.tolist()):
-        dist, bnd = distance_to_bound(xs[k], los[i], his[i])
-        if (math.isfinite(dist) and dist > bound_tolerance(xs[k], los[i], his[i])
-                and math.isfinite(errs[i]) and dist < errs[i]):
-            notes.append(f"{names[i]} lies within one standard error of its bound {bnd:g}: "
-                         "its symmetric error is not meaningful, use the interval")
+    vs, held = vals.tolist(), is_fixed.tolist()
+    asked: list[str] = []  # the intervals' notes (made now, when they are asked for)
     ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
-                       upper, problems, notes)
+                       upper, problems, asked)
     sig0, sl0, iy0 = model.blocks[0]
-    p0 = list(vals[sl0])
+    p0 = vs[sl0]
     i_m = sl0.start + sig0.parameter_names.index("mass")
     wpars = sig0.width_parameters()
     wname = wpars[0] if wpars else ""
     i_w = sl0.start + sig0.parameter_names.index(wname) if wname else None
-    if (not is_fixed[iy0] and (i_w is not None and not is_fixed[i_w])
-            and err[iy0] > 0 and abs(vals[iy0]) / err[iy0] < _UNDERCOVER_Z):
-        notes.append("free mass and width at a modest significance: the 68 % intervals "
-                     "under-cover, symmetric errors and profile-likelihood intervals alike "
-                     "(61-64 % for mass and yield on ~5 sigma toys)")
+
+    def notes_of() -> tuple[str, ...]:
+        notes: list[str] = [d.note] if d.note else []
+        notes += [f"{names[i_t]} = {tie.description or 'a function of ' + names[i_s]}, "
+                  f"recomputed from the fitted {names[i_s]} (tied; its error follows from "
+                  f"{names[i_s]}'s)" for i_t, i_s, tie in ties]
+        for k, i in enumerate(free_idx.tolist()):
+            dist, bnd = distance_to_bound(xs[k], los[i], his[i])
+            if (math.isfinite(dist) and dist > bound_tolerance(xs[k], los[i], his[i])
+                    and math.isfinite(errs[i]) and dist < errs[i]):
+                notes.append(f"{names[i]} lies within one standard error of its bound "
+                             f"{bnd:g}: its symmetric error is not meaningful, use the "
+                             "interval")
+        notes += asked
+        if (not held[iy0] and (i_w is not None and not held[i_w])
+                and errs[iy0] > 0 and abs(vs[iy0]) / errs[iy0] < _UNDERCOVER_Z):
+            notes.append("free mass and width at a modest significance: the 68 % intervals "
+                         "under-cover, symmetric errors and profile-likelihood intervals "
+                         "alike (61-64 % for mass and yield on ~5 sigma toys)")
+        return tuple(notes)
+
     for i, floor in floors.items():
         # at the floor, or within one error of it: the width is not measured, the peak is a
         # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
         # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
-        if not is_fixed[i] and (vals[i] <= floor * (1.0 + 1e-3)
-                                or (math.isfinite(err[i]) and err[i] >= vals[i] - floor)):
+        if not held[i] and (vs[i] <= floor * (1.0 + 1e-3)
+                            or (math.isfinite(errs[i]) and errs[i] >= vs[i] - floor)):
             problems = [*problems, (f"{names[i]} at or within one error of its floor (a "
                                     f"bound) {floor:g} {d.unit}, {FLOOR_FRACTION:g} of the "
                                     "narrowest bin: the peak is narrower than the binning "
                                     "resolves; use finer bins or an unbinned fit")]
-    fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
-    ge, gn, gn2 = gof_binning(d)
+    ge, gn, gn2 = (a.copy() if a.flags.writeable else a for a in gof_binning(d))
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:
         mu = model.expected(ge, vals)
     gsc = d.hist.scaled_poisson_factors() if gof_scale is None else gof_scale
-    # a binned fit's NLL is the saturated form over these very bins: twice it is the
-    # chi-square (no second pass of logarithms); constraint terms would be in it
-    chi2 = (2.0 * float(fbest) if d.binned and not cons and math.isfinite(fbest) else
-            float(baker_cousins_chi2(gn, mu, gsc)))
     ndf = int(gn.size - free_idx.size)
-    pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
-    flags = {
-        "converged": bool(mo is not None and mo.converged),
-        "at_bound": any("bound" in p for p in problems),
-        "near_bound": any("of its bound" in n for n in notes),
-        "posdef_covariance": bool(posdef),
-    }
-    return FitResult(
-        parameters=tuple(names), values=dict(zip(names, map(float, vals))),
-        errors=dict(zip(names, map(float, err))),
-        fixed=tuple(names[i] for i in np.flatnonzero(is_fixed).tolist()),
-        covariance=cov, correlations=corr, intervals=ivals, nll=float(fbest),
-        valid=not problems, problems=tuple(problems), notes=tuple(notes), flags=flags,
-        binned=d.binned, binned_reason=d.reason, weighted=d.weighted,
-        weight_treatment=treatment, window=d.window, n_events=d.total,
-        peak_mass=float(sig0.location(p0)), peak_mass_error=float(err[i_m]),
-        peak_width=float(vals[i_w]) if i_w is not None else math.nan,
-        peak_width_error=float(err[i_w]) if i_w is not None else math.nan,
-        width_parameter=wname, fwhm=fw, fwhm_error=fw_err,
-        gof_chi2=chi2, gof_ndf=ndf, gof_p_value=pval, gof_note=_gof_note(d, cons, is_fixed,
-                                                                          names),
-        edges=np.asarray(ge), observed=np.asarray(gn), observed_weight_sq_sum=np.asarray(gn2),
-        expected=np.asarray(mu), pulls=np.asarray(pulls),
-        bounds={n: (los[i], his[i]) for i, n in enumerate(names)},
-        constraints=cons, model=model, starts_tried=len(tried), starts_nll=tried,
-        n_calls=calls, unit=d.unit, minimizer="none" if mo is None else mo.method, cost=cost,
-    )
+    problems = tuple(problems)
+
+    def later() -> dict:
+        """The fields read less often than made (a toy study reads none): notes, covariance
+        and correlations, FWHM, goodness of fit, the bins of the figure, bounds, flags.
+        From values nothing changes."""
+        notes = notes_of()
+        flags = {
+            "converged": bool(mo is not None and mo.converged),
+            "at_bound": any("bound" in p for p in problems),
+            "near_bound": any("of its bound" in n for n in notes),
+            "posdef_covariance": bool(posdef),
+        }
+        with np.errstate(invalid="ignore", divide="ignore"):
+            corr = cov / np.outer(err, err)
+        corr[~np.isfinite(corr)] = 0.0
+        corr.flat[:: npar + 1] = np.where(err > 0, 1.0, 0.0)  # np.fill_diagonal's assignment
+        fw, fw_err = _fwhm_with_error(sig0, p0, cov[sl0, sl0])
+        # a binned fit's NLL is the saturated form over these very bins: twice it is the
+        # chi-square (no second pass of logarithms); constraint terms would be in it
+        chi2 = (2.0 * float(fbest) if d.binned and not cons and math.isfinite(fbest) else
+                float(baker_cousins_chi2(gn, mu, gsc)))
+        pval = float(special.chdtrc(ndf, chi2)) if ndf > 0 else math.nan
+        with np.errstate(invalid="ignore", divide="ignore"):
+            pulls = np.where(mu > 0, (gn - mu) / np.sqrt(mu / gsc), 0.0)
+        return {"covariance": cov, "correlations": corr, "fwhm": fw, "fwhm_error": fw_err,
+                "gof_chi2": chi2, "gof_p_value": pval,
+                "gof_note": _gof_note(d, cons, held, names), "edges": ge, "observed": gn,
+                "observed_weight_sq_sum": gn2, "expected": mu, "pulls": pulls,
+                "flags": flags, "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
+                "constraints": cons, "notes": notes}
+
+    return FitResult._in_parts({
+        "parameters": tuple(names), "values": dict(zip(names, vs)),
+        "errors": dict(zip(names, errs)),
+        "fixed": tuple(n for n, h in zip(names, held) if h),
+        "intervals": ivals, "nll": float(fbest), "valid": not problems,
+        "problems": problems,
+        "binned": d.binned, "binned_reason": d.reason, "weighted": d.weighted,
+        "weight_treatment": treatment, "window": d.window, "n_events": d.total,
+        "peak_mass": float(sig0.location(p0)), "peak_mass_error": errs[i_m],
+        "peak_width": vs[i_w] if i_w is not None else math.nan,
+        "peak_width_error": errs[i_w] if i_w is not None else math.nan,
+        "width_parameter": wname, "gof_ndf": ndf, "model": model,
+        "starts_tried": len(tried), "starts_nll": tried, "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
+        "cost": cost}, later)
 
 
 def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
@@ -212,7 +231,7 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
     return out
 
 
-def _gof_note(d: FitData, cons: dict, is_fixed: np.ndarray, names: list[str]) -> str:
+def _gof_note(d: FitData, cons: dict, is_fixed: Any, names: list[str]) -> str:
     if d.binned:
         note = ("saturated-model (Baker-Cousins) chi-square of the fitted bins, "
                 "asymptotically chi-square(ndf)")

@@ -46,6 +46,25 @@ def format_value(v: float, e: float) -> str:
     return f"{v:.{digits}f} ± {e:.{digits}f}"
 
 
+def _normalised(d: dict[str, Any]) -> dict[str, Any]:
+    """The fields in ``d`` (some or all of a FitResult's) in the form the result keeps,
+    in place: float arrays and dicts of their own, the peak's numbers as Measurements."""
+    for name in ("covariance", "correlations", "edges", "observed", "observed_weight_sq_sum",
+                 "expected", "pulls"):
+        if name in d:
+            d[name] = np.array(d[name], float)
+    for name in ("values", "errors", "flags", "bounds", "constraints"):
+        if name in d:
+            d[name] = dict(d[name] or {})
+    if d.get("intervals") is not None:
+        d["intervals"] = dict(d["intervals"])
+    # one convention for a number with its error (peaksift._values.Measurement)
+    for name in ("peak_mass", "peak_width", "fwhm"):
+        if name in d:
+            d[name] = Measurement(d[name], d[f"{name}_error"])
+    return d
+
+
 @dataclass(frozen=True, repr=False, eq=False)
 class FitResult(FrozenValue):
     """Outcome of :func:`peaksift.fit` (a frozen value).
@@ -135,18 +154,15 @@ class FitResult(FrozenValue):
     cost: Any = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
-        d = self.__dict__  # (what object.__setattr__ writes, without its call)
-        for name in ("covariance", "correlations", "edges", "observed", "observed_weight_sq_sum",
-                     "expected", "pulls"):
-            d[name] = np.array(d[name], float)
-        for name in ("values", "errors", "flags", "bounds", "constraints"):
-            d[name] = dict(d[name] or {})
-        if self.intervals is not None:
-            d["intervals"] = dict(self.intervals)
-        # one convention for a number with its error (peaksift._values.Measurement)
-        for name in ("peak_mass", "peak_width", "fwhm"):
-            d[name] = Measurement(d[name], d[f"{name}_error"])
+        _normalised(self.__dict__)  # (what object.__setattr__ writes, without its call)
         super().__post_init__()
+
+    @classmethod
+    def _in_parts(cls, now: dict[str, Any], later: Any) -> FitResult:
+        """The FitResult of the fields ``now`` and ``later()``'s (every other field), the
+        latter computed at the first access of any of them (:meth:`FrozenValue._deferred`):
+        the same value as ``FitResult(**now, **later())``."""
+        return cls._deferred(_normalised(now), lambda: _normalised(later()))
 
     # ---------------------------------------------------------------- summary
     @property

@@ -14,7 +14,6 @@ to all of them here, once.
 
 from __future__ import annotations
 
-import copy
 import math
 from collections.abc import Sequence
 from typing import Any
@@ -34,6 +33,14 @@ from .poisson import (
 )
 
 __all__ = ["BinnedCost"]
+
+
+def _shallow_copy(obj: Any) -> Any:
+    """``copy.copy`` of an instance with a plain ``__dict__`` (what it does for one, without
+    its ~8 us of dispatch through ``__reduce_ex__``: a fit makes a cost for every start)."""
+    out = object.__new__(type(obj))
+    out.__dict__.update(obj.__dict__)
+    return out
 
 
 def _step_within(x: float, h: float, lo: float, hi: float) -> tuple[float, bool, bool]:
@@ -70,7 +77,8 @@ class _Cost:
     def _free_bounds(self, lower: Any, upper: Any) -> tuple[np.ndarray, np.ndarray]:
         """Bounds of the free parameters: as given, else the model's (window-aware) ones,
         never wider than a shape's own domain."""
-        pars = [self.model.parameters[i] for i in self.free]
+        pars = ([self.model.parameters[i] for i in self.free.tolist()]
+                if lower is None or upper is None else ())
         own = self._shape_domain()
         lo = np.array([p.lower for p in pars], float) if lower is None else np.asarray(lower,
                                                                                       float)
@@ -259,7 +267,8 @@ class BinnedCost(_Cost):
         """The same cost (data, free parameters, constraints, every derived array shared)
         with the fixed parameters at ``full``, fresh call count and buffers: the starts of
         one fit differ only there."""
-        c = copy.copy(self)
+        self._shape_domain()  # made once here, shared by the copies (each asks once)
+        c = _shallow_copy(self)
         c.full = np.asarray(full, float).copy()
         c._last, c._last_value, c._state, c._problem, c.ncall = None, None, None, None, 0
         c._buffers_at = None
@@ -271,11 +280,22 @@ class BinnedCost(_Cost):
         """:meth:`at_values` on the bins ``mask`` selects of the same data (the sidebands
         of a background fit): the same numbers as a new cost with that mask, without making
         its kernels, layout and compiled arrays again."""
-        c = copy.copy(self)
+        return self._on_data(*self._data, mask, full)
+
+    def with_counts(self, n: np.ndarray, scale: np.ndarray, full: np.ndarray) -> BinnedCost:
+        """:meth:`at_values` on other counts ``n`` (scaled-Poisson factors ``scale``) in the
+        same bins (another histogram of the same binning): the same numbers as a new cost on
+        them, without making its kernels, layout and compiled arrays again."""
+        return self._on_data(n, scale, self.mask, full)
+
+    def _on_data(self, n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None,
+                 full: np.ndarray) -> BinnedCost:
+        c = _shallow_copy(self)
         c.full = np.asarray(full, float).copy()
         c._last, c._last_value, c._state, c._problem, c._empty = None, None, None, None, None
         c.ncall, c._buffers_at = 0, None
-        (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(*self._data, mask)
+        c._data = (n, scale)
+        (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(n, scale, mask)
         c._fused = (None if self._fused is None else
                     self._fused.on_bins(c.mask, c.n, c.s, c.unit_scale))
         c._jac = np.zeros((c.free.size, c.n.size)) if c._fused is None else None

@@ -24,7 +24,6 @@ checks both against scipy's CDFs written in the test.
 
 from __future__ import annotations
 
-import copy
 import math
 from typing import Any
 
@@ -249,7 +248,8 @@ class FusedBinned:
 
     def fresh(self) -> FusedBinned:
         """The same evaluator with buffers of its own (for another cost on the same data)."""
-        out = copy.copy(self)
+        out = object.__new__(type(self))  # copy.copy's result, without its ~7 us of dispatch
+        out.__dict__.update(self.__dict__)
         out._buffers(self.g.size, self.cdf.shape[1])
         return out
 
@@ -258,8 +258,10 @@ class FusedBinned:
         """The same evaluator on the bins ``mask`` selects (``n``, ``s``: their effective
         counts and factors), with buffers of its own; the layout's other arrays and the
         compiled problem's static ones (which do not depend on the bins) are shared."""
-        out = copy.copy(self)
-        lay = out.layout = copy.copy(self.layout)
+        out = object.__new__(type(self))  # copy.copy's, without its dispatch (~7 us each)
+        out.__dict__.update(self.__dict__)
+        lay = out.layout = object.__new__(type(self.layout))
+        lay.__dict__.update(self.layout.__dict__)
         lay.bins = out.bins = _used_bins(self.cdf.shape[1] - 1, mask)
         out.n, out.s, out.unit = n, s, bool(unit)
         out._buffers(self.g.size, self.cdf.shape[1])

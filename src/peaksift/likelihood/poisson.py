@@ -106,10 +106,15 @@ def _scaled(n: np.ndarray, scale: Any) -> tuple[np.ndarray, Any]:
 def saturated_term(n: Any, scale: Any = None) -> np.ndarray:
     r""":math:`\sum_i \tilde n_i \ln \tilde n_i - \tilde n_i` over the last axis (0 ln 0 = 0)."""
     nt, _ = _scaled(np.asarray(n, float), scale)
-    # the logarithm of 1 where nt <= 0: its product with nt is 0 (-0 for a negative nt,
-    # the same difference below), as the 0 the rule asks for, without a second select
-    t = nt * np.log(np.where(nt > 0, nt, 1.0))
-    return np.sum(t - nt, axis=-1)
+    # the logarithm of 1, 0, where nt <= 0: its product with nt is 0 (-0 for a negative nt,
+    # the same difference below), as the 0 the rule asks for, without a second select;
+    # in one buffer through the ufuncs themselves (np.where's and np.sum's wrappers were
+    # ~8 of a fit's ~20 us here), the same operations on the same numbers
+    t = np.zeros(nt.shape)
+    np.log(nt, out=t, where=nt > 0)
+    np.multiply(nt, t, out=t)
+    np.subtract(t, nt, out=t)
+    return np.add.reduce(t, axis=-1)
 
 
 def binned_nll(n: Any, mu: Any, scale: Any = None, *, saturated: bool = True,

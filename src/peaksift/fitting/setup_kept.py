@@ -1,0 +1,132 @@
+"""The free fit's setup kept for the next fit of the same data or the same bins.
+
+The common call of :func:`peaksift.fit` -- a MassHistogram, the shapes by name, nothing
+held, started, bounded, constrained or tied -- has a :class:`~.setup.Setup` that depends
+only on the histogram's content (every bin's sums, the edges, the flows, the unit), the
+shapes' names and the window.  :func:`kept_setup` keeps the last few per binning, found
+again by that content: a refit of the same histogram (a search's stages) skips the setup,
+with the first start's cost made once.  A histogram new to it in the bins of a kept setup
+(a toy, a Poisson-fluctuated copy) has its data checked and its yields' bounds and starts
+made anew, the rest -- model, the shapes' bounds and starts, width floors, free
+parameters, the first cost's kernels and compiled arrays -- taken from the kept setup
+(:func:`_in_same_bins`; the same values :func:`~.setup.setup_of` makes).  A histogram
+changed in place has other contents: it is never given a stale setup.  Kept setups hold
+private read-only arrays and no reference to the caller's histogram; each fit gets its own
+copies of what it may change (:meth:`~.setup.Setup.for_fit`).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from .._kept import Kept
+from .checks import as_retries
+from .data import _log, prepare, start_bins
+from .setup import Setup, entries, read_only, setup_of, yield_bounds, yield_starts
+
+__all__ = ["kept_setup"]
+
+#: setups by (signal, background, window, binned, unit, flows, number of bins): each a
+#: list of the last few, found by the bins' contents (a toy study's each new)
+_SETUPS = Kept(8)
+_PER_KEY = 3
+
+
+def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any,
+               bins: Any, retries: Any) -> Setup | None:
+    """The setup of the common call (a MassHistogram, shapes by name; the caller checks
+    that nothing is held, started, bounded, constrained or tied), kept by the histogram's
+    content; None for any other call (its setup is made by :func:`setup_of`)."""
+    if (type(data) is not _mass_histogram() or type(signal) is not str
+            or type(background) is not str or binned is False):
+        return None
+    try:
+        win = None if window is None else (float(window[0]), float(window[1]))
+    except (TypeError, ValueError, IndexError, KeyError):
+        return None  # setup_of says what is wrong with it
+    if win is not None and len(window) != 2:
+        return None
+    key = (signal, background, win, binned, data.unit, data.underflow, data.overflow,
+           data.underflow_variance, data.overflow_variance, data.edges.size)
+    content = (data.edges.tobytes(), data.values().tobytes(), data.variances().tobytes())
+    kept = _SETUPS.get(key)
+    same_bins = None  # a kept setup of other contents in the same bins
+    if kept is not None:
+        for have, su in kept:
+            if have == content:
+                as_retries(retries)
+                if su.d.note:  # as prepare says it
+                    _log.info(su.d.note)
+                return su
+            if same_bins is None and have[0] == content[0]:
+                same_bins = su
+    su = None if same_bins is None else _in_same_bins(data, window, binned, bins, retries,
+                                                      same_bins)
+    if su is None:
+        su = setup_of(data, signal, background, window, None, binned, bins, None, None,
+                      None, None, None, retries)
+    # the kept data: private read-only arrays (the caller's histogram may change), no
+    # reference to the caller's histogram
+    d = object.__new__(type(su.d))  # copy.copy's, without its ~5 us of dispatch
+    d.__dict__.update(su.d.__dict__)
+    d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
+    d.n2 = read_only(d.n2)
+    d.hist = None
+    su.d, su.kept = d, True
+    for a in (su.base, su.is_fixed, su.lower, su.upper):
+        a.flags.writeable = False  # handed out as copies (Setup.for_fit)
+    kept = [] if kept is None else [e for e in kept if e[0] != content]
+    _SETUPS.put(key, [(content, su), *kept][:_PER_KEY])
+    return su
+
+
+def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
+                  other: Setup) -> Setup | None:
+    """The setup of ``data`` from ``other``, kept for other contents in the same bins with
+    the same shapes and window: the data checked (:func:`~.data.prepare`), the yields'
+    bounds and starts made for its total as :func:`~.setup.setup_of` makes them, the rest
+    as ``other`` has it (the shapes' bounds and starts, the width floors, which parameters
+    float: none of them depends on the contents; the shapes' starts were found to put
+    probability into the window).  None when ``other`` has no first cost yet or the data
+    would be refused (:func:`~.setup.setup_of` then makes the setup, or says why not)."""
+    if not other.first_cost:
+        return None
+    d = prepare(data, None, window, binned, bins)
+    if d.total <= 0 or not d.binned:
+        return None
+    as_retries(retries)
+    model = other.model
+    lower, upper = other.lower.copy(), other.upper.copy()
+    yield_bounds(model, d.total, lower, upper)
+    if not (lower < upper).all():
+        return None
+    base = other.base.copy()
+    for _, _, iy in model.blocks:
+        base[iy] = np.nan  # as a yield's start before setup_of's yield_starts
+    yield_starts(model, d.total, base)
+    counts, scale = read_only(d.n), read_only(d.hist.scaled_poisson_factors())
+    edges = other.binned_arrays[0]  # the same array: its per-edges work is kept by it
+    su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
+               dict(other.floors), {}, [], [], {}, other.free_idx, other.inner_free,
+               entries(d), (edges, counts, scale),
+               tuple(read_only(a) for a in start_bins(d)))
+    su.first_cost.append(other.first_cost[0].with_counts(counts, scale, base))
+    return su
+
+
+def _mass_histogram() -> type:
+    """The MassHistogram class, imported at the first fit (importing the fitting package
+    loads no histogram code)."""
+    global _MASS_HISTOGRAM
+    if _MASS_HISTOGRAM is None:
+        from ..histogram import MassHistogram
+
+        _MASS_HISTOGRAM = MassHistogram
+    return _MASS_HISTOGRAM
+
+
+_MASS_HISTOGRAM: type | None = None
+
+
