@@ -38,7 +38,8 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
                bins: Any, retries: Any) -> Setup | None:
     """The setup of the common call (a MassHistogram, shapes by name; the caller checks
     that nothing is held, started, bounded, constrained or tied), kept by the histogram's
-    content; None for any other call (its setup is made by :func:`setup_of`)."""
+    content, as this fit's own (:meth:`~.setup.Setup.for_fit`); None for any other call
+    (its setup is made by :func:`setup_of`)."""
     if (type(data) is not _mass_histogram() or type(signal) is not str
             or type(background) is not str or binned is False):
         return None
@@ -59,7 +60,7 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
                 as_retries(retries)
                 if su.d.note:  # as prepare says it
                     _log.info(su.d.note)
-                return su
+                return su.for_fit()
             if same_bins is None and have[0] == content[0]:
                 same_bins = su
     su = None if same_bins is None else _in_same_bins(data, window, binned, bins, retries,
@@ -74,12 +75,12 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
     d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
     d.n2 = read_only(d.n2)
     d.hist = None
-    su.d, su.kept = d, True
+    su.d = d
     for a in (su.base, su.is_fixed, su.lower, su.upper):
         a.flags.writeable = False  # handed out as copies (Setup.for_fit)
     kept = [] if kept is None else [e for e in kept if e[0] != content]
     _SETUPS.put(key, [(content, su), *kept][:_PER_KEY])
-    return su
+    return su.for_fit(first_unused=bool(su.first_cost))
 
 
 def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
