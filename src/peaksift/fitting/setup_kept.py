@@ -29,9 +29,10 @@ from .setup import Setup, entries, read_only, setup_of, yield_bounds, yield_star
 __all__ = ["kept_setup"]
 
 #: setups by (signal, background, window, binned, unit, flows, number of bins): each a
-#: list of the last few, found by the bins' contents (a toy study's each new)
-_SETUPS = Kept(8)
-_PER_KEY = 3
+#: list of the last two, found by the bins' contents (a toy study's each new); an entry
+#: holds ~10 arrays of the bins (~0.2 MB for 1,350 bins), so few are kept
+_SETUPS = Kept(4)
+_PER_KEY = 2
 
 
 def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any,
