@@ -74,13 +74,12 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
     d = object.__new__(type(su.d))  # copy.copy's, without its ~5 us of dispatch
     d.__dict__.update(su.d.__dict__)
     d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
-    d.n2 = read_only(d.n2)
+    d.n2 = d.n if not d.weighted else read_only(d.n2)  # unweighted: the same numbers
     d.hist = None
     su.d = d
     for a in (su.base, su.is_fixed, su.lower, su.upper):
         a.flags.writeable = False  # handed out as copies (Setup.for_fit)
-    kept = [] if kept is None else [e for e in kept if e[0] != content]
-    _SETUPS.put(key, [(content, su), *kept][:_PER_KEY])
+    _SETUPS.put(key, [(content, su), *(kept or ())][:_PER_KEY])  # (none had this content)
     return su.for_fit(first_unused=bool(su.first_cost))
 
 
@@ -108,7 +107,9 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
     for _, _, iy in model.blocks:
         base[iy] = np.nan  # as a yield's start before setup_of's yield_starts
     yield_starts(model, d.total, base)
-    counts, scale = read_only(d.n), read_only(d.hist.scaled_poisson_factors())
+    counts = read_only(d.n)
+    scale = d.hist.scaled_poisson_factors()  # a new array of a MassHistogram's: no copy
+    scale.flags.writeable = False
     edges = other.binned_arrays[0]  # the same array: its per-edges work is kept by it
     su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
                dict(other.floors), {}, [], [], {}, other.free_idx, other.inner_free,
