@@ -137,7 +137,7 @@ def test_compiled_loop_stops_at_a_known_minimum():
     out = compiled_fisher_scoring(cost, np.r_[best.x[0], 3 * best.x[1], best.x[2:]], lower,
                                   upper, 60, 1e-7, near)
     assert out is not None
-    status, x, f, _ = out
+    status, x, f, _, _ = out
     assert status == JOINED
     d = (x - best.x) / best.errors
     assert f <= best.fval + 0.05 and d @ d < 0.02

@@ -214,6 +214,14 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
             try:
                 m.minos(k)
                 me = m.merrors[k]
+                if not me.is_valid:
+                    # MINOS's own path decides on these flat profiles: from a minimum 4e-4 of
+                    # an error away, a 5 sigma toy's yield lost its lower end; strategy 2
+                    # (its Hessian at every step) found it again
+                    m.strategy = 2
+                    m.minos(k)
+                    m.strategy = 1
+                    me = m.merrors[k]
                 out[k] = (float(me.lower), float(me.upper))
                 if not me.is_valid:
                     notes.append(f"profile-likelihood interval of {k} is not valid "

@@ -25,7 +25,7 @@ What is here, and which piece to use when
   fallback), the scaled positive-definiteness test, and :func:`minimize_stacked`, the driver
   of every stacked fit (many toys or mass hypotheses at once); :mod:`.migrad` the watched
   MIGRAD fallback, :mod:`.minimum` what a minimisation found, :mod:`.refine` a minimum's
-  polish, Hessian and covariance.
+  polish, Hessian, final Newton stage (compiled in :mod:`.driver_newton`) and covariance.
 * :mod:`.starts`      -- starting values: sideband background fits and candidate peak masses
   from a coarse likelihood scan.
 

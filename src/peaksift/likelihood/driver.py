@@ -142,11 +142,12 @@ def _to_wall(mu, jac, step):  # pragma: no cover - compiled
 
 @njit(cache=True, nogil=True)
 def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, xb, fb, hb,
-           join_nll, join_distance, x_out, info_out, x_last):  # pragma: no cover - compiled
+           join_nll, join_distance, x_out, info_out, g_out, x_last):  # pragma: no cover
     """The loop of :func:`.minimize.fisher_scoring` (parameters held at bounds, the step
     near the wall ``mu >= 0``); returns ``(status, f, calls)`` with the point in ``x_out``,
-    its information in ``info_out`` and the last point evaluated in ``x_last`` (the
-    problem's ``mu`` buffer holds the expectation there)."""
+    (converged) its information in ``info_out`` and its gradient in ``g_out``, and the last
+    point evaluated in ``x_last`` (the problem's ``mu`` buffer holds the expectation
+    there)."""
     g_buf = prob[19]
     i_buf = prob[20]
     n = prob[12]
@@ -233,6 +234,7 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
                 if -0.5 * edm < edm_goal and promise < edm_goal:
                     x_out[:] = x
                     info_out[:, :] = info
+                    g_out[:] = g
                     return CONVERGED, f, calls
             if use_near:
                 step[:] = near
@@ -425,7 +427,7 @@ def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper:
                             max_iter: int, edm_goal: float, near: Any = None):
     """:func:`.minimize.fisher_scoring` on ``cost`` in one compiled call.
 
-    Returns ``(status, x, f, info or None)`` -- status one of ``NOT_CONVERGED``,
+    Returns ``(status, x, f, info or None, gradient or None)`` -- status one of ``NOT_CONVERGED``,
     ``CONVERGED`` (EDM below the goal; the caller tests the information for positive
     definiteness), ``JOINED`` (``near``, a :class:`.minimize.NearMinimum`, was reached) --
     or None when the Python loop must answer instead."""
@@ -436,6 +438,7 @@ def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper:
     x_out = np.empty(npar)
     info_out = np.empty((npar, npar))
     x_last = np.empty(npar)
+    g_out = np.empty(npar)
     if near is None:
         join, xb, fb, hb, jn, jd = False, x_out, 0.0, info_out, 0.0, 0.0
     else:
@@ -447,10 +450,12 @@ def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper:
         status, f, calls = _drive(prob, cost.full, cost.free, float(cost.constant),
                                   np.asarray(x0, float), np.asarray(lower, float),
                                   np.asarray(upper, float), int(max_iter), float(edm_goal),
-                                  join, xb, fb, hb, jn, jd, x_out, info_out, x_last)
+                                  join, xb, fb, hb, jn, jd, x_out, info_out, g_out, x_last)
     except (ArithmeticError, ValueError):
         return None
     if status == DECLINED:
         return None
     cost.note_compiled_calls(calls, x_last)
-    return status, x_out, float(f), info_out if status == CONVERGED else None
+    if status != CONVERGED:
+        return status, x_out, float(f), None, None
+    return status, x_out, float(f), info_out, g_out

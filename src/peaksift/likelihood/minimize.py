@@ -238,7 +238,7 @@ def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray
     out = drv.compiled_fisher_scoring(cost, start, lower, upper, 60, edm_goal, stop)
     if out is None:
         return None
-    status, x, f, info = out
+    status, x, f, info, g = out
     if status == drv.JOINED:
         return Minimum(x, f, False, False, np.full(x.size, np.nan), "fisher-scoring",
                        joined=True)
@@ -248,7 +248,7 @@ def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray
     if not posdef:
         return x
     return Minimum(x, f, True, False, np.sqrt(np.maximum(np.diag(inv), 0.0)),
-                   "fisher-scoring")
+                   "fisher-scoring", grad=g)
 
 
 def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:

@@ -33,6 +33,9 @@ class Minimum:
     minuit: Any = None  # the Minuit object when MIGRAD ran
     #: stopped early because ``stop`` said the path had joined a minimum found before
     joined: bool = False
+    #: the gradient at ``x`` when the minimiser has it (the compiled Fisher scoring): the
+    #: final Newton stage of :func:`.refine.refine` then needs no evaluation at ``x``
+    grad: np.ndarray | None = None
 
 
 @dataclass(frozen=True)

@@ -1,6 +1,7 @@
 """A minimum made ready for its errors: :func:`refine` (the observed Hessian, its covariance,
-a MIGRAD minimum polished and refined by a Newton step, MIGRAD's convergence verdict checked
-against that Hessian).  Used by the free fit for every start that improves on the best
+a MIGRAD minimum polished, the final exact-Hessian Newton stage that makes the reported point
+independent of the path to it, MIGRAD's convergence verdict checked against that
+Hessian).  Used by the free fit for every start that improves on the best
 minimum, and by the blinded background fit."""
 
 from __future__ import annotations
@@ -11,31 +12,39 @@ from typing import Any
 
 import numpy as np
 
+from .._jit import compiled_module
 from .migrad import migrad
-from .minimize import covariance, fisher_scoring, held_at_bounds
+from .minimize import _hold, _solve, covariance, fisher_scoring, held_at_bounds
 from .minimum import Minimum, at_bounds
 
-__all__ = ["EDM_MIGRAD", "POLISH_GAIN", "POLISH_STEPS", "POLISH_TOL", "refine"]
+__all__ = ["EDM_MIGRAD", "NEWTON_RISE", "NEWTON_STEP", "NEWTON_STEPS", "POLISH_GAIN", "POLISH_STEPS", "POLISH_TOL",
+           "refine"]
 
+
+#: the compiled Newton stage (imported on first use: importing the likelihood loads no numba)
+NEWTON_MODULE = "peaksift.likelihood.driver_newton"
 
 #: MIGRAD's EDM goal at strategy 0 and errordef 0.5 (0.002 x tolerance 0.1 x errordef)
 EDM_MIGRAD = 1e-4
 
 
 def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
-    """Observed Hessian at the minimum found, a MIGRAD minimum polished (:func:`_polish`)
-    and refined by one Newton step, and the covariance ``H^-1`` (errordef 0.5).  A MIGRAD
-    minimum that MIGRAD left
-    unconverged (not at its call limit) is marked converged (``mo.converged``) when the
-    Hessian is positive definite and the EDM it gives, held at the bounds, is below
+    """Observed Hessian at the minimum found, a MIGRAD minimum polished (:func:`_polish`),
+    the final Newton stage (:func:`_newton`: exact-Hessian steps until the next one is below
+    ``NEWTON_STEP`` of every error, so that the point no longer depends on the path that
+    reached it) and the covariance ``H^-1`` (errordef 0.5).  A MIGRAD minimum that MIGRAD
+    left unconverged (not at its call limit) is marked converged (``mo.converged``) when
+    the Hessian is positive definite and the EDM it gives, held at the bounds, is below
     ``EDM_MIGRAD``.
 
     Returns ``(x, nll, covariance, positive_definite)``.
     """
     x0 = np.asarray(mo.x, float)
     f0 = mo.fval
+    g0 = mo.grad
     if mo.method == "iminuit-migrad" and math.isfinite(f0):
         x0, f0 = _polish(cost, x0, f0, lower, upper, np.asarray(mo.errors, float))
+        g0 = None
     errs = np.asarray(mo.errors, float)
     h = np.where(np.isfinite(errs) & (errs > 0), 1e-3 * errs, 1e-6 * np.maximum(np.abs(x0), 1.0))
     try:
@@ -44,15 +53,17 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
     except (ArithmeticError, np.linalg.LinAlgError, ValueError):
         return x0, f0, np.full((x0.size, x0.size), np.nan), False
     cov, posdef = covariance(hess)
-    if posdef and mo.method == "iminuit-migrad":  # one Newton step refines MIGRAD's minimum
+    if posdef and math.isfinite(f0):
         with np.errstate(all="ignore"), warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            x1 = np.clip(x0 - cov @ cost.grad(*x0), lower, upper)
-            f1 = cost(*x1)
-            if np.isfinite(f1) and f1 < f0:
-                x0, f0 = x1, f1
-            if not mo.converged and not mo.call_limit:
-                g = cost.grad(*x0)
+            try:
+                x1, f1, g, _ = _newton(cost, x0, f0, g0, hess, cov, lower, upper)
+            except (ArithmeticError, np.linalg.LinAlgError, ValueError):
+                x1, f1, g = x0, f0, None
+            x0, f0 = x1, f1
+            if mo.method == "iminuit-migrad" and not mo.converged and not mo.call_limit:
+                if g is None:
+                    g = cost.grad(*x0)
                 g = np.where(held_at_bounds(x0, g, lower, upper), 0.0, g)
                 edm = 0.5 * float(g @ cov @ g)
                 # MIGRAD's verdict depends on its path to the last ~1e-4 (the same start
@@ -61,6 +72,60 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
                 # goal (strategy 0, errordef 0.5) is a minimum
                 mo.converged = bool(math.isfinite(edm) and edm < EDM_MIGRAD)
     return x0, f0, cov, posdef
+
+
+#: the final Newton stage ends when its next step is below this fraction of every error
+#: (``docs/decisions/tight-minimum.md``), or after ``NEWTON_STEPS`` evaluations
+NEWTON_STEP = 1e-5
+NEWTON_STEPS = 6
+#: a Newton step may raise the NLL by this much (absolute) and still be taken: near the
+#: minimum its true change is at the rounding of an NLL whose saturated constant is large
+#: (~1e-8 with 5e5 events), while the step itself, from the gradient (a sum of small
+#: terms), is exact to ~1e-7 of an error
+NEWTON_RISE = 1e-7
+
+
+def _newton(cost: Any, x: np.ndarray, f: float, g: np.ndarray | None, hess: np.ndarray,
+            cov: np.ndarray, lower: np.ndarray, upper: np.ndarray):
+    """The final stage of every minimisation the free fit reports: Newton steps with the
+    observed Hessian ``hess`` (inverse ``cov``) from ``(x, f)`` (``g`` its gradient, or
+    None), held at the bounds as :func:`.minimize.fisher_scoring`, until the next step is
+    below ``NEWTON_STEP`` of every error ``sqrt(cov_ii)``.  Returns ``(x, f, gradient,
+    converged)``.
+
+    Fisher scoring stops at EDM < 1e-7: up to ~4.5e-4 of an error from the minimum, on a
+    side that depends on its path (the start).  One exact Newton step from there lands
+    ~1e-7 of an error from it (the Hessian's own error is ~1e-6 relative), and the gradient
+    of that evaluation shows it: a fit costs one evaluation more.  From a MIGRAD minimum
+    (~1e-2 of an error off, its Hessian made with MIGRAD's rougher errors) it may take a few.
+    A step is taken while it raises the NLL by no more than ``NEWTON_RISE``; otherwise the
+    stage ends where it is, not converged."""
+    if g is None:
+        f1, g, _ = cost.value_grad_info(x, info=False)
+        if not (math.isfinite(f1) and np.isfinite(g).all()):
+            return x, f, None, False
+    problem = getattr(cost, "compiled_problem", None)
+    if problem is not None and problem() is not None:  # the same loop in one compiled call
+        out = compiled_module(NEWTON_MODULE).compiled_newton(
+            cost, x, f, g, hess, cov, lower, upper, NEWTON_STEP, NEWTON_RISE, NEWTON_STEPS)
+        if out is not None:
+            return out
+    errs = np.sqrt(np.diagonal(cov))
+    for k in range(NEWTON_STEPS + 1):
+        held = held_at_bounds(x, g, lower, upper)
+        step = _solve(_hold(hess, held), np.where(held, 0.0, g)) if held.any() else -(cov @ g)
+        if step is None:
+            return x, f, g, False
+        if np.all(np.abs(step) <= NEWTON_STEP * errs):
+            return x, f, g, True
+        if k == NEWTON_STEPS:
+            break
+        x1 = np.minimum(np.maximum(x + step, lower), upper)
+        f1, g1, _ = cost.value_grad_info(x1, info=False)
+        if not (math.isfinite(f1) and f1 <= f + NEWTON_RISE and np.isfinite(g1).all()):
+            break
+        x, f, g = x1, float(f1), g1
+    return x, f, g, False
 
 
 #: Fisher-scoring iterations that polish a MIGRAD minimum, and the least NLL gain kept

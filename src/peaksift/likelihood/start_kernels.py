@@ -76,7 +76,8 @@ def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - co
     starts and receives the yields, ``nll (M,)`` receives the NLL (saturated term left
     out).  Damped Newton on the Fisher information (the step of
     :func:`~peaksift.likelihood.minimize.damped_step`, solved in closed form for 2 x 2),
-    per mass until its NLL gains < 1e-6 in two steps running or ``iterations`` are done.
+    per mass until a step at damping <= 1e-3 gains < 1e-6, its NLL gains < 1e-6 in two
+    steps running, or ``iterations`` are done.
     Bins outside a mass's band (see :data:`BAND`) enter through running sums."""
     nb = n.size
     # running sums of the background-only terms: s g, n s, n s ln(s g)
@@ -96,9 +97,46 @@ def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - co
 
 
 @njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
+def _nll2_grad(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c):  # pragma: no cover
+    """:func:`_nll2` at ``(a0, a1)`` with, from the same pass over the band, the gradient
+    ``(g0, g1)`` and the Fisher information ``(h00, h01, h11)`` there."""
+    mu1 = max(1e-300, a1)
+    # background-only bins: d/da1 = sum s g - n s / a1, information sum s g / a1
+    g0 = 0.0
+    g1 = out_g - out_n / mu1
+    h00 = 0.0
+    h01 = 0.0
+    h11 = out_g / mu1
+    if not a1 > 0.0 and (out_g > 0.0 or out_n > 0.0):
+        return math.inf, g0, g1, h00, h01, h11
+    val = a1 * out_g - out_c
+    if out_n > 0.0:
+        val -= out_n * math.log(a1)
+    bad = 0
+    band = 0.0
+    for j in range(j0, j1):
+        fm = f[m, j]
+        gj = g[j]
+        mu = a0 * fm + a1 * gj
+        bad += 0 if mu > 0.0 else 1
+        sj = s[j]
+        smu = sj * mu
+        band += smu - n[j] * sj * vlog(smu)
+        w = sj / max(mu, 1e-300)
+        r = sj - n[j] * w
+        g0 += fm * r
+        g1 += gj * r
+        h00 += w * fm * fm
+        h01 += w * fm * gj
+        h11 += w * gj * gj
+    return (math.inf if bad else val + band), g0, g1, h00, h01, h11
+
+
+@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
 def _profile_row(n, s, f, g, m, cg, cn, cc, a0, a1, iterations):  # pragma: no cover
     """Row ``m`` of :func:`profile_two_yields` from the yields ``(a0, a1)``: the profiled
-    yields and the NLL."""
+    yields and the NLL.  One pass over the row's band a step: the trial's NLL, gradient and
+    information together (:func:`_nll2_grad`)."""
     nb = n.size
     top = 0.0
     for j in range(nb):
@@ -112,27 +150,11 @@ def _profile_row(n, s, f, g, m, cg, cn, cc, a0, a1, iterations):  # pragma: no c
     out_g = cg[nb] - cg[j1] + cg[j0]
     out_n = cn[nb] - cn[j1] + cn[j0]
     out_c = cc[nb] - cc[j1] + cc[j0]
-    cur = _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c)
+    cur, g0, g1, h00, h01, h11 = _nll2_grad(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n,
+                                            out_c)
     lam = 1e-3
     quiet = 0
     for _ in range(iterations):
-        # background-only bins: d/da1 = sum s g - n s / a1, information sum s g / a1
-        mu1 = max(1e-300, a1)
-        g0 = 0.0
-        g1 = out_g - out_n / mu1
-        h00 = 0.0
-        h01 = 0.0
-        h11 = out_g / mu1
-        for j in range(j0, j1):
-            mu = a0 * f[m, j] + a1 * g[j]
-            mu = max(mu, 1e-300)
-            r = s[j] * (1.0 - n[j] / mu)
-            w = s[j] / mu
-            g0 += f[m, j] * r
-            g1 += g[j] * r
-            h00 += w * f[m, j] * f[m, j]
-            h01 += w * f[m, j] * g[j]
-            h11 += w * g[j] * g[j]
         floor = 1e-6 * 0.5 * (abs(h00) + abs(h11)) + 1e-300
         d00 = h00 + lam * (h00 + floor) + 1e-14 * floor
         d11 = h11 + lam * (h11 + floor) + 1e-14 * floor
@@ -142,13 +164,17 @@ def _profile_row(n, s, f, g, m, cg, cn, cc, a0, a1, iterations):  # pragma: no c
         if not (math.isfinite(s0) and math.isfinite(s1)):
             s0 = 0.0
             s1 = 0.0
-        t = _nll2(n, s, f, g, m, j0, j1, a0 + s0, a1 + s1, out_g, out_n, out_c)
+        t, t0, t1, t00, t01, t11 = _nll2_grad(n, s, f, g, m, j0, j1, a0 + s0, a1 + s1,
+                                              out_g, out_n, out_c)
         gain = 0.0
         if t <= cur:
             gain = cur - t
             a0 += s0
             a1 += s1
             cur = t
+            g0, g1, h00, h01, h11 = t0, t1, t00, t01, t11
+            if gain < 1e-6 and lam <= 1e-3:
+                break  # a nearly undamped Newton step gained < 1e-6: at the minimum
             lam = max(lam * 0.1, 1e-9)
         else:
             lam *= 10.0
@@ -337,7 +363,8 @@ def background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_ite
     info = np.empty((npar, npar))
     x_last = np.empty(npar)
     status, _, _ = _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal,
-                          False, x_out, 0.0, info, 0.0, 0.0, x_out, info, x_last)
+                          False, x_out, 0.0, info, 0.0, 0.0, x_out, info, np.empty(npar),
+                          x_last)
     if status != CONVERGED:
         return False
     return covariance_small(info, posdef_tol, np.empty((npar, npar)))
