@@ -23,8 +23,10 @@ width 0.5 GeV at 150 GeV with a 1-10 % mass scale, ``docs/decisions/mass-scale-s
 Method: on each such hypothesis the NLL is evaluated on a grid of :math:`k_m` over its
 whole range (steps of half the peak's width in mass), the other parameters held at the
 centre start's fit and the other factors' shapes at their centres (with a free signal, its
-yield at the one-step optimum of each grid point); the ``_STARTS`` lowest wells away from the centre fit's own are refitted with
-every parameter free, and the lowest fit of each hypothesis is kept.  Where
+yield at the one-step optimum of each grid point; the logarithms only over the bins where
+the peak is not negligible); the ``_STARTS`` lowest wells away from the centre fit's own
+are refitted with every parameter free, and the lowest fit of each hypothesis is kept.
+The scanned hypotheses' fits also use the factors' exact curvature.  Where
 :math:`3\,\delta m < w` a second well lies more than 18 units of NLL up the constraint
 (a shift of two widths is six standard deviations), so the scan is skipped: those
 hypotheses keep the single fit with the Fisher form of the factors' curvature, to the bit
@@ -38,7 +40,7 @@ from typing import Any
 
 import numpy as np
 
-from ..likelihood import SignalNuisances, binned_nll
+from ..likelihood import SignalNuisances
 from .shape_profile import _fractions, profile_with_nuisances
 from .toys import ScanModel, bkg_fractions
 
@@ -82,6 +84,22 @@ def needs_scan(signal: Any, base: Sequence[Any], nuisances: SignalNuisances,
     return _REACH * nuisances.mass_scale * np.abs(mass) > peak_width(signal, base, nb)
 
 
+def _band(f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Bin indices ``(U, G, L)`` around each row's highest fraction that hold every
+    fraction above 1e-12 of it (one width ``L`` for all), and which of them are bins."""
+    nbin = f.shape[-1]
+    top = f.max(axis=-1, keepdims=True)
+    centre = f.argmax(axis=-1)
+    above = f > 1e-12 * top
+    i = np.arange(nbin)
+    left = np.where(above, centre[..., None] - i, 0).max(initial=0)
+    right = np.where(above, i - centre[..., None], 0).max(initial=0)
+    off = np.arange(-int(left), int(right) + 1)
+    raw = centre[..., None] + off
+    inside = (raw >= 0) & (raw < nbin)
+    return np.clip(raw, 0, nbin - 1), inside
+
+
 def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any],
                 nuisances: SignalNuisances, fit: dict[str, np.ndarray], rows: np.ndarray,
                 centers: np.ndarray | None, fixed_signal: bool
@@ -112,28 +130,42 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     with np.errstate(all="ignore"):
         f_all = _fractions(model, signal, base, names, nuisances, k,
                            np.repeat(first, g)).reshape(first.size, g, -1)
-    per = max(1, _CHUNK // (g * model.used.size))
+        # no signal shape there (e.g. a peak so far outside the window that its integral
+        # over it underflows): not a start
+        shapeless = ~np.all(np.isfinite(f_all), axis=-1)                  # (U, G)
+        f_all = np.where(np.isfinite(f_all), f_all, 0.0)
+    # the NLL minus the background's, sum_i [s f_i - n_i ln(1 + s f_i / b_i)], needs the
+    # log only where f_i is not negligible: a band of bins around each grid point's peak
+    # (those above 1e-12 of its highest; the whole spectrum for heavy tails), the sum of
+    # f_i over every bin
+    f_sum = f_all.sum(axis=-1)
+    band, inside = _band(f_all)
+    f_band = np.where(inside, np.take_along_axis(f_all, band, axis=-1), 0.0)
+    per = max(1, _CHUNK // (g * band.shape[-1]))
     for c0 in range(0, rows.size, per):
         r = rows[c0:c0 + per]
         loc = np.arange(c0, c0 + r.size)
         with np.errstate(all="ignore"):
-            f = f_all[inv[loc]]
-            nu_b = (fit["b"][r, None] * bkg_fractions(model, fit["theta"][r]))[:, None, :]
-            nr = n[r][:, None, :]
+            h = inv[loc]
+            idx = band[h]                                              # (R, G, L)
+            f = f_band[h]
+            nu_b = fit["b"][r, None] * bkg_fractions(model, fit["theta"][r])
+            nu_b = np.maximum(np.take_along_axis(nu_b[:, None, :], idx, axis=-1), 1e-300)
+            nr = np.take_along_axis(n[r][:, None, :], idx, axis=-1)
             kg = np.repeat(fit["factors"][r], g, axis=0)
             kg[:, jm] = np.tile(grid, r.size)
             cen = None if centers is None else np.repeat(centers[r], g, axis=0)
             cons = nuisances.constraint_terms(names, kg, cen)[0].reshape(r.size, g)
             if fixed_signal:
                 s = np.broadcast_to(fit["s"][r, None], (r.size, g))
-                val = binned_nll(nr, s[..., None] * f + nu_b, saturated=False) + cons
+                val = (s * f_sum[h] - np.sum(nr * np.log1p(s[..., None] * f / nu_b), axis=-1)
+                       + cons)
             else:  # the yield at the one-step optimum over the background (a start only)
-                nb_ = np.maximum(nu_b, 1e-300)
-                g1 = np.sum((nr / nb_ - 1.0) * f, axis=-1)
-                g2 = np.maximum(np.sum(nr * f * f / nb_**2, axis=-1), 1e-300)
+                g1 = np.sum(nr * f / nu_b, axis=-1) - f_sum[h]
+                g2 = np.maximum(np.sum(nr * f * f / nu_b**2, axis=-1), 1e-300)
                 s = g1 / g2
                 val = cons - 0.5 * g1 * g1 / g2
-        val = np.where(np.isfinite(val), val, np.inf)
+        val = np.where(np.isfinite(val) & ~shapeless[h], val, np.inf)
         # wells: grid points not above either neighbour (the ends: their one neighbour)
         left = np.concatenate([np.full((r.size, 1), np.inf), val[:, :-1]], axis=1)
         right = np.concatenate([val[:, 1:], np.full((r.size, 1), np.inf)], axis=1)

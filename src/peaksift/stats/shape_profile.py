@@ -228,7 +228,13 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
         # minimum, or between two): its steps always descend.  Checked on the Hessian
         # scaled to a unit diagonal: the yields' and the factors' scales differ by 1e10
         d = 1.0 / np.sqrt(np.abs(np.diagonal(out, axis1=1, axis2=2)) + 1e-300)
-        ok = np.linalg.eigvalsh(out * d[:, :, None] * d[:, None, :]).min(axis=1) > 0
+        scaled = out * d[:, :, None] * d[:, None, :]
+        ok = np.all(np.isfinite(scaled), axis=(1, 2))   # else the Fisher form
+        if ok.any():
+            try:
+                ok[ok] = np.linalg.eigvalsh(scaled[ok]).min(axis=1) > 0
+            except np.linalg.LinAlgError:   # no eigenvalues: the Fisher form everywhere
+                ok[:] = False
         return np.where(ok[:, None, None], out, hess)
 
     x0 = np.concatenate([s[:, None], k, b[:, None], theta], axis=1)
