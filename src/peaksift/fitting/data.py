@@ -185,7 +185,9 @@ def start_bins(d: FitData, most: int = 100) -> tuple[np.ndarray, np.ndarray, np.
     if k <= 1:
         return h.edges, h.values(), h.scaled_poisson_factors()
     n, n2 = h.values(), h.variances()
-    if not bool((n == n2).all()):  # weighted (np.array_equal's test, same shapes here)
+    # weighted (np.array_equal's test, same shapes here; an unweighted histogram has them
+    # equal)
+    if d.weighted and not bool((n == n2).all()):
         e = h.edges[::k]
         r = h.rebin(edges=e if e[-1] == h.edges[-1] else np.append(e, h.edges[-1]))
         return r.edges, r.values(), r.scaled_poisson_factors()

@@ -108,7 +108,9 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
         base[iy] = np.nan  # as a yield's start before setup_of's yield_starts
     yield_starts(model, d.total, base)
     counts = read_only(d.n)
-    scale = d.hist.scaled_poisson_factors()  # a new array of a MassHistogram's: no copy
+    # unweighted (sums equal to squared sums, flows too): the factors are all 1, as the
+    # histogram gives them; else its own new array (no copy)
+    scale = np.ones(counts.size) if not d.weighted else d.hist.scaled_poisson_factors()
     scale.flags.writeable = False
     edges = other.binned_arrays[0]  # the same array: its per-edges work is kept by it
     su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
