@@ -39,6 +39,9 @@ class Model:
         background parameters and ``background_yield``.
     parameters : tuple of Parameter
         The same with window-dependent starts/bounds (yields: start NaN, set by :func:`fit`).
+
+    A model cannot be changed once built (a FitError says so): the fits of shapes given by
+    name share one per shapes and window, each result's ``model`` among them.
     """
 
     def __init__(self, signal: Any, background: Any, window: tuple[float, float]) -> None:
