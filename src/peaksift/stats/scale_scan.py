@@ -102,22 +102,32 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     s_out = np.full((rows.size, _STARTS), np.nan)
     # the grid's signal fractions depend on the hypothesis and k_m only (the other
     # factors at their centres here): once per distinct hypothesis, shared by its rows
+    # (a toy ensemble's), when they fit in _CHUNK cells; else made chunk by chunk, at most
+    # _CHUNK cells at once (a wide mass scale on a narrow peak: ~14 MB a mass of 400 bins)
     cols = np.stack([np.broadcast_to(np.asarray(p, float).reshape(-1), (nb,))
                      for p in base], axis=1)[rows]
     inv = np.unique(cols, axis=0, return_inverse=True)[1]
     inv = inv.reshape(-1)
     first = rows[np.unique(inv, return_index=True)[1]]   # a row of each hypothesis
-    k = np.ones((first.size * g, len(names)))
-    k[:, jm] = np.tile(grid, first.size)
-    with np.errstate(all="ignore"):
-        f_all = _fractions(model, signal, base, names, nuisances, k,
-                           np.repeat(first, g)).reshape(first.size, g, -1)
+
+    def fractions(hyp: np.ndarray) -> np.ndarray:
+        k = np.ones((hyp.size * g, len(names)))
+        k[:, jm] = np.tile(grid, hyp.size)
+        with np.errstate(all="ignore"):
+            return _fractions(model, signal, base, names, nuisances, k,
+                              np.repeat(hyp, g)).reshape(hyp.size, g, -1)
+
+    f_all = fractions(first) if first.size * g * model.used.size <= _CHUNK else None
     per = max(1, _CHUNK // (g * model.used.size))
     for c0 in range(0, rows.size, per):
         r = rows[c0:c0 + per]
         loc = np.arange(c0, c0 + r.size)
-        with np.errstate(all="ignore"):
+        if f_all is not None:
             f = f_all[inv[loc]]
+        else:
+            need, back = np.unique(inv[loc], return_inverse=True)
+            f = fractions(first[need])[back.reshape(-1)]
+        with np.errstate(all="ignore"):
             nu_b = (fit["b"][r, None] * bkg_fractions(model, fit["theta"][r]))[:, None, :]
             nr = n[r][:, None, :]
             kg = np.repeat(fit["factors"][r], g, axis=0)
