@@ -39,6 +39,9 @@ class Model:
         background parameters and ``background_yield``.
     parameters : tuple of Parameter
         The same with window-dependent starts/bounds (yields: start NaN, set by :func:`fit`).
+
+    A model cannot be changed once built (a FitError says so): the fits of shapes given by
+    name share one per shapes and window, each result's ``model`` among them.
     """
 
     def __init__(self, signal: Any, background: Any, window: tuple[float, float]) -> None:
@@ -47,33 +50,48 @@ class Model:
         sig = signal if isinstance(signal, (list, tuple)) else [signal]
         if not sig:
             raise FitError("no signal shape given; name one, e.g. signal='gaussian'")
-        self.signals: list[Shape] = [_shapes.get(s) for s in sig]
+        signals = [_shapes.get(s) for s in sig]
+        self.signals: tuple[Shape, ...] = tuple(signals)
         self.background: Shape = _shapes.get(background)
-        for s in self.signals:
+        for s in signals:
             if s.kind != "signal":
                 raise FitError(f"{s.name!r} is a {s.kind} shape but was given as the signal")
         if self.background.kind != "background":
             raise FitError(f"{self.background.name!r} is a {self.background.kind} shape but "
                            "was given as the background")
         pars: list[Parameter] = []
-        self.blocks: list[tuple[Shape, slice, int]] = []  # shape, its params, its yield index
-        for k, s in enumerate(self.signals):
+        blocks: list[tuple[Shape, slice, int]] = []  # shape, its params, its yield index
+        for k, s in enumerate(signals):
             suffix = "" if k == 0 else f"_{k + 1}"
             first = len(pars)
             for p in s.parameters_for(self.window):
                 pars.append(Parameter(p.name + suffix, p.start, p.lower, p.upper, p.unit))
             pars.append(Parameter("signal_yield" + suffix, math.nan, unit="events"))
-            self.blocks.append((s, slice(first, len(pars) - 1), len(pars) - 1))
+            blocks.append((s, slice(first, len(pars) - 1), len(pars) - 1))
         first = len(pars)
         pars.extend(self.background.parameters_for(self.window))
         pars.append(Parameter("background_yield", math.nan, 0.0, unit="events"))
-        self.blocks.append((self.background, slice(first, len(pars) - 1), len(pars) - 1))
+        blocks.append((self.background, slice(first, len(pars) - 1), len(pars) - 1))
         names = [p.name for p in pars]
         dup = {n for n in names if names.count(n) > 1}
         if dup:
             raise FitError(f"parameter names collide: {sorted(dup)}")
+        self.blocks: tuple[tuple[Shape, slice, int], ...] = tuple(blocks)
         self.parameters = tuple(pars)
-        self.parameter_names = tuple(names)
+        self.parameter_names = tuple(names)  # the last: the model is built (__setattr__)
+
+    # a model of shapes given by name is kept between fits (fitting.setup) and is every
+    # result's ``model``: changed through one result it would change the later fits
+    def __setattr__(self, name: str, value: Any) -> None:
+        if "parameter_names" in self.__dict__:
+            raise FitError(f"a Model cannot be changed once built (setting {name!r}): it is "
+                           "shared by the fits of the same shapes and window; build a new "
+                           "Model(signal, background, window) instead")
+        object.__setattr__(self, name, value)
+
+    def __delattr__(self, name: str) -> None:
+        raise FitError(f"a Model cannot be changed once built (deleting {name!r}); build a "
+                       "new Model(signal, background, window) instead")
 
     def __repr__(self) -> str:
         sig = " + ".join(s.name for s in self.signals)

@@ -125,11 +125,31 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     inv = np.unique(cols, axis=0, return_inverse=True)[1]
     inv = inv.reshape(-1)
     first = rows[np.unique(inv, return_index=True)[1]]   # a row of each hypothesis
-    k = np.ones((first.size * g, len(names)))
-    k[:, jm] = np.tile(grid, first.size)
+    # the fractions of a group of hypotheses at a time, at most _CHUNK cells (a wide mass
+    # scale on a narrow peak: ~14 MB a mass of 400 bins); one group, as a rule (a toy
+    # ensemble's rows share a few hypotheses)
+    hyp_per = max(1, _CHUNK // (g * model.used.size))
+    for h0 in range(0, first.size, hyp_per):
+        group = np.arange(h0, min(h0 + hyp_per, first.size))
+        _group_wells(model, n, signal, base, names, nuisances, fit, rows, centers,
+                     fixed_signal, grid, jm, mass, width, inv, first, group, k_out, s_out)
+    return k_out, s_out
+
+
+def _group_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any],
+                 names: Any, nuisances: SignalNuisances, fit: dict[str, np.ndarray],
+                 rows: np.ndarray, centers: np.ndarray | None, fixed_signal: bool,
+                 grid: np.ndarray, jm: int, mass: np.ndarray, width: np.ndarray,
+                 inv: np.ndarray, first: np.ndarray, group: np.ndarray,
+                 k_out: np.ndarray, s_out: np.ndarray) -> None:
+    """:func:`_grid_wells` for the rows of the hypotheses ``first[group]``, into
+    ``k_out`` / ``s_out``."""
+    g = grid.size
+    k = np.ones((group.size * g, len(names)))
+    k[:, jm] = np.tile(grid, group.size)
     with np.errstate(all="ignore"):
         f_all = _fractions(model, signal, base, names, nuisances, k,
-                           np.repeat(first, g)).reshape(first.size, g, -1)
+                           np.repeat(first[group], g)).reshape(group.size, g, -1)
         # no signal shape there (e.g. a peak so far outside the window that its integral
         # over it underflows): not a start
         shapeless = ~np.all(np.isfinite(f_all), axis=-1)                  # (U, G)
@@ -141,12 +161,14 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     f_sum = f_all.sum(axis=-1)
     band, inside = _band(f_all)
     f_band = np.where(inside, np.take_along_axis(f_all, band, axis=-1), 0.0)
+    del f_all
+    mine = np.flatnonzero((inv >= group[0]) & (inv <= group[-1]))  # positions in rows
     per = max(1, _CHUNK // (g * band.shape[-1]))
-    for c0 in range(0, rows.size, per):
-        r = rows[c0:c0 + per]
-        loc = np.arange(c0, c0 + r.size)
+    for c0 in range(0, mine.size, per):
+        loc = mine[c0:c0 + per]
+        r = rows[loc]
         with np.errstate(all="ignore"):
-            h = inv[loc]
+            h = inv[loc] - group[0]
             idx = band[h]                                              # (R, G, L)
             f = f_band[h]
             nu_b = fit["b"][r, None] * bkg_fractions(model, fit["theta"][r])
@@ -180,7 +202,6 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
         kk[:, :, jm] = grid[order]
         k_out[loc] = np.where(ok[..., None], kk, np.nan)
         s_out[loc] = np.where(ok, np.take_along_axis(s, order, axis=1), np.nan)
-    return k_out, s_out
 
 
 def _centre_fits(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
