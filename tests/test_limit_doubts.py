@@ -64,3 +64,18 @@ def test_blinded_demo_limits_with_systematics_respect_the_counting_floor(tmp_pat
         assert a >= floor, (m, a)
         assert 0.5 * b <= a <= 2.0 * b, (m, a, b)
     assert seen >= 15
+
+
+def test_limits_with_several_minima_in_the_mass_scale_are_flagged():
+    """The note of systematic_limits where a limit took a lower well of the mass scale
+    than the nearest one becomes a ``limits`` warning; other notes do not."""
+    import numpy as np
+
+    from peaksift.search.doubts import doubts
+    from peaksift.stats.limits_systematics import _several_wells
+
+    note = _several_wells(np.array([150.0, 151.0]), 0.05)
+    assert "2 mass(es) (150, 151)" in note and "+-15%" in note
+    sy = {"limits": {"notes": [note, "the limits leave out the template signal"]}}
+    w = [d for d in doubts({"systematics": sy}) if d["topic"] == "limits"]
+    assert [d["message"] for d in w] == [note]

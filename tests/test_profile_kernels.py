@@ -74,7 +74,7 @@ def _iminuit(cost, ntot, s_fixed=None):
 def test_power_law_profile_matches_iminuit(monkeypatch, numpy_path, blind):
     """q0, the signal yield and its error at masses across the window (the injected peak,
     a deficit, the ends), blinded or not, and the profile NLL at a fixed signal, against
-    iminuit on the raw cost above (the scan's compiled call is ``profile_kernels.scan_rows``,
+    iminuit on the raw cost above (the scan's compiled call is ``profile_calls.scan_rows``,
     the stacked calls ``profile_rows``).  Tolerances as in test_scan: |dq0| < 0.02 + 1e-3 q0,
     |ds| < 0.01 sigma_s, sigma_s to 1 %, the fixed-signal Delta NLL to 0.01 + 1e-3."""
     if numpy_path:

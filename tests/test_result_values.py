@@ -44,3 +44,27 @@ def test_scan_result_is_a_value(spectrum):
     assert a == b
     with pytest.raises(ValueError):
         a.q0[0] = 1.0
+
+
+def test_a_kept_scan_result_is_a_value(spectrum):
+    """A scan whose preparation is kept (a Resolution, not a function) is answered from
+    the compiled table the second time: the same value, its arrays read-only, its model's
+    the caller's to change; Z = sqrt(q0) and p = 1 - Phi(Z) (Cowan, Cranmer, Gross,
+    Vitells, EPJC 71 (2011) 1554, eqs. 52-53; Phi from scipy.stats.norm) to 1e-12."""
+    from scipy import stats
+
+    h = peaksift.MassHistogram(bins=50, range=(100, 200)).fill(spectrum)
+    masses = np.linspace(110, 190, 9)
+    res = peaksift.Resolution.absolute(2.0)
+    a = peaksift.scan(h, "gaussian", "exponential", masses, resolution=res, refit=False)
+    b = peaksift.scan(h, "gaussian", "exponential", masses, resolution=res, refit=False)
+    assert a == b
+    for name in ("masses", "sigma", "q0", "z_local", "p_local", "signal_yield",
+                 "signal_yield_error", "background_yield", "converged", "blinded"):
+        with pytest.raises(ValueError):
+            getattr(b, name)[0] = 1
+    b.model.counts[0] = 0.0   # the model is the caller's: writable, and not a's
+    assert a.model.counts[0] != 0.0
+    np.testing.assert_allclose(b.z_local, np.sqrt(b.q0), rtol=1e-12, atol=0)
+    np.testing.assert_allclose(b.p_local, stats.norm.sf(b.z_local), rtol=1e-12, atol=1e-300)
+    assert b.best_index == int(np.argmax(b.q0)) and b.q0.max() > 25.0

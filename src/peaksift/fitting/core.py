@@ -122,8 +122,6 @@ def fit(
     if su is None:
         su = setup_of(data, signal, background, window, weights, binned, bins, start, fixed,
                       limits, constraints, tied, retries)
-    else:
-        su = su.for_fit()
     retries = int(retries)
     d, model, names, lower, upper = su.d, su.model, su.names, su.lower, su.upper
     base, is_fixed, floors, cons, free_idx = su.base, su.is_fixed, su.floors, su.cons, su.free_idx

@@ -4,7 +4,10 @@
 the covariance, validity with its reasons, the peak summary (mass, width, FWHM), the
 goodness of fit and the binned data with the fitted expectation and pulls.  It compares
 with ``==``; its mappings cannot be changed through it; ``to_dict()`` / ``from_dict()`` go to
-and from JSON; ``to_minuit()`` gives an ``iminuit.Minuit`` set up at the minimum.
+and from JSON; ``to_minuit()`` gives an ``iminuit.Minuit`` set up at the minimum.  A fit
+makes the parts read less often than made (notes, covariance, correlations, FWHM, goodness
+of fit, the figure's bins) at their first access (:meth:`FitResult._in_parts`): the same
+values, whenever they are read.
 """
 
 from __future__ import annotations

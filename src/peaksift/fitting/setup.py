@@ -52,9 +52,12 @@ class Setup:
     #: the first start's cost, once made (the others are made from it; shared by the
     #: copies of :meth:`for_fit`)
     first_cost: list = field(default_factory=list)
-    kept: bool = False  # shared by later fits: its first cost is never minimised itself
+    #: the first cost was made for this fit and not minimised yet (it is used as it is;
+    #: any later cost, in this fit or another, is a copy of it: :meth:`BinnedCost.at_values`
+    #: resets everything a minimisation changes)
+    first_unused: bool = False
 
-    def for_fit(self) -> Setup:
+    def for_fit(self, first_unused: bool = False) -> Setup:
         """This setup with its own copies of what a fit may change (the starting values,
         bounds, which parameters float, the floors)."""
         out = object.__new__(Setup)  # copy.copy's result, without its ~8 us of dispatch
@@ -62,6 +65,7 @@ class Setup:
         out.base, out.is_fixed = self.base.copy(), self.is_fixed.copy()
         out.lower, out.upper = self.lower.copy(), self.upper.copy()
         out.floors = dict(self.floors)
+        out.first_unused = first_unused
         return out
 
     def cost_at(self, v: np.ndarray) -> Any:
@@ -69,14 +73,17 @@ class Setup:
         binned costs of a fit's starts share the first one's per-bin work."""
         if self.d.binned:
             made = self.first_cost
-            if made:
+            if made and self.first_unused:
+                self.first_unused = False
+                cost = made[0]
+                cost.full = np.array(v, float)
+            elif made:
                 cost = made[0].at_values(v)
             else:
                 edges, counts, scale = self.binned_arrays
-                first = BinnedCost(self.model, v, self.inner_free, self.cons_idx, edges, counts,
-                                   scale)
-                made.append(first)
-                cost = first.at_values(v) if self.kept else first
+                cost = BinnedCost(self.model, v, self.inner_free, self.cons_idx, edges, counts,
+                                  scale)
+                made.append(cost)
         else:
             cost = UnbinnedCost(self.model, v, self.inner_free, self.cons_idx, self.d.x,
                                 self.d.w)

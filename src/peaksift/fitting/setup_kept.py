@@ -29,16 +29,18 @@ from .setup import Setup, entries, read_only, setup_of, yield_bounds, yield_star
 __all__ = ["kept_setup"]
 
 #: setups by (signal, background, window, binned, unit, flows, number of bins): each a
-#: list of the last few, found by the bins' contents (a toy study's each new)
-_SETUPS = Kept(8)
-_PER_KEY = 3
+#: list of the last two, found by the bins' contents (a toy study's each new); an entry
+#: holds ~10 arrays of the bins (~0.2 MB for 1,350 bins), so few are kept
+_SETUPS = Kept(4)
+_PER_KEY = 2
 
 
 def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any,
                bins: Any, retries: Any) -> Setup | None:
     """The setup of the common call (a MassHistogram, shapes by name; the caller checks
     that nothing is held, started, bounded, constrained or tied), kept by the histogram's
-    content; None for any other call (its setup is made by :func:`setup_of`)."""
+    content, as this fit's own (:meth:`~.setup.Setup.for_fit`); None for any other call
+    (its setup is made by :func:`setup_of`)."""
     if (type(data) is not _mass_histogram() or type(signal) is not str
             or type(background) is not str or binned is False):
         return None
@@ -59,7 +61,7 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
                 as_retries(retries)
                 if su.d.note:  # as prepare says it
                     _log.info(su.d.note)
-                return su
+                return su.for_fit()
             if same_bins is None and have[0] == content[0]:
                 same_bins = su
     su = None if same_bins is None else _in_same_bins(data, window, binned, bins, retries,
@@ -72,14 +74,13 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
     d = object.__new__(type(su.d))  # copy.copy's, without its ~5 us of dispatch
     d.__dict__.update(su.d.__dict__)
     d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
-    d.n2 = read_only(d.n2)
+    d.n2 = d.n if not d.weighted else read_only(d.n2)  # unweighted: the same numbers
     d.hist = None
-    su.d, su.kept = d, True
+    su.d = d
     for a in (su.base, su.is_fixed, su.lower, su.upper):
         a.flags.writeable = False  # handed out as copies (Setup.for_fit)
-    kept = [] if kept is None else [e for e in kept if e[0] != content]
-    _SETUPS.put(key, [(content, su), *kept][:_PER_KEY])
-    return su
+    _SETUPS.put(key, [(content, su), *(kept or ())][:_PER_KEY])  # (none had this content)
+    return su.for_fit(first_unused=bool(su.first_cost))
 
 
 def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
@@ -106,7 +107,9 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
     for _, _, iy in model.blocks:
         base[iy] = np.nan  # as a yield's start before setup_of's yield_starts
     yield_starts(model, d.total, base)
-    counts, scale = read_only(d.n), read_only(d.hist.scaled_poisson_factors())
+    counts = read_only(d.n)
+    scale = d.hist.scaled_poisson_factors()  # a new array of a MassHistogram's: no copy
+    scale.flags.writeable = False
     edges = other.binned_arrays[0]  # the same array: its per-edges work is kept by it
     su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
                dict(other.floors), {}, [], [], {}, other.free_idx, other.inner_free,

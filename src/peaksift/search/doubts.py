@@ -16,7 +16,10 @@ summary and a section at the top of the report.
   a polynomial that misses its points, or a leave-one-out deviation above 3 errors.
 * ``limits``          -- observed limits outside the expected +-2 sigma band at more than
   :data:`BAND_OUTSIDE_MAX_FRACTION` of the masses: a background model that misses the data
-  (a genuine signal lifts only the masses near it).
+  (a genuine signal lifts only the masses near it); limits with systematics whose
+  profile in the mass scale took a lower well than the nearest one (a mass scale wider
+  than the peak: the limit there responds to the data up to 3 of its standard deviations
+  away).
 * ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
   a kept order whose next order still improved the fit (the family needs higher orders).
 """
@@ -112,6 +115,11 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
         for note in sy.get("notes") or []:
             if "spurious" in str(note):
                 add("background_model", str(note))
+        # limits whose profile in the mass scale took a well away from the nearest one
+        # (stats.limits_systematics._several_wells): they respond to data elsewhere
+        for note in (sy.get("limits") or {}).get("notes") or []:
+            if "several minima" in str(note):
+                add("limits", str(note))
         for c in (sy.get("background_choice") or {}).get("candidates") or []:
             if c.get("chosen") and "still improved" in str(c.get("note") or ""):
                 add("background_model", f"{c.get('label')}: the highest order tried still "

@@ -2,7 +2,7 @@
 
 What is here and when it is used
 --------------------------------
-:func:`compiled_profile` runs :func:`peaksift.stats.toy_model.profile_signal`'s fit -- the
+:func:`profile_rows` runs :func:`peaksift.stats.toy_model.profile_signal`'s fit -- the
 same Levenberg-Marquardt rule as :func:`peaksift.likelihood.minimize_stacked` (damping, the
 acceptance and convergence tests, parameters pinned at a bound, the step-size test), the same
 exact Hessian (the background shape's curvature from the start) and the same small-term
@@ -13,10 +13,10 @@ Why: the numpy path costs ~20 numpy calls per iteration whatever the size; on a 
 masses x 100 bins that call overhead was ~2/3 of the scan (its cost per mass and bin 1.5x
 that of 1,000 bins).  Here a row's iterations run without returning to Python.
 
-It returns None whenever it cannot answer as the numpy path would (another background, a
-row kernel declining a point where the numpy path switches to a series, a singular or
-non-finite Newton step, where numpy would take a least-squares step or zero components): the
-numpy path then runs, and stays the reference (``PEAKSIFT_NUMPY_COST=1`` selects it).
+Its calls from Python (:mod:`.profile_calls`) return None whenever it cannot answer as the
+numpy path would (another background, a row kernel declining a point where the numpy path
+switches to a series, a singular or non-finite Newton step, where numpy would take a
+least-squares step or zero components): the numpy path then runs, and stays the reference (``PEAKSIFT_NUMPY_COST=1`` selects it).
 ``tests/test_profile_kernels.py`` checks both paths against iminuit fits written in the test;
 the numbers agree with the numpy path to rounding (q0 to ~1e-9 on a 10,000-bin scan).
 """
@@ -24,7 +24,6 @@ the numbers agree with the numpy path to rounding (q0 to ~1e-9 on a 10,000-bin s
 from __future__ import annotations
 
 import math
-from typing import Any
 
 import numpy as np
 from numba import njit, types
@@ -34,7 +33,7 @@ from numba.np.arrayobj import make_array, populate_array
 from ..likelihood.kernels import solve_small, solve_small_into
 from ..shapes.compiled import exponential_rows, powerlaw_rows, vlog
 
-__all__ = ["compiled_profile", "compiled_scan_profile", "first_error", "row_kernel"]
+__all__ = ["first_error", "profile_rows"]
 
 #: :func:`peaksift.stats.toy_model` floors expectations here in its gradients and Hessians
 NU_FLOOR = 1e-100
@@ -58,43 +57,6 @@ def borrowed(typingctx, arr):  # pragma: no cover - compile time
         return out._getvalue()
     return arr(arr), codegen
 
-
-#: the row kernels by the name a shape's ``row_inputs`` gives (:mod:`peaksift.shapes.compiled`)
-_CODES = {"powerlaw": 0, "exponential": 1}
-
-
-#: row inputs by what they are made of (shape class and order, window, edges), the newest
-#: last: a scan makes a new shape and a new edges array every call, so the shapes' own
-#: caches (kept per instance and edges array) miss, and the edge logarithms were ~2% of a
-#: 100-bin scan
-_ROWS: dict[tuple, tuple | None] = {}
-
-
-def row_kernel(shape: Any, edges: np.ndarray, window: tuple[float, float]) -> tuple | None:
-    """``(code, e1, e2, c1, c2)`` of the compiled row kernel of a one-parameter background
-    on ``edges``: the shape's own ``row_inputs`` (the arrays its stacked path passes the
-    kernel), or None."""
-    row = getattr(shape, "row_inputs", None)
-    if row is None:
-        return None
-    x = np.asarray(edges)
-    key = (type(shape), getattr(shape, "order", None), float(window[0]), float(window[1]),
-           x.dtype.str, x.shape, x.tobytes())
-    hit = _ROWS.get(key, False)
-    if hit is not False:
-        return hit
-    ri = row(edges, window)
-    out = None
-    if ri is not None and ri[0] in _CODES:
-        name, e1, e2, c1, c2 = ri
-        # copies, read-only: kept here, and the shape's own (cached) arrays stay as they were
-        out = (_CODES[name], np.array(e1, float), np.array(e2, float), float(c1), float(c2))
-        for a in out[1:3]:
-            a.flags.writeable = False
-    if len(_ROWS) >= 8:
-        _ROWS.pop(next(iter(_ROWS)))
-    _ROWS[key] = out
-    return out
 
 
 @njit(cache=True, nogil=True)
@@ -223,6 +185,8 @@ def _damped_step(hess, grad, lam, h, step, sm, sd):  # pragma: no cover - compil
         for c in range(p):
             h[a, c] = hess[a, c]
         h[a, a] += lam * (hess[a, a] + floor) + 1e-14 * floor
+    if p == 3:
+        return _solve3_into(h, grad, step, sm, sd)
     return solve_small_into(h, grad, step, sm, sd)
 
 
@@ -290,7 +254,6 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
     h = borrowed(mats[2])
     grad = borrowed(vecs[0])
     gp = borrowed(vecs[1])
-    err = borrowed(vecs[2])
     step = borrowed(vecs[3])
     xr = borrowed(vecs[4])
     trial = borrowed(vecs[5])
@@ -332,8 +295,6 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
         for _it in range(steps):
             s = s_fix[r] if fixed else xr[0]
             _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, s, xr[off], off, grad, hess)
-            for a in range(p):
-                err[a] = math.sqrt(abs(1.0 / hess[a, a])) if hess[a, a] != 0.0 else math.inf
             # _pin_at_bounds: a parameter on a bound whose descent leaves it holds still
             anypin = False
             for a in range(p):
@@ -351,24 +312,23 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
             for _t in range(tries):
                 if not _damped_step(hp, gp, lam, h, step, sm, sd):
                     return r + 1
-                small = True
                 for a in range(p):
                     trial[a] = min(max(xr[a] + step[a], lower[a]), upper[a])
-                    small = small and abs(step[a]) < step_tol * err[a]
                 st = s_fix[r] if fixed else trial[0]
                 if not _background(code, e1, e2, c1, c2, used, scale, trial[off + 1],
                                    kbuf, frac, grad_full, gs, dgs, ti):
                     return r + 1
                 tn = _nll(n, nr, f, r, gs, ti, st, trial[off], satr, lb)
-                ok = tn <= cur + slack
-                done = (cur - tn < nll_tol) or small
-                if ok:
+                if tn <= cur + slack:
+                    # converged: the NLL's gain below nll_tol or every step below step_tol
+                    # of its error sqrt|1/H_aa| (the step test only where it decides)
+                    if lam <= 1e-2 and (cur - tn < nll_tol
+                                        or _small(step, hess, step_tol, p)):
+                        conv = True
                     for a in range(p):
                         xr[a] = trial[a]
                     cur = tn
                     ci = ti
-                    if done and lam <= 1e-2:
-                        conv = True
                     lam = max(lam * 0.1, 1e-9)
                     accepted = True
                     break
@@ -386,8 +346,21 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
             for a in range(p):
                 for c in range(p):
                     hess_out[r, a, c] = hess[a, c]
-            s_err[r] = first_error(hess, h, gp, step)
+            s_err[r] = first_error_into(hess, h, gp, step, sm, sd)
     return 0
+
+
+@njit(cache=True, nogil=True)
+def _small(step, hess, step_tol, p):  # pragma: no cover - compiled
+    """Whether every component of the step is below ``step_tol`` times its error
+    ``sqrt|1/H_aa|`` (inf where H_aa = 0): computed only where the NLL's gain does not
+    decide already (it was computed, with the errors, at every iteration: three divisions
+    and square roots, a tenth of a row's fixed cost)."""
+    for a in range(p):
+        e = math.sqrt(abs(1.0 / hess[a, a])) if hess[a, a] != 0.0 else math.inf
+        if not abs(step[a]) < step_tol * e:
+            return False
+    return True
 
 
 @njit(cache=True, nogil=True)
@@ -407,6 +380,73 @@ def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, 
     for j in range(out.shape[1]):
         out[row, j] = (dgs[0, j] - dgs[1, j]) / width
     return True
+
+
+@njit(cache=True, nogil=True)
+def _solve3_into(a, g, out, m, d):  # pragma: no cover - compiled
+    """:func:`peaksift.likelihood.kernels.solve_small_into` of a 3 x 3 system: the same
+    operations in the same order (the same bits), its loops' bounds known, so the compiler
+    unrolls them (a scan's rows solve ~6 of these each)."""
+    n = 3
+    for i in range(n):
+        v = math.sqrt(abs(a[i, i]))
+        d[i] = v if v > 0.0 else 1.0
+    for i in range(n):
+        for j in range(n):
+            m[i, j] = a[i, j] / (d[i] * d[j])
+        m[i, n] = g[i] / d[i]
+    for c in range(n):
+        p = c
+        big = abs(m[c, c])
+        for r in range(c + 1, n):
+            if abs(m[r, c]) > big:
+                big = abs(m[r, c])
+                p = r
+        if not big > 0.0:
+            return False
+        if p != c:
+            for j in range(c, n + 1):
+                t = m[c, j]
+                m[c, j] = m[p, j]
+                m[p, j] = t
+        for r in range(c + 1, n):
+            f = m[r, c] / m[c, c]
+            if f != 0.0:
+                for j in range(c, n + 1):
+                    m[r, j] -= f * m[c, j]
+    for i in range(n - 1, -1, -1):
+        acc = m[i, n]
+        for j in range(i + 1, n):
+            acc -= m[i, j] * out[j]
+        out[i] = acc / m[i, i]
+    for i in range(n):
+        out[i] = -out[i] / d[i]
+        if not math.isfinite(out[i]):
+            return False
+    return True
+
+
+@njit(cache=True, nogil=True)
+def first_error_into(hess, a, rhs, col, m, d):  # pragma: no cover - compiled
+    """:func:`first_error` with the solve's work buffers ``m (p, p + 1)``, ``d (p,)`` (it
+    allocated two arrays a row)."""
+    p = hess.shape[0]
+    tr = 0.0
+    for i in range(p):
+        tr += abs(hess[i, i])
+    reg = 1e-12 * tr
+    for i in range(p):
+        for j in range(p):
+            a[i, j] = hess[i, j]
+        a[i, i] += reg
+        rhs[i] = 0.0
+    rhs[0] = -1.0   # the solve gives -a^-1 rhs
+    ok = (_solve3_into(a, rhs, col, m, d) if p == 3
+          else solve_small_into(a, rhs, col, m, d))
+    if not ok:
+        return math.nan
+    v = col[0]
+    return math.sqrt(v) if v > 0.0 else math.nan
 
 
 @njit(cache=True, nogil=True)
@@ -430,118 +470,3 @@ def first_error(hess, a, rhs, col):  # pragma: no cover - compiled
         return math.nan
     v = col[0]
     return math.sqrt(v) if v > 0.0 else math.nan
-
-
-@njit(cache=True, nogil=True)
-def scan_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, b0, th0, lo, hi, steps,
-              tol):  # pragma: no cover - compiled
-    """:func:`profile_rows` for a scan (every row from ``s = 0``, ``b = b0``, ``theta =
-    th0``, the signal free) with the inputs and outputs :func:`compiled_profile` makes,
-    made here: ``(status, s, s_error, b, theta, nll, converged, hessian, d2)``.  A
-    100-bin scan's ~20 numpy calls around the kernel cost ~40 us with cold caches."""
-    nb, nbin = f.shape
-    x = np.empty((nb, 3))
-    for r in range(nb):
-        x[r, 0] = 0.0
-        x[r, 1] = b0
-        x[r, 2] = th0
-    one_start = nb > 1 and not math.isnan(th0)
-    lower = np.array((-math.inf, -math.inf, lo))
-    upper = np.array((math.inf, math.inf, hi))
-    d2 = np.empty((1 if one_start else nb, nbin))
-    nll = np.empty(nb)
-    conv = np.zeros(nb, np.bool_)
-    hess = np.zeros((nb, 3, 3))
-    s_err = np.full(nb, np.nan)
-    status = profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, np.zeros(nb),
-                          lower, upper, steps, 12, 1e-8, tol, 1e-9, d2, nll, conv, hess,
-                          s_err)
-    return (status, x[:, 0].copy(), s_err, x[:, 1].copy(), x[:, 2:].copy(), nll, conv,
-            hess, d2)
-
-
-def compiled_scan_profile(model: Any, n: np.ndarray, f: np.ndarray, sat: Any, steps: int,
-                          tol: float) -> dict | None:
-    """:func:`compiled_profile` of a scan's call (one spectrum ``n (N,)``, float64, every
-    row from the background-only fit, the signal free) through :func:`scan_rows`: the same
-    numbers, or None (the numpy path must run)."""
-    rk = row_kernel(model.background, model.edges, model.window)
-    theta = model.theta
-    if rk is None or theta.shape != (1,):
-        return None
-    code, e1, e2, c1, c2 = rk
-    scale = (_EMPTY if model.bin_scale is None
-             else np.ascontiguousarray(model.bin_scale, float))
-    out = scan_rows(code, e1, e2, c1, c2, np.ascontiguousarray(model.used, np.int64), scale,
-                    np.ascontiguousarray(n.reshape(1, -1)), np.ascontiguousarray(sat, float),
-                    np.ascontiguousarray(f), float(model.bkg_yield), float(theta[0]),
-                    float(model.lower[0]), float(model.upper[0]), int(steps), float(tol))
-    status, s, s_err, b, th, nll, conv, hess, d2 = out
-    if status:
-        return None
-    nb, nbin = f.shape
-    one_start = nb > 1 and bool(theta[0] == theta[0])  # (not NaN: scan_rows' rule)
-    # d2 as (B, 1, 1, N) rows, one shared by all with a zero stride (compiled_profile's)
-    curvature = np.ndarray((nb, 1, 1, nbin), float, d2, 0,
-                           (0 if one_start else d2.strides[0], 0, 0, d2.strides[1]))
-    curvature.flags.writeable = False
-    return {"s": s, "s_error": s_err, "b": b, "theta": th, "nll": nll, "converged": conv,
-            "hessian": hess, "curvature": curvature}
-
-
-#: the unweighted scale, no element (writable, as the kernels were specialised on; with
-#: no element nothing is ever written into it)
-_EMPTY = np.empty(0)
-
-
-def compiled_profile(model: Any, n: np.ndarray, f: np.ndarray, s: Any, b: Any,
-                     theta: np.ndarray, fixed: bool, sat: np.ndarray, steps: int,
-                     tol: float) -> dict | None:
-    """``profile_signal``'s result for every row from one compiled call, or None (the
-    numpy path must run).  ``n`` is ``(N,)`` or ``(B, N)``; ``s``, ``b`` a value per row or
-    one for all; ``theta`` ``(B, 1)``, or ``(1,)``: one start for every row; ``sat`` the
-    rows' saturated terms."""
-    rk = row_kernel(model.background, model.edges, model.window)
-    if rk is None or theta.shape[-1] != 1:
-        return None
-    code, e1, e2, c1, c2 = rk
-    nb, nbin = f.shape
-    off = 0 if fixed else 1
-    p = off + 2
-    x = np.empty((nb, p))
-    if not fixed:
-        x[:, 0] = s
-    x[:, off] = b
-    # every row from one theta (a scan's start): one curvature for all (profile_rows)
-    if theta.ndim == 1:
-        x[:, off + 1] = theta[0]
-        one_start = nb > 1 and bool(theta[0] == theta[0])  # (not NaN, as below)
-    else:
-        x[:, off + 1] = theta[:, 0]
-        one_start = nb > 1 and bool((theta[:, 0] == theta[0, 0]).all())
-    lower = np.array((-math.inf,) * (p - 1) + (float(model.lower[0]),))
-    upper = np.array((math.inf,) * (p - 1) + (float(model.upper[0]),))
-    scale = (np.empty(0) if model.bin_scale is None
-             else np.ascontiguousarray(model.bin_scale, float))
-    s_fix = np.array(s, float) if fixed else np.zeros(nb)
-    d2 = np.empty((1 if one_start else nb, nbin))
-    nll = np.empty(nb)
-    conv = np.zeros(nb, np.bool_)
-    hess = np.zeros((nb, p, p))
-    s_err = np.full(nb, np.nan)
-    status = profile_rows(code, e1, e2, c1, c2,
-                          np.ascontiguousarray(model.used, np.int64), scale,
-                          np.ascontiguousarray(n if n.ndim == 2 else n.reshape(1, -1), float),
-                          np.ascontiguousarray(sat, float),   # (at least 1-d)
-                          np.ascontiguousarray(f, float), x, s_fix, lower, upper, int(steps),
-                          12, 1e-8, float(tol), 1e-9, d2, nll, conv, hess, s_err)
-    if status:
-        return None
-    # d2 as (B, 1, 1, N) rows, one shared by all with a zero stride: the view
-    # broadcast_to makes, without its ~10 us (a 100-bin scan's 0.5%)
-    curvature = np.ndarray((nb, 1, 1, nbin), float, d2, 0,
-                           (0 if one_start else d2.strides[0], 0, 0, d2.strides[1]))
-    curvature.flags.writeable = False
-    return {"s": s_fix if fixed else x[:, 0].copy(), "s_error": s_err, "b": x[:, off].copy(),
-            "theta": x[:, off + 1:].copy(), "nll": nll, "converged": conv,
-            "hessian": None if fixed else hess, "curvature": curvature}

@@ -34,10 +34,12 @@ from ..errors import FitError, PeaksiftError
 from ..likelihood import (
     SignalNuisances,
 )
+from ..likelihood.poisson import use_compiled
 from .scan_inputs import _prepare_model, _signal_params, _Spectrum
-from .scan_result import ScanResult
+from .scan_result import ScanResult, fresh_result
 from .shape_profile import profile_with_nuisances, with_nuisances
 from .significance import p_from_q0, z_from_q0
+from .toy_model import _compiled, _spectrum_saturated
 from .toys import ScanModel, fit_background, profile_signal
 
 __all__ = ["ScanResult", "scan"]
@@ -128,26 +130,30 @@ def scan(
     q0 = 2 [NLL(s=0) - NLL(s_hat)] for s_hat > 0, else 0 (Cowan et al. 2011, eq. 12);
     Z_local = sqrt(q0), p_local = 1 - Phi(Z_local) (eqs. 52-53).
     """
+    slots: list = []
     model, spec, info = _prepare_model(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
         window=window,
         natural_width=natural_width, blind=blind, signal_params=signal_params, bins=bins,
-        signal_model=signal_model)
+        signal_model=signal_model, slots=slots)
     return scan_prepared(data, model, spec, info, blind=blind, expected_signal=expected_signal,
                          natural_width=natural_width, refit=refit, nuisances=nuisances,
-                         nuisance_toys=nuisance_toys)
+                         nuisance_toys=nuisance_toys, slot=slots[0] if slots else None)
 
 
 def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, Any], *,
                   blind: Any, expected_signal: Any, natural_width: Any,
                   refit: bool, nuisances: Any = None,
-                  nuisance_toys: str = "fixed", fits: dict | None = None) -> ScanResult:
+                  nuisance_toys: str = "fixed", fits: dict | None = None,
+                  slot: list | None = None) -> ScanResult:
     """The scan of a model prepared by :func:`_prepare_model` (the channels of a
     combination prepare theirs once and scan them here, as :func:`scan` does).  ``fits``,
     a dict, receives the profile fits at the unblinded hypotheses (``s``, ``b``, ``theta``,
     ``hessian``: :func:`~peaksift.stats.toys.profile_signal`'s), from which a combination
-    starts its joint fit."""
+    starts its joint fit.  ``slot``: the kept preparation's slot (:func:`_prepare_model`'s
+    ``slots``) when ``model`` is the one it just handed out, unchanged: where the compiled
+    call's own inputs are kept (:func:`_scan_table`)."""
     signal_params = info["signal_params"]
     m_all = info["masses"]
     bl = info["blinded_mass"]
@@ -158,12 +164,24 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
     else:
         nuis = _nuisances(nuisances, nuisance_toys)
         shape_active = nuis.shape_active
-    factors = {name: np.full(nm, np.nan) for name in shape_active}
+    factors = {name: np.full(nm, np.nan) for name in shape_active} if shape_active else {}
     mb = model.masses.size
     # every hypothesis open (no blinding): the fits' arrays are the result's, no copies
     # into NaN-filled ones (a 100-bin scan's ~40 numpy calls were a third of its time)
     every = mb == nm
-    if mb:
+    table = None
+    if mb and every and fits is None and not shape_active and slot is not None:
+        table = _scan_table(model, slot)
+    if table is not None:
+        # the compiled fits and their table in one call: the same numbers as below
+        s_hat, s_err, b_hat, nll, conv, unconverged, q0, z, neg_z, best, plain = table
+        arr = {"q0": q0, "s": s_hat, "se": s_err, "b": b_hat}
+        if not plain:   # a zero, NaN or infinite q0 term: numpy's rules, as below
+            arr["q0"] = np.where(s_hat > 0,
+                                 np.maximum(2.0 * (model.nll_background - nll), 0.0), 0.0)
+        if unconverged:
+            notes.append(f"{unconverged} hypotheses did not converge")
+    elif mb:
         # every row starts at the background-only fit (the model's theta and yield)
         r = profile_signal(model, model.counts, model.fractions, steps=100)
         if fits is not None:
@@ -203,7 +221,43 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         arr = {k: np.full(nm, np.nan) for k in ("q0", "s", "se", "b")}
         conv = np.zeros(nm, bool)
         notes.append("every mass hypothesis is blinded")
-    q0c = arr["q0"]
+    if table is not None and plain:
+        p = _ndtr(neg_z)   # the table's Z and best as below (every q0 finite)
+    else:
+        z, p, best = _significances(arr["q0"], every, bl)
+    z_exp = None
+    if expected_signal is not None:
+        z_exp = _expected_z(model, info, spec, expected_signal)
+    fit_result = None
+    if refit and blind is None and model.masses.size:
+        fit_result = _refit(data, info, spec, best, signal_params, natural_width, notes)
+    elif refit and blind is not None:
+        notes.append("no free refit while blinded")
+    values = {
+        "masses": m_all, "sigma": info["sigma"], "q0": arr["q0"], "z_local": z, "p_local": p,
+        "signal_yield": arr["s"], "signal_yield_error": arr["se"],
+        "background_yield": arr["b"], "converged": conv, "best_index": best,
+        "best_mass": float(m_all[best]), "refit": fit_result, "window": spec.window,
+        "blind": None if blind is None else (float(blind[0]), float(blind[1])),
+        "blinded": bl, "signal_shape": info["signal"].name,
+        "background_shape": info["background"].name, "weight_scale": spec.scale,
+        "z_expected": z_exp, "notes": tuple(notes), "unit": spec.unit, "model": model,
+        "nuisances": None if nuis is _NO_NUISANCES or nuis.none else nuis.to_dict(),
+        "nuisance_factors": factors or None}
+    if table is not None:   # its arrays and those made from them: the result's alone
+        return fresh_result(values, _OWN)
+    return ScanResult(**values)
+
+
+#: the result's arrays a scan from :func:`_scan_table` made for it alone
+_OWN = frozenset({"q0", "z_local", "p_local", "signal_yield", "signal_yield_error",
+                  "background_yield", "converged"})
+
+
+def _significances(q0: np.ndarray, every: bool, bl: np.ndarray
+                   ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Z_local, p_local and the best hypothesis from q0 (NaN where blinded or not fitted)."""
+    q0c = q0
     finite = bool(_all(np.isfinite(q0c)))
     if not finite:  # nan_to_num costs ~25 us, a 100-bin scan's 1%
         q0c = np.nan_to_num(q0c)
@@ -213,29 +267,35 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         # cost ~10 us with cold caches)
         z = np.sqrt(np.maximum(q0c, 0.0))
         p = _ndtr(-z)   # p_from_q0's 1 - Phi(sqrt(q0)), the square root taken once
-        best = int(q0c.argmax())
-    else:
-        z = np.where(bl, np.nan, z_from_q0(q0c))
-        p = np.where(bl, np.nan, p_from_q0(q0c))
-        qsel = np.where(bl | np.isnan(arr["q0"]), -np.inf, q0c)
-        best = int(np.argmax(qsel)) if np.isfinite(qsel).any() else 0
-    z_exp = None
-    if expected_signal is not None:
-        z_exp = _expected_z(model, info, spec, expected_signal)
-    fit_result = None
-    if refit and blind is None and model.masses.size:
-        fit_result = _refit(data, info, spec, best, signal_params, natural_width, notes)
-    elif refit and blind is not None:
-        notes.append("no free refit while blinded")
-    return ScanResult(
-        masses=m_all, sigma=info["sigma"], q0=arr["q0"], z_local=z, p_local=p,
-        signal_yield=arr["s"], signal_yield_error=arr["se"], background_yield=arr["b"],
-        converged=conv, best_index=best, best_mass=float(m_all[best]), refit=fit_result,
-        window=spec.window, blind=None if blind is None else (float(blind[0]), float(blind[1])),
-        blinded=bl, signal_shape=info["signal"].name, background_shape=info["background"].name,
-        weight_scale=spec.scale, z_expected=z_exp, notes=tuple(notes), unit=spec.unit,
-        model=model, nuisances=None if nuis is _NO_NUISANCES or nuis.none else nuis.to_dict(),
-        nuisance_factors=factors or None)
+        return z, p, int(q0c.argmax())
+    z = np.where(bl, np.nan, z_from_q0(q0c))
+    p = np.where(bl, np.nan, p_from_q0(q0c))
+    qsel = np.where(bl | np.isnan(q0), -np.inf, q0c)
+    return z, p, int(np.argmax(qsel)) if np.isfinite(qsel).any() else 0
+
+
+def _scan_table(model: ScanModel, slot: list) -> tuple | None:
+    """:func:`.profile_calls.scan_table` of a scan with every hypothesis open, no nuisance
+    and nothing asked of the fits but the result's arrays (``s``, ``s_error``, ``b``,
+    ``nll``, ``converged``, the count of unconverged rows, q0, Z, -Z, the best row,
+    ``plain``), or None (``profile_signal`` answers: no compiled row kernel, or the
+    compiled loop declined a row).  Its inputs are made once per kept preparation, into
+    ``slot``, from the model as handed out: ~50 us of a 100-bin scan with cold caches
+    went to making them again (the row kernel's and the saturated term's keys, the
+    contiguous copies), ~40 us more to the table's numpy calls."""
+    if not slot:
+        call = None
+        if model.theta.size == 1 and use_compiled():
+            calls = _compiled()
+            call = calls.scan_call(model, _spectrum_saturated(model.counts))
+        slot.append(call)
+    call = slot[0]
+    if call is None:
+        return None
+    out = _compiled().scan_table(*call, 100, 1e-6)
+    if out[0]:
+        return None
+    return out[1:]
 
 
 #: ``ndarray.all`` without its Python-level wrapper (numpy's ``_methods._all``; each

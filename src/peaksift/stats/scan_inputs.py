@@ -319,19 +319,21 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    blind: Any, signal_params: Any, bins: Any,
                    background_start: Mapping[str, float] | None = None,
                    signal_model: Any = None, what: str = "scan",
-                   background_fit: Callable[..., Any] | None = None
+                   background_fit: Callable[..., Any] | None = None,
+                   slots: list | None = None
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     """The model, spectrum and plan of a scan (:func:`_prepare_model_anew`), kept by their
     inputs where those are plain values (:func:`.scan_prepared.prepared_key`) and given
     again as :func:`.scan_prepared.handed_out` copies: the same numbers, warnings raised
     again.  The background-only fit is :func:`_fit_data_background`'s, or
     ``background_fit(proto, counts, start) -> (theta (1, K), b (1,), nll (1,))`` (the
-    spurious-signal test's nested fits; then nothing is kept)."""
+    spurious-signal test's nested fits; then nothing is kept).  ``slots``, a list, receives
+    the kept entry's slot where the preparation is kept (:func:`.scan_prepared.keep_prepared`)."""
     key = None if background_fit is not None else prepared_key(
         data, signal, background, masses, resolution, relative_resolution,
         absolute_resolution, window, natural_width, blind, signal_params, bins,
         background_start, signal_model, what)
-    hit = kept_prepared(key)
+    hit = kept_prepared(key, slots)
     if hit is not None:
         return hit
     args = {"resolution": resolution, "relative_resolution": relative_resolution,
@@ -344,7 +346,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")
         prepared = _prepare_model_anew(data, signal, background, masses, **args)
-    return keep_prepared(key, prepared, seen)
+    return keep_prepared(key, prepared, seen, slots)
 
 
 def _prepare_model_anew(data: Any, signal: Any, background: Any, masses: Any, *,

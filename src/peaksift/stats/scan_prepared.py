@@ -115,13 +115,19 @@ def prepared_key(data: Any, signal: Any, background: Any, masses: Any, resolutio
             return None
     elif type(what) is not str:
         return None
+    if resolution is not None:
+        # its fields as plain values (the value with its type): the frozen dataclass's own
+        # __hash__ and __eq__ are Python calls, ~10 us of the lookup with cold caches
+        value = resolution.value
+        resolution = (resolution.kind, type(value).__name__, value, resolution.points)
     return (signal, background, hyp, resolution, small, parts, data.edges.tobytes(), counts,
             data.unit, use_compiled())
 
 
-def kept_prepared(key: tuple | None) -> tuple | None:
+def kept_prepared(key: tuple | None, slots: list | None = None) -> tuple | None:
     """The prepared ``(model, spectrum, info)`` kept under ``key`` (:func:`handed_out`),
-    its warnings raised again; or None."""
+    its warnings raised again; or None.  ``slots``, a list, receives the entry's slot (see
+    :func:`keep_prepared`)."""
     if key is None:
         return None
     with _LOCK:
@@ -133,19 +139,28 @@ def kept_prepared(key: tuple | None) -> tuple | None:
             _KEPT.move_to_end(key)
     if hit is None:
         return None
-    kept, seen = hit
+    kept, seen, slot = hit
     for message, category, filename, lineno in seen:
         warnings.warn_explicit(message, category, filename, lineno)
+    if slots is not None:
+        slots.append(slot)
     return handed_out(kept)
 
 
-def keep_prepared(key: tuple, prepared: tuple, seen: list) -> tuple:
+def keep_prepared(key: tuple, prepared: tuple, seen: list, slots: list | None = None
+                  ) -> tuple:
     """Keep ``prepared`` (read-only copies of its writable arrays) under ``key``, raise the
-    warnings ``seen`` while preparing it again, and return it as it is."""
+    warnings ``seen`` while preparing it again, and return it as it is.  ``slots``, a
+    list, receives the new entry's slot: an empty list kept with it, where the scan keeps
+    what its compiled call needs beyond the model (``scan.scan_prepared``: made once per
+    entry, as the entry it depends on nothing but the key)."""
     model = prepared[0]
     if model.fractions.size <= _CELLS_KEPT:
+        slot: list = []
         entry = (_kept(prepared), [(w.message, w.category, w.filename, w.lineno)
-                                   for w in seen])
+                                   for w in seen], slot)
+        if slots is not None:
+            slots.append(slot)
         with _LOCK:
             try:
                 _KEPT[key] = entry

@@ -255,12 +255,12 @@ def _spectrum_saturated(n: np.ndarray) -> np.ndarray:
 
 
 def _compiled() -> Any:
-    """:mod:`peaksift.stats.profile_kernels`, imported on first use (numba loads then) and
+    """:mod:`peaksift.stats.profile_calls`, imported on first use (numba loads then) and
     kept: an import statement in the scan's path cost ~10 us with cold caches."""
     if not _KERNEL:
-        from . import profile_kernels
+        from . import profile_calls
 
-        _KERNEL.append(profile_kernels)
+        _KERNEL.append(profile_calls)
     return _KERNEL[0]
 
 
@@ -325,7 +325,7 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
     else:
         s = np.zeros(nb)
     if k == 1 and use_compiled():
-        # the same fit row by row in one compiled call (stats/profile_kernels.py), where
+        # the same fit row by row in one compiled call (stats/profile_calls.py), where
         # the background has a compiled row kernel; None: the numpy path below answers
         shared = n.strides[0] == 0
         out = _compiled().compiled_profile(model, n[0] if shared else n, f, s, b, theta, fixed,

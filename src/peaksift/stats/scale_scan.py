@@ -1,0 +1,233 @@
+r"""The global minimum over the mass scale when its reach exceeds the peak's width.
+
+Which piece when
+----------------
+* :func:`profile_global` -- :func:`~peaksift.stats.shape_profile.profile_with_nuisances`
+  plus, on the hypotheses whose mass scale can move the peak further than its own width,
+  the factors' exact curvature and further starts from a scan of the mass-scale factor;
+  the best fit of each hypothesis and whether a start other than the centre won.  The limits
+  with systematics use it (:mod:`peaksift.stats.limits_systematics`).
+* :func:`needs_scan` -- which hypotheses those are.
+
+Why
+---
+The signal's mass-scale factor :math:`k_m` moves the peak to :math:`m k_m`.  Where the
+mass scale's standard deviation :math:`\delta m` is comparable to the peak's width
+:math:`w` or larger, the NLL as a function of :math:`k_m` has a well at every upward
+fluctuation of the data within a few :math:`\delta m`: a fit started at
+:math:`k_m = 1` finds the nearest well, not the lowest one.  The profile likelihood is
+the lowest (Cowan, Cranmer, Gross, Vitells, EPJC 71 (2011) 1554, eq. 7), and a limit
+built from the nearest one is too strong (measured: a factor 1.3 to 3 on a peak of
+width 0.5 GeV at 150 GeV with a 1-10 % mass scale, ``docs/decisions/mass-scale-scan.md``).
+
+Method: on each such hypothesis the NLL is evaluated on a grid of :math:`k_m` over its
+whole range (steps of half the peak's width in mass), the other parameters held at the
+centre start's fit and the other factors' shapes at their centres (with a free signal, its
+yield at the one-step optimum of each grid point); the ``_STARTS`` lowest wells away from the centre fit's own are refitted with
+every parameter free, and the lowest fit of each hypothesis is kept.  Where
+:math:`3\,\delta m < w` a second well lies more than 18 units of NLL up the constraint
+(a shift of two widths is six standard deviations), so the scan is skipped: those
+hypotheses keep the single fit with the Fisher form of the factors' curvature, to the bit
+(there it converges: the curvature moved the demo's limits by 1e-8 at most).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from ..likelihood import SignalNuisances, binned_nll
+from .shape_profile import _fractions, profile_with_nuisances
+from .toys import ScanModel, bkg_fractions
+
+__all__ = ["needs_scan", "peak_width", "profile_global"]
+
+#: the scan runs where this many standard deviations of the mass scale exceed the width
+_REACH = 3.0
+#: grid step, in units of the peak's width (a well is about two widths across)
+_STEP = 0.5
+#: refitted wells per hypothesis besides the centre fit
+_STARTS = 2
+#: at most this many grid values x bins are held at once
+_CHUNK = 2_000_000
+#: a start other than the centre's counts as a different minimum when lower by this (NLL)
+_DIFFERENT = 1e-3
+
+
+def _column(params: Sequence[Any], names: Sequence[str], name: str, nb: int) -> np.ndarray:
+    i = list(names).index(name)
+    return np.broadcast_to(np.asarray(params[i], float).reshape(-1), (nb,)).copy()
+
+
+def peak_width(signal: Any, base: Sequence[Any], nb: int) -> np.ndarray:
+    """The peak's width per hypothesis: its ``sigma``, half its natural ``width`` (a half
+    width at half maximum), the larger of the two where it has both."""
+    names = list(signal.parameter_names)
+    w = np.zeros(nb)
+    if "sigma" in names:
+        w = np.maximum(w, _column(base, names, "sigma", nb))
+    if "width" in names:
+        w = np.maximum(w, 0.5 * _column(base, names, "width", nb))
+    return w
+
+
+def needs_scan(signal: Any, base: Sequence[Any], nuisances: SignalNuisances,
+               nb: int) -> np.ndarray:
+    """Hypotheses whose mass scale reaches beyond the peak's width (see the module guide)."""
+    if "mass_scale" not in nuisances.shape_active:
+        return np.zeros(nb, bool)
+    mass = _column(base, signal.parameter_names, "mass", nb)
+    return _REACH * nuisances.mass_scale * np.abs(mass) > peak_width(signal, base, nb)
+
+
+def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any],
+                nuisances: SignalNuisances, fit: dict[str, np.ndarray], rows: np.ndarray,
+                centers: np.ndarray | None, fixed_signal: bool
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """Starts ``(R, _STARTS, J)`` of the factors and of the yield ``(R, _STARTS)`` at the
+    lowest wells of the grid NLL in ``k_m`` of hypotheses ``rows``, away from the centre
+    fit's own well (NaN where a hypothesis has fewer)."""
+    names = nuisances.shape_active
+    jm = names.index("mass_scale")
+    lo, hi = nuisances.bounds("mass_scale")
+    nb = fit["s"].size
+    mass = _column(base, signal.parameter_names, "mass", nb)[rows]
+    width = peak_width(signal, base, nb)[rows]
+    span = (hi - lo) * np.abs(mass) / (_STEP * width)
+    grid = np.linspace(lo, hi, int(min(np.ceil(span.max()), 20_000)) + 1)
+    g = grid.size
+    k_out = np.full((rows.size, _STARTS, len(names)), np.nan)
+    s_out = np.full((rows.size, _STARTS), np.nan)
+    # the grid's signal fractions depend on the hypothesis and k_m only (the other
+    # factors at their centres here): once per distinct hypothesis, shared by its rows
+    cols = np.stack([np.broadcast_to(np.asarray(p, float).reshape(-1), (nb,))
+                     for p in base], axis=1)[rows]
+    inv = np.unique(cols, axis=0, return_inverse=True)[1]
+    inv = inv.reshape(-1)
+    first = rows[np.unique(inv, return_index=True)[1]]   # a row of each hypothesis
+    k = np.ones((first.size * g, len(names)))
+    k[:, jm] = np.tile(grid, first.size)
+    with np.errstate(all="ignore"):
+        f_all = _fractions(model, signal, base, names, nuisances, k,
+                           np.repeat(first, g)).reshape(first.size, g, -1)
+    per = max(1, _CHUNK // (g * model.used.size))
+    for c0 in range(0, rows.size, per):
+        r = rows[c0:c0 + per]
+        loc = np.arange(c0, c0 + r.size)
+        with np.errstate(all="ignore"):
+            f = f_all[inv[loc]]
+            nu_b = (fit["b"][r, None] * bkg_fractions(model, fit["theta"][r]))[:, None, :]
+            nr = n[r][:, None, :]
+            kg = np.repeat(fit["factors"][r], g, axis=0)
+            kg[:, jm] = np.tile(grid, r.size)
+            cen = None if centers is None else np.repeat(centers[r], g, axis=0)
+            cons = nuisances.constraint_terms(names, kg, cen)[0].reshape(r.size, g)
+            if fixed_signal:
+                s = np.broadcast_to(fit["s"][r, None], (r.size, g))
+                val = binned_nll(nr, s[..., None] * f + nu_b, saturated=False) + cons
+            else:  # the yield at the one-step optimum over the background (a start only)
+                nb_ = np.maximum(nu_b, 1e-300)
+                g1 = np.sum((nr / nb_ - 1.0) * f, axis=-1)
+                g2 = np.maximum(np.sum(nr * f * f / nb_**2, axis=-1), 1e-300)
+                s = g1 / g2
+                val = cons - 0.5 * g1 * g1 / g2
+        val = np.where(np.isfinite(val), val, np.inf)
+        # wells: grid points not above either neighbour (the ends: their one neighbour)
+        left = np.concatenate([np.full((r.size, 1), np.inf), val[:, :-1]], axis=1)
+        right = np.concatenate([val[:, 1:], np.full((r.size, 1), np.inf)], axis=1)
+        well = (val <= left) & (val <= right) & np.isfinite(val)
+        # the centre fit's own well is refitted already
+        own = np.abs(grid[None, :] - fit["factors"][r, jm][:, None]) * np.abs(
+            mass[loc, None]) < width[loc, None]
+        cand = np.where(well & ~own, val, np.inf)
+        order = np.argsort(cand, axis=1)[:, :_STARTS]
+        ok = np.isfinite(np.take_along_axis(cand, order, axis=1))
+        kk = np.repeat(fit["factors"][r][:, None, :], _STARTS, axis=1)
+        kk[:, :, jm] = grid[order]
+        k_out[loc] = np.where(ok[..., None], kk, np.nan)
+        s_out[loc] = np.where(ok, np.take_along_axis(s, order, axis=1), np.nan)
+    return k_out, s_out
+
+
+def _centre_fits(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
+                 nuisances: SignalNuisances, start: dict[str, np.ndarray],
+                 centers: np.ndarray | None, tol: float, fixed_signal: bool,
+                 scan: np.ndarray) -> dict[str, np.ndarray]:
+    """The fits from the centre start: with the factors' exact curvature on the scanned
+    hypotheses (where the Fisher form crawls), as before elsewhere (the same numbers)."""
+    if scan.all() or not scan.any():
+        return profile_with_nuisances(model, n, signal, base, nuisances, start=start,
+                                      centers=centers, tol=tol, fixed_signal=fixed_signal,
+                                      exact=bool(scan.any()))
+    nb = scan.size
+    n = np.asarray(n, float)
+
+    def part(rows: np.ndarray, exact: bool) -> dict[str, np.ndarray]:
+        def take(v: Any) -> Any:
+            return np.asarray(v)[rows] if np.ndim(v) and np.shape(v)[0] == nb else v
+
+        return profile_with_nuisances(
+            model, n[rows] if n.ndim == 2 else n, signal, [take(p) for p in base],
+            nuisances, start={k: take(v) for k, v in start.items()},
+            centers=None if centers is None else take(centers), tol=tol,
+            fixed_signal=fixed_signal, exact=exact)
+
+    rows_s, rows_c = np.flatnonzero(scan), np.flatnonzero(~scan)
+    a, b = part(rows_s, True), part(rows_c, False)
+    out: dict[str, Any] = {"names": a["names"]}
+    for key, va in a.items():
+        if key == "names":
+            continue
+        va = np.asarray(va)
+        full = np.empty((nb,) + va.shape[1:], va.dtype)
+        full[rows_s], full[rows_c] = va, np.asarray(b[key])
+        out[key] = full
+    return out
+
+
+def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
+                   nuisances: SignalNuisances, *, start: dict[str, np.ndarray],
+                   centers: np.ndarray | None = None, tol: float = 1e-8,
+                   fixed_signal: bool = False) -> dict[str, np.ndarray]:
+    """:func:`~peaksift.stats.shape_profile.profile_with_nuisances` with further starts
+    from a scan of the mass scale where it reaches beyond the peak's width (there also
+    with the factors' exact curvature; elsewhere the fits are those of before).
+
+    Arguments as there.  Returns its dict with the lowest fit of each hypothesis, plus
+    ``scanned`` (bool per hypothesis: the scan ran) and ``moved`` (a start other than the
+    centre gave a lower minimum by more than 1e-3: the profile in the mass scale has
+    several wells and the nearest is not the lowest)."""
+    nb = np.asarray(start["s"]).size
+    scan = needs_scan(signal, base, nuisances, nb)
+    fit = _centre_fits(model, n, signal, base, nuisances, start, centers, tol,
+                       fixed_signal, scan)
+    fit["scanned"] = scan
+    fit["moved"] = np.zeros(nb, bool)
+    rows = np.flatnonzero(scan & np.isfinite(fit["nll"]))
+    if rows.size == 0:
+        return fit
+    n2 = np.broadcast_to(np.asarray(n, float), (nb, model.used.size))
+    k_st, s_st = _grid_wells(model, n2, signal, base, nuisances, fit, rows, centers,
+                             fixed_signal)
+    have = np.isfinite(s_st) & np.all(np.isfinite(k_st), axis=2)   # (R, _STARTS)
+    if not have.any():
+        return fit
+    ri, si = np.nonzero(have)
+    src = rows[ri]     # the hypothesis of each extra start
+    base_rep = [np.asarray(p).reshape(-1, 1)[src] if np.ndim(p) else p for p in base]
+    more = profile_with_nuisances(
+        model, n2[src], signal, base_rep, nuisances,
+        start={"s": fit["s"][src] if fixed_signal else s_st[ri, si], "b": fit["b"][src],
+               "theta": fit["theta"][src], "factors": k_st[ri, si]},
+        centers=None if centers is None else np.asarray(centers)[src], tol=tol,
+        fixed_signal=fixed_signal, exact=True)
+    centre = fit["nll"].copy()
+    for j in np.argsort(-more["nll"]):   # the lowest of a hypothesis is written last
+        h = src[j]
+        if more["nll"][j] < fit["nll"][h]:
+            fit["moved"][h] |= more["nll"][j] < centre[h] - _DIFFERENT
+            for key in ("s", "s_error", "b", "theta", "nll", "factors", "converged"):
+                fit[key][h] = more[key][j]
+    return fit
