@@ -147,3 +147,49 @@ def test_numpy_reference_path_lands_on_the_same_point(monkeypatch):
     assert fast.valid and ref.valid
     dev = max(abs(fast.values[k] - ref.values[k]) / fast.errors[k] for k in fast.values)
     assert dev < 1e-5, dev
+
+
+def test_exact_second_derivative_rows():
+    """``likelihood.second_rows`` against central differences (step 1e-4) of the truncated
+    normal CDF written with ``scipy.stats.norm.cdf`` and of the truncated power law's CDF
+    written here, to 1e-6 of the largest entry (the differences' own error ~1e-8)."""
+    from peaksift.likelihood.second_rows import gaussian_phi, gaussian_second, powerlaw_second
+
+    lo, hi = 100.0, 300.0
+    x = np.linspace(lo, hi, 401)
+
+    def cdf(m, s):
+        c = stats.norm.cdf(x, m, s)
+        return (c - c[0]) / (c[-1] - c[0])
+
+    for m, s in ((180.0, 7.0), (110.0, 25.0), (320.0, 15.0)):  # the last: the peak above
+        p = np.array([m, s])
+        h = 1e-4 * s
+        first = [(cdf(*(p + h * e)) - cdf(*(p - h * e))) / (2 * h) for e in np.eye(2)]
+        phi = np.empty(x.size)
+        gaussian_phi(x, m, s, phi)
+        for a in range(2):
+            for b in range(a, 2):
+                eb = np.eye(2)[b] * h
+                ref = ((cdf(*(p + np.eye(2)[a] * h + eb)) - cdf(*(p + np.eye(2)[a] * h - eb))
+                        - cdf(*(p - np.eye(2)[a] * h + eb)) + cdf(*(p - np.eye(2)[a] * h - eb)))
+                       / (4 * h * h))
+                out = np.empty(x.size)
+                assert gaussian_second(x, m, s, lo, hi, cdf(m, s), first[a], first[b], a, b,
+                                       phi, out)
+                assert np.max(np.abs(out - ref)) < 1e-6 * np.max(np.abs(ref)), (m, s, a, b)
+
+    c0 = 0.5 * (lo + hi)
+    lx = np.log(x / c0)
+
+    def pcdf(k):
+        q = x ** (1.0 - k)
+        return (q - q[0]) / (q[-1] - q[0])
+
+    for k in (3.5, 0.4):
+        h = 1e-4
+        out = np.empty(x.size)
+        ck = (pcdf(k + h) - pcdf(k - h)) / (2 * h)
+        ref = (pcdf(k + h) - 2 * pcdf(k) + pcdf(k - h)) / (h * h)
+        assert powerlaw_second(lx, k, lx[0], lx[-1], pcdf(k), ck, out)
+        assert np.max(np.abs(out - ref)) < 1e-5 * np.max(np.abs(ref)), k

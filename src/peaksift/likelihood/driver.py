@@ -33,6 +33,7 @@ from numba import njit
 from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
 from .kernels import poisson_pass, solve_small
 from .poisson import WALL_FRACTION, WALL_MU
+from .second_rows import gaussian_phi, gaussian_second, powerlaw_second
 
 __all__ = ["compiled_fisher_scoring", "compiled_observed_hessian", "problem_of"]
 
@@ -285,7 +286,7 @@ def _hessian(prob, full, free, x, steps, lower, upper, hess,
     False where a kernel declines (the Python path then answers).  ``evaluated``: the
     problem's buffers hold the evaluation at ``x`` already (the minimiser's last point),
     which is then not made again (the same numbers)."""
-    (_code, _edata, _escal, pstart, rstart, _yidx, yfree, value_row, drow, dcomp, dfree, bins,
+    (code, edata, escal, pstart, rstart, _yidx, yfree, value_row, drow, dcomp, dfree, bins,
      n, s, unit, floor, cdf, mu, jac, g, fisher, yields) = prob
     if evaluated:
         v = full.copy()
@@ -316,6 +317,8 @@ def _hessian(prob, full, free, x, steps, lower, upper, hess,
             hess[a, b] = acc
             hess[b, a] = acc
     ne = cdf.shape[1]
+    second = np.empty(ne)
+    phi = np.empty(ne)
     hi_rows = np.empty((cdf.shape[0], ne))
     lo_rows = np.empty((cdf.shape[0], ne))
     for q in range(drow.size):
@@ -333,6 +336,32 @@ def _hessian(prob, full, free, x, steps, lower, upper, hess,
                 t += r[j] * (cdf[row, i + 1] - cdf[row, i])
             hess[yfree[k], rj] += t
             hess[rj, yfree[k]] += t
+        if code[k] <= 1:  # a Gaussian or a power law: exact second derivatives
+            r0 = rstart[k]
+            pa = row - r0 - 1
+            if code[k] == 0:
+                gaussian_phi(edata[k], v[pstart[k]], v[pstart[k] + 1], phi)
+            for q2 in range(drow.size):  # each pair of the component's free shape
+                pb = drow[q2] - r0 - 1      # parameters once (symmetrised below)
+                if dcomp[q2] != k or pb < pa:
+                    continue
+                if code[k] == 0:
+                    ok = gaussian_second(edata[k], v[pstart[k]], v[pstart[k] + 1], escal[k, 0],
+                                         escal[k, 1], cdf[r0], cdf[r0 + 1 + pa],
+                                         cdf[r0 + 1 + pb], pa, pb, phi, second)
+                else:
+                    ok = powerlaw_second(edata[k], v[pstart[k]], escal[k, 0], escal[k, 1],
+                                         cdf[r0], cdf[r0 + 1], second)
+                if not ok:
+                    return False
+                acc = 0.0
+                for j in range(nb):
+                    i = j if contiguous else bins[j]
+                    acc += r[j] * (y * (second[i + 1] - second[i]))
+                hess[dfree[q2], rj] += acc
+                if pb != pa:
+                    hess[rj, dfree[q2]] += acc
+            continue
         p = v[ip]
         h = abs(steps[rj])
         if not (math.isfinite(h) and h > 0.0):

@@ -17,8 +17,17 @@ from .migrad import migrad
 from .minimize import _hold, _solve, covariance, fisher_scoring, held_at_bounds
 from .minimum import Minimum, at_bounds
 
-__all__ = ["EDM_MIGRAD", "NEWTON_RISE", "NEWTON_STEP", "NEWTON_STEPS", "POLISH_GAIN", "POLISH_STEPS", "POLISH_TOL",
-           "refine"]
+__all__ = [
+    "EDM_MIGRAD",
+    "NEWTON_RISE",
+    "NEWTON_STEP",
+    "NEWTON_STEPS",
+    "POLISH_GAIN",
+    "POLISH_STEPS",
+    "POLISH_TOL",
+    "REHESSE",
+    "refine",
+]
 
 
 #: the compiled Newton stage (imported on first use: importing the likelihood loads no numba)
@@ -60,6 +69,15 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
                 x1, f1, g, _ = _newton(cost, x0, f0, g0, hess, cov, lower, upper)
             except (ArithmeticError, np.linalg.LinAlgError, ValueError):
                 x1, f1, g = x0, f0, None
+            if np.max(np.abs(x1 - x0) / np.sqrt(np.diagonal(cov))) > REHESSE:
+                # from a MIGRAD minimum the stage may go ~1e-2 of an error: the Hessian there
+                # is then ~1e-3 off the minimum's on a weak peak (third derivatives)
+                try:
+                    hess1 = cost.observed_hessian(x1, h, lower, upper)
+                    cov, posdef = covariance(hess1)
+                    g = None
+                except (ArithmeticError, np.linalg.LinAlgError, ValueError):
+                    pass
             x0, f0 = x1, f1
             if mo.method == "iminuit-migrad" and not mo.converged and not mo.call_limit:
                 if g is None:
@@ -83,6 +101,9 @@ NEWTON_STEPS = 6
 #: (~1e-8 with 5e5 events), while the step itself, from the gradient (a sum of small
 #: terms), is exact to ~1e-7 of an error
 NEWTON_RISE = 1e-7
+#: the Hessian (and the covariance) is made again at the stage's end when the stage moved a
+#: value by more than this fraction of its error
+REHESSE = 1e-3
 
 
 def _newton(cost: Any, x: np.ndarray, f: float, g: np.ndarray | None, hess: np.ndarray,
