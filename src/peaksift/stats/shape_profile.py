@@ -160,7 +160,11 @@ def profile_with_nuisances(model: ScanModel, n: Any, signal: Any, base_params: S
         return nuisances.constraint_terms(names, kv, None if cen is None else cen[rows])
 
     def total(sv, kv, bv, g, rows):
-        f = _fractions(model, signal, base_params, names, nuisances, kv, rows)
+        # a trial step may move the peak so far out of the window that its integral there
+        # is 0 (0/0 fractions): that row's NLL is NaN and the minimiser refuses the step,
+        # so numpy's warning would only alarm the user
+        with np.errstate(invalid="ignore", divide="ignore"):
+            f = _fractions(model, signal, base_params, names, nuisances, kv, rows)
         nu = sv[:, None] * f + bv[:, None] * g
         val = binned_nll(n[rows], nu, saturated=False) + cons(kv, rows)[0]
         return np.where(np.any(nu <= 0, axis=1), np.inf, val), f
