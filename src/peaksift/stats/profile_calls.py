@@ -154,25 +154,9 @@ def scan_table(code, e1, e2, c1, c2, used, scale, n, sat, f, b0, th0, lo, hi, nl
     ``plain`` False when a row's 2 (nll_b - nll) with s > 0 is zero, NaN or infinite,
     where numpy's rules for signed zeros and NaN decide: the caller computes q0 as before.
     The ~12 numpy calls of the table cost ~40 us of a 100-bin scan with cold caches."""
-    nb, nbin = f.shape
-    x = np.empty((nb, 3))
-    for r in range(nb):
-        x[r, 0] = 0.0
-        x[r, 1] = b0
-        x[r, 2] = th0
-    one_start = nb > 1 and not math.isnan(th0)
-    lower = np.array((-math.inf, -math.inf, lo))
-    upper = np.array((math.inf, math.inf, hi))
-    d2 = np.empty((1 if one_start else nb, nbin))
-    nll = np.empty(nb)
-    conv = np.zeros(nb, np.bool_)
-    hess = np.zeros((nb, 3, 3))
-    s_err = np.full(nb, np.nan)
-    status = profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, np.zeros(nb),
-                          lower, upper, steps, 12, 1e-8, tol, 1e-9, d2, nll, conv, hess,
-                          s_err)
-    s = np.empty(nb)
-    b = np.empty(nb)
+    status, s, s_err, b, _, nll, conv, _, _ = scan_rows(
+        code, e1, e2, c1, c2, used, scale, n, sat, f, b0, th0, lo, hi, steps, tol)
+    nb = s.size
     q0 = np.empty(nb)
     z = np.empty(nb)
     neg = np.empty(nb)
@@ -181,8 +165,6 @@ def scan_table(code, e1, e2, c1, c2, used, scale, n, sat, f, b0, th0, lo, hi, nl
     top = -math.inf
     unconverged = 0
     for r in range(nb):
-        s[r] = x[r, 0]
-        b[r] = x[r, 1]
         if not conv[r]:
             unconverged += 1
         q = 0.0
