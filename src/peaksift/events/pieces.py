@@ -135,7 +135,11 @@ def _read_piece(info: _FileInfo, sel: tuple, row_groups: Sequence[int], first_ev
         return _Piece(0)
     pf = info.handle if info.handle is not None else _open(info.path)
     try:
-        table = pf.read_row_groups(list(row_groups), columns=paths, use_threads=True)
+        # Arrow's decoding pool only where it has more than one thread: a forked worker
+        # (one thread, set by its parent before the fork) reads in its own thread, so it
+        # never waits on a pool thread that did not survive the fork (a hang seen once)
+        table = pf.read_row_groups(list(row_groups), columns=paths,
+                                   use_threads=pa.cpu_count() > 1)
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise InputError(
             f"cannot read row groups {list(row_groups)} of '{info.path}' "
