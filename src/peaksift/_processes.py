@@ -236,8 +236,9 @@ class Terminated(KeyboardInterrupt):
 def sigterm_as_interrupt() -> Iterator[None]:
     """While inside: SIGTERM raises :class:`Terminated` in the main thread (once: a second
     SIGTERM during the clean-up is ignored, so the clean-up can finish).  A SIGTERM that
-    arrives inside a native callback is delivered when the callback has returned (SIGALRM
-    retries it: the context owns SIGALRM while inside).  Outside the main
+    arrives where Python drops exceptions -- a native callback, a weak-reference callback,
+    a ``__del__`` -- is delivered when that code has returned (SIGALRM retries it: the
+    context owns SIGALRM and ``sys.unraisablehook`` while inside).  Outside the main
     thread this does nothing (Python delivers signals to the main thread only)."""
     import threading
 
@@ -265,12 +266,23 @@ def sigterm_as_interrupt() -> Iterator[None]:
         if pending[0]:  # only our own retry: any other SIGALRM inside is not a SIGTERM
             handler(signum, frame)
 
+    def dropped(info: Any) -> None:
+        # Python drops an exception raised in a weak-reference callback or a __del__ (a CI
+        # run lost its SIGTERM inside numba's type-cache callback and ran on): ask again
+        if isinstance(info.exc_value, Terminated):
+            pending[0] = True
+            signal.setitimer(signal.ITIMER_REAL, _RETRY)
+            return
+        old_hook(info)
+
     old = signal.signal(signal.SIGTERM, handler)
     old_alarm = signal.signal(signal.SIGALRM, retry)
+    old_hook, sys.unraisablehook = sys.unraisablehook, dropped
     try:
         yield
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
+        sys.unraisablehook = old_hook
         signal.signal(signal.SIGALRM, old_alarm)
         signal.signal(signal.SIGTERM, old)
 
