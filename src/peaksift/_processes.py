@@ -191,9 +191,13 @@ def _pool_class() -> type:
 
     class HeldPool(ProcessPoolExecutor):
         """A ProcessPoolExecutor whose submits (where it forks or spawns its workers)
-        run with SIGTERM and Ctrl-C held (:func:`fork_held`)."""
+        run with SIGTERM and Ctrl-C held (:func:`fork_held`) until every worker is up;
+        later submits start none (a full pool does not replace a worker that died: it
+        breaks) and skip the hold's system calls."""
 
         def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> Any:
+            if len(getattr(self, "_processes", None) or ()) >= self._max_workers:
+                return super().submit(fn, *args, **kwargs)
             with fork_held():
                 return super().submit(fn, *args, **kwargs)
 
