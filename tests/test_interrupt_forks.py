@@ -21,7 +21,7 @@ import time
 import pytest
 
 from peaksift import _processes
-from peaksift._processes import fork_held, process_pool, quiet_fork, stop_pool
+from peaksift._processes import process_pool, quiet_fork, signals_held, stop_pool
 
 pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="forks")
 
@@ -70,14 +70,14 @@ def _child_sets_up_late(delay: float) -> None:
 
 
 def test_a_child_sent_ctrl_c_before_its_signal_setup_carries_on():
-    """A child forked under ``fork_held`` starts with SIGINT blocked; ``worker_start``
+    """A child forked under ``signals_held`` starts with SIGINT blocked; ``worker_start``
     ignores it, then unblocks it, so a Ctrl-C that reached the child before (the whole
     foreground group gets it) is discarded: the child ends normally (exit code 0), where
     without the block it would raise KeyboardInterrupt in the copy of this stack and exit 1
     with a traceback."""
     ctx = multiprocessing.get_context("fork")
     proc = ctx.Process(target=_child_sets_up_late, args=(0.5,), daemon=True)
-    with quiet_fork(), fork_held():
+    with quiet_fork(), signals_held():
         proc.start()
     os.kill(proc.pid, signal.SIGINT)  # long before the child's worker_start
     proc.join(timeout=60)

@@ -17,8 +17,9 @@
   :func:`terminated` says whether it came (when other code turned it into its own error).
 * :func:`sigterm_held` -- around a fork: SIGTERM waits until the child has set up its
   signals.
-* :func:`fork_held` -- :func:`sigterm_held` and :func:`interrupt_held` together, around
-  every fork of ours (the submits of :func:`process_pool`'s pools, the stages beside).
+* :func:`signals_held` -- :func:`sigterm_held` and :func:`interrupt_held` together, around
+  every fork of ours (the submits of :func:`process_pool`'s pools, the stages beside) and
+  the moves of a run's outputs into place.
 * :func:`interrupt_held` -- around a start-up that forks in threads of its own (a local
   Dask cluster): Ctrl-C waits until the start-up is over, so the caller can close what
   started, and the children never see it.
@@ -40,10 +41,22 @@ import warnings
 from collections.abc import Callable, Iterator
 from typing import Any
 
-__all__ = ["WORKER_ENV", "Terminated", "arrow_threads_from_env", "die_with_parent",
-           "fork_held", "interrupt_held", "process_pool", "quiet_fork", "resolve_start_method",
-           "sigterm_as_interrupt",
-           "sigterm_held", "stop_pool", "terminated", "worker_start"]
+__all__ = [
+    "WORKER_ENV",
+    "Terminated",
+    "arrow_threads_from_env",
+    "die_with_parent",
+    "interrupt_held",
+    "process_pool",
+    "quiet_fork",
+    "resolve_start_method",
+    "signals_held",
+    "sigterm_as_interrupt",
+    "sigterm_held",
+    "stop_pool",
+    "terminated",
+    "worker_start",
+]
 
 #: Environment of the worker processes we start (unless the user set these): they run one
 #: process per core, so Arrow's decoding threads and BLAS threads would only contend with
@@ -142,8 +155,9 @@ def interrupt_held() -> Iterator[None]:
 
 
 @contextlib.contextmanager
-def fork_held() -> Iterator[None]:
-    """Around a fork of ours (:func:`process_pool`'s submits, the search's stages beside):
+def signals_held() -> Iterator[None]:
+    """Around a fork of ours (:func:`process_pool`'s submits, the search's stages beside)
+    and a step that must not stop half-way (the renames that put a run's outputs in place):
     SIGTERM and Ctrl-C both wait until the way out (:func:`sigterm_held`,
     :func:`interrupt_held`), and the child starts with both blocked until
     :func:`worker_start`.  Ctrl-C reaches the whole process group: without the block, a
@@ -175,7 +189,7 @@ def process_pool(size: int, start_method: str = "auto",
     :func:`resolve_start_method`).  Its processes start at the submits: wrap the first ones
     in :func:`quiet_fork`.  Every worker starts with :func:`worker_start` (then the caller's
     ``initializer``), and every submit that may start one holds SIGTERM and Ctrl-C
-    (:func:`fork_held`), so a SIGTERM between a fork and the worker's own signal set-up
+    (:func:`signals_held`), so a SIGTERM between a fork and the worker's own signal set-up
     ends the worker instead of running the caller's handler in it, and a Ctrl-C meanwhile
     is raised once every worker started is on the pool's list (so stopped)."""
     import functools
@@ -191,14 +205,14 @@ def _pool_class() -> type:
 
     class HeldPool(ProcessPoolExecutor):
         """A ProcessPoolExecutor whose submits (where it forks or spawns its workers)
-        run with SIGTERM and Ctrl-C held (:func:`fork_held`) until every worker is up;
+        run with SIGTERM and Ctrl-C held (:func:`signals_held`) until every worker is up;
         later submits start none (a full pool does not replace a worker that died: it
         breaks) and skip the hold's system calls."""
 
         def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> Any:
             if len(getattr(self, "_processes", None) or ()) >= self._max_workers:
                 return super().submit(fn, *args, **kwargs)
-            with fork_held():
+            with signals_held():
                 return super().submit(fn, *args, **kwargs)
 
     return HeldPool

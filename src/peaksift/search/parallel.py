@@ -36,9 +36,9 @@ from typing import Any
 from .._lean_imports import matplotlib_without_set_docs, scipy_special
 from .._processes import (
     die_with_parent,
-    fork_held,
     quiet_fork,
     resolve_start_method,
+    signals_held,
     worker_start,
 )
 
@@ -104,7 +104,7 @@ class Beside:
         self._conn, child_end = ctx.Pipe(duplex=False)
         self._proc = ctx.Process(target=_beside_child, daemon=True,
                                  args=(child_end, os.getpid(), fn, args, kw))
-        with quiet_fork(), fork_held():  # the child unblocks both in worker_start
+        with quiet_fork(), signals_held():  # the child unblocks both in worker_start
             self._proc.start()
         child_end.close()
 
@@ -180,7 +180,7 @@ class FigureWorker:
         self._proc = ctx.Process(target=_figure_child, daemon=True,
                                  args=(self._queue, child_end, os.getpid(),
                                        tuple(kw.get("formats") or ())))
-        with quiet_fork(), fork_held():  # the child unblocks both in worker_start
+        with quiet_fork(), signals_held():  # the child unblocks both in worker_start
             self._proc.start()
         child_end.close()
 
