@@ -19,9 +19,9 @@ import time
 
 import pytest
 
-from peaksift import execution
+from peaksift import _stall, execution
 from peaksift.errors import ExecutionError
-from peaksift.execution import _local, _stall
+from peaksift.execution import _local
 
 pytestmark = pytest.mark.skipif(
     not sys.platform.startswith("linux") or _stall.snapshot(os.getpid()) is None,
@@ -169,3 +169,49 @@ def test_the_watch_keeps_to_peaksift_functions():
 
     assert _stall.watched(run_toy_batch) and _stall.watched(functools.partial(run_toy_batch))
     assert not _stall.watched(busy) and not _stall.watched(time.sleep)
+
+
+# ------------------------------------------------------------ stages beside a search
+_PARENT = os.getpid()
+
+
+def _doubled_but_stuck_in_a_child(x: int) -> int:
+    if os.getpid() != _PARENT:  # in the forked child: waits forever
+        deadlock(0.0)
+    return 2 * x
+
+
+def test_a_stuck_stage_beside_is_stopped_and_computed_here(monkeypatch, caplog):
+    from peaksift.search import parallel
+
+    if not parallel.forking():
+        pytest.skip("stages are not forked here")
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "2")
+    job = parallel.Beside(_doubled_but_stuck_in_a_child, 21)
+    pid = job._proc.pid
+    with caplog.at_level("WARNING", logger="peaksift.search"):
+        assert job.result() == 42
+    assert f"pid {pid}" in caplog.text and "stuck" in caplog.text
+    assert pid not in _pool_children()
+
+
+def test_a_stuck_figure_process_is_stopped_and_its_figures_drawn_here(monkeypatch, tmp_path):
+    from peaksift import plotting
+    from peaksift.search import parallel
+
+    if not parallel.forking():
+        pytest.skip("stages are not forked here")
+
+    def figures(result, outdir, names, **kw):
+        if os.getpid() != _PARENT:  # a drawer (the first or the one it forked)
+            deadlock(0.0)
+        return {n: outdir / f"{n}.png" for n in names}
+
+    monkeypatch.setattr(plotting, "search_figures", figures)
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "2")
+    worker = parallel.FigureWorker(tmp_path)
+    pid = worker._proc.pid
+    worker.draw(["spectrum", "scan"], None)
+    assert worker.finish() == {"spectrum": tmp_path / "spectrum.png",
+                               "scan": tmp_path / "scan.png"}
+    assert pid not in _pool_children()

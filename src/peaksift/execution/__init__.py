@@ -79,14 +79,14 @@ Guarantees
   :class:`~peaksift.errors.ExecutionError` naming the chunk; so does a worker of the
   ``processes`` engine that is stuck (on Linux: every thread of it waiting on a lock, with
   no CPU used, for ``PEAKSIFT_STALL_SECONDS``, default 120 s; a slow task is never
-  stopped, see ``_stall.py``).  ``KeyboardInterrupt`` stops the workers, closes what was
+  stopped, see ``peaksift._stall``).  ``KeyboardInterrupt`` stops the workers, closes what was
   started and propagates.
 
 Where things are: ``_chunk.py`` (the map step), ``_shared.py`` (the map step of several
 selections on one read), ``_collect.py`` (plan, run, reduce),
 ``_engines.py`` (engine checks, dispatch, :func:`map_tasks`), ``_local.py`` (serial and
-process-pool runners, worker start, dead workers), ``_stall.py`` (a stuck worker told
-from a slow one), ``_dask.py`` (the Dask engine).
+process-pool runners, worker start, dead and stuck workers), ``_dask.py`` (the Dask
+engine).
 """
 
 from __future__ import annotations

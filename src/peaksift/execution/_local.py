@@ -21,8 +21,8 @@ from collections.abc import Callable, Iterator, Mapping, Sequence
 from typing import Any
 
 from .._processes import WORKER_ENV, process_pool, quiet_fork, stop_pool, worker_start
+from .._stall import LOOK, StallWatch, watched
 from ..errors import ExecutionError, PeaksiftError
-from ._stall import LOOK, StallWatch, watched
 
 #: Chunks allowed in flight (running, queued or waiting to be reduced) per worker.
 _INFLIGHT_PER_WORKER = 2
@@ -240,7 +240,7 @@ _STACKS_SIGNAL = signal.SIGUSR1 if hasattr(signal, "SIGUSR1") else signal.SIGTER
 def _result(fut: Any, watch: StallWatch | None, track: Any, started: dict[int, int],
             i: int, pending: dict[int, Any], n: int, describe: Callable[[int], str]) -> Any:
     """``fut.result()`` of task ``i``, looking every few seconds that the workers running
-    it and the ``pending`` tasks are not stuck (:mod:`._stall`); a stuck one is an
+    it and the ``pending`` tasks are not stuck (:mod:`peaksift._stall`); a stuck one is an
     :class:`ExecutionError` naming its task."""
     from concurrent.futures import TimeoutError as WaitTimeout
 

@@ -1,4 +1,5 @@
-"""A worker process that waits forever, told apart from a slow one (Linux).
+"""A worker process that waits forever, told apart from a slow one (Linux; base layer:
+no peaksift imports).
 
 A forked worker can inherit a lock that a thread of its parent held at the fork, or wait
 on a thread that did not survive the fork (a CI run hung for good in Arrow's reader so).
