@@ -116,7 +116,7 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
             if "spurious" in str(note):
                 add("background_model", str(note))
         # limits whose profile in the mass scale took a well away from the nearest one
-        # (stats.limits_systematics._several_wells): they respond to data elsewhere
+        # (stats.scale_scan.several_minima_note): they respond to data elsewhere
         for note in (sy.get("limits") or {}).get("notes") or []:
             if "several minima" in str(note):
                 add("limits", str(note))

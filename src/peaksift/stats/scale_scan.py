@@ -44,7 +44,7 @@ from ..likelihood import SignalNuisances
 from .shape_profile import _fractions, profile_with_nuisances
 from .toys import ScanModel, bkg_fractions
 
-__all__ = ["needs_scan", "peak_width", "profile_global"]
+__all__ = ["needs_scan", "peak_width", "profile_global", "several_minima_note"]
 
 #: the scan runs where this many standard deviations of the mass scale exceed the width
 _REACH = 3.0
@@ -192,9 +192,11 @@ def _group_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[An
         left = np.concatenate([np.full((r.size, 1), np.inf), val[:, :-1]], axis=1)
         right = np.concatenate([val[:, 1:], np.full((r.size, 1), np.inf)], axis=1)
         well = (val <= left) & (val <= right) & np.isfinite(val)
-        # the centre fit's own well is refitted already
+        # the centre fit's own well is refitted already: the grid's wells within a step
+        # of it (not within a width: on bins about as wide as the peak the fit can stop
+        # in a shallow dip on its well's side, 0.2 in NLL up, half a width from its floor)
         own = np.abs(grid[None, :] - fit["factors"][r, jm][:, None]) * np.abs(
-            mass[loc, None]) < width[loc, None]
+            mass[loc, None]) <= _STEP * width[loc, None]
         cand = np.where(well & ~own, val, np.inf)
         order = np.argsort(cand, axis=1)[:, :_STARTS]
         ok = np.isfinite(np.take_along_axis(cand, order, axis=1))
@@ -284,3 +286,15 @@ def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
             for key in ("s", "s_error", "b", "theta", "nll", "factors", "converged"):
                 fit[key][h] = more[key][j]
     return fit
+
+
+def several_minima_note(masses: np.ndarray, size: float, what: str) -> str:
+    """The note where the profile in the mass scale had a lower well than the nearest:
+    ``what`` (the limits, q0) there responds to the data further from the mass than the
+    peak's width."""
+    where = ", ".join(f"{m:g}" for m in masses[:6]) + (", ..." if masses.size > 6 else "")
+    return (f"mass scale with several minima at {masses.size} mass(es) ({where}): its "
+            f"{100 * size:.3g}% moves the peak further than its width, and the lowest minimum "
+            "of the profile likelihood (found by a scan of the mass scale) is not the nearest;"
+            f" the {what} there respond{'s' if what == 'q0' else ''} to the data within "
+            f"+-{300 * size:.3g}% of the mass (3 standard deviations of the mass scale)")

@@ -50,7 +50,8 @@ import numpy as np
 
 from ..likelihood import SignalNuisances
 from .cls import _BANDS, _floor_reach, _Problem, _unconditional
-from .shape_profile import TOY_TOLERANCE, _fractions, profile_with_nuisances
+from .scale_scan import profile_global
+from .shape_profile import TOY_TOLERANCE, _fractions
 from .toy_limits import (
     _ToyLimitTask,
     grid_start,
@@ -90,10 +91,10 @@ class _ShapeProblem(_Problem):
         names = nuis.shape_active
         rows = np.arange(s.size)
         cen = self.centers
-        rn = profile_with_nuisances(self.model, self.counts, self.signal, self.base, nuis,
-                                    start={"s": s, "b": self.b, "theta": self.theta,
-                                           "factors": cen if self.k is None else self.k},
-                                    centers=cen, fixed_signal=True, tol=TOY_TOLERANCE)
+        rn = profile_global(self.model, self.counts, self.signal, self.base, nuis,
+                            start={"s": s, "b": self.b, "theta": self.theta,
+                                   "factors": cen if self.k is None else self.k},
+                            centers=cen, fixed_signal=True, tol=TOY_TOLERANCE)
         self.k = rn["factors"]
         return rn, _fractions(self.model, self.signal, self.base, names, nuis, self.k, rows)
 
@@ -163,9 +164,9 @@ class _Ensemble:
         th = np.repeat(model.theta[None, :], t, axis=0)
         r = profile_signal(model, counts, f, theta_start=th, b_start=np.full(t, model.bkg_yield))
         _, _, nll_zero = fit_background(model, counts, th)
-        rn = profile_with_nuisances(model, counts, self.task.signal, self.base,
-                                    self.task.nuisances, start={**r, "factors": centers},
-                                    centers=centers, tol=TOY_TOLERANCE)
+        rn = profile_global(model, counts, self.task.signal, self.base, self.task.nuisances,
+                            start={**r, "factors": centers}, centers=centers,
+                            tol=TOY_TOLERANCE)
         better = rn["nll"] < r["nll"]
         s_hat = np.where(better, rn["s"], r["s"])
         return s_hat, np.minimum(np.minimum(rn["nll"], r["nll"]), nll_zero), nll_zero
