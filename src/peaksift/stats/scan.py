@@ -112,8 +112,10 @@ def scan(
     nuisances : SignalNuisances or mapping, optional
         Relative sizes of the signal's mass-scale and resolution nuisance parameters
         (:class:`peaksift.likelihood.SignalNuisances`), profiled at every hypothesis and in
-        every toy of :meth:`ScanResult.global_significance` (:mod:`.shape_profile`).  Every
-        size 0 (or None): exactly the scan without them.
+        every toy of :meth:`ScanResult.global_significance` (:mod:`.shape_profile`); where
+        the mass scale moves the peak further than its width, the lowest well of the
+        profile in it (:mod:`.scale_scan`; ``notes`` names the masses where it was not
+        the nearest).  Every size 0 (or None): exactly the scan without them.
     nuisance_toys : "fixed" or "sampled"
         Toys keep the constraints' centres at their nominal values (conditional ensemble),
         or draw them per toy from the constraints (unconditional ensemble).

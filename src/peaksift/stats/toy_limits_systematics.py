@@ -31,7 +31,10 @@ EPJC 71 (2011) 1554, sec. 2 and eq. 16; Read, J. Phys. G 28 (2002) 2693; Junk, N
   (the envelope's function without signal; the shape factors and :math:`t` do not act
   there and sit at the data's values, around which their global observables are drawn);
 * each toy's :math:`\tilde q_\mu` uses its own global observables as the constraints'
-  centres.
+  centres;
+* where the mass scale moves the peak further than its width, each fit (free and at every
+  mu, of the data and of every toy) takes the lowest well of the profile in the mass scale
+  (:func:`peaksift.stats.scale_scan.profile_global`), as the asymptotic limits do.
 
 CLs+b and CLb, the pooled importance weights, ties, the grid and the expected band are
 those of :mod:`peaksift.stats.toy_limits`: the densities of the two generating models now
