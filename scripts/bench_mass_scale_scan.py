@@ -15,6 +15,7 @@ each with a mass scale of 3 % (scanned: 3 x 4.5 GeV beyond the width) and of 0.1
 tree in alternate rounds (the same load).
 
     python scripts/bench_mass_scale_scan.py [--runs 3] [--toys 200] [--baseline SRC]
+        [--cases scan,toys,toylimit] [--scales 0.03,0.001]
 """
 
 from __future__ import annotations
@@ -83,6 +84,7 @@ def main() -> None:
     ap.add_argument("--toys", type=int, default=200)
     ap.add_argument("--baseline", default=None, help="another tree's src/ (alternate rounds)")
     ap.add_argument("--cases", default="scan,toys,toylimit")
+    ap.add_argument("--scales", default="0.03,0.001")
     a = ap.parse_args()
     trees = {"this": str(REPO / "src")}
     if a.baseline:
@@ -92,7 +94,7 @@ def main() -> None:
     values: dict = {}
     for _ in range(a.runs):
         for case in a.cases.split(","):
-            for scale in (0.03, 0.001):
+            for scale in map(float, a.scales.split(",")):
                 for name, src in trees.items():
                     env = {**os.environ, "PYTHONPATH": src}
                     out = subprocess.run([sys.executable, "-c", CHILD, case, str(scale),
