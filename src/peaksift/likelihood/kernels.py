@@ -261,9 +261,11 @@ class FusedBinned:
         compiled problem's static ones (which do not depend on the bins) are shared."""
         out = object.__new__(type(self))  # copy.copy's, without its dispatch (~7 us each)
         out.__dict__.update(self.__dict__)
-        lay = out.layout = object.__new__(type(self.layout))
-        lay.__dict__.update(self.layout.__dict__)
-        lay.bins = out.bins = _used_bins(self.cdf.shape[1] - 1, mask)
+        if not (mask is None and self.bins.size == self.cdf.shape[1] - 1):
+            lay = out.layout = object.__new__(type(self.layout))
+            lay.__dict__.update(self.layout.__dict__)
+            lay.bins = out.bins = _used_bins(self.cdf.shape[1] - 1, mask)
+        # (else every bin, as this one's: its layout is the same, shared)
         out.n, out.s, out.unit = n, s, bool(unit)
         out._buffers(self.g.size, self.cdf.shape[1])
         return out

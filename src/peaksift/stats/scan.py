@@ -35,10 +35,11 @@ from ..likelihood import (
     SignalNuisances,
 )
 from ..likelihood.poisson import use_compiled
+from .scale_scan import profile_global, several_minima_note
 from .scan_inputs import ASK, _prepare_model, _signal_params, _Spectrum
 from .scan_prepared import handed_out_model, kept_entry, model_parts, prepared_key
 from .scan_result import ScanResult, fresh_result
-from .shape_profile import profile_with_nuisances, with_nuisances
+from .shape_profile import with_nuisances
 from .significance import p_from_q0, z_from_q0
 from .toy_model import _compiled, _spectrum_saturated
 from .toys import ScanModel, fit_background, profile_signal
@@ -112,8 +113,10 @@ def scan(
     nuisances : SignalNuisances or mapping, optional
         Relative sizes of the signal's mass-scale and resolution nuisance parameters
         (:class:`peaksift.likelihood.SignalNuisances`), profiled at every hypothesis and in
-        every toy of :meth:`ScanResult.global_significance` (:mod:`.shape_profile`).  Every
-        size 0 (or None): exactly the scan without them.
+        every toy of :meth:`ScanResult.global_significance` (:mod:`.shape_profile`); where
+        the mass scale moves the peak further than its width, the lowest well of the
+        profile in it (:mod:`.scale_scan`; ``notes`` names the masses where it was not
+        the nearest).  Every size 0 (or None): exactly the scan without them.
     nuisance_toys : "fixed" or "sampled"
         Toys keep the constraints' centres at their nominal values (conditional ensemble),
         or draw them per toy from the constraints (unconditional ensemble).
@@ -206,9 +209,13 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         if shape_active:
             base = _signal_params(info["signal"], spec.window, model.masses, info["sigma"][~bl],
                                   natural_width, signal_params)
-            rn = profile_with_nuisances(model, model.counts, info["signal"], base, nuis,
-                                        start=r)
+            # the lowest well of the mass scale where it reaches beyond the peak's width
+            # (CCGV eq. 7: the profile is the global minimum), elsewhere the single fit
+            rn = profile_global(model, model.counts, info["signal"], base, nuis, start=r)
             better = rn["nll"] <= r["nll"]  # started at r's minimum: never worse, to rounding
+            if np.any(rn["moved"] & better):
+                notes.append(several_minima_note(model.masses[rn["moved"] & better],
+                                                 nuis.mass_scale, "q0"))
             q0 = np.where(rn["s"] > 0,
                           np.maximum(2.0 * (model.nll_background - rn["nll"]), 0.0), 0.0)
             arr["q0"][~bl] = np.where(better, q0, arr["q0"][~bl])
