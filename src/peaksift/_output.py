@@ -37,6 +37,7 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 from ._files import atomic_write
+from ._processes import signals_held
 from .errors import OutputError
 
 __all__ = ["MANIFEST_NAME", "STAGING_PREFIX", "OutputFolder", "os_reason", "staged_output"]
@@ -324,8 +325,12 @@ def staged_output(target: str | os.PathLike[str] | None, command: str, *, share:
     except BaseException:
         folder.discard()
         raise
-    try:
-        folder.commit()
-    except BaseException:
-        folder.discard()
-        raise
+    # the moves into place are not cut short: a Ctrl-C or SIGTERM in the middle would leave
+    # some files of this run beside the previous run's (a mix neither run wrote); it is
+    # raised once they are all in place (a few renames)
+    with signals_held():
+        try:
+            folder.commit()
+        except BaseException:
+            folder.discard()
+            raise

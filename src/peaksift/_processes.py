@@ -16,7 +16,10 @@
   batch systems send) handled like Ctrl-C: the same clean-up, then exit status 143;
   :func:`terminated` says whether it came (when other code turned it into its own error).
 * :func:`sigterm_held` -- around a fork: SIGTERM waits until the child has set up its
-  signals (every pool of :func:`process_pool` forks under it).
+  signals.
+* :func:`signals_held` -- :func:`sigterm_held` and :func:`interrupt_held` together, around
+  every fork of ours (the submits of :func:`process_pool`'s pools, the stages beside) and
+  the moves of a run's outputs into place.
 * :func:`interrupt_held` -- around a start-up that forks in threads of its own (a local
   Dask cluster): Ctrl-C waits until the start-up is over, so the caller can close what
   started, and the children never see it.
@@ -38,10 +41,22 @@ import warnings
 from collections.abc import Callable, Iterator
 from typing import Any
 
-__all__ = ["WORKER_ENV", "Terminated", "arrow_threads_from_env", "die_with_parent",
-           "interrupt_held", "process_pool", "quiet_fork", "resolve_start_method",
-           "sigterm_as_interrupt",
-           "sigterm_held", "stop_pool", "terminated", "worker_start"]
+__all__ = [
+    "WORKER_ENV",
+    "Terminated",
+    "arrow_threads_from_env",
+    "die_with_parent",
+    "interrupt_held",
+    "process_pool",
+    "quiet_fork",
+    "resolve_start_method",
+    "signals_held",
+    "sigterm_as_interrupt",
+    "sigterm_held",
+    "stop_pool",
+    "terminated",
+    "worker_start",
+]
 
 #: Environment of the worker processes we start (unless the user set these): they run one
 #: process per core, so Arrow's decoding threads and BLAS threads would only contend with
@@ -139,6 +154,21 @@ def interrupt_held() -> Iterator[None]:
             signal.raise_signal(signal.SIGINT)
 
 
+@contextlib.contextmanager
+def signals_held() -> Iterator[None]:
+    """Around a fork of ours (:func:`process_pool`'s submits, the search's stages beside)
+    and a step that must not stop half-way (the renames that put a run's outputs in place):
+    SIGTERM and Ctrl-C both wait until the way out (:func:`sigterm_held`,
+    :func:`interrupt_held`), and the child starts with both blocked until
+    :func:`worker_start`.  Ctrl-C reaches the whole process group: without the block, a
+    child between its fork and :func:`worker_start` would raise KeyboardInterrupt in its
+    copy of the caller's stack and print a traceback, and a KeyboardInterrupt raised in the
+    caller between a fork and its record (a pool's list of workers) would leave a worker
+    nothing stops.  A SIGTERM noted inside outranks a Ctrl-C (it is raised last)."""
+    with sigterm_held(), interrupt_held():
+        yield
+
+
 #: [depth of sigterm_held, whether a SIGTERM was noted inside, whether Terminated was
 #: raised]; see :func:`sigterm_held` and :func:`terminated`
 _HELD: list[Any] = [0, False, False]
@@ -158,9 +188,10 @@ def process_pool(size: int, start_method: str = "auto",
     """A process pool of ``size`` workers started with ``start_method`` (resolved with
     :func:`resolve_start_method`).  Its processes start at the submits: wrap the first ones
     in :func:`quiet_fork`.  Every worker starts with :func:`worker_start` (then the caller's
-    ``initializer``), and every submit that may start one holds SIGTERM
-    (:func:`sigterm_held`), so a SIGTERM between a fork and the worker's own signal set-up
-    ends the worker instead of running the caller's handler in it."""
+    ``initializer``), and every submit that may start one holds SIGTERM and Ctrl-C
+    (:func:`signals_held`), so a SIGTERM between a fork and the worker's own signal set-up
+    ends the worker instead of running the caller's handler in it, and a Ctrl-C meanwhile
+    is raised once every worker started is on the pool's list (so stopped)."""
     import functools
 
     ctx = multiprocessing.get_context(resolve_start_method(start_method))
@@ -174,10 +205,14 @@ def _pool_class() -> type:
 
     class HeldPool(ProcessPoolExecutor):
         """A ProcessPoolExecutor whose submits (where it forks or spawns its workers)
-        run with SIGTERM held, for the same reason as :func:`sigterm_held`'s forks."""
+        run with SIGTERM and Ctrl-C held (:func:`signals_held`) until every worker is up;
+        later submits start none (a full pool does not replace a worker that died: it
+        breaks) and skip the hold's system calls."""
 
         def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> Any:
-            with sigterm_held():
+            if len(getattr(self, "_processes", None) or ()) >= self._max_workers:
+                return super().submit(fn, *args, **kwargs)
+            with signals_held():
                 return super().submit(fn, *args, **kwargs)
 
     return HeldPool
@@ -235,54 +270,84 @@ class Terminated(KeyboardInterrupt):
 @contextlib.contextmanager
 def sigterm_as_interrupt() -> Iterator[None]:
     """While inside: SIGTERM raises :class:`Terminated` in the main thread (once: a second
-    SIGTERM during the clean-up is ignored, so the clean-up can finish).  A SIGTERM that
-    arrives where Python drops exceptions -- a native callback, a weak-reference callback,
-    a ``__del__`` -- is delivered when that code has returned (SIGALRM retries it: the
-    context owns SIGALRM and ``sys.unraisablehook`` while inside).  Outside the main
-    thread this does nothing (Python delivers signals to the main thread only)."""
+    SIGTERM during the clean-up is ignored, so the clean-up can finish); Ctrl-C raises
+    KeyboardInterrupt as usual.  Either, when it arrives where Python drops exceptions -- a
+    native callback, a weak-reference callback, a ``__del__`` -- is delivered when that
+    code has returned: SIGALRM retries it (the context owns SIGALRM, ``sys.unraisablehook``
+    and, when Python's own Ctrl-C handler is set, SIGINT while inside; an ignored SIGINT,
+    as in a background job, stays ignored).  Outside the main thread this does nothing
+    (Python delivers signals to the main thread only)."""
     import threading
 
     if threading.current_thread() is not threading.main_thread():
         yield
         return
 
-    pending = [False]
+    # what is to be raised again once out of a place that drops it; Terminated outranks a
+    # Ctrl-C (its exit status and message)
+    pending: list[type[KeyboardInterrupt] | None] = [None]
 
-    def handler(signum: int, frame: Any) -> None:
+    def ask_again(kind: type[KeyboardInterrupt]) -> None:
+        if pending[0] is not Terminated:
+            pending[0] = kind
+        signal.setitimer(signal.ITIMER_REAL, _RETRY)
+
+    def deliver(kind: type[KeyboardInterrupt]) -> None:
+        if pending[0] is Terminated:  # (a Ctrl-C after a SIGTERM still to be raised)
+            kind = Terminated
+        pending[0] = None
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        if kind is Terminated:
+            _HELD[2] = True
+            signal.signal(signal.SIGTERM, signal.SIG_IGN)
+        raise kind
+
+    def on_sigterm(signum: int, frame: Any) -> None:
         if _HELD[0] > 0:  # inside sigterm_held: raised again on its way out
             _HELD[1] = True
             return
         if _inside_native_callback(frame):  # raised here, ctypes would print and drop it
-            pending[0] = True
-            signal.setitimer(signal.ITIMER_REAL, _RETRY)  # ask again once out of there
+            ask_again(Terminated)
             return
-        pending[0] = False
-        _HELD[2] = True
-        signal.signal(signal.SIGTERM, signal.SIG_IGN)
-        signal.setitimer(signal.ITIMER_REAL, 0)
-        raise Terminated
+        deliver(Terminated)
+
+    def on_sigint(signum: int, frame: Any) -> None:
+        if _inside_native_callback(frame):
+            ask_again(KeyboardInterrupt)
+            return
+        deliver(KeyboardInterrupt)
 
     def retry(signum: int, frame: Any) -> None:
-        if pending[0]:  # only our own retry: any other SIGALRM inside is not a SIGTERM
-            handler(signum, frame)
+        kind = pending[0]
+        if kind is None:  # only our own retry: any other SIGALRM inside is not a signal of ours
+            return
+        if _HELD[0] > 0 or _inside_native_callback(frame):  # not yet: a fork's bookkeeping
+            signal.setitimer(signal.ITIMER_REAL, _RETRY)  # or a callback again
+            return
+        deliver(kind)
 
     def dropped(info: Any) -> None:
         # Python drops an exception raised in a weak-reference callback or a __del__ (a CI
         # run lost its SIGTERM inside numba's type-cache callback and ran on): ask again
-        if isinstance(info.exc_value, Terminated):
-            pending[0] = True
-            signal.setitimer(signal.ITIMER_REAL, _RETRY)
+        if isinstance(info.exc_value, KeyboardInterrupt):
+            ask_again(Terminated if isinstance(info.exc_value, Terminated)
+                      else KeyboardInterrupt)
             return
         old_hook(info)
 
-    old = signal.signal(signal.SIGTERM, handler)
+    old = signal.signal(signal.SIGTERM, on_sigterm)
     old_alarm = signal.signal(signal.SIGALRM, retry)
+    own_sigint = signal.getsignal(signal.SIGINT) is signal.default_int_handler
+    if own_sigint:
+        signal.signal(signal.SIGINT, on_sigint)
     old_hook, sys.unraisablehook = sys.unraisablehook, dropped
     try:
         yield
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
         sys.unraisablehook = old_hook
+        if own_sigint:
+            signal.signal(signal.SIGINT, signal.default_int_handler)
         signal.signal(signal.SIGALRM, old_alarm)
         signal.signal(signal.SIGTERM, old)
 
@@ -294,7 +359,8 @@ _RETRY = 0.05
 def _inside_native_callback(frame: Any) -> bool:
     """True while Python code that C calls back runs -- llvmlite's hooks while numba compiles
     a kernel (the first run of a fresh install).  An exception raised in such a callback is
-    printed by ctypes and dropped, so the run would go on as if no SIGTERM had come."""
+    printed by ctypes and dropped, so the run would go on as if no SIGTERM (or Ctrl-C) had
+    come."""
     while frame is not None:
         if "llvmlite" in frame.f_code.co_filename:
             return True

@@ -17,10 +17,9 @@ from typing import Any
 
 from .._processes import (
     die_with_parent,
-    interrupt_held,
     quiet_fork,
     resolve_start_method,
-    sigterm_held,
+    signals_held,
     worker_start,
 )
 from ..errors import ExecutionError, PeaksiftError
@@ -172,7 +171,7 @@ class DaskSession:
             # started (a stray worker, the interpreter's exit hanging on it)
             # (a worker that a SIGTERM to the whole process group ends as it sets up makes
             # the scheduler log a failed broadcast: the run ends anyway, quietly)
-            # Ctrl-C likewise (interrupt_held): it reaches the whole process group, and a
+            # Ctrl-C likewise (signals_held holds both): it reaches the whole process group, and a
             # worker between its fork and _local_worker_setup would print a traceback, a
             # KeyboardInterrupt inside LocalCluster's start-up leave workers nothing stops
             # Spawned workers: multiprocessing's resource tracker, started with the first
@@ -186,7 +185,7 @@ class DaskSession:
 
                 resource_tracker.ensure_running()
             try:
-                with interrupt_held(), sigterm_held(), _quiet_distributed():
+                with signals_held(), _quiet_distributed():
                     self.cluster = _start_local_cluster(workers, method)
                     self.client = Client(self.cluster, set_as_default=False)
                     self.own_client = True

@@ -21,6 +21,7 @@ from collections.abc import Callable, Iterator, Mapping, Sequence
 from typing import Any
 
 from .._processes import WORKER_ENV, process_pool, quiet_fork, stop_pool, worker_start
+from .._stall import LOOK, StallWatch, watched
 from ..errors import ExecutionError, PeaksiftError
 
 #: Chunks allowed in flight (running, queued or waiting to be reduced) per worker.
@@ -69,6 +70,11 @@ def _worker_init(track: Any) -> None:
     worker_start()
     _TRACK = track
     _install_exit_fast()
+    import faulthandler
+
+    # the stacks of every thread, written to stderr even in a deadlock: asked for by the
+    # parent before it stops a worker stuck (see _stall)
+    faulthandler.register(_STACKS_SIGNAL, all_threads=True)
 
 
 def _pool(size: int, method: str, track: Any) -> Any:
@@ -227,6 +233,48 @@ def _dead_tasks(procs: dict[int, Any], started: dict[int, int],
     return found
 
 
+#: the signal that has a pool worker write its threads' stacks (faulthandler)
+_STACKS_SIGNAL = signal.SIGUSR1 if hasattr(signal, "SIGUSR1") else signal.SIGTERM
+
+
+def _result(fut: Any, watch: StallWatch | None, track: Any, started: dict[int, int],
+            i: int, pending: dict[int, Any], n: int, describe: Callable[[int], str]) -> Any:
+    """``fut.result()`` of task ``i``, looking every few seconds that the workers running
+    it and the ``pending`` tasks are not stuck (:mod:`peaksift._stall`); a stuck one is an
+    :class:`ExecutionError` naming its task."""
+    from concurrent.futures import TimeoutError as WaitTimeout
+
+    if watch is None or not watch.on:
+        return fut.result()
+    while True:
+        try:
+            return fut.result(timeout=LOOK)
+        except WaitTimeout:
+            if fut.done():  # the task's own TimeoutError: raised as it is
+                return fut.result()
+        _drain(track, started)
+        running = {i, *(k for k, f in pending.items() if not f.done())}
+        found = watch.stuck(pid for pid, j in started.items() if j in running)
+        if found is not None:
+            raise _stuck_error(*found, started, n, describe)
+
+
+def _stuck_error(pid: int, seconds: float, started: dict[int, int], n: int,
+                 describe: Callable[[int], str]) -> ExecutionError:
+    with contextlib.suppress(OSError):  # its stacks first, for the report
+        os.kill(pid, _STACKS_SIGNAL)
+        time.sleep(0.5)
+    i = started[pid]
+    return ExecutionError(
+        f"worker process {pid} is stuck on {describe(i)} [{i + 1} of {n}]: for "
+        f"{seconds:.0f} s every thread of it has waited on a lock or slept, using no CPU "
+        "(a deadlock, not a slow task); the workers were stopped and the stacks of its "
+        "threads written to stderr. Run again; if it recurs, use start_method 'spawn' or "
+        "engine 'serial', and report it with those stacks (PEAKSIFT_STALL_SECONDS sets "
+        "how long to wait, 0 never to stop)"
+    )
+
+
 def _stop_pool(pool: Any, procs: dict[int, Any]) -> None:
     """Cancel what is queued and stop the pool's processes now."""
     stop_pool(pool, procs)
@@ -267,6 +315,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
     procs: dict[int, Any] = {}
     started: dict[int, int] = {}
     clean = False
+    watch = StallWatch() if watched(func) else None
     try:
         nxt = _first_submits(pool, func, tasks, limit, pending)
         procs.update(getattr(pool, "_processes", None) or {})
@@ -277,7 +326,7 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
                 procs.update(getattr(pool, "_processes", None) or {})
             fut = pending.pop(i)
             try:
-                value = fut.result()
+                value = _result(fut, watch, track, started, i, pending, n, describe)
             except PeaksiftError as exc:
                 _drain(track, started)
                 yield i, False, exc
@@ -319,6 +368,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
     arrow_threads = pa.cpu_count()
     pa.set_cpu_count(1)  # like the workers: one process per core, no decoding threads
     pool = _pool(size, method, track)
+    watch = StallWatch() if watched(func) else None
     try:
         nxt = _first_submits(pool, func, tasks, limit, pending)
         procs.update(getattr(pool, "_processes", None) or {})
@@ -349,7 +399,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
                 raise ExecutionError(f"internal error: task {i} was never started")
             del pending[i]
             try:
-                value = fut.result()
+                value = _result(fut, watch, track, started, i, pending, n, describe)
             except PeaksiftError as exc:
                 _drain(track, started)
                 yield i, False, exc

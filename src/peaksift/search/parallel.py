@@ -38,9 +38,10 @@ from .._processes import (
     die_with_parent,
     quiet_fork,
     resolve_start_method,
-    sigterm_held,
+    signals_held,
     worker_start,
 )
+from .._stall import LOOK, StallWatch
 
 _log = logging.getLogger("peaksift.search")
 
@@ -104,7 +105,7 @@ class Beside:
         self._conn, child_end = ctx.Pipe(duplex=False)
         self._proc = ctx.Process(target=_beside_child, daemon=True,
                                  args=(child_end, os.getpid(), fn, args, kw))
-        with quiet_fork(), sigterm_held():  # the child unblocks SIGTERM in worker_start
+        with quiet_fork(), signals_held():  # the child unblocks both in worker_start
             self._proc.start()
         child_end.close()
 
@@ -117,6 +118,8 @@ class Beside:
         fn, args, kw = self._call
         if self._proc is not None:
             try:
+                if not _delivers(self._conn, self._proc.pid):
+                    self._proc.terminate()  # stuck: computed here instead
                 ok, value, caught, seconds, self.cpu = self._conn.recv()
             except (EOFError, OSError):  # the child died: compute here instead
                 ok, value, caught, seconds = False, None, [], 0.0
@@ -135,6 +138,34 @@ class Beside:
             self._proc.terminate()
             self._proc.join()
             self._proc = None
+
+
+def _delivers(conn: Any, pid: int, drawers: bool = False) -> bool:
+    """Wait until the child ``pid`` has sent its outcome on ``conn`` (or died): True; False
+    when it is stuck (:class:`peaksift._stall.StallWatch`; with ``drawers``, the drawer it
+    forked is looked at too), which the caller then stops and does the work itself.  A
+    slow child is waited for, however slow."""
+    watch = StallWatch()
+    if not watch.on:
+        return True
+    while not conn.poll(LOOK):
+        pids = [pid, *(_children(pid) if drawers else ())]
+        found = watch.stuck(pids)
+        if found is not None:
+            _log.warning("a process of this search (pid %d) was stuck for %.0f s, every "
+                         "thread of it waiting on a lock with no CPU used; it was stopped and "
+                         "its work is done here", *found)
+            return False
+    return True
+
+
+def _children(pid: int) -> list[int]:
+    """The child processes of ``pid`` (Linux ``/proc/<pid>/task/<pid>/children``)."""
+    try:
+        with open(f"/proc/{pid}/task/{pid}/children") as f:
+            return [int(x) for x in f.read().split()]
+    except (OSError, ValueError):
+        return []
 
 
 def _beside_child(conn: Any, parent: int, fn: Callable[..., Any], args: tuple[Any, ...],
@@ -180,7 +211,7 @@ class FigureWorker:
         self._proc = ctx.Process(target=_figure_child, daemon=True,
                                  args=(self._queue, child_end, os.getpid(),
                                        tuple(kw.get("formats") or ())))
-        with quiet_fork(), sigterm_held():  # the child unblocks SIGTERM in worker_start
+        with quiet_fork(), signals_held():  # the child unblocks both in worker_start
             self._proc.start()
         child_end.close()
 
@@ -233,6 +264,9 @@ class FigureWorker:
             for _ in range(_DRAWERS):  # one end mark per drawer
                 self._queue.put(None)
             try:
+                if not _delivers(self._conn, self._proc.pid, drawers=True):
+                    self._proc.terminate()  # stuck: everything is drawn here (the second
+                    # drawer ends with the first, die_with_parent)
                 drawn, done, caught, self.cpu = self._conn.recv()
             except (EOFError, OSError):  # the child died: everything is drawn here
                 drawn, done, caught = {}, set(), []

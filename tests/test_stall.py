@@ -1,0 +1,217 @@
+"""The watch for a stuck worker (execution._stall): a deadlocked process is named, a slow,
+sleeping, waiting-on-input or CPU-starved one never is.
+
+Outside references: Linux ``proc(5)`` (``/proc/<pid>/task/<tid>/stat``: field 3 the state,
+R running or runnable, S sleeping, D uninterruptible; fields 14-15 the CPU time in clock
+ticks; ``.../syscall``: the number of the system call the thread is blocked in),
+``futex(2)`` (what a thread blocked on a lock waits in), ``sched(7)`` (a nice 19 thread
+sharing a CPU with a nice 0 one gets ~1.5% of it: weights 15 and 1024) and
+``sched_setaffinity(2)``.  Times here are margins, not measurements: the watch is asked
+about a child that has waited the limit several times over.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import time
+
+import pytest
+
+from peaksift import _stall, execution
+from peaksift.errors import ExecutionError
+from peaksift.execution import _local
+
+pytestmark = pytest.mark.skipif(
+    not sys.platform.startswith("linux") or _stall.snapshot(os.getpid()) is None,
+    reason="reads /proc/<pid>/task/<tid>/syscall")
+
+CHILDREN = {
+    # blocked for good on a lock it holds itself: futex(2), no CPU
+    "deadlocked": "import threading; l = threading.Lock(); l.acquire(); print(1, flush=True); "
+                  "l.acquire()",
+    "sleeping": "import time; print(1, flush=True); time.sleep(60)",
+    # waiting for input that does not come (a slow download looks so): select(2)
+    "waiting on input": "import select; print(1, flush=True); select.select([], [], [], 60)",
+    "busy": "print(1, flush=True)\nwhile True: pass",
+}
+
+
+def _start(code: str, nice: int = 0, cpu: int | None = None) -> subprocess.Popen:
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE)
+    if cpu is not None:
+        os.sched_setaffinity(proc.pid, {cpu})
+    if nice:
+        os.setpriority(os.PRIO_PROCESS, proc.pid, nice)
+    assert proc.stdout.readline().strip() == b"1"  # running its code
+    return proc
+
+
+def _watch_for(pids: list[int], limit: float, seconds: float) -> tuple[int, float] | None:
+    watch = _stall.StallWatch(limit)
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        found = watch.stuck(pids)
+        if found is not None:
+            return found
+        time.sleep(0.2)
+    return None
+
+
+@pytest.mark.parametrize("kind", list(CHILDREN))
+def test_only_a_deadlocked_process_is_called_stuck(kind):
+    proc = _start(CHILDREN[kind])
+    try:
+        found = _watch_for([proc.pid], limit=1.0, seconds=4.0)
+    finally:
+        proc.kill()
+        proc.wait()
+    if kind == "deadlocked":
+        assert found is not None and found[0] == proc.pid and found[1] >= 1.0
+    else:
+        assert found is None
+
+
+def test_a_cpu_starved_process_is_not_called_stuck():
+    """A busy child at nice 19 sharing one CPU with a busy child at nice 0 gets about 1.5%
+    of it (sched(7)): over the watch's window it used almost no CPU time, yet it is not
+    stuck -- it is runnable (state R) whenever it is not running."""
+    cpu = min(os.sched_getaffinity(0))
+    hog = _start(CHILDREN["busy"], cpu=cpu)
+    starved = _start(CHILDREN["busy"], nice=19, cpu=cpu)
+    try:
+        found = _watch_for([starved.pid], limit=1.0, seconds=4.0)
+    finally:
+        for p in (hog, starved):
+            p.kill()
+            p.wait()
+    assert found is None
+
+
+def deadlock(seconds: float) -> float:
+    import threading
+
+    lock = threading.Lock()
+    lock.acquire()
+    lock.acquire()  # never returns
+    return seconds  # pragma: no cover
+
+
+def busy(seconds: float) -> float:
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < seconds:
+        pass
+    return seconds
+
+
+def _pool_children() -> set[int]:
+    me = os.getpid()
+    out = set()
+    for d in os.listdir("/proc"):
+        if d.isdigit():
+            try:
+                with open(f"/proc/{d}/stat") as f:
+                    fields = f.read().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            if int(fields[1]) == me and fields[0] != "Z":
+                out.add(int(d))
+    return out
+
+
+@pytest.fixture
+def watch_test_tasks(monkeypatch):
+    """The watch applies to peaksift's own functions: here to the tests' too, with a short
+    limit."""
+    monkeypatch.setattr(_local, "watched", lambda func: True)
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "3")
+
+
+def test_a_stuck_worker_ends_the_run_with_an_error_naming_its_task(watch_test_tasks, capfd):
+    before = _pool_children()
+    with pytest.raises(ExecutionError) as raised:
+        execution.map_tasks(deadlock, [0.0], engine="processes", workers=2)
+    text = str(raised.value)
+    assert "is stuck on task 0" in text and "[1 of 1]" in text
+    assert "PEAKSIFT_STALL_SECONDS" in text
+    time.sleep(0.5)
+    assert _pool_children() <= before  # the stuck worker was stopped
+    err = capfd.readouterr().err
+    assert "in deadlock" in err  # its stack (faulthandler) names the function it hangs in
+
+
+def slow(seconds: float) -> float:
+    """Busy for half of ``seconds``, then waiting on input (select(2)) for the other half."""
+    import select
+
+    busy(seconds / 2)
+    select.select([], [], [], seconds / 2)
+    return seconds
+
+
+def test_slow_healthy_tasks_are_left_to_finish(watch_test_tasks):
+    """Tasks 3x longer than the limit, busy or waiting on input, finish with their results."""
+    assert execution.map_tasks(slow, [9.0, 18.0], engine="processes", workers=2) == [9.0, 18.0]
+
+
+def test_the_limit_from_the_environment(monkeypatch):
+    for text, limit in (("", _stall.DEFAULT_LIMIT), ("30", 30.0), ("0", 0.0), ("-1", 0.0),
+                        ("nan", 0.0), ("soon", 0.0)):
+        monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", text)
+        assert _stall.limit_from_env() == limit
+
+
+def test_the_watch_keeps_to_peaksift_functions():
+    import functools
+
+    from peaksift.stats.toys import run_toy_batch
+
+    assert _stall.watched(run_toy_batch) and _stall.watched(functools.partial(run_toy_batch))
+    assert not _stall.watched(busy) and not _stall.watched(time.sleep)
+
+
+# ------------------------------------------------------------ stages beside a search
+_PARENT = os.getpid()
+
+
+def _doubled_but_stuck_in_a_child(x: int) -> int:
+    if os.getpid() != _PARENT:  # in the forked child: waits forever
+        deadlock(0.0)
+    return 2 * x
+
+
+def test_a_stuck_stage_beside_is_stopped_and_computed_here(monkeypatch, caplog):
+    from peaksift.search import parallel
+
+    if not parallel.forking():
+        pytest.skip("stages are not forked here")
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "2")
+    job = parallel.Beside(_doubled_but_stuck_in_a_child, 21)
+    pid = job._proc.pid
+    with caplog.at_level("WARNING", logger="peaksift.search"):
+        assert job.result() == 42
+    assert f"pid {pid}" in caplog.text and "stuck" in caplog.text
+    assert pid not in _pool_children()
+
+
+def test_a_stuck_figure_process_is_stopped_and_its_figures_drawn_here(monkeypatch, tmp_path):
+    from peaksift import plotting
+    from peaksift.search import parallel
+
+    if not parallel.forking():
+        pytest.skip("stages are not forked here")
+
+    def figures(result, outdir, names, **kw):
+        if os.getpid() != _PARENT:  # a drawer (the first or the one it forked)
+            deadlock(0.0)
+        return {n: outdir / f"{n}.png" for n in names}
+
+    monkeypatch.setattr(plotting, "search_figures", figures)
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "2")
+    worker = parallel.FigureWorker(tmp_path)
+    pid = worker._proc.pid
+    worker.draw(["spectrum", "scan"], None)
+    assert worker.finish() == {"spectrum": tmp_path / "spectrum.png",
+                               "scan": tmp_path / "scan.png"}
+    assert pid not in _pool_children()

@@ -1,0 +1,60 @@
+"""A Ctrl-C or SIGTERM while a run's outputs are moved into place.
+
+The output-folder contract (``peaksift._output``): an interrupted run leaves the output
+folder as it was, a finished one leaves its own files; never a mix.  The moves are one
+``rename(2)`` per file (POSIX: each atomic, the set not), so a signal that lands between
+two of them is held until the last is done, then raised as usual.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+from pathlib import Path
+
+import pytest
+
+from peaksift import _output
+from peaksift._processes import Terminated, sigterm_as_interrupt
+
+NAMES = ["a.json", "b.json", "c.json"]
+SIGNALS = {"SIGTERM": (signal.SIGTERM, Terminated), "SIGINT": (signal.SIGINT, KeyboardInterrupt)}
+
+
+@pytest.fixture(autouse=True)
+def python_ctrl_c():
+    """Python's own Ctrl-C handler while each test runs: a test session started as a
+    background job inherits SIGINT ignored (POSIX sh(1), "Asynchronous Lists"), which
+    Python and peaksift then leave ignored."""
+    old = signal.signal(signal.SIGINT, signal.default_int_handler)
+    yield
+    signal.signal(signal.SIGINT, old)
+
+
+def _run(target: Path, text: str) -> None:
+    with _output.staged_output(target, "search") as folder:
+        for n in NAMES:
+            (folder.path / n).write_text(text)
+
+
+@pytest.mark.parametrize("name", SIGNALS)
+def test_a_stop_between_two_moves_comes_after_the_last(tmp_path, monkeypatch, name):
+    signum, kind = SIGNALS[name]
+    target = tmp_path / "out"
+    _run(target, "previous run")
+    replace = os.replace
+    stopped: list[str] = []
+
+    def replace_then_stop(src, dst):
+        replace(src, dst)
+        if Path(dst).name == NAMES[0] and not stopped:  # the first of this run's files moved
+            stopped.append(str(dst))
+            os.kill(os.getpid(), signum)
+            sum(range(10_000))  # bytecode where a handler would raise
+
+    monkeypatch.setattr(_output.os, "replace", replace_then_stop)
+    with pytest.raises(kind) as raised, sigterm_as_interrupt():
+        _run(target, "this run")
+    assert raised.type is kind and stopped
+    assert {n: (target / n).read_text() for n in NAMES} == dict.fromkeys(NAMES, "this run")
+    assert not list(target.glob(".peaksift-staging-*"))
