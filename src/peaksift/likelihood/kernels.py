@@ -469,4 +469,4 @@ def bin_counts(cdf, y, out):  # pragma: no cover - compiled
     does)."""
     for i in range(out.size):
         d = cdf[i + 1] - cdf[i]
-        out[i] = (d if (d > 0.0 or d != d) else 0.0) * y
+        out[i] = (d if (d > 0.0 or math.isnan(d)) else 0.0) * y
