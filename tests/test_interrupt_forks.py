@@ -123,3 +123,20 @@ def test_ctrl_c_lost_in_a_del_still_ends_the_command_with_one_line(monkeypatch, 
     assert rc == 130 and not ran_on
     assert [x for x in err.splitlines() if x.strip()] == [
         "peaksift: interrupted; no outputs were written"], err
+
+
+def test_ctrl_c_during_the_commands_first_imports_is_one_line(monkeypatch, capsys):
+    """A Ctrl-C while the command imports its libraries (scipy's ~0.5 s, before any work)
+    ends it like any Ctrl-C: exit status 130 and the one line, no traceback (seen: a
+    traceback through scipy's import when Ctrl-C came 0.5 s after the start)."""
+    from peaksift import _lean_imports, cli
+
+    def interrupted_import() -> None:
+        os.kill(os.getpid(), signal.SIGINT)
+        sum(range(10_000))  # bytecode where Python's handler raises
+
+    monkeypatch.setattr(_lean_imports, "scipy_special", interrupted_import)
+    rc = cli.main(["spectrum", "no-such.toml"])
+    err = capsys.readouterr().err
+    assert rc == 130 and [x for x in err.splitlines() if x.strip()] == [
+        "peaksift: interrupted; no outputs were written"], err
