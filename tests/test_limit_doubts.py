@@ -72,10 +72,27 @@ def test_limits_with_several_minima_in_the_mass_scale_are_flagged():
     import numpy as np
 
     from peaksift.search.doubts import doubts
-    from peaksift.stats.limits_systematics import _several_wells
+    from peaksift.stats.scale_scan import several_minima_note
 
-    note = _several_wells(np.array([150.0, 151.0]), 0.05)
+    note = several_minima_note(np.array([150.0, 151.0]), 0.05, "limits")
     assert "2 mass(es) (150, 151)" in note and "+-15%" in note
     sy = {"limits": {"notes": [note, "the limits leave out the template signal"]}}
     w = [d for d in doubts({"systematics": sy}) if d["topic"] == "limits"]
     assert [d["message"] for d in w] == [note]
+
+
+def test_q0_with_several_minima_in_the_mass_scale_is_flagged():
+    """The scan's note where q0 took a lower well of the mass scale than the nearest one
+    (in the systematics block's notes) becomes a ``significance`` warning; a spurious-signal
+    note stays a ``background_model`` one."""
+    import numpy as np
+
+    from peaksift.search.doubts import doubts
+    from peaksift.stats.scale_scan import several_minima_note
+
+    note = "significance: " + several_minima_note(np.array([150.0]), 0.01, "q0")
+    assert "the q0 there responds to the data within +-3% of the mass" in note
+    sy = {"notes": [note, "spurious signal above 0.2 of the statistical error: x"]}
+    topics = [(d["topic"], d["message"]) for d in doubts({"systematics": sy})]
+    assert ("significance", note) in topics
+    assert sorted(t for t, _ in topics) == ["background_model", "significance"]

@@ -20,6 +20,8 @@ summary and a section at the top of the report.
   profile in the mass scale took a lower well than the nearest one (a mass scale wider
   than the peak: the limit there responds to the data up to 3 of its standard deviations
   away).
+* ``significance``    -- with ``[systematics]``: the scan's q0 whose profile in the mass
+  scale took a lower well than the nearest one (as for the limits above).
 * ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
   a kept order whose next order still improved the fit (the family needs higher orders).
 """
@@ -115,8 +117,12 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
         for note in sy.get("notes") or []:
             if "spurious" in str(note):
                 add("background_model", str(note))
+            # the scan's q0 whose profile in the mass scale took a well away from the
+            # nearest one (stats.scale_scan.several_minima_note)
+            if "several minima" in str(note):
+                add("significance", str(note))
         # limits whose profile in the mass scale took a well away from the nearest one
-        # (stats.limits_systematics._several_wells): they respond to data elsewhere
+        # (stats.scale_scan.several_minima_note): they respond to data elsewhere
         for note in (sy.get("limits") or {}).get("notes") or []:
             if "several minima" in str(note):
                 add("limits", str(note))

@@ -219,6 +219,10 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                                         u0=cfg.significance.reference_level, **gkw)
         block["nuisance_pulls"] = _pulls(nuis, sres.nuisance_factors, sres.best_index)
         obj = sres
+    # q0 where the mass scale's lowest well was not the nearest one (doubts.py flags it)
+    for note in dict.fromkeys(n for sc in getattr(obj, "scans", None) or (obj,)
+                              for n in sc.notes if "several minima" in n):
+        block["notes"].append(f"significance: {note}")
     best = dict(best)
     block["with_systematics"] = best
     block["without_systematics"] = dict(best_plain)

@@ -56,7 +56,7 @@ from ..likelihood import SignalNuisances
 from .cls import _BANDS, _bisect, _Problem, _unconditional
 from .limit_result import LOW_COUNT_BACKGROUND
 from .limits import cls_asymptotic, expected_band_factor, normalisation
-from .scale_scan import needs_scan, profile_global
+from .scale_scan import needs_scan, profile_global, several_minima_note
 from .scan_inputs import _prepare_model, _signal_params
 from .toys import fit_background
 
@@ -223,16 +223,6 @@ def _problem(model: Any, counts: np.ndarray, fractions: np.ndarray, conv: np.nda
         return _Problem(model, counts, np.tile(fractions, (reps, 1)), np.tile(conv, reps),
                         delta, kind, np.zeros(reps * fractions.shape[0]))
     return _Curve(model, counts, fractions, conv, delta, kind, sig, base, nuis, s_max)
-
-
-def _several_wells(masses: np.ndarray, size: float) -> str:
-    """The note where the profile in the mass scale had a lower well than the nearest."""
-    where = ", ".join(f"{m:g}" for m in masses[:6]) + (", ..." if masses.size > 6 else "")
-    return (f"mass scale with several minima at {masses.size} mass(es) ({where}): its "
-            f"{100 * size:.3g}% moves the peak further than its width, and the lowest minimum "
-            "of the profile likelihood (found by a scan of the mass scale) is not the nearest;"
-            " the limits there respond to the data within "
-            f"+-{300 * size:.3g}% of the mass (3 standard deviations of the mass scale)")
 
 
 def _free_fit(model: Any, counts: np.ndarray, sig: Any, base: list[Any],
@@ -440,7 +430,7 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
             if isinstance(p, _Curve):
                 wells[keep] |= p.moved(obs[keep])
     if wells.any():
-        notes.append(_several_wells(m_all[wells], nuis.mass_scale))
+        notes.append(several_minima_note(m_all[wells], nuis.mass_scale, "limits"))
     # low counts: toys with the same profiling (as upper_limits decides where)
     b_under = (f_win.sum(axis=1) * sig_fisher) ** 2
     want = list(m_all[b_under < low_count_background]) if method != "asymptotic" else []
@@ -465,14 +455,6 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
             exp_lim[:, j] = [r["expected"][n] for n in _BANDS]
             methods[j] = "toys"
             toy_info[f"{m_all[j]:.6g}"] = plain(r)
-        scan_all = needs_scan(sig, base_all, nuis, nm)
-        if scan_all[js].any():
-            notes.append("toy limits at " + ", ".join(f"{m_all[j]:g}" for j in js
-                                                      if scan_all[j])
-                         + ": the toys fit the mass scale from its centre only, but it "
-                         "moves the peak further than its width (the asymptotic limits "
-                         "scan it for the lowest minimum): their q~mu may miss a lower "
-                         "minimum")
             notes.extend(f"{m_all[j]:g}: {n}" for n in r["notes"])
     profiled = ["background parameters"]
     profiled += [f"{n.replace('_', ' ')} ({100 * getattr(nuis, n):.3g}%, {nuis.kind(n)})"

@@ -6,7 +6,11 @@ Which piece when
   plus, on the hypotheses whose mass scale can move the peak further than its own width,
   the factors' exact curvature and further starts from a scan of the mass-scale factor;
   the best fit of each hypothesis and whether a start other than the centre won.  The limits
-  with systematics use it (:mod:`peaksift.stats.limits_systematics`).
+  with systematics (:mod:`peaksift.stats.limits_systematics`), their toys
+  (:mod:`peaksift.stats.toy_limits_systematics`), the scan's q0 with shape nuisances
+  (:func:`peaksift.stats.scan.scan`, hence the envelope's) and its toys' refitted points
+  (:func:`peaksift.stats.shape_profile.refine_toy_points`) use it.
+* :func:`several_minima_note` -- the results' note where the lowest well was not the nearest.
 * :func:`needs_scan` -- which hypotheses those are.
 
 Why
@@ -18,14 +22,18 @@ fluctuation of the data within a few :math:`\delta m`: a fit started at
 :math:`k_m = 1` finds the nearest well, not the lowest one.  The profile likelihood is
 the lowest (Cowan, Cranmer, Gross, Vitells, EPJC 71 (2011) 1554, eq. 7), and a limit
 built from the nearest one is too strong (measured: a factor 1.3 to 3 on a peak of
-width 0.5 GeV at 150 GeV with a 1-10 % mass scale, ``docs/decisions/mass-scale-scan.md``).
+width 0.5 GeV at 150 GeV with a 1-10 % mass scale, ``docs/decisions/mass-scale-scan.md``);
+so is a q~mu of the toy limits, and a q0 of the scan is too low or, where the lowest well
+is a deficit (q0 = 0, CCGV eq. 12), too high (measured on 100 background-only toys with a
+1 % mass scale: q0 wrong in 31, by up to 6.6; q~mu in 30-57, by up to 14).
 
 Method: on each such hypothesis the NLL is evaluated on a grid of :math:`k_m` over its
 whole range (steps of half the peak's width in mass), the other parameters held at the
 centre start's fit and the other factors' shapes at their centres (with a free signal, its
 yield at the one-step optimum of each grid point; the logarithms only over the bins where
-the peak is not negligible); the ``_STARTS`` lowest wells away from the centre fit's own
-are refitted with every parameter free, and the lowest fit of each hypothesis is kept.
+the peak is not negligible); the ``_STARTS`` (free yield: ``_STARTS_FREE``) lowest wells
+away from the centre fit's own (those within a grid step of it are its own) are refitted
+with every parameter free, and the lowest fit of each hypothesis is kept.
 The scanned hypotheses' fits also use the factors' exact curvature.  Where
 :math:`3\,\delta m < w` a second well lies more than 18 units of NLL up the constraint
 (a shift of two widths is six standard deviations), so the scan is skipped: those
@@ -44,7 +52,7 @@ from ..likelihood import SignalNuisances
 from .shape_profile import _fractions, profile_with_nuisances
 from .toys import ScanModel, bkg_fractions
 
-__all__ = ["needs_scan", "peak_width", "profile_global"]
+__all__ = ["needs_scan", "peak_width", "profile_global", "several_minima_note"]
 
 #: the scan runs where this many standard deviations of the mass scale exceed the width
 _REACH = 3.0
@@ -52,6 +60,9 @@ _REACH = 3.0
 _STEP = 0.5
 #: refitted wells per hypothesis besides the centre fit
 _STARTS = 2
+#: the same with a free yield: the grid's one-step yield ranks the wells less well (on 100
+#: toys with a 3 % scale the lowest was third twice: q0 4.1 and 2.7 too low with two)
+_STARTS_FREE = 4
 #: at most this many grid values x bins are held at once
 _CHUNK = 2_000_000
 #: a start other than the centre's counts as a different minimum when lower by this (NLL)
@@ -104,9 +115,10 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
                 nuisances: SignalNuisances, fit: dict[str, np.ndarray], rows: np.ndarray,
                 centers: np.ndarray | None, fixed_signal: bool
                 ) -> tuple[np.ndarray, np.ndarray]:
-    """Starts ``(R, _STARTS, J)`` of the factors and of the yield ``(R, _STARTS)`` at the
-    lowest wells of the grid NLL in ``k_m`` of hypotheses ``rows``, away from the centre
-    fit's own well (NaN where a hypothesis has fewer)."""
+    """Starts ``(R, S, J)`` of the factors and of the yield ``(R, S)`` at the ``S``
+    (``_STARTS``, with a free yield ``_STARTS_FREE``) lowest wells of the grid NLL in
+    ``k_m`` of hypotheses ``rows``, away from the centre fit's own well (NaN where a
+    hypothesis has fewer)."""
     names = nuisances.shape_active
     jm = names.index("mass_scale")
     lo, hi = nuisances.bounds("mass_scale")
@@ -116,8 +128,9 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     span = (hi - lo) * np.abs(mass) / (_STEP * width)
     grid = np.linspace(lo, hi, int(min(np.ceil(span.max()), 20_000)) + 1)
     g = grid.size
-    k_out = np.full((rows.size, _STARTS, len(names)), np.nan)
-    s_out = np.full((rows.size, _STARTS), np.nan)
+    starts = _STARTS if fixed_signal else _STARTS_FREE
+    k_out = np.full((rows.size, starts, len(names)), np.nan)
+    s_out = np.full((rows.size, starts), np.nan)
     # the grid's signal fractions depend on the hypothesis and k_m only (the other
     # factors at their centres here): once per distinct hypothesis, shared by its rows
     cols = np.stack([np.broadcast_to(np.asarray(p, float).reshape(-1), (nb,))
@@ -192,13 +205,16 @@ def _group_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[An
         left = np.concatenate([np.full((r.size, 1), np.inf), val[:, :-1]], axis=1)
         right = np.concatenate([val[:, 1:], np.full((r.size, 1), np.inf)], axis=1)
         well = (val <= left) & (val <= right) & np.isfinite(val)
-        # the centre fit's own well is refitted already
+        # the centre fit's own well is refitted already: the grid's wells within a step
+        # of it (not within a width: on bins about as wide as the peak the fit can stop
+        # in a shallow dip on its well's side, 0.2 in NLL up, half a width from its floor)
         own = np.abs(grid[None, :] - fit["factors"][r, jm][:, None]) * np.abs(
-            mass[loc, None]) < width[loc, None]
+            mass[loc, None]) <= _STEP * width[loc, None]
         cand = np.where(well & ~own, val, np.inf)
-        order = np.argsort(cand, axis=1)[:, :_STARTS]
+        starts = k_out.shape[1]
+        order = np.argsort(cand, axis=1)[:, :starts]
         ok = np.isfinite(np.take_along_axis(cand, order, axis=1))
-        kk = np.repeat(fit["factors"][r][:, None, :], _STARTS, axis=1)
+        kk = np.repeat(fit["factors"][r][:, None, :], starts, axis=1)
         kk[:, :, jm] = grid[order]
         k_out[loc] = np.where(ok[..., None], kk, np.nan)
         s_out[loc] = np.where(ok, np.take_along_axis(s, order, axis=1), np.nan)
@@ -264,7 +280,7 @@ def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
     n2 = np.broadcast_to(np.asarray(n, float), (nb, model.used.size))
     k_st, s_st = _grid_wells(model, n2, signal, base, nuisances, fit, rows, centers,
                              fixed_signal)
-    have = np.isfinite(s_st) & np.all(np.isfinite(k_st), axis=2)   # (R, _STARTS)
+    have = np.isfinite(s_st) & np.all(np.isfinite(k_st), axis=2)   # (R, starts)
     if not have.any():
         return fit
     ri, si = np.nonzero(have)
@@ -284,3 +300,15 @@ def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
             for key in ("s", "s_error", "b", "theta", "nll", "factors", "converged"):
                 fit[key][h] = more[key][j]
     return fit
+
+
+def several_minima_note(masses: np.ndarray, size: float, what: str) -> str:
+    """The note where the profile in the mass scale had a lower well than the nearest:
+    ``what`` (the limits, q0) there responds to the data further from the mass than the
+    peak's width."""
+    where = ", ".join(f"{m:g}" for m in masses[:6]) + (", ..." if masses.size > 6 else "")
+    return (f"mass scale with several minima at {masses.size} mass(es) ({where}): its "
+            f"{100 * size:.3g}% moves the peak further than its width, and the lowest minimum "
+            "of the profile likelihood (found by a scan of the mass scale) is not the nearest;"
+            f" the {what} there respond{'s' if what == 'q0' else ''} to the data within "
+            f"+-{300 * size:.3g}% of the mass (3 standard deviations of the mass scale)")

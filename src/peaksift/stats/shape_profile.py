@@ -20,13 +20,16 @@ Under the background-only hypothesis (``s = 0``) the signal factors sit at their
 add nothing, so q0 = 2 (NLL_b - NLL) keeps the background-only fit of the plain scan.
 
 Method: damped Newton (Levenberg-Marquardt, :func:`peaksift.likelihood.minimize_stacked`) on
-all hypotheses at once, started from the fit with the factors at 1; the Hessian is the observed
+all hypotheses at once, started from the fit with the factors at 1 (where the mass scale
+reaches beyond the peak's width the callers start it also from the lowest wells of a scan
+of the mass scale, :func:`peaksift.stats.scale_scan.profile_global`, and keep the lowest); the Hessian is the observed
 Fisher part plus the exact yield-factor and background-curvature cross terms; the
 derivatives of the signal fractions in the factors come from the shape's own parameter
 derivatives (analytic where the shape has them) by the chain rule.  A step is taken only where the NLL does not rise.
 
 Toys: the linearised engine finds each toy's scan with the factors fixed at their centres,
-and the ``NUISANCE_REFINE`` highest points of each toy are refitted with the factors free.
+and the ``NUISANCE_REFINE`` highest points of each toy are refitted with the factors free
+(from the scan's lowest wells of the mass scale too, as the data's scan).
 The global p-value uses the maximum over the scan; a free factor raises q0 most where it was
 already high, so refitting the top points gives that maximum (an approximation where a
 factor lifts a lower point above the top ones, stated in the global result).
@@ -295,8 +298,12 @@ def refine_toy_points(spec: ToyBatch, q0: np.ndarray, rows: np.ndarray, cols: np
                     centers[j] = nuis.sample_centers(names, np.random.default_rng(ss), 1)[0]
                 centers = centers[rows]
             base = [np.asarray(p)[cols] if np.ndim(p) else p for p in info["params"]]
-            rn = profile_with_nuisances(model, nr, info["signal"], base, nuis, start=r,
-                                        centers=centers, tol=TOY_TOLERANCE)
+            # the lowest well of the mass scale where it reaches beyond the peak's width,
+            # as in the data's scan (the toys' maxima are those of the same statistic)
+            from .scale_scan import profile_global  # it builds on this module
+
+            rn = profile_global(model, nr, info["signal"], base, nuis, start=r,
+                                centers=centers, tol=TOY_TOLERANCE)
             # started at the exact fit with the factors at 1: never worse, to rounding
             better = rn["nll"] <= r["nll"]
             r = {k: np.where(better, rn[k], r[k]) for k in ("s", "nll")}

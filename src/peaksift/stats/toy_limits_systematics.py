@@ -31,7 +31,10 @@ EPJC 71 (2011) 1554, sec. 2 and eq. 16; Read, J. Phys. G 28 (2002) 2693; Junk, N
   (the envelope's function without signal; the shape factors and :math:`t` do not act
   there and sit at the data's values, around which their global observables are drawn);
 * each toy's :math:`\tilde q_\mu` uses its own global observables as the constraints'
-  centres.
+  centres;
+* where the mass scale moves the peak further than its width, each fit (free and at every
+  mu, of the data and of every toy) takes the lowest well of the profile in the mass scale
+  (:func:`peaksift.stats.scale_scan.profile_global`), as the asymptotic limits do.
 
 CLs+b and CLb, the pooled importance weights, ties, the grid and the expected band are
 those of :mod:`peaksift.stats.toy_limits`: the densities of the two generating models now
@@ -50,7 +53,8 @@ import numpy as np
 
 from ..likelihood import SignalNuisances
 from .cls import _BANDS, _floor_reach, _Problem, _unconditional
-from .shape_profile import TOY_TOLERANCE, _fractions, profile_with_nuisances
+from .scale_scan import profile_global
+from .shape_profile import TOY_TOLERANCE, _fractions
 from .toy_limits import (
     _ToyLimitTask,
     grid_start,
@@ -90,10 +94,10 @@ class _ShapeProblem(_Problem):
         names = nuis.shape_active
         rows = np.arange(s.size)
         cen = self.centers
-        rn = profile_with_nuisances(self.model, self.counts, self.signal, self.base, nuis,
-                                    start={"s": s, "b": self.b, "theta": self.theta,
-                                           "factors": cen if self.k is None else self.k},
-                                    centers=cen, fixed_signal=True, tol=TOY_TOLERANCE)
+        rn = profile_global(self.model, self.counts, self.signal, self.base, nuis,
+                            start={"s": s, "b": self.b, "theta": self.theta,
+                                   "factors": cen if self.k is None else self.k},
+                            centers=cen, fixed_signal=True, tol=TOY_TOLERANCE)
         self.k = rn["factors"]
         return rn, _fractions(self.model, self.signal, self.base, names, nuis, self.k, rows)
 
@@ -163,9 +167,9 @@ class _Ensemble:
         th = np.repeat(model.theta[None, :], t, axis=0)
         r = profile_signal(model, counts, f, theta_start=th, b_start=np.full(t, model.bkg_yield))
         _, _, nll_zero = fit_background(model, counts, th)
-        rn = profile_with_nuisances(model, counts, self.task.signal, self.base,
-                                    self.task.nuisances, start={**r, "factors": centers},
-                                    centers=centers, tol=TOY_TOLERANCE)
+        rn = profile_global(model, counts, self.task.signal, self.base, self.task.nuisances,
+                            start={**r, "factors": centers}, centers=centers,
+                            tol=TOY_TOLERANCE)
         better = rn["nll"] < r["nll"]
         s_hat = np.where(better, rn["s"], r["s"])
         return s_hat, np.minimum(np.minimum(rn["nll"], r["nll"]), nll_zero), nll_zero

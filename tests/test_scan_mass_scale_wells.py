@@ -1,0 +1,204 @@
+"""The scan's q0, its toys' and the toy limits' q~mu with a mass scale wider than the peak.
+
+A Gaussian of width 0.5 GeV at 150 GeV on 20,000 exponential background events in
+100-200 GeV (200 bins), resolution nuisance 20 %, mass scale 1 % (one standard deviation
+moves the peak by three widths): the NLL as a function of the mass-scale factor has a well
+at every fluctuation within reach, and the profile likelihood is the lowest (Cowan,
+Cranmer, Gross, Vitells, EPJC 71 (2011) 1554, eq. 7); q0 is their eq. 12 (0 where the
+lowest well's yield is negative), q~mu their eq. 16.
+
+The reference is written here from scratch: bin integrals from ``scipy.special.ndtr`` and
+the closed-form exponential's, Gaussian constraints 1/2 ((k - c)/delta)^2, the mass-scale
+factor profiled on a grid in steps of a quarter of the peak's width over +-5 standard
+deviations around its centre (each point's other parameters minimised by iminuit, warm
+starts along the grid), the three lowest wells polished by iminuit with the factor free.
+
+Tolerance 5e-3 in q (measured: 2.6e-4 in q0 and 2.0e-3 in q~mu, the toys' fits stopping
+at an NLL gain of 1e-5, over 200 toys of ``scripts/study_scan_mass_scale_wells.py``).
+The toys here are ones where fits from the centre of the mass scale alone were wrong:
+q0 0.00 / 0.07 / 1.80 against the reference's 6.63 / 2.17 / 0 (the last: its lowest well
+is a deficit), q~mu at 40 events 2.89 / 5.22 / 2.91 against 0.66 / 1.42 / 0.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from iminuit import Minuit
+from scipy import special
+
+from peaksift.likelihood import SignalNuisances
+from peaksift.stats.background_choice import candidate_shapes
+from peaksift.stats.scan import scan
+from peaksift.stats.scan_inputs import _prepare_model, _signal_params
+from peaksift.stats.shape_profile import run_nuisance_toy_batch
+from peaksift.stats.toy_limits_systematics import _Ensemble, _SystematicToyTask
+from peaksift.stats.toys import ToyBatch, toy_counts
+
+WINDOW = (100.0, 200.0)
+EDGES = np.linspace(*WINDOW, 201)
+MASS, SIGMA = 150.0, 0.5
+D_SCALE, D_RES = 0.01, 0.2
+NUIS = SignalNuisances.make({"mass_scale": D_SCALE, "mass_resolution": D_RES})
+TOL = 5e-3
+
+
+def _toy(index: int) -> np.ndarray:
+    rng = np.random.default_rng(index)
+    return np.histogram(100 + rng.exponential(40, 20000), EDGES)[0].astype(float)
+
+
+def _centers(index: int) -> tuple[float, float]:
+    z = np.random.default_rng(10_000 + index).standard_normal(2)
+    return 1.0 + D_SCALE * z[0], 1.0 + D_RES * z[1]
+
+
+# ------------------------------------------------------------ the independent reference
+def _exponential(slope: float) -> np.ndarray:
+    lo, hi = WINDOW
+    c, h = 0.5 * (lo + hi), 0.5 * (hi - lo)
+    if abs(slope) < 1e-9:
+        return np.diff(EDGES) / (hi - lo)
+    with np.errstate(all="ignore"):
+        prim = np.exp(slope * (EDGES - c) / h)
+        return np.diff(prim) / (prim[-1] - prim[0])
+
+
+def _gauss(m: float, s: float) -> np.ndarray:
+    z = (EDGES - m) / s
+    prim = special.ndtr(z) if m > 0.5 * sum(WINDOW) else -special.ndtr(-z)
+    norm = prim[-1] - prim[0]
+    return np.diff(prim) / norm if norm > 0 else np.zeros(EDGES.size - 1)
+
+
+class _Reference:
+    def __init__(self, counts: np.ndarray, mass: float = MASS,
+                 centers: tuple[float, float] = (1.0, 1.0)) -> None:
+        self.n, self.mass = counts, mass
+        self.cm, self.cr = centers
+        lo = max(self.cm - 5 * D_SCALE, 1 - 6 * D_SCALE)
+        hi = min(self.cm + 5 * D_SCALE, 1 + 6 * D_SCALE)
+        self.kms = np.linspace(lo, hi, int(np.ceil((hi - lo) * mass / (0.25 * SIGMA))) + 1)
+
+    def nll(self, s, b, p, km, kr) -> float:
+        nu = s * _gauss(self.mass * km, SIGMA * kr) + b * _exponential(p)
+        if np.any(nu <= 0) or not np.all(np.isfinite(nu)):
+            return 1e30
+        return float(np.sum(nu - self.n * np.log(nu)) + 0.5 * ((km - self.cm) / D_SCALE) ** 2
+                     + 0.5 * ((kr - self.cr) / D_RES) ** 2)
+
+    def _minuit(self, f, **start) -> Minuit:
+        m = Minuit(f, **start)
+        m.limits["kr"] = (1 - 6 * D_RES, 1 + 6 * D_RES)
+        if "km" in start:
+            m.limits["km"] = (1 - 6 * D_SCALE, 1 + 6 * D_SCALE)
+        m.errordef = Minuit.LIKELIHOOD
+        return m
+
+    def _at(self, s, km):
+        if s is None:
+            return lambda s, b, p, kr: self.nll(s, b, p, km, kr)
+        return lambda b, p, kr: self.nll(s, b, p, km, kr)
+
+    def profile(self, s: float | None) -> tuple[float, float]:
+        """(min NLL, yield there) at the yield ``s`` (None: free), the factors profiled."""
+        free = s is None
+        vals = np.full(self.kms.size, np.inf)
+        starts: list[dict] = [{}] * self.kms.size
+        i0 = int(np.argmin(np.abs(self.kms - self.cm)))
+        for order in (range(i0, self.kms.size), range(i0 - 1, -1, -1)):
+            st = {"b": self.n.sum() - (s or 0.0), "p": -1.0, "kr": self.cr}
+            st |= {"s": 10.0} if free else {}
+            for i in order:
+                m = self._minuit(self._at(s, self.kms[i]), **st)
+                m.strategy = 0
+                m.migrad()
+                st = dict(m.values.to_dict())
+                vals[i], starts[i] = m.fval, {**st, "km": self.kms[i]}
+        pad = np.concatenate([[np.inf], vals, [np.inf]])
+        wells = np.flatnonzero((vals <= pad[:-2]) & (vals <= pad[2:]))
+        best = (np.inf, s)
+        for i in wells[np.argsort(vals[wells])][:3]:   # the three lowest, polished
+            if free:
+                m = self._minuit(lambda s, b, p, kr, km: self.nll(s, b, p, km, kr),
+                                 **starts[i])
+            else:
+                m = self._minuit(lambda b, p, kr, km: self.nll(s, b, p, km, kr), **starts[i])
+            m.migrad()
+            val, yld = ((m.fval, m.values["s"] if free else s) if m.fval < vals[i]
+                        else (vals[i], starts[i].get("s", s)))
+            if val < best[0]:
+                best = (val, yld)
+        return best
+
+    def background(self) -> float:
+        m = Minuit(lambda b, p: self.nll(0.0, b, p, self.cm, self.cr), b=self.n.sum(), p=-1.0)
+        m.errordef = Minuit.LIKELIHOOD
+        m.migrad()
+        return m.fval
+
+    def q0(self) -> float:
+        """CCGV eq. 12: 0 where the lowest well's yield is negative."""
+        nll_hat, s_hat = self.profile(None)
+        return max(2.0 * (self.background() - nll_hat), 0.0) if s_hat > 0 else 0.0
+
+
+# ------------------------------------------------------------------------------ tests
+@pytest.mark.parametrize("index", [16, 14, 19])
+def test_scan_q0_takes_the_lowest_well_of_the_mass_scale(index):
+    """The scan's q0 at 150 GeV against the grid-profiled reference (CCGV eqs. 7, 12):
+    5e-3; and the result names the mass where the lowest well was not the nearest."""
+    n = _toy(index)
+    r = scan((n, EDGES), "gaussian", candidate_shapes(["exppoly1"])["exppoly1"],
+             np.array([MASS]), absolute_resolution=SIGMA, window=WINDOW, refit=False,
+             nuisances=NUIS)
+    assert r.q0[0] == pytest.approx(_Reference(n).q0(), abs=TOL)
+    assert any("several minima" in note for note in r.notes)
+
+
+def test_toy_limit_statistic_takes_the_lowest_well_of_the_mass_scale():
+    """The toy limits' q~mu (one ensemble of three toys, each with its own constraint
+    centres, at 20, 40 and 60 events in turn as the limits' grid asks) against the
+    reference (CCGV eq. 16: 0 where the free yield exceeds mu, the reference fit at
+    s = 0 where it is negative): 5e-3."""
+    idx = [11, 21, 23]
+    counts = np.array([_toy(i) for i in idx])
+    cens = np.array([_centers(i) for i in idx])
+    model, spec, info = _prepare_model(
+        (_toy(0), EDGES), "gaussian", candidate_shapes(["exppoly1"])["exppoly1"],
+        np.array([MASS]), absolute_resolution=SIGMA, window=WINDOW, natural_width=None,
+        blind=None, signal_params=None, bins=None, what="test")
+    base = _signal_params(info["signal"], spec.window, model.masses, info["sigma"], None,
+                          info["signal_params"])
+    task = _SystematicToyTask((model,), np.zeros(1), 0, 1.0, 0.0, "lognormal", info["signal"],
+                              tuple(np.asarray(p)[0:1] if np.ndim(p) else p for p in base),
+                              NUIS, 0.95, len(idx), 0, 50.0, np.full(5, 50.0))
+    ens = _Ensemble(task, counts, np.zeros(len(idx)), cens)
+    refs = [_Reference(counts[t], centers=tuple(cens[t])) for t in range(len(idx))]
+    free = [ref.profile(None) for ref in refs]
+    for mu in (20.0, 40.0, 60.0):
+        got = ens.q(mu)[0]
+        for t, (ref, (nll_hat, mu_hat)) in enumerate(zip(refs, free)):
+            nll_ref = nll_hat if mu_hat >= 0 else ref.background()
+            want = 0.0 if mu_hat > mu else max(2.0 * (ref.profile(mu)[0] - nll_ref), 0.0)
+            assert got[t] == pytest.approx(want, abs=TOL), (idx[t], mu)
+
+
+def test_global_significance_toys_take_the_lowest_well_of_the_mass_scale():
+    """Each toy's highest q0 with the nuisances (the refitted top points of its scan)
+    against the reference's q0 at that mass (CCGV eqs. 7, 12): 5e-3.  A toy's maximum
+    moves little with the lowest well (its top points are where the excess is): here the
+    first toy's, 1.382 at 157 GeV from the centre alone, is 1.373 at 157.5 GeV (at 157 the
+    lowest well is a deficit, q0 = 0); over 30 toys at most 0.015."""
+    masses = np.linspace(140.0, 160.0, 41)
+    r = scan((_toy(0), EDGES), "gaussian", candidate_shapes(["exppoly1"])["exppoly1"],
+             masses, absolute_resolution=SIGMA, window=WINDOW, refit=False, nuisances=NUIS)
+    q = run_nuisance_toy_batch(ToyBatch(r.model, SEED, 0, 2))
+    n = toy_counts(r.model.expected_background, SEED, 0, 2)
+    for t in range(2):
+        j = int(np.nanargmax(q[t]))
+        assert q[t, j] == pytest.approx(_Reference(n[t], mass=float(masses[j])).q0(),
+                                        abs=TOL)
+
+
+SEED = 14
