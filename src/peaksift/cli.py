@@ -572,6 +572,11 @@ def run() -> None:
     import atexit
     import os
 
+    if rc in (130, 143):  # stopped, its one line said: what the libraries' exit handlers log
+        import logging  # about the abandoned work (asyncio's futures of a local Dask cluster,
+        # seen once in a looped test) is no news to the user
+
+        logging.disable(logging.CRITICAL)
     atexit._run_exitfuncs()  # what a normal exit runs first; then the teardown is skipped
     for stream in (sys.stdout, sys.stderr):
         try:
