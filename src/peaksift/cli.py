@@ -513,13 +513,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
-    except Terminated:
+    except Terminated as stop:
         # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
-        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
-              file=sys.stderr)
+        print(_stopped(stop, "terminated (SIGTERM)", "the run's unfinished outputs were "
+                       "removed"), file=sys.stderr)
         return 143
-    except KeyboardInterrupt:
-        print("peaksift: interrupted; no outputs were written", file=sys.stderr)
+    except KeyboardInterrupt as stop:
+        print(_stopped(stop, "interrupted", "no outputs were written"), file=sys.stderr)
         return 130
     except BrokenPipeError:
         # the reader of our output left (`peaksift ... | head`): the run's files are written;
@@ -537,6 +537,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
               file=sys.stderr)
         return 143
+
+
+def _stopped(stop: BaseException, what: str, otherwise: str) -> str:
+    """The stop's one line; a stop held over the outputs' moves came after them (_output)."""
+    where = getattr(stop, "outputs_in", None)
+    return f"peaksift: {what}; " + (f"the outputs were all in place in {where} first"
+                                    if where else otherwise)
 
 
 #: True while the console command runs with the garbage collector paused (see run())
