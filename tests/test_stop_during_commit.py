@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from peaksift import _output
+from peaksift import _output, cli
 from peaksift._processes import Terminated, sigterm_as_interrupt
 
 NAMES = ["a.json", "b.json", "c.json"]
@@ -58,3 +58,16 @@ def test_a_stop_between_two_moves_comes_after_the_last(tmp_path, monkeypatch, na
     assert raised.type is kind and stopped
     assert {n: (target / n).read_text() for n in NAMES} == dict.fromkeys(NAMES, "this run")
     assert not list(target.glob(".peaksift-staging-*"))
+    # the command's one line then says the outputs are in place, not that they were removed
+    line = cli._stopped(raised.value, "stopped", "no outputs were written")
+    assert str(target) in line and "no outputs" not in line
+
+
+def test_a_stop_before_the_moves_says_nothing_was_written(tmp_path):
+    target = tmp_path / "out"
+    with pytest.raises(KeyboardInterrupt) as raised, _output.staged_output(target, "search") as f:
+        (f.path / NAMES[0]).write_text("this run")
+        raise KeyboardInterrupt
+    assert not (target / NAMES[0]).exists()
+    assert cli._stopped(raised.value, "stopped", "no outputs were written").endswith(
+        "no outputs were written")

@@ -327,10 +327,14 @@ def staged_output(target: str | os.PathLike[str] | None, command: str, *, share:
         raise
     # the moves into place are not cut short: a Ctrl-C or SIGTERM in the middle would leave
     # some files of this run beside the previous run's (a mix neither run wrote); it is
-    # raised once they are all in place (a few renames)
-    with signals_held():
-        try:
-            folder.commit()
-        except BaseException:
-            folder.discard()
-            raise
+    # raised once they are all in place (a few renames), saying so to whoever reports it
+    try:
+        with signals_held():
+            try:
+                folder.commit()
+            except BaseException:
+                folder.discard()
+                raise
+    except KeyboardInterrupt as stop:
+        stop.outputs_in = str(folder.target)  # type: ignore[attr-defined]
+        raise

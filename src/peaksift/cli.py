@@ -496,16 +496,16 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     parser = build_parser()
     args = parser.parse_args(argv)
-    if args.command not in ("search", "spectrum", "fit"):  # (these import a lot first)
-        _imports_done()
-    else:  # before their modules and configs import it the long way
-        from ._lean_imports import scipy_special
-
-        scipy_special()
-    _setup_logging(args)
-    warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
     try:
-        with sigterm_as_interrupt():
+        with sigterm_as_interrupt():  # from the first imports on (~0.5 s of scipy's)
+            if args.command not in ("search", "spectrum", "fit"):  # (these import a lot)
+                _imports_done()
+            else:  # before their modules and configs import it the long way
+                from ._lean_imports import scipy_special
+
+                scipy_special()
+            _setup_logging(args)
+            warnings.formatwarning = _one_line_warning  # type: ignore[assignment]
             rc = int(args.handler(args) or 0)
             if args.command == "demo" and rc == 0:
                 _demo_config_hook(args)
@@ -513,13 +513,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PeaksiftError as exc:
         print("peaksift: error: " + " ".join(str(exc).split()), file=sys.stderr)
         return 2
-    except Terminated:
+    except Terminated as stop:
         # SIGTERM (timeout, batch systems): the same clean-up as Ctrl-C, then 128 + 15
-        print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
-              file=sys.stderr)
+        print(_stopped(stop, "terminated (SIGTERM)", "the run's unfinished outputs were "
+                       "removed"), file=sys.stderr)
         return 143
-    except KeyboardInterrupt:
-        print("peaksift: interrupted; no outputs were written", file=sys.stderr)
+    except KeyboardInterrupt as stop:
+        print(_stopped(stop, "interrupted", "no outputs were written"), file=sys.stderr)
         return 130
     except BrokenPipeError:
         # the reader of our output left (`peaksift ... | head`): the run's files are written;
@@ -537,6 +537,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         print("peaksift: terminated (SIGTERM); the run's unfinished outputs were removed",
               file=sys.stderr)
         return 143
+
+
+def _stopped(stop: BaseException, what: str, otherwise: str) -> str:
+    """The stop's one line; a stop held over the outputs' moves came after them (_output)."""
+    where = getattr(stop, "outputs_in", None)
+    return f"peaksift: {what}; " + (f"the outputs were all in place in {where} first"
+                                    if where else otherwise)
 
 
 #: True while the console command runs with the garbage collector paused (see run())
@@ -572,6 +579,11 @@ def run() -> None:
     import atexit
     import os
 
+    if rc in (130, 143):  # stopped, its one line said: what the libraries' exit handlers log
+        import logging  # about the abandoned work (asyncio's futures of a local Dask cluster,
+        # seen once in a looped test) is no news to the user
+
+        logging.disable(logging.CRITICAL)
     atexit._run_exitfuncs()  # what a normal exit runs first; then the teardown is skipped
     for stream in (sys.stdout, sys.stderr):
         try:
