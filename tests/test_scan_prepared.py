@@ -44,6 +44,9 @@ def test_a_kept_preparation_follows_the_histogram_and_is_not_shared():
     np.testing.assert_array_equal(again.model.counts, counts)
     np.testing.assert_array_equal(again.model.theta, theta)
     assert again.model.counts is not first.model.counts
+    # a frozen value: the kept scan's arrays read-only like the first's
+    for name in ("masses", "sigma", "q0", "z_local", "p_local", "signal_yield", "blinded"):
+        assert not getattr(again, name).flags.writeable, name
     # 40 more events in the bins of 248-252 GeV, written into the histogram's own array
     sel = (edges[:-1] >= 248.0) & (edges[1:] <= 252.0)
     h.values()[sel] += 10.0

@@ -21,9 +21,11 @@ from typing import Any
 
 import numpy as np
 
+from .._jit import compiled_module
 from .._kept import Kept
+from ..likelihood.poisson import use_compiled
 from .checks import as_retries
-from .data import _log, prepare, start_bins
+from .data import FitData, _log, prepare, start_bins
 from .setup import Setup, entries, read_only, setup_of, yield_bounds, yield_starts
 
 __all__ = ["kept_setup"]
@@ -94,6 +96,9 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
     would be refused (:func:`~.setup.setup_of` then makes the setup, or says why not)."""
     if not other.first_cost:
         return None
+    su = _new_counts(data, retries, other)
+    if su is not None:
+        return su
     d = prepare(data, None, window, binned, bins)
     if d.total <= 0 or not d.binned:
         return None
@@ -119,6 +124,64 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
                tuple(read_only(a) for a in start_bins(d)))
     su.first_cost.append(other.first_cost[0].with_counts(counts, scale, base))
     return su
+
+
+def _new_counts(data: Any, retries: Any, other: Setup) -> Setup | None:
+    """:func:`_in_same_bins` for unweighted contents in the bins of an unweighted kept setup
+    fitted whole (no bins cut by the window): :func:`.count_pass.check_and_merge` checks the
+    contents and sums them, total and merged start bins, in one compiled pass (the numbers
+    :func:`~.data.prepare` and :func:`~.data.start_bins` give), and the new setup shares
+    ``other``'s edges, factors of 1 and start edges (the same values: the kernels and work
+    kept by those arrays are found again).  None for anything else (weighted, cut by the
+    window, refused: :func:`_in_same_bins`' general path decides)."""
+    od = other.d
+    edges, _, scale = other.binned_arrays
+    n, n2 = data.values(), data.variances()
+    if (od.weighted or edges.size != data.edges.size or not use_compiled()
+            or not (type(n) is np.ndarray and n.dtype == np.float64 and n.flags.c_contiguous
+                    and type(n2) is np.ndarray and n2.dtype == np.float64
+                    and n2.flags.c_contiguous and n2.size == n.size)):
+        return None
+    se, _, ssc = other.start_arrays
+    nbins = n.size
+    k = -(-nbins // _START_MOST)
+    merged, safe = np.empty(se.size - 1), np.empty(nbins)
+    kern = compiled_module(_COUNT_PASS)
+    verdict, total = kern.check_and_merge(n, n2, k, merged, safe)
+    if verdict != 0 or not total > 0:
+        return None
+    as_retries(retries)
+    if od.note:  # as prepare says it (the same window on the same edges)
+        _log.info(od.note)
+    counts = read_only(n)
+    if k > 1:
+        merged.flags.writeable = False
+    else:  # the fit's own bins (a copy of their own, as start_bins' read_only gave)
+        merged = read_only(n)
+    d = FitData(True, "data is a histogram", False, edges, counts, counts, None, None,
+                od.window, total, data.unit, None, od.note)
+    model = other.model
+    lower, upper = other.lower.copy(), other.upper.copy()
+    yield_bounds(model, total, lower, upper)
+    if not (lower < upper).all():
+        return None
+    base = other.base.copy()
+    for _, _, iy in model.blocks:
+        base[iy] = np.nan  # as a yield's start before setup_of's yield_starts
+    yield_starts(model, total, base)
+    su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
+               dict(other.floors), {}, [], [], {}, other.free_idx, other.inner_free,
+               total, (edges, counts, scale), (se, merged, ssc))
+    np.log(safe, out=safe)  # numpy's logarithm, as saturated_term takes it
+    su.first_cost.append(other.first_cost[0].with_counts(
+        counts, scale, base, saturated=kern.saturated_sum(counts, safe)))
+    return su
+
+
+#: :func:`~.data.start_bins`' most bins
+_START_MOST = 100
+#: the compiled pass, imported at its first use (importing the fitting loads no numba)
+_COUNT_PASS = "peaksift.fitting.count_pass"
 
 
 def _mass_histogram() -> type:

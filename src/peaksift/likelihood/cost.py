@@ -282,20 +282,25 @@ class BinnedCost(_Cost):
         its kernels, layout and compiled arrays again."""
         return self._on_data(*self._data, mask, full)
 
-    def with_counts(self, n: np.ndarray, scale: np.ndarray, full: np.ndarray) -> BinnedCost:
+    def with_counts(self, n: np.ndarray, scale: np.ndarray, full: np.ndarray,
+                    saturated: float | None = None) -> BinnedCost:
         """:meth:`at_values` on other counts ``n`` (scaled-Poisson factors ``scale``) in the
         same bins (another histogram of the same binning): the same numbers as a new cost on
-        them, without making its kernels, layout and compiled arrays again."""
-        return self._on_data(n, scale, self.mask, full)
+        them, without making its kernels, layout and compiled arrays again.  ``saturated``:
+        :func:`.poisson.saturated_term` of ``n`` where the caller has it (used when ``scale``
+        is this cost's own factors of 1 and every bin is used)."""
+        return self._on_data(n, scale, self.mask, full, saturated)
 
     def _on_data(self, n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None,
-                 full: np.ndarray) -> BinnedCost:
+                 full: np.ndarray, saturated: float | None = None) -> BinnedCost:
         c = _shallow_copy(self)
         c.full = np.asarray(full, float).copy()
         c._last, c._last_value, c._state, c._problem, c._empty = None, None, None, None, None
         c.ncall, c._buffers_at = 0, None
         c._data = (n, scale)
-        (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(n, scale, mask)
+        (c.mask, c.s, c.unit_scale, c.counts, c.n, c._const) = _binned_data(
+            n, scale, mask, ones=scale is self._data[1] and self.unit_scale,
+            saturated=saturated)
         c._fused = (None if self._fused is None else
                     self._fused.on_bins(c.mask, c.n, c.s, c.unit_scale))
         c._jac = np.zeros((c.free.size, c.n.size)) if c._fused is None else None
@@ -490,13 +495,25 @@ def _frozen(a: Any) -> bool:
     return isinstance(a, np.ndarray) and not a.flags.writeable
 
 
-def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None):
+def _binned_data(n: np.ndarray, scale: np.ndarray, mask: np.ndarray | None,
+                 ones: bool = False, saturated: float | None = None):
     """(mask or None, scale, unit scale?, counts, effective counts, constant of the
     saturated form) of the used bins; read-only arrays, kept for the last few read-only
-    inputs (the costs of one fit share them)."""
+    inputs (the costs of one fit share them).  ``ones``: ``scale`` is known to be all 1
+    (a cost's own read-only factors, found so); then ``saturated``, if given, is
+    ``saturated_term(n)``."""
     for entry in _RECENT:
         if entry[0] is n and entry[1] is scale and entry[2] is mask:
             return entry[3]
+    if (ones and mask is None and _frozen(n) and n.dtype == np.float64
+            and _frozen(scale)):
+        # every bin used, factors of 1 (read-only, so still 1): the effective counts are
+        # the counts themselves (n * 1.0 is n, bit for bit), no test of the factors
+        sat = float(saturated_term(n)) if saturated is None else float(saturated)
+        out = (None, scale, True, n, n, sat - 0.0)
+        _RECENT.insert(0, (n, scale, mask, out))
+        del _RECENT[6:]
+        return out
     used = None if mask is None or np.asarray(mask).all() else np.asarray(mask, bool)
     m = slice(None) if used is None else used
     s = np.asarray(scale, float)[m]

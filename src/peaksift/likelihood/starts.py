@@ -177,10 +177,22 @@ class _WidthProfile:
 
 def _median_bin(edges: np.ndarray) -> float:
     """``np.median(np.diff(edges))`` (the same number: the middle width, or the mean of the
-    two middle ones) from one sort, without ``median``'s ~30 us of dispatch."""
+    two middle ones) from one sort, without ``median``'s ~30 us of dispatch; kept for the
+    last read-only edges array (a kept setup's start bins: toys in the same bins)."""
+    seen = _MEDIAN_BIN[0]
+    if seen is not None and seen[0] is edges:
+        return seen[1]
     d = np.sort(np.diff(edges))
     k = d.size // 2
-    return float(d[k]) if d.size % 2 else float((d[k - 1] + d[k]) / 2.0)
+    out = float(d[k]) if d.size % 2 else float((d[k - 1] + d[k]) / 2.0)
+    if isinstance(edges, np.ndarray) and not edges.flags.writeable:
+        _MEDIAN_BIN[0] = (edges, out)
+    return out
+
+
+#: [(read-only edges, their median bin width)] of the last call (holds the array, so its
+#: identity stays valid)
+_MEDIAN_BIN: list = [None]
 
 
 def _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper):
@@ -309,7 +321,8 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     # sideband background: exclude +-3 widths around the candidate peak
     hw = 3.0 * max((s[i] for i in i_s), default=(edges[-1] - edges[0]) / 40)
     mask = np.abs(c - s[i_m]) > hw
-    if not bkg_given and mask.sum() > len(names) and (~mask).sum() > 0:
+    kept = int(np.count_nonzero(mask))  # (mask.sum()'s count, without its wrapper)
+    if not bkg_given and kept > len(names) and kept < mask.size:
         try:
             sb = background_start(model, edges, n, scale, mask, s, is_fixed, lower, upper)
             s[bsl] = sb[bsl]
@@ -318,7 +331,8 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
             pass
     bfr = background_counts(model, edges, s)
     sel = ~mask
-    resid = np.maximum(sign * (n[sel] - bfr[sel]), 0.0)  # np.clip(.., 0, None)
+    excess = n[sel] - bfr[sel]
+    resid = np.maximum(sign * excess, 0.0)  # np.clip(.., 0, None)
     i_sig = sl.start + shape.parameter_names.index("sigma") if (
         "sigma" in shape.parameter_names and shape.name in ("gaussian", "crystalball")) else None
     if (i_sig is not None and factor == 1.0 and narrow is None and names[i_sig] not in given
@@ -339,9 +353,9 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         if amount is not None:
             y = amount
         elif sign > 0:
-            y = max(float(np.sum(n[sel] - bfr[sel])), floor)
+            y = max(float(np.sum(excess)), floor)
         else:
-            y = min(float(np.sum(n[sel] - bfr[sel])), -floor)
+            y = min(float(np.sum(excess)), -floor)
             # a deficit no deeper than 90 % of the background under it anywhere, so that
             # every bin's expectation stays positive at the start
             f = shape.bin_fractions(edges, list(s[sl]), model.window)

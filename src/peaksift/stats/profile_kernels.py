@@ -30,7 +30,7 @@ from numba import njit, types
 from numba.extending import intrinsic
 from numba.np.arrayobj import make_array, populate_array
 
-from ..likelihood.kernels import solve_small, solve_small_into
+from ..likelihood.kernels import solve_sized_into, solve_small_into
 from ..shapes.compiled import exponential_rows, powerlaw_rows, vlog
 
 __all__ = ["first_error", "profile_rows"]
@@ -185,8 +185,8 @@ def _damped_step(hess, grad, lam, h, step, sm, sd):  # pragma: no cover - compil
         for c in range(p):
             h[a, c] = hess[a, c]
         h[a, a] += lam * (hess[a, a] + floor) + 1e-14 * floor
-    if p == 3:
-        return _solve3_into(h, grad, step, sm, sd)
+    if p == 3:   # (the size known: the solve's loops unrolled)
+        return solve_sized_into(h, grad, step, sm, sd, 3)
     return solve_small_into(h, grad, step, sm, sd)
 
 
@@ -383,50 +383,6 @@ def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, 
 
 
 @njit(cache=True, nogil=True)
-def _solve3_into(a, g, out, m, d):  # pragma: no cover - compiled
-    """:func:`peaksift.likelihood.kernels.solve_small_into` of a 3 x 3 system: the same
-    operations in the same order (the same bits), its loops' bounds known, so the compiler
-    unrolls them (a scan's rows solve ~6 of these each)."""
-    n = 3
-    for i in range(n):
-        v = math.sqrt(abs(a[i, i]))
-        d[i] = v if v > 0.0 else 1.0
-    for i in range(n):
-        for j in range(n):
-            m[i, j] = a[i, j] / (d[i] * d[j])
-        m[i, n] = g[i] / d[i]
-    for c in range(n):
-        p = c
-        big = abs(m[c, c])
-        for r in range(c + 1, n):
-            if abs(m[r, c]) > big:
-                big = abs(m[r, c])
-                p = r
-        if not big > 0.0:
-            return False
-        if p != c:
-            for j in range(c, n + 1):
-                t = m[c, j]
-                m[c, j] = m[p, j]
-                m[p, j] = t
-        for r in range(c + 1, n):
-            f = m[r, c] / m[c, c]
-            if f != 0.0:
-                for j in range(c, n + 1):
-                    m[r, j] -= f * m[c, j]
-    for i in range(n - 1, -1, -1):
-        acc = m[i, n]
-        for j in range(i + 1, n):
-            acc -= m[i, j] * out[j]
-        out[i] = acc / m[i, i]
-    for i in range(n):
-        out[i] = -out[i] / d[i]
-        if not math.isfinite(out[i]):
-            return False
-    return True
-
-
-@njit(cache=True, nogil=True)
 def first_error_into(hess, a, rhs, col, m, d):  # pragma: no cover - compiled
     """:func:`first_error` with the solve's work buffers ``m (p, p + 1)``, ``d (p,)`` (it
     allocated two arrays a row)."""
@@ -441,7 +397,7 @@ def first_error_into(hess, a, rhs, col, m, d):  # pragma: no cover - compiled
         a[i, i] += reg
         rhs[i] = 0.0
     rhs[0] = -1.0   # the solve gives -a^-1 rhs
-    ok = (_solve3_into(a, rhs, col, m, d) if p == 3
+    ok = (solve_sized_into(a, rhs, col, m, d, 3) if p == 3
           else solve_small_into(a, rhs, col, m, d))
     if not ok:
         return math.nan
@@ -454,19 +410,7 @@ def first_error(hess, a, rhs, col):  # pragma: no cover - compiled
     """:func:`peaksift.likelihood.first_error` of one row: ``sqrt((H + 1e-12 tr|H| I)^-1_00)``
     by :func:`peaksift.likelihood.kernels.solve_small` (``a``, ``rhs``, ``col``: work
     buffers); NaN where it is not positive or the system is singular.  This kernel's and
-    the joint loop's (:mod:`peaksift.stats.joint_driver`)."""
+    the joint loop's (:mod:`peaksift.stats.joint_driver`): :func:`first_error_into` with
+    the solve's buffers made here."""
     p = hess.shape[0]
-    tr = 0.0
-    for i in range(p):
-        tr += abs(hess[i, i])
-    reg = 1e-12 * tr
-    for i in range(p):
-        for j in range(p):
-            a[i, j] = hess[i, j]
-        a[i, i] += reg
-        rhs[i] = 0.0
-    rhs[0] = -1.0   # solve_small gives -a^-1 rhs
-    if not solve_small(a, rhs, col):
-        return math.nan
-    v = col[0]
-    return math.sqrt(v) if v > 0.0 else math.nan
+    return first_error_into(hess, a, rhs, col, np.empty((p, p + 1)), np.empty(p))

@@ -164,6 +164,10 @@ _FIRST_STEPS = 8
 HOPELESS = 1000.0
 
 
+#: ``_prepare_model``'s ``key`` when the caller made none: made there
+ASK = object()
+
+
 #: background-only fits of data made in this process, by their inputs (see
 #: :func:`_fit_data_background`), the newest last; at most _FITS_KEPT
 _FITS: OrderedDict[bytes, tuple[tuple[np.ndarray, ...], list[Any]]] = OrderedDict()
@@ -320,7 +324,7 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
                    background_start: Mapping[str, float] | None = None,
                    signal_model: Any = None, what: str = "scan",
                    background_fit: Callable[..., Any] | None = None,
-                   slots: list | None = None
+                   slots: list | None = None, key: Any = ASK
                    ) -> tuple[ScanModel, _Spectrum, dict[str, Any]]:
     """The model, spectrum and plan of a scan (:func:`_prepare_model_anew`), kept by their
     inputs where those are plain values (:func:`.scan_prepared.prepared_key`) and given
@@ -328,11 +332,15 @@ def _prepare_model(data: Any, signal: Any, background: Any, masses: Any, *,
     again.  The background-only fit is :func:`_fit_data_background`'s, or
     ``background_fit(proto, counts, start) -> (theta (1, K), b (1,), nll (1,))`` (the
     spurious-signal test's nested fits; then nothing is kept).  ``slots``, a list, receives
-    the kept entry's slot where the preparation is kept (:func:`.scan_prepared.keep_prepared`)."""
-    key = None if background_fit is not None else prepared_key(
-        data, signal, background, masses, resolution, relative_resolution,
-        absolute_resolution, window, natural_width, blind, signal_params, bins,
-        background_start, signal_model, what)
+    the kept entry's slot where the preparation is kept (:func:`.scan_prepared.keep_prepared`).
+    ``key``: :func:`.scan_prepared.prepared_key`'s of these inputs where the caller made it
+    already (``scan``'s kept call)."""
+    if background_fit is not None:
+        key = None
+    elif key is ASK:
+        key = prepared_key(data, signal, background, masses, resolution, relative_resolution,
+                           absolute_resolution, window, natural_width, blind, signal_params,
+                           bins, background_start, signal_model, what)
     hit = kept_prepared(key, slots)
     if hit is not None:
         return hit

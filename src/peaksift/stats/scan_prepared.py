@@ -31,7 +31,8 @@ from ..histogram import MassHistogram
 from ..likelihood.poisson import use_compiled
 from ..resolution import Resolution
 
-__all__ = ["handed_out", "keep_prepared", "kept_prepared", "prepared_key"]
+__all__ = ["handed_out", "handed_out_model", "keep_prepared", "kept_entry", "kept_prepared",
+           "model_parts", "prepared_key"]
 
 #: prepared models by key, the newest last; only those whose signal fractions have at most
 #: _CELLS_KEPT cells (as the plans: a 10,000-bin scan's are 8 MB each, and its preparation
@@ -128,6 +129,21 @@ def kept_prepared(key: tuple | None, slots: list | None = None) -> tuple | None:
     """The prepared ``(model, spectrum, info)`` kept under ``key`` (:func:`handed_out`),
     its warnings raised again; or None.  ``slots``, a list, receives the entry's slot (see
     :func:`keep_prepared`)."""
+    hit = kept_entry(key)
+    if hit is None:
+        return None
+    kept, seen, slot = hit
+    for message, category, filename, lineno in seen:
+        warnings.warn_explicit(message, category, filename, lineno)
+    if slots is not None:
+        slots.append(slot)
+    return handed_out(kept)
+
+
+def kept_entry(key: tuple | None) -> tuple | None:
+    """The entry kept under ``key``, now the newest: ``(kept, seen, slot)`` (the kept
+    parts, the warnings of the first preparation, the slot), or None.  For a caller that
+    hands out less than the whole preparation (``scan``'s kept call)."""
     if key is None:
         return None
     with _LOCK:
@@ -137,14 +153,7 @@ def kept_prepared(key: tuple | None, slots: list | None = None) -> tuple | None:
             return None
         if hit is not None:
             _KEPT.move_to_end(key)
-    if hit is None:
-        return None
-    kept, seen, slot = hit
-    for message, category, filename, lineno in seen:
-        warnings.warn_explicit(message, category, filename, lineno)
-    if slots is not None:
-        slots.append(slot)
-    return handed_out(kept)
+    return hit
 
 
 def keep_prepared(key: tuple, prepared: tuple, seen: list, slots: list | None = None
@@ -216,3 +225,29 @@ def handed_out(kept: tuple) -> tuple:
     spec = object.__new__(spec_type)
     spec.__dict__.update(out[1])
     return model, spec, out[2]
+
+
+def model_parts(kept: tuple) -> tuple:
+    """What :func:`handed_out_model` needs of a kept preparation: the model's type, its
+    fields, its arrays that were writable (with their field names) and its mappings."""
+    model_type, _, fields, _, _, groups, mappings = kept
+    arrays = tuple((a, tuple(name for part, name in places if part == 0))
+                   for a, places in groups if any(part == 0 for part, _ in places))
+    return model_type, fields, arrays, tuple(name for part, name in mappings if part == 0)
+
+
+def handed_out_model(parts: tuple) -> Any:
+    """The model of a kept preparation (:func:`model_parts`) as :func:`handed_out` gives
+    it, without the spectrum and the plan: fresh copies of its arrays that were writable,
+    a fresh ``extras``, the rest shared."""
+    model_type, fields, arrays, mappings = parts
+    out = fields.copy()
+    for a, names in arrays:
+        c = a.copy()
+        for name in names:
+            out[name] = c
+    for name in mappings:
+        out[name] = dict(out[name])
+    model = object.__new__(model_type)
+    model.__dict__.update(out)
+    return model

@@ -328,13 +328,22 @@ def _z_of_p(p: float) -> float:
 _FIELDS = frozenset(f.name for f in fields(ScanResult))
 
 
-def fresh_result(values: dict[str, Any], own: frozenset[str]) -> ScanResult:
+def fresh_result(values: dict[str, Any], own: frozenset[str], *,
+                 kept: bool = False) -> ScanResult:
     """``ScanResult(**values)`` (every field given) as :class:`~peaksift._values.FrozenValue`
     makes it, for less: the arrays named in ``own``, made for this result alone, are made
     read-only in place rather than through a read-only view (the other arrays get their
     view, so the caller's stay writable); the frozen dataclass's ``__init__`` (a
     ``object.__setattr__`` per field) skipped.  The construction cost ~20 us of a 100-bin
-    scan with cold caches.  A mapping among the values: the usual construction."""
+    scan with cold caches.  A mapping among the values: the usual construction.
+    ``kept``: the values of a kept scan (``scan._kept_scan``: every field, no mapping,
+    every array not in ``own`` a read-only view already), taken as they are."""
+    if kept:
+        obj = object.__new__(ScanResult)
+        obj.__dict__.update(values)
+        for name in own:
+            values[name].flags.writeable = False
+        return obj
     if values.keys() != _FIELDS:
         return ScanResult(**values)
     obj = object.__new__(ScanResult)
