@@ -75,18 +75,30 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
     moved = np.zeros(nb, bool)
     for c, (m, sp) in enumerate(zip(models, shapes)):
         fc = np.asarray(r["factors"][c])
-        if sp is None or not needs_scan(sp[0], sp[1], sp[2], nb).any():
+        rows = (np.zeros(0, np.intp) if sp is None
+                else np.flatnonzero(needs_scan(sp[0], sp[1], sp[2], nb)))
+        if rows.size == 0:
             starts.append(None if sp is None else fc)
             continue
         sig, base, nuis = sp
-        cen = None if centers is None or centers[c] is None else np.asarray(centers[c])
-        with np.errstate(all="ignore"):
-            g = profile_global(m, counts[c], sig, base, nuis,
-                               start={"s": mu * np.asarray(conv[c], float), "b": r["b"][c],
-                                      "theta": r["theta"][c], "factors": fc},
+
+        def take(v: Any, rows: np.ndarray = rows) -> Any:
+            v = np.asarray(v)
+            return v[rows] if v.ndim and v.shape[0] == nb else v
+
+        n_c = np.asarray(counts[c], float)
+        cen = None if centers is None or centers[c] is None else take(centers[c])
+        with np.errstate(all="ignore"):   # the scanned hypotheses alone
+            g = profile_global(m, n_c[rows] if n_c.ndim == 2 else n_c, sig,
+                               [take(p) if np.ndim(p) else p for p in base], nuis,
+                               start={"s": take(mu * np.asarray(conv[c], float)),
+                                      "b": take(r["b"][c]), "theta": take(r["theta"][c]),
+                                      "factors": take(fc)},
                                centers=cen, fixed_signal=mu_fixed is not None, tol=1e-5)
-        starts.append(g["factors"])
-        moved |= g["moved"]
+        f_new = fc.copy()
+        f_new[rows] = g["factors"]
+        starts.append(f_new)
+        moved[rows] |= g["moved"]
     if not moved.any():
         return r
     r2 = fit(factors_start=starts, mu_start=r["mu"] if mu_fixed is None else None,
