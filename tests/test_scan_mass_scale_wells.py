@@ -156,6 +156,27 @@ def test_scan_q0_takes_the_lowest_well_of_the_mass_scale(index):
     assert any("several minima" in note for note in r.notes)
 
 
+def test_an_envelopes_notes_name_the_function_whose_q0_took_another_well():
+    """With two background functions, each function's note names it: the one whose q0 at
+    150 GeV took a lower well than the nearest is the one the grid-profiled reference
+    (CCGV eqs. 7, 12; iminuit, 5e-3) matches with the lowest well."""
+    from peaksift.search.systematics import several_minima_notes
+    from peaksift.stats.envelope import envelope_scan
+
+    n = _toy(16)
+    shapes = candidate_shapes(["exppoly1", "powersum1"])
+    env = envelope_scan((n, EDGES), {"exppoly1": shapes["exppoly1"],
+                                     "powersum1": shapes["powersum1"]}, "gaussian",
+                        np.array([MASS]), absolute_resolution=SIGMA, window=WINDOW,
+                        nuisances=NUIS)
+    k = env.labels.index("exppoly1")
+    assert env.scans[k].q0[0] == pytest.approx(_Reference(n).q0(), abs=TOL)
+    notes = several_minima_notes(env)
+    assert notes and all(note.startswith(("significance (exppoly1): ",
+                                          "significance (powersum1): ")) for note in notes)
+    assert any(note.startswith("significance (exppoly1): ") for note in notes)
+
+
 def test_toy_limit_statistic_takes_the_lowest_well_of_the_mass_scale():
     """The toy limits' q~mu (one ensemble of three toys, each with its own constraint
     centres, at 20, 40 and 60 events in turn as the limits' grid asks) against the

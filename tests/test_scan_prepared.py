@@ -5,6 +5,7 @@ fits of a binned Poisson NLL written out in test_scan.py."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from test_scan import WINDOW, _iminuit_q0
 
 from peaksift import MassHistogram
@@ -56,3 +57,41 @@ def test_a_kept_preparation_follows_the_histogram_and_is_not_shared():
                    refit=False)
     _check(changed, counts, edges, "changed")
     assert changed.q0[1] > again.q0[1] + 1.0
+
+
+def test_a_kept_scan_with_a_failed_row_gives_its_significances(monkeypatch):
+    """A compiled fit whose NLL comes back NaN at one hypothesis (the table's ``plain``
+    off: numpy's rules decide q0 there): the second scan of the same inputs, from the kept
+    entry, gives every other hypothesis Z = sqrt(q0) (Cowan et al. 2011 eq. 52) and
+    p = 1 - Phi(Z) (scipy.stats.norm.sf; rel. 1e-12), with q0 iminuit's (as above), and
+    NaN at the failed one -- as the first scan, not a raw exception."""
+    from scipy import stats
+
+    from peaksift.stats.toy_model import _compiled
+
+    calls = _compiled()
+    real = calls.scan_table
+
+    def one_failed(*args):
+        out = list(real(*args))
+        s, nll = out[1].copy(), out[4].copy()
+        s[1], nll[1] = 1.0 + abs(s[1]), np.nan  # as a fit that failed at the second mass
+        out[1], out[4], out[11] = s, nll, False
+        return tuple(out)
+
+    monkeypatch.setattr(calls, "scan_table", one_failed)
+    rng = np.random.default_rng(5)
+    x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 20_000),
+                        rng.normal(180.0, SIGMA, 150)])
+    h = MassHistogram(bins=200, range=WINDOW).fill(x)
+    counts, edges = np.histogram(x, bins=200, range=WINDOW)
+    for what in ("first", "kept"):
+        r = scan(h, "gaussian", "exponential", MASSES, absolute_resolution=SIGMA,
+                 refit=False)
+        for j in (0, 2):
+            q0, _, _ = _iminuit_q0(edges, counts, MASSES[j], SIGMA)
+            assert abs(r.q0[j] - q0) < 0.02 + 1e-3 * q0, (what, j)
+            z = np.sqrt(r.q0[j])
+            assert r.z_local[j] == pytest.approx(z, rel=1e-12), what
+            assert r.p_local[j] == pytest.approx(stats.norm.sf(z), rel=1e-12), what
+        assert r.best_index == 0, what  # the injected peak at 180

@@ -35,6 +35,11 @@ CHILDREN = {
     # waiting for input that does not come (a slow download looks so): select(2)
     "waiting on input": "import select; print(1, flush=True); select.select([], [], [], 60)",
     "busy": "print(1, flush=True)\nwhile True: pass",
+    # a task waiting (futex) on a helper thread of its own that sleeps between attempts,
+    # as a retry with back-off does: healthy, its helper wakes to try again
+    "waiting on a helper in back-off": (
+        "import threading, time; t = threading.Thread(target=time.sleep, args=(60,)); "
+        "t.start(); print(1, flush=True); t.join()"),
 }
 
 
@@ -71,6 +76,25 @@ def test_only_a_deadlocked_process_is_called_stuck(kind):
         assert found is not None and found[0] == proc.pid and found[1] >= 1.0
     else:
         assert found is None
+
+
+def test_the_parent_watch_thread_is_the_one_allowed_to_sleep():
+    """A worker's parent-watch thread (``die_with_parent``) sleeps in ``clock_nanosleep``
+    while its task is blocked on a lock: stuck; the same with an unnamed sleeping thread
+    (a back-off above): not.  The watch tells the two apart by the thread's name, which a
+    thread sets for itself in ``/proc/<pid>/task/<tid>/comm`` (proc(5))."""
+    code = ("import os, threading; from peaksift._processes import die_with_parent; "
+            "die_with_parent(os.getppid()); l = threading.Lock(); l.acquire(); "
+            "print(1, flush=True); l.acquire()")
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE,
+                            env={**os.environ, "PYTHONPATH": os.pathsep.join(sys.path)})
+    try:
+        assert proc.stdout.readline().strip() == b"1"
+        found = _watch_for([proc.pid], limit=1.0, seconds=4.0)
+    finally:
+        proc.kill()
+        proc.wait()
+    assert found is not None and found[0] == proc.pid
 
 
 def test_a_cpu_starved_process_is_not_called_stuck():

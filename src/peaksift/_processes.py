@@ -253,7 +253,14 @@ def die_with_parent(parent: int) -> None:
         os._exit(1)
     import threading
 
+    from ._stall import SLEEPER
+
     def watch() -> None:
+        # named for the stall watch: the one thread of a worker that may sleep while its
+        # task waits on a lock (proc(5): a thread may set its own comm)
+        with (contextlib.suppress(OSError),
+              open(f"/proc/self/task/{threading.get_native_id()}/comm", "w") as f):
+            f.write(SLEEPER)
         while True:
             time.sleep(_WATCH_INTERVAL)
             if os.getppid() != parent:

@@ -12,8 +12,10 @@ A worker is *stuck* when, at every look for ``limit`` seconds in a row:
 
 * its main thread (the one running the task) waits in ``futex(2)`` -- on a lock or a
   condition, which only another thread of its own could release;
-* every other thread of it waits in ``futex`` too, or sleeps (``nanosleep``: the
-  parent-watch thread of :func:`peaksift._processes.die_with_parent`);
+* every other thread of it waits in ``futex`` too, or is the parent-watch thread of
+  :func:`peaksift._processes.die_with_parent` asleep (``nanosleep``; found by the name
+  :data:`SLEEPER` it gives itself: another thread asleep is a back-off between attempts
+  of a retried request, which wakes to try again);
 * no thread of it is running, runnable (state R: a starved thread on a loaded machine is
   runnable), in uninterruptible I/O (D: a slow disk, a network file system) or stopped
   (T/t: a debugger), and none waits in any other system call (a read, ``poll``/``epoll``:
@@ -43,6 +45,10 @@ from typing import Any
 DEFAULT_LIMIT = 120.0
 #: seconds between two looks (the wait for a task's result is cut into these)
 LOOK = 2.0
+
+#: the OS name of the parent-watch thread (``/proc/<pid>/task/<tid>/comm``, at most 15
+#: bytes): the one thread that may sleep in a stuck worker
+SLEEPER = "peaksift-parent"
 
 #: system call numbers (``futex``, and the sleeps) of the architectures we know
 _SYSCALLS = {"x86_64": (202, {35, 230}), "aarch64": (98, {101, 115})}
@@ -95,11 +101,17 @@ def snapshot(pid: int) -> tuple[bool, int] | None:
                 blocked = False
                 continue
             nr = int(call[0])
-            if nr != futex and (int(tid) == pid or nr not in sleeps):
+            if nr != futex and (int(tid) == pid or nr not in sleeps
+                                or _name(pid, tid) != SLEEPER):
                 blocked = False
     except (OSError, ValueError, IndexError):
         return None
     return blocked, ticks
+
+
+def _name(pid: int, tid: str) -> str:
+    with open(f"/proc/{pid}/task/{tid}/comm") as f:
+        return f.read().strip()
 
 
 class StallWatch:

@@ -459,3 +459,14 @@ def profile_one_yield(n, b, s, f, steps, y_out, gain_out):  # pragma: no cover -
         gain *= 2.0
         y_out[r] = y
         gain_out[r] = gain if math.isfinite(gain) else 0.0
+
+
+@njit(cache=True, nogil=True)
+def bin_counts(cdf, y, out):  # pragma: no cover - compiled
+    """``numpy.maximum(cdf[1:] - cdf[:-1], 0.0) * y`` into ``out`` (a component's expected
+    counts from its CDF row at the edges): the same operations, with numpy's maximum --
+    the difference where it is above 0 or NaN, else the 0 (so -0.0 gives +0.0, as numpy's
+    does)."""
+    for i in range(out.size):
+        d = cdf[i + 1] - cdf[i]
+        out[i] = (d if (d > 0.0 or math.isnan(d)) else 0.0) * y

@@ -205,9 +205,12 @@ def background_counts(model: Model, edges: np.ndarray, v: np.ndarray) -> np.ndar
     bshape, bsl, biy = model.blocks[-1]
     p = v[bsl].tolist()  # (Python floats, as float() of each)
     if use_compiled():
-        kern = compiled_module(KERNELS_MODULE).edge_kernel(bshape, edges, model.window)
+        kernels = compiled_module(KERNELS_MODULE)
+        kern = kernels.edge_kernel(bshape, edges, model.window)
         if kern is not None:
             out = np.empty((kern.rows, edges.size))
-            if kern(p, out):
-                return np.maximum(out[0, 1:] - out[0, :-1], 0.0) * float(v[biy])
+            if kern(p, out):  # max(difference, 0) * yield, as numpy's calls made it
+                counts = np.empty(edges.size - 1)
+                kernels.bin_counts(out[0], float(v[biy]), counts)
+                return counts
     return bshape.bin_fractions(edges, p, model.window) * v[biy]

@@ -50,26 +50,6 @@ BAND = 1e-12
 
 
 @njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
-def _nll2(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c):  # pragma: no cover
-    """sum(s mu - n s ln(s mu)) of mu = a0 f[m] + a1 g over all bins: the band [j0, j1)
-    term by term, the rest (background only) from its sums; inf when mu <= 0 anywhere.
-    (No early exit and vlog: the band's loop vectorises.)"""
-    if not a1 > 0.0 and (out_g > 0.0 or out_n > 0.0):
-        return math.inf
-    val = a1 * out_g - out_c
-    if out_n > 0.0:
-        val -= out_n * math.log(a1)
-    bad = 0
-    band = 0.0
-    for j in range(j0, j1):
-        mu = a0 * f[m, j] + a1 * g[j]
-        bad += 0 if mu > 0.0 else 1
-        smu = s[j] * mu
-        band += smu - n[j] * s[j] * vlog(smu)
-    return math.inf if bad else val + band
-
-
-@njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
 def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - compiled
     """Profile a signal yield and a background normalisation at each trial mass: row m of
     ``f`` holds the signal's bin fractions at mass m, ``g`` the background's; ``x (M, 2)``
@@ -98,8 +78,11 @@ def profile_two_yields(n, s, f, g, x, nll, iterations):  # pragma: no cover - co
 
 @njit(cache=True, nogil=True, fastmath=_SUMS, error_model="numpy")
 def _nll2_grad(n, s, f, g, m, j0, j1, a0, a1, out_g, out_n, out_c):  # pragma: no cover
-    """:func:`_nll2` at ``(a0, a1)`` with, from the same pass over the band, the gradient
-    ``(g0, g1)`` and the Fisher information ``(h00, h01, h11)`` there."""
+    """sum(s mu - n s ln(s mu)) of mu = a0 f[m] + a1 g over all bins at ``(a0, a1)``: the
+    band [j0, j1) term by term, the rest (background only) from its sums; inf when mu <= 0
+    anywhere.  With it, from the same pass over the band, the gradient ``(g0, g1)`` and the
+    Fisher information ``(h00, h01, h11)`` there.  (No early exit and vlog: the band's
+    loop vectorises.)"""
     mu1 = max(1e-300, a1)
     # background-only bins: d/da1 = sum s g - n s / a1, information sum s g / a1
     g0 = 0.0

@@ -2,16 +2,19 @@
 
 Two questions of :func:`~peaksift.likelihood.starts.fit_starts`, answered for a Gaussian
 signal on compiled rows (:func:`peaksift.shapes.compiled.gaussian_rows`) with the signal and
-background yields profiled (:func:`.start_kernels.profile_two_yields`), the mass and the
-background's shape held:
+background yields profiled (:func:`.start_kernels.profile_two_yields`):
 
 * :func:`scan_width` -- which width a fresh start at a candidate mass should take (the lowest
-  profile NLL among :data:`WIDTH_FACTORS` of the start width);
+  profile NLL among :data:`WIDTH_FACTORS` of the start width, the mass and the background's
+  shape held);
 * :func:`other_widths` -- whether the best minimum found so far leaves room for another
   minimum at a different width of the same peak (a narrow and a wide solution of one
-  excess), and at which widths: the local minima of the profile NLL over
-  :data:`OTHER_FACTORS` of its width other than its own.  A free fit then minimises from
-  those widths only, instead of from every other width blindly.
+  excess), and at which widths and masses: the local minima of the profile NLL over
+  :data:`OTHER_FACTORS` of its width other than its own, the mass profiled too and the
+  background's shape relaxed (:mod:`.width_path`).  A free fit then minimises from those
+  only, instead of from every other width blindly.  (With the mass held at the best
+  minimum's, the profile missed a wide solution 6 GeV away and a narrow one 0.6 GeV away,
+  0.23 and 0.18 in -2 ln L below the reported minima of two 5 sigma toys.)
 
 Both return None for other shapes or without the compiled path: the caller then does what
 it would without them.
@@ -25,9 +28,12 @@ import numpy as np
 
 from .._jit import compiled_module
 from ..shapes import Gaussian
-from .poisson import START_KERNELS_MODULE, use_compiled
+from .poisson import KERNELS_MODULE, START_KERNELS_MODULE, use_compiled
 
-__all__ = ["OTHER_FACTORS", "WIDTH_FACTORS", "other_widths", "scan_width"]
+__all__ = ["OTHER_FACTORS", "OTHER_MARGIN", "PATH_RISE", "WIDTH_FACTORS", "background_rows",
+           "other_widths", "scan_width"]
+
+WIDTH_PATH_MODULE = "peaksift.likelihood.width_path"
 
 #: the widths the start of a Gaussian peak is chosen among: its start width times these
 #: (steps of sqrt 2 from 1/16 to 2), those below half a bin of the coarse histogram left
@@ -40,6 +46,21 @@ WIDTH_FACTORS = 2.0 ** (np.arange(-8, 3) / 2)
 #: only by the path a start at 0.4 happened to take)
 OTHER_FACTORS = 2.0 ** (np.arange(-6, 7) / 2)
 _OTHER_FACTORS = OTHER_FACTORS.tolist()
+
+#: :func:`other_widths` walks away from the best minimum's width until the profile has
+#: risen this much above it (and still rises): a minimum of the same excess that far up
+#: the profile's walls does not come back below it; a strong peak's profile passes it
+#: within a width or two, so its wide widths (most of the cost) are not computed
+PATH_RISE = 25.0
+
+#: another minimum of the profile is started from only when it lies at most this much
+#: above the best minimum's own width (in NLL): only a lower minimum can replace the best,
+#: and the profile's relaxed background shape is a second-order estimate (within ~10 % of
+#: what the shape's freedom gains, ``tests/test_likelihood_width_path.py``).  On
+#: ``scripts/check_fit_minima.py``'s set every start that ended lower came from a minimum
+#: of the profile below its own width's (a margin of 0 lost none, one of 1 started 1 %
+#: more cost evaluations)
+OTHER_MARGIN = 0.5
 
 
 #: each signal row of :func:`_profiled` is computed on the edges within this many of its
@@ -94,32 +115,67 @@ def scan_width(shape, edges, n, scale, bexp, mass, width, lo_w, hi_w, window, si
     return float(widths[best]) if math.isfinite(q[best]) else None
 
 
-def other_widths(shape, edges, n, scale, bexp, mass, width, signal_yield, lo_w, hi_w,
-                 window, most):
-    """Other minima along the width of a Gaussian peak whose best minimum so far has
-    ``mass``, ``width`` and ``signal_yield`` on the background expectation ``bexp``.
+def background_rows(model, edges: np.ndarray, v: np.ndarray,
+                    is_fixed: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The background's expected counts in the bins ``edges`` at the full parameter vector
+    ``v`` and their derivatives ``(K, B)`` in its K free shape parameters (the yield left
+    out): from its compiled edge kernel where it has one (the rows
+    :func:`.start_background.background_counts` makes and drops), else
+    ``fractions_and_grad``."""
+    bshape, bsl, biy = model.blocks[-1]
+    p = [float(q) for q in v[bsl]]
+    free = [i for i in range(bsl.stop - bsl.start) if not is_fixed[bsl.start + i]]
+    total = float(v[biy])
+    kern = compiled_module(KERNELS_MODULE).edge_kernel(bshape, edges, model.window)
+    if kern is not None:
+        out = np.empty((kern.rows, edges.size))
+        if kern(p, out):
+            d = out[1:][free]
+            return (np.maximum(out[0, 1:] - out[0, :-1], 0.0) * total,
+                    (d[:, 1:] - d[:, :-1]) * total)
+    frac, grad = bshape.fractions_and_grad(edges, p, model.window)
+    return frac * total, np.asarray(grad, float)[free] * total
 
-    The profile NLL (both yields profiled, mass and background shape held) at ``width *
-    OTHER_FACTORS`` (inside ``[lo_w, hi_w]``): its local minima (an end of the grid counts
-    when the profile falls towards it) other than the one the best minimum's own width lies
-    in, at most ``most``, the lowest first, as ``[(factor, signal yield, background
-    total / bexp's total)]``.  An empty list: the profile has one minimum, the best one's,
-    so a start at another width slides back into it.  None for other shapes or without the
-    compiled path."""
+
+def other_widths(shape, edges, n, scale, background, mass, width, signal_yield, lo_w, hi_w,
+                 lo_m, hi_m, window, most):
+    """Other minima along the width of a Gaussian peak whose best minimum so far has
+    ``mass``, ``width`` and ``signal_yield`` on the background ``(expected counts,
+    derivatives in its free shape parameters)`` of :func:`background_rows`.
+
+    The profile NLL at ``width * OTHER_FACTORS`` (inside ``[lo_w, hi_w]``) with both yields
+    and the mass (inside ``[lo_m, hi_m]``) profiled and the background's shape relaxed
+    (:func:`.width_path.width_path`): its local minima (an end of the grid counts when the
+    profile falls towards it) other than the one the best minimum's own width lies in and
+    at most :data:`OTHER_MARGIN` above that one's lowest, at most ``most``, the lowest
+    first, as ``[(factor, signal yield, background total / the background's total,
+    mass)]``.  An empty list: the profile has one minimum, the best
+    one's, so a start at another width slides back into it.  None for other shapes or
+    without the compiled path."""
     if type(shape) is not Gaussian or not use_compiled() or most <= 0:
         return None
     factors = [f for f in _OTHER_FACTORS if lo_w <= width * f <= hi_w]
     if len(factors) < 2 or 1.0 not in factors:
         return None
-    out = _profiled(edges, n, scale, bexp, mass, np.array([width * f for f in factors]),
-                    window, (signal_yield, None))
-    if out is None:
+    bexp, dg = background
+    b0 = np.maximum(bexp, 1e-12)
+    btot = float(b0.sum())
+    if not btot > 0:
         return None
-    y, nll, btot = out
-    # (on the few widths as Python floats: numpy's calls cost more than the work here)
-    q = [v if math.isfinite(v) else math.inf for v in nll.tolist()]
-    last = len(q) - 1
+    lo, hi = float(window[0]), float(window[1])
+    x = np.minimum(np.maximum(np.asarray(edges, float), lo), hi)
+    sc = np.ones(b0.size) if scale is None else np.ascontiguousarray(scale, float)
     own = factors.index(1.0)
+    out = np.empty((len(factors), 4))
+    if not compiled_module(WIDTH_PATH_MODULE).width_path(
+            x, lo, hi, np.ascontiguousarray(n, float), sc, b0 / btot,
+            np.ascontiguousarray(dg, float) / btot, float(mass), max(lo, float(lo_m)),
+            min(hi, float(hi_m)), np.array([width * f for f in factors]), own, _BAND_SIGMAS,
+            float(signal_yield), btot, PATH_RISE, out):
+        return None
+    # (on the few widths as Python floats: numpy's calls cost more than the work here)
+    q = [v if math.isfinite(v) else math.inf for v in out[:, 3].tolist()]
+    last = len(q) - 1
     while True:  # descend from the best minimum's own width: the basin it lies in
         left = q[own - 1] if own > 0 else math.inf
         right = q[own + 1] if own < last else math.inf
@@ -130,6 +186,7 @@ def other_widths(shape, edges, n, scale, bexp, mass, width, signal_yield, lo_w, 
     lows = [i for i in range(len(q)) if math.isfinite(q[i])
             and q[i] < (q[i - 1] if i > 0 else math.inf)
             and q[i] <= (q[i + 1] if i < last else math.inf)]
-    lows = [i for i in sorted(lows, key=q.__getitem__) if i != own]  # stable, as argsort's
-    ys = y.tolist()
-    return [(factors[i], ys[i][0], ys[i][1] / btot) for i in lows[:most]]
+    lows = [i for i in sorted(lows, key=q.__getitem__)  # stable, as argsort's
+            if i != own and q[i] <= q[own] + OTHER_MARGIN]
+    rows = out.tolist()
+    return [(factors[i], rows[i][1], rows[i][2] / btot, rows[i][0]) for i in lows[:most]]

@@ -29,7 +29,7 @@ from .coarse_scan import coarse_gains, peak_candidates
 from .model import Model
 from .narrow import NARROW_MARGIN, narrow_candidates
 from .start_background import background_counts, background_start
-from .start_widths import other_widths, scan_width
+from .start_widths import background_rows, other_widths, scan_width
 
 __all__ = [
     "CANDIDATE_MARGIN",
@@ -118,11 +118,11 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
             if near is not None and factor != 1.0 and free_widths:
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
-                found = profile(near) if rank >= 0 else None
+                found = profile.take(near) if rank >= 0 else None
                 if found is not None:  # only where the width's profile has a minimum
-                    if rank >= len(found):
+                    if not found:
                         return None
-                    factor = found[rank][0]
+                    factor = found[0]
                 s = np.asarray(near, float).copy()
                 for i in free_widths:
                     s[i] = _clip(s[i] * factor, lower[i], upper[i])
@@ -130,8 +130,9 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                     s[i] = _clip(base[i], lower[i], upper[i])
                 if found is not None:  # the yields profiled at that width
                     iy, biy = model.blocks[0][2], model.blocks[-1][2]
-                    s[iy] = _clip(found[rank][1], lower[iy], upper[iy])
-                    s[biy] = _clip(s[biy] * found[rank][2], lower[biy], upper[biy])
+                    s[iy] = _clip(found[1], lower[iy], upper[iy])
+                    s[biy] = _clip(s[biy] * found[2], lower[biy], upper[biy])
+                    s[i_m] = _clip(found[3], lower[i_m], upper[i_m])  # and the mass
                 return s
             with np.errstate(all="ignore"):
                 return _one_start(model, edges, n, scale, base, vb, c, mm, factor, i_m, i_s,
@@ -154,22 +155,37 @@ class _WidthProfile:
               and len(free_widths) == 1
               and free_widths[0] == sl.start + shape.parameter_names.index("sigma")
               and not is_fixed[i_m] and not is_fixed[iy] and not is_fixed[blocks[-1][2]])
-        self._args = (model, fine, i_m, free_widths[0], lower, upper, most) if ok else None
+        self._args = (model, fine, i_m, free_widths[0], lower, upper, most, is_fixed) if ok \
+            else None
         self._seen: dict = {}
+        self._taken: dict = {}
+
+    def take(self, near: np.ndarray):
+        """The next of the profile's minima at ``near`` not yet started from (``()`` when
+        none is left; None where the profile does not apply).  Counted per minimum: when a
+        start replaces the best minimum, the next start takes the new profile's lowest,
+        not its second (which skipped a minimum 0.07 lower in a demo fit)."""
+        found = self(near)
+        if found is None:
+            return None
+        key = np.asarray(near, float).tobytes()
+        k = self._taken.get(key, 0)
+        self._taken[key] = k + 1
+        return found[k] if k < len(found) else ()
 
     def __call__(self, near: np.ndarray):
         if self._args is None:
             return None
         key = np.asarray(near, float).tobytes()
         if key not in self._seen:
-            model, (fe, fn, fsc), i_m, i_w, lower, upper, most = self._args
+            model, (fe, fn, fsc), i_m, i_w, lower, upper, most, is_fixed = self._args
             shape, _, iy = model.blocks[0]
             try:
                 with np.errstate(all="ignore"):
-                    bexp = background_counts(model, fe, near)
                     self._seen[key] = other_widths(
-                        shape, fe, fn, fsc, bexp, float(near[i_m]), float(near[i_w]),
-                        float(near[iy]), lower[i_w], upper[i_w], model.window, most)
+                        shape, fe, fn, fsc, background_rows(model, fe, near, is_fixed),
+                        float(near[i_m]), float(near[i_w]), float(near[iy]), lower[i_w],
+                        upper[i_w], lower[i_m], upper[i_m], model.window, most)
             except _NUMERIC:
                 self._seen[key] = None
         return self._seen[key]

@@ -107,6 +107,20 @@ def _with_spurious(block: dict[str, Any], sp: dict[str, dict[str, Any]], cfg: Co
     return {**block, "spurious_signal": out, "notes": notes + list(block["notes"])}
 
 
+def several_minima_notes(obj: Any) -> list[str]:
+    """The notes of a scan (or of each function of an envelope, named: their masses
+    differ, and unnamed they read as one warning said several times) where the q0 took a
+    lower well of the mass scale than the nearest one."""
+    scans = getattr(obj, "scans", None) or (obj,)
+    labels = getattr(obj, "labels", None) or ()
+    out = []
+    for k, sc in enumerate(scans):
+        who = f" ({labels[k]})" if len(scans) > 1 and k < len(labels) else ""
+        out.extend(f"significance{who}: {note}"
+                   for note in dict.fromkeys(sc.notes) if "several minima" in note)
+    return out
+
+
 def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
                     natural_width: float | None, blind: Any, best_plain: dict[str, Any],
                     progress: bool, executor: Any,
@@ -220,9 +234,7 @@ def run_systematics(cfg: Config, hist: Any, signal: Any, masses: np.ndarray, *,
         block["nuisance_pulls"] = _pulls(nuis, sres.nuisance_factors, sres.best_index)
         obj = sres
     # q0 where the mass scale's lowest well was not the nearest one (doubts.py flags it)
-    for note in dict.fromkeys(n for sc in getattr(obj, "scans", None) or (obj,)
-                              for n in sc.notes if "several minima" in n):
-        block["notes"].append(f"significance: {note}")
+    block["notes"].extend(several_minima_notes(obj))
     best = dict(best)
     block["with_systematics"] = best
     block["without_systematics"] = dict(best_plain)

@@ -306,7 +306,7 @@ def _kept_scan(key: tuple | None) -> ScanResult | None:
     values = fixed[0].copy()
     values["model"] = model = handed_out_model(fixed[1])
     notes: list[str] = []
-    arr, conv, z, p, best = _from_table(out[1:], model.nll_background, fixed[2], notes)
+    arr, conv, z, p, best = _from_table(out[1:], model.nll_background, fixed[3], notes)
     values.update(q0=arr["q0"], z_local=z, p_local=p, signal_yield=arr["s"],
                   signal_yield_error=arr["se"], background_yield=arr["b"], converged=conv,
                   best_index=best, best_mass=float(fixed[2][best]), notes=tuple(notes))
@@ -316,8 +316,8 @@ def _kept_scan(key: tuple | None) -> ScanResult | None:
 def _kept_fields(kept: tuple) -> tuple | None:
     """A kept preparation's part of every result of :func:`_kept_scan`: the fields that
     depend on the preparation alone (its arrays as read-only views), the model's parts
-    (:func:`.scan_prepared.model_parts`), the hypotheses; None unless every hypothesis is
-    open (then ``scan_prepared`` answers)."""
+    (:func:`.scan_prepared.model_parts`), the hypotheses and their blinded mask (none
+    blinded); None unless every hypothesis is open (then ``scan_prepared`` answers)."""
     _, _, model, spec, info, _, _ = kept
     m_all = info["masses"]
     if not m_all.size or model["masses"].size != m_all.size:
@@ -331,7 +331,9 @@ def _kept_fields(kept: tuple) -> tuple | None:
               "background_shape": info["background"].name, "weight_scale": spec["scale"],
               "z_expected": None, "unit": spec["unit"], "nuisances": None,
               "nuisance_factors": None}
-    return fields, model_parts(kept), m_all
+    open_ = np.zeros(m_all.size, bool)  # the blinded mask: none (every hypothesis open)
+    open_.flags.writeable = False
+    return fields, model_parts(kept), m_all, open_
 
 
 def _significances(q0: np.ndarray, every: bool, bl: np.ndarray

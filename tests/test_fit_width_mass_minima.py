@@ -1,0 +1,102 @@
+"""A free Gaussian's lower minimum at another width *and another mass* is found.
+
+Two toys of ``scripts/check_fit_minima.py``'s group ``gauss_exp_z5`` (cases 1 and 69: a 5
+sigma Gaussian on an exponential, 100 bins on 100-200 GeV, ~5000 events), drawn here with
+the same generator and scipy's distributions.  In each the best minimum of the coarse
+scan's start has a second minimum of lower NLL at another width whose mass lies elsewhere:
+case 1 a wide solution (sigma ~15 GeV at 166 GeV below a narrow one, sigma ~6 GeV at 172
+GeV, lower by Delta(-2 ln L) ~ 0.23), case 69 a narrow one (sigma ~1.5 GeV at 169.2 GeV
+below sigma ~3.4 GeV at 169.8 GeV, lower by ~0.18).  A profile over the width with the mass
+held at the first minimum's showed neither (``likelihood/width_path.py``).
+
+Reference: the extended binned Poisson likelihood in Baker and Cousins' form,
+sum(mu - n + n ln(n / mu)) (Nucl. Instrum. Meth. 221 (1984) 437, eq. 11), mu = s f(m, w)
++ b g(b1): f the bin fractions of a normal distribution truncated to the window
+(``scipy.special.ndtr``), g those of exp(b1 t), t = (x - 150) / 50, from its closed-form
+CDF; minimised by iminuit's MIGRAD (strategy 1) from a grid of starts over mass (110-190
+GeV, steps of 10) and width (1-16 GeV, factors of 2), the lowest kept.  Check: that NLL at
+peaksift's values is not above iminuit's lowest by more than 1e-3 (Delta(-2 ln L) 2e-3,
+tighter than the 0.1 the issue asks), and peaksift's fit is valid with mass and width
+within 0.05 of iminuit's HESSE errors of the lowest.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from iminuit import Minuit
+from scipy import special
+
+import peaksift
+from peaksift.histogram import MassHistogram
+
+WINDOW = (100.0, 200.0)
+EDGES = np.linspace(*WINDOW, 101)
+CENTRES = 0.5 * (EDGES[1:] + EDGES[:-1])
+GROUP = 7856  # check_fit_minima.hash_group("gauss_exp_z5")
+
+
+def _exp_fractions(b1: float) -> np.ndarray:
+    c = np.exp(b1 * ((EDGES - 150.0) / 50.0 - 1.0))  # a primitive of exp(b1 t), scaled
+    return np.diff(c) / (c[-1] - c[0])
+
+
+def _gauss_fractions(m: float, w: float) -> np.ndarray:
+    c = special.ndtr((EDGES - m) / w)
+    return np.diff(c) / (c[-1] - c[0])
+
+
+def _toy(case: int) -> np.ndarray:
+    """Case ``case`` of the comparison set's 5 sigma group: truth drawn, then the counts."""
+    rng = np.random.default_rng([GROUP, case])
+    mass, sigma, b1 = rng.uniform(125.0, 175.0), rng.uniform(2.0, 5.0), rng.uniform(-2.0, -0.5)
+    b = 5000.0 * _exp_fractions(b1)
+    under = b[np.abs(CENTRES - mass) < 2 * sigma].sum()
+    ys = 5.0 * math.sqrt(max(under, 1.0)) / 0.95
+    return rng.poisson(ys * _gauss_fractions(mass, sigma) + b).astype(float)
+
+
+def _nll(n: np.ndarray):
+    sat = np.where(n > 0, n * np.log(np.where(n > 0, n, 1.0)), 0.0) - n
+
+    def f(mass, sigma, s, b1, b):
+        mu = s * _gauss_fractions(mass, sigma) + b * _exp_fractions(b1)
+        if not np.all(mu > 0):  # also NaN
+            return 1e30
+        return float(np.sum(mu - n * np.log(mu) + sat))
+    return f
+
+
+def _lowest(n: np.ndarray) -> Minuit:
+    best = None
+    for m0 in np.arange(110.0, 191.0, 10.0):
+        for w0 in (1.0, 2.0, 4.0, 8.0, 16.0):
+            m = Minuit(_nll(n), mass=m0, sigma=w0, s=100.0, b1=-1.0, b=n.sum() - 100.0)
+            m.errordef = 0.5
+            m.limits["mass"] = WINDOW
+            m.limits["sigma"] = (0.1, 50.0)
+            m.limits["s"] = (0.0, None)
+            m.limits["b1"] = (-30.0, 30.0)
+            m.migrad()
+            if m.valid and (best is None or m.fval < best.fval):
+                best = m
+    assert best is not None
+    best.hesse()
+    return best
+
+
+@pytest.mark.parametrize("case", [1, 69])
+def test_the_lower_minimum_at_another_width_and_mass(case):
+    n = _toy(case)
+    h = MassHistogram(EDGES)
+    h.weight_sum, h.weight_sq_sum = n.copy(), n.copy()
+    r = peaksift.fit(h, "gaussian", "exponential", WINDOW, binned=True)
+    ref = _lowest(n)
+    v = r.values
+    at_ours = _nll(n)(v["mass"], v["sigma"], v["signal_yield"], v["b1"], v["background_yield"])
+    assert at_ours <= ref.fval + 1e-3, (case, at_ours, ref.fval, dict(v), ref.values)
+    assert r.valid
+    assert abs(v["mass"] - ref.values["mass"]) < 0.05 * ref.errors["mass"]
+    assert abs(v["sigma"] - ref.values["sigma"]) < 0.05 * ref.errors["sigma"]
