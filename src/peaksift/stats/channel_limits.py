@@ -39,6 +39,7 @@ from .channels import Channel, _full_model, _prepare, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .envelope_choice import choice_entry, read_channel_entries
 from .joint import profile_joint
+from .joint_wells import joint_global
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
 from .toys import fit_background
 
@@ -171,9 +172,17 @@ class _Profiled:
         self.theta, self.b = self.theta0, self.b0
 
     def _fit(self, mu: np.ndarray, theta: list, b: list, nu: Any, steps: int = 60) -> dict:
-        return profile_joint(self.models, self.counts, self.fractions, self.conv,
-                             mu_fixed=mu, theta_start=theta, b_start=b, norms=self.norms,
-                             nu_start=nu, shapes=self.shapes, steps=steps)
+        def one(**kw: Any) -> dict:
+            return profile_joint(self.models, self.counts, self.fractions, self.conv,
+                                 mu_fixed=mu, norms=self.norms, nu_start=nu,
+                                 shapes=self.shapes, steps=steps,
+                                 **{"theta_start": theta, "b_start": b, **kw})
+
+        if steps == 0:   # the start's value only
+            return one()
+        # each channel's mass scale at its lowest well (joint_wells), else the one fit
+        return joint_global(one, self.models, self.counts, self.conv, self.shapes,
+                            mu_fixed=mu)
 
     def nll(self, mu: np.ndarray) -> np.ndarray:
         r = self._fit(mu, self.theta, self.b, self.nu)
@@ -299,9 +308,11 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         probs_o, probs_s = [], []
         for combo, pen in zip(combos, pens):
             models = [triples[c][f][0] for c, f in enumerate(combo)]
-            free = profile_joint(models, [m.counts for m in models],
-                                 [m.fractions for m in models], ck, steps=100, norms=norms,
-                                 shapes=sp_obs)
+            free = joint_global(
+                lambda models=models, **kw: profile_joint(
+                    models, [m.counts for m in models], [m.fractions for m in models], ck,
+                    steps=100, norms=norms, shapes=sp_obs, **kw),
+                models, [m.counts for m in models], ck, sp_obs)
             nll_zero = sum(m.nll_background for m in models)
             two_hat = 2.0 * np.minimum(free["nll"], nll_zero) + pen
             two_zero = 2.0 * nll_zero + pen

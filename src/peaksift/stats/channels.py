@@ -51,6 +51,7 @@ from .channel_toys import combined_toy_scans
 from .envelope_choice import read_channel_entries
 from .joint import profile_joint
 from .joint_start import joint_start
+from .joint_wells import joint_global
 from .scan import scan_prepared
 from .scan_inputs import _prepare_model, _signal_params
 from .significance import p_from_q0, z_from_q0
@@ -254,11 +255,19 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
         # start: the channels' own fits combined to second order (joint_start);
         # a last step below 0.03 errors leaves q0 within ~1e-5 (Newton: the next would be
         # ~1e-3 errors), so the fit stops there
-        r = profile_joint(models, [m.counts for m in models], [m.fractions for m in models],
-                          [k[~bl] for k in conv], steps=100, tol=3e-2,
-                          **joint_start(models, fits, [k[~bl] for k in conv], norms),
-                          norms=norms, shapes=specs if any(specs) else None,
-                          curvature=[_curvature(f, m) for f, m in zip(fits, models)])
+        start = joint_start(models, fits, [k[~bl] for k in conv], norms)
+        shp = specs if any(specs) else None
+
+        def joint(**kw: Any) -> dict[str, Any]:
+            return profile_joint(models, [m.counts for m in models],
+                                 [m.fractions for m in models], [k[~bl] for k in conv],
+                                 steps=100, tol=3e-2, **{**start, **kw}, norms=norms,
+                                 shapes=shp,
+                                 curvature=[_curvature(f, m) for f, m in zip(fits, models)])
+
+        # each channel's mass scale at its lowest well (joint_wells), else the one fit
+        r = joint_global(joint, models, [m.counts for m in models], [k[~bl] for k in conv],
+                         shp)
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         q0[~bl], mu[~bl], mu_err[~bl], converged[~bl] = q, r["mu"], r["mu_error"], r["converged"]

@@ -57,7 +57,8 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
                   nu_start: Any = None, nu_aux: Any = None,
                   shapes: Sequence[Any] | None = None,
                   curvature: Sequence[np.ndarray] | None = None,
-                  shape_centers: Sequence[Any] | None = None) -> dict[str, Any]:
+                  shape_centers: Sequence[Any] | None = None,
+                  factors_start: Sequence[Any] | None = None) -> dict[str, Any]:
     """Joint signal-plus-background fits of several channels for stacked hypotheses.
 
     Parameters
@@ -96,6 +97,8 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
         Per channel None or ``(B, J_c)``: the centres of its shape factors' constraints
         (their auxiliary measurements; default 1; toys of an unconditional ensemble draw
         them).
+    factors_start : sequence, optional
+        Per channel None or ``(B, J_c)``: where its shape factors start (default 1).
 
     Returns
     -------
@@ -111,11 +114,12 @@ def profile_joint(models: Sequence[ScanModel], counts: Sequence[np.ndarray],
         return _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start,
                         b_start, steps, tol, a, nu_start, nu_aux,
                         [None] * len(models) if shapes is None else list(shapes),
-                        curvature, shape_centers)
+                        curvature, shape_centers, factors_start)
 
 
 def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b_start,
-             steps, tol, a_norm, nu_start, nu_aux, specs, curvature=None, centers=None):
+             steps, tol, a_norm, nu_start, nu_aux, specs, curvature=None, centers=None,
+             factors_start=None):
     nc = len(models)
     f = [np.atleast_2d(np.asarray(x, float)) for x in fractions]
     nb = f[0].shape[0]
@@ -142,6 +146,11 @@ def _profile(models, counts, fractions, conv, mu_fixed, mu_start, theta_start, b
         p += len(nm)
     nk = p - off - nj
     kap = np.ones((nb, nk))
+    for c in range(nc):
+        if names[c] and factors_start is not None and factors_start[c] is not None:
+            j0 = kfirst[c] - off - nj
+            kap[:, j0:j0 + len(names[c])] = np.broadcast_to(
+                np.asarray(factors_start[c], float), (nb, len(names[c])))
     shaped = [c for c in range(nc) if names[c]]
     first = []  # index of b_c: (mu), nu_1..nu_J, factors, b_1, theta_1, b_2, ...
     for kc in ks:
