@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import signal
 from pathlib import Path
 
 import pytest
@@ -50,3 +51,13 @@ def demo_nll():
                                                   0.0)))
         return nll
     return build
+
+
+@pytest.fixture
+def python_ctrl_c():
+    """Python's own Ctrl-C handler while each test runs: a test session started as a
+    background job inherits SIGINT ignored (POSIX sh(1), "Asynchronous Lists"), which
+    Python and peaksift then leave ignored."""
+    old = signal.signal(signal.SIGINT, signal.default_int_handler)
+    yield
+    signal.signal(signal.SIGINT, old)

@@ -23,17 +23,8 @@ import pytest
 from peaksift import _processes
 from peaksift._processes import process_pool, quiet_fork, signals_held, stop_pool
 
-pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="forks")
-
-
-@pytest.fixture(autouse=True)
-def python_ctrl_c():
-    """Python's own Ctrl-C handler while each test runs: a test session started as a
-    background job inherits SIGINT ignored (POSIX sh(1), "Asynchronous Lists"), which
-    Python and peaksift then leave ignored."""
-    old = signal.signal(signal.SIGINT, signal.default_int_handler)
-    yield
-    signal.signal(signal.SIGINT, old)
+pytestmark = [pytest.mark.skipif(not sys.platform.startswith("linux"), reason="forks"),
+              pytest.mark.usefixtures("python_ctrl_c")]
 
 
 def _sleep(seconds: float) -> float:

@@ -21,14 +21,7 @@ NAMES = ["a.json", "b.json", "c.json"]
 SIGNALS = {"SIGTERM": (signal.SIGTERM, Terminated), "SIGINT": (signal.SIGINT, KeyboardInterrupt)}
 
 
-@pytest.fixture(autouse=True)
-def python_ctrl_c():
-    """Python's own Ctrl-C handler while each test runs: a test session started as a
-    background job inherits SIGINT ignored (POSIX sh(1), "Asynchronous Lists"), which
-    Python and peaksift then leave ignored."""
-    old = signal.signal(signal.SIGINT, signal.default_int_handler)
-    yield
-    signal.signal(signal.SIGINT, old)
+pytestmark = pytest.mark.usefixtures("python_ctrl_c")
 
 
 def _run(target: Path, text: str) -> None:
