@@ -81,6 +81,21 @@ def test_limits_with_several_minima_in_the_mass_scale_are_flagged():
     assert [d["message"] for d in w] == [note]
 
 
+def test_asymptotic_bands_with_a_scale_beyond_the_width_are_flagged():
+    """The note of systematic_limits where asymptotic limits were made with the mass scale
+    reaching beyond the peak's width becomes a ``limits`` warning naming the masses."""
+    import numpy as np
+
+    from peaksift.search.doubts import doubts
+    from peaksift.stats.scale_scan import asimov_band_note
+
+    note = asimov_band_note(np.array([150.0, 151.0]))
+    assert "2 mass(es) (150, 151)" in note and 'limits.method = "toys"' in note
+    w = [d for d in doubts({"systematics": {"limits": {"notes": [note]}}})
+         if d["topic"] == "limits"]
+    assert [d["message"] for d in w] == [note]
+
+
 def test_q0_with_several_minima_in_the_mass_scale_is_flagged():
     """The scan's note where q0 took a lower well of the mass scale than the nearest one
     (in the systematics block's notes) becomes a ``significance`` warning; a spurious-signal

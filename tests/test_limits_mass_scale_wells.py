@@ -182,6 +182,22 @@ def test_limits_with_a_wide_mass_scale_on_a_narrow_peak_take_the_lowest_well(
     assert q_a(expected * (1 - TOL)) < z2 < q_a(expected * (1 + TOL))
     assert cls(observed * (1 - TOL)) > 1 - CL > cls(observed * (1 + TOL))
     assert any("several minima" in note for note in res["notes"])
+    # asymptotic with the scale beyond the width: the expected band is said to be doubtful
+    # (the decision note's toy study: toys' median 1.4-2.0 times the asymptotic one)
+    assert any("(Asimov data set)" in note for note in res["notes"])
+
+
+def test_no_band_note_where_the_mass_scale_stays_inside_the_width():
+    """3 x 0.001 x 150 GeV = 0.45 GeV < the 0.5 GeV width: nothing scanned, and the
+    asymptotic band carries no note (the rule of ``needs_scan``, written out below)."""
+    x, w = _data(1, 0)
+    nuis = SignalNuisances.make({"mass_scale": 0.001, "mass_resolution": D_RES})
+    res = systematic_limits((x, w), "gaussian", candidate_shapes(["exppoly1"]),
+                            np.array([MASS]), resolution=resolution_from(None, absolute=SIGMA),
+                            window=WINDOW, bins=EDGES.size - 1, nuisances=nuis,
+                            method="asymptotic")
+    assert 3 * 0.001 * MASS < SIGMA
+    assert not any("(Asimov data set)" in note for note in res["notes"])
 
 
 def test_the_scan_runs_where_the_mass_scale_reaches_beyond_the_width():

@@ -122,9 +122,10 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
             if "several minima" in str(note):
                 add("significance", str(note))
         # limits whose profile in the mass scale took a well away from the nearest one
-        # (stats.scale_scan.several_minima_note): they respond to data elsewhere
+        # (stats.scale_scan.several_minima_note): they respond to data elsewhere; and
+        # asymptotic bands where the scale reaches beyond the peak (asimov_band_note)
         for note in (sy.get("limits") or {}).get("notes") or []:
-            if "several minima" in str(note):
+            if "several minima" in str(note) or "(Asimov data set)" in str(note):
                 add("limits", str(note))
         for c in (sy.get("background_choice") or {}).get("candidates") or []:
             if c.get("chosen") and "still improved" in str(c.get("note") or ""):

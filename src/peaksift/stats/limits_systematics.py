@@ -56,7 +56,7 @@ from ..likelihood import SignalNuisances
 from .cls import _BANDS, _bisect, _Problem, _unconditional
 from .limit_result import LOW_COUNT_BACKGROUND
 from .limits import cls_asymptotic, expected_band_factor, normalisation
-from .scale_scan import needs_scan, profile_global, several_minima_note
+from .scale_scan import asimov_band_note, needs_scan, profile_global, several_minima_note
 from .scan_inputs import _prepare_model, _signal_params
 from .toys import fit_background
 
@@ -365,6 +365,7 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
     target = np.repeat([expected_band_factor(n, cl) ** 2 for n in _BANDS], nm)
     scale0 = np.tile(sig_fisher / conv, nb5)
     notes: list[str] = []
+    wide = needs_scan(sig, base_all, nuis, nm)   # the mass scale reaches beyond the peak
 
     def f_exp(mu: np.ndarray) -> np.ndarray:
         return 2.0 * (env(probs_a, mu)[0] - nll_a0) - target
@@ -456,6 +457,9 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
             methods[j] = "toys"
             toy_info[f"{m_all[j]:.6g}"] = plain(r)
             notes.extend(f"{m_all[j]:g}: {n}" for n in r["notes"])
+    asimov_wide = [j for j in range(nm) if wide[j] and methods[j] == "asymptotic"]
+    if asimov_wide:
+        notes.append(asimov_band_note(m_all[asimov_wide]))
     profiled = ["background parameters"]
     profiled += [f"{n.replace('_', ' ')} ({100 * getattr(nuis, n):.3g}%, {nuis.kind(n)})"
                  for n in nuis.shape_active]

@@ -52,7 +52,8 @@ from ..likelihood import SignalNuisances
 from .shape_profile import _fractions, profile_with_nuisances
 from .toys import ScanModel, bkg_fractions
 
-__all__ = ["needs_scan", "peak_width", "profile_global", "several_minima_note"]
+__all__ = ["asimov_band_note", "needs_scan", "peak_width", "profile_global",
+           "several_minima_note"]
 
 #: the scan runs where this many standard deviations of the mass scale exceed the width
 _REACH = 3.0
@@ -312,3 +313,16 @@ def several_minima_note(masses: np.ndarray, size: float, what: str) -> str:
             "of the profile likelihood (found by a scan of the mass scale) is not the nearest;"
             f" the {what} there respond{'s' if what == 'q0' else ''} to the data within "
             f"+-{300 * size:.3g}% of the mass (3 standard deviations of the mass scale)")
+
+
+def asimov_band_note(masses: np.ndarray) -> str:
+    """The note where asymptotic limits were made with a mass scale reaching beyond the
+    peak's width: the expected band comes from the Asimov data set, which has none of the
+    upward fluctuations within the scale's reach that a real spectrum's limit follows
+    (`docs/decisions/mass-scale-scan.md`: toys' median expected limit 1.4-2.0 times the
+    asymptotic one on the study's spectra)."""
+    where = ", ".join(f"{m:g}" for m in masses[:6]) + (", ..." if masses.size > 6 else "")
+    return (f"asymptotic limits where the mass scale reaches beyond the peak's width at "
+            f"{masses.size} mass(es) ({where}): the expected band (Asimov data set) is likely "
+            "too low there -- each spectrum's limit follows its own fluctuations within the "
+            "scale's reach; use toy limits there (limits.method = \"toys\", limits.toy_masses)")
