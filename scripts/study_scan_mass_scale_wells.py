@@ -33,7 +33,9 @@ import time
 
 import numpy as np
 from iminuit import Minuit
-from scipy import special
+
+# the spectra and shapes of the limits' study (one definition for both)
+from study_mass_scale_wells import D_RES, EDGES, MASS, SIGMA, WINDOW, exponential, gauss
 
 from peaksift.likelihood import SignalNuisances
 from peaksift.stats.background_choice import candidate_shapes
@@ -41,29 +43,7 @@ from peaksift.stats.scan import scan
 from peaksift.stats.scan_inputs import _prepare_model, _signal_params
 from peaksift.stats.toy_limits_systematics import _Ensemble, _SystematicToyTask
 
-WINDOW = (100.0, 200.0)
-BINS = 200
-EDGES = np.linspace(*WINDOW, BINS + 1)
-SIGMA, MASS, D_RES = 0.5, 150.0, 0.2
 MUS = (20.0, 40.0, 60.0)
-
-
-def exponential(slope: float) -> np.ndarray:
-    lo, hi = WINDOW
-    c, h = 0.5 * (lo + hi), 0.5 * (hi - lo)
-    if abs(slope) < 1e-9:
-        return np.diff(EDGES) / (hi - lo)
-    with np.errstate(all="ignore"):
-        prim = np.exp(slope * (EDGES - c) / h)
-        return np.diff(prim) / (prim[-1] - prim[0])
-
-
-def gauss(m: float, s: float) -> np.ndarray:
-    """Gaussian bin fractions normalised in the window, from the tail the window lies in."""
-    z = (EDGES - m) / s
-    prim = special.ndtr(z) if m > 0.5 * sum(WINDOW) else -special.ndtr(-z)
-    norm = prim[-1] - prim[0]
-    return np.diff(prim) / norm if norm > 0 else np.zeros(BINS)
 
 
 class Reference:
