@@ -36,6 +36,7 @@ from iminuit import Minuit
 
 # the spectra and shapes of the limits' study (one definition for both)
 from study_mass_scale_wells import D_RES, EDGES, MASS, SIGMA, WINDOW, exponential, gauss
+from study_mass_scale_wells import Reference as LimitsReference
 
 from peaksift.likelihood import SignalNuisances
 from peaksift.stats.background_choice import candidate_shapes
@@ -46,8 +47,10 @@ from peaksift.stats.toy_limits_systematics import _Ensemble, _SystematicToyTask
 MUS = (20.0, 40.0, 60.0)
 
 
-class Reference:
-    """The NLL of the model written out, the mass scale profiled by a grid."""
+class Reference(LimitsReference):
+    """The NLL of the model written out, the mass scale profiled by a grid (the limits
+    study's reference, with constraint centres of its own and its own grid; its Minuit
+    set-up and fixed-factor NLLs inherited)."""
 
     def __init__(self, d_scale: float, centers: tuple[float, float] = (1.0, 1.0)) -> None:
         self.ds = d_scale
@@ -64,20 +67,6 @@ class Reference:
         return float(np.sum(nu - counts * np.log(nu))
                      + 0.5 * ((km - self.cm) / self.ds) ** 2
                      + 0.5 * ((kr - self.cr) / D_RES) ** 2)
-
-    def _minuit(self, f, **start) -> Minuit:
-        m = Minuit(f, **start)
-        m.limits["kr"] = (max(1 - 6 * D_RES, 1e-3), 1 + 6 * D_RES)
-        if "km" in start:
-            m.limits["km"] = (1 - 6 * self.ds, 1 + 6 * self.ds)
-        m.errordef = Minuit.LIKELIHOOD
-        return m
-
-    def _at(self, counts, s, km):
-        """The NLL at a fixed mass-scale factor (and yield, unless ``s`` is None)."""
-        if s is None:
-            return lambda s, b, p, kr: self.nll(counts, s, b, p, km, kr)
-        return lambda b, p, kr: self.nll(counts, s, b, p, km, kr)
 
     def profile(self, counts, s: float | None) -> tuple[float, float, float]:
         """(min NLL, s, k_m) over everything at the yield ``s`` (None: s free too)."""
