@@ -88,12 +88,17 @@ def _slope_row() -> np.ndarray:
     return ((_exp_fractions(B1 + h) - _exp_fractions(B1 - h)) / (2 * h))[None, :]
 
 
-@pytest.mark.parametrize("seed", [11, 12])
-def test_the_mass_profile_along_the_width_against_iminuit(seed):
+def _own_minimum(seed: int):
+    """The counts, iminuit's fit at the own width of 4 GeV, and the widths walked (steps of
+    sqrt 2 from 0.35 to 4 times it)."""
     n = _counts(seed)
     own_w = 4.0
-    own_fit = _profile(n, own_w, False, [152.0])
-    widths = own_w * 2.0 ** (np.arange(-3, 5) / 2)
+    return n, _profile(n, own_w, False, [152.0]), own_w * 2.0 ** (np.arange(-3, 5) / 2)
+
+
+@pytest.mark.parametrize("seed", [11, 12])
+def test_the_mass_profile_along_the_width_against_iminuit(seed):
+    n, own_fit, widths = _own_minimum(seed)
     out = _path(n, own_fit, widths, 3, np.zeros((0, n.size)))
     for j, w in enumerate(widths):
         ref = _profile(n, w, False, [own_fit.values["m"] + d for d in (-w, 0.0, w)])
@@ -104,10 +109,7 @@ def test_the_mass_profile_along_the_width_against_iminuit(seed):
 
 @pytest.mark.parametrize("seed", [11, 12])
 def test_the_relaxed_background_shape_against_iminuit(seed):
-    n = _counts(seed)
-    own_w = 4.0
-    own_fit = _profile(n, own_w, False, [152.0])
-    widths = own_w * 2.0 ** (np.arange(-3, 5) / 2)
+    n, own_fit, widths = _own_minimum(seed)
     out = _path(n, own_fit, widths, 3, _slope_row())
     held = _path(n, own_fit, widths, 3, np.zeros((0, n.size)))
     for j, w in enumerate(widths):
