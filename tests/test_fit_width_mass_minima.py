@@ -26,43 +26,31 @@ import math
 
 import numpy as np
 import pytest
+from exp_gauss_reference import EDGES, WINDOW, exp_fractions, gauss_fractions
 from iminuit import Minuit
-from scipy import special
 
 import peaksift
 from peaksift.histogram import MassHistogram
 
-WINDOW = (100.0, 200.0)
-EDGES = np.linspace(*WINDOW, 101)
 CENTRES = 0.5 * (EDGES[1:] + EDGES[:-1])
 GROUP = 7856  # check_fit_minima.hash_group("gauss_exp_z5")
-
-
-def _exp_fractions(b1: float) -> np.ndarray:
-    c = np.exp(b1 * ((EDGES - 150.0) / 50.0 - 1.0))  # a primitive of exp(b1 t), scaled
-    return np.diff(c) / (c[-1] - c[0])
-
-
-def _gauss_fractions(m: float, w: float) -> np.ndarray:
-    c = special.ndtr((EDGES - m) / w)
-    return np.diff(c) / (c[-1] - c[0])
 
 
 def _toy(case: int) -> np.ndarray:
     """Case ``case`` of the comparison set's 5 sigma group: truth drawn, then the counts."""
     rng = np.random.default_rng([GROUP, case])
     mass, sigma, b1 = rng.uniform(125.0, 175.0), rng.uniform(2.0, 5.0), rng.uniform(-2.0, -0.5)
-    b = 5000.0 * _exp_fractions(b1)
+    b = 5000.0 * exp_fractions(b1)
     under = b[np.abs(CENTRES - mass) < 2 * sigma].sum()
     ys = 5.0 * math.sqrt(max(under, 1.0)) / 0.95
-    return rng.poisson(ys * _gauss_fractions(mass, sigma) + b).astype(float)
+    return rng.poisson(ys * gauss_fractions(mass, sigma) + b).astype(float)
 
 
 def _nll(n: np.ndarray):
     sat = np.where(n > 0, n * np.log(np.where(n > 0, n, 1.0)), 0.0) - n
 
     def f(mass, sigma, s, b1, b):
-        mu = s * _gauss_fractions(mass, sigma) + b * _exp_fractions(b1)
+        mu = s * gauss_fractions(mass, sigma) + b * exp_fractions(b1)
         if not np.all(mu > 0):  # also NaN
             return 1e30
         return float(np.sum(mu - n * np.log(mu) + sat))

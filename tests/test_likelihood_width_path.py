@@ -23,36 +23,25 @@ import math
 
 import numpy as np
 import pytest
+from exp_gauss_reference import EDGES, WINDOW, exp_fractions, gauss_fractions
 from iminuit import Minuit
-from scipy import special
 
 from peaksift.likelihood.width_path import width_path
 
-LO, HI = 100.0, 200.0
-EDGES = np.linspace(LO, HI, 101)
+LO, HI = WINDOW
 BAND = 7.0
 B1 = -1.2
 
 
-def _exp_fractions(b1: float) -> np.ndarray:
-    c = np.exp(b1 * ((EDGES - 150.0) / 50.0 - 1.0))  # a primitive of exp(b1 t), scaled
-    return np.diff(c) / (c[-1] - c[0])
-
-
-def _gauss_fractions(m: float, w: float) -> np.ndarray:
-    c = special.ndtr((EDGES - m) / w)
-    return np.diff(c) / (c[-1] - c[0])
-
-
 def _counts(seed: int) -> np.ndarray:
     rng = np.random.default_rng(seed)
-    return rng.poisson(8000 * _exp_fractions(B1) + 300 * _gauss_fractions(152.0, 4.0)
+    return rng.poisson(8000 * exp_fractions(B1) + 300 * gauss_fractions(152.0, 4.0)
                        ).astype(float)
 
 
 def _profile(n: np.ndarray, w: float, b1_free: bool, masses) -> Minuit:
     def cost(m, a, b, b1):
-        mu = a * _gauss_fractions(m, w) + b * _exp_fractions(b1)
+        mu = a * gauss_fractions(m, w) + b * exp_fractions(b1)
         if not np.all(mu > 0):  # also NaN
             return 1e30
         return float(np.sum(mu - n * np.log(mu)))
@@ -75,7 +64,7 @@ def _profile(n: np.ndarray, w: float, b1_free: bool, masses) -> Minuit:
 def _path(n: np.ndarray, own_fit: Minuit, widths: np.ndarray, own: int, dg: np.ndarray,
           rise: float = math.inf) -> np.ndarray:
     out = np.empty((widths.size, 4))
-    g = _exp_fractions(B1)
+    g = exp_fractions(B1)
     assert width_path(EDGES.copy(), LO, HI, n, np.ones(n.size), g, dg,
                       own_fit.values["m"], LO, HI, widths, own, BAND, own_fit.values["a"],
                       own_fit.values["b"], rise, out)
@@ -85,7 +74,7 @@ def _path(n: np.ndarray, own_fit: Minuit, widths: np.ndarray, own: int, dg: np.n
 def _slope_row() -> np.ndarray:
     """d g / d b1 by central differences of the closed form (error ~1e-11)."""
     h = 1e-5
-    return ((_exp_fractions(B1 + h) - _exp_fractions(B1 - h)) / (2 * h))[None, :]
+    return ((exp_fractions(B1 + h) - exp_fractions(B1 - h)) / (2 * h))[None, :]
 
 
 def _own_minimum(seed: int):
