@@ -312,3 +312,54 @@ def test_slow_healthy_toy_batches_are_left_to_finish(watch_test_toys):
     pooled = run_toys(model, 20, seed=3, batch=10, workers=2, progress=False,
                       batch_function=_toys_after_a_wait)
     assert np.allclose(pooled, serial, rtol=1e-9, atol=1e-9)
+
+
+# ------------------------------------------------------------ a local Dask cluster
+def deadlock_on_zero(x: float) -> float:
+    """Task 0 deadlocks (in the Dask worker's task thread); the others wait on input for
+    ``|x|`` seconds (select(2)): slow, healthy; a negative ``x`` waits (futex) on a thread
+    of its own that waits on input, as a download through an event-loop thread does."""
+    import select
+    import threading
+
+    if x == 0:
+        deadlock(0.0)
+    if x < 0:
+        helper = threading.Thread(target=select.select, args=([], [], [], -x))
+        helper.start()
+        helper.join()
+    else:
+        select.select([], [], [], x)
+    return x
+
+
+@pytest.fixture
+def watch_dask_tasks(monkeypatch):
+    pytest.importorskip("distributed")
+    from peaksift.execution import _dask
+
+    monkeypatch.setattr(_dask, "watched", lambda func: True)
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "3")
+
+
+def test_a_stuck_dask_task_ends_the_run_with_an_error_naming_it(watch_dask_tasks, capfd):
+    """A local cluster's worker whose task thread deadlocks while its event loop runs on
+    (heart-beats, sockets): the run ends naming the task, and the cluster's processes end."""
+    before = _pool_children()
+    with pytest.raises(ExecutionError) as raised:
+        execution.map_tasks(deadlock_on_zero, [0.0, 1.0], engine="dask", workers=2)
+    text = str(raised.value)
+    assert "Dask worker process" in text and "is stuck on task 0" in text, text
+    assert "PEAKSIFT_STALL_SECONDS" in text and "fewer workers" in text
+    deadline = time.monotonic() + 30  # generous: the cluster's close on a loaded machine
+    while _pool_children() - before and time.monotonic() < deadline:
+        time.sleep(0.2)
+    assert not _pool_children() - before  # the local cluster's workers were ended
+    assert "in deadlock" in capfd.readouterr().err  # the stuck worker's stack
+
+
+def test_slow_healthy_dask_tasks_are_left_to_finish(watch_dask_tasks):
+    """Tasks that wait on input for over twice the limit, themselves or through a thread
+    they started, finish with their results."""
+    assert execution.map_tasks(deadlock_on_zero, [7.0, -8.0], engine="dask",
+                               workers=2) == [7.0, -8.0]
