@@ -1,5 +1,6 @@
-"""The watch for a stuck worker (execution._stall): a deadlocked process is named, a slow,
-sleeping, waiting-on-input or CPU-starved one never is.
+"""The watch for a stuck worker (peaksift._stall): a deadlocked process is named, a slow,
+sleeping, waiting-on-input or CPU-starved one never is; in the process engine's pool, the
+toy engine's ``workers=`` pool, a local Dask cluster and the stages beside a search.
 
 Outside references: Linux ``proc(5)`` (``/proc/<pid>/task/<tid>/stat``: field 3 the state,
 R running or runnable, S sleeping, D uninterruptible; fields 14-15 the CPU time in clock
