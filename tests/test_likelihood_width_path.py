@@ -14,7 +14,8 @@ slope's derivative row, its NLL is the shape-held profile lowered by one Newton 
 every parameter: within 0.01 + 10 % of what freeing b1 gains in iminuit's profile (a
 second-order estimate from the expected information; the slope moves by up to ~0.05 here,
 gaining up to ~1.2, and the estimate errs by up to 7 % of that, on the low side at the
-widest widths).
+widest widths).  And the dip's start taken along it (``start_widths.lowest_width``), against
+the same profile minimised over the wider widths.
 """
 
 from __future__ import annotations
@@ -26,7 +27,9 @@ import pytest
 from exp_gauss_reference import EDGES, WINDOW, exp_fractions, gauss_fractions
 from iminuit import Minuit
 
+from peaksift.likelihood.start_widths import OTHER_FACTORS, lowest_width
 from peaksift.likelihood.width_path import width_path
+from peaksift.shapes import Gaussian
 
 LO, HI = WINDOW
 BAND = 7.0
@@ -126,3 +129,54 @@ def test_the_walk_stops_once_the_profile_has_risen():
             continue
         ref = _profile(n, widths[end], False, [own_fit.values["m"]])
         assert ref.fval > own_fit.fval + 5.0
+
+
+def test_a_dips_start_goes_to_the_lowest_wider_width():
+    """``start_widths.lowest_width`` from a narrow dip's start (1.25 GeV at 197 GeV) on a
+    spectrum whose deficit is centred on the window's upper edge (80 events of a Gaussian
+    of 5 GeV at 200 GeV below 10,000 on exp(-0.8 t)): the width it picks among the wider
+    ones (steps of sqrt 2 up to 8 times) against iminuit's profile at each (mass, both
+    yields and the slope minimised, strategy 2, from three masses).  Checks: iminuit's
+    profile at the picked width lies within 0.05 of its lowest over those widths and more
+    than 1 below the start's own width; the picked mass within 0.1 of that width of
+    iminuit's mass there, its yield negative and within 10 % of iminuit's (the path's
+    slope is one Newton step, not a minimum)."""
+    b1 = -0.8
+    n = np.random.default_rng(21).poisson(10000 * exp_fractions(b1)
+                                          - 80 * gauss_fractions(200.0, 5.0)).astype(float)
+    h = 1e-5
+    dg = ((exp_fractions(b1 + h) - exp_fractions(b1 - h)) / (2 * h))[None, :]
+    btot = n.sum() + 30.0
+    found = lowest_width(Gaussian(), EDGES.copy(), n, None,
+                         (btot * exp_fractions(b1), btot * dg), 197.0, 1.25, -30.0, 0.1,
+                         50.0, LO, HI, WINDOW, -1.0)
+    assert found is not None
+    factor, y, _, mass = found
+
+    def profile(w: float) -> Minuit:
+        def cost(m, a, b, c):
+            mu = a * gauss_fractions(m, w) + b * exp_fractions(c)
+            if not np.all(mu > 0):  # also NaN
+                return 1e30
+            return float(np.sum(mu - n * np.log(mu)))
+
+        best = None
+        for m0 in (197.0, HI - w, HI - 0.1):
+            mi = Minuit(cost, m=m0, a=-30.0, b=btot, c=b1)
+            mi.errordef = 0.5
+            mi.limits["m"] = (LO, HI)
+            mi.limits["a"] = (None, 0.0)
+            mi.strategy, mi.tol = 2, 1e-6
+            mi.migrad()
+            if mi.valid and (best is None or mi.fval < best.fval):
+                best = mi
+        assert best is not None
+        return best
+
+    ref = {f: profile(1.25 * f) for f in OTHER_FACTORS[OTHER_FACTORS >= 1.0].tolist()}
+    lowest = min(r.fval for r in ref.values())
+    at = ref[factor]
+    assert at.fval <= lowest + 0.05, (factor, at.fval, lowest)
+    assert at.fval < ref[1.0].fval - 1.0
+    assert abs(mass - at.values["m"]) < 0.1 * 1.25 * factor, (mass, at.values["m"])
+    assert y < 0 and abs(y / at.values["a"] - 1.0) < 0.1, (y, at.values["a"])
