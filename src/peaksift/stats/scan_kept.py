@@ -110,12 +110,18 @@ def _answer(parts: tuple) -> ScanResult | None:
     if out[0]:
         return None
     fields, model, m_all, open_, nll_b = fixed
+    _, s_hat, s_err, b_hat, _, conv, unconverged, q0, z, neg_z, best, plain = out
+    notes: Any = ()
+    if plain and not unconverged:
+        p = _ndtr(neg_z)   # (scan_arrays' answer here, without its dict and call)
+    else:
+        notes = []
+        arr, conv, z, p, best = scan_arrays(out[1:], nll_b, open_, notes)
+        q0, s_hat, s_err, b_hat, notes = arr["q0"], arr["s"], arr["se"], arr["b"], tuple(notes)
     values = fields.copy()
-    notes: list[str] = []
-    arr, conv, z, p, best = scan_arrays(out[1:], nll_b, open_, notes)
-    values.update(q0=arr["q0"], z_local=z, p_local=p, signal_yield=arr["s"],
-                  signal_yield_error=arr["se"], background_yield=arr["b"], converged=conv,
-                  best_index=best, best_mass=float(m_all[best]), notes=tuple(notes))
+    values.update(q0=q0, z_local=z, p_local=p, signal_yield=s_hat, signal_yield_error=s_err,
+                  background_yield=b_hat, converged=conv, best_index=best,
+                  best_mass=float(m_all[best]), notes=notes)
     return fresh_result(values, OWN, kept=True, model=model)
 
 

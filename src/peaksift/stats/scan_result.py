@@ -353,8 +353,8 @@ def fresh_result(values: dict[str, Any], own: frozenset[str], *,
         obj = object.__new__(ScanResult)
         d = obj.__dict__
         d.update(values)
-        for name in own:
-            values[name].flags.writeable = False
+        for name in own:   # (setflags: no flags object made, ~0.3 us of ~0.8 each)
+            values[name].setflags(write=False)
         if model is not None:
             d["_later"] = partial(_later_model, model)
         return obj
@@ -368,7 +368,7 @@ def fresh_result(values: dict[str, Any], own: frozenset[str], *,
         if t is np.ndarray:
             if name not in own:
                 v = d[name] = v.view()
-            v.flags.writeable = False
+            v.setflags(write=False)
         elif t is dict or isinstance(v, np.ndarray):
             return ScanResult(**values)   # (an array made read-only above stays so: no matter)
     return obj
