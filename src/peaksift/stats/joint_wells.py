@@ -5,6 +5,10 @@ Which piece when
 * :func:`joint_global` -- a joint fit (:func:`peaksift.stats.joint.profile_joint`) and,
   where a channel's mass scale moves its peak further than the peak's width, the same fit
   started again from each such channel's lowest well; the lower of the two per hypothesis.
+  Every joint fit with shape factors uses it: the combined scan (:mod:`.channels`) and its
+  envelope of background functions (:mod:`.channel_envelope`), the global significance
+  toys' refitted top points and the toy limits (:mod:`.channel_toys`), the asymptotic
+  combined limits (:mod:`.channel_limits`).
 
 Why
 ---
