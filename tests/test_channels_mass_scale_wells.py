@@ -131,3 +131,27 @@ def test_combined_toy_limit_statistic_profiles_the_shape_factors_at_their_lowest
         for mu in (20.0, 40.0, 60.0):
             want = 0.0 if mu_hat > mu else max(2.0 * (nll(mu) - ref), 0.0)
             assert sets.q(mu)[0][t] == pytest.approx(want, abs=TOL), (t, mu)
+
+
+def test_combined_asymptotic_limits_carry_the_asimov_band_note_where_the_scale_is_wide():
+    """Where a channel's mass scale moves its peak beyond its width (3 delta m > sigma,
+    written out here: 3 x 0.01 x 150 = 4.5 GeV against 0.5 GeV) the combined asymptotic
+    limits say their expected band is doubtful (results.json ``limits.notes``, a WARNING
+    line of the summary), as a single channel's do; with 0.1 % in both channels (0.45 GeV
+    < 0.5 GeV) they do not."""
+    from peaksift.search.combination_report import combination_summary_text
+    from peaksift.stats.channel_limits import combined_limits
+
+    ns = [_toy(1012), _toy(1013)]
+    masses = np.array([150.0])
+    assert 3 * 0.01 * 150.0 > SIGMA > 3 * 0.001 * 150.0
+    wide = combined_limits(_channels(ns, (0.01, 0.001)), masses, method="asymptotic")
+    narrow = combined_limits(_channels(ns, (0.001, 0.001)), masses, method="asymptotic")
+    band = [n for n in wide.to_dict()["notes"] if "(Asimov data set)" in n]
+    assert len(band) == 1 and "150" in band[0]
+    assert not any("(Asimov data set)" in n for n in narrow.to_dict()["notes"])
+    d = {"channels": {}, "combination": {"best": {}}, "best": {},
+         "limits": wide.to_dict()}
+    assert f"  WARNING: combined limits: {band[0]}" in combination_summary_text(d)
+    d["limits"] = narrow.to_dict()
+    assert "WARNING" not in combination_summary_text(d)

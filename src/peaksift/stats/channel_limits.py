@@ -15,6 +15,9 @@
   ``method="toys"``): :func:`peaksift.stats.channel_toys.joint_toy_limit`, the toys
   generating every channel (with its envelope's function at mu = 0, not profiled; its
   shape factors profiled, their global observables drawn per toy);
+* where a channel's mass scale reaches beyond its peak's width, the asymptotic limits carry
+  :func:`peaksift.stats.scale_scan.asimov_band_note` (the expected band from the Asimov
+  data set is likely too low there), as a single channel's do;
 * each channel's own limits from :func:`peaksift.upper_limits` with its luminosity,
   efficiency and their uncertainties (same ``method``).
 
@@ -42,6 +45,7 @@ from .envelope_choice import choice_entry, read_channel_entries
 from .joint import profile_joint
 from .joint_wells import joint_global
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
+from .scale_scan import asimov_band_note, needs_scan
 from .toys import fit_background
 
 __all__ = ["CombinedLimits", "combined_limits"]
@@ -387,6 +391,16 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         toy_info[f"{m_all[j]:.6g}"] = plain({k: v for k, v in res.items()
                                              if k not in ("observed", "expected")})
         notes.extend(f"{m_all[j]:g}: {n}" for n in res["notes"])
+    # where a channel's mass scale reaches beyond its peak's width the Asimov band lacks
+    # the fluctuations each spectrum's limit follows (as for one channel)
+    wide = np.zeros(nm, bool)
+    for ch, p in zip(chans, prepared):
+        sp = ch.shape_spec(p, bl, every_mass=True)
+        if sp is not None:
+            wide |= needs_scan(sp[0], sp[1], sp[2], nm)
+    asimov_wide = [j for j in range(nm) if wide[j] and methods[j] == "asymptotic"]
+    if asimov_wide:
+        notes.append(asimov_band_note(m_all[asimov_wide]))
     flags = tuple(f"{b:.3g} background events expected under the signal (< "
                   f"{low_count_background:g}): asymptotic bands doubtful"
                   if b < low_count_background and m == "asymptotic" else ""
