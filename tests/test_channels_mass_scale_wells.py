@@ -155,3 +155,29 @@ def test_combined_asymptotic_limits_carry_the_asimov_band_note_where_the_scale_i
     assert f"  WARNING: combined limits: {band[0]}" in combination_summary_text(d)
     d["limits"] = narrow.to_dict()
     assert "WARNING" not in combination_summary_text(d)
+
+
+def _toy_with_signal(index: int, signal: int) -> np.ndarray:
+    """``_toy(index)`` with ``signal`` events of the peak (at 150 GeV) drawn after it."""
+    rng = np.random.default_rng(index)
+    x = np.concatenate([100 + rng.exponential(40, 20000), rng.normal(MASS, SIGMA, signal)])
+    return np.histogram(x, EDGES)[0].astype(float)
+
+
+@pytest.mark.parametrize("index,signal,mass", [(1022, 40, MASS), (3066, 0, 141.0)])
+def test_combined_q0_finds_wells_no_channels_own_lowest_well_leads_to(index, signal, mass):
+    """The joint profile's lowest point where no channel's own lowest well (at the first
+    fit's signal, or with its yield free) leads (reference as above, CCGV eq. 12: 5e-3 in
+    q0, 0.1 event in mu).  First: 40 signal events in each channel, yet the lowest point
+    is a deficit in both at once (mu = -41.5, each factor 1.2-1.6 % low), 1.49 below the
+    excess at mu = +30.8 where the fit stopped: q0 = 0, not 6.16 (found from each channel's
+    well at the opposite signal held).  Second, at 141 GeV: q0 3.546 at mu = 34.9, where
+    channel 0's factor sits at 0.982, a well lowest only above mu ~ 25 (at the fit's 21.0
+    it is 1.0008, with a free yield a deficit at 1.0085): not 2.60 (found from each
+    channel's well at the fit's signal plus one error held)."""
+    ns = [_toy_with_signal(index, signal), _toy_with_signal(index + 1, signal)]
+    got = combine(_channels(ns), np.array([mass]), refit=False)
+    nll_hat, mu_hat, nll_zero, _ = _joint(ns, mass)
+    want = max(2.0 * (nll_zero - nll_hat), 0.0) if mu_hat > 0 else 0.0
+    assert got.q0[0] == pytest.approx(want, abs=TOL)
+    assert got.cross_section[0] == pytest.approx(mu_hat, abs=0.1)
