@@ -39,6 +39,7 @@ from ..errors import FitError
 from .cls import _BANDS
 from .joint import profile_joint
 from .joint_wells import joint_global
+from .scale_scan import STARTS_TOYS
 from .shape_profile import NUISANCE_REFINE, _fractions, top_points
 from .toy_limits import grid_start, limits_on_grid, pooled_cls
 from .toy_limits_systematics import _draw_centers, _log_density_ratio
@@ -92,7 +93,7 @@ class _Set:
 
         # each channel's mass scale at its lowest well (joint_wells), else the one fit
         return joint_global(one, self.models, self.counts, self.k, self.shapes,
-                            mu_fixed=mu, centers=self.centers)
+                            mu_fixed=mu, centers=self.centers, starts=STARTS_TOYS)
 
     def q(self, mu: float) -> tuple[np.ndarray, dict[str, Any]]:
         """q~mu of every set (CCGV eq. 16) and the conditional fits at ``mu``."""

@@ -62,8 +62,8 @@ def _pick(x: Any, y: Any, better: np.ndarray, nb: int) -> Any:
 
 def _well_starts(r: dict[str, Any], models: Sequence[Any], counts: Sequence[Any],
                  conv: Sequence[np.ndarray], shapes: Sequence[Any], mu: np.ndarray,
-                 fixed_signal: bool, centers: Sequence[Any] | None
-                 ) -> tuple[list[Any], np.ndarray]:
+                 fixed_signal: bool, centers: Sequence[Any] | None,
+                 starts_per: int | None = None) -> tuple[list[Any], np.ndarray]:
     """Per channel the factors of its lowest well at the signal ``mu`` (a start: the yield
     free from there unless ``fixed_signal``), from the fit ``r``'s other parameters; and
     which hypotheses found a well other than ``r``'s."""
@@ -91,7 +91,8 @@ def _well_starts(r: dict[str, Any], models: Sequence[Any], counts: Sequence[Any]
                                start={"s": take(mu * np.asarray(conv[c], float)),
                                       "b": take(r["b"][c]), "theta": take(r["theta"][c]),
                                       "factors": take(fc)},
-                               centers=cen, fixed_signal=fixed_signal, tol=1e-5)
+                               centers=cen, fixed_signal=fixed_signal, tol=1e-5,
+                               starts=starts_per)
         f_new = fc.copy()
         f_new[rows] = g["factors"]
         starts.append(f_new)
@@ -102,7 +103,8 @@ def _well_starts(r: dict[str, Any], models: Sequence[Any], counts: Sequence[Any]
 def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
                  counts: Sequence[Any], conv: Sequence[np.ndarray],
                  shapes: Sequence[Any] | None, *, mu_fixed: Any = None,
-                 centers: Sequence[Any] | None = None) -> dict[str, Any]:
+                 centers: Sequence[Any] | None = None,
+                 starts: int | None = None) -> dict[str, Any]:
     """``fit(**starts)`` (a :func:`~peaksift.stats.joint.profile_joint` call taking
     ``factors_start``, ``mu_start``, ``theta_start``, ``b_start``) from its own starts,
     then, where a channel of ``shapes`` is scanned (:func:`.scale_scan.needs_scan`), again
@@ -111,7 +113,8 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
     found an excess, and the reverse: the joint profile's lowest well can be a dip in every
     channel at once that no channel's own lowest well leads to); per hypothesis the lowest.
     ``mu_fixed``: the conditional fits' parameter of interest (else free); ``centers``:
-    per channel its constraints' centres (or None)."""
+    per channel its constraints' centres (or None); ``starts``: the wells each channel's
+    scan refits (:func:`.scale_scan.profile_global`'s)."""
     r = fit()
     if not shapes or not any(sp is not None for sp in shapes):
         return r
@@ -129,7 +132,8 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
         probes += [(sign * size, True, True), (mu + err, True, True),
                    (mu - err, True, True), (-sign * size, True, True)]
     for probe, fixed, any_well in probes:
-        fs, moved = _well_starts(r, models, counts, conv, shapes, probe, fixed, centers)
+        fs, moved = _well_starts(r, models, counts, conv, shapes, probe, fixed, centers,
+                                 starts)
         if any_well:
             moved = np.zeros(nb, bool)
             for st, fc in zip(fs, r["factors"]):
