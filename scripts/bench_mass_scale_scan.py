@@ -12,6 +12,10 @@ bins), resolution nuisance 20 %; per case the CPU seconds of its second call in 
 
 and for a combination of two such channels (each with its own mass scale and spectrum):
 
+* ``ccombine``: :func:`peaksift.stats.channels.combine` at 25 masses 120-180 GeV;
+* ``climits``: :func:`peaksift.stats.channel_limits.combined_limits`, asymptotic, at
+  those masses (each channel's own limits included);
+
 * ``ctoys``: the combination's global significance toys
   (:func:`peaksift.stats.channel_toys.combined_toy_scans`) at 25 masses 120-180 GeV, the
   combined scan excluded;
@@ -25,7 +29,8 @@ each with a mass scale of 3 % (scanned: 3 x 4.5 GeV beyond the width) and of 0.1
 tree in alternate rounds (the same load).
 
     python scripts/bench_mass_scale_scan.py [--runs 3] [--toys 200] [--baseline SRC]
-        [--cases scan,toys,toylimit,ctoys,cenvelope,ctoylimit] [--scales 0.03,0.001]
+        [--cases scan,toys,toylimit,ccombine,climits,ctoys,cenvelope,ctoylimit]
+        [--scales 0.03,0.001]
 """
 
 from __future__ import annotations
@@ -88,6 +93,11 @@ def run_combination():
                                seed=7, norms=cmb.norms, shapes=cmb.shapes,
                                ensembles=cmb.toy_constraints)
         return float(np.nansum(q.max(axis=1))), time.process_time() - t
+    if case == "ccombine":
+        return float(np.nansum(combine(channels(), masses, refit=False).q0))
+    if case == "climits":
+        lim = combined_limits(channels(), masses, method="asymptotic")
+        return float(np.nansum(lim.observed))
     if case == "cenvelope":
         return float(np.nansum(combine(channels(True), masses, refit=False).q0))
     lim = combined_limits(channels(), np.array([150.0]), method="toys", toy_masses=[150.0],
