@@ -25,7 +25,7 @@ from typing import Any
 import numpy as np
 
 from ..likelihood import Minimum, new_minuit, refine
-from .outcome import problems_at
+from .outcome import at_floor, problems_at
 
 __all__ = ["POLISH_CALLS", "POLISH_GAIN", "POLISH_TOL", "continue_invalid"]
 
@@ -94,8 +94,8 @@ def continue_invalid(best: tuple | None, calls: int, lower: np.ndarray, upper: n
 
 def _near_floor(x: np.ndarray, err: np.ndarray, floors: dict[int, float] | None,
                 free_idx: np.ndarray | None) -> bool:
-    """A free width at or within one error of its floor: the fit's result calls it invalid
-    (:func:`.outcome.result_of`, the same test)."""
+    """A free width at or within one error of its floor (:func:`.outcome.at_floor`): the
+    fit's result calls it invalid."""
     if not floors or free_idx is None:
         return False
     where = {int(i): k for k, i in enumerate(free_idx.tolist())}
@@ -103,8 +103,7 @@ def _near_floor(x: np.ndarray, err: np.ndarray, floors: dict[int, float] | None,
         k = where.get(int(i))
         if k is None:
             continue
-        v, e = float(x[k]), float(err[k])
-        if v <= floor * (1.0 + 1e-3) or (math.isfinite(e) and e >= v - floor):
+        if at_floor(float(x[k]), float(err[k]), floor):
             return True
     return False
 
