@@ -1,5 +1,6 @@
-"""The watch for a stuck worker (execution._stall): a deadlocked process is named, a slow,
-sleeping, waiting-on-input or CPU-starved one never is.
+"""The watch for a stuck worker (peaksift._stall): a deadlocked process is named, a slow,
+sleeping, waiting-on-input or CPU-starved one never is; in the process engine's pool, the
+toy engine's ``workers=`` pool, a local Dask cluster and the stages beside a search.
 
 Outside references: Linux ``proc(5)`` (``/proc/<pid>/task/<tid>/stat``: field 3 the state,
 R running or runnable, S sleeping, D uninterruptible; fields 14-15 the CPU time in clock
@@ -239,3 +240,127 @@ def test_a_stuck_figure_process_is_stopped_and_its_figures_drawn_here(monkeypatc
     assert worker.finish() == {"spectrum": tmp_path / "spectrum.png",
                                "scan": tmp_path / "scan.png"}
     assert pid not in _pool_children()
+
+
+# ------------------------------------------------------------ the toy engine's own pool
+def _toys_stuck_in_a_child(spec):
+    from peaksift.stats.toys import run_toy_batch
+
+    if spec.first == 0 and os.getpid() != _PARENT:  # the first batch, in a pool worker
+        deadlock(0.0)
+    return run_toy_batch(spec)
+
+
+def _toys_after_a_wait(spec):
+    """Waits on input (select(2)) for 4 s, then computes the batch: slow, healthy."""
+    import select
+
+    from peaksift.stats.toys import run_toy_batch
+
+    select.select([], [], [], 4.0)
+    return run_toy_batch(spec)
+
+
+def _toy_model():
+    import numpy as np
+
+    from peaksift import MassHistogram
+    from peaksift.stats.scan_inputs import _prepare_model
+
+    x = 100.0 + np.random.default_rng(21).exponential(120.0, 20_000)
+    h = MassHistogram(bins=200, range=(100.0, 500.0)).fill(x)
+    model, _, _ = _prepare_model(h, "gaussian", "exponential", np.linspace(120.0, 480.0, 8),
+                                 relative_resolution=0.01, window=None, natural_width=None,
+                                 blind=None, signal_params=None, bins=None)
+    return model
+
+
+@pytest.fixture
+def watch_test_toys(monkeypatch):
+    from peaksift.stats import toys
+
+    monkeypatch.setattr(toys, "watched", lambda func: True)
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "3")
+
+
+def test_a_stuck_toy_worker_ends_the_toys_with_an_error_naming_its_batch(watch_test_toys,
+                                                                          capfd):
+    from peaksift.stats.toys import run_toys
+
+    model = _toy_model()
+    before = _pool_children()
+    with pytest.raises(ExecutionError) as raised:
+        run_toys(model, 20, seed=3, batch=10, workers=2, progress=False,
+                 batch_function=_toys_stuck_in_a_child)
+    text = str(raised.value)
+    assert "is stuck on toy batch 1 of 2 (toys 0-9" in text, text
+    assert "PEAKSIFT_STALL_SECONDS" in text and "workers=1" in text
+    time.sleep(0.5)
+    assert _pool_children() <= before  # every toy worker was stopped
+    assert "in deadlock" in capfd.readouterr().err  # the stuck worker's stack (faulthandler)
+
+
+def test_slow_healthy_toy_batches_are_left_to_finish(watch_test_toys):
+    """Batches that wait on input longer than the limit finish, and give the toys of the
+    serial loop (reference: the same batches computed in this process, per-toy seeding;
+    1e-9: single-threaded BLAS in the workers may round products differently)."""
+    import numpy as np
+
+    from peaksift.stats.toys import run_toys
+
+    model = _toy_model()
+    serial = run_toys(model, 20, seed=3, batch=10, progress=False)
+    pooled = run_toys(model, 20, seed=3, batch=10, workers=2, progress=False,
+                      batch_function=_toys_after_a_wait)
+    assert np.allclose(pooled, serial, rtol=1e-9, atol=1e-9)
+
+
+# ------------------------------------------------------------ a local Dask cluster
+def deadlock_on_zero(x: float) -> float:
+    """Task 0 deadlocks (in the Dask worker's task thread); the others wait on input for
+    ``|x|`` seconds (select(2)): slow, healthy; a negative ``x`` waits (futex) on a thread
+    of its own that waits on input, as a download through an event-loop thread does."""
+    import select
+    import threading
+
+    if x == 0:
+        deadlock(0.0)
+    if x < 0:
+        helper = threading.Thread(target=select.select, args=([], [], [], -x))
+        helper.start()
+        helper.join()
+    else:
+        select.select([], [], [], x)
+    return x
+
+
+@pytest.fixture
+def watch_dask_tasks(monkeypatch):
+    pytest.importorskip("distributed")
+    from peaksift.execution import _dask
+
+    monkeypatch.setattr(_dask, "watched", lambda func: True)
+    monkeypatch.setenv("PEAKSIFT_STALL_SECONDS", "3")
+
+
+def test_a_stuck_dask_task_ends_the_run_with_an_error_naming_it(watch_dask_tasks, capfd):
+    """A local cluster's worker whose task thread deadlocks while its event loop runs on
+    (heart-beats, sockets): the run ends naming the task, and the cluster's processes end."""
+    before = _pool_children()
+    with pytest.raises(ExecutionError) as raised:
+        execution.map_tasks(deadlock_on_zero, [0.0, 1.0], engine="dask", workers=2)
+    text = str(raised.value)
+    assert "Dask worker process" in text and "is stuck on task 0" in text, text
+    assert "PEAKSIFT_STALL_SECONDS" in text and "fewer workers" in text
+    deadline = time.monotonic() + 30  # generous: the cluster's close on a loaded machine
+    while _pool_children() - before and time.monotonic() < deadline:
+        time.sleep(0.2)
+    assert not _pool_children() - before  # the local cluster's workers were ended
+    assert "in deadlock" in capfd.readouterr().err  # the stuck worker's stack
+
+
+def test_slow_healthy_dask_tasks_are_left_to_finish(watch_dask_tasks):
+    """Tasks that wait on input for over twice the limit, themselves or through a thread
+    they started, finish with their results."""
+    assert execution.map_tasks(deadlock_on_zero, [7.0, -8.0], engine="dask",
+                               workers=2) == [7.0, -8.0]

@@ -28,17 +28,29 @@ them (functions of peaksift's modules: a user's function may wait on a lock shar
 other processes).  Where the files cannot be read (another system, no permission, an
 unknown architecture) the watch never calls a worker stuck.  ``PEAKSIFT_STALL_SECONDS``
 sets ``limit`` (default :data:`DEFAULT_LIMIT`; 0 turns the watch off).
+
+Every pool of peaksift's is watched by the same pieces: in each worker,
+:func:`worker_tracking` (each task's start reported with :func:`tracked`, the threads'
+stacks written on :data:`STACKS_SIGNAL`); in the parent, :func:`result_watched` waits for a
+task's result in :data:`LOOK` steps and raises the caller's error for a stuck worker, after
+asking it for its stacks.  The execution engines' process pool (``execution._local``) and
+the toy engine's ``workers=`` pool (``stats.toys``) use them; a local Dask cluster's
+workers run other threads beside the task (an event loop), so there :class:`Threads` names
+the task's thread and the machinery's threads to leave out.
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import math
 import os
 import platform
+import signal
 import sys
 import time
 from collections.abc import Callable, Iterable
+from dataclasses import dataclass
 from typing import Any
 
 #: seconds a worker must look stuck, at every look, before it is called stuck
@@ -77,17 +89,33 @@ def _ticks(fields: list[str]) -> int:
     return int(fields[11]) + int(fields[12])  # utime, stime (proc(5) fields 14 and 15)
 
 
-def snapshot(pid: int) -> tuple[bool, int] | None:
-    """``(blocked, cpu_ticks)`` of process ``pid``: whether all its threads wait as a stuck
-    worker's do (see the module guide), and their CPU time in clock ticks.  None when it
-    cannot be told (gone, not readable, not Linux, an unknown architecture)."""
+@dataclass(frozen=True)
+class Threads:
+    """The threads of process ``pid`` the watch judges: ``main`` runs the task (it must wait
+    on a lock), the ones in ``skip`` are never looked at (a Dask worker's event loop and its
+    watches of its parent: they run and wait on sockets whatever the task does)."""
+
+    pid: int
+    main: int
+    skip: frozenset[int] = frozenset()
+
+
+def snapshot(pid: int, main: int | None = None,
+             skip: frozenset[int] = frozenset()) -> tuple[bool, int] | None:
+    """``(blocked, cpu_ticks)`` of process ``pid``: whether all its threads (but ``skip``)
+    wait as a stuck worker's do (see the module guide; ``main``, default the process's
+    first thread, is the one running the task), and their CPU time in clock ticks.  None
+    when it cannot be told (gone, not readable, not Linux, an unknown architecture)."""
     numbers = _SYSCALLS.get(platform.machine())
     if numbers is None or not sys.platform.startswith("linux"):
         return None
     futex, sleeps = numbers
+    main = pid if main is None else main
     blocked, ticks = True, 0
     try:
-        tids = os.listdir(f"/proc/{pid}/task")
+        tids = [t for t in os.listdir(f"/proc/{pid}/task") if int(t) not in skip]
+        if str(main) not in tids:  # the task's thread is gone: nothing waits there
+            return None
         for tid in tids:
             with open(f"/proc/{pid}/task/{tid}/stat") as f:
                 fields = f.read().rsplit(")", 1)[1].split()
@@ -101,7 +129,7 @@ def snapshot(pid: int) -> tuple[bool, int] | None:
                 blocked = False
                 continue
             nr = int(call[0])
-            if nr != futex and (int(tid) == pid or nr not in sleeps
+            if nr != futex and (int(tid) == main or nr not in sleeps
                                 or _name(pid, tid) != SLEEPER):
                 blocked = False
     except (OSError, ValueError, IndexError):
@@ -129,15 +157,17 @@ class StallWatch:
     def on(self) -> bool:
         return self.limit > 0
 
-    def stuck(self, pids: Iterable[int]) -> tuple[int, float] | None:
-        """``(pid, seconds)`` of a worker among ``pids`` stuck for ``limit`` s, else None."""
+    def stuck(self, pids: Iterable[Any]) -> tuple[Any, float] | None:
+        """``(pid, seconds)`` of a worker among ``pids`` stuck for ``limit`` s, else None.
+        An item may be a :class:`Threads` instead of a pid (returned as it was given)."""
         now = time.monotonic()
         pids = set(pids)
         for pid in list(self._since):
             if pid not in pids:  # idle now, or gone: its next task starts afresh
                 del self._since[pid]
-        for pid in sorted(pids):
-            snap = snapshot(pid)
+        for pid in sorted(pids, key=_order):
+            snap = (snapshot(pid.pid, pid.main, pid.skip) if isinstance(pid, Threads)
+                    else snapshot(pid))
             first = self._since.get(pid)
             if snap is None or not snap[0]:
                 self._since.pop(pid, None)
@@ -146,3 +176,74 @@ class StallWatch:
             elif now - first[0] >= self.limit:
                 return pid, now - first[0]
         return None
+
+
+def _order(pid: Any) -> tuple[int, int]:
+    return (pid.pid, pid.main) if isinstance(pid, Threads) else (pid, pid)
+
+
+#: the signal that has a watched worker write its threads' stacks (faulthandler)
+STACKS_SIGNAL = signal.SIGUSR1 if hasattr(signal, "SIGUSR1") else signal.SIGTERM
+
+_TRACK: Any = None  # in a watched pool's worker: queue of (pid, task index) as tasks start
+
+
+def worker_tracking(track: Any) -> None:
+    """In a pool worker, at its start: report each task's start on ``track`` (a queue the
+    parent reads with :func:`drain`; :func:`tracked` runs the task) and write the stacks of
+    every thread on :data:`STACKS_SIGNAL`, even in a deadlock (asked for by the parent
+    before it stops a worker stuck)."""
+    global _TRACK
+    _TRACK = track
+    import faulthandler
+
+    faulthandler.register(STACKS_SIGNAL, all_threads=True)
+
+
+def tracked(func: Callable[[Any], Any], index: int, task: Any) -> Any:
+    """Run one task in a pool worker, first telling the parent which process took it."""
+    if _TRACK is not None:
+        _TRACK.put((os.getpid(), index))
+    return func(task)
+
+
+def drain(track: Any, started: dict[int, int]) -> None:
+    """Read the (pid, task) start records into ``started``; done after every result, so
+    the pipe never fills (a worker blocked on a full pipe would stall the pool)."""
+    with contextlib.suppress(OSError, EOFError):
+        while not track.empty():
+            pid, index = track.get()
+            started[pid] = index
+
+
+def ask_for_stacks(pid: int) -> None:
+    """Have a stuck worker write its threads' stacks to stderr (see
+    :func:`worker_tracking`), and give it a moment to, before it is stopped."""
+    with contextlib.suppress(OSError):
+        os.kill(pid, STACKS_SIGNAL)
+        time.sleep(0.5)
+
+
+def result_watched(fut: Any, watch: StallWatch | None, track: Any, started: dict[int, int],
+                   running: Callable[[], Iterable[int]],
+                   stuck: Callable[[int, float, int], BaseException]) -> Any:
+    """``fut.result()`` (a :mod:`concurrent.futures` future), looking every :data:`LOOK`
+    seconds that none of the workers running the tasks ``running()`` (indices, the awaited
+    one included) is stuck; a stuck one has its stacks written, then
+    ``stuck(pid, seconds, task index)`` is raised (the caller stops its pool)."""
+    from concurrent.futures import TimeoutError as WaitTimeout
+
+    if watch is None or not watch.on:
+        return fut.result()
+    while True:
+        try:
+            return fut.result(timeout=LOOK)
+        except WaitTimeout:
+            if fut.done():  # the task's own TimeoutError: raised as it is
+                return fut.result()
+        drain(track, started)
+        now = set(running())
+        found = watch.stuck(pid for pid, j in started.items() if j in now)
+        if found is not None:
+            ask_for_stacks(found[0])
+            raise stuck(found[0], found[1], started[found[0]])

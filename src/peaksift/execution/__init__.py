@@ -76,17 +76,17 @@ Guarantees
   error naming it (a footer that lacks what the selection reads, before any chunk runs); with ``unreadable_files="left_out"`` the whole file is left out (its chunks that
   were already processed are discarded too, so a file counts completely or not at all) and
   listed in :attr:`Collected.files_skipped`.  A worker process that dies raises
-  :class:`~peaksift.errors.ExecutionError` naming the chunk; so does a worker of the
-  ``processes`` engine that is stuck (on Linux: every thread of it waiting on a lock, with
-  no CPU used, for ``PEAKSIFT_STALL_SECONDS``, default 120 s; a slow task is never
-  stopped, see ``peaksift._stall``).  ``KeyboardInterrupt`` stops the workers, closes what was
+  :class:`~peaksift.errors.ExecutionError` naming the chunk; so does a stuck worker of the
+  ``processes`` engine or of a local Dask cluster started here (on Linux: the task's
+  threads all waiting on a lock, with no CPU used, for ``PEAKSIFT_STALL_SECONDS``, default
+  120 s; a slow task is never stopped, see ``peaksift._stall``).  ``KeyboardInterrupt`` stops the workers, closes what was
   started and propagates.
 
 Where things are: ``_chunk.py`` (the map step), ``_shared.py`` (the map step of several
 selections on one read), ``_collect.py`` (plan, run, reduce),
 ``_engines.py`` (engine checks, dispatch, :func:`map_tasks`), ``_local.py`` (serial and
 process-pool runners, worker start, dead and stuck workers), ``_dask.py`` (the Dask
-engine).
+engine) with ``_dask_watch.py`` (its stuck tasks).
 """
 
 from __future__ import annotations

@@ -22,6 +22,7 @@ from .._processes import (
     signals_held,
     worker_start,
 )
+from .._stall import watched
 from ..errors import ExecutionError, PeaksiftError
 from ._local import (
     _INFLIGHT_PER_WORKER,
@@ -82,9 +83,12 @@ def _local_worker_setup() -> None:
     parent-alive pipes open, so none sees its pipe close)."""
     import os
 
+    from ._dask_watch import worker_setup
+
     worker_start()
     die_with_parent(os.getppid())
     _install_exit_fast()
+    worker_setup()  # after the threads above: the worker's own, left out of the stall watch
 
 
 def _start_local_cluster(workers: int, start_method: str = "auto") -> Any:
@@ -326,6 +330,7 @@ def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
     try:
         task_func = _Versioned(func, _peaksift_version())
         token = uuid.uuid4().hex[:12]
+        watch = _watch(session, func, f"peaksift-{token}-", n, describe)
         nxt = 0
         emit = 0
         threads = _dask_threads(cl)
@@ -346,6 +351,8 @@ def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
                 try:
                     ready = [finished.get(timeout=_RESIZE_SECONDS)]
                 except queue.Empty:
+                    if watch is not None:
+                        watch.look()  # a stuck task: an ExecutionError, the workers stopped
                     continue
                 while not finished.empty():
                     ready.append(finished.get())
@@ -366,6 +373,17 @@ def _run_dask(func: Callable[[Any], Any], tasks: Sequence[Any], workers: int,
                 cl.cancel(list(running.values()))
         if own:
             session.close(abort=abandoned)
+
+
+def _watch(session: DaskSession, func: Callable[[Any], Any], prefix: str, n: int,
+           describe: Callable[[int], str]) -> Any:
+    """The stuck-worker watch over a local cluster started here, for peaksift's own tasks
+    (:mod:`peaksift.execution._dask_watch`); None for a user's cluster or function."""
+    if session.cluster is None or not watched(func):
+        return None
+    from ._dask_watch import DaskWatch
+
+    return DaskWatch(session.client, prefix, n, describe)
 
 
 def _outcome(running: dict[int, Any], i: int, n: int, describe: Callable[[int], str]

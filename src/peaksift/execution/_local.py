@@ -21,7 +21,7 @@ from collections.abc import Callable, Iterator, Mapping, Sequence
 from typing import Any
 
 from .._processes import WORKER_ENV, process_pool, quiet_fork, stop_pool, worker_start
-from .._stall import LOOK, StallWatch, watched
+from .._stall import StallWatch, drain, result_watched, tracked, watched, worker_tracking
 from ..errors import ExecutionError, PeaksiftError
 
 #: Chunks allowed in flight (running, queued or waiting to be reduced) per worker.
@@ -38,9 +38,6 @@ def _prepare_to_fork(func: Callable[[Any], Any]) -> None:
     prepare = getattr(func, "prepare", None)
     if callable(prepare):
         prepare()
-
-
-_TRACK: Any = None  # in a pool worker: queue of (pid, task index) as tasks start
 
 
 def _exit_fast() -> None:
@@ -65,16 +62,11 @@ def _install_exit_fast() -> None:
 
 def _worker_init(track: Any) -> None:
     """Pool workers: signals and thread counts (:func:`peaksift._processes.worker_start`),
-    the task-start record queue, and a fast exit."""
-    global _TRACK
+    the task-start records and the stacks on request (:func:`peaksift._stall.worker_tracking`),
+    and a fast exit."""
     worker_start()
-    _TRACK = track
+    worker_tracking(track)
     _install_exit_fast()
-    import faulthandler
-
-    # the stacks of every thread, written to stderr even in a deadlock: asked for by the
-    # parent before it stops a worker stuck (see _stall)
-    faulthandler.register(_STACKS_SIGNAL, all_threads=True)
 
 
 def _pool(size: int, method: str, track: Any) -> Any:
@@ -93,13 +85,6 @@ def _spawn_env(env: Mapping[str, str]) -> Iterator[None]:
     finally:
         for k in added:
             os.environ.pop(k, None)
-
-
-def _tracked(func: Callable[[Any], Any], index: int, task: Any) -> Any:
-    """Run one task in a pool worker, first telling the parent which process took it."""
-    if _TRACK is not None:
-        _TRACK.put((os.getpid(), index))
-    return func(task)
 
 
 def _check_picklable(obj: Any, what: str) -> None:
@@ -145,7 +130,7 @@ def _broken_pool_error(procs: dict[int, Any], track: Any, started: dict[int, int
     can tell, otherwise the tasks in flight."""
     hint = ("it was killed or crashed: lower chunk_events or workers, or run "
             "engine='serial' to see the underlying error")
-    _drain(track, started)
+    drain(track, started)
     if method == "spawn" and not started:
         # no worker got as far as a task: most often a script without the main guard,
         # which spawned workers re-run on import (and which refuses to start them)
@@ -167,7 +152,7 @@ def _submit(pool: Any, func: Callable[[Any], Any], index: int, task: Any) -> Any
     from concurrent.futures.process import BrokenProcessPool
 
     try:
-        return pool.submit(_tracked, func, index, task)
+        return pool.submit(tracked, func, index, task)
     except BrokenProcessPool as exc:
         failed: Future = Future()
         failed.set_exception(exc)
@@ -197,21 +182,12 @@ def _exit_text(code: int | None) -> str:
     return f"exit code {code}"
 
 
-def _drain(track: Any, started: dict[int, int]) -> None:
-    """Read the (pid, task) start records; done after every result, so the pipe never
-    fills (a worker blocked on a full pipe would stall the pool)."""
-    with contextlib.suppress(OSError, EOFError):
-        while not track.empty():
-            pid, index = track.get()
-            started[pid] = index
-
-
 def _culprit(procs: dict[int, Any], track: Any, started: dict[int, int],
              unfinished: set[int]) -> tuple[int, str] | None:
     """The task whose worker died first: it started last on a process that did not exit
     by the pool's own SIGTERM."""
     for attempt in range(3):  # start records and exit codes can lag the pool's notice
-        _drain(track, started)
+        drain(track, started)
         found = _dead_tasks(procs, started, unfinished)
         if found:
             return min(found)
@@ -233,38 +209,19 @@ def _dead_tasks(procs: dict[int, Any], started: dict[int, int],
     return found
 
 
-#: the signal that has a pool worker write its threads' stacks (faulthandler)
-_STACKS_SIGNAL = signal.SIGUSR1 if hasattr(signal, "SIGUSR1") else signal.SIGTERM
-
-
 def _result(fut: Any, watch: StallWatch | None, track: Any, started: dict[int, int],
             i: int, pending: dict[int, Any], n: int, describe: Callable[[int], str]) -> Any:
     """``fut.result()`` of task ``i``, looking every few seconds that the workers running
-    it and the ``pending`` tasks are not stuck (:mod:`peaksift._stall`); a stuck one is an
-    :class:`ExecutionError` naming its task."""
-    from concurrent.futures import TimeoutError as WaitTimeout
-
-    if watch is None or not watch.on:
-        return fut.result()
-    while True:
-        try:
-            return fut.result(timeout=LOOK)
-        except WaitTimeout:
-            if fut.done():  # the task's own TimeoutError: raised as it is
-                return fut.result()
-        _drain(track, started)
-        running = {i, *(k for k, f in pending.items() if not f.done())}
-        found = watch.stuck(pid for pid, j in started.items() if j in running)
-        if found is not None:
-            raise _stuck_error(*found, started, n, describe)
+    it and the ``pending`` tasks are not stuck (:func:`peaksift._stall.result_watched`); a
+    stuck one is an :class:`ExecutionError` naming its task."""
+    return result_watched(
+        fut, watch, track, started,
+        lambda: {i, *(k for k, f in pending.items() if not f.done())},
+        lambda pid, seconds, j: _stuck_error(pid, seconds, j, n, describe))
 
 
-def _stuck_error(pid: int, seconds: float, started: dict[int, int], n: int,
+def _stuck_error(pid: int, seconds: float, i: int, n: int,
                  describe: Callable[[int], str]) -> ExecutionError:
-    with contextlib.suppress(OSError):  # its stacks first, for the report
-        os.kill(pid, _STACKS_SIGNAL)
-        time.sleep(0.5)
-    i = started[pid]
     return ExecutionError(
         f"worker process {pid} is stuck on {describe(i)} [{i + 1} of {n}]: for "
         f"{seconds:.0f} s every thread of it has waited on a lock or slept, using no CPU "
@@ -328,13 +285,13 @@ def _run_processes(func: Callable[[Any], Any], tasks: Sequence[Any], workers: in
             try:
                 value = _result(fut, watch, track, started, i, pending, n, describe)
             except PeaksiftError as exc:
-                _drain(track, started)
+                drain(track, started)
                 yield i, False, exc
                 continue
             except BrokenProcessPool:
                 raise _broken_pool_error(procs, track, started, {i, *pending}, n,
                                          describe, method) from None
-            _drain(track, started)
+            drain(track, started)
             yield i, True, value
         clean = True
     finally:
@@ -374,7 +331,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
         procs.update(getattr(pool, "_processes", None) or {})
         i = 0
         while i < n:
-            _drain(track, started)
+            drain(track, started)
             busy = sum(1 for f in pending.values() if not f.done())
             while nxt < n and busy < limit:
                 pending[nxt] = _submit(pool, func, nxt, tasks[nxt])
@@ -401,7 +358,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
             try:
                 value = _result(fut, watch, track, started, i, pending, n, describe)
             except PeaksiftError as exc:
-                _drain(track, started)
+                drain(track, started)
                 yield i, False, exc
                 i += 1
                 continue
@@ -409,7 +366,7 @@ def _run_processes_helping(func: Callable[[Any], Any], tasks: Sequence[Any], wor
                 unfinished = {i, *(k for k, f in pending.items() if not f.done())}
                 raise _broken_pool_error(procs, track, started, unfinished, n,
                                          describe, method) from None
-            _drain(track, started)
+            drain(track, started)
             yield i, True, value
             i += 1
         clean = True

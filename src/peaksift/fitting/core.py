@@ -165,9 +165,11 @@ def fit(
         cost = make_cost(s0)
         try:
             # beat: a later start that stalls above the best minimum so far cannot win
+            # refine_below: the refinement below made in the same compiled call
             mo = minimize(cost, s0[free_idx], lo_f, hi_f, free_names,
                           stop=None if near is None else _joins(near),
-                          beat=None if best is None else best[0])
+                          beat=None if best is None else best[0],
+                          refine_below=math.inf if best is None else best[0] - 1e-9)
             if mo.joined:  # on its way into the best minimum: nothing new to learn
                 tried.append(float(mo.fval))
                 calls += cost.ncall

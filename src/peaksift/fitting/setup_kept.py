@@ -163,7 +163,7 @@ def _new_counts(data: Any, retries: Any, other: Setup) -> Setup | None:
     model = other.model
     lower, upper = other.lower.copy(), other.upper.copy()
     yield_bounds(model, total, lower, upper)
-    if not (lower < upper).all():
+    if not all(a < b for a, b in zip(lower.tolist(), upper.tolist())):  # (lower < upper).all()
         return None
     base = other.base.copy()
     for _, _, iy in model.blocks:

@@ -86,6 +86,11 @@ class _Cost:
                                                                                       float)
         return np.maximum(lo, own[0]), np.minimum(hi, own[1])
 
+    def hessian_bounds(self, lower: Any, upper: Any) -> tuple[np.ndarray, np.ndarray]:
+        """The bounds :meth:`observed_hessian`'s differences stay inside, for the free
+        parameters' ``lower``/``upper``."""
+        return self._free_bounds(lower, upper)
+
     def _shape_domain(self) -> tuple[np.ndarray, np.ndarray]:
         # made once per cost (the model and the free parameters do not change; the costs
         # copied from it share it): the observed Hessian asks at every minimum
@@ -320,12 +325,14 @@ class BinnedCost(_Cost):
             self._problem = compiled_module(DRIVER_MODULE).problem_of(self._fused) or ()
         return self._problem or None
 
-    def note_compiled_calls(self, calls: int, x_last: np.ndarray) -> None:
+    def note_compiled_calls(self, calls: int, x_last: np.ndarray,
+                            mu: np.ndarray | None = None) -> None:
         """Book ``calls`` evaluations made by the compiled minimiser, the last at
-        ``x_last`` (its expectation is in the compiled buffers)."""
+        ``x_last`` (its expectation is in the compiled buffers, or ``mu``: a copy made
+        before later work wrote them)."""
         self.ncall += int(calls)
         key = np.asarray(x_last, float).tobytes()
-        self._state = (key, self._fused.mu.copy(), None)
+        self._state = (key, self._fused.mu.copy() if mu is None else mu, None)
         self._buffers_at = key
 
     def buffers_changed(self) -> None:

@@ -242,10 +242,18 @@ class FusedBinned:
         self.mu = np.zeros(self.bins.size)
         self.jac = np.zeros((nfree, self.bins.size))
         self.yields = np.empty(len(self.plan))
-        # per component: kernel, its arguments around the parameters, its rows of cdf
-        self.calls = [(kern.func, kern.data[:1], kern.data[1:],
-                       self.cdf[self.start[k]:self.start[k + 1]], p[1], p[2], p[5])
-                      for k, (kern, p) in enumerate(zip(self.kernels, self.plan))]
+        self._calls = None  # (see calls)
+
+    @property
+    def calls(self) -> list:
+        """Per component: kernel, its arguments around the parameters, its rows of cdf --
+        :meth:`evaluate`'s, made at its first call (the compiled minimiser, which most
+        costs see only, reads the buffers without them)."""
+        if self._calls is None:
+            self._calls = [(kern.func, kern.data[:1], kern.data[1:],
+                            self.cdf[self.start[k]:self.start[k + 1]], p[1], p[2], p[5])
+                           for k, (kern, p) in enumerate(zip(self.kernels, self.plan))]
+        return self._calls
 
     def fresh(self) -> FusedBinned:
         """The same evaluator with buffers of its own (for another cost on the same data)."""

@@ -35,6 +35,7 @@ from .minimum import Minimum, NearMinimum
 from .poisson import (
     DRIVER_MODULE,
     KERNELS_MODULE,
+    NEWTON_MODULE,
     WALL_FRACTION,
     use_compiled,
 )
@@ -184,9 +185,14 @@ def _promise(g: np.ndarray, step: np.ndarray, a: np.ndarray) -> float:
 def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
              names: list[str], edm_goal: float = 1e-7,
              stop: Callable[[np.ndarray, float], bool] | None = None,
-             beat: float | None = None) -> Minimum:
+             beat: float | None = None, refine_below: float | None = None) -> Minimum:
     """Fisher scoring first (few calls), MIGRAD when it does not converge (from where it
     stopped on binned costs with empty bins, see :func:`_goes_on`).
+
+    ``refine_below`` (optional): the caller will call :func:`.refine.refine` on this
+    minimum, with the same ``lower``/``upper``, when its NLL is below this; where the
+    compiled loop answers, that is made in the same compiled call and kept on the
+    minimum (``Minimum.refined``), which ``refine`` then returns.
 
     ``stop(x, f)`` (optional) is asked at every point Fisher scoring accepts; when it says True the minimisation ends there and the :class:`Minimum` has
     ``joined=True`` (used by the free fit to abandon a start whose path has run into a
@@ -194,7 +200,7 @@ def minimize(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
     has, lets a MIGRAD run that stalls above it stop early (:mod:`.migrad`)."""
     start = np.minimum(np.maximum(np.asarray(start, float), lower), upper)  # np.clip
     if stop is None or isinstance(stop, NearMinimum):
-        fast = _compiled(cost, start, lower, upper, edm_goal, stop)
+        fast = _compiled(cost, start, lower, upper, edm_goal, stop, refine_below)
         if fast is not None:
             return fast if isinstance(fast, Minimum) else migrad(
                 cost, fast if _goes_on(cost) else start, lower, upper, names, beat)
@@ -226,29 +232,40 @@ def _goes_on(cost: Any) -> bool:
 
 
 def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-              edm_goal: float, stop: NearMinimum | None) -> Minimum | bool | None:
+              edm_goal: float, stop: NearMinimum | None,
+              refine_below: float | None = None) -> Minimum | bool | None:
     """:func:`fisher_scoring` in one compiled call (:mod:`.driver`) where the cost allows:
     its Minimum, the point where MIGRAD must take over, None when the Python loop must
-    run."""
+    run.  With ``refine_below``, :func:`.refine.refine`'s work in the same call
+    (:func:`.driver_newton.compiled_minimum`)."""
     problem = getattr(cost, "compiled_problem", None)
     # (a cost has a compiled problem only when it was made with the compiled path on)
     if problem is None or problem() is None:
         return None
     drv = compiled_module(DRIVER_MODULE)
-    out = drv.compiled_fisher_scoring(cost, start, lower, upper, 60, edm_goal, stop)
+    out = compiled_module(NEWTON_MODULE).compiled_minimum(
+        cost, start, lower, upper, 60, edm_goal, stop, refine_below) if (
+        refine_below is not None and 0 < cost.free.size <= _SMALL) else False
+    if out is False:  # one by one (the refinement, if any, by the caller)
+        out = drv.compiled_fisher_scoring(cost, start, lower, upper, 60, edm_goal, stop)
+        out = None if out is None else (*out, False, None)
     if out is None:
         return None
-    status, x, f, info, g = out
+    status, x, f, info, g, inv, refined = out
     if status == drv.JOINED:
         return Minimum(x, f, False, False, np.full(x.size, np.nan), "fisher-scoring",
                        joined=True)
     if status != drv.CONVERGED:
         return x  # where MIGRAD goes on (see minimize)
-    inv, posdef = covariance(info)
-    if not posdef:
+    if inv is False:
+        inv, posdef = covariance(info)
+        if not posdef:
+            return x
+    elif inv is None:  # (not positive definite)
         return x
     return Minimum(x, f, True, False, np.sqrt(np.maximum(np.diag(inv), 0.0)),
-                   "fisher-scoring", grad=g)
+                   "fisher-scoring", grad=g,
+                   refined=None if refined is None else (lower, upper, refined))
 
 
 def covariance(hess: np.ndarray) -> tuple[np.ndarray, bool]:

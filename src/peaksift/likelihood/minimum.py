@@ -36,6 +36,10 @@ class Minimum:
     #: the gradient at ``x`` when the minimiser has it (the compiled Fisher scoring): the
     #: final Newton stage of :func:`.refine.refine` then needs no evaluation at ``x``
     grad: np.ndarray | None = None
+    #: ``(lower, upper, (x, nll, covariance, positive definite))``: :func:`.refine.refine`
+    #: of this minimum within those bounds, made with it in one compiled call
+    #: (:func:`.minimize.minimize`'s ``refine_below``)
+    refined: tuple | None = None
 
 
 @dataclass(frozen=True)

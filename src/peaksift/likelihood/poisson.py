@@ -78,6 +78,7 @@ except AttributeError:  # not CPython's os.environ: always the public lookup
 #: (:func:`peaksift._jit.compiled_module`): importing the likelihood loads no numba
 KERNELS_MODULE = "peaksift.likelihood.kernels"
 DRIVER_MODULE = "peaksift.likelihood.driver"
+NEWTON_MODULE = "peaksift.likelihood.driver_newton"
 SHAPE_ROWS_MODULE = "peaksift.shapes.compiled"
 START_KERNELS_MODULE = "peaksift.likelihood.start_kernels"
 

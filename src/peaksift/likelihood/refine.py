@@ -16,6 +16,7 @@ from .._jit import compiled_module
 from .migrad import migrad
 from .minimize import _hold, _solve, covariance, fisher_scoring, held_at_bounds
 from .minimum import Minimum, at_bounds
+from .poisson import NEWTON_MODULE  # the compiled Newton stage, imported on first use
 
 __all__ = [
     "EDM_MIGRAD",
@@ -30,8 +31,6 @@ __all__ = [
 ]
 
 
-#: the compiled Newton stage (imported on first use: importing the likelihood loads no numba)
-NEWTON_MODULE = "peaksift.likelihood.driver_newton"
 
 #: MIGRAD's EDM goal at strategy 0 and errordef 0.5 (0.002 x tolerance 0.1 x errordef)
 EDM_MIGRAD = 1e-4
@@ -48,6 +47,9 @@ def refine(cost: Any, mo: Minimum, lower: np.ndarray, upper: np.ndarray):
 
     Returns ``(x, nll, covariance, positive_definite)``.
     """
+    done = mo.refined
+    if done is not None and done[0] is lower and done[1] is upper:
+        return done[2]  # made with the minimum (the same steps in one compiled call)
     x0 = np.asarray(mo.x, float)
     f0 = mo.fval
     g0 = mo.grad

@@ -46,7 +46,7 @@ def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.n
     if free.size == 0:
         return v
     if not is_fixed[biy]:  # (every bin: n's own sum, the same as of its copy n[all])
-        v[biy] = max(float((n if mask is None else n[mask]).sum()), 1.0)
+        v[biy] = max(float(np.add.reduce(n if mask is None else n[mask])), 1.0)  # (.sum())
     lo, hi = lower[free].copy(), upper[free].copy()
     x0 = np.minimum(np.maximum(v[free], lo), hi)
     fast = _prepared(model, edges, n, scale, free)
@@ -74,9 +74,9 @@ def _prepared(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
         return None
     inputs = (model, edges, n, scale)
     key = tuple(free.tolist())
-    for entry in _RECENT_FITS:
-        if entry[1] == key and all(a is b for a, b in zip(entry[0], inputs)):
-            return entry[2]
+    for (m, e, c, s), k, fast in _RECENT_FITS:
+        if m is model and e is edges and c is n and s is scale and k == key:
+            return fast
     fast = _BackgroundFit.make(model, edges, n, scale, free)
     if fast is not None and all(isinstance(a, np.ndarray) and not a.flags.writeable
                                 for a in inputs[1:]):

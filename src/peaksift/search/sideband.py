@@ -186,7 +186,8 @@ def sideband_fit(hist: Any, signal: Any, background: Any, window: tuple[float, f
     cost = BinnedCost(model, v0, free, [], edges, n, scale, used)
     lo_f, hi_f = lower[free], upper[free]
     free_names = [names[i] for i in free]
-    mo = minimize(cost, v0[free], lo_f, hi_f, free_names)
+    # (refined in the minimiser's compiled call where it has one: the same numbers)
+    mo = minimize(cost, v0[free], lo_f, hi_f, free_names, refine_below=math.inf)
     x, f, cov, posdef = refine(cost, mo, lo_f, hi_f)
     full = v0.copy()
     full[free] = x

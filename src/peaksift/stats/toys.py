@@ -51,8 +51,9 @@ from typing import Any
 
 import numpy as np
 
-from .._processes import process_pool, quiet_fork, stop_pool, worker_start
-from ..errors import FitError
+from .._processes import process_pool, quiet_fork, stop_pool
+from .._stall import StallWatch, drain, result_watched, tracked, watched, worker_tracking
+from ..errors import ExecutionError, FitError
 from .toy_model import (
     _SUB_BATCH,
     _TOYS_PER_BATCH,
@@ -185,19 +186,9 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
             results.extend(done)
             bar.update(n_toys)
         elif workers is not None and int(workers) > 1 and len(specs) > 1:
-            # forked on Linux, spawned elsewhere, like the execution engines' pools
-            size = min(int(workers), len(specs), os.cpu_count() or 1)
-            pool = process_pool(size, initializer=worker_start)
-            try:
-                with quiet_fork():  # the workers start at the first submit
-                    done_iter = pool.map(unit, specs)
-                for spec, res in zip(specs, done_iter):
-                    results.append(res)
-                    bar.update(spec.count)
-            except BaseException:  # Ctrl-C or a failed batch: stop now, do not wait
-                stop_pool(pool)
-                raise
-            pool.shutdown(wait=True)
+            for res, spec in zip(_run_pool(unit, specs, int(workers)), specs):
+                results.append(res)
+                bar.update(spec.count)
         else:
             for spec in specs:
                 results.append(unit(spec))
@@ -205,6 +196,52 @@ def run_toys(model: ScanModel, n_toys: int, *, seed: int = 0, workers: int | Non
     finally:
         bar.close()
     return np.concatenate(results, axis=0)
+
+
+def _run_pool(unit: Callable[[ToyBatch], np.ndarray], specs: list[ToyBatch],
+              workers: int) -> Any:
+    """The batches' results in order, from a process pool of ``workers`` (forked on Linux,
+    spawned elsewhere, like the execution engines' pools), its workers under the stuck-worker
+    watch (:mod:`peaksift._stall`) when ``unit`` is peaksift's own."""
+    import multiprocessing
+
+    from .._processes import resolve_start_method
+
+    size = min(workers, len(specs), os.cpu_count() or 1)
+    track = multiprocessing.get_context(resolve_start_method()).SimpleQueue()
+    pool = process_pool(size, initializer=worker_tracking, initargs=(track,))
+    started: dict[int, int] = {}
+    watch = StallWatch() if watched(unit) else None
+    clean = False
+    try:
+        with quiet_fork():  # the workers start at the first submits
+            futures = [pool.submit(tracked, unit, k, spec) for k, spec in enumerate(specs)]
+        for k, fut in enumerate(futures):
+            yield result_watched(
+                fut, watch, track, started,
+                lambda k=k: [k, *(j for j in range(k, len(futures)) if not futures[j].done())],
+                lambda pid, seconds, j: _stuck_error(unit, specs, pid, seconds, j))
+            drain(track, started)
+        clean = True
+    finally:
+        if clean:
+            pool.shutdown(wait=True)
+        else:  # Ctrl-C, a failed or stuck batch: stop now, do not wait
+            stop_pool(pool)
+        track.close()
+
+
+def _stuck_error(unit: Callable[[ToyBatch], np.ndarray], specs: list[ToyBatch], pid: int,
+                 seconds: float, j: int) -> ExecutionError:
+    spec = specs[j]
+    return ExecutionError(
+        f"toy worker process {pid} is stuck on toy batch {j + 1} of {len(specs)} (toys "
+        f"{spec.first}-{spec.first + spec.count - 1}, {unit.__name__}): for {seconds:.0f} s "
+        "every thread of it has waited on a lock or slept, using no CPU (a deadlock, not a "
+        "slow batch); the toy workers were stopped and the stacks of its threads written to "
+        "stderr. Run again with fewer workers (workers=1 runs the toys in this process), or "
+        "raise PEAKSIFT_STALL_SECONDS if the batch only waited on something slow (0 never "
+        "stops it); report a recurring one with those stacks")
 
 
 def as_params(values: Sequence[Any]) -> list[Any]:
