@@ -111,6 +111,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
                    and names[i] not in given]
     profile = _WidthProfile(model, fine, i_m, free_widths, is_fixed, lower, upper, retries)
+    mass_given = names[i_m] in given
     for mm, factor, essential, sideband, extra, rank in candidates:
         def make(near: np.ndarray | None = None, mm: float = mm, factor: float = factor,
                  sideband: bool = sideband, extra: dict = extra,
@@ -119,7 +120,13 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
                 found = profile.take(near) if rank >= 0 else None
-                if found is not None:  # only where the width's profile has a minimum
+                if found is not None and not found and mass_given:
+                    # no other minimum on the profile; but it follows the mass from the
+                    # best minimum's, and a narrower minimum can sit at another mass (0.24
+                    # lower, 1 GeV away, in a given-mass fit): with a mass given there are
+                    # no spikes to find it, so the width is scaled as without a profile
+                    found = None
+                elif found is not None:  # only where the width's profile has a minimum
                     if not found:
                         return None
                     factor = found[0]
