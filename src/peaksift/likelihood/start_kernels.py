@@ -32,11 +32,11 @@ import numpy as np
 from numba import njit
 
 from ..shapes.compiled import gaussian_width_rows, vlog
-from .driver import CONVERGED, _drive
-from .kernels import _SUMS, covariance_small
+from .driver import CONVERGED, _component, _drive
+from .kernels import _SUMS, bin_counts, covariance_small
 
-__all__ = ["BAND", "SCAN_BAND", "background_fit", "coarse_rows", "coarse_scan", "local_maxima",
-           "narrow_rows", "profile_two_yields", "profile_widths"]
+__all__ = ["BAND", "SCAN_BAND", "background_fit", "background_fit_counts", "coarse_rows",
+           "coarse_scan", "local_maxima", "narrow_rows", "profile_two_yields", "profile_widths"]
 
 #: the coarse scan's rows are computed within this many widths of their mass (beyond, a
 #: bin holds < exp(-SCAN_BAND^2 / 2) ~ 3e-18 of the row's peak bin: below the profile's BAND)
@@ -351,3 +351,27 @@ def background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_ite
     if status != CONVERGED:
         return False
     return covariance_small(info, posdef_tol, np.empty((npar, npar)))
+
+
+@njit(cache=True, nogil=True)
+def background_fit_counts(static, n, scale, mask, full, free, x0, lower, upper, max_iter,
+                          edm_goal, floor, posdef_tol, x_out, biy,
+                          counts):  # pragma: no cover - compiled
+    """:func:`background_fit`, then, where it converged, the background's expected counts
+    in every bin at its minimum (``full`` with the free values ``x_out``) into ``counts``:
+    the CDF row of its edge kernel and :func:`.kernels.bin_counts` at the yield ``biy``,
+    as :func:`.start_background.background_counts` makes them (the same kernel on the same
+    edges).  Returns ``(converged, counts made)``."""
+    if not background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_iter,
+                          edm_goal, floor, posdef_tol, x_out):
+        return False, False
+    code, edata, escal, pstart = static[0], static[1], static[2], static[3]
+    v = full.copy()
+    for i in range(free.size):
+        v[free[i]] = x_out[i]
+    cdf = np.empty((static[11], static[12]))
+    if not _component(code[0], edata[0], escal[0, 0], escal[0, 1], v, pstart[0], cdf):
+        return True, False
+    bin_counts(cdf[0], v[biy], counts)
+    return True, True
+
