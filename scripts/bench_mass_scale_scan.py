@@ -10,12 +10,27 @@ bins), resolution nuisance 20 %; per case the CPU seconds of its second call in 
 * ``toylimit``: :func:`peaksift.stats.limits_systematics.systematic_limits` with
   ``method="toys"`` at one mass (150 GeV) with ``--toys`` toys;
 
+and for a combination of two such channels (each with its own mass scale and spectrum):
+
+* ``ccombine``: :func:`peaksift.stats.channels.combine` at 25 masses 120-180 GeV;
+* ``climits``: :func:`peaksift.stats.channel_limits.combined_limits`, asymptotic, at
+  those masses (each channel's own limits included);
+
+* ``ctoys``: the combination's global significance toys
+  (:func:`peaksift.stats.channel_toys.combined_toy_scans`) at 25 masses 120-180 GeV, the
+  combined scan excluded;
+* ``cenvelope``: :func:`peaksift.stats.channels.combine` at those masses with each
+  channel's background functions ``exppoly1`` and ``powersum1`` profiled (the envelope);
+* ``ctoylimit``: :func:`peaksift.stats.channel_limits.combined_limits` with
+  ``method="toys"`` at one mass (150 GeV) with ``--toys`` toys;
+
 each with a mass scale of 3 % (scanned: 3 x 4.5 GeV beyond the width) and of 0.1 %
 (3 x 0.15 GeV: not scanned, the cost of before).  ``--baseline SRC`` runs another source
 tree in alternate rounds (the same load).
 
     python scripts/bench_mass_scale_scan.py [--runs 3] [--toys 200] [--baseline SRC]
-        [--cases scan,toys,toylimit] [--scales 0.03,0.001]
+        [--cases scan,toys,toylimit,ccombine,climits,ctoys,cenvelope,ctoylimit]
+        [--scales 0.03,0.001]
 """
 
 from __future__ import annotations
@@ -49,7 +64,50 @@ nuis = SignalNuisances.make({"mass_scale": scale, "mass_resolution": 0.2})
 bkg = candidate_shapes(["exppoly1"])
 
 
+def channels(candidates=False):
+    from peaksift.stats.channels import Channel
+
+    out = []
+    for c in range(2):
+        r = np.random.default_rng(10 + c)
+        nc = np.histogram(100 + r.exponential(40, 20000), edges)[0].astype(float)
+        extra = ({"background_candidates": candidate_shapes(["exppoly1", "powersum1"])}
+                 if candidates else {})
+        out.append(Channel(f"c{c}", (nc, edges), bkg["exppoly1"], 1.0, signal="gaussian",
+                           resolution=resolution_from(None, absolute=0.5), efficiency=1.0,
+                           window=(100.0, 200.0), **extra,
+                           shape_nuisances={"mass_scale": scale, "mass_resolution": 0.2}))
+    return out
+
+
+def run_combination():
+    from peaksift.stats.channel_limits import combined_limits
+    from peaksift.stats.channel_toys import combined_toy_scans
+    from peaksift.stats.channels import combine
+
+    masses = np.linspace(120.0, 180.0, 25)
+    if case == "ctoys":
+        cmb = combine(channels(), masses, refit=False)
+        t = time.process_time()
+        q = combined_toy_scans(list(cmb.prepared), list(cmb.conversion.values()), ntoys,
+                               seed=7, norms=cmb.norms, shapes=cmb.shapes,
+                               ensembles=cmb.toy_constraints)
+        return float(np.nansum(q.max(axis=1))), time.process_time() - t
+    if case == "ccombine":
+        return float(np.nansum(combine(channels(), masses, refit=False).q0))
+    if case == "climits":
+        lim = combined_limits(channels(), masses, method="asymptotic")
+        return float(np.nansum(lim.observed))
+    if case == "cenvelope":
+        return float(np.nansum(combine(channels(True), masses, refit=False).q0))
+    lim = combined_limits(channels(), np.array([150.0]), method="toys", toy_masses=[150.0],
+                          toys=ntoys, seed=3)
+    return float(lim.observed[0])
+
+
 def run():
+    if case.startswith("c"):
+        return run_combination()
     if case == "scan":
         r = scan((n, edges), "gaussian", bkg["exppoly1"], np.linspace(110, 190, 100),
                  absolute_resolution=0.5, window=(100.0, 200.0), refit=False, nuisances=nuis)

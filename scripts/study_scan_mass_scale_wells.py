@@ -52,8 +52,9 @@ class Reference(LimitsReference):
     study's reference, with constraint centres of its own and its own grid; its Minuit
     set-up and fixed-factor NLLs inherited)."""
 
-    def __init__(self, d_scale: float, centers: tuple[float, float] = (1.0, 1.0)) -> None:
-        self.ds = d_scale
+    def __init__(self, d_scale: float, centers: tuple[float, float] = (1.0, 1.0),
+                 mass: float = MASS) -> None:
+        self.ds, self.mass = d_scale, mass
         self.cm, self.cr = centers
         step = 0.25 * SIGMA / (MASS * d_scale)      # a quarter width, in standard deviations
         lo = max(self.cm - 5 * d_scale, 1 - 6 * d_scale)
@@ -61,7 +62,7 @@ class Reference(LimitsReference):
         self.kms = np.linspace(lo, hi, int(np.ceil((hi - lo) / d_scale / step)) + 1)
 
     def nll(self, counts, s, b, p, km, kr) -> float:
-        nu = s * gauss(MASS * km, SIGMA * kr) + b * exponential(p)
+        nu = s * gauss(self.mass * km, SIGMA * kr) + b * exponential(p)
         if np.any(nu <= 0) or not np.all(np.isfinite(nu)):
             return 1e30
         return float(np.sum(nu - counts * np.log(nu))

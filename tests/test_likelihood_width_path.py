@@ -14,7 +14,8 @@ slope's derivative row, its NLL is the shape-held profile lowered by one Newton 
 every parameter: within 0.01 + 10 % of what freeing b1 gains in iminuit's profile (a
 second-order estimate from the expected information; the slope moves by up to ~0.05 here,
 gaining up to ~1.2, and the estimate errs by up to 7 % of that, on the low side at the
-widest widths).
+widest widths).  And the dip's start taken along it (``start_widths.lowest_width``), against
+the same profile minimised over the wider widths.
 """
 
 from __future__ import annotations
@@ -23,36 +24,27 @@ import math
 
 import numpy as np
 import pytest
+from exp_gauss_reference import EDGES, WINDOW, exp_fractions, gauss_fractions
 from iminuit import Minuit
-from scipy import special
 
+from peaksift.likelihood.start_widths import OTHER_FACTORS, lowest_width
 from peaksift.likelihood.width_path import width_path
+from peaksift.shapes import Gaussian
 
-LO, HI = 100.0, 200.0
-EDGES = np.linspace(LO, HI, 101)
+LO, HI = WINDOW
 BAND = 7.0
 B1 = -1.2
 
 
-def _exp_fractions(b1: float) -> np.ndarray:
-    c = np.exp(b1 * ((EDGES - 150.0) / 50.0 - 1.0))  # a primitive of exp(b1 t), scaled
-    return np.diff(c) / (c[-1] - c[0])
-
-
-def _gauss_fractions(m: float, w: float) -> np.ndarray:
-    c = special.ndtr((EDGES - m) / w)
-    return np.diff(c) / (c[-1] - c[0])
-
-
 def _counts(seed: int) -> np.ndarray:
     rng = np.random.default_rng(seed)
-    return rng.poisson(8000 * _exp_fractions(B1) + 300 * _gauss_fractions(152.0, 4.0)
+    return rng.poisson(8000 * exp_fractions(B1) + 300 * gauss_fractions(152.0, 4.0)
                        ).astype(float)
 
 
 def _profile(n: np.ndarray, w: float, b1_free: bool, masses) -> Minuit:
     def cost(m, a, b, b1):
-        mu = a * _gauss_fractions(m, w) + b * _exp_fractions(b1)
+        mu = a * gauss_fractions(m, w) + b * exp_fractions(b1)
         if not np.all(mu > 0):  # also NaN
             return 1e30
         return float(np.sum(mu - n * np.log(mu)))
@@ -75,7 +67,7 @@ def _profile(n: np.ndarray, w: float, b1_free: bool, masses) -> Minuit:
 def _path(n: np.ndarray, own_fit: Minuit, widths: np.ndarray, own: int, dg: np.ndarray,
           rise: float = math.inf) -> np.ndarray:
     out = np.empty((widths.size, 4))
-    g = _exp_fractions(B1)
+    g = exp_fractions(B1)
     assert width_path(EDGES.copy(), LO, HI, n, np.ones(n.size), g, dg,
                       own_fit.values["m"], LO, HI, widths, own, BAND, own_fit.values["a"],
                       own_fit.values["b"], rise, out)
@@ -85,7 +77,7 @@ def _path(n: np.ndarray, own_fit: Minuit, widths: np.ndarray, own: int, dg: np.n
 def _slope_row() -> np.ndarray:
     """d g / d b1 by central differences of the closed form (error ~1e-11)."""
     h = 1e-5
-    return ((_exp_fractions(B1 + h) - _exp_fractions(B1 - h)) / (2 * h))[None, :]
+    return ((exp_fractions(B1 + h) - exp_fractions(B1 - h)) / (2 * h))[None, :]
 
 
 def _own_minimum(seed: int):
@@ -137,3 +129,54 @@ def test_the_walk_stops_once_the_profile_has_risen():
             continue
         ref = _profile(n, widths[end], False, [own_fit.values["m"]])
         assert ref.fval > own_fit.fval + 5.0
+
+
+def test_a_dips_start_goes_to_the_lowest_wider_width():
+    """``start_widths.lowest_width`` from a narrow dip's start (1.25 GeV at 197 GeV) on a
+    spectrum whose deficit is centred on the window's upper edge (80 events of a Gaussian
+    of 5 GeV at 200 GeV below 10,000 on exp(-0.8 t)): the width it picks among the wider
+    ones (steps of sqrt 2 up to 8 times) against iminuit's profile at each (mass, both
+    yields and the slope minimised, strategy 2, from three masses).  Checks: iminuit's
+    profile at the picked width lies within 0.05 of its lowest over those widths and more
+    than 1 below the start's own width; the picked mass within 0.1 of that width of
+    iminuit's mass there, its yield negative and within 10 % of iminuit's (the path's
+    slope is one Newton step, not a minimum)."""
+    b1 = -0.8
+    n = np.random.default_rng(21).poisson(10000 * exp_fractions(b1)
+                                          - 80 * gauss_fractions(200.0, 5.0)).astype(float)
+    h = 1e-5
+    dg = ((exp_fractions(b1 + h) - exp_fractions(b1 - h)) / (2 * h))[None, :]
+    btot = n.sum() + 30.0
+    found = lowest_width(Gaussian(), EDGES.copy(), n, None,
+                         (btot * exp_fractions(b1), btot * dg), 197.0, 1.25, -30.0, 0.1,
+                         50.0, LO, HI, WINDOW, -1.0)
+    assert found is not None
+    factor, y, _, mass = found
+
+    def profile(w: float) -> Minuit:
+        def cost(m, a, b, c):
+            mu = a * gauss_fractions(m, w) + b * exp_fractions(c)
+            if not np.all(mu > 0):  # also NaN
+                return 1e30
+            return float(np.sum(mu - n * np.log(mu)))
+
+        best = None
+        for m0 in (197.0, HI - w, HI - 0.1):
+            mi = Minuit(cost, m=m0, a=-30.0, b=btot, c=b1)
+            mi.errordef = 0.5
+            mi.limits["m"] = (LO, HI)
+            mi.limits["a"] = (None, 0.0)
+            mi.strategy, mi.tol = 2, 1e-6
+            mi.migrad()
+            if mi.valid and (best is None or mi.fval < best.fval):
+                best = mi
+        assert best is not None
+        return best
+
+    ref = {f: profile(1.25 * f) for f in OTHER_FACTORS[OTHER_FACTORS >= 1.0].tolist()}
+    lowest = min(r.fval for r in ref.values())
+    at = ref[factor]
+    assert at.fval <= lowest + 0.05, (factor, at.fval, lowest)
+    assert at.fval < ref[1.0].fval - 1.0
+    assert abs(mass - at.values["m"]) < 0.1 * 1.25 * factor, (mass, at.values["m"])
+    assert y < 0 and abs(y / at.values["a"] - 1.0) < 0.1, (y, at.values["a"])

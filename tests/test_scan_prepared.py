@@ -95,3 +95,56 @@ def test_a_kept_scan_with_a_failed_row_gives_its_significances(monkeypatch):
             assert r.z_local[j] == pytest.approx(z, rel=1e-12), what
             assert r.p_local[j] == pytest.approx(stats.norm.sf(z), rel=1e-12), what
         assert r.best_index == 0, what  # the injected peak at 180
+
+
+def test_a_scan_asked_again_follows_every_change_in_place():
+    """The same objects scanned again (the histogram, the hypotheses' array and the
+    resolution: the repeated scan found by their identity, ``stats/scan_kept.py``), then
+    after the caller changed, in place, the histogram's bins, then the hypotheses' array,
+    then set the numpy reference (``PEAKSIFT_NUMPY_COST=1``): each scan gives iminuit's q0
+    and yield (test_scan's binned NLL, Cowan et al. 2011 eq. 12; tolerances as
+    ``_check``) for what the inputs hold then, never the last answer; a repeated scan's
+    model (made when first read) holds the counts of its own scan."""
+    import os
+
+    from peaksift import Resolution
+
+    rng = np.random.default_rng(33)
+    x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 20_000),
+                        rng.normal(320.0, SIGMA, 150)])
+    h = MassHistogram(bins=250, range=WINDOW).fill(x)
+    counts, edges = np.histogram(x, bins=250, range=WINDOW)
+    masses = MASSES.copy()
+    res = Resolution.absolute(SIGMA)
+
+    def again(what, n=3):
+        for i in range(n):   # the first prepares, the second is kept, the third repeated
+            r = scan(h, "gaussian", "exponential", masses, resolution=res, refit=False)
+            for j, m in enumerate(masses):
+                q0, s_hat, s_err = _iminuit_q0(edges, counts, m, SIGMA)
+                assert abs(r.q0[j] - q0) < 0.02 + 1e-3 * q0, (what, i, m, r.q0[j], q0)
+                assert abs(r.signal_yield[j] - s_hat) < 0.01 * s_err, (what, i, m)
+        return r
+
+    r = again("first")
+    np.testing.assert_array_equal(r.model.counts, counts)
+    before = r.q0[1]
+    # 15 more events in each bin of 248-252 GeV, written into the histogram's own arrays
+    sel = (edges[:-1] >= 248.0) & (edges[1:] <= 252.0)
+    h.values()[sel] += 15.0
+    h.variances()[sel] += 15.0
+    counts = counts + np.where(sel, 15, 0)
+    r = again("bins changed", 1)
+    assert r.q0[1] > before + 1.0
+    np.testing.assert_array_equal(r.model.counts, counts)
+    r = again("bins changed, repeated")
+    masses[:] = [180.0, 320.0, 250.0]   # the hypotheses' array the scans were given
+    r = again("masses changed", 1)
+    np.testing.assert_array_equal(r.masses, masses)
+    assert r.best_index == 1   # the injected peak at 320
+    again("masses changed, repeated")
+    os.environ["PEAKSIFT_NUMPY_COST"] = "1"
+    try:
+        again("numpy reference", 1)
+    finally:
+        del os.environ["PEAKSIFT_NUMPY_COST"]

@@ -15,6 +15,9 @@ background yields profiled (:func:`.start_kernels.profile_two_yields`):
   only, instead of from every other width blindly.  (With the mass held at the best
   minimum's, the profile missed a wide solution 6 GeV away and a narrow one 0.6 GeV away,
   0.23 and 0.18 in -2 ln L below the reported minima of two 5 sigma toys.)
+* :func:`lowest_width` -- whether a dip's start (a negative yield) should be wider than the
+  width :func:`scan_width` picks with the mass held, and where its mass then lies: the
+  lowest point of the same profile from the start, wider widths only.
 
 Both return None for other shapes or without the compiled path: the caller then does what
 it would without them.
@@ -31,7 +34,7 @@ from ..shapes import Gaussian
 from .poisson import KERNELS_MODULE, START_KERNELS_MODULE, use_compiled
 
 __all__ = ["OTHER_FACTORS", "OTHER_MARGIN", "PATH_RISE", "WIDTH_FACTORS", "background_rows",
-           "other_widths", "scan_width"]
+           "lowest_width", "other_widths", "scan_width"]
 
 WIDTH_PATH_MODULE = "peaksift.likelihood.width_path"
 
@@ -137,24 +140,17 @@ def background_rows(model, edges: np.ndarray, v: np.ndarray,
     return frac * total, np.asarray(grad, float)[free] * total
 
 
-def other_widths(shape, edges, n, scale, background, mass, width, signal_yield, lo_w, hi_w,
-                 lo_m, hi_m, window, most):
-    """Other minima along the width of a Gaussian peak whose best minimum so far has
-    ``mass``, ``width`` and ``signal_yield`` on the background ``(expected counts,
-    derivatives in its free shape parameters)`` of :func:`background_rows`.
-
-    The profile NLL at ``width * OTHER_FACTORS`` (inside ``[lo_w, hi_w]``) with both yields
-    and the mass (inside ``[lo_m, hi_m]``) profiled and the background's shape relaxed
-    (:func:`.width_path.width_path`): its local minima (an end of the grid counts when the
-    profile falls towards it) other than the one the best minimum's own width lies in and
-    at most :data:`OTHER_MARGIN` above that one's lowest, at most ``most``, the lowest
-    first, as ``[(factor, signal yield, background total / the background's total,
-    mass)]``.  An empty list: the profile has one minimum, the best
-    one's, so a start at another width slides back into it.  None for other shapes or
-    without the compiled path."""
-    if type(shape) is not Gaussian or not use_compiled() or most <= 0:
+def _path(shape, edges, n, scale, background, mass, width, signal_yield, lo_w, hi_w, lo_m,
+          hi_m, window, wider=False):
+    """``(factors, own index, rows, profile NLLs, background total)`` of
+    :func:`.width_path.width_path` from ``mass``, ``width`` and ``signal_yield`` at
+    ``width * OTHER_FACTORS`` (inside ``[lo_w, hi_w]``; only those from 1 up when
+    ``wider``), the NLLs as Python floats (inf where not reached); None for other shapes,
+    without the compiled path or where the path cannot be made."""
+    if type(shape) is not Gaussian or not use_compiled():
         return None
-    factors = [f for f in _OTHER_FACTORS if lo_w <= width * f <= hi_w]
+    factors = [f for f in _OTHER_FACTORS if lo_w <= width * f <= hi_w
+               and (f >= 1.0 or not wider)]
     if len(factors) < 2 or 1.0 not in factors:
         return None
     bexp, dg = background
@@ -175,6 +171,31 @@ def other_widths(shape, edges, n, scale, background, mass, width, signal_yield, 
         return None
     # (on the few widths as Python floats: numpy's calls cost more than the work here)
     q = [v if math.isfinite(v) else math.inf for v in out[:, 3].tolist()]
+    return factors, own, out.tolist(), q, btot
+
+
+def other_widths(shape, edges, n, scale, background, mass, width, signal_yield, lo_w, hi_w,
+                 lo_m, hi_m, window, most):
+    """Other minima along the width of a Gaussian peak whose best minimum so far has
+    ``mass``, ``width`` and ``signal_yield`` on the background ``(expected counts,
+    derivatives in its free shape parameters)`` of :func:`background_rows`.
+
+    The profile NLL at ``width * OTHER_FACTORS`` (inside ``[lo_w, hi_w]``) with both yields
+    and the mass (inside ``[lo_m, hi_m]``) profiled and the background's shape relaxed
+    (:func:`.width_path.width_path`): its local minima (an end of the grid counts when the
+    profile falls towards it) other than the one the best minimum's own width lies in and
+    at most :data:`OTHER_MARGIN` above that one's lowest, at most ``most``, the lowest
+    first, as ``[(factor, signal yield, background total / the background's total,
+    mass)]``.  An empty list: the profile has one minimum, the best
+    one's, so a start at another width slides back into it.  None for other shapes or
+    without the compiled path."""
+    if most <= 0:
+        return None
+    path = _path(shape, edges, n, scale, background, mass, width, signal_yield, lo_w, hi_w,
+                 lo_m, hi_m, window)
+    if path is None:
+        return None
+    factors, own, rows, q, btot = path
     last = len(q) - 1
     while True:  # descend from the best minimum's own width: the basin it lies in
         left = q[own - 1] if own > 0 else math.inf
@@ -188,5 +209,33 @@ def other_widths(shape, edges, n, scale, background, mass, width, signal_yield, 
             and q[i] <= (q[i + 1] if i < last else math.inf)]
     lows = [i for i in sorted(lows, key=q.__getitem__)  # stable, as argsort's
             if i != own and q[i] <= q[own] + OTHER_MARGIN]
-    rows = out.tolist()
     return [(factors[i], rows[i][1], rows[i][2] / btot, rows[i][0]) for i in lows[:most]]
+
+
+def lowest_width(shape, edges, n, scale, background, mass, width, signal_yield, lo_w, hi_w,
+                 lo_m, hi_m, window, sign):
+    """The lowest point, wider than ``width``, of the profile along the width of a Gaussian
+    started at ``mass``, ``width`` and ``signal_yield`` (a start, not a minimum) on the
+    background of :func:`background_rows`, as :func:`other_widths` profiles it (the mass
+    free, the background's shape relaxed), among the points whose signal yield has the
+    sign ``sign``: ``(factor, signal yield, background total / the background's total,
+    mass)``; None for other shapes, without the compiled path, or where no such point lies
+    below the start's own width.
+
+    A dip's start width comes from :func:`scan_width`, with the mass held: at a window's
+    edge it picks a narrow deficit of a bin or two, whose minimum can lie 2 above a wide
+    deficit reaching over the edge, which a free mass finds.  (Wider only: a narrower
+    deficit at the same mass is what the scan and the narrow candidates start from; moved
+    to narrower lowest points too, dip starts ended on other flat, unconverged spikes, 0.03
+    and 0.10 higher in two fits of ``check_fit_minima``'s set.)"""
+    path = _path(shape, edges, n, scale, background, mass, width, signal_yield, lo_w, hi_w,
+                 lo_m, hi_m, window, wider=True)
+    if path is None:
+        return None
+    factors, own, rows, q, btot = path
+    best = min((i for i in range(len(q)) if i != own and sign * rows[i][1] > 0),
+               key=q.__getitem__, default=own)  # (the first lowest, as np.argmin)
+    if not q[best] < q[own]:
+        return None
+    r = rows[best]
+    return factors[best], r[1], r[2] / btot, r[0]

@@ -29,7 +29,7 @@ from .coarse_scan import coarse_gains, peak_candidates
 from .model import Model
 from .narrow import NARROW_MARGIN, narrow_candidates
 from .start_background import background_counts, background_start, background_start_counts
-from .start_widths import background_rows, other_widths, scan_width
+from .start_widths import background_rows, lowest_width, other_widths, scan_width
 
 __all__ = [
     "CANDIDATE_MARGIN",
@@ -365,6 +365,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     sel = ~mask
     excess = n[sel] - bfr[sel]
     resid = np.maximum(sign * excess, 0.0)  # np.clip(.., 0, None)
+    scanned = False
     i_sig = sl.start + shape.parameter_names.index("sigma") if (
         "sigma" in shape.parameter_names and shape.name in ("gaussian", "crystalball")) else None
     if (i_sig is not None and factor == 1.0 and narrow is None and names[i_sig] not in given
@@ -376,6 +377,7 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         # bounded to a factor 2 of the start)
         w = scan_width(shape, edges, n, scale, bfr, float(s[i_m]), float(s[i_sig]),
                        lower[i_sig], upper[i_sig], model.window, sign)
+        scanned = w is not None
         if w is None:
             d2 = float(resid @ (c[sel] - s[i_m]) ** 2 / resid.sum())
             w = _clip(math.sqrt(max(d2, 1e-12)), 0.5 * s[i_sig], 2.0 * s[i_sig])
@@ -396,6 +398,9 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         s[iy] = _clip(y, lower[iy], upper[iy])
         if names[biy] not in given:
             s[biy] = _clip(max(total - s[iy], 1.0), lower[biy], upper[biy])
+            if scanned and sign < 0 and len(model.blocks) == 2:
+                _dip_along_width(model, edges, n, scale, s, i_m, i_sig, iy, biy, is_fixed,
+                                 lower, upper)
     # later signal components: small positive yield at their given start
     for _, _, iy2 in model.blocks[1:-1]:
         if names[iy2] not in given:
@@ -406,3 +411,25 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
         if not ((factor != 1.0 or narrow is not None) and i in i_s and not is_fixed[i]):
             s[i] = v[i]
     return s
+
+
+def _dip_along_width(model, edges, n, scale, s, i_m, i_sig, iy, biy, is_fixed, lower, upper):
+    """A dip's start ``s`` moved, in place, to the lowest point of its profile along wider
+    widths with the mass free and the background's shape relaxed
+    (:func:`.start_widths.lowest_width`), where that lies below the scanned width's: the
+    width scan holds the mass, and a deficit centred on the window's edge (wider, its
+    mass at the edge) lay 2.1 in NLL below the narrow minimum that scan's start ended in
+    (``check_fit_minima``'s gauss_exp_z2/88; 0.12 below the fit's best minimum)."""
+    try:
+        found = lowest_width(model.blocks[0][0], edges, n, scale,
+                             background_rows(model, edges, s, is_fixed), float(s[i_m]),
+                             float(s[i_sig]), float(s[iy]), lower[i_sig], upper[i_sig],
+                             lower[i_m], upper[i_m], model.window, -1.0)
+    except _NUMERIC:
+        return
+    if found:
+        factor, y, ratio, mass = found
+        s[i_sig] = _clip(s[i_sig] * factor, lower[i_sig], upper[i_sig])
+        s[iy] = _clip(y, lower[iy], upper[iy])
+        s[biy] = _clip(s[biy] * ratio, lower[biy], upper[biy])
+        s[i_m] = _clip(mass, lower[i_m], upper[i_m])

@@ -37,7 +37,7 @@ channel needs ``limits.luminosity`` (the same unit in all) and an efficiency
 likelihood as log-normal nuisances; with ``shared_luminosity = true`` the channels share one
 luminosity nuisance (fully correlated; their uncertainties must agree).  A channel's
 ``[systematics]`` mass-scale and resolution factors are profiled in the combined scan, its
-toys and the asymptotic combined limits (not in the toy limits); its background envelope
+toys and the combined limits (asymptotic and toys); its background envelope
 (the functions its own search kept) is profiled per channel in the combined scan and its
 toys and the asymptotic combined limits (the toy limits take each channel's function at
 mu = 0; both said in the results and the report).  Blinding is not
@@ -202,9 +202,9 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
                        "[systematics] (its own results show both)"),)
         elif with_shape:
             notes += ((f"the combined scan, its toys (at each toy's highest points) and the "
-                       f"asymptotic combined limits profile the [systematics] mass-scale and "
-                       f"resolution factors of channel(s) {', '.join(with_shape)}; the "
-                       "combination's toy limits leave them at 1"),)
+                       f"combined limits (asymptotic and toys) profile the [systematics] "
+                       f"mass-scale and resolution factors of channel(s) "
+                       f"{', '.join(with_shape)}"),)
         enveloped = [n for n in names if channels[names.index(n)].background_candidates]
         if enveloped and len(cfgs) > 1:
             notes += ((f"the combined scan and its toys (global significance) profile the "

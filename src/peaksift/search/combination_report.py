@@ -17,6 +17,7 @@ from typing import Any
 from .._format import fixed, format_pm, mass_text, number, p_value
 from ..report import CAUTION, blocks_html, blocks_markdown
 from ..stats.envelope_choice import read_channel_entries
+from .doubts import doubtful_limits_note
 
 __all__ = ["combination_blocks", "combination_summary_text", "render_combination_html",
            "render_combination_markdown"]
@@ -196,6 +197,10 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
                 if (r.get("signal_model") or {}).get("doubtful")]
     if doubtful:
         lines.append(f"  signal model doubtful in   {', '.join(doubtful)} (see the report)")
+    # the combined limits' notes that are warnings (as a search's limits warnings)
+    lines += [f"  WARNING: combined limits: {note}"
+              for note in (d.get("limits") or {}).get("notes") or []
+              if doubtful_limits_note(note)]
     if "outputs" in d:
         lines.append(f"  outputs                    {d['outputs']['dir']}")
     lines.append("  (a local significance is not a discovery; see the report's caution)")

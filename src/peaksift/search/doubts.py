@@ -32,7 +32,7 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
-__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubts"]
+__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubtful_limits_note", "doubts"]
 
 #: a goodness-of-fit p-value below this flags the fit (0.1%: about 1 in 1000 fits of a
 #: right model; our choice)
@@ -43,6 +43,14 @@ BAND_OUTSIDE_MAX_FRACTION = 0.2
 #: an observed limit with systematics below this fraction of the counting floor flags it
 #: (a log-normal normalisation of 10% moves the floor by ~20% at 2 sigma; our choice)
 FLOOR_FACTOR = 0.5
+
+
+def doubtful_limits_note(note: Any) -> bool:
+    """A limits note that is a warning: the profile in the mass scale took a well away from
+    the nearest (:func:`peaksift.stats.scale_scan.several_minima_note`), or asymptotic
+    bands where the scale reaches beyond the peak (:func:`~peaksift.stats.scale_scan.
+    asimov_band_note`)."""
+    return "several minima" in str(note) or "(Asimov data set)" in str(note)
 
 
 def _num(x: Any) -> float | None:
@@ -125,7 +133,7 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
         # (stats.scale_scan.several_minima_note): they respond to data elsewhere; and
         # asymptotic bands where the scale reaches beyond the peak (asimov_band_note)
         for note in (sy.get("limits") or {}).get("notes") or []:
-            if "several minima" in str(note) or "(Asimov data set)" in str(note):
+            if doubtful_limits_note(note):
                 add("limits", str(note))
         for c in (sy.get("background_choice") or {}).get("candidates") or []:
             if c.get("chosen") and "still improved" in str(c.get("note") or ""):

@@ -14,7 +14,8 @@ of one function per channel, with the paper's penalty :math:`a_c` per free param
 
 profiled over every channel's background and the nuisances at each assignment (the joint
 fit of :mod:`peaksift.stats.joint`, one per assignment: the product of the channels'
-candidate counts).  The discovery statistic is :math:`q_0 = -2\ln L_{env}(0) -
+candidate counts; each channel's mass scale at its lowest well,
+:func:`peaksift.stats.joint_wells.joint_global`).  The discovery statistic is :math:`q_0 = -2\ln L_{env}(0) -
 \min_{\mu \ge 0} -2\ln L_{env}(\mu)`: since the channels are independent under the null, its
 first term is :math:`\sum_c \min_{f_c} [2\mathrm{NLL}^{(0)}_{c,f_c} + a_c N_{c,f_c}]`.
 
@@ -38,6 +39,7 @@ from ..errors import FitError
 from .envelope_choice import choice_entry
 from .joint import profile_joint
 from .joint_start import joint_start
+from .joint_wells import joint_global
 from .toys import profile_signal
 
 __all__ = ["channel_candidates", "envelope_of_channels", "envelope_toy_scans", "null_choice",
@@ -132,14 +134,23 @@ def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
                 for models, cnt, a in zip(per, counts, penalties))
     nulls = null_choice([[m for m, _ in models] for models in per], counts, penalties)
     best = None
+    shp = specs if any(specs) else None
     for combo in itertools.product(*[range(len(p)) for p in per]):
         models = [per[c][f][0] for c, f in enumerate(combo)]
         cfits = [per[c][f][1] for c, f in enumerate(combo)]
-        r = profile_joint(models, [m.counts for m in models], [m.fractions for m in models],
-                          k, steps=100, tol=3e-2, **joint_start(models, cfits, k, norms),
-                          norms=norms, shapes=specs if any(specs) else None,
-                          curvature=[m.theta if f.get("curvature") is None else
-                                     f["curvature"] for m, f in zip(models, cfits)])
+        start = joint_start(models, cfits, k, norms)
+
+        def joint(models: list = models, cfits: list = cfits, start: dict = start,
+                  **kw: Any) -> dict[str, Any]:
+            return profile_joint(
+                models, [m.counts for m in models], [m.fractions for m in models], k,
+                steps=100, tol=3e-2, **{**start, **kw},
+                norms=norms, shapes=shp,
+                curvature=[m.theta if f.get("curvature") is None else f["curvature"]
+                           for m, f in zip(models, cfits)])
+
+        # each channel's mass scale at its lowest well (joint_wells), as the plain scan
+        r = joint_global(joint, models, [m.counts for m in models], k, shp)
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         pen = sum(a * cnt[f] for a, cnt, f in zip(penalties, counts, combo))

@@ -13,7 +13,11 @@
 * toys (Read, J. Phys. G 28 (2002) 2693) where the summed background under the signal is
   below ``low_count_background`` events and ``method="auto"`` (or at ``toy_masses`` with
   ``method="toys"``): :func:`peaksift.stats.channel_toys.joint_toy_limit`, the toys
-  generating every channel (with its envelope's function at mu = 0, not profiled);
+  generating every channel (with its envelope's function at mu = 0, not profiled; its
+  shape factors profiled, their global observables drawn per toy);
+* where a channel's mass scale reaches beyond its peak's width, the asymptotic limits carry
+  :func:`peaksift.stats.scale_scan.asimov_band_note` (the expected band from the Asimov
+  data set is likely too low there), as a single channel's do;
 * each channel's own limits from :func:`peaksift.upper_limits` with its luminosity,
   efficiency and their uncertainties (same ``method``).
 
@@ -41,6 +45,7 @@ from .envelope_choice import choice_entry, read_channel_entries
 from .joint import profile_joint
 from .joint_wells import joint_global
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
+from .scale_scan import asimov_band_note, needs_scan
 from .toys import fit_background
 
 __all__ = ["CombinedLimits", "combined_limits"]
@@ -357,9 +362,6 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         notes.append("the toy-based limits generate and fit each channel with the background "
                      "function its envelope takes at mu = 0 (the asymptotic ones profile the "
                      "choice)")
-    if sp_obs is not None and want:
-        notes.append("the toy-based limits leave the channels' mass-scale and resolution "
-                     "factors at 1 (the asymptotic ones profile them)")
     todo, tasks = [], []
     for j in sorted({int(x) for x in want}):
         if bl[j]:
@@ -369,9 +371,13 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         one = [dataclasses.replace(m, masses=m.masses[row:row + 1],
                                    fractions=m.fractions[row:row + 1])
                for m in (triples[c][null[c]][0] for c in range(len(chans)))]
+        # the channels' shape factors at this hypothesis, profiled in every toy's fits
+        shp = None if sp_obs is None else [
+            None if sp is None else (sp[0], [np.asarray(v)[row:row + 1] if np.ndim(v) else v
+                                             for v in sp[1]], sp[2]) for sp in sp_obs]
         todo.append(j)
         tasks.append((one, [float(k[j]) for k in conv], norms, cl, int(toys), int(seed) + j,
-                      float(obs[j]), bands[:, j].copy()))
+                      float(obs[j]), bands[:, j].copy(), shp))
     # one task per mass, each seeded by its mass: the engine does not change the result
     done = (list(executor(run_joint_toy_limit, tasks)) if executor is not None
             and len(tasks) > 1 else [run_joint_toy_limit(t) for t in tasks])
@@ -385,6 +391,16 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         toy_info[f"{m_all[j]:.6g}"] = plain({k: v for k, v in res.items()
                                              if k not in ("observed", "expected")})
         notes.extend(f"{m_all[j]:g}: {n}" for n in res["notes"])
+    # where a channel's mass scale reaches beyond its peak's width the Asimov band lacks
+    # the fluctuations each spectrum's limit follows (as for one channel)
+    wide = np.zeros(nm, bool)
+    for ch, p in zip(chans, prepared):
+        sp = ch.shape_spec(p, bl, every_mass=True)
+        if sp is not None:
+            wide |= needs_scan(sp[0], sp[1], sp[2], nm)
+    asimov_wide = [j for j in range(nm) if wide[j] and methods[j] == "asymptotic"]
+    if asimov_wide:
+        notes.append(asimov_band_note(m_all[asimov_wide]))
     flags = tuple(f"{b:.3g} background events expected under the signal (< "
                   f"{low_count_background:g}): asymptotic bands doubtful"
                   if b < low_count_background and m == "asymptotic" else ""

@@ -26,8 +26,10 @@ Luminosity and efficiency uncertainties enter as constrained log-normal factors 
 channel's signal (:mod:`peaksift.stats.joint`); in the scan they matter only through the
 channels' relative normalisation (a common factor is absorbed by sigma x B).  A channel's
 ``shape_nuisances`` (mass scale, resolution) are profiled in the combined scan, the
-asymptotic limits and the toys of the global significance (at each toy's highest points, as
-for one channel; ``toy_constraints`` chooses the ensemble); the toy limits keep them at 1.
+asymptotic limits, the toys of the global significance (at each toy's highest points, as
+for one channel; ``toy_constraints`` chooses the ensemble) and the toy limits (their global
+observables drawn per toy, as for one channel); every one of those fits takes each
+channel's lowest well of the mass scale (:mod:`peaksift.stats.joint_wells`).
 A channel's ``background_candidates`` are profiled as a discrete choice in the combined scan,
 its toys and the asymptotic combined limits (:mod:`peaksift.stats.channel_envelope`); the
 toy limits take the function its envelope chooses at mu = 0.

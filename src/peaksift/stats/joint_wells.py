@@ -5,6 +5,10 @@ Which piece when
 * :func:`joint_global` -- a joint fit (:func:`peaksift.stats.joint.profile_joint`) and,
   where a channel's mass scale moves its peak further than the peak's width, the same fit
   started again from each such channel's lowest well; the lower of the two per hypothesis.
+  Every joint fit with shape factors uses it: the combined scan (:mod:`.channels`) and its
+  envelope of background functions (:mod:`.channel_envelope`), the global significance
+  toys' refitted top points and the toy limits (:mod:`.channel_toys`), the asymptotic
+  combined limits (:mod:`.channel_limits`).
 
 Why
 ---
@@ -56,21 +60,14 @@ def _pick(x: Any, y: Any, better: np.ndarray, nb: int) -> Any:
     return np.where(better.reshape((-1,) + (1,) * (x.ndim - 1)), np.asarray(y), x)
 
 
-def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
-                 counts: Sequence[Any], conv: Sequence[np.ndarray],
-                 shapes: Sequence[Any] | None, *, mu_fixed: Any = None,
-                 centers: Sequence[Any] | None = None) -> dict[str, Any]:
-    """``fit(**starts)`` (a :func:`~peaksift.stats.joint.profile_joint` call taking
-    ``factors_start``, ``mu_start``, ``theta_start``, ``b_start``) from its own starts,
-    then, where a channel of ``shapes`` is scanned (:func:`.scale_scan.needs_scan`), again
-    from each scanned channel's lowest well at the first fit's signal; per hypothesis the
-    lower.  ``mu_fixed``: the conditional fits' parameter of interest (else free);
-    ``centers``: per channel its constraints' centres (or None)."""
-    r = fit()
-    if not shapes or not any(sp is not None for sp in shapes):
-        return r
-    nb = np.asarray(r["nll"]).size
-    mu = np.broadcast_to(np.asarray(r["mu"] if mu_fixed is None else mu_fixed, float), (nb,))
+def _well_starts(r: dict[str, Any], models: Sequence[Any], counts: Sequence[Any],
+                 conv: Sequence[np.ndarray], shapes: Sequence[Any], mu: np.ndarray,
+                 fixed_signal: bool, centers: Sequence[Any] | None,
+                 starts_per: int | None = None) -> tuple[list[Any], np.ndarray]:
+    """Per channel the factors of its lowest well at the signal ``mu`` (a start: the yield
+    free from there unless ``fixed_signal``), from the fit ``r``'s other parameters; and
+    which hypotheses found a well other than ``r``'s."""
+    nb = mu.size
     starts: list[Any] = []
     moved = np.zeros(nb, bool)
     for c, (m, sp) in enumerate(zip(models, shapes)):
@@ -94,14 +91,59 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
                                start={"s": take(mu * np.asarray(conv[c], float)),
                                       "b": take(r["b"][c]), "theta": take(r["theta"][c]),
                                       "factors": take(fc)},
-                               centers=cen, fixed_signal=mu_fixed is not None, tol=1e-5)
+                               centers=cen, fixed_signal=fixed_signal, tol=1e-5,
+                               starts=starts_per)
         f_new = fc.copy()
         f_new[rows] = g["factors"]
         starts.append(f_new)
         moved[rows] |= g["moved"]
-    if not moved.any():
+    return starts, moved
+
+
+def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
+                 counts: Sequence[Any], conv: Sequence[np.ndarray],
+                 shapes: Sequence[Any] | None, *, mu_fixed: Any = None,
+                 centers: Sequence[Any] | None = None,
+                 starts: int | None = None) -> dict[str, Any]:
+    """``fit(**starts)`` (a :func:`~peaksift.stats.joint.profile_joint` call taking
+    ``factors_start``, ``mu_start``, ``theta_start``, ``b_start``) from its own starts,
+    then, where a channel of ``shapes`` is scanned (:func:`.scale_scan.needs_scan`), again
+    from each scanned channel's lowest well at the first fit's signal; with a free signal
+    also from each one's lowest well at the opposite signal (a deficit where the first fit
+    found an excess, and the reverse: the joint profile's lowest well can be a dip in every
+    channel at once that no channel's own lowest well leads to); per hypothesis the lowest.
+    ``mu_fixed``: the conditional fits' parameter of interest (else free); ``centers``:
+    per channel its constraints' centres (or None); ``starts``: the wells each channel's
+    scan refits (:func:`.scale_scan.profile_global`'s)."""
+    r = fit()
+    if not shapes or not any(sp is not None for sp in shapes):
         return r
-    r2 = fit(factors_start=starts, mu_start=r["mu"] if mu_fixed is None else None,
-             theta_start=r["theta"], b_start=r["b"])
-    better = np.asarray(r2["nll"]) < np.asarray(r["nll"])
-    return _merge(r, r2, better) if better.any() else r
+    nb = np.asarray(r["nll"]).size
+    free = mu_fixed is None
+    mu = np.broadcast_to(np.asarray(r["mu"] if free else mu_fixed, float), (nb,))
+    probes = [(mu, not free, False)]
+    if free:   # each channel's wells at the first fit's signal held, one error either side
+        # of it, and at the other sign (at least one error away from 0, where no well
+        # shows); their wells are the factors there however reached (the fit from r's
+        # factors slides down into one where r's well turns into a hill)
+        err = np.nan_to_num(np.asarray(r.get("mu_error", 0.0), float), nan=0.0)
+        size = np.maximum(np.abs(mu), err)
+        sign = np.where(mu > 0, 1.0, -1.0)
+        probes += [(sign * size, True, True), (mu + err, True, True),
+                   (mu - err, True, True), (-sign * size, True, True)]
+    for probe, fixed, any_well in probes:
+        fs, moved = _well_starts(r, models, counts, conv, shapes, probe, fixed, centers,
+                                 starts)
+        if any_well:
+            moved = np.zeros(nb, bool)
+            for st, fc in zip(fs, r["factors"]):
+                if st is not None:
+                    moved |= np.any(np.abs(np.asarray(st) - np.asarray(fc)) > 0, axis=1)
+        if not moved.any():
+            continue
+        r2 = fit(factors_start=fs, mu_start=probe if free else None,
+                 theta_start=r["theta"], b_start=r["b"])
+        better = np.asarray(r2["nll"]) < np.asarray(r["nll"])
+        if better.any():
+            r = _merge(r, r2, better)
+    return r

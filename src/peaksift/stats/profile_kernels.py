@@ -59,7 +59,7 @@ def borrowed(typingctx, arr):  # pragma: no cover - compile time
 
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, inline="always")
 def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, gs, dgs,
                 slot):  # pragma: no cover - compiled
     """Used-bin background fractions ``gs[slot]`` and derivatives ``dgs[slot]`` at
@@ -89,7 +89,7 @@ def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, gs, 
     return True
 
 
-@njit(cache=True, nogil=True, error_model="numpy")
+@njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _nll(n, nrow, f, r, gs, slot, s, b, sat, lb):  # pragma: no cover - compiled
     """``binned_nll(n[nrow], s f[r] + b gs[slot], saturated=False, small_terms=True)``;
     inf where an expectation is not positive (``profile_signal``'s rule).  ``lb (2, N)``:
@@ -118,7 +118,7 @@ def _nll(n, nrow, f, r, gs, slot, s, b, sat, lb):  # pragma: no cover - compiled
     return val - sat
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _grad_hess(n, nrow, f, r, gs, dgs, slot, d2, d2row, s, b, off, grad,
                hess):  # pragma: no cover - compiled
     """``profile_signal``'s ``grad_hess`` for one row (one background parameter): the
@@ -170,7 +170,7 @@ def _grad_hess(n, nrow, f, r, gs, dgs, slot, d2, d2row, s, b, off, grad,
     hess[off + 1, off] += cross
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, inline="always")
 def _damped_step(hess, grad, lam, h, step, sm, sd):  # pragma: no cover - compiled
     """``minimize.damped_step`` (after ``_pin_at_bounds``) for one row, solved by
     :func:`peaksift.likelihood.kernels.solve_small`; False when the system is singular or
@@ -225,7 +225,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
                  np.empty((p, p + 1)))
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
           steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
           s_err, kbuf, frac, grad_full, gs, dgs, lb, mats, vecs, pin,
@@ -233,7 +233,13 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
     """:func:`profile_rows` with its work buffers.  Every array the Newton loop hands to
     a compiled helper is :func:`borrowed` first: each helper call took and gave back a
     reference per array argument, two locked instructions each, ~60 per iteration (with
-    the two allocations of each solve, ~0.4 us of a row's ~1.4 us fixed cost)."""
+    the two allocations of each solve, ~0.4 us of a row's ~1.4 us fixed cost).  The
+    helpers of an iteration (:func:`_nll`, :func:`_grad_hess`, :func:`_background`,
+    :func:`_damped_step`) are inlined here (numba's ``inline="always"``: their arguments
+    were ~0.5 us of a row's fixed cost), under this function's ``error_model="numpy"``:
+    without it the inlined NLL's loop got a division check and lost its vectorised
+    logarithm; no division here can be by zero (the expectations are floored, the solve
+    tests its pivots), so the numbers are the same."""
     e1 = borrowed(e1)
     e2 = borrowed(e2)
     used = borrowed(used)

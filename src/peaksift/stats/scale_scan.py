@@ -64,6 +64,10 @@ _STARTS = 2
 #: the same with a free yield: the grid's one-step yield ranks the wells less well (on 100
 #: toys with a 3 % scale the lowest was third twice: q0 4.1 and 2.7 too low with two)
 _STARTS_FREE = 4
+#: the toy limits' conditional fits take as many (:mod:`.toy_limits_systematics`): on 100
+#: toys with a 3 % scale the lowest well of 1 of 600 was third; the asymptotic limits keep
+#: two (four cost them 1.5x for the same limits to 4 decimals)
+STARTS_TOYS = _STARTS_FREE
 #: at most this many grid values x bins are held at once
 _CHUNK = 2_000_000
 #: a start other than the centre's counts as a different minimum when lower by this (NLL)
@@ -114,7 +118,7 @@ def _band(f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any],
                 nuisances: SignalNuisances, fit: dict[str, np.ndarray], rows: np.ndarray,
-                centers: np.ndarray | None, fixed_signal: bool
+                centers: np.ndarray | None, fixed_signal: bool, starts: int | None = None
                 ) -> tuple[np.ndarray, np.ndarray]:
     """Starts ``(R, S, J)`` of the factors and of the yield ``(R, S)`` at the ``S``
     (``_STARTS``, with a free yield ``_STARTS_FREE``) lowest wells of the grid NLL in
@@ -129,7 +133,8 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     span = (hi - lo) * np.abs(mass) / (_STEP * width)
     grid = np.linspace(lo, hi, int(min(np.ceil(span.max()), 20_000)) + 1)
     g = grid.size
-    starts = _STARTS if fixed_signal else _STARTS_FREE
+    if starts is None:
+        starts = _STARTS if fixed_signal else _STARTS_FREE
     k_out = np.full((rows.size, starts, len(names)), np.nan)
     s_out = np.full((rows.size, starts), np.nan)
     # the grid's signal fractions depend on the hypothesis and k_m only (the other
@@ -260,12 +265,14 @@ def _centre_fits(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
 def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
                    nuisances: SignalNuisances, *, start: dict[str, np.ndarray],
                    centers: np.ndarray | None = None, tol: float = 1e-8,
-                   fixed_signal: bool = False) -> dict[str, np.ndarray]:
+                   fixed_signal: bool = False, starts: int | None = None
+                   ) -> dict[str, np.ndarray]:
     """:func:`~peaksift.stats.shape_profile.profile_with_nuisances` with further starts
     from a scan of the mass scale where it reaches beyond the peak's width (there also
     with the factors' exact curvature; elsewhere the fits are those of before).
 
-    Arguments as there.  Returns its dict with the lowest fit of each hypothesis, plus
+    Arguments as there; ``starts``: the grid's wells refitted per hypothesis (default
+    ``_STARTS``, with a free yield ``_STARTS_FREE``).  Returns its dict with the lowest fit of each hypothesis, plus
     ``scanned`` (bool per hypothesis: the scan ran) and ``moved`` (a start other than the
     centre gave a lower minimum by more than 1e-3: the profile in the mass scale has
     several wells and the nearest is not the lowest)."""
@@ -280,7 +287,7 @@ def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
         return fit
     n2 = np.broadcast_to(np.asarray(n, float), (nb, model.used.size))
     k_st, s_st = _grid_wells(model, n2, signal, base, nuisances, fit, rows, centers,
-                             fixed_signal)
+                             fixed_signal, starts)
     have = np.isfinite(s_st) & np.all(np.isfinite(k_st), axis=2)   # (R, starts)
     if not have.any():
         return fit

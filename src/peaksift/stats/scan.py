@@ -28,7 +28,6 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from scipy.special import ndtr as _ndtr
 
 from ..errors import FitError, PeaksiftError
 from ..likelihood import (
@@ -37,10 +36,10 @@ from ..likelihood import (
 from ..likelihood.poisson import use_compiled
 from .scale_scan import profile_global, several_minima_note
 from .scan_inputs import ASK, _prepare_model, _signal_params, _Spectrum
-from .scan_prepared import handed_out_model, kept_entry, model_parts, prepared_key
+from .scan_kept import OWN, _all, kept_scan, quick_scan, remember, scan_arrays, significances
+from .scan_prepared import prepared_key
 from .scan_result import ScanResult, fresh_result
 from .shape_profile import with_nuisances
-from .significance import p_from_q0, z_from_q0
 from .toy_model import _compiled, _spectrum_saturated
 from .toys import ScanModel, fit_background, profile_signal
 
@@ -138,12 +137,19 @@ def scan(
     key = ASK
     if (not refit and blind is None and expected_signal is None and nuisances is None
             and nuisance_toys == "fixed"):
+        # (the order remember() reads: the window 6th, the signal parameters 8th)
+        options = (signal, background, resolution, relative_resolution, absolute_resolution,
+                   window, natural_width, signal_params, bins, signal_model)
+        done = quick_scan(data, masses, options)
+        if done is not None:
+            return done
         key = prepared_key(data, signal, background, masses, resolution, relative_resolution,
                            absolute_resolution, window, natural_width, blind, signal_params,
                            bins, None, signal_model, "scan")
-        done = _kept_scan(key)
-        if done is not None:
-            return done
+        kept = kept_scan(key)
+        if kept is not None:
+            remember(data, masses, options, kept[1])
+            return kept[0]
     model, spec, info = _prepare_model(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
@@ -187,7 +193,7 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         table = _scan_table(model, slot)
     if table is not None:
         # the compiled fits and their table in one call: the same numbers as below
-        arr, conv, z, p, best = _from_table(table, model.nll_background, bl, notes)
+        arr, conv, z, p, best = scan_arrays(table, model.nll_background, bl, notes)
     elif mb:
         # every row starts at the background-only fit (the model's theta and yield)
         r = profile_signal(model, model.counts, model.fractions, steps=100)
@@ -233,7 +239,7 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         conv = np.zeros(nm, bool)
         notes.append("every mass hypothesis is blinded")
     if table is None:
-        z, p, best = _significances(arr["q0"], every, bl)
+        z, p, best = significances(arr["q0"], every, bl)
     z_exp = None
     if expected_signal is not None:
         z_exp = _expected_z(model, info, spec, expected_signal)
@@ -254,106 +260,8 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         "nuisances": None if nuis is _NO_NUISANCES or nuis.none else nuis.to_dict(),
         "nuisance_factors": factors or None}
     if table is not None:   # its arrays and those made from them: the result's alone
-        return fresh_result(values, _OWN)
+        return fresh_result(values, OWN)
     return ScanResult(**values)
-
-
-#: the result's arrays a scan from :func:`_scan_table` made for it alone
-_OWN = frozenset({"q0", "z_local", "p_local", "signal_yield", "signal_yield_error",
-                  "background_yield", "converged"})
-
-
-def _from_table(table: tuple, nll_background: float, bl: np.ndarray, notes: list[str]
-                ) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray, np.ndarray, int]:
-    """The result's arrays (``q0``, ``s``, ``se``, ``b``), ``converged``, Z, p and the best
-    row from :func:`_scan_table`'s answer (every hypothesis open): the numbers
-    ``profile_signal``'s path makes (``scan_prepared``); a note on unconverged rows."""
-    s_hat, s_err, b_hat, nll, conv, unconverged, q0, z, neg_z, best, plain = table
-    arr = {"q0": q0, "s": s_hat, "se": s_err, "b": b_hat}
-    if unconverged:
-        notes.append(f"{unconverged} hypotheses did not converge")
-    if plain:
-        return arr, conv, z, _ndtr(neg_z), best   # the table's Z and best (every q0 finite)
-    # a zero, NaN or infinite q0 term: numpy's rules, as scan_prepared's
-    arr["q0"] = np.where(s_hat > 0, np.maximum(2.0 * (nll_background - nll), 0.0), 0.0)
-    z, p, best = _significances(arr["q0"], True, bl)
-    return arr, conv, z, p, best
-
-
-def _kept_scan(key: tuple | None) -> ScanResult | None:
-    """The scan of a kept preparation (:func:`.scan_prepared.kept_entry`) whose compiled
-    call :func:`_scan_table` has made (every hypothesis open, no nuisance, nothing asked
-    but the result: no refit, no expected signal, no blinding), straight from the kept
-    entry: the model handed out alone (the spectrum and the plan are not needed), the
-    result's other fields made once per entry (read-only views).  The same result as
-    ``scan_prepared``'s; None where that must answer (not kept, warnings to raise again,
-    no compiled call, the compiled loop declining).  ~40 us of a 100-bin scan's ~120 us
-    of Python with cold caches went to handing out and reading the whole preparation."""
-    hit = kept_entry(key)
-    if hit is None:
-        return None
-    kept, seen, slot = hit
-    if seen or not slot or slot[0] is None:
-        return None
-    if len(slot) < 2:
-        slot.append(_kept_fields(kept))
-    fixed = slot[1]
-    if fixed is None:
-        return None
-    out = _compiled().scan_table(*slot[0], 100, 1e-6)
-    if out[0]:
-        return None
-    values = fixed[0].copy()
-    values["model"] = model = handed_out_model(fixed[1])
-    notes: list[str] = []
-    arr, conv, z, p, best = _from_table(out[1:], model.nll_background, fixed[3], notes)
-    values.update(q0=arr["q0"], z_local=z, p_local=p, signal_yield=arr["s"],
-                  signal_yield_error=arr["se"], background_yield=arr["b"], converged=conv,
-                  best_index=best, best_mass=float(fixed[2][best]), notes=tuple(notes))
-    return fresh_result(values, _OWN, kept=True)
-
-
-def _kept_fields(kept: tuple) -> tuple | None:
-    """A kept preparation's part of every result of :func:`_kept_scan`: the fields that
-    depend on the preparation alone (its arrays as read-only views), the model's parts
-    (:func:`.scan_prepared.model_parts`), the hypotheses and their blinded mask (none
-    blinded); None unless every hypothesis is open (then ``scan_prepared`` answers)."""
-    _, _, model, spec, info, _, _ = kept
-    m_all = info["masses"]
-    if not m_all.size or model["masses"].size != m_all.size:
-        return None
-    ro = {name: a.view() for name, a in (("masses", m_all), ("sigma", info["sigma"]),
-                                        ("blinded", info["blinded_mass"]))}
-    for a in ro.values():
-        a.flags.writeable = False
-    fields = {**ro, "refit": None, "window": spec["window"], "blind": None,
-              "signal_shape": info["signal"].name,
-              "background_shape": info["background"].name, "weight_scale": spec["scale"],
-              "z_expected": None, "unit": spec["unit"], "nuisances": None,
-              "nuisance_factors": None}
-    open_ = np.zeros(m_all.size, bool)  # the blinded mask: none (every hypothesis open)
-    open_.flags.writeable = False
-    return fields, model_parts(kept), m_all, open_
-
-
-def _significances(q0: np.ndarray, every: bool, bl: np.ndarray
-                   ) -> tuple[np.ndarray, np.ndarray, int]:
-    """Z_local, p_local and the best hypothesis from q0 (NaN where blinded or not fitted)."""
-    q0c = q0
-    finite = bool(_all(np.isfinite(q0c)))
-    if not finite:  # nan_to_num costs ~25 us, a 100-bin scan's 1%
-        q0c = np.nan_to_num(q0c)
-    if every and finite:
-        # nothing hidden, no NaN: the general rule below picks the same values; z_from_q0's
-        # and p_from_z's operations on the array written out (their checks of a scalar
-        # cost ~10 us with cold caches)
-        z = np.sqrt(np.maximum(q0c, 0.0))
-        p = _ndtr(-z)   # p_from_q0's 1 - Phi(sqrt(q0)), the square root taken once
-        return z, p, int(q0c.argmax())
-    z = np.where(bl, np.nan, z_from_q0(q0c))
-    p = np.where(bl, np.nan, p_from_q0(q0c))
-    qsel = np.where(bl | np.isnan(q0), -np.inf, q0c)
-    return z, p, int(np.argmax(qsel)) if np.isfinite(qsel).any() else 0
 
 
 def _scan_table(model: ScanModel, slot: list) -> tuple | None:
@@ -379,10 +287,6 @@ def _scan_table(model: ScanModel, slot: list) -> tuple | None:
         return None
     return out[1:]
 
-
-#: ``ndarray.all`` without its Python-level wrapper (numpy's ``_methods._all``; each
-#: Python call costs ~10x with the caches cold, as a scan mostly runs): the same answer
-_all = np.logical_and.reduce
 
 #: no nuisance (a frozen value: one for every scan)
 _NO_NUISANCES = SignalNuisances()

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -13,6 +14,7 @@ from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
 from . import lee
+from .scan_prepared import handed_out_model
 from .shape_profile import run_nuisance_toy_batch
 from .significance import p_from_q0
 from .toys import ScanModel, fit_background, profile_signal, run_toys
@@ -327,22 +329,34 @@ def _z_of_p(p: float) -> float:
 #: ScanResult's fields by name (every one must be given to :func:`fresh_result`)
 _FIELDS = frozenset(f.name for f in fields(ScanResult))
 
+# The model's default (None) lives in the dataclass's __init__ alone: with no class
+# attribute of that name, a result made without it (a kept scan's, fresh_result) finds it
+# through FrozenValue.__getattr__, made when it is first read.
+del ScanResult.model
+
 
 def fresh_result(values: dict[str, Any], own: frozenset[str], *,
-                 kept: bool = False) -> ScanResult:
+                 kept: bool = False, model: tuple | None = None) -> ScanResult:
     """``ScanResult(**values)`` (every field given) as :class:`~peaksift._values.FrozenValue`
     makes it, for less: the arrays named in ``own``, made for this result alone, are made
     read-only in place rather than through a read-only view (the other arrays get their
     view, so the caller's stay writable); the frozen dataclass's ``__init__`` (a
     ``object.__setattr__`` per field) skipped.  The construction cost ~20 us of a 100-bin
     scan with cold caches.  A mapping among the values: the usual construction.
-    ``kept``: the values of a kept scan (``scan._kept_scan``: every field, no mapping,
-    every array not in ``own`` a read-only view already), taken as they are."""
+    ``kept``: the values of a kept scan (``scan_kept.kept_scan``: every field, no mapping,
+    every array not in ``own`` a read-only view already), taken as they are; with
+    ``model`` (a kept preparation's :func:`.scan_prepared.model_parts`) and no ``model``
+    among the values, the model is made when it is first read (a deferred field of
+    :class:`~peaksift._values.FrozenValue`: its six array copies cost ~18 us of a 100-bin
+    scan with cold caches, and most scans' models are never read)."""
     if kept:
         obj = object.__new__(ScanResult)
-        obj.__dict__.update(values)
-        for name in own:
-            values[name].flags.writeable = False
+        d = obj.__dict__
+        d.update(values)
+        for name in own:   # (setflags: no flags object made, ~0.3 us of ~0.8 each)
+            values[name].setflags(write=False)
+        if model is not None:
+            d["_later"] = partial(_later_model, model)
         return obj
     if values.keys() != _FIELDS:
         return ScanResult(**values)
@@ -354,7 +368,12 @@ def fresh_result(values: dict[str, Any], own: frozenset[str], *,
         if t is np.ndarray:
             if name not in own:
                 v = d[name] = v.view()
-            v.flags.writeable = False
+            v.setflags(write=False)
         elif t is dict or isinstance(v, np.ndarray):
             return ScanResult(**values)   # (an array made read-only above stays so: no matter)
     return obj
+
+
+def _later_model(parts: tuple) -> dict[str, Any]:
+    """A kept scan's deferred field: its model, as the kept preparation hands it out."""
+    return {"model": handed_out_model(parts)}

@@ -53,7 +53,7 @@ import numpy as np
 
 from ..likelihood import SignalNuisances
 from .cls import _BANDS, _floor_reach, _Problem, _unconditional
-from .scale_scan import profile_global
+from .scale_scan import STARTS_TOYS, profile_global
 from .shape_profile import TOY_TOLERANCE, _fractions
 from .toy_limits import (
     _ToyLimitTask,
@@ -97,7 +97,8 @@ class _ShapeProblem(_Problem):
         rn = profile_global(self.model, self.counts, self.signal, self.base, nuis,
                             start={"s": s, "b": self.b, "theta": self.theta,
                                    "factors": cen if self.k is None else self.k},
-                            centers=cen, fixed_signal=True, tol=TOY_TOLERANCE)
+                            centers=cen, fixed_signal=True, tol=TOY_TOLERANCE,
+                            starts=STARTS_TOYS)
         self.k = rn["factors"]
         return rn, _fractions(self.model, self.signal, self.base, names, nuis, self.k, rows)
 
