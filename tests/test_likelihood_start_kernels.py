@@ -23,6 +23,7 @@ from scipy import stats
 
 from peaksift.likelihood.start_kernels import (
     SCAN_BAND,
+    coarse_gains,
     coarse_rows,
     coarse_scan,
     local_maxima,
@@ -112,6 +113,51 @@ def test_coarse_scan_against_scipy_and_iminuit():
         mi.hesse()
         assert abs(nll[m] - mi.fval) < 1e-6, (mass, nll[m], mi.fval)
         assert abs(x[m, 0] - mi.values["a"]) < 1e-3 * mi.errors["a"]
+
+
+def test_coarse_gains_against_scipy_and_iminuit():
+    """The whole coarse scan after its rows: the background counts normalised, every trial
+    mass's two yields profiled by iminuit (as above) on scipy's Gaussian rows, the gain
+    q = 2 (nll0 - nll) with nll0 the background alone at its total, and the local maxima by
+    their definition (positive, not below a neighbour, the largest first; the dips with a
+    negative yield): the same masses, gains within 4e-6 (twice the NLL tolerance)."""
+    edges, n, g = _data(6)
+    n[149:154] = np.round(0.4 * n[149:154])  # a dip at 248-254
+    bexp = 40_000.0 * g
+    grid = np.linspace(110.0, 290.0, 37)
+    sigma = 4.0
+    f = np.empty((grid.size, n.size))
+    for m, mass in enumerate(grid):
+        norm = stats.norm(mass, sigma)
+        f[m] = np.diff(norm.cdf(edges)) / (norm.cdf(HI) - norm.cdf(LO))
+    index, gain = np.empty(5, np.int64), np.empty(5)
+    k1, k2 = coarse_gains(n, np.ones(n.size), f, bexp, 25, True, index, gain)
+    btot = float(bexp.sum())
+    nll0 = float(np.sum(bexp - n * np.log(bexp)))
+    q_pos, q_neg = [], []
+    for m in range(grid.size):
+        mi = Minuit(_profile_cost(f[m], bexp / btot, n), a=0.1 * np.sqrt(btot), b=btot)
+        mi.errordef = 0.5
+        mi.strategy, mi.tol = 2, 1e-7
+        mi.migrad()
+        q = 2.0 * (nll0 - mi.fval)
+        q_pos.append(q if mi.values["a"] > 0 else 0.0)
+        q_neg.append(q if mi.values["a"] < 0 else 0.0)
+
+    def maxima(q, most):
+        peaks = [i for i in range(len(q)) if q[i] > 0
+                 and q[i] >= (q[i - 1] if i else -np.inf)
+                 and q[i] >= (q[i + 1] if i + 1 < len(q) else -np.inf)]
+        return sorted(peaks, key=lambda i: -q[i])[:most]
+
+    want_pos, want_neg = maxima(q_pos, 3), maxima(q_neg, 2)
+    assert index[:k1].tolist() == want_pos
+    assert index[3:3 + k2].tolist() == want_neg
+    assert grid[want_pos[0]] == pytest.approx(180.0, abs=5.0)  # the peak of _data
+    assert k2 and grid[want_neg[0]] == pytest.approx(251.0, abs=5.0)  # and the dip
+    got = gain[:k1].tolist() + gain[3:3 + k2].tolist()
+    want = [q_pos[i] for i in want_pos] + [q_neg[i] for i in want_neg]
+    assert np.allclose(got, want, rtol=0.0, atol=4e-6), (got, want)
 
 
 def test_coarse_rows_against_scipy():

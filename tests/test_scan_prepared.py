@@ -101,7 +101,8 @@ def test_a_scan_asked_again_follows_every_change_in_place():
     """The same objects scanned again (the histogram, the hypotheses' array and the
     resolution: the repeated scan found by their identity, ``stats/scan_kept.py``), then
     after the caller changed, in place, the histogram's bins, then the hypotheses' array,
-    then set the numpy reference (``PEAKSIFT_NUMPY_COST=1``): each scan gives iminuit's q0
+    after nine other preparations dropped this one from the store, and with the numpy
+    reference set (``PEAKSIFT_NUMPY_COST=1``): each scan gives iminuit's q0
     and yield (test_scan's binned NLL, Cowan et al. 2011 eq. 12; tolerances as
     ``_check``) for what the inputs hold then, never the last answer; a repeated scan's
     model (made when first read) holds the counts of its own scan."""
@@ -143,6 +144,10 @@ def test_a_scan_asked_again_follows_every_change_in_place():
     np.testing.assert_array_equal(r.masses, masses)
     assert r.best_index == 1   # the injected peak at 320
     again("masses changed, repeated")
+    for bins in range(100, 109):   # nine other preparations: this one is dropped
+        scan(MassHistogram(bins=bins, range=WINDOW).fill(x), "gaussian", "exponential",
+             masses, resolution=res, refit=False)
+    again("its preparation dropped")
     os.environ["PEAKSIFT_NUMPY_COST"] = "1"
     try:
         again("numpy reference", 1)

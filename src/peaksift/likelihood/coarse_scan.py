@@ -118,42 +118,34 @@ def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int, sign: 
 def _compiled_scan(shape, edges, n, scale, grid, p, window, bexp, dips):
     """``(peaks, dips)`` of the coarse scan of a Gaussian, as :func:`_local_maxima` lists
     them, from the compiled rows (:func:`.start_kernels.coarse_rows`, kept per binning by
-    :func:`_scan_rows`), one compiled profile of them and compiled local
-    maxima: the same steps as :func:`_compiled_fractions`, :func:`_coarse_profile` and
-    :func:`_local_maxima` (the same numbers) without their ~15 numpy calls; None where
-    those must answer (another shape, the compiled path off, no row)."""
+    :func:`_scan_rows`) and one compiled call for the rest
+    (:func:`.start_kernels.coarse_gains`): the same steps as :func:`_compiled_fractions`,
+    :func:`_coarse_profile` and :func:`_local_maxima` (the same numbers but the sums' order,
+    in the gains' last digits) without their ~20 numpy calls; None where those must answer
+    (another shape, the compiled path off, no row)."""
     if type(shape) is not Gaussian or not use_compiled():
         return None
     sigma = float(p[shape.parameter_names.index("sigma")])
     if not sigma > 0:
         return None
-    b0 = np.maximum(np.asarray(bexp, float), 1e-12)
-    btot = float(b0.sum())
-    g = b0 / btot
-    # differences of NLLs only: the saturated term is left out
-    nll0 = float(binned_nll(n, btot * g, scale, saturated=False))
-    x = np.empty((grid.size, 2))
-    x[:, 0] = 0.1 * math.sqrt(max(btot, 1.0))
-    x[:, 1] = btot
-    nll = np.empty(grid.size)
-    if (isinstance(scale, np.ndarray) and scale.dtype == float and scale.shape == g.shape
+    nb = edges.size - 1
+    if (isinstance(scale, np.ndarray) and scale.dtype == float and scale.shape == (nb,)
             and scale.flags.c_contiguous):
         sc = scale
     else:
         sc = np.ascontiguousarray(np.broadcast_to(
-            np.asarray(1.0 if scale is None else scale, float), g.shape))
+            np.asarray(1.0 if scale is None else scale, float), (nb,)))
     kern = compiled_module(START_KERNELS_MODULE)
     frac = _scan_rows(kern, np.ascontiguousarray(edges, float), float(window[0]),
                       float(window[1]), np.ascontiguousarray(grid, float), sigma)
     if frac is None:
         return None
-    kern.profile_two_yields(np.ascontiguousarray(n, float), sc, frac, g, x, nll, 25)
-    index, gain = np.empty(3, np.int64), np.empty(3)
-    found = []
-    for sign, most in ((1.0, 3), (-1.0, 2)) if dips else ((1.0, 3),):
-        k = kern.local_maxima(x[:, 0], nll, nll0, most, sign, index, gain)
-        found.append(list(zip(index[:k].tolist(), gain[:k].tolist())))
-    return found[0], (found[1] if dips else [])
+    # the background's shape, its NLL alone, the profile and the local maxima in one call
+    index, gain = np.empty(5, np.int64), np.empty(5)
+    k1, k2 = kern.coarse_gains(np.ascontiguousarray(n, float), sc, frac,
+                               np.ascontiguousarray(bexp, float), 25, bool(dips), index, gain)
+    return (list(zip(index[:k1].tolist(), gain[:k1].tolist())),
+            list(zip(index[3:3 + k2].tolist(), gain[3:3 + k2].tolist())))
 
 
 #: the coarse scan's rows by binning, window, trial masses and width, newest last: they do

@@ -26,7 +26,7 @@ from .minimize import POSDEF_TOL, minimize
 from .model import Model
 from .poisson import DRIVER_MODULE, KERNELS_MODULE, MU_FLOOR, START_KERNELS_MODULE, use_compiled
 
-__all__ = ["background_counts", "background_start"]
+__all__ = ["background_counts", "background_start", "background_start_counts"]
 
 #: the minimiser's settings of a background start (a start needs no tighter minimum)
 _EDM_GOAL = 1e-2
@@ -38,26 +38,46 @@ def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.n
                      lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
     """Background-only binned fit (on ``mask`` bins; fixed background parameters stay
     fixed) -> full parameter vector with every signal yield at 0."""
+    return _background_start(model, edges, n, scale, mask, bstart, is_fixed, lower, upper,
+                             False)[0]
+
+
+def background_start_counts(model: Model, edges: np.ndarray, n: np.ndarray,
+                            scale: np.ndarray, mask: np.ndarray | None, bstart: np.ndarray,
+                            is_fixed: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                            ) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`background_start` and the background's expected counts in every bin there
+    (:func:`background_counts`: made in the fit's compiled call where it has one)."""
+    out, counts = _background_start(model, edges, n, scale, mask, bstart, is_fixed, lower,
+                                    upper, True)
+    return out, (background_counts(model, edges, out) if counts is None else counts)
+
+
+def _background_start(model, edges, n, scale, mask, bstart, is_fixed, lower, upper,
+                      want_counts):
+    """``(background_start's vector, its counts or None)``; the counts only with
+    ``want_counts`` where the compiled fit made them."""
     v = bstart.copy()
     for _, _, iy in model.blocks[:-1]:
         v[iy] = 0.0
     _, bsl, biy = model.blocks[-1]
     free = np.array([i for i in [*range(bsl.start, bsl.stop), biy] if not is_fixed[i]], int)
     if free.size == 0:
-        return v
+        return v, None
     if not is_fixed[biy]:  # (every bin: n's own sum, the same as of its copy n[all])
         v[biy] = max(float(np.add.reduce(n if mask is None else n[mask])), 1.0)  # (.sum())
     lo, hi = lower[free].copy(), upper[free].copy()
     x0 = np.minimum(np.maximum(v[free], lo), hi)
     fast = _prepared(model, edges, n, scale, free)
-    x = fast.minimum(v, x0, lo, hi, mask) if fast is not None else None
+    x, counts = fast.minimum(v, x0, lo, hi, mask, biy if want_counts else -1) if (
+        fast is not None) else (None, None)
     if x is None:  # the general path (a cost, Fisher scoring, MIGRAD where it must)
         cost = _background_cost(model, v, free, edges, n, scale, mask)
         x = minimize(cost, x0, lo, hi, [model.parameter_names[i] for i in free],
                      edm_goal=_EDM_GOAL).x
     out = v.copy()
     out[free] = x
-    return out
+    return out, counts
 
 
 #: the compiled background-only fits of recent (model, read-only data, free parameters):
@@ -148,20 +168,30 @@ class _BackgroundFit:
         return static
 
     def minimum(self, v: np.ndarray, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
-                mask: np.ndarray | None) -> np.ndarray | None:
-        """The free values at the minimum from ``x0`` (full vector ``v``), or None when the
-        compiled loop does not end at a positive-definite converged minimum (the general
-        path then answers, as it would have from the start)."""
+                mask: np.ndarray | None, biy: int = -1) -> tuple:
+        """``(free values, counts)``: the free values at the minimum from ``x0`` (full
+        vector ``v``), or None when the compiled loop does not end at a positive-definite
+        converged minimum (the general path then answers, as it would have from the
+        start); given the yield's index ``biy`` (>= 0), the background's expected counts
+        in every bin there from the same call (else, or where the kernel declines, None)."""
         x_out = np.empty(self.nfree)
         n, scale = self._data
+        kern = compiled_module(START_KERNELS_MODULE)
         try:
-            ok = compiled_module(START_KERNELS_MODULE).background_fit(
+            if biy < 0:
+                ok = kern.background_fit(
+                    self.static, n, scale, _NO_MASK if mask is None else mask,
+                    np.asarray(v, float), self.free, x0, lo, hi, _MAX_ITER, _EDM_GOAL,
+                    MU_FLOOR, POSDEF_TOL, x_out)
+                return (x_out, None) if ok else (None, None)
+            counts = np.empty(n.size)
+            ok, made = kern.background_fit_counts(
                 self.static, n, scale, _NO_MASK if mask is None else mask,
                 np.asarray(v, float), self.free, x0, lo, hi, _MAX_ITER, _EDM_GOAL, MU_FLOOR,
-                POSDEF_TOL, x_out)
+                POSDEF_TOL, x_out, biy, counts)
         except (ArithmeticError, ValueError):
-            return None
-        return x_out if ok else None
+            return None, None
+        return (x_out if ok else None), (counts if made else None)
 
 
 #: the static arrays of :class:`_BackgroundFit` by what they are made of (see ``make``),

@@ -32,11 +32,12 @@ import numpy as np
 from numba import njit
 
 from ..shapes.compiled import gaussian_width_rows, vlog
-from .driver import CONVERGED, _drive
-from .kernels import _SUMS, covariance_small
+from .driver import CONVERGED, _component, _drive
+from .kernels import _SUMS, bin_counts, covariance_small
 
-__all__ = ["BAND", "SCAN_BAND", "background_fit", "coarse_rows", "coarse_scan", "local_maxima",
-           "narrow_rows", "profile_two_yields", "profile_widths"]
+__all__ = ["BAND", "SCAN_BAND", "background_fit", "background_fit_counts", "coarse_gains",
+           "coarse_rows", "coarse_scan", "local_maxima", "narrow_rows", "profile_two_yields",
+           "profile_widths"]
 
 #: the coarse scan's rows are computed within this many widths of their mass (beyond, a
 #: bin holds < exp(-SCAN_BAND^2 / 2) ~ 3e-18 of the row's peak bin: below the profile's BAND)
@@ -351,3 +352,62 @@ def background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_ite
     if status != CONVERGED:
         return False
     return covariance_small(info, posdef_tol, np.empty((npar, npar)))
+
+
+@njit(cache=True, nogil=True)
+def background_fit_counts(static, n, scale, mask, full, free, x0, lower, upper, max_iter,
+                          edm_goal, floor, posdef_tol, x_out, biy,
+                          counts):  # pragma: no cover - compiled
+    """:func:`background_fit`, then, where it converged, the background's expected counts
+    in every bin at its minimum (``full`` with the free values ``x_out``) into ``counts``:
+    the CDF row of its edge kernel and :func:`.kernels.bin_counts` at the yield ``biy``,
+    as :func:`.start_background.background_counts` makes them (the same kernel on the same
+    edges).  Returns ``(converged, counts made)``."""
+    if not background_fit(static, n, scale, mask, full, free, x0, lower, upper, max_iter,
+                          edm_goal, floor, posdef_tol, x_out):
+        return False, False
+    code, edata, escal, pstart = static[0], static[1], static[2], static[3]
+    v = full.copy()
+    for i in range(free.size):
+        v[free[i]] = x_out[i]
+    cdf = np.empty((static[11], static[12]))
+    if not _component(code[0], edata[0], escal[0, 0], escal[0, 1], v, pstart[0], cdf):
+        return True, False
+    bin_counts(cdf[0], v[biy], counts)
+    return True, True
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def coarse_gains(n, s, f, bexp, iterations, dips, index, gain):  # pragma: no cover
+    """The coarse scan of :func:`.coarse_scan._compiled_scan` on its rows ``f`` in one
+    call: the background's shape (``bexp`` floored at 1e-12, normalised), its NLL alone
+    ``sum(s mu - n s ln(s mu))`` (summed in bin order, where numpy's sum is pairwise: the
+    gains move by rounding), both yields profiled at every trial mass from 0.1 sqrt(total)
+    and the total (:func:`profile_two_yields`) and the local maxima (:func:`local_maxima`):
+    up to 3 with a positive signal into ``index[:3]``, ``gain[:3]`` and, with ``dips``, up
+    to 2 with a negative one into ``index[3:5]``, ``gain[3:5]``.  Returns their numbers."""
+    nb = n.size
+    g = np.empty(nb)
+    btot = 0.0
+    for j in range(nb):
+        b = bexp[j]
+        g[j] = b if (b > 1e-12 or math.isnan(b)) else 1e-12  # np.maximum
+        btot += g[j]
+    nll0 = 0.0
+    for j in range(nb):
+        g[j] = g[j] / btot
+        mu = btot * g[j]
+        mu = mu if (mu > 1e-300 or math.isnan(mu)) else 1e-300  # binned_nll's floor
+        smu = s[j] * mu
+        nll0 += smu - n[j] * s[j] * math.log(smu)
+    m = f.shape[0]
+    x = np.empty((m, 2))
+    a0 = 0.1 * math.sqrt(max(btot, 1.0))
+    for i in range(m):
+        x[i, 0] = a0
+        x[i, 1] = btot
+    nll = np.empty(m)
+    profile_two_yields(n, s, f, g, x, nll, iterations)
+    k1 = local_maxima(x[:, 0], nll, nll0, 3, 1.0, index[:3], gain[:3])
+    k2 = local_maxima(x[:, 0], nll, nll0, 2, -1.0, index[3:], gain[3:]) if dips else 0
+    return k1, k2

@@ -28,7 +28,7 @@ from ..shapes import Gaussian
 from .coarse_scan import coarse_gains, peak_candidates
 from .model import Model
 from .narrow import NARROW_MARGIN, narrow_candidates
-from .start_background import background_counts, background_start
+from .start_background import background_counts, background_start, background_start_counts
 from .start_widths import background_rows, lowest_width, other_widths, scan_width
 
 __all__ = [
@@ -111,6 +111,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
                    and names[i] not in given]
     profile = _WidthProfile(model, fine, i_m, free_widths, is_fixed, lower, upper, retries)
+    mass_given = names[i_m] in given
     for mm, factor, essential, sideband, extra, rank in candidates:
         def make(near: np.ndarray | None = None, mm: float = mm, factor: float = factor,
                  sideband: bool = sideband, extra: dict = extra,
@@ -119,7 +120,13 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
                 found = profile.take(near) if rank >= 0 else None
-                if found is not None:  # only where the width's profile has a minimum
+                if found is not None and not found and mass_given:
+                    # no other minimum on the profile; but it follows the mass from the
+                    # best minimum's, and a narrower minimum can sit at another mass (0.24
+                    # lower, 1 GeV away, in a given-mass fit): with a mass given there are
+                    # no spikes to find it, so the width is scaled as without a profile
+                    found = None
+                elif found is not None:  # only where the width's profile has a minimum
                     if not found:
                         return None
                     factor = found[0]
@@ -212,13 +219,26 @@ _MEDIAN_BIN: list = [None]
 
 
 def _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper):
+    return _background_or_base_counts(model, edges, n, scale, base, is_fixed, given, lower,
+                                      upper, False)[0]
+
+
+def _background_or_base_counts(model, edges, n, scale, base, is_fixed, given, lower, upper,
+                               counts=True):
+    """``(the background-only start or the base, its expected counts in every bin)`` (the
+    counts only with ``counts``, else None)."""
     if all(k in given for k in model.parameter_names[model.blocks[-1][1]]):
-        return base.copy()
-    try:
-        return background_start(model, edges, n, scale, None, base.copy(), is_fixed, lower,
-                                upper)
-    except _NUMERIC:
-        return base.copy()
+        vb = base.copy()
+    else:
+        try:
+            if counts:
+                return background_start_counts(model, edges, n, scale, None, base.copy(),
+                                               is_fixed, lower, upper)
+            vb = background_start(model, edges, n, scale, None, base.copy(), is_fixed,
+                                  lower, upper)
+        except _NUMERIC:
+            vb = base.copy()
+    return vb, (background_counts(model, edges, vb) if counts else None)
 
 
 def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine):
@@ -231,9 +251,9 @@ def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fin
         return None
     bsl = blocks[-1][1]
     bkg_given = all(k in given for k in names[bsl])
-    vb = _background_or_base(model, edges, n, scale, base, is_fixed, given, lower, upper)
+    vb, bexp = _background_or_base_counts(model, edges, n, scale, base, is_fixed, given,
+                                          lower, upper)
     c = 0.5 * (edges[1:] + edges[:-1])
-    bexp = background_counts(model, edges, vb)
     shape, sl, iy = blocks[0]
     i_m = sl.start + shape.parameter_names.index("mass")
     i_s = [sl.start + shape.parameter_names.index(k) for k in shape.width_parameters()]
@@ -338,14 +358,17 @@ def _one_start(model, edges, n, scale, v, vb, c, mm, factor, i_m, i_s, given, is
     hw = 3.0 * max((s[i] for i in i_s), default=(edges[-1] - edges[0]) / 40)
     mask = np.abs(c - s[i_m]) > hw
     kept = int(np.count_nonzero(mask))  # (mask.sum()'s count, without its wrapper)
+    bfr = None
     if not bkg_given and kept > len(names) and kept < mask.size:
         try:
-            sb = background_start(model, edges, n, scale, mask, s, is_fixed, lower, upper)
+            sb, bfr = background_start_counts(model, edges, n, scale, mask, s, is_fixed,
+                                              lower, upper)
             s[bsl] = sb[bsl]
-            s[biy] = sb[biy]
+            s[biy] = sb[biy]  # (bfr: the counts there, those of s)
         except _NUMERIC:
-            pass
-    bfr = background_counts(model, edges, s)
+            bfr = None
+    if bfr is None:
+        bfr = background_counts(model, edges, s)
     sel = ~mask
     excess = n[sel] - bfr[sel]
     resid = np.maximum(sign * excess, 0.0)  # np.clip(.., 0, None)

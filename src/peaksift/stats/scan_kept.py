@@ -84,7 +84,7 @@ def kept_scan(key: tuple | None) -> tuple | None:
     """The scan of a kept preparation (:func:`.scan_prepared.kept_entry`) whose compiled
     call has been made (every hypothesis open, no nuisance, nothing asked but the result:
     no refit, no expected signal, no blinding), straight from the kept entry:
-    ``(result, parts)``, ``parts`` what :func:`remember` keeps of it; None where
+    ``(result, slot)``, ``slot`` the entry's (what :func:`remember` keeps); None where
     ``scan_prepared`` must answer (not kept, warnings to raise again, no compiled call,
     the compiled loop declining)."""
     hit = kept_entry(key)
@@ -95,17 +95,16 @@ def kept_scan(key: tuple | None) -> tuple | None:
         return None
     if len(slot) < 2:
         slot.append(_kept_fields(kept))
-    parts = slot[0], slot[1]
-    if parts[1] is None:
+    call, fixed = slot[0], slot[1]
+    if call is None or fixed is None:   # (None also once the entry is dropped)
         return None
-    result = _answer(parts)
-    return None if result is None else (result, parts)
+    result = _answer(call, fixed)
+    return None if result is None else (result, slot)
 
 
-def _answer(parts: tuple) -> ScanResult | None:
-    """The result of the compiled call ``parts[0]`` with the fields ``parts[1]``, or None
+def _answer(call: tuple, fixed: tuple) -> ScanResult | None:
+    """The result of the compiled call ``call`` with the fields ``fixed``, or None
     (the compiled loop declined a row)."""
-    call, fixed = parts
     out = _compiled().scan_table(*call, 100, 1e-6)
     if out[0]:
         return None
@@ -151,13 +150,15 @@ def _kept_fields(kept: tuple) -> tuple | None:
 
 # ------------------------------------------------------------ the same inputs again
 #: by ``id`` of the histogram: ``(options, masses, values, edges, masses' content, unit,
-#: compiled, parts)``, the newest last; the identity is only where to look, the content
+#: compiled, slot)``, the newest last; the identity is only where to look, the content
 #: decides (a new histogram at a freed one's address holds other bins, or the same)
 _QUICK: dict[int, tuple] = {}
 _QUICK_COUNT = 8
 
-def remember(data: Any, masses: Any, options: tuple, parts: tuple) -> None:
-    """Keep ``parts`` (:func:`kept_scan`'s) for :func:`quick_scan` under the histogram
+def remember(data: Any, masses: Any, options: tuple, slot: list) -> None:
+    """Keep ``slot`` (:func:`kept_scan`'s: the kept entry's, its parts set to None when
+    the entry is dropped, so a remembered scan holds no preparation the store let go) for
+    :func:`quick_scan` under the histogram
     ``data``, with copies of the content the kept preparation was made from (the
     histogram's bins and edges, the hypotheses).  ``options``: the scan's other inputs
     that its key held (``scan.scan``'s order), compared by identity, so kept only when
@@ -178,7 +179,7 @@ def remember(data: Any, masses: Any, options: tuple, parts: tuple) -> None:
         return
     _QUICK.pop(id(data), None)
     _QUICK[id(data)] = (options, masses, values.tobytes(), data.edges.tobytes(), content,
-                        data.unit, use_compiled(), parts)
+                        data.unit, use_compiled(), slot)
     while len(_QUICK) > _QUICK_COUNT:
         _QUICK.pop(next(iter(_QUICK)))
 
@@ -192,7 +193,7 @@ def quick_scan(data: Any, masses: Any, options: tuple) -> ScanResult | None:
     memo = _QUICK.get(id(data))
     if memo is None:
         return None
-    kept_options, m, values, edges, content, unit, compiled, parts = memo
+    kept_options, m, values, edges, content, unit, compiled, slot = memo
     if not (m is masses and type(data) is MassHistogram
             and all(map(is_, options, kept_options))):
         return None
@@ -203,4 +204,7 @@ def quick_scan(data: Any, masses: Any, options: tuple) -> ScanResult | None:
             and data.edges.tobytes() == edges and data.unit == unit
             and use_compiled() is compiled):
         return None
-    return _answer(parts)
+    call, fixed = slot[0], slot[1]
+    if call is None or fixed is None:   # the kept entry was dropped since
+        return None
+    return _answer(call, fixed)

@@ -176,7 +176,11 @@ def keep_prepared(key: tuple, prepared: tuple, seen: list, slots: list | None = 
             except TypeError:
                 pass
             while len(_KEPT) > _KEPT_COUNT:
-                _KEPT.popitem(last=False)
+                # its slot's parts let go (set to None, its length kept: a scan reading
+                # it meanwhile finds None and goes the old way), so that a scan that
+                # scan_kept remembers holds no preparation the store dropped
+                slot = _KEPT.popitem(last=False)[1][2]
+                slot[:] = [None] * len(slot)
     for w in seen:
         warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     return prepared
