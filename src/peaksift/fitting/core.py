@@ -20,6 +20,7 @@ from ..likelihood import Minimum, NearMinimum, minimize, refine
 from ..likelihood.starts import fit_starts
 from .checks import note_lower_minimum
 from .outcome import problems_at, result_of
+from .polish import continue_invalid
 from .result import FitResult
 from .setup import setup_of
 from .setup_kept import kept_setup
@@ -200,6 +201,7 @@ def fit(
                 full = s0.copy()
                 full[free_idx] = x
                 near = [full, np.asarray(x, float), float(f), cov, None]
+    best, calls = continue_invalid(best, calls, lo_f, hi_f, free_names, floors, free_idx)
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:
         free_cov = np.full((nfree, nfree), np.nan)

@@ -22,7 +22,7 @@ from .checks import tie_indices
 from .data import FitData, gof_binning
 from .result import FitResult
 
-__all__ = ["FLOOR_FRACTION", "problems_at", "result_of"]
+__all__ = ["FLOOR_FRACTION", "at_floor", "problems_at", "result_of"]
 
 #: numerical failures of iminuit's restart for the intervals
 _NUMERIC = (ArithmeticError, np.linalg.LinAlgError, ValueError)
@@ -35,6 +35,12 @@ _UNDERCOVER_Z = 6.0
 #: the peak fits inside one bin and the likelihood cannot tell its width, so a free sigma
 #: could collapse into a one-bin spike on any upward fluctuation
 FLOOR_FRACTION = 0.1
+
+
+def at_floor(value: float, error: float, floor: float) -> bool:
+    """A width at its floor, or within one error of it: not measured, the fit invalid (a NaN
+    error, a singular Hessian flagged on its own, says nothing of the floor)."""
+    return value <= floor * (1.0 + 1e-3) or (math.isfinite(error) and error >= value - floor)
 
 
 def problems_at(mo: Minimum, x: np.ndarray, posdef: bool, lower: np.ndarray, upper: np.ndarray,
@@ -123,8 +129,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         # at the floor, or within one error of it: the width is not measured, the peak is a
         # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
         # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
-        if not held[i] and (vs[i] <= floor * (1.0 + 1e-3)
-                            or (math.isfinite(errs[i]) and errs[i] >= vs[i] - floor)):
+        if not held[i] and at_floor(vs[i], errs[i], floor):
             problems = [*problems, (f"{names[i]} at or within one error of its floor (a "
                                     f"bound) {floor:g} {d.unit}, {FLOOR_FRACTION:g} of the "
                                     "narrowest bin: the peak is narrower than the binning "
