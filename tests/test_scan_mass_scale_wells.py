@@ -143,6 +143,21 @@ class _Reference:
         return max(2.0 * (self.background() - nll_hat), 0.0) if s_hat > 0 else 0.0
 
 
+def _toy_limit_ensemble(counts: np.ndarray, cens: np.ndarray, nuis) -> _Ensemble:
+    """The toy limits' ensemble of ``counts`` (one row per spectrum) at MASS, with the global
+    observables ``cens`` of the nuisances ``nuis``, as ``toy_limits_systematics`` builds it."""
+    model, spec, info = _prepare_model(
+        (_toy(0), EDGES), "gaussian", candidate_shapes(["exppoly1"])["exppoly1"],
+        np.array([MASS]), absolute_resolution=SIGMA, window=WINDOW, natural_width=None,
+        blind=None, signal_params=None, bins=None, what="test")
+    base = _signal_params(info["signal"], spec.window, model.masses, info["sigma"], None,
+                          info["signal_params"])
+    task = _SystematicToyTask((model,), np.zeros(1), 0, 1.0, 0.0, "lognormal", info["signal"],
+                              tuple(np.asarray(p)[0:1] if np.ndim(p) else p for p in base),
+                              nuis, 0.95, len(counts), 0, 50.0, np.full(5, 50.0))
+    return _Ensemble(task, counts, np.zeros(len(counts)), cens)
+
+
 # ------------------------------------------------------------------------------ tests
 @pytest.mark.parametrize("index", [16, 14, 19])
 def test_scan_q0_takes_the_lowest_well_of_the_mass_scale(index):
@@ -185,16 +200,7 @@ def test_toy_limit_statistic_takes_the_lowest_well_of_the_mass_scale():
     idx = [11, 21, 23]
     counts = np.array([_toy(i) for i in idx])
     cens = np.array([_centers(i) for i in idx])
-    model, spec, info = _prepare_model(
-        (_toy(0), EDGES), "gaussian", candidate_shapes(["exppoly1"])["exppoly1"],
-        np.array([MASS]), absolute_resolution=SIGMA, window=WINDOW, natural_width=None,
-        blind=None, signal_params=None, bins=None, what="test")
-    base = _signal_params(info["signal"], spec.window, model.masses, info["sigma"], None,
-                          info["signal_params"])
-    task = _SystematicToyTask((model,), np.zeros(1), 0, 1.0, 0.0, "lognormal", info["signal"],
-                              tuple(np.asarray(p)[0:1] if np.ndim(p) else p for p in base),
-                              NUIS, 0.95, len(idx), 0, 50.0, np.full(5, 50.0))
-    ens = _Ensemble(task, counts, np.zeros(len(idx)), cens)
+    ens = _toy_limit_ensemble(counts, cens, NUIS)
     refs = [_Reference(counts[t], centers=tuple(cens[t])) for t in range(len(idx))]
     free = [ref.profile(None) for ref in refs]
     for mu in (20.0, 40.0, 60.0):
@@ -273,16 +279,7 @@ def test_toy_limit_statistic_with_a_3_percent_scale_refits_enough_wells():
     counts = np.histogram(x, EDGES)[0].astype(float)[None, :]
     z = np.random.default_rng(10_000 + 94).standard_normal(2)
     cen = (1.0 + d * z[0], 1.0 + D_RES * z[1])
-    model, spec, info = _prepare_model(
-        (_toy(0), EDGES), "gaussian", candidate_shapes(["exppoly1"])["exppoly1"],
-        np.array([MASS]), absolute_resolution=SIGMA, window=WINDOW, natural_width=None,
-        blind=None, signal_params=None, bins=None, what="test")
-    base = _signal_params(info["signal"], spec.window, model.masses, info["sigma"], None,
-                          info["signal_params"])
-    task = _SystematicToyTask((model,), np.zeros(1), 0, 1.0, 0.0, "lognormal", info["signal"],
-                              tuple(np.asarray(p)[0:1] if np.ndim(p) else p for p in base),
-                              nuis, 0.95, 1, 0, 50.0, np.full(5, 50.0))
-    ens = _Ensemble(task, counts, np.zeros(1), np.array([cen]))
+    ens = _toy_limit_ensemble(counts, np.array([cen]), nuis)
     got = [ens.q(mu)[0][0] for mu in (20.0, 40.0, 60.0)]   # the limits' grid's warm starts
     ref = _Reference(counts[0], centers=cen, d_scale=d)
     nll_hat, mu_hat = ref.profile(None)

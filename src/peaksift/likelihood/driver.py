@@ -452,6 +452,16 @@ def problem_of(fused: Any) -> tuple | None:
             fused.yields)
 
 
+def join_arguments(near: Any, x_out: np.ndarray, info_out: np.ndarray) -> tuple:
+    """The compiled loop's ``(join, x, nll, hessian, nll margin, distance)`` of the best
+    minimum so far ``near`` (a :class:`NearMinimum` or None: then unused placeholders, the
+    loop's own buffers)."""
+    if near is None:
+        return False, x_out, 0.0, info_out, 0.0, 0.0
+    return (True, np.asarray(near.x, float), float(near.nll), np.asarray(near.hessian, float),
+            float(near.nll_margin), float(near.distance))
+
+
 def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper: np.ndarray,
                             max_iter: int, edm_goal: float, near: Any = None):
     """:func:`.minimize.fisher_scoring` on ``cost`` in one compiled call.
@@ -468,12 +478,7 @@ def compiled_fisher_scoring(cost: Any, x0: np.ndarray, lower: np.ndarray, upper:
     info_out = np.empty((npar, npar))
     x_last = np.empty(npar)
     g_out = np.empty(npar)
-    if near is None:
-        join, xb, fb, hb, jn, jd = False, x_out, 0.0, info_out, 0.0, 0.0
-    else:
-        join, xb, fb = True, np.asarray(near.x, float), float(near.nll)
-        hb, jn, jd = np.asarray(near.hessian, float), float(near.nll_margin), float(
-            near.distance)
+    join, xb, fb, hb, jn, jd = join_arguments(near, x_out, info_out)
     cost.buffers_changed()
     try:
         status, f, calls = _drive(prob, cost.full, cost.free, float(cost.constant),

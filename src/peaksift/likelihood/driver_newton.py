@@ -30,7 +30,15 @@ from typing import Any
 import numpy as np
 from numba import njit
 
-from .driver import CONVERGED, DECLINED, _drive, _evaluate, _hessian, _system
+from .driver import (
+    CONVERGED,
+    DECLINED,
+    _drive,
+    _evaluate,
+    _hessian,
+    _system,
+    join_arguments,
+)
 from .kernels import covariance_small, solve_small
 from .minimize import POSDEF_TOL
 from .refine import NEWTON_RISE, NEWTON_STEP, NEWTON_STEPS, REHESSE
@@ -231,12 +239,7 @@ def compiled_minimum(cost: Any, x0: np.ndarray, lower: np.ndarray, upper: np.nda
     hess, cov = np.empty((npar, npar)), np.empty((npar, npar))
     x_fin, g_fin, x_last2 = np.empty(npar), np.empty(npar), np.empty(npar)
     mu_drive, mu_kept = np.empty(prob[17].size), np.empty(prob[17].size)
-    if near is None:
-        join, xb, fb, hb, jn, jd = False, x_out, 0.0, info_out, 0.0, 0.0
-    else:
-        join, xb, fb = True, np.asarray(near.x, float), float(near.nll)
-        hb, jn, jd = np.asarray(near.hessian, float), float(near.nll_margin), float(
-            near.distance)
+    join, xb, fb, hb, jn, jd = join_arguments(near, x_out, info_out)
     lower, upper = np.asarray(lower, float), np.asarray(upper, float)
     h_lower, h_upper = cost.hessian_bounds(lower, upper)
     cost.buffers_changed()
