@@ -226,9 +226,9 @@ def _stuck_error(pid: int, seconds: float, i: int, n: int,
         f"worker process {pid} is stuck on {describe(i)} [{i + 1} of {n}]: for "
         f"{seconds:.0f} s every thread of it has waited on a lock or slept, using no CPU "
         "(a deadlock, not a slow task); the workers were stopped and the stacks of its "
-        "threads written to stderr. Run again; if it recurs, use start_method 'spawn' or "
-        "engine 'serial', and report it with those stacks (PEAKSIFT_STALL_SECONDS sets "
-        "how long to wait, 0 never to stop)"
+        "threads written to stderr. Run again with fewer workers, start_method 'spawn' or "
+        "engine 'serial', or raise PEAKSIFT_STALL_SECONDS if the task only waited on "
+        "something slow (0 never stops it); report a recurring one with those stacks"
     )
 
 
