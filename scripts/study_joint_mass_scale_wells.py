@@ -39,7 +39,6 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import inspect
-import json
 import math
 import os
 import sys
@@ -136,14 +135,6 @@ MUS = (20.0, 40.0, 60.0)
 TOY_MASSES = np.linspace(140.0, 160.0, 41)
 
 
-def _cached(cache: dict, path: str, key: str, compute):
-    if key not in cache:
-        cache[key] = compute()
-        with open(path, "w") as fh:
-            json.dump(cache, fh)
-    return cache[key]
-
-
 def ref_q0(ns, mass: float = S.MASS) -> dict:
     joint = Joint(ns, mass=mass)
     nll_hat, mu_hat = joint.free()
@@ -204,10 +195,7 @@ def main() -> None:
     ap.add_argument("--what", default="q0")
     ap.add_argument("--cache", default="joint_mass_scale_wells.json")
     a = ap.parse_args()
-    cache = {}
-    if os.path.exists(a.cache):
-        with open(a.cache) as fh:
-            cache = json.load(fh)
+    cache = S.load_cache(a.cache)
     what = a.what.split(",")
     idx = range(a.first, a.last)
     if "q0" in what or "envelope" in what:
@@ -223,7 +211,7 @@ def main() -> None:
                         chans = [dataclasses.replace(ch, background_candidates=b)
                                  for ch in chans]
                     got = combine(chans, np.array([S.MASS]), refit=False)
-                    ref = _cached(cache, a.cache, f"q0/{i}/{sig}", lambda ns=ns: ref_q0(ns))
+                    ref = S.cached(cache, a.cache, f"q0/{i}/{sig}", lambda ns=ns: ref_q0(ns))
                     total += 1
                     d = got.q0[0] - ref["q0"]
                     wrong += abs(d) > 0.01
@@ -250,7 +238,7 @@ def main() -> None:
         for t, i in enumerate(idx):
             j = int(np.nanargmax(q[t]))
             m = float(TOY_MASSES[j])
-            ref = _cached(cache, a.cache, f"toys/{i}/{m:g}",
+            ref = S.cached(cache, a.cache, f"toys/{i}/{m:g}",
                           lambda ns=ns_list[t], m=m: ref_q0(ns, m))
             d = q[t, j] - ref["q0"]
             wrong += abs(d) > 0.01
@@ -267,7 +255,7 @@ def main() -> None:
             got = toy_limit_q(ns_list, cens_list)
             wrong, worst = np.zeros(len(MUS), int), 0.0
             for t, i in enumerate(idx):
-                ref = _cached(cache, a.cache, f"toylimits/{i}/{sig}",
+                ref = S.cached(cache, a.cache, f"toylimits/{i}/{sig}",
                               lambda ns=ns_list[t], c=cens_list[t]: ref_q_mu(ns, c))
                 d = got[t] - np.array(ref)
                 wrong += np.abs(d) > 0.01

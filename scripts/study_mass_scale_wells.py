@@ -153,6 +153,23 @@ def spectrum(index: int, signal: int) -> np.ndarray:
     return x[(x > WINDOW[0]) & (x < WINDOW[1])]
 
 
+
+def load_cache(path: str) -> dict:
+    """The reference values kept by an earlier run in ``path`` (JSON), or none."""
+    if not os.path.exists(path):
+        return {}
+    with open(path) as fh:
+        return json.load(fh)
+
+
+def cached(cache: dict, path: str, key: str, compute):
+    """``cache[key]``, computed and the whole cache written to ``path`` when missing."""
+    if key not in cache:
+        cache[key] = compute()
+        with open(path, "w") as fh:
+            json.dump(cache, fh)
+    return cache[key]
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--scales", default="0.01,0.03,0.05,0.10")
@@ -160,10 +177,7 @@ def main() -> None:
     ap.add_argument("--signals", default="0,40")
     ap.add_argument("--cache", default="mass_scale_wells.json")
     a = ap.parse_args()
-    cache = {}
-    if os.path.exists(a.cache):
-        with open(a.cache) as fh:
-            cache = json.load(fh)
+    cache = load_cache(a.cache)
     worst = 0.0
     for index in map(int, a.spectra.split(",")):
         for signal in map(int, a.signals.split(",")):
@@ -179,11 +193,8 @@ def main() -> None:
                                                     "mass_resolution": D_RES}))
                 cpu = time.process_time() - t0
                 key = f"{index}/{signal}/{ds}"
-                if key not in cache:
-                    cache[key] = reference_limits(n, ds)
-                    with open(a.cache, "w") as fh:
-                        json.dump(cache, fh)
-                ro, re_, s_hat, km = cache[key]
+                ro, re_, s_hat, km = cached(cache, a.cache, key,
+                                            lambda n=n, ds=ds: reference_limits(n, ds))
                 po, pe = res["observed"][0], res["expected"][0]
                 worst = max(worst, abs(po / ro - 1), abs(pe / re_ - 1))
                 print(f"spectrum {index} signal {signal:3d} scale {ds:.2f}: observed "

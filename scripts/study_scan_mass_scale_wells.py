@@ -28,14 +28,23 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import time
 
 import numpy as np
 from iminuit import Minuit
 
 # the spectra and shapes of the limits' study (one definition for both)
-from study_mass_scale_wells import D_RES, EDGES, MASS, SIGMA, WINDOW, exponential, gauss
+from study_mass_scale_wells import (
+    D_RES,
+    EDGES,
+    MASS,
+    SIGMA,
+    WINDOW,
+    cached,
+    exponential,
+    gauss,
+    load_cache,
+)
 from study_mass_scale_wells import Reference as LimitsReference
 
 from peaksift.likelihood import SignalNuisances
@@ -166,10 +175,7 @@ def main() -> None:
     ap.add_argument("--cache", default="scan_mass_scale_wells.json")
     ap.add_argument("--out", default=None, help="peaksift's values per toy (JSON)")
     a = ap.parse_args()
-    cache = {}
-    if os.path.exists(a.cache):
-        with open(a.cache) as fh:
-            cache = json.load(fh)
+    cache = load_cache(a.cache)
     out = {}
     for ds in map(float, a.scales.split(",")):
         nuis = SignalNuisances.make({"mass_scale": ds, "mass_resolution": D_RES})
@@ -185,11 +191,8 @@ def main() -> None:
             refs = []
             for i, n, c in zip(idx, counts, cens):
                 key = f"{ds}/{signal}/{i}"
-                if key not in cache:
-                    cache[key] = reference(n, ds, tuple(c))
-                    with open(a.cache, "w") as fh:
-                        json.dump(cache, fh)
-                refs.append(cache[key])
+                refs.append(cached(cache, a.cache, key,
+                                   lambda n=n, ds=ds, c=c: reference(n, ds, tuple(c))))
             r0 = np.array([r["q0"] for r in refs])
             rmu = np.array([r["q_mu"] for r in refs])
             out[f"{ds}/{signal}"] = {"q0": q0.tolist(), "q_mu": q_mu.tolist(),

@@ -42,7 +42,10 @@ def _counts(seed: int) -> np.ndarray:
                        ).astype(float)
 
 
-def _profile(n: np.ndarray, w: float, b1_free: bool, masses) -> Minuit:
+def _profile(n: np.ndarray, w: float, b1_free: bool, masses, a0: float = 300.0,
+             b1: float = B1) -> Minuit:
+    """iminuit's profile at width ``w`` (the lowest from ``masses``), the signal yield
+    started at ``a0`` and bounded to its sign (a deficit's below 0)."""
     def cost(m, a, b, b1):
         mu = a * gauss_fractions(m, w) + b * exp_fractions(b1)
         if not np.all(mu > 0):  # also NaN
@@ -51,9 +54,11 @@ def _profile(n: np.ndarray, w: float, b1_free: bool, masses) -> Minuit:
 
     best = None
     for m0 in masses:
-        mi = Minuit(cost, m=m0, a=300.0, b=float(n.sum()) - 300.0, b1=B1)
+        mi = Minuit(cost, m=m0, a=a0, b=float(n.sum()) - a0, b1=b1)
         mi.errordef = 0.5
         mi.limits["m"] = (LO, HI)
+        if a0 < 0:
+            mi.limits["a"] = (None, 0.0)
         mi.fixed["b1"] = not b1_free
         mi.strategy, mi.tol = 2, 1e-6
         mi.migrad()
@@ -153,27 +158,8 @@ def test_a_dips_start_goes_to_the_lowest_wider_width():
     assert found is not None
     factor, y, _, mass = found
 
-    def profile(w: float) -> Minuit:
-        def cost(m, a, b, c):
-            mu = a * gauss_fractions(m, w) + b * exp_fractions(c)
-            if not np.all(mu > 0):  # also NaN
-                return 1e30
-            return float(np.sum(mu - n * np.log(mu)))
-
-        best = None
-        for m0 in (197.0, HI - w, HI - 0.1):
-            mi = Minuit(cost, m=m0, a=-30.0, b=btot, c=b1)
-            mi.errordef = 0.5
-            mi.limits["m"] = (LO, HI)
-            mi.limits["a"] = (None, 0.0)
-            mi.strategy, mi.tol = 2, 1e-6
-            mi.migrad()
-            if mi.valid and (best is None or mi.fval < best.fval):
-                best = mi
-        assert best is not None
-        return best
-
-    ref = {f: profile(1.25 * f) for f in OTHER_FACTORS[OTHER_FACTORS >= 1.0].tolist()}
+    ref = {f: _profile(n, 1.25 * f, True, (197.0, HI - 1.25 * f, HI - 0.1), -30.0, b1)
+           for f in OTHER_FACTORS[OTHER_FACTORS >= 1.0].tolist()}
     lowest = min(r.fval for r in ref.values())
     at = ref[factor]
     assert at.fval <= lowest + 0.05, (factor, at.fval, lowest)
