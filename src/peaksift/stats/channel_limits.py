@@ -168,9 +168,11 @@ class _Profiled:
     does not recover: a fit that ends above the NLL of the background-only fits' point at
     this sigma x B is redone from there (never the case otherwise)."""
 
-    def __init__(self, models, counts, fractions, conv, norms=None, shapes=None) -> None:
+    def __init__(self, models, counts, fractions, conv, norms=None, shapes=None,
+                 memo=None) -> None:
         self.models, self.counts, self.fractions, self.conv = models, counts, fractions, conv
         self.norms, self.nu, self.shapes = norms, None, shapes
+        self.memo = {} if memo is None else memo   # joint_global's, shared by the problems
         self.theta0 = [np.repeat(m.theta[None, :], fractions[0].shape[0], axis=0)
                        for m in models]
         self.b0 = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
@@ -187,7 +189,7 @@ class _Profiled:
             return one()
         # each channel's mass scale at its lowest well (joint_wells), else the one fit
         return joint_global(one, self.models, self.counts, self.conv, self.shapes,
-                            mu_fixed=mu)
+                            mu_fixed=mu, memo=self.memo)
 
     def nll(self, mu: np.ndarray) -> np.ndarray:
         r = self._fit(mu, self.theta, self.b, self.nu)
@@ -289,12 +291,13 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     nm = m_all.size
     # the background-only Asimov data: each channel's envelope function at mu = 0
     fulls_all = [[_full_model(*t) for t in tr] for tr in triples]
+    memo: dict = {}   # the mass-scale scans' fractions, shared by every joint fit here
     fulls = [fulls_all[c][null[c]] for c in range(len(chans))]
     asimov = [f.expected_background for f in fulls]
     a_stack = _Envelope([_Profiled([fulls_all[c][f] for c, f in enumerate(combo)], asimov,
                                    [np.tile(fulls_all[c][f].fractions, (nb5, 1))
                                     for c, f in enumerate(combo)],
-                                   [np.tile(k, nb5) for k in conv], norms, sp_exp)
+                                   [np.tile(k, nb5) for k in conv], norms, sp_exp, memo)
                          for combo in combos], pens)
     env_a0 = _null_two_nll([[float(fit_background(f, a[None, :])[2][0]) for f in fa]
                             for fa, a in zip(fulls_all, asimov)], counts, penalties)
@@ -317,7 +320,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                 lambda models=models, **kw: profile_joint(
                     models, [m.counts for m in models], [m.fractions for m in models], ck,
                     steps=100, norms=norms, shapes=sp_obs, **kw),
-                models, [m.counts for m in models], ck, sp_obs)
+                models, [m.counts for m in models], ck, sp_obs, memo=memo)
             nll_zero = sum(m.nll_background for m in models)
             two_hat = 2.0 * np.minimum(free["nll"], nll_zero) + pen
             two_zero = 2.0 * nll_zero + pen
@@ -328,9 +331,9 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                 hat = np.minimum(hat, two_hat)
                 env_zero = min(env_zero, two_zero)
             probs_o.append(_Profiled(models, [m.counts for m in models],
-                                     [m.fractions for m in models], ck, norms, sp_obs))
+                                     [m.fractions for m in models], ck, norms, sp_obs, memo))
             probs_s.append(_Profiled(models, used_asimov, [m.fractions for m in models], ck,
-                                     norms, sp_obs))
+                                     norms, sp_obs, memo))
         prob_o, prob_s = _Envelope(probs_o, pens), _Envelope(probs_s, pens)
         env_u0 = _null_two_nll([[float(fit_background(t[0], a[None, :])[2][0]) for t in tr]
                                 for tr, a in zip(triples, used_asimov)], counts, penalties)
