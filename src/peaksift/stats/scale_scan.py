@@ -12,6 +12,8 @@ Which piece when
   (:func:`peaksift.stats.shape_profile.refine_toy_points`) use it.
 * :func:`several_minima_note` -- the results' note where the lowest well was not the nearest.
 * :func:`needs_scan` -- which hypotheses those are.
+* :func:`other_well` -- whether two fits' mass-scale factors lie in different wells (the
+  combination's note, :mod:`.joint_wells`).
 
 Why
 ---
@@ -52,8 +54,8 @@ from ..likelihood import SignalNuisances
 from .shape_profile import _fractions, profile_with_nuisances
 from .toys import ScanModel, bkg_fractions
 
-__all__ = ["asimov_band_note", "needs_scan", "peak_width", "profile_global",
-           "several_minima_note"]
+__all__ = ["DIFFERENT", "asimov_band_note", "needs_scan", "other_well", "peak_width",
+           "profile_global", "several_minima_note"]
 
 #: the scan runs where this many standard deviations of the mass scale exceed the width
 _REACH = 3.0
@@ -74,7 +76,7 @@ _CHUNK = 2_000_000
 #: (a scan of a few hundred masses: ~60 MB)
 _MEMO_BYTES = 256_000_000
 #: a start other than the centre's counts as a different minimum when lower by this (NLL)
-_DIFFERENT = 1e-3
+DIFFERENT = _DIFFERENT = 1e-3
 
 
 def _column(params: Sequence[Any], names: Sequence[str], name: str, nb: int) -> np.ndarray:
@@ -101,6 +103,20 @@ def needs_scan(signal: Any, base: Sequence[Any], nuisances: SignalNuisances,
         return np.zeros(nb, bool)
     mass = _column(base, signal.parameter_names, "mass", nb)
     return _REACH * nuisances.mass_scale * np.abs(mass) > peak_width(signal, base, nb)
+
+
+def other_well(signal: Any, base: Sequence[Any], nuisances: SignalNuisances,
+               factors_a: np.ndarray, factors_b: np.ndarray) -> np.ndarray:
+    """Per hypothesis whether the mass-scale factors of two fits ``(B, J)`` are further
+    apart than the scan's grid step (half the peak's width in mass): two wells of the
+    profile, not one well reached twice (False without a mass scale)."""
+    nb = np.asarray(factors_a).shape[0]
+    if "mass_scale" not in nuisances.shape_active:
+        return np.zeros(nb, bool)
+    jm = nuisances.shape_active.index("mass_scale")
+    mass = _column(base, signal.parameter_names, "mass", nb)
+    gap = np.abs(np.asarray(factors_a, float)[:, jm] - np.asarray(factors_b, float)[:, jm])
+    return gap * np.abs(mass) > _STEP * peak_width(signal, base, nb)
 
 
 def _band(f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
