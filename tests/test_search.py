@@ -286,6 +286,45 @@ def test_summary_printed(run):
     assert str(run["out"]) in out
 
 
+def test_outputs_name_the_fit_of_each_model(run):
+    """Which fit a model and a number come from: the summary, report.html's Result table,
+    results.json ``models`` and the spectrum figure's box name the scan's model ("scan:
+    ...", with the envelope of [systematics] its significances profile) and the free fit's
+    ("free fit: ..."), built from search.toml read here with tomllib: the scan's signal is
+    a Gaussian of the resolution's width (``scan.signal`` empty and no natural width: the
+    documented default, docs/config.md), the free fit's ``model.signal``; both take
+    ``model.background``; the envelope holds one order of each configured family."""
+    import tomllib
+    from matplotlib.text import Text
+
+    from peaksift.search import SearchResult
+
+    cfg = tomllib.loads(CONFIG.read_text())
+    bkg = cfg["model"]["background"]
+    env = run["results"]["models"]["scan"]["envelope"]
+    families = cfg["systematics"]["background_families"]
+    assert len(env) == len(families)
+    assert all(e.startswith(f) for e, f in zip(env, families))
+    scan = (f"scan: gaussian + {bkg}; with systematics gaussian + the envelope of "
+            f"{', '.join(env)} (best mass, significances, limits)")
+    free = f"free fit: {cfg['model']['signal']} + {bkg}"
+    lines = [ln.split(None, 1) for ln in run["stdout"].splitlines()]
+    assert ["model", scan] in lines
+    assert ["model", f"{free} (fitted mass, width and yields)"] in lines
+    html = (run["out"] / "report.html").read_text()
+    result = html[html.index("<h2>Result</h2>"):]
+    result = result[:result.index("</table>")]
+    assert f"<td>Model</td><td>{scan}</td>" in result
+    assert f"<td>Model</td><td>{free} (fitted mass, width and yields)</td>" in result
+    models = run["results"]["models"]
+    assert models["free_fit"] == {"fit": "free fit", "signal": [cfg["model"]["signal"]],
+                                  "background": bkg}
+    assert (models["scan"]["fit"], models["scan"]["background"]) == ("scan", bkg)
+    fig = SearchResult.from_dict(run["results"]).plot(which="spectrum")
+    texts = "\n".join(t.get_text() for t in fig.findobj(Text))
+    assert free in texts.replace(":\n", ": ")
+
+
 def test_readme_summary_is_this_run(run):
     """The README prints the demo's summary; it must be what the demo search prints, line
     for line (only the output folder differs), so a change of the demo's numbers updates it."""

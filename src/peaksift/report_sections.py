@@ -32,6 +32,7 @@ from ._format import (
     p_value,
     significance,
 )
+from ._vocabulary import FITS, model_text
 
 CAUTION = (
     "A local significance is not a discovery. The numbers here come from one dataset and the "
@@ -118,6 +119,18 @@ def num_text(x: Any, digits: int = 4) -> str:
     return number(x, digits)
 
 
+def fitted_text(fit: Mapping[str, Any], key: str, unit: str = "") -> str:
+    """A fitted number of results.json ``fit`` (``peak_mass``, ``width``, ``signal_yield``,
+    ...) as the fit figure's table and the summary quote it: its profile-likelihood interval
+    where the fit has one, else value ± error."""
+    par = {"peak_mass": "mass", "width": fit.get("width_parameter") or "width"}.get(key, key)
+    iv = (fit.get("intervals") or {}).get(par)
+    value, error = value_error(fit.get(key))
+    if iv:
+        return format_interval(value, *iv, unit)
+    return format_pm(value, error, unit)
+
+
 def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None:
     """The fitted mass, width and yield rows with their profile-likelihood intervals where
     the fit has them, and a row saying what the fit held, constrained or bounded."""
@@ -171,6 +184,38 @@ def value_error(d: Any) -> tuple[Any, Any]:
     return d, None
 
 
+# ------------------------------------------------------------------------------ models
+def fit_models(r: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
+    """The models of the scan and of the free fit in a results dictionary (results.json
+    ``models``; for a file written before that entry, rebuilt from the scan's and the fit's
+    own entries): ``{"scan": {"fit": "scan", "signal": ..., "background": ...,
+    "envelope": [...] with systematics}, "free_fit": {...}}`` (no free fit while blinded)."""
+    if isinstance(r.get("models"), Mapping) and r["models"]:
+        return {k: dict(v) for k, v in r["models"].items() if isinstance(v, Mapping)}
+    out: dict[str, dict[str, Any]] = {}
+    scan, fit = r.get("scan") or {}, r.get("fit") or {}
+    if scan.get("signal_shape"):
+        out["scan"] = {"fit": FITS["scan"][0], "signal": str(scan["signal_shape"]),
+                       "background": str(scan.get("background_shape"))}
+        env = (((r.get("systematics") or {}).get("envelope") or {}).get("labels"))
+        if env:  # the significances with systematics profile the background function
+            out["scan"]["envelope"] = [str(x) for x in env]
+    if fit.get("signal_shapes"):
+        out["free_fit"] = {"fit": FITS["free_fit"][0], "signal": list(fit["signal_shapes"]),
+                           "background": str(fit.get("background_shape"))}
+    return out
+
+
+def models_text(r: Mapping[str, Any], fits: Sequence[str] = ("scan", "free_fit"), *,
+                gives: bool = True) -> list[str]:
+    """The models of ``fits`` (the scan's and the free fit's) as the report and the summary
+    name them (:func:`peaksift._vocabulary.model_text`), each with the numbers it gives."""
+    models = fit_models(r)
+    return [model_text(k, m.get("signal", "n/a"), m.get("background", "n/a"),
+                       envelope=m.get("envelope") or (), gives=gives)
+            for k in fits if (m := models.get(k))]
+
+
 # ------------------------------------------------------------------------------ blocks
 #: one piece of a report: ("h2"|"h3"|"p"|"caution", text), ("table", head, rows),
 #: ("list", items), ("figure", name, caption)
@@ -189,7 +234,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     bl = r.get("blinding") or {}
     # with [systematics] the headline numbers are the profiled ones: say so where they stand
     tag = " (with systematics)" if r.get("systematics") else ""
-    rows = [
+    rows = [("Model", text) for text in models_text(r)] + [
         ("Best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"),
         ("Local significance" + tag, significance(best, "local")),
         ("Global significance" + tag, significance(best, "global")),

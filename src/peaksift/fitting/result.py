@@ -392,15 +392,16 @@ class FitResult(FrozenValue):
 
     def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
              run: Any = None, symbol: str | None = None, note: str = "",
-             log: bool = False) -> Any:
+             log: bool = False, kind: str = "free_fit") -> Any:
         """Data, total model, signal and background, with pulls underneath and the fitted
         numbers in a table; returns a matplotlib Figure drawn without pyplot (the user's
         backend is left alone).  ``fig``: draw on this empty Figure instead; ``run``: a
         run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``); ``log``: a
-        logarithmic count axis.  See
+        logarithmic count axis; ``kind``: which fit this is (``"free_fit"``, ``"calibration"``:
+        the table's title names the model so).  See
         :func:`peaksift.fitting.figure.fit_figure`."""
         from .figure import fit_figure
 
         return fit_figure(self, path, title=title, fig=fig, run=run, symbol=symbol,
-                          note=note, log=log)
+                          note=note, log=log, kind=kind)
 

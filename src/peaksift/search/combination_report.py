@@ -14,8 +14,10 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from .._format import fixed, format_pm, mass_text, number, p_value
+from .._format import fixed, mass_text, number, p_value
+from .._vocabulary import FITS
 from ..report import CAUTION, blocks_html, blocks_markdown
+from ..report_sections import fitted_text, models_text
 from ..stats.envelope_choice import read_channel_entries
 from .doubts import doubtful_limits_note
 
@@ -41,14 +43,12 @@ def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
     """One row of the channels table from a channel's results.json dict."""
     best = r.get("best") or {}
     fit = r.get("fit") or {}
-    peak = fit.get("peak_mass") or {}
     lim = r.get("limits") or {}
     exp = [v for v in (lim.get("expected") or []) if v is not None]
     eff = (r.get("signal_model") or {}).get("points", {}).get("efficiency", {}).get("value")
     return [name, mass_text(best.get("mass")), _m(best.get("z_local")),
             p_value(best.get("p_local")), _m(best.get("z_global")),
-            format_pm(peak.get("value"), peak.get("error"))
-            + ("" if fit.get("valid", True) else " (fit NOT valid)"),
+            fitted_text(fit, "peak_mass") + ("" if fit.get("valid", True) else " (fit NOT valid)"),
             f"{_m(min(exp))}-{_m(max(exp))} {lim.get('unit', '')}" if exp else "n/a",
             "from samples" if eff else "given"]
 
@@ -63,8 +63,7 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
     window = scan.get("window") or []
     rows = [["search window", f"{_m(window[0])}-{_m(window[1])} GeV" if window
              else "n/a"],
-            ["signal / background model", (f"{scan.get('signal_shape', 'n/a')} / "
-             f"{scan.get('background_shape', 'n/a')}")],
+            *(["model", text] for text in models_text(r)),
             ["best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"],
             ["local significance", (f"{_m(best.get('z_local'))} σ "
              f"(p = {p_value(best.get('p_local'))})")],
@@ -72,9 +71,8 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
              f"(p = {p_value(best.get('p_global'))})")]]
     for key, label in (("peak_mass", "fitted peak mass [GeV]"),
                        ("signal_yield", "fitted signal events")):
-        v = fit.get(key) or {}
-        if v:
-            rows.append([label, format_pm(v.get("value"), v.get("error"))])
+        if fit.get(key):
+            rows.append([label, fitted_text(fit, key)])
     if fit and not fit.get("valid", True):
         rows.append(["fit status", "NOT valid: " + "; ".join(str(p) for p in
                                                        fit.get("problems") or [])])
@@ -133,7 +131,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                     "discovery).")))
     out += [("h2", "Channels"),
             ("table", ["channel", "best mass [GeV]", "Z local", "p local", "Z global",
-                       "fitted mass [GeV]", "expected limits", "efficiency"],
+                       f"{FITS['free_fit'][0]} mass [GeV]", "expected limits", "efficiency"],
              [channel_rows(n, r) for n, r in d["channels"].items()]),
             ("p", ("Each channel's numbers are those of its own search (its own configuration "
              "run alone gives the same)."))]
@@ -192,7 +190,8 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
     for n, r in d["channels"].items():
         b = r.get("best") or {}
         lines.append(f"  {n:<26} best {mass_text(b.get('mass'))} GeV, "
-                     f"Z_local {_m(b.get('z_local'))}")
+                     f"Z_local {_m(b.get('z_local'))}"
+                     + "".join(f" ({t})" for t in models_text(r, ["scan"], gives=False)))
     doubtful = [n for n, r in d["channels"].items()
                 if (r.get("signal_model") or {}).get("doubtful")]
     if doubtful:

@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 
 from ..config import Config
+from ..report_sections import fit_models
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
 from .doubts import doubts
 
@@ -251,6 +252,12 @@ class SearchResult:
         return list(self.to_dict()["warnings"])
 
     @property
+    def models(self) -> dict[str, dict[str, Any]]:
+        """The models of the scan and of the free fit, each with the name of its fit
+        (results.json ``models``; every output names them so)."""
+        return dict(self.to_dict()["models"])
+
+    @property
     def outputs(self) -> dict[str, Any] | None:
         """Where the files went (results.json ``outputs``); None without an output folder."""
         return self.to_dict().get("outputs")
@@ -391,6 +398,7 @@ class SearchResult:
         }
         if self.signal_model is not None:  # absent without [signal_model]: today's keys
             out["signal_model"] = self.signal_model.to_dict()
+        out["models"] = fit_models(out)  # which fit each number comes from, by name
         out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),

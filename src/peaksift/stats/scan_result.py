@@ -156,11 +156,13 @@ class ScanResult(FrozenValue):
     def _repr_html_(self) -> str:
         import html
 
+        from .._vocabulary import model_text
+
         b = self.best
         rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>" for k, v in (
             ("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
                        f"{self.unit}")),
-            ("model", f"{self.signal_shape} + {self.background_shape}"),
+            ("model", model_text("scan", self.signal_shape, self.background_shape)),
             ("best mass", f"{b['mass']:.2f} {self.unit}"),
             ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
             ("blinded", "no" if self.blind is None else
