@@ -106,6 +106,20 @@ def test_html_is_self_contained_and_parses(tmp_path):
     assert "155.20 ± 0.31 GeV" in text
 
 
+def test_a_number_in_a_narrow_column_is_not_broken_across_lines():
+    """A p-value such as 1.61e-05 in a narrow numeric column stays on one line (a browser
+    otherwise breaks it after the exponent's hyphen, CSS Text Level 3, 5.2: "1.61e-" over
+    "05"): numeric cells are right-aligned and not wrapped."""
+    import re
+
+    from peaksift.report import blocks_html
+
+    page = blocks_html("t", [("table", ["mass", "p local"], [["152.45", "1.61e-05"]])], {})
+    assert '<td class="num">1.61e-05</td>' in page
+    rule = re.search(r"td\.num\{([^}]*)\}", page).group(1)
+    assert "white-space:nowrap" in rule.replace("\n", "") and "text-align:right" in rule
+
+
 def test_markdown_has_tables_caution_and_figure_links(tmp_path):
     md = render_markdown(_results(), {"spectrum": "figures/spectrum.png"})
     assert md.count(CAUTION) >= 2
