@@ -124,6 +124,9 @@ def test_markdown_has_tables_caution_and_figure_links(tmp_path):
     md = render_markdown(_results(), {"spectrum": "figures/spectrum.png"})
     assert md.count(CAUTION) >= 2
     assert "![spectrum](figures/spectrum.png)" in md
+    # the figure draws the free fit, whose mass floats away from the hypothesis it started at
+    caption = md.split("![spectrum](figures/spectrum.png)")[1].split("\n\n")[1]
+    assert "free fit" in caption and "at the best mass hypothesis, its" not in caption
     assert "| Local significance | 3.90 σ (p = 4.80e-05) |" in md
     assert "upcrossings" in md
     assert "| events | 1,000 |" in md  # one number format: the command line's

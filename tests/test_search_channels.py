@@ -202,6 +202,7 @@ def test_combined_outputs_name_the_fit_of_each_model_and_number(combined, demo_d
         assert f"<td>model</td><td>{scan} (best mass, significances, limits)</td>" in table
         assert f"<td>model</td><td>{free} (fitted mass, width and yields)</td>" in table
         assert any(ln.split()[0] == name and ln.endswith(f"({scan})") for ln in summary)
+        assert f"Channel {name}: mass spectrum with the free fit." in html
         models = d["channels"][name]["models"]
         assert (models["scan"]["fit"], models["scan"]["signal"]) == ("scan",
                                                                      cfg["signal_model"]["shape"])

@@ -42,8 +42,9 @@ CAUTION = (
 
 # figure name -> caption, in report order
 CAPTIONS = {
-    "spectrum": "Selected mass spectrum with the signal-plus-background fit at the best mass "
-                "hypothesis, its signal component, and the pulls (data - fit) / error per bin.",
+    "spectrum": f"Selected mass spectrum with the {FITS['free_fit'][0]} (signal plus "
+                "background, started at the best mass hypothesis: its own fitted mass is in "
+                "its box), its signal component, and the pulls (data - fit) / error per bin.",
     "spectrum_log": "The same spectrum on a logarithmic scale.",
     "pvalue_scan": "Local p-value of the background-only hypothesis at each mass hypothesis, "
                    "with the whole-sigma levels (1 to 5) that fall in the axis range and the "

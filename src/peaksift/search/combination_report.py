@@ -137,7 +137,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
              "run alone gives the same)."))]
     for n, r in d["channels"].items():
         out += _channel_table(n, r)
-        for key, what in (("spectrum", "mass spectrum with the fit"),
+        for key, what in (("spectrum", f"mass spectrum with the {FITS['free_fit'][0]}"),
                           ("pvalue_scan", "local p-value scan")):
             if f"{n}/{key}" in fig:
                 out.append(("figure", f"{n}/{key}", f"Channel {n}: {what}."))
