@@ -376,10 +376,13 @@ class FitResult(FrozenValue):
     def _repr_html_(self) -> str:
         status = ("<b>valid</b>" if self.valid else
                   "<b>INVALID</b>: " + html.escape("; ".join(self.problems)))
+        # value and error as the repr, the report and the figure round them (two significant
+        # digits of the error), not a value with more digits than its error carries
+        parts = {n: format_value(self.values[n], self.errors[n]).partition(" \u00b1 ")
+                 for n in self.parameters}
         rows = "".join(
-            f"<tr><td>{html.escape(n)}</td><td>{self.values[n]:.6g}</td>"
-            f"<td>{self.errors[n]:.3g}</td><td>{'fixed' if n in self.fixed else ''}</td></tr>"
-            for n in self.parameters)
+            f"<tr><td>{html.escape(n)}</td><td>{parts[n][0]}</td><td>{parts[n][2]}</td>"
+            f"<td>{'fixed' if n in self.fixed else ''}</td></tr>" for n in self.parameters)
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
         return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
                 f"({html.escape(self.binned_reason)}); GoF chi2/ndf = {self.gof_chi2:.1f}/"
