@@ -325,6 +325,29 @@ def test_outputs_name_the_fit_of_each_model(run):
     assert free in texts.replace(":\n", ": ")
 
 
+def test_notebook_repr_quotes_the_free_fit_as_the_summary_does(run):
+    """SearchResult's repr and notebook table name the free fit and quote its mass and
+    yield with their profile-likelihood intervals, as the summary, the report and the
+    figure do (they said 152.8 ± 1.6 beside the summary's 152.8 +1.5 -1.7); the interval
+    rounded here to two significant digits of the smaller error (common practice)."""
+    import math
+
+    from peaksift.search import SearchResult
+
+    res = SearchResult.from_dict(run["results"])
+    fit = run["results"]["fit"]
+    for key, par, unit in (("peak_mass", "mass", " GeV"), ("signal_yield", "signal_yield", "")):
+        lo, hi = fit["intervals"][par]
+        dec = max(0, 1 - math.floor(math.log10(min(-lo, hi))))
+        v = fit[key]["value"]
+        want = f"{v:,.{dec}f} +{hi:.{dec}f} -{-lo:.{dec}f}{unit}"
+        label = "free fit mass" if key == "peak_mass" else "free fit signal yield"
+        assert f"{label} {want};" in repr(res)
+        assert f"<td>{label}</td><td>{want}</td>" in res._repr_html_()
+    line = next(ln for ln in run["stdout"].splitlines() if ln.strip().startswith("fitted mass"))
+    assert line.split(None, 2)[2] in repr(res)
+
+
 def test_readme_summary_is_this_run(run):
     """The README prints the demo's summary; it must be what the demo search prints, line
     for line (only the output folder differs), so a change of the demo's numbers updates it."""

@@ -9,8 +9,9 @@ from typing import Any
 
 import numpy as np
 
+from .._vocabulary import FITS
 from ..config import Config
-from ..report_sections import fit_models
+from ..report_sections import fit_models, fitted_text
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
 from .doubts import doubts
 
@@ -208,9 +209,10 @@ class SearchResult:
         rows = [("best mass", f"{mass_text(b.get('mass'))} GeV"),
                 ("local", significance(b, "local")),
                 ("global", significance(b, "global"))]
-        if self.fit is not None:
-            rows += [("fitted mass", f"{self.fit.peak_mass} GeV"),
-                     ("signal yield", str(self.fit.signal_yield))]
+        if self.fit is not None:  # as the summary quotes them: intervals where made
+            fit, free = _fit_dict(self.fit), FITS["free_fit"][0]
+            rows += [(f"{free} mass", fitted_text(fit, "peak_mass", "GeV")),
+                     (f"{free} signal yield", fitted_text(fit, "signal_yield"))]
         elif (self.blinding or {}).get("active"):
             rows.append(("fit", "not made: blinded as configured"))
         if self.limits is not None:
