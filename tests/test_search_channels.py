@@ -230,6 +230,72 @@ def test_combined_outputs_name_the_fit_of_each_model_and_number(combined, demo_d
         assert value_cell in texts and error_cell in texts, (want, texts)
 
 
+@pytest.mark.slow
+def test_combined_report_and_summary_carry_every_channel_warning(combined):
+    """A channel's doubt reaches the combination's readers: the dielectron free fit of the
+    demo ends at the window's edge (mass at its bound 110 GeV, results.json ``fit.valid``
+    false), and its warning heads report.html and prints in the summary, named by its
+    channel (the combination printed nothing of it)."""
+    from peaksift.search.combination_report import combination_summary_text
+
+    _, out = combined
+    d = json.loads((out / "results.json").read_text())
+    fit = d["channels"]["dielectron"]["fit"]
+    assert not fit["valid"] and fit["peak_mass"]["value"] == pytest.approx(110.0, abs=0.5)
+    html = (out / "report.html").read_text()
+    summary = combination_summary_text(d)
+    assert html.index("<h2>Warnings</h2>") < html.index("<h2>Combination</h2>")
+    for name, r in d["channels"].items():
+        for w in r["warnings"]:
+            assert f"<li>Warning: {name}: {w['message']}</li>" in html.replace("&#x27;", "'")
+            if w["topic"] != "signal_model":  # those have their own summary line
+                assert f"  WARNING: {name}: {w['message']}" in summary
+    assert any(w["topic"] == "fit" for w in d["channels"]["dielectron"]["warnings"])
+
+
+@pytest.mark.slow
+def test_combined_report_shows_every_figure_it_wrote(combined):
+    """Every figure the combination writes (results.json ``outputs.figures``: the channels'
+    limits, candidates, calibration and signal model too, not only their spectra and
+    p-values) is in report.html, with a caption in words, and in report.md."""
+    import re
+
+    _, out = combined
+    d = json.loads((out / "results.json").read_text())
+    figures = d["outputs"]["figures"]
+    assert {"dimuon/limits", "dimuon/calibration", "dielectron/signal_model_shapes"} <= set(
+        figures)
+    html = (out / "report.html").read_text()
+    shown = re.findall(r'<img alt="([^"]+)" src="data:image/png;base64,', html)
+    assert sorted(shown) == sorted(figures)
+    captions = re.findall(r"<figcaption>([^<]*)</figcaption>", html)
+    assert all(" " in c and not c.endswith(("_parameters", "_shapes")) for c in captions)
+    md = (out / "report.md").read_text()
+    assert all(f"]({path})" in md for path in figures.values())
+
+
+@pytest.mark.slow
+def test_combined_cross_section_is_quoted_with_its_error(combined):
+    """The combination's fitted sigma x B at the best mass is quoted with its error, in the
+    report and the notebook repr (it read "3.08 fb" alone): value ± error rounded to two
+    significant digits of the error (common practice).  The error is the one Wald's
+    approximation gives from the scan's own q0 = (mu_hat / sigma)^2 (Cowan, Cranmer, Gross,
+    Vitells, EPJC 71 (2011) 1554, eq. 12-13 and section 3.1) within 20% (a Poisson
+    likelihood at 3 sigma is not quite Gaussian)."""
+    import math
+
+    res, out = combined
+    c = json.loads((out / "results.json").read_text())["combination"]
+    i = c["best_index"]
+    mu, err, q0 = c["cross_section"][i], c["cross_section_error"][i], c["q0"][i]
+    assert err == pytest.approx(mu / math.sqrt(q0), rel=0.2)
+    dec = max(0, 1 - math.floor(math.log10(err)))
+    want = f"{mu:.{dec}f} ± {err:.{dec}f} {c['unit']}"
+    html = (out / "report.html").read_text()
+    assert f"<td>fitted sigma x B at the best mass</td><td>{want}</td>" in html
+    assert f"sigma x B = {want})" in repr(res.combination)
+
+
 def test_sample_masses_from_the_per_event_truth_column(dimuon, demo_dir):
     """signal_model.mass_column = "true_mass": each sample's mass is the median of the
     generator's per-event true mass, which equals the generated mass in truth.json

@@ -72,6 +72,17 @@ CAPTIONS = {
             "resolution at the reference number of samples).",
 }
 
+# captions of the figures no section places (drawn at the end of the report, in this order
+# after those a caller added under other names)
+OTHER_CAPTIONS = {
+    "signal_model_parameters": "Signal model from the simulated samples: each shape "
+                               "parameter and the efficiency x acceptance against the "
+                               "generated mass, with the polynomial the scan and the limits "
+                               "interpolate and its 1 sigma band.",
+    "signal_model_shapes": "The simulated samples' mass distributions with the shapes fitted "
+                           "to them.",
+}
+
 # captions that differ while the run is blinded (no fit drawn, nothing shown inside)
 BLINDED_CAPTIONS = {
     "spectrum": "Selected mass spectrum while blinded: the bins overlapping the blinded window "
@@ -387,7 +398,8 @@ def _provenance_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
 
 def section_other_figures(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     """Figures no section placed (added by callers), so none is silently dropped."""
-    return [("figure", name, name) for name in fig if name not in CAPTIONS]
+    return [("figure", name, OTHER_CAPTIONS.get(name, name)) for name in fig
+            if name not in CAPTIONS]
 
 
 def section_provenance(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:

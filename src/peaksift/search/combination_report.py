@@ -14,10 +14,16 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from .._format import fixed, mass_text, number, p_value
+from .._format import fixed, format_pm, mass_text, number, p_value
 from .._vocabulary import FITS
 from ..report import CAUTION, blocks_html, blocks_markdown
-from ..report_sections import fitted_text, models_text
+from ..report_sections import (
+    CAPTIONS,
+    OTHER_CAPTIONS,
+    fitted_text,
+    models_text,
+    section_warnings,
+)
 from ..stats.envelope_choice import read_channel_entries
 from .doubts import doubtful_limits_note
 
@@ -88,6 +94,22 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
     return [("h3", f"Channel {name}"), ("table", ["quantity", "value"], rows)]
 
 
+def _channel_warnings(d: Mapping[str, Any]) -> list[dict[str, str]]:
+    """Every channel's doubts (its results.json ``warnings``), each named by its channel."""
+    return [{"topic": str(w.get("topic")), "message": f"{n}: {w.get('message')}"}
+            for n, r in d["channels"].items() for w in r.get("warnings") or []
+            if isinstance(w, Mapping)]
+
+
+def _cross_section_text(c: Mapping[str, Any]) -> str:
+    """The combined fit's sigma x B at the best mass with its error (results.json
+    ``combination``: ``cross_section_error`` at ``best_index``)."""
+    best = c.get("best") or {}
+    errors, i = c.get("cross_section_error") or [], c.get("best_index")
+    error = errors[i] if isinstance(i, int) and 0 <= i < len(errors) else None
+    return format_pm(best.get("cross_section"), error, str(c.get("unit") or ""))
+
+
 def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None = None
                        ) -> list[Any]:
     """The combination's report as blocks (``d`` is its results.json)."""
@@ -96,7 +118,9 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
     g = d.get("best") or {}
     best = c.get("best") or {}
     out: list[Any] = [("h1", f"Combined search: {', '.join(d['channels'])}"),
-                      ("caution", CAUTION), ("h2", "Combination"),
+                      ("caution", CAUTION),
+                      *section_warnings({"warnings": _channel_warnings(d)}, fig),
+                      ("h2", "Combination"),
                       ("p", ("One cross-section x branching fraction shared by every channel; the "
                        "likelihood is the product of the channels' (each with its own "
                        "background, signal model, efficiency and luminosity), with the "
@@ -107,8 +131,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
             ["global significance", (f"{_m(g.get('z_global'))} σ "
              f"(p = {p_value(g.get('p_global'))}, {g.get('global_method', 'n/a')}; toys "
              "generate every channel)")],
-            ["fitted sigma x B at the best mass", (f"{_f(best.get('cross_section'))} "
-             f"{c.get('unit', '')}")]]
+            ["fitted sigma x B at the best mass", _cross_section_text(c)]]
     for name, v in (d.get("nuisances_at_best") or {}).items():
         if "shift_at_best" in v:
             rows.append([f"shape factor {name} (k - 1 at the best mass)",
@@ -141,6 +164,13 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                           ("pvalue_scan", "local p-value scan")):
             if f"{n}/{key}" in fig:
                 out.append(("figure", f"{n}/{key}", f"Channel {n}: {what}."))
+        # the channel's other figures written beside them (its own limits, candidates,
+        # calibration, signal model): none left out of the report
+        for key in fig:
+            sub = key.partition("/")[2]
+            if key.startswith(f"{n}/") and sub not in ("spectrum", "pvalue_scan"):
+                out.append(("figure", key, f"Channel {n}: "
+                            + CAPTIONS.get(sub, OTHER_CAPTIONS.get(sub, sub))))
     lim = d.get("limits")
     if lim:  # every mass: the point that matters is never the one a stride skips
         masses = lim["masses"]
@@ -197,6 +227,8 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
     if doubtful:
         lines.append(f"  signal model doubtful in   {', '.join(doubtful)} (see the report)")
     # the combined limits' notes that are warnings (as a search's limits warnings)
+    lines += [f"  WARNING: {w['message']}" for w in _channel_warnings(d)
+              if w["topic"] != "signal_model"]  # (the line above names those channels)
     lines += [f"  WARNING: combined limits: {note}"
               for note in (d.get("limits") or {}).get("notes") or []
               if doubtful_limits_note(note)]
