@@ -276,6 +276,24 @@ def _full_results() -> dict:
     return r
 
 
+def test_limit_method_is_named_in_words():
+    """The limits' method reads as what it does (docs/config.md, ``limits.method``: auto =
+    the asymptotic formulae, toys at the masses with few background events), in the report
+    and the limit figure's header, not as the bare key "auto"."""
+    from matplotlib.text import Text
+
+    from peaksift.stats.limit_result import LimitResult
+
+    r = _full_results()
+    assert r["limits"]["method"] == "auto"
+    md = render_markdown(r)
+    assert "CLs upper limits (asymptotic, toys at low counts)" in md and "(auto)" not in md
+    lim = LimitResult.from_dict(r["limits"])
+    texts = [t.get_text() for t in lim.plot().findobj(Text)]
+    assert any(t.startswith("CLs (asymptotic, toys at low counts)") for t in texts), texts
+    assert "(auto)" not in repr(lim)
+
+
 def test_report_has_every_limit_point_its_bands_and_the_assumptions(tmp_path):
     r = _full_results()
     lim = r["limits"]

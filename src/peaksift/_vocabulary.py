@@ -11,7 +11,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "UNREADABLE_FILES", "figure_wanted", "model_text"]
+__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "UNREADABLE_FILES", "figure_wanted", "method_words",
+           "model_text"]
 
 #: How :func:`peaksift.upper_limits` computes its CLs limits (``limits.method``):
 #: ``"auto"``       asymptotic formulae, and toys at the masses where the formulae misplace
@@ -19,6 +20,13 @@ __all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "UNREADABLE_FILES", "figure_wante
 #: ``"asymptotic"`` the formulae everywhere, such masses flagged in the result;
 #: ``"toys"``       as ``"auto"``, plus toys at chosen masses (``toy_masses``).
 LIMIT_METHODS: tuple[str, ...] = ("auto", "asymptotic", "toys")
+#: each of :data:`LIMIT_METHODS` in words, as the report and the limit figures name it (the
+#: bare "auto" told a reader nothing)
+LIMIT_METHOD_WORDS: dict[str, str] = {
+    "auto": "asymptotic, toys at low counts",
+    "asymptotic": "asymptotic",
+    "toys": "asymptotic, toys at low counts and at chosen masses",
+}
 
 #: What an input file that cannot be read does to a run (``execution.unreadable_files``,
 #: :func:`peaksift.execution.collect`'s ``unreadable_files``):
@@ -34,6 +42,11 @@ UNREADABLE_FILES: tuple[str, ...] = ("stop", "left_out")
 #: ``"all"`` (the default) and ``"none"`` stand alone.
 FIGURES: tuple[str, ...] = ("spectrum", "pvalue_scan", "limits", "candidates",
                             "background_envelope", "calibration", "dedx", "signal_model")
+
+
+def method_words(method: str) -> str:
+    """A limit method (:data:`LIMIT_METHODS`) in words; another name as it is."""
+    return LIMIT_METHOD_WORDS.get(method, method)
 
 
 def figure_wanted(selection: tuple[str, ...], name: str) -> bool:

@@ -30,6 +30,7 @@ from .._style import (
     plain_log_ticks,
     shade_blinded,
 )
+from .._vocabulary import method_words
 from .significance import p_from_q0
 
 __all__ = ["background_candidate_figure", "background_choice_figure",
@@ -146,7 +147,7 @@ def combined_limits_figure(lim: Any, path: Any = None, *, run: Any = None,
             rf"$\sigma \times B$ [{lim.unit}]"
         ax.set_ylabel(f"{lim.cl:.0%} CL upper limit on {what}")
         ax.legend(loc="upper right", ncol=2, fontsize=8.5)
-        note = f"combined CLs ({lim.method}) of {' + '.join(lim.channels)}"
+        note = f"combined CLs ({method_words(lim.method)}) of {' + '.join(lim.channels)}"
         if lim.nuisances:
             note += f";  profiled: {', '.join(lim.nuisances)}"
         draw_header(ax, run, note)
