@@ -346,6 +346,26 @@ def test_notebook_table_rounds_each_value_to_its_error():
         assert (value, error) == (f"{r.values[name]:.{dec}f}", f"{e:.{dec}f}"), name
 
 
+def test_repr_rounds_intervals_and_p_as_the_figure_does():
+    """The repr quotes a profile-likelihood interval rounded to two significant digits of its
+    smaller end (common practice; it gave -1.8/+2.47 for one parameter) and the goodness of
+    fit's p-value with the digits the fit figure's box shows (it gave 0.063 beside 0.0630)."""
+    import re
+
+    from matplotlib.text import Text
+
+    x = _toy(np.random.default_rng(16), 500, 4000)
+    r = fit(x, "gaussian", "exponential", W, intervals=["mass", "sigma"])
+    text = repr(r)
+    for name in ("mass", "sigma"):
+        lo, hi = r.intervals[name]
+        dec = max(0, 1 - math.floor(math.log10(min(-lo, hi))))
+        assert re.search(rf"\n  {name} +=.*  interval \+{hi:.{dec}f} -{-lo:.{dec}f}\n", text)
+    p = re.search(r"p = (\S+)$", text).group(1)
+    box = [t.get_text() for t in r.plot().findobj(Text)]
+    assert any(t.endswith(f"p = {p}") for t in box), (p, box)
+
+
 def test_model_expected_broadcasts_over_toys():
     """Model.expected with stacked parameters equals one call per parameter set; its
     gradient matches central differences."""

@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 
 from .. import shapes as _shapes
+from .._format import format_interval, p_value
 from .._json import finite as number
 from .._values import FrozenValue, Measurement
 from ..errors import FitError
@@ -359,15 +360,15 @@ class FitResult(FrozenValue):
         w = max(len(n) for n in self.parameters)
         for n in self.parameters:
             tag = " (fixed)" if n in self.fixed else ""
-            if self.intervals and n in self.intervals:
-                lo, hi = self.intervals[n]
-                tag += f"  interval {lo:+.3g}/{hi:+.3g}"
+            if self.intervals and n in self.intervals:  # rounded as the summary's
+                ends = format_interval(self.values[n], *self.intervals[n]).partition(" ")[2]
+                tag += f"  interval {ends}" if ends else ""
             lines.append(f"  {n:<{w}} = {format_value(self.values[n], self.errors[n])}{tag}")
         lines.append(f"  peak: mass {format_value(self.peak_mass, self.peak_mass_error)} "
                      f"{self.unit}, FWHM {format_value(self.fwhm, self.fwhm_error)} {self.unit}")
         if self.gof_ndf > 0 and math.isfinite(self.gof_chi2):
             lines.append(f"  GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
-                         f"p = {self.gof_p_value:.3g}")
+                         f"p = {p_value(self.gof_p_value)}")
         else:
             lines.append("  GoF: not defined (no degrees of freedom left"
                          + (", unbinned fit" if not self.binned else "") + ")")
@@ -386,7 +387,7 @@ class FitResult(FrozenValue):
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
         return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
                 f"({html.escape(self.binned_reason)}); GoF chi2/ndf = {self.gof_chi2:.1f}/"
-                f"{self.gof_ndf}, p = {self.gof_p_value:.3g}</p>{notes}"
+                f"{self.gof_ndf}, p = {p_value(self.gof_p_value)}</p>{notes}"
                 f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
                 f"{rows}</table><p>peak mass "
                 f"{html.escape(format_value(self.peak_mass, self.peak_mass_error))} "
