@@ -263,8 +263,8 @@ def test_combined_report_shows_every_figure_it_wrote(combined):
     _, out = combined
     d = json.loads((out / "results.json").read_text())
     figures = d["outputs"]["figures"]
-    assert {"dimuon/limits", "dimuon/calibration", "dielectron/signal_model_shapes"} <= set(
-        figures)
+    assert {"limits_combined", "dimuon/limits", "dimuon/calibration",
+            "dielectron/signal_model_shapes"} <= set(figures)
     html = (out / "report.html").read_text()
     shown = re.findall(r'<img alt="([^"]+)" src="data:image/png;base64,', html)
     assert sorted(shown) == sorted(figures)
@@ -272,6 +272,26 @@ def test_combined_report_shows_every_figure_it_wrote(combined):
     assert all(" " in c and not c.endswith(("_parameters", "_shapes")) for c in captions)
     md = (out / "report.md").read_text()
     assert all(f"]({path})" in md for path in figures.values())
+
+
+@pytest.mark.slow
+def test_combined_limits_figure_says_everything_inside_itself(combined):
+    """The combined limits figure's header (method, channels, profiled nuisances) stays
+    inside the figure: its list of nuisances ran off the right edge; every text's box,
+    measured on the renderer, lies within the figure's."""
+    from matplotlib.text import Text
+
+    res, _ = combined
+    fig = res.plot(which="limits")
+    fig.canvas.draw()  # (the axis labels take their places when drawn)
+    renderer = fig.canvas.get_renderer()
+    width = fig.bbox.width
+    header = [t for t in fig.findobj(Text) if "profiled:" in t.get_text()]
+    assert header and all(n in header[0].get_text() for n in res.limits.nuisances)
+    for t in fig.findobj(Text):
+        if t.get_text().strip() and t.get_visible():
+            box = t.get_window_extent(renderer)
+            assert box.x0 >= -1 and box.x1 <= width + 1, (t.get_text(), box.x1, width)
 
 
 @pytest.mark.slow

@@ -38,7 +38,8 @@ UNREADABLE_FILES: tuple[str, ...] = ("stop", "left_out")
 #: when the run has its results: ``limits`` with limits, ``calibration`` with a calibration,
 #: ``background_envelope`` with a [systematics] envelope, ``dedx`` with identification,
 #: ``signal_model`` with samples; ``spectrum`` brings ``spectrum_log`` with
-#: ``output.log_scale``; a combination's combined p-values go with ``pvalue_scan``).
+#: ``output.log_scale``; a combination's combined p-values go with ``pvalue_scan``, its
+#: combined limits with ``limits``).
 #: ``"all"`` (the default) and ``"none"`` stand alone.
 FIGURES: tuple[str, ...] = ("spectrum", "pvalue_scan", "limits", "candidates",
                             "background_envelope", "calibration", "dedx", "signal_model")

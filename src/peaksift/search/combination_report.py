@@ -179,8 +179,13 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                  f"{_m(lim['expected_minus1'][i])} to {_m(lim['expected_plus1'][i])}",
                  f"{_m(lim['expected_minus2'][i])} to {_m(lim['expected_plus2'][i])}",
                  methods[i]] for i in range(len(masses))]
-        out += [("h2", f"Combined upper limits ({100 * lim['cl']:.0f}% CLs, {lim['unit']})"),
-                ("table", ["mass [GeV]", "observed", "expected", "expected ±1 sigma",
+        out.append(("h2", f"Combined upper limits ({100 * lim['cl']:.0f}% CLs, {lim['unit']})"))
+        if "limits_combined" in fig:
+            out.append(("figure", "limits_combined", (
+                "Combined upper limits on sigma x B at each mass hypothesis: observed, and the "
+                "expected median with its 68% and 95% bands under the background-only "
+                "hypothesis; thin, each channel's own expected limit.")))
+        out += [("table", ["mass [GeV]", "observed", "expected", "expected ±1 sigma",
                            "expected ±2 sigma", "method"], rows)]
         if lim.get("notes"):
             out.append(("list", list(lim["notes"])))

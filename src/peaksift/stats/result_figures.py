@@ -26,6 +26,7 @@ from .._style import (
     COLORS,
     draw_header,
     figure_style,
+    margins,
     new_figure,
     plain_log_ticks,
     shade_blinded,
@@ -148,8 +149,9 @@ def combined_limits_figure(lim: Any, path: Any = None, *, run: Any = None,
         ax.set_ylabel(f"{lim.cl:.0%} CL upper limit on {what}")
         ax.legend(loc="upper right", ncol=2, fontsize=8.5)
         note = f"combined CLs ({method_words(lim.method)}) of {' + '.join(lim.channels)}"
-        if lim.nuisances:
-            note += f";  profiled: {', '.join(lim.nuisances)}"
+        if lim.nuisances:  # a line of its own: beside the rest it ran off the figure
+            note += f"\nprofiled: {', '.join(lim.nuisances)}"
+            margins(fig, top=0.78)
         draw_header(ax, run, note)
     if path is not None:
         fig.savefig(path)
