@@ -226,6 +226,10 @@ def test_combined_outputs_name_the_fit_of_each_model_and_number(combined, demo_d
         assert f"<td>fitted peak mass [GeV]</td><td>{want}</td>" in table
         row = re.search(rf"<tr><td>{name}</td>(.*?)</tr>", html).group(1)
         assert f"<td>{want}" in row
+        # the expected-limits cell is a range over the masses, and its header says so
+        exp = d["channels"][name]["limits"]["expected"]
+        assert f"<td>{min(exp):.2f}-{max(exp):.2f} fb</td>" in row
+        assert "<th>expected limits (lowest-highest)</th>" in html
         value_cell, error_cell = want.split(" ", 1)  # the box's value and error columns
         assert value_cell in texts and error_cell in texts, (want, texts)
 

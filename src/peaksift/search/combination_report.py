@@ -154,7 +154,8 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                     "discovery).")))
     out += [("h2", "Channels"),
             ("table", ["channel", "best mass [GeV]", "Z local", "p local", "Z global",
-                       f"{FITS['free_fit'][0]} mass [GeV]", "expected limits", "efficiency"],
+                       f"{FITS['free_fit'][0]} mass [GeV]", "expected limits (lowest-highest)",
+                       "efficiency"],
              [channel_rows(n, r) for n, r in d["channels"].items()]),
             ("p", ("Each channel's numbers are those of its own search (its own configuration "
              "run alone gives the same)."))]
