@@ -314,11 +314,39 @@ class ScanResult(FrozenValue):
                         f"$Z_{{local}}$ = {fixed(global_result['z_local'])},  "
                         f"$Z_{{global}}$ = {fixed(global_result['z_global'])} "
                         f"({global_result['global_method']})")
-            ax.legend(loc="lower left")
+            marks = ([m[self.best_index]], [pb]) if np.any(np.isfinite(p)) else ([], [])
+            _legend_off_the_curves(ax, m, [p] + ([pe] if expected is not None else []), marks)
             draw_header(ax, run, note)
             if path is not None:
                 fig.savefig(path)
         return fig
+
+
+def _legend_off_the_curves(ax: Any, m: np.ndarray, curves: list[np.ndarray],
+                           marks: tuple[list[float], list[float]]) -> None:
+    """The legend in the lower left corner, or the first other place where it covers
+    fewer points of the curves and ``marks`` (x, y) (a deep excess reaches that corner and
+    the legend's text ran over the curve); the curves are sampled finely between their
+    points (on the log axis) so a line passing through the box counts."""
+    from .._value_table import touched
+
+    fine = np.linspace(m[0], m[-1], 2000)
+    ys = []
+    for c in curves:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            y = 10.0 ** np.interp(fine, m, np.log10(np.asarray(c, float)))
+        ys.append(np.where(np.isfinite(y), y, np.nan))
+    x = np.concatenate([np.tile(fine, len(ys)), marks[0]])
+    y = np.concatenate([*ys, marks[1]])
+    best = None
+    for loc in ("lower left", "lower right", "center left", "center right"):
+        leg = ax.legend(loc=loc)
+        n = touched(ax, leg, x, y, y)
+        if best is None or n < best[0]:
+            best = (n, loc)
+        if n == 0:
+            return
+    ax.legend(loc=best[1])
 
 
 def _z_of_p(p: float) -> float:
