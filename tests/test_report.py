@@ -231,7 +231,7 @@ def test_blinded_report_says_what_is_hidden(tmp_path):
     figs = {n: _png(tmp_path, n) for n in ("spectrum", "pvalue_scan")}
     md = render_markdown(r, {n: f"figures/{n}.png" for n in figs})
     # no fit: the goodness of fit is n/a, not "n/a for None degrees of freedom"
-    assert "| Goodness of fit | n/a |" in md and "None" not in md
+    assert "| Goodness of fit (free fit) | n/a |" in md and "None" not in md
     # the spectrum caption does not promise a fit and pulls the blinded figure lacks
     assert f"*{_BLINDED_CAPTIONS['spectrum']}*" in md and _CAPTIONS["spectrum"] not in md
     # counts are labelled as the sidebands', and the withheld figure is mentioned

@@ -316,6 +316,10 @@ def test_outputs_name_the_fit_of_each_model(run):
     result = result[:result.index("</table>")]
     assert f"<td>Model</td><td>{scan}</td>" in result
     assert f"<td>Model</td><td>{free} (fitted mass, width and yields)</td>" in result
+    gof = run["results"]["fit"]["gof"]  # the free fit's, as its figure box quotes it
+    assert (f"<td>Goodness of fit (free fit)</td><td>\u03c7\u00b2 = {gof['chi2']:.1f} for "
+            f"{gof['ndf']} degrees of freedom (p = {gof['p_value']:.4f})</td>") in result
+    assert "<td>Valid (free fit)</td><td>yes</td>" in result
     models = run["results"]["models"]
     assert models["free_fit"] == {"fit": "free fit", "signal": [cfg["model"]["signal"]],
                                   "background": bkg}

@@ -266,7 +266,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         rows.append(("Goodness of fit (background fit on the sidebands only)",
                      gof_text(sideband_gof(bf))))
     else:
-        rows.append(("Goodness of fit", gof_text(fit.get("gof") or {})))
+        rows.append((f"Goodness of fit ({FITS['free_fit'][0]})", gof_text(fit.get("gof") or {})))
     if bl.get("active"):
         w = bl.get("window") or [None, None]
         hr = bl.get("hidden_range")
@@ -277,7 +277,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
                                    "signal-plus-background fit until the run is unblinded "
                                    "(--unblind); candidate counts are those of the sidebands")))
     else:
-        rows.append(("Fit valid", "yes" if fit.get("valid") else
+        rows.append((f"Valid ({FITS['free_fit'][0]})", "yes" if fit.get("valid") else
                      "NO: " + "; ".join(fit.get("problems") or ["see the fit section"])))
     return rows
 
