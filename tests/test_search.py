@@ -350,6 +350,9 @@ def test_notebook_repr_quotes_the_free_fit_as_the_summary_does(run):
         assert f"<td>{label}</td><td>{want}</td>" in res._repr_html_()
     line = next(ln for ln in run["stdout"].splitlines() if ln.strip().startswith("fitted mass"))
     assert line.split(None, 2)[2] in repr(res)
+    # the scan's best mass with the summary's two decimals (it read 152.6 beside 152.62)
+    best = run["results"]["scan"]["best"]["mass"]
+    assert f"best {best:.2f} GeV: Z_local" in repr(res.scan)
 
 
 def test_readme_summary_is_this_run(run):

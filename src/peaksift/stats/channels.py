@@ -408,7 +408,9 @@ class Combination(FrozenValue):
 
     def __repr__(self) -> str:
         b = self.best
-        return (f"Combination({', '.join(self.channels)}; best {b['mass']:.4g} GeV: "
+        from .._format import mass_text
+
+        return (f"Combination({', '.join(self.channels)}; best {mass_text(b['mass'])} GeV: "
                 f"Z_local = {b['z_local']:.2f}, sigma x B = {self._cross_section_text()})")
 
     def _summary(self) -> list[tuple[str, str]]:

@@ -88,11 +88,13 @@ class ScanResult(FrozenValue):
                 "p_local": float(self.p_local[i]), "q0": float(self.q0[i])}
 
     def __repr__(self) -> str:
+        from .._format import mass_text, p_value
+
         b = self.best
         blind = "" if self.blind is None else f", blinded {self.blind[0]:g}-{self.blind[1]:g}"
         return (f"ScanResult({self.masses.size} masses {self.masses[0]:g}-{self.masses[-1]:g} "
-                f"{self.unit}, best {b['mass']:.4g} {self.unit}: Z_local = {b['z_local']:.2f}, "
-                f"p_local = {b['p_local']:.3g}{blind})")
+                f"{self.unit}, best {mass_text(b['mass'])} {self.unit}: Z_local = "
+                f"{b['z_local']:.2f}, p_local = {p_value(b['p_local'])}{blind})")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict: the search's ``scan`` keys (``masses``, ``z_local``, ``p_local``,
