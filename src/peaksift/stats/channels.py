@@ -43,6 +43,7 @@ from typing import Any
 
 import numpy as np
 
+from .._format import format_pm, mass_text
 from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
@@ -401,15 +402,11 @@ class Combination(FrozenValue):
 
     def _cross_section_text(self) -> str:
         """sigma x B at the best mass with its error (two significant digits of the error)."""
-        from .._format import format_pm
-
         i = self.best_index
         return format_pm(self.cross_section[i], self.cross_section_error[i], self.unit)
 
     def __repr__(self) -> str:
         b = self.best
-        from .._format import mass_text
-
         return (f"Combination({', '.join(self.channels)}; best {mass_text(b['mass'])} GeV: "
                 f"Z_local = {b['z_local']:.2f}, sigma x B = {self._cross_section_text()})")
 
