@@ -318,6 +318,9 @@ def test_combined_cross_section_is_quoted_with_its_error(combined):
     html = (out / "report.html").read_text()
     assert f"<td>fitted sigma x B at the best mass</td><td>{want}</td>" in html
     assert f"sigma x B = {want})" in repr(res.combination)
+    from peaksift.search.combination_report import combination_summary_text
+
+    assert f"  sigma x B at best mass     {want}" in combination_summary_text(res.to_dict())
 
 
 def test_sample_masses_from_the_per_event_truth_column(dimuon, demo_dir):

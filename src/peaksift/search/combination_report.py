@@ -222,7 +222,8 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
              f"  best mass hypothesis       {mass_text(best.get('mass'))} GeV",
              f"  local significance         {_m(best.get('z_local'))} sigma",
              (f"  global significance        {_m(g.get('z_global'))} sigma "
-             f"({g.get('global_method', 'n/a')})")]
+             f"({g.get('global_method', 'n/a')})"),
+             f"  sigma x B at best mass     {_cross_section_text(d['combination'])}"]
     for n, r in d["channels"].items():
         b = r.get("best") or {}
         lines.append(f"  {n:<26} best {mass_text(b.get('mass'))} GeV, "
