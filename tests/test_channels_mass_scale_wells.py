@@ -226,3 +226,20 @@ def test_combined_q0_says_where_the_lowest_well_was_not_the_nearest(index):
         assert f"  WARNING: combined significance: {several[0]}" in text
     else:
         assert "WARNING" not in text
+
+
+def test_combined_limits_say_where_the_lowest_well_was_not_the_nearest():
+    """The combined asymptotic limits carry the same note (results.json ``limits.notes``,
+    a WARNING line of the summary) where their free fit's lowest well is not the nearest:
+    toys 1012/1013, where the reference's profile (CCGV eq. 7, as above) lies 1.31 below
+    the joint NLL's minimum nearest the factors' centres (iminuit, ``_nearest``)."""
+    from peaksift.search.combination_report import combination_summary_text
+    from peaksift.stats.channel_limits import combined_limits
+
+    ns = [_toy(1012), _toy(1013)]
+    assert _nearest(ns) - _joint(ns)[0] > 1e-3
+    lim = combined_limits(_channels(ns), np.array([MASS]), method="asymptotic")
+    several = [n for n in lim.to_dict()["notes"] if "several minima" in n]
+    assert len(several) == 1 and "150" in several[0] and "limits" in several[0]
+    d = {"channels": {}, "combination": {"best": {}}, "best": {}, "limits": lim.to_dict()}
+    assert f"  WARNING: combined limits: {several[0]}" in combination_summary_text(d)

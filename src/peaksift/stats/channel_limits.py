@@ -44,7 +44,7 @@ from .channels import Channel, _full_model, _prepare, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .envelope_choice import choice_entry, read_channel_entries
 from .joint import profile_joint
-from .joint_wells import joint_global
+from .joint_wells import joint_global, several_minima_notes
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
 from .scale_scan import asimov_band_note, needs_scan
 from .toys import fit_background
@@ -179,6 +179,7 @@ class _Profiled:
                        for m in models]
         self.b0 = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
         self.theta, self.b = self.theta0, self.b0
+        self.several = np.zeros(fractions[0].shape[0], bool)   # the last nll's (joint_global)
 
     def _fit(self, mu: np.ndarray, theta: list, b: list, nu: Any, steps: int = 60) -> dict:
         def one(**kw: Any) -> dict:
@@ -206,6 +207,7 @@ class _Profiled:
             r["nu"] = np.where(better[:, None], r2["nu"], r["nu"])
             r["nll"] = np.where(better, r2["nll"], r["nll"])
         self.theta, self.b, self.nu = r["theta"], r["b"], r["nu"]
+        self.several = np.asarray(r.get("several", np.zeros(mu.size, bool)))
         return r["nll"]
 
 
@@ -309,6 +311,9 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     scale0 = np.tile(1.0 / np.sqrt(np.maximum(info_s, 1e-300)), nb5)
     bands = _bisect(lambda mu: a_stack.two_nll(mu) - env_a0 - target,
                     1e-2 * scale0, 1e3 * scale0).reshape(nb5, nm)
+    # where a limit's profile took a well of a mass scale away from the nearest one (the
+    # profiles' last evaluations: at the limits, to the bisection's tolerance)
+    wells = np.any([p.several.reshape(nb5, nm) for p in a_stack.problems], axis=(0, 1))
     obs = np.full(nm, np.nan)
     keep = ~bl
     if keep.any():
@@ -323,6 +328,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                     models, [m.counts for m in models], [m.fractions for m in models], ck,
                     steps=100, norms=norms, shapes=sp_obs, **kw),
                 models, [m.counts for m in models], ck, sp_obs, memo=memo)
+            wells[keep] |= free.get("several", False)
             nll_zero = sum(m.nll_background for m in models)
             two_hat = 2.0 * np.minimum(free["nll"], nll_zero) + pen
             two_zero = 2.0 * nll_zero + pen
@@ -349,6 +355,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         s0 = scale0[:nm][keep]
         lo = np.maximum(1e-2 * s0, 0.5 * np.maximum(mu_hat, 0.0))
         obs[keep] = _bisect(f_obs, lo, 1e3 * s0 + 3.0 * np.maximum(mu_hat, 0.0))
+        wells[keep] |= np.any([p.several for p in probs_o + probs_s], axis=0)
     # the background under the signal of the combination (CCGV eqs. 28-30): the counting
     # background with the same Fisher information on sigma x B, from the Asimov data
     f_sums = sum(k * f.fractions.sum(axis=1) for k, f in zip(conv, fulls))
@@ -409,6 +416,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     asimov_wide = [j for j in range(nm) if wide[j] and methods[j] == "asymptotic"]
     if asimov_wide:
         notes.append(asimov_band_note(m_all[asimov_wide]))
+    notes += several_minima_notes(wells, m_all, sp_obs, "limits")
     flags = tuple(f"{b:.3g} background events expected under the signal (< "
                   f"{low_count_background:g}): asymptotic bands doubtful"
                   if b < low_count_background and m == "asymptotic" else ""
