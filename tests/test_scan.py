@@ -429,7 +429,7 @@ def test_difficult_background_start_is_recovered(background, density, starts, li
 
 
 def test_repr_of_a_p_value_past_the_floats_underflow():
-    """A local excess so large that its p-value underflows (Z ~ 80 here): the repr and the
+    """A local excess so large that its p-value underflows (Z ~ 124 here): the repr and the
     notebook table quote its exponent, 10^x with x = log10 of the normal tail at Z
     (scipy.stats.norm.logsf / ln 10, written here; 0.05 absolute, the one decimal shown),
     as the report does; they read '< 2.2e-308' and 'p = 0'."""
