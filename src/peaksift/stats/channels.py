@@ -57,6 +57,7 @@ from .joint_start import joint_start
 from .joint_wells import joint_global
 from .scan import scan_prepared
 from .scan_inputs import _prepare_model, _signal_params
+from .scan_result import p_text
 from .significance import p_from_q0, z_from_q0
 from .toys import fit_background
 
@@ -416,7 +417,7 @@ class Combination(FrozenValue):
         rows = [("channels", ", ".join(self.channels)),
                 ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
                 ("best mass", f"none: {why}" if why else f"{b['mass']:.2f} GeV"),
-                ("Z local", "n/a" if why else f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
+                ("Z local", "n/a" if why else f"{b['z_local']:.2f} (p = {p_text(b)})"),
                 ("sigma x B at best", "n/a" if why else self._cross_section_text())]
         if self.blind is not None:
             rows.append(("blinded", f"{self.blind[0]:g}-{self.blind[1]:g} GeV"))
