@@ -173,3 +173,29 @@ def test_combined_limits_profile_a_channels_background_function():
     assert plain.envelope is None
     assert abs(plain.observed[0] / lim.observed[0] - 1) > 0.03
     assert lim.to_dict()["envelope"] == lim.envelope
+
+
+def test_combined_toy_limits_say_they_do_not_profile_the_background_function():
+    """The combined toy limits generate and fit channel a with the function its envelope
+    takes at mu = 0 (the lowest penalised background-only fit of the reference above,
+    iminuit), not the choice: the result says so
+    (``limits.notes``, a WARNING line of the summary), and its limit is the toy limit of
+    that function alone (the same toys: 1e-9 relative)."""
+    from peaksift.search.combination_report import combination_summary_text
+
+    hists = _data()
+    cands = candidate_shapes(["exppoly1", "bernstein2"])
+    kw = {"method": "toys", "toy_masses": [MASS], "toys": 30, "seed": 5}
+    lim = combined_limits(_channels(hists, cands), [MASS], **kw)
+    null = lim.envelope["a"]["null_choice"]
+    ns = [np.asarray(h.weight_sum, float) for h in hists]
+    pen = [_two_nll(ns, 0.0, _fsig(), shape, start)[0] + len(start) + 1
+           for _, shape, start in CANDIDATES]
+    assert null == int(np.argmin(pen))
+    label = CANDIDATES[null][0]
+    alone = combined_limits(_channels(hists, {label: cands[label]}), [MASS], **kw)
+    assert lim.observed[0] == pytest.approx(alone.observed[0], rel=1e-9)
+    note = [n for n in lim.to_dict()["notes"] if "do not profile the choice" in n]
+    assert len(note) == 1
+    d = {"channels": {}, "combination": {"best": {}}, "best": {}, "limits": lim.to_dict()}
+    assert f"  WARNING: combined limits: {note[0]}" in combination_summary_text(d)

@@ -233,12 +233,19 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
                 if (r.get("signal_model") or {}).get("doubtful")]
     if doubtful:
         lines.append(f"  signal model doubtful in   {', '.join(doubtful)} (see the report)")
-    # the combined limits' notes that are warnings (as a search's limits warnings)
+    # each channel's own warnings (its search's doubts), but the signal model's (the line
+    # above names those channels)
     lines += [f"  WARNING: {w['message']}" for w in _channel_warnings(d)
-              if w["topic"] != "signal_model"]  # (the line above names those channels)
+              if w["topic"] != "signal_model"]
+    # the combined q0 that took a lower well of a mass scale than the nearest (as a
+    # search's significance warning, stats.joint_wells.several_minima_notes)
+    lines += [f"  WARNING: combined significance: {note}"
+              for note in d["combination"].get("notes") or [] if "several minima" in note]
+    # the combined limits' notes that are warnings (as a search's limits warnings), and
+    # toy limits that do not profile the background envelope (stats.channel_limits)
     lines += [f"  WARNING: combined limits: {note}"
               for note in (d.get("limits") or {}).get("notes") or []
-              if doubtful_limits_note(note)]
+              if doubtful_limits_note(note) or "do not profile the choice" in note]
     if "outputs" in d:
         lines.append(f"  outputs                    {d['outputs']['dir']}")
     lines.append("  (a local significance is not a discovery; see the report's caution)")

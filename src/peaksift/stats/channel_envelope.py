@@ -135,6 +135,7 @@ def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
     nulls = null_choice([[m for m, _ in models] for models in per], counts, penalties)
     best = None
     shp = specs if any(specs) else None
+    memo: dict = {}   # the channels' mass-scale scans' fractions, shared by the assignments
     for combo in itertools.product(*[range(len(p)) for p in per]):
         models = [per[c][f][0] for c, f in enumerate(combo)]
         cfits = [per[c][f][1] for c, f in enumerate(combo)]
@@ -150,27 +151,29 @@ def envelope_of_channels(chans: list, prepared: list, fits: list, specs: list,
                            for m, f in zip(models, cfits)])
 
         # each channel's mass scale at its lowest well (joint_wells), as the plain scan
-        r = joint_global(joint, models, [m.counts for m in models], k, shp)
+        r = joint_global(joint, models, [m.counts for m in models], k, shp, memo=memo)
         nll0 = sum(m.nll_background for m in models)
         q = np.where(r["mu"] > 0, np.maximum(2.0 * (nll0 - r["nll"]), 0.0), 0.0)
         pen = sum(a * cnt[f] for a, cnt, f in zip(penalties, counts, combo))
         two_nll = np.where(np.isfinite(q), 2.0 * nll0 - q, np.inf) + pen
         nuis = np.concatenate([r["nu"]] + [fc - 1.0 for fc in r["factors"]], axis=1)
+        several = r.get("several", np.zeros(two_nll.size, bool))
         if best is None:
             best = {"two_nll": two_nll, "mu": r["mu"], "mu_error": r["mu_error"],
-                    "converged": r["converged"], "nuisances": nuis,
+                    "converged": r["converged"], "nuisances": nuis, "several": several,
                     "chosen": np.tile(np.array(combo), (two_nll.size, 1))}
             continue
         take = two_nll < best["two_nll"]
         for key, val in (("two_nll", two_nll), ("mu", r["mu"]), ("mu_error", r["mu_error"]),
-                         ("converged", r["converged"])):
+                         ("converged", r["converged"]), ("several", several)):
             best[key] = np.where(take, val, best[key])
         best["nuisances"] = np.where(take[:, None], nuis, best["nuisances"])
         best["chosen"][take] = combo
     assert best is not None
     out = {"q0": np.maximum(null0 - best["two_nll"], 0.0), "mu": best["mu"],
             "mu_error": best["mu_error"], "converged": best["converged"],
-            "nuisances": best["nuisances"], "labels": labels, "chosen": best["chosen"], "null_choice": nulls,
+            "nuisances": best["nuisances"], "several": best["several"], "labels": labels,
+            "chosen": best["chosen"], "null_choice": nulls,
             "penalties": penalties, "n_parameters": [tuple(int(v) for v in c) for c in counts]}
     out["entry"] = _entry(chans, out, bl)
     out["toy_models"] = (tuple(tuple(m for m, _ in models) for models in per),

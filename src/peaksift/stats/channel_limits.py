@@ -44,7 +44,7 @@ from .channels import Channel, _full_model, _prepare, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .envelope_choice import choice_entry, read_channel_entries
 from .joint import profile_joint
-from .joint_wells import joint_global
+from .joint_wells import joint_global, several_minima_notes
 from .limits import LOW_COUNT_BACKGROUND, cls_asymptotic, expected_band_factor, upper_limits
 from .scale_scan import asimov_band_note, needs_scan
 from .toys import fit_background
@@ -170,13 +170,16 @@ class _Profiled:
     does not recover: a fit that ends above the NLL of the background-only fits' point at
     this sigma x B is redone from there (never the case otherwise)."""
 
-    def __init__(self, models, counts, fractions, conv, norms=None, shapes=None) -> None:
+    def __init__(self, models, counts, fractions, conv, norms=None, shapes=None,
+                 memo=None) -> None:
         self.models, self.counts, self.fractions, self.conv = models, counts, fractions, conv
         self.norms, self.nu, self.shapes = norms, None, shapes
+        self.memo = {} if memo is None else memo   # joint_global's, shared by the problems
         self.theta0 = [np.repeat(m.theta[None, :], fractions[0].shape[0], axis=0)
                        for m in models]
         self.b0 = [np.full(fractions[0].shape[0], m.bkg_yield) for m in models]
         self.theta, self.b = self.theta0, self.b0
+        self.several = np.zeros(fractions[0].shape[0], bool)   # the last nll's (joint_global)
 
     def _fit(self, mu: np.ndarray, theta: list, b: list, nu: Any, steps: int = 60) -> dict:
         def one(**kw: Any) -> dict:
@@ -189,7 +192,7 @@ class _Profiled:
             return one()
         # each channel's mass scale at its lowest well (joint_wells), else the one fit
         return joint_global(one, self.models, self.counts, self.conv, self.shapes,
-                            mu_fixed=mu)
+                            mu_fixed=mu, memo=self.memo)
 
     def nll(self, mu: np.ndarray) -> np.ndarray:
         r = self._fit(mu, self.theta, self.b, self.nu)
@@ -204,6 +207,7 @@ class _Profiled:
             r["nu"] = np.where(better[:, None], r2["nu"], r["nu"])
             r["nll"] = np.where(better, r2["nll"], r["nll"])
         self.theta, self.b, self.nu = r["theta"], r["b"], r["nu"]
+        self.several = np.asarray(r.get("several", np.zeros(mu.size, bool)))
         return r["nll"]
 
 
@@ -291,12 +295,13 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     nm = m_all.size
     # the background-only Asimov data: each channel's envelope function at mu = 0
     fulls_all = [[_full_model(*t) for t in tr] for tr in triples]
+    memo: dict = {}   # the mass-scale scans' fractions, shared by every joint fit here
     fulls = [fulls_all[c][null[c]] for c in range(len(chans))]
     asimov = [f.expected_background for f in fulls]
     a_stack = _Envelope([_Profiled([fulls_all[c][f] for c, f in enumerate(combo)], asimov,
                                    [np.tile(fulls_all[c][f].fractions, (nb5, 1))
                                     for c, f in enumerate(combo)],
-                                   [np.tile(k, nb5) for k in conv], norms, sp_exp)
+                                   [np.tile(k, nb5) for k in conv], norms, sp_exp, memo)
                          for combo in combos], pens)
     env_a0 = _null_two_nll([[float(fit_background(f, a[None, :])[2][0]) for f in fa]
                             for fa, a in zip(fulls_all, asimov)], counts, penalties)
@@ -306,6 +311,9 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     scale0 = np.tile(1.0 / np.sqrt(np.maximum(info_s, 1e-300)), nb5)
     bands = _bisect(lambda mu: a_stack.two_nll(mu) - env_a0 - target,
                     1e-2 * scale0, 1e3 * scale0).reshape(nb5, nm)
+    # where a limit's profile took a well of a mass scale away from the nearest one (the
+    # profiles' last evaluations: at the limits, to the bisection's tolerance)
+    wells = np.any([p.several.reshape(nb5, nm) for p in a_stack.problems], axis=(0, 1))
     obs = np.full(nm, np.nan)
     keep = ~bl
     if keep.any():
@@ -319,7 +327,8 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                 lambda models=models, **kw: profile_joint(
                     models, [m.counts for m in models], [m.fractions for m in models], ck,
                     steps=100, norms=norms, shapes=sp_obs, **kw),
-                models, [m.counts for m in models], ck, sp_obs)
+                models, [m.counts for m in models], ck, sp_obs, memo=memo)
+            wells[keep] |= free.get("several", False)
             nll_zero = sum(m.nll_background for m in models)
             two_hat = 2.0 * np.minimum(free["nll"], nll_zero) + pen
             two_zero = 2.0 * nll_zero + pen
@@ -330,9 +339,9 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                 hat = np.minimum(hat, two_hat)
                 env_zero = min(env_zero, two_zero)
             probs_o.append(_Profiled(models, [m.counts for m in models],
-                                     [m.fractions for m in models], ck, norms, sp_obs))
+                                     [m.fractions for m in models], ck, norms, sp_obs, memo))
             probs_s.append(_Profiled(models, used_asimov, [m.fractions for m in models], ck,
-                                     norms, sp_obs))
+                                     norms, sp_obs, memo))
         prob_o, prob_s = _Envelope(probs_o, pens), _Envelope(probs_s, pens)
         env_u0 = _null_two_nll([[float(fit_background(t[0], a[None, :])[2][0]) for t in tr]
                                 for tr, a in zip(triples, used_asimov)], counts, penalties)
@@ -346,6 +355,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         s0 = scale0[:nm][keep]
         lo = np.maximum(1e-2 * s0, 0.5 * np.maximum(mu_hat, 0.0))
         obs[keep] = _bisect(f_obs, lo, 1e3 * s0 + 3.0 * np.maximum(mu_hat, 0.0))
+        wells[keep] |= np.any([p.several for p in probs_o + probs_s], axis=0)
     # the background under the signal of the combination (CCGV eqs. 28-30): the counting
     # background with the same Fisher information on sigma x B, from the Asimov data
     f_sums = sum(k * f.fractions.sum(axis=1) for k, f in zip(conv, fulls))
@@ -361,9 +371,12 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
         want += list(picks)
     toy_info: dict[str, Any] = {}
     if envelope and want:
+        # profiling it would refit every toy once per assignment of functions (the
+        # envelope's combined scan costs ~5x the plain one with 2 x 2 functions)
         notes.append("the toy-based limits generate and fit each channel with the background "
-                     "function its envelope takes at mu = 0 (the asymptotic ones profile the "
-                     "choice)")
+                     "function its envelope takes at mu = 0: they do not profile the choice "
+                     "of function (the asymptotic ones do) and can be too strong where "
+                     "another function describes the data about as well")
     todo, tasks = [], []
     for j in sorted({int(x) for x in want}):
         if bl[j]:
@@ -403,6 +416,7 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
     asimov_wide = [j for j in range(nm) if wide[j] and methods[j] == "asymptotic"]
     if asimov_wide:
         notes.append(asimov_band_note(m_all[asimov_wide]))
+    notes += several_minima_notes(wells, m_all, sp_obs, "limits")
     flags = tuple(f"{b:.3g} background events expected under the signal (< "
                   f"{low_count_background:g}): asymptotic bands doubtful"
                   if b < low_count_background and m == "asymptotic" else ""

@@ -61,7 +61,7 @@ class _Set:
 
     def __init__(self, models: list, counts: list[np.ndarray], conv: list[float],
                  norms: Any, aux: np.ndarray, shapes: Any = None,
-                 centers: Any = None) -> None:
+                 centers: Any = None, memo: dict | None = None) -> None:
         self.models, self.counts, self.norms, self.aux = models, counts, norms, aux
         t = counts[0].shape[0]
         self.f = [np.broadcast_to(m.fractions[0], (t, m.fractions.shape[1])) for m in models]
@@ -71,6 +71,7 @@ class _Set:
                 1, -1), t, axis=0) if np.ndim(p) else p for p in sp[1]], sp[2])
                   for sp in shapes]
         self.centers = centers
+        self.memo = {} if memo is None else memo   # joint_global's, shared by the sets
         nll0 = 0.0
         self.theta, self.b = [], []
         for m, n in zip(models, counts):
@@ -93,7 +94,8 @@ class _Set:
 
         # each channel's mass scale at its lowest well (joint_wells), else the one fit
         return joint_global(one, self.models, self.counts, self.k, self.shapes,
-                            mu_fixed=mu, centers=self.centers, starts=STARTS_TOYS)
+                            mu_fixed=mu, centers=self.centers, starts=STARTS_TOYS,
+                            memo=self.memo)
 
     def q(self, mu: float) -> tuple[np.ndarray, dict[str, Any]]:
         """q~mu of every set (CCGV eq. 16) and the conditional fits at ``mu``."""
@@ -150,10 +152,11 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
     # the shape factors do not act without signal: their global observables around the
     # data's (1)
     cen_b = _centers(shapes, ones, rng, ntoys)
-    toys_b = _Set(models, n_b, conv, norms, aux_b, shapes, cen_b)
+    memo: dict = {}   # the mass-scale scans' fractions: one hypothesis, every set's
+    toys_b = _Set(models, n_b, conv, norms, aux_b, shapes, cen_b, memo)
     data = _Set(models, [m.counts[None, :] for m in models], conv, norms, np.zeros((1, nj)),
                 shapes, None if shapes is None else [None if o is None else o[None, :]
-                                                     for o in ones])
+                                                     for o in ones], memo)
 
     def evaluate(mu: float) -> tuple[float, float, np.ndarray]:
         q_obs_a, r = data.q(mu)
@@ -178,7 +181,7 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
         n_sb = _draw(rr, nu_sb, ntoys)
         aux_sb = nu_hat + rr.standard_normal((ntoys, nj))
         cen_sb = _centers(shapes, k_sb, rr, ntoys)
-        q_sb = _Set(models, n_sb, conv, norms, aux_sb, shapes, cen_sb).q(mu)[0]
+        q_sb = _Set(models, n_sb, conv, norms, aux_sb, shapes, cen_sb, memo).q(mu)[0]
         q_b = toys_b.q(mu)[0]
         # log-likelihood ratio of the two generating models for every pooled toy
         llr = 0.0

@@ -54,7 +54,7 @@ from .channel_toys import combined_toy_scans
 from .envelope_choice import read_channel_entries
 from .joint import profile_joint
 from .joint_start import joint_start
-from .joint_wells import joint_global
+from .joint_wells import joint_global, several_minima_notes
 from .scan import scan_prepared
 from .scan_inputs import _prepare_model, _signal_params
 from .scan_result import p_text
@@ -280,6 +280,7 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
                                          axis=1) if any(specs) else r["nu"]
         if not r["converged"].all():
             notes.append(f"{int((~r['converged']).sum())} combined hypotheses did not converge")
+        several = r.get("several")
         if expected_cross_section is not None:
             z_exp = _expected_z(prepared, conv, float(expected_cross_section), norms)
         env = envelope_of_channels(chans, prepared, fits, specs, conv, bl, norms,
@@ -290,6 +291,8 @@ def combine(channels: Sequence[Channel], masses: Any, *, blind: tuple[float, flo
             if nu_fit is not None:
                 nu_fit[~bl] = env["nuisances"]
             envelope, env_models = env["entry"], env["toy_models"]
+            several = env["several"]
+        notes += several_minima_notes(several, m_all[~bl], shp, "q0")
     if bl.all():
         notes.append("every mass hypothesis is blinded")
     qsel = np.where(bl, -np.inf, np.nan_to_num(q0, nan=-np.inf))

@@ -35,9 +35,21 @@ from typing import Any
 
 import numpy as np
 
-from .scale_scan import needs_scan, profile_global
+from .scale_scan import DIFFERENT, needs_scan, other_well, profile_global, several_minima_note
 
-__all__ = ["joint_global"]
+__all__ = ["joint_global", "several_minima_notes"]
+
+
+def several_minima_notes(several: Any, masses: np.ndarray, shapes: Sequence[Any] | None,
+                         what: str) -> list[str]:
+    """The results' note (:func:`.scale_scan.several_minima_note`, the single channel's)
+    at the ``masses`` where ``several`` (:func:`joint_global`'s) is set, with the widest
+    of the channels' mass scales (the reach of the data the ``what`` responds to); none
+    where it is not set anywhere."""
+    if several is None or not np.any(several) or not shapes:
+        return []
+    size = max(float(sp[2].mass_scale) for sp in shapes if sp is not None)
+    return [several_minima_note(np.asarray(masses)[np.asarray(several, bool)], size, what)]
 
 
 def _merge(a: dict[str, Any], b: dict[str, Any], better: np.ndarray) -> dict[str, Any]:
@@ -63,7 +75,7 @@ def _pick(x: Any, y: Any, better: np.ndarray, nb: int) -> Any:
 def _well_starts(r: dict[str, Any], models: Sequence[Any], counts: Sequence[Any],
                  conv: Sequence[np.ndarray], shapes: Sequence[Any], mu: np.ndarray,
                  fixed_signal: bool, centers: Sequence[Any] | None,
-                 starts_per: int | None = None) -> tuple[list[Any], np.ndarray]:
+                 starts_per: int | None, memo: dict) -> tuple[list[Any], np.ndarray]:
     """Per channel the factors of its lowest well at the signal ``mu`` (a start: the yield
     free from there unless ``fixed_signal``), from the fit ``r``'s other parameters; and
     which hypotheses found a well other than ``r``'s."""
@@ -92,7 +104,7 @@ def _well_starts(r: dict[str, Any], models: Sequence[Any], counts: Sequence[Any]
                                       "b": take(r["b"][c]), "theta": take(r["theta"][c]),
                                       "factors": take(fc)},
                                centers=cen, fixed_signal=fixed_signal, tol=1e-5,
-                               starts=starts_per)
+                               starts=starts_per, memo=memo)
         f_new = fc.copy()
         f_new[rows] = g["factors"]
         starts.append(f_new)
@@ -104,7 +116,7 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
                  counts: Sequence[Any], conv: Sequence[np.ndarray],
                  shapes: Sequence[Any] | None, *, mu_fixed: Any = None,
                  centers: Sequence[Any] | None = None,
-                 starts: int | None = None) -> dict[str, Any]:
+                 starts: int | None = None, memo: dict | None = None) -> dict[str, Any]:
     """``fit(**starts)`` (a :func:`~peaksift.stats.joint.profile_joint` call taking
     ``factors_start``, ``mu_start``, ``theta_start``, ``b_start``) from its own starts,
     then, where a channel of ``shapes`` is scanned (:func:`.scale_scan.needs_scan`), again
@@ -114,13 +126,23 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
     channel at once that no channel's own lowest well leads to); per hypothesis the lowest.
     ``mu_fixed``: the conditional fits' parameter of interest (else free); ``centers``:
     per channel its constraints' centres (or None); ``starts``: the wells each channel's
-    scan refits (:func:`.scale_scan.profile_global`'s)."""
+    scan refits (:func:`.scale_scan.profile_global`'s); ``memo``: the channels' scans'
+    signal fractions kept across the restarts (and across calls, where the caller passes
+    one dict: they depend on the bins and hypotheses alone).
+
+    With a scanned channel the result also has ``several`` (bool per hypothesis): a
+    restart ended lower than the first fit by more than
+    :data:`.scale_scan.DIFFERENT` in another well of some channel's mass scale
+    (:func:`.scale_scan.other_well`) -- the profile has several minima and the nearest is
+    not the lowest, the combination's counterpart of the single channel's ``moved``."""
     r = fit()
     if not shapes or not any(sp is not None for sp in shapes):
         return r
     nb = np.asarray(r["nll"]).size
     free = mu_fixed is None
     mu = np.broadcast_to(np.asarray(r["mu"] if free else mu_fixed, float), (nb,))
+    memo = {} if memo is None else memo
+    first = r
     probes = [(mu, not free, False)]
     if free:   # each channel's wells at the first fit's signal held, one error either side
         # of it, and at the other sign (at least one error away from 0, where no well
@@ -133,7 +155,7 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
                    (mu - err, True, True), (-sign * size, True, True)]
     for probe, fixed, any_well in probes:
         fs, moved = _well_starts(r, models, counts, conv, shapes, probe, fixed, centers,
-                                 starts)
+                                 starts, memo)
         if any_well:
             moved = np.zeros(nb, bool)
             for st, fc in zip(fs, r["factors"]):
@@ -146,4 +168,9 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
         better = np.asarray(r2["nll"]) < np.asarray(r["nll"])
         if better.any():
             r = _merge(r, r2, better)
-    return r
+    several = np.zeros(nb, bool)
+    for sp, fa, fb in zip(shapes, first["factors"], r["factors"]):
+        if sp is not None:
+            several |= other_well(sp[0], sp[1], sp[2], fa, fb)
+    return {**r, "several": several & (np.asarray(first["nll"]) - np.asarray(r["nll"])
+                                       > DIFFERENT)}

@@ -12,6 +12,8 @@ Which piece when
   (:func:`peaksift.stats.shape_profile.refine_toy_points`) use it.
 * :func:`several_minima_note` -- the results' note where the lowest well was not the nearest.
 * :func:`needs_scan` -- which hypotheses those are.
+* :func:`other_well` -- whether two fits' mass-scale factors lie in different wells (the
+  combination's note, :mod:`.joint_wells`).
 
 Why
 ---
@@ -52,8 +54,8 @@ from ..likelihood import SignalNuisances
 from .shape_profile import _fractions, profile_with_nuisances
 from .toys import ScanModel, bkg_fractions
 
-__all__ = ["asimov_band_note", "needs_scan", "peak_width", "profile_global",
-           "several_minima_note"]
+__all__ = ["DIFFERENT", "asimov_band_note", "needs_scan", "other_well", "peak_width",
+           "profile_global", "several_minima_note"]
 
 #: the scan runs where this many standard deviations of the mass scale exceed the width
 _REACH = 3.0
@@ -70,8 +72,11 @@ _STARTS_FREE = 4
 STARTS_TOYS = _STARTS_FREE
 #: at most this many grid values x bins are held at once
 _CHUNK = 2_000_000
+#: a memo of the grid's fractions (:func:`_grid_fractions`) keeps at most this many bytes
+#: (a scan of a few hundred masses: ~60 MB)
+_MEMO_BYTES = 256_000_000
 #: a start other than the centre's counts as a different minimum when lower by this (NLL)
-_DIFFERENT = 1e-3
+DIFFERENT = _DIFFERENT = 1e-3
 
 
 def _column(params: Sequence[Any], names: Sequence[str], name: str, nb: int) -> np.ndarray:
@@ -100,6 +105,20 @@ def needs_scan(signal: Any, base: Sequence[Any], nuisances: SignalNuisances,
     return _REACH * nuisances.mass_scale * np.abs(mass) > peak_width(signal, base, nb)
 
 
+def other_well(signal: Any, base: Sequence[Any], nuisances: SignalNuisances,
+               factors_a: np.ndarray, factors_b: np.ndarray) -> np.ndarray:
+    """Per hypothesis whether the mass-scale factors of two fits ``(B, J)`` are further
+    apart than the scan's grid step (half the peak's width in mass): two wells of the
+    profile, not one well reached twice (False without a mass scale)."""
+    nb = np.asarray(factors_a).shape[0]
+    if "mass_scale" not in nuisances.shape_active:
+        return np.zeros(nb, bool)
+    jm = nuisances.shape_active.index("mass_scale")
+    mass = _column(base, signal.parameter_names, "mass", nb)
+    gap = np.abs(np.asarray(factors_a, float)[:, jm] - np.asarray(factors_b, float)[:, jm])
+    return gap * np.abs(mass) > _STEP * peak_width(signal, base, nb)
+
+
 def _band(f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Bin indices ``(U, G, L)`` around each row's highest fraction that hold every
     fraction above 1e-12 of it (one width ``L`` for all), and which of them are bins."""
@@ -118,12 +137,13 @@ def _band(f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any],
                 nuisances: SignalNuisances, fit: dict[str, np.ndarray], rows: np.ndarray,
-                centers: np.ndarray | None, fixed_signal: bool, starts: int | None = None
-                ) -> tuple[np.ndarray, np.ndarray]:
+                centers: np.ndarray | None, fixed_signal: bool, starts: int | None = None,
+                memo: dict | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Starts ``(R, S, J)`` of the factors and of the yield ``(R, S)`` at the ``S``
     (``_STARTS``, with a free yield ``_STARTS_FREE``) lowest wells of the grid NLL in
     ``k_m`` of hypotheses ``rows``, away from the centre fit's own well (NaN where a
-    hypothesis has fewer)."""
+    hypothesis has fewer).  ``memo``: the grid's fractions kept for the next call
+    (:func:`_grid_fractions`)."""
     names = nuisances.shape_active
     jm = names.index("mass_scale")
     lo, hi = nuisances.bounds("mass_scale")
@@ -141,7 +161,7 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     # factors at their centres here): once per distinct hypothesis, shared by its rows
     cols = np.stack([np.broadcast_to(np.asarray(p, float).reshape(-1), (nb,))
                      for p in base], axis=1)[rows]
-    inv = np.unique(cols, axis=0, return_inverse=True)[1]
+    hyps, inv = np.unique(cols, axis=0, return_inverse=True)
     inv = inv.reshape(-1)
     first = rows[np.unique(inv, return_index=True)[1]]   # a row of each hypothesis
     # the fractions of a group of hypotheses at a time, at most _CHUNK cells (a wide mass
@@ -150,25 +170,37 @@ def _grid_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any
     hyp_per = max(1, _CHUNK // (g * model.used.size))
     for h0 in range(0, first.size, hyp_per):
         group = np.arange(h0, min(h0 + hyp_per, first.size))
-        _group_wells(model, n, signal, base, names, nuisances, fit, rows, centers,
-                     fixed_signal, grid, jm, mass, width, inv, first, group, k_out, s_out)
+        fr = _grid_fractions(model, signal, base, names, nuisances, grid, jm,
+                             first[group], hyps[group], memo)
+        _group_wells(model, n, nuisances, names, fit, rows, centers, fixed_signal, grid,
+                     jm, mass, width, inv, group, fr, k_out, s_out)
     return k_out, s_out
 
 
-def _group_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[Any],
-                 names: Any, nuisances: SignalNuisances, fit: dict[str, np.ndarray],
-                 rows: np.ndarray, centers: np.ndarray | None, fixed_signal: bool,
-                 grid: np.ndarray, jm: int, mass: np.ndarray, width: np.ndarray,
-                 inv: np.ndarray, first: np.ndarray, group: np.ndarray,
-                 k_out: np.ndarray, s_out: np.ndarray) -> None:
-    """:func:`_grid_wells` for the rows of the hypotheses ``first[group]``, into
-    ``k_out`` / ``s_out``."""
+def _grid_fractions(model: ScanModel, signal: Any, base: Sequence[Any], names: Any,
+                    nuisances: SignalNuisances, grid: np.ndarray, jm: int,
+                    first: np.ndarray, hyps: np.ndarray, memo: dict | None
+                    ) -> tuple[np.ndarray, ...]:
+    """The grid's signal fractions of the hypotheses ``hyps`` (their parameters; ``first``
+    a row of each): per hypothesis and grid point their sum over the used bins, the band
+    of bins around the peak (:func:`_band`), the fractions there, and where there is no
+    shape.  They depend on the bins, the signal shape, the hypothesis and ``k_m`` alone,
+    not on the data or the fit: ``memo`` (a dict) keeps them for the next call on the
+    same bins and hypotheses (a combination's restarts scan each channel five times)."""
+    key = None
+    if memo is not None:
+        key = (model.edges.tobytes(), tuple(model.window), model.used.tobytes(),
+               None if model.bin_scale is None else np.asarray(model.bin_scale).tobytes(),
+               id(signal), id(nuisances), tuple(names), grid.tobytes(), hyps.tobytes())
+        hit = memo.get(key)
+        if hit is not None and hit[0] is signal and hit[1] is nuisances:
+            return hit[2]
     g = grid.size
-    k = np.ones((group.size * g, len(names)))
-    k[:, jm] = np.tile(grid, group.size)
+    k = np.ones((first.size * g, len(names)))
+    k[:, jm] = np.tile(grid, first.size)
     with np.errstate(all="ignore"):
         f_all = _fractions(model, signal, base, names, nuisances, k,
-                           np.repeat(first[group], g)).reshape(group.size, g, -1)
+                           np.repeat(first, g)).reshape(first.size, g, -1)
         # no signal shape there (e.g. a peak so far outside the window that its integral
         # over it underflows): not a start
         shapeless = ~np.all(np.isfinite(f_all), axis=-1)                  # (U, G)
@@ -180,7 +212,24 @@ def _group_wells(model: ScanModel, n: np.ndarray, signal: Any, base: Sequence[An
     f_sum = f_all.sum(axis=-1)
     band, inside = _band(f_all)
     f_band = np.where(inside, np.take_along_axis(f_all, band, axis=-1), 0.0)
-    del f_all
+    out = (f_sum, band, f_band, shapeless)
+    size = sum(a.nbytes for a in out)
+    if memo is not None and memo.get("bytes", 0) + size <= _MEMO_BYTES:
+        memo[key] = (signal, nuisances, out)   # the shape objects kept: their ids stay
+        memo["bytes"] = memo.get("bytes", 0) + size
+    return out
+
+
+def _group_wells(model: ScanModel, n: np.ndarray, nuisances: SignalNuisances,
+                 names: Any, fit: dict[str, np.ndarray], rows: np.ndarray,
+                 centers: np.ndarray | None, fixed_signal: bool, grid: np.ndarray, jm: int,
+                 mass: np.ndarray, width: np.ndarray, inv: np.ndarray, group: np.ndarray,
+                 fractions: tuple[np.ndarray, ...], k_out: np.ndarray,
+                 s_out: np.ndarray) -> None:
+    """:func:`_grid_wells` for the rows of the hypotheses ``group`` (their grid's
+    ``fractions``, :func:`_grid_fractions`), into ``k_out`` / ``s_out``."""
+    g = grid.size
+    f_sum, band, f_band, shapeless = fractions
     mine = np.flatnonzero((inv >= group[0]) & (inv <= group[-1]))  # positions in rows
     per = max(1, _CHUNK // (g * band.shape[-1]))
     for c0 in range(0, mine.size, per):
@@ -265,14 +314,16 @@ def _centre_fits(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
 def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
                    nuisances: SignalNuisances, *, start: dict[str, np.ndarray],
                    centers: np.ndarray | None = None, tol: float = 1e-8,
-                   fixed_signal: bool = False, starts: int | None = None
-                   ) -> dict[str, np.ndarray]:
+                   fixed_signal: bool = False, starts: int | None = None,
+                   memo: dict | None = None) -> dict[str, np.ndarray]:
     """:func:`~peaksift.stats.shape_profile.profile_with_nuisances` with further starts
     from a scan of the mass scale where it reaches beyond the peak's width (there also
     with the factors' exact curvature; elsewhere the fits are those of before).
 
     Arguments as there; ``starts``: the grid's wells refitted per hypothesis (default
-    ``_STARTS``, with a free yield ``_STARTS_FREE``).  Returns its dict with the lowest fit of each hypothesis, plus
+    ``_STARTS``, with a free yield ``_STARTS_FREE``); ``memo``: a dict that keeps the
+    scan's signal fractions for later calls on the same bins and hypotheses (the same
+    numbers; a caller that scans one channel's hypotheses again passes the same dict).  Returns its dict with the lowest fit of each hypothesis, plus
     ``scanned`` (bool per hypothesis: the scan ran) and ``moved`` (a start other than the
     centre gave a lower minimum by more than 1e-3: the profile in the mass scale has
     several wells and the nearest is not the lowest)."""
@@ -287,7 +338,7 @@ def profile_global(model: ScanModel, n: Any, signal: Any, base: Sequence[Any],
         return fit
     n2 = np.broadcast_to(np.asarray(n, float), (nb, model.used.size))
     k_st, s_st = _grid_wells(model, n2, signal, base, nuisances, fit, rows, centers,
-                             fixed_signal, starts)
+                             fixed_signal, starts, memo)
     have = np.isfinite(s_st) & np.all(np.isfinite(k_st), axis=2)   # (R, starts)
     if not have.any():
         return fit
