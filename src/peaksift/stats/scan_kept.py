@@ -96,17 +96,19 @@ def kept_scan(key: tuple | None) -> tuple | None:
         return None
     if len(slot) < 2:
         slot.append(_kept_fields(kept))
-    call, fixed = slot[0], slot[1]
+    if len(slot) < 3:   # (the call made once by scan_table's dispatcher: compiled)
+        slot.append(_compiled().scan_entry(slot[0]))
+    call, fixed, run = slot[0], slot[1], slot[2]
     if call is None or fixed is None:   # (None also once the entry is dropped)
         return None
-    result = _answer(call, fixed)
+    result = _answer(call, fixed, run)
     return None if result is None else (result, slot)
 
 
-def _answer(call: tuple, fixed: tuple) -> ScanResult | None:
-    """The result of the compiled call ``call`` with the fields ``fixed``, or None
-    (the compiled loop declined a row)."""
-    out = _compiled().scan_table(*call, 100, 1e-6)
+def _answer(call: tuple, fixed: tuple, run: Any) -> ScanResult | None:
+    """The result of the compiled call ``call`` (by ``run``, ``profile_calls.scan_entry``'s)
+    with the fields ``fixed``, or None (the compiled loop declined a row)."""
+    out = run(*call, 100, 1e-6)
     if out[0]:
         return None
     fields, model, m_all, open_, nll_b = fixed
@@ -207,7 +209,7 @@ def quick_scan(data: Any, masses: Any, options: tuple) -> ScanResult | None:
             and data.edges.tobytes() == edges and data.unit == unit
             and use_compiled() is compiled):
         return None
-    call, fixed = slot[0], slot[1]
+    call, fixed, run = slot[0], slot[1], slot[2]
     if call is None or fixed is None:   # the kept entry was dropped since
         return None
-    return _answer(call, fixed)
+    return _answer(call, fixed, run)
