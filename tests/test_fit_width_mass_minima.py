@@ -10,7 +10,9 @@ below sigma ~3.4 GeV at 169.8 GeV, lower by ~0.18).  A profile over the width wi
 held at the first minimum's showed neither (``likelihood/width_path.py``).  And one toy of
 the 2 sigma group (case 88) whose lowest point is a deficit centred on the window's edge,
 which a dip's start reaches only with its width chosen along that profile
-(``test_a_deficit_reaching_over_the_window_edge``).
+(``test_a_deficit_reaching_over_the_window_edge``), and one of the 0 sigma group (case 9)
+whose lowest point is a wide excess where the fit ended in a wide deficit, reached by a
+restart with the yield's sign reversed (``test_a_wide_signal_of_the_other_sign``).
 
 Reference: the extended binned Poisson likelihood in Baker and Cousins' form,
 sum(mu - n + n ln(n / mu)) (Nucl. Instrum. Meth. 221 (1984) 437, eq. 11), mu = s f(m, w)
@@ -37,6 +39,7 @@ from peaksift.histogram import MassHistogram
 
 CENTRES = 0.5 * (EDGES[1:] + EDGES[:-1])
 Z5, Z2 = 7856, 7820  # check_fit_minima.hash_group("gauss_exp_z5"), ("gauss_exp_z2")
+Z0 = 7796  # check_fit_minima.hash_group("gauss_exp_z0")
 
 
 def _toy(case: int, group: int = Z5, z: float = 5.0) -> np.ndarray:
@@ -156,3 +159,33 @@ def test_a_given_mass_still_finds_the_narrower_minimum_at_another_mass():
     assert r.valid
     assert abs(v["mass"] - ref.values["mass"]) < 0.05 * ref.errors["mass"]
     assert abs(v["sigma"] - ref.values["sigma"]) < 0.05 * ref.errors["sigma"]
+
+
+def test_a_wide_signal_of_the_other_sign():
+    """Case 9 of the 0 sigma group (no peak: an exponential of 5,000 events): a wide
+    deficit centred on the window's lower edge (sigma ~35 GeV, -1,015 +- 3,399 events, the
+    mass at its bound 100 GeV) lies 0.021 above a wide excess at 158 GeV (+1,580 events,
+    sigma at its upper bound 50 GeV), each absorbing the spectrum's curvature.  Every start
+    of the fit is a narrow peak or dip, and at a yield of zero the mass and width do not
+    matter, so no path crossed to the other sign; the invalid fit now starts once more
+    with its yield's sign reversed (``fitting/restarts.py``).
+
+    Reference: the NLL above minimised by iminuit's MIGRAD from a grid over mass (110-190
+    GeV in steps of 10, and 101 and 199), width (1-32 GeV, factors of 2, and 48) and
+    signal yield (+-100, the negative starts with no bound on it), the lowest kept.
+    Check: peaksift's NLL not above iminuit's lowest by more than 1e-3; that lowest has
+    its width at the upper bound and a positive yield, so the fit reports the width at a
+    bound (not valid), with the width within 0.01 GeV of the bound and the mass within 1 %
+    of iminuit's (its HESSE errors are not used: the width sits at its limit)."""
+    n = _toy(9, Z0, 0.0)
+    r = _fit(n)
+    ref = _lowest(n, (101.0, *GRID_MASSES, 199.0), (1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 48.0),
+                  (100.0, -100.0))
+    v = r.values
+    at_ours = _nll(n)(v["mass"], v["sigma"], v["signal_yield"], v["b1"], v["background_yield"])
+    assert at_ours <= ref.fval + 1e-3, (at_ours, ref.fval, dict(v), ref.values)
+    assert ref.values["sigma"] > 49.99 and ref.values["s"] > 0  # (the reference)
+    assert v["sigma"] > 49.99 and v["signal_yield"] > 0
+    assert abs(v["mass"] / ref.values["mass"] - 1.0) < 0.01
+    assert not r.valid and any("sigma at a bound" in p for p in r.problems), r.problems
+

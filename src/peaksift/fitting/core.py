@@ -2,7 +2,9 @@
 
 :func:`fit` builds the cost from :mod:`peaksift.likelihood`, minimises it from every
 starting point the coarse likelihood scan suggests and keeps the lowest minimum (validity is a
-property of that minimum, never a reason to prefer a worse one), then derives errors, optional
+property of that minimum, never a reason to prefer a worse one; an invalid one is restarted
+where it shows another basin may lie lower, :mod:`.restarts`, and continued to the lowest
+point of its valley, :mod:`.polish`), then derives errors, optional
 profile-likelihood intervals, the peak summary and the goodness of fit.  It returns a
 :class:`~peaksift.fitting.result.FitResult` for every fit it can set up: one that cannot be
 made is returned flagged invalid with its reasons.
@@ -10,6 +12,7 @@ made is returned flagged invalid with its reasons.
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Mapping, Sequence
 from typing import Any
@@ -20,7 +23,8 @@ from ..likelihood import Minimum, NearMinimum, minimize, refine
 from ..likelihood.starts import fit_starts
 from .checks import note_lower_minimum
 from .outcome import problems_at, result_of
-from .polish import continue_invalid
+from .polish import continue_invalid, is_invalid
+from .restarts import restart_points
 from .result import FitResult
 from .setup import setup_of
 from .setup_kept import kept_setup
@@ -157,12 +161,30 @@ def fit(
     # [full vector, free x, nll, covariance, observed Hessian or None] of the best minimum
     near = None
     superseded = None  # NLL of the first valid minimum a later start went below
-    for essential, make_start in starts:
+    first: list[np.ndarray] = []  # the first start (its widths start a Crystal Ball's core)
+    n_starts: list[int] = []  # how many starts were tried before the restarts
+
+    def restarts():
+        """Starts of another kind from an invalid best minimum (:mod:`.restarts`), made
+        once every start above is minimised.  Like the continuation (:mod:`.polish`) they
+        take an invalid minimum further: their evaluations count in ``n_calls``, but they
+        are not starts of ``starts_tried`` / ``starts_nll`` (the start finder's)."""
+        n_starts.append(len(tried))
+        if best is None or best[1] is None or not is_invalid(best, floors, free_idx):
+            return
+        for s in restart_points(model, np.asarray(best[4], float), best[6],
+                                first[0] if first else None, base, is_fixed, free_idx,
+                                lower, upper, floors):
+            yield True, lambda near=None, s=s: s
+
+    for essential, make_start in itertools.chain(starts, restarts()):
         if not essential and best is not None and not best[3]:
             break  # every candidate peak tried and the best is valid: other widths not needed
         s0 = make_start(None if near is None else near[0])
         if s0 is None:  # a start the best minimum so far makes pointless
             continue
+        if not first:
+            first.append(s0.copy())
         cost = make_cost(s0)
         try:
             # beat: a later start that stalls above the best minimum so far cannot win
@@ -201,6 +223,8 @@ def fit(
                 full = s0.copy()
                 full[free_idx] = x
                 near = [full, np.asarray(x, float), float(f), cov, None]
+    if n_starts:
+        del tried[n_starts[0]:]
     best, calls = continue_invalid(best, calls, lo_f, hi_f, free_names, floors, free_idx)
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:

@@ -6,8 +6,8 @@ will be reported invalid -- the covariance not positive definite, a parameter at
 not converged -- the point is often on the flat floor of a valley that goes on falling
 towards a bound: on ``scripts/check_fit_minima.py``'s Crystal Ball cases a spike with a tail
 parameter sliding to its bound (crystalball/32 stopped 0.109 above the lowest point inside
-the bounds, /38 0.0014 above) and a wide Gaussian on an exponential whose width runs to its
-upper bound (gauss_exp_z0/9, 0.021 above).  The fit reports the lowest minimum (its
+the bounds, /38 0.0014 above).  (A lower point in another basin, beyond such a valley, is
+:mod:`.restarts`' work, before this continuation.)  The fit reports the lowest minimum (its
 validity is a property of that minimum), so such a minimum is taken on by MIGRAD at
 strategy 1 (its Hessian at the start, then updated: it follows a curved valley along the
 bounds where the expected information's steps stall), kept only when its NLL is lower,
@@ -27,7 +27,8 @@ import numpy as np
 from ..likelihood import Minimum, new_minuit, refine
 from .outcome import at_floor, problems_at
 
-__all__ = ["POLISH_CALLS", "POLISH_GAIN", "POLISH_TOL", "continue_invalid"]
+__all__ = ["POLISH_CALLS", "POLISH_GAIN", "POLISH_TOL", "continue_invalid", "errors_of",
+           "is_invalid"]
 
 #: a continued minimum replaces the fit's only when it is lower by more than this (below it
 #: the two are one minimum for any purpose: the reported point should not wander along a
@@ -60,8 +61,7 @@ def continue_invalid(best: tuple | None, calls: int, lower: np.ndarray, upper: n
     if mo is None or not math.isfinite(f):
         return best, calls
     x = np.asarray(x, float)
-    with np.errstate(invalid="ignore"):
-        err = np.sqrt(np.diagonal(cov)) if cov is not None else np.full(x.size, np.nan)
+    err = errors_of(x, cov)
     if not problems and not _near_floor(x, err, floors, free_idx):
         return best, calls
     n0 = cost.ncall
@@ -90,6 +90,21 @@ def continue_invalid(best: tuple | None, calls: int, lower: np.ndarray, upper: n
         return best, calls
     problems2 = problems_at(mo1, x2, posdef2, lower, upper, names)
     return (float(f2), mo1, cost, problems2, x2, float(f2), cov2, posdef2), calls
+
+
+def is_invalid(best: tuple, floors: dict[int, float] | None = None,
+               free_idx: np.ndarray | None = None) -> bool:
+    """Whether the fit's result will call the best minimum ``best`` (the tuple of
+    :func:`continue_invalid`) invalid: it has problems or a width at or within one error
+    of its floor."""
+    problems, x, cov = best[3], np.asarray(best[4], float), best[6]
+    return bool(problems) or _near_floor(x, errors_of(x, cov), floors, free_idx)
+
+
+def errors_of(x: np.ndarray, cov: np.ndarray | None) -> np.ndarray:
+    """The errors of a minimum at ``x`` from its covariance ``cov`` (NaN without one)."""
+    with np.errstate(invalid="ignore"):
+        return np.sqrt(np.diagonal(cov)) if cov is not None else np.full(x.size, np.nan)
 
 
 def _near_floor(x: np.ndarray, err: np.ndarray, floors: dict[int, float] | None,

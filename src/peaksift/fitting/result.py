@@ -104,7 +104,8 @@ class FitResult(FrozenValue):
         ``"fisher-scoring"`` or ``"iminuit-migrad"``.
     starts_tried, starts_nll : int, tuple
         How many starting points were minimised, and the minimum each reached: the lowest
-        wins, whatever the validity of the others.
+        wins, whatever the validity of the others.  (The start finder's starts: an invalid
+        minimum's restarts and continuation count in ``n_calls`` only.)
     edges, observed, observed_weight_sq_sum, expected, pulls : ndarray
         Binning used for the goodness of fit and figures; pulls are (n - mu)/sqrt(var),
         var = mu * weight_sq_sum/weight_sum for weighted bins.
