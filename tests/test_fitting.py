@@ -330,6 +330,42 @@ def test_result_dict_repr_and_html():
     assert r.to_minuit().migrad().fval == pytest.approx(r.nll, abs=1e-4)
 
 
+def test_notebook_table_rounds_each_value_to_its_error():
+    """FitResult._repr_html_ quotes a value to the decimals of its error rounded to two
+    significant digits (common practice; the repr, the report and the figure do the same),
+    not a value with six digits beside an error with three (149.942 beside 0.42)."""
+    import re
+
+    x = _toy(np.random.default_rng(16), 500, 4000)
+    r = fit(x, "gaussian", "exponential", W)
+    rows = re.findall(r"<tr><td>(\w+)</td><td>([^<]*)</td><td>([^<]*)</td>", r._repr_html_())
+    assert [n for n, _, _ in rows] == list(r.parameters)
+    for name, value, error in rows:
+        e = r.errors[name]
+        dec = max(0, 1 - math.floor(math.log10(e)))
+        assert (value, error) == (f"{r.values[name]:.{dec}f}", f"{e:.{dec}f}"), name
+
+
+def test_repr_rounds_intervals_and_p_as_the_figure_does():
+    """The repr quotes a profile-likelihood interval rounded to two significant digits of its
+    smaller end (common practice; it gave -1.8/+2.47 for one parameter) and the goodness of
+    fit's p-value with the digits the fit figure's box shows (it gave 0.063 beside 0.0630)."""
+    import re
+
+    from matplotlib.text import Text
+
+    x = _toy(np.random.default_rng(16), 500, 4000)
+    r = fit(x, "gaussian", "exponential", W, intervals=["mass", "sigma"])
+    text = repr(r)
+    for name in ("mass", "sigma"):
+        lo, hi = r.intervals[name]
+        dec = max(0, 1 - math.floor(math.log10(min(-lo, hi))))
+        assert re.search(rf"\n  {name} +=.*  interval \+{hi:.{dec}f} -{-lo:.{dec}f}\n", text)
+    p = re.search(r"p = (\S+)$", text).group(1)
+    box = [t.get_text() for t in r.plot().findobj(Text)]
+    assert any(t.endswith(f"p = {p}") for t in box), (p, box)
+
+
 def test_model_expected_broadcasts_over_toys():
     """Model.expected with stacked parameters equals one call per parameter set; its
     gradient matches central differences."""

@@ -310,3 +310,57 @@ def test_narrow_yield_profile_matches_scipy():
         assert abs(gain[r] - 2.0 * (nll(0.0) - res.fun)) < 1e-6
         checked += 1
     assert checked > 30
+
+
+def test_poisson_pass_scaled_and_negative_expectation():
+    """The compiled pass's NLL, gradient and information with scaled-Poisson factors ``s``
+    (Bohm and Zech, Nucl. Instrum. Meth. A 748 (2014) 1: sum s mu - n~ ln mu) against the
+    sums written here with numpy and math.fsum (NLL to 1e-12 relative, gradient and
+    information to 1e-10 of their scale), on contiguous and on picked bins; and a
+    negative expectation in any used bin (outside the Poisson model) gives an infinite
+    NLL wherever the bin lies."""
+    import math
+
+    from peaksift.likelihood.kernels import poisson_pass
+
+    rng = np.random.default_rng(8)
+    nb = 1350
+    rows = np.cumsum(rng.uniform(0.0, 1.0, (2, nb + 1)), axis=1)  # two CDF-like rows
+    drows = rng.normal(0.0, 1.0, (1, nb + 1))  # one shape derivative row of component 0
+    cdf = np.vstack([rows[0], drows[0], rows[1]])
+    yields = np.array([40.0, 3.0])
+    value_row, yield_free = np.array([0, 2]), np.array([0, 2])
+    drow, dcomp, dfree = np.array([1]), np.array([0]), np.array([1])
+    for bins in (np.arange(nb), np.sort(rng.choice(nb, 700, replace=False))):
+        d0, d1 = np.diff(rows[0])[bins], np.diff(rows[1])[bins]
+        mu_ref = yields[0] * d0 + yields[1] * d1
+        n = rng.poisson(mu_ref).astype(float)
+        s = rng.uniform(0.5, 2.0, bins.size)
+        jac = np.vstack([d0, yields[0] * np.diff(drows[0])[bins], d1])
+        for unit in (True, False):
+            sj = np.ones(bins.size) if unit else s
+            mu, jb, g, info = np.empty(bins.size), np.empty((3, bins.size)), np.empty(3), \
+                np.empty((3, 3))
+            val = poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins,
+                               n, s, unit, 1e-300, True, mu, jb, g, info)
+            want = math.fsum(sj * mu_ref - n * np.log(mu_ref))
+            assert val == pytest.approx(want, rel=1e-12)
+            np.testing.assert_allclose(mu, mu_ref, rtol=1e-13)
+            want_g = jac @ (sj - n / mu_ref)
+            np.testing.assert_allclose(g, want_g, rtol=0, atol=1e-10 * np.abs(want_g).max())
+            want_i = (jac * (sj / mu_ref)) @ jac.T
+            np.testing.assert_allclose(info, want_i, rtol=1e-10)
+        for where in (0, bins.size // 2, bins.size - 1):  # one bin below zero
+            i = bins[where]
+            step = np.where(np.arange(nb + 1) > i, 1.0, 0.0)  # all of a peak in bin i
+            bad = np.vstack([step, np.zeros(nb + 1), rows[1]])
+            deficit = np.array([-(yields[1] * (rows[1][i + 1] - rows[1][i]) + 1.0), 3.0])
+            mu, jb, g, info = np.empty(bins.size), np.empty((3, bins.size)), np.empty(3), \
+                np.empty((3, 3))
+            val = poisson_pass(bad, value_row, deficit, yield_free, drow, dcomp, dfree, bins,
+                               n, s, False, 1e-300, True, mu, jb, g, info)
+            assert val == math.inf
+            deficit[0] += 1.5  # 0.5 above zero there: a finite NLL again
+            assert math.isfinite(poisson_pass(bad, value_row, deficit, yield_free, drow, dcomp,
+                                              dfree, bins, n, s, False, 1e-300, True, mu, jb,
+                                              g, info))

@@ -130,3 +130,37 @@ def test_unbinned_density_stays_positive_at_a_negative_peak():
     assert v["signal_yield"] > lo_bound + 1.0
     b = v["background_yield"]
     assert v["signal_yield"] * f_s + b * f_b >= -1e-9 * b * f_b
+
+
+@pytest.mark.parametrize("npar", [1, 5, 8, 11])
+@pytest.mark.parametrize("unit", [True, False])
+def test_information_without_empty_bins_off_the_wall(npar, unit):
+    """The compiled minimiser's information near the wall (``likelihood.wall_info``): the
+    Fisher information minus the terms ``s_j / mu_j jac_j jac_j^T`` of the empty bins whose
+    expectation is still >= 1e-8 (the Poisson information of a bin, Baker and Cousins 1984,
+    written here with numpy), to 1e-12 of the information's scale; the expectation and the
+    Jacobian copied as they are."""
+    from peaksift.likelihood.poisson import WALL_MU
+    from peaksift.likelihood.wall_info import wall_info
+
+    rng = np.random.default_rng(npar + 20 * unit)
+    nb = 700
+    n = rng.poisson(rng.uniform(0.0, 3.0, nb)).astype(float)
+    mu = rng.uniform(0.5, 5.0, nb)
+    low = rng.random(nb) < 0.3  # some empty bins at the wall (below WALL_MU)
+    mu[low] = rng.uniform(0.0, 0.9e-8, low.sum())
+    s = rng.uniform(0.5, 2.0, nb)
+    jac = rng.normal(0.0, 1.0, (npar, nb))
+    info = (jac * ((1.0 if unit else s) / np.maximum(mu, 1.0))) @ jac.T  # any matrix
+    prob = (*(np.zeros(1),) * 12, n, s, unit, np.zeros(1), np.zeros(1), mu, jac)
+    empty = np.flatnonzero(n == 0).astype(np.int64)
+    b, mu_x, jac_x = np.empty((npar, npar)), np.empty(nb), np.empty((npar, nb))
+    wall_info(prob, info, b, mu_x, jac_x, empty, np.empty(empty.size, np.int64),
+              np.empty(empty.size))
+    sel = (n == 0) & (mu >= WALL_MU)
+    assert 0 < sel.sum() < (n == 0).sum()  # both kinds of empty bin are there
+    sw = (1.0 if unit else s) / mu
+    want = info - (jac[:, sel] * sw[sel]) @ jac[:, sel].T
+    np.testing.assert_allclose(b, want, rtol=0, atol=1e-12 * np.abs(info).max())
+    np.testing.assert_array_equal(mu_x, mu)
+    np.testing.assert_array_equal(jac_x, jac)

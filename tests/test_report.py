@@ -106,10 +106,27 @@ def test_html_is_self_contained_and_parses(tmp_path):
     assert "155.20 ± 0.31 GeV" in text
 
 
+def test_a_number_in_a_narrow_column_is_not_broken_across_lines():
+    """A p-value such as 1.61e-05 in a narrow numeric column stays on one line (a browser
+    otherwise breaks it after the exponent's hyphen, CSS Text Level 3, 5.2: "1.61e-" over
+    "05"): numeric cells are right-aligned and not wrapped."""
+    import re
+
+    from peaksift.report import blocks_html
+
+    page = blocks_html("t", [("table", ["mass", "p local"], [["152.45", "1.61e-05"]])], {})
+    assert '<td class="num">1.61e-05</td>' in page
+    rule = re.search(r"td\.num\{([^}]*)\}", page).group(1)
+    assert "white-space:nowrap" in rule.replace("\n", "") and "text-align:right" in rule
+
+
 def test_markdown_has_tables_caution_and_figure_links(tmp_path):
     md = render_markdown(_results(), {"spectrum": "figures/spectrum.png"})
     assert md.count(CAUTION) >= 2
     assert "![spectrum](figures/spectrum.png)" in md
+    # the figure draws the free fit, whose mass floats away from the hypothesis it started at
+    caption = md.split("![spectrum](figures/spectrum.png)")[1].split("\n\n")[1]
+    assert "free fit" in caption and "at the best mass hypothesis, its" not in caption
     assert "| Local significance | 3.90 σ (p = 4.80e-05) |" in md
     assert "upcrossings" in md
     assert "| events | 1,000 |" in md  # one number format: the command line's
@@ -214,7 +231,7 @@ def test_blinded_report_says_what_is_hidden(tmp_path):
     figs = {n: _png(tmp_path, n) for n in ("spectrum", "pvalue_scan")}
     md = render_markdown(r, {n: f"figures/{n}.png" for n in figs})
     # no fit: the goodness of fit is n/a, not "n/a for None degrees of freedom"
-    assert "| Goodness of fit | n/a |" in md and "None" not in md
+    assert "| Goodness of fit (free fit) | n/a |" in md and "None" not in md
     # the spectrum caption does not promise a fit and pulls the blinded figure lacks
     assert f"*{_BLINDED_CAPTIONS['spectrum']}*" in md and _CAPTIONS["spectrum"] not in md
     # counts are labelled as the sidebands', and the withheld figure is mentioned
@@ -257,6 +274,24 @@ def _full_results() -> dict:
                                   "events with at least 2 selected muon objects": 400}
     r["input"]["cutflow"] = {"events_in": 1000, "events_with_pair": 390, "candidates": 390}
     return r
+
+
+def test_limit_method_is_named_in_words():
+    """The limits' method reads as what it does (docs/config.md, ``limits.method``: auto =
+    the asymptotic formulae, toys at the masses with few background events), in the report
+    and the limit figure's header, not as the bare key "auto"."""
+    from matplotlib.text import Text
+
+    from peaksift.stats.limit_result import LimitResult
+
+    r = _full_results()
+    assert r["limits"]["method"] == "auto"
+    md = render_markdown(r)
+    assert "CLs upper limits (asymptotic, toys at low counts)" in md and "(auto)" not in md
+    lim = LimitResult.from_dict(r["limits"])
+    texts = [t.get_text() for t in lim.plot().findobj(Text)]
+    assert any(t.startswith("CLs (asymptotic, toys at low counts)") for t in texts), texts
+    assert "(auto)" not in repr(lim)
 
 
 def test_report_has_every_limit_point_its_bands_and_the_assumptions(tmp_path):

@@ -238,6 +238,31 @@ def test_plot_writes_png(tmp_path):
     assert ax.get_yscale() == "log" and "GeV" in ax.get_xlabel()
 
 
+def test_legend_leaves_a_deep_excess_at_low_mass_alone():
+    """A 7 sigma excess near the low end of the scan reaches the lower left corner where the
+    legend stood, and the legend's text ran over the curve: the legend now moves where no
+    line of the figure passes through its box (each drawn line's segments sampled finely,
+    measured on the renderer against the legend's box)."""
+    h = _spectrum(n_sig=700, mass=150.0)
+    r = scan(h, "gaussian", "exponential", 61, relative_resolution=0.01, refit=False)
+    assert r.best_mass == pytest.approx(150.0, abs=10.0) and r.best["z_local"] > 5.0
+    fig = r.plot()
+    ax = fig.axes[0]
+    fig.canvas.draw()
+    box = ax.get_legend().get_window_extent(fig.canvas.get_renderer())
+    for line in ax.get_lines():
+        x, y = (np.asarray(v, float) for v in line.get_data())
+        if x.size < 2 or line.get_linestyle() == ":":  # (the sigma levels run across)
+            continue
+        t = np.linspace(0.0, 1.0, 50)[:, None]
+        pts = ax.transData.transform(np.c_[x, y])
+        pts = pts[np.isfinite(pts).all(axis=1)]
+        seg = (pts[:-1][None] * (1 - t[..., None]) + pts[1:][None] * t[..., None]).reshape(-1, 2)
+        inside = ((seg[:, 0] > box.x0) & (seg[:, 0] < box.x1) & (seg[:, 1] > box.y0)
+                  & (seg[:, 1] < box.y1))
+        assert not inside.any(), line.get_label()
+
+
 def test_unbinned_masses_are_histogrammed():
     rng = np.random.default_rng(2)
     x = np.concatenate([WINDOW[0] + rng.exponential(90.0, 5000), rng.normal(250, 2.5, 80)])

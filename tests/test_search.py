@@ -286,6 +286,75 @@ def test_summary_printed(run):
     assert str(run["out"]) in out
 
 
+def test_outputs_name_the_fit_of_each_model(run):
+    """Which fit a model and a number come from: the summary, report.html's Result table,
+    results.json ``models`` and the spectrum figure's box name the scan's model ("scan:
+    ...", with the envelope of [systematics] its significances profile) and the free fit's
+    ("free fit: ..."), built from search.toml read here with tomllib: the scan's signal is
+    a Gaussian of the resolution's width (``scan.signal`` empty and no natural width: the
+    documented default, docs/config.md), the free fit's ``model.signal``; both take
+    ``model.background``; the envelope holds one order of each configured family."""
+    import tomllib
+    from matplotlib.text import Text
+
+    from peaksift.search import SearchResult
+
+    cfg = tomllib.loads(CONFIG.read_text())
+    bkg = cfg["model"]["background"]
+    env = run["results"]["models"]["scan"]["envelope"]
+    families = cfg["systematics"]["background_families"]
+    assert len(env) == len(families)
+    assert all(e.startswith(f) for e, f in zip(env, families))
+    scan = (f"scan: gaussian + {bkg}; with systematics gaussian + the envelope of "
+            f"{', '.join(env)} (best mass, significances, limits)")
+    free = f"free fit: {cfg['model']['signal']} + {bkg}"
+    lines = [ln.split(None, 1) for ln in run["stdout"].splitlines()]
+    assert ["model", scan] in lines
+    assert ["model", f"{free} (fitted mass, width and yields)"] in lines
+    html = (run["out"] / "report.html").read_text()
+    result = html[html.index("<h2>Result</h2>"):]
+    result = result[:result.index("</table>")]
+    assert f"<td>Model</td><td>{scan}</td>" in result
+    assert f"<td>Model</td><td>{free} (fitted mass, width and yields)</td>" in result
+    gof = run["results"]["fit"]["gof"]  # the free fit's, as its figure box quotes it
+    assert (f"<td>Goodness of fit (free fit)</td><td>\u03c7\u00b2 = {gof['chi2']:.1f} for "
+            f"{gof['ndf']} degrees of freedom (p = {gof['p_value']:.4f})</td>") in result
+    assert "<td>Valid (free fit)</td><td>yes</td>" in result
+    models = run["results"]["models"]
+    assert models["free_fit"] == {"fit": "free fit", "signal": [cfg["model"]["signal"]],
+                                  "background": bkg}
+    assert (models["scan"]["fit"], models["scan"]["background"]) == ("scan", bkg)
+    fig = SearchResult.from_dict(run["results"]).plot(which="spectrum")
+    texts = "\n".join(t.get_text() for t in fig.findobj(Text))
+    assert free in texts.replace(":\n", ": ")
+
+
+def test_notebook_repr_quotes_the_free_fit_as_the_summary_does(run):
+    """SearchResult's repr and notebook table name the free fit and quote its mass and
+    yield with their profile-likelihood intervals, as the summary, the report and the
+    figure do (they said 152.8 ± 1.6 beside the summary's 152.8 +1.5 -1.7); the interval
+    rounded here to two significant digits of the smaller error (common practice)."""
+    import math
+
+    from peaksift.search import SearchResult
+
+    res = SearchResult.from_dict(run["results"])
+    fit = run["results"]["fit"]
+    for key, par, unit in (("peak_mass", "mass", " GeV"), ("signal_yield", "signal_yield", "")):
+        lo, hi = fit["intervals"][par]
+        dec = max(0, 1 - math.floor(math.log10(min(-lo, hi))))
+        v = fit[key]["value"]
+        want = f"{v:,.{dec}f} +{hi:.{dec}f} -{-lo:.{dec}f}{unit}"
+        label = "free fit mass" if key == "peak_mass" else "free fit signal yield"
+        assert f"{label} {want};" in repr(res)
+        assert f"<td>{label}</td><td>{want}</td>" in res._repr_html_()
+    line = next(ln for ln in run["stdout"].splitlines() if ln.strip().startswith("fitted mass"))
+    assert line.split(None, 2)[2] in repr(res)
+    # the scan's best mass with the summary's two decimals (it read 152.6 beside 152.62)
+    best = run["results"]["scan"]["best"]["mass"]
+    assert f"best {best:.2f} GeV: Z_local" in repr(res.scan)
+
+
 def test_readme_summary_is_this_run(run):
     """The README prints the demo's summary; it must be what the demo search prints, line
     for line (only the output folder differs), so a change of the demo's numbers updates it."""

@@ -131,8 +131,15 @@ def test_combination_config_is_checked(demo_dir, tmp_path):
         run_combination({"combination": {"channels": [str(tmp_path / "c.toml")]}}, out=False)
 
 
+@pytest.fixture(scope="module")
+def combined(demo_dir, tmp_path_factory):
+    """The demo combination, run once: its result and its output directory."""
+    out = tmp_path_factory.mktemp("combined") / "out"
+    return run_combination(demo_dir / "combined.toml", out=out, toys=20), out
+
+
 @pytest.mark.slow
-def test_combined_demo_writes_its_report_with_every_channel(demo_dir, tmp_path):
+def test_combined_demo_writes_its_report_with_every_channel(combined):
     """The demo combination (dimuon + dielectron, one shared luminosity): results.json holds
     the combined scan with its normalisation nuisances (one luminosity, one efficiency per
     channel: the config's 2% and 5%, as ln(1 + d), the log-normal scale), the combined
@@ -141,24 +148,179 @@ def test_combined_demo_writes_its_report_with_every_channel(demo_dir, tmp_path):
     significance is not a discovery); no figure is left open in pyplot."""
     import math
 
-    res = run_combination(demo_dir / "combined.toml", out=tmp_path / "out", toys=20)
-    d = json.loads((tmp_path / "out" / "results.json").read_text())
+    res, out = combined
+    d = json.loads((out / "results.json").read_text())
     nuis = d["nuisances_at_best"]
     assert set(nuis) == {"luminosity_shared", "efficiency_dimuon", "efficiency_dielectron"}
     assert nuis["luminosity_shared"]["log_scale"] == pytest.approx([math.log1p(0.02)] * 2)
     assert nuis["efficiency_dimuon"]["log_scale"] == pytest.approx([math.log1p(0.05), 0.0])
     lim = d["limits"]
     assert len(lim["methods"]) == len(lim["masses"]) and lim["nuisances"]
-    html = (tmp_path / "out" / "report.html").read_text()
+    html = (out / "report.html").read_text()
     assert "A local significance is not a discovery" in html
     assert "Channel dimuon" in html and "Channel dielectron" in html
     assert html.count("data:image/png;base64") >= 5   # combined + 2 x (spectrum, p-values)
     for key in ("pvalue_combined", "dimuon/spectrum", "dielectron/spectrum"):
-        assert (tmp_path / "out" / res.to_dict()["outputs"]["figures"][key]).is_file()
+        assert (out / res.to_dict()["outputs"]["figures"][key]).is_file()
     import sys
 
     if "matplotlib.pyplot" in sys.modules:
         assert not sys.modules["matplotlib.pyplot"].get_fignums()
+
+
+@pytest.mark.slow
+def test_combined_outputs_name_the_fit_of_each_model_and_number(combined, demo_dir):
+    """Which fit a model and a number come from, in every output of the demo combination:
+    each channel's scan takes its signal shape from [signal_model] and the free fit from
+    [model] (read here from the channel's own TOML file), and the report's channel table,
+    the command-line summary, results.json ``models`` and the spectrum figure's box name
+    them "scan: ..." and "free fit: ..." -- never a bare "crystalball / powerlaw" beside the
+    free fit's numbers.  The free fit's mass is quoted as the figure's box quotes it: its
+    profile-likelihood interval where the fit has one, rounded to two significant digits of
+    the smaller error (common practice), else value ± error."""
+    import math
+    import re
+
+    import tomllib
+    from matplotlib.text import Text
+
+    from peaksift.search.combination_report import combination_summary_text
+
+    res, out = combined
+    comb = tomllib.loads((demo_dir / "combined.toml").read_text())["combination"]
+    d = json.loads((out / "results.json").read_text())
+    html = (out / "report.html").read_text()
+    summary = combination_summary_text(d).splitlines()
+    assert " / powerlaw" not in html
+    for name, path in zip(comb["names"], comb["channels"]):
+        cfg = tomllib.loads((demo_dir / path).read_text())
+        bkg = cfg["model"]["background"]
+        scan = f"scan: {cfg['signal_model']['shape']} + {bkg}"
+        free = f"free fit: {cfg['model']['signal']} + {bkg}"
+        table = html[html.index(f"<h3>Channel {name}</h3>"):]
+        table = table[:table.index("</table>")]
+        assert f"<td>model</td><td>{scan} (best mass, significances, limits)</td>" in table
+        assert f"<td>model</td><td>{free} (fitted mass, width and yields)</td>" in table
+        assert any(ln.split()[0] == name and ln.endswith(f"({scan})") for ln in summary)
+        assert f"Channel {name}: mass spectrum with the free fit." in html
+        models = d["channels"][name]["models"]
+        assert (models["scan"]["fit"], models["scan"]["signal"]) == ("scan",
+                                                                     cfg["signal_model"]["shape"])
+        assert (models["free_fit"]["fit"], models["free_fit"]["signal"]) == (
+            "free fit", [cfg["model"]["signal"]])
+        assert models["scan"]["background"] == models["free_fit"]["background"] == bkg
+        fig = res.channels[name].plot(which="spectrum")
+        texts = [t.get_text() for t in fig.findobj(Text)]
+        # the box's title: one line, or broken after the fit's name where it would cover data
+        assert free in "\n".join(texts).replace(":\n", ": "), texts
+        fit = d["channels"][name]["fit"]
+        value = fit["peak_mass"]["value"]
+        iv = (fit.get("intervals") or {}).get("mass")
+        if iv:
+            dec = 1 - math.floor(math.log10(min(-iv[0], iv[1])))
+            want = f"{value:.{dec}f} +{iv[1]:.{dec}f} -{-iv[0]:.{dec}f}"
+        else:
+            err = fit["peak_mass"]["error"]
+            dec = max(0, 1 - math.floor(math.log10(err)))
+            want = f"{value:.{dec}f} ± {err:.{dec}f}"
+        assert f"<td>fitted peak mass [GeV]</td><td>{want}</td>" in table
+        row = re.search(rf"<tr><td>{name}</td>(.*?)</tr>", html).group(1)
+        assert f"<td>{want}" in row
+        # the expected-limits cell is a range over the masses, and its header says so
+        exp = d["channels"][name]["limits"]["expected"]
+        assert f"<td>{min(exp):.2f}-{max(exp):.2f} fb</td>" in row
+        assert "<th>expected limits (lowest-highest)</th>" in html
+        value_cell, error_cell = want.split(" ", 1)  # the box's value and error columns
+        assert value_cell in texts and error_cell in texts, (want, texts)
+
+
+@pytest.mark.slow
+def test_combined_report_and_summary_carry_every_channel_warning(combined):
+    """A channel's doubt reaches the combination's readers: the dielectron free fit of the
+    demo ends at the window's edge (mass at its bound 110 GeV, results.json ``fit.valid``
+    false), and its warning heads report.html and prints in the summary, named by its
+    channel (the combination printed nothing of it)."""
+    from peaksift.search.combination_report import combination_summary_text
+
+    _, out = combined
+    d = json.loads((out / "results.json").read_text())
+    fit = d["channels"]["dielectron"]["fit"]
+    assert not fit["valid"] and fit["peak_mass"]["value"] == pytest.approx(110.0, abs=0.5)
+    html = (out / "report.html").read_text()
+    summary = combination_summary_text(d)
+    assert html.index("<h2>Warnings</h2>") < html.index("<h2>Combination</h2>")
+    for name, r in d["channels"].items():
+        for w in r["warnings"]:
+            assert f"<li>Warning: {name}: {w['message']}</li>" in html.replace("&#x27;", "'")
+            if w["topic"] != "signal_model":  # those have their own summary line
+                assert f"  WARNING: {name}: {w['message']}" in summary
+    assert any(w["topic"] == "fit" for w in d["channels"]["dielectron"]["warnings"])
+
+
+@pytest.mark.slow
+def test_combined_report_shows_every_figure_it_wrote(combined):
+    """Every figure the combination writes (results.json ``outputs.figures``: the channels'
+    limits, candidates, calibration and signal model too, not only their spectra and
+    p-values) is in report.html, with a caption in words, and in report.md."""
+    import re
+
+    _, out = combined
+    d = json.loads((out / "results.json").read_text())
+    figures = d["outputs"]["figures"]
+    assert {"limits_combined", "dimuon/limits", "dimuon/calibration",
+            "dielectron/signal_model_shapes"} <= set(figures)
+    html = (out / "report.html").read_text()
+    shown = re.findall(r'<img alt="([^"]+)" src="data:image/png;base64,', html)
+    assert sorted(shown) == sorted(figures)
+    captions = re.findall(r"<figcaption>([^<]*)</figcaption>", html)
+    assert all(" " in c and not c.endswith(("_parameters", "_shapes")) for c in captions)
+    md = (out / "report.md").read_text()
+    assert all(f"]({path})" in md for path in figures.values())
+
+
+@pytest.mark.slow
+def test_combined_limits_figure_says_everything_inside_itself(combined):
+    """The combined limits figure's header (method, channels, profiled nuisances) stays
+    inside the figure: its list of nuisances ran off the right edge; every text's box,
+    measured on the renderer, lies within the figure's."""
+    from matplotlib.text import Text
+
+    res, _ = combined
+    fig = res.plot(which="limits")
+    fig.canvas.draw()  # (the axis labels take their places when drawn)
+    renderer = fig.canvas.get_renderer()
+    width = fig.bbox.width
+    header = [t for t in fig.findobj(Text) if "profiled:" in t.get_text()]
+    assert header and all(n in header[0].get_text() for n in res.limits.nuisances)
+    for t in fig.findobj(Text):
+        if t.get_text().strip() and t.get_visible():
+            box = t.get_window_extent(renderer)
+            assert box.x0 >= -1 and box.x1 <= width + 1, (t.get_text(), box.x1, width)
+
+
+@pytest.mark.slow
+def test_combined_cross_section_is_quoted_with_its_error(combined):
+    """The combination's fitted sigma x B at the best mass is quoted with its error, in the
+    report and the notebook repr (it read "3.08 fb" alone): value ± error rounded to two
+    significant digits of the error (common practice).  The error is the one Wald's
+    approximation gives from the scan's own q0 = (mu_hat / sigma)^2 (Cowan, Cranmer, Gross,
+    Vitells, EPJC 71 (2011) 1554, eq. 12-13 and section 3.1) within 20% (a Poisson
+    likelihood at 3 sigma is not quite Gaussian)."""
+    import math
+
+    res, out = combined
+    c = json.loads((out / "results.json").read_text())["combination"]
+    i = c["best_index"]
+    mu, err, q0 = c["cross_section"][i], c["cross_section_error"][i], c["q0"][i]
+    assert err == pytest.approx(mu / math.sqrt(q0), rel=0.2)
+    dec = max(0, 1 - math.floor(math.log10(err)))
+    want = f"{mu:.{dec}f} ± {err:.{dec}f} {c['unit']}"
+    html = (out / "report.html").read_text()
+    assert f"<td>fitted sigma x B at the best mass</td><td>{want}</td>" in html
+    assert f"sigma x B = {want})" in repr(res.combination)
+    from peaksift.search.combination_report import combination_summary_text
+
+    assert f"  sigma x B at best mass     {want}" in combination_summary_text(res.to_dict())
 
 
 def test_sample_masses_from_the_per_event_truth_column(dimuon, demo_dir):

@@ -141,4 +141,4 @@ def test_blinded_report_shows_the_sideband_goodness_of_fit(spectrum):
     assert float(row[3]) == pytest.approx(bf["gof_p_value"], rel=5e-3)
     ref = _independent_fit(spectrum)
     assert float(row[1]) == pytest.approx(ref["chi2"], rel=1e-3) and int(row[2]) == ref["ndf"]
-    assert "| Goodness of fit | n/a |" not in md
+    assert "| Goodness of fit (free fit) | n/a |" not in md

@@ -26,7 +26,8 @@ _TABLE_FONT = 8.8
 
 def value_table_height(n_rows: int, *, caption: str = "", title: str = "") -> float:
     """Height in points of :func:`value_table` with ``n_rows`` rows."""
-    lines = n_rows + (caption.count("\n") + 1 if caption else 0) + (1 if title else 0)
+    lines = (n_rows + (caption.count("\n") + 1 if caption else 0)
+             + (title.count("\n") + 1 if title else 0))
     return lines * _TABLE_FONT * 1.55 + 8.0
 
 
@@ -51,7 +52,8 @@ def touched(ax: Any, artist: Any, x: Any, lo: Any, hi: Any, pad: float = 3.0) ->
 def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: str = "",
                 below: Any = None, corner: str = "right", title: str = "") -> list[Any]:
     """Fitted numbers as a small table: quantity | value | ± error | unit, aligned on the
-    ± sign, with an optional ``title`` row and a ``caption`` line (goodness of fit) under it.
+    ± sign, with an optional ``title`` (one row a line) and a ``caption`` line (goodness of
+    fit) under it.
 
     Placed in the upper ``corner`` ("right" or "left") of ``ax``, below the legend
     ``below`` when given (measured on the figure's renderer).  Returns its artists, the
@@ -70,7 +72,8 @@ def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: 
     # path measures (mathtext measures true)
     cap_w = max((text_width(c, size - 0.6) * (1.0 if "$" in c else 1.04)
                  for c in caption.split("\n")), default=0.0) if caption else 0.0
-    title_w = text_width(title, size, "bold") if title else 0.0
+    title_w = max((text_width(t, size, "bold") for t in title.split("\n")), default=0.0) \
+        if title else 0.0
     inner = max(inner, cap_w, title_w)
     height = value_table_height(len(rows), caption=caption, title=title)
     top = -6.0  # points below the axes' top
@@ -87,8 +90,8 @@ def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: 
                                        facecolor=COLORS["table"], edgecolor="#d3d7dc",
                                        lw=0.6, zorder=4, clip_on=False))]
     y = top - pad - size
-    if title:
-        out.append(ax.text(x0 + pad, y, title, transform=tr, fontsize=size,
+    for line in title.split("\n") if title else ():
+        out.append(ax.text(x0 + pad, y, line, transform=tr, fontsize=size,
                            fontweight="bold", color=COLORS["label"], va="baseline",
                            ha="left", zorder=5))
         y -= row_h

@@ -184,7 +184,8 @@ h1{font-size:1.6rem;margin-bottom:.3rem}h2{font-size:1.25rem;margin-top:2rem;
 border-bottom:1px solid #d6d8dc}h3{font-size:1.05rem}
 table{border-collapse:collapse;margin:.6rem 0 1rem;font-size:.93rem}
 th,td{border:1px solid #d6d8dc;padding:.25rem .6rem;text-align:left;vertical-align:top}
-th{background:#f2f4f6}td.num{text-align:right;font-variant-numeric:tabular-nums}
+th{background:#f2f4f6}td.num{text-align:right;font-variant-numeric:tabular-nums;
+white-space:nowrap}
 .caution{background:#fff6e5;border-left:4px solid #e0a458;padding:.6rem .9rem;margin:1rem 0}
 figure{margin:1rem 0}figure img{max-width:100%;height:auto;border:1px solid #eceef1}
 figcaption{font-size:.9rem;color:#4a4d55}code{font-size:.9em}

@@ -10,6 +10,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from ._format import as_finite, fixed, format_pm, number, p_value
+from ._vocabulary import model_text
 from .report_sections import (
     CAPTIONS,
     Block,
@@ -96,9 +97,9 @@ def _calibration_rows(r: Mapping[str, Any]) -> list[tuple[str, str]] | None:
     rows = [
         ("Particle (tables)", (f"{c.get('particle')}: {num_text(c.get('table_mass'), 6)} GeV, "
                               f"natural width {num_text(c.get('table_width'), 4)} GeV")),
-        ("Fit", (f"{shape} + {c.get('background_shape')} in "
-                f"{fixed((c.get('window') or [None])[0], 1)}-"
-                f"{fixed((c.get('window') or [None, None])[1], 1)} GeV")),
+        ("Model", (f"{model_text('calibration', shape, str(c.get('background_shape')))} in "
+                  f"{fixed((c.get('window') or [None])[0], 1)}-"
+                  f"{fixed((c.get('window') or [None, None])[1], 1)} GeV")),
         ("Fitted mass", format_pm(fm, fe, "GeV")),
         ("Fitted core width (sigma)", format_pm(*value_error(c.get("fitted_resolution")), "GeV")),
         ("Natural width", width),

@@ -11,6 +11,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from ._format import as_finite, fixed, mass_text
+from ._vocabulary import method_words
 from .report_sections import Block, caption_for, figure_block, num_text
 
 
@@ -104,7 +105,8 @@ def section_limits(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     lim = r.get("limits") or {}
     out: list[Block] = [
         ("h2", "Upper limits"),
-        ("p", (f"{_cl_percent(lim)}% CL CLs upper limits ({lim.get('method', 'asymptotic')}) "
+        ("p", (f"{_cl_percent(lim)}% CL CLs upper limits "
+              f"({method_words(str(lim.get('method', 'asymptotic')))}) "
               f"at all {len(rows)} mass points, unit {lim.get('unit', 'events')}; the "
               "expected limit is the median under the background-only hypothesis and "
               "\u00b11\u03c3/\u00b12\u03c3 the edges of its 68%/95% band.")),

@@ -32,6 +32,7 @@ from ._format import (
     p_value,
     significance,
 )
+from ._vocabulary import FITS, model_text
 
 CAUTION = (
     "A local significance is not a discovery. The numbers here come from one dataset and the "
@@ -41,8 +42,9 @@ CAUTION = (
 
 # figure name -> caption, in report order
 CAPTIONS = {
-    "spectrum": "Selected mass spectrum with the signal-plus-background fit at the best mass "
-                "hypothesis, its signal component, and the pulls (data - fit) / error per bin.",
+    "spectrum": f"Selected mass spectrum with the {FITS['free_fit'][0]} (signal plus "
+                "background, started at the best mass hypothesis: its own fitted mass is in "
+                "its box), its signal component, and the pulls (data - fit) / error per bin.",
     "spectrum_log": "The same spectrum on a logarithmic scale.",
     "pvalue_scan": "Local p-value of the background-only hypothesis at each mass hypothesis, "
                    "with the whole-sigma levels (1 to 5) that fall in the axis range and the "
@@ -68,6 +70,17 @@ CAPTIONS = {
             "momentum axis), with the expected Bethe curve of each mass hypothesis times the "
             "calibrated scale; the pairing hypotheses carry the selection band (drawn with the "
             "resolution at the reference number of samples).",
+}
+
+# captions of the figures no section places (drawn at the end of the report, in this order
+# after those a caller added under other names)
+OTHER_CAPTIONS = {
+    "signal_model_parameters": "Signal model from the simulated samples: each shape "
+                               "parameter and the efficiency x acceptance against the "
+                               "generated mass, with the polynomial the scan and the limits "
+                               "interpolate and its 1 sigma band.",
+    "signal_model_shapes": "The simulated samples' mass distributions with the shapes fitted "
+                           "to them.",
 }
 
 # captions that differ while the run is blinded (no fit drawn, nothing shown inside)
@@ -116,6 +129,18 @@ def num_text(x: Any, digits: int = 4) -> str:
     """:func:`peaksift._format.number`: one number format for the summary, report and
     figures (thousands separated by a comma)."""
     return number(x, digits)
+
+
+def fitted_text(fit: Mapping[str, Any], key: str, unit: str = "") -> str:
+    """A fitted number of results.json ``fit`` (``peak_mass``, ``width``, ``signal_yield``,
+    ...) as the fit figure's table and the summary quote it: its profile-likelihood interval
+    where the fit has one, else value ± error."""
+    par = {"peak_mass": "mass", "width": fit.get("width_parameter") or "width"}.get(key, key)
+    iv = (fit.get("intervals") or {}).get(par)
+    value, error = value_error(fit.get(key))
+    if iv:
+        return format_interval(value, *iv, unit)
+    return format_pm(value, error, unit)
 
 
 def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None:
@@ -171,6 +196,38 @@ def value_error(d: Any) -> tuple[Any, Any]:
     return d, None
 
 
+# ------------------------------------------------------------------------------ models
+def fit_models(r: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
+    """The models of the scan and of the free fit in a results dictionary (results.json
+    ``models``; for a file written before that entry, rebuilt from the scan's and the fit's
+    own entries): ``{"scan": {"fit": "scan", "signal": ..., "background": ...,
+    "envelope": [...] with systematics}, "free_fit": {...}}`` (no free fit while blinded)."""
+    if isinstance(r.get("models"), Mapping) and r["models"]:
+        return {k: dict(v) for k, v in r["models"].items() if isinstance(v, Mapping)}
+    out: dict[str, dict[str, Any]] = {}
+    scan, fit = r.get("scan") or {}, r.get("fit") or {}
+    if scan.get("signal_shape"):
+        out["scan"] = {"fit": FITS["scan"][0], "signal": str(scan["signal_shape"]),
+                       "background": str(scan.get("background_shape"))}
+        env = (((r.get("systematics") or {}).get("envelope") or {}).get("labels"))
+        if env:  # the significances with systematics profile the background function
+            out["scan"]["envelope"] = [str(x) for x in env]
+    if fit.get("signal_shapes"):
+        out["free_fit"] = {"fit": FITS["free_fit"][0], "signal": list(fit["signal_shapes"]),
+                           "background": str(fit.get("background_shape"))}
+    return out
+
+
+def models_text(r: Mapping[str, Any], fits: Sequence[str] = ("scan", "free_fit"), *,
+                gives: bool = True) -> list[str]:
+    """The models of ``fits`` (the scan's and the free fit's) as the report and the summary
+    name them (:func:`peaksift._vocabulary.model_text`), each with the numbers it gives."""
+    models = fit_models(r)
+    return [model_text(k, m.get("signal", "n/a"), m.get("background", "n/a"),
+                       envelope=m.get("envelope") or (), gives=gives)
+            for k in fits if (m := models.get(k))]
+
+
 # ------------------------------------------------------------------------------ blocks
 #: one piece of a report: ("h2"|"h3"|"p"|"caution", text), ("table", head, rows),
 #: ("list", items), ("figure", name, caption)
@@ -189,7 +246,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     bl = r.get("blinding") or {}
     # with [systematics] the headline numbers are the profiled ones: say so where they stand
     tag = " (with systematics)" if r.get("systematics") else ""
-    rows = [
+    rows = [("Model", text) for text in models_text(r)] + [
         ("Best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"),
         ("Local significance" + tag, significance(best, "local")),
         ("Global significance" + tag, significance(best, "global")),
@@ -209,7 +266,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         rows.append(("Goodness of fit (background fit on the sidebands only)",
                      gof_text(sideband_gof(bf))))
     else:
-        rows.append(("Goodness of fit", gof_text(fit.get("gof") or {})))
+        rows.append((f"Goodness of fit ({FITS['free_fit'][0]})", gof_text(fit.get("gof") or {})))
     if bl.get("active"):
         w = bl.get("window") or [None, None]
         hr = bl.get("hidden_range")
@@ -220,7 +277,7 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
                                    "signal-plus-background fit until the run is unblinded "
                                    "(--unblind); candidate counts are those of the sidebands")))
     else:
-        rows.append(("Fit valid", "yes" if fit.get("valid") else
+        rows.append((f"Valid ({FITS['free_fit'][0]})", "yes" if fit.get("valid") else
                      "NO: " + "; ".join(fit.get("problems") or ["see the fit section"])))
     return rows
 
@@ -341,7 +398,8 @@ def _provenance_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
 
 def section_other_figures(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     """Figures no section placed (added by callers), so none is silently dropped."""
-    return [("figure", name, name) for name in fig if name not in CAPTIONS]
+    return [("figure", name, OTHER_CAPTIONS.get(name, name)) for name in fig
+            if name not in CAPTIONS]
 
 
 def section_provenance(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:

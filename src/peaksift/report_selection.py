@@ -14,6 +14,7 @@ from .report_sections import (
     Block,
     figure_block,
     is_blinded,
+    models_text,
     num_text,
     window_count_label,
 )
@@ -57,8 +58,9 @@ def _selection_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
     rows.append(("Pairing", f"charge {pr.get('charge')}, choose {pr.get('choose')}"))
     w = sp.get("window") or [None, None]
     rows.append(("Fit window", f"{num_text(w[0])}-{num_text(w[1])} GeV in {sp.get('bins')} bins"))
-    rows.append(("Model", f"signal {md.get('signal')}, background {md.get('background')}"
-                 + (f" {md.get('background_options')}" if md.get("background_options") else "")))
+    rows += [("Model", text) for text in models_text(r)]
+    if md.get("background_options"):
+        rows.append(("Background options", str(md["background_options"])))
     kind = next((k for k in ("relative", "absolute", "table") if res.get(k) is not None), None)
     if kind:
         val = res[kind]

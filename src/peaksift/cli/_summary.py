@@ -34,6 +34,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     """:func:`_summary` from the results dictionary; every number goes through
     :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
     from .._format import fixed, format_pm, mass_text, number, p_value, significance
+    from ..report_sections import models_text
 
     def part(m: Any, key: str) -> Mapping[str, Any]:
         v = m.get(key) if isinstance(m, Mapping) else None
@@ -46,6 +47,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
              _row("events read", number(inp.get("events_read"))),
              _row("candidates in sidebands" if blinded else "candidates in window",
                   number(inp.get("candidates"))),
+             *(_row("model", text) for text in models_text(d)),
              _row("best mass hypothesis", f"{mass_text(best.get('mass'))} GeV")]
     if blinded:  # intended: no fit inside the blinded window, which is not a failure
         lines.append(_row("signal fit", "not made: the run is blinded as configured "

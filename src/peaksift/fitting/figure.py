@@ -85,22 +85,25 @@ def invalid_caption(problems: Any, width: int = 52) -> str:
 def _place_table(ax: Any, legend: Any, draw: Any, keep: tuple[np.ndarray, ...]) -> None:
     """The value table where neither it nor the legend covers a point, an error bar or a
     curve (``keep``: segments for :func:`peaksift._value_table.touched`): under the legend
-    (upper right), else the upper left corner; when neither is free, under the legend with
-    the y axis raised (by 10% of its span a step) until both clear everything.
-    ``draw(corner)`` draws the table there and returns its artists."""
+    (upper right), else the upper left corner, each first with its title on one line, then
+    broken after the fit's name (a long model name widens the box over the data); when
+    none is free, under the legend with the y axis raised (by 10% of its span a step) until
+    both clear everything.  ``draw(corner, wrap)`` draws the table there and returns its
+    artists."""
     from .._value_table import touched
 
     def clear(arts: list[Any]) -> bool:
         return (touched(ax, legend, *keep) == 0
                 and (not arts or touched(ax, arts[0], *keep) == 0))
 
-    for corner in ("right", "left"):
-        arts = draw(corner)
-        if clear(arts):
-            return
-        for a in arts:
-            a.remove()
-    arts = draw("right")
+    for wrap in (False, True):
+        for corner in ("right", "left"):
+            arts = draw(corner, wrap)
+            if clear(arts):
+                return
+            for a in arts:
+                a.remove()
+    arts = draw("right", True)
     for _ in range(60):
         if clear(arts):
             return
@@ -111,7 +114,8 @@ def _place_table(ax: Any, legend: Any, draw: Any, keep: tuple[np.ndarray, ...]) 
 
 def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
                fig: Any = None, run: Any = None, symbol: str | None = None,
-               note: str = "", marks: Any = (), log: bool = False) -> Any:
+               note: str = "", marks: Any = (), log: bool = False,
+               kind: str = "free_fit") -> Any:
     """Data with Poisson error bars, total model, signal and (dashed) background, a pulls
     panel underneath and the fitted numbers in a table.  Returns the matplotlib Figure
     (saved to ``path`` if given).
@@ -122,6 +126,8 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     ``m_{\\mu\\mu}``.  ``marks``: ``(mass, label, colour, linestyle)`` vertical lines drawn
     on both panels and named in the legend (the calibration's fitted and tabulated masses).
     ``log``: a logarithmic count axis (set before the legend and the table are placed).
+    ``kind``: which fit this is, a key of :data:`peaksift._vocabulary.FITS` (``"free_fit"``,
+    ``"calibration"``): the table's title names the model as every output does.
 
     Unweighted counts get central 68.3 % Garwood intervals
     (``chi2.ppf(0.1587, 2n)/2``, ``chi2.ppf(0.8413, 2n+2)/2``; Garwood, Biometrika 28
@@ -133,6 +139,7 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
 
     from .._style import COLORS, draw_header, figure_style, new_figure
     from .._value_table import value_table
+    from .._vocabulary import model_text
 
     e, n = result.edges, result.observed
     c = 0.5 * (e[1:] + e[:-1])
@@ -185,9 +192,9 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
         caption = gof_caption(result)
         if not result.valid:
             caption += "\n" + invalid_caption(result.problems)
-        shapes = " + ".join(s.name for s in result.model.signals)
         rows = parameter_rows(result)
-        title_t = f"fit: {shapes} + {result.model.background.name}"
+        title_t = model_text(kind, [s.name for s in result.model.signals],
+                             result.model.background.name)
         draw_header(a1, run, note or title or "")
         # what neither the legend nor the table may cover: the points with their error
         # bars and every curve drawn (its samples)
@@ -196,9 +203,9 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
         keep = (np.concatenate([c, np.tile(xs, len(curves))]),  # (a log axis: from its floor)
                 np.maximum(np.concatenate([(n - lo_err) * scale_n, drawn]), floor),
                 np.maximum(np.concatenate([(n + hi_err) * scale_n, drawn]), floor))
-        _place_table(a1, leg, lambda corner: value_table(
+        _place_table(a1, leg, lambda corner, wrap: value_table(
             a1, rows, caption=caption, below=leg if corner == "right" else None,
-            corner=corner, title=title_t), keep)
+            corner=corner, title=title_t.replace(": ", ":\n", 1) if wrap else title_t), keep)
         a2.axhline(0, color=COLORS["background"], lw=0.8)
         for lvl in (-2, 2):
             a2.axhline(lvl, color=COLORS["background"], lw=0.6, ls=":")

@@ -3,7 +3,7 @@ basin than any of its starts reached.
 
 :func:`peaksift.fitting.fit` minimises from every start :func:`~peaksift.likelihood.
 starts.fit_starts` offers and keeps the lowest minimum; :mod:`.polish` then takes an invalid
-one on to the lowest point of its own valley.  Two kinds of basin lie beyond both, each
+one on to the lowest point of its own valley.  Three kinds of basin lie beyond both, each
 behind a wall no start's path crosses, and each shows in the invalid minimum itself:
 
 * **the other sign of the signal.**  At a signal yield of zero the NLL does not depend on
@@ -27,12 +27,18 @@ behind a wall no start's path crosses, and each shows in the invalid minimum its
   its floor / ``FLOOR_FRACTION``), the fit starts once more from that minimum with the core
   at the width the fit's first start had and the tails at their starts (the shape's
   defaults, or the caller's).
+* **a Crystal Ball's tail switched off.**  A tail whose alpha is :data:`TAIL_OFF` or more
+  starts where the core has no density left: its alpha and n do not change the NLL, and
+  a heavier tail from nearer the core, lower still, is not reached from there
+  (crystalball/31: alpha_high 9.2, 0.0091 above a tail from 2.8 widths with n_high at
+  1.01; /40 0.0085, /41 0.0016, /22 0.0009).  Where the core is resolved (not restarted as
+  above), each such tail is restarted alone, at its starts, the rest of the minimum kept.
 
 A valid fit is never restarted: its numbers and its cost are the same as without this
 module.  Each restart is minimised as the fit's starts are, after them, and kept only when
 lower (its evaluations count in ``n_calls``, not among ``starts_tried``); it costs only
-where a fit is invalid and its minimum shows the sign or the core undetermined (14 and 16
-of the set's 195 invalid fits).
+where a fit is invalid and its minimum shows the sign, the core or a tail undetermined
+(14, 16 and 6 of the set's 195 invalid fits).
 """
 
 from __future__ import annotations
@@ -45,7 +51,7 @@ from ..likelihood import Model
 from .outcome import FLOOR_FRACTION
 from .polish import errors_of
 
-__all__ = ["SIGN_ERRORS", "restart_points"]
+__all__ = ["SIGN_ERRORS", "TAIL_OFF", "restart_points"]
 
 #: an invalid minimum's signal yield within this many of its errors of zero has its sign
 #: restarted: at one error only gauss_exp_z0/9 of the set's 195 invalid fits qualifies,
@@ -54,6 +60,12 @@ __all__ = ["SIGN_ERRORS", "restart_points"]
 #: many errors) the sign is not restarted, which found nothing in the set but 1.8e-4
 #: lower in powerlaw_1350/8 for +14,300 evaluations
 SIGN_ERRORS = 2.0
+
+#: a Crystal Ball tail whose alpha is at least this is switched off: it starts beyond 5
+#: widths, where a Gaussian core has 3e-7 of its area left, so neither its alpha nor its n
+#: changes the NLL and a minimiser does not come back from there (of the set's 46 invalid Crystal
+#: Balls, 6 with a core wider than a bin have one; their restarts cost 359 evaluations)
+TAIL_OFF = 5.0
 
 
 def restart_points(model: Model, best_x: np.ndarray, cov: np.ndarray | None,
@@ -94,4 +106,12 @@ def restart_points(model: Model, best_x: np.ndarray, cov: np.ndarray | None,
         s[tails] = base[tails]
         s[narrow] = first[narrow]
         out.append(np.minimum(np.maximum(s, lower), upper))
+    elif tails:
+        names = {pn[i - sl.start]: i for i in tails}
+        for side in ("low", "high"):
+            off = [names[k] for k in (f"alpha_{side}", f"n_{side}") if k in names]
+            if f"alpha_{side}" in names and full[names[f"alpha_{side}"]] >= TAIL_OFF:
+                s = full.copy()
+                s[off] = base[off]
+                out.append(np.minimum(np.maximum(s, lower), upper))
     return out

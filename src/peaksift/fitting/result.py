@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 
 from .. import shapes as _shapes
+from .._format import format_interval, p_value
 from .._json import finite as number
 from .._values import FrozenValue, Measurement
 from ..errors import FitError
@@ -360,15 +361,15 @@ class FitResult(FrozenValue):
         w = max(len(n) for n in self.parameters)
         for n in self.parameters:
             tag = " (fixed)" if n in self.fixed else ""
-            if self.intervals and n in self.intervals:
-                lo, hi = self.intervals[n]
-                tag += f"  interval {lo:+.3g}/{hi:+.3g}"
+            if self.intervals and n in self.intervals:  # rounded as the summary's
+                ends = format_interval(self.values[n], *self.intervals[n]).partition(" ")[2]
+                tag += f"  interval {ends}" if ends else ""
             lines.append(f"  {n:<{w}} = {format_value(self.values[n], self.errors[n])}{tag}")
         lines.append(f"  peak: mass {format_value(self.peak_mass, self.peak_mass_error)} "
                      f"{self.unit}, FWHM {format_value(self.fwhm, self.fwhm_error)} {self.unit}")
         if self.gof_ndf > 0 and math.isfinite(self.gof_chi2):
             lines.append(f"  GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
-                         f"p = {self.gof_p_value:.3g}")
+                         f"p = {p_value(self.gof_p_value)}")
         else:
             lines.append("  GoF: not defined (no degrees of freedom left"
                          + (", unbinned fit" if not self.binned else "") + ")")
@@ -377,14 +378,17 @@ class FitResult(FrozenValue):
     def _repr_html_(self) -> str:
         status = ("<b>valid</b>" if self.valid else
                   "<b>INVALID</b>: " + html.escape("; ".join(self.problems)))
+        # value and error as the repr, the report and the figure round them (two significant
+        # digits of the error), not a value with more digits than its error carries
+        parts = {n: format_value(self.values[n], self.errors[n]).partition(" \u00b1 ")
+                 for n in self.parameters}
         rows = "".join(
-            f"<tr><td>{html.escape(n)}</td><td>{self.values[n]:.6g}</td>"
-            f"<td>{self.errors[n]:.3g}</td><td>{'fixed' if n in self.fixed else ''}</td></tr>"
-            for n in self.parameters)
+            f"<tr><td>{html.escape(n)}</td><td>{parts[n][0]}</td><td>{parts[n][2]}</td>"
+            f"<td>{'fixed' if n in self.fixed else ''}</td></tr>" for n in self.parameters)
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
         return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
                 f"({html.escape(self.binned_reason)}); GoF chi2/ndf = {self.gof_chi2:.1f}/"
-                f"{self.gof_ndf}, p = {self.gof_p_value:.3g}</p>{notes}"
+                f"{self.gof_ndf}, p = {p_value(self.gof_p_value)}</p>{notes}"
                 f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
                 f"{rows}</table><p>peak mass "
                 f"{html.escape(format_value(self.peak_mass, self.peak_mass_error))} "
@@ -393,15 +397,16 @@ class FitResult(FrozenValue):
 
     def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
              run: Any = None, symbol: str | None = None, note: str = "",
-             log: bool = False) -> Any:
+             log: bool = False, kind: str = "free_fit") -> Any:
         """Data, total model, signal and background, with pulls underneath and the fitted
         numbers in a table; returns a matplotlib Figure drawn without pyplot (the user's
         backend is left alone).  ``fig``: draw on this empty Figure instead; ``run``: a
         run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``); ``log``: a
-        logarithmic count axis.  See
+        logarithmic count axis; ``kind``: which fit this is (``"free_fit"``, ``"calibration"``:
+        the table's title names the model so).  See
         :func:`peaksift.fitting.figure.fit_figure`."""
         from .figure import fit_figure
 
         return fit_figure(self, path, title=title, fig=fig, run=run, symbol=symbol,
-                          note=note, log=log)
+                          note=note, log=log, kind=kind)
 

@@ -32,8 +32,9 @@ from numba import njit
 
 from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
 from .kernels import poisson_pass, solve_small
-from .poisson import WALL_FRACTION, WALL_MU
+from .poisson import WALL_FRACTION
 from .second_rows import gaussian_phi, gaussian_second, powerlaw_second
+from .wall_info import wall_info
 
 __all__ = ["compiled_fisher_scoring", "compiled_observed_hessian", "problem_of"]
 
@@ -100,24 +101,6 @@ def _finite_sum(a):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def _wall_info(prob, info, b, mu_x, jac_x):  # pragma: no cover - compiled
-    """:meth:`.cost.BinnedCost.wall_terms` from the buffers of the point just evaluated:
-    ``b`` the information without the empty bins not yet at the wall, ``mu_x``, ``jac_x``
-    copies of the expectation and the Jacobian."""
-    n, s, unit, mu, jac = prob[12], prob[13], prob[14], prob[17], prob[18]
-    npar = b.shape[0]
-    b[:, :] = info
-    for j in range(mu.size):
-        mu_x[j] = mu[j]
-        if n[j] == 0.0 and mu[j] >= WALL_MU:
-            w = (1.0 if unit else s[j]) / mu[j]
-            for a in range(npar):
-                for c in range(npar):
-                    b[a, c] -= w * jac[a, j] * jac[c, j]
-    jac_x[:, :] = jac
-
-
-@njit(cache=True, nogil=True)
 def _system(m, lam, held, out):  # pragma: no cover - compiled
     """``m + lam diag(m)`` with held parameters' rows and columns the identity's."""
     npar = m.shape[0]
@@ -168,16 +151,24 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
     x_out[:] = x
     if not (math.isfinite(f) and _finite_sum(g) and _finite_sum(info)):
         return NOT_CONVERGED, f, calls
-    has_empty = False
+    n_empty = 0
     for j in range(nb):
         if n[j] == 0.0:
-            has_empty = True
-            break
+            n_empty += 1
+    has_empty = n_empty > 0
+    empty = np.empty(n_empty, np.int64)  # the empty bins, ascending
+    k = 0
+    for j in range(nb if has_empty else 0):
+        if n[j] == 0.0:
+            empty[k] = j
+            k += 1
+    at_wall = np.empty(n_empty, np.int64)
+    w_wall = np.empty(n_empty)
     b = np.empty((npar, npar))
     mu_x = np.empty(nb if has_empty else 0)
     jac_x = np.empty((npar, nb if has_empty else 0))
     if has_empty:
-        _wall_info(prob, info, b, mu_x, jac_x)
+        wall_info(prob, info, b, mu_x, jac_x, empty, at_wall, w_wall)
     lam = 0.0
     stalled = 0
     a = np.empty((npar, npar))
@@ -255,7 +246,7 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
                 g[:] = g_buf
                 info[:, :] = i_buf
                 if has_empty:
-                    _wall_info(prob, info, b, mu_x, jac_x)
+                    wall_info(prob, info, b, mu_x, jac_x, empty, at_wall, w_wall)
                 lam = 0.0 if lam <= 1e-3 else lam / 10.0
                 accepted = True
                 break

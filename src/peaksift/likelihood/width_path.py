@@ -226,8 +226,8 @@ def width_path(x, lo, hi, n, s, g, dg, mass, lo_m, hi_m, widths, own, band, y0, 
                 if band0 < 0:
                     band0, band1 = 0, 0
                     break
-                a0, a1, cur = _profile_row(n, s, f, g, 0, sums[0], sums[1], sums[2], a0,
-                                           a1, _YIELD_ITERATIONS)
+                a0, a1, cur = _profile_row(n, s, f, g, 0, band0, band1, sums[0], sums[1],
+                                           sums[2], a0, a1, _YIELD_ITERATIONS)
                 if not cur < best:  # the mass step went uphill: half of it, from the best
                     step *= 0.5
                     m, a0, a1 = bm + step, b0, b1

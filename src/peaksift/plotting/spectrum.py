@@ -177,4 +177,5 @@ def calibration_fit_figure(cal: Any, fr: Any, labels: FigureLabels) -> Any:
         marks.append((float(fm), "fitted mass", COLORS["mark"], "-"))
     if fixed(ref) != "n/a":
         marks.append((float(ref), "mass in the tables", COLORS["accent"], "-."))
-    return fit_figure(fr, run=labels.run, symbol=labels.symbol, note=note, marks=marks)
+    return fit_figure(fr, run=labels.run, symbol=labels.symbol, note=note, marks=marks,
+                      kind="calibration")

@@ -369,6 +369,9 @@ def _write(res: CombinedSearchResult, stage: Path, target: Path,
     if figure_wanted(figures, "pvalue_scan"):
         res.plot(figdir / "pvalue_combined.png", which="pvalue_scan")
         figs["pvalue_combined"] = figdir / "pvalue_combined.png"
+    if res.limits is not None and figure_wanted(figures, "limits"):
+        res.plot(figdir / "limits_combined.png", which="limits")
+        figs["limits_combined"] = figdir / "limits_combined.png"
     for name, r in res.channels.items():
         cfg = r.config
         sub = figdir / name

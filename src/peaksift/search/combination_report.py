@@ -15,7 +15,15 @@ from collections.abc import Mapping
 from typing import Any
 
 from .._format import fixed, format_pm, mass_text, number, p_value
+from .._vocabulary import FITS
 from ..report import CAUTION, blocks_html, blocks_markdown
+from ..report_sections import (
+    CAPTIONS,
+    OTHER_CAPTIONS,
+    fitted_text,
+    models_text,
+    section_warnings,
+)
 from ..stats.envelope_choice import read_channel_entries
 from .doubts import doubtful_limits_note
 
@@ -41,14 +49,12 @@ def channel_rows(name: str, r: Mapping[str, Any]) -> list[str]:
     """One row of the channels table from a channel's results.json dict."""
     best = r.get("best") or {}
     fit = r.get("fit") or {}
-    peak = fit.get("peak_mass") or {}
     lim = r.get("limits") or {}
     exp = [v for v in (lim.get("expected") or []) if v is not None]
     eff = (r.get("signal_model") or {}).get("points", {}).get("efficiency", {}).get("value")
     return [name, mass_text(best.get("mass")), _m(best.get("z_local")),
             p_value(best.get("p_local")), _m(best.get("z_global")),
-            format_pm(peak.get("value"), peak.get("error"))
-            + ("" if fit.get("valid", True) else " (fit NOT valid)"),
+            fitted_text(fit, "peak_mass") + ("" if fit.get("valid", True) else " (fit NOT valid)"),
             f"{_m(min(exp))}-{_m(max(exp))} {lim.get('unit', '')}" if exp else "n/a",
             "from samples" if eff else "given"]
 
@@ -63,8 +69,7 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
     window = scan.get("window") or []
     rows = [["search window", f"{_m(window[0])}-{_m(window[1])} GeV" if window
              else "n/a"],
-            ["signal / background model", (f"{scan.get('signal_shape', 'n/a')} / "
-             f"{scan.get('background_shape', 'n/a')}")],
+            *(["model", text] for text in models_text(r)),
             ["best mass hypothesis", f"{mass_text(best.get('mass'))} GeV"],
             ["local significance", (f"{_m(best.get('z_local'))} σ "
              f"(p = {p_value(best.get('p_local'))})")],
@@ -72,9 +77,8 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
              f"(p = {p_value(best.get('p_global'))})")]]
     for key, label in (("peak_mass", "fitted peak mass [GeV]"),
                        ("signal_yield", "fitted signal events")):
-        v = fit.get(key) or {}
-        if v:
-            rows.append([label, format_pm(v.get("value"), v.get("error"))])
+        if fit.get(key):
+            rows.append([label, fitted_text(fit, key)])
     if fit and not fit.get("valid", True):
         rows.append(["fit status", "NOT valid: " + "; ".join(str(p) for p in
                                                        fit.get("problems") or [])])
@@ -90,6 +94,22 @@ def _channel_table(name: str, r: Mapping[str, Any]) -> list[Any]:
     return [("h3", f"Channel {name}"), ("table", ["quantity", "value"], rows)]
 
 
+def _channel_warnings(d: Mapping[str, Any]) -> list[dict[str, str]]:
+    """Every channel's doubts (its results.json ``warnings``), each named by its channel."""
+    return [{"topic": str(w.get("topic")), "message": f"{n}: {w.get('message')}"}
+            for n, r in d["channels"].items() for w in r.get("warnings") or []
+            if isinstance(w, Mapping)]
+
+
+def _cross_section_text(c: Mapping[str, Any]) -> str:
+    """The combined fit's sigma x B at the best mass with its error (results.json
+    ``combination``: ``cross_section_error`` at ``best_index``)."""
+    best = c.get("best") or {}
+    errors, i = c.get("cross_section_error") or [], c.get("best_index")
+    error = errors[i] if isinstance(i, int) and 0 <= i < len(errors) else None
+    return format_pm(best.get("cross_section"), error, str(c.get("unit") or ""))
+
+
 def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None = None
                        ) -> list[Any]:
     """The combination's report as blocks (``d`` is its results.json)."""
@@ -98,7 +118,9 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
     g = d.get("best") or {}
     best = c.get("best") or {}
     out: list[Any] = [("h1", f"Combined search: {', '.join(d['channels'])}"),
-                      ("caution", CAUTION), ("h2", "Combination"),
+                      ("caution", CAUTION),
+                      *section_warnings({"warnings": _channel_warnings(d)}, fig),
+                      ("h2", "Combination"),
                       ("p", ("One cross-section x branching fraction shared by every channel; the "
                        "likelihood is the product of the channels' (each with its own "
                        "background, signal model, efficiency and luminosity), with the "
@@ -109,8 +131,7 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
             ["global significance", (f"{_m(g.get('z_global'))} σ "
              f"(p = {p_value(g.get('p_global'))}, {g.get('global_method', 'n/a')}; toys "
              "generate every channel)")],
-            ["fitted sigma x B at the best mass", (f"{_f(best.get('cross_section'))} "
-             f"{c.get('unit', '')}")]]
+            ["fitted sigma x B at the best mass", _cross_section_text(c)]]
     for name, v in (d.get("nuisances_at_best") or {}).items():
         if "shift_at_best" in v:
             rows.append([f"shape factor {name} (k - 1 at the best mass)",
@@ -133,16 +154,24 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                     "discovery).")))
     out += [("h2", "Channels"),
             ("table", ["channel", "best mass [GeV]", "Z local", "p local", "Z global",
-                       "fitted mass [GeV]", "expected limits", "efficiency"],
+                       f"{FITS['free_fit'][0]} mass [GeV]", "expected limits (lowest-highest)",
+                       "efficiency"],
              [channel_rows(n, r) for n, r in d["channels"].items()]),
             ("p", ("Each channel's numbers are those of its own search (its own configuration "
              "run alone gives the same)."))]
     for n, r in d["channels"].items():
         out += _channel_table(n, r)
-        for key, what in (("spectrum", "mass spectrum with the fit"),
+        for key, what in (("spectrum", f"mass spectrum with the {FITS['free_fit'][0]}"),
                           ("pvalue_scan", "local p-value scan")):
             if f"{n}/{key}" in fig:
                 out.append(("figure", f"{n}/{key}", f"Channel {n}: {what}."))
+        # the channel's other figures written beside them (its own limits, candidates,
+        # calibration, signal model): none left out of the report
+        for key in fig:
+            sub = key.partition("/")[2]
+            if key.startswith(f"{n}/") and sub not in ("spectrum", "pvalue_scan"):
+                out.append(("figure", key, f"Channel {n}: "
+                            + CAPTIONS.get(sub, OTHER_CAPTIONS.get(sub, sub))))
     lim = d.get("limits")
     if lim:  # every mass: the point that matters is never the one a stride skips
         masses = lim["masses"]
@@ -151,8 +180,13 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
                  f"{_m(lim['expected_minus1'][i])} to {_m(lim['expected_plus1'][i])}",
                  f"{_m(lim['expected_minus2'][i])} to {_m(lim['expected_plus2'][i])}",
                  methods[i]] for i in range(len(masses))]
-        out += [("h2", f"Combined upper limits ({100 * lim['cl']:.0f}% CLs, {lim['unit']})"),
-                ("table", ["mass [GeV]", "observed", "expected", "expected ±1 sigma",
+        out.append(("h2", f"Combined upper limits ({100 * lim['cl']:.0f}% CLs, {lim['unit']})"))
+        if "limits_combined" in fig:
+            out.append(("figure", "limits_combined", (
+                "Combined upper limits on sigma x B at each mass hypothesis: observed, and the "
+                "expected median with its 68% and 95% bands under the background-only "
+                "hypothesis; thin, each channel's own expected limit.")))
+        out += [("table", ["mass [GeV]", "observed", "expected", "expected ±1 sigma",
                            "expected ±2 sigma", "method"], rows)]
         if lim.get("notes"):
             out.append(("list", list(lim["notes"])))
@@ -188,16 +222,20 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
              f"  best mass hypothesis       {mass_text(best.get('mass'))} GeV",
              f"  local significance         {_m(best.get('z_local'))} sigma",
              (f"  global significance        {_m(g.get('z_global'))} sigma "
-             f"({g.get('global_method', 'n/a')})")]
+             f"({g.get('global_method', 'n/a')})"),
+             f"  sigma x B at best mass     {_cross_section_text(d['combination'])}"]
     for n, r in d["channels"].items():
         b = r.get("best") or {}
         lines.append(f"  {n:<26} best {mass_text(b.get('mass'))} GeV, "
-                     f"Z_local {_m(b.get('z_local'))}")
+                     f"Z_local {_m(b.get('z_local'))}"
+                     + "".join(f" ({t})" for t in models_text(r, ["scan"], gives=False)))
     doubtful = [n for n, r in d["channels"].items()
                 if (r.get("signal_model") or {}).get("doubtful")]
     if doubtful:
         lines.append(f"  signal model doubtful in   {', '.join(doubtful)} (see the report)")
     # the combined limits' notes that are warnings (as a search's limits warnings)
+    lines += [f"  WARNING: {w['message']}" for w in _channel_warnings(d)
+              if w["topic"] != "signal_model"]  # (the line above names those channels)
     lines += [f"  WARNING: combined limits: {note}"
               for note in (d.get("limits") or {}).get("notes") or []
               if doubtful_limits_note(note)]

@@ -9,7 +9,9 @@ from typing import Any
 
 import numpy as np
 
+from .._vocabulary import FITS
 from ..config import Config
+from ..report_sections import fit_models, fitted_text
 from .common import _blinded_fit, _events_selected, _hidden, _in_window, _scan_signal_name
 from .doubts import doubts
 
@@ -207,9 +209,10 @@ class SearchResult:
         rows = [("best mass", f"{mass_text(b.get('mass'))} GeV"),
                 ("local", significance(b, "local")),
                 ("global", significance(b, "global"))]
-        if self.fit is not None:
-            rows += [("fitted mass", f"{self.fit.peak_mass} GeV"),
-                     ("signal yield", str(self.fit.signal_yield))]
+        if self.fit is not None:  # as the summary quotes them: intervals where made
+            fit, free = _fit_dict(self.fit), FITS["free_fit"][0]
+            rows += [(f"{free} mass", fitted_text(fit, "peak_mass", "GeV")),
+                     (f"{free} signal yield", fitted_text(fit, "signal_yield"))]
         elif (self.blinding or {}).get("active"):
             rows.append(("fit", "not made: blinded as configured"))
         if self.limits is not None:
@@ -249,6 +252,12 @@ class SearchResult:
     def warnings(self) -> list[dict[str, Any]]:
         """The doubtful results flagged (results.json ``warnings``)."""
         return list(self.to_dict()["warnings"])
+
+    @property
+    def models(self) -> dict[str, dict[str, Any]]:
+        """The models of the scan and of the free fit, each with the name of its fit
+        (results.json ``models``; every output names them so)."""
+        return dict(self.to_dict()["models"])
 
     @property
     def outputs(self) -> dict[str, Any] | None:
@@ -391,6 +400,7 @@ class SearchResult:
         }
         if self.signal_model is not None:  # absent without [signal_model]: today's keys
             out["signal_model"] = self.signal_model.to_dict()
+        out["models"] = fit_models(out)  # which fit each number comes from, by name
         out["warnings"] = doubts(out)  # after every section it reads
         if self.outdir is not None:
             out["outputs"] = {"dir": str(self.outdir),

@@ -36,6 +36,7 @@ import numpy as np
 
 from .._json import plain
 from .._values import FrozenValue
+from .._vocabulary import method_words
 from ..errors import FitError
 from .channel_envelope import channel_candidates, null_choice
 from .channel_toys import run_joint_toy_limit
@@ -101,7 +102,8 @@ class CombinedLimits(FrozenValue):
         obs = self.observed
         rows = [("channels", ", ".join(self.channels)),
                 ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
-                ("limit", f"{self.cl:.0%} CL CLs ({self.method}) on sigma x B [{self.unit}]"),
+                ("limit", (f"{self.cl:.0%} CL CLs ({method_words(self.method)}) on sigma x B "
+                           f"[{self.unit}]")),
                 ("expected", f"{np.nanmin(self.expected):.3g}-{np.nanmax(self.expected):.3g}")]
         if np.isfinite(obs).any():
             rows.append(("observed", f"{np.nanmin(obs):.3g}-{np.nanmax(obs):.3g}"))

@@ -43,6 +43,7 @@ from typing import Any
 
 import numpy as np
 
+from .._format import format_pm, mass_text
 from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
@@ -399,11 +400,15 @@ class Combination(FrozenValue):
                 "p_local": float(self.p_local[i]), "q0": float(self.q0[i]),
                 "cross_section": float(self.cross_section[i])}
 
+    def _cross_section_text(self) -> str:
+        """sigma x B at the best mass with its error (two significant digits of the error)."""
+        i = self.best_index
+        return format_pm(self.cross_section[i], self.cross_section_error[i], self.unit)
+
     def __repr__(self) -> str:
         b = self.best
-        return (f"Combination({', '.join(self.channels)}; best {b['mass']:.4g} GeV: "
-                f"Z_local = {b['z_local']:.2f}, sigma x B = {b['cross_section']:.3g} "
-                f"{self.unit})")
+        return (f"Combination({', '.join(self.channels)}; best {mass_text(b['mass'])} GeV: "
+                f"Z_local = {b['z_local']:.2f}, sigma x B = {self._cross_section_text()})")
 
     def _summary(self) -> list[tuple[str, str]]:
         b = self.best
@@ -411,7 +416,7 @@ class Combination(FrozenValue):
                 ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
                 ("best mass", f"{b['mass']:.2f} GeV"),
                 ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
-                ("sigma x B at best", f"{b['cross_section']:.3g} {self.unit}")]
+                ("sigma x B at best", self._cross_section_text())]
         if self.blind is not None:
             rows.append(("blinded", f"{self.blind[0]:g}-{self.blind[1]:g} GeV"))
         return rows

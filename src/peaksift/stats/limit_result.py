@@ -11,6 +11,7 @@ import numpy as np
 
 from .._json import plain
 from .._values import FrozenValue
+from .._vocabulary import method_words
 from ..errors import FitError
 
 #: Below this many background events expected under the signal (``b_eff``, see
@@ -104,7 +105,7 @@ class LimitResult(FrozenValue):
         obs = np.where(self.blinded, np.nan, self.observed)
         out = [("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
                           f"{self.mass_unit}")),
-               ("limit", f"{self.cl:.0%} CL CLs ({self.method}) on "
+               ("limit", f"{self.cl:.0%} CL CLs ({method_words(self.method)}) on "
                          + ("the signal yield" if self.unit == "events" else
                             f"sigma x B [{self.unit}]"))]
         if np.any(np.isfinite(obs)):
@@ -241,7 +242,8 @@ class LimitResult(FrozenValue):
             ax.set_ylabel(f"{self.cl:.0%} CL upper limit on {what}")
             ax.legend(loc="upper right", ncol=2)
             assumptions = assumptions or assumptions_text(self.assumptions)
-            note = f"CLs ({self.method})" + (f";  {assumptions}" if assumptions else "")
+            note = f"CLs ({method_words(self.method)})" + (f";  {assumptions}" if assumptions
+                                                           else "")
             draw_header(ax, run, (title + "\n" + note) if title else note)
             if path is not None:
                 fig.savefig(path)

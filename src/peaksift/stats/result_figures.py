@@ -26,10 +26,12 @@ from .._style import (
     COLORS,
     draw_header,
     figure_style,
+    margins,
     new_figure,
     plain_log_ticks,
     shade_blinded,
 )
+from .._vocabulary import method_words
 from .significance import p_from_q0
 
 __all__ = ["background_candidate_figure", "background_choice_figure",
@@ -146,9 +148,10 @@ def combined_limits_figure(lim: Any, path: Any = None, *, run: Any = None,
             rf"$\sigma \times B$ [{lim.unit}]"
         ax.set_ylabel(f"{lim.cl:.0%} CL upper limit on {what}")
         ax.legend(loc="upper right", ncol=2, fontsize=8.5)
-        note = f"combined CLs ({lim.method}) of {' + '.join(lim.channels)}"
-        if lim.nuisances:
-            note += f";  profiled: {', '.join(lim.nuisances)}"
+        note = f"combined CLs ({method_words(lim.method)}) of {' + '.join(lim.channels)}"
+        if lim.nuisances:  # a line of its own: beside the rest it ran off the figure
+            note += f"\nprofiled: {', '.join(lim.nuisances)}"
+            margins(fig, top=0.78)
         draw_header(ax, run, note)
     if path is not None:
         fig.savefig(path)

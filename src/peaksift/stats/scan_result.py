@@ -88,11 +88,13 @@ class ScanResult(FrozenValue):
                 "p_local": float(self.p_local[i]), "q0": float(self.q0[i])}
 
     def __repr__(self) -> str:
+        from .._format import mass_text, p_value
+
         b = self.best
         blind = "" if self.blind is None else f", blinded {self.blind[0]:g}-{self.blind[1]:g}"
         return (f"ScanResult({self.masses.size} masses {self.masses[0]:g}-{self.masses[-1]:g} "
-                f"{self.unit}, best {b['mass']:.4g} {self.unit}: Z_local = {b['z_local']:.2f}, "
-                f"p_local = {b['p_local']:.3g}{blind})")
+                f"{self.unit}, best {mass_text(b['mass'])} {self.unit}: Z_local = "
+                f"{b['z_local']:.2f}, p_local = {p_value(b['p_local'])}{blind})")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict: the search's ``scan`` keys (``masses``, ``z_local``, ``p_local``,
@@ -156,11 +158,13 @@ class ScanResult(FrozenValue):
     def _repr_html_(self) -> str:
         import html
 
+        from .._vocabulary import model_text
+
         b = self.best
         rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>" for k, v in (
             ("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
                        f"{self.unit}")),
-            ("model", f"{self.signal_shape} + {self.background_shape}"),
+            ("model", model_text("scan", self.signal_shape, self.background_shape)),
             ("best mass", f"{b['mass']:.2f} {self.unit}"),
             ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
             ("blinded", "no" if self.blind is None else
@@ -312,11 +316,39 @@ class ScanResult(FrozenValue):
                         f"$Z_{{local}}$ = {fixed(global_result['z_local'])},  "
                         f"$Z_{{global}}$ = {fixed(global_result['z_global'])} "
                         f"({global_result['global_method']})")
-            ax.legend(loc="lower left")
+            marks = ([m[self.best_index]], [pb]) if np.any(np.isfinite(p)) else ([], [])
+            _legend_off_the_curves(ax, m, [p] + ([pe] if expected is not None else []), marks)
             draw_header(ax, run, note)
             if path is not None:
                 fig.savefig(path)
         return fig
+
+
+def _legend_off_the_curves(ax: Any, m: np.ndarray, curves: list[np.ndarray],
+                           marks: tuple[list[float], list[float]]) -> None:
+    """The legend in the lower left corner, or the first other place where it covers
+    fewer points of the curves and ``marks`` (x, y) (a deep excess reaches that corner and
+    the legend's text ran over the curve); the curves are sampled finely between their
+    points (on the log axis) so a line passing through the box counts."""
+    from .._value_table import touched
+
+    fine = np.linspace(m[0], m[-1], 2000)
+    ys = []
+    for c in curves:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            y = 10.0 ** np.interp(fine, m, np.log10(np.asarray(c, float)))
+        ys.append(np.where(np.isfinite(y), y, np.nan))
+    x = np.concatenate([np.tile(fine, len(ys)), marks[0]])
+    y = np.concatenate([*ys, marks[1]])
+    best = None
+    for loc in ("lower left", "lower right", "center left", "center right"):
+        leg = ax.legend(loc=loc)
+        n = touched(ax, leg, x, y, y)
+        if best is None or n < best[0]:
+            best = (n, loc)
+        if n == 0:
+            return
+    ax.legend(loc=best[1])
 
 
 def _z_of_p(p: float) -> float:
