@@ -721,6 +721,23 @@ def test_doubts_thresholds():
     assert doubts(_results(limits=inside)) == []
 
 
+def test_fit_warnings_name_the_free_fit():
+    """The invalid-fit and goodness-of-fit warnings name the fit they are about as the
+    report's Result table ('Valid (free fit)', 'Goodness of fit (free fit)') and the
+    spectrum figure's box ('free fit: ...') name it: 'the free fit', words written here.
+    They said 'the signal-plus-background fit' (the scan's fits are that too, and its
+    numbers stand) and 'the fit at the best mass' (its mass floats from there)."""
+    from peaksift.search.doubts import GOF_P_MIN, doubts
+
+    bad = _results(fit={"valid": False, "problems": ["mass at a bound (110)"],
+                        "gof": {"p_value": GOF_P_MIN / 2}})
+    msgs = {w["topic"]: w["message"] for w in doubts(bad)}
+    assert msgs["fit"].startswith("the free fit is invalid (mass at a bound (110))")
+    assert msgs["goodness_of_fit"].startswith("the free fit has goodness-of-fit p = 0.0005")
+    for m in msgs.values():
+        assert "signal-plus-background fit" not in m and "fit at the best mass" not in m
+
+
 def test_unmodelled_peak_is_flagged_everywhere(tmp_path, capsys):
     """Case 61: a second narrow peak the one-signal model cannot follow: the fit's
     goodness-of-fit p (checked against scipy's chi-square survival function, 1e-6
@@ -741,7 +758,7 @@ def test_unmodelled_peak_is_flagged_everywhere(tmp_path, capsys):
     assert stats.chi2.sf(g["chi2"], g["ndf"]) == pytest.approx(g["p_value"], rel=1e-6, abs=1e-300)
     assert g["p_value"] < 1e-3
     assert "goodness_of_fit" in [w["topic"] for w in r["warnings"]]
-    assert "WARNING: the fit at the best mass has goodness-of-fit p" in stdout
+    assert "WARNING: the free fit has goodness-of-fit p" in stdout
     assert "## Warnings" in (out / "report.md").read_text()
     assert "<h2>Warnings</h2>" in (out / "report.html").read_text()
 

@@ -244,3 +244,26 @@ def test_joint_cost_of_the_likelihood_core_matches_the_hand_written_likelihood(h
     assert x[0] == pytest.approx(m1.values["mu"], rel=1e-3)
     assert np.sqrt(cov[0, 0]) == pytest.approx(m1.errors["mu"], rel=0.02)
     assert 2 * (mo0.fval - f) == pytest.approx(2 * (m0.fval - m1.fval), abs=2e-3)
+
+
+def test_reprs_of_a_scan_and_a_combination_blinded_at_every_mass(hists):
+    """Every hypothesis inside the blinded range (145-155 GeV within 140-160, the
+    sidebands fitted): no best to quote, and the scan's and the combination's reprs and
+    notebook tables say so ('every hypothesis blinded') instead of the first mass with
+    'Z_local = nan' and '(p = nan)'.  Their local Z there is not a number (checked with
+    numpy here); a scan with unblinded masses keeps its best."""
+    import re
+
+    masses = np.array([145.0, 150.0, 155.0])
+    s = peaksift.scan(hists[0], "gaussian", "exponential", masses,
+                      absolute_resolution=SIGMA, blind=(140.0, 160.0))
+    c = combine([_channel("mumu", hists[0]), _channel("ee", hists[1])], masses,
+                blind=(140.0, 160.0), refit=False)
+    for r in (s, c):
+        assert np.isnan(np.asarray(r.z_local, float)).all()
+        for text in (repr(r), r._repr_html_()):
+            assert "every hypothesis blinded" in text
+            assert not re.search(r"(?i)\bnan\b", text), text
+    seen = peaksift.scan(hists[0], "gaussian", "exponential", masses,
+                         absolute_resolution=SIGMA, blind=(147.0, 153.0))
+    assert "best 145.00 GeV" in repr(seen) or "best 155.00 GeV" in repr(seen)

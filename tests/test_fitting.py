@@ -413,3 +413,22 @@ def test_too_few_events_give_an_invalid_result_not_an_exception():
     assert not r.valid
     assert any("3 events in the window for 5 free parameters" in p for p in r.problems)
     assert r.intervals is None and r.starts_tried == 0
+
+
+def test_notebook_table_of_a_fit_without_degrees_of_freedom():
+    """An unbinned fit of few events whose goodness-of-fit binning leaves no degrees of
+    freedom (bins minus free parameters <= 0, the chi-square's count, Baker and Cousins
+    1984): the notebook table says the goodness of fit is not defined, as the repr does,
+    where it read 'GoF chi2/ndf = 0.7/0, p = n/a' (and '5.5/-1' for a Crystal Ball)."""
+    import re
+
+    rng = np.random.default_rng(4)
+    x = 100.0 + rng.exponential(30.0, 120)
+    x = np.concatenate([x[x < 200.0], rng.normal(160.0, 2.0, 6)])
+    for signal in ("gaussian", "crystalball"):
+        r = peaksift.fit(x, signal, "exponential", (100.0, 200.0), binned=False)
+        assert r.gof_ndf <= 0
+        page = r._repr_html_()
+        assert "GoF: not defined (no degrees of freedom left, unbinned fit)" in page
+        assert "not defined" in repr(r)
+        assert not re.search(r"chi2/ndf = [^,]*/-?\d+, p = n/a", page)

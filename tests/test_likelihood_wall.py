@@ -164,3 +164,21 @@ def test_information_without_empty_bins_off_the_wall(npar, unit):
     np.testing.assert_allclose(b, want, rtol=0, atol=1e-12 * np.abs(info).max())
     np.testing.assert_array_equal(mu_x, mu)
     np.testing.assert_array_equal(jac_x, jac)
+
+
+def test_step_length_to_the_wall():
+    """``likelihood.wall_info.to_wall``: 1 when no bin's linearised expectation
+    ``mu + jac^T step`` reaches 0 within the step, else WALL_FRACTION of the way to the first
+    bin that does (written here with numpy), to 1e-12 relative."""
+    from peaksift.likelihood.poisson import WALL_FRACTION
+    from peaksift.likelihood.wall_info import to_wall
+
+    rng = np.random.default_rng(12)
+    for scale in (1e-3, 1.0, 30.0):
+        mu = rng.uniform(0.1, 5.0, 900)
+        jac = rng.normal(0.0, 1.0, (5, 900))
+        step = rng.normal(0.0, scale, 5)
+        d = jac.T @ step
+        r = np.min(mu[d < 0] / -d[d < 0])
+        want = 1.0 if r >= 1.0 else WALL_FRACTION * r
+        assert to_wall(mu, jac, step, np.empty(900)) == pytest.approx(want, rel=1e-12)

@@ -426,3 +426,24 @@ def test_difficult_background_start_is_recovered(background, density, starts, li
     assert math.isfinite(best)
     ours = r.model.nll_background
     assert best - 0.01 <= ours <= best + 1e-4, (ours, best)
+
+
+def test_repr_of_a_p_value_past_the_floats_underflow():
+    """A local excess so large that its p-value underflows (Z ~ 124 here): the repr and the
+    notebook table quote its exponent, 10^x with x = log10 of the normal tail at Z
+    (scipy.stats.norm.logsf / ln 10, written here; 0.05 absolute, the one decimal shown),
+    as the report does; they read '< 2.2e-308' and 'p = 0'."""
+    import re
+
+    rng = np.random.default_rng(6)
+    b = 100.0 + rng.exponential(30.0, 3000)
+    x = np.concatenate([b[b < 200.0], rng.normal(150.0, 1.5, 4000)])
+    s = scan(x, "gaussian", "exponential", np.linspace(120.0, 180.0, 7),
+             window=(100.0, 200.0), absolute_resolution=1.5)
+    z = s.best["z_local"]
+    assert s.best["p_local"] == 0.0 or s.best["p_local"] < 2.3e-308
+    want = stats.norm.logsf(z) / math.log(10.0)
+    for text in (repr(s), s._repr_html_()):
+        got = float(re.search(r"p(?:_local)? = 10\^(-[\d.]+)", text).group(1))
+        assert abs(got - want) <= 0.05 + 1e-9
+        assert "p = 0)" not in text and "2.2e-308" not in text

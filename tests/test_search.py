@@ -355,6 +355,31 @@ def test_notebook_repr_quotes_the_free_fit_as_the_summary_does(run):
     assert f"best {best:.2f} GeV: Z_local" in repr(res.scan)
 
 
+def test_notebook_repr_flags_an_invalid_free_fit(run):
+    """An invalid free fit's mass and yield in SearchResult's repr and notebook table carry
+    '(NOT valid)' and its problems, as the report's tables ('fit NOT valid', 'Valid (free
+    fit) | NO: ...') and the summary's warning flag them (rule: no silently wrong number);
+    the combined demo's dielectron fit, its mass at the window's edge, read '110 ± 81 GeV'
+    there with nothing beside it.  A valid fit's rows carry no flag."""
+    import copy
+
+    from peaksift.search import SearchResult
+
+    good = SearchResult.from_dict(run["results"])
+    assert "NOT valid" not in repr(good) and "NOT valid" not in good._repr_html_()
+    d = copy.deepcopy(run["results"])
+    d["fit"]["valid"] = False
+    d["fit"]["problems"] = ["mass at a bound (110)"]
+    bad = SearchResult.from_dict(d)
+    text, page = repr(bad), bad._repr_html_()
+    for label in ("free fit mass", "free fit signal yield"):
+        row = next(x for x in text.split("; ") if x.startswith(label + " "))
+        assert row.endswith(" (NOT valid)")
+        assert f"<td>{label}</td><td>{row[len(label) + 1:]}</td>" in page
+    assert "free fit valid NO: mass at a bound (110)" in text
+    assert "<td>free fit valid</td><td>NO: mass at a bound (110)</td>" in page
+
+
 def test_readme_summary_is_this_run(run):
     """The README prints the demo's summary; it must be what the demo search prints, line
     for line (only the output folder differs), so a change of the demo's numbers updates it."""

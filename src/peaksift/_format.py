@@ -29,8 +29,8 @@ from typing import Any
 
 from ._json import finite
 
-__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "mass_text", "number",
-           "p_value", "pm_parts", "significance"]
+__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "mass_text", "no_best",
+           "number", "p_value", "pm_parts", "significance"]
 
 #: what every function prints for a missing or non-finite number
 NA = "n/a"
@@ -81,6 +81,20 @@ def mass_text(x: Any) -> str:
         return NA
     lead = math.floor(math.log10(abs(v))) if v != 0 else 0
     return fixed(v, 2 if lead >= 1 else min(6, 4 - lead))
+
+
+def no_best(z_best: Any, blinded: Any) -> str | None:
+    """Why a scan or a combination has no best hypothesis to quote (its best's local Z not
+    a number: ``"every hypothesis blinded"`` when the mask ``blinded`` is all true, else
+    ``"no hypothesis fitted"``), or None when it has one.  Its reprs then say so instead of
+    a best mass with ``Z_local = nan`` (the index of a NaN maximum is the first mass)."""
+    if as_finite(z_best) is not None:
+        return None
+    try:
+        every = bool(len(blinded)) and all(bool(b) for b in blinded)
+    except TypeError:
+        every = False
+    return "every hypothesis blinded" if every else "no hypothesis fitted"
 
 
 def format_pm(value: Any, error: Any, unit: str = "") -> str:

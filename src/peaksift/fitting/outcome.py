@@ -37,6 +37,21 @@ _UNDERCOVER_Z = 6.0
 FLOOR_FRACTION = 0.1
 
 
+def _floor_problem(name: str, value: float, error: float, floor: float, unit: str) -> str:
+    """What a width at or within one error of its floor means: narrower than the narrowest
+    bin (``floor / FLOOR_FRACTION``), the peak is a spike the binning cannot resolve; wider,
+    its error reaches down to the floor -- the data do not measure the width (a wide, weak
+    term: finer bins would not help, fixing or constraining the width would)."""
+    head = (f"{name} at or within one error of its floor (a bound) {floor:g} {unit}, "
+            f"{FLOOR_FRACTION:g} of the narrowest bin")
+    if value < floor / FLOOR_FRACTION:
+        return (f"{head}: the peak is narrower than the binning resolves; use finer bins or "
+                "an unbinned fit")
+    return (f"{head}: {name} = {value:.3g} +- {error:.2g} {unit} is not measured by the "
+            "data; fix or constrain it by name (fit's fixed= / constraints=, [model] fix / "
+            "constrain in a config)")
+
+
 def at_floor(value: float, error: float, floor: float) -> bool:
     """A width at its floor, or within one error of it: not measured, the fit invalid (a NaN
     error, a singular Hessian flagged on its own, says nothing of the floor)."""
@@ -130,10 +145,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
         # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
         if not held[i] and at_floor(vs[i], errs[i], floor):
-            problems = [*problems, (f"{names[i]} at or within one error of its floor (a "
-                                    f"bound) {floor:g} {d.unit}, {FLOOR_FRACTION:g} of the "
-                                    "narrowest bin: the peak is narrower than the binning "
-                                    "resolves; use finer bins or an unbinned fit")]
+            problems = [*problems, _floor_problem(names[i], vs[i], errs[i], floor, d.unit)]
     ge, gn, gn2 = (a.copy() if a.flags.writeable else a for a in gof_binning(d))
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:

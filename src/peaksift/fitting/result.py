@@ -367,13 +367,18 @@ class FitResult(FrozenValue):
             lines.append(f"  {n:<{w}} = {format_value(self.values[n], self.errors[n])}{tag}")
         lines.append(f"  peak: mass {format_value(self.peak_mass, self.peak_mass_error)} "
                      f"{self.unit}, FWHM {format_value(self.fwhm, self.fwhm_error)} {self.unit}")
-        if self.gof_ndf > 0 and math.isfinite(self.gof_chi2):
-            lines.append(f"  GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
-                         f"p = {p_value(self.gof_p_value)}")
-        else:
-            lines.append("  GoF: not defined (no degrees of freedom left"
-                         + (", unbinned fit" if not self.binned else "") + ")")
+        lines.append(f"  {self._gof_text()}")
         return "\n".join(lines)
+
+    def _gof_text(self) -> str:
+        """The goodness of fit as the repr and the notebook table quote it: not defined
+        without degrees of freedom (an unbinned fit's binning may leave none, or fewer than
+        none: the notebook table read 'chi2/ndf = 5.5/-1, p = n/a')."""
+        if self.gof_ndf > 0 and math.isfinite(self.gof_chi2):
+            return (f"GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
+                    f"p = {p_value(self.gof_p_value)}")
+        return ("GoF: not defined (no degrees of freedom left"
+                + (", unbinned fit" if not self.binned else "") + ")")
 
     def _repr_html_(self) -> str:
         status = ("<b>valid</b>" if self.valid else
@@ -387,8 +392,8 @@ class FitResult(FrozenValue):
             f"<td>{'fixed' if n in self.fixed else ''}</td></tr>" for n in self.parameters)
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
         return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
-                f"({html.escape(self.binned_reason)}); GoF chi2/ndf = {self.gof_chi2:.1f}/"
-                f"{self.gof_ndf}, p = {p_value(self.gof_p_value)}</p>{notes}"
+                f"({html.escape(self.binned_reason)}); {html.escape(self._gof_text())}</p>"
+                f"{notes}"
                 f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
                 f"{rows}</table><p>peak mass "
                 f"{html.escape(format_value(self.peak_mass, self.peak_mass_error))} "

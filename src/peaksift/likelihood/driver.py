@@ -32,9 +32,8 @@ from numba import njit
 
 from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
 from .kernels import poisson_pass, solve_small
-from .poisson import WALL_FRACTION
 from .second_rows import gaussian_phi, gaussian_second, powerlaw_second
-from .wall_info import wall_info
+from .wall_info import to_wall, wall_info
 
 __all__ = ["compiled_fisher_scoring", "compiled_observed_hessian", "problem_of"]
 
@@ -111,20 +110,6 @@ def _system(m, lam, held, out):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def _to_wall(mu, jac, step):  # pragma: no cover - compiled
-    """:func:`.minimize.to_wall`: 1, or WALL_FRACTION of the way to the first linearised
-    zero."""
-    r = math.inf
-    for j in range(mu.size):
-        d = 0.0
-        for a in range(step.size):
-            d += step[a] * jac[a, j]
-        if d < 0.0:
-            r = min(r, mu[j] / -d)
-    return 1.0 if r >= 1.0 else WALL_FRACTION * r
-
-
-@njit(cache=True, nogil=True)
 def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, xb, fb, hb,
            join_nll, join_distance, x_out, info_out, g_out, x_last):  # pragma: no cover
     """The loop of :func:`.minimize.fisher_scoring` (parameters held at bounds, the step
@@ -164,6 +149,7 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
             k += 1
     at_wall = np.empty(n_empty, np.int64)
     w_wall = np.empty(n_empty)
+    d_wall = np.empty(nb if has_empty else 0)
     b = np.empty((npar, npar))
     mu_x = np.empty(nb if has_empty else 0)
     jac_x = np.empty((npar, nb if has_empty else 0))
@@ -208,7 +194,7 @@ def _drive(prob, full, free, const, x0, lower, upper, max_iter, edm_goal, join, 
             if has_empty:
                 _system(b, lam, held, a2)
                 if solve_small(a2, gr, near):
-                    alpha = _to_wall(mu_x, jac_x, near)
+                    alpha = to_wall(mu_x, jac_x, near, d_wall)
                     for i in range(npar):
                         near[i] *= alpha
                     use_near = True

@@ -53,11 +53,10 @@ def poisson_pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n
     returns an infinite NLL (the rest of the outputs then unset).
 
     The NLL's terms are summed here, in bin order, outside the vectorised pass
-    (:func:`_pass`): these are the numbers of the one loop that formed and summed them
-    until 2026-12-05 (a scalar loop: its test for a negative expectation, a float select,
-    kept it from vectorising; ~8 of ~16 us on 1,350 bins, now ~3).  A sum written inside
-    a function compiled with ``_SUMS`` would be vectorised in another order, even inlined
-    there from a function without them."""
+    (:func:`_pass`; until 2026-12-05 one scalar loop formed and summed them -- its test
+    for a negative expectation, a float select, kept it from vectorising: ~8 of ~16 us
+    on 1,350 bins, now ~3).  A sum inside a function compiled with ``_SUMS`` is
+    reordered wherever it is inlined; this one is the same in every caller."""
     terms = np.empty(bins.size)
     if not _pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n, s, unit,
                  floor, info, mu_out, jac, g, fisher, terms):
@@ -120,8 +119,7 @@ def _pass(cdf, value_row, yields, yield_free, drow, dcomp, dfree, bins, n, s, un
         mu = mu_out[j]
         # a negative Poisson mean (a negative yield deeper than the background under it) is
         # outside the model: rejected after the loop, not floored -- floored, an empty bin
-        # would let a negative peak dig on at no cost (a flag, so the loop vectorises: a
-        # running minimum of floats would not, without the no-NaN flag)
+        # would let a negative peak dig on at no cost (a flag: the loop vectorises)
         negative |= mu < 0.0
         mu = floor if mu < floor else mu  # noqa: FURB136 (max() may drop a NaN)
         mu_out[j] = mu

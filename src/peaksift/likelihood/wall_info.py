@@ -13,15 +13,20 @@ law's upper end): each entry is carried through the bins in a register, eight en
 row at a time (independent chains that the processor overlaps), where the old loop waited
 on each entry's store and load.  The order of the subtractions and of the products in each
 entry (``(w jac[a, j]) jac[c, j]``) is the old loop's, so every entry has the same bits.
+:func:`to_wall` (the step's length near the wall) likewise forms each bin's change of
+the expectation over the parameters in their order, parameter by parameter over the bins
+(a loop that vectorises, where the bin-by-bin one strode through the Jacobian).
 """
 
 from __future__ import annotations
 
+import math
+
 from numba import njit
 
-from .poisson import WALL_MU
+from .poisson import WALL_FRACTION, WALL_MU
 
-__all__ = ["wall_info"]
+__all__ = ["to_wall", "wall_info"]
 
 
 @njit(cache=True, nogil=True)
@@ -82,3 +87,23 @@ def wall_info(prob, info, b, mu_x, jac_x, empty, at_wall, w):  # pragma: no cove
                 b[a, c0 + 7] = t7
     mu_x[:] = mu
     jac_x[:, :] = jac
+
+
+@njit(cache=True, nogil=True)
+def to_wall(mu, jac, step, d):  # pragma: no cover - compiled
+    """:func:`.minimize.to_wall`: 1, or ``WALL_FRACTION`` of the way to the first bin
+    whose linearised expectation ``mu + jac^T step`` reaches 0; ``d``: scratch of
+    ``mu.size``."""
+    nb = mu.size
+    for j in range(nb):
+        d[j] = 0.0
+    for a in range(step.size):  # each bin's sum over the parameters, in their order
+        sa = step[a]
+        ja = jac[a]
+        for j in range(nb):
+            d[j] += sa * ja[j]
+    r = math.inf
+    for j in range(nb):
+        if d[j] < 0.0:
+            r = min(r, mu[j] / -d[j])
+    return 1.0 if r >= 1.0 else WALL_FRACTION * r

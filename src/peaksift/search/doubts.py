@@ -5,11 +5,11 @@ finished results (the content of ``results.json``) and list what a reader must k
 quoting them; the list is the ``warnings`` entry of results.json, a block of the terminal
 summary and a section at the top of the report.
 
-* ``fit``             -- the signal-plus-background fit is invalid (its problems quoted).
+* ``fit``             -- the free fit is invalid (its problems quoted).
 * ``sideband_fit``    -- blinded: the background fit on the sidebands is invalid or fits
   them badly (goodness-of-fit p below :data:`GOF_P_MIN`).
 * ``calibration``     -- the calibration fit is invalid: its mass shift is not a measurement.
-* ``goodness_of_fit`` -- the fit's (or the calibration fit's) goodness-of-fit p-value is
+* ``goodness_of_fit`` -- the free fit's (or the calibration fit's) goodness-of-fit p-value is
   below :data:`GOF_P_MIN`: the model does not describe the data (e.g. a known peak inside
   the search window), so its significance and limits inherit a wrong model.
 * ``signal_model``    -- the signal model from simulated samples has invalid sample fits,
@@ -31,6 +31,8 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from typing import Any
+
+from .._vocabulary import FITS
 
 __all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubtful_limits_note", "doubts"]
 
@@ -84,12 +86,16 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
     blinded = bool((results.get("blinding") or {}).get("active"))
     if isinstance(fit, Mapping) and not blinded and "valid" in fit and not fit.get("valid"):
         probs = "; ".join(str(p) for p in fit.get("problems") or []) or "no reason recorded"
-        add("fit", f"the signal-plus-background fit is invalid ({probs}): its mass, width and "
+        # named as every output names it (_vocabulary.FITS): "signal-plus-background fit"
+        # fits the scan's hypotheses as well, and the scan's numbers stand
+        add("fit", f"the {FITS['free_fit'][0]} is invalid ({probs}): its mass, width and "
                    "yield are not measurements")
     p = _gof_p(fit)
     if p is not None and p < GOF_P_MIN:
         add("goodness_of_fit",
-            f"the fit at the best mass has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
+            # the free fit's (its mass floats from the best mass: not "the fit at the best
+            # mass", which the report's spectrum caption no longer calls it either)
+            f"the {FITS['free_fit'][0]} has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
             "signal-plus-background model does not describe the spectrum (a known peak in the "
             "window, or the wrong background shape); the significance and limits rest on it")
     sb = results.get("background_fit")

@@ -211,8 +211,14 @@ class SearchResult:
                 ("global", significance(b, "global"))]
         if self.fit is not None:  # as the summary quotes them: intervals where made
             fit, free = _fit_dict(self.fit), FITS["free_fit"][0]
-            rows += [(f"{free} mass", fitted_text(fit, "peak_mass", "GeV")),
-                     (f"{free} signal yield", fitted_text(fit, "signal_yield"))]
+            # an invalid fit's numbers flagged beside them, as the report's tables do (the
+            # combined demo's dielectron fit, its mass at its bound, read '110 ± 81 GeV')
+            bad = "" if fit.get("valid", True) else " (NOT valid)"
+            rows += [(f"{free} mass", fitted_text(fit, "peak_mass", "GeV") + bad),
+                     (f"{free} signal yield", fitted_text(fit, "signal_yield") + bad)]
+            if bad:
+                rows.append((f"{free} valid", "NO: " + "; ".join(
+                    str(x) for x in fit.get("problems") or ["no reason recorded"])))
         elif (self.blinding or {}).get("active"):
             rows.append(("fit", "not made: blinded as configured"))
         if self.limits is not None:

@@ -43,7 +43,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import format_pm, mass_text
+from .._format import format_pm, mass_text, no_best
 from .._json import plain
 from .._values import FrozenValue
 from ..errors import FitError
@@ -57,6 +57,7 @@ from .joint_start import joint_start
 from .joint_wells import joint_global
 from .scan import scan_prepared
 from .scan_inputs import _prepare_model, _signal_params
+from .scan_result import p_text
 from .significance import p_from_q0, z_from_q0
 from .toys import fit_background
 
@@ -406,17 +407,18 @@ class Combination(FrozenValue):
         return format_pm(self.cross_section[i], self.cross_section_error[i], self.unit)
 
     def __repr__(self) -> str:
-        b = self.best
-        return (f"Combination({', '.join(self.channels)}; best {mass_text(b['mass'])} GeV: "
-                f"Z_local = {b['z_local']:.2f}, sigma x B = {self._cross_section_text()})")
+        b, why = self.best, no_best(self.best["z_local"], self.blinded)
+        return (f"Combination({', '.join(self.channels)}; " + (f"no best: {why})" if why else
+                f"best {mass_text(b['mass'])} GeV: Z_local = {b['z_local']:.2f}, sigma x B = "
+                f"{self._cross_section_text()})"))
 
     def _summary(self) -> list[tuple[str, str]]:
-        b = self.best
+        b, why = self.best, no_best(self.best["z_local"], self.blinded)
         rows = [("channels", ", ".join(self.channels)),
                 ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
-                ("best mass", f"{b['mass']:.2f} GeV"),
-                ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
-                ("sigma x B at best", self._cross_section_text())]
+                ("best mass", f"none: {why}" if why else f"{b['mass']:.2f} GeV"),
+                ("Z local", "n/a" if why else f"{b['z_local']:.2f} (p = {p_text(b)})"),
+                ("sigma x B at best", "n/a" if why else self._cross_section_text())]
         if self.blind is not None:
             rows.append(("blinded", f"{self.blind[0]:g}-{self.blind[1]:g} GeV"))
         return rows

@@ -16,7 +16,7 @@ from ..errors import FitError
 from . import lee
 from .scan_prepared import handed_out_model
 from .shape_profile import run_nuisance_toy_batch
-from .significance import p_from_q0
+from .significance import log10_p, log_p_from_q0, p_from_q0
 from .toys import ScanModel, fit_background, profile_signal, run_toys
 
 
@@ -88,13 +88,15 @@ class ScanResult(FrozenValue):
                 "p_local": float(self.p_local[i]), "q0": float(self.q0[i])}
 
     def __repr__(self) -> str:
-        from .._format import mass_text, p_value
+        from .._format import mass_text, no_best
 
         b = self.best
         blind = "" if self.blind is None else f", blinded {self.blind[0]:g}-{self.blind[1]:g}"
+        why = no_best(b["z_local"], self.blinded)
+        best = (f"no best: {why}" if why else f"best {mass_text(b['mass'])} {self.unit}: "
+                f"Z_local = {b['z_local']:.2f}, p_local = {p_text(b)}")
         return (f"ScanResult({self.masses.size} masses {self.masses[0]:g}-{self.masses[-1]:g} "
-                f"{self.unit}, best {mass_text(b['mass'])} {self.unit}: Z_local = "
-                f"{b['z_local']:.2f}, p_local = {p_value(b['p_local'])}{blind})")
+                f"{self.unit}, {best}{blind})")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict: the search's ``scan`` keys (``masses``, ``z_local``, ``p_local``,
@@ -158,15 +160,17 @@ class ScanResult(FrozenValue):
     def _repr_html_(self) -> str:
         import html
 
+        from .._format import no_best
         from .._vocabulary import model_text
 
         b = self.best
+        why = no_best(b["z_local"], self.blinded)
         rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>" for k, v in (
             ("masses", (f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} "
                        f"{self.unit}")),
             ("model", model_text("scan", self.signal_shape, self.background_shape)),
-            ("best mass", f"{b['mass']:.2f} {self.unit}"),
-            ("Z local", f"{b['z_local']:.2f} (p = {b['p_local']:.3g})"),
+            ("best mass", f"none: {why}" if why else f"{b['mass']:.2f} {self.unit}"),
+            ("Z local", "n/a" if why else f"{b['z_local']:.2f} (p = {p_text(b)})"),
             ("blinded", "no" if self.blind is None else
              f"{self.blind[0]:g}-{self.blind[1]:g} {self.unit}")))
         return (f"<div><b>ScanResult</b> (a local significance is not a discovery; see "
@@ -322,6 +326,15 @@ class ScanResult(FrozenValue):
             if path is not None:
                 fig.savefig(path)
         return fig
+
+
+def p_text(best: Mapping[str, float]) -> str:
+    """The local p-value of a scan's or a combination's ``best`` (its ``p_local`` and
+    ``q0``) as the report writes it: past the float's underflow, its exponent from q0
+    (``10^-2607.3``, where the notebook table read 'p = 0' and the repr '< 2.2e-308')."""
+    from .._format import p_value
+
+    return p_value(best["p_local"], log10_p(log_p_from_q0(best["q0"])))
 
 
 def _legend_off_the_curves(ax: Any, m: np.ndarray, curves: list[np.ndarray],
