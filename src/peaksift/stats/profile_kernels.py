@@ -31,7 +31,7 @@ from numba.extending import intrinsic
 from numba.np.arrayobj import make_array, populate_array
 
 from ..likelihood.kernels import solve_sized_into, solve_small_into
-from ..shapes.compiled import exponential_rows, powerlaw_rows, vlog
+from ..shapes.compiled import exponential_rows_into, powerlaw_rows, vlog
 
 __all__ = ["first_error", "profile_rows"]
 
@@ -61,7 +61,7 @@ def borrowed(typingctx, arr):  # pragma: no cover - compile time
 
 @njit(cache=True, nogil=True, inline="always")
 def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, gs, dgs,
-                slot):  # pragma: no cover - compiled
+                slot, ev):  # pragma: no cover - compiled
     """Used-bin background fractions ``gs[slot]`` and derivatives ``dgs[slot]`` at
     ``theta``, scaled as ``toy_model.bkg_fractions`` (``scale`` empty: unweighted), from
     the row kernel's full rows ``frac``, ``grad`` ``(1, E-1)``; False where the kernel
@@ -69,7 +69,8 @@ def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, gs, 
     the slot's rows itself (a copy less per evaluation, and two rows of E-1 less that a
     10,000-bin scan kept in the processor's cache).  Rows by index where copied: the
     arrays are :func:`borrowed` (no reference counts), so the slot's one-row views are
-    free."""
+    free.  ``ev (E,)``: the exponential's work row (its allocation per call was ~0.1 us,
+    ~6 calls a row: a fixed cost per hypothesis)."""
     kbuf[0] = theta
     direct = used.size == frac.shape[1] and scale.size == 0
     out_f = gs[slot:slot + 1] if direct else frac
@@ -77,7 +78,7 @@ def _background(code, e1, e2, c1, c2, used, scale, theta, kbuf, frac, grad, gs, 
     if code == 0:
         ok = powerlaw_rows(e1, e2, kbuf, c1, c2, out_f, out_g)
     else:
-        ok = exponential_rows(e1, e2, kbuf, out_f, out_g)
+        ok = exponential_rows_into(e1, e2, kbuf, out_f, out_g, ev)
     if not ok:
         return False
     if direct:
@@ -222,7 +223,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     # derivatives again).  mats, vecs: the (P, P) and (P,) work of a Newton step
     return _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
                  steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
-                 s_err, np.empty(1), np.empty((1, nw - 1)), np.empty((1, nw - 1)),
+                 s_err, np.empty(1), np.empty(nw), np.empty((1, nw - 1)), np.empty((1, nw - 1)),
                  np.empty((3, nb)), np.empty((3, nb)), np.empty((2, nb)),
                  np.empty((8, p, p)), np.empty((8, p)), np.zeros(p, np.bool_),
                  np.empty((p, p + 1)))
@@ -231,7 +232,7 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
 @njit(cache=True, nogil=True, error_model="numpy")
 def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
           steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
-          s_err, kbuf, frac, grad_full, gs, dgs, lb, mats, vecs, pin,
+          s_err, kbuf, ev, frac, grad_full, gs, dgs, lb, mats, vecs, pin,
           sm):  # pragma: no cover - compiled
     """:func:`profile_rows` with its work buffers.  Every array the Newton loop hands to
     a compiled helper is :func:`borrowed` first: each helper call took and gave back a
@@ -251,6 +252,7 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
     f = borrowed(f)
     d2 = borrowed(d2)
     kbuf = borrowed(kbuf)
+    ev = borrowed(ev)
     frac = borrowed(frac)
     grad_full = borrowed(grad_full)
     gs = borrowed(gs)
@@ -281,13 +283,13 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
             xr[a] = x[r, a]
         if (r == 0 or not shared_d2) and not _curvature(
                 code, e1, e2, c1, c2, used, scale, xr[off + 1], lower[off + 1],
-                upper[off + 1], kbuf, frac, grad_full, gs, dgs, d2, d2r):
+                upper[off + 1], kbuf, frac, grad_full, gs, dgs, d2, d2r, ev):
             return r + 1
         # every row from one theta (a scan's start): its fractions and derivatives are the
         # first row's (one of a row's ~6 evaluations of the background saved; the same bits)
         if (r == 0 or not shared_d2) and not _background(
                 code, e1, e2, c1, c2, used, scale, xr[off + 1], kbuf, frac, grad_full,
-                gs, dgs, _START):
+                gs, dgs, _START, ev):
             return r + 1
         ci = _START
         s = s_fix[r] if fixed else xr[0]
@@ -325,7 +327,7 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
                     trial[a] = min(max(xr[a] + step[a], lower[a]), upper[a])
                 st = s_fix[r] if fixed else trial[0]
                 if not _background(code, e1, e2, c1, c2, used, scale, trial[off + 1],
-                                   kbuf, frac, grad_full, gs, dgs, ti):
+                                   kbuf, frac, grad_full, gs, dgs, ti, ev):
                     return r + 1
                 tn = _nll(n, nr, f, r, gs, ti, st, trial[off], satr, lb)
                 if tn <= cur + slack:
@@ -374,16 +376,18 @@ def _small(step, hess, step_tol, p):  # pragma: no cover - compiled
 
 @njit(cache=True, nogil=True)
 def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, gs, dgs,
-               out, row):  # pragma: no cover - compiled
+               out, row, ev):  # pragma: no cover - compiled
     """``toy_model.bkg_second`` for one row of one parameter into ``out[row]``: central
     differences of the fractions' derivative, step 1e-5 max(|theta|, 0.1), kept inside
     the bounds (rows 0 and 1 of ``gs``, ``dgs`` as work rows)."""
     hstep = 1e-5 * max(abs(th), 0.1)
     up = min(th + hstep, hi)
-    if not _background(code, e1, e2, c1, c2, used, scale, up, kbuf, frac, grad, gs, dgs, 0):
+    if not _background(code, e1, e2, c1, c2, used, scale, up, kbuf, frac, grad, gs, dgs, 0,
+                       ev):
         return False
     dn = max(th - hstep, lo)
-    if not _background(code, e1, e2, c1, c2, used, scale, dn, kbuf, frac, grad, gs, dgs, 1):
+    if not _background(code, e1, e2, c1, c2, used, scale, dn, kbuf, frac, grad, gs, dgs, 1,
+                       ev):
         return False
     width = up - dn if up > dn else 1.0
     for j in range(out.shape[1]):

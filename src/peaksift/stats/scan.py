@@ -189,7 +189,7 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
     # into NaN-filled ones (a 100-bin scan's ~40 numpy calls were a third of its time)
     every = mb == nm
     table = None
-    if mb and every and fits is None and not shape_active and slot is not None:
+    if mb and every and fits is None and not shape_active:
         table = _scan_table(model, slot)
     if table is not None:
         # the compiled fits and their table in one call: the same numbers as below
@@ -264,7 +264,7 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
     return ScanResult(**values)
 
 
-def _scan_table(model: ScanModel, slot: list) -> tuple | None:
+def _scan_table(model: ScanModel, slot: list | None) -> tuple | None:
     """:func:`.profile_calls.scan_table` of a scan with every hypothesis open, no nuisance
     and nothing asked of the fits but the result's arrays (``s``, ``s_error``, ``b``,
     ``nll``, ``converged``, the count of unconverged rows, q0, Z, -Z, the best row,
@@ -272,13 +272,20 @@ def _scan_table(model: ScanModel, slot: list) -> tuple | None:
     compiled loop declined a row).  Its inputs are made once per kept preparation, into
     ``slot``, from the model as handed out: ~50 us of a 100-bin scan with cold caches
     went to making them again (the row kernel's and the saturated term's keys, the
-    contiguous copies), ~40 us more to the table's numpy calls."""
+    contiguous copies), ~40 us more to the table's numpy calls.  ``slot`` None (a
+    preparation not kept: a 10,000-bin scan's): the inputs made for this call alone.
+    Every scan this way runs one compiled function: a 100-bin scan right after a
+    10,000-bin one found its code cold when that one ran another copy of the fits
+    (``profile_calls.scan_rows`` for ``profile_signal``), ~25 us of its ~1 ms."""
     if not slot:
         call = None
         if model.theta.size == 1 and use_compiled():
             calls = _compiled()
             call = calls.scan_call(model, _spectrum_saturated(model.counts))
-        slot.append(call)
+        if slot is None:
+            slot = [call]
+        else:
+            slot.append(call)
     call = slot[0]
     if call is None:
         return None

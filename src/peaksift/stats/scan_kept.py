@@ -53,7 +53,8 @@ def scan_arrays(table: tuple, nll_background: float, bl: np.ndarray, notes: list
     if unconverged:
         notes.append(f"{unconverged} hypotheses did not converge")
     if plain:
-        return arr, conv, z, _ndtr(neg_z), best   # the table's Z and best (every q0 finite)
+        # the table's Z and best (every q0 finite); p into -Z's array, the table's own
+        return arr, conv, z, _ndtr(neg_z, neg_z), best
     # a zero, NaN or infinite q0 term: numpy's rules, as scan_prepared's
     arr["q0"] = np.where(s_hat > 0, np.maximum(2.0 * (nll_background - nll), 0.0), 0.0)
     z, p, best = significances(arr["q0"], True, bl)
@@ -95,24 +96,28 @@ def kept_scan(key: tuple | None) -> tuple | None:
         return None
     if len(slot) < 2:
         slot.append(_kept_fields(kept))
-    call, fixed = slot[0], slot[1]
+    if len(slot) < 3:   # (the call made once by scan_table's dispatcher: compiled)
+        slot.append(_compiled().scan_entry(slot[0]))
+    call, fixed, run = slot[0], slot[1], slot[2]
     if call is None or fixed is None:   # (None also once the entry is dropped)
         return None
-    result = _answer(call, fixed)
+    result = _answer(call, fixed, run)
     return None if result is None else (result, slot)
 
 
-def _answer(call: tuple, fixed: tuple) -> ScanResult | None:
-    """The result of the compiled call ``call`` with the fields ``fixed``, or None
-    (the compiled loop declined a row)."""
-    out = _compiled().scan_table(*call, 100, 1e-6)
+def _answer(call: tuple, fixed: tuple, run: Any) -> ScanResult | None:
+    """The result of the compiled call ``call`` (by ``run``, ``profile_calls.scan_entry``'s)
+    with the fields ``fixed``, or None (the compiled loop declined a row)."""
+    out = run(*call, 100, 1e-6)
     if out[0]:
         return None
     fields, model, m_all, open_, nll_b = fixed
     _, s_hat, s_err, b_hat, _, conv, unconverged, q0, z, neg_z, best, plain = out
     notes: Any = ()
     if plain and not unconverged:
-        p = _ndtr(neg_z)   # (scan_arrays' answer here, without its dict and call)
+        # (scan_arrays' answer here, without its dict and call); p written into -Z's
+        # array (the table's, made for this result): an array less to make, ~2 us cold
+        p = _ndtr(neg_z, neg_z)
     else:
         notes = []
         arr, conv, z, p, best = scan_arrays(out[1:], nll_b, open_, notes)
@@ -204,7 +209,7 @@ def quick_scan(data: Any, masses: Any, options: tuple) -> ScanResult | None:
             and data.edges.tobytes() == edges and data.unit == unit
             and use_compiled() is compiled):
         return None
-    call, fixed = slot[0], slot[1]
+    call, fixed, run = slot[0], slot[1], slot[2]
     if call is None or fixed is None:   # the kept entry was dropped since
         return None
-    return _answer(call, fixed)
+    return _answer(call, fixed, run)
