@@ -447,3 +447,16 @@ def test_repr_of_a_p_value_past_the_floats_underflow():
         got = float(re.search(r"p(?:_local)? = 10\^(-[\d.]+)", text).group(1))
         assert abs(got - want) <= 0.05 + 1e-9
         assert "p = 0)" not in text and "2.2e-308" not in text
+
+
+def test_repr_counts_its_masses_in_words():
+    """The repr says how many hypotheses were scanned, '1 mass' / '7 masses' (the count of
+    the masses given here; it read '1 masses')."""
+    rng = np.random.default_rng(3)
+    x = 100.0 + rng.exponential(30.0, 2000)
+    x = x[x < 200.0]
+    for masses, words in (([150.0], "(1 mass 150-150 GeV"),
+                          (np.linspace(120.0, 180.0, 7), "(7 masses 120-180 GeV")):
+        s = scan(x, "gaussian", "exponential", masses, window=(100.0, 200.0),
+                 absolute_resolution=2.0)
+        assert words in repr(s), repr(s)

@@ -95,8 +95,9 @@ class ScanResult(FrozenValue):
         why = no_best(b["z_local"], self.blinded)
         best = (f"no best: {why}" if why else f"best {mass_text(b['mass'])} {self.unit}: "
                 f"Z_local = {b['z_local']:.2f}, p_local = {p_text(b)}")
-        return (f"ScanResult({self.masses.size} masses {self.masses[0]:g}-{self.masses[-1]:g} "
-                f"{self.unit}, {best}{blind})")
+        n = self.masses.size
+        return (f"ScanResult({n} mass{'es' if n != 1 else ''} {self.masses[0]:g}-"
+                f"{self.masses[-1]:g} {self.unit}, {best}{blind})")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict: the search's ``scan`` keys (``masses``, ``z_local``, ``p_local``,
