@@ -177,9 +177,17 @@ def fit(
                                 lower, upper, floors):
             yield True, lambda near=None, s=s: s
 
-    for essential, make_start in itertools.chain(starts, restarts()):
-        if not essential and best is not None and not best[3]:
-            break  # every candidate peak tried and the best is valid: other widths not needed
+    def finder():
+        """The start finder's starts, up to the first inessential one once the best minimum
+        so far has no problems (every candidate peak tried: other widths not needed).  The
+        restarts come after it either way: a minimum with no problems can still be invalid
+        (a width within one error of its floor), and theirs is that test."""
+        for essential, make_start in starts:
+            if not essential and best is not None and not best[3]:
+                return
+            yield essential, make_start
+
+    for _, make_start in itertools.chain(finder(), restarts()):
         s0 = make_start(None if near is None else near[0])
         if s0 is None:  # a start the best minimum so far makes pointless
             continue
