@@ -11,8 +11,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "UNREADABLE_FILES", "figure_wanted", "method_words",
-           "model_text"]
+__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "UNREADABLE_FILES",
+           "figure_wanted", "method_words", "model_text"]
 
 #: How :func:`peaksift.upper_limits` computes its CLs limits (``limits.method``):
 #: ``"auto"``       asymptotic formulae, and toys at the masses where the formulae misplace
