@@ -39,8 +39,40 @@ def _plain(a) -> bool:
 
 def fused_starts(model, edges, n, scale, is_fixed, given, fine) -> FusedStarts | None:
     """The fused first look of this fit, or None where it does not apply (see the
-    module's guide)."""
-    if given or fine is None or len(model.blocks) != 2 or not use_compiled():
+    module's guide).  What it found for a model, read-only start edges and fine edges and
+    the parameters held is kept for the next fit of the same (a toy of a kept setup)."""
+    if given or fine is None or not use_compiled():
+        return None
+    fe, fn, fsc = fine
+    held = is_fixed.tobytes()
+    seen = _LAST[0]
+    if seen is not None and seen[0] is model and seen[1] is edges and seen[2] is fe and (
+            seen[3] == held):
+        plan = seen[4]
+    else:
+        plan = _plan(model, edges, is_fixed, fe)
+        if not (edges.flags.writeable or fe.flags.writeable):
+            _LAST[0] = (model, edges, fe, held, plan)
+    if plan is None:
+        return None
+    nb = edges.size - 1
+    if not (all(_plain(a) for a in (n, scale, fn, fsc)) and n.size == nb
+            and scale.size == nb and fn.size == fe.size - 1 and fsc.size == fn.size):
+        return None
+    return FusedStarts(model, n, scale, fine, plan)
+
+
+#: [(model, start edges, fine edges, parameters held, :func:`_plan`)] of the last fit
+#: (holds its arrays, so the identities stay valid)
+_LAST: list = [None]
+
+
+def _plan(model, edges, is_fixed, fe):
+    """What the fused calls need of the model and the binnings, or None where they do not
+    apply: ``(edges, free background parameters, static arrays, fine edge kernel, indices
+    of the mass, width, signal yield and background yield, the signal yields' indices,
+    window)``."""
+    if len(model.blocks) != 2 or not (_plain(edges) and _plain(fe)):
         return None
     shape, sl, iy = model.blocks[0]
     if type(shape) is not Gaussian:
@@ -50,11 +82,6 @@ def fused_starts(model, edges, n, scale, is_fixed, given, fine) -> FusedStarts |
     _, bsl, biy = model.blocks[-1]
     if is_fixed[i_m] or is_fixed[i_sig] or is_fixed[iy] or is_fixed[biy]:
         return None
-    fe, fn, fsc = fine
-    nb = edges.size - 1
-    if not (all(_plain(a) for a in (edges, n, scale, fe, fn, fsc)) and n.size == nb
-            and scale.size == nb and fn.size == fe.size - 1 and fsc.size == fn.size):
-        return None
     free = np.array([i for i in range(bsl.start, bsl.stop) if not is_fixed[i]] + [biy],
                     np.int64)
     static = background_static(model, edges, free)
@@ -63,19 +90,18 @@ def fused_starts(model, edges, n, scale, is_fixed, given, fine) -> FusedStarts |
     fine_row = edge_row(model, fe)
     if fine_row is None:
         return None
-    return FusedStarts(model, edges, n, scale, fine, free, static, fine_row, i_m, i_sig, iy,
-                       biy)
+    window = (float(model.window[0]), float(model.window[1]))
+    return (edges, free, static, fine_row, i_m, i_sig, iy, biy, np.array([iy], np.int64),
+            window)
 
 
 class FusedStarts:
     """The compiled first look of one free fit (made by :func:`fused_starts`)."""
 
-    def __init__(self, model, edges, n, scale, fine, free, static, fine_row, i_m, i_sig, iy,
-                 biy) -> None:
-        self.model, self.edges, self.n, self.scale, self.fine = model, edges, n, scale, fine
-        self.free, self.static, self.fine_row = free, static, fine_row
-        self.i_m, self.i_sig, self.iy, self.biy = i_m, i_sig, iy, biy
-        self.iys = np.array([iy], np.int64)
+    def __init__(self, model, n, scale, fine, plan) -> None:
+        self.model, self.n, self.scale, self.fine = model, n, scale, fine
+        (self.edges, self.free, self.static, self.fine_row, self.i_m, self.i_sig, self.iy,
+         self.biy, self.iys, self.window) = plan
         self.kern = compiled_module(FUSED_MODULE)
 
     def first_look(self, base, lower, upper, grid, dips):
@@ -85,7 +111,7 @@ class FusedStarts:
         sigma = float(base[self.i_sig])
         if not sigma > 0:
             return None
-        lo, hi = (float(w) for w in self.model.window)
+        lo, hi = self.window
         rows = coarse_rows_kept(compiled_module(START_KERNELS_MODULE), self.edges, lo, hi, grid,
                          sigma)
         if rows is None:
@@ -111,12 +137,11 @@ class FusedStarts:
         fe, fn, fsc = self.fine
         narrow, fcounts = np.empty(fn.size, np.int64), np.empty(fn.size)
         s = np.empty(base.size)
-        window = tuple(float(w) for w in self.model.window)
         try:
             narrow_ok, k, start_ok = self.kern.first_start(
                 self.static, self.n, self.scale, self.edges, centres, vb, base, self.free,
                 lower, upper, self.iys, self.biy, FIT_SETTINGS, self.i_m, self.i_sig,
-                self.iy, float(mass), float(total), window, WIDTH_FACTORS, _BAND_SIGMAS,
+                self.iy, float(mass), float(total), self.window, WIDTH_FACTORS, _BAND_SIGMAS,
                 self.fine_row, fe, fn, fsc, STENCIL, q_top - NARROW_MARGIN,
                 np.array(exclude, float).reshape(-1, 2), narrow, fcounts, s)
         except (ArithmeticError, ValueError):

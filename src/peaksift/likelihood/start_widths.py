@@ -334,18 +334,19 @@ class WidthProfile:
         none is left; None where the profile does not apply).  Counted per minimum: when a
         start replaces the best minimum, the next start takes the new profile's lowest,
         not its second (which skipped a minimum 0.07 lower in a demo fit)."""
-        found = self(near)
+        key = np.asarray(near, float).tobytes()
+        found = self(near, key)
         if found is None:
             return None
-        key = np.asarray(near, float).tobytes()
         k = self._taken.get(key, 0)
         self._taken[key] = k + 1
         return found[k] if k < len(found) else ()
 
-    def __call__(self, near: np.ndarray):
+    def __call__(self, near: np.ndarray, key: bytes | None = None):
         if self._args is None:
             return None
-        key = np.asarray(near, float).tobytes()
+        if key is None:
+            key = np.asarray(near, float).tobytes()
         if key not in self._seen:
             model, (fe, fn, fsc), i_m, i_w, lower, upper, most, is_fixed = self._args
             shape, _, iy = model.blocks[0]
