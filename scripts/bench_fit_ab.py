@@ -67,7 +67,8 @@ def main() -> None:
     ap.add_argument("--fits", type=int, default=400)
     ap.add_argument("--cold", action="store_true")
     ap.add_argument("--one", action="store_true", help=argparse.SUPPRESS)
-    ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--seed", type=int, default=1,
+                    help="random numbers of the first round's histograms (then +1 a round)")
     args = ap.parse_args()
     if args.one:
         print(json.dumps(one_tree(args.fits, args.cold, args.seed)))
@@ -81,7 +82,7 @@ def main() -> None:
                        OPENBLAS_NUM_THREADS="1")
             out = subprocess.run(
                 [sys.executable, __file__, args.tree_a, args.tree_b, "--one",
-                 "--fits", str(args.fits), "--seed", str(r + 1)]
+                 "--fits", str(args.fits), "--seed", str(args.seed + r)]
                 + (["--cold"] if args.cold else []),
                 env=env, capture_output=True, text=True, check=True)
             got[k] = json.loads(out.stdout.strip().splitlines()[-1])
