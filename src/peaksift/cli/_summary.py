@@ -83,6 +83,8 @@ def _summary_text(d: Mapping[str, Any]) -> str:
             lines.append(_row("background envelope", ", ".join(env.get("labels") or [])
                               + f" (at the best mass: {part(env, 'best').get('function')})"))
         lines += _limit_lines(part(syst, "limits"), best.get("mass"))
+    else:
+        lines += _limit_lines({"without_systematics": d.get("limits")}, best.get("mass"))
     if not fit.get("valid") and not blinded:
         lines.append(_row("fit status", "INVALID: " + "; ".join(
             str(x) for x in fit.get("problems") or [])))
@@ -131,13 +133,16 @@ def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
 
 
 def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
-    """The observed limit at the limit mass nearest ``mass``, with and without systematics."""
+    """The observed limit at the limit mass nearest ``mass``, with and without systematics
+    (without only, when the run has no systematics)."""
     from .._format import fixed
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
-    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
+    if not isinstance(wo, Mapping) or not wo.get("masses"):
         return []
-    ms = [float("inf") if m is None else float(m) for m in w["masses"]]
+    if w is not None and (not isinstance(w, Mapping) or not w.get("masses")):
+        return []
+    ms = [float("inf") if m is None else float(m) for m in (w or wo)["masses"]]
     try:
         i = min(range(len(ms)), key=lambda j: abs(ms[j] - float(mass)))
     except (TypeError, ValueError):
@@ -147,6 +152,8 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
         return (f"{fixed((d.get('observed') or [None] * (i + 1))[i])} observed, "
                 f"{fixed((d.get('expected') or [None] * (i + 1))[i])} expected")
 
+    if w is None:
+        return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(wo)} {wo.get('unit')}")]
     return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(w)} {w.get('unit')} with "
                  f"systematics ({pair(wo)} without)")]
 
