@@ -47,8 +47,11 @@ def parameter_rows(result: FitResult, *, background: bool = False
     rows = []
     for n in names:
         sym, mass_unit = _SYMBOLS.get(n, (n.replace("_", " "), False))
-        if n in result.fixed:
+        if n in result.fixed and result.held(n) == "fixed":
             v, e = number(result.values[n]), "(fixed)"
+        elif n in result.fixed:  # tied: its value and the error carried from its source
+            v, e = pm_parts(result.values[n], result.errors[n])
+            e = f"\u00b1 {e} (tied)" if e else "(tied)"
         elif n in intervals and (text := format_interval(result.values[n], *intervals[n])) \
                 and " +" in text:
             v, _, e = text.partition(" ")

@@ -347,6 +347,12 @@ class FitResult(FrozenValue):
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"not a fit result written by FitResult.to_dict: {exc!r}") from None
 
+    def held(self, name: str) -> str:
+        """How a parameter that is not free was held: ``"tied"`` when it was computed from
+        another (its error carried from that one's, so it has one), else ``"fixed"``."""
+        e = self.errors[name]
+        return "tied" if e is not None and math.isfinite(e) and e > 0 else "fixed"
+
     # ------------------------------------------------------------------ show
     def __repr__(self) -> str:
         head = (f"FitResult({'valid' if self.valid else 'INVALID'}; "
@@ -360,7 +366,7 @@ class FitResult(FrozenValue):
             lines.append("  notes: " + "; ".join(self.notes))
         w = max(len(n) for n in self.parameters)
         for n in self.parameters:
-            tag = " (fixed)" if n in self.fixed else ""
+            tag = f" ({self.held(n)})" if n in self.fixed else ""
             if self.intervals and n in self.intervals:  # rounded as the summary's
                 ends = format_interval(self.values[n], *self.intervals[n]).partition(" ")[2]
                 tag += f"  interval {ends}" if ends else ""

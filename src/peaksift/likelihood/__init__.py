@@ -36,7 +36,7 @@ from __future__ import annotations
 
 from .constraints import CONSTRAINT_KINDS, Constraint
 from .cost import BinnedCost
-from .derived import Tie, TiedCost
+from .derived import Tie, TiedCost, resolution_tie
 from .joint import JointCost
 from .minimize import (
     Minimum,
@@ -89,6 +89,7 @@ __all__ = [
     "minimize_stacked",
     "new_minuit",
     "refine",
+    "resolution_tie",
     "saturated_term",
     "unbinned_nll",
 ]
