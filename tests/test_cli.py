@@ -444,10 +444,11 @@ def test_module_command_flushes_its_output_and_keeps_its_exit_status(tmp_path):
 
 
 def test_calibration_line_quotes_the_tables_at_the_fits_precision():
-    """The tables' mass beside the fitted one at the fitted one's decimals (its error to two
-    significant digits, the PDG's rounding of errors: Particle Data Group, "Introduction",
-    sec. 5.3) and the shift to two significant digits with its significance: a 6-digit fit
-    beside a 4-digit table mass suggested a shift twice the real one."""
+    """The tables' mass beside the fitted one at the fitted one's decimals (the error to two
+    significant digits, as every number of the summary) and the shift to two significant
+    digits with its significance: a 6-digit fit beside a 4-digit table mass suggested a
+    shift twice the real one.  Reference: the phi(1020) mass 1.019461 GeV of the particle
+    package's tables."""
     from peaksift.cli._summary import _summary_text
 
     d = {"calibration": {"particle": "phi(1020)", "table_mass": 1.019461,
