@@ -410,7 +410,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting_dedx.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
-                                            band=cfg.identification.band)
+                                            band=cfg.identification.band,
+                                            run=plotting.figure_labels(cfg).run)
     clock.lap("figures (here)")
     drawn = {**(drawer.finish() if drawer is not None else {}), **more}
     # CPU seconds of each process of the run: the main line is the critical path, the
