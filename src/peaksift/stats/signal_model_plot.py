@@ -1,4 +1,4 @@
-"""Figures of a :class:`~peaksift.stats.signal_model.SignalModel` (in the project's style,
+"""Figures of a :class:`~peaksift.stats.signal_model_result.SignalModel` (in the project's style,
 drawn on :func:`peaksift._style.new_figure`: no pyplot, the user's backend untouched).
 
 * :func:`plot_parameters` -- one panel per modelled quantity against mass: the per-sample
