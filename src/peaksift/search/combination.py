@@ -107,8 +107,8 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     """
     from ..stats.channel_limits import combined_limits
     from ..stats.channels import combine
-    from .common import _utc
-    from .run import _search, _toy_executor
+    from .common import _toy_executor, _utc
+    from .run import _search
     from .staging import _apply_overrides, _check_inputs, _staged
 
     raw, base, source = _read(config)
