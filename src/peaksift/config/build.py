@@ -46,7 +46,7 @@ from .sections import (
     SpectrumConfig,
     SystematicsConfig,
 )
-from .values import _check_fit_parameters, _type_name, _value, _where
+from .values import _check_fit_parameters, _type_name, _value, _where, config_path
 
 
 def _section(name: str, raw: Any, where: str) -> dict[str, Any]:
@@ -137,11 +137,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
     # ---- cross-key rules
     inp = vals["input"]
     if resolve_paths:
-        files = []
-        for f in inp["files"]:
-            p = Path(f).expanduser()
-            files.append(str(p if p.is_absolute() else (base_dir / p)))
-        inp["files"] = tuple(files)
+        inp["files"] = tuple(config_path(f, base_dir) for f in inp["files"])
 
     sp = vals["spectrum"]
     lo, hi = sp["window"]
@@ -258,8 +254,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         except FitError as exc:
             raise ConfigError(f"{where}: systematics.background_families: {exc}") from None
     if sy["template"] and resolve_paths:
-        p = Path(sy["template"]).expanduser()
-        sy["template"] = str(p if p.is_absolute() else (base_dir / p))
+        sy["template"] = config_path(sy["template"], base_dir)
 
     ex = vals["execution"]
     if ex["address"] and ex["engine"] != "dask":

@@ -14,6 +14,7 @@ from typing import Any
 from ..errors import ConfigError, FitError, closest
 from ..resolution import check_resolved
 from .sections import IdentificationConfig, OwnMaterialConfig, ResolutionConfig
+from .values import config_path
 
 
 def _check_shape(path: str, name: str, where: str, kind: str,
@@ -120,11 +121,9 @@ def _check_signal_model(sm: dict[str, Any], res: Mapping[str, Any], base_dir: Pa
     """``[signal_model]``: one mass and one generated count per file, a signal shape, and
     samples or a saved model but not both; paths resolved against the config's directory."""
     if base_dir is not None:
-        sm["files"] = tuple(str(p if p.is_absolute() else base_dir / p)
-                            for p in (Path(f).expanduser() for f in sm["files"]))
+        sm["files"] = tuple(config_path(f, base_dir) for f in sm["files"])
         if sm["saved"]:
-            p = Path(sm["saved"]).expanduser()
-            sm["saved"] = str(p if p.is_absolute() else base_dir / p)
+            sm["saved"] = config_path(sm["saved"], base_dir)
     if sm["files"] and sm["saved"]:
         raise ConfigError(f"{where}: give signal_model.files (samples) or signal_model.saved "
                           "(a previous results.json), not both")
