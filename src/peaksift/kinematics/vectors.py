@@ -103,9 +103,7 @@ def from_cartesian(
     mass = invariant_mass(e, px, py, pz, rtol=rtol)
     px, py, pz = _f64(px), _f64(py), _f64(pz)
     pt = np.hypot(px, py)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        eta = np.arcsinh(pz / pt)
-    eta = np.where(pt == 0, np.copysign(np.inf, pz), eta)
+    eta = pseudorapidity(px, py, pz)
     phi = np.arctan2(py, px)
     return pt, eta, phi, mass
 

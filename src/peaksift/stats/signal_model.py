@@ -44,7 +44,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from ..errors import FitError
-from .signal_model_result import SignalModel, _poly_eval
+from .signal_model_result import SignalModel, _poly_eval, _quantity
 
 __all__ = ["ORDER_TEST_SIZE", "SignalModel", "SignalSample", "fit_polynomial", "signal_model"]
 
@@ -171,7 +171,7 @@ def _param_points(fits: list[dict[str, Any]], masses: np.ndarray, names: Sequenc
         err = np.array([f["result"].errors[n] for f in fits], float)
         if n == "mass":
             val = val - masses
-        out["mass_shift" if n == "mass" else n] = (val, err)
+        out[_quantity(n)] = (val, err)
     return out
 
 
@@ -229,7 +229,7 @@ def signal_model(samples: Sequence[SignalSample], shape: Any = "crystalball", *,
         raise FitError("signal_model fixed: the peak position follows the sample's mass; "
                        "it cannot be fixed")
     free = [n for n in sig.parameter_names if n not in fixed]
-    keys = ["mass_shift" if n == "mass" else n for n in free]
+    keys = [_quantity(n) for n in free]
     orders = {k: int(order.get(k, 1)) if isinstance(order, Mapping) else int(order)
               for k in keys}
     if isinstance(order, Mapping) and set(order) - set(keys):

@@ -24,6 +24,12 @@ __all__ = ["SignalModel"]
 _RANGE_TOLERANCE = 1e-9          # relative: a mass this close to the range counts as inside
 
 
+def _quantity(name: str) -> str:
+    """The modelled quantity of a shape parameter: the peak position ``mass`` is modelled as
+    its shift from the generated mass, ``mass_shift``."""
+    return "mass_shift" if name == "mass" else name
+
+
 def _poly_eval(c: np.ndarray, cov: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     v = np.vander(np.ravel(x), c.size, increasing=True)
     val = v @ c
@@ -109,7 +115,7 @@ class SignalModel(FrozenValue):
             x = self._x(m)
             out = np.full(np.shape(x), float(self.fixed[name]))
         else:
-            key = "mass_shift" if name == "mass" else name
+            key = _quantity(name)
             if key not in self.polynomials:
                 raise FitError(f"the signal model has no {name!r}; it models "
                                f"{', '.join(self.quantities)} (fixed: {', '.join(self.fixed)})")
@@ -122,7 +128,7 @@ class SignalModel(FrozenValue):
 
     def band(self, name: str, mass: ArrayLike) -> Any:
         """The 1-sigma uncertainty of :meth:`value` from the polynomial's covariance."""
-        key = "mass_shift" if name == "mass" else name
+        key = _quantity(name)
         if name in self.fixed:
             out = np.zeros(np.shape(self._x(mass)))
         else:
