@@ -1,4 +1,22 @@
-"""The whole search from a config: :func:`run_search`."""
+"""The whole search from a config: :func:`run_search`.
+
+How a search runs
+-----------------
+* :func:`run_search` hands a combination config to :mod:`.combination`; otherwise it loads
+  the config, checks the inputs and runs :func:`_search` in a staging folder
+  (:mod:`.staging`): the outputs move into place only when every stage succeeded.
+* :func:`_search` starts the figure process (:class:`~.parallel.FigureWorker`) before the
+  events are read, and stops it and every stage beside when anything fails.
+* :func:`_stages`, in order: dE/dx identification, reading and selecting (:mod:`.common`),
+  the spectrum (its blinded bins emptied), the calibration fit, the signal model, the mass
+  scan, the limits (:mod:`.limits`; in a forked process beside the rest unless
+  ``limits.method = "toys"`` or the engine is not serial), the global significance,
+  ``[systematics]``, the free and background-only fits (a sideband fit while blinded), the
+  known particles, then results.json, figures and the report.
+  :class:`_Clock` logs each stage's wall and CPU time (``peaksift -v``).
+* A figure job reaches the drawer as plain attributes (:func:`_draw`, :func:`_drawn`), so
+  the figure process need not load numba, awkward or the config's modules to unpickle it.
+"""
 
 from __future__ import annotations
 
