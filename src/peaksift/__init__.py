@@ -51,7 +51,7 @@ _EXPORTS: dict[str, str] = {
     "LimitResult": "peaksift.stats.limit_result",
     "upper_limits": "peaksift.stats.limits",
     "signal_model": "peaksift.stats.signal_model",
-    "SignalModel": "peaksift.stats.signal_model",
+    "SignalModel": "peaksift.stats.signal_model_result",
     "SignalSample": "peaksift.stats.signal_model",
     "Channel": "peaksift.stats.channels",
     "Combination": "peaksift.stats.channels",

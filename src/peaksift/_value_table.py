@@ -16,7 +16,8 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
-from ._style import COLORS, points_at, text_width
+from ._annotations import points_at, text_width
+from ._style import COLORS
 
 __all__ = ["touched", "value_table", "value_table_height"]
 

@@ -12,7 +12,8 @@ from typing import Any
 
 import numpy as np
 
-from ._style import COLORS, draw_header, figure_style, margins, new_figure
+from ._annotations import draw_header
+from ._style import COLORS, figure_style, margins, new_figure
 from .plotting import save
 
 __all__ = ["dedx_figure", "draw_dedx"]

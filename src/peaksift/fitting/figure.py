@@ -124,7 +124,7 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     (saved to ``path`` if given).
 
     ``fig``: draw on this (empty) Figure instead of a new one.  ``run``: a
-    :class:`peaksift._style.RunLabel` drawn above the axes; ``note``/``title``: the figure's
+    :class:`peaksift._annotations.RunLabel` drawn above the axes; ``note``/``title``: the figure's
     statement under it.  ``symbol``: mathtext of the mass (default ``m``), e.g.
     ``m_{\\mu\\mu}``.  ``marks``: ``(mass, label, colour, linestyle)`` vertical lines drawn
     on both panels and named in the legend (the calibration's fitted and tabulated masses).
@@ -140,7 +140,8 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     """
     from scipy.special import gammaincinv
 
-    from .._style import COLORS, draw_header, figure_style, new_figure
+    from .._annotations import draw_header
+    from .._style import COLORS, figure_style, new_figure
     from .._value_table import value_table
     from .._vocabulary import model_text
 

@@ -98,7 +98,7 @@ class CombinedSearchResult:
         and luminosity with every channel's final state; the channels' mass symbol when
         they share one, else plain m."""
         from .. import plotting
-        from .._style import RunLabel
+        from .._annotations import RunLabel
 
         labels = [plotting.figure_labels(r.config) for r in self.channels.values()]
         first = labels[0].run if labels else None

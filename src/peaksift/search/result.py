@@ -282,7 +282,7 @@ class SearchResult:
         from ..resonances import KnownMatch
         from ..stats.limit_result import LimitResult
         from ..stats.scan_result import ScanResult
-        from ..stats.signal_model import SignalModel
+        from ..stats.signal_model_result import SignalModel
 
         try:
             cfg = load_config(dict(d["config"]))
