@@ -16,7 +16,7 @@ but the palette of :mod:`peaksift._style`).
 from __future__ import annotations
 
 import re
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -160,9 +160,40 @@ def text_width(text: str, size: float, weight: str = "normal") -> float:
     return float(w)
 
 
-def draw_header(ax: Any, run: RunLabel | None = None, note: str = "") -> None:
+def as_run_label(run: Any) -> RunLabel | None:
+    """``run`` as a :class:`RunLabel`: one already, None, the run's name (a str) or a
+    mapping of its fields (``name``, ``sqrt_s``, ``luminosity``, ``channel``: the config's
+    ``[run]`` keys, with the luminosity in fb^-1); anything else an InputError."""
+    from .errors import InputError
+
+    if run is None or isinstance(run, RunLabel):
+        return run
+    if isinstance(run, str):
+        return RunLabel(name=run)
+    if isinstance(run, Mapping):
+        fields = ("name", "sqrt_s", "luminosity", "channel")
+        unknown = [k for k in run if k not in fields]
+        if unknown:
+            raise InputError(f"run label: unknown key(s) {', '.join(map(repr, unknown))}; "
+                             f"give {', '.join(fields)}")
+        try:
+            return RunLabel(name=str(run.get("name") or ""),
+                            sqrt_s=None if run.get("sqrt_s") is None else float(run["sqrt_s"]),
+                            luminosity=(None if run.get("luminosity") is None
+                                        else float(run["luminosity"])),
+                            channel=str(run.get("channel") or ""))
+        except (TypeError, ValueError):
+            raise InputError(f"run label: sqrt_s and luminosity must be numbers (TeV, "
+                             f"fb^-1), got {dict(run)!r}") from None
+    raise InputError(f"run label: give a peaksift.RunLabel, the run's name or a dict of "
+                     f"name, sqrt_s, luminosity, channel; got {type(run).__name__}")
+
+
+def draw_header(ax: Any, run: Any = None, note: str = "") -> None:
     """The run label above the axes (name in teal, conditions in grey) and, under it, the
-    figure's own statement ``note`` (best mass, significance, assumptions)."""
+    figure's own statement ``note`` (best mass, significance, assumptions).  ``run``: what
+    :func:`as_run_label` takes."""
+    run = as_run_label(run)
     size = 9.5
     y = 4.0 if note else 3.0
     if note:

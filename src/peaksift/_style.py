@@ -227,6 +227,18 @@ def _figure_class() -> Any:
                     for u in reversed(undo):
                         u()
 
+            def savefig(self, fname: Any, *args: Any, **kwargs: Any) -> None:
+                # a folder that does not exist or a format matplotlib does not know (a
+                # typo in a notebook) is the user's to fix: said as peaksift says it
+                from .errors import OutputError
+
+                try:
+                    super().savefig(fname, *args, **kwargs)
+                except (OSError, ValueError) as exc:
+                    raise OutputError(f"cannot save the figure to {fname}: {exc}; give a "
+                                      "path in an existing folder ending in .png, .pdf or "
+                                      ".svg") from None
+
             def __setstate__(self, state: Any) -> None:
                 # matplotlib gives an unpickled figure its base canvas; ours writes the
                 # same PNG as before the round trip (its RGB file of an opaque figure)

@@ -22,8 +22,10 @@ _LABELS = {"mass_shift": "peak shift [GeV]", "sigma": "$\\sigma$ [GeV]",
 
 
 def plot_parameters(model: Any, path: Any = None, *, run: Any = None, symbol: str = "m") -> Any:
-    from .._annotations import text_width
+    from .._annotations import as_run_label, text_width
     from .._style import COLORS, figure_style, new_figure
+
+    run = as_run_label(run)
 
     keys = list(model.quantities)
     ncol = 3 if len(keys) > 4 else 2
