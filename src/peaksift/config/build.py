@@ -17,6 +17,7 @@ else:  # pragma: no cover
     import tomli as _toml
 from .checks import (
     _check_calibration_outside_blinding,
+    _check_calibration_particle,
     _check_cut,
     _check_identification,
     _check_resolution,
@@ -220,7 +221,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
         from ..resonances import lookup
 
         try:
-            lookup(cal["particle"])
+            known = lookup(cal["particle"])
         except ConfigError as exc:
             raise ConfigError(f"{where}: calibration.particle: {exc}") from None
         if cal["window"] is None:
@@ -228,6 +229,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
                               "calibration.particle is set, e.g. window = [70.0, 110.0]")
         if bl["enabled"]:
             _check_calibration_outside_blinding(cal["window"], bl["window"], sp, where)
+        _check_calibration_particle(known, cal["window"], pr["charge"], where)
         _check_shape("calibration.signal", cal["signal"], where, "signal",
                      cal["signal_options"])
         _check_shape("calibration.background", cal["background"], where, "background",

@@ -69,6 +69,27 @@ def _check_calibration_outside_blinding(cal: tuple[float, float], blind: tuple[f
         )
 
 
+def _check_calibration_particle(known: Any, window: Any, charge_rule: str | None,
+                                where: str) -> None:
+    """The calibration's particle must be one the pairs can be: its mass inside
+    calibration.window (else its fit starts outside its bounds after the events are read)
+    and its charge that of the pairing's pairs (a W+ among opposite-charge pairs "fits" the
+    Z0 there with a shift of +134 per mille, reported as a calibration)."""
+    from ..resonances import pair_charge
+
+    lo, hi = float(window[0]), float(window[1])
+    if not lo < known.mass < hi:
+        raise ConfigError(f"{where}: calibration.window [{lo:g}, {hi:g}] does not contain "
+                          f"{known.name}'s mass {known.mass:.6g} GeV (particle tables); set "
+                          f"calibration.window around it")
+    pc = pair_charge(charge_rule)
+    if pc is not None and abs(round(float(known.charge))) != pc:
+        made = "neutral" if pc == 0 else f"charge {pc}"
+        raise ConfigError(f"{where}: calibration.particle {known.name!r} has charge "
+                          f"{float(known.charge):+g}, but pairing.charge = {charge_rule!r} "
+                          f"makes {made} pairs; calibrate on a particle of that charge")
+
+
 def _check_resolution(res: Mapping[str, Any], spectrum: Mapping[str, Any], where: str) -> None:
     """The resolution must be defined on the whole window (a table covers it) and not far
     below the bin width (:func:`peaksift.resolution.check_resolved`), so the scan's grid of
