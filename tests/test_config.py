@@ -227,3 +227,22 @@ def test_calibration_particle_must_be_one_the_pairs_can_be(tmp_path):
     msg = _err(tmp_path, MINIMAL + cal.format("W+", 70.0, 110.0))
     assert "charge +1" in msg and "neutral pairs" in msg
     load_config(_write(tmp_path, MINIMAL + cal.format("Z0", 70.0, 110.0)))  # accepted
+
+
+def test_template_must_cover_the_window(tmp_path):
+    """systematics.template is read with the config: a template over 110-165 GeV for a
+    window of 110-200 GeV is refused before any event is read (the run failed after the
+    scan and its toys, naming the template's bins as the spectrum's)."""
+    import numpy as np
+
+    from peaksift import MassHistogram
+
+    MassHistogram.from_counts(np.ones(55), np.linspace(110.0, 165.0, 56)).save(
+        tmp_path / "short.json")
+    sy = '\n[systematics]\nbackground_families = ["exppoly"]\ntemplate = "{}"\n'
+    msg = _err(tmp_path, MINIMAL + sy.format("short.json"))
+    assert "template covers 110-165 GeV" in msg and "[110, 200]" in msg
+    assert "cannot read" in _err(tmp_path, MINIMAL + sy.format("missing.json"))
+    MassHistogram.from_counts(np.ones(90), np.linspace(110.0, 200.0, 91)).save(
+        tmp_path / "whole.json")
+    load_config(_write(tmp_path, MINIMAL + sy.format("whole.json")))

@@ -23,6 +23,7 @@ from .checks import (
     _check_resolution,
     _check_shape,
     _check_signal_model,
+    _check_template,
 )
 from .plan import check_background_bins, check_bins, check_scan_plan
 from .schema import _REQUIRED, _TOP, SCHEMA
@@ -257,6 +258,7 @@ def _build(raw: Mapping[str, Any], *, source: str, base_dir: Path, sha256: str,
             raise ConfigError(f"{where}: systematics.background_families: {exc}") from None
     if sy["template"] and resolve_paths:
         sy["template"] = config_path(sy["template"], base_dir)
+        _check_template(sy["template"], sp["window"], where)
 
     ex = vals["execution"]
     if ex["address"] and ex["engine"] != "dask":

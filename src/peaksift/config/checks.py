@@ -90,6 +90,25 @@ def _check_calibration_particle(known: Any, window: Any, charge_rule: str | None
                           f"makes {made} pairs; calibrate on a particle of that charge")
 
 
+def _check_template(path: Any, window: Any, where: str) -> None:
+    """systematics.template must be a histogram file covering spectrum.window: else the
+    spurious-signal test fails after every event is read and the scan and toys are run,
+    its message naming the template's bins as if they were the spectrum's."""
+    from ..errors import InputError
+    from ..histogram import MassHistogram
+
+    try:
+        t = MassHistogram.load(path)
+    except (OSError, InputError) as exc:
+        raise ConfigError(f"{where}: systematics.template: cannot read {str(path)!r} ({exc}); "
+                          "give a histogram saved by peaksift (spectrum.json layout)") from None
+    lo, hi = float(window[0]), float(window[1])
+    if not (t.lo <= lo and t.hi >= hi):
+        raise ConfigError(f"{where}: systematics.template covers {t.lo:g}-{t.hi:g} "
+                          f"{t.unit}, but spectrum.window is [{lo:g}, {hi:g}]; give a "
+                          "template of simulated background over the whole window")
+
+
 def _check_resolution(res: Mapping[str, Any], spectrum: Mapping[str, Any], where: str) -> None:
     """The resolution must be defined on the whole window (a table covers it) and not far
     below the bin width (:func:`peaksift.resolution.check_resolved`), so the scan's grid of
