@@ -9,11 +9,13 @@ from __future__ import annotations
 
 import math
 import warnings
+from types import MappingProxyType
 from typing import Any
 
 import numpy as np
 from scipy import special
 
+from .._values import Measurement
 from ..errors import FitError
 from ..likelihood import Minimum, baker_cousins_chi2, new_minuit
 from ..likelihood.minimum import bound_tolerance, distance_to_bound
@@ -186,20 +188,25 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                 "flags": flags, "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
                 "constraints": cons, "notes": notes}
 
+    # the fields made now in the result's own form (fresh read-only mappings, the peak's
+    # numbers as Measurements: FitResult._in_parts' ``normal``), the form its __init__
+    # leaves, without copying each mapping twice more
+    m_err = errs[i_m]
+    w_val = vs[i_w] if i_w is not None else math.nan
+    w_err = errs[i_w] if i_w is not None else math.nan
     return FitResult._in_parts({
-        "parameters": tuple(names), "values": dict(zip(names, vs)),
-        "errors": dict(zip(names, errs)),
+        "parameters": tuple(names), "values": MappingProxyType(dict(zip(names, vs))),
+        "errors": MappingProxyType(dict(zip(names, errs))),
         "fixed": tuple(n for n, h in zip(names, held) if h),
-        "intervals": ivals, "nll": float(fbest), "valid": not problems,
-        "problems": problems,
+        "intervals": None if ivals is None else MappingProxyType(dict(ivals)),
+        "nll": float(fbest), "valid": not problems, "problems": problems,
         "binned": d.binned, "binned_reason": d.reason, "weighted": d.weighted,
         "weight_treatment": treatment, "window": d.window, "n_events": d.total,
-        "peak_mass": float(sig0.location(p0)), "peak_mass_error": errs[i_m],
-        "peak_width": vs[i_w] if i_w is not None else math.nan,
-        "peak_width_error": errs[i_w] if i_w is not None else math.nan,
+        "peak_mass": Measurement(float(sig0.location(p0)), m_err), "peak_mass_error": m_err,
+        "peak_width": Measurement(w_val, w_err), "peak_width_error": w_err,
         "width_parameter": wname, "gof_ndf": ndf, "model": model,
         "starts_tried": len(tried), "starts_nll": tried, "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
-        "cost": cost}, later)
+        "cost": cost}, later, normal=True)
 
 
 def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
