@@ -30,7 +30,8 @@ __all__ = ["Setup", "entries", "read_only", "setup_of", "yield_bounds", "yield_s
 
 @dataclass
 class Setup:
-    """The fit's data, model, bounds, starts and free parameters (see the module guide)."""
+    """The fit's data, model, bounds, starts and free parameters (see the module guide);
+    its arrays ``lower``, ``upper``, ``base`` and ``is_fixed`` are read-only."""
 
     d: FitData
     model: Model
@@ -146,6 +147,10 @@ def setup_of(data: Any, signal: Any, background: Any, window: Any, weights: Any,
     binned_arrays = ((read_only(d.edges), read_only(d.n),
                       read_only(d.hist.scaled_poisson_factors())) if d.binned else None)
     starts = (tuple(read_only(a) for a in start_bins(d)) if free_idx.size else None)
+    # a fit only reads its starting values, bounds and which parameters float: read-only
+    # in every setup, kept or not (compiled code given them sees one array type)
+    for a in (lower, upper, base, is_fixed):
+        a.flags.writeable = False
     return Setup(d, model, names, lower, upper, base, is_fixed, floors, cons, cons_idx, live,
                  {**start, **fixed}, free_idx, inner_free, n_entries, binned_arrays, starts)
 

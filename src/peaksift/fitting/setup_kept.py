@@ -60,12 +60,18 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
     same_bins = None  # a kept setup of other contents in the same bins
     if kept is not None:
         for have, su in kept:
-            if have == content:
+            if have[0] is not content[0]:
+                if have[0] != content[0]:
+                    continue
+                # the kept bytes of these edges from now on: compared by identity with the
+                # other entries of these bins (and kept once for all of them)
+                content = (have[0], content[1], content[2])
+            if have[1] == content[1] and have[2] == content[2]:
                 as_retries(retries)
                 if su.d.note:  # as prepare says it
                     _log.info(su.d.note)
                 return su.for_fit()
-            if same_bins is None and have[0] == content[0]:
+            if same_bins is None:
                 same_bins = su
     # (a toy's path first: the new counts in the bins of a kept setup, made kept)
     su = None if same_bins is None else _new_counts(data, retries, same_bins)
@@ -82,16 +88,14 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
 
 def _make_kept(su: Setup) -> None:
     """``su`` as a kept setup holds it: the data as private read-only arrays (the caller's
-    histogram may change), no reference to the caller's histogram; the arrays a fit reads
-    read-only (every fit of it shares them: :meth:`~.setup.Setup.for_fit`)."""
+    histogram may change), no reference to the caller's histogram (the arrays a fit reads
+    are read-only in every setup: every fit of it shares them, :meth:`~.setup.Setup.for_fit`)."""
     d = object.__new__(type(su.d))  # copy.copy's, without its ~5 us of dispatch
     d.__dict__.update(su.d.__dict__)
     d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
     d.n2 = d.n if not d.weighted else read_only(d.n2)  # unweighted: the same numbers
     d.hist = None
     su.d = d
-    for a in (su.base, su.is_fixed, su.lower, su.upper):
-        a.flags.writeable = False
 
 
 def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
@@ -124,7 +128,8 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
     scale = np.ones(counts.size) if not d.weighted else d.hist.scaled_poisson_factors()
     scale.flags.writeable = False
     edges = other.binned_arrays[0]  # the same array: its per-edges work is kept by it
-    su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
+    lower.flags.writeable = upper.flags.writeable = base.flags.writeable = False  # (setup_of's)
+    su = Setup(d, model, other.names, lower, upper, base, other.is_fixed,
                dict(other.floors), {}, [], [], {}, other.free_idx, other.inner_free,
                entries(d), (edges, counts, scale),
                tuple(read_only(a) for a in start_bins(d)))
