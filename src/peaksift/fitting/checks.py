@@ -159,11 +159,13 @@ LOWER_MINIMUM_NOTE = 0.1
 def note_lower_minimum(fr: Any, superseded: float | None) -> Any:
     """``fr`` (a FitResult) with a note when a later start went below an earlier valid
     minimum of NLL ``superseded`` by more than ``LOWER_MINIMUM_NOTE`` in -2 ln L."""
-    import dataclasses
-
-    gap = math.nan if superseded is None else 2.0 * (superseded - float(fr.nll))
+    if superseded is None:
+        return fr
+    gap = 2.0 * (superseded - float(fr.nll))
     if not gap > LOWER_MINIMUM_NOTE:
         return fr
+    import dataclasses
+
     return dataclasses.replace(fr, notes=(*fr.notes, (
         f"a later start found a lower minimum than an earlier valid one (-2 ln L lower by "
         f"{gap:.3g}); the lowest is kept")))

@@ -163,11 +163,14 @@ class FitResult(FrozenValue):
         super().__post_init__()
 
     @classmethod
-    def _in_parts(cls, now: dict[str, Any], later: Any) -> FitResult:
+    def _in_parts(cls, now: dict[str, Any], later: Any, normal: bool = False) -> FitResult:
         """The FitResult of the fields ``now`` and ``later()``'s (every other field), the
         latter computed at the first access of any of them (:meth:`FrozenValue._deferred`):
-        the same value as ``FitResult(**now, **later())``."""
-        return cls._deferred(_normalised(now), lambda: _normalised(later()))
+        the same value as ``FitResult(**now, **later())``.  ``normal``: ``now`` is in the
+        form the result keeps already (:func:`_normalised`'s, its mappings read-only and
+        the caller's no more: a fit's own fields), so it is only frozen."""
+        return cls._deferred(now if normal else _normalised(now),
+                             lambda: _normalised(later()))
 
     # ---------------------------------------------------------------- summary
     @property
