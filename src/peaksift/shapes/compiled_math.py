@@ -1,10 +1,10 @@
-"""exp, expm1 and log in plain arithmetic, so that compiled loops using them vectorise.
+"""exp and log in plain arithmetic, so that compiled loops using them vectorise.
 
-numba's math.exp / math.expm1 / math.log are calls into the C library, one element at a
+numba's math.exp / math.log are calls into the C library, one element at a
 time (~20 ns each here); a loop over a fit's 1,351 edges spends most of an evaluation in
 them.  These are plain arithmetic and bit operations, so LLVM vectorises the loops that
 use them (4 doubles per instruction): ~3x faster, within 2 ulp of the library (tested in
-tests/test_likelihood_kernels.py and tests/test_exponential_precision.py against numpy).
+tests/test_likelihood_kernels.py against numpy).
 Used by the fit's edge kernels, the Poisson pass and the exponential's rows
 (:mod:`.compiled`, :mod:`.compiled_exponential`); imported lazily (numba).
 """
@@ -18,7 +18,7 @@ from llvmlite import ir
 from numba import njit, types
 from numba.extending import intrinsic
 
-__all__ = ["vexp", "vexpm1", "vlog"]
+__all__ = ["vexp", "vlog"]
 
 
 @intrinsic
@@ -90,27 +90,3 @@ def vlog(x):  # pragma: no cover - compiled
     if x > 0.0:
         return out if x < math.inf else x
     return -math.inf if x == 0.0 else math.nan
-
-
-# expm1(r) = r + r^2/2! + ... on |r| <= ln2/2: terms to r^15 (the next, r^16/16!, below
-# 1e-20 of r there)
-_F2, _F3, _F4, _F5, _F6, _F7, _F8, _F9 = (1.0 / math.factorial(n) for n in range(2, 10))
-_F10, _F11, _F12, _F13, _F14, _F15 = (1.0 / math.factorial(n) for n in range(10, 16))
-
-
-@njit(inline="always", error_model="numpy")
-def vexpm1(x):  # pragma: no cover - compiled
-    """expm1(x) = exp(x) - 1 to a few ulp for every x (no cancellation near 0).  On
-    |x| <= 1: x = k ln2 + r (k = -1, 0 or 1, |r| <= ln2/2), expm1(r) by its Taylor
-    series, then 2^k expm1(r) + (2^k - 1) (terms that cancel by a factor ~3 at most);
-    beyond, :func:`vexp` minus 1 (|result| > 0.63: no cancellation).  Both computed and
-    one selected, so loops over it vectorise; -1, inf and NaN as the library."""
-    xc = min(max(x, -1.0), 1.0)
-    k = math.floor(xc * _LOG2E + 0.5)
-    r = xc - k * _LN2_HI - k * _LN2_LO
-    p = r * (1.0 + r * (_F2 + r * (_F3 + r * (_F4 + r * (_F5 + r * (_F6 + r * (_F7 + r * (
-        _F8 + r * (_F9 + r * (_F10 + r * (_F11 + r * (_F12 + r * (_F13 + r * (
-            _F14 + r * _F15))))))))))))))
-    s = 0.5 if k < 0.0 else (2.0 if k > 0.0 else 1.0)
-    near = s * p + (s - 1.0)
-    return near if abs(x) <= 1.0 else vexp(x) - 1.0

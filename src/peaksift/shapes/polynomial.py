@@ -11,7 +11,7 @@ import numpy as np
 from scipy import special
 
 from ..errors import FitError
-from ._base import Parameter, as_window
+from ._base import Parameter
 from .background_base import (
     _Background,
     _CompiledRows,
@@ -21,6 +21,7 @@ from .background_base import (
     _stacked,
     _t,
 )
+from .exp_slope import slope_fractions
 
 __all__ = ["Bernstein", "ExpPoly", "Exponential"]
 
@@ -126,7 +127,7 @@ class ExpPoly(_ExpFamily, _Background):
         if out is not None:
             return out[0]
         if self.order == 1 and len(params) == 1:
-            return _slope_fractions(edges, params[0], window, False)[0]
+            return slope_fractions(edges, params[0], window, False)[0]
         return super().bin_fractions(edges, params, window)
 
     def fractions_and_grad(self, edges, params, window, need=None):
@@ -136,7 +137,7 @@ class ExpPoly(_ExpFamily, _Background):
                 return out
         if self.order != 1 or len(params) != 1:
             return super().fractions_and_grad(edges, params, window, need)
-        frac, grad = _slope_fractions(edges, params[0], window, True)
+        frac, grad = slope_fractions(edges, params[0], window, True)
         return frac, grad[None]
 
     def pdf_and_grad(self, x, params, window, need=None):
@@ -154,59 +155,6 @@ class ExpPoly(_ExpFamily, _Background):
 
     def __repr__(self) -> str:
         return f"<background shape 'exppoly' order={self.order}>"
-
-
-# w(q) = d ln exprel(q)/dq = 1/(1 - e^-q) - 1/q, q <= 0: its series on |q| < 1/2 (terms
-# B_2k q^(2k-1) / (2k)!, Bernoulli numbers, to q^17), as .compiled_exponential.slope_w
-_W_SERIES = (8.586062056277845e-15, -3.3896802963225827e-13, 1.3382536530684679e-11,
-             -5.284190138687493e-10, 2.08767569878681e-08, -8.267195767195768e-07,
-             3.306878306878307e-05, -0.001388888888888889, 0.08333333333333333)
-
-
-def _slope_w(q, em1):
-    """w(q) for q <= 0 given ``em1 = expm1(q)`` (elementwise)."""
-    q2 = q * q
-    acc = np.zeros_like(q2)
-    for c in _W_SERIES:
-        acc = acc * q2 + c
-    near = q > -0.5
-    with np.errstate(divide="ignore", invalid="ignore"):
-        direct = 1.0 + 1.0 / np.where(near, -0.5, em1) - 1.0 / np.where(near, -1.0, q)
-    return np.where(near, 0.5 + q * acc, direct)
-
-
-def _exprel(q, em1):
-    zero = q == 0.0
-    return np.where(zero, 1.0, em1) / np.where(zero, 1.0, q)
-
-
-def _slope_fractions(edges, b, window, grad: bool):
-    r"""The bin fractions of exp(b t) on the window (t in [-1, 1]) and, if ``grad``, their
-    b derivative, each exact to rounding for every b (steep either way, or 0): measured
-    from the dense end, with beta = -|b| and ``u`` a bin's dense-side edge's distance from
-    it, :math:`F = e^{\beta u} d\,\mathrm{exprel}(\beta d) / (2\,\mathrm{exprel}(2\beta))`
-    and :math:`\partial_\beta \ln F = u + d\,w(\beta d) - 2\,w(2\beta)`
-    (:mod:`.compiled_exponential`'s guide: its kernels' formulae).  ``b`` broadcasts
-    against ``edges`` (last axis: the edges)."""
-    lo, hi = as_window(window)
-    x = np.asarray(edges, dtype=float)
-    if x[..., 0].min() < lo or x[..., -1].max() > hi:
-        x = np.clip(x, lo, hi)
-    t = (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo))
-    dt = np.diff(x, axis=-1) * (2.0 / (hi - lo))
-    bb = np.broadcast_to(np.asarray(b, dtype=float), np.broadcast_shapes(np.shape(b), t.shape))
-    b = bb[..., :-1]
-    beta = -np.abs(b)
-    sg = np.where(b > 0.0, 1.0, -1.0)
-    u = 1.0 - sg * np.where(b > 0.0, t[..., 1:], t[..., :-1])
-    em2 = np.expm1(2.0 * beta)
-    qd = beta * dt
-    emd = np.expm1(qd)
-    k = 0.5 / _exprel(2.0 * beta, em2)
-    frac = np.exp(beta * u) * (dt * _exprel(qd, emd) * k)
-    if not grad:
-        return frac, None
-    return frac, -sg * frac * (u + dt * _slope_w(qd, emd) - 2.0 * _slope_w(2.0 * beta, em2))
 
 
 class Exponential(ExpPoly):

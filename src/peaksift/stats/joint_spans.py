@@ -156,7 +156,8 @@ def span_channel(e1, e2, eo, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre
     # the span's fractions and derivatives: exponential_rows' numbers (its loop); the
     # span's end exponentials for the closed forms below
     ns = i1 - i0
-    exponential_bins(e1, e2, theta, eo + i0, ns, tg, tdg, bo + i0, True, lb[0])
+    exponential_bins(e1[eo + i0:eo + i1 + 1], e2[eo + i0:eo + i1], theta,
+                     tg[bo + i0:bo + i1], tdg[bo + i0:bo + i1], True, lb[0])
     e_lo = vexp(theta * e1[eo + i0])
     e_hi = vexp(theta * e1[eo + i1])
     # the span bin by bin, as the joint loop's _value
