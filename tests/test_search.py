@@ -367,6 +367,11 @@ def test_notebook_repr_quotes_the_free_fit_as_the_summary_does(run):
     # the scan's best mass with the summary's two decimals (it read 152.6 beside 152.62)
     best = run["results"]["scan"]["best"]["mass"]
     assert f"best {best:.2f} GeV: Z_local" in repr(res.scan)
+    # the significances qualified as the summary's, and every warning it prints there too
+    assert "with systematics" in repr(res) and "with systematics" in run["stdout"]
+    for w in run["results"]["warnings"]:
+        if w["topic"] != "fit":
+            assert f"WARNING: {w['message']}" in run["stdout"] and w["message"] in repr(res)
 
 
 def test_notebook_repr_flags_an_invalid_free_fit(run):
