@@ -3,6 +3,7 @@ prints): every number through :mod:`peaksift._format`, one ``WARNING`` line per 
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
@@ -83,6 +84,8 @@ def _summary_text(d: Mapping[str, Any]) -> str:
             lines.append(_row("background envelope", ", ".join(env.get("labels") or [])
                               + f" (at the best mass: {part(env, 'best').get('function')})"))
         lines += _limit_lines(part(syst, "limits"), best.get("mass"))
+    else:
+        lines += _limit_lines({"without_systematics": d.get("limits")}, best.get("mass"))
     if not fit.get("valid") and not blinded:
         lines.append(_row("fit status", "INVALID: " + "; ".join(
             str(x) for x in fit.get("problems") or [])))
@@ -96,9 +99,9 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         fm = part(cal, "fitted_mass")
         lines.append(_row(f"calibration {cal.get('particle')}",
                           f"{format_pm(fm.get('value'), fm.get('error'), 'GeV')} vs tables "
-                          f"{fixed(cal.get('table_mass'), 4)} GeV (shift "
-                          f"{fixed(cal.get('shift_relative_permille'), 1, signed=True)} "
-                          "per mille)"))
+                          f"{fixed(cal.get('table_mass'), _decimals(fm.get('error')))} GeV "
+                          f"(shift {_two_digits(cal.get('shift_relative_permille'))} per mille, "
+                          f"{fixed(cal.get('shift_sigma'), 1, signed=True)} sigma)"))
     if blinded:
         lines.append(_row("blinding", "ACTIVE (data in the blinded window hidden)"))
     lim = d.get("limits") or {}
@@ -118,6 +121,30 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _decimals(error: Any) -> int:
+    """The decimals :func:`~peaksift._format.format_pm` gives a value of this error (two
+    significant digits of the error; 4 without one): the tables' mass beside the fitted
+    one at the same precision."""
+    try:
+        e = float(error)
+    except (TypeError, ValueError):
+        return 4
+    return max(0, 1 - math.floor(math.log10(e))) if math.isfinite(e) and e > 0 else 4
+
+
+def _two_digits(x: Any) -> str:
+    """A signed number to two significant digits, trailing zeros kept (-1.0, -0.050)."""
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return "n/a"
+    if not math.isfinite(v):
+        return "n/a"
+    if v == 0:
+        return "0.0"
+    return f"{v:+.{max(0, 1 - math.floor(math.log10(abs(v))))}f}"
+
+
 def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
     """The fitted mass with the mass scale profiled (``systematics.fitted_mass``)."""
     from .._format import fixed
@@ -131,13 +158,16 @@ def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
 
 
 def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
-    """The observed limit at the limit mass nearest ``mass``, with and without systematics."""
+    """The observed limit at the limit mass nearest ``mass``, with and without systematics
+    (without only, when the run has no systematics)."""
     from .._format import fixed
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
-    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
+    if not isinstance(wo, Mapping) or not wo.get("masses"):
         return []
-    ms = [float("inf") if m is None else float(m) for m in w["masses"]]
+    if w is not None and (not isinstance(w, Mapping) or not w.get("masses")):
+        return []
+    ms = [float("inf") if m is None else float(m) for m in (w or wo)["masses"]]
     try:
         i = min(range(len(ms)), key=lambda j: abs(ms[j] - float(mass)))
     except (TypeError, ValueError):
@@ -147,6 +177,8 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
         return (f"{fixed((d.get('observed') or [None] * (i + 1))[i])} observed, "
                 f"{fixed((d.get('expected') or [None] * (i + 1))[i])} expected")
 
+    if w is None:
+        return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(wo)} {wo.get('unit')}")]
     return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(w)} {w.get('unit')} with "
                  f"systematics ({pair(wo)} without)")]
 

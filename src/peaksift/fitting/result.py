@@ -163,11 +163,14 @@ class FitResult(FrozenValue):
         super().__post_init__()
 
     @classmethod
-    def _in_parts(cls, now: dict[str, Any], later: Any) -> FitResult:
+    def _in_parts(cls, now: dict[str, Any], later: Any, normal: bool = False) -> FitResult:
         """The FitResult of the fields ``now`` and ``later()``'s (every other field), the
         latter computed at the first access of any of them (:meth:`FrozenValue._deferred`):
-        the same value as ``FitResult(**now, **later())``."""
-        return cls._deferred(_normalised(now), lambda: _normalised(later()))
+        the same value as ``FitResult(**now, **later())``.  ``normal``: ``now`` is in the
+        form the result keeps already (:func:`_normalised`'s, its mappings read-only and
+        the caller's no more: a fit's own fields), so it is only frozen."""
+        return cls._deferred(now if normal else _normalised(now),
+                             lambda: _normalised(later()))
 
     # ---------------------------------------------------------------- summary
     @property
@@ -347,6 +350,12 @@ class FitResult(FrozenValue):
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"not a fit result written by FitResult.to_dict: {exc!r}") from None
 
+    def held(self, name: str) -> str:
+        """How a parameter that is not free was held: ``"tied"`` when it was computed from
+        another (its error carried from that one's, so it has one), else ``"fixed"``."""
+        e = self.errors[name]
+        return "tied" if e is not None and math.isfinite(e) and e > 0 else "fixed"
+
     # ------------------------------------------------------------------ show
     def __repr__(self) -> str:
         head = (f"FitResult({'valid' if self.valid else 'INVALID'}; "
@@ -360,7 +369,7 @@ class FitResult(FrozenValue):
             lines.append("  notes: " + "; ".join(self.notes))
         w = max(len(n) for n in self.parameters)
         for n in self.parameters:
-            tag = " (fixed)" if n in self.fixed else ""
+            tag = f" ({self.held(n)})" if n in self.fixed else ""
             if self.intervals and n in self.intervals:  # rounded as the summary's
                 ends = format_interval(self.values[n], *self.intervals[n]).partition(" ")[2]
                 tag += f"  interval {ends}" if ends else ""

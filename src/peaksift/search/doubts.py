@@ -22,6 +22,11 @@ summary and a section at the top of the report.
   away).
 * ``significance``    -- with ``[systematics]``: the scan's q0 whose profile in the mass
   scale took a lower well than the nearest one (as for the limits above).
+* ``scan``            -- the mass grid steps more than one resolution width somewhere
+  (:func:`~peaksift.stats.mass_grid.coarse_grid_note`): local and global significances
+  underestimated between hypotheses.
+* ``significance``    -- also: the global correction's N0 uncertain by more than
+  :data:`N0_ERROR_MAX` (too few background-only toys).
 * ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
   a kept order whose next order still improved the fit (the family needs higher orders).
 """
@@ -33,8 +38,13 @@ from collections.abc import Mapping
 from typing import Any
 
 from .._vocabulary import FITS
+from ..stats.mass_grid import coarse_grid_note
 
-__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubtful_limits_note", "doubts"]
+__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "N0_ERROR_MAX", "doubtful_limits_note", "doubts"]
+
+#: N0's relative error above this flags the global significance (a quarter: 16 toys'
+#: worth at N0 ~ 1; the demo's 100 toys give 3 %)
+N0_ERROR_MAX = 0.25
 
 #: a goodness-of-fit p-value below this flags the fit (0.1%: about 1 in 1000 fits of a
 #: right model; our choice)
@@ -61,6 +71,12 @@ def _num(x: Any) -> float | None:
     except (TypeError, ValueError):
         return None
     return v if math.isfinite(v) else None
+
+
+def _nan(x: Any) -> float:
+    """A JSON number, NaN for null or anything else."""
+    v = _num(x)
+    return math.nan if v is None else v
 
 
 def _gof_p(fit: Mapping[str, Any] | None) -> float | None:
@@ -160,6 +176,20 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                       "counting floor, Read 2002) at " + ", ".join(
                           f"{m:.2f} GeV ({o:.3g} vs {f:.3g})" for m, o, f in low)
                       + ": not a measurement (most likely a failed minimisation)")
+    sc = results.get("scan")
+    if isinstance(sc, Mapping):
+        grid = coarse_grid_note([_nan(m) for m in sc.get("masses") or []],
+                                [_nan(x) for x in sc.get("sigma") or []])
+        if grid:
+            add("scan", grid)
+    best = results.get("best")
+    n0, n0_err = (_num(best.get("N0")), _num(best.get("N0_error"))) if isinstance(
+        best, Mapping) else (None, None)
+    if n0 and n0_err is not None and n0_err / n0 > N0_ERROR_MAX:
+        add("significance", f"the global correction's up-crossing count N0 = {n0:.3g} +- "
+            f"{n0_err:.2g} ({best.get('n0_source') or 'toys'}) is uncertain by "
+            f"{n0_err / n0:.0%}: the global p-value is uncertain alike; run more "
+            "background-only toys (--toys)")
     band = _outside_band(results.get("limits"))
     if band is not None:
         n_out, n_all, below, above = band
