@@ -127,7 +127,7 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from .._format import format_interval
+    from .._format import fit_interval_text
     from ..search import FIT_FILES, run_fit
 
     _imports_done()
@@ -144,8 +144,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
                                    fr.width_parameter, "GeV"),
                                   ("signal yield", "signal_yield", "signal_yield", "")):
         if fr.intervals and par in fr.intervals:
-            print(_row(label, format_interval(fit[key]["value"], *fr.intervals[par], unit)
-                       + "  (profile likelihood)"))
+            print(_row(label, fit_interval_text(fit, key, par, unit) + "  (profile likelihood)"))
     if args.out is not None:
         for name in FIT_FILES:
             print(_row("written", str(Path(args.out) / name)))

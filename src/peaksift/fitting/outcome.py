@@ -197,7 +197,11 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         "peak_width_error": errs[i_w] if i_w is not None else math.nan,
         "width_parameter": wname, "gof_ndf": ndf, "model": model,
         "starts_tried": len(tried), "starts_nll": tried, "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
-        "cost": cost}, later)
+        "cost": cost, "lower_minimum": None,
+        # every signal yield held at 0: the background-only fit (named so by every output)
+        "kind": "background_only" if all(held[iy] and vs[iy] == 0.0
+                                         for _, _, iy in model.blocks[:-1]) else "free_fit"},
+        later)
 
 
 def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
@@ -240,6 +244,12 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
                     m.strategy = 1
                     me = m.merrors[k]
                 out[k] = (float(me.lower), float(me.upper))
+                i = names.index(k)
+                for side, at, b in (("lower", me.at_lower_limit, lower[i]),
+                                    ("upper", me.at_upper_limit, upper[i])):
+                    if at:  # MINOS stopped at the bound: the distance to it is no error
+                        notes.append(f"profile-likelihood interval of {k}: its {side} end is "
+                                     f"the bound {b:g} (-ln L has not risen by 1/2 there)")
                 if not me.is_valid:
                     notes.append(f"profile-likelihood interval of {k} is not valid "
                                  f"({'lower' if not me.lower_valid else 'upper'} side)")

@@ -20,9 +20,10 @@ from typing import Any
 import numpy as np
 
 from .. import shapes as _shapes
-from .._format import format_interval, p_value
+from .._format import chi_square, format_interval, p_value
 from .._json import finite as number
 from .._values import FrozenValue, Measurement
+from .._vocabulary import FITS, model_text
 from ..errors import FitError
 from ..likelihood import Model, new_minuit
 
@@ -48,6 +49,29 @@ def format_value(v: float, e: float) -> str:
         return f"{v:.6g}"
     digits = max(0, 1 - math.floor(math.log10(e)))
     return f"{v:.{digits}f} ± {e:.{digits}f}"
+
+
+def _plain_lower(low: Any, seq: type = list) -> dict[str, Any] | None:
+    """``lower_minimum`` as plain JSON types, its problems a ``seq`` (None stays None)."""
+    if low is None:
+        return None
+    out: dict[str, Any] = {}
+    for k, v in low.items():
+        if k == "problems":
+            out[k] = seq(str(p) for p in v)
+        elif isinstance(v, (bool, str)):
+            out[k] = v
+        else:
+            out[k] = number(v)
+    return out
+
+
+def _kind(kind: Any) -> str:
+    """A fit's ``kind``, checked against :data:`peaksift._vocabulary.FITS`."""
+    if kind not in FITS or kind == "scan":
+        raise ValueError(f"kind {kind!r} is not a fit's (one of free_fit, background_only, "
+                         "calibration)")
+    return str(kind)
 
 
 def _normalised(d: dict[str, Any]) -> dict[str, Any]:
@@ -112,6 +136,16 @@ class FitResult(FrozenValue):
         var = mu * weight_sq_sum/weight_sum for weighted bins.
     bounds : mapping
         ``name -> (lower, upper)`` used in the fit.
+    kind : str
+        Which fit this is, as every output names it (a key of
+        :data:`peaksift._vocabulary.FITS`): ``"free_fit"``, ``"background_only"`` (every
+        signal yield held at 0), ``"calibration"`` (set by the search's calibration).
+    lower_minimum : mapping or None
+        For a fit whose peak mass was started by the caller (``start={"mass": M}``): the
+        lower minimum the fitter's own starts reach elsewhere in the window, when lower by
+        more than 0.1 in -2 ln L -- ``mass``, ``width`` (of ``width_parameter``),
+        ``signal_yield``, ``kind`` (``"peak"`` or ``"dip"``), ``delta_minus_two_ln_l``,
+        ``valid``, ``problems`` (:mod:`peaksift.fitting.elsewhere`); None otherwise.
     """
 
     parameters: tuple[str, ...]
@@ -157,6 +191,8 @@ class FitResult(FrozenValue):
     minimizer: str = "fisher-scoring"
     gof_note: str = ""
     cost: Any = field(default=None, repr=False, compare=False)
+    lower_minimum: Any = None
+    kind: str = "free_fit"
 
     def __post_init__(self) -> None:
         _normalised(self.__dict__)  # (what object.__setattr__ writes, without its call)
@@ -284,6 +320,8 @@ class FitResult(FrozenValue):
             "correlations": [[number(c) for c in row] for row in self.correlations],
             "bins": {k: [number(x) for x in v] for k, v in self.bins.items()},
             "unit": self.unit,
+            "lower_minimum": _plain_lower(self.lower_minimum),
+            "kind": self.kind,
         }
 
     @classmethod
@@ -343,15 +381,18 @@ class FitResult(FrozenValue):
                 model=model, starts_tried=int(d.get("starts_tried", 1)),
                 starts_nll=tuple(val(v) for v in d.get("starts_nll", ())),
                 unit=d.get("unit", "GeV"), minimizer=d.get("minimizer", ""),
+                lower_minimum=_plain_lower(d.get("lower_minimum"), tuple),
+                kind=_kind(d.get("kind", "free_fit")),
             )
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"not a fit result written by FitResult.to_dict: {exc!r}") from None
 
     # ------------------------------------------------------------------ show
     def __repr__(self) -> str:
-        head = (f"FitResult({'valid' if self.valid else 'INVALID'}; "
-                f"{' + '.join(s.name for s in self.model.signals)} + "
-                f"{self.model.background.name}, {'binned' if self.binned else 'unbinned'}, "
+        model = model_text(self.kind, [s.name for s in self.model.signals],
+                           self.model.background.name)
+        head = (f"FitResult({'valid' if self.valid else 'INVALID'}; {model}, "
+                f"{'binned' if self.binned else 'unbinned'}, "
                 f"window {self.window[0]:g}-{self.window[1]:g} {self.unit})")
         lines = [head]
         if self.problems:
@@ -362,7 +403,8 @@ class FitResult(FrozenValue):
         for n in self.parameters:
             tag = " (fixed)" if n in self.fixed else ""
             if self.intervals and n in self.intervals:  # rounded as the summary's
-                ends = format_interval(self.values[n], *self.intervals[n]).partition(" ")[2]
+                ends = format_interval(self.values[n], *self.intervals[n],
+                                       bounds=self.bounds[n]).partition(" ")[2]
                 tag += f"  interval {ends}" if ends else ""
             lines.append(f"  {n:<{w}} = {format_value(self.values[n], self.errors[n])}{tag}")
         lines.append(f"  peak: mass {format_value(self.peak_mass, self.peak_mass_error)} "
@@ -375,7 +417,7 @@ class FitResult(FrozenValue):
         without degrees of freedom (an unbinned fit's binning may leave none, or fewer than
         none: the notebook table read 'chi2/ndf = 5.5/-1, p = n/a')."""
         if self.gof_ndf > 0 and math.isfinite(self.gof_chi2):
-            return (f"GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
+            return (f"GoF (Baker-Cousins): chi2/ndf = {chi_square(self.gof_chi2)}/{self.gof_ndf}, "
                     f"p = {p_value(self.gof_p_value)}")
         return ("GoF: not defined (no degrees of freedom left"
                 + (", unbinned fit" if not self.binned else "") + ")")
@@ -402,16 +444,16 @@ class FitResult(FrozenValue):
 
     def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
              run: Any = None, symbol: str | None = None, note: str = "",
-             log: bool = False, kind: str = "free_fit") -> Any:
+             log: bool = False, kind: str | None = None) -> Any:
         """Data, total model, signal and background, with pulls underneath and the fitted
         numbers in a table; returns a matplotlib Figure drawn without pyplot (the user's
         backend is left alone).  ``fig``: draw on this empty Figure instead; ``run``: a
         run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``); ``log``: a
-        logarithmic count axis; ``kind``: which fit this is (``"free_fit"``, ``"calibration"``:
-        the table's title names the model so).  See
+        logarithmic count axis; ``kind``: which fit this is (default its own ``kind``;
+        ``"free_fit"``, ``"calibration"``: the table's title names the model so).  See
         :func:`peaksift.fitting.figure.fit_figure`."""
         from .figure import fit_figure
 
         return fit_figure(self, path, title=title, fig=fig, run=run, symbol=symbol,
-                          note=note, log=log, kind=kind)
+                          note=note, log=log, kind=self.kind if kind is None else kind)
 

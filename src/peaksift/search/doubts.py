@@ -9,6 +9,10 @@ summary and a section at the top of the report.
 * ``sideband_fit``    -- blinded: the background fit on the sidebands is invalid or fits
   them badly (goodness-of-fit p below :data:`GOF_P_MIN`).
 * ``calibration``     -- the calibration fit is invalid: its mass shift is not a measurement.
+* ``local_minimum``   -- the free fit (started at the best mass) or the calibration fit
+  (started at the particle's mass) has a lower minimum elsewhere in its window
+  (``lower_minimum``, :mod:`peaksift.fitting.elsewhere`): a dip or another peak that
+  describes the spectrum better by the quoted Delta(-2 ln L).
 * ``goodness_of_fit`` -- the free fit's (or the calibration fit's) goodness-of-fit p-value is
   below :data:`GOF_P_MIN`: the model does not describe the data (e.g. a known peak inside
   the search window), so its significance and limits inherit a wrong model.
@@ -90,6 +94,9 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
         # fits the scan's hypotheses as well, and the scan's numbers stand
         add("fit", f"the {FITS['free_fit'][0]} is invalid ({probs}): its mass, width and "
                    "yield are not measurements")
+    if isinstance(fit, Mapping) and not blinded:
+        _lower_minimum(add, fit.get("lower_minimum"),
+                       f"the {FITS['free_fit'][0]}, started at the best mass hypothesis,")
     p = _gof_p(fit)
     if p is not None and p < GOF_P_MIN:
         add("goodness_of_fit",
@@ -119,6 +126,10 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
             add("calibration", f"the calibration fit of {name} is invalid"
                                f"{' (' + probs + ')' if probs else ''}: its fitted mass and "
                                "mass-scale shift are not measurements")
+        cf = cal.get("fit")
+        if isinstance(cf, Mapping):
+            _lower_minimum(add, cf.get("lower_minimum"), f"the calibration fit of {name}, "
+                                                         "started at its table mass,")
         pc = _gof_p(cal)
         if pc is not None and pc < GOF_P_MIN:
             add("goodness_of_fit",
@@ -169,6 +180,18 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                           f"{BAND_OUTSIDE_MAX_FRACTION:.0%}): the background model does not "
                           "follow the data, so the limits are doubtful")
     return out
+
+
+def _lower_minimum(add: Any, low: Any, which: str) -> None:
+    """The ``local_minimum`` warning of a fit started at a given mass whose
+    ``lower_minimum`` (:mod:`peaksift.fitting.elsewhere`) is set."""
+    if not isinstance(low, Mapping):
+        return
+    from ..fitting.elsewhere import elsewhere_text  # (only here: the fits' package is heavy)
+
+    add("local_minimum", f"{which} is a local minimum: the fitter's own starts reach "
+                         f"{elsewhere_text(low)}; its numbers describe the peak it was "
+                         "started on, not the best description of the spectrum")
 
 
 def _outside_band(lim: Any) -> tuple[int, int, int, int] | None:
