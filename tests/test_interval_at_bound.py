@@ -72,5 +72,39 @@ def test_the_interval_texts():
     assert format_interval(10.0, -10.0, 3.1, bounds=(0.0, None)) == \
         "10.0 +3.1 -? (lower end at the bound 0)"
     assert format_interval(5.0, -0.2, float("nan"), "GeV") == \
-        "5.00 +? -0.20 GeV (upper end not found)"
+        "5.00 +? -0.20 GeV (no valid upper end)"
     assert format_interval(5.0, None, None, "GeV") == "5 GeV"
+
+
+def test_an_invalid_fit_has_no_intervals():
+    """A spike in one bin (+25 events at 150-151 GeV on the exponential above, no peak):
+    the fit started there ends with sigma at or within one error of its floor (0.1 GeV, a
+    tenth of a bin), invalid.
+    Its intervals are not made (their ends would read as errors of a width that is not
+    measured: '0 +42 -42 GeV').  Reference: iminuit's MIGRAD on the likelihood above
+    (sigma bounded at the same floor): -ln L at the floor lies within 1/2 of its minimum,
+    so the width is not measured."""
+    n = np.round(2500.0 * exp_fractions(-1.0))
+    n[50] += 25.0
+    h = MassHistogram(EDGES)
+    h.weight_sum, h.weight_sq_sum = n.copy(), n.copy()
+    r = peaksift.fit(h, "gaussian", "exponential", WINDOW, binned=True,
+                     start={"mass": 150.5, "sigma": 1.0}, intervals=True)
+
+    def nll(mass, sigma, s, b1, b):
+        mu = s * gauss_fractions(mass, sigma) + b * exp_fractions(b1)
+        return 1e30 if not np.all(mu > 0) else float(
+            np.sum(mu - n + n * np.log(np.where(n > 0, n / mu, 1.0))))
+
+    m = Minuit(nll, mass=150.5, sigma=1.0, s=25.0, b1=-1.0, b=n.sum() - 25.0)
+    m.errordef = 0.5
+    m.limits["sigma"] = (0.1, 50.0)
+    m.limits["mass"] = WINDOW
+    m.migrad()
+    v = dict(zip(m.parameters, m.values))
+    # (the reference: the width is not told from its floor, -ln L there within 1/2)
+    assert nll(v["mass"], 0.1, v["s"], v["b1"], v["b"]) - m.fval < 0.5
+    assert not r.valid and any("sigma at or within one error of its floor" in p
+                               for p in r.problems)
+    assert r.intervals is None
+    assert "profile-likelihood intervals not made: the fit is not valid" in r.notes

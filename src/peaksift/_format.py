@@ -32,9 +32,9 @@ from typing import Any
 
 from ._json import finite
 
-__all__ = ["NA", "as_finite", "chi_square", "fit_interval_text", "fixed", "format_interval", "format_pm",
-           "interval_at_bounds", "mass_text", "no_best", "number", "p_value", "pm_parts",
-           "significance"]
+__all__ = ["NA", "as_finite", "chi_square", "fit_interval_text", "fixed", "format_interval",
+           "format_pm", "interval_at_bounds", "mass_text", "no_best", "number", "p_value",
+           "pm_parts", "significance", "value_decimals"]
 
 #: what every function prints for a missing or non-finite number
 NA = "n/a"
@@ -122,7 +122,17 @@ def format_pm(value: Any, error: Any, unit: str = "") -> str:
         return f"{number(v)}{u}"
     dec = max(0, 1 - math.floor(math.log10(e)))
     # thousands marked as in number()'s counts: 1,053 ± 32 beside 1,053 candidates
-    return f"{v:,.{dec}f} \u00b1 {e:,.{dec}f}{u}"
+    return f"{v:,.{value_decimals(v, e)}f} \u00b1 {e:,.{dec}f}{u}"
+
+
+def value_decimals(value: float, error: float) -> int:
+    """Decimals of a value quoted with ``error`` (finite, > 0): those of the error rounded
+    to two significant digits (common practice), but at least three significant digits
+    of a value smaller than its error (a width of 0.127 +- 6848 read "0 +- 6848")."""
+    dec = max(0, 1 - math.floor(math.log10(error)))
+    if value != 0 and abs(value) < error:
+        dec = max(dec, 2 - math.floor(math.log10(abs(value))))
+    return dec
 
 
 def pm_parts(value: Any, error: Any) -> tuple[str, str]:
@@ -207,7 +217,8 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
     An end that is not known reads ``?`` with the reason after the unit: one that lies on
     the parameter's ``bounds`` (``(lo, hi)``, the fitted parameter's value ``centre``,
     default ``value``; :func:`interval_at_bounds`) -- ``198.61 +? -0.46 GeV (upper end at
-    the bound 200)`` -- or one the minimiser did not find (None, NaN)."""
+    the bound 200)`` -- or one the minimiser did not find or validate (None, NaN: ``no valid
+    upper end``)."""
     u = f" {unit}" if unit else ""
     v = as_finite(value)
     if v is None:
@@ -231,9 +242,9 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
             b = as_finite(bounds[0 if name == "lower" else 1])
             why.append(f"{name} end at the bound {number(b)}")
         elif as_finite(x) is None:
-            why.append(f"{name} end not found")
+            why.append(f"no valid {name} end")
     tail = f" ({'; '.join(why)})" if why else ""
-    vtext = f"{v:,.{dec}f}" if dec is not None else number(v)
+    vtext = f"{v:,.{value_decimals(v, min(errs))}f}" if dec is not None else number(v)
     return f"{vtext} +{side('upper')} -{side('lower')}{u}{tail}"
 
 

@@ -110,6 +110,13 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
     # as Python floats (the same values): arithmetic on numpy scalars costs ~10x more
     xs, los, his, errs = xbest.tolist(), lower.tolist(), upper.tolist(), err.tolist()
     vs, held = vals.tolist(), is_fixed.tolist()
+    for i, floor in floors.items():
+        # at the floor, or within one error of it: the width is not measured, the peak is a
+        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
+        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
+        # before the intervals: an invalid fit has none (their ends would read as errors)
+        if not held[i] and at_floor(vs[i], errs[i], floor):
+            problems = [*problems, _floor_problem(names[i], vs[i], errs[i], floor, d.unit)]
     asked: list[str] = []  # the intervals' notes (made now, when they are asked for)
     ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
                        upper, problems, asked)
@@ -140,12 +147,6 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                          "alike (61-64 % for mass and yield on ~5 sigma toys)")
         return tuple(notes)
 
-    for i, floor in floors.items():
-        # at the floor, or within one error of it: the width is not measured, the peak is a
-        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
-        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
-        if not held[i] and at_floor(vs[i], errs[i], floor):
-            problems = [*problems, _floor_problem(names[i], vs[i], errs[i], floor, d.unit)]
     ge, gn, gn2 = (a.copy() if a.flags.writeable else a for a in gof_binning(d))
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:
@@ -243,7 +244,10 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
                     m.minos(k)
                     m.strategy = 1
                     me = m.merrors[k]
-                out[k] = (float(me.lower), float(me.upper))
+                # a side MINOS did not validate is no measurement: NaN (null in JSON,
+                # "?" in every text), its reason in the notes below
+                out[k] = (float(me.lower) if me.lower_valid else math.nan,
+                          float(me.upper) if me.upper_valid else math.nan)
                 i = names.index(k)
                 for side, at, b in (("lower", me.at_lower_limit, lower[i]),
                                     ("upper", me.at_upper_limit, upper[i])):
@@ -251,8 +255,11 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
                         notes.append(f"profile-likelihood interval of {k}: its {side} end is "
                                      f"the bound {b:g} (-ln L has not risen by 1/2 there)")
                 if not me.is_valid:
+                    sides = [w for w, ok in (("lower", me.lower_valid),
+                                             ("upper", me.upper_valid)) if not ok] or ["both"]
                     notes.append(f"profile-likelihood interval of {k} is not valid "
-                                 f"({'lower' if not me.lower_valid else 'upper'} side)")
+                                 f"({' and '.join(sides)} side{'s' if len(sides) > 1 else ''}; "
+                                 "left out)")
             except _NUMERIC + (RuntimeError,):
                 notes.append(f"profile-likelihood interval of {k} could not be made")
     return out

@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from .. import shapes as _shapes
-from .._format import chi_square, format_interval, p_value
+from .._format import chi_square, format_interval, p_value, value_decimals
 from .._json import finite as number
 from .._values import FrozenValue, Measurement
 from .._vocabulary import FITS, model_text
@@ -42,13 +42,14 @@ def shape_spec(shape: Any) -> dict[str, Any]:
 
 
 def format_value(v: float, e: float) -> str:
-    """``v ± e`` rounded to two significant digits of the error."""
+    """``v ± e`` rounded to two significant digits of the error (a value smaller than its
+    error keeps three significant digits: :func:`peaksift._format.value_decimals`)."""
     if not math.isfinite(v):
         return "n/a"
     if not (math.isfinite(e) and e > 0):
         return f"{v:.6g}"
     digits = max(0, 1 - math.floor(math.log10(e)))
-    return f"{v:.{digits}f} ± {e:.{digits}f}"
+    return f"{v:.{value_decimals(v, e)}f} ± {e:.{digits}f}"
 
 
 def _plain_lower(low: Any, seq: type = list) -> dict[str, Any] | None:

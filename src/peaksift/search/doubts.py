@@ -38,7 +38,8 @@ from typing import Any
 
 from .._vocabulary import FITS
 
-__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubtful_limits_note", "doubts"]
+__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubtful_limits_note", "doubts",
+           "fit_doubts"]
 
 #: a goodness-of-fit p-value below this flags the fit (0.1%: about 1 in 1000 fits of a
 #: right model; our choice)
@@ -88,23 +89,8 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
 
     fit = results.get("fit")
     blinded = bool((results.get("blinding") or {}).get("active"))
-    if isinstance(fit, Mapping) and not blinded and "valid" in fit and not fit.get("valid"):
-        probs = "; ".join(str(p) for p in fit.get("problems") or []) or "no reason recorded"
-        # named as every output names it (_vocabulary.FITS): "signal-plus-background fit"
-        # fits the scan's hypotheses as well, and the scan's numbers stand
-        add("fit", f"the {FITS['free_fit'][0]} is invalid ({probs}): its mass, width and "
-                   "yield are not measurements")
     if isinstance(fit, Mapping) and not blinded:
-        _lower_minimum(add, fit.get("lower_minimum"),
-                       f"the {FITS['free_fit'][0]}, started at the best mass hypothesis,")
-    p = _gof_p(fit)
-    if p is not None and p < GOF_P_MIN:
-        add("goodness_of_fit",
-            # the free fit's (its mass floats from the best mass: not "the fit at the best
-            # mass", which the report's spectrum caption no longer calls it either)
-            f"the {FITS['free_fit'][0]} has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
-            "signal-plus-background model does not describe the spectrum (a known peak in the "
-            "window, or the wrong background shape); the significance and limits rest on it")
+        out += fit_doubts(fit)
     sb = results.get("background_fit")
     if isinstance(sb, Mapping) and sb.get("kind") == "sideband_fit":  # blinded runs
         if not sb.get("valid"):
@@ -179,6 +165,35 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                           f"{n_all} masses ({below} below, {above} above; more than "
                           f"{BAND_OUTSIDE_MAX_FRACTION:.0%}): the background model does not "
                           "follow the data, so the limits are doubtful")
+    return out
+
+
+def fit_doubts(fit: Mapping[str, Any], started: str = "at the best mass hypothesis"
+               ) -> list[dict[str, str]]:
+    """The warnings of one free fit's results.json entry (``FitResult.to_dict``): invalid,
+    a lower minimum elsewhere, a poor goodness of fit.  ``started``: where its mass started
+    (the search's: the best mass; ``peaksift fit``'s: the given mass)."""
+    out: list[dict[str, str]] = []
+
+    def add(topic: str, message: str) -> None:
+        out.append({"topic": topic, "message": message})
+
+    if "valid" in fit and not fit.get("valid"):
+        probs = "; ".join(str(p) for p in fit.get("problems") or []) or "no reason recorded"
+        # named as every output names it (_vocabulary.FITS): "signal-plus-background fit"
+        # fits the scan's hypotheses as well, and the scan's numbers stand
+        add("fit", f"the {FITS['free_fit'][0]} is invalid ({probs}): its mass, width and "
+                   "yield are not measurements")
+    _lower_minimum(add, fit.get("lower_minimum"), f"the {FITS['free_fit'][0]}, started "
+                                                  f"{started},")
+    p = _gof_p(fit)
+    if p is not None and p < GOF_P_MIN:
+        add("goodness_of_fit",
+            # the free fit's (its mass floats from the best mass: not "the fit at the best
+            # mass", which the report's spectrum caption no longer calls it either)
+            f"the {FITS['free_fit'][0]} has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
+            "signal-plus-background model does not describe the spectrum (a known peak in the "
+            "window, or the wrong background shape); the significance and limits rest on it")
     return out
 
 

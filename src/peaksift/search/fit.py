@@ -243,9 +243,19 @@ def _write_fit(target: Path, fr: Any, run: Mapping[str, Any], labels: Any = None
     buf = io.BytesIO()
     with figure_style():
         fig.savefig(buf, format="png")
-    d = {**_plain(fr.to_dict()), "run": _plain(dict(run))}
+    from .doubts import fit_doubts
+
+    d = _plain(fr.to_dict())
+    # the fit's doubts, as results.json's "warnings" (the same words)
+    d = {**d, "warnings": fit_doubts(d, _started(run)), "run": _plain(dict(run))}
     png = atomic_write(target / "fit.png", buf.getvalue())
     return {"fit.json": write_results_json(d, target / "fit.json"), "fit.png": png}
+
+
+def _started(run: Mapping[str, Any]) -> str:
+    """Where ``peaksift fit``'s mass started, in the words of its warnings."""
+    held = " (held there)" if run.get("mass_held") else ""
+    return f"at the given mass {run.get('mass_start'):g} GeV{held}"
 
 
 def _fit_data(cfg: Config, col: Any, hist: Any) -> tuple[bool | None, Any]:
