@@ -59,6 +59,10 @@ def test_the_upper_end_of_the_mass_interval_is_the_bound(result):
     text = repr(result)
     line = next(ln for ln in text.splitlines() if ln.strip().startswith("mass "))
     assert "+? -" in line and "(upper end at the bound 200)" in line, line
+    from peaksift.fitting.figure import parameter_rows  # the fit figure's table
+
+    mass_row = next(r for r in parameter_rows(result) if r[0].startswith("mass"))
+    assert mass_row[2].startswith("+? -") and mass_row[2].endswith("(bound 200)"), mass_row
     d = result.to_dict()
     row = fit_interval_text(d, "peak_mass", "mass", "GeV")
     assert row.startswith(f"{v['mass']:.2f} +? -") and row.endswith(

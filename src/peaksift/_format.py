@@ -209,7 +209,7 @@ def interval_at_bounds(centre: Any, lower: Any, upper: Any, bounds: Any
 
 
 def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
-                    bounds: Any = None, centre: Any = None) -> str:
+                    bounds: Any = None, centre: Any = None, short: bool = False) -> str:
     """``value +upper -|lower|`` for an asymmetric (profile-likelihood) interval, rounded to
     two significant digits of the smaller of the two errors (common practice), e.g.
     ``152.24 +0.50 -0.55 GeV``.  Without a usable interval: the value alone.
@@ -218,7 +218,8 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
     the parameter's ``bounds`` (``(lo, hi)``, the fitted parameter's value ``centre``,
     default ``value``; :func:`interval_at_bounds`) -- ``198.61 +? -0.46 GeV (upper end at
     the bound 200)`` -- or one the minimiser did not find or validate (None, NaN: ``no valid
-    upper end``)."""
+    upper end``); ``short`` (a figure's table): the reason as ``(bound 200)``, ``(not
+    valid)``."""
     u = f" {unit}" if unit else ""
     v = as_finite(value)
     if v is None:
@@ -240,9 +241,10 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
     for name, (x, at) in ends.items():
         if at:
             b = as_finite(bounds[0 if name == "lower" else 1])
-            why.append(f"{name} end at the bound {number(b)}")
+            why.append(f"bound {number(b)}" if short else
+                       f"{name} end at the bound {number(b)}")
         elif as_finite(x) is None:
-            why.append(f"no valid {name} end")
+            why.append("not valid" if short else f"no valid {name} end")
     tail = f" ({'; '.join(why)})" if why else ""
     vtext = f"{v:,.{value_decimals(v, min(errs))}f}" if dec is not None else number(v)
     return f"{vtext} +{side('upper')} -{side('lower')}{u}{tail}"

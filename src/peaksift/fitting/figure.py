@@ -50,7 +50,8 @@ def parameter_rows(result: FitResult, *, background: bool = False
         if n in result.fixed:
             v, e = number(result.values[n]), "(fixed)"
         elif n in intervals and (text := format_interval(result.values[n], *intervals[n],
-                                                         bounds=result.bounds[n])) \
+                                                         bounds=result.bounds[n],
+                                                         short=True)) \
                 and " +" in text:
             v, _, e = text.partition(" ")
         else:
