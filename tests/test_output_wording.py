@@ -52,6 +52,7 @@ def test_a_fit_is_named_as_the_outputs_name_it():
     free = peaksift.fit(h, "gaussian", "exponential", WINDOW, binned=True)
     assert free.kind == "free_fit"
     assert repr(free).startswith("FitResult(valid; free fit: gaussian + exponential,")
+    assert "<p>free fit: gaussian + exponential; <b>valid</b>;" in free._repr_html_()
     bonly = peaksift.fit(h, "gaussian", "exponential", WINDOW, binned=True,
                          fixed={"signal_yield": 0.0, "mass": 150.0, "sigma": 4.0})
     assert bonly.kind == "background_only"

@@ -434,7 +434,10 @@ class FitResult(FrozenValue):
             f"<tr><td>{html.escape(n)}</td><td>{parts[n][0]}</td><td>{parts[n][2]}</td>"
             f"<td>{'fixed' if n in self.fixed else ''}</td></tr>" for n in self.parameters)
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
-        return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
+        model = model_text(self.kind, [s.name for s in self.model.signals],
+                           self.model.background.name)
+        return (f"<div><p>{html.escape(model)}; {status}; "
+                f"{'binned' if self.binned else 'unbinned'} "
                 f"({html.escape(self.binned_reason)}); {html.escape(self._gof_text())}</p>"
                 f"{notes}"
                 f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
