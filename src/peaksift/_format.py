@@ -209,7 +209,8 @@ def interval_at_bounds(centre: Any, lower: Any, upper: Any, bounds: Any
 
 
 def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
-                    bounds: Any = None, centre: Any = None, short: bool = False) -> str:
+                    bounds: Any = None, centre: Any = None, short: bool = False,
+                    label: str = "") -> str:
     """``value +upper -|lower|`` for an asymmetric (profile-likelihood) interval, rounded to
     two significant digits of the smaller of the two errors (common practice), e.g.
     ``152.24 +0.50 -0.55 GeV``.  Without a usable interval: the value alone.
@@ -219,7 +220,8 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
     default ``value``; :func:`interval_at_bounds`) -- ``198.61 +? -0.46 GeV (upper end at
     the bound 200)`` -- or one the minimiser did not find or validate (None, NaN: ``no valid
     upper end``); ``short`` (a figure's table): the reason as ``(bound 200)``, ``(not
-    valid)``."""
+    valid)``; ``label``: what the interval is, first in the same parentheses
+    (``(profile-likelihood interval; upper end at the bound 200)``)."""
     u = f" {unit}" if unit else ""
     v = as_finite(value)
     if v is None:
@@ -229,7 +231,7 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
     ends = {"lower": (lower, at_lo), "upper": (upper, at_hi)}
     errs = [abs(f) for x, at in ends.values() if not at and (f := as_finite(x))]
     if not (at_lo or at_hi or errs):
-        return f"{number(v)}{u}"  # no usable interval at all: the value alone
+        return f"{number(v)}{u}"  # no usable interval at all: the value alone (no label)
     dec = max(0, 1 - math.floor(math.log10(min(errs)))) if errs else None
 
     def side(name: str) -> str:
@@ -245,12 +247,14 @@ def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
                        f"{name} end at the bound {number(b)}")
         elif as_finite(x) is None:
             why.append("not valid" if short else f"no valid {name} end")
+    why = [label, *why] if label else why
     tail = f" ({'; '.join(why)})" if why else ""
     vtext = f"{v:,.{value_decimals(v, min(errs))}f}" if dec is not None else number(v)
     return f"{vtext} +{side('upper')} -{side('lower')}{u}{tail}"
 
 
-def fit_interval_text(fit: Mapping[str, Any], key: str, par: str, unit: str = "") -> str:
+def fit_interval_text(fit: Mapping[str, Any], key: str, par: str, unit: str = "",
+                      label: str = "") -> str:
     """The profile-likelihood interval of parameter ``par`` of a fit's results.json entry
     (``FitResult.to_dict``) around its ``key`` value (``peak_mass``, ``width``, ...), ends
     on the parameter's bounds marked (:func:`format_interval`)."""
@@ -259,4 +263,4 @@ def fit_interval_text(fit: Mapping[str, Any], key: str, par: str, unit: str = ""
     entry = fit.get(key)
     value = entry.get("value") if isinstance(entry, Mapping) else entry
     return format_interval(value, iv[0], iv[1], unit, bounds=p.get("bounds"),
-                           centre=p.get("value", value))
+                           centre=p.get("value", value), label=label)

@@ -155,8 +155,8 @@ def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None
     for i, (label, _) in enumerate(rows):
         if label in which and which[label][1] in iv:
             key, par, unit = which[label]
-            rows[i] = (label, fit_interval_text(fit, key, par, unit)
-                       + " (profile-likelihood interval)")
+            rows[i] = (label, fit_interval_text(fit, key, par, unit,
+                                                label="profile-likelihood interval"))
     text = fit_settings_text(fit.get("settings") or {})
     if text:
         at = next((i for i, (label, _) in enumerate(rows) if label == "Signal yield"),

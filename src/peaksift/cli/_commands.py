@@ -147,7 +147,8 @@ def _cmd_fit(args: argparse.Namespace) -> int:
                                    fr.width_parameter, "GeV"),
                                   ("signal yield", "signal_yield", "signal_yield", "")):
         if fr.intervals and par in fr.intervals:
-            print(_row(label, fit_interval_text(fit, key, par, unit) + "  (profile likelihood)"))
+            print(_row(label, fit_interval_text(fit, key, par, unit,
+                                                label="profile likelihood")))
     started = f"at the given mass {args.mass:g} GeV" + (" (held there)" if args.hold_mass
                                                           else "")
     for w in fit_doubts(fit, started):  # the invalid fit has its status line above

@@ -52,15 +52,13 @@ def format_value(v: float, e: float) -> str:
     return f"{v:.{value_decimals(v, e)}f} ± {e:.{digits}f}"
 
 
-def _plain_lower(low: Any, seq: type = list) -> dict[str, Any] | None:
-    """``lower_minimum`` as plain JSON types, its problems a ``seq`` (None stays None)."""
+def _plain_lower(low: Any) -> dict[str, Any] | None:
+    """``lower_minimum`` as plain JSON types (None stays None)."""
     if low is None:
         return None
     out: dict[str, Any] = {}
     for k, v in low.items():
-        if k == "problems":
-            out[k] = seq(str(p) for p in v)
-        elif isinstance(v, (bool, str)):
+        if isinstance(v, (bool, str)):
             out[k] = v
         else:
             out[k] = number(v)
@@ -144,9 +142,10 @@ class FitResult(FrozenValue):
     lower_minimum : mapping or None
         For a fit whose peak mass was started by the caller (``start={"mass": M}``): the
         lower minimum the fitter's own starts reach elsewhere in the window, when lower by
-        more than 0.1 in -2 ln L -- ``mass``, ``width`` (of ``width_parameter``),
-        ``signal_yield``, ``kind`` (``"peak"`` or ``"dip"``), ``delta_minus_two_ln_l``,
-        ``valid``, ``problems`` (:mod:`peaksift.fitting.elsewhere`); None otherwise.
+        more than 0.1 in -2 ln L and is itself a valid fit wider than a bin -- ``mass``,
+        ``width`` (of ``width_parameter``), ``signal_yield``, ``kind`` (``"peak"`` or
+        ``"dip"``), ``delta_minus_two_ln_l`` (:mod:`peaksift.fitting.elsewhere`); None
+        otherwise.
     """
 
     parameters: tuple[str, ...]
@@ -382,7 +381,7 @@ class FitResult(FrozenValue):
                 model=model, starts_tried=int(d.get("starts_tried", 1)),
                 starts_nll=tuple(val(v) for v in d.get("starts_nll", ())),
                 unit=d.get("unit", "GeV"), minimizer=d.get("minimizer", ""),
-                lower_minimum=_plain_lower(d.get("lower_minimum"), tuple),
+                lower_minimum=_plain_lower(d.get("lower_minimum")),
                 kind=_kind(d.get("kind", "free_fit")),
             )
         except (KeyError, TypeError, ValueError, IndexError) as exc:

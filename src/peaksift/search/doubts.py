@@ -12,7 +12,8 @@ summary and a section at the top of the report.
 * ``local_minimum``   -- the free fit (started at the best mass) or the calibration fit
   (started at the particle's mass) has a lower minimum elsewhere in its window
   (``lower_minimum``, :mod:`peaksift.fitting.elsewhere`): a dip or another peak that
-  describes the spectrum better by the quoted Delta(-2 ln L).
+  describes the spectrum better by the quoted Delta(-2 ln L), at least
+  :data:`LOWER_MINIMUM_WARN`.
 * ``goodness_of_fit`` -- the free fit's (or the calibration fit's) goodness-of-fit p-value is
   below :data:`GOF_P_MIN`: the model does not describe the data (e.g. a known peak inside
   the search window), so its significance and limits inherit a wrong model.
@@ -38,12 +39,17 @@ from typing import Any
 
 from .._vocabulary import FITS
 
-__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubtful_limits_note", "doubts",
-           "fit_doubts"]
+__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "LOWER_MINIMUM_WARN", "doubtful_limits_note",
+           "doubts", "fit_doubts"]
 
 #: a goodness-of-fit p-value below this flags the fit (0.1%: about 1 in 1000 fits of a
 #: right model; our choice)
 GOF_P_MIN = 1e-3
+#: a fit's lower minimum elsewhere (``lower_minimum``) is a warning from this Delta(-2 ln L):
+#: below it the two descriptions of the spectrum are equally good at the 68 % level (a
+#: background-only continuum's fit had a dip 0.61 lower; our choice); it stays in the fit's
+#: notes and results.json either way
+LOWER_MINIMUM_WARN = 1.0
 #: more than this fraction of limit masses outside the expected +-2 sigma band flags the
 #: limits (a right model puts about 5% there; a real signal a few masses near it)
 BAND_OUTSIDE_MAX_FRACTION = 0.2
@@ -200,7 +206,8 @@ def fit_doubts(fit: Mapping[str, Any], started: str = "at the best mass hypothes
 def _lower_minimum(add: Any, low: Any, which: str) -> None:
     """The ``local_minimum`` warning of a fit started at a given mass whose
     ``lower_minimum`` (:mod:`peaksift.fitting.elsewhere`) is set."""
-    if not isinstance(low, Mapping):
+    if not isinstance(low, Mapping) or not (_num(low.get("delta_minus_two_ln_l")) or 0.0) \
+            >= LOWER_MINIMUM_WARN:
         return
     from ..fitting.elsewhere import elsewhere_text  # (only here: the fits' package is heavy)
 
