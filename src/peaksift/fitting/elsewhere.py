@@ -76,7 +76,8 @@ def one_bin(ref: Any) -> bool:
     below the narrowest bin; an unbinned fit: of the binning of its goodness of fit): a
     fluctuation of one bin, which a spectrum of many bins always has somewhere (in 90 bins
     the largest is ~2.5 standard deviations, ~6 in -2 ln L) and which no resolution makes a
-    peak -- the fit itself is flagged invalid for it.  Not reported as a lower minimum."""
+    peak (the fit is usually flagged invalid for it too: a width at its floor).  Not
+    reported as a lower minimum."""
     import numpy as np
 
     edges = np.asarray(ref.edges, float)
