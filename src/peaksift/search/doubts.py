@@ -188,7 +188,10 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
     best = results.get("best")
     n0, n0_err = (_num(best.get("N0")), _num(best.get("N0_error"))) if isinstance(
         best, Mapping) else (None, None)
-    if n0 and n0_err is not None and n0_err / n0 > N0_ERROR_MAX:
+    # (from toys only: N0 read off the observed scan itself, toys = 0, is the user's stated
+    # choice and its source is printed beside it)
+    from_toys = isinstance(best, Mapping) and "toys" in str(best.get("n0_source") or "")
+    if from_toys and n0 and n0_err is not None and n0_err / n0 > N0_ERROR_MAX:
         add("significance", f"the global correction's up-crossing count N0 = {n0:.3g} +- "
             f"{n0_err:.2g} ({best.get('n0_source') or 'toys'}) is uncertain by "
             f"{n0_err / n0:.0%}: the global p-value is uncertain alike; run more "
