@@ -12,7 +12,7 @@
   function its envelope takes at mu = 0 on the data;
 * toys (Read, J. Phys. G 28 (2002) 2693) where the summed background under the signal is
   below ``low_count_background`` events and ``method="auto"`` (or at ``toy_masses`` with
-  ``method="toys"``): :func:`peaksift.stats.channel_toys.joint_toy_limit`, the toys
+  ``method="toys"``): :func:`peaksift.stats.channel_toy_limits.joint_toy_limit`, the toys
   generating every channel (with its envelope's function at mu = 0, not profiled; its
   shape factors profiled, their global observables drawn per toy);
 * where a channel's mass scale reaches beyond its peak's width, the asymptotic limits carry
@@ -39,7 +39,7 @@ from .._values import FrozenValue
 from .._vocabulary import method_words
 from ..errors import FitError
 from .channel_envelope import channel_candidates, null_choice
-from .channel_toys import run_joint_toy_limit
+from .channel_toy_limits import run_joint_toy_limit
 from .channels import Channel, _full_model, _prepare, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .envelope_choice import choice_entry, read_channel_entries
