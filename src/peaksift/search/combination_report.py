@@ -242,7 +242,7 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
     lines += [f"  WARNING: combined significance: {note}"
               for note in d["combination"].get("notes") or [] if "several minima" in note]
     # the combined limits' notes that are warnings (as a search's limits warnings), and
-    # toy limits that do not profile the background envelope (stats.channel_limits)
+    # (results written before toylimit10) toy limits that did not profile the envelope
     lines += [f"  WARNING: combined limits: {note}"
               for note in (d.get("limits") or {}).get("notes") or []
               if doubtful_limits_note(note) or "do not profile the choice" in note]

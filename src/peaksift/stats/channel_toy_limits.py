@@ -18,6 +18,13 @@ The single-channel recipe of :mod:`peaksift.stats.toy_limits` (Read, J. Phys. G 
   channel's toy limits with systematics do (:mod:`peaksift.stats.toy_limits_systematics`);
   every fit, of the data and of the toys, takes each channel's lowest well of the mass
   scale (:func:`peaksift.stats.joint_wells.joint_global`);
+* a channel's background candidates profiled as a discrete choice (its envelope; Dauncey,
+  Kenzie, Wardle, Davies, JINST 10 (2015) P04015): every q~mu, of the data and of every
+  toy, is the envelope's, 2 [min_i (NLL_i + a N_i / 2) - ref] over the assignments i of one
+  function per channel (one joint fit each), as the asymptotic combined limits and the
+  single channel's toy limits with systematics do; the background-only toys come from
+  each channel's function at mu = 0, the s+b toys from the assignment the data's envelope
+  takes at mu;
 * CLs+b and CLb from both sets with the balance-heuristic weights (as the single channel:
   unbiased, precise in both tails), ties within 0.01 in q; the observed limit and the
   expected band (the background-only toys' own limits) where ln CLs, linear in mu between
@@ -149,11 +156,10 @@ def _joined(parts: list[tuple[_Set, np.ndarray]]) -> _Set:
     return out
 
 
-def _conditional(parts: list[tuple[_Set, float]]) -> list[tuple[np.ndarray, dict]]:
-    """q~mu and the conditional fits of every set of ``parts`` at its signal value, in
-    stacks of at most ``_LIMIT_ROWS`` rows (whole sets): per part ``(q, fit)``, the same
-    numbers as ``set.q(mu)``."""
-    out: list[tuple[np.ndarray, dict]] = []
+def _conditional(parts: list[tuple[_Set, float]]) -> list[dict[str, Any]]:
+    """The conditional fits of every set of ``parts`` at its signal value, in stacks of
+    at most ``_LIMIT_ROWS`` rows (whole sets): per part the fit ``set.q(mu)`` gives."""
+    out: list[dict[str, Any]] = []
     i = 0
     while i < len(parts):
         j, rows = i, 0
@@ -164,12 +170,55 @@ def _conditional(parts: list[tuple[_Set, float]]) -> list[tuple[np.ndarray, dict
         chunk = parts[i:j]
         sizes = [s.counts[0].shape[0] for s, _ in chunk]
         stack = _joined([(s, np.arange(n)) for (s, _), n in zip(chunk, sizes)])
-        q, r = stack.q(np.repeat([mu for _, mu in chunk], sizes),
+        r = stack._fit(np.repeat([mu for _, mu in chunk], sizes),
                        np.repeat(np.arange(len(chunk)), sizes))
         edges = np.cumsum([0] + sizes)
-        for a, b in itertools.pairwise(edges):
-            out.append((q[a:b], _slice_fit(r, a, b)))
+        out += [_slice_fit(r, a, b) for a, b in itertools.pairwise(edges)]
         i = j
+    return out
+
+
+class _Choice:
+    """Data sets fitted with every assignment of one background function per channel
+    (one :class:`_Set` each, ``combos[i]`` its models): the envelope of Dauncey, Kenzie,
+    Wardle, Davies, JINST 10 (2015) P04015, ``min_i [NLL_i + pens[i] / 2]`` (``pens`` in
+    2 NLL units), at mu = 0, at the free fit and at any mu; with one assignment and no
+    penalty it is that assignment's q~mu, to the bit."""
+
+    def __init__(self, combos: list, pens: list[float], counts: list[np.ndarray],
+                 *args: Any, groups: np.ndarray | None = None) -> None:
+        self.pens = pens
+        self.sets = [_Set(models, counts, *args, groups=groups) for models in combos]
+        t = counts[0].shape[0]
+        hat = np.stack([st.nll_hat + 0.5 * p for st, p in zip(self.sets, pens)])
+        zero = np.stack([np.broadcast_to(st.nll_zero + 0.5 * p, (t,))
+                         for st, p in zip(self.sets, pens)])
+        pick = hat.argmin(axis=0)
+        # the free fit's mu is the chosen function's; mu < 0 takes the envelope at 0
+        self.mu_hat = np.stack([st.mu_hat for st in self.sets])[pick, np.arange(t)]
+        self.ref = np.where(self.mu_hat < 0, zero.min(axis=0), hat.min(axis=0))
+
+    def take(self, rows: np.ndarray) -> _Choice:
+        """The rows ``rows`` alone (each assignment's fits carried along)."""
+        out = object.__new__(_Choice)
+        out.pens, out.mu_hat, out.ref = self.pens, self.mu_hat[rows], self.ref[rows]
+        out.sets = [_joined([(st, rows)]) for st in self.sets]
+        return out
+
+
+def _envelope_q(parts: list[tuple[_Choice, float]]) -> list[tuple]:
+    """Per part ``(q~mu, the fits of every assignment, the assignment chosen)`` at its
+    signal value: each assignment's conditional fits of every part in shared stacks
+    (:func:`_conditional`), then q~mu = 2 [min_i (NLL_i + pens_i / 2) - ref] (CCGV eq. 16
+    with the envelope; 0 where mu_hat > mu)."""
+    fits = [_conditional([(ch.sets[i], mu) for ch, mu in parts])
+            for i in range(len(parts[0][0].sets))]
+    out = []
+    for k, (ch, mu) in enumerate(parts):
+        vals = np.stack([f[k]["nll"] + 0.5 * p for f, p in zip(fits, ch.pens)])
+        q = np.where(ch.mu_hat > mu, 0.0, np.maximum(2.0 * (vals.min(axis=0) - ch.ref),
+                                                     0.0))
+        out.append((q, [f[k] for f in fits], vals.argmin(axis=0)))
     return out
 
 
@@ -201,14 +250,19 @@ def _centers(shapes: Any, around: list, rng: np.random.Generator, t: int) -> Any
 
 def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoys: int,
                     seed: int, obs_asym: float, exp_asym: np.ndarray,
-                    shapes: Any = None) -> dict[str, Any]:
+                    shapes: Any = None, candidates: Any = None,
+                    penalties: Any = None) -> dict[str, Any]:
     """Toy-based CLs limit on sigma x B at one hypothesis (see the module guide).
 
-    ``models``: each channel's ScanModel holding that one hypothesis; ``conv``: each
+    ``models``: each channel's ScanModel holding that one hypothesis (the background-only
+    toys are generated from them); ``conv``: each
     channel's events per unit of sigma x B there; ``norms``: the normalisation nuisances
     (or None); ``obs_asym``, ``exp_asym``: the asymptotic values that place the grid;
     ``shapes``: per channel None or ``(signal, base_params, SignalNuisances)`` at that
-    hypothesis (its shape factors profiled, their global observables drawn per toy).
+    hypothesis (its shape factors profiled, their global observables drawn per toy);
+    ``candidates``: the channels' background functions profiled as a discrete choice,
+    per assignment of one function per channel its models (as ``models``), with
+    ``penalties`` per assignment (2 NLL units; default: ``models`` alone).
     Returns ``observed``, ``expected`` (band name -> value), ``grid``, ``cls``,
     ``n_toys`` and ``notes``.
 
@@ -238,14 +292,17 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
     # data's (1)
     cen_b = _centers(shapes, ones, rng, ntoys)
     memo: dict = {}   # the mass-scale scans' fractions: one hypothesis, every set's
-    toys_b = _Set(models, n_b, conv, norms, aux_b, shapes, cen_b, memo)
-    data = _Set(models, [m.counts[None, :] for m in models], conv, norms, np.zeros((1, nj)),
-                shapes, None if shapes is None else [None if o is None else o[None, :]
-                                                     for o in ones], memo)
+    combos = [list(models)] if candidates is None else [list(c) for c in candidates]
+    pens = [0.0] if candidates is None else [float(p) for p in penalties]
+    toys_b = _Choice(combos, pens, n_b, conv, norms, aux_b, shapes, cen_b, memo)
+    data = _Choice(combos, pens, [m.counts[None, :] for m in models], conv, norms,
+                   np.zeros((1, nj)), shapes, None if shapes is None else [
+                       None if o is None else o[None, :] for o in ones], memo)
 
-    def generate(mu: float, r: dict[str, Any]) -> tuple:
-        """The s+b toys at ``mu`` from the data's conditional fit ``r`` there (the shape
-        factors at their fitted values, their global observables drawn around those)."""
+    def generate(mu: float, r: dict[str, Any], models: list) -> tuple:
+        """The s+b toys at ``mu`` from the data's conditional fit ``r`` there with the
+        assignment of functions the envelope takes there (``models``; the shape factors
+        at their fitted values, their global observables drawn around those)."""
         nu_hat = r["nu"][0]
         nu_sb, k_sb = [], []
         for c, m in enumerate(models):
@@ -284,21 +341,23 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
 
     def evaluate(mus: list[float]) -> list[tuple]:
         g = len(mus)
-        obs = _conditional([(data, mu) for mu in mus])
-        drawn = [generate(mu, r) for mu, (_, r) in zip(mus, obs)]   # in order: the streams
+        obs = _envelope_q([(data, mu) for mu in mus])
+        # in order: the toys' streams; each from the assignment the data's envelope takes
+        drawn = [generate(mu, fits[int(pick[0])], combos[int(pick[0])])
+                 for mu, (_, fits, pick) in zip(mus, obs)]
         # every value's s+b toys in one stack of free fits, each value's set on its own
-        sb = _Set(models, [np.concatenate([d[2][c] for d in drawn])
-                           for c in range(len(models))], conv, norms,
-                  np.concatenate([d[3] for d in drawn]), shapes,
-                  None if shapes is None else [
-                      None if shapes[c] is None else np.concatenate([d[4][c] for d in drawn])
-                      for c in range(len(models))], memo,
-                  groups=np.repeat(np.arange(g), ntoys))
-        parts: list[tuple[_Set, float]] = []
+        sb = _Choice(combos, pens, [np.concatenate([d[2][c] for d in drawn])
+                                    for c in range(len(models))], conv, norms,
+                     np.concatenate([d[3] for d in drawn]), shapes,
+                     None if shapes is None else [
+                         None if shapes[c] is None else np.concatenate([d[4][c]
+                                                                        for d in drawn])
+                         for c in range(len(models))], memo,
+                     groups=np.repeat(np.arange(g), ntoys))
+        parts: list[tuple[_Choice, float]] = []
         for i, mu in enumerate(mus):
-            parts += [(_joined([(sb, np.arange(i * ntoys, (i + 1) * ntoys))]), mu),
-                      (toys_b, mu)]
-        qs = _conditional(parts)
+            parts += [(sb.take(np.arange(i * ntoys, (i + 1) * ntoys)), mu), (toys_b, mu)]
+        qs = _envelope_q(parts)
         return [cls_of(float(obs[i][0][0]), qs[2 * i + 1][0], qs[2 * i][0], drawn[i])
                 for i in range(g)]
 
