@@ -294,10 +294,14 @@ def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoy
     memo: dict = {}   # the mass-scale scans' fractions: one hypothesis, every set's
     combos = [list(models)] if candidates is None else [list(c) for c in candidates]
     pens = [0.0] if candidates is None else [float(p) for p in penalties]
-    toys_b = _Choice(combos, pens, n_b, conv, norms, aux_b, shapes, cen_b, memo)
-    data = _Choice(combos, pens, [m.counts[None, :] for m in models], conv, norms,
-                   np.zeros((1, nj)), shapes, None if shapes is None else [
-                       None if o is None else o[None, :] for o in ones], memo)
+    # the background-only toys' free fits and the data's in one stack, each set alone
+    both = _Choice(combos, pens, [np.concatenate([n, m.counts[None, :]])
+                                  for n, m in zip(n_b, models)], conv, norms,
+                   np.concatenate([aux_b, np.zeros((1, nj))]), shapes,
+                   None if shapes is None else [None if o is None else np.concatenate(
+                       [cb, o[None, :]]) for cb, o in zip(cen_b, ones)], memo,
+                   groups=np.repeat([0, 1], [ntoys, 1]))
+    toys_b, data = both.take(np.arange(ntoys)), both.take(np.array([ntoys]))
 
     def generate(mu: float, r: dict[str, Any], models: list) -> tuple:
         """The s+b toys at ``mu`` from the data's conditional fit ``r`` there with the
