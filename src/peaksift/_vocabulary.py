@@ -11,8 +11,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "UNREADABLE_FILES",
-           "figure_wanted", "method_words", "model_text"]
+__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "NORMALISATION_RANGES",
+           "UNREADABLE_FILES", "figure_wanted", "method_words", "model_text"]
 
 #: How :func:`peaksift.upper_limits` computes its CLs limits (``limits.method``):
 #: ``"auto"``       asymptotic formulae, and toys at the masses where the formulae misplace
@@ -26,6 +26,17 @@ LIMIT_METHOD_WORDS: dict[str, str] = {
     "auto": "asymptotic, toys at low counts",
     "asymptotic": "asymptotic",
     "toys": "asymptotic, toys at low counts and at chosen masses",
+}
+
+#: The numbers that turn a limit on signal events into one on sigma x B, as ``[limits]``
+#: and :func:`peaksift.upper_limits` take them: name -> (lowest, highest or None, lowest
+#: excluded).  Uncertainties are relative (0.02 for 2 %): above 1 is a percentage given by
+#: mistake far more often than a real doubling; an efficiency x acceptance above 1 is not one.
+NORMALISATION_RANGES: dict[str, tuple[float, float | None, bool]] = {
+    "luminosity": (0.0, None, True),
+    "luminosity_uncertainty": (0.0, 1.0, False),
+    "efficiency": (0.0, 1.0, True),
+    "efficiency_uncertainty": (0.0, 1.0, False),
 }
 
 #: What an input file that cannot be read does to a run (``execution.unreadable_files``,
