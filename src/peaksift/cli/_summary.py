@@ -47,6 +47,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
              _row("events read", number(inp.get("events_read"))),
              _row("candidates in sidebands" if blinded else "candidates in window",
                   number(inp.get("candidates"))),
+             *_weights_row(d, blinded),
              *(_row("model", text) for text in models_text(d)),
              _row("best mass hypothesis", f"{mass_text(best.get('mass'))} GeV")]
     if blinded:  # intended: no fit inside the blinded window, which is not a failure
@@ -118,6 +119,19 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     _doubt_lines(lines, d)
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _weights_row(d: Mapping[str, Any], blinded: bool) -> list[str]:
+    """A weighted spectrum's sum of weights (the candidates above are raw counts): the
+    number its significances are about, with the approximation they rest on."""
+    from .._format import number
+
+    ws = (d.get("scan") or {}).get("weight_scale")
+    sow = (d.get("input") or {}).get("sum_of_weights")
+    if not isinstance(ws, (int, float)) or ws == 1.0 or sow is None:
+        return []
+    return [_row("sum of weights" + (" (sidebands)" if blinded else ""),
+                 f"{number(sow)} (weighted: scaled-Poisson effective counts, see WARNING)")]
 
 
 def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:

@@ -26,7 +26,9 @@ summary and a section at the top of the report.
   (:func:`~peaksift.stats.mass_grid.coarse_grid_note`): local and global significances
   underestimated between hypotheses.
 * ``significance``    -- also: the global correction's N0 uncertain by more than
-  :data:`N0_ERROR_MAX` (too few background-only toys).
+  :data:`N0_ERROR_MAX` (too few background-only toys); a weighted spectrum, whose
+  significances and limits rest on scaled-Poisson effective counts (the scan's note,
+  :func:`~peaksift.stats.scan_inputs.weighted_note`): an approximation for unequal weights.
 * ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
   a kept order whose next order still improved the fit (the family needs higher orders).
 """
@@ -182,6 +184,9 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                                 [_nan(x) for x in sc.get("sigma") or []])
         if grid:
             add("scan", grid)
+        for note in sc.get("notes") or []:
+            if str(note).startswith("weighted spectrum"):
+                add("significance", f"{note}: the quoted significances and limits carry it")
     best = results.get("best")
     n0, n0_err = (_num(best.get("N0")), _num(best.get("N0_error"))) if isinstance(
         best, Mapping) else (None, None)

@@ -65,7 +65,7 @@ from ..errors import FitError
 from .cls import _BANDS, _bisect, _floor_reach, _Problem, _qtilde, _unconditional
 from .limit_result import LOW_COUNT_BACKGROUND, LimitResult
 from .normalisation import _assumptions, check_normalisation, normalisation
-from .scan_inputs import _prepare_model
+from .scan_inputs import _prepare_model, weighted_note
 from .toy_limits import _ToyLimitTask, run_toy_limit
 from .toys import ScanModel, fit_background
 
@@ -298,6 +298,8 @@ def upper_limits(
         efficiency_uncertainty=efficiency_uncertainty, constraint=constraint)
     conv_eff = conv  # yields in weighted units (per-bin scaled Poisson inside the model)
     notes: list[str] = []
+    if spec.bin_scale is not None:
+        notes.append(weighted_note(spec.scale))
     if assumed:
         notes.append(f"efficiency not given: 1 assumed, so these are limits on sigma x B x "
                      f"efficiency [{unit}]; give efficiency= (x acceptance) for sigma x B")
