@@ -109,8 +109,16 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         n_toys = sum(1 for f in lim["flags"] if f.startswith("toys"))
         n_bad = sum(bool(x) for x in lim.get("asymptotic_doubtful") or [])
         n_floor = sum(bool(x) for x in lim.get("below_floor") or [])
+        # which set the toys are in: with [systematics] the headline limits are the ones
+        # with systematics, asymptotic unless systematics.toy_limits
+        with_s = part(part(syst, "limits"), "with_systematics")
+        s_toys = sum(m == "toys" for m in with_s.get("methods") or [])
+        toys_text = (f"{n_toys} from toys" if not with_s else
+                     f"{n_toys} from toys with and without systematics" if s_toys >= n_toys else
+                     f"{n_toys} plain limits from toys, those with systematics asymptotic"
+                     + (f" (toys at {s_toys})" if s_toys else ""))
         lines.append(_row("limits at low counts", f"of {len(lim['flags'])} masses: " + "; ".join(
-            s for s in (f"{n_toys} from toys" if n_toys else "",
+            s for s in (toys_text if n_toys else "",
                         f"{n_bad} asymptotic DOUBTFUL" if n_bad else "",
                         f"{n_floor} below the counting floor" if n_floor else "") if s)
             + " (see the report)"))

@@ -19,7 +19,9 @@ summary and a section at the top of the report.
   (a genuine signal lifts only the masses near it); limits with systematics whose
   profile in the mass scale took a lower well than the nearest one (a mass scale wider
   than the peak: the limit there responds to the data up to 3 of its standard deviations
-  away).
+  away); a quoted limit (with systematics when the run has them) computed with the
+  asymptotic formulae where the background under the signal is below
+  ``limits.low_count_background`` (its expected bands misplaced there).
 * ``significance``    -- with ``[systematics]``: the scan's q0 whose profile in the mass
   scale took a lower well than the nearest one (as for the limits above).
 * ``scan``            -- the mass grid steps more than one resolution width somewhere
@@ -195,6 +197,14 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
             f"{n0_err:.2g} ({best.get('n0_source') or 'toys'}) is uncertain by "
             f"{n0_err / n0:.0%}: the global p-value is uncertain alike; run more "
             "background-only toys (--toys)")
+    for what, fix, lim in _limit_sets(results.get("limits"), sy):
+        low = _asymptotic_at_low_counts(lim)
+        if low:
+            n, of, m_low, b_low, thr = low
+            add("limits", f"{what} asymptotic at {n} of {of} masses where the background under "
+                          f"the signal is below limits.low_count_background = {thr:g} events "
+                          f"(down to {b_low:.3g} events at {m_low:.2f} GeV): the formulae misplace "
+                          f"the expected bands at low counts; {fix}")
     band = _outside_band(results.get("limits"))
     if band is not None:
         n_out, n_all, below, above = band
@@ -204,6 +214,48 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                           f"{BAND_OUTSIDE_MAX_FRACTION:.0%}): the background model does not "
                           "follow the data, so the limits are doubtful")
     return out
+
+
+def _limit_sets(plain: Any, sy: Any) -> list[tuple[str, str, Mapping[str, Any]]]:
+    """The limit sets a reader quotes, each (its name in a warning, how to get toys, the
+    set): with [systematics] the limits with systematics (the headline), and the plain
+    ones (the report's table)."""
+    out: list[tuple[str, str, Mapping[str, Any]]] = []
+    w = ((sy or {}).get("limits") or {}).get("with_systematics") if isinstance(
+        sy, Mapping) else None
+    if isinstance(w, Mapping):
+        if isinstance(plain, Mapping) and list(plain.get("masses") or []) == list(
+                w.get("masses") or []):
+            # low counts as the run decides them (systematics.toy_limits takes toys where
+            # the plain limits do): the plain background under the signal, so the warning
+            # and the summary's count agree
+            w = {**w, **{k: plain.get(k) for k in ("background_under_signal",
+                                                   "low_count_background")}}
+        out.append(("the limits with systematics (the headline ones) are",
+                    "systematics.toy_limits = true computes them with toys", w))
+    if isinstance(plain, Mapping):
+        out.append(("the limits without systematics are" if out else "the limits are",
+                    'limits.method = "auto" computes them with toys there', plain))
+    return out
+
+
+def _asymptotic_at_low_counts(lim: Mapping[str, Any]
+                              ) -> tuple[int, int, float, float, float] | None:
+    """(how many, of how many, mass and b of the lowest) masses whose limit is asymptotic
+    with the background under the signal below the set's ``low_count_background``
+    (blinded masses count: their expected limits are quoted)."""
+    thr = _num(lim.get("low_count_background"))
+    methods = lim.get("methods") or []
+    if thr is None:
+        return None
+    low = [(b, m) for m, b, how in zip(lim.get("masses") or [],
+                                       lim.get("background_under_signal") or [], methods)
+           if how == "asymptotic" and _num(b) is not None and _num(m) is not None
+           and _num(b) < thr]
+    if not low:
+        return None
+    b, m = min(low)
+    return len(low), len(methods), float(m), float(b), thr
 
 
 def _outside_band(lim: Any) -> tuple[int, int, int, int] | None:
