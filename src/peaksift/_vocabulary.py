@@ -10,9 +10,11 @@ and the report and summary (output layer) both write.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import Any
 
 __all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "NORMALISATION_RANGES",
-           "UNREADABLE_FILES", "figure_wanted", "method_words", "model_text"]
+           "NOT_FITTED", "UNREADABLE_FILES", "figure_wanted", "method_words", "model_text",
+           "not_fitted"]
 
 #: How :func:`peaksift.upper_limits` computes its CLs limits (``limits.method``):
 #: ``"auto"``       asymptotic formulae, and toys at the masses where the formulae misplace
@@ -79,6 +81,17 @@ FITS: dict[str, tuple[str, str]] = {
     "free_fit": ("free fit", "fitted mass, width and yields"),
     "calibration": ("calibration fit", "the standard candle's mass and width"),
 }
+
+
+#: how a fit's problem starts when the fit was not made (fewer events than free
+#: parameters): its values are the start values, shown as "not fitted" by every output
+NOT_FITTED = "not fitted"
+
+
+def not_fitted(problems: Sequence[Any] | None) -> bool:
+    """Whether a fit's problems (``FitResult.problems``, results.json ``fit.problems``) say
+    it was not made."""
+    return any(str(p).startswith(NOT_FITTED) for p in problems or ())
 
 
 def model_text(fit: str, signal: str | Sequence[str], background: str, *,

@@ -34,6 +34,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     """:func:`_summary` from the results dictionary; every number goes through
     :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
     from .._format import fixed, format_pm, mass_text, number, p_value, significance
+    from .._vocabulary import not_fitted
     from ..report_sections import models_text
 
     def part(m: Any, key: str) -> Mapping[str, Any]:
@@ -61,6 +62,10 @@ def _summary_text(d: Mapping[str, Any]) -> str:
                               f"(p = {p_value(sb.get('gof_p_value'))}); "
                               f"{format_pm(by.get('value'), by.get('error'))} expected in the "
                               "blinded window"))
+    elif not_fitted(fit.get("problems")):   # start values are no result
+        lines += [_row(label, "not fitted") for label in (
+            "fitted mass", f"fitted width ({fit.get('width_parameter') or 'width'})",
+            "signal yield")]
     else:
         lines += [_row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
                   *_scaled_mass(part(part(d, "systematics"), "fitted_mass")),
