@@ -452,3 +452,19 @@ def test_module_command_flushes_its_output_and_keeps_its_exit_status(tmp_path):
                          env=env, timeout=120, check=False)
     assert bad.returncode == 2
     assert bad.stderr.startswith("peaksift: error:") and len(bad.stderr.splitlines()) == 1
+
+
+def test_calibration_line_quotes_the_tables_at_the_fits_precision():
+    """The tables' mass beside the fitted one at the fitted one's decimals (the error to two
+    significant digits, as every number of the summary) and the shift to two significant
+    digits with its significance: a 6-digit fit beside a 4-digit table mass suggested a
+    shift twice the real one.  Reference: the phi(1020) mass 1.019461 GeV of the particle
+    package's tables."""
+    from peaksift.cli._summary import _summary_text
+
+    d = {"calibration": {"particle": "phi(1020)", "table_mass": 1.019461,
+                         "fitted_mass": {"value": 1.019409, "error": 0.000068},
+                         "shift_relative_permille": -0.0498, "shift_sigma": -0.73}}
+    line = next(ln for ln in _summary_text(d).splitlines() if "calibration" in ln)
+    assert "1.019409 ± 0.000068 GeV vs tables 1.019461 GeV" in line
+    assert "(shift -0.050 per mille, -0.7 sigma)" in line

@@ -30,7 +30,10 @@ def test_an_unfitted_result_shows_no_start_values():
     assert "mass             = not fitted" in text and "peak: not fitted" in text
     assert f"mass {start_mass}" not in text and "FWHM" not in text
     assert "GoF: none (not fitted)" in text and "chi2/ndf" not in text
-    assert "not fitted" in r._repr_html_() and "FWHM" not in r._repr_html_()
+    html = r._repr_html_()
+    assert html.startswith("<div><p>Fit <b>INVALID</b>: not fitted: only 1 event")
+    assert "<td>not fitted</td>" in html and "peak: not fitted" in html and "FWHM" not in html
+    assert "(1 mass &lt;= 20000" in html
     d = r.to_dict()
     assert d["fitted"] is False and type(r).from_dict(d).fitted is False
     # a fixed parameter is a given number, not a start value: shown

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import base64
 import json
+import math
 from html.parser import HTMLParser
 
 import numpy as np
@@ -332,3 +333,10 @@ def test_report_has_the_background_fit_and_each_requirement_in_order():
     assert at == sorted(at)
     # the look-elsewhere numbers explained in plain words, beside the technical sentence
     assert "In plain words" in md and "somewhere in the scanned range" in md
+    # N0 is a count of crossings, not of independent places; the trials factor is
+    # p_global / p_local (Gross and Vitells, Eur. Phys. J. C 70 (2010) 525, eq. 1)
+    best = {**r["best"], "N0": 5.2, "u0": 0.5, "log10_p_global": math.log10(0.0019),
+            "log10_p_local": math.log10(4.8e-5), "p_global": 0.0019, "p_local": 4.8e-5}
+    md = render_markdown({**r, "best": best})
+    assert "independent places" not in md
+    assert f"{0.0019 / 4.8e-5:.2g} times the local one" in md.replace("\n", " ")

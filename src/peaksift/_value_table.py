@@ -7,8 +7,8 @@
   covers, measured on the figure's renderer: the fit figure and the legends use it to choose
   a corner (and, when neither is free, to raise the y axis).
 
-Drawn in the figure style of :mod:`peaksift._style` (its colours, text measure and point
-transform); nothing here imports pyplot.
+Drawn in the figure style of :mod:`peaksift._style` (its colours), with the text measure
+and point transform of :mod:`peaksift._annotations`; nothing here imports pyplot.
 """
 
 from __future__ import annotations
@@ -16,7 +16,8 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
-from ._style import COLORS, points_at, text_width
+from ._annotations import points_at, text_width
+from ._style import COLORS
 
 __all__ = ["touched", "value_table", "value_table_height"]
 

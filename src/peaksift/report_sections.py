@@ -343,10 +343,26 @@ def _lee_plain(r: Mapping[str, Any]) -> str:
         text += (f" The upcrossing method counts how often background-only scans cross a low "
                  f"level (u0 = {num_text(best.get('u0'), 3)} in q0, about "
                  f"{fixed(math.sqrt(max(float(best.get('u0') or 0), 0)), 1)} \u03c3): "
-                 f"N0 = {num_text(best['N0'], 3)} crossings per scan on average; that number, "
-                 f"scaled to the observed height of the excess, estimates how many "
-                 f"independent places the scan could have found one.")
+                 f"N0 = {num_text(best['N0'], 3)} crossings per scan on average; scaled to "
+                 f"the observed height of the excess (N0 exp(-(q0 - u0)/2), Gross and Vitells "
+                 f"2010), it is the expected number of up-crossings of that height (at small "
+                 f"values the chance that the scan crosses it), which added to the local "
+                 f"p-value gives the global one.")
+    trials = _trials_factor(best)
+    if trials is not None:
+        text += (f" The global p-value is {num_text(trials, 2)} times the local one: the "
+                 f"scan's effective number of independent tries.")
     return text
+
+
+def _trials_factor(best: Mapping[str, Any]) -> float | None:
+    """p_global / p_local (from the log10 values where the p-values underflow), or None."""
+    lg, ll = best.get("log10_p_global"), best.get("log10_p_local")
+    try:
+        f = 10.0 ** (float(lg) - float(ll))
+    except (TypeError, ValueError, OverflowError):
+        return None
+    return f if math.isfinite(f) and f >= 1.0 else None
 
 
 def section_result(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:

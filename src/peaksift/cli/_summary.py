@@ -3,6 +3,7 @@ prints): every number through :mod:`peaksift._format`, one ``WARNING`` line per 
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
@@ -104,9 +105,9 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         fm = part(cal, "fitted_mass")
         lines.append(_row(f"calibration {cal.get('particle')}",
                           f"{format_pm(fm.get('value'), fm.get('error'), 'GeV')} vs tables "
-                          f"{fixed(cal.get('table_mass'), 4)} GeV (shift "
-                          f"{fixed(cal.get('shift_relative_permille'), 1, signed=True)} "
-                          "per mille)"))
+                          f"{fixed(cal.get('table_mass'), _decimals(fm.get('error')))} GeV "
+                          f"(shift {_two_digits(cal.get('shift_relative_permille'))} per mille, "
+                          f"{fixed(cal.get('shift_sigma'), 1, signed=True)} sigma)"))
     if blinded:
         lines.append(_row("blinding", "ACTIVE (data in the blinded window hidden)"))
     lim = d.get("limits") or {}
@@ -145,6 +146,30 @@ def _weights_row(d: Mapping[str, Any], blinded: bool) -> list[str]:
         return []
     return [_row("sum of weights" + (" (sidebands)" if blinded else ""),
                  f"{number(sow)} (weighted: scaled-Poisson effective counts, see WARNING)")]
+
+
+def _decimals(error: Any) -> int:
+    """The decimals :func:`~peaksift._format.format_pm` gives a value of this error (two
+    significant digits of the error; 4 without one): the tables' mass beside the fitted
+    one at the same precision."""
+    try:
+        e = float(error)
+    except (TypeError, ValueError):
+        return 4
+    return max(0, 1 - math.floor(math.log10(e))) if math.isfinite(e) and e > 0 else 4
+
+
+def _two_digits(x: Any) -> str:
+    """A signed number to two significant digits, trailing zeros kept (-1.0, -0.050)."""
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return "n/a"
+    if not math.isfinite(v):
+        return "n/a"
+    if v == 0:
+        return "0.0"
+    return f"{v:+.{max(0, 1 - math.floor(math.log10(abs(v))))}f}"
 
 
 def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:

@@ -164,6 +164,7 @@ def fit(
     superseded = None  # NLL of the first valid minimum a later start went below
     first: list[np.ndarray] = []  # the first start (its widths start a Crystal Ball's core)
     n_starts: list[int] = []  # how many starts were tried before the restarts
+    valid_best: list = []  # the best minimum the restarts found valid (none to continue)
 
     def restarts():
         """Starts of another kind from an invalid best minimum (:mod:`.restarts`), made
@@ -171,7 +172,10 @@ def fit(
         take an invalid minimum further: their evaluations count in ``n_calls``, but they
         are not starts of ``starts_tried`` / ``starts_nll`` (the start finder's)."""
         n_starts.append(len(tried))
-        if best is None or best[1] is None or not is_invalid(best, floors, free_idx):
+        if best is None or best[1] is None:
+            return
+        if not is_invalid(best, floors, free_idx):
+            valid_best.append(best)
             return
         for s in restart_points(model, np.asarray(best[4], float), best[6],
                                 first[0] if first else None, base, is_fixed, free_idx,
@@ -234,7 +238,8 @@ def fit(
                 near = [full, np.asarray(x, float), float(f), cov, None]
     if n_starts:
         del tried[n_starts[0]:]
-    best, calls = continue_invalid(best, calls, lo_f, hi_f, free_names, floors, free_idx)
+    if not (valid_best and valid_best[0] is best):  # (a valid minimum is not continued)
+        best, calls = continue_invalid(best, calls, lo_f, hi_f, free_names, floors, free_idx)
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:
         free_cov = np.full((nfree, nfree), np.nan)

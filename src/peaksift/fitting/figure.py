@@ -47,8 +47,11 @@ def parameter_rows(result: FitResult, *, background: bool = False
     rows = []
     for n in names:
         sym, mass_unit = _SYMBOLS.get(n, (n.replace("_", " "), False))
-        if n in result.fixed:
+        if n in result.fixed and result.held(n) == "fixed":
             v, e = number(result.values[n]), "(fixed)"
+        elif n in result.fixed:  # tied: its value and the error carried from its source
+            v, e = pm_parts(result.values[n], result.errors[n])
+            e = f"\u00b1 {e} (tied)" if e else "(tied)"
         elif n in intervals and (text := format_interval(result.values[n], *intervals[n])) \
                 and " +" in text:
             v, _, e = text.partition(" ")
@@ -121,7 +124,7 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     (saved to ``path`` if given).
 
     ``fig``: draw on this (empty) Figure instead of a new one.  ``run``: a
-    :class:`peaksift._style.RunLabel` drawn above the axes; ``note``/``title``: the figure's
+    :class:`peaksift._annotations.RunLabel` drawn above the axes; ``note``/``title``: the figure's
     statement under it.  ``symbol``: mathtext of the mass (default ``m``), e.g.
     ``m_{\\mu\\mu}``.  ``marks``: ``(mass, label, colour, linestyle)`` vertical lines drawn
     on both panels and named in the legend (the calibration's fitted and tabulated masses).
@@ -137,7 +140,8 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     """
     from scipy.special import gammaincinv
 
-    from .._style import COLORS, draw_header, figure_style, new_figure
+    from .._annotations import draw_header
+    from .._style import COLORS, figure_style, new_figure
     from .._value_table import value_table
     from .._vocabulary import model_text
 

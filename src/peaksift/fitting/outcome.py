@@ -9,11 +9,13 @@ from __future__ import annotations
 
 import math
 import warnings
+from types import MappingProxyType
 from typing import Any
 
 import numpy as np
 from scipy import special
 
+from .._values import Measurement
 from ..errors import FitError
 from ..likelihood import Minimum, baker_cousins_chi2, new_minuit
 from ..likelihood.minimum import bound_tolerance, distance_to_bound
@@ -96,7 +98,8 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
             if posdef:
                 free_cov = free_cov @ cost.score_outer(xbest) @ free_cov
     if free_idx.size == npar:  # every parameter free (free_idx is sorted): no scatter
-        cov = np.array(free_cov, float)
+        # (the minimum's own array, which nothing changes: the result keeps a copy)
+        cov = np.asarray(free_cov, float)
     else:
         cov = np.zeros((npar, npar))
         cov[np.ix_(free_idx, free_idx)] = free_cov
@@ -104,15 +107,15 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         k = tie.slope(float(vals[i_s]))
         cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]
         cov[i_t, i_t] = k * k * cov[i_s, i_s]
-    diag = cov.diagonal()  # (np.diag's wrapper: ~2 us)
-    err = np.sqrt(np.maximum(diag, 0.0))  # np.clip(.., 0, None), without its wrapper
-    err[~np.isfinite(diag)] = np.nan
-    # as Python floats (the same values): arithmetic on numpy scalars costs ~10x more
-    xs, los, his, errs = xbest.tolist(), lower.tolist(), upper.tolist(), err.tolist()
+    # the errors sqrt(max(variance, 0)), NaN for a variance not finite, as Python floats
+    # (np.sqrt's numbers, ~4 numpy calls fewer): arithmetic on numpy scalars costs ~10x more
+    errs = [(math.sqrt(v) if v >= 0.0 else 0.0) if math.isfinite(v) else math.nan
+            for v in cov.diagonal().tolist()]
+    xs, los, his = xbest.tolist(), lower.tolist(), upper.tolist()
     vs, held = vals.tolist(), is_fixed.tolist()
     asked: list[str] = []  # the intervals' notes (made now, when they are asked for)
-    ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
-                       upper, problems, asked)
+    ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest,
+                       np.array(errs), lower, upper, problems, asked) if intervals else None
     sig0, sl0, iy0 = model.blocks[0]
     p0 = vs[sl0]
     i_m = sl0.start + sig0.parameter_names.index("mass")
@@ -167,6 +170,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
             "near_bound": any("of its bound" in n for n in notes),
             "posdef_covariance": bool(posdef),
         }
+        err = np.array(errs)
         with np.errstate(invalid="ignore", divide="ignore"):
             corr = cov / np.outer(err, err)
         corr[~np.isfinite(corr)] = 0.0
@@ -186,20 +190,25 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                 "flags": flags, "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
                 "constraints": cons, "notes": notes}
 
+    # the fields made now in the result's own form (fresh read-only mappings, the peak's
+    # numbers as Measurements: FitResult._in_parts' ``normal``), the form its __init__
+    # leaves, without copying each mapping twice more
+    m_err = errs[i_m]
+    w_val = vs[i_w] if i_w is not None else math.nan
+    w_err = errs[i_w] if i_w is not None else math.nan
     return FitResult._in_parts({
-        "parameters": tuple(names), "values": dict(zip(names, vs)),
-        "errors": dict(zip(names, errs)),
+        "parameters": tuple(names), "values": MappingProxyType(dict(zip(names, vs))),
+        "errors": MappingProxyType(dict(zip(names, errs))),
         "fixed": tuple(n for n, h in zip(names, held) if h),
-        "intervals": ivals, "nll": float(fbest), "valid": not problems,
-        "problems": problems,
+        "intervals": None if ivals is None else MappingProxyType(dict(ivals)),
+        "nll": float(fbest), "valid": not problems, "problems": problems,
         "binned": d.binned, "binned_reason": d.reason, "weighted": d.weighted,
         "weight_treatment": treatment, "window": d.window, "n_events": d.total,
-        "peak_mass": float(sig0.location(p0)), "peak_mass_error": errs[i_m],
-        "peak_width": vs[i_w] if i_w is not None else math.nan,
-        "peak_width_error": errs[i_w] if i_w is not None else math.nan,
+        "peak_mass": Measurement(float(sig0.location(p0)), m_err), "peak_mass_error": m_err,
+        "peak_width": Measurement(w_val, w_err), "peak_width_error": w_err,
         "width_parameter": wname, "gof_ndf": ndf, "model": model,
         "starts_tried": len(tried), "starts_nll": tried, "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
-        "cost": cost}, later)
+        "cost": cost}, later, normal=True)
 
 
 def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,

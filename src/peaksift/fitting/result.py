@@ -164,11 +164,14 @@ class FitResult(FrozenValue):
         super().__post_init__()
 
     @classmethod
-    def _in_parts(cls, now: dict[str, Any], later: Any) -> FitResult:
+    def _in_parts(cls, now: dict[str, Any], later: Any, normal: bool = False) -> FitResult:
         """The FitResult of the fields ``now`` and ``later()``'s (every other field), the
         latter computed at the first access of any of them (:meth:`FrozenValue._deferred`):
-        the same value as ``FitResult(**now, **later())``."""
-        return cls._deferred(_normalised(now), lambda: _normalised(later()))
+        the same value as ``FitResult(**now, **later())``.  ``normal``: ``now`` is in the
+        form the result keeps already (:func:`_normalised`'s, its mappings read-only and
+        the caller's no more: a fit's own fields), so it is only frozen."""
+        return cls._deferred(now if normal else _normalised(now),
+                             lambda: _normalised(later()))
 
     # ---------------------------------------------------------------- summary
     @property
@@ -355,6 +358,12 @@ class FitResult(FrozenValue):
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"not a fit result written by FitResult.to_dict: {exc!r}") from None
 
+    def held(self, name: str) -> str:
+        """How a parameter that is not free was held: ``"tied"`` when it was computed from
+        another (its error carried from that one's, so it has one), else ``"fixed"``."""
+        e = self.errors[name]
+        return "tied" if e is not None and math.isfinite(e) and e > 0 else "fixed"
+
     # ------------------------------------------------------------------ show
     def __repr__(self) -> str:
         head = (f"FitResult({'valid' if self.valid else 'INVALID'}; "
@@ -368,11 +377,11 @@ class FitResult(FrozenValue):
             lines.append("  notes: " + "; ".join(self.notes))
         w = max(len(n) for n in self.parameters)
         if not self.fitted:  # the start values are no result: not shown as one
-            lines += [f"  {n:<{w}} = {self.values[n]:g} (fixed)" if n in self.fixed else
+            lines += [f"  {n:<{w}} = {self.values[n]:g} ({self.held(n)})" if n in self.fixed else
                       f"  {n:<{w}} = not fitted" for n in self.parameters]
             return "\n".join([*lines, "  peak: not fitted", "  GoF: none (not fitted)"])
         for n in self.parameters:
-            tag = " (fixed)" if n in self.fixed else ""
+            tag = f" ({self.held(n)})" if n in self.fixed else ""
             if self.intervals and n in self.intervals:  # rounded as the summary's
                 ends = format_interval(self.values[n], *self.intervals[n]).partition(" ")[2]
                 tag += f"  interval {ends}" if ends else ""
@@ -404,16 +413,15 @@ class FitResult(FrozenValue):
             f"<tr><td>{html.escape(n)}</td><td>{parts[n][0]}</td><td>{parts[n][2]}</td>"
             f"<td>{'fixed' if n in self.fixed else ''}</td></tr>" for n in self.parameters)
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
+        peak = (f"peak mass {html.escape(format_value(self.peak_mass, self.peak_mass_error))} "
+                f"{self.unit}; FWHM {html.escape(format_value(self.fwhm, self.fwhm_error))} "
+                f"{self.unit}" if self.fitted else "peak: not fitted")
         return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
                 f"({html.escape(self.binned_reason)}); "
                 f"{html.escape(self._gof_text() if self.fitted else 'GoF: none')}</p>"
                 f"{notes}"
                 f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
-                f"{rows}</table><p>peak mass "
-                f"{html.escape(format_value(self.peak_mass, self.peak_mass_error))} "
-                f"{self.unit}; FWHM {html.escape(format_value(self.fwhm, self.fwhm_error))} "
-                f"{self.unit}</p></div>" if self.fitted else
-                f"{rows}</table><p>peak: not fitted</p></div>")
+                f"{rows}</table><p>{peak}</p></div>")
 
     def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
              run: Any = None, symbol: str | None = None, note: str = "",

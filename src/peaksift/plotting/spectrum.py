@@ -12,16 +12,9 @@ from typing import Any
 
 import numpy as np
 
+from .._annotations import draw_header, particle_tex, shade_blinded
 from .._format import fixed, format_pm, number, p_value
-from .._style import (
-    COLORS,
-    draw_header,
-    figure_style,
-    margins,
-    new_figure,
-    particle_tex,
-    shade_blinded,
-)
+from .._style import COLORS, figure_style, margins, new_figure
 from .labels import FigureLabels, save
 from .legend import place_legend
 

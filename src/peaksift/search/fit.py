@@ -70,7 +70,7 @@ def _fit_settings(cfg: Config, signal: Any, mass: float, *, hold_mass: bool = Fa
     The intervals asked for (``model.intervals``) are those of the peak mass, the signal's
     width parameter and the signal yield, each only while it floats.
     """
-    from ..likelihood import Constraint, Tie
+    from ..likelihood import Constraint, resolution_tie
 
     md = cfg.model
     fixed = dict(md.fix)
@@ -87,8 +87,7 @@ def _fit_settings(cfg: Config, signal: Any, mass: float, *, hold_mass: bool = Fa
             fixed["sigma"] = float(res.sigma(fixed.get("mass", mass)))
         elif md.sigma_from_resolution == "fixed":
             tie["follows"] = "the fitted mass"
-            tied = {"sigma": Tie("sigma", "mass", res.sigma, res.slope, res.curvature,
-                                 description=f"the resolution at the mass ({res.describe()})")}
+            tied = {"sigma": resolution_tie(res)}
         else:  # Gaussian around the resolution, of relative width resolution_uncertainty
             cons["sigma"] = Constraint.gaussian(s, float(md.resolution_uncertainty) * s)
     if hold_mass:

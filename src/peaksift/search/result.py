@@ -282,7 +282,7 @@ class SearchResult:
         from ..resonances import KnownMatch
         from ..stats.limit_result import LimitResult
         from ..stats.scan_result import ScanResult
-        from ..stats.signal_model import SignalModel
+        from ..stats.signal_model_result import SignalModel
 
         try:
             cfg = load_config(dict(d["config"]))
@@ -340,7 +340,7 @@ class SearchResult:
                              + f" (figures: {', '.join(names)})")
         labels = plotting.figure_labels(self.config)
         if which == "dedx":
-            fig = self._dedx_figure()
+            fig = self._dedx_figure(labels.run)
         elif which == "spectrum" and self.fit is None and self.histogram is None:
             fig = self.background_fit.plot(run=labels.run, symbol=labels.symbol, log=log)
         else:
@@ -359,7 +359,7 @@ class SearchResult:
             fig.savefig(path)
         return fig
 
-    def _dedx_figure(self) -> Any:
+    def _dedx_figure(self, run: Any = None) -> Any:
         """The identification figure from the record results.json keeps (None without)."""
         from .identification import DedxOutcome
 
@@ -367,7 +367,7 @@ class SearchResult:
         if not d or "counts" not in d:
             return None
         return DedxOutcome.from_dict(d).plot(hypotheses=tuple(self.config.pairing.hypotheses),
-                                             band=self.config.identification.band)
+                                             band=self.config.identification.band, run=run)
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""

@@ -103,7 +103,7 @@ def from_signal_model(signal_model: Any, signal: Any, resolution: Any, relative:
     """The signal shape, resolution and shape parameters (functions of the hypothesised
     mass) a :class:`~peaksift.stats.signal_model.SignalModel` provides; refuses a second
     source for any of them."""
-    from .signal_model import SignalModel
+    from .signal_model_result import SignalModel
 
     if not isinstance(signal_model, SignalModel):
         raise FitError(f"signal_model must be a peaksift SignalModel (from signal_model() or "

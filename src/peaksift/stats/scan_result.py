@@ -269,12 +269,13 @@ class ScanResult(FrozenValue):
         Blinded hypotheses are not drawn (the range is hatched).  The expected p-value is
         drawn dashed: ``expected = (z_expected, label)`` when given, else the scan's own
         ``z_expected``.  ``global_result`` (from :meth:`global_significance`) is noted above
-        the axes; ``run`` (a :class:`peaksift._style.RunLabel`) labels the run; ``symbol``
+        the axes; ``run`` (a :class:`peaksift._annotations.RunLabel`) labels the run; ``symbol``
         is the mass symbol (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on
         a new Figure (made without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
+        from .._annotations import draw_header, shade_blinded
         from .._format import fixed, mass_text
-        from .._style import COLORS, draw_header, figure_style, shade_blinded, target_axes
+        from .._style import COLORS, figure_style, target_axes
 
         with figure_style():
             fig, ax = target_axes(fig, ax)
