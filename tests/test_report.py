@@ -323,7 +323,8 @@ def test_report_has_every_limit_point_its_bands_and_the_assumptions(tmp_path):
 def test_report_has_the_background_fit_and_each_requirement_in_order():
     r = _full_results()
     md = render_markdown(r)
-    assert "χ² = 119 for 88 degrees of freedom (p = 0.0156)" in md
+    # one decimal, as the figures and the summary write a chi-square (_format.chi_square)
+    assert "χ² = 119.0 for 88 degrees of freedom (p = 0.0156)" in md
     assert "| power | 4.99 ± 0.21 |" in md and "| background yield | 980 ± 31 |" in md
     assert "| mass |" not in md.split("## Background-only fit")[1].split("##")[0]
     steps = ["| events read | 1,000 |", "| muon objects | 700 |", "| muon: pt > 20 | 500 |",

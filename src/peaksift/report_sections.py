@@ -24,8 +24,9 @@ from typing import Any
 
 from ._format import (
     as_finite,
+    chi_square,
+    fit_interval_text,
     fixed,
-    format_interval,
     format_pm,
     mass_text,
     number,
@@ -139,7 +140,7 @@ def fitted_text(fit: Mapping[str, Any], key: str, unit: str = "") -> str:
     iv = (fit.get("intervals") or {}).get(par)
     value, error = value_error(fit.get(key))
     if iv:
-        return format_interval(value, *iv, unit)
+        return fit_interval_text(fit, key, par, unit)
     return format_pm(value, error, unit)
 
 
@@ -154,9 +155,8 @@ def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None
     for i, (label, _) in enumerate(rows):
         if label in which and which[label][1] in iv:
             key, par, unit = which[label]
-            lo, hi = iv[par]
-            rows[i] = (label, format_interval(value_error(fit.get(key))[0], lo, hi, unit)
-                       + " (profile-likelihood interval)")
+            rows[i] = (label, fit_interval_text(fit, key, par, unit,
+                                                label="profile-likelihood interval"))
     text = fit_settings_text(fit.get("settings") or {})
     if text:
         at = next((i for i, (label, _) in enumerate(rows) if label == "Signal yield"),
@@ -292,7 +292,7 @@ def gof_text(gof: Mapping[str, Any]) -> str:
     if not gof or gof.get("chi2") is None:  # no fit (blinded) or no goodness of fit
         return "n/a"
     ndf = gof.get("ndf")
-    return (f"\u03c7\u00b2 = {num_text(gof.get('chi2'))} for "
+    return (f"\u03c7\u00b2 = {chi_square(gof.get('chi2'))} for "
             f"{'n/a' if ndf is None else ndf} degrees of freedom "
             f"(p = {p_value(gof.get('p_value'))})")
 

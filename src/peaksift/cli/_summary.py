@@ -34,7 +34,15 @@ def _summary(result: object) -> str:
 def _summary_text(d: Mapping[str, Any]) -> str:
     """:func:`_summary` from the results dictionary; every number goes through
     :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
-    from .._format import fixed, format_pm, mass_text, number, p_value, significance
+    from .._format import (
+        chi_square,
+        fixed,
+        format_pm,
+        mass_text,
+        number,
+        p_value,
+        significance,
+    )
     from .._vocabulary import not_fitted
     from ..report_sections import models_text
 
@@ -59,7 +67,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         if sb.get("kind") == "sideband_fit":
             by = sb.get("blinded_yield") or {}
             lines.append(_row("background (sidebands)",
-                              f"chi2/ndf = {fixed(sb.get('gof_chi2'), 1)}/{sb.get('gof_ndf')} "
+                              f"chi2/ndf = {chi_square(sb.get('gof_chi2'))}/{sb.get('gof_ndf')} "
                               f"(p = {p_value(sb.get('gof_p_value'))}); "
                               f"{format_pm(by.get('value'), by.get('error'))} expected in the "
                               "blinded window"))
@@ -222,7 +230,7 @@ def _fit_lines(lines: list[str], fit: dict) -> None:
     """Give the fitted mass, width and yield lines their profile-likelihood intervals
     (``152.24 +0.50 -0.55 GeV``) where the fit has them, and say what the fit held or
     constrained."""
-    from .._format import format_interval
+    from .._format import fit_interval_text
     from ..report import fit_settings_text
 
     iv = fit.get("intervals") or {}
@@ -233,8 +241,7 @@ def _fit_lines(lines: list[str], fit: dict) -> None:
     for i, line in enumerate(lines):
         for label, (key, par, unit) in rows.items():
             if line.startswith(_row(label, "")) and par in iv:
-                value = (fit.get(key) or {}).get("value")
-                lines[i] = _row(label, format_interval(value, *iv[par], unit))
+                lines[i] = _row(label, fit_interval_text(fit, key, par, unit))
     held = fit_settings_text(fit.get("settings") or {})
     if held:
         at = next((i for i, ln in enumerate(lines) if ln.startswith(_row("signal yield", ""))),

@@ -20,9 +20,11 @@ from typing import Any
 import numpy as np
 
 from .._vocabulary import NOT_FITTED
+from ..errors import FitError
 from ..likelihood import Minimum, NearMinimum, minimize, refine
 from ..likelihood.starts import fit_starts
 from .checks import note_lower_minimum
+from .elsewhere import given_masses, with_lower_minimum
 from .outcome import problems_at, result_of
 from .polish import continue_invalid, is_invalid
 from .restarts import restart_points
@@ -246,7 +248,18 @@ def fit(
     fr = result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
                  problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
                  tuple(tried), calls, floors, scale if d.binned else None)
-    return note_lower_minimum(fr, superseded)
+    fr = note_lower_minimum(fr, superseded)
+    started = given_masses(model, start, fixed, tied) if not too_few else []
+    if started:  # a fit of the given peak: is there a lower minimum elsewhere? (.elsewhere)
+        try:
+            ref = fit(data, signal, background, window, weights=weights, binned=binned,
+                      bins=bins, start={k: v for k, v in start.items() if k not in started}
+                      or None, fixed=fixed, limits=limits, constraints=constraints,
+                      retries=retries, tied=tied)
+        except FitError:  # (cannot happen where this fit was set up; never a crash)
+            return fr
+        fr = with_lower_minimum(fr, ref)
+    return fr
 
 
 #: a start whose path comes within this squared distance (in units of the best minimum's

@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, format_interval, number, p_value, pm_parts
+from .._format import chi_square, format_interval, number, p_value, pm_parts
 from .result import FitResult
 
 __all__ = ["fit_figure", "parameter_rows"]
@@ -52,7 +52,9 @@ def parameter_rows(result: FitResult, *, background: bool = False
         elif n in result.fixed:  # tied: its value and the error carried from its source
             v, e = pm_parts(result.values[n], result.errors[n])
             e = f"\u00b1 {e} (tied)" if e else "(tied)"
-        elif n in intervals and (text := format_interval(result.values[n], *intervals[n])) \
+        elif n in intervals and (text := format_interval(result.values[n], *intervals[n],
+                                                         bounds=result.bounds[n],
+                                                         short=True)) \
                 and " +" in text:
             v, _, e = text.partition(" ")
         else:
@@ -66,7 +68,7 @@ def gof_caption(result: FitResult) -> str:
     """``χ²/ndf = 103.8/85, p = 0.077`` (Baker-Cousins); what is missing said plainly."""
     if result.gof_ndf <= 0 or not np.isfinite(result.gof_chi2):
         return r"$\chi^2$ not defined (no degrees of freedom left)"
-    return (rf"$\chi^2$/ndf = {fixed(result.gof_chi2, 1)}/{result.gof_ndf},  "
+    return (rf"$\chi^2$/ndf = {chi_square(result.gof_chi2)}/{result.gof_ndf},  "
             f"p = {p_value(result.gof_p_value)}")
 
 

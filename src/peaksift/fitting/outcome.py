@@ -113,6 +113,13 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
             for v in cov.diagonal().tolist()]
     xs, los, his = xbest.tolist(), lower.tolist(), upper.tolist()
     vs, held = vals.tolist(), is_fixed.tolist()
+    for i, floor in floors.items():
+        # at the floor, or within one error of it: the width is not measured, the peak is a
+        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
+        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
+        # before the intervals: an invalid fit has none (their ends would read as errors)
+        if not held[i] and at_floor(vs[i], errs[i], floor):
+            problems = [*problems, _floor_problem(names[i], vs[i], errs[i], floor, d.unit)]
     asked: list[str] = []  # the intervals' notes (made now, when they are asked for)
     ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest,
                        np.array(errs), lower, upper, problems, asked) if intervals else None
@@ -145,12 +152,6 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                          "alike (61-64 % for mass and yield on ~5 sigma toys)")
         return tuple(notes)
 
-    for i, floor in floors.items():
-        # at the floor, or within one error of it: the width is not measured, the peak is a
-        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
-        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
-        if not held[i] and at_floor(vs[i], errs[i], floor):
-            problems = [*problems, _floor_problem(names[i], vs[i], errs[i], floor, d.unit)]
     ge, gn, gn2 = (a.copy() if a.flags.writeable else a for a in gof_binning(d))
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:
@@ -208,7 +209,11 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         "peak_width": Measurement(w_val, w_err), "peak_width_error": w_err,
         "width_parameter": wname, "gof_ndf": ndf, "model": model,
         "starts_tried": len(tried), "starts_nll": tried, "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
-        "cost": cost}, later, normal=True)
+        "cost": cost, "lower_minimum": None,
+        # every signal yield held at 0: the background-only fit (named so by every output)
+        "kind": "background_only" if all(held[iy] and vs[iy] == 0.0
+                                         for _, _, iy in model.blocks[:-1]) else "free_fit"},
+        later, normal=True)
 
 
 def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
@@ -250,10 +255,22 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
                     m.minos(k)
                     m.strategy = 1
                     me = m.merrors[k]
-                out[k] = (float(me.lower), float(me.upper))
+                # a side MINOS did not validate is no measurement: NaN (null in JSON,
+                # "?" in every text), its reason in the notes below
+                out[k] = (float(me.lower) if me.lower_valid else math.nan,
+                          float(me.upper) if me.upper_valid else math.nan)
+                i = names.index(k)
+                for side, at, b in (("lower", me.at_lower_limit, lower[i]),
+                                    ("upper", me.at_upper_limit, upper[i])):
+                    if at:  # MINOS stopped at the bound: the distance to it is no error
+                        notes.append(f"profile-likelihood interval of {k}: its {side} end is "
+                                     f"the bound {b:g} (-ln L has not risen by 1/2 there)")
                 if not me.is_valid:
+                    sides = [w for w, ok in (("lower", me.lower_valid),
+                                             ("upper", me.upper_valid)) if not ok] or ["both"]
                     notes.append(f"profile-likelihood interval of {k} is not valid "
-                                 f"({'lower' if not me.lower_valid else 'upper'} side)")
+                                 f"({' and '.join(sides)} side{'s' if len(sides) > 1 else ''}; "
+                                 "left out)")
             except _NUMERIC + (RuntimeError,):
                 notes.append(f"profile-likelihood interval of {k} could not be made")
     return out

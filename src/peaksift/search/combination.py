@@ -211,9 +211,8 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             notes += ((f"the combined scan and its toys (global significance) profile the "
                        f"[systematics] background envelope of channel(s) "
                        f"{', '.join(enveloped)} as a discrete choice per channel (its "
-                       "spurious-signal term left out), and so do the asymptotic combined "
-                       "limits; the combination's toy limits (if any) take each channel's "
-                       "function at mu = 0"),)
+                       "spurious-signal term left out), and so do the combined limits "
+                       "(asymptotic and toys)"),)
         left = [n for n in with_env if n not in enveloped]
         if left and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "

@@ -14,7 +14,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from .._format import fixed, format_pm, mass_text, number, p_value
+from .._format import as_finite, fixed, format_pm, mass_text, number, p_value
 from .._vocabulary import FITS
 from ..report import CAUTION, blocks_html, blocks_markdown, run_line
 from ..report_sections import (
@@ -170,11 +170,12 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
              "generate every channel)")],
             ["fitted sigma x B at the best mass", _cross_section_text(c)]]
     for name, v in (d.get("nuisances_at_best") or {}).items():
+        label = nuisance_label(name, v, list(d["channels"]))
         if "shift_at_best" in v:
-            rows.append([f"shape factor {name} (k - 1 at the best mass)",
+            rows.append([f"shape factor {label} (k - 1 at the best mass)",
                          fixed(v.get("shift_at_best"), 3, signed=True)])
         else:
-            rows.append([f"nuisance {name} (pull at the best mass)",
+            rows.append([f"nuisance {label} (pull at the best mass)",
                          fixed(v.get("pull_at_best"), 2, signed=True)])
     env = read_channel_entries(c.get("envelope")) or {}  # files of earlier layouts too
     if env and best.get("mass") is not None and c.get("masses"):
@@ -249,6 +250,29 @@ def render_combination_html(d: Mapping[str, Any], figures: Mapping[str, Any] | N
     fig = dict(figures or {})
     return blocks_html(f"Combined search: {', '.join(d['channels'])}",
                        combination_blocks(d, fig), fig, combination_run_line(d))
+
+
+#: a combination's nuisances in words, by the kind their names start with (the names are
+#: ``<kind>_<channel>``, a luminosity's ``luminosity_<group>``: ``stats.channel_norms``,
+#: ``stats.channels``)
+_NUISANCE_WORDS = {"efficiency": "efficiency x acceptance", "luminosity": "luminosity",
+                   "mass_scale": "mass scale", "mass_resolution": "mass resolution"}
+
+
+def nuisance_label(name: str, entry: Mapping[str, Any], channels: list[str]) -> str:
+    """A combination's nuisance as the report names it: ``efficiency x acceptance of
+    dimuon``, ``luminosity shared by dimuon and dielectron`` (the channels its log-normal
+    scale reaches, ``entry["log_scale"]``), ``mass scale of dimuon``; a name of another
+    form as it is."""
+    for kind, words in _NUISANCE_WORDS.items():
+        if name.startswith(kind + "_"):
+            rest = name[len(kind) + 1:]
+            scale = entry.get("log_scale") if isinstance(entry, Mapping) else None
+            members = [c for c, a in zip(channels, scale or ()) if as_finite(a)]
+            if len(members) > 1:
+                return f"{words} shared by {', '.join(members[:-1])} and {members[-1]}"
+            return f"{words} of {rest}"
+    return name
 
 
 def combination_summary_text(d: Mapping[str, Any]) -> str:

@@ -206,9 +206,10 @@ class SearchResult:
         from .._format import mass_text, significance
 
         b = dict(self.best or {})
+        with_syst = " with systematics" if self.systematics else ""  # best is then theirs
         rows = [("best mass", f"{mass_text(b.get('mass'))} GeV"),
-                ("local", significance(b, "local")),
-                ("global", significance(b, "global"))]
+                ("local", significance(b, "local") + with_syst),
+                ("global", significance(b, "global") + with_syst)]
         if self.fit is not None:  # as the summary quotes them: intervals where made
             fit, free = _fit_dict(self.fit), FITS["free_fit"][0]
             # an invalid fit's numbers flagged beside them, as the report's tables do (the
@@ -223,6 +224,10 @@ class SearchResult:
             rows.append(("fit", "not made: blinded as configured"))
         if self.limits is not None:
             rows.append(("limits", f"{self.limits.masses.size} masses, {self.limits.unit}"))
+        # the doubts the summary and the report print (the invalid free fit has its row)
+        warned = [w for w in self.warnings if w.get("topic") != "fit"]
+        if warned:
+            rows.append(("WARNINGS", " | ".join(str(w.get("message")) for w in warned)))
         if self.outdir is not None:
             rows.append(("outputs", str(self.outdir)))
         return rows

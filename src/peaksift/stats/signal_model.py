@@ -43,6 +43,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from .._format import chi_square
 from ..errors import FitError
 from .signal_model_result import SignalModel, _poly_eval, _quantity
 
@@ -259,9 +260,9 @@ def signal_model(samples: Sequence[SignalSample], shape: Any = "crystalball", *,
     notes = []
     for k, p in polys.items():
         if p["ndf"] > 0 and stats.chi2.sf(p["chi2"], p["ndf"]) < 0.01:
-            notes.append(f"{k}: the order-{p['order']} polynomial describes the samples poorly "
-                         f"(chi2/ndf = {p['chi2']:.1f}/{p['ndf']}); its band is widened by "
-                         "sqrt(chi2/ndf)")
+            notes.append(f"{k}: the order-{p['order']} polynomial describes the samples "
+                         f"poorly (chi2/ndf = {chi_square(p['chi2'])}/{p['ndf']}); its band is "
+                         "widened by sqrt(chi2/ndf)")
     for f, m in zip(fits, masses):
         r = f["result"]
         if not r.valid:
