@@ -28,7 +28,7 @@ from .poisson import (
     use_compiled,
 )
 
-__all__ = ["coarse_gains", "peak_candidates"]
+__all__ = ["coarse_gains", "coarse_rows_kept", "peak_candidates"]
 
 
 def coarse_gains(shape, edges, n, scale, grid, p, window, bexp, dips):
@@ -118,7 +118,7 @@ def _local_maxima(x: np.ndarray, nll: np.ndarray, nll0: float, most: int, sign: 
 def _compiled_scan(shape, edges, n, scale, grid, p, window, bexp, dips):
     """``(peaks, dips)`` of the coarse scan of a Gaussian, as :func:`_local_maxima` lists
     them, from the compiled rows (:func:`.start_kernels.coarse_rows`, kept per binning by
-    :func:`_scan_rows`) and one compiled call for the rest
+    :func:`coarse_rows_kept`) and one compiled call for the rest
     (:func:`.start_kernels.coarse_gains`): the same steps as :func:`_compiled_fractions`,
     :func:`_coarse_profile` and :func:`_local_maxima` (the same numbers but the sums' order,
     in the gains' last digits) without their ~20 numpy calls; None where those must answer
@@ -136,7 +136,7 @@ def _compiled_scan(shape, edges, n, scale, grid, p, window, bexp, dips):
         sc = np.ascontiguousarray(np.broadcast_to(
             np.asarray(1.0 if scale is None else scale, float), (nb,)))
     kern = compiled_module(START_KERNELS_MODULE)
-    frac = _scan_rows(kern, np.ascontiguousarray(edges, float), float(window[0]),
+    frac = coarse_rows_kept(kern, np.ascontiguousarray(edges, float), float(window[0]),
                       float(window[1]), np.ascontiguousarray(grid, float), sigma)
     if frac is None:
         return None
@@ -156,18 +156,32 @@ _ROWS = Kept(8)
 _ROWS_CELLS = 50_000
 
 
-def _scan_rows(kern, edges, lo, hi, grid, sigma):
+def coarse_rows_kept(kern, edges, lo, hi, grid, sigma):
     """:func:`.start_kernels.coarse_rows` of these inputs, kept per key (the same
-    numbers); None where a row cannot be made."""
+    numbers); None where a row cannot be made.  The last rows of read-only edges and grid
+    arrays are found again by identity first (a toy's start bins and kept grid: no key
+    of their bytes to make)."""
+    seen = _LAST_ROWS[0]
+    if (seen is not None and seen[0] is edges and seen[1] is grid
+            and seen[2] == (lo, hi, sigma)):
+        return seen[3]
     key = b"".join((edges.tobytes(), grid.tobytes(),
                     np.array([lo, hi, sigma, edges.size, grid.size], float).tobytes()))
     frac = _ROWS.get(key)
-    if frac is not None:
-        return frac
-    frac = np.empty((grid.size, edges.size - 1))
-    if not kern.coarse_rows(edges, lo, hi, grid, sigma, frac):
-        return None
-    return _ROWS.put(key, frac) if frac.size <= _ROWS_CELLS else frac
+    if frac is None:
+        frac = np.empty((grid.size, edges.size - 1))
+        if not kern.coarse_rows(edges, lo, hi, grid, sigma, frac):
+            return None
+        if frac.size > _ROWS_CELLS:
+            return frac
+        _ROWS.put(key, frac)
+    if not (edges.flags.writeable or grid.flags.writeable):
+        _LAST_ROWS[0] = (edges, grid, (lo, hi, sigma), frac)
+    return frac
+
+
+#: [(read-only edges, read-only grid, (window, width), rows)] of the last kept rows
+_LAST_ROWS: list = [None]
 
 
 def _compiled_fractions(shape, edges, grid, p, window) -> np.ndarray | None:

@@ -14,7 +14,8 @@ import numpy as np
 from .._jit import compiled_module
 from .poisson import KERNELS_MODULE, START_KERNELS_MODULE, use_compiled
 
-__all__ = ["NARROW_MARGIN", "NARROW_SPREAD", "NARROW_WIDTHS", "narrow_candidates"]
+__all__ = ["NARROW_MARGIN", "NARROW_SPREAD", "NARROW_WIDTHS", "STENCIL", "narrow_candidates",
+           "narrow_from_rows"]
 
 
 #: the narrow peaks a binned fit also starts from: these widths in units of the local bin
@@ -23,7 +24,7 @@ __all__ = ["NARROW_MARGIN", "NARROW_SPREAD", "NARROW_WIDTHS", "narrow_candidates
 #: centred on every bin and on every edge between two bins
 NARROW_WIDTHS = (0.3, 0.6, 1.2)
 #: bins on each side of a narrow peak's bin that its fractions are computed on
-_STENCIL = 3
+STENCIL = 3
 #: narrow candidates of one sign are minimised while their gain (background held) trails
 #: the best one's by at most this in -2 ln L: the free fit's refit of the background adds a
 #: few units, most where the bins hold few events (an empty bin in a steep tail that gained
@@ -45,7 +46,7 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
     background (those within :data:`NARROW_SPREAD` of the best of their sign): a Gaussian of
     :data:`NARROW_WIDTHS` bins at every bin centre and bin edge, its yield profiled on the
     background expectation ``background`` held fixed (a few Newton steps on the bins within
-    :data:`_STENCIL` of it).  Returns ``[(mass, width, yield, gain in -2 ln L)]``, the larger
+    :data:`STENCIL` of it).  Returns ``[(mass, width, yield, gain in -2 ln L)]``, the larger
     gain first; only gains within :data:`NARROW_MARGIN` of ``q_best``, and a position
     whose nearby bins' Poisson deviances (they bound its gain) fall short of that is not
     evaluated; nor is one inside an ``exclude`` interval (``(lo, hi)`` masses)."""
@@ -60,7 +61,7 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
         sc = np.broadcast_to(np.asarray(scale, float), (nb,))
     nn = np.asarray(n, float)
     bb = np.maximum(np.asarray(background, float), 1e-300)
-    k = _STENCIL
+    k = STENCIL
     if use_compiled():  # the same bound in one compiled pass (~12 numpy calls otherwise)
         rows = np.empty(nb, np.int64)
         rows = rows[:compiled_module(START_KERNELS_MODULE).narrow_rows(
@@ -79,6 +80,16 @@ def narrow_candidates(edges: np.ndarray, n: np.ndarray, scale: np.ndarray | None
         for lo, hi in exclude:
             keep &= (e[1:] <= lo) | (e[:-1] >= hi)
         rows = np.flatnonzero(keep)
+    return narrow_from_rows(e, nn, bb, sc, rows, q_best, most)
+
+
+def narrow_from_rows(e: np.ndarray, nn: np.ndarray, bb: np.ndarray, sc: np.ndarray,
+                     rows: np.ndarray, q_best: float = 0.0,
+                     most: tuple[int, int] = (1, 3)) -> list[tuple[float, float, float, float]]:
+    """:func:`narrow_candidates` at the bins ``rows`` its bound keeps, from its float
+    edges ``e``, counts ``nn``, background ``bb`` (floored at 1e-300) and factors ``sc``
+    (what :func:`.start_fused.first_start` gives too)."""
+    k = STENCIL
     if rows.size == 0:  # (on a clear peak, usually: nothing near the best gain)
         return []
     from scipy.special import ndtr

@@ -26,11 +26,15 @@ from .minimize import POSDEF_TOL, minimize
 from .model import Model
 from .poisson import DRIVER_MODULE, KERNELS_MODULE, MU_FLOOR, START_KERNELS_MODULE, use_compiled
 
-__all__ = ["background_counts", "background_start", "background_start_counts"]
+__all__ = ["FIT_SETTINGS", "background_counts", "background_start", "background_start_counts",
+           "background_static", "edge_row"]
 
 #: the minimiser's settings of a background start (a start needs no tighter minimum)
 _EDM_GOAL = 1e-2
 _MAX_ITER = 60
+#: (iterations, EDM goal, expectation floor, positive-definiteness tolerance) of the
+#: compiled background fit, as :meth:`_BackgroundFit.minimum` passes them
+FIT_SETTINGS = np.array([_MAX_ITER, _EDM_GOAL, MU_FLOOR, POSDEF_TOL])
 
 
 def background_start(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray,
@@ -192,6 +196,43 @@ class _BackgroundFit:
         except (ArithmeticError, ValueError):
             return None, None
         return (x_out if ok else None), (counts if made else None)
+
+
+def background_static(model: Model, edges: np.ndarray, free: np.ndarray) -> tuple | None:
+    """The fixed arrays of the compiled background-only fit of ``model`` on ``edges`` with
+    the ``free`` parameters (:func:`.start_kernels.background_fit`'s ``static``, kept as
+    :class:`_BackgroundFit` keeps them); None where there is none."""
+    if not use_compiled():
+        return None
+    fast = _BackgroundFit.make(model, edges, _NO_MASK, _NO_MASK, free)
+    return None if fast is None else fast.static
+
+
+def edge_row(model: Model, edges: np.ndarray) -> tuple | None:
+    """The background's compiled edge kernel on ``edges`` as the compiled start steps
+    take it, ``(code, data row, two constants, first parameter, rows, edges)`` (what
+    :func:`background_counts` calls, in :func:`.driver._component`'s terms); None where
+    it has none.  Kept for the last read-only edges array of a model."""
+    seen = _EDGE_ROW[0]
+    if seen is not None and seen[0] is model and seen[1] is edges:
+        return seen[2]
+    if not use_compiled():
+        return None
+    bshape, bsl, _ = model.blocks[-1]
+    kern = compiled_module(KERNELS_MODULE).edge_kernel(bshape, edges, model.window)
+    code = None if kern is None else compiled_module(DRIVER_MODULE)._CODES.get(kern.func)
+    row = None
+    if code is not None:
+        c = [float(a) for a in kern.data[1:]] + [0.0, 0.0]
+        row = (code, np.asarray(kern.data[0], float), c[0], c[1], bsl.start, kern.rows,
+               edges.size)
+    if isinstance(edges, np.ndarray) and not edges.flags.writeable:
+        _EDGE_ROW[0] = (model, edges, row)
+    return row
+
+
+#: [(model, read-only edges, :func:`edge_row`)] of the last call (holds both)
+_EDGE_ROW: list = [None]
 
 
 #: the static arrays of :class:`_BackgroundFit` by what they are made of (see ``make``),

@@ -13,7 +13,8 @@ fit that never starts there reports a higher one.  A candidate far below the bes
 :func:`worth_trying`) is not minimised: in practice it is never the lowest minimum, and
 minimising it cost most of a fit's time on strong peaks.  The coarse scan lives in
 :mod:`.coarse_scan`, the background fits in :mod:`.start_background`, the start widths in
-:mod:`.start_widths`; their compiled steps in :mod:`.start_kernels`.
+:mod:`.start_widths`; their compiled steps in :mod:`.start_kernels`; the common case's
+first look and first start in two compiled calls in :mod:`.first_look`.
 """
 
 from __future__ import annotations
@@ -24,12 +25,12 @@ from collections.abc import Callable, Iterator
 import numpy as np
 
 from ..errors import PeaksiftError
-from ..shapes import Gaussian
 from .coarse_scan import coarse_gains, peak_candidates
+from .first_look import fused_starts
 from .model import Model
 from .narrow import NARROW_MARGIN, narrow_candidates
 from .start_background import background_counts, background_start, background_start_counts
-from .start_widths import background_rows, lowest_width, other_widths, scan_width
+from .start_widths import WidthProfile, background_rows, lowest_width, scan_width
 
 __all__ = [
     "CANDIDATE_MARGIN",
@@ -71,7 +72,8 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     called, so the other widths cost nothing once a valid minimum is found.
     """
     with np.errstate(all="ignore"):
-        first = _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine)
+        first = _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine,
+                            total)
     if first is None:  # no free signal: the background-only start (and the given one)
         def background_only(near: np.ndarray | None = None) -> np.ndarray:
             with np.errstate(all="ignore"):
@@ -83,7 +85,7 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
         if retries > 0:
             yield False, lambda near=None: np.where(is_fixed, base, np.clip(base, lower, upper))
         return
-    vb, c, masses, i_m, i_s, bkg_given, others = first
+    vb, c, masses, i_m, i_s, bkg_given, others, ready = first
     names = model.parameter_names
     plain: dict = {}
     candidates = [(mm, 1.0, True, True, plain) for mm in masses]
@@ -110,12 +112,14 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
     sl0 = model.blocks[0][1]
     other_shape = [i for i in range(sl0.start, sl0.stop) if i != i_m and i not in i_s
                    and names[i] not in given]
-    profile = _WidthProfile(model, fine, i_m, free_widths, is_fixed, lower, upper, retries)
+    profile = WidthProfile(model, fine, i_m, free_widths, is_fixed, lower, upper, retries)
     mass_given = names[i_m] in given
-    for mm, factor, essential, sideband, extra, rank in candidates:
+    for k, (mm, factor, essential, sideband, extra, rank) in enumerate(candidates):
         def make(near: np.ndarray | None = None, mm: float = mm, factor: float = factor,
-                 sideband: bool = sideband, extra: dict = extra,
-                 rank: int = rank) -> np.ndarray | None:
+                 sideband: bool = sideband, extra: dict = extra, rank: int = rank,
+                 ready: np.ndarray | None = ready if k == 0 else None) -> np.ndarray | None:
+            if ready is not None:  # the first start, made by the first look's compiled call
+                return ready.copy()
             if near is not None and factor != 1.0 and free_widths:
                 # another width at the best minimum so far: that minimum with its widths
                 # scaled (background and yields already fitted), not a fresh sideband fit
@@ -147,55 +151,6 @@ def fit_starts(model: Model, edges: np.ndarray, n: np.ndarray, scale: np.ndarray
                                   bkg_given or not sideband, **extra)
 
         yield essential, make
-
-
-class _WidthProfile:
-    """``profile(near)``: :func:`.start_widths.other_widths` at the minimum ``near`` (a full
-    vector) on the data's own bins, computed once per minimum; None where it does not
-    apply (an unbinned fit, several signals, a width other than one Gaussian sigma, a
-    yield held), and the other widths are then minimised from as they are."""
-
-    def __init__(self, model, fine, i_m, free_widths, is_fixed, lower, upper, most):
-        blocks = model.blocks
-        shape, sl, iy = blocks[0]
-        ok = (fine is not None and len(blocks) == 2 and type(shape) is Gaussian
-              and len(free_widths) == 1
-              and free_widths[0] == sl.start + shape.parameter_names.index("sigma")
-              and not is_fixed[i_m] and not is_fixed[iy] and not is_fixed[blocks[-1][2]])
-        self._args = (model, fine, i_m, free_widths[0], lower, upper, most, is_fixed) if ok \
-            else None
-        self._seen: dict = {}
-        self._taken: dict = {}
-
-    def take(self, near: np.ndarray):
-        """The next of the profile's minima at ``near`` not yet started from (``()`` when
-        none is left; None where the profile does not apply).  Counted per minimum: when a
-        start replaces the best minimum, the next start takes the new profile's lowest,
-        not its second (which skipped a minimum 0.07 lower in a demo fit)."""
-        found = self(near)
-        if found is None:
-            return None
-        key = np.asarray(near, float).tobytes()
-        k = self._taken.get(key, 0)
-        self._taken[key] = k + 1
-        return found[k] if k < len(found) else ()
-
-    def __call__(self, near: np.ndarray):
-        if self._args is None:
-            return None
-        key = np.asarray(near, float).tobytes()
-        if key not in self._seen:
-            model, (fe, fn, fsc), i_m, i_w, lower, upper, most, is_fixed = self._args
-            shape, _, iy = model.blocks[0]
-            try:
-                with np.errstate(all="ignore"):
-                    self._seen[key] = other_widths(
-                        shape, fe, fn, fsc, background_rows(model, fe, near, is_fixed),
-                        float(near[i_m]), float(near[i_w]), float(near[iy]), lower[i_w],
-                        upper[i_w], lower[i_m], upper[i_m], model.window, most)
-            except _NUMERIC:
-                self._seen[key] = None
-        return self._seen[key]
 
 
 def _median_bin(edges: np.ndarray) -> float:
@@ -241,9 +196,11 @@ def _background_or_base_counts(model, edges, n, scale, base, is_fixed, given, lo
     return vb, (background_counts(model, edges, vb) if counts else None)
 
 
-def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine):
-    """Background-only start, the candidate peak masses and the further candidates (dips,
-    spikes) as ``fit_starts`` lists them (None without a free signal)."""
+def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fine, total):
+    """Background-only start, the candidate peak masses, the further candidates (dips,
+    spikes) as ``fit_starts`` lists them, and the first candidate's start where the first
+    look's compiled calls made it (else None; :mod:`.first_look`); None without a free
+    signal."""
     names = model.parameter_names
     blocks = model.blocks
     yields = [iy for _, _, iy in blocks]
@@ -251,42 +208,80 @@ def _first_look(model, edges, n, scale, base, is_fixed, given, lower, upper, fin
         return None
     bsl = blocks[-1][1]
     bkg_given = all(k in given for k in names[bsl])
-    vb, bexp = _background_or_base_counts(model, edges, n, scale, base, is_fixed, given,
-                                          lower, upper)
-    c = 0.5 * (edges[1:] + edges[:-1])
     shape, sl, iy = blocks[0]
     i_m = sl.start + shape.parameter_names.index("mass")
     i_s = [sl.start + shape.parameter_names.index(k) for k in shape.width_parameters()]
     width = max(float(base[i_s[-1]]) if i_s else (edges[-1] - edges[0]) / 40,
                 _median_bin(edges))
+    fused = fused_starts(model, edges, n, scale, is_fixed, given, fine)
+    got = None if fused is None else fused.first_look(
+        base, lower, upper, _grid(edges, lower[i_m], upper[i_m], width)[2],
+        bool(lower[iy] < 0))
+    if got is None:
+        vb, bexp = _background_or_base_counts(model, edges, n, scale, base, is_fixed, given,
+                                              lower, upper)
+        gains = None
+    else:
+        vb, bexp, gains = got
+    c = _centres(edges)
     if names[i_m] in given:
-        return vb, c, [float(base[i_m])], i_m, i_s, bkg_given, []
+        return vb, c, [float(base[i_m])], i_m, i_s, bkg_given, [], None
     # a negative yield only where its bounds allow one and the caller did not set it
     negative = bool(lower[iy] < 0) and names[iy] not in given
     masses, dips, q_top = _scan_masses(model, edges, n, scale, base, bexp, i_m, lower, upper,
-                                       width, dips=negative)
+                                       width, dips=negative, gains=gains)
     others = [(mm, 1.0, True, True, {"sign": -1.0}) for mm in dips]
+    ready = None
     if fine is not None and any(not is_fixed[i] for i in i_s):
+        found = None
+        if got is not None:
+            found, ready = fused.first_start(base, vb, lower, upper, c, masses[0], total,
+                                             q_top, _near(masses, width, q_top))
         others += _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative, masses,
-                                width)
-    return vb, c, masses, i_m, i_s, bkg_given, others
+                                width, found)
+    return vb, c, masses, i_m, i_s, bkg_given, others, ready
 
 
-def _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative, masses, width):
+def _centres(edges: np.ndarray) -> np.ndarray:
+    """The bins' centres, kept for the last read-only edges array (as :func:`_median_bin`)."""
+    seen = _CENTRES[0]
+    if seen is not None and seen[0] is edges:
+        return seen[1]
+    c = 0.5 * (edges[1:] + edges[:-1])
+    if isinstance(edges, np.ndarray) and not edges.flags.writeable:
+        c.flags.writeable = False
+        _CENTRES[0] = (edges, c)
+    return c
+
+
+#: [(read-only edges, their centres)] of the last call (holds the array)
+_CENTRES: list = [None]
+
+
+def _near(masses, width, q_top):
+    """The intervals the narrow candidates leave out: within 3 start widths of the coarse
+    scan's peaks beside a clear peak (see :func:`_spike_starts`)."""
+    return tuple((mm - 3 * width, mm + 3 * width) for mm in masses) if (
+        q_top > CANDIDATE_MARGIN) else ()
+
+
+def _spike_starts(model, fine, vb, q_top, lower, upper, i_m, negative, masses, width,
+                  found=None):
     """Starts of a peak about as narrow as a bin on the data's own bins
     (:func:`narrow_candidates`, against the best candidate of the coarse scan).  Beside a
     clear peak (a coarse gain above ``CANDIDATE_MARGIN``) the bins within 3 start widths of
     the coarse scan's peaks are left out: a narrow copy of a peak cannot beat it, and the
     other start widths cover a narrower solution there (on a power law of 1,350 bins they
-    were most of the narrow scan's cost, 0.75 of ~7 ms)."""
+    were most of the narrow scan's cost, 0.75 of ~7 ms).  ``found``: the narrow candidates
+    where the first look's compiled call found them."""
     fe, fn, fsc = fine
-    near = tuple((mm - 3 * width, mm + 3 * width) for mm in masses) if (
-        q_top > CANDIDATE_MARGIN) else ()
-    try:
-        b = background_counts(model, fe, vb)
-        found = narrow_candidates(fe, fn, fsc, b, q_top, exclude=near)
-    except _NUMERIC:
-        return []
+    if found is None:
+        try:
+            b = background_counts(model, fe, vb)
+            found = narrow_candidates(fe, fn, fsc, b, q_top,
+                                      exclude=_near(masses, width, q_top))
+        except _NUMERIC:
+            return []
     return [(mass, 1.0, True, False,
              {"sign": math.copysign(1.0, amount), "narrow": width, "amount": amount})
             for mass, width, amount, _ in found
@@ -306,22 +301,45 @@ def worth_trying(q: float, q_best: float) -> bool:
     return q_best - q <= max(CANDIDATE_MARGIN, 0.5 * q_best)
 
 
-def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width,
-                 dips: bool = False) -> tuple[list[float], list[float], float]:
-    """(peak masses, dip masses, the best gain 2 dNLL of either) of the coarse scan: the
-    separated local maxima worth trying; the two deepest dips only when ``dips``."""
-    shape, sl, _ = model.blocks[0]
-    lo = max(edges[0], lower[i_m])
-    hi = min(edges[-1], upper[i_m])
+def _grid(edges, lower, upper, width):
+    """``(lo, hi, trial masses)`` of the coarse scan: steps of half the start width (at
+    most 400) across the window inside the mass's bounds; kept (read-only) for the last
+    inputs."""
+    lo = max(edges[0], lower)
+    hi = min(edges[-1], upper)
     step = max(0.5 * width, (hi - lo) / 400)
+    key = (float(lo), float(hi), float(step))
+    seen = _GRID[0]
+    if seen is not None and seen[0] == key:
+        return lo, hi, seen[1]
     grid = np.arange(lo + 0.5 * step, hi, step) if hi - lo > step else np.array([0.5 * (lo + hi)])
-    p: list = [float(q) for q in v[sl]]
-    p[shape.parameter_names.index("mass")] = grid[:, None]  # every trial mass in one call
-    try:
-        peaks, lows = coarse_gains(shape, edges, n, scale, grid, p, model.window, bexp,
-                                   dips)
-    except _NUMERIC:
-        peaks, lows = [], []
+    grid.flags.writeable = False
+    _GRID[0] = (key, grid)
+    return lo, hi, grid
+
+
+#: [((lo, hi, step), trial masses)] of the last call
+_GRID: list = [None]
+
+
+def _scan_masses(model, edges, n, scale, v, bexp, i_m, lower, upper, width,
+                 dips: bool = False, gains=None) -> tuple[list[float], list[float], float]:
+    """(peak masses, dip masses, the best gain 2 dNLL of either) of the coarse scan: the
+    separated local maxima worth trying; the two deepest dips only when ``dips``.
+    ``gains``: the scan's ``(peaks, dips)`` where the first look's compiled call made
+    them."""
+    shape, sl, _ = model.blocks[0]
+    lo, hi, grid = _grid(edges, lower[i_m], upper[i_m], width)
+    if gains is not None:
+        peaks, lows = gains
+    else:
+        p: list = [float(q) for q in v[sl]]
+        p[shape.parameter_names.index("mass")] = grid[:, None]  # every trial mass at once
+        try:
+            peaks, lows = coarse_gains(shape, edges, n, scale, grid, p, model.window, bexp,
+                                       dips)
+        except _NUMERIC:
+            peaks, lows = [], []
     q_top = max([q for _, q in peaks + lows], default=0.0)
     masses: list[float] = []
     for i, q in peaks:
