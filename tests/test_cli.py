@@ -165,6 +165,17 @@ def test_fit_mass_outside_window_exits_2(tiny_data, capsys):
     assert "--mass 300" in _one_line(err)
 
 
+@pytest.mark.parametrize("mass", ["150", "70"])
+def test_fit_mass_on_the_window_edge_is_named_so(tiny_data, capsys, mass):
+    """A mass equal to an edge is inside the window by numpy.histogram's rule (the top
+    edge's events are in the last bin), so 'lies outside' was wrong: it is on the edge."""
+    cfg = _config(tiny_data)
+    rc, _, err = _run(capsys, ["fit", str(cfg), "--mass", mass])
+    line = _one_line(err)
+    assert rc == 2 and f"--mass {mass} GeV is on the edge of spectrum.window [70, 150]" in line
+    assert "outside spectrum.window" not in line
+
+
 def test_spectrum_writes_histogram_and_figure(tiny_data, capsys, tmp_path):
     from peaksift.histogram import MassHistogram
 

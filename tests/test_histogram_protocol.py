@@ -133,6 +133,35 @@ def test_array_likes_that_are_not_masses_are_refused(bad):
             call()
 
 
+def test_counts_with_bin_centres_are_refused_not_read_as_masses_and_weights():
+    # (counts, centres) is the x/y slip: the centres (numpy.histogram's edges averaged, the
+    # other library's axis.centers, and the same in float32) would be weights of masses
+    # "counts"; refused by fit, scan and upper_limits with the accepted forms named.
+    counts, edges = np.histogram(MASSES, bins=90, range=(60.0, 150.0))
+    centres = [(edges[1:] + edges[:-1]) / 2, bh.axis.Regular(*EDGES).centers,
+               ((edges[1:] + edges[:-1]) / 2).astype(np.float32)]
+    calls = (lambda d: peaksift.fit(d, "gaussian", "exponential", start={"mass": 91.0}),
+             lambda d: peaksift.scan(d, "gaussian", "exponential", [91.0],
+                                     relative_resolution=0.03),
+             lambda d: peaksift.upper_limits(d, "gaussian", "exponential", [91.0],
+                                             relative_resolution=0.03))
+    for c in centres:
+        for call in calls:
+            with pytest.raises(FitError, match=r"like bin centres.*give the bin edges "
+                                               r"\(len\(counts\) \+ 1 values"):
+                call((counts, c))
+    # masses with weights are not taken for it: measured masses (even sorted) with their
+    # weights, and evenly spaced masses weighted by a density (an Asimov-like sample)
+    from peaksift.histogram import as_spectrum
+
+    asimov = np.linspace(60.0, 150.0, 91)
+    for x, w in ((np.sort(MASSES), WEIGHTS), (asimov, np.exp(-asimov / 30.0)),
+                 (counts.astype(float), np.ones(counts.size))):
+        got_x, got_w = as_spectrum((x, w))
+        np.testing.assert_array_equal(got_x, x)
+        np.testing.assert_array_equal(got_w, w)
+
+
 def test_histogram_of_means_and_two_axes_refused():
     with pytest.raises(FitError, match="kind MEAN"):
         peaksift.fit(bh.Histogram(bh.axis.Regular(*EDGES), storage=bh.storage.Mean()),

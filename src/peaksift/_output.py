@@ -15,6 +15,11 @@ Every command that writes (``search``, ``spectrum``, ``fit``, ``demo``) goes thr
   one line naming a few of them, unless the caller shares the folder (``share=True``, the
   command line's ``--share-folder``).  Even then a file peaksift did not write is never
   replaced: a name clash is refused too.
+* The manifest records each file's size and sha256 as peaksift wrote it.  A file the run
+  would replace or remove that no longer matches (the user edited it: annotated a report,
+  tuned the demo's ``search.toml``) is refused, before the run and again just before the
+  moves, with one line naming it; nothing is written.  A manifest from an older peaksift
+  (no ``sha256`` for a file) is read as before: such a file is replaced without that check.
 * Staging folders left by a killed run (their process is gone) are removed by the next run
   into the same folder; one whose process still lives is reported and the run refused.
 * File-system failures on the output side (read-only, full disk, a rename the system will
@@ -27,6 +32,7 @@ from __future__ import annotations
 import contextlib
 import datetime as _dt
 import errno
+import hashlib
 import itertools
 import json
 import os
@@ -35,12 +41,14 @@ import socket
 import uuid
 from collections.abc import Iterable, Iterator
 from pathlib import Path
+from typing import Any
 
 from ._files import atomic_write
 from ._processes import signals_held
 from .errors import OutputError
 
-__all__ = ["MANIFEST_NAME", "STAGING_PREFIX", "OutputFolder", "os_reason", "staged_output"]
+__all__ = ["MANIFEST_NAME", "STAGING_PREFIX", "OutputFolder", "check_unchanged", "os_reason",
+           "staged_output"]
 
 #: the file in every output folder that lists what peaksift wrote there
 MANIFEST_NAME = "peaksift-manifest.json"
@@ -63,7 +71,7 @@ def _fail(path: Path | str, exc: OSError, doing: str) -> OutputError:
                        "output folder with enough free space, nothing was replaced")
 
 
-def _read_manifest(folder: Path) -> dict[str, dict[str, str]] | None:
+def _read_manifest(folder: Path) -> dict[str, dict[str, Any]] | None:
     """The manifest's file table, or None when there is none or it cannot be read."""
     path = folder / MANIFEST_NAME
     try:
@@ -74,6 +82,55 @@ def _read_manifest(folder: Path) -> dict[str, dict[str, str]] | None:
         return {str(k): v if isinstance(v, dict) else {} for k, v in files.items()}
     except (OSError, ValueError, AttributeError):
         return None
+
+
+def _fingerprint(path: Path) -> dict[str, int | str]:
+    """Size and sha256 of a file as written (what a later run compares it with)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return {"size": path.stat().st_size, "sha256": h.hexdigest()}
+
+
+def _changed(folder: Path, manifest: dict[str, dict[str, Any]], names: Iterable[str]
+             ) -> list[str]:
+    """Those of ``names`` whose file differs from the size and sha256 the manifest recorded
+    (a file without a recorded sha256, an older manifest's, or a missing one: not changed)."""
+    out = []
+    for n in sorted(set(names)):
+        rec = manifest.get(n) or {}
+        p = folder / n
+        if "sha256" not in rec or not p.is_file() or p.is_symlink():
+            continue
+        try:
+            if p.stat().st_size != rec.get("size") or _fingerprint(p)["sha256"] != rec["sha256"]:
+                out.append(n)
+        except OSError:
+            out.append(n)  # unreadable now: not what peaksift wrote, as far as it can tell
+    return out
+
+
+def _refuse_changed(folder: Path, changed: list[str]) -> None:
+    if changed:
+        it = "it" if len(changed) == 1 else "them"
+        raise OutputError(
+            f"output folder {str(folder)!r}: {_short(changed)} changed since peaksift wrote "
+            f"{it} (size or sha256 differs from peaksift-manifest.json) and would be replaced; "
+            f"move {it} away to keep the edits, or choose another output folder (--out); "
+            "nothing was written")
+
+
+def check_unchanged(target: str | os.PathLike[str], commands: Iterable[str]) -> None:
+    """Refuse (:class:`~peaksift.errors.OutputError`) when a file the ``commands`` wrote in
+    ``target`` was changed since: for a command made of several writing steps (``peaksift
+    demo`` writes its events, then its config), checked before the first one."""
+    t = Path(target)
+    manifest = _read_manifest(t) if t.is_dir() else None
+    if manifest:
+        cmds = set(commands)
+        _refuse_changed(t, _changed(t, manifest, [n for n, v in manifest.items()
+                                                   if v.get("command") in cmds]))
 
 
 def _alive(pid: int) -> bool:
@@ -136,7 +193,7 @@ class OutputFolder:
             raise OutputError(f"output path {str(t)!r} exists and is not a folder; choose "
                               "another output folder")
         self.created: list[Path] = []
-        self.old: dict[str, dict[str, str]] = {}
+        self.old: dict[str, dict[str, Any]] = {}
         if t.is_dir():
             self._check_existing(share, list(names))
         else:
@@ -175,6 +232,11 @@ class OutputFolder:
                                   "was written")
         manifest = _read_manifest(t)
         self.old = manifest or {}
+        # the files this run replaces or removes (its own command's, and any listed under
+        # the names it writes) must be as peaksift left them
+        _refuse_changed(t, _changed(t, self.old, (
+            n for n, v in self.old.items() if v.get("command") == self.command or n in names
+            or any(d.endswith("/") and n.startswith(d) for d in names))))
 
         def foreign(entries: Iterable[str]) -> list[str]:
             # lazily, and at most a few: an --out at a large tree must not be walked whole
@@ -249,7 +311,13 @@ class OutputFolder:
                                   "and rerun")
         stale = [n for n, v in current.items() if v.get("command") == self.command
                  and n not in new]
+        # edited during the run? (the check before the run saw them unchanged)
+        _refuse_changed(t, _changed(t, current, [*staged, *stale]))
         try:
+            prints = {n: _fingerprint(self.path / n) for n in staged}
+            # the first manifest lists the new files without a fingerprint: a run killed
+            # in the middle of the moves leaves files the next run replaces unchecked,
+            # never a listed fingerprint of a file not yet moved in
             self._write_manifest({**current, **new})
             out = {}
             for n in staged:
@@ -261,7 +329,8 @@ class OutputFolder:
                 p = t / n
                 if p.is_file() and not p.is_symlink():
                     p.unlink()
-            final = {k: v for k, v in {**current, **new}.items()
+            final = {k: v for k, v in {**current, **{n: {**new[n], **prints[n]}
+                                                       for n in staged}}.items()
                      if k not in stale and (t / k).exists()}
             self._write_manifest(final)
         except OSError as exc:
@@ -276,11 +345,12 @@ class OutputFolder:
         self._mkdirs(d.parent)
         d.mkdir()
 
-    def _write_manifest(self, files: dict[str, dict[str, str]]) -> None:
+    def _write_manifest(self, files: dict[str, dict[str, Any]]) -> None:
         atomic_write(self.target / MANIFEST_NAME, json.dumps(
             {"written_by": "peaksift",
-             "about": "files peaksift wrote in this folder; a rerun replaces exactly these "
-                      "and touches nothing else",
+             "about": "files peaksift wrote in this folder (size and sha256 as written); a "
+                      "rerun replaces exactly these, refuses one changed since, and touches "
+                      "nothing else",
              "files": dict(sorted(files.items()))}, indent=1) + "\n")
 
     def discard(self) -> None:
@@ -295,7 +365,7 @@ class OutputFolder:
                 p.rmdir()
 
 
-def _own_temporary(name: str, manifest: dict[str, dict[str, str]]) -> bool:
+def _own_temporary(name: str, manifest: dict[str, dict[str, Any]]) -> bool:
     """An atomic write's temporary file (``.results.json.x8f2k``) of a listed file."""
     head, _, base = name.rpartition("/")
     return any(base.startswith(f".{Path(n).name}.") and n.rpartition("/")[0] == head

@@ -10,9 +10,11 @@ and the report and summary (output layer) both write.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import Any
 
-__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "UNREADABLE_FILES",
-           "figure_wanted", "method_words", "model_text"]
+__all__ = ["FIGURES", "FITS", "LIMIT_METHODS", "LIMIT_METHOD_WORDS", "NORMALISATION_RANGES",
+           "NOT_FITTED", "UNREADABLE_FILES", "figure_wanted", "method_words", "model_text",
+           "not_fitted"]
 
 #: How :func:`peaksift.upper_limits` computes its CLs limits (``limits.method``):
 #: ``"auto"``       asymptotic formulae, and toys at the masses where the formulae misplace
@@ -26,6 +28,17 @@ LIMIT_METHOD_WORDS: dict[str, str] = {
     "auto": "asymptotic, toys at low counts",
     "asymptotic": "asymptotic",
     "toys": "asymptotic, toys at low counts and at chosen masses",
+}
+
+#: The numbers that turn a limit on signal events into one on sigma x B, as ``[limits]``
+#: and :func:`peaksift.upper_limits` take them: name -> (lowest, highest or None, lowest
+#: excluded).  Uncertainties are relative (0.02 for 2 %): above 1 is a percentage given by
+#: mistake far more often than a real doubling; an efficiency x acceptance above 1 is not one.
+NORMALISATION_RANGES: dict[str, tuple[float, float | None, bool]] = {
+    "luminosity": (0.0, None, True),
+    "luminosity_uncertainty": (0.0, 1.0, False),
+    "efficiency": (0.0, 1.0, True),
+    "efficiency_uncertainty": (0.0, 1.0, False),
 }
 
 #: What an input file that cannot be read does to a run (``execution.unreadable_files``,
@@ -69,6 +82,17 @@ FITS: dict[str, tuple[str, str]] = {
     "calibration": ("calibration fit", "the standard candle's mass and width"),
     "background_only": ("background-only fit", "the background without a signal"),
 }
+
+
+#: how a fit's problem starts when the fit was not made (fewer events than free
+#: parameters): its values are the start values, shown as "not fitted" by every output
+NOT_FITTED = "not fitted"
+
+
+def not_fitted(problems: Sequence[Any] | None) -> bool:
+    """Whether a fit's problems (``FitResult.problems``, results.json ``fit.problems``) say
+    it was not made."""
+    return any(str(p).startswith(NOT_FITTED) for p in problems or ())
 
 
 def model_text(fit: str, signal: str | Sequence[str], background: str, *,

@@ -33,7 +33,7 @@ from ._format import (
     p_value,
     significance,
 )
-from ._vocabulary import FITS, model_text
+from ._vocabulary import FITS, model_text, not_fitted
 
 CAUTION = (
     "A local significance is not a discovery. The numbers here come from one dataset and the "
@@ -251,7 +251,12 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         ("Local significance" + tag, significance(best, "local")),
         ("Global significance" + tag, significance(best, "global")),
     ]
-    if not bl.get("active"):
+    made = not not_fitted(fit.get("problems"))
+    if not bl.get("active") and not made:  # start values are no result
+        rows += [(label, "not fitted") for label in (
+            "Fitted peak mass", f"Fitted width ({fit.get('width_parameter') or 'width'})",
+            "Signal yield", "Background yield (window)")]
+    elif not bl.get("active"):
         rows += [
             ("Fitted peak mass", format_pm(*value_error(fit.get("peak_mass")), "GeV")),
             (f"Fitted width ({fit.get('width_parameter') or 'width'})",
@@ -266,7 +271,8 @@ def _summary_rows(r: Mapping[str, Any]) -> list[tuple[str, str]]:
         rows.append(("Goodness of fit (background fit on the sidebands only)",
                      gof_text(sideband_gof(bf))))
     else:
-        rows.append((f"Goodness of fit ({FITS['free_fit'][0]})", gof_text(fit.get("gof") or {})))
+        rows.append((f"Goodness of fit ({FITS['free_fit'][0]})",
+                     gof_text(fit.get("gof") or {}) if made else "none (not fitted)"))
     if bl.get("active"):
         w = bl.get("window") or [None, None]
         hr = bl.get("hidden_range")

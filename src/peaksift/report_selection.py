@@ -90,6 +90,13 @@ def section_selection(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Bloc
     out.append(("p", (f"Events read: {num_text(inp.get('events_read'))}; events with a candidate: "
                      f"{num_text(inp.get('events_selected'))}; {window_count_label(r)}: "
                      f"{num_text(inp.get('candidates'))}.")))
+    ws = (r.get("scan") or {}).get("weight_scale")
+    if isinstance(ws, (int, float)) and ws != 1.0 and inp.get("sum_of_weights") is not None:
+        out.append(("p", (f"The events are weighted: the sum of the candidates' weights is "
+                          f"{num_text(inp['sum_of_weights'])}. Significances and limits use "
+                          "scaled-Poisson effective counts (each bin's sum of weights times "
+                          "sum(w)/sum(w²) of the bin), an approximation for unequal weights; "
+                          "see Warnings.")))
     if "candidates" in fig:
         out += figure_block(fig, "candidates", CAPTIONS["candidates"])
     elif is_blinded(r):

@@ -49,8 +49,12 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
+    from .._output import check_unchanged
     from ..simulate import write_demo
 
+    # three writing steps (events, config, template): a search.toml the user tuned since
+    # is refused before the first, so a refusal leaves everything as it was
+    check_unchanged(args.outdir, ("demo", "demo-config", "demo-template"))
     info = write_demo(args.outdir, n_events=args.events, seed=args.seed, weighted=args.weighted,
                       share_folder=args.share_folder)
     print(info["summary"] if isinstance(info, dict) and "summary" in info else info)

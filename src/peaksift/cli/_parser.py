@@ -67,7 +67,9 @@ def build(handlers: Mapping[str, Handler]) -> argparse.ArgumentParser:
             "one invented resonance, as Parquet files, truth.json and a ready search.toml.",
             [common])
     d.add_argument("outdir", metavar="OUTDIR",
-                   help="directory to write into (created; files there are not overwritten)")
+                   help="directory to write into (created); a rerun replaces only the demo's own "
+                        "files, and refuses if one was edited since or if other files are "
+                        "there (unless --share-folder)")
     d.add_argument("--events", type=int, default=None, help="number of events (default: demo size)")
     d.add_argument("--seed", type=int, default=None, help="random seed (default: the demo's own)")
     d.add_argument("--weighted", action="store_true", help="simulated-sample variant with weights")

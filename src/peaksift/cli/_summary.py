@@ -43,6 +43,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         p_value,
         significance,
     )
+    from .._vocabulary import not_fitted
     from ..report_sections import models_text
 
     def part(m: Any, key: str) -> Mapping[str, Any]:
@@ -56,6 +57,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
              _row("events read", number(inp.get("events_read"))),
              _row("candidates in sidebands" if blinded else "candidates in window",
                   number(inp.get("candidates"))),
+             *_weights_row(d, blinded),
              *(_row("model", text) for text in models_text(d)),
              _row("best mass hypothesis", f"{mass_text(best.get('mass'))} GeV")]
     if blinded:  # intended: no fit inside the blinded window, which is not a failure
@@ -69,6 +71,10 @@ def _summary_text(d: Mapping[str, Any]) -> str:
                               f"(p = {p_value(sb.get('gof_p_value'))}); "
                               f"{format_pm(by.get('value'), by.get('error'))} expected in the "
                               "blinded window"))
+    elif not_fitted(fit.get("problems")):   # start values are no result
+        lines += [_row(label, "not fitted") for label in (
+            "fitted mass", f"fitted width ({fit.get('width_parameter') or 'width'})",
+            "signal yield")]
     else:
         lines += [_row("fitted mass", format_pm(pm.get("value"), pm.get("error"), "GeV")),
                   *_scaled_mass(part(part(d, "systematics"), "fitted_mass")),
@@ -117,8 +123,16 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         n_toys = sum(1 for f in lim["flags"] if f.startswith("toys"))
         n_bad = sum(bool(x) for x in lim.get("asymptotic_doubtful") or [])
         n_floor = sum(bool(x) for x in lim.get("below_floor") or [])
+        # which set the toys are in: with [systematics] the headline limits are the ones
+        # with systematics, asymptotic unless systematics.toy_limits
+        with_s = part(part(syst, "limits"), "with_systematics")
+        s_toys = sum(m == "toys" for m in with_s.get("methods") or [])
+        toys_text = (f"{n_toys} from toys" if not with_s else
+                     f"{n_toys} from toys with and without systematics" if s_toys >= n_toys else
+                     f"{n_toys} plain limits from toys, those with systematics asymptotic"
+                     + (f" (toys at {s_toys})" if s_toys else ""))
         lines.append(_row("limits at low counts", f"of {len(lim['flags'])} masses: " + "; ".join(
-            s for s in (f"{n_toys} from toys" if n_toys else "",
+            s for s in (toys_text if n_toys else "",
                         f"{n_bad} asymptotic DOUBTFUL" if n_bad else "",
                         f"{n_floor} below the counting floor" if n_floor else "") if s)
             + " (see the report)"))
@@ -127,6 +141,19 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     _doubt_lines(lines, d)
     lines.append("  (a local significance is not a discovery; see the report's caution)")
     return "\n".join(lines)
+
+
+def _weights_row(d: Mapping[str, Any], blinded: bool) -> list[str]:
+    """A weighted spectrum's sum of weights (the candidates above are raw counts): the
+    number its significances are about, with the approximation they rest on."""
+    from .._format import number
+
+    ws = (d.get("scan") or {}).get("weight_scale")
+    sow = (d.get("input") or {}).get("sum_of_weights")
+    if not isinstance(ws, (int, float)) or ws == 1.0 or sow is None:
+        return []
+    return [_row("sum of weights" + (" (sidebands)" if blinded else ""),
+                 f"{number(sow)} (weighted: scaled-Poisson effective counts, see WARNING)")]
 
 
 def _decimals(error: Any) -> int:

@@ -10,7 +10,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
-from .._vocabulary import FIGURES, LIMIT_METHODS, UNREADABLE_FILES
+from .._vocabulary import FIGURES, LIMIT_METHODS, NORMALISATION_RANGES, UNREADABLE_FILES
 from ..energy_loss import HYPOTHESES, MATERIALS
 from ..resolution import RELATIVE_MAX, relative_problem
 
@@ -34,6 +34,12 @@ class _Key:
     # a number's own check (what is wrong, or None) used instead of lo/hi, which then only
     # document the range: for a rule that another layer owns and applies too
     check: Callable[[Any], str | None] | None = None
+
+
+def _normalisation(name: str) -> dict[str, Any]:
+    """lo/hi of a limits key that :func:`peaksift.upper_limits` checks too (declared once)."""
+    lo, hi, lo_open = NORMALISATION_RANGES[name]
+    return {"lo": lo, "hi": hi, "lo_open": lo_open}
 
 
 # ------------------------------------------------------------------------------- schema
@@ -256,17 +262,17 @@ SCHEMA: dict[str, tuple[_Key, ...]] = {
         _Key("luminosity", "float", None,
              "Integrated luminosity in `luminosity_unit`; when given, limits are on "
              "cross-section x branching fraction instead of the signal yield.",
-             lo=0.0, lo_open=True, nullable=True),
+             nullable=True, **_normalisation("luminosity")),
         _Key("luminosity_unit", "choice", "fb^-1", "Unit of `luminosity`.",
              choices=("fb^-1", "pb^-1")),
         _Key("luminosity_uncertainty", "float", 0.0,
              "Relative uncertainty of the luminosity (constrained nuisance parameter).",
-             lo=0.0, hi=1.0),
+             **_normalisation("luminosity_uncertainty")),
         _Key("efficiency", "float", 1.0,
-             "Signal efficiency times acceptance.", lo=0.0, hi=1.0, lo_open=True),
+             "Signal efficiency times acceptance.", **_normalisation("efficiency")),
         _Key("efficiency_uncertainty", "float", 0.0,
              "Relative uncertainty of the efficiency (constrained nuisance parameter).",
-             lo=0.0, hi=1.0),
+             **_normalisation("efficiency_uncertainty")),
         _Key("constraint", "choice", "lognormal",
              "Distribution constraining the luminosity and efficiency nuisance parameters.",
              choices=("lognormal", "gaussian")),

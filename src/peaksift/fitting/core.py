@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 
+from .._vocabulary import NOT_FITTED
 from ..errors import FitError
 from ..likelihood import Minimum, NearMinimum, minimize, refine
 from ..likelihood.starts import fit_starts
@@ -156,8 +157,8 @@ def fit(
     if too_few:  # nothing to minimise: the result at the starting values, flagged invalid
         s0 = next(iter(starts))[1]()
         cost = make_cost(s0)
-        why = (f"not fitted: only {n_entries:g} events in the window for {nfree} free "
-               "parameters (widen the window or fix parameters)")
+        why = (f"{NOT_FITTED}: only {n_entries:g} event{'' if n_entries == 1 else 's'} in "
+               f"the window for {nfree} free parameters (widen the window or fix parameters)")
         best = (math.inf, None, cost, [why], s0[free_idx], cost(*s0[free_idx]), None, False)
         starts = iter(())
     # [full vector, free x, nll, covariance, observed Hessian or None] of the best minimum

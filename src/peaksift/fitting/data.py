@@ -112,8 +112,9 @@ def prepare(data: Any, weights: Any, window: Any, binned: bool | None, bins: Any
     total = float(x.size if w is None else w.sum())
     if binned is None:
         if x.size <= UNBINNED_LIMIT:
-            binned, reason = False, (f"{x.size} masses <= {UNBINNED_LIMIT}: unbinned uses all "
-                                     "the information at small cost")
+            binned, reason = False, (f"{x.size} mass{'' if x.size == 1 else 'es'} <= "
+                                     f"{UNBINNED_LIMIT}: unbinned uses all the information at "
+                                     "small cost")
         else:
             binned, reason = True, (f"{x.size} masses > {UNBINNED_LIMIT}: binned in "
                                     f"{DEFAULT_BINS if bins is None else bins} bins for speed")

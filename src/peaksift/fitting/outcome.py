@@ -143,7 +143,9 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                              f"{bnd:g}: its symmetric error is not meaningful, use the "
                              "interval")
         notes += asked
-        if (not held[iy0] and (i_w is not None and not held[i_w])
+        # the toys measured free mass, width and yield: a held mass (peaksift fit
+        # --hold-mass) is a different fit, about which they say nothing
+        if (not held[iy0] and not held[i_m] and (i_w is not None and not held[i_w])
                 and errs[iy0] > 0 and abs(vs[iy0]) / errs[iy0] < _UNDERCOVER_Z):
             notes.append("free mass and width at a modest significance: the 68 % intervals "
                          "under-cover, symmetric errors and profile-likelihood intervals "

@@ -23,7 +23,7 @@ from .. import shapes as _shapes
 from .._format import chi_square, format_interval, p_value, value_decimals
 from .._json import finite as number
 from .._values import FrozenValue, Measurement
-from .._vocabulary import FITS, model_text
+from .._vocabulary import FITS, model_text, not_fitted
 from ..errors import FitError
 from ..likelihood import Model, new_minuit
 
@@ -235,6 +235,12 @@ class FitResult(FrozenValue):
 
     # results.json groups some fields; each group is an attribute of the same name too
     @property
+    def fitted(self) -> bool:
+        """False when the fit was not made (fewer events than free parameters): the values
+        are then the start values, which the repr and the report do not show as results."""
+        return not not_fitted(self.problems)
+
+    @property
     def gof(self) -> dict[str, Any]:
         """Goodness of fit: ``chi2``, ``ndf``, ``p_value``, ``note`` (the ``gof_*`` fields)."""
         return {"chi2": number(self.gof_chi2), "ndf": int(self.gof_ndf),
@@ -287,6 +293,7 @@ class FitResult(FrozenValue):
         iv = self.intervals
         return {
             "valid": bool(self.valid),
+            "fitted": self.fitted,
             "peak_mass": ve(self.peak_mass, self.peak_mass_error),
             "width": ve(self.peak_width, self.peak_width_error),
             "signal_yield": ve(*self.signal_yield),
@@ -409,6 +416,10 @@ class FitResult(FrozenValue):
         if self.notes:
             lines.append("  notes: " + "; ".join(self.notes))
         w = max(len(n) for n in self.parameters)
+        if not self.fitted:  # the start values are no result: not shown as one
+            lines += [f"  {n:<{w}} = {self.values[n]:g} ({self.held(n)})" if n in self.fixed else
+                      f"  {n:<{w}} = not fitted" for n in self.parameters]
+            return "\n".join([*lines, "  peak: not fitted", "  GoF: none (not fitted)"])
         for n in self.parameters:
             tag = f" ({self.held(n)})" if n in self.fixed else ""
             if self.intervals and n in self.intervals:  # rounded as the summary's
@@ -437,22 +448,24 @@ class FitResult(FrozenValue):
         # value and error as the repr, the report and the figure round them (two significant
         # digits of the error), not a value with more digits than its error carries
         parts = {n: format_value(self.values[n], self.errors[n]).partition(" \u00b1 ")
+                 if self.fitted or n in self.fixed else ("not fitted", "", "")
                  for n in self.parameters}
         rows = "".join(
             f"<tr><td>{html.escape(n)}</td><td>{parts[n][0]}</td><td>{parts[n][2]}</td>"
             f"<td>{'fixed' if n in self.fixed else ''}</td></tr>" for n in self.parameters)
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
+        peak = (f"peak mass {html.escape(format_value(self.peak_mass, self.peak_mass_error))} "
+                f"{self.unit}; FWHM {html.escape(format_value(self.fwhm, self.fwhm_error))} "
+                f"{self.unit}" if self.fitted else "peak: not fitted")
         model = model_text(self.kind, [s.name for s in self.model.signals],
                            self.model.background.name)
         return (f"<div><p>{html.escape(model)}; {status}; "
                 f"{'binned' if self.binned else 'unbinned'} "
-                f"({html.escape(self.binned_reason)}); {html.escape(self._gof_text())}</p>"
+                f"({html.escape(self.binned_reason)}); "
+                f"{html.escape(self._gof_text() if self.fitted else 'GoF: none')}</p>"
                 f"{notes}"
                 f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
-                f"{rows}</table><p>peak mass "
-                f"{html.escape(format_value(self.peak_mass, self.peak_mass_error))} "
-                f"{self.unit}; FWHM {html.escape(format_value(self.fwhm, self.fwhm_error))} "
-                f"{self.unit}</p></div>")
+                f"{rows}</table><p>{peak}</p></div>")
 
     def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
              run: Any = None, symbol: str | None = None, note: str = "",

@@ -182,8 +182,11 @@ def as_spectrum(data: Any, weights: Any = None, *, what: str = "fit") -> Any:
 
     The rules, in order: a MassHistogram as it is; an object speaking the histogram protocol
     converted (:meth:`MassHistogram.from_protocol`); a 2-tuple whose second array is one
-    longer than the first is ``numpy.histogram``'s ``(counts, edges)``; another 2-tuple is
-    ``(masses, weights)``; a 1-d array of real numbers is masses.  Anything else is refused
+    longer than the first is ``numpy.histogram``'s ``(counts, edges)``; a 2-tuple whose
+    second array is as long as the first and evenly spaced increasing is ``(counts, bin
+    centres)`` given by mistake and refused (weights are never an arithmetic progression;
+    evenly spaced *masses* with weights, an Asimov-like sample, are accepted); another 2-tuple
+    is ``(masses, weights)``; a 1-d array of real numbers is masses.  Anything else is refused
     rather than guessed at.
 
     Raises
@@ -206,6 +209,12 @@ def as_spectrum(data: Any, weights: Any = None, *, what: str = "fit") -> Any:
         a, b = (_numbers(v, what) for v in data)
         if a is not None and b is not None and b.size == a.size + 1:
             hist = _counts_edges(a, b, what)
+        elif a is not None and b is not None and b.size == a.size and _like_centres(b):
+            raise FitError(
+                f"{what}: data=(counts, x) with as many x as counts? the second array "
+                f"({b[0]:g}, {b[1]:g}, ..., {b[-1]:g}) is evenly spaced and increasing like "
+                "bin centres, so it is not read as weights; give the bin edges (len(counts) "
+                "+ 1 values, numpy.histogram's (counts, edges)) or (masses, weights)")
         elif weights is not None:
             raise FitError(f"{what}: weights given twice (in data=(masses, weights) and "
                            "weights=); give one")
@@ -227,6 +236,17 @@ def as_spectrum(data: Any, weights: Any = None, *, what: str = "fit") -> Any:
             raise FitError(f"{what}: weights must be a 1-d array of real numbers, got "
                            f"{type(weights).__name__}")
     return x, w
+
+
+def _like_centres(b: np.ndarray) -> bool:
+    """Strictly increasing with equal steps (to rounding: centres computed from edges, even
+    in float32, differ by a few ulps of the largest value), at least 3 values."""
+    if b.size < 3 or not np.isfinite(b).all():
+        return False
+    d = np.diff(b)
+    step = float(d.mean())
+    return bool(step > 0 and (d > 0).all() and np.abs(d - step).max()
+                <= 1e-4 * step + 1e-6 * float(np.abs(b).max()))
 
 
 def _counts_edges(counts: np.ndarray, edges: np.ndarray, what: str) -> Any:

@@ -131,11 +131,21 @@ def write_demo_template(config: str | os.PathLike[str]) -> Path | None:
     from ..config import load_config
     from ..simulate.expected import expected_background
 
+    try:
+        import tomllib as _toml
+    except ModuleNotFoundError:  # Python 3.10 (as config.build reads TOML)
+        import tomli as _toml  # type: ignore[no-redef]
+
     path = Path(config)
     truth_file = path.parent / "truth.json"
-    cfg = load_config(path)
-    if not cfg.systematics.template or not truth_file.exists():
+    raw = _toml.loads(path.read_text(encoding="utf-8"))
+    syst = dict(raw.get("systematics") or {})
+    template = syst.pop("template", None)
+    if not template or not truth_file.exists():
         return None
+    # the config checks that its template covers the window: read without it, this being
+    # the step that writes it (the window and bins are all it takes from the config)
+    cfg = load_config({**raw, "systematics": syst}, base_dir=path.parent)
     truth = json.loads(truth_file.read_text())
     lo, hi = cfg.spectrum.window
     n = int(truth["n_events"])
@@ -144,7 +154,7 @@ def write_demo_template(config: str | os.PathLike[str]) -> Path | None:
     decays = min(1_000_000, max(10_000, -(-10 * n // 3)))
     hist = expected_background(np.linspace(lo, hi, cfg.spectrum.bins + 1), n_events=n,
                                seed=int(truth["seed"]), decays=decays)
-    target = Path(cfg.systematics.template)
+    target = Path(template) if Path(template).is_absolute() else path.parent / template
     with staged_output(target.parent, "demo-template", share=True,
                        names=(target.name,)) as stage:
         assert stage is not None

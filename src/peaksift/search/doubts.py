@@ -24,14 +24,23 @@ summary and a section at the top of the report.
   (a genuine signal lifts only the masses near it); limits with systematics whose
   profile in the mass scale took a lower well than the nearest one (a mass scale wider
   than the peak: the limit there responds to the data up to 3 of its standard deviations
-  away).
+  away); a quoted limit (with systematics when the run has them) computed with the
+  asymptotic formulae where the background under the signal is below
+  ``limits.low_count_background`` (its expected bands misplaced there); toy limits that
+  fell outside their grid (reported as NaN: n/a in the tables).
 * ``significance``    -- with ``[systematics]``: the scan's q0 whose profile in the mass
   scale took a lower well than the nearest one (as for the limits above).
 * ``scan``            -- the mass grid steps more than one resolution width somewhere
   (:func:`~peaksift.stats.mass_grid.coarse_grid_note`): local and global significances
   underestimated between hypotheses.
 * ``significance``    -- also: the global correction's N0 uncertain by more than
-  :data:`N0_ERROR_MAX` (too few background-only toys).
+  :data:`N0_ERROR_MAX` (too few background-only toys); a weighted spectrum, whose
+  significances and limits rest on scaled-Poisson effective counts (the scan's note,
+  :func:`~peaksift.stats.scan_inputs.weighted_note`): an approximation for unequal weights.
+* ``significance``    -- also: few events behind the significances: less than
+  :data:`FEW_BACKGROUND` background event expected under the signal at the best mass
+  (the limits' ``background_under_signal`` there), or a free fit not made for want of
+  events (the window holds fewer candidates than it has parameters).
 * ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
   a kept order whose next order still improved the fit (the family needs higher orders).
 """
@@ -42,15 +51,23 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
-from .._vocabulary import FITS
+from .._vocabulary import FITS, not_fitted
 from ..stats.mass_grid import coarse_grid_note
 
-__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "LOWER_MINIMUM_WARN", "N0_ERROR_MAX",
-           "doubtful_limits_note", "doubts", "fit_doubts"]
+__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "FEW_BACKGROUND", "GOF_P_MIN", "LOWER_MINIMUM_WARN",
+           "N0_ERROR_MAX", "doubtful_limits_note", "doubts", "fit_doubts"]
 
 #: N0's relative error above this flags the global significance (a quarter: 16 toys'
 #: worth at N0 ~ 1; the demo's 100 toys give 3 %)
 N0_ERROR_MAX = 0.25
+
+#: below this many background events expected under the signal at the best mass the
+#: significances are flagged: the asymptotic formulae (Wilks; Cowan et al. 2011) expand in
+#: large expected counts, and a counting test's exact Poisson tail against the asymptotic
+#: Z = sqrt(2 (n ln(n/b) - n + b)) (scipy.stats.poisson.sf) shows the asymptotic local
+#: significance high by 0.15-0.3 sigma at Z = 3-5 for b < 1 (0.1 at b = 5, 0.07 at b = 10);
+#: the background itself then rests on a handful of events
+FEW_BACKGROUND = 1.0
 
 #: a goodness-of-fit p-value below this flags the fit (0.1%: about 1 in 1000 fits of a
 #: right model; our choice)
@@ -185,6 +202,9 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                                 [_nan(x) for x in sc.get("sigma") or []])
         if grid:
             add("scan", grid)
+        for note in sc.get("notes") or []:
+            if str(note).startswith("weighted spectrum"):
+                add("significance", f"{note}: the quoted significances and limits carry it")
     best = results.get("best")
     n0, n0_err = (_num(best.get("N0")), _num(best.get("N0_error"))) if isinstance(
         best, Mapping) else (None, None)
@@ -196,6 +216,24 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
             f"{n0_err:.2g} ({best.get('n0_source') or 'toys'}) is uncertain by "
             f"{n0_err / n0:.0%}: the global p-value is uncertain alike; run more "
             "background-only toys (--toys)")
+    few = _few_events(results, fit, best, blinded)
+    if few:
+        add("significance", few)
+    for what, fix, lim in _limit_sets(results.get("limits"), sy):
+        low = _asymptotic_at_low_counts(lim)
+        if low:
+            n, of, m_low, b_low, thr = low
+            add("limits", f"{what} asymptotic at {n} of {of} masses where the background under "
+                          f"the signal is below limits.low_count_background = {thr:g} events "
+                          f"(down to {b_low:.3g} events at {m_low:.2f} GeV): the formulae misplace "
+                          f"the expected bands at low counts; {fix}")
+    lost = [str(n).partition(":")[0] for n in (results.get("limits") or {}).get("notes") or []
+            if "outside the grid" in str(n)] if isinstance(results.get("limits"), Mapping) else []
+    if lost:
+        add("limits", f"{len(lost)} toy limit{'s' if len(lost) > 1 else ''} fell outside "
+                      f"their grid and are reported as n/a (at {', '.join(lost[:3])}"
+                      f"{' ...' if len(lost) > 3 else ''} GeV): the band or observed value "
+                      "there lies below or above every signal the toys tried")
     band = _outside_band(results.get("limits"))
     if band is not None:
         n_out, n_all, below, above = band
@@ -205,6 +243,75 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                           f"{BAND_OUTSIDE_MAX_FRACTION:.0%}): the background model does not "
                           "follow the data, so the limits are doubtful")
     return out
+
+
+def _few_events(results: Mapping[str, Any], fit: Any, best: Any, blinded: bool) -> str:
+    """Why the significances rest on too few events, or ''."""
+    n = _num((results.get("input") or {}).get("candidates"))
+    if isinstance(fit, Mapping) and not blinded and not_fitted(fit.get("problems")):
+        return (f"the window holds {n:g} candidate{'' if n == 1 else 's'}, fewer than the "
+                "free fit's parameters: the scan's background rests on them alone, so its "
+                "significances and limits mean little; widen spectrum.window"
+                if n is not None else "")
+    lim = results.get("limits")
+    m_best = _num(best.get("mass")) if isinstance(best, Mapping) else None
+    if not isinstance(lim, Mapping) or m_best is None:
+        return ""
+    pairs = [(abs(m - m_best), b, m) for m, b in zip(
+        (_num(x) for x in lim.get("masses") or []),
+        (_num(x) for x in lim.get("background_under_signal") or [])) if m is not None
+        and b is not None]
+    if not pairs:
+        return ""
+    _, b, m = min(pairs)
+    if b >= FEW_BACKGROUND:
+        return ""
+    return (f"{b:.2g} background events expected under the signal near the best mass "
+            f"({m:.2f} GeV; fewer than {FEW_BACKGROUND:g}): the local and global "
+            "significances use asymptotic formulae that need many expected events (at such "
+            "counts the local one is high by 0.15-0.3 sigma against the exact Poisson tail)")
+
+
+def _limit_sets(plain: Any, sy: Any) -> list[tuple[str, str, Mapping[str, Any]]]:
+    """The limit sets a reader quotes, each (its name in a warning, how to get toys, the
+    set): with [systematics] the limits with systematics (the headline), and the plain
+    ones (the report's table)."""
+    out: list[tuple[str, str, Mapping[str, Any]]] = []
+    w = ((sy or {}).get("limits") or {}).get("with_systematics") if isinstance(
+        sy, Mapping) else None
+    if isinstance(w, Mapping):
+        if isinstance(plain, Mapping) and list(plain.get("masses") or []) == list(
+                w.get("masses") or []):
+            # low counts as the run decides them (systematics.toy_limits takes toys where
+            # the plain limits do): the plain background under the signal, so the warning
+            # and the summary's count agree
+            w = {**w, **{k: plain.get(k) for k in ("background_under_signal",
+                                                   "low_count_background")}}
+        out.append(("the limits with systematics (the headline ones) are",
+                    "systematics.toy_limits = true computes them with toys", w))
+    if isinstance(plain, Mapping):
+        out.append(("the limits without systematics are" if out else "the limits are",
+                    'limits.method = "auto" computes them with toys there', plain))
+    return out
+
+
+def _asymptotic_at_low_counts(lim: Mapping[str, Any]
+                              ) -> tuple[int, int, float, float, float] | None:
+    """(how many, of how many, mass and b of the lowest) masses whose limit is asymptotic
+    with the background under the signal below the set's ``low_count_background``
+    (blinded masses count: their expected limits are quoted)."""
+    thr = _num(lim.get("low_count_background"))
+    methods = lim.get("methods") or []
+    if thr is None:
+        return None
+    low = [(b, m) for m, b, how in zip(lim.get("masses") or [],
+                                       lim.get("background_under_signal") or [], methods)
+           if how == "asymptotic" and _num(b) is not None and _num(m) is not None
+           and _num(b) < thr]
+    if not low:
+        return None
+    b, m = min(low)
+    return len(low), len(methods), float(m), float(b), thr
 
 
 def fit_doubts(fit: Mapping[str, Any], started: str = "at the best mass hypothesis"

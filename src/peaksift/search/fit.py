@@ -166,6 +166,10 @@ def run_fit(
     if cfg.blinding.enabled and not unblind:
         raise ConfigError(f"config {cfg.source}: blinding.enabled = true: a free fit would look "
                           "inside the blinded window; pass --unblind to fit anyway")
+    if mass in (lo, hi):  # inside by the histogram's rule (its top edge too), but half a peak
+        raise ConfigError(f"--mass {mass:g} GeV is on the edge of spectrum.window [{lo:g}, "
+                          f"{hi:g}]: a peak there lies half outside the window and cannot be "
+                          "fitted; choose a mass inside it, or widen the window")
     if not (lo < mass < hi):
         raise ConfigError(f"--mass {mass:g} GeV lies outside spectrum.window [{lo:g}, {hi:g}]; "
                           "choose a mass inside the fit window")

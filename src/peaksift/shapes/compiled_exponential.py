@@ -38,7 +38,7 @@ so their differences lose only the usual ``eps S/F`` of any CDF difference (at m
 
 Cost: one exponential an edge, as the CDF differences had.  Edges farther than 1/|b| from
 the far end take ``S = (e^{beta u} - e^{2 beta}) / (1 - e^{2 beta})``, which keeps its
-digits there; only those nearer (all of them for |b| < 1) need exprel and w, by their
+digits there; only those nearer (all of them for |b| < 1/2) need exprel and w, by their
 series.  Bins whose widths agree to 1e-9 (any linspace binning: its edges' last digits
 differ) take the first width's factors and their first-order change, a few operations a
 bin; unequal widths an ``expm1`` each (``docs/performance.md``, 2026-12-05 expprec10).

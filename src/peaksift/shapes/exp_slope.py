@@ -19,7 +19,7 @@ import numpy as np
 
 from ._base import as_window
 
-__all__ = ["slope_fractions"]
+__all__ = ["mean_t", "slope_fractions"]
 
 # w(q) = 1/2 + sum_k B_2k q^(2k-1) / (2k)! on |q| < 1 (Bernoulli numbers; to q^21, the
 # next term below 2e-19), highest first; beyond, 1 + 1/expm1(q) - 1/q (q <= -1)
@@ -58,6 +58,14 @@ def _exprel(q, em1):
     """expm1(q) / q given ``em1``; 1 at q = 0."""
     zero = np.asarray(q) == 0.0
     return np.where(zero, 1.0, em1) / np.where(zero, 1.0, q)
+
+
+def mean_t(b: float) -> float:
+    """The mean of t under exp(b t) on [-1, 1], d ln Z / db = sign(b) (1 - 2 w(-2|b|)):
+    exact to rounding for every b (the unbinned density's derivative, ``ExpPoly``)."""
+    q = -2.0 * abs(b)
+    m = 1.0 - 2.0 * _w1(q, math.expm1(q))
+    return m if b > 0.0 else -m
 
 
 def slope_fractions(edges, b, window, grad: bool):

@@ -21,7 +21,7 @@ from .background_base import (
     _stacked,
     _t,
 )
-from .exp_slope import slope_fractions
+from .exp_slope import mean_t, slope_fractions
 
 __all__ = ["Bernstein", "ExpPoly", "Exponential"]
 
@@ -147,8 +147,7 @@ class ExpPoly(_ExpFamily, _Background):
         ends = np.array([float(window[0]), float(window[1])])
         pe = self._primitive(ends, [b], window)
         z = float(pe[1] - pe[0])
-        gz = self._primitive_grad(ends, [b], window)[0]
-        dz = float(gz[1] - gz[0]) / z
+        dz = mean_t(b)  # d ln z / db, exact (the primitives' difference lost digits near 0)
         t = _t(x, window)
         pdf = np.exp(b * t) * (1.0 / z)
         return pdf, (pdf * (t - dz))[None, :]

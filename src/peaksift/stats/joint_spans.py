@@ -24,8 +24,9 @@ All moments are prefix sums over the bins, made once per call (:func:`span_table
 row costs its span's bins (~10 sigma below the mass to 8 above: a fifth of the benchmark's
 bins) and a few dozen operations.
 
-Same numbers to rounding: the span's bins are computed exactly as
-:func:`peaksift.shapes.compiled_exponential.exponential_rows` and the joint loop compute them; outside
+Same numbers to rounding: the span's bins are computed as
+:func:`peaksift.shapes.compiled_exponential.exponential_rows` and the joint loop compute
+them (its :func:`~peaksift.shapes.compiled_exponential.exponential_bins`); outside
 it the neglected signal is below 2^-60 of the background in every bin (checked at every
 evaluation: else the bin-by-bin path answers) and the closed forms differ from the bin
 sums by rounding only (``tests/test_joint_spans.py``).

@@ -107,6 +107,8 @@ class LimitResult(FrozenValue):
                           f"{self.mass_unit}")),
                ("limit", f"{self.cl:.0%} CL CLs ({method_words(self.method)}) on "
                          + ("the signal yield" if self.unit == "events" else
+                            f"sigma x B x efficiency [{self.unit}] (efficiency not given: 1)"
+                            if (self.assumptions or {}).get("efficiency_assumed") else
                             f"sigma x B [{self.unit}]"))]
         if np.any(np.isfinite(obs)):
             j = int(np.nanargmax(obs / self.expected))

@@ -64,7 +64,8 @@ from .._vocabulary import LIMIT_METHODS
 from ..errors import FitError
 from .cls import _BANDS, _bisect, _floor_reach, _Problem, _qtilde, _unconditional
 from .limit_result import LOW_COUNT_BACKGROUND, LimitResult
-from .scan_inputs import _prepare_model
+from .normalisation import _assumptions, check_normalisation, normalisation
+from .scan_inputs import _prepare_model, weighted_note
 from .toy_limits import _ToyLimitTask, run_toy_limit
 from .toys import ScanModel, fit_background
 
@@ -267,8 +268,15 @@ def upper_limits(
         raise FitError(f"low_count_background must be >= 0, got {low_count_background!r}")
     if constraint not in ("lognormal", "gaussian"):
         raise FitError(f"constraint must be 'lognormal' or 'gaussian', got {constraint!r}")
-    if luminosity_uncertainty < 0 or efficiency_uncertainty < 0:
-        raise FitError("luminosity_uncertainty and efficiency_uncertainty must be >= 0")
+    check_normalisation(luminosity=luminosity, luminosity_uncertainty=luminosity_uncertainty,
+                        efficiency=efficiency, efficiency_uncertainty=efficiency_uncertainty)
+    if luminosity is None and efficiency is not None:
+        # refused rather than applied: without L the limit is on the signal events in the
+        # data, which the efficiency already thins; dividing by it would give a limit on
+        # produced events under the same unit ("events"), one reader's number for another's
+        raise FitError(f"efficiency={efficiency!r} without luminosity=: the limits are then on "
+                       "the signal yield in the data (events), the efficiency already in it; "
+                       "give luminosity= for limits on sigma x B, or leave efficiency out")
     model, spec, info = _prepare_model(
         data, signal, background, masses, resolution=resolution,
         relative_resolution=relative_resolution, absolute_resolution=absolute_resolution,
@@ -277,6 +285,7 @@ def upper_limits(
     if signal_model is not None and efficiency is not None:
         raise FitError("give the efficiency either through signal_model= or efficiency=, "
                        "not both")
+    assumed = efficiency is None and signal_model is None and luminosity is not None
     if efficiency is None:
         efficiency = 1.0 if signal_model is None else signal_model.efficiency
     m_all = info["masses"]
@@ -289,6 +298,11 @@ def upper_limits(
         efficiency_uncertainty=efficiency_uncertainty, constraint=constraint)
     conv_eff = conv  # yields in weighted units (per-bin scaled Poisson inside the model)
     notes: list[str] = []
+    if spec.bin_scale is not None:
+        notes.append(weighted_note(spec.scale))
+    if assumed:
+        notes.append(f"efficiency not given: 1 assumed, so these are limits on sigma x B x "
+                     f"efficiency [{unit}]; give efficiency= (x acceptance) for sigma x B")
 
     # expected: Asimov background-only data over all window bins (blinding does not matter)
     f_win = info["window_fractions"]
@@ -371,49 +385,7 @@ def upper_limits(
         counting_floor=floor, low_count_background=low_count_background,
         asymptotic_doubtful=doubtful, below_floor=below, flags=tuple(flags),
         assumptions=_assumptions(luminosity, luminosity_uncertainty, efficiency,
-                                 efficiency_uncertainty, eff_values, kind))
-
-
-def normalisation(masses: np.ndarray, *, luminosity: float | None, efficiency: Any,
-                  unit: str, luminosity_uncertainty: float, efficiency_uncertainty: float,
-                  constraint: str
-                  ) -> tuple[np.ndarray, str, float, str | None, np.ndarray | None]:
-    """Events per unit of the parameter of interest at each mass, the limit's unit, the
-    combined relative normalisation uncertainty and its constraint kind (see the module
-    guide), and the efficiencies used (None without a luminosity)."""
-    nm = masses.size
-    if luminosity is None:
-        if luminosity_uncertainty or efficiency_uncertainty:
-            raise FitError("luminosity/efficiency uncertainties need luminosity=...")
-        return np.ones(nm), "events", 0.0, None, None
-    if not luminosity > 0:
-        raise FitError(f"luminosity must be > 0, got {luminosity!r}")
-    eff = (np.asarray(efficiency(masses), float) if callable(efficiency)
-           else np.full(nm, float(efficiency)))
-    if np.any(~np.isfinite(eff) | (eff <= 0)):
-        raise FitError("signal efficiency must be > 0 at every scan mass")
-    if constraint == "lognormal":
-        delta = math.sqrt(math.log1p(luminosity_uncertainty) ** 2
-                          + math.log1p(efficiency_uncertainty) ** 2)
-    else:
-        delta = math.hypot(luminosity_uncertainty, efficiency_uncertainty)
-    return float(luminosity) * eff, unit, delta, constraint, eff
-
-
-def _assumptions(luminosity: float | None, lumi_unc: float, efficiency: Any, eff_unc: float,
-                 eff_values: np.ndarray | None, kind: str | None) -> dict[str, Any]:
-    """What the conversion from signal events to the limit's unit assumed, for the figure,
-    the report and results.json (relative uncertainties)."""
-    if luminosity is None:
-        return {}
-    eff: Any = float(efficiency) if not callable(efficiency) else None
-    out: dict[str, Any] = {"luminosity": float(luminosity),
-                           "luminosity_uncertainty": float(lumi_unc),
-                           "efficiency": eff, "efficiency_uncertainty": float(eff_unc),
-                           "constraint": kind}
-    if eff is None and eff_values is not None and eff_values.size:
-        out["efficiency_range"] = [float(np.min(eff_values)), float(np.max(eff_values))]
-    return out
+                                 efficiency_uncertainty, eff_values, kind, assumed))
 
 
 def _toy_limits(want: list[float], m_all: np.ndarray, bl: np.ndarray, model: ScanModel,

@@ -55,7 +55,8 @@ from ..errors import FitError
 from ..likelihood import SignalNuisances
 from .cls import _BANDS, _bisect, _Problem, _unconditional
 from .limit_result import LOW_COUNT_BACKGROUND
-from .limits import cls_asymptotic, expected_band_factor, normalisation
+from .limits import cls_asymptotic, expected_band_factor
+from .normalisation import check_normalisation, normalisation
 from .scale_scan import asimov_band_note, needs_scan, profile_global, several_minima_note
 from .scan_inputs import _prepare_model, _signal_params
 from .toys import fit_background
@@ -307,6 +308,8 @@ def systematic_limits(data: Any, signal: Any, backgrounds: Mapping[str, Any], ma
                        f"got {method!r}")
     if not (np.isfinite(penalty) and penalty >= 0):
         raise FitError(f"the envelope's penalty must be >= 0, got {penalty!r}")
+    check_normalisation(luminosity=luminosity, luminosity_uncertainty=luminosity_uncertainty,
+                        efficiency=efficiency, efficiency_uncertainty=efficiency_uncertainty)
     nuis = nuisances if nuisances is not None else SignalNuisances()
     labels = tuple(backgrounds)
     prepared = [_prepare_model(data, signal, backgrounds[lab], masses, resolution=resolution,

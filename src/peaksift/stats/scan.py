@@ -36,7 +36,7 @@ from ..likelihood import (
 from ..likelihood.poisson import use_compiled
 from .mass_grid import coarse_grid_note
 from .scale_scan import profile_global, several_minima_note
-from .scan_inputs import ASK, _prepare_model, _signal_params, _Spectrum
+from .scan_inputs import ASK, _prepare_model, _signal_params, _Spectrum, weighted_note
 from .scan_kept import OWN, _all, kept_scan, quick_scan, remember, scan_arrays, significances
 from .scan_prepared import prepared_key
 from .scan_result import ScanResult, fresh_result
@@ -244,6 +244,8 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
     grid = coarse_grid_note(m_all, info["sigma"])
     if grid:
         notes.append(grid)
+    if spec.bin_scale is not None:
+        notes.append(weighted_note(spec.scale))
     z_exp = None
     if expected_signal is not None:
         z_exp = _expected_z(model, info, spec, expected_signal)

@@ -85,13 +85,17 @@ def _spectrum(data: Any, window: Any, bins: Any, min_sigma: Callable[[], float])
     if not (np.array_equal(weight_sum, variances) or np.allclose(weight_sum, variances)):
         scale = float(weight_sum.sum() / variances.sum())
         bin_scale = hist.scaled_poisson_factors()
-        warnings.warn(
-            f"scan: weighted spectrum; significances use scaled-Poisson effective counts "
-            f"k_i sum(w) per bin, k_i = sum(w)/sum(w^2) of the bin (overall {scale:.4g}); "
-            f"an approximation for unequal weights (exact for equal ones)",
-            DataWarning, stacklevel=3)
+        warnings.warn(f"scan: {weighted_note(scale)}", DataWarning, stacklevel=3)
     return _Spectrum(edges, weight_sum * (1.0 if bin_scale is None else bin_scale), scale,
                      (float(edges[0]), float(edges[-1])), hist.unit, bin_scale)
+
+
+def weighted_note(scale: float) -> str:
+    """What a weighted spectrum does to significances and limits (the result's notes, the
+    run's warnings; said once here)."""
+    return (f"weighted spectrum: significances and limits use scaled-Poisson effective counts "
+            f"k_i sum(w) per bin, k_i = sum(w)/sum(w^2) of the bin (overall {scale:.4g}); an "
+            "approximation for unequal weights (exact for equal ones)")
 
 
 def from_signal_model(signal_model: Any, signal: Any, resolution: Any, relative: Any,
