@@ -13,6 +13,11 @@ Why: the numpy path costs ~20 numpy calls per iteration whatever the size; on a 
 masses x 100 bins that call overhead was ~2/3 of the scan (its cost per mass and bin 1.5x
 that of 1,000 bins).  Here a row's iterations run without returning to Python.
 
+A row whose start lies far below the counts under its signal (a background fitted badly
+there) first moves its signal yield to the minimum in s alone (:func:`_signal_start`,
+as the numpy path's :func:`peaksift.stats.toy_model.signal_start`): from s = 0 there the
+Newton steps only double s.
+
 Its calls from Python (:mod:`.profile_calls`) return None whenever it cannot answer as the
 numpy path would (another background, a row kernel declining a point where the numpy path
 switches to a series, a singular or non-finite Newton step, where numpy would take a
@@ -194,6 +199,9 @@ def _damped_step(hess, grad, lam, h, step, sm, sd):  # pragma: no cover - compil
     return solve_small_into(h, grad, step, sm, sd)
 
 
+#: :func:`_signal_start`'s rule (``toy_model``'s: START_RATIO, START_STOP, START_STEPS)
+START_RATIO, START_STOP, START_STEPS = 4.0, 1.01, 30
+
 #: the rows of profile_rows' fraction buffers: the current point and a trial alternate in
 #: rows 0 and 1 (an accepted trial's row becomes the current one), row 2 holds the start
 _START = 2
@@ -306,6 +314,18 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
         for _it in range(steps):
             s = s_fix[r] if fixed else xr[0]
             _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, s, xr[off], off, grad, hess)
+            # far below the counts under the signal at the start: s moved there first
+            # (sum f, F, summed only where G - F = -grad[0] is positive; an addition a bin
+            # in _grad_hess's loop cost ~1.5 % of a 100-bin scan)
+            ff = _row_sum(f, r) if _it == 0 and not fixed and grad[0] < 0.0 else 0.0
+            if ff > 0.0 and -grad[0] > (START_RATIO - 1.0) * ff:
+                t = _signal_start(n, nr, f, r, gs, ci, xr, upper[0], satr, lb, cur, ff,
+                                  grad[0], hess[0, 0])
+                if t < cur:
+                    cur = t
+                    s = xr[0]
+                    _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, s, xr[off], off, grad,
+                               hess)
             # _pin_at_bounds: a parameter on a bound whose descent leaves it holds still
             anypin = False
             for a in range(p):
@@ -359,6 +379,52 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
                     hess_out[r, a, c] = hess[a, c]
             s_err[r] = first_error_into(hess, h, gp, step, sm, sd)
     return 0
+
+
+@njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _signal_start(n, nrow, f, r, gs, slot, xr, s_hi, sat, lb, cur, ff, g_s,
+                  h_ss):  # pragma: no cover - compiled
+    """The row's NLL with its signal yield ``xr[0]`` moved to the minimum in s alone (b,
+    theta held), or ``cur`` (``xr`` unchanged) where that is not lower: ``toy_model.
+    signal_start``, which says why; ``ff`` = sum f = F, ``g_s`` = F - G and ``h_ss`` the
+    NLL's derivatives in s at the start.  Newton steps on 1/G - 1/F = 0 while G >
+    :data:`START_STOP` F, each a pass without logarithms."""
+    s0 = xr[0]
+    b = xr[1]
+    nb = f.shape[1]
+    gg = ff - g_s
+    hh = h_ss
+    s1 = s0
+    for _ in range(START_STEPS):
+        if not hh > 0.0:
+            break
+        s1 = min(s1 + (gg - ff) * gg / (ff * hh), s_hi)
+        gg = 0.0
+        hh = 0.0
+        for j in range(nb):
+            fj = f[r, j]
+            nu = max(NU_FLOOR, s1 * fj + b * gs[slot, j])
+            v = n[nrow, j] / (nu * nu)
+            gg += fj * nu * v
+            hh += fj * fj * v
+        if not gg > START_STOP * ff:
+            break
+    if s1 == s0:
+        return cur
+    t = _nll(n, nrow, f, r, gs, slot, s1, b, sat, lb)
+    if t < cur:
+        xr[0] = s1
+        return t
+    return cur
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _row_sum(f, r):  # pragma: no cover - compiled
+    """sum f[r] (a loop that vectorises)."""
+    t = 0.0
+    for j in range(f.shape[1]):
+        t += f[r, j]
+    return t
 
 
 @njit(cache=True, nogil=True)
