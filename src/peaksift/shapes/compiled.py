@@ -394,7 +394,12 @@ def exponential_rows_into(t, dt, bs, frac, grad, ev):  # pragma: no cover - comp
     The edges' exponentials first, in a loop that vectorises (:func:`vexp`, within 1 ulp
     of the library's); then ``expm1(b dt_i)`` only where a bin's width differs from the
     previous bin's (equal widths, the usual binning: one call, the same numbers).  The two
-    library calls per edge were ~70% of a joint fit's time and most of a scan's."""
+    library calls per edge were ~70% of a joint fit's time and most of a scan's.
+
+    The derivative of each bin is its fraction times ``t_i + dt_i (1 + m) / m - coth b``
+    (m = expm1(b dt_i): d ln(fraction) / db), so it keeps the fraction's relative
+    precision; as the difference of the CDF's derivatives at the edges it kept ~1e-4 in
+    the far tail of a steep slope, where a fit's gradient multiplies it by n / nu."""
     ne = t.size
     want = grad.size > 0
     uniform = True   # every bin as wide as the first: the fractions' loop vectorises
@@ -406,7 +411,7 @@ def exponential_rows_into(t, dt, bs, frac, grad, ev):  # pragma: no cover - comp
         b = bs[r]
         if abs(b) < 1e-3:
             return False
-        em, _, ib, ib2, g0, ghi, inv_z, scale = exponential_constants(b)
+        em, ep, _, _, _, _, _, scale = exponential_constants(b)
         for i in range(ne):
             ev[i] = vexp(b * t[i])
         if uniform:
@@ -422,14 +427,20 @@ def exponential_rows_into(t, dt, bs, frac, grad, ev):  # pragma: no cover - comp
                     m1 = math.expm1(b * d_last)
                 frac[r, i] = max(0.0, ev[i] * m1 * scale)
         if want:
-            d_prev = 0.0
-            for i in range(ne):
-                e = ev[i]
-                c = (e - em) * scale
-                db = (e * (t[i] * ib - ib2) + g0 - c * ghi) * inv_z
-                if i > 0:
-                    grad[r, i - 1] = db - d_prev
-                d_prev = db
+            coth = (ep + em) / (ep - em)
+            if uniform:
+                k0 = dt[0] * (1.0 + m1) / m1 - coth
+                for i in range(ne - 1):
+                    grad[r, i] = frac[r, i] * (t[i] + k0)
+            else:
+                d_last = math.nan
+                k0 = 0.0
+                for i in range(ne - 1):
+                    if dt[i] != d_last:
+                        d_last = dt[i]
+                        m1 = math.expm1(b * d_last)
+                        k0 = d_last * (1.0 + m1) / m1 - coth
+                    grad[r, i] = frac[r, i] * (t[i] + k0)
     return True
 
 

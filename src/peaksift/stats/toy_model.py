@@ -235,6 +235,12 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
 #: more than this factor, weighted by the signal (:func:`signal_start`); then moved while
 #: they are more than START_STOP below, in at most START_STEPS steps
 START_RATIO, START_STOP, START_STEPS = 4.0, 1.01, 30
+#: a row not converged after this many iterations (a scan's rows take 4-6) has the
+#: background's curvature in its Hessian computed again at its point: the start's, held
+#: to save its evaluations, is far off where theta has moved many errors (a background
+#: fitted badly, the signal taking up the difference), and there the Newton steps
+#: oscillated in theta for 30-50 iterations
+REFRESH_AT = 6
 
 
 def signal_start(n: np.ndarray, f: np.ndarray, s: np.ndarray, b: np.ndarray, g: np.ndarray,
@@ -396,6 +402,8 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
     if not fixed:   # far below the counts under the signal: s moved there first
         s, nll = signal_start(n, f, s, b, g, nll, total_nll)
     d2 = bkg_second(model, theta) if k else None
+    d2h = d2   # the Hessian's curvature: rows past REFRESH_AT iterations, at their point then
+    calls = 0
 
     def unpack(x: np.ndarray, rows: np.ndarray):
         return (s[rows] if fixed else x[:, 0]), x[:, off], x[:, off + 1:]
@@ -405,9 +413,14 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
         tg = bkg_fractions(model, tth)
         return total_nll(ts, tb, tg, rows), (tg,)
 
-    def grad_hess(x: np.ndarray, state: tuple, rows: np.ndarray):
+    def grad_hess(x: np.ndarray, state: tuple, rows: np.ndarray, final: bool = False):
+        nonlocal d2h, calls
         si, bi, thi = unpack(x, rows)
         gi = state[0]
+        calls += not final   # (one call an iteration, for the rows still running)
+        if k and calls == REFRESH_AT + 1 and not final:
+            d2h = d2.copy()
+            d2h[rows] = bkg_second(model, thi)
         nu = np.maximum(si[:, None] * f[rows] + bi[:, None] * gi, _NU_FLOOR)
         cols = [gi[:, None, :]]
         if k:
@@ -423,7 +436,7 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
         if k:
             ib = off  # index of the background yield
             hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
-                                                                         d2[rows], w)
+                                                                         d2h[rows], w)
             cross = np.einsum("bkn,bn->bk", dg, w)
             hess[:, ib, ib + 1:] += cross
             hess[:, ib + 1:, ib] += cross
@@ -439,7 +452,7 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
     s, b, theta, g, nll, converged = s.copy(), b.copy(), theta.copy(), r.state[0], r.nll, \
         r.converged
     # Hessian-based error of the signal yield: inverse of the exact Hessian at the minimum
-    hess = None if fixed else grad_hess(r.x, r.state, np.arange(nb))[1]
+    hess = None if fixed else grad_hess(r.x, r.state, np.arange(nb), final=True)[1]
     s_err = np.full(nb, np.nan) if fixed else first_error(hess)
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
             "converged": converged, "hessian": hess, "curvature": d2}
