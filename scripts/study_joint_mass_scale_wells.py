@@ -22,7 +22,7 @@ limit from q_mu,A = Phi^-1(0.975)^2.  About 30 s of CPU per toy (3 min with limi
 * ``toys``: the global significance toys' q0 (:func:`peaksift.stats.channel_toys.toy_q0`,
   their refitted top points, constraint centres at 1) of background-only spectra on 41
   masses 140-160 GeV, each toy's highest against the reference's q0 at that mass;
-* ``toylimits``: the combined toy limits' q~mu (its toy sets, ``channel_toys._Set``) at
+* ``toylimits``: the combined toy limits' q~mu (its toy sets, ``channel_toy_limits._Set``) at
   20, 40, 60 events in turn (CCGV eq. 16), each channel's constraints centred on global
   observables drawn per toy (c = 1 + delta z, as the scan study's), against the reference
   with those centres.
@@ -169,8 +169,12 @@ def toy_limit_q(ns_list, cens_list) -> np.ndarray:
     """q~mu ``(toys, len(MUS))`` of the combined toy limits' sets (one set of every toy,
     its channels' constraint centres ``cens_list``; before the shape factors entered
     them, the same sets without)."""
-    from peaksift.stats import channel_toys as T
     from peaksift.stats.channels import _prepare_all
+
+    try:   # the toy limit's own module since toylimit10
+        from peaksift.stats import channel_toy_limits as T
+    except ImportError:
+        from peaksift.stats import channel_toys as T
 
     chans = channels(ns_list[0])
     _, prepared, _, bl, conv = _prepare_all(chans, np.array([S.MASS]), None)

@@ -113,7 +113,7 @@ def test_combined_toy_limit_statistic_profiles_the_shape_factors_at_their_lowest
     7.15 / 18.95 / 34.77 for the first toy against the reference's 0.21 / 4.51 / 13.16."""
     from test_scan_mass_scale_wells import _centers
 
-    from peaksift.stats import channel_toys
+    from peaksift.stats import channel_toy_limits
     from peaksift.stats.channels import _prepare_all
 
     toys = [[_toy(1000), _toy(1001)], [_toy(1002), _toy(1003)]]
@@ -121,7 +121,7 @@ def test_combined_toy_limit_statistic_profiles_the_shape_factors_at_their_lowest
     chans = _channels(toys[0])
     _, prepared, _, bl, conv = _prepare_all(chans, np.array([MASS]), None)
     shapes = [ch.shape_spec(p, bl) for ch, p in zip(chans, prepared)]
-    sets = channel_toys._Set([p[0] for p in prepared],
+    sets = channel_toy_limits._Set([p[0] for p in prepared],
                              [np.array([ns[c] for ns in toys]) for c in range(2)],
                              [float(k[0]) for k in conv], None, np.zeros((2, 0)), shapes,
                              [np.array([c[ch] for c in cens]) for ch in range(2)])

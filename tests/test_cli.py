@@ -248,8 +248,8 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), secti
 
 @pytest.fixture(scope="module")
 def demo_fits(tmp_path_factory):
-    """``peaksift fit`` on the demo at 140 and 155 GeV, held and free, and free from 150;
-    each run writes its fit.json and fit.png with --out."""
+    """``peaksift fit`` on the demo at 140 and 155 GeV, held and free, and free from 150
+    and 111; each run writes its fit.json and fit.png with --out."""
     if not DEMO_CONFIG.exists():
         pytest.skip("demo data not generated")
     import io
@@ -257,7 +257,8 @@ def demo_fits(tmp_path_factory):
 
     base = tmp_path_factory.mktemp("fits")
     out = {}
-    for mass, hold in ((140, True), (140, False), (155, True), (155, False), (150, False)):
+    for mass, hold in ((140, True), (140, False), (155, True), (155, False), (150, False),
+                       (111, False)):
         d = base / f"m{mass}{'_held' if hold else ''}"
         buf = io.StringIO()
         with redirect_stdout(buf):
@@ -303,7 +304,9 @@ def test_fit_holds_the_mass_exactly_and_writes_its_files(demo_fits, demo_nll, ma
     assert d["nll"] >= demo_fits[mass, False]["json"]["nll"] - 1e-6
 
 
-@pytest.mark.parametrize("mass", [140, 155])
+# (from 140 GeV the fit ends in a spike at the width's floor, invalid: no intervals, see
+# test_fit_at_a_spike_says_it_is_invalid_and_a_local_minimum)
+@pytest.mark.parametrize("mass", [150, 155])
 def test_fit_starts_at_the_mass_and_reports_intervals(demo_fits, demo_nll, mass):
     from iminuit import Minuit
 
@@ -340,6 +343,30 @@ def test_fit_started_off_the_peak_reaches_the_lowest_minimum(demo_fits, demo_nll
     assert abs(gap) < 1e-3
     assert not any("a lower minimum exists" in n for n in local["notes"])
     assert not any("a lower minimum exists" in n for n in best["notes"])
+
+
+def test_fit_at_a_spike_says_it_is_invalid_and_a_local_minimum(demo_fits, demo_nll):
+    """Started at 111 GeV the demo's fit ends in a spike at the width's floor (invalid): the
+    command prints a "fit status" line as the search's summary does, makes no
+    profile-likelihood intervals (their ends would read as errors of an unmeasured width),
+    and fit.json's "warnings" hold the invalid fit and the lower minimum elsewhere -- the
+    fit from 155 GeV, whose Delta(-2 ln L) below this one, from the NLL written in the tests
+    (conftest ``demo_nll``) at both fits' values, the warning quotes to 3 significant
+    digits (tolerance 0.5 % of it)."""
+    run, best = demo_fits[111, False], demo_fits[155, False]["json"]
+    d = run["json"]
+    assert not d["valid"] and d["intervals"] is None
+    assert demo_fits[140, False]["json"]["intervals"] is None  # (invalid too, at 140 GeV)
+    assert any(ln.strip().startswith("fit status") and "INVALID" in ln
+               for ln in run["stdout"].splitlines())
+    topics = [w["topic"] for w in d["warnings"]]
+    assert topics[:2] == ["fit", "local_minimum"], topics
+    nll = demo_nll(d)
+    gap = 2.0 * (nll(**_values(d)) - nll(**_values(best)))
+    quoted = float(re.search(r"-2 ln L lower by ([0-9.]+)", d["warnings"][1]["message"])[1])
+    assert abs(quoted - gap) < 5e-3 * gap, (quoted, gap)
+    assert abs(d["lower_minimum"]["mass"] - best["peak_mass"]["value"]) < \
+        0.01 * best["peak_mass"]["error"]
 
 
 def test_fit_out_refuses_a_directory_of_other_files(tiny_data, capsys, tmp_path):
@@ -441,3 +468,19 @@ def test_module_command_flushes_its_output_and_keeps_its_exit_status(tmp_path):
                          env=env, timeout=120, check=False)
     assert bad.returncode == 2
     assert bad.stderr.startswith("peaksift: error:") and len(bad.stderr.splitlines()) == 1
+
+
+def test_calibration_line_quotes_the_tables_at_the_fits_precision():
+    """The tables' mass beside the fitted one at the fitted one's decimals (the error to two
+    significant digits, as every number of the summary) and the shift to two significant
+    digits with its significance: a 6-digit fit beside a 4-digit table mass suggested a
+    shift twice the real one.  Reference: the phi(1020) mass 1.019461 GeV of the particle
+    package's tables."""
+    from peaksift.cli._summary import _summary_text
+
+    d = {"calibration": {"particle": "phi(1020)", "table_mass": 1.019461,
+                         "fitted_mass": {"value": 1.019409, "error": 0.000068},
+                         "shift_relative_permille": -0.0498, "shift_sigma": -0.73}}
+    line = next(ln for ln in _summary_text(d).splitlines() if "calibration" in ln)
+    assert "1.019409 ± 0.000068 GeV vs tables 1.019461 GeV" in line
+    assert "(shift -0.050 per mille, -0.7 sigma)" in line

@@ -156,7 +156,7 @@ def test_calibration_window_may_not_overlap_the_blinding(tmp_path):
     assert "calibration.window [70, 140] overlaps" in msg
     # a window clear of the hidden bins is fine; so is any window without blinding
     assert load_config(_write(tmp_path, MINIMAL + blind + cal.format(lo=70.0, hi=139.0)))
-    assert load_config(_write(tmp_path, MINIMAL + cal.format(lo=100.0, hi=145.0)))
+    assert load_config(_write(tmp_path, MINIMAL + cal.format(lo=70.0, hi=145.0)))
 
 
 def test_cross_key_rules(tmp_path):
@@ -211,3 +211,38 @@ def test_demo_config_is_valid_and_matches_the_template():
     assert cfg.calibration.particle == "Z0"
     # the committed file is the template that `peaksift demo` writes next to new data
     assert path.read_text() == demo_config_text(["events_*.parquet"])
+
+
+def test_calibration_particle_must_be_one_the_pairs_can_be(tmp_path):
+    """Refused before any event is read: a calibration window without the particle's mass
+    (the Z0 at 91.19 GeV, particle package) and a particle of the wrong charge for the
+    pairs (the W+ has charge +1, particle package; opposite-charge pairs are neutral)."""
+    from particle import Particle
+
+    z_mass = Particle.from_name("Z0").mass / 1000.0  # MeV -> GeV
+    assert Particle.from_name("W+").charge == 1
+    cal = '\n[calibration]\nparticle = "{}"\nwindow = [{}, {}]\n'
+    msg = _err(tmp_path, MINIMAL + cal.format("Z0", 100.0, 150.0))
+    assert "does not contain Z0's mass" in msg and f"{z_mass:.6g}" in msg
+    msg = _err(tmp_path, MINIMAL + cal.format("W+", 70.0, 110.0))
+    assert "charge +1" in msg and "neutral pairs" in msg
+    load_config(_write(tmp_path, MINIMAL + cal.format("Z0", 70.0, 110.0)))  # accepted
+
+
+def test_template_must_cover_the_window(tmp_path):
+    """systematics.template is read with the config: a template over 110-165 GeV for a
+    window of 110-200 GeV is refused before any event is read (the run failed after the
+    scan and its toys, naming the template's bins as the spectrum's)."""
+    import numpy as np
+
+    from peaksift import MassHistogram
+
+    MassHistogram.from_counts(np.ones(55), np.linspace(110.0, 165.0, 56)).save(
+        tmp_path / "short.json")
+    sy = '\n[systematics]\nbackground_families = ["exppoly"]\ntemplate = "{}"\n'
+    msg = _err(tmp_path, MINIMAL + sy.format("short.json"))
+    assert "template covers 110-165 GeV" in msg and "[110, 200]" in msg
+    assert "cannot read" in _err(tmp_path, MINIMAL + sy.format("missing.json"))
+    MassHistogram.from_counts(np.ones(90), np.linspace(110.0, 200.0, 91)).save(
+        tmp_path / "whole.json")
+    load_config(_write(tmp_path, MINIMAL + sy.format("whole.json")))

@@ -27,7 +27,7 @@ import matplotlib
 matplotlib.use("svg")  # the user's backend: ours must not change it
 import peaksift
 from peaksift import MassHistogram
-from peaksift._style import RunLabel
+from peaksift._annotations import RunLabel
 
 rng = np.random.default_rng(11)
 h = MassHistogram(bins=90, range=(110.0, 200.0)).fill(np.r_[
@@ -81,7 +81,8 @@ print(json.dumps({
 """
 
 _ORDER_SCRIPT = _COMMON + r"""
-from peaksift._style import draw_header, figure_style, new_figure
+from peaksift._annotations import draw_header
+from peaksift._style import figure_style, new_figure
 from peaksift._value_table import value_table
 
 

@@ -64,10 +64,11 @@ def test_checked_merged_and_saturated_as_numpy(nb, k):
             n = rng.poisson(3.0, nb) * rng.uniform(0.1, 3.0, nb)
         else:  # a large dynamic range
             n = rng.exponential(1.0, nb) * 10.0 ** rng.uniform(-200, 200, nb)
-        merged, safe = np.empty(-(-nb // k)), np.empty(nb)
-        verdict, total = check_and_merge(n, n.copy(), k, merged, safe)
+        merged, safe, counts = np.empty(-(-nb // k)), np.empty(nb), np.empty(nb)
+        verdict, total = check_and_merge(n, n.copy(), k, merged, safe, counts)
         assert verdict == OK
         assert total == n.sum()
+        np.testing.assert_array_equal(counts, n)  # the copy: the same numbers
         if k > 1:
             np.testing.assert_array_equal(merged, _numpy_merge(n, k))
         np.log(safe, out=safe)
@@ -80,7 +81,7 @@ def test_checked_merged_and_saturated_as_numpy(nb, k):
 
 def test_verdicts():
     n = np.array([3.0, 0.0, 5.0, 2.0])
-    buf = (np.empty(2), np.empty(4))
+    buf = (np.empty(2), np.empty(4), np.empty(4))
     assert check_and_merge(n, n.copy(), 2, *buf)[0] == OK
     for bad in (np.nan, np.inf, -1.0):
         m = n.copy()

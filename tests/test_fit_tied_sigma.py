@@ -91,6 +91,22 @@ def test_tied_fit_equals_an_independent_fit_with_sigma_inside_the_cost(kind):
     assert any("recomputed from the fitted mass" in t for t in r.notes)
 
 
+def test_a_resolution_ties_sigma_as_its_tie_does():
+    """``tied={"sigma": Resolution}``: the linear resolution (2 % of the mass) given as a
+    peaksift.Resolution fits as the independent fit with sigma = 0.02 m inside the cost
+    (values within 1e-3 of its errors), the repr calls sigma tied, not fixed."""
+    res = RESOLUTIONS["linear"][0]
+    h, n = _histogram(res)
+    ref = _reference(n, res)
+    r = peaksift.fit(h, "gaussian", "exponential", WINDOW, binned=True, start={"mass": 148.0},
+                     tied={"sigma": peaksift.Resolution.relative(0.02)})
+    assert r.valid, r.problems
+    assert r.values["sigma"] == pytest.approx(0.02 * r.values["mass"], rel=1e-12)
+    assert r.values["mass"] == pytest.approx(ref.values["mass"], abs=1e-3 * ref.errors["mass"])
+    assert r.values["signal_yield"] == pytest.approx(ref.values["s"], abs=1e-3 * ref.errors["s"])
+    assert "(tied)" in repr(r) and "(fixed)" not in repr(r)
+
+
 def test_a_tie_at_the_start_mass_would_differ():
     """Guard that the case can tell the two apart: sigma held at f(148) instead of f(m_fit)
     moves the fitted mass by more than 0.01 of its error from the reference."""

@@ -324,7 +324,10 @@ def test_hadron_search_reports_the_identification(tmp_path, demo_tracks):
     from peaksift import SearchResult
 
     again = tmp_path / "again.png"
-    SearchResult.from_dict(d).plot(which="dedx").savefig(again, dpi=150)
+    fig = SearchResult.from_dict(d).plot(which="dedx")
+    # headed by the run's label as every figure of the run (the config's [run] name)
+    assert d["config"]["run"]["name"] in [t.get_text() for t in fig.axes[0].texts]
+    fig.savefig(again, dpi=150)
     drawn = mpimg.imread(tmp_path / "out" / "figures" / "dedx.png")
     assert np.array_equal(mpimg.imread(again), drawn)
 

@@ -13,7 +13,8 @@ mpl = pytest.importorskip("matplotlib")
 
 from matplotlib.figure import Figure
 
-from peaksift._style import figure_style, new_figure, plain_log_ticks
+from peaksift._annotations import plain_log_ticks
+from peaksift._style import figure_style, new_figure
 
 
 def _build(kind: str):

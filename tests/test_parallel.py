@@ -109,7 +109,7 @@ def test_drawers_do_not_reuse_the_parents_typeset_text(small_demo, tmp_path, mon
     from matplotlib.mathtext import MathTextParser
 
     from peaksift import plotting
-    from peaksift._style import text_width
+    from peaksift._annotations import text_width
 
     text = r"$N_{sig}^{parent}$ typeset before the search"
     text_width(text, 8.8)

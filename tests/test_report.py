@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import base64
 import json
+import math
 from html.parser import HTMLParser
 
 import numpy as np
@@ -322,7 +323,8 @@ def test_report_has_every_limit_point_its_bands_and_the_assumptions(tmp_path):
 def test_report_has_the_background_fit_and_each_requirement_in_order():
     r = _full_results()
     md = render_markdown(r)
-    assert "χ² = 119 for 88 degrees of freedom (p = 0.0156)" in md
+    # one decimal, as the figures and the summary write a chi-square (_format.chi_square)
+    assert "χ² = 119.0 for 88 degrees of freedom (p = 0.0156)" in md
     assert "| power | 4.99 ± 0.21 |" in md and "| background yield | 980 ± 31 |" in md
     assert "| mass |" not in md.split("## Background-only fit")[1].split("##")[0]
     steps = ["| events read | 1,000 |", "| muon objects | 700 |", "| muon: pt > 20 | 500 |",
@@ -332,3 +334,10 @@ def test_report_has_the_background_fit_and_each_requirement_in_order():
     assert at == sorted(at)
     # the look-elsewhere numbers explained in plain words, beside the technical sentence
     assert "In plain words" in md and "somewhere in the scanned range" in md
+    # N0 is a count of crossings, not of independent places; the trials factor is
+    # p_global / p_local (Gross and Vitells, Eur. Phys. J. C 70 (2010) 525, eq. 1)
+    best = {**r["best"], "N0": 5.2, "u0": 0.5, "log10_p_global": math.log10(0.0019),
+            "log10_p_local": math.log10(4.8e-5), "p_global": 0.0019, "p_local": 4.8e-5}
+    md = render_markdown({**r, "best": best})
+    assert "independent places" not in md
+    assert f"{0.0019 / 4.8e-5:.2g} times the local one" in md.replace("\n", " ")

@@ -200,6 +200,13 @@ def test_scan_bad_input_messages():
         scan(h, "gaussian", "gaussian", [200.0], relative_resolution=0.01)
     with pytest.raises(FitError, match="unknown shape"):
         scan(h, "gausian", "exponential", [200.0], relative_resolution=0.01)
+    # a lone float could mean "the mass 200 GeV" or "200 points": refused, never guessed
+    # (2.5 used to become 2 points)
+    for lone in (200.0, 2.5, "200", np.float64(200.0), True):
+        with pytest.raises(FitError, match="neither a number of points nor a list"):
+            scan(h, "gaussian", "exponential", lone, relative_resolution=0.01)
+    assert scan(h, "gaussian", "exponential", np.int64(11), relative_resolution=0.01,
+                refit=False).masses.size == 11
 
 
 def test_blinding_hides_and_ignores_the_window(tmp_path):

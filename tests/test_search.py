@@ -286,6 +286,20 @@ def test_summary_printed(run):
     assert str(run["out"]) in out
 
 
+def test_summary_quotes_the_plain_limit_without_systematics(run):
+    """A run without [systematics] still has a limit line: the plain limit at the limit
+    mass nearest the best mass, as results.json ``limits`` holds it (two decimals)."""
+    from peaksift.cli._summary import _summary_text
+
+    d = {k: v for k, v in run["results"].items() if k != "systematics"}
+    lim = d["limits"]
+    i = int(np.argmin(np.abs(np.asarray(lim["masses"]) - d["best"]["mass"])))
+    line = next(ln for ln in _summary_text(d).splitlines() if "limit at" in ln)
+    assert f"limit at {lim['masses'][i]:.2f} GeV" in line
+    assert (f"{lim['observed'][i]:.2f} observed, {lim['expected'][i]:.2f} expected "
+            f"{lim['unit']}") in line
+
+
 def test_outputs_name_the_fit_of_each_model(run):
     """Which fit a model and a number come from: the summary, report.html's Result table,
     results.json ``models`` and the spectrum figure's box name the scan's model ("scan:
@@ -353,6 +367,11 @@ def test_notebook_repr_quotes_the_free_fit_as_the_summary_does(run):
     # the scan's best mass with the summary's two decimals (it read 152.6 beside 152.62)
     best = run["results"]["scan"]["best"]["mass"]
     assert f"best {best:.2f} GeV: Z_local" in repr(res.scan)
+    # the significances qualified as the summary's, and every warning it prints there too
+    assert "with systematics" in repr(res) and "with systematics" in run["stdout"]
+    for w in run["results"]["warnings"]:
+        if w["topic"] != "fit":
+            assert f"WARNING: {w['message']}" in run["stdout"] and w["message"] in repr(res)
 
 
 def test_notebook_repr_flags_an_invalid_free_fit(run):
@@ -520,11 +539,12 @@ def test_blinded_run_hides_the_window_until_unblinded(tmp_path):
     assert not list(figs.glob("candidates.*"))
     md = (out / "report.md").read_text()
     assert "blinded" in md.lower() and "withheld while the run is blinded" in md
-    # no signal-plus-background fit: the goodness of fit shown is the sideband fit's
+    # no signal-plus-background fit: the goodness of fit shown is the sideband fit's, with
+    # one decimal as every chi-square (it read 81.97 here, 82.0 in the summary)
     bf = d["background_fit"]
     assert bf["kind"] == "sideband_fit" and "for None degrees of freedom" not in md
     assert (f"| Goodness of fit (background fit on the sidebands only) | "
-            f"χ² = {bf['gof_chi2']:.4g} for {bf['gof_ndf']} degrees of freedom") in md
+            f"χ² = {bf['gof_chi2']:.1f} for {bf['gof_ndf']} degrees of freedom") in md
 
     # spectrum.json: every bin overlapping the window is empty, and the file says why
     h = MassHistogram.load(out / "spectrum.json")

@@ -255,6 +255,14 @@ def test_combined_report_and_summary_carry_every_channel_warning(combined):
             if w["topic"] != "signal_model":  # those have their own summary line
                 assert f"  WARNING: {name}: {w['message']}" in summary
     assert any(w["topic"] == "fit" for w in d["channels"]["dielectron"]["warnings"])
+    # results.json's own top-level warnings hold them too (a reader of the file alone), and
+    # the report is headed by the run label, as a search's (the config's [run] name)
+    assert {(w["topic"], w["message"]) for w in d["warnings"]} >= {
+        (w["topic"], f"{n}: {w['message']}") for n, r in d["channels"].items()
+        for w in r["warnings"]}
+    run = d["channels"]["dimuon"]["config"]["run"]["name"]
+    md = (out / "report.md").read_text()
+    assert md.splitlines()[2].startswith(run)
 
 
 @pytest.mark.slow

@@ -8,12 +8,15 @@ numpy scalars, strings -- and returns text; a missing or non-finite number is ``
 * :func:`as_finite`     -- a finite float or None (the test every other function makes).
 * :func:`number`        -- a plain number (4 significant digits; ints with a thousands mark).
 * :func:`fixed`         -- a fixed number of decimals (Z, shifts).
+* :func:`chi_square`    -- a goodness-of-fit chi-square, one decimal (one rule everywhere).
 * :func:`mass_text`     -- a mass: two decimals from 10 up, five significant digits below
   (a hypothesis at 1.0194 GeV, not 1.02).
 * :func:`format_pm`     -- ``value ± error``, the error rounded to two significant digits,
   thousands marked like the counts' (:func:`pm_parts`: the same as two texts, for aligned
   tables).
-* :func:`format_interval` -- ``value +upper -lower`` for a profile-likelihood interval.
+* :func:`format_interval` -- ``value +upper -lower`` for a profile-likelihood interval, an
+  end on the parameter's bound or not found written ``?`` with the reason
+  (:func:`fit_interval_text`: the same from a fit's results.json entry).
 * :func:`p_value`       -- a p-value; below the smallest normal double (2.2e-308), where the
   float is 0, it is written as a power of ten from its ``log10_p``: ``10^-2173.9``.
 * :func:`significance`  -- ``Z sigma (p = ...)`` for the local or the global result of a
@@ -29,8 +32,9 @@ from typing import Any
 
 from ._json import finite
 
-__all__ = ["NA", "as_finite", "fixed", "format_interval", "format_pm", "mass_text", "no_best",
-           "number", "p_value", "pm_parts", "significance"]
+__all__ = ["NA", "as_finite", "chi_square", "fit_interval_text", "fixed", "format_interval",
+           "format_pm", "interval_at_bounds", "mass_text", "no_best", "number", "p_value",
+           "pm_parts", "significance", "value_decimals"]
 
 #: what every function prints for a missing or non-finite number
 NA = "n/a"
@@ -73,6 +77,12 @@ def fixed(x: Any, decimals: int = 2, *, signed: bool = False) -> str:
     return f"{v:+.{decimals}f}" if signed else f"{v:.{decimals}f}"
 
 
+def chi_square(x: Any) -> str:
+    """A goodness-of-fit chi-square: one decimal everywhere (``81.97`` -> ``82.0`` in the
+    summary, the report, the figures and the reprs alike), or ``"n/a"``."""
+    return fixed(x, 1)
+
+
 def mass_text(x: Any) -> str:
     """A mass (a hypothesis, a best point): two decimals from 10 up (152.62), five significant
     digits below (1.0194, 0.49761), at most six decimals, or ``"n/a"``."""
@@ -112,7 +122,17 @@ def format_pm(value: Any, error: Any, unit: str = "") -> str:
         return f"{number(v)}{u}"
     dec = max(0, 1 - math.floor(math.log10(e)))
     # thousands marked as in number()'s counts: 1,053 ± 32 beside 1,053 candidates
-    return f"{v:,.{dec}f} \u00b1 {e:,.{dec}f}{u}"
+    return f"{v:,.{value_decimals(v, e)}f} \u00b1 {e:,.{dec}f}{u}"
+
+
+def value_decimals(value: float, error: float) -> int:
+    """Decimals of a value quoted with ``error`` (finite, > 0): those of the error rounded
+    to two significant digits (common practice), but at least three significant digits
+    of a value smaller than its error (a width of 0.127 +- 6848 read "0 +- 6848")."""
+    dec = max(0, 1 - math.floor(math.log10(error)))
+    if value != 0 and abs(value) < error:
+        dec = max(dec, 2 - math.floor(math.log10(abs(value))))
+    return dec
 
 
 def pm_parts(value: Any, error: Any) -> tuple[str, str]:
@@ -168,21 +188,79 @@ def significance(best: Mapping[str, Any] | None, which: str = "local", *,
     return f"{ztxt} ({inner})"
 
 
-def format_interval(value: Any, lower: Any, upper: Any, unit: str = "") -> str:
+def interval_at_bounds(centre: Any, lower: Any, upper: Any, bounds: Any
+                       ) -> tuple[bool, bool]:
+    """Whether the lower and the upper end of a profile-likelihood interval (``centre +
+    lower``, ``centre + upper``) lie on the parameter's ``bounds`` ``(lo, hi)``: where the
+    profile had not risen by 1/2 in -ln L before the bound, the minimiser stops there and
+    reports the distance to it, which is no error (None or non-finite bounds: never)."""
+    c = as_finite(centre)
+    try:
+        lo, hi = (as_finite(b) for b in bounds)
+    except (TypeError, ValueError):
+        return False, False
+
+    def on(end: Any, b: float | None) -> bool:
+        e = as_finite(end)
+        return (c is not None and e is not None and b is not None
+                and abs(c + e - b) <= 1e-9 * max(1.0, abs(b)))
+
+    return on(lower, lo), on(upper, hi)
+
+
+def format_interval(value: Any, lower: Any, upper: Any, unit: str = "", *,
+                    bounds: Any = None, centre: Any = None, short: bool = False,
+                    label: str = "") -> str:
     """``value +upper -|lower|`` for an asymmetric (profile-likelihood) interval, rounded to
     two significant digits of the smaller of the two errors (common practice), e.g.
-    ``152.24 +0.50 -0.55 GeV``.  Without a usable interval: the value alone."""
+    ``152.24 +0.50 -0.55 GeV``.  Without a usable interval: the value alone.
+
+    An end that is not known reads ``?`` with the reason after the unit: one that lies on
+    the parameter's ``bounds`` (``(lo, hi)``, the fitted parameter's value ``centre``,
+    default ``value``; :func:`interval_at_bounds`) -- ``198.61 +? -0.46 GeV (upper end at
+    the bound 200)`` -- or one the minimiser did not find or validate (None, NaN: ``no valid
+    upper end``); ``short`` (a figure's table): the reason as ``(bound 200)``, ``(not
+    valid)``; ``label``: what the interval is, first in the same parentheses
+    (``(profile-likelihood interval; upper end at the bound 200)``)."""
     u = f" {unit}" if unit else ""
     v = as_finite(value)
     if v is None:
         return NA
-    errs = [abs(x) for x in (as_finite(lower), as_finite(upper)) if x]
-    if not errs:
-        return f"{number(v)}{u}"
-    dec = max(0, 1 - math.floor(math.log10(min(errs))))
+    at_lo, at_hi = interval_at_bounds(v if centre is None else centre, lower, upper,
+                                      bounds if bounds is not None else (None, None))
+    ends = {"lower": (lower, at_lo), "upper": (upper, at_hi)}
+    errs = [abs(f) for x, at in ends.values() if not at and (f := as_finite(x))]
+    if not (at_lo or at_hi or errs):
+        return f"{number(v)}{u}"  # no usable interval at all: the value alone (no label)
+    dec = max(0, 1 - math.floor(math.log10(min(errs)))) if errs else None
 
-    def side(x: Any) -> str:
+    def side(name: str) -> str:
+        x, at = ends[name]
         f = as_finite(x)
-        return NA if f is None else f"{abs(f):,.{dec}f}"
+        return "?" if at or f is None or dec is None else f"{abs(f):,.{dec}f}"
 
-    return f"{v:,.{dec}f} +{side(upper)} -{side(lower)}{u}"
+    why = []
+    for name, (x, at) in ends.items():
+        if at:
+            b = as_finite(bounds[0 if name == "lower" else 1])
+            why.append(f"bound {number(b)}" if short else
+                       f"{name} end at the bound {number(b)}")
+        elif as_finite(x) is None:
+            why.append("not valid" if short else f"no valid {name} end")
+    why = [label, *why] if label else why
+    tail = f" ({'; '.join(why)})" if why else ""
+    vtext = f"{v:,.{value_decimals(v, min(errs))}f}" if dec is not None else number(v)
+    return f"{vtext} +{side('upper')} -{side('lower')}{u}{tail}"
+
+
+def fit_interval_text(fit: Mapping[str, Any], key: str, par: str, unit: str = "",
+                      label: str = "") -> str:
+    """The profile-likelihood interval of parameter ``par`` of a fit's results.json entry
+    (``FitResult.to_dict``) around its ``key`` value (``peak_mass``, ``width``, ...), ends
+    on the parameter's bounds marked (:func:`format_interval`)."""
+    iv = (fit.get("intervals") or {}).get(par) or (None, None)
+    p = (fit.get("parameters") or {}).get(par) or {}
+    entry = fit.get(key)
+    value = entry.get("value") if isinstance(entry, Mapping) else entry
+    return format_interval(value, iv[0], iv[1], unit, bounds=p.get("bounds"),
+                           centre=p.get("value", value), label=label)

@@ -5,10 +5,12 @@
   the legend; :func:`value_table_height` -- its height before it is drawn.
 * :func:`touched` -- how many data points, error bars or curve samples a legend or a table
   covers, measured on the figure's renderer: the fit figure and the legends use it to choose
-  a corner (and, when neither is free, to raise the y axis).
+  a corner (and, when neither is free, to raise the y axis); :func:`line_segments` -- a
+  drawn curve as such segments, so a line passing through a box counts where no sample of
+  it lies inside.
 
-Drawn in the figure style of :mod:`peaksift._style` (its colours, text measure and point
-transform); nothing here imports pyplot.
+Drawn in the figure style of :mod:`peaksift._style` (its colours), with the text measure
+and point transform of :mod:`peaksift._annotations`; nothing here imports pyplot.
 """
 
 from __future__ import annotations
@@ -16,9 +18,10 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
-from ._style import COLORS, points_at, text_width
+from ._annotations import points_at, text_width
+from ._style import COLORS
 
-__all__ = ["touched", "value_table", "value_table_height"]
+__all__ = ["line_segments", "touched", "value_table", "value_table_height"]
 
 #: the table's font size in points (its rows are 1.55 of it apart)
 _TABLE_FONT = 8.8
@@ -47,6 +50,28 @@ def touched(ax: Any, artist: Any, x: Any, lo: Any, hi: Any, pad: float = 3.0) ->
     bottom, top = np.minimum(a[:, 1], b[:, 1]), np.maximum(a[:, 1], b[:, 1])
     inside_y = (top >= box.y0 - pad) & (bottom <= box.y1 + pad)
     return int(np.count_nonzero(ok & inside_x & inside_y))
+
+
+def line_segments(x: Any, y: Any, *, log: bool = False, pieces: int = 8) -> tuple[Any, Any, Any]:
+    """The polyline through ``(x, y)`` as drawn (straight between samples in ``log10 y`` on
+    a log axis) as vertical segments ``(x, lo, hi)`` for :func:`touched`: each step cut in
+    ``pieces`` in x, each piece the segment over its y range at its middle.  A near-vertical
+    step (a p-value falling by hundreds of decades between two masses) is covered over its
+    whole height, where samples alone leave it between two points far apart."""
+    import numpy as np
+
+    x, y = np.asarray(x, float), np.asarray(y, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        v = np.log10(np.where(y > 0, y, np.nan)) if log else y
+    t = np.linspace(0.0, 1.0, pieces + 1)
+    xs = x[:-1, None] + (x[1:] - x[:-1])[:, None] * t  # (steps, pieces + 1)
+    vs = v[:-1, None] + (v[1:] - v[:-1])[:, None] * t
+    mid = 0.5 * (xs[:, 1:] + xs[:, :-1]).ravel()
+    lo = np.minimum(vs[:, 1:], vs[:, :-1]).ravel()
+    hi = np.maximum(vs[:, 1:], vs[:, :-1]).ravel()
+    if log:
+        lo, hi = 10.0 ** lo, 10.0 ** hi
+    return mid, lo, hi
 
 
 def value_table(ax: Any, rows: Sequence[tuple[str, str, str, str]], *, caption: str = "",

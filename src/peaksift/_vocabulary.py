@@ -67,6 +67,7 @@ FITS: dict[str, tuple[str, str]] = {
     "scan": ("scan", "best mass, significances, limits"),
     "free_fit": ("free fit", "fitted mass, width and yields"),
     "calibration": ("calibration fit", "the standard candle's mass and width"),
+    "background_only": ("background-only fit", "the background without a signal"),
 }
 
 
@@ -83,7 +84,9 @@ def model_text(fit: str, signal: str | Sequence[str], background: str, *,
                          f"{', '.join(map(repr, FITS))}")
     label, what = FITS[fit]
     sig = signal if isinstance(signal, str) else " + ".join(signal)
-    text = f"{label}: {sig} + {background}"
+    # (a background-only fit holds its signal at zero: its model is the background's)
+    text = f"{label}: {background}" if fit == "background_only" else \
+        f"{label}: {sig} + {background}"
     if envelope:
         text += f"; with systematics {sig} + the envelope of {', '.join(envelope)}"
     return text + (f" ({what})" if gives else "")

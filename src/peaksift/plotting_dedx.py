@@ -12,7 +12,8 @@ from typing import Any
 
 import numpy as np
 
-from ._style import COLORS, draw_header, figure_style, margins, new_figure
+from ._annotations import draw_header
+from ._style import COLORS, figure_style, margins, new_figure
 from .plotting import save
 
 __all__ = ["dedx_figure", "draw_dedx"]
@@ -25,18 +26,21 @@ _HYPOTHESIS_COLORS = {"pion": COLORS["total"], "kaon": COLORS["signal"],
 
 def dedx_figure(outcome: Any, outdir: str | os.PathLike[str], *,
                 formats: Sequence[str] = ("png", "pdf"), hypotheses: Sequence[str] = (),
-                band: float = 3.0) -> Path:
+                band: float = 3.0, run: Any = None) -> Path:
     """:func:`draw_dedx` saved as ``dedx`` in ``outdir``."""
-    return save(draw_dedx(outcome, hypotheses=hypotheses, band=band), outdir, "dedx", formats)
+    return save(draw_dedx(outcome, hypotheses=hypotheses, band=band, run=run), outdir, "dedx",
+                formats)
 
 
-def draw_dedx(outcome: Any, *, hypotheses: Sequence[str] = (), band: float = 3.0) -> Any:
+def draw_dedx(outcome: Any, *, hypotheses: Sequence[str] = (), band: float = 3.0,
+              run: Any = None) -> Any:
     """dE/dx against momentum: the tracks' density (log momentum axis), the expected curve of
     every mass hypothesis, and the ±``band`` sigma selection band of the pairing hypotheses.
 
     ``outcome`` holds ``p_edges``, ``dedx_edges``, ``counts`` (momentum x dE/dx) and the
     ``response`` (:class:`peaksift.energy_loss.DedxResponse`) the pairing used.  The band is
-    drawn with the resolution at the reference number of samples.
+    drawn with the resolution at the reference number of samples; ``run`` (a run label) heads
+    it as every figure of the run.
     """
     from matplotlib.colors import LinearSegmentedColormap, LogNorm
 
@@ -79,6 +83,6 @@ def draw_dedx(outcome: Any, *, hypotheses: Sequence[str] = (), band: float = 3.0
         ax.set_xlabel("momentum p [GeV]")
         ax.set_ylabel(f"measured dE/dx (field '{r.field}', detector units)")
         ax.legend(loc="upper right", ncol=1)
-        draw_header(ax, None, (f"{r.material.name}: scale {r.scale:.4g}, "
+        draw_header(ax, run, (f"{r.material.name}: scale {r.scale:.4g}, "
                                f"\u03c3/\u27e8dE/dx\u27e9 {r.resolution:.3g}"))
     return fig

@@ -65,6 +65,7 @@ __all__ = [
     "format_pm",
     "render_html",
     "render_markdown",
+    "run_line",
     "write_report",
     "write_results_json",
 ]
@@ -112,7 +113,7 @@ def _title(r: Mapping[str, Any]) -> str:
         f"Resonance search in {chs}{a} pairs"
 
 
-def _run_line(r: Mapping[str, Any]) -> str:
+def run_line(r: Mapping[str, Any]) -> str:
     """The run label of the figures, as text: name, sqrt(s), L, channel."""
     cfg = r.get("config") or {}
     run = cfg.get("run") or {}
@@ -125,7 +126,7 @@ def _run_line(r: Mapping[str, Any]) -> str:
 
 def _blocks(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     out: list[Block] = [("h1", _title(r))]
-    run = _run_line(r)
+    run = run_line(r)
     if run:
         out.append(("p", run))
     out.append(("caution", CAUTION))
@@ -232,7 +233,7 @@ def render_html(results: Mapping[str, Any], figures: Mapping[str, str | os.PathL
                 | None = None) -> str:
     """The meeting report as one self-contained HTML page (figures embedded as base64 PNG)."""
     fig = dict(figures or {})
-    return blocks_html(_title(results), _blocks(results, fig), fig, _run_line(results))
+    return blocks_html(_title(results), _blocks(results, fig), fig, run_line(results))
 
 
 def blocks_html(title: str, blocks: Sequence[Block],

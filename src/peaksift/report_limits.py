@@ -97,6 +97,19 @@ def limit_assumptions(r: Mapping[str, Any]) -> str:
             "limit on the signal yield divided by L \u00d7 \u03b5.")
 
 
+def _which_limits(r: Mapping[str, Any]) -> str:
+    """With [systematics], which limits these are: results.json ``limits`` carry the
+    luminosity and efficiency uncertainties only, while the Result quotes those with every
+    systematic (``systematics.limits``): said, so that nobody copies the wrong table."""
+    sy = r.get("systematics")
+    if not (isinstance(sy, Mapping) and isinstance(sy.get("limits"), Mapping)
+            and sy["limits"].get("with_systematics")):
+        return ""
+    return (" These are the plain limits, with the luminosity and efficiency uncertainties "
+            "only; the limits with every systematic profiled, which the Result quotes, are "
+            "in the Background model section's table.")
+
+
 def section_limits(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
     """Every limit point with its bands, the assumptions, the notes and the figure."""
     head, rows = _limit_rows(r)
@@ -109,7 +122,8 @@ def section_limits(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:
               f"({method_words(str(lim.get('method', 'asymptotic')))}) "
               f"at all {len(rows)} mass points, unit {lim.get('unit', 'events')}; the "
               "expected limit is the median under the background-only hypothesis and "
-              "\u00b11\u03c3/\u00b12\u03c3 the edges of its 68%/95% band.")),
+              "\u00b11\u03c3/\u00b12\u03c3 the edges of its 68%/95% band."
+              + _which_limits(r))),
         ("p", limit_assumptions(r)),
         *figure_block(fig, "limits", caption_for("limits", r)),
         ("table", head, rows)]

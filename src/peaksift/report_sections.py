@@ -24,8 +24,9 @@ from typing import Any
 
 from ._format import (
     as_finite,
+    chi_square,
+    fit_interval_text,
     fixed,
-    format_interval,
     format_pm,
     mass_text,
     number,
@@ -139,7 +140,7 @@ def fitted_text(fit: Mapping[str, Any], key: str, unit: str = "") -> str:
     iv = (fit.get("intervals") or {}).get(par)
     value, error = value_error(fit.get(key))
     if iv:
-        return format_interval(value, *iv, unit)
+        return fit_interval_text(fit, key, par, unit)
     return format_pm(value, error, unit)
 
 
@@ -154,9 +155,8 @@ def _with_intervals(rows: list[tuple[str, str]], fit: Mapping[str, Any]) -> None
     for i, (label, _) in enumerate(rows):
         if label in which and which[label][1] in iv:
             key, par, unit = which[label]
-            lo, hi = iv[par]
-            rows[i] = (label, format_interval(value_error(fit.get(key))[0], lo, hi, unit)
-                       + " (profile-likelihood interval)")
+            rows[i] = (label, fit_interval_text(fit, key, par, unit,
+                                                label="profile-likelihood interval"))
     text = fit_settings_text(fit.get("settings") or {})
     if text:
         at = next((i for i, (label, _) in enumerate(rows) if label == "Signal yield"),
@@ -286,7 +286,7 @@ def gof_text(gof: Mapping[str, Any]) -> str:
     if not gof or gof.get("chi2") is None:  # no fit (blinded) or no goodness of fit
         return "n/a"
     ndf = gof.get("ndf")
-    return (f"\u03c7\u00b2 = {num_text(gof.get('chi2'))} for "
+    return (f"\u03c7\u00b2 = {chi_square(gof.get('chi2'))} for "
             f"{'n/a' if ndf is None else ndf} degrees of freedom "
             f"(p = {p_value(gof.get('p_value'))})")
 
@@ -337,10 +337,26 @@ def _lee_plain(r: Mapping[str, Any]) -> str:
         text += (f" The upcrossing method counts how often background-only scans cross a low "
                  f"level (u0 = {num_text(best.get('u0'), 3)} in q0, about "
                  f"{fixed(math.sqrt(max(float(best.get('u0') or 0), 0)), 1)} \u03c3): "
-                 f"N0 = {num_text(best['N0'], 3)} crossings per scan on average; that number, "
-                 f"scaled to the observed height of the excess, estimates how many "
-                 f"independent places the scan could have found one.")
+                 f"N0 = {num_text(best['N0'], 3)} crossings per scan on average; scaled to "
+                 f"the observed height of the excess (N0 exp(-(q0 - u0)/2), Gross and Vitells "
+                 f"2010), it is the expected number of up-crossings of that height (at small "
+                 f"values the chance that the scan crosses it), which added to the local "
+                 f"p-value gives the global one.")
+    trials = _trials_factor(best)
+    if trials is not None:
+        text += (f" The global p-value is {num_text(trials, 2)} times the local one: the "
+                 f"scan's effective number of independent tries.")
     return text
+
+
+def _trials_factor(best: Mapping[str, Any]) -> float | None:
+    """p_global / p_local (from the log10 values where the p-values underflow), or None."""
+    lg, ll = best.get("log10_p_global"), best.get("log10_p_local")
+    try:
+        f = 10.0 ** (float(lg) - float(ll))
+    except (TypeError, ValueError, OverflowError):
+        return None
+    return f if math.isfinite(f) and f >= 1.0 else None
 
 
 def section_result(r: Mapping[str, Any], fig: Mapping[str, Any]) -> list[Block]:

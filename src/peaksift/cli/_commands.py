@@ -127,8 +127,9 @@ def _cmd_spectrum(args: argparse.Namespace) -> int:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from .._format import format_interval
+    from .._format import fit_interval_text
     from ..search import FIT_FILES, run_fit
+    from ..search.doubts import fit_doubts
 
     _imports_done()
 
@@ -139,13 +140,20 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     print(_row("mass", f"held at {args.mass:g} GeV" if args.hold_mass
                else f"started at {args.mass:g} GeV"))
     fit = fr.to_dict()
+    if not fr.valid:  # as the search's summary says it (README: the "fit status" line)
+        print(_row("fit status", "INVALID: " + "; ".join(fr.problems)))
     for label, key, par, unit in (("fitted mass", "peak_mass", "mass", "GeV"),
                                   (f"fitted width ({fr.width_parameter})", "width",
                                    fr.width_parameter, "GeV"),
                                   ("signal yield", "signal_yield", "signal_yield", "")):
         if fr.intervals and par in fr.intervals:
-            print(_row(label, format_interval(fit[key]["value"], *fr.intervals[par], unit)
-                       + "  (profile likelihood)"))
+            print(_row(label, fit_interval_text(fit, key, par, unit,
+                                                label="profile likelihood")))
+    started = f"at the given mass {args.mass:g} GeV" + (" (held there)" if args.hold_mass
+                                                          else "")
+    for w in fit_doubts(fit, started):  # the invalid fit has its status line above
+        if w["topic"] != "fit":
+            print(f"  WARNING: {w['message']}")
     if args.out is not None:
         for name in FIT_FILES:
             print(_row("written", str(Path(args.out) / name)))

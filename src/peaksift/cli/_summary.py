@@ -3,6 +3,7 @@ prints): every number through :mod:`peaksift._format`, one ``WARNING`` line per 
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
@@ -33,7 +34,15 @@ def _summary(result: object) -> str:
 def _summary_text(d: Mapping[str, Any]) -> str:
     """:func:`_summary` from the results dictionary; every number goes through
     :mod:`peaksift._format`, so a missing, NaN or infinite value prints ``n/a``."""
-    from .._format import fixed, format_pm, mass_text, number, p_value, significance
+    from .._format import (
+        chi_square,
+        fixed,
+        format_pm,
+        mass_text,
+        number,
+        p_value,
+        significance,
+    )
     from ..report_sections import models_text
 
     def part(m: Any, key: str) -> Mapping[str, Any]:
@@ -56,7 +65,7 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         if sb.get("kind") == "sideband_fit":
             by = sb.get("blinded_yield") or {}
             lines.append(_row("background (sidebands)",
-                              f"chi2/ndf = {fixed(sb.get('gof_chi2'), 1)}/{sb.get('gof_ndf')} "
+                              f"chi2/ndf = {chi_square(sb.get('gof_chi2'))}/{sb.get('gof_ndf')} "
                               f"(p = {p_value(sb.get('gof_p_value'))}); "
                               f"{format_pm(by.get('value'), by.get('error'))} expected in the "
                               "blinded window"))
@@ -83,6 +92,8 @@ def _summary_text(d: Mapping[str, Any]) -> str:
             lines.append(_row("background envelope", ", ".join(env.get("labels") or [])
                               + f" (at the best mass: {part(env, 'best').get('function')})"))
         lines += _limit_lines(part(syst, "limits"), best.get("mass"))
+    else:
+        lines += _limit_lines({"without_systematics": d.get("limits")}, best.get("mass"))
     if not fit.get("valid") and not blinded:
         lines.append(_row("fit status", "INVALID: " + "; ".join(
             str(x) for x in fit.get("problems") or [])))
@@ -96,9 +107,9 @@ def _summary_text(d: Mapping[str, Any]) -> str:
         fm = part(cal, "fitted_mass")
         lines.append(_row(f"calibration {cal.get('particle')}",
                           f"{format_pm(fm.get('value'), fm.get('error'), 'GeV')} vs tables "
-                          f"{fixed(cal.get('table_mass'), 4)} GeV (shift "
-                          f"{fixed(cal.get('shift_relative_permille'), 1, signed=True)} "
-                          "per mille)"))
+                          f"{fixed(cal.get('table_mass'), _decimals(fm.get('error')))} GeV "
+                          f"(shift {_two_digits(cal.get('shift_relative_permille'))} per mille, "
+                          f"{fixed(cal.get('shift_sigma'), 1, signed=True)} sigma)"))
     if blinded:
         lines.append(_row("blinding", "ACTIVE (data in the blinded window hidden)"))
     lim = d.get("limits") or {}
@@ -118,6 +129,30 @@ def _summary_text(d: Mapping[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _decimals(error: Any) -> int:
+    """The decimals :func:`~peaksift._format.format_pm` gives a value of this error (two
+    significant digits of the error; 4 without one): the tables' mass beside the fitted
+    one at the same precision."""
+    try:
+        e = float(error)
+    except (TypeError, ValueError):
+        return 4
+    return max(0, 1 - math.floor(math.log10(e))) if math.isfinite(e) and e > 0 else 4
+
+
+def _two_digits(x: Any) -> str:
+    """A signed number to two significant digits, trailing zeros kept (-1.0, -0.050)."""
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return "n/a"
+    if not math.isfinite(v):
+        return "n/a"
+    if v == 0:
+        return "0.0"
+    return f"{v:+.{max(0, 1 - math.floor(math.log10(abs(v))))}f}"
+
+
 def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
     """The fitted mass with the mass scale profiled (``systematics.fitted_mass``)."""
     from .._format import fixed
@@ -131,13 +166,16 @@ def _scaled_mass(fm: Mapping[str, Any]) -> list[str]:
 
 
 def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
-    """The observed limit at the limit mass nearest ``mass``, with and without systematics."""
+    """The observed limit at the limit mass nearest ``mass``, with and without systematics
+    (without only, when the run has no systematics)."""
     from .._format import fixed
 
     w, wo = lim.get("with_systematics"), lim.get("without_systematics")
-    if not isinstance(w, Mapping) or not isinstance(wo, Mapping) or not w.get("masses"):
+    if not isinstance(wo, Mapping) or not wo.get("masses"):
         return []
-    ms = [float("inf") if m is None else float(m) for m in w["masses"]]
+    if w is not None and (not isinstance(w, Mapping) or not w.get("masses")):
+        return []
+    ms = [float("inf") if m is None else float(m) for m in (w or wo)["masses"]]
     try:
         i = min(range(len(ms)), key=lambda j: abs(ms[j] - float(mass)))
     except (TypeError, ValueError):
@@ -147,6 +185,8 @@ def _limit_lines(lim: Mapping[str, Any], mass: Any) -> list[str]:
         return (f"{fixed((d.get('observed') or [None] * (i + 1))[i])} observed, "
                 f"{fixed((d.get('expected') or [None] * (i + 1))[i])} expected")
 
+    if w is None:
+        return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(wo)} {wo.get('unit')}")]
     return [_row(f"limit at {fixed(ms[i])} GeV", f"{pair(w)} {w.get('unit')} with "
                  f"systematics ({pair(wo)} without)")]
 
@@ -163,7 +203,7 @@ def _fit_lines(lines: list[str], fit: dict) -> None:
     """Give the fitted mass, width and yield lines their profile-likelihood intervals
     (``152.24 +0.50 -0.55 GeV``) where the fit has them, and say what the fit held or
     constrained."""
-    from .._format import format_interval
+    from .._format import fit_interval_text
     from ..report import fit_settings_text
 
     iv = fit.get("intervals") or {}
@@ -174,8 +214,7 @@ def _fit_lines(lines: list[str], fit: dict) -> None:
     for i, line in enumerate(lines):
         for label, (key, par, unit) in rows.items():
             if line.startswith(_row(label, "")) and par in iv:
-                value = (fit.get(key) or {}).get("value")
-                lines[i] = _row(label, format_interval(value, *iv[par], unit))
+                lines[i] = _row(label, fit_interval_text(fit, key, par, unit))
     held = fit_settings_text(fit.get("settings") or {})
     if held:
         at = next((i for i, ln in enumerate(lines) if ln.startswith(_row("signal yield", ""))),

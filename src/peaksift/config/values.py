@@ -1,10 +1,11 @@
-"""Checking one value against its schema key: types, ranges, windows, parameter settings."""
+"""Checking one value against its schema key: types, ranges, windows, parameter settings, paths."""
 
 from __future__ import annotations
 
 import itertools
 import math
 from collections.abc import Mapping
+from pathlib import Path
 from typing import Any
 
 from ..errors import ConfigError, FitError, closest
@@ -14,6 +15,13 @@ from .schema import _Key
 # ----------------------------------------------------------------------------- validation
 def _where(source: str) -> str:
     return f"config {source}" if source != "<dict>" else "config"
+
+
+def config_path(path: str, base_dir: Path) -> str:
+    """A path as a config gives it: ``~`` expanded, relative to the config's directory
+    ``base_dir`` unless absolute."""
+    p = Path(path).expanduser()
+    return str(p if p.is_absolute() else base_dir / p)
 
 
 def _type_name(v: Any) -> str:

@@ -112,15 +112,19 @@ def check_support(model: Model, values: np.ndarray, is_fixed: np.ndarray | None 
 
 def tie_rows(tied: Mapping[str, Any] | None, names: list[str], fixed: Mapping[str, float],
              constraints: Mapping[str, Any]) -> list[tuple[int, int, Any]]:
-    """``tied`` (name -> :class:`peaksift.likelihood.Tie`) checked, as ``(target index,
+    """``tied`` (name -> :class:`peaksift.likelihood.Tie`, or a :class:`peaksift.Resolution`
+    for the peak's ``sigma``: tied to it at the fitted mass) checked, as ``(target index,
     source index, Tie)``."""
-    from ..likelihood import Tie
+    from ..likelihood import Tie, resolution_tie
+    from ..resolution import Resolution
 
     out = []
-    for key, tie in dict(tied or {}).items():
+    tied = {key: resolution_tie(tie, key) if isinstance(tie, Resolution) else tie
+            for key, tie in dict(tied or {}).items()}
+    for key, tie in tied.items():
         if not isinstance(tie, Tie):
-            raise FitError(f"tied: {key!r} must map to a peaksift.likelihood.Tie, got "
-                           f"{type(tie).__name__}")
+            raise FitError(f"tied: {key!r} must map to a peaksift.likelihood.Tie or (for the "
+                           f"peak's sigma) a peaksift.Resolution, got {type(tie).__name__}")
         for what in (tie.target, tie.source):
             if what not in names:
                 raise FitError(f"tied: unknown parameter {what!r}; parameters are "
@@ -131,7 +135,7 @@ def tie_rows(tied: Mapping[str, Any] | None, names: list[str], fixed: Mapping[st
         if tie.target in fixed or tie.target in constraints:
             raise FitError(f"tied: {tie.target!r} is also fixed or constrained; give it one "
                            "treatment")
-        if tie.source in dict(tied or {}):
+        if tie.source in tied:
             raise FitError(f"tied: {tie.source!r} is tied itself; tie {tie.target!r} to a "
                            "free or fixed parameter")
         out.append((names.index(tie.target), names.index(tie.source), tie))
@@ -155,11 +159,13 @@ LOWER_MINIMUM_NOTE = 0.1
 def note_lower_minimum(fr: Any, superseded: float | None) -> Any:
     """``fr`` (a FitResult) with a note when a later start went below an earlier valid
     minimum of NLL ``superseded`` by more than ``LOWER_MINIMUM_NOTE`` in -2 ln L."""
-    import dataclasses
-
-    gap = math.nan if superseded is None else 2.0 * (superseded - float(fr.nll))
+    if superseded is None:
+        return fr
+    gap = 2.0 * (superseded - float(fr.nll))
     if not gap > LOWER_MINIMUM_NOTE:
         return fr
+    import dataclasses
+
     return dataclasses.replace(fr, notes=(*fr.notes, (
         f"a later start found a lower minimum than an earlier valid one (-2 ln L lower by "
         f"{gap:.3g}); the lowest is kept")))

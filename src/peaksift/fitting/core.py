@@ -19,9 +19,11 @@ from typing import Any
 
 import numpy as np
 
+from ..errors import FitError
 from ..likelihood import Minimum, NearMinimum, minimize, refine
 from ..likelihood.starts import fit_starts
 from .checks import note_lower_minimum
+from .elsewhere import given_masses, with_lower_minimum
 from .outcome import problems_at, result_of
 from .polish import continue_invalid, is_invalid
 from .restarts import restart_points
@@ -163,6 +165,7 @@ def fit(
     superseded = None  # NLL of the first valid minimum a later start went below
     first: list[np.ndarray] = []  # the first start (its widths start a Crystal Ball's core)
     n_starts: list[int] = []  # how many starts were tried before the restarts
+    valid_best: list = []  # the best minimum the restarts found valid (none to continue)
 
     def restarts():
         """Starts of another kind from an invalid best minimum (:mod:`.restarts`), made
@@ -170,7 +173,10 @@ def fit(
         take an invalid minimum further: their evaluations count in ``n_calls``, but they
         are not starts of ``starts_tried`` / ``starts_nll`` (the start finder's)."""
         n_starts.append(len(tried))
-        if best is None or best[1] is None or not is_invalid(best, floors, free_idx):
+        if best is None or best[1] is None:
+            return
+        if not is_invalid(best, floors, free_idx):
+            valid_best.append(best)
             return
         for s in restart_points(model, np.asarray(best[4], float), best[6],
                                 first[0] if first else None, base, is_fixed, free_idx,
@@ -233,14 +239,26 @@ def fit(
                 near = [full, np.asarray(x, float), float(f), cov, None]
     if n_starts:
         del tried[n_starts[0]:]
-    best, calls = continue_invalid(best, calls, lo_f, hi_f, free_names, floors, free_idx)
+    if not (valid_best and valid_best[0] is best):  # (a valid minimum is not continued)
+        best, calls = continue_invalid(best, calls, lo_f, hi_f, free_names, floors, free_idx)
     _, mo, cost, problems, xbest, fbest, free_cov, posdef = best
     if free_cov is None:
         free_cov = np.full((nfree, nfree), np.nan)
     fr = result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo, cost,
                  problems, np.asarray(xbest, float), fbest, free_cov, posdef, intervals,
                  tuple(tried), calls, floors, scale if d.binned else None)
-    return note_lower_minimum(fr, superseded)
+    fr = note_lower_minimum(fr, superseded)
+    started = given_masses(model, start, fixed, tied) if not too_few else []
+    if started:  # a fit of the given peak: is there a lower minimum elsewhere? (.elsewhere)
+        try:
+            ref = fit(data, signal, background, window, weights=weights, binned=binned,
+                      bins=bins, start={k: v for k, v in start.items() if k not in started}
+                      or None, fixed=fixed, limits=limits, constraints=constraints,
+                      retries=retries, tied=tied)
+        except FitError:  # (cannot happen where this fit was set up; never a crash)
+            return fr
+        fr = with_lower_minimum(fr, ref)
+    return fr
 
 
 #: a start whose path comes within this squared distance (in units of the best minimum's

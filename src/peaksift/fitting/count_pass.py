@@ -98,13 +98,14 @@ def pairwise_sum(a, lo, n):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def check_and_merge(n, n2, k, merged, safe):  # pragma: no cover - compiled
+def check_and_merge(n, n2, k, merged, safe, counts):  # pragma: no cover - compiled
     """``(verdict, total)`` of the bins' sums of weights ``n`` and of squared weights
     ``n2``: the verdict :data:`OK` (every bin finite, none negative, ``n == n2``: unweighted),
     :data:`REFUSED` or :data:`WEIGHTED`; the total ``n.sum()``; and, for :data:`OK`,
-    ``safe`` the counts with 1 in empty bins (for :func:`saturated_sum`'s logarithms) and,
-    with ``k > 1``, ``merged`` the sums of ``k`` bins at a time, the last group what is
-    left (``numpy.add.reduceat`` at every ``k``-th bin, the last group's ``sum()`` anew, as
+    ``counts`` a copy of ``n`` (the fit's own: the caller's histogram may change), ``safe``
+    the counts with 1 in empty bins (for :func:`saturated_sum`'s logarithms) and, with
+    ``k > 1``, ``merged`` the sums of ``k`` bins at a time, the last group what is left
+    (``numpy.add.reduceat`` at every ``k``-th bin, the last group's ``sum()`` anew, as
     :func:`.data.start_bins` makes them)."""
     nb = n.size
     for i in range(nb):
@@ -115,7 +116,9 @@ def check_and_merge(n, n2, k, merged, safe):  # pragma: no cover - compiled
         if n[i] != n2[i]:
             return WEIGHTED, 0.0
     for i in range(nb):
-        safe[i] = n[i] if n[i] > 0.0 else 1.0
+        a = n[i]
+        counts[i] = a
+        safe[i] = a if a > 0.0 else 1.0
     total = 0.0 + pairwise_sum(n, 0, nb)  # add.reduce: its identity, then the pairwise sum
     if k > 1:
         g = merged.size

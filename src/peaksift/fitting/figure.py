@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, format_interval, number, p_value, pm_parts
+from .._format import chi_square, format_interval, number, p_value, pm_parts
 from .result import FitResult
 
 __all__ = ["fit_figure", "parameter_rows"]
@@ -47,9 +47,14 @@ def parameter_rows(result: FitResult, *, background: bool = False
     rows = []
     for n in names:
         sym, mass_unit = _SYMBOLS.get(n, (n.replace("_", " "), False))
-        if n in result.fixed:
+        if n in result.fixed and result.held(n) == "fixed":
             v, e = number(result.values[n]), "(fixed)"
-        elif n in intervals and (text := format_interval(result.values[n], *intervals[n])) \
+        elif n in result.fixed:  # tied: its value and the error carried from its source
+            v, e = pm_parts(result.values[n], result.errors[n])
+            e = f"\u00b1 {e} (tied)" if e else "(tied)"
+        elif n in intervals and (text := format_interval(result.values[n], *intervals[n],
+                                                         bounds=result.bounds[n],
+                                                         short=True)) \
                 and " +" in text:
             v, _, e = text.partition(" ")
         else:
@@ -63,7 +68,7 @@ def gof_caption(result: FitResult) -> str:
     """``χ²/ndf = 103.8/85, p = 0.077`` (Baker-Cousins); what is missing said plainly."""
     if result.gof_ndf <= 0 or not np.isfinite(result.gof_chi2):
         return r"$\chi^2$ not defined (no degrees of freedom left)"
-    return (rf"$\chi^2$/ndf = {fixed(result.gof_chi2, 1)}/{result.gof_ndf},  "
+    return (rf"$\chi^2$/ndf = {chi_square(result.gof_chi2)}/{result.gof_ndf},  "
             f"p = {p_value(result.gof_p_value)}")
 
 
@@ -121,7 +126,7 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     (saved to ``path`` if given).
 
     ``fig``: draw on this (empty) Figure instead of a new one.  ``run``: a
-    :class:`peaksift._style.RunLabel` drawn above the axes; ``note``/``title``: the figure's
+    :class:`peaksift._annotations.RunLabel` drawn above the axes; ``note``/``title``: the figure's
     statement under it.  ``symbol``: mathtext of the mass (default ``m``), e.g.
     ``m_{\\mu\\mu}``.  ``marks``: ``(mass, label, colour, linestyle)`` vertical lines drawn
     on both panels and named in the legend (the calibration's fitted and tabulated masses).
@@ -137,7 +142,8 @@ def fit_figure(result: FitResult, path: Any = None, *, title: str | None = None,
     """
     from scipy.special import gammaincinv
 
-    from .._style import COLORS, draw_header, figure_style, new_figure
+    from .._annotations import draw_header
+    from .._style import COLORS, figure_style, new_figure
     from .._value_table import value_table
     from .._vocabulary import model_text
 

@@ -9,11 +9,13 @@ from __future__ import annotations
 
 import math
 import warnings
+from types import MappingProxyType
 from typing import Any
 
 import numpy as np
 from scipy import special
 
+from .._values import Measurement
 from ..errors import FitError
 from ..likelihood import Minimum, baker_cousins_chi2, new_minuit
 from ..likelihood.minimum import bound_tolerance, distance_to_bound
@@ -96,7 +98,8 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
             if posdef:
                 free_cov = free_cov @ cost.score_outer(xbest) @ free_cov
     if free_idx.size == npar:  # every parameter free (free_idx is sorted): no scatter
-        cov = np.array(free_cov, float)
+        # (the minimum's own array, which nothing changes: the result keeps a copy)
+        cov = np.asarray(free_cov, float)
     else:
         cov = np.zeros((npar, npar))
         cov[np.ix_(free_idx, free_idx)] = free_cov
@@ -104,15 +107,22 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
         k = tie.slope(float(vals[i_s]))
         cov[i_t, :], cov[:, i_t] = k * cov[i_s, :], k * cov[:, i_s]
         cov[i_t, i_t] = k * k * cov[i_s, i_s]
-    diag = cov.diagonal()  # (np.diag's wrapper: ~2 us)
-    err = np.sqrt(np.maximum(diag, 0.0))  # np.clip(.., 0, None), without its wrapper
-    err[~np.isfinite(diag)] = np.nan
-    # as Python floats (the same values): arithmetic on numpy scalars costs ~10x more
-    xs, los, his, errs = xbest.tolist(), lower.tolist(), upper.tolist(), err.tolist()
+    # the errors sqrt(max(variance, 0)), NaN for a variance not finite, as Python floats
+    # (np.sqrt's numbers, ~4 numpy calls fewer): arithmetic on numpy scalars costs ~10x more
+    errs = [(math.sqrt(v) if v >= 0.0 else 0.0) if math.isfinite(v) else math.nan
+            for v in cov.diagonal().tolist()]
+    xs, los, his = xbest.tolist(), lower.tolist(), upper.tolist()
     vs, held = vals.tolist(), is_fixed.tolist()
+    for i, floor in floors.items():
+        # at the floor, or within one error of it: the width is not measured, the peak is a
+        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
+        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
+        # before the intervals: an invalid fit has none (their ends would read as errors)
+        if not held[i] and at_floor(vs[i], errs[i], floor):
+            problems = [*problems, _floor_problem(names[i], vs[i], errs[i], floor, d.unit)]
     asked: list[str] = []  # the intervals' notes (made now, when they are asked for)
-    ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest, err, lower,
-                       upper, problems, asked)
+    ivals = _intervals(intervals, mo, cost, names, is_fixed, free_idx, xbest,
+                       np.array(errs), lower, upper, problems, asked) if intervals else None
     sig0, sl0, iy0 = model.blocks[0]
     p0 = vs[sl0]
     i_m = sl0.start + sig0.parameter_names.index("mass")
@@ -140,12 +150,6 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                          "alike (61-64 % for mass and yield on ~5 sigma toys)")
         return tuple(notes)
 
-    for i, floor in floors.items():
-        # at the floor, or within one error of it: the width is not measured, the peak is a
-        # spike inside a bin -- a doubt the fit must carry as invalid, not a side note
-        # (a NaN error -- a singular Hessian, flagged on its own -- says nothing of the floor)
-        if not held[i] and at_floor(vs[i], errs[i], floor):
-            problems = [*problems, _floor_problem(names[i], vs[i], errs[i], floor, d.unit)]
     ge, gn, gn2 = (a.copy() if a.flags.writeable else a for a in gof_binning(d))
     mu = cost.expected_at(xbest) if d.binned and hasattr(cost, "expected_at") else None
     if mu is None:
@@ -165,6 +169,7 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
             "near_bound": any("of its bound" in n for n in notes),
             "posdef_covariance": bool(posdef),
         }
+        err = np.array(errs)
         with np.errstate(invalid="ignore", divide="ignore"):
             corr = cov / np.outer(err, err)
         corr[~np.isfinite(corr)] = 0.0
@@ -184,20 +189,29 @@ def result_of(model, d, names, base, is_fixed, free_idx, lower, upper, cons, mo,
                 "flags": flags, "bounds": {n: (los[i], his[i]) for i, n in enumerate(names)},
                 "constraints": cons, "notes": notes}
 
+    # the fields made now in the result's own form (fresh read-only mappings, the peak's
+    # numbers as Measurements: FitResult._in_parts' ``normal``), the form its __init__
+    # leaves, without copying each mapping twice more
+    m_err = errs[i_m]
+    w_val = vs[i_w] if i_w is not None else math.nan
+    w_err = errs[i_w] if i_w is not None else math.nan
     return FitResult._in_parts({
-        "parameters": tuple(names), "values": dict(zip(names, vs)),
-        "errors": dict(zip(names, errs)),
+        "parameters": tuple(names), "values": MappingProxyType(dict(zip(names, vs))),
+        "errors": MappingProxyType(dict(zip(names, errs))),
         "fixed": tuple(n for n, h in zip(names, held) if h),
-        "intervals": ivals, "nll": float(fbest), "valid": not problems,
-        "problems": problems,
+        "intervals": None if ivals is None else MappingProxyType(dict(ivals)),
+        "nll": float(fbest), "valid": not problems, "problems": problems,
         "binned": d.binned, "binned_reason": d.reason, "weighted": d.weighted,
         "weight_treatment": treatment, "window": d.window, "n_events": d.total,
-        "peak_mass": float(sig0.location(p0)), "peak_mass_error": errs[i_m],
-        "peak_width": vs[i_w] if i_w is not None else math.nan,
-        "peak_width_error": errs[i_w] if i_w is not None else math.nan,
+        "peak_mass": Measurement(float(sig0.location(p0)), m_err), "peak_mass_error": m_err,
+        "peak_width": Measurement(w_val, w_err), "peak_width_error": w_err,
         "width_parameter": wname, "gof_ndf": ndf, "model": model,
         "starts_tried": len(tried), "starts_nll": tried, "n_calls": calls, "unit": d.unit, "minimizer": "none" if mo is None else mo.method,
-        "cost": cost}, later)
+        "cost": cost, "lower_minimum": None,
+        # every signal yield held at 0: the background-only fit (named so by every output)
+        "kind": "background_only" if all(held[iy] and vs[iy] == 0.0
+                                         for _, _, iy in model.blocks[:-1]) else "free_fit"},
+        later, normal=True)
 
 
 def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, upper,
@@ -239,10 +253,22 @@ def _intervals(which, mo, cost, names, is_fixed, free_idx, xbest, err, lower, up
                     m.minos(k)
                     m.strategy = 1
                     me = m.merrors[k]
-                out[k] = (float(me.lower), float(me.upper))
+                # a side MINOS did not validate is no measurement: NaN (null in JSON,
+                # "?" in every text), its reason in the notes below
+                out[k] = (float(me.lower) if me.lower_valid else math.nan,
+                          float(me.upper) if me.upper_valid else math.nan)
+                i = names.index(k)
+                for side, at, b in (("lower", me.at_lower_limit, lower[i]),
+                                    ("upper", me.at_upper_limit, upper[i])):
+                    if at:  # MINOS stopped at the bound: the distance to it is no error
+                        notes.append(f"profile-likelihood interval of {k}: its {side} end is "
+                                     f"the bound {b:g} (-ln L has not risen by 1/2 there)")
                 if not me.is_valid:
+                    sides = [w for w, ok in (("lower", me.lower_valid),
+                                             ("upper", me.upper_valid)) if not ok] or ["both"]
                     notes.append(f"profile-likelihood interval of {k} is not valid "
-                                 f"({'lower' if not me.lower_valid else 'upper'} side)")
+                                 f"({' and '.join(sides)} side{'s' if len(sides) > 1 else ''}; "
+                                 "left out)")
             except _NUMERIC + (RuntimeError,):
                 notes.append(f"profile-likelihood interval of {k} could not be made")
     return out

@@ -20,9 +20,10 @@ from typing import Any
 import numpy as np
 
 from .. import shapes as _shapes
-from .._format import format_interval, p_value
+from .._format import chi_square, format_interval, p_value, value_decimals
 from .._json import finite as number
 from .._values import FrozenValue, Measurement
+from .._vocabulary import FITS, model_text
 from ..errors import FitError
 from ..likelihood import Model, new_minuit
 
@@ -41,13 +42,35 @@ def shape_spec(shape: Any) -> dict[str, Any]:
 
 
 def format_value(v: float, e: float) -> str:
-    """``v ± e`` rounded to two significant digits of the error."""
+    """``v ± e`` rounded to two significant digits of the error (a value smaller than its
+    error keeps three significant digits: :func:`peaksift._format.value_decimals`)."""
     if not math.isfinite(v):
         return "n/a"
     if not (math.isfinite(e) and e > 0):
         return f"{v:.6g}"
     digits = max(0, 1 - math.floor(math.log10(e)))
-    return f"{v:.{digits}f} ± {e:.{digits}f}"
+    return f"{v:.{value_decimals(v, e)}f} ± {e:.{digits}f}"
+
+
+def _plain_lower(low: Any) -> dict[str, Any] | None:
+    """``lower_minimum`` as plain JSON types (None stays None)."""
+    if low is None:
+        return None
+    out: dict[str, Any] = {}
+    for k, v in low.items():
+        if isinstance(v, (bool, str)):
+            out[k] = v
+        else:
+            out[k] = number(v)
+    return out
+
+
+def _kind(kind: Any) -> str:
+    """A fit's ``kind``, checked against :data:`peaksift._vocabulary.FITS`."""
+    if kind not in FITS or kind == "scan":
+        raise ValueError(f"kind {kind!r} is not a fit's (one of free_fit, background_only, "
+                         "calibration)")
+    return str(kind)
 
 
 def _normalised(d: dict[str, Any]) -> dict[str, Any]:
@@ -112,6 +135,17 @@ class FitResult(FrozenValue):
         var = mu * weight_sq_sum/weight_sum for weighted bins.
     bounds : mapping
         ``name -> (lower, upper)`` used in the fit.
+    kind : str
+        Which fit this is, as every output names it (a key of
+        :data:`peaksift._vocabulary.FITS`): ``"free_fit"``, ``"background_only"`` (every
+        signal yield held at 0), ``"calibration"`` (set by the search's calibration).
+    lower_minimum : mapping or None
+        For a fit whose peak mass was started by the caller (``start={"mass": M}``): the
+        lower minimum the fitter's own starts reach elsewhere in the window, when lower by
+        more than 0.1 in -2 ln L and is itself a valid fit wider than a bin -- ``mass``,
+        ``width`` (of ``width_parameter``), ``signal_yield``, ``kind`` (``"peak"`` or
+        ``"dip"``), ``delta_minus_two_ln_l`` (:mod:`peaksift.fitting.elsewhere`); None
+        otherwise.
     """
 
     parameters: tuple[str, ...]
@@ -157,17 +191,22 @@ class FitResult(FrozenValue):
     minimizer: str = "fisher-scoring"
     gof_note: str = ""
     cost: Any = field(default=None, repr=False, compare=False)
+    lower_minimum: Any = None
+    kind: str = "free_fit"
 
     def __post_init__(self) -> None:
         _normalised(self.__dict__)  # (what object.__setattr__ writes, without its call)
         super().__post_init__()
 
     @classmethod
-    def _in_parts(cls, now: dict[str, Any], later: Any) -> FitResult:
+    def _in_parts(cls, now: dict[str, Any], later: Any, normal: bool = False) -> FitResult:
         """The FitResult of the fields ``now`` and ``later()``'s (every other field), the
         latter computed at the first access of any of them (:meth:`FrozenValue._deferred`):
-        the same value as ``FitResult(**now, **later())``."""
-        return cls._deferred(_normalised(now), lambda: _normalised(later()))
+        the same value as ``FitResult(**now, **later())``.  ``normal``: ``now`` is in the
+        form the result keeps already (:func:`_normalised`'s, its mappings read-only and
+        the caller's no more: a fit's own fields), so it is only frozen."""
+        return cls._deferred(now if normal else _normalised(now),
+                             lambda: _normalised(later()))
 
     # ---------------------------------------------------------------- summary
     @property
@@ -284,6 +323,8 @@ class FitResult(FrozenValue):
             "correlations": [[number(c) for c in row] for row in self.correlations],
             "bins": {k: [number(x) for x in v] for k, v in self.bins.items()},
             "unit": self.unit,
+            "lower_minimum": _plain_lower(self.lower_minimum),
+            "kind": self.kind,
         }
 
     @classmethod
@@ -343,15 +384,24 @@ class FitResult(FrozenValue):
                 model=model, starts_tried=int(d.get("starts_tried", 1)),
                 starts_nll=tuple(val(v) for v in d.get("starts_nll", ())),
                 unit=d.get("unit", "GeV"), minimizer=d.get("minimizer", ""),
+                lower_minimum=_plain_lower(d.get("lower_minimum")),
+                kind=_kind(d.get("kind", "free_fit")),
             )
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise FitError(f"not a fit result written by FitResult.to_dict: {exc!r}") from None
 
+    def held(self, name: str) -> str:
+        """How a parameter that is not free was held: ``"tied"`` when it was computed from
+        another (its error carried from that one's, so it has one), else ``"fixed"``."""
+        e = self.errors[name]
+        return "tied" if e is not None and math.isfinite(e) and e > 0 else "fixed"
+
     # ------------------------------------------------------------------ show
     def __repr__(self) -> str:
-        head = (f"FitResult({'valid' if self.valid else 'INVALID'}; "
-                f"{' + '.join(s.name for s in self.model.signals)} + "
-                f"{self.model.background.name}, {'binned' if self.binned else 'unbinned'}, "
+        model = model_text(self.kind, [s.name for s in self.model.signals],
+                           self.model.background.name)
+        head = (f"FitResult({'valid' if self.valid else 'INVALID'}; {model}, "
+                f"{'binned' if self.binned else 'unbinned'}, "
                 f"window {self.window[0]:g}-{self.window[1]:g} {self.unit})")
         lines = [head]
         if self.problems:
@@ -360,9 +410,10 @@ class FitResult(FrozenValue):
             lines.append("  notes: " + "; ".join(self.notes))
         w = max(len(n) for n in self.parameters)
         for n in self.parameters:
-            tag = " (fixed)" if n in self.fixed else ""
+            tag = f" ({self.held(n)})" if n in self.fixed else ""
             if self.intervals and n in self.intervals:  # rounded as the summary's
-                ends = format_interval(self.values[n], *self.intervals[n]).partition(" ")[2]
+                ends = format_interval(self.values[n], *self.intervals[n],
+                                       bounds=self.bounds[n]).partition(" ")[2]
                 tag += f"  interval {ends}" if ends else ""
             lines.append(f"  {n:<{w}} = {format_value(self.values[n], self.errors[n])}{tag}")
         lines.append(f"  peak: mass {format_value(self.peak_mass, self.peak_mass_error)} "
@@ -375,7 +426,7 @@ class FitResult(FrozenValue):
         without degrees of freedom (an unbinned fit's binning may leave none, or fewer than
         none: the notebook table read 'chi2/ndf = 5.5/-1, p = n/a')."""
         if self.gof_ndf > 0 and math.isfinite(self.gof_chi2):
-            return (f"GoF (Baker-Cousins): chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
+            return (f"GoF (Baker-Cousins): chi2/ndf = {chi_square(self.gof_chi2)}/{self.gof_ndf}, "
                     f"p = {p_value(self.gof_p_value)}")
         return ("GoF: not defined (no degrees of freedom left"
                 + (", unbinned fit" if not self.binned else "") + ")")
@@ -391,7 +442,10 @@ class FitResult(FrozenValue):
             f"<tr><td>{html.escape(n)}</td><td>{parts[n][0]}</td><td>{parts[n][2]}</td>"
             f"<td>{'fixed' if n in self.fixed else ''}</td></tr>" for n in self.parameters)
         notes = ("<p>notes: " + html.escape("; ".join(self.notes)) + "</p>") if self.notes else ""
-        return (f"<div><p>Fit {status}; {'binned' if self.binned else 'unbinned'} "
+        model = model_text(self.kind, [s.name for s in self.model.signals],
+                           self.model.background.name)
+        return (f"<div><p>{html.escape(model)}; {status}; "
+                f"{'binned' if self.binned else 'unbinned'} "
                 f"({html.escape(self.binned_reason)}); {html.escape(self._gof_text())}</p>"
                 f"{notes}"
                 f"<table><tr><th>parameter</th><th>value</th><th>error</th><th></th></tr>"
@@ -402,16 +456,16 @@ class FitResult(FrozenValue):
 
     def plot(self, path: Any = None, *, fig: Any = None, title: str | None = None,
              run: Any = None, symbol: str | None = None, note: str = "",
-             log: bool = False, kind: str = "free_fit") -> Any:
+             log: bool = False, kind: str | None = None) -> Any:
         """Data, total model, signal and background, with pulls underneath and the fitted
         numbers in a table; returns a matplotlib Figure drawn without pyplot (the user's
         backend is left alone).  ``fig``: draw on this empty Figure instead; ``run``: a
         run label; ``symbol``: the mass symbol (mathtext, e.g. ``m_{\\mu\\mu}``); ``log``: a
-        logarithmic count axis; ``kind``: which fit this is (``"free_fit"``, ``"calibration"``:
-        the table's title names the model so).  See
+        logarithmic count axis; ``kind``: which fit this is (default its own ``kind``;
+        ``"free_fit"``, ``"calibration"``: the table's title names the model so).  See
         :func:`peaksift.fitting.figure.fit_figure`."""
         from .figure import fit_figure
 
         return fit_figure(self, path, title=title, fig=fig, run=run, symbol=symbol,
-                          note=note, log=log, kind=kind)
+                          note=note, log=log, kind=self.kind if kind is None else kind)
 

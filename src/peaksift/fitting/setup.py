@@ -5,8 +5,8 @@
 parameters float, the binned arrays every start's cost shares, and the bins the starting
 values are found on.  It depends only on the arguments, so :mod:`.setup_kept` keeps it
 for the common call.  Models of shapes given by name are kept (:func:`_model`): the
-shapes' own per-edges work is then kept with them.  :meth:`Setup.for_fit` gives a fit its
-own copies of what it may change; :meth:`Setup.cost_at` makes the starts' costs.
+shapes' own per-edges work is then kept with them.  :meth:`Setup.for_fit` gives a fit a kept
+setup (whose arrays are read-only); :meth:`Setup.cost_at` makes the starts' costs.
 """
 
 from __future__ import annotations
@@ -30,7 +30,8 @@ __all__ = ["Setup", "entries", "read_only", "setup_of", "yield_bounds", "yield_s
 
 @dataclass
 class Setup:
-    """The fit's data, model, bounds, starts and free parameters (see the module guide)."""
+    """The fit's data, model, bounds, starts and free parameters (see the module guide);
+    its arrays ``lower``, ``upper``, ``base`` and ``is_fixed`` are read-only."""
 
     d: FitData
     model: Model
@@ -58,12 +59,12 @@ class Setup:
     first_unused: bool = False
 
     def for_fit(self, first_unused: bool = False) -> Setup:
-        """This setup with its own copies of what a fit may change (the starting values,
-        bounds, which parameters float, the floors)."""
+        """This kept setup for one fit: its own object (``first_unused`` is the fit's) on
+        the same arrays, which a kept setup holds read-only (a fit only reads the starting
+        values, bounds and which parameters float: copies of them cost a cold fit ~7 us),
+        and its own dict of floors."""
         out = object.__new__(Setup)  # copy.copy's result, without its ~8 us of dispatch
         out.__dict__.update(self.__dict__)
-        out.base, out.is_fixed = self.base.copy(), self.is_fixed.copy()
-        out.lower, out.upper = self.lower.copy(), self.upper.copy()
         out.floors = dict(self.floors)
         out.first_unused = first_unused
         return out
@@ -146,6 +147,10 @@ def setup_of(data: Any, signal: Any, background: Any, window: Any, weights: Any,
     binned_arrays = ((read_only(d.edges), read_only(d.n),
                       read_only(d.hist.scaled_poisson_factors())) if d.binned else None)
     starts = (tuple(read_only(a) for a in start_bins(d)) if free_idx.size else None)
+    # a fit only reads its starting values, bounds and which parameters float: read-only
+    # in every setup, kept or not (compiled code given them sees one array type)
+    for a in (lower, upper, base, is_fixed):
+        a.flags.writeable = False
     return Setup(d, model, names, lower, upper, base, is_fixed, floors, cons, cons_idx, live,
                  {**start, **fixed}, free_idx, inner_free, n_entries, binned_arrays, starts)
 
@@ -202,10 +207,11 @@ def _bounds(model: Model, total: float, limits: dict[str, tuple[float, float]]):
 def yield_bounds(model: Model, total: float, lower: np.ndarray, upper: np.ndarray) -> None:
     """The yields' bounds for ``total`` events in the window, into ``lower``/``upper``."""
     tot = max(total, 1.0)
-    yields = [iy for _, _, iy in model.blocks]
-    for iy in yields[:-1]:
+    blocks = model.blocks
+    for _, _, iy in blocks[:-1]:  # the signals'
         lower[iy], upper[iy] = -0.5 * tot - 10.0, 5.0 * tot + 10.0
-    lower[yields[-1]], upper[yields[-1]] = 0.0, 5.0 * tot + 10.0
+    iy = blocks[-1][2]  # the background's
+    lower[iy], upper[iy] = 0.0, 5.0 * tot + 10.0
 
 
 def _width_floors(model: Model, d: FitData, lower: np.ndarray, upper: np.ndarray,
@@ -259,12 +265,14 @@ def _base_values(model: Model, d: FitData, start: dict, fixed: dict, lower: np.n
     return base, is_fixed
 
 
-def yield_starts(model: Model, total: float, base: np.ndarray) -> None:
+def yield_starts(model: Model, total: float, base: np.ndarray, anew: bool = False) -> None:
     """Yields not given start at 0 (signals) and at ``total`` (the background), in
-    ``base`` (a yield not given is NaN there)."""
-    yields = [iy for _, _, iy in model.blocks]
-    for iy in yields[:-1]:
-        if not math.isfinite(base[iy]):
+    ``base`` (a yield not given is NaN there; ``anew``: no yield is given, every one is
+    set)."""
+    blocks = model.blocks
+    for _, _, iy in blocks[:-1]:
+        if anew or not math.isfinite(base[iy]):
             base[iy] = 0.0
-    if not math.isfinite(base[yields[-1]]):
-        base[yields[-1]] = total
+    iy = blocks[-1][2]
+    if anew or not math.isfinite(base[iy]):
+        base[iy] = total

@@ -12,7 +12,8 @@ parameters, the first cost's kernels and compiled arrays -- taken from the kept 
 (:func:`_in_same_bins`; the same values :func:`~.setup.setup_of` makes).  A histogram
 changed in place has other contents: it is never given a stale setup.  Kept setups hold
 private read-only arrays and no reference to the caller's histogram; each fit gets its own
-copies of what it may change (:meth:`~.setup.Setup.for_fit`).
+Setup object on them (:meth:`~.setup.Setup.for_fit`: a fit only reads them, and a write
+would raise).
 """
 
 from __future__ import annotations
@@ -59,30 +60,42 @@ def kept_setup(data: Any, signal: Any, background: Any, window: Any, binned: Any
     same_bins = None  # a kept setup of other contents in the same bins
     if kept is not None:
         for have, su in kept:
-            if have == content:
+            if have[0] is not content[0]:
+                if have[0] != content[0]:
+                    continue
+                # the kept bytes of these edges from now on: compared by identity with the
+                # other entries of these bins (and kept once for all of them)
+                content = (have[0], content[1], content[2])
+            if have[1] == content[1] and have[2] == content[2]:
                 as_retries(retries)
                 if su.d.note:  # as prepare says it
                     _log.info(su.d.note)
                 return su.for_fit()
-            if same_bins is None and have[0] == content[0]:
+            if same_bins is None:
                 same_bins = su
-    su = None if same_bins is None else _in_same_bins(data, window, binned, bins, retries,
-                                                      same_bins)
+    # (a toy's path first: the new counts in the bins of a kept setup, made kept)
+    su = None if same_bins is None else _new_counts(data, retries, same_bins)
     if su is None:
-        su = setup_of(data, signal, background, window, None, binned, bins, None, None,
-                      None, None, None, retries)
-    # the kept data: private read-only arrays (the caller's histogram may change), no
-    # reference to the caller's histogram
+        su = None if same_bins is None else _in_same_bins(data, window, binned, bins,
+                                                          retries, same_bins)
+        if su is None:
+            su = setup_of(data, signal, background, window, None, binned, bins, None, None,
+                          None, None, None, retries)
+        _make_kept(su)
+    _SETUPS.put(key, [(content, su), *(kept or ())][:_PER_KEY])  # (none had this content)
+    return su.for_fit(first_unused=bool(su.first_cost))
+
+
+def _make_kept(su: Setup) -> None:
+    """``su`` as a kept setup holds it: the data as private read-only arrays (the caller's
+    histogram may change), no reference to the caller's histogram (the arrays a fit reads
+    are read-only in every setup: every fit of it shares them, :meth:`~.setup.Setup.for_fit`)."""
     d = object.__new__(type(su.d))  # copy.copy's, without its ~5 us of dispatch
     d.__dict__.update(su.d.__dict__)
     d.edges, d.n = su.binned_arrays[0], su.binned_arrays[1]
     d.n2 = d.n if not d.weighted else read_only(d.n2)  # unweighted: the same numbers
     d.hist = None
     su.d = d
-    for a in (su.base, su.is_fixed, su.lower, su.upper):
-        a.flags.writeable = False  # handed out as copies (Setup.for_fit)
-    _SETUPS.put(key, [(content, su), *(kept or ())][:_PER_KEY])  # (none had this content)
-    return su.for_fit(first_unused=bool(su.first_cost))
 
 
 def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
@@ -96,9 +109,6 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
     would be refused (:func:`~.setup.setup_of` then makes the setup, or says why not)."""
     if not other.first_cost:
         return None
-    su = _new_counts(data, retries, other)
-    if su is not None:
-        return su
     d = prepare(data, None, window, binned, bins)
     if d.total <= 0 or not d.binned:
         return None
@@ -118,7 +128,8 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
     scale = np.ones(counts.size) if not d.weighted else d.hist.scaled_poisson_factors()
     scale.flags.writeable = False
     edges = other.binned_arrays[0]  # the same array: its per-edges work is kept by it
-    su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
+    lower.flags.writeable = upper.flags.writeable = base.flags.writeable = False  # (setup_of's)
+    su = Setup(d, model, other.names, lower, upper, base, other.is_fixed,
                dict(other.floors), {}, [], [], {}, other.free_idx, other.inner_free,
                entries(d), (edges, counts, scale),
                tuple(read_only(a) for a in start_bins(d)))
@@ -128,16 +139,19 @@ def _in_same_bins(data: Any, window: Any, binned: Any, bins: Any, retries: Any,
 
 def _new_counts(data: Any, retries: Any, other: Setup) -> Setup | None:
     """:func:`_in_same_bins` for unweighted contents in the bins of an unweighted kept setup
-    fitted whole (no bins cut by the window): :func:`.count_pass.check_and_merge` checks the
-    contents and sums them, total and merged start bins, in one compiled pass (the numbers
+    fitted whole (no bins cut by the window), made as a kept setup holds it
+    (:func:`_make_kept`): :func:`.count_pass.check_and_merge` checks the contents, copies
+    them and sums them, total and merged start bins, in one compiled pass (the numbers
     :func:`~.data.prepare` and :func:`~.data.start_bins` give), and the new setup shares
-    ``other``'s edges, factors of 1 and start edges (the same values: the kernels and work
-    kept by those arrays are found again).  None for anything else (weighted, cut by the
-    window, refused: :func:`_in_same_bins`' general path decides)."""
+    ``other``'s edges, factors of 1, start edges and which parameters float (the same
+    values: the kernels and work kept by those arrays are found again).  None for
+    anything else (weighted, cut by the window, refused, no first cost yet:
+    :func:`_in_same_bins`' general path decides)."""
     od = other.d
     edges, _, scale = other.binned_arrays
     n, n2 = data.values(), data.variances()
-    if (od.weighted or edges.size != data.edges.size or not use_compiled()
+    if (od.weighted or not other.first_cost or edges.size != data.edges.size
+            or not use_compiled()
             or not (type(n) is np.ndarray and n.dtype == np.float64 and n.flags.c_contiguous
                     and type(n2) is np.ndarray and n2.dtype == np.float64
                     and n2.flags.c_contiguous and n2.size == n.size)):
@@ -145,33 +159,34 @@ def _new_counts(data: Any, retries: Any, other: Setup) -> Setup | None:
     se, _, ssc = other.start_arrays
     nbins = n.size
     k = -(-nbins // _START_MOST)
-    merged, safe = np.empty(se.size - 1), np.empty(nbins)
+    counts, safe = np.empty(nbins), np.empty(nbins)
+    merged = np.empty(se.size - 1) if k > 1 else counts  # (k = 1: the fit's own bins)
     kern = compiled_module(_COUNT_PASS)
-    verdict, total = kern.check_and_merge(n, n2, k, merged, safe)
+    verdict, total = kern.check_and_merge(n, n2, k, merged, safe, counts)
     if verdict != 0 or not total > 0:
         return None
     as_retries(retries)
     if od.note:  # as prepare says it (the same window on the same edges)
         _log.info(od.note)
-    counts = read_only(n)
-    if k > 1:
-        merged.flags.writeable = False
-    else:  # the fit's own bins (a copy of their own, as start_bins' read_only gave)
-        merged = read_only(n)
-    d = FitData(True, "data is a histogram", False, edges, counts, counts, None, None,
-                od.window, total, data.unit, None, od.note)
+    counts.flags.writeable = merged.flags.writeable = False
+    # the data and the setup as FitData(...) and Setup(...) make them, as copies of
+    # ``other``'s with the counts' fields replaced (a dict copied in C: the constructors'
+    # ~17 stores each cost ~25 us in a fit after other work)
+    d = object.__new__(FitData)
+    d.__dict__.update(od.__dict__)  # (a histogram's, unweighted, in the same window)
+    d.n = d.n2 = counts
+    d.total = total
     model = other.model
-    lower, upper = other.lower.copy(), other.upper.copy()
+    lower, upper, base = other.lower.copy(), other.upper.copy(), other.base.copy()
+    # (only the yields' bounds change: lower < upper, as other's, for any total > 0)
     yield_bounds(model, total, lower, upper)
-    if not all(a < b for a, b in zip(lower.tolist(), upper.tolist())):  # (lower < upper).all()
-        return None
-    base = other.base.copy()
-    for _, _, iy in model.blocks:
-        base[iy] = np.nan  # as a yield's start before setup_of's yield_starts
-    yield_starts(model, total, base)
-    su = Setup(d, model, other.names, lower, upper, base, other.is_fixed.copy(),
-               dict(other.floors), {}, [], [], {}, other.free_idx, other.inner_free,
-               total, (edges, counts, scale), (se, merged, ssc))
+    yield_starts(model, total, base, anew=True)
+    lower.flags.writeable = upper.flags.writeable = base.flags.writeable = False
+    su = object.__new__(Setup)
+    su.__dict__.update(other.__dict__)  # (no constraints, ties or given values: setup_of's)
+    su.d, su.lower, su.upper, su.base, su.n_entries = d, lower, upper, base, total
+    su.binned_arrays, su.start_arrays = (edges, counts, scale), (se, merged, ssc)
+    su.first_cost, su.first_unused = [], False
     np.log(safe, out=safe)  # numpy's logarithm, as saturated_term takes it
     su.first_cost.append(other.first_cost[0].with_counts(
         counts, scale, base, saturated=kern.saturated_sum(counts, safe)))

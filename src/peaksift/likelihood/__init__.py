@@ -13,7 +13,8 @@ What is here, and which piece to use when
   window; expected bin contents and densities from the shapes.
 * :mod:`.cost`        -- :class:`BinnedCost` (and :mod:`.unbinned_cost`, :class:`UnbinnedCost`):
   a Model on data, over its free parameters, with constraints (value, gradient,
-  information, observed Hessian; the value alone for MIGRAD where that is cheaper).
+  information, observed Hessian; the value alone for MIGRAD where that is cheaper); what
+  both share (free <-> full vector, constraints, iminuit's protocol) in :mod:`.cost_base`.
 * :mod:`.kernels`     -- compiled (numba) fast path of :class:`BinnedCost` for the common
   shapes, the coarse scan and small Newton solves; the numpy path is the reference
   (``PEAKSIFT_NUMPY_COST=1`` selects it everywhere).
@@ -36,7 +37,7 @@ from __future__ import annotations
 
 from .constraints import CONSTRAINT_KINDS, Constraint
 from .cost import BinnedCost
-from .derived import Tie, TiedCost
+from .derived import Tie, TiedCost, resolution_tie
 from .joint import JointCost
 from .minimize import (
     Minimum,
@@ -89,6 +90,7 @@ __all__ = [
     "minimize_stacked",
     "new_minuit",
     "refine",
+    "resolution_tie",
     "saturated_term",
     "unbinned_nll",
 ]

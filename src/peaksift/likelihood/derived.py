@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Tie", "TiedCost"]
+__all__ = ["Tie", "TiedCost", "resolution_tie"]
 
 
 def _zero(_: float) -> float:
@@ -41,6 +41,13 @@ class Tie:
     slope: Callable[[float], float]
     curvature: Callable[[float], float] = _zero
     description: str = ""
+
+
+def resolution_tie(resolution: Any, target: str = "sigma") -> Tie:
+    """``target`` tied to ``resolution`` (a :class:`peaksift.Resolution`: its ``sigma``,
+    ``slope`` and ``curvature`` in the mass) at the fitted ``mass``."""
+    return Tie(target, "mass", resolution.sigma, resolution.slope, resolution.curvature,
+               description=f"the resolution at the mass ({resolution.describe()})")
 
 
 class TiedCost:

@@ -30,7 +30,8 @@ from typing import Any
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges
+from ..shapes.compiled import gaussian_edges, powerlaw_edges
+from ..shapes.compiled_exponential import exponential_edges
 from .kernels import poisson_pass, solve_small
 from .second_rows import gaussian_phi, gaussian_second, powerlaw_second
 from .wall_info import to_wall, wall_info

@@ -4,7 +4,9 @@ What is here and when it is used
 --------------------------------
 * :func:`edge_kernel` -- for a shape with a compiled CDF (``gaussian``, ``powerlaw``,
   ``exponential`` / ``exppoly`` of order 1) an evaluator that writes the window-normalised
-  CDF at every bin edge and its derivative in each shape parameter into rows of an array;
+  CDF at every bin edge and its derivative in each shape parameter into rows of an array
+  (the exponential's CDF less 1 where it falls: rows exact to rounding at its far end,
+  :mod:`peaksift.shapes.compiled_exponential`; only the rows' differences are used);
   None for any other shape (those keep the numpy path of :mod:`.cost`).
 * :class:`FusedBinned` -- the whole ``value_grad_info`` of a
   :class:`~peaksift.likelihood.cost.BinnedCost` whose components all have an edge kernel:
@@ -18,8 +20,8 @@ What is here and when it is used
 
 The numpy path (shapes' ``fractions_and_grad`` and :func:`~peaksift.likelihood.poisson.binned_nll`)
 stays the reference: the same formulae, the same floors; the edge kernels return False
-where that path switches to a series (power law near k = 1, exponential near b = 0) and the
-cost then takes the numpy path for that evaluation.  ``tests/test_likelihood_kernels.py``
+where that path switches to a series (the power law near k = 1) and the cost then takes the
+numpy path for that evaluation.  ``tests/test_likelihood_kernels.py``
 checks both against scipy's CDFs written in the test.
 """
 
@@ -32,7 +34,9 @@ import numpy as np
 from numba import njit
 
 from ..shapes import Exponential, ExpPoly, Gaussian, PowerLaw
-from ..shapes.compiled import exponential_edges, gaussian_edges, powerlaw_edges, vlog
+from ..shapes.compiled import gaussian_edges, powerlaw_edges
+from ..shapes.compiled_exponential import exponential_edges
+from ..shapes.compiled_math import vlog
 
 __all__ = ["FusedBinned", "edge_kernel"]
 

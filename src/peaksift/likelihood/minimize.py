@@ -263,7 +263,7 @@ def _compiled(cost: Any, start: np.ndarray, lower: np.ndarray, upper: np.ndarray
             return x
     elif inv is None:  # (not positive definite)
         return x
-    return Minimum(x, f, True, False, np.sqrt(np.maximum(np.diag(inv), 0.0)),
+    return Minimum(x, f, True, False, np.sqrt(np.maximum(inv.diagonal(), 0.0)),
                    "fisher-scoring", grad=g,
                    refined=None if refined is None else (lower, upper, refined))
 

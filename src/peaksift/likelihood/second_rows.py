@@ -28,7 +28,7 @@ import math
 
 from numba import njit
 
-from ..shapes.compiled import vexp
+from ..shapes.compiled_math import vexp
 
 __all__ = ["gaussian_phi", "gaussian_second", "powerlaw_second"]
 
@@ -54,7 +54,7 @@ def _phi(z):  # pragma: no cover - compiled
 @njit(cache=True, nogil=True, error_model="numpy")
 def gaussian_phi(x, m, s, out):  # pragma: no cover - compiled
     """The standard normal density at ``z = (x - m) / s`` of every edge into ``out`` (0
-    beyond 38 widths), in a loop that vectorises (:func:`~peaksift.shapes.compiled.vexp`)."""
+    beyond 38 widths), in a loop that vectorises (:func:`~peaksift.shapes.compiled_math.vexp`)."""
     inv_s = 1.0 / s
     for i in range(x.size):
         z = (x[i] - m) * inv_s

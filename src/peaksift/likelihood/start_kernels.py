@@ -31,7 +31,8 @@ import math
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import gaussian_width_rows, vlog
+from ..shapes.compiled import gaussian_width_rows
+from ..shapes.compiled_math import vlog
 from .driver import CONVERGED, _component, _drive
 from .kernels import _SUMS, bin_counts, covariance_small
 

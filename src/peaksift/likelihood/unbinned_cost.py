@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from .constraints import Constraint
-from .cost import _Cost, _step_within
+from .cost_base import _Cost, _step_within
 from .model import Model
 from .poisson import MU_FLOOR, unbinned_nll
 

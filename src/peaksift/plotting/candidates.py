@@ -10,8 +10,9 @@ from typing import Any
 
 import numpy as np
 
+from .._annotations import draw_header
 from .._format import number
-from .._style import COLORS, draw_header, figure_style, new_figure
+from .._style import COLORS, figure_style, new_figure
 from .labels import FigureLabels, save
 
 __all__ = ["candidates", "candidates_figure"]

@@ -8,8 +8,9 @@ from typing import Any
 
 import numpy as np
 
+from .._annotations import draw_header
 from .._format import fixed, number
-from .._style import COLORS, draw_header, figure_style, new_figure
+from .._style import COLORS, figure_style, new_figure
 from .labels import FigureLabels
 from .legend import place_legend
 

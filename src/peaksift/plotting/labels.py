@@ -10,7 +10,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from .._style import RunLabel, channel_tex, figure_style, mass_symbol
+from .._annotations import RunLabel, channel_tex, mass_symbol
+from .._style import figure_style
 
 __all__ = ["FigureLabels", "figure_labels", "save"]
 

@@ -54,6 +54,8 @@ def _with_systematics(ax: Any, masses: Any, z_local: Any, best: Any) -> None:
     curve, so it is drawn bold, its best point marked, and the single-function curve thin."""
     from scipy.special import ndtr
 
+    from ..stats.scan_result import place_scan_legend
+
     m = np.asarray(masses, float)
     z = np.array([np.nan if v is None else v for v in z_local], float)
     rank: dict[Any, int] = {}  # legend order: each curve followed by its best point
@@ -78,8 +80,8 @@ def _with_systematics(ax: Any, masses: Any, z_local: Any, best: Any) -> None:
                          label=f"its best: $Z_{{local}}$ = {fixed(b['z_local'])}")[0]] = 3
         handles, names = ax.get_legend_handles_labels()
         keep = sorted(range(len(handles)), key=lambda i: (rank.get(handles[i], 4), i))
-        ax.legend([handles[i] for i in keep], [names[i] for i in keep], loc="lower left",
-                  fontsize=8.5)
+        place_scan_legend(ax, [handles[i] for i in keep], [names[i] for i in keep],
+                          fontsize=8.5)
 
 
 def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = None,
@@ -91,6 +93,7 @@ def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = No
     excess (p_local down to 1e-2000 and beyond, 0 as a float) is drawn clipped there, marked
     with a triangle at the best mass and stated in numbers (p as a power of ten).
     """
+    from ..stats.scan_result import place_scan_legend
     from ..stats.significance import log10_p, log_p_from_q0
 
     labels = labels or FigureLabels()
@@ -119,4 +122,5 @@ def scan_figure(sres: Any, best: Any = None, *, labels: FigureLabels | None = No
                         f"{getattr(sres, 'unit', 'GeV')} (\u25bc)",
                         transform=ax.transAxes, ha="right", va="bottom", fontsize=8.5,
                         color=COLORS["signal"])
+                place_scan_legend(ax)  # placed again: off this note too
     return fig

@@ -12,16 +12,9 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, format_pm, number, p_value
-from .._style import (
-    COLORS,
-    draw_header,
-    figure_style,
-    margins,
-    new_figure,
-    particle_tex,
-    shade_blinded,
-)
+from .._annotations import draw_header, particle_tex, shade_blinded
+from .._format import chi_square, fixed, format_pm, number, p_value
+from .._style import COLORS, figure_style, margins, new_figure
 from .labels import FigureLabels, save
 from .legend import place_legend
 
@@ -120,7 +113,7 @@ def _draw_sideband_fit(ax: Any, axp: Any, sb: Any, span: Sequence[float] | None
     hid = np.asarray(sb.blinded, bool)
     # the dashed part reaches one bin into each sideband, so the two parts join
     near = hid | np.r_[hid[1:], False] | np.r_[False, hid[:-1]]
-    gof = (f"$\\chi^2$/ndf = {fixed(sb.gof_chi2, 1)}/{sb.gof_ndf}, "
+    gof = (f"$\\chi^2$/ndf = {chi_square(sb.gof_chi2)}/{sb.gof_ndf}, "
            f"p = {p_value(sb.gof_p_value)}")
     ax.plot(c, np.where(hid, np.nan, y), color=COLORS["total"], lw=1.4,
             label=f"background fit to the sidebands ({gof})")

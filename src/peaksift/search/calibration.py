@@ -6,6 +6,7 @@ search's) is drawn beside them."""
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping
 from typing import Any
 
@@ -52,6 +53,7 @@ def calibrate(cfg: Config, col: Any) -> tuple[dict[str, Any] | None, Any, Any]:
         fr = fit(h, sig, bkg, (lo, hi), start=start, fixed=fixed or None)
     except FitError as exc:
         raise FitError(f"calibration fit of {c.particle} in [{lo:g}, {hi:g}] GeV: {exc}") from None
+    fr = dataclasses.replace(fr, kind="calibration")  # named so in its repr and figure
     d = fr.to_dict()
     pm = d.get("peak_mass") or {}
     m, e = float(pm.get("value", np.nan)), float(pm.get("error") or np.nan)

@@ -56,6 +56,7 @@ from typing import Any
 import numpy as np
 
 from ..config import load_config, output_figures, section_values
+from ..config.values import config_path
 from ..errors import ConfigError
 from .combination_result import CombinedSearchResult
 
@@ -107,8 +108,8 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     """
     from ..stats.channel_limits import combined_limits
     from ..stats.channels import combine
-    from .common import _utc
-    from .run import _search, _toy_executor
+    from .common import _toy_executor, _utc
+    from .run import _search
     from .staging import _apply_overrides, _check_inputs, _staged
 
     raw, base, source = _read(config)
@@ -124,7 +125,7 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
     if not isinstance(files, list) or not files or not all(isinstance(f, str) for f in files):
         raise ConfigError(f"{where}: combination.channels must list the channels' search "
                           "configs, e.g. channels = [\"dimuon.toml\", \"dielectron.toml\"]")
-    paths = [p if p.is_absolute() else base / p for p in (Path(f).expanduser() for f in files)]
+    paths = [Path(config_path(f, base)) for f in files]
     names = comb.get("names") or [p.stem for p in paths]
     shared = comb.get("shared_luminosity", False)
     if not isinstance(shared, bool):
@@ -210,9 +211,8 @@ def run_combination(config: Any, *, out: Any = None, toys: int | None = None,
             notes += ((f"the combined scan and its toys (global significance) profile the "
                        f"[systematics] background envelope of channel(s) "
                        f"{', '.join(enveloped)} as a discrete choice per channel (its "
-                       "spurious-signal term left out), and so do the asymptotic combined "
-                       "limits; the combination's toy limits (if any) take each channel's "
-                       "function at mu = 0"),)
+                       "spurious-signal term left out), and so do the combined limits "
+                       "(asymptotic and toys)"),)
         left = [n for n in with_env if n not in enveloped]
         if left and len(cfgs) > 1:
             notes += ((f"the combination does not include the [systematics] background "

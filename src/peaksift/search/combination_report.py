@@ -14,9 +14,9 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from .._format import fixed, format_pm, mass_text, number, p_value
+from .._format import as_finite, fixed, format_pm, mass_text, number, p_value
 from .._vocabulary import FITS
-from ..report import CAUTION, blocks_html, blocks_markdown
+from ..report import CAUTION, blocks_html, blocks_markdown, run_line
 from ..report_sections import (
     CAPTIONS,
     OTHER_CAPTIONS,
@@ -101,6 +101,40 @@ def _channel_warnings(d: Mapping[str, Any]) -> list[dict[str, str]]:
             if isinstance(w, Mapping)]
 
 
+def combination_warnings(d: Mapping[str, Any]) -> list[dict[str, str]]:
+    """What a reader must know before quoting the combination (its results.json
+    ``warnings``, the report's Warnings, the summary's WARNING lines): every channel's
+    doubts named by its channel, the combined q0 that took a lower well of a mass scale
+    than the nearest (as a search's significance warning,
+    ``stats.joint_wells.several_minima_notes``), and the combined limits' notes that are
+    warnings (as a search's; toy limits that do not profile the background envelope)."""
+    out = _channel_warnings(d)
+    out += [{"topic": "significance", "message": f"combined significance: {note}"}
+            for note in (d.get("combination") or {}).get("notes") or []
+            if "several minima" in note]
+    out += [{"topic": "limits", "message": f"combined limits: {note}"}
+            for note in (d.get("limits") or {}).get("notes") or []
+            if doubtful_limits_note(note) or "do not profile the choice" in note]
+    return out
+
+
+def combination_run_line(d: Mapping[str, Any]) -> str:
+    """The run label under the title: the first channel's run name and sqrt(s), and each
+    channel's luminosity (one figure when they agree)."""
+    chans = list((d.get("channels") or {}).items())
+    if not chans:
+        return ""
+    first = run_line({"config": {**(chans[0][1].get("config") or {}), "limits": {}}})
+    lumis = {n: ((r.get("config") or {}).get("limits") or {}).get("luminosity")
+             for n, r in chans}
+    known = {n: v for n, v in lumis.items() if v}
+    if len(set(known.values())) == 1 and len(known) == len(lumis):
+        lumi = f"{number(next(iter(known.values())))} fb\u207b\u00b9"
+    else:
+        lumi = ", ".join(f"{n} {number(v)} fb\u207b\u00b9" for n, v in known.items())
+    return ", ".join(p for p in (first, lumi) if p)
+
+
 def _cross_section_text(c: Mapping[str, Any]) -> str:
     """The combined fit's sigma x B at the best mass with its error (results.json
     ``combination``: ``cross_section_error`` at ``best_index``)."""
@@ -117,9 +151,12 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
     c = d["combination"]
     g = d.get("best") or {}
     best = c.get("best") or {}
-    out: list[Any] = [("h1", f"Combined search: {', '.join(d['channels'])}"),
-                      ("caution", CAUTION),
-                      *section_warnings({"warnings": _channel_warnings(d)}, fig),
+    out: list[Any] = [("h1", f"Combined search: {', '.join(d['channels'])}")]
+    run = combination_run_line(d)
+    if run:
+        out.append(("p", run))
+    out += [("caution", CAUTION),
+            *section_warnings({"warnings": combination_warnings(d)}, fig),
                       ("h2", "Combination"),
                       ("p", ("One cross-section x branching fraction shared by every channel; the "
                        "likelihood is the product of the channels' (each with its own "
@@ -133,11 +170,12 @@ def combination_blocks(d: Mapping[str, Any], figures: Mapping[str, Any] | None =
              "generate every channel)")],
             ["fitted sigma x B at the best mass", _cross_section_text(c)]]
     for name, v in (d.get("nuisances_at_best") or {}).items():
+        label = nuisance_label(name, v, list(d["channels"]))
         if "shift_at_best" in v:
-            rows.append([f"shape factor {name} (k - 1 at the best mass)",
+            rows.append([f"shape factor {label} (k - 1 at the best mass)",
                          fixed(v.get("shift_at_best"), 3, signed=True)])
         else:
-            rows.append([f"nuisance {name} (pull at the best mass)",
+            rows.append([f"nuisance {label} (pull at the best mass)",
                          fixed(v.get("pull_at_best"), 2, signed=True)])
     env = read_channel_entries(c.get("envelope")) or {}  # files of earlier layouts too
     if env and best.get("mass") is not None and c.get("masses"):
@@ -211,7 +249,30 @@ def render_combination_html(d: Mapping[str, Any], figures: Mapping[str, Any] | N
     """report.html of a combination, self-contained (``figures``: name -> PNG file)."""
     fig = dict(figures or {})
     return blocks_html(f"Combined search: {', '.join(d['channels'])}",
-                       combination_blocks(d, fig), fig)
+                       combination_blocks(d, fig), fig, combination_run_line(d))
+
+
+#: a combination's nuisances in words, by the kind their names start with (the names are
+#: ``<kind>_<channel>``, a luminosity's ``luminosity_<group>``: ``stats.channel_norms``,
+#: ``stats.channels``)
+_NUISANCE_WORDS = {"efficiency": "efficiency x acceptance", "luminosity": "luminosity",
+                   "mass_scale": "mass scale", "mass_resolution": "mass resolution"}
+
+
+def nuisance_label(name: str, entry: Mapping[str, Any], channels: list[str]) -> str:
+    """A combination's nuisance as the report names it: ``efficiency x acceptance of
+    dimuon``, ``luminosity shared by dimuon and dielectron`` (the channels its log-normal
+    scale reaches, ``entry["log_scale"]``), ``mass scale of dimuon``; a name of another
+    form as it is."""
+    for kind, words in _NUISANCE_WORDS.items():
+        if name.startswith(kind + "_"):
+            rest = name[len(kind) + 1:]
+            scale = entry.get("log_scale") if isinstance(entry, Mapping) else None
+            members = [c for c, a in zip(channels, scale or ()) if as_finite(a)]
+            if len(members) > 1:
+                return f"{words} shared by {', '.join(members[:-1])} and {members[-1]}"
+            return f"{words} of {rest}"
+    return name
 
 
 def combination_summary_text(d: Mapping[str, Any]) -> str:
@@ -233,19 +294,9 @@ def combination_summary_text(d: Mapping[str, Any]) -> str:
                 if (r.get("signal_model") or {}).get("doubtful")]
     if doubtful:
         lines.append(f"  signal model doubtful in   {', '.join(doubtful)} (see the report)")
-    # each channel's own warnings (its search's doubts), but the signal model's (the line
-    # above names those channels)
-    lines += [f"  WARNING: {w['message']}" for w in _channel_warnings(d)
+    # every warning but a channel's signal model's (the line above names those channels)
+    lines += [f"  WARNING: {w['message']}" for w in combination_warnings(d)
               if w["topic"] != "signal_model"]
-    # the combined q0 that took a lower well of a mass scale than the nearest (as a
-    # search's significance warning, stats.joint_wells.several_minima_notes)
-    lines += [f"  WARNING: combined significance: {note}"
-              for note in d["combination"].get("notes") or [] if "several minima" in note]
-    # the combined limits' notes that are warnings (as a search's limits warnings), and
-    # toy limits that do not profile the background envelope (stats.channel_limits)
-    lines += [f"  WARNING: combined limits: {note}"
-              for note in (d.get("limits") or {}).get("notes") or []
-              if doubtful_limits_note(note) or "do not profile the choice" in note]
     if "outputs" in d:
         lines.append(f"  outputs                    {d['outputs']['dir']}")
     lines.append("  (a local significance is not a discovery; see the report's caution)")

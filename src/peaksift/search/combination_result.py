@@ -98,7 +98,7 @@ class CombinedSearchResult:
         and luminosity with every channel's final state; the channels' mass symbol when
         they share one, else plain m."""
         from .. import plotting
-        from .._style import RunLabel
+        from .._annotations import RunLabel
 
         labels = [plotting.figure_labels(r.config) for r in self.channels.values()]
         first = labels[0].run if labels else None
@@ -169,6 +169,13 @@ class CombinedSearchResult:
         return self.combination.nuisances_at_best()
 
     @property
+    def warnings(self) -> list[dict[str, str]]:
+        """What a reader must know before quoting the combination, each ``{"topic",
+        "message"}`` (:func:`~peaksift.search.combination_report.combination_warnings`:
+        every channel's named by its channel, the combined fit's and limits')."""
+        return self.to_dict()["warnings"]
+
+    @property
     def outputs(self) -> dict[str, Any] | None:
         """Where the files went (results.json ``outputs``); None without an output folder."""
         if self.outdir is None:
@@ -189,6 +196,9 @@ class CombinedSearchResult:
                "nuisances_at_best": self.nuisances_at_best,
                "limits": None if self.limits is None else self.limits.to_dict(),
                "notes": list(self.notes)}
+        from .combination_report import combination_warnings
+
+        out["warnings"] = combination_warnings(out)  # derived: from_dict does not read it
         if self.outdir is not None:
             out["outputs"] = self.outputs
         return out

@@ -1,4 +1,5 @@
-"""Steps every command shares: the scan grid, collecting candidates, filling the spectrum, keyed errors."""
+"""Steps every command shares: the scan grid, collecting candidates, filling the spectrum, keyed
+errors, the toys' engine."""
 
 from __future__ import annotations
 
@@ -357,3 +358,19 @@ def _require_finite_weights(cfg: Config, col: Any, hist: Any) -> None:
         f"in the window {big:.3g}; the sums of squared weights exceed the floating-point "
         "range): rescale the 'weight' column (e.g. to weights near 1), or set "
         "input.weights = false")
+
+
+def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
+    """The toys' map on the configured engine (None: serial, in this process).  Toys are
+    seeded one by one (global significance) or per mass (limits), so the engine does not
+    change the result."""
+    ex = cfg.execution
+    if ex.engine == "serial":
+        return None
+    import functools
+
+    from ..execution import map_tasks
+
+    return functools.partial(map_tasks, engine=ex.engine, workers=ex.workers,
+                             address=ex.address or None, desc=desc,
+                             start_method=ex.start_method)

@@ -9,6 +9,11 @@ summary and a section at the top of the report.
 * ``sideband_fit``    -- blinded: the background fit on the sidebands is invalid or fits
   them badly (goodness-of-fit p below :data:`GOF_P_MIN`).
 * ``calibration``     -- the calibration fit is invalid: its mass shift is not a measurement.
+* ``local_minimum``   -- the free fit (started at the best mass) or the calibration fit
+  (started at the particle's mass) has a lower minimum elsewhere in its window
+  (``lower_minimum``, :mod:`peaksift.fitting.elsewhere`): a dip or another peak that
+  describes the spectrum better by the quoted Delta(-2 ln L), at least
+  :data:`LOWER_MINIMUM_WARN`.
 * ``goodness_of_fit`` -- the free fit's (or the calibration fit's) goodness-of-fit p-value is
   below :data:`GOF_P_MIN`: the model does not describe the data (e.g. a known peak inside
   the search window), so its significance and limits inherit a wrong model.
@@ -22,6 +27,11 @@ summary and a section at the top of the report.
   away).
 * ``significance``    -- with ``[systematics]``: the scan's q0 whose profile in the mass
   scale took a lower well than the nearest one (as for the limits above).
+* ``scan``            -- the mass grid steps more than one resolution width somewhere
+  (:func:`~peaksift.stats.mass_grid.coarse_grid_note`): local and global significances
+  underestimated between hypotheses.
+* ``significance``    -- also: the global correction's N0 uncertain by more than
+  :data:`N0_ERROR_MAX` (too few background-only toys).
 * ``background_model`` -- with ``[systematics]``: candidates over the spurious-signal limit,
   a kept order whose next order still improved the fit (the family needs higher orders).
 """
@@ -33,12 +43,23 @@ from collections.abc import Mapping
 from typing import Any
 
 from .._vocabulary import FITS
+from ..stats.mass_grid import coarse_grid_note
 
-__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "doubtful_limits_note", "doubts"]
+__all__ = ["BAND_OUTSIDE_MAX_FRACTION", "GOF_P_MIN", "LOWER_MINIMUM_WARN", "N0_ERROR_MAX",
+           "doubtful_limits_note", "doubts", "fit_doubts"]
+
+#: N0's relative error above this flags the global significance (a quarter: 16 toys'
+#: worth at N0 ~ 1; the demo's 100 toys give 3 %)
+N0_ERROR_MAX = 0.25
 
 #: a goodness-of-fit p-value below this flags the fit (0.1%: about 1 in 1000 fits of a
 #: right model; our choice)
 GOF_P_MIN = 1e-3
+#: a fit's lower minimum elsewhere (``lower_minimum``) is a warning from this Delta(-2 ln L):
+#: below it the two descriptions of the spectrum are equally good at the 68 % level (a
+#: background-only continuum's fit had a dip 0.61 lower; our choice); it stays in the fit's
+#: notes and results.json either way
+LOWER_MINIMUM_WARN = 1.0
 #: more than this fraction of limit masses outside the expected +-2 sigma band flags the
 #: limits (a right model puts about 5% there; a real signal a few masses near it)
 BAND_OUTSIDE_MAX_FRACTION = 0.2
@@ -63,6 +84,12 @@ def _num(x: Any) -> float | None:
     return v if math.isfinite(v) else None
 
 
+def _nan(x: Any) -> float:
+    """A JSON number, NaN for null or anything else."""
+    v = _num(x)
+    return math.nan if v is None else v
+
+
 def _gof_p(fit: Mapping[str, Any] | None) -> float | None:
     gof = fit.get("gof") if isinstance(fit, Mapping) else None
     return _num(gof.get("p_value")) if isinstance(gof, Mapping) else None
@@ -84,20 +111,8 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
 
     fit = results.get("fit")
     blinded = bool((results.get("blinding") or {}).get("active"))
-    if isinstance(fit, Mapping) and not blinded and "valid" in fit and not fit.get("valid"):
-        probs = "; ".join(str(p) for p in fit.get("problems") or []) or "no reason recorded"
-        # named as every output names it (_vocabulary.FITS): "signal-plus-background fit"
-        # fits the scan's hypotheses as well, and the scan's numbers stand
-        add("fit", f"the {FITS['free_fit'][0]} is invalid ({probs}): its mass, width and "
-                   "yield are not measurements")
-    p = _gof_p(fit)
-    if p is not None and p < GOF_P_MIN:
-        add("goodness_of_fit",
-            # the free fit's (its mass floats from the best mass: not "the fit at the best
-            # mass", which the report's spectrum caption no longer calls it either)
-            f"the {FITS['free_fit'][0]} has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
-            "signal-plus-background model does not describe the spectrum (a known peak in the "
-            "window, or the wrong background shape); the significance and limits rest on it")
+    if isinstance(fit, Mapping) and not blinded:
+        out += fit_doubts(fit)
     sb = results.get("background_fit")
     if isinstance(sb, Mapping) and sb.get("kind") == "sideband_fit":  # blinded runs
         if not sb.get("valid"):
@@ -119,6 +134,10 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
             add("calibration", f"the calibration fit of {name} is invalid"
                                f"{' (' + probs + ')' if probs else ''}: its fitted mass and "
                                "mass-scale shift are not measurements")
+        cf = cal.get("fit")
+        if isinstance(cf, Mapping):
+            _lower_minimum(add, cf.get("lower_minimum"), f"the calibration fit of {name}, "
+                                                         "started at its table mass,")
         pc = _gof_p(cal)
         if pc is not None and pc < GOF_P_MIN:
             add("goodness_of_fit",
@@ -160,6 +179,23 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                       "counting floor, Read 2002) at " + ", ".join(
                           f"{m:.2f} GeV ({o:.3g} vs {f:.3g})" for m, o, f in low)
                       + ": not a measurement (most likely a failed minimisation)")
+    sc = results.get("scan")
+    if isinstance(sc, Mapping):
+        grid = coarse_grid_note([_nan(m) for m in sc.get("masses") or []],
+                                [_nan(x) for x in sc.get("sigma") or []])
+        if grid:
+            add("scan", grid)
+    best = results.get("best")
+    n0, n0_err = (_num(best.get("N0")), _num(best.get("N0_error"))) if isinstance(
+        best, Mapping) else (None, None)
+    # (from toys only: N0 read off the observed scan itself, toys = 0, is the user's stated
+    # choice and its source is printed beside it)
+    from_toys = isinstance(best, Mapping) and "toys" in str(best.get("n0_source") or "")
+    if from_toys and n0 and n0_err is not None and n0_err / n0 > N0_ERROR_MAX:
+        add("significance", f"the global correction's up-crossing count N0 = {n0:.3g} +- "
+            f"{n0_err:.2g} ({best.get('n0_source') or 'toys'}) is uncertain by "
+            f"{n0_err / n0:.0%}: the global p-value is uncertain alike; run more "
+            "background-only toys (--toys)")
     band = _outside_band(results.get("limits"))
     if band is not None:
         n_out, n_all, below, above = band
@@ -169,6 +205,48 @@ def doubts(results: Mapping[str, Any]) -> list[dict[str, str]]:
                           f"{BAND_OUTSIDE_MAX_FRACTION:.0%}): the background model does not "
                           "follow the data, so the limits are doubtful")
     return out
+
+
+def fit_doubts(fit: Mapping[str, Any], started: str = "at the best mass hypothesis"
+               ) -> list[dict[str, str]]:
+    """The warnings of one free fit's results.json entry (``FitResult.to_dict``): invalid,
+    a lower minimum elsewhere, a poor goodness of fit.  ``started``: where its mass started
+    (the search's: the best mass; ``peaksift fit``'s: the given mass)."""
+    out: list[dict[str, str]] = []
+
+    def add(topic: str, message: str) -> None:
+        out.append({"topic": topic, "message": message})
+
+    if "valid" in fit and not fit.get("valid"):
+        probs = "; ".join(str(p) for p in fit.get("problems") or []) or "no reason recorded"
+        # named as every output names it (_vocabulary.FITS): "signal-plus-background fit"
+        # fits the scan's hypotheses as well, and the scan's numbers stand
+        add("fit", f"the {FITS['free_fit'][0]} is invalid ({probs}): its mass, width and "
+                   "yield are not measurements")
+    _lower_minimum(add, fit.get("lower_minimum"), f"the {FITS['free_fit'][0]}, started "
+                                                  f"{started},")
+    p = _gof_p(fit)
+    if p is not None and p < GOF_P_MIN:
+        add("goodness_of_fit",
+            # the free fit's (its mass floats from the best mass: not "the fit at the best
+            # mass", which the report's spectrum caption no longer calls it either)
+            f"the {FITS['free_fit'][0]} has goodness-of-fit p = {p:.3g} (< {GOF_P_MIN:g}): the "
+            "signal-plus-background model does not describe the spectrum (a known peak in the "
+            "window, or the wrong background shape); the significance and limits rest on it")
+    return out
+
+
+def _lower_minimum(add: Any, low: Any, which: str) -> None:
+    """The ``local_minimum`` warning of a fit started at a given mass whose
+    ``lower_minimum`` (:mod:`peaksift.fitting.elsewhere`) is set."""
+    if not isinstance(low, Mapping) or not (_num(low.get("delta_minus_two_ln_l")) or 0.0) \
+            >= LOWER_MINIMUM_WARN:
+        return
+    from ..fitting.elsewhere import elsewhere_text  # (only here: the fits' package is heavy)
+
+    add("local_minimum", f"{which} is a local minimum: the fitter's own starts reach "
+                         f"{elsewhere_text(low)}; its numbers describe the peak it was "
+                         "started on, not the best description of the spectrum")
 
 
 def _outside_band(lim: Any) -> tuple[int, int, int, int] | None:

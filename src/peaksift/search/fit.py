@@ -11,7 +11,7 @@ from typing import Any
 import numpy as np
 
 from ..config import Config, load_config
-from ..errors import ConfigError, FitError
+from ..errors import ConfigError
 from .common import _collect, _fill, _require_candidates, _shape, _where
 from .result import _plain
 from .staging import _apply_overrides, _staged
@@ -70,7 +70,7 @@ def _fit_settings(cfg: Config, signal: Any, mass: float, *, hold_mass: bool = Fa
     The intervals asked for (``model.intervals``) are those of the peak mass, the signal's
     width parameter and the signal yield, each only while it floats.
     """
-    from ..likelihood import Constraint, Tie
+    from ..likelihood import Constraint, resolution_tie
 
     md = cfg.model
     fixed = dict(md.fix)
@@ -87,8 +87,7 @@ def _fit_settings(cfg: Config, signal: Any, mass: float, *, hold_mass: bool = Fa
             fixed["sigma"] = float(res.sigma(fixed.get("mass", mass)))
         elif md.sigma_from_resolution == "fixed":
             tie["follows"] = "the fitted mass"
-            tied = {"sigma": Tie("sigma", "mass", res.sigma, res.slope, res.curvature,
-                                 description=f"the resolution at the mass ({res.describe()})")}
+            tied = {"sigma": resolution_tie(res)}
         else:  # Gaussian around the resolution, of relative width resolution_uncertainty
             cons["sigma"] = Constraint.gaussian(s, float(md.resolution_uncertainty) * s)
     if hold_mass:
@@ -140,7 +139,8 @@ def run_fit(
     stays there with ``hold_mass``; everything else is set as for the search's free fit
     (``model.fix``, ``constrain``, ``bounds``, ``sigma_from_resolution`` with sigma taken at
     ``mass``, ``intervals``).  A free fit that settles in a minimum above the lowest one the
-    fitter finds from its own starts is told so in its notes.  Refused while the
+    fitter finds from its own starts says so (``FitResult.lower_minimum`` and its notes:
+    :mod:`peaksift.fitting.elsewhere`).  Refused while the
     configuration is blinded unless ``unblind`` is given.
 
     Parameters
@@ -188,8 +188,6 @@ def run_fit(
         _require_candidates(cfg, col, hist)
         binned, data = _fit_data(cfg, col, hist)
         fr = fit(data, sig, bkg, (lo, hi), binned=binned, start=start, **settings.arguments())
-        if not hold_mass:
-            fr = _note_lower_minimum(fr, fit, data, sig, bkg, (lo, hi), binned, start, settings)
         fr = _note_tie_drift(fr, cfg, settings)
         if stage is not None:
             from ..plotting import figure_labels
@@ -199,25 +197,6 @@ def run_fit(
                 "mass_start": mass, "mass_held": bool(hold_mass),
                 "settings": settings.echo(start)}, figure_labels(cfg))
     return fr
-
-
-def _note_lower_minimum(fr: Any, fit: Any, data: Any, sig: Any, bkg: Any,
-                        window: tuple[float, float], binned: bool | None,
-                        start: Mapping[str, float], settings: _FitSettings) -> Any:
-    """``fr`` with a note when the fitter's own starts (a coarse likelihood scan of the
-    window) reach a lower minimum than the fit started at the given mass."""
-    free_start = {k: v for k, v in start.items() if k != "mass"}
-    try:
-        ref = fit(data, sig, bkg, window, binned=binned, start=free_start,
-                  **{**settings.arguments(), "intervals": False})
-    except FitError:
-        return fr
-    gap = 2.0 * (fr.nll - ref.nll)
-    if not gap > 0.1:  # Delta(-2 ln L) below 0.1: the same minimum for any purpose here
-        return fr
-    return _with_note(fr, f"a lower minimum exists at mass {ref.peak_mass:.6g} {fr.unit} "
-                          f"(-2 ln L lower by {gap:.3g}): this fit, started at the given "
-                          "mass, is a local minimum")
 
 
 def _with_note(fr: Any, note: str) -> Any:
@@ -263,9 +242,19 @@ def _write_fit(target: Path, fr: Any, run: Mapping[str, Any], labels: Any = None
     buf = io.BytesIO()
     with figure_style():
         fig.savefig(buf, format="png")
-    d = {**_plain(fr.to_dict()), "run": _plain(dict(run))}
+    from .doubts import fit_doubts
+
+    d = _plain(fr.to_dict())
+    # the fit's doubts, as results.json's "warnings" (the same words)
+    d = {**d, "warnings": fit_doubts(d, _started(run)), "run": _plain(dict(run))}
     png = atomic_write(target / "fit.png", buf.getvalue())
     return {"fit.json": write_results_json(d, target / "fit.json"), "fit.png": png}
+
+
+def _started(run: Mapping[str, Any]) -> str:
+    """Where ``peaksift fit``'s mass started, in the words of its warnings."""
+    held = " (held there)" if run.get("mass_held") else ""
+    return f"at the given mass {run.get('mass_start'):g} GeV{held}"
 
 
 def _fit_data(cfg: Config, col: Any, hist: Any) -> tuple[bool | None, Any]:

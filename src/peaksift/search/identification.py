@@ -50,13 +50,13 @@ class DedxOutcome(FrozenValue):
                 f"{r.resolution:.3g}; {self.tracks_read} tracks read)")
 
     def plot(self, path: Any = None, *, hypotheses: Sequence[str] = (),
-             band: float = 3.0) -> Any:
+             band: float = 3.0, run: Any = None) -> Any:
         """The tracks' dE/dx against momentum with every hypothesis's expected curve and the
         ±``band`` sigma band of ``hypotheses`` (the pairing's), as a matplotlib Figure drawn
         without pyplot; saved to ``path`` when given."""
         from ..plotting_dedx import draw_dedx
 
-        fig = draw_dedx(self, hypotheses=hypotheses, band=band)
+        fig = draw_dedx(self, hypotheses=hypotheses, band=band, run=run)
         if path is not None:
             fig.savefig(path)
         return fig

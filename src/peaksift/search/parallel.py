@@ -304,7 +304,7 @@ def _warm_up(formats: Sequence[str] = ()) -> None:
     The run's own expressions are not typeset here in advance: laid out in this shared
     parser at the figures' resolution, some were later drawn with overlapping glyphs (a
     tick label "60" as a "6" over a "0"), and the time it saved was within the noise.
-    Nor is text measured as a path here (``_style.text_width``, the value tables): a path
+    Nor is text measured as a path here (``_annotations.text_width``, the value tables): a path
     layout of typeset text keeps its FreeType fonts in matplotlib's cache, a forked drawer
     would share their file offsets with this one, and two drawers reading glyphs at once
     could read each other's (matplotlib reopens only the fonts of its font cache in a

@@ -206,9 +206,10 @@ class SearchResult:
         from .._format import mass_text, significance
 
         b = dict(self.best or {})
+        with_syst = " with systematics" if self.systematics else ""  # best is then theirs
         rows = [("best mass", f"{mass_text(b.get('mass'))} GeV"),
-                ("local", significance(b, "local")),
-                ("global", significance(b, "global"))]
+                ("local", significance(b, "local") + with_syst),
+                ("global", significance(b, "global") + with_syst)]
         if self.fit is not None:  # as the summary quotes them: intervals where made
             fit, free = _fit_dict(self.fit), FITS["free_fit"][0]
             # an invalid fit's numbers flagged beside them, as the report's tables do (the
@@ -223,6 +224,10 @@ class SearchResult:
             rows.append(("fit", "not made: blinded as configured"))
         if self.limits is not None:
             rows.append(("limits", f"{self.limits.masses.size} masses, {self.limits.unit}"))
+        # the doubts the summary and the report print (the invalid free fit has its row)
+        warned = [w for w in self.warnings if w.get("topic") != "fit"]
+        if warned:
+            rows.append(("WARNINGS", " | ".join(str(w.get("message")) for w in warned)))
         if self.outdir is not None:
             rows.append(("outputs", str(self.outdir)))
         return rows
@@ -282,7 +287,7 @@ class SearchResult:
         from ..resonances import KnownMatch
         from ..stats.limit_result import LimitResult
         from ..stats.scan_result import ScanResult
-        from ..stats.signal_model import SignalModel
+        from ..stats.signal_model_result import SignalModel
 
         try:
             cfg = load_config(dict(d["config"]))
@@ -340,7 +345,7 @@ class SearchResult:
                              + f" (figures: {', '.join(names)})")
         labels = plotting.figure_labels(self.config)
         if which == "dedx":
-            fig = self._dedx_figure()
+            fig = self._dedx_figure(labels.run)
         elif which == "spectrum" and self.fit is None and self.histogram is None:
             fig = self.background_fit.plot(run=labels.run, symbol=labels.symbol, log=log)
         else:
@@ -359,7 +364,7 @@ class SearchResult:
             fig.savefig(path)
         return fig
 
-    def _dedx_figure(self) -> Any:
+    def _dedx_figure(self, run: Any = None) -> Any:
         """The identification figure from the record results.json keeps (None without)."""
         from .identification import DedxOutcome
 
@@ -367,7 +372,7 @@ class SearchResult:
         if not d or "counts" not in d:
             return None
         return DedxOutcome.from_dict(d).plot(hypotheses=tuple(self.config.pairing.hypotheses),
-                                             band=self.config.identification.band)
+                                             band=self.config.identification.band, run=run)
 
     def to_dict(self) -> dict[str, Any]:
         """The content of ``results.json``."""

@@ -1,4 +1,22 @@
-"""The whole search from a config: :func:`run_search`."""
+"""The whole search from a config: :func:`run_search`.
+
+How a search runs
+-----------------
+* :func:`run_search` hands a combination config to :mod:`.combination`; otherwise it loads
+  the config, checks the inputs and runs :func:`_search` in a staging folder
+  (:mod:`.staging`): the outputs move into place only when every stage succeeded.
+* :func:`_search` starts the figure process (:class:`~.parallel.FigureWorker`) before the
+  events are read, and stops it and every stage beside when anything fails.
+* :func:`_stages`, in order: dE/dx identification, reading and selecting (:mod:`.common`),
+  the spectrum (its blinded bins emptied), the calibration fit, the signal model, the mass
+  scan, the limits (:mod:`.limits`; in a forked process beside the rest unless
+  ``limits.method = "toys"`` or the engine is not serial), the global significance,
+  ``[systematics]``, the free and background-only fits (a sideband fit while blinded), the
+  known particles, then results.json, figures and the report.
+  :class:`_Clock` logs each stage's wall and CPU time (``peaksift -v``).
+* A figure job reaches the drawer as plain attributes (:func:`_draw`, :func:`_drawn`), so
+  the figure process need not load numba, awkward or the config's modules to unpickle it.
+"""
 
 from __future__ import annotations
 
@@ -10,8 +28,6 @@ from collections.abc import Mapping
 from pathlib import Path
 from types import SimpleNamespace
 from typing import Any
-
-import numpy as np
 
 from .._jit import numba_extensions_deferred
 from ..config import Config, load_config
@@ -28,12 +44,13 @@ from .common import (
     _scan_masses,
     _scan_signal_name,
     _shape,
+    _toy_executor,
     _utc,
     _versions,
-    _where,
 )
 from .fit import _fit_data, _fit_settings, _fit_start, _note_tie_drift
 from .identification import dedx_identification
+from .limits import _limit_masses, _limits
 from .parallel import Beside, FigureWorker, cpu_seconds
 from .result import SearchResult
 from .signal import search_signal_model
@@ -410,7 +427,8 @@ def _stages(cfg: Config, *, unblind: bool, progress: bool, started: str,
     if ident is not None and cfg.output.draws("dedx"):
         more["dedx"] = plotting_dedx.dedx_figure(ident, figdir, formats=cfg.output.formats,
                                             hypotheses=tuple(cfg.pairing.hypotheses),
-                                            band=cfg.identification.band)
+                                            band=cfg.identification.band,
+                                            run=plotting.figure_labels(cfg).run)
     clock.lap("figures (here)")
     drawn = {**(drawer.finish() if drawer is not None else {}), **more}
     # CPU seconds of each process of the run: the main line is the critical path, the
@@ -456,64 +474,3 @@ def _drawn(value: Any) -> Any:
     if isinstance(value, FitResult) and value.cost is not None:
         return dataclasses.replace(value, cost=None)
     return value
-
-
-def _opt(**kw: Any) -> dict[str, Any]:
-    """Keyword arguments whose value is not None (optional features of the layers)."""
-    return {k: v for k, v in kw.items() if v is not None}
-
-
-def _toy_executor(cfg: Config, desc: str = "toy batches") -> Any:
-    """The toys' map on the configured engine (None: serial, in this process).  Toys are
-    seeded one by one (global significance) or per mass (limits), so the engine does not
-    change the result."""
-    ex = cfg.execution
-    if ex.engine == "serial":
-        return None
-    import functools
-
-    from ..execution import map_tasks
-
-    return functools.partial(map_tasks, engine=ex.engine, workers=ex.workers,
-                             address=ex.address or None, desc=desc,
-                             start_method=ex.start_method)
-
-
-def _limit_masses(cfg: Config, masses: np.ndarray) -> np.ndarray:
-    """The limits' mass points: ``limits.points`` evenly over the scan's masses."""
-    n = min(cfg.limits.points, masses.size)
-    return np.linspace(masses[0], masses[-1], n) if n > 1 else masses[:1]
-
-
-def _limits(cfg: Config, hist: Any, sig: Any, bkg: Any, masses: np.ndarray,
-            width: float | None, blind: Any, progress: bool, smodel: Any = None) -> Any:
-    from ..stats.limits import upper_limits
-
-    lm = _limit_masses(cfg, masses)
-    L = cfg.limits
-    half = (lm[-1] - lm[0]) / (2 * (lm.size - 1)) if lm.size > 1 else 0.0
-    for i, m in enumerate(L.toy_masses):
-        if not lm[0] - half <= m <= lm[-1] + half:
-            raise ConfigError(
-                f"{_where(cfg)}: limits.toy_masses[{i}] = {m:g} lies outside the limit scan "
-                f"[{lm[0]:g}, {lm[-1]:g}] GeV (the scan keeps 3 resolution sigma inside the "
-                "window unless scan.start / scan.stop say otherwise); choose masses inside it")
-    if smodel is not None:  # the model gives shape, resolution and efficiency
-        sig, width = None, None
-    return upper_limits(
-        hist, sig, bkg, lm,
-        **({"signal_model": smodel} if smodel is not None
-           else {"resolution": cfg.model.resolution.resolution}),
-        window=cfg.spectrum.window, cl=L.cl,
-        method=L.method,
-        **_opt(toys=L.toys if L.method != "asymptotic" else None, seed=cfg.significance.seed,
-               toy_masses=list(L.toy_masses) or None,
-               natural_width=width, blind=blind, luminosity=L.luminosity,
-               luminosity_uncertainty=L.luminosity_uncertainty or None,
-               efficiency=L.efficiency if L.luminosity is not None and smodel is None
-               else None,
-               efficiency_uncertainty=L.efficiency_uncertainty or None,
-               unit=L.cross_section_unit if L.luminosity is not None else None),
-        constraint=L.constraint, progress=progress,
-        executor=_toy_executor(cfg, "toy limits") if L.method != "asymptotic" else None,
-    )

@@ -20,6 +20,7 @@ from typing import Any
 
 import numpy as np
 
+from .._format import chi_square
 from .._values import FrozenValue, Measurement
 
 __all__ = ["SidebandFit", "sideband_fit"]
@@ -65,7 +66,7 @@ class SidebandFit(FrozenValue):
         return (f"SidebandFit({self.background_shape} on the sidebands of "
                 f"{self.blind[0]:g}-{self.blind[1]:g} {self.unit}: background "
                 f"{self.background_yield} in the window, {self.blinded_yield} expected in the "
-                f"blinded bins; chi2/ndf = {self.gof_chi2:.1f}/{self.gof_ndf}, "
+                f"blinded bins; chi2/ndf = {chi_square(self.gof_chi2)}/{self.gof_ndf}, "
                 f"p = {self.gof_p_value:.3g}{'' if self.valid else '; NOT VALID'})")
 
     def plot(self, path: Any = None, *, run: Any = None, symbol: str | None = None,

@@ -25,6 +25,7 @@ from typing import Any
 
 import numpy as np
 
+from .._format import interval_at_bounds
 from ..config import Config
 from ..errors import ConfigError, FitError
 
@@ -253,11 +254,14 @@ def fitted_mass(cfg: Config, fit_dict: dict[str, Any]) -> dict[str, Any] | None:
     """The results.json ``systematics.fitted_mass``: the free fit's peak position with the
     mass scale profiled (:meth:`peaksift.likelihood.SignalNuisances.mass_interval`, from the
     fit's profile interval on ``mass``, else its symmetric error); None without a mass
-    scale or a usable fit."""
+    scale or a usable fit, or when an end of that interval is the mass's bound."""
     nuis = _nuisances(cfg)
     pm = fit_dict.get("peak_mass") or {}
     value, err = pm.get("value"), pm.get("error")
     iv = (fit_dict.get("intervals") or {}).get("mass")
+    par = (fit_dict.get("parameters") or {}).get("mass") or {}
+    if iv and any(interval_at_bounds(par.get("value", value), *iv, par.get("bounds"))):
+        return None  # an end on the mass's bound is no error to widen (the fit notes it)
     em, ep = (-float(iv[0]), float(iv[1])) if iv and None not in iv else (err, err)
     if not nuis.mass_scale or value is None or em is None or ep is None:
         return None

@@ -1,13 +1,15 @@
-"""Compiled (numba, cached on disk) CDFs of the common shapes at many bin edges.
+"""Compiled (numba, cached on disk) CDFs of the Gaussian and power law at many bin edges,
+and the Crystal Ball's primitive and density.
 
 What is here and who uses it
 ----------------------------
-* ``gaussian_edges``, ``powerlaw_edges``, ``exponential_edges`` -- one parameter set: the
-  window-normalised CDF at every edge and its derivative in each shape parameter, as rows
-  of an output array (the fit's compiled cost, :mod:`peaksift.likelihood.kernels`).
-* ``powerlaw_rows``, ``exponential_rows`` -- stacked parameter sets (one per mass
-  hypothesis or toy): bin fractions and their derivatives, one exponential per edge and
-  row (the scan's and the toys' background, through ``PowerLaw`` / ``ExpPoly``).
+* ``gaussian_edges``, ``powerlaw_edges`` -- one parameter set: the window-normalised CDF at
+  every edge and its derivative in each shape parameter, as rows of an output array (the
+  fit's compiled cost, :mod:`peaksift.likelihood.kernels`; the exponential's rows are in
+  :mod:`.compiled_exponential`).
+* ``powerlaw_rows`` -- stacked parameter sets (one per mass hypothesis or toy): bin
+  fractions and their derivatives, one exponential per edge and row (the scan's and the
+  toys' background, through ``PowerLaw``; the exponential's: :mod:`.compiled_exponential`).
 * ``gaussian_rows`` -- bin fractions of a Gaussian at many trial masses (the free fit's
   coarse scan of the window for starting masses, :mod:`peaksift.likelihood.starts`);
   ``gaussian_width_rows`` the same at one mass for many widths, each on its own band of
@@ -21,9 +23,9 @@ What is here and who uses it
 
 The formulae are those of the shapes' numpy fast paths (``fractions_and_grad`` in
 :mod:`.signal` and :mod:`.background`), which stay the reference; a kernel returns False
-where that path switches to a series (power law near k = 1, exponential near b = 0) and the
-caller then takes the numpy path.  Imported lazily: ``import peaksift.shapes`` does not load
-numba.
+where that path switches to a series (power law near k = 1) and the caller then takes the
+numpy path.  The vectorising exp and log: :mod:`.compiled_math`.  Imported lazily:
+``import peaksift.shapes`` does not load numba.
 """
 
 from __future__ import annotations
@@ -31,93 +33,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from llvmlite import ir
-from numba import njit, types
-from numba.extending import intrinsic
+from numba import njit
 
-__all__ = ["crystalball_density", "crystalball_primitive", "exponential_edges",
-           "exponential_rows", "exponential_rows_into", "gaussian_edges", "gaussian_rows", "gaussian_scan_rows",
-           "gaussian_width_rows", "powerlaw_edges", "powerlaw_rows", "vexp", "vlog"]
+from .compiled_math import vexp
 
-
-# ------------------------------------------------------- exp and log that vectorise
-# numba's math.exp / math.log are calls into the C library, one element at a time (~20 ns
-# each here); a loop over a fit's 1,351 edges spends most of an evaluation in them.  These
-# are plain arithmetic and bit operations, so LLVM vectorises the loops that use them
-# (4 doubles per instruction): ~3x faster, within 2 ulp of the library (tested in
-# tests/test_likelihood_kernels.py against numpy).  Used by the fit's edge kernels and
-# Poisson pass only; the scan's and toys' stacked rows keep the library functions.
-
-
-@intrinsic
-def _bits_to_float(typingctx, v):  # pragma: no cover - compile time
-    def codegen(context, builder, signature, args):
-        return builder.bitcast(args[0], ir.DoubleType())
-    return types.float64(types.int64), codegen
-
-
-@intrinsic
-def _float_to_bits(typingctx, v):  # pragma: no cover - compile time
-    def codegen(context, builder, signature, args):
-        return builder.bitcast(args[0], ir.IntType(64))
-    return types.int64(types.float64), codegen
-
-
-_LOG2E = 1.4426950408889634
-_LN2_HI = 6.93147180369123816490e-01  # ln 2 split in two (fdlibm): exact k * _LN2_HI
-_LN2_LO = 1.90821492927058770002e-10
-
-
-@njit(inline="always", error_model="numpy")
-def vexp(x):  # pragma: no cover - compiled
-    """exp(x): x = k ln2 + r, |r| <= ln2/2, exp(r) by its Taylor series to r^13 (error
-    < 1e-17), times 2^k built from the exponent bits in two halves (so results down to the
-    subnormals and up to overflow come out right); inf, 0 and NaN as the library."""
-    xc = min(max(x, -746.0), 710.0)
-    k = math.floor(xc * _LOG2E + 0.5)
-    r = xc - k * _LN2_HI - k * _LN2_LO
-    p = 1.0 + r * (1.0 + r * (0.5 + r * (1.0 / 6 + r * (1.0 / 24 + r * (
-        1.0 / 120 + r * (1.0 / 720 + r * (1.0 / 5040 + r * (1.0 / 40320 + r * (
-            1.0 / 362880 + r * (1.0 / 3628800 + r * (1.0 / 39916800 + r * (
-                1.0 / 479001600 + r * (1.0 / 6227020800)))))))))))))
-    ki = np.int64(k)
-    h = ki >> 1
-    out = p * _bits_to_float((h + 1023) << 52) * _bits_to_float((ki - h + 1023) << 52)
-    return x if math.isnan(x) else out
-
-
-_SQRT2 = 1.4142135623730951
-# fdlibm's e_log.c polynomial for ln((1+s)/(1-s)) = 2s + s R(s^2)
-_LG1, _LG2 = 6.666666666666735130e-01, 3.999999999940941908e-01
-_LG3, _LG4 = 2.857142874366239149e-01, 2.222219843214978396e-01
-_LG5, _LG6 = 1.818357216161805012e-01, 1.531383769920937332e-01
-_LG7 = 1.479819860511658591e-01
-_TINY = 2.2250738585072014e-308  # smallest normal double
-
-
-@njit(inline="always", error_model="numpy")
-def vlog(x):  # pragma: no cover - compiled
-    """ln(x) by fdlibm's method (x = 2^e m, m in [sqrt(1/2), sqrt 2), ln m from
-    s = (m-1)/(m+1)); subnormals scaled first; 0 -> -inf, negative -> NaN, inf, NaN as
-    the library."""
-    sub = x < _TINY
-    xs = x * 18014398509481984.0 if sub else x  # 2^54
-    b = _float_to_bits(xs)
-    e = (b >> 52) - (1023 + 54 if sub else 1023)
-    m = _bits_to_float((b & 0x000FFFFFFFFFFFFF) | 0x3FF0000000000000)  # [1, 2)
-    big = m > _SQRT2
-    m = 0.5 * m if big else m
-    dk = float(e + 1 if big else e)
-    f = m - 1.0
-    s = f / (2.0 + f)
-    z = s * s
-    w = z * z
-    r = w * (_LG2 + w * (_LG4 + w * _LG6)) + z * (_LG1 + w * (_LG3 + w * (_LG5 + w * _LG7)))
-    hfsq = 0.5 * f * f
-    out = dk * _LN2_HI - ((hfsq - (s * (hfsq + r) + dk * _LN2_LO)) - f)
-    if x > 0.0:
-        return out if x < math.inf else x
-    return -math.inf if x == 0.0 else math.nan
+__all__ = ["crystalball_density", "crystalball_primitive", "gaussian_edges", "gaussian_rows",
+           "gaussian_scan_rows", "gaussian_width_rows", "powerlaw_edges", "powerlaw_rows"]
 
 _INV_SQRT2PI = 1.0 / math.sqrt(2.0 * math.pi)
 _SQRT1_2 = 1.0 / math.sqrt(2.0)
@@ -303,37 +224,6 @@ def powerlaw_edges(lx, k, l_lo, l_hi, out):  # pragma: no cover - compiled
     return True
 
 
-@njit(cache=True, nogil=True)
-def exponential_constants(b):  # pragma: no cover - compiled
-    """The constants of exp(b t) on t in [-1, 1] that its bin fractions and their b
-    derivative use (the formulae of ``ExpPoly.fractions_and_grad``): e^{-b}, e^b, 1/b, 1/b^2,
-    g0, g_hi, b / (e^b - e^{-b}) and the fractions' scale."""
-    em = math.exp(-b)
-    ep = math.exp(b)
-    inv_z = b / (ep - em)
-    ib = 1.0 / b
-    ib2 = ib * ib
-    g0 = em * (ib + ib2)
-    ghi = ep * (ib - ib2) + g0
-    scale = inv_z * ib
-    return em, ep, ib, ib2, g0, ghi, inv_z, scale
-
-
-@njit(cache=True, nogil=True)
-def exponential_edges(t, b, out):  # pragma: no cover - compiled
-    """Rows: C, dC/db1 of exp(b1 t), t in [-1, 1] across the window (the formulae of
-    ``ExpPoly.fractions_and_grad``); False for |b1| < 1e-3, where that path uses a series."""
-    if abs(b) < 1e-3:
-        return False
-    em, _, ib, ib2, g0, ghi, inv_z, scale = exponential_constants(b)
-    for i in range(t.size):
-        e = vexp(b * t[i])
-        c = (e - em) * scale
-        out[0, i] = c
-        out[1, i] = (e * (t[i] * ib - ib2) + g0 - c * ghi) * inv_z
-    return True
-
-
 @njit(inline="always")
 def _exp0(x):  # pragma: no cover - compiled
     """math.exp(x), 1 exactly at x = +-0 without the library call: one of an evaluation's
@@ -374,73 +264,6 @@ def powerlaw_rows(lx, dlx, k, l_lo, l_hi, frac, grad):  # pragma: no cover - com
                 if i > 0:
                     grad[b, i - 1] = dk - d_prev
                 d_prev = dk
-    return True
-
-
-@njit(cache=True, nogil=True)
-def exponential_rows(t, dt, bs, frac, grad):  # pragma: no cover - compiled
-    """Bin fractions (floored at 0) and d/db1 (if ``grad.size``) of exp(b1 t) for every
-    row's ``bs[b]``; False if a row has |b1| < 1e-3.  Fractions as
-    ``e^{b t_i} expm1(b dt_i) / Z`` (full relative precision, as for the power law).
-    :func:`exponential_rows_into` with its work row made here."""
-    return exponential_rows_into(t, dt, bs, frac, grad, np.empty(t.size))
-
-
-@njit(cache=True, nogil=True)
-def exponential_rows_into(t, dt, bs, frac, grad, ev):  # pragma: no cover - compiled
-    """:func:`exponential_rows` with a work row ``ev`` of ``t.size`` (a scan's rows call it
-    ~6 times each: its allocation was ~0.1 us of a call's ~0.2 us fixed cost).
-
-    The edges' exponentials first, in a loop that vectorises (:func:`vexp`, within 1 ulp
-    of the library's); then ``expm1(b dt_i)`` only where a bin's width differs from the
-    previous bin's (equal widths, the usual binning: one call, the same numbers).  The two
-    library calls per edge were ~70% of a joint fit's time and most of a scan's.
-
-    The derivative of each bin is its fraction times ``t_i + dt_i (1 + m) / m - coth b``
-    (m = expm1(b dt_i): d ln(fraction) / db), so it keeps the fraction's relative
-    precision; as the difference of the CDF's derivatives at the edges it kept ~1e-4 in
-    the far tail of a steep slope, where a fit's gradient multiplies it by n / nu."""
-    ne = t.size
-    want = grad.size > 0
-    uniform = True   # every bin as wide as the first: the fractions' loop vectorises
-    for i in range(1, ne - 1):
-        if dt[i] != dt[0]:
-            uniform = False
-            break
-    for r in range(bs.size):
-        b = bs[r]
-        if abs(b) < 1e-3:
-            return False
-        em, ep, _, _, _, _, _, scale = exponential_constants(b)
-        for i in range(ne):
-            ev[i] = vexp(b * t[i])
-        if uniform:
-            m1 = math.expm1(b * dt[0])
-            for i in range(ne - 1):
-                frac[r, i] = max(0.0, ev[i] * m1 * scale)
-        else:
-            d_last = math.nan
-            m1 = 0.0
-            for i in range(ne - 1):
-                if dt[i] != d_last:
-                    d_last = dt[i]
-                    m1 = math.expm1(b * d_last)
-                frac[r, i] = max(0.0, ev[i] * m1 * scale)
-        if want:
-            coth = (ep + em) / (ep - em)
-            if uniform:
-                k0 = dt[0] * (1.0 + m1) / m1 - coth
-                for i in range(ne - 1):
-                    grad[r, i] = frac[r, i] * (t[i] + k0)
-            else:
-                d_last = math.nan
-                k0 = 0.0
-                for i in range(ne - 1):
-                    if dt[i] != d_last:
-                        d_last = dt[i]
-                        m1 = math.expm1(b * d_last)
-                        k0 = d_last * (1.0 + m1) / m1 - coth
-                    grad[r, i] = frac[r, i] * (t[i] + k0)
     return True
 
 

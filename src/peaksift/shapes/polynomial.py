@@ -21,6 +21,7 @@ from .background_base import (
     _stacked,
     _t,
 )
+from .exp_slope import slope_fractions
 
 __all__ = ["Bernstein", "ExpPoly", "Exponential"]
 
@@ -104,14 +105,14 @@ class ExpPoly(_ExpFamily, _Background):
         p = _stacked(params, edges)
         if p is None:
             return None
-        from .compiled import exponential_rows
+        from .compiled_exponential import exponential_rows
 
         _, t, dt, _, _ = self.row_inputs(edges, window)
         return _rows(lambda f, g: exponential_rows(t, dt, p, f, g), p.size, t.size - 1, grad)
 
     def row_inputs(self, edges: Any, window: tuple[float, float]) -> tuple | None:
         """``("exponential", t, dt, 0, 0)``: the clipped edges in the window-scaled variable
-        and the bin widths in it, the inputs of :func:`.compiled.exponential_rows` for
+        and the bin widths in it, the inputs of :func:`.compiled_exponential.exponential_rows` for
         stacked slopes (None for order > 1 or edges that are not 1-d)."""
         if self.order != 1 or np.ndim(edges) != 1:
             return None
@@ -123,32 +124,21 @@ class ExpPoly(_ExpFamily, _Background):
 
     def bin_fractions(self, edges, params, window):
         out = self._stacked_rows(edges, params, window, False)
-        return out[0] if out is not None else super().bin_fractions(edges, params, window)
+        if out is not None:
+            return out[0]
+        if self.order == 1 and len(params) == 1:
+            return slope_fractions(edges, params[0], window, False)[0]
+        return super().bin_fractions(edges, params, window)
 
     def fractions_and_grad(self, edges, params, window, need=None):
         if np.ndim(params[0]) or self.order != 1:
             out = self._stacked_rows(edges, params, window, True)
             if out is not None:
                 return out
-        if self.order != 1 or np.ndim(params[0]) or abs(float(params[0])) < 1e-3:
+        if self.order != 1 or len(params) != 1:
             return super().fractions_and_grad(edges, params, window, need)
-        b = float(params[0])
-        lo, hi = float(window[0]), float(window[1])
-        x = np.asarray(edges, dtype=float)
-        if x[0] < lo or x[-1] > hi:
-            x = np.clip(x, lo, hi)
-        t = (x - 0.5 * (lo + hi)) * (2.0 / (hi - lo))
-        e = np.exp(b * t)
-        em, ep = math.exp(-b), math.exp(b)
-        # P(t) = (e^{bt} - e^{-b}) / b, dP/db = e^{bt}(t/b - 1/b^2) + e^{-b}(1/b + 1/b^2)
-        inv_z = b / (ep - em)  # 1 / P(1)
-        c = (e - em) * (inv_z / b)
-        ib, ib2 = 1.0 / b, 1.0 / (b * b)
-        g0 = em * (ib + ib2)
-        gx = e * (t * ib - ib2) + g0
-        ghi = ep * (ib - ib2) + g0
-        grad = (gx - c * ghi) * inv_z
-        return c[1:] - c[:-1], (grad[1:] - grad[:-1])[None, :]
+        frac, grad = slope_fractions(edges, params[0], window, True)
+        return frac, grad[None]
 
     def pdf_and_grad(self, x, params, window, need=None):
         if self.order != 1:

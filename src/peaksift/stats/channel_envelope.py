@@ -23,7 +23,8 @@ The scan and the toys of the global significance (:func:`envelope_toy_scans`: ev
 generated from the function its envelope takes at mu = 0, every assignment fitted) are
 profiled this way, and so are the asymptotic combined limits
 (:func:`peaksift.stats.channel_limits.combined_limits`, with :func:`channel_candidates` and
-:func:`null_choice`; their toy limits generate and fit the function at mu = 0).
+:func:`null_choice`) and their toy limits (:mod:`peaksift.stats.channel_toy_limits`: every
+toy's q~mu profiled over the assignments).
 """
 
 from __future__ import annotations

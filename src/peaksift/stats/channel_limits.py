@@ -12,9 +12,11 @@
   function its envelope takes at mu = 0 on the data;
 * toys (Read, J. Phys. G 28 (2002) 2693) where the summed background under the signal is
   below ``low_count_background`` events and ``method="auto"`` (or at ``toy_masses`` with
-  ``method="toys"``): :func:`peaksift.stats.channel_toys.joint_toy_limit`, the toys
-  generating every channel (with its envelope's function at mu = 0, not profiled; its
-  shape factors profiled, their global observables drawn per toy);
+  ``method="toys"``): :func:`peaksift.stats.channel_toy_limits.joint_toy_limit`, the toys
+  generating every channel (the background-only ones with its envelope's function at
+  mu = 0, the signal-plus-background ones with the function the data's envelope takes at
+  mu) and every toy's q~mu profiled over the assignments of functions as above; its shape
+  factors profiled, their global observables drawn per toy;
 * where a channel's mass scale reaches beyond its peak's width, the asymptotic limits carry
   :func:`peaksift.stats.scale_scan.asimov_band_note` (the expected band from the Asimov
   data set is likely too low there), as a single channel's do;
@@ -39,7 +41,7 @@ from .._values import FrozenValue
 from .._vocabulary import method_words
 from ..errors import FitError
 from .channel_envelope import channel_candidates, null_choice
-from .channel_toys import run_joint_toy_limit
+from .channel_toy_limits import run_joint_toy_limit
 from .channels import Channel, _full_model, _prepare, _prepare_all, signal_norms
 from .cls import _BANDS, _bisect
 from .envelope_choice import choice_entry, read_channel_entries
@@ -370,29 +372,31 @@ def combined_limits(channels: Sequence[Channel], masses: Any, *, cl: float = 0.9
                  [int(np.argmin(np.abs(m_all - float(x)))) for x in np.atleast_1d(toy_masses)])
         want += list(picks)
     toy_info: dict[str, Any] = {}
-    if envelope and want:
-        # profiling it would refit every toy once per assignment of functions (the
-        # envelope's combined scan costs ~5x the plain one with 2 x 2 functions)
-        notes.append("the toy-based limits generate and fit each channel with the background "
-                     "function its envelope takes at mu = 0: they do not profile the choice "
-                     "of function (the asymptotic ones do) and can be too strong where "
-                     "another function describes the data about as well")
     todo, tasks = [], []
     for j in sorted({int(x) for x in want}):
         if bl[j]:
             notes.append(f"toy limits at {m_all[j]:g} skipped: blinded")
             continue
         row = int(np.sum(~bl[:j]))
-        one = [dataclasses.replace(m, masses=m.masses[row:row + 1],
-                                   fractions=m.fractions[row:row + 1])
-               for m in (triples[c][null[c]][0] for c in range(len(chans)))]
+
+        def at_row(m: Any, row: int = row) -> Any:
+            return dataclasses.replace(m, masses=m.masses[row:row + 1],
+                                       fractions=m.fractions[row:row + 1])
+
+        one = [at_row(triples[c][null[c]][0]) for c in range(len(chans))]
+        # with an envelope every toy's q~mu is profiled over the assignments of functions
+        # (the toys generated from the function each envelope takes, as the asymptotic
+        # limits' Asimov data and the single channel's toy limits)
+        cands = None if not envelope else [[at_row(triples[c][f][0])
+                                            for c, f in enumerate(combo)] for combo in combos]
+        pens_t = None if not envelope else [p - min(pens) for p in pens]
         # the channels' shape factors at this hypothesis, profiled in every toy's fits
         shp = None if sp_obs is None else [
             None if sp is None else (sp[0], [np.asarray(v)[row:row + 1] if np.ndim(v) else v
                                              for v in sp[1]], sp[2]) for sp in sp_obs]
         todo.append(j)
         tasks.append((one, [float(k[j]) for k in conv], norms, cl, int(toys), int(seed) + j,
-                      float(obs[j]), bands[:, j].copy(), shp))
+                      float(obs[j]), bands[:, j].copy(), shp, cands, pens_t))
     # one task per mass, each seeded by its mass: the engine does not change the result
     done = (list(executor(run_joint_toy_limit, tasks)) if executor is not None
             and len(tasks) > 1 else [run_joint_toy_limit(t) for t in tasks])

@@ -9,8 +9,9 @@ from typing import Any
 
 import numpy as np
 
+from .._annotations import RunLabel, draw_header, shade_blinded
 from .._format import fixed, mass_text
-from .._style import COLORS, RunLabel, draw_header, figure_style, new_figure, shade_blinded
+from .._style import COLORS, figure_style, new_figure
 from .significance import p_from_q0
 
 __all__ = ["pvalue_figure"]

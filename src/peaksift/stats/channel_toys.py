@@ -1,217 +1,33 @@
-r"""The combination's toys: every channel generated, the joint likelihood fitted.
+r"""The combination's global-significance toys: every channel generated, the joint
+likelihood fitted.
 
-* :func:`combined_toy_scans` -- q0 scans of background-only toys (the global significance);
-* :func:`joint_toy_limit`    -- the toy-based CLs limit at one mass, below.
+* :func:`combined_toy_scans` -- q0 scans of background-only toys (the global significance),
+  in batches of ``_TOY_CHUNK`` toys (:func:`run_toy_scans`, picklable);
+* :func:`toy_q0`             -- the q0 of given toy counts (the envelope's toys use it per
+  assignment of functions, :mod:`peaksift.stats.channel_envelope`).
 
-The single-channel recipe of :mod:`peaksift.stats.toy_limits` (Read, J. Phys. G 28 (2002)
-2693; Junk, NIM A 434 (1999) 435) on the joint likelihood of
-:mod:`peaksift.stats.joint`:
-
-* background-only toys: every channel drawn from its background-only fit to the data, the
-  normalisation nuisances' auxiliary measurements from N(0, 1); one set for every signal
-  value;
-* signal-plus-background toys at each signal value mu of a grid: every channel drawn from
-  the data's conditional fit at mu, the auxiliary measurements from N(nu_hat, 1);
-* each toy's q~mu (CCGV eq. 16) with every channel's background and the nuisances profiled
-  (its own auxiliary measurements in the constraints);
-* a channel's shape factors (mass scale, resolution) profiled too, their global observables
-  drawn per toy (around 1 for the background-only toys, around the data's conditional fit
-  for the signal-plus-background ones, whose signal shape they set), as the single
-  channel's toy limits with systematics do (:mod:`peaksift.stats.toy_limits_systematics`);
-  every fit, of the data and of the toys, and the global significance toys' refitted top
-  points take each channel's lowest well of the mass scale
-  (:func:`peaksift.stats.joint_wells.joint_global`);
-* CLs+b and CLb from both sets with the balance-heuristic weights (as the single channel:
-  unbiased, precise in both tails), ties within 0.01 in q; the observed limit and the
-  expected band (the background-only toys' own limits) where ln CLs, linear in mu between
-  grid points, falls through ln(1 - CL).
+The toy-based CLs limits of a combination are :mod:`peaksift.stats.channel_toy_limits`.
+A channel's shape factors (mass scale, resolution) are profiled at each toy's highest
+points (the single channel's method, :mod:`peaksift.stats.shape_profile`), each at the
+lowest well of the mass scale (:func:`peaksift.stats.joint_wells.joint_global`).
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from ..errors import FitError
-from .cls import _BANDS
 from .joint import profile_joint
 from .joint_wells import joint_global
-from .scale_scan import STARTS_TOYS
-from .shape_profile import NUISANCE_REFINE, _fractions, top_points
-from .toy_limits import grid_start, limits_on_grid, pooled_cls
-from .toy_limits_systematics import _draw_centers, _log_density_ratio
-from .toys import bkg_fractions, fit_background, toy_counts
+from .shape_profile import NUISANCE_REFINE, top_points
+from .toys import fit_background, toy_counts
 
-__all__ = ["combined_toy_scans", "joint_toy_limit", "run_joint_toy_limit", "run_toy_scans",
-           "toy_q0"]
+__all__ = ["combined_toy_scans", "run_toy_scans", "toy_q0"]
 
 _TOY_CHUNK = 25   # toys per joint fit stack (toys x masses rows)
-
-
-class _Set:
-    """Stacked data sets of every channel (toys or the data) with their free fits.
-
-    ``shapes``: per channel None or ``(signal, base_params, SignalNuisances)`` at the one
-    hypothesis (arrays ``(1, 1)`` or scalars); its factors are profiled, their constraints
-    centred on ``centers`` (per channel ``(T, J_c)``: each set's global observables), each
-    fit at the lowest well of the mass scale (:func:`~peaksift.stats.joint_wells.joint_global`)."""
-
-    def __init__(self, models: list, counts: list[np.ndarray], conv: list[float],
-                 norms: Any, aux: np.ndarray, shapes: Any = None,
-                 centers: Any = None, memo: dict | None = None) -> None:
-        self.models, self.counts, self.norms, self.aux = models, counts, norms, aux
-        t = counts[0].shape[0]
-        self.f = [np.broadcast_to(m.fractions[0], (t, m.fractions.shape[1])) for m in models]
-        self.k = [np.full(t, c) for c in conv]
-        self.shapes = None if shapes is None or not any(sp is not None for sp in shapes) \
-            else [None if sp is None else (sp[0], [np.repeat(np.asarray(p, float).reshape(
-                1, -1), t, axis=0) if np.ndim(p) else p for p in sp[1]], sp[2])
-                  for sp in shapes]
-        self.centers = centers
-        self.memo = {} if memo is None else memo   # joint_global's, shared by the sets
-        nll0 = 0.0
-        self.theta, self.b = [], []
-        for m, n in zip(models, counts):
-            th, b, nll = fit_background(m, n)
-            self.theta.append(th)
-            self.b.append(b)
-            nll0 = nll0 + nll
-        self.nll_zero = nll0   # mu = 0: the nuisances sit at their auxiliary values
-        r = self._fit(None)
-        self.mu_hat = r["mu"]
-        self.nll_hat = np.minimum(r["nll"], nll0)
-
-    def _fit(self, mu: Any) -> dict[str, Any]:
-        def one(**kw: Any) -> dict[str, Any]:
-            return profile_joint(self.models, self.counts, self.f, self.k, mu_fixed=mu,
-                                 norms=self.norms, nu_start=self.aux, nu_aux=self.aux,
-                                 shapes=self.shapes, shape_centers=self.centers, steps=100,
-                                 tol=1e-3, **{"theta_start": self.theta, "b_start": self.b,
-                                              "factors_start": self.centers, **kw})
-
-        # each channel's mass scale at its lowest well (joint_wells), else the one fit
-        return joint_global(one, self.models, self.counts, self.k, self.shapes,
-                            mu_fixed=mu, centers=self.centers, starts=STARTS_TOYS,
-                            memo=self.memo)
-
-    def q(self, mu: float) -> tuple[np.ndarray, dict[str, Any]]:
-        """q~mu of every set (CCGV eq. 16) and the conditional fits at ``mu``."""
-        t = self.counts[0].shape[0]
-        r = self._fit(np.full(t, mu))
-        ref = np.where(self.mu_hat < 0, self.nll_zero, self.nll_hat)
-        q = np.where(self.mu_hat > mu, 0.0, np.maximum(2.0 * (r["nll"] - ref), 0.0))
-        return q, r
-
-
-def _draw(rng: np.random.Generator, nus: list[np.ndarray], t: int) -> list[np.ndarray]:
-    return [rng.poisson(nu, size=(t, nu.size)).astype(float) for nu in nus]
-
-
-def _centers(shapes: Any, around: list, rng: np.random.Generator, t: int) -> Any:
-    """Per channel the global observables of its shape factors for ``t`` toys, drawn around
-    ``around[c]`` (None for a channel without; None without shapes)."""
-    if shapes is None:
-        return None
-    return [None if sp is None else _draw_centers(sp[2], np.asarray(a, float), rng, t)
-            for sp, a in zip(shapes, around)]
-
-
-def joint_toy_limit(models: list, conv: list[float], norms: Any, cl: float, ntoys: int,
-                    seed: int, obs_asym: float, exp_asym: np.ndarray,
-                    shapes: Any = None) -> dict[str, Any]:
-    """Toy-based CLs limit on sigma x B at one hypothesis (see the module guide).
-
-    ``models``: each channel's ScanModel holding that one hypothesis; ``conv``: each
-    channel's events per unit of sigma x B there; ``norms``: the normalisation nuisances
-    (or None); ``obs_asym``, ``exp_asym``: the asymptotic values that place the grid;
-    ``shapes``: per channel None or ``(signal, base_params, SignalNuisances)`` at that
-    hypothesis (its shape factors profiled, their global observables drawn per toy).
-    Returns ``observed``, ``expected`` (band name -> value), ``grid``, ``cls``,
-    ``n_toys`` and ``notes``."""
-    alpha = 1.0 - cl
-    nj = 0 if norms is None else norms.shape[1]
-    shapes = None if shapes is None or not any(sp is not None for sp in shapes) \
-        else list(shapes)
-    ones = [None if sp is None else np.ones(len(sp[2].shape_active))
-            for sp in (shapes or [])]
-    s_per_mu = sum(k * float(m.fractions[0].sum()) for m, k in zip(models, conv))
-    # no CLs limit lies below -ln(1 - CL) signal events (CLs >= exp(-s), Read 2002); a
-    # nuisance at +2 sigma moves that floor
-    reach = 1.0 if norms is None else math.exp(2.0 * float(np.max(np.sqrt(
-        (norms**2).sum(axis=1)))))
-    floor = -math.log(alpha) / s_per_mu / reach
-    lo, hi = grid_start(floor, obs_asym, exp_asym)
-    ss = np.random.SeedSequence(seed)
-    rng = np.random.default_rng(ss.spawn(1)[0])
-    nu_b = [np.maximum(m.expected_background, 1e-300) for m in models]
-    n_b = _draw(rng, nu_b, ntoys)
-    aux_b = rng.standard_normal((ntoys, nj))
-    # the shape factors do not act without signal: their global observables around the
-    # data's (1)
-    cen_b = _centers(shapes, ones, rng, ntoys)
-    memo: dict = {}   # the mass-scale scans' fractions: one hypothesis, every set's
-    toys_b = _Set(models, n_b, conv, norms, aux_b, shapes, cen_b, memo)
-    data = _Set(models, [m.counts[None, :] for m in models], conv, norms, np.zeros((1, nj)),
-                shapes, None if shapes is None else [None if o is None else o[None, :]
-                                                     for o in ones], memo)
-
-    def evaluate(mu: float) -> tuple[float, float, np.ndarray]:
-        q_obs_a, r = data.q(mu)
-        q_obs = float(q_obs_a[0])
-        nu_hat = r["nu"][0]
-        # the data's conditional fit at mu generates the s+b toys (the shape factors at
-        # their fitted values, their global observables drawn around those)
-        nu_sb, k_sb = [], []
-        for c, m in enumerate(models):
-            e = 1.0 if norms is None else math.exp(float(nu_hat @ norms[c]))
-            bkg = r["b"][c][0] * bkg_fractions(m, r["theta"][c][:1])[0]
-            sp = None if shapes is None else shapes[c]
-            if sp is None:
-                f, kc = m.fractions[0], None
-            else:
-                kc = np.asarray(r["factors"][c], float)[0]
-                f = _fractions(m, sp[0], sp[1], sp[2].shape_active, sp[2], kc[None, :],
-                               np.arange(1))[0]
-            k_sb.append(kc)
-            nu_sb.append(np.maximum(mu * conv[c] * e * f + bkg, 1e-300))
-        rr = np.random.default_rng(ss.spawn(1)[0])
-        n_sb = _draw(rr, nu_sb, ntoys)
-        aux_sb = nu_hat + rr.standard_normal((ntoys, nj))
-        cen_sb = _centers(shapes, k_sb, rr, ntoys)
-        q_sb = _Set(models, n_sb, conv, norms, aux_sb, shapes, cen_sb, memo).q(mu)[0]
-        q_b = toys_b.q(mu)[0]
-        # log-likelihood ratio of the two generating models for every pooled toy
-        llr = 0.0
-        for c in range(len(models)):
-            pool = np.concatenate([n_b[c], n_sb[c]])
-            llr = llr + pool @ (np.log(nu_sb[c]) - np.log(nu_b[c])) - (nu_sb[c].sum()
-                                                                        - nu_b[c].sum())
-            if shapes is not None and shapes[c] is not None:
-                llr = llr + _log_density_ratio(shapes[c][2], np.concatenate(
-                    [cen_b[c], cen_sb[c]]), k_sb[c])
-        if nj:
-            a_pool = np.concatenate([aux_b, aux_sb])
-            llr = llr + 0.5 * (a_pool**2).sum(axis=1) - 0.5 * ((a_pool - nu_hat) ** 2).sum(
-                axis=1)
-        return (q_obs, *pooled_cls(q_obs, q_b, q_sb, llr))
-
-    points, grid, vals, notes = limits_on_grid(evaluate, lo, hi, alpha, "combined toy limit")
-    cls_obs = np.array([points[m][1] for m in grid])
-    return {"observed": float(vals[0]),
-            "expected": {n: float(v) for n, v in zip(_BANDS, vals[1:])},
-            "grid": grid, "cls": cls_obs, "n_toys": ntoys,
-            "asymptotic_observed": obs_asym, "notes": notes}
-
-
-def run_joint_toy_limit(task: tuple) -> dict[str, Any]:
-    """:func:`joint_toy_limit` of one mass from a picklable tuple of its arguments (a unit
-    of work for the limits' executor)."""
-    return joint_toy_limit(*task)
-
-
 def combined_toy_scans(models: list, conv: list[np.ndarray], n_toys: int, *,
                        seed: int = 0, norms: Any = None, shapes: Any = None,
                        ensembles: Any = None, executor: Any = None) -> np.ndarray:

@@ -4,10 +4,11 @@ Which piece when
 ----------------
 * :class:`Channel`           -- one spectrum with its background shape, signal (a
   :class:`~peaksift.stats.signal_model.SignalModel`, or a shape and a resolution), its
-  efficiency x acceptance and its integrated luminosity.
-* :func:`combine`            -- the scan of the combination and of every channel:
-  :class:`Combination` (``global_significance`` with toys that generate every channel,
-  ``plot`` of the local p-values, ``to_dict``).
+  efficiency x acceptance and its integrated luminosity (:mod:`.channel`, with its
+  preparation on the combination's masses).
+* :func:`combine`            -- the scan of the combination and of every channel, here:
+  :class:`Combination` (:mod:`.channel_result`: ``global_significance`` with toys that
+  generate every channel, ``plot`` of the local p-values, ``to_dict``).
 * :func:`signal_norms`       -- the luminosity and efficiency uncertainties of the channels
   as normalisation nuisances of the joint likelihood (a luminosity shared by the channels
   of one ``luminosity_group`` is one nuisance, fully correlated).
@@ -31,33 +32,25 @@ for one channel; ``toy_constraints`` chooses the ensemble) and the toy limits (t
 observables drawn per toy, as for one channel); every one of those fits takes each
 channel's lowest well of the mass scale (:mod:`peaksift.stats.joint_wells`).
 A channel's ``background_candidates`` are profiled as a discrete choice in the combined scan,
-its toys and the asymptotic combined limits (:mod:`peaksift.stats.channel_envelope`); the
-toy limits take the function its envelope chooses at mu = 0.
+its toys and the combined limits, asymptotic and toys (:mod:`peaksift.stats.channel_envelope`).
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
-from .._format import format_pm, mass_text, no_best
-from .._json import plain
-from .._values import FrozenValue
-from ..errors import FitError
-from . import lee
-from .channel_envelope import envelope_of_channels, envelope_toy_scans
+from .channel import Channel, _prepare, _prepare_all
+from .channel_envelope import envelope_of_channels
 from .channel_norms import signal_norms
+from .channel_result import Combination
 from .channel_toys import combined_toy_scans
-from .envelope_choice import read_channel_entries
 from .joint import profile_joint
 from .joint_start import joint_start
 from .joint_wells import joint_global, several_minima_notes
 from .scan import scan_prepared
-from .scan_inputs import _prepare_model, _signal_params
-from .scan_result import p_text
 from .significance import p_from_q0, z_from_q0
 from .toys import fit_background
 
@@ -68,151 +61,6 @@ __all__ = [
     "combined_toy_scans",
     "signal_norms",
 ]
-
-
-@dataclass(frozen=True)
-class Channel:
-    """One channel of a combination.
-
-    Parameters
-    ----------
-    name : str
-    data : MassHistogram, masses, or (masses, weights)
-    background : str or Shape
-    luminosity : float
-        Integrated luminosity (e.g. fb^-1; sigma x B then comes in fb).
-    signal_model : SignalModel, optional
-        Shape, resolution and efficiency as functions of mass (else give ``signal``,
-        ``resolution`` and ``efficiency``).
-    signal, resolution, signal_params, natural_width, window, bins :
-        As in :func:`peaksift.scan`.
-    efficiency : float or callable, optional
-        Efficiency x acceptance (default the signal model's).
-    luminosity_uncertainty, efficiency_uncertainty : float
-        Relative uncertainties (e.g. 0.02), each a log-normal constrained nuisance of the
-        joint likelihood (0: none).
-    luminosity_group : str, optional
-        Channels with the same group share one luminosity (one nuisance, fully correlated;
-        their ``luminosity_uncertainty`` must agree); default: the channel's own.
-    shape_nuisances : mapping, optional
-        Relative sizes of the channel's signal-shape nuisances (``mass_scale``,
-        ``mass_resolution``), profiled with their constraints in the combined scan;
-        ``shape_constraint`` their kind (``"gaussian"`` or ``"lognormal"``);
-        ``toy_constraints`` whether the combination's toys keep their constraints' centres
-        at 1 (``"fixed"``) or draw them per toy (``"sampled"``).
-    background_candidates : mapping, optional
-        Label -> background shape: the channel's function is profiled as a discrete choice
-        among them in the combined scan (:mod:`peaksift.stats.channel_envelope`), with
-        ``background_penalty`` per free parameter (``background_parameters`` label ->
-        count; default the shape's parameters and its yield).
-    """
-
-    name: str
-    data: Any
-    background: Any
-    luminosity: float
-    signal_model: Any = None
-    signal: Any = None
-    resolution: Any = None
-    efficiency: Any = None
-    signal_params: Mapping[str, float] | None = None
-    natural_width: Any = None
-    window: tuple[float, float] | None = None
-    bins: int | None = None
-    luminosity_uncertainty: float = 0.0
-    efficiency_uncertainty: float = 0.0
-    luminosity_group: str | None = None
-    shape_nuisances: Mapping[str, float] | None = None
-    shape_constraint: str = "gaussian"
-    toy_constraints: str = "fixed"
-    background_candidates: Mapping[str, Any] | None = None
-    background_parameters: Mapping[str, int] | None = None
-    background_penalty: float = 1.0
-
-    def shape_spec(self, prepared: tuple, blinded: np.ndarray, *, every_mass: bool = False,
-                   repeat: int = 1) -> Any:
-        """``(signal, base_params, SignalNuisances)`` of this channel's shape factors for
-        :func:`~peaksift.stats.joint.profile_joint` (None without any): at the unblinded
-        hypotheses (``every_mass``: at all), the stack repeated ``repeat`` times."""
-        sizes = {k: float(v) for k, v in (self.shape_nuisances or {}).items() if v}
-        if not sizes:
-            return None
-        if self.toy_constraints not in ("fixed", "sampled"):
-            raise FitError(f"channel {self.name!r}: toy_constraints must be 'fixed' or "
-                           f"'sampled', got {self.toy_constraints!r}")
-        from ..likelihood import SignalNuisances
-
-        try:
-            nuis = SignalNuisances.make(sizes, {k: self.shape_constraint for k in sizes})
-        except FitError as exc:
-            raise FitError(f"channel {self.name!r}: {exc}") from None
-        if nuis.shape_active != tuple(k for k in nuis.shape_active if k in sizes) or set(
-                sizes) - set(nuis.shape_active):
-            raise FitError(f"channel {self.name!r}: shape_nuisances takes mass_scale and "
-                           f"mass_resolution, got {sorted(sizes)}")
-        _, spec, info = prepared
-        keep = np.ones(blinded.size, bool) if every_mass else ~blinded
-        base = _signal_params(info["signal"], spec.window, info["masses"][keep],
-                              info["sigma"][keep], self.natural_width, info["signal_params"])
-        base = [np.tile(np.asarray(v), (repeat,) + (1,) * (np.ndim(v) - 1)) if np.ndim(v)
-                else v for v in base]
-        return info["signal"], base, nuis
-
-    def conversion(self, masses: np.ndarray) -> np.ndarray:
-        """Signal events per unit of sigma x B at ``masses``: ``L eff(m)``."""
-        if not (isinstance(self.luminosity, (int, float)) and self.luminosity > 0):
-            raise FitError(f"channel {self.name!r}: luminosity must be a number > 0, got "
-                           f"{self.luminosity!r}")
-        eff = self.efficiency
-        if eff is None:
-            if self.signal_model is None:
-                raise FitError(f"channel {self.name!r} has no efficiency: give efficiency= or "
-                               "a signal_model")
-            eff = self.signal_model.efficiency
-        e = (np.asarray(eff(masses), float) if callable(eff)
-             else np.full(masses.shape, float(eff)))
-        if np.any(~np.isfinite(e) | (e < 0)):
-            raise FitError(f"channel {self.name!r}: the efficiency must be finite and >= 0 at "
-                           "every mass")
-        return float(self.luminosity) * e
-
-
-def _prepare(ch: Channel, masses: Any, blind: Any) -> tuple[Any, Any, dict[str, Any]]:
-    try:
-        return _prepare_model(ch.data, ch.signal, ch.background, masses,
-                              resolution=ch.resolution, window=ch.window,
-                              natural_width=ch.natural_width, blind=blind,
-                              signal_params=ch.signal_params, bins=ch.bins,
-                              signal_model=ch.signal_model)
-    except FitError as exc:
-        raise FitError(f"channel {ch.name!r}: {exc}") from None
-
-
-def _prepare_all(channels: Any, masses: Any, blind: Any) -> tuple:
-    """Every channel checked and prepared on one grid of masses (given, or spread over the
-    first channel's window when a number): (channels,
-    their (model, spectrum, info), the masses, the blinded-mass mask, the sigma x B to
-    signal-yield conversion of each channel at those masses)."""
-    chans = _check(channels)
-    prepared = []
-    for k, ch in enumerate(chans):
-        prepared.append(_prepare(ch, masses, blind))
-        if k == 0:
-            masses = prepared[0][2]["masses"]
-    m_all = np.asarray(masses, float)
-    bl = prepared[0][2]["blinded_mass"]
-    conv = [ch.conversion(m_all) for ch in chans]
-    return chans, prepared, m_all, bl, conv
-
-
-def _check(channels: Sequence[Channel]) -> list[Channel]:
-    chans = list(channels)
-    if not chans:
-        raise FitError("combine needs at least one channel")
-    names = [c.name for c in chans]
-    if len(set(names)) != len(names):
-        raise FitError(f"channel names must differ, got {names}")
-    return chans
 
 
 # ------------------------------------------------------------------ the scan
@@ -347,191 +195,3 @@ def _full_model(model: Any, spec: Any, info: dict[str, Any]) -> Any:
     return dataclasses.replace(model, masses=info["masses"],
                                fractions=np.ascontiguousarray(info["window_fractions"]),
                                used=np.arange(spec.edges.size - 1), counts=spec.counts)
-
-
-# ------------------------------------------------------------------ the result
-@dataclass(frozen=True, repr=False, eq=False)
-class Combination(FrozenValue):
-    """Outcome of :func:`combine` (a frozen value).
-
-    Attributes
-    ----------
-    masses, q0, z_local, p_local : ndarray
-        The combination's scan (NaN where blinded).
-    cross_section, cross_section_error : ndarray
-        Fitted sigma x B (``unit``) and its error at every hypothesis.
-    channels : mapping
-        Channel name -> its own :class:`~peaksift.stats.scan.ScanResult`.
-    conversion : mapping
-        Channel name -> events per unit sigma x B at every hypothesis (``L eff(m)``).
-    z_expected : ndarray or None
-        Median expected combined significance of ``expected_cross_section``.
-    """
-
-    masses: np.ndarray
-    q0: np.ndarray
-    z_local: np.ndarray
-    p_local: np.ndarray
-    cross_section: np.ndarray
-    cross_section_error: np.ndarray
-    converged: np.ndarray
-    best_index: int
-    best_mass: float
-    channels: Any
-    conversion: Any
-    luminosity: Any
-    blind: tuple[float, float] | None
-    blinded: np.ndarray
-    z_expected: np.ndarray | None = None
-    expected_cross_section: float | None = None
-    unit: str = "fb"
-    notes: tuple[str, ...] = ()
-    prepared: tuple = field(default=(), compare=False)
-    nuisances: tuple[str, ...] = ()
-    nuisance_values: np.ndarray | None = None   # (n_masses, J) fitted, NaN where blinded
-    #: per channel its background functions profiled in the scan (None: none were)
-    envelope: Any = None
-    norms: Any = field(default=None, compare=False)
-    #: per channel its shape factors for the toys (None: none), and their ensemble
-    shapes: tuple = field(default=(), compare=False)
-    toy_constraints: tuple = field(default=(), compare=False)
-    envelope_models: Any = field(default=None, compare=False)
-
-    @property
-    def best(self) -> dict[str, float]:
-        i = self.best_index
-        return {"mass": float(self.best_mass), "z_local": float(self.z_local[i]),
-                "p_local": float(self.p_local[i]), "q0": float(self.q0[i]),
-                "cross_section": float(self.cross_section[i])}
-
-    def _cross_section_text(self) -> str:
-        """sigma x B at the best mass with its error (two significant digits of the error)."""
-        i = self.best_index
-        return format_pm(self.cross_section[i], self.cross_section_error[i], self.unit)
-
-    def __repr__(self) -> str:
-        b, why = self.best, no_best(self.best["z_local"], self.blinded)
-        return (f"Combination({', '.join(self.channels)}; " + (f"no best: {why})" if why else
-                f"best {mass_text(b['mass'])} GeV: Z_local = {b['z_local']:.2f}, sigma x B = "
-                f"{self._cross_section_text()})"))
-
-    def _summary(self) -> list[tuple[str, str]]:
-        b, why = self.best, no_best(self.best["z_local"], self.blinded)
-        rows = [("channels", ", ".join(self.channels)),
-                ("masses", f"{self.masses.size}, {self.masses[0]:.2f}-{self.masses[-1]:.2f} GeV"),
-                ("best mass", f"none: {why}" if why else f"{b['mass']:.2f} GeV"),
-                ("Z local", "n/a" if why else f"{b['z_local']:.2f} (p = {p_text(b)})"),
-                ("sigma x B at best", "n/a" if why else self._cross_section_text())]
-        if self.blind is not None:
-            rows.append(("blinded", f"{self.blind[0]:g}-{self.blind[1]:g} GeV"))
-        return rows
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict whose keys are the attribute names (``channels``: each channel's
-        :meth:`ScanResult.to_dict`), plus the ``best`` summary; blinded entries ``None``;
-        without the prepared models (no toys from it)."""
-        return plain({
-            "masses": self.masses, "q0": self.q0, "z_local": self.z_local,
-            "p_local": self.p_local, "cross_section": self.cross_section,
-            "cross_section_error": self.cross_section_error,
-            "converged": [bool(v) for v in self.converged], "best_index": int(self.best_index),
-            "best_mass": float(self.best_mass), "best": self.best,
-            "channels": {n: s.to_dict() for n, s in self.channels.items()},
-            "conversion": dict(self.conversion), "luminosity": dict(self.luminosity),
-            "blind": None if self.blind is None else list(self.blind),
-            "blinded": [bool(v) for v in self.blinded], "z_expected": self.z_expected,
-            "expected_cross_section": self.expected_cross_section, "unit": self.unit,
-            "notes": list(self.notes), "nuisances": list(self.nuisances),
-            "nuisance_values": self.nuisance_values, "norms": self.norms,
-            "envelope": self.envelope})
-
-    @classmethod
-    def from_dict(cls, d: Mapping[str, Any]) -> Combination:
-        """The Combination that :meth:`to_dict` wrote (without the models: no toys)."""
-        from .scan_result import ScanResult
-
-        def arr(v: Any) -> np.ndarray | None:  # None entries (blinded, NaN) back to NaN
-            return None if v is None else np.array(v, float)
-
-        try:
-            blind = d.get("blind")
-            return cls(
-                masses=arr(d["masses"]), q0=arr(d["q0"]), z_local=arr(d["z_local"]),
-                p_local=arr(d["p_local"]), cross_section=arr(d["cross_section"]),
-                cross_section_error=arr(d["cross_section_error"]),
-                converged=np.array(d["converged"], bool), best_index=int(d["best_index"]),
-                best_mass=float(d["best_mass"]),
-                channels={n: ScanResult.from_dict(v) for n, v in d["channels"].items()},
-                conversion={n: arr(v) for n, v in d["conversion"].items()},
-                luminosity={n: float(v) for n, v in d["luminosity"].items()},
-                blind=None if blind is None else (float(blind[0]), float(blind[1])),
-                blinded=np.array(d["blinded"], bool), z_expected=arr(d.get("z_expected")),
-                expected_cross_section=d.get("expected_cross_section"), unit=d["unit"],
-                notes=tuple(d.get("notes") or ()), nuisances=tuple(d.get("nuisances") or ()),
-                nuisance_values=arr(d.get("nuisance_values")), norms=arr(d.get("norms")),
-                envelope=read_channel_entries(d.get("envelope")))
-        except (KeyError, TypeError, ValueError, IndexError) as exc:
-            raise FitError(f"Combination.from_dict: not a combination written by "
-                           f"Combination.to_dict ({exc!r})") from None
-
-    def nuisances_at_best(self) -> dict[str, Any]:
-        """Each nuisance at the best mass (results.json's ``combined.nuisances``)."""
-        return plain({n: self._nuisance(j) for j, n in enumerate(self.nuisances)})
-
-    def _nuisance(self, j: int) -> dict[str, Any]:
-        """A normalisation nuisance (its pull and log-normal scale per channel) or a shape
-        factor (its relative shift k - 1) at the best mass."""
-        v = (None if self.nuisance_values is None
-             else self.nuisance_values[self.best_index, j])
-        nj = 0 if self.norms is None else self.norms.shape[1]
-        if j < nj:
-            return {"pull_at_best": v, "log_scale": self.norms[:, j]}
-        return {"shift_at_best": v}
-
-    def global_significance(self, method: str = "upcrossings", *, toys: int | None = None,
-                            seed: int = 0, u0: float = 0.5,
-                            executor: Any = None) -> dict[str, Any]:
-        """Global significance of the combination's best excess; the toys generate every
-        channel from its background-only fit (each channel from its own seed stream) and
-        are scanned with the joint likelihood (their batches on ``executor`` when given).
-        As :meth:`ScanResult.global_significance`."""
-        if method not in ("upcrossings", "toys"):
-            raise FitError(f"global_significance method must be 'upcrossings' or 'toys', "
-                           f"got {method!r}")
-        if len(self.channels) == 1:
-            return next(iter(self.channels.values())).global_significance(
-                method, toys=toys, seed=seed, u0=u0, executor=executor)
-        if not self.prepared:
-            raise FitError("this Combination carries no models (rebuilt from a dict?); rerun "
-                           "combine")
-        mask = ~self.blinded
-        if not mask.any():
-            raise FitError("every mass hypothesis of this combination is blinded")
-        q_obs = float(self.q0[self.best_index])
-        gaps = np.diff(np.flatnonzero(mask)) > 1
-        n = (1000 if method == "toys" else 200) if toys is None else int(toys)
-        if method == "upcrossings" and n == 0:
-            res = lee.global_from_upcrossings(q_obs, self.q0[mask][None, :], u0=u0,
-                                              source="observed scan", gaps=gaps)
-        else:
-            conv = [np.asarray(k)[mask] for k in self.conversion.values()]
-            kw = {"seed": seed, "norms": self.norms, "shapes": self.shapes or None,
-                  "ensembles": self.toy_constraints or None, "executor": executor}
-            scans = (combined_toy_scans(list(self.prepared), conv, n, **kw)
-                     if self.envelope_models is None else
-                     envelope_toy_scans(self.envelope_models, conv, n, **kw))
-            res = (lee.global_from_toys(q_obs, scans.max(axis=1)) if method == "toys" else
-                   lee.global_from_upcrossings(q_obs, scans, u0=u0, gaps=gaps))
-        out = {"mass": float(self.best_mass), "z_local": float(self.z_local[self.best_index]),
-               "p_local": float(self.p_local[self.best_index])}
-        out.update(res)
-        return plain(out)
-
-    def plot(self, path: Any = None, *, title: str | None = None, run: Any = None,
-             symbol: str = "m", channel_scans: Any = None) -> Any:
-        """Local p-value against mass: each channel (thin) and the combination (thick);
-        see :func:`peaksift.stats.channel_plot.pvalue_figure` (no pyplot)."""
-        from .channel_plot import pvalue_figure
-
-        return pvalue_figure(self, path, title=title, run=run, symbol=symbol,
-                             channel_scans=channel_scans)

@@ -24,7 +24,7 @@ per channel, which is the fit's time (the Python glue was ~40% of it); most hypo
 started from :func:`peaksift.stats.joint_start.joint_start` end on their first step, so
 this removes ~45% of the evaluations (``docs/decisions/compiled-joint-loop.md``).  An
 evaluation gives the NLL and the next step's sums in one pass over the bins, its logarithms
-from :func:`peaksift.shapes.compiled.vlog` (within 1 ulp of the library's, so the NLL
+from :func:`peaksift.shapes.compiled_math.vlog` (within 1 ulp of the library's, so the NLL
 differs from the Python loop's by rounding), and each row's error on the parameter of
 interest is inverted here as the row ends.  An exponential channel on equal bins is
 evaluated bin by bin only in each hypothesis's signal span, the other bins in closed form
@@ -49,7 +49,7 @@ import numpy as np
 from numba import njit
 
 from ..likelihood.kernels import solve_small
-from ..shapes.compiled import vlog
+from ..shapes.compiled_math import vlog
 from .joint_kernels import model_change, row_background, small_step, yield_sums
 from .joint_spans import span_channel, span_tables
 from .profile_kernels import first_error
@@ -84,7 +84,7 @@ def _value(x, r, fixed, mu_fixed, off, nj, aux, a_norm, kc, first, kpar, kind, e
     :func:`peaksift.stats.joint_kernels.channel_sums`); (nll, ok).  One evaluation instead
     of a pass for the NLL and one for the sums: most rows end after one evaluation (module
     guide), whose sums the next Newton step needs.  ``lb (3, bins)``: work rows for the
-    expectations, their logarithms (:func:`peaksift.shapes.compiled.vlog`, within 1 ulp of
+    expectations, their logarithms (:func:`peaksift.shapes.compiled_math.vlog`, within 1 ulp of
     the library's) and inverses, computed in a loop that vectorises (the library's
     logarithm, one call per bin, was a third of the joint fit's time)."""
     nc = kind.size

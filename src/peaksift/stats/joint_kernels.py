@@ -32,7 +32,8 @@ import numpy as np
 from numba import njit
 
 from ..likelihood.kernels import solve_small
-from ..shapes.compiled import exponential_rows, powerlaw_rows
+from ..shapes.compiled import powerlaw_rows
+from ..shapes.compiled_exponential import exponential_rows
 
 __all__ = ["channel_nll", "channel_quadratic", "channel_sums", "model_change", "moved_starts", "quadratic_rows",
            "row_background", "small_step", "sums", "yield_sums"]

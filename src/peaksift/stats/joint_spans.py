@@ -25,7 +25,7 @@ row costs its span's bins (~10 sigma below the mass to 8 above: a fifth of the b
 bins) and a few dozen operations.
 
 Same numbers to rounding: the span's bins are computed exactly as
-:func:`peaksift.shapes.compiled.exponential_rows` and the joint loop compute them; outside
+:func:`peaksift.shapes.compiled_exponential.exponential_rows` and the joint loop compute them; outside
 it the neglected signal is below 2^-60 of the background in every bin (checked at every
 evaluation: else the bin-by-bin path answers) and the closed forms differ from the bin
 sums by rounding only (``tests/test_joint_spans.py``).
@@ -38,7 +38,8 @@ import math
 import numpy as np
 from numba import njit
 
-from ..shapes.compiled import exponential_constants, vexp, vlog
+from ..shapes.compiled_exponential import exponential_bins, exponential_constants
+from ..shapes.compiled_math import vexp, vlog
 from .joint_kernels import yield_sums
 
 __all__ = ["prefix_moments", "row_spans", "span_channel", "span_tables"]
@@ -143,8 +144,8 @@ def span_channel(e1, e2, eo, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre
     t0, tn, dt0 = e1[eo], e1[eo + nbin], e2[eo]   # the first and last edges, the width
     if i1 <= i0 or not b > 0.0 or abs(theta) < 1e-3 or abs(theta - theta_ref) > _MAX_SHIFT:
         return False, 0.0
-    # the background's constants as exponential_rows forms them
-    em, ep, ib, ib2, g0, ghi, inv_z, scale = exponential_constants(theta)
+    # the closed forms' constants
+    em, ep, scale = exponential_constants(theta)
     m1 = math.expm1(theta * dt0)
     e_first = math.exp(theta * t0)
     e_last = math.exp(theta * tn)
@@ -152,27 +153,13 @@ def span_channel(e1, e2, eo, theta, theta_ref, s, s2, b, fr_, n, d2, i0, i1, pre
     gmin = min(e_first, e_last / (m1 + 1.0)) * m1 * scale
     if not (gmin > 0.0 and max(abs(s), abs(s2)) * _SPAN_CUT <= _NEGLECT * b * gmin):
         return False, 0.0
-    # the span's edges, fractions and derivatives: exponential_rows' numbers
+    # the span's fractions and derivatives: exponential_rows' numbers (its loop); the
+    # span's end exponentials for the closed forms below
     ns = i1 - i0
-    for j in range(ns + 1):
-        lb[0, j] = vexp(theta * e1[eo + i0 + j])
-    d_last = math.nan
-    mi = 0.0
-    d_prev = 0.0
-    for j in range(ns + 1):
-        e = lb[0, j]
-        c = (e - em) * scale
-        db = (e * (e1[eo + i0 + j] * ib - ib2) + g0 - c * ghi) * inv_z
-        if j > 0:
-            tdg[bo + i0 + j - 1] = db - d_prev
-        d_prev = db
-        if j < ns:
-            if e2[eo + i0 + j] != d_last:
-                d_last = e2[eo + i0 + j]
-                mi = math.expm1(theta * d_last)
-            tg[bo + i0 + j] = max(0.0, e * mi * scale)
-    e_lo = lb[0, 0]
-    e_hi = lb[0, ns]
+    exponential_bins(e1[eo + i0:eo + i1 + 1], e2[eo + i0:eo + i1], theta,
+                     tg[bo + i0:bo + i1], tdg[bo + i0:bo + i1], True, lb[0])
+    e_lo = vexp(theta * e1[eo + i0])
+    e_hi = vexp(theta * e1[eo + i1])
     # the span bin by bin, as the joint loop's _value
     for j in range(ns):
         i = i0 + j

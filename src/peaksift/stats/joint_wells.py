@@ -7,7 +7,7 @@ Which piece when
   started again from each such channel's lowest well; the lower of the two per hypothesis.
   Every joint fit with shape factors uses it: the combined scan (:mod:`.channels`) and its
   envelope of background functions (:mod:`.channel_envelope`), the global significance
-  toys' refitted top points and the toy limits (:mod:`.channel_toys`), the asymptotic
+  toys' refitted top points and the toy limits (:mod:`.channel_toys`, :mod:`.channel_toy_limits`), the asymptotic
   combined limits (:mod:`.channel_limits`).
 
 Why
@@ -116,7 +116,8 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
                  counts: Sequence[Any], conv: Sequence[np.ndarray],
                  shapes: Sequence[Any] | None, *, mu_fixed: Any = None,
                  centers: Sequence[Any] | None = None,
-                 starts: int | None = None, memo: dict | None = None) -> dict[str, Any]:
+                 starts: int | None = None, memo: dict | None = None,
+                 groups: np.ndarray | None = None) -> dict[str, Any]:
     """``fit(**starts)`` (a :func:`~peaksift.stats.joint.profile_joint` call taking
     ``factors_start``, ``mu_start``, ``theta_start``, ``b_start``) from its own starts,
     then, where a channel of ``shapes`` is scanned (:func:`.scale_scan.needs_scan`), again
@@ -128,7 +129,10 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
     per channel its constraints' centres (or None); ``starts``: the wells each channel's
     scan refits (:func:`.scale_scan.profile_global`'s); ``memo``: the channels' scans'
     signal fractions kept across the restarts (and across calls, where the caller passes
-    one dict: they depend on the bins and hypotheses alone).
+    one dict: they depend on the bins and hypotheses alone).  ``groups``: a label per
+    row where the stack batches independent problems (the toy limits' sets at several
+    signal values): a restart's rows are taken only in the problems where one of its own
+    rows moved, as if each problem had been fitted alone (the same numbers, to the bit).
 
     With a scanned channel the result also has ``several`` (bool per hypothesis): a
     restart ended lower than the first fit by more than
@@ -166,6 +170,8 @@ def joint_global(fit: Callable[..., dict[str, Any]], models: Sequence[Any],
         r2 = fit(factors_start=fs, mu_start=probe if free else None,
                  theta_start=r["theta"], b_start=r["b"])
         better = np.asarray(r2["nll"]) < np.asarray(r["nll"])
+        if groups is not None:   # alone, a problem without a moved row is not refitted
+            better &= np.isin(groups, groups[moved])
         if better.any():
             r = _merge(r, r2, better)
     several = np.zeros(nb, bool)

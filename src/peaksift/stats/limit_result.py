@@ -201,18 +201,12 @@ class LimitResult(FrozenValue):
 
         ``assumptions``: what the conversion to the limit's unit took (luminosity,
         efficiency, their uncertainties), written above the axes under the run label
-        ``run`` (a :class:`peaksift._style.RunLabel`); ``symbol``: the mass symbol
+        ``run`` (a :class:`peaksift._annotations.RunLabel`); ``symbol``: the mass symbol
         (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on a new Figure (made
         without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
-        from .._style import (
-            COLORS,
-            draw_header,
-            figure_style,
-            plain_log_ticks,
-            shade_blinded,
-            target_axes,
-        )
+        from .._annotations import draw_header, plain_log_ticks, shade_blinded
+        from .._style import COLORS, figure_style, target_axes
 
         with figure_style():
             fig, ax = target_axes(fig, ax)

@@ -36,7 +36,9 @@ from numba.extending import intrinsic
 from numba.np.arrayobj import make_array, populate_array
 
 from ..likelihood.kernels import solve_sized_into, solve_small_into
-from ..shapes.compiled import exponential_rows_into, powerlaw_rows, vlog
+from ..shapes.compiled import powerlaw_rows
+from ..shapes.compiled_exponential import exponential_rows_into
+from ..shapes.compiled_math import vlog
 
 __all__ = ["first_error", "profile_rows"]
 
@@ -103,7 +105,7 @@ def _nll(n, nrow, f, r, gs, slot, s, b, sat, lb):  # pragma: no cover - compiled
     """``binned_nll(n[nrow], s f[r] + b gs[slot], saturated=False, small_terms=True)``;
     inf where an expectation is not positive (``profile_signal``'s rule).  ``lb (2, N)``:
     work rows for the expectations and the logarithms ``ln(n/mu)``, computed first in a
-    loop that vectorises (:func:`peaksift.shapes.compiled.vlog`, within 1 ulp of the
+    loop that vectorises (:func:`peaksift.shapes.compiled_math.vlog`, within 1 ulp of the
     library's): the library's logarithm, one call per filled bin, made a bin's cost
     depend on whether it held an event (a 10,000-bin scan, half its bins empty, cost
     0.85x a 1,000-bin one per bin)."""

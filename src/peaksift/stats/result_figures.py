@@ -11,7 +11,7 @@ figure is made with :func:`peaksift._style.new_figure`, the user's backend is le
 * :func:`background_candidate_figure` -- :meth:`BackgroundCandidate.plot`: one candidate's
   background-only fit over the spectrum, the pulls beneath.
 
-Every figure takes the run label (``run``, a :class:`peaksift._style.RunLabel`) and the
+Every figure takes the run label (``run``, a :class:`peaksift._annotations.RunLabel`) and the
 pair's mass symbol (``symbol``, mathtext) where the result itself does not know them.
 """
 
@@ -21,16 +21,9 @@ from typing import Any
 
 import numpy as np
 
-from .._format import fixed, mass_text, number, p_value
-from .._style import (
-    COLORS,
-    draw_header,
-    figure_style,
-    margins,
-    new_figure,
-    plain_log_ticks,
-    shade_blinded,
-)
+from .._annotations import draw_header, plain_log_ticks, shade_blinded
+from .._format import chi_square, fixed, mass_text, number, p_value
+from .._style import COLORS, figure_style, margins, new_figure
 from .._vocabulary import method_words
 from .significance import p_from_q0
 
@@ -246,7 +239,7 @@ def background_candidate_figure(cand: Any, path: Any = None, *, run: Any = None,
     with figure_style():
         ax.errorbar(c, n * scale, yerr=[(n - lower) * scale, (upper - n) * scale], fmt="o",
                     ms=2.8, lw=0.9, color=COLORS["data"], label="data", zorder=3)
-        gof = (f"$\\chi^2$/ndf = {fixed(cand.chi2, 1)}/{cand.ndf}, "
+        gof = (f"$\\chi^2$/ndf = {chi_square(cand.chi2)}/{cand.ndf}, "
                f"p = {p_value(cand.gof_p_value)}")
         ax.plot(c, np.where(hid, np.nan, mu), color=COLORS["total"], lw=1.4,
                 label=f"{cand.label}, background only ({gof})")

@@ -34,6 +34,7 @@ from ..likelihood import (
     SignalNuisances,
 )
 from ..likelihood.poisson import use_compiled
+from .mass_grid import coarse_grid_note
 from .scale_scan import profile_global, several_minima_note
 from .scan_inputs import ASK, _prepare_model, _signal_params, _Spectrum
 from .scan_kept import OWN, _all, kept_scan, quick_scan, remember, scan_arrays, significances
@@ -240,6 +241,9 @@ def scan_prepared(data: Any, model: ScanModel, spec: _Spectrum, info: dict[str, 
         notes.append("every mass hypothesis is blinded")
     if table is None:
         z, p, best = significances(arr["q0"], every, bl)
+    grid = coarse_grid_note(m_all, info["sigma"])
+    if grid:
+        notes.append(grid)
     z_exp = None
     if expected_signal is not None:
         z_exp = _expected_z(model, info, spec, expected_signal)

@@ -99,7 +99,7 @@ def from_signal_model(signal_model: Any, signal: Any, resolution: Any, relative:
     """The signal shape, resolution and shape parameters (functions of the hypothesised
     mass) a :class:`~peaksift.stats.signal_model.SignalModel` provides; refuses a second
     source for any of them."""
-    from .signal_model import SignalModel
+    from .signal_model_result import SignalModel
 
     if not isinstance(signal_model, SignalModel):
         raise FitError(f"signal_model must be a peaksift SignalModel (from signal_model() or "
@@ -387,6 +387,13 @@ def _prepare_model_anew(data: Any, signal: Any, background: Any, masses: Any, *,
                                  absolute=absolute_resolution)
     sigma_of = resolution.sigma
     m_arr = None if np.ndim(masses) == 0 else np.asarray(masses, float)
+    if m_arr is None and (isinstance(masses, (bool, np.bool_))
+                          or not isinstance(masses, (int, np.integer))):
+        # a lone 200.0 reads as "the mass 200 GeV" as easily as "200 points": refuse it
+        # rather than guess (2.5 would silently become 2 points)
+        raise FitError(f"{what}: masses={masses!r} is neither a number of points nor a list "
+                       f"of masses; give an int (e.g. 200) for that many evenly spaced "
+                       f"masses, or a list (e.g. [{_mass_hint(masses)}]) for given masses")
 
     def min_sigma() -> float:
         if m_arr is not None:
@@ -429,3 +436,11 @@ def _prepare_model_anew(data: Any, signal: Any, background: Any, masses: Any, *,
             "blinded_mass": plan.blinded_mass, "window_fractions": plan.window_fractions,
             "blinded_bins": plan.blinded}
     return model, spec, info
+
+
+def _mass_hint(masses: Any) -> str:
+    """``masses`` as it would read inside a list, for the error message."""
+    try:
+        return f"{float(masses):g}"
+    except (TypeError, ValueError):
+        return "200.0"

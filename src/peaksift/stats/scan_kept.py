@@ -27,6 +27,7 @@ from scipy.special import ndtr as _ndtr
 
 from ..histogram import MassHistogram
 from ..likelihood.poisson import use_compiled
+from .mass_grid import coarse_grid_note
 from .scan_prepared import kept_entry, model_parts
 from .scan_result import ScanResult, fresh_result
 from .significance import p_from_q0, z_from_q0
@@ -113,7 +114,7 @@ def _answer(call: tuple, fixed: tuple, run: Any) -> ScanResult | None:
         return None
     fields, model, m_all, open_, nll_b = fixed
     _, s_hat, s_err, b_hat, _, conv, unconverged, q0, z, neg_z, best, plain = out
-    notes: Any = ()
+    notes: Any = fields["notes"]
     if plain and not unconverged:
         # (scan_arrays' answer here, without its dict and call); p written into -Z's
         # array (the table's, made for this result): an array less to make, ~2 us cold
@@ -121,7 +122,8 @@ def _answer(call: tuple, fixed: tuple, run: Any) -> ScanResult | None:
     else:
         notes = []
         arr, conv, z, p, best = scan_arrays(out[1:], nll_b, open_, notes)
-        q0, s_hat, s_err, b_hat, notes = arr["q0"], arr["s"], arr["se"], arr["b"], tuple(notes)
+        q0, s_hat, s_err, b_hat = arr["q0"], arr["s"], arr["se"], arr["b"]
+        notes = (*notes, *fields["notes"])
     values = fields.copy()
     values.update(q0=q0, z_local=z, p_local=p, signal_yield=s_hat, signal_yield_error=s_err,
                   background_yield=b_hat, converged=conv, best_index=best,
@@ -147,7 +149,9 @@ def _kept_fields(kept: tuple) -> tuple | None:
               "signal_shape": info["signal"].name,
               "background_shape": info["background"].name, "weight_scale": spec["scale"],
               "z_expected": None, "unit": spec["unit"], "nuisances": None,
-              "nuisance_factors": None}
+              "nuisance_factors": None,
+              # the grid's note depends on the preparation alone: made once, here
+              "notes": tuple(n for n in (coarse_grid_note(m_all, info["sigma"]),) if n)}
     open_ = np.zeros(m_all.size, bool)  # the blinded mask: none (every hypothesis open)
     open_.flags.writeable = False
     return fields, model_parts(kept), m_all, open_, float(model["nll_background"])

@@ -161,8 +161,8 @@ def _build(sig: Any, bkg: Any, spec: Any, masses: Any, m_arr: np.ndarray | None,
         raise FitError("scan masses must be a non-empty 1-d array of finite numbers")
     outside = (m_arr <= lo) | (m_arr >= hi)
     if outside.any():
-        raise FitError(f"scan mass {m_arr[outside][0]:g} is outside the window "
-                       f"({lo:g}, {hi:g}); scan inside the window")
+        raise FitError(f"mass {m_arr[outside][0]:g} is outside the window "
+                       f"({lo:g}, {hi:g}); give masses inside the window")
     check_plan(m_arr.size, nbins)
     sigma = check_resolved(resolution, m_arr, spec.edges)
     gamma = natural_width(m_arr) if callable(natural_width) else natural_width

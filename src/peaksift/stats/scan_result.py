@@ -269,12 +269,13 @@ class ScanResult(FrozenValue):
         Blinded hypotheses are not drawn (the range is hatched).  The expected p-value is
         drawn dashed: ``expected = (z_expected, label)`` when given, else the scan's own
         ``z_expected``.  ``global_result`` (from :meth:`global_significance`) is noted above
-        the axes; ``run`` (a :class:`peaksift._style.RunLabel`) labels the run; ``symbol``
+        the axes; ``run`` (a :class:`peaksift._annotations.RunLabel`) labels the run; ``symbol``
         is the mass symbol (mathtext).  Draws on ``ax`` or an empty ``fig`` when given, on
         a new Figure (made without pyplot) otherwise; saves to ``path``; returns the Figure.
         """
+        from .._annotations import draw_header, shade_blinded
         from .._format import fixed, mass_text
-        from .._style import COLORS, draw_header, figure_style, shade_blinded, target_axes
+        from .._style import COLORS, figure_style, target_axes
 
         with figure_style():
             fig, ax = target_axes(fig, ax)
@@ -321,8 +322,7 @@ class ScanResult(FrozenValue):
                         f"$Z_{{local}}$ = {fixed(global_result['z_local'])},  "
                         f"$Z_{{global}}$ = {fixed(global_result['z_global'])} "
                         f"({global_result['global_method']})")
-            marks = ([m[self.best_index]], [pb]) if np.any(np.isfinite(p)) else ([], [])
-            _legend_off_the_curves(ax, m, [p] + ([pe] if expected is not None else []), marks)
+            place_scan_legend(ax)
             draw_header(ax, run, note)
             if path is not None:
                 fig.savefig(path)
@@ -338,31 +338,53 @@ def p_text(best: Mapping[str, float]) -> str:
     return p_value(best["p_local"], log10_p(log_p_from_q0(best["q0"])))
 
 
-def _legend_off_the_curves(ax: Any, m: np.ndarray, curves: list[np.ndarray],
-                           marks: tuple[list[float], list[float]]) -> None:
-    """The legend in the lower left corner, or the first other place where it covers
-    fewer points of the curves and ``marks`` (x, y) (a deep excess reaches that corner and
-    the legend's text ran over the curve); the curves are sampled finely between their
-    points (on the log axis) so a line passing through the box counts."""
-    from .._value_table import touched
+def place_scan_legend(ax: Any, handles: Any = None, labels: Any = None, **kwargs: Any) -> Any:
+    """The legend of a p-value figure in the lower left corner, or the first other place
+    (the other lower and middle places: the curves start at p ~ 0.5, at the top) where it
+    covers fewer of the axes' curves and markers (drawn in data coordinates: not
+    the sigma levels).  A curve counts over its whole drawn line
+    (:func:`peaksift._value_table.line_segments`): at a huge excess the observed p-value falls
+    by hundreds of decades between two masses, a near-vertical line with no sample inside
+    the visible axis, which ran through the legend.  Returns the Legend."""
+    from .._value_table import line_segments, touched
 
-    fine = np.linspace(m[0], m[-1], 2000)
-    ys = []
-    for c in curves:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            y = 10.0 ** np.interp(fine, m, np.log10(np.asarray(c, float)))
-        ys.append(np.where(np.isfinite(y), y, np.nan))
-    x = np.concatenate([np.tile(fine, len(ys)), marks[0]])
-    y = np.concatenate([*ys, marks[1]])
+    log = ax.get_yscale() == "log"
+    xs, los, his = [], [], []
+    for line in ax.get_lines():
+        if line.get_transform() != ax.transData:  # axhline's levels: axes-wide
+            continue
+        x, y = (np.asarray(a, float) for a in line.get_data())
+        if x.size > 1 and line.get_linestyle() not in ("None", "none", ""):
+            x, lo, hi = line_segments(x, y, log=log)
+        else:  # markers
+            lo = hi = y
+        xs.append(x)
+        los.append(lo)
+        his.append(hi)
+    x, lo, hi = (np.concatenate(a) if a else np.empty(0) for a in (xs, los, his))
+    # notes written inside the axes (the clipped excess stated in numbers): not covered
+    notes = [t for t in ax.texts if t.get_visible() and t.get_text()
+             and t.get_transform() == ax.transAxes]
+    renderer = ax.figure.canvas.get_renderer()
+    args = () if handles is None else (handles, labels)
     best = None
-    for loc in ("lower left", "lower right", "center left", "center right"):
-        leg = ax.legend(loc=loc)
-        n = touched(ax, leg, x, y, y)
+    for loc in ("lower left", "lower right", "center left", "center right", "lower center",
+                "center"):
+        leg = ax.legend(*args, loc=loc, **kwargs)
+        box = leg.get_window_extent(renderer)
+        n = touched(ax, leg, x, lo, hi) + 1000 * sum(
+            box.overlaps(t.get_window_extent(renderer)) for t in notes)
         if best is None or n < best[0]:
             best = (n, loc)
         if n == 0:
-            return
-    ax.legend(loc=best[1])
+            return leg
+    # no place is free (a wide legend over curves that cross the whole height): the one
+    # crossed least, on an opaque ground, so no line runs through its text
+    leg = ax.legend(*args, loc=best[1], **kwargs)
+    leg.set_frame_on(True)
+    leg.get_frame().set(facecolor="white", edgecolor="none", alpha=0.92)
+    leg.set_zorder(6)
+    return leg
 
 
 def _z_of_p(p: float) -> float:

@@ -1,4 +1,4 @@
-"""Figures of a :class:`~peaksift.stats.signal_model.SignalModel` (in the project's style,
+"""Figures of a :class:`~peaksift.stats.signal_model_result.SignalModel` (in the project's style,
 drawn on :func:`peaksift._style.new_figure`: no pyplot, the user's backend untouched).
 
 * :func:`plot_parameters` -- one panel per modelled quantity against mass: the per-sample
@@ -22,7 +22,10 @@ _LABELS = {"mass_shift": "peak shift [GeV]", "sigma": "$\\sigma$ [GeV]",
 
 
 def plot_parameters(model: Any, path: Any = None, *, run: Any = None, symbol: str = "m") -> Any:
-    from .._style import COLORS, figure_style, new_figure, text_width
+    from .._annotations import as_run_label, text_width
+    from .._style import COLORS, figure_style, new_figure
+
+    run = as_run_label(run)
 
     keys = list(model.quantities)
     ncol = 3 if len(keys) > 4 else 2
@@ -77,7 +80,8 @@ def plot_shapes(model: Any, path: Any = None, *, run: Any = None, symbol: str = 
     from matplotlib import colormaps
 
     from .. import shapes
-    from .._style import COLORS, draw_header, figure_style, new_figure
+    from .._annotations import draw_header
+    from .._style import COLORS, figure_style, new_figure
 
     shape = shapes.get(model.shape)
     names = shape.parameter_names

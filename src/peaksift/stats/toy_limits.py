@@ -87,21 +87,24 @@ def pooled_cls(q_obs: float, q_b: np.ndarray, q_sb: np.ndarray, llr: np.ndarray
     return float(cls_vals[0]), cls_vals[1:]
 
 
-def limits_on_grid(evaluate: Any, lo: float, hi: float, alpha: float, what: str
-                   ) -> tuple[dict[float, tuple[float, float, np.ndarray]], np.ndarray,
+def limits_on_grid(evaluate: Any, lo: float, hi: float, alpha: float, what: str, *,
+                   many: bool = False) -> tuple[dict[float, tuple[float, float, np.ndarray]], np.ndarray,
                               np.ndarray, list[str]]:
     """Observed limit and expected band where CLs falls through ``alpha`` on a grid of
     signal values from ``lo`` to ``hi``, grown (4 points, a factor 2.5 further) where a
     limit falls outside it.  ``evaluate(mu)`` gives ``(q_obs, CLs_obs, CLs of each
-    background-only toy)``.  Returns the evaluated points, the grid, ``[observed, band...]``
-    (NaN outside the grid, with a note naming ``what``) and the notes."""
+    background-only toy)``; with ``many`` it takes the list of a round's signal values
+    and gives the list of their tuples (in that order: a caller may fit them together).
+    Returns the evaluated points, the grid, ``[observed, band...]`` (NaN outside the grid,
+    with a note naming ``what``) and the notes."""
     levels = special.ndtr(np.array(_BANDS, float))
     points: dict[float, tuple[float, float, np.ndarray]] = {}
     todo = list(np.geomspace(lo, hi, _GRID))
     notes: list[str] = []
     for attempt in range(_EXTEND + 1):
-        for mu in todo:
-            points[float(mu)] = evaluate(float(mu))
+        todo = [float(mu) for mu in todo]
+        for mu, val in zip(todo, evaluate(todo) if many else map(evaluate, todo)):
+            points[mu] = val
         grid = np.array(sorted(points))
         cls_obs = np.array([points[m][1] for m in grid])
         cls_b = np.stack([points[m][2] for m in grid], axis=1)
