@@ -13,6 +13,11 @@ Why: the numpy path costs ~20 numpy calls per iteration whatever the size; on a 
 masses x 100 bins that call overhead was ~2/3 of the scan (its cost per mass and bin 1.5x
 that of 1,000 bins).  Here a row's iterations run without returning to Python.
 
+A row whose start lies far below the counts under its signal (a background fitted badly
+there) first moves its signal yield to the minimum in s alone (:func:`_signal_start`,
+as the numpy path's :func:`peaksift.stats.toy_model.signal_start`): from s = 0 there the
+Newton steps only double s.
+
 Its calls from Python (:mod:`.profile_calls`) return None whenever it cannot answer as the
 numpy path would (another background, a row kernel declining a point where the numpy path
 switches to a series, a singular or non-finite Newton step, where numpy would take a
@@ -196,6 +201,12 @@ def _damped_step(hess, grad, lam, h, step, sm, sd):  # pragma: no cover - compil
     return solve_small_into(h, grad, step, sm, sd)
 
 
+#: :func:`_signal_start`'s rule (``toy_model``'s: START_RATIO, START_STOP, START_STEPS)
+START_RATIO, START_STOP, START_STEPS = 4.0, 1.01, 30
+#: a row not converged after this many iterations has its background's curvature computed
+#: again at its point (``toy_model.REFRESH_AT``, which says why)
+REFRESH_AT = 6
+
 #: the rows of profile_rows' fraction buffers: the current point and a trial alternate in
 #: rows 0 and 1 (an accepted trial's row becomes the current one), row 2 holds the start
 _START = 2
@@ -212,30 +223,32 @@ def profile_rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, 
     one row (every row starts at the same theta, as a scan's hypotheses do) it is computed
     once, at the first row, and serves all: it depends on theta alone (so do the start's
     fractions and derivatives, likewise computed once).
-    ``hess_out (B, P, P)`` the exact Hessian at each minimum and ``s_err`` the signal
-    yield's error from it (``minimize.first_error``).
+    ``hess_out (B, P, P)`` the Hessian at each minimum (exact: the curvature at the start,
+    or where a row ran past REFRESH_AT iterations, at its point then) and ``s_err`` the
+    signal yield's error from it (``minimize.first_error``).
     Arrays are indexed by row, never sliced: a view costs two atomic reference counts.
     The work buffers are made here, once, and :func:`_rows` fits with them."""
     nb = f.shape[1]
     p = x.shape[1]
     nw = e1.size
     # gs, dgs: fractions and derivatives of the current point, a trial and the start
-    # (_START); an accepted trial's row becomes the current one, so each point costs one
-    # evaluation of the background (it cost two: the trial's fractions, then its
-    # derivatives again).  mats, vecs: the (P, P) and (P,) work of a Newton step
+    # (_START), rows 3-4 the curvature's work; an accepted trial's row becomes the current
+    # one, so each point costs one evaluation of the background (it cost two: the trial's
+    # fractions, then its derivatives again).  mats, vecs: the (P, P) and (P,) work of a
+    # Newton step; the last (1, N): a row's curvature computed again (REFRESH_AT)
     return _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
                  steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
                  s_err, np.empty(1), np.empty(nw), np.empty((1, nw - 1)), np.empty((1, nw - 1)),
-                 np.empty((3, nb)), np.empty((3, nb)), np.empty((2, nb)),
+                 np.empty((5, nb)), np.empty((5, nb)), np.empty((2, nb)),
                  np.empty((8, p, p)), np.empty((8, p)), np.zeros(p, np.bool_),
-                 np.empty((p, p + 1)))
+                 np.empty((p, p + 1)), np.empty((1, nb)))
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
 def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
           steps, tries, nll_tol, step_tol, slack, d2, nll_out, conv_out, hess_out,
           s_err, kbuf, ev, frac, grad_full, gs, dgs, lb, mats, vecs, pin,
-          sm):  # pragma: no cover - compiled
+          sm, d2p):  # pragma: no cover - compiled
     """:func:`profile_rows` with its work buffers.  Every array the Newton loop hands to
     a compiled helper is :func:`borrowed` first: each helper call took and gave back a
     reference per array argument, two locked instructions each, ~60 per iteration (with
@@ -262,6 +275,7 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
     lb = borrowed(lb)
     pin = borrowed(pin)
     sm = borrowed(sm)
+    d2p = borrowed(d2p)
     hess = borrowed(mats[0])
     hp = borrowed(mats[1])
     h = borrowed(mats[2])
@@ -285,7 +299,7 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
             xr[a] = x[r, a]
         if (r == 0 or not shared_d2) and not _curvature(
                 code, e1, e2, c1, c2, used, scale, xr[off + 1], lower[off + 1],
-                upper[off + 1], kbuf, frac, grad_full, gs, dgs, d2, d2r, ev):
+                upper[off + 1], kbuf, frac, grad_full, gs, dgs, d2, d2r, ev, 0, 1):
             return r + 1
         # every row from one theta (a scan's start): its fractions and derivatives are the
         # first row's (one of a row's ~6 evaluations of the background saved; the same bits)
@@ -305,9 +319,30 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
             cur = _nll(n, nr, f, r, gs, ci, s, xr[off], satr, lb)
         lam = 1e-3
         conv = False
+        dsrc = d2
+        drow = d2r
         for _it in range(steps):
+            if _it == REFRESH_AT:   # (the row's curvature at its point, in its own row)
+                if not _curvature(code, e1, e2, c1, c2, used, scale, xr[off + 1],
+                                  lower[off + 1], upper[off + 1], kbuf, frac, grad_full,
+                                  gs, dgs, d2p, 0, ev, 3, 4):
+                    return r + 1
+                dsrc = d2p
+                drow = 0
             s = s_fix[r] if fixed else xr[0]
-            _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, s, xr[off], off, grad, hess)
+            _grad_hess(n, nr, f, r, gs, dgs, ci, dsrc, drow, s, xr[off], off, grad, hess)
+            # far below the counts under the signal at the start: s moved there first
+            # (sum f, F, summed only where G - F = -grad[0] is positive; an addition a bin
+            # in _grad_hess's loop cost ~1.5 % of a 100-bin scan)
+            ff = _row_sum(f, r) if _it == 0 and not fixed and grad[0] < 0.0 else 0.0
+            if ff > 0.0 and -grad[0] > (START_RATIO - 1.0) * ff:
+                t = _signal_start(n, nr, f, r, gs, ci, xr, upper[0], satr, lb, cur, ff,
+                                  grad[0], hess[0, 0])
+                if t < cur:
+                    cur = t
+                    s = xr[0]
+                    _grad_hess(n, nr, f, r, gs, dgs, ci, dsrc, drow, s, xr[off], off,
+                               grad, hess)
             # _pin_at_bounds: a parameter on a bound whose descent leaves it holds still
             anypin = False
             for a in range(p):
@@ -355,12 +390,60 @@ def _rows(code, e1, e2, c1, c2, used, scale, n, sat, f, x, s_fix, lower, upper,
         nll_out[r] = cur
         conv_out[r] = conv
         if not fixed:
-            _grad_hess(n, nr, f, r, gs, dgs, ci, d2, d2r, xr[0], xr[off], off, grad, hess)
+            _grad_hess(n, nr, f, r, gs, dgs, ci, dsrc, drow, xr[0], xr[off], off, grad,
+                       hess)
             for a in range(p):
                 for c in range(p):
                     hess_out[r, a, c] = hess[a, c]
             s_err[r] = first_error_into(hess, h, gp, step, sm, sd)
     return 0
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _signal_start(n, nrow, f, r, gs, slot, xr, s_hi, sat, lb, cur, ff, g_s,
+                  h_ss):  # pragma: no cover - compiled
+    """The row's NLL with its signal yield ``xr[0]`` moved to the minimum in s alone (b,
+    theta held), or ``cur`` (``xr`` unchanged) where that is not lower: ``toy_model.
+    signal_start``, which says why; ``ff`` = sum f = F, ``g_s`` = F - G and ``h_ss`` the
+    NLL's derivatives in s at the start.  Newton steps on 1/G - 1/F = 0 while G >
+    :data:`START_STOP` F, each a pass without logarithms.  A call of its own (inlined,
+    every power-law scan of 100 bins cost ~2 % more, the rows that never call it too)."""
+    s0 = xr[0]
+    b = xr[1]
+    nb = f.shape[1]
+    gg = ff - g_s
+    hh = h_ss
+    s1 = s0
+    for _ in range(START_STEPS):
+        if not hh > 0.0:
+            break
+        s1 = min(s1 + (gg - ff) * gg / (ff * hh), s_hi)
+        gg = 0.0
+        hh = 0.0
+        for j in range(nb):
+            fj = f[r, j]
+            nu = max(NU_FLOOR, s1 * fj + b * gs[slot, j])
+            v = n[nrow, j] / (nu * nu)
+            gg += fj * nu * v
+            hh += fj * fj * v
+        if not gg > START_STOP * ff:
+            break
+    if s1 == s0:
+        return cur
+    t = _nll(n, nrow, f, r, gs, slot, s1, b, sat, lb)
+    if t < cur:
+        xr[0] = s1
+        return t
+    return cur
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _row_sum(f, r):  # pragma: no cover - compiled
+    """sum f[r] (a loop that vectorises)."""
+    t = 0.0
+    for j in range(f.shape[1]):
+        t += f[r, j]
+    return t
 
 
 @njit(cache=True, nogil=True)
@@ -378,22 +461,22 @@ def _small(step, hess, step_tol, p):  # pragma: no cover - compiled
 
 @njit(cache=True, nogil=True)
 def _curvature(code, e1, e2, c1, c2, used, scale, th, lo, hi, kbuf, frac, grad, gs, dgs,
-               out, row, ev):  # pragma: no cover - compiled
+               out, row, ev, w0, w1):  # pragma: no cover - compiled
     """``toy_model.bkg_second`` for one row of one parameter into ``out[row]``: central
     differences of the fractions' derivative, step 1e-5 max(|theta|, 0.1), kept inside
-    the bounds (rows 0 and 1 of ``gs``, ``dgs`` as work rows)."""
+    the bounds (rows ``w0`` and ``w1`` of ``gs``, ``dgs`` as work rows)."""
     hstep = 1e-5 * max(abs(th), 0.1)
     up = min(th + hstep, hi)
-    if not _background(code, e1, e2, c1, c2, used, scale, up, kbuf, frac, grad, gs, dgs, 0,
+    if not _background(code, e1, e2, c1, c2, used, scale, up, kbuf, frac, grad, gs, dgs, w0,
                        ev):
         return False
     dn = max(th - hstep, lo)
-    if not _background(code, e1, e2, c1, c2, used, scale, dn, kbuf, frac, grad, gs, dgs, 1,
+    if not _background(code, e1, e2, c1, c2, used, scale, dn, kbuf, frac, grad, gs, dgs, w1,
                        ev):
         return False
     width = up - dn if up > dn else 1.0
     for j in range(out.shape[1]):
-        out[row, j] = (dgs[0, j] - dgs[1, j]) / width
+        out[row, j] = (dgs[w0, j] - dgs[w1, j]) / width
     return True
 
 

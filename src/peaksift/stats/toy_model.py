@@ -231,6 +231,55 @@ def fit_background(model: ScanModel, n: np.ndarray, theta0: np.ndarray | None = 
 
 
 # --------------------------------------------------- exact profile over masses (data)
+#: a row's signal start is moved where the start's expectations are below the counts by
+#: more than this factor, weighted by the signal (:func:`signal_start`); then moved while
+#: they are more than START_STOP below, in at most START_STEPS steps
+START_RATIO, START_STOP, START_STEPS = 4.0, 1.01, 30
+#: a row not converged after this many iterations (a scan's rows take 4-6) has the
+#: background's curvature in its Hessian computed again at its point: the start's, held
+#: to save its evaluations, is far off where theta has moved many errors (a background
+#: fitted badly, the signal taking up the difference), and there the Newton steps
+#: oscillated in theta for 30-50 iterations
+REFRESH_AT = 6
+
+
+def signal_start(n: np.ndarray, f: np.ndarray, s: np.ndarray, b: np.ndarray, g: np.ndarray,
+                 nll: np.ndarray, total_nll: Any) -> tuple[np.ndarray, np.ndarray]:
+    """``(s, nll)`` with each row's signal yield moved to the minimum in s alone (b and
+    the background shape held) where the start's expectations are far below the counts
+    under the signal (G > START_RATIO F at the start, below); other rows unchanged.
+
+    Why: at s = 0 under a background far below the counts (an exponential fitted to a
+    power law leaves ~1e-6 events where ~50 are counted), the NLL in s is ~ -n ln(s f +
+    nu) with nu << n, whose Newton step only doubles s + nu / f: ~25 iterations of the
+    full fit to reach s ~ 50.  The NLL's derivative in s is F - G(s), ``F = sum f_j``,
+    ``G(s) = sum n_j f_j / (s f_j + nu_j)``; 1/G is increasing and concave (a harmonic
+    sum of linear functions), so Newton's method on 1/G - 1/F = 0 (the ordinary step
+    times G/F) climbs to the root from below without passing it: 2-3 steps, taken while
+    G > START_STOP F.  A row keeps its new point only if its NLL is lower.  The
+    compiled fit does the same row by row (``profile_kernels._signal_start``)."""
+    ff = f.sum(axis=1)
+    move = np.zeros(s.size, bool)
+    s1 = s.copy()
+    for it in range(START_STEPS):
+        nu = np.maximum(s1[:, None] * f + b[:, None] * g, _NU_FLOOR)
+        q = n / nu
+        gg = (f * q).sum(axis=1)
+        hh = (f * q * (f / nu)).sum(axis=1)
+        step = (gg > (START_RATIO if it == 0 else START_STOP) * ff) & (hh > 0) & (ff > 0)
+        if it == 0:
+            move = step
+        step &= move
+        if not step.any():
+            break
+        s1 = np.where(step, s1 + (gg - ff) * gg / np.where(step, ff * hh, 1.0), s1)
+    if not move.any():
+        return s, nll
+    t = total_nll(s1, b, g)
+    keep = move & (t < nll)
+    return np.where(keep, s1, s), np.where(keep, t, nll)
+
+
 #: numpy's float64 (a singleton: ``dtype is`` tests what ``dtype == np.float64`` does for
 #: the arrays made here, without the comparison's conversion)
 _F8 = np.dtype(np.float64)
@@ -276,7 +325,9 @@ def profile_signal(model: ScanModel, n: np.ndarray, fractions: np.ndarray, *,
     ``fractions (B, n_used)`` are the signal fractions of each hypothesis, ``n`` the counts
     (``(n_used,)`` shared or ``(B, n_used)``).  The signal yield is free (it may go negative
     as long as every expectation stays positive) unless ``s_fixed (B,)`` is given.  Newton
-    steps with the Fisher-type Hessian and step halving on the exact NLL.
+    steps with the Fisher-type Hessian and step halving on the exact NLL; a free signal
+    whose start lies far below the counts under it is first moved to the minimum in s
+    alone (:func:`signal_start`).
 
     Returns a dict of ``s``, ``s_error`` (from the inverse observed Hessian), ``b``,
     ``theta``, ``nll``, ``converged``, ``hessian`` (free fits: the exact Hessian
@@ -348,7 +399,11 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
         s = np.where(np.isfinite(nll), s, 0.0)
         nll = total_nll(s, b, g)
     off = 0 if fixed else 1
+    if not fixed:   # far below the counts under the signal: s moved there first
+        s, nll = signal_start(n, f, s, b, g, nll, total_nll)
     d2 = bkg_second(model, theta) if k else None
+    d2h = d2   # the Hessian's curvature: rows past REFRESH_AT iterations, at their point then
+    calls = 0
 
     def unpack(x: np.ndarray, rows: np.ndarray):
         return (s[rows] if fixed else x[:, 0]), x[:, off], x[:, off + 1:]
@@ -358,9 +413,14 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
         tg = bkg_fractions(model, tth)
         return total_nll(ts, tb, tg, rows), (tg,)
 
-    def grad_hess(x: np.ndarray, state: tuple, rows: np.ndarray):
+    def grad_hess(x: np.ndarray, state: tuple, rows: np.ndarray, final: bool = False):
+        nonlocal d2h, calls
         si, bi, thi = unpack(x, rows)
         gi = state[0]
+        calls += not final   # (one call an iteration, for the rows still running)
+        if k and calls == REFRESH_AT + 1 and not final:
+            d2h = d2.copy()
+            d2h[rows] = bkg_second(model, thi)
         nu = np.maximum(si[:, None] * f[rows] + bi[:, None] * gi, _NU_FLOOR)
         cols = [gi[:, None, :]]
         if k:
@@ -376,7 +436,7 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
         if k:
             ib = off  # index of the background yield
             hess[:, ib + 1:, ib + 1:] += bi[:, None, None] * np.einsum("bkln,bn->bkl",
-                                                                         d2[rows], w)
+                                                                         d2h[rows], w)
             cross = np.einsum("bkn,bn->bk", dg, w)
             hess[:, ib, ib + 1:] += cross
             hess[:, ib + 1:, ib] += cross
@@ -392,7 +452,7 @@ def _profile_stacked(model: ScanModel, n: Any, f: np.ndarray, s_fixed: Any, s_st
     s, b, theta, g, nll, converged = s.copy(), b.copy(), theta.copy(), r.state[0], r.nll, \
         r.converged
     # Hessian-based error of the signal yield: inverse of the exact Hessian at the minimum
-    hess = None if fixed else grad_hess(r.x, r.state, np.arange(nb))[1]
+    hess = None if fixed else grad_hess(r.x, r.state, np.arange(nb), final=True)[1]
     s_err = np.full(nb, np.nan) if fixed else first_error(hess)
     return {"s": s, "s_error": s_err, "b": b, "theta": theta, "nll": nll,
             "converged": converged, "hessian": hess, "curvature": d2}
