@@ -125,7 +125,8 @@ def test_combination_config_is_checked(demo_dir, tmp_path):
     text = text.replace("luminosity_uncertainty = 0.02\n", "").replace(
         "efficiency_uncertainty = 0.05\n", "")
     text = text.replace('files = ["events_*.parquet"]',
-                        f'files = ["{demo_dir}/events_*.parquet"]')
+                        f'files = ["{demo_dir}/events_*.parquet"]').replace(
+        '"background_template.json"', f'"{demo_dir}/background_template.json"')
     (tmp_path / "c.toml").write_text(text)
     with pytest.raises(ConfigError, match="needs limits.luminosity"):
         run_combination({"combination": {"channels": [str(tmp_path / "c.toml")]}}, out=False)
